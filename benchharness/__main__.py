@@ -1,0 +1,5 @@
+"""`python -m benchharness` runs the command line."""
+
+from benchharness.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,49 @@
+"""The exception family of benchharness.
+
+Every error the library raises on purpose derives from `BenchharnessError`; the
+command line maps the family to exit code 2 and prints the message as one line.
+Messages about an input file follow ``FILE:LINE:COL: what is wrong; what would be
+right`` so a user can jump straight to the spot.
+"""
+
+from __future__ import annotations
+
+
+class BenchharnessError(Exception):
+    """Root of all errors benchharness raises deliberately."""
+
+
+class ExperimentError(BenchharnessError):
+    """The experiment file is malformed or inconsistent."""
+
+    def __init__(self, message: str, path: str | None = None, line: int | None = None,
+                 col: int | None = None):
+        self.path = path
+        self.line = line
+        self.col = col
+        self.bare = message
+        where = ""
+        if path is not None:
+            where = str(path)
+            if line is not None:
+                where += f":{line}"
+                if col is not None:
+                    where += f":{col}"
+            where += ": "
+        super().__init__(where + message)
+
+
+class UsageError(BenchharnessError):
+    """Bad command-line usage or option value."""
+
+
+class DataError(BenchharnessError):
+    """Input data (a CSV or results folder) cannot be analysed as asked."""
+
+
+class ResultsFolderError(BenchharnessError):
+    """A results folder is missing, locked, or must not be written into."""
+
+
+class ExecutionError(BenchharnessError):
+    """The harness could not start or measure a run (not a failing command)."""
