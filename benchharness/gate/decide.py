@@ -52,7 +52,10 @@ class GateSettings:
     min_runs: int = 6            # blocks before the first look
     higher_is_better: bool = False
     beta: float = 0.05           # design miss rate at the design distance
-    horizon_factor: float = 1.3  # planned information / fixed-design information
+    horizon_factor: float = 1.0  # planned information / fixed-design information
+    # noise estimate that sets the horizon: "upper:q" = upper (1-q) confidence bound
+    # of sigma at the current look (conservative planning); "current"; "pilot"; a number
+    horizon_from: str = "upper:0.2"
 
     def __post_init__(self):
         if not 0 < self.tolerance < 1:
@@ -197,10 +200,11 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -
         return make(None, "waiting for the first look")
 
     # sd None handled; sd > 0 from here
-    ct, horizon, final = design.critical(n, sd)
+    plan_sd = _plan_sd(diffs, settings)
+    ct, horizon, final = design.critical(n, sd, plan_sd)
     if at_budget and not final:
         final = True
-        ct, horizon, _ = _final_critical(design, n, sd)
+        ct, horizon, _ = _final_critical(design, n, sd, plan_sd)
     if not math.isfinite(ct):
         if final:
             return make("inconclusive", "budget spent before a look could decide", horizon=horizon)
@@ -222,9 +226,42 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -
     return make(None, "undecided", lo, hi, horizon)
 
 
-def _final_critical(design: SequentialDesign, n: int, sd: float):
+def _running_sd(diffs):
+    """Standard deviation of diffs[:j] for j = 1..len(diffs) (nan for j = 1)."""
+    out, s1, s2 = [], 0.0, 0.0
+    for j, x in enumerate(diffs, start=1):
+        s1 += x
+        s2 += x * x
+        out.append(math.sqrt(max(s2 - s1 * s1 / j, 0.0) / (j - 1)) if j > 1 else float("nan"))
+    return out
+
+
+def _plan_sd(diffs, settings: GateSettings) -> float:
+    """Noise estimate that sets the planned horizon (see `GateSettings.horizon_from`)."""
+    mode = settings.horizon_from
+    n = len(diffs)
+    first = max(2, settings.min_runs)
+    q = None
+    if "upper:" in mode:
+        q = float(mode.split("upper:")[1])
+    def adj(sd, j):
+        if q is None:
+            return sd
+        from scipy.stats import chi2
+        return sd * math.sqrt((j - 1) / chi2.ppf(q, j - 1))
+    run = _running_sd(diffs)
+    if mode.startswith("ratchet"):
+        return max(1e-9, max(adj(run[j - 1], j) for j in range(first, n + 1)))
+    if mode == "pilot":
+        return max(1e-9, run[first - 1])
+    if mode == "current" or mode.startswith("upper:"):
+        return max(1e-9, adj(run[n - 1], n))
+    return float(mode)
+
+
+def _final_critical(design: SequentialDesign, n: int, sd: float, plan_sd: float):
     """Critical value when the budget forces this look to be the last one."""
     from dataclasses import replace
 
     d = replace(design, max_blocks=n)
-    return d.critical(n, sd)
+    return d.critical(n, sd, plan_sd)

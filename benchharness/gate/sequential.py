@@ -180,6 +180,65 @@ def _tail_point(mass, x, h, want):
     return float(upper_edge - frac * h)
 
 
+@lru_cache(maxsize=4096)
+def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = None,
+                 paths: int = 100_000, seed: int = 19830101) -> tuple[float, ...]:
+    """Boundaries for the one-sample t statistics at the looks, spending ``obf_spending``.
+
+    Under ``mu`` = the value tested, the joint law of the t statistics
+    ``T_k = sqrt(n_k) (m_k - mu) / s_k`` at all looks is free of ``mu`` and
+    ``sigma``, so boundaries with ``P(T_j < b_j, j < k; T_k >= b_k) = A(t_k) -
+    A(t_{k-1})`` can be found once by simulating that law: ``paths`` seeded
+    Gaussian paths, and at each look the empirical upper quantile of the paths
+    still inside. (Sum and sum of squares are drawn per look increment: the
+    sum is N(0, inc) and, given it, the within-increment sum of squares about
+    its mean is chi-square with inc - 1 df.) Deterministic for a given seed.
+    """
+    import numpy as np
+
+    looks = tuple(int(n) for n in looks)
+    if looks[0] < 2 or any(b <= a for a, b in zip(looks, looks[1:])):
+        raise ValueError("looks must be increasing block counts >= 2")
+    N = horizon or looks[-1]
+    rng = np.random.default_rng(seed)
+    total = np.zeros(paths)
+    sumsq = np.zeros(paths)
+    alive = np.ones(paths, dtype=bool)
+    prev = 0
+    spent_count = 0
+    out: list[float] = []
+    for n in looks:
+        inc = n - prev
+        part = rng.standard_normal(paths) * np.sqrt(inc)
+        within = rng.chisquare(inc - 1, paths) if inc > 1 else 0.0
+        total += part
+        sumsq += part * part / inc + within
+        prev = n
+        target = obf_spending(n / N, alpha) if n < N else alpha
+        want = int(round(target * paths)) - spent_count
+        if want <= 0:
+            out.append(math.inf)
+            continue
+        mean = total / n
+        var = np.maximum((sumsq - n * mean * mean) / (n - 1), 1e-300)
+        tstat = mean * np.sqrt(n / var)
+        cand = tstat[alive]
+        if want >= cand.size:
+            out.append(-math.inf)
+            alive[:] = False
+            spent_count += cand.size
+            continue
+        # the want-th largest value among paths still inside, and the next one
+        part_sorted = np.partition(cand, cand.size - want - 1)
+        hi = np.min(part_sorted[cand.size - want:])
+        lo = part_sorted[cand.size - want - 1]
+        b = float((hi + lo) / 2.0)
+        out.append(b)
+        alive &= ~(tstat >= b)
+        spent_count += want
+    return tuple(out)
+
+
 def fixed_pairs(alpha: float, beta: float, d: float, cap: int = 10**6) -> int:
     """Blocks a fixed-size one-sided paired t-test at level alpha needs for power 1-beta.
 
@@ -232,18 +291,17 @@ class SequentialDesign:
                                  10 * self.max_blocks + 10)
         return int(min(self.max_blocks, max(self.first, math.ceil(self.horizon_factor * nf))))
 
-    def critical(self, n: int, sd: float) -> tuple[float, int, bool]:
+    def critical(self, n: int, sd: float, plan_sd: float | None = None
+                 ) -> tuple[float, int, bool]:
         """(t-scale multiplier of s/sqrt(n), horizon, final) at ``n`` blocks; inf when no look.
 
         ``final`` is true when this look spends the rest of the level (n reached
         the horizon or the budget).
         """
-        from scipy.stats import norm, t
-
         first = max(2, self.first)
+        N = self.horizon(sd if plan_sd is None else plan_sd)
         if n < first:
-            return math.inf, self.horizon(sd), False
-        N = self.horizon(sd)
+            return math.inf, N, False
         final = n >= N or n >= self.max_blocks
         if n >= N:
             N = n
@@ -251,8 +309,5 @@ class SequentialDesign:
         if n not in looks:
             return math.inf, N, final
         idx = looks.index(n)
-        c = boundaries(looks, round(self.alpha, 15))[idx]
-        if not math.isfinite(c):
-            return math.inf, N, final
-        ct = float(t.isf(norm.sf(c), n - 1))
+        ct = t_boundaries(looks, round(self.alpha, 15))[idx]
         return ct, N, final
