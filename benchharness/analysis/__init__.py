@@ -152,7 +152,22 @@ def _declared_from_experiment(exp):
         return yaml.safe_load(yaml.serialize(node))
 
 
-def analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
+def analyze(data, *args, **kwargs) -> "Analysis":
+    """Analyse a runs table (DataFrame, tidy CSV path or results folder); see `_analyze`.
+
+    Linear algebra here works on small matrices (cells × parameters), where
+    multi-threaded BLAS only adds overhead on a busy machine, so BLAS is held to
+    one thread for the call when threadpoolctl is available.
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # optional: only speed depends on it
+        return _analyze(data, *args, **kwargs)
+    with threadpool_limits(1):
+        return _analyze(data, *args, **kwargs)
+
+
+def _analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
             model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
             adjust: str = "holm", compare=None, art="auto") -> Analysis:
     """Analyse a runs table (DataFrame, tidy CSV path or results folder).

@@ -53,13 +53,13 @@ def anderson_darling_p(a2: float, n: int) -> float:
 
 
 def anderson_darling_stat(x: np.ndarray) -> float:
-    from scipy import stats
+    from scipy.special import log_ndtr
 
     x = np.sort(np.asarray(x, dtype=float))
     n = len(x)
     z = (x - x.mean()) / x.std(ddof=1)
-    logcdf = stats.norm.logcdf(z)
-    logsf = stats.norm.logsf(z)
+    logcdf = log_ndtr(z)
+    logsf = log_ndtr(-z)
     i = np.arange(1, n + 1)
     return float(-n - np.sum((2 * i - 1) * (logcdf + logsf[::-1])) / n)
 
@@ -101,7 +101,11 @@ def normality(r: np.ndarray, alpha: float) -> dict:
 
 def group_medians(row_group: np.ndarray, values: np.ndarray, count: int) -> np.ndarray:
     """Median of ``values`` within each group (one sort, no Python loop over rows)."""
-    order = np.lexsort((values, row_group))
+    o1 = np.argsort(values)
+    g = row_group[o1]
+    if count < 32768:  # stable radix sort on small integers
+        g = g.astype(np.int16)
+    order = o1[np.argsort(g, kind="stable")]
     g_sorted = row_group[order]
     v_sorted = values[order]
     starts = np.searchsorted(g_sorted, np.arange(count), side="left")

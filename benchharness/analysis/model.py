@@ -106,15 +106,23 @@ def design(levels, terms, sizes):
 
 
 def _basis(a: np.ndarray, scale: float | None = None):
-    """Orthonormal basis of the column space of ``a`` (SVD, relative tolerance)."""
-    if a.shape[1] == 0:
+    """Orthonormal basis of the column space of ``a``.
+
+    Rank-revealing QR with column pivoting (Businger & Golub 1965); a column
+    counts when its pivot exceeds a relative tolerance of ``scale`` (default:
+    the largest pivot).
+    """
+    from scipy.linalg import qr
+
+    if a.shape[1] == 0 or a.shape[0] == 0:
         return np.zeros((a.shape[0], 0))
-    u, s, _ = np.linalg.svd(a, full_matrices=False)
-    ref = scale if scale is not None else (s[0] if s.size else 0.0)
+    q, r, _ = qr(a, mode="economic", pivoting=True, check_finite=False)
+    d = np.abs(np.diag(r))
+    ref = scale if scale is not None else (d[0] if d.size else 0.0)
     if ref <= 0:
         return np.zeros((a.shape[0], 0))
-    keep = s > ref * 1e-10 * max(a.shape)
-    return u[:, keep]
+    rank = int(np.count_nonzero(d > ref * 1e-10 * max(a.shape)))
+    return q[:, :rank]
 
 
 def _norm2(a):

@@ -45,90 +45,18 @@ class Prepared:
     extra: dict = field(default_factory=dict)
 
 
-def load_source(data):
+def load_source(data, factors=None):
     """Return ``(DataFrame, Experiment | None)`` for a DataFrame, CSV path or results folder."""
     import pandas as pd
 
     if isinstance(data, pd.DataFrame):
-        return data, None
+        return data, None  # used as is: no copy of a large table
     if not isinstance(data, (str, Path)):
         raise UsageError(f"cannot analyse a {type(data).__name__}; give a DataFrame, a CSV file "
                          "or a results folder")
-    try:  # the shared loader on main, when it exists
-        from benchharness.source import load_table  # type: ignore
-    except ImportError:
-        load_table = None
-    if load_table is not None:
-        return load_table(data)
-    return _load_fallback(Path(data))
+    from benchharness.source import load_table
 
-
-def _read_csv(path: Path):
-    import pandas as pd
-
-    try:
-        return pd.read_csv(path, dtype=str, keep_default_na=False)
-    except FileNotFoundError:
-        raise DataError(f"{path}: no such file; give a results folder or a tidy CSV") from None
-    except (pd.errors.ParserError, UnicodeDecodeError, pd.errors.EmptyDataError) as exc:
-        raise DataError(f"{path}: not a readable CSV ({str(exc).splitlines()[0]})") from None
-
-
-def _load_fallback(path: Path):
-    """Minimal loader used until ``benchharness.source`` exists: CSV or results folder."""
-    exp = None
-    if path.is_dir():
-        csv = path / "runs.csv"
-        if not csv.exists():
-            raise DataError(f"{path}: no runs.csv in this folder; is it a results folder?")
-        exp_file = path / "experiment.yaml"
-        if exp_file.exists():
-            try:
-                from benchharness.experiment import load_experiment  # type: ignore
-
-                exp = load_experiment(exp_file)
-            except ImportError:
-                exp = _FallbackExperiment.read(exp_file)
-        df = _read_csv(csv)
-    else:
-        df = _read_csv(path)
-    return df, exp
-
-
-class _FallbackExperiment:
-    """Just the factor names, level order and run order of an experiment file."""
-
-    def __init__(self, factors, order):
-        self._factors = factors
-        self.order = order
-
-    @property
-    def factor_names(self):
-        return tuple(name for name, _ in self._factors)
-
-    def levels_of(self, name):
-        return dict(self._factors)[name]
-
-    @classmethod
-    def read(cls, path: Path):
-        import yaml
-
-        def compose(text):
-            return yaml.compose(text, Loader=yaml.SafeLoader)
-
-        root = compose(path.read_text())
-        factors, order = [], "randomized"
-        for key, value in root.value:
-            if key.value == "factors":
-                for fk, fv in value.value:
-                    if isinstance(fv, yaml.SequenceNode):
-                        labels = tuple(item.value for item in fv.value)
-                    else:
-                        labels = tuple(k.value for k, _ in fv.value)
-                    factors.append((fk.value, labels))
-            elif key.value == "order":
-                order = value.value
-        return cls(factors, order)
+    return load_table(data, factors=factors)
 
 
 def _as_text(series):
@@ -142,6 +70,14 @@ def _code(series, listed: Sequence[str] | None, name: str):
     """Integer codes in listed order (or order of first appearance); unknown labels are an error."""
     import pandas as pd
 
+    if isinstance(series.dtype, pd.CategoricalDtype):
+        cats = [str(c) for c in series.cat.categories]
+        if listed is None or list(listed) == cats:
+            codes = np.asarray(series.cat.codes, dtype=np.int64)
+            if (codes < 0).any():
+                raise DataError(f"factor {name!r}: some runs have no level")
+            return codes, tuple(cats)
+        series = series.astype(object)
     text = _as_text(series)
     if listed is not None:
         cat = pd.Categorical(text, categories=list(listed))
@@ -163,7 +99,7 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     """
     import pandas as pd
 
-    df, exp = load_source(data)
+    df, exp = load_source(data, factors)
     if factors is None:
         if exp is None:
             raise UsageError("name the factors (--factors A,B or factors=[...]): a plain table does "
@@ -190,14 +126,20 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     notes = []
     # status: analyse ok rows only; warm-up rows are not part of the experiment.
     if "status" in columns:
-        status = df["status"]
-        if status.dtype != object:
-            status = status.astype(str)
-        keep = status != "warmup"
-        df = df.loc[keep]
-        status = status[keep]
+        st_codes, st_labels = pd.factorize(df["status"].astype(object), sort=False)
+        st_labels = [str(x).strip() for x in st_labels]
+        if "warmup" in st_labels:
+            keep = st_codes != st_labels.index("warmup")
+            df = df.loc[keep]
+            st_codes = st_codes[keep]
     else:
-        status = pd.Series("ok", index=df.index)
+        st_codes, st_labels = np.zeros(len(df), dtype=np.int64), ["ok"]
+
+    def status_is(label):
+        if label not in st_labels:
+            return np.zeros(len(st_codes), dtype=bool)
+        return st_codes == st_labels.index(label)
+
     if len(df) == 0:
         raise DataError("the data have no runs to analyse")
 
@@ -230,14 +172,14 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         levels.append(lv)
 
     # per factor cell: counts of runs by status (all statuses, before dropping)
-    ok = (status == "ok").to_numpy()
+    ok = status_is("ok")
     sizes = [len(lv) for lv in levels]
     key = np.zeros(len(df), dtype=np.int64)
     for c, k in zip(codes, sizes):
         key = key * k + c
     total_cells = int(np.prod(sizes, dtype=np.float64))
     status_counts = []
-    lost_masks = {s: (status == s).to_numpy() for s in _LOST}
+    lost_masks = {s: status_is(s) for s in _LOST}
     if total_cells <= 5_000_000:
         n_ok = np.bincount(key[ok], minlength=total_cells)
         n_lost = {s: np.bincount(key[m], minlength=total_cells) for s, m in lost_masks.items()}

@@ -84,16 +84,28 @@ class BoxCoxProfile:
             return float("inf")
         return -0.5 * self.N * math.log(rss_z / self.N)
 
-    def profile(self, alpha: float = 0.05, lo: float = -3.0, hi: float = 3.0,
-                step: float = 0.25) -> Profile:
+    def profile(self, alpha: float = 0.05, lo: float = -2.0, hi: float = 2.0,
+                step: float = 0.25, limit: float = 5.0) -> Profile:
+        """λ̂ and its interval; the search widens past [lo, hi] up to ±limit when needed."""
         from scipy import optimize, stats
 
-        grid = np.round(np.arange(lo, hi + step / 2, step), 10)
-        ll = np.array([self.loglik(g) for g in grid])
+        grid = list(np.round(np.arange(lo, hi + step / 2, step), 10))
+        ll = [self.loglik(g) for g in grid]
+        cut_half = 0.5 * stats.chi2.ppf(1 - alpha, 1)
+        # widen the grid while the maximum or the interval reaches an edge
+        while grid[0] > -limit and (int(np.argmax(ll)) == 0 or ll[0] > max(ll) - cut_half):
+            grid.insert(0, round(grid[0] - step * 2, 10))
+            ll.insert(0, self.loglik(grid[0]))
+        while grid[-1] < limit and (int(np.argmax(ll)) == len(ll) - 1
+                                    or ll[-1] > max(ll) - cut_half):
+            grid.append(round(grid[-1] + step * 2, 10))
+            ll.append(self.loglik(grid[-1]))
+        grid, ll = np.array(grid), np.array(ll)
+        lo, hi = float(grid[0]), float(grid[-1])
         i = int(np.argmax(ll))
         a, b = grid[max(i - 1, 0)], grid[min(i + 1, len(grid) - 1)]
         res = optimize.minimize_scalar(lambda t: -self.loglik(t), bounds=(a, b),
-                                       method="bounded", options={"xatol": 1e-5})
+                                       method="bounded", options={"xatol": 1e-4})
         lam_hat = float(res.x)
         lmax = -float(res.fun)
         if ll[i] > lmax:
@@ -114,7 +126,7 @@ class BoxCoxProfile:
                 continue
             t_out = below[0]
             ends.append(float(optimize.brentq(g, min(t_out, lam_hat), max(t_out, lam_hat),
-                                              xtol=1e-6)))
+                                              xtol=1e-4)))
             open_.append(False)
         return Profile(lam_hat=lam_hat, ci=(ends[0], ends[1]), ci_open=(open_[0], open_[1]),
                        grid=tuple(float(x) for x in grid), loglik=tuple(float(x) for x in ll),
