@@ -281,8 +281,13 @@ def roman(r: int | None) -> str:
 _LETTER_RUN = re.compile(r"^[A-HJ-Z]+$")
 
 
-def _side(text: str, names: Sequence[str], star_mode: bool, what: str, gen_text: str) -> tuple[int, int]:
-    """Parse one side of a generator into (mask, sign)."""
+def parse_word(text: str, names: Sequence[str], star_mode: bool, what: str = "word",
+               gen_text: str | None = None) -> tuple[int, int]:
+    """Parse a word (``ABD``, ``-ABC``, ``threads*batch``) into (mask, sign).
+
+    ``star_mode``: the text uses ``*``/``:`` between factor names.
+    """
+    gen_text = text if gen_text is None else gen_text
     s = text.strip()
     sign = 1
     while s[:1] in "+-":
@@ -290,7 +295,7 @@ def _side(text: str, names: Sequence[str], star_mode: bool, what: str, gen_text:
             sign = -sign
         s = s[1:].strip()
     if not s:
-        raise DesignError(f"generator {gen_text!r}: the {what} side is empty; write e.g. 'D = ABC' "
+        raise DesignError(f"{gen_text!r}: the {what} is empty; write e.g. 'D = ABC' "
                           f"or 'cache = threads*batch'")
     k = len(names)
     mask = 0
@@ -298,16 +303,16 @@ def _side(text: str, names: Sequence[str], star_mode: bool, what: str, gen_text:
         tokens = [t.strip() for t in re.split(r"[*:]", s)]
         for t in tokens:
             if not t:
-                raise DesignError(f"generator {gen_text!r}: empty factor name around '*'")
+                raise DesignError(f"{gen_text!r}: empty factor name around '*'")
             if t in names:
                 pos = names.index(t)
             elif len(t) == 1 and t in W.LETTERS and W.LETTERS.index(t) < k:
                 pos = W.LETTERS.index(t)
             else:
-                raise DesignError(f"generator {gen_text!r}: {t!r} is not a factor; factors are "
+                raise DesignError(f"{gen_text!r}: {t!r} is not a factor; factors are "
                                   + ", ".join(names))
             if mask >> pos & 1:
-                raise DesignError(f"generator {gen_text!r}: {t!r} appears twice")
+                raise DesignError(f"{gen_text!r}: {t!r} appears twice")
             mask |= 1 << pos
         return mask, sign
     if _LETTER_RUN.match(s):
@@ -327,13 +332,13 @@ def _side(text: str, names: Sequence[str], star_mode: bool, what: str, gen_text:
         bad = [ch for ch in s if W.LETTERS.index(ch) >= k]
         if bad:
             raise DesignError(
-                f"generator {gen_text!r}: letter {bad[0]} names no factor; with {k} factors the "
+                f"{gen_text!r}: letter {bad[0]} names no factor; with {k} factors the "
                 f"letters are {W.LETTERS[:k]} (A = first listed factor; I is skipped)")
-        raise DesignError(f"generator {gen_text!r}: a letter appears twice in {s!r}")
+        raise DesignError(f"{gen_text!r}: a letter appears twice in {s!r}")
     if "I" in s and re.fullmatch(r"[A-Z]+", s):
-        raise DesignError(f"generator {gen_text!r}: I is the identity, not a factor letter; "
+        raise DesignError(f"{gen_text!r}: I is the identity, not a factor letter; "
                           f"letters skip it ({W.LETTERS[:min(k, 10)]}...)")
-    raise DesignError(f"generator {gen_text!r}: {s!r} is neither factor letters nor a factor "
+    raise DesignError(f"{gen_text!r}: {s!r} is neither factor letters nor a factor "
                       f"name; use letters (D = ABC) or names joined by '*' (cache = threads*batch)")
 
 
@@ -350,8 +355,8 @@ def parse_generator(text: str, names: Sequence[str]) -> tuple[int, int, int]:
                           f"'cache = threads*batch'")
     lhs, rhs = text.split("=")
     star = "*" in text or ":" in text
-    lmask, lsign = _side(lhs, names, star, "left", text)
-    rmask, rsign = _side(rhs, names, star, "right", text)
+    lmask, lsign = parse_word(lhs, names, star, "left side", text)
+    rmask, rsign = parse_word(rhs, names, star, "right side", text)
     if W.order(lmask) != 1:
         raise DesignError(f"generator {text!r}: the left side must be one factor "
                           f"(the generated one), got {W.letters(lmask)}")
