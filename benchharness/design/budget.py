@@ -58,7 +58,7 @@ def pilot_timing(runs, factors: Sequence[str], response: str = "wall_s") -> Pilo
     factors = tuple(f for f in factors if f in timed.columns)
     cell_mean: dict[tuple, float] = {}
     if factors:
-        for key, g in timed.groupby(list(factors), sort=False):
+        for key, g in timed.groupby(list(factors), sort=False, observed=True):
             key = key if isinstance(key, tuple) else (key,)
             cell_mean[tuple(str(k) for k in key)] = float(g[response].astype(float).mean())
     mean_s = float(timed[response].astype(float).mean())

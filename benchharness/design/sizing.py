@@ -162,7 +162,8 @@ def size_design(factors: Sequence[tuple[str, int]], detect: float, sigma_log: fl
     n = max(per.values())
     fn = POWER_FUNCTIONS[method]
     pf = {name: fn(n, a, cells, D, sigma_log, alpha) for name, a in factors}
-    binding = min(pf, key=lambda k: (pf[k], k))
+    order = {name: i for i, (name, _a) in enumerate(factors)}
+    binding = min(pf, key=lambda k: (pf[k], order[k]))
     a_bind = dict(factors)[binding]
     others = sorted({m for m in (2, 3, n // 2, n - 1, n, n + 1, 2 * n) if m >= 2})
     curve = tuple((m, fn(m, a_bind, cells, D, sigma_log, alpha)) for m in others)
