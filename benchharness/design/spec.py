@@ -164,14 +164,15 @@ def design_of(exp) -> DesignChoice:
 
 def _generators_located(factors, seq_node, gens, path):
     """Build the fraction; an error in one generator points at that generator's line."""
-    from benchharness.design.fractional import parse_generator
+    from benchharness.design.fractional import _two_level_labels
 
-    names = [n for n, _ in factors]
-    for g, gnode in zip(gens, seq_node.value):
+    _two_level_labels(factors)   # level-count errors belong to the factors, not a generator
+    for i, gnode in enumerate(seq_node.value):
         try:
-            parse_generator(g, names)
+            design_from_generators(factors, gens[:i + 1])
         except DesignError as e:
-            raise node_error(gnode, f"design: generator {e.bare}", path) from None
+            msg = e.bare[len("generator "):] if e.bare.startswith("generator ") else e.bare
+            raise node_error(gnode, f"design: generator {msg}", path) from None
     return design_from_generators(factors, gens)
 
 
