@@ -134,8 +134,7 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
         raise UsageError(f"confidence must be between 0 and 1 (e.g. 0.95), not {confidence}")
     across = _as_list(across) or _as_list(section.get("across"))
     also = _as_list(also) or _as_list(section.get("also"))
-    if prefer is None:
-        prefer = section.get("prefer")
+    prefer = {**section.get("prefer", {}), **{str(k): str(v) for k, v in (prefer or {}).items()}}
     if factors_list is None:
         if experiment is not None:
             factors_list = list(experiment.factor_names)
