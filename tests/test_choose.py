@@ -12,24 +12,15 @@ from benchharness.choose import choice_section, choose
 from benchharness.errors import DataError, UsageError
 
 
-def _runs(true, reps=6, noise=0.02, seed=0, extra=None, environments=None):
-    """A runs table: ``true[(setting..., env...)] = geometric-mean wall_s``."""
+def _runs(true, reps=6, noise=0.02, seed=0):
+    """A runs table: ``true[((column, level), ...)] = geometric-mean wall_s``."""
     rng = np.random.default_rng(seed)
     rows = []
     for key, mu in true.items():
         for r in range(reps):
-            row = dict(zip(environments or (), ()))
-            row.update(key)
-            row.update(status="ok", replicate=r, wall_s=mu * np.exp(rng.normal(0, noise)))
-            if extra:
-                for col, fn in extra.items():
-                    row[col] = fn(key, rng)
-            rows.append(row)
+            rows.append({**dict(key), "status": "ok", "replicate": r,
+                         "wall_s": mu * np.exp(rng.normal(0, noise))})
     return pd.DataFrame(rows)
-
-
-def _grid(values, **fixed):
-    return {tuple(sorted({**dict(k), **fixed}.items())): v for k, v in values}
 
 
 def test_best_on_average_but_poor_in_one_environment_loses_the_robust_choice():
@@ -42,8 +33,7 @@ def test_best_on_average_but_poor_in_one_environment_loses_the_robust_choice():
         "8": {"big": 0.70, "mid": 0.70, "small": 1.60},
     }
     true = {(("threads", t), ("machine", m)): v for t, per in speeds.items() for m, v in per.items()}
-    df = _runs({tuple(dict(k).items()): v for k, v in true.items()}, reps=5, seed=1)
-    df = pd.DataFrame([{**dict(r)} for r in df.to_dict("records")])
+    df = _runs(true, reps=5, seed=1)
     c = choose(df, factors=["threads", "machine"], across=["machine"])
     assert c.on_average["setting"] == {"threads": "8"}
     assert c.robust["setting"] == {"threads": "4"}
