@@ -183,8 +183,12 @@ def test_bad_input_is_one_clear_error():
         choose(df, factors=["codec", "level"], prefer={"threads": "4"})
     with pytest.raises(UsageError, match="not a level"):
         choose(df, factors=["codec", "level"], prefer={"level": "9"})
-    with pytest.raises(DataError, match="not in the table"):
+    with pytest.raises(DataError, match="no column named 'nope'"):
         choose(df, factors=["codec", "nope"])
+    with pytest.raises(DataError, match="'machine' is not in the table"):
+        choose(df, factors=["codec", "level"], across=["machine"])
+    with pytest.raises(DataError, match="response column 'cpu_s'"):
+        choose(df, factors=["codec", "level"], response="cpu_s")
     with pytest.raises(UsageError, match="name the factors"):
         choose(df)
     with pytest.raises(UsageError, match="nothing is left"):

@@ -31,61 +31,21 @@ _CHOOSE_KEYS = ("prefer", "across", "also", "response", "confidence")
 
 
 def load_source(data, factors=None):
-    """(DataFrame, Experiment | None) from a DataFrame, CSV path or results folder."""
+    """(DataFrame, Experiment | None) from a DataFrame, CSV path or results folder.
+
+    A DataFrame without ``factors`` is returned as is (the caller asks for
+    the factors); everything else goes through `benchharness.source.load_table`.
+    """
     import pandas as pd
 
-    if isinstance(data, pd.DataFrame):
+    from benchharness.source import load_table
+
+    if isinstance(data, pd.DataFrame) and factors is None:
         return data, None
-    if isinstance(data, (str, Path)):
-        try:
-            from benchharness.source import load_table
-        except ImportError:  # pragma: no cover - until the foundation lands
-            load_table = None
-        if load_table is not None:
-            return load_table(data, factors)
-        path = Path(data)
-        csv = path / "runs.csv" if path.is_dir() else path
-        if not csv.is_file():
-            raise DataError(f"{data}: not a results folder or CSV file")
-        cols = list(factors or [])
-        return pd.read_csv(csv, dtype={c: str for c in cols}, keep_default_na=False,
-                           na_values=[""]), None
-    raise DataError(f"cannot read data of type {type(data).__name__}")
-
-
-def _plain(node):
-    """A python value of a YAML node (scalars as source text) or a plain value as is."""
-    if node is None:
-        return None
-    try:
-        import yaml
-    except ImportError:  # pragma: no cover
-        return node
-    if not isinstance(node, yaml.Node):
-        return node
-    try:
-        from benchharness.yamlnodes import to_plain
-        return to_plain(node)
-    except ImportError:  # pragma: no cover - until the foundation lands
-        pass
-    if isinstance(node, yaml.ScalarNode):
-        return node.value
-    if isinstance(node, yaml.SequenceNode):
-        return [_plain(n) for n in node.value]
-    if isinstance(node, yaml.MappingNode):
-        return {_plain(k): _plain(v) for k, v in node.value}
-    return None  # pragma: no cover
-
-
-def _error(node, path, msg):
-    try:
-        from benchharness.yamlnodes import node_error
-        return node_error(node, msg)
-    except (ImportError, TypeError, AttributeError):
-        mark = getattr(node, "start_mark", None)
-        if mark is not None:
-            return ExperimentError(msg, path=str(path), line=mark.line + 1, col=mark.column + 1)
-        return ExperimentError(msg, path=str(path) if path else None)
+    if not isinstance(data, (pd.DataFrame, str, Path)):
+        raise DataError(f"cannot read data of type {type(data).__name__}; give a DataFrame, "
+                        "a CSV path or a results folder")
+    return load_table(data, list(factors) if factors is not None else None)
 
 
 def _sections(experiment) -> Mapping:
@@ -93,64 +53,64 @@ def _sections(experiment) -> Mapping:
 
 
 def choose_settings(experiment) -> dict:
-    """The validated ``choose:`` section of an experiment (empty when absent)."""
+    """The validated ``choose:`` section of an experiment (empty when absent).
+
+    Raises `ExperimentError` at ``FILE:LINE:COL`` for a malformed section.
+    """
+    from benchharness.yamlnodes import (as_float, expect_mapping, is_null, node_error,
+                                        scalar_text, sequence_items, to_plain)
+
     out: dict = {}
     if experiment is None:
         return out
     node = _sections(experiment).get("choose")
-    if node is None:
+    if is_null(node):
         return out
-    path = getattr(experiment, "path", None)
-    value = _plain(node)
-    if value in (None, ""):
-        return out
-    if not isinstance(value, dict):
-        raise _error(node, path, "choose: must be a mapping with keys "
-                     + ", ".join(_CHOOSE_KEYS))
-    children = {}
+    path = str(getattr(experiment, "path", "") or "") or None
     try:
-        import yaml
-        if isinstance(node, yaml.MappingNode):
-            children = {k.value: v for k, v in node.value}
-    except ImportError:  # pragma: no cover
-        pass
-    for key, v in value.items():
-        child = children.get(key, node)
-        if key not in _CHOOSE_KEYS:
-            raise _error(child, path, f"choose: unknown key {key!r}; allowed: "
-                         + ", ".join(_CHOOSE_KEYS))
-        if key == "prefer":
-            if not isinstance(v, dict):
-                raise _error(child, path, "choose.prefer must map factor names to levels, "
-                             "e.g. prefer: {threads: 4}")
-            out["prefer"] = {str(f): str(lv) for f, lv in v.items()}
-        elif key in ("across", "also"):
-            if isinstance(v, str):
-                v = [x.strip() for x in v.split(",") if x.strip()]
-            if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
-                raise _error(child, path, f"choose.{key} must be a list of column names")
-            out[key] = list(v)
-        elif key == "response":
-            if not isinstance(v, str) or not v:
-                raise _error(child, path, "choose.response must be a column name")
-            out["response"] = v
-        elif key == "confidence":
-            try:
-                c = float(str(v).rstrip("%")) / (100 if str(v).endswith("%") else 1)
-            except ValueError:
-                c = -1.0
-            if not 0 < c < 1:
-                raise _error(child, path, "choose.confidence must be between 0 and 1, e.g. 0.95")
-            out["confidence"] = c
+        keys = expect_mapping(node, "choose", _CHOOSE_KEYS)
+        for key, v in keys.items():
+            if key == "prefer":
+                items = expect_mapping(v, "choose.prefer", _known_factors(experiment, v))
+                out["prefer"] = {f: scalar_text(lv, f"choose.prefer.{f}") for f, lv in items.items()}
+            elif key in ("across", "also"):
+                if isinstance(to_plain(v), str):
+                    out[key] = [x.strip() for x in to_plain(v).split(",") if x.strip()]
+                else:
+                    out[key] = [scalar_text(x, f"an entry of choose.{key}")
+                                for x in sequence_items(v, f"choose.{key}")]
+            elif key == "response":
+                out["response"] = scalar_text(v, "choose.response")
+            elif key == "confidence":
+                c = as_float(v, "choose.confidence")
+                if not 0 < c < 1:
+                    raise node_error(v, f"choose.confidence must be between 0 and 1 "
+                                        f"(e.g. 0.95), not {scalar_text(v)}")
+                out["confidence"] = c
+    except ExperimentError as exc:
+        if exc.path in (None, "<string>") and path:
+            raise ExperimentError(exc.bare, path=path, line=exc.line, col=exc.col) from None
+        raise
     return out
+
+
+def _known_factors(experiment, node):
+    """Allowed keys of choose.prefer: the experiment's factor names."""
+    names = tuple(getattr(experiment, "factor_names", ()) or ())
+    if names:
+        return names
+    from benchharness.yamlnodes import mapping_items
+
+    return [k for k, _kn, _v in mapping_items(node, "choose.prefer")]
 
 
 def metric_directions(experiment) -> dict[str, str]:
     """Map of response name -> 'lower' | 'higher' from the ``metrics:`` section."""
+    from benchharness.yamlnodes import to_plain
+
     if experiment is None:
         return {}
-    node = _sections(experiment).get("metrics")
-    value = _plain(node)
+    value = to_plain(_sections(experiment).get("metrics"))
     entries: list[tuple[str, object]] = []
     if isinstance(value, dict):
         entries = list(value.items())
