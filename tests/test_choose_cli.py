@@ -134,3 +134,48 @@ def test_malformed_choose_section_points_at_the_line(cli, folder):
     r = cli("choose", folder)
     assert r.returncode == 2
     assert "experiment.yaml:10:" in r.stderr and "prefer" in r.stderr
+
+
+THROUGHPUT = """\
+experiment: batch-size
+command: [ingest, --batch, "{batch}"]
+factors:
+  batch: [16, 64, 256]
+replicates: 4
+seed: 5
+metrics:
+  rows_per_s: {pattern: "rows/s: ([0-9.]+)", better: higher}
+"""
+
+
+class ThroughputExecutor:
+    """Planted: batch 64 ingests the most rows per second; 16 is quickest to finish."""
+
+    def __init__(self):
+        self.rng = np.random.default_rng(2)
+
+    def execute(self, spec, on_start=None):
+        b = spec.levels["batch"]
+        rate = {"16": 900.0, "64": 1500.0, "256": 1200.0}[b] * float(np.exp(self.rng.normal(0, 0.02)))
+        wall = {"16": 0.5, "64": 0.8, "256": 1.1}[b] * float(np.exp(self.rng.normal(0, 0.02)))
+        return Measurement(status="ok", exit_code=0, wall_s=wall,
+                           started_at="2026-01-01T00:00:00.000000+00:00",
+                           extra={"metrics": {"rows_per_s": rate}})
+
+    def close(self):
+        pass
+
+
+def test_direction_comes_from_the_metrics_section(tmp_path):
+    from benchharness.choose import choice_section, choose
+    from benchharness.experiment import Experiment
+    from benchharness.runner import run_experiment
+
+    exp = Experiment.from_text(THROUGHPUT, path=str(tmp_path / "batch.yaml"))
+    folder = run_experiment(exp, out=tmp_path / "res", executor=ThroughputExecutor()).folder
+    c = choose(folder, response="rows_per_s")
+    assert c.better == "higher" and c.best == {"batch": "64"}
+    assert choose(folder).best == {"batch": "16"}  # wall_s: lower is better
+    s = choice_section(folder, response="rows_per_s")
+    assert s["recommendation"] == {"batch": "64"}
+    assert s["columns"][0] == "setting" and len(s["rows"]) == 3

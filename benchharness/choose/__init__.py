@@ -214,7 +214,8 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
     means_units = main.to_response_units(main.setting_means)
     candidates = []
     for i, s in enumerate(settings):
-        loss_low, loss_high = -res.high[i], -res.low[i]  # loss vs best of the others
+        # loss vs the best of the others (+0.0 turns -0.0 into 0.0)
+        loss_low, loss_high = -res.high[i] + 0.0, -res.low[i] + 0.0
         worst_case = ratio(loss_high) if is_log else loss_high
         c = {
             "setting": as_map(s),
@@ -295,8 +296,8 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
             parts.append("it is the current default")
     if res.tied[i]:
         if lo < 0 and hi <= 0:
-            parts.append(f"better than every other setting by up to {_loss_words(-lo, is_log)} "
-                         f"({conf} confidence)")
+            parts.append(f"better than every other setting ({conf} confidence), by at most "
+                         f"{_loss_words(-lo, is_log)}")
         elif hi <= 0:
             parts.append("better than every other setting")
         else:
@@ -342,16 +343,22 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
                        "best on average.")
         else:
             env = _describe(disagreement["environment"])
+            there = (f"{r} is the best there" if disagreement["robust_loss"] <= 1e-12 else
+                     f"{r}: {_loss_words(disagreement['robust_loss'], is_log)} worse there")
             out.append(
                 f"Across {', '.join(main.across)}, {r} is the safest choice (never more than "
                 f"{wr} worse than the best of an environment), while {a} is best on average "
                 f"but {_loss_words(disagreement['on_average_loss'], is_log)} worse than the "
-                f"best where {env} (the safe choice: "
-                f"{_loss_words(disagreement['robust_loss'], is_log)}).")
+                f"best where {env} ({there}).")
     if also and pareto_idx is not None:
-        out.append(f"Trading {main.response} against {', '.join(also)}: {len(pareto_idx)} of "
-                   f"{len(settings)} settings are on the front; the others are beaten on every "
-                   f"response at {conf} confidence.")
+        if len(pareto_idx) == len(settings):
+            out.append(f"Trading {main.response} against {', '.join(also)}: all "
+                       f"{len(settings)} settings are on the front; none is beaten on every "
+                       f"response at {conf} confidence.")
+        else:
+            out.append(f"Trading {main.response} against {', '.join(also)}: {len(pareto_idx)} "
+                       f"of {len(settings)} settings are on the front; the others are beaten on "
+                       f"every response at {conf} confidence.")
     return out
 
 
