@@ -23,6 +23,8 @@ from benchharness.errors import BenchharnessError
 COMMANDS: list[tuple[str, str]] = [
     ("plan", "plan"),
     ("run", "run"),
+    ("history", "history"),
+    ("compare", "compare"),
 ]
 
 
