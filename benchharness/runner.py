@@ -138,12 +138,32 @@ def default_executor():
 
 def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAULT_BASE,
                    seed: int | None = None, progress: Progress | None = None,
-                   plan=None) -> RunOutcome:
-    """Plan and execute ``exp`` into a new results folder."""
+                   plan=None, scheduler: str | None = None,
+                   same_host_ok: bool = False) -> RunOutcome:
+    """Plan and execute ``exp`` into a new results folder.
+
+    ``executor``: any `Executor` (default: local processes through the
+    launcher). ``scheduler``: address of a Dask scheduler to spread the runs
+    over its workers instead (blocks are assigned to hosts whole).
+    """
+    import dataclasses
+
     from benchharness.design import build_plan
     from benchharness.host import collect_facts
 
-    plan = plan or build_plan(exp, seed=seed)
+    if isinstance(exp, (str, os.PathLike)):
+        from benchharness.experiment import load_experiment
+
+        exp = load_experiment(exp)
+    notes = []
+    if scheduler and plan is None and exp.order == "randomized":
+        # Hosts receive complete blocks, so each replicate becomes a block.
+        exp_for_plan = dataclasses.replace(exp, order="blocked")
+        notes.append("on a cluster each replicate is run as a complete block on one host "
+                     "(order: blocked), so that hosts are blocks of the design")
+    else:
+        exp_for_plan = exp
+    plan = plan or build_plan(exp_for_plan, seed=seed)
     folder = J.new_folder(Path(base), exp.name, out)
     lock = J.FolderLock(folder)
     try:
@@ -159,6 +179,7 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
             "benchharness_version": _version(),
             "seed": plan.seed,
             "seed_drawn": exp.seed is None and seed is None,
+            "order": plan.order,
             "experiment_path": str(exp.path),
             "experiment_dir": exp_dir,
             "cwd": os.getcwd(),
@@ -167,17 +188,28 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
             "state": "running",
             "runs_planned": len(plan.runs),
         }
+        if scheduler:
+            session["scheduler"] = scheduler
         J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
         J.fsync_dir(folder)
         planned = [{"run": r.run, "position": r.position, "block": r.block,
                     "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
                    for r in plan.runs]
-        return _execute(folder, exp, planned, set(), session, executor, progress, facts)
+        if scheduler:
+            from benchharness.execute.cluster import execute_on_cluster
+
+            outcome = execute_on_cluster(folder, exp, planned, set(), session, progress, facts,
+                                         scheduler, same_host_ok=same_host_ok)
+        else:
+            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts)
+        outcome.notes[:0] = notes
+        return outcome
     finally:
         lock.release()
 
 
-def resume_experiment(folder, executor=None, progress: Progress | None = None) -> RunOutcome:
+def resume_experiment(folder, executor=None, progress: Progress | None = None,
+                      scheduler: str | None = None, same_host_ok: bool = False) -> RunOutcome:
     """Continue an interrupted results folder; never records a run twice."""
     from benchharness.experiment import load_experiment
 
@@ -204,8 +236,16 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None) -
             facts = json.loads((folder / "host.json").read_text())
         except (OSError, json.JSONDecodeError):
             facts = {}
-        outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
-                           prior=records)
+        if scheduler:
+            from benchharness.execute.cluster import execute_on_cluster
+
+            outcome = execute_on_cluster(folder, exp, planned, done, session, progress,
+                                         facts.get("coordinator", facts), scheduler,
+                                         same_host_ok=same_host_ok, prior=records,
+                                         known_hosts=facts.get("hosts"))
+        else:
+            outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
+                               prior=records)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -233,12 +273,13 @@ class _CellCache:
         c = self.cache.get(key)
         if c is None:
             exp = self.exp
+            env_over = exp.render_env(levels)
             env = dict(self.base_env)
-            env.update(exp.render_env(levels))
+            env.update(env_over)
             wd = exp.render_workdir(levels)
             cwd = self.cwd if wd is None else str(Path(self.exp_dir, wd))
             argv, shell = exp.render_command(exp.command, levels)
-            c = {"argv": argv, "shell": shell, "env": env, "cwd": cwd,
+            c = {"argv": argv, "shell": shell, "env": env, "env_over": env_over, "cwd": cwd,
                  "label": " ".join(f"{k}={v}" for k, v in levels.items())}
             for step in ("build", "reset", "teardown"):
                 t = getattr(exp, step)
@@ -366,16 +407,22 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 executor.close()
             except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
                 pass
+    return finalize(folder, exp, session, facts, counts, len(planned), interrupted)
+
+
+def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
+             interrupted: bool, host_json: dict | None = None) -> RunOutcome:
+    """Export runs.csv, record the end state in host.json and session.json."""
     records = J.read_journal(folder / "runs.jsonl")
     J.export_runs_csv(folder, exp.factor_names, records)
     from benchharness.host import load_average
 
     facts["load_average_end"] = load_average()
-    J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+    J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
-    return RunOutcome(folder=folder, seed=session["seed"], planned=len(planned), counts=counts,
+    return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
                       interrupted=interrupted)
 
 
