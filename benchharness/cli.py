@@ -23,6 +23,7 @@ from benchharness.errors import BenchharnessError
 COMMANDS: list[tuple[str, str]] = [
     ("plan", "plan"),
     ("run", "run"),
+    ("analyze", "analyze"),
     ("report", "report"),
 ]
 
