@@ -1,0 +1,38 @@
+"""What `benchharness run` does after the last run: analysis.json and the reports.
+
+Each step is skipped with a note (never a crash) when the data cannot support it,
+e.g. a single cell, or no successful runs; the results folder stays intact.
+"""
+
+from __future__ import annotations
+
+import sys
+
+
+def analyse_and_report(res) -> None:
+    from benchharness.errors import BenchharnessError
+
+    try:
+        from benchharness import analysis as _a  # noqa: F401
+    except ImportError:
+        return
+    try:
+        from benchharness.analysis import analyze_results_folder, format_analysis, \
+            write_analysis_json
+
+        an = analyze_results_folder(res.path)
+        write_analysis_json(an, res.path / "analysis.json")
+        print()
+        print(format_analysis(an))
+    except BenchharnessError as exc:
+        print(f"note: no analysis: {exc}", file=sys.stderr)
+        return
+    try:
+        from benchharness.report import write_reports
+    except ImportError:
+        return
+    try:
+        html, md = write_reports(res.path)
+        print(f"\nreports: {html}\n         {md}")
+    except BenchharnessError as exc:
+        print(f"note: no report: {exc}", file=sys.stderr)

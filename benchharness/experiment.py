@@ -1,0 +1,460 @@
+"""The experiment file: loading and validating it into an `Experiment`.
+
+An experiment file is YAML naming a command, the factors and their levels, how
+many replicates to run and how. It is *composed* into a node tree rather than
+loaded, so that (a) every error points at ``FILE:LINE:COL`` with what is wrong
+and what would be right, (b) level labels are the scalar's source text (``off``,
+``1.10`` and ``010`` stay exactly those strings; ``1`` and ``1.0`` are different
+levels), and (c) no YAML tag can construct an object.
+
+Sections that belong to later capabilities (``design``, ``gate``, ``choose``,
+``metrics`` ...) are kept as raw nodes in `Experiment.sections`; each capability
+validates its own section with the helpers in `benchharness.yamlnodes`.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import shlex
+import warnings as _warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Mapping
+
+import yaml
+
+from benchharness import templating
+from benchharness.errors import ExperimentError
+from benchharness.yamlnodes import (
+    as_bool, as_duration_s, as_int, check_tags, is_null, kind, mapping_items, node_error,
+    scalar_text, sequence_items, suggest,
+)
+
+#: Columns of runs.csv (and later additions) that a factor may not be named.
+RESERVED_COLUMNS = frozenset({
+    "run", "position", "block", "replicate", "status", "exit_code", "wall_s", "user_s",
+    "sys_s", "max_rss_kib", "minor_faults", "major_faults", "voluntary_switches",
+    "involuntary_switches", "in_blocks", "out_blocks", "started_at", "message", "host",
+    "worker", "host_position", "warmup", "levels", "metrics", "load_1m", "cpu_mhz",
+    "pad_env_bytes", "steady_s", "session", "cell", "pgid", "pid",
+})
+
+#: Keys of the core experiment file.
+CORE_KEYS = ("experiment", "about", "command", "shell", "factors", "replicates", "warmup",
+             "order", "seed", "timeout", "env", "build", "reset", "teardown", "workdir")
+
+#: Sections validated by later capabilities; kept as raw YAML nodes.
+SECTION_KEYS = ("design", "gate", "choose", "compare", "metrics", "expect", "samples", "pin",
+                "nice", "clean_env", "pad_env", "aslr", "cold_cache", "perf", "host_check")
+
+ORDERS = ("randomized", "blocked", "listed")
+
+_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
+
+
+@dataclass(frozen=True)
+class Level:
+    """One level of a factor: its label (source text) and its named values."""
+
+    label: str
+    values: Mapping[str, str] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Factor:
+    name: str
+    levels: tuple[Level, ...]
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        return tuple(lv.label for lv in self.levels)
+
+
+@dataclass(frozen=True)
+class CommandTemplate:
+    """A templated command. ``shell`` False: ``parts`` are argv templates (one
+    argument each). ``shell`` True: ``parts`` are words joined by spaces and given
+    to ``/bin/sh -c`` with every substituted value shell-quoted."""
+
+    parts: tuple[str, ...]
+    shell: bool = False
+
+    def render(self, lookup) -> tuple[tuple[str, ...] | None, str | None]:
+        """``(argv, None)`` or ``(None, shell_command)`` for one cell."""
+        if self.shell:
+            return None, " ".join(templating.render(p, lookup, quote=True) for p in self.parts)
+        return tuple(templating.render(p, lookup) for p in self.parts), None
+
+    def text(self) -> str:
+        return " ".join(self.parts) if self.shell else shlex.join(self.parts)
+
+
+@dataclass(frozen=True)
+class Experiment:
+    """A validated experiment file (plain data; no I/O after loading)."""
+
+    name: str
+    about: str
+    command: CommandTemplate
+    factors: tuple[Factor, ...]
+    replicates: int = 1
+    warmup: int = 0
+    order: str = "randomized"
+    seed: int | None = None
+    timeout_s: float | None = None
+    shell: bool = False
+    env: Mapping[str, str] = field(default_factory=dict)
+    build: CommandTemplate | None = None
+    reset: CommandTemplate | None = None
+    teardown: CommandTemplate | None = None
+    workdir: str | None = None
+    path: str = "<string>"
+    source_text: str = ""
+    sections: Mapping[str, yaml.Node] = field(default_factory=dict)
+    warnings: tuple[str, ...] = ()
+
+    # -- convenience -------------------------------------------------------
+    @property
+    def factor_names(self) -> tuple[str, ...]:
+        return tuple(f.name for f in self.factors)
+
+    def factor(self, name: str) -> Factor:
+        for f in self.factors:
+            if f.name == name:
+                return f
+        raise KeyError(name)
+
+    def levels_of(self, name: str) -> tuple[str, ...]:
+        return self.factor(name).labels
+
+    @property
+    def cells(self) -> int:
+        n = 1
+        for f in self.factors:
+            n *= len(f.levels)
+        return n
+
+    def lookup(self, levels: Mapping[str, str]):
+        """Template lookup for a cell given as factor → label."""
+        values = {}
+        for f in self.factors:
+            label = levels[f.name]
+            for lv in f.levels:
+                if lv.label == label:
+                    values[f.name] = lv.values
+                    break
+        return templating.level_lookup(levels, values)
+
+    def render_command(self, template: CommandTemplate, levels: Mapping[str, str]):
+        return template.render(self.lookup(levels))
+
+    def render_env(self, levels: Mapping[str, str]) -> dict[str, str]:
+        lookup = self.lookup(levels)
+        return {k: templating.render(v, lookup) for k, v in self.env.items()}
+
+    def render_workdir(self, levels: Mapping[str, str]) -> str | None:
+        if self.workdir is None:
+            return None
+        return templating.render(self.workdir, self.lookup(levels))
+
+    @classmethod
+    def from_text(cls, text: str, path: str = "<string>") -> "Experiment":
+        return parse_experiment(text, path)
+
+
+# ---------------------------------------------------------------------------
+
+def load_experiment(path: str | os.PathLike) -> Experiment:
+    """Read and validate an experiment file; raises `ExperimentError` with a located message."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ExperimentError("no such experiment file; give the path of a YAML experiment "
+                              "file", path=str(path)) from None
+    except IsADirectoryError:
+        raise ExperimentError("is a folder, not an experiment file", path=str(path)) from None
+    except UnicodeDecodeError as exc:
+        raise ExperimentError(f"is not UTF-8 text ({exc.reason})", path=str(path)) from None
+    except OSError as exc:
+        raise ExperimentError(f"cannot be read ({exc.strerror})", path=str(path)) from None
+    return parse_experiment(text, str(path))
+
+
+def _compose(text: str, path: str) -> yaml.Node:
+    try:
+        nodes = list(yaml.compose_all(text, Loader=_Loader(path)))
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        what = exc.problem or exc.context or "malformed YAML"
+        raise ExperimentError(f"YAML syntax error: {what}; check indentation, colons and "
+                              "quotes here", path=path,
+                              line=mark.line + 1 if mark else None,
+                              col=mark.column + 1 if mark else None) from None
+    except yaml.YAMLError as exc:
+        raise ExperimentError(f"YAML syntax error: {exc}", path=path) from None
+    if not nodes or nodes[0] is None:
+        raise ExperimentError("the experiment file is empty; it needs at least 'experiment', "
+                              "'command' and 'factors'", path=path, line=1, col=1)
+    if len(nodes) > 1:
+        raise node_error(nodes[1], "the file holds several YAML documents; keep one "
+                                   "experiment per file")
+    return nodes[0]
+
+
+def _Loader(path: str):
+    """A SafeLoader factory that names the file in marks."""
+
+    def make(stream):
+        loader = yaml.SafeLoader(stream)
+        loader.name = path
+        return loader
+
+    return make
+
+
+def parse_experiment(text: str, path: str = "<string>") -> Experiment:
+    root = _compose(text, path)
+    check_tags(root)
+    if not isinstance(root, yaml.MappingNode):
+        raise node_error(root, f"the experiment file must be a mapping of keys (experiment:, "
+                               f"command:, factors:, ...), not {kind(root)}", path)
+    known = set(CORE_KEYS) | set(SECTION_KEYS)
+    nodes: dict[str, yaml.Node] = {}
+    keynodes: dict[str, yaml.Node] = {}
+    for key, knode, vnode in mapping_items(root, "the experiment file"):
+        if key not in known:
+            raise node_error(knode, f"unknown key {key!r}; {suggest(key, known)}")
+        nodes[key] = vnode
+        keynodes[key] = knode
+    for req in ("experiment", "command", "factors"):
+        if req not in nodes:
+            raise node_error(root, f"missing the key {req!r}; "
+                                   + {"experiment": "name the experiment, e.g. experiment: "
+                                                    "archive-codecs",
+                                      "command": "give the command to benchmark, e.g. "
+                                                 "command: [./app, --threads, \"{threads}\"]",
+                                      "factors": "list the factors and their levels, e.g. "
+                                                 "factors: {threads: [1, 2, 4]}"}[req])
+
+    name = _parse_name(nodes["experiment"])
+    about = "" if is_null(nodes.get("about")) else scalar_text(nodes["about"], "'about'")
+    shell = as_bool(nodes["shell"], "'shell'") if "shell" in nodes else False
+    factors = _parse_factors(nodes["factors"])
+    factor_map = {f.name: f for f in factors}
+
+    command = _parse_command(nodes["command"], "'command'", shell)
+
+    sections: dict[str, yaml.Node] = {k: nodes[k] for k in SECTION_KEYS if k in nodes}
+
+    rep_node = nodes.get("replicates")
+    if rep_node is None:
+        replicates = 1
+    elif isinstance(rep_node, yaml.MappingNode):
+        # Adaptive replication: validated by the design capability; start from `min`.
+        sections["replicates"] = rep_node
+        replicates = 3
+        for key, _k, v in mapping_items(rep_node, "'replicates'"):
+            if key == "min":
+                replicates = as_int(v, "'replicates: min'", minimum=1)
+    else:
+        replicates = as_int(rep_node, "'replicates'", minimum=1)
+
+    warmup = as_int(nodes["warmup"], "'warmup'", minimum=0) if "warmup" in nodes else 0
+    order = "randomized"
+    if "order" in nodes:
+        order = scalar_text(nodes["order"], "'order'")
+        if order not in ORDERS:
+            raise node_error(nodes["order"], f"'order' must be one of {', '.join(ORDERS)}, "
+                                             f"not {order!r}")
+    seed = None
+    if "seed" in nodes and not is_null(nodes["seed"]):
+        seed = as_int(nodes["seed"], "'seed'", minimum=0)
+    timeout_s = None
+    if "timeout" in nodes and not is_null(nodes["timeout"]):
+        timeout_s = as_duration_s(nodes["timeout"], "'timeout'")
+
+    env: dict[str, str] = {}
+    if "env" in nodes and not is_null(nodes["env"]):
+        for key, knode, vnode in mapping_items(nodes["env"], "'env'"):
+            if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", key):
+                raise node_error(knode, f"environment variable name {key!r} is not valid; use "
+                                        "letters, digits and underscores")
+            if isinstance(vnode, yaml.ScalarNode) and not is_null(vnode):
+                env[key] = vnode.value
+            else:
+                raise node_error(vnode, f"'env: {key}' must be a single value, not {kind(vnode)}")
+
+    steps = {}
+    for step in ("build", "reset", "teardown"):
+        if step in nodes and not is_null(nodes[step]):
+            steps[step] = _parse_command(nodes[step], f"'{step}'", shell)
+    workdir = None
+    if "workdir" in nodes and not is_null(nodes["workdir"]):
+        workdir = scalar_text(nodes["workdir"], "'workdir'")
+
+    # -- placeholders: every one must name a factor (and a named value it has) --
+    used: set[str] = set()
+    templated: list[tuple[str, yaml.Node]] = []
+    templated += _template_nodes(nodes["command"])
+    for step in steps:
+        templated += _template_nodes(nodes[step])
+    if "env" in nodes and not is_null(nodes["env"]):
+        templated += [(v.value, v) for _k, v in nodes["env"].value]
+    if workdir is not None:
+        templated.append((workdir, nodes["workdir"]))
+    for key in ("pin", "nice"):  # metrics/expect hold regexes; their owners check them
+        if key in sections:
+            templated += _template_nodes(sections[key])
+    for text_, node in templated:
+        try:
+            phs = templating.placeholders(text_)
+        except ValueError as exc:
+            raise node_error(node, str(exc)) from None
+        for ph in phs:
+            f = factor_map.get(ph.factor)
+            if f is None:
+                hint = (suggest(ph.factor, factor_map) if factor_map else "")
+                raise node_error(node, f"placeholder {ph.text} names no factor; "
+                                       + (hint.replace("known keys", "factors are")
+                                          if hint else "declare it under 'factors'"))
+            used.add(f.name)
+            if ph.name is not None:
+                for lv in f.levels:
+                    if ph.name not in lv.values:
+                        have = ", ".join(sorted(lv.values)) or "none"
+                        raise node_error(node, f"placeholder {ph.text}: level {lv.label!r} of "
+                                               f"factor {f.name!r} has no value named "
+                                               f"{ph.name!r} (it has: {have}); give every "
+                                               "level that value")
+
+    found_warnings = []
+    for f in factors:
+        if f.name not in used:
+            found_warnings.append(
+                f"{path}: factor {f.name!r} is used in no command, env or step; its levels "
+                f"will not change what runs (write {{{f.name}}} where it belongs)")
+
+    return Experiment(
+        name=name, about=about, command=command, factors=factors, replicates=replicates,
+        warmup=warmup, order=order, seed=seed, timeout_s=timeout_s, shell=shell, env=env,
+        build=steps.get("build"), reset=steps.get("reset"), teardown=steps.get("teardown"),
+        workdir=workdir, path=path, source_text=text, sections=sections,
+        warnings=tuple(found_warnings),
+    )
+
+
+def _parse_name(node: yaml.Node) -> str:
+    if is_null(node):
+        raise node_error(node, "'experiment' is empty; give the experiment a name such as "
+                               "archive-codecs")
+    name = scalar_text(node, "'experiment'")
+    if not _NAME_RE.match(name) or len(name) > 100:
+        raise node_error(node, f"experiment name {name!r} cannot name a results folder; use "
+                               "letters, digits, '-', '_' and '.' (e.g. archive-codecs)")
+    return name
+
+
+def _parse_factors(node: yaml.Node) -> tuple[Factor, ...]:
+    if is_null(node):
+        raise node_error(node, "'factors' is empty; list at least one factor with its levels, "
+                               "e.g. threads: [1, 2, 4]")
+    items = mapping_items(node, "'factors'")
+    if not items:
+        raise node_error(node, "'factors' is empty; list at least one factor with its levels")
+    factors = []
+    for fname, knode, vnode in items:
+        if fname in RESERVED_COLUMNS:
+            raise node_error(knode, f"factor name {fname!r} is a column of runs.csv; rename "
+                                    f"the factor (e.g. {fname}_level)")
+        if not fname.strip() or any(c in fname for c in "{}.,=") or fname != fname.strip():
+            raise node_error(knode, f"factor name {fname!r} cannot be used in templates; use a "
+                                    "name without braces, dots, commas, '=' or edge spaces")
+        levels: list[Level] = []
+        if isinstance(vnode, yaml.SequenceNode):
+            for lnode in vnode.value:
+                if not isinstance(lnode, yaml.ScalarNode) or is_null(lnode):
+                    raise node_error(lnode, f"a level of factor {fname!r} must be a single "
+                                            f"value, not {kind(lnode)}; for named values "
+                                            "write the levels as a mapping")
+                levels.append(Level(lnode.value))
+            lnodes = vnode.value
+        elif isinstance(vnode, yaml.MappingNode):
+            lnodes = []
+            for label, lknode, lvnode in mapping_items(vnode, f"factor {fname!r}"):
+                values: dict[str, str] = {}
+                if not is_null(lvnode):
+                    for vname, vknode, vvnode in mapping_items(
+                            lvnode, f"level {label!r} of factor {fname!r}"):
+                        if not isinstance(vvnode, yaml.ScalarNode) or is_null(vvnode):
+                            raise node_error(vvnode, f"value {vname!r} of level {label!r} must "
+                                                     f"be a single value, not {kind(vvnode)}")
+                        values[vname] = vvnode.value
+                levels.append(Level(label, values))
+                lnodes.append(lknode)
+        elif is_null(vnode):
+            raise node_error(knode, f"factor {fname!r} has no levels; list at least one, "
+                                    f"e.g. {fname}: [a, b]")
+        else:
+            raise node_error(vnode, f"factor {fname!r} must list its levels, e.g. "
+                                    f"{fname}: [a, b], not {kind(vnode)}")
+        if not levels:
+            raise node_error(vnode, f"factor {fname!r} has no levels; list at least one")
+        seen: dict[str, yaml.Node] = {}
+        for lv, ln in zip(levels, lnodes):
+            if lv.label in seen:
+                raise node_error(ln, f"factor {fname!r} lists the level {lv.label!r} twice "
+                                     f"(also on line {seen[lv.label].start_mark.line + 1}); "
+                                     "each level once")
+            seen[lv.label] = ln
+        factors.append(Factor(fname, tuple(levels)))
+    return tuple(factors)
+
+
+def _parse_command(node: yaml.Node, what: str, shell: bool) -> CommandTemplate:
+    if is_null(node):
+        raise node_error(node, f"{what} is empty; give a command, e.g. [./app, --flag]")
+    if isinstance(node, yaml.SequenceNode):
+        parts = []
+        for item in node.value:
+            if not isinstance(item, yaml.ScalarNode) or is_null(item):
+                raise node_error(item, f"each argument of {what} must be a single value, not "
+                                       f"{kind(item)}")
+            parts.append(item.value)
+        if not parts or not parts[0].strip():
+            raise node_error(node, f"{what} is empty; give at least the program to run")
+        return CommandTemplate(tuple(parts), shell=shell)
+    text = scalar_text(node, what)
+    if not text.strip():
+        raise node_error(node, f"{what} is empty; give the command to run")
+    if shell:
+        return CommandTemplate((text,), shell=True)
+    try:
+        parts = shlex.split(text)
+    except ValueError as exc:
+        raise node_error(node, f"{what} cannot be split into arguments ({exc}); check the "
+                               "quotes") from None
+    if not parts:
+        raise node_error(node, f"{what} is empty; give the command to run")
+    return CommandTemplate(tuple(parts), shell=False)
+
+
+def _template_nodes(node: yaml.Node) -> list[tuple[str, yaml.Node]]:
+    out = []
+    stack = [node]
+    while stack:
+        n = stack.pop()
+        if isinstance(n, yaml.ScalarNode):
+            if not is_null(n):
+                out.append((n.value, n))
+        elif isinstance(n, yaml.SequenceNode):
+            stack.extend(n.value)
+        elif isinstance(n, yaml.MappingNode):
+            stack.extend(v for _k, v in n.value)
+    return out
+
+
+def warn_unused(exp: Experiment) -> None:  # pragma: no cover - convenience
+    for w in exp.warnings:
+        _warnings.warn(w)

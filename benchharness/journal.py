@@ -1,0 +1,431 @@
+"""The results folder: frozen inputs, the append-only journal, resume, tidy export.
+
+Layout (the contract in DESIGN.md; outside checks read it)::
+
+    results/<experiment>-<UTC timestamp>/
+        experiment.yaml   the experiment file as run (frozen copy)
+        plan.csv          every planned run in execution order
+        runs.jsonl        the journal: one JSON object per finished run
+        runs.csv          tidy export of the journal, one row per run
+        host.json         machine facts at start (and load at end)
+        session.json      how the harness ran it: seed, workdir, version, state
+        inflight          the run being executed now (pid, process group) for resume
+
+Crash safety. Each finished run is appended to ``runs.jsonl`` with a single
+unbuffered ``write`` before the next run starts, so a crash of the harness
+loses at most the run in flight. A background thread fsyncs the journal at
+least once a second while it has unsynced data (group commit: an fsync per run
+would cost about a third of a ``/bin/true`` run), and the journal is fsynced at
+the end; the folder itself is fsynced when created, so a power cut loses at
+most the last second. A torn last line (a crash mid-write) is set aside in
+``runs.jsonl.torn`` on resume, never silently dropped. While a harness writes a
+folder it holds an exclusive ``fcntl.flock`` on ``.lock``; a second ``run`` or
+``--resume`` on it is refused.
+
+Nothing already measured is overwritten: a new run never writes into an
+existing non-empty folder, and resume only appends.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import fcntl
+import io
+import json
+import os
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterable, Mapping, Sequence
+
+from benchharness.errors import ResultsFolderError
+from benchharness.execute.base import USAGE_FIELDS
+
+#: Fixed leading columns of runs.csv, before the factor columns.
+LEAD_COLUMNS = ("run", "position", "block", "replicate")
+#: Fixed columns after the factors (contract order).
+CORE_COLUMNS = ("status", "exit_code", *USAGE_FIELDS, "started_at", "message")
+#: Columns later capabilities add, in the order they appear when present.
+LATER_COLUMNS = ("host", "worker", "host_position", "load_1m", "cpu_mhz", "pad_env_bytes",
+                 "aslr", "steady_s", "steady_state")
+
+FILES = ("experiment.yaml", "plan.csv", "runs.jsonl", "runs.csv", "host.json", "session.json")
+
+
+def utc_stamp(now: _dt.datetime | None = None) -> str:
+    now = now or _dt.datetime.now(_dt.timezone.utc)
+    return now.strftime("%Y%m%dT%H%M%SZ")
+
+
+def utc_iso(ts: float | None = None) -> str:
+    """ISO 8601 UTC with microseconds (``2026-12-01T22:05:12.123456+00:00``)."""
+    t = _dt.datetime.fromtimestamp(time.time() if ts is None else ts, _dt.timezone.utc)
+    return t.isoformat(timespec="microseconds")
+
+
+def fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def write_atomic(path: Path, data: bytes | str) -> None:
+    """Write a whole file via a temporary sibling and rename (never a half file)."""
+    tmp = path.with_name(path.name + ".tmp")
+    with open(tmp, "wb") as fh:
+        fh.write(data.encode("utf-8") if isinstance(data, str) else data)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def new_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
+    """Create the results folder (never reusing a non-empty one) and fsync it."""
+    if out is not None:
+        folder = Path(out)
+        if folder.exists():
+            if not folder.is_dir():
+                raise ResultsFolderError(f"{folder}: exists and is not a folder; choose another "
+                                         "--out")
+            if any(folder.iterdir()):
+                raise ResultsFolderError(
+                    f"{folder}: folder is not empty; results are never written into an existing "
+                    f"folder (choose a new --out, or continue it with "
+                    f"`benchharness run --resume {folder}`)")
+        folder.mkdir(parents=True, exist_ok=True)
+    else:
+        base.mkdir(parents=True, exist_ok=True)
+        stamp = utc_stamp()
+        folder = base / f"{name}-{stamp}"
+        n = 1
+        while True:
+            try:
+                folder.mkdir()
+                break
+            except FileExistsError:
+                n += 1
+                folder = base / f"{name}-{stamp}-{n}"
+    fsync_dir(folder)
+    fsync_dir(folder.parent)
+    return folder
+
+
+class FolderLock:
+    """Exclusive lock on a results folder while a harness writes it."""
+
+    def __init__(self, folder: Path):
+        self.path = folder / ".lock"
+        self.fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            os.close(self.fd)
+            raise ResultsFolderError(
+                f"{folder}: another benchharness is writing this results folder right now; "
+                "wait for it to finish (or stop it) before running or resuming here") from None
+        os.ftruncate(self.fd, 0)
+        os.write(self.fd, f"{os.getpid()}\n".encode())
+
+    def release(self) -> None:
+        if self.fd is not None:
+            try:
+                fcntl.flock(self.fd, fcntl.LOCK_UN)
+            finally:
+                os.close(self.fd)
+                self.fd = None
+
+
+class Journal:
+    """Append-only ``runs.jsonl`` with group-commit fsync from a background thread."""
+
+    def __init__(self, folder: Path, sync_interval_s: float = 1.0):
+        self.path = folder / "runs.jsonl"
+        self.fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        self._dirty = False
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._interval = sync_interval_s
+        self._thread = threading.Thread(target=self._syncer, name="journal-fsync", daemon=True)
+        self._thread.start()
+        self.inflight_fd = os.open(folder / "inflight", os.O_RDWR | os.O_CREAT, 0o644)
+
+    def append(self, record: Mapping) -> None:
+        line = (json.dumps(record, separators=(",", ":"), allow_nan=False,
+                           default=_json_default) + "\n").encode("utf-8")
+        # One write(2) of the whole line; O_APPEND makes it land at the end.
+        n = os.write(self.fd, line)
+        while n < len(line):  # pragma: no cover - only on short writes (full disk, signals)
+            n += os.write(self.fd, line[n:])
+        self._dirty = True
+
+    def mark_inflight(self, run: int, pid: int, pgid: int) -> None:
+        """Record the run now executing (overwritten in place; read by --resume)."""
+        data = json.dumps({"run": run, "pid": pid, "pgid": pgid, "boot": _boot_id()}).encode()
+        os.pwrite(self.inflight_fd, data.ljust(160), 0)
+
+    def clear_inflight(self) -> None:
+        os.pwrite(self.inflight_fd, b" " * 160, 0)
+
+    def _syncer(self) -> None:
+        while not self._stop.wait(self._interval):
+            self.sync()
+
+    def sync(self) -> None:
+        if self._dirty:
+            with self._lock:
+                self._dirty = False
+                try:
+                    os.fsync(self.fd)
+                except OSError:  # pragma: no cover
+                    pass
+
+    def close(self) -> None:
+        self._stop.set()
+        self._thread.join(timeout=5)
+        self._dirty = True
+        self.sync()
+        os.close(self.fd)
+        os.close(self.inflight_fd)
+
+
+def _json_default(obj):
+    import numpy as np
+
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, bytes):
+        return obj.decode("utf-8", "replace")
+    raise TypeError(f"cannot serialise {type(obj).__name__}")
+
+
+_BOOT_ID = None
+
+
+def _boot_id() -> str:
+    global _BOOT_ID
+    if _BOOT_ID is None:
+        try:
+            _BOOT_ID = Path("/proc/sys/kernel/random/boot_id").read_text().strip()
+        except OSError:
+            _BOOT_ID = ""
+    return _BOOT_ID
+
+
+def read_inflight(folder: Path) -> dict | None:
+    try:
+        text = (folder / "inflight").read_text().strip()
+    except OSError:
+        return None
+    if not text:
+        return None
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError:
+        return None
+
+
+def kill_leftover(folder: Path) -> str | None:
+    """Kill the process group of a run a dead harness left running; returns what was done."""
+    import signal
+
+    info = read_inflight(folder)
+    if not info or info.get("boot") != _boot_id():
+        return None
+    pgid = int(info.get("pgid") or 0)
+    if pgid <= 1:
+        return None
+    try:
+        os.killpg(pgid, signal.SIGKILL)
+    except ProcessLookupError:
+        return None
+    except PermissionError:
+        return f"could not stop process group {pgid} left by the earlier harness (not ours)"
+    return f"stopped process group {pgid} left running by the earlier harness (run {info.get('run')})"
+
+
+def read_journal(path: Path, repair: bool = False) -> list[dict]:
+    """All complete records of a journal. A torn last line is ignored, or with
+    ``repair`` moved to ``runs.jsonl.torn`` and cut off so appending can resume."""
+    if not path.exists():
+        return []
+    data = path.read_bytes()
+    records = []
+    good_end = 0
+    lines = data.split(b"\n")
+    offset = 0
+    for i, line in enumerate(lines):
+        last = i == len(lines) - 1
+        if line.strip():
+            try:
+                if last:  # no newline after it: a write that did not finish
+                    raise ValueError
+                records.append(json.loads(line))
+            except ValueError:
+                rest = b"\n".join(lines[i + 1:]).strip()
+                if rest:
+                    raise ResultsFolderError(
+                        f"{path}: damaged journal line at byte {offset} with complete runs "
+                        "after it; it needs a look by hand") from None
+                break
+        offset += len(line) + 1
+        if not last:
+            good_end = offset
+    if good_end < len(data) and data[good_end:].strip():
+        if repair:
+            torn = path.with_name(path.name + ".torn")
+            with open(torn, "ab") as fh:
+                fh.write(data[good_end:] + b"\n")
+            with open(path, "r+b") as fh:
+                fh.truncate(good_end)
+                os.fsync(fh.fileno())
+    return records
+
+
+def runs_columns(factors: Sequence[str], records: Iterable[Mapping]) -> list[str]:
+    extra_present = []
+    metric_names: list[str] = []
+    for rec in records:
+        for c in LATER_COLUMNS:
+            if c in rec and c not in extra_present:
+                extra_present.append(c)
+        for m in rec.get("metrics") or {}:
+            if m not in metric_names:
+                metric_names.append(m)
+    extras = [c for c in LATER_COLUMNS if c in extra_present]
+    return [*LEAD_COLUMNS, *factors, *CORE_COLUMNS, *extras, *metric_names]
+
+
+def flatten(rec: Mapping, factors: Sequence[str]) -> dict:
+    row = {k: rec.get(k) for k in LEAD_COLUMNS}
+    levels = rec.get("levels") or {}
+    for f in factors:
+        row[f] = levels.get(f)
+    for k in CORE_COLUMNS:
+        row[k] = rec.get(k)
+    for k in LATER_COLUMNS:
+        if k in rec:
+            row[k] = rec[k]
+    for m, v in (rec.get("metrics") or {}).items():
+        row[m] = v
+    return row
+
+
+def _csv_value(v) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, float):
+        return repr(v)
+    return str(v)
+
+
+def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapping]) -> Path:
+    """Write ``runs.csv`` (one row per journal record, sorted by position) atomically."""
+    records = sorted(records, key=lambda r: (r.get("position", 0), r.get("run", 0)))
+    cols = runs_columns(factors, records)
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(cols)
+    for rec in records:
+        row = flatten(rec, factors)
+        w.writerow([_csv_value(row.get(c)) for c in cols])
+    path = folder / "runs.csv"
+    write_atomic(path, buf.getvalue())
+    return path
+
+
+def write_plan_csv(folder: Path, factors: Sequence[str], rows: Sequence[Mapping],
+                   append: bool = False) -> None:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    cols = ["run", "position", "block", "replicate", "warmup", *factors]
+    if not append:
+        w.writerow(cols)
+    for row in rows:
+        w.writerow([_csv_value(row[c]) for c in cols])
+    path = folder / "plan.csv"
+    if append:
+        with open(path, "a", encoding="utf-8") as fh:
+            fh.write(buf.getvalue())
+            fh.flush()
+            os.fsync(fh.fileno())
+    else:
+        write_atomic(path, buf.getvalue())
+
+
+def read_plan_csv(folder: Path) -> list[dict]:
+    path = folder / "plan.csv"
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            rows = list(csv.DictReader(fh))
+    except FileNotFoundError:
+        raise ResultsFolderError(f"{folder}: no plan.csv; this is not a results folder "
+                                 "benchharness can resume") from None
+    out = []
+    for r in rows:
+        out.append({"run": int(r.pop("run")), "position": int(r.pop("position")),
+                    "block": int(r.pop("block")), "replicate": int(r.pop("replicate")),
+                    "warmup": r.pop("warmup") == "true", "levels": r})
+    return out
+
+
+# ---------------------------------------------------------------------------
+# Reading a finished (or interrupted) results folder.
+
+@dataclass(frozen=True)
+class Results:
+    path: Path
+    experiment: object  # benchharness.experiment.Experiment
+    runs: object        # pandas.DataFrame, as runs.csv
+    host: dict
+    plan: object        # pandas.DataFrame of plan.csv
+    session: dict
+
+
+def is_results_folder(path: str | os.PathLike) -> bool:
+    p = Path(path)
+    return p.is_dir() and (p / "experiment.yaml").exists() and (
+        (p / "runs.jsonl").exists() or (p / "runs.csv").exists())
+
+
+def load_results(folder: str | os.PathLike) -> Results:
+    """Read a results folder. Runs come from the journal (so an interrupted
+    folder reads too); factor columns are strings in the experiment's level order."""
+    import pandas as pd
+
+    from benchharness.experiment import load_experiment
+
+    p = Path(folder)
+    if not is_results_folder(p):
+        raise ResultsFolderError(f"{p}: not a results folder (needs experiment.yaml and "
+                                 "runs.jsonl)")
+    exp = load_experiment(p / "experiment.yaml")
+    records = read_journal(p / "runs.jsonl")
+    factors = list(exp.factor_names)
+    cols = runs_columns(factors, records)
+    rows = [flatten(r, factors) for r in sorted(records, key=lambda r: (r.get("position", 0),
+                                                                        r.get("run", 0)))]
+    runs = pd.DataFrame(rows, columns=cols)
+    for f in factors:
+        runs[f] = pd.Categorical(runs[f].astype("string").astype(object),
+                                 categories=list(exp.levels_of(f)))
+    host = _read_json(p / "host.json")
+    session = _read_json(p / "session.json")
+    try:
+        plan = pd.read_csv(p / "plan.csv", dtype={f: str for f in factors},
+                           keep_default_na=False)
+    except FileNotFoundError:
+        plan = pd.DataFrame()
+    return Results(path=p, experiment=exp, runs=runs, host=host, plan=plan, session=session)
+
+
+def _read_json(path: Path) -> dict:
+    try:
+        return json.loads(path.read_text())
+    except (OSError, json.JSONDecodeError):
+        return {}

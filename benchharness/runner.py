@@ -1,0 +1,550 @@
+"""Executing a plan: the loop that runs, measures and journals every run.
+
+The runner owns the order of side effects around each run — build (once per
+distinct rendered form), reset (before every timed run), the run itself,
+teardown (after every run) — and writes each finished run to the journal
+before the next one starts. It works with any `Executor` (local processes, a
+simulated system for tests, a cluster), so the same loop serves every backend.
+
+Ctrl-C stops after recording what finished: the run in flight is killed and not
+recorded, the journal is synced, ``runs.csv`` exported, and the user is told how
+to resume. `resume_experiment` continues a folder from its frozen
+``experiment.yaml``, ``session.json`` and ``plan.csv``: it kills a process group
+the dead harness left running, skips runs already in the journal (by run id),
+re-does the one that was in flight, and never records a run twice.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import statistics
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Mapping, Sequence
+
+from benchharness import journal as J
+from benchharness.errors import ResultsFolderError
+from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
+
+DEFAULT_BASE = Path("results")
+
+
+@dataclass
+class RunOutcome:
+    """What `run_experiment` returns: where the results are and what happened."""
+
+    folder: Path
+    seed: int
+    planned: int                 # runs in the plan, warm-ups included
+    counts: dict = field(default_factory=dict)  # status → number of runs recorded
+    interrupted: bool = False
+    notes: list = field(default_factory=list)
+    _runs: object = None
+
+    @property
+    def runs(self):
+        """The runs table, equal to ``runs.csv`` (factor columns as strings)."""
+        if self._runs is None:
+            self._runs = J.load_results(self.folder).runs
+        return self._runs
+
+
+# ---------------------------------------------------------------------------
+# Progress reporting (terminal bar, plain lines for logs, or nothing).
+
+class Progress:
+    def start(self, total: int, done: int, folder: Path) -> None: ...
+    def advance(self, record: Mapping, label: str) -> None: ...
+    def note(self, text: str) -> None: ...
+    def stop(self) -> None: ...
+
+
+class PlainProgress(Progress):
+    """Periodic plain lines (CI logs): at most one every ``every_s`` seconds."""
+
+    def __init__(self, stream=None, every_s: float = 10.0):
+        self.stream = stream or sys.stdout
+        self.every_s = every_s
+
+    def start(self, total, done, folder):
+        self.total, self.done, self.t0, self.last = total, done, time.monotonic(), 0.0
+        self.first_done = done
+        print(f"running {total - done} runs into {folder}", file=self.stream, flush=True)
+
+    def advance(self, record, label):
+        self.done += 1
+        now = time.monotonic()
+        if now - self.last >= self.every_s or self.done == self.total:
+            self.last = now
+            el = now - self.t0
+            k = self.done - self.first_done
+            eta = el / k * (self.total - self.done) if k else 0.0
+            print(f"[{self.done}/{self.total}] {_fmt_dur(el)} elapsed, about {_fmt_dur(eta)} "
+                  f"left; last: {label} {record.get('status')}", file=self.stream, flush=True)
+
+    def note(self, text):
+        print(text, file=self.stream, flush=True)
+
+
+class RichProgress(Progress):
+    """A live bar with count, elapsed, time left and the current cell."""
+
+    def __init__(self, console=None):
+        self.console = console
+
+    def start(self, total, done, folder):
+        from rich.console import Console
+        from rich.progress import (BarColumn, MofNCompleteColumn, Progress as RP, TextColumn,
+                                   TimeElapsedColumn, TimeRemainingColumn)
+
+        self.console = self.console or Console(stderr=False)
+        self.console.print(f"running {total - done} runs into [bold]{folder}[/bold]")
+        self.bar = RP(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                      TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
+                      TextColumn("{task.fields[cell]}"), console=self.console,
+                      refresh_per_second=4, transient=False)
+        self.bar.start()
+        self.task = self.bar.add_task("runs", total=total, completed=done, cell="")
+
+    def advance(self, record, label):
+        self.bar.update(self.task, advance=1, cell=label)
+
+    def note(self, text):
+        self.bar.console.print(text)
+
+    def stop(self):
+        self.bar.stop()
+
+
+def _fmt_dur(s: float) -> str:
+    s = int(round(s))
+    if s < 60:
+        return f"{s}s"
+    if s < 3600:
+        return f"{s // 60}m{s % 60:02d}s"
+    return f"{s // 3600}h{(s % 3600) // 60:02d}m"
+
+
+# ---------------------------------------------------------------------------
+
+def default_executor():
+    from benchharness.execute.local import LocalExecutor
+
+    return LocalExecutor()
+
+
+def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAULT_BASE,
+                   seed: int | None = None, progress: Progress | None = None,
+                   plan=None, scheduler: str | None = None,
+                   same_host_ok: bool = False) -> RunOutcome:
+    """Plan and execute ``exp`` into a new results folder.
+
+    ``executor``: any `Executor` (default: local processes through the
+    launcher). ``scheduler``: address of a Dask scheduler to spread the runs
+    over its workers instead (blocks are assigned to hosts whole).
+    """
+    import dataclasses
+
+    from benchharness.design import build_plan
+    from benchharness.host import collect_facts
+
+    if isinstance(exp, (str, os.PathLike)):
+        from benchharness.experiment import load_experiment
+
+        exp = load_experiment(exp)
+    notes = []
+    if scheduler and plan is None and exp.order == "randomized":
+        # Hosts receive complete blocks, so each replicate becomes a block.
+        exp_for_plan = dataclasses.replace(exp, order="blocked")
+        notes.append("on a cluster each replicate is run as a complete block on one host "
+                     "(order: blocked), so that hosts are blocks of the design")
+    else:
+        exp_for_plan = exp
+    plan = plan or build_plan(exp_for_plan, seed=seed)
+    check_controls(exp, plan.runs)
+    folder = J.new_folder(Path(base), exp.name, out)
+    lock = J.FolderLock(folder)
+    try:
+        J.write_atomic(folder / "experiment.yaml", exp.source_text)
+        J.write_plan_csv(folder, exp.factor_names, plan.rows())
+        if plan.info:
+            J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
+                                                              default=str))
+        facts = collect_facts()
+        J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+        exp_dir = str(Path(exp.path).resolve().parent) if exp.path != "<string>" else os.getcwd()
+        session = {
+            "benchharness_version": _version(),
+            "seed": plan.seed,
+            "seed_drawn": exp.seed is None and seed is None,
+            "order": plan.order,
+            "experiment_path": str(exp.path),
+            "experiment_dir": exp_dir,
+            "cwd": os.getcwd(),
+            "argv": sys.argv,
+            "started_at": J.utc_iso(),
+            "state": "running",
+            "runs_planned": len(plan.runs),
+        }
+        if scheduler:
+            session["scheduler"] = scheduler
+        J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+        J.fsync_dir(folder)
+        planned = [{"run": r.run, "position": r.position, "block": r.block,
+                    "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
+                   for r in plan.runs]
+        if scheduler:
+            from benchharness.execute.cluster import execute_on_cluster
+
+            outcome = execute_on_cluster(folder, exp, planned, set(), session, progress, facts,
+                                         scheduler, same_host_ok=same_host_ok)
+        else:
+            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts)
+        outcome.notes[:0] = notes
+        return outcome
+    finally:
+        lock.release()
+
+
+def resume_experiment(folder, executor=None, progress: Progress | None = None,
+                      scheduler: str | None = None, same_host_ok: bool = False) -> RunOutcome:
+    """Continue an interrupted results folder; never records a run twice."""
+    from benchharness.experiment import load_experiment
+
+    folder = Path(folder)
+    if not J.is_results_folder(folder):
+        raise ResultsFolderError(f"{folder}: not a results folder (no experiment.yaml and "
+                                 "runs.jsonl); give the folder an earlier `benchharness run` "
+                                 "made")
+    lock = J.FolderLock(folder)
+    try:
+        notes = []
+        killed = J.kill_leftover(folder)
+        if killed:
+            notes.append(killed)
+        exp = load_experiment(folder / "experiment.yaml")
+        session = json.loads((folder / "session.json").read_text())
+        records = J.read_journal(folder / "runs.jsonl", repair=True)
+        done = {int(r["run"]) for r in records}
+        planned = J.read_plan_csv(folder)
+        session["state"] = "running"
+        session.setdefault("resumed_at", []).append(J.utc_iso())
+        J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+        try:
+            facts = json.loads((folder / "host.json").read_text())
+        except (OSError, json.JSONDecodeError):
+            facts = {}
+        if scheduler:
+            from benchharness.execute.cluster import execute_on_cluster
+
+            outcome = execute_on_cluster(folder, exp, planned, done, session, progress,
+                                         facts.get("coordinator", facts), scheduler,
+                                         same_host_ok=same_host_ok, prior=records,
+                                         known_hosts=facts.get("hosts"))
+        else:
+            outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
+                               prior=records)
+        outcome.notes[:0] = notes
+        return outcome
+    finally:
+        lock.release()
+
+
+def _version() -> str:
+    from benchharness import __version__
+
+    return __version__
+
+
+def check_controls(exp, runs) -> None:
+    """Render and check the noise controls of every cell before anything runs."""
+    from benchharness.execute.controls import parse_controls, resolve_cell
+
+    controls = parse_controls(exp)
+    if controls.pin or controls.nice:
+        seen = set()
+        for r in runs:
+            levels = r.levels if hasattr(r, "levels") else r["levels"]
+            key = tuple(sorted(levels.items()))
+            if key not in seen:
+                seen.add(key)
+                resolve_cell(exp, controls, levels)
+
+
+class _CellCache:
+    """Rendered command, environment and steps per cell (computed once per cell)."""
+
+    def __init__(self, exp, session: Mapping, extra_env: Mapping[str, str] | None = None):
+        from benchharness.execute.controls import parse_controls
+
+        self.exp = exp
+        self.cache: dict[tuple, dict] = {}
+        self.controls = parse_controls(exp)
+        if self.controls.clean_env:
+            from benchharness.execute.envs import clean_environment
+
+            self.base_env = clean_environment(os.environ)
+        else:
+            self.base_env = dict(os.environ)
+        self.exp_dir = session.get("experiment_dir") or os.getcwd()
+        self.cwd = session.get("cwd") or os.getcwd()
+
+    def get(self, levels: Mapping[str, str]) -> dict:
+        key = tuple(levels[f] for f in self.exp.factor_names)
+        c = self.cache.get(key)
+        if c is None:
+            exp = self.exp
+            env_over = exp.render_env(levels)
+            env = dict(self.base_env)
+            env.update(env_over)
+            wd = exp.render_workdir(levels)
+            cwd = self.cwd if wd is None else str(Path(self.exp_dir, wd))
+            argv, shell = exp.render_command(exp.command, levels)
+            from benchharness.execute.controls import resolve_cell
+
+            ctl = resolve_cell(exp, self.controls, levels)
+            c = {"cpus": ctl["cpus"], "nice": ctl["nice"], "no_aslr": self.controls.aslr_off,
+                 "argv": argv, "shell": shell, "env": env, "env_over": env_over, "cwd": cwd,
+                 "label": " ".join(f"{k}={v}" for k, v in levels.items())}
+            for step in ("build", "reset", "teardown"):
+                t = getattr(exp, step)
+                c[step] = exp.render_command(t, levels) if t is not None else None
+            self.cache[key] = c
+        return c
+
+
+def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None, env=None) -> RunSpec:
+    argv, shell = argv_shell
+    return RunSpec(argv=argv, shell_command=shell, env=env or c["env"], cwd=c["cwd"],
+                   timeout_s=timeout_s, run_id=run_id, levels=levels or {},
+                   cpus=c["cpus"], nice=c["nice"], no_aslr=c["no_aslr"])
+
+
+def _short(m: Measurement) -> str:
+    if m.message:
+        return m.message
+    if m.status == "timeout":
+        return "timed out"
+    return f"exit code {m.exit_code}"
+
+
+def _record(pr: Mapping, m: Measurement | None, status: str, message: str) -> dict:
+    rec = {"run": pr["run"], "position": pr["position"], "block": pr["block"],
+           "replicate": pr["replicate"], "levels": pr["levels"], "status": status,
+           "exit_code": m.exit_code if m else None}
+    for f in USAGE_FIELDS:
+        rec[f] = getattr(m, f) if m else None
+    rec["started_at"] = m.started_at if m and m.started_at else J.utc_iso()
+    rec["message"] = message
+    if m is not None and m.extra:
+        for k, v in m.extra.items():
+            if k == "metrics":
+                rec["metrics"] = v
+            else:
+                rec[k] = v
+    return rec
+
+
+def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
+             executor, progress: Progress | None, facts: dict, prior=()) -> RunOutcome:
+    own_executor = executor is None
+    if own_executor:
+        executor = default_executor()
+    progress = progress or Progress()
+    cells = _CellCache(exp, session)
+    jr = J.Journal(folder)
+    builds: dict[tuple, tuple[bool, str]] = {}
+    counts: dict[str, int] = {}
+    for r in prior:
+        counts[r["status"]] = counts.get(r["status"], 0) + 1
+    todo = [pr for pr in planned if int(pr["run"]) not in done]
+    interrupted = False
+    records_new = 0
+    progress.start(len(planned), len(planned) - len(todo), folder)
+    timeout_s = exp.timeout_s
+    inflight_pgid = [None]
+    controls = cells.controls
+    pad_rng = None
+    if controls.pad_env:
+        import numpy as np
+
+        from benchharness.execute.envs import pad_environment
+
+        # Seeded from the plan's seed and the runs already done, so a resumed
+        # folder continues with fresh (not repeated) padding lengths.
+        pad_rng = np.random.default_rng([int(session.get("seed") or 0), len(done), 7])
+    aslr_value = None
+    if controls.aslr_off:
+        ok = getattr(executor, "aslr_control", True)
+        aslr_value = "off" if ok else "on"
+        if not ok:
+            progress.note("note: ASLR stays on: " + getattr(executor, "aslr_reason",
+                                                           "the kernel does not allow it"))
+    cold_ok = None
+
+    def on_start_for(run_id):
+        def cb(pid, pgid):
+            inflight_pgid[0] = pgid
+            jr.mark_inflight(run_id, pid, pgid)
+        return cb
+
+    try:
+        for pr in todo:
+            levels = pr["levels"]
+            c = cells.get(levels)
+            status = None
+            message = ""
+            m = None
+            if c["build"] is not None:
+                bkey = (c["build"], c["cwd"])
+                if bkey not in builds:
+                    bm = executor.execute(_spec(c["build"], c, None, levels=levels))
+                    ok = bm.status == "ok"
+                    builds[bkey] = (ok, "" if ok else
+                                    f"build failed: {_short(bm)}"
+                                    + ("" if bm.message else
+                                       _tail(bm.stderr_tail or bm.stdout_tail)))
+                ok, bmsg = builds[bkey]
+                if not ok:
+                    status, message = "failed", bmsg
+            if status is None and c["reset"] is not None and not pr["warmup"]:
+                rm = executor.execute(_spec(c["reset"], c, timeout_s, levels=levels))
+                if rm.status != "ok":
+                    status, message = "failed", f"reset failed: {_short(rm)}"
+            pad_bytes = None
+            run_env = None
+            if status is None and pad_rng is not None:
+                run_env, pad_bytes = pad_environment(c["env"], pad_rng)
+            if status is None and controls.cold_cache and not pr["warmup"] and cold_ok is not False:
+                from benchharness.execute.noise import drop_page_cache
+
+                ok, why = drop_page_cache()
+                if not ok and cold_ok is None:
+                    progress.note(f"note: cold-cache mode is off for this run: {why}")
+                    session["cold_cache"] = f"not possible: {why}"
+                cold_ok = ok
+                if ok:
+                    session["cold_cache"] = "page cache dropped before each timed run"
+            if status is None:
+                m = executor.execute(_spec((c["argv"], c["shell"]), c, timeout_s,
+                                           run_id=pr["run"], levels=levels, env=run_env),
+                                     on_start=on_start_for(pr["run"]))
+                inflight_pgid[0] = None
+                status = m.status
+                message = m.message if m.status != "ok" else (m.message or "")
+                if pr["warmup"]:
+                    if m.status != "ok":
+                        message = f"warm-up run {m.status}: {_short(m)}"
+                    status = "warmup"
+                if c["teardown"] is not None:
+                    tm = executor.execute(_spec(c["teardown"], c, timeout_s, levels=levels))
+                    if tm.status != "ok":
+                        message = (message + "; " if message else "") + \
+                            f"teardown failed: {_short(tm)}"
+            if pr["warmup"] and status != "warmup":
+                message = f"warm-up run not done: {message}"
+                status = "warmup"
+            rec = _record(pr, m, status, message)
+            if pad_bytes is not None:
+                rec["pad_env_bytes"] = pad_bytes
+            if aslr_value is not None:
+                rec["aslr"] = aslr_value
+            jr.append(rec)
+            records_new += 1
+            counts[status] = counts.get(status, 0) + 1
+            progress.advance(rec, c["label"])
+        jr.clear_inflight()
+    except KeyboardInterrupt:
+        interrupted = True
+        pg = inflight_pgid[0]
+        if pg:
+            import signal
+
+            try:
+                os.killpg(pg, signal.SIGKILL)
+            except (ProcessLookupError, PermissionError):
+                pass
+        jr.clear_inflight()
+    finally:
+        progress.stop()
+        jr.close()
+        if own_executor:
+            try:
+                executor.close()
+            except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
+                pass
+    return finalize(folder, exp, session, facts, counts, len(planned), interrupted)
+
+
+def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
+             interrupted: bool, host_json: dict | None = None) -> RunOutcome:
+    """Export runs.csv, record the end state in host.json and session.json."""
+    records = J.read_journal(folder / "runs.jsonl")
+    J.export_runs_csv(folder, exp.factor_names, records)
+    from benchharness.host import load_average
+
+    facts["load_average_end"] = load_average()
+    J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
+    session["state"] = "interrupted" if interrupted else "complete"
+    session["finished_at"] = J.utc_iso()
+    J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+    return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
+                      interrupted=interrupted)
+
+
+def _tail(b: bytes, n: int = 300) -> str:
+    if not b:
+        return ""
+    text = b.decode("utf-8", "replace").strip()
+    if not text:
+        return ""
+    text = text[-n:].replace("\n", " | ")
+    return f" ({text})"
+
+
+# ---------------------------------------------------------------------------
+# The per-cell summary printed at the end of `benchharness run`.
+
+def cell_summary(records: Sequence[Mapping], factors: Sequence[str],
+                 response: str = "wall_s") -> list[dict]:
+    """Per cell: runs ok, median and interquartile range of the response, failures."""
+    by: dict[tuple, dict] = {}
+    for r in records:
+        if r.get("status") == "warmup":
+            continue
+        key = tuple(r["levels"][f] for f in factors)
+        d = by.setdefault(key, {"values": [], "failed": 0, "timeout": 0})
+        if r["status"] == "ok" and r.get(response) is not None:
+            d["values"].append(float(r[response]))
+        elif r["status"] == "failed":
+            d["failed"] += 1
+        elif r["status"] == "timeout":
+            d["timeout"] += 1
+    out = []
+    for key, d in by.items():
+        v = sorted(d["values"])
+        row = dict(zip(factors, key))
+        row["n"] = len(v)
+        row["median"] = statistics.median(v) if v else None
+        if len(v) >= 2:
+            q = statistics.quantiles(v, n=4, method="inclusive")
+            row["iqr"] = q[2] - q[0]
+        else:
+            row["iqr"] = None
+        row["failed"] = d["failed"]
+        row["timeout"] = d["timeout"]
+        out.append(row)
+    return out
+
+
+def format_seconds(x: float | None) -> str:
+    if x is None:
+        return "-"
+    if x < 1e-3:
+        return f"{x * 1e6:.1f} µs"
+    if x < 1:
+        return f"{x * 1e3:.2f} ms"
+    return f"{x:.3f} s"

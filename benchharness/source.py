@@ -1,0 +1,77 @@
+"""Reading a SOURCE for analysis: a results folder or any tidy CSV.
+
+A results folder gives its experiment (factor names and level order) along with
+the runs; a CSV (one row per observation) needs the factor names from the user.
+Factor columns are always read as strings, exactly as written (``1.10`` stays
+``1.10``; ``1`` and ``1.0`` stay different), ordered as the experiment lists its
+levels, or for a CSV in order of first appearance.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Sequence
+
+from benchharness.errors import DataError
+
+
+def load_table(source, factors: Sequence[str] | None = None):
+    """``(runs DataFrame, Experiment or None)`` for a results folder, CSV path or DataFrame."""
+    import pandas as pd
+
+    from benchharness import journal as J
+
+    if isinstance(source, pd.DataFrame):
+        df = source.copy()
+        exp = None
+        if factors is None:
+            raise DataError("name the factors of this table (factors=[...])")
+        _check_columns(df, factors, "the table")
+        for f in factors:
+            if not isinstance(df[f].dtype, pd.CategoricalDtype):
+                df[f] = _as_categorical(df[f].astype(str))
+        return df, exp
+    path = Path(os.fspath(source))
+    if path.is_dir():
+        res = J.load_results(path)
+        df = res.runs
+        exp = res.experiment
+        if factors is not None:
+            _check_columns(df, factors, str(path / "runs.csv"))
+            for f in factors:
+                if not isinstance(df[f].dtype, pd.CategoricalDtype):
+                    df[f] = _as_categorical(df[f].astype("string").astype(object))
+        return df, exp
+    if not path.exists():
+        raise DataError(f"{path}: no such file or folder; give a results folder or a CSV file")
+    if factors is None:
+        raise DataError(f"{path}: a CSV needs --factors A,B,... naming its factor columns")
+    try:
+        header = pd.read_csv(path, nrows=0)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise DataError(f"{path}: cannot be read as CSV ({str(exc).splitlines()[0]})") from None
+    _check_columns(header, factors, str(path))
+    try:
+        df = pd.read_csv(path, dtype={f: str for f in factors}, keep_default_na=False,
+                         na_values={c: ["", "NA", "NaN", "nan"] for c in header.columns
+                                    if c not in factors})
+    except (pd.errors.ParserError, ValueError) as exc:
+        raise DataError(f"{path}: cannot be read as CSV ({str(exc).splitlines()[0]})") from None
+    for f in factors:
+        df[f] = _as_categorical(df[f])
+    return df, None
+
+
+def _check_columns(df, factors, where: str) -> None:
+    missing = [f for f in factors if f not in df.columns]
+    if missing:
+        raise DataError(f"{where}: no column named {missing[0]!r}; columns are: "
+                        + ", ".join(map(str, df.columns)))
+
+
+def _as_categorical(series):
+    import pandas as pd
+
+    cats = list(dict.fromkeys(series.tolist()))
+    return pd.Categorical(series, categories=cats)
