@@ -72,14 +72,18 @@ def response_value(m: Measurement, response: str) -> float | None:
     if response in USAGE_FIELDS:
         v = getattr(m, response)
     else:
-        v = (m.extra or {}).get(response)
+        extra = m.extra or {}
+        v = extra.get(response)
+        if v is None and isinstance(extra.get("metrics"), Mapping):
+            v = extra["metrics"].get(response)
     try:
         return None if v is None else float(v)
     except (TypeError, ValueError):
         return None
 
 
-SpecMaker = Callable[[str, str, int], RunSpec]   # (workload key, role, run id) -> RunSpec
+# (workload key, role, run id, is warm-up) -> RunSpec
+SpecMaker = Callable[[str, str, int, bool], RunSpec]
 
 
 def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, executor,
@@ -90,7 +94,7 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
     """Run the gate loop; returns the verdicts.
 
     ``workloads`` maps a workload key to its levels of the non-build factors.
-    ``make_spec(key, role, run_id)`` builds the RunSpec of one run of ``role``
+    ``make_spec(key, role, run_id, is_warmup)`` builds the RunSpec of one run of ``role``
     (``"baseline"`` or ``"candidate"``). ``stored_baseline`` maps a workload key
     to (response, status) of earlier baseline runs; when given, no baseline runs
     are made.
@@ -113,7 +117,7 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
     def do(key: str, role: str, block: int, replicate: int, is_warmup: bool) -> Measurement:
         run_id = counter["run"]
         counter["run"] += 1
-        spec = make_spec(key, role, run_id)
+        spec = make_spec(key, role, run_id, is_warmup)
         meas = executor.execute(spec)
         if on_record is not None:
             on_record({
