@@ -33,6 +33,7 @@ every possible look). Blocks with a failed run carry no timing difference.
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from dataclasses import asdict, dataclass, field
 from typing import Sequence
 
@@ -226,6 +227,13 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -
     return make(None, "undecided", lo, hi, horizon)
 
 
+@lru_cache(maxsize=4096)
+def _chi2_ppf(q: float, df: int) -> float:
+    from scipy.stats import chi2
+
+    return float(chi2.ppf(q, df))
+
+
 def _running_sd(diffs):
     """Standard deviation of diffs[:j] for j = 1..len(diffs) (nan for j = 1)."""
     out, s1, s2 = [], 0.0, 0.0
@@ -247,8 +255,7 @@ def _plan_sd(diffs, settings: GateSettings) -> float:
     def adj(sd, j):
         if q is None:
             return sd
-        from scipy.stats import chi2
-        return sd * math.sqrt((j - 1) / chi2.ppf(q, j - 1))
+        return sd * math.sqrt((j - 1) / _chi2_ppf(q, j - 1))
     run = _running_sd(diffs)
     if mode.startswith("ratchet"):
         return max(1e-9, max(adj(run[j - 1], j) for j in range(first, n + 1)))

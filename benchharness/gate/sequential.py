@@ -182,7 +182,7 @@ def _tail_point(mass, x, h, want):
 
 @lru_cache(maxsize=4096)
 def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = None,
-                 paths: int = 100_000, seed: int = 19830101) -> tuple[float, ...]:
+                 paths: int = 60_000, seed: int = 19830101) -> tuple[float, ...]:
     """Boundaries for the one-sample t statistics at the looks, spending ``obf_spending``.
 
     Under ``mu`` = the value tested, the joint law of the t statistics
@@ -190,9 +190,10 @@ def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = Non
     ``sigma``, so boundaries with ``P(T_j < b_j, j < k; T_k >= b_k) = A(t_k) -
     A(t_{k-1})`` can be found once by simulating that law: ``paths`` seeded
     Gaussian paths, and at each look the empirical upper quantile of the paths
-    still inside. (Sum and sum of squares are drawn per look increment: the
-    sum is N(0, inc) and, given it, the within-increment sum of squares about
-    its mean is chi-square with inc - 1 df.) Deterministic for a given seed.
+    still inside. The paths' t statistics after every block are simulated
+    once and shared by all tables (for long horizons they are drawn look by
+    look: the increment's sum is N(0, inc) and, given it, its sum of squares
+    about its mean is chi-square with inc - 1 df). Deterministic for a seed.
     """
     import numpy as np
 
@@ -200,28 +201,20 @@ def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = Non
     if looks[0] < 2 or any(b <= a for a, b in zip(looks, looks[1:])):
         raise ValueError("looks must be increasing block counts >= 2")
     N = horizon or looks[-1]
-    rng = np.random.default_rng(seed)
-    total = np.zeros(paths)
-    sumsq = np.zeros(paths)
+    if looks[-1] <= _PATH_CACHE_MAX:
+        table = _null_t_paths(paths, seed)
+        columns = (table[:, n] for n in looks)
+    else:
+        columns = _null_t_stream(looks, paths, seed)
     alive = np.ones(paths, dtype=bool)
-    prev = 0
     spent_count = 0
     out: list[float] = []
-    for n in looks:
-        inc = n - prev
-        part = rng.standard_normal(paths) * np.sqrt(inc)
-        within = rng.chisquare(inc - 1, paths) if inc > 1 else 0.0
-        total += part
-        sumsq += part * part / inc + within
-        prev = n
+    for n, tstat in zip(looks, columns):
         target = obf_spending(n / N, alpha) if n < N else alpha
         want = int(round(target * paths)) - spent_count
         if want <= 0:
             out.append(math.inf)
             continue
-        mean = total / n
-        var = np.maximum((sumsq - n * mean * mean) / (n - 1), 1e-300)
-        tstat = mean * np.sqrt(n / var)
         cand = tstat[alive]
         if want >= cand.size:
             out.append(-math.inf)
@@ -232,11 +225,54 @@ def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = Non
         part_sorted = np.partition(cand, cand.size - want - 1)
         hi = np.min(part_sorted[cand.size - want:])
         lo = part_sorted[cand.size - want - 1]
-        b = float((hi + lo) / 2.0)
+        b = float((float(hi) + float(lo)) / 2.0)
         out.append(b)
         alive &= ~(tstat >= b)
         spent_count += want
     return tuple(out)
+
+
+_PATH_CACHE_MAX = 160
+
+
+@lru_cache(maxsize=2)
+def _null_t_paths(paths: int, seed: int):
+    """t statistics of ``paths`` seeded null paths after every block n = 0.._PATH_CACHE_MAX."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    table = np.zeros((paths, _PATH_CACHE_MAX + 1), dtype=np.float64)
+    total = np.zeros(paths)
+    sumsq = np.zeros(paths)
+    for n in range(1, _PATH_CACHE_MAX + 1):
+        x = rng.standard_normal(paths)
+        total += x
+        sumsq += x * x
+        if n >= 2:
+            mean = total / n
+            var = np.maximum((sumsq - n * mean * mean) / (n - 1), 1e-300)
+            table[:, n] = mean * np.sqrt(n / var)
+    return table
+
+
+def _null_t_stream(looks, paths, seed):
+    """t statistics of seeded null paths at the looks, computed look by look (long horizons)."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    total = np.zeros(paths)
+    sumsq = np.zeros(paths)
+    prev = 0
+    for n in looks:
+        inc = n - prev
+        part = rng.standard_normal(paths) * np.sqrt(inc)
+        within = rng.chisquare(inc - 1, paths) if inc > 1 else 0.0
+        total += part
+        sumsq += part * part / inc + within
+        prev = n
+        mean = total / n
+        var = np.maximum((sumsq - n * mean * mean) / (n - 1), 1e-300)
+        yield mean * np.sqrt(n / var)
 
 
 def fixed_pairs(alpha: float, beta: float, d: float, cap: int = 10**6) -> int:
@@ -261,9 +297,23 @@ def fixed_pairs(alpha: float, beta: float, d: float, cap: int = 10**6) -> int:
     return cap
 
 
-@lru_cache(maxsize=65536)
-def _fixed_pairs_cached(alpha: float, beta: float, d: float, cap: int) -> int:
-    return fixed_pairs(alpha, beta, d, cap)
+@lru_cache(maxsize=256)
+def _z(p: float) -> float:
+    from scipy.stats import norm
+
+    return float(norm.isf(p))
+
+
+def approx_fixed_pairs(alpha: float, beta: float, d: float) -> float:
+    """Guenther's (1981) approximation of `fixed_pairs`: ((z_a + z_b)/d)^2 + z_a^2/2.
+
+    Used for planning the horizon at every look (fast; within a block of the
+    exact noncentral-t answer).
+    """
+    if not d > 0:
+        return math.inf
+    za, zb = _z(alpha), _z(beta)
+    return ((za + zb) / d) ** 2 + za * za / 2.0
 
 
 @dataclass(frozen=True)
@@ -287,8 +337,9 @@ class SequentialDesign:
         """Planned number of blocks for this noise level (capped at the budget)."""
         if not sd > 0:
             return max(2, self.first)
-        nf = _fixed_pairs_cached(self.alpha, self.beta, round(self.delta / sd, 4),
-                                 10 * self.max_blocks + 10)
+        nf = approx_fixed_pairs(self.alpha, self.beta, self.delta / sd)
+        if not math.isfinite(nf):
+            return self.max_blocks
         return int(min(self.max_blocks, max(self.first, math.ceil(self.horizon_factor * nf))))
 
     def critical(self, n: int, sd: float, plan_sd: float | None = None
