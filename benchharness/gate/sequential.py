@@ -202,7 +202,9 @@ def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = Non
         raise ValueError("looks must be increasing block counts >= 2")
     N = horizon or looks[-1]
     if looks[-1] <= _PATH_CACHE_MAX:
-        table = _null_t_paths(paths, seed)
+        # the same seeded paths whatever the horizon: tables share them
+        upto = next(u for u in (20, 40, 80, _PATH_CACHE_MAX) if u >= looks[-1])
+        table = _null_t_paths(paths, seed, upto)
         columns = (table[:, n] for n in looks)
     else:
         columns = _null_t_stream(looks, paths, seed)
@@ -235,24 +237,28 @@ def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = Non
 _PATH_CACHE_MAX = 160
 
 
-@lru_cache(maxsize=2)
-def _null_t_paths(paths: int, seed: int):
-    """t statistics of ``paths`` seeded null paths after every block n = 0.._PATH_CACHE_MAX."""
+@lru_cache(maxsize=4)
+def _null_t_paths(paths: int, seed: int, upto: int):
+    """t statistics of ``paths`` seeded null paths after every block n = 0..upto (column n).
+
+    Draws block by block (row n holds every path's n-th block), so a longer
+    table extends a shorter one with the same seed: all tables share paths.
+    """
     import numpy as np
 
     rng = np.random.default_rng(seed)
-    table = np.zeros((paths, _PATH_CACHE_MAX + 1), dtype=np.float64)
-    total = np.zeros(paths)
-    sumsq = np.zeros(paths)
-    for n in range(1, _PATH_CACHE_MAX + 1):
-        x = rng.standard_normal(paths)
-        total += x
-        sumsq += x * x
-        if n >= 2:
-            mean = total / n
-            var = np.maximum((sumsq - n * mean * mean) / (n - 1), 1e-300)
-            table[:, n] = mean * np.sqrt(n / var)
-    return table
+    x = rng.standard_normal((upto, paths))
+    n = np.arange(1, upto + 1)[:, None]
+    total = np.cumsum(x, axis=0)
+    x *= x
+    sumsq = np.cumsum(x, axis=0)
+    del x
+    mean = total / n
+    sumsq -= n * mean * mean
+    var = np.maximum(sumsq / np.maximum(n - 1, 1), 1e-300)
+    t = mean * np.sqrt(n / var)
+    t[0, :] = 0.0
+    return np.concatenate([np.zeros((1, paths)), t], axis=0).T
 
 
 def _null_t_stream(looks, paths, seed):
