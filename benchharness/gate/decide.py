@@ -37,7 +37,7 @@ from functools import lru_cache
 from dataclasses import asdict, dataclass, field
 from typing import Sequence
 
-from benchharness.gate.sequential import SequentialDesign
+from benchharness.gate.sequential import SequentialDesign, SpendingTracker
 
 VERDICTS = ("regression", "no_regression", "improvement", "inconclusive")
 OK = "ok"
@@ -162,8 +162,27 @@ def _failure_verdict(blocks: Sequence[Block], alpha_w: float, max_runs: int) -> 
     return None
 
 
-def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -> Judgement:
-    """Judge one workload after the given blocks (in the order they ran)."""
+def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1,
+          tracker: SpendingTracker | None = None) -> Judgement:
+    """Judge one workload after the given blocks (in the order they ran).
+
+    ``tracker`` carries the level spent at earlier looks; the run loop keeps
+    one per workload and calls this after every block. Without it the looks
+    are replayed block by block, and the first decision is returned (what the
+    gate would have said, stopping there).
+    """
+    if tracker is None:
+        tracker = SpendingTracker(settings.design(workloads).alpha)
+        j = None
+        for i in range(1, len(blocks) + 1):
+            j = _judge(blocks[:i], settings, workloads, tracker)
+            if j.decided:
+                return j
+        return j if j is not None else _judge(blocks, settings, workloads, tracker)
+    return _judge(blocks, settings, workloads, tracker)
+
+
+def _judge(blocks, settings, workloads, tracker) -> Judgement:
     design = settings.design(workloads)
     alpha_w = design.alpha
     n_blocks = len(blocks)
@@ -200,12 +219,11 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -
             return make("inconclusive", f"only {n} blocks with both runs ok within the budget")
         return make(None, "waiting for the first look")
 
-    # sd None handled; sd > 0 from here
+    # sd > 0 from here
     plan_sd = _plan_sd(diffs, settings)
-    ct, horizon, final = design.critical(n, sd, plan_sd)
-    if at_budget and not final:
-        final = True
-        ct, horizon, _ = _final_critical(design, n, sd, plan_sd)
+    horizon = design.horizon(plan_sd)
+    final = at_budget or n >= horizon
+    ct = tracker.boundary(n, horizon, final)
     if not math.isfinite(ct):
         if final:
             return make("inconclusive", "budget spent before a look could decide", horizon=horizon)
@@ -264,11 +282,3 @@ def _plan_sd(diffs, settings: GateSettings) -> float:
     if mode == "current" or mode.startswith("upper:"):
         return max(1e-9, adj(run[n - 1], n))
     return float(mode)
-
-
-def _final_critical(design: SequentialDesign, n: int, sd: float, plan_sd: float):
-    """Critical value when the budget forces this look to be the last one."""
-    from dataclasses import replace
-
-    d = replace(design, max_blocks=n)
-    return d.critical(n, sd, plan_sd)

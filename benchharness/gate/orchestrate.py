@@ -26,6 +26,7 @@ from typing import Callable, Mapping, Sequence
 
 from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
 from benchharness.gate.decide import Block, GateSettings, Judgement, judge
+from benchharness.gate.sequential import SpendingTracker
 
 BASELINE, CANDIDATE = "baseline", "candidate"
 
@@ -136,6 +137,8 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
                 warmups += 1
 
     blocks: dict[str, list[Block]] = {k: [] for k in keys}
+    alpha_w = settings.design(m).alpha
+    trackers = {k: SpendingTracker(alpha_w) for k in keys}
     judgements: dict[str, Judgement] = {}
     open_keys = [k for k in keys]
     for k in keys:
@@ -166,7 +169,7 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
                 cs = "failed" if cv is None else cs
             blocks[k].append(Block(bv, cv, bs, cs))
             s = settings if budget[k] == settings.max_runs else _with_budget(settings, budget[k])
-            j = judge(blocks[k], s, m)
+            j = judge(blocks[k], s, m, trackers[k])
             if j.decided:
                 judgements[k] = j
                 open_keys.remove(k)

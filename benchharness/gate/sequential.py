@@ -281,6 +281,84 @@ def _null_t_stream(looks, paths, seed):
         yield mean * np.sqrt(n / var)
 
 
+class SpendingTracker:
+    """Alpha spent so far by one sequential test, on the shared simulated null paths.
+
+    Information-based monitoring (Lan & DeMets 1983; Mehta & Tsiatis 2001):
+    at each look ``n`` with the current horizon ``N`` the test may have spent
+    ``A(n / N)`` in total (all of ``alpha`` at a final look). What was really
+    spent at earlier looks is counted on the same seeded null t paths that
+    `t_boundaries` uses, under the boundaries actually applied, so a horizon
+    that moves between looks never makes the total exceed ``alpha``.
+    """
+
+    def __init__(self, alpha: float, paths: int = 60_000, seed: int = 19830101):
+        self.alpha = float(alpha)
+        self.paths = int(paths)
+        self.seed = int(seed)
+        self.alive = None
+        self.spent_count = 0
+        self.looks: list[tuple[int, int, float]] = []   # (n, N, boundary)
+        self._stream = None
+
+    @property
+    def spent(self) -> float:
+        return self.spent_count / self.paths
+
+    def _column(self, n: int):
+        import numpy as np
+
+        if n <= _PATH_CACHE_MAX:
+            upto = next(u for u in (20, 40, 80, _PATH_CACHE_MAX) if u >= n)
+            return _null_t_paths(self.paths, self.seed, upto)[:, n]
+        st = self._stream
+        if st is None:
+            rng = np.random.default_rng(self.seed)
+            x = rng.standard_normal((_PATH_CACHE_MAX, self.paths))
+            st = self._stream = {"rng": rng, "n": _PATH_CACHE_MAX, "total": x.sum(axis=0),
+                                 "sumsq": (x * x).sum(axis=0)}
+            del x
+        while st["n"] < n:
+            x = st["rng"].standard_normal(self.paths)
+            st["total"] += x
+            st["sumsq"] += x * x
+            st["n"] += 1
+        mean = st["total"] / n
+        var = np.maximum((st["sumsq"] - n * mean * mean) / (n - 1), 1e-300)
+        return mean * np.sqrt(n / var)
+
+    def boundary(self, n: int, horizon: int, final: bool = False) -> float:
+        """t-scale boundary at ``n`` blocks (inf: nothing to spend yet). Idempotent per n."""
+        import numpy as np
+
+        if self.looks and self.looks[-1][0] == n:
+            return self.looks[-1][2]
+        if self.looks and n < self.looks[-1][0]:
+            raise ValueError("looks must come in increasing block counts")
+        if n < 2:
+            return math.inf
+        if self.alive is None:
+            self.alive = np.ones(self.paths, dtype=bool)
+        target = self.alpha if (final or n >= horizon) else obf_spending(n / horizon, self.alpha)
+        want = int(round(target * self.paths)) - self.spent_count
+        if want <= 0:
+            self.looks.append((n, horizon, math.inf))
+            return math.inf
+        tstat = self._column(n)
+        cand = tstat[self.alive]
+        if want >= cand.size:
+            b = -math.inf
+        else:
+            part = np.partition(cand, cand.size - want - 1)
+            b = float((float(np.min(part[cand.size - want:])) + float(part[cand.size - want - 1]))
+                      / 2.0)
+        crossed = self.alive & (tstat >= b)
+        self.spent_count += int(crossed.sum())
+        self.alive &= ~crossed
+        self.looks.append((n, horizon, b))
+        return b
+
+
 def fixed_pairs(alpha: float, beta: float, d: float, cap: int = 10**6) -> int:
     """Blocks a fixed-size one-sided paired t-test at level alpha needs for power 1-beta.
 
