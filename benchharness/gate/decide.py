@@ -53,10 +53,14 @@ class GateSettings:
     min_runs: int = 6            # blocks before the first look
     higher_is_better: bool = False
     beta: float = 0.05           # design miss rate at the design distance
-    horizon_factor: float = 1.0  # planned information / fixed-design information
-    # noise estimate that sets the horizon: "upper:q" = upper (1-q) confidence bound
-    # of sigma at the current look (conservative planning); "current"; "pilot"; a number
-    horizon_from: str = "upper:0.2"
+    horizon_factor: float = 0.8  # planned information / fixed-design information
+    # noise estimate that sets the horizon: "ratchet" = the largest sd seen at any look
+    # so far (the horizon never shrinks); also "current", "pilot", "upper:q" (upper
+    # 1-q confidence bound of sigma at this look) or a number (known sigma)
+    horizon_from: str = "ratchet"
+    # share of the level the sequential bounds spend: the horizon follows the
+    # noise estimate, which costs a little level; calibrated by simulation
+    level_calibration: float = 0.7
 
     def __post_init__(self):
         if not 0 < self.tolerance < 1:
@@ -85,7 +89,8 @@ class GateSettings:
 
     def design(self, workloads: int = 1) -> SequentialDesign:
         return SequentialDesign(
-            alpha=(1.0 - self.confidence) / max(1, workloads), delta=self.design_delta,
+            alpha=self.level_calibration * (1.0 - self.confidence) / max(1, workloads),
+            delta=self.design_delta,
             beta=self.beta, horizon_factor=self.horizon_factor,
             first=self.min_runs, max_blocks=self.max_runs,
         )
