@@ -186,3 +186,24 @@ def test_error_rates_large():
     k = at_tol.count("regression")
     # at most 5% judged with binomial uncertainty (3 standard errors)
     assert k / G <= 0.05 + 3 * math.sqrt(0.05 * 0.95 / G)
+
+
+def test_throughput_response_through_the_loop():
+    # planted: candidate takes 1.3x as long, so its throughput is 1/1.3 of the baseline's
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": 1.3}}, cv=0.03,
+                           work_items=1000.0)
+    ex = SimulatedExecutor(model, seed=8)
+    lv = {"baseline": "old", "candidate": "new"}
+    out = run_gate({"all": {}}, lambda k, r, i, w=False: RunSpec(levels={"build": lv[r]}), ex,
+                   GateSettings(higher_is_better=True), response="items_per_s", seed=9)
+    j = out.judgements["all"]
+    assert out.verdict == "regression" and out.exit_code() == 1
+    assert j.ratio == pytest.approx(1.3, rel=0.05)
+
+
+def test_exit_code_mapping_for_inconclusive():
+    st = GateSettings(max_runs=6, min_runs=6)
+    out = _sim(1.05, 0.05, 3, st)
+    assert out.verdict == "inconclusive"
+    assert out.exit_code() == 3
+    assert out.exit_code("pass") == 0 and out.exit_code("fail") == 1
