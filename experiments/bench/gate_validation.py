@@ -160,6 +160,10 @@ def main(argv=None) -> int:
     v, n = r["verdicts"], r["gates"]
     print(f"  interleaved gate:        false fail {fmt_rate(v['regression'], n)}, "
           f"undecided {100 * v['inconclusive'] / n:.2f}%, mean runs {r['mean_runs']:.2f}")
+    r = scenario("drift-boundary", 1 + tol, cv, G, st, drift=drift)
+    v, n = r["verdicts"], r["gates"]
+    print(f"  interleaved gate at the boundary ratio {1 + tol:.2f}: fail "
+          f"{fmt_rate(v['regression'], n)}, undecided {100 * v['inconclusive'] / n:.2f}%")
     k = 0
     for g in range(G):
         j = baseline_first(1.0, cv, 7919 * g + 3, st, nfix, drift)
