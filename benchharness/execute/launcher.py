@@ -171,6 +171,7 @@ class Launcher:
             self.clear_refs = os.open("/proc/self/clear_refs", os.O_WRONLY | os.O_CLOEXEC)
         except OSError:
             self.clear_refs = None
+        self.children_path = f"/proc/{self.pid}/task/{self.pid}/children"
         self.leftovers = set()   # live descendants that earlier runs left behind
         self.stop = False
 
@@ -220,6 +221,18 @@ class Launcher:
             if not _is_zombie(k):
                 out.append(k)
         return out
+
+    def own_children(self):
+        """Set of our direct children (zombies included); None if unreadable."""
+        try:
+            fd = os.open(self.children_path, os.O_RDONLY)
+        except OSError:
+            return None
+        try:
+            data = os.read(fd, 1 << 16)
+        finally:
+            os.close(fd)
+        return {int(x) for x in data.split()}
 
     def reap_orphans(self, run):
         """Reap every zombie child; the run's own child is recorded in ``run``."""
@@ -381,7 +394,7 @@ class Launcher:
         env = dict(req.get("env") or {})
         cwd = req.get("cwd") or self.cwd0
         try:
-            os.chdir(cwd)
+            os.chdir(cwd)  # every run: the folder may have been replaced since
         except OSError as e:
             return dict(base, status="failed",
                         message=f"cannot change to working directory {cwd!r}: {e.strerror}")
@@ -400,24 +413,14 @@ class Launcher:
 
         out_r, out_w = os.pipe()
         err_r, err_w = os.pipe()
-        pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
-        os.close(out_w)
-        os.close(err_w)
-        if pid is None:
-            os.close(out_r)
-            os.close(err_r)
-            return dict(base, status="failed", message=err)
-        pidfd = os.pidfd_open(pid)
-        if req.get("notify", True):
-            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
-
-        run = {"pid": pid, "orphans": []}
+        # Everything the wait needs is made before the spawn, so that only the
+        # pidfd is set up between the two clock readings.
+        run = {"pid": None, "orphans": []}
         bufs = {out_r: bytearray(), err_r: bytearray()}
         poller = select.poll()
-        for fd in (out_r, err_r, pidfd, self.rfd):
+        for fd in (out_r, err_r, self.rfd):
             poller.register(fd, select.POLLIN)
         open_pipes = {out_r, err_r}
-        deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
         t1 = None
         timed_out = False
         aborted = None
@@ -436,6 +439,21 @@ class Launcher:
             b += data
             if len(b) > cap:
                 del b[:len(b) - cap]
+
+        pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
+        if pid is not None:
+            pidfd = os.pidfd_open(pid)
+            poller.register(pidfd, select.POLLIN)
+        os.close(out_w)
+        os.close(err_w)
+        if pid is None:
+            os.close(out_r)
+            os.close(err_r)
+            return dict(base, status="failed", message=err)
+        run["pid"] = pid
+        if req.get("notify", True):
+            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
+        deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
 
         while True:
             now = time.perf_counter_ns()
@@ -483,16 +501,16 @@ class Launcher:
             _, status, ru = os.wait4(pid, 0)
             run["status_word"], run["rusage"] = status, ru
         os.close(pidfd)
-        self.reap_orphans(run)
-        left = [p for p in self.descendants() if p not in self.leftovers]
-        if left:
-            self.leftovers.update(left)
-            extra["leftover_processes"] = len(left)
-        if self.clear_refs is not None:
-            try:
-                os.write(self.clear_refs, b"5")
-            except OSError:
-                pass
+        # Our own children list is cheap to read; anything the run left
+        # behind has an ancestor in it (orphans are re-parented to us), so the
+        # full walk and the reaping only happen when it shows something new.
+        kids = self.own_children()
+        if kids is None or not kids <= self.leftovers:
+            self.reap_orphans(run)
+            left = [p for p in self.descendants() if p not in self.leftovers]
+            if left:
+                self.leftovers.update(left)
+                extra["leftover_processes"] = len(left)
 
         status_word = run["status_word"]
         ru = run["rusage"]
