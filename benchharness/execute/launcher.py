@@ -172,6 +172,7 @@ class Launcher:
         except OSError:
             self.clear_refs = None
         self.children_path = f"/proc/{self.pid}/task/{self.pid}/children"
+        self.env = {}
         self.leftovers = set()   # live descendants that earlier runs left behind
         self.stop = False
 
@@ -391,7 +392,9 @@ class Launcher:
             argv = ["/bin/sh", "-c", req["shell_command"]]
         else:
             argv = list(req["argv"])
-        env = dict(req.get("env") or {})
+        if "env" in req:  # absent: the same environment as the previous run
+            self.env = req["env"] or {}
+        env = self.env
         cwd = req.get("cwd") or self.cwd0
         try:
             os.chdir(cwd)  # every run: the folder may have been replaced since

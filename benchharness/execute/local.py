@@ -64,6 +64,7 @@ class LocalExecutor:
         os.close(l2c_w)
         self._w = c2l_w
         self._r = l2c_r
+        self._rbuf = bytearray()
         hello = self._recv(timeout_s=30)
         if hello.get("op") != "hello":
             self._kill_launcher()
@@ -74,6 +75,7 @@ class LocalExecutor:
         self.aslr_control: bool = hello["aslr_control"]
         self.aslr_reason: str = hello["aslr_reason"]
         self._current: tuple[int, int] | None = None
+        self._last_env: dict | None = None
 
     # ---------------------------------------------------------------- protocol
 
@@ -84,7 +86,7 @@ class LocalExecutor:
                 self._kill_launcher()
                 raise ExecutionError(f"the launcher did not answer within {timeout_s:g} s")
         try:
-            msg = _proto.recv(self._r)
+            msg = self._read_frame()
         except OSError as e:
             msg = None
             err = e
@@ -102,6 +104,25 @@ class LocalExecutor:
                 f"the launcher process died (exit status {code})"
                 + (f": {err}" if err else "") + "; no further runs can be measured")
         return msg
+
+    def _read_frame(self):
+        """One frame from the launcher (usually a single read); None at end of file."""
+        buf = self._rbuf
+        head = _proto.HEADER_SIZE
+        while len(buf) < head:
+            chunk = os.read(self._r, 1 << 16)
+            if not chunk:
+                return None
+            buf += chunk
+        end = head + int.from_bytes(buf[:head], "big")
+        while len(buf) < end:
+            chunk = os.read(self._r, max(1 << 16, end - len(buf)))
+            if not chunk:
+                return None
+            buf += chunk
+        body = bytes(buf[head:end])
+        del buf[:end]
+        return _proto.marshal.loads(body)
 
     def _send(self, obj: dict) -> None:
         try:
@@ -158,7 +179,6 @@ class LocalExecutor:
             "op": "run",
             "argv": list(spec.argv) if spec.argv is not None else None,
             "shell_command": spec.shell_command,
-            "env": {str(k): str(v) for k, v in spec.env.items()},
             "cwd": str(spec.cwd) if spec.cwd is not None else None,
             "timeout_s": float(spec.timeout_s) if spec.timeout_s is not None else None,
             "cpus": list(cpus) if cpus else None,
@@ -169,6 +189,12 @@ class LocalExecutor:
             "linger_s": self.linger_s,
             "notify": on_start is not None,
         }
+        # The environment is sent only when it differs from the previous run's
+        # (the runner reuses one per cell), which keeps the request small.
+        if self._last_env is None or spec.env != self._last_env:
+            env = {str(k): str(v) for k, v in spec.env.items()}
+            req["env"] = env
+            self._last_env = env
         try:
             self._send(req)
             msg = self._recv()
