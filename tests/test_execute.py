@@ -522,3 +522,36 @@ def test_drop_page_cache_says_why_not(tmp_path):
         assert reason == ""
     else:
         assert reason.startswith("cannot drop the page cache") and "drop_caches" in reason
+
+
+def test_orphaned_descendants_are_counted_in_the_run(ex):
+    # The child starts a worker it never waits for; the worker exits first and
+    # becomes the launcher's orphan at the child's exit. Its CPU time and peak
+    # memory belong to this run.
+    m = ex.execute(py("""
+        import os, time
+        pid = os.fork()
+        if pid == 0:
+            b = bytearray(120 * 1024 * 1024)
+            for i in range(0, len(b), 4096):
+                b[i] = 1
+            x = 0
+            for i in range(3_000_000):
+                x += i
+            t = os.times()
+            os.write(1, f"{t.user + t.system}\n".encode())
+            os._exit(0)
+        while True:  # wait until the worker is a zombie, without reaping it
+            st = open(f"/proc/{pid}/stat").read()
+            if st[st.rfind(")") + 2] == "Z":
+                break
+            time.sleep(0.01)
+    """))
+    assert m.status == "ok", m.message
+    assert m.extra.get("orphans_counted") == 1
+    worker_cpu_s = float(m.stdout_tail)
+    assert m.user_s + m.sys_s >= worker_cpu_s
+    assert m.max_rss_kib >= 120 * 1024
+    assert "leftover_processes" not in m.extra
+    nxt = ex.execute(spec("/bin/true"))
+    assert "orphans_counted" not in nxt.extra and nxt.max_rss_kib < 20 * 1024
