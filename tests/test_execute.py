@@ -539,7 +539,7 @@ def test_orphaned_descendants_are_counted_in_the_run(ex):
             for i in range(3_000_000):
                 x += i
             t = os.times()
-            os.write(1, f"{t.user + t.system}\n".encode())
+            os.write(1, f"{t.user + t.system}\\n".encode())
             os._exit(0)
         while True:  # wait until the worker is a zombie, without reaping it
             st = open(f"/proc/{pid}/stat").read()
