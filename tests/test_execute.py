@@ -555,3 +555,13 @@ def test_orphaned_descendants_are_counted_in_the_run(ex):
     assert "leftover_processes" not in m.extra
     nxt = ex.execute(spec("/bin/true"))
     assert "orphans_counted" not in nxt.extra and nxt.max_rss_kib < 20 * 1024
+
+
+def test_impossible_arguments_fail_the_run_not_the_launcher(ex):
+    m = ex.execute(spec("/bin/echo", "a\0b"))
+    assert m.status == "failed" and "cannot start" in m.message
+    m = ex.execute(spec("/bin/true", env=dict(ENV, BAD="x\0y")))
+    assert m.status == "failed"
+    m = ex.execute(spec("/bin/echo", "a\0b", nice=1))
+    assert m.status == "failed" and "cannot start" in m.message
+    assert ex.execute(spec("/bin/true")).status == "ok"

@@ -312,6 +312,8 @@ class Launcher:
                     setpgroup=0, setsigdef=(signal.SIGPIPE, signal.SIGXFSZ))
             except OSError as e:
                 return None, t0, f"cannot start {argv[0]!r}: {e.strerror or e}"
+            except (ValueError, TypeError) as e:  # e.g. a NUL byte in an argument
+                return None, t0, f"cannot start {argv[0]!r}: {e}"
             return pid, t0, None
         # fork+exec: the child sets itself up, writes its clock reading right
         # before execve (so the fork of this Python process is not timed),
@@ -563,7 +565,13 @@ class Launcher:
             if req is None or req.get("op") == "exit":
                 break
             if req.get("op") == "run":
-                reply = self.run(req)
+                try:
+                    reply = self.run(req)
+                except Exception as e:  # noqa: BLE001 - one bad request must not end the session
+                    reply = {"op": "done", "status": "failed", "exit_code": None, "wall_ns": None,
+                             "rusage": None, "stdout": b"", "stderr": b"", "extra": {},
+                             "started_at": utc_now_iso(),
+                             "message": f"the launcher could not run this: {type(e).__name__}: {e}"}
             elif req.get("op") == "ping":
                 reply = {"op": "pong", "leftovers": sorted(self.leftovers)}
             else:
