@@ -446,15 +446,21 @@ class Launcher:
                 del b[:len(b) - cap]
 
         pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
-        if pid is not None:
-            pidfd = os.pidfd_open(pid)
-            poller.register(pidfd, select.POLLIN)
-        os.close(out_w)
-        os.close(err_w)
         if pid is None:
-            os.close(out_r)
-            os.close(err_r)
+            for fd in (out_w, err_w, out_r, err_r):
+                os.close(fd)
             return dict(base, status="failed", message=err)
+        pidfd = os.pidfd_open(pid)
+        poller.register(pidfd, select.POLLIN)
+        # We keep our own write ends open while the child lives: its pipes then
+        # never reach end-of-file early, so its exit costs one wake-up (the
+        # pidfd) instead of three. They are closed as soon as it has exited.
+        held = [out_w, err_w]
+
+        def release():
+            while held:
+                os.close(held.pop())
+
         run["pid"] = pid
         if req.get("notify", True):
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
@@ -473,12 +479,14 @@ class Launcher:
                 timed_out = True
                 self.kill_tree(run, grace_s)
                 t1 = time.perf_counter_ns()
+                release()
                 linger_end = t1 + int(linger_s * 1e9)
                 poller.unregister(pidfd)
                 continue
             events = poller.poll(None if wait_ns is None else max(1, -(-wait_ns // 1_000_000)))
             if t1 is None and any(fd == pidfd for fd, _ in events):
                 t1 = time.perf_counter_ns()
+                release()
                 poller.unregister(pidfd)
                 linger_end = t1 + int(linger_s * 1e9)
             for fd, _ev in events:
@@ -498,8 +506,10 @@ class Launcher:
                     if t1 is None:
                         self.kill_tree(run, grace_s)
                         t1 = time.perf_counter_ns()
+                        release()
                         poller.unregister(pidfd)
                         linger_end = t1 + int(linger_s * 1e9)
+        release()
         for fd in (out_r, err_r):
             os.close(fd)
         if "rusage" not in run:
