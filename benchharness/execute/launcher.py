@@ -61,26 +61,30 @@ def send(fd, obj):
         view = view[n:]
 
 
-def _read_exact(fd, n):
-    parts = []
-    while n:
-        chunk = os.read(fd, n)
-        if not chunk:
-            return None
-        parts.append(chunk)
-        n -= len(chunk)
-    return b"".join(parts)
+class FrameReader:
+    """Buffered frame reader: one ``read`` usually brings a whole frame."""
 
+    def __init__(self, fd):
+        self.fd = fd
+        self.buf = bytearray()
 
-def recv(fd):
-    """Read one frame from ``fd``; None at end of file."""
-    head = _read_exact(fd, HEADER_SIZE)
-    if head is None:
-        return None
-    body = _read_exact(fd, int.from_bytes(head, "big"))
-    if body is None:
-        return None
-    return marshal.loads(body)
+    def read(self):
+        """The next frame's value; None at end of file."""
+        buf = self.buf
+        while len(buf) < HEADER_SIZE:
+            chunk = os.read(self.fd, 1 << 16)
+            if not chunk:
+                return None
+            buf += chunk
+        end = HEADER_SIZE + int.from_bytes(buf[:HEADER_SIZE], "big")
+        while len(buf) < end:
+            chunk = os.read(self.fd, max(1 << 16, end - len(buf)))
+            if not chunk:
+                return None
+            buf += chunk
+        body = bytes(buf[HEADER_SIZE:end])
+        del buf[:end]
+        return marshal.loads(body)
 
 
 def utc_now_iso():
@@ -154,6 +158,7 @@ def _is_zombie(pid):
 class Launcher:
     def __init__(self, rfd, wfd):
         self.rfd = rfd
+        self.reader = FrameReader(rfd)
         self.wfd = wfd
         os.set_inheritable(rfd, False)
         os.set_inheritable(wfd, False)
@@ -173,6 +178,7 @@ class Launcher:
             self.clear_refs = None
         self.children_path = f"/proc/{self.pid}/task/{self.pid}/children"
         self.env = {}
+        self.resolved = {}  # (command, PATH, cwd) -> executable path
         self.leftovers = set()   # live descendants that earlier runs left behind
         self.stop = False
 
@@ -403,9 +409,14 @@ class Launcher:
         except OSError as e:
             return dict(base, status="failed",
                         message=f"cannot change to working directory {cwd!r}: {e.strerror}")
-        path, err = _resolve(argv[0], env, cwd)
-        if err:
-            return dict(base, status="failed", message=err)
+        key = (argv[0], env.get("PATH"), cwd)
+        path = self.resolved.get(key)
+        if path is None or not os.access(path, os.X_OK):  # one check when seen before
+            path, err = _resolve(argv[0], env, cwd)
+            if err:
+                self.resolved.pop(key, None)
+                return dict(base, status="failed", message=err)
+            self.resolved[key] = path
         cap = int(req.get("capture_bytes", 65536))
         timeout_s = req.get("timeout_s")
         grace_s = float(req.get("kill_grace_s", 0.5))
@@ -495,7 +506,7 @@ class Launcher:
                 elif fd == self.rfd:
                     msg = None
                     try:
-                        msg = recv(self.rfd)
+                        msg = self.reader.read()
                     except Exception:  # noqa: BLE001
                         msg = None
                     if msg is None:
@@ -569,7 +580,7 @@ class Launcher:
         send(self.wfd, self.hello())
         while not self.stop:
             try:
-                req = recv(self.rfd)
+                req = self.reader.read()
             except OSError:
                 req = None
             if req is None or req.get("op") == "exit":

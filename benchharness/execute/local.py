@@ -64,7 +64,7 @@ class LocalExecutor:
         os.close(l2c_w)
         self._w = c2l_w
         self._r = l2c_r
-        self._rbuf = bytearray()
+        self._reader = _proto.FrameReader(l2c_r)
         hello = self._recv(timeout_s=30)
         if hello.get("op") != "hello":
             self._kill_launcher()
@@ -80,13 +80,13 @@ class LocalExecutor:
     # ---------------------------------------------------------------- protocol
 
     def _recv(self, timeout_s: float | None = None) -> dict:
-        if timeout_s is not None:
+        if timeout_s is not None and not self._reader.buf:
             ready, _, _ = select.select([self._r], [], [], timeout_s)
             if not ready:
                 self._kill_launcher()
                 raise ExecutionError(f"the launcher did not answer within {timeout_s:g} s")
         try:
-            msg = self._read_frame()
+            msg = self._reader.read()
         except OSError as e:
             msg = None
             err = e
@@ -104,25 +104,6 @@ class LocalExecutor:
                 f"the launcher process died (exit status {code})"
                 + (f": {err}" if err else "") + "; no further runs can be measured")
         return msg
-
-    def _read_frame(self):
-        """One frame from the launcher (usually a single read); None at end of file."""
-        buf = self._rbuf
-        head = _proto.HEADER_SIZE
-        while len(buf) < head:
-            chunk = os.read(self._r, 1 << 16)
-            if not chunk:
-                return None
-            buf += chunk
-        end = head + int.from_bytes(buf[:head], "big")
-        while len(buf) < end:
-            chunk = os.read(self._r, max(1 << 16, end - len(buf)))
-            if not chunk:
-                return None
-            buf += chunk
-        body = bytes(buf[head:end])
-        del buf[:end]
-        return _proto.marshal.loads(body)
 
     def _send(self, obj: dict) -> None:
         try:
