@@ -569,3 +569,34 @@ def test_impossible_arguments_fail_the_run_not_the_launcher(ex):
     m = ex.execute(spec("/bin/echo", "a\0b", nice=1))
     assert m.status == "failed" and "cannot start" in m.message
     assert ex.execute(spec("/bin/true")).status == "ok"
+
+
+HARNESS = """
+import sys
+sys.path.insert(0, {root!r})
+from benchharness.execute.base import RunSpec
+from benchharness.execute.local import LocalExecutor
+ex = LocalExecutor()
+def on_start(pid, pgid):
+    print(ex.launcher_pid, pid, flush=True)
+ex.execute(RunSpec(argv=("/bin/sleep", "60"), env={{"PATH": "/usr/bin:/bin"}}), on_start=on_start)
+"""
+
+
+def test_harness_killed_mid_run_takes_the_run_with_it(tmp_path):
+    # SIGKILL of the harness: the launcher sees its request pipe close, kills
+    # the run's tree and exits, so nothing is left running.
+    import subprocess
+    from pathlib import Path
+    script = tmp_path / "harness.py"
+    script.write_text(HARNESS.format(root=str(Path(__file__).resolve().parent.parent)))
+    p = subprocess.Popen([PY, str(script)], stdout=subprocess.PIPE, text=True)
+    launcher_pid, child_pid = map(int, p.stdout.readline().split())
+    assert alive(child_pid) and alive(launcher_pid)
+    p.kill()
+    p.wait()
+    deadline = time.monotonic() + 5
+    while (alive(child_pid) or alive(launcher_pid)) and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert not alive(child_pid)
+    assert not alive(launcher_pid)
