@@ -600,3 +600,25 @@ def test_harness_killed_mid_run_takes_the_run_with_it(tmp_path):
         time.sleep(0.02)
     assert not alive(child_pid)
     assert not alive(launcher_pid)
+
+
+def test_a_later_timeout_spares_what_earlier_runs_left_running(ex, tmp_path):
+    pidfile = tmp_path / "pid"
+    m = ex.execute(py(f"""
+        import os, time
+        if os.fork() == 0:
+            os.setsid()
+            open({str(pidfile)!r}, "w").write(str(os.getpid()))
+            time.sleep(30)
+            os._exit(0)
+        while not os.path.exists({str(pidfile)!r}):
+            time.sleep(0.01)
+    """))
+    assert m.status == "ok" and m.extra.get("leftover_processes") == 1
+    server = int(pidfile.read_text())
+    try:
+        t = ex.execute(spec("/bin/sleep", "10", timeout_s=0.2))
+        assert t.status == "timeout"
+        assert alive(server)  # belongs to the earlier run, not to the one timed out
+    finally:
+        os.kill(server, signal.SIGKILL)

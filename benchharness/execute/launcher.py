@@ -203,7 +203,11 @@ class Launcher:
     # ---- process tree
 
     def descendants(self):
-        """Every live descendant pid of the launcher (zombies excluded)."""
+        """Every live descendant pid of the launcher (zombies excluded).
+
+        Processes that earlier runs left behind, and their own descendants,
+        are not part of the current run and are skipped.
+        """
         out = []
         todo = [self.pid]
         seen = set()
@@ -221,7 +225,7 @@ class Launcher:
                     continue
                 for k in kids:
                     k = int(k)
-                    if k not in seen:
+                    if k not in seen and k not in self.leftovers:
                         seen.add(k)
                         todo.append(k)
         for k in seen:
