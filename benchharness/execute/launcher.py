@@ -535,8 +535,9 @@ class Launcher:
         # behind has an ancestor in it (orphans are re-parented to us), so the
         # full walk and the reaping only happen when it shows something new.
         kids = self.own_children()
+        if kids is None or kids:
+            self.reap_orphans(run)  # also reaps leftovers of earlier runs that died
         if kids is None or not kids <= self.leftovers:
-            self.reap_orphans(run)
             left = [p for p in self.descendants() if p not in self.leftovers]
             if left:
                 self.leftovers.update(left)
