@@ -282,7 +282,8 @@ if os.fork() == 0:          # grandchild that escapes into its own session
     record("session-leader")
     {leader_tail}
     os._exit(0)
-time.sleep(0.3)
+while len(open(pidfile).read().splitlines()) < 4:  # everyone has said who they are
+    time.sleep(0.01)
 print("ready", flush=True)
 time.sleep(60)
 """
@@ -296,14 +297,14 @@ def test_timeout_kills_the_whole_tree_including_setsid_escapees(ex, tmp_path, le
     script.write_text(ESCAPER.format(leader_tail=leader_tail))
     started = []
     t = time.perf_counter()
-    m = ex.execute(spec(PY, script, pidfile, timeout_s=1.0),
+    m = ex.execute(spec(PY, script, pidfile, timeout_s=2.0),
                    on_start=lambda pid, pgid: started.append((pid, pgid)))
     took = time.perf_counter() - t
     assert m.status == "timeout"
-    assert "timed out after 1 s" in m.message
+    assert "timed out after 2 s" in m.message
     assert m.exit_code == -signal.SIGTERM
-    assert 1.0 <= m.wall_s < 1.0 + 0.3 + 0.5  # timeout + grace (SIGTERM ignored) + slack
-    assert took < 5  # the escapee holds stdout open; reading stops shortly after the reap
+    assert 2.0 <= m.wall_s < 2.0 + 0.3 + 0.7  # timeout + grace (SIGTERM ignored) + slack
+    assert took < 6  # the escapee holds stdout open; reading stops shortly after the reap
     assert m.stdout_tail == b"ready\n"
     assert started and started[0][0] == started[0][1]
     pids = {line.split()[0]: int(line.split()[1]) for line in pidfile.read_text().splitlines()}
@@ -325,7 +326,8 @@ def test_child_exiting_early_with_escaped_holder_does_not_hang(ex, tmp_path):
             open({str(pidfile)!r}, "w").write(str(os.getpid()))
             time.sleep(3)
             os._exit(0)
-        time.sleep(0.1)
+        while not os.path.exists({str(pidfile)!r}):
+            time.sleep(0.01)
         print("parent done", flush=True)
     """, timeout_s=10))
     took = time.perf_counter() - t
@@ -622,3 +624,21 @@ def test_a_later_timeout_spares_what_earlier_runs_left_running(ex, tmp_path):
         assert alive(server)  # belongs to the earlier run, not to the one timed out
     finally:
         os.kill(server, signal.SIGKILL)
+
+
+def test_runs_from_several_threads_do_not_overlap(ex):
+    import threading
+    results = []
+
+    def worker():
+        results.append(ex.execute(py("import time; t = time.time(); time.sleep(0.1); "
+                                     "print(t, time.time())")))
+
+    threads = [threading.Thread(target=worker) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert [m.status for m in results] == ["ok"] * 4
+    spans = sorted(tuple(map(float, m.stdout_tail.split())) for m in results)
+    assert all(a[1] <= b[0] for a, b in zip(spans, spans[1:]))

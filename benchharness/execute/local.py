@@ -22,6 +22,7 @@ import select
 import signal
 import subprocess
 import sys
+import threading
 from pathlib import Path
 
 from benchharness.errors import ExecutionError
@@ -46,6 +47,7 @@ class LocalExecutor:
         self.kill_grace_s = float(kill_grace_s)
         self.linger_s = float(linger_s)
         self._proc: subprocess.Popen | None = None
+        self._lock = threading.Lock()
         self._closed = False
         c2l_r, c2l_w = os.pipe()   # harness -> launcher
         l2c_r, l2c_w = os.pipe()   # launcher -> harness
@@ -147,8 +149,13 @@ class LocalExecutor:
         Raises `ExecutionError` when the request itself is impossible (no
         command, CPUs that do not exist) or the launcher died; a command that
         fails, cannot start or times out is a `Measurement` with status
-        ``failed``/``timeout``, not an exception.
+        ``failed``/``timeout``, not an exception. Calls from several threads
+        are served one after another (runs on one machine never overlap).
         """
+        with self._lock:
+            return self._execute(spec, on_start)
+
+    def _execute(self, spec: RunSpec, on_start: OnStart | None) -> Measurement:
         if self._closed:
             raise ExecutionError("this executor is closed")
         if (spec.argv is None) == (spec.shell_command is None):
@@ -198,8 +205,9 @@ class LocalExecutor:
 
     def leftovers(self) -> list[int]:
         """Pids of processes that earlier runs left running (still alive)."""
-        self._send({"op": "ping"})
-        return list(self._recv(timeout_s=30)["leftovers"])
+        with self._lock:
+            self._send({"op": "ping"})
+            return list(self._recv(timeout_s=30)["leftovers"])
 
     def close(self) -> None:
         """Stop the launcher (processes that runs left behind are not killed)."""
