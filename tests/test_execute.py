@@ -642,3 +642,19 @@ def test_runs_from_several_threads_do_not_overlap(ex):
     assert [m.status for m in results] == ["ok"] * 4
     spans = sorted(tuple(map(float, m.stdout_tail.split())) for m in results)
     assert all(a[1] <= b[0] for a, b in zip(spans, spans[1:]))
+
+
+def test_max_rss_covers_descendants_the_child_waited_for(ex):
+    # wait4's usage of a child includes the children it reaped itself
+    # (getrusage(2): RUSAGE_CHILDREN is folded into the parent's figures at
+    # its exit), so a small driver script running a big worker reports the
+    # worker's peak; CPU time adds up.
+    m = ex.execute(py("""
+        import subprocess, sys
+        subprocess.run([sys.executable, "-c",
+                        "b = bytearray(150 * 1024 * 1024); "
+                        "[b.__setitem__(i, 1) for i in range(0, len(b), 4096)]"], check=True)
+    """))
+    assert m.status == "ok", m.message
+    assert m.max_rss_kib >= 150 * 1024
+    assert "orphans_counted" not in m.extra
