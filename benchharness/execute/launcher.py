@@ -567,7 +567,6 @@ class Launcher:
         else:
             exit_code = os.waitstatus_to_exitcode(status_word)
             why = f"exit code {exit_code}"
-        tail = _tail_text(stderr)
         if aborted:
             status, message = "failed", aborted
         elif timed_out:
@@ -577,6 +576,7 @@ class Launcher:
             status, message = "ok", ""
         else:
             status = "failed"
+            tail = _tail_text(stderr)
             message = why + (f": {tail}" if tail else " (nothing on stderr)")
         return dict(base, status=status, exit_code=exit_code, wall_ns=t1 - t0,
                     rusage=tuple(usage), stdout=stdout, stderr=stderr, message=message)
