@@ -127,6 +127,12 @@ def many_to_one_critical(lambdas, df, confidence: float = 0.95) -> float:
     return float(brentq(f, lo, hi, xtol=1e-9, rtol=1e-10))
 
 
+@lru_cache(maxsize=4096)
+def _critical_cached(lambdas: tuple, df: float, confidence: float) -> float:
+    # the critical value depends only on the sorted weights, df and level
+    return many_to_one_critical(np.array(lambdas), df, confidence)
+
+
 def dunnett_critical(n_control: int, n_others, df, confidence: float = 0.95) -> float:
     """One-sided many-to-one critical value for group sizes as in Dunnett (1955).
 
@@ -186,14 +192,10 @@ def mcb(means, weights, sigma: float, df, confidence: float = 0.95) -> MCBResult
         return MCBResult((float(m[0]),), (float(w[0]),), float(sigma), float(df), confidence,
                          (0.0,), (0.0,), (0.0,), (True,))
     d = np.empty(k)
-    cache: dict[tuple, float] = {}
     for i in range(k):
         others = np.delete(w, i)
         lam = np.sqrt(w[i] / (w[i] + others))
-        key = tuple(np.round(np.sort(lam), 12))
-        if key not in cache:
-            cache[key] = many_to_one_critical(lam, df, confidence)
-        d[i] = cache[key]
+        d[i] = _critical_cached(tuple(np.round(np.sort(lam), 12)), float(df), float(confidence))
     se = sigma * np.sqrt(w[:, None] + w[None, :])
     diff = m[:, None] - m[None, :]  # diff[i, j] = m_i - m_j
     upper = diff + d[:, None] * se
