@@ -295,7 +295,9 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
         if all(v == default[f] for f, v in zip(names, settings[i])):
             parts.append("it is the current default")
     if res.tied[i]:
-        if lo < 0 and hi <= 0:
+        if lo >= 0 and hi <= 0:
+            parts.append("as good as the best (the data show no difference at all)")
+        elif lo < 0 and hi <= 0:
             parts.append(f"better than every other setting ({conf} confidence), by at most "
                          f"{_loss_words(-lo, is_log)}")
         elif hi <= 0:
