@@ -88,8 +88,11 @@ def test_command_line_overrides_the_section(cli, folder):
     r = cli("choose", folder, "--across", "", "--also", "", "--json", "-")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
-    # --across "" is "not given": the section still applies
-    assert d["across"] == ["disk"]
+    # an empty value switches the section's across/also off: disk is then a
+    # control factor too, so settings are threads x disk
+    assert d["across"] == [] and "pareto" not in d
+    assert d["factors"] == ["threads", "disk"]
+    assert d["best"] == {"threads": "16", "disk": "nvme"}
     r = cli("choose", folder, "--confidence", "0.9", "--response", "max_rss_kib", "--json", "-")
     d = json.loads(r.stdout)
     assert d["response"] == "max_rss_kib" and d["confidence"] == 0.9

@@ -96,7 +96,7 @@ def _describe(setting: Mapping) -> str:
     return ", ".join(f"{k}={v}" for k, v in setting.items()) or "(all runs)"
 
 
-def choose(data, response: str | None = "wall_s", factors=None, across=(), also=(),
+def choose(data, response: str | None = "wall_s", factors=None, across=None, also=None,
            confidence: float | None = 0.95, prefer: Mapping | None = None, better=None,
            scale: str = "auto", residual: str = "auto") -> Choice:
     """Choose a default setting from a runs table.
@@ -109,8 +109,10 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
     ``lower``/``higher`` for ``response`` or a mapping response -> direction
     (default: the experiment's ``metrics:`` section, else lower).
     Settings from the experiment's ``choose:`` section fill whatever is not
-    given here (pass ``response=None`` / ``confidence=None`` to take those
-    from the section too; they default to ``wall_s`` and 0.95).
+    given here: ``across``/``also`` left as None come from the section (an
+    empty list means none); pass ``response=None`` / ``confidence=None`` to
+    take those from the section too (else ``wall_s`` and 0.95). ``prefer`` is
+    merged over the section's.
     """
     from benchharness.choose.config import choose_settings, load_source, metric_directions
     from benchharness.choose.mcb import mcb
@@ -132,8 +134,8 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
         raise UsageError(f"confidence must be a number between 0 and 1, not {confidence!r}")
     if not 0 < confidence < 1:
         raise UsageError(f"confidence must be between 0 and 1 (e.g. 0.95), not {confidence}")
-    across = _as_list(across) or _as_list(section.get("across"))
-    also = _as_list(also) or _as_list(section.get("also"))
+    across = _as_list(section.get("across") if across is None else across)
+    also = _as_list(section.get("also") if also is None else also)
     prefer = {**section.get("prefer", {}), **{str(k): str(v) for k, v in (prefer or {}).items()}}
     if factors_list is None:
         if experiment is not None:

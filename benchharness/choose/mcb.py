@@ -70,7 +70,7 @@ def _s_rule(df: float):
     """Nodes and weights for s = sqrt(chi2_df/df) (a point mass at 1 when df is infinite)."""
     if not np.isfinite(df):
         return np.array([1.0]), np.array([1.0])
-    from scipy.stats import chi2
+    from scipy.special import chdtri  # inverse survival function of chi-square
 
     # Gauss-Legendre on u in (0, 1) after the probability transform
     # s = sqrt(chi2.ppf(u)/df); the integrand is bounded and smooth inside.
@@ -84,7 +84,7 @@ def _s_rule(df: float):
         ws.append(w * (b - a) / 2)
     u = np.concatenate(us)
     wt = np.concatenate(ws)
-    s = np.sqrt(chi2.ppf(u, df) / df)
+    s = np.sqrt(chdtri(df, 1.0 - u) / df)
     return s, wt
 
 
@@ -111,8 +111,6 @@ def many_to_one_cdf(d, lambdas, df) -> float:
 
 def many_to_one_critical(lambdas, df, confidence: float = 0.95) -> float:
     """The one-sided critical value d with P(all T_j <= d) = confidence."""
-    from scipy.optimize import brentq
-
     if not 0 < confidence < 1:
         raise ValueError("confidence must lie strictly between 0 and 1")
     lam = np.asarray(lambdas, dtype=float).reshape(-1)
@@ -124,7 +122,34 @@ def many_to_one_critical(lambdas, df, confidence: float = 0.95) -> float:
         hi *= 2
         if hi > 1e4:
             raise ValueError("critical value did not converge (too few degrees of freedom?)")
-    return float(brentq(f, lo, hi, xtol=1e-9, rtol=1e-10))
+    return _root(f, lo, hi)
+
+
+def _root(f, a: float, b: float, tol: float = 1e-10) -> float:
+    """Root of an increasing f bracketed by [a, b]: Illinois regula falsi with
+    bisection steps (keeps scipy.optimize, a slow import, off the command path)."""
+    fa, fb = f(a), f(b)
+    side = 0
+    for _ in range(200):
+        if b - a <= tol * (1 + abs(a) + abs(b)):
+            break
+        c = b - fb * (b - a) / (fb - fa) if fb != fa else (a + b) / 2
+        if not a < c < b:
+            c = (a + b) / 2
+        fc = f(c)
+        if fc == 0:
+            return float(c)
+        if (fc < 0) == (fa < 0):
+            a, fa = c, fc
+            if side == -1:
+                fb /= 2
+            side = -1
+        else:
+            b, fb = c, fc
+            if side == 1:
+                fa /= 2
+            side = 1
+    return float((a + b) / 2)
 
 
 @lru_cache(maxsize=4096)

@@ -28,9 +28,10 @@ def add_parser(subparsers):
     p.add_argument("--factors", default=None, metavar="A,B",
                    help="factor columns (needed for a CSV without an experiment file)")
     p.add_argument("--across", default=None, metavar="F,...",
-                   help="environment columns the default must live with (not choices)")
+                   help="environment columns the default must live with (not choices); "
+                        "'' for none even if the experiment file names some")
     p.add_argument("--also", default=None, metavar="METRIC,...",
-                   help="further responses for the trade-off front, e.g. max_rss_kib")
+                   help="further responses for the trade-off front, e.g. max_rss_kib; '' for none")
     p.add_argument("--confidence", default=None, type=float,
                    help="confidence level, between 0 and 1 (default 0.95)")
     p.add_argument("--prefer", action="append", default=[], metavar="FACTOR=LEVEL",
@@ -79,8 +80,8 @@ def run(args) -> int:
         args.source,
         response=args.response,
         factors=args.factors,
-        across=args.across or (),
-        also=args.also or (),
+        across=args.across,   # None: from the choose: section; "": none
+        also=args.also,
         confidence=args.confidence,
         prefer=_prefer(args.prefer),
         better=args.better,
