@@ -335,14 +335,15 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
         out.append(f"{n_t} settings cannot be told apart from the best at {conf} confidence; "
                    f"recommending {best} because {why}.")
     if main.across:
+        across_words = " and ".join(main.across)
         r = _describe(as_map(settings[rob.robust]))
         a = _describe(as_map(settings[rob.on_average]))
         wr = _loss_words(rob.worst_loss[rob.robust], is_log)
         if disagreement is None and rob.worst_loss[rob.robust] <= 1e-12:
-            out.append(f"Across {', '.join(main.across)}, {r} has the best estimate in every "
+            out.append(f"Across {across_words}, {r} has the best estimate in every "
                        "environment.")
         elif disagreement is None:
-            out.append(f"Across {', '.join(main.across)}, {r} is both the safest choice "
+            out.append(f"Across {across_words}, {r} is both the safest choice "
                        f"(never more than {wr} worse than the best of an environment) and the "
                        "best on average.")
         else:
@@ -350,10 +351,17 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
             there = (f"{r} is the best there" if disagreement["robust_loss"] <= 1e-12 else
                      f"{r}: {_loss_words(disagreement['robust_loss'], is_log)} worse there")
             out.append(
-                f"Across {', '.join(main.across)}, {r} is the safest choice (never more than "
+                f"Across {across_words}, {r} is the safest choice (never more than "
                 f"{wr} worse than the best of an environment), while {a} is best on average "
                 f"but {_loss_words(disagreement['on_average_loss'], is_log)} worse than the "
                 f"best where {env} ({there}).")
+    if main.across and best_i not in (rob.robust, rob.on_average):
+        e = int(rob.worst_env[best_i])
+        env = _describe(dict(zip(main.across, main.environments[e])))
+        out.append(f"Mind that {best} is {_loss_words(rob.worst_loss[best_i], is_log)} worse "
+                   f"than the best where {env}; "
+                   f"{_describe(as_map(settings[rob.robust]))} never loses more than "
+                   f"{_loss_words(rob.worst_loss[rob.robust], is_log)}.")
     if also and pareto_idx is not None:
         if len(pareto_idx) == len(settings):
             out.append(f"Trading {main.response} against {', '.join(also)}: all "

@@ -73,8 +73,10 @@ def section_dict(choice) -> dict:
         f"can be, at {d['confidence'] * 100:g}% confidence (multiple comparisons with the best).",
     ]
     if d["across"]:
+        what = (f"{d['across'][0]} level" if len(d["across"]) == 1
+                else " and ".join(d["across"]) + " combination")
         notes.append("Worst environment: the setting's ratio to the best setting of the "
-                     f"{', '.join(d['across'])} level where it does worst (estimates).")
+                     f"{what} where it does worst (estimates).")
     return {
         "title": "Choosing a default",
         "summary": list(d["reasons"]),
