@@ -245,3 +245,29 @@ def test_open_dataset_plant_growth():
     assert c.tied == expected == [{"group": "ctrl"}, {"group": "trt2"}]
     # trt2 weighs most, but the data cannot tell it from ctrl: the default stays
     assert c.estimated_best == {"group": "trt2"} and c.best == {"group": "ctrl"}
+
+
+def test_two_across_columns_and_a_fragile_tied_default():
+    # Planted: glibc with 4 threads is tied on average with jemalloc-4 and is
+    # the default (first listed), but 50 % slower on arm with large inputs.
+    rng = np.random.default_rng(1)
+    rows = []
+    for alloc in ["glibc", "jemalloc"]:
+        for t in ["2", "4"]:
+            for m in ["arm", "x86"]:
+                for inp in ["small", "large"]:
+                    mu = 1.0 + 0.1 * (alloc == "jemalloc") - 0.2 * (t == "4")
+                    mu += 0.5 if (alloc == "glibc" and m == "arm" and inp == "large") else 0
+                    rows += [dict(alloc=alloc, threads=t, machine=m, input=inp, status="ok",
+                                  wall_s=mu * np.exp(rng.normal(0, 0.02))) for _ in range(3)]
+    c = choose(pd.DataFrame(rows), factors=["alloc", "threads", "machine", "input"],
+               across=["machine", "input"], prefer={"threads": "4"})
+    assert c.control == ("alloc", "threads")
+    assert c.best == {"alloc": "glibc", "threads": "4"}
+    assert {"alloc": "jemalloc", "threads": "4"} in c.tied
+    assert c.robust["setting"] == {"alloc": "jemalloc", "threads": "4"}
+    fragile = next(x for x in c.candidates if x["recommended"])
+    assert fragile["worst_environment"] == {"machine": "arm", "input": "large"}
+    assert fragile["worst_ratio"] == pytest.approx(1.3 / 0.9, rel=0.05)
+    assert any(r.startswith("Mind that alloc=glibc, threads=4") and "machine=arm, input=large" in r
+               for r in c.reasons)
