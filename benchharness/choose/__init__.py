@@ -358,10 +358,13 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
     if main.across and best_i not in (rob.robust, rob.on_average):
         e = int(rob.worst_env[best_i])
         env = _describe(dict(zip(main.across, main.environments[e])))
+        safe = _describe(as_map(settings[rob.robust]))
+        safe_words = (f"{safe} is the best in every environment"
+                      if rob.worst_loss[rob.robust] <= 1e-12 else
+                      f"{safe} never loses more than "
+                      f"{_loss_words(rob.worst_loss[rob.robust], is_log)}")
         out.append(f"Mind that {best} is {_loss_words(rob.worst_loss[best_i], is_log)} worse "
-                   f"than the best where {env}; "
-                   f"{_describe(as_map(settings[rob.robust]))} never loses more than "
-                   f"{_loss_words(rob.worst_loss[rob.robust], is_log)}.")
+                   f"than the best where {env}; {safe_words}.")
     if also and pareto_idx is not None:
         if len(pareto_idx) == len(settings):
             out.append(f"Trading {main.response} against {', '.join(also)}: all "
