@@ -16,7 +16,7 @@ The result is a frozen `Choice` whose ``to_dict()`` is plain JSON.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
