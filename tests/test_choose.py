@@ -271,3 +271,30 @@ def test_two_across_columns_and_a_fragile_tied_default():
     assert fragile["worst_ratio"] == pytest.approx(1.3 / 0.9, rel=0.05)
     assert any(r.startswith("Mind that alloc=glibc, threads=4") and "machine=arm, input=large" in r
                for r in c.reasons)
+
+
+def test_block_term_takes_drift_out_of_the_noise():
+    # Planted: two hosts differ by 30 %, each setting ran 4 times on each host;
+    # zlib-6 is 3 % faster than lzma-1. With host as a block term the difference
+    # shows; pooled into the noise it does not. Reference for the noise:
+    # statsmodels ols "y ~ C(codec) + C(host)" residual mean square.
+    import statsmodels.formula.api as smf
+
+    rng = np.random.default_rng(12)
+    rows = [{"codec": c, "host": h, "status": "ok",
+             "wall_s": mu * hf * float(np.exp(rng.normal(0, 0.01)))}
+            for c, mu in [("zlib", 1.0), ("lzma", 1.03)] for h, hf in [("h1", 1.0), ("h2", 1.3)]
+            for _ in range(4)]
+    df = pd.DataFrame(rows)
+    with_block = choose(df, factors=["codec"])  # auto: host spans two values
+    assert with_block.residual["block"] == "host"
+    df["y"] = np.log(df["wall_s"])
+    fit = smf.ols("y ~ C(codec) + C(host)", data=df).fit()
+    assert with_block.residual["sigma"] ** 2 == pytest.approx(fit.mse_resid, rel=1e-10)
+    assert with_block.residual["df"] == fit.df_resid
+    assert with_block.tied == [{"codec": "zlib"}]
+    without = choose(df, factors=["codec"], block=False)
+    assert without.residual["block"] is None
+    assert len(without.tied) == 2
+    with pytest.raises(UsageError, match="both the block"):
+        choose(df, factors=["codec"], block="codec")

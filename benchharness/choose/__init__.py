@@ -98,7 +98,7 @@ def _describe(setting: Mapping) -> str:
 
 def choose(data, response: str | None = "wall_s", factors=None, across=None, also=None,
            confidence: float | None = 0.95, prefer: Mapping | None = None, better=None,
-           scale: str = "auto", residual: str = "auto") -> Choice:
+           scale: str = "auto", residual: str = "auto", block=None) -> Choice:
     """Choose a default setting from a runs table.
 
     ``data``: a DataFrame, a CSV path or a results folder. ``factors``: the
@@ -112,7 +112,9 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     given here: ``across``/``also`` left as None come from the section (an
     empty list means none); pass ``response=None`` / ``confidence=None`` to
     take those from the section too (else ``wall_s`` and 0.95). ``prefer`` is
-    merged over the section's.
+    merged over the section's. ``block``: None/"auto" fits the default block
+    term (``block`` for ``order: blocked`` experiments, ``host`` when the runs
+    span several hosts), a column name fits that one, False fits none.
     """
     from benchharness.choose.config import choose_settings, load_source, metric_directions
     from benchharness.choose.mcb import mcb
@@ -157,13 +159,15 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     elif better is not None:
         directions[response] = str(better)
 
+    block = _block_column(block, df, experiment, factors_list, across, response)
+
     orders = level_orders(df[df["status"].astype(str) == "ok"] if "status" in df.columns else df,
                           control + across, experiment)
 
     def fit(resp):
         return fit_response(df, resp, control, across, better=directions.get(resp, "lower"),
                             scale=scale if resp == response else "auto", orders=orders,
-                            residual=residual)
+                            residual=residual, block=block)
 
     main = fit(response)
     settings = main.settings
@@ -268,13 +272,35 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
         estimated_best=as_map(settings[top_i]), tied=[as_map(settings[i]) for i in tied_idx],
         robust=robust, on_average=on_average, disagreement=disagreement,
         candidates=candidates,
-        residual={"model": main.residual_model, "sigma": main.sigma, "df": main.df,
-                  "critical": list(res.critical)},
+        residual={"model": main.residual_model, "block": main.block, "sigma": main.sigma,
+                  "df": main.df, "critical": list(res.critical)},
         prefer=dict(default), also=tuple(also),
         pareto=None if pareto_idx is None else [as_map(settings[i]) for i in pareto_idx],
         responses=responses_info, reasons=reasons, runs_used=main.n_runs,
         runs_dropped=main.dropped_runs,
     )
+
+
+def _block_column(block, df, experiment, factors, across, response):
+    """The block column to fit, following the analysis's default (see model.py)."""
+    if block is False or block == "":
+        return None
+    taken = set(factors) | set(across) | {response}
+    if block is None or block == "auto":
+        ok = df[df["status"].astype(str) == "ok"] if "status" in df.columns else df
+        if getattr(experiment, "order", None) == "blocked" and "block" in df.columns \
+                and "block" not in taken:
+            return "block"
+        if "host" in df.columns and "host" not in taken and ok["host"].nunique() > 1:
+            return "host"
+        return None
+    block = str(block)
+    if block not in df.columns:
+        raise DataError(f"no block column {block!r} in the table")
+    if block in taken:
+        raise UsageError(f"{block!r} cannot be both the block and a factor, an --across "
+                         "column or the response")
+    return block
 
 
 def _loss_words(x: float, is_log: bool) -> str:

@@ -67,8 +67,10 @@ def section_dict(choice) -> dict:
         f"Response {d['response']} ({d['better']} is better), analysed on the "
         f"{'log' if d['scale'] == 'log' else 'original'} scale; "
         f"{d['runs_used']} ok runs used, {d['runs_dropped']} left out.",
-        f"Noise: pooled residual of the {'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
-        f"model, {res['df']:g} degrees of freedom.",
+        f"Noise: pooled residual of the "
+        f"{'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
+        f"model{' with ' + res['block'] + ' as an additive block term' if res.get('block') else ''}, "
+        f"{res['df']:g} degrees of freedom.",
         "Worst-case loss: how much worse than the best of the other settings this setting "
         f"can be, at {d['confidence'] * 100:g}% confidence (multiple comparisons with the best).",
     ]

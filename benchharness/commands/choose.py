@@ -38,6 +38,11 @@ def add_parser(subparsers):
                    help="current default of a factor; ties go its way (repeatable)")
     p.add_argument("--better", choices=("lower", "higher"), default=None,
                    help="direction of the response (default: metrics: section, else lower)")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--block", default=None, metavar="COL",
+                   help="block column fitted as an additive noise term (default: 'block' for "
+                        "blocked experiments, 'host' when runs span several hosts)")
+    g.add_argument("--no-block", action="store_true", help="fit no block term")
     p.add_argument("--json", default=None, metavar="FILE",
                    help="also write the choice as JSON to FILE ('-' for standard output only)")
     p.set_defaults(func=run)
@@ -85,6 +90,7 @@ def run(args) -> int:
         confidence=args.confidence,
         prefer=_prefer(args.prefer),
         better=args.better,
+        block=False if args.no_block else args.block,
     )
     data = json.dumps(_finite(choice.to_dict()), indent=2, allow_nan=False)
     if args.json == "-":
