@@ -143,6 +143,9 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     from benchharness.design import build_plan
     from benchharness.host import collect_facts
 
+    from benchharness.quality import quality_config
+
+    quality_config(exp)  # bad expect/metrics/samples/perf sections fail before a folder exists
     plan = plan or build_plan(exp, seed=seed)
     folder = J.new_folder(Path(base), exp.name, out)
     lock = J.FolderLock(folder)
@@ -294,6 +297,14 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     interrupted = False
     records_new = 0
     progress.start(len(planned), len(planned) - len(todo), folder)
+    from benchharness.quality import RunQuality
+
+    quality = RunQuality(exp, folder)
+    distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
+    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    for note in quality.notes:
+        progress.note(note)
+    quality.notes.clear()
     timeout_s = exp.timeout_s
     inflight_pgid = [None]
 
@@ -326,10 +337,11 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if rm.status != "ok":
                     status, message = "failed", f"reset failed: {_short(rm)}"
             if status is None:
-                m = executor.execute(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                           run_id=pr["run"], levels=levels),
-                                     on_start=on_start_for(pr["run"]))
+                spec, qtoken = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
+                                                     run_id=pr["run"], levels=levels), levels, c)
+                m = executor.execute(spec, on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
+                m = quality.finish(qtoken, pr, m)  # expect, metrics, samples, perf counts
                 status = m.status
                 message = m.message if m.status != "ok" else (m.message or "")
                 if pr["warmup"]:
@@ -361,6 +373,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     finally:
         progress.stop()
         jr.close()
+        quality.close()
         if own_executor:
             try:
                 executor.close()
@@ -368,6 +381,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 pass
     records = J.read_journal(folder / "runs.jsonl")
     J.export_runs_csv(folder, exp.factor_names, records)
+    quality.close(records)  # steady.json: warm-up classes and executions x iterations advice
     from benchharness.host import load_average
 
     facts["load_average_end"] = load_average()
@@ -376,7 +390,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     session["finished_at"] = J.utc_iso()
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
     return RunOutcome(folder=folder, seed=session["seed"], planned=len(planned), counts=counts,
-                      interrupted=interrupted)
+                      interrupted=interrupted, notes=list(quality.notes))
 
 
 def _tail(b: bytes, n: int = 300) -> str:

@@ -14,7 +14,9 @@ last segment is the candidate steady state, and the series is called
 
 Following Barrett et al., the changepoint penalty is 15 log n and a change
 inside the last quarter of the series means no steady state (both from
-memory). Our own choices, documented in docs/measurement.md: the search runs on
+memory). Our own choices, documented in docs/measurement.md: a final segment
+whose first and last thirds differ by more than the tolerance and three
+standard errors is still drifting (no steady state); the search runs on
 log timings (per-run timings are right-skewed, common practice; a change then
 means a relative change); isolated spikes (one or two points far outside a
 rolling median +- 6 rolling MADs, the first iteration excepted) are replaced
@@ -131,6 +133,21 @@ def _same_level(a: float, b: float, s: WarmupSettings) -> bool:
     return abs(a - b) <= max(s.rel_tol * max(abs(a), abs(b)), s.abs_tol_s)
 
 
+def _drift(part: np.ndarray, s: WarmupSettings) -> str:
+    """Why the final segment still drifts (its first and last thirds differ), or ""."""
+    k = part.size // 3
+    if k < 3:
+        return ""
+    a, b = part[:k], part[-k:]
+    diff = float(b.mean() - a.mean())
+    se = math.sqrt(a.var(ddof=1) / k + b.var(ddof=1) / k)
+    if abs(diff) > max(s.rel_tol * abs(float(part.mean())), 3 * se, s.abs_tol_s):
+        way = "slower" if diff > 0 else "faster"
+        return (f"the last {part.size} iterations keep getting {way} (their last third is "
+                f"{abs(diff) / abs(float(a.mean())):.1%} {way} than their first third)")
+    return ""
+
+
 def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     """Classify one execution's iteration times (seconds, in iteration order)."""
     s = settings or WarmupSettings()
@@ -171,6 +188,10 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
         return WarmupResult(n, "no steady state", None, None, None, 0, seg.changepoints, segments,
                             spikes, reason=f"the mean still changes at iteration {last.start} "
                             f"of {n} (within the last {final})", settings=s)
+    drift = _drift(y[last.start:last.end], s)
+    if drift:
+        return WarmupResult(n, "no steady state", None, None, None, 0, seg.changepoints,
+                            segments, spikes, reason=drift, settings=s)
     if len(segments) == 1:
         shape = "flat"
     else:
