@@ -421,3 +421,22 @@ def sample_run_conditions(cpus: tuple[int, ...] | None = None) -> dict:
     """Cheap per-run sample: ``{"load_1m": float|None, "cpu_mhz": float|None}``."""
     la = load_average()
     return {"load_1m": la[0] if la else None, "cpu_mhz": cpu_mhz(cpus)}
+
+
+def facts_at_end(start: dict) -> dict:
+    """Facts to add to host.json when a run ends: load, throttling during the run, memory."""
+    import psutil
+
+    out: dict = {"load_average_end": load_average(), "cpu_mhz_end": cpu_mhz()}
+    end = thermal_throttle_counts()
+    out["thermal_throttle_counts_end"] = end
+    before = start.get("thermal_throttle_counts")
+    if end is not None and isinstance(before, dict):
+        out["throttled_during_run"] = any(end.get(k, 0) > before.get(k, 0) for k in end)
+    else:
+        out["throttled_during_run"] = None
+    try:
+        out["memory_available_bytes_end"] = psutil.virtual_memory().available
+    except (OSError, RuntimeError):
+        pass
+    return out

@@ -382,9 +382,9 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     records = J.read_journal(folder / "runs.jsonl")
     J.export_runs_csv(folder, exp.factor_names, records)
     quality.close(records)  # steady.json: warm-up classes and executions x iterations advice
-    from benchharness.host import load_average
+    from benchharness.host import facts_at_end
 
-    facts["load_average_end"] = load_average()
+    facts.update(facts_at_end(facts))
     J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()

@@ -136,3 +136,14 @@ def test_host_command_text(cli):
     r = cli("host")
     assert r.returncode == 0, r.stderr
     assert "CPU" in r.stdout and "governor" in r.stdout
+
+
+def test_facts_at_end_detect_throttling_during_run(tmp_path, monkeypatch):
+    monkeypatch.setattr(host, "CPU_SYS", _fake_sys(tmp_path, throttle=(1, 1), pkg=0))
+    start = {"thermal_throttle_counts": host.thermal_throttle_counts()}
+    assert host.facts_at_end(start)["throttled_during_run"] is False
+    (tmp_path / "cpu" / "cpu1" / "thermal_throttle" / "core_throttle_count").write_text("5\n")
+    end = host.facts_at_end(start)
+    assert end["throttled_during_run"] is True
+    assert end["thermal_throttle_counts_end"]["core"] == 6
+    assert host.facts_at_end({})["throttled_during_run"] is None
