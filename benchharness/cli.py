@@ -24,6 +24,7 @@ COMMANDS: list[tuple[str, str]] = [
     ("plan", "plan"),
     ("run", "run"),
     ("host", "host"),
+    ("steady", "steady"),
 ]
 
 

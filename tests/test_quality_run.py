@@ -200,3 +200,30 @@ def test_no_steady_state_is_flagged(tmp_path):
     steady = json.loads((out.folder / "steady.json").read_text())
     assert len(steady["runs_without_steady_state"]) == 2
     assert any("never reached a steady state" in n for n in out.notes)
+
+
+def test_steady_command_reports_advice(tmp_path, cli):
+    # Planted two-level data: each run has its own offset (between-run spread)
+    # plus iteration noise, after a 10-iteration warm-up.
+    exp = _write(tmp_path, """\
+        experiment: planted
+        command: [PY, -c, "import random, sys; r = random.Random(int(sys.argv[1]) * 7 + int(sys.argv[2])); off = r.gauss(0, 0.00005); [print((0.004 if i < 10 else 0.001 + off) * (1 + r.gauss(0, 0.02))) for i in range(100)]", "{a}", "{replicate}"]
+        factors: {a: [1, 2]}
+        replicates: 4
+        samples: {format: lines, target: 1%}
+        """.replace('"{replicate}"', '"0"'))
+    out = run_experiment(exp, out=tmp_path / "res", executor=PopenExecutor())
+    rows = _rows(out.folder)
+    assert all(r["steady_state"] == "warm-up" for r in rows)
+    r = cli("steady", out.folder, "--json")
+    assert r.returncode == 0, r.stderr
+    data = json.loads(r.stdout)
+    assert data["target_rel_halfwidth"] == 0.01
+    for cell in data["cells"]:
+        assert cell["runs_with_steady_state"] == 4
+        assert cell["components"]["iterations"] >= 85
+        assert cell["advice"]["executions"] >= 2
+    text = cli("steady", out.folder, "--target", "5%")
+    assert text.returncode == 0 and "advice:" in text.stdout and "±5.0%" in text.stdout
+    bad = cli("steady", out.folder, "--target", "lots")
+    assert bad.returncode == 2 and "--target" in bad.stderr

@@ -18,7 +18,7 @@ memory). Our own choices, documented in docs/measurement.md: a final segment
 whose first and last thirds differ by more than the tolerance and three
 standard errors is still drifting (no steady state); the search runs on
 log timings (per-run timings are right-skewed, common practice; a change then
-means a relative change); isolated spikes (one or two points far outside a
+means a relative change); isolated spikes (up to three points in a row far outside a
 rolling median +- 6 rolling MADs, the first iteration excepted) are replaced
 by the rolling median for the search only; adjacent segments whose means differ by
 less than ``rel_tol`` (2 %) or ``abs_tol_s`` are merged; the steady-state mean
@@ -102,8 +102,9 @@ def _rolling(values: np.ndarray, half: int, fn) -> np.ndarray:
     return out
 
 
-def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0) -> tuple[np.ndarray, int]:
-    """Replace isolated spikes (runs of at most two points) by the rolling median."""
+def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0,
+            max_run: int = 3) -> tuple[np.ndarray, int]:
+    """Replace isolated spikes (runs of at most ``max_run`` points) by the rolling median."""
     n = z.size
     if n < 2 * half_window:
         return z.copy(), 0
@@ -120,7 +121,7 @@ def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0) -> tuple[np.nd
             j = i
             while j < n and flagged[j]:
                 j += 1
-            if j - i <= 2:
+            if j - i <= max_run:
                 out[i:j] = med[i:j]
                 count += j - i
             i = j
