@@ -66,9 +66,12 @@ def main(args) -> int:
             print(f"  {c['note']}")
             continue
         comp, adv = c["components"], c["advice"]
+        mean = comp["mean_s"] or float("nan")
+        sd_runs = comp["between_execution_var_s2"] ** 0.5
+        sd_iter = comp["within_execution_var_s2"] ** 0.5
         print(f"  steady iteration time {_fmt_s(comp['mean_s'])}; spread between runs "
-              f"{_fmt_s(comp['between_execution_var_s2'] ** 0.5)}, between iterations "
-              f"{_fmt_s(comp['within_execution_var_s2'] ** 0.5)} "
+              f"{_fmt_s(sd_runs)} ({sd_runs / mean:.0%}), between iterations "
+              f"{_fmt_s(sd_iter)} ({sd_iter / mean:.0%}) "
               f"(from {comp['executions']} runs x {comp['iterations']} steady iterations)")
         print(f"  a run costs {_fmt_s(c['cost_execution_s'])} before its steady iterations, "
               f"an iteration {_fmt_s(c['cost_iteration_s'])}")
