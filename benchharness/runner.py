@@ -166,6 +166,10 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     from benchharness.quality import quality_config
 
     quality_config(exp)  # bad expect/metrics/samples/perf sections fail before a folder exists
+    from benchharness.host import preflight
+
+    start_facts = collect_facts()
+    host_warnings = preflight(exp, start_facts)  # host_check: strict stops here
     plan = plan or build_plan(exp_for_plan, seed=seed)
     check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
@@ -176,8 +180,10 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         if plan.info:
             J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
                                                               default=str))
-        facts = collect_facts()
+        facts = start_facts
+        facts["warnings"] = host_warnings
         J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+
         exp_dir = str(Path(exp.path).resolve().parent) if exp.path != "<string>" else os.getcwd()
         session = {
             "benchharness_version": _version(),
@@ -372,6 +378,10 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     quality = RunQuality(exp, folder)
     distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
     quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    if not done:  # a fresh folder: show the host warnings found before it started
+        for w in facts.get("warnings") or []:
+            if isinstance(w, dict) and w.get("severity") == "warning":
+                progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
     for note in quality.notes:
         progress.note(note)
     quality.notes.clear()
