@@ -227,3 +227,30 @@ def test_steady_command_reports_advice(tmp_path, cli):
     assert text.returncode == 0 and "advice:" in text.stdout and "±5.0%" in text.stdout
     bad = cli("steady", out.folder, "--target", "lots")
     assert bad.returncode == 2 and "--target" in bad.stderr
+
+
+def test_resumed_folder_keeps_first_provenance_and_flags_changed_files(tmp_path):
+    from benchharness.quality import RunQuality
+
+    script = tmp_path / "app.py"
+    script.write_text("print(1)\n")
+    exp = _write(tmp_path, """\
+        experiment: prov
+        command: [PY, TMP/app.py]
+        factors: {a: [1]}
+        """)
+    folder = tmp_path / "res"
+    folder.mkdir()
+    cell = {"argv": (PY, str(script)), "shell": None, "env": dict(os.environ),
+            "cwd": str(tmp_path)}
+    q = RunQuality(exp, folder)
+    q.start([({"a": "1"}, cell)])
+    first = json.loads((folder / "provenance.json").read_text())
+    assert first["cells"][0]["files"][0]["path"] == str(script.resolve())
+    script.write_text("print(2)\n")
+    q2 = RunQuality(exp, folder)
+    q2.start([({"a": "1"}, cell)])
+    assert json.loads((folder / "provenance.json").read_text()) == first   # never overwritten
+    again = json.loads((folder / "provenance.resumed-1.json").read_text())
+    assert again["cells"][0]["files"][0]["sha256"] != first["cells"][0]["files"][0]["sha256"]
+    assert any("changed" in n and "app.py" in n for n in q2.notes)
