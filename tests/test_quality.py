@@ -278,3 +278,13 @@ def test_load_correlation_finds_planted_relation_like_scipy():
     assert quiet["verdict"] in ("unrelated", "related")
     assert load_correlation([1, 2, 3, 4, 5, 6], [0.5] * 6)["verdict"] == "no variation"
     assert load_correlation([1, 2, float("nan")], [1, 2, 3])["verdict"] == "too few runs"
+
+
+def test_metric_direction_from_results_folder(tmp_path):
+    from benchharness.metrics import better_direction, read_manifest
+
+    (tmp_path / "metrics.json").write_text(json.dumps(_metrics().manifest()))
+    assert better_direction(tmp_path, "rate_rps") == "higher"
+    assert better_direction(tmp_path, "p99_ms") == "lower"
+    assert better_direction(tmp_path, "wall_s") == "lower"
+    assert read_manifest(tmp_path / "nowhere") == {}
