@@ -280,3 +280,12 @@ def test_pelt_exact_on_random_short_series():
         assert a.cost == pytest.approx(b.cost, rel=1e-9, abs=1e-7)
 
     check()
+
+
+def test_long_series_are_searched_in_blocks():
+    # Planted: 150 slow iterations in 30 000; found to within one block (8 iterations).
+    rng = np.random.default_rng(21)
+    y = np.concatenate([_timings(rng, 3e-3, 150), _timings(rng, 1e-3, 29850)])
+    res = classify(y)
+    assert res.shape == "warm-up" and abs(res.steady_from - 150) <= 8
+    assert res.steady_s == pytest.approx(1e-3, rel=0.01)

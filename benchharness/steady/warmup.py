@@ -49,6 +49,7 @@ class WarmupSettings:
     despike: bool = True
     use_log: bool = True
     min_iterations: int = 8        # fewer iterations than this: no classification
+    max_points: int = 4000         # longer series are searched in blocks of iterations
 
 
 @dataclass(frozen=True)
@@ -94,9 +95,18 @@ class WarmupResult:
 
 
 def _rolling(values: np.ndarray, half: int, fn) -> np.ndarray:
+    """``fn`` (a numpy reducer taking ``axis``) over a centred window, shrunk at the ends."""
     n = values.size
     out = np.empty(n)
-    for i in range(n):
+    w = 2 * half + 1
+    if n >= w:
+        from numpy.lib.stride_tricks import sliding_window_view
+
+        out[half:n - half] = fn(sliding_window_view(values, w), axis=1)
+        edges = list(range(half)) + list(range(n - half, n))
+    else:
+        edges = range(n)
+    for i in edges:
         lo, hi = max(0, i - half), min(n, i + half + 1)
         out[i] = fn(values[lo:hi])
     return out
@@ -169,14 +179,22 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     spikes = 0
     if s.despike:
         z, spikes = despike(z)
-    seg = pelt(z, penalty=s.penalty_factor * math.log(n), min_size=s.min_size, var_floor=floor)
+    # Long series: PELT's cost grows towards n^2 when there are few changes, so
+    # beyond `max_points` the search runs on means of consecutive blocks of k
+    # iterations (changepoints are then known to within k iterations).
+    k = max(1, math.ceil(n / s.max_points))
+    zs = z if k == 1 else np.array([z[i:i + k].mean() for i in range(0, n, k)])
+    seg = pelt(zs, penalty=s.penalty_factor * math.log(zs.size), min_size=s.min_size,
+               var_floor=floor)
+    changepoints = tuple(c * k for c in seg.changepoints)
+    bounds = [0, *changepoints, n]
 
     def make(a: int, b: int) -> Segment:
         part = y[a:b]
         return Segment(a, b, float(part.mean()), float(part.std(ddof=1)) if b - a > 1 else 0.0)
 
     merged: list[Segment] = []
-    for a, b in seg.segments:
+    for a, b in zip(bounds[:-1], bounds[1:]):
         cur = make(a, b)
         if merged and _same_level(merged[-1].mean_s, cur.mean_s, s):
             merged[-1] = make(merged[-1].start, b)
@@ -186,12 +204,12 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     last = segments[-1]
     final = max(s.min_final, int(math.ceil(s.final_fraction * n)))
     if len(segments) > 1 and last.start > n - final:
-        return WarmupResult(n, "no steady state", None, None, None, 0, seg.changepoints, segments,
+        return WarmupResult(n, "no steady state", None, None, None, 0, changepoints, segments,
                             spikes, reason=f"the mean still changes at iteration {last.start} "
                             f"of {n} (within the last {final})", settings=s)
     drift = _drift(y[last.start:last.end], s)
     if drift:
-        return WarmupResult(n, "no steady state", None, None, None, 0, seg.changepoints,
+        return WarmupResult(n, "no steady state", None, None, None, 0, changepoints,
                             segments, spikes, reason=drift, settings=s)
     if len(segments) == 1:
         shape = "flat"
@@ -200,4 +218,4 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
                   if g.mean_s < last.mean_s and not _same_level(g.mean_s, last.mean_s, s)]
         shape = "slow-down" if faster else "warm-up"
     return WarmupResult(n, shape, last.start, last.mean_s, last.sd_s, last.end - last.start,
-                        seg.changepoints, segments, spikes, settings=s)
+                        changepoints, segments, spikes, settings=s)
