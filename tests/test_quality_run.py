@@ -254,3 +254,14 @@ def test_resumed_folder_keeps_first_provenance_and_flags_changed_files(tmp_path)
     again = json.loads((folder / "provenance.resumed-1.json").read_text())
     assert again["cells"][0]["files"][0]["sha256"] != first["cells"][0]["files"][0]["sha256"]
     assert any("changed" in n and "app.py" in n for n in q2.notes)
+
+
+def test_plan_checks_quality_sections(tmp_path, cli):
+    p = tmp_path / "exp.yaml"
+    p.write_text("experiment: t\ncommand: [\"true\"]\nfactors: {a: [1]}\n"
+                 "samples: {format: csv}\n")
+    r = cli("plan", p)
+    assert r.returncode == 2
+    assert f"{p}:4:19: samples.format is 'csv'" in r.stderr and "Traceback" not in r.stderr
+    r = cli("plan", ROOT / "experiments" / "warm-cache.yaml")
+    assert r.returncode == 0, r.stderr
