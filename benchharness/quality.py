@@ -56,6 +56,7 @@ def quality_config(exp) -> QualityConfig:
 
         if not is_null(sec["metrics"]):
             metrics = parse_metrics(sec["metrics"], exp.factor_names)
+            _check_file_templates(exp, metrics, sec["metrics"])
     if "expect" in sec:
         from benchharness.expect import parse_expect
 
@@ -76,6 +77,36 @@ def quality_config(exp) -> QualityConfig:
             raise node_error(sec["metrics"], f"metric {sorted(clash)[0]!r} clashes with a perf "
                                              "counter column; rename the metric")
     return QualityConfig(metrics, expect, samples, perf)
+
+
+def _check_file_templates(exp, metrics, node) -> None:
+    """Every ``{factor}`` / ``{factor.name}`` in a metric's ``file:`` must exist."""
+    from benchharness import templating
+    from benchharness.yamlnodes import mapping_items, node_error
+
+    nodes = {}
+    for name, _k, v in mapping_items(node, "'metrics'"):
+        for key, _kk, vv in mapping_items(v, f"metric {name!r}"):
+            if key == "file":
+                nodes[name] = vv
+    factors = {f.name: f for f in exp.factors}
+    for name, tmpl in metrics.file_templates().items():
+        where = nodes.get(name, node)
+        try:
+            phs = templating.placeholders(tmpl)
+        except ValueError as exc:
+            raise node_error(where, f"metric {name!r}: {exc}") from None
+        for ph in phs:
+            f = factors.get(ph.factor)
+            if f is None:
+                raise node_error(where, f"metric {name!r}: placeholder {ph.text} names no "
+                                        f"factor; factors are {', '.join(factors)}")
+            if ph.name is not None:
+                lacking = [lv.label for lv in f.levels if ph.name not in lv.values]
+                if lacking:
+                    raise node_error(where, f"metric {name!r}: placeholder {ph.text}: level "
+                                            f"{lacking[0]!r} of {f.name!r} has no value "
+                                            f"{ph.name!r}")
 
 
 def _epoch(iso: str) -> float | None:

@@ -265,3 +265,28 @@ def test_plan_checks_quality_sections(tmp_path, cli):
     assert f"{p}:4:19: samples.format is 'csv'" in r.stderr and "Traceback" not in r.stderr
     r = cli("plan", ROOT / "experiments" / "warm-cache.yaml")
     assert r.returncode == 0, r.stderr
+
+
+def test_metric_file_placeholders_are_checked(tmp_path):
+    from benchharness.errors import ExperimentError
+    from benchharness.quality import quality_config
+
+    exp = _write(tmp_path, """\
+        experiment: files
+        command: [PY, -c, "pass"]
+        factors: {codec: [zlib, lzma]}
+        metrics:
+          ratio: {file: 'out-{codek}.json', json: r, better: higher}
+        """)
+    with pytest.raises(ExperimentError, match=r"exp.yaml:5:17: metric 'ratio': placeholder "
+                                              r"\{codek\} names no factor"):
+        quality_config(exp)
+    ok = _write(tmp_path, """\
+        experiment: files
+        command: [PY, -c, "import json, sys; json.dump({'r': 2.5}, open('out-' + sys.argv[1] + '.json', 'w'))", "{codec}"]
+        factors: {codec: [zlib, lzma]}
+        metrics:
+          ratio: {file: 'out-{codec}.json', json: r, better: higher}
+        """)
+    out = run_experiment(ok, out=tmp_path / "res", executor=PopenExecutor())
+    assert [r["ratio"] for r in _rows(out.folder)] == ["2.5", "2.5"]
