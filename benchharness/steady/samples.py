@@ -21,7 +21,6 @@ import json
 import math
 from dataclasses import dataclass
 
-from benchharness.errors import ExperimentError
 
 UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "µs": 1e-6, "ns": 1e-9}
 FORMATS = ("lines", "jsonl", "json")
