@@ -220,7 +220,7 @@ def test_steady_command_reports_advice(tmp_path, cli):
     data = json.loads(r.stdout)
     assert data["target_rel_halfwidth"] == 0.01
     for cell in data["cells"]:
-        assert cell["runs_with_steady_state"] == 4
+        assert cell["runs_with_steady_state"] == 4 and cell["cell_shape"] == "warm-up"
         assert cell["components"]["iterations"] >= 85
         assert cell["advice"]["executions"] >= 2
     text = cli("steady", out.folder, "--target", "5%")

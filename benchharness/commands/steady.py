@@ -61,7 +61,7 @@ def main(args) -> int:
     for c in cells:
         label = " ".join(f"{k}={v}" for k, v in c["levels"].items()) or "(single cell)"
         shapes = ", ".join(f"{n} {k}" for k, n in sorted(c["shapes"].items()))
-        print(f"{label}: {c['runs']} runs ({shapes})")
+        print(f"{label}: {c['cell_shape'] or 'no samples'} — {c['runs']} runs ({shapes})")
         if "advice" not in c:
             print(f"  {c['note']}")
             continue

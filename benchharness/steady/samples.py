@@ -277,8 +277,12 @@ def cell_advice(records, samples: dict[int, dict], factor_names, target: float =
             steady.append(part)
             if r.get("wall_s") is not None:
                 exec_costs.append(max(float(r["wall_s"]) - float(sum(part)), 0.0))
+        # Across executions (Barrett et al. 2017): one class when all runs agree,
+        # else "inconsistent".
+        cell_shape = next(iter(shapes)) if len(shapes) == 1 else (
+            "inconsistent" if shapes else None)
         entry: dict = {"levels": levels, "runs": len(runs), "shapes": shapes,
-                       "runs_with_steady_state": len(steady)}
+                       "cell_shape": cell_shape, "runs_with_steady_state": len(steady)}
         mat = balanced(steady)
         if mat is None:
             entry["note"] = "fewer than two runs reached a steady state; no advice"
