@@ -182,3 +182,35 @@ def test_direction_comes_from_the_metrics_section(tmp_path):
     s = choice_section(folder, response="rows_per_s")
     assert s["recommendation"] == {"batch": "64"}
     assert s["columns"][0] == "setting" and len(s["rows"]) == 3
+
+
+@pytest.mark.parametrize("section,needle", [
+    ("choose:\n  prefer: {threads: 5}\n", "'5' is not a level of threads"),
+    ("choose:\n  prefer: {thread: 4}\n", "did you mean 'threads'"),
+    ("choose:\n  across: disk\n  confidence: 2\n", "between 0 and 1"),
+    ("choose:\n  also: {a: 1}\n", "must be a list"),
+    ("choose: [threads]\n", "must be a mapping"),
+])
+def test_section_errors_carry_file_and_line(section, needle):
+    from benchharness.choose.config import choose_settings
+    from benchharness.errors import ExperimentError
+    from benchharness.experiment import Experiment
+
+    text = EXPERIMENT.split("choose:")[0] + section
+    exp = Experiment.from_text(text, path="pool.yaml")
+    with pytest.raises(ExperimentError) as info:
+        choose_settings(exp)
+    assert needle in str(info.value)
+    assert str(info.value).startswith("pool.yaml:")
+
+
+def test_section_reads_plain_values():
+    from benchharness.choose.config import choose_settings
+    from benchharness.experiment import Experiment
+
+    exp = Experiment.from_text(EXPERIMENT.split("choose:")[0] + (
+        "choose:\n  prefer: {threads: 8}\n  across: disk\n  also: [max_rss_kib]\n"
+        "  response: user_s\n  confidence: 0.9\n"), path="pool.yaml")
+    assert choose_settings(exp) == {"prefer": {"threads": "8"}, "across": ["disk"],
+                                    "also": ["max_rss_kib"], "response": "user_s",
+                                    "confidence": 0.9}
