@@ -41,11 +41,7 @@ import numpy as np
 
 from benchharness.errors import DataError
 
-__all__ = ["ResponseModel", "fit_response", "level_orders", "setting_key"]
-
-
-def setting_key(levels) -> tuple[str, ...]:
-    return tuple(str(x) for x in levels)
+__all__ = ["ResponseModel", "fit_response", "level_orders"]
 
 
 @dataclass(frozen=True)
