@@ -284,3 +284,14 @@ def format_fraction(result: dict) -> str:
     if result.get("confounded_with_blocks"):
         lines.append("confounded with blocks: " + ", ".join(result["confounded_with_blocks"]))
     return "\n".join(lines)
+
+
+def fraction_analysis_for(exp, runs, response: str = "wall_s", log: bool = True) -> dict | None:
+    """Hook for the analysis stage: the fraction analysis when ``exp`` has a two-level
+    ``design:`` section (fraction or confounded blocks), else None."""
+    from benchharness.design.spec import design_of
+
+    choice = design_of(exp)
+    if not choice.changes_plan:
+        return None
+    return analyze_fraction(runs, choice.design, response=response, log=log)
