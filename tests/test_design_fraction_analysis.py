@@ -67,6 +67,13 @@ def test_replicated_half_fraction_matches_statsmodels_ols():
     assert by["threads"]["aliases"] == ["batch:cache:pin"]
     assert by["threads"]["active"] and by["threads"]["ratio"] == pytest.approx(
         math.exp(by["threads"]["estimate"]))
+    # Holm-adjusted p over the chains equals statsmodels' multipletests(method="holm").
+    from statsmodels.stats.multitest import multipletests
+
+    terms = list(by)
+    adj = multipletests([fit.pvalues[t] for t in terms], method="holm")[1]
+    for t, a in zip(terms, adj):
+        assert by[t]["p_holm"] == pytest.approx(a, rel=1e-6)
 
 
 def test_lenth_definition():
@@ -149,3 +156,30 @@ def test_runs_outside_the_fraction_are_refused():
     runs.loc[0, "pin"] = "yes" if runs.loc[0, "pin"] == "no" else "no"
     with pytest.raises(DataError, match="not a cell of the fraction"):
         analyze_fraction(runs, d)
+
+
+def test_run_adds_fraction_to_analysis_json(tmp_path):
+    import json
+
+    from benchharness import journal as J
+    from benchharness.analysis.fraction import add_to_results_folder
+    from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+    from benchharness.experiment import Experiment
+    from benchharness.runner import run_experiment
+
+    text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
+            " '{pin}', '{log}']\nfactors:\n  threads: [4, 16]\n  batch: [1, 64]\n"
+            "  cache: [off, on]\n  pin: [no, yes]\n  log: [sync, async]\n"
+            "design: {cells: 16}\nseed: 4\n")
+    exp = Experiment.from_text(text)
+    model = SimulatedModel(effects={"threads": {"16": 0.7}, "cache": {"on": 0.9}}, cv=0.02)
+    out = run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(model, seed=1))
+    res = add_to_results_folder(out.folder)
+    data = json.loads((out.folder / "analysis.json").read_text())
+    assert data["fraction"]["design"] == "2^(5-1)"
+    active = {e["term"] for e in res["effects"] if e.get("active")}
+    assert active == {"threads", "cache"}          # planted: x0.7 and x0.9
+    by = {e["term"]: e for e in res["effects"]}
+    assert by["threads"]["ratio"] == pytest.approx(0.7, rel=0.05)
+    assert (out.folder / "half_normal.png").exists()
+    assert J.load_results(out.folder).runs.shape[0] == 16

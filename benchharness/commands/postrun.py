@@ -24,6 +24,13 @@ def analyse_and_report(res) -> None:
         write_analysis_json(an, res.path / "analysis.json")
         print()
         print(format_analysis(an))
+        # Two-level fractions and confounded blocks: effects with their aliases.
+        from benchharness.analysis.fraction import add_to_results_folder, format_fraction
+
+        frac = add_to_results_folder(res.path, an.response)
+        if frac is not None:
+            print()
+            print(format_fraction(frac))
     except BenchharnessError as exc:
         print(f"note: no analysis: {exc}", file=sys.stderr)
         return
