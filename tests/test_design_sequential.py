@@ -120,3 +120,20 @@ def test_plan_command_estimates_time_from_a_pilot(cli, tmp_path):
                                             t["expected_replicate_s"])
     r = cli("plan", f, "--budget", "30s")
     assert r.returncode == 2 and "--pilot" in r.stderr
+
+
+def test_size_command_with_a_pilot_folder(cli, tmp_path):
+    # Planted answer: the simulated pilot has CV 5%, so sd of ln(wall_s) is about
+    # sqrt(ln(1 + 0.05^2)) = 0.05; the sizing must use it and give the pilot's run time.
+    exp = Experiment.from_text(BASE + "replicates: 8\n", path=str(tmp_path / "c.yaml"))
+    run_experiment(exp, out=tmp_path / "pilot", executor=SimulatedExecutor(MODEL, seed=8))
+    r = cli("size", "--detect", "4%", "--pilot", tmp_path / "pilot", "--json")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert d["sigma_log"] == pytest.approx(0.05, rel=0.3)
+    assert d["cells"] == 4 and d["runs"] == 4 * d["replicates"]
+    assert d["expected_run_s"] == pytest.approx(0.575, rel=0.1)
+    from benchharness.design import sizing
+
+    assert d["power"] == pytest.approx(sizing.f_power(d["replicates"], 2, 4, __import__("math")
+                                                      .log1p(0.04), d["sigma_log"], 0.05))
