@@ -453,7 +453,8 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     ok = bm.status == "ok"
                     builds[bkey] = (ok, "" if ok else
                                     f"build failed: {_short(bm)}"
-                                    + _tail(bm.stderr_tail or bm.stdout_tail))
+                                    + ("" if bm.message else
+                                       _tail(bm.stderr_tail or bm.stdout_tail)))
                 ok, bmsg = builds[bkey]
                 if not ok:
                     status, message = "failed", bmsg
@@ -491,6 +492,9 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     if tm.status != "ok":
                         message = (message + "; " if message else "") + \
                             f"teardown failed: {_short(tm)}"
+            if pr["warmup"] and status != "warmup":
+                message = f"warm-up run not done: {message}"
+                status = "warmup"
             rec = _record(pr, m, status, message)
             if pad_bytes is not None:
                 rec["pad_env_bytes"] = pad_bytes
