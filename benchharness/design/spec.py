@@ -201,8 +201,15 @@ def describe_info(info: dict) -> list[str]:
         lines.append("  word-length pattern (words of length 3, 4, ...): "
                      + " ".join(str(c) for c in wlp[2:]))
         lines.append("  aliases (up to three-factor interactions):")
-        for eff, al in d["aliases"].items():
-            if al:
+        chains = [(eff, al) for eff, al in d["aliases"].items() if al]
+        if len(chains) > 30:
+            mains = [(eff, al) for eff, al in chains if len(eff) == 1]
+            for eff, al in mains:
+                lines.append(f"    {eff} = " + " = ".join(al))
+            lines.append(f"    ... and {len(chains) - len(mains)} two-factor interaction chains "
+                         f"(see plan --json)")
+        else:
+            for eff, al in chains:
                 lines.append(f"    {eff} = " + " = ".join(al))
         clear = d["clear_effects"]
         lines.append("  clear (aliased with no main effect or two-factor interaction): "
