@@ -183,3 +183,29 @@ def test_run_adds_fraction_to_analysis_json(tmp_path):
     assert by["threads"]["ratio"] == pytest.approx(0.7, rel=0.05)
     assert (out.folder / "half_normal.png").exists()
     assert J.load_results(out.folder).runs.shape[0] == 16
+
+
+def test_general_anova_of_a_fraction_uses_unaliased_terms(tmp_path):
+    # Resolution IV: main effects only (2FIs are aliased in pairs); the main-effect F
+    # tests then match statsmodels OLS + anova_lm on the same runs.
+    import statsmodels.formula.api as smf
+    from statsmodels.stats.anova import anova_lm
+
+    from benchharness.analysis import analyze_results_folder
+    from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+    from benchharness.experiment import Experiment
+    from benchharness.runner import run_experiment
+
+    text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
+            " '{pin}']\nfactors:\n  threads: [4, 16]\n  batch: [1, 64]\n  cache: [off, on]\n"
+            "  pin: [no, yes]\ndesign: {resolution: 4}\nreplicates: 3\norder: listed\nseed: 4\n")
+    exp = Experiment.from_text(text)
+    model = SimulatedModel(effects={"threads": {"16": 0.8}}, cv=0.03)
+    out = run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(model, seed=2))
+    an = analyze_results_folder(out.folder, transform="log")
+    terms = [r["term"] for r in an.anova_rows]
+    assert terms == ["threads", "batch", "cache", "pin", "Residual"]
+    runs = out.runs.assign(ly=lambda d: np.log(d.wall_s.astype(float)))
+    ref = anova_lm(smf.ols("ly ~ C(threads) + C(batch) + C(cache) + C(pin)", data=runs).fit())
+    for r in an.anova_rows[:-1]:
+        assert r["F"] == pytest.approx(ref.loc[f"C({r['term']})", "F"], rel=1e-6)

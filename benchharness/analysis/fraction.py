@@ -357,3 +357,15 @@ def _json_default(x):
         return float(x)
     except (TypeError, ValueError):
         return str(x)
+
+
+def default_model(exp) -> int | None:
+    """ANOVA model order for an experiment with a fraction: interactions up to order t where
+    resolution >= 2t + 1, so no two terms of the model are aliased (main effects only for
+    resolution III and IV, two-factor interactions too for V, ...). None without a fraction."""
+    from benchharness.design.spec import design_of
+
+    choice = design_of(exp)
+    if not choice.changes_plan or not choice.design.is_fraction:
+        return None
+    return max(1, (choice.design.resolution - 1) // 2)
