@@ -137,3 +137,16 @@ def test_size_command_with_a_pilot_folder(cli, tmp_path):
 
     assert d["power"] == pytest.approx(sizing.f_power(d["replicates"], 2, 4, __import__("math")
                                                       .log1p(0.04), d["sigma_log"], 0.05))
+
+
+def test_plan_shows_the_adaptive_rule(cli, tmp_path):
+    f = tmp_path / "c.yaml"
+    f.write_text(BASE + "replicates: {until: {ratio_halfwidth: 2%}, max: 30, min: 4}\n")
+    r = cli("plan", f, "--json")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert d["adaptive"] == {"ratio_halfwidth": 0.02, "max": 30, "min": 4, "confidence": 0.95,
+                             "response": "wall_s"}
+    assert d["runs"] == 4 * 4
+    r = cli("plan", f)
+    assert "adaptive: 4 to 30" in r.stdout
