@@ -176,7 +176,7 @@ def test_automatic_choice_matches_standard_designs(k, cells, resolution, wlp_fro
     assert d.search["exhaustive"]
 
 
-@pytest.mark.parametrize("k, p", [(6, 2), (7, 3), (8, 4), (7, 2), (8, 3)])
+@pytest.mark.parametrize("k, p", [(6, 2), (7, 3), (8, 4), (7, 2), (8, 3), (9, 4), (9, 3)])
 def test_automatic_choice_is_minimum_aberration(k, p):
     # Cross-check of the branch and bound against a plain exhaustive enumeration.
     d = design_for_cells(letters(k), 2 ** (k - p))
