@@ -315,7 +315,7 @@ def fraction_analysis_for(exp, runs, response: str = "wall_s", log: bool = True)
     return analyze_fraction(runs, choice.design, response=response, log=log)
 
 
-def add_to_results_folder(folder, response: str = "wall_s") -> dict | None:
+def add_to_results_folder(folder, response: str = "wall_s", log: bool = True) -> dict | None:
     """For a two-level ``design:``: add the ``fraction`` key to ``analysis.json`` (creating
     the file if needed) and save ``half_normal.png``; returns the fraction analysis or None.
 
@@ -328,7 +328,7 @@ def add_to_results_folder(folder, response: str = "wall_s") -> dict | None:
 
     folder = Path(folder)
     res = J.load_results(folder)
-    result = fraction_analysis_for(res.experiment, res.runs, response=response)
+    result = fraction_analysis_for(res.experiment, res.runs, response=response, log=log)
     if result is None:
         return None
     path = folder / "analysis.json"

@@ -27,7 +27,12 @@ def analyse_and_report(res) -> None:
         # Two-level fractions and confounded blocks: effects with their aliases.
         from benchharness.analysis.fraction import add_to_results_folder, format_fraction
 
-        frac = add_to_results_folder(res.path, an.response)
+        try:
+            frac = add_to_results_folder(res.path, an.response,
+                                         log=(an.transform or {}).get("name") != "none")
+        except BenchharnessError as exc:
+            frac = None
+            print(f"note: no fraction analysis: {exc}", file=sys.stderr)
         if frac is not None:
             print()
             print(format_fraction(frac))

@@ -88,11 +88,31 @@ def _factors(exp):
     return [(f.name, f.labels) for f in exp.factors]
 
 
+_CACHE: dict = {}
+
+
 def design_of(exp) -> DesignChoice:
-    """Read and validate ``exp.sections['design']``."""
+    """Read and validate ``exp.sections['design']`` (memoised: searches can take a second)."""
     node = getattr(exp, "sections", {}).get("design")
     if node is None:
         return DesignChoice()
+    from benchharness.yamlnodes import to_plain
+
+    try:
+        key = (repr(to_plain(node)), tuple((f.name, tuple(f.labels)) for f in exp.factors))
+    except Exception:  # noqa: BLE001 - malformed nodes are reported by the parse below
+        key = None
+    if key is not None and key in _CACHE:
+        return _CACHE[key]
+    choice = _design_of(exp, node)
+    if key is not None:
+        if len(_CACHE) > 32:
+            _CACHE.clear()
+        _CACHE[key] = choice
+    return choice
+
+
+def _design_of(exp, node) -> DesignChoice:
     path = getattr(exp, "path", None)
     keys = expect_mapping(node, "'design'", KEYS)
     kind = "full"
