@@ -338,10 +338,10 @@ def add_to_results_folder(folder, response: str = "wall_s", log: bool = True) ->
             data = json.loads(path.read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             data = {}
-    data["fraction"] = result
+    data["fraction"] = _finite(result)
     tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(data, indent=2, ensure_ascii=False, default=_json_default) + "\n",
-                   encoding="utf-8")
+    tmp.write_text(json.dumps(data, indent=2, ensure_ascii=False, default=_json_default,
+                              allow_nan=False) + "\n", encoding="utf-8")
     tmp.replace(path)
     if result["half_normal"]:
         try:
@@ -369,3 +369,19 @@ def default_model(exp) -> int | None:
     if not choice.changes_plan or not choice.design.is_fraction:
         return None
     return max(1, (choice.design.resolution - 1) // 2)
+
+
+def _finite(x):
+    """JSON-safe copy: non-finite floats become None (strict JSON has no NaN or Infinity)."""
+    if isinstance(x, dict):
+        return {k: _finite(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_finite(v) for v in x]
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    if hasattr(x, "item") and not isinstance(x, (str, bytes)):
+        try:
+            return _finite(x.item())
+        except (TypeError, ValueError):
+            return x
+    return x
