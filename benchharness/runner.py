@@ -182,6 +182,13 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
                          "can stop between replicates")
         if rule is not None:
             plan_kwargs["replicates"] = rule.max_replicates
+    from benchharness.quality import quality_config
+
+    quality_config(exp)  # bad expect/metrics/samples/perf sections fail before a folder exists
+    from benchharness.host import preflight
+
+    start_facts = collect_facts()
+    host_warnings = preflight(exp, start_facts)  # host_check: strict stops here
     plan = plan or build_plan(exp_for_plan, seed=seed, **plan_kwargs)
     check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
@@ -192,8 +199,10 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         if plan.info:
             J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
                                                               default=str))
-        facts = collect_facts()
+        facts = start_facts
+        facts["warnings"] = host_warnings
         J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+
         exp_dir = str(Path(exp.path).resolve().parent) if exp.path != "<string>" else os.getcwd()
         session = {
             "benchharness_version": _version(),
@@ -406,6 +415,18 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     interrupted = False
     records_new = 0
     progress.start(len(planned), len(planned) - len(todo), folder)
+    from benchharness.quality import RunQuality
+
+    quality = RunQuality(exp, folder)
+    distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
+    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    if not done:  # a fresh folder: show the host warnings found before it started
+        for w in facts.get("warnings") or []:
+            if isinstance(w, dict) and w.get("severity") == "warning":
+                progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
+    for note in quality.notes:
+        progress.note(note)
+    quality.notes.clear()
     timeout_s = exp.timeout_s
     inflight_pgid = [None]
     controls = cells.controls
@@ -477,10 +498,12 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if ok:
                     session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
-                m = executor.execute(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                           run_id=pr["run"], levels=levels, env=run_env),
-                                     on_start=on_start_for(pr["run"]))
+                spec, qtoken = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
+                                                     run_id=pr["run"], levels=levels,
+                                                     env=run_env), levels, c)
+                m = executor.execute(spec, on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
+                m = quality.finish(qtoken, pr, m)  # expect, metrics, samples, perf counts
                 status = m.status
                 message = m.message if m.status != "ok" else (m.message or "")
                 if pr["warmup"]:
@@ -524,6 +547,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     finally:
         progress.stop()
         jr.close()
+        quality.close()
         if own_executor:
             try:
                 executor.close()
@@ -531,19 +555,22 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 pass
     if stop_check is not None and stop_check.stopped:
         session["stopped"] = stop_check.stopped
-    outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted)
+    outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
+                       quality=quality)
     outcome.notes.extend(stop_notes)
     return outcome
 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
-             interrupted: bool, host_json: dict | None = None) -> RunOutcome:
+             interrupted: bool, host_json: dict | None = None, quality=None) -> RunOutcome:
     """Export runs.csv, record the end state in host.json and session.json."""
     records = J.read_journal(folder / "runs.jsonl")
     J.export_runs_csv(folder, exp.factor_names, records)
-    from benchharness.host import load_average
+    if quality is not None:
+        quality.close(records)  # steady.json: warm-up classes, executions x iterations advice
+    from benchharness.host import facts_at_end
 
-    facts["load_average_end"] = load_average()
+    facts.update(facts_at_end(facts))
     J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()
@@ -554,7 +581,8 @@ def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planne
             pass
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
     return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
-                      interrupted=interrupted)
+                      interrupted=interrupted,
+                      notes=list(quality.notes) if quality is not None else [])
 
 
 def _tail(b: bytes, n: int = 300) -> str:
