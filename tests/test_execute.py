@@ -246,6 +246,11 @@ def test_capture_keeps_only_the_tail_of_50_mb(ex):
     assert len(m.stdout_tail) == 64 * 1024
     assert m.stdout_tail.endswith(b"THE END\n")
     assert len(m.stderr_tail) == 64 * 1024 and m.stderr_tail.endswith(b"LAST")
+    # the launcher's own peak during that run (its peak mark is reset before
+    # each spawn) stayed far below the 50 MB that went through it
+    with open(f"/proc/{ex.launcher_pid}/status") as f:
+        hwm_kib = next(int(line.split()[1]) for line in f if line.startswith("VmHWM"))
+    assert hwm_kib < 25 * 1024, hwm_kib
 
 
 def test_stdout_and_stderr_read_concurrently(ex):
