@@ -196,7 +196,12 @@ class Launcher:
         return True, ""
 
     def hello(self):
-        return {"op": "hello", "pid": self.pid, "subreaper": self.subreaper,
+        try:
+            os.close(os.pidfd_open(self.pid))
+            pidfd = ""
+        except (AttributeError, OSError) as e:
+            pidfd = str(e) or type(e).__name__
+        return {"op": "hello", "pid": self.pid, "subreaper": self.subreaper, "pidfd_error": pidfd,
                 "aslr_control": self.aslr_control, "aslr_reason": self.aslr_reason,
                 "children_file": os.path.exists(f"/proc/{self.pid}/task/{self.pid}/children")}
 

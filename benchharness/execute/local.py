@@ -71,6 +71,10 @@ class LocalExecutor:
         if hello.get("op") != "hello":
             self._kill_launcher()
             raise ExecutionError(f"the launcher answered {hello!r} instead of hello")
+        if hello.get("pidfd_error"):
+            self.close()
+            raise ExecutionError("local execution needs Linux 5.3 or later (pidfd_open); "
+                                 f"here it fails: {hello['pidfd_error']}")
         self.launcher_pid: int = hello["pid"]
         self.subreaper: bool = hello["subreaper"]
         #: Whether this kernel lets a run turn off ASLR; reason when it does not.
