@@ -169,7 +169,8 @@ def analyze(data, *args, **kwargs) -> "Analysis":
 
 def _analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
             model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
-            adjust: str = "holm", compare=None, art="auto") -> Analysis:
+            adjust: str = "holm", compare=None, art="auto",
+            comparisons: bool = True) -> Analysis:
     """Analyse a runs table (DataFrame, tidy CSV path or results folder).
 
     ``block``: a column name; None (or "auto") for the default (``block`` for
@@ -178,6 +179,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     (default: the first level). ``compare``: declared comparisons (see
     ``comparisons.parse_declared``); default: the experiment's ``compare:``.
     ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
+    ``comparisons=False`` skips the post hoc comparisons (faster in simulations).
     """
     from scipy import stats
 
@@ -348,9 +350,12 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     means = ef.marginal_means(fit, names, levels, choice, alpha)
     effects = ef.level_ratios(fit, names, levels, factor_idx, refs, choice, alpha)
     comps = []
-    comps += cmp.pairwise(fit, names, levels, factor_idx, choice, alpha, adjust)
-    comps += cmp.tukey(fit, names, levels, factor_idx, choice, alpha)
-    comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha)
+    if not comparisons:
+        compare = []
+    if comparisons:
+        comps += cmp.pairwise(fit, names, levels, factor_idx, choice, alpha, adjust)
+        comps += cmp.tukey(fit, names, levels, factor_idx, choice, alpha)
+        comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha)
     if compare is None:
         compare = _declared_from_experiment(prep.experiment)
     items = cmp.parse_declared(compare, fnames, flevels)

@@ -22,6 +22,7 @@ range quantile.
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from itertools import combinations
 
 import numpy as np
@@ -102,6 +103,13 @@ def pairwise(fit: Fit, names, levels, factor_idx, choice, alpha, adjust) -> list
     return out
 
 
+@lru_cache(maxsize=256)
+def _q_crit(alpha: float, k: int, df: int) -> float:
+    from scipy import stats
+
+    return float(stats.studentized_range.ppf(1 - alpha, k, df))
+
+
 def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
     from scipy import stats
 
@@ -113,19 +121,23 @@ def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
         if k < 2:
             continue
         _, L = margin_rows(fit, (f,))
-        qcrit = float(stats.studentized_range.ppf(1 - alpha, k, fit.df_resid))
-        half = qcrit / math.sqrt(2.0)
+        half = _q_crit(float(alpha), int(k), int(fit.df_resid)) / math.sqrt(2.0)
+        rows, stats_q = [], []
         for i, j in combinations(range(k), 2):
             r = contrast_result(fit, L[i], L[j], choice, half)
-            p = None
             stat = None
             if r["estimable"] and r["se"] and r["se"] > 0:
                 stat = abs(r["estimate"]) / (r["se"] / math.sqrt(2.0))
-                p = float(stats.studentized_range.sf(stat, k, fit.df_resid))
-            e = _entry("tukey", names[f], None, levels[f][i], levels[f][j], r, p)
-            e["p_adj"] = p
+            e = _entry("tukey", names[f], None, levels[f][i], levels[f][j], r, None)
             e["q"] = stat
-            out.append(e)
+            rows.append(e)
+            stats_q.append(stat)
+        idx = [i for i, q in enumerate(stats_q) if q is not None]
+        if idx:
+            ps = stats.studentized_range.sf(np.array([stats_q[i] for i in idx]), k, fit.df_resid)
+            for i, p in zip(idx, np.atleast_1d(ps)):
+                rows[i]["p"] = rows[i]["p_adj"] = float(p)
+        out += rows
     return out
 
 
