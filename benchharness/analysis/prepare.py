@@ -202,8 +202,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
                 "flag": "timeouts" if n_lost["timeout"][cell] else None,
             })
 
-    y_text = df[response]
-    y = pd.to_numeric(y_text, errors="coerce").to_numpy(dtype=float)
+    y_col = df[response]
+    if pd.api.types.is_numeric_dtype(y_col.dtype):
+        y = y_col.to_numpy(dtype=float)
+    else:
+        y = pd.to_numeric(y_col, errors="coerce").to_numpy(dtype=float)
     use = ok & np.isfinite(y)
     bad_y = int((ok & ~np.isfinite(y)).sum())
     if bad_y:
@@ -246,7 +249,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     def numeric(col):
         if col not in columns:
             return None
-        v = pd.to_numeric(df[col], errors="coerce").to_numpy(dtype=float)[use]
+        col_s = df[col]
+        if pd.api.types.is_numeric_dtype(col_s.dtype):
+            v = col_s.to_numpy(dtype=float)[use]
+        else:
+            v = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
         return v if np.isfinite(v).all() else None
 
     run = numeric("run")

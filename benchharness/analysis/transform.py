@@ -57,6 +57,7 @@ class BoxCoxProfile:
         self.m = m1 + corr
         d -= corr[row_cell]
         self.d = d
+        self._buf = np.empty_like(d)
         self.ss_log = float(np.bincount(row_cell, weights=d * d, minlength=self.C).sum())
         self.basis = basis  # None when the model reproduces every cell mean
 
@@ -65,9 +66,11 @@ class BoxCoxProfile:
         if abs(lam) < 1e-12:
             within, cm = self.ss_log, self.m
         else:
-            e = np.expm1(lam * self.d)
+            e = self._buf
+            np.multiply(self.d, lam, out=e)
+            np.expm1(e, out=e)
             s1 = np.bincount(self.row_cell, weights=e, minlength=self.C)
-            e *= e
+            np.multiply(e, e, out=e)
             s2 = np.bincount(self.row_cell, weights=e, minlength=self.C)
             a = np.exp(lam * self.m)
             within = float((a * a * np.maximum(s2 - s1 * s1 / self.n, 0.0)).sum()) / lam**2
@@ -85,7 +88,7 @@ class BoxCoxProfile:
         return -0.5 * self.N * math.log(rss_z / self.N)
 
     def profile(self, alpha: float = 0.05, lo: float = -2.0, hi: float = 2.0,
-                step: float = 0.25, limit: float = 5.0) -> Profile:
+                step: float = 0.5, limit: float = 5.0) -> Profile:
         """λ̂ and its interval; the search widens past [lo, hi] up to ±limit when needed."""
         from scipy import optimize, stats
 
@@ -105,7 +108,7 @@ class BoxCoxProfile:
         i = int(np.argmax(ll))
         a, b = grid[max(i - 1, 0)], grid[min(i + 1, len(grid) - 1)]
         res = optimize.minimize_scalar(lambda t: -self.loglik(t), bounds=(a, b),
-                                       method="bounded", options={"xatol": 1e-4})
+                                       method="bounded", options={"xatol": 2e-4})
         lam_hat = float(res.x)
         lmax = -float(res.fun)
         if ll[i] > lmax:
@@ -126,7 +129,7 @@ class BoxCoxProfile:
                 continue
             t_out = below[0]
             ends.append(float(optimize.brentq(g, min(t_out, lam_hat), max(t_out, lam_hat),
-                                              xtol=1e-4)))
+                                              xtol=5e-4)))
             open_.append(False)
         return Profile(lam_hat=lam_hat, ci=(ends[0], ends[1]), ci_open=(open_[0], open_[1]),
                        grid=tuple(float(x) for x in grid), loglik=tuple(float(x) for x in ll),
