@@ -1,0 +1,143 @@
+"""The analyze command, the results-folder entry point and the analysis.json contract."""
+
+from __future__ import annotations
+
+import json
+import sys
+import textwrap
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from benchharness.analysis import analyze, analyze_results_folder, write_analysis_json
+from analysis_refs import battery_frame
+
+ANOVA_KEYS = {"term", "df", "sum_sq", "mean_sq", "F", "p", "partial_eta_sq", "omega_sq"}
+
+
+def _csv(tmp_path):
+    d = battery_frame()
+    d["status"] = "ok"
+    d["run"] = range(len(d))
+    d["position"] = range(len(d))
+    p = tmp_path / "battery.csv"
+    d.to_csv(p, index=False)
+    return p
+
+
+def test_analysis_json_contract_shapes():
+    an = analyze(battery_frame(), response="life_h", factors=["material", "temperature"])
+    d = an.to_dict()
+    json.dumps(d, allow_nan=False)  # strictly valid JSON
+    for key in ("response", "transform", "anova", "means", "diagnostics", "effects",
+                "comparisons"):
+        assert key in d
+    t = d["transform"]
+    assert {"name", "lambda", "lambda_hat", "lambda_ci", "reason"} <= set(t)
+    assert t["name"] in ("none", "log", "boxcox")
+    terms = [r["term"] for r in d["anova"]]
+    assert terms == ["material", "temperature", "material:temperature", "Residual"]
+    assert all(ANOVA_KEYS <= set(r) for r in d["anova"])
+    res = d["anova"][-1]
+    assert res["F"] is None and res["p"] is None
+    for e in d["effects"]:
+        assert {"factor", "level", "reference", "ratio", "lower", "upper"} <= set(e)
+    assert {e["reference"] for e in d["effects"] if e["factor"] == "material"} == {"1"}
+    for c in d["comparisons"]:
+        assert {"method", "factor", "within", "a", "b", "ratio", "lower", "upper",
+                "p_adj"} <= set(c)
+        assert c["method"] in ("pairwise", "tukey", "simple", "declared")
+    for m in d["means"]:
+        assert {"term", "levels", "mean", "lower", "upper", "n"} <= set(m)
+    dg = d["diagnostics"]
+    assert {"test", "statistic", "p", "verdict"} <= set(dg["normality"])
+    assert {"test", "statistic", "p", "verdict"} <= set(dg["equal_variance"])
+    assert isinstance(dg["outliers"], list)
+    assert {"slope_per_100_runs", "p", "verdict"} <= set(dg["drift"])
+    # .anova is the same table as a DataFrame
+    assert list(an.anova.columns) == ["term", "df", "sum_sq", "mean_sq", "F", "p",
+                                      "partial_eta_sq", "omega_sq"]
+    assert an.anova["sum_sq"].iloc[0] == pytest.approx(d["anova"][0]["sum_sq"])
+
+
+def test_none_transform_effects_carry_difference():
+    an = analyze(battery_frame(), response="life_h", factors=["material", "temperature"],
+                 transform="none", reference={"temperature": "70"})
+    e = [x for x in an.effects if x["factor"] == "temperature"]
+    assert {x["level"] for x in e} == {"15", "125"}
+    d = battery_frame()
+    m = d.groupby("temperature")["life_h"].mean()
+    x15 = next(x for x in e if x["level"] == "15")
+    assert x15["difference"] == pytest.approx(m["15"] - m["70"])  # balanced: plain means
+    assert x15["ratio"] == pytest.approx(m["15"] / m["70"])
+    assert x15["approximate"] is True
+
+
+def test_cli_analyze_csv_and_json(cli, tmp_path):
+    p = _csv(tmp_path)
+    out = tmp_path / "a.json"
+    r = cli("analyze", p, "--response", "life_h", "--factors", "material,temperature",
+            "--transform", "none", "--json", out, "--reference", "temperature=70")
+    assert r.returncode == 0, r.stderr
+    assert "Sum of squares" in r.stdout and "material:temperature" in r.stdout
+    d = json.loads(out.read_text())
+    ss = {x["term"]: x["sum_sq"] for x in d["anova"]}
+    # Montgomery battery-life example, from memory
+    assert ss["material"] == pytest.approx(10683.72, abs=0.01)
+    assert d["model"]["references"]["temperature"] == "70"
+    r = cli("analyze", p, "--response", "life_h", "--factors", "material,temperature",
+            "--json", "-", "--ss-type", "3", "--model", "main")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert [x["term"] for x in d["anova"]] == ["material", "temperature", "Residual"]
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["--factors", "material,nope"], "nope"),
+    (["--factors", "material", "--response", "speed"], "speed"),
+    (["--factors", "material", "--reference", "material=9"], "9"),
+    (["--factors", "material", "--model", "wild"], "wild"),
+    ([], "factors"),
+])
+def test_cli_bad_input_one_line_exit_2(cli, tmp_path, args, needle):
+    p = _csv(tmp_path)
+    r = cli("analyze", p, *(["--response", "life_h"] if "--response" not in args else []), *args)
+    assert r.returncode == 2
+    assert len(r.stderr.strip().splitlines()) == 1, r.stderr
+    assert needle in r.stderr and "Traceback" not in r.stderr
+
+
+def test_cli_missing_source(cli, tmp_path):
+    r = cli("analyze", tmp_path / "none.csv", "--factors", "a")
+    assert r.returncode == 2 and "none.csv" in r.stderr
+
+
+def test_results_folder_analysis_and_json(tmp_path):
+    from benchharness.experiment import load_experiment
+    from benchharness.runner import run_experiment
+
+    exp = tmp_path / "exp.yaml"
+    exp.write_text(textwrap.dedent(f"""\
+        experiment: tiny-sleep
+        command: [{sys.executable}, -c, "import time; time.sleep(0.02 * {{n}})"]
+        factors:
+          n: [1, 4]
+          pad: ["a", "1.0"]
+        replicates: 3
+        order: blocked
+        seed: 3
+        compare:
+          - n: ["4", "1"]
+        """))
+    out = run_experiment(load_experiment(exp), out=tmp_path / "res")
+    an = analyze_results_folder(out.folder)
+    assert an.factors == ("n", "pad")
+    assert an.levels["pad"] == ["a", "1.0"]
+    assert an.block == "block"  # blocked experiment: block is the additive term
+    assert an.anova_rows[0]["term"] == "block"
+    dec = [c for c in an.comparisons if c["method"] == "declared"]
+    assert len(dec) == 1 and (dec[0]["a"], dec[0]["b"]) == ("4", "1")
+    assert dec[0]["ratio"] > 1.5  # sleeping 80 ms against 20 ms (plus start-up)
+    path = write_analysis_json(an, out.folder / "analysis.json")
+    assert json.loads(path.read_text())["response"] == "wall_s"
