@@ -347,3 +347,27 @@ def test_ratio_interval_coverage_2000_experiments():
     hits, n = _simulate_coverage(2000, seed=2024)
     lo, hi = _band(n)
     assert all(lo <= h <= hi for h in hits), (hits, lo, hi)
+
+
+@pytest.mark.parametrize("k,df", [(2, 3), (3, 10), (5, 54), (10, 200), (20, 30), (4, 5000)])
+def test_studentized_range_tail_matches_scipy(k, df):
+    # source: scipy.stats.studentized_range (adaptive integration)
+    from scipy import stats
+
+    from benchharness.analysis import srange
+
+    q = np.array([0.3, 1.0, 2.5, 3.5, 5.0, 7.0])
+    np.testing.assert_allclose(srange.sf(q, k, df), stats.studentized_range.sf(q, k, df),
+                               rtol=1e-6, atol=1e-10)
+    assert srange.isf(0.05, k, df) == pytest.approx(stats.studentized_range.ppf(0.95, k, df),
+                                                    rel=1e-7)
+
+
+def test_host_column_becomes_block_by_default():
+    rng = np.random.default_rng(1)
+    d = pd.DataFrame({"a": np.tile(["x", "y"], 12), "host": np.repeat(["h1", "h2", "h3"], 8),
+                      "wall_s": rng.lognormal(0, 0.1, 24)})
+    assert analyze(d, factors=["a"]).block == "host"
+    assert analyze(d, factors=["a"], block=False).block is None
+    d["host"] = "h1"
+    assert analyze(d, factors=["a"]).block is None

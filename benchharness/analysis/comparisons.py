@@ -7,7 +7,8 @@ Owns:
   from the model, so unbalanced data are handled), adjusted within each factor
   by Bonferroni or Holm (Holm 1979, *Scand. J. Statistics* 6:65);
 * Tukey HSD for each main effect (Tukey 1953; Kramer 1956 for unequal n):
-  q = |difference| / (SE/√2) against the studentized range distribution;
+  q = |difference| / (SE/√2) against the studentized range distribution
+  (``srange``, checked against scipy);
 * simple effects: when a two-factor interaction is significant, the levels of
   one factor compared within each level of the other, Holm-adjusted over that
   family;
@@ -105,13 +106,13 @@ def pairwise(fit: Fit, names, levels, factor_idx, choice, alpha, adjust) -> list
 
 @lru_cache(maxsize=256)
 def _q_crit(alpha: float, k: int, df: int) -> float:
-    from scipy import stats
+    from benchharness.analysis import srange
 
-    return float(stats.studentized_range.ppf(1 - alpha, k, df))
+    return srange.isf(alpha, k, df)
 
 
 def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
-    from scipy import stats
+    from benchharness.analysis import srange
 
     if fit.df_resid <= 0:
         return []
@@ -134,7 +135,7 @@ def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
             stats_q.append(stat)
         idx = [i for i, q in enumerate(stats_q) if q is not None]
         if idx:
-            ps = stats.studentized_range.sf(np.array([stats_q[i] for i in idx]), k, fit.df_resid)
+            ps = srange.sf(np.array([stats_q[i] for i in idx]), k, fit.df_resid)
             for i, p in zip(idx, np.atleast_1d(ps)):
                 rows[i]["p"] = rows[i]["p_adj"] = float(p)
         out += rows
