@@ -73,6 +73,9 @@ class Analysis:
     def to_dict(self) -> dict:
         return _clean({
             "response": self.response,
+            "alpha": self.model.get("alpha"),
+            "confidence": 1.0 - self.model.get("alpha", 0.05),
+            "ss_type": self.model.get("ss_type"),
             "factors": [{"name": f, "levels": list(self.levels[f])} for f in self.factors],
             "block": self.block,
             "model": self.model,
@@ -307,7 +310,9 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         out = dg.outliers(resid, lev_rows, fit.rss, df_res, prep.run, alpha)
         studentized = out.pop("studentized")
         diagnostics["outliers"] = out["runs"]
-        diagnostics["outlier_check"] = {k: v for k, v in out.items() if k != "runs"}
+        diagnostics["outlier_cutoff"] = out["cutoff"]
+        diagnostics["outlier_count"] = out["count"]
+        diagnostics["outlier_verdict"] = out["verdict"]
         if choice.name == "log":
             pct_unit = 100.0
         elif choice.name == "none":

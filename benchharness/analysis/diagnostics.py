@@ -243,11 +243,13 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
     per100 = slope * 100.0
     pct = per100 * pct_per_unit
     size = f"{pct:+.2f}% per 100 runs"
+    ok = True
     if p >= alpha:
         verdict = f"no drift over the run order ({size})"
     elif abs(pct) < DRIFT_MILD_PCT:
         verdict = f"a trend over the run order is detectable but small ({size})"
     else:
+        ok = False
         verdict = (f"timings drift over the run order ({size}); the machine may be warming up or "
                    "throttling: add warm-up runs, use blocks, or check for background load")
     runs_info = {"runs": nruns, "z": z, "p": p_runs}
@@ -255,7 +257,7 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
         verdict += ("; residual signs cluster in time (runs test), so neighbouring runs are "
                     "not independent")
     return {"slope_per_100_runs": per100, "percent_per_100_runs": pct, "p": p,
-            "runs_test": runs_info, "verdict": verdict}
+            "runs_test": runs_info, "verdict": verdict, "ok": ok}
 
 
 def small_cells(n, ss_within, labels_of_cell) -> list[dict]:

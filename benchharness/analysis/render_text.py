@@ -83,9 +83,8 @@ def format_analysis(a) -> str:
         extra = f" [{test}, p {_p(item.get('p'))}]" if test else (
             f" [p {_p(item.get('p'))}]" if item.get("p") is not None else "")
         lines.append(f"  {label}: {item.get('verdict', '-')}{extra}")
-    oc = dg.get("outlier_check")
-    if oc:
-        lines.append(f"  outliers: {oc['verdict']}")
+    if dg.get("outlier_verdict"):
+        lines.append(f"  outliers: {dg['outlier_verdict']}")
         for o in dg["outliers"][:10]:
             lines.append(f"    run {o['run']}: studentized residual {o['studentized']:+.2f}")
     for s in dg.get("small_cells", [])[:10]:
