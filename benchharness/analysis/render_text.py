@@ -118,6 +118,8 @@ def format_analysis(a) -> str:
                 est = [_g(x["ratio"]), f"[{_g(x['lower'])}, {_g(x['upper'])}]"]
             rows.append([label[x["method"]], f"{x['factor']}: {x['a']} vs {x['b']}{within}",
                          *est, _p(x["p_adj"])])
+        if not rows:
+            lines.append("  none")
         if rows:
             head = ["method", "comparison", "difference" if diff else "ratio", "interval",
                     "p adj"]
