@@ -141,3 +141,27 @@ def test_results_folder_analysis_and_json(tmp_path):
     assert dec[0]["lower"] > 1.0  # sleeping 80 ms against 20 ms (plus start-up)
     path = write_analysis_json(an, out.folder / "analysis.json")
     assert json.loads(path.read_text())["response"] == "wall_s"
+
+
+def test_bad_declared_comparison_points_at_the_experiment_file(tmp_path):
+    from benchharness.errors import ExperimentError
+    from benchharness.experiment import load_experiment
+    from benchharness.runner import run_experiment
+
+    exp = tmp_path / "exp.yaml"
+    exp.write_text(textwrap.dedent(f"""\
+        experiment: tiny-compare
+        command: [{sys.executable}, -c, "pass", "{{n}}"]
+        factors:
+          n: [1, 2]
+        replicates: 2
+        seed: 3
+        compare:
+          - n: ["1", "2"]
+          - n: ["1", "7"]
+        """))
+    out = run_experiment(load_experiment(exp), out=tmp_path / "res")
+    with pytest.raises(ExperimentError) as info:
+        analyze_results_folder(out.folder)
+    msg = str(info.value)
+    assert "'7' is not a level of 'n'" in msg and ":9:" in msg  # line of the bad item

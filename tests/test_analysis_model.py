@@ -220,3 +220,29 @@ def test_boxcox_means_are_back_transformed_cell_means():
         assert m["mean"] == pytest.approx((lam * zc + 1) ** (1 / lam), rel=1e-10)
         assert m["lower"] < m["mean"] < m["upper"]
     assert all(e.get("approximate") for e in an.effects)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_random_unbalanced_designs_match_statsmodels(seed):
+    # source: statsmodels ols + anova_lm on random layouts (1-3 factors, 2-4 levels,
+    # rows dropped at random, sometimes a block), Type II and Type III (C(x, Sum))
+    rng = np.random.default_rng(100 + seed)
+    k = int(rng.integers(1, 4))
+    names = [f"F {i}.x" for i in range(k)]
+    sizes = rng.integers(2, 5, k)
+    grid = np.array(np.meshgrid(*[np.arange(s) for s in sizes], indexing="ij")).reshape(k, -1).T
+    extra = np.column_stack([rng.integers(0, s, int(np.prod(sizes)) * 3) for s in sizes])
+    lv = np.vstack([grid, extra])  # every cell once, then unbalanced extra rows
+    n = len(lv)
+    d = pd.DataFrame({nm: lv[:, i].astype(str) for i, nm in enumerate(names)})
+    d["y"] = rng.lognormal(0, 0.3, n) * (1 + d[names[0]].astype(int))
+    block = None
+    if seed % 2:
+        block = "blk"
+        d[block] = rng.choice(["p", "q", "r"], n)
+    for typ in (2, 3):
+        an = analyze(d, response="y", factors=names, block=block if block else False,
+                     transform="log", ss_type=typ)
+        ref, _ = sm_anova(d, "y", names, typ=typ, sum_coding=(typ == 3), block=block,
+                          transform=np.log)
+        assert_same_anova(an, ref, rtol=1e-8)

@@ -141,18 +141,22 @@ def _parse_reference(reference, names, levels):
 
 
 def _declared_from_experiment(exp):
+    """(plain value, yaml node) of the experiment's ``compare:`` section, or (None, None)."""
     sections = getattr(exp, "sections", None) or {}
     node = sections.get("compare") if hasattr(sections, "get") else None
     if node is None:
-        return None
+        return None, None
+    from benchharness.yamlnodes import to_plain
+
+    return to_plain(node), node
+
+
+def _item_node(node, k):
+    """The YAML node of item k (1-based) of a sequence node, for error positions."""
     try:
-        from benchharness.yamlnodes import to_plain  # type: ignore
-
-        return to_plain(node)
-    except ImportError:
-        import yaml
-
-        return yaml.safe_load(yaml.serialize(node))
+        return node.value[k - 1]
+    except (AttributeError, IndexError, TypeError):
+        return node
 
 
 def analyze(data, *args, **kwargs) -> "Analysis":
@@ -361,9 +365,19 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         comps += cmp.pairwise(fit, names, levels, factor_idx, choice, alpha, adjust)
         comps += cmp.tukey(fit, names, levels, factor_idx, choice, alpha)
         comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha)
+    node = None
     if compare is None:
-        compare = _declared_from_experiment(prep.experiment)
-    items = cmp.parse_declared(compare, fnames, flevels)
+        compare, node = _declared_from_experiment(prep.experiment)
+    try:
+        items = cmp.parse_declared(compare, fnames, flevels)
+    except UsageError as exc:
+        if node is None:
+            raise
+        from benchharness.yamlnodes import node_error
+
+        k = getattr(exc, "item", None)
+        raise node_error(_item_node(node, k) if k else node, str(exc),
+                         getattr(prep.experiment, "path", None)) from None
     comps += cmp.declared(fit, names, levels, items, choice, alpha, adjust)
 
     # ---- failures ------------------------------------------------------------------------

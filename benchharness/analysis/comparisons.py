@@ -188,44 +188,52 @@ def parse_declared(spec, names, levels) -> list[dict]:
                          "[{codec: [lzma, zlib]}]")
     out = []
     for k, item in enumerate(spec, 1):
-        where = f"compare item {k}"
-        if not isinstance(item, dict):
-            raise UsageError(f"{where}: expected a mapping such as {{codec: [lzma, zlib]}}")
-        item = dict(item)
-        within = item.pop("within", None) or None
-        if "factor" in item:
-            factor, a, b = item.pop("factor"), item.pop("a", None), item.pop("b", None)
-            if item:
-                raise UsageError(f"{where}: unknown key {next(iter(item))!r}")
-        else:
-            if len(item) != 1:
-                raise UsageError(f"{where}: name exactly one factor with two levels, e.g. "
-                                 "{codec: [lzma, zlib]}")
-            factor, pair = next(iter(item.items()))
-            if not isinstance(pair, (list, tuple)) or len(pair) != 2:
-                raise UsageError(f"{where}: {factor!r} needs a list of two levels [a, b]")
-            a, b = pair
-        factor, a, b = str(factor), str(a), str(b)
-        if factor not in names:
-            raise UsageError(f"{where}: {factor!r} is not a factor of the analysis")
-        lv = levels[names.index(factor)]
-        for x in (a, b):
-            if x not in lv:
-                raise UsageError(f"{where}: {x!r} is not a level of {factor!r} "
-                                 f"(levels: {', '.join(lv)})")
-        if a == b:
-            raise UsageError(f"{where}: a level compared with itself")
-        if within is not None:
-            if not isinstance(within, dict):
-                raise UsageError(f"{where}: within must be a mapping factor: level")
-            within = {str(kf): str(kv) for kf, kv in within.items()}
-            for kf, kv in within.items():
-                if kf not in names or kf == factor:
-                    raise UsageError(f"{where}: within names {kf!r}, not another factor")
-                if kv not in levels[names.index(kf)]:
-                    raise UsageError(f"{where}: {kv!r} is not a level of {kf!r}")
-        out.append({"factor": factor, "a": a, "b": b, "within": within})
+        try:
+            out.append(_parse_item(item, k, names, levels))
+        except UsageError as exc:
+            exc.item = k
+            raise
     return out
+
+
+def _parse_item(item, k, names, levels) -> dict:
+    where = f"compare item {k}"
+    if not isinstance(item, dict):
+        raise UsageError(f"{where}: expected a mapping such as {{codec: [lzma, zlib]}}")
+    item = dict(item)
+    within = item.pop("within", None) or None
+    if "factor" in item:
+        factor, a, b = item.pop("factor"), item.pop("a", None), item.pop("b", None)
+        if item:
+            raise UsageError(f"{where}: unknown key {next(iter(item))!r}")
+    else:
+        if len(item) != 1:
+            raise UsageError(f"{where}: name exactly one factor with two levels, e.g. "
+                             "{codec: [lzma, zlib]}")
+        factor, pair = next(iter(item.items()))
+        if not isinstance(pair, (list, tuple)) or len(pair) != 2:
+            raise UsageError(f"{where}: {factor!r} needs a list of two levels [a, b]")
+        a, b = pair
+    factor, a, b = str(factor), str(a), str(b)
+    if factor not in names:
+        raise UsageError(f"{where}: {factor!r} is not a factor of the analysis")
+    lv = levels[names.index(factor)]
+    for x in (a, b):
+        if x not in lv:
+            raise UsageError(f"{where}: {x!r} is not a level of {factor!r} "
+                             f"(levels: {', '.join(lv)})")
+    if a == b:
+        raise UsageError(f"{where}: a level compared with itself")
+    if within is not None:
+        if not isinstance(within, dict):
+            raise UsageError(f"{where}: within must be a mapping factor: level")
+        within = {str(kf): str(kv) for kf, kv in within.items()}
+        for kf, kv in within.items():
+            if kf not in names or kf == factor:
+                raise UsageError(f"{where}: within names {kf!r}, not another factor")
+            if kv not in levels[names.index(kf)]:
+                raise UsageError(f"{where}: {kv!r} is not a level of {kf!r}")
+    return {"factor": factor, "a": a, "b": b, "within": within}
 
 
 def declared(fit: Fit, names, levels, items, choice, alpha, adjust) -> list[dict]:
