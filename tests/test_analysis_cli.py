@@ -165,3 +165,35 @@ def test_bad_declared_comparison_points_at_the_experiment_file(tmp_path):
         analyze_results_folder(out.folder)
     msg = str(info.value)
     assert "'7' is not a level of 'n'" in msg and ":9:" in msg  # line of the bad item
+
+
+def test_cli_hostile_factor_names(cli, tmp_path):
+    rng = np.random.default_rng(3)
+    names = ["C", "I", "it's \"Q\" a.b"]
+    d = pd.DataFrame({names[0]: np.tile(["1", "1.0"], 12), names[1]: np.repeat(["x", "y"], 12),
+                      names[2]: np.tile(["p", "p", "q", "q"], 6),
+                      "wall_s": rng.lognormal(0, 0.1, 24)})
+    p = tmp_path / "hostile.csv"
+    d.to_csv(p, index=False)
+    r = cli("analyze", p, "--factors", ",".join(names), "--json", "-")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert [f["levels"] for f in out["factors"]][0] == ["1", "1.0"]
+    assert f"C:I:{names[2]}" in [x["term"] for x in out["anova"]]
+
+
+def test_large_table_uses_anderson_darling_and_skips_rank_check():
+    rng = np.random.default_rng(6)
+    n = 60_000
+    d = pd.DataFrame({"a": rng.choice(["x", "y", "z"], n), "b": rng.choice(["p", "q"], n)})
+    d["wall_s"] = np.exp(rng.standard_t(3, n) * 0.05 + 0.3 * (d.a == "z"))
+    an = analyze(d, factors=["a", "b"], transform="log")
+    assert an.diagnostics["normality"]["test"] == "anderson-darling"
+    assert an.diagnostics["normality"]["ok"] is False  # t(3) tails are heavy
+    assert an.art is None
+    assert any("runs only on request" in x for x in an.notes)
+    d.loc[5, "a"] = None
+    from benchharness.errors import DataError
+
+    with pytest.raises(DataError, match="no level in 1 row"):
+        analyze(d, factors=["a", "b"])

@@ -88,6 +88,9 @@ def _code(series, listed: Sequence[str] | None, name: str):
                             f"listed in the experiment ({', '.join(map(repr, listed))})")
         return codes, tuple(listed)
     codes, uniques = pd.factorize(text, sort=False)
+    if (codes < 0).any():
+        raise DataError(f"factor {name!r} has no level in {int((codes < 0).sum())} row(s); "
+                        "give every row a level")
     return codes.astype(np.int64), tuple(str(u) for u in uniques)
 
 
