@@ -10,7 +10,6 @@ import pytest
 
 from benchharness.analysis import analyze
 from benchharness.analysis.diagnostics import anderson_darling_p
-from analysis_refs import ours_table
 
 
 def toothgrowth():
@@ -371,3 +370,21 @@ def test_host_column_becomes_block_by_default():
     assert analyze(d, factors=["a"], block=False).block is None
     d["host"] = "h1"
     assert analyze(d, factors=["a"]).block is None
+
+
+def test_art_one_factor_equals_rank_anova_from_kruskal_wallis():
+    # With one factor the aligned values are y minus the grand mean, so the ART F test is
+    # the ANOVA of ranks, which relates to Kruskal-Wallis H (scipy.stats.kruskal)
+    # by F = (H/(k-1)) / ((N-1-H)/(N-k))  (Conover & Iman 1981, rank transform)
+    from scipy import stats
+
+    d = plantgrowth()
+    an = analyze(d, response="weight", factors=["group"], transform="none", art=True)
+    groups = [g["weight"].to_numpy() for _, g in d.groupby("group")]
+    H = stats.kruskal(*groups).statistic
+    N, k = len(d), 3
+    F = (H / (k - 1)) / ((N - 1 - H) / (N - k))
+    row = an.art["terms"][0]
+    # with ties, scipy's tie-corrected H = (N-1) SS_between / SS_total of average ranks,
+    # so the relation stays exact
+    assert row["F"] == pytest.approx(F, rel=1e-9)

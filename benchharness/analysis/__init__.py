@@ -342,7 +342,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     art_result = None
     run_art = (art is True) or (art == "auto" and not assumptions_ok and N <= ART_AUTO_MAX_ROWS)
     if run_art and df_res > 0:
-        rows = ef_art(codes[: len(fnames)], sizes[: len(fnames)], fnames, y, terms, ss_type, alpha,
+        rows = _run_art(codes[: len(fnames)], sizes[: len(fnames)], fnames, y, terms, ss_type, alpha,
                       anova_p)
         art_result = {"reason": "requested" if art is True else
                       "assumptions fail after the transform", "terms": rows}
@@ -413,7 +413,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         position=prep.position, run=prep.run, fit=fit)
 
 
-def ef_art(codes, sizes, names, y, terms, ss_type, alpha, anova_p):
+def _run_art(codes, sizes, names, y, terms, ss_type, alpha, anova_p):
     from benchharness.analysis.art import art_anova
 
     return art_anova(codes, sizes, names, y, terms, ss_type, alpha, anova_p)

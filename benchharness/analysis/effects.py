@@ -22,7 +22,7 @@ from itertools import product
 
 import numpy as np
 
-from benchharness.analysis.model import Fit, Term, sum_contrasts
+from benchharness.analysis.model import Fit, sum_contrasts
 from benchharness.analysis import transform as tr
 
 

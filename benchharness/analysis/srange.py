@@ -24,7 +24,7 @@ _HZ = _Z[1] - _Z[0]
 
 @lru_cache(maxsize=64)
 def _s_nodes(df: float, n: int = 64):
-    from scipy import special, stats
+    from scipy import stats
 
     if not np.isfinite(df) or df > 1e7:
         return np.array([0.0]), np.array([1.0])
@@ -38,7 +38,6 @@ def _s_nodes(df: float, n: int = 64):
     logf = (stats.chi2.logpdf(df * s * s, df) + np.log(2.0 * df) + 2.0 * u)
     weights = wu * np.exp(logf)
     weights /= weights.sum()  # the nodes carry all but ~1e-15 of the mass
-    del special
     return u, weights
 
 
