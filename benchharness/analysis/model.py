@@ -227,7 +227,10 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
         for f in t.factors:
             df_full *= sizes[f] - 1
         note = None
-        if df == 0:
+        if df_full == 0:
+            note = "no effect to estimate: a factor in this term has a single level"
+            ss = float("nan")
+        elif df == 0:
             note = "inestimable: the observed cells cannot separate this effect from the others"
             ss = float("nan")
         elif df < df_full:
