@@ -490,6 +490,11 @@ def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planne
     J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()
+    if not interrupted:
+        try:
+            (folder / "inflight").unlink()
+        except FileNotFoundError:
+            pass
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
     return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
                       interrupted=interrupted)
