@@ -388,3 +388,20 @@ def test_art_one_factor_equals_rank_anova_from_kruskal_wallis():
     # with ties, scipy's tie-corrected H = (N-1) SS_between / SS_total of average ranks,
     # so the relation stays exact
     assert row["F"] == pytest.approx(F, rel=1e-9)
+
+
+def test_residuals_against_machine_load_when_recorded():
+    # planted: runs started under higher load are slower; Spearman via scipy in analysis_load
+    from scipy import stats
+
+    rng = np.random.default_rng(21)
+    n = 120
+    load = rng.uniform(0, 4, n)
+    d = pd.DataFrame({"a": np.tile(["x", "y"], n // 2), "load_1m": load,
+                      "wall_s": np.exp(0.1 * (np.arange(n) % 2) + 0.05 * load
+                                       + rng.normal(0, 0.02, n))})
+    an = analyze(d, factors=["a"], transform="log")
+    ld = an.diagnostics["load"]
+    assert ld["relation"] == "related" and ld["ok"] is False
+    ref = stats.spearmanr(an.residuals, load)
+    assert ld["statistic"] == pytest.approx(ref.statistic, rel=1e-12)

@@ -325,6 +325,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         else:
             pct_unit = 100.0 * math.exp(-choice.lam * float(np.mean(np.log(y))))
         diagnostics["drift"] = dg.drift(resid, prep.position, pct_unit, alpha)
+        if "load_1m" in prep.extra:
+            diagnostics["load"] = _load_check(resid, prep.extra["load_1m"], alpha)
     else:
         skipped = {"verdict": "not checked: no residual degrees of freedom"}
         diagnostics.update(normality=dict(skipped, test=None, statistic=None, p=None),
@@ -411,6 +413,16 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)), counts=counts,
         residuals=resid, fitted=fit.fitted[cells.row_cell], studentized=studentized,
         position=prep.position, run=prep.run, fit=fit)
+
+
+def _load_check(resid, load, alpha):
+    """Do residuals follow the machine's load? (Spearman; ``benchharness.analysis_load``)."""
+    from benchharness.analysis_load import load_correlation
+
+    out = load_correlation(resid, load, alpha=alpha)
+    return {"test": "spearman", "statistic": out.get("rho"), "p": out.get("p"),
+            "n": out.get("n"), "relation": out.get("verdict"), "verdict": out.get("message"),
+            "ok": out.get("verdict") != "related"}
 
 
 def _run_art(codes, sizes, names, y, terms, ss_type, alpha, anova_p):

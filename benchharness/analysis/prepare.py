@@ -261,10 +261,14 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
 
     run = numeric("run")
     position = numeric("position")
+    extra = {}
+    if "load_1m" in columns:  # machine load at the start of each run (runs.csv column)
+        col_s = df["load_1m"]
+        extra["load_1m"] = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
     return Prepared(
         response=response, factors=tuple(factors), levels=tuple(levels),
         codes=tuple(c[use] for c in codes), block=block, block_levels=tuple(block_levels),
         block_codes=block_codes, y=y[use], run=run, position=position,
         status_counts=status_counts, notes=tuple(notes), experiment=exp,
-        order_source=order_source,
+        order_source=order_source, extra=extra,
     )

@@ -77,7 +77,9 @@ def format_analysis(a) -> str:
     dg = d["diagnostics"]
     lines.append("Diagnostics")
     for key, label in (("normality", "normality"), ("equal_variance", "equal variances"),
-                       ("drift", "drift")):
+                       ("drift", "drift"), ("load", "machine load")):
+        if key not in dg:
+            continue
         item = dg.get(key) or {}
         test = item.get("test")
         extra = f" [{test}, p {_p(item.get('p'))}]" if test else (
