@@ -33,8 +33,8 @@ class Profile:
     lam_hat: float
     ci: tuple[float, float]
     ci_open: tuple[bool, bool]      # True where the interval reached the search edge
-    grid: tuple[float, ...]         # λ values of the coarse profile (for plots)
-    loglik: tuple[float, ...]       # profile log-likelihood on the grid
+    grid: tuple[float, ...]         # every λ evaluated, sorted (coarse grid + refinement)
+    loglik: tuple[float, ...]       # profile log-likelihood at those λ
     loglik_max: float
 
 
@@ -149,8 +149,9 @@ class BoxCoxProfile:
                                    xtol=5e-4)
             ends.append(float(root))
             open_.append(False)
+        pts = sorted((t, v) for t, v in memo.items() if math.isfinite(v))
         return Profile(lam_hat=lam_hat, ci=(ends[0], ends[1]), ci_open=(open_[0], open_[1]),
-                       grid=tuple(float(x) for x in grid), loglik=tuple(float(x) for x in ll),
+                       grid=tuple(t for t, _ in pts), loglik=tuple(v for _, v in pts),
                        loglik_max=lmax)
 
     @staticmethod
