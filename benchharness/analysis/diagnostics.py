@@ -158,8 +158,11 @@ def brown_forsythe(row_group, values, count, alpha: float) -> dict:
     var = var[use_g]
     ratio = float(var.max() / var.min()) if var.min() > 0 else float("inf")
     size = f"largest/smallest cell variance {ratio:.2f}"
-    if p >= alpha:
+    if p >= alpha and ratio < VAR_RATIO_MILD:
         verdict, ok = f"cell variances are consistent with being equal ({size})", True
+    elif p >= alpha:
+        verdict, ok = (f"no clear evidence of unequal variances, though the {size}; with few "
+                       "runs per cell the test has little power"), True
     elif ratio < VAR_RATIO_MILD:
         verdict, ok = (f"unequal variances are detectable but small ({size}); "
                        "the F tests are robust to this"), True
