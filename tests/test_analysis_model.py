@@ -246,3 +246,39 @@ def test_random_unbalanced_designs_match_statsmodels(seed):
         ref, _ = sm_anova(d, "y", names, typ=typ, sum_coding=(typ == 3), block=block,
                           transform=np.log)
         assert_same_anova(an, ref, rtol=1e-8)
+
+
+def test_replicated_half_fraction_matches_statsmodels_and_names_aliases():
+    # 2^(4-1) with D = ABC, two replicates: the full model leaves out every term confounded
+    # with an earlier one; the rest is the model A+B+C+D+A:B+A:C+A:D, checked against
+    # statsmodels ols + anova_lm(typ=2) of that model (aliases: Box, Hunter & Hunter,
+    # Statistics for Experimenters, 2^(4-1) with I = ABCD, from memory: A=BCD, AB=CD, ...)
+    import itertools
+
+    import statsmodels.api as sm
+    import statsmodels.formula.api as smf
+
+    rng = np.random.default_rng(0)
+    rows = []
+    for a, b, c in itertools.product([-1, 1], repeat=3):
+        for _ in range(2):
+            rows.append({"A": str(a), "B": str(b), "C": str(c), "D": str(a * b * c),
+                         "y": float(np.exp(0.3 * a + 0.1 * a * b * c + rng.normal(0, 0.05)))})
+    d = pd.DataFrame(rows)
+    an = analyze(d, response="y", factors=list("ABCD"), transform="log")
+    t = ours_table(an)
+    assert t["A"]["aliases"] == ["B:C:D"] and t["A:B"]["aliases"] == ["C:D"]
+    assert t["C:D"]["df"] == 0 and "confounded with A:B" in t["C:D"]["note"]
+    # (a column named C would shadow patsy's C(); the reference uses renamed columns)
+    r = pd.DataFrame({"fa": d["A"], "fb": d["B"], "fc": d["C"], "fd": d["D"],
+                      "ly": np.log(d["y"])})
+    m = smf.ols("ly ~ C(fa) + C(fb) + C(fc) + C(fd) + C(fa):C(fb) + C(fa):C(fc) + C(fa):C(fd)",
+                r).fit()
+    ref = sm.stats.anova_lm(m, typ=2)
+    for term, idx in [("A", "C(fa)"), ("D", "C(fd)"), ("A:B", "C(fa):C(fb)"),
+                      ("A:D", "C(fa):C(fd)")]:
+        assert t[term]["sum_sq"] == pytest.approx(ref.loc[idx, "sum_sq"], rel=1e-9)
+        assert t[term]["p"] == pytest.approx(ref.loc[idx, "PR(>F)"], rel=1e-6)
+    assert t["Residual"]["df"] == 8
+    assert t["Residual"]["sum_sq"] == pytest.approx(m.ssr, rel=1e-9)
+    assert all(e["ratio"] is not None for e in an.effects)  # main effects estimable

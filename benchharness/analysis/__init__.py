@@ -281,7 +281,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         anova_rows.append({"term": row.term, "df": row.df, "sum_sq": row.sum_sq,
                            "mean_sq": ms, "F": F, "p": p, "partial_eta_sq": peta,
                            "omega_sq": omega, "kind": "block" if row.is_block else "effect",
-                           "df_full": row.df_full, "note": row.note})
+                           "df_full": row.df_full, "note": row.note,
+                           "aliases": list(row.aliases)})
     anova_rows.append({"term": "Residual", "df": df_res, "sum_sq": fit.rss,
                        "mean_sq": mse if df_res > 0 else None, "F": None, "p": None,
                        "partial_eta_sq": None, "omega_sq": None, "kind": "residual"})

@@ -146,8 +146,10 @@ def brown_forsythe(row_group, values, count, alpha: float) -> dict:
     within = float(dev @ dev)
     df1, df2 = g - 1, N - g
     if within <= 0 or df2 <= 0:
+        why = ("with two runs per cell both deviations from the median are equal, so the "
+               "test is degenerate" if n[use_g].max() <= 2 else "no spread within cells")
         return {"test": "brown-forsythe", "statistic": None, "p": None,
-                "verdict": "no spread within cells; not tested", "ok": True}
+                "verdict": f"{why}; not tested", "ok": True}
     F = (between / df1) / (within / df2)
     p = float(stats.f.sf(F, df1, df2))
     # size of the departure: ratio of largest to smallest cell variance
