@@ -197,3 +197,18 @@ def test_large_table_uses_anderson_darling_and_skips_rank_check():
 
     with pytest.raises(DataError, match="no level in 1 row"):
         analyze(d, factors=["a", "b"])
+
+
+def test_text_layout_shows_failures_timeouts_and_notes():
+    from benchharness.analysis import format_analysis
+
+    rng = np.random.default_rng(2)
+    d = pd.DataFrame({"threads": np.repeat(["1", "4", "16"], 6),
+                      "wall_s": rng.lognormal(0, 0.1, 18), "status": "ok"})
+    d.loc[[13, 14], "status"] = "timeout"
+    text = format_analysis(analyze(d, factors=["threads"]))
+    assert text.splitlines()[0].startswith("Analysis of wall_s — 16 runs in 3 cells")
+    assert "threads=16: 4 of 6 ok (0 failed, 2 timed out) — has timeouts" in text
+    assert "look faster than the configuration is" in text
+    for word in ("Source", "df", "Sum of squares", "Mean square", "F", "p", "Residual"):
+        assert word in text
