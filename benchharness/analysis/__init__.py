@@ -159,35 +159,42 @@ def _item_node(node, k):
         return node
 
 
-def analyze(data, *args, **kwargs) -> "Analysis":
-    """Analyse a runs table (DataFrame, tidy CSV path or results folder); see `_analyze`.
+def analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
+            model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
+            adjust: str = "holm", compare=None, art="auto",
+            comparisons: bool = True) -> "Analysis":
+    """Analyse a runs table (DataFrame, tidy CSV path or results folder).
+
+    ``block``: a column name; None (or "auto") for the default (``block`` for
+    blocked experiments, ``host`` when it has more than one value); False for none.
+    ``model``: "full", "main" or N (interactions up to order N). ``ss_type``: 2 or 3.
+    ``reference``: {factor: level} or ["factor=level", ...] for the ratios
+    (default: the first level). ``adjust``: "holm" or "bonferroni" for pairwise
+    comparisons. ``compare``: declared comparisons (see
+    ``comparisons.parse_declared``); default: the experiment's ``compare:``.
+    ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
+    ``comparisons=False`` skips the post hoc comparisons (faster in simulations).
 
     Linear algebra here works on small matrices (cells × parameters), where
     multi-threaded BLAS only adds overhead on a busy machine, so BLAS is held to
     one thread for the call when threadpoolctl is available.
     """
+    kwargs = dict(response=response, factors=factors, block=block, transform=transform,
+                  model=model, ss_type=ss_type, alpha=alpha, reference=reference,
+                  adjust=adjust, compare=compare, art=art, comparisons=comparisons)
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:  # optional: only speed depends on it
-        return _analyze(data, *args, **kwargs)
+        return _analyze(data, **kwargs)
     with threadpool_limits(1):
-        return _analyze(data, *args, **kwargs)
+        return _analyze(data, **kwargs)
 
 
 def _analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
             model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
             adjust: str = "holm", compare=None, art="auto",
             comparisons: bool = True) -> Analysis:
-    """Analyse a runs table (DataFrame, tidy CSV path or results folder).
-
-    ``block``: a column name; None (or "auto") for the default (``block`` for
-    blocked experiments, ``host`` when it has more than one value); False for none.
-    ``reference``: {factor: level} or ["factor=level", ...] for the ratios
-    (default: the first level). ``compare``: declared comparisons (see
-    ``comparisons.parse_declared``); default: the experiment's ``compare:``.
-    ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
-    ``comparisons=False`` skips the post hoc comparisons (faster in simulations).
-    """
+    """The work of `analyze` (same arguments)."""
     from scipy import stats
 
     from benchharness.analysis import comparisons as cmp
