@@ -45,7 +45,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
     conf = story.confidence_pct(data)
     verdict = story.verdict(data)
     anova = []
-    ss_type = data.analysis.get("ss_type")
+    ss_type = data.analysis.get("ss_type") or (data.analysis.get("model") or {}).get("ss_type")
     for r in story.anova_rows(data):
         anova.append({
             "term": r.get("term"), "df": fmt_num(r.get("df"), 4),

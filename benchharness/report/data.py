@@ -92,11 +92,15 @@ def _json_default(o):
     return str(o)
 
 
-def _levels_from(runs, factors, experiment) -> dict[str, tuple[str, ...]]:
+def _levels_from(runs, factors, experiment, adict=None) -> dict[str, tuple[str, ...]]:
     levels: dict[str, tuple[str, ...]] = {}
+    analysed = {}
+    for f in (adict or {}).get("factors") or []:
+        if isinstance(f, Mapping) and f.get("levels"):
+            analysed[str(f.get("name"))] = tuple(str(x) for x in f["levels"])
     for f in factors:
-        listed = None
-        if experiment is not None:
+        listed = analysed.get(f)
+        if experiment is not None and listed is None:
             try:
                 listed = tuple(experiment.levels_of(f))
             except Exception:  # a CSV factor the experiment does not declare
@@ -213,6 +217,8 @@ def collect(source, *, analysis=None, response: str | None = None,
     if missing:
         raise DataError(f"{src_text}: no column named {missing[0]!r} "
                         f"(columns: {', '.join(map(str, runs.columns))})")
+    raw_runs = runs
+    user_block = block
     runs = runs.copy()
     for f in factors:
         runs[f] = runs[f].astype(str)
@@ -237,8 +243,9 @@ def collect(source, *, analysis=None, response: str | None = None,
             raise DataError(f"{src_text}: no analysis to report")
         from benchharness import analyze
 
-        obj = analyze(runs, response=response or "wall_s", factors=factors, block=block,
-                      **analyze_kwargs)
+        target = raw_runs if isinstance(source, pd.DataFrame) else Path(source)
+        obj = analyze(target, response=response or "wall_s", factors=factors,
+                      block=user_block, **analyze_kwargs)
         adict = _as_dict(obj)
     adict = _jsonable(adict)
     response = adict.get("response") or response or "wall_s"
@@ -256,7 +263,7 @@ def collect(source, *, analysis=None, response: str | None = None,
             if cand in terms and cand in runs.columns and cand not in factors:
                 block = cand
 
-    levels = _levels_from(runs, factors, experiment)
+    levels = _levels_from(runs, factors, experiment, adict)
 
     residuals = None
     if obj is not None and not isinstance(obj, Mapping):
@@ -270,9 +277,10 @@ def collect(source, *, analysis=None, response: str | None = None,
             residuals = model.residual_table(runs, adict, factors, block)
         except (KeyError, ValueError) as exc:  # e.g. a response with no usable values
             raise DataError(f"{src_text}: cannot compute residuals: {exc}") from exc
-    profile = _normalise_profile(profile)
-    if profile is None:
-        profile = model.boxcox_profile(runs, adict, factors, block)
+    # A fine profile of our own (cheap: one projection per λ); the analysis' coarse
+    # grid is the fallback.
+    fine = model.boxcox_profile(runs, adict, factors, block)
+    profile = fine if fine is not None else _normalise_profile(profile)
 
     design = _design_of(experiment, runs, factors, levels)
     seed = _seed_used(session, experiment)

@@ -246,19 +246,30 @@ def diagnostic_items(data: ReportData) -> list[dict]:
         "small_cells": "Cells with too few runs",
     }
     items = []
+    check = diag.get("outlier_check") if isinstance(diag.get("outlier_check"), dict) else {}
     for key, val in diag.items():
         if key == "outliers":
             outl = val if isinstance(val, list) else (val or {}).get("runs", [])
-            n = len(outl)
+            n = int(check.get("count", len(outl)) or 0) if check else len(outl)
+            listed = ", ".join(f"run {o.get('run')} ({fmt_num(o.get('studentized'))})"
+                               for o in outl[:12]) + (" …" if len(outl) > 12 else "")
+            verdict = check.get("verdict") or ("No run stands out." if not n else "")
+            if listed:
+                verdict = f"{verdict}: {listed}" if verdict else listed
+            cut = check.get("cutoff")
             items.append({
                 "key": key, "name": titles[key], "test": "externally studentized residuals, "
-                "Bonferroni cut-off", "statistic": None, "p": None,
-                "verdict": (f"{n} run{'s' if n != 1 else ''} stand out: "
-                            + ", ".join(f"run {o.get('run')} ({fmt_num(o.get('studentized'))})"
-                                        for o in outl[:12])
-                            + (" …" if n > 12 else "")) if n else "No run stands out.",
-                "concern": n > 0,
+                "Bonferroni cut-off" + (f" ±{fmt_num(cut)}" if finite(cut) else ""),
+                "statistic": None, "p": None, "verdict": verdict, "concern": n > 0,
             })
+            continue
+        if key == "small_cells":
+            if val:
+                text = "; ".join(
+                    f"{cell_label(c.get('levels') or {}, data.factors)}: {c.get('problem', '')}"
+                    f" (n={c.get('n')})" for c in val[:8]) + (" …" if len(val) > 8 else "")
+                items.append({"key": key, "name": titles[key], "test": "", "statistic": None,
+                              "p": None, "verdict": text, "concern": True})
             continue
         if not isinstance(val, dict):
             continue

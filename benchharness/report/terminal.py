@@ -128,7 +128,7 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
         t = Table(title=f"Comparisons with adjusted p < {data.alpha:g} "
                         f"({len(comps)} of {len(story.comparisons(data))})",
                   box=box.SIMPLE_HEAD, title_justify="left", title_style="bold")
-        for col, just in (("method", "left"), ("comparison", "left"), ("ratio b/a", "right"),
+        for col, just in (("method", "left"), ("comparison", "left"), ("ratio a/b", "right"),
                           ("interval", "right"), ("p adj", "right")):
             t.add_column(col, justify=just, overflow="fold")
         for c in comps[:comparisons]:
