@@ -32,11 +32,14 @@ SECTIONS = (
 )
 
 _METHOD_WORDS = {
-    "pairwise": "pairwise t-tests on the model's error",
+    "pairwise": "pairwise",
     "tukey": "Tukey HSD",
-    "simple": "simple effects within levels of another factor (Holm)",
-    "declared": "comparisons declared in the experiment file",
+    "simple": "simple effect",
+    "declared": "declared",
 }
+
+#: Above this many comparisons the main table lists the significant ones only.
+MANY_COMPARISONS = 30
 
 
 def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
@@ -48,7 +51,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
     ss_type = data.analysis.get("ss_type") or (data.analysis.get("model") or {}).get("ss_type")
     for r in story.anova_rows(data):
         anova.append({
-            "term": r.get("term"), "df": fmt_num(r.get("df"), 4),
+            "term": r.get("term"), "df": _fmt_df(r.get("df")),
             "sum_sq": fmt_num(r.get("sum_sq"), 4), "mean_sq": fmt_num(r.get("mean_sq"), 4),
             "F": fmt_num(r.get("F"), 4), "p": fmt_p(r.get("p")),
             "eta": fmt_num(r.get("partial_eta_sq"), 2), "omega": fmt_num(r.get("omega_sq"), 2),
@@ -90,8 +93,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         })
     diags = []
     for d in story.diagnostic_items(data):
-        diags.append({**d, "statistic": fmt_num(d["statistic"]) if d["statistic"] is not None
-                      else "", "p": fmt_p(d["p"]) if d["p"] is not None else ""})
+        diags.append({**d, "p": fmt_p(d["p"]) if d["p"] is not None else ""})
     art = data.analysis.get("art") or (data.analysis.get("diagnostics") or {}).get("art")
     if isinstance(art, dict) and art.get("terms"):
         art = {**art, "terms": [{**t, "p_text": fmt_p(t.get("p")),
@@ -131,6 +133,10 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "has_difference": has_diff,
         "level_means": level_means,
         "comparisons": comps,
+        "comparisons_main": ([c for c in comps if c["significant"]]
+                             if len(comps) > MANY_COMPARISONS else comps),
+        "comparisons_split": len(comps) > MANY_COMPARISONS,
+        "adjust": (data.analysis.get("model") or {}).get("adjust"),
         "comparisons_total": len(comps_all),
         "comparisons_shown": len(comps),
         "diagnostics": diags,
@@ -154,6 +160,12 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "version": _version(),
         "compact": compact,
     }
+
+
+def _fmt_df(df) -> str:
+    if finite(df) and float(df) == int(float(df)):
+        return str(int(float(df)))
+    return fmt_num(df, 4)
 
 
 def report_command(data: ReportData) -> str:

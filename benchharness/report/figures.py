@@ -224,6 +224,8 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
     axes = fig.subplots(len(rows), len(cols), squeeze=False, sharey=True)
     subsampled = 0
     logax = _use_log_axis(data, y)
+    per_cell = len(yv) / max(1, len(codes))
+    dot = 16 if per_cell <= 20 else 9 if per_cell <= 200 else 5
     # Ticks name the inner factors after the first; the first is told by colour (legend).
     if len(inner) == 1:
         tick_text = [_wrap(c[0]) for c in inner_combos]
@@ -262,7 +264,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
                 pc += [color_of[lv[f1]]] * len(pts)
             if boxes:
                 _boxes(ax, boxes, positions, colors)
-                ax.scatter(np.concatenate(px), np.concatenate(py), s=7, c=pc, alpha=0.55,
+                ax.scatter(np.concatenate(px), np.concatenate(py), s=dot, c=pc, alpha=0.6,
                            linewidths=0, rasterized=True, zorder=3)
             ax.set_xticks(range(n_in))
             ax.set_xticklabels(tick_text, rotation=rot, ha="right" if rot else "center",
@@ -633,7 +635,7 @@ def resid_position(data: ReportData, rng) -> Figure | None:
         xs = np.array([pos.min(), pos.max()])
         ax.plot(xs, inter + slope * xs, color=ACCENT if concern else MUTED, lw=1.4, ls="--",
                 label="straight-line trend")
-    ax.set_xlabel("run position (0 = first timed run)")
+    ax.set_xlabel("run position in the execution order (warm-up runs count)")
     ax.set_ylabel(residual_label(data))
     title = "Residuals in run order"
     if finite(p):

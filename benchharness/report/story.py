@@ -238,11 +238,11 @@ def diagnostic_items(data: ReportData) -> list[dict]:
     """Each diagnostic as {name, test, statistic, p, verdict, concern} for display."""
     diag = data.analysis.get("diagnostics") or {}
     titles = {
-        "normality": "Residuals close to normal",
+        "normality": "Normality of residuals",
         "equal_variance": "Equal spread across cells",
-        "drift": "No drift over the run order",
+        "drift": "Drift over the run order",
         "outliers": "Outlying runs",
-        "runs_test": "Residual signs in random order",
+        "runs_test": "Order of residual signs",
         "small_cells": "Cells with too few runs",
     }
     items = []
@@ -260,7 +260,8 @@ def diagnostic_items(data: ReportData) -> list[dict]:
             items.append({
                 "key": key, "name": titles[key], "test": "externally studentized residuals, "
                 "Bonferroni cut-off" + (f" ±{fmt_num(cut)}" if finite(cut) else ""),
-                "statistic": None, "p": None, "verdict": verdict, "concern": n > 0,
+                "statistic": None, "stat_text": "", "p": None, "verdict": verdict,
+                "concern": n > 0,
             })
             continue
         if key == "small_cells":
@@ -269,9 +270,9 @@ def diagnostic_items(data: ReportData) -> list[dict]:
                     f"{cell_label(c.get('levels') or {}, data.factors)}: {c.get('problem', '')}"
                     f" (n={c.get('n')})" for c in val[:8]) + (" …" if len(val) > 8 else "")
                 items.append({"key": key, "name": titles[key], "test": "", "statistic": None,
-                              "p": None, "verdict": text, "concern": True})
+                              "stat_text": "", "p": None, "verdict": text, "concern": True})
             continue
-        if not isinstance(val, dict):
+        if not isinstance(val, dict) or key == "outlier_check":
             continue
         p = val.get("p")
         concern = val.get("concern")
@@ -280,13 +281,18 @@ def diagnostic_items(data: ReportData) -> list[dict]:
         if concern is None:
             concern = bool(finite(p) and float(p) < data.alpha)
         stat = val.get("statistic")
-        if key == "drift" and finite(val.get("slope_per_100_runs")):
-            stat = val.get("slope_per_100_runs")
+        stat_text = f"statistic {fmt_num(stat)}" if finite(stat) else ""
+        if key == "drift":
+            pct = val.get("percent_per_100_runs")
+            if finite(pct):
+                stat_text = f"{float(pct):+.1f}% per 100 runs"
+            elif finite(val.get("slope_per_100_runs")):
+                stat_text = f"slope {fmt_num(val['slope_per_100_runs'])} per 100 runs"
         items.append({
             "key": key, "name": titles.get(key, key.replace("_", " ")),
             "test": val.get("test") or ("slope of residuals on run position"
                                         if key == "drift" else ""),
-            "statistic": stat, "p": p,
+            "statistic": stat, "stat_text": stat_text, "p": p,
             "verdict": str(val.get("verdict") or ""), "concern": bool(concern),
         })
     return items
@@ -308,9 +314,9 @@ def sureness(data: ReportData) -> list[str]:
                                                      if reps else "") + ".")
     concerns = [i for i in diagnostic_items(data) if i["concern"]]
     if concerns:
-        out.append("Checks of the model's assumptions raise concerns ("
+        out.append("The checks of the model's assumptions raise concerns about "
                    + _and([c["name"].lower() for c in concerns])
-                   + "); see Diagnostics before relying on small p-values.")
+                   + "; see Diagnostics before relying on p-values near the threshold.")
     elif diagnostic_items(data):
         out.append("The model's assumption checks raise no concern.")
     bad = d.get("runs_failed", 0) + d.get("runs_timeout", 0)

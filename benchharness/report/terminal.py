@@ -89,7 +89,9 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
         t.add_column(col, justify=just)
     for r in story.anova_rows(data):
         style = "bold" if r["significant"] else ("dim" if r.get("term") == "Residual" else None)
-        t.add_row(Text(str(r.get("term"))), fmt_num(r.get("df"), 4), fmt_num(r.get("sum_sq"), 4),
+        from benchharness.report.context import _fmt_df
+
+        t.add_row(Text(str(r.get("term"))), _fmt_df(r.get("df")), fmt_num(r.get("sum_sq"), 4),
                   fmt_num(r.get("mean_sq"), 4), fmt_num(r.get("F"), 4), fmt_p(r.get("p")),
                   fmt_num(r.get("partial_eta_sq"), 2), fmt_num(r.get("omega_sq"), 2),
                   style=style)
