@@ -164,6 +164,7 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     else:
         exp_for_plan = exp
     plan = plan or build_plan(exp_for_plan, seed=seed)
+    check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
     lock = J.FolderLock(folder)
     try:
@@ -258,13 +259,36 @@ def _version() -> str:
     return __version__
 
 
+def check_controls(exp, runs) -> None:
+    """Render and check the noise controls of every cell before anything runs."""
+    from benchharness.execute.controls import parse_controls, resolve_cell
+
+    controls = parse_controls(exp)
+    if controls.pin or controls.nice:
+        seen = set()
+        for r in runs:
+            levels = r.levels if hasattr(r, "levels") else r["levels"]
+            key = tuple(sorted(levels.items()))
+            if key not in seen:
+                seen.add(key)
+                resolve_cell(exp, controls, levels)
+
+
 class _CellCache:
     """Rendered command, environment and steps per cell (computed once per cell)."""
 
     def __init__(self, exp, session: Mapping, extra_env: Mapping[str, str] | None = None):
+        from benchharness.execute.controls import parse_controls
+
         self.exp = exp
         self.cache: dict[tuple, dict] = {}
-        self.base_env = dict(os.environ)
+        self.controls = parse_controls(exp)
+        if self.controls.clean_env:
+            from benchharness.execute.envs import clean_environment
+
+            self.base_env = clean_environment(os.environ)
+        else:
+            self.base_env = dict(os.environ)
         self.exp_dir = session.get("experiment_dir") or os.getcwd()
         self.cwd = session.get("cwd") or os.getcwd()
 
@@ -279,7 +303,11 @@ class _CellCache:
             wd = exp.render_workdir(levels)
             cwd = self.cwd if wd is None else str(Path(self.exp_dir, wd))
             argv, shell = exp.render_command(exp.command, levels)
-            c = {"argv": argv, "shell": shell, "env": env, "env_over": env_over, "cwd": cwd,
+            from benchharness.execute.controls import resolve_cell
+
+            ctl = resolve_cell(exp, self.controls, levels)
+            c = {"cpus": ctl["cpus"], "nice": ctl["nice"], "no_aslr": self.controls.aslr_off,
+                 "argv": argv, "shell": shell, "env": env, "env_over": env_over, "cwd": cwd,
                  "label": " ".join(f"{k}={v}" for k, v in levels.items())}
             for step in ("build", "reset", "teardown"):
                 t = getattr(exp, step)
@@ -288,10 +316,11 @@ class _CellCache:
         return c
 
 
-def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None) -> RunSpec:
+def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None, env=None) -> RunSpec:
     argv, shell = argv_shell
-    return RunSpec(argv=argv, shell_command=shell, env=c["env"], cwd=c["cwd"],
-                   timeout_s=timeout_s, run_id=run_id, levels=levels or {})
+    return RunSpec(argv=argv, shell_command=shell, env=env or c["env"], cwd=c["cwd"],
+                   timeout_s=timeout_s, run_id=run_id, levels=levels or {},
+                   cpus=c["cpus"], nice=c["nice"], no_aslr=c["no_aslr"])
 
 
 def _short(m: Measurement) -> str:
@@ -337,6 +366,24 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     progress.start(len(planned), len(planned) - len(todo), folder)
     timeout_s = exp.timeout_s
     inflight_pgid = [None]
+    controls = cells.controls
+    pad_rng = None
+    if controls.pad_env:
+        import numpy as np
+
+        from benchharness.execute.envs import pad_environment
+
+        # Seeded from the plan's seed and the runs already done, so a resumed
+        # folder continues with fresh (not repeated) padding lengths.
+        pad_rng = np.random.default_rng([int(session.get("seed") or 0), len(done), 7])
+    aslr_value = None
+    if controls.aslr_off:
+        ok = getattr(executor, "aslr_control", True)
+        aslr_value = "off" if ok else "on"
+        if not ok:
+            progress.note("note: ASLR stays on: " + getattr(executor, "aslr_reason",
+                                                           "the kernel does not allow it"))
+    cold_ok = None
 
     def on_start_for(run_id):
         def cb(pid, pgid):
@@ -358,7 +405,8 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     ok = bm.status == "ok"
                     builds[bkey] = (ok, "" if ok else
                                     f"build failed: {_short(bm)}"
-                                    + _tail(bm.stderr_tail or bm.stdout_tail))
+                                    + ("" if bm.message else
+                                       _tail(bm.stderr_tail or bm.stdout_tail)))
                 ok, bmsg = builds[bkey]
                 if not ok:
                     status, message = "failed", bmsg
@@ -366,9 +414,23 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 rm = executor.execute(_spec(c["reset"], c, timeout_s, levels=levels))
                 if rm.status != "ok":
                     status, message = "failed", f"reset failed: {_short(rm)}"
+            pad_bytes = None
+            run_env = None
+            if status is None and pad_rng is not None:
+                run_env, pad_bytes = pad_environment(c["env"], pad_rng)
+            if status is None and controls.cold_cache and not pr["warmup"] and cold_ok is not False:
+                from benchharness.execute.noise import drop_page_cache
+
+                ok, why = drop_page_cache()
+                if not ok and cold_ok is None:
+                    progress.note(f"note: cold-cache mode is off for this run: {why}")
+                    session["cold_cache"] = f"not possible: {why}"
+                cold_ok = ok
+                if ok:
+                    session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
                 m = executor.execute(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                           run_id=pr["run"], levels=levels),
+                                           run_id=pr["run"], levels=levels, env=run_env),
                                      on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
                 status = m.status
@@ -382,7 +444,14 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     if tm.status != "ok":
                         message = (message + "; " if message else "") + \
                             f"teardown failed: {_short(tm)}"
+            if pr["warmup"] and status != "warmup":
+                message = f"warm-up run not done: {message}"
+                status = "warmup"
             rec = _record(pr, m, status, message)
+            if pad_bytes is not None:
+                rec["pad_env_bytes"] = pad_bytes
+            if aslr_value is not None:
+                rec["aslr"] = aslr_value
             jr.append(rec)
             records_new += 1
             counts[status] = counts.get(status, 0) + 1
@@ -421,6 +490,11 @@ def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planne
     J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()
+    if not interrupted:
+        try:
+            (folder / "inflight").unlink()
+        except FileNotFoundError:
+            pass
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
     return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
                       interrupted=interrupted)

@@ -1,0 +1,88 @@
+"""`benchharness compare A B`: per shared cell, the ratio B/A with its interval and a verdict."""
+
+from __future__ import annotations
+
+import json
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("compare", help="compare two results folders cell by cell",
+                       description="For each cell two results folders share, estimate the "
+                                   "ratio B/A of the geometric means with its confidence "
+                                   "interval and say whether it is beyond a tolerance. Runs "
+                                   "from different sessions confound the change with the "
+                                   "machine's state; `benchharness gate` interleaves both.")
+    p.add_argument("a", metavar="A", help="results folder of the baseline")
+    p.add_argument("b", metavar="B", help="results folder to compare with the baseline")
+    p.add_argument("--tolerance", default="5%", metavar="PCT",
+                   help="change that is still 'the same' (default 5%%)")
+    p.add_argument("--response", default="wall_s", metavar="NAME",
+                   help="response column (default wall_s)")
+    p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL",
+                   help="confidence level of the intervals (default 0.95)")
+    p.add_argument("--json", metavar="FILE", help="also write the comparison as JSON")
+    p.set_defaults(func=main)
+
+
+def parse_fraction(text: str, option: str) -> float:
+    from benchharness.errors import UsageError
+
+    t = text.strip()
+    try:
+        value = float(t[:-1]) / 100 if t.endswith("%") else float(t)
+    except ValueError:
+        raise UsageError(f"{option} {text!r}: give a percentage like 5% (or 0.05)") from None
+    if not (0 <= value < 1):
+        raise UsageError(f"{option} {text!r}: must be at least 0% and below 100%")
+    return value
+
+
+def main(args) -> int:
+    from benchharness.errors import UsageError
+    from benchharness.history.compare import compare_folders
+
+    tol = parse_fraction(args.tolerance, "--tolerance")
+    if not (0 < args.confidence < 1):
+        raise UsageError(f"--confidence {args.confidence}: give a level between 0 and 1")
+    result = compare_folders(args.a, args.b, response=args.response, tolerance=tol,
+                             conf_level=args.confidence)
+    print_comparison(result)
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as fh:
+            json.dump(result.to_json_dict(), fh, indent=1)
+            fh.write("\n")
+    return 0
+
+
+def print_comparison(result) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    ratio = result.scale == "log"
+    table = Table(title=f"{result.response}: B = {result.b}  vs  A = {result.a}",
+                  title_justify="left")
+    cells = result.cells
+    names = list(cells[0].cell) if cells else []
+    for n in names:
+        table.add_column(n)
+    center = "geo. mean" if ratio else "mean"
+    for col in (f"n A/B", f"{center} A", f"{center} B", "B/A" if ratio else "B - A",
+                f"{round(result.conf_level * 100)}% interval", "verdict"):
+        table.add_column(col, justify="left" if col == "verdict" else "right")
+    for c in cells:
+        table.add_row(*[c.cell[n] for n in names], f"{c.n_a}/{c.n_b}", f"{c.center_a:.4g}",
+                      f"{c.center_b:.4g}", f"{c.estimate:.4g}",
+                      f"{c.low:.4g} - {c.high:.4g}", c.wording)
+    console.print(table)
+    if result.residual_sd is not None:
+        noise = (f"{result.residual_sd * 100:.1f}% (SD of ln {result.response})" if ratio
+                 else f"{result.residual_sd:.4g}")
+        console.print(f"Run-to-run noise pooled over cells and both sessions: {noise}, "
+                      f"{result.residual_df} df.")
+    for label, only in (("A", result.only_in_a), ("B", result.only_in_b)):
+        if only:
+            console.print(f"{len(only)} cell(s) only in {label}: "
+                          + "; ".join(", ".join(f"{k}={v}" for k, v in c.items()) for c in only))
+    for w in result.warnings:
+        console.print(f"warning: {w}")

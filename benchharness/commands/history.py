@@ -1,0 +1,86 @@
+"""`benchharness history add|show`: keep a performance record across commits and read it."""
+
+from __future__ import annotations
+
+import json
+import sys
+
+
+def add_parser(sub) -> None:
+    from benchharness.history.store import DEFAULT_DB
+
+    p = sub.add_parser("history", help="record results per commit; show trends and steps",
+                       description="Keep per-cell summaries of results folders in an SQLite "
+                                   "file, one row per folder and cell, and show each cell's "
+                                   "series over commits with the steps found in it.")
+    hs = p.add_subparsers(dest="history_command", metavar="ACTION")
+    a = hs.add_parser("add", help="record results folders in the history file",
+                      description="Record results folders (per-cell summaries) under the "
+                                  "commit they measured. A folder already recorded adds "
+                                  "nothing.")
+    a.add_argument("results", nargs="+", metavar="RESULTS", help="results folder(s)")
+    a.add_argument("--commit", metavar="SHA",
+                   help="commit measured (default: HEAD of the git repository here)")
+    a.add_argument("--branch", metavar="NAME", help="branch measured (default: from git)")
+    a.add_argument("--db", metavar="FILE", default=str(DEFAULT_DB),
+                   help=f"history file (default {DEFAULT_DB})")
+    a.add_argument("--response", action="append", metavar="NAME",
+                   help="response column to record; repeat for several (default wall_s)")
+    a.set_defaults(func=main_add)
+
+    s = hs.add_parser("show", help="show each cell's trend over commits",
+                      description="Show each cell's series over commits with intervals, the "
+                                  "steps found in it and host changes.")
+    s.add_argument("--experiment", metavar="NAME", help="only this experiment")
+    s.add_argument("--cell", metavar="K=V,...", help="only cells with these levels")
+    s.add_argument("--response", metavar="NAME", default="wall_s",
+                   help="response to show (default wall_s)")
+    s.add_argument("--branch", metavar="NAME", help="only commits recorded on this branch")
+    s.add_argument("--db", metavar="FILE", default=str(DEFAULT_DB),
+                   help=f"history file (default {DEFAULT_DB})")
+    s.add_argument("--html", metavar="FILE", help="also write a self-contained HTML page")
+    s.add_argument("--json", metavar="FILE", help="also write the trends and steps as JSON")
+    s.add_argument("--false-step-level", type=float, default=0.05, metavar="P",
+                   help="chance of a false step in a flat stretch on one host (default 0.05)")
+    s.set_defaults(func=main_show)
+    p.set_defaults(func=lambda args: (p.print_help(), 2)[1])
+
+
+def main_add(args) -> int:
+    from benchharness.history.store import add_results
+
+    responses = tuple(args.response or ("wall_s",))
+    for folder in args.results:
+        n = add_results(args.db, folder, commit=args.commit, branch=args.branch,
+                        responses=responses)
+        what = f"{n} cell row(s) added" if n else "already recorded, nothing added"
+        print(f"{folder}: {what} ({args.db})")
+    return 0
+
+
+def main_show(args) -> int:
+    from benchharness.errors import UsageError
+    from benchharness.history.store import parse_cell_filter, read_history
+    from benchharness.history.trends import build_trends, to_json_dict
+
+    if not (0 < args.false_step_level < 1):
+        raise UsageError(f"--false-step-level {args.false_step_level}: give a probability "
+                         "between 0 and 1, e.g. 0.05")
+    df = read_history(args.db, experiment=args.experiment, response=args.response,
+                      cell_filter=parse_cell_filter(args.cell))
+    if args.branch is not None:
+        df = df[df["branch"] == args.branch]
+    trends = build_trends(df, alpha=args.false_step_level)
+    from benchharness.history.render import print_trends, render_html
+
+    print_trends(trends)
+    if args.json:
+        with open(args.json, "w", encoding="utf-8") as fh:
+            json.dump(to_json_dict(trends), fh, indent=1)
+            fh.write("\n")
+    if args.html:
+        with open(args.html, "w", encoding="utf-8") as fh:
+            fh.write(render_html(trends, experiment=args.experiment,
+                                 alpha=args.false_step_level))
+        print(f"wrote {args.html}", file=sys.stderr)
+    return 0

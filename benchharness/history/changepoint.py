@@ -1,0 +1,329 @@
+"""Step changes in a cell's history: where did its level shift, by how much, for good?
+
+Owns the detection of steps in a series of per-commit log means, each with its
+own uncertainty, and the splitting of a series at known breaks (a change of host
+fingerprint). The method, per stretch measured on one host:
+
+1. **Per-point variance.** Each point is the mean of ``n`` logged timings with
+   sample SD ``s``. The SDs are moderated towards a common value by the
+   empirical-Bayes method of Smyth (2004, "Linear models and empirical Bayes
+   methods for assessing differential expression in microarray experiments",
+   Stat. Appl. Genet. Mol. Biol. 3(1)): ``s~^2 = (d0 s0^2 + df s^2)/(d0 + df)``
+   with ``s0, d0`` fitted by moments of ``log s^2``. A point with five runs and a
+   lucky small SD no longer gets an outsized weight.
+2. **Session-to-session noise.** Timings from different sessions scatter more
+   than their within-session standard errors say (machine state drifts). An
+   extra variance ``tau^2`` is estimated from successive differences (von Neumann
+   1941) robustly, from the median of the squared differences scaled by the
+   median of a chi-square with 1 df -- a step moves one difference only.
+   Weights are ``w_i = 1/(se_i^2 + tau^2)``.
+3. **Is there any step?** The statistic is the largest cost reduction of a
+   single split, ``max_k W_L W_R / W (m_L - m_R)^2`` (weighted Gaussian cost
+   ``sum w_i (x_i - xbar_w)^2``). Its null distribution is simulated by a
+   parametric bootstrap of steps 2-3 (flat series with these variances, tau^2
+   re-estimated on each, fixed seed); the critical value ``c`` is its
+   ``1 - alpha`` quantile. A flat stretch therefore shows a false step with
+   probability about ``alpha``.
+4. **Where are the steps?** Only if the statistic exceeds ``c``, PELT (Killick,
+   Fearnhead & Eckley 2012, JASA 107:1590) finds the optimal segmentation under
+   the same weighted cost with penalty ``c`` per step (so at least one step is
+   found, and further steps must each pay ``c``).
+5. **Each step** is reported at the first commit of the new segment, as the
+   ratio ``exp(mean_after - mean_before)`` of the two neighbouring segments'
+   weighted means with a normal interval, and whether it **persists**: all
+   points after it up to the end of the stretch are still shifted the same way
+   (their weighted mean's interval against the old segment excludes 1); ``None``
+   when only one point follows. Intervals ignore that the step location was
+   chosen from the data, so they are somewhat optimistic.
+
+A change of host fingerprint ends a stretch: it is reported as a ``HostBreak``
+(with the ratio across it, for information) and never as a step.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+MIN_POINTS = 4          # fewer points on one host: no step detection
+N_SIMULATIONS = 2000    # null simulations for the critical value
+
+
+@dataclass(frozen=True)
+class Step:
+    index: int                 # position in the series of the first point after the step
+    ratio: float               # exp(mean after - mean before)
+    ratio_low: float
+    ratio_high: float
+    persists: bool | None      # None: too few points after to say
+    statistic: float           # cost reduction of this split (chi-square-like)
+    critical: float            # penalty / critical value used
+
+
+@dataclass(frozen=True)
+class HostBreak:
+    index: int                 # first point measured on the new host
+    from_host: str
+    to_host: str
+    ratio: float | None        # across the break, for information only
+    ratio_low: float | None
+    ratio_high: float | None
+
+
+@dataclass(frozen=True)
+class Segment:
+    start: int                 # inclusive
+    stop: int                  # exclusive
+    mean: float                # weighted mean of the log means
+    se: float
+    host: str
+
+
+@dataclass(frozen=True)
+class Detection:
+    steps: tuple[Step, ...]
+    breaks: tuple[HostBreak, ...]
+    segments: tuple[Segment, ...]
+    tau: tuple[float, ...] = field(default=())      # session noise SD per stretch
+    alpha: float = 0.05
+
+
+# ----------------------------------------------------------------- variances
+
+def moderated_variances(sd, n):
+    """Smyth (2004) moderated per-point variances of the mean; NaN sd allowed (n = 1)."""
+    from scipy import special, optimize
+
+    sd = np.asarray(sd, dtype=float)
+    n = np.asarray(n, dtype=float)
+    df = np.where(np.isfinite(sd) & (n >= 2), n - 1, 0.0)
+    s2 = np.where(df > 0, sd ** 2, np.nan)
+    have = (df > 0) & (s2 > 0)
+    if not have.any():
+        return np.full(len(sd), np.nan)
+    dfh, s2h = df[have], s2[have]
+    e = np.log(s2h) - special.digamma(dfh / 2) + np.log(dfh / 2)
+    emean = e.mean()
+    d0 = math.inf
+    if have.sum() >= 3:
+        excess = e.var(ddof=1) - special.polygamma(1, dfh / 2).mean()
+        if excess > 1e-12:
+            # solve trigamma(d0/2) = excess
+            f = lambda d: special.polygamma(1, d / 2) - excess  # noqa: E731
+            try:
+                d0 = optimize.brentq(f, 1e-6, 1e7)
+            except ValueError:
+                d0 = math.inf
+    if math.isinf(d0):
+        s0sq = float(np.exp(emean))
+        post = np.full(len(sd), s0sq)
+    else:
+        s0sq = float(np.exp(emean + special.digamma(d0 / 2) - np.log(d0 / 2)))
+        post = np.where(df > 0, (d0 * s0sq + df * np.nan_to_num(s2)) / (d0 + df), s0sq)
+    return post / n
+
+
+_MEDIAN_CHI2_1 = 0.4549364231195724   # median of a chi-square with 1 df
+
+
+def session_variance(x, v):
+    """Robust extra between-point variance tau^2 from successive differences.
+
+    ``tau^2 = max(0, (median(d^2)/m1 - median(v_i + v_{i+1})) / 2)`` with ``d`` the
+    successive differences and ``m1`` the median of chi-square(1): a step
+    changes one difference only, so it barely moves the estimate. ``x`` may be
+    a 2-D array of series (one per row); the result then has one value per row.
+    """
+    x = np.asarray(x, dtype=float)
+    v = np.asarray(v, dtype=float)
+    if x.shape[-1] < 3:
+        return np.zeros(x.shape[:-1]) if x.ndim > 1 else 0.0
+    d2 = np.diff(x, axis=-1) ** 2
+    base = np.median(v[..., :-1] + v[..., 1:], axis=-1)
+    tau2 = np.maximum(0.0, (np.median(d2, axis=-1) / _MEDIAN_CHI2_1 - base) / 2)
+    return tau2 if x.ndim > 1 else float(tau2)
+
+
+# ------------------------------------------------------------ the statistics
+
+def max_split_statistic(x, w) -> tuple[float, int]:
+    """max_k W_L W_R / W (m_L - m_R)^2 and the k (points before the split)."""
+    x = np.asarray(x, dtype=float)[None, :]
+    stat = _split_stats(x, np.asarray(w, dtype=float))[0]
+    k = int(np.argmax(stat))
+    return float(stat[k]), k + 1
+
+
+def _split_stats(X, w):
+    """Split statistics for each row of X; ``w`` one weight vector or one per row."""
+    w = np.broadcast_to(w, X.shape)
+    cw = np.cumsum(w, axis=1)
+    W = cw[:, -1:]
+    cwx = np.cumsum(X * w, axis=1)
+    WL = cw[:, :-1]
+    WR = W - WL
+    L = cwx[:, :-1]
+    R = cwx[:, -1:] - L
+    return WL * WR / W * (L / WL - R / WR) ** 2
+
+
+def weights(x, v):
+    """Weights ``1/(v + tau^2)`` with tau^2 estimated from this order of the points."""
+    return 1.0 / (np.asarray(v, dtype=float) + session_variance(x, v))
+
+
+def permutation_test(x, v, alpha: float, n_perm: int = N_SIMULATIONS,
+                     seed: int = 20120) -> tuple[float, float, float]:
+    """(statistic, critical value, p-value) of "no step" by permuting the points.
+
+    Under a flat series the points (each mean with its variance) are
+    interchangeable, so shuffling their order -- and redoing the whole
+    procedure, including the estimate of tau^2, on each shuffle -- gives the
+    null distribution of the max-split statistic exactly (Monte Carlo version,
+    p = (1 + #{T* >= T}) / (1 + R); fixed seed, so results repeat).
+    """
+    x = np.asarray(x, dtype=float)
+    v = np.asarray(v, dtype=float)
+    N = len(x)
+    t_obs = float(_split_stats(x[None, :], weights(x, v)[None, :]).max())
+    rng = np.random.default_rng([seed, N])
+    out = []
+    chunk = max(1, min(n_perm, 2_000_000 // max(N, 1)))
+    done = 0
+    while done < n_perm:
+        m = min(chunk, n_perm - done)
+        idx = rng.permuted(np.tile(np.arange(N), (m, 1)), axis=1)
+        X, V = x[idx], v[idx]
+        W = 1.0 / (V + session_variance(X, V)[:, None])
+        out.append(_split_stats(X, W).max(axis=1))
+        done += m
+    null = np.concatenate(out)
+    p = (1 + int(np.sum(null >= t_obs * (1 - 1e-12)))) / (1 + len(null))
+    return t_obs, float(np.quantile(null, 1 - alpha)), p
+
+
+def pelt(x, w, penalty: float, min_size: int = 1) -> list[int]:
+    """Changepoints (indices of the first point of each new segment) by PELT.
+
+    Killick, Fearnhead & Eckley (2012); cost of a segment ``sum w (x - xbar_w)^2``,
+    which satisfies the pruning condition with K = 0.
+    """
+    x = np.asarray(x, dtype=float)
+    w = np.asarray(w, dtype=float)
+    n = len(x)
+    S0 = np.concatenate([[0.0], np.cumsum(w)])
+    S1 = np.concatenate([[0.0], np.cumsum(w * x)])
+    S2 = np.concatenate([[0.0], np.cumsum(w * x * x)])
+
+    def cost(a, b):  # points a..b-1 (arrays of a)
+        s0 = S0[b] - S0[a]
+        s1 = S1[b] - S1[a]
+        return np.maximum(S2[b] - S2[a] - s1 * s1 / s0, 0.0)
+
+    F = np.full(n + 1, np.inf)
+    F[0] = -penalty
+    last = np.zeros(n + 1, dtype=int)
+    cand = np.array([0])
+    for t in range(min_size, n + 1):
+        ok = cand[t - cand >= min_size]
+        if len(ok) == 0:
+            continue
+        vals = F[ok] + cost(ok, t) + penalty
+        j = int(np.argmin(vals))
+        F[t] = vals[j]
+        last[t] = ok[j]
+        keep = cand[(t - cand < min_size) | (F[cand] + cost(cand, t) <= F[t])]
+        cand = np.append(keep, t)
+    cps = []
+    t = n
+    while t > 0:
+        t = int(last[t])
+        if t > 0:
+            cps.append(t)
+    return sorted(cps)
+
+
+# ----------------------------------------------------------------- detection
+
+def _wmean(x, w):
+    W = float(np.sum(w))
+    return float(np.sum(w * x) / W), 1.0 / math.sqrt(W)
+
+
+def _ratio(m_after, se_after, m_before, se_before, z):
+    d = m_after - m_before
+    se = math.hypot(se_after, se_before)
+    return math.exp(d), math.exp(d - z * se), math.exp(d + z * se)
+
+
+def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 0.95,
+                 n_sim: int = N_SIMULATIONS) -> Detection:
+    """Find steps in a series of per-commit log means.
+
+    ``x``: mean of ln(response) per point, oldest first; ``sd``: SD of the logs
+    within each point (NaN when n = 1); ``n``: runs per point; ``hosts``: host
+    fingerprint per point (a change is a known break). ``alpha``: chance of a
+    false step in a flat stretch on one host.
+    """
+    from scipy import stats
+
+    x = np.asarray(x, dtype=float)
+    sd = np.asarray(sd, dtype=float)
+    n = np.asarray(n, dtype=float)
+    N = len(x)
+    hosts = list(hosts) if hosts is not None else ["host"] * N
+    z = float(stats.norm.ppf(0.5 + conf_level / 2))
+    bounds = [0] + [i for i in range(1, N) if hosts[i] != hosts[i - 1]] + [N]
+    steps: list[Step] = []
+    segments: list[Segment] = []
+    taus: list[float] = []
+    stretch_summ = []
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        xs = x[a:b]
+        v = moderated_variances(sd[a:b], n[a:b])
+        if not np.isfinite(v).all():
+            # no usable spread at all (single runs everywhere): fall back to the
+            # scatter of the points themselves
+            spread = np.var(np.diff(xs), ddof=0) / 2 if len(xs) > 2 else np.nan
+            v = np.full(len(xs), spread if np.isfinite(spread) and spread > 0 else 1e-12)
+        tau2 = session_variance(xs, v)
+        taus.append(math.sqrt(tau2))
+        w = 1.0 / (v + tau2)
+        cps: list[int] = []
+        crit = math.nan
+        if len(xs) >= MIN_POINTS:
+            stat, crit, pvalue = permutation_test(xs, v, alpha, n_sim)
+            if pvalue <= alpha:
+                # penalty c per step; never above the observed statistic, so the
+                # single best split is always among the steps found
+                cps = pelt(xs, w, min(crit, stat * (1 - 1e-9)))
+        edges = [0] + cps + [len(xs)]
+        segs = []
+        for s0, s1 in zip(edges[:-1], edges[1:]):
+            m, se = _wmean(xs[s0:s1], w[s0:s1])
+            segs.append(Segment(a + s0, a + s1, m, se, hosts[a]))
+        segments.extend(segs)
+        for j, cp in enumerate(cps):
+            before, after = segs[j], segs[j + 1]
+            r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
+            rest_m, rest_se = _wmean(xs[cp:], w[cp:])
+            if len(xs) - cp < 2:
+                persists = None
+            else:
+                _, rlo, rhi = _ratio(rest_m, rest_se, before.mean, before.se, z)
+                persists = bool(rlo > 1) if r > 1 else bool(rhi < 1)
+            lo_w = w[edges[j]:edges[j + 2]]
+            lo_x = xs[edges[j]:edges[j + 2]]
+            k = cp - edges[j]
+            stat_k = float(_split_stats(lo_x[None, :], lo_w)[0][k - 1])
+            steps.append(Step(a + cp, r, lo, hi, persists, stat_k, crit))
+        stretch_summ.append(_wmean(xs, w))
+    breaks: list[HostBreak] = []
+    for i, b in enumerate(bounds[1:-1]):
+        before = [s for s in segments if s.stop == b][0]
+        after = [s for s in segments if s.start == b][0]
+        r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
+        breaks.append(HostBreak(b, hosts[b - 1], hosts[b], r, lo, hi))
+    return Detection(tuple(steps), tuple(breaks), tuple(segments), tuple(taus), alpha)

@@ -1,0 +1,223 @@
+"""Showing trends: terminal tables (rich) and a self-contained HTML page.
+
+Owns: the wording and layout of `benchharness history show`. The HTML page has
+no external resources: CSS inline, one trend figure per cell drawn with
+matplotlib (Agg) and embedded as inline SVG (text drawn as paths); all text
+from the history goes through jinja2 with autoescaping.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import re
+
+from benchharness.history.trends import CellTrend, step_kind
+
+
+def _fmt(v, digits: int = 4) -> str:
+    if v is None or (isinstance(v, float) and not math.isfinite(v)):
+        return "-"
+    return f"{v:.{digits}g}"
+
+
+def _ratio_text(r, lo, hi) -> str:
+    if r is None:
+        return ""
+    return f"x{r:.3f} ({lo:.3f}-{hi:.3f})"
+
+
+def point_notes(t: CellTrend) -> dict[int, str]:
+    """Index of a point -> what happened there (a step or a host change)."""
+    notes: dict[int, str] = {}
+    det = t.detection
+    if det is None:
+        return notes
+    for b in det.breaks:
+        notes[b.index] = ("HOST CHANGED: known break, not a regression; "
+                          + _ratio_text(b.ratio, b.ratio_low, b.ratio_high))
+    for s in det.steps:
+        last = {True: "lasts", False: "did not last", None: "too recent to tell if it lasts"}
+        kind = step_kind(t.response, s.ratio, s.persists).replace(" (did not last)", "")
+        notes[s.index] = (f"STEP: {kind} {_ratio_text(s.ratio, s.ratio_low, s.ratio_high)}, "
+                          f"{last[s.persists]}")
+    return notes
+
+
+def print_trends(trends: list[CellTrend], console=None) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = console or Console()
+    if not trends:
+        console.print("No history rows match.")
+        return
+    for t in trends:
+        scale = "geo. mean" if t.scale == "log" else "mean"
+        branches = {p.branch for p in t.points}
+        title = f"{t.experiment} | {t.response} | {t.label}"
+        if len(branches) == 1 and None not in branches:
+            title += f" | branch {next(iter(branches))}"
+        table = Table(title=title, title_justify="left")
+        cols = [("#", "right"), ("commit", "left")]
+        with_time = any(p.commit_time for p in t.points)
+        with_branch = len(branches) > 1
+        if with_time:
+            cols.append(("date", "left"))
+        if with_branch:
+            cols.append(("branch", "left"))
+        cols += [("n", "right"), (scale, "right"),
+                 (f"{round(t.conf_level * 100)}% interval", "right"), ("noise", "right"),
+                 ("change here", "left")]
+        for col, just in cols:
+            table.add_column(col, justify=just, overflow="fold")
+        notes = point_notes(t)
+        for i, p in enumerate(t.points):
+            noise = "-"
+            if math.isfinite(p.sd):
+                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else _fmt(p.sd)
+            ci = "-" if p.ci_low is None else f"{_fmt(p.ci_low)}-{_fmt(p.ci_high)}"
+            row = [str(i + 1), p.commit[:10]]
+            if with_time:
+                row.append((p.commit_time or "")[:10])
+            if with_branch:
+                row.append(p.branch or "")
+            row += [str(p.n), _fmt(p.center), ci, noise, notes.get(i, "")]
+            table.add_row(*row)
+        console.print(table)
+        det = t.detection
+        if det is not None:
+            if det.steps:
+                console.print(f"  {len(det.steps)} step(s) found (false-step level "
+                              f"{det.alpha:g} per stretch on one host).")
+            elif len(t.points) >= 4:
+                console.print(f"  No step found (false-step level {det.alpha:g} per stretch "
+                              "on one host).")
+        if t.note:
+            console.print(f"  Note: {t.note}.")
+        console.print()
+
+
+# ------------------------------------------------------------------- HTML
+
+def trend_figure_svg(t: CellTrend) -> str:
+    """One trend figure for a cell as an inline <svg> element."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    xs = list(range(len(t.points)))
+    ys = [p.center for p in t.points]
+    lo = [p.center - (p.ci_low if p.ci_low is not None else p.center) for p in t.points]
+    hi = [(p.ci_high if p.ci_high is not None else p.center) - p.center for p in t.points]
+    fig, ax = plt.subplots(figsize=(7.5, 3.0), dpi=100)
+    try:
+        ax.errorbar(xs, ys, yerr=[lo, hi], fmt="o", color="#1f4e79", ms=4, capsize=2, lw=1,
+                    label="per commit, with interval")
+        det = t.detection
+        if det is not None:
+            for seg in det.segments:
+                level = math.exp(seg.mean)
+                ax.hlines(level, seg.start - 0.4, seg.stop - 0.6, color="#7f7f7f", lw=1.5)
+            for s in det.steps:
+                ax.axvline(s.index - 0.5, color="#b22222", ls="--", lw=1.2)
+                ax.annotate(f"x{s.ratio:.3f}", (s.index - 0.5, 1), xycoords=("data",
+                            "axes fraction"), color="#b22222", fontsize=8, ha="left",
+                            va="top", xytext=(3, -3), textcoords="offset points")
+            for b in det.breaks:
+                ax.axvline(b.index - 0.5, color="#555555", ls=":", lw=1.5)
+                ax.annotate("host changed", (b.index - 0.5, 0), xycoords=("data",
+                            "axes fraction"), color="#555555", fontsize=8, ha="left",
+                            va="bottom", xytext=(3, 3), textcoords="offset points")
+        step = max(1, len(xs) // 12)
+        ax.set_xticks(xs[::step])
+        ax.set_xticklabels([p.commit[:8] for p in t.points][::step], rotation=45, ha="right",
+                           fontsize=7)
+        ax.set_xlim(-0.7, max(len(xs) - 0.3, 0.7))
+        ax.set_ylabel(t.response)
+        ax.set_xlabel("commit (oldest first)")
+        ax.grid(True, axis="y", alpha=0.3)
+        fig.tight_layout()
+        buf = io.StringIO()
+        fig.savefig(buf, format="svg")
+    finally:
+        plt.close(fig)
+    svg = buf.getvalue()
+    svg = svg[svg.index("<svg"):]
+    return re.sub(r"<metadata>.*?</metadata>", "", svg, flags=re.S)
+
+
+_PAGE = """<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>Performance history{% if experiment %} - {{ experiment }}{% endif %}</title>
+<style>
+body { font-family: system-ui, sans-serif; margin: 2em auto; max-width: 60em; color: #222; }
+h1 { font-size: 1.5em; } h2 { font-size: 1.15em; margin-top: 2em; border-bottom: 1px solid #ccc; }
+table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0; }
+th, td { padding: 0.2em 0.6em; border-bottom: 1px solid #eee; text-align: right;
+         white-space: nowrap; }
+td.l:last-child { white-space: normal; }
+th { background: #f4f4f4; } td.l, th.l { text-align: left; }
+.step { color: #b22222; font-weight: 600; } .host { color: #555; font-style: italic; }
+.note { color: #555; } figure { margin: 0.5em 0; } svg { max-width: 100%; height: auto; }
+code { font-size: 0.95em; }
+</style></head><body>
+<h1>Performance history{% if experiment %}: {{ experiment }}{% endif %}</h1>
+<p>{{ cells|length }} cell series. Each point is one commit measured on one host
+(results folders of the same commit and host pooled); the interval is the
+{{ conf_pct }}% confidence interval of its {{ "geometric " if any_log }}mean. Steps are
+searched for with a false-step level of {{ alpha }} per stretch measured on one host; a change
+of host is a known break, never a regression.</p>
+{% for c in cells %}
+<section>
+<h2>{{ c.trend.experiment }} &middot; {{ c.trend.response }} &middot; {{ c.trend.label }}</h2>
+{% if c.summary %}<p class="{{ 'step' if c.trend.detection and c.trend.detection.steps else 'note' }}">{{ c.summary }}</p>{% endif %}
+{% if c.trend.note %}<p class="note">Note: {{ c.trend.note }}.</p>{% endif %}
+<figure>{{ c.svg|safe }}</figure>
+<table><thead><tr><th>#</th><th class="l">commit</th><th class="l">committed</th>
+<th class="l">branch</th><th>n</th><th>{{ "geometric mean" if c.trend.scale == "log" else "mean" }}</th>
+<th>interval</th><th>noise</th><th class="l">change here</th></tr></thead><tbody>
+{% for r in c.rows %}<tr><td>{{ r.i }}</td><td class="l"><code>{{ r.commit }}</code></td>
+<td class="l">{{ r.time }}</td><td class="l">{{ r.branch }}</td><td>{{ r.n }}</td>
+<td>{{ r.center }}</td><td>{{ r.ci }}</td><td>{{ r.noise }}</td>
+<td class="l {{ r.cls }}">{{ r.note }}</td></tr>
+{% endfor %}</tbody></table>
+</section>
+{% endfor %}
+</body></html>
+"""
+
+
+def render_html(trends: list[CellTrend], experiment: str | None = None,
+                alpha: float = 0.05) -> str:
+    import jinja2
+
+    env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined)
+    cells = []
+    for t in trends:
+        notes = point_notes(t)
+        det = t.detection
+        breaks = {b.index for b in det.breaks} if det is not None else set()
+        rows = []
+        for i, p in enumerate(t.points):
+            noise = "-"
+            if math.isfinite(p.sd):
+                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else _fmt(p.sd)
+            rows.append({"i": i + 1, "commit": p.commit[:12], "time": (p.commit_time or "")[:19],
+                         "branch": p.branch or "", "n": p.n, "center": _fmt(p.center),
+                         "ci": "-" if p.ci_low is None else f"{_fmt(p.ci_low)} - {_fmt(p.ci_high)}",
+                         "noise": noise, "note": notes.get(i, ""),
+                         "cls": "host" if i in breaks else ("step" if i in notes else "")})
+        summary = ""
+        if det is not None and det.steps:
+            summary = "; ".join(f"{notes[s.index]} at {t.points[s.index].commit[:12]}"
+                                for s in det.steps)
+        elif det is not None and len(t.points) >= 4:
+            summary = "No step found."
+        cells.append({"trend": t, "rows": rows, "svg": trend_figure_svg(t), "summary": summary})
+    return env.from_string(_PAGE).render(
+        cells=cells, experiment=experiment, alpha=alpha,
+        conf_pct=round((trends[0].conf_level if trends else 0.95) * 100),
+        any_log=any(t.scale == "log" for t in trends))

@@ -1,0 +1,236 @@
+"""The performance history: an SQLite file of per-cell summaries across commits.
+
+Owns: the schema (documented in docs/history.md), importing a results folder as
+one transaction (all its rows or none), recognising a folder already imported
+(its identity hash, see `folder.folder_identity`) so a second import adds
+nothing, and reading series back. Only the standard library's ``sqlite3`` is
+used; the file is meant to be kept as a CI artifact or cache.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from datetime import datetime, timezone
+from pathlib import Path
+
+from benchharness.errors import DataError, UsageError
+
+DEFAULT_DB = Path("results") / "history.sqlite"
+SCHEMA_VERSION = 1
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS folders (
+    folder_id        TEXT PRIMARY KEY,   -- SHA-256 of experiment name, folder name, runs.jsonl
+    folder_name      TEXT NOT NULL,
+    folder_path      TEXT NOT NULL,      -- absolute path at import time (informational)
+    experiment       TEXT NOT NULL,
+    commit_id        TEXT NOT NULL,
+    commit_time      TEXT,               -- ISO 8601 committer time, NULL when unknown
+    branch           TEXT,
+    started_at       TEXT,               -- first run start in the folder (ISO 8601 UTC)
+    host_fingerprint TEXT NOT NULL,      -- 16 hex digits, or 'unknown'
+    host_facts       TEXT NOT NULL,      -- JSON: the identity facts that were hashed
+    host_json        TEXT NOT NULL,      -- JSON: host.json as recorded
+    imported_at      TEXT NOT NULL       -- ISO 8601 UTC
+);
+CREATE TABLE IF NOT EXISTS cells (
+    folder_id   TEXT NOT NULL REFERENCES folders(folder_id),
+    experiment  TEXT NOT NULL,
+    cell        TEXT NOT NULL,           -- canonical JSON of the levels (keys sorted)
+    response    TEXT NOT NULL,           -- e.g. wall_s
+    scale       TEXT NOT NULL CHECK (scale IN ('log', 'linear')),
+    n           INTEGER NOT NULL,        -- timed runs with status ok
+    center      REAL NOT NULL,           -- geometric mean (log) or arithmetic mean (linear)
+    ci_low      REAL,                    -- confidence interval of center; NULL when n < 2
+    ci_high     REAL,
+    conf_level  REAL NOT NULL,
+    mean        REAL NOT NULL,           -- mean of ln(response) (log) or of the response
+    se          REAL,                    -- standard error of mean; NULL when n < 2
+    noise_sd    REAL,                    -- SD of ln(response) (log) or of the response
+    PRIMARY KEY (folder_id, cell, response)
+);
+CREATE INDEX IF NOT EXISTS cells_by_series ON cells (experiment, response, cell);
+CREATE VIEW IF NOT EXISTS cell_history AS
+    SELECT f.commit_id, f.commit_time, f.branch, c.experiment, c.cell, c.response, c.scale,
+           c.n, c.center, c.ci_low, c.ci_high, c.conf_level, c.mean, c.se, c.noise_sd,
+           f.host_fingerprint, f.host_facts, f.folder_id, f.folder_name, f.started_at,
+           f.imported_at
+    FROM cells AS c JOIN folders AS f USING (folder_id);
+"""
+
+
+def connect(db_path: str | Path, create: bool = True) -> sqlite3.Connection:
+    """Open (and create the schema of) a history file; autocommit mode, explicit BEGIN."""
+    path = Path(db_path)
+    if not create and not path.is_file():
+        raise UsageError(f"{path}: no history file here; add results first with "
+                         "`benchharness history add RESULTS`")
+    if create:
+        path.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        conn = sqlite3.connect(str(path), isolation_level=None, timeout=30)
+        conn.execute("PRAGMA foreign_keys = ON")
+        version = conn.execute("PRAGMA user_version").fetchone()[0]
+        if version > SCHEMA_VERSION:
+            conn.close()
+            raise DataError(f"{path}: history schema version {version} was written by a newer "
+                            f"benchharness (this one reads version {SCHEMA_VERSION})")
+        if version < SCHEMA_VERSION:
+            conn.execute("BEGIN IMMEDIATE")
+            for stmt in _statements(SCHEMA):
+                conn.execute(stmt)
+            conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
+            conn.execute("COMMIT")
+    except sqlite3.DatabaseError as exc:
+        raise DataError(f"{path}: not a benchharness history file ({exc})") from None
+    return conn
+
+
+def _statements(script: str) -> list[str]:
+    """Split the schema script into statements (executescript would commit implicitly)."""
+    out, buf = [], []
+    for line in script.splitlines():
+        line = line.split("--", 1)[0].rstrip()
+        if not line:
+            continue
+        buf.append(line)
+        if line.endswith(";"):
+            stmt = "\n".join(buf)
+            if sqlite3.complete_statement(stmt):
+                out.append(stmt)
+                buf = []
+    return out
+
+
+def _insert_folder(conn: sqlite3.Connection, row: dict) -> None:
+    conn.execute(
+        "INSERT INTO folders (folder_id, folder_name, folder_path, experiment, commit_id, "
+        "commit_time, branch, started_at, host_fingerprint, host_facts, host_json, imported_at) "
+        "VALUES (:folder_id, :folder_name, :folder_path, :experiment, :commit_id, :commit_time, "
+        ":branch, :started_at, :host_fingerprint, :host_facts, :host_json, :imported_at)", row)
+
+
+def _insert_cell(conn: sqlite3.Connection, row: dict) -> int:
+    cur = conn.execute(
+        "INSERT OR IGNORE INTO cells (folder_id, experiment, cell, response, scale, n, center, "
+        "ci_low, ci_high, conf_level, mean, se, noise_sd) VALUES (:folder_id, :experiment, "
+        ":cell, :response, :scale, :n, :center, :ci_low, :ci_high, :conf_level, :mean, :se, "
+        ":noise_sd)", row)
+    return cur.rowcount
+
+
+def add_results(db_path: str | Path, folder: str | Path, commit: str | None = None,
+                branch: str | None = None, responses=("wall_s",), cwd: str | Path | None = None,
+                conf_level: float = 0.95) -> int:
+    """Record a results folder in the history file; returns the number of cell rows added.
+
+    The commit (and its time and branch) is read from git in ``cwd`` (default: the
+    working directory) unless given. A folder already recorded adds nothing;
+    recording it again under a different commit is refused. All rows of one
+    import are written in one transaction.
+    """
+    from benchharness.history.cells import summarize_cells
+    from benchharness.history.fingerprint import host_facts, host_fingerprint
+    from benchharness.history.folder import read_folder
+    from benchharness.history.gitinfo import resolve_commit
+
+    data = read_folder(folder)
+    summaries = []
+    for response in responses:
+        summaries.extend(summarize_cells(data.runs, data.factors, response, conf_level))
+    conn = connect(db_path)
+    try:
+        existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
+                                (data.identity,)).fetchone()
+        if existing is not None and commit is not None and not (
+                existing[0].startswith(commit) or commit.startswith(existing[0])):
+            raise DataError(f"{data.path}: this results folder is already recorded as commit "
+                            f"{existing[0]}; a folder measures one commit")
+        info = None
+        if existing is None:
+            info = resolve_commit(commit, branch, cwd)
+        added = 0
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            if existing is None:
+                _insert_folder(conn, {
+                    "folder_id": data.identity, "folder_name": data.name,
+                    "folder_path": str(data.path.resolve()), "experiment": data.experiment,
+                    "commit_id": info.commit, "commit_time": info.commit_time,
+                    "branch": info.branch, "started_at": data.first_started_at,
+                    "host_fingerprint": host_fingerprint(data.host),
+                    "host_facts": json.dumps(host_facts(data.host), sort_keys=True),
+                    "host_json": json.dumps(data.host, sort_keys=True, default=str),
+                    "imported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                })
+            for s in summaries:
+                added += _insert_cell(conn, {
+                    "folder_id": data.identity, "experiment": data.experiment, "cell": s.key,
+                    "response": s.response, "scale": s.scale, "n": s.n, "center": s.center,
+                    "ci_low": s.ci_low, "ci_high": s.ci_high, "conf_level": s.conf_level,
+                    "mean": s.mean, "se": s.se, "noise_sd": s.noise_sd,
+                })
+            conn.execute("COMMIT")
+        except BaseException:
+            conn.execute("ROLLBACK")
+            raise
+        return added
+    except sqlite3.DatabaseError as exc:
+        raise DataError(f"{db_path}: cannot write the history file ({exc})") from None
+    finally:
+        conn.close()
+
+
+def read_history(db_path: str | Path, experiment: str | None = None,
+                 response: str | None = "wall_s", cell_filter: dict | None = None):
+    """Rows of ``cell_history`` as a DataFrame, oldest first.
+
+    Order: commit time when known, else the folder's first run start, then import
+    order. ``cell_filter`` keeps cells whose levels include every ``factor: level``.
+    """
+    import pandas as pd
+
+    conn = connect(db_path, create=False)
+    try:
+        sql = "SELECT * FROM cell_history WHERE 1=1"
+        params: list = []
+        if experiment is not None:
+            sql += " AND experiment = ?"
+            params.append(experiment)
+        if response is not None:
+            sql += " AND response = ?"
+            params.append(response)
+        df = pd.read_sql_query(sql, conn, params=params)
+    except sqlite3.DatabaseError as exc:
+        raise DataError(f"{db_path}: cannot read the history file ({exc})") from None
+    finally:
+        conn.close()
+    if cell_filter:
+        def keep(cell_json: str) -> bool:
+            levels = json.loads(cell_json)
+            return all(levels.get(k) == v for k, v in cell_filter.items())
+        df = df[df["cell"].map(keep)]
+    when = pd.to_datetime(df["commit_time"], utc=True, errors="coerce", format="ISO8601")
+    started = pd.to_datetime(df["started_at"], utc=True, errors="coerce", format="ISO8601")
+    df = df.assign(_order=when.fillna(started), _started=started)
+    df = df.sort_values(["experiment", "response", "cell", "_order", "_started", "imported_at"],
+                        kind="stable", na_position="last")
+    return df.drop(columns=["_order", "_started"]).reset_index(drop=True)
+    return df
+
+
+def parse_cell_filter(text: str | None) -> dict | None:
+    """``k=v,k2=v2`` -> dict; UsageError naming the bad part otherwise."""
+    if not text:
+        return None
+    out = {}
+    for part in text.split(","):
+        if "=" not in part:
+            raise UsageError(f"--cell {text!r}: `{part}` is not factor=level; "
+                             "write e.g. --cell codec=zlib,level=6")
+        k, v = part.split("=", 1)
+        if not k.strip():
+            raise UsageError(f"--cell {text!r}: empty factor name in `{part}`")
+        out[k.strip()] = v.strip()
+    return out
