@@ -289,7 +289,8 @@ def collect(source, *, analysis=None, response: str | None = None,
         design["run_from"] = session["cwd"]
     if session.get("benchharness_version"):
         design["version"] = session["benchharness_version"]
-    name = getattr(experiment, "name", None) or (folder.name if folder else Path(src_text).stem)
+    name = getattr(experiment, "name", None) or (
+        folder.name if folder else "experiment" if src_text == "<table>" else Path(src_text).stem)
     about = getattr(experiment, "about", None) or ""
     return ReportData(
         name=str(name), about=str(about), response=response, factors=tuple(factors),

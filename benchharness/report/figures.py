@@ -611,8 +611,8 @@ def resid_position(data: ReportData, rng) -> Figure | None:
     import numpy as np
 
     res = data.residuals
-    if res is None or len(res) < 3:
-        return None
+    if res is None or len(res) < 3 or "position" not in data.runs.columns:
+        return None  # run order unknown (e.g. a CSV without a position column)
     pos = res["position"].to_numpy(dtype=float)
     r = res["residual"].to_numpy(dtype=float)
     idx, _ = _scatter_subsample(len(res), rng)

@@ -139,7 +139,7 @@ def verdict(data: ReportData) -> dict[str, Any]:
     effects = data.analysis.get("effects") or []
     out: dict[str, Any] = {"factors": [], "interactions": [], "best": None, "sure": []}
 
-    matter, no_matter = [], []
+    matter, no_matter, untested = [], [], []
     for f in data.factors:
         row = by_term.get(f)
         if row is None:
@@ -164,6 +164,10 @@ def verdict(data: ReportData) -> dict[str, Any]:
             else:
                 entry["summary"] = (f"{f} matters (p {_p_words(row.get('p'))}; partial η² "
                                     f"{fmt_num(row.get('partial_eta_sq'), 2)}).")
+        elif not finite(row.get("p")):
+            untested.append(f)
+            entry["summary"] = (f"{f}: could not be tested (no p-value; see the ANOVA section "
+                                "and its notes).")
         else:
             no_matter.append(f)
             entry["summary"] = (f"{f}: no difference detected (p {_p_words(row.get('p'))}); "
@@ -189,6 +193,8 @@ def verdict(data: ReportData) -> dict[str, Any]:
                            "experiment could detect.")
     else:
         out["headline"] = "The analysis could not test any factor (see the ANOVA section)."
+    if untested and (matter or no_matter):
+        out["headline"] = out["headline"][:-1] + f"; {_and(untested)} could not be tested."
 
     cells = cell_means(data)
     if cells:

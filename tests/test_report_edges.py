@@ -1,0 +1,61 @@
+"""Reports of awkward experiments: odd names, no transform, no replicates, blocks.
+
+Tables are built directly (invented data for rendering checks only; no reference
+values are taken from them) and analysed by the real analysis stage.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from benchharness.report import build_report
+from benchharness.report.html import render_html
+from benchharness.report.markdown import render_markdown
+
+
+def test_odd_factor_name_no_transform_and_negative_response():
+    rng = np.random.default_rng(1)
+    name = "thread pool: <size>"
+    df = pd.DataFrame({name: np.repeat(["1", "1.0", "4"], 5)})
+    df["delta_ms"] = rng.normal(0, 1, len(df)) + (df[name] == "4") * 3
+    data, figs = build_report(df, factors=[name], response="delta_ms")
+    assert data.analysis["transform"]["name"] == "none"
+    names = [f.name for f in figs.figures]
+    assert "boxcox" not in names            # Box-Cox undefined for values ≤ 0
+    assert "residuals-position" not in names  # no run order in this table
+    assert "distributions" in names and "qq" in names
+    html = render_html(data, figs)
+    assert "thread pool: &lt;size&gt;" in html and "<size>" not in html
+    assert ">difference<" in html           # no transform: differences beside ratios
+    assert "1.0" in html                     # levels 1 and 1.0 stay apart
+    md = render_markdown(data, figs)
+    assert "thread pool: &lt;size&gt;" in md
+
+
+def test_one_run_per_cell_says_nothing_could_be_tested():
+    rng = np.random.default_rng(2)
+    df = pd.DataFrame([(a, b) for a in "xyz" for b in "pq"], columns=["A", "B"])
+    df["wall_s"] = np.exp(rng.normal(0, .1, len(df)))
+    data, figs = build_report(df, factors=["A", "B"])
+    md = render_markdown(data, figs, compact=True)
+    assert "could not test any factor" in md
+    assert "no residual degrees of freedom" in md
+    assert "no difference detected" not in md
+
+
+def test_blocked_main_effects_model_keeps_the_block_out_of_the_factors():
+    rng = np.random.default_rng(3)
+    df = pd.DataFrame([(a, b, blk) for a in "xy" for b in "pqr" for blk in (1, 2, 3)],
+                      columns=["A", "B", "block"])
+    df["wall_s"] = np.exp(rng.normal(0, .05, len(df)) + df["block"] * .2 + (df["A"] == "y"))
+    df["position"] = rng.permutation(len(df))
+    df["run"] = np.arange(len(df))
+    data, figs = build_report(df, factors=["A", "B"], block="block", model="main")
+    assert data.block == "block"
+    assert [r["term"] for r in data.analysis["anova"]] == ["block", "A", "B", "Residual"]
+    # the residuals remove the block effect: they are small against the planted 0.2 steps
+    assert float(np.abs(data.residuals["residual"]).max()) < 0.2
+    html = render_html(data, figs)
+    assert "interaction not in the model" not in html  # that text lives in the figure only
+    assert any(f.name == "interaction-a-b" for f in figs.figures)
