@@ -279,8 +279,11 @@ def collect(source, *, analysis=None, response: str | None = None,
             raise DataError(f"{src_text}: cannot compute residuals: {exc}") from exc
     # A fine profile of our own (cheap: one projection per λ); the analysis' coarse
     # grid is the fallback.
-    fine = model.boxcox_profile(runs, adict, factors, block)
-    profile = fine if fine is not None else _normalise_profile(profile)
+    stored = _normalise_profile(profile)
+    fine = None
+    if stored is None or len(runs) <= 50_000:  # above: the analysis' own grid
+        fine = model.boxcox_profile(runs, adict, factors, block)
+    profile = fine if fine is not None else stored
 
     design = _design_of(experiment, runs, factors, levels)
     seed = _seed_used(session, experiment)

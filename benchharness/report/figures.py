@@ -37,6 +37,7 @@ MUTED = "#8a8a8a"         # not significant, reference lines
 INK = "#222222"
 
 MAX_POINTS_PER_CELL = 2000
+MAX_POINTS_DISTRIBUTIONS = 40000   # over all cells of the distribution plot
 MAX_SCATTER = 20000
 
 
@@ -213,10 +214,9 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
 
     inner_combos = list(itertools.product(*[data.levels[f] for f in inner]))
     n_in = len(inner_combos)
-    codes = {}
-    keys = ok[factors].astype(str).to_numpy()
-    for idx, key in enumerate(map(tuple, keys)):
-        codes.setdefault(key, []).append(idx)
+    frame = ok[factors].astype(str).reset_index(drop=True)
+    codes = {(k if isinstance(k, tuple) else (k,)): v
+             for k, v in frame.groupby(factors, observed=True, sort=False).indices.items()}
     color_of = dict(zip(data.levels[f1], _colors(len(data.levels[f1]))))
     width = min(13.0, max(5.0, 1.4 + len(cols) * (0.6 + 0.42 * n_in)))
     height = min(3.2 * len(rows) + 0.9, 30.0)
@@ -224,6 +224,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
     axes = fig.subplots(len(rows), len(cols), squeeze=False, sharey=True)
     subsampled = 0
     logax = _use_log_axis(data, y)
+    max_points = min(max_points, max(200, MAX_POINTS_DISTRIBUTIONS // max(1, len(codes))))
     per_cell = len(yv) / max(1, len(codes))
     dot = 16 if per_cell <= 20 else 9 if per_cell <= 200 else 5
     # Ticks name the inner factors after the first; the first is told by colour (legend).
@@ -249,7 +250,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
                     lv[row_f] = rv
                 key = tuple(lv[f] for f in factors)
                 idx = codes.get(key)
-                if not idx:
+                if idx is None or len(idx) == 0:
                     continue
                 vals = yv[idx]
                 boxes.append(vals)
@@ -707,28 +708,40 @@ def make_figures(data: ReportData, seed: int = 0,
 
     rng = np.random.default_rng(seed)
     out = FigureSet()
+    seen: dict[str, int] = {}
+
+    def add(fig):
+        # two factor names may share a slug ("a b", "a-b"): keep every file
+        n = seen.get(fig.name, 0)
+        seen[fig.name] = n + 1
+        if n:
+            from dataclasses import replace
+
+            fig = replace(fig, name=f"{fig.name}-{n + 1}")
+        out.figures.append(fig)
+
     with matplotlib.rc_context(_rc()):
         fig, note = distributions(data, rng, max_points=max_points)
-        out.figures.append(fig)
+        add(fig)
         if note:
             out.notes.append(note)
         eff = effects_plot(data)
         if eff is not None:
-            out.figures.append(eff)
+            add(eff)
         for a, b in interaction_pairs(data):
-            out.figures.append(interaction(data, a, b))
+            add(interaction(data, a, b))
         qq = qq_plot(data)
         if qq is not None:
-            out.figures.append(qq)
+            add(qq)
         rf, note = resid_fitted(data, rng)
         if rf is not None:
-            out.figures.append(rf)
+            add(rf)
         if note:
             out.notes.append(note)
         rp = resid_position(data, rng)
         if rp is not None:
-            out.figures.append(rp)
+            add(rp)
         bc = boxcox_plot(data)
         if bc is not None:
-            out.figures.append(bc)
+            add(bc)
     return out
