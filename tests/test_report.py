@@ -221,3 +221,23 @@ def test_report_command_on_folder_and_csv(folder, tmp_path, cli):
 def test_write_reports_returns_paths(folder):
     assert (folder / "report.html").stat().st_size > 10_000
     assert Path(folder / "report.md").read_text().startswith("# nap-planted")
+
+
+def test_run_command_writes_the_reports_of_real_processes(tmp_path, cli):
+    """End to end through `benchharness run`: real child processes, analysis, reports."""
+    exp = tmp_path / "naps.yaml"
+    exp.write_text(
+        "experiment: naps\n"
+        "about: Does a 30 ms nap take longer than a 5 ms one?\n"
+        "command: [python3, -c, 'import time, sys; time.sleep(float(sys.argv[1]))', '{nap}']\n"
+        "factors:\n  nap: ['0.005', '0.03']\n"
+        "replicates: 3\nseed: 5\n")
+    out = tmp_path / "out"
+    r = cli("run", exp, "--out", out, "--quiet", timeout=240)
+    assert r.returncode == 0, r.stderr
+    assert "report.html" in r.stdout
+    html = (out / "report.html").read_text()
+    assert all(f'<section id="{s}">' in html for s in SECTION_IDS)
+    assert "benchharness run" in html and "--seed 5" in html
+    assert len(re.findall(r'<img src="data:image/png;base64,', html)) >= 5
+    assert (out / "figures" / "distributions.svg").exists()

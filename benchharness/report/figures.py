@@ -429,7 +429,8 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
     if logscale:
         ax.set_ylabel(ax.get_ylabel() + " — log axis")
     conf = f"{round((1 - data.alpha) * 100):g}%"
-    cap = (f"Estimated mean of each {a} × {b} combination with its {conf} interval; one line "
+    cap = f"Significant interaction (p {_pw(p)}). " if significant else ""
+    cap += (f"Estimated mean of each {a} × {b} combination with its {conf} interval; one line "
            f"per level of {b}. Parallel lines mean the effect of {a} is the same at every "
            f"level of {b}; crossing or diverging lines mean it is not.")
     if logscale:

@@ -325,6 +325,15 @@ def sureness(data: ReportData) -> list[str]:
                    + "; see Diagnostics before relying on p-values near the threshold.")
     elif diagnostic_items(data):
         out.append("The model's assumption checks raise no concern.")
+    art = data.analysis.get("art") or {}
+    disagree = [t.get("term") for t in (art.get("terms") or []) if t.get("agrees") is False]
+    if disagree:
+        out.append("The rank-based cross-check disagrees with the ANOVA for "
+                   + _and([str(t) for t in disagree])
+                   + ": treat the verdict on those terms as uncertain.")
+    elif art.get("terms"):
+        out.append("A rank-based cross-check (which does not assume normal residuals) agrees "
+                   "with the ANOVA on every term.")
     bad = d.get("runs_failed", 0) + d.get("runs_timeout", 0)
     if bad:
         out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out and "
