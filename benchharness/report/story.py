@@ -14,7 +14,7 @@ from typing import Any
 
 from benchharness.report.data import ReportData, finite
 from benchharness.report.units import (
-    describe, fmt_num, fmt_p, fmt_pct, fmt_ratio, fmt_value, unit_of,
+    describe, fmt_num, fmt_p, fmt_ratio, fmt_value, unit_of,
 )
 
 
@@ -90,11 +90,6 @@ def _effect_phrase(data: ReportData, e: dict) -> str:
     return f"{f}={e['level']} against {f}={e['reference']}: not estimable"
 
 
-def _significant_excludes_one(e: dict) -> bool:
-    lo, hi = e.get("lower"), e.get("upper")
-    return finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
-
-
 def cell_means(data: ReportData) -> list[dict]:
     """Estimated means of every observed cell (original units), best first.
 
@@ -104,10 +99,6 @@ def cell_means(data: ReportData) -> list[dict]:
     full = ":".join(data.factors)
     rows = [m for m in data.analysis.get("means") or [] if m.get("term") == full]
     if not rows and data.residuals is not None and len(data.residuals):
-        import numpy as np
-
-        from benchharness.report.model import apply_transform  # noqa: F401
-
         tr = data.analysis.get("transform") or {}
         name, lam = tr.get("name", "none"), tr.get("lambda")
         grp = data.residuals.groupby(list(data.factors), observed=True)["fitted"]
@@ -125,7 +116,6 @@ def cell_means(data: ReportData) -> list[dict]:
             rows.append({"term": full, "levels": dict(zip(data.factors, key)),
                          "mean": mean, "lower": None, "upper": None,
                          "n": int(counts[key if len(key) > 1 else key[0]])})
-        del np
     rows = [r for r in rows if finite(r.get("mean"))]
     rows.sort(key=lambda r: float(r["mean"]), reverse=not lower_is_better(data))
     return rows
@@ -430,7 +420,6 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
     for item in diagnostic_items(data):
         if item["key"] in ("drift", "outliers", "runs_test") and item["concern"]:
             out.append({"kind": item["name"], "text": item["verdict"] or item["name"]})
-    d = data.design
     timed = data.timed_runs
     if "status" in timed.columns and len(timed):
         st = timed["status"].astype(str)
@@ -472,7 +461,6 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
                     str(w.get("text") or w.get("message") or w)})
     for n in notes or []:
         out.append({"kind": "Figures", "text": n})
-    del d
     return out
 
 
@@ -556,6 +544,3 @@ def design_rows(data: ReportData) -> list[tuple[str, str]]:
         rows.append(("command", d["command"]))
     return rows
 
-
-def fmt_share(x) -> str:
-    return fmt_pct(x)
