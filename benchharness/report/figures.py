@@ -383,7 +383,7 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
     la, lb = list(data.levels[a]), list(data.levels[b])
     vals = [v[0] for v in means.values() if finite(v[0])]
     mult, unit = display_scale(data.response, float(np.median(vals)) if vals else None)
-    fig = _new(min(8.5, 3.6 + 0.55 * len(la)), 3.5)
+    fig = _new(min(9.5, 4.6 + 0.55 * len(la)), 3.5)
     ax = fig.subplots()
     colors = _colors(len(lb))
     dodge = 0.06 if len(lb) > 1 else 0.0
@@ -415,7 +415,8 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
         _log_ticks(ax.yaxis, lo_y, hi_y)
     ax.set_ylabel(("mean " if from_model else "geometric mean ")
                   + axis_label(data.response, unit))
-    ax.legend(title=b, fontsize=8.5, title_fontsize=9, loc="best")
+    ax.legend(title=b, fontsize=8.5, title_fontsize=9, loc="center left",
+              bbox_to_anchor=(1.01, 0.5))
     if significant:
         status = f"interaction significant, p {_pw(p)}"
         ax.set_title(f"{a} × {b}: {status}", color=ACCENT, fontweight="bold")
@@ -577,7 +578,7 @@ def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
     idx, note = _scatter_subsample(len(res), rng)
     sub = res.iloc[idx]
     f1 = data.factors[0]
-    fig = _new(6.0, 3.8)
+    fig = _new(7.2, 3.8)
     ax = fig.subplots()
     for lv, c in zip(data.levels[f1], _colors(len(data.levels[f1]))):
         part = sub[sub[f1] == lv]
@@ -599,7 +600,8 @@ def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
     ax.set_xlabel("fitted value, " + ("ln scale" if tr == "log" else _scale_text(data)))
     ax.set_ylabel(residual_label(data))
     ax.set_title("Residuals against fitted values")
-    ax.legend(title=f1, fontsize=8, title_fontsize=8.5, loc="best", markerscale=1.5)
+    ax.legend(title=f1, fontsize=8, title_fontsize=8.5, loc="center left",
+              bbox_to_anchor=(1.01, 0.5), markerscale=1.5)
     cap = ("Each dot is one run: its deviation from its cell's fitted value. An even band "
            "around zero is what the model assumes; a funnel means the spread grows with the "
            "value (a transform helps).")
@@ -618,7 +620,7 @@ def resid_position(data: ReportData, rng) -> Figure | None:
     pos = res["position"].to_numpy(dtype=float)
     r = res["residual"].to_numpy(dtype=float)
     idx, _ = _scatter_subsample(len(res), rng)
-    fig = _new(7.0, 3.4)
+    fig = _new(8.6, 3.4)
     ax = fig.subplots()
     ax.scatter(pos[idx], r[idx], s=8, color=PALETTE[0], alpha=0.5, linewidths=0,
                rasterized=True, label="run")
@@ -644,7 +646,7 @@ def resid_position(data: ReportData, rng) -> Figure | None:
         title += f": trend p {_pw(p)}"
     ax.set_title(title, color=ACCENT if concern else INK,
                  fontweight="bold" if concern else "normal")
-    ax.legend(fontsize=8, loc="best")
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     cap = ("Residuals in the order the runs were executed. A slope or a step means the "
            "machine changed during the experiment (warming up, throttling, other load); "
            "randomised order keeps that from biasing the effects but it still widens intervals.")
@@ -665,7 +667,7 @@ def boxcox_plot(data: ReportData) -> Figure | None:
     if len(lam) < 3:
         return None
     tr = data.analysis.get("transform") or {}
-    fig = _new(5.6, 3.6)
+    fig = _new(7.6, 3.6)
     ax = fig.subplots()
     ax.plot(lam, ll, color=PALETTE[0], lw=1.8, label="profile log-likelihood")
     top = float(ll.max())
@@ -689,7 +691,7 @@ def boxcox_plot(data: ReportData) -> Figure | None:
     ax.set_xlabel("λ (Box-Cox power: 1 = as measured, 0 = log, −1 = reciprocal)")
     ax.set_ylabel("log-likelihood")
     ax.set_title("Box-Cox profile likelihood")
-    ax.legend(fontsize=7.5, loc="best")
+    ax.legend(fontsize=7.5, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     cap = ("How well each power transform of the response fits the model. The peak is the "
            "best-fitting λ; every λ above the dotted line is consistent with the data. "
            "The thick line is the transform the analysis used.")
