@@ -59,3 +59,19 @@ def test_blocked_main_effects_model_keeps_the_block_out_of_the_factors():
     html = render_html(data, figs)
     assert "interaction not in the model" not in html  # that text lives in the figure only
     assert any(f.name == "interaction-a-b" for f in figs.figures)
+
+
+def test_choose_section_when_the_experiment_asks_for_it(tmp_path):
+    from report_support import EXPERIMENT, make_results
+
+    from benchharness.report import write_reports
+
+    folder = make_results(tmp_path, text=EXPERIMENT + "choose: {}\n")
+    html_path, md_path = write_reports(folder)
+    html = html_path.read_text()
+    assert '<section id="choose">' in html
+    assert html.find('<section id="comparisons">') < html.find('<section id="choose">') \
+        < html.find('<section id="diagnostics">')
+    # planted: nap=short, scale=1 is fastest by far
+    assert "Recommended: nap=short, scale=1" in html
+    assert "## Choosing a default" in md_path.read_text()

@@ -143,7 +143,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "rank_check": art,
         "notes": [str(n) for n in data.analysis.get("notes") or []],
         "report_command": report_command(data),
-        "warnings": story.warnings(data, figs.notes),
+        "warnings": story.warnings(data, list(figs.notes) + list(data.extra_notes)),
         "cells": cells,
         "cells_total": n_cells_total,
         "factors": list(data.factors),
@@ -156,9 +156,23 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "figures_diagnostics": figs.by_section("diagnostics"),
         "figures": figs.figures,
         "sections": SECTIONS,
+        "extra": [_extra_section(x) for x in data.extra],
         "generated": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "version": _version(),
         "compact": compact,
+    }
+
+
+def _extra_section(sec) -> dict:
+    rec = sec.get("recommendation") or {}
+    return {
+        "id": str(sec.get("id") or "extra"),
+        "title": str(sec.get("title") or "More"),
+        "recommendation": ", ".join(f"{k}={v}" for k, v in dict(rec).items()),
+        "summary": [str(x) for x in sec.get("summary") or []],
+        "columns": [str(c) for c in sec.get("columns") or []],
+        "rows": [[str(x) for x in r] for r in sec.get("rows") or []],
+        "notes": [str(x) for x in sec.get("notes") or []],
     }
 
 

@@ -37,6 +37,9 @@ class ReportData:
     source: str = ""
     reproduce: str | None = None
     block: str | None = None
+    # Sections contributed by other capabilities: {id, title, summary, columns, rows, notes}
+    extra: tuple = ()
+    extra_notes: tuple = ()
 
     @property
     def alpha(self) -> float:
@@ -292,6 +295,7 @@ def collect(source, *, analysis=None, response: str | None = None,
         design["run_from"] = session["cwd"]
     if session.get("benchharness_version"):
         design["version"] = session["benchharness_version"]
+    extra, extra_notes = _extra_sections(folder, experiment, response)
     name = getattr(experiment, "name", None) or (
         folder.name if folder else "experiment" if src_text == "<table>" else Path(src_text).stem)
     about = getattr(experiment, "about", None) or ""
@@ -300,7 +304,33 @@ def collect(source, *, analysis=None, response: str | None = None,
         levels=levels, analysis=adict, runs=runs, residuals=residuals, profile=profile,
         design=design, host=host, folder=folder, source=src_text,
         reproduce=_reproduce_command(folder, experiment, seed, session), block=block,
+        extra=tuple(extra), extra_notes=tuple(extra_notes),
     )
+
+
+def _extra_sections(folder, experiment, response):
+    """Sections of later capabilities that the experiment file asks for.
+
+    `choose:` -> "Choosing a default" (benchharness.choose.choice_section). A section
+    that cannot be computed becomes a one-line note instead.
+    """
+    from benchharness.errors import BenchharnessError
+
+    sections, notes = [], []
+    wanted = getattr(experiment, "sections", None) or {}
+    if folder is not None and "choose" in wanted:
+        try:
+            from benchharness.choose import choice_section
+        except ImportError:
+            choice_section = None
+        if choice_section is not None:
+            try:
+                sec = dict(choice_section(folder))
+                sec.setdefault("id", "choose")
+                sections.append(sec)
+            except BenchharnessError as exc:
+                notes.append(f"No default could be chosen: {exc}")
+    return sections, notes
 
 
 def _factor_names(adict: Mapping) -> list[str]:
