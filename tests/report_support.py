@@ -53,7 +53,7 @@ class PlantedExecutor:
         now = dt.datetime.now(dt.timezone.utc).isoformat(timespec="microseconds")
         if spec.run_id in self.fail_runs:
             return Measurement(status="failed", exit_code=1, wall_s=0.001, started_at=now,
-                               message="planted failure")
+                               message="planted failure <img src=x onerror=alert(2)>")
         if spec.run_id in self.timeout_runs:
             return Measurement(status="timeout", exit_code=None, wall_s=60.0, started_at=now,
                                message="planted timeout")

@@ -117,9 +117,12 @@ def test_verdict_finds_the_planted_answer(folder):
     assert long_effect["lower"] < 2.0 < long_effect["upper"]
 
 
-def test_failed_and_timed_out_runs_are_counted_and_flagged(html):
+def test_failed_and_timed_out_runs_are_counted_and_flagged(html, md):
     assert "1 failed, 1 timed out" in html
     assert "timed out. Only the runs that finished are analysed" in html
+    # a command's own message is shown, escaped
+    assert "planted failure &lt;img src=x onerror=alert(2)&gt;" in html
+    assert "<img src=x" not in html and "<img src=x" not in md
 
 
 def test_reproduce_command_uses_the_run_flags(folder, html):

@@ -423,20 +423,27 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
     timed = data.timed_runs
     if "status" in timed.columns and len(timed):
         st = timed["status"].astype(str)
-        per_cell = (timed.assign(_bad=st.isin(["failed", "timeout"]), _to=st == "timeout")
-                    .groupby(list(data.factors), observed=True)[["_bad", "_to"]].sum())
-        for key, row in per_cell.iterrows():
+        bad = timed[st.isin(["failed", "timeout"]).to_numpy()]
+        for key, g in bad.groupby(list(data.factors), observed=True, sort=False):
             key = key if isinstance(key, tuple) else (key,)
             label = cell_label(dict(zip(data.factors, key)), data.factors)
-            if row["_to"]:
+            gst = g["status"].astype(str)
+            n_to, n_bad = int((gst == "timeout").sum()), len(g)
+            why = ""
+            if "message" in g.columns:
+                msgs = [str(m) for m in g["message"].dropna() if str(m).strip()]
+                if msgs:
+                    first = " ".join(msgs[0].split())
+                    why = f" First message: “{first[:200]}{'…' if len(first) > 200 else ''}”"
+            if n_to:
                 out.append({"kind": "Timeouts",
-                            "text": f"{label}: {int(row['_to'])} run(s) timed out. Only the runs "
-                                    "that finished are analysed, so this cell looks faster than "
-                                    "it is."})
-            elif row["_bad"]:
+                            "text": f"{label}: {n_to} run(s) timed out. Only the runs that "
+                                    "finished are analysed, so this cell looks faster than "
+                                    f"it is.{why}"})
+            else:
                 out.append({"kind": "Failed runs",
-                            "text": f"{label}: {int(row['_bad'])} run(s) failed and are left "
-                                    "out of the analysis."})
+                            "text": f"{label}: {n_bad} run(s) failed and are left out of the "
+                                    f"analysis.{why}"})
     host = dict(data.host or {})
     load = _first_load(_host_get(host, "load_average_start", "load_start", "loadavg", "load_average", "load.start",
                                  "load_avg_start"))
