@@ -75,3 +75,17 @@ def test_choose_section_when_the_experiment_asks_for_it(tmp_path):
     # planted: nap=short, scale=1 is fastest by far
     assert "Recommended: nap=short, scale=1" in html
     assert "## Choosing a default" in md_path.read_text()
+
+
+def test_units_and_markdown_escaping():
+    from benchharness.report.markdown import md_code, md_escape
+    from benchharness.report.units import axis_label, fmt_p, fmt_value
+
+    assert fmt_value(0.0123, "wall_s") == "12.3 ms"
+    assert fmt_value(2.5e-5, "wall_s") == "25.0 µs"
+    assert fmt_value(1.5, "wall_s") == "1.50 s"
+    assert fmt_value(2048, "max_rss_kib") == "2,048 KiB"
+    assert axis_label("wall_s", "ms") == "wall-clock time [wall_s] (ms)"
+    assert fmt_p(3e-9) == "< 0.001" and fmt_p(0.0412) == "0.041"
+    assert md_escape("a|b *c* <d> [e](f)") == r"a\|b \*c\* &lt;d&gt; \[e\](f)"
+    assert md_code("x ` y") == "``x ` y``"  # CommonMark: a longer fence around a backtick
