@@ -182,9 +182,9 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
                          "can stop between replicates")
         if rule is not None:
             plan_kwargs["replicates"] = rule.max_replicates
-    from benchharness.quality import quality_config
+    from benchharness.sections import validate_sections
 
-    quality_config(exp)  # bad expect/metrics/samples/perf sections fail before a folder exists
+    validate_sections(exp)  # malformed capability sections fail before a folder exists
     from benchharness.host import preflight
 
     start_facts = collect_facts()

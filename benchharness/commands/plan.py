@@ -27,9 +27,9 @@ def main(args) -> int:
     from benchharness.design import build_plan
 
     exp = load_experiment(args.file)
-    from benchharness.quality import quality_config
+    from benchharness.sections import validate_sections
 
-    quality_config(exp)  # expect / metrics / samples / perf sections: errors before any run
+    validate_sections(exp)  # every capability section: errors before any run
     for w in exp.warnings:
         print(f"warning: {w}", file=sys.stderr)
     plan = build_plan(exp, seed=args.seed)
