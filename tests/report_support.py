@@ -36,7 +36,7 @@ class PlantedExecutor:
     """Draws ``wall_s = 0.02 s × Π effect × lognormal(σ)``; optional failures by run id."""
 
     def __init__(self, planted=PLANTED, sigma=0.08, seed=3, fail_runs=(), timeout_runs=(),
-                 base_s=0.02, drift_per_run=0.0):
+                 base_s=0.02, drift_per_run=0.0, print_rate=False):
         self.planted = planted
         self.sigma = sigma
         self.rng = np.random.default_rng(seed)
@@ -45,6 +45,7 @@ class PlantedExecutor:
         self.base_s = base_s
         self.drift = drift_per_run
         self.count = 0
+        self.print_rate = print_rate
 
     def execute(self, spec, on_start=None):
         if on_start:
@@ -65,7 +66,9 @@ class PlantedExecutor:
         return Measurement(status="ok", exit_code=0, wall_s=wall, user_s=wall * 0.9,
                            sys_s=wall * 0.05, max_rss_kib=9000 + int(self.rng.integers(0, 50)),
                            minor_faults=100, major_faults=0, voluntary_switches=2,
-                           involuntary_switches=1, in_blocks=0, out_blocks=0, started_at=now)
+                           involuntary_switches=1, in_blocks=0, out_blocks=0, started_at=now,
+                           stdout_tail=(f"served {1000.0 / wall:.3f} requests/s\n".encode()
+                                        if self.print_rate else b""))
 
     def close(self):
         pass

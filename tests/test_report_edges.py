@@ -89,3 +89,21 @@ def test_units_and_markdown_escaping():
     assert fmt_p(3e-9) == "< 0.001" and fmt_p(0.0412) == "0.041"
     assert md_escape("a|b *c* <d> [e](f)") == r"a\|b \*c\* &lt;d&gt; \[e\](f)"
     assert md_code("x ` y") == "``x ` y``"  # CommonMark: a longer fence around a backtick
+
+
+def test_custom_metric_where_higher_is_better(tmp_path):
+    """A throughput metric (`better: higher`): the best cell is the one with the most."""
+    from report_support import EXPERIMENT, PlantedExecutor, make_results
+
+    from benchharness.report import build_report
+
+    text = EXPERIMENT + (
+        "metrics:\n  throughput_rps:\n    pattern: 'served ([0-9.]+) requests/s'\n"
+        "    unit: req/s\n    better: higher\n")
+    folder = make_results(tmp_path, text=text, executor=PlantedExecutor(print_rate=True))
+    data, figs = build_report(folder, response="throughput_rps")
+    assert data.better == "higher"
+    html = render_html(data, figs)
+    # planted: nap=short, scale=1 is fastest, so it serves the most requests per second
+    assert "The best cell is nap=short, scale=1" in html
+    assert "req/s" in html

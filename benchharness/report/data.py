@@ -40,6 +40,7 @@ class ReportData:
     # Sections contributed by other capabilities: {id, title, summary, columns, rows, notes}
     extra: tuple = ()
     extra_notes: tuple = ()
+    better: str | None = None       # "lower" | "higher" when the metric declares it
 
     @property
     def alpha(self) -> float:
@@ -296,6 +297,7 @@ def collect(source, *, analysis=None, response: str | None = None,
     if session.get("benchharness_version"):
         design["version"] = session["benchharness_version"]
     extra, extra_notes = _extra_sections(folder, experiment, response)
+    better = _declared_metric(folder, response)
     name = getattr(experiment, "name", None) or (
         folder.name if folder else "experiment" if src_text == "<table>" else Path(src_text).stem)
     about = getattr(experiment, "about", None) or ""
@@ -304,8 +306,25 @@ def collect(source, *, analysis=None, response: str | None = None,
         levels=levels, analysis=adict, runs=runs, residuals=residuals, profile=profile,
         design=design, host=host, folder=folder, source=src_text,
         reproduce=_reproduce_command(folder, experiment, seed, session), block=block,
-        extra=tuple(extra), extra_notes=tuple(extra_notes),
+        extra=tuple(extra), extra_notes=tuple(extra_notes), better=better,
     )
+
+
+def _declared_metric(folder, response) -> str | None:
+    """Direction (and unit) of a custom metric from the folder's metrics.json."""
+    if folder is None or not (folder / "metrics.json").exists():
+        return None
+    try:
+        info = json.loads((folder / "metrics.json").read_text()).get(response)
+    except (ValueError, AttributeError):
+        return None
+    if not isinstance(info, Mapping):
+        return None
+    from benchharness.report.units import declare_unit
+
+    declare_unit(response, str(info.get("unit") or ""))
+    better = info.get("better")
+    return better if better in ("lower", "higher") else None
 
 
 def _extra_sections(folder, experiment, response):

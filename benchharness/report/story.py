@@ -26,7 +26,7 @@ def confidence_pct(data: ReportData) -> str:
 
 
 def lower_is_better(data: ReportData) -> bool:
-    better = data.analysis.get("better") or data.analysis.get("direction")
+    better = data.better or data.analysis.get("better") or data.analysis.get("direction")
     if isinstance(better, str):
         return better.lower() != "higher"
     return unit_of(data.response) not in ("per s",)
