@@ -17,23 +17,33 @@ fingerprint). The method, per stretch measured on one host:
    1941) robustly, from the median of the squared differences scaled by the
    median of a chi-square with 1 df -- a step moves one difference only.
    Weights are ``w_i = 1/(se_i^2 + tau^2)``.
-3. **Is there any step?** The statistic is the largest cost reduction of a
-   single split, ``max_k W_L W_R / W (m_L - m_R)^2`` (weighted Gaussian cost
-   ``sum w_i (x_i - xbar_w)^2``). Its null distribution is simulated by a
-   parametric bootstrap of steps 2-3 (flat series with these variances, tau^2
-   re-estimated on each, fixed seed); the critical value ``c`` is its
-   ``1 - alpha`` quantile. A flat stretch therefore shows a false step with
-   probability about ``alpha``.
-4. **Where are the steps?** Only if the statistic exceeds ``c``, PELT (Killick,
-   Fearnhead & Eckley 2012, JASA 107:1590) finds the optimal segmentation under
-   the same weighted cost with penalty ``c`` per step (so at least one step is
-   found, and further steps must each pay ``c``).
+3. **Is there any step?** Under the weighted Gaussian cost
+   ``sum w_i (x_i - xbar_w)^2`` the statistic is the largest cost reduction by
+   one step (``W_L W_R / W (m_L - m_R)^2``) or by a step and a step back (an
+   inner stretch cut out, a regression later fixed, less a price ``2 ln N`` for
+   the second change, Schwarz 1978 style). Its null distribution comes from a
+   permutation test: under a flat series the points are interchangeable, so
+   the whole procedure (tau^2 included) is redone on shuffled orders (999, fixed
+   seed; stopped early once the answer is certain, Besag & Clifford 1991). The
+   p-value ``(1 + #{T* >= T})/(1 + R)`` makes the chance of a false step in a
+   flat stretch at most ``alpha`` -- exactly, whatever the noise, as long as the
+   points are interchangeable. The price of that guarantee: a shift seen in a
+   single point cannot be told from one unlucky session. A lone odd point in
+   the middle is never reported; a shift of the newest point alone only once
+   the stretch has more than ``2/alpha`` points (40 at 0.05); two or more
+   shifted points at the end are found much sooner.
+4. **Where are the steps?** Only if the test rejects, PELT (Killick, Fearnhead &
+   Eckley 2012, JASA 107:1590) finds the optimal segmentation under the same
+   cost with penalty ``min(c, (c + 2 ln N)/2)`` per step, ``c`` the permutation
+   ``1 - alpha`` quantile, so whatever made the test fire is always found;
+   then any step whose own split (between the segments on either side) is
+   weaker than ``c`` is dropped, weakest first.
 5. **Each step** is reported at the first commit of the new segment, as the
    ratio ``exp(mean_after - mean_before)`` of the two neighbouring segments'
-   weighted means with a normal interval, and whether it **persists**: all
-   points after it up to the end of the stretch are still shifted the same way
-   (their weighted mean's interval against the old segment excludes 1); ``None``
-   when only one point follows. Intervals ignore that the step location was
+   weighted means with a normal interval, and whether it **persists**: every
+   later segment up to the end of the stretch is still shifted the same way
+   against the segment before the step (interval of the ratio excludes 1);
+   ``None`` when only one point follows. Intervals ignore that the step location was
    chosen from the data, so they are somewhat optimistic.
 
 A change of host fingerprint ends a stretch: it is reported as a ``HostBreak``
@@ -48,7 +58,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 MIN_POINTS = 4          # fewer points on one host: no step detection
-N_SIMULATIONS = 2000    # null simulations for the critical value
+N_SIMULATIONS = 999     # shuffles for the permutation test
 
 
 @dataclass(frozen=True)
@@ -156,6 +166,37 @@ def max_split_statistic(x, w) -> tuple[float, int]:
     return float(stat[k]), k + 1
 
 
+def segment_statistic(X, w, extra: float = 0.0):
+    """Per row of X: the largest cost reduction by one step or by a step and a step back.
+
+    One step at k: ``W_L W_R / W (m_L - m_R)^2``. A step and a step back, i.e. an
+    inner stretch ``[i, j)`` cut out of the rest: ``W_in W_out / W (m_in - m_out)^2``
+    minus ``extra`` (the price of the second change).
+    """
+    X = np.atleast_2d(np.asarray(X, dtype=float))
+    w = np.broadcast_to(np.asarray(w, dtype=float), X.shape)
+    R, N = X.shape
+    zeros = np.zeros((R, 1))
+    Cw = np.concatenate([zeros, np.cumsum(w, axis=1)], axis=1)
+    Cx = np.concatenate([zeros, np.cumsum(w * X, axis=1)], axis=1)
+    W = Cw[:, -1:]
+    S = Cx[:, -1:]
+    best = _split_stats(X, w).max(axis=1) if N > 1 else np.zeros(R)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for i in range(1, N - 1):
+            Win = Cw[:, i + 1:N] - Cw[:, i:i + 1]       # stretches [i, j), i < j < N
+            Sin = Cx[:, i + 1:N] - Cx[:, i:i + 1]
+            Wout = W - Win
+            stat = Win * Wout / W * (Sin / Win - (S - Sin) / Wout) ** 2 - extra
+            best = np.maximum(best, stat.max(axis=1))
+    return best
+
+
+def step_back_price(N: int) -> float:
+    """Extra cost of a second change: 2 ln N, a Schwarz (1978) type price."""
+    return 2.0 * math.log(max(N, 2))
+
+
 def _split_stats(X, w):
     """Split statistics for each row of X; ``w`` one weight vector or one per row."""
     w = np.broadcast_to(w, X.shape)
@@ -181,27 +222,34 @@ def permutation_test(x, v, alpha: float, n_perm: int = N_SIMULATIONS,
     Under a flat series the points (each mean with its variance) are
     interchangeable, so shuffling their order -- and redoing the whole
     procedure, including the estimate of tau^2, on each shuffle -- gives the
-    null distribution of the max-split statistic exactly (Monte Carlo version,
-    p = (1 + #{T* >= T}) / (1 + R); fixed seed, so results repeat).
+    null distribution of the statistic exactly (Monte Carlo version,
+    p = (1 + #{T* >= T}) / (1 + R); fixed seed, so results repeat). Shuffling
+    stops as soon as p can no longer reach ``alpha`` (the decision is the same as
+    with all R shuffles); the critical value is then NaN and p a lower bound.
     """
     x = np.asarray(x, dtype=float)
     v = np.asarray(v, dtype=float)
     N = len(x)
-    t_obs = float(_split_stats(x[None, :], weights(x, v)[None, :]).max())
+    extra = step_back_price(N)
+    t_obs = float(segment_statistic(x[None, :], weights(x, v)[None, :], extra)[0])
     rng = np.random.default_rng([seed, N])
     out = []
-    chunk = max(1, min(n_perm, 2_000_000 // max(N, 1)))
+    chunk = max(1, min(100, n_perm, 2_000_000 // max(N, 1)))
     done = 0
+    exceed = 0
     while done < n_perm:
         m = min(chunk, n_perm - done)
         idx = rng.permuted(np.tile(np.arange(N), (m, 1)), axis=1)
         X, V = x[idx], v[idx]
         W = 1.0 / (V + session_variance(X, V)[:, None])
-        out.append(_split_stats(X, W).max(axis=1))
+        null = segment_statistic(X, W, extra)
+        out.append(null)
         done += m
+        exceed += int(np.sum(null >= t_obs * (1 - 1e-12)))
+        if (1 + exceed) / (1 + n_perm) > alpha:
+            return t_obs, math.nan, (1 + exceed) / (1 + n_perm)
     null = np.concatenate(out)
-    p = (1 + int(np.sum(null >= t_obs * (1 - 1e-12)))) / (1 + len(null))
-    return t_obs, float(np.quantile(null, 1 - alpha)), p
+    return t_obs, float(np.quantile(null, 1 - alpha)), (1 + exceed) / (1 + n_perm)
 
 
 def pelt(x, w, penalty: float, min_size: int = 1) -> list[int]:
@@ -243,6 +291,35 @@ def pelt(x, w, penalty: float, min_size: int = 1) -> list[int]:
         if t > 0:
             cps.append(t)
     return sorted(cps)
+
+
+def local_statistics(x, w, cps) -> list[float]:
+    """For each changepoint, the one-step statistic between its two neighbouring segments."""
+    edges = [0, *cps, len(x)]
+    out = []
+    for j, cpt in enumerate(cps):
+        a, b = edges[j], edges[j + 2]
+        out.append(float(_split_stats(np.asarray(x[a:b])[None, :],
+                                      np.asarray(w[a:b]))[0][cpt - a - 1]))
+    return out
+
+
+def prune_steps(x, w, cps, threshold: float) -> list[int]:
+    """Drop, weakest first, steps whose local statistic is below ``threshold``.
+
+    PELT's penalty is set so the change that made the test fire is found; other
+    steps it adds must each stand on their own: the split between the segments
+    on either side must be as strong as the test's critical value (which, being
+    calibrated on the whole stretch, is on the safe side for a shorter window).
+    """
+    cps = list(cps)
+    while cps:
+        stats_ = local_statistics(x, w, cps)
+        j = int(np.argmin(stats_))
+        if stats_[j] >= threshold:
+            break
+        del cps[j]
+    return cps
 
 
 # ----------------------------------------------------------------- detection
@@ -296,29 +373,31 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
         if len(xs) >= MIN_POINTS:
             stat, crit, pvalue = permutation_test(xs, v, alpha, n_sim)
             if pvalue <= alpha:
-                # penalty c per step; never above the observed statistic, so the
-                # single best split is always among the steps found
-                cps = pelt(xs, w, min(crit, stat * (1 - 1e-9)))
+                # penalty per step min(c, (c + price)/2): whatever made the test
+                # fire (one step, or a step and a step back) is then always found
+                c = min(crit, stat * (1 - 1e-9))
+                cps = pelt(xs, w, min(c, (c + step_back_price(len(xs))) / 2))
+                cps = prune_steps(xs, w, cps, c)
         edges = [0] + cps + [len(xs)]
         segs = []
         for s0, s1 in zip(edges[:-1], edges[1:]):
             m, se = _wmean(xs[s0:s1], w[s0:s1])
             segs.append(Segment(a + s0, a + s1, m, se, hosts[a]))
         segments.extend(segs)
+        local = local_statistics(xs, w, cps)
         for j, cp in enumerate(cps):
             before, after = segs[j], segs[j + 1]
             r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
-            rest_m, rest_se = _wmean(xs[cp:], w[cp:])
             if len(xs) - cp < 2:
                 persists = None
             else:
-                _, rlo, rhi = _ratio(rest_m, rest_se, before.mean, before.se, z)
-                persists = bool(rlo > 1) if r > 1 else bool(rhi < 1)
-            lo_w = w[edges[j]:edges[j + 2]]
-            lo_x = xs[edges[j]:edges[j + 2]]
-            k = cp - edges[j]
-            stat_k = float(_split_stats(lo_x[None, :], lo_w)[0][k - 1])
-            steps.append(Step(a + cp, r, lo, hi, persists, stat_k, crit))
+                # every later segment of the stretch stays shifted the same way
+                persists = True
+                for later in segs[j + 1:]:
+                    _, rlo, rhi = _ratio(later.mean, later.se, before.mean, before.se, z)
+                    if not (rlo > 1 if r > 1 else rhi < 1):
+                        persists = False
+            steps.append(Step(a + cp, r, lo, hi, persists, local[j], crit))
         stretch_summ.append(_wmean(xs, w))
     breaks: list[HostBreak] = []
     for i, b in enumerate(bounds[1:-1]):
