@@ -173,11 +173,10 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
             verdict = "unclear"
         pct = f"{tolerance * 100:g}%"
         wording = {
-            "higher": f"B is {words['higher']} beyond the {pct} tolerance",
-            "lower": f"B is {words['lower']} beyond the {pct} tolerance",
-            "within": f"the same within {pct}",
-            "unclear": f"cannot tell at {pct} (interval crosses the tolerance band)"
-                       if s is not None else "cannot tell (no replicates to estimate noise)",
+            "higher": f"{words['higher']} (beyond {pct})",
+            "lower": f"{words['lower']} (beyond {pct})",
+            "within": f"same within {pct}",
+            "unclear": "unclear" if s is not None else "unclear (no replicates)",
         }[verdict]
         cell = dict(zip(factors, key.split("\x1f"))) if factors else {}
         out.append(CellComparison(cell=cell, n_a=na, n_b=nb, center_a=back(ma),

@@ -70,7 +70,10 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
                  (f"{round(t.conf_level * 100)}% interval", "right"), ("noise", "right"),
                  ("change here", "left")]
         for col, just in cols:
-            table.add_column(col, justify=just, overflow="fold")
+            if col == "change here":
+                table.add_column(col, justify=just, overflow="fold")
+            else:
+                table.add_column(col, justify=just, no_wrap=True)
         notes = point_notes(t)
         for i, p in enumerate(t.points):
             noise = "-"
