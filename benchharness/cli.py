@@ -23,8 +23,14 @@ from benchharness.errors import BenchharnessError
 COMMANDS: list[tuple[str, str]] = [
     ("plan", "plan"),
     ("run", "run"),
-    ("history", "history"),
+    ("analyze", "analyze"),
+    ("report", "report"),
+    ("choose", "choose"),
+    ("gate", "gate"),
+    ("size", "size"),
     ("compare", "compare"),
+    ("history", "history"),
+    ("host", "host"),
 ]
 
 
@@ -46,7 +52,12 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"benchharness {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for _name, module in COMMANDS:
-        mod = importlib.import_module(f"benchharness.commands.{module}")
+        try:
+            mod = importlib.import_module(f"benchharness.commands.{module}")
+        except ModuleNotFoundError as exc:
+            if exc.name == f"benchharness.commands.{module}":
+                continue  # a capability not present in this build
+            raise
         mod.add_parser(sub)
     return parser
 

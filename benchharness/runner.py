@@ -138,12 +138,33 @@ def default_executor():
 
 def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAULT_BASE,
                    seed: int | None = None, progress: Progress | None = None,
-                   plan=None) -> RunOutcome:
-    """Plan and execute ``exp`` into a new results folder."""
+                   plan=None, scheduler: str | None = None,
+                   same_host_ok: bool = False) -> RunOutcome:
+    """Plan and execute ``exp`` into a new results folder.
+
+    ``executor``: any `Executor` (default: local processes through the
+    launcher). ``scheduler``: address of a Dask scheduler to spread the runs
+    over its workers instead (blocks are assigned to hosts whole).
+    """
+    import dataclasses
+
     from benchharness.design import build_plan
     from benchharness.host import collect_facts
 
-    plan = plan or build_plan(exp, seed=seed)
+    if isinstance(exp, (str, os.PathLike)):
+        from benchharness.experiment import load_experiment
+
+        exp = load_experiment(exp)
+    notes = []
+    if scheduler and plan is None and exp.order == "randomized":
+        # Hosts receive complete blocks, so each replicate becomes a block.
+        exp_for_plan = dataclasses.replace(exp, order="blocked")
+        notes.append("on a cluster each replicate is run as a complete block on one host "
+                     "(order: blocked), so that hosts are blocks of the design")
+    else:
+        exp_for_plan = exp
+    plan = plan or build_plan(exp_for_plan, seed=seed)
+    check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
     lock = J.FolderLock(folder)
     try:
@@ -159,6 +180,7 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
             "benchharness_version": _version(),
             "seed": plan.seed,
             "seed_drawn": exp.seed is None and seed is None,
+            "order": plan.order,
             "experiment_path": str(exp.path),
             "experiment_dir": exp_dir,
             "cwd": os.getcwd(),
@@ -167,17 +189,28 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
             "state": "running",
             "runs_planned": len(plan.runs),
         }
+        if scheduler:
+            session["scheduler"] = scheduler
         J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
         J.fsync_dir(folder)
         planned = [{"run": r.run, "position": r.position, "block": r.block,
                     "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
                    for r in plan.runs]
-        return _execute(folder, exp, planned, set(), session, executor, progress, facts)
+        if scheduler:
+            from benchharness.execute.cluster import execute_on_cluster
+
+            outcome = execute_on_cluster(folder, exp, planned, set(), session, progress, facts,
+                                         scheduler, same_host_ok=same_host_ok)
+        else:
+            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts)
+        outcome.notes[:0] = notes
+        return outcome
     finally:
         lock.release()
 
 
-def resume_experiment(folder, executor=None, progress: Progress | None = None) -> RunOutcome:
+def resume_experiment(folder, executor=None, progress: Progress | None = None,
+                      scheduler: str | None = None, same_host_ok: bool = False) -> RunOutcome:
     """Continue an interrupted results folder; never records a run twice."""
     from benchharness.experiment import load_experiment
 
@@ -204,8 +237,16 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None) -
             facts = json.loads((folder / "host.json").read_text())
         except (OSError, json.JSONDecodeError):
             facts = {}
-        outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
-                           prior=records)
+        if scheduler:
+            from benchharness.execute.cluster import execute_on_cluster
+
+            outcome = execute_on_cluster(folder, exp, planned, done, session, progress,
+                                         facts.get("coordinator", facts), scheduler,
+                                         same_host_ok=same_host_ok, prior=records,
+                                         known_hosts=facts.get("hosts"))
+        else:
+            outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
+                               prior=records)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -218,13 +259,36 @@ def _version() -> str:
     return __version__
 
 
+def check_controls(exp, runs) -> None:
+    """Render and check the noise controls of every cell before anything runs."""
+    from benchharness.execute.controls import parse_controls, resolve_cell
+
+    controls = parse_controls(exp)
+    if controls.pin or controls.nice:
+        seen = set()
+        for r in runs:
+            levels = r.levels if hasattr(r, "levels") else r["levels"]
+            key = tuple(sorted(levels.items()))
+            if key not in seen:
+                seen.add(key)
+                resolve_cell(exp, controls, levels)
+
+
 class _CellCache:
     """Rendered command, environment and steps per cell (computed once per cell)."""
 
     def __init__(self, exp, session: Mapping, extra_env: Mapping[str, str] | None = None):
+        from benchharness.execute.controls import parse_controls
+
         self.exp = exp
         self.cache: dict[tuple, dict] = {}
-        self.base_env = dict(os.environ)
+        self.controls = parse_controls(exp)
+        if self.controls.clean_env:
+            from benchharness.execute.envs import clean_environment
+
+            self.base_env = clean_environment(os.environ)
+        else:
+            self.base_env = dict(os.environ)
         self.exp_dir = session.get("experiment_dir") or os.getcwd()
         self.cwd = session.get("cwd") or os.getcwd()
 
@@ -233,12 +297,17 @@ class _CellCache:
         c = self.cache.get(key)
         if c is None:
             exp = self.exp
+            env_over = exp.render_env(levels)
             env = dict(self.base_env)
-            env.update(exp.render_env(levels))
+            env.update(env_over)
             wd = exp.render_workdir(levels)
             cwd = self.cwd if wd is None else str(Path(self.exp_dir, wd))
             argv, shell = exp.render_command(exp.command, levels)
-            c = {"argv": argv, "shell": shell, "env": env, "cwd": cwd,
+            from benchharness.execute.controls import resolve_cell
+
+            ctl = resolve_cell(exp, self.controls, levels)
+            c = {"cpus": ctl["cpus"], "nice": ctl["nice"], "no_aslr": self.controls.aslr_off,
+                 "argv": argv, "shell": shell, "env": env, "env_over": env_over, "cwd": cwd,
                  "label": " ".join(f"{k}={v}" for k, v in levels.items())}
             for step in ("build", "reset", "teardown"):
                 t = getattr(exp, step)
@@ -247,10 +316,11 @@ class _CellCache:
         return c
 
 
-def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None) -> RunSpec:
+def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None, env=None) -> RunSpec:
     argv, shell = argv_shell
-    return RunSpec(argv=argv, shell_command=shell, env=c["env"], cwd=c["cwd"],
-                   timeout_s=timeout_s, run_id=run_id, levels=levels or {})
+    return RunSpec(argv=argv, shell_command=shell, env=env or c["env"], cwd=c["cwd"],
+                   timeout_s=timeout_s, run_id=run_id, levels=levels or {},
+                   cpus=c["cpus"], nice=c["nice"], no_aslr=c["no_aslr"])
 
 
 def _short(m: Measurement) -> str:
@@ -296,6 +366,24 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     progress.start(len(planned), len(planned) - len(todo), folder)
     timeout_s = exp.timeout_s
     inflight_pgid = [None]
+    controls = cells.controls
+    pad_rng = None
+    if controls.pad_env:
+        import numpy as np
+
+        from benchharness.execute.envs import pad_environment
+
+        # Seeded from the plan's seed and the runs already done, so a resumed
+        # folder continues with fresh (not repeated) padding lengths.
+        pad_rng = np.random.default_rng([int(session.get("seed") or 0), len(done), 7])
+    aslr_value = None
+    if controls.aslr_off:
+        ok = getattr(executor, "aslr_control", True)
+        aslr_value = "off" if ok else "on"
+        if not ok:
+            progress.note("note: ASLR stays on: " + getattr(executor, "aslr_reason",
+                                                           "the kernel does not allow it"))
+    cold_ok = None
 
     def on_start_for(run_id):
         def cb(pid, pgid):
@@ -317,7 +405,8 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     ok = bm.status == "ok"
                     builds[bkey] = (ok, "" if ok else
                                     f"build failed: {_short(bm)}"
-                                    + _tail(bm.stderr_tail or bm.stdout_tail))
+                                    + ("" if bm.message else
+                                       _tail(bm.stderr_tail or bm.stdout_tail)))
                 ok, bmsg = builds[bkey]
                 if not ok:
                     status, message = "failed", bmsg
@@ -325,9 +414,23 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 rm = executor.execute(_spec(c["reset"], c, timeout_s, levels=levels))
                 if rm.status != "ok":
                     status, message = "failed", f"reset failed: {_short(rm)}"
+            pad_bytes = None
+            run_env = None
+            if status is None and pad_rng is not None:
+                run_env, pad_bytes = pad_environment(c["env"], pad_rng)
+            if status is None and controls.cold_cache and not pr["warmup"] and cold_ok is not False:
+                from benchharness.execute.noise import drop_page_cache
+
+                ok, why = drop_page_cache()
+                if not ok and cold_ok is None:
+                    progress.note(f"note: cold-cache mode is off for this run: {why}")
+                    session["cold_cache"] = f"not possible: {why}"
+                cold_ok = ok
+                if ok:
+                    session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
                 m = executor.execute(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                           run_id=pr["run"], levels=levels),
+                                           run_id=pr["run"], levels=levels, env=run_env),
                                      on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
                 status = m.status
@@ -341,7 +444,14 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     if tm.status != "ok":
                         message = (message + "; " if message else "") + \
                             f"teardown failed: {_short(tm)}"
+            if pr["warmup"] and status != "warmup":
+                message = f"warm-up run not done: {message}"
+                status = "warmup"
             rec = _record(pr, m, status, message)
+            if pad_bytes is not None:
+                rec["pad_env_bytes"] = pad_bytes
+            if aslr_value is not None:
+                rec["aslr"] = aslr_value
             jr.append(rec)
             records_new += 1
             counts[status] = counts.get(status, 0) + 1
@@ -366,16 +476,22 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 executor.close()
             except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
                 pass
+    return finalize(folder, exp, session, facts, counts, len(planned), interrupted)
+
+
+def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
+             interrupted: bool, host_json: dict | None = None) -> RunOutcome:
+    """Export runs.csv, record the end state in host.json and session.json."""
     records = J.read_journal(folder / "runs.jsonl")
     J.export_runs_csv(folder, exp.factor_names, records)
     from benchharness.host import load_average
 
     facts["load_average_end"] = load_average()
-    J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+    J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
-    return RunOutcome(folder=folder, seed=session["seed"], planned=len(planned), counts=counts,
+    return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
                       interrupted=interrupted)
 
 

@@ -48,8 +48,11 @@ def format_plan(exp, plan, show: int = 12) -> str:
     lines.append(f"timed runs  {plan.timed_runs} ({exp.replicates} per cell)")
     lines.append(f"warm-up     {plan.warmup_runs} untimed runs")
     lines.append(f"order       {plan.order}, seed {plan.seed}{seed_note}")
+    from benchharness.design.spec import DESIGN_INFO_KEYS, describe_info
+
+    lines.extend(describe_info(plan.info))
     for key, value in plan.info.items():
-        if isinstance(value, (str, int, float)):
+        if key not in DESIGN_INFO_KEYS and isinstance(value, (str, int, float)):
             lines.append(f"{key:<11} {value}")
     n = min(show, len(plan.runs))
     if n:

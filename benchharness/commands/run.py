@@ -15,6 +15,10 @@ def add_parser(sub) -> None:
                    "results/<experiment>-<UTC timestamp>); must not exist or be empty")
     p.add_argument("--seed", type=int, default=None, help="override the file's seed")
     p.add_argument("--resume", metavar="DIR", help="continue an interrupted results folder")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on a Dask cluster (tcp://HOST:PORT); hosts become blocks")
+    p.add_argument("--same-host-ok", action="store_true",
+                   help="several workers on one host are intended (each counts as a host)")
     p.add_argument("--quiet", action="store_true", help="no progress display")
     p.add_argument("--no-analysis", action="store_true",
                    help="skip the analysis and reports at the end")
@@ -39,7 +43,9 @@ def main(args) -> int:
     if args.resume:
         if args.file:
             raise UsageError("give either an experiment file or --resume DIR, not both")
-        outcome = runner.resume_experiment(args.resume, progress=progress)
+        outcome = runner.resume_experiment(args.resume, progress=progress,
+                                           scheduler=args.scheduler,
+                                           same_host_ok=args.same_host_ok)
     else:
         if not args.file:
             raise UsageError("run needs an experiment file (or --resume DIR)")
@@ -50,7 +56,9 @@ def main(args) -> int:
             print(f"warning: {w}", file=sys.stderr)
         if exp.seed is None and args.seed is None:
             pass  # the drawn seed is printed below and recorded in session.json
-        outcome = runner.run_experiment(exp, out=args.out, seed=args.seed, progress=progress)
+        outcome = runner.run_experiment(exp, out=args.out, seed=args.seed, progress=progress,
+                                        scheduler=args.scheduler,
+                                        same_host_ok=args.same_host_ok)
     for note in outcome.notes:
         print(note)
     return finish(outcome, analysis=not args.no_analysis)

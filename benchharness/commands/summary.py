@@ -20,6 +20,17 @@ def print_summary(res, outcome) -> None:
     print(f"\n{exp.name}: {counts.get('ok', 0)} ok, {counts.get('failed', 0)} failed, "
           f"{counts.get('timeout', 0)} timed out, {counts.get('warmup', 0)} warm-up; "
           f"seed {outcome.seed}{seed_note}")
+    reasons: dict[str, int] = {}
+    for r in records:
+        if r.get("status") in ("failed", "timeout") and r.get("message"):
+            reasons[r["message"]] = reasons.get(r["message"], 0) + 1
+    if reasons:
+        print("why runs did not succeed:")
+        for msg, n in sorted(reasons.items(), key=lambda kv: -kv[1])[:5]:
+            print(f"  {n} run{'s' if n != 1 else ''}: {msg[:300]}")
+        if len(reasons) > 5:
+            print(f"  ... and {len(reasons) - 5} other messages (see the message column of "
+                  "runs.csv)")
     header = [*exp.factor_names, "runs ok", "median wall", "IQR", "failed", "timed out"]
     table = [[*(str(r[f]) for f in exp.factor_names), str(r["n"]), format_seconds(r["median"]),
               format_seconds(r["iqr"]), str(r["failed"]), str(r["timeout"])] for r in rows]

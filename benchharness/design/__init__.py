@@ -8,8 +8,21 @@ returns a `benchharness.design.plan.Plan`.
 from __future__ import annotations
 
 
-def build_plan(exp, seed=None):
-    """The plan of an experiment according to its design (full factorial by default)."""
-    from benchharness.design.plan import make_plan
+def build_plan(exp, seed=None, **kwargs):
+    """The plan of an experiment according to its design (full factorial by default).
 
-    return make_plan(exp, seed=seed)
+    A ``design:`` section (`benchharness.design.spec`) replaces the full
+    factorial by a fraction and/or splits each replicate into confounded blocks;
+    its facts (resolution, defining relation, aliases, confounded effects) go
+    into ``Plan.info``. ``kwargs`` pass through to `make_plan` (adaptive
+    replication appends replicates with ``replicates=``/``first_replicate=``/
+    ``first_run=``).
+    """
+    from benchharness.design.plan import make_plan
+    from benchharness.design.spec import design_of
+
+    choice = design_of(exp)
+    info = dict(choice.info())
+    info.update(kwargs.pop("info", None) or {})
+    return make_plan(exp, seed=seed, cells=choice.cells(),
+                     blocks_of_cell=choice.blocks_of_cell(), info=info, **kwargs)

@@ -1,0 +1,428 @@
+"""The analysis stage: a runs table analysed as a designed factorial experiment.
+
+``analyze(data, ...) -> Analysis`` chains the modules of this package, each
+with one job:
+
+* ``prepare``      — load, keep ``ok`` runs, count failures per cell, code levels;
+* ``cells``        — per-cell sufficient statistics in one O(N) pass;
+* ``transform``    — Box-Cox profile likelihood (Box & Cox 1964) and the scale rule;
+* ``model``        — exact least-squares fit from cell statistics, Type II / III SS;
+* ``diagnostics``  — normality, equal variances, outliers, drift, with verdicts;
+* ``effects``      — estimated marginal means, level ratios, partial η², ω²;
+* ``comparisons``  — pairwise (Holm / Bonferroni), Tukey HSD, simple effects, declared;
+* ``art``          — aligned rank transform cross-check (Wobbrock et al. 2011);
+* ``render_text``  — plain terminal layout (``format_analysis``).
+
+``Analysis.to_dict()`` is exactly the content of ``analysis.json``.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from benchharness.errors import UsageError
+
+__all__ = ["analyze", "Analysis", "analyze_results_folder", "write_analysis_json",
+           "format_analysis"]
+
+#: above this many analysed rows the rank-based cross-check runs only on request.
+ART_AUTO_MAX_ROWS = 50_000
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """Result of `analyze`. Plain data; `to_dict` gives analysis.json."""
+
+    response: str
+    factors: tuple[str, ...]
+    levels: dict
+    block: str | None
+    model: dict
+    transform: dict
+    anova_rows: tuple[dict, ...]
+    means: tuple[dict, ...]
+    diagnostics: dict
+    effects: tuple[dict, ...]
+    comparisons: tuple[dict, ...]
+    failures: dict
+    art: dict | None
+    notes: tuple[str, ...]
+    counts: dict
+    # arrays for figures (not serialised): per analysed row, in input order
+    residuals: Any = field(default=None, repr=False, compare=False)
+    fitted: Any = field(default=None, repr=False, compare=False)
+    studentized: Any = field(default=None, repr=False, compare=False)
+    position: Any = field(default=None, repr=False, compare=False)
+    run: Any = field(default=None, repr=False, compare=False)
+    fit: Any = field(default=None, repr=False, compare=False)
+
+    @property
+    def anova(self):
+        """The ANOVA table as a DataFrame (one row per term, then Residual)."""
+        import pandas as pd
+
+        cols = ["term", "df", "sum_sq", "mean_sq", "F", "p", "partial_eta_sq", "omega_sq"]
+        return pd.DataFrame([{k: r.get(k) for k in cols} for r in self.anova_rows], columns=cols)
+
+    def to_dict(self) -> dict:
+        return _clean({
+            "response": self.response,
+            "factors": [{"name": f, "levels": list(self.levels[f])} for f in self.factors],
+            "block": self.block,
+            "model": self.model,
+            "counts": self.counts,
+            "transform": self.transform,
+            "anova": list(self.anova_rows),
+            "means": list(self.means),
+            "diagnostics": self.diagnostics,
+            "effects": list(self.effects),
+            "comparisons": list(self.comparisons),
+            "failures": self.failures,
+            "art": self.art,
+            "notes": list(self.notes),
+        })
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), indent=2, ensure_ascii=False, allow_nan=False)
+
+
+def _clean(x):
+    """JSON-safe copy: numpy scalars to Python, NaN/inf to None, tuples to lists."""
+    if isinstance(x, dict):
+        return {str(k): _clean(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_clean(v) for v in x]
+    if isinstance(x, np.ndarray):
+        return [_clean(v) for v in x.tolist()]
+    if isinstance(x, (bool, np.bool_)):
+        return bool(x)
+    if isinstance(x, (int, np.integer)):
+        return int(x)
+    if isinstance(x, (float, np.floating)):
+        x = float(x)
+        return x if math.isfinite(x) else None
+    return x
+
+
+def _parse_reference(reference, names, levels):
+    """{factor: level} | ["F=L", ...] | "F=L" -> {factor index: level index}."""
+    refs = {i: 0 for i in range(len(names))}
+    if reference is None:
+        return refs
+    if isinstance(reference, str):
+        reference = [reference]
+    if isinstance(reference, (list, tuple)):
+        pairs = {}
+        for item in reference:
+            if "=" not in str(item):
+                raise UsageError(f"reference {item!r}: write FACTOR=LEVEL")
+            k, v = str(item).split("=", 1)
+            pairs[k] = v
+        reference = pairs
+    for k, v in dict(reference).items():
+        if k not in names:
+            raise UsageError(f"reference names {k!r}, which is not a factor of the analysis "
+                             f"({', '.join(names)})")
+        i = names.index(k)
+        if str(v) not in levels[i]:
+            raise UsageError(f"reference level {v!r} is not a level of {k!r} "
+                             f"(levels: {', '.join(levels[i])})")
+        refs[i] = levels[i].index(str(v))
+    return refs
+
+
+def _declared_from_experiment(exp):
+    sections = getattr(exp, "sections", None) or {}
+    node = sections.get("compare") if hasattr(sections, "get") else None
+    if node is None:
+        return None
+    try:
+        from benchharness.yamlnodes import to_plain  # type: ignore
+
+        return to_plain(node)
+    except ImportError:
+        import yaml
+
+        return yaml.safe_load(yaml.serialize(node))
+
+
+def analyze(data, *args, **kwargs) -> "Analysis":
+    """Analyse a runs table (DataFrame, tidy CSV path or results folder); see `_analyze`.
+
+    Linear algebra here works on small matrices (cells × parameters), where
+    multi-threaded BLAS only adds overhead on a busy machine, so BLAS is held to
+    one thread for the call when threadpoolctl is available.
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # optional: only speed depends on it
+        return _analyze(data, *args, **kwargs)
+    with threadpool_limits(1):
+        return _analyze(data, *args, **kwargs)
+
+
+def _analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
+            model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
+            adjust: str = "holm", compare=None, art="auto") -> Analysis:
+    """Analyse a runs table (DataFrame, tidy CSV path or results folder).
+
+    ``block``: a column name; None (or "auto") for the default (``block`` for
+    blocked experiments, ``host`` when it has more than one value); False for none.
+    ``reference``: {factor: level} or ["factor=level", ...] for the ratios
+    (default: the first level). ``compare``: declared comparisons (see
+    ``comparisons.parse_declared``); default: the experiment's ``compare:``.
+    ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
+    """
+    from scipy import stats
+
+    from benchharness.analysis import comparisons as cmp
+    from benchharness.analysis import diagnostics as dg
+    from benchharness.analysis import effects as ef
+    from benchharness.analysis import transform as tr
+    from benchharness.analysis.cells import index_cells, moments
+    from benchharness.analysis.model import design, fit_model, model_terms, _basis
+    from benchharness.analysis.prepare import prepare
+
+    if not (isinstance(alpha, (int, float)) and 0 < alpha < 1):
+        raise UsageError(f"alpha must be between 0 and 1, not {alpha!r}")
+    try:
+        ss_type = int(ss_type)
+    except (TypeError, ValueError):
+        raise UsageError(f"sums of squares type {ss_type!r}: use 2 or 3") from None
+    if ss_type not in (2, 3):
+        raise UsageError(f"sums of squares type {ss_type!r}: use 2 or 3")
+    if adjust not in cmp.ADJUST:
+        raise UsageError(f"adjustment {adjust!r} is not one of {', '.join(cmp.ADJUST)}")
+    if transform not in tr.TRANSFORMS:
+        raise UsageError(f"transform {transform!r} is not one of {', '.join(tr.TRANSFORMS)}")
+    if art not in ("auto", True, False):
+        raise UsageError("art must be 'auto', True or False")
+
+    prep = prepare(data, response=response, factors=factors, block=block)
+    notes = list(prep.notes)
+    fnames = list(prep.factors)
+    flevels = list(prep.levels)
+    names, levels, codes = list(fnames), list(flevels), list(prep.codes)
+    block_index = None
+    if prep.block is not None:
+        block_index = len(names)
+        names.append(prep.block)
+        levels.append(prep.block_levels)
+        codes.append(prep.block_codes)
+    sizes = [len(lv) for lv in levels]
+    factor_idx = list(range(len(fnames)))
+    terms = model_terms(names, model, block_index)
+    cells = index_cells(codes, sizes)
+    fcells = cells if block_index is None else index_cells(codes[:block_index], sizes[:block_index])
+    y = prep.y
+    N = len(y)
+    n_cells = np.bincount(cells.row_cell, minlength=cells.count).astype(float)
+
+    # ---- scale -----------------------------------------------------------------------------
+    positive = bool(np.all(y > 0))
+    profile = None
+    why = ""
+    if transform in ("auto", "boxcox") and positive:
+        X, _ = design(cells.levels, terms, sizes)
+        B = _basis(X * np.sqrt(n_cells)[:, None])
+        df_res = N - B.shape[1]
+        if df_res <= 0:
+            why = "no residual degrees of freedom"
+        elif float(np.ptp(y)) == 0:
+            why = "all responses are equal"
+        else:
+            prof = tr.BoxCoxProfile(y, cells.row_cell, n_cells,
+                                    None if B.shape[1] >= cells.count else B)
+            profile = prof.profile(alpha=0.05)
+    choice = tr.choose(transform, profile, positive, why)
+    tdict = {"name": choice.name, "lambda": choice.lam,
+             "lambda_hat": profile.lam_hat if profile else None,
+             "lambda_ci": list(profile.ci) if profile else None,
+             "lambda_ci_open": list(profile.ci_open) if profile else None,
+             "reason": choice.reason,
+             "ratios": "exact (log scale)" if choice.name == "log" else
+                       "approximate (delta method on back-transformed means)",
+             "profile": ({"lambda": list(profile.grid), "loglik": list(profile.loglik)}
+                         if profile else None)}
+
+    # ---- model -----------------------------------------------------------------------------
+    z = tr.forward(y, choice)
+    mom = moments(cells.row_cell, z, cells.count, n=n_cells)
+    fit = fit_model(cells, mom, terms, ss_type)
+    notes += fit.notes
+    df_res = fit.df_resid
+    mse = fit.mse
+    grand = float((mom.n * mom.mean).sum() / N)
+    ss_total = float(mom.ss_within.sum() + (mom.n * (mom.mean - grand) ** 2).sum())
+    anova_rows, anova_p = [], {}
+    for row in fit.table:
+        ms = row.sum_sq / row.df if row.df > 0 else float("nan")
+        F = p = None
+        if df_res > 0 and row.df > 0 and mse > 0 and math.isfinite(ms):
+            F = ms / mse
+            p = float(stats.f.sf(F, row.df, df_res))
+            anova_p[row.term] = p
+        peta, omega = ef.effect_sizes(row.sum_sq, row.df, fit.rss, ss_total, mse)
+        anova_rows.append({"term": row.term, "df": row.df, "sum_sq": row.sum_sq,
+                           "mean_sq": ms, "F": F, "p": p, "partial_eta_sq": peta,
+                           "omega_sq": omega, "kind": "block" if row.is_block else "effect",
+                           "df_full": row.df_full, "note": row.note})
+    anova_rows.append({"term": "Residual", "df": df_res, "sum_sq": fit.rss,
+                       "mean_sq": mse if df_res > 0 else None, "F": None, "p": None,
+                       "partial_eta_sq": None, "omega_sq": None, "kind": "residual"})
+    for row in fit.table:
+        if row.note:
+            notes.append(f"{row.term}: {row.note}")
+    expected_cells = int(np.prod([sizes[f] for f in factor_idx]))
+    if fcells.count < expected_cells:
+        missing = _missing_cells(fcells, sizes[: len(fnames)], fnames, flevels)
+        shown = "; ".join(", ".join(f"{k}={v}" for k, v in m.items()) for m in missing[:5])
+        more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
+        notes.append(f"{len(missing)} of {expected_cells} cells have no ok runs ({shown}{more}); "
+                     "effects that need them are inestimable and their means are left out")
+    if df_res <= 0:
+        notes.append("no residual degrees of freedom (one run per cell for this model): sums of "
+                     "squares are shown without F tests, intervals or diagnostics; add replicates "
+                     "or fit fewer interactions (--model main or --model N)")
+
+    # ---- residuals and diagnostics -------------------------------------------------------
+    resid = z - fit.fitted[cells.row_cell]
+    lev_rows = fit.leverage[cells.row_cell]
+    diagnostics: dict[str, Any] = {}
+    studentized = None
+    if df_res > 0:
+        scale = np.sqrt(np.clip(1.0 - lev_rows, 0.0, None))
+        use = scale > 1e-8
+        diagnostics["normality"] = dg.normality(resid[use] / scale[use], alpha)
+        diagnostics["equal_variance"] = dg.brown_forsythe(fcells.row_cell, resid, fcells.count,
+                                                          alpha)
+        out = dg.outliers(resid, lev_rows, fit.rss, df_res, prep.run, alpha)
+        studentized = out.pop("studentized")
+        diagnostics["outliers"] = out["runs"]
+        diagnostics["outlier_check"] = {k: v for k, v in out.items() if k != "runs"}
+        if choice.name == "log":
+            pct_unit = 100.0
+        elif choice.name == "none":
+            mean_y = float(np.mean(y))
+            pct_unit = 100.0 / mean_y if mean_y else float("nan")
+        else:
+            pct_unit = 100.0 * math.exp(-choice.lam * float(np.mean(np.log(y))))
+        diagnostics["drift"] = dg.drift(resid, prep.position, pct_unit, alpha)
+    else:
+        skipped = {"verdict": "not checked: no residual degrees of freedom"}
+        diagnostics.update(normality=dict(skipped, test=None, statistic=None, p=None),
+                           equal_variance=dict(skipped, test=None, statistic=None, p=None),
+                           outliers=[], drift=dict(skipped, slope_per_100_runs=None, p=None))
+    fmom = moments(fcells.row_cell, z, fcells.count)
+    diagnostics["small_cells"] = dg.small_cells(
+        fmom.n, fmom.ss_within, lambda c: {fnames[j]: flevels[j][fcells.levels[c, j]]
+                                           for j in range(len(fnames))})
+    assumptions_ok = (diagnostics["normality"].get("ok", True)
+                      and diagnostics["equal_variance"].get("ok", True))
+    diagnostics["assumptions_ok"] = bool(assumptions_ok)
+
+    # ---- rank-based cross-check ----------------------------------------------------------
+    art_result = None
+    run_art = (art is True) or (art == "auto" and not assumptions_ok and N <= ART_AUTO_MAX_ROWS)
+    if run_art and df_res > 0:
+        rows = ef_art(codes[: len(fnames)], sizes[: len(fnames)], fnames, y, terms, ss_type, alpha,
+                      anova_p)
+        art_result = {"reason": "requested" if art is True else
+                      "assumptions fail after the transform", "terms": rows}
+        disagree = [r["term"] for r in rows if r["agrees"] is False]
+        if disagree:
+            notes.append("the rank-based cross-check disagrees for " + ", ".join(disagree)
+                         + "; treat those F tests with caution")
+    elif art == "auto" and not assumptions_ok and N > ART_AUTO_MAX_ROWS:
+        notes.append(f"assumptions fail, but with more than {ART_AUTO_MAX_ROWS:,} rows the "
+                     "rank-based cross-check runs only on request (--art)")
+
+    # ---- effects, means, comparisons -----------------------------------------------------
+    refs = _parse_reference(reference, fnames, flevels)
+    means = ef.marginal_means(fit, names, levels, choice, alpha)
+    effects = ef.level_ratios(fit, names, levels, factor_idx, refs, choice, alpha)
+    comps = []
+    comps += cmp.pairwise(fit, names, levels, factor_idx, choice, alpha, adjust)
+    comps += cmp.tukey(fit, names, levels, factor_idx, choice, alpha)
+    comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha)
+    if compare is None:
+        compare = _declared_from_experiment(prep.experiment)
+    items = cmp.parse_declared(compare, fnames, flevels)
+    comps += cmp.declared(fit, names, levels, items, choice, alpha, adjust)
+
+    # ---- failures ------------------------------------------------------------------------
+    sc = prep.status_counts
+    flagged = [c for c in sc if c["flag"]]
+    lost = sum(c["runs"] - c["ok"] for c in sc)
+    failures = {
+        "runs": sum(c["runs"] for c in sc), "not_ok": lost,
+        "cells": [c for c in sc if c["runs"] > c["ok"]],
+        "cells_with_timeouts": [c["levels"] for c in flagged],
+        "verdict": ("every run finished" if lost == 0 else
+                    f"{lost} run(s) did not finish; means of cells with timeouts are biased "
+                    "low (only the runs that finished are analysed)" if flagged else
+                    f"{lost} run(s) failed; the failure rate per cell is listed"),
+    }
+    if flagged:
+        notes.append(f"{len(flagged)} cell(s) had timeouts: their means describe only the runs "
+                     "that finished and so look faster than the configuration is")
+
+    counts = {"rows": N, "cells": fcells.count, "cells_expected": expected_cells,
+              "model_cells": cells.count, "df_resid": df_res, "level_order": prep.order_source}
+    model_dict = {"spec": str(model), "terms": [t.name for t in terms], "ss_type": fit.ss_type,
+                  "ss_type_requested": ss_type, "alpha": alpha, "adjust": adjust,
+                  "rank": fit.rank, "mse": mse if df_res > 0 else None,
+                  "references": {fnames[i]: flevels[i][j] for i, j in refs.items()}}
+    return Analysis(
+        response=prep.response, factors=tuple(fnames),
+        levels={f: list(lv) for f, lv in zip(fnames, flevels)}, block=prep.block,
+        model=model_dict, transform=tdict, anova_rows=tuple(anova_rows), means=tuple(means),
+        diagnostics=diagnostics, effects=tuple(effects), comparisons=tuple(comps),
+        failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)), counts=counts,
+        residuals=resid, fitted=fit.fitted[cells.row_cell], studentized=studentized,
+        position=prep.position, run=prep.run, fit=fit)
+
+
+def ef_art(codes, sizes, names, y, terms, ss_type, alpha, anova_p):
+    from benchharness.analysis.art import art_anova
+
+    return art_anova(codes, sizes, names, y, terms, ss_type, alpha, anova_p)
+
+
+def _missing_cells(fcells, sizes, names, levels):
+    from itertools import product
+
+    present = {tuple(r) for r in fcells.levels.tolist()}
+    out = []
+    for combo in product(*[range(k) for k in sizes]):
+        if combo not in present:
+            out.append({names[j]: levels[j][c] for j, c in enumerate(combo)})
+            if len(out) > 1000:
+                break
+    return out
+
+
+def analyze_results_folder(folder, **kwargs) -> Analysis:
+    """Analyse a results folder with its experiment's defaults (used by ``benchharness run``)."""
+    return analyze(Path(folder), **kwargs)
+
+
+def write_analysis_json(analysis: Analysis, path) -> Path:
+    """Write ``analysis.json`` (never over an existing file of another name: caller's choice)."""
+    path = Path(path)
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(analysis.to_json() + "\n", encoding="utf-8")
+    tmp.replace(path)
+    return path
+
+
+def format_analysis(analysis: Analysis) -> str:
+    from benchharness.analysis.render_text import format_analysis as _fmt
+
+    return _fmt(analysis)

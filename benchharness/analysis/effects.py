@@ -1,0 +1,197 @@
+"""Estimated marginal means, level ratios and effect sizes.
+
+Owns: estimated marginal means (least-squares means; Searle, Speed & Milliken
+1980, *The American Statistician* 34:216) of every level and interaction cell,
+i.e. the model's cell means averaged with equal weight over the levels of the
+other factors and the blocks; their confidence intervals on the analysis
+scale back-transformed to the original units (geometric means on the log
+scale); the ratio of each level to a reference level (exact on the log scale,
+delta method otherwise, flagged approximate); and per-term effect sizes:
+partial η² = SS/(SS + SS_error) and ω² = (SS − df·MSE)/(SS_total + MSE)
+(Hays 1963; Olejnik & Algina 2003), with ω² floored at 0.
+
+With sum-to-zero coding each contrast column averages to zero over its
+levels, so the averaging row of a marginal mean keeps only the intercept and
+the columns of terms contained in the margin.
+"""
+
+from __future__ import annotations
+
+import math
+from itertools import product
+
+import numpy as np
+
+from benchharness.analysis.model import Fit, Term, sum_contrasts
+from benchharness.analysis import transform as tr
+
+
+def margin_rows(fit: Fit, factors: tuple[int, ...]):
+    """Averaging rows L (G, p) for every combination of the levels of ``factors``."""
+    combos = np.array(list(product(*[range(fit.sizes[f]) for f in factors])), dtype=np.int64)
+    G = len(combos)
+    L = np.zeros((G, fit.X.shape[1]))
+    L[:, 0] = 1.0
+    fs = set(factors)
+    pos = {f: j for j, f in enumerate(factors)}
+    for t in fit.terms:
+        if not set(t.factors) <= fs:
+            continue
+        m = np.ones((G, 1))
+        for f in t.factors:
+            c = sum_contrasts(fit.sizes[f])[combos[:, pos[f]]]
+            m = (m[:, :, None] * c[:, None, :]).reshape(G, -1)
+        L[:, fit.slices[t.name]] = m
+    return combos, L
+
+
+def margin_counts(fit: Fit, factors, combos) -> np.ndarray:
+    """Number of observations behind each combination of ``factors``."""
+    lv = fit.cells.levels[:, list(factors)]
+    sizes = [fit.sizes[f] for f in factors]
+    key = np.zeros(len(lv), dtype=np.int64)
+    for j, k in enumerate(sizes):
+        key = key * k + lv[:, j]
+    total = np.bincount(key, weights=fit.moments.n, minlength=int(np.prod(sizes)))
+    ckey = np.zeros(len(combos), dtype=np.int64)
+    for j, k in enumerate(sizes):
+        ckey = ckey * k + combos[:, j]
+    return total[ckey]
+
+
+def linear_estimates(fit: Fit, L: np.ndarray):
+    """Estimates, standard errors (NaN without residual df) and estimability of rows of L."""
+    est = L @ fit.beta
+    var = np.einsum("ij,jk,ik->i", L, fit.cov_unscaled, L) * fit.mse
+    se = np.sqrt(np.maximum(var, 0.0))
+    ok = fit.estimable(L)
+    est = np.where(ok, est, np.nan)
+    se = np.where(ok, se, np.nan)
+    return est, se, ok
+
+
+def t_quantile(fit: Fit, alpha: float) -> float:
+    from scipy import stats
+
+    if fit.df_resid <= 0:
+        return float("nan")
+    return float(stats.t.ppf(1 - alpha / 2, fit.df_resid))
+
+
+def _num(x):
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def marginal_means(fit: Fit, names, levels, choice, alpha: float, terms=None) -> list[dict]:
+    """`means` entries for every (non-block) term of the model."""
+    q = t_quantile(fit, alpha)
+    out = []
+    for t in (terms or fit.terms):
+        if t.is_block:
+            continue
+        combos, L = margin_rows(fit, t.factors)
+        est, se, ok = linear_estimates(fit, L)
+        n = margin_counts(fit, t.factors, combos)
+        mean = tr.inverse(est, choice)
+        lo = tr.inverse(est - q * se, choice)
+        hi = tr.inverse(est + q * se, choice)
+        for g, combo in enumerate(combos):
+            out.append({
+                "term": t.name,
+                "levels": {names[f]: levels[f][combo[j]] for j, f in enumerate(t.factors)},
+                "mean": _num(mean[g]), "lower": _num(lo[g]), "upper": _num(hi[g]),
+                "n": int(n[g]),
+                "estimate": _num(est[g]), "se": _num(se[g]),   # analysis scale
+                "estimable": bool(ok[g]),
+            })
+    return out
+
+
+def contrast_result(fit: Fit, la: np.ndarray, lb: np.ndarray, choice, q: float) -> dict:
+    """Ratio a/b (and difference for no transform) with an interval using quantile ``q``."""
+    est, se, ok = linear_estimates(fit, np.vstack([la - lb, la, lb]))
+    d, sd = est[0], se[0]
+    out = {"estimate": _num(d), "se": _num(sd), "estimable": bool(ok[0])}
+    if not ok[0]:
+        out.update(ratio=None, lower=None, upper=None)
+        return out
+    if choice.name == "log":
+        out.update(ratio=_num(math.exp(d)), lower=_num(math.exp(d - q * sd)),
+                   upper=_num(math.exp(d + q * sd)), approximate=False)
+        return out
+    # original or Box-Cox scale: back-transformed means, delta-method interval for the ratio
+    La = np.vstack([la, lb])
+    cov = (La @ fit.cov_unscaled @ La.T) * fit.mse
+    ea, eb = est[1], est[2]
+    a, b = float(tr.inverse(ea, choice)), float(tr.inverse(eb, choice))
+    ga, gb = float(tr.derivative_inverse(ea, choice)), float(tr.derivative_inverse(eb, choice))
+    ratio = a / b if b else float("nan")
+    if a > 0 and b > 0:
+        v = (ga / a) ** 2 * cov[0, 0] + (gb / b) ** 2 * cov[1, 1] - 2 * ga * gb / (a * b) * cov[0, 1]
+        s = math.sqrt(max(v, 0.0))
+        lo, hi = ratio * math.exp(-q * s), ratio * math.exp(q * s)
+    else:
+        v = ratio**2 * ((ga / a) ** 2 * cov[0, 0] + (gb / b) ** 2 * cov[1, 1]
+                        - 2 * ga * gb / (a * b) * cov[0, 1]) if a and b else float("nan")
+        s = math.sqrt(max(v, 0.0)) if math.isfinite(v) else float("nan")
+        lo, hi = ratio - q * s, ratio + q * s
+    out.update(ratio=_num(ratio), lower=_num(lo), upper=_num(hi), approximate=True)
+    if choice.name == "none":
+        out.update(difference=_num(d), difference_lower=_num(d - q * sd),
+                   difference_upper=_num(d + q * sd))
+    return out
+
+
+def level_ratios(fit: Fit, names, levels, factor_idx, references, choice, alpha) -> list[dict]:
+    """`effects`: each level of each factor against its reference level."""
+    q = t_quantile(fit, alpha)
+    out = []
+    for f in factor_idx:
+        combos, L = margin_rows(fit, (f,))
+        ref = references[f]
+        for j in range(fit.sizes[f]):
+            if j == ref:
+                continue
+            r = contrast_result(fit, L[j], L[ref], choice, q)
+            entry = {"factor": names[f], "level": levels[f][j], "reference": levels[f][ref],
+                     "ratio": r["ratio"], "lower": r["lower"], "upper": r["upper"]}
+            for k in ("difference", "difference_lower", "difference_upper", "approximate"):
+                if k in r:
+                    entry[k] = r[k]
+            entry["estimable"] = r["estimable"]
+            entry["wording"] = ratio_wording(entry, names[f])
+            out.append(entry)
+    return out
+
+
+def ratio_wording(e: dict, factor: str, level_of_confidence: str = "95%") -> str:
+    """One plain sentence for a level ratio, e.g. ``codec=lzma is 2.31× codec=zlib (131% higher ...)``."""
+    r, lo, hi = e["ratio"], e["lower"], e["upper"]
+    a, b = f"{factor}={e['level']}", f"{factor}={e['reference']}"
+    if r is None:
+        return f"{a} cannot be compared with {b}: the cells needed are empty"
+    about = "about " if e.get("approximate") else ""
+    pct = (r - 1.0) * 100.0
+    change = f"{abs(pct):.3g}% {'higher' if pct > 0 else 'lower'}" if pct else "the same"
+    text = f"{a} is {about}{r:.3g}× {b} ({change}"
+    if lo is None or hi is None:
+        return text + "; no interval without residual degrees of freedom)"
+    text += f"; {level_of_confidence} interval {lo:.3g}× to {hi:.3g}×)"
+    if lo <= 1.0 <= hi:
+        text += ": not distinguishable"
+    return text
+
+
+def effect_sizes(ss: float, df: int, ss_error: float, ss_total: float, mse: float):
+    """(partial η², ω²) of one term; None where undefined."""
+    if not math.isfinite(ss):
+        return None, None
+    peta = ss / (ss + ss_error) if (ss + ss_error) > 0 else None
+    if math.isfinite(mse) and (ss_total + mse) > 0:
+        omega = max((ss - df * mse) / (ss_total + mse), 0.0)
+    else:
+        omega = None
+    return peta, omega

@@ -1,0 +1,286 @@
+"""Analysing a two-level fraction: estimable effects with their aliases, Lenth, half-normal.
+
+In a 2^(k-p) fraction only 2^(k-p) - 1 contrasts can be estimated; each
+estimates a whole alias chain (``A (+ BCD)`` estimates A + BCD). We fit, by
+least squares on the ±1 coding (first listed level -1), one column per alias
+chain, named by its lowest-order member (Box, Hunter & Hunter, *Statistics for
+Experimenters*, ch. 6). An effect is the difference between the mean response
+at +1 and at -1 (twice the regression coefficient); on the log scale (the
+default for times) exp(effect) is the ratio of the +1 level to the -1 level.
+
+* Replicated designs: t tests and confidence intervals from the residual
+  (pure error) mean square; the result equals ordinary least squares on the
+  same columns (checked against statsmodels in the tests).
+* Unreplicated designs (no residual degrees of freedom): Lenth's (1989)
+  pseudo standard error ``PSE = 1.5 * median{|c| : |c| < 2.5 s0}``,
+  ``s0 = 1.5 * median |c|``, with margin of error ``ME = t(0.975; m/3) * PSE``
+  and simultaneous margin ``SME = t(gamma; m/3) * PSE``,
+  ``gamma = (1 + 0.95^(1/m)) / 2``; effects beyond ME are flagged ``likely``,
+  beyond SME ``active``.
+* Half-normal plot data (Daniel 1959): ordered |effect| against the
+  half-normal quantiles ``Phi^-1(0.5 + 0.5 (i - 0.5) / m)``.
+
+A block column with more than one value enters the model as block indicators;
+chains confounded with blocks are then reported, not estimated.
+
+Entry points: `analyze_fraction(runs, design, ...) -> dict` (JSON-ready),
+`lenth(effects)`, `half_normal_points(effects, labels)`,
+`half_normal_figure(points, path)` (matplotlib, imported lazily).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Sequence
+
+from benchharness.design import words as W
+from benchharness.errors import DataError
+
+
+def lenth(effects: Sequence[float], level: float = 0.95) -> dict:
+    """Lenth's (1989) pseudo standard error, margin of error and simultaneous margin."""
+    import numpy as np
+    from scipy import stats
+
+    c = np.abs(np.asarray(effects, dtype=float))
+    m = len(c)
+    if m < 2:
+        raise DataError("Lenth's method needs at least two effects")
+    s0 = 1.5 * float(np.median(c))
+    trimmed = c[c < 2.5 * s0]
+    pse = 1.5 * float(np.median(trimmed)) if len(trimmed) else s0
+    d = m / 3.0
+    me = float(stats.t.ppf(0.5 + level / 2, d)) * pse
+    gamma = (1 + level ** (1.0 / m)) / 2
+    sme = float(stats.t.ppf(gamma, d)) * pse
+    return {"s0": s0, "pse": pse, "df": d, "me": me, "sme": sme, "level": level}
+
+
+def half_normal_points(effects: Sequence[float], labels: Sequence[str]) -> list[dict]:
+    """Daniel's (1959) half-normal plot: |effects| ascending with their quantiles."""
+    from scipy import stats
+
+    m = len(effects)
+    order = sorted(range(m), key=lambda i: abs(effects[i]))
+    out = []
+    for rank, i in enumerate(order, start=1):
+        q = float(stats.norm.ppf(0.5 + 0.5 * (rank - 0.5) / m))
+        out.append({"label": labels[i], "abs_effect": abs(float(effects[i])), "quantile": q})
+    return out
+
+
+def half_normal_figure(points: Sequence[dict], path, lenth_margins: dict | None = None,
+                       title: str = "Half-normal plot of effects"):
+    """Save a half-normal plot (PNG/SVG by suffix); returns the path."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(5.5, 4.2))
+    xs = [p["abs_effect"] for p in points]
+    ys = [p["quantile"] for p in points]
+    ax.scatter(xs, ys, s=18, color="#2b6cb0")
+    for p in points[-min(6, len(points)):]:
+        ax.annotate(p["label"], (p["abs_effect"], p["quantile"]), fontsize=8,
+                    xytext=(4, 0), textcoords="offset points", va="center")
+    if lenth_margins:
+        for key, style in (("me", "--"), ("sme", ":")):
+            if lenth_margins.get(key):
+                ax.axvline(lenth_margins[key], color="#c53030", linestyle=style, linewidth=1,
+                           label=f"Lenth {key.upper()}")
+        ax.legend(fontsize=8, loc="lower right")
+    ax.set_xlabel("|effect|")
+    ax.set_ylabel("half-normal quantile")
+    ax.set_title(title, fontsize=10)
+    fig.tight_layout()
+    fig.savefig(path)
+    plt.close(fig)
+    return path
+
+
+def chain_label(rep: int, aliases, shown_order: int = 3) -> str:
+    """``A (+ BCD)``; long chains show aliases up to three factors and ``+ ...``."""
+    visible = [(m, s) for m, s in aliases if W.order(m) > 0]
+    if len(visible) > 3:
+        shown = [(m, s) for m, s in visible if W.order(m) <= shown_order]
+        more = len(shown) < len(visible)
+    else:
+        shown, more = visible, False
+    if not shown and not more:
+        return W.letters(rep)
+    parts = [("- " if s < 0 else "+ ") + W.letters(m) for m, s in shown]
+    if more:
+        parts.append("+ ...")
+    return f"{W.letters(rep)} (" + " ".join(parts) + ")"
+
+
+def _coded(runs, design):
+    import numpy as np
+
+    names = design.factor_names
+    X = np.zeros((len(runs), design.k), dtype=float)
+    for i, name in enumerate(names):
+        if name not in runs.columns:
+            raise DataError(f"the runs have no column for factor {name!r}")
+        lo, hi = design.level_labels[i]
+        col = runs[name].astype(str).to_numpy()
+        bad = [v for v in col if v not in (lo, hi)]
+        if bad:
+            raise DataError(f"factor {name!r} has the level {bad[0]!r}, which is neither "
+                            f"{lo!r} (-1) nor {hi!r} (+1) of the design")
+        X[:, i] = np.where(col == hi, 1.0, -1.0)
+    cells = set(design.coded_cells())
+    for row in X.astype(int):
+        if tuple(int(v) for v in row) not in cells:
+            lab = ", ".join(f"{n}={design.level_labels[j][0 if v < 0 else 1]}"
+                            for j, (n, v) in enumerate(zip(names, row)))
+            raise DataError(f"a run ({lab}) is not a cell of the fraction "
+                            f"(defining relation {design.defining_relation_text()})")
+    return X
+
+
+def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
+                     alpha: float = 0.05, block_column: str = "block") -> dict:
+    """Estimate every estimable effect of a two-level design from a runs table.
+
+    ``design`` is a `benchharness.design.fractional.FractionalDesign` (p = 0
+    for a full 2^k). Only ``ok`` runs (when a ``status`` column exists) with a
+    finite response are used; ``log`` analyses ln(response) (needs > 0).
+    """
+    import numpy as np
+    from scipy import stats
+
+    df = runs
+    if "status" in df.columns:
+        df = df[df["status"] == "ok"]
+    if response not in df.columns:
+        raise DataError(f"the runs have no column {response!r}")
+    y = df[response].astype(float).to_numpy()
+    keep = np.isfinite(y) & ((y > 0) if log else True)
+    df = df[keep]
+    y = y[keep]
+    if len(df) == 0:
+        raise DataError(f"no successful runs with a usable {response}")
+    if log:
+        y = np.log(y)
+    X = _coded(df, design)
+    classes = design.estimable()
+    cols = []
+    for rep, _al in classes:
+        v = np.ones(len(df))
+        for pos in W.positions(rep):
+            v = v * X[:, pos]
+        cols.append(v)
+    E = np.column_stack(cols) if cols else np.zeros((len(df), 0))
+    parts = [np.ones((len(df), 1))]
+    block_values = []
+    if block_column in df.columns:
+        block_values = sorted(set(df[block_column].astype(str)))
+    if len(block_values) > 1:
+        b = df[block_column].astype(str).to_numpy()
+        parts.append(np.column_stack([(b == v).astype(float) for v in block_values[1:]]))
+    B = np.column_stack(parts)
+    # Chains in the span of the block indicators are confounded with blocks.
+    confounded = []
+    estimable_idx = []
+    for j in range(E.shape[1]):
+        coef, *_ = np.linalg.lstsq(B, E[:, j], rcond=None)
+        if np.allclose(B @ coef, E[:, j], atol=1e-9):
+            confounded.append(j)
+        else:
+            estimable_idx.append(j)
+    M = np.column_stack([B, E[:, estimable_idx]]) if estimable_idx else B
+    rank = np.linalg.matrix_rank(M)
+    if rank < M.shape[1]:
+        raise DataError("the runs do not cover the design's cells well enough to estimate every "
+                        "effect (some cells have no successful run)")
+    XtX_inv = np.linalg.inv(M.T @ M)
+    beta = XtX_inv @ M.T @ y
+    resid = y - M @ beta
+    df_resid = len(y) - M.shape[1]
+    nb = B.shape[1]
+    effects = [2.0 * float(beta[nb + i]) for i in range(len(estimable_idx))]
+    sigma = None
+    if df_resid > 0:
+        sigma = math.sqrt(float(resid @ resid) / df_resid)
+    lenth_info = None
+    if df_resid == 0 and len(effects) >= 2:
+        lenth_info = lenth(effects)
+    names = design.factor_names
+    out_effects = []
+    for i, j in enumerate(estimable_idx):
+        rep, al = classes[j]
+        e = effects[i]
+        row = {
+            "effect": W.letters(rep), "label": chain_label(rep, al), "term": W.term(rep, names),
+            "aliases": [("-" if s < 0 else "") + W.term(m, names) for m, s in al if m],
+            "order": W.order(rep), "estimate": e,
+        }
+        if sigma is not None:
+            se = 2.0 * sigma * math.sqrt(float(XtX_inv[nb + i, nb + i]))
+            t = e / se if se > 0 else math.inf
+            p = float(2 * stats.t.sf(abs(t), df_resid))
+            tq = float(stats.t.ppf(1 - alpha / 2, df_resid))
+            row.update({"se": se, "t": t, "p": p, "ci_low": e - tq * se, "ci_high": e + tq * se,
+                        "active": p < alpha})
+        elif lenth_info is not None:
+            row.update({"se": lenth_info["pse"],
+                        "t": e / lenth_info["pse"] if lenth_info["pse"] > 0 else math.inf,
+                        "ci_low": e - lenth_info["me"], "ci_high": e + lenth_info["me"],
+                        "likely": abs(e) > lenth_info["me"], "active": abs(e) > lenth_info["sme"]})
+        if log:
+            row["ratio"] = math.exp(e)
+            if "ci_low" in row:
+                row["ratio_low"] = math.exp(row["ci_low"])
+                row["ratio_high"] = math.exp(row["ci_high"])
+        out_effects.append(row)
+    labels = [r["label"] for r in out_effects]
+    return {
+        "response": response,
+        "scale": "log" if log else "none",
+        "design": f"2^({design.k}-{design.p})" if design.is_fraction else f"2^{design.k}",
+        "resolution": design.resolution,
+        "defining_relation": design.defining_words(),
+        "runs_used": int(len(y)),
+        "residual_df": int(df_resid),
+        "sigma": sigma,
+        "effect_definition": "mean at +1 minus mean at -1 (twice the coefficient)"
+                             + ("; ratio = exp(effect) of the +1 level to the -1 level"
+                                if log else ""),
+        "effects": out_effects,
+        "lenth": lenth_info,
+        "half_normal": half_normal_points(effects, labels) if effects else [],
+        "confounded_with_blocks": [chain_label(classes[j][0], classes[j][1])
+                                   for j in confounded],
+    }
+
+
+def format_fraction(result: dict) -> str:
+    """Plain-text table of `analyze_fraction` output."""
+    lines = [f"effects of the {result['design']} design on "
+             f"{'ln ' if result['scale'] == 'log' else ''}{result['response']} "
+             f"({result['runs_used']} runs, residual df {result['residual_df']})"]
+    rows = []
+    for e in result["effects"]:
+        ratio = f"x{e['ratio']:.4f}" if "ratio" in e else ""
+        flag = ""
+        if e.get("active"):
+            flag = "active"
+        elif e.get("likely"):
+            flag = "likely"
+        p = f"{e['p']:.3g}" if "p" in e else ""
+        rows.append([e["label"], f"{e['estimate']:+.4g}", ratio, p, flag])
+    header = ["effect", "estimate", "ratio", "p", ""]
+    widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h)
+              for i, h in enumerate(header)]
+    lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths)))
+    for r in rows:
+        lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)))
+    if result.get("lenth"):
+        ln = result["lenth"]
+        lines.append(f"Lenth: PSE {ln['pse']:.4g}, margin of error {ln['me']:.4g}, simultaneous "
+                     f"margin {ln['sme']:.4g} (df {ln['df']:.3g})")
+    if result.get("confounded_with_blocks"):
+        lines.append("confounded with blocks: " + ", ".join(result["confounded_with_blocks"]))
+    return "\n".join(lines)

@@ -1,0 +1,240 @@
+"""The fixed-effects linear model of a factorial experiment, fitted from cell statistics.
+
+Owns: the list of model terms (grand mean, main effects, interactions up to a
+chosen order, an additive block term), the design matrix over observed cells
+with sum-to-zero ("effect") coding built directly with numpy (never from a
+formula string), and the ANOVA sums of squares:
+
+* Type II: each term adjusted for every term that does not contain it
+  (Yates 1934; Langsrud 2003, *Statistics and Computing* 13:163).
+* Type III: each term adjusted for every other term, with sum-to-zero coding,
+  i.e. the hypotheses on unweighted marginal means (Searle, *Linear Models for
+  Unbalanced Data*, 1987, ch. 4).
+
+The weighted least-squares problem on cell means with weights = cell counts
+gives exactly the row-level fit; each sum of squares is the squared length of
+the projection of the weighted cell means on the part of a term's column space
+orthogonal to the terms it is adjusted for, computed from orthonormal bases
+(SVD) so that no large numbers are subtracted. Empty cells make some columns
+linearly dependent; the rank drop tells which effects lose degrees of freedom
+(inestimable effects), and Type III, which is then not uniquely defined, falls
+back to Type II with a note.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from itertools import combinations
+
+import numpy as np
+
+from benchharness.errors import UsageError
+from benchharness.analysis.cells import Cells, Moments
+
+
+@dataclass(frozen=True)
+class Term:
+    factors: tuple[int, ...]   # indices into the layout's factor list
+    name: str
+    is_block: bool = False
+
+
+def model_terms(names, model="full", block_index=None) -> list[Term]:
+    """Terms of the model ``full`` | ``main`` | N (interactions up to order N).
+
+    ``names`` are the layout's factor names (the block, if any, at
+    ``block_index``). The block enters additively, first; factor terms follow
+    by order, then in the listed factor order.
+    """
+    factor_idx = [i for i in range(len(names)) if i != block_index]
+    k = len(factor_idx)
+    if isinstance(model, str):
+        spec = model.strip().lower()
+        if spec == "full":
+            order = k
+        elif spec == "main":
+            order = 1
+        elif spec.isdigit():
+            order = int(spec)
+        else:
+            raise UsageError(f"model {model!r} is not understood; use full, main or a number "
+                             "(interactions up to that order)")
+    elif isinstance(model, (int, np.integer)) and not isinstance(model, bool):
+        order = int(model)
+    else:
+        raise UsageError(f"model {model!r} is not understood; use full, main or a number")
+    if order < 1:
+        raise UsageError("the model order must be at least 1 (main effects)")
+    order = min(order, k)
+    terms = []
+    if block_index is not None:
+        terms.append(Term((block_index,), names[block_index], is_block=True))
+    for r in range(1, order + 1):
+        for combo in combinations(factor_idx, r):
+            terms.append(Term(combo, ":".join(names[i] for i in combo)))
+    return terms
+
+
+def sum_contrasts(k: int) -> np.ndarray:
+    """(k, k-1) sum-to-zero coding: level j < k-1 -> unit vector j, last level -> all -1."""
+    c = np.zeros((k, max(k - 1, 0)))
+    if k > 1:
+        c[: k - 1] = np.eye(k - 1)
+        c[k - 1] = -1.0
+    return c
+
+
+def term_matrix(levels: np.ndarray, term: Term, sizes) -> np.ndarray:
+    """Columns of ``term`` for cells whose level codes are the rows of ``levels``."""
+    m = np.ones((levels.shape[0], 1))
+    for f in term.factors:
+        c = sum_contrasts(sizes[f])[levels[:, f]]
+        m = (m[:, :, None] * c[:, None, :]).reshape(levels.shape[0], -1)
+    return m
+
+
+def design(levels, terms, sizes):
+    """Intercept plus every term's columns; returns (X, {term name: slice})."""
+    blocks = [np.ones((levels.shape[0], 1))]
+    slices, start = {}, 1
+    for t in terms:
+        m = term_matrix(levels, t, sizes)
+        blocks.append(m)
+        slices[t.name] = slice(start, start + m.shape[1])
+        start += m.shape[1]
+    return np.hstack(blocks), slices
+
+
+def _basis(a: np.ndarray, scale: float | None = None):
+    """Orthonormal basis of the column space of ``a``.
+
+    Rank-revealing QR with column pivoting (Businger & Golub 1965); a column
+    counts when its pivot exceeds a relative tolerance of ``scale`` (default:
+    the largest pivot).
+    """
+    from scipy.linalg import qr
+
+    if a.shape[1] == 0 or a.shape[0] == 0:
+        return np.zeros((a.shape[0], 0))
+    q, r, _ = qr(a, mode="economic", pivoting=True, check_finite=False)
+    d = np.abs(np.diag(r))
+    ref = scale if scale is not None else (d[0] if d.size else 0.0)
+    if ref <= 0:
+        return np.zeros((a.shape[0], 0))
+    rank = int(np.count_nonzero(d > ref * 1e-10 * max(a.shape)))
+    return q[:, :rank]
+
+
+def _norm2(a):
+    return float(np.linalg.norm(a, 2)) if a.size else 0.0
+
+
+@dataclass(frozen=True)
+class TermSS:
+    term: str
+    df: int
+    df_full: int          # degrees of freedom with every cell present
+    sum_sq: float
+    is_block: bool = False
+    note: str | None = None
+
+
+@dataclass(frozen=True)
+class Fit:
+    terms: tuple[Term, ...]
+    sizes: tuple[int, ...]
+    cells: Cells
+    moments: Moments
+    X: np.ndarray               # (C, p) cell design, sum-to-zero coding
+    slices: dict
+    beta: np.ndarray            # minimum-norm solution
+    cov_unscaled: np.ndarray    # (X'WX)^+
+    rowspace: np.ndarray        # (r, p) orthonormal basis of the estimable directions
+    basis: np.ndarray           # (C, r) orthonormal basis of sqrt(W) X
+    rank: int
+    n_obs: int
+    df_resid: int
+    ss_within: float
+    rss: float
+    fitted: np.ndarray          # (C,) fitted cell means
+    leverage: np.ndarray        # (C,) leverage of one row in each cell
+    table: tuple[TermSS, ...]
+    ss_type: int                # the type actually reported
+    notes: tuple[str, ...] = field(default=())
+
+    @property
+    def mse(self) -> float:
+        return self.rss / self.df_resid if self.df_resid > 0 else float("nan")
+
+    def estimable(self, L: np.ndarray) -> np.ndarray:
+        """Which rows of ``L`` (k, p) are estimable linear functions of the parameters."""
+        L = np.atleast_2d(L)
+        proj = (L @ self.rowspace.T) @ self.rowspace
+        scale = np.maximum(np.abs(L).max(axis=1), 1.0)
+        return np.abs(L - proj).max(axis=1) <= 1e-8 * scale
+
+
+def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
+    """Fit the model and compute Type II or III sums of squares for every term."""
+    if ss_type not in (2, 3):
+        raise UsageError(f"sums of squares type {ss_type!r} is not supported; use 2 or 3")
+    terms = tuple(terms)
+    sizes = cells.sizes
+    X, slices = design(cells.levels, terms, sizes)
+    w = np.sqrt(mom.n)
+    Xw = X * w[:, None]
+    yw = mom.mean * w
+    n_obs = mom.total_n
+    ss_within = float(mom.ss_within.sum())
+
+    u, s, vt = np.linalg.svd(Xw, full_matrices=False)
+    keep = s > (s[0] if s.size else 0.0) * 1e-10 * max(Xw.shape)
+    u_r, s_r, vt_r = u[:, keep], s[keep], vt[keep]
+    rank = int(keep.sum())
+    coef = u_r.T @ yw
+    beta = vt_r.T @ (coef / s_r)
+    cov_unscaled = (vt_r.T / s_r**2) @ vt_r
+    resid_w = yw - u_r @ coef
+    rss = ss_within + float(resid_w @ resid_w)
+    fitted = (u_r @ coef) / w
+    leverage = (u_r**2).sum(axis=1) / mom.n
+    df_resid = n_obs - rank
+
+    notes = []
+    used_type = ss_type
+    if ss_type == 3 and rank < X.shape[1]:
+        used_type = 2
+        notes.append("Type III sums of squares are not uniquely defined when cells are empty "
+                     "(the model is rank deficient); Type II sums of squares are reported instead")
+    col = {t.name: Xw[:, slices[t.name]] for t in terms}
+    intercept = Xw[:, :1]
+    table = []
+    for t in terms:
+        ft = set(t.factors)
+        if used_type == 2:
+            others = [o for o in terms if o is not t and not set(o.factors) >= ft]
+        else:
+            others = [o for o in terms if o is not t]
+        a = np.hstack([intercept] + [col[o.name] for o in others])
+        b1 = _basis(a)
+        xt = col[t.name]
+        r = xt - b1 @ (b1.T @ xt)
+        b2 = _basis(r, scale=_norm2(xt))
+        proj = b2.T @ yw
+        ss = float(proj @ proj)
+        df = int(b2.shape[1])
+        df_full = 1
+        for f in t.factors:
+            df_full *= sizes[f] - 1
+        note = None
+        if df == 0:
+            note = "inestimable: the observed cells cannot separate this effect from the others"
+            ss = float("nan")
+        elif df < df_full:
+            note = (f"only {df} of {df_full} degrees of freedom estimable (empty cells)")
+        table.append(TermSS(t.name, df, df_full, ss, t.is_block, note))
+
+    return Fit(terms=terms, sizes=sizes, cells=cells, moments=mom, X=X, slices=slices,
+               beta=beta, cov_unscaled=cov_unscaled, rowspace=vt_r, basis=u_r, rank=rank,
+               n_obs=n_obs, df_resid=df_resid, ss_within=ss_within, rss=rss, fitted=fitted,
+               leverage=leverage, table=tuple(table), ss_type=used_type, notes=tuple(notes))

@@ -1,0 +1,260 @@
+"""Turning a runs table into the arrays the model needs.
+
+Owns: reading the source (DataFrame, tidy CSV or results folder), choosing the
+factors, block column and response, keeping only runs with status ``ok`` while
+counting failed and timed-out runs per cell, and coding factor levels as small
+integers in a fixed level order (the experiment's listed order; for a bare CSV
+or DataFrame, the order of first appearance in the data).
+
+Factor levels are compared as exact text: ``1`` and ``1.0`` are two levels.
+No formula strings are ever built from names or labels.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from benchharness.errors import DataError, UsageError
+
+#: statuses that are runs of the experiment but produced no usable timing.
+_LOST = ("failed", "timeout")
+
+
+@dataclass(frozen=True)
+class Prepared:
+    """Everything the model stage needs, as plain arrays."""
+
+    response: str
+    factors: tuple[str, ...]                 # experiment factors in the model
+    levels: tuple[tuple[str, ...], ...]      # level labels per factor, in order
+    codes: tuple[np.ndarray, ...]            # per factor: level code of each ok row
+    block: str | None
+    block_levels: tuple[str, ...]
+    block_codes: np.ndarray | None
+    y: np.ndarray                            # response of ok rows (original scale)
+    run: np.ndarray | None                   # run ids of ok rows (or row numbers)
+    position: np.ndarray | None              # execution order of ok rows, if known
+    status_counts: list[dict[str, Any]]      # per factor cell: ok/failed/timeout counts
+    notes: tuple[str, ...] = ()
+    experiment: Any = None
+    order_source: str = "experiment"         # where the level order came from
+    extra: dict = field(default_factory=dict)
+
+
+def load_source(data, factors=None):
+    """Return ``(DataFrame, Experiment | None)`` for a DataFrame, CSV path or results folder."""
+    import pandas as pd
+
+    if isinstance(data, pd.DataFrame):
+        return data, None  # used as is: no copy of a large table
+    if not isinstance(data, (str, Path)):
+        raise UsageError(f"cannot analyse a {type(data).__name__}; give a DataFrame, a CSV file "
+                         "or a results folder")
+    from benchharness.source import load_table
+
+    return load_table(data, factors=factors)
+
+
+def _as_text(series):
+    """Factor column as exact text (CSV readers keep it; DataFrames may hold numbers)."""
+    if series.dtype == object:
+        return series  # already text when read by our loaders; mixed objects still factorize
+    return series.astype(str)
+
+
+def _code(series, listed: Sequence[str] | None, name: str):
+    """Integer codes in listed order (or order of first appearance); unknown labels are an error."""
+    import pandas as pd
+
+    if isinstance(series.dtype, pd.CategoricalDtype):
+        cats = [str(c) for c in series.cat.categories]
+        if listed is None or list(listed) == cats:
+            codes = np.asarray(series.cat.codes, dtype=np.int64)
+            if (codes < 0).any():
+                raise DataError(f"factor {name!r}: some runs have no level")
+            return codes, tuple(cats)
+        series = series.astype(object)
+    text = _as_text(series)
+    if listed is not None:
+        cat = pd.Categorical(text, categories=list(listed))
+        codes = np.asarray(cat.codes, dtype=np.int64)
+        if (codes < 0).any():
+            bad = text[codes < 0].iloc[0]
+            raise DataError(f"factor {name!r}: level {bad!r} in the data is not one of the levels "
+                            f"listed in the experiment ({', '.join(map(repr, listed))})")
+        return codes, tuple(listed)
+    codes, uniques = pd.factorize(text, sort=False)
+    return codes.astype(np.int64), tuple(str(u) for u in uniques)
+
+
+def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
+    """Load and code a runs table.
+
+    ``block``: None or "auto" picks the default block column (``block`` for blocked
+    experiments, ``host`` when it has more than one value); False means no block.
+    """
+    import pandas as pd
+
+    df, exp = load_source(data, factors)
+    if factors is None:
+        if exp is None:
+            raise UsageError("name the factors (--factors A,B or factors=[...]): a plain table does "
+                             "not say which columns are factors")
+        factors = list(exp.factor_names)
+    elif isinstance(factors, str):
+        factors = [factors]
+    factors = list(factors)
+    if not factors:
+        raise UsageError("at least one factor is needed")
+    if len(set(factors)) != len(factors):
+        raise UsageError("a factor is named twice in the factor list")
+    columns = set(df.columns)
+    missing = [f for f in factors if f not in columns]
+    if missing:
+        raise DataError(f"no column named {missing[0]!r} in the data; columns are: "
+                        + ", ".join(map(repr, df.columns)))
+    if response not in columns:
+        raise DataError(f"no response column {response!r} in the data; choose one with --response "
+                        "(columns: " + ", ".join(map(repr, df.columns)) + ")")
+    if response in factors:
+        raise UsageError(f"{response!r} cannot be both the response and a factor")
+
+    notes = []
+    # status: analyse ok rows only; warm-up rows are not part of the experiment.
+    if "status" in columns:
+        st_codes, st_labels = pd.factorize(df["status"].astype(object), sort=False)
+        st_labels = [str(x).strip() for x in st_labels]
+        if "warmup" in st_labels:
+            keep = st_codes != st_labels.index("warmup")
+            df = df.loc[keep]
+            st_codes = st_codes[keep]
+    else:
+        st_codes, st_labels = np.zeros(len(df), dtype=np.int64), ["ok"]
+
+    def status_is(label):
+        if label not in st_labels:
+            return np.zeros(len(st_codes), dtype=bool)
+        return st_codes == st_labels.index(label)
+
+    if len(df) == 0:
+        raise DataError("the data have no runs to analyse")
+
+    # block column
+    order_blocked = getattr(exp, "order", None) == "blocked"
+    if block is False or block == "":
+        block = None
+    elif block is None or block == "auto":
+        block = None
+        if order_blocked and "block" in columns:
+            block = "block"
+        elif "host" in columns and df["host"].astype(str).nunique() > 1:
+            block = "host"
+    if block is not None:
+        if block not in columns:
+            raise DataError(f"no block column {block!r} in the data")
+        if block in factors or block == response:
+            raise UsageError(f"{block!r} cannot be both the block and a factor or the response")
+
+    codes, levels = [], []
+    order_source = "experiment" if exp is not None else "first appearance in the data"
+    for f in factors:
+        listed = None
+        if exp is not None and f in exp.factor_names:
+            listed = tuple(exp.levels_of(f))
+        elif exp is not None:
+            order_source = "experiment (first appearance for factors not in it)"
+        c, lv = _code(df[f], listed, f)
+        codes.append(c)
+        levels.append(lv)
+
+    # per factor cell: counts of runs by status (all statuses, before dropping)
+    ok = status_is("ok")
+    sizes = [len(lv) for lv in levels]
+    key = np.zeros(len(df), dtype=np.int64)
+    for c, k in zip(codes, sizes):
+        key = key * k + c
+    total_cells = int(np.prod(sizes, dtype=np.float64))
+    status_counts = []
+    lost_masks = {s: status_is(s) for s in _LOST}
+    if total_cells <= 5_000_000:
+        n_ok = np.bincount(key[ok], minlength=total_cells)
+        n_lost = {s: np.bincount(key[m], minlength=total_cells) for s, m in lost_masks.items()}
+        n_all = np.bincount(key, minlength=total_cells)
+        present = np.flatnonzero(n_all)
+        other = n_all - n_ok - sum(n_lost.values())
+        for cell in present:
+            labels, rem = {}, int(cell)
+            for f, lv, k in reversed(list(zip(factors, levels, sizes))):
+                labels[f] = lv[rem % k]
+                rem //= k
+            labels = {f: labels[f] for f in factors}
+            runs = int(n_all[cell])
+            lost = int(sum(n_lost[s][cell] for s in _LOST) + other[cell])
+            status_counts.append({
+                "levels": labels, "runs": runs, "ok": int(n_ok[cell]),
+                "failed": int(n_lost["failed"][cell]), "timeout": int(n_lost["timeout"][cell]),
+                "other": int(other[cell]),
+                "failure_rate": lost / runs if runs else 0.0,
+                "flag": "timeouts" if n_lost["timeout"][cell] else None,
+            })
+
+    y_text = df[response]
+    y = pd.to_numeric(y_text, errors="coerce").to_numpy(dtype=float)
+    use = ok & np.isfinite(y)
+    bad_y = int((ok & ~np.isfinite(y)).sum())
+    if bad_y:
+        notes.append(f"{bad_y} ok run(s) have no numeric {response!r} value and were left out")
+    n_lost = int((~ok).sum())
+    if n_lost:
+        parts = [f"{int(m.sum())} {s}" for s, m in lost_masks.items() if m.sum()]
+        oth = n_lost - sum(int(m.sum()) for m in lost_masks.values())
+        if oth:
+            parts.append(f"{oth} with another status")
+        notes.append("not analysed: " + ", ".join(parts) + " run(s); see the failure counts per cell")
+    if not use.any():
+        raise DataError(f"no run with status ok and a numeric {response!r} value to analyse")
+
+    block_codes, block_levels = None, ()
+    if block is not None:
+        bc, bl = _code(df[block], None, block)
+        # order blocks numerically when every label is an integer
+        try:
+            as_int = [int(b) for b in bl]
+            order = np.argsort(as_int, kind="stable")
+            remap = np.empty(len(bl), dtype=np.int64)
+            remap[order] = np.arange(len(bl))
+            bc = remap[bc]
+            bl = tuple(bl[i] for i in order)
+        except ValueError:
+            pass
+        bsel = bc[use]
+        present = np.unique(bsel)
+        if len(present) < len(bl):  # drop blocks with no ok runs
+            remap = -np.ones(len(bl), dtype=np.int64)
+            remap[present] = np.arange(len(present))
+            bsel = remap[bsel]
+            bl = tuple(bl[i] for i in present)
+        block_codes, block_levels = bsel, bl
+        if len(bl) < 2:
+            notes.append(f"block column {block!r} has a single value; no block term")
+            block, block_codes, block_levels = None, None, ()
+
+    def numeric(col):
+        if col not in columns:
+            return None
+        v = pd.to_numeric(df[col], errors="coerce").to_numpy(dtype=float)[use]
+        return v if np.isfinite(v).all() else None
+
+    run = numeric("run")
+    position = numeric("position")
+    return Prepared(
+        response=response, factors=tuple(factors), levels=tuple(levels),
+        codes=tuple(c[use] for c in codes), block=block, block_levels=tuple(block_levels),
+        block_codes=block_codes, y=y[use], run=run, position=position,
+        status_counts=status_counts, notes=tuple(notes), experiment=exp,
+        order_source=order_source,
+    )

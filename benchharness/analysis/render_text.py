@@ -1,0 +1,122 @@
+"""Plain-text rendering of an `Analysis` for terminals and logs (no colour, no markup).
+
+Owns our own plain layout: a heading with what was analysed, the ANOVA table
+(source, df, sum of squares, mean square, F, p, partial η², ω²), the scale
+chosen and why, level ratios in plain sentences, diagnostics verdicts,
+failed-run counts, comparisons whose adjusted p is below α, and notes.
+"""
+
+from __future__ import annotations
+
+
+def _g(x, digits=4):
+    if x is None:
+        return "-"
+    if isinstance(x, int):
+        return str(x)
+    if x == 0:
+        return "0"
+    a = abs(x)
+    if a >= 1e5 or a < 1e-3:
+        return f"{x:.{digits - 1}e}"
+    return f"{x:.{digits}g}"
+
+
+def _p(p):
+    if p is None:
+        return "-"
+    if p < 1e-4:
+        return "<0.0001"
+    return f"{p:.4f}"
+
+
+def _table(headers, rows, align):
+    cols = list(zip(*([headers] + rows))) if rows else [[h] for h in headers]
+    widths = [max(len(str(c)) for c in col) for col in cols]
+    out = []
+    for r in [headers] + rows:
+        cells = []
+        for v, w, a in zip(r, widths, align):
+            cells.append(str(v).ljust(w) if a == "<" else str(v).rjust(w))
+        out.append("  ".join(cells).rstrip())
+    out.insert(1, "  ".join("-" * w for w in widths))
+    return out
+
+
+def _levels(d):
+    return ", ".join(f"{k}={v}" for k, v in d.items())
+
+
+def format_analysis(a) -> str:
+    d = a.to_dict()
+    lines = []
+    c = d["counts"]
+    t = d["transform"]
+    scale = {"none": "original scale", "log": "log scale"}.get(
+        t["name"], f"Box-Cox scale (λ = {t['lambda']:.2f})")
+    lines.append(f"Analysis of {d['response']} — {c['rows']} runs in {c['cells']} cells"
+                 + (f", blocks: {d['block']}" if d["block"] else "")
+                 + f"; {scale}; Type {d['model']['ss_type']} sums of squares")
+    lines.append(f"Scale: {t['reason']}")
+    lines.append("")
+    rows = []
+    for r in d["anova"]:
+        rows.append([r["term"], _g(r["df"]), _g(r["sum_sq"]), _g(r["mean_sq"]), _g(r["F"]),
+                     _p(r["p"]), _g(r["partial_eta_sq"], 3), _g(r["omega_sq"], 3)])
+    lines += _table(["Source", "df", "Sum of squares", "Mean square", "F", "p",
+                     "partial η²", "ω²"], rows, "<>>>>>>>")
+    lines.append("")
+    if d["effects"]:
+        lines.append("Effects (each level against its reference)")
+        for e in d["effects"]:
+            lines.append("  " + e["wording"])
+        lines.append("")
+    dg = d["diagnostics"]
+    lines.append("Diagnostics")
+    for key, label in (("normality", "normality"), ("equal_variance", "equal variances"),
+                       ("drift", "drift")):
+        item = dg.get(key) or {}
+        test = item.get("test")
+        extra = f" [{test}, p {_p(item.get('p'))}]" if test else (
+            f" [p {_p(item.get('p'))}]" if item.get("p") is not None else "")
+        lines.append(f"  {label}: {item.get('verdict', '-')}{extra}")
+    oc = dg.get("outlier_check")
+    if oc:
+        lines.append(f"  outliers: {oc['verdict']}")
+        for o in dg["outliers"][:10]:
+            lines.append(f"    run {o['run']}: studentized residual {o['studentized']:+.2f}")
+    for s in dg.get("small_cells", [])[:10]:
+        lines.append(f"  cell {_levels(s['levels'])}: {s['problem']} (n={s['n']})")
+    lines.append(f"  failed runs: {d['failures']['verdict']}")
+    for cell in d["failures"]["cells"][:10]:
+        flag = " — has timeouts" if cell["flag"] else ""
+        lines.append(f"    {_levels(cell['levels'])}: {cell['ok']} of {cell['runs']} ok "
+                     f"({cell['failed']} failed, {cell['timeout']} timed out){flag}")
+    if d["art"]:
+        lines.append("  rank-based cross-check (aligned rank transform):")
+        for r in d["art"]["terms"]:
+            agree = {True: "agrees", False: "DISAGREES", None: "-"}[r["agrees"]]
+            lines.append(f"    {r['term']}: p {_p(r['p'])} vs ANOVA p {_p(r['anova_p'])} — {agree}")
+    lines.append("")
+    alpha = d["model"]["alpha"]
+    shown = [x for x in d["comparisons"] if x["p_adj"] is not None and x["p_adj"] < alpha]
+    if d["comparisons"]:
+        lines.append(f"Comparisons with adjusted p < {alpha:g} ({len(shown)} of "
+                     f"{len(d['comparisons'])})")
+        label = {"pairwise": f"pairwise ({d['model']['adjust']})", "tukey": "Tukey HSD",
+                 "simple": "simple effect (holm)", "declared": "declared"}
+        rows = []
+        for x in shown[:40]:
+            within = f" within {_levels(x['within'])}" if x["within"] else ""
+            rows.append([label[x["method"]], f"{x['factor']}: {x['a']} vs {x['b']}{within}",
+                         _g(x["ratio"]), f"[{_g(x['lower'])}, {_g(x['upper'])}]",
+                         _p(x["p_adj"])])
+        if rows:
+            lines += ["  " + s for s in _table(["method", "comparison", "ratio", "interval",
+                                                "p adj"], rows, "<<>>>")]
+        lines.append("")
+    if d["notes"]:
+        lines.append("Notes")
+        for n in d["notes"]:
+            lines.append(f"  - {n}")
+    return "\n".join(lines).rstrip() + "\n"

@@ -1,0 +1,125 @@
+"""Reading what a choice needs from the experiment file and the data source.
+
+This module owns the edges of `choose`: loading a runs table (results folder,
+CSV path or DataFrame), and reading two experiment-file sections:
+
+``choose:`` (all keys optional)::
+
+    choose:
+      prefer: {threads: "4"}     # the current default of some control factors
+      across: [machine]          # environment columns the default must live with
+      also: [max_rss_kib]        # further responses for the trade-off front
+      response: wall_s
+      confidence: 0.95
+
+``metrics:`` -- only the direction of each response is read here, from a
+``better: lower | higher`` key of a metric's mapping (``metrics: {ops_per_s:
+{better: higher}}``, or a list of mappings with a ``name`` key). Anything
+without ``better`` is lower-is-better.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from pathlib import Path
+
+from benchharness.errors import DataError, ExperimentError
+
+__all__ = ["load_source", "choose_settings", "metric_directions"]
+
+_CHOOSE_KEYS = ("prefer", "across", "also", "response", "confidence")
+
+
+def load_source(data, factors=None):
+    """(DataFrame, Experiment | None) from a DataFrame, CSV path or results folder.
+
+    A DataFrame without ``factors`` is returned as is (the caller asks for
+    the factors); everything else goes through `benchharness.source.load_table`.
+    """
+    import pandas as pd
+
+    from benchharness.source import load_table
+
+    if isinstance(data, pd.DataFrame) and factors is None:
+        return data, None
+    if not isinstance(data, (pd.DataFrame, str, Path)):
+        raise DataError(f"cannot read data of type {type(data).__name__}; give a DataFrame, "
+                        "a CSV path or a results folder")
+    return load_table(data, list(factors) if factors is not None else None)
+
+
+def _sections(experiment) -> Mapping:
+    return getattr(experiment, "sections", None) or {}
+
+
+def choose_settings(experiment) -> dict:
+    """The validated ``choose:`` section of an experiment (empty when absent).
+
+    Raises `ExperimentError` at ``FILE:LINE:COL`` for a malformed section.
+    """
+    from benchharness.yamlnodes import (as_float, expect_mapping, is_null, node_error,
+                                        scalar_text, sequence_items, to_plain)
+
+    out: dict = {}
+    if experiment is None:
+        return out
+    node = _sections(experiment).get("choose")
+    if is_null(node):
+        return out
+    path = str(getattr(experiment, "path", "") or "") or None
+    try:
+        keys = expect_mapping(node, "choose", _CHOOSE_KEYS)
+        for key, v in keys.items():
+            if key == "prefer":
+                items = expect_mapping(v, "choose.prefer", _known_factors(experiment, v))
+                out["prefer"] = {f: scalar_text(lv, f"choose.prefer.{f}") for f, lv in items.items()}
+            elif key in ("across", "also"):
+                if isinstance(to_plain(v), str):
+                    out[key] = [x.strip() for x in to_plain(v).split(",") if x.strip()]
+                else:
+                    out[key] = [scalar_text(x, f"an entry of choose.{key}")
+                                for x in sequence_items(v, f"choose.{key}")]
+            elif key == "response":
+                out["response"] = scalar_text(v, "choose.response")
+            elif key == "confidence":
+                c = as_float(v, "choose.confidence")
+                if not 0 < c < 1:
+                    raise node_error(v, f"choose.confidence must be between 0 and 1 "
+                                        f"(e.g. 0.95), not {scalar_text(v)}")
+                out["confidence"] = c
+    except ExperimentError as exc:
+        if exc.path in (None, "<string>") and path:
+            raise ExperimentError(exc.bare, path=path, line=exc.line, col=exc.col) from None
+        raise
+    return out
+
+
+def _known_factors(experiment, node):
+    """Allowed keys of choose.prefer: the experiment's factor names."""
+    names = tuple(getattr(experiment, "factor_names", ()) or ())
+    if names:
+        return names
+    from benchharness.yamlnodes import mapping_items
+
+    return [k for k, _kn, _v in mapping_items(node, "choose.prefer")]
+
+
+def metric_directions(experiment) -> dict[str, str]:
+    """Map of response name -> 'lower' | 'higher' from the ``metrics:`` section."""
+    from benchharness.yamlnodes import to_plain
+
+    if experiment is None:
+        return {}
+    value = to_plain(_sections(experiment).get("metrics"))
+    entries: list[tuple[str, object]] = []
+    if isinstance(value, dict):
+        entries = list(value.items())
+    elif isinstance(value, list):
+        entries = [(m.get("name"), m) for m in value if isinstance(m, dict)]
+    out: dict[str, str] = {}
+    for name, spec in entries:
+        if isinstance(spec, dict) and name is not None:
+            b = spec.get("better")
+            if isinstance(b, str) and b.strip().lower() in ("lower", "higher"):
+                out[str(name)] = b.strip().lower()
+    return out

@@ -1,0 +1,224 @@
+"""The estimates a choice rests on: per-setting means on the analysis scale and their noise.
+
+This module owns turning a runs table into plain numbers for one response:
+
+* rows kept: ``status == "ok"`` (when a ``status`` column exists) with a numeric,
+  finite response;
+* the analysis scale: ``log`` when every kept value is positive (times, memory,
+  throughput: means become geometric means, differences become ratios),
+  otherwise ``none``;
+* direction: ``lower`` or ``higher`` is better; the goodness scale used by the
+  statistics is ``-y`` for lower-is-better and ``+y`` for higher-is-better;
+* cells: every combination of a *setting* (levels of the control factors) and
+  an *environment* (levels of the ``across`` columns). Every setting must have
+  been run in every environment;
+* the residual variance (this is the exact model, see docs/choose.md):
+  - ``cells`` (used whenever some cell has two or more runs): the full
+    interaction model ``setting x environment`` -- the pooled within-cell
+    variance, ``df = N - cells`` (Montgomery, *Design and Analysis of
+    Experiments*, ch. 5: the error mean square of the full factorial model);
+  - ``additive`` (used only when no cell is replicated, so the full model has
+    no error degrees of freedom): ``setting + across_1 + across_2 + ...`` as
+    additive main effects, the setting-by-environment interaction pooled into
+    the error, ``df = N - rank``;
+* a setting's mean: the unweighted average over environments of its cell
+  means (each environment counts equally, whatever its number of runs), with
+  variance ``sigma^2 * w``, ``w = sum_e (1/n_e) / E^2``.
+
+No blocking term is fitted: with randomized run order a block is a replicate
+label, and the full-interaction error already absorbs it conservatively.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from benchharness.errors import DataError
+
+__all__ = ["ResponseModel", "fit_response", "level_orders", "setting_key"]
+
+
+def setting_key(levels) -> tuple[str, ...]:
+    return tuple(str(x) for x in levels)
+
+
+@dataclass(frozen=True)
+class ResponseModel:
+    """Plain estimates of one response; settings and environments in listed order."""
+
+    response: str
+    better: str                     # "lower" | "higher"
+    scale: str                      # "log" | "none"
+    control: tuple[str, ...]        # control factor names
+    across: tuple[str, ...]         # environment column names
+    settings: tuple[tuple[str, ...], ...]
+    environments: tuple[tuple[str, ...], ...]
+    cell_means: np.ndarray          # (settings, environments), analysis scale
+    cell_counts: np.ndarray         # (settings, environments), runs per cell
+    setting_means: np.ndarray       # (settings,), analysis scale
+    weights: np.ndarray             # (settings,), Var(setting mean)/sigma^2
+    sigma: float                    # residual standard deviation, analysis scale
+    df: float                       # its degrees of freedom
+    residual_model: str             # "cells" | "additive"
+    n_runs: int
+    dropped_runs: int               # rows excluded (status not ok, missing value)
+
+    @property
+    def sign(self) -> float:
+        return -1.0 if self.better == "lower" else 1.0
+
+    @property
+    def goodness(self) -> np.ndarray:
+        """Setting means on a larger-is-better scale."""
+        return self.sign * self.setting_means
+
+    @property
+    def cell_goodness(self) -> np.ndarray:
+        return self.sign * self.cell_means
+
+    def to_response_units(self, x):
+        """Back-transform analysis-scale means (geometric means for the log scale)."""
+        x = np.asarray(x, dtype=float)
+        return np.exp(x) if self.scale == "log" else x
+
+
+def level_orders(df, columns, experiment=None) -> dict[str, list[str]]:
+    """Level labels of each column in listed order.
+
+    The experiment's listed order when known, else a categorical's category
+    order, else the order of first appearance in the table.
+    """
+    import pandas as pd
+
+    orders: dict[str, list[str]] = {}
+    exp_names = set(getattr(experiment, "factor_names", ()) or ()) if experiment is not None else set()
+    for col in columns:
+        present = [str(x) for x in pd.unique(df[col].astype(str))]
+        listed: list[str] = []
+        if col in exp_names:
+            listed = [str(x) for x in experiment.levels_of(col)]
+        elif isinstance(df[col].dtype, pd.CategoricalDtype):
+            listed = [str(x) for x in df[col].cat.categories]
+        order = [x for x in listed if x in present] + [x for x in present if x not in listed]
+        orders[col] = order
+    return orders
+
+
+def _ok_rows(df, response: str):
+    import pandas as pd
+
+    if response not in df.columns:
+        raise DataError(f"response column {response!r} is not in the table "
+                        f"(columns: {', '.join(map(str, df.columns))})")
+    keep = np.ones(len(df), dtype=bool)
+    if "status" in df.columns:
+        keep &= (df["status"].astype(str) == "ok").to_numpy()
+    y = pd.to_numeric(df[response], errors="coerce").to_numpy(dtype=float)
+    keep &= np.isfinite(y)
+    return keep, y
+
+
+def fit_response(df, response: str, control, across=(), better: str = "lower",
+                 scale: str = "auto", orders=None, residual: str = "auto") -> ResponseModel:
+    """Estimate per-setting means and the residual noise of ``response``.
+
+    ``df`` is a runs table; ``control`` and ``across`` name its columns;
+    ``orders`` maps columns to level labels in listed order (see
+    `level_orders`). ``scale`` is ``auto`` | ``log`` | ``none``; ``residual`` is
+    ``auto`` | ``cells`` | ``additive``.
+    """
+    control = tuple(control)
+    across = tuple(across)
+    if better not in ("lower", "higher"):
+        raise DataError(f"better must be 'lower' or 'higher', not {better!r}")
+    if not control:
+        raise DataError("no control factors left to choose between (every factor is in --across)")
+    for col in control + across:
+        if col not in df.columns:
+            raise DataError(f"column {col!r} is not in the table")
+    keep, y_all = _ok_rows(df, response)
+    n_total = len(df)
+    sub = df.loc[keep, list(control + across)].astype(str)
+    y = y_all[keep]
+    if len(y) == 0:
+        raise DataError(f"no ok runs with a value of {response!r}")
+    if scale == "auto":
+        scale = "log" if np.all(y > 0) else "none"
+    if scale == "log":
+        if np.any(y <= 0):
+            raise DataError(f"{response!r} has values <= 0; the log scale needs positive values")
+        y = np.log(y)
+    elif scale != "none":
+        raise DataError(f"scale must be auto, log or none, not {scale!r}")
+    if orders is None:
+        orders = level_orders(df.loc[keep], control + across)
+
+    def combos(cols):
+        keys = list(zip(*[sub[c].tolist() for c in cols])) if cols else [()] * len(sub)
+        present = set(keys)
+        # product order over listed levels, restricted to what was run
+        out: list[tuple[str, ...]] = [()]
+        for c in cols:
+            out = [o + (lv,) for o in out for lv in orders[c]]
+        return [o for o in out if o in present], keys
+
+    settings, s_keys = combos(control)
+    envs, e_keys = combos(across)
+    s_index = {s: i for i, s in enumerate(settings)}
+    e_index = {e: i for i, e in enumerate(envs)}
+    si = np.array([s_index[k] for k in s_keys], dtype=int)
+    ei = np.array([e_index[k] for k in e_keys], dtype=int)
+    S, E = len(settings), len(envs)
+    counts = np.zeros((S, E))
+    sums = np.zeros((S, E))
+    np.add.at(counts, (si, ei), 1)
+    np.add.at(sums, (si, ei), y)
+    missing = np.argwhere(counts == 0)
+    if missing.size:
+        s, e = missing[0]
+        where = ", ".join(f"{c}={v}" for c, v in zip(control, settings[s]))
+        env = ", ".join(f"{c}={v}" for c, v in zip(across, envs[e]))
+        raise DataError(f"setting {where} has no ok run of {response!r} in environment {env}; "
+                        f"every setting needs runs in every --across level "
+                        f"({len(missing)} such gap(s))")
+    means = sums / counts
+    n = len(y)
+    resid = y - means[si, ei]
+    df_cells = n - S * E
+    if residual == "auto":
+        residual = "cells" if df_cells > 0 else "additive"
+    if residual == "cells":
+        if df_cells <= 0:
+            raise DataError(f"no replicated cell for {response!r}: the full model has no "
+                            "error degrees of freedom; run replicates")
+        sse, dfe = float(resid @ resid), float(df_cells)
+    elif residual == "additive":
+        cols = [np.ones(n)]
+        for i in range(1, S):
+            cols.append((si == i).astype(float))
+        for c in across:
+            lv = sub[c].to_numpy()
+            for level in orders[c][1:]:
+                cols.append((lv == level).astype(float))
+        X = np.column_stack(cols)
+        beta, *_ = np.linalg.lstsq(X, y, rcond=None)
+        r = y - X @ beta
+        rank = np.linalg.matrix_rank(X)
+        dfe = float(n - rank)
+        if dfe <= 0:
+            raise DataError(f"too few runs of {response!r} to estimate the noise "
+                            f"({n} runs, {rank} model terms); run replicates")
+        sse = float(r @ r)
+    else:
+        raise DataError(f"residual must be auto, cells or additive, not {residual!r}")
+    sigma = float(np.sqrt(sse / dfe))
+    setting_means = means.mean(axis=1)
+    weights = (1.0 / counts).sum(axis=1) / (E * E)
+    return ResponseModel(
+        response=response, better=better, scale=scale, control=control, across=across,
+        settings=tuple(settings), environments=tuple(envs), cell_means=means,
+        cell_counts=counts, setting_means=setting_means, weights=weights, sigma=sigma,
+        df=dfe, residual_model=residual, n_runs=int(n), dropped_runs=int(n_total - n),
+    )

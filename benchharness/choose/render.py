@@ -1,0 +1,118 @@
+"""Putting a `Choice` into words: plain terminal text and a report section dict.
+
+This module owns the wording of a choice (ours, plain English). It does no
+statistics; everything comes from ``Choice.to_dict()``.
+"""
+
+from __future__ import annotations
+
+__all__ = ["section_dict", "terminal_text"]
+
+
+def _setting(m) -> str:
+    return ", ".join(f"{k}={v}" for k, v in m.items()) or "(all runs)"
+
+
+def _fmt(x, digits=4) -> str:
+    if x is None:
+        return "-"
+    return f"{x:.{digits}g}"
+
+
+def _ratio_words(r) -> str:
+    if r is None:
+        return "-"
+    return f"x{r:.3f}"
+
+
+def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
+    resp = d["response"]
+    mean_kind = "geometric mean" if d["scale"] == "log" else "mean"
+    log = d["scale"] == "log"
+    cols = ["setting", f"{mean_kind} {resp}", "runs", "verdict",
+            "worst-case loss" + (" (ratio)" if log else ""),
+            "worst environment" if d["across"] else "ratio to best"]
+    if d["across"]:
+        cols.append("average ratio" if log else "average loss")
+    if d.get("also"):
+        cols.append("trade-off front")
+    rows = []
+    for c in d["candidates"]:
+        verdict = "recommended" if c["recommended"] else ("tied" if c["tied"] else "worse")
+        wc = _ratio_words(c["worst_case_loss"]) if log else _fmt(c["worst_case_loss"])
+        if d["across"]:
+            env = _setting(c["worst_environment"])
+            we = (f"{_ratio_words(c['worst_ratio'])} ({env})" if log
+                  else f"{_fmt(c['worst_loss'])} ({env})")
+        else:
+            we = _ratio_words(c["worst_ratio"]) if log else _fmt(c["worst_loss"])
+        row = [_setting(c["setting"]), _fmt(c["mean"]), str(c["runs"]), verdict, wc, we]
+        if d["across"]:
+            row.append(_ratio_words(c["mean_ratio"]) if log else _fmt(c["mean_loss"]))
+        if d.get("also"):
+            row.append("yes" if c.get("on_front") else "no")
+        rows.append(row)
+    return cols, rows
+
+
+def section_dict(choice) -> dict:
+    """A report section: ``title``, ``summary`` (sentences), ``recommendation``,
+    ``columns``/``rows`` (a table of strings, one row per setting),
+    ``notes`` (how the numbers were made) and ``choice`` (the full dict)."""
+    d = choice.to_dict()
+    cols, rows = _rows(d)
+    res = d["residual"]
+    notes = [
+        f"Response {d['response']} ({d['better']} is better), analysed on the "
+        f"{'log' if d['scale'] == 'log' else 'original'} scale; "
+        f"{d['runs_used']} ok runs used, {d['runs_dropped']} left out.",
+        f"Noise: pooled residual of the {'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
+        f"model, {res['df']:g} degrees of freedom.",
+        "Worst-case loss: how much worse than the best of the other settings this setting "
+        f"can be, at {d['confidence'] * 100:g}% confidence (multiple comparisons with the best).",
+    ]
+    if d["across"]:
+        notes.append("Worst environment: the setting's ratio to the best setting of the "
+                     f"{', '.join(d['across'])} level where it does worst (estimates).")
+    return {
+        "title": "Choosing a default",
+        "summary": list(d["reasons"]),
+        "recommendation": dict(d["best"]),
+        "columns": cols,
+        "rows": rows,
+        "notes": notes,
+        "choice": d,
+    }
+
+
+def terminal_text(choice) -> str:
+    """Plain text for the terminal."""
+    s = section_dict(choice)
+    d = s["choice"]
+    lines = [f"Recommended default: {_setting(d['best'])}", ""]
+    lines += s["summary"]
+    lines.append("")
+    tied = "; ".join(_setting(t) for t in d["tied"])
+    lines.append(f"Cannot be told apart from the best: {tied}")
+    if d["across"]:
+        lines.append(f"Safest across {', '.join(d['across'])}: {_setting(d['robust']['setting'])}"
+                     + (f" (worst ratio {_ratio_words(d['robust']['worst_ratio'])})"
+                        if d["robust"]["worst_ratio"] is not None else ""))
+        lines.append(f"Best on average: {_setting(d['on_average']['setting'])}"
+                     + (f" (average ratio {_ratio_words(d['on_average']['mean_ratio'])})"
+                        if d["on_average"]["mean_ratio"] is not None else ""))
+    if d.get("also"):
+        lines.append("Trade-off front: " + "; ".join(_setting(p) for p in d["pareto"]))
+    lines.append("")
+    cols, rows = s["columns"], s["rows"]
+    widths = [max(len(c), *(len(r[i]) for r in rows)) for i, c in enumerate(cols)]
+    lines.append("  ".join(c.ljust(w) for c, w in zip(cols, widths)).rstrip())
+    for r in rows:
+        lines.append("  ".join(x.ljust(w) for x, w in zip(r, widths)).rstrip())
+    lines.append("")
+    lines.append("Why:")
+    for c in d["candidates"]:
+        lines.append(f"  {_setting(c['setting'])}: {c['reason']}")
+    lines.append("")
+    lines += s["notes"]
+    return "\n".join(lines) + "\n"

@@ -1,0 +1,70 @@
+"""`benchharness analyze SOURCE`: analyse a results folder or tidy CSV as a designed experiment."""
+
+from __future__ import annotations
+
+import sys
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "analyze", help="analyse a results folder or a tidy CSV (ANOVA, effects, comparisons)",
+        description="Analyse the runs of a results folder (or any tidy CSV, one row per "
+                    "observation) as a factorial experiment: ANOVA of main effects and "
+                    "interactions, residual diagnostics, scale choice, level ratios with "
+                    "intervals and adjusted comparisons. Only runs with status ok are analysed; "
+                    "the others are counted per cell.")
+    p.add_argument("source", help="results folder or CSV file")
+    p.add_argument("--response", default="wall_s", metavar="COL",
+                   help="column to analyse (default wall_s)")
+    p.add_argument("--factors", metavar="A,B", default=None,
+                   help="comma-separated factor columns (default: the experiment's factors; "
+                        "required for a CSV)")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--block", metavar="COL", default=None,
+                   help="additive nuisance column (default: block for blocked experiments, "
+                        "host when it has more than one value)")
+    g.add_argument("--no-block", action="store_true", help="fit no block term")
+    p.add_argument("--transform", choices=["auto", "none", "log", "boxcox"], default="auto",
+                   help="analysis scale (default auto: chosen from the Box-Cox interval)")
+    p.add_argument("--model", default="full", metavar="full|main|N",
+                   help="all interactions (full), main effects only (main), or interactions "
+                        "up to order N (default full)")
+    p.add_argument("--ss-type", type=int, choices=[2, 3], default=2,
+                   help="type of sums of squares (default 2)")
+    p.add_argument("--alpha", type=float, default=0.05, help="significance level (default 0.05)")
+    p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
+                   help="reference level of a factor for ratios (repeatable; default: the "
+                        "first level)")
+    p.add_argument("--adjust", choices=["holm", "bonferroni"], default="holm",
+                   help="adjustment of pairwise comparisons (default holm)")
+    p.add_argument("--art", action="store_true",
+                   help="always run the rank-based cross-check (aligned rank transform)")
+    p.add_argument("--json", metavar="FILE", default=None,
+                   help="also write the analysis as JSON to FILE ('-' for stdout only)")
+    p.set_defaults(func=main)
+
+
+def main(args) -> int:
+    from benchharness.analysis import analyze, format_analysis, write_analysis_json
+    from benchharness.errors import UsageError
+
+    factors = None
+    if args.factors is not None:
+        factors = [f for f in args.factors.split(",")]
+        if any(not f for f in factors):
+            raise UsageError(f"--factors {args.factors!r}: an empty factor name")
+    if not 0 < args.alpha < 1:
+        raise UsageError(f"--alpha {args.alpha}: must be between 0 and 1")
+    block = False if args.no_block else args.block
+    an = analyze(args.source, response=args.response, factors=factors, block=block,
+                 transform=args.transform, model=args.model, ss_type=args.ss_type,
+                 alpha=args.alpha, reference=args.reference, adjust=args.adjust,
+                 art=True if args.art else "auto")
+    if args.json == "-":
+        sys.stdout.write(an.to_json() + "\n")
+        return 0
+    print(format_analysis(an), end="")
+    if args.json:
+        write_analysis_json(an, args.json)
+        print(f"\nanalysis written to {args.json}")
+    return 0

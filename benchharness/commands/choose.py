@@ -1,0 +1,98 @@
+"""`benchharness choose SOURCE`: recommend a default setting with statistical backing.
+
+Thin: parse options, call `benchharness.choose.choose`, print plain text,
+optionally write the JSON. See docs/choose.md.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+
+from benchharness.errors import UsageError
+
+
+def add_parser(subparsers):
+    p = subparsers.add_parser(
+        "choose",
+        help="recommend a default: the best or tied settings, robust across environments",
+        description="Recommend a default setting from a results folder or a tidy CSV: the "
+                    "settings that cannot be told apart from the best, the setting that holds "
+                    "up across environments, and (with --also) the trade-off front. Options "
+                    "left out are taken from the experiment file's choose: section.",
+    )
+    p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV of runs")
+    p.add_argument("--response", default=None,
+                   help="response column to choose on (default: choose.response or wall_s)")
+    p.add_argument("--factors", default=None, metavar="A,B",
+                   help="factor columns (needed for a CSV without an experiment file)")
+    p.add_argument("--across", default=None, metavar="F,...",
+                   help="environment columns the default must live with (not choices)")
+    p.add_argument("--also", default=None, metavar="METRIC,...",
+                   help="further responses for the trade-off front, e.g. max_rss_kib")
+    p.add_argument("--confidence", default=None, type=float,
+                   help="confidence level, between 0 and 1 (default 0.95)")
+    p.add_argument("--prefer", action="append", default=[], metavar="FACTOR=LEVEL",
+                   help="current default of a factor; ties go its way (repeatable)")
+    p.add_argument("--better", choices=("lower", "higher"), default=None,
+                   help="direction of the response (default: metrics: section, else lower)")
+    p.add_argument("--json", default=None, metavar="FILE",
+                   help="also write the choice as JSON to FILE ('-' for standard output only)")
+    p.set_defaults(func=run)
+    return p
+
+
+def _prefer(items) -> dict | None:
+    out = {}
+    for item in items:
+        for part in item.split(","):
+            part = part.strip()
+            if not part:
+                continue
+            if "=" not in part:
+                raise UsageError(f"--prefer {part!r}: expected FACTOR=LEVEL, e.g. threads=4")
+            k, v = part.split("=", 1)
+            if not k.strip():
+                raise UsageError(f"--prefer {part!r}: the factor name is empty")
+            out[k.strip()] = v.strip()
+    return out or None
+
+
+def _finite(x):
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    if isinstance(x, dict):
+        return {k: _finite(v) for k, v in x.items()}
+    if isinstance(x, list):
+        return [_finite(v) for v in x]
+    return x
+
+
+def run(args) -> int:
+    from benchharness.choose import choose
+    from benchharness.choose.render import terminal_text
+
+    if args.confidence is not None and not 0 < args.confidence < 1:
+        raise UsageError(f"--confidence {args.confidence}: must be between 0 and 1, e.g. 0.95")
+    choice = choose(
+        args.source,
+        response=args.response,
+        factors=args.factors,
+        across=args.across or (),
+        also=args.also or (),
+        confidence=args.confidence,
+        prefer=_prefer(args.prefer),
+        better=args.better,
+    )
+    data = json.dumps(_finite(choice.to_dict()), indent=2, allow_nan=False)
+    if args.json == "-":
+        print(data)
+        return 0
+    print(terminal_text(choice), end="")
+    if args.json:
+        try:
+            Path(args.json).write_text(data + "\n", encoding="utf-8")
+        except OSError as exc:
+            raise UsageError(f"--json {args.json}: cannot write ({exc.strerror})") from None
+    return 0

@@ -1,0 +1,62 @@
+"""`benchharness report SOURCE`: write the HTML and Markdown reports of an experiment."""
+
+from __future__ import annotations
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "report", help="write the HTML and Markdown reports of a results folder or CSV",
+        description="Analyse SOURCE (a results folder, or a tidy CSV with --factors) and write "
+                    "a self-contained HTML report, a Markdown report and the figures (PNG and "
+                    "SVG under figures/). For a results folder the files go into the folder.")
+    p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV file")
+    p.add_argument("--html", metavar="FILE", help="HTML report path (default: SOURCE/report.html)")
+    p.add_argument("--markdown", metavar="FILE",
+                   help="Markdown report path (default: SOURCE/report.md; '-' prints it)")
+    p.add_argument("--compact", action="store_true",
+                   help="short Markdown for a CI job summary page (verdict, effects, warnings)")
+    p.add_argument("--factors", metavar="A,B", help="factor columns (required for a CSV)")
+    p.add_argument("--response", metavar="COL", help="response column (default: the analysis' "
+                   "response, else wall_s)")
+    p.set_defaults(func=main)
+
+
+def main(args) -> int:
+    import sys
+    from pathlib import Path
+
+    from benchharness.errors import UsageError
+    from benchharness.report import build_report
+    from benchharness.report.html import write_html
+    from benchharness.report.markdown import render_markdown, write_markdown
+
+    src = Path(args.source)
+    factors = None
+    if args.factors:
+        factors = [f.strip() for f in args.factors.split(",") if f.strip()]
+        if not factors:
+            raise UsageError("--factors needs at least one column name (A,B,...)")
+    if src.is_dir():
+        base, stem = src, "report"
+    else:
+        base, stem = src.parent, f"{src.stem}.report"
+    html = Path(args.html) if args.html else base / f"{stem}.html"
+    to_stdout = args.markdown == "-"
+    md = None if to_stdout else (Path(args.markdown) if args.markdown else base / f"{stem}.md")
+    data, figs = build_report(src, response=args.response, factors=factors)
+    fig_root = (md.parent if md is not None else html.parent)
+    figs.save(fig_root)
+    write_html(data, figs, html)
+    if to_stdout:
+        sys.stdout.write(render_markdown(data, figs, compact=args.compact))
+        print(f"report: {html}", file=sys.stderr)
+        return 0
+    import os
+
+    rel = os.path.relpath(fig_root / "figures", md.parent)
+    write_markdown(data, figs, md, compact=args.compact, figures_rel=rel)
+    from benchharness.report.story import verdict
+
+    print(verdict(data)["headline"])
+    print(f"reports: {html}\n         {md}\nfigures: {fig_root / 'figures'}")
+    return 0

@@ -1,0 +1,163 @@
+"""`benchharness size`: how many replicates per cell a decision needs (power analysis)."""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser(
+        "size", help="replicates per cell needed to detect a given ratio",
+        description="Replicates per cell so that the ANOVA detects, with the given power, a "
+                    "ratio of --detect between two levels of any factor (noncentral F; see "
+                    "docs/design.md).")
+    p.add_argument("--detect", required=True, metavar="PCT",
+                   help="smallest ratio between two levels that must be found, e.g. 3%%")
+    noise = p.add_mutually_exclusive_group()
+    noise.add_argument("--noise-cv", metavar="PCT",
+                       help="run-to-run coefficient of variation of the response, e.g. 2%%")
+    noise.add_argument("--pilot", metavar="RESULTS",
+                       help="earlier results folder (or tidy CSV): noise and run times from it")
+    p.add_argument("--levels", metavar="LIST|FILE",
+                   help="levels per factor, e.g. 3,2,4, or an experiment file "
+                        "(default: the pilot's experiment)")
+    p.add_argument("--alpha", type=float, default=0.05, help="false-alarm rate (default 0.05)")
+    p.add_argument("--power", type=float, default=0.9, help="wanted power (default 0.9)")
+    p.add_argument("--for", dest="target", choices=("anova", "pairwise"), default="anova",
+                   help="size the main-effect F tests (default) or the Holm-adjusted pairwise "
+                        "comparisons between levels (needs more)")
+    p.add_argument("--response", default="wall_s",
+                   help="response column of the pilot (default wall_s)")
+    p.add_argument("--json", action="store_true", help="print the answer as JSON")
+    p.set_defaults(func=main)
+
+
+def _percent(text: str, what: str) -> float:
+    from benchharness.errors import UsageError
+    from benchharness.yamlnodes import parse_percent
+
+    v = parse_percent(text)
+    if v is None or v <= 0:
+        raise UsageError(f"{what} {text!r} is not a positive percentage; write e.g. 3%")
+    return v
+
+
+def _factors_from_levels(text: str):
+    """(factors [(name, levels)], cells, experiment or None) from --levels."""
+    from benchharness.errors import UsageError
+
+    if os.path.exists(text) or text.endswith((".yaml", ".yml")):
+        from benchharness.experiment import load_experiment
+
+        exp = load_experiment(text)
+        return _factors_from_experiment(exp) + (exp,)
+    try:
+        counts = [int(t) for t in text.split(",") if t.strip()]
+    except ValueError:
+        raise UsageError(f"--levels {text!r}: give counts like 3,2,4 or an experiment file "
+                         f"that exists") from None
+    if not counts:
+        raise UsageError("--levels is empty; give counts like 3,2,4")
+    from benchharness.design.words import LETTERS
+
+    names = [LETTERS[i] if i < len(LETTERS) else f"f{i + 1}" for i in range(len(counts))]
+    return list(zip(names, counts)), None, None
+
+
+def _factors_from_experiment(exp):
+    from benchharness.design.spec import design_of
+
+    choice = design_of(exp)
+    cells = choice.design.n_cells if choice.changes_plan else None
+    return [(f.name, len(f.levels)) for f in exp.factors], cells
+
+
+def main(args) -> int:
+    from benchharness.design import budget, sizing
+    from benchharness.errors import UsageError
+
+    detect = _percent(args.detect, "--detect")
+    pilot_df = pilot_exp = None
+    if args.pilot:
+        from benchharness.source import load_table
+
+        if os.path.isdir(args.pilot):
+            pilot_df, pilot_exp = load_table(args.pilot)
+        else:
+            if not args.levels:
+                raise UsageError("a CSV pilot needs --levels FILE (an experiment file naming "
+                                 "the factors)")
+    exp = None
+    if args.levels:
+        factors, cells, exp = _factors_from_levels(args.levels)
+    elif pilot_exp is not None:
+        factors, cells = _factors_from_experiment(pilot_exp)
+        exp = pilot_exp
+    else:
+        raise UsageError("say what the factors are: --levels 3,2,4, --levels FILE, or --pilot "
+                         "RESULTS")
+    if args.pilot and pilot_df is None:
+        from benchharness.source import load_table
+
+        names = [n for n, _ in factors]
+        pilot_df, _ = load_table(args.pilot, factors=names)
+    sigma_note = ""
+    if args.noise_cv:
+        cv = _percent(args.noise_cv, "--noise-cv")
+        sigma = sizing.sigma_from_cv(cv)
+        sigma_note = f"CV {cv * 100:g}% -> sd of ln({args.response}) {sigma:.4g}"
+    elif pilot_df is not None:
+        pf = [f for f in (pilot_exp.factor_names if pilot_exp else [n for n, _ in factors])
+              if f in pilot_df.columns]
+        pn = sizing.pilot_noise(pilot_df, pf, args.response)
+        sigma = pn.sigma_log
+        sigma_note = (f"pilot: sd of ln({args.response}) {sigma:.4g} from {pn.runs} runs in "
+                      f"{pn.cells} cells ({pn.df} df)")
+    else:
+        raise UsageError("say how noisy the runs are: --noise-cv 2% or --pilot RESULTS")
+    ans = sizing.size_design(factors, detect, sigma, alpha=args.alpha, power=args.power,
+                             method=args.target, cells=cells)
+    out = ans.to_json_dict()
+    out["noise"] = sigma_note
+    if pilot_df is not None:
+        timing = budget.pilot_timing(pilot_df, [n for n, _ in factors], args.response)
+        per_run = timing.mean_s + timing.overhead_s
+        out["expected_run_s"] = per_run
+        out["expected_wall_s"] = per_run * ans.runs
+        warm = exp.warmup if exp is not None else 0
+        if warm:
+            out["expected_wall_s"] += per_run * warm * ans.cells
+    if args.json:
+        json.dump(out, sys.stdout, indent=1)
+        sys.stdout.write("\n")
+        return 0
+    print(format_answer(ans, out))
+    return 0
+
+
+def format_answer(ans, out: dict) -> str:
+    from benchharness.design.budget import fmt_s
+
+    what = ("Holm-adjusted pairwise comparisons" if ans.method == "pairwise"
+            else "main-effect F tests")
+    lines = [f"replicates per cell: {ans.replicates}  (to detect a {ans.detect * 100:g}% ratio "
+             f"with power {ans.target_power:g} at alpha {ans.alpha:g}, {what})",
+             f"noise: {out['noise']}"]
+    width = max(len(n) for n in ans.per_factor)
+    lines.append(f"  {'factor':<{width}}  replicates  power at {ans.replicates}")
+    for name, n in ans.per_factor.items():
+        mark = "  <- needs the most" if name == ans.binding_factor and len(ans.per_factor) > 1 \
+            else ""
+        lines.append(f"  {name:<{width}}  {n:>10}  {ans.per_factor_power[name]:.3f}{mark}")
+    lines.append(f"timed runs: {ans.runs} ({ans.replicates} x {ans.cells} cells)")
+    lines.append(f"power of {ans.binding_factor} at other replicate counts: "
+                 + ", ".join(f"{n}: {p:.2f}" for n, p in ans.curve))
+    if "expected_wall_s" in out:
+        lines.append(f"expected time: about {fmt_s(out['expected_wall_s'])} "
+                     f"({fmt_s(out['expected_run_s'])} per run from the pilot, overhead "
+                     f"included)")
+    for note in ans.notes:
+        lines.append(f"note: {note}")
+    return "\n".join(lines)

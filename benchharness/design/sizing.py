@@ -1,0 +1,226 @@
+"""Replicate sizing: how many replicates per cell a decision needs.
+
+Power of the ANOVA F test of a main effect, by the noncentral F distribution
+(Montgomery, *Design and Analysis of Experiments*, §5.3; the operating
+characteristic of the fixed-effects model). Timings are analysed on the log
+scale, so a ratio to detect becomes a difference ``D = ln(1 + detect)``, and a
+coefficient of variation CV of the run times becomes the log-scale standard
+deviation ``sigma = sqrt(ln(1 + CV^2))`` (lognormal model, common practice).
+
+For a factor with ``a`` levels in a design of ``cells`` cells (the other
+factors form ``b = cells / a`` combinations), with ``n`` replicates per cell,
+the worst case for a smallest difference D is two levels D apart and the rest
+midway, so sum(tau_i^2) = D^2/2 and the non-centrality is
+
+    lambda = n * b * D^2 / (2 * sigma^2),
+
+with ``a - 1`` numerator and ``cells * (n - 1)`` denominator degrees of freedom
+(the error of the model with all interactions). Each factor needs its own n;
+the answer is the largest.
+
+``for: pairwise`` sizes instead for the pairwise comparisons between the levels
+of each factor that users act on, Holm-adjusted (Holm 1979) over the
+a(a-1)/2 pairs of the factor. Holm's first step is Bonferroni and Holm rejects
+everything Bonferroni rejects, so the power of a two-sided t test at level
+alpha / (a(a-1)/2) (noncentral t, shift D / (sigma * sqrt(2 / (n b)))) is a
+conservative bound on the power to detect the pair that differs by D. For
+two-level factors it equals the F-test power (t^2 = F).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Mapping, Sequence
+
+from benchharness.errors import UsageError
+
+MAX_REPLICATES = 100_000
+
+
+def sigma_from_cv(cv: float) -> float:
+    """Log-scale SD of a lognormal with coefficient of variation ``cv``."""
+    return math.sqrt(math.log1p(cv * cv))
+
+
+def log_difference(detect: float) -> float:
+    """``D = ln(1 + detect)`` for a relative difference (0.03 = 3%)."""
+    return math.log1p(detect)
+
+
+def noncentrality(n: int, a: int, cells: int, D: float, sigma: float) -> float:
+    b = cells / a
+    return n * b * D * D / (2.0 * sigma * sigma)
+
+
+def f_power(n: int, a: int, cells: int, D: float, sigma: float, alpha: float) -> float:
+    """Power of the main-effect F test of an a-level factor with n replicates per cell."""
+    from scipy import stats
+
+    df1 = a - 1
+    df2 = cells * (n - 1)
+    if df2 <= 0 or df1 <= 0:
+        return 0.0
+    crit = stats.f.isf(alpha, df1, df2)
+    return float(stats.ncf.sf(crit, df1, df2, noncentrality(n, a, cells, D, sigma)))
+
+
+def pairwise_power(n: int, a: int, cells: int, D: float, sigma: float, alpha: float) -> float:
+    """Bonferroni bound on Holm power for the pair of levels D apart (two-sided t)."""
+    from scipy import stats
+
+    df = cells * (n - 1)
+    if df <= 0 or a < 2:
+        return 0.0
+    m = a * (a - 1) // 2
+    b = cells / a
+    delta = D / (sigma * math.sqrt(2.0 / (n * b)))
+    crit = stats.t.isf(alpha / (2.0 * m), df)
+    return float(stats.nct.sf(crit, df, delta) + stats.nct.cdf(-crit, df, delta))
+
+
+POWER_FUNCTIONS = {"anova": f_power, "pairwise": pairwise_power}
+
+
+def replicates_needed(a: int, cells: int, D: float, sigma: float, alpha: float, power: float,
+                      method: str = "anova") -> int:
+    """Smallest n >= 2 reaching ``power`` (power grows with n: doubling then bisection)."""
+    fn = POWER_FUNCTIONS[method]
+    lo, hi = 1, 2
+    while fn(hi, a, cells, D, sigma, alpha) < power:
+        lo, hi = hi, hi * 2
+        if hi > MAX_REPLICATES:
+            raise UsageError(f"more than {MAX_REPLICATES} replicates per cell would be needed; "
+                             f"the difference to detect is tiny next to the noise")
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if fn(mid, a, cells, D, sigma, alpha) >= power:
+            hi = mid
+        else:
+            lo = mid
+    return hi
+
+
+@dataclass(frozen=True)
+class SizingAnswer:
+    replicates: int
+    power: float                       # achieved by the binding factor at `replicates`
+    runs: int                          # timed runs = replicates * cells
+    cells: int
+    per_factor: Mapping[str, int]
+    per_factor_power: Mapping[str, float]
+    binding_factor: str
+    curve: tuple[tuple[int, float], ...]   # (n, power of the binding factor)
+    detect: float
+    sigma_log: float
+    alpha: float
+    target_power: float
+    method: str
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    def to_json_dict(self) -> dict:
+        return {
+            "replicates": self.replicates, "power": self.power, "runs": self.runs,
+            "per_factor": dict(self.per_factor),
+            "per_factor_power": dict(self.per_factor_power),
+            "binding_factor": self.binding_factor, "cells": self.cells,
+            "power_at": [{"replicates": n, "power": p} for n, p in self.curve],
+            "detect": self.detect, "log_difference": log_difference(self.detect),
+            "sigma_log": self.sigma_log, "alpha": self.alpha, "target_power": self.target_power,
+            "for": self.method, "notes": list(self.notes),
+        }
+
+
+def size_design(factors: Sequence[tuple[str, int]], detect: float, sigma_log: float,
+                alpha: float = 0.05, power: float = 0.9, method: str = "anova",
+                cells: int | None = None) -> SizingAnswer:
+    """Replicates per cell so every factor's main effect of size ``detect`` is found.
+
+    ``factors`` = [(name, number of levels)]; ``cells`` defaults to the full
+    factorial (pass a fraction's cell count for a fractional design).
+    """
+    if method not in POWER_FUNCTIONS:
+        raise UsageError(f"--for {method!r}: use 'anova' (main-effect F tests) or 'pairwise' "
+                         f"(Holm-adjusted comparisons between levels)")
+    if not factors:
+        raise UsageError("no factors to size for; give --levels 3,2,4 or an experiment file")
+    if not detect > 0:
+        raise UsageError("the difference to detect must be positive, like 3%")
+    if not sigma_log > 0:
+        raise UsageError("the noise must be positive (a CV like 2%, or a pilot with "
+                         "varying run times)")
+    if not 0 < alpha < 1 or not 0 < power < 1:
+        raise UsageError("--alpha and --power must lie strictly between 0 and 1")
+    for name, a in factors:
+        if a < 2:
+            raise UsageError(f"factor {name!r} has {a} level(s); a factor needs at least 2")
+    if cells is None:
+        cells = math.prod(a for _, a in factors)
+    D = log_difference(detect)
+    per = {name: replicates_needed(a, cells, D, sigma_log, alpha, power, method)
+           for name, a in factors}
+    n = max(per.values())
+    fn = POWER_FUNCTIONS[method]
+    pf = {name: fn(n, a, cells, D, sigma_log, alpha) for name, a in factors}
+    order = {name: i for i, (name, _a) in enumerate(factors)}
+    binding = min(pf, key=lambda k: (pf[k], order[k]))
+    a_bind = dict(factors)[binding]
+    others = sorted({m for m in (2, 3, n // 2, n - 1, n, n + 1, 2 * n) if m >= 2})
+    curve = tuple((m, fn(m, a_bind, cells, D, sigma_log, alpha)) for m in others)
+    notes = []
+    if method == "pairwise":
+        notes.append("pairwise power is a Bonferroni lower bound for Holm-adjusted comparisons "
+                     "within each factor")
+    return SizingAnswer(replicates=n, power=pf[binding], runs=n * cells, cells=cells,
+                        per_factor=per, per_factor_power=pf, binding_factor=binding, curve=curve,
+                        detect=detect, sigma_log=sigma_log, alpha=alpha, target_power=power,
+                        method=method, notes=tuple(notes))
+
+
+# -- noise from a pilot -------------------------------------------------------------
+
+@dataclass(frozen=True)
+class PilotNoise:
+    sigma_log: float       # pooled within-cell SD of ln(response)
+    df: int                # its degrees of freedom
+    runs: int              # ok runs used
+    cells: int             # cells with at least one ok run
+
+
+def pilot_noise(runs, factors: Sequence[str], response: str = "wall_s") -> PilotNoise:
+    """Pooled within-cell SD of ln(response) from a runs table (ok runs only).
+
+    Within-cell pooling (the error of the cell-means model) is free of any
+    factor effect, so the pilot may be any design with replicated cells.
+    """
+    import numpy as np
+
+    df = runs
+    if "status" in df.columns:
+        df = df[df["status"] == "ok"]
+    if response not in df.columns:
+        raise UsageError(f"the pilot has no column {response!r}")
+    y = df[response].astype(float)
+    df = df[y > 0]
+    if len(df) == 0:
+        raise UsageError(f"the pilot has no successful runs with a positive {response}")
+    missing = [f for f in factors if f not in df.columns]
+    if missing:
+        raise UsageError(f"the pilot has no factor column {missing[0]!r}")
+    logy = np.log(df[response].astype(float).to_numpy())
+    if factors:
+        keys = df[list(factors)].astype(str).agg("\x1f".join, axis=1).to_numpy()
+    else:
+        keys = np.zeros(len(df), dtype=int)
+    ss = 0.0
+    dof = 0
+    uniq = set(keys.tolist())
+    for k in uniq:
+        v = logy[keys == k]
+        if len(v) > 1:
+            ss += float(((v - v.mean()) ** 2).sum())
+            dof += len(v) - 1
+    if dof == 0:
+        raise UsageError("the pilot has no cell with two or more successful runs, so its noise "
+                         "cannot be estimated; run the pilot with replicates: 2 or more")
+    return PilotNoise(sigma_log=math.sqrt(ss / dof), df=dof, runs=len(df), cells=len(uniq))

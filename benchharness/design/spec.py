@@ -1,0 +1,227 @@
+"""The ``design:`` section of the experiment file: which cells, which blocks.
+
+Forms (keys may be combined where it makes sense)::
+
+    design: {type: fractional, generators: ["D = AB", "E = AC"]}
+    design: {type: fractional, resolution: 4}      # smallest fraction of resolution IV
+    design: {cells: 16}                            # 16-cell fraction, minimum aberration
+    design: {blocks: 4}                            # confound chosen interactions with 4 blocks
+    design: {block_on: ["ABC", "BCD"]}             # ... or the interactions given
+    design: {resolution: 4, blocks: 2}             # a blocked fraction
+
+``type`` is ``full`` (default) or ``fractional``; ``generators``,
+``resolution`` and ``cells`` imply ``fractional``. Fractions and confounded
+blocks need every factor to have exactly two levels (first listed = -1).
+Validation errors point at ``FILE:LINE:COL`` of the offending value.
+
+`design_of(exp)` returns a `DesignChoice`; `benchharness.design.build_plan`
+turns it into plan cells, blocks and the design facts shown by ``plan``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from benchharness.design.blocking import Blocking, blocking_from_words, choose_blocking
+from benchharness.design.fractional import (
+    DesignError, FractionalDesign, design_for_cells, design_for_resolution,
+    design_from_generators, full_design, roman,
+)
+from benchharness.yamlnodes import (
+    as_int, expect_mapping, node_error, scalar_text, sequence_items,
+)
+
+KEYS = ("type", "generators", "resolution", "cells", "blocks", "block_on")
+TYPES = ("full", "fractional")
+#: Keys `DesignChoice.info` adds to ``Plan.info`` (shown by `describe_info`).
+DESIGN_INFO_KEYS = ("design", "resolution", "defining_relation", "aliases",
+                    "confounded_with_blocks")
+
+
+@dataclass(frozen=True)
+class DesignChoice:
+    """What the design section asks for. ``design`` None = general full factorial."""
+
+    design: FractionalDesign | None = None
+    blocking: Blocking | None = None
+
+    @property
+    def changes_plan(self) -> bool:
+        return self.design is not None and (self.design.is_fraction or self.blocking is not None)
+
+    def cells(self) -> list[dict[str, str]] | None:
+        if not self.changes_plan:
+            return None
+        return self.design.cells()
+
+    def blocks_of_cell(self) -> list[int] | None:
+        if self.blocking is None:
+            return None
+        return self.blocking.block_of_cells()
+
+    def info(self) -> dict:
+        """Design facts for ``plan --json`` and ``design.json`` (JSON-ready)."""
+        if not self.changes_plan:
+            return {}
+        d = self.design.to_json_dict()
+        info: dict = {"design": d}
+        if self.design.is_fraction:
+            info["resolution"] = d["resolution"]
+            info["defining_relation"] = d["defining_relation"]
+            info["aliases"] = d["aliases"]
+        if self.blocking is not None:
+            b = self.blocking.to_json_dict()
+            d["blocking"] = b
+            info["confounded_with_blocks"] = b["confounded_with_blocks"]
+        return info
+
+    def describe(self) -> list[str]:
+        if not self.changes_plan:
+            return []
+        lines = self.design.describe()
+        if self.blocking is not None:
+            lines += self.blocking.describe()
+        return lines
+
+
+def _factors(exp):
+    return [(f.name, f.labels) for f in exp.factors]
+
+
+def design_of(exp) -> DesignChoice:
+    """Read and validate ``exp.sections['design']``."""
+    node = getattr(exp, "sections", {}).get("design")
+    if node is None:
+        return DesignChoice()
+    path = getattr(exp, "path", None)
+    keys = expect_mapping(node, "'design'", KEYS)
+    kind = "full"
+    if "type" in keys:
+        kind = scalar_text(keys["type"], "'design: type'")
+        if kind not in TYPES:
+            raise node_error(keys["type"], f"design type {kind!r} is not known; use 'full' or "
+                                           f"'fractional'")
+    fraction_keys = [k for k in ("generators", "resolution", "cells") if k in keys]
+    if kind == "full" and fraction_keys and "type" in keys:
+        raise node_error(keys[fraction_keys[0]],
+                         f"'{fraction_keys[0]}' makes a fractional design but 'type' is 'full'; "
+                         f"write 'type: fractional' or drop '{fraction_keys[0]}'")
+    if fraction_keys:
+        kind = "fractional"
+    if len(fraction_keys) > 1:
+        raise node_error(keys[fraction_keys[1]],
+                         f"give only one of 'generators', 'resolution' and 'cells' "
+                         f"(found {', '.join(fraction_keys)})")
+    if kind == "fractional" and not fraction_keys:
+        raise node_error(node, "a fractional design needs 'generators' (e.g. [\"D = ABC\"]), "
+                               "'resolution' (3, 4 or 5) or 'cells' (e.g. 16)")
+    if "blocks" in keys and "block_on" in keys:
+        raise node_error(keys["block_on"], "give 'blocks' (chosen automatically) or 'block_on' "
+                                           "(the interactions to confound), not both")
+    if kind == "full" and "blocks" not in keys and "block_on" not in keys:
+        return DesignChoice()
+
+    def located(key):
+        class _Ctx:
+            def __enter__(self):
+                return self
+
+            def __exit__(self, et, ev, tb):
+                if isinstance(ev, DesignError):
+                    raise node_error(keys.get(key, node), f"design: {ev.bare}", path) from None
+                return False
+        return _Ctx()
+
+    factors = _factors(exp)
+    first_key = fraction_keys[0] if fraction_keys else ("blocks" if "blocks" in keys else "block_on")
+    with located(first_key):
+        if kind == "full":
+            design = full_design(factors)
+        elif "generators" in keys:
+            gens = [scalar_text(g, "a generator") for g in
+                    sequence_items(keys["generators"], "'design: generators'")]
+            if not gens:
+                raise DesignError("generators is empty; give one or more like 'D = ABC'")
+            design = _generators_located(factors, keys["generators"], gens, path)
+        elif "resolution" in keys:
+            r = as_int(keys["resolution"], "'design: resolution'", minimum=3)
+            design = design_for_resolution(factors, r)
+        else:
+            n = as_int(keys["cells"], "'design: cells'", minimum=2)
+            design = design_for_cells(factors, n)
+    blocking = None
+    if "blocks" in keys:
+        with located("blocks"):
+            blocking = choose_blocking(design, as_int(keys["blocks"], "'design: blocks'",
+                                                      minimum=2))
+    elif "block_on" in keys:
+        words = [scalar_text(w, "a block word") for w in
+                 sequence_items(keys["block_on"], "'design: block_on'")]
+        with located("block_on"):
+            blocking = blocking_from_words(design, words)
+    return DesignChoice(design, blocking)
+
+
+def _generators_located(factors, seq_node, gens, path):
+    """Build the fraction; an error in one generator points at that generator's line."""
+    from benchharness.design.fractional import _two_level_labels
+
+    _two_level_labels(factors)   # level-count errors belong to the factors, not a generator
+    for i, gnode in enumerate(seq_node.value):
+        try:
+            design_from_generators(factors, gens[:i + 1])
+        except DesignError as e:
+            msg = e.bare[len("generator "):] if e.bare.startswith("generator ") else e.bare
+            raise node_error(gnode, f"design: generator {msg}", path) from None
+    return design_from_generators(factors, gens)
+
+
+def describe_info(info: dict) -> list[str]:
+    """Plain lines for `benchharness plan` from the JSON design facts (`DesignChoice.info`)."""
+    d = info.get("design")
+    if not d:
+        return []
+    lines = []
+    letters = ", ".join(f"{a}={n}" for a, n in d["factors"].items())
+    if d["type"] == "fractional":
+        lines.append(f"design      fractional factorial {d['fraction']}: {d['cells']} cells, "
+                     f"resolution {roman(d['resolution'])}")
+    else:
+        lines.append(f"design      full two-level factorial {d['fraction']}: {d['cells']} cells")
+    lines.append(f"  letters   {letters} (first listed level = -1, second = +1)")
+    if d["type"] == "fractional":
+        how = "chosen by minimum aberration" if "generator_search" in d else "as given"
+        lines.append(f"  generators ({how}): " + ", ".join(d["generators"]))
+        gs = d.get("generator_search")
+        if gs and not gs.get("exhaustive", True):
+            lines.append("  note: the generator search hit its work limit; this is the best "
+                         "design found, not proven minimum aberration")
+        lines.append("  defining relation: I = " + " = ".join(d["defining_relation"]))
+        wlp = d["word_length_pattern"]
+        lines.append("  word-length pattern (words of length 3, 4, ...): "
+                     + " ".join(str(c) for c in wlp[2:]))
+        lines.append("  aliases (up to three-factor interactions):")
+        for eff, al in d["aliases"].items():
+            if al:
+                lines.append(f"    {eff} = " + " = ".join(al))
+        clear = d["clear_effects"]
+        lines.append("  clear (aliased with no main effect or two-factor interaction): "
+                     + (", ".join(clear) if clear else "none"))
+    b = d.get("blocking")
+    if b:
+        per = d["cells"] // b["blocks"]
+        how = "chosen to keep confounded effects of highest order" if "block_search" in b \
+            else "as given"
+        lines.append(f"  blocks    {b['blocks']} per replicate, {per} cells each; generators "
+                     f"({how}): " + ", ".join(b["block_generators"]))
+        chains = b.get("confounded_with_blocks_aliases", {})
+        parts = []
+        for w in b["confounded_with_blocks"]:
+            al = chains.get(w) or []
+            parts.append(w + (" (= " + " = ".join(al) + ")" if al else ""))
+        lines.append("  confounded with blocks: " + ", ".join(parts))
+        low = [w for w in b["confounded_with_blocks"] if len(w) <= 2]
+        if low:
+            lines.append("  warning: two-factor interactions confounded with blocks: "
+                         + ", ".join(low))
+    return lines

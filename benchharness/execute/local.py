@@ -1,0 +1,255 @@
+"""Local execution: runs commands on this machine through the launcher process.
+
+`LocalExecutor` implements the `Executor` protocol of `benchharness.execute.base`.
+It owns one launcher process (`benchharness/execute/launcher.py`, stdlib only)
+and sends it one `RunSpec` at a time over a pipe; the launcher spawns, times and
+reaps the child and answers with the measurement. Why a separate process: on
+Linux ``ru_maxrss`` of a child includes the peak of the address space it was
+spawned from, so children of a big harness would report the harness's size; the
+launcher's address space is small and reset (``/proc/self/clear_refs``) before
+each spawn. See ``docs/execution.md`` for what each figure means.
+
+The resource figures come from ``wait4(2)`` (Linux ``getrusage`` fields, KiB for
+``ru_maxrss`` — common practice). Noise controls (CPU affinity, niceness, ASLR
+off) follow the advice of Mytkowicz et al. (2009), "Producing wrong data without
+doing anything obviously wrong!".
+"""
+
+from __future__ import annotations
+
+import os
+import select
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+from benchharness.errors import ExecutionError
+from benchharness.execute import launcher as _proto
+from benchharness.execute.base import Measurement, OnStart, RunSpec
+from benchharness.execute.noise import check_cpus
+
+LAUNCHER_PATH = Path(_proto.__file__).resolve()
+
+
+class LocalExecutor:
+    """Run `RunSpec`s as local processes, one at a time, and measure them.
+
+    ``kill_grace_s``: time between SIGTERM and SIGKILL when a run times out.
+    ``linger_s``: how long output pipes are still read after the child was
+    reaped (descendants that escaped may hold them open; then reading stops).
+    Use as a context manager or call `close()`.
+    """
+
+    def __init__(self, kill_grace_s: float = 0.5, linger_s: float = 0.1,
+                 python: str | None = None):
+        self.kill_grace_s = float(kill_grace_s)
+        self.linger_s = float(linger_s)
+        self._proc: subprocess.Popen | None = None
+        self._closed = False
+        c2l_r, c2l_w = os.pipe()   # harness -> launcher
+        l2c_r, l2c_w = os.pipe()   # launcher -> harness
+        try:
+            self._proc = subprocess.Popen(
+                [python or sys.executable, "-I", "-S", "-B", str(LAUNCHER_PATH),
+                 str(c2l_r), str(l2c_w)],
+                pass_fds=(c2l_r, l2c_w), stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                close_fds=True, process_group=0,  # Ctrl-C reaches the harness only
+            )
+        except OSError as e:
+            for fd in (c2l_r, c2l_w, l2c_r, l2c_w):
+                os.close(fd)
+            raise ExecutionError(f"cannot start the launcher process: {e}") from e
+        os.close(c2l_r)
+        os.close(l2c_w)
+        self._w = c2l_w
+        self._r = l2c_r
+        hello = self._recv(timeout_s=30)
+        if hello.get("op") != "hello":
+            self._kill_launcher()
+            raise ExecutionError(f"the launcher answered {hello!r} instead of hello")
+        self.launcher_pid: int = hello["pid"]
+        self.subreaper: bool = hello["subreaper"]
+        #: Whether this kernel lets a run turn off ASLR; reason when it does not.
+        self.aslr_control: bool = hello["aslr_control"]
+        self.aslr_reason: str = hello["aslr_reason"]
+        self._current: tuple[int, int] | None = None
+
+    # ---------------------------------------------------------------- protocol
+
+    def _recv(self, timeout_s: float | None = None) -> dict:
+        if timeout_s is not None:
+            ready, _, _ = select.select([self._r], [], [], timeout_s)
+            if not ready:
+                self._kill_launcher()
+                raise ExecutionError(f"the launcher did not answer within {timeout_s:g} s")
+        try:
+            msg = _proto.recv(self._r)
+        except OSError as e:
+            msg = None
+            err = e
+        else:
+            err = None
+        if msg is None:
+            code = self._proc.poll() if self._proc else None
+            if code is None and self._proc is not None:
+                try:
+                    code = self._proc.wait(timeout=2)
+                except subprocess.TimeoutExpired:
+                    code = "still running"
+            self._cleanup_after_death()
+            raise ExecutionError(
+                f"the launcher process died (exit status {code})"
+                + (f": {err}" if err else "") + "; no further runs can be measured")
+        return msg
+
+    def _send(self, obj: dict) -> None:
+        try:
+            _proto.send(self._w, obj)
+        except OSError as e:
+            self._cleanup_after_death()
+            raise ExecutionError(f"the launcher process is gone ({e.strerror or e})") from e
+
+    def _cleanup_after_death(self) -> None:
+        """The launcher is gone: kill the run it was watching, release the pipes."""
+        if self._current is not None:
+            try:
+                os.killpg(self._current[1], signal.SIGKILL)
+            except OSError:
+                pass
+            self._current = None
+        self._closed = True
+        for fd in (self._w, self._r):
+            try:
+                os.close(fd)
+            except OSError:
+                pass
+        self._w = self._r = -1
+        if self._proc is not None:
+            try:
+                self._proc.wait(timeout=5)
+            except subprocess.TimeoutExpired:
+                self._proc.kill()
+                self._proc.wait()
+
+    def _kill_launcher(self) -> None:
+        if self._proc is not None and self._proc.poll() is None:
+            self._proc.kill()
+        self._cleanup_after_death()
+
+    # ---------------------------------------------------------------- API
+
+    def execute(self, spec: RunSpec, on_start: OnStart | None = None) -> Measurement:
+        """Run ``spec`` to completion (or timeout) and return its `Measurement`.
+
+        Raises `ExecutionError` when the request itself is impossible (no
+        command, CPUs that do not exist) or the launcher died; a command that
+        fails, cannot start or times out is a `Measurement` with status
+        ``failed``/``timeout``, not an exception.
+        """
+        if self._closed:
+            raise ExecutionError("this executor is closed")
+        if (spec.argv is None) == (spec.shell_command is None):
+            raise ExecutionError("a run needs exactly one of argv and shell_command")
+        if spec.argv is not None and (not spec.argv or not spec.argv[0]):
+            raise ExecutionError("the command is empty")
+        cpus = check_cpus(spec.cpus) if spec.cpus is not None else None
+        req = {
+            "op": "run",
+            "argv": list(spec.argv) if spec.argv is not None else None,
+            "shell_command": spec.shell_command,
+            "env": {str(k): str(v) for k, v in spec.env.items()},
+            "cwd": str(spec.cwd) if spec.cwd is not None else None,
+            "timeout_s": float(spec.timeout_s) if spec.timeout_s is not None else None,
+            "cpus": list(cpus) if cpus else None,
+            "nice": int(spec.nice) if spec.nice is not None else None,
+            "no_aslr": bool(spec.no_aslr),
+            "capture_bytes": int(spec.capture_bytes),
+            "kill_grace_s": self.kill_grace_s,
+            "linger_s": self.linger_s,
+            "notify": on_start is not None,
+        }
+        try:
+            self._send(req)
+            msg = self._recv()
+            if msg.get("op") == "started":
+                self._current = (msg["pid"], msg["pgid"])
+                if on_start is not None:
+                    on_start(msg["pid"], msg["pgid"])
+                msg = self._recv()
+        except BaseException:
+            # Ctrl-C or an error in on_start: the launcher kills the run's tree
+            # when our end of its pipe closes; wait for that, then re-raise.
+            if not self._closed:
+                self._shutdown(hard=True)
+            raise
+        self._current = None
+        if msg.get("op") != "done":
+            self._kill_launcher()
+            raise ExecutionError(f"unexpected message from the launcher: {msg.get('op')!r}")
+        return _measurement(msg)
+
+    def leftovers(self) -> list[int]:
+        """Pids of processes that earlier runs left running (still alive)."""
+        self._send({"op": "ping"})
+        return list(self._recv(timeout_s=30)["leftovers"])
+
+    def close(self) -> None:
+        """Stop the launcher (processes that runs left behind are not killed)."""
+        if not self._closed:
+            self._shutdown(hard=False)
+
+    def _shutdown(self, hard: bool) -> None:
+        if not hard:
+            try:
+                _proto.send(self._w, {"op": "exit"})
+            except OSError:
+                pass
+        self._closed = True
+        for fd in (self._w, self._r):
+            try:
+                os.close(fd)
+            except OSError:
+                pass
+        self._w = self._r = -1
+        if self._proc is not None:
+            try:
+                self._proc.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                self._proc.kill()
+                self._proc.wait()
+        self._current = None
+
+    def __enter__(self) -> "LocalExecutor":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def __del__(self):  # pragma: no cover - best effort at interpreter exit
+        try:
+            if not self._closed and self._proc is not None:
+                self._shutdown(hard=False)
+        except Exception:
+            pass
+
+
+def _measurement(msg: dict) -> Measurement:
+    ru = msg.get("rusage")
+    wall_ns = msg.get("wall_ns")
+    usage = {}
+    if ru is not None:
+        user, sys_, maxrss, minflt, majflt, nvcsw, nivcsw, inblk, oublk = ru
+        usage = dict(user_s=float(user), sys_s=float(sys_), max_rss_kib=int(maxrss),
+                     minor_faults=int(minflt), major_faults=int(majflt),
+                     voluntary_switches=int(nvcsw), involuntary_switches=int(nivcsw),
+                     in_blocks=int(inblk), out_blocks=int(oublk))
+    return Measurement(
+        status=msg["status"], exit_code=msg.get("exit_code"),
+        wall_s=None if wall_ns is None else wall_ns / 1e9,
+        started_at=msg["started_at"], message=msg.get("message", ""),
+        stdout_tail=msg.get("stdout", b""), stderr_tail=msg.get("stderr", b""),
+        extra=dict(msg.get("extra") or {}), **usage)
+
+
+__all__ = ["LocalExecutor", "LAUNCHER_PATH"]

@@ -1,0 +1,118 @@
+"""The ``expect:`` section: a run whose exit code or output is wrong has failed.
+
+A fast wrong answer is not a result. ``expect`` states what a correct run
+looks like; the runner applies it to every timed and warm-up run:
+
+    expect:
+      exit: 0                 # or a list: [0, 3]; default: 0
+      stdout: '^checksum 9f2c' # regular expression searched in stdout (re.MULTILINE)
+      stderr: '^$'             # ... and in stderr
+
+Regular expressions are Python's `re` syntax, searched (not fully matched) in
+the kept tail of each stream (the last ``RunSpec.capture_bytes``, 64 KiB by
+default), decoded as UTF-8 with replacement characters.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, replace
+
+from benchharness.execute.base import Measurement
+
+
+@dataclass(frozen=True)
+class ExpectSpec:
+    exit_codes: tuple[int, ...] = (0,)
+    stdout: re.Pattern | None = None
+    stderr: re.Pattern | None = None
+
+    def to_json_dict(self) -> dict:
+        return {"exit": list(self.exit_codes),
+                "stdout": self.stdout.pattern if self.stdout else None,
+                "stderr": self.stderr.pattern if self.stderr else None}
+
+
+def compile_regex(node, what: str) -> re.Pattern:
+    from benchharness import yamlnodes as yn
+
+    text = yn.as_str(node, what)
+    try:
+        return re.compile(text, re.MULTILINE)
+    except re.error as exc:
+        raise yn.node_error(node, f"{what} is not a valid regular expression ({exc}); "
+                                  "write Python `re` syntax, e.g. 'checksum [0-9a-f]+'") from None
+
+
+def parse_expect(node) -> ExpectSpec:
+    """Validate the ``expect:`` node (errors name FILE:LINE:COL)."""
+    from benchharness import yamlnodes as yn
+
+    fields = yn.expect_mapping(node, "'expect'", {"exit", "stdout", "stderr"})
+    codes: tuple[int, ...] = (0,)
+    if "exit" in fields:
+        n = fields["exit"]
+        import yaml
+
+        items = yn.sequence_items(n, "'expect: exit'") if isinstance(n, yaml.SequenceNode) \
+            else [n]
+        if not items:
+            raise yn.node_error(n, "'expect: exit' is an empty list; give at least one code")
+        codes = tuple(yn.as_int(i, "'expect: exit'") for i in items)
+    return ExpectSpec(
+        exit_codes=codes,
+        stdout=compile_regex(fields["stdout"], "'expect: stdout'") if "stdout" in fields else None,
+        stderr=compile_regex(fields["stderr"], "'expect: stderr'") if "stderr" in fields else None,
+    )
+
+
+def _text(b) -> str:
+    if isinstance(b, bytes):
+        return b.decode("utf-8", "replace")
+    return b or ""
+
+
+def _snippet(text: str, n: int = 120) -> str:
+    t = text.strip().replace("\n", " | ")
+    if not t:
+        return "it was empty"
+    return "it ended with " + repr(t[-n:])
+
+
+def check_expect(spec: ExpectSpec, m: Measurement) -> tuple[bool, str]:
+    """``(ok, reason)``: whether the run's exit code and output are as expected."""
+    if m.status == "timeout":
+        return False, "timed out"
+    if m.exit_code is None:
+        return False, m.message or "the command did not start"
+    if m.exit_code not in spec.exit_codes:
+        want = " or ".join(map(str, spec.exit_codes))
+        return False, f"exit code {m.exit_code}, expected {want}"
+    for name, pattern, raw in (("stdout", spec.stdout, m.stdout_tail),
+                               ("stderr", spec.stderr, m.stderr_tail)):
+        if pattern is None:
+            continue
+        text = _text(raw)
+        if not pattern.search(text):
+            return False, (f"wrong output: {name} does not match /{pattern.pattern}/ "
+                           f"({_snippet(text)})")
+    return True, ""
+
+
+def apply_expect(spec: ExpectSpec | None, m: Measurement) -> Measurement:
+    """The measurement with its status decided by ``spec`` (timeouts are left alone).
+
+    A run whose exit code is listed in ``spec`` and whose output matches is
+    ``ok`` even if the code is not 0; anything else is ``failed`` with the
+    reason in ``message``.
+    """
+    if spec is None or m.status == "timeout":
+        return m
+    ok, reason = check_expect(spec, m)
+    if ok:
+        if m.status == "ok":
+            return m
+        return replace(m, status="ok", message="")
+    if m.status == "failed" and m.exit_code is None:
+        return m     # could not start: the executor's message says why
+    return replace(m, status="failed", message=reason)

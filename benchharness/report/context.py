@@ -1,0 +1,173 @@
+"""The template context shared by the HTML and Markdown reports.
+
+One function turns a `ReportData` and its rendered figures into plain dicts and
+lists the templates lay out; both reports therefore tell the same story in the
+same order (question and verdict, design, effects, ANOVA, comparisons,
+diagnostics, data-quality warnings, appendix).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+
+from benchharness.report import story
+from benchharness.report.data import ReportData, finite
+from benchharness.report.figures import FigureSet
+from benchharness.report.units import describe, fmt_num, fmt_p, fmt_ratio, fmt_value
+
+#: Most comparison rows listed in a report (the rest are in analysis.json).
+MAX_COMPARISONS = 200
+#: Most cells listed in the appendix table.
+MAX_CELLS = 500
+
+SECTIONS = (
+    ("question", "Question and answer"),
+    ("design", "Design"),
+    ("effects", "Effects and interactions"),
+    ("anova", "Analysis of variance"),
+    ("comparisons", "Comparisons"),
+    ("diagnostics", "Diagnostics"),
+    ("warnings", "Data-quality warnings"),
+    ("appendix", "Appendix: reproduce and per-cell summary"),
+)
+
+_METHOD_WORDS = {
+    "pairwise": "pairwise t-tests on the model's error",
+    "tukey": "Tukey HSD",
+    "simple": "simple effects within levels of another factor (Holm)",
+    "declared": "comparisons declared in the experiment file",
+}
+
+
+def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
+    """Everything the templates need, as plain data (strings still unescaped)."""
+    resp = data.response
+    conf = story.confidence_pct(data)
+    verdict = story.verdict(data)
+    anova = []
+    ss_type = data.analysis.get("ss_type")
+    for r in story.anova_rows(data):
+        anova.append({
+            "term": r.get("term"), "df": fmt_num(r.get("df"), 4),
+            "sum_sq": fmt_num(r.get("sum_sq"), 4), "mean_sq": fmt_num(r.get("mean_sq"), 4),
+            "F": fmt_num(r.get("F"), 4), "p": fmt_p(r.get("p")),
+            "eta": fmt_num(r.get("partial_eta_sq"), 2), "omega": fmt_num(r.get("omega_sq"), 2),
+            "significant": r["significant"], "residual": r.get("term") == "Residual",
+        })
+    effects = []
+    has_diff = False
+    for e in data.analysis.get("effects") or []:
+        lo, hi = e.get("lower"), e.get("upper")
+        sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
+        row = {"factor": e.get("factor"), "level": e.get("level"),
+               "reference": e.get("reference"), "ratio": fmt_ratio(e.get("ratio")),
+               "interval": f"{fmt_ratio(lo)} to {fmt_ratio(hi)}", "significant": sig,
+               "difference": ""}
+        if finite(e.get("difference")):
+            has_diff = True
+            row["difference"] = fmt_value(e.get("difference"), resp)
+        effects.append(row)
+    level_means = []
+    for m in data.analysis.get("means") or []:
+        term = m.get("term")
+        if term in data.factors:
+            level_means.append({
+                "factor": term, "level": (m.get("levels") or {}).get(term, ""),
+                "mean": fmt_value(m.get("mean"), resp),
+                "interval": f"{fmt_value(m.get('lower'), resp)} to "
+                            f"{fmt_value(m.get('upper'), resp)}",
+                "n": m.get("n", ""),
+            })
+    comps_all = story.comparisons(data)
+    comps = []
+    for c in comps_all[:MAX_COMPARISONS]:
+        comps.append({
+            "method": _METHOD_WORDS.get(c.get("method"), str(c.get("method"))),
+            "factor": c.get("factor"), "within": c["within_text"],
+            "a": c.get("a"), "b": c.get("b"), "ratio": fmt_ratio(c.get("ratio")),
+            "interval": f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}",
+            "p": fmt_p(c.get("p_adj")), "significant": c["significant"],
+        })
+    diags = []
+    for d in story.diagnostic_items(data):
+        diags.append({**d, "statistic": fmt_num(d["statistic"]) if d["statistic"] is not None
+                      else "", "p": fmt_p(d["p"]) if d["p"] is not None else ""})
+    art = data.analysis.get("art") or (data.analysis.get("diagnostics") or {}).get("art")
+    if isinstance(art, dict) and art.get("terms"):
+        art = {**art, "terms": [{**t, "p_text": fmt_p(t.get("p")),
+                                 "anova_p_text": fmt_p(t.get("anova_p"))} for t in art["terms"]]}
+    else:
+        art = None
+    cells = []
+    for c in story.cell_summary(data)[:MAX_CELLS]:
+        cells.append({
+            "levels": [c["levels"][f] for f in data.factors],
+            "ok": c["ok"], "failed": c["failed"], "timeout": c["timeout"],
+            "median": fmt_value(c["median"], resp), "iqr": fmt_value(c["iqr"], resp),
+            "min": fmt_value(c["min"], resp), "max": fmt_value(c["max"], resp),
+            "mean": fmt_value(c["mean"], resp),
+            "interval": (f"{fmt_value(c['lower'], resp)} to {fmt_value(c['upper'], resp)}"
+                         if finite(c.get("lower")) and finite(c.get("upper")) else ""),
+            "flag": c["timeout"] > 0 or c["failed"] > 0,
+        })
+    n_cells_total = len(story.cell_summary(data)) if len(cells) == MAX_CELLS else len(cells)
+    tr = data.analysis.get("transform") or {}
+    mean_word = "geometric mean" if tr.get("name") == "log" else "estimated mean"
+    return {
+        "title": data.name,
+        "about": data.about,
+        "response": resp,
+        "response_words": describe(resp),
+        "conf": conf,
+        "alpha": f"{data.alpha:g}",
+        "verdict": verdict,
+        "design": story.design_rows(data),
+        "levels": [(f, list(data.levels[f])) for f in data.factors],
+        "host": story.host_summary(dict(data.host or {})),
+        "anova": anova,
+        "ss_type": ss_type,
+        "transform": story.transform_sentence(data),
+        "effects": effects,
+        "has_difference": has_diff,
+        "level_means": level_means,
+        "comparisons": comps,
+        "comparisons_total": len(comps_all),
+        "comparisons_shown": len(comps),
+        "diagnostics": diags,
+        "rank_check": art,
+        "notes": [str(n) for n in data.analysis.get("notes") or []],
+        "report_command": report_command(data),
+        "warnings": story.warnings(data, figs.notes),
+        "cells": cells,
+        "cells_total": n_cells_total,
+        "factors": list(data.factors),
+        "mean_word": mean_word,
+        "reproduce": data.reproduce,
+        "run_from": data.design.get("run_from"),
+        "source": data.source,
+        "folder": str(data.folder) if data.folder else None,
+        "figures_effects": figs.by_section("effects"),
+        "figures_diagnostics": figs.by_section("diagnostics"),
+        "figures": figs.figures,
+        "sections": SECTIONS,
+        "generated": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+        "version": _version(),
+        "compact": compact,
+    }
+
+
+def report_command(data: ReportData) -> str:
+    import shlex
+
+    parts = ["benchharness", "report", data.source]
+    if data.folder is None:
+        parts += ["--factors", ",".join(data.factors)]
+    if data.response != "wall_s":
+        parts += ["--response", data.response]
+    return " ".join(shlex.quote(p) for p in parts)
+
+
+def _version() -> str:
+    from benchharness import __version__
+
+    return __version__

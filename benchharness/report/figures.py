@@ -1,0 +1,690 @@
+"""The report's figures, drawn with matplotlib's Agg and SVG canvases (no pyplot).
+
+Figures: per-cell distributions (box plus every run, faceted by factors); one
+interaction plot per pair of factors (level means with intervals, one line per
+level of the other factor; highlighted when the interaction is significant); the
+main-effect ratio plot with intervals; a normal Q-Q plot of the residuals
+(plotting positions of Blom 1958); residuals against fitted values; residuals
+against run position (drift); the Box-Cox profile log-likelihood (Box & Cox 1964)
+with the chosen λ marked.
+
+Cost does not grow with the number of runs beyond what the point layers need:
+point layers are subsampled past `MAX_POINTS_PER_CELL` runs per cell (and
+`MAX_SCATTER` in the residual plots), the report says so, and point layers are
+rasterised inside SVG files.
+
+The palette is our own choice of eight hues that stay apart under the common
+forms of colour-vision deficiency (chosen along the lines of Okabe & Ito 2008:
+vary lightness as well as hue, avoid pairing red with green).
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from dataclasses import dataclass, field
+from itertools import combinations
+from pathlib import Path
+
+from benchharness.report.data import ReportData, finite
+from benchharness.report.units import axis_label, describe, display_scale, fmt_p, unit_of
+
+# Our palette: deep blue, amber, teal, brick, sky, plum, olive-gold, slate.
+PALETTE = ("#2b5c9e", "#e0a030", "#23917f", "#c2562b", "#6fb3de", "#a8578e",
+           "#bfae3c", "#4d4d4d")
+ACCENT = "#c2562b"        # significant things
+MUTED = "#8a8a8a"         # not significant, reference lines
+INK = "#222222"
+
+MAX_POINTS_PER_CELL = 2000
+MAX_SCATTER = 20000
+
+
+@dataclass(frozen=True)
+class Figure:
+    """One rendered figure."""
+
+    name: str          # file stem under figures/
+    title: str
+    caption: str
+    png: bytes
+    svg: str
+    width_px: int
+    height_px: int
+    highlight: bool = False
+    section: str = "effects"     # effects | diagnostics
+
+
+@dataclass
+class FigureSet:
+    figures: list[Figure] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+    def by_section(self, section: str) -> list[Figure]:
+        return [f for f in self.figures if f.section == section]
+
+    def save(self, folder: Path) -> list[Path]:
+        """Write figures/<name>.png and .svg under ``folder``; returns the paths."""
+        out = Path(folder) / "figures"
+        out.mkdir(parents=True, exist_ok=True)
+        paths = []
+        for f in self.figures:
+            p = out / f"{f.name}.png"
+            p.write_bytes(f.png)
+            s = out / f"{f.name}.svg"
+            s.write_text(f.svg, encoding="utf-8")
+            paths += [p, s]
+        return paths
+
+
+def _rc():
+    return {
+        "font.size": 9.5,
+        "axes.titlesize": 10.5,
+        "axes.labelsize": 9.5,
+        "axes.edgecolor": "#555555",
+        "axes.linewidth": 0.8,
+        "axes.spines.top": False,
+        "axes.spines.right": False,
+        "axes.grid": True,
+        "grid.color": "#e4e4e4",
+        "grid.linewidth": 0.6,
+        "axes.axisbelow": True,
+        "xtick.color": "#333333",
+        "ytick.color": "#333333",
+        "legend.frameon": False,
+        "svg.hashsalt": "benchharness",
+        "svg.fonttype": "none",
+        "path.simplify": True,
+        "figure.dpi": 100,
+    }
+
+
+def _new(width_in: float, height_in: float):
+    from matplotlib.figure import Figure as MplFigure
+
+    return MplFigure(figsize=(width_in, height_in), layout="constrained")
+
+
+def _render(fig, name, title, caption, section="effects", highlight=False,
+            dpi: int = 110) -> Figure:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.backends.backend_svg import FigureCanvasSVG
+
+    FigureCanvasAgg(fig)
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, facecolor="white")
+    png = _compress_png(buf.getvalue())
+    w, h = fig.get_size_inches()
+    fig.set_layout_engine("none")  # keep the layout just computed; the SVG reuses it
+    FigureCanvasSVG(fig)
+    sbuf = io.StringIO()
+    fig.savefig(sbuf, format="svg", facecolor="white", metadata={"Date": None})
+    return Figure(name=name, title=title, caption=caption, png=png, svg=sbuf.getvalue(),
+                  width_px=int(round(w * dpi)), height_px=int(round(h * dpi)),
+                  highlight=highlight, section=section)
+
+
+def _compress_png(raw: bytes) -> bytes:
+    """Quantise to an adaptive 256-colour palette: plots have few colours."""
+    try:
+        from PIL import Image
+    except ImportError:  # pragma: no cover - Pillow ships with matplotlib
+        return raw
+    img = Image.open(io.BytesIO(raw)).convert("RGB")
+    q = img.quantize(colors=256, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
+    out = io.BytesIO()
+    q.save(out, format="PNG", optimize=True)
+    data = out.getvalue()
+    return data if len(data) < len(raw) else raw
+
+
+def _log_ticks(axis, lo: float, hi: float) -> None:
+    """Readable ticks on a log axis: plain numbers, linear steps for a narrow range."""
+    from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter
+
+    if lo > 0 and hi / lo < 20:
+        axis.set_major_locator(MaxNLocator(nbins=6, steps=[1, 2, 2.5, 5, 10]))
+    else:
+        axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    axis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
+    axis.set_minor_formatter(NullFormatter())
+
+
+def _wrap(label: str, width: int = 14) -> str:
+    import textwrap
+
+    label = str(label)
+    if len(label) <= width:
+        return label
+    return "\n".join(textwrap.wrap(label, width, break_long_words=True,
+                                    break_on_hyphens=False)[:4])
+
+
+def _colors(n: int) -> list[str]:
+    return [PALETTE[i % len(PALETTE)] for i in range(n)]
+
+
+def _ok_values(data: ReportData):
+    import numpy as np
+    import pandas as pd
+
+    ok = data.ok_runs
+    y = pd.to_numeric(ok[data.response], errors="coerce")
+    keep = y.notna() & np.isfinite(y)
+    return ok[keep.to_numpy()], y[keep].to_numpy(dtype=float)
+
+
+def _use_log_axis(data: ReportData, y) -> bool:
+    name = (data.analysis.get("transform") or {}).get("name")
+    return bool(len(y) and (y > 0).all() and (name == "log"
+                                               or (y.max() / max(y.min(), 1e-300)) > 30))
+
+
+def _scale_text(data: ReportData) -> str:
+    tr = data.analysis.get("transform") or {}
+    name = tr.get("name", "none")
+    unit = unit_of(data.response)
+    if name == "log":
+        return "log scale"
+    if name == "boxcox":
+        return f"Box-Cox scale, λ = {tr.get('lambda')}"
+    return unit or "as measured"
+
+
+def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
+    """Box plot per cell with every run (or a stated subsample) drawn over it."""
+    import numpy as np
+
+    ok, y = _ok_values(data)
+    factors = list(data.factors)
+    typical = float(np.median(y)) if len(y) else None
+    mult, unit = display_scale(data.response, typical)
+    yv = y * mult
+    f1 = factors[0]
+    col_f = factors[1] if len(factors) > 1 else None
+    row_f = factors[2] if len(factors) > 2 else None
+    inner = [f1] + factors[3:]
+    cols = list(data.levels[col_f]) if col_f else [None]
+    rows = list(data.levels[row_f]) if row_f else [None]
+    # x positions inside a panel: every combination of the inner factors.
+    import itertools
+
+    inner_combos = list(itertools.product(*[data.levels[f] for f in inner]))
+    n_in = len(inner_combos)
+    codes = {}
+    keys = ok[factors].astype(str).to_numpy()
+    for idx, key in enumerate(map(tuple, keys)):
+        codes.setdefault(key, []).append(idx)
+    color_of = dict(zip(data.levels[f1], _colors(len(data.levels[f1]))))
+    width = min(13.0, max(5.0, 1.4 + len(cols) * (0.6 + 0.42 * n_in)))
+    height = min(3.2 * len(rows) + 0.9, 30.0)
+    fig = _new(width, height)
+    axes = fig.subplots(len(rows), len(cols), squeeze=False, sharey=True)
+    subsampled = 0
+    logax = _use_log_axis(data, y)
+    tick_text = ["\n".join(_wrap(x, 10) for x in c) if len(c) > 1 else _wrap(c[0])
+                 for c in inner_combos]
+    longest = max((len(t) for c in inner_combos for t in c), default=1)
+    rot = 30 if n_in * min(longest, 14) > 40 else 0
+    for ri, rv in enumerate(rows):
+        for ci, cv in enumerate(cols):
+            ax = axes[ri][ci]
+            boxes, positions, colors = [], [], []
+            px, py, pc = [], [], []
+            for xi, combo in enumerate(inner_combos):
+                lv = dict(zip(inner, combo))
+                if col_f:
+                    lv[col_f] = cv
+                if row_f:
+                    lv[row_f] = rv
+                key = tuple(lv[f] for f in factors)
+                idx = codes.get(key)
+                if not idx:
+                    continue
+                vals = yv[idx]
+                boxes.append(vals)
+                positions.append(xi)
+                colors.append(color_of[lv[f1]])
+                pts = vals
+                if len(pts) > max_points:
+                    pts = rng.choice(pts, size=max_points, replace=False)
+                    subsampled += 1
+                px.append(xi + rng.uniform(-0.18, 0.18, size=len(pts)))
+                py.append(pts)
+                pc += [color_of[lv[f1]]] * len(pts)
+            if boxes:
+                bp = ax.boxplot(boxes, positions=positions, widths=0.62, showfliers=False,
+                                patch_artist=True, medianprops={"color": INK, "lw": 1.4},
+                                whiskerprops={"color": "#555555"}, capprops={"color": "#555555"},
+                                boxprops={"lw": 0.8, "edgecolor": "#555555"})
+                for patch, c in zip(bp["boxes"], colors):
+                    patch.set_facecolor(c)
+                    patch.set_alpha(0.28)
+                ax.scatter(np.concatenate(px), np.concatenate(py), s=7, c=pc, alpha=0.55,
+                           linewidths=0, rasterized=True, zorder=3)
+            ax.set_xticks(range(n_in))
+            ax.set_xticklabels(tick_text, rotation=rot, ha="right" if rot else "center",
+                               fontsize=8.5)
+            ax.set_xlim(-0.6, n_in - 0.4)
+            if logax:
+                ax.set_yscale("log")
+                _log_ticks(ax.yaxis, float(yv.min()), float(yv.max()))
+            title = []
+            if col_f:
+                title.append(f"{col_f} = {cv}")
+            if row_f:
+                title.append(f"{row_f} = {rv}")
+            if title:
+                ax.set_title(" · ".join(title), fontsize=9.5)
+            if ci == 0:
+                ax.set_ylabel(axis_label(data.response, unit)
+                              + (" — log axis" if logax else ""))
+            if ri == len(rows) - 1:
+                ax.set_xlabel(" · ".join(inner))
+            ax.grid(axis="x", visible=False)
+    note = None
+    if subsampled:
+        note = (f"The distribution plot draws a random {max_points:,} of the runs in each of "
+                f"{subsampled} cell(s) that had more; the boxes use every run.")
+    cap = ("Each box spans the middle half of the runs of one cell (line: median; whiskers: "
+           "1.5 × IQR); dots are individual runs, spread sideways so they do not overlap.")
+    if note:
+        cap += " " + note
+    return _render(fig, "distributions", f"Runs per cell: {describe(data.response)}", cap,
+                   "effects"), note
+
+
+def _pair_means(data: ReportData, a: str, b: str):
+    """{(la, lb): (mean, lower, upper)} from the analysis, else from the runs."""
+    import numpy as np
+
+    term_ab, term_ba = f"{a}:{b}", f"{b}:{a}"
+    got = {}
+    for m in data.analysis.get("means") or []:
+        if m.get("term") in (term_ab, term_ba):
+            lv = m.get("levels") or {}
+            if a in lv and b in lv and finite(m.get("mean")):
+                got[(str(lv[a]), str(lv[b]))] = (m.get("mean"), m.get("lower"), m.get("upper"))
+    if got:
+        return got, True
+    ok, y = _ok_values(data)
+    log = bool(len(y) and (y > 0).all())
+    from scipy import stats
+
+    frame = ok[[a, b]].astype(str).assign(_z=np.log(y) if log else y)
+    for (la, lb), g in frame.groupby([a, b], observed=True)["_z"]:
+        n = len(g)
+        mean = float(g.mean())
+        if n > 1:
+            half = float(stats.t.ppf(1 - data.alpha / 2, n - 1) * g.std(ddof=1) / math.sqrt(n))
+        else:
+            half = float("nan")
+        lo, hi = mean - half, mean + half
+        if log:
+            mean, lo, hi = math.exp(mean), math.exp(lo), math.exp(hi)
+        got[(la, lb)] = (mean, lo, hi)
+    return got, False
+
+
+def interaction(data: ReportData, a: str, b: str) -> Figure:
+    import numpy as np
+
+    means, from_model = _pair_means(data, a, b)
+    term = f"{a}:{b}"
+    row = next((r for r in data.analysis.get("anova") or [] if r.get("term") == term), None)
+    p = row.get("p") if row else None
+    significant = bool(finite(p) and float(p) < data.alpha)
+    la, lb = list(data.levels[a]), list(data.levels[b])
+    vals = [v[0] for v in means.values() if finite(v[0])]
+    mult, unit = display_scale(data.response, float(np.median(vals)) if vals else None)
+    fig = _new(min(8.5, 3.6 + 0.55 * len(la)), 3.5)
+    ax = fig.subplots()
+    colors = _colors(len(lb))
+    dodge = 0.06 if len(lb) > 1 else 0.0
+    for j, (lvb, c) in enumerate(zip(lb, colors)):
+        xs, ms, los, his = [], [], [], []
+        for i, lva in enumerate(la):
+            v = means.get((lva, lvb))
+            if v is None or not finite(v[0]):
+                continue
+            xs.append(i + (j - (len(lb) - 1) / 2) * dodge)
+            ms.append(float(v[0]) * mult)
+            los.append(float(v[1]) * mult if finite(v[1]) else np.nan)
+            his.append(float(v[2]) * mult if finite(v[2]) else np.nan)
+        if not xs:
+            continue
+        ms_a, lo_a, hi_a = np.array(ms), np.array(los), np.array(his)
+        err = np.vstack([np.where(np.isnan(lo_a), 0, ms_a - lo_a),
+                         np.where(np.isnan(hi_a), 0, hi_a - ms_a)])
+        ax.errorbar(xs, ms_a, yerr=err, color=c, marker="o", ms=5, lw=1.8, capsize=3,
+                    label=_wrap(lvb, 24))
+    ax.set_xticks(range(len(la)))
+    ax.set_xticklabels([_wrap(x) for x in la])
+    ax.set_xlabel(a)
+    logscale = (data.analysis.get("transform") or {}).get("name") == "log" and vals \
+        and min(vals) > 0
+    if logscale:
+        ax.set_yscale("log")
+        lo_y, hi_y = ax.get_ylim()
+        _log_ticks(ax.yaxis, lo_y, hi_y)
+    ax.set_ylabel(("mean " if from_model else "geometric mean ")
+                  + axis_label(data.response, unit))
+    ax.legend(title=b, fontsize=8.5, title_fontsize=9, loc="best")
+    if significant:
+        status = f"interaction significant, p {_pw(p)}"
+        ax.set_title(f"{a} × {b}: {status}", color=ACCENT, fontweight="bold")
+        for s in ax.spines.values():
+            s.set_edgecolor(ACCENT)
+            s.set_linewidth(1.6)
+    else:
+        status = (f"no interaction detected, p {_pw(p)}" if row
+                  else "interaction not in the model")
+        ax.set_title(f"{a} × {b}: {status}")
+    if logscale:
+        ax.set_ylabel(ax.get_ylabel() + " — log axis")
+    conf = f"{round((1 - data.alpha) * 100):g}%"
+    cap = (f"Estimated mean of each {a} × {b} combination with its {conf} interval; one line "
+           f"per level of {b}. Parallel lines mean the effect of {a} is the same at every "
+           f"level of {b}; crossing or diverging lines mean it is not.")
+    if logscale:
+        cap += " The axis is logarithmic, so parallel means the same ratio."
+    if not from_model:
+        cap += " (The model has no such term: means and intervals come from the runs directly.)"
+    return _render(fig, f"interaction-{_slug(a)}-{_slug(b)}", f"Interaction of {a} and {b}",
+                   cap, "effects", highlight=significant)
+
+
+def _pw(p) -> str:
+    s = fmt_p(p)
+    return s if s.startswith("<") else f"= {s}"
+
+
+def _slug(text: str) -> str:
+    import re
+
+    s = re.sub(r"[^A-Za-z0-9]+", "-", str(text)).strip("-").lower()
+    return s or "factor"
+
+
+def effects_plot(data: ReportData) -> Figure | None:
+    effects = [e for e in data.analysis.get("effects") or [] if finite(e.get("ratio"))]
+    if not effects:
+        return None
+    import numpy as np
+
+    fig = _new(7.2, min(1.2 + 0.34 * (len(effects) + len(data.factors)), 24))
+    ax = fig.subplots()
+    y = 0
+    ticks, labels = [], []
+    seps = []
+    for f in data.factors:
+        effs = [e for e in effects if e.get("factor") == f]
+        if not effs:
+            continue
+        for e in effs:
+            r, lo, hi = float(e["ratio"]), e.get("lower"), e.get("upper")
+            sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
+            c = ACCENT if sig else MUTED
+            if finite(lo) and finite(hi):
+                ax.plot([float(lo), float(hi)], [y, y], color=c, lw=2.2, solid_capstyle="butt")
+            ax.plot([r], [y], "o", color=c, ms=6.5, mec="white", mew=0.8, zorder=3)
+            ticks.append(y)
+            labels.append(f"{f}: {_wrap(e['level'], 28)} vs {_wrap(e['reference'], 28)}")
+            y -= 1
+        seps.append(y + 0.2)
+        y -= 0.4
+    for s in seps[:-1]:
+        ax.axhline(s, color="#cccccc", lw=0.8)
+    ax.set_ylim(y + 0.6, 0.7)
+    ax.axvline(1.0, color=INK, lw=1, ls="--")
+    ax.set_xscale("log")
+    vals = [float(e["ratio"]) for e in effects]
+    vals += [float(e[k]) for e in effects for k in ("lower", "upper") if finite(e.get(k))]
+    vals = [v for v in vals if v > 0]
+    if vals:
+        lo, hi = min(vals + [1.0]), max(vals + [1.0])
+        span = math.log(hi / lo) if hi > lo else 0.2
+        ax.set_xlim(lo * math.exp(-0.08 * span - 0.02), hi * math.exp(0.08 * span + 0.02))
+    from matplotlib.ticker import FuncFormatter
+
+    lo_x, hi_x = ax.get_xlim()
+    _log_ticks(ax.xaxis, lo_x, hi_x)
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}×"))
+    ax.set_yticks(ticks)
+    ax.set_yticklabels(labels)
+    ax.grid(axis="y", visible=False)
+    name = (data.analysis.get("transform") or {}).get("name")
+    ax.set_xlabel(f"ratio of {describe(data.response)} to the reference level (×, log axis)")
+    conf = f"{round((1 - data.alpha) * 100):g}%"
+    ax.set_title(f"Main effects as ratios with {conf} intervals")
+    cap = ("Each row compares one level with its factor's reference level: 1× means no "
+           "change, 2× twice as much, 0.5× half. Highlighted rows have intervals that exclude 1×.")
+    if name not in ("log", None):
+        cap += " The analysis did not use the log scale, so these ratios are approximate."
+    return _render(fig, "effects", "Main effects as ratios", cap, "effects")
+
+
+def _scatter_subsample(n: int, rng, cap: int = MAX_SCATTER):
+    import numpy as np
+
+    if n <= cap:
+        return np.arange(n), None
+    idx = np.sort(rng.choice(n, size=cap, replace=False))
+    return idx, f"Residual scatter plots draw a random {cap:,} of the {n:,} runs."
+
+
+def residual_label(data: ReportData) -> str:
+    tr = data.analysis.get("transform") or {}
+    name = tr.get("name", "none")
+    if name == "log":
+        return f"residual of ln({data.response}) (≈ relative deviation)"
+    if name == "boxcox":
+        return f"residual on the Box-Cox scale (λ = {tr.get('lambda')})"
+    unit = unit_of(data.response)
+    return f"residual ({unit})" if unit else "residual"
+
+
+def qq_plot(data: ReportData) -> Figure | None:
+    import numpy as np
+    from scipy import stats
+
+    res = data.residuals
+    if res is None or len(res) < 3:
+        return None
+    r = np.sort(res["residual"].to_numpy(dtype=float))
+    n = len(r)
+    q = stats.norm.ppf((np.arange(1, n + 1) - 0.375) / (n + 0.25))  # Blom (1958)
+    if n > MAX_SCATTER:
+        keep = np.unique(np.concatenate([np.linspace(0, n - 1, MAX_SCATTER).astype(int),
+                                         np.arange(min(50, n)), np.arange(max(0, n - 50), n)]))
+        r_, q_ = r[keep], q[keep]
+    else:
+        r_, q_ = r, q
+    fig = _new(4.8, 4.0)
+    ax = fig.subplots()
+    ax.scatter(q_, r_, s=9, color=PALETTE[0], alpha=0.6, linewidths=0, rasterized=True)
+    q1, q3 = np.percentile(r, [25, 75])
+    z1, z3 = stats.norm.ppf([0.25, 0.75])
+    slope = (q3 - q1) / (z3 - z1) if z3 != z1 else 1.0
+    inter = q1 - slope * z1
+    xs = np.array([q.min(), q.max()])
+    ax.plot(xs, inter + slope * xs, color=ACCENT, lw=1.3, label="line through the quartiles")
+    ax.set_xlabel("normal quantile (standard deviations)")
+    ax.set_ylabel(residual_label(data))
+    ax.set_title("Normal Q-Q plot of residuals")
+    ax.legend(loc="upper left", fontsize=8.5)
+    cap = ("Residuals sorted against the quantiles a normal distribution would give. Points "
+           "on the line: normal residuals. A curve bending up at the right: a long right tail "
+           "(common for timings).")
+    if n > MAX_SCATTER:
+        cap += f" {MAX_SCATTER:,} evenly spaced order statistics of {n:,} are drawn."
+    return _render(fig, "qq", "Q-Q plot of residuals", cap, "diagnostics")
+
+
+def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
+    import numpy as np
+
+    res = data.residuals
+    if res is None or len(res) < 3:
+        return None, None
+    idx, note = _scatter_subsample(len(res), rng)
+    sub = res.iloc[idx]
+    f1 = data.factors[0]
+    fig = _new(6.0, 3.8)
+    ax = fig.subplots()
+    for lv, c in zip(data.levels[f1], _colors(len(data.levels[f1]))):
+        part = sub[sub[f1] == lv]
+        if len(part):
+            ax.scatter(part["fitted"], part["residual"], s=9, color=c, alpha=0.55,
+                       linewidths=0, rasterized=True, label=str(lv))
+    ax.axhline(0, color=INK, lw=1)
+    fitted = res["fitted"].to_numpy(dtype=float)
+    resid = res["residual"].to_numpy(dtype=float)
+    # Spread per fitted-value group: a funnel shows unequal variances.
+    order = np.argsort(fitted)
+    bins = np.array_split(order, min(12, max(1, len(order) // 20)))
+    if len(bins) > 2:
+        cx = [float(np.median(fitted[b])) for b in bins]
+        sd = [float(np.std(resid[b])) for b in bins]
+        ax.plot(cx, sd, color="#555555", lw=1, ls=":", label="± spread")
+        ax.plot(cx, [-s for s in sd], color="#555555", lw=1, ls=":")
+    tr = (data.analysis.get("transform") or {}).get("name", "none")
+    ax.set_xlabel("fitted value, " + ("ln scale" if tr == "log" else _scale_text(data)))
+    ax.set_ylabel(residual_label(data))
+    ax.set_title("Residuals against fitted values")
+    ax.legend(title=f1, fontsize=8, title_fontsize=8.5, loc="best", markerscale=1.5)
+    cap = ("Each dot is one run: its deviation from its cell's fitted value. An even band "
+           "around zero is what the model assumes; a funnel means the spread grows with the "
+           "value (a transform helps).")
+    if note:
+        cap += " " + note
+    return _render(fig, "residuals-fitted", "Residuals against fitted values", cap,
+                   "diagnostics"), note
+
+
+def resid_position(data: ReportData, rng) -> Figure | None:
+    import numpy as np
+
+    res = data.residuals
+    if res is None or len(res) < 3:
+        return None
+    pos = res["position"].to_numpy(dtype=float)
+    r = res["residual"].to_numpy(dtype=float)
+    idx, _ = _scatter_subsample(len(res), rng)
+    fig = _new(7.0, 3.4)
+    ax = fig.subplots()
+    ax.scatter(pos[idx], r[idx], s=8, color=PALETTE[0], alpha=0.5, linewidths=0,
+               rasterized=True, label="run")
+    ax.axhline(0, color=INK, lw=1)
+    order = np.argsort(pos)
+    nb = min(40, max(1, len(order) // 10))
+    if nb >= 3:
+        bins = np.array_split(order, nb)
+        ax.plot([float(np.mean(pos[b])) for b in bins], [float(np.mean(r[b])) for b in bins],
+                color=PALETTE[1], lw=1.8, label="mean of neighbouring runs")
+    drift = (data.analysis.get("diagnostics") or {}).get("drift") or {}
+    p = drift.get("p")
+    concern = bool(finite(p) and float(p) < data.alpha)
+    if len(pos) > 2 and np.ptp(pos) > 0:
+        slope, inter = np.polyfit(pos, r, 1)
+        xs = np.array([pos.min(), pos.max()])
+        ax.plot(xs, inter + slope * xs, color=ACCENT if concern else MUTED, lw=1.4, ls="--",
+                label="straight-line trend")
+    ax.set_xlabel("run position (0 = first timed run)")
+    ax.set_ylabel(residual_label(data))
+    title = "Residuals in run order"
+    if finite(p):
+        title += f": trend p {_pw(p)}"
+    ax.set_title(title, color=ACCENT if concern else INK,
+                 fontweight="bold" if concern else "normal")
+    ax.legend(fontsize=8, loc="best")
+    cap = ("Residuals in the order the runs were executed. A slope or a step means the "
+           "machine changed during the experiment (warming up, throttling, other load); "
+           "randomised order keeps that from biasing the effects but it still widens intervals.")
+    return _render(fig, "residuals-position", "Residuals in run order (drift)", cap,
+                   "diagnostics", highlight=concern)
+
+
+def boxcox_plot(data: ReportData) -> Figure | None:
+    import numpy as np
+
+    prof = data.profile
+    if prof is None or len(prof) < 3:
+        return None
+    lam = prof["lambda"].to_numpy(dtype=float)
+    ll = prof["loglik"].to_numpy(dtype=float)
+    good = np.isfinite(ll)
+    lam, ll = lam[good], ll[good]
+    if len(lam) < 3:
+        return None
+    tr = data.analysis.get("transform") or {}
+    fig = _new(5.6, 3.6)
+    ax = fig.subplots()
+    ax.plot(lam, ll, color=PALETTE[0], lw=1.8, label="profile log-likelihood")
+    top = float(ll.max())
+    cut = top - 0.5 * 3.841458820694124  # χ²₁ 95% quantile / 2 (Box & Cox 1964)
+    ax.axhline(cut, color=MUTED, lw=0.9, ls=":", label="95% interval cut-off")
+    ci = tr.get("lambda_ci")
+    if isinstance(ci, (list, tuple)) and len(ci) == 2 and all(finite(v) for v in ci):
+        ax.axvspan(float(ci[0]), float(ci[1]), color=PALETTE[4], alpha=0.18,
+                   label="95% interval for λ")
+    lhat = tr.get("lambda_hat")
+    if finite(lhat):
+        ax.axvline(float(lhat), color=PALETTE[0], lw=1, ls="--", label=f"λ̂ = {float(lhat):.2f}")
+    chosen = tr.get("lambda")
+    name = tr.get("name", "none")
+    if finite(chosen):
+        word = {"log": "log", "none": "no transform", "boxcox": "Box-Cox"}.get(name, name)
+        ax.axvline(float(chosen), color=ACCENT, lw=2, label=f"chosen λ = {float(chosen):g} "
+                                                             f"({word})")
+    lo = min(cut - 0.6 * (top - cut) - 1, float(np.percentile(ll, 20)))
+    ax.set_ylim(lo, top + 0.25 * (top - lo))
+    ax.set_xlabel("λ (Box-Cox power: 1 = as measured, 0 = log, −1 = reciprocal)")
+    ax.set_ylabel("log-likelihood")
+    ax.set_title("Box-Cox profile likelihood")
+    ax.legend(fontsize=7.5, loc="best")
+    cap = ("How well each power transform of the response fits the model. The peak is the "
+           "best-fitting λ; every λ above the dotted line is consistent with the data. "
+           "The thick line is the transform the analysis used.")
+    return _render(fig, "boxcox", "Box-Cox profile likelihood", cap, "diagnostics")
+
+
+def interaction_pairs(data: ReportData) -> list[tuple[str, str]]:
+    """Every pair of factors, in the experiment's factor order."""
+    return list(combinations(data.factors, 2))
+
+
+def make_figures(data: ReportData, seed: int = 0,
+                 max_points: int = MAX_POINTS_PER_CELL) -> FigureSet:
+    """Render every figure of the report."""
+    import matplotlib
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    out = FigureSet()
+    with matplotlib.rc_context(_rc()):
+        fig, note = distributions(data, rng, max_points=max_points)
+        out.figures.append(fig)
+        if note:
+            out.notes.append(note)
+        eff = effects_plot(data)
+        if eff is not None:
+            out.figures.append(eff)
+        for a, b in interaction_pairs(data):
+            out.figures.append(interaction(data, a, b))
+        qq = qq_plot(data)
+        if qq is not None:
+            out.figures.append(qq)
+        rf, note = resid_fitted(data, rng)
+        if rf is not None:
+            out.figures.append(rf)
+        if note:
+            out.notes.append(note)
+        rp = resid_position(data, rng)
+        if rp is not None:
+            out.figures.append(rp)
+        bc = boxcox_plot(data)
+        if bc is not None:
+            out.figures.append(bc)
+    return out

@@ -1,0 +1,529 @@
+"""The plain-words story of a report: verdict, design summary, warnings, cell table.
+
+Every renderer (HTML, Markdown, terminal) tells the same story, so the sentences
+are composed here once, as plain strings and small dicts; renderers only lay them
+out (and escape them). The wording is ours. Effect sizes follow the analysis:
+ratios from the log scale, partial η² per term (Cohen 1973), and the best cell
+by estimated marginal mean.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from benchharness.report.data import ReportData, finite
+from benchharness.report.units import (
+    describe, fmt_num, fmt_p, fmt_pct, fmt_ratio, fmt_value, unit_of,
+)
+
+
+def confidence_pct(data: ReportData) -> str:
+    conf = data.analysis.get("confidence")
+    if not finite(conf):
+        conf = 1.0 - data.alpha
+    return f"{round(float(conf) * 100):g}%"
+
+
+def lower_is_better(data: ReportData) -> bool:
+    better = data.analysis.get("better") or data.analysis.get("direction")
+    if isinstance(better, str):
+        return better.lower() != "higher"
+    return unit_of(data.response) not in ("per s",)
+
+
+def cell_label(levels: dict, factors) -> str:
+    return ", ".join(f"{f}={levels[f]}" for f in factors if f in levels)
+
+
+def anova_rows(data: ReportData) -> list[dict]:
+    """ANOVA rows with a 'significant' flag, in analysis order."""
+    rows = []
+    for r in data.analysis.get("anova") or []:
+        row = dict(r)
+        p = row.get("p")
+        row["significant"] = bool(finite(p) and float(p) < data.alpha
+                                  and row.get("term") != "Residual")
+        rows.append(row)
+    return rows
+
+
+def _term_parts(term: str, data: ReportData) -> tuple[str, ...] | None:
+    from benchharness.report.model import term_factors
+
+    names = list(data.factors) + ([data.block] if data.block else [])
+    return term_factors(term, names)
+
+
+def transform_sentence(data: ReportData) -> str:
+    tr = data.analysis.get("transform") or {}
+    name = tr.get("name", "none")
+    reason = tr.get("reason") or ""
+    if name == "log":
+        base = "The analysis works on the logarithm of the response, so effects are ratios."
+    elif name == "boxcox":
+        base = (f"The analysis works on a Box-Cox transform of the response "
+                f"(λ = {fmt_num(tr.get('lambda'))}); ratios quoted are approximate.")
+    else:
+        base = "The analysis works on the response as measured (no transform)."
+    reason = str(reason).strip()
+    if reason:
+        reason = reason[0].upper() + reason[1:]
+        if not reason.endswith("."):
+            reason += "."
+    return f"{base} {reason}".strip()
+
+
+def _effect_phrase(data: ReportData, e: dict) -> str:
+    conf = confidence_pct(data)
+    what = describe(data.response)
+    f = e.get("factor")
+    ratio, lo, hi = e.get("ratio"), e.get("lower"), e.get("upper")
+    interval = f"{conf} interval {fmt_ratio(lo)} to {fmt_ratio(hi)}"
+    verb = "takes" if unit_of(data.response) == "s" else "gives"
+    if finite(ratio):
+        r = float(ratio)
+        change = (f"{(1 - r) * 100:.0f}% less; " if r < 1
+                  else f"{(r - 1) * 100:.0f}% more; " if r < 2 else "")
+        return (f"{f}={e['level']} {verb} {fmt_ratio(r)} the {what} of {f}={e['reference']} "
+                f"({change}{interval})")
+    return f"{f}={e['level']} against {f}={e['reference']}: not estimable"
+
+
+def _significant_excludes_one(e: dict) -> bool:
+    lo, hi = e.get("lower"), e.get("upper")
+    return finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
+
+
+def cell_means(data: ReportData) -> list[dict]:
+    """Estimated means of every observed cell (original units), best first.
+
+    Taken from the analysis' means of the full interaction term when present,
+    otherwise from the model's fitted values back-transformed (no interval).
+    """
+    full = ":".join(data.factors)
+    rows = [m for m in data.analysis.get("means") or [] if m.get("term") == full]
+    if not rows and data.residuals is not None and len(data.residuals):
+        import numpy as np
+
+        from benchharness.report.model import apply_transform  # noqa: F401
+
+        tr = data.analysis.get("transform") or {}
+        name, lam = tr.get("name", "none"), tr.get("lambda")
+        grp = data.residuals.groupby(list(data.factors), observed=True)["fitted"]
+        fitted = grp.mean()
+        counts = grp.size()
+        for key, z in fitted.items():
+            key = key if isinstance(key, tuple) else (key,)
+            if name == "log" or (name == "boxcox" and finite(lam) and abs(lam) < 1e-12):
+                mean = math.exp(z)
+            elif name == "boxcox":
+                base = z * lam + 1.0
+                mean = base ** (1.0 / lam) if base > 0 else float("nan")
+            else:
+                mean = float(z)
+            rows.append({"term": full, "levels": dict(zip(data.factors, key)),
+                         "mean": mean, "lower": None, "upper": None,
+                         "n": int(counts[key if len(key) > 1 else key[0]])})
+        del np
+    rows = [r for r in rows if finite(r.get("mean"))]
+    rows.sort(key=lambda r: float(r["mean"]), reverse=not lower_is_better(data))
+    return rows
+
+
+def verdict(data: ReportData) -> dict[str, Any]:
+    """The plain-words answer: which factors matter, by how much, best cell, how sure."""
+    conf = confidence_pct(data)
+    rows = anova_rows(data)
+    by_term = {r["term"]: r for r in rows}
+    effects = data.analysis.get("effects") or []
+    out: dict[str, Any] = {"factors": [], "interactions": [], "best": None, "sure": []}
+
+    matter, no_matter = [], []
+    for f in data.factors:
+        row = by_term.get(f)
+        if row is None:
+            continue
+        effs = [e for e in effects if e.get("factor") == f]
+        entry = {
+            "factor": f,
+            "significant": row["significant"],
+            "p": row.get("p"),
+            "eta": row.get("partial_eta_sq"),
+            "effects": [_effect_phrase(data, e) for e in effs],
+        }
+        if row["significant"]:
+            matter.append(f)
+            if effs:
+                big = max(effs, key=lambda e: abs(math.log(float(e["ratio"])))
+                          if finite(e.get("ratio")) and float(e["ratio"]) > 0 else 0.0)
+                entry["summary"] = (
+                    f"{f} matters (p {_p_words(row.get('p'))}; partial η² "
+                    f"{fmt_num(row.get('partial_eta_sq'), 2)}). Largest change: "
+                    + _effect_phrase(data, big) + ".")
+            else:
+                entry["summary"] = (f"{f} matters (p {_p_words(row.get('p'))}; partial η² "
+                                    f"{fmt_num(row.get('partial_eta_sq'), 2)}).")
+        else:
+            no_matter.append(f)
+            entry["summary"] = (f"{f}: no difference detected (p {_p_words(row.get('p'))}); "
+                                "any effect is too small for this experiment to see.")
+        out["factors"].append(entry)
+
+    for r in rows:
+        parts = _term_parts(r["term"], data)
+        if not parts or len(parts) < 2 or any(p not in data.factors for p in parts):
+            continue
+        if r["significant"]:
+            out["interactions"].append(
+                f"The effect of {parts[0]} depends on {' and '.join(parts[1:])} "
+                f"({r['term']}, p {_p_words(r.get('p'))}): read the interaction plot before "
+                "quoting a single ratio for either factor.")
+    if matter:
+        head = f"{_and(matter)} {'matters' if len(matter) == 1 else 'matter'}"
+        if no_matter:
+            head += f"; {_and(no_matter)} made no detectable difference"
+        out["headline"] = head + "."
+    elif no_matter:
+        out["headline"] = (f"None of the factors ({_and(no_matter)}) made a difference this "
+                           "experiment could detect.")
+    else:
+        out["headline"] = "The analysis could not test any factor (see the ANOVA section)."
+
+    cells = cell_means(data)
+    if cells:
+        best = cells[0]
+        word = "fastest" if lower_is_better(data) and unit_of(data.response) == "s" else "best"
+        text = f"The {word} cell is {cell_label(best['levels'], data.factors)}: " \
+               f"{fmt_value(best['mean'], data.response)}"
+        if finite(best.get("lower")) and finite(best.get("upper")):
+            text += (f" ({conf} interval {fmt_value(best['lower'], data.response)} to "
+                     f"{fmt_value(best['upper'], data.response)})")
+        text += "."
+        if len(cells) > 1:
+            second = cells[1]
+            ratio = float(second["mean"]) / float(best["mean"]) if float(best["mean"]) else None
+            text += (f" Runner-up: {cell_label(second['levels'], data.factors)} at "
+                     f"{fmt_value(second['mean'], data.response)}")
+            if ratio is not None:
+                text += f" ({fmt_ratio(ratio)} the best)"
+            overlap = (finite(best.get("upper")) and finite(second.get("lower"))
+                       and (float(second["lower"]) <= float(best["upper"])
+                            if lower_is_better(data)
+                            else float(second["upper"]) >= float(best["lower"])))
+            if overlap:
+                text += "; their intervals overlap, so treat the two as close to tied."
+            else:
+                text += "."
+        out["best"] = text
+
+    out["sure"] = sureness(data)
+    out["transform"] = transform_sentence(data)
+    return out
+
+
+def _p_words(p) -> str:
+    s = fmt_p(p)
+    return s if s.startswith("<") else f"= {s}"
+
+
+def _and(items) -> str:
+    items = list(items)
+    if len(items) <= 1:
+        return "".join(items)
+    return ", ".join(items[:-1]) + " and " + items[-1]
+
+
+def diagnostic_items(data: ReportData) -> list[dict]:
+    """Each diagnostic as {name, test, statistic, p, verdict, concern} for display."""
+    diag = data.analysis.get("diagnostics") or {}
+    titles = {
+        "normality": "Residuals close to normal",
+        "equal_variance": "Equal spread across cells",
+        "drift": "No drift over the run order",
+        "outliers": "Outlying runs",
+        "runs_test": "Residual signs in random order",
+        "small_cells": "Cells with too few runs",
+    }
+    items = []
+    for key, val in diag.items():
+        if key == "outliers":
+            outl = val if isinstance(val, list) else (val or {}).get("runs", [])
+            n = len(outl)
+            items.append({
+                "key": key, "name": titles[key], "test": "externally studentized residuals, "
+                "Bonferroni cut-off", "statistic": None, "p": None,
+                "verdict": (f"{n} run{'s' if n != 1 else ''} stand out: "
+                            + ", ".join(f"run {o.get('run')} ({fmt_num(o.get('studentized'))})"
+                                        for o in outl[:12])
+                            + (" …" if n > 12 else "")) if n else "No run stands out.",
+                "concern": n > 0,
+            })
+            continue
+        if not isinstance(val, dict):
+            continue
+        p = val.get("p")
+        concern = val.get("concern")
+        if concern is None and "ok" in val:
+            concern = not bool(val["ok"])
+        if concern is None:
+            concern = bool(finite(p) and float(p) < data.alpha)
+        stat = val.get("statistic")
+        if key == "drift" and finite(val.get("slope_per_100_runs")):
+            stat = val.get("slope_per_100_runs")
+        items.append({
+            "key": key, "name": titles.get(key, key.replace("_", " ")),
+            "test": val.get("test") or ("slope of residuals on run position"
+                                        if key == "drift" else ""),
+            "statistic": stat, "p": p,
+            "verdict": str(val.get("verdict") or ""), "concern": bool(concern),
+        })
+    return items
+
+
+def sureness(data: ReportData) -> list[str]:
+    """Sentences on how far to trust the verdict."""
+    out = []
+    d = data.design
+    res_df = next((r.get("df") for r in data.analysis.get("anova") or []
+                   if r.get("term") == "Residual"), None)
+    if res_df is not None and finite(res_df) and float(res_df) == 0:
+        out.append("There are no residual degrees of freedom (one run per cell): no test "
+                   "could be made, so nothing here is a verdict. Add replicates.")
+    n_ok = d.get("runs_ok")
+    if n_ok is not None:
+        reps = d.get("replicates")
+        out.append(f"Based on {n_ok} timed runs" + (f" ({reps} replicates per cell)"
+                                                     if reps else "") + ".")
+    concerns = [i for i in diagnostic_items(data) if i["concern"]]
+    if concerns:
+        out.append("Checks of the model's assumptions raise concerns ("
+                   + _and([c["name"].lower() for c in concerns])
+                   + "); see Diagnostics before relying on small p-values.")
+    elif diagnostic_items(data):
+        out.append("The model's assumption checks raise no concern.")
+    bad = d.get("runs_failed", 0) + d.get("runs_timeout", 0)
+    if bad:
+        out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out and "
+                   "{} not in the analysis; the affected cells may look faster than they are."
+                   .format("is" if bad == 1 else "are"))
+    return out
+
+
+def _host_get(host: dict, *names):
+    for n in names:
+        cur: Any = host
+        for part in n.split("."):
+            if isinstance(cur, dict) and part in cur:
+                cur = cur[part]
+            else:
+                cur = None
+                break
+        if cur not in (None, "", [], {}):
+            return cur
+    return None
+
+
+def host_summary(host: dict) -> list[tuple[str, str]]:
+    """Readable (what, value) pairs from host.json."""
+    if not host:
+        return []
+    pairs = []
+    cpu = _host_get(host, "cpu_model", "cpu.model", "processor", "cpu")
+    if cpu is not None and not isinstance(cpu, dict):
+        pairs.append(("CPU", str(cpu)))
+    phys = _host_get(host, "cores_physical", "physical_cores", "cpu.physical_cores",
+                     "cpu_count_physical")
+    logi = _host_get(host, "cores_logical", "logical_cores", "cpu.logical_cores",
+                     "cpu_count_logical", "cpu_count")
+    if phys is not None or logi is not None:
+        pairs.append(("cores", f"{phys if phys is not None else '?'} physical, "
+                               f"{logi if logi is not None else '?'} logical"))
+    mem = _host_get(host, "memory_total_bytes", "mem_total_bytes", "memory.total_bytes",
+                    "memory_bytes", "memory_total")
+    mem_kib = _host_get(host, "memory_total_kib", "mem_total_kib", "memory.total_kib")
+    if finite(mem):
+        pairs.append(("memory", f"{float(mem) / 1024 ** 3:.1f} GiB"))
+    elif finite(mem_kib):
+        pairs.append(("memory", f"{float(mem_kib) / 1024 ** 2:.1f} GiB"))
+    osname = _host_get(host, "os", "platform", "system", "os.name")
+    kernel = _host_get(host, "kernel", "release", "os.kernel")
+    if osname is not None:
+        pairs.append(("OS", f"{osname}" + (f" (kernel {kernel})" if kernel else "")))
+    py = _host_get(host, "python", "python_version", "python.version")
+    if py is not None:
+        pairs.append(("Python", str(py) if not isinstance(py, dict) else
+                      str(py.get("version", py))))
+    gov = _host_get(host, "governor", "cpu_governor", "frequency_governor", "cpu.governor")
+    if gov is not None:
+        pairs.append(("frequency governor", str(gov)))
+    load = _host_get(host, "load_average_start", "load_start", "loadavg", "load_average", "load.start",
+                     "load_avg_start")
+    if load is not None:
+        pairs.append(("load average at start", _fmt_load(load)))
+    load_end = _host_get(host, "load_average_end", "load_end", "load.end", "load_avg_end")
+    if load_end is not None:
+        pairs.append(("load average at end", _fmt_load(load_end)))
+    hostname = _host_get(host, "hostname", "node", "host")
+    if hostname is not None and not isinstance(hostname, dict):
+        pairs.insert(0, ("host", str(hostname)))
+    if not pairs:  # unknown layout: show the plain scalar facts as they are
+        for k, v in host.items():
+            if isinstance(v, (str, int, float, bool)):
+                pairs.append((str(k), str(v)))
+            if len(pairs) >= 12:
+                break
+    return pairs
+
+
+def _fmt_load(load) -> str:
+    if isinstance(load, (list, tuple)):
+        return " / ".join(fmt_num(x, 3) for x in load[:3])
+    if isinstance(load, dict):
+        return " / ".join(fmt_num(v, 3) for v in list(load.values())[:3])
+    return fmt_num(load, 3)
+
+
+def _first_load(load):
+    if isinstance(load, (list, tuple)) and load:
+        return load[0]
+    if isinstance(load, dict) and load:
+        return next(iter(load.values()))
+    return load
+
+
+def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
+    """Data-quality warnings: {kind, text}; ``notes`` adds renderer notes (subsampling)."""
+    out = []
+    for item in diagnostic_items(data):
+        if item["key"] in ("drift", "outliers", "runs_test") and item["concern"]:
+            out.append({"kind": item["name"], "text": item["verdict"] or item["name"]})
+    d = data.design
+    timed = data.timed_runs
+    if "status" in timed.columns and len(timed):
+        st = timed["status"].astype(str)
+        per_cell = (timed.assign(_bad=st.isin(["failed", "timeout"]), _to=st == "timeout")
+                    .groupby(list(data.factors), observed=True)[["_bad", "_to"]].sum())
+        for key, row in per_cell.iterrows():
+            key = key if isinstance(key, tuple) else (key,)
+            label = cell_label(dict(zip(data.factors, key)), data.factors)
+            if row["_to"]:
+                out.append({"kind": "Timeouts",
+                            "text": f"{label}: {int(row['_to'])} run(s) timed out. Only the runs "
+                                    "that finished are analysed, so this cell looks faster than "
+                                    "it is."})
+            elif row["_bad"]:
+                out.append({"kind": "Failed runs",
+                            "text": f"{label}: {int(row['_bad'])} run(s) failed and are left "
+                                    "out of the analysis."})
+    host = dict(data.host or {})
+    load = _first_load(_host_get(host, "load_average_start", "load_start", "loadavg", "load_average", "load.start",
+                                 "load_avg_start"))
+    cores = _host_get(host, "cores_logical", "logical_cores", "cpu.logical_cores",
+                      "cpu_count_logical", "cpu_count")
+    if finite(load) and finite(cores) and float(cores) > 0 and float(load) > 0.5 * float(cores):
+        out.append({"kind": "Noisy host",
+                    "text": f"The load average was {fmt_num(load)} on {cores} logical CPUs when "
+                            "the experiment started: other work competed with the runs and "
+                            "widened the spread."})
+    gov = _host_get(host, "governor", "cpu_governor", "frequency_governor", "cpu.governor")
+    if isinstance(gov, str) and gov not in ("performance",):
+        out.append({"kind": "Noisy host",
+                    "text": f"The CPU frequency governor was '{gov}': clock speed may have "
+                            "changed during the experiment. 'performance' holds it steady."})
+    for w in host.get("warnings") or []:
+        text = w.get("text") or w.get("message") if isinstance(w, dict) else str(w)
+        if text:
+            out.append({"kind": "Noisy host", "text": str(text)})
+    for w in data.analysis.get("warnings") or []:
+        out.append({"kind": "Analysis", "text": w if isinstance(w, str) else
+                    str(w.get("text") or w.get("message") or w)})
+    for n in notes or []:
+        out.append({"kind": "Figures", "text": n})
+    del d
+    return out
+
+
+def cell_summary(data: ReportData) -> list[dict]:
+    """Per-cell table: runs ok / failed / timed out, median, IQR, min, max, model mean."""
+    import numpy as np
+    import pandas as pd
+
+    timed = data.timed_runs
+    resp = pd.to_numeric(timed[data.response], errors="coerce")
+    st = timed["status"].astype(str) if "status" in timed.columns else pd.Series(
+        "ok", index=timed.index)
+    frame = pd.DataFrame({f: timed[f].astype(str) for f in data.factors})
+    frame["_y"] = resp.where(st == "ok")
+    frame["_ok"] = (st == "ok").astype(int)
+    frame["_failed"] = (st == "failed").astype(int)
+    frame["_timeout"] = (st == "timeout").astype(int)
+    g = frame.groupby(list(data.factors), observed=True, sort=False)
+    agg = g.agg(ok=("_ok", "sum"), failed=("_failed", "sum"), timeout=("_timeout", "sum"),
+                median=("_y", "median"), q1=("_y", lambda s: s.quantile(0.25)),
+                q3=("_y", lambda s: s.quantile(0.75)), min=("_y", "min"), max=("_y", "max"))
+    model_means = {tuple(m["levels"][f] for f in data.factors): m for m in cell_means(data)}
+    order = {f: {lv: i for i, lv in enumerate(data.levels[f])} for f in data.factors}
+    rows = []
+    for key, r in agg.iterrows():
+        key = key if isinstance(key, tuple) else (key,)
+        m = model_means.get(tuple(key))
+        rows.append({
+            "levels": dict(zip(data.factors, key)),
+            "ok": int(r["ok"]), "failed": int(r["failed"]), "timeout": int(r["timeout"]),
+            "median": r["median"], "iqr": r["q3"] - r["q1"], "min": r["min"], "max": r["max"],
+            "mean": m["mean"] if m else np.nan,
+            "lower": m.get("lower") if m else None, "upper": m.get("upper") if m else None,
+            "_sort": tuple(order[f].get(k, 1 << 30) for f, k in zip(data.factors, key)),
+        })
+    rows.sort(key=lambda r: r["_sort"])
+    for r in rows:
+        r.pop("_sort")
+    return rows
+
+
+def comparisons(data: ReportData, limit: int | None = None) -> list[dict]:
+    """Comparison rows with a readable 'within' and a significance flag."""
+    out = []
+    for c in data.analysis.get("comparisons") or []:
+        row = dict(c)
+        within = c.get("within") or {}
+        row["within_text"] = ", ".join(f"{k}={v}" for k, v in within.items()) if within else ""
+        p = c.get("p_adj")
+        row["significant"] = bool(finite(p) and float(p) < data.alpha)
+        out.append(row)
+    return out[:limit] if limit else out
+
+
+def design_rows(data: ReportData) -> list[tuple[str, str]]:
+    d = data.design
+    rows = [("factors", ", ".join(f"{f} ({len(data.levels[f])} levels)" for f in data.factors))]
+    cells = d.get("cells_planned")
+    if cells is not None:
+        obs = d.get("cells_observed")
+        rows.append(("cells", f"{cells}" + (f" ({obs} with runs)" if obs is not None
+                                             and obs != cells else "")))
+    if d.get("replicates") is not None:
+        rows.append(("replicates per cell", str(d["replicates"])))
+    elif d.get("replicates_seen") is not None:
+        rows.append(("replicates per cell", str(d["replicates_seen"])))
+    if d.get("warmup"):
+        rows.append(("untimed warm-up runs per cell", str(d["warmup"])))
+    if d.get("order"):
+        rows.append(("run order", str(d["order"])))
+    rows.append(("seed", "not recorded" if d.get("seed") is None else str(d["seed"])))
+    if d.get("timeout_s") is not None:
+        rows.append(("timeout per run", f"{fmt_num(d['timeout_s'])} s"))
+    rows.append(("timed runs", f"{d.get('runs_total', 0)}: {d.get('runs_ok', 0)} ok, "
+                               f"{d.get('runs_failed', 0)} failed, "
+                               f"{d.get('runs_timeout', 0)} timed out"))
+    rows.append(("response", f"{data.response} ({describe(data.response)})"))
+    if data.block:
+        rows.append(("block", data.block))
+    if d.get("command"):
+        rows.append(("command", d["command"]))
+    return rows
+
+
+def fmt_share(x) -> str:
+    return fmt_pct(x)

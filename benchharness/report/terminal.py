@@ -1,0 +1,152 @@
+"""The analysis in the terminal, as rich tables.
+
+Colour only when stdout is a terminal and ``NO_COLOR`` is unset (or empty), per
+the no-color convention; otherwise plain text that reads well in a CI log.
+User text (factor and level names) is passed as `rich.text.Text`, never as
+markup, so a level called ``[bold]x[/bold]`` prints as written.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from typing import Mapping
+
+from benchharness.report import story
+from benchharness.report.data import ReportData
+from benchharness.report.units import fmt_num, fmt_p, fmt_ratio
+
+
+def make_console(file=None):
+    from rich.console import Console
+
+    stream = file or sys.stdout
+    tty = hasattr(stream, "isatty") and stream.isatty()
+    no_color = bool(os.environ.get("NO_COLOR")) or not tty
+    return Console(file=stream, no_color=no_color, highlight=False, emoji=False,
+                   force_terminal=tty if tty else None,
+                   color_system=None if no_color else "auto")
+
+
+def _data_from(analysis) -> ReportData:
+    """A `ReportData` from an Analysis / analysis.json dict alone (no runs table)."""
+    import pandas as pd
+
+    if isinstance(analysis, ReportData):
+        return analysis
+    adict = analysis.to_dict() if hasattr(analysis, "to_dict") else dict(analysis)
+    factors, levels = [], {}
+    for f in adict.get("factors") or []:
+        if isinstance(f, Mapping):
+            factors.append(str(f.get("name")))
+            levels[str(f.get("name"))] = tuple(str(x) for x in f.get("levels") or [])
+        else:
+            factors.append(str(f))
+    for f in factors:
+        if not levels.get(f):
+            seen = []
+            for m in adict.get("means") or []:
+                lv = (m.get("levels") or {}).get(f)
+                if lv is not None and str(lv) not in seen:
+                    seen.append(str(lv))
+            levels[f] = tuple(seen)
+    runs = pd.DataFrame({**{f: pd.Series(dtype=str) for f in factors},
+                         "status": pd.Series(dtype=str)})
+    return ReportData(name="", about="", response=adict.get("response", "wall_s"),
+                      factors=tuple(factors), levels=levels, analysis=adict, runs=runs,
+                      block=adict.get("block"))
+
+
+def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
+    """Print verdict, ANOVA, effects, diagnostics, comparisons and warnings."""
+    from rich import box
+    from rich.table import Table
+    from rich.text import Text
+
+    con = console or make_console()
+    data = _data_from(analysis)
+    v = story.verdict(data)
+    conf = story.confidence_pct(data)
+
+    con.print(Text(v["headline"], style="bold"))
+    for f in v["factors"]:
+        con.print(Text("  • " + f["summary"], style=None if f["significant"] else "dim"))
+    for i in v["interactions"]:
+        con.print(Text("  • " + i))
+    if v["best"]:
+        con.print(Text("  " + v["best"], style="green"))
+    for s in v["sure"]:
+        con.print(Text("  " + s, style="dim"))
+    con.print(Text("  " + v["transform"], style="dim"))
+    con.print()
+
+    t = Table(title="Analysis of variance", box=box.SIMPLE_HEAD, title_justify="left",
+              title_style="bold")
+    t.add_column("source", no_wrap=True)
+    for col, just in (("df", "right"), ("sum of squares", "right"),
+                      ("mean square", "right"), ("F", "right"), ("p", "right"),
+                      ("partial η²", "right"), ("ω²", "right")):
+        t.add_column(col, justify=just)
+    for r in story.anova_rows(data):
+        style = "bold" if r["significant"] else ("dim" if r.get("term") == "Residual" else None)
+        t.add_row(Text(str(r.get("term"))), fmt_num(r.get("df"), 4), fmt_num(r.get("sum_sq"), 4),
+                  fmt_num(r.get("mean_sq"), 4), fmt_num(r.get("F"), 4), fmt_p(r.get("p")),
+                  fmt_num(r.get("partial_eta_sq"), 2), fmt_num(r.get("omega_sq"), 2),
+                  style=style)
+    con.print(t)
+
+    effects = data.analysis.get("effects") or []
+    if effects:
+        t = Table(title=f"Effects as ratios to the reference level ({conf} intervals)",
+                  box=box.SIMPLE_HEAD, title_justify="left", title_style="bold")
+        for col, just in (("factor", "left"), ("level", "left"), ("against", "left"),
+                          ("ratio", "right"), ("interval", "right")):
+            t.add_column(col, justify=just, overflow="fold")
+        for e in effects:
+            lo, hi = e.get("lower"), e.get("upper")
+            sig = lo is not None and hi is not None and (float(lo) > 1 or float(hi) < 1)
+            t.add_row(Text(str(e.get("factor"))), Text(str(e.get("level"))),
+                      Text(str(e.get("reference"))), fmt_ratio(e.get("ratio")),
+                      f"{fmt_ratio(lo)} to {fmt_ratio(hi)}", style="bold" if sig else None)
+        con.print(t)
+
+    diags = story.diagnostic_items(data)
+    if diags:
+        t = Table(title="Diagnostics", box=box.SIMPLE_HEAD, title_justify="left",
+                  title_style="bold")
+        t.add_column("check")
+        t.add_column("p", justify="right")
+        t.add_column("verdict")
+        for d in diags:
+            t.add_row(Text(("! " if d["concern"] else "ok ") + d["name"],
+                           style="yellow" if d["concern"] else "green"),
+                      fmt_p(d["p"]) if d["p"] is not None else "", Text(d["verdict"]))
+        con.print(t)
+
+    comps = [c for c in story.comparisons(data) if c["significant"]]
+    if comps:
+        t = Table(title=f"Comparisons with adjusted p < {data.alpha:g} "
+                        f"({len(comps)} of {len(story.comparisons(data))})",
+                  box=box.SIMPLE_HEAD, title_justify="left", title_style="bold")
+        for col, just in (("method", "left"), ("comparison", "left"), ("ratio b/a", "right"),
+                          ("interval", "right"), ("p adj", "right")):
+            t.add_column(col, justify=just, overflow="fold")
+        for c in comps[:comparisons]:
+            within = f" within {c['within_text']}" if c["within_text"] else ""
+            t.add_row(str(c.get("method")),
+                      Text(f"{c.get('factor')}: {c.get('a')} vs {c.get('b')}{within}"),
+                      fmt_ratio(c.get("ratio")),
+                      f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}",
+                      fmt_p(c.get("p_adj")))
+        con.print(t)
+        if len(comps) > comparisons:
+            con.print(Text(f"  … {len(comps) - comparisons} more in analysis.json", style="dim"))
+
+    warns = story.warnings(data)
+    notes = data.analysis.get("notes") or []
+    if warns or notes:
+        con.print(Text("Warnings and notes", style="bold"))
+        for w in warns:
+            con.print(Text(f"  ! {w['kind']}: {w['text']}", style="yellow"))
+        for n in notes:
+            con.print(Text(f"  - {n}", style="dim"))

@@ -1,0 +1,181 @@
+"""Warm-up versus steady state of one execution's per-iteration timings.
+
+Classification of warm-up behaviour after Barrett, Bolz-Tereick, Killick,
+Mount & Tratt (2017), "Virtual machine warmup blows hot and cold" (OOPSLA):
+changepoints are found with PELT (Killick et al. 2012, see `changepoint`), the
+last segment is the candidate steady state, and the series is called
+
+* ``flat``: no change in mean worth the name anywhere;
+* ``warm-up``: the steady state is reached and no earlier stretch was faster;
+* ``slow-down``: the steady state is reached but some earlier stretch was
+  faster (the program got slower and stayed so);
+* ``no steady state``: the mean still changes within the final part of the
+  series, so the run never settled.
+
+Following Barrett et al., the changepoint penalty is 15 log n and a change
+inside the last quarter of the series means no steady state (both from
+memory). Our own choices, documented in docs/measurement.md: the search runs on
+log timings (per-run timings are right-skewed, common practice; a change then
+means a relative change); isolated spikes (one or two points far outside a
+rolling median +- 6 rolling MADs, the first iteration excepted) are replaced
+by the rolling median for the search only; adjacent segments whose means differ by
+less than ``rel_tol`` (2 %) or ``abs_tol_s`` are merged; the steady-state mean
+is the plain mean of the final merged segment, spikes included (they are a
+real cost of each iteration).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from benchharness.steady.changepoint import DEFAULT_PENALTY_FACTOR, pelt
+
+SHAPES = ("flat", "warm-up", "slow-down", "no steady state")
+
+
+@dataclass(frozen=True)
+class WarmupSettings:
+    penalty_factor: float = DEFAULT_PENALTY_FACTOR  # penalty = factor * log(n)
+    min_size: int = 2
+    final_fraction: float = 0.25   # a change inside the last 25 % -> no steady state
+    min_final: int = 3             # ... or inside the last 3 iterations, whichever is more
+    rel_tol: float = 0.02          # segment means within 2 % are the same level
+    abs_tol_s: float = 1e-9
+    despike: bool = True
+    use_log: bool = True
+    min_iterations: int = 8        # fewer iterations than this: no classification
+
+
+@dataclass(frozen=True)
+class Segment:
+    start: int
+    end: int
+    mean_s: float
+    sd_s: float
+
+
+@dataclass(frozen=True)
+class WarmupResult:
+    """What one execution's iterations say.
+
+    ``shape`` is one of `SHAPES` (or ``"too short"``); ``steady_from`` is the
+    first iteration of the steady state (= warm-up length); ``steady_s`` the
+    mean iteration time there (None without a steady state); ``changepoints``
+    the raw PELT changepoints; ``segments`` after merging equivalent
+    neighbours.
+    """
+
+    n: int
+    shape: str
+    steady_from: int | None
+    steady_s: float | None
+    steady_sd_s: float | None
+    steady_n: int
+    changepoints: tuple[int, ...]
+    segments: tuple[Segment, ...]
+    spikes: int
+    reason: str = ""
+    settings: WarmupSettings = field(default_factory=WarmupSettings)
+
+    def to_json_dict(self) -> dict:
+        return {
+            "iterations": self.n, "shape": self.shape, "steady_from": self.steady_from,
+            "steady_s": self.steady_s, "steady_sd_s": self.steady_sd_s,
+            "steady_iterations": self.steady_n, "changepoints": list(self.changepoints),
+            "segments": [{"start": s.start, "end": s.end, "mean_s": s.mean_s, "sd_s": s.sd_s}
+                         for s in self.segments],
+            "spikes": self.spikes, "reason": self.reason,
+        }
+
+
+def _rolling(values: np.ndarray, half: int, fn) -> np.ndarray:
+    n = values.size
+    out = np.empty(n)
+    for i in range(n):
+        lo, hi = max(0, i - half), min(n, i + half + 1)
+        out[i] = fn(values[lo:hi])
+    return out
+
+
+def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0) -> tuple[np.ndarray, int]:
+    """Replace isolated spikes (runs of at most two points) by the rolling median."""
+    n = z.size
+    if n < 2 * half_window:
+        return z.copy(), 0
+    med = _rolling(z, half_window, np.median)
+    mad = _rolling(np.abs(z - med), half_window, np.median)
+    scale = np.maximum(1.4826 * mad, 1e-12 + 1e-6 * np.abs(med))
+    flagged = np.abs(z - med) > k * scale
+    flagged[0] = False   # the first iteration is the prime warm-up suspect; never a spike
+    out = z.copy()
+    count = 0
+    i = 0
+    while i < n:
+        if flagged[i]:
+            j = i
+            while j < n and flagged[j]:
+                j += 1
+            if j - i <= 2:
+                out[i:j] = med[i:j]
+                count += j - i
+            i = j
+        else:
+            i += 1
+    return out, count
+
+
+def _same_level(a: float, b: float, s: WarmupSettings) -> bool:
+    return abs(a - b) <= max(s.rel_tol * max(abs(a), abs(b)), s.abs_tol_s)
+
+
+def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
+    """Classify one execution's iteration times (seconds, in iteration order)."""
+    s = settings or WarmupSettings()
+    y = np.asarray(list(samples_s), dtype=float)
+    y = y[np.isfinite(y)]
+    n = int(y.size)
+    if n < s.min_iterations:
+        return WarmupResult(n, "too short", None, None, None, 0, (), (), 0,
+                            reason=f"{n} iterations; at least {s.min_iterations} are needed "
+                                   "to tell warm-up from steady state", settings=s)
+    positive = bool(np.all(y > 0))
+    if s.use_log and positive:
+        z = np.log(y)
+        floor = (1e-4) ** 2            # 0.01 % relative noise: below timer meaning
+    else:
+        z = y
+        floor = max((1e-4 * float(np.median(np.abs(y)))) ** 2, 1e-300)
+    spikes = 0
+    if s.despike:
+        z, spikes = despike(z)
+    seg = pelt(z, penalty=s.penalty_factor * math.log(n), min_size=s.min_size, var_floor=floor)
+
+    def make(a: int, b: int) -> Segment:
+        part = y[a:b]
+        return Segment(a, b, float(part.mean()), float(part.std(ddof=1)) if b - a > 1 else 0.0)
+
+    merged: list[Segment] = []
+    for a, b in seg.segments:
+        cur = make(a, b)
+        if merged and _same_level(merged[-1].mean_s, cur.mean_s, s):
+            merged[-1] = make(merged[-1].start, b)
+        else:
+            merged.append(cur)
+    segments = tuple(merged)
+    last = segments[-1]
+    final = max(s.min_final, int(math.ceil(s.final_fraction * n)))
+    if len(segments) > 1 and last.start > n - final:
+        return WarmupResult(n, "no steady state", None, None, None, 0, seg.changepoints, segments,
+                            spikes, reason=f"the mean still changes at iteration {last.start} "
+                            f"of {n} (within the last {final})", settings=s)
+    if len(segments) == 1:
+        shape = "flat"
+    else:
+        faster = [g for g in segments[:-1]
+                  if g.mean_s < last.mean_s and not _same_level(g.mean_s, last.mean_s, s)]
+        shape = "slow-down" if faster else "warm-up"
+    return WarmupResult(n, shape, last.start, last.mean_s, last.sd_s, last.end - last.start,
+                        seg.changepoints, segments, spikes, settings=s)

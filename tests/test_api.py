@@ -1,0 +1,54 @@
+"""The Python API: load_experiment, plan, run; and the command line's end-of-run output."""
+
+from __future__ import annotations
+
+import sys
+import textwrap
+
+import pandas as pd
+
+import benchharness
+
+
+def test_api_load_plan_run(tmp_path):
+    p = tmp_path / "e.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        experiment: api
+        command: [{sys.executable}, -c, "pass", "{{n}}"]
+        factors:
+          n: [1, 1.0, "010"]
+        replicates: 2
+        seed: 8
+        """))
+    exp = benchharness.load_experiment(p)
+    plan = benchharness.plan(exp)
+    assert plan.cells == 3 and plan.timed_runs == 6
+    out = benchharness.run(exp, out=tmp_path / "res")
+    assert out.folder == tmp_path / "res"
+    csv = pd.read_csv(out.folder / "runs.csv", dtype={"n": str}, keep_default_na=False)
+    runs = out.runs
+    assert list(runs.columns) == list(csv.columns)
+    assert len(runs) == len(csv) == 6
+    assert runs["n"].astype(str).tolist() == csv["n"].tolist()
+    assert set(runs["n"].astype(str)) == {"1", "1.0", "010"}
+    pd.testing.assert_series_equal(runs["wall_s"].astype(float), csv["wall_s"].astype(float),
+                                   check_names=False)
+
+
+def test_cli_run_prints_progress_lines_summary_and_location(tmp_path, cli):
+    p = tmp_path / "e.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        experiment: cli-run
+        command: [{sys.executable}, -c, "pass", "{{n}}"]
+        factors:
+          n: [a, b]
+        replicates: 2
+        """))
+    r = cli("run", p, "--out", tmp_path / "res")
+    assert r.returncode == 0, r.stderr
+    out = r.stdout
+    assert "running 4 runs into" in out
+    assert "[4/4]" in out            # plain progress line (stdout is not a terminal)
+    assert "median wall" in out and "IQR" in out
+    assert "seed" in out and "drawn" in out   # no seed in the file: drawn and reported
+    assert f"results: {tmp_path / 'res'}" in out

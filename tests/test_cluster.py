@@ -1,0 +1,143 @@
+"""Cluster runs on a real local Dask scheduler with two worker processes.
+
+Each worker stands for a host (`same_host_ok`), as the issue allows for tests.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import pytest
+
+from benchharness import journal as J
+
+pytestmark = [pytest.mark.dask, pytest.mark.timeout(120)]
+distributed = pytest.importorskip("distributed")
+
+ROOT = Path(__file__).resolve().parent.parent
+PY = sys.executable
+
+
+def _env():
+    return dict(os.environ, PYTHONPATH=str(ROOT), DASK_DISTRIBUTED__WORKER__DAEMON="False")
+
+
+@pytest.fixture
+def cluster(tmp_path):
+    """A scheduler and two single-thread workers with the bench resource, as processes."""
+    sched_file = tmp_path / "scheduler.json"
+    procs = []
+    log = open(tmp_path / "cluster.log", "w")
+    sched = subprocess.Popen([PY, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
+                              "--port", "0", "--no-dashboard", "--scheduler-file",
+                              str(sched_file)], env=_env(), stdout=log, stderr=log,
+                             start_new_session=True)
+    procs.append(sched)
+    deadline = time.time() + 30
+    while not sched_file.exists() and time.time() < deadline:
+        time.sleep(0.1)
+    address = json.loads(sched_file.read_text())["address"]
+    workers = {}
+    for name in ("hostA", "hostB"):
+        w = subprocess.Popen([PY, "-m", "distributed.cli.dask_worker", address, "--nthreads", "1",
+                              "--nworkers", "1", "--resources", "bench=1", "--name", name,
+                              "--no-dashboard", "--host", "127.0.0.1"], env=_env(), stdout=log,
+                             stderr=log, start_new_session=True, cwd=ROOT)
+        procs.append(w)
+        workers[name] = w
+    from distributed import Client
+
+    with Client(address, timeout=20) as c:
+        c.wait_for_workers(2, timeout=30)
+    yield address, workers
+    for p in procs:
+        try:
+            os.killpg(p.pid, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+        p.wait()
+    log.close()
+
+
+def _exp(tmp_path, reps=4, sleep=0.05):
+    p = tmp_path / "exp.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        experiment: cluster
+        command: [{PY}, -c, "import time; time.sleep({sleep})", "{{a}}", "{{b}}"]
+        factors:
+          a: [x, y]
+          b: [1, 2]
+        replicates: {reps}
+        seed: 3
+        """))
+    return p
+
+
+def _run(args, timeout=90):
+    return subprocess.run([PY, "-m", "benchharness", *map(str, args)], env=_env(), cwd=ROOT,
+                          capture_output=True, text=True, timeout=timeout)
+
+
+def test_every_run_recorded_once_with_hosts(cluster, tmp_path):
+    address, _ = cluster
+    out = tmp_path / "res"
+    r = _run(["run", _exp(tmp_path), "--out", out, "--scheduler", address, "--same-host-ok",
+              "--quiet", "--no-analysis"])
+    assert r.returncode == 0, r.stderr
+    recs = J.read_journal(out / "runs.jsonl")
+    assert sorted(x["run"] for x in recs) == list(range(16))
+    assert {x["host"] for x in recs} == {"hostA", "hostB"}
+    assert all(x["worker"] for x in recs) and all(x["status"] == "ok" for x in recs)
+    # blocks are nested in hosts: each block ran on one host
+    by_block = {}
+    for x in recs:
+        by_block.setdefault(x["block"], set()).add(x["host"])
+    assert all(len(h) == 1 for h in by_block.values())
+    # host_position is the order on that host
+    for h in ("hostA", "hostB"):
+        pos = sorted(x["host_position"] for x in recs if x["host"] == h)
+        assert pos == list(range(len(pos)))
+    header = (out / "runs.csv").read_text().splitlines()[0].split(",")
+    assert {"host", "worker", "host_position"} <= set(header)
+    host = json.loads((out / "host.json").read_text())
+    assert set(host) == {"coordinator", "hosts"} and set(host["hosts"]) == {"hostA", "hostB"}
+
+
+def test_lost_worker_and_killed_coordinator(cluster, tmp_path):
+    address, workers = cluster
+    out = tmp_path / "res"
+    exp = _exp(tmp_path, reps=6, sleep=0.2)
+    coord = subprocess.Popen([PY, "-m", "benchharness", "run", str(exp), "--out", str(out),
+                              "--scheduler", address, "--same-host-ok", "--quiet",
+                              "--no-analysis"], env=_env(), cwd=ROOT, stdout=subprocess.PIPE,
+                             stderr=subprocess.PIPE, text=True, start_new_session=True)
+    jl = out / "runs.jsonl"
+
+    def n_lines():
+        return len(jl.read_bytes().splitlines()) if jl.exists() else 0
+
+    deadline = time.time() + 60
+    while n_lines() < 4 and time.time() < deadline:
+        time.sleep(0.05)
+    os.killpg(workers["hostB"].pid, signal.SIGKILL)   # a host is lost mid-experiment
+    while n_lines() < 10 and time.time() < deadline:
+        time.sleep(0.05)
+    os.killpg(coord.pid, signal.SIGKILL)               # then the coordinator dies
+    coord.wait()
+    before = J.read_journal(jl)
+    assert 10 <= len(before) < 24
+    r = _run(["run", "--resume", out, "--scheduler", address, "--same-host-ok", "--quiet",
+              "--no-analysis"])
+    assert r.returncode == 0, r.stderr
+    recs = J.read_journal(jl)
+    ids = [x["run"] for x in recs]
+    assert sorted(ids) == list(range(24)), "every planned run exactly once"
+    assert all(x["status"] == "ok" for x in recs)
+    assert recs[:len(before)] == before
