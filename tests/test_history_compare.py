@@ -128,3 +128,32 @@ def test_compare_command(tmp_path, cli):
     assert r.returncode == 2 and "percentage" in r.stderr and "Traceback" not in r.stderr
     r = cli("compare", a, tmp_path / "missing")
     assert r.returncode == 2 and "Traceback" not in r.stderr
+
+
+def test_compare_agrees_with_benchharness_analysis_of_pooled_folders(tmp_path):
+    # cross-check with the project's own analysis (benchharness.analysis, fitted
+    # independently): the pooled table with a `session` factor, full model on the
+    # log scale, one declared comparison B vs A within each cell
+    from benchharness.analysis import analyze
+
+    a, b = _pair(tmp_path, ratios={("lzma", "9"): 1.2, ("zlib", "1"): 0.93}, n_b=5)
+    pooled, factors, *_ = pooled_table(a, b)
+    table = pooled.rename(columns={"y": "wall_s"}).assign(status="ok")
+    cells = [dict(zip(factors, k)) for k in
+             pooled[factors].drop_duplicates().itertuples(index=False)]
+    declared = [{"session": ["B", "A"], "within": c} for c in cells]
+    res_an = analyze(table, response="wall_s", factors=[*factors, "session"],
+                     transform="log", model="full", block=False, compare=declared, art=False)
+    rows = [r for r in res_an.comparisons if r["method"] == "declared"]
+    assert len(rows) == len(cells)
+    m = len(cells)
+    # the analysis gives its declared family Bonferroni intervals: ask compare for
+    # the same confidence level 1 - 0.05/m
+    ours = compare_folders(a, b, conf_level=1 - 0.05 / m)
+    by = {tuple(c.cell[f] for f in factors): c for c in ours.cells}
+    for r in rows:
+        c = by[tuple(r["within"][f] for f in factors)]
+        assert c.estimate == pytest.approx(r["ratio"], rel=1e-9)
+        assert c.low == pytest.approx(r["lower"], rel=1e-9)
+        assert c.high == pytest.approx(r["upper"], rel=1e-9)
+        assert c.p_value == pytest.approx(r["p"], rel=1e-6)
