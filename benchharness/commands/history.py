@@ -7,7 +7,7 @@ import sys
 
 
 def add_parser(sub) -> None:
-    from benchharness.history.store import DEFAULT_DB
+    from benchharness.history import DEFAULT_DB
 
     p = sub.add_parser("history", help="record results per commit; show trends and steps",
                        description="Keep per-cell summaries of results folders in an SQLite "

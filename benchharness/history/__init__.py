@@ -7,6 +7,17 @@ Killick et al. 2012, with a permutation-calibrated penalty) and host breaks;
 docs/history.md.
 """
 
-from benchharness.history.store import DEFAULT_DB, add_results, read_history
+from pathlib import Path
+
+#: the history file used when none is named
+DEFAULT_DB = Path("results") / "history.sqlite"
 
 __all__ = ["DEFAULT_DB", "add_results", "read_history"]
+
+
+def __getattr__(name):  # lazy, so `benchharness --help` does not load sqlite3
+    if name in ("add_results", "read_history"):
+        from benchharness.history import store
+
+        return getattr(store, name)
+    raise AttributeError(name)

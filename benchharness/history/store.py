@@ -15,8 +15,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from benchharness.errors import DataError, UsageError
+from benchharness.history import DEFAULT_DB  # noqa: F401  (re-exported)
 
-DEFAULT_DB = Path("results") / "history.sqlite"
 SCHEMA_VERSION = 1
 
 SCHEMA = """
