@@ -55,6 +55,10 @@ def test_round_trip_matches_reference_summaries(tmp_path):
             assert row["noise_sd"] == pytest.approx(np.std(logs, ddof=1), rel=1e-12)
         else:
             assert math.isnan(row["ci_low"]) and math.isnan(row["noise_sd"])
+    # cells in the experiment's level order (codec: [zlib, lzma], level: [1, 1.10])
+    assert [json.loads(c) for c in df["cell"]] == [
+        {"codec": "zlib", "level": "1"}, {"codec": "zlib", "level": "1.10"},
+        {"codec": "lzma", "level": "1"}, {"codec": "lzma", "level": "1.10"}]
     # level labels kept as written: 1.10 is not 1.1
     assert any('"1.10"' in c for c in df["cell"])
     facts = json.loads(df["host_facts"].iloc[0])

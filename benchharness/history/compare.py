@@ -182,6 +182,11 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
         out.append(CellComparison(cell=cell, n_a=na, n_b=nb, center_a=back(ma),
                                   center_b=back(mb), estimate=est, low=elo, high=ehi,
                                   p_value=p, verdict=verdict, wording=wording))
+    def rank(c: CellComparison):
+        return tuple(da.levels[f].index(c.cell[f]) if c.cell[f] in da.levels.get(f, [])
+                     else len(da.levels.get(f, [])) for f in factors)
+
+    out.sort(key=rank)
     warnings = [SESSION_WARNING]
     fa, fb = host_fingerprint(da.host), host_fingerprint(db.host)
     if fa != fb:

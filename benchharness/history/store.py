@@ -38,6 +38,7 @@ CREATE TABLE IF NOT EXISTS cells (
     folder_id   TEXT NOT NULL REFERENCES folders(folder_id),
     experiment  TEXT NOT NULL,
     cell        TEXT NOT NULL,           -- canonical JSON of the levels (keys sorted)
+    cell_order  INTEGER NOT NULL,        -- position of the cell in the experiment's level order
     response    TEXT NOT NULL,           -- e.g. wall_s
     scale       TEXT NOT NULL CHECK (scale IN ('log', 'linear')),
     n           INTEGER NOT NULL,        -- timed runs with status ok
@@ -52,7 +53,8 @@ CREATE TABLE IF NOT EXISTS cells (
 );
 CREATE INDEX IF NOT EXISTS cells_by_series ON cells (experiment, response, cell);
 CREATE VIEW IF NOT EXISTS cell_history AS
-    SELECT f.commit_id, f.commit_time, f.branch, c.experiment, c.cell, c.response, c.scale,
+    SELECT f.commit_id, f.commit_time, f.branch, c.experiment, c.cell, c.cell_order,
+           c.response, c.scale,
            c.n, c.center, c.ci_low, c.ci_high, c.conf_level, c.mean, c.se, c.noise_sd,
            f.host_fingerprint, f.host_facts, f.folder_id, f.folder_name, f.started_at,
            f.imported_at
@@ -113,10 +115,10 @@ def _insert_folder(conn: sqlite3.Connection, row: dict) -> None:
 
 def _insert_cell(conn: sqlite3.Connection, row: dict) -> int:
     cur = conn.execute(
-        "INSERT OR IGNORE INTO cells (folder_id, experiment, cell, response, scale, n, center, "
-        "ci_low, ci_high, conf_level, mean, se, noise_sd) VALUES (:folder_id, :experiment, "
-        ":cell, :response, :scale, :n, :center, :ci_low, :ci_high, :conf_level, :mean, :se, "
-        ":noise_sd)", row)
+        "INSERT OR IGNORE INTO cells (folder_id, experiment, cell, cell_order, response, scale, "
+        "n, center, ci_low, ci_high, conf_level, mean, se, noise_sd) VALUES (:folder_id, "
+        ":experiment, :cell, :cell_order, :response, :scale, :n, :center, :ci_low, :ci_high, "
+        ":conf_level, :mean, :se, :noise_sd)", row)
     return cur.rowcount
 
 
@@ -138,7 +140,8 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     data = read_folder(folder)
     summaries = []
     for response in responses:
-        summaries.extend(summarize_cells(data.runs, data.factors, response, conf_level))
+        summaries.extend(enumerate(summarize_cells(data.runs, data.factors, response,
+                                                   conf_level, data.levels)))
     conn = connect(db_path)
     try:
         existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
@@ -164,9 +167,10 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
                     "host_json": json.dumps(data.host, sort_keys=True, default=str),
                     "imported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
                 })
-            for s in summaries:
+            for order, s in summaries:
                 added += _insert_cell(conn, {
                     "folder_id": data.identity, "experiment": data.experiment, "cell": s.key,
+                    "cell_order": order,
                     "response": s.response, "scale": s.scale, "n": s.n, "center": s.center,
                     "ci_low": s.ci_low, "ci_high": s.ci_high, "conf_level": s.conf_level,
                     "mean": s.mean, "se": s.se, "noise_sd": s.noise_sd,
@@ -186,8 +190,8 @@ def read_history(db_path: str | Path, experiment: str | None = None,
                  response: str | None = "wall_s", cell_filter: dict | None = None):
     """Rows of ``cell_history`` as a DataFrame, oldest first.
 
-    Order: commit time when known, else the folder's first run start, then import
-    order. ``cell_filter`` keeps cells whose levels include every ``factor: level``.
+    Order: cells as the experiment lists its levels; within a cell, commit time
+    when known, else the folder's first run start, then import order. ``cell_filter`` keeps cells whose levels include every ``factor: level``.
     """
     import pandas as pd
 
@@ -213,10 +217,11 @@ def read_history(db_path: str | Path, experiment: str | None = None,
         df = df[df["cell"].map(keep)]
     when = pd.to_datetime(df["commit_time"], utc=True, errors="coerce", format="ISO8601")
     started = pd.to_datetime(df["started_at"], utc=True, errors="coerce", format="ISO8601")
-    df = df.assign(_order=when.fillna(started), _started=started)
-    df = df.sort_values(["experiment", "response", "cell", "_order", "_started", "imported_at"],
-                        kind="stable", na_position="last")
-    return df.drop(columns=["_order", "_started"]).reset_index(drop=True)
+    first_rank = df.groupby(["experiment", "response", "cell"])["cell_order"].transform("min")
+    df = df.assign(_order=when.fillna(started), _started=started, _rank=first_rank)
+    df = df.sort_values(["experiment", "response", "_rank", "cell", "_order", "_started",
+                         "imported_at"], kind="stable", na_position="last")
+    return df.drop(columns=["_order", "_started", "_rank"]).reset_index(drop=True)
     return df
 
 
