@@ -187,3 +187,23 @@ def test_series_order_and_cell_filter(tmp_path):
     df = read_history(db, cell_filter={"codec": "zlib", "level": "1"})
     assert list(df["commit_id"]) == ["c1", "c2", "c3"]
     assert read_history(db, experiment="other").empty
+
+
+def test_resumed_folder_replaces_its_earlier_rows(tmp_path):
+    f = _folder(tmp_path)
+    db = tmp_path / "h.sqlite"
+    assert add_results(db, f, commit="aaa1", branch="main", cwd=tmp_path) == 4
+    # the run is resumed: one more timed run of zlib/1 is appended to the journal
+    lines = (f / "runs.jsonl").read_text().splitlines()
+    last = json.loads([ln for ln in lines if '"zlib"' in ln and '"ok"' in ln][0])
+    last.update(run=999, position=999, wall_s=1.02)
+    with open(f / "runs.jsonl", "a") as fh:
+        fh.write(json.dumps(last) + "\n")
+    assert add_results(db, f, cwd=tmp_path) == 4        # no --commit needed: it is known
+    with sqlite3.connect(db) as conn:
+        assert conn.execute("SELECT COUNT(*) FROM folders").fetchone()[0] == 1
+        assert conn.execute("SELECT COUNT(*) FROM cells").fetchone()[0] == 4
+    row = read_history(db, cell_filter={"codec": "zlib", "level": "1"}).iloc[0]
+    assert row["n"] == 5 and row["commit_id"] == "aaa1" and row["branch"] == "main"
+    assert row["center"] == pytest.approx(stats.gmean([1.00, 1.10, 1.05, 0.98, 1.02]))
+    assert add_results(db, f, cwd=tmp_path) == 0

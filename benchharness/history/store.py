@@ -25,6 +25,7 @@ CREATE TABLE IF NOT EXISTS folders (
     folder_name      TEXT NOT NULL,
     folder_path      TEXT NOT NULL,      -- absolute path at import time (informational)
     experiment       TEXT NOT NULL,
+    journal_size     INTEGER NOT NULL,   -- bytes of runs.jsonl hashed into folder_id
     commit_id        TEXT NOT NULL,
     commit_time      TEXT,               -- ISO 8601 committer time, NULL when unknown
     branch           TEXT,
@@ -107,10 +108,11 @@ def _statements(script: str) -> list[str]:
 
 def _insert_folder(conn: sqlite3.Connection, row: dict) -> None:
     conn.execute(
-        "INSERT INTO folders (folder_id, folder_name, folder_path, experiment, commit_id, "
-        "commit_time, branch, started_at, host_fingerprint, host_facts, host_json, imported_at) "
-        "VALUES (:folder_id, :folder_name, :folder_path, :experiment, :commit_id, :commit_time, "
-        ":branch, :started_at, :host_fingerprint, :host_facts, :host_json, :imported_at)", row)
+        "INSERT INTO folders (folder_id, folder_name, folder_path, experiment, journal_size, "
+        "commit_id, commit_time, branch, started_at, host_fingerprint, host_facts, host_json, "
+        "imported_at) VALUES (:folder_id, :folder_name, :folder_path, :experiment, "
+        ":journal_size, :commit_id, :commit_time, :branch, :started_at, :host_fingerprint, "
+        ":host_facts, :host_json, :imported_at)", row)
 
 
 def _insert_cell(conn: sqlite3.Connection, row: dict) -> int:
@@ -122,44 +124,68 @@ def _insert_cell(conn: sqlite3.Connection, row: dict) -> int:
     return cur.rowcount
 
 
+def _same_commit(recorded: str, given: str | None) -> bool:
+    return given is None or recorded.startswith(given) or given.startswith(recorded)
+
+
 def add_results(db_path: str | Path, folder: str | Path, commit: str | None = None,
                 branch: str | None = None, responses=("wall_s",), cwd: str | Path | None = None,
                 conf_level: float = 0.95) -> int:
-    """Record a results folder in the history file; returns the number of cell rows added.
+    """Record a results folder in the history file; returns the number of cell rows written.
 
     The commit (and its time and branch) is read from git in ``cwd`` (default: the
     working directory) unless given. A folder already recorded adds nothing;
-    recording it again under a different commit is refused. All rows of one
-    import are written in one transaction.
+    recording it again under a different commit is refused. A folder whose
+    journal has grown since it was recorded (a resumed run) replaces its earlier
+    rows. All rows of one import are written in one transaction.
     """
     from benchharness.history.cells import summarize_cells
     from benchharness.history.fingerprint import host_facts, host_fingerprint
-    from benchharness.history.folder import read_folder
-    from benchharness.history.gitinfo import resolve_commit
+    from benchharness.history.folder import folder_identity, read_folder
+    from benchharness.history.gitinfo import CommitInfo, resolve_commit
 
     data = read_folder(folder)
     summaries = []
     for response in responses:
         summaries.extend(enumerate(summarize_cells(data.runs, data.factors, response,
                                                    conf_level, data.levels)))
+    journal = data.path / "runs.jsonl"
+    journal_bytes = journal.read_bytes() if journal.is_file() else b""
     conn = connect(db_path)
     try:
-        existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
-                                (data.identity,)).fetchone()
-        if existing is not None and commit is not None and not (
-                existing[0].startswith(commit) or commit.startswith(existing[0])):
-            raise DataError(f"{data.path}: this results folder is already recorded as commit "
-                            f"{existing[0]}; a folder measures one commit")
-        info = None
-        if existing is None:
-            info = resolve_commit(commit, branch, cwd)
-        added = 0
         conn.execute("BEGIN IMMEDIATE")
         try:
-            if existing is None:
+            existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
+                                    (data.identity,)).fetchone()
+            if existing is not None:
+                if not _same_commit(existing[0], commit):
+                    raise DataError(f"{data.path}: this results folder is already recorded as "
+                                    f"commit {existing[0]}; a folder measures one commit")
+            else:
+                earlier = None
+                for row in conn.execute(
+                        "SELECT folder_id, journal_size, commit_id, commit_time, branch "
+                        "FROM folders WHERE experiment = ? AND folder_name = ? AND "
+                        "journal_size < ?", (data.experiment, data.name, len(journal_bytes))):
+                    if folder_identity(data.experiment, data.name,
+                                       journal_bytes[:row[1]]) == row[0]:
+                        earlier = row
+                        break
+                if earlier is not None:
+                    # the same folder, resumed since: its new summaries replace the old
+                    if not _same_commit(earlier[2], commit):
+                        raise DataError(f"{data.path}: this results folder is already "
+                                        f"recorded as commit {earlier[2]}; a folder measures "
+                                        "one commit")
+                    info = CommitInfo(earlier[2], earlier[3], branch or earlier[4])
+                    conn.execute("DELETE FROM cells WHERE folder_id = ?", (earlier[0],))
+                    conn.execute("DELETE FROM folders WHERE folder_id = ?", (earlier[0],))
+                else:
+                    info = resolve_commit(commit, branch, cwd)
                 _insert_folder(conn, {
                     "folder_id": data.identity, "folder_name": data.name,
                     "folder_path": str(data.path.resolve()), "experiment": data.experiment,
+                    "journal_size": len(journal_bytes),
                     "commit_id": info.commit, "commit_time": info.commit_time,
                     "branch": info.branch, "started_at": data.first_started_at,
                     "host_fingerprint": host_fingerprint(data.host),
@@ -167,6 +193,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
                     "host_json": json.dumps(data.host, sort_keys=True, default=str),
                     "imported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
                 })
+            added = 0
             for order, s in summaries:
                 added += _insert_cell(conn, {
                     "folder_id": data.identity, "experiment": data.experiment, "cell": s.key,
