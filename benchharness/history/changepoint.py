@@ -127,7 +127,9 @@ def moderated_variances(sd, n):
             except ValueError:
                 d0 = math.inf
     if math.isinf(d0):
-        s0sq = float(np.exp(emean))
+        # no spread beyond chance: one common variance, whose maximum-likelihood
+        # estimate is the pooled (df-weighted) sample variance
+        s0sq = float(np.sum(dfh * s2h) / np.sum(dfh))
         post = np.full(len(sd), s0sq)
     else:
         s0sq = float(np.exp(emean + special.digamma(d0 / 2) - np.log(d0 / 2)))
