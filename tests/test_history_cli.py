@@ -46,8 +46,10 @@ def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, cli):
     assert r.returncode == 2 and "already recorded as commit c01" in r.stderr
 
     out_json, out_html = tmp_path / "t.json", tmp_path / "t.html"
-    r = cli("history", "show", "--db", db, "--json", out_json, "--html", out_html)
-    assert r.returncode == 0, r.stderr
+    r = cli("history", "show", "--db", db, "--json", out_json, "--html", out_html,
+            "--fail-on-regression")
+    assert r.returncode == 1, r.stderr          # the planted step is an open regression
+    assert "regression: archive-codecs wall_s codec=<fast> at commit c0" in r.stderr
     assert "STEP: regression" in r.stdout and "HOST CHANGED" in r.stdout
     data = json.loads(out_json.read_text())
     cells = {c["cell"]["codec"]: c for c in data["cells"]}

@@ -42,6 +42,9 @@ def add_parser(sub) -> None:
     s.add_argument("--json", metavar="FILE", help="also write the trends and steps as JSON")
     s.add_argument("--false-step-level", type=float, default=0.05, metavar="P",
                    help="chance of a false step in a flat stretch on one host (default 0.05)")
+    s.add_argument("--fail-on-regression", action="store_true",
+                   help="exit 1 when a regression step is found that has not been undone "
+                        "(lasts, or too recent to tell)")
     s.set_defaults(func=main_show)
     p.set_defaults(func=lambda args: (p.print_help(), 2)[1])
 
@@ -61,7 +64,7 @@ def main_add(args) -> int:
 def main_show(args) -> int:
     from benchharness.errors import UsageError
     from benchharness.history.store import parse_cell_filter, read_history
-    from benchharness.history.trends import build_trends, to_json_dict
+    from benchharness.history.trends import build_trends, step_kind, to_json_dict
 
     if not (0 < args.false_step_level < 1):
         raise UsageError(f"--false-step-level {args.false_step_level}: give a probability "
@@ -83,4 +86,13 @@ def main_show(args) -> int:
             fh.write(render_html(trends, experiment=args.experiment,
                                  alpha=args.false_step_level))
         print(f"wrote {args.html}", file=sys.stderr)
+    if args.fail_on_regression:
+        open_regressions = [
+            (t, st) for t in trends if t.detection is not None for st in t.detection.steps
+            if st.persists is not False and step_kind(t.response, st.ratio, st.persists)
+            == "regression"]
+        for t, st in open_regressions:
+            print(f"regression: {t.experiment} {t.response} {t.label} at commit "
+                  f"{t.points[st.index].commit} (x{st.ratio:.3f})", file=sys.stderr)
+        return 1 if open_regressions else 0
     return 0
