@@ -421,3 +421,64 @@ def sample_run_conditions(cpus: tuple[int, ...] | None = None) -> dict:
     """Cheap per-run sample: ``{"load_1m": float|None, "cpu_mhz": float|None}``."""
     la = load_average()
     return {"load_1m": la[0] if la else None, "cpu_mhz": cpu_mhz(cpus)}
+
+
+def facts_at_end(start: dict) -> dict:
+    """Facts to add to host.json when a run ends: load, throttling during the run, memory."""
+    import psutil
+
+    out: dict = {"load_average_end": load_average(), "cpu_mhz_end": cpu_mhz()}
+    end = thermal_throttle_counts()
+    out["thermal_throttle_counts_end"] = end
+    before = start.get("thermal_throttle_counts")
+    if end is not None and isinstance(before, dict):
+        out["throttled_during_run"] = any(end.get(k, 0) > before.get(k, 0) for k in end)
+    else:
+        out["throttled_during_run"] = None
+    try:
+        out["memory_available_bytes_end"] = psutil.virtual_memory().available
+    except (OSError, RuntimeError):
+        pass
+    return out
+
+
+HOST_CHECK_MODES = ("warn", "off", "strict")
+
+
+def host_check_mode(exp) -> str:
+    """The experiment's ``host_check:`` — ``warn`` (default), ``off`` or ``strict``.
+
+    ``true`` means ``warn`` and ``false`` means ``off``; ``strict`` refuses to
+    start while any check gives a warning (notes never block).
+    """
+    node = (getattr(exp, "sections", {}) or {}).get("host_check")
+    if node is None:
+        return "warn"
+    from benchharness import yamlnodes as yn
+
+    text = yn.scalar_text(node, "'host_check'")
+    if text in yn._TRUE:
+        return "warn"
+    if text in yn._FALSE:
+        return "off"
+    if text in HOST_CHECK_MODES:
+        return text
+    raise yn.node_error(node, f"'host_check' is {text!r}; use warn, off or strict")
+
+
+def preflight(exp, facts: dict | None = None) -> list[dict]:
+    """Run the host checks an experiment asks for; raise in ``strict`` mode on a warning."""
+    mode = host_check_mode(exp)
+    if mode == "off":
+        return []
+    found = check_host(facts)
+    blocking = [w for w in found if w["severity"] == "warning"]
+    if mode == "strict" and blocking:
+        from benchharness.errors import ExecutionError
+
+        first = blocking[0]
+        more = f" (and {len(blocking) - 1} more; see `benchharness host`)" if len(blocking) > 1 \
+            else ""
+        raise ExecutionError(f"host check (host_check: strict): {first['message']}; fix: "
+                             f"{first['fix']}{more}")
+    return found

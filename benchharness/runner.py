@@ -163,6 +163,13 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
                      "(order: blocked), so that hosts are blocks of the design")
     else:
         exp_for_plan = exp
+    from benchharness.quality import quality_config
+
+    quality_config(exp)  # bad expect/metrics/samples/perf sections fail before a folder exists
+    from benchharness.host import preflight
+
+    start_facts = collect_facts()
+    host_warnings = preflight(exp, start_facts)  # host_check: strict stops here
     plan = plan or build_plan(exp_for_plan, seed=seed)
     check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
@@ -173,8 +180,10 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         if plan.info:
             J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
                                                               default=str))
-        facts = collect_facts()
+        facts = start_facts
+        facts["warnings"] = host_warnings
         J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+
         exp_dir = str(Path(exp.path).resolve().parent) if exp.path != "<string>" else os.getcwd()
         session = {
             "benchharness_version": _version(),
@@ -364,6 +373,18 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     interrupted = False
     records_new = 0
     progress.start(len(planned), len(planned) - len(todo), folder)
+    from benchharness.quality import RunQuality
+
+    quality = RunQuality(exp, folder)
+    distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
+    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    if not done:  # a fresh folder: show the host warnings found before it started
+        for w in facts.get("warnings") or []:
+            if isinstance(w, dict) and w.get("severity") == "warning":
+                progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
+    for note in quality.notes:
+        progress.note(note)
+    quality.notes.clear()
     timeout_s = exp.timeout_s
     inflight_pgid = [None]
     controls = cells.controls
@@ -429,10 +450,12 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if ok:
                     session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
-                m = executor.execute(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                           run_id=pr["run"], levels=levels, env=run_env),
-                                     on_start=on_start_for(pr["run"]))
+                spec, qtoken = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
+                                                     run_id=pr["run"], levels=levels,
+                                                     env=run_env), levels, c)
+                m = executor.execute(spec, on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
+                m = quality.finish(qtoken, pr, m)  # expect, metrics, samples, perf counts
                 status = m.status
                 message = m.message if m.status != "ok" else (m.message or "")
                 if pr["warmup"]:
@@ -471,28 +494,38 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     finally:
         progress.stop()
         jr.close()
+        quality.close()
         if own_executor:
             try:
                 executor.close()
             except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
                 pass
-    return finalize(folder, exp, session, facts, counts, len(planned), interrupted)
+    return finalize(folder, exp, session, facts, counts, len(planned), interrupted,
+                    quality=quality)
 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
-             interrupted: bool, host_json: dict | None = None) -> RunOutcome:
+             interrupted: bool, host_json: dict | None = None, quality=None) -> RunOutcome:
     """Export runs.csv, record the end state in host.json and session.json."""
     records = J.read_journal(folder / "runs.jsonl")
     J.export_runs_csv(folder, exp.factor_names, records)
-    from benchharness.host import load_average
+    if quality is not None:
+        quality.close(records)  # steady.json: warm-up classes, executions x iterations advice
+    from benchharness.host import facts_at_end
 
-    facts["load_average_end"] = load_average()
+    facts.update(facts_at_end(facts))
     J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()
+    if not interrupted:
+        try:
+            (folder / "inflight").unlink()
+        except FileNotFoundError:
+            pass
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
     return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
-                      interrupted=interrupted)
+                      interrupted=interrupted,
+                      notes=list(quality.notes) if quality is not None else [])
 
 
 def _tail(b: bytes, n: int = 300) -> str:

@@ -23,6 +23,9 @@ def main(args) -> int:
     from benchharness.design import build_plan
 
     exp = load_experiment(args.file)
+    from benchharness.quality import quality_config
+
+    quality_config(exp)  # expect / metrics / samples / perf sections: errors before any run
     for w in exp.warnings:
         print(f"warning: {w}", file=sys.stderr)
     plan = build_plan(exp, seed=args.seed)
