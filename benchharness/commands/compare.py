@@ -20,6 +20,8 @@ def add_parser(sub) -> None:
                    help="response column (default wall_s)")
     p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL",
                    help="confidence level of the intervals (default 0.95)")
+    p.add_argument("--simultaneous", action="store_true",
+                   help="Bonferroni intervals that hold for all cells together")
     p.add_argument("--json", metavar="FILE", help="also write the comparison as JSON")
     p.set_defaults(func=main)
 
@@ -45,7 +47,7 @@ def main(args) -> int:
     if not (0 < args.confidence < 1):
         raise UsageError(f"--confidence {args.confidence}: give a level between 0 and 1")
     result = compare_folders(args.a, args.b, response=args.response, tolerance=tol,
-                             conf_level=args.confidence)
+                             conf_level=args.confidence, simultaneous=args.simultaneous)
     print_comparison(result)
     if args.json:
         with open(args.json, "w", encoding="utf-8") as fh:
@@ -69,7 +71,8 @@ def print_comparison(result) -> None:
     for n in names:
         table.add_column(n)
     for col in ("n A/B", "A", "B", "B/A" if ratio else "B - A",
-                f"{round(result.conf_level * 100)}% interval", "verdict"):
+                f"{result.conf_level * 100:g}% interval"
+                + (" (all cells)" if result.adjustment == "bonferroni" else ""), "verdict"):
         if col == "verdict":
             table.add_column(col, justify="left", overflow="fold")
         else:
