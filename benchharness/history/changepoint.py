@@ -160,14 +160,6 @@ def session_variance(x, v):
 
 # ------------------------------------------------------------ the statistics
 
-def max_split_statistic(x, w) -> tuple[float, int]:
-    """max_k W_L W_R / W (m_L - m_R)^2 and the k (points before the split)."""
-    x = np.asarray(x, dtype=float)[None, :]
-    stat = _split_stats(x, np.asarray(w, dtype=float))[0]
-    k = int(np.argmax(stat))
-    return float(stat[k]), k + 1
-
-
 def segment_statistic(X, w, extra: float = 0.0):
     """Per row of X: the largest cost reduction by one step or by a step and a step back.
 
@@ -358,7 +350,6 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
     steps: list[Step] = []
     segments: list[Segment] = []
     taus: list[float] = []
-    stretch_summ = []
     for a, b in zip(bounds[:-1], bounds[1:]):
         xs = x[a:b]
         v = moderated_variances(sd[a:b], n[a:b])
@@ -400,9 +391,8 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
                     if not (rlo > 1 if r > 1 else rhi < 1):
                         persists = False
             steps.append(Step(a + cp, r, lo, hi, persists, local[j], crit))
-        stretch_summ.append(_wmean(xs, w))
     breaks: list[HostBreak] = []
-    for i, b in enumerate(bounds[1:-1]):
+    for b in bounds[1:-1]:
         before = [s for s in segments if s.stop == b][0]
         after = [s for s in segments if s.start == b][0]
         r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
