@@ -207,3 +207,23 @@ def test_moderated_variances_shrink_towards_common_value():
     # equal sample SDs: nothing to moderate
     same = cp.moderated_variances(np.full(10, 0.03), np.full(10, 4)) * 4
     assert same == pytest.approx(np.full(10, 0.03 ** 2), rel=1e-9)
+
+
+def test_alternating_hosts_each_get_their_own_search():
+    # a pool of two machines measured in turn; the second is 30% slower; a 6%
+    # regression at commit 20 shows on both
+    rng = np.random.default_rng(13)
+    x, s, n = simulate(rng, N=40, step_at=20, step=0.06)
+    hosts = ["aaaa" if i % 2 == 0 else "bbbb" for i in range(40)]
+    x[1::2] += np.log(1.3)
+    det = cp.detect_steps(x, s, n, hosts=hosts)
+    assert len(det.breaks) == 39
+    assert all(st.index not in (0,) for st in det.steps)
+    found = sorted(st.index for st in det.steps)
+    assert len(found) == 2 and all(abs(i - 20) <= 2 for i in found)
+    assert {hosts[i] for i in found} == {"aaaa", "bbbb"}
+    assert all(1.0 < st.ratio_low and st.ratio_high < 1.13 for st in det.steps)
+    # the machine difference itself is never a step
+    flat_x, flat_s, flat_n = simulate(np.random.default_rng(14), N=40)
+    flat_x[1::2] += np.log(1.3)
+    assert cp.detect_steps(flat_x, flat_s, flat_n, hosts=hosts).steps == ()

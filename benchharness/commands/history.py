@@ -41,7 +41,7 @@ def add_parser(sub) -> None:
     s.add_argument("--html", metavar="FILE", help="also write a self-contained HTML page")
     s.add_argument("--json", metavar="FILE", help="also write the trends and steps as JSON")
     s.add_argument("--false-step-level", type=float, default=0.05, metavar="P",
-                   help="chance of a false step in a flat stretch on one host (default 0.05)")
+                   help="chance of a false step in a flat series of one host (default 0.05)")
     s.add_argument("--fail-on-regression", action="store_true",
                    help="exit 1 when a regression step is found that has not been undone "
                         "(lasts, or too recent to tell)")

@@ -2,7 +2,7 @@
 
 Owns the detection of steps in a series of per-commit log means, each with its
 own uncertainty, and the splitting of a series at known breaks (a change of host
-fingerprint). The method, per stretch measured on one host:
+fingerprint). The method, on the points measured on one host:
 
 1. **Per-point variance.** Each point is the mean of ``n`` logged timings with
    sample SD ``s``. The SDs are moderated towards a common value by the
@@ -26,11 +26,11 @@ fingerprint). The method, per stretch measured on one host:
    the whole procedure (tau^2 included) is redone on shuffled orders (999, fixed
    seed; stopped early once the answer is certain, Besag & Clifford 1991). The
    p-value ``(1 + #{T* >= T})/(1 + R)`` makes the chance of a false step in a
-   flat stretch at most ``alpha`` -- exactly, whatever the noise, as long as the
+   flat series at most ``alpha`` -- exactly, whatever the noise, as long as the
    points are interchangeable. The price of that guarantee: a shift seen in a
    single point cannot be told from one unlucky session. A lone odd point in
    the middle is never reported; a shift of the newest point alone only once
-   the stretch has more than ``2/alpha`` points (40 at 0.05); two or more
+   the host has more than ``2/alpha`` points (40 at 0.05); two or more
    shifted points at the end are found much sooner.
 4. **Where are the steps?** Only if the test rejects, PELT (Killick, Fearnhead &
    Eckley 2012, JASA 107:1590) finds the optimal segmentation under the same
@@ -41,13 +41,15 @@ fingerprint). The method, per stretch measured on one host:
 5. **Each step** is reported at the first commit of the new segment, as the
    ratio ``exp(mean_after - mean_before)`` of the two neighbouring segments'
    weighted means with a normal interval, and whether it **persists**: every
-   later segment up to the end of the stretch is still shifted the same way
+   later segment of the same host is still shifted the same way
    against the segment before the step (interval of the ratio excludes 1);
    ``None`` when only one point follows. Intervals ignore that the step location was
    chosen from the data, so they are somewhat optimistic.
 
-A change of host fingerprint ends a stretch: it is reported as a ``HostBreak``
-(with the ratio across it, for information) and never as a step.
+Each host's points are searched on their own, in order (a pool of machines
+measured in turn still gets detection per machine). A change of host between
+consecutive points is reported as a ``HostBreak`` (with the ratio across it, for
+information) and never as a step.
 """
 
 from __future__ import annotations
@@ -96,7 +98,7 @@ class Detection:
     steps: tuple[Step, ...]
     breaks: tuple[HostBreak, ...]
     segments: tuple[Segment, ...]
-    tau: tuple[float, ...] = field(default=())      # session noise SD per stretch
+    tau: tuple[float, ...] = field(default=())      # session noise SD per host
     alpha: float = 0.05
 
 
@@ -304,7 +306,7 @@ def prune_steps(x, w, cps, threshold: float) -> list[int]:
     PELT's penalty is set so the change that made the test fire is found; other
     steps it adds must each stand on their own: the split between the segments
     on either side must be as strong as the test's critical value (which, being
-    calibrated on the whole stretch, is on the safe side for a shorter window).
+    calibrated on the whole series, is on the safe side for a shorter window).
     """
     cps = list(cps)
     while cps:
@@ -335,8 +337,12 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
 
     ``x``: mean of ln(response) per point, oldest first; ``sd``: SD of the logs
     within each point (NaN when n = 1); ``n``: runs per point; ``hosts``: host
-    fingerprint per point (a change is a known break). ``alpha``: chance of a
-    false step in a flat stretch on one host.
+    fingerprint per point. The points of each host are searched on their own
+    (in order), so a pool of machines measured in turn still gets step
+    detection per machine; every change of host between consecutive points is
+    a known break. ``alpha``: chance of a false step in a flat series of one host.
+    Segment ``start``/``stop`` are positions in the whole series (first point,
+    one past the last point of the segment on its host).
     """
     from scipy import stats
 
@@ -346,13 +352,17 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
     N = len(x)
     hosts = list(hosts) if hosts is not None else ["host"] * N
     z = float(stats.norm.ppf(0.5 + conf_level / 2))
-    bounds = [0] + [i for i in range(1, N) if hosts[i] != hosts[i - 1]] + [N]
+    groups: dict[str, list[int]] = {}
+    for i, h in enumerate(hosts):
+        groups.setdefault(h, []).append(i)
     steps: list[Step] = []
     segments: list[Segment] = []
     taus: list[float] = []
-    for a, b in zip(bounds[:-1], bounds[1:]):
-        xs = x[a:b]
-        v = moderated_variances(sd[a:b], n[a:b])
+    segment_of: dict[int, Segment] = {}
+    for host, idx in groups.items():
+        idx_a = np.asarray(idx)
+        xs = x[idx_a]
+        v = moderated_variances(sd[idx_a], n[idx_a])
         if not np.isfinite(v).all():
             # no usable spread at all (single runs everywhere): fall back to the
             # scatter of the points themselves
@@ -375,7 +385,10 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
         segs = []
         for s0, s1 in zip(edges[:-1], edges[1:]):
             m, se = _wmean(xs[s0:s1], w[s0:s1])
-            segs.append(Segment(a + s0, a + s1, m, se, hosts[a]))
+            seg = Segment(int(idx_a[s0]), int(idx_a[s1 - 1]) + 1, m, se, host)
+            segs.append(seg)
+            for k in idx_a[s0:s1]:
+                segment_of[int(k)] = seg
         segments.extend(segs)
         local = local_statistics(xs, w, cps)
         for j, cp in enumerate(cps):
@@ -384,17 +397,20 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
             if len(xs) - cp < 2:
                 persists = None
             else:
-                # every later segment of the stretch stays shifted the same way
+                # every later segment of this host stays shifted the same way
                 persists = True
                 for later in segs[j + 1:]:
                     _, rlo, rhi = _ratio(later.mean, later.se, before.mean, before.se, z)
                     if not (rlo > 1 if r > 1 else rhi < 1):
                         persists = False
-            steps.append(Step(a + cp, r, lo, hi, persists, local[j], crit))
+            steps.append(Step(int(idx_a[cp]), r, lo, hi, persists, local[j], crit))
     breaks: list[HostBreak] = []
-    for b in bounds[1:-1]:
-        before = [s for s in segments if s.stop == b][0]
-        after = [s for s in segments if s.start == b][0]
+    for b in range(1, N):
+        if hosts[b] == hosts[b - 1]:
+            continue
+        before, after = segment_of[b - 1], segment_of[b]
         r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
         breaks.append(HostBreak(b, hosts[b - 1], hosts[b], r, lo, hi))
+    steps.sort(key=lambda st: st.index)
+    segments.sort(key=lambda sg: (sg.start, sg.host))
     return Detection(tuple(steps), tuple(breaks), tuple(segments), tuple(taus), alpha)

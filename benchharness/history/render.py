@@ -112,10 +112,9 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
         if det is not None:
             if det.steps:
                 console.print(f"  {len(det.steps)} step(s) found (false-step level "
-                              f"{det.alpha:g} per stretch on one host).")
+                              f"{det.alpha:g} per host).")
             elif len(t.points) >= 4:
-                console.print(f"  No step found (false-step level {det.alpha:g} per stretch "
-                              "on one host).")
+                console.print(f"  No step found (false-step level {det.alpha:g} per host).")
         if t.note:
             console.print(f"  Note: {t.note}.")
         console.print()
@@ -203,8 +202,8 @@ code { font-size: 0.95em; }
 <p>{{ cells|length }} cell series. Each point is one commit measured on one host
 (results folders of the same commit and host pooled); the interval is the
 {{ conf_pct }}% confidence interval of its {{ "geometric " if any_log }}mean. Steps are
-searched for with a false-step level of {{ alpha }} per stretch measured on one host; a change
-of host is a known break, never a regression.</p>
+searched for among the points of each host, with a false-step level of {{ alpha }} per host; a
+change of host is a known break, never a regression.</p>
 <h2>Steps found</h2>
 {% if all_steps %}<table><thead><tr><th class="l">experiment</th><th class="l">response</th>
 <th class="l">cell</th><th class="l">commit</th><th class="l">kind</th><th>ratio</th>
