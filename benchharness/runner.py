@@ -139,7 +139,8 @@ def default_executor():
 def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAULT_BASE,
                    seed: int | None = None, progress: Progress | None = None,
                    plan=None, scheduler: str | None = None,
-                   same_host_ok: bool = False) -> RunOutcome:
+                   same_host_ok: bool = False, budget_s: float | None = None,
+                   estimate_s: float | None = None) -> RunOutcome:
     """Plan and execute ``exp`` into a new results folder.
 
     ``executor``: any `Executor` (default: local processes through the
@@ -163,14 +164,32 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
                      "(order: blocked), so that hosts are blocks of the design")
     else:
         exp_for_plan = exp
-    from benchharness.quality import quality_config
+    # Adaptive replicates and time budgets decide between complete replicates
+    # (benchharness.design.sequential): each replicate runs as one block.
+    from benchharness.design.adaptive import adaptive_rule
 
-    quality_config(exp)  # bad expect/metrics/samples/perf sections fail before a folder exists
+    rule = adaptive_rule(exp)
+    plan_kwargs = {}
+    if rule is not None or budget_s is not None:
+        if scheduler:
+            from benchharness.errors import UsageError
+
+            raise UsageError("adaptive replicates and --budget decide on one machine between "
+                             "replicates; drop --scheduler for this experiment")
+        if exp.order != "blocked" and plan is None:
+            exp_for_plan = dataclasses.replace(exp, order="blocked")
+            notes.append("each replicate runs as a complete block (order: blocked), so the run "
+                         "can stop between replicates")
+        if rule is not None:
+            plan_kwargs["replicates"] = rule.max_replicates
+    from benchharness.sections import validate_sections
+
+    validate_sections(exp)  # malformed capability sections fail before a folder exists
     from benchharness.host import preflight
 
     start_facts = collect_facts()
     host_warnings = preflight(exp, start_facts)  # host_check: strict stops here
-    plan = plan or build_plan(exp_for_plan, seed=seed)
+    plan = plan or build_plan(exp_for_plan, seed=seed, **plan_kwargs)
     check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
     lock = J.FolderLock(folder)
@@ -200,6 +219,8 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         }
         if scheduler:
             session["scheduler"] = scheduler
+        if budget_s is not None:
+            session["budget_s"] = budget_s
         J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
         J.fsync_dir(folder)
         planned = [{"run": r.run, "position": r.position, "block": r.block,
@@ -211,7 +232,11 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
             outcome = execute_on_cluster(folder, exp, planned, set(), session, progress, facts,
                                          scheduler, same_host_ok=same_host_ok)
         else:
-            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts)
+            from benchharness.design.sequential import gate_for
+
+            gate = gate_for(exp, plan, folder, budget_s, estimate_s)
+            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts,
+                               stop_check=gate)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -254,8 +279,24 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
                                          same_host_ok=same_host_ok, prior=records,
                                          known_hosts=facts.get("hosts"))
         else:
+            gate = None
+            if session.get("stopped"):
+                # A stopping rule or budget ended this folder: never run past it.
+                last = int(session["stopped"]["replicates"])
+                planned = [pr for pr in planned
+                           if pr["warmup"] or int(pr["replicate"]) <= last]
+            else:
+                from benchharness.design.sequential import ReplicateGate
+                from benchharness.design.adaptive import adaptive_rule
+
+                rule = adaptive_rule(exp)
+                if rule is not None or session.get("budget_s") is not None:
+                    cells = list({tuple(sorted(pr["levels"].items())): pr["levels"]
+                                  for pr in planned}.values())
+                    gate = ReplicateGate(folder, {f.name: list(f.labels) for f in exp.factors},
+                                         cells, rule, session.get("budget_s"))
             outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
-                               prior=records)
+                               prior=records, stop_check=gate)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -358,7 +399,8 @@ def _record(pr: Mapping, m: Measurement | None, status: str, message: str) -> di
 
 
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
-             executor, progress: Progress | None, facts: dict, prior=()) -> RunOutcome:
+             executor, progress: Progress | None, facts: dict, prior=(),
+             stop_check=None) -> RunOutcome:
     own_executor = executor is None
     if own_executor:
         executor = default_executor()
@@ -412,8 +454,14 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             jr.mark_inflight(run_id, pid, pgid)
         return cb
 
+    stop_notes = []
     try:
         for pr in todo:
+            if stop_check is not None:
+                why = stop_check.before_run(pr)
+                if why:
+                    stop_notes.append(why)
+                    break
             levels = pr["levels"]
             c = cells.get(levels)
             status = None
@@ -479,6 +527,11 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             records_new += 1
             counts[status] = counts.get(status, 0) + 1
             progress.advance(rec, c["label"])
+        else:
+            if stop_check is not None:
+                final = stop_check.finish()
+                if final:
+                    stop_notes.append(final)
         jr.clear_inflight()
     except KeyboardInterrupt:
         interrupted = True
@@ -500,8 +553,12 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 executor.close()
             except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
                 pass
-    return finalize(folder, exp, session, facts, counts, len(planned), interrupted,
-                    quality=quality)
+    if stop_check is not None and stop_check.stopped:
+        session["stopped"] = stop_check.stopped
+    outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
+                       quality=quality)
+    outcome.notes.extend(stop_notes)
+    return outcome
 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,

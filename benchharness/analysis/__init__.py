@@ -410,6 +410,14 @@ def _missing_cells(fcells, sizes, names, levels):
 
 def analyze_results_folder(folder, **kwargs) -> Analysis:
     """Analyse a results folder with its experiment's defaults (used by ``benchharness run``)."""
+    if "model" not in kwargs:
+        # A fraction: only terms that are not aliased with each other (design capability).
+        from benchharness.analysis.fraction import default_model
+        from benchharness.journal import load_results
+
+        order = default_model(load_results(folder).experiment)
+        if order is not None:
+            kwargs["model"] = order
     return analyze(Path(folder), **kwargs)
 
 
