@@ -64,6 +64,7 @@ def test_round_trip_matches_reference_summaries(tmp_path):
     facts = json.loads(df["host_facts"].iloc[0])
     assert facts["cpu_model"] == {"cpu_model": "Example CPU 3000"}
     assert "memory_available_bytes" not in json.dumps(facts)   # volatile facts left out
+    assert set(facts) == {"cpu_model", "cores", "memory", "os", "python"}
 
 
 def test_second_import_adds_nothing(tmp_path):
@@ -120,13 +121,38 @@ def test_interrupted_import_leaves_no_partial_rows(tmp_path, monkeypatch):
 def test_host_fingerprint_follows_the_machine(tmp_path):
     db = tmp_path / "h.sqlite"
     a1 = _folder(tmp_path, "a1", host=HOST_A)
-    a2 = _folder(tmp_path, "a2", host=dict(HOST_A, load_1m=3.5, memory_available_bytes=1))
+    a2 = _folder(tmp_path, "a2", host=dict(HOST_A, load_average_start=[3.5, 2, 1],
+                                           memory_available_bytes=1, hostname="ci-runner-9",
+                                           cpu_mhz_now=3100.0,
+                                           memory_pressure={"some": {"avg10": 9.5}},
+                                           memory_bytes=HOST_A["memory_bytes"]
+                                           - 3 * 2 ** 20))   # a few pages less after a reboot
     b = _folder(tmp_path, "b", host=HOST_B)
     for i, f in enumerate((a1, a2, b)):
         add_results(db, f, commit=f"c{i}", cwd=tmp_path)
     df = read_history(db)
     fp = df.groupby("folder_name")["host_fingerprint"].first()
     assert fp["a1"] == fp["a2"] != fp["b"]
+    # more memory is another machine
+    c = _folder(tmp_path, "c", host=dict(HOST_A, memory_bytes=16 * 2 ** 30))
+    add_results(db, c, commit="c9", cwd=tmp_path)
+    fp = read_history(db).groupby("folder_name")["host_fingerprint"].first()
+    assert fp["c"] != fp["a1"]
+
+
+def test_fingerprint_of_a_foreign_host_json():
+    # a host.json not written by benchharness: facts found by key patterns
+    from benchharness.history.fingerprint import host_facts, host_fingerprint
+
+    h = {"cpu": {"model": "Example CPU"}, "mem_total_kib": 8_000_000, "mem_free_kib": 12345,
+         "platform": "Linux-6.1-x86_64", "python_version": "3.12.1", "load": [1, 2, 3]}
+    facts = host_facts(h)
+    assert facts == {"cpu_model": {"cpu.model": "Example CPU"},
+                     "memory": {"mem_total_kib": "7.5 GiB"},
+                     "os": {"platform": "Linux-6.1-x86_64"},
+                     "python": {"python_version": "3.12.1"}}
+    assert host_fingerprint(dict(h, mem_free_kib=1, load=[9])) == host_fingerprint(h)
+    assert host_fingerprint({}) == "unknown"
 
 
 def test_commit_read_from_git(tmp_path):
