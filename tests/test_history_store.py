@@ -233,3 +233,24 @@ def test_resumed_folder_replaces_its_earlier_rows(tmp_path):
     assert row["n"] == 5 and row["commit_id"] == "aaa1" and row["branch"] == "main"
     assert row["center"] == pytest.approx(stats.gmean([1.00, 1.10, 1.05, 0.98, 1.02]))
     assert add_results(db, f, cwd=tmp_path) == 0
+
+
+def test_selected_side_of_an_interleaved_folder(tmp_path):
+    # a folder that interleaved two builds: each side recorded under its own commit
+    vals = {("old", "zlib"): [1.0, 1.02, 0.99], ("new", "zlib"): [1.2, 1.21, 1.19],
+            ("old", "lzma"): [3.0, 3.1, 2.9], ("new", "lzma"): [3.0, 3.05, 2.95]}
+    f = write_folder(tmp_path / "gate-run", "archive-codecs",
+                     {"build": ["old", "new"], "codec": ["zlib", "lzma"]}, vals)
+    db = tmp_path / "h.sqlite"
+    assert add_results(db, f, commit="base1", cwd=tmp_path, select={"build": "old"}) == 2
+    assert add_results(db, f, commit="head2", cwd=tmp_path, select={"build": "new"}) == 2
+    assert add_results(db, f, commit="head2", cwd=tmp_path, select={"build": "new"}) == 0
+    df = read_history(db, cell_filter={"codec": "zlib"})
+    assert list(df["cell"]) == ['{"codec":"zlib"}', '{"codec":"zlib"}']
+    assert dict(zip(df["commit_id"], df["center"].round(6))) == {
+        "base1": round(stats.gmean([1.0, 1.02, 0.99]), 6),
+        "head2": round(stats.gmean([1.2, 1.21, 1.19]), 6)}
+    with pytest.raises(DataError, match="not a level of `build`"):
+        add_results(db, f, commit="x", cwd=tmp_path, select={"build": "newest"})
+    with pytest.raises(DataError, match="not a factor"):
+        add_results(db, f, commit="x", cwd=tmp_path, select={"arch": "x86"})

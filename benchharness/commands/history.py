@@ -26,6 +26,9 @@ def add_parser(sub) -> None:
                    help=f"history file (default {DEFAULT_DB})")
     a.add_argument("--response", action="append", metavar="NAME",
                    help="response column to record; repeat for several (default wall_s)")
+    a.add_argument("--only", metavar="K=V,...",
+                   help="record only the runs at these levels, leaving those factors out of "
+                        "the cells (e.g. the candidate side of an interleaved comparison)")
     a.set_defaults(func=main_add)
 
     s = hs.add_parser("show", help="show each cell's trend over commits",
@@ -50,12 +53,13 @@ def add_parser(sub) -> None:
 
 
 def main_add(args) -> int:
-    from benchharness.history.store import add_results
+    from benchharness.history.store import add_results, parse_cell_filter
 
     responses = tuple(args.response or ("wall_s",))
+    select = parse_cell_filter(args.only, option="--only")
     for folder in args.results:
         n = add_results(args.db, folder, commit=args.commit, branch=args.branch,
-                        responses=responses)
+                        responses=responses, select=select)
         what = f"{n} cell row(s) added" if n else "already recorded, nothing added"
         print(f"{folder}: {what} ({args.db})")
     return 0

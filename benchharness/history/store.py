@@ -128,9 +128,34 @@ def _same_commit(recorded: str, given: str | None) -> bool:
     return given is None or recorded.startswith(given) or given.startswith(recorded)
 
 
+def _selected(data, select):
+    """(runs, factors) restricted to the ``select`` levels, those factors dropped."""
+    if not select:
+        return data.runs, data.factors
+    runs = data.runs
+    for f, level in select.items():
+        if f not in data.factors:
+            raise DataError(f"{data.path}: `{f}` is not a factor of this experiment "
+                            f"(factors: {', '.join(data.factors)})")
+        if level not in data.levels.get(f, []):
+            raise DataError(f"{data.path}: `{level}` is not a level of `{f}` "
+                            f"(levels: {', '.join(data.levels.get(f, []))})")
+        runs = runs[runs[f].astype(str) == level]
+    return runs, tuple(f for f in data.factors if f not in select)
+
+
+def _record_id(identity: str, select) -> str:
+    if not select:
+        return identity
+    import hashlib
+
+    blob = json.dumps({str(k): str(v) for k, v in select.items()}, sort_keys=True)
+    return hashlib.sha256(f"{identity}\0{blob}".encode("utf-8")).hexdigest()
+
+
 def add_results(db_path: str | Path, folder: str | Path, commit: str | None = None,
                 branch: str | None = None, responses=("wall_s",), cwd: str | Path | None = None,
-                conf_level: float = 0.95) -> int:
+                conf_level: float = 0.95, select: dict | None = None) -> int:
     """Record a results folder in the history file; returns the number of cell rows written.
 
     The commit (and its time and branch) is read from git in ``cwd`` (default: the
@@ -138,6 +163,11 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     recording it again under a different commit is refused. A folder whose
     journal has grown since it was recorded (a resumed run) replaces its earlier
     rows. All rows of one import are written in one transaction.
+
+    ``select`` ({factor: level}) records only the runs at those levels, with
+    those factors left out of the cells -- e.g. the candidate side of a folder
+    that interleaved two builds, under the candidate's commit. Each selection
+    of a folder is its own record.
     """
     from benchharness.history.cells import summarize_cells
     from benchharness.history.fingerprint import host_facts, host_fingerprint
@@ -145,9 +175,11 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     from benchharness.history.gitinfo import CommitInfo, resolve_commit
 
     data = read_folder(folder)
+    runs, factors = _selected(data, select)
+    record = _record_id(data.identity, select)
     summaries = []
     for response in responses:
-        summaries.extend(enumerate(summarize_cells(data.runs, data.factors, response,
+        summaries.extend(enumerate(summarize_cells(runs, factors, response,
                                                    conf_level, data.levels)))
     journal = data.path / "runs.jsonl"
     journal_bytes = journal.read_bytes() if journal.is_file() else b""
@@ -156,7 +188,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
         conn.execute("BEGIN IMMEDIATE")
         try:
             existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
-                                    (data.identity,)).fetchone()
+                                    (record,)).fetchone()
             if existing is not None:
                 if not _same_commit(existing[0], commit):
                     raise DataError(f"{data.path}: this results folder is already recorded as "
@@ -167,8 +199,8 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
                         "SELECT folder_id, journal_size, commit_id, commit_time, branch "
                         "FROM folders WHERE experiment = ? AND folder_name = ? AND "
                         "journal_size < ?", (data.experiment, data.name, len(journal_bytes))):
-                    if folder_identity(data.experiment, data.name,
-                                       journal_bytes[:row[1]]) == row[0]:
+                    if _record_id(folder_identity(data.experiment, data.name,
+                                                  journal_bytes[:row[1]]), select) == row[0]:
                         earlier = row
                         break
                 if earlier is not None:
@@ -183,7 +215,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
                 else:
                     info = resolve_commit(commit, branch, cwd)
                 _insert_folder(conn, {
-                    "folder_id": data.identity, "folder_name": data.name,
+                    "folder_id": record, "folder_name": data.name,
                     "folder_path": str(data.path.resolve()), "experiment": data.experiment,
                     "journal_size": len(journal_bytes),
                     "commit_id": info.commit, "commit_time": info.commit_time,
@@ -196,7 +228,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
             added = 0
             for order, s in summaries:
                 added += _insert_cell(conn, {
-                    "folder_id": data.identity, "experiment": data.experiment, "cell": s.key,
+                    "folder_id": record, "experiment": data.experiment, "cell": s.key,
                     "cell_order": order,
                     "response": s.response, "scale": s.scale, "n": s.n, "center": s.center,
                     "ci_low": s.ci_low, "ci_high": s.ci_high, "conf_level": s.conf_level,
@@ -252,17 +284,17 @@ def read_history(db_path: str | Path, experiment: str | None = None,
     return df
 
 
-def parse_cell_filter(text: str | None) -> dict | None:
+def parse_cell_filter(text: str | None, option: str = "--cell") -> dict | None:
     """``k=v,k2=v2`` -> dict; UsageError naming the bad part otherwise."""
     if not text:
         return None
     out = {}
     for part in text.split(","):
         if "=" not in part:
-            raise UsageError(f"--cell {text!r}: `{part}` is not factor=level; "
-                             "write e.g. --cell codec=zlib,level=6")
+            raise UsageError(f"{option} {text!r}: `{part}` is not factor=level; "
+                             f"write e.g. {option} codec=zlib,level=6")
         k, v = part.split("=", 1)
         if not k.strip():
-            raise UsageError(f"--cell {text!r}: empty factor name in `{part}`")
+            raise UsageError(f"{option} {text!r}: empty factor name in `{part}`")
         out[k.strip()] = v.strip()
     return out
