@@ -250,6 +250,10 @@ def test_selected_side_of_an_interleaved_folder(tmp_path):
     assert dict(zip(df["commit_id"], df["center"].round(6))) == {
         "base1": round(stats.gmean([1.0, 1.02, 0.99]), 6),
         "head2": round(stats.gmean([1.2, 1.21, 1.19]), 6)}
+    # every factor fixed: one cell with no levels
+    assert add_results(db, f, commit="head2", cwd=tmp_path,
+                       select={"build": "new", "codec": "lzma"}) == 1
+    assert "{}" in set(read_history(db)["cell"])
     with pytest.raises(DataError, match="not a level of `build`"):
         add_results(db, f, commit="x", cwd=tmp_path, select={"build": "newest"})
     with pytest.raises(DataError, match="not a factor"):

@@ -50,9 +50,9 @@ def main(args) -> int:
                              conf_level=args.confidence, simultaneous=args.simultaneous)
     print_comparison(result)
     if args.json:
-        with open(args.json, "w", encoding="utf-8") as fh:
-            json.dump(result.to_json_dict(), fh, indent=1)
-            fh.write("\n")
+        from benchharness.commands.history import write_text
+
+        write_text(args.json, json.dumps(result.to_json_dict(), indent=1) + "\n", "--json")
     return 0
 
 

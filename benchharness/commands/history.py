@@ -52,6 +52,17 @@ def add_parser(sub) -> None:
     p.set_defaults(func=lambda args: (p.print_help(), 2)[1])
 
 
+def write_text(path: str, text: str, option: str) -> None:
+    """Write an output file; a bad path is one clear line (exit 2), not a traceback."""
+    from benchharness.errors import UsageError
+
+    try:
+        with open(path, "w", encoding="utf-8") as fh:
+            fh.write(text)
+    except OSError as exc:
+        raise UsageError(f"{option} {path}: cannot write ({exc.strerror or exc})") from None
+
+
 def main_add(args) -> int:
     from benchharness.history.store import add_results, parse_cell_filter
 
@@ -82,13 +93,10 @@ def main_show(args) -> int:
 
     print_trends(trends)
     if args.json:
-        with open(args.json, "w", encoding="utf-8") as fh:
-            json.dump(to_json_dict(trends), fh, indent=1)
-            fh.write("\n")
+        write_text(args.json, json.dumps(to_json_dict(trends), indent=1) + "\n", "--json")
     if args.html:
-        with open(args.html, "w", encoding="utf-8") as fh:
-            fh.write(render_html(trends, experiment=args.experiment,
-                                 alpha=args.false_step_level))
+        write_text(args.html, render_html(trends, experiment=args.experiment,
+                                          alpha=args.false_step_level), "--html")
         print(f"wrote {args.html}", file=sys.stderr)
     if args.fail_on_regression:
         open_regressions = [

@@ -65,7 +65,9 @@ def summarize_cells(runs, factors, response: str = "wall_s", conf_level: float =
     log_scale = bool((ok["_y"] > 0).all())
     ok = ok.assign(_x=np.log(ok["_y"]) if log_scale else ok["_y"])
     out: list[CellSummary] = []
-    for levels_tuple, grp in ok.groupby(list(factors), sort=False, dropna=False):
+    groups = (ok.groupby(list(factors), sort=False, dropna=False) if factors
+              else [((), ok)])        # no factor left (all fixed by a selection): one cell
+    for levels_tuple, grp in groups:
         if not isinstance(levels_tuple, tuple):
             levels_tuple = (levels_tuple,)
         levels = {f: str(v) for f, v in zip(factors, levels_tuple)}

@@ -70,7 +70,14 @@ def connect(db_path: str | Path, create: bool = True) -> sqlite3.Connection:
         raise UsageError(f"{path}: no history file here; add results first with "
                          "`benchharness history add RESULTS`")
     if create:
-        path.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise UsageError(f"{path}: cannot create the history file's folder "
+                             f"({exc.strerror or exc})") from None
+    if path.is_dir():
+        raise UsageError(f"{path}: is a folder; --db names the history file, e.g. "
+                         f"{path / 'history.sqlite'}")
     try:
         conn = sqlite3.connect(str(path), isolation_level=None, timeout=30)
         conn.execute("PRAGMA foreign_keys = ON")
