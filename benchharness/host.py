@@ -118,30 +118,54 @@ def thermal_throttle_counts() -> dict[str, int] | None:
     return totals if found else None
 
 
+_FREQ_FILES: dict | None = None   # cpu number -> scaling_cur_freq path, found once
+_CPUINFO_CACHE: tuple[float, list] = (-1.0, [])
+
+
+def _freq_files() -> dict:
+    global _FREQ_FILES
+    if _FREQ_FILES is None:
+        found = {}
+        for d in _cpu_dirs():
+            path = f"{d}/cpufreq/scaling_cur_freq"
+            v = _read(path)
+            if v and v.isdigit():
+                found[int(os.path.basename(d)[3:])] = path
+        _FREQ_FILES = found
+    return _FREQ_FILES
+
+
 def cpu_mhz(cpus: tuple[int, ...] | None = None) -> float | None:
     """Current CPU frequency in MHz (mean over ``cpus`` or all), where readable.
 
-    Prefers cpufreq's ``scaling_cur_freq`` (kHz); falls back to the ``cpu MHz``
-    lines of /proc/cpuinfo (which a virtual machine may report as a constant).
+    Prefers cpufreq's ``scaling_cur_freq`` (kHz; the files are found once per
+    process, so a per-run sample costs one small read per CPU); falls back to
+    the ``cpu MHz`` lines of /proc/cpuinfo (which a virtual machine may report
+    as a constant), re-read at most once a second because it is costly.
     """
+    global _CPUINFO_CACHE
     vals = []
-    dirs = _cpu_dirs()
-    if cpus is not None:
-        want = {f"cpu{c}" for c in cpus}
-        dirs = [d for d in dirs if os.path.basename(d) in want]
-    for d in dirs:
-        v = _read(f"{d}/cpufreq/scaling_cur_freq")
-        if v and v.isdigit():
-            vals.append(int(v) / 1000.0)
+    files = _freq_files()
+    if files:
+        for c, path in files.items():
+            if cpus is not None and c not in cpus:
+                continue
+            v = _read(path)
+            if v and v.isdigit():
+                vals.append(int(v) / 1000.0)
     if not vals:
-        text = _read("/proc/cpuinfo") or ""
-        per_cpu = []
-        for line in text.splitlines():
-            if line.lower().startswith("cpu mhz"):
-                try:
-                    per_cpu.append(float(line.split(":", 1)[1]))
-                except ValueError:
-                    pass
+        now = time.monotonic()
+        if now - _CPUINFO_CACHE[0] >= 1.0:
+            text = _read("/proc/cpuinfo") or ""
+            per = []
+            for line in text.splitlines():
+                if line.lower().startswith("cpu mhz"):
+                    try:
+                        per.append(float(line.split(":", 1)[1]))
+                    except ValueError:
+                        pass
+            _CPUINFO_CACHE = (now, per)
+        per_cpu = _CPUINFO_CACHE[1]
         if cpus is not None:
             per_cpu = [per_cpu[c] for c in cpus if c < len(per_cpu)]
         vals = per_cpu
