@@ -118,21 +118,21 @@ def thermal_throttle_counts() -> dict[str, int] | None:
     return totals if found else None
 
 
-_FREQ_FILES: dict | None = None   # cpu number -> scaling_cur_freq path, found once
+_FREQ_FILES: tuple[str, dict] | None = None  # (CPU_SYS, cpu number -> cur_freq path)
 _CPUINFO_CACHE: tuple[float, list] = (-1.0, [])
 
 
 def _freq_files() -> dict:
     global _FREQ_FILES
-    if _FREQ_FILES is None:
+    if _FREQ_FILES is None or _FREQ_FILES[0] != CPU_SYS:
         found = {}
         for d in _cpu_dirs():
             path = f"{d}/cpufreq/scaling_cur_freq"
             v = _read(path)
             if v and v.isdigit():
                 found[int(os.path.basename(d)[3:])] = path
-        _FREQ_FILES = found
-    return _FREQ_FILES
+        _FREQ_FILES = (CPU_SYS, found)
+    return _FREQ_FILES[1]
 
 
 def cpu_mhz(cpus: tuple[int, ...] | None = None) -> float | None:

@@ -88,6 +88,9 @@ def _code(series, listed: Sequence[str] | None, name: str):
                             f"listed in the experiment ({', '.join(map(repr, listed))})")
         return codes, tuple(listed)
     codes, uniques = pd.factorize(text, sort=False)
+    if (codes < 0).any():
+        raise DataError(f"factor {name!r} has no level in {int((codes < 0).sum())} row(s); "
+                        "give every row a level")
     return codes.astype(np.int64), tuple(str(u) for u in uniques)
 
 
@@ -202,8 +205,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
                 "flag": "timeouts" if n_lost["timeout"][cell] else None,
             })
 
-    y_text = df[response]
-    y = pd.to_numeric(y_text, errors="coerce").to_numpy(dtype=float)
+    y_col = df[response]
+    if pd.api.types.is_numeric_dtype(y_col.dtype):
+        y = y_col.to_numpy(dtype=float)
+    else:
+        y = pd.to_numeric(y_col, errors="coerce").to_numpy(dtype=float)
     use = ok & np.isfinite(y)
     bad_y = int((ok & ~np.isfinite(y)).sum())
     if bad_y:
@@ -246,15 +252,23 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     def numeric(col):
         if col not in columns:
             return None
-        v = pd.to_numeric(df[col], errors="coerce").to_numpy(dtype=float)[use]
+        col_s = df[col]
+        if pd.api.types.is_numeric_dtype(col_s.dtype):
+            v = col_s.to_numpy(dtype=float)[use]
+        else:
+            v = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
         return v if np.isfinite(v).all() else None
 
     run = numeric("run")
     position = numeric("position")
+    extra = {}
+    if "load_1m" in columns:  # machine load at the start of each run (runs.csv column)
+        col_s = df["load_1m"]
+        extra["load_1m"] = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
     return Prepared(
         response=response, factors=tuple(factors), levels=tuple(levels),
         codes=tuple(c[use] for c in codes), block=block, block_levels=tuple(block_levels),
         block_codes=block_codes, y=y[use], run=run, position=position,
         status_counts=status_counts, notes=tuple(notes), experiment=exp,
-        order_source=order_source,
+        order_source=order_source, extra=extra,
     )

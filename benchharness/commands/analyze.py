@@ -33,8 +33,8 @@ def add_parser(sub) -> None:
                    help="type of sums of squares (default 2)")
     p.add_argument("--alpha", type=float, default=0.05, help="significance level (default 0.05)")
     p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
-                   help="reference level of a factor for ratios (repeatable; default: the "
-                        "first level)")
+                   help="reference level of a factor for ratios (repeat the option for each "
+                        "factor; default: the first level)")
     p.add_argument("--adjust", choices=["holm", "bonferroni"], default="holm",
                    help="adjustment of pairwise comparisons (default holm)")
     p.add_argument("--art", action="store_true",
