@@ -11,6 +11,7 @@ import re
 from datetime import datetime, timedelta, timezone
 
 import numpy as np
+import pytest
 
 from history_helpers import HOST_A, HOST_B, write_folder
 
@@ -90,3 +91,38 @@ def test_history_usage_errors(tmp_path, cli):
     assert r.returncode == 2 and "Traceback" not in r.stderr
     r = cli("--help")
     assert "history" in r.stdout and "compare" in r.stdout
+
+
+@pytest.mark.browser
+def test_html_page_loads_offline_in_chromium(tmp_path):
+    import shutil
+
+    from benchharness.history.render import render_html
+    from benchharness.history.store import add_results, read_history
+    from benchharness.history.trends import build_trends
+
+    playwright = pytest.importorskip("playwright.sync_api")
+    exe = shutil.which("chromium") or shutil.which("chromium-browser")
+    if exe is None:
+        pytest.skip("no Chromium on this machine")
+    db = tmp_path / "h.sqlite"
+    for i, f in enumerate(_history(tmp_path, n_commits=8, step_at=4, host_at=6)):
+        add_results(db, f, commit=f"c{i:02d}", cwd=tmp_path)
+    page_file = tmp_path / "history.html"
+    page_file.write_text(render_html(build_trends(read_history(db))), encoding="utf-8")
+    requests, errors = [], []
+    with playwright.sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=exe)
+        try:
+            page = browser.new_page()
+            page.on("request", lambda r: requests.append(r.url))
+            page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.goto(page_file.as_uri())
+            assert page.locator("svg").count() == 2
+            assert page.locator("svg").first.bounding_box()["width"] > 200
+            assert "codec=<fast>" in page.inner_text("body")     # shown as text, not markup
+        finally:
+            browser.close()
+    assert errors == []
+    assert [u for u in requests if not u.startswith(("file:", "data:"))] == []
