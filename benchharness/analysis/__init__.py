@@ -296,6 +296,13 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     for row in fit.table:
         if row.note:
             notes.append(f"{row.term}: {row.note}")
+    from benchharness.analysis.hosts import host_split
+
+    hosts = host_split(prep, z, terms, model, ss_type, fit, alpha)
+    if hosts and hosts["differ"]:
+        notes.append("hosts differ significantly (F test of hosts against blocks within "
+                     f"hosts, p {hosts['between_hosts']['p']:.3g}); the block term keeps this "
+                     "out of the factor effects, but the hosts are not interchangeable")
     expected_cells = int(np.prod([sizes[f] for f in factor_idx]))
     if fcells.count < expected_cells:
         missing = _missing_cells(fcells, sizes[: len(fnames)], fnames, flevels)
@@ -312,6 +319,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     resid = z - fit.fitted[cells.row_cell]
     lev_rows = fit.leverage[cells.row_cell]
     diagnostics: dict[str, Any] = {}
+    if hosts is not None:
+        diagnostics["hosts"] = hosts
     studentized = None
     if df_res > 0:
         scale = np.sqrt(np.clip(1.0 - lev_rows, 0.0, None))

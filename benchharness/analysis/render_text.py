@@ -86,6 +86,12 @@ def format_analysis(a) -> str:
         extra = f" [{test}, p {_p(item.get('p'))}]" if test else (
             f" [p {_p(item.get('p'))}]" if item.get("p") is not None else "")
         lines.append(f"  {label}: {item.get('verdict', '-')}{extra}")
+    if dg.get("hosts"):
+        h = dg["hosts"]
+        b, w = h["between_hosts"], h["blocks_within_hosts"]
+        lines.append(f"  hosts ({len(h['hosts'])}): {h['verdict']} [between hosts: df {b['df']}, "
+                     f"SS {_g(b['sum_sq'])}, p {_p(b['p'])}; blocks within hosts: df {w['df']}, "
+                     f"SS {_g(w['sum_sq'])}]")
     if dg.get("outlier_verdict"):
         lines.append(f"  outliers: {dg['outlier_verdict']}")
         for o in dg["outliers"][:10]:
