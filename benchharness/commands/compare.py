@@ -60,7 +60,9 @@ def print_comparison(result) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    console = Console()
+    from benchharness.report.terminal import make_console
+
+    console = make_console()
     ratio = result.scale == "log"
     console.print(f"A (baseline): {result.a}", highlight=False)
     console.print(f"B:            {result.b}", highlight=False)

@@ -68,7 +68,9 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    console = console or Console()
+    from benchharness.report.terminal import make_console
+
+    console = console or make_console()
     if not trends:
         console.print("No history rows match.")
         return
