@@ -13,7 +13,7 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
-__all__ = ["load_experiment", "plan", "run", "analyze", "__version__"]
+__all__ = ["load_experiment", "plan", "run", "analyze", "choose", "__version__"]
 
 
 def load_experiment(path):
@@ -44,3 +44,12 @@ def analyze(data, response="wall_s", factors=None, block=None, transform="auto",
 
     return _analyze(data, response=response, factors=factors, block=block,
                     transform=transform, model=model, ss_type=ss_type, alpha=alpha, **kwargs)
+
+
+def choose(data, response="wall_s", factors=None, across=None, also=None, confidence=0.95,
+           prefer=None, **kwargs):
+    """Recommend a default setting: best-or-tied set, robust choice, trade-offs."""
+    from benchharness.choose import choose as _choose
+
+    return _choose(data, response=response, factors=factors, across=across, also=also,
+                   confidence=confidence, prefer=prefer, **kwargs)

@@ -53,3 +53,30 @@ def load_correlation(residuals, load_1m, alpha: float = ALPHA) -> dict:
         msg = (f"no evidence that load affected the residuals (Spearman rho {rho:.2f}, "
                f"p = {p:.3g}, {n} runs)")
     return {"rho": rho, "p": p, "n": n, "alpha": alpha, "verdict": verdict, "message": msg}
+
+
+def load_check(analysis, runs, alpha: float = ALPHA) -> dict:
+    """`load_correlation` for a fitted analysis and its runs table.
+
+    ``analysis`` is a `benchharness.analysis.Analysis` (its ``residuals`` and
+    ``run`` ids per analysed row); ``runs`` the runs table with ``run`` and
+    ``load_1m`` columns. Residuals are on the analysis scale (log for times),
+    which is where the model's noise assumption lives.
+    """
+    import numpy as np
+
+    base = {"rho": None, "p": None, "n": 0, "alpha": alpha}
+    if runs is None or "load_1m" not in getattr(runs, "columns", ()):
+        return {**base, "verdict": "not recorded",
+                "message": "the runs carry no load_1m column; load was not recorded"}
+    resid = getattr(analysis, "residuals", None)
+    run_ids = getattr(analysis, "run", None)
+    if resid is None or run_ids is None:
+        return {**base, "verdict": "not recorded",
+                "message": "the analysis has no per-run residuals to compare with load"}
+    import pandas as pd
+
+    load_by_run = dict(zip(pd.to_numeric(runs["run"], errors="coerce"),
+                           pd.to_numeric(runs["load_1m"], errors="coerce")))
+    load = np.array([load_by_run.get(float(r), np.nan) for r in np.asarray(run_ids, float)])
+    return load_correlation(np.asarray(resid, float), load, alpha)

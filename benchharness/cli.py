@@ -31,6 +31,7 @@ COMMANDS: list[tuple[str, str]] = [
     ("compare", "compare"),
     ("history", "history"),
     ("host", "host"),
+    ("steady", "steady"),
 ]
 
 

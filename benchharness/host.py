@@ -118,30 +118,54 @@ def thermal_throttle_counts() -> dict[str, int] | None:
     return totals if found else None
 
 
+_FREQ_FILES: tuple[str, dict] | None = None  # (CPU_SYS, cpu number -> cur_freq path)
+_CPUINFO_CACHE: tuple[float, list] = (-1.0, [])
+
+
+def _freq_files() -> dict:
+    global _FREQ_FILES
+    if _FREQ_FILES is None or _FREQ_FILES[0] != CPU_SYS:
+        found = {}
+        for d in _cpu_dirs():
+            path = f"{d}/cpufreq/scaling_cur_freq"
+            v = _read(path)
+            if v and v.isdigit():
+                found[int(os.path.basename(d)[3:])] = path
+        _FREQ_FILES = (CPU_SYS, found)
+    return _FREQ_FILES[1]
+
+
 def cpu_mhz(cpus: tuple[int, ...] | None = None) -> float | None:
     """Current CPU frequency in MHz (mean over ``cpus`` or all), where readable.
 
-    Prefers cpufreq's ``scaling_cur_freq`` (kHz); falls back to the ``cpu MHz``
-    lines of /proc/cpuinfo (which a virtual machine may report as a constant).
+    Prefers cpufreq's ``scaling_cur_freq`` (kHz; the files are found once per
+    process, so a per-run sample costs one small read per CPU); falls back to
+    the ``cpu MHz`` lines of /proc/cpuinfo (which a virtual machine may report
+    as a constant), re-read at most once a second because it is costly.
     """
+    global _CPUINFO_CACHE
     vals = []
-    dirs = _cpu_dirs()
-    if cpus is not None:
-        want = {f"cpu{c}" for c in cpus}
-        dirs = [d for d in dirs if os.path.basename(d) in want]
-    for d in dirs:
-        v = _read(f"{d}/cpufreq/scaling_cur_freq")
-        if v and v.isdigit():
-            vals.append(int(v) / 1000.0)
+    files = _freq_files()
+    if files:
+        for c, path in files.items():
+            if cpus is not None and c not in cpus:
+                continue
+            v = _read(path)
+            if v and v.isdigit():
+                vals.append(int(v) / 1000.0)
     if not vals:
-        text = _read("/proc/cpuinfo") or ""
-        per_cpu = []
-        for line in text.splitlines():
-            if line.lower().startswith("cpu mhz"):
-                try:
-                    per_cpu.append(float(line.split(":", 1)[1]))
-                except ValueError:
-                    pass
+        now = time.monotonic()
+        if now - _CPUINFO_CACHE[0] >= 1.0:
+            text = _read("/proc/cpuinfo") or ""
+            per = []
+            for line in text.splitlines():
+                if line.lower().startswith("cpu mhz"):
+                    try:
+                        per.append(float(line.split(":", 1)[1]))
+                    except ValueError:
+                        pass
+            _CPUINFO_CACHE = (now, per)
+        per_cpu = _CPUINFO_CACHE[1]
         if cpus is not None:
             per_cpu = [per_cpu[c] for c in cpus if c < len(per_cpu)]
         vals = per_cpu
@@ -421,3 +445,64 @@ def sample_run_conditions(cpus: tuple[int, ...] | None = None) -> dict:
     """Cheap per-run sample: ``{"load_1m": float|None, "cpu_mhz": float|None}``."""
     la = load_average()
     return {"load_1m": la[0] if la else None, "cpu_mhz": cpu_mhz(cpus)}
+
+
+def facts_at_end(start: dict) -> dict:
+    """Facts to add to host.json when a run ends: load, throttling during the run, memory."""
+    import psutil
+
+    out: dict = {"load_average_end": load_average(), "cpu_mhz_end": cpu_mhz()}
+    end = thermal_throttle_counts()
+    out["thermal_throttle_counts_end"] = end
+    before = start.get("thermal_throttle_counts")
+    if end is not None and isinstance(before, dict):
+        out["throttled_during_run"] = any(end.get(k, 0) > before.get(k, 0) for k in end)
+    else:
+        out["throttled_during_run"] = None
+    try:
+        out["memory_available_bytes_end"] = psutil.virtual_memory().available
+    except (OSError, RuntimeError):
+        pass
+    return out
+
+
+HOST_CHECK_MODES = ("warn", "off", "strict")
+
+
+def host_check_mode(exp) -> str:
+    """The experiment's ``host_check:`` — ``warn`` (default), ``off`` or ``strict``.
+
+    ``true`` means ``warn`` and ``false`` means ``off``; ``strict`` refuses to
+    start while any check gives a warning (notes never block).
+    """
+    node = (getattr(exp, "sections", {}) or {}).get("host_check")
+    if node is None:
+        return "warn"
+    from benchharness import yamlnodes as yn
+
+    text = yn.scalar_text(node, "'host_check'")
+    if text in yn._TRUE:
+        return "warn"
+    if text in yn._FALSE:
+        return "off"
+    if text in HOST_CHECK_MODES:
+        return text
+    raise yn.node_error(node, f"'host_check' is {text!r}; use warn, off or strict")
+
+
+def preflight(exp, facts: dict | None = None) -> list[dict]:
+    """Run the host checks an experiment asks for; raise in ``strict`` mode on a warning."""
+    mode = host_check_mode(exp)
+    if mode == "off":
+        return []
+    found = check_host(facts)
+    blocking = [w for w in found if w["severity"] == "warning"]
+    if mode == "strict" and blocking:
+        from benchharness.errors import ExecutionError
+
+        first = blocking[0]
+        more = f" (and {len(blocking) - 1} more; see `benchharness host`)" if len(blocking) > 1 \
+            else ""
+        raise ExecutionError(f"host check (host_check: strict): {first['message']}; fix: "
+                             f"{first['fix']}{more}")
+    return found

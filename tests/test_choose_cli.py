@@ -88,8 +88,11 @@ def test_command_line_overrides_the_section(cli, folder):
     r = cli("choose", folder, "--across", "", "--also", "", "--json", "-")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
-    # --across "" is "not given": the section still applies
-    assert d["across"] == ["disk"]
+    # an empty value switches the section's across/also off: disk is then a
+    # control factor too, so settings are threads x disk
+    assert d["across"] == [] and "pareto" not in d
+    assert d["factors"] == ["threads", "disk"]
+    assert d["best"] == {"threads": "16", "disk": "nvme"}
     r = cli("choose", folder, "--confidence", "0.9", "--response", "max_rss_kib", "--json", "-")
     d = json.loads(r.stdout)
     assert d["response"] == "max_rss_kib" and d["confidence"] == 0.9
@@ -160,7 +163,7 @@ class ThroughputExecutor:
         wall = {"16": 0.5, "64": 0.8, "256": 1.1}[b] * float(np.exp(self.rng.normal(0, 0.02)))
         return Measurement(status="ok", exit_code=0, wall_s=wall,
                            started_at="2026-01-01T00:00:00.000000+00:00",
-                           extra={"metrics": {"rows_per_s": rate}})
+                           stdout_tail=f"ingested\nrows/s: {rate:.3f}\n".encode())
 
     def close(self):
         pass
@@ -179,3 +182,35 @@ def test_direction_comes_from_the_metrics_section(tmp_path):
     s = choice_section(folder, response="rows_per_s")
     assert s["recommendation"] == {"batch": "64"}
     assert s["columns"][0] == "setting" and len(s["rows"]) == 3
+
+
+@pytest.mark.parametrize("section,needle", [
+    ("choose:\n  prefer: {threads: 5}\n", "'5' is not a level of threads"),
+    ("choose:\n  prefer: {thread: 4}\n", "did you mean 'threads'"),
+    ("choose:\n  across: disk\n  confidence: 2\n", "between 0 and 1"),
+    ("choose:\n  also: {a: 1}\n", "must be a list"),
+    ("choose: [threads]\n", "must be a mapping"),
+])
+def test_section_errors_carry_file_and_line(section, needle):
+    from benchharness.choose.config import choose_settings
+    from benchharness.errors import ExperimentError
+    from benchharness.experiment import Experiment
+
+    text = EXPERIMENT.split("choose:")[0] + section
+    exp = Experiment.from_text(text, path="pool.yaml")
+    with pytest.raises(ExperimentError) as info:
+        choose_settings(exp)
+    assert needle in str(info.value)
+    assert str(info.value).startswith("pool.yaml:")
+
+
+def test_section_reads_plain_values():
+    from benchharness.choose.config import choose_settings
+    from benchharness.experiment import Experiment
+
+    exp = Experiment.from_text(EXPERIMENT.split("choose:")[0] + (
+        "choose:\n  prefer: {threads: 8}\n  across: disk\n  also: [max_rss_kib]\n"
+        "  response: user_s\n  confidence: 0.9\n"), path="pool.yaml")
+    assert choose_settings(exp) == {"prefer": {"threads": "8"}, "across": ["disk"],
+                                    "also": ["max_rss_kib"], "response": "user_s",
+                                    "confidence": 0.9}

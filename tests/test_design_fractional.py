@@ -176,7 +176,7 @@ def test_automatic_choice_matches_standard_designs(k, cells, resolution, wlp_fro
     assert d.search["exhaustive"]
 
 
-@pytest.mark.parametrize("k, p", [(6, 2), (7, 3), (8, 4), (7, 2), (8, 3)])
+@pytest.mark.parametrize("k, p", [(6, 2), (7, 3), (8, 4), (7, 2), (8, 3), (9, 4), (9, 3)])
 def test_automatic_choice_is_minimum_aberration(k, p):
     # Cross-check of the branch and bound against a plain exhaustive enumeration.
     d = design_for_cells(letters(k), 2 ** (k - p))
@@ -222,3 +222,11 @@ def test_json_dict_and_describe():
     text = "\n".join(d.describe())
     assert "resolution IV" in text and "defining relation: I = " in text
     assert full_design(letters(3)).resolution is None
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("k, p", [(10, 4), (11, 6)])
+def test_automatic_choice_is_minimum_aberration_larger(k, p):
+    d = design_for_cells(letters(k), 2 ** (k - p))
+    assert d.search["exhaustive"]
+    assert d.word_length_pattern == _minimum_wlp_brute_force(k, p)

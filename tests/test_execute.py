@@ -72,23 +72,26 @@ def test_sleep_wall_time_is_tight(ex):
 
 
 def test_cpu_bound_child_user_time_close_to_wall(ex):
-    # a pure-Python busy loop for 0.3 s of wall time (perf_counter is a vDSO
-    # call, so the loop spends next to nothing in the kernel)
+    # A fixed amount of pure-Python arithmetic (no system calls in the loop).
+    # On a shared machine the child may wait for a CPU; the kernel's own count
+    # of that wait (/proc/self/schedstat: CPU time ns, run-queue wait ns; see
+    # the kernel's Documentation/scheduler/sched-stats.rst) is subtracted so
+    # the check holds on a busy box too.
     m = ex.execute(py("""
-        import time
-        end = time.perf_counter() + 0.3
         x = 0
-        while time.perf_counter() < end:
-            for i in range(1000):
-                x += i
+        for i in range(6_000_000):
+            x += i
+        print(open("/proc/self/schedstat").read())
     """))
     assert m.status == "ok", m.message
-    assert m.wall_s >= 0.3
+    on_cpu_ns, waited_ns, _ = map(int, m.stdout_tail.split())
     assert m.sys_s < 0.1
-    # on a shared machine the child may be descheduled for a while: user time
-    # must be most of the wall time, never more than it (one thread)
     assert m.user_s + m.sys_s <= m.wall_s + 0.01
-    assert m.user_s >= 0.6 * m.wall_s, (m.user_s, m.wall_s)
+    # what the child itself says it got, vs what wait4 reports
+    assert abs((m.user_s + m.sys_s) - on_cpu_ns / 1e9) <= 0.15 * on_cpu_ns / 1e9 + 0.02
+    # wall time = CPU time + waiting for a CPU + start and exit (ms)
+    ran_s = m.wall_s - waited_ns / 1e9
+    assert m.user_s >= 0.85 * ran_s - 0.02, (m.user_s, m.wall_s, waited_ns)
 
 
 def test_started_at_is_iso_utc_with_microseconds(ex):
@@ -243,6 +246,11 @@ def test_capture_keeps_only_the_tail_of_50_mb(ex):
     assert len(m.stdout_tail) == 64 * 1024
     assert m.stdout_tail.endswith(b"THE END\n")
     assert len(m.stderr_tail) == 64 * 1024 and m.stderr_tail.endswith(b"LAST")
+    # the launcher's own peak during that run (its peak mark is reset before
+    # each spawn) stayed far below the 50 MB that went through it
+    with open(f"/proc/{ex.launcher_pid}/status") as f:
+        hwm_kib = next(int(line.split()[1]) for line in f if line.startswith("VmHWM"))
+    assert hwm_kib < 25 * 1024, hwm_kib
 
 
 def test_stdout_and_stderr_read_concurrently(ex):
@@ -279,7 +287,8 @@ if os.fork() == 0:          # grandchild that escapes into its own session
     record("session-leader")
     {leader_tail}
     os._exit(0)
-time.sleep(0.3)
+while len(open(pidfile).read().splitlines()) < 4:  # everyone has said who they are
+    time.sleep(0.01)
 print("ready", flush=True)
 time.sleep(60)
 """
@@ -293,14 +302,14 @@ def test_timeout_kills_the_whole_tree_including_setsid_escapees(ex, tmp_path, le
     script.write_text(ESCAPER.format(leader_tail=leader_tail))
     started = []
     t = time.perf_counter()
-    m = ex.execute(spec(PY, script, pidfile, timeout_s=1.0),
+    m = ex.execute(spec(PY, script, pidfile, timeout_s=2.0),
                    on_start=lambda pid, pgid: started.append((pid, pgid)))
     took = time.perf_counter() - t
     assert m.status == "timeout"
-    assert "timed out after 1 s" in m.message
+    assert "timed out after 2 s" in m.message
     assert m.exit_code == -signal.SIGTERM
-    assert 1.0 <= m.wall_s < 1.0 + 0.3 + 0.5  # timeout + grace (SIGTERM ignored) + slack
-    assert took < 5  # the escapee holds stdout open; reading stops shortly after the reap
+    assert 2.0 <= m.wall_s < 2.0 + 0.3 + 0.7  # timeout + grace (SIGTERM ignored) + slack
+    assert took < 6  # the escapee holds stdout open; reading stops shortly after the reap
     assert m.stdout_tail == b"ready\n"
     assert started and started[0][0] == started[0][1]
     pids = {line.split()[0]: int(line.split()[1]) for line in pidfile.read_text().splitlines()}
@@ -322,7 +331,8 @@ def test_child_exiting_early_with_escaped_holder_does_not_hang(ex, tmp_path):
             open({str(pidfile)!r}, "w").write(str(os.getpid()))
             time.sleep(3)
             os._exit(0)
-        time.sleep(0.1)
+        while not os.path.exists({str(pidfile)!r}):
+            time.sleep(0.01)
         print("parent done", flush=True)
     """, timeout_s=10))
     took = time.perf_counter() - t
@@ -338,7 +348,7 @@ def test_timeout_then_next_run_is_normal(ex):
     m = ex.execute(spec("/bin/sleep", "10", timeout_s=0.2))
     assert m.status == "timeout" and 0.2 <= m.wall_s < 1.0
     m = ex.execute(spec("/bin/sleep", "0.05", timeout_s=5))
-    assert m.status == "ok" and 0.05 <= m.wall_s < 0.1
+    assert m.status == "ok" and 0.05 <= m.wall_s < 0.2
 
 
 # ------------------------------------------------------------------ launcher life
@@ -465,8 +475,12 @@ def test_aslr_off_gives_the_same_stack_address_each_run(ex):
 
 
 def test_fork_path_measures_like_spawn_path(ex):
-    m = ex.execute(spec("/bin/sleep", "0.2", nice=1))
-    assert m.status == "ok" and 0.2 <= m.wall_s <= 0.23
+    walls = []
+    for _ in range(3):
+        m = ex.execute(spec("/bin/sleep", "0.2", nice=1))
+        assert m.status == "ok"
+        walls.append(m.wall_s)
+    assert 0.2 <= min(walls) <= 0.23, walls
     m = ex.execute(spec("/no/such/thing", nice=1))
     assert m.status == "failed" and "no such file" in m.message
 
@@ -519,3 +533,133 @@ def test_drop_page_cache_says_why_not(tmp_path):
         assert reason == ""
     else:
         assert reason.startswith("cannot drop the page cache") and "drop_caches" in reason
+
+
+def test_orphaned_descendants_are_counted_in_the_run(ex):
+    # The child starts a worker it never waits for; the worker exits first and
+    # becomes the launcher's orphan at the child's exit. Its CPU time and peak
+    # memory belong to this run.
+    m = ex.execute(py("""
+        import os, time
+        pid = os.fork()
+        if pid == 0:
+            b = bytearray(120 * 1024 * 1024)
+            for i in range(0, len(b), 4096):
+                b[i] = 1
+            x = 0
+            for i in range(3_000_000):
+                x += i
+            t = os.times()
+            os.write(1, f"{t.user + t.system}\\n".encode())
+            os._exit(0)
+        while True:  # wait until the worker is a zombie, without reaping it
+            st = open(f"/proc/{pid}/stat").read()
+            if st[st.rfind(")") + 2] == "Z":
+                break
+            time.sleep(0.01)
+    """))
+    assert m.status == "ok", m.message
+    assert m.extra.get("orphans_counted") == 1
+    worker_cpu_s = float(m.stdout_tail)
+    assert m.user_s + m.sys_s >= worker_cpu_s
+    assert m.max_rss_kib >= 120 * 1024
+    assert "leftover_processes" not in m.extra
+    nxt = ex.execute(spec("/bin/true"))
+    assert "orphans_counted" not in nxt.extra and nxt.max_rss_kib < 20 * 1024
+
+
+def test_impossible_arguments_fail_the_run_not_the_launcher(ex):
+    m = ex.execute(spec("/bin/echo", "a\0b"))
+    assert m.status == "failed" and "cannot start" in m.message
+    m = ex.execute(spec("/bin/true", env=dict(ENV, BAD="x\0y")))
+    assert m.status == "failed"
+    m = ex.execute(spec("/bin/echo", "a\0b", nice=1))
+    assert m.status == "failed" and "cannot start" in m.message
+    assert ex.execute(spec("/bin/true")).status == "ok"
+
+
+HARNESS = """
+import sys
+sys.path.insert(0, {root!r})
+from benchharness.execute.base import RunSpec
+from benchharness.execute.local import LocalExecutor
+ex = LocalExecutor()
+def on_start(pid, pgid):
+    print(ex.launcher_pid, pid, flush=True)
+ex.execute(RunSpec(argv=("/bin/sleep", "60"), env={{"PATH": "/usr/bin:/bin"}}), on_start=on_start)
+"""
+
+
+def test_harness_killed_mid_run_takes_the_run_with_it(tmp_path):
+    # SIGKILL of the harness: the launcher sees its request pipe close, kills
+    # the run's tree and exits, so nothing is left running.
+    import subprocess
+    from pathlib import Path
+    script = tmp_path / "harness.py"
+    script.write_text(HARNESS.format(root=str(Path(__file__).resolve().parent.parent)))
+    p = subprocess.Popen([PY, str(script)], stdout=subprocess.PIPE, text=True)
+    launcher_pid, child_pid = map(int, p.stdout.readline().split())
+    assert alive(child_pid) and alive(launcher_pid)
+    p.kill()
+    p.wait()
+    deadline = time.monotonic() + 5
+    while (alive(child_pid) or alive(launcher_pid)) and time.monotonic() < deadline:
+        time.sleep(0.02)
+    assert not alive(child_pid)
+    assert not alive(launcher_pid)
+
+
+def test_a_later_timeout_spares_what_earlier_runs_left_running(ex, tmp_path):
+    pidfile = tmp_path / "pid"
+    m = ex.execute(py(f"""
+        import os, time
+        if os.fork() == 0:
+            os.setsid()
+            open({str(pidfile)!r}, "w").write(str(os.getpid()))
+            time.sleep(30)
+            os._exit(0)
+        while not os.path.exists({str(pidfile)!r}):
+            time.sleep(0.01)
+    """))
+    assert m.status == "ok" and m.extra.get("leftover_processes") == 1
+    server = int(pidfile.read_text())
+    try:
+        t = ex.execute(spec("/bin/sleep", "10", timeout_s=0.2))
+        assert t.status == "timeout"
+        assert alive(server)  # belongs to the earlier run, not to the one timed out
+    finally:
+        os.kill(server, signal.SIGKILL)
+
+
+def test_runs_from_several_threads_do_not_overlap(ex):
+    import threading
+    results = []
+
+    def worker():
+        results.append(ex.execute(py("import time; t = time.time(); time.sleep(0.1); "
+                                     "print(t, time.time())")))
+
+    threads = [threading.Thread(target=worker) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert [m.status for m in results] == ["ok"] * 4
+    spans = sorted(tuple(map(float, m.stdout_tail.split())) for m in results)
+    assert all(a[1] <= b[0] for a, b in zip(spans, spans[1:]))
+
+
+def test_max_rss_covers_descendants_the_child_waited_for(ex):
+    # wait4's usage of a child includes the children it reaped itself
+    # (getrusage(2): RUSAGE_CHILDREN is folded into the parent's figures at
+    # its exit), so a small driver script running a big worker reports the
+    # worker's peak; CPU time adds up.
+    m = ex.execute(py("""
+        import subprocess, sys
+        subprocess.run([sys.executable, "-c",
+                        "b = bytearray(150 * 1024 * 1024); "
+                        "[b.__setitem__(i, 1) for i in range(0, len(b), 4096)]"], check=True)
+    """))
+    assert m.status == "ok", m.message
+    assert m.max_rss_kib >= 150 * 1024
+    assert "orphans_counted" not in m.extra

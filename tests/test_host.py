@@ -136,3 +136,37 @@ def test_host_command_text(cli):
     r = cli("host")
     assert r.returncode == 0, r.stderr
     assert "CPU" in r.stdout and "governor" in r.stdout
+
+
+def test_facts_at_end_detect_throttling_during_run(tmp_path, monkeypatch):
+    monkeypatch.setattr(host, "CPU_SYS", _fake_sys(tmp_path, throttle=(1, 1), pkg=0))
+    start = {"thermal_throttle_counts": host.thermal_throttle_counts()}
+    assert host.facts_at_end(start)["throttled_during_run"] is False
+    (tmp_path / "cpu" / "cpu1" / "thermal_throttle" / "core_throttle_count").write_text("5\n")
+    end = host.facts_at_end(start)
+    assert end["throttled_during_run"] is True
+    assert end["thermal_throttle_counts_end"]["core"] == 6
+    assert host.facts_at_end({})["throttled_during_run"] is None
+
+
+def test_host_check_modes(tmp_path, monkeypatch):
+    from benchharness.errors import ExecutionError, ExperimentError
+    from benchharness.experiment import Experiment
+
+    def exp(line):
+        return Experiment.from_text(f"experiment: t\ncommand: [\"true\"]\nfactors: {{a: [1]}}\n"
+                                    f"{line}\n", path="e.yaml")
+
+    assert host.host_check_mode(exp("")) == "warn"
+    assert host.host_check_mode(exp("host_check: false")) == "off"
+    assert host.host_check_mode(exp("host_check: strict")) == "strict"
+    with pytest.raises(ExperimentError, match=r"e.yaml:4:13: 'host_check' is 'loud'"):
+        host.host_check_mode(exp("host_check: loud"))
+    assert host.preflight(exp("host_check: off")) == []
+    busy = {"logical_cores": 1, "load_average_start": [9.0, 9.0, 9.0],
+            "memory_bytes": 100, "memory_available_bytes": 50}
+    monkeypatch.setattr(host, "busy_processes", lambda *a, **k: [])
+    found = host.preflight(exp(""), busy)
+    assert any(w["check"] == "load" for w in found)
+    with pytest.raises(ExecutionError, match="host_check: strict.*load average is 9.00"):
+        host.preflight(exp("host_check: strict"), busy)

@@ -278,3 +278,34 @@ def test_load_correlation_finds_planted_relation_like_scipy():
     assert quiet["verdict"] in ("unrelated", "related")
     assert load_correlation([1, 2, 3, 4, 5, 6], [0.5] * 6)["verdict"] == "no variation"
     assert load_correlation([1, 2, float("nan")], [1, 2, 3])["verdict"] == "too few runs"
+
+
+def test_metric_direction_from_results_folder(tmp_path):
+    from benchharness.metrics import better_direction, read_manifest
+
+    (tmp_path / "metrics.json").write_text(json.dumps(_metrics().manifest()))
+    assert better_direction(tmp_path, "rate_rps") == "higher"
+    assert better_direction(tmp_path, "p99_ms") == "lower"
+    assert better_direction(tmp_path, "wall_s") == "lower"
+    assert read_manifest(tmp_path / "nowhere") == {}
+
+
+def test_load_check_on_a_fitted_analysis():
+    # Planted: run times grow with the load recorded at their start.
+    import numpy as np
+    import pandas as pd
+
+    from benchharness.analysis import analyze
+    from benchharness.analysis_load import load_check
+
+    rng = np.random.default_rng(4)
+    n = 40
+    load = rng.uniform(0, 6, n)
+    a = np.repeat(["x", "y"], n // 2)
+    wall = np.where(a == "x", 1.0, 1.5) * np.exp(0.08 * load + rng.normal(0, 0.03, n))
+    runs = pd.DataFrame({"run": np.arange(n), "position": rng.permutation(n), "a": a,
+                         "status": "ok", "wall_s": wall, "load_1m": load})
+    res = analyze(runs, response="wall_s", factors=["a"])
+    out = load_check(res, runs)
+    assert out["verdict"] == "related" and out["rho"] > 0.5 and out["n"] == n
+    assert load_check(res, runs.drop(columns="load_1m"))["verdict"] == "not recorded"

@@ -172,9 +172,17 @@ def test_negative_between_variance_is_truncated():
     c = variance_components(y)
     if c.between_var_raw < 0:
         assert c.between_var == 0.0
-    rec = recommend(Components(10, 50, 1.0, 1.0, 0.0, -0.01, 1.0, 0.01), 1.0, 0.001, 0.01,
-                    max_iterations=5000)
-    assert rec.iterations == 5000 and "below zero" in rec.note
+    comp = Components(10, 50, 1.0, 1.0, 0.0, -0.01, 1.0, 0.01)
+    rec = recommend(comp, 1.0, 0.001, 0.01)
+    assert rec.reached and rec.rel_halfwidth <= 0.01 and "below zero" in rec.note
+    # with no between-run variance only the total n*r matters: t^2 * 1 / (n r) <= 0.01^2
+    # needs n r >= 4.3e4 or so; the cheapest split uses the fewest runs that are affordable
+    from scipy import stats
+
+    for n in range(2, 40):
+        t = stats.t.ppf(0.975, n - 1)
+        r = math.ceil(t * t / (n * 0.01 ** 2))
+        assert n * (1.0 + r * 0.001) >= rec.cost_s - 1e-9
 
 
 def test_recommendation_is_cheapest_on_a_grid():
@@ -220,3 +228,64 @@ def test_extract_samples_formats():
     assert s == [] and "'samples' not found" in why
     s, why = extract_samples(SamplesConfig(), b"1\n2\n", b"", truncated=True)
     assert "early samples are lost" in why
+
+
+def _planted_hits(seeds, n=200, tol=3):
+    hits = 0
+    for seed in seeds:
+        rng = np.random.default_rng(1000 + seed)
+        warm = int(rng.integers(4, 80))
+        ratio = float(rng.uniform(1.3, 5.0))
+        cv = float(rng.uniform(0.01, 0.08))
+        y = np.concatenate([_timings(rng, ratio * 1e-3, warm, cv), _timings(rng, 1e-3, n - warm, cv)])
+        res = classify(y)
+        hits += res.shape == "warm-up" and abs(res.steady_from - warm) <= tol
+    return hits
+
+
+def test_planted_warmups_random_small():
+    # Planted answers: random warm-up lengths (4-80), slow-down factors 1.3-5x and
+    # noise 1-8 %; nearly all must be found within 3 iterations.
+    assert _planted_hits(range(20)) >= 19
+
+
+@pytest.mark.slow
+def test_planted_warmups_random_many():
+    assert _planted_hits(range(400)) >= 390
+
+
+@pytest.mark.slow
+def test_method_of_moments_is_unbiased_on_simulated_two_level_data():
+    # Planted truth: between-run variance 0.5, within 2.0; the ANOVA estimators
+    # are unbiased (before truncation), so their averages approach the truth.
+    est = np.array([[variance_components(_two_level(s, 8, 12, math.sqrt(0.5), math.sqrt(2.0))
+                                         ).between_var_raw,
+                     variance_components(_two_level(s, 8, 12, math.sqrt(0.5), math.sqrt(2.0))
+                                         ).within_var] for s in range(2000)])
+    assert est[:, 0].mean() == pytest.approx(0.5, abs=0.03)
+    assert est[:, 1].mean() == pytest.approx(2.0, abs=0.02)
+
+
+def test_pelt_exact_on_random_short_series():
+    # Property: PELT's optimum equals the unpruned optimum (Killick et al. 2012, Theorem 3.2).
+    from hypothesis import given, settings, strategies as st
+
+    @settings(max_examples=40, deadline=None)
+    @given(st.lists(st.floats(-50, 50, allow_nan=False, width=32), min_size=4, max_size=40),
+           st.floats(0.5, 30), st.integers(1, 4))
+    def check(values, pen, min_size):
+        y = np.asarray(values)
+        a = pelt(y, penalty=pen, min_size=min_size, var_floor=1e-6)
+        b = optimal_partitioning(y, penalty=pen, min_size=min_size, var_floor=1e-6)
+        assert a.cost == pytest.approx(b.cost, rel=1e-9, abs=1e-7)
+
+    check()
+
+
+def test_long_series_are_searched_in_blocks():
+    # Planted: 150 slow iterations in 30 000; found to within one block (8 iterations).
+    rng = np.random.default_rng(21)
+    y = np.concatenate([_timings(rng, 3e-3, 150), _timings(rng, 1e-3, 29850)])
+    res = classify(y)
+    assert res.shape == "warm-up" and abs(res.steady_from - 150) <= 8
+    assert res.steady_s == pytest.approx(1e-3, rel=0.01)

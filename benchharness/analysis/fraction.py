@@ -10,7 +10,9 @@ default for times) exp(effect) is the ratio of the +1 level to the -1 level.
 
 * Replicated designs: t tests and confidence intervals from the residual
   (pure error) mean square; the result equals ordinary least squares on the
-  same columns (checked against statsmodels in the tests).
+  same columns (checked against statsmodels in the tests). An effect is
+  flagged ``active`` when its Holm-adjusted (Holm 1979) p over all the
+  estimated chains is below alpha (screening tests many chains at once).
 * Unreplicated designs (no residual degrees of freedom): Lenth's (1989)
   pseudo standard error ``PSE = 1.5 * median{|c| : |c| < 2.5 s0}``,
   ``s0 = 1.5 * median |c|``, with margin of error ``ME = t(0.975; m/3) * PSE``
@@ -235,6 +237,16 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
                 row["ratio_low"] = math.exp(row["ci_low"])
                 row["ratio_high"] = math.exp(row["ci_high"])
         out_effects.append(row)
+    if sigma is not None and out_effects:
+        # Holm (1979) across the effects for the "active" flag: screening tests many chains.
+        ps = [r["p"] for r in out_effects]
+        order = sorted(range(len(ps)), key=lambda i: ps[i])
+        m = len(ps)
+        running = 0.0
+        for rank, i in enumerate(order):
+            running = max(running, min(1.0, (m - rank) * ps[i]))
+            out_effects[i]["p_holm"] = running
+            out_effects[i]["active"] = running < alpha
     labels = [r["label"] for r in out_effects]
     return {
         "response": response,
@@ -242,6 +254,7 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
         "design": f"2^({design.k}-{design.p})" if design.is_fraction else f"2^{design.k}",
         "resolution": design.resolution,
         "defining_relation": design.defining_words(),
+        "letters": design.letter_map(),
         "runs_used": int(len(y)),
         "residual_df": int(df_resid),
         "sigma": sigma,
@@ -261,17 +274,22 @@ def format_fraction(result: dict) -> str:
     lines = [f"effects of the {result['design']} design on "
              f"{'ln ' if result['scale'] == 'log' else ''}{result['response']} "
              f"({result['runs_used']} runs, residual df {result['residual_df']})"]
+    if result.get("letters"):
+        lines.append("  letters: " + ", ".join(f"{a}={n}" for a, n in result["letters"].items()))
+    with_p = any("p" in e for e in result["effects"])
     rows = []
     for e in result["effects"]:
         ratio = f"x{e['ratio']:.4f}" if "ratio" in e else ""
         flag = ""
         if e.get("active"):
-            flag = "active"
+            flag = "active" if with_p else "active (beyond SME)"
         elif e.get("likely"):
-            flag = "likely"
-        p = f"{e['p']:.3g}" if "p" in e else ""
-        rows.append([e["label"], f"{e['estimate']:+.4g}", ratio, p, flag])
-    header = ["effect", "estimate", "ratio", "p", ""]
+            flag = "likely (beyond ME)"
+        row = [e["label"], f"{e['estimate']:+.4g}", ratio]
+        if with_p:
+            row.append(f"{e['p']:.3g} (Holm {e['p_holm']:.3g})")
+        rows.append(row + [flag])
+    header = ["effect", "estimate", "ratio"] + (["p"] if with_p else []) + [""]
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h)
               for i, h in enumerate(header)]
     lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths)))
@@ -284,3 +302,86 @@ def format_fraction(result: dict) -> str:
     if result.get("confounded_with_blocks"):
         lines.append("confounded with blocks: " + ", ".join(result["confounded_with_blocks"]))
     return "\n".join(lines)
+
+
+def fraction_analysis_for(exp, runs, response: str = "wall_s", log: bool = True) -> dict | None:
+    """Hook for the analysis stage: the fraction analysis when ``exp`` has a two-level
+    ``design:`` section (fraction or confounded blocks), else None."""
+    from benchharness.design.spec import design_of
+
+    choice = design_of(exp)
+    if not choice.changes_plan:
+        return None
+    return analyze_fraction(runs, choice.design, response=response, log=log)
+
+
+def add_to_results_folder(folder, response: str = "wall_s", log: bool = True) -> dict | None:
+    """For a two-level ``design:``: add the ``fraction`` key to ``analysis.json`` (creating
+    the file if needed) and save ``half_normal.png``; returns the fraction analysis or None.
+
+    Used by `benchharness run` after the general analysis.
+    """
+    import json
+    from pathlib import Path
+
+    from benchharness import journal as J
+
+    folder = Path(folder)
+    res = J.load_results(folder)
+    result = fraction_analysis_for(res.experiment, res.runs, response=response, log=log)
+    if result is None:
+        return None
+    path = folder / "analysis.json"
+    data = {}
+    if path.exists():
+        try:
+            data = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError):
+            data = {}
+    data["fraction"] = _finite(result)
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(json.dumps(data, indent=2, ensure_ascii=False, default=_json_default,
+                              allow_nan=False) + "\n", encoding="utf-8")
+    tmp.replace(path)
+    if result["half_normal"]:
+        try:
+            half_normal_figure(result["half_normal"], folder / "half_normal.png",
+                               result.get("lenth"))
+        except Exception:  # noqa: BLE001 - a figure must never cost the analysis
+            pass
+    return result
+
+
+def _json_default(x):
+    try:
+        return float(x)
+    except (TypeError, ValueError):
+        return str(x)
+
+
+def default_model(exp) -> int | None:
+    """ANOVA model order for an experiment with a fraction: interactions up to order t where
+    resolution >= 2t + 1, so no two terms of the model are aliased (main effects only for
+    resolution III and IV, two-factor interactions too for V, ...). None without a fraction."""
+    from benchharness.design.spec import design_of
+
+    choice = design_of(exp)
+    if not choice.changes_plan or not choice.design.is_fraction:
+        return None
+    return max(1, (choice.design.resolution - 1) // 2)
+
+
+def _finite(x):
+    """JSON-safe copy: non-finite floats become None (strict JSON has no NaN or Infinity)."""
+    if isinstance(x, dict):
+        return {k: _finite(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_finite(v) for v in x]
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    if hasattr(x, "item") and not isinstance(x, (str, bytes)):
+        try:
+            return _finite(x.item())
+        except (TypeError, ValueError):
+            return x
+    return x

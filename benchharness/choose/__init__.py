@@ -16,7 +16,7 @@ The result is a frozen `Choice` whose ``to_dict()`` is plain JSON.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -96,9 +96,9 @@ def _describe(setting: Mapping) -> str:
     return ", ".join(f"{k}={v}" for k, v in setting.items()) or "(all runs)"
 
 
-def choose(data, response: str | None = "wall_s", factors=None, across=(), also=(),
+def choose(data, response: str | None = "wall_s", factors=None, across=None, also=None,
            confidence: float | None = 0.95, prefer: Mapping | None = None, better=None,
-           scale: str = "auto", residual: str = "auto") -> Choice:
+           scale: str = "auto", residual: str = "auto", block=None) -> Choice:
     """Choose a default setting from a runs table.
 
     ``data``: a DataFrame, a CSV path or a results folder. ``factors``: the
@@ -109,8 +109,12 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
     ``lower``/``higher`` for ``response`` or a mapping response -> direction
     (default: the experiment's ``metrics:`` section, else lower).
     Settings from the experiment's ``choose:`` section fill whatever is not
-    given here (pass ``response=None`` / ``confidence=None`` to take those
-    from the section too; they default to ``wall_s`` and 0.95).
+    given here: ``across``/``also`` left as None come from the section (an
+    empty list means none); pass ``response=None`` / ``confidence=None`` to
+    take those from the section too (else ``wall_s`` and 0.95). ``prefer`` is
+    merged over the section's. ``block``: None/"auto" fits the default block
+    term (``block`` for ``order: blocked`` experiments, ``host`` when the runs
+    span several hosts), a column name fits that one, False fits none.
     """
     from benchharness.choose.config import choose_settings, load_source, metric_directions
     from benchharness.choose.mcb import mcb
@@ -132,8 +136,8 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
         raise UsageError(f"confidence must be a number between 0 and 1, not {confidence!r}")
     if not 0 < confidence < 1:
         raise UsageError(f"confidence must be between 0 and 1 (e.g. 0.95), not {confidence}")
-    across = _as_list(across) or _as_list(section.get("across"))
-    also = _as_list(also) or _as_list(section.get("also"))
+    across = _as_list(section.get("across") if across is None else across)
+    also = _as_list(section.get("also") if also is None else also)
     prefer = {**section.get("prefer", {}), **{str(k): str(v) for k, v in (prefer or {}).items()}}
     if factors_list is None:
         if experiment is not None:
@@ -155,13 +159,15 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
     elif better is not None:
         directions[response] = str(better)
 
+    block = _block_column(block, df, experiment, factors_list, across, response)
+
     orders = level_orders(df[df["status"].astype(str) == "ok"] if "status" in df.columns else df,
                           control + across, experiment)
 
     def fit(resp):
         return fit_response(df, resp, control, across, better=directions.get(resp, "lower"),
                             scale=scale if resp == response else "auto", orders=orders,
-                            residual=residual)
+                            residual=residual, block=block)
 
     main = fit(response)
     settings = main.settings
@@ -266,13 +272,35 @@ def choose(data, response: str | None = "wall_s", factors=None, across=(), also=
         estimated_best=as_map(settings[top_i]), tied=[as_map(settings[i]) for i in tied_idx],
         robust=robust, on_average=on_average, disagreement=disagreement,
         candidates=candidates,
-        residual={"model": main.residual_model, "sigma": main.sigma, "df": main.df,
-                  "critical": list(res.critical)},
+        residual={"model": main.residual_model, "block": main.block, "sigma": main.sigma,
+                  "df": main.df, "critical": list(res.critical)},
         prefer=dict(default), also=tuple(also),
         pareto=None if pareto_idx is None else [as_map(settings[i]) for i in pareto_idx],
         responses=responses_info, reasons=reasons, runs_used=main.n_runs,
         runs_dropped=main.dropped_runs,
     )
+
+
+def _block_column(block, df, experiment, factors, across, response):
+    """The block column to fit, following the analysis's default (see model.py)."""
+    if block is False or block == "":
+        return None
+    taken = set(factors) | set(across) | {response}
+    if block is None or block == "auto":
+        ok = df[df["status"].astype(str) == "ok"] if "status" in df.columns else df
+        if getattr(experiment, "order", None) == "blocked" and "block" in df.columns \
+                and "block" not in taken:
+            return "block"
+        if "host" in df.columns and "host" not in taken and ok["host"].nunique() > 1:
+            return "host"
+        return None
+    block = str(block)
+    if block not in df.columns:
+        raise DataError(f"no block column {block!r} in the table")
+    if block in taken:
+        raise UsageError(f"{block!r} cannot be both the block and a factor, an --across "
+                         "column or the response")
+    return block
 
 
 def _loss_words(x: float, is_log: bool) -> str:
@@ -295,7 +323,9 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
         if all(v == default[f] for f, v in zip(names, settings[i])):
             parts.append("it is the current default")
     if res.tied[i]:
-        if lo < 0 and hi <= 0:
+        if lo >= 0 and hi <= 0:
+            parts.append("as good as the best (the data show no difference at all)")
+        elif lo < 0 and hi <= 0:
             parts.append(f"better than every other setting ({conf} confidence), by at most "
                          f"{_loss_words(-lo, is_log)}")
         elif hi <= 0:
@@ -331,14 +361,15 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
         out.append(f"{n_t} settings cannot be told apart from the best at {conf} confidence; "
                    f"recommending {best} because {why}.")
     if main.across:
+        across_words = " and ".join(main.across)
         r = _describe(as_map(settings[rob.robust]))
         a = _describe(as_map(settings[rob.on_average]))
         wr = _loss_words(rob.worst_loss[rob.robust], is_log)
         if disagreement is None and rob.worst_loss[rob.robust] <= 1e-12:
-            out.append(f"Across {', '.join(main.across)}, {r} has the best estimate in every "
+            out.append(f"Across {across_words}, {r} has the best estimate in every "
                        "environment.")
         elif disagreement is None:
-            out.append(f"Across {', '.join(main.across)}, {r} is both the safest choice "
+            out.append(f"Across {across_words}, {r} is both the safest choice "
                        f"(never more than {wr} worse than the best of an environment) and the "
                        "best on average.")
         else:
@@ -346,10 +377,20 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
             there = (f"{r} is the best there" if disagreement["robust_loss"] <= 1e-12 else
                      f"{r}: {_loss_words(disagreement['robust_loss'], is_log)} worse there")
             out.append(
-                f"Across {', '.join(main.across)}, {r} is the safest choice (never more than "
+                f"Across {across_words}, {r} is the safest choice (never more than "
                 f"{wr} worse than the best of an environment), while {a} is best on average "
                 f"but {_loss_words(disagreement['on_average_loss'], is_log)} worse than the "
                 f"best where {env} ({there}).")
+    if main.across and best_i not in (rob.robust, rob.on_average):
+        e = int(rob.worst_env[best_i])
+        env = _describe(dict(zip(main.across, main.environments[e])))
+        safe = _describe(as_map(settings[rob.robust]))
+        safe_words = (f"{safe} is the best in every environment"
+                      if rob.worst_loss[rob.robust] <= 1e-12 else
+                      f"{safe} never loses more than "
+                      f"{_loss_words(rob.worst_loss[rob.robust], is_log)}")
+        out.append(f"Mind that {best} is {_loss_words(rob.worst_loss[best_i], is_log)} worse "
+                   f"than the best where {env}; {safe_words}.")
     if also and pareto_idx is not None:
         if len(pareto_idx) == len(settings):
             out.append(f"Trading {main.response} against {', '.join(also)}: all "

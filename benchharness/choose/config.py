@@ -72,7 +72,15 @@ def choose_settings(experiment) -> dict:
         for key, v in keys.items():
             if key == "prefer":
                 items = expect_mapping(v, "choose.prefer", _known_factors(experiment, v))
-                out["prefer"] = {f: scalar_text(lv, f"choose.prefer.{f}") for f, lv in items.items()}
+                prefer = {}
+                for f, lv in items.items():
+                    level = scalar_text(lv, f"choose.prefer.{f}")
+                    listed = _levels(experiment, f)
+                    if listed and level not in listed:
+                        raise node_error(lv, f"choose.prefer.{f}: {level!r} is not a level of "
+                                             f"{f}; levels: {', '.join(listed)}")
+                    prefer[f] = level
+                out["prefer"] = prefer
             elif key in ("across", "also"):
                 if isinstance(to_plain(v), str):
                     out[key] = [x.strip() for x in to_plain(v).split(",") if x.strip()]
@@ -92,6 +100,13 @@ def choose_settings(experiment) -> dict:
             raise ExperimentError(exc.bare, path=path, line=exc.line, col=exc.col) from None
         raise
     return out
+
+
+def _levels(experiment, name) -> tuple[str, ...]:
+    try:
+        return tuple(experiment.levels_of(name))
+    except (AttributeError, KeyError, ValueError):
+        return ()
 
 
 def _known_factors(experiment, node):

@@ -25,8 +25,12 @@ This module owns turning a runs table into plain numbers for one response:
   means (each environment counts equally, whatever its number of runs), with
   variance ``sigma^2 * w``, ``w = sum_e (1/n_e) / E^2``.
 
-No blocking term is fitted: with randomized run order a block is a replicate
-label, and the full-interaction error already absorbs it conservatively.
+* a block term (``block`` for experiments run in ``order: blocked``, ``host``
+  when runs spread over several hosts -- the same default as the analysis)
+  enters either model as an additive term, so drift between blocks or
+  differences between hosts do not count as noise. Setting means stay plain
+  cell means: with complete blocks the block effects cancel in every
+  difference between settings.
 """
 
 from __future__ import annotations
@@ -37,11 +41,7 @@ import numpy as np
 
 from benchharness.errors import DataError
 
-__all__ = ["ResponseModel", "fit_response", "level_orders", "setting_key"]
-
-
-def setting_key(levels) -> tuple[str, ...]:
-    return tuple(str(x) for x in levels)
+__all__ = ["ResponseModel", "fit_response", "level_orders"]
 
 
 @dataclass(frozen=True)
@@ -64,6 +64,7 @@ class ResponseModel:
     residual_model: str             # "cells" | "additive"
     n_runs: int
     dropped_runs: int               # rows excluded (status not ok, missing value)
+    block: str | None = None        # block column fitted as an additive term
 
     @property
     def sign(self) -> float:
@@ -121,13 +122,15 @@ def _ok_rows(df, response: str):
 
 
 def fit_response(df, response: str, control, across=(), better: str = "lower",
-                 scale: str = "auto", orders=None, residual: str = "auto") -> ResponseModel:
+                 scale: str = "auto", orders=None, residual: str = "auto",
+                 block: str | None = None) -> ResponseModel:
     """Estimate per-setting means and the residual noise of ``response``.
 
     ``df`` is a runs table; ``control`` and ``across`` name its columns;
     ``orders`` maps columns to level labels in listed order (see
     `level_orders`). ``scale`` is ``auto`` | ``log`` | ``none``; ``residual`` is
-    ``auto`` | ``cells`` | ``additive``.
+    ``auto`` | ``cells`` | ``additive``; ``block`` names a column whose levels
+    enter the noise model as an additive term.
     """
     control = tuple(control)
     across = tuple(across)
@@ -185,15 +188,24 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
                         f"({len(missing)} such gap(s))")
     means = sums / counts
     n = len(y)
-    resid = y - means[si, ei]
-    df_cells = n - S * E
+    block_cols: list[np.ndarray] = []
+    n_blocks = 0
+    if block is not None:
+        bl = df.loc[keep, block].astype(str).to_numpy()
+        levels = list(dict.fromkeys(bl.tolist()))
+        n_blocks = len(levels)
+        block_cols = [(bl == lv).astype(float) for lv in levels[1:]]
+    df_cells = n - S * E - max(n_blocks - 1, 0)
     if residual == "auto":
         residual = "cells" if df_cells > 0 else "additive"
     if residual == "cells":
-        if df_cells <= 0:
-            raise DataError(f"no replicated cell for {response!r}: the full model has no "
-                            "error degrees of freedom; run replicates")
-        sse, dfe = float(resid @ resid), float(df_cells)
+        if not block_cols:
+            resid = y - means[si, ei]
+            sse, dfe = float(resid @ resid), float(n - S * E)
+        else:
+            cell = si * E + ei
+            X = np.column_stack([(cell == c).astype(float) for c in range(S * E)] + block_cols)
+            sse, dfe = _lstsq_sse(X, y)
     elif residual == "additive":
         cols = [np.ones(n)]
         for i in range(1, S):
@@ -202,17 +214,12 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
             lv = sub[c].to_numpy()
             for level in orders[c][1:]:
                 cols.append((lv == level).astype(float))
-        X = np.column_stack(cols)
-        beta, *_ = np.linalg.lstsq(X, y, rcond=None)
-        r = y - X @ beta
-        rank = np.linalg.matrix_rank(X)
-        dfe = float(n - rank)
-        if dfe <= 0:
-            raise DataError(f"too few runs of {response!r} to estimate the noise "
-                            f"({n} runs, {rank} model terms); run replicates")
-        sse = float(r @ r)
+        sse, dfe = _lstsq_sse(np.column_stack(cols + block_cols), y)
     else:
         raise DataError(f"residual must be auto, cells or additive, not {residual!r}")
+    if dfe <= 0:
+        raise DataError(f"too few runs of {response!r} to estimate the noise ({n} runs, no "
+                        "error degrees of freedom left); run replicates")
     sigma = float(np.sqrt(sse / dfe))
     setting_means = means.mean(axis=1)
     weights = (1.0 / counts).sum(axis=1) / (E * E)
@@ -221,4 +228,12 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
         settings=tuple(settings), environments=tuple(envs), cell_means=means,
         cell_counts=counts, setting_means=setting_means, weights=weights, sigma=sigma,
         df=dfe, residual_model=residual, n_runs=int(n), dropped_runs=int(n_total - n),
+        block=block if block_cols else None,
     )
+
+
+def _lstsq_sse(X, y) -> tuple[float, float]:
+    """Residual sum of squares and degrees of freedom of a least-squares fit."""
+    beta, *_ = np.linalg.lstsq(X, y, rcond=None)
+    r = y - X @ beta
+    return float(r @ r), float(len(y) - np.linalg.matrix_rank(X))

@@ -20,12 +20,14 @@ unequal weights (Hayter 1984), which only keeps more settings on the front.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
 __all__ = ["ParetoResult", "pareto_front", "tukey_allowance"]
 
 
+@lru_cache(maxsize=1024)
 def tukey_allowance(k: int, df: float, confidence: float) -> float:
     """The studentized-range quantile over sqrt(2) for k means."""
     from scipy.stats import studentized_range
@@ -61,7 +63,7 @@ def pareto_front(models, confidence: float = 0.95) -> ParetoResult:
     beats = np.ones((k, k), dtype=bool)  # beats[b, a]: b beats a on all responses
     qs = []
     for m in models:
-        q = tukey_allowance(k, m.df, per_conf)
+        q = tukey_allowance(int(k), float(m.df), float(per_conf))
         qs.append(q)
         g = m.goodness
         w = m.weights

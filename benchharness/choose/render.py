@@ -30,8 +30,9 @@ def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
     mean_kind = "geometric mean" if d["scale"] == "log" else "mean"
     log = d["scale"] == "log"
     cols = ["setting", f"{mean_kind} {resp}", "runs", "verdict",
-            "worst-case loss" + (" (ratio)" if log else ""),
-            "worst environment" if d["across"] else "ratio to best"]
+            "worst-case loss" + (" (ratio)" if log else " (difference)"),
+            "worst environment" if d["across"] else
+            ("ratio to best" if log else "difference from best")]
     if d["across"]:
         cols.append("average ratio" if log else "average loss")
     if d.get("also"):
@@ -66,14 +67,18 @@ def section_dict(choice) -> dict:
         f"Response {d['response']} ({d['better']} is better), analysed on the "
         f"{'log' if d['scale'] == 'log' else 'original'} scale; "
         f"{d['runs_used']} ok runs used, {d['runs_dropped']} left out.",
-        f"Noise: pooled residual of the {'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
-        f"model, {res['df']:g} degrees of freedom.",
+        f"Noise: pooled residual of the "
+        f"{'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
+        f"model{' with ' + res['block'] + ' as an additive block term' if res.get('block') else ''}, "
+        f"{res['df']:g} degrees of freedom.",
         "Worst-case loss: how much worse than the best of the other settings this setting "
         f"can be, at {d['confidence'] * 100:g}% confidence (multiple comparisons with the best).",
     ]
     if d["across"]:
+        what = (f"{d['across'][0]} level" if len(d["across"]) == 1
+                else " and ".join(d["across"]) + " combination")
         notes.append("Worst environment: the setting's ratio to the best setting of the "
-                     f"{', '.join(d['across'])} level where it does worst (estimates).")
+                     f"{what} where it does worst (estimates).")
     return {
         "title": "Choosing a default",
         "summary": list(d["reasons"]),

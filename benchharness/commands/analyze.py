@@ -26,15 +26,18 @@ def add_parser(sub) -> None:
     g.add_argument("--no-block", action="store_true", help="fit no block term")
     p.add_argument("--transform", choices=["auto", "none", "log", "boxcox"], default="auto",
                    help="analysis scale (default auto: chosen from the Box-Cox interval)")
-    p.add_argument("--model", default="full", metavar="full|main|N",
+    p.add_argument("--plain", action="store_true",
+                   help="plain text layout instead of tables")
+    p.add_argument("--model", default=None, metavar="full|main|N",
                    help="all interactions (full), main effects only (main), or interactions "
-                        "up to order N (default full)")
+                        "up to order N (default full; for a fractional design, the terms "
+                        "its resolution keeps apart)")
     p.add_argument("--ss-type", type=int, choices=[2, 3], default=2,
                    help="type of sums of squares (default 2)")
     p.add_argument("--alpha", type=float, default=0.05, help="significance level (default 0.05)")
     p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
-                   help="reference level of a factor for ratios (repeatable; default: the "
-                        "first level)")
+                   help="reference level of a factor for ratios (repeat the option for each "
+                        "factor; default: the first level)")
     p.add_argument("--adjust", choices=["holm", "bonferroni"], default="holm",
                    help="adjustment of pairwise comparisons (default holm)")
     p.add_argument("--art", action="store_true",
@@ -56,14 +59,40 @@ def main(args) -> int:
     if not 0 < args.alpha < 1:
         raise UsageError(f"--alpha {args.alpha}: must be between 0 and 1")
     block = False if args.no_block else args.block
+    from benchharness.journal import is_results_folder, load_results
+
+    folder_res = load_results(args.source) if is_results_folder(args.source) else None
+    model = args.model
+    if model is None:
+        model = "full"
+        if folder_res is not None and factors is None:
+            from benchharness.analysis.fraction import default_model
+
+            order = default_model(folder_res.experiment)
+            if order is not None:
+                model = order
     an = analyze(args.source, response=args.response, factors=factors, block=block,
-                 transform=args.transform, model=args.model, ss_type=args.ss_type,
+                 transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=args.alpha, reference=args.reference, adjust=args.adjust,
                  art=True if args.art else "auto")
     if args.json == "-":
         sys.stdout.write(an.to_json() + "\n")
         return 0
-    print(format_analysis(an), end="")
+    if args.plain:
+        print(format_analysis(an), end="")
+    else:
+        from benchharness.report.terminal import print_analysis
+
+        print_analysis(an)
+    if folder_res is not None and factors is None:
+        # Two-level fractions and confounded blocks: effects labelled with their aliases.
+        from benchharness.analysis.fraction import format_fraction, fraction_analysis_for
+
+        frac = fraction_analysis_for(folder_res.experiment, folder_res.runs,
+                                     response=args.response,
+                                     log=(an.transform or {}).get("name") != "none")
+        if frac is not None:
+            print("\n" + format_fraction(frac))
     if args.json:
         write_analysis_json(an, args.json)
         print(f"\nanalysis written to {args.json}")

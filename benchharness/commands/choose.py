@@ -28,15 +28,21 @@ def add_parser(subparsers):
     p.add_argument("--factors", default=None, metavar="A,B",
                    help="factor columns (needed for a CSV without an experiment file)")
     p.add_argument("--across", default=None, metavar="F,...",
-                   help="environment columns the default must live with (not choices)")
+                   help="environment columns the default must live with (not choices); "
+                        "'' for none even if the experiment file names some")
     p.add_argument("--also", default=None, metavar="METRIC,...",
-                   help="further responses for the trade-off front, e.g. max_rss_kib")
+                   help="further responses for the trade-off front, e.g. max_rss_kib; '' for none")
     p.add_argument("--confidence", default=None, type=float,
                    help="confidence level, between 0 and 1 (default 0.95)")
     p.add_argument("--prefer", action="append", default=[], metavar="FACTOR=LEVEL",
                    help="current default of a factor; ties go its way (repeatable)")
     p.add_argument("--better", choices=("lower", "higher"), default=None,
                    help="direction of the response (default: metrics: section, else lower)")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--block", default=None, metavar="COL",
+                   help="block column fitted as an additive noise term (default: 'block' for "
+                        "blocked experiments, 'host' when runs span several hosts)")
+    g.add_argument("--no-block", action="store_true", help="fit no block term")
     p.add_argument("--json", default=None, metavar="FILE",
                    help="also write the choice as JSON to FILE ('-' for standard output only)")
     p.set_defaults(func=run)
@@ -79,11 +85,12 @@ def run(args) -> int:
         args.source,
         response=args.response,
         factors=args.factors,
-        across=args.across or (),
-        also=args.also or (),
+        across=args.across,   # None: from the choose: section; "": none
+        also=args.also,
         confidence=args.confidence,
         prefer=_prefer(args.prefer),
         better=args.better,
+        block=False if args.no_block else args.block,
     )
     data = json.dumps(_finite(choice.to_dict()), indent=2, allow_nan=False)
     if args.json == "-":

@@ -13,6 +13,10 @@ def add_parser(sub) -> None:
     p.add_argument("file", help="experiment file (YAML)")
     p.add_argument("--json", action="store_true", help="print the plan as JSON")
     p.add_argument("--seed", type=int, default=None, help="override the file's seed")
+    p.add_argument("--pilot", metavar="RESULTS",
+                   help="earlier results folder (or tidy CSV): estimate how long the plan takes")
+    p.add_argument("--budget", metavar="DURATION",
+                   help="with --pilot: how many complete replicates fit this time (e.g. 30m)")
     p.add_argument("--show", type=int, default=12, metavar="N",
                    help="how many runs of the execution order to list (default 12)")
     p.set_defaults(func=main)
@@ -23,15 +27,89 @@ def main(args) -> int:
     from benchharness.design import build_plan
 
     exp = load_experiment(args.file)
+    from benchharness.sections import validate_sections
+
+    validate_sections(exp)  # every capability section: errors before any run
     for w in exp.warnings:
         print(f"warning: {w}", file=sys.stderr)
     plan = build_plan(exp, seed=args.seed)
+    timing = _timing(args, exp, plan)
     if args.json:
-        json.dump(plan.to_json_dict(), sys.stdout, indent=1)
+        d = plan.to_json_dict()
+        d.update(timing)
+        json.dump(d, sys.stdout, indent=1)
         sys.stdout.write("\n")
         return 0
     print(format_plan(exp, plan, show=args.show))
+    for line in _timing_lines(timing):
+        print(line)
     return 0
+
+
+def _timing(args, exp, plan) -> dict:
+    """Adaptive rule and time estimate (from --pilot) for the plan, JSON-ready."""
+    import os
+
+    from benchharness.design.adaptive import adaptive_rule
+    from benchharness.errors import UsageError
+
+    out: dict = {}
+    rule = adaptive_rule(exp)
+    if rule is not None:
+        out["adaptive"] = rule.to_json_dict()
+    if args.budget and not args.pilot:
+        raise UsageError("--budget on `plan` needs --pilot RESULTS to know how long runs take")
+    if not args.pilot:
+        return out
+    from benchharness.design.budget import estimate_plan, pilot_timing, replicates_in_budget
+    from benchharness.source import load_table
+    from benchharness.yamlnodes import parse_duration_s
+
+    pilot, _ = load_table(args.pilot) if os.path.isdir(args.pilot) else \
+        load_table(args.pilot, factors=list(exp.factor_names))
+    est = estimate_plan(plan, pilot_timing(pilot, exp.factor_names))
+    out["time_estimate"] = est.to_json_dict()
+    reps = est.per_replicate_s
+    per_rep = sum(reps.values()) / len(reps) if reps else 0.0
+    out["time_estimate"]["expected_replicate_s"] = per_rep
+    if rule is not None:
+        out["time_estimate"]["expected_at_max_replicates_s"] = \
+            est.warmup_s + per_rep * rule.max_replicates
+    if args.budget:
+        b = parse_duration_s(args.budget)
+        if b is None or b <= 0:
+            raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m")
+        out["time_estimate"]["budget_s"] = b
+        out["time_estimate"]["replicates_in_budget"] = replicates_in_budget(b, per_rep,
+                                                                            est.warmup_s)
+    return out
+
+
+def _timing_lines(timing: dict) -> list[str]:
+    from benchharness.design.budget import fmt_s
+
+    lines = []
+    a = timing.get("adaptive")
+    if a:
+        lines.append(f"replicates  adaptive: {a['min']} to {a['max']}, adding complete replicates "
+                     f"until every main-effect ratio interval ({a['confidence'] * 100:g}%) is "
+                     f"within ±{a['ratio_halfwidth'] * 100:g}%")
+    t = timing.get("time_estimate")
+    if t:
+        lines.append(f"expected    about {fmt_s(t['expected_total_s'])} "
+                     f"(timed {fmt_s(t['expected_timed_s'])}, warm-up "
+                     f"{fmt_s(t['expected_warmup_s'])}, {fmt_s(t['overhead_per_run_s'])} "
+                     f"overhead per run; one replicate {fmt_s(t['expected_replicate_s'])}; "
+                     f"from the pilot)")
+        if "expected_at_max_replicates_s" in t:
+            lines.append(f"            at most about {fmt_s(t['expected_at_max_replicates_s'])} "
+                         f"if all {a['max']} replicates run")
+        if "replicates_in_budget" in t:
+            lines.append(f"budget      {fmt_s(t['budget_s'])} fits {t['replicates_in_budget']} "
+                         f"complete replicate(s)")
+        for n in t.get("notes", []):
+            lines.append(f"note        {n}")
+    return lines
 
 
 def format_plan(exp, plan, show: int = 12) -> str:

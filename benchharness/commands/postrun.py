@@ -23,7 +23,21 @@ def analyse_and_report(res) -> None:
         an = analyze_results_folder(res.path)
         write_analysis_json(an, res.path / "analysis.json")
         print()
-        print(format_analysis(an))
+        from benchharness.report.terminal import print_analysis
+
+        print_analysis(an)
+        # Two-level fractions and confounded blocks: effects with their aliases.
+        from benchharness.analysis.fraction import add_to_results_folder, format_fraction
+
+        try:
+            frac = add_to_results_folder(res.path, an.response,
+                                         log=(an.transform or {}).get("name") != "none")
+        except BenchharnessError as exc:
+            frac = None
+            print(f"note: no fraction analysis: {exc}", file=sys.stderr)
+        if frac is not None:
+            print()
+            print(format_fraction(frac))
     except BenchharnessError as exc:
         print(f"note: no analysis: {exc}", file=sys.stderr)
         return

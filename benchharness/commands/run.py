@@ -19,6 +19,15 @@ def add_parser(sub) -> None:
                    help="run on a Dask cluster (tcp://HOST:PORT); hosts become blocks")
     p.add_argument("--same-host-ok", action="store_true",
                    help="several workers on one host are intended (each counts as a host)")
+    p.add_argument("--budget", metavar="DURATION",
+                   help="time budget (e.g. 30m, 2h): stop at the end of the last complete "
+                        "replicate that fits")
+    p.add_argument("--pilot", metavar="RESULTS",
+                   help="earlier results folder whose run times estimate the first replicate "
+                        "for --budget")
+    p.add_argument("--history", metavar="DB",
+                   help="add the results to this history database (SQLite) when done; the "
+                        "commit is read from git")
     p.add_argument("--quiet", action="store_true", help="no progress display")
     p.add_argument("--no-analysis", action="store_true",
                    help="skip the analysis and reports at the end")
@@ -56,12 +65,48 @@ def main(args) -> int:
             print(f"warning: {w}", file=sys.stderr)
         if exp.seed is None and args.seed is None:
             pass  # the drawn seed is printed below and recorded in session.json
+        budget_s, estimate_s = _budget(args, exp)
         outcome = runner.run_experiment(exp, out=args.out, seed=args.seed, progress=progress,
                                         scheduler=args.scheduler,
-                                        same_host_ok=args.same_host_ok)
+                                        same_host_ok=args.same_host_ok, budget_s=budget_s,
+                                        estimate_s=estimate_s)
     for note in outcome.notes:
         print(note)
-    return finish(outcome, analysis=not args.no_analysis)
+    code = finish(outcome, analysis=not args.no_analysis)
+    if code == 0 and args.history:
+        from benchharness.history import add_results
+
+        n = add_results(args.history, outcome.folder)
+        print(f"history: {n} cell rows added to {args.history}")
+    return code
+
+
+def _budget(args, exp):
+    """(budget in seconds or None, pilot estimate of one replicate in seconds or None)."""
+    from benchharness.errors import UsageError
+    from benchharness.yamlnodes import parse_duration_s
+
+    if args.budget is None:
+        if args.pilot:
+            raise UsageError("--pilot on `run` only serves --budget; give --budget too "
+                             "(or use `benchharness plan FILE --pilot RESULTS`)")
+        return None, None
+    budget_s = parse_duration_s(args.budget)
+    if budget_s is None or budget_s <= 0:
+        raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m, 2h or "
+                         f"90s")
+    estimate_s = None
+    if args.pilot:
+        from benchharness.design import build_plan
+        from benchharness.design.budget import estimate_plan, pilot_timing
+        from benchharness.source import load_table
+
+        pilot, _ = load_table(args.pilot) if os.path.isdir(args.pilot) else \
+            load_table(args.pilot, factors=list(exp.factor_names))
+        est = estimate_plan(build_plan(exp, seed=args.seed or 1, replicates=1, warmup=0),
+                            pilot_timing(pilot, exp.factor_names))
+        estimate_s = est.timed_s
+    return budget_s, estimate_s
 
 
 def finish(outcome, analysis: bool = True) -> int:

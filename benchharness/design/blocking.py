@@ -159,7 +159,8 @@ def choose_blocking(design: FractionalDesign, n_blocks: int,
         sub = [m for m in cands if order_of(m) >= floor]
         if len(sub) < q:
             continue
-        res = best_word_set(sub, q, design.k, lambda j, c: c, order_of, floor, node_limit)
+        res = best_word_set(sub, q, design.k, lambda j, c: c, order_of, floor, node_limit,
+                            symmetric=not design.is_fraction)
         if res is not None and res.chosen:
             break
         res = None

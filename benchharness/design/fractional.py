@@ -422,7 +422,7 @@ def _auto(names, labels, p: int, min_resolution: int, node_limit: int) -> Fracti
     cands = [m for m in range(1, 2 ** nb) if W.order(m) >= max(2, min_resolution - 1)]
     cands.sort(key=lambda m: (-W.order(m), W.positions(m)))
     res = best_word_set(cands, p, k, lambda j, c: c | (1 << (nb + j)), W.order,
-                        max(min_resolution, 3), node_limit)
+                        max(min_resolution, 3), node_limit, symmetric=True)
     if (res is None or not res.chosen) and min_resolution == 4:
         # Products of basic factors of odd order (>= 3) give defining words of
         # even length only, so any p distinct ones reach resolution IV (the
@@ -430,7 +430,7 @@ def _auto(names, labels, p: int, min_resolution: int, node_limit: int) -> Fracti
         odd = [m for m in cands if W.order(m) % 2 == 1]
         if len(odd) >= p:
             res = best_word_set(odd, p, k, lambda j, c: c | (1 << (nb + j)), W.order, 4,
-                                node_limit)
+                                node_limit, symmetric=True)
     if res is None or not res.chosen:
         return None
     gens = tuple(Generator(nb + j, c, 1) for j, c in enumerate(res.chosen))

@@ -35,7 +35,8 @@ def best_word_set(candidates: Sequence[int], depth: int, k: int,
                   make_word: Callable[[int, int], int],
                   order_of: Callable[[int], int],
                   min_order: int,
-                  node_limit: int = DEFAULT_NODE_LIMIT) -> SearchResult | None:
+                  node_limit: int = DEFAULT_NODE_LIMIT,
+                  symmetric: bool = False) -> SearchResult | None:
     """Choose ``depth`` candidates whose generated group has the smallest order pattern.
 
     ``make_word(j, candidate)`` turns the j-th chosen candidate into its group
@@ -44,6 +45,14 @@ def best_word_set(candidates: Sequence[int], depth: int, k: int,
     group word must have order >= ``min_order``. Returns None when no set meets
     the constraint; an empty ``chosen`` with ``exhaustive=False`` when the node
     limit stopped the search before any complete set was found.
+
+    ``symmetric``: the candidates are every word (of the allowed orders) over
+    some factors, sorted by descending order then positions, and the pattern
+    does not change when those factors are permuted (a fraction's basic factors;
+    a full factorial's factors when blocking). Then any set can be permuted so
+    that its highest-order word becomes the first candidate of that order, which
+    is also the set's first element in search order; so the first choice need
+    only range over the first candidate of each order (isomorphism pruning).
     """
     best_pattern: tuple[int, ...] | None = None
     best_chosen: tuple[int, ...] = ()
@@ -55,6 +64,8 @@ def best_word_set(candidates: Sequence[int], depth: int, k: int,
         nonlocal best_pattern, best_chosen, nodes, exhaustive
         j = len(chosen)
         for idx in range(start, n - (depth - j) + 1):
+            if j == 0 and first_only is not None and idx not in first_only:
+                continue
             if nodes >= node_limit:
                 exhaustive = False
                 return
@@ -81,6 +92,15 @@ def best_word_set(candidates: Sequence[int], depth: int, k: int,
 
     if depth == 0:
         return SearchResult((), tuple([0] * k), True, 0)
+    first_only = None
+    if symmetric:
+        first_only = set()
+        seen_orders = set()
+        for idx, c in enumerate(candidates):
+            o = bin(c).count("1")
+            if o not in seen_orders:
+                seen_orders.add(o)
+                first_only.add(idx)
     greedy = _greedy(candidates, depth, k, make_word, order_of, min_order)
     if greedy is not None:
         best_chosen, best_pattern = greedy

@@ -88,11 +88,31 @@ def _factors(exp):
     return [(f.name, f.labels) for f in exp.factors]
 
 
+_CACHE: dict = {}
+
+
 def design_of(exp) -> DesignChoice:
-    """Read and validate ``exp.sections['design']``."""
+    """Read and validate ``exp.sections['design']`` (memoised: searches can take a second)."""
     node = getattr(exp, "sections", {}).get("design")
     if node is None:
         return DesignChoice()
+    from benchharness.yamlnodes import to_plain
+
+    try:
+        key = (repr(to_plain(node)), tuple((f.name, tuple(f.labels)) for f in exp.factors))
+    except Exception:  # noqa: BLE001 - malformed nodes are reported by the parse below
+        key = None
+    if key is not None and key in _CACHE:
+        return _CACHE[key]
+    choice = _design_of(exp, node)
+    if key is not None:
+        if len(_CACHE) > 32:
+            _CACHE.clear()
+        _CACHE[key] = choice
+    return choice
+
+
+def _design_of(exp, node) -> DesignChoice:
     path = getattr(exp, "path", None)
     keys = expect_mapping(node, "'design'", KEYS)
     kind = "full"
@@ -201,8 +221,15 @@ def describe_info(info: dict) -> list[str]:
         lines.append("  word-length pattern (words of length 3, 4, ...): "
                      + " ".join(str(c) for c in wlp[2:]))
         lines.append("  aliases (up to three-factor interactions):")
-        for eff, al in d["aliases"].items():
-            if al:
+        chains = [(eff, al) for eff, al in d["aliases"].items() if al]
+        if len(chains) > 30:
+            mains = [(eff, al) for eff, al in chains if len(eff) == 1]
+            for eff, al in mains:
+                lines.append(f"    {eff} = " + " = ".join(al))
+            lines.append(f"    ... and {len(chains) - len(mains)} two-factor interaction chains "
+                         f"(see plan --json)")
+        else:
+            for eff, al in chains:
                 lines.append(f"    {eff} = " + " = ".join(al))
         clear = d["clear_effects"]
         lines.append("  clear (aliased with no main effect or two-factor interaction): "

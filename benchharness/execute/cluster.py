@@ -93,27 +93,39 @@ def check_workers(workers: Mapping, idents: Mapping, same_host_ok: bool) -> list
     return warnings
 
 
-def _payload(c: Mapping, pr: Mapping, timeout_s) -> dict:
+def _payload(c: Mapping, pr: Mapping, timeout_s, spec=None, clean_env=False,
+             pad_bytes=None) -> dict:
+    """What a worker needs for one run; ``spec`` is the prepared main command."""
     def part(argv_shell):
         if argv_shell is None:
             return None
         argv, shell = argv_shell
         return {"argv": list(argv) if argv else None, "shell": shell, "env": c["env_over"],
-                "cwd": c["cwd"]}
+                "cwd": c["cwd"], "cpus": list(c["cpus"]) if c.get("cpus") else None,
+                "nice": c.get("nice"), "no_aslr": c.get("no_aslr"), "clean_env": clean_env}
 
+    command = part((spec.argv, spec.shell_command) if spec is not None
+                   else (c["argv"], c["shell"]))
+    if spec is not None:
+        command["capture_bytes"] = spec.capture_bytes
+    command["pad_bytes"] = pad_bytes
     return {"run": pr["run"], "warmup": pr["warmup"], "levels": pr["levels"],
-            "timeout_s": timeout_s, "command": part((c["argv"], c["shell"])),
+            "timeout_s": timeout_s, "command": command,
             "build": part(c["build"]), "reset": part(c["reset"]),
             "teardown": part(c["teardown"])}
 
 
-def _record_from(pr: Mapping, result: Mapping, position: int) -> dict:
+def _record_from(pr: Mapping, result: Mapping, position: int, quality=None, token=None) -> dict:
     from benchharness.runner import _record
 
     md = result.get("measurement")
     m = None
     if md:
         m = Measurement(**{k: v for k, v in md.items() if k in Measurement.__dataclass_fields__})
+        if quality is not None and token is not None:
+            token = dict(token, conditions=result.get("conditions") or {})
+            m = quality.finish(token, pr, m)
+            result = dict(result, status=m.status, message=m.message)
     status = result["status"]
     message = result.get("message") or ""
     if pr["warmup"] and m is not None:
@@ -171,6 +183,19 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
     progress = _HostProgress(progress or Progress())
     cells = _CellCache(exp, session)
     jr = J.Journal(folder)
+    from benchharness.quality import RunQuality
+
+    quality = RunQuality(exp, folder)
+    distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
+    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    if quality.cfg.metrics is not None and quality.cfg.metrics.file_templates():
+        quality.notes.append("note: metrics read from files (file:) are read on the "
+                             "coordinator; on a cluster the file must be on a shared path")
+    pad_rng = None
+    if cells.controls.pad_env:
+        import numpy as np
+
+        pad_rng = np.random.default_rng([int(session.get("seed") or 0), len(done), 7])
     counts: dict[str, int] = collections.Counter(r["status"] for r in prior)
     position = max([int(r.get("position", -1)) for r in prior], default=-1) + 1
     recorded = set(done)
@@ -209,6 +234,7 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
         current: dict[str, collections.deque] = {}   # worker addr → rest of its block
         inflight: dict = {}                           # future → (addr, planned run)
         attempts = collections.Counter()
+        tokens: dict = {}
         timeout_s = exp.timeout_s
         progress.start(len(planned), len(planned) - len(todo), folder)
 
@@ -221,7 +247,16 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
             pr = rest.popleft()
             c = cells.get(pr["levels"])
             attempts[pr["run"]] += 1
-            fut = client.submit(remote.execute_run, _payload(c, pr, timeout_s),
+            from benchharness.runner import _spec
+
+            spec, token = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
+                                                run_id=pr["run"], levels=pr["levels"]),
+                                          pr["levels"], c)
+            pad = int(pad_rng.integers(0, 4097)) if pad_rng is not None else None
+            tokens[pr["run"]] = (token, pad)
+            payload = _payload(c, pr, timeout_s, spec=spec,
+                               clean_env=cells.controls.clean_env, pad_bytes=pad)
+            fut = client.submit(remote.execute_run, payload,
                                 key=f"bh-run-{pr['run']}-{attempts[pr['run']]}-{os.getpid()}",
                                 workers=[addr], allow_other_workers=False,
                                 resources={RESOURCE: 1} if (workers.get(addr, {}).get(
@@ -277,7 +312,10 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
                     if pr["run"] in recorded:
                         continue  # a late duplicate: recorded once already
                     result["host_name"] = host_of.get(addr, result.get("hostname"))
-                    rec = _record_from(pr, result, position)
+                    token, pad = tokens.get(pr["run"], (None, None))
+                    rec = _record_from(pr, result, position, quality, token)
+                    if pad is not None:
+                        rec["pad_env_bytes"] = pad
                     position += 1
                     jr.append(rec)
                     recorded.add(pr["run"])
@@ -291,6 +329,9 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
                                                  f"times ({fut.exception()!r})")
                         rest = list(current.pop(addr, []))
                         queue.appendleft([pr] + rest)
+        for note in quality.notes:
+            progress.note(note)
+        quality.notes.clear()
     except KeyboardInterrupt:
         interrupted = True
     finally:
@@ -302,4 +343,4 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
             pass
     host_json = {"coordinator": facts, "hosts": hosts_facts}
     return finalize(folder, exp, session, facts, dict(counts), len(planned), interrupted,
-                    host_json=host_json)
+                    host_json=host_json, quality=quality)

@@ -61,26 +61,30 @@ def send(fd, obj):
         view = view[n:]
 
 
-def _read_exact(fd, n):
-    parts = []
-    while n:
-        chunk = os.read(fd, n)
-        if not chunk:
-            return None
-        parts.append(chunk)
-        n -= len(chunk)
-    return b"".join(parts)
+class FrameReader:
+    """Buffered frame reader: one ``read`` usually brings a whole frame."""
 
+    def __init__(self, fd):
+        self.fd = fd
+        self.buf = bytearray()
 
-def recv(fd):
-    """Read one frame from ``fd``; None at end of file."""
-    head = _read_exact(fd, HEADER_SIZE)
-    if head is None:
-        return None
-    body = _read_exact(fd, int.from_bytes(head, "big"))
-    if body is None:
-        return None
-    return marshal.loads(body)
+    def read(self):
+        """The next frame's value; None at end of file."""
+        buf = self.buf
+        while len(buf) < HEADER_SIZE:
+            chunk = os.read(self.fd, 1 << 16)
+            if not chunk:
+                return None
+            buf += chunk
+        end = HEADER_SIZE + int.from_bytes(buf[:HEADER_SIZE], "big")
+        while len(buf) < end:
+            chunk = os.read(self.fd, max(1 << 16, end - len(buf)))
+            if not chunk:
+                return None
+            buf += chunk
+        body = bytes(buf[HEADER_SIZE:end])
+        del buf[:end]
+        return marshal.loads(body)
 
 
 def utc_now_iso():
@@ -154,6 +158,7 @@ def _is_zombie(pid):
 class Launcher:
     def __init__(self, rfd, wfd):
         self.rfd = rfd
+        self.reader = FrameReader(rfd)
         self.wfd = wfd
         os.set_inheritable(rfd, False)
         os.set_inheritable(wfd, False)
@@ -171,6 +176,9 @@ class Launcher:
             self.clear_refs = os.open("/proc/self/clear_refs", os.O_WRONLY | os.O_CLOEXEC)
         except OSError:
             self.clear_refs = None
+        self.children_path = f"/proc/{self.pid}/task/{self.pid}/children"
+        self.env = {}
+        self.resolved = {}  # (command, PATH, cwd) -> executable path
         self.leftovers = set()   # live descendants that earlier runs left behind
         self.stop = False
 
@@ -188,14 +196,23 @@ class Launcher:
         return True, ""
 
     def hello(self):
-        return {"op": "hello", "pid": self.pid, "subreaper": self.subreaper,
+        try:
+            os.close(os.pidfd_open(self.pid))
+            pidfd = ""
+        except (AttributeError, OSError) as e:
+            pidfd = str(e) or type(e).__name__
+        return {"op": "hello", "pid": self.pid, "subreaper": self.subreaper, "pidfd_error": pidfd,
                 "aslr_control": self.aslr_control, "aslr_reason": self.aslr_reason,
                 "children_file": os.path.exists(f"/proc/{self.pid}/task/{self.pid}/children")}
 
     # ---- process tree
 
     def descendants(self):
-        """Every live descendant pid of the launcher (zombies excluded)."""
+        """Every live descendant pid of the launcher (zombies excluded).
+
+        Processes that earlier runs left behind, and their own descendants,
+        are not part of the current run and are skipped.
+        """
         out = []
         todo = [self.pid]
         seen = set()
@@ -213,13 +230,25 @@ class Launcher:
                     continue
                 for k in kids:
                     k = int(k)
-                    if k not in seen:
+                    if k not in seen and k not in self.leftovers:
                         seen.add(k)
                         todo.append(k)
         for k in seen:
             if not _is_zombie(k):
                 out.append(k)
         return out
+
+    def own_children(self):
+        """Set of our direct children (zombies included); None if unreadable."""
+        try:
+            fd = os.open(self.children_path, os.O_RDONLY)
+        except OSError:
+            return None
+        try:
+            data = os.read(fd, 1 << 16)
+        finally:
+            os.close(fd)
+        return {int(x) for x in data.split()}
 
     def reap_orphans(self, run):
         """Reap every zombie child; the run's own child is recorded in ``run``."""
@@ -298,6 +327,8 @@ class Launcher:
                     setpgroup=0, setsigdef=(signal.SIGPIPE, signal.SIGXFSZ))
             except OSError as e:
                 return None, t0, f"cannot start {argv[0]!r}: {e.strerror or e}"
+            except (ValueError, TypeError) as e:  # e.g. a NUL byte in an argument
+                return None, t0, f"cannot start {argv[0]!r}: {e}"
             return pid, t0, None
         # fork+exec: the child sets itself up, writes its clock reading right
         # before execve (so the fork of this Python process is not timed),
@@ -378,16 +409,23 @@ class Launcher:
             argv = ["/bin/sh", "-c", req["shell_command"]]
         else:
             argv = list(req["argv"])
-        env = dict(req.get("env") or {})
+        if "env" in req:  # absent: the same environment as the previous run
+            self.env = req["env"] or {}
+        env = self.env
         cwd = req.get("cwd") or self.cwd0
         try:
-            os.chdir(cwd)
+            os.chdir(cwd)  # every run: the folder may have been replaced since
         except OSError as e:
             return dict(base, status="failed",
                         message=f"cannot change to working directory {cwd!r}: {e.strerror}")
-        path, err = _resolve(argv[0], env, cwd)
-        if err:
-            return dict(base, status="failed", message=err)
+        key = (argv[0], env.get("PATH"), cwd)
+        path = self.resolved.get(key)
+        if path is None or not os.access(path, os.X_OK):  # one check when seen before
+            path, err = _resolve(argv[0], env, cwd)
+            if err:
+                self.resolved.pop(key, None)
+                return dict(base, status="failed", message=err)
+            self.resolved[key] = path
         cap = int(req.get("capture_bytes", 65536))
         timeout_s = req.get("timeout_s")
         grace_s = float(req.get("kill_grace_s", 0.5))
@@ -400,24 +438,14 @@ class Launcher:
 
         out_r, out_w = os.pipe()
         err_r, err_w = os.pipe()
-        pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
-        os.close(out_w)
-        os.close(err_w)
-        if pid is None:
-            os.close(out_r)
-            os.close(err_r)
-            return dict(base, status="failed", message=err)
-        pidfd = os.pidfd_open(pid)
-        if req.get("notify", True):
-            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
-
-        run = {"pid": pid, "orphans": []}
+        # Everything the wait needs is made before the spawn, so that only the
+        # pidfd is set up between the two clock readings.
+        run = {"pid": None, "orphans": []}
         bufs = {out_r: bytearray(), err_r: bytearray()}
         poller = select.poll()
-        for fd in (out_r, err_r, pidfd, self.rfd):
+        for fd in (out_r, err_r, self.rfd):
             poller.register(fd, select.POLLIN)
         open_pipes = {out_r, err_r}
-        deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
         t1 = None
         timed_out = False
         aborted = None
@@ -437,6 +465,27 @@ class Launcher:
             if len(b) > cap:
                 del b[:len(b) - cap]
 
+        pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
+        if pid is None:
+            for fd in (out_w, err_w, out_r, err_r):
+                os.close(fd)
+            return dict(base, status="failed", message=err)
+        pidfd = os.pidfd_open(pid)
+        poller.register(pidfd, select.POLLIN)
+        # We keep our own write ends open while the child lives: its pipes then
+        # never reach end-of-file early, so its exit costs one wake-up (the
+        # pidfd) instead of three. They are closed as soon as it has exited.
+        held = [out_w, err_w]
+
+        def release():
+            while held:
+                os.close(held.pop())
+
+        run["pid"] = pid
+        if req.get("notify", True):
+            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
+        deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
+
         while True:
             now = time.perf_counter_ns()
             if t1 is None:
@@ -450,12 +499,14 @@ class Launcher:
                 timed_out = True
                 self.kill_tree(run, grace_s)
                 t1 = time.perf_counter_ns()
+                release()
                 linger_end = t1 + int(linger_s * 1e9)
                 poller.unregister(pidfd)
                 continue
             events = poller.poll(None if wait_ns is None else max(1, -(-wait_ns // 1_000_000)))
             if t1 is None and any(fd == pidfd for fd, _ in events):
                 t1 = time.perf_counter_ns()
+                release()
                 poller.unregister(pidfd)
                 linger_end = t1 + int(linger_s * 1e9)
             for fd, _ev in events:
@@ -464,7 +515,7 @@ class Launcher:
                 elif fd == self.rfd:
                     msg = None
                     try:
-                        msg = recv(self.rfd)
+                        msg = self.reader.read()
                     except Exception:  # noqa: BLE001
                         msg = None
                     if msg is None:
@@ -475,24 +526,27 @@ class Launcher:
                     if t1 is None:
                         self.kill_tree(run, grace_s)
                         t1 = time.perf_counter_ns()
+                        release()
                         poller.unregister(pidfd)
                         linger_end = t1 + int(linger_s * 1e9)
+        release()
         for fd in (out_r, err_r):
             os.close(fd)
         if "rusage" not in run:
             _, status, ru = os.wait4(pid, 0)
             run["status_word"], run["rusage"] = status, ru
         os.close(pidfd)
-        self.reap_orphans(run)
-        left = [p for p in self.descendants() if p not in self.leftovers]
-        if left:
-            self.leftovers.update(left)
-            extra["leftover_processes"] = len(left)
-        if self.clear_refs is not None:
-            try:
-                os.write(self.clear_refs, b"5")
-            except OSError:
-                pass
+        # Our own children list is cheap to read; anything the run left
+        # behind has an ancestor in it (orphans are re-parented to us), so the
+        # full walk and the reaping only happen when it shows something new.
+        kids = self.own_children()
+        if kids is None or kids:
+            self.reap_orphans(run)  # also reaps leftovers of earlier runs that died
+        if kids is None or not kids <= self.leftovers:
+            left = [p for p in self.descendants() if p not in self.leftovers]
+            if left:
+                self.leftovers.update(left)
+                extra["leftover_processes"] = len(left)
 
         status_word = run["status_word"]
         ru = run["rusage"]
@@ -518,7 +572,6 @@ class Launcher:
         else:
             exit_code = os.waitstatus_to_exitcode(status_word)
             why = f"exit code {exit_code}"
-        tail = _tail_text(stderr)
         if aborted:
             status, message = "failed", aborted
         elif timed_out:
@@ -528,6 +581,7 @@ class Launcher:
             status, message = "ok", ""
         else:
             status = "failed"
+            tail = _tail_text(stderr)
             message = why + (f": {tail}" if tail else " (nothing on stderr)")
         return dict(base, status=status, exit_code=exit_code, wall_ns=t1 - t0,
                     rusage=tuple(usage), stdout=stdout, stderr=stderr, message=message)
@@ -536,13 +590,19 @@ class Launcher:
         send(self.wfd, self.hello())
         while not self.stop:
             try:
-                req = recv(self.rfd)
+                req = self.reader.read()
             except OSError:
                 req = None
             if req is None or req.get("op") == "exit":
                 break
             if req.get("op") == "run":
-                reply = self.run(req)
+                try:
+                    reply = self.run(req)
+                except Exception as e:  # noqa: BLE001 - one bad request must not end the session
+                    reply = {"op": "done", "status": "failed", "exit_code": None, "wall_ns": None,
+                             "rusage": None, "stdout": b"", "stderr": b"", "extra": {},
+                             "started_at": utc_now_iso(),
+                             "message": f"the launcher could not run this: {type(e).__name__}: {e}"}
             elif req.get("op") == "ping":
                 reply = {"op": "pong", "leftovers": sorted(self.leftovers)}
             else:

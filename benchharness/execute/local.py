@@ -22,6 +22,7 @@ import select
 import signal
 import subprocess
 import sys
+import threading
 from pathlib import Path
 
 from benchharness.errors import ExecutionError
@@ -46,6 +47,7 @@ class LocalExecutor:
         self.kill_grace_s = float(kill_grace_s)
         self.linger_s = float(linger_s)
         self._proc: subprocess.Popen | None = None
+        self._lock = threading.Lock()
         self._closed = False
         c2l_r, c2l_w = os.pipe()   # harness -> launcher
         l2c_r, l2c_w = os.pipe()   # launcher -> harness
@@ -64,27 +66,33 @@ class LocalExecutor:
         os.close(l2c_w)
         self._w = c2l_w
         self._r = l2c_r
+        self._reader = _proto.FrameReader(l2c_r)
         hello = self._recv(timeout_s=30)
         if hello.get("op") != "hello":
             self._kill_launcher()
             raise ExecutionError(f"the launcher answered {hello!r} instead of hello")
+        if hello.get("pidfd_error"):
+            self.close()
+            raise ExecutionError("local execution needs Linux 5.3 or later (pidfd_open); "
+                                 f"here it fails: {hello['pidfd_error']}")
         self.launcher_pid: int = hello["pid"]
         self.subreaper: bool = hello["subreaper"]
         #: Whether this kernel lets a run turn off ASLR; reason when it does not.
         self.aslr_control: bool = hello["aslr_control"]
         self.aslr_reason: str = hello["aslr_reason"]
         self._current: tuple[int, int] | None = None
+        self._last_env: dict | None = None
 
     # ---------------------------------------------------------------- protocol
 
     def _recv(self, timeout_s: float | None = None) -> dict:
-        if timeout_s is not None:
+        if timeout_s is not None and not self._reader.buf:
             ready, _, _ = select.select([self._r], [], [], timeout_s)
             if not ready:
                 self._kill_launcher()
                 raise ExecutionError(f"the launcher did not answer within {timeout_s:g} s")
         try:
-            msg = _proto.recv(self._r)
+            msg = self._reader.read()
         except OSError as e:
             msg = None
             err = e
@@ -145,8 +153,13 @@ class LocalExecutor:
         Raises `ExecutionError` when the request itself is impossible (no
         command, CPUs that do not exist) or the launcher died; a command that
         fails, cannot start or times out is a `Measurement` with status
-        ``failed``/``timeout``, not an exception.
+        ``failed``/``timeout``, not an exception. Calls from several threads
+        are served one after another (runs on one machine never overlap).
         """
+        with self._lock:
+            return self._execute(spec, on_start)
+
+    def _execute(self, spec: RunSpec, on_start: OnStart | None) -> Measurement:
         if self._closed:
             raise ExecutionError("this executor is closed")
         if (spec.argv is None) == (spec.shell_command is None):
@@ -158,7 +171,6 @@ class LocalExecutor:
             "op": "run",
             "argv": list(spec.argv) if spec.argv is not None else None,
             "shell_command": spec.shell_command,
-            "env": {str(k): str(v) for k, v in spec.env.items()},
             "cwd": str(spec.cwd) if spec.cwd is not None else None,
             "timeout_s": float(spec.timeout_s) if spec.timeout_s is not None else None,
             "cpus": list(cpus) if cpus else None,
@@ -169,6 +181,12 @@ class LocalExecutor:
             "linger_s": self.linger_s,
             "notify": on_start is not None,
         }
+        # The environment is sent only when it differs from the previous run's
+        # (the runner reuses one per cell), which keeps the request small.
+        if self._last_env is None or spec.env != self._last_env:
+            env = {str(k): str(v) for k, v in spec.env.items()}
+            req["env"] = env
+            self._last_env = env
         try:
             self._send(req)
             msg = self._recv()
@@ -191,8 +209,9 @@ class LocalExecutor:
 
     def leftovers(self) -> list[int]:
         """Pids of processes that earlier runs left running (still alive)."""
-        self._send({"op": "ping"})
-        return list(self._recv(timeout_s=30)["leftovers"])
+        with self._lock:
+            self._send({"op": "ping"})
+            return list(self._recv(timeout_s=30)["leftovers"])
 
     def close(self) -> None:
         """Stop the launcher (processes that runs left behind are not killed)."""

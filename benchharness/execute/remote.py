@@ -60,11 +60,23 @@ def identity(dask_worker=None) -> dict:
 def _spec(part: dict, timeout_s, run_id=None, levels=None):
     from benchharness.execute.base import RunSpec
 
-    env = dict(os.environ)
+    if part.get("clean_env"):
+        from benchharness.execute.envs import clean_environment
+
+        env = clean_environment(os.environ)
+    else:
+        env = dict(os.environ)
     env.update(part.get("env") or {})
+    if part.get("pad_bytes") is not None:
+        from benchharness.execute.envs import PAD_VARIABLE
+
+        env[PAD_VARIABLE] = "x" * int(part["pad_bytes"])
     return RunSpec(argv=tuple(part["argv"]) if part.get("argv") else None,
                    shell_command=part.get("shell"), env=env, cwd=part.get("cwd"),
-                   timeout_s=timeout_s, run_id=run_id, levels=levels or {})
+                   timeout_s=timeout_s, run_id=run_id, levels=levels or {},
+                   cpus=tuple(part["cpus"]) if part.get("cpus") else None,
+                   nice=part.get("nice"), no_aslr=bool(part.get("no_aslr")),
+                   capture_bytes=int(part.get("capture_bytes") or 64 * 1024))
 
 
 def execute_run(payload: dict) -> dict:
@@ -99,12 +111,13 @@ def execute_run(payload: dict) -> dict:
             out.update(status="failed",
                        message="reset failed: " + (rm.message or f"exit code {rm.exit_code}"))
     if out["status"] is None:
-        m = ex.execute(_spec(payload["command"], timeout_s, run_id=payload["run"],
-                             levels=levels))
-        d = asdict(m)
-        d.pop("stdout_tail", None)
-        d.pop("stderr_tail", None)
-        out["measurement"] = d
+        from benchharness.host import sample_run_conditions
+
+        cmd = payload["command"]
+        out["conditions"] = sample_run_conditions(tuple(cmd["cpus"]) if cmd.get("cpus")
+                                                  else None)
+        m = ex.execute(_spec(cmd, timeout_s, run_id=payload["run"], levels=levels))
+        out["measurement"] = asdict(m)  # output tails included: metrics and expect need them
         out["status"] = m.status
         out["message"] = m.message
         if payload.get("teardown") is not None:

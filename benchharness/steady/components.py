@@ -120,19 +120,41 @@ def best_iterations(c: Components, cost_execution_s: float, cost_iteration_s: fl
 
 def recommend(c: Components, cost_execution_s: float, cost_iteration_s: float,
               target_rel_halfwidth: float = 0.01, confidence: float = 0.95,
-              max_executions: int = 10_000, max_iterations: int = 100_000) -> Recommendation:
-    """Executions x iterations reaching ``target_rel_halfwidth`` of the mean at least cost."""
-    r = best_iterations(c, cost_execution_s, cost_iteration_s, max_iterations)
+              max_executions: int = 10_000, max_iterations: int = 100_000,
+              min_executions: int = 2) -> Recommendation:
+    """Executions x iterations reaching ``target_rel_halfwidth`` of the mean at least cost.
+
+    Iterations per execution follow Kalibera & Jones' optimum (`best_iterations`).
+    When the between-execution variance is estimated as zero that optimum is
+    unbounded; then every split of the same total number of iterations is
+    equally precise, and we take the cheapest (n, r) found by searching n.
+    """
     target = target_rel_halfwidth * abs(c.mean)
     note = ""
-    if c.between_var_raw < 0:
-        note = ("between-execution variance estimated below zero (set to 0): executions "
-                "barely differ, so iterations are cheaper than executions")
-    n = 2
+    if c.between_var <= 0:
+        note = ("between-execution variance estimated at or below zero (set to 0): runs "
+                "barely differ, so extra iterations are cheaper than extra runs")
+        best = None
+        for n in range(min_executions, min(max_executions, 200) + 1):
+            r = _iterations_for(c, n, target, confidence, max_iterations)
+            if r is None:
+                continue
+            cost = n * (cost_execution_s + r * cost_iteration_s)
+            if best is None or cost < best[0] - 1e-12:
+                best = (cost, n, r)
+        if best is not None:
+            _, n, r = best
+            hw = _halfwidth(c, n, r, confidence)
+            return Recommendation(n, r, hw / abs(c.mean) if c.mean else math.inf,
+                                  best[0], target_rel_halfwidth, confidence, True, note)
+        r = max_iterations
+    else:
+        r = best_iterations(c, cost_execution_s, cost_iteration_s, max_iterations)
+    n = min_executions
     while n < max_executions and _halfwidth(c, n, r, confidence) > target:
         n = n + max(1, n // 8) if n > 64 else n + 1
     # step back to the smallest n that works (the coarse steps above may overshoot)
-    while n > 2 and _halfwidth(c, n - 1, r, confidence) <= target:
+    while n > min_executions and _halfwidth(c, n - 1, r, confidence) <= target:
         n -= 1
     hw = _halfwidth(c, n, r, confidence)
     reached = hw <= target
@@ -141,3 +163,18 @@ def recommend(c: Components, cost_execution_s: float, cost_iteration_s: float,
     return Recommendation(n, r, hw / abs(c.mean) if c.mean else math.inf,
                           n * (cost_execution_s + r * cost_iteration_s), target_rel_halfwidth,
                           confidence, reached, note)
+
+
+def _iterations_for(c: Components, n: int, target: float, confidence: float,
+                    max_iterations: int) -> int | None:
+    """Smallest r with the target half-width at n executions (None if out of reach)."""
+    from scipy import stats
+
+    t = float(stats.t.ppf(0.5 + confidence / 2, n - 1))
+    room = (target / t) ** 2 * n - c.between_var    # needs within_var / r <= room
+    if room <= 0:
+        return None
+    if c.within_var <= 0:
+        return 1
+    r = max(1, math.ceil(c.within_var / room))
+    return r if r <= max_iterations else None

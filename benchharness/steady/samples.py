@@ -21,7 +21,6 @@ import json
 import math
 from dataclasses import dataclass
 
-from benchharness.errors import ExperimentError
 
 UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "µs": 1e-6, "ns": 1e-9}
 FORMATS = ("lines", "jsonl", "json")
@@ -47,7 +46,7 @@ def parse_samples_config(node, path: str | None = None) -> SamplesConfig:
     """Validate the ``samples:`` YAML node (errors name FILE:LINE:COL)."""
     from benchharness import yamlnodes as yn
 
-    fields = yn.expect_mapping(node, "samples", {"from", "format", "key", "unit", "target"})
+    fields = yn.expect_mapping(node, "'samples'", {"from", "format", "key", "unit", "target"})
     kw: dict = {}
     if "from" in fields:
         v = yn.scalar_text(fields["from"])
@@ -68,7 +67,7 @@ def parse_samples_config(node, path: str | None = None) -> SamplesConfig:
             raise yn.node_error(fields["unit"], f"samples.unit is {v!r}; use s, ms, us or ns")
         kw["unit"] = v
     if "target" in fields:
-        t = yn.as_percent(fields["target"])
+        t = yn.as_percent(fields["target"], "samples.target")
         if not 0 < t < 1:
             raise yn.node_error(fields["target"], "samples.target must be between 0% and 100%, "
                                                   "e.g. 1%")
@@ -216,54 +215,87 @@ def read_samples(path) -> dict[int, list[float]]:
     return out
 
 
-def cell_advice(runs, samples_by_run: dict[int, list[float]], factor_names, target: float = 0.01,
+def read_samples_records(path) -> dict[int, dict]:
+    """``samples.jsonl`` as {run id: record}; later lines win (a re-done run)."""
+    out: dict[int, dict] = {}
+    try:
+        fh = open(path, encoding="utf-8")
+    except OSError:
+        return out
+    with fh:
+        for line in fh:
+            line = line.strip()
+            if not line:
+                continue
+            try:
+                rec = json.loads(line)
+            except ValueError:
+                continue   # a torn last line after a crash
+            out[int(rec["run"])] = rec
+    return out
+
+
+def cell_advice(records, samples: dict[int, dict], factor_names, target: float = 0.01,
                 confidence: float = 0.95) -> list[dict]:
     """Per cell: variance components and the executions x iterations advice.
 
-    ``runs`` is the runs table (DataFrame with ``run``, ``status``, factor
-    columns, ``wall_s``, ``steady_from``). Iterations before each run's
-    steady state are left out (Kalibera & Jones analyse steady iterations).
-    The cost of an execution is the median over the cell's runs of wall time
-    minus the steady iterations' time (start-up plus warm-up); the cost of an
-    iteration is the mean steady iteration time.
+    ``records`` are journal records (``run``, ``status``, ``levels``,
+    ``wall_s``); ``samples`` maps run id to its ``samples.jsonl`` record.
+    Only ``ok`` runs with a steady state count, and only their steady
+    iterations (Kalibera & Jones analyse the steady state), truncated to a
+    common length (`components.balanced`).  The cost of an execution is the
+    median over the cell's runs of wall time minus the steady iterations'
+    time (start-up plus warm-up); the cost of an iteration is the mean steady
+    iteration time.
     """
     import numpy as np
 
     from benchharness.steady.components import balanced, recommend, variance_components
 
+    cells: dict[tuple, list] = {}
+    for r in records:
+        if r.get("status") != "ok":
+            continue
+        key = tuple(str((r.get("levels") or {}).get(f)) for f in factor_names)
+        cells.setdefault(key, []).append(r)
     out = []
-    ok = runs[runs["status"] == "ok"] if "status" in runs else runs
-    groups = ok.groupby(list(factor_names), sort=False) if factor_names else [((), ok)]
-    for key, grp in groups:
-        key = key if isinstance(key, tuple) else (key,)
-        levels = dict(zip(factor_names, map(str, key)))
-        steady, exec_costs = [], []
-        for _, row in grp.iterrows():
-            s = samples_by_run.get(int(row["run"]))
-            start = row.get("steady_from")
-            if not s or start is None or (isinstance(start, float) and math.isnan(start)):
+    for key, runs in cells.items():
+        levels = dict(zip(factor_names, key))
+        steady, exec_costs, shapes = [], [], {}
+        for r in runs:
+            rec = samples.get(int(r["run"]))
+            if not rec:
                 continue
-            part = s[int(start):]
+            an = rec.get("analysis") or {}
+            shapes[an.get("shape", "?")] = shapes.get(an.get("shape", "?"), 0) + 1
+            start = an.get("steady_from")
+            if start is None:
+                continue
+            part = list(rec.get("samples_s") or [])[int(start):]
             if len(part) < 2:
                 continue
             steady.append(part)
-            wall = row.get("wall_s")
-            if wall is not None and not (isinstance(wall, float) and math.isnan(wall)):
-                exec_costs.append(max(float(wall) - float(sum(part)), 0.0))
-        entry: dict = {"levels": levels, "executions_with_steady_state": len(steady)}
+            if r.get("wall_s") is not None:
+                exec_costs.append(max(float(r["wall_s"]) - float(sum(part)), 0.0))
+        # Across executions (Barrett et al. 2017): one class when all runs agree,
+        # else "inconsistent".
+        cell_shape = next(iter(shapes)) if len(shapes) == 1 else (
+            "inconsistent" if shapes else None)
+        entry: dict = {"levels": levels, "runs": len(runs), "shapes": shapes,
+                       "cell_shape": cell_shape, "runs_with_steady_state": len(steady)}
         mat = balanced(steady)
         if mat is None:
-            entry["note"] = "fewer than two runs with a steady state; no advice"
+            entry["note"] = "fewer than two runs reached a steady state; no advice"
             out.append(entry)
             continue
         comp = variance_components(mat)
         c_iter = float(mat.mean())
-        c_exec = float(np.median(exec_costs)) if exec_costs else c_iter * 10
-        rec = recommend(comp, c_exec, c_iter, target, confidence)
+        c_exec = float(np.median(exec_costs)) if exec_costs else 0.0
+        rec_ = recommend(comp, c_exec, c_iter, target, confidence)
         entry.update({
             "components": comp.to_json_dict(),
             "cost_execution_s": c_exec, "cost_iteration_s": c_iter,
-            "advice": rec.to_json_dict(),
+            "advice": rec_.to_json_dict(),
         })
         out.append(entry)
     return out

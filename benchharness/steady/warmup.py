@@ -14,9 +14,11 @@ last segment is the candidate steady state, and the series is called
 
 Following Barrett et al., the changepoint penalty is 15 log n and a change
 inside the last quarter of the series means no steady state (both from
-memory). Our own choices, documented in docs/measurement.md: the search runs on
+memory). Our own choices, documented in docs/measurement.md: a final segment
+whose first and last thirds differ by more than the tolerance and three
+standard errors is still drifting (no steady state); the search runs on
 log timings (per-run timings are right-skewed, common practice; a change then
-means a relative change); isolated spikes (one or two points far outside a
+means a relative change); isolated spikes (up to three points in a row far outside a
 rolling median +- 6 rolling MADs, the first iteration excepted) are replaced
 by the rolling median for the search only; adjacent segments whose means differ by
 less than ``rel_tol`` (2 %) or ``abs_tol_s`` are merged; the steady-state mean
@@ -47,6 +49,7 @@ class WarmupSettings:
     despike: bool = True
     use_log: bool = True
     min_iterations: int = 8        # fewer iterations than this: no classification
+    max_points: int = 4000         # longer series are searched in blocks of iterations
 
 
 @dataclass(frozen=True)
@@ -92,16 +95,26 @@ class WarmupResult:
 
 
 def _rolling(values: np.ndarray, half: int, fn) -> np.ndarray:
+    """``fn`` (a numpy reducer taking ``axis``) over a centred window, shrunk at the ends."""
     n = values.size
     out = np.empty(n)
-    for i in range(n):
+    w = 2 * half + 1
+    if n >= w:
+        from numpy.lib.stride_tricks import sliding_window_view
+
+        out[half:n - half] = fn(sliding_window_view(values, w), axis=1)
+        edges = list(range(half)) + list(range(n - half, n))
+    else:
+        edges = range(n)
+    for i in edges:
         lo, hi = max(0, i - half), min(n, i + half + 1)
         out[i] = fn(values[lo:hi])
     return out
 
 
-def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0) -> tuple[np.ndarray, int]:
-    """Replace isolated spikes (runs of at most two points) by the rolling median."""
+def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0,
+            max_run: int = 3) -> tuple[np.ndarray, int]:
+    """Replace isolated spikes (runs of at most ``max_run`` points) by the rolling median."""
     n = z.size
     if n < 2 * half_window:
         return z.copy(), 0
@@ -118,7 +131,7 @@ def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0) -> tuple[np.nd
             j = i
             while j < n and flagged[j]:
                 j += 1
-            if j - i <= 2:
+            if j - i <= max_run:
                 out[i:j] = med[i:j]
                 count += j - i
             i = j
@@ -129,6 +142,21 @@ def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0) -> tuple[np.nd
 
 def _same_level(a: float, b: float, s: WarmupSettings) -> bool:
     return abs(a - b) <= max(s.rel_tol * max(abs(a), abs(b)), s.abs_tol_s)
+
+
+def _drift(part: np.ndarray, s: WarmupSettings) -> str:
+    """Why the final segment still drifts (its first and last thirds differ), or ""."""
+    k = part.size // 3
+    if k < 3:
+        return ""
+    a, b = part[:k], part[-k:]
+    diff = float(b.mean() - a.mean())
+    se = math.sqrt(a.var(ddof=1) / k + b.var(ddof=1) / k)
+    if abs(diff) > max(s.rel_tol * abs(float(part.mean())), 3 * se, s.abs_tol_s):
+        way = "slower" if diff > 0 else "faster"
+        return (f"the last {part.size} iterations keep getting {way} (their last third is "
+                f"{abs(diff) / abs(float(a.mean())):.1%} {way} than their first third)")
+    return ""
 
 
 def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
@@ -151,14 +179,22 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     spikes = 0
     if s.despike:
         z, spikes = despike(z)
-    seg = pelt(z, penalty=s.penalty_factor * math.log(n), min_size=s.min_size, var_floor=floor)
+    # Long series: PELT's cost grows towards n^2 when there are few changes, so
+    # beyond `max_points` the search runs on means of consecutive blocks of k
+    # iterations (changepoints are then known to within k iterations).
+    k = max(1, math.ceil(n / s.max_points))
+    zs = z if k == 1 else np.array([z[i:i + k].mean() for i in range(0, n, k)])
+    seg = pelt(zs, penalty=s.penalty_factor * math.log(zs.size), min_size=s.min_size,
+               var_floor=floor)
+    changepoints = tuple(c * k for c in seg.changepoints)
+    bounds = [0, *changepoints, n]
 
     def make(a: int, b: int) -> Segment:
         part = y[a:b]
         return Segment(a, b, float(part.mean()), float(part.std(ddof=1)) if b - a > 1 else 0.0)
 
     merged: list[Segment] = []
-    for a, b in seg.segments:
+    for a, b in zip(bounds[:-1], bounds[1:]):
         cur = make(a, b)
         if merged and _same_level(merged[-1].mean_s, cur.mean_s, s):
             merged[-1] = make(merged[-1].start, b)
@@ -168,9 +204,13 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     last = segments[-1]
     final = max(s.min_final, int(math.ceil(s.final_fraction * n)))
     if len(segments) > 1 and last.start > n - final:
-        return WarmupResult(n, "no steady state", None, None, None, 0, seg.changepoints, segments,
+        return WarmupResult(n, "no steady state", None, None, None, 0, changepoints, segments,
                             spikes, reason=f"the mean still changes at iteration {last.start} "
                             f"of {n} (within the last {final})", settings=s)
+    drift = _drift(y[last.start:last.end], s)
+    if drift:
+        return WarmupResult(n, "no steady state", None, None, None, 0, changepoints,
+                            segments, spikes, reason=drift, settings=s)
     if len(segments) == 1:
         shape = "flat"
     else:
@@ -178,4 +218,4 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
                   if g.mean_s < last.mean_s and not _same_level(g.mean_s, last.mean_s, s)]
         shape = "slow-down" if faster else "warm-up"
     return WarmupResult(n, shape, last.start, last.mean_s, last.sd_s, last.end - last.start,
-                        seg.changepoints, segments, spikes, settings=s)
+                        changepoints, segments, spikes, settings=s)

@@ -1,19 +1,24 @@
 """Harness overhead: /bin/true through benchharness vs a bare posix_spawn + wait4 loop.
 
-Measures, side by side and interleaved in rounds (so machine drift hits both):
+Side by side, in strict alternation run by run (a shared machine drifts within
+seconds; alternating makes the drift hit both methods alike):
 
-* bare loop: ``os.posix_spawn("/bin/true")`` + ``os.wait4``, timing each run with
+* **bare**: ``os.posix_spawn`` + ``os.wait4`` in this process, each run timed with
   ``time.perf_counter_ns`` around the two calls (its own per-run measurement);
-* executor: the same runs through `LocalExecutor.execute` (launcher process,
-  pipes, bounded capture, pidfd wait);
-* runner (when `benchharness.runner.run_experiment` exists): a whole experiment of
-  N runs of /bin/true, journaling included.
+* **executor**: `LocalExecutor.execute` (launcher process, pipes, bounded
+  capture, pidfd wait, ``on_start`` callback) — one bare run, one executor run;
+* **runner**: a whole experiment through `benchharness.runner.run_experiment`
+  (plan, journal with group-commit fsync, in-flight record, runs.csv export).
+  The runner is given an executor that does one bare run before each real
+  one; the bare segments are timed and subtracted from the runner's total.
 
-Reports total wall per run of each and its ratio to the bare loop (target
-<= 1.25 for the runner), and the median ``wall_s`` reported vs the bare loop's
-median per-run figure (target within 5%).
+Reported per method: total wall time per run and its ratio to bare (target
+<= 1.25 for the runner), the median ``wall_s`` it recorded vs the bare loop's
+median (target within 5%: it measures the process, not itself), and CPU time
+per run spent by the harness and the launcher (less sensitive to a busy machine
+than wall time).
 
-    python experiments/bench/overhead.py [--runs 2000] [--rounds 4] [--json]
+    python experiments/bench/overhead.py [--runs 2000] [--json]
 """
 
 from __future__ import annotations
@@ -34,106 +39,132 @@ from benchharness.execute.base import RunSpec  # noqa: E402
 from benchharness.execute.local import LocalExecutor  # noqa: E402
 
 TRUE = "/bin/true"
+TICK = os.sysconf("SC_CLK_TCK")
 
 
-def bare_loop(n, env):
-    walls = []
-    t_start = time.perf_counter_ns()
-    for _ in range(n):
+def proc_cpu_s(pid: int) -> float:
+    with open(f"/proc/{pid}/stat") as f:
+        fields = f.read().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / TICK
+
+
+class Alternating:
+    """An executor that does one timed bare run before each real run."""
+
+    def __init__(self, inner, env):
+        self.inner = inner
+        self.env = env
+        self.bare_walls = []     # the bare loop's own per-run measurement
+        self.bare_segments = 0   # ns spent in bare segments, loop overhead included
+        self.bare_cpu = 0.0
+
+    def bare_once(self, env):
+        c0 = time.process_time()
+        s0 = time.perf_counter_ns()
         t0 = time.perf_counter_ns()
         pid = os.posix_spawn(TRUE, [TRUE], env)
         os.wait4(pid, 0)
-        walls.append(time.perf_counter_ns() - t0)
-    total = time.perf_counter_ns() - t_start
-    return total / n / 1e9, [w / 1e9 for w in walls]
+        t1 = time.perf_counter_ns()
+        self.bare_walls.append((t1 - t0) / 1e9)
+        self.bare_segments += time.perf_counter_ns() - s0
+        self.bare_cpu += time.process_time() - c0
+
+    def execute(self, spec, on_start=None):
+        # the same environment as the measured run: exec and the dynamic
+        # loader take longer with a bigger one
+        self.bare_once(dict(spec.env))
+        return self.inner.execute(spec, on_start=on_start)
+
+    def close(self):
+        pass
 
 
 def executor_loop(ex, n, env):
+    alt = Alternating(ex, env)
     spec = RunSpec(argv=(TRUE,), env=env)
     walls = []
+    c0 = time.process_time() + proc_cpu_s(ex.launcher_pid)
     t_start = time.perf_counter_ns()
     for _ in range(n):
-        m = ex.execute(spec, on_start=lambda pid, pgid: None)
-        walls.append(m.wall_s)
-    total = time.perf_counter_ns() - t_start
-    assert all(w is not None for w in walls)
-    return total / n / 1e9, walls
+        walls.append(alt.execute(spec, on_start=lambda pid, pgid: None).wall_s)
+    total = time.perf_counter_ns() - t_start - alt.bare_segments
+    cpu = time.process_time() + proc_cpu_s(ex.launcher_pid) - c0 - alt.bare_cpu
+    return alt, total / 1e9, walls, cpu
 
 
-def runner_loop(n, env, workdir):
-    try:
-        from benchharness.experiment import Experiment
-        from benchharness.runner import run_experiment
-    except ImportError:
-        return None
+def runner_loop(ex, n, env, workdir):
+    from benchharness.experiment import Experiment
+    from benchharness.runner import Progress, run_experiment
+
     text = (f"experiment: overhead\ncommand: [{TRUE}]\nfactors:\n  kind: [a, b]\n"
             f"replicates: {max(1, n // 2)}\nseed: 1\n")
     exp = Experiment.from_text(text)
+    alt = Alternating(ex, env)
     out = Path(workdir) / f"run-{time.time_ns()}"
-    import inspect
-    kwargs = {}
-    params = inspect.signature(run_experiment).parameters
-    if "progress" in params:
-        kwargs["progress"] = False
-    if "quiet" in params:
-        kwargs["quiet"] = True
+    c0 = time.process_time() + proc_cpu_s(ex.launcher_pid)
     t_start = time.perf_counter_ns()
-    outcome = run_experiment(exp, out=out, **kwargs)
-    total = time.perf_counter_ns() - t_start
-    runs = outcome.runs
-    walls = [float(w) for w in runs["wall_s"]]
-    return total / len(walls) / 1e9, walls
+    outcome = run_experiment(exp, out=out, executor=alt, progress=Progress())
+    total = time.perf_counter_ns() - t_start - alt.bare_segments
+    cpu = time.process_time() + proc_cpu_s(ex.launcher_pid) - c0 - alt.bare_cpu
+    walls = [float(w) for w in outcome.runs["wall_s"]]
+    return alt, total / 1e9, walls, cpu
 
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=2000, help="runs per method (default 2000)")
-    ap.add_argument("--rounds", type=int, default=4, help="interleaved rounds (default 4)")
     ap.add_argument("--json", action="store_true", help="print the figures as JSON")
     args = ap.parse_args(argv)
     env = {"PATH": "/usr/bin:/bin"}
-    per = max(1, args.runs // args.rounds)
-    res = {"bare": ([], []), "executor": ([], []), "runner": ([], [])}
+    n = args.runs
+    try:
+        import benchharness.runner  # noqa: F401
+        have_runner = True
+    except ImportError:
+        have_runner = False
+    load0 = os.getloadavg()
+    results = {}
     with LocalExecutor() as ex, tempfile.TemporaryDirectory() as tmp:
-        executor_loop(ex, 50, env)  # warm up both paths
-        bare_loop(50, env)
-        for _ in range(args.rounds):
-            for name, fn in (("bare", lambda: bare_loop(per, env)),
-                             ("executor", lambda: executor_loop(ex, per, env)),
-                             ("runner", lambda: runner_loop(per, env, tmp))):
-                got = fn()
-                if got is None:
-                    continue
-                res[name][0].append(got[0])
-                res[name][1].extend(got[1])
-    bare_total = statistics.mean(res["bare"][0])
-    bare_median = statistics.median(res["bare"][1])
-    out = {"runs_per_method": per * args.rounds, "rounds": args.rounds,
-           "bare_total_per_run_ms": bare_total * 1e3, "bare_median_wall_ms": bare_median * 1e3}
+        executor_loop(ex, 50, env)  # warm up every path once
+        if have_runner:
+            runner_loop(ex, 20, env, tmp)
+        results["executor"] = executor_loop(ex, n, env)
+        if have_runner:
+            results["runner"] = runner_loop(ex, n, env, tmp)
+    load1 = os.getloadavg()
+    out = {"runs_per_method": n, "load_average_1min": [load0[0], load1[0]],
+           "cpus": os.cpu_count()}
     for name in ("executor", "runner"):
-        totals, walls = res[name]
-        if not totals:
+        if name not in results:
             out[name] = None
             continue
-        t = statistics.mean(totals)
+        alt, total, walls, cpu = results[name]
+        bare_total = alt.bare_segments / 1e9 / len(alt.bare_walls)
+        bare_median = statistics.median(alt.bare_walls)
+        t = total / len(walls)
         m = statistics.median(walls)
-        out[name] = {"total_per_run_ms": t * 1e3, "total_ratio": t / bare_total,
-                     "median_wall_ms": m * 1e3, "median_wall_ratio": m / bare_median}
+        out[name] = {"bare_total_per_run_ms": bare_total * 1e3,
+                     "bare_median_wall_ms": bare_median * 1e3,
+                     "bare_cpu_per_run_ms": alt.bare_cpu / len(alt.bare_walls) * 1e3,
+                     "total_per_run_ms": t * 1e3, "total_ratio": t / bare_total,
+                     "median_wall_ms": m * 1e3, "median_wall_ratio": m / bare_median,
+                     "cpu_per_run_ms": cpu / len(walls) * 1e3}
     if args.json:
         print(json.dumps(out, indent=2))
-    else:
-        print(f"runs per method: {out['runs_per_method']} in {args.rounds} interleaved rounds")
-        print(f"bare posix_spawn+wait4: {out['bare_total_per_run_ms']:.3f} ms per run total, "
-              f"median per-run {out['bare_median_wall_ms']:.3f} ms")
-        for name in ("executor", "runner"):
-            r = out[name]
-            if r is None:
-                print(f"{name}: not available on this branch")
-                continue
-            print(f"{name}: {r['total_per_run_ms']:.3f} ms per run total "
-                  f"(x{r['total_ratio']:.3f} of bare; target <= 1.25), median wall_s "
-                  f"{r['median_wall_ms']:.3f} ms (x{r['median_wall_ratio']:.3f} of bare's; "
-                  f"target within 5%)")
+        return 0
+    print(f"{n} runs of {TRUE} per method, each alternating run by run with a bare "
+          f"posix_spawn+wait4; load average {load0[0]:.1f} -> {load1[0]:.1f} on "
+          f"{os.cpu_count()} CPUs")
+    for name in ("executor", "runner"):
+        r = out[name]
+        if r is None:
+            print(f"{name}: not available")
+            continue
+        print(f"{name}: {r['total_per_run_ms']:.3f} ms per run vs bare {r['bare_total_per_run_ms']:.3f}"
+              f" (x{r['total_ratio']:.3f}{'; target <= 1.25' if name == 'runner' else ''}); "
+              f"median wall_s {r['median_wall_ms']:.3f} ms vs bare's own {r['bare_median_wall_ms']:.3f}"
+              f" (x{r['median_wall_ratio']:.3f}; target within 5%); CPU per run "
+              f"{r['cpu_per_run_ms']:.3f} ms (harness+launcher) vs {r['bare_cpu_per_run_ms']:.3f}")
     return 0
 
 

@@ -1,0 +1,83 @@
+"""`benchharness steady FOLDER`: warm-up, steady state and how many runs x iterations."""
+
+from __future__ import annotations
+
+import json
+
+
+def add_parser(sub) -> None:
+    p = sub.add_parser("steady", help="warm-up classes and executions x iterations advice",
+                       description="For an experiment with a `samples:` section: per cell, how "
+                                   "the runs warmed up, the steady-state time, the variance "
+                                   "between runs and between iterations, and how many runs x "
+                                   "iterations reach a target precision at least cost.")
+    p.add_argument("folder", help="results folder")
+    p.add_argument("--target", default=None, metavar="PCT",
+                   help="relative half-width of the 95%% confidence interval to aim at, e.g. "
+                        "1%% (default: the experiment's samples: target, else 1%%)")
+    p.add_argument("--json", action="store_true", help="print the advice as JSON")
+    p.set_defaults(func=main)
+
+
+def _fmt_s(x) -> str:
+    from benchharness.runner import format_seconds
+
+    return format_seconds(x) if x is not None else "-"
+
+
+def main(args) -> int:
+    from pathlib import Path
+
+    from benchharness import journal as J
+    from benchharness.errors import DataError, UsageError
+    from benchharness.experiment import load_experiment
+    from benchharness.quality import quality_config
+    from benchharness.steady.samples import cell_advice, read_samples_records
+    from benchharness.yamlnodes import parse_percent
+
+    folder = Path(args.folder)
+    if not J.is_results_folder(folder):
+        raise DataError(f"{folder}: not a results folder (needs experiment.yaml and runs.jsonl)")
+    exp = load_experiment(folder / "experiment.yaml")
+    cfg = quality_config(exp).samples
+    if not (folder / "samples.jsonl").exists():
+        raise DataError(f"{folder}: no samples.jsonl; the experiment needs a `samples:` section "
+                        "and a command that prints per-iteration times")
+    target = cfg.target_rel_halfwidth if cfg else 0.01
+    if args.target is not None:
+        t = parse_percent(args.target)
+        if t is None or not 0 < t < 1:
+            raise UsageError(f"--target {args.target!r}: give a percentage such as 1%")
+        target = t
+    records = J.read_journal(folder / "runs.jsonl")
+    samples = {k: v for k, v in read_samples_records(folder / "samples.jsonl").items()
+               if not v.get("warmup")}
+    cells = cell_advice(records, samples, exp.factor_names, target)
+    if args.json:
+        print(json.dumps({"target_rel_halfwidth": target, "cells": cells}, indent=1))
+        return 0
+    print(f"{exp.name}: steady state per cell (aim: 95% interval within ±{target:.1%} of the "
+          "mean)\n")
+    for c in cells:
+        label = " ".join(f"{k}={v}" for k, v in c["levels"].items()) or "(single cell)"
+        shapes = ", ".join(f"{n} {k}" for k, n in sorted(c["shapes"].items()))
+        print(f"{label}: {c['cell_shape'] or 'no samples'} — {c['runs']} runs ({shapes})")
+        if "advice" not in c:
+            print(f"  {c['note']}")
+            continue
+        comp, adv = c["components"], c["advice"]
+        mean = comp["mean_s"] or float("nan")
+        sd_runs = comp["between_execution_var_s2"] ** 0.5
+        sd_iter = comp["within_execution_var_s2"] ** 0.5
+        print(f"  steady iteration time {_fmt_s(comp['mean_s'])}; spread between runs "
+              f"{_fmt_s(sd_runs)} ({sd_runs / mean:.0%}), between iterations "
+              f"{_fmt_s(sd_iter)} ({sd_iter / mean:.0%}) "
+              f"(from {comp['executions']} runs x {comp['iterations']} steady iterations)")
+        print(f"  a run costs {_fmt_s(c['cost_execution_s'])} before its steady iterations, "
+              f"an iteration {_fmt_s(c['cost_iteration_s'])}")
+        verdict = "reaches" if adv["reached"] else "does not reach"
+        print(f"  advice: {adv['executions']} runs x {adv['iterations']} steady iterations "
+              f"(about {_fmt_s(adv['cost_s'])}) {verdict} ±{adv['rel_halfwidth']:.2%}")
+        if adv.get("note"):
+            print(f"  note: {adv['note']}")
+    return 0
