@@ -47,6 +47,9 @@ def add_parser(sub) -> None:
     p.add_argument("--json", metavar="FILE", help="write the verdicts as JSON")
     p.add_argument("--out", metavar="DIR", help="results folder to create "
                                                 "(default results/<name>-<time>)")
+    p.add_argument("--history", metavar="DB",
+                   help="record the candidate's runs in this history database under the "
+                        "current git commit")
     p.add_argument("--quiet", action="store_true", help="print only the verdict lines")
     p.set_defaults(func=main)
 
@@ -145,4 +148,10 @@ def main(args) -> int:
     if args.json:
         Path(args.json).write_text(json.dumps(output.to_json_dict(outcome, folder), indent=1)
                                    + "\n", encoding="utf-8")
+    if args.history:
+        from benchharness.history import add_results
+
+        n = add_results(args.history, folder, responses=(cfg.response,),
+                        select={cfg.factor: cfg.candidate})
+        print(f"history: {n} cell rows of the candidate added to {args.history}")
     return outcome.exit_code(cfg.inconclusive)
