@@ -307,7 +307,7 @@ def _warning(check: str, severity: str, message: str, fix: str) -> dict:
     return {"check": check, "severity": severity, "message": message, "fix": fix}
 
 
-def busy_processes(interval_s: float = 0.3, threshold: float = BUSY_PROCESS_PERCENT,
+def busy_processes(interval_s: float = 0.1, threshold: float = BUSY_PROCESS_PERCENT,
                    exclude: set[int] | None = None) -> list[dict]:
     """Processes using more than ``threshold`` % of one CPU over ``interval_s``."""
     import psutil
@@ -342,7 +342,7 @@ def busy_processes(interval_s: float = 0.3, threshold: float = BUSY_PROCESS_PERC
     return busy
 
 
-def check_host(facts: dict | None = None, busy_interval_s: float = 0.3) -> list[dict]:
+def check_host(facts: dict | None = None, busy_interval_s: float = 0.1) -> list[dict]:
     """Warnings about this machine's state, each ``{check, severity, message, fix}``.
 
     ``severity`` is ``warning`` (likely to disturb timings; fixable) or

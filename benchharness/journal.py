@@ -328,15 +328,31 @@ def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapp
     """Write ``runs.csv`` (one row per journal record, sorted by position) atomically."""
     records = sorted(records, key=lambda r: (r.get("position", 0), r.get("run", 0)))
     cols = runs_columns(factors, records)
+    tail = cols[len(LEAD_COLUMNS) + len(factors) + len(CORE_COLUMNS):]
+    later = [c for c in tail if c in LATER_COLUMNS]
+    metric_cols = [c for c in tail if c not in LATER_COLUMNS]
     buf = io.StringIO()
-    w = csv.writer(buf, lineterminator="\n")
+    w = csv.writer(buf, lineterminator="\n")  # writes None as an empty field
     w.writerow(cols)
     for rec in records:
-        row = flatten(rec, factors)
-        w.writerow([_csv_value(row.get(c)) for c in cols])
+        g = rec.get
+        lv = g("levels") or {}
+        mt = g("metrics") or {}
+        row = [g(k) for k in LEAD_COLUMNS]
+        row += [lv.get(f) for f in factors]
+        row += [g(k) for k in CORE_COLUMNS]
+        row += [g(k) for k in later]
+        row += [mt.get(m) for m in metric_cols]
+        if True in map(_is_bool, row):
+            row = [_csv_value(v) for v in row]
+        w.writerow(row)
     path = folder / "runs.csv"
     write_atomic(path, buf.getvalue())
     return path
+
+
+def _is_bool(v) -> bool:
+    return v.__class__ is bool
 
 
 def write_plan_csv(folder: Path, factors: Sequence[str], rows: Sequence[Mapping],

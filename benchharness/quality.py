@@ -200,6 +200,8 @@ class RunQuality:
         """The spec to execute and a token for `finish`."""
         from benchharness.host import sample_run_conditions
 
+        if not self.cfg.active:  # the common case, kept cheap: only the run conditions
+            return spec, {"conditions": sample_run_conditions(spec.cpus), "fast": True}
         token: dict = {"levels": dict(levels), "cwd": spec.cwd}
         if self.cfg.samples is not None and spec.capture_bytes < SAMPLES_CAPTURE_BYTES:
             spec = replace(spec, capture_bytes=SAMPLES_CAPTURE_BYTES)
@@ -227,6 +229,12 @@ class RunQuality:
 
     def finish(self, token: Mapping, planned: Mapping, m: Measurement) -> Measurement:
         """Apply expect, metrics, perf counts and samples to one run's measurement."""
+        if token.get("fast") and type(m.extra) is dict:
+            # No quality sections: add the run conditions to this run's own extra dict
+            # (a fresh dict per measurement) instead of copying the measurement.
+            for k, v in token["conditions"].items():
+                m.extra.setdefault(k, v)
+            return m
         extra = dict(m.extra or {})
         for k, v in token.get("conditions", {}).items():
             extra.setdefault(k, v)

@@ -366,11 +366,13 @@ class _CellCache:
         return c
 
 
-def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None, env=None) -> RunSpec:
+def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None, env=None,
+          inflight_path=None) -> RunSpec:
     argv, shell = argv_shell
     return RunSpec(argv=argv, shell_command=shell, env=env or c["env"], cwd=c["cwd"],
                    timeout_s=timeout_s, run_id=run_id, levels=levels or {},
-                   cpus=c["cpus"], nice=c["nice"], no_aslr=c["no_aslr"])
+                   cpus=c["cpus"], nice=c["nice"], no_aslr=c["no_aslr"],
+                   inflight_path=inflight_path)
 
 
 def _short(m: Measurement) -> str:
@@ -448,6 +450,9 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                                                            "the kernel does not allow it"))
     cold_ok = None
 
+    inflight_path = str(folder / "inflight")
+    records_start = getattr(executor, "records_inflight", False)
+
     def on_start_for(run_id):
         def cb(pid, pgid):
             inflight_pgid[0] = pgid
@@ -498,10 +503,15 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if ok:
                     session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
-                spec, qtoken = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                                     run_id=pr["run"], levels=levels,
-                                                     env=run_env), levels, c)
-                m = executor.execute(spec, on_start=on_start_for(pr["run"]))
+                spec, qtoken = quality.prepare(
+                    _spec((c["argv"], c["shell"]), c, timeout_s, run_id=pr["run"],
+                          levels=levels, env=run_env,
+                          inflight_path=inflight_path if records_start else None), levels, c)
+                if records_start:
+                    # The executor records the child itself: no harness wake-up mid-run.
+                    m = executor.execute(spec)
+                else:
+                    m = executor.execute(spec, on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
                 m = quality.finish(qtoken, pr, m)  # expect, metrics, samples, perf counts
                 status = m.status

@@ -44,6 +44,10 @@ class RunSpec:
     no_aslr: bool = False
     # How much of each output stream to keep (the tail), in bytes.
     capture_bytes: int = 64 * 1024
+    # A file where the executor records the running child as soon as it exists
+    # (``{"run", "pid", "pgid", "boot"}`` at offset 0), so that a later resume can
+    # stop what a dead harness left running; costs the harness no wake-up.
+    inflight_path: str | None = None
 
 
 @dataclass(frozen=True)

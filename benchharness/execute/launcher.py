@@ -195,6 +195,20 @@ class Launcher:
         self.libc.personality(p)
         return True, ""
 
+    def record_inflight(self, inflight, pid):
+        """Write the running child into the harness's in-flight file (for resume)."""
+        path, run_id, boot = inflight
+        fds = self.__dict__.setdefault("_inflight_fds", {})
+        try:
+            fd = fds.get(path)
+            if fd is None:
+                fd = fds[path] = os.open(path, os.O_WRONLY | os.O_CREAT, 0o644)
+            text = '{"run": %d, "pid": %d, "pgid": %d, "boot": "%s"}' % (run_id, pid, pid,
+                                                                         boot)
+            os.pwrite(fd, text.encode().ljust(160), 0)
+        except OSError:
+            pass  # the record helps a later resume; the run itself goes on
+
     def hello(self):
         try:
             os.close(os.pidfd_open(self.pid))
@@ -482,6 +496,9 @@ class Launcher:
                 os.close(held.pop())
 
         run["pid"] = pid
+        inflight = req.get("inflight")
+        if inflight:
+            self.record_inflight(inflight, pid)
         if req.get("notify", True):
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
         deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)

@@ -80,6 +80,8 @@ class LocalExecutor:
         #: Whether this kernel lets a run turn off ASLR; reason when it does not.
         self.aslr_control: bool = hello["aslr_control"]
         self.aslr_reason: str = hello["aslr_reason"]
+        #: Writes RunSpec.inflight_path itself (the runner then needs no on_start call).
+        self.records_inflight: bool = True
         self._current: tuple[int, int] | None = None
         self._last_env: dict | None = None
 
@@ -181,6 +183,10 @@ class LocalExecutor:
             "linger_s": self.linger_s,
             "notify": on_start is not None,
         }
+        if spec.inflight_path:
+            from benchharness.journal import _boot_id
+
+            req["inflight"] = (str(spec.inflight_path), int(spec.run_id or 0), _boot_id())
         # The environment is sent only when it differs from the previous run's
         # (the runner reuses one per cell), which keeps the request small.
         if self._last_env is None or spec.env != self._last_env:

@@ -75,6 +75,11 @@ class Alternating:
         self.bare_once(dict(spec.env))
         return self.inner.execute(spec, on_start=on_start)
 
+    @property
+    def records_inflight(self):
+        # the runner then lets the launcher record the in-flight run itself
+        return getattr(self.inner, "records_inflight", False)
+
     def close(self):
         pass
 
