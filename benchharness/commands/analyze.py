@@ -26,9 +26,10 @@ def add_parser(sub) -> None:
     g.add_argument("--no-block", action="store_true", help="fit no block term")
     p.add_argument("--transform", choices=["auto", "none", "log", "boxcox"], default="auto",
                    help="analysis scale (default auto: chosen from the Box-Cox interval)")
-    p.add_argument("--model", default="full", metavar="full|main|N",
+    p.add_argument("--model", default=None, metavar="full|main|N",
                    help="all interactions (full), main effects only (main), or interactions "
-                        "up to order N (default full)")
+                        "up to order N (default full; for a fractional design, the terms "
+                        "that are not aliased with each other)")
     p.add_argument("--ss-type", type=int, choices=[2, 3], default=2,
                    help="type of sums of squares (default 2)")
     p.add_argument("--alpha", type=float, default=0.05, help="significance level (default 0.05)")
@@ -56,15 +57,47 @@ def main(args) -> int:
     if not 0 < args.alpha < 1:
         raise UsageError(f"--alpha {args.alpha}: must be between 0 and 1")
     block = False if args.no_block else args.block
+    exp = _experiment_of(args.source)
+    model = args.model
+    if model is None:
+        model = "full"
+        if exp is not None:
+            # A fraction: only terms that are not aliased with each other (as after `run`).
+            from benchharness.analysis.fraction import default_model
+
+            order = default_model(exp)
+            model = order if order is not None else "full"
     an = analyze(args.source, response=args.response, factors=factors, block=block,
-                 transform=args.transform, model=args.model, ss_type=args.ss_type,
+                 transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=args.alpha, reference=args.reference, adjust=args.adjust,
                  art=True if args.art else "auto")
     if args.json == "-":
         sys.stdout.write(an.to_json() + "\n")
         return 0
     print(format_analysis(an), end="")
+    if exp is not None:
+        # Two-level fractions and confounded blocks: one estimate per alias chain.
+        from benchharness.analysis.fraction import format_fraction, fraction_analysis_for
+        from benchharness.journal import load_results
+
+        frac = fraction_analysis_for(exp, load_results(args.source).runs,
+                                     response=an.response,
+                                     log=(an.transform or {}).get("name") != "none")
+        if frac is not None:
+            print()
+            print(format_fraction(frac))
     if args.json:
         write_analysis_json(an, args.json)
         print(f"\nanalysis written to {args.json}")
     return 0
+
+
+def _experiment_of(source):
+    """The experiment of a results folder, or None for a CSV source."""
+    import os
+
+    if not os.path.isdir(source):
+        return None
+    from benchharness.journal import load_results
+
+    return load_results(source).experiment
