@@ -600,7 +600,7 @@ def _tail(b: bytes, n: int = 300) -> str:
 
 def cell_summary(records: Sequence[Mapping], factors: Sequence[str],
                  response: str = "wall_s") -> list[dict]:
-    """Per cell: runs ok, median and interquartile range of the response, failures."""
+    """Per cell: ``{levels, n, median, iqr, failed, timeout}`` of the response."""
     by: dict[tuple, dict] = {}
     for r in records:
         if r.get("status") == "warmup":
@@ -616,7 +616,7 @@ def cell_summary(records: Sequence[Mapping], factors: Sequence[str],
     out = []
     for key, d in by.items():
         v = sorted(d["values"])
-        row = dict(zip(factors, key))
+        row = {"levels": dict(zip(factors, key))}
         row["n"] = len(v)
         row["median"] = statistics.median(v) if v else None
         if len(v) >= 2:

@@ -52,3 +52,21 @@ def test_cli_run_prints_progress_lines_summary_and_location(tmp_path, cli):
     assert "median wall" in out and "IQR" in out
     assert "seed" in out and "drawn" in out   # no seed in the file: drawn and reported
     assert f"results: {tmp_path / 'res'}" in out
+
+
+def test_summary_with_a_factor_named_like_a_summary_column(tmp_path, cli):
+    p = tmp_path / "e.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        experiment: named-n
+        command: [{sys.executable}, -c, "pass", "{{n}}", "{{median}}"]
+        factors:
+          n: [1, 3]
+          median: [lo, hi]
+        replicates: 2
+        seed: 1
+        """))
+    r = cli("run", p, "--out", tmp_path / "res", "--no-analysis")
+    assert r.returncode == 0, r.stderr
+    lines = [ln.split() for ln in r.stdout.splitlines() if ln.split()[:1] in (["1"], ["3"])]
+    assert sorted((ln[0], ln[1], ln[2]) for ln in lines) == [
+        ("1", "hi", "2"), ("1", "lo", "2"), ("3", "hi", "2"), ("3", "lo", "2")]

@@ -141,3 +141,53 @@ def test_lost_worker_and_killed_coordinator(cluster, tmp_path):
     assert sorted(ids) == list(range(24)), "every planned run exactly once"
     assert all(x["status"] == "ok" for x in recs)
     assert recs[:len(before)] == before
+
+
+def test_host_split_of_the_block_term_matches_statsmodels():
+    """Between-host and within-host parts of the block SS against nested OLS fits
+    (statsmodels ols + anova_lm on the same log data)."""
+    import numpy as np
+    import pandas as pd
+    import statsmodels.formula.api as smf
+
+    import benchharness
+
+    rng = np.random.default_rng(5)
+    rows = []
+    for block in range(1, 7):
+        host = "h1" if block <= 3 else "h2"
+        for a in ("x", "y"):
+            for b in ("1", "2"):
+                mu = 0.1 * (a == "y") + 0.05 * (b == "2") + (0.08 if host == "h2" else 0) \
+                    + rng.normal(0, 0.01)
+                for _ in range(2):
+                    rows.append({"a": a, "b": b, "block": block, "host": host, "status": "ok",
+                                 "wall_s": float(np.exp(mu + rng.normal(0, 0.03)))})
+    df = pd.DataFrame(rows)
+    an = benchharness.analyze(df, factors=["a", "b"], transform="log")
+    assert an.block == "block"
+    h = an.to_dict()["diagnostics"]["hosts"]
+    d = df.assign(ly=np.log(df.wall_s), blk=df.block.astype(str))
+    rss0 = smf.ols("ly ~ C(a) * C(b)", d).fit().ssr
+    rssh = smf.ols("ly ~ C(a) * C(b) + C(host)", d).fit().ssr
+    rssb = smf.ols("ly ~ C(a) * C(b) + C(blk)", d).fit().ssr
+    assert abs(h["between_hosts"]["sum_sq"] - (rss0 - rssh)) < 1e-9
+    assert abs(h["blocks_within_hosts"]["sum_sq"] - (rssh - rssb)) < 1e-9
+    assert h["between_hosts"]["df"] == 1 and h["blocks_within_hosts"]["df"] == 4
+    assert h["differ"] is True   # a planted 8% host difference
+
+
+def test_block_split_over_hosts_uses_pairs():
+    import pandas as pd
+
+    import benchharness
+
+    rows = []
+    for block in (1, 2):
+        for i, a in enumerate(("x", "y", "x", "y")):
+            host = "h1" if block == 1 or i < 2 else "h2"   # block 2 finished on h2
+            rows.append({"a": a, "block": block, "host": host, "status": "ok",
+                         "wall_s": 1.0 + 0.1 * (a == "y") + 0.01 * i + 0.02 * block})
+    an = benchharness.analyze(pd.DataFrame(rows), factors=["a"], transform="log")
+    assert an.block == "block@host"
+    assert any("(block, host) pairs" in n for n in an.notes)

@@ -73,6 +73,9 @@ class Analysis:
     def to_dict(self) -> dict:
         return _clean({
             "response": self.response,
+            "alpha": self.model.get("alpha"),
+            "confidence": 1.0 - self.model.get("alpha", 0.05),
+            "ss_type": self.model.get("ss_type"),
             "factors": [{"name": f, "levels": list(self.levels[f])} for f in self.factors],
             "block": self.block,
             "model": self.model,
@@ -138,47 +141,60 @@ def _parse_reference(reference, names, levels):
 
 
 def _declared_from_experiment(exp):
+    """(plain value, yaml node) of the experiment's ``compare:`` section, or (None, None)."""
     sections = getattr(exp, "sections", None) or {}
     node = sections.get("compare") if hasattr(sections, "get") else None
     if node is None:
-        return None
+        return None, None
+    from benchharness.yamlnodes import to_plain
+
+    return to_plain(node), node
+
+
+def _item_node(node, k):
+    """The YAML node of item k (1-based) of a sequence node, for error positions."""
     try:
-        from benchharness.yamlnodes import to_plain  # type: ignore
-
-        return to_plain(node)
-    except ImportError:
-        import yaml
-
-        return yaml.safe_load(yaml.serialize(node))
+        return node.value[k - 1]
+    except (AttributeError, IndexError, TypeError):
+        return node
 
 
-def analyze(data, *args, **kwargs) -> "Analysis":
-    """Analyse a runs table (DataFrame, tidy CSV path or results folder); see `_analyze`.
+def analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
+            model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
+            adjust: str = "holm", compare=None, art="auto",
+            comparisons: bool = True) -> "Analysis":
+    """Analyse a runs table (DataFrame, tidy CSV path or results folder).
+
+    ``block``: a column name; None (or "auto") for the default (``block`` for
+    blocked experiments, ``host`` when it has more than one value); False for none.
+    ``model``: "full", "main" or N (interactions up to order N). ``ss_type``: 2 or 3.
+    ``reference``: {factor: level} or ["factor=level", ...] for the ratios
+    (default: the first level). ``adjust``: "holm" or "bonferroni" for pairwise
+    comparisons. ``compare``: declared comparisons (see
+    ``comparisons.parse_declared``); default: the experiment's ``compare:``.
+    ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
+    ``comparisons=False`` skips the post hoc comparisons (faster in simulations).
 
     Linear algebra here works on small matrices (cells × parameters), where
     multi-threaded BLAS only adds overhead on a busy machine, so BLAS is held to
     one thread for the call when threadpoolctl is available.
     """
+    kwargs = dict(response=response, factors=factors, block=block, transform=transform,
+                  model=model, ss_type=ss_type, alpha=alpha, reference=reference,
+                  adjust=adjust, compare=compare, art=art, comparisons=comparisons)
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:  # optional: only speed depends on it
-        return _analyze(data, *args, **kwargs)
+        return _analyze(data, **kwargs)
     with threadpool_limits(1):
-        return _analyze(data, *args, **kwargs)
+        return _analyze(data, **kwargs)
 
 
 def _analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
             model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
-            adjust: str = "holm", compare=None, art="auto") -> Analysis:
-    """Analyse a runs table (DataFrame, tidy CSV path or results folder).
-
-    ``block``: a column name; None (or "auto") for the default (``block`` for
-    blocked experiments, ``host`` when it has more than one value); False for none.
-    ``reference``: {factor: level} or ["factor=level", ...] for the ratios
-    (default: the first level). ``compare``: declared comparisons (see
-    ``comparisons.parse_declared``); default: the experiment's ``compare:``.
-    ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
-    """
+            adjust: str = "holm", compare=None, art="auto",
+            comparisons: bool = True) -> Analysis:
+    """The work of `analyze` (same arguments)."""
     from scipy import stats
 
     from benchharness.analysis import comparisons as cmp
@@ -272,13 +288,21 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         anova_rows.append({"term": row.term, "df": row.df, "sum_sq": row.sum_sq,
                            "mean_sq": ms, "F": F, "p": p, "partial_eta_sq": peta,
                            "omega_sq": omega, "kind": "block" if row.is_block else "effect",
-                           "df_full": row.df_full, "note": row.note})
+                           "df_full": row.df_full, "note": row.note,
+                           "aliases": list(row.aliases)})
     anova_rows.append({"term": "Residual", "df": df_res, "sum_sq": fit.rss,
                        "mean_sq": mse if df_res > 0 else None, "F": None, "p": None,
                        "partial_eta_sq": None, "omega_sq": None, "kind": "residual"})
     for row in fit.table:
         if row.note:
             notes.append(f"{row.term}: {row.note}")
+    from benchharness.analysis.hosts import host_split
+
+    hosts = host_split(prep, z, terms, model, ss_type, fit, alpha)
+    if hosts and hosts["differ"]:
+        notes.append("hosts differ significantly (F test of hosts against blocks within "
+                     f"hosts, p {hosts['between_hosts']['p']:.3g}); the block term keeps this "
+                     "out of the factor effects, but the hosts are not interchangeable")
     expected_cells = int(np.prod([sizes[f] for f in factor_idx]))
     if fcells.count < expected_cells:
         missing = _missing_cells(fcells, sizes[: len(fnames)], fnames, flevels)
@@ -295,6 +319,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     resid = z - fit.fitted[cells.row_cell]
     lev_rows = fit.leverage[cells.row_cell]
     diagnostics: dict[str, Any] = {}
+    if hosts is not None:
+        diagnostics["hosts"] = hosts
     studentized = None
     if df_res > 0:
         scale = np.sqrt(np.clip(1.0 - lev_rows, 0.0, None))
@@ -305,7 +331,9 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         out = dg.outliers(resid, lev_rows, fit.rss, df_res, prep.run, alpha)
         studentized = out.pop("studentized")
         diagnostics["outliers"] = out["runs"]
-        diagnostics["outlier_check"] = {k: v for k, v in out.items() if k != "runs"}
+        diagnostics["outlier_cutoff"] = out["cutoff"]
+        diagnostics["outlier_count"] = out["count"]
+        diagnostics["outlier_verdict"] = out["verdict"]
         if choice.name == "log":
             pct_unit = 100.0
         elif choice.name == "none":
@@ -314,6 +342,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         else:
             pct_unit = 100.0 * math.exp(-choice.lam * float(np.mean(np.log(y))))
         diagnostics["drift"] = dg.drift(resid, prep.position, pct_unit, alpha)
+        if "load_1m" in prep.extra:
+            diagnostics["load"] = _load_check(resid, prep.extra["load_1m"], alpha)
     else:
         skipped = {"verdict": "not checked: no residual degrees of freedom"}
         diagnostics.update(normality=dict(skipped, test=None, statistic=None, p=None),
@@ -331,7 +361,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     art_result = None
     run_art = (art is True) or (art == "auto" and not assumptions_ok and N <= ART_AUTO_MAX_ROWS)
     if run_art and df_res > 0:
-        rows = ef_art(codes[: len(fnames)], sizes[: len(fnames)], fnames, y, terms, ss_type, alpha,
+        rows = _run_art(codes[: len(fnames)], sizes[: len(fnames)], fnames, y, terms, ss_type, alpha,
                       anova_p)
         art_result = {"reason": "requested" if art is True else
                       "assumptions fail after the transform", "terms": rows}
@@ -348,12 +378,25 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     means = ef.marginal_means(fit, names, levels, choice, alpha)
     effects = ef.level_ratios(fit, names, levels, factor_idx, refs, choice, alpha)
     comps = []
-    comps += cmp.pairwise(fit, names, levels, factor_idx, choice, alpha, adjust)
-    comps += cmp.tukey(fit, names, levels, factor_idx, choice, alpha)
-    comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha)
+    if not comparisons:
+        compare = []
+    if comparisons:
+        comps += cmp.pairwise(fit, names, levels, factor_idx, choice, alpha, adjust)
+        comps += cmp.tukey(fit, names, levels, factor_idx, choice, alpha)
+        comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha)
+    node = None
     if compare is None:
-        compare = _declared_from_experiment(prep.experiment)
-    items = cmp.parse_declared(compare, fnames, flevels)
+        compare, node = _declared_from_experiment(prep.experiment)
+    try:
+        items = cmp.parse_declared(compare, fnames, flevels)
+    except UsageError as exc:
+        if node is None:
+            raise
+        from benchharness.yamlnodes import node_error
+
+        k = getattr(exc, "item", None)
+        raise node_error(_item_node(node, k) if k else node, str(exc),
+                         getattr(prep.experiment, "path", None)) from None
     comps += cmp.declared(fit, names, levels, items, choice, alpha, adjust)
 
     # ---- failures ------------------------------------------------------------------------
@@ -389,7 +432,17 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         position=prep.position, run=prep.run, fit=fit)
 
 
-def ef_art(codes, sizes, names, y, terms, ss_type, alpha, anova_p):
+def _load_check(resid, load, alpha):
+    """Do residuals follow the machine's load? (Spearman; ``benchharness.analysis_load``)."""
+    from benchharness.analysis_load import load_correlation
+
+    out = load_correlation(resid, load, alpha=alpha)
+    return {"test": "spearman", "statistic": out.get("rho"), "p": out.get("p"),
+            "n": out.get("n"), "relation": out.get("verdict"), "verdict": out.get("message"),
+            "ok": out.get("verdict") != "related"}
+
+
+def _run_art(codes, sizes, names, y, terms, ss_type, alpha, anova_p):
     from benchharness.analysis.art import art_anova
 
     return art_anova(codes, sizes, names, y, terms, ss_type, alpha, anova_p)

@@ -16,7 +16,7 @@ from itertools import combinations
 import numpy as np
 
 from benchharness.analysis.cells import index_cells, moments
-from benchharness.analysis.model import Term, fit_model, model_terms
+from benchharness.analysis.model import fit_model, model_terms
 
 
 def _marginal_mean_rows(codes, sizes, subset, y):
@@ -38,7 +38,6 @@ def art_anova(codes, sizes, names, y, terms, ss_type, alpha, anova_p: dict) -> l
     from scipy import stats
 
     codes = list(codes)
-    F = len(codes)
     cells = index_cells(codes, sizes)
     mom = moments(cells.row_cell, y, cells.count)
     resid = y - mom.mean[cells.row_cell]

@@ -7,7 +7,8 @@ Owns:
   from the model, so unbalanced data are handled), adjusted within each factor
   by Bonferroni or Holm (Holm 1979, *Scand. J. Statistics* 6:65);
 * Tukey HSD for each main effect (Tukey 1953; Kramer 1956 for unequal n):
-  q = |difference| / (SE/√2) against the studentized range distribution;
+  q = |difference| / (SE/√2) against the studentized range distribution
+  (``srange``, checked against scipy);
 * simple effects: when a two-factor interaction is significant, the levels of
   one factor compared within each level of the other, Holm-adjusted over that
   family;
@@ -22,6 +23,7 @@ range quantile.
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from itertools import combinations
 
 import numpy as np
@@ -102,8 +104,15 @@ def pairwise(fit: Fit, names, levels, factor_idx, choice, alpha, adjust) -> list
     return out
 
 
+@lru_cache(maxsize=256)
+def _q_crit(alpha: float, k: int, df: int) -> float:
+    from benchharness.analysis import srange
+
+    return srange.isf(alpha, k, df)
+
+
 def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
-    from scipy import stats
+    from benchharness.analysis import srange
 
     if fit.df_resid <= 0:
         return []
@@ -113,19 +122,23 @@ def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
         if k < 2:
             continue
         _, L = margin_rows(fit, (f,))
-        qcrit = float(stats.studentized_range.ppf(1 - alpha, k, fit.df_resid))
-        half = qcrit / math.sqrt(2.0)
+        half = _q_crit(float(alpha), int(k), int(fit.df_resid)) / math.sqrt(2.0)
+        rows, stats_q = [], []
         for i, j in combinations(range(k), 2):
             r = contrast_result(fit, L[i], L[j], choice, half)
-            p = None
             stat = None
             if r["estimable"] and r["se"] and r["se"] > 0:
                 stat = abs(r["estimate"]) / (r["se"] / math.sqrt(2.0))
-                p = float(stats.studentized_range.sf(stat, k, fit.df_resid))
-            e = _entry("tukey", names[f], None, levels[f][i], levels[f][j], r, p)
-            e["p_adj"] = p
+            e = _entry("tukey", names[f], None, levels[f][i], levels[f][j], r, None)
             e["q"] = stat
-            out.append(e)
+            rows.append(e)
+            stats_q.append(stat)
+        idx = [i for i, q in enumerate(stats_q) if q is not None]
+        if idx:
+            ps = srange.sf(np.array([stats_q[i] for i in idx]), k, fit.df_resid)
+            for i, p in zip(idx, np.atleast_1d(ps)):
+                rows[i]["p"] = rows[i]["p_adj"] = float(p)
+        out += rows
     return out
 
 
@@ -175,44 +188,52 @@ def parse_declared(spec, names, levels) -> list[dict]:
                          "[{codec: [lzma, zlib]}]")
     out = []
     for k, item in enumerate(spec, 1):
-        where = f"compare item {k}"
-        if not isinstance(item, dict):
-            raise UsageError(f"{where}: expected a mapping such as {{codec: [lzma, zlib]}}")
-        item = dict(item)
-        within = item.pop("within", None) or None
-        if "factor" in item:
-            factor, a, b = item.pop("factor"), item.pop("a", None), item.pop("b", None)
-            if item:
-                raise UsageError(f"{where}: unknown key {next(iter(item))!r}")
-        else:
-            if len(item) != 1:
-                raise UsageError(f"{where}: name exactly one factor with two levels, e.g. "
-                                 "{codec: [lzma, zlib]}")
-            factor, pair = next(iter(item.items()))
-            if not isinstance(pair, (list, tuple)) or len(pair) != 2:
-                raise UsageError(f"{where}: {factor!r} needs a list of two levels [a, b]")
-            a, b = pair
-        factor, a, b = str(factor), str(a), str(b)
-        if factor not in names:
-            raise UsageError(f"{where}: {factor!r} is not a factor of the analysis")
-        lv = levels[names.index(factor)]
-        for x in (a, b):
-            if x not in lv:
-                raise UsageError(f"{where}: {x!r} is not a level of {factor!r} "
-                                 f"(levels: {', '.join(lv)})")
-        if a == b:
-            raise UsageError(f"{where}: a level compared with itself")
-        if within is not None:
-            if not isinstance(within, dict):
-                raise UsageError(f"{where}: within must be a mapping factor: level")
-            within = {str(kf): str(kv) for kf, kv in within.items()}
-            for kf, kv in within.items():
-                if kf not in names or kf == factor:
-                    raise UsageError(f"{where}: within names {kf!r}, not another factor")
-                if kv not in levels[names.index(kf)]:
-                    raise UsageError(f"{where}: {kv!r} is not a level of {kf!r}")
-        out.append({"factor": factor, "a": a, "b": b, "within": within})
+        try:
+            out.append(_parse_item(item, k, names, levels))
+        except UsageError as exc:
+            exc.item = k
+            raise
     return out
+
+
+def _parse_item(item, k, names, levels) -> dict:
+    where = f"compare item {k}"
+    if not isinstance(item, dict):
+        raise UsageError(f"{where}: expected a mapping such as {{codec: [lzma, zlib]}}")
+    item = dict(item)
+    within = item.pop("within", None) or None
+    if "factor" in item:
+        factor, a, b = item.pop("factor"), item.pop("a", None), item.pop("b", None)
+        if item:
+            raise UsageError(f"{where}: unknown key {next(iter(item))!r}")
+    else:
+        if len(item) != 1:
+            raise UsageError(f"{where}: name exactly one factor with two levels, e.g. "
+                             "{codec: [lzma, zlib]}")
+        factor, pair = next(iter(item.items()))
+        if not isinstance(pair, (list, tuple)) or len(pair) != 2:
+            raise UsageError(f"{where}: {factor!r} needs a list of two levels [a, b]")
+        a, b = pair
+    factor, a, b = str(factor), str(a), str(b)
+    if factor not in names:
+        raise UsageError(f"{where}: {factor!r} is not a factor of the analysis")
+    lv = levels[names.index(factor)]
+    for x in (a, b):
+        if x not in lv:
+            raise UsageError(f"{where}: {x!r} is not a level of {factor!r} "
+                             f"(levels: {', '.join(lv)})")
+    if a == b:
+        raise UsageError(f"{where}: a level compared with itself")
+    if within is not None:
+        if not isinstance(within, dict):
+            raise UsageError(f"{where}: within must be a mapping factor: level")
+        within = {str(kf): str(kv) for kf, kv in within.items()}
+        for kf, kv in within.items():
+            if kf not in names or kf == factor:
+                raise UsageError(f"{where}: within names {kf!r}, not another factor")
+            if kv not in levels[names.index(kf)]:
+                raise UsageError(f"{where}: {kv!r} is not a level of {kf!r}")
+    return {"factor": factor, "a": a, "b": b, "within": within}
 
 
 def declared(fit: Fit, names, levels, items, choice, alpha, adjust) -> list[dict]:

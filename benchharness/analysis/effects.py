@@ -22,7 +22,7 @@ from itertools import product
 
 import numpy as np
 
-from benchharness.analysis.model import Fit, Term, sum_contrasts
+from benchharness.analysis.model import Fit, sum_contrasts
 from benchharness.analysis import transform as tr
 
 
@@ -62,7 +62,7 @@ def margin_counts(fit: Fit, factors, combos) -> np.ndarray:
 def linear_estimates(fit: Fit, L: np.ndarray):
     """Estimates, standard errors (NaN without residual df) and estimability of rows of L."""
     est = L @ fit.beta
-    var = np.einsum("ij,jk,ik->i", L, fit.cov_unscaled, L) * fit.mse
+    var = ((L @ fit.cov_unscaled) * L).sum(axis=1) * fit.mse
     se = np.sqrt(np.maximum(var, 0.0))
     ok = fit.estimable(L)
     est = np.where(ok, est, np.nan)

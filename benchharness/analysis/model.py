@@ -137,6 +137,7 @@ class TermSS:
     sum_sq: float
     is_block: bool = False
     note: str | None = None
+    aliases: tuple[str, ...] = ()   # left-out terms confounded with this one
 
 
 @dataclass(frozen=True)
@@ -161,6 +162,7 @@ class Fit:
     table: tuple[TermSS, ...]
     ss_type: int                # the type actually reported
     notes: tuple[str, ...] = field(default=())
+    left_out: tuple[str, ...] = field(default=())   # terms confounded with earlier ones
 
     @property
     def mse(self) -> float:
@@ -174,8 +176,90 @@ class Fit:
         return np.abs(L - proj).max(axis=1) <= 1e-8 * scale
 
 
+def _sequential_df(Xw, slices, terms):
+    """Rank added by each term after the intercept and every earlier term."""
+    basis = _basis(Xw[:, :1])
+    out = {}
+    for t in terms:
+        xt = Xw[:, slices[t.name]]
+        r = xt - basis @ (basis.T @ xt)
+        b2 = _basis(r, scale=_norm2(xt))
+        out[t.name] = int(b2.shape[1])
+        basis = np.hstack([basis, b2])
+    return out
+
+
+def _confounded_with(Xw, slices, t, earlier):
+    """Earlier terms whose columns share directions with ``t`` (after the intercept)."""
+    one = _basis(Xw[:, :1])
+
+    def centred(a):
+        return a - one @ (one.T @ a)
+
+    xt = centred(Xw[:, slices[t.name]])
+    scale = _norm2(xt)
+    out = []
+    for s in earlier:
+        bs = _basis(centred(Xw[:, slices[s.name]]))
+        if bs.shape[1] and _norm2(bs.T @ xt) > 1e-8 * max(scale, 1e-300):
+            out.append(s.name)
+    return out
+
+
 def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
-    """Fit the model and compute Type II or III sums of squares for every term."""
+    """Fit the model and compute Type II or III sums of squares for every term.
+
+    A term whose columns are entirely explained by earlier terms (aliasing in a
+    fractional factorial, or factors whose levels always move together) is left
+    out of the fitted model and reported with df 0; its effect, if any, is
+    carried by the earlier terms it is confounded with (they list it in
+    ``aliases``). Terms that only lose part of their degrees of freedom (empty
+    cells) stay in, and what needs the missing cells is not estimable.
+    """
+    terms = tuple(terms)
+    X, slices = design(cells.levels, terms, cells.sizes)
+    Xw = X * np.sqrt(mom.n)[:, None]
+    if np.linalg.matrix_rank(Xw) >= X.shape[1]:
+        return _fit(cells, mom, terms, ss_type)
+    seq = _sequential_df(Xw, slices, terms)
+    dropped = [t for t in terms if seq[t.name] == 0 and not _single_level(t, cells.sizes)]
+    if not dropped:
+        return _fit(cells, mom, terms, ss_type)
+    kept = tuple(t for t in terms if t not in dropped)
+    fit = _fit(cells, mom, kept, ss_type)
+    partners = {}
+    for t in dropped:
+        earlier = [s for s in terms[: terms.index(t)] if s in kept]
+        partners[t.name] = _confounded_with(Xw, slices, t, earlier)
+    carried = {}
+    for d, ps in partners.items():
+        for p_ in ps:
+            carried.setdefault(p_, []).append(d)
+    rows = {r.term: r for r in fit.table}
+    table = []
+    for t in terms:
+        if t in dropped:
+            df_full = 1
+            for f in t.factors:
+                df_full *= cells.sizes[f] - 1
+            with_ = ", ".join(partners[t.name]) or "earlier terms"
+            table.append(TermSS(t.name, 0, df_full, float("nan"), t.is_block,
+                                f"inestimable: completely confounded with {with_}; left out of "
+                                "the model, its effect (if any) is counted there"))
+        else:
+            r = rows[t.name]
+            table.append(TermSS(r.term, r.df, r.df_full, r.sum_sq, r.is_block, r.note,
+                                tuple(carried.get(t.name, ()))))
+    from dataclasses import replace
+
+    return replace(fit, table=tuple(table), left_out=tuple(t.name for t in dropped))
+
+
+def _single_level(t: Term, sizes) -> bool:
+    return any(sizes[f] < 2 for f in t.factors)
+
+
+def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
     if ss_type not in (2, 3):
         raise UsageError(f"sums of squares type {ss_type!r} is not supported; use 2 or 3")
     terms = tuple(terms)
@@ -227,7 +311,10 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
         for f in t.factors:
             df_full *= sizes[f] - 1
         note = None
-        if df == 0:
+        if df_full == 0:
+            note = "no effect to estimate: a factor in this term has a single level"
+            ss = float("nan")
+        elif df == 0:
             note = "inestimable: the observed cells cannot separate this effect from the others"
             ss = float("nan")
         elif df < df_full:

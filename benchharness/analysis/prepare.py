@@ -88,6 +88,9 @@ def _code(series, listed: Sequence[str] | None, name: str):
                             f"listed in the experiment ({', '.join(map(repr, listed))})")
         return codes, tuple(listed)
     codes, uniques = pd.factorize(text, sort=False)
+    if (codes < 0).any():
+        raise DataError(f"factor {name!r} has no level in {int((codes < 0).sum())} row(s); "
+                        "give every row a level")
     return codes.astype(np.int64), tuple(str(u) for u in uniques)
 
 
@@ -145,14 +148,27 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
 
     # block column
     order_blocked = getattr(exp, "order", None) == "blocked"
+    has_hosts = "host" in columns and df["host"].astype(str).nunique() > 1
     if block is False or block == "":
         block = None
     elif block is None or block == "auto":
         block = None
-        if order_blocked and "block" in columns:
+        if "block" in columns and (order_blocked or (
+                has_hosts and df["block"].astype(str).nunique() > 1)):
+            # On a cluster every replicate is a complete block run on one host,
+            # so blocks are nested in hosts and the block term absorbs hosts.
             block = "block"
-        elif "host" in columns and df["host"].astype(str).nunique() > 1:
+        elif has_hosts:
             block = "host"
+    if block == "block" and has_hosts:
+        spread = df.groupby(df["block"].astype(str), sort=False)["host"].nunique()
+        if (spread > 1).any():
+            pair = "block@host"
+            df = df.assign(**{pair: df["block"].astype(str) + "@" + df["host"].astype(str)})
+            columns.add(pair)
+            notes.append(f"{int((spread > 1).sum())} block(s) ran partly on another host (a "
+                         "worker was lost); (block, host) pairs are used as blocks")
+            block = pair
     if block is not None:
         if block not in columns:
             raise DataError(f"no block column {block!r} in the data")
@@ -202,8 +218,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
                 "flag": "timeouts" if n_lost["timeout"][cell] else None,
             })
 
-    y_text = df[response]
-    y = pd.to_numeric(y_text, errors="coerce").to_numpy(dtype=float)
+    y_col = df[response]
+    if pd.api.types.is_numeric_dtype(y_col.dtype):
+        y = y_col.to_numpy(dtype=float)
+    else:
+        y = pd.to_numeric(y_col, errors="coerce").to_numpy(dtype=float)
     use = ok & np.isfinite(y)
     bad_y = int((ok & ~np.isfinite(y)).sum())
     if bad_y:
@@ -246,15 +265,32 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     def numeric(col):
         if col not in columns:
             return None
-        v = pd.to_numeric(df[col], errors="coerce").to_numpy(dtype=float)[use]
+        col_s = df[col]
+        if pd.api.types.is_numeric_dtype(col_s.dtype):
+            v = col_s.to_numpy(dtype=float)[use]
+        else:
+            v = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
         return v if np.isfinite(v).all() else None
 
     run = numeric("run")
     position = numeric("position")
+    extra = {}
+    if has_hosts and block in ("block", "block@host"):
+        hc, hl = _code(df["host"].astype(str), None, "host")
+        hsel = hc[use]
+        present = np.unique(hsel)
+        if len(present) > 1:
+            remap = -np.ones(len(hl), dtype=np.int64)
+            remap[present] = np.arange(len(present))
+            extra["host_codes"] = remap[hsel]
+            extra["host_levels"] = tuple(hl[i] for i in present)
+    if "load_1m" in columns:  # machine load at the start of each run (runs.csv column)
+        col_s = df["load_1m"]
+        extra["load_1m"] = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
     return Prepared(
         response=response, factors=tuple(factors), levels=tuple(levels),
         codes=tuple(c[use] for c in codes), block=block, block_levels=tuple(block_levels),
         block_codes=block_codes, y=y[use], run=run, position=position,
         status_counts=status_counts, notes=tuple(notes), experiment=exp,
-        order_source=order_source,
+        order_source=order_source, extra=extra,
     )

@@ -17,7 +17,7 @@ def _g(x, digits=4):
     if x == 0:
         return "0"
     a = abs(x)
-    if a >= 1e5 or a < 1e-3:
+    if a >= 10 ** max(digits + 1, 5) or a < 1e-3:
         return f"{x:.{digits - 1}e}"
     return f"{x:.{digits}g}"
 
@@ -61,28 +61,39 @@ def format_analysis(a) -> str:
     lines.append("")
     rows = []
     for r in d["anova"]:
-        rows.append([r["term"], _g(r["df"]), _g(r["sum_sq"]), _g(r["mean_sq"]), _g(r["F"]),
+        label = r["term"] + (f" (+ {', '.join(r['aliases'])})" if r.get("aliases") else "")
+        rows.append([label, _g(r["df"]), _g(r["sum_sq"], 7), _g(r["mean_sq"], 7), _g(r["F"]),
                      _p(r["p"]), _g(r["partial_eta_sq"], 3), _g(r["omega_sq"], 3)])
     lines += _table(["Source", "df", "Sum of squares", "Mean square", "F", "p",
                      "partial η²", "ω²"], rows, "<>>>>>>>")
     lines.append("")
     if d["effects"]:
         lines.append("Effects (each level against its reference)")
+        if t["name"] != "log":
+            lines.append("  (ratios of back-transformed means; their intervals are approximate"
+                         + (", differences are exact" if t["name"] == "none" else "") + ")")
         for e in d["effects"]:
             lines.append("  " + e["wording"])
         lines.append("")
     dg = d["diagnostics"]
     lines.append("Diagnostics")
     for key, label in (("normality", "normality"), ("equal_variance", "equal variances"),
-                       ("drift", "drift")):
+                       ("drift", "drift"), ("load", "machine load")):
+        if key not in dg:
+            continue
         item = dg.get(key) or {}
         test = item.get("test")
         extra = f" [{test}, p {_p(item.get('p'))}]" if test else (
             f" [p {_p(item.get('p'))}]" if item.get("p") is not None else "")
         lines.append(f"  {label}: {item.get('verdict', '-')}{extra}")
-    oc = dg.get("outlier_check")
-    if oc:
-        lines.append(f"  outliers: {oc['verdict']}")
+    if dg.get("hosts"):
+        h = dg["hosts"]
+        b, w = h["between_hosts"], h["blocks_within_hosts"]
+        lines.append(f"  hosts ({len(h['hosts'])}): {h['verdict']} [between hosts: df {b['df']}, "
+                     f"SS {_g(b['sum_sq'])}, p {_p(b['p'])}; blocks within hosts: df {w['df']}, "
+                     f"SS {_g(w['sum_sq'])}]")
+    if dg.get("outlier_verdict"):
+        lines.append(f"  outliers: {dg['outlier_verdict']}")
         for o in dg["outliers"][:10]:
             lines.append(f"    run {o['run']}: studentized residual {o['studentized']:+.2f}")
     for s in dg.get("small_cells", [])[:10]:
@@ -105,15 +116,25 @@ def format_analysis(a) -> str:
                      f"{len(d['comparisons'])})")
         label = {"pairwise": f"pairwise ({d['model']['adjust']})", "tukey": "Tukey HSD",
                  "simple": "simple effect (holm)", "declared": "declared"}
+        diff = t["name"] == "none"
         rows = []
         for x in shown[:40]:
             within = f" within {_levels(x['within'])}" if x["within"] else ""
+            if diff:
+                est = [_g(x.get("difference")),
+                       f"[{_g(x.get('difference_lower'))}, {_g(x.get('difference_upper'))}]"]
+            else:
+                est = [_g(x["ratio"]), f"[{_g(x['lower'])}, {_g(x['upper'])}]"]
             rows.append([label[x["method"]], f"{x['factor']}: {x['a']} vs {x['b']}{within}",
-                         _g(x["ratio"]), f"[{_g(x['lower'])}, {_g(x['upper'])}]",
-                         _p(x["p_adj"])])
+                         *est, _p(x["p_adj"])])
+        if not rows:
+            lines.append("  none")
         if rows:
-            lines += ["  " + s for s in _table(["method", "comparison", "ratio", "interval",
-                                                "p adj"], rows, "<<>>>")]
+            head = ["method", "comparison", "difference" if diff else "ratio", "interval",
+                    "p adj"]
+            lines += ["  " + s for s in _table(head, rows, "<<>>>")]
+        if len(shown) > 40:
+            lines.append(f"  ... {len(shown) - 40} more in the JSON output")
         lines.append("")
     if d["notes"]:
         lines.append("Notes")

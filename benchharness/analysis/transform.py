@@ -33,8 +33,8 @@ class Profile:
     lam_hat: float
     ci: tuple[float, float]
     ci_open: tuple[bool, bool]      # True where the interval reached the search edge
-    grid: tuple[float, ...]         # λ values of the coarse profile (for plots)
-    loglik: tuple[float, ...]       # profile log-likelihood on the grid
+    grid: tuple[float, ...]         # every λ evaluated, sorted (coarse grid + refinement)
+    loglik: tuple[float, ...]       # profile log-likelihood at those λ
     loglik_max: float
 
 
@@ -57,6 +57,7 @@ class BoxCoxProfile:
         self.m = m1 + corr
         d -= corr[row_cell]
         self.d = d
+        self._buf = np.empty_like(d)
         self.ss_log = float(np.bincount(row_cell, weights=d * d, minlength=self.C).sum())
         self.basis = basis  # None when the model reproduces every cell mean
 
@@ -65,9 +66,11 @@ class BoxCoxProfile:
         if abs(lam) < 1e-12:
             within, cm = self.ss_log, self.m
         else:
-            e = np.expm1(lam * self.d)
+            e = self._buf
+            np.multiply(self.d, lam, out=e)
+            np.expm1(e, out=e)
             s1 = np.bincount(self.row_cell, weights=e, minlength=self.C)
-            e *= e
+            np.multiply(e, e, out=e)
             s2 = np.bincount(self.row_cell, weights=e, minlength=self.C)
             a = np.exp(lam * self.m)
             within = float((a * a * np.maximum(s2 - s1 * s1 / self.n, 0.0)).sum()) / lam**2
@@ -85,52 +88,88 @@ class BoxCoxProfile:
         return -0.5 * self.N * math.log(rss_z / self.N)
 
     def profile(self, alpha: float = 0.05, lo: float = -2.0, hi: float = 2.0,
-                step: float = 0.25, limit: float = 5.0) -> Profile:
-        """λ̂ and its interval; the search widens past [lo, hi] up to ±limit when needed."""
+                step: float = 0.5, limit: float = 5.0) -> Profile:
+        """λ̂ and its interval; the search widens past [lo, hi] up to ±limit when needed.
+
+        A coarse grid locates the maximum; local quadratic (Newton) steps refine it,
+        falling back to bounded Brent; the interval ends are roots found by Brent's
+        method inside the grid bracket. Every λ is evaluated at most once.
+        """
         from scipy import optimize, stats
 
+        memo: dict[float, float] = {}
+
+        def L(t):
+            t = float(t)
+            if t not in memo:
+                memo[t] = self.loglik(t)
+            return memo[t]
+
         grid = list(np.round(np.arange(lo, hi + step / 2, step), 10))
-        ll = [self.loglik(g) for g in grid]
+        ll = [L(g) for g in grid]
         cut_half = 0.5 * stats.chi2.ppf(1 - alpha, 1)
         # widen the grid while the maximum or the interval reaches an edge
         while grid[0] > -limit and (int(np.argmax(ll)) == 0 or ll[0] > max(ll) - cut_half):
             grid.insert(0, round(grid[0] - step * 2, 10))
-            ll.insert(0, self.loglik(grid[0]))
+            ll.insert(0, L(grid[0]))
         while grid[-1] < limit and (int(np.argmax(ll)) == len(ll) - 1
                                     or ll[-1] > max(ll) - cut_half):
             grid.append(round(grid[-1] + step * 2, 10))
-            ll.append(self.loglik(grid[-1]))
+            ll.append(L(grid[-1]))
         grid, ll = np.array(grid), np.array(ll)
         lo, hi = float(grid[0]), float(grid[-1])
         i = int(np.argmax(ll))
-        a, b = grid[max(i - 1, 0)], grid[min(i + 1, len(grid) - 1)]
-        res = optimize.minimize_scalar(lambda t: -self.loglik(t), bounds=(a, b),
-                                       method="bounded", options={"xatol": 1e-4})
-        lam_hat = float(res.x)
-        lmax = -float(res.fun)
+        a, b = float(grid[max(i - 1, 0)]), float(grid[min(i + 1, len(grid) - 1)])
+        lam_hat = self._refine(L, float(grid[i]), a, b)
+        if lam_hat is None:
+            res = optimize.minimize_scalar(lambda t: -L(t), bounds=(a, b), method="bounded",
+                                           options={"xatol": 2e-4})
+            lam_hat = float(res.x)
+        lmax = L(lam_hat)
         if ll[i] > lmax:
             lam_hat, lmax = float(grid[i]), float(ll[i])
-        cut = lmax - 0.5 * stats.chi2.ppf(1 - alpha, 1)
+        cut = lmax - cut_half
 
-        def g(t):
-            return self.loglik(t) - cut
-
-        left = grid[grid < lam_hat][::-1]
-        right = grid[grid > lam_hat]
         ends, open_ = [], []
-        for side, edge in ((left, lo), (right, hi)):
-            below = [t for t in side if g(t) < 0]
-            if not below:
+        for side, edge in ((grid < lam_hat, lo), (grid > lam_hat, hi)):
+            idx = np.flatnonzero(side & (ll < cut))
+            if len(idx) == 0:
                 ends.append(float(edge))
                 open_.append(True)
                 continue
-            t_out = below[0]
-            ends.append(float(optimize.brentq(g, min(t_out, lam_hat), max(t_out, lam_hat),
-                                              xtol=1e-4)))
+            t_out = float(grid[idx[-1]] if edge == lo else grid[idx[0]])
+            # the nearest grid point still inside the interval narrows the bracket
+            inner = np.flatnonzero(side & (ll >= cut))
+            t_in = lam_hat
+            if len(inner):
+                cand = float(grid[inner[0]] if edge == lo else grid[inner[-1]])
+                if (edge == lo and t_out < cand < lam_hat) or (edge == hi and lam_hat < cand < t_out):
+                    t_in = cand
+            root = optimize.brentq(lambda t: L(t) - cut, min(t_out, t_in), max(t_out, t_in),
+                                   xtol=5e-4)
+            ends.append(float(root))
             open_.append(False)
+        pts = sorted((t, v) for t, v in memo.items() if math.isfinite(v))
         return Profile(lam_hat=lam_hat, ci=(ends[0], ends[1]), ci_open=(open_[0], open_[1]),
-                       grid=tuple(float(x) for x in grid), loglik=tuple(float(x) for x in ll),
+                       grid=tuple(t for t, _ in pts), loglik=tuple(v for _, v in pts),
                        loglik_max=lmax)
+
+    @staticmethod
+    def _refine(L, start, a, b, h=0.02, tol=2e-4, steps=6):
+        """Newton steps on a local quadratic; None when the quadratic misbehaves."""
+        x = start
+        for _ in range(steps):
+            f0, fm, fp = L(x), L(x - h), L(x + h)
+            curv = fp - 2 * f0 + fm
+            if not curv < 0:
+                return None
+            new = x - h * (fp - fm) / (2 * curv)
+            if not a - h <= new <= b + h:
+                return None
+            if abs(new - x) < tol:
+                return float(new)
+            x = float(np.round(new, 6))
+        return None
 
 
 @dataclass(frozen=True)

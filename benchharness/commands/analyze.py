@@ -29,13 +29,13 @@ def add_parser(sub) -> None:
     p.add_argument("--model", default=None, metavar="full|main|N",
                    help="all interactions (full), main effects only (main), or interactions "
                         "up to order N (default full; for a fractional design, the terms "
-                        "that are not aliased with each other)")
+                        "its resolution keeps apart)")
     p.add_argument("--ss-type", type=int, choices=[2, 3], default=2,
                    help="type of sums of squares (default 2)")
     p.add_argument("--alpha", type=float, default=0.05, help="significance level (default 0.05)")
     p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
-                   help="reference level of a factor for ratios (repeatable; default: the "
-                        "first level)")
+                   help="reference level of a factor for ratios (repeat the option for each "
+                        "factor; default: the first level)")
     p.add_argument("--adjust", choices=["holm", "bonferroni"], default="holm",
                    help="adjustment of pairwise comparisons (default holm)")
     p.add_argument("--art", action="store_true",
@@ -57,16 +57,18 @@ def main(args) -> int:
     if not 0 < args.alpha < 1:
         raise UsageError(f"--alpha {args.alpha}: must be between 0 and 1")
     block = False if args.no_block else args.block
-    exp = _experiment_of(args.source)
+    from benchharness.journal import is_results_folder, load_results
+
+    folder_res = load_results(args.source) if is_results_folder(args.source) else None
     model = args.model
     if model is None:
         model = "full"
-        if exp is not None:
-            # A fraction: only terms that are not aliased with each other (as after `run`).
+        if folder_res is not None and factors is None:
             from benchharness.analysis.fraction import default_model
 
-            order = default_model(exp)
-            model = order if order is not None else "full"
+            order = default_model(folder_res.experiment)
+            if order is not None:
+                model = order
     an = analyze(args.source, response=args.response, factors=factors, block=block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=args.alpha, reference=args.reference, adjust=args.adjust,
@@ -75,29 +77,16 @@ def main(args) -> int:
         sys.stdout.write(an.to_json() + "\n")
         return 0
     print(format_analysis(an), end="")
-    if exp is not None:
-        # Two-level fractions and confounded blocks: one estimate per alias chain.
+    if folder_res is not None and factors is None:
+        # Two-level fractions and confounded blocks: effects labelled with their aliases.
         from benchharness.analysis.fraction import format_fraction, fraction_analysis_for
-        from benchharness.journal import load_results
 
-        frac = fraction_analysis_for(exp, load_results(args.source).runs,
-                                     response=an.response,
+        frac = fraction_analysis_for(folder_res.experiment, folder_res.runs,
+                                     response=args.response,
                                      log=(an.transform or {}).get("name") != "none")
         if frac is not None:
-            print()
-            print(format_fraction(frac))
+            print("\n" + format_fraction(frac))
     if args.json:
         write_analysis_json(an, args.json)
         print(f"\nanalysis written to {args.json}")
     return 0
-
-
-def _experiment_of(source):
-    """The experiment of a results folder, or None for a CSV source."""
-    import os
-
-    if not os.path.isdir(source):
-        return None
-    from benchharness.journal import load_results
-
-    return load_results(source).experiment

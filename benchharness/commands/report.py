@@ -18,6 +18,8 @@ def add_parser(sub) -> None:
     p.add_argument("--factors", metavar="A,B", help="factor columns (required for a CSV)")
     p.add_argument("--response", metavar="COL", help="response column (default: the analysis' "
                    "response, else wall_s)")
+    p.add_argument("--tables", action="store_true",
+                   help="also print the analysis as tables in the terminal")
     p.set_defaults(func=main)
 
 
@@ -55,8 +57,13 @@ def main(args) -> int:
 
     rel = os.path.relpath(fig_root / "figures", md.parent)
     write_markdown(data, figs, md, compact=args.compact, figures_rel=rel)
-    from benchharness.report.story import verdict
+    if args.tables:
+        from benchharness.report.terminal import print_analysis
 
-    print(verdict(data)["headline"])
+        print_analysis(data)
+    else:
+        from benchharness.report.story import verdict
+
+        print(verdict(data)["headline"])
     print(f"reports: {html}\n         {md}\nfigures: {fig_root / 'figures'}")
     return 0

@@ -13,7 +13,7 @@ def print_summary(res, outcome) -> None:
     records = read_journal(res.path / "runs.jsonl")
     rows = cell_summary(records, exp.factor_names)
     order = {f: {lab: i for i, lab in enumerate(exp.levels_of(f))} for f in exp.factor_names}
-    rows.sort(key=lambda r: tuple(order[f].get(r[f], 0) for f in exp.factor_names))
+    rows.sort(key=lambda r: tuple(order[f].get(r["levels"][f], 0) for f in exp.factor_names))
     counts = outcome.counts
     seed_note = " (drawn; reproduce with --seed %d)" % outcome.seed \
         if res.session.get("seed_drawn") else ""
@@ -32,7 +32,7 @@ def print_summary(res, outcome) -> None:
             print(f"  ... and {len(reasons) - 5} other messages (see the message column of "
                   "runs.csv)")
     header = [*exp.factor_names, "runs ok", "median wall", "IQR", "failed", "timed out"]
-    table = [[*(str(r[f]) for f in exp.factor_names), str(r["n"]), format_seconds(r["median"]),
+    table = [[*(str(r["levels"][f]) for f in exp.factor_names), str(r["n"]), format_seconds(r["median"]),
               format_seconds(r["iqr"]), str(r["failed"]), str(r["timeout"])] for r in rows]
     if sys.stdout.isatty():
         from rich.console import Console

@@ -32,11 +32,14 @@ SECTIONS = (
 )
 
 _METHOD_WORDS = {
-    "pairwise": "pairwise t-tests on the model's error",
+    "pairwise": "pairwise",
     "tukey": "Tukey HSD",
-    "simple": "simple effects within levels of another factor (Holm)",
-    "declared": "comparisons declared in the experiment file",
+    "simple": "simple effect",
+    "declared": "declared",
 }
+
+#: Above this many comparisons the main table lists the significant ones only.
+MANY_COMPARISONS = 30
 
 
 def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
@@ -45,10 +48,10 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
     conf = story.confidence_pct(data)
     verdict = story.verdict(data)
     anova = []
-    ss_type = data.analysis.get("ss_type")
+    ss_type = data.analysis.get("ss_type") or (data.analysis.get("model") or {}).get("ss_type")
     for r in story.anova_rows(data):
         anova.append({
-            "term": r.get("term"), "df": fmt_num(r.get("df"), 4),
+            "term": r.get("term"), "df": _fmt_df(r.get("df")),
             "sum_sq": fmt_num(r.get("sum_sq"), 4), "mean_sq": fmt_num(r.get("mean_sq"), 4),
             "F": fmt_num(r.get("F"), 4), "p": fmt_p(r.get("p")),
             "eta": fmt_num(r.get("partial_eta_sq"), 2), "omega": fmt_num(r.get("omega_sq"), 2),
@@ -90,8 +93,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         })
     diags = []
     for d in story.diagnostic_items(data):
-        diags.append({**d, "statistic": fmt_num(d["statistic"]) if d["statistic"] is not None
-                      else "", "p": fmt_p(d["p"]) if d["p"] is not None else ""})
+        diags.append({**d, "p": fmt_p(d["p"]) if d["p"] is not None else ""})
     art = data.analysis.get("art") or (data.analysis.get("diagnostics") or {}).get("art")
     if isinstance(art, dict) and art.get("terms"):
         art = {**art, "terms": [{**t, "p_text": fmt_p(t.get("p")),
@@ -131,13 +133,17 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "has_difference": has_diff,
         "level_means": level_means,
         "comparisons": comps,
+        "comparisons_main": ([c for c in comps if c["significant"]]
+                             if len(comps) > MANY_COMPARISONS else comps),
+        "comparisons_split": len(comps) > MANY_COMPARISONS,
+        "adjust": (data.analysis.get("model") or {}).get("adjust"),
         "comparisons_total": len(comps_all),
         "comparisons_shown": len(comps),
         "diagnostics": diags,
         "rank_check": art,
         "notes": [str(n) for n in data.analysis.get("notes") or []],
         "report_command": report_command(data),
-        "warnings": story.warnings(data, figs.notes),
+        "warnings": story.warnings(data, list(figs.notes) + list(data.extra_notes)),
         "cells": cells,
         "cells_total": n_cells_total,
         "factors": list(data.factors),
@@ -150,10 +156,30 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "figures_diagnostics": figs.by_section("diagnostics"),
         "figures": figs.figures,
         "sections": SECTIONS,
+        "extra": [_extra_section(x) for x in data.extra],
         "generated": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "version": _version(),
         "compact": compact,
     }
+
+
+def _extra_section(sec) -> dict:
+    rec = sec.get("recommendation") or {}
+    return {
+        "id": str(sec.get("id") or "extra"),
+        "title": str(sec.get("title") or "More"),
+        "recommendation": ", ".join(f"{k}={v}" for k, v in dict(rec).items()),
+        "summary": [str(x) for x in sec.get("summary") or []],
+        "columns": [str(c) for c in sec.get("columns") or []],
+        "rows": [[str(x) for x in r] for r in sec.get("rows") or []],
+        "notes": [str(x) for x in sec.get("notes") or []],
+    }
+
+
+def _fmt_df(df) -> str:
+    if finite(df) and float(df) == int(float(df)):
+        return str(int(float(df)))
+    return fmt_num(df, 4)
 
 
 def report_command(data: ReportData) -> str:

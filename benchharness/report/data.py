@@ -37,6 +37,10 @@ class ReportData:
     source: str = ""
     reproduce: str | None = None
     block: str | None = None
+    # Sections contributed by other capabilities: {id, title, summary, columns, rows, notes}
+    extra: tuple = ()
+    extra_notes: tuple = ()
+    better: str | None = None       # "lower" | "higher" when the metric declares it
 
     @property
     def alpha(self) -> float:
@@ -92,11 +96,15 @@ def _json_default(o):
     return str(o)
 
 
-def _levels_from(runs, factors, experiment) -> dict[str, tuple[str, ...]]:
+def _levels_from(runs, factors, experiment, adict=None) -> dict[str, tuple[str, ...]]:
     levels: dict[str, tuple[str, ...]] = {}
+    analysed = {}
+    for f in (adict or {}).get("factors") or []:
+        if isinstance(f, Mapping) and f.get("levels"):
+            analysed[str(f.get("name"))] = tuple(str(x) for x in f["levels"])
     for f in factors:
-        listed = None
-        if experiment is not None:
+        listed = analysed.get(f)
+        if experiment is not None and listed is None:
             try:
                 listed = tuple(experiment.levels_of(f))
             except Exception:  # a CSV factor the experiment does not declare
@@ -213,6 +221,8 @@ def collect(source, *, analysis=None, response: str | None = None,
     if missing:
         raise DataError(f"{src_text}: no column named {missing[0]!r} "
                         f"(columns: {', '.join(map(str, runs.columns))})")
+    raw_runs = runs
+    user_block = block
     runs = runs.copy()
     for f in factors:
         runs[f] = runs[f].astype(str)
@@ -237,8 +247,9 @@ def collect(source, *, analysis=None, response: str | None = None,
             raise DataError(f"{src_text}: no analysis to report")
         from benchharness import analyze
 
-        obj = analyze(runs, response=response or "wall_s", factors=factors, block=block,
-                      **analyze_kwargs)
+        target = raw_runs if isinstance(source, pd.DataFrame) else Path(source)
+        obj = analyze(target, response=response or "wall_s", factors=factors,
+                      block=user_block, **analyze_kwargs)
         adict = _as_dict(obj)
     adict = _jsonable(adict)
     response = adict.get("response") or response or "wall_s"
@@ -256,7 +267,7 @@ def collect(source, *, analysis=None, response: str | None = None,
             if cand in terms and cand in runs.columns and cand not in factors:
                 block = cand
 
-    levels = _levels_from(runs, factors, experiment)
+    levels = _levels_from(runs, factors, experiment, adict)
 
     residuals = None
     if obj is not None and not isinstance(obj, Mapping):
@@ -270,9 +281,13 @@ def collect(source, *, analysis=None, response: str | None = None,
             residuals = model.residual_table(runs, adict, factors, block)
         except (KeyError, ValueError) as exc:  # e.g. a response with no usable values
             raise DataError(f"{src_text}: cannot compute residuals: {exc}") from exc
-    profile = _normalise_profile(profile)
-    if profile is None:
-        profile = model.boxcox_profile(runs, adict, factors, block)
+    # A fine profile of our own (cheap: one projection per λ); the analysis' coarse
+    # grid is the fallback.
+    stored = _normalise_profile(profile)
+    fine = None
+    if stored is None or len(runs) <= 50_000:  # above: the analysis' own grid
+        fine = model.boxcox_profile(runs, adict, factors, block)
+    profile = fine if fine is not None else stored
 
     design = _design_of(experiment, runs, factors, levels)
     seed = _seed_used(session, experiment)
@@ -281,14 +296,60 @@ def collect(source, *, analysis=None, response: str | None = None,
         design["run_from"] = session["cwd"]
     if session.get("benchharness_version"):
         design["version"] = session["benchharness_version"]
-    name = getattr(experiment, "name", None) or (folder.name if folder else Path(src_text).stem)
+    extra, extra_notes = _extra_sections(folder, experiment, response)
+    better = _declared_metric(folder, response)
+    name = getattr(experiment, "name", None) or (
+        folder.name if folder else "experiment" if src_text == "<table>" else Path(src_text).stem)
     about = getattr(experiment, "about", None) or ""
     return ReportData(
         name=str(name), about=str(about), response=response, factors=tuple(factors),
         levels=levels, analysis=adict, runs=runs, residuals=residuals, profile=profile,
         design=design, host=host, folder=folder, source=src_text,
         reproduce=_reproduce_command(folder, experiment, seed, session), block=block,
+        extra=tuple(extra), extra_notes=tuple(extra_notes), better=better,
     )
+
+
+def _declared_metric(folder, response) -> str | None:
+    """Direction (and unit) of a custom metric from the folder's metrics.json."""
+    if folder is None or not (folder / "metrics.json").exists():
+        return None
+    try:
+        info = json.loads((folder / "metrics.json").read_text()).get(response)
+    except (ValueError, AttributeError):
+        return None
+    if not isinstance(info, Mapping):
+        return None
+    from benchharness.report.units import declare_unit
+
+    declare_unit(response, str(info.get("unit") or ""))
+    better = info.get("better")
+    return better if better in ("lower", "higher") else None
+
+
+def _extra_sections(folder, experiment, response):
+    """Sections of later capabilities that the experiment file asks for.
+
+    `choose:` -> "Choosing a default" (benchharness.choose.choice_section). A section
+    that cannot be computed becomes a one-line note instead.
+    """
+    from benchharness.errors import BenchharnessError
+
+    sections, notes = [], []
+    wanted = getattr(experiment, "sections", None) or {}
+    if folder is not None and "choose" in wanted:
+        try:
+            from benchharness.choose import choice_section
+        except ImportError:
+            choice_section = None
+        if choice_section is not None:
+            try:
+                sec = dict(choice_section(folder))
+                sec.setdefault("id", "choose")
+                sections.append(sec)
+            except BenchharnessError as exc:
+                notes.append(f"No default could be chosen: {exc}")
+    return sections, notes
 
 
 def _factor_names(adict: Mapping) -> list[str]:

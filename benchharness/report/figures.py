@@ -37,6 +37,7 @@ MUTED = "#8a8a8a"         # not significant, reference lines
 INK = "#222222"
 
 MAX_POINTS_PER_CELL = 2000
+MAX_POINTS_DISTRIBUTIONS = 40000   # over all cells of the distribution plot
 MAX_SCATTER = 20000
 
 
@@ -107,48 +108,49 @@ def _new(width_in: float, height_in: float):
 
 
 def _render(fig, name, title, caption, section="effects", highlight=False,
-            dpi: int = 110) -> Figure:
+            dpi: int = 100) -> Figure:
+    """Draw once with Agg for the PNG, then reuse that layout for the SVG."""
+    import numpy as np
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.backends.backend_svg import FigureCanvasSVG
 
-    FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, facecolor="white")
-    png = _compress_png(buf.getvalue())
-    w, h = fig.get_size_inches()
+    canvas = FigureCanvasAgg(fig)
+    fig.set_dpi(dpi)
+    fig.set_facecolor("white")
+    canvas.draw()
+    width, height = canvas.get_width_height()
+    png = _encode_png(np.asarray(canvas.buffer_rgba()))
     fig.set_layout_engine("none")  # keep the layout just computed; the SVG reuses it
     FigureCanvasSVG(fig)
     sbuf = io.StringIO()
-    fig.savefig(sbuf, format="svg", facecolor="white", metadata={"Date": None})
+    fig.savefig(sbuf, format="svg", facecolor="white", metadata={"Date": None}, dpi=dpi)
     return Figure(name=name, title=title, caption=caption, png=png, svg=sbuf.getvalue(),
-                  width_px=int(round(w * dpi)), height_px=int(round(h * dpi)),
-                  highlight=highlight, section=section)
+                  width_px=int(width), height_px=int(height), highlight=highlight,
+                  section=section)
 
 
-def _compress_png(raw: bytes) -> bytes:
-    """Quantise to an adaptive 256-colour palette: plots have few colours."""
-    try:
-        from PIL import Image
-    except ImportError:  # pragma: no cover - Pillow ships with matplotlib
-        return raw
-    img = Image.open(io.BytesIO(raw)).convert("RGB")
+def _encode_png(rgba) -> bytes:
+    """PNG of an RGBA buffer, quantised to an adaptive 256-colour palette (plots have few
+    colours, so the file shrinks several times at no visible cost)."""
+    from PIL import Image
+
+    img = Image.fromarray(rgba[..., :3].copy())
     q = img.quantize(colors=256, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
     out = io.BytesIO()
-    q.save(out, format="PNG", optimize=True)
-    data = out.getvalue()
-    return data if len(data) < len(raw) else raw
+    q.save(out, format="PNG", optimize=False, compress_level=9)
+    return out.getvalue()
 
 
 def _log_ticks(axis, lo: float, hi: float) -> None:
     """Readable ticks on a log axis: plain numbers, linear steps for a narrow range."""
-    from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter
+    from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullLocator
 
-    if lo > 0 and hi / lo < 20:
+    if lo > 0 and hi / lo < 4:
         axis.set_major_locator(MaxNLocator(nbins=6, steps=[1, 2, 2.5, 5, 10]))
     else:
         axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
     axis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
-    axis.set_minor_formatter(NullFormatter())
+    axis.set_minor_locator(NullLocator())  # minor ticks cost draw time and add nothing here
 
 
 def _wrap(label: str, width: int = 14) -> str:
@@ -212,10 +214,9 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
 
     inner_combos = list(itertools.product(*[data.levels[f] for f in inner]))
     n_in = len(inner_combos)
-    codes = {}
-    keys = ok[factors].astype(str).to_numpy()
-    for idx, key in enumerate(map(tuple, keys)):
-        codes.setdefault(key, []).append(idx)
+    frame = ok[factors].astype(str).reset_index(drop=True)
+    codes = {(k if isinstance(k, tuple) else (k,)): v
+             for k, v in frame.groupby(factors, observed=True, sort=False).indices.items()}
     color_of = dict(zip(data.levels[f1], _colors(len(data.levels[f1]))))
     width = min(13.0, max(5.0, 1.4 + len(cols) * (0.6 + 0.42 * n_in)))
     height = min(3.2 * len(rows) + 0.9, 30.0)
@@ -223,10 +224,19 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
     axes = fig.subplots(len(rows), len(cols), squeeze=False, sharey=True)
     subsampled = 0
     logax = _use_log_axis(data, y)
-    tick_text = ["\n".join(_wrap(x, 10) for x in c) if len(c) > 1 else _wrap(c[0])
-                 for c in inner_combos]
-    longest = max((len(t) for c in inner_combos for t in c), default=1)
+    max_points = min(max_points, max(200, MAX_POINTS_DISTRIBUTIONS // max(1, len(codes))))
+    per_cell = len(yv) / max(1, len(codes))
+    dot = 16 if per_cell <= 20 else 9 if per_cell <= 200 else 5
+    # Ticks name the inner factors after the first; the first is told by colour (legend).
+    if len(inner) == 1:
+        tick_text = [_wrap(c[0]) for c in inner_combos]
+        raw = [c[0] for c in inner_combos]
+    else:
+        raw = [" · ".join(c[1:]) for c in inner_combos]
+        tick_text = [_wrap(t) for t in raw]
+    longest = max((len(t) for t in raw), default=1)
     rot = 30 if n_in * min(longest, 14) > 40 else 0
+    group = len(inner_combos) // max(1, len(data.levels[f1]))
     for ri, rv in enumerate(rows):
         for ci, cv in enumerate(cols):
             ax = axes[ri][ci]
@@ -240,7 +250,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
                     lv[row_f] = rv
                 key = tuple(lv[f] for f in factors)
                 idx = codes.get(key)
-                if not idx:
+                if idx is None or len(idx) == 0:
                     continue
                 vals = yv[idx]
                 boxes.append(vals)
@@ -254,19 +264,16 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
                 py.append(pts)
                 pc += [color_of[lv[f1]]] * len(pts)
             if boxes:
-                bp = ax.boxplot(boxes, positions=positions, widths=0.62, showfliers=False,
-                                patch_artist=True, medianprops={"color": INK, "lw": 1.4},
-                                whiskerprops={"color": "#555555"}, capprops={"color": "#555555"},
-                                boxprops={"lw": 0.8, "edgecolor": "#555555"})
-                for patch, c in zip(bp["boxes"], colors):
-                    patch.set_facecolor(c)
-                    patch.set_alpha(0.28)
-                ax.scatter(np.concatenate(px), np.concatenate(py), s=7, c=pc, alpha=0.55,
+                _boxes(ax, boxes, positions, colors)
+                ax.scatter(np.concatenate(px), np.concatenate(py), s=dot, c=pc, alpha=0.6,
                            linewidths=0, rasterized=True, zorder=3)
             ax.set_xticks(range(n_in))
             ax.set_xticklabels(tick_text, rotation=rot, ha="right" if rot else "center",
                                fontsize=8.5)
             ax.set_xlim(-0.6, n_in - 0.4)
+            if len(inner) > 1:
+                for g in range(1, len(data.levels[f1])):
+                    ax.axvline(g * group - 0.5, color="#cccccc", lw=0.8, zorder=1)
             if logax:
                 ax.set_yscale("log")
                 _log_ticks(ax.yaxis, float(yv.min()), float(yv.max()))
@@ -281,8 +288,15 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
                 ax.set_ylabel(axis_label(data.response, unit)
                               + (" — log axis" if logax else ""))
             if ri == len(rows) - 1:
-                ax.set_xlabel(" · ".join(inner))
+                ax.set_xlabel(" · ".join(inner[1:]) if len(inner) > 1 else f1)
             ax.grid(axis="x", visible=False)
+    if len(inner) > 1:
+        from matplotlib.patches import Patch
+
+        handles = [Patch(facecolor=color_of[lv], alpha=0.6, edgecolor="#555555", label=_wrap(lv))
+                   for lv in data.levels[f1]]
+        fig.legend(handles=handles, title=f1, loc="outside upper center",
+                   ncols=min(6, len(handles)), fontsize=8.5, title_fontsize=9)
     note = None
     if subsampled:
         note = (f"The distribution plot draws a random {max_points:,} of the runs in each of "
@@ -293,6 +307,37 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
         cap += " " + note
     return _render(fig, "distributions", f"Runs per cell: {describe(data.response)}", cap,
                    "effects"), note
+
+
+def _boxes(ax, groups, positions, colors, width: float = 0.62) -> None:
+    """Box plots drawn as three collections per panel (cheap for hundreds of cells).
+
+    Box: first to third quartile; line: median; whiskers: the furthest runs within
+    1.5 × IQR of the box (Tukey 1977).
+    """
+    import numpy as np
+    from matplotlib.collections import LineCollection, PolyCollection
+
+    rects, segs, meds = [], [], []
+    half = width / 2
+    for vals, x in zip(groups, positions):
+        q1, med, q3 = np.percentile(vals, [25, 50, 75])
+        iqr = q3 - q1
+        lo = vals[vals >= q1 - 1.5 * iqr].min()
+        hi = vals[vals <= q3 + 1.5 * iqr].max()
+        rects.append([(x - half, q1), (x + half, q1), (x + half, q3), (x - half, q3)])
+        segs += [[(x, q3), (x, hi)], [(x, q1), (x, lo)],
+                 [(x - half / 2, hi), (x + half / 2, hi)], [(x - half / 2, lo), (x + half / 2, lo)]]
+        meds.append([(x - half, med), (x + half, med)])
+    from matplotlib.colors import to_rgba
+
+    ax.add_collection(PolyCollection(rects, facecolors=[to_rgba(c, 0.28) for c in colors],
+                                     edgecolors="#555555", linewidths=0.8, zorder=2))
+    ax.add_collection(LineCollection(segs, colors="#555555", linewidths=0.9, zorder=2))
+    ax.add_collection(LineCollection(meds, colors=INK, linewidths=1.4, zorder=4))
+    ax.update_datalim([(min(positions) - half, min(r[0][1] for r in rects)),
+                       (max(positions) + half, max(r[2][1] for r in rects))])
+    ax.autoscale_view()
 
 
 def _pair_means(data: ReportData, a: str, b: str):
@@ -338,7 +383,7 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
     la, lb = list(data.levels[a]), list(data.levels[b])
     vals = [v[0] for v in means.values() if finite(v[0])]
     mult, unit = display_scale(data.response, float(np.median(vals)) if vals else None)
-    fig = _new(min(8.5, 3.6 + 0.55 * len(la)), 3.5)
+    fig = _new(min(9.5, 4.6 + 0.55 * len(la)), 3.5)
     ax = fig.subplots()
     colors = _colors(len(lb))
     dodge = 0.06 if len(lb) > 1 else 0.0
@@ -370,7 +415,8 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
         _log_ticks(ax.yaxis, lo_y, hi_y)
     ax.set_ylabel(("mean " if from_model else "geometric mean ")
                   + axis_label(data.response, unit))
-    ax.legend(title=b, fontsize=8.5, title_fontsize=9, loc="best")
+    ax.legend(title=b, fontsize=8.5, title_fontsize=9, loc="center left",
+              bbox_to_anchor=(1.01, 0.5))
     if significant:
         status = f"interaction significant, p {_pw(p)}"
         ax.set_title(f"{a} × {b}: {status}", color=ACCENT, fontweight="bold")
@@ -384,7 +430,8 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
     if logscale:
         ax.set_ylabel(ax.get_ylabel() + " — log axis")
     conf = f"{round((1 - data.alpha) * 100):g}%"
-    cap = (f"Estimated mean of each {a} × {b} combination with its {conf} interval; one line "
+    cap = f"Significant interaction (p {_pw(p)}). " if significant else ""
+    cap += (f"Estimated mean of each {a} × {b} combination with its {conf} interval; one line "
            f"per level of {b}. Parallel lines mean the effect of {a} is the same at every "
            f"level of {b}; crossing or diverging lines mean it is not.")
     if logscale:
@@ -531,7 +578,7 @@ def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
     idx, note = _scatter_subsample(len(res), rng)
     sub = res.iloc[idx]
     f1 = data.factors[0]
-    fig = _new(6.0, 3.8)
+    fig = _new(7.2, 3.8)
     ax = fig.subplots()
     for lv, c in zip(data.levels[f1], _colors(len(data.levels[f1]))):
         part = sub[sub[f1] == lv]
@@ -553,7 +600,8 @@ def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
     ax.set_xlabel("fitted value, " + ("ln scale" if tr == "log" else _scale_text(data)))
     ax.set_ylabel(residual_label(data))
     ax.set_title("Residuals against fitted values")
-    ax.legend(title=f1, fontsize=8, title_fontsize=8.5, loc="best", markerscale=1.5)
+    ax.legend(title=f1, fontsize=8, title_fontsize=8.5, loc="center left",
+              bbox_to_anchor=(1.01, 0.5), markerscale=1.5)
     cap = ("Each dot is one run: its deviation from its cell's fitted value. An even band "
            "around zero is what the model assumes; a funnel means the spread grows with the "
            "value (a transform helps).")
@@ -567,12 +615,12 @@ def resid_position(data: ReportData, rng) -> Figure | None:
     import numpy as np
 
     res = data.residuals
-    if res is None or len(res) < 3:
-        return None
+    if res is None or len(res) < 3 or "position" not in data.runs.columns:
+        return None  # run order unknown (e.g. a CSV without a position column)
     pos = res["position"].to_numpy(dtype=float)
     r = res["residual"].to_numpy(dtype=float)
     idx, _ = _scatter_subsample(len(res), rng)
-    fig = _new(7.0, 3.4)
+    fig = _new(8.6, 3.4)
     ax = fig.subplots()
     ax.scatter(pos[idx], r[idx], s=8, color=PALETTE[0], alpha=0.5, linewidths=0,
                rasterized=True, label="run")
@@ -591,14 +639,14 @@ def resid_position(data: ReportData, rng) -> Figure | None:
         xs = np.array([pos.min(), pos.max()])
         ax.plot(xs, inter + slope * xs, color=ACCENT if concern else MUTED, lw=1.4, ls="--",
                 label="straight-line trend")
-    ax.set_xlabel("run position (0 = first timed run)")
+    ax.set_xlabel("run position in the execution order (warm-up runs count)")
     ax.set_ylabel(residual_label(data))
     title = "Residuals in run order"
     if finite(p):
         title += f": trend p {_pw(p)}"
     ax.set_title(title, color=ACCENT if concern else INK,
                  fontweight="bold" if concern else "normal")
-    ax.legend(fontsize=8, loc="best")
+    ax.legend(fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     cap = ("Residuals in the order the runs were executed. A slope or a step means the "
            "machine changed during the experiment (warming up, throttling, other load); "
            "randomised order keeps that from biasing the effects but it still widens intervals.")
@@ -619,7 +667,7 @@ def boxcox_plot(data: ReportData) -> Figure | None:
     if len(lam) < 3:
         return None
     tr = data.analysis.get("transform") or {}
-    fig = _new(5.6, 3.6)
+    fig = _new(7.6, 3.6)
     ax = fig.subplots()
     ax.plot(lam, ll, color=PALETTE[0], lw=1.8, label="profile log-likelihood")
     top = float(ll.max())
@@ -643,7 +691,7 @@ def boxcox_plot(data: ReportData) -> Figure | None:
     ax.set_xlabel("λ (Box-Cox power: 1 = as measured, 0 = log, −1 = reciprocal)")
     ax.set_ylabel("log-likelihood")
     ax.set_title("Box-Cox profile likelihood")
-    ax.legend(fontsize=7.5, loc="best")
+    ax.legend(fontsize=7.5, loc="upper left", bbox_to_anchor=(1.01, 1.0))
     cap = ("How well each power transform of the response fits the model. The peak is the "
            "best-fitting λ; every λ above the dotted line is consistent with the data. "
            "The thick line is the transform the analysis used.")
@@ -663,28 +711,40 @@ def make_figures(data: ReportData, seed: int = 0,
 
     rng = np.random.default_rng(seed)
     out = FigureSet()
+    seen: dict[str, int] = {}
+
+    def add(fig):
+        # two factor names may share a slug ("a b", "a-b"): keep every file
+        n = seen.get(fig.name, 0)
+        seen[fig.name] = n + 1
+        if n:
+            from dataclasses import replace
+
+            fig = replace(fig, name=f"{fig.name}-{n + 1}")
+        out.figures.append(fig)
+
     with matplotlib.rc_context(_rc()):
         fig, note = distributions(data, rng, max_points=max_points)
-        out.figures.append(fig)
+        add(fig)
         if note:
             out.notes.append(note)
         eff = effects_plot(data)
         if eff is not None:
-            out.figures.append(eff)
+            add(eff)
         for a, b in interaction_pairs(data):
-            out.figures.append(interaction(data, a, b))
+            add(interaction(data, a, b))
         qq = qq_plot(data)
         if qq is not None:
-            out.figures.append(qq)
+            add(qq)
         rf, note = resid_fitted(data, rng)
         if rf is not None:
-            out.figures.append(rf)
+            add(rf)
         if note:
             out.notes.append(note)
         rp = resid_position(data, rng)
         if rp is not None:
-            out.figures.append(rp)
+            add(rp)
         bc = boxcox_plot(data)
         if bc is not None:
-            out.figures.append(bc)
+            add(bc)
     return out

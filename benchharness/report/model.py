@@ -167,7 +167,7 @@ def boxcox_profile(runs, analysis: dict, factors: list[str], block: str | None =
         for v in [tr.get("lambda_hat"), tr.get("lambda"), *(tr.get("lambda_ci") or [])]:
             if v is not None and np.isfinite(v):
                 lo, hi = min(lo, float(v) - 0.5), max(hi, float(v) + 0.5)
-        grid = np.linspace(lo, hi, 121)
+        grid = np.linspace(lo, hi, 81)
     logy = np.log(y)
     # Scale y by its geometric mean for numerical stability; the profile is unchanged
     # up to a constant in λ (Box & Cox 1964, the normalised transform).

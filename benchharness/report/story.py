@@ -14,7 +14,7 @@ from typing import Any
 
 from benchharness.report.data import ReportData, finite
 from benchharness.report.units import (
-    describe, fmt_num, fmt_p, fmt_pct, fmt_ratio, fmt_value, unit_of,
+    describe, fmt_num, fmt_p, fmt_ratio, fmt_value, unit_of,
 )
 
 
@@ -26,7 +26,7 @@ def confidence_pct(data: ReportData) -> str:
 
 
 def lower_is_better(data: ReportData) -> bool:
-    better = data.analysis.get("better") or data.analysis.get("direction")
+    better = data.better or data.analysis.get("better") or data.analysis.get("direction")
     if isinstance(better, str):
         return better.lower() != "higher"
     return unit_of(data.response) not in ("per s",)
@@ -90,11 +90,6 @@ def _effect_phrase(data: ReportData, e: dict) -> str:
     return f"{f}={e['level']} against {f}={e['reference']}: not estimable"
 
 
-def _significant_excludes_one(e: dict) -> bool:
-    lo, hi = e.get("lower"), e.get("upper")
-    return finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
-
-
 def cell_means(data: ReportData) -> list[dict]:
     """Estimated means of every observed cell (original units), best first.
 
@@ -104,10 +99,6 @@ def cell_means(data: ReportData) -> list[dict]:
     full = ":".join(data.factors)
     rows = [m for m in data.analysis.get("means") or [] if m.get("term") == full]
     if not rows and data.residuals is not None and len(data.residuals):
-        import numpy as np
-
-        from benchharness.report.model import apply_transform  # noqa: F401
-
         tr = data.analysis.get("transform") or {}
         name, lam = tr.get("name", "none"), tr.get("lambda")
         grp = data.residuals.groupby(list(data.factors), observed=True)["fitted"]
@@ -125,7 +116,6 @@ def cell_means(data: ReportData) -> list[dict]:
             rows.append({"term": full, "levels": dict(zip(data.factors, key)),
                          "mean": mean, "lower": None, "upper": None,
                          "n": int(counts[key if len(key) > 1 else key[0]])})
-        del np
     rows = [r for r in rows if finite(r.get("mean"))]
     rows.sort(key=lambda r: float(r["mean"]), reverse=not lower_is_better(data))
     return rows
@@ -139,7 +129,7 @@ def verdict(data: ReportData) -> dict[str, Any]:
     effects = data.analysis.get("effects") or []
     out: dict[str, Any] = {"factors": [], "interactions": [], "best": None, "sure": []}
 
-    matter, no_matter = [], []
+    matter, no_matter, untested = [], [], []
     for f in data.factors:
         row = by_term.get(f)
         if row is None:
@@ -164,6 +154,10 @@ def verdict(data: ReportData) -> dict[str, Any]:
             else:
                 entry["summary"] = (f"{f} matters (p {_p_words(row.get('p'))}; partial η² "
                                     f"{fmt_num(row.get('partial_eta_sq'), 2)}).")
+        elif not finite(row.get("p")):
+            untested.append(f)
+            entry["summary"] = (f"{f}: could not be tested (no p-value; see the ANOVA section "
+                                "and its notes).")
         else:
             no_matter.append(f)
             entry["summary"] = (f"{f}: no difference detected (p {_p_words(row.get('p'))}); "
@@ -189,6 +183,8 @@ def verdict(data: ReportData) -> dict[str, Any]:
                            "experiment could detect.")
     else:
         out["headline"] = "The analysis could not test any factor (see the ANOVA section)."
+    if untested and (matter or no_matter):
+        out["headline"] = out["headline"][:-1] + f"; {_and(untested)} could not be tested."
 
     cells = cell_means(data)
     if cells:
@@ -238,29 +234,41 @@ def diagnostic_items(data: ReportData) -> list[dict]:
     """Each diagnostic as {name, test, statistic, p, verdict, concern} for display."""
     diag = data.analysis.get("diagnostics") or {}
     titles = {
-        "normality": "Residuals close to normal",
+        "normality": "Normality of residuals",
         "equal_variance": "Equal spread across cells",
-        "drift": "No drift over the run order",
+        "drift": "Drift over the run order",
         "outliers": "Outlying runs",
-        "runs_test": "Residual signs in random order",
+        "runs_test": "Order of residual signs",
         "small_cells": "Cells with too few runs",
     }
     items = []
+    check = diag.get("outlier_check") if isinstance(diag.get("outlier_check"), dict) else {}
     for key, val in diag.items():
         if key == "outliers":
             outl = val if isinstance(val, list) else (val or {}).get("runs", [])
-            n = len(outl)
+            n = int(check.get("count", len(outl)) or 0) if check else len(outl)
+            listed = ", ".join(f"run {o.get('run')} ({fmt_num(o.get('studentized'))})"
+                               for o in outl[:12]) + (" …" if len(outl) > 12 else "")
+            verdict = check.get("verdict") or ("No run stands out." if not n else "")
+            if listed:
+                verdict = f"{verdict}: {listed}" if verdict else listed
+            cut = check.get("cutoff")
             items.append({
                 "key": key, "name": titles[key], "test": "externally studentized residuals, "
-                "Bonferroni cut-off", "statistic": None, "p": None,
-                "verdict": (f"{n} run{'s' if n != 1 else ''} stand out: "
-                            + ", ".join(f"run {o.get('run')} ({fmt_num(o.get('studentized'))})"
-                                        for o in outl[:12])
-                            + (" …" if n > 12 else "")) if n else "No run stands out.",
+                "Bonferroni cut-off" + (f" ±{fmt_num(cut)}" if finite(cut) else ""),
+                "statistic": None, "stat_text": "", "p": None, "verdict": verdict,
                 "concern": n > 0,
             })
             continue
-        if not isinstance(val, dict):
+        if key == "small_cells":
+            if val:
+                text = "; ".join(
+                    f"{cell_label(c.get('levels') or {}, data.factors)}: {c.get('problem', '')}"
+                    f" (n={c.get('n')})" for c in val[:8]) + (" …" if len(val) > 8 else "")
+                items.append({"key": key, "name": titles[key], "test": "", "statistic": None,
+                              "stat_text": "", "p": None, "verdict": text, "concern": True})
+            continue
+        if not isinstance(val, dict) or key == "outlier_check":
             continue
         p = val.get("p")
         concern = val.get("concern")
@@ -269,13 +277,18 @@ def diagnostic_items(data: ReportData) -> list[dict]:
         if concern is None:
             concern = bool(finite(p) and float(p) < data.alpha)
         stat = val.get("statistic")
-        if key == "drift" and finite(val.get("slope_per_100_runs")):
-            stat = val.get("slope_per_100_runs")
+        stat_text = f"statistic {fmt_num(stat)}" if finite(stat) else ""
+        if key == "drift":
+            pct = val.get("percent_per_100_runs")
+            if finite(pct):
+                stat_text = f"{float(pct):+.1f}% per 100 runs"
+            elif finite(val.get("slope_per_100_runs")):
+                stat_text = f"slope {fmt_num(val['slope_per_100_runs'])} per 100 runs"
         items.append({
             "key": key, "name": titles.get(key, key.replace("_", " ")),
             "test": val.get("test") or ("slope of residuals on run position"
                                         if key == "drift" else ""),
-            "statistic": stat, "p": p,
+            "statistic": stat, "stat_text": stat_text, "p": p,
             "verdict": str(val.get("verdict") or ""), "concern": bool(concern),
         })
     return items
@@ -297,11 +310,20 @@ def sureness(data: ReportData) -> list[str]:
                                                      if reps else "") + ".")
     concerns = [i for i in diagnostic_items(data) if i["concern"]]
     if concerns:
-        out.append("Checks of the model's assumptions raise concerns ("
+        out.append("The checks of the model's assumptions raise concerns about "
                    + _and([c["name"].lower() for c in concerns])
-                   + "); see Diagnostics before relying on small p-values.")
+                   + "; see Diagnostics before relying on p-values near the threshold.")
     elif diagnostic_items(data):
         out.append("The model's assumption checks raise no concern.")
+    art = data.analysis.get("art") or {}
+    disagree = [t.get("term") for t in (art.get("terms") or []) if t.get("agrees") is False]
+    if disagree:
+        out.append("The rank-based cross-check disagrees with the ANOVA for "
+                   + _and([str(t) for t in disagree])
+                   + ": treat the verdict on those terms as uncertain.")
+    elif art.get("terms"):
+        out.append("A rank-based cross-check (which does not assume normal residuals) agrees "
+                   "with the ANOVA on every term.")
     bad = d.get("runs_failed", 0) + d.get("runs_timeout", 0)
     if bad:
         out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out and "
@@ -398,24 +420,30 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
     for item in diagnostic_items(data):
         if item["key"] in ("drift", "outliers", "runs_test") and item["concern"]:
             out.append({"kind": item["name"], "text": item["verdict"] or item["name"]})
-    d = data.design
     timed = data.timed_runs
     if "status" in timed.columns and len(timed):
         st = timed["status"].astype(str)
-        per_cell = (timed.assign(_bad=st.isin(["failed", "timeout"]), _to=st == "timeout")
-                    .groupby(list(data.factors), observed=True)[["_bad", "_to"]].sum())
-        for key, row in per_cell.iterrows():
+        bad = timed[st.isin(["failed", "timeout"]).to_numpy()]
+        for key, g in bad.groupby(list(data.factors), observed=True, sort=False):
             key = key if isinstance(key, tuple) else (key,)
             label = cell_label(dict(zip(data.factors, key)), data.factors)
-            if row["_to"]:
+            gst = g["status"].astype(str)
+            n_to, n_bad = int((gst == "timeout").sum()), len(g)
+            why = ""
+            if "message" in g.columns:
+                msgs = [str(m) for m in g["message"].dropna() if str(m).strip()]
+                if msgs:
+                    first = " ".join(msgs[0].split())
+                    why = f" First message: “{first[:200]}{'…' if len(first) > 200 else ''}”"
+            if n_to:
                 out.append({"kind": "Timeouts",
-                            "text": f"{label}: {int(row['_to'])} run(s) timed out. Only the runs "
-                                    "that finished are analysed, so this cell looks faster than "
-                                    "it is."})
-            elif row["_bad"]:
+                            "text": f"{label}: {n_to} run(s) timed out. Only the runs that "
+                                    "finished are analysed, so this cell looks faster than "
+                                    f"it is.{why}"})
+            else:
                 out.append({"kind": "Failed runs",
-                            "text": f"{label}: {int(row['_bad'])} run(s) failed and are left "
-                                    "out of the analysis."})
+                            "text": f"{label}: {n_bad} run(s) failed and are left out of the "
+                                    f"analysis.{why}"})
     host = dict(data.host or {})
     load = _first_load(_host_get(host, "load_average_start", "load_start", "loadavg", "load_average", "load.start",
                                  "load_avg_start"))
@@ -440,7 +468,6 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
                     str(w.get("text") or w.get("message") or w)})
     for n in notes or []:
         out.append({"kind": "Figures", "text": n})
-    del d
     return out
 
 
@@ -524,6 +551,3 @@ def design_rows(data: ReportData) -> list[tuple[str, str]]:
         rows.append(("command", d["command"]))
     return rows
 
-
-def fmt_share(x) -> str:
-    return fmt_pct(x)

@@ -81,16 +81,18 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
     con.print()
 
     t = Table(title="Analysis of variance", box=box.SIMPLE_HEAD, title_justify="left",
-              title_style="bold")
+              title_style="bold", caption="SS: sum of squares; MS: mean square; "
+              "η²p: partial eta squared", caption_justify="left")
     t.add_column("source", no_wrap=True)
-    for col, just in (("df", "right"), ("sum of squares", "right"),
-                      ("mean square", "right"), ("F", "right"), ("p", "right"),
-                      ("partial η²", "right"), ("ω²", "right")):
-        t.add_column(col, justify=just)
+    for col in ("df", "SS", "MS", "F", "p", "η²p", "ω²"):
+        t.add_column(col, justify="right", no_wrap=True)
     for r in story.anova_rows(data):
         style = "bold" if r["significant"] else ("dim" if r.get("term") == "Residual" else None)
-        t.add_row(Text(str(r.get("term"))), fmt_num(r.get("df"), 4), fmt_num(r.get("sum_sq"), 4),
-                  fmt_num(r.get("mean_sq"), 4), fmt_num(r.get("F"), 4), fmt_p(r.get("p")),
+        from benchharness.report.context import _fmt_df
+
+        t.add_row(Text(str(r.get("term"))), _fmt_df(r.get("df")), fmt_num(r.get("sum_sq")),
+                  fmt_num(r.get("mean_sq")), fmt_num(r.get("F")),
+                  fmt_p(r.get("p")).replace("< ", "<"),
                   fmt_num(r.get("partial_eta_sq"), 2), fmt_num(r.get("omega_sq"), 2),
                   style=style)
     con.print(t)
@@ -128,7 +130,7 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
         t = Table(title=f"Comparisons with adjusted p < {data.alpha:g} "
                         f"({len(comps)} of {len(story.comparisons(data))})",
                   box=box.SIMPLE_HEAD, title_justify="left", title_style="bold")
-        for col, just in (("method", "left"), ("comparison", "left"), ("ratio b/a", "right"),
+        for col, just in (("method", "left"), ("comparison", "left"), ("ratio a/b", "right"),
                           ("interval", "right"), ("p adj", "right")):
             t.add_column(col, justify=just, overflow="fold")
         for c in comps[:comparisons]:
@@ -142,7 +144,7 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
         if len(comps) > comparisons:
             con.print(Text(f"  … {len(comps) - comparisons} more in analysis.json", style="dim"))
 
-    warns = story.warnings(data)
+    warns = story.warnings(data, list(data.extra_notes))
     notes = data.analysis.get("notes") or []
     if warns or notes:
         con.print(Text("Warnings and notes", style="bold"))

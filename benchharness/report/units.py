@@ -39,8 +39,20 @@ _KNOWN = {
 }
 
 
+#: Units declared outside the column name (custom metrics in ``metrics.json``).
+DECLARED_UNITS: dict[str, str] = {}
+
+
+def declare_unit(column: str, unit: str) -> None:
+    """Record the unit of a custom metric column (from the results folder's metrics.json)."""
+    if unit:
+        DECLARED_UNITS[str(column)] = str(unit)
+
+
 def unit_of(column: str) -> str:
     """The unit carried by a column name ('' when it carries none)."""
+    if column in DECLARED_UNITS:
+        return {"us": "µs"}.get(DECLARED_UNITS[column], DECLARED_UNITS[column])
     low = column.lower()
     for suffix in sorted(_SUFFIXES, key=len, reverse=True):
         if low.endswith(suffix):
