@@ -39,6 +39,12 @@ def test_expect_catches_wrong_output_and_exit():
     assert bad.status == "failed" and "wrong output" in bad.message
     ok, why = check_expect(spec, _m(status="failed", code=3, out=b"checksum 9f2c\n"))
     assert not ok and why == "exit code 3, expected 0"
+    # the executor's own message (with the stderr tail that says why) is kept
+    failed = Measurement(status="failed", exit_code=2, wall_s=0.01,
+                         message="exit code 2: can't open file 'w.py'")
+    bad = apply_expect(spec, failed)
+    assert bad.status == "failed"
+    assert bad.message == "exit code 2: can't open file 'w.py' (expected exit code 0)"
     # timeouts stay timeouts
     assert apply_expect(spec, _m(status="timeout", code=None)).status == "timeout"
 
