@@ -153,6 +153,8 @@ def test_malformed_output_gives_missing_values_with_reasons(tmp_path):
     ("m: {unit: s, better: lower}", "needs a source"),
     ("codec: {json: a, better: lower}", "already a factor"),
     ("wall_s: {json: a, better: lower}", "already a runs.csv column"),
+    ("aslr: {json: a, better: lower}", "already a runs.csv column"),
+    ("steady_state: {json: a, better: lower}", "already a runs.csv column"),
     ("m: {file: out.json, better: lower}", "file needs json"),
     ("m: {json: 'a..b', better: lower}", "empty part"),
     ("m: {pattern: '(x)', from: stdin, better: lower}", "use stdout or stderr"),
@@ -166,6 +168,15 @@ def test_metric_config_errors_are_located(body, needle):
     with pytest.raises(ExperimentError) as ei:
         parse_metrics(exp.sections["metrics"], exp.factor_names)
     assert str(ei.value).startswith("exp.yaml:5:") and needle in str(ei.value)
+
+
+def test_every_runs_csv_column_is_reserved():
+    # A metric (or factor) named like a column the runner writes would overwrite that
+    # column in runs.csv (e.g. `aslr`), so every such column is reserved.
+    from benchharness.experiment import RESERVED_COLUMNS
+    from benchharness.journal import CORE_COLUMNS, LATER_COLUMNS, LEAD_COLUMNS
+
+    assert set(LEAD_COLUMNS + CORE_COLUMNS + LATER_COLUMNS) <= RESERVED_COLUMNS
 
 
 # --------------------------------------------------------------------------- provenance
