@@ -43,11 +43,21 @@ def test_rule_is_read_from_the_experiment_file():
     assert adaptive.adaptive_rule(Experiment.from_text(BASE + "replicates: 3\n")) is None
 
 
+def test_rule_may_watch_a_custom_metric_or_steady_s():
+    text = (BASE + "replicates: {until: {ratio_halfwidth: 2%, response: rate_rps}}\n"
+            "metrics:\n  rate_rps: {pattern: 'rate ([0-9.]+)', better: higher}\n")
+    assert adaptive.adaptive_rule(Experiment.from_text(text)).response == "rate_rps"
+    text = (BASE + "replicates: {until: {ratio_halfwidth: 2%, response: steady_s}}\n"
+            "samples: {format: lines}\n")
+    assert adaptive.adaptive_rule(Experiment.from_text(text)).response == "steady_s"
+
+
 @pytest.mark.parametrize("text, fragment", [
     ("replicates: {max: 10}\n", "needs the key 'until'"),
     ("replicates: {until: {ratio_halfwidth: 2%}, max: 3, min: 5}\n", "below 'min'"),
     ("replicates: {until: {width: 2%}}\n", "unknown key 'width'"),
     ("replicates: {until: {ratio_halfwidth: 200%}}\n", "between 0% and 100%"),
+    ("replicates: {until: {ratio_halfwidth: 2%, response: wal_s}}\n", "not a measured response"),
 ])
 def test_bad_rules(text, fragment):
     e = Experiment.from_text(BASE + text, path="c.yaml")

@@ -75,12 +75,34 @@ def adaptive_rule(exp) -> AdaptiveRule | None:
         if not 0.5 <= conf < 1:
             raise node_error(until["confidence"], "confidence must be between 50% and 100%, "
                                                   "like 95%")
-    response = scalar_text(until["response"], "'response'") if "response" in until else "wall_s"
+    response = "wall_s"
+    if "response" in until:
+        response = scalar_text(until["response"], "'response'")
+        known = _responses(exp)
+        if response not in known and not (response.startswith("perf_")
+                                          and "perf" in exp.sections):
+            raise node_error(until["response"], f"'replicates: until: response' {response!r} is "
+                                                f"not a measured response; use one of "
+                                                f"{', '.join(known)}")
     mn = as_int(keys["min"], "'replicates: min'", minimum=2) if "min" in keys else 3
     mx = as_int(keys["max"], "'replicates: max'", minimum=2) if "max" in keys else 50
     if mx < mn:
         raise node_error(keys["max"], f"'replicates: max' ({mx}) is below 'min' ({mn})")
     return AdaptiveRule(hw, mx, mn, conf, response)
+
+
+def _responses(exp) -> list[str]:
+    """Numeric runs.csv columns a rule may watch: usage figures, metrics, steady_s."""
+    from benchharness.execute.base import USAGE_FIELDS
+    from benchharness.yamlnodes import is_null, mapping_items
+
+    sec = getattr(exp, "sections", {})
+    out = list(USAGE_FIELDS)
+    if "metrics" in sec and not is_null(sec["metrics"]):
+        out += [name for name, _k, _v in mapping_items(sec["metrics"], "'metrics'")]
+    if "samples" in sec:
+        out.append("steady_s")
+    return out
 
 
 @dataclass(frozen=True)
