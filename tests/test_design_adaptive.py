@@ -151,6 +151,22 @@ def test_pilot_timing_and_plan_estimate():
     assert budget.replicates_in_budget(10 * per_rep + 1, per_rep, est.warmup_s) == 9
 
 
+def test_plan_estimate_counts_cells_the_pilot_lacks():
+    from benchharness.design import build_plan
+
+    exp = Experiment.from_text(BASE + "replicates: 2\n")
+    # a pilot of codec zlib only: 4 of the 6 cells are not in it
+    secs = {("zlib", "1"): 0.5, ("zlib", "9"): 0.7}
+    est = budget.estimate_plan(build_plan(exp), budget.pilot_timing(_pilot(secs, 0.0),
+                                                                     ["codec", "level"]))
+    assert est.cells_without_pilot == 4 and "4 cell(s)" in est.notes[0]
+    # a pilot of another experiment (no shared factor) says so
+    other = _pilot(secs, 0.0).rename(columns={"codec": "x", "level": "y"})
+    est = budget.estimate_plan(build_plan(exp), budget.pilot_timing(other, ["codec", "level"]))
+    assert "none of this experiment's factors" in est.notes[0]
+    assert est.timed_s == pytest.approx(12 * 0.6)
+
+
 def test_next_replicate_fits():
     ok, why = budget.next_replicate_fits(600, 100, [120, 130])
     assert ok and "mean of 2" in why
