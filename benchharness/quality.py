@@ -69,6 +69,13 @@ def quality_config(exp) -> QualityConfig:
         from benchharness.perfstat import parse_perf
 
         perf = parse_perf(sec["perf"])
+    if perf is not None:
+        from benchharness.yamlnodes import node_error
+
+        clash = set(exp.factor_names) & set(perf.columns())
+        if clash:
+            raise node_error(sec["perf"], f"factor {sorted(clash)[0]!r} clashes with a perf "
+                                          "counter column; rename the factor")
     if metrics is not None and perf is not None:
         from benchharness.yamlnodes import node_error
 

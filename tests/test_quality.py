@@ -276,6 +276,19 @@ def test_perf_section_values():
         parse_perf(_exp("perf: []").sections["perf"])
 
 
+@pytest.mark.parametrize("section,needle", [
+    ("perf: true\nmetrics: {perf_cycles: {json: a, better: lower}}", "rename the metric"),
+    ("perf: true", "rename the factor"),
+])
+def test_perf_columns_may_not_be_taken_by_a_metric_or_factor(section, needle):
+    # Either would overwrite the counter's runs.csv column.
+    from benchharness.quality import quality_config
+
+    with pytest.raises(ExperimentError, match=needle):
+        quality_config(_exp(section, factors="{perf_cycles: [a, b]}" if "factor" in needle
+                            else "{codec: [zlib, lzma]}"))
+
+
 # --------------------------------------------------------------------------- load
 
 def test_load_correlation_finds_planted_relation_like_scipy():
