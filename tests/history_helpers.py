@@ -16,9 +16,12 @@ AFTER = ["status", "exit_code", "wall_s", "user_s", "sys_s", "max_rss_kib", "min
          "major_faults", "voluntary_switches", "involuntary_switches", "in_blocks", "out_blocks",
          "started_at", "message"]
 
-HOST_A = {"cpu_model": "Example CPU 3000", "cores_logical": 2, "cores_physical": 2,
-          "memory_total_bytes": 8589934592, "os": "Linux 6.1.0", "python": "3.11.7",
-          "load_1m": 0.4, "memory_available_bytes": 4000000000}
+# keys as benchharness.host.collect_facts writes them
+HOST_A = {"hostname": "ci-runner-7", "cpu_model": "Example CPU 3000", "physical_cores": 2,
+          "logical_cores": 2, "memory_bytes": 8589934592, "memory_available_bytes": 4000000000,
+          "os": "Linux", "kernel": "6.1.0", "machine": "x86_64", "python": "3.11.7",
+          "python_implementation": "CPython", "load_average_start": [0.4, 0.3, 0.2],
+          "memory_pressure": {"some": {"avg10": 0.0}}, "cpu_mhz_now": 2400.0}
 HOST_B = dict(HOST_A, cpu_model="Example CPU 4000")
 
 

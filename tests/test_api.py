@@ -70,3 +70,29 @@ def test_summary_with_a_factor_named_like_a_summary_column(tmp_path, cli):
     lines = [ln.split() for ln in r.stdout.splitlines() if ln.split()[:1] in (["1"], ["3"])]
     assert sorted((ln[0], ln[1], ln[2]) for ln in lines) == [
         ("1", "hi", "2"), ("1", "lo", "2"), ("3", "hi", "2"), ("3", "lo", "2")]
+
+
+def test_run_adds_to_history_database(tmp_path, cli):
+    import sqlite3
+    import subprocess
+
+    subprocess.run(["git", "init", "-q"], cwd=tmp_path, check=True)
+    p = tmp_path / "e.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        experiment: hist
+        command: [{sys.executable}, -c, "pass", "{{n}}"]
+        factors:
+          n: [a, b]
+        replicates: 2
+        seed: 2
+        """))
+    subprocess.run(["git", "add", "."], cwd=tmp_path, check=True)
+    subprocess.run(["git", "-c", "user.name=t", "-c", "user.email=t@t", "commit", "-qm", "x"],
+                   cwd=tmp_path, check=True)
+    db = tmp_path / "h.sqlite"
+    r = cli("run", p, "--out", tmp_path / "res", "--no-analysis", "--history", db,
+            cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    assert "history: 2 cell rows added" in r.stdout
+    with sqlite3.connect(db) as con:
+        assert con.execute("select count(*) from cells").fetchone()[0] == 2

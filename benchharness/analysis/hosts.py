@@ -83,4 +83,7 @@ def host_split(prep, z, terms_model, model, ss_type, fit_block, alpha: float) ->
                                 "mean_sq": ss_within / d_within if d_within > 0 else None},
         "differ": bool(differ),
         "verdict": verdict,
+        "test": f"F test of hosts against {against}" if against else None,
+        "p": p,
+        "concern": bool(differ),
     }

@@ -26,6 +26,8 @@ def add_parser(sub) -> None:
     g.add_argument("--no-block", action="store_true", help="fit no block term")
     p.add_argument("--transform", choices=["auto", "none", "log", "boxcox"], default="auto",
                    help="analysis scale (default auto: chosen from the Box-Cox interval)")
+    p.add_argument("--plain", action="store_true",
+                   help="plain text layout instead of tables")
     p.add_argument("--model", default=None, metavar="full|main|N",
                    help="all interactions (full), main effects only (main), or interactions "
                         "up to order N (default full; for a fractional design, the terms "
@@ -76,7 +78,12 @@ def main(args) -> int:
     if args.json == "-":
         sys.stdout.write(an.to_json() + "\n")
         return 0
-    print(format_analysis(an), end="")
+    if args.plain:
+        print(format_analysis(an), end="")
+    else:
+        from benchharness.report.terminal import print_analysis
+
+        print_analysis(an)
     if folder_res is not None and factors is None:
         # Two-level fractions and confounded blocks: effects labelled with their aliases.
         from benchharness.analysis.fraction import format_fraction, fraction_analysis_for

@@ -20,6 +20,8 @@ def add_parser(sub) -> None:
                    help="response column (default wall_s)")
     p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL",
                    help="confidence level of the intervals (default 0.95)")
+    p.add_argument("--simultaneous", action="store_true",
+                   help="Bonferroni intervals that hold for all cells together")
     p.add_argument("--json", metavar="FILE", help="also write the comparison as JSON")
     p.set_defaults(func=main)
 
@@ -45,12 +47,12 @@ def main(args) -> int:
     if not (0 < args.confidence < 1):
         raise UsageError(f"--confidence {args.confidence}: give a level between 0 and 1")
     result = compare_folders(args.a, args.b, response=args.response, tolerance=tol,
-                             conf_level=args.confidence)
+                             conf_level=args.confidence, simultaneous=args.simultaneous)
     print_comparison(result)
     if args.json:
-        with open(args.json, "w", encoding="utf-8") as fh:
-            json.dump(result.to_json_dict(), fh, indent=1)
-            fh.write("\n")
+        from benchharness.commands.history import write_text
+
+        write_text(args.json, json.dumps(result.to_json_dict(), indent=1) + "\n", "--json")
     return 0
 
 
@@ -58,23 +60,36 @@ def print_comparison(result) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    console = Console()
+    from benchharness.report.terminal import make_console
+
+    console = make_console()
     ratio = result.scale == "log"
-    table = Table(title=f"{result.response}: B = {result.b}  vs  A = {result.a}",
-                  title_justify="left")
+    console.print(f"A (baseline): {result.a}", highlight=False)
+    console.print(f"B:            {result.b}", highlight=False)
+    table = Table(title=f"{result.response}, B/A per cell" if ratio else
+                  f"{result.response}, B - A per cell", title_justify="left")
     cells = result.cells
     names = list(cells[0].cell) if cells else []
     for n in names:
         table.add_column(n)
-    center = "geo. mean" if ratio else "mean"
-    for col in (f"n A/B", f"{center} A", f"{center} B", "B/A" if ratio else "B - A",
-                f"{round(result.conf_level * 100)}% interval", "verdict"):
-        table.add_column(col, justify="left" if col == "verdict" else "right")
+    for col in ("n A/B", "A", "B", "B/A" if ratio else "B - A",
+                f"{result.conf_level * 100:g}% interval"
+                + (" (all cells)" if result.adjustment == "bonferroni" else ""), "verdict"):
+        if col == "verdict":
+            table.add_column(col, justify="left", overflow="fold")
+        else:
+            table.add_column(col, justify="right", no_wrap=True)
+    num = (lambda v: f"{v:.3f}") if ratio else (lambda v: f"{v:.4g}")  # noqa: E731
     for c in cells:
         table.add_row(*[c.cell[n] for n in names], f"{c.n_a}/{c.n_b}", f"{c.center_a:.4g}",
-                      f"{c.center_b:.4g}", f"{c.estimate:.4g}",
-                      f"{c.low:.4g} - {c.high:.4g}", c.wording)
+                      f"{c.center_b:.4g}", num(c.estimate), f"{num(c.low)}-{num(c.high)}",
+                      c.wording)
     console.print(table)
+    tol = f"{result.tolerance * 100:g}%"
+    console.print(f"A and B columns: {'geometric ' if ratio else ''}means of "
+                  f"{result.response}. Verdicts: beyond {tol} = the whole interval is outside "
+                  f"the tolerance band; same within {tol} = the whole interval is inside it; "
+                  "unclear = the interval crosses the band's edge.", highlight=False)
     if result.residual_sd is not None:
         noise = (f"{result.residual_sd * 100:.1f}% (SD of ln {result.response})" if ratio
                  else f"{result.residual_sd:.4g}")

@@ -7,7 +7,7 @@ import sys
 
 
 def add_parser(sub) -> None:
-    from benchharness.history.store import DEFAULT_DB
+    from benchharness.history import DEFAULT_DB
 
     p = sub.add_parser("history", help="record results per commit; show trends and steps",
                        description="Keep per-cell summaries of results folders in an SQLite "
@@ -26,6 +26,9 @@ def add_parser(sub) -> None:
                    help=f"history file (default {DEFAULT_DB})")
     a.add_argument("--response", action="append", metavar="NAME",
                    help="response column to record; repeat for several (default wall_s)")
+    a.add_argument("--only", metavar="K=V,...",
+                   help="record only the runs at these levels, leaving those factors out of "
+                        "the cells (e.g. the candidate side of an interleaved comparison)")
     a.set_defaults(func=main_add)
 
     s = hs.add_parser("show", help="show each cell's trend over commits",
@@ -41,18 +44,33 @@ def add_parser(sub) -> None:
     s.add_argument("--html", metavar="FILE", help="also write a self-contained HTML page")
     s.add_argument("--json", metavar="FILE", help="also write the trends and steps as JSON")
     s.add_argument("--false-step-level", type=float, default=0.05, metavar="P",
-                   help="chance of a false step in a flat stretch on one host (default 0.05)")
+                   help="chance of a false step in a flat series of one host (default 0.05)")
+    s.add_argument("--fail-on-regression", action="store_true",
+                   help="exit 1 when a regression step is found that has not been undone "
+                        "(lasts, or too recent to tell)")
     s.set_defaults(func=main_show)
     p.set_defaults(func=lambda args: (p.print_help(), 2)[1])
 
 
+def write_text(path: str, text: str, option: str) -> None:
+    """Write an output file; a bad path is one clear line (exit 2), not a traceback."""
+    from benchharness.errors import UsageError
+
+    try:
+        with open(path, "w", encoding="utf-8") as fh:
+            fh.write(text)
+    except OSError as exc:
+        raise UsageError(f"{option} {path}: cannot write ({exc.strerror or exc})") from None
+
+
 def main_add(args) -> int:
-    from benchharness.history.store import add_results
+    from benchharness.history.store import add_results, parse_cell_filter
 
     responses = tuple(args.response or ("wall_s",))
+    select = parse_cell_filter(args.only, option="--only")
     for folder in args.results:
         n = add_results(args.db, folder, commit=args.commit, branch=args.branch,
-                        responses=responses)
+                        responses=responses, select=select)
         what = f"{n} cell row(s) added" if n else "already recorded, nothing added"
         print(f"{folder}: {what} ({args.db})")
     return 0
@@ -61,7 +79,7 @@ def main_add(args) -> int:
 def main_show(args) -> int:
     from benchharness.errors import UsageError
     from benchharness.history.store import parse_cell_filter, read_history
-    from benchharness.history.trends import build_trends, to_json_dict
+    from benchharness.history.trends import build_trends, step_kind, to_json_dict
 
     if not (0 < args.false_step_level < 1):
         raise UsageError(f"--false-step-level {args.false_step_level}: give a probability "
@@ -75,12 +93,18 @@ def main_show(args) -> int:
 
     print_trends(trends)
     if args.json:
-        with open(args.json, "w", encoding="utf-8") as fh:
-            json.dump(to_json_dict(trends), fh, indent=1)
-            fh.write("\n")
+        write_text(args.json, json.dumps(to_json_dict(trends), indent=1) + "\n", "--json")
     if args.html:
-        with open(args.html, "w", encoding="utf-8") as fh:
-            fh.write(render_html(trends, experiment=args.experiment,
-                                 alpha=args.false_step_level))
+        write_text(args.html, render_html(trends, experiment=args.experiment,
+                                          alpha=args.false_step_level), "--html")
         print(f"wrote {args.html}", file=sys.stderr)
+    if args.fail_on_regression:
+        open_regressions = [
+            (t, st) for t in trends if t.detection is not None for st in t.detection.steps
+            if st.persists is not False and step_kind(t.response, st.ratio, st.persists)
+            == "regression"]
+        for t, st in open_regressions:
+            print(f"regression: {t.experiment} {t.response} {t.label} at commit "
+                  f"{t.points[st.index].commit} (x{st.ratio:.3f})", file=sys.stderr)
+        return 1 if open_regressions else 0
     return 0

@@ -23,7 +23,9 @@ def analyse_and_report(res) -> None:
         an = analyze_results_folder(res.path)
         write_analysis_json(an, res.path / "analysis.json")
         print()
-        print(format_analysis(an))
+        from benchharness.report.terminal import print_analysis
+
+        print_analysis(an)
         # Two-level fractions and confounded blocks: effects with their aliases.
         from benchharness.analysis.fraction import add_to_results_folder, format_fraction
 

@@ -25,6 +25,9 @@ def add_parser(sub) -> None:
     p.add_argument("--pilot", metavar="RESULTS",
                    help="earlier results folder whose run times estimate the first replicate "
                         "for --budget")
+    p.add_argument("--history", metavar="DB",
+                   help="add the results to this history database (SQLite) when done; the "
+                        "commit is read from git")
     p.add_argument("--quiet", action="store_true", help="no progress display")
     p.add_argument("--no-analysis", action="store_true",
                    help="skip the analysis and reports at the end")
@@ -69,7 +72,13 @@ def main(args) -> int:
                                         estimate_s=estimate_s)
     for note in outcome.notes:
         print(note)
-    return finish(outcome, analysis=not args.no_analysis)
+    code = finish(outcome, analysis=not args.no_analysis)
+    if code == 0 and args.history:
+        from benchharness.history import add_results
+
+        n = add_results(args.history, outcome.folder)
+        print(f"history: {n} cell rows added to {args.history}")
+    return code
 
 
 def _budget(args, exp):

@@ -41,12 +41,13 @@ class CellSummary:
     conf_level: float
 
 
-def summarize_cells(runs, factors, response: str = "wall_s",
-                    conf_level: float = 0.95) -> list[CellSummary]:
+def summarize_cells(runs, factors, response: str = "wall_s", conf_level: float = 0.95,
+                    level_order: dict | None = None) -> list[CellSummary]:
     """Summaries of `response` per cell over the runs with status ``ok``.
 
     ``runs`` is a DataFrame shaped like runs.csv; ``factors`` the factor names.
-    Cells in first-appearance order of the levels as listed in the table.
+    Cells in the order of ``level_order`` (factor -> labels as listed in the
+    experiment) when given, else in order of first appearance.
     """
     import numpy as np
     import pandas as pd
@@ -64,7 +65,9 @@ def summarize_cells(runs, factors, response: str = "wall_s",
     log_scale = bool((ok["_y"] > 0).all())
     ok = ok.assign(_x=np.log(ok["_y"]) if log_scale else ok["_y"])
     out: list[CellSummary] = []
-    for levels_tuple, grp in ok.groupby(list(factors), sort=False, dropna=False):
+    groups = (ok.groupby(list(factors), sort=False, dropna=False) if factors
+              else [((), ok)])        # no factor left (all fixed by a selection): one cell
+    for levels_tuple, grp in groups:
         if not isinstance(levels_tuple, tuple):
             levels_tuple = (levels_tuple,)
         levels = {f: str(v) for f, v in zip(factors, levels_tuple)}
@@ -84,4 +87,10 @@ def summarize_cells(runs, factors, response: str = "wall_s",
             scale="log" if log_scale else "linear", n=n, center=back(m),
             ci_low=None if lo is None else back(lo), ci_high=None if hi is None else back(hi),
             mean=m, se=se, noise_sd=sd, conf_level=conf_level))
+    if level_order:
+        def rank(c: CellSummary):
+            return tuple(level_order[f].index(c.levels[f])
+                         if c.levels[f] in level_order.get(f, [])
+                         else len(level_order.get(f, [])) for f in factors)
+        out.sort(key=rank)
     return out

@@ -2,7 +2,7 @@
 
 Owns the detection of steps in a series of per-commit log means, each with its
 own uncertainty, and the splitting of a series at known breaks (a change of host
-fingerprint). The method, per stretch measured on one host:
+fingerprint). The method, on the points measured on one host:
 
 1. **Per-point variance.** Each point is the mean of ``n`` logged timings with
    sample SD ``s``. The SDs are moderated towards a common value by the
@@ -17,27 +17,39 @@ fingerprint). The method, per stretch measured on one host:
    1941) robustly, from the median of the squared differences scaled by the
    median of a chi-square with 1 df -- a step moves one difference only.
    Weights are ``w_i = 1/(se_i^2 + tau^2)``.
-3. **Is there any step?** The statistic is the largest cost reduction of a
-   single split, ``max_k W_L W_R / W (m_L - m_R)^2`` (weighted Gaussian cost
-   ``sum w_i (x_i - xbar_w)^2``). Its null distribution is simulated by a
-   parametric bootstrap of steps 2-3 (flat series with these variances, tau^2
-   re-estimated on each, fixed seed); the critical value ``c`` is its
-   ``1 - alpha`` quantile. A flat stretch therefore shows a false step with
-   probability about ``alpha``.
-4. **Where are the steps?** Only if the statistic exceeds ``c``, PELT (Killick,
-   Fearnhead & Eckley 2012, JASA 107:1590) finds the optimal segmentation under
-   the same weighted cost with penalty ``c`` per step (so at least one step is
-   found, and further steps must each pay ``c``).
+3. **Is there any step?** Under the weighted Gaussian cost
+   ``sum w_i (x_i - xbar_w)^2`` the statistic is the largest cost reduction by
+   one step (``W_L W_R / W (m_L - m_R)^2``) or by a step and a step back (an
+   inner stretch cut out, a regression later fixed, less a price ``2 ln N`` for
+   the second change, Schwarz 1978 style). Its null distribution comes from a
+   permutation test: under a flat series the points are interchangeable, so
+   the whole procedure (tau^2 included) is redone on shuffled orders (999, fixed
+   seed; stopped early once the answer is certain, Besag & Clifford 1991). The
+   p-value ``(1 + #{T* >= T})/(1 + R)`` makes the chance of a false step in a
+   flat series at most ``alpha`` -- exactly, whatever the noise, as long as the
+   points are interchangeable. The price of that guarantee: a shift seen in a
+   single point cannot be told from one unlucky session. A lone odd point in
+   the middle is never reported; a shift of the newest point alone only once
+   the host has more than ``2/alpha`` points (40 at 0.05); two or more
+   shifted points at the end are found much sooner.
+4. **Where are the steps?** Only if the test rejects, PELT (Killick, Fearnhead &
+   Eckley 2012, JASA 107:1590) finds the optimal segmentation under the same
+   cost with penalty ``min(c, (c + 2 ln N)/2)`` per step, ``c`` the permutation
+   ``1 - alpha`` quantile, so whatever made the test fire is always found;
+   then any step whose own split (between the segments on either side) is
+   weaker than ``c`` is dropped, weakest first.
 5. **Each step** is reported at the first commit of the new segment, as the
    ratio ``exp(mean_after - mean_before)`` of the two neighbouring segments'
-   weighted means with a normal interval, and whether it **persists**: all
-   points after it up to the end of the stretch are still shifted the same way
-   (their weighted mean's interval against the old segment excludes 1); ``None``
-   when only one point follows. Intervals ignore that the step location was
+   weighted means with a normal interval, and whether it **persists**: every
+   later segment of the same host is still shifted the same way
+   against the segment before the step (interval of the ratio excludes 1);
+   ``None`` when only one point follows. Intervals ignore that the step location was
    chosen from the data, so they are somewhat optimistic.
 
-A change of host fingerprint ends a stretch: it is reported as a ``HostBreak``
-(with the ratio across it, for information) and never as a step.
+Each host's points are searched on their own, in order (a pool of machines
+measured in turn still gets detection per machine). A change of host between
+consecutive points is reported as a ``HostBreak`` (with the ratio across it, for
+information) and never as a step.
 """
 
 from __future__ import annotations
@@ -48,7 +60,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 MIN_POINTS = 4          # fewer points on one host: no step detection
-N_SIMULATIONS = 2000    # null simulations for the critical value
+N_SIMULATIONS = 999     # shuffles for the permutation test
 
 
 @dataclass(frozen=True)
@@ -86,7 +98,7 @@ class Detection:
     steps: tuple[Step, ...]
     breaks: tuple[HostBreak, ...]
     segments: tuple[Segment, ...]
-    tau: tuple[float, ...] = field(default=())      # session noise SD per stretch
+    tau: tuple[float, ...] = field(default=())      # session noise SD per host
     alpha: float = 0.05
 
 
@@ -117,7 +129,9 @@ def moderated_variances(sd, n):
             except ValueError:
                 d0 = math.inf
     if math.isinf(d0):
-        s0sq = float(np.exp(emean))
+        # no spread beyond chance: one common variance, whose maximum-likelihood
+        # estimate is the pooled (df-weighted) sample variance
+        s0sq = float(np.sum(dfh * s2h) / np.sum(dfh))
         post = np.full(len(sd), s0sq)
     else:
         s0sq = float(np.exp(emean + special.digamma(d0 / 2) - np.log(d0 / 2)))
@@ -148,12 +162,35 @@ def session_variance(x, v):
 
 # ------------------------------------------------------------ the statistics
 
-def max_split_statistic(x, w) -> tuple[float, int]:
-    """max_k W_L W_R / W (m_L - m_R)^2 and the k (points before the split)."""
-    x = np.asarray(x, dtype=float)[None, :]
-    stat = _split_stats(x, np.asarray(w, dtype=float))[0]
-    k = int(np.argmax(stat))
-    return float(stat[k]), k + 1
+def segment_statistic(X, w, extra: float = 0.0):
+    """Per row of X: the largest cost reduction by one step or by a step and a step back.
+
+    One step at k: ``W_L W_R / W (m_L - m_R)^2``. A step and a step back, i.e. an
+    inner stretch ``[i, j)`` cut out of the rest: ``W_in W_out / W (m_in - m_out)^2``
+    minus ``extra`` (the price of the second change).
+    """
+    X = np.atleast_2d(np.asarray(X, dtype=float))
+    w = np.broadcast_to(np.asarray(w, dtype=float), X.shape)
+    R, N = X.shape
+    zeros = np.zeros((R, 1))
+    Cw = np.concatenate([zeros, np.cumsum(w, axis=1)], axis=1)
+    Cx = np.concatenate([zeros, np.cumsum(w * X, axis=1)], axis=1)
+    W = Cw[:, -1:]
+    S = Cx[:, -1:]
+    best = _split_stats(X, w).max(axis=1) if N > 1 else np.zeros(R)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for i in range(1, N - 1):
+            Win = Cw[:, i + 1:N] - Cw[:, i:i + 1]       # stretches [i, j), i < j < N
+            Sin = Cx[:, i + 1:N] - Cx[:, i:i + 1]
+            Wout = W - Win
+            stat = Win * Wout / W * (Sin / Win - (S - Sin) / Wout) ** 2 - extra
+            best = np.maximum(best, stat.max(axis=1))
+    return best
+
+
+def step_back_price(N: int) -> float:
+    """Extra cost of a second change: 2 ln N, a Schwarz (1978) type price."""
+    return 2.0 * math.log(max(N, 2))
 
 
 def _split_stats(X, w):
@@ -181,27 +218,34 @@ def permutation_test(x, v, alpha: float, n_perm: int = N_SIMULATIONS,
     Under a flat series the points (each mean with its variance) are
     interchangeable, so shuffling their order -- and redoing the whole
     procedure, including the estimate of tau^2, on each shuffle -- gives the
-    null distribution of the max-split statistic exactly (Monte Carlo version,
-    p = (1 + #{T* >= T}) / (1 + R); fixed seed, so results repeat).
+    null distribution of the statistic exactly (Monte Carlo version,
+    p = (1 + #{T* >= T}) / (1 + R); fixed seed, so results repeat). Shuffling
+    stops as soon as p can no longer reach ``alpha`` (the decision is the same as
+    with all R shuffles); the critical value is then NaN and p a lower bound.
     """
     x = np.asarray(x, dtype=float)
     v = np.asarray(v, dtype=float)
     N = len(x)
-    t_obs = float(_split_stats(x[None, :], weights(x, v)[None, :]).max())
+    extra = step_back_price(N)
+    t_obs = float(segment_statistic(x[None, :], weights(x, v)[None, :], extra)[0])
     rng = np.random.default_rng([seed, N])
     out = []
-    chunk = max(1, min(n_perm, 2_000_000 // max(N, 1)))
+    chunk = max(1, min(100, n_perm, 2_000_000 // max(N, 1)))
     done = 0
+    exceed = 0
     while done < n_perm:
         m = min(chunk, n_perm - done)
         idx = rng.permuted(np.tile(np.arange(N), (m, 1)), axis=1)
         X, V = x[idx], v[idx]
         W = 1.0 / (V + session_variance(X, V)[:, None])
-        out.append(_split_stats(X, W).max(axis=1))
+        null = segment_statistic(X, W, extra)
+        out.append(null)
         done += m
+        exceed += int(np.sum(null >= t_obs * (1 - 1e-12)))
+        if (1 + exceed) / (1 + n_perm) > alpha:
+            return t_obs, math.nan, (1 + exceed) / (1 + n_perm)
     null = np.concatenate(out)
-    p = (1 + int(np.sum(null >= t_obs * (1 - 1e-12)))) / (1 + len(null))
-    return t_obs, float(np.quantile(null, 1 - alpha)), p
+    return t_obs, float(np.quantile(null, 1 - alpha)), (1 + exceed) / (1 + n_perm)
 
 
 def pelt(x, w, penalty: float, min_size: int = 1) -> list[int]:
@@ -245,6 +289,35 @@ def pelt(x, w, penalty: float, min_size: int = 1) -> list[int]:
     return sorted(cps)
 
 
+def local_statistics(x, w, cps) -> list[float]:
+    """For each changepoint, the one-step statistic between its two neighbouring segments."""
+    edges = [0, *cps, len(x)]
+    out = []
+    for j, cpt in enumerate(cps):
+        a, b = edges[j], edges[j + 2]
+        out.append(float(_split_stats(np.asarray(x[a:b])[None, :],
+                                      np.asarray(w[a:b]))[0][cpt - a - 1]))
+    return out
+
+
+def prune_steps(x, w, cps, threshold: float) -> list[int]:
+    """Drop, weakest first, steps whose local statistic is below ``threshold``.
+
+    PELT's penalty is set so the change that made the test fire is found; other
+    steps it adds must each stand on their own: the split between the segments
+    on either side must be as strong as the test's critical value (which, being
+    calibrated on the whole series, is on the safe side for a shorter window).
+    """
+    cps = list(cps)
+    while cps:
+        stats_ = local_statistics(x, w, cps)
+        j = int(np.argmin(stats_))
+        if stats_[j] >= threshold:
+            break
+        del cps[j]
+    return cps
+
+
 # ----------------------------------------------------------------- detection
 
 def _wmean(x, w):
@@ -264,8 +337,12 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
 
     ``x``: mean of ln(response) per point, oldest first; ``sd``: SD of the logs
     within each point (NaN when n = 1); ``n``: runs per point; ``hosts``: host
-    fingerprint per point (a change is a known break). ``alpha``: chance of a
-    false step in a flat stretch on one host.
+    fingerprint per point. The points of each host are searched on their own
+    (in order), so a pool of machines measured in turn still gets step
+    detection per machine; every change of host between consecutive points is
+    a known break. ``alpha``: chance of a false step in a flat series of one host.
+    Segment ``start``/``stop`` are positions in the whole series (first point,
+    one past the last point of the segment on its host).
     """
     from scipy import stats
 
@@ -275,14 +352,17 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
     N = len(x)
     hosts = list(hosts) if hosts is not None else ["host"] * N
     z = float(stats.norm.ppf(0.5 + conf_level / 2))
-    bounds = [0] + [i for i in range(1, N) if hosts[i] != hosts[i - 1]] + [N]
+    groups: dict[str, list[int]] = {}
+    for i, h in enumerate(hosts):
+        groups.setdefault(h, []).append(i)
     steps: list[Step] = []
     segments: list[Segment] = []
     taus: list[float] = []
-    stretch_summ = []
-    for a, b in zip(bounds[:-1], bounds[1:]):
-        xs = x[a:b]
-        v = moderated_variances(sd[a:b], n[a:b])
+    segment_of: dict[int, Segment] = {}
+    for host, idx in groups.items():
+        idx_a = np.asarray(idx)
+        xs = x[idx_a]
+        v = moderated_variances(sd[idx_a], n[idx_a])
         if not np.isfinite(v).all():
             # no usable spread at all (single runs everywhere): fall back to the
             # scatter of the points themselves
@@ -296,34 +376,41 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
         if len(xs) >= MIN_POINTS:
             stat, crit, pvalue = permutation_test(xs, v, alpha, n_sim)
             if pvalue <= alpha:
-                # penalty c per step; never above the observed statistic, so the
-                # single best split is always among the steps found
-                cps = pelt(xs, w, min(crit, stat * (1 - 1e-9)))
+                # penalty per step min(c, (c + price)/2): whatever made the test
+                # fire (one step, or a step and a step back) is then always found
+                c = min(crit, stat * (1 - 1e-9))
+                cps = pelt(xs, w, min(c, (c + step_back_price(len(xs))) / 2))
+                cps = prune_steps(xs, w, cps, c)
         edges = [0] + cps + [len(xs)]
         segs = []
         for s0, s1 in zip(edges[:-1], edges[1:]):
             m, se = _wmean(xs[s0:s1], w[s0:s1])
-            segs.append(Segment(a + s0, a + s1, m, se, hosts[a]))
+            seg = Segment(int(idx_a[s0]), int(idx_a[s1 - 1]) + 1, m, se, host)
+            segs.append(seg)
+            for k in idx_a[s0:s1]:
+                segment_of[int(k)] = seg
         segments.extend(segs)
+        local = local_statistics(xs, w, cps)
         for j, cp in enumerate(cps):
             before, after = segs[j], segs[j + 1]
             r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
-            rest_m, rest_se = _wmean(xs[cp:], w[cp:])
             if len(xs) - cp < 2:
                 persists = None
             else:
-                _, rlo, rhi = _ratio(rest_m, rest_se, before.mean, before.se, z)
-                persists = bool(rlo > 1) if r > 1 else bool(rhi < 1)
-            lo_w = w[edges[j]:edges[j + 2]]
-            lo_x = xs[edges[j]:edges[j + 2]]
-            k = cp - edges[j]
-            stat_k = float(_split_stats(lo_x[None, :], lo_w)[0][k - 1])
-            steps.append(Step(a + cp, r, lo, hi, persists, stat_k, crit))
-        stretch_summ.append(_wmean(xs, w))
+                # every later segment of this host stays shifted the same way
+                persists = True
+                for later in segs[j + 1:]:
+                    _, rlo, rhi = _ratio(later.mean, later.se, before.mean, before.se, z)
+                    if not (rlo > 1 if r > 1 else rhi < 1):
+                        persists = False
+            steps.append(Step(int(idx_a[cp]), r, lo, hi, persists, local[j], crit))
     breaks: list[HostBreak] = []
-    for i, b in enumerate(bounds[1:-1]):
-        before = [s for s in segments if s.stop == b][0]
-        after = [s for s in segments if s.start == b][0]
+    for b in range(1, N):
+        if hosts[b] == hosts[b - 1]:
+            continue
+        before, after = segment_of[b - 1], segment_of[b]
         r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
         breaks.append(HostBreak(b, hosts[b - 1], hosts[b], r, lo, hi))
+    steps.sort(key=lambda st: st.index)
+    segments.sort(key=lambda sg: (sg.start, sg.host))
     return Detection(tuple(steps), tuple(breaks), tuple(segments), tuple(taus), alpha)

@@ -58,6 +58,7 @@ class Comparison:
     residual_df: int
     residual_sd: float | None
     cells: tuple[CellComparison, ...]
+    adjustment: str = "none"       # none | bonferroni
     only_in_a: tuple[dict, ...] = ()
     only_in_b: tuple[dict, ...] = ()
     warnings: tuple[str, ...] = field(default=())
@@ -67,6 +68,7 @@ class Comparison:
             "a": self.a, "b": self.b, "response": self.response, "scale": self.scale,
             "estimate": "ratio_b_over_a" if self.scale == "log" else "difference_b_minus_a",
             "tolerance": self.tolerance, "conf_level": self.conf_level,
+            "interval_adjustment": self.adjustment,
             "residual_df": self.residual_df, "residual_sd": self.residual_sd,
             "cells": [{"cell": c.cell, "n_a": c.n_a, "n_b": c.n_b, "center_a": c.center_a,
                        "center_b": c.center_b, "estimate": c.estimate, "low": c.low,
@@ -116,7 +118,13 @@ def pooled_table(folder_a, folder_b, response: str = "wall_s"):
 
 
 def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: float = 0.05,
-                    conf_level: float = 0.95) -> Comparison:
+                    conf_level: float = 0.95, simultaneous: bool = False) -> Comparison:
+    """Compare two results folders cell by cell (see the module docstring).
+
+    ``simultaneous``: Bonferroni intervals (Dunn 1961), each at level
+    ``1 - (1 - conf_level)/m`` for m shared cells, so all m hold together with
+    probability at least ``conf_level``.
+    """
     import numpy as np
     from scipy import stats
 
@@ -137,7 +145,9 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
     ss = float(((pooled["x"] - groups.transform("mean")) ** 2).sum())
     df = int(len(pooled) - len(means))
     s = math.sqrt(ss / df) if df > 0 else None
-    tq = float(stats.t.ppf(0.5 + conf_level / 2, df)) if df > 0 else math.nan
+    m_cells = len(means) // 2
+    per_cell = 1 - (1 - conf_level) / m_cells if simultaneous else conf_level
+    tq = float(stats.t.ppf(0.5 + per_cell / 2, df)) if df > 0 else math.nan
     band_hi, band_lo = 1 + tolerance, 1 / (1 + tolerance)
     low_better = lower_is_better(response)
     words = {"higher": "slower" if low_better else "higher",
@@ -173,16 +183,20 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
             verdict = "unclear"
         pct = f"{tolerance * 100:g}%"
         wording = {
-            "higher": f"B is {words['higher']} beyond the {pct} tolerance",
-            "lower": f"B is {words['lower']} beyond the {pct} tolerance",
-            "within": f"the same within {pct}",
-            "unclear": f"cannot tell at {pct} (interval crosses the tolerance band)"
-                       if s is not None else "cannot tell (no replicates to estimate noise)",
+            "higher": f"{words['higher']} (beyond {pct})",
+            "lower": f"{words['lower']} (beyond {pct})",
+            "within": f"same within {pct}",
+            "unclear": "unclear" if s is not None else "unclear (no replicates)",
         }[verdict]
         cell = dict(zip(factors, key.split("\x1f"))) if factors else {}
         out.append(CellComparison(cell=cell, n_a=na, n_b=nb, center_a=back(ma),
                                   center_b=back(mb), estimate=est, low=elo, high=ehi,
                                   p_value=p, verdict=verdict, wording=wording))
+    def rank(c: CellComparison):
+        return tuple(da.levels[f].index(c.cell[f]) if c.cell[f] in da.levels.get(f, [])
+                     else len(da.levels.get(f, [])) for f in factors)
+
+    out.sort(key=rank)
     warnings = [SESSION_WARNING]
     fa, fb = host_fingerprint(da.host), host_fingerprint(db.host)
     if fa != fb:
@@ -197,5 +211,6 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
     return Comparison(a=str(da.path), b=str(db.path), response=response,
                       scale="log" if log_scale else "linear", tolerance=tolerance,
                       conf_level=conf_level, residual_df=df, residual_sd=s, cells=tuple(out),
+                      adjustment="bonferroni" if simultaneous else "none",
                       only_in_a=tuple(only_a), only_in_b=tuple(only_b),
                       warnings=tuple(warnings))

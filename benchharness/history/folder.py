@@ -35,6 +35,7 @@ class FolderData:
     host: dict = field(default_factory=dict)
     identity: str = ""             # hex SHA-256, see module docstring
     first_started_at: str | None = None
+    levels: dict = field(default_factory=dict)   # factor -> level labels in listed order
 
 
 def folder_identity(experiment: str, folder_name: str, journal_bytes: bytes) -> str:
@@ -71,4 +72,5 @@ def read_folder(folder: str | Path) -> FolderData:
     return FolderData(path=path, name=name, experiment=res.experiment.name, factors=factors,
                       runs=runs, host=dict(res.host or {}),
                       identity=folder_identity(res.experiment.name, name, journal_bytes),
-                      first_started_at=first)
+                      first_started_at=first,
+                      levels={f: list(res.experiment.levels_of(f)) for f in factors})

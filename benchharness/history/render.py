@@ -44,11 +44,33 @@ def point_notes(t: CellTrend) -> dict[int, str]:
     return notes
 
 
+_LASTS = {True: "yes", False: "no, undone later", None: "too recent to tell"}
+
+
+def step_rows(trends: list[CellTrend]) -> list[dict]:
+    """One plain row per step over all cells, for the summaries."""
+    rows = []
+    for t in trends:
+        if t.detection is None:
+            continue
+        for st in t.detection.steps:
+            rows.append({"experiment": t.experiment, "response": t.response, "cell": t.label,
+                         "commit": t.points[st.index].commit[:12],
+                         "kind": step_kind(t.response, st.ratio, st.persists).replace(
+                             " (did not last)", ""),
+                         "ratio": f"x{st.ratio:.3f}",
+                         "interval": f"{st.ratio_low:.3f}-{st.ratio_high:.3f}",
+                         "lasts": _LASTS[st.persists]})
+    return rows
+
+
 def print_trends(trends: list[CellTrend], console=None) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    console = console or Console()
+    from benchharness.report.terminal import make_console
+
+    console = console or make_console()
     if not trends:
         console.print("No history rows match.")
         return
@@ -70,7 +92,10 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
                  (f"{round(t.conf_level * 100)}% interval", "right"), ("noise", "right"),
                  ("change here", "left")]
         for col, just in cols:
-            table.add_column(col, justify=just, overflow="fold")
+            if col == "change here":
+                table.add_column(col, justify=just, overflow="fold")
+            else:
+                table.add_column(col, justify=just, no_wrap=True)
         notes = point_notes(t)
         for i, p in enumerate(t.points):
             noise = "-"
@@ -89,13 +114,24 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
         if det is not None:
             if det.steps:
                 console.print(f"  {len(det.steps)} step(s) found (false-step level "
-                              f"{det.alpha:g} per stretch on one host).")
+                              f"{det.alpha:g} per host).")
             elif len(t.points) >= 4:
-                console.print(f"  No step found (false-step level {det.alpha:g} per stretch "
-                              "on one host).")
+                console.print(f"  No step found (false-step level {det.alpha:g} per host).")
         if t.note:
             console.print(f"  Note: {t.note}.")
         console.print()
+    rows = step_rows(trends)
+    if len(trends) > 1:
+        summary = Table(title=f"Steps found in {len(trends)} cell series", title_justify="left")
+        for col in ("cell", "commit", "kind", "ratio", "interval", "lasts"):
+            summary.add_column(col, overflow="fold")
+        for r in rows:
+            summary.add_row(r["cell"], r["commit"], r["kind"], r["ratio"], r["interval"],
+                            r["lasts"])
+        if rows:
+            console.print(summary)
+        else:
+            console.print(f"No steps found in {len(trends)} cell series.")
 
 
 # ------------------------------------------------------------------- HTML
@@ -168,19 +204,29 @@ code { font-size: 0.95em; }
 <p>{{ cells|length }} cell series. Each point is one commit measured on one host
 (results folders of the same commit and host pooled); the interval is the
 {{ conf_pct }}% confidence interval of its {{ "geometric " if any_log }}mean. Steps are
-searched for with a false-step level of {{ alpha }} per stretch measured on one host; a change
-of host is a known break, never a regression.</p>
+searched for among the points of each host, with a false-step level of {{ alpha }} per host; a
+change of host is a known break, never a regression.</p>
+<h2>Steps found</h2>
+{% if all_steps %}<table><thead><tr><th class="l">experiment</th><th class="l">response</th>
+<th class="l">cell</th><th class="l">commit</th><th class="l">kind</th><th>ratio</th>
+<th>interval</th><th class="l">lasts</th></tr></thead><tbody>
+{% for st in all_steps %}<tr><td class="l">{{ st.experiment }}</td><td class="l">{{ st.response }}</td>
+<td class="l">{{ st.cell }}</td><td class="l"><code>{{ st.commit }}</code></td>
+<td class="l step">{{ st.kind }}</td><td>{{ st.ratio }}</td><td>{{ st.interval }}</td>
+<td class="l">{{ st.lasts }}</td></tr>
+{% endfor %}</tbody></table>
+{% else %}<p class="note">None.</p>{% endif %}
 {% for c in cells %}
 <section>
 <h2>{{ c.trend.experiment }} &middot; {{ c.trend.response }} &middot; {{ c.trend.label }}</h2>
 {% if c.summary %}<p class="{{ 'step' if c.trend.detection and c.trend.detection.steps else 'note' }}">{{ c.summary }}</p>{% endif %}
 {% if c.trend.note %}<p class="note">Note: {{ c.trend.note }}.</p>{% endif %}
 <figure>{{ c.svg|safe }}</figure>
-<table><thead><tr><th>#</th><th class="l">commit</th><th class="l">committed</th>
+<table><thead><tr><th>#</th><th class="l">commit</th>{% if c.with_time %}<th class="l">committed</th>{% endif %}
 <th class="l">branch</th><th>n</th><th>{{ "geometric mean" if c.trend.scale == "log" else "mean" }}</th>
 <th>interval</th><th>noise</th><th class="l">change here</th></tr></thead><tbody>
 {% for r in c.rows %}<tr><td>{{ r.i }}</td><td class="l"><code>{{ r.commit }}</code></td>
-<td class="l">{{ r.time }}</td><td class="l">{{ r.branch }}</td><td>{{ r.n }}</td>
+{% if c.with_time %}<td class="l">{{ r.time }}</td>{% endif %}<td class="l">{{ r.branch }}</td><td>{{ r.n }}</td>
 <td>{{ r.center }}</td><td>{{ r.ci }}</td><td>{{ r.noise }}</td>
 <td class="l {{ r.cls }}">{{ r.note }}</td></tr>
 {% endfor %}</tbody></table>
@@ -216,8 +262,9 @@ def render_html(trends: list[CellTrend], experiment: str | None = None,
                                 for s in det.steps)
         elif det is not None and len(t.points) >= 4:
             summary = "No step found."
-        cells.append({"trend": t, "rows": rows, "svg": trend_figure_svg(t), "summary": summary})
+        cells.append({"trend": t, "rows": rows, "svg": trend_figure_svg(t), "summary": summary,
+                      "with_time": any(p.commit_time for p in t.points)})
     return env.from_string(_PAGE).render(
-        cells=cells, experiment=experiment, alpha=alpha,
+        cells=cells, experiment=experiment, alpha=alpha, all_steps=step_rows(trends),
         conf_pct=round((trends[0].conf_level if trends else 0.95) * 100),
         any_log=any(t.scale == "log" for t in trends))

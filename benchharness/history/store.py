@@ -15,8 +15,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from benchharness.errors import DataError, UsageError
+from benchharness.history import DEFAULT_DB  # noqa: F401  (re-exported)
 
-DEFAULT_DB = Path("results") / "history.sqlite"
 SCHEMA_VERSION = 1
 
 SCHEMA = """
@@ -25,6 +25,7 @@ CREATE TABLE IF NOT EXISTS folders (
     folder_name      TEXT NOT NULL,
     folder_path      TEXT NOT NULL,      -- absolute path at import time (informational)
     experiment       TEXT NOT NULL,
+    journal_size     INTEGER NOT NULL,   -- bytes of runs.jsonl hashed into folder_id
     commit_id        TEXT NOT NULL,
     commit_time      TEXT,               -- ISO 8601 committer time, NULL when unknown
     branch           TEXT,
@@ -38,6 +39,7 @@ CREATE TABLE IF NOT EXISTS cells (
     folder_id   TEXT NOT NULL REFERENCES folders(folder_id),
     experiment  TEXT NOT NULL,
     cell        TEXT NOT NULL,           -- canonical JSON of the levels (keys sorted)
+    cell_order  INTEGER NOT NULL,        -- position of the cell in the experiment's level order
     response    TEXT NOT NULL,           -- e.g. wall_s
     scale       TEXT NOT NULL CHECK (scale IN ('log', 'linear')),
     n           INTEGER NOT NULL,        -- timed runs with status ok
@@ -52,7 +54,8 @@ CREATE TABLE IF NOT EXISTS cells (
 );
 CREATE INDEX IF NOT EXISTS cells_by_series ON cells (experiment, response, cell);
 CREATE VIEW IF NOT EXISTS cell_history AS
-    SELECT f.commit_id, f.commit_time, f.branch, c.experiment, c.cell, c.response, c.scale,
+    SELECT f.commit_id, f.commit_time, f.branch, c.experiment, c.cell, c.cell_order,
+           c.response, c.scale,
            c.n, c.center, c.ci_low, c.ci_high, c.conf_level, c.mean, c.se, c.noise_sd,
            f.host_fingerprint, f.host_facts, f.folder_id, f.folder_name, f.started_at,
            f.imported_at
@@ -67,7 +70,14 @@ def connect(db_path: str | Path, create: bool = True) -> sqlite3.Connection:
         raise UsageError(f"{path}: no history file here; add results first with "
                          "`benchharness history add RESULTS`")
     if create:
-        path.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise UsageError(f"{path}: cannot create the history file's folder "
+                             f"({exc.strerror or exc})") from None
+    if path.is_dir():
+        raise UsageError(f"{path}: is a folder; --db names the history file, e.g. "
+                         f"{path / 'history.sqlite'}")
     try:
         conn = sqlite3.connect(str(path), isolation_level=None, timeout=30)
         conn.execute("PRAGMA foreign_keys = ON")
@@ -105,58 +115,116 @@ def _statements(script: str) -> list[str]:
 
 def _insert_folder(conn: sqlite3.Connection, row: dict) -> None:
     conn.execute(
-        "INSERT INTO folders (folder_id, folder_name, folder_path, experiment, commit_id, "
-        "commit_time, branch, started_at, host_fingerprint, host_facts, host_json, imported_at) "
-        "VALUES (:folder_id, :folder_name, :folder_path, :experiment, :commit_id, :commit_time, "
-        ":branch, :started_at, :host_fingerprint, :host_facts, :host_json, :imported_at)", row)
+        "INSERT INTO folders (folder_id, folder_name, folder_path, experiment, journal_size, "
+        "commit_id, commit_time, branch, started_at, host_fingerprint, host_facts, host_json, "
+        "imported_at) VALUES (:folder_id, :folder_name, :folder_path, :experiment, "
+        ":journal_size, :commit_id, :commit_time, :branch, :started_at, :host_fingerprint, "
+        ":host_facts, :host_json, :imported_at)", row)
 
 
 def _insert_cell(conn: sqlite3.Connection, row: dict) -> int:
     cur = conn.execute(
-        "INSERT OR IGNORE INTO cells (folder_id, experiment, cell, response, scale, n, center, "
-        "ci_low, ci_high, conf_level, mean, se, noise_sd) VALUES (:folder_id, :experiment, "
-        ":cell, :response, :scale, :n, :center, :ci_low, :ci_high, :conf_level, :mean, :se, "
-        ":noise_sd)", row)
+        "INSERT OR IGNORE INTO cells (folder_id, experiment, cell, cell_order, response, scale, "
+        "n, center, ci_low, ci_high, conf_level, mean, se, noise_sd) VALUES (:folder_id, "
+        ":experiment, :cell, :cell_order, :response, :scale, :n, :center, :ci_low, :ci_high, "
+        ":conf_level, :mean, :se, :noise_sd)", row)
     return cur.rowcount
+
+
+def _same_commit(recorded: str, given: str | None) -> bool:
+    return given is None or recorded.startswith(given) or given.startswith(recorded)
+
+
+def _selected(data, select):
+    """(runs, factors) restricted to the ``select`` levels, those factors dropped."""
+    if not select:
+        return data.runs, data.factors
+    runs = data.runs
+    for f, level in select.items():
+        if f not in data.factors:
+            raise DataError(f"{data.path}: `{f}` is not a factor of this experiment "
+                            f"(factors: {', '.join(data.factors)})")
+        if level not in data.levels.get(f, []):
+            raise DataError(f"{data.path}: `{level}` is not a level of `{f}` "
+                            f"(levels: {', '.join(data.levels.get(f, []))})")
+        runs = runs[runs[f].astype(str) == level]
+    return runs, tuple(f for f in data.factors if f not in select)
+
+
+def _record_id(identity: str, select) -> str:
+    if not select:
+        return identity
+    import hashlib
+
+    blob = json.dumps({str(k): str(v) for k, v in select.items()}, sort_keys=True)
+    return hashlib.sha256(f"{identity}\0{blob}".encode("utf-8")).hexdigest()
 
 
 def add_results(db_path: str | Path, folder: str | Path, commit: str | None = None,
                 branch: str | None = None, responses=("wall_s",), cwd: str | Path | None = None,
-                conf_level: float = 0.95) -> int:
-    """Record a results folder in the history file; returns the number of cell rows added.
+                conf_level: float = 0.95, select: dict | None = None) -> int:
+    """Record a results folder in the history file; returns the number of cell rows written.
 
     The commit (and its time and branch) is read from git in ``cwd`` (default: the
     working directory) unless given. A folder already recorded adds nothing;
-    recording it again under a different commit is refused. All rows of one
-    import are written in one transaction.
+    recording it again under a different commit is refused. A folder whose
+    journal has grown since it was recorded (a resumed run) replaces its earlier
+    rows. All rows of one import are written in one transaction.
+
+    ``select`` ({factor: level}) records only the runs at those levels, with
+    those factors left out of the cells -- e.g. the candidate side of a folder
+    that interleaved two builds, under the candidate's commit. Each selection
+    of a folder is its own record.
     """
     from benchharness.history.cells import summarize_cells
     from benchharness.history.fingerprint import host_facts, host_fingerprint
-    from benchharness.history.folder import read_folder
-    from benchharness.history.gitinfo import resolve_commit
+    from benchharness.history.folder import folder_identity, read_folder
+    from benchharness.history.gitinfo import CommitInfo, resolve_commit
 
     data = read_folder(folder)
+    runs, factors = _selected(data, select)
+    record = _record_id(data.identity, select)
     summaries = []
     for response in responses:
-        summaries.extend(summarize_cells(data.runs, data.factors, response, conf_level))
+        summaries.extend(enumerate(summarize_cells(runs, factors, response,
+                                                   conf_level, data.levels)))
+    journal = data.path / "runs.jsonl"
+    journal_bytes = journal.read_bytes() if journal.is_file() else b""
     conn = connect(db_path)
     try:
-        existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
-                                (data.identity,)).fetchone()
-        if existing is not None and commit is not None and not (
-                existing[0].startswith(commit) or commit.startswith(existing[0])):
-            raise DataError(f"{data.path}: this results folder is already recorded as commit "
-                            f"{existing[0]}; a folder measures one commit")
-        info = None
-        if existing is None:
-            info = resolve_commit(commit, branch, cwd)
-        added = 0
         conn.execute("BEGIN IMMEDIATE")
         try:
-            if existing is None:
+            existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
+                                    (record,)).fetchone()
+            if existing is not None:
+                if not _same_commit(existing[0], commit):
+                    raise DataError(f"{data.path}: this results folder is already recorded as "
+                                    f"commit {existing[0]}; a folder measures one commit")
+            else:
+                earlier = None
+                for row in conn.execute(
+                        "SELECT folder_id, journal_size, commit_id, commit_time, branch "
+                        "FROM folders WHERE experiment = ? AND folder_name = ? AND "
+                        "journal_size < ?", (data.experiment, data.name, len(journal_bytes))):
+                    if _record_id(folder_identity(data.experiment, data.name,
+                                                  journal_bytes[:row[1]]), select) == row[0]:
+                        earlier = row
+                        break
+                if earlier is not None:
+                    # the same folder, resumed since: its new summaries replace the old
+                    if not _same_commit(earlier[2], commit):
+                        raise DataError(f"{data.path}: this results folder is already "
+                                        f"recorded as commit {earlier[2]}; a folder measures "
+                                        "one commit")
+                    info = CommitInfo(earlier[2], earlier[3], branch or earlier[4])
+                    conn.execute("DELETE FROM cells WHERE folder_id = ?", (earlier[0],))
+                    conn.execute("DELETE FROM folders WHERE folder_id = ?", (earlier[0],))
+                else:
+                    info = resolve_commit(commit, branch, cwd)
                 _insert_folder(conn, {
-                    "folder_id": data.identity, "folder_name": data.name,
+                    "folder_id": record, "folder_name": data.name,
                     "folder_path": str(data.path.resolve()), "experiment": data.experiment,
+                    "journal_size": len(journal_bytes),
                     "commit_id": info.commit, "commit_time": info.commit_time,
                     "branch": info.branch, "started_at": data.first_started_at,
                     "host_fingerprint": host_fingerprint(data.host),
@@ -164,9 +232,11 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
                     "host_json": json.dumps(data.host, sort_keys=True, default=str),
                     "imported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
                 })
-            for s in summaries:
+            added = 0
+            for order, s in summaries:
                 added += _insert_cell(conn, {
-                    "folder_id": data.identity, "experiment": data.experiment, "cell": s.key,
+                    "folder_id": record, "experiment": data.experiment, "cell": s.key,
+                    "cell_order": order,
                     "response": s.response, "scale": s.scale, "n": s.n, "center": s.center,
                     "ci_low": s.ci_low, "ci_high": s.ci_high, "conf_level": s.conf_level,
                     "mean": s.mean, "se": s.se, "noise_sd": s.noise_sd,
@@ -186,8 +256,8 @@ def read_history(db_path: str | Path, experiment: str | None = None,
                  response: str | None = "wall_s", cell_filter: dict | None = None):
     """Rows of ``cell_history`` as a DataFrame, oldest first.
 
-    Order: commit time when known, else the folder's first run start, then import
-    order. ``cell_filter`` keeps cells whose levels include every ``factor: level``.
+    Order: cells as the experiment lists its levels; within a cell, commit time
+    when known, else the folder's first run start, then import order. ``cell_filter`` keeps cells whose levels include every ``factor: level``.
     """
     import pandas as pd
 
@@ -213,24 +283,25 @@ def read_history(db_path: str | Path, experiment: str | None = None,
         df = df[df["cell"].map(keep)]
     when = pd.to_datetime(df["commit_time"], utc=True, errors="coerce", format="ISO8601")
     started = pd.to_datetime(df["started_at"], utc=True, errors="coerce", format="ISO8601")
-    df = df.assign(_order=when.fillna(started), _started=started)
-    df = df.sort_values(["experiment", "response", "cell", "_order", "_started", "imported_at"],
-                        kind="stable", na_position="last")
-    return df.drop(columns=["_order", "_started"]).reset_index(drop=True)
+    first_rank = df.groupby(["experiment", "response", "cell"])["cell_order"].transform("min")
+    df = df.assign(_order=when.fillna(started), _started=started, _rank=first_rank)
+    df = df.sort_values(["experiment", "response", "_rank", "cell", "_order", "_started",
+                         "imported_at"], kind="stable", na_position="last")
+    return df.drop(columns=["_order", "_started", "_rank"]).reset_index(drop=True)
     return df
 
 
-def parse_cell_filter(text: str | None) -> dict | None:
+def parse_cell_filter(text: str | None, option: str = "--cell") -> dict | None:
     """``k=v,k2=v2`` -> dict; UsageError naming the bad part otherwise."""
     if not text:
         return None
     out = {}
     for part in text.split(","):
         if "=" not in part:
-            raise UsageError(f"--cell {text!r}: `{part}` is not factor=level; "
-                             "write e.g. --cell codec=zlib,level=6")
+            raise UsageError(f"{option} {text!r}: `{part}` is not factor=level; "
+                             f"write e.g. {option} codec=zlib,level=6")
         k, v = part.split("=", 1)
         if not k.strip():
-            raise UsageError(f"--cell {text!r}: empty factor name in `{part}`")
+            raise UsageError(f"{option} {text!r}: empty factor name in `{part}`")
         out[k.strip()] = v.strip()
     return out

@@ -12,7 +12,7 @@ from __future__ import annotations
 import json
 import math
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 _LOWER_IS_BETTER = re.compile(r"(_s|_ms|_us|_ns|_kib|_kb|_mib|_bytes|_faults|_switches|"
                               r"_blocks)$")
@@ -48,7 +48,6 @@ class CellTrend:
     detection: object | None = None      # changepoint.Detection
     note: str = ""
     conf_level: float = 0.95
-    extra: dict = field(default_factory=dict)
 
     @property
     def label(self) -> str:

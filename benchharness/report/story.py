@@ -240,6 +240,8 @@ def diagnostic_items(data: ReportData) -> list[dict]:
         "outliers": "Outlying runs",
         "runs_test": "Order of residual signs",
         "small_cells": "Cells with too few runs",
+        "hosts": "Differences between hosts",
+        "load": "Machine load and residuals",
     }
     items = []
     check = diag.get("outlier_check") if isinstance(diag.get("outlier_check"), dict) else {}

@@ -23,8 +23,10 @@ def make_console(file=None):
     stream = file or sys.stdout
     tty = hasattr(stream, "isatty") and stream.isatty()
     no_color = bool(os.environ.get("NO_COLOR")) or not tty
+    # Not a terminal (a log, a pipe): no width to fit, so keep tables readable.
+    width = None if tty else int(os.environ.get("COLUMNS", 0) or 0) or 110
     return Console(file=stream, no_color=no_color, highlight=False, emoji=False,
-                   force_terminal=tty if tty else None,
+                   force_terminal=tty if tty else None, width=width,
                    color_system=None if no_color else "auto")
 
 
@@ -81,10 +83,9 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
     con.print()
 
     t = Table(title="Analysis of variance", box=box.SIMPLE_HEAD, title_justify="left",
-              title_style="bold", caption="SS: sum of squares; MS: mean square; "
-              "η²p: partial eta squared", caption_justify="left")
-    t.add_column("source", no_wrap=True)
-    for col in ("df", "SS", "MS", "F", "p", "η²p", "ω²"):
+              title_style="bold")
+    t.add_column("Source", no_wrap=True)
+    for col in ("df", "Sum of squares", "Mean square", "F", "p", "partial η²", "ω²"):
         t.add_column(col, justify="right", no_wrap=True)
     for r in story.anova_rows(data):
         style = "bold" if r["significant"] else ("dim" if r.get("term") == "Residual" else None)

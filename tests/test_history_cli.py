@@ -1,0 +1,128 @@
+"""`benchharness history add|show` end to end on hand-written results folders.
+
+Invented series with a planted step and a planted host change (truth known by
+construction).
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from datetime import datetime, timedelta, timezone
+
+import numpy as np
+import pytest
+
+from history_helpers import HOST_A, HOST_B, write_folder
+
+
+def _history(tmp_path, n_commits=16, step_at=6, host_at=12):
+    rng = np.random.default_rng(21)
+    folders = []
+    for i in range(n_commits):
+        host = HOST_B if i >= host_at else HOST_A
+        machine = 0.8 if i >= host_at else 1.0          # the new machine is faster
+        vals = {}
+        for codec, base in (("<fast>", 1.0), ("lzma", 3.0)):
+            slow = 1.06 if (codec == "<fast>" and i >= step_at) else 1.0
+            vals[(codec,)] = list(base * slow * machine * np.exp(rng.normal(0, 0.02, 5)))
+        folders.append(write_folder(
+            tmp_path / f"archive-{i:02d}", "archive-codecs", {"codec": ["<fast>", "lzma"]},
+            vals, host=host, start=datetime(2026, 11, 1, tzinfo=timezone.utc)
+            + timedelta(days=i)))
+    return folders
+
+
+def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, cli):
+    folders = _history(tmp_path)
+    db = tmp_path / "hist.sqlite"
+    from benchharness.history.store import add_results
+
+    for i, f in enumerate(folders[:-1]):       # the library call the CLI makes
+        assert add_results(db, f, commit=f"c{i:02d}", branch="main", cwd=tmp_path) == 2
+    r = cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main", "--db", db)
+    assert r.returncode == 0, r.stderr
+    assert "2 cell row(s) added" in r.stdout
+    r = cli("history", "add", *folders[:3], "--commit", "c00", "--db", db)
+    assert r.returncode == 2 and "already recorded as commit c01" in r.stderr
+
+    out_json, out_html = tmp_path / "t.json", tmp_path / "t.html"
+    r = cli("history", "show", "--db", db, "--json", out_json, "--html", out_html,
+            "--fail-on-regression")
+    assert r.returncode == 1, r.stderr          # the planted step is an open regression
+    assert "regression: archive-codecs wall_s codec=<fast> at commit c0" in r.stderr
+    assert "STEP: regression" in r.stdout and "HOST CHANGED" in r.stdout
+    data = json.loads(out_json.read_text())
+    cells = {c["cell"]["codec"]: c for c in data["cells"]}
+    fast, lzma = cells["<fast>"], cells["lzma"]
+    assert len(fast["points"]) == 16
+    steps = fast["steps"]
+    assert len(steps) == 1
+    assert abs(int(steps[0]["commit"][1:]) - 6) <= 1
+    assert steps[0]["kind"] == "regression" and steps[0]["persists"] is True
+    assert steps[0]["ratio_low"] < 1.06 < steps[0]["ratio_high"]
+    # the 20% drop at the new machine is a known break, never a step
+    for c in (fast, lzma):
+        assert [b["commit"] for b in c["host_breaks"]] == ["c12"]
+        assert c["host_breaks"][0]["kind"] == "host change"
+        assert all(s["commit"] != "c12" for s in c["steps"])
+    assert lzma["steps"] == []
+
+    html = out_html.read_text()
+    assert html.count("<svg") == 2
+    # self-contained: nothing fetched from elsewhere
+    assert not re.search(r"<(script|link|img|iframe)\b", html)
+    assert not re.search(r"url\((?!#)", html) and "@import" not in html
+    assert not re.search(r"(src|href)\s*=\s*[\"'](?!#|data:)", html)
+    # user text is escaped
+    assert "codec=&lt;fast&gt;" in html and "<fast>" not in html
+
+
+def test_history_usage_errors(tmp_path, cli):
+    f = write_folder(tmp_path / "r", "e", {"x": ["p"]}, {("p",): [1.0, 1.1]})
+    plain = tmp_path / "plain"
+    plain.mkdir()
+    r = cli("history", "add", f, "--db", tmp_path / "h.sqlite", cwd=plain)
+    assert r.returncode == 2 and "not a git repository; pass --commit" in r.stderr
+    assert "Traceback" not in r.stderr
+    r = cli("history", "show", "--db", tmp_path / "none.sqlite")
+    assert r.returncode == 2 and "no history file" in r.stderr
+    r = cli("history", "show", "--db", tmp_path / "none.sqlite", "--cell", "bad")
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+    r = cli("--help")
+    assert "history" in r.stdout and "compare" in r.stdout
+
+
+@pytest.mark.browser
+def test_html_page_loads_offline_in_chromium(tmp_path):
+    import shutil
+
+    from benchharness.history.render import render_html
+    from benchharness.history.store import add_results, read_history
+    from benchharness.history.trends import build_trends
+
+    playwright = pytest.importorskip("playwright.sync_api")
+    exe = shutil.which("chromium") or shutil.which("chromium-browser")
+    if exe is None:
+        pytest.skip("no Chromium on this machine")
+    db = tmp_path / "h.sqlite"
+    for i, f in enumerate(_history(tmp_path, n_commits=8, step_at=4, host_at=6)):
+        add_results(db, f, commit=f"c{i:02d}", cwd=tmp_path)
+    page_file = tmp_path / "history.html"
+    page_file.write_text(render_html(build_trends(read_history(db))), encoding="utf-8")
+    requests, errors = [], []
+    with playwright.sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=exe)
+        try:
+            page = browser.new_page()
+            page.on("request", lambda r: requests.append(r.url))
+            page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.goto(page_file.as_uri())
+            assert page.locator("svg").count() == 2
+            assert page.locator("svg").first.bounding_box()["width"] > 200
+            assert "codec=<fast>" in page.inner_text("body")     # shown as text, not markup
+        finally:
+            browser.close()
+    assert errors == []
+    assert [u for u in requests if not u.startswith(("file:", "data:"))] == []
