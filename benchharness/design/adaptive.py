@@ -78,7 +78,9 @@ def adaptive_rule(exp) -> AdaptiveRule | None:
     response = "wall_s"
     if "response" in until:
         response = scalar_text(until["response"], "'response'")
-        known = _responses(exp)
+        from benchharness.quality import response_columns
+
+        known = response_columns(exp)
         if response not in known and not (response.startswith("perf_")
                                           and "perf" in exp.sections):
             raise node_error(until["response"], f"'replicates: until: response' {response!r} is "
@@ -89,20 +91,6 @@ def adaptive_rule(exp) -> AdaptiveRule | None:
     if mx < mn:
         raise node_error(keys["max"], f"'replicates: max' ({mx}) is below 'min' ({mn})")
     return AdaptiveRule(hw, mx, mn, conf, response)
-
-
-def _responses(exp) -> list[str]:
-    """Numeric runs.csv columns a rule may watch: usage figures, metrics, steady_s."""
-    from benchharness.execute.base import USAGE_FIELDS
-    from benchharness.yamlnodes import is_null, mapping_items
-
-    sec = getattr(exp, "sections", {})
-    out = list(USAGE_FIELDS)
-    if "metrics" in sec and not is_null(sec["metrics"]):
-        out += [name for name, _k, _v in mapping_items(sec["metrics"], "'metrics'")]
-    if "samples" in sec:
-        out.append("steady_s")
-    return out
 
 
 @dataclass(frozen=True)
