@@ -336,8 +336,13 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
                     # Errored or cancelled (worker died, comm lost): run it elsewhere.
                     if pr["run"] not in recorded:
                         if attempts[pr["run"]] >= 5:
+                            why = _one_line(fut.exception())
+                            hint = ""
+                            if "deserializ" in why or "No module" in why:
+                                hint = ("; the scheduler and workers need the same Python "
+                                        "packages as this machine, benchharness included")
                             raise ExecutionError(f"run {pr['run']} failed on the cluster 5 "
-                                                 f"times ({fut.exception()!r})")
+                                                 f"times ({why}){hint}")
                         rest = list(current.pop(addr, []))
                         queue.appendleft([pr] + rest)
         for note in quality.notes:
