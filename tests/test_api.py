@@ -96,3 +96,21 @@ def test_run_adds_to_history_database(tmp_path, cli):
     assert "history: 2 cell rows added" in r.stdout
     with sqlite3.connect(db) as con:
         assert con.execute("select count(*) from cells").fetchone()[0] == 2
+
+
+def test_gate_records_the_candidate_in_history(tmp_path, cli):
+    import sqlite3
+    import subprocess
+
+    subprocess.run(["git", "init", "-q"], cwd=tmp_path, check=True)
+    (tmp_path / "f").write_text("x")
+    subprocess.run(["git", "add", "."], cwd=tmp_path, check=True)
+    subprocess.run(["git", "-c", "user.name=t", "-c", "user.email=t@t", "commit", "-qm", "x"],
+                   cwd=tmp_path, check=True)
+    db = tmp_path / "h.sqlite"
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-runs", "8",
+            "--out", tmp_path / "g", "--history", db, cwd=tmp_path)
+    assert r.returncode in (0, 3), r.stderr
+    assert "history: 1 cell rows of the candidate added" in r.stdout
+    with sqlite3.connect(db) as con:
+        assert con.execute("select count(*) from cells").fetchone()[0] == 1

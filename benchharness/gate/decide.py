@@ -33,10 +33,11 @@ every possible look). Blocks with a failed run carry no timing difference.
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from dataclasses import asdict, dataclass, field
 from typing import Sequence
 
-from benchharness.gate.sequential import SequentialDesign
+from benchharness.gate.sequential import SequentialDesign, SpendingTracker
 
 VERDICTS = ("regression", "no_regression", "improvement", "inconclusive")
 OK = "ok"
@@ -52,7 +53,14 @@ class GateSettings:
     min_runs: int = 6            # blocks before the first look
     higher_is_better: bool = False
     beta: float = 0.05           # design miss rate at the design distance
-    horizon_factor: float = 1.3  # planned information / fixed-design information
+    horizon_factor: float = 0.8  # planned information / fixed-design information
+    # noise estimate that sets the horizon: "ratchet" = the largest sd seen at any look
+    # so far (the horizon never shrinks); also "current", "pilot", "upper:q" (upper
+    # 1-q confidence bound of sigma at this look) or a number (known sigma)
+    horizon_from: str = "ratchet"
+    # share of the level the sequential bounds spend: the horizon follows the
+    # noise estimate, which costs a little level; calibrated by simulation
+    level_calibration: float = 0.7
 
     def __post_init__(self):
         if not 0 < self.tolerance < 1:
@@ -81,7 +89,8 @@ class GateSettings:
 
     def design(self, workloads: int = 1) -> SequentialDesign:
         return SequentialDesign(
-            alpha=(1.0 - self.confidence) / max(1, workloads), delta=self.design_delta,
+            alpha=self.level_calibration * (1.0 - self.confidence) / max(1, workloads),
+            delta=self.design_delta,
             beta=self.beta, horizon_factor=self.horizon_factor,
             first=self.min_runs, max_blocks=self.max_runs,
         )
@@ -158,8 +167,27 @@ def _failure_verdict(blocks: Sequence[Block], alpha_w: float, max_runs: int) -> 
     return None
 
 
-def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -> Judgement:
-    """Judge one workload after the given blocks (in the order they ran)."""
+def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1,
+          tracker: SpendingTracker | None = None) -> Judgement:
+    """Judge one workload after the given blocks (in the order they ran).
+
+    ``tracker`` carries the level spent at earlier looks; the run loop keeps
+    one per workload and calls this after every block. Without it the looks
+    are replayed block by block, and the first decision is returned (what the
+    gate would have said, stopping there).
+    """
+    if tracker is None:
+        tracker = SpendingTracker(settings.design(workloads).alpha)
+        j = None
+        for i in range(1, len(blocks) + 1):
+            j = _judge(blocks[:i], settings, workloads, tracker)
+            if j.decided:
+                return j
+        return j if j is not None else _judge(blocks, settings, workloads, tracker)
+    return _judge(blocks, settings, workloads, tracker)
+
+
+def _judge(blocks, settings, workloads, tracker) -> Judgement:
     design = settings.design(workloads)
     alpha_w = design.alpha
     n_blocks = len(blocks)
@@ -196,11 +224,11 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -
             return make("inconclusive", f"only {n} blocks with both runs ok within the budget")
         return make(None, "waiting for the first look")
 
-    # sd None handled; sd > 0 from here
-    ct, horizon, final = design.critical(n, sd)
-    if at_budget and not final:
-        final = True
-        ct, horizon, _ = _final_critical(design, n, sd)
+    # sd > 0 from here
+    plan_sd = _plan_sd(diffs, settings)
+    horizon = design.horizon(plan_sd)
+    final = at_budget or n >= horizon
+    ct = tracker.boundary(n, horizon, final)
     if not math.isfinite(ct):
         if final:
             return make("inconclusive", "budget spent before a look could decide", horizon=horizon)
@@ -222,9 +250,40 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1) -
     return make(None, "undecided", lo, hi, horizon)
 
 
-def _final_critical(design: SequentialDesign, n: int, sd: float):
-    """Critical value when the budget forces this look to be the last one."""
-    from dataclasses import replace
+@lru_cache(maxsize=4096)
+def _chi2_ppf(q: float, df: int) -> float:
+    from scipy.stats import chi2
 
-    d = replace(design, max_blocks=n)
-    return d.critical(n, sd)
+    return float(chi2.ppf(q, df))
+
+
+def _running_sd(diffs):
+    """Standard deviation of diffs[:j] for j = 1..len(diffs) (nan for j = 1)."""
+    out, s1, s2 = [], 0.0, 0.0
+    for j, x in enumerate(diffs, start=1):
+        s1 += x
+        s2 += x * x
+        out.append(math.sqrt(max(s2 - s1 * s1 / j, 0.0) / (j - 1)) if j > 1 else float("nan"))
+    return out
+
+
+def _plan_sd(diffs, settings: GateSettings) -> float:
+    """Noise estimate that sets the planned horizon (see `GateSettings.horizon_from`)."""
+    mode = settings.horizon_from
+    n = len(diffs)
+    first = max(2, settings.min_runs)
+    q = None
+    if "upper:" in mode:
+        q = float(mode.split("upper:")[1])
+    def adj(sd, j):
+        if q is None:
+            return sd
+        return sd * math.sqrt((j - 1) / _chi2_ppf(q, j - 1))
+    run = _running_sd(diffs)
+    if mode.startswith("ratchet"):
+        return max(1e-9, max(adj(run[j - 1], j) for j in range(first, n + 1)))
+    if mode == "pilot":
+        return max(1e-9, run[first - 1])
+    if mode == "current" or mode.startswith("upper:"):
+        return max(1e-9, adj(run[n - 1], n))
+    return float(mode)

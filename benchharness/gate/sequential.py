@@ -47,18 +47,38 @@ is a simultaneous upper bound. Any stopping rule built from ``L`` and ``U``
 ``U_k < log(1+tol)``) therefore keeps each one-sided error at most ``a``,
 however the stopping time depends on the data.
 
-Unknown ``sigma``: ``sigma`` is replaced by ``s_k`` and ``c_k`` by the Student
-t quantile with the same one-sided tail, ``F^{-1}_{t, n_k - 1}(Phi(c_k))``
-(the significance-level matching approximation, Jennison & Turnbull 2000, on
-normal data with unknown variance).
+Unknown ``sigma``: the gate uses the t statistics ``T_k = sqrt(n_k) (m_k -
+mu) / s_k``. Their joint law at the looks is free of ``mu`` and ``sigma``, so
+boundaries ``b_k`` with the same spending,
+``P(T_j < b_j, j < k; T_k >= b_k) = A(t_k) - A(t_{k-1})``, are found on a fixed
+set of seeded simulated null paths (`t_boundaries`, `SpendingTracker`): at each
+look, the empirical upper quantile of the paths still inside. This is exact up
+to simulation error (60,000 paths), where matching each look's significance
+level to a t quantile (Jennison & Turnbull 2000) was measured here to run
+about 10% over the level at 5-15 blocks. The normal-theory ``c_k`` above
+(`boundaries`) are kept as the known-variance reference.
 
-Horizon ``N`` (information-based monitoring, Mehta & Tsiatis 2001): the number
-of blocks a fixed-size one-sided paired t-test at level ``a`` needs for power
-``1 - beta`` at the design distance ``delta`` (the gate uses the distance from
-``1 + tol`` to ``1 + 2 tol`` on the log scale), times a factor ``H`` that leaves
-room for the sequential looks, capped at the budget; recomputed from ``s_k`` at
-every look. When ``n_k >= N`` the whole level has been spent: that look is
-final.
+Horizon ``N`` (information-based monitoring, Mehta & Tsiatis 2001): the blocks
+a fixed-size one-sided paired t-test at level ``a`` needs for power ``1 - beta``
+at the design distance ``delta`` (the gate: the log distance from ``1 + tol``
+to ``1 + 2 tol``), Guenther's (1981) approximation
+``((z_a + z_beta) / (delta / sigma))^2 + z_a^2 / 2`` (the gate: beta = 0.05), times
+a factor ``H`` (the gate: 0.8, tuned by simulation),
+capped at the budget. ``sigma`` is planned with the largest ``s_j`` seen at any
+look so far (the horizon may grow, never shrink) and re-planned at every look. When
+``n_k >= N`` the whole level is spent: that look is final. What earlier looks
+really spent is counted on the same null paths under the boundaries really
+used (`SpendingTracker`), so a moving horizon never makes the total exceed
+``a``.
+
+Residual: because ``N`` follows the ``s_j`` and ``T_k`` has ``s_k`` in its
+denominator, a small early ``s`` both inflates ``T`` and advances the spending
+(the steep O'Brien-Fleming-type function amplifies this). Simulation showed up
+to about 1.3 points of extra false fails at the boundary ratio (5% nominal,
+noise CV 8%). The gate therefore spends ``0.7 a``
+(`GateSettings.level_calibration`, chosen by simulation over noise CVs 3-8%,
+``experiments/bench/gate_validation.py``); with a known ``sigma`` the error is
+exactly the level spent.
 """
 
 from __future__ import annotations
@@ -180,6 +200,185 @@ def _tail_point(mass, x, h, want):
     return float(upper_edge - frac * h)
 
 
+@lru_cache(maxsize=4096)
+def t_boundaries(looks: tuple[int, ...], alpha: float, horizon: int | None = None,
+                 paths: int = 60_000, seed: int = 19830101) -> tuple[float, ...]:
+    """Boundaries for the one-sample t statistics at the looks, spending ``obf_spending``.
+
+    Under ``mu`` = the value tested, the joint law of the t statistics
+    ``T_k = sqrt(n_k) (m_k - mu) / s_k`` at all looks is free of ``mu`` and
+    ``sigma``, so boundaries with ``P(T_j < b_j, j < k; T_k >= b_k) = A(t_k) -
+    A(t_{k-1})`` can be found once by simulating that law: ``paths`` seeded
+    Gaussian paths, and at each look the empirical upper quantile of the paths
+    still inside. The paths' t statistics after every block are simulated
+    once and shared by all tables (for long horizons they are drawn look by
+    look: the increment's sum is N(0, inc) and, given it, its sum of squares
+    about its mean is chi-square with inc - 1 df). Deterministic for a seed.
+    """
+    import numpy as np
+
+    looks = tuple(int(n) for n in looks)
+    if looks[0] < 2 or any(b <= a for a, b in zip(looks, looks[1:])):
+        raise ValueError("looks must be increasing block counts >= 2")
+    N = horizon or looks[-1]
+    if looks[-1] <= _PATH_CACHE_MAX:
+        # the same seeded paths whatever the horizon: tables share them
+        upto = next(u for u in (20, 40, 80, _PATH_CACHE_MAX) if u >= looks[-1])
+        table = _null_t_paths(paths, seed, upto)
+        columns = (table[:, n] for n in looks)
+    else:
+        columns = _null_t_stream(looks, paths, seed)
+    alive = np.ones(paths, dtype=bool)
+    spent_count = 0
+    out: list[float] = []
+    for n, tstat in zip(looks, columns):
+        target = obf_spending(n / N, alpha) if n < N else alpha
+        want = int(round(target * paths)) - spent_count
+        if want <= 0:
+            out.append(math.inf)
+            continue
+        cand = tstat[alive]
+        if want >= cand.size:
+            out.append(-math.inf)
+            alive[:] = False
+            spent_count += cand.size
+            continue
+        # the want-th largest value among paths still inside, and the next one
+        part_sorted = np.partition(cand, cand.size - want - 1)
+        hi = np.min(part_sorted[cand.size - want:])
+        lo = part_sorted[cand.size - want - 1]
+        b = float((float(hi) + float(lo)) / 2.0)
+        out.append(b)
+        alive &= ~(tstat >= b)
+        spent_count += want
+    return tuple(out)
+
+
+_PATH_CACHE_MAX = 160
+
+
+@lru_cache(maxsize=4)
+def _null_t_paths(paths: int, seed: int, upto: int):
+    """t statistics of ``paths`` seeded null paths after every block n = 0..upto (column n).
+
+    Draws block by block (row n holds every path's n-th block), so a longer
+    table extends a shorter one with the same seed: all tables share paths.
+    """
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal((upto, paths))
+    n = np.arange(1, upto + 1)[:, None]
+    total = np.cumsum(x, axis=0)
+    x *= x
+    sumsq = np.cumsum(x, axis=0)
+    del x
+    mean = total / n
+    sumsq -= n * mean * mean
+    var = np.maximum(sumsq / np.maximum(n - 1, 1), 1e-300)
+    t = mean * np.sqrt(n / var)
+    t[0, :] = 0.0
+    return np.concatenate([np.zeros((1, paths)), t], axis=0).T
+
+
+def _null_t_stream(looks, paths, seed):
+    """t statistics of seeded null paths at the looks, computed look by look (long horizons)."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    total = np.zeros(paths)
+    sumsq = np.zeros(paths)
+    prev = 0
+    for n in looks:
+        inc = n - prev
+        part = rng.standard_normal(paths) * np.sqrt(inc)
+        within = rng.chisquare(inc - 1, paths) if inc > 1 else 0.0
+        total += part
+        sumsq += part * part / inc + within
+        prev = n
+        mean = total / n
+        var = np.maximum((sumsq - n * mean * mean) / (n - 1), 1e-300)
+        yield mean * np.sqrt(n / var)
+
+
+class SpendingTracker:
+    """Alpha spent so far by one sequential test, on the shared simulated null paths.
+
+    Information-based monitoring (Lan & DeMets 1983; Mehta & Tsiatis 2001):
+    at each look ``n`` with the current horizon ``N`` the test may have spent
+    ``A(n / N)`` in total (all of ``alpha`` at a final look). What was really
+    spent at earlier looks is counted on the same seeded null t paths that
+    `t_boundaries` uses, under the boundaries actually applied, so a horizon
+    that moves between looks never makes the total exceed ``alpha``.
+    """
+
+    def __init__(self, alpha: float, paths: int = 60_000, seed: int = 19830101):
+        self.alpha = float(alpha)
+        self.paths = int(paths)
+        self.seed = int(seed)
+        self.alive = None
+        self.spent_count = 0
+        self.looks: list[tuple[int, int, float]] = []   # (n, N, boundary)
+        self._stream = None
+
+    @property
+    def spent(self) -> float:
+        return self.spent_count / self.paths
+
+    def _column(self, n: int):
+        import numpy as np
+
+        if n <= _PATH_CACHE_MAX:
+            upto = next(u for u in (20, 40, 80, _PATH_CACHE_MAX) if u >= n)
+            return _null_t_paths(self.paths, self.seed, upto)[:, n]
+        st = self._stream
+        if st is None:
+            rng = np.random.default_rng(self.seed)
+            x = rng.standard_normal((_PATH_CACHE_MAX, self.paths))
+            st = self._stream = {"rng": rng, "n": _PATH_CACHE_MAX, "total": x.sum(axis=0),
+                                 "sumsq": (x * x).sum(axis=0)}
+            del x
+        while st["n"] < n:
+            x = st["rng"].standard_normal(self.paths)
+            st["total"] += x
+            st["sumsq"] += x * x
+            st["n"] += 1
+        mean = st["total"] / n
+        var = np.maximum((st["sumsq"] - n * mean * mean) / (n - 1), 1e-300)
+        return mean * np.sqrt(n / var)
+
+    def boundary(self, n: int, horizon: int, final: bool = False) -> float:
+        """t-scale boundary at ``n`` blocks (inf: nothing to spend yet). Idempotent per n."""
+        import numpy as np
+
+        if self.looks and self.looks[-1][0] == n:
+            return self.looks[-1][2]
+        if self.looks and n < self.looks[-1][0]:
+            raise ValueError("looks must come in increasing block counts")
+        if n < 2:
+            return math.inf
+        if self.alive is None:
+            self.alive = np.ones(self.paths, dtype=bool)
+        target = self.alpha if (final or n >= horizon) else obf_spending(n / horizon, self.alpha)
+        want = int(round(target * self.paths)) - self.spent_count
+        if want <= 0:
+            self.looks.append((n, horizon, math.inf))
+            return math.inf
+        tstat = self._column(n)
+        cand = tstat[self.alive]
+        if want >= cand.size:
+            b = -math.inf
+        else:
+            part = np.partition(cand, cand.size - want - 1)
+            b = float((float(np.min(part[cand.size - want:])) + float(part[cand.size - want - 1]))
+                      / 2.0)
+        crossed = self.alive & (tstat >= b)
+        self.spent_count += int(crossed.sum())
+        self.alive &= ~crossed
+        self.looks.append((n, horizon, b))
+        return b
+
+
 def fixed_pairs(alpha: float, beta: float, d: float, cap: int = 10**6) -> int:
     """Blocks a fixed-size one-sided paired t-test at level alpha needs for power 1-beta.
 
@@ -202,9 +401,23 @@ def fixed_pairs(alpha: float, beta: float, d: float, cap: int = 10**6) -> int:
     return cap
 
 
-@lru_cache(maxsize=65536)
-def _fixed_pairs_cached(alpha: float, beta: float, d: float, cap: int) -> int:
-    return fixed_pairs(alpha, beta, d, cap)
+@lru_cache(maxsize=256)
+def _z(p: float) -> float:
+    from scipy.stats import norm
+
+    return float(norm.isf(p))
+
+
+def approx_fixed_pairs(alpha: float, beta: float, d: float) -> float:
+    """Guenther's (1981) approximation of `fixed_pairs`: ((z_a + z_b)/d)^2 + z_a^2/2.
+
+    Used for planning the horizon at every look (fast; within a block of the
+    exact noncentral-t answer).
+    """
+    if not d > 0:
+        return math.inf
+    za, zb = _z(alpha), _z(beta)
+    return ((za + zb) / d) ** 2 + za * za / 2.0
 
 
 @dataclass(frozen=True)
@@ -228,22 +441,22 @@ class SequentialDesign:
         """Planned number of blocks for this noise level (capped at the budget)."""
         if not sd > 0:
             return max(2, self.first)
-        nf = _fixed_pairs_cached(self.alpha, self.beta, round(self.delta / sd, 4),
-                                 10 * self.max_blocks + 10)
+        nf = approx_fixed_pairs(self.alpha, self.beta, self.delta / sd)
+        if not math.isfinite(nf):
+            return self.max_blocks
         return int(min(self.max_blocks, max(self.first, math.ceil(self.horizon_factor * nf))))
 
-    def critical(self, n: int, sd: float) -> tuple[float, int, bool]:
+    def critical(self, n: int, sd: float, plan_sd: float | None = None
+                 ) -> tuple[float, int, bool]:
         """(t-scale multiplier of s/sqrt(n), horizon, final) at ``n`` blocks; inf when no look.
 
         ``final`` is true when this look spends the rest of the level (n reached
         the horizon or the budget).
         """
-        from scipy.stats import norm, t
-
         first = max(2, self.first)
+        N = self.horizon(sd if plan_sd is None else plan_sd)
         if n < first:
-            return math.inf, self.horizon(sd), False
-        N = self.horizon(sd)
+            return math.inf, N, False
         final = n >= N or n >= self.max_blocks
         if n >= N:
             N = n
@@ -251,8 +464,5 @@ class SequentialDesign:
         if n not in looks:
             return math.inf, N, final
         idx = looks.index(n)
-        c = boundaries(looks, round(self.alpha, 15))[idx]
-        if not math.isfinite(c):
-            return math.inf, N, final
-        ct = float(t.isf(norm.sf(c), n - 1))
+        ct = t_boundaries(looks, round(self.alpha, 15))[idx]
         return ct, N, final

@@ -1,0 +1,186 @@
+"""The gate's run loop: warm-ups, then interleaved blocks until every workload is decided.
+
+This module owns the order in which the gate runs things and when it stops.
+For every workload (a combination of the non-build factors' levels):
+
+1. warm-up runs of each build first (untimed, recorded with status ``warmup``);
+2. then blocks: one baseline and one candidate run back to back, in a random
+   order within the block, so machine drift hits both equally (randomized
+   complete blocks; the block is an additive term removed by the within-block
+   difference); workloads take turns in a random order each round;
+3. after each block the workload is judged (`benchharness.gate.decide.judge`);
+   it drops out of the rotation once decided or at its budget.
+
+The loop talks to the outside world through an `Executor` (real processes, or
+`SimulatedExecutor` for validation) and an optional ``on_record`` callback that
+receives every finished run as a plain dict (the results folder writer plugs in
+there). With a stored baseline (an earlier results folder) only candidate runs
+are made and block ``i`` pairs the ``i``-th candidate run with the ``i``-th
+stored baseline run of that workload.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Mapping, Sequence
+
+from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
+from benchharness.gate.decide import Block, GateSettings, Judgement, judge
+from benchharness.gate.sequential import SpendingTracker
+
+BASELINE, CANDIDATE = "baseline", "candidate"
+
+
+@dataclass(frozen=True)
+class GateOutcome:
+    """Verdicts of one gate session, per workload, plus what it cost."""
+
+    settings: GateSettings
+    response: str
+    judgements: Mapping[str, Judgement]       # workload key -> judgement
+    workload_levels: Mapping[str, Mapping[str, str]]
+    runs: int                                  # timed runs made (both builds, all workloads)
+    warmups: int
+    stored_baseline: bool = False
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def verdict(self) -> str:
+        vs = [j.verdict for j in self.judgements.values()]
+        if "regression" in vs:
+            return "regression"
+        if "inconclusive" in vs or None in vs:
+            return "inconclusive"
+        if vs and all(v == "improvement" for v in vs):
+            return "improvement"
+        return "no_regression"
+
+    def exit_code(self, inconclusive: str | None = None) -> int:
+        """0 no regression (improvements included), 1 regression, 3 inconclusive.
+
+        ``inconclusive`` = ``"pass"`` maps an inconclusive verdict to 0, ``"fail"`` to 1.
+        """
+        v = self.verdict
+        if v == "regression":
+            return 1
+        if v == "inconclusive":
+            return {"pass": 0, "fail": 1}.get(inconclusive or "", 3)
+        return 0
+
+
+def response_value(m: Measurement, response: str) -> float | None:
+    """The response of one run: a resource-usage field or a custom metric in ``extra``."""
+    if response in USAGE_FIELDS:
+        v = getattr(m, response)
+    else:
+        extra = m.extra or {}
+        v = extra.get(response)
+        if v is None and isinstance(extra.get("metrics"), Mapping):
+            v = extra["metrics"].get(response)
+    try:
+        return None if v is None else float(v)
+    except (TypeError, ValueError):
+        return None
+
+
+# (workload key, role, run id, is warm-up) -> RunSpec
+SpecMaker = Callable[[str, str, int, bool], RunSpec]
+
+
+def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, executor,
+             settings: GateSettings, response: str = "wall_s", warmup: int = 1,
+             seed: int | None = None, on_record: Callable[[dict], None] | None = None,
+             stored_baseline: Mapping[str, Sequence[tuple[float | None, str]]] | None = None,
+             ) -> GateOutcome:
+    """Run the gate loop; returns the verdicts.
+
+    ``workloads`` maps a workload key to its levels of the non-build factors.
+    ``make_spec(key, role, run_id, is_warmup)`` builds the RunSpec of one run of ``role``
+    (``"baseline"`` or ``"candidate"``). ``stored_baseline`` maps a workload key
+    to (response, status) of earlier baseline runs; when given, no baseline runs
+    are made.
+    """
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    keys = list(workloads)
+    m = len(keys)
+    roles = [CANDIDATE] if stored_baseline is not None else [BASELINE, CANDIDATE]
+    budget = {k: settings.max_runs for k in keys}
+    warnings: list[str] = []
+    if stored_baseline is not None:
+        for k in keys:
+            have = len(stored_baseline.get(k, ()))
+            if have < settings.max_runs:
+                budget[k] = have
+    counter = {"run": 0, "position": 0}
+
+    def do(key: str, role: str, block: int, replicate: int, is_warmup: bool) -> Measurement:
+        run_id = counter["run"]
+        counter["run"] += 1
+        spec = make_spec(key, role, run_id, is_warmup)
+        meas = executor.execute(spec)
+        if on_record is not None:
+            on_record({
+                "run": run_id, "position": counter["position"], "block": block,
+                "replicate": replicate, "workload": key, "role": role,
+                "warmup": is_warmup, "levels": dict(spec.levels), "measurement": meas,
+            })
+        counter["position"] += 1
+        return meas
+
+    warmups = 0
+    for _ in range(max(0, int(warmup))):
+        for k in [keys[i] for i in rng.permutation(m)]:
+            for role in [roles[i] for i in rng.permutation(len(roles))]:
+                do(k, role, -1, -1, True)
+                warmups += 1
+
+    blocks: dict[str, list[Block]] = {k: [] for k in keys}
+    alpha_w = settings.design(m).alpha
+    trackers = {k: SpendingTracker(alpha_w) for k in keys}
+    judgements: dict[str, Judgement] = {}
+    open_keys = [k for k in keys]
+    for k in keys:
+        if budget[k] < settings.min_runs:
+            judgements[k] = Judgement(
+                verdict="inconclusive", blocks=0, usable_blocks=0, ratio=None, lower=None,
+                upper=None, horizon_blocks=budget[k], alpha=(1 - settings.confidence) / m,
+                reason=f"only {budget[k]} stored baseline runs; at least "
+                       f"{settings.min_runs} are needed")
+            open_keys.remove(k)
+    block_no = 0
+    runs = 0
+    while open_keys:
+        for k in [open_keys[i] for i in rng.permutation(len(open_keys))]:
+            i = len(blocks[k])
+            got: dict[str, tuple[float | None, str]] = {}
+            for role in [roles[j] for j in rng.permutation(len(roles))]:
+                meas = do(k, role, block_no, i, False)
+                runs += 1
+                got[role] = (response_value(meas, response), meas.status)
+            if stored_baseline is not None:
+                got[BASELINE] = tuple(stored_baseline[k][i])
+            block_no += 1
+            (bv, bs), (cv, cs) = got[BASELINE], got[CANDIDATE]
+            if bs == "ok" and bv is None or cs == "ok" and cv is None:
+                # a run that finished but lacks the response cannot be judged
+                bs = "failed" if bv is None else bs
+                cs = "failed" if cv is None else cs
+            blocks[k].append(Block(bv, cv, bs, cs))
+            s = settings if budget[k] == settings.max_runs else _with_budget(settings, budget[k])
+            j = judge(blocks[k], s, m, trackers[k])
+            if j.decided:
+                judgements[k] = j
+                open_keys.remove(k)
+    return GateOutcome(settings=settings, response=response, judgements=judgements,
+                       workload_levels={k: dict(v) for k, v in workloads.items()},
+                       runs=runs, warmups=warmups,
+                       stored_baseline=stored_baseline is not None,
+                       warnings=tuple(warnings))
+
+
+def _with_budget(settings: GateSettings, budget: int) -> GateSettings:
+    from dataclasses import replace
+
+    return replace(settings, max_runs=budget)

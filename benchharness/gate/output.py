@@ -1,0 +1,139 @@
+"""What the gate tells people and CI systems: terminal lines, Markdown, JUnit XML, JSON.
+
+Pure functions from a `GateOutcome` to text (the command writes the files).
+JUnit XML is the de facto format CI systems read: one ``testsuite`` named
+``benchharness gate``, one ``testcase`` per workload, a ``failure`` element on
+a regression, a ``skipped`` element on an inconclusive verdict (so it shows up
+without failing the job; the exit code still reports it).
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+from benchharness.gate.orchestrate import GateOutcome
+
+WORDS = {
+    "regression": "SLOWER",
+    "no_regression": "ok",
+    "improvement": "FASTER",
+    "inconclusive": "UNDECIDED",
+}
+
+OVERALL = {
+    "regression": "the candidate is slower than the tolerance allows",
+    "no_regression": "no workload got slower beyond the tolerance",
+    "improvement": "every workload got faster",
+    "inconclusive": "not enough evidence either way within the budget",
+}
+
+
+def _pct(r: float | None) -> str:
+    if r is None or not math.isfinite(r):
+        return "n/a"
+    return f"{(r - 1) * 100:+.1f}%"
+
+
+def _ratio(r: float | None) -> str:
+    return "n/a" if r is None or not math.isfinite(r) else f"{r:.3f}"
+
+
+def _interval(j) -> str:
+    if j.lower is None or j.upper is None:
+        return "[n/a]"
+    return f"[{_ratio(j.lower)}, {_ratio(j.upper)}]"
+
+
+def terminal_lines(out: GateOutcome) -> list[str]:
+    s = out.settings
+    kind = "higher is better" if s.higher_is_better else "lower is better"
+    lines = [
+        f"gate on {out.response} ({kind}): slowdown ratio candidate vs baseline, "
+        f"tolerance {s.tolerance * 100:g}%, confidence {s.confidence:g}, "
+        f"{len(out.judgements)} workload(s)",
+    ]
+    for w in out.warnings:
+        lines.append(w)
+    width = max([len(k) for k in out.judgements] + [8])
+    lines.append(f"  {'workload':<{width}}  {'verdict':<9}  {'ratio':>6}  {'change':>7}  "
+                 f"{'bounds':<17}  runs  why")
+    for key, j in out.judgements.items():
+        lines.append(f"  {key:<{width}}  {WORDS.get(j.verdict, '?'):<9}  {_ratio(j.ratio):>6}  "
+                     f"{_pct(j.ratio):>7}  {_interval(j):<17}  {j.blocks:>4}  {j.reason}")
+    lines.append(f"verdict: {OVERALL[out.verdict]} ({out.runs} timed runs, "
+                 f"{out.warmups} warm-up runs)")
+    return lines
+
+
+def markdown_summary(out: GateOutcome, folder: Path | None = None) -> str:
+    s = out.settings
+    icon = {"regression": "FAIL", "no_regression": "PASS", "improvement": "PASS",
+            "inconclusive": "UNDECIDED"}[out.verdict]
+    md = [f"### Performance gate: {icon}", "",
+          f"{OVERALL[out.verdict].capitalize()} (response `{out.response}`, tolerance "
+          f"{s.tolerance * 100:g}%, confidence {s.confidence:g}).", ""]
+    for w in out.warnings:
+        md += [f"> {w}", ""]
+    md += ["| workload | verdict | slowdown ratio | bounds | runs per build |",
+           "| --- | --- | ---: | --- | ---: |"]
+    for key, j in out.judgements.items():
+        md.append(f"| {key} | {WORDS.get(j.verdict, '?')} | {_ratio(j.ratio)} ({_pct(j.ratio)}) "
+                  f"| {_interval(j)} | {j.blocks} |")
+    if folder is not None:
+        md += ["", f"Results folder: `{folder}`"]
+    return "\n".join(md) + "\n\n"
+
+
+def junit_xml(out: GateOutcome) -> str:
+    import xml.etree.ElementTree as ET
+
+    cases = list(out.judgements.items())
+    suite = ET.Element("testsuite", {
+        "name": "benchharness gate", "tests": str(len(cases)),
+        "failures": str(sum(j.verdict == "regression" for _, j in cases)),
+        "skipped": str(sum(j.verdict == "inconclusive" for _, j in cases)),
+        "errors": "0",
+    })
+    for key, j in cases:
+        tc = ET.SubElement(suite, "testcase", {"classname": "benchharness.gate", "name": key})
+        text = (f"slowdown ratio {_ratio(j.ratio)} ({_pct(j.ratio)}), bounds {_interval(j)}, "
+                f"{j.blocks} runs per build; {j.reason}")
+        if j.verdict == "regression":
+            f = ET.SubElement(tc, "failure", {
+                "message": f"slower than {1 + out.settings.tolerance:g}x: {_pct(j.ratio)}",
+                "type": "performance regression"})
+            f.text = text
+        elif j.verdict == "inconclusive":
+            ET.SubElement(tc, "skipped", {"message": f"inconclusive: {text}"})
+        so = ET.SubElement(tc, "system-out")
+        so.text = text
+    suites = ET.Element("testsuites")
+    suites.append(suite)
+    ET.indent(suites)
+    return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(suites, encoding="unicode") + "\n"
+
+
+def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
+    s = out.settings
+    return {
+        "verdict": out.verdict,
+        "response": out.response,
+        "higher_is_better": s.higher_is_better,
+        "tolerance": s.tolerance,
+        "confidence": s.confidence,
+        "max_runs": s.max_runs,
+        "min_runs": s.min_runs,
+        "method": "group-sequential repeated confidence bounds, Lan-DeMets "
+                  "O'Brien-Fleming-type alpha spending, Bonferroni across workloads",
+        "stored_baseline": out.stored_baseline,
+        "warnings": list(out.warnings),
+        "runs": out.runs,
+        "warmup_runs": out.warmups,
+        "results_folder": str(folder) if folder is not None else None,
+        "workloads": [
+            {"workload": key, "levels": dict(out.workload_levels.get(key, {})),
+             **j.to_json_dict()}
+            for key, j in out.judgements.items()
+        ],
+    }

@@ -1,0 +1,187 @@
+"""Validation of the regression gate on a simulated system with a known truth.
+
+Every figure comes from many simulated gate sessions run through the real gate
+loop (`benchharness.gate.orchestrate.run_gate`) against `SimulatedExecutor`
+(lognormal run times with a planted slowdown ratio, noise CV, optional linear
+drift). Each rate is printed with its 95% Wilson interval (binomial
+uncertainty). The fixed-size design it is compared with is the smallest number
+of blocks for which a one-sided paired t-test at the same level has the same
+design power (95%) at the design distance (1+tol vs 1+2*tol), computed from the
+noncentral t distribution.
+
+    python experiments/bench/gate_validation.py            # full figures (>= 2000 gates each)
+    python experiments/bench/gate_validation.py --gates 300 # quicker look
+
+The simulated system draws times, it does not sleep; machine noise does not
+enter these figures.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
+
+from benchharness.execute.base import RunSpec  # noqa: E402
+from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel  # noqa: E402
+from benchharness.gate.decide import Block, GateSettings, judge  # noqa: E402
+from benchharness.gate.orchestrate import run_gate  # noqa: E402
+from benchharness.gate.sequential import fixed_pairs  # noqa: E402
+
+LEVEL = {"baseline": "old", "candidate": "new"}
+
+
+def wilson(k: int, n: int, z: float = 1.959964) -> tuple[float, float]:
+    """Wilson (1927) score interval for a binomial proportion."""
+    if n == 0:
+        return (float("nan"), float("nan"))
+    p = k / n
+    den = 1 + z * z / n
+    mid = (p + z * z / (2 * n)) / den
+    half = z * math.sqrt(p * (1 - p) / n + z * z / (4 * n * n)) / den
+    return (max(0.0, mid - half), min(1.0, mid + half))
+
+
+def simulate_gate(ratio: float, cv: float, seed: int, settings: GateSettings,
+                  drift_per_run: float = 0.0, workloads: int = 1):
+    """One simulated gate session; returns the judgement of each workload."""
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": ratio}}, cv=cv,
+                           drift_per_run=drift_per_run)
+    ex = SimulatedExecutor(model, seed=seed)
+    wl = {f"w{i}": {"w": str(i)} for i in range(workloads)}
+
+    def spec(key, role, run_id, warm=False):
+        return RunSpec(argv=("simulated",), run_id=run_id,
+                       levels={**wl[key], "build": LEVEL[role]})
+
+    out = run_gate(wl, spec, ex, settings, seed=seed + 10_000_019, warmup=1)
+    return list(out.judgements.values())
+
+
+def baseline_first(ratio: float, cv: float, seed: int, settings: GateSettings, n: int,
+                   drift_per_run: float):
+    """Fixed design with all baseline runs first, then all candidate runs (no interleaving)."""
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": ratio}}, cv=cv,
+                           drift_per_run=drift_per_run)
+    ex = SimulatedExecutor(model, seed=seed)
+    ex.execute(RunSpec(levels={"build": "old"}))   # warm-up of each build first
+    ex.execute(RunSpec(levels={"build": "new"}))
+    base = [ex.execute(RunSpec(levels={"build": "old"})) for _ in range(n)]
+    cand = [ex.execute(RunSpec(levels={"build": "new"})) for _ in range(n)]
+    blocks = [Block(b.wall_s, c.wall_s, b.status, c.status) for b, c in zip(base, cand)]
+    from dataclasses import replace
+
+    fixed = replace(settings, max_runs=n, min_runs=n)
+    return judge(blocks, fixed, 1)
+
+
+def scenario(name, ratio, cv, gates, settings, drift=0.0, workloads=1, seed0=0):
+    t0 = time.time()
+    verdicts = {"regression": 0, "no_regression": 0, "improvement": 0, "inconclusive": 0}
+    runs = 0
+    count = 0
+    for g in range(gates):
+        for j in simulate_gate(ratio, cv, seed0 + 7919 * g + 1, settings, drift, workloads):
+            verdicts[j.verdict] += 1
+            runs += j.blocks
+            count += 1
+    return {"name": name, "ratio": ratio, "cv": cv, "gates": count, "verdicts": verdicts,
+            "mean_runs": runs / count, "seconds": time.time() - t0, "drift": drift}
+
+
+def fmt_rate(k, n):
+    lo, hi = wilson(k, n)
+    return f"{100 * k / n:5.2f}% [{100 * lo:.2f}, {100 * hi:.2f}]"
+
+
+def sigma_d(cv):
+    return math.sqrt(2 * math.log1p(cv * cv))
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--gates", type=int, default=2000)
+    ap.add_argument("--tolerance", type=float, default=0.05)
+    args = ap.parse_args(argv)
+    tol = args.tolerance
+    st = GateSettings(tolerance=tol)
+    alpha = 1 - st.confidence
+    G = args.gates
+    print(f"gate validation: tolerance {tol:.0%}, confidence {st.confidence}, min_runs "
+          f"{st.min_runs}, max_runs {st.max_runs}, {G} simulated gates per row")
+    print("rates with 95% Wilson intervals; runs = runs of each build per workload\n")
+
+    rows = []
+    for cv in (0.03, 0.05, 0.08):
+        nfix = fixed_pairs(alpha, st.beta, st.design_delta / sigma_d(cv))
+        print(f"noise CV {cv:.0%}: fixed-size design with the same error rates "
+              f"(one-sided paired t-test, level {alpha:g}, power {1 - st.beta:g} at "
+              f"{1 + 2 * tol:g}x): {nfix} runs of each build")
+        print(f"  {'true ratio':>10}  {'fail (regression)':>26}  {'pass':>8}  {'undecided':>9}  "
+              f"{'mean runs':>9}  {'vs fixed':>8}")
+        for ratio in (1.0, 1 + tol, 1 + 2 * tol, 1 + 4 * tol, 1 - 2 * tol):
+            r = scenario(f"cv{cv}", ratio, cv, G, st)
+            v, n = r["verdicts"], r["gates"]
+            passed = v["no_regression"] + v["improvement"]
+            print(f"  {ratio:>10.2f}  {fmt_rate(v['regression'], n):>26}  "
+                  f"{100 * passed / n:7.2f}%  {100 * v['inconclusive'] / n:8.2f}%  "
+                  f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}   ({r['seconds']:.0f} s)")
+            rows.append((r, nfix))
+        print()
+
+    # At CV 3% the fixed design needs only ~11 runs, so the default first look at
+    # 6 blocks is itself more than half of it: show the large effects with an earlier look.
+    from dataclasses import replace
+
+    st3 = replace(st, min_runs=3)
+    nfix = fixed_pairs(alpha, st.beta, st.design_delta / sigma_d(0.03))
+    print(f"noise CV 3% with --min-runs 3 (first look after 3 blocks); fixed design {nfix} runs")
+    for ratio in (1.0, 1 + 2 * tol, 1 + 4 * tol, 1 - 2 * tol):
+        r = scenario("cv0.03-min3", ratio, 0.03, G, st3)
+        v, n = r["verdicts"], r["gates"]
+        passed = v["no_regression"] + v["improvement"]
+        print(f"  {ratio:>10.2f}  {fmt_rate(v['regression'], n):>26}  "
+              f"{100 * passed / n:7.2f}%  {100 * v['inconclusive'] / n:8.2f}%  "
+              f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}")
+    print()
+
+    # Drift as large as the effect: over the n runs of a fixed design the machine
+    # slows by the design effect log(1 + 2 tol).
+    cv = 0.03
+    nfix = fixed_pairs(alpha, st.beta, st.design_delta / sigma_d(cv))
+    drift = math.log1p(2 * tol) / nfix
+    print(f"drift: log-time rises {drift:.4f} per run (over {nfix} runs as much as a "
+          f"{2 * tol:.0%} slowdown), true ratio 1.00, CV {cv:.0%}")
+    r = scenario("drift", 1.0, cv, G, st, drift=drift)
+    v, n = r["verdicts"], r["gates"]
+    print(f"  interleaved gate:        false fail {fmt_rate(v['regression'], n)}, "
+          f"undecided {100 * v['inconclusive'] / n:.2f}%, mean runs {r['mean_runs']:.2f}")
+    r = scenario("drift-boundary", 1 + tol, cv, G, st, drift=drift)
+    v, n = r["verdicts"], r["gates"]
+    print(f"  interleaved gate at the boundary ratio {1 + tol:.2f}: fail "
+          f"{fmt_rate(v['regression'], n)}, undecided {100 * v['inconclusive'] / n:.2f}%")
+    k = 0
+    for g in range(G):
+        j = baseline_first(1.0, cv, 7919 * g + 3, st, nfix, drift)
+        k += j.verdict == "regression"
+    print(f"  all baseline runs first: false fail {fmt_rate(k, G)} (fixed design, {nfix} runs "
+          "of each build)")
+    print()
+
+    # Several workloads: Bonferroni alpha/m, "no regression anywhere" needs no more.
+    m = 3
+    fails = 0
+    for g in range(G // 2):
+        js = simulate_gate(1 + tol, 0.03, 104729 * g + 5, st, workloads=m)
+        fails += any(j.verdict == "regression" for j in js)
+    print(f"{m} workloads, each at true ratio {1 + tol:.2f} (the boundary), alpha/{m} each: "
+          f"gates failing anywhere {fmt_rate(fails, G // 2)}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

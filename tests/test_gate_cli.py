@@ -1,0 +1,109 @@
+"""The gate command with real processes: exit codes, JUnit XML, summary, JSON, results folder."""
+
+from __future__ import annotations
+
+import json
+import xml.etree.ElementTree as ET
+
+import pytest
+
+def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
+    junit = tmp_path / "gate.xml"
+    summary = tmp_path / "summary.md"
+    summary.write_text("earlier content\n")
+    # coreutils sleep: process start-up (about a millisecond, common practice) stays small
+    # next to the sleep, so the true ratio is close to 1.3
+    r = cli("gate", "--baseline", "sleep 0.2", "--candidate", "sleep 0.26",
+            "--seed", "3", "--max-runs", "30", "--out", tmp_path / "res",
+            "--junit", junit, "--summary", summary, "--json", tmp_path / "g.json")
+    assert r.returncode == 1, r.stdout + r.stderr
+    assert "SLOWER" in r.stdout
+    root = ET.parse(junit).getroot()
+    cases = root.findall(".//testcase")
+    assert [c.get("name") for c in cases] == ["all"]
+    assert cases[0].find("failure") is not None
+    text = summary.read_text()
+    assert text.startswith("earlier content\n") and "Performance gate: FAIL" in text
+    data = json.loads((tmp_path / "g.json").read_text())
+    assert data["verdict"] == "regression"
+    assert data["workloads"][0]["ratio"] == pytest.approx(1.3, rel=0.15)
+    folder = tmp_path / "res"
+    for name in ("experiment.yaml", "runs.jsonl", "runs.csv", "plan.csv", "host.json",
+                 "gate.json"):
+        assert (folder / name).exists(), name
+
+
+def test_identical_commands_pass(cli, tmp_path):
+    cmd = "sleep 0.05"
+    r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "25%",
+            "--seed", "5", "--max-runs", "40", "--out", tmp_path / "res",
+            "--inconclusive", "fail")
+    assert r.returncode == 0, r.stdout + r.stderr
+    # the results folder is a normal one: the runs table loads
+    from benchharness.journal import load_results
+
+    res = load_results(tmp_path / "res")
+    timed = res.runs[res.runs["status"] != "warmup"]
+    assert set(timed["build"].astype(str)) == {"baseline", "candidate"}
+    assert (timed["build"].astype(str) == "baseline").sum() == \
+        (timed["build"].astype(str) == "candidate").sum()
+
+
+def test_file_form_junit_names_each_workload(cli, tmp_path):
+    exp = tmp_path / "gate.yaml"
+    exp.write_text("""experiment: nap-gate
+about: Does the new build of the napper sleep longer?
+command: [sleep, "{build.t}"]
+factors:
+  build:
+    old: {t: "0.03"}
+    new: {t: "0.06"}
+  size: [small, large]
+warmup: 1
+gate: {factor: build, baseline: old, tolerance: 10%, max_runs: 20, min_runs: 4}
+""")
+    junit = tmp_path / "j.xml"
+    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--junit", junit)
+    assert r.returncode == 1, r.stdout + r.stderr
+    names = sorted(c.get("name") for c in ET.parse(junit).getroot().iter("testcase"))
+    assert names == ["size=large", "size=small"]
+
+
+def test_bad_gate_section_is_located(cli, tmp_path):
+    exp = tmp_path / "gate.yaml"
+    exp.write_text("""experiment: x
+command: [echo, "{build}"]
+factors:
+  build: [old, new]
+gate: {factor: build, baseline: oldd}
+""")
+    r = cli("gate", exp)
+    assert r.returncode == 2
+    assert f"{exp}:5:" in r.stderr and "oldd" in r.stderr
+    assert "Traceback" not in r.stderr
+
+
+def test_usage_errors_exit_2(cli, tmp_path):
+    r = cli("gate", "--baseline", "true")
+    assert r.returncode == 2 and "--candidate" in r.stderr
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--tolerance", "abc")
+    assert r.returncode == 2 and "tolerance" in r.stderr
+
+
+def test_failing_candidate_is_a_regression(cli, tmp_path):
+    r = cli("gate", "--baseline", "true", "--candidate", "false", "--seed", "2",
+            "--out", tmp_path / "res", "--json", tmp_path / "g.json")
+    assert r.returncode == 1, r.stdout + r.stderr
+    data = json.loads((tmp_path / "g.json").read_text())
+    assert "failed" in data["workloads"][0]["reason"]
+
+
+def test_stored_baseline_warns(cli, tmp_path):
+    cmd = "sleep 0.02"
+    r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "4",
+            "--max-runs", "10", "--out", tmp_path / "first")
+    assert r.returncode in (0, 3), r.stdout + r.stderr
+    r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "5",
+            "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
+    assert r.returncode in (0, 3), r.stdout + r.stderr
+    assert "earlier session" in r.stdout

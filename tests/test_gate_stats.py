@@ -1,0 +1,209 @@
+"""The gate's statistics: boundaries, fixed-design size, decisions, error rates on a simulated system.
+
+Reference checks name their source beside them. The simulated-system checks are
+planted-answer tests: the true ratio is known by construction.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from benchharness.execute.base import RunSpec
+from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+from benchharness.gate.decide import Block, GateSettings, judge
+from benchharness.gate.orchestrate import run_gate
+from benchharness.gate.sequential import (boundaries, fixed_pairs, look_schedule, obf_spending,
+                                          t_boundaries)
+
+
+def test_spending_function_shape():
+    # Lan & DeMets (1983): A(1) = alpha, A increasing, A(t) = 2 - 2 Phi(z_{1-a/2}/sqrt t)
+    from scipy.stats import norm
+
+    a = 0.05
+    assert obf_spending(1.0, a) == a
+    assert obf_spending(0.0, a) == 0.0
+    ts = np.linspace(0.05, 1, 20)
+    vals = [obf_spending(t, a) for t in ts]
+    assert all(x < y for x, y in zip(vals, vals[1:]))
+    assert obf_spending(0.25, a) == pytest.approx(2 - 2 * norm.cdf(1.959964 / 0.5), rel=1e-6)
+
+
+def test_boundaries_spend_the_planned_level_against_scipy_mvn():
+    # Outside check: scipy.stats.multivariate_normal with corr(Z_j, Z_k) = sqrt(n_j/n_k)
+    # (the joint law of the standardized sums at the looks).
+    from scipy.stats import multivariate_normal
+
+    looks = (4, 8, 12)
+    a = 0.05
+    c = boundaries(looks, a)
+    n = np.array(looks, dtype=float)
+    cov = np.sqrt(np.minimum.outer(n, n) / np.maximum.outer(n, n))
+    for k in range(1, 4):
+        crossed = 1 - multivariate_normal(mean=np.zeros(k), cov=cov[:k, :k]).cdf(np.array(c[:k]))
+        assert crossed == pytest.approx(obf_spending(looks[k - 1] / 12, a), abs=3e-4)
+
+
+def test_single_look_is_the_fixed_test():
+    from scipy.stats import norm, t
+
+    assert boundaries((10,), 0.05)[0] == pytest.approx(norm.isf(0.05), abs=2e-3)
+    # t boundaries by simulation: one look is the Student t quantile (scipy.stats.t)
+    assert t_boundaries((10,), 0.05)[0] == pytest.approx(t.isf(0.05, 9), abs=0.03)
+
+
+def test_t_boundaries_keep_the_level_on_fresh_paths():
+    rng = np.random.default_rng(11)
+    looks = look_schedule(6, 15)
+    ct = np.array(t_boundaries(looks, 0.05))
+    R, N = 20000, looks[-1]
+    d = rng.standard_normal((R, N))
+    n = np.arange(1, N + 1)
+    m = np.cumsum(d, axis=1) / n
+    s = np.sqrt((np.cumsum(d * d, axis=1) - n * m * m) / np.maximum(n - 1, 1))
+    idx = np.array(looks) - 1
+    tt = m[:, idx] * np.sqrt(n[idx]) / s[:, idx]
+    rate = (tt >= ct).any(axis=1).mean()
+    assert abs(rate - 0.05) < 3 * math.sqrt(0.05 * 0.95 / R)
+
+
+def test_fixed_pairs_matches_statsmodels_power():
+    # Outside check: statsmodels TTestPower (one-sample / paired t-test power).
+    from statsmodels.stats.power import TTestPower
+
+    for d in (0.5, 1.1):
+        n = fixed_pairs(0.05, 0.05, d)
+        p = TTestPower()
+        assert p.power(effect_size=d, nobs=n, alpha=0.05, alternative="larger") >= 0.95
+        assert p.power(effect_size=d, nobs=n - 1, alpha=0.05, alternative="larger") < 0.95
+
+
+def _blocks(ratio, n, sd=0.02, seed=0):
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):
+        b = math.exp(rng.normal(0, sd))
+        out.append(Block(b, b * ratio * math.exp(rng.normal(0, sd))))
+    return out
+
+
+def test_judge_waits_for_min_runs_and_decides_clear_cases():
+    st = GateSettings()
+    assert judge(_blocks(1.5, 5), st).verdict is None
+    assert judge(_blocks(1.5, 12), st).verdict == "regression"
+    assert judge(_blocks(1.0, 30), st).verdict == "no_regression"
+    assert judge(_blocks(0.8, 30), st).verdict == "improvement"
+
+
+def test_higher_is_better_flips_the_ratio():
+    st = GateSettings(higher_is_better=True)
+    # candidate throughput 30% lower = slowdown 1/0.7
+    j = judge(_blocks(0.7, 20), st)
+    assert j.verdict == "regression"
+    assert j.ratio == pytest.approx(1 / 0.7, rel=0.05)
+
+
+def test_candidate_failures_are_a_regression_whatever_the_timings():
+    st = GateSettings()
+    blocks = _blocks(0.9, 4) + [Block(1.0, None, "ok", "timeout")]
+    j = judge(blocks, st)
+    assert j.verdict == "regression" and "failed or timed out" in j.reason
+    # both flaky at the same rate: not a regression from failures alone
+    flaky = [Block(1.0, 1.0, "failed" if i % 5 == 0 else "ok", "failed" if i % 5 == 1 else "ok")
+             for i in range(20)]
+    assert judge(flaky, st).verdict != "regression"
+
+
+def test_budget_makes_it_inconclusive():
+    st = GateSettings(max_runs=8, min_runs=6)
+    j = judge(_blocks(1.05, 8, sd=0.05), st)
+    assert j.verdict == "inconclusive"
+
+
+def _sim(ratio, cv, seed, st, drift=0.0, workloads=1):
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": ratio}}, cv=cv,
+                           drift_per_run=drift)
+    ex = SimulatedExecutor(model, seed=seed)
+    wl = {f"w{i}": {"w": str(i)} for i in range(workloads)}
+    lv = {"baseline": "old", "candidate": "new"}
+    out = run_gate(wl, lambda k, r, i, w=False: RunSpec(levels={**wl[k], "build": lv[r]}),
+                   ex, st, seed=seed + 1)
+    return out
+
+
+def test_simulated_executor_draws_the_planted_model():
+    m = SimulatedModel(effects={"build": {"new": 1.2}}, cv=0.05, base_s=2.0)
+    ex = SimulatedExecutor(m, seed=3)
+    xs = [ex.execute(RunSpec(levels={"build": "new"})).wall_s for _ in range(4000)]
+    assert np.mean(xs) == pytest.approx(2.4, rel=0.01)
+    assert np.std(xs) / np.mean(xs) == pytest.approx(0.05, rel=0.05)
+    again = SimulatedExecutor(m, seed=3).execute(RunSpec(levels={"build": "new"})).wall_s
+    assert again == xs[0]
+
+
+def test_small_simulation_error_rates_fixed_seed():
+    # Planted-answer check (small, fast version of experiments/bench/gate_validation.py).
+    st = GateSettings()
+    G = 150
+    at_one = [_sim(1.0, 0.03, 100 + g, st).verdict for g in range(G)]
+    at_tol = [_sim(1.05, 0.03, 500 + g, st).verdict for g in range(G)]
+    at_two = [_sim(1.10, 0.03, 900 + g, st).verdict for g in range(G)]
+    assert at_one.count("regression") <= 3            # expected ~0
+    assert at_tol.count("regression") <= 15           # expected <= 5% of 150 = 7.5
+    assert at_two.count("regression") >= 0.9 * G
+    assert at_one.count("no_regression") + at_one.count("improvement") >= 0.9 * G
+
+
+def test_interleaving_survives_drift_that_baseline_first_does_not():
+    st = GateSettings()
+    drift = math.log(1.10) / 11   # over 11 runs the machine slows by 10%
+    outs = [_sim(1.0, 0.03, 2000 + g, st, drift=drift).verdict for g in range(60)]
+    assert outs.count("regression") <= 3
+    # all baseline first, then all candidate: the drift alone looks like a regression
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": 1.0}}, cv=0.03,
+                           drift_per_run=drift)
+    from dataclasses import replace
+
+    fails = 0
+    for g in range(30):
+        ex = SimulatedExecutor(model, seed=g)
+        base = [ex.execute(RunSpec(levels={"build": "old"})).wall_s for _ in range(11)]
+        cand = [ex.execute(RunSpec(levels={"build": "new"})).wall_s for _ in range(11)]
+        j = judge([Block(b, c) for b, c in zip(base, cand)],
+                  replace(st, max_runs=11, min_runs=11))
+        fails += j.verdict == "regression"
+    assert fails >= 25
+
+
+@pytest.mark.slow
+def test_error_rates_large():
+    st = GateSettings()
+    G = 2000
+    at_tol = [_sim(1.05, 0.03, 10_000 + g, st).verdict for g in range(G)]
+    k = at_tol.count("regression")
+    # at most 5% judged with binomial uncertainty (3 standard errors)
+    assert k / G <= 0.05 + 3 * math.sqrt(0.05 * 0.95 / G)
+
+
+def test_throughput_response_through_the_loop():
+    # planted: candidate takes 1.3x as long, so its throughput is 1/1.3 of the baseline's
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": 1.3}}, cv=0.03,
+                           work_items=1000.0)
+    ex = SimulatedExecutor(model, seed=8)
+    lv = {"baseline": "old", "candidate": "new"}
+    out = run_gate({"all": {}}, lambda k, r, i, w=False: RunSpec(levels={"build": lv[r]}), ex,
+                   GateSettings(higher_is_better=True), response="items_per_s", seed=9)
+    j = out.judgements["all"]
+    assert out.verdict == "regression" and out.exit_code() == 1
+    assert j.ratio == pytest.approx(1.3, rel=0.05)
+
+
+def test_exit_code_mapping_for_inconclusive():
+    st = GateSettings(max_runs=6, min_runs=6)
+    out = _sim(1.05, 0.05, 3, st)
+    assert out.verdict == "inconclusive"
+    assert out.exit_code() == 3
+    assert out.exit_code("pass") == 0 and out.exit_code("fail") == 1
