@@ -87,6 +87,9 @@ def check_expect(spec: ExpectSpec, m: Measurement) -> tuple[bool, str]:
         return False, m.message or "the command did not start"
     if m.exit_code not in spec.exit_codes:
         want = " or ".join(map(str, spec.exit_codes))
+        if m.message:
+            # The executor's message carries the stderr tail: keep it, it says why.
+            return False, f"{m.message} (expected exit code {want})"
         return False, f"exit code {m.exit_code}, expected {want}"
     for name, pattern, raw in (("stdout", spec.stdout, m.stdout_tail),
                                ("stderr", spec.stderr, m.stderr_tail)):

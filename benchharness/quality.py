@@ -46,6 +46,22 @@ class QualityConfig:
         return any(x is not None for x in (self.metrics, self.expect, self.samples, self.perf))
 
 
+def response_columns(exp) -> list[str]:
+    """Numeric runs.csv columns a rule or a choice may use as a response: the usage
+    figures, the ``metrics:`` names and ``steady_s`` with ``samples:`` (``perf_*``
+    counters too when ``perf:`` is on; not listed, their names depend on the events)."""
+    from benchharness.execute.base import USAGE_FIELDS
+    from benchharness.yamlnodes import is_null, mapping_items
+
+    sec = getattr(exp, "sections", {}) or {}
+    out = list(USAGE_FIELDS)
+    if "metrics" in sec and not is_null(sec["metrics"]):
+        out += [name for name, _k, _v in mapping_items(sec["metrics"], "'metrics'")]
+    if "samples" in sec:
+        out.append("steady_s")
+    return out
+
+
 def quality_config(exp) -> QualityConfig:
     """Validate and parse the quality sections of an experiment."""
     sec = getattr(exp, "sections", {}) or {}
@@ -69,6 +85,13 @@ def quality_config(exp) -> QualityConfig:
         from benchharness.perfstat import parse_perf
 
         perf = parse_perf(sec["perf"])
+    if perf is not None:
+        from benchharness.yamlnodes import node_error
+
+        clash = set(exp.factor_names) & set(perf.columns())
+        if clash:
+            raise node_error(sec["perf"], f"factor {sorted(clash)[0]!r} clashes with a perf "
+                                          "counter column; rename the factor")
     if metrics is not None and perf is not None:
         from benchharness.yamlnodes import node_error
 

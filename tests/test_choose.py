@@ -153,6 +153,21 @@ def test_only_ok_runs_count():
     assert c.runs_dropped == 3
 
 
+def test_a_setting_without_ok_runs_is_named_not_silently_dropped():
+    # Planted: codec=lzma only ever failed (a wrong answer); it is no candidate, and the
+    # output says so rather than calling zlib "better than every other setting" unexplained.
+    from benchharness.choose.render import terminal_text
+
+    df = _runs({(("codec", "zlib"),): 1.0, (("codec", "bz2"),): 1.3}, seed=3)
+    bad = pd.DataFrame([{"codec": "lzma", "status": "failed", "replicate": r,
+                         "wall_s": 0.5} for r in range(3)])
+    c = choose(pd.concat([df, bad], ignore_index=True), factors=["codec"])
+    assert [x["setting"] for x in c.candidates] == [{"codec": "zlib"}, {"codec": "bz2"}]
+    assert c.to_dict()["without_runs"] == [{"codec": "lzma"}]
+    assert "Not candidates (no ok run with a value of wall_s): codec=lzma." in terminal_text(c)
+    assert choose(df, factors=["codec"]).to_dict()["without_runs"] == []
+
+
 def test_residual_variance_matches_statsmodels():
     # Reference: statsmodels ols residual mean square, full interaction model
     # C(setting) * C(machine), and additive model without replication.

@@ -190,6 +190,9 @@ def test_direction_comes_from_the_metrics_section(tmp_path):
     ("choose:\n  across: disk\n  confidence: 2\n", "between 0 and 1"),
     ("choose:\n  also: {a: 1}\n", "must be a list"),
     ("choose: [threads]\n", "must be a mapping"),
+    ("choose:\n  across: [dsk]\n", "'dsk' is not a column of the runs"),
+    ("choose:\n  also: [max_rss]\n", "'max_rss' is not a measured response"),
+    ("choose:\n  response: wal_s\n", "'wal_s' is not a measured response"),
 ])
 def test_section_errors_carry_file_and_line(section, needle):
     from benchharness.choose.config import choose_settings

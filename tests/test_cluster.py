@@ -191,3 +191,42 @@ def test_block_split_over_hosts_uses_pairs():
     an = benchharness.analyze(pd.DataFrame(rows), factors=["a"], transform="log")
     assert an.block == "block@host"
     assert any("(block, host) pairs" in n for n in an.notes)
+
+
+def test_workers_without_benchharness_give_one_clear_line(tmp_path):
+    # A worker started where benchharness is not importable: the run stops with one line
+    # naming the problem and the fix, not a Dask traceback.
+    env = {k: v for k, v in _env().items() if k != "PYTHONPATH"}
+    sched_file = tmp_path / "scheduler.json"
+    log = open(tmp_path / "cluster.log", "w")
+    procs = [subprocess.Popen([PY, "-m", "distributed.cli.dask_scheduler", "--host",
+                               "127.0.0.1", "--port", "0", "--no-dashboard", "--scheduler-file",
+                               str(sched_file)], env=env, stdout=log, stderr=log,
+                              start_new_session=True, cwd=tmp_path)]
+    try:
+        deadline = time.time() + 30
+        while not sched_file.exists() and time.time() < deadline:
+            time.sleep(0.1)
+        address = json.loads(sched_file.read_text())["address"]
+        procs.append(subprocess.Popen([PY, "-m", "distributed.cli.dask_worker", address,
+                                       "--nthreads", "1", "--resources", "bench=1",
+                                       "--no-dashboard", "--host", "127.0.0.1"], env=env,
+                                      stdout=log, stderr=log, start_new_session=True,
+                                      cwd=tmp_path))
+        from distributed import Client
+
+        with Client(address, timeout=20) as c:
+            c.wait_for_workers(1, timeout=30)
+        r = _run(["run", _exp(tmp_path, reps=1), "--out", tmp_path / "res", "--scheduler",
+                  address, "--same-host-ok", "--quiet", "--no-analysis"])
+        assert r.returncode == 2
+        assert "Traceback" not in r.stderr and len(r.stderr.strip().splitlines()) == 1
+        assert "cannot run benchharness code" in r.stderr and "PYTHONPATH" in r.stderr
+    finally:
+        for p in procs:
+            try:
+                os.killpg(p.pid, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
+            p.wait()
+        log.close()

@@ -56,15 +56,19 @@ def test_padded_environment_recorded_and_varies(tmp_path):
     p = write(tmp_path, """\
         experiment: pad
         pad_env: true
-        command: [PY, -c, "import os; print(len(os.environ.get('BENCHHARNESS_PAD', '')))"]
+        command: [PY, -c, "import os; print('pad', len(os.environ.get('BENCHHARNESS_PAD', '')))"]
         factors: {a: [x, y]}
         replicates: 6
         seed: 1
+        metrics:
+          seen_bytes: {pattern: 'pad ([0-9]+)', unit: bytes, better: lower}
         """)
     df = run_experiment(load_experiment(p), out=tmp_path / "res").runs
     assert "pad_env_bytes" in df.columns
     sizes = df["pad_env_bytes"].astype(int)
     assert sizes.between(0, 4096).all() and sizes.nunique() > 3
+    # the recorded length is the one the child saw
+    assert (df["seen_bytes"].astype(int) == sizes).all()
 
 
 def test_clean_env_is_minimal(tmp_path):
@@ -88,8 +92,16 @@ def test_aslr_off_is_recorded(tmp_path):
     p = write(tmp_path, """\
         experiment: aslr
         aslr: off
-        command: [PY, -c, "print(open('/proc/self/personality').read())"]
+        command: [PY, -c, "print('persona', int(open('/proc/self/personality').read(), 16))"]
         factors: {a: [x]}
+        metrics:
+          persona: {pattern: 'persona ([0-9]+)', unit: flags, better: lower}
         """)
     df = run_experiment(load_experiment(p), out=tmp_path / "res").runs
-    assert df["aslr"].iloc[0] in ("off", "on")
+    if df["status"].iloc[0] != "ok":
+        # the kernel refused personality(ADDR_NO_RANDOMIZE): the run says so
+        assert "personality" in df["message"].iloc[0] or "ASLR" in df["message"].iloc[0]
+        pytest.skip(f"kernel refuses ADDR_NO_RANDOMIZE: {df['message'].iloc[0]}")
+    assert df["aslr"].iloc[0] == "off"
+    # ADDR_NO_RANDOMIZE = 0x0040000 (linux/personality.h), set in the child's personality
+    assert int(df["persona"].iloc[0]) & 0x0040000

@@ -43,11 +43,21 @@ def test_rule_is_read_from_the_experiment_file():
     assert adaptive.adaptive_rule(Experiment.from_text(BASE + "replicates: 3\n")) is None
 
 
+def test_rule_may_watch_a_custom_metric_or_steady_s():
+    text = (BASE + "replicates: {until: {ratio_halfwidth: 2%, response: rate_rps}}\n"
+            "metrics:\n  rate_rps: {pattern: 'rate ([0-9.]+)', better: higher}\n")
+    assert adaptive.adaptive_rule(Experiment.from_text(text)).response == "rate_rps"
+    text = (BASE + "replicates: {until: {ratio_halfwidth: 2%, response: steady_s}}\n"
+            "samples: {format: lines}\n")
+    assert adaptive.adaptive_rule(Experiment.from_text(text)).response == "steady_s"
+
+
 @pytest.mark.parametrize("text, fragment", [
     ("replicates: {max: 10}\n", "needs the key 'until'"),
     ("replicates: {until: {ratio_halfwidth: 2%}, max: 3, min: 5}\n", "below 'min'"),
     ("replicates: {until: {width: 2%}}\n", "unknown key 'width'"),
     ("replicates: {until: {ratio_halfwidth: 200%}}\n", "between 0% and 100%"),
+    ("replicates: {until: {ratio_halfwidth: 2%, response: wal_s}}\n", "not a measured response"),
 ])
 def test_bad_rules(text, fragment):
     e = Experiment.from_text(BASE + text, path="c.yaml")
@@ -139,6 +149,22 @@ def test_pilot_timing_and_plan_estimate():
     assert est.warmup_s == pytest.approx(per_rep)
     assert est.total_s == pytest.approx(5 * per_rep)
     assert budget.replicates_in_budget(10 * per_rep + 1, per_rep, est.warmup_s) == 9
+
+
+def test_plan_estimate_counts_cells_the_pilot_lacks():
+    from benchharness.design import build_plan
+
+    exp = Experiment.from_text(BASE + "replicates: 2\n")
+    # a pilot of codec zlib only: 4 of the 6 cells are not in it
+    secs = {("zlib", "1"): 0.5, ("zlib", "9"): 0.7}
+    est = budget.estimate_plan(build_plan(exp), budget.pilot_timing(_pilot(secs, 0.0),
+                                                                     ["codec", "level"]))
+    assert est.cells_without_pilot == 4 and "4 cell(s)" in est.notes[0]
+    # a pilot of another experiment (no shared factor) says so
+    other = _pilot(secs, 0.0).rename(columns={"codec": "x", "level": "y"})
+    est = budget.estimate_plan(build_plan(exp), budget.pilot_timing(other, ["codec", "level"]))
+    assert "none of this experiment's factors" in est.notes[0]
+    assert est.timed_s == pytest.approx(12 * 0.6)
 
 
 def test_next_replicate_fits():

@@ -238,3 +238,24 @@ def test_blocked_run_end_to_end(tmp_path):
     # Drift of 1% per run is mostly absorbed by the 8 blocks; batch is found near x1.25.
     assert by["batch"]["active"]
     assert by["batch"]["ratio"] == pytest.approx(1.25, rel=0.05)
+
+
+def test_analyze_command_on_a_fraction_uses_unaliased_terms_and_shows_chains(tmp_path, cli):
+    # `benchharness analyze RESULTS` on a 2^(4-1) fraction: by default the same unaliased
+    # model as after `run` (main effects) and the alias-chain estimates.
+    from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+    from benchharness.experiment import Experiment
+    from benchharness.runner import run_experiment
+
+    text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
+            " '{pin}']\nfactors:\n  threads: [4, 16]\n  batch: [1, 64]\n  cache: [off, on]\n"
+            "  pin: [no, yes]\ndesign: {resolution: 4}\nreplicates: 2\nseed: 4\n")
+    exp = Experiment.from_text(text)
+    model = SimulatedModel(effects={"threads": {"16": 0.8}}, cv=0.02)
+    out = run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(model, seed=2))
+    r = cli("analyze", out.folder)
+    assert r.returncode == 0, r.stderr
+    assert "inestimable: the observed cells" not in r.stdout
+    assert "A (+ BCD)" in r.stdout and "AB (+ CD)" in r.stdout
+    anova = r.stdout.split("Residual")[0]
+    assert "threads:batch" not in anova

@@ -142,6 +142,14 @@ def test_generated_factor_cannot_be_used_in_another_generator():
         design_from_generators(letters(5), ["D = ABC", "E = AD"])
 
 
+@pytest.mark.parametrize("gens", [["D = AB", "E = AB"], ["D = AB", "E = -AB"]])
+def test_two_generators_with_one_product_are_refused(gens):
+    # D = AB and E = AB give D and E one column (the defining word DE has length 2):
+    # resolution II, two main effects that can never be told apart (common practice).
+    with pytest.raises(DesignError, match="share one column"):
+        design_from_generators(letters(5), gens)
+
+
 def test_only_two_level_factors():
     with pytest.raises(DesignError, match="3 levels"):
         design_from_generators([("a", ["1", "2", "3"]), ("b", ["x", "y"]), ("c", ["p", "q"])],

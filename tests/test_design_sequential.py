@@ -150,3 +150,26 @@ def test_plan_shows_the_adaptive_rule(cli, tmp_path):
     assert d["runs"] == 4 * 4
     r = cli("plan", f)
     assert "adaptive: 4 to 30" in r.stdout
+
+
+def test_resume_keeps_the_decisions_of_the_interrupted_session(tmp_path):
+    # Interrupted in replicate 4 (after three boundary decisions), then resumed: the
+    # first session's decisions stay in stopping.json under earlier_sessions.
+    class Interrupted(SimulatedExecutor):
+        calls = 0
+
+        def execute(self, spec, on_start=None):
+            Interrupted.calls += 1
+            if Interrupted.calls == 14:
+                raise KeyboardInterrupt
+            return super().execute(spec, on_start=on_start)
+
+    exp = Experiment.from_text(BASE + "replicates: {until: {ratio_halfwidth: 0.1%}, max: 6, "
+                                      "min: 2}\n")
+    run_experiment(exp, out=tmp_path / "r", executor=Interrupted(MODEL, seed=1))  # Ctrl-C: kept
+    first = json.loads((tmp_path / "r" / "stopping.json").read_text())
+    assert [d["after_replicate"] for d in first["decisions"]] == [1, 2, 3]
+    resume_experiment(tmp_path / "r", executor=SimulatedExecutor(MODEL, seed=2))
+    stop = json.loads((tmp_path / "r" / "stopping.json").read_text())
+    assert stop["earlier_sessions"][0]["decisions"] == first["decisions"]
+    assert [d["after_replicate"] for d in stop["decisions"]][-1] == 6

@@ -39,6 +39,12 @@ def test_expect_catches_wrong_output_and_exit():
     assert bad.status == "failed" and "wrong output" in bad.message
     ok, why = check_expect(spec, _m(status="failed", code=3, out=b"checksum 9f2c\n"))
     assert not ok and why == "exit code 3, expected 0"
+    # the executor's own message (with the stderr tail that says why) is kept
+    failed = Measurement(status="failed", exit_code=2, wall_s=0.01,
+                         message="exit code 2: can't open file 'w.py'")
+    bad = apply_expect(spec, failed)
+    assert bad.status == "failed"
+    assert bad.message == "exit code 2: can't open file 'w.py' (expected exit code 0)"
     # timeouts stay timeouts
     assert apply_expect(spec, _m(status="timeout", code=None)).status == "timeout"
 
@@ -147,6 +153,8 @@ def test_malformed_output_gives_missing_values_with_reasons(tmp_path):
     ("m: {unit: s, better: lower}", "needs a source"),
     ("codec: {json: a, better: lower}", "already a factor"),
     ("wall_s: {json: a, better: lower}", "already a runs.csv column"),
+    ("aslr: {json: a, better: lower}", "already a runs.csv column"),
+    ("steady_state: {json: a, better: lower}", "already a runs.csv column"),
     ("m: {file: out.json, better: lower}", "file needs json"),
     ("m: {json: 'a..b', better: lower}", "empty part"),
     ("m: {pattern: '(x)', from: stdin, better: lower}", "use stdout or stderr"),
@@ -160,6 +168,15 @@ def test_metric_config_errors_are_located(body, needle):
     with pytest.raises(ExperimentError) as ei:
         parse_metrics(exp.sections["metrics"], exp.factor_names)
     assert str(ei.value).startswith("exp.yaml:5:") and needle in str(ei.value)
+
+
+def test_every_runs_csv_column_is_reserved():
+    # A metric (or factor) named like a column the runner writes would overwrite that
+    # column in runs.csv (e.g. `aslr`), so every such column is reserved.
+    from benchharness.experiment import RESERVED_COLUMNS
+    from benchharness.journal import CORE_COLUMNS, LATER_COLUMNS, LEAD_COLUMNS
+
+    assert set(LEAD_COLUMNS + CORE_COLUMNS + LATER_COLUMNS) <= RESERVED_COLUMNS
 
 
 # --------------------------------------------------------------------------- provenance
@@ -257,6 +274,19 @@ def test_perf_section_values():
     assert parse_perf(_exp("perf: [instructions]").sections["perf"]).events == ("instructions",)
     with pytest.raises(ExperimentError):
         parse_perf(_exp("perf: []").sections["perf"])
+
+
+@pytest.mark.parametrize("section,needle", [
+    ("perf: true\nmetrics: {perf_cycles: {json: a, better: lower}}", "rename the metric"),
+    ("perf: true", "rename the factor"),
+])
+def test_perf_columns_may_not_be_taken_by_a_metric_or_factor(section, needle):
+    # Either would overwrite the counter's runs.csv column.
+    from benchharness.quality import quality_config
+
+    with pytest.raises(ExperimentError, match=needle):
+        quality_config(_exp(section, factors="{perf_cycles: [a, b]}" if "factor" in needle
+                            else "{codec: [zlib, lzma]}"))
 
 
 # --------------------------------------------------------------------------- load

@@ -51,6 +51,8 @@ class Choice:
     reasons: list = field(default_factory=list)
     runs_used: int = 0
     runs_dropped: int = 0
+    #: settings that were run but have no ok run with a value of the response
+    without_runs: list = field(default_factory=list)
 
     def to_dict(self) -> dict:
         d = {
@@ -70,6 +72,7 @@ class Choice:
             "residual": dict(self.residual),
             "runs_used": self.runs_used,
             "runs_dropped": self.runs_dropped,
+            "without_runs": [dict(w) for w in self.without_runs],
             "candidates": [dict(c) for c in self.candidates],
             "reasons": list(self.reasons),
         }
@@ -278,6 +281,7 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
         pareto=None if pareto_idx is None else [as_map(settings[i]) for i in pareto_idx],
         responses=responses_info, reasons=reasons, runs_used=main.n_runs,
         runs_dropped=main.dropped_runs,
+        without_runs=[as_map(w) for w in main.without_runs],
     )
 
 

@@ -84,11 +84,16 @@ def choose_settings(experiment) -> dict:
             elif key in ("across", "also"):
                 if isinstance(to_plain(v), str):
                     out[key] = [x.strip() for x in to_plain(v).split(",") if x.strip()]
+                    entries = [(x, v) for x in out[key]]
                 else:
-                    out[key] = [scalar_text(x, f"an entry of choose.{key}")
-                                for x in sequence_items(v, f"choose.{key}")]
+                    entries = [(scalar_text(x, f"an entry of choose.{key}"), x)
+                               for x in sequence_items(v, f"choose.{key}")]
+                    out[key] = [x for x, _n in entries]
+                for x, n in entries:
+                    _check_column(experiment, key, x, n)
             elif key == "response":
                 out["response"] = scalar_text(v, "choose.response")
+                _check_column(experiment, "response", out["response"], v)
             elif key == "confidence":
                 c = as_float(v, "choose.confidence")
                 if not 0 < c < 1:
@@ -100,6 +105,36 @@ def choose_settings(experiment) -> dict:
             raise ExperimentError(exc.bare, path=path, line=exc.line, col=exc.col) from None
         raise
     return out
+
+
+#: Columns besides the factors that can be environments (`across`).
+_ENVIRONMENT_COLUMNS = ("host", "worker", "block", "replicate")
+
+
+def _check_column(experiment, key, name, node) -> None:
+    """An `across` entry must be a factor or an environment column; `also` and
+    `response` a measured response (usage figure, metric, steady_s, perf counter)."""
+    from benchharness.yamlnodes import node_error
+
+    factors = tuple(getattr(experiment, "factor_names", ()) or ())
+    if not factors:
+        return
+    if key == "across":
+        if name not in factors and name not in _ENVIRONMENT_COLUMNS:
+            raise node_error(node, f"choose.across: {name!r} is not a column of the runs; use a "
+                                   f"factor ({', '.join(factors)}) or one of "
+                                   f"{', '.join(_ENVIRONMENT_COLUMNS)}")
+        return
+    else:
+        from benchharness.quality import response_columns
+
+        if name.startswith("perf_") and "perf" in (getattr(experiment, "sections", {}) or {}):
+            return
+        known = response_columns(experiment)
+        what = "a measured response"
+    if name not in known:
+        raise node_error(node, f"choose.{key}: {name!r} is not {what}; use one of "
+                               f"{', '.join(known)}")
 
 
 def _levels(experiment, name) -> tuple[str, ...]:

@@ -65,6 +65,8 @@ class ResponseModel:
     n_runs: int
     dropped_runs: int               # rows excluded (status not ok, missing value)
     block: str | None = None        # block column fitted as an additive term
+    #: settings present in the table without one ok run with a value (not candidates)
+    without_runs: tuple[tuple[str, ...], ...] = ()
 
     @property
     def sign(self) -> float:
@@ -168,6 +170,14 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
         return [o for o in out if o in present], keys
 
     settings, s_keys = combos(control)
+    seen = set(settings)
+    all_keys = zip(*[df[c].astype(str).tolist() for c in control])
+    without_runs = tuple(dict.fromkeys(k for k in all_keys if k not in seen))
+
+    def listed(key):
+        return tuple(orders[c].index(v) if v in orders.get(c, ()) else len(orders.get(c, ()))
+                     for c, v in zip(control, key))
+    without_runs = tuple(sorted(without_runs, key=listed))
     envs, e_keys = combos(across)
     s_index = {s: i for i, s in enumerate(settings)}
     e_index = {e: i for i, e in enumerate(envs)}
@@ -228,7 +238,7 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
         settings=tuple(settings), environments=tuple(envs), cell_means=means,
         cell_counts=counts, setting_means=setting_means, weights=weights, sigma=sigma,
         df=dfe, residual_model=residual, n_runs=int(n), dropped_runs=int(n_total - n),
-        block=block if block_cols else None,
+        block=block if block_cols else None, without_runs=without_runs,
     )
 
 

@@ -74,6 +74,9 @@ def section_dict(choice) -> dict:
         "Worst-case loss: how much worse than the best of the other settings this setting "
         f"can be, at {d['confidence'] * 100:g}% confidence (multiple comparisons with the best).",
     ]
+    if d.get("without_runs"):
+        notes.append(f"Not candidates (no ok run with a value of {d['response']}): "
+                     + "; ".join(_setting(w) for w in d["without_runs"]) + ".")
     if d["across"]:
         what = (f"{d['across'][0]} level" if len(d["across"]) == 1
                 else " and ".join(d["across"]) + " combination")

@@ -75,7 +75,17 @@ def adaptive_rule(exp) -> AdaptiveRule | None:
         if not 0.5 <= conf < 1:
             raise node_error(until["confidence"], "confidence must be between 50% and 100%, "
                                                   "like 95%")
-    response = scalar_text(until["response"], "'response'") if "response" in until else "wall_s"
+    response = "wall_s"
+    if "response" in until:
+        response = scalar_text(until["response"], "'response'")
+        from benchharness.quality import response_columns
+
+        known = response_columns(exp)
+        if response not in known and not (response.startswith("perf_")
+                                          and "perf" in exp.sections):
+            raise node_error(until["response"], f"'replicates: until: response' {response!r} is "
+                                                f"not a measured response; use one of "
+                                                f"{', '.join(known)}")
     mn = as_int(keys["min"], "'replicates: min'", minimum=2) if "min" in keys else 3
     mx = as_int(keys["max"], "'replicates: max'", minimum=2) if "max" in keys else 50
     if mx < mn:

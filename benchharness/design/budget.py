@@ -108,7 +108,7 @@ def estimate_plan(plan, timing: PilotTiming) -> PlanEstimate:
     for r in plan.runs:
         key = tuple(str(r.levels.get(f, "")) for f in timing.factors)
         if key not in timing.cell_mean_s:
-            missing.add(key)
+            missing.add(tuple(sorted((str(k), str(v)) for k, v in r.levels.items())))
         s = timing.run_s(r.levels)
         if r.warmup:
             warm += s
@@ -116,9 +116,13 @@ def estimate_plan(plan, timing: PilotTiming) -> PlanEstimate:
             timed += s
             per_rep[r.replicate] = per_rep.get(r.replicate, 0.0) + s
     notes = []
-    if missing:
+    if not timing.factors:
+        notes.append("the pilot has none of this experiment's factors; every run is estimated "
+                     f"at the pilot's mean of {timing.mean_s:.3g} s")
+    elif missing:
         notes.append(f"{len(missing)} cell(s) were not in the pilot; their runs are estimated "
                      f"at the pilot's mean of {timing.mean_s:.3g} s")
+    per_rep = dict(sorted(per_rep.items()))
     return PlanEstimate(timed + warm, timed, warm, per_rep, timing.overhead_s, len(missing),
                         tuple(notes))
 

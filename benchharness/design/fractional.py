@@ -411,6 +411,14 @@ def design_from_generators(factors, generator_texts: Sequence[str]) -> Fractiona
                 f"generator {t!r} uses {names[q]!r} ({W.LETTERS[q]}), which is itself generated "
                 f"by {generated[q]!r}; write generators over basic (not generated) factors only")
         gens.append(Generator(pos, mask, sign))
+    seen = {}
+    for g, t in zip(gens, generator_texts):
+        if g.word in seen:
+            raise DesignError(
+                f"generator {t!r} multiplies the same factors as {seen[g.word]!r}: the two "
+                f"generated factors would share one column (resolution II) and could never be "
+                f"told apart; give each generated factor a different product")
+        seen[g.word] = t
     if len(gens) >= len(names):
         raise DesignError("as many generators as factors: at least one factor must be basic")
     return FractionalDesign(names, labels, tuple(gens))

@@ -72,6 +72,15 @@ class ReplicateGate:
         self.decisions: list[dict] = []
         self.stopped: dict | None = None
         self._read = read_records or self._read_journal
+        # A resumed folder: keep the decisions of the earlier sessions.
+        self.earlier: list[dict] = []
+        prev = self.folder / STOPPING_FILE
+        if prev.exists():
+            try:
+                old = json.loads(prev.read_text(encoding="utf-8"))
+                self.earlier = list(old.pop("earlier_sessions", None) or []) + [old]
+            except (OSError, ValueError, AttributeError):
+                pass
 
     def _read_journal(self) -> list:
         from benchharness import journal as J
@@ -140,9 +149,12 @@ class ReplicateGate:
         return None
 
     def to_json_dict(self) -> dict:
-        return {"rule": self.rule.to_json_dict() if self.rule else None,
-                "budget_s": self.budget_s, "replicate_durations_s": self.durations,
-                "decisions": self.decisions, "stopped": self.stopped}
+        out = {"rule": self.rule.to_json_dict() if self.rule else None,
+               "budget_s": self.budget_s, "replicate_durations_s": self.durations,
+               "decisions": self.decisions, "stopped": self.stopped}
+        if self.earlier:
+            out["earlier_sessions"] = self.earlier
+        return out
 
     def _write(self) -> None:
         from benchharness import journal as J

@@ -115,6 +115,11 @@ def _payload(c: Mapping, pr: Mapping, timeout_s, spec=None, clean_env=False,
             "teardown": part(c["teardown"])}
 
 
+def _one_line(exc) -> str:
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text if len(text) <= 160 else text[:157] + "..."
+
+
 def _record_from(pr: Mapping, result: Mapping, position: int, quality=None, token=None) -> dict:
     from benchharness.runner import _record
 
@@ -211,7 +216,13 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
             raise ExecutionError(f"the Dask scheduler at {scheduler} has no workers; start "
                                  f"some with `dask worker {scheduler} --nthreads 1 --resources "
                                  f"{RESOURCE}=1`")
-        idents = client.run(remote.identity)
+        try:
+            idents = client.run(remote.identity)
+        except Exception as exc:  # noqa: BLE001 - raised on the worker, re-raised by Dask
+            raise ExecutionError(
+                f"the workers of {scheduler} cannot run benchharness code "
+                f"({_one_line(exc)}); install benchharness on every worker (or start "
+                f"`dask worker` with it on PYTHONPATH)") from None
         for w in check_workers(workers, idents, same_host_ok):
             print(f"warning: {w}", file=sys.stderr)
         host_of = {}
@@ -325,8 +336,13 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
                     # Errored or cancelled (worker died, comm lost): run it elsewhere.
                     if pr["run"] not in recorded:
                         if attempts[pr["run"]] >= 5:
+                            why = _one_line(fut.exception())
+                            hint = ""
+                            if "deserializ" in why or "No module" in why:
+                                hint = ("; the scheduler and workers need the same Python "
+                                        "packages as this machine, benchharness included")
                             raise ExecutionError(f"run {pr['run']} failed on the cluster 5 "
-                                                 f"times ({fut.exception()!r})")
+                                                 f"times ({why}){hint}")
                         rest = list(current.pop(addr, []))
                         queue.appendleft([pr] + rest)
         for note in quality.notes:
