@@ -308,8 +308,22 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         missing = _missing_cells(fcells, sizes[: len(fnames)], fnames, flevels)
         shown = "; ".join(", ".join(f"{k}={v}" for k, v in m.items()) for m in missing[:5])
         more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
-        notes.append(f"{len(missing)} of {expected_cells} cells have no ok runs ({shown}{more}); "
-                     "effects that need them are inestimable and their means are left out")
+        by_design = False
+        try:
+            from benchharness.design.spec import design_of
+
+            d = design_of(prep.experiment) if prep.experiment is not None else None
+            by_design = bool(d is not None and d.changes_plan and d.design.is_fraction)
+        except Exception:  # noqa: BLE001 - a plain table has no design section
+            by_design = False
+        if by_design and len(missing) == expected_cells - d.design.n_cells:
+            notes.append(f"the fractional design runs {d.design.n_cells} of {expected_cells} "
+                         "cells by plan; effects aliased with each other are reported together "
+                         "(see the fraction's alias chains)")
+        else:
+            notes.append(f"{len(missing)} of {expected_cells} cells have no ok runs "
+                         f"({shown}{more}); effects that need them are inestimable and their "
+                         "means are left out")
     if df_res <= 0:
         notes.append("no residual degrees of freedom (one run per cell for this model): sums of "
                      "squares are shown without F tests, intervals or diagnostics; add replicates "

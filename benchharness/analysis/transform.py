@@ -197,7 +197,8 @@ def choose(mode: str, profile: Profile | None, positive: bool, why_no_profile: s
         if mode == "boxcox":
             raise DataError(f"cannot estimate the Box-Cox λ: {why_no_profile}")
         return Choice("log", 0.0, f"λ cannot be estimated ({why_no_profile}); the log scale is "
-                                  "the usual one for run times (common practice)")
+                                  "the usual one for positive, ratio-scaled responses such as times and "
+                                  "rates (common practice)")
     lo, hi = profile.ci
     lh = profile.lam_hat
     interval = f"λ̂ = {lh:.2f}, 95% interval [{lo:.2f}, {hi:.2f}]"
@@ -205,8 +206,9 @@ def choose(mode: str, profile: Profile | None, positive: bool, why_no_profile: s
         return Choice("boxcox", lh, f"Box-Cox requested; {interval}")
     has0, has1 = lo <= 0 <= hi, lo <= 1 <= hi
     if has0 and has1:
-        return Choice("log", 0.0, f"{interval} contains both 0 and 1; run times are positive and "
-                                  "ratio-scaled, so the log scale is used (common practice)")
+        return Choice("log", 0.0, f"{interval} contains both 0 and 1; the response is positive and "
+                                  "ratio-scaled (like times and rates), so the log scale is used "
+                                  "(common practice)")
     if has0:
         return Choice("log", 0.0, f"{interval} contains 0 (log)")
     if has1:
