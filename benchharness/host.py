@@ -307,46 +307,86 @@ def _warning(check: str, severity: str, message: str, fix: str) -> dict:
     return {"check": check, "severity": severity, "message": message, "fix": fix}
 
 
+class BusySampler:
+    """Busy-process sampling split in two, so the wait can overlap other work.
+
+    `start` takes the first CPU-time reading of every other process; `result`
+    takes the second one at least ``interval_s`` later (sleeping only for what
+    is left) and returns the processes above ``threshold`` % of one CPU over
+    the whole elapsed interval. Processes started after `start` (our own
+    subprocesses, for instance) are not sampled.
+    """
+
+    def __init__(self, interval_s: float = 0.1, threshold: float = BUSY_PROCESS_PERCENT,
+                 exclude: set[int] | None = None):
+        self.interval_s = interval_s
+        self.threshold = threshold
+        self.exclude = exclude
+        self._procs = None
+        self._t0 = None
+        self._busy = None
+
+    def start(self) -> "BusySampler":
+        import psutil
+
+        me = os.getpid()
+        skip = set(self.exclude or ()) | {me}
+        try:
+            # our own chain (the shell, a CI runner) is not "other work"
+            skip |= {p.pid for p in psutil.Process(me).parents()}
+        except psutil.Error:
+            pass
+        procs = []
+        for p in psutil.process_iter(["pid", "name"]):
+            if p.pid in skip:
+                continue
+            try:
+                p.cpu_percent(None)
+                procs.append(p)
+            except psutil.Error:
+                continue
+        self._procs = procs
+        self._t0 = time.monotonic()
+        return self
+
+    def result(self) -> list[dict]:
+        if self._busy is not None:
+            return self._busy
+        if self._procs is None:
+            self.start()
+        left = self.interval_s - (time.monotonic() - self._t0)
+        if left > 0:
+            time.sleep(left)
+        import psutil
+
+        busy = []
+        for p in self._procs:
+            try:
+                pct = p.cpu_percent(None)
+            except psutil.Error:
+                continue
+            if pct >= self.threshold:
+                busy.append({"pid": p.pid, "name": p.info.get("name") or "?",
+                             "cpu_percent": round(pct, 1)})
+        busy.sort(key=lambda d: -d["cpu_percent"])
+        self._busy = busy
+        self._procs = None
+        return busy
+
+
 def busy_processes(interval_s: float = 0.1, threshold: float = BUSY_PROCESS_PERCENT,
                    exclude: set[int] | None = None) -> list[dict]:
     """Processes using more than ``threshold`` % of one CPU over ``interval_s``."""
-    import psutil
-
-    me = os.getpid()
-    skip = set(exclude or ()) | {me}
-    try:
-        # our own chain (the shell, a CI runner) is not "other work"
-        skip |= {p.pid for p in psutil.Process(me).parents()}
-    except psutil.Error:
-        pass
-    procs = []
-    for p in psutil.process_iter(["pid", "name"]):
-        if p.pid in skip:
-            continue
-        try:
-            p.cpu_percent(None)
-            procs.append(p)
-        except psutil.Error:
-            continue
-    time.sleep(interval_s)
-    busy = []
-    for p in procs:
-        try:
-            pct = p.cpu_percent(None)
-        except psutil.Error:
-            continue
-        if pct >= threshold:
-            busy.append({"pid": p.pid, "name": p.info.get("name") or "?",
-                         "cpu_percent": round(pct, 1)})
-    busy.sort(key=lambda d: -d["cpu_percent"])
-    return busy
+    return BusySampler(interval_s, threshold, exclude).start().result()
 
 
-def check_host(facts: dict | None = None, busy_interval_s: float = 0.1) -> list[dict]:
+def check_host(facts: dict | None = None, busy_interval_s: float = 0.1,
+               busy_sampler: BusySampler | None = None) -> list[dict]:
     """Warnings about this machine's state, each ``{check, severity, message, fix}``.
 
     ``severity`` is ``warning`` (likely to disturb timings; fixable) or
-    ``note`` (worth knowing when reading the results).
+    ``note`` (worth knowing when reading the results). ``busy_sampler``: a
+    `BusySampler` started earlier (its wait then overlaps the caller's work).
     """
     facts = facts or collect_facts()
     out: list[dict] = []
@@ -359,7 +399,10 @@ def check_host(facts: dict | None = None, busy_interval_s: float = 0.1) -> list[
             f"1-minute load average is {load[0]:.2f} on {ncpu} logical CPUs; other work "
             "competes with the benchmark for CPU time and caches",
             "wait for the machine to go quiet, stop other jobs, or run on a dedicated host"))
-    busy = busy_processes(busy_interval_s) if busy_interval_s > 0 else []
+    if busy_sampler is not None:
+        busy = busy_sampler.result()
+    else:
+        busy = busy_processes(busy_interval_s) if busy_interval_s > 0 else []
     if busy:
         top = ", ".join(f"{b['name']} (pid {b['pid']}, {b['cpu_percent']:.0f}%)" for b in busy[:5])
         out.append(_warning(
@@ -490,12 +533,13 @@ def host_check_mode(exp) -> str:
     raise yn.node_error(node, f"'host_check' is {text!r}; use warn, off or strict")
 
 
-def preflight(exp, facts: dict | None = None) -> list[dict]:
+def preflight(exp, facts: dict | None = None,
+              busy_sampler: BusySampler | None = None) -> list[dict]:
     """Run the host checks an experiment asks for; raise in ``strict`` mode on a warning."""
     mode = host_check_mode(exp)
     if mode == "off":
         return []
-    found = check_host(facts)
+    found = check_host(facts, busy_sampler=busy_sampler)
     blocking = [w for w in found if w["severity"] == "warning"]
     if mode == "strict" and blocking:
         from benchharness.errors import ExecutionError

@@ -141,6 +141,12 @@ def _epoch(iso: str) -> float | None:
         return None
 
 
+def _sample(cpus):
+    from benchharness.host import sample_run_conditions
+
+    return sample_run_conditions(cpus)
+
+
 class RunQuality:
     """Per-results-folder state of the quality checks (see module docstring)."""
 
@@ -153,6 +159,7 @@ class RunQuality:
         self.perf_note = ""
         self._samples_fh = None
         self._last_sync = 0.0
+        self._fast = not self.cfg.active
         if self.cfg.perf is not None:
             from benchharness.perfstat import perf_support
 
@@ -219,12 +226,18 @@ class RunQuality:
 
     # -- per run ---------------------------------------------------------------
 
-    def prepare(self, spec: RunSpec, levels: Mapping[str, str], cell: Mapping) -> tuple:
-        """The spec to execute and a token for `finish`."""
-        from benchharness.host import sample_run_conditions
+    def prepare(self, spec: RunSpec, levels: Mapping[str, str], cell: Mapping,
+                sample_later: bool = False) -> tuple:
+        """The spec to execute and a token for `finish`.
 
-        if not self.cfg.active:  # the common case, kept cheap: only the run conditions
-            return spec, {"conditions": sample_run_conditions(spec.cpus), "fast": True}
+        ``sample_later``: with no quality section active, the run conditions
+        are not sampled here; the caller calls `sample` while the run executes
+        (else `finish` samples them).
+        """
+        if self._fast:  # the common case, kept cheap: only the run conditions
+            return spec, {"conditions": None if sample_later else _sample(spec.cpus),
+                          "fast": True, "cpus": spec.cpus}
+        from benchharness.host import sample_run_conditions
         token: dict = {"levels": dict(levels), "cwd": spec.cwd}
         if self.cfg.samples is not None and spec.capture_bytes < SAMPLES_CAPTURE_BYTES:
             spec = replace(spec, capture_bytes=SAMPLES_CAPTURE_BYTES)
@@ -250,13 +263,24 @@ class RunQuality:
         token["t0"] = time.time()
         return spec, token
 
+    @staticmethod
+    def sample(token: dict) -> None:
+        """Sample the run conditions of a `prepare` token made with ``sample_later``."""
+        if token.get("conditions") is None:
+            token["conditions"] = _sample(token.get("cpus"))
+
     def finish(self, token: Mapping, planned: Mapping, m: Measurement) -> Measurement:
         """Apply expect, metrics, perf counts and samples to one run's measurement."""
         if token.get("fast") and type(m.extra) is dict:
             # No quality sections: add the run conditions to this run's own extra dict
             # (a fresh dict per measurement) instead of copying the measurement.
-            for k, v in token["conditions"].items():
-                m.extra.setdefault(k, v)
+            cond = token["conditions"]
+            if cond is None:
+                cond = _sample(token.get("cpus"))
+            extra = m.extra
+            for k, v in cond.items():
+                if k not in extra:
+                    extra[k] = v
             return m
         extra = dict(m.extra or {})
         for k, v in token.get("conditions", {}).items():

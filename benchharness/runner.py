@@ -185,10 +185,17 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     from benchharness.sections import validate_sections
 
     validate_sections(exp)  # malformed capability sections fail before a folder exists
-    from benchharness.host import preflight
+    from benchharness.host import BusySampler, host_check_mode, preflight
 
+    # The busy-process sample spans the setup below instead of a sleep of its
+    # own: started first, read once the folder is written (strict mode: before
+    # the folder exists, since it may refuse to start).
+    mode = host_check_mode(exp)
+    sampler = BusySampler().start() if mode != "off" else None
     start_facts = collect_facts()
-    host_warnings = preflight(exp, start_facts)  # host_check: strict stops here
+    host_warnings = None
+    if mode == "strict":
+        host_warnings = preflight(exp, start_facts, busy_sampler=sampler)  # may stop here
     plan = plan or build_plan(exp_for_plan, seed=seed, **plan_kwargs)
     check_controls(exp, plan.runs)
     folder = J.new_folder(Path(base), exp.name, out)
@@ -199,9 +206,6 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         if plan.info:
             J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
                                                               default=str))
-        facts = start_facts
-        facts["warnings"] = host_warnings
-        J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
 
         exp_dir = str(Path(exp.path).resolve().parent) if exp.path != "<string>" else os.getcwd()
         session = {
@@ -222,6 +226,17 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         if budget_s is not None:
             session["budget_s"] = budget_s
         J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+        facts = start_facts
+
+        def write_host_json():
+            # Called just before the first run (the busy-process sample then
+            # spans the folder set-up, provenance and the launcher's start).
+            facts["warnings"] = (host_warnings if host_warnings is not None
+                                 else preflight(exp, facts, busy_sampler=sampler))
+            J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+
+        if scheduler:
+            write_host_json()
         J.fsync_dir(folder)
         planned = [{"run": r.run, "position": r.position, "block": r.block,
                     "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
@@ -236,7 +251,7 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
 
             gate = gate_for(exp, plan, folder, budget_s, estimate_s)
             outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts,
-                               stop_check=gate)
+                               stop_check=gate, before_first_run=write_host_json)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -331,6 +346,7 @@ class _CellCache:
         from benchharness.execute.controls import parse_controls
 
         self.exp = exp
+        self.factor_names = tuple(exp.factor_names)
         self.cache: dict[tuple, dict] = {}
         self.controls = parse_controls(exp)
         if self.controls.clean_env:
@@ -343,7 +359,7 @@ class _CellCache:
         self.cwd = session.get("cwd") or os.getcwd()
 
     def get(self, levels: Mapping[str, str]) -> dict:
-        key = tuple(levels[f] for f in self.exp.factor_names)
+        key = tuple([levels[f] for f in self.factor_names])
         c = self.cache.get(key)
         if c is None:
             exp = self.exp
@@ -402,7 +418,7 @@ def _record(pr: Mapping, m: Measurement | None, status: str, message: str) -> di
 
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
              executor, progress: Progress | None, facts: dict, prior=(),
-             stop_check=None) -> RunOutcome:
+             stop_check=None, before_first_run=None) -> RunOutcome:
     own_executor = executor is None
     if own_executor:
         executor = default_executor()
@@ -422,6 +438,8 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     quality = RunQuality(exp, folder)
     distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
     quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    if before_first_run is not None:
+        before_first_run()
     if not done:  # a fresh folder: show the host warnings found before it started
         for w in facts.get("warnings") or []:
             if isinstance(w, dict) and w.get("severity") == "warning":
@@ -459,9 +477,32 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             jr.mark_inflight(run_id, pid, pgid)
         return cb
 
+    # While a run executes, the harness prepares the next run's spec and samples
+    # this run's conditions (executors that support it), so that only the
+    # journal line lies between one run's end and the next one's request.
+    overlap = bool(getattr(executor, "supports_while_running", False))
+    ahead: dict = {}   # run id -> RunSpec prepared while the run before it executed
+
+    def spec_for(pr, c, run_env):
+        return _spec((c["argv"], c["shell"]), c, timeout_s, run_id=pr["run"],
+                     levels=pr["levels"], env=run_env,
+                     inflight_path=inflight_path if records_start else None)
+
+    def while_running_for(index, qtoken):
+        def cb():
+            try:
+                quality.sample(qtoken)
+                if pad_rng is None and index + 1 < len(todo):
+                    nxt = todo[index + 1]
+                    ahead.clear()
+                    ahead[nxt["run"]] = spec_for(nxt, cells.get(nxt["levels"]), None)
+            except Exception:  # noqa: BLE001 - done again, and reported, on the main path
+                ahead.clear()
+        return cb
+
     stop_notes = []
     try:
-        for pr in todo:
+        for index, pr in enumerate(todo):
             if stop_check is not None:
                 why = stop_check.before_run(pr)
                 if why:
@@ -503,13 +544,17 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if ok:
                     session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
-                spec, qtoken = quality.prepare(
-                    _spec((c["argv"], c["shell"]), c, timeout_s, run_id=pr["run"],
-                          levels=levels, env=run_env,
-                          inflight_path=inflight_path if records_start else None), levels, c)
+                spec = ahead.pop(pr["run"], None) if run_env is None else None
+                if spec is None:
+                    spec = spec_for(pr, c, run_env)
+                spec, qtoken = quality.prepare(spec, levels, c, sample_later=overlap)
                 if records_start:
                     # The executor records the child itself: no harness wake-up mid-run.
-                    m = executor.execute(spec)
+                    if overlap:
+                        m = executor.execute(spec, while_running=while_running_for(index,
+                                                                                   qtoken))
+                    else:
+                        m = executor.execute(spec)
                 else:
                     m = executor.execute(spec, on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None

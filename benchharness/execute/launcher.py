@@ -87,12 +87,23 @@ class FrameReader:
         return marshal.loads(body)
 
 
+_SECOND = [None, ""]  # the last whole second formatted, and its text up to the dot
+
+
 def utc_now_iso():
-    """Current UTC time, ISO 8601 with microseconds (``2026-01-31T23:59:59.123456+00:00``)."""
+    """Current UTC time, ISO 8601 with microseconds (``2026-01-31T23:59:59.123456+00:00``).
+
+    The date and time up to the second are formatted once per second (a run
+    of a short command otherwise spends longer here than in a system call).
+    """
     ns = time.time_ns()
-    t = time.gmtime(ns // 1_000_000_000)
-    return (f"{t.tm_year:04d}-{t.tm_mon:02d}-{t.tm_mday:02d}T{t.tm_hour:02d}:{t.tm_min:02d}:"
-            f"{t.tm_sec:02d}.{(ns // 1000) % 1_000_000:06d}+00:00")
+    sec = ns // 1_000_000_000
+    if sec != _SECOND[0]:
+        t = time.gmtime(sec)
+        _SECOND[1] = (f"{t.tm_year:04d}-{t.tm_mon:02d}-{t.tm_mday:02d}T{t.tm_hour:02d}:"
+                      f"{t.tm_min:02d}:{t.tm_sec:02d}.")
+        _SECOND[0] = sec
+    return f"{_SECOND[1]}{(ns // 1000) % 1_000_000:06d}+00:00"
 
 
 # ---------------------------------------------------------------- helpers
@@ -177,6 +188,8 @@ class Launcher:
         except OSError:
             self.clear_refs = None
         self.children_path = f"/proc/{self.pid}/task/{self.pid}/children"
+        self.children_fd = None
+        self.inflight_fds = {}  # in-flight record path -> open fd
         self.env = {}
         self.resolved = {}  # (command, PATH, cwd) -> executable path
         self.leftovers = set()   # live descendants that earlier runs left behind
@@ -198,11 +211,11 @@ class Launcher:
     def record_inflight(self, inflight, pid):
         """Write the running child into the harness's in-flight file (for resume)."""
         path, run_id, boot = inflight
-        fds = self.__dict__.setdefault("_inflight_fds", {})
+        fds = self.inflight_fds
         try:
             fd = fds.get(path)
             if fd is None:
-                fd = fds[path] = os.open(path, os.O_WRONLY | os.O_CREAT, 0o644)
+                fd = fds[path] = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_CLOEXEC, 0o644)
             text = '{"run": %d, "pid": %d, "pgid": %d, "boot": "%s"}' % (run_id, pid, pid,
                                                                          boot)
             os.pwrite(fd, text.encode().ljust(160), 0)
@@ -253,16 +266,18 @@ class Launcher:
         return out
 
     def own_children(self):
-        """Set of our direct children (zombies included); None if unreadable."""
+        """Set of our direct children (zombies included); None if unreadable.
+
+        The file stays open; a read at offset 0 regenerates its content.
+        """
+        fd = self.children_fd
         try:
-            fd = os.open(self.children_path, os.O_RDONLY)
+            if fd is None:
+                fd = self.children_fd = os.open(self.children_path, os.O_RDONLY | os.O_CLOEXEC)
+            data = os.pread(fd, 1 << 16, 0)
         except OSError:
             return None
-        try:
-            data = os.read(fd, 1 << 16)
-        finally:
-            os.close(fd)
-        return {int(x) for x in data.split()}
+        return {int(x) for x in data.split()} if data else set()
 
     def reap_orphans(self, run):
         """Reap every zombie child; the run's own child is recorded in ``run``."""

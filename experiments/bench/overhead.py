@@ -69,16 +69,23 @@ class Alternating:
         self.bare_segments += time.perf_counter_ns() - s0
         self.bare_cpu += time.process_time() - c0
 
-    def execute(self, spec, on_start=None):
+    def execute(self, spec, on_start=None, while_running=None):
         # the same environment as the measured run: exec and the dynamic
         # loader take longer with a bigger one
         self.bare_once(dict(spec.env))
+        if while_running is not None:
+            return self.inner.execute(spec, on_start=on_start, while_running=while_running)
         return self.inner.execute(spec, on_start=on_start)
 
     @property
     def records_inflight(self):
         # the runner then lets the launcher record the in-flight run itself
         return getattr(self.inner, "records_inflight", False)
+
+    @property
+    def supports_while_running(self):
+        # the runner then prepares the next run while this one executes
+        return getattr(self.inner, "supports_while_running", False)
 
     def close(self):
         pass
