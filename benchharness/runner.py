@@ -488,10 +488,18 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                      levels=pr["levels"], env=run_env,
                      inflight_path=inflight_path if records_start else None)
 
+    shown: list = []   # finished runs whose progress update waits for the next run's start
+
+    def show_progress():
+        while shown:
+            rec, label = shown.pop(0)
+            progress.advance(rec, label)
+
     def while_running_for(index, qtoken):
         def cb():
             try:
                 quality.sample(qtoken)
+                show_progress()
                 if pad_rng is None and index + 1 < len(todo):
                     nxt = todo[index + 1]
                     ahead.clear()
@@ -510,6 +518,8 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     break
             levels = pr["levels"]
             c = cells.get(levels)
+            if shown and (c["build"] is not None or c["reset"] is not None):
+                show_progress()
             status = None
             message = ""
             m = None
@@ -581,7 +591,12 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             jr.append(rec)
             records_new += 1
             counts[status] = counts.get(status, 0) + 1
-            progress.advance(rec, c["label"])
+            if overlap:
+                # shown while the next run executes: the bar is not on the path
+                # from one run's end to the next one's start
+                shown.append((rec, c["label"]))
+            else:
+                progress.advance(rec, c["label"])
         else:
             if stop_check is not None:
                 final = stop_check.finish()
@@ -600,6 +615,10 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 pass
         jr.clear_inflight()
     finally:
+        try:
+            show_progress()
+        except Exception:  # noqa: BLE001 - a display problem must not lose the journal
+            pass
         progress.stop()
         jr.close()
         quality.close()

@@ -536,11 +536,14 @@ class Launcher:
                 poller.unregister(pidfd)
                 continue
             events = poller.poll(None if wait_ns is None else max(1, -(-wait_ns // 1_000_000)))
-            if t1 is None and any(fd == pidfd for fd, _ in events):
-                t1 = time.perf_counter_ns()
-                release()
-                poller.unregister(pidfd)
-                linger_end = t1 + int(linger_s * 1e9)
+            if t1 is None:
+                for fd, _ev in events:
+                    if fd == pidfd:
+                        t1 = time.perf_counter_ns()
+                        release()
+                        poller.unregister(pidfd)
+                        linger_end = t1 + int(linger_s * 1e9)
+                        break
             for fd, _ev in events:
                 if fd in open_pipes:
                     drain(fd)
