@@ -190,8 +190,22 @@ def memory_pressure() -> dict | None:
     return out or None
 
 
-def virtualization() -> dict:
-    """What hints at a virtual machine or container: ``{"kind": str|None, "evidence": [...]}``."""
+_VIRT: dict | None = None
+
+
+def virtualization(refresh: bool = False) -> dict:
+    """What hints at a virtual machine or container: ``{"kind": str|None, "evidence": [...]}``.
+
+    Found once per process (it does not change while we run; the look-up starts
+    ``systemd-detect-virt``); ``refresh`` looks again.
+    """
+    global _VIRT
+    if _VIRT is None or refresh:
+        _VIRT = _virtualization()
+    return {"kind": _VIRT["kind"], "evidence": list(_VIRT["evidence"])}
+
+
+def _virtualization() -> dict:
     evidence = []
     kind = None
     tool = shutil.which("systemd-detect-virt")
@@ -348,6 +362,17 @@ class BusySampler:
         self._procs = procs
         self._t0 = time.monotonic()
         return self
+
+    @property
+    def due(self) -> float:
+        """`time.monotonic` value from which `result` does not sleep."""
+        return (self._t0 if self._t0 is not None else time.monotonic()) + self.interval_s
+
+    def exclude_pids(self, pids) -> None:
+        """Leave these processes out of the result (e.g. our own launcher)."""
+        if self._procs is not None and pids:
+            drop = set(pids)
+            self._procs = [p for p in self._procs if p.pid not in drop]
 
     def result(self) -> list[dict]:
         if self._busy is not None:

@@ -228,13 +228,18 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
         J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
         facts = start_facts
 
-        def write_host_json():
-            # Called just before the first run (the busy-process sample then
-            # spans the folder set-up, provenance and the launcher's start).
+        def write_host_json(exclude=()):
+            # Called once the busy-process sample is due (it then spans the folder
+            # set-up, provenance, the launcher's start and, when those take less
+            # than the sample's interval, the first runs; ``exclude``: our launcher).
+            if host_warnings is None and sampler is not None:
+                sampler.exclude_pids(exclude)
             facts["warnings"] = (host_warnings if host_warnings is not None
                                  else preflight(exp, facts, busy_sampler=sampler))
             J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
 
+        write_host_json.due = (sampler.due if sampler is not None and host_warnings is None
+                               else 0.0)
         if scheduler:
             write_host_json()
         J.fsync_dir(folder)
@@ -251,7 +256,7 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
 
             gate = gate_for(exp, plan, folder, budget_s, estimate_s)
             outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts,
-                               stop_check=gate, before_first_run=write_host_json)
+                               stop_check=gate, host_check=write_host_json)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -418,7 +423,7 @@ def _record(pr: Mapping, m: Measurement | None, status: str, message: str) -> di
 
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
              executor, progress: Progress | None, facts: dict, prior=(),
-             stop_check=None, before_first_run=None) -> RunOutcome:
+             stop_check=None, host_check=None) -> RunOutcome:
     own_executor = executor is None
     if own_executor:
         executor = default_executor()
@@ -438,12 +443,23 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     quality = RunQuality(exp, folder)
     distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
     quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
-    if before_first_run is not None:
-        before_first_run()
-    if not done:  # a fresh folder: show the host warnings found before it started
-        for w in facts.get("warnings") or []:
-            if isinstance(w, dict) and w.get("severity") == "warning":
-                progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
+    own_pids = [p for p in (getattr(executor, "launcher_pid", None),) if p]
+
+    def host_warnings_now():
+        # host_check: the run's host check, due once its busy-process sample has
+        # lasted long enough; runs may already have started (warn mode only).
+        if host_check is not None:
+            host_check(own_pids)
+        if not done:  # a fresh folder: show the host warnings found at its start
+            for w in facts.get("warnings") or []:
+                if isinstance(w, dict) and w.get("severity") == "warning":
+                    progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
+
+    host_due = getattr(host_check, "due", 0.0) if host_check is not None else 0.0
+    pending_host = True
+    if time.monotonic() >= host_due:
+        host_warnings_now()
+        pending_host = False
     for note in quality.notes:
         progress.note(note)
     quality.notes.clear()
@@ -511,6 +527,9 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     stop_notes = []
     try:
         for index, pr in enumerate(todo):
+            if pending_host and time.monotonic() >= host_due:
+                pending_host = False
+                host_warnings_now()
             if stop_check is not None:
                 why = stop_check.before_run(pr)
                 if why:
@@ -619,6 +638,12 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             show_progress()
         except Exception:  # noqa: BLE001 - a display problem must not lose the journal
             pass
+        if pending_host:  # fewer runs than the sample's interval: finish it now
+            pending_host = False
+            try:
+                host_warnings_now()
+            except Exception:  # noqa: BLE001 - host.json stays without warnings
+                pass
         progress.stop()
         jr.close()
         quality.close()

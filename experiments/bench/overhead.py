@@ -83,6 +83,11 @@ class Alternating:
         return getattr(self.inner, "records_inflight", False)
 
     @property
+    def launcher_pid(self):
+        # left out of the host check's busy-process sample (it is ours)
+        return getattr(self.inner, "launcher_pid", None)
+
+    @property
     def supports_while_running(self):
         # the runner then prepares the next run while this one executes
         return getattr(self.inner, "supports_while_running", False)
