@@ -497,7 +497,8 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     # this run's conditions (executors that support it), so that only the
     # journal line lies between one run's end and the next one's request.
     overlap = bool(getattr(executor, "supports_while_running", False))
-    ahead: dict = {}   # run id -> RunSpec prepared while the run before it executed
+    ahead: dict = {}   # run id -> (RunSpec, request) made while the run before it executed
+    prepare_request = getattr(executor, "prepare_request", None) if overlap else None
 
     def spec_for(pr, c, run_env):
         return _spec((c["argv"], c["shell"]), c, timeout_s, run_id=pr["run"],
@@ -519,7 +520,9 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if pad_rng is None and index + 1 < len(todo):
                     nxt = todo[index + 1]
                     ahead.clear()
-                    ahead[nxt["run"]] = spec_for(nxt, cells.get(nxt["levels"]), None)
+                    nspec = spec_for(nxt, cells.get(nxt["levels"]), None)
+                    ahead[nxt["run"]] = (nspec, prepare_request(nspec)
+                                         if prepare_request is not None else None)
             except Exception:  # noqa: BLE001 - done again, and reported, on the main path
                 ahead.clear()
         return cb
@@ -573,15 +576,19 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 if ok:
                     session["cold_cache"] = "page cache dropped before each timed run"
             if status is None:
-                spec = ahead.pop(pr["run"], None) if run_env is None else None
-                if spec is None:
-                    spec = spec_for(pr, c, run_env)
-                spec, qtoken = quality.prepare(spec, levels, c, sample_later=overlap)
+                spec0, req = ahead.pop(pr["run"], (None, None)) if run_env is None else \
+                    (None, None)
+                if spec0 is None:
+                    spec0 = spec_for(pr, c, run_env)
+                spec, qtoken = quality.prepare(spec0, levels, c, sample_later=overlap)
                 if records_start:
                     # The executor records the child itself: no harness wake-up mid-run.
                     if overlap:
-                        m = executor.execute(spec, while_running=while_running_for(index,
-                                                                                   qtoken))
+                        cb = while_running_for(index, qtoken)
+                        if req is not None and spec is spec0:
+                            m = executor.execute(spec, while_running=cb, prepared=req)
+                        else:
+                            m = executor.execute(spec, while_running=cb)
                     else:
                         m = executor.execute(spec)
                 else:

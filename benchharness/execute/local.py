@@ -154,7 +154,7 @@ class LocalExecutor:
     supports_while_running = True
 
     def execute(self, spec: RunSpec, on_start: OnStart | None = None,
-                while_running=None) -> Measurement:
+                while_running=None, prepared: dict | None = None) -> Measurement:
         """Run ``spec`` to completion (or timeout) and return its `Measurement`.
 
         Raises `ExecutionError` when the request itself is impossible (no
@@ -164,12 +164,14 @@ class LocalExecutor:
         are served one after another (runs on one machine never overlap).
         """
         with self._lock:
-            return self._execute(spec, on_start, while_running)
+            return self._execute(spec, on_start, while_running, prepared)
 
-    def _execute(self, spec: RunSpec, on_start: OnStart | None,
-                 while_running=None) -> Measurement:
-        if self._closed:
-            raise ExecutionError("this executor is closed")
+    def prepare_request(self, spec: RunSpec, notify: bool = False) -> dict:
+        """Check ``spec`` and build its request (without the environment).
+
+        The runner builds the next run's request while the current run
+        executes and hands it to `execute` as ``prepared``.
+        """
         if (spec.argv is None) == (spec.shell_command is None):
             raise ExecutionError("a run needs exactly one of argv and shell_command")
         if spec.argv is not None and (not spec.argv or not spec.argv[0]):
@@ -187,10 +189,20 @@ class LocalExecutor:
             "capture_bytes": int(spec.capture_bytes),
             "kill_grace_s": self.kill_grace_s,
             "linger_s": self.linger_s,
-            "notify": on_start is not None,
+            "notify": notify,
         }
         if spec.inflight_path:
             req["inflight"] = (str(spec.inflight_path), int(spec.run_id or 0), _boot_id())
+        return req
+
+    def _execute(self, spec: RunSpec, on_start: OnStart | None,
+                 while_running=None, prepared: dict | None = None) -> Measurement:
+        if self._closed:
+            raise ExecutionError("this executor is closed")
+        if prepared is not None and prepared.get("notify") == (on_start is not None):
+            req = prepared
+        else:
+            req = self.prepare_request(spec, on_start is not None)
         # The environment is sent only when it differs from the previous run's
         # (the runner reuses one per cell), which keeps the request small.
         if self._last_env is None or spec.env != self._last_env:

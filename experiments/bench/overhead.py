@@ -69,13 +69,14 @@ class Alternating:
         self.bare_segments += time.perf_counter_ns() - s0
         self.bare_cpu += time.process_time() - c0
 
-    def execute(self, spec, on_start=None, while_running=None):
+    def execute(self, spec, on_start=None, **kw):
         # the same environment as the measured run: exec and the dynamic
         # loader take longer with a bigger one
         self.bare_once(dict(spec.env))
-        if while_running is not None:
-            return self.inner.execute(spec, on_start=on_start, while_running=while_running)
-        return self.inner.execute(spec, on_start=on_start)
+        return self.inner.execute(spec, on_start=on_start, **kw)
+
+    def prepare_request(self, spec, notify=False):
+        return self.inner.prepare_request(spec, notify)
 
     @property
     def records_inflight(self):
