@@ -339,6 +339,27 @@ class BusySampler:
         self._procs = None
         self._t0 = None
         self._busy = None
+        self._thread = None
+
+    def start_in_background(self) -> "BusySampler":
+        """`start` in a thread (reading every process takes a few tens of ms)."""
+        import threading
+
+        self._thread = threading.Thread(target=self._start_quietly, name="busy-sample",
+                                        daemon=True)
+        self._thread.start()
+        return self
+
+    def _start_quietly(self) -> None:
+        try:
+            self.start()
+        except Exception:  # noqa: BLE001 - `result` then samples in the foreground
+            self._procs = None
+
+    def _join(self) -> None:
+        if self._thread is not None:
+            self._thread.join()
+            self._thread = None
 
     def start(self) -> "BusySampler":
         import psutil
@@ -365,16 +386,19 @@ class BusySampler:
 
     @property
     def due(self) -> float:
-        """`time.monotonic` value from which `result` does not sleep."""
+        """`time.monotonic` value from which `result` does not sleep (about, while
+        the first reading is still being taken in the background)."""
         return (self._t0 if self._t0 is not None else time.monotonic()) + self.interval_s
 
     def exclude_pids(self, pids) -> None:
         """Leave these processes out of the result (e.g. our own launcher)."""
+        self._join()
         if self._procs is not None and pids:
             drop = set(pids)
             self._procs = [p for p in self._procs if p.pid not in drop]
 
     def result(self) -> list[dict]:
+        self._join()
         if self._busy is not None:
             return self._busy
         if self._procs is None:

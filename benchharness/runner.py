@@ -191,7 +191,7 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     # own: started first, read once the folder is written (strict mode: before
     # the folder exists, since it may refuse to start).
     mode = host_check_mode(exp)
-    sampler = BusySampler().start() if mode != "off" else None
+    sampler = BusySampler().start_in_background() if mode != "off" else None
     start_facts = collect_facts()
     host_warnings = None
     if mode == "strict":

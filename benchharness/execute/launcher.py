@@ -193,6 +193,7 @@ class Launcher:
         self.env = {}
         self.resolved = {}  # (command, PATH, cwd) -> executable path
         self.leftovers = set()   # live descendants that earlier runs left behind
+        self.to_close = []       # fds of the last run, closed after its reply
         self.stop = False
 
     # ---- capabilities
@@ -565,12 +566,12 @@ class Launcher:
                         poller.unregister(pidfd)
                         linger_end = t1 + int(linger_s * 1e9)
         release()
-        for fd in (out_r, err_r):
-            os.close(fd)
         if "rusage" not in run:
             _, status, ru = os.wait4(pid, 0)
             run["status_word"], run["rusage"] = status, ru
-        os.close(pidfd)
+        # Our ends of the output pipes and the pidfd are closed once the reply
+        # is sent (see `serve`): nothing reads them any more.
+        self.to_close.extend((out_r, err_r, pidfd))
         # Our own children list is cheap to read; anything the run left
         # behind has an ancestor in it (orphans are re-parented to us), so the
         # full walk and the reaping only happen when it shows something new.
@@ -648,6 +649,15 @@ class Launcher:
                 send(self.wfd, reply)
             except OSError:
                 break
+            finally:
+                self.close_run_fds()
+
+    def close_run_fds(self):
+        while self.to_close:
+            try:
+                os.close(self.to_close.pop())
+            except OSError:
+                pass
 
 
 def main(argv=None):
