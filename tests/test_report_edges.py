@@ -107,3 +107,31 @@ def test_custom_metric_where_higher_is_better(tmp_path):
     # planted: nap=short, scale=1 is fastest, so it serves the most requests per second
     assert "The best cell is nap=short, scale=1" in html
     assert "req/s" in html
+
+
+def test_report_of_a_folder_whose_runs_all_failed(tmp_path, cli):
+    """Every run exits non-zero: `run` and `report` still write a report that says so."""
+    exp = tmp_path / "broken.yaml"
+    exp.write_text(
+        "experiment: broken\n"
+        "about: Does the new build start at all?\n"
+        "command: [python3, -c, 'import sys; sys.exit(3)', '{build}']\n"
+        "factors:\n  build: [old, '<new>']\n"
+        "replicates: 2\nseed: 4\n")
+    out = tmp_path / "out"
+    r = cli("run", exp, "--out", out, "--quiet", timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert "Traceback" not in r.stderr
+    assert (out / "report.html").exists() and (out / "report.md").exists()
+    (out / "report.html").unlink()
+    r = cli("report", out)
+    assert r.returncode == 0, r.stderr
+    assert "Traceback" not in r.stderr
+    assert "nothing to analyse" in r.stdout
+    md = (out / "report.md").read_text()
+    html = (out / "report.html").read_text()
+    assert "No timed run finished successfully" in md
+    assert "4 runs failed or timed out" in md
+    assert "exit code 3" in md                  # the reason the runs give
+    assert "may look faster" not in md          # nothing was analysed, nothing looks faster
+    assert "No ANOVA" in html and "&lt;new&gt;" in html and "<new>" not in html

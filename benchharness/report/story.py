@@ -56,6 +56,8 @@ def _term_parts(term: str, data: ReportData) -> tuple[str, ...] | None:
 
 
 def transform_sentence(data: ReportData) -> str:
+    if data.analysis.get("unanalysed"):
+        return ""
     tr = data.analysis.get("transform") or {}
     name = tr.get("name", "none")
     reason = tr.get("reason") or ""
@@ -68,7 +70,8 @@ def transform_sentence(data: ReportData) -> str:
         base = "The analysis works on the response as measured (no transform)."
     reason = str(reason).strip()
     if reason:
-        reason = reason[0].upper() + reason[1:]
+        if reason[0].isascii():  # never turn a leading λ̂ into Λ̂ (another symbol)
+            reason = reason[0].upper() + reason[1:]
         if not reason.endswith("."):
             reason += "."
     return f"{base} {reason}".strip()
@@ -181,6 +184,9 @@ def verdict(data: ReportData) -> dict[str, Any]:
     elif no_matter:
         out["headline"] = (f"None of the factors ({_and(no_matter)}) made a difference this "
                            "experiment could detect.")
+    elif data.analysis.get("unanalysed"):
+        out["headline"] = ("No timed run finished successfully, so there is nothing to analyse; "
+                           "see the data-quality warnings for why the runs failed.")
     else:
         out["headline"] = "The analysis could not test any factor (see the ANOVA section)."
     if untested and (matter or no_matter):
@@ -327,7 +333,10 @@ def sureness(data: ReportData) -> list[str]:
         out.append("A rank-based cross-check (which does not assume normal residuals) agrees "
                    "with the ANOVA on every term.")
     bad = d.get("runs_failed", 0) + d.get("runs_timeout", 0)
-    if bad:
+    if bad and data.analysis.get("unanalysed"):
+        out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out; fix what the "
+                   "runs report (see Data-quality warnings) and run the experiment again.")
+    elif bad:
         out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out and "
                    "{} not in the analysis; the affected cells may look faster than they are."
                    .format("is" if bad == 1 else "are"))
