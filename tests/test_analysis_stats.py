@@ -274,6 +274,32 @@ def test_planted_drift_outlier_and_small_cells():
     assert {"a": "z", "b": "p"} in [s["levels"] for s in small]
 
 
+def test_runs_test_matches_statsmodels_and_clustering_is_a_concern():
+    # source: statsmodels.sandbox.stats.runs.runstest_1samp (Wald-Wolfowitz, no continuity
+    # correction) on the signs; planted answer: residuals that sit in alternating stretches
+    # of 25 runs (signs +--+-++-) have no linear trend but are clearly not independent.
+    from statsmodels.sandbox.stats.runs import runstest_1samp
+
+    from benchharness.analysis.diagnostics import runs_test
+
+    rng = np.random.default_rng(12)
+    x = rng.normal(size=80)
+    z_ref, p_ref = runstest_1samp(x > 0, cutoff=0.5, correction=False)
+    _, z, p = runs_test(x > 0)
+    assert z == pytest.approx(z_ref, rel=1e-12) and p == pytest.approx(p_ref, rel=1e-12)
+
+    n = 200
+    d = pd.DataFrame({"a": np.tile(["x", "y"], n // 2), "position": np.arange(n)})
+    signs = np.array([1, -1, -1, 1, -1, 1, 1, -1])  # balanced in time: no linear trend
+    stretch = 0.05 * signs[np.arange(n) // 25]
+    d["wall_s"] = np.exp(0.2 * (d.a == "y") + stretch + rng.normal(0, 0.01, n))
+    dr = analyze(d, factors=["a"], transform="log").diagnostics["drift"]
+    assert dr["p"] > 0.05                       # no linear drift was planted
+    assert dr["runs_test"]["p"] < 1e-6
+    assert dr["ok"] is False
+    assert "not independent" in dr["verdict"] and "no clear drift" in dr["verdict"]
+
+
 def test_failures_counted_per_cell_and_timeouts_flagged():
     rng = np.random.default_rng(8)
     d = pd.DataFrame({"a": np.repeat(["x", "y"], 10), "wall_s": rng.lognormal(0, 0.1, 20),

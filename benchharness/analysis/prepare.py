@@ -229,11 +229,13 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         notes.append(f"{bad_y} ok run(s) have no numeric {response!r} value and were left out")
     n_lost = int((~ok).sum())
     if n_lost:
-        parts = [f"{int(m.sum())} {s}" for s, m in lost_masks.items() if m.sum()]
+        said = {"timeout": "timed-out"}
+        parts = [f"{int(m.sum())} {said.get(s, s)}" for s, m in lost_masks.items() if m.sum()]
         oth = n_lost - sum(int(m.sum()) for m in lost_masks.values())
         if oth:
             parts.append(f"{oth} with another status")
-        notes.append("not analysed: " + ", ".join(parts) + " run(s); see the failure counts per cell")
+        notes.append("not analysed: " + ", ".join(parts) + " run(s); see the failure counts "
+                     "per cell")
     if not use.any():
         raise DataError(f"no run with status ok and a numeric {response!r} value to analyse")
 
