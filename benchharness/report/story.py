@@ -251,6 +251,9 @@ def diagnostic_items(data: ReportData) -> list[dict]:
     }
     items = []
     check = diag.get("outlier_check") if isinstance(diag.get("outlier_check"), dict) else {}
+    if not check:  # the keys analysis.json carries (benchharness.analysis)
+        check = {k: diag.get(f"outlier_{k}") for k in ("count", "cutoff", "verdict")
+                 if diag.get(f"outlier_{k}") is not None}
     for key, val in diag.items():
         if key == "outliers":
             outl = val if isinstance(val, list) else (val or {}).get("runs", [])
