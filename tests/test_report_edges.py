@@ -7,6 +7,7 @@ values are taken from them) and analysed by the real analysis stage.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import pandas as pd
 
 from benchharness.report import build_report
@@ -135,3 +136,33 @@ def test_report_of_a_folder_whose_runs_all_failed(tmp_path, cli):
     assert "exit code 3" in md                  # the reason the runs give
     assert "may look faster" not in md          # nothing was analysed, nothing looks faster
     assert "No ANOVA" in html and "&lt;new&gt;" in html and "<new>" not in html
+
+
+def test_report_of_a_gate_results_folder(tmp_path, cli):
+    """A gate folder: blocks are pairs of runs, the report uses them and repeats the gate."""
+    import statsmodels.formula.api as smf
+    from statsmodels.stats.anova import anova_lm
+
+    from benchharness import analyze
+    from benchharness.journal import load_results
+
+    out = tmp_path / "gate"
+    r = cli("gate", "--baseline", "sleep 0.02", "--candidate", "sleep 0.04", "--seed", "2",
+            "--max-runs", "8", "--out", out, timeout=180)
+    assert r.returncode in (0, 1, 3), r.stderr
+    r = cli("report", out)
+    assert r.returncode == 0, r.stderr
+    md = (out / "report.md").read_text()
+    assert "| **block** |" in md or "| block |" in md
+    assert "benchharness gate --baseline 'sleep 0.02' --candidate 'sleep 0.04'" in md
+    assert "--out" not in md.split("```sh", 1)[1].split("```", 1)[0]
+    # source: statsmodels ols "np.log(wall_s) ~ C(block) + C(build)" + anova_lm(typ=2)
+    runs = load_results(out).runs
+    ok = runs[runs["status"] == "ok"].copy()
+    ref = anova_lm(smf.ols("np.log(wall_s) ~ C(block) + C(build)", ok).fit(), typ=2)
+    an = analyze(out, transform="log")
+    rows = {x["term"]: x for x in an.anova_rows}
+    assert an.block == "block"
+    assert rows["block"]["df"] == ref.loc["C(block)", "df"]
+    assert rows["build"]["sum_sq"] == pytest.approx(ref.loc["C(build)", "sum_sq"], rel=1e-9)
+    assert rows["Residual"]["sum_sq"] == pytest.approx(ref.loc["Residual", "sum_sq"], rel=1e-9)

@@ -148,6 +148,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
 
     # block column
     order_blocked = getattr(exp, "order", None) == "blocked"
+    # The gate runs baseline and candidate back to back in blocks (benchharness.gate):
+    # its folders are blocked experiments too.
+    sections = getattr(exp, "sections", None) or {}
+    if hasattr(sections, "get") and sections.get("gate") is not None:
+        order_blocked = True
     has_hosts = "host" in columns and df["host"].astype(str).nunique() > 1
     if block is False or block == "":
         block = None
