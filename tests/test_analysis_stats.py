@@ -102,6 +102,12 @@ def test_transform_rule_cases():
     assert (c.name, c.lam) == ("boxcox", -0.8)                              # rounded to 0.1
     c = choose("auto", prof(-1.1, -1.3, -0.95), True)
     assert (c.name, c.lam) == ("boxcox", -1.0)
+    # λ̂ rounds to 1.5, which is outside; 2.0 is the multiple of 0.5 nearest λ̂ inside
+    c = choose("auto", prof(1.7, 1.6, 2.1), True)
+    assert (c.name, c.lam) == ("boxcox", 2.0)
+    c = choose("auto", prof(-0.3, -0.6, -0.05), True)                       # -0.5 inside
+    assert (c.name, c.lam) == ("boxcox", -0.5)
+    assert "multiple of 0.5" in c.reason and "λ̂ = -0.30" in c.reason
     with pytest.raises(DataError):
         choose("log", None, False)
     assert choose("auto", None, False).name == "none"

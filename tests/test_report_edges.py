@@ -166,3 +166,16 @@ def test_report_of_a_gate_results_folder(tmp_path, cli):
     assert rows["block"]["df"] == ref.loc["C(block)", "df"]
     assert rows["build"]["sum_sq"] == pytest.approx(ref.loc["C(build)", "sum_sq"], rel=1e-9)
     assert rows["Residual"]["sum_sq"] == pytest.approx(ref.loc["Residual", "sum_sq"], rel=1e-9)
+
+
+def test_transform_sentence_keeps_the_lambda_symbol():
+    # a reason that starts with λ̂ must not become Λ̂ (another symbol) when capitalised
+    from benchharness.report.story import transform_sentence
+
+    data, _ = build_report(pd.DataFrame({"a": np.repeat(["x", "y"], 6),
+                                         "wall_s": np.exp(np.linspace(0, 1, 12))}),
+                           factors=["a"])
+    reason = data.analysis["transform"]["reason"]
+    assert reason.startswith("λ̂")
+    text = transform_sentence(data)
+    assert "λ̂" in text and "Λ" not in text
