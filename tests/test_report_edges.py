@@ -179,3 +179,19 @@ def test_transform_sentence_keeps_the_lambda_symbol():
     assert reason.startswith("λ̂")
     text = transform_sentence(data)
     assert "λ̂" in text and "Λ" not in text
+
+
+def test_timings_that_follow_the_load_are_a_data_quality_warning():
+    # planted answer: runs started under higher load are slower (as in the analysis test)
+    from benchharness.report.story import warnings
+
+    rng = np.random.default_rng(21)
+    n = 120
+    load = rng.uniform(0, 4, n)
+    df = pd.DataFrame({"a": np.tile(["x", "y"], n // 2), "load_1m": load,
+                       "wall_s": np.exp(0.1 * (np.arange(n) % 2) + 0.05 * load
+                                        + rng.normal(0, 0.02, n))})
+    data, _ = build_report(df, factors=["a"])
+    assert data.analysis["diagnostics"]["load"]["ok"] is False
+    noisy = [w["text"] for w in warnings(data) if w["kind"] == "Noisy host"]
+    assert any("load" in t for t in noisy), warnings(data)

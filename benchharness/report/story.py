@@ -434,6 +434,9 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
     for item in diagnostic_items(data):
         if item["key"] in ("drift", "outliers", "runs_test") and item["concern"]:
             out.append({"kind": item["name"], "text": item["verdict"] or item["name"]})
+        elif item["key"] == "load" and item["concern"]:
+            # timings that follow the machine's load: a noisy host, seen in the data
+            out.append({"kind": "Noisy host", "text": item["verdict"] or item["name"]})
     timed = data.timed_runs
     if "status" in timed.columns and len(timed):
         st = timed["status"].astype(str)
@@ -463,7 +466,9 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
                                  "load_avg_start"))
     cores = _host_get(host, "cores_logical", "logical_cores", "cpu.logical_cores",
                       "cpu_count_logical", "cpu_count")
-    if finite(load) and finite(cores) and float(cores) > 0 and float(load) > 0.5 * float(cores):
+    host_said_load = any("load average" in str(w) for w in host.get("warnings") or [])
+    if (finite(load) and finite(cores) and float(cores) > 0 and float(load) > 0.5 * float(cores)
+            and not host_said_load):
         out.append({"kind": "Noisy host",
                     "text": f"The load average was {fmt_num(load)} on {cores} logical CPUs when "
                             "the experiment started: other work competed with the runs and "
