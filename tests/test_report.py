@@ -216,6 +216,17 @@ def test_report_command_on_folder_and_csv(folder, tmp_path, cli):
     r = cli("report", csv, "--factors", "nap,scale")
     assert r.returncode == 0, r.stderr
     assert (tmp_path / "timings.report.html").exists()
+    # a second CSV in the same directory keeps its own figures: links of both still resolve
+    other = tmp_path / "other.csv"
+    runs = folder / "runs.csv"
+    other.write_text(runs.read_text())
+    r = cli("report", other, "--factors", "nap")
+    assert r.returncode == 0, r.stderr
+    for name in ("timings", "other"):
+        text = (tmp_path / f"{name}.report.md").read_text()
+        links = re.findall(r"\]\(([^)\s]+\.png)\)", text)
+        assert links and all(link.startswith(f"{name}.figures/") for link in links)
+        assert all((tmp_path / link).exists() for link in links)
     r = cli("report", csv)
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1
     assert "--factors" in r.stderr

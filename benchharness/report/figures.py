@@ -64,9 +64,9 @@ class FigureSet:
     def by_section(self, section: str) -> list[Figure]:
         return [f for f in self.figures if f.section == section]
 
-    def save(self, folder: Path) -> list[Path]:
-        """Write figures/<name>.png and .svg under ``folder``; returns the paths."""
-        out = Path(folder) / "figures"
+    def save(self, folder: Path, subdir: str = "figures") -> list[Path]:
+        """Write <subdir>/<name>.png and .svg under ``folder``; returns the paths."""
+        out = Path(folder) / subdir
         out.mkdir(parents=True, exist_ok=True)
         paths = []
         for f in self.figures:
