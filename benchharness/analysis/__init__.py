@@ -346,7 +346,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         diagnostics["equal_variance"] = dg.brown_forsythe(fcells.row_cell, resid, fcells.count,
                                                           alpha)
         out = dg.outliers(resid, lev_rows, fit.rss, df_res, prep.run, alpha)
-        studentized = out.pop("studentized")
+        studentized = out.pop("studentized", None)  # absent when df < 2
         diagnostics["outliers"] = out["runs"]
         diagnostics["outlier_cutoff"] = out["cutoff"]
         diagnostics["outlier_count"] = out["count"]

@@ -242,6 +242,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         notes.append("not analysed: " + ", ".join(parts) + " run(s); see the failure counts "
                      "per cell")
     if not use.any():
+        if ok.any():
+            sample = next((str(v) for v in y_col[ok] if str(v).strip()), "")
+            raise DataError(f"column {response!r} has no numeric value in the runs to analyse"
+                            + (f" (it holds values like {sample!r})" if sample else "")
+                            + "; name a numeric column with --response")
         raise DataError(f"no run with status ok and a numeric {response!r} value to analyse")
 
     block_codes, block_levels = None, ()

@@ -24,6 +24,16 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
+    from benchharness.errors import UsageError
+
+    try:
+        return _main(args)
+    except OSError as exc:  # a report path that cannot be written: one line, exit 2
+        where = exc.filename or args.html or args.markdown or args.source
+        raise UsageError(f"{where}: cannot write the report ({exc.strerror or exc})") from None
+
+
+def _main(args) -> int:
     import sys
     from pathlib import Path
 
