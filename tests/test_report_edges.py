@@ -136,6 +136,8 @@ def test_report_of_a_folder_whose_runs_all_failed(tmp_path, cli):
     assert "exit code 3" in md                  # the reason the runs give
     assert "may look faster" not in md          # nothing was analysed, nothing looks faster
     assert "No ANOVA" in html and "&lt;new&gt;" in html and "<new>" not in html
+    assert "<img" not in html                  # no empty figures
+    assert md.count("Nothing to show: no run finished.") == 2
 
 
 def test_report_of_a_gate_results_folder(tmp_path, cli):

@@ -129,6 +129,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "anova": anova,
         "ss_type": ss_type,
         "transform": story.transform_sentence(data),
+        "unanalysed": bool(data.analysis.get("unanalysed")),
         "effects": effects,
         "has_difference": has_diff,
         "level_means": level_means,

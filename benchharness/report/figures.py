@@ -712,6 +712,8 @@ def make_figures(data: ReportData, seed: int = 0,
     rng = np.random.default_rng(seed)
     out = FigureSet()
     seen: dict[str, int] = {}
+    if data.analysis.get("unanalysed"):
+        return out  # no run finished: no figure would show anything
 
     def add(fig):
         # two factor names may share a slug ("a b", "a-b"): keep every file

@@ -315,7 +315,7 @@ def sureness(data: ReportData) -> list[str]:
         out.append("There are no residual degrees of freedom (one run per cell): no test "
                    "could be made, so nothing here is a verdict. Add replicates.")
     n_ok = d.get("runs_ok")
-    if n_ok is not None:
+    if n_ok is not None and not data.analysis.get("unanalysed"):
         reps = d.get("replicates")
         out.append(f"Based on {n_ok} timed runs" + (f" ({reps} replicates per cell)"
                                                      if reps else "") + ".")
