@@ -197,3 +197,21 @@ def test_timings_that_follow_the_load_are_a_data_quality_warning():
     assert data.analysis["diagnostics"]["load"]["ok"] is False
     noisy = [w["text"] for w in warnings(data) if w["kind"] == "Noisy host"]
     assert any("load" in t for t in noisy), warnings(data)
+
+
+def test_best_cell_with_timeouts_carries_a_caution():
+    # planted: the fastest cell lost two runs to timeouts (the slow ones never finished)
+    from benchharness.report import story
+
+    rng = np.random.default_rng(4)
+    df = pd.DataFrame({"pool": np.repeat(["2", "8", "32"], 6), "status": "ok"})
+    df["wall_s"] = np.exp(rng.normal(0, 0.05, 18) - 0.5 * (df.pool == "32"))
+    df.loc[[16, 17], "status"] = "timeout"
+    df.loc[[16, 17], "wall_s"] = np.nan
+    data, _ = build_report(df, factors=["pool"])
+    v = story.verdict(data)
+    assert v["best"].startswith("The fastest cell is pool=32")
+    assert "2 of this cell's runs did not finish" in v["best"]
+    df.loc[[16, 17], "status"] = "ok"
+    df.loc[[16, 17], "wall_s"] = np.exp(-0.5)
+    assert "did not finish" not in story.verdict(build_report(df, factors=["pool"])[0])["best"]

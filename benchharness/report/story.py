@@ -217,11 +217,27 @@ def verdict(data: ReportData) -> dict[str, Any]:
                 text += "; their intervals overlap, so treat the two as close to tied."
             else:
                 text += "."
+        lost = _lost_runs(data, best["levels"])
+        if lost:
+            text += (f" Caution: {lost} of this cell's runs did not finish (failed or timed "
+                     "out), so its mean counts only the runs that did and may flatter it.")
         out["best"] = text
 
     out["sure"] = sureness(data)
     out["transform"] = transform_sentence(data)
     return out
+
+
+def _lost_runs(data: ReportData, levels: dict) -> int:
+    """Timed runs of one cell that failed or timed out."""
+    timed = data.timed_runs
+    if "status" not in timed.columns or not len(timed):
+        return 0
+    mask = timed["status"].astype(str).isin(["failed", "timeout"])
+    for f, v in levels.items():
+        if f in timed.columns:
+            mask &= timed[f].astype(str) == str(v)
+    return int(mask.sum())
 
 
 def _p_words(p) -> str:
