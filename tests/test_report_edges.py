@@ -215,3 +215,15 @@ def test_best_cell_with_timeouts_carries_a_caution():
     df.loc[[16, 17], "status"] = "ok"
     df.loc[[16, 17], "wall_s"] = np.exp(-0.5)
     assert "did not finish" not in story.verdict(build_report(df, factors=["pool"])[0])["best"]
+
+
+def test_effect_of_an_empty_level_says_not_estimable():
+    # planted: every run of pool=32 timed out, so its ratio has no interval
+    rng = np.random.default_rng(5)
+    df = pd.DataFrame({"pool": np.repeat(["2", "8", "32"], 4), "status": "ok"})
+    df["wall_s"] = np.exp(rng.normal(0, 0.05, 12))
+    df.loc[df.pool == "32", "status"] = "timeout"
+    data, figs = build_report(df, factors=["pool"])
+    md = render_markdown(data, figs)
+    assert "| pool | 32 | 2 | – | not estimable (empty cells) |" in md
+    assert "– to –" not in md

@@ -64,8 +64,10 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
         row = {"factor": e.get("factor"), "level": e.get("level"),
                "reference": e.get("reference"), "ratio": fmt_ratio(e.get("ratio")),
-               "interval": f"{fmt_ratio(lo)} to {fmt_ratio(hi)}", "significant": sig,
-               "difference": ""}
+               "interval": (f"{fmt_ratio(lo)} to {fmt_ratio(hi)}" if finite(lo) and finite(hi)
+                            else "not estimable (empty cells)" if e.get("estimable") is False
+                            else "–"),
+               "significant": sig, "difference": ""}
         if finite(e.get("difference")):
             has_diff = True
             row["difference"] = fmt_value(e.get("difference"), resp)
@@ -77,8 +79,9 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
             level_means.append({
                 "factor": term, "level": (m.get("levels") or {}).get(term, ""),
                 "mean": fmt_value(m.get("mean"), resp),
-                "interval": f"{fmt_value(m.get('lower'), resp)} to "
-                            f"{fmt_value(m.get('upper'), resp)}",
+                "interval": (f"{fmt_value(m.get('lower'), resp)} to "
+                             f"{fmt_value(m.get('upper'), resp)}"
+                             if finite(m.get("lower")) and finite(m.get("upper")) else "–"),
                 "n": m.get("n", ""),
             })
     comps_all = story.comparisons(data)
