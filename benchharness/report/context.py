@@ -91,7 +91,9 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
             "method": _METHOD_WORDS.get(c.get("method"), str(c.get("method"))),
             "factor": c.get("factor"), "within": c["within_text"],
             "a": c.get("a"), "b": c.get("b"), "ratio": fmt_ratio(c.get("ratio")),
-            "interval": f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}",
+            "interval": (f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}"
+                         if finite(c.get("lower")) and finite(c.get("upper"))
+                         else "not estimable"),
             "p": fmt_p(c.get("p_adj")), "significant": c["significant"],
         })
     diags = []
