@@ -330,10 +330,13 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
                                                "level that value")
 
     found_warnings = []
+    key_marks = {k: kn.start_mark for k, kn, _v in mapping_items(nodes["factors"], "'factors'")}
     for f in factors:
         if f.name not in used:
+            mark = key_marks.get(f.name)
+            where = f"{path}:{mark.line + 1}:{mark.column + 1}" if mark else f"{path}"
             found_warnings.append(
-                f"{path}: factor {f.name!r} is used in no command, env or step; its levels "
+                f"{where}: factor {f.name!r} is used in no command, env or step; its levels "
                 f"will not change what runs (write {{{f.name}}} where it belongs)")
 
     return Experiment(

@@ -109,6 +109,10 @@ def test_named_value_missing():
 def test_unused_factor_is_a_warning():
     exp = parse(GOOD.replace("  level: [1, 6]", "  level: [1, 6]\n  corpus: [a, b]"))
     assert any("corpus" in w for w in exp.warnings)
+    # the warning is located like an error: FILE:LINE:COL of the factor's key
+    (w,) = [w for w in exp.warnings if "corpus" in w]
+    line = GOOD.replace("  level: [1, 6]", "  level: [1, 6]\n  corpus: [a, b]").splitlines().index("  corpus: [a, b]") + 1
+    assert f":{line}:3: factor 'corpus'" in w
 
 
 def test_replicates_below_one():
