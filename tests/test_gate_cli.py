@@ -107,3 +107,88 @@ def test_stored_baseline_warns(cli, tmp_path):
             "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert "earlier session" in r.stdout
+
+
+THROUGHPUT_GATE = """experiment: rate-gate
+about: Does the new build serve fewer records per second?
+command: [PY, -c, "import random; print('rate', {build.r} * random.lognormvariate(0, 0.02))", "{w}"]
+factors:
+  build:
+    old: {r: 1000}
+    new: {r: NEW}
+  w: [a, b]
+metrics:
+  rate_ops:
+    pattern: 'rate ([0-9.]+)'
+    better: higher
+gate: {factor: build, baseline: old, response: RESPONSE, max_runs: 20}
+"""
+
+
+def _rate_gate(tmp_path, new_rate, response="rate_ops"):
+    import sys
+
+    exp = tmp_path / "rate.yaml"
+    exp.write_text(THROUGHPUT_GATE.replace("PY", sys.executable).replace("NEW", str(new_rate))
+                   .replace("RESPONSE", response))
+    return exp
+
+
+def test_throughput_metric_from_metrics_section(cli, tmp_path):
+    # A custom metric with `better: higher`: 30% fewer records per second is a
+    # regression (slowdown = baseline / candidate), and the JUnit file has one
+    # test case per workload, each with a failure element. This used to judge
+    # nothing: the gate did not extract metrics at all and ended undecided.
+    junit = tmp_path / "j.xml"
+    r = cli("gate", _rate_gate(tmp_path, 700), "--seed", "1", "--out", tmp_path / "res",
+            "--junit", junit, "--json", tmp_path / "g.json")
+    assert r.returncode == 1, r.stdout + r.stderr
+    assert "higher is better" in r.stdout
+    data = json.loads((tmp_path / "g.json").read_text())
+    assert data["higher_is_better"] is True
+    for w in data["workloads"]:
+        assert w["verdict"] == "regression"
+        assert w["ratio"] == pytest.approx(1000 / 700, rel=0.1)
+    cases = {c.get("name"): c for c in ET.parse(junit).getroot().iter("testcase")}
+    assert sorted(cases) == ["w=a", "w=b"]
+    assert all(c.find("failure") is not None for c in cases.values())
+    import csv
+
+    rows = list(csv.DictReader(open(tmp_path / "res" / "runs.csv")))
+    assert all(float(row["rate_ops"]) > 0 for row in rows)
+    # `report` works on a gate folder
+    rep = cli("report", tmp_path / "res")
+    assert rep.returncode == 0, rep.stderr
+    assert (tmp_path / "res" / "report.html").exists()
+
+
+def test_throughput_metric_higher_candidate_passes(cli, tmp_path):
+    r = cli("gate", _rate_gate(tmp_path, 1300), "--seed", "1", "--out", tmp_path / "res",
+            "--json", tmp_path / "g.json")
+    assert r.returncode == 0, r.stdout + r.stderr
+    data = json.loads((tmp_path / "g.json").read_text())
+    assert {w["verdict"] for w in data["workloads"]} == {"improvement"}
+
+
+def test_unknown_response_is_located(cli, tmp_path):
+    exp = _rate_gate(tmp_path, 700, response="rate_op")
+    r = cli("gate", exp, "--out", tmp_path / "res")
+    assert r.returncode == 2
+    assert f"{exp}:13:" in r.stderr and "did you mean 'rate_ops'" in r.stderr
+    assert not (tmp_path / "res").exists()
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--response", "rate_ops")
+    assert r.returncode == 2 and "--response" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
+    # Two blocks cannot settle a 5% question: the verdict is inconclusive.
+    summary = tmp_path / "summary.md"
+    codes = []
+    for i, extra in enumerate([[], ["--inconclusive", "pass"], ["--inconclusive", "fail"]]):
+        r = cli("gate", "--baseline", "sleep 0.02", "--candidate", "sleep 0.02",
+                "--min-runs", "2", "--max-runs", "2", "--seed", "7", "--warmup", "0",
+                "--out", tmp_path / f"res{i}", "--summary", summary, *extra)
+        assert "UNDECIDED" in r.stdout, r.stdout + r.stderr
+        codes.append(r.returncode)
+    assert codes == [3, 0, 1]
+    assert summary.read_text().count("### Performance gate") == 3
