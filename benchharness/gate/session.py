@@ -252,7 +252,7 @@ class _StepRunner:
         levels = dict(spec.levels)
         c = self.cells.get(levels)
         if c["build"] is not None:
-            key = (c["build"], c["cwd"])
+            key = (c["build"], c["cwd"], tuple(sorted(c["env_over"].items())))
             if key not in self.builds:
                 bm = self.executor.execute(self._spec(c["build"], c, None, levels=levels))
                 self.builds[key] = "" if bm.status == "ok" else f"build failed: {_short(bm)}"
