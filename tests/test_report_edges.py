@@ -107,3 +107,18 @@ def test_custom_metric_where_higher_is_better(tmp_path):
     # planted: nap=short, scale=1 is fastest, so it serves the most requests per second
     assert "The best cell is nap=short, scale=1" in html
     assert "req/s" in html
+
+
+def test_transform_reason_keeps_the_case_of_a_symbol():
+    # "λ̂ = ..." starts the reason: capitalising it would print a different symbol (Λ)
+    from types import SimpleNamespace
+
+    from benchharness.report.story import transform_sentence
+
+    data = SimpleNamespace(analysis={"transform": {"name": "log", "reason": "λ̂ = -0.12, 95% "
+                                                   "interval [-0.38, 0.14] contains 0"}})
+    s = transform_sentence(data)
+    assert "λ̂ = -0.12" in s and "Λ" not in s
+    data = SimpleNamespace(analysis={"transform": {"name": "none", "reason": "run times "
+                                                   "vary little"}})
+    assert "Run times vary little." in transform_sentence(data)

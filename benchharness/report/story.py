@@ -68,7 +68,8 @@ def transform_sentence(data: ReportData) -> str:
         base = "The analysis works on the response as measured (no transform)."
     reason = str(reason).strip()
     if reason:
-        reason = reason[0].upper() + reason[1:]
+        if reason[0].isascii():  # "λ̂ = ..." is a symbol: its case carries meaning
+            reason = reason[0].upper() + reason[1:]
         if not reason.endswith("."):
             reason += "."
     return f"{base} {reason}".strip()
