@@ -47,6 +47,13 @@ def test_identical_commands_pass(cli, tmp_path):
     assert set(timed["build"].astype(str)) == {"baseline", "candidate"}
     assert (timed["build"].astype(str) == "baseline").sum() == \
         (timed["build"].astype(str) == "candidate").sum()
+    # blocks and replicates count from 1 as in `run`; warm-ups are block 0, apart
+    # from every timed block; each timed block holds one run of each build
+    warm = res.runs[res.runs["status"] == "warmup"]
+    assert set(warm["block"].astype(int)) == {0}
+    assert timed["block"].astype(int).min() == 1
+    for _b, grp in timed.groupby("block"):
+        assert sorted(grp["build"].astype(str)) == ["baseline", "candidate"]
 
 
 def test_file_form_junit_names_each_workload(cli, tmp_path):

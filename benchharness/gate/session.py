@@ -356,7 +356,9 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
             m = r["measurement"]
             levels = {f: r["levels"][f] for f in exp.factor_names}
             pr = {"run": r["run"], "position": r["position"],
-                  "block": max(r["block"], 0), "replicate": max(r["replicate"], 0),
+                  # 1-based like `run` (block 1 is the first timed block); warm-ups 0
+                  "block": 0 if r["warmup"] else r["block"] + 1,
+                  "replicate": 0 if r["warmup"] else r["replicate"] + 1,
                   "levels": levels, "warmup": r["warmup"]}
             status = "warmup" if r["warmup"] else m.status
             msg = m.message or ""
