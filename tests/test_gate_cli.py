@@ -114,6 +114,13 @@ def test_stored_baseline_warns(cli, tmp_path):
             "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert "earlier session" in r.stdout
+    # only the candidate runs, so --baseline is not required with --against
+    r = cli("gate", "--candidate", cmd, "--tolerance", "50%", "--seed", "6",
+            "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "third")
+    assert r.returncode in (0, 3), r.stdout + r.stderr
+    assert "earlier session" in r.stdout
+    data = json.loads((tmp_path / "third" / "gate.json").read_text())
+    assert data["stored_baseline"] is True
 
 
 THROUGHPUT_GATE = """experiment: rate-gate

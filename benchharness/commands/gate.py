@@ -80,6 +80,10 @@ def main(args) -> int:
     if not quick and not args.file:
         raise UsageError("give an experiment FILE with a 'gate:' section, or --baseline CMD "
                          "--candidate CMD")
+    if quick and args.against and args.baseline is None and args.candidate is not None:
+        # stored-baseline mode runs only the candidate: the baseline's runs are read from
+        # the folder, so no baseline command is needed (a shell no-op records where from)
+        args.baseline = f": stored baseline runs from {args.against}"
     if quick and (args.baseline is None or args.candidate is None):
         raise UsageError("the quick form needs both --baseline CMD and --candidate CMD")
     over: dict = {}
