@@ -68,7 +68,7 @@ def transform_sentence(data: ReportData) -> str:
         base = "The analysis works on the response as measured (no transform)."
     reason = str(reason).strip()
     if reason:
-        if reason[0].isascii():  # "λ̂ = ..." is a symbol: its case carries meaning
+        if reason[0].isascii():  # never turn a symbol such as λ̂ into another one
             reason = reason[0].upper() + reason[1:]
         if not reason.endswith("."):
             reason += "."
