@@ -206,3 +206,22 @@ def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
         codes.append(r.returncode)
     assert codes == [3, 0, 1]
     assert summary.read_text().count("### Performance gate") == 3
+
+
+def test_file_form_build_once_per_rendered_form_with_env(cli, tmp_path):
+    # The two builds differ only in a templated environment variable: each is built
+    # exactly once, before its first run.
+    log = tmp_path / "build.log"
+    exp = tmp_path / "gate.yaml"
+    exp.write_text(f"""experiment: env-gate
+env: {{FLAGS: "-O{{build}}"}}
+build: [sh, -c, 'echo "$FLAGS" >> {log}']
+command: [sleep, "0.01"]
+factors:
+  build: [0, 2]
+warmup: 1
+gate: {{factor: build, baseline: "0", tolerance: 50%, max_runs: 6, min_runs: 6}}
+""")
+    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
+    assert r.returncode in (0, 3), r.stdout + r.stderr
+    assert sorted(log.read_text().split()) == ["-O0", "-O2"]
