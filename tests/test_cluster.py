@@ -273,3 +273,18 @@ def test_build_once_per_host_and_rendered_form(cluster, tmp_path):
     # one line per (host, form) that ran; the environment is part of the form
     assert sorted(lines) == sorted(f"-O{opt}" for _host, opt in need)
     assert len(lines) == len(need) and len(need) >= 2
+
+
+@pytest.mark.parametrize("address, words", [
+    ("nonsense", "not a scheduler address"),
+    ("tcp://127.0.0.1", "not a scheduler address"),
+    ("tcp://127.0.0.1:1", "cannot reach the Dask scheduler"),
+])
+def test_bad_or_unreachable_scheduler_is_one_line_and_leaves_no_folder(tmp_path, address,
+                                                                       words):
+    out = tmp_path / "res"
+    r = _run(["run", _exp(tmp_path), "--out", out, "--scheduler", address], timeout=30)
+    assert r.returncode == 2
+    assert words in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert not out.exists()  # retrying with the same --out works

@@ -48,6 +48,10 @@ def main(args) -> int:
     from benchharness import runner
     from benchharness.errors import UsageError
 
+    if args.scheduler:
+        from benchharness.execute.cluster import check_address
+
+        check_address(args.scheduler)  # before any results folder is created
     progress = _progress(args.quiet)
     if args.resume:
         if args.file:
