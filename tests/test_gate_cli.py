@@ -95,6 +95,10 @@ def test_usage_errors_exit_2(cli, tmp_path):
     assert r.returncode == 2 and "--candidate" in r.stderr
     r = cli("gate", "--baseline", "true", "--candidate", "true", "--tolerance", "abc")
     assert r.returncode == 2 and "tolerance" in r.stderr
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-runs", "3",
+            "--min-runs", "5")
+    assert r.returncode == 2 and "--min-runs (5) must not exceed --max-runs (3)" in r.stderr
+    assert "<gate quick form>" not in r.stderr
 
 
 def test_failing_candidate_is_a_regression(cli, tmp_path):

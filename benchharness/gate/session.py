@@ -124,6 +124,9 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
         inconclusive = o.pop("inconclusive")
     kw.update(o)
     if kw.get("min_runs", 6) > kw.get("max_runs", 100):
+        if "min_runs" in o or "max_runs" in o:  # a command-line value: no file line to name
+            raise UsageError(f"--min-runs ({kw.get('min_runs', 6)}) must not exceed "
+                             f"--max-runs ({kw.get('max_runs', 100)})")
         where = items.get("min_runs") or items.get("max_runs") or node
         raise Y.node_error(where, "'gate: min_runs' must not exceed 'gate: max_runs'")
     try:
