@@ -229,3 +229,14 @@ gate: {{factor: build, baseline: "0", tolerance: 50%, max_runs: 6, min_runs: 6}}
     r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert sorted(log.read_text().split()) == ["-O0", "-O2"]
+
+
+@pytest.mark.parametrize("opt", ["--junit", "--summary", "--json"])
+def test_unwritable_output_refused_before_any_run(cli, tmp_path, opt):
+    # exit 2 with one line before running anything (it was a traceback with exit 1,
+    # which a CI job reads as a regression, after the whole gate had run)
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--out", tmp_path / "res",
+            opt, tmp_path / "missing" / "out.file")
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert opt in r.stderr and "does not exist" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "res").exists()
