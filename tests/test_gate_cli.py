@@ -240,3 +240,36 @@ def test_unwritable_output_refused_before_any_run(cli, tmp_path, opt):
     assert r.returncode == 2, r.stdout + r.stderr
     assert opt in r.stderr and "does not exist" in r.stderr and "Traceback" not in r.stderr
     assert not (tmp_path / "res").exists()
+
+
+def test_ctrl_c_exits_130_and_the_folder_is_not_resumable_as_a_run(tmp_path, cli):
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from pathlib import Path
+
+    ROOT = Path(__file__).resolve().parent.parent
+    folder = tmp_path / "res"
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.Popen([sys.executable, "-m", "benchharness", "gate", "--baseline",
+                             "sleep 0.2", "--candidate", "sleep 0.2", "--out", str(folder)],
+                            env=env, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, start_new_session=True)
+    deadline = time.time() + 30
+    while time.time() < deadline:
+        jl = folder / "runs.jsonl"
+        if jl.exists() and len(jl.read_bytes().splitlines()) >= 3:
+            break
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGINT)
+    _out, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"
+    assert not (folder / "inflight").exists()
+    r = cli("run", "--resume", folder)
+    assert r.returncode == 2 and "is a gate session" in r.stderr
+    assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"

@@ -391,6 +391,8 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
                 quality.close()
             J.write_plan_csv(folder, exp.factor_names, plan_rows)
             finalize(folder, exp, session, facts, counts, len(plan_rows), interrupted)
+            if interrupted:  # a gate is never resumed: no in-flight marker to leave behind
+                (folder / "inflight").unlink(missing_ok=True)
         outcome = replace(outcome, warnings=tuple(notes) + outcome.warnings)
         from benchharness.gate.output import to_json_dict
 
