@@ -229,7 +229,8 @@ warmup: 1
 gate: {{factor: build, baseline: "0", tolerance: 50%, max_runs: 6, min_runs: 6}}
 """)
     r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
-    assert r.returncode in (0, 3), r.stdout + r.stderr
+    # the verdict on two equal sleeps is not the point here (a load spike may sway it)
+    assert r.returncode in (0, 1, 3) and "Traceback" not in r.stderr, r.stdout + r.stderr
     assert sorted(log.read_text().split()) == ["-O0", "-O2"]
 
 
