@@ -184,7 +184,8 @@ def outliers(r, leverage_rows, rss, df_resid, run_ids, alpha: float, limit: int 
     n = len(r)
     if df_resid < 2:
         return {"cutoff": None, "count": 0, "runs": [],
-                "verdict": "not enough residual degrees of freedom to look for outliers"}
+                "verdict": "not enough residual degrees of freedom to look for outliers",
+                "studentized": None}
     one_minus_h = 1.0 - leverage_rows
     ok = one_minus_h > 1e-12
     t = np.zeros(n)
