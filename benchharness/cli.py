@@ -7,7 +7,7 @@ through the library. This module stays thin and imports no heavy library, so
 
 Exit codes (DESIGN.md): 0 success, 1 a verdict that should fail CI, 2 bad input
 or usage (one line on stderr, no traceback), 3 inconclusive where asked, 130
-after Ctrl-C.
+after Ctrl-C, 70 for an internal error (a bug), so that it is never read as a verdict.
 """
 
 from __future__ import annotations
@@ -79,3 +79,10 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return 0
+    except Exception:  # noqa: BLE001 - a bug, not a verdict: never exit 1 (a regression)
+        import traceback
+
+        traceback.print_exc()
+        print("benchharness: internal error (this is a bug in benchharness, not a verdict "
+              "about your software); the traceback above helps to report it", file=sys.stderr)
+        return 70

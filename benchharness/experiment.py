@@ -192,8 +192,18 @@ def _compose(text: str, path: str) -> yaml.Node:
                               "quotes here", path=path,
                               line=mark.line + 1 if mark else None,
                               col=mark.column + 1 if mark else None) from None
+    except yaml.reader.ReaderError as exc:
+        # a character YAML does not allow (NUL, most control characters): locate it
+        pos = exc.position if isinstance(exc.position, int) else 0
+        before = text[:pos]
+        line, col = before.count("\n") + 1, pos - (before.rfind("\n") + 1) + 1
+        ch = exc.character if isinstance(exc.character, int) else ord(str(exc.character)[:1] or "\0")
+        raise ExperimentError(f"the character U+{ch:04X} is not allowed in YAML; "
+                              "remove it (a control character or binary data)", path=path,
+                              line=line, col=col) from None
     except yaml.YAMLError as exc:
-        raise ExperimentError(f"YAML syntax error: {exc}", path=path) from None
+        raise ExperimentError("YAML syntax error: " + " ".join(str(exc).split()),
+                              path=path) from None
     if not nodes or nodes[0] is None:
         raise ExperimentError("the experiment file is empty; it needs at least 'experiment', "
                               "'command' and 'factors'", path=path, line=1, col=1)
@@ -330,10 +340,13 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
                                                "level that value")
 
     found_warnings = []
+    key_marks = {k: kn.start_mark for k, kn, _v in mapping_items(nodes["factors"], "'factors'")}
     for f in factors:
         if f.name not in used:
+            mark = key_marks.get(f.name)
+            where = f"{path}:{mark.line + 1}:{mark.column + 1}" if mark else f"{path}"
             found_warnings.append(
-                f"{path}: factor {f.name!r} is used in no command, env or step; its levels "
+                f"{where}: factor {f.name!r} is used in no command, env or step; its levels "
                 f"will not change what runs (write {{{f.name}}} where it belongs)")
 
     return Experiment(

@@ -212,3 +212,27 @@ def test_text_layout_shows_failures_timeouts_and_notes():
     assert "look faster than the configuration is" in text
     for word in ("Source", "df", "Sum of squares", "Mean square", "F", "p", "Residual"):
         assert word in text
+
+
+def test_cli_awkward_inputs_one_line_or_a_result(cli, tmp_path):
+    """No traceback: a text response, an unwritable --json path, one residual df."""
+    text = tmp_path / "text.csv"
+    text.write_text("a,wall_s\nx,fast\ny,slow\n")
+    r = cli("analyze", text, "--factors", "a")
+    assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
+    assert "'fast'" in r.stderr and "--response" in r.stderr
+    p = _csv(tmp_path)
+    r = cli("analyze", p, "--response", "life_h", "--factors", "material",
+            "--json", tmp_path / "no" / "such" / "dir" / "a.json")
+    assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
+    assert "cannot write" in r.stderr
+    # two runs of one level: one residual degree of freedom, too few to look for outliers
+    tiny = tmp_path / "tiny.csv"
+    tiny.write_text("a,wall_s\nx,1\nx,2\n")
+    r = cli("analyze", tiny, "--factors", "a", "--json", "-")
+    assert r.returncode == 0, r.stderr
+    d = json.loads(r.stdout)
+    assert d["anova"][-1]["df"] == 1
+    assert "not enough residual degrees of freedom" in d["diagnostics"]["outlier_verdict"]
+    r = cli("report", tiny, "--factors", "a", "--html", "/proc/no/such/r.html")
+    assert r.returncode == 2 and "cannot write the report" in r.stderr, r.stderr

@@ -157,6 +157,10 @@ def test_one_replicate_full_model_says_no_residual_df():
     # what can be reported still is: SS of main effects, means without intervals
     assert t["material"]["sum_sq"] > 0
     assert all(m["lower"] is None for m in an.means)
+    # without an error estimate, effect sizes and outlier checks are not made up
+    assert all(r["partial_eta_sq"] is None and r["omega_sq"] is None for r in an.anova_rows)
+    assert t["Residual"]["sum_sq"] == 0.0
+    assert an.diagnostics["outlier_verdict"].startswith("not checked")
     # a main-effects model on the same data has residual df and matches statsmodels
     an2 = analyze(d, response="life_h", factors=["material", "temperature"], model="main",
                   transform="none")

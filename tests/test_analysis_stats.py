@@ -102,6 +102,12 @@ def test_transform_rule_cases():
     assert (c.name, c.lam) == ("boxcox", -0.8)                              # rounded to 0.1
     c = choose("auto", prof(-1.1, -1.3, -0.95), True)
     assert (c.name, c.lam) == ("boxcox", -1.0)
+    # λ̂ rounds to 1.5, which is outside; 2.0 is the multiple of 0.5 nearest λ̂ inside
+    c = choose("auto", prof(1.7, 1.6, 2.1), True)
+    assert (c.name, c.lam) == ("boxcox", 2.0)
+    c = choose("auto", prof(-0.3, -0.6, -0.05), True)                       # -0.5 inside
+    assert (c.name, c.lam) == ("boxcox", -0.5)
+    assert "multiple of 0.5" in c.reason and "λ̂ = -0.30" in c.reason
     with pytest.raises(DataError):
         choose("log", None, False)
     assert choose("auto", None, False).name == "none"
@@ -272,6 +278,32 @@ def test_planted_drift_outlier_and_small_cells():
     assert an.diagnostics["outliers"][0]["run"] == 1017
     small = an.diagnostics["small_cells"]
     assert {"a": "z", "b": "p"} in [s["levels"] for s in small]
+
+
+def test_runs_test_matches_statsmodels_and_clustering_is_a_concern():
+    # source: statsmodels.sandbox.stats.runs.runstest_1samp (Wald-Wolfowitz, no continuity
+    # correction) on the signs; planted answer: residuals that sit in alternating stretches
+    # of 25 runs (signs +--+-++-) have no linear trend but are clearly not independent.
+    from statsmodels.sandbox.stats.runs import runstest_1samp
+
+    from benchharness.analysis.diagnostics import runs_test
+
+    rng = np.random.default_rng(12)
+    x = rng.normal(size=80)
+    z_ref, p_ref = runstest_1samp(x > 0, cutoff=0.5, correction=False)
+    _, z, p = runs_test(x > 0)
+    assert z == pytest.approx(z_ref, rel=1e-12) and p == pytest.approx(p_ref, rel=1e-12)
+
+    n = 200
+    d = pd.DataFrame({"a": np.tile(["x", "y"], n // 2), "position": np.arange(n)})
+    signs = np.array([1, -1, -1, 1, -1, 1, 1, -1])  # balanced in time: no linear trend
+    stretch = 0.05 * signs[np.arange(n) // 25]
+    d["wall_s"] = np.exp(0.2 * (d.a == "y") + stretch + rng.normal(0, 0.01, n))
+    dr = analyze(d, factors=["a"], transform="log").diagnostics["drift"]
+    assert dr["p"] > 0.05                       # no linear drift was planted
+    assert dr["runs_test"]["p"] < 1e-6
+    assert dr["ok"] is False
+    assert "not independent" in dr["verdict"] and "no clear drift" in dr["verdict"]
 
 
 def test_failures_counted_per_cell_and_timeouts_flagged():

@@ -114,3 +114,18 @@ def test_gate_records_the_candidate_in_history(tmp_path, cli):
     assert "history: 1 cell rows of the candidate added" in r.stdout
     with sqlite3.connect(db) as con:
         assert con.execute("select count(*) from cells").fetchone()[0] == 1
+
+
+def test_an_internal_error_is_never_exit_1(monkeypatch, capsys):
+    # exit 1 means "regression" to a CI job; a bug must exit with its own code
+    from benchharness import cli
+    from benchharness.commands import plan as plan_cmd
+
+    def boom(args):
+        raise RuntimeError("planted bug")
+
+    parser = cli.build_parser()
+    monkeypatch.setattr(cli, "build_parser", lambda: parser)
+    parser._subparsers._group_actions[0].choices["plan"].set_defaults(func=boom)
+    assert cli.main(["plan", "x.yaml"]) == 70
+    assert "internal error" in capsys.readouterr().err

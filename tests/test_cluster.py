@@ -230,3 +230,61 @@ def test_workers_without_benchharness_give_one_clear_line(tmp_path):
                 pass
             p.wait()
         log.close()
+
+
+def test_two_workers_on_one_host_warn_without_same_host_ok(cluster, tmp_path):
+    address, _ = cluster
+    r = _run(["run", _exp(tmp_path, reps=1, sleep=0.01), "--out", tmp_path / "res",
+              "--scheduler", address, "--quiet", "--no-analysis"])
+    assert r.returncode == 0, r.stderr
+    text = r.stdout + r.stderr
+    assert "2 workers run on host" in text and "--same-host-ok" in text
+    r = _run(["run", _exp(tmp_path, reps=1, sleep=0.01), "--out", tmp_path / "res2",
+              "--scheduler", address, "--same-host-ok", "--quiet", "--no-analysis"])
+    assert r.returncode == 0, r.stderr
+    assert "workers run on host" not in r.stdout + r.stderr
+
+
+def test_build_once_per_host_and_rendered_form(cluster, tmp_path):
+    # The build's argv is the same for every cell; only its templated environment
+    # differs. It appends that to a log; each host (worker) must build each form it needs exactly once.
+    address, _ = cluster
+    log = tmp_path / "build.log"
+    p = tmp_path / "exp.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        experiment: cluster-build
+        env: {{FLAGS: "-O{{opt}}"}}
+        build: [sh, -c, 'echo "$FLAGS" >> {log}']
+        command: [{PY}, -c, "import time; time.sleep(0.02)", "{{opt}}", "{{size}}"]
+        factors:
+          opt: [0, 2]
+          size: [s, m, l]
+        replicates: 4
+        seed: 5
+        """))
+    out = tmp_path / "res"
+    r = _run(["run", p, "--out", out, "--scheduler", address, "--same-host-ok", "--quiet",
+              "--no-analysis"])
+    assert r.returncode == 0, r.stderr
+    recs = J.read_journal(out / "runs.jsonl")
+    assert len(recs) == 24 and all(x["status"] == "ok" for x in recs)
+    need = {(x["host"], x["levels"]["opt"]) for x in recs}
+    lines = log.read_text().splitlines()
+    # one line per (host, form) that ran; the environment is part of the form
+    assert sorted(lines) == sorted(f"-O{opt}" for _host, opt in need)
+    assert len(lines) == len(need) and len(need) >= 2
+
+
+@pytest.mark.parametrize("address, words", [
+    ("nonsense", "not a scheduler address"),
+    ("tcp://127.0.0.1", "not a scheduler address"),
+    ("tcp://127.0.0.1:1", "cannot reach the Dask scheduler"),
+])
+def test_bad_or_unreachable_scheduler_is_one_line_and_leaves_no_folder(tmp_path, address,
+                                                                       words):
+    out = tmp_path / "res"
+    r = _run(["run", _exp(tmp_path), "--out", out, "--scheduler", address], timeout=30)
+    assert r.returncode == 2
+    assert words in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert not out.exists()  # retrying with the same --out works

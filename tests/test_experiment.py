@@ -109,6 +109,10 @@ def test_named_value_missing():
 def test_unused_factor_is_a_warning():
     exp = parse(GOOD.replace("  level: [1, 6]", "  level: [1, 6]\n  corpus: [a, b]"))
     assert any("corpus" in w for w in exp.warnings)
+    # the warning is located like an error: FILE:LINE:COL of the factor's key
+    (w,) = [w for w in exp.warnings if "corpus" in w]
+    line = GOOD.replace("  level: [1, 6]", "  level: [1, 6]\n  corpus: [a, b]").splitlines().index("  corpus: [a, b]") + 1
+    assert f":{line}:3: factor 'corpus'" in w
 
 
 def test_replicates_below_one():
@@ -185,3 +189,9 @@ def test_cli_bad_file_exit_2_one_line(tmp_path, cli):
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and f"{p}:8:1: unknown key 'replicate'" in lines[0]
     assert "Traceback" not in r.stderr
+
+
+def test_control_character_is_located():
+    # a NUL or BEL byte in the file: one located line, not the YAML reader's two lines
+    e = error_of("experiment: x\ncommand: [echo, \"a\x07b\"]\nfactors: {a: [1]}\n")
+    assert (e.line, e.col) == (2, 19) and "U+0007" in str(e) and "\n" not in str(e)

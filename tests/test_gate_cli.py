@@ -47,6 +47,13 @@ def test_identical_commands_pass(cli, tmp_path):
     assert set(timed["build"].astype(str)) == {"baseline", "candidate"}
     assert (timed["build"].astype(str) == "baseline").sum() == \
         (timed["build"].astype(str) == "candidate").sum()
+    # blocks and replicates count from 1 as in `run`; warm-ups are block 0, apart
+    # from every timed block; each timed block holds one run of each build
+    warm = res.runs[res.runs["status"] == "warmup"]
+    assert set(warm["block"].astype(int)) == {0}
+    assert timed["block"].astype(int).min() == 1
+    for _b, grp in timed.groupby("block"):
+        assert sorted(grp["build"].astype(str)) == ["baseline", "candidate"]
 
 
 def test_file_form_junit_names_each_workload(cli, tmp_path):
@@ -88,6 +95,10 @@ def test_usage_errors_exit_2(cli, tmp_path):
     assert r.returncode == 2 and "--candidate" in r.stderr
     r = cli("gate", "--baseline", "true", "--candidate", "true", "--tolerance", "abc")
     assert r.returncode == 2 and "tolerance" in r.stderr
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-runs", "3",
+            "--min-runs", "5")
+    assert r.returncode == 2 and "--min-runs (5) must not exceed --max-runs (3)" in r.stderr
+    assert "<gate quick form>" not in r.stderr
 
 
 def test_failing_candidate_is_a_regression(cli, tmp_path):
@@ -107,3 +118,161 @@ def test_stored_baseline_warns(cli, tmp_path):
             "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert "earlier session" in r.stdout
+    # only the candidate runs, so --baseline is not required with --against
+    r = cli("gate", "--candidate", cmd, "--tolerance", "50%", "--seed", "6",
+            "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "third")
+    assert r.returncode in (0, 3), r.stdout + r.stderr
+    assert "earlier session" in r.stdout
+    data = json.loads((tmp_path / "third" / "gate.json").read_text())
+    assert data["stored_baseline"] is True
+
+
+THROUGHPUT_GATE = """experiment: rate-gate
+about: Does the new build serve fewer records per second?
+command: [PY, -c, "import random; print('rate', {build.r} * random.lognormvariate(0, 0.02))", "{w}"]
+factors:
+  build:
+    old: {r: 1000}
+    new: {r: NEW}
+  w: [a, b]
+metrics:
+  rate_ops:
+    pattern: 'rate ([0-9.]+)'
+    better: higher
+gate: {factor: build, baseline: old, response: RESPONSE, max_runs: 20}
+"""
+
+
+def _rate_gate(tmp_path, new_rate, response="rate_ops"):
+    import sys
+
+    exp = tmp_path / "rate.yaml"
+    exp.write_text(THROUGHPUT_GATE.replace("PY", sys.executable).replace("NEW", str(new_rate))
+                   .replace("RESPONSE", response))
+    return exp
+
+
+def test_throughput_metric_from_metrics_section(cli, tmp_path):
+    # A custom metric with `better: higher`: 30% fewer records per second is a
+    # regression (slowdown = baseline / candidate), and the JUnit file has one
+    # test case per workload, each with a failure element. This used to judge
+    # nothing: the gate did not extract metrics at all and ended undecided.
+    junit = tmp_path / "j.xml"
+    r = cli("gate", _rate_gate(tmp_path, 700), "--seed", "1", "--out", tmp_path / "res",
+            "--junit", junit, "--json", tmp_path / "g.json")
+    assert r.returncode == 1, r.stdout + r.stderr
+    assert "higher is better" in r.stdout
+    data = json.loads((tmp_path / "g.json").read_text())
+    assert data["higher_is_better"] is True
+    for w in data["workloads"]:
+        assert w["verdict"] == "regression"
+        assert w["ratio"] == pytest.approx(1000 / 700, rel=0.1)
+    cases = {c.get("name"): c for c in ET.parse(junit).getroot().iter("testcase")}
+    assert sorted(cases) == ["w=a", "w=b"]
+    assert all(c.find("failure") is not None for c in cases.values())
+    import csv
+
+    rows = list(csv.DictReader(open(tmp_path / "res" / "runs.csv")))
+    assert all(float(row["rate_ops"]) > 0 for row in rows)
+    # `report` works on a gate folder
+    rep = cli("report", tmp_path / "res")
+    assert rep.returncode == 0, rep.stderr
+    assert (tmp_path / "res" / "report.html").exists()
+
+
+def test_throughput_metric_higher_candidate_passes(cli, tmp_path):
+    r = cli("gate", _rate_gate(tmp_path, 1300), "--seed", "1", "--out", tmp_path / "res",
+            "--json", tmp_path / "g.json")
+    assert r.returncode == 0, r.stdout + r.stderr
+    data = json.loads((tmp_path / "g.json").read_text())
+    assert {w["verdict"] for w in data["workloads"]} == {"improvement"}
+
+
+def test_unknown_response_is_located(cli, tmp_path):
+    exp = _rate_gate(tmp_path, 700, response="rate_op")
+    r = cli("gate", exp, "--out", tmp_path / "res")
+    assert r.returncode == 2
+    assert f"{exp}:13:" in r.stderr and "did you mean 'rate_ops'" in r.stderr
+    assert not (tmp_path / "res").exists()
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--response", "rate_ops")
+    assert r.returncode == 2 and "--response" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
+    # Both builds always fail: no block carries a timing difference and neither build
+    # fails where the other does not, so within the budget the verdict is inconclusive,
+    # deterministically (timings alone could, rarely, settle even two blocks).
+    summary = tmp_path / "summary.md"
+    codes = []
+    for i, extra in enumerate([[], ["--inconclusive", "pass"], ["--inconclusive", "fail"]]):
+        r = cli("gate", "--baseline", "false", "--candidate", "false",
+                "--min-runs", "2", "--max-runs", "2", "--seed", "7", "--warmup", "0",
+                "--out", tmp_path / f"res{i}", "--summary", summary, *extra)
+        assert "UNDECIDED" in r.stdout, r.stdout + r.stderr
+        codes.append(r.returncode)
+    assert codes == [3, 0, 1]
+    assert summary.read_text().count("### Performance gate") == 3
+
+
+def test_file_form_build_once_per_rendered_form_with_env(cli, tmp_path):
+    # The two builds differ only in a templated environment variable: each is built
+    # exactly once, before its first run.
+    log = tmp_path / "build.log"
+    exp = tmp_path / "gate.yaml"
+    exp.write_text(f"""experiment: env-gate
+env: {{FLAGS: "-O{{build}}"}}
+build: [sh, -c, 'echo "$FLAGS" >> {log}']
+command: [sleep, "0.01"]
+factors:
+  build: [0, 2]
+warmup: 1
+gate: {{factor: build, baseline: "0", tolerance: 50%, max_runs: 6, min_runs: 6}}
+""")
+    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
+    # the verdict on two equal sleeps is not the point here (a load spike may sway it)
+    assert r.returncode in (0, 1, 3) and "Traceback" not in r.stderr, r.stdout + r.stderr
+    assert sorted(log.read_text().split()) == ["-O0", "-O2"]
+
+
+@pytest.mark.parametrize("opt", ["--junit", "--summary", "--json"])
+def test_unwritable_output_refused_before_any_run(cli, tmp_path, opt):
+    # exit 2 with one line before running anything (it was a traceback with exit 1,
+    # which a CI job reads as a regression, after the whole gate had run)
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--out", tmp_path / "res",
+            opt, tmp_path / "missing" / "out.file")
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert opt in r.stderr and "does not exist" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "res").exists()
+
+
+def test_ctrl_c_exits_130_and_the_folder_is_not_resumable_as_a_run(tmp_path, cli):
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from pathlib import Path
+
+    ROOT = Path(__file__).resolve().parent.parent
+    folder = tmp_path / "res"
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.Popen([sys.executable, "-m", "benchharness", "gate", "--baseline",
+                             "sleep 0.2", "--candidate", "sleep 0.2", "--out", str(folder)],
+                            env=env, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True, start_new_session=True)
+    deadline = time.time() + 30
+    while time.time() < deadline:
+        jl = folder / "runs.jsonl"
+        if jl.exists() and len(jl.read_bytes().splitlines()) >= 3:
+            break
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGINT)
+    _out, err = proc.communicate(timeout=30)
+    assert proc.returncode == 130, err
+    assert "Traceback" not in err
+    assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"
+    assert not (folder / "inflight").exists()
+    r = cli("run", "--resume", folder)
+    assert r.returncode == 2 and "is a gate session" in r.stderr
+    assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"

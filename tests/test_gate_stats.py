@@ -207,3 +207,44 @@ def test_exit_code_mapping_for_inconclusive():
     assert out.verdict == "inconclusive"
     assert out.exit_code() == 3
     assert out.exit_code("pass") == 0 and out.exit_code("fail") == 1
+
+
+@pytest.mark.slow
+def test_issue_rates_from_2000_gates_each():
+    """Every rate the gate promises, each from 2,000 seeded simulated gates (planted
+    answers), judged with its binomial uncertainty (3 standard errors), and the mean
+    runs to a decision against the fixed-size design with the same error rates
+    (one-sided paired t-test, level 0.05, power 0.95 at 1 + 2 x tolerance; size from
+    `fixed_pairs`, itself checked against statsmodels above)."""
+    from benchharness.gate.sequential import fixed_pairs
+
+    st = GateSettings()
+    G = 2000
+    se = lambda p: 3 * math.sqrt(p * (1 - p) / G)  # noqa: E731
+
+    def rates(ratio, cv, seed0):
+        outs = [_sim(ratio, cv, seed0 + g, st) for g in range(G)]
+        v = [o.verdict for o in outs]
+        runs = np.mean([j.blocks for o in outs for j in o.judgements.values()])
+        return {k: v.count(k) / G for k in ("regression", "no_regression", "improvement",
+                                              "inconclusive")}, runs
+
+    def nfix(cv):
+        return fixed_pairs(1 - st.confidence, st.beta,
+                           st.design_delta / math.sqrt(2 * math.log1p(cv * cv)))
+
+    r1, runs1 = rates(1.00, 0.03, 20_000)
+    assert r1["regression"] <= 0.05 + se(0.05)           # false fails at ratio 1.00
+    # an inconclusive gate is its own outcome, not a false fail
+    assert r1["regression"] + r1["no_regression"] + r1["improvement"] + \
+        r1["inconclusive"] == pytest.approx(1.0)
+    rb, _ = rates(1.05, 0.03, 30_000)
+    assert rb["regression"] <= 0.05 + se(0.05)           # the boundary 1 + tolerance
+    r2, runs2 = rates(1.10, 0.03, 40_000)
+    assert r2["regression"] >= 0.90 - se(0.90)           # detection at 1 + 2 x tolerance
+    assert runs1 <= 0.80 * nfix(0.03) and runs2 <= 0.80 * nfix(0.03)
+    # at CV 3% the fixed design needs only 11 runs and the first look (min_runs 6) is
+    # already 55% of it, so the <= 50% figures for large effects are checked at CV 5%
+    _, runs4 = rates(1.20, 0.05, 50_000)
+    _, runs_imp = rates(0.90, 0.05, 60_000)
+    assert runs4 <= 0.50 * nfix(0.05) and runs_imp <= 0.50 * nfix(0.05)

@@ -294,6 +294,7 @@ def test_metric_file_placeholders_are_checked(tmp_path):
         experiment: files
         command: [PY, -c, "import json, sys; json.dump({{'r': 2.5}}, open('out-' + sys.argv[1] + '.json', 'w'))", "{codec}"]
         factors: {codec: [zlib, lzma]}
+        workdir: TMP
         metrics:
           ratio: {file: 'out-{codec}.json', json: r, better: higher}
         """)

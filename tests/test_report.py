@@ -216,6 +216,17 @@ def test_report_command_on_folder_and_csv(folder, tmp_path, cli):
     r = cli("report", csv, "--factors", "nap,scale")
     assert r.returncode == 0, r.stderr
     assert (tmp_path / "timings.report.html").exists()
+    # a second CSV in the same directory keeps its own figures: links of both still resolve
+    other = tmp_path / "other.csv"
+    runs = folder / "runs.csv"
+    other.write_text(runs.read_text())
+    r = cli("report", other, "--factors", "nap")
+    assert r.returncode == 0, r.stderr
+    for name in ("timings", "other"):
+        text = (tmp_path / f"{name}.report.md").read_text()
+        links = re.findall(r"\]\(([^)\s]+\.png)\)", text)
+        assert links and all(link.startswith(f"{name}.figures/") for link in links)
+        assert all((tmp_path / link).exists() for link in links)
     r = cli("report", csv)
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1
     assert "--factors" in r.stderr
@@ -244,3 +255,24 @@ def test_run_command_writes_the_reports_of_real_processes(tmp_path, cli):
     assert "benchharness run" in html and "--seed 5" in html
     assert len(re.findall(r'<img src="data:image/png;base64,', html)) >= 5
     assert (out / "figures" / "distributions.svg").exists()
+
+
+def test_outlier_count_and_cutoff_come_from_the_analysis():
+    # planted answer: three runs 20× slower than the rest of their cell must be counted
+    # (the analysis lists at most 50, but the count and cut-off are in analysis.json)
+    import pandas as pd
+
+    from benchharness.analysis import analyze
+    from benchharness.report.data import collect
+    from benchharness.report.story import diagnostic_items
+
+    rng = np.random.default_rng(9)
+    d = pd.DataFrame({"a": np.repeat(["x", "y"], 60), "position": np.arange(120)})
+    d["wall_s"] = np.exp(rng.normal(0, 0.05, 120) + 0.3 * (d.a == "y"))
+    d.loc[[3, 50, 100], "wall_s"] *= 20
+    an = analyze(d, factors=["a"], transform="log").to_dict()
+    assert an["diagnostics"]["outlier_count"] == 3
+    item = next(i for i in diagnostic_items(collect(d, analysis=an, factors=["a"]))
+                if i["key"] == "outliers")
+    assert item["concern"] and "3 run(s) stand out" in item["verdict"]
+    assert f"±{an['diagnostics']['outlier_cutoff']:.2f}"[:4] in item["test"]

@@ -7,6 +7,7 @@ values are taken from them) and analysed by the real analysis stage.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import pandas as pd
 
 from benchharness.report import build_report
@@ -107,3 +108,137 @@ def test_custom_metric_where_higher_is_better(tmp_path):
     # planted: nap=short, scale=1 is fastest, so it serves the most requests per second
     assert "The best cell is nap=short, scale=1" in html
     assert "req/s" in html
+
+
+def test_report_of_a_folder_whose_runs_all_failed(tmp_path, cli):
+    """Every run exits non-zero: `run` and `report` still write a report that says so."""
+    exp = tmp_path / "broken.yaml"
+    exp.write_text(
+        "experiment: broken\n"
+        "about: Does the new build start at all?\n"
+        "command: [python3, -c, 'import sys; sys.exit(3)', '{build}']\n"
+        "factors:\n  build: [old, '<new>']\n"
+        "replicates: 2\nseed: 4\n")
+    out = tmp_path / "out"
+    r = cli("run", exp, "--out", out, "--quiet", timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert "Traceback" not in r.stderr
+    assert (out / "report.html").exists() and (out / "report.md").exists()
+    (out / "report.html").unlink()
+    r = cli("report", out)
+    assert r.returncode == 0, r.stderr
+    assert "Traceback" not in r.stderr
+    assert "nothing to analyse" in r.stdout
+    md = (out / "report.md").read_text()
+    html = (out / "report.html").read_text()
+    assert "No timed run finished successfully" in md
+    assert "4 runs failed or timed out" in md
+    assert "exit code 3" in md                  # the reason the runs give
+    assert "may look faster" not in md          # nothing was analysed, nothing looks faster
+    assert "No ANOVA" in html and "&lt;new&gt;" in html and "<new>" not in html
+    assert "<img" not in html                  # no empty figures
+    assert md.count("Nothing to show: no run finished.") == 2
+
+
+def test_report_of_a_gate_results_folder(tmp_path, cli):
+    """A gate folder: blocks are pairs of runs, the report uses them and repeats the gate."""
+    import statsmodels.formula.api as smf
+    from statsmodels.stats.anova import anova_lm
+
+    from benchharness import analyze
+    from benchharness.journal import load_results
+
+    out = tmp_path / "gate"
+    r = cli("gate", "--baseline", "sleep 0.02", "--candidate", "sleep 0.04", "--seed", "2",
+            "--max-runs", "8", "--out", out, timeout=180)
+    assert r.returncode in (0, 1, 3), r.stderr
+    r = cli("report", out)
+    assert r.returncode == 0, r.stderr
+    md = (out / "report.md").read_text()
+    assert "| **block** |" in md or "| block |" in md
+    assert "benchharness gate --baseline 'sleep 0.02' --candidate 'sleep 0.04'" in md
+    assert "--out" not in md.split("```sh", 1)[1].split("```", 1)[0]
+    # source: statsmodels ols "np.log(wall_s) ~ C(block) + C(build)" + anova_lm(typ=2)
+    runs = load_results(out).runs
+    ok = runs[runs["status"] == "ok"].copy()
+    ref = anova_lm(smf.ols("np.log(wall_s) ~ C(block) + C(build)", ok).fit(), typ=2)
+    an = analyze(out, transform="log")
+    rows = {x["term"]: x for x in an.anova_rows}
+    assert an.block == "block"
+    assert rows["block"]["df"] == ref.loc["C(block)", "df"]
+    assert rows["build"]["sum_sq"] == pytest.approx(ref.loc["C(build)", "sum_sq"], rel=1e-9)
+    assert rows["Residual"]["sum_sq"] == pytest.approx(ref.loc["Residual", "sum_sq"], rel=1e-9)
+
+
+def test_transform_sentence_keeps_the_lambda_symbol():
+    # a reason that starts with λ̂ must not become Λ̂ (another symbol) when capitalised
+    from benchharness.report.story import transform_sentence
+
+    data, _ = build_report(pd.DataFrame({"a": np.repeat(["x", "y"], 6),
+                                         "wall_s": np.exp(np.linspace(0, 1, 12))}),
+                           factors=["a"])
+    reason = data.analysis["transform"]["reason"]
+    assert reason.startswith("λ̂")
+    text = transform_sentence(data)
+    assert "λ̂" in text and "Λ" not in text
+
+
+def test_timings_that_follow_the_load_are_a_data_quality_warning():
+    # planted answer: runs started under higher load are slower (as in the analysis test)
+    from benchharness.report.story import warnings
+
+    rng = np.random.default_rng(21)
+    n = 120
+    load = rng.uniform(0, 4, n)
+    df = pd.DataFrame({"a": np.tile(["x", "y"], n // 2), "load_1m": load,
+                       "wall_s": np.exp(0.1 * (np.arange(n) % 2) + 0.05 * load
+                                        + rng.normal(0, 0.02, n))})
+    data, _ = build_report(df, factors=["a"])
+    assert data.analysis["diagnostics"]["load"]["ok"] is False
+    noisy = [w["text"] for w in warnings(data) if w["kind"] == "Noisy host"]
+    assert any("load" in t for t in noisy), warnings(data)
+
+
+def test_best_cell_with_timeouts_carries_a_caution():
+    # planted: the fastest cell lost two runs to timeouts (the slow ones never finished)
+    from benchharness.report import story
+
+    rng = np.random.default_rng(4)
+    df = pd.DataFrame({"pool": np.repeat(["2", "8", "32"], 6), "status": "ok"})
+    df["wall_s"] = np.exp(rng.normal(0, 0.05, 18) - 0.5 * (df.pool == "32"))
+    df.loc[[16, 17], "status"] = "timeout"
+    df.loc[[16, 17], "wall_s"] = np.nan
+    data, _ = build_report(df, factors=["pool"])
+    v = story.verdict(data)
+    assert v["best"].startswith("The fastest cell is pool=32")
+    assert "2 of this cell's runs did not finish" in v["best"]
+    df.loc[[16, 17], "status"] = "ok"
+    df.loc[[16, 17], "wall_s"] = np.exp(-0.5)
+    assert "did not finish" not in story.verdict(build_report(df, factors=["pool"])[0])["best"]
+
+
+def test_effect_of_an_empty_level_says_not_estimable():
+    # planted: every run of pool=32 timed out, so its ratio has no interval
+    rng = np.random.default_rng(5)
+    df = pd.DataFrame({"pool": np.repeat(["2", "8", "32"], 4), "status": "ok"})
+    df["wall_s"] = np.exp(rng.normal(0, 0.05, 12))
+    df.loc[df.pool == "32", "status"] = "timeout"
+    data, figs = build_report(df, factors=["pool"])
+    md = render_markdown(data, figs)
+    assert "| pool | 32 | 2 | – | not estimable (empty cells) |" in md
+    assert "– to –" not in md
+
+
+def test_transform_reason_keeps_the_case_of_a_symbol():
+    # "λ̂ = ..." starts the reason: capitalising it would print a different symbol (Λ)
+    from types import SimpleNamespace
+
+    from benchharness.report.story import transform_sentence
+
+    data = SimpleNamespace(analysis={"transform": {"name": "log", "reason": "λ̂ = -0.12, 95% "
+                                                   "interval [-0.38, 0.14] contains 0"}})
+    s = transform_sentence(data)
+    assert "λ̂ = -0.12" in s and "Λ" not in s
+    data = SimpleNamespace(analysis={"transform": {"name": "none", "reason": "run times "
+                                                   "vary little"}})
+    assert "Run times vary little." in transform_sentence(data)

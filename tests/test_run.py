@@ -291,3 +291,45 @@ def test_ctrl_c_stops_cleanly_and_says_how_to_resume(tmp_path):
     assert 3 <= len(recs) < 40
     assert (folder / "runs.csv").exists()
     assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"
+
+
+def test_run_with_analysis_when_a_cell_always_fails(tmp_path, cli):
+    # One cell fails every run, the other has two ok runs: one residual degree of
+    # freedom. The run must still exit 0 (failures are data) and analyse without a
+    # traceback (it used to crash in the outlier check).
+    p = exp_text(tmp_path, """\
+        experiment: halfbad
+        command: [sh, -c, "exit {code}"]
+        factors:
+          code: [0, 3]
+        replicates: 2
+        seed: 1
+        """)
+    r = cli("run", p, "--out", tmp_path / "res")
+    assert r.returncode == 0, r.stderr
+    assert "Traceback" not in r.stderr
+    assert (tmp_path / "res" / "analysis.json").exists()
+    rows = list(csv.DictReader(open(tmp_path / "res" / "runs.csv")))
+    assert sorted(row["status"] for row in rows) == ["failed", "failed", "ok", "ok"]
+
+
+@pytest.mark.xfail(strict=True, reason="defect in runner.py (owned by another helper): the "
+                   "build cache key (c['build'], c['cwd']) leaves out the templated env, so "
+                   "cells that differ only in env share one build; fix: add "
+                   "tuple(sorted(c['env_over'].items())) to the key, then drop this mark")
+def test_build_rendered_form_includes_its_environment(tmp_path):
+    # `env: {CFLAGS: "-O{opt}"}` with a plain `build: make` must build once per level
+    # of opt (the cluster and gate paths do; see tests/test_cluster.py).
+    log = tmp_path / "build.log"
+    p = exp_text(tmp_path, f"""\
+        experiment: envbuild
+        env: {{FLAGS: "-O{{opt}}"}}
+        build: [sh, -c, 'echo "$FLAGS" >> {log}']
+        command: [PY, -c, "pass", "{{opt}}"]
+        factors:
+          opt: [0, 2]
+        replicates: 2
+        seed: 1
+        """)
+    run_experiment(load(p), out=tmp_path / "res")
+    assert sorted(log.read_text().split()) == ["-O0", "-O2"]

@@ -285,12 +285,15 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
             p = float(stats.f.sf(F, row.df, df_res))
             anova_p[row.term] = p
         peta, omega = ef.effect_sizes(row.sum_sq, row.df, fit.rss, ss_total, mse)
+        if df_res <= 0:  # no error estimate: SS/(SS + 0) = 1 would say nothing
+            peta = omega = None
         anova_rows.append({"term": row.term, "df": row.df, "sum_sq": row.sum_sq,
                            "mean_sq": ms, "F": F, "p": p, "partial_eta_sq": peta,
                            "omega_sq": omega, "kind": "block" if row.is_block else "effect",
                            "df_full": row.df_full, "note": row.note,
                            "aliases": list(row.aliases)})
-    anova_rows.append({"term": "Residual", "df": df_res, "sum_sq": fit.rss,
+    anova_rows.append({"term": "Residual", "df": df_res,
+                       "sum_sq": fit.rss if df_res > 0 else 0.0,  # round-off only
                        "mean_sq": mse if df_res > 0 else None, "F": None, "p": None,
                        "partial_eta_sq": None, "omega_sq": None, "kind": "residual"})
     for row in fit.table:
@@ -343,7 +346,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         diagnostics["equal_variance"] = dg.brown_forsythe(fcells.row_cell, resid, fcells.count,
                                                           alpha)
         out = dg.outliers(resid, lev_rows, fit.rss, df_res, prep.run, alpha)
-        studentized = out.pop("studentized")
+        studentized = out.pop("studentized", None)  # absent when df < 2
         diagnostics["outliers"] = out["runs"]
         diagnostics["outlier_cutoff"] = out["cutoff"]
         diagnostics["outlier_count"] = out["count"]
@@ -362,7 +365,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         skipped = {"verdict": "not checked: no residual degrees of freedom"}
         diagnostics.update(normality=dict(skipped, test=None, statistic=None, p=None),
                            equal_variance=dict(skipped, test=None, statistic=None, p=None),
-                           outliers=[], drift=dict(skipped, slope_per_100_runs=None, p=None))
+                           outliers=[], drift=dict(skipped, slope_per_100_runs=None, p=None),
+                           outlier_verdict=skipped["verdict"])
     fmom = moments(fcells.row_cell, z, fcells.count)
     diagnostics["small_cells"] = dg.small_cells(
         fmom.n, fmom.ss_within, lambda c: {fnames[j]: flevels[j][fcells.levels[c, j]]

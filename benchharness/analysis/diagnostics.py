@@ -36,6 +36,8 @@ SKEW_MILD, KURT_MILD = 0.5, 1.0
 VAR_RATIO_MILD = 3.0
 #: drift smaller than 1 % per 100 runs is treated as negligible.
 DRIFT_MILD_PCT = 1.0
+#: our threshold: fewer than 80 % of the expected runs of residual signs is a clear clustering.
+RUNS_MILD_SHARE = 0.8
 
 
 def anderson_darling_p(a2: float, n: int) -> float:
@@ -159,11 +161,11 @@ def brown_forsythe(row_group, values, count, alpha: float) -> dict:
                     where=use_g)
     var = var[use_g]
     ratio = float(var.max() / var.min()) if var.min() > 0 else float("inf")
-    size = f"largest/smallest cell variance {ratio:.2f}"
+    size = f"the largest cell variance is {ratio:.3g}× the smallest"
     if p >= alpha and ratio < VAR_RATIO_MILD:
         verdict, ok = f"cell variances are consistent with being equal ({size})", True
     elif p >= alpha:
-        verdict, ok = (f"no clear evidence of unequal variances, though the {size}; with few "
+        verdict, ok = (f"no clear evidence of unequal variances, though {size}; with few "
                        "runs per cell the test has little power"), True
     elif ratio < VAR_RATIO_MILD:
         verdict, ok = (f"unequal variances are detectable but small ({size}); "
@@ -182,7 +184,8 @@ def outliers(r, leverage_rows, rss, df_resid, run_ids, alpha: float, limit: int 
     n = len(r)
     if df_resid < 2:
         return {"cutoff": None, "count": 0, "runs": [],
-                "verdict": "not enough residual degrees of freedom to look for outliers"}
+                "verdict": "not enough residual degrees of freedom to look for outliers",
+                "studentized": None}
     one_minus_h = 1.0 - leverage_rows
     ok = one_minus_h > 1e-12
     t = np.zeros(n)
@@ -252,7 +255,7 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
     size = f"{pct:+.2f}% per 100 runs"
     ok = True
     if p >= alpha:
-        verdict = f"no drift over the run order ({size})"
+        verdict = f"no clear drift over the run order (slope {size}, not significant)"
     elif abs(pct) < DRIFT_MILD_PCT:
         verdict = f"a trend over the run order is detectable but small ({size})"
     else:
@@ -260,9 +263,19 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
         verdict = (f"timings drift over the run order ({size}); the machine may be warming up or "
                    "throttling: add warm-up runs, use blocks, or check for background load")
     runs_info = {"runs": nruns, "z": z, "p": p_runs}
-    if p_runs is not None and p_runs < alpha:
-        verdict += ("; residual signs cluster in time (runs test), so neighbouring runs are "
-                    "not independent")
+    if p_runs is not None and p_runs < alpha and z is not None and z < 0:
+        # Size of the clustering: observed runs of signs against the number expected.
+        n1 = int(np.count_nonzero(nz > 0))
+        expected = 2.0 * n1 * (len(nz) - n1) / len(nz) + 1.0
+        share = nruns / expected
+        verdict += (f"; residual signs cluster in time ({nruns} runs of signs where about "
+                    f"{expected:.0f} are expected; runs test p {p_runs:.2g}), so neighbouring "
+                    "runs are not independent and intervals may be too narrow")
+        if share < RUNS_MILD_SHARE:
+            ok = False
+    elif p_runs is not None and p_runs < alpha:
+        verdict += ("; residual signs alternate more often than chance (runs test p "
+                    f"{p_runs:.2g})")
     return {"slope_per_100_runs": per100, "percent_per_100_runs": pct, "p": p,
             "runs_test": runs_info, "verdict": verdict, "ok": ok}
 

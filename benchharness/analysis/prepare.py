@@ -148,6 +148,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
 
     # block column
     order_blocked = getattr(exp, "order", None) == "blocked"
+    # The gate runs baseline and candidate back to back in blocks (benchharness.gate):
+    # its folders are blocked experiments too.
+    sections = getattr(exp, "sections", None) or {}
+    if hasattr(sections, "get") and sections.get("gate") is not None:
+        order_blocked = True
     has_hosts = "host" in columns and df["host"].astype(str).nunique() > 1
     if block is False or block == "":
         block = None
@@ -229,12 +234,19 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         notes.append(f"{bad_y} ok run(s) have no numeric {response!r} value and were left out")
     n_lost = int((~ok).sum())
     if n_lost:
-        parts = [f"{int(m.sum())} {s}" for s, m in lost_masks.items() if m.sum()]
+        said = {"timeout": "timed-out"}
+        parts = [f"{int(m.sum())} {said.get(s, s)}" for s, m in lost_masks.items() if m.sum()]
         oth = n_lost - sum(int(m.sum()) for m in lost_masks.values())
         if oth:
             parts.append(f"{oth} with another status")
-        notes.append("not analysed: " + ", ".join(parts) + " run(s); see the failure counts per cell")
+        notes.append("not analysed: " + ", ".join(parts) + " run(s); see the failure counts "
+                     "per cell")
     if not use.any():
+        if ok.any():
+            sample = next((str(v) for v in y_col[ok] if str(v).strip()), "")
+            raise DataError(f"column {response!r} has no numeric value in the runs to analyse"
+                            + (f" (it holds values like {sample!r})" if sample else "")
+                            + "; name a numeric column with --response")
         raise DataError(f"no run with status ok and a numeric {response!r} value to analyse")
 
     block_codes, block_levels = None, ()

@@ -94,6 +94,10 @@ def main(args) -> int:
         if frac is not None:
             print("\n" + format_fraction(frac))
     if args.json:
-        write_analysis_json(an, args.json)
+        try:
+            write_analysis_json(an, args.json)
+        except OSError as exc:
+            raise UsageError(f"--json {args.json}: cannot write the file ({exc.strerror or exc})"
+                             ) from None
         print(f"\nanalysis written to {args.json}")
     return 0

@@ -80,6 +80,10 @@ def main(args) -> int:
     if not quick and not args.file:
         raise UsageError("give an experiment FILE with a 'gate:' section, or --baseline CMD "
                          "--candidate CMD")
+    if quick and args.against and args.baseline is None and args.candidate is not None:
+        # stored-baseline mode runs only the candidate: the baseline's runs are read from
+        # the folder, so no baseline command is needed (a shell no-op records where from)
+        args.baseline = f": stored baseline runs from {args.against}"
     if quick and (args.baseline is None or args.candidate is None):
         raise UsageError("the quick form needs both --baseline CMD and --candidate CMD")
     over: dict = {}
@@ -133,6 +137,11 @@ def main(args) -> int:
         if not args.quiet and sys.stderr.isatty():
             print(f"\r  runs so far: {rec['run'] + 1}", end="", file=sys.stderr, flush=True)
 
+    # the verdict's files must be writable before any run is spent deciding it
+    for opt, target in (("--summary", args.summary), ("--junit", args.junit),
+                        ("--json", args.json)):
+        if target:
+            _check_writable(opt, target)
     outcome, folder = run_session(exp, cfg, out=args.out, seed=args.seed,
                                   stored_baseline=args.against, progress=progress)
     if not args.quiet and sys.stderr.isatty():
@@ -140,14 +149,18 @@ def main(args) -> int:
     for line in output.terminal_lines(outcome):
         print(line)
     print(f"results folder: {folder}")
-    if args.summary:
-        with open(args.summary, "a", encoding="utf-8") as fh:
-            fh.write(output.markdown_summary(outcome, folder))
-    if args.junit:
-        Path(args.junit).write_text(output.junit_xml(outcome), encoding="utf-8")
-    if args.json:
-        Path(args.json).write_text(json.dumps(output.to_json_dict(outcome, folder), indent=1)
-                                   + "\n", encoding="utf-8")
+    try:
+        if args.summary:
+            with open(args.summary, "a", encoding="utf-8") as fh:
+                fh.write(output.markdown_summary(outcome, folder))
+        if args.junit:
+            Path(args.junit).write_text(output.junit_xml(outcome), encoding="utf-8")
+        if args.json:
+            Path(args.json).write_text(json.dumps(output.to_json_dict(outcome, folder),
+                                                  indent=1) + "\n", encoding="utf-8")
+    except OSError as exc:
+        raise UsageError(f"{exc.filename}: cannot write ({exc.strerror}); the verdict is in "
+                         f"{folder}/gate.json") from None
     if args.history:
         from benchharness.history import add_results
 
@@ -155,3 +168,20 @@ def main(args) -> int:
                         select={cfg.factor: cfg.candidate})
         print(f"history: {n} cell rows of the candidate added to {args.history}")
     return outcome.exit_code(cfg.inconclusive)
+
+
+def _check_writable(opt: str, target) -> None:
+    import os
+    from pathlib import Path
+
+    from benchharness.errors import UsageError
+
+    p = Path(target)
+    parent = p.parent if str(p.parent) else Path(".")
+    if p.is_dir():
+        raise UsageError(f"{opt} {target}: is a folder; give a file path")
+    if not parent.is_dir():
+        raise UsageError(f"{opt} {target}: the folder {parent} does not exist; create it or "
+                         "give another path")
+    if not os.access(parent, os.W_OK) or (p.exists() and not os.access(p, os.W_OK)):
+        raise UsageError(f"{opt} {target}: cannot write there")

@@ -40,7 +40,9 @@ def analyse_and_report(res) -> None:
             print(format_fraction(frac))
     except BenchharnessError as exc:
         print(f"note: no analysis: {exc}", file=sys.stderr)
-        return
+        if not _nothing_finished(res.path):
+            return
+        # Every run failed: the report still shows the design and why the runs failed.
     try:
         from benchharness.report import write_reports
     except ImportError:
@@ -50,3 +52,14 @@ def analyse_and_report(res) -> None:
         print(f"\nreports: {html}\n         {md}")
     except BenchharnessError as exc:
         print(f"note: no report: {exc}", file=sys.stderr)
+
+
+def _nothing_finished(folder) -> bool:
+    """True when no timed run of the results folder finished with a value."""
+    try:
+        from benchharness.journal import load_results
+        from benchharness.report.data import _nothing_finished as nothing
+
+        return nothing(load_results(folder).runs, "wall_s")
+    except Exception:  # noqa: BLE001 - only decides whether to try the report
+        return False

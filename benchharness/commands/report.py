@@ -24,6 +24,16 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
+    from benchharness.errors import UsageError
+
+    try:
+        return _main(args)
+    except OSError as exc:  # a report path that cannot be written: one line, exit 2
+        where = exc.filename or args.html or args.markdown or args.source
+        raise UsageError(f"{where}: cannot write the report ({exc.strerror or exc})") from None
+
+
+def _main(args) -> int:
     import sys
     from pathlib import Path
 
@@ -47,15 +57,22 @@ def main(args) -> int:
     md = None if to_stdout else (Path(args.markdown) if args.markdown else base / f"{stem}.md")
     data, figs = build_report(src, response=args.response, factors=factors)
     fig_root = (md.parent if md is not None else html.parent)
-    figs.save(fig_root)
+    # A results folder owns figures/; CSV files sharing a directory get one figure folder
+    # each, so the report of one never shows (or overwrites) the figures of another.
+    fig_dir = "figures" if src.is_dir() else f"{src.stem}.figures"
+    figs.save(fig_root, fig_dir)
     write_html(data, figs, html)
     if to_stdout:
-        sys.stdout.write(render_markdown(data, figs, compact=args.compact))
+        import os
+
+        # printed Markdown has no location of its own: link figures from where it runs
+        sys.stdout.write(render_markdown(data, figs, compact=args.compact,
+                                         figures_rel=os.path.relpath(fig_root / fig_dir)))
         print(f"report: {html}", file=sys.stderr)
         return 0
     import os
 
-    rel = os.path.relpath(fig_root / "figures", md.parent)
+    rel = os.path.relpath(fig_root / fig_dir, md.parent)
     write_markdown(data, figs, md, compact=args.compact, figures_rel=rel)
     if args.tables:
         from benchharness.report.terminal import print_analysis
@@ -65,5 +82,5 @@ def main(args) -> int:
         from benchharness.report.story import verdict
 
         print(verdict(data)["headline"])
-    print(f"reports: {html}\n         {md}\nfigures: {fig_root / 'figures'}")
+    print(f"reports: {html}\n         {md}\nfigures: {fig_root / fig_dir}")
     return 0

@@ -48,10 +48,15 @@ def main(args) -> int:
     from benchharness import runner
     from benchharness.errors import UsageError
 
+    if args.scheduler:
+        from benchharness.execute.cluster import check_address
+
+        check_address(args.scheduler)  # before any results folder is created
     progress = _progress(args.quiet)
     if args.resume:
         if args.file:
             raise UsageError("give either an experiment file or --resume DIR, not both")
+        _refuse_gate_folder(args.resume)
         outcome = runner.resume_experiment(args.resume, progress=progress,
                                            scheduler=args.scheduler,
                                            same_host_ok=args.same_host_ok)
@@ -127,3 +132,21 @@ def finish(outcome, analysis: bool = True) -> int:
         postrun.analyse_and_report(res)
     print(f"\nresults: {folder}")
     return 0
+
+
+def _refuse_gate_folder(folder) -> None:
+    """A gate session decides as it goes; resuming it as a plain run would only mark it
+    complete without a verdict."""
+    import json
+    from pathlib import Path
+
+    from benchharness.errors import UsageError
+
+    try:
+        session = json.loads((Path(folder) / "session.json").read_text())
+    except (OSError, ValueError):
+        return  # not readable here: resume_experiment says what is wrong
+    if isinstance(session, dict) and session.get("gate"):
+        raise UsageError(f"{folder}: is a gate session; a gate is not resumed (its decision "
+                         "depends on the order of looks): run `benchharness gate` again into a "
+                         "new folder")

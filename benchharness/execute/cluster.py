@@ -41,6 +41,30 @@ from benchharness.execute.base import USAGE_FIELDS, Measurement
 RESOURCE = "bench"
 
 
+def check_address(address: str, timeout_s: float = 5.0) -> None:
+    """Before a results folder is created: the address has the form the option promises
+    (``tcp://HOST:PORT``, or ``HOST:PORT``) and something listens there. Light: no Dask
+    import; a refused or unreachable address is one clear line instead of a traceback or
+    an empty results folder left behind."""
+    import re
+    import socket
+
+    m = re.fullmatch(r"(?:(tcp|tls|inproc|ucx|ws|wss)://)?(\[[^\]]+\]|[^:/\s]+):(\d{1,5})/?", address)
+    if m is None:
+        raise UsageError(f"--scheduler {address!r}: not a scheduler address; give "
+                         "tcp://HOST:PORT (e.g. tcp://10.0.0.5:8786)")
+    scheme, host, port = m.group(1) or "tcp", m.group(2).strip("[]"), int(m.group(3))
+    if scheme != "tcp":
+        return  # other transports: let Dask connect and report
+    try:
+        with socket.create_connection((host, port), timeout=timeout_s):
+            pass
+    except OSError as exc:
+        raise ExecutionError(f"cannot reach the Dask scheduler at {address} "
+                             f"({exc.strerror or exc}); check the address and that "
+                             "`dask scheduler` is running") from None
+
+
 def _connect(address: str, timeout_s: float = 20.0):
     try:
         from distributed import Client
@@ -49,6 +73,8 @@ def _connect(address: str, timeout_s: float = 20.0):
                          "pip install 'benchharness[dask]'") from None
     try:
         return Client(address, timeout=timeout_s)
+    except ValueError as exc:  # a malformed address
+        raise UsageError(f"--scheduler {address!r}: {exc}; give tcp://HOST:PORT") from None
     except (OSError, TimeoutError) as exc:
         raise ExecutionError(f"cannot reach the Dask scheduler at {address} ({exc}); check the "
                              "address and that `dask scheduler` is running") from None

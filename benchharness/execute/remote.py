@@ -96,7 +96,10 @@ def execute_run(payload: dict) -> dict:
     levels = payload.get("levels") or {}
     build = payload.get("build")
     if build is not None:
-        key = (tuple(build.get("argv") or ()), build.get("shell"), build.get("cwd"))
+        # the rendered form includes the environment: `env: {CFLAGS: "-O{opt}"}` with a
+        # plain `build: make` is one build per level of opt
+        key = (tuple(build.get("argv") or ()), build.get("shell"), build.get("cwd"),
+               tuple(sorted((build.get("env") or {}).items())))
         if key not in st["builds"]:
             bm = ex.execute(_spec(build, None, levels=levels))
             ok = bm.status == "ok"

@@ -114,10 +114,19 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
     o = {k: v for k, v in (overrides or {}).items() if v is not None}
     if "response" in o:
         response = o.pop("response")
+    _check_response(exp, response, None if "response" in (overrides or {}) and
+                    (overrides or {}).get("response") is not None else items.get("response"))
+    if "direction" not in items and "higher_is_better" not in o:
+        # a custom metric knows its direction (metrics: NAME: {better: higher})
+        if _metric_better(exp, response) == "higher":
+            kw["higher_is_better"] = True
     if "inconclusive" in o:
         inconclusive = o.pop("inconclusive")
     kw.update(o)
     if kw.get("min_runs", 6) > kw.get("max_runs", 100):
+        if "min_runs" in o or "max_runs" in o:  # a command-line value: no file line to name
+            raise UsageError(f"--min-runs ({kw.get('min_runs', 6)}) must not exceed "
+                             f"--max-runs ({kw.get('max_runs', 100)})")
         where = items.get("min_runs") or items.get("max_runs") or node
         raise Y.node_error(where, "'gate: min_runs' must not exceed 'gate: max_runs'")
     try:
@@ -126,6 +135,35 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
         raise Y.node_error(node, f"'gate': {exc}") from None
     return GateConfig(factor=factor, baseline=baseline, candidate=candidate,
                       settings=settings, response=response, inconclusive=inconclusive)
+
+
+def _check_response(exp, response: str, node) -> None:
+    """The response must be a runs.csv figure or one of the experiment's metrics."""
+    from benchharness.quality import response_columns
+
+    known = response_columns(exp)
+    if response in known or (response.startswith("perf_") and "perf" in exp.sections):
+        return
+    from benchharness.yamlnodes import node_error, suggest
+
+    hint = suggest(response, known)
+    msg = (f"the gate's response {response!r} is not measured by this experiment; "
+           + (hint.replace("known keys", "known responses") if hint else
+              "use one of: " + ", ".join(known))
+           + " (a custom metric needs a 'metrics:' entry in an experiment file)")
+    if node is not None:
+        raise node_error(node, msg)
+    raise UsageError(f"--response: {msg}")
+
+
+def _metric_better(exp, response: str) -> str | None:
+    from benchharness.quality import quality_config
+
+    metrics = quality_config(exp).metrics
+    for m in (metrics.metrics if metrics is not None else ()):
+        if m.name == response:
+            return m.better
+    return None
 
 
 def quick_experiment_text(baseline_cmd: str, candidate_cmd: str, warmup: int = 1,
@@ -200,9 +238,10 @@ def _stored_baseline(folder, exp, cfg: GateConfig, workloads) -> dict:
 class _StepRunner:
     """Executor adapter: build once per rendered form, reset/teardown around timed runs."""
 
-    def __init__(self, exp, executor, cells, timeout_s, journal):
+    def __init__(self, exp, executor, cells, timeout_s, journal, quality=None):
         from benchharness.runner import _spec
 
+        self.quality = quality
         self.exp, self.executor, self.cells, self.timeout_s = exp, executor, cells, timeout_s
         self._spec = _spec
         self.builds: dict = {}
@@ -216,7 +255,7 @@ class _StepRunner:
         levels = dict(spec.levels)
         c = self.cells.get(levels)
         if c["build"] is not None:
-            key = (c["build"], c["cwd"])
+            key = (c["build"], c["cwd"], tuple(sorted(c["env_over"].items())))
             if key not in self.builds:
                 bm = self.executor.execute(self._spec(c["build"], c, None, levels=levels))
                 self.builds[key] = "" if bm.status == "ok" else f"build failed: {_short(bm)}"
@@ -233,13 +272,27 @@ class _StepRunner:
         def cb(pid, pgid):
             if self.journal is not None and spec.run_id is not None:
                 self.journal.mark_inflight(spec.run_id, pid, pgid)
+        token = None
+        if self.quality is not None:  # metrics:, expect:, samples:, perf: as in `run`
+            spec, token = self.quality.prepare(spec, levels, c)
         m = self.executor.execute(spec, on_start=cb)
+        if token is not None:
+            m = self.quality.finish(token, {"run": spec.run_id, "warmup": warm,
+                                            "levels": levels}, m)
         if c["teardown"] is not None:
             self.executor.execute(self._spec(c["teardown"], c, self.timeout_s, levels=levels))
         return m
 
     def close(self):
         pass
+
+
+def _all_cells(exp):
+    import itertools
+
+    names = exp.factor_names
+    for combo in itertools.product(*[exp.levels_of(f) for f in names]):
+        yield dict(zip(names, combo))
 
 
 def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None = None,
@@ -281,7 +334,14 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
         J.fsync_dir(folder)
         cells = _CellCache(exp, session)
         jr = J.Journal(folder)
-        steps = _StepRunner(exp, executor, cells, exp.timeout_s, jr)
+        quality = None
+        if not simulated:
+            from benchharness.quality import RunQuality
+
+            quality = RunQuality(exp, folder)
+            quality.start([(lv, cells.get(lv)) for lv in _all_cells(exp)])
+            notes.extend(quality.notes)
+        steps = _StepRunner(exp, executor, cells, exp.timeout_s, jr, quality)
         role_level = {BASELINE: cfg.baseline, CANDIDATE: cfg.candidate}
         plan_rows = []
         counts: dict[str, int] = {}
@@ -299,7 +359,9 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
             m = r["measurement"]
             levels = {f: r["levels"][f] for f in exp.factor_names}
             pr = {"run": r["run"], "position": r["position"],
-                  "block": max(r["block"], 0), "replicate": max(r["replicate"], 0),
+                  # 1-based like `run` (block 1 is the first timed block); warm-ups 0
+                  "block": 0 if r["warmup"] else r["block"] + 1,
+                  "replicate": 0 if r["warmup"] else r["replicate"] + 1,
                   "levels": levels, "warmup": r["warmup"]}
             status = "warmup" if r["warmup"] else m.status
             msg = m.message or ""
@@ -325,8 +387,12 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
             raise
         finally:
             jr.close()
+            if quality is not None:
+                quality.close()
             J.write_plan_csv(folder, exp.factor_names, plan_rows)
             finalize(folder, exp, session, facts, counts, len(plan_rows), interrupted)
+            if interrupted:  # a gate is never resumed: no in-flight marker to leave behind
+                (folder / "inflight").unlink(missing_ok=True)
         outcome = replace(outcome, warnings=tuple(notes) + outcome.warnings)
         from benchharness.gate.output import to_json_dict
 

@@ -64,8 +64,10 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
         row = {"factor": e.get("factor"), "level": e.get("level"),
                "reference": e.get("reference"), "ratio": fmt_ratio(e.get("ratio")),
-               "interval": f"{fmt_ratio(lo)} to {fmt_ratio(hi)}", "significant": sig,
-               "difference": ""}
+               "interval": (f"{fmt_ratio(lo)} to {fmt_ratio(hi)}" if finite(lo) and finite(hi)
+                            else "not estimable (empty cells)" if e.get("estimable") is False
+                            else "–"),
+               "significant": sig, "difference": ""}
         if finite(e.get("difference")):
             has_diff = True
             row["difference"] = fmt_value(e.get("difference"), resp)
@@ -77,8 +79,9 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
             level_means.append({
                 "factor": term, "level": (m.get("levels") or {}).get(term, ""),
                 "mean": fmt_value(m.get("mean"), resp),
-                "interval": f"{fmt_value(m.get('lower'), resp)} to "
-                            f"{fmt_value(m.get('upper'), resp)}",
+                "interval": (f"{fmt_value(m.get('lower'), resp)} to "
+                             f"{fmt_value(m.get('upper'), resp)}"
+                             if finite(m.get("lower")) and finite(m.get("upper")) else "–"),
                 "n": m.get("n", ""),
             })
     comps_all = story.comparisons(data)
@@ -88,7 +91,9 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
             "method": _METHOD_WORDS.get(c.get("method"), str(c.get("method"))),
             "factor": c.get("factor"), "within": c["within_text"],
             "a": c.get("a"), "b": c.get("b"), "ratio": fmt_ratio(c.get("ratio")),
-            "interval": f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}",
+            "interval": (f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}"
+                         if finite(c.get("lower")) and finite(c.get("upper"))
+                         else "not estimable"),
             "p": fmt_p(c.get("p_adj")), "significant": c["significant"],
         })
     diags = []
@@ -129,6 +134,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "anova": anova,
         "ss_type": ss_type,
         "transform": story.transform_sentence(data),
+        "unanalysed": bool(data.analysis.get("unanalysed")),
         "effects": effects,
         "has_difference": has_diff,
         "level_means": level_means,

@@ -164,6 +164,24 @@ def _reproduce_command(folder: Path | None, experiment, seed, session=None) -> s
     """The command that runs the same experiment again in the same order."""
     if folder is None or experiment is None:
         return None
+    argv = list((session or {}).get("argv") or [])
+    if (session or {}).get("gate") and len(argv) > 1 and argv[1] == "gate":
+        # The gate's own command line, without --out (a new folder each time) and with
+        # the seed it used, so the blocks come in the same order.
+        parts, skip = ["benchharness"], False
+        for a in argv[1:]:
+            if skip:
+                skip = False
+                continue
+            if a in ("--out", "--seed"):
+                skip = True
+                continue
+            if a.startswith("--out=") or a.startswith("--seed="):
+                continue
+            parts.append(str(a))
+        if seed is not None:
+            parts += ["--seed", str(seed)]
+        return " ".join(shlex.quote(p) for p in parts)
     original = (session or {}).get("experiment_path")
     target = original if original and original != "<string>" else str(folder / "experiment.yaml")
     parts = ["benchharness", "run", str(target)]
@@ -242,6 +260,10 @@ def collect(source, *, analysis=None, response: str | None = None,
         same_fac = stored.get("factors") is None or _factor_names(stored) == factors
         if same_resp and same_fac:
             adict = stored
+    if adict is None and _nothing_finished(runs, response or "wall_s"):
+        # Every timed run failed or timed out: a report of the design and of why the runs
+        # did not finish is still worth reading; there is just nothing to analyse.
+        adict = unanalysed(runs, response or "wall_s", factors, levels=None)
     if adict is None:
         if not compute_analysis:
             raise DataError(f"{src_text}: no analysis to report")
@@ -276,7 +298,7 @@ def collect(source, *, analysis=None, response: str | None = None,
     from benchharness.report import model
 
     residuals = _normalise_residuals(residuals)
-    if residuals is None:
+    if residuals is None and not adict.get("unanalysed"):
         try:
             residuals = model.residual_table(runs, adict, factors, block)
         except (KeyError, ValueError) as exc:  # e.g. a response with no usable values
@@ -285,7 +307,8 @@ def collect(source, *, analysis=None, response: str | None = None,
     # grid is the fallback.
     stored = _normalise_profile(profile)
     fine = None
-    if stored is None or len(runs) <= 50_000:  # above: the analysis' own grid
+    if not adict.get("unanalysed") and (stored is None or len(runs) <= 50_000):
+        # (above 50,000 rows: the analysis' own grid)
         fine = model.boxcox_profile(runs, adict, factors, block)
     profile = fine if fine is not None else stored
 
@@ -308,6 +331,44 @@ def collect(source, *, analysis=None, response: str | None = None,
         reproduce=_reproduce_command(folder, experiment, seed, session), block=block,
         extra=tuple(extra), extra_notes=tuple(extra_notes), better=better,
     )
+
+
+def _nothing_finished(runs, response: str) -> bool:
+    """True when the table records run statuses and no timed run finished with a value."""
+    import pandas as pd
+
+    if "status" not in runs.columns:
+        return False
+    status = runs["status"].astype(str)
+    timed = status != "warmup"
+    if not timed.any():
+        return False
+    ok = status == "ok"
+    if response in runs.columns:
+        ok &= pd.to_numeric(runs[response], errors="coerce").notna()
+    return not bool(ok.any())
+
+
+def unanalysed(runs, response: str, factors, levels=None) -> dict:
+    """The analysis dict of a table where no timed run finished: counts and a note only."""
+    status = runs["status"].astype(str)
+    timed = runs[status != "warmup"]
+    n = len(timed)
+    failed = int((timed["status"].astype(str) == "failed").sum())
+    timeout = int((timed["status"].astype(str) == "timeout").sum())
+    parts = [f"{failed} failed" if failed else "", f"{timeout} timed out" if timeout else ""]
+    other = n - failed - timeout
+    if other:
+        parts.append(f"{other} finished without a {response} value")
+    why = ", ".join(p for p in parts if p)
+    note = (f"none of the {n} timed runs finished with a {response} value ({why}), so there "
+            "is nothing to analyse; the data-quality warnings give the reasons the runs report")
+    return {"response": response, "unanalysed": note, "notes": [note],
+            "factors": [{"name": f, "levels": [str(v) for v in
+                                              timed[f].dropna().astype(str).unique()]}
+                        for f in factors],
+            "transform": {}, "anova": [], "means": [], "effects": [], "comparisons": [],
+            "diagnostics": {}, "failures": {"runs": n, "not_ok": n}}
 
 
 def _declared_metric(folder, response) -> str | None:

@@ -64,9 +64,9 @@ class FigureSet:
     def by_section(self, section: str) -> list[Figure]:
         return [f for f in self.figures if f.section == section]
 
-    def save(self, folder: Path) -> list[Path]:
-        """Write figures/<name>.png and .svg under ``folder``; returns the paths."""
-        out = Path(folder) / "figures"
+    def save(self, folder: Path, subdir: str = "figures") -> list[Path]:
+        """Write <subdir>/<name>.png and .svg under ``folder``; returns the paths."""
+        out = Path(folder) / subdir
         out.mkdir(parents=True, exist_ok=True)
         paths = []
         for f in self.figures:
@@ -712,6 +712,8 @@ def make_figures(data: ReportData, seed: int = 0,
     rng = np.random.default_rng(seed)
     out = FigureSet()
     seen: dict[str, int] = {}
+    if data.analysis.get("unanalysed"):
+        return out  # no run finished: no figure would show anything
 
     def add(fig):
         # two factor names may share a slug ("a b", "a-b"): keep every file

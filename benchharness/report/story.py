@@ -56,6 +56,8 @@ def _term_parts(term: str, data: ReportData) -> tuple[str, ...] | None:
 
 
 def transform_sentence(data: ReportData) -> str:
+    if data.analysis.get("unanalysed"):
+        return ""
     tr = data.analysis.get("transform") or {}
     name = tr.get("name", "none")
     reason = tr.get("reason") or ""
@@ -182,6 +184,9 @@ def verdict(data: ReportData) -> dict[str, Any]:
     elif no_matter:
         out["headline"] = (f"None of the factors ({_and(no_matter)}) made a difference this "
                            "experiment could detect.")
+    elif data.analysis.get("unanalysed"):
+        out["headline"] = ("No timed run finished successfully, so there is nothing to analyse; "
+                           "see the data-quality warnings for why the runs failed.")
     else:
         out["headline"] = "The analysis could not test any factor (see the ANOVA section)."
     if untested and (matter or no_matter):
@@ -212,11 +217,27 @@ def verdict(data: ReportData) -> dict[str, Any]:
                 text += "; their intervals overlap, so treat the two as close to tied."
             else:
                 text += "."
+        lost = _lost_runs(data, best["levels"])
+        if lost:
+            text += (f" Caution: {lost} of this cell's runs did not finish (failed or timed "
+                     "out), so its mean counts only the runs that did and may flatter it.")
         out["best"] = text
 
     out["sure"] = sureness(data)
     out["transform"] = transform_sentence(data)
     return out
+
+
+def _lost_runs(data: ReportData, levels: dict) -> int:
+    """Timed runs of one cell that failed or timed out."""
+    timed = data.timed_runs
+    if "status" not in timed.columns or not len(timed):
+        return 0
+    mask = timed["status"].astype(str).isin(["failed", "timeout"])
+    for f, v in levels.items():
+        if f in timed.columns:
+            mask &= timed[f].astype(str) == str(v)
+    return int(mask.sum())
 
 
 def _p_words(p) -> str:
@@ -246,6 +267,9 @@ def diagnostic_items(data: ReportData) -> list[dict]:
     }
     items = []
     check = diag.get("outlier_check") if isinstance(diag.get("outlier_check"), dict) else {}
+    if not check:  # the keys analysis.json carries (benchharness.analysis)
+        check = {k: diag.get(f"outlier_{k}") for k in ("count", "cutoff", "verdict")
+                 if diag.get(f"outlier_{k}") is not None}
     for key, val in diag.items():
         if key == "outliers":
             outl = val if isinstance(val, list) else (val or {}).get("runs", [])
@@ -307,7 +331,7 @@ def sureness(data: ReportData) -> list[str]:
         out.append("There are no residual degrees of freedom (one run per cell): no test "
                    "could be made, so nothing here is a verdict. Add replicates.")
     n_ok = d.get("runs_ok")
-    if n_ok is not None:
+    if n_ok is not None and not data.analysis.get("unanalysed"):
         reps = d.get("replicates")
         out.append(f"Based on {n_ok} timed runs" + (f" ({reps} replicates per cell)"
                                                      if reps else "") + ".")
@@ -328,7 +352,10 @@ def sureness(data: ReportData) -> list[str]:
         out.append("A rank-based cross-check (which does not assume normal residuals) agrees "
                    "with the ANOVA on every term.")
     bad = d.get("runs_failed", 0) + d.get("runs_timeout", 0)
-    if bad:
+    if bad and data.analysis.get("unanalysed"):
+        out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out; fix what the "
+                   "runs report (see Data-quality warnings) and run the experiment again.")
+    elif bad:
         out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out and "
                    "{} not in the analysis; the affected cells may look faster than they are."
                    .format("is" if bad == 1 else "are"))
@@ -423,6 +450,9 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
     for item in diagnostic_items(data):
         if item["key"] in ("drift", "outliers", "runs_test") and item["concern"]:
             out.append({"kind": item["name"], "text": item["verdict"] or item["name"]})
+        elif item["key"] == "load" and item["concern"]:
+            # timings that follow the machine's load: a noisy host, seen in the data
+            out.append({"kind": "Noisy host", "text": item["verdict"] or item["name"]})
     timed = data.timed_runs
     if "status" in timed.columns and len(timed):
         st = timed["status"].astype(str)
@@ -452,7 +482,9 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
                                  "load_avg_start"))
     cores = _host_get(host, "cores_logical", "logical_cores", "cpu.logical_cores",
                       "cpu_count_logical", "cpu_count")
-    if finite(load) and finite(cores) and float(cores) > 0 and float(load) > 0.5 * float(cores):
+    host_said_load = any("load average" in str(w) for w in host.get("warnings") or [])
+    if (finite(load) and finite(cores) and float(cores) > 0 and float(load) > 0.5 * float(cores)
+            and not host_said_load):
         out.append({"kind": "Noisy host",
                     "text": f"The load average was {fmt_num(load)} on {cores} logical CPUs when "
                             "the experiment started: other work competed with the runs and "

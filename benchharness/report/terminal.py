@@ -110,7 +110,9 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
             sig = lo is not None and hi is not None and (float(lo) > 1 or float(hi) < 1)
             t.add_row(Text(str(e.get("factor"))), Text(str(e.get("level"))),
                       Text(str(e.get("reference"))), fmt_ratio(e.get("ratio")),
-                      f"{fmt_ratio(lo)} to {fmt_ratio(hi)}", style="bold" if sig else None)
+                      (f"{fmt_ratio(lo)} to {fmt_ratio(hi)}" if lo is not None and hi is not None
+                       else "not estimable (empty cells)" if e.get("estimable") is False
+                       else "–"), style="bold" if sig else None)
         con.print(t)
 
     diags = story.diagnostic_items(data)
