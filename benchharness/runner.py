@@ -546,7 +546,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             message = ""
             m = None
             if c["build"] is not None:
-                bkey = (c["build"], c["cwd"])
+                bkey = (c["build"], c["cwd"], tuple(sorted(c["env_over"].items())))
                 if bkey not in builds:
                     bm = executor.execute(_spec(c["build"], c, None, levels=levels))
                     ok = bm.status == "ok"

@@ -41,9 +41,13 @@ def cluster(tmp_path):
                              start_new_session=True)
     procs.append(sched)
     deadline = time.time() + 30
-    while not sched_file.exists() and time.time() < deadline:
-        time.sleep(0.1)
-    address = json.loads(sched_file.read_text())["address"]
+    address = None
+    while address is None and time.time() < deadline:
+        try:  # the scheduler may still be writing the file
+            address = json.loads(sched_file.read_text())["address"]
+        except (OSError, ValueError, KeyError):
+            time.sleep(0.1)
+    assert address, "the scheduler did not start"
     workers = {}
     for name in ("hostA", "hostB"):
         w = subprocess.Popen([PY, "-m", "distributed.cli.dask_worker", address, "--nthreads", "1",

@@ -313,10 +313,6 @@ def test_run_with_analysis_when_a_cell_always_fails(tmp_path, cli):
     assert sorted(row["status"] for row in rows) == ["failed", "failed", "ok", "ok"]
 
 
-@pytest.mark.xfail(strict=True, reason="defect in runner.py (owned by another helper): the "
-                   "build cache key (c['build'], c['cwd']) leaves out the templated env, so "
-                   "cells that differ only in env share one build; fix: add "
-                   "tuple(sorted(c['env_over'].items())) to the key, then drop this mark")
 def test_build_rendered_form_includes_its_environment(tmp_path):
     # `env: {CFLAGS: "-O{opt}"}` with a plain `build: make` must build once per level
     # of opt (the cluster and gate paths do; see tests/test_cluster.py).
