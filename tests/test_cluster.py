@@ -200,7 +200,12 @@ def test_block_split_over_hosts_uses_pairs():
 def test_workers_without_benchharness_give_one_clear_line(tmp_path):
     # A worker started where benchharness is not importable: the run stops with one line
     # naming the problem and the fix, not a Dask traceback.
-    env = {k: v for k, v in _env().items() if k != "PYTHONPATH"}
+    # Shadow any installed copy (CI installs the package): this worker's benchharness
+    # cannot be imported.
+    shadow = tmp_path / "shadow" / "benchharness"
+    shadow.mkdir(parents=True)
+    (shadow / "__init__.py").write_text("raise ImportError('no benchharness on this host')\n")
+    env = dict(_env(), PYTHONPATH=str(tmp_path / "shadow"))
     sched_file = tmp_path / "scheduler.json"
     log = open(tmp_path / "cluster.log", "w")
     procs = [subprocess.Popen([PY, "-m", "distributed.cli.dask_scheduler", "--host",
@@ -209,9 +214,12 @@ def test_workers_without_benchharness_give_one_clear_line(tmp_path):
                               start_new_session=True, cwd=tmp_path)]
     try:
         deadline = time.time() + 30
-        while not sched_file.exists() and time.time() < deadline:
-            time.sleep(0.1)
-        address = json.loads(sched_file.read_text())["address"]
+        address = None
+        while address is None and time.time() < deadline:
+            try:  # the scheduler may still be writing the file
+                address = json.loads(sched_file.read_text())["address"]
+            except (OSError, ValueError, KeyError):
+                time.sleep(0.1)
         procs.append(subprocess.Popen([PY, "-m", "distributed.cli.dask_worker", address,
                                        "--nthreads", "1", "--resources", "bench=1",
                                        "--no-dashboard", "--host", "127.0.0.1"], env=env,
