@@ -28,7 +28,7 @@ from benchharness import templating
 from benchharness.errors import ExperimentError
 from benchharness.yamlnodes import (
     as_bool, as_duration_s, as_int, check_tags, is_null, kind, mapping_items, node_error,
-    scalar_text, sequence_items, suggest,
+    scalar_text, suggest,
 )
 
 #: Columns of runs.csv (and later additions) that a factor may not be named.

@@ -316,19 +316,23 @@ def runs_columns(factors: Sequence[str], records: Iterable[Mapping]) -> list[str
     return [*LEAD_COLUMNS, *factors, *CORE_COLUMNS, *extras, *metric_names]
 
 
-def flatten(rec: Mapping, factors: Sequence[str]) -> dict:
-    row = {k: rec.get(k) for k in LEAD_COLUMNS}
-    levels = rec.get("levels") or {}
-    for f in factors:
-        row[f] = levels.get(f)
-    for k in CORE_COLUMNS:
-        row[k] = rec.get(k)
-    for k in LATER_COLUMNS:
-        if k in rec:
-            row[k] = rec[k]
-    for m, v in (rec.get("metrics") or {}).items():
-        row[m] = v
+def row_values(rec: Mapping, factors: Sequence[str], cols: Sequence[str]) -> list:
+    """One journal record as a ``runs.csv`` row, values in the order of ``cols``
+    (as `runs_columns` gives them: fixed columns, factors, later columns, metrics)."""
+    g = rec.get
+    lv = g("levels") or {}
+    mt = g("metrics") or {}
+    row = [g(k) for k in LEAD_COLUMNS]
+    row += [lv.get(f) for f in factors]
+    row += [g(k) for k in CORE_COLUMNS]
+    for c in cols[len(LEAD_COLUMNS) + len(factors) + len(CORE_COLUMNS):]:
+        row.append(g(c) if c in LATER_COLUMNS else mt.get(c))
     return row
+
+
+def sorted_records(records: Iterable[Mapping]) -> list:
+    """Journal records in execution order (position, then run id)."""
+    return sorted(records, key=lambda r: (r.get("position", 0), r.get("run", 0)))
 
 
 def _csv_value(v) -> str:
@@ -343,23 +347,13 @@ def _csv_value(v) -> str:
 
 def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapping]) -> Path:
     """Write ``runs.csv`` (one row per journal record, sorted by position) atomically."""
-    records = sorted(records, key=lambda r: (r.get("position", 0), r.get("run", 0)))
+    records = sorted_records(records)
     cols = runs_columns(factors, records)
-    tail = cols[len(LEAD_COLUMNS) + len(factors) + len(CORE_COLUMNS):]
-    later = [c for c in tail if c in LATER_COLUMNS]
-    metric_cols = [c for c in tail if c not in LATER_COLUMNS]
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")  # writes None as an empty field
     w.writerow(cols)
     for rec in records:
-        g = rec.get
-        lv = g("levels") or {}
-        mt = g("metrics") or {}
-        row = [g(k) for k in LEAD_COLUMNS]
-        row += [lv.get(f) for f in factors]
-        row += [g(k) for k in CORE_COLUMNS]
-        row += [g(k) for k in later]
-        row += [mt.get(m) for m in metric_cols]
+        row = row_values(rec, factors, cols)
         if True in map(_is_bool, row):
             row = [_csv_value(v) for v in row]
         w.writerow(row)
@@ -418,6 +412,7 @@ class Results:
     host: dict
     plan: object        # pandas.DataFrame of plan.csv
     session: dict
+    records: tuple = ()  # the journal's records in execution order (as read once)
 
 
 def is_results_folder(path: str | os.PathLike) -> bool:
@@ -438,12 +433,10 @@ def load_results(folder: str | os.PathLike) -> Results:
         raise ResultsFolderError(f"{p}: not a results folder (needs experiment.yaml and "
                                  "runs.jsonl)")
     exp = load_experiment(p / "experiment.yaml")
-    records = read_journal(p / "runs.jsonl")
+    records = sorted_records(read_journal(p / "runs.jsonl"))
     factors = list(exp.factor_names)
     cols = runs_columns(factors, records)
-    rows = [flatten(r, factors) for r in sorted(records, key=lambda r: (r.get("position", 0),
-                                                                        r.get("run", 0)))]
-    runs = pd.DataFrame(rows, columns=cols)
+    runs = pd.DataFrame([row_values(r, factors, cols) for r in records], columns=cols)
     for f in factors:
         runs[f] = pd.Categorical(runs[f].astype("string").astype(object),
                                  categories=list(exp.levels_of(f)))
@@ -454,7 +447,8 @@ def load_results(folder: str | os.PathLike) -> Results:
                            keep_default_na=False)
     except FileNotFoundError:
         plan = pd.DataFrame()
-    return Results(path=p, experiment=exp, runs=runs, host=host, plan=plan, session=session)
+    return Results(path=p, experiment=exp, runs=runs, host=host, plan=plan, session=session,
+                   records=tuple(records))
 
 
 def _read_json(path: Path) -> dict:

@@ -23,7 +23,7 @@ import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Mapping, Sequence
+from typing import Mapping, Sequence
 
 from benchharness import journal as J
 from benchharness.errors import ResultsFolderError
@@ -436,7 +436,6 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
         counts[r["status"]] = counts.get(r["status"], 0) + 1
     todo = [pr for pr in planned if int(pr["run"]) not in done]
     interrupted = False
-    records_new = 0
     progress.start(len(planned), len(planned) - len(todo), folder)
     from benchharness.quality import RunQuality
 
@@ -615,7 +614,6 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             if aslr_value is not None:
                 rec["aslr"] = aslr_value
             jr.append(rec)
-            records_new += 1
             counts[status] = counts.get(status, 0) + 1
             if overlap:
                 # shown while the next run executes: the bar is not on the path

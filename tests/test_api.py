@@ -119,7 +119,6 @@ def test_gate_records_the_candidate_in_history(tmp_path, cli):
 def test_an_internal_error_is_never_exit_1(monkeypatch, capsys):
     # exit 1 means "regression" to a CI job; a bug must exit with its own code
     from benchharness import cli
-    from benchharness.commands import plan as plan_cmd
 
     def boom(args):
         raise RuntimeError("planted bug")

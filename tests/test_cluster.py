@@ -29,25 +29,30 @@ def _env():
     return dict(os.environ, PYTHONPATH=str(ROOT), DASK_DISTRIBUTED__WORKER__DAEMON="False")
 
 
+def _start_scheduler(sched_file, env, log, cwd=None):
+    """A `dask scheduler` process on a free port; returns (process, address)."""
+    sched = subprocess.Popen([PY, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
+                              "--port", "0", "--no-dashboard", "--scheduler-file",
+                              str(sched_file)], env=env, stdout=log, stderr=log,
+                             start_new_session=True, cwd=cwd)
+    deadline = time.time() + 30
+    while time.time() < deadline:
+        try:  # the scheduler may still be writing the file
+            return sched, json.loads(sched_file.read_text())["address"]
+        except (OSError, ValueError, KeyError):
+            time.sleep(0.1)
+    os.killpg(sched.pid, signal.SIGKILL)
+    raise AssertionError("the scheduler did not start")
+
+
 @pytest.fixture
 def cluster(tmp_path):
     """A scheduler and two single-thread workers with the bench resource, as processes."""
     sched_file = tmp_path / "scheduler.json"
     procs = []
     log = open(tmp_path / "cluster.log", "w")
-    sched = subprocess.Popen([PY, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
-                              "--port", "0", "--no-dashboard", "--scheduler-file",
-                              str(sched_file)], env=_env(), stdout=log, stderr=log,
-                             start_new_session=True)
+    sched, address = _start_scheduler(sched_file, _env(), log)
     procs.append(sched)
-    deadline = time.time() + 30
-    address = None
-    while address is None and time.time() < deadline:
-        try:  # the scheduler may still be writing the file
-            address = json.loads(sched_file.read_text())["address"]
-        except (OSError, ValueError, KeyError):
-            time.sleep(0.1)
-    assert address, "the scheduler did not start"
     workers = {}
     for name in ("hostA", "hostB"):
         w = subprocess.Popen([PY, "-m", "distributed.cli.dask_worker", address, "--nthreads", "1",
@@ -208,18 +213,9 @@ def test_workers_without_benchharness_give_one_clear_line(tmp_path):
     env = dict(_env(), PYTHONPATH=str(tmp_path / "shadow"))
     sched_file = tmp_path / "scheduler.json"
     log = open(tmp_path / "cluster.log", "w")
-    procs = [subprocess.Popen([PY, "-m", "distributed.cli.dask_scheduler", "--host",
-                               "127.0.0.1", "--port", "0", "--no-dashboard", "--scheduler-file",
-                               str(sched_file)], env=env, stdout=log, stderr=log,
-                              start_new_session=True, cwd=tmp_path)]
+    sched, address = _start_scheduler(sched_file, env, log, cwd=tmp_path)
+    procs = [sched]
     try:
-        deadline = time.time() + 30
-        address = None
-        while address is None and time.time() < deadline:
-            try:  # the scheduler may still be writing the file
-                address = json.loads(sched_file.read_text())["address"]
-            except (OSError, ValueError, KeyError):
-                time.sleep(0.1)
         procs.append(subprocess.Popen([PY, "-m", "distributed.cli.dask_worker", address,
                                        "--nthreads", "1", "--resources", "bench=1",
                                        "--no-dashboard", "--host", "127.0.0.1"], env=env,

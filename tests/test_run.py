@@ -15,7 +15,6 @@ from pathlib import Path
 import pytest
 
 from benchharness import journal as J
-from benchharness.experiment import Experiment
 from benchharness.runner import resume_experiment, run_experiment
 ROOT = Path(__file__).resolve().parent.parent
 

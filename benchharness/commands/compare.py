@@ -57,7 +57,6 @@ def main(args) -> int:
 
 
 def print_comparison(result) -> None:
-    from rich.console import Console
     from rich.table import Table
 
     from benchharness.report.terminal import make_console

@@ -17,8 +17,7 @@ def analyse_and_report(res) -> None:
     except ImportError:
         return
     try:
-        from benchharness.analysis import analyze_results_folder, format_analysis, \
-            write_analysis_json
+        from benchharness.analysis import analyze_results_folder, write_analysis_json
 
         an = analyze_results_folder(res.path)
         write_analysis_json(an, res.path / "analysis.json")

@@ -7,10 +7,9 @@ import sys
 
 def print_summary(res, outcome) -> None:
     from benchharness.runner import cell_summary, format_seconds
-    from benchharness.journal import read_journal
 
     exp = res.experiment
-    records = read_journal(res.path / "runs.jsonl")
+    records = res.records
     rows = cell_summary(records, exp.factor_names)
     order = {f: {lab: i for i, lab in enumerate(exp.levels_of(f))} for f in exp.factor_names}
     rows.sort(key=lambda r: tuple(order[f].get(r["levels"][f], 0) for f in exp.factor_names))

@@ -27,7 +27,6 @@ then uses (block, host) pairs as blocks and says so.
 from __future__ import annotations
 
 import collections
-import json
 import os
 import sys
 import time
@@ -36,7 +35,7 @@ from typing import Mapping, Sequence
 
 from benchharness import journal as J
 from benchharness.errors import ExecutionError, UsageError
-from benchharness.execute.base import USAGE_FIELDS, Measurement
+from benchharness.execute.base import Measurement
 
 RESOURCE = "bench"
 

@@ -129,6 +129,10 @@ class LocalExecutor:
             except OSError:
                 pass
             self._current = None
+        self._release(wait_s=5)
+
+    def _release(self, wait_s: float) -> None:
+        """Close our pipe ends and reap the launcher (killed if it does not exit in time)."""
         self._closed = True
         for fd in (self._w, self._r):
             try:
@@ -138,7 +142,7 @@ class LocalExecutor:
         self._w = self._r = -1
         if self._proc is not None:
             try:
-                self._proc.wait(timeout=5)
+                self._proc.wait(timeout=wait_s)
             except subprocess.TimeoutExpired:
                 self._proc.kill()
                 self._proc.wait()
@@ -250,19 +254,7 @@ class LocalExecutor:
                 _proto.send(self._w, {"op": "exit"})
             except OSError:
                 pass
-        self._closed = True
-        for fd in (self._w, self._r):
-            try:
-                os.close(fd)
-            except OSError:
-                pass
-        self._w = self._r = -1
-        if self._proc is not None:
-            try:
-                self._proc.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                self._proc.kill()
-                self._proc.wait()
+        self._release(wait_s=10)
         self._current = None
 
     def __enter__(self) -> "LocalExecutor":

@@ -21,7 +21,7 @@ stored baseline run of that workload.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Callable, Mapping, Sequence
 
 from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec

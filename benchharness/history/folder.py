@@ -14,7 +14,6 @@ The files are read with the foundation's ``benchharness.journal.load_results``
 from __future__ import annotations
 
 import hashlib
-import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any

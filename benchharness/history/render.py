@@ -65,7 +65,6 @@ def step_rows(trends: list[CellTrend]) -> list[dict]:
 
 
 def print_trends(trends: list[CellTrend], console=None) -> None:
-    from rich.console import Console
     from rich.table import Table
 
     from benchharness.report.terminal import make_console

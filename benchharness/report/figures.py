@@ -458,7 +458,6 @@ def effects_plot(data: ReportData) -> Figure | None:
     effects = [e for e in data.analysis.get("effects") or [] if finite(e.get("ratio"))]
     if not effects:
         return None
-    import numpy as np
 
     fig = _new(7.2, min(1.2 + 0.34 * (len(effects) + len(data.factors)), 24))
     ax = fig.subplots()
