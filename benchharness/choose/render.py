@@ -30,8 +30,9 @@ def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
     mean_kind = "geometric mean" if d["scale"] == "log" else "mean"
     log = d["scale"] == "log"
     cols = ["setting", f"{mean_kind} {resp}", "runs", "verdict",
-            "worst-case loss" + (" (ratio)" if log else " (difference)"),
-            "worst environment" if d["across"] else
+            "loss vs best, at most" + (" (ratio)" if log else " (difference)"),
+            "ratio in worst environment" if d["across"] and log else
+            "loss in worst environment" if d["across"] else
             ("ratio to best" if log else "difference from best")]
     if d["across"]:
         cols.append("average ratio" if log else "average loss")
