@@ -119,10 +119,12 @@ def thermal_throttle_counts() -> dict[str, int] | None:
 
 
 _FREQ_FILES: tuple[str, dict] | None = None  # (CPU_SYS, cpu number -> cur_freq path)
-_CPUINFO_CACHE: tuple[float, list] = (-1.0, [])
+_CPUINFO_CACHE: list = [-1.0, []]             # [when read, per-CPU MHz of /proc/cpuinfo]
 
 
-def _freq_files() -> dict:
+def freq_files() -> dict:
+    """{CPU number: its cpufreq ``scaling_cur_freq`` file} for CPUs that expose one
+    (found once per process; the launcher is given this map for its own samples)."""
     global _FREQ_FILES
     if _FREQ_FILES is None or _FREQ_FILES[0] != CPU_SYS:
         found = {}
@@ -138,38 +140,15 @@ def _freq_files() -> dict:
 def cpu_mhz(cpus: tuple[int, ...] | None = None) -> float | None:
     """Current CPU frequency in MHz (mean over ``cpus`` or all), where readable.
 
-    Prefers cpufreq's ``scaling_cur_freq`` (kHz; the files are found once per
-    process, so a per-run sample costs one small read per CPU); falls back to
-    the ``cpu MHz`` lines of /proc/cpuinfo (which a virtual machine may report
-    as a constant), re-read at most once a second because it is costly.
+    Prefers cpufreq's ``scaling_cur_freq`` (kHz; one small read per CPU); falls
+    back to the ``cpu MHz`` lines of /proc/cpuinfo (which a virtual machine may
+    report as a constant), re-read at most once a second because it is costly.
+    The reading itself is the launcher's (`launcher.cpu_mhz_from`), so queued
+    runs, sampled there, and the harness's own samples agree.
     """
-    global _CPUINFO_CACHE
-    vals = []
-    files = _freq_files()
-    if files:
-        for c, path in files.items():
-            if cpus is not None and c not in cpus:
-                continue
-            v = _read(path)
-            if v and v.isdigit():
-                vals.append(int(v) / 1000.0)
-    if not vals:
-        now = time.monotonic()
-        if now - _CPUINFO_CACHE[0] >= 1.0:
-            text = _read("/proc/cpuinfo") or ""
-            per = []
-            for line in text.splitlines():
-                if line.lower().startswith("cpu mhz"):
-                    try:
-                        per.append(float(line.split(":", 1)[1]))
-                    except ValueError:
-                        pass
-            _CPUINFO_CACHE = (now, per)
-        per_cpu = _CPUINFO_CACHE[1]
-        if cpus is not None:
-            per_cpu = [per_cpu[c] for c in cpus if c < len(per_cpu)]
-        vals = per_cpu
-    return round(sum(vals) / len(vals), 1) if vals else None
+    from benchharness.execute.launcher import cpu_mhz_from
+
+    return cpu_mhz_from(freq_files(), cpus, _CPUINFO_CACHE)
 
 
 def memory_pressure() -> dict | None:

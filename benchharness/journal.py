@@ -146,6 +146,9 @@ class Journal:
         self.path = folder / "runs.jsonl"
         self.fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
         self._dirty = False
+        # The launcher appends the lines of queued runs itself: the size tells
+        # the syncer that there is something to fsync.
+        self._synced_size = os.fstat(self.fd).st_size
         self._lock = threading.Lock()
         self._stop = threading.Event()
         self._interval = sync_interval_s
@@ -174,11 +177,16 @@ class Journal:
             self.sync()
 
     def sync(self) -> None:
-        if self._dirty:
+        try:
+            size = os.fstat(self.fd).st_size
+        except OSError:  # pragma: no cover - closed under us at exit
+            return
+        if self._dirty or size != self._synced_size:
             with self._lock:
                 self._dirty = False
                 try:
                     os.fsync(self.fd)
+                    self._synced_size = size
                 except OSError:  # pragma: no cover
                     pass
 
@@ -219,6 +227,32 @@ def _make_line_encoder():
 
 _encode_line = _make_line_encoder()
 
+#: Usage figures the launcher renders with ``%r`` (floats); the others are counts.
+_FLOAT_FIELDS = ("wall_s", "user_s", "sys_s")
+
+
+def stream_line_format() -> str:
+    """The measured part of a journal line, as a %-format the launcher fills.
+
+    For a queued run that ended ok the launcher writes the line itself (see
+    `benchharness.execute.launcher`): `record_head`, then this format applied to
+    (exit code, wall seconds, the usage figures in `USAGE_FIELDS` order after
+    ``wall_s``, start time), then the run's extra fields. The result is the line
+    `Journal.append` would write for the same record.
+    """
+    parts = [',"exit_code":%d']
+    for f in USAGE_FIELDS:
+        parts.append(f',"{f}":%r' if f in _FLOAT_FIELDS else f',"{f}":%d')
+    parts.append(',"started_at":"%s","message":""')
+    return "".join(parts)
+
+
+def record_head(run: Mapping, status: str) -> str:
+    """A journal record's opening up to its status, without the closing brace."""
+    head = {"run": run["run"], "position": run["position"], "block": run["block"],
+            "replicate": run["replicate"], "levels": run["levels"], "status": status}
+    return _encode_line(head)[:-1]
+
 _BOOT_ID = None
 
 
@@ -252,6 +286,9 @@ def kill_leftover(folder: Path) -> str | None:
     info = read_inflight(folder)
     if not info or info.get("boot") != _boot_id():
         return None
+    # First the dead harness's launcher, if it still lives: it must not start
+    # (or journal) anything once this harness reads the journal.
+    _stop_launcher(int(info.get("launcher") or 0))
     pgid = int(info.get("pgid") or 0)
     if pgid <= 1:
         return None
@@ -264,12 +301,49 @@ def kill_leftover(folder: Path) -> str | None:
     return f"stopped process group {pgid} left running by the earlier harness (run {info.get('run')})"
 
 
+def _stop_launcher(pid: int) -> None:
+    """SIGKILL a launcher process (checked by its command line) and wait until it is gone."""
+    import select
+    import signal
+
+    if pid <= 1:
+        return
+    try:
+        with open(f"/proc/{pid}/cmdline", "rb") as fh:
+            cmdline = fh.read()
+        fd = os.pidfd_open(pid)
+    except OSError:
+        return
+    try:
+        if b"launcher.py" not in cmdline:
+            return  # the pid now belongs to another process
+        try:
+            signal.pidfd_send_signal(fd, signal.SIGKILL)
+        except OSError:
+            return
+        p = select.poll()
+        p.register(fd, select.POLLIN)
+        p.poll(5000)
+    finally:
+        os.close(fd)
+
+
 def read_journal(path: Path, repair: bool = False) -> list[dict]:
     """All complete records of a journal. A torn last line is ignored, or with
     ``repair`` moved to ``runs.jsonl.torn`` and cut off so appending can resume."""
     if not path.exists():
         return []
     data = path.read_bytes()
+    if data.endswith(b"\n") and b"\n\n" not in data and not data.startswith(b"\n"):
+        # The usual case, a journal of complete lines, parsed in one call (a
+        # JSON string never holds a raw newline, so every newline ends a line).
+        try:
+            whole = json.loads(b"[" + data[:-1].replace(b"\n", b",") + b"]")
+        except ValueError:
+            pass  # a damaged line somewhere: the line-by-line reading below says where
+        else:
+            if all(type(r) is dict for r in whole):
+                return whole
     records = []
     good_end = 0
     lines = data.split(b"\n")
@@ -321,12 +395,14 @@ def row_values(rec: Mapping, factors: Sequence[str], cols: Sequence[str]) -> lis
     (as `runs_columns` gives them: fixed columns, factors, later columns, metrics)."""
     g = rec.get
     lv = g("levels") or {}
-    mt = g("metrics") or {}
-    row = [g(k) for k in LEAD_COLUMNS]
-    row += [lv.get(f) for f in factors]
-    row += [g(k) for k in CORE_COLUMNS]
-    for c in cols[len(LEAD_COLUMNS) + len(factors) + len(CORE_COLUMNS):]:
-        row.append(g(c) if c in LATER_COLUMNS else mt.get(c))
+    row = list(map(g, LEAD_COLUMNS))
+    row += map(lv.get, factors)
+    row += map(g, CORE_COLUMNS)
+    tail = cols[len(LEAD_COLUMNS) + len(factors) + len(CORE_COLUMNS):]
+    if tail:
+        mt = g("metrics") or {}
+        for c in tail:
+            row.append(g(c) if c in LATER_COLUMNS else mt.get(c))
     return row
 
 
@@ -352,11 +428,16 @@ def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapp
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")  # writes None as an empty field
     w.writerow(cols)
+    # Only the later columns and the metrics can hold true/false (written as
+    # such, not as Python's True/False); the fixed ones never do.
+    fixed = len(LEAD_COLUMNS) + len(factors) + len(CORE_COLUMNS)
+    rows = []
     for rec in records:
         row = row_values(rec, factors, cols)
-        if True in map(_is_bool, row):
+        if True in map(_is_bool, row[fixed:]):
             row = [_csv_value(v) for v in row]
-        w.writerow(row)
+        rows.append(row)
+    w.writerows(rows)
     path = folder / "runs.csv"
     write_atomic(path, buf.getvalue())
     return path

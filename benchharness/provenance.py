@@ -50,6 +50,32 @@ def _git(args: list[str], cwd: str) -> str | None:
     return r.stdout if r.returncode == 0 else None
 
 
+def _git_pair(a: list[str], b: list[str], cwd: str) -> tuple[str | None, str | None]:
+    """Run two git commands at once; their outputs (None where one failed)."""
+    procs = []
+    for args in (a, b):
+        try:
+            procs.append(subprocess.Popen(["git", *args], cwd=cwd, stdout=subprocess.PIPE,
+                                          stderr=subprocess.DEVNULL, stdin=subprocess.DEVNULL,
+                                          text=True))
+        except OSError:
+            procs.append(None)
+    out = []
+    for p in procs:
+        if p is None:
+            out.append(None)
+            continue
+        try:
+            text, _ = p.communicate(timeout=20)
+        except subprocess.TimeoutExpired:
+            p.kill()
+            p.communicate()
+            out.append(None)
+            continue
+        out.append(text if p.returncode == 0 else None)
+    return out[0], out[1]
+
+
 def git_state(directory: str | os.PathLike) -> dict | None:
     """``{root, revision, branch, dirty, changed}`` of the repository holding ``directory``.
 
@@ -59,12 +85,20 @@ def git_state(directory: str | os.PathLike) -> dict | None:
     d = str(directory)
     if not shutil.which("git") or not os.path.isdir(d):
         return None
-    root = _git(["rev-parse", "--show-toplevel"], d)
-    if root is None:
-        return None
-    rev = _git(["rev-parse", "HEAD"], d)
-    branch = _git(["rev-parse", "--abbrev-ref", "HEAD"], d)
-    status = _git(["status", "--porcelain", "--untracked-files=normal"], d)
+    # Two git processes side by side (this is part of every run's start-up):
+    # top level, revision and branch in one, the working tree's state in the other.
+    both = _git_pair(["rev-parse", "--show-toplevel", "HEAD", "--abbrev-ref", "HEAD"],
+                     ["status", "--porcelain", "--untracked-files=normal"], d)
+    heads, status = both
+    lines = heads.splitlines() if heads is not None else []
+    if len(lines) == 3:
+        root, rev, branch = lines
+    else:  # not a repository, or one without commits (HEAD does not resolve)
+        root = _git(["rev-parse", "--show-toplevel"], d)
+        if root is None:
+            return None
+        rev = _git(["rev-parse", "HEAD"], d)
+        branch = _git(["rev-parse", "--abbrev-ref", "HEAD"], d)
     changed = [ln for ln in (status or "").splitlines() if ln.strip()]
     return {
         "root": root.strip(),

@@ -167,6 +167,12 @@ class RunQuality:
             if not self.perf_ok:
                 self.notes.append(f"perf: {self.perf_note}; runs are not wrapped")
 
+    @property
+    def fast(self) -> bool:
+        """No quality section is active: a run needs nothing from this module but
+        its conditions (load and CPU clock), which the launcher can sample itself."""
+        return self._fast
+
     # -- start ---------------------------------------------------------------
 
     def manifest(self) -> dict:

@@ -130,10 +130,10 @@ def _fmt_dur(s: float) -> str:
 
 # ---------------------------------------------------------------------------
 
-def default_executor():
+def default_executor(wait: bool = True):
     from benchharness.execute.local import LocalExecutor
 
-    return LocalExecutor()
+    return LocalExecutor(wait=wait)
 
 
 def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAULT_BASE,
@@ -148,9 +148,6 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     over its workers instead (blocks are assigned to hosts whole).
     """
     import dataclasses
-
-    from benchharness.design import build_plan
-    from benchharness.host import collect_facts
 
     if isinstance(exp, (str, os.PathLike)):
         from benchharness.experiment import load_experiment
@@ -185,7 +182,22 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     from benchharness.sections import validate_sections
 
     validate_sections(exp)  # malformed capability sections fail before a folder exists
-    from benchharness.host import BusySampler, host_check_mode, preflight
+    # The launcher's interpreter starts while the plan, folder and host facts are made.
+    early = default_executor(wait=False) if executor is None and not scheduler else None
+    try:
+        return _run_new(exp, exp_for_plan, notes, out, early or executor, early is not None,
+                        base, seed, progress, plan, plan_kwargs, scheduler, same_host_ok,
+                        budget_s, estimate_s)
+    finally:
+        if early is not None:
+            early.close()  # already closed when the run went through
+
+
+def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, progress, plan,
+             plan_kwargs, scheduler, same_host_ok, budget_s, estimate_s) -> RunOutcome:
+    """`run_experiment` once the experiment is validated (see there)."""
+    from benchharness.design import build_plan
+    from benchharness.host import BusySampler, collect_facts, host_check_mode, preflight
 
     # The busy-process sample spans the setup below instead of a sleep of its
     # own: started first, read once the folder is written (strict mode: before
@@ -256,7 +268,8 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
 
             gate = gate_for(exp, plan, folder, budget_s, estimate_s)
             outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts,
-                               stop_check=gate, host_check=write_host_json)
+                               stop_check=gate, host_check=write_host_json,
+                               own_executor=own_executor)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -421,11 +434,78 @@ def _record(pr: Mapping, m: Measurement | None, status: str, message: str) -> di
     return rec
 
 
+def _outcome(pr: Mapping, m: Measurement) -> tuple[str, str]:
+    """The status and message recorded for planned run ``pr`` that measured ``m``."""
+    status = m.status
+    message = m.message if m.status != "ok" else (m.message or "")
+    if pr["warmup"]:
+        if m.status != "ok":
+            message = f"warm-up run {m.status}: {_short(m)}"
+        status = "warmup"
+    return status, message
+
+
+#: While runs stream, finished ones are collected at most this often: the
+#: harness then wakes once per batch of short runs instead of once per run.
+STREAM_GATHER_S = 0.02
+
+
+def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflight_path,
+                 fields, counts: dict, progress, on_tick) -> None:
+    """Run ``todo`` as queued runs: the launcher runs them back to back and
+    journals each run that ends ok itself; the harness records the others
+    (the launcher waits for that), counts, and shows progress.
+
+    Only for experiments whose runs need nothing from the harness between
+    them (no build, reset or teardown, no quality sections, no padding, no
+    cold cache, no stopping rule); the journal is the same as the one-by-one
+    path writes.
+    """
+    from benchharness.host import freq_files
+
+    by_key: dict = {}
+    i = 0
+    with executor.open_stream(jr.path, freq_files(), fields) as stream:
+        batch = 8  # a small first batch: the first run starts without waiting for the rest
+        while i < len(todo) or stream.outstanding:
+            limit = i + batch
+            batch = 512
+            while i < len(todo) and i < limit and stream.room():
+                pr = todo[i]
+                c = cells.get(pr["levels"])
+                spec = _spec((c["argv"], c["shell"]), c, timeout_s, run_id=pr["run"],
+                             levels=pr["levels"], inflight_path=inflight_path)
+                stream.submit(spec, pr["run"],
+                              J.record_head(pr, "warmup" if pr["warmup"] else "ok"))
+                by_key[pr["run"]] = (pr, c)
+                i += 1
+            stream.flush()
+            events = stream.events(timeout_s=0.25)
+            for ev in events:
+                pr, c = by_key.pop(ev.key)
+                if ev.written:
+                    status = "warmup" if pr["warmup"] else "ok"
+                    rec = {"run": pr["run"], "status": status}
+                else:
+                    status, message = _outcome(pr, ev.measurement)
+                    rec = _record(pr, ev.measurement, status, message)
+                    if fields:
+                        rec.update(fields)
+                    jr.append(rec)
+                    stream.release()
+                counts[status] = counts.get(status, 0) + 1
+                progress.advance(rec, c["label"])
+            on_tick()
+            if events and stream.outstanding > 1:
+                # gather the next few: one wake-up per batch of short runs
+                time.sleep(STREAM_GATHER_S)
+
+
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
              executor, progress: Progress | None, facts: dict, prior=(),
-             stop_check=None, host_check=None) -> RunOutcome:
-    own_executor = executor is None
-    if own_executor:
+             stop_check=None, host_check=None, own_executor: bool = False) -> RunOutcome:
+    if executor is None:
+        own_executor = True
         executor = default_executor()
     progress = progress or Progress()
     cells = _CellCache(exp, session)
@@ -527,8 +607,25 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
         return cb
 
     stop_notes = []
+    streamed = (records_start and hasattr(executor, "open_stream") and quality.fast
+                and stop_check is None and pad_rng is None and not controls.cold_cache
+                and exp.build is None and exp.reset is None and exp.teardown is None)
+
+    def on_tick():
+        nonlocal pending_host
+        if pending_host and time.monotonic() >= host_due:
+            pending_host = False
+            host_warnings_now()
+
     try:
-        for index, pr in enumerate(todo):
+        if streamed:
+            todo_iter = ()
+            _stream_runs(executor, jr, todo, cells, timeout_s, inflight_path,
+                         {"aslr": aslr_value} if aslr_value is not None else None,
+                         counts, progress, on_tick)
+        else:
+            todo_iter = todo
+        for index, pr in enumerate(todo_iter):
             if pending_host and time.monotonic() >= host_due:
                 pending_host = False
                 host_warnings_now()
@@ -594,12 +691,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                     m = executor.execute(spec, on_start=on_start_for(pr["run"]))
                 inflight_pgid[0] = None
                 m = quality.finish(qtoken, pr, m)  # expect, metrics, samples, perf counts
-                status = m.status
-                message = m.message if m.status != "ok" else (m.message or "")
-                if pr["warmup"]:
-                    if m.status != "ok":
-                        message = f"warm-up run {m.status}: {_short(m)}"
-                    status = "warmup"
+                status, message = _outcome(pr, m)
                 if c["teardown"] is not None:
                     tm = executor.execute(_spec(c["teardown"], c, timeout_s, levels=levels))
                     if tm.status != "ok":
@@ -667,8 +759,16 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
              interrupted: bool, host_json: dict | None = None, quality=None) -> RunOutcome:
-    """Export runs.csv, record the end state in host.json and session.json."""
+    """Export runs.csv, record the end state in host.json and session.json.
+
+    The counts by status are taken from the journal, which is the record of
+    what ran (queued runs are journalled by the launcher, and after Ctrl-C the
+    harness may not have heard of the last few yet).
+    """
     records = J.read_journal(folder / "runs.jsonl")
+    counts = {}
+    for r in records:
+        counts[r["status"]] = counts.get(r["status"], 0) + 1
     J.export_runs_csv(folder, exp.factor_names, records)
     if quality is not None:
         quality.close(records)  # steady.json: warm-up classes, executions x iterations advice

@@ -33,9 +33,23 @@ Per run the launcher:
 
 If the harness goes away (its end of the request pipe closes) during a run, the
 launcher kills that run's tree and exits.
+
+**Queued runs.** Besides one request at a time on the request pipe, the
+harness may send batches of runs on a third pipe (the queue). The launcher runs
+them back to back with no round trip between runs: for a run that ends ``ok``
+it appends the run's journal line to ``runs.jsonl`` itself (the harness sends
+the line's fixed part, and a format for the measured part, in the batch), with
+one ``write`` before the next run starts; it then posts a short ``done`` frame
+the harness reads when it next looks. Any other outcome (failure, timeout, a
+value it cannot render) is not written: the launcher sends the full reply and
+holds the queue until the harness has recorded the run and answers
+``resume``. Between queued runs it checks the request pipe without blocking,
+so a harness that went away or asked to ``drop`` the queue starts no further
+run. The harness's own background thread fsyncs the journal.
 """
 
 import marshal
+import mmap
 import os
 import select
 import sys
@@ -44,6 +58,12 @@ import _signal as signal  # the C module: `signal` would pull in enum and functo
 import time
 
 HEADER_SIZE = 4
+F_SETPIPE_SZ = 1031
+PIPE_SIZE = 1 << 20   # queue and reply pipes are widened to this where allowed
+INFLIGHT_SIZE = 160   # bytes of the in-flight record, padded with spaces
+CONDITIONS_EVERY_NS = 10_000_000  # runs starting this close share one reading
+DONE_BATCH = 64       # journalled runs reported to the harness at once, at most
+DONE_EVERY_NS = 20_000_000  # ... and at least this often while runs go on
 PR_SET_CHILD_SUBREAPER = 36
 ADDR_NO_RANDOMIZE = 0x0040000
 PERSONALITY_QUERY = 0xFFFFFFFF
@@ -86,6 +106,21 @@ class FrameReader:
         del buf[:end]
         return marshal.loads(body)
 
+    def has_frame(self):
+        """Whether a whole frame is already buffered (readable with no system call)."""
+        buf = self.buf
+        return (len(buf) >= HEADER_SIZE
+                and len(buf) >= HEADER_SIZE + int.from_bytes(buf[:HEADER_SIZE], "big"))
+
+
+def widen_pipe(fd):
+    """Ask for a 1 MiB pipe buffer (the default 64 KiB fills with a few replies)."""
+    try:
+        import fcntl
+        fcntl.fcntl(fd, F_SETPIPE_SZ, PIPE_SIZE)
+    except (ImportError, OSError):
+        pass
+
 
 _SECOND = [None, ""]  # the last whole second formatted, and its text up to the dot
 
@@ -104,6 +139,76 @@ def utc_now_iso():
                       f"{t.tm_min:02d}:{t.tm_sec:02d}.")
         _SECOND[0] = sec
     return f"{_SECOND[1]}{(ns // 1000) % 1_000_000:06d}+00:00"
+
+
+# ---------------------------------------------------------------- run conditions
+
+def _read_text(path):
+    try:
+        with open(path, "rb") as f:
+            return f.read().decode("ascii", "replace").strip()
+    except OSError:
+        return None
+
+
+def cpu_mhz_from(freq_files, cpus, cache):
+    """Current CPU frequency in MHz, mean over ``cpus`` (None: all), or None.
+
+    ``freq_files`` maps CPU number to its cpufreq ``scaling_cur_freq`` file
+    (kHz). Where there are none (or none readable) the ``cpu MHz`` lines of
+    /proc/cpuinfo are used, re-read at most once a second because generating
+    that file is costly; ``cache`` is a two-item list ``[monotonic time,
+    per-CPU values]`` the caller keeps between calls. `benchharness.host` uses
+    this same function for its own readings.
+    """
+    vals = []
+    for c, path in freq_files.items():
+        if cpus is not None and c not in cpus:
+            continue
+        v = _read_text(path)
+        if v and v.isdigit():
+            vals.append(int(v) / 1000.0)
+    if not vals:
+        now = time.monotonic()
+        if now - cache[0] >= 1.0:
+            per = []
+            for line in (_read_text("/proc/cpuinfo") or "").splitlines():
+                if line.lower().startswith("cpu mhz"):
+                    try:
+                        per.append(float(line.split(":", 1)[1]))
+                    except ValueError:
+                        pass
+            cache[0], cache[1] = now, per
+        per_cpu = cache[1]
+        if cpus is not None:
+            per_cpu = [per_cpu[c] for c in cpus if c < len(per_cpu)]
+        vals = per_cpu
+    return round(sum(vals) / len(vals), 1) if vals else None
+
+
+def load_1m():
+    try:
+        return round(os.getloadavg()[0], 3)
+    except OSError:
+        return None
+
+
+def _json_value(v):
+    """JSON text of a plain value, or None when it needs the harness's encoder."""
+    if v is None:
+        return "null"
+    if v is True:
+        return "true"
+    if v is False:
+        return "false"
+    t = type(v)
+    if t is int:
+        return str(v)
+    if t is float:
+        return repr(v) if v == v and v not in (float("inf"), float("-inf")) else None
+    if t is str and v.isascii() and v.isprintable() and '"' not in v and "\\" not in v:
+        return '"' + v + '"'
+    return None
 
 
 # ---------------------------------------------------------------- helpers
@@ -167,12 +272,36 @@ def _is_zombie(pid):
 
 
 class Launcher:
-    def __init__(self, rfd, wfd):
+    def __init__(self, rfd, wfd, qfd=None):
         self.rfd = rfd
         self.reader = FrameReader(rfd)
         self.wfd = wfd
         os.set_inheritable(rfd, False)
         os.set_inheritable(wfd, False)
+        # queued runs (see the module docstring)
+        self.qfd = qfd
+        self.qreader = FrameReader(qfd) if qfd is not None else None
+        if qfd is not None:
+            os.set_inheritable(qfd, False)
+        self.queue = []          # requests still to run, in order (popped from the front)
+        self.qpos = 0
+        self.held = False        # a queued run the harness must record first
+        self.pending_msg = None  # a request-pipe message that arrived during a run
+        self.journal_path = None
+        self.journal_fd = None
+        self.line_format = None
+        self.fast_format = self.line_tail = self.tail_fields = None
+        self.freq_files = {}
+        self.cpuinfo_cache = [-1.0, []]
+        self.last_conditions = None  # (when, cpus, {load_1m, cpu_mhz})
+        self.bench_bare = os.environ.get("BENCHHARNESS_BENCH_BARE") or None
+        self.bench_log = []      # (bare wall ns, bare segment ns) with bench_bare
+        self.done = []           # journalled queued runs the harness has not heard of
+        self.done_since = 0
+        self.idle = select.poll()
+        self.idle.register(rfd, select.POLLIN)
+        if qfd is not None:
+            self.idle.register(qfd, select.POLLIN)
         self.pid = os.getpid()
         self.cwd0 = os.getcwd()
         self.devnull = os.open(os.devnull, os.O_RDWR | os.O_CLOEXEC)
@@ -189,11 +318,12 @@ class Launcher:
             self.clear_refs = None
         self.children_path = f"/proc/{self.pid}/task/{self.pid}/children"
         self.children_fd = None
-        self.inflight_fds = {}  # in-flight record path -> open fd
+        self.inflight_maps = {}  # in-flight record path -> shared mapping of it
         self.env = {}
         self.resolved = {}  # (command, PATH, cwd) -> executable path
         self.leftovers = set()   # live descendants that earlier runs left behind
         self.to_close = []       # fds of the last run, closed after its reply
+        self.pipes = None        # (out_r, out_w, err_r, err_w) kept between runs
         self.stop = False
 
     # ---- capabilities
@@ -209,19 +339,67 @@ class Launcher:
         self.libc.personality(p)
         return True, ""
 
-    def record_inflight(self, inflight, pid):
-        """Write the running child into the harness's in-flight file (for resume)."""
-        path, run_id, boot = inflight
-        fds = self.inflight_fds
-        try:
-            fd = fds.get(path)
-            if fd is None:
-                fd = fds[path] = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_CLOEXEC, 0o644)
-            text = '{"run": %d, "pid": %d, "pgid": %d, "boot": "%s"}' % (run_id, pid, pid,
-                                                                         boot)
-            os.pwrite(fd, text.encode().ljust(160), 0)
-        except OSError:
-            pass  # the record helps a later resume; the run itself goes on
+    def bare_run(self):
+        """Benchmark only (``BENCHHARNESS_BENCH_BARE``): one bare ``posix_spawn`` +
+        ``wait4`` of that program, timed like a bare loop times itself; the
+        timings are kept for ``ping``. experiments/bench/overhead.py uses it to
+        set a bare run beside every queued run, so that the two see the same
+        machine at the same moment."""
+        s0 = time.perf_counter_ns()
+        t0 = time.perf_counter_ns()
+        pid = os.posix_spawn(self.bench_bare, [self.bench_bare], self.env)
+        os.wait4(pid, 0)
+        t1 = time.perf_counter_ns()
+        self.bench_log.append((t1 - t0, time.perf_counter_ns() - s0))
+
+    def conditions(self, cpus):
+        """The machine's load and CPU clock for a run about to start.
+
+        Read just before the spawn (the launcher does nothing between spawn and
+        wait that it can do before: on one CPU with the child, that work would
+        delay it). Runs that start within `CONDITIONS_EVERY_NS` of the last
+        reading with the same CPUs share it: the kernel updates the load
+        average every 5 s, and reading the clock of each CPU per run would cost
+        short runs more than it tells.
+        """
+        now = time.perf_counter_ns()
+        last = self.last_conditions
+        if last is not None and now - last[0] < CONDITIONS_EVERY_NS and last[1] == cpus:
+            return last[2]
+        cond = {"load_1m": load_1m(),
+                "cpu_mhz": cpu_mhz_from(self.freq_files, cpus, self.cpuinfo_cache)}
+        self.last_conditions = (now, cpus, cond)
+        return cond
+
+    def inflight_slot(self, inflight):
+        """(shared mapping of the in-flight file, record text with two ``%d`` for
+        the child's pid and process group), or None if the file cannot be mapped.
+
+        The launcher records each running child there (for a later resume), by
+        a store into the mapping: the page cache is what a resume reads, and a
+        store costs no system call (a ``pwrite`` per run also updated the file's
+        times on disk).
+        """
+        path, run_id, boot = inflight[:3]
+        key = tuple(inflight[::3])  # path and, when given, the file's inode number
+        maps = self.inflight_maps
+        m = maps.get(key)
+        if m is None:
+            for old in maps.values():  # one folder at a time: release the last one
+                old.close()
+            maps.clear()
+            try:
+                fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+                try:
+                    if os.fstat(fd).st_size < INFLIGHT_SIZE:
+                        os.pwrite(fd, b" " * INFLIGHT_SIZE, 0)
+                    m = maps[key] = mmap.mmap(fd, INFLIGHT_SIZE)
+                finally:
+                    os.close(fd)
+            except (OSError, ValueError):
+                return None  # the record helps a later resume; the run itself goes on
+        return m, ('{"run": %d, "pid": %%d, "pgid": %%d, "boot": "%s", "launcher": %d}'
+                   % (run_id, boot, self.pid))
 
     def hello(self):
         try:
@@ -450,10 +628,9 @@ class Launcher:
                         message=f"cannot change to working directory {cwd!r}: {e.strerror}")
         key = (argv[0], env.get("PATH"), cwd)
         path = self.resolved.get(key)
-        if path is None or not os.access(path, os.X_OK):  # one check when seen before
+        if path is None:  # a path found before is used again (see the spawn below)
             path, err = _resolve(argv[0], env, cwd)
             if err:
-                self.resolved.pop(key, None)
                 return dict(base, status="failed", message=err)
             self.resolved[key] = path
         cap = int(req.get("capture_bytes", 65536))
@@ -466,8 +643,14 @@ class Launcher:
             except OSError:
                 pass
 
-        out_r, out_w = os.pipe()
-        err_r, err_w = os.pipe()
+        # The output pipes outlive a run when nothing but the child could hold
+        # them (see `settle`): making and closing two pipes per run cost more
+        # than the rest of the launcher's work between two runs.
+        if self.pipes is None:
+            self.pipes = os.pipe() + os.pipe()
+            os.set_blocking(self.pipes[0], False)
+            os.set_blocking(self.pipes[2], False)
+        out_r, out_w, err_r, err_w = self.pipes
         # Everything the wait needs is made before the spawn, so that only the
         # pidfd is set up between the two clock readings.
         run = {"pid": None, "orphans": []}
@@ -484,6 +667,8 @@ class Launcher:
         def drain(fd):
             try:
                 data = os.read(fd, READ_CHUNK)
+            except BlockingIOError:
+                return
             except OSError:
                 data = b""
             if not data:
@@ -495,26 +680,68 @@ class Launcher:
             if len(b) > cap:
                 del b[:len(b) - cap]
 
+        inflight = req.get("inflight")
+        slot = self.inflight_slot(inflight) if inflight else None
+        if req.get("sample"):
+            base["conditions"] = self.conditions(req.get("cpus"))
+        if self.to_close:
+            self.close_run_fds()  # the last run's (nothing reads them any more)
         pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
+        if pid is None and self.resolved.pop(key, None) is not None:
+            # The program found for an earlier run is gone or changed: look again.
+            path, err = _resolve(argv[0], env, cwd)
+            if err is None:
+                self.resolved[key] = path
+                pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
         if pid is None:
-            for fd in (out_w, err_w, out_r, err_r):
-                os.close(fd)
             return dict(base, status="failed", message=err)
         pidfd = os.pidfd_open(pid)
         poller.register(pidfd, select.POLLIN)
-        # We keep our own write ends open while the child lives: its pipes then
+        if slot is not None:
+            slot[0][:] = (slot[1] % (pid, pid)).encode().ljust(INFLIGHT_SIZE)
+        # We hold our own write ends while the child lives: its pipes then
         # never reach end-of-file early, so its exit costs one wake-up (the
-        # pidfd) instead of three. They are closed as soon as it has exited.
-        held = [out_w, err_w]
+        # pidfd) instead of three. Once it has exited they are either kept for
+        # the next run (nothing else alive could write to them: drain what is
+        # there) or closed, and the pipes read until end of file (a process
+        # the run left behind may still hold them) and then given up.
+        held = []
+        kids_seen = [None]
 
         def release():
+            if self.pipes is not None:
+                self.pipes = None
+                held.extend((out_w, err_w))
+                self.to_close.extend((out_r, err_r))
             while held:
                 os.close(held.pop())
 
+        def settle():
+            """The child has exited: reap it; keep the pipes if nobody else can hold them.
+
+            The child has written all it will: one ``poll`` without waiting
+            tells which pipes hold data (usually none), and only those are read.
+            """
+            _, status, ru = os.wait4(pid, 0)
+            run["status_word"], run["rusage"] = status, ru
+            kids = kids_seen[0] = self.own_children()
+            if kids is None or not kids <= self.leftovers:
+                release()
+                return
+            for fd, _ev in poller.poll(0):
+                if fd == out_r or fd == err_r:
+                    while True:
+                        try:
+                            data = os.read(fd, READ_CHUNK)
+                        except BlockingIOError:
+                            break
+                        b = bufs[fd]
+                        b += data
+                        if len(b) > cap:
+                            del b[:len(b) - cap]
+            open_pipes.clear()
+
         run["pid"] = pid
-        inflight = req.get("inflight")
-        if inflight:
-            self.record_inflight(inflight, pid)
         if req.get("notify", True):
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
         deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
@@ -541,14 +768,14 @@ class Launcher:
                 for fd, _ev in events:
                     if fd == pidfd:
                         t1 = time.perf_counter_ns()
-                        release()
                         poller.unregister(pidfd)
+                        settle()
                         linger_end = t1 + int(linger_s * 1e9)
                         break
             for fd, _ev in events:
                 if fd in open_pipes:
                     drain(fd)
-                elif fd == self.rfd:
+                elif fd == self.rfd and aborted is None:
                     msg = None
                     try:
                         msg = self.reader.read()
@@ -556,6 +783,8 @@ class Launcher:
                         msg = None
                     if msg is None:
                         self.stop = True
+                    else:
+                        self.pending_msg = msg  # handled once this run is over
                     aborted = "interrupted: the harness went away" if msg is None else \
                         "interrupted by the harness"
                     poller.unregister(self.rfd)
@@ -565,17 +794,18 @@ class Launcher:
                         release()
                         poller.unregister(pidfd)
                         linger_end = t1 + int(linger_s * 1e9)
-        release()
+        if open_pipes:
+            release()  # lingered until the time ran out: give these pipes up
         if "rusage" not in run:
             _, status, ru = os.wait4(pid, 0)
             run["status_word"], run["rusage"] = status, ru
-        # Our ends of the output pipes and the pidfd are closed once the reply
-        # is sent (see `serve`): nothing reads them any more.
-        self.to_close.extend((out_r, err_r, pidfd))
+        # The pidfd (and pipes given up) are closed once the reply is sent (see
+        # `serve`): nothing reads them any more.
+        self.to_close.append(pidfd)
         # Our own children list is cheap to read; anything the run left
         # behind has an ancestor in it (orphans are re-parented to us), so the
         # full walk and the reaping only happen when it shows something new.
-        kids = self.own_children()
+        kids = kids_seen[0] if kids_seen[0] is not None else self.own_children()
         if kids is None or kids:
             self.reap_orphans(run)  # also reaps leftovers of earlier runs that died
         if kids is None or not kids <= self.leftovers:
@@ -625,32 +855,215 @@ class Launcher:
     def serve(self):
         send(self.wfd, self.hello())
         while not self.stop:
-            try:
-                req = self.reader.read()
-            except OSError:
-                req = None
-            if req is None or req.get("op") == "exit":
-                break
-            if req.get("op") == "run":
+            if self.pending_msg is not None:
+                req, self.pending_msg = self.pending_msg, None
+            elif self.qpos < len(self.queue) and not self.held:
+                # Between queued runs: a quick look at both pipes, no blocking.
+                if self.reader.has_frame() or self.idle.poll(0):
+                    if not self.take_input():
+                        break
+                    continue
+                req = self.queue[self.qpos]
+                self.queue[self.qpos] = None
+                self.qpos += 1
+                if self.qpos > 4096:
+                    del self.queue[:self.qpos]
+                    self.qpos = 0
+                if self.bench_bare:
+                    self.bare_run()
                 try:
-                    reply = self.run(req)
-                except Exception as e:  # noqa: BLE001 - one bad request must not end the session
-                    reply = {"op": "done", "status": "failed", "exit_code": None, "wall_ns": None,
-                             "rusage": None, "stdout": b"", "stderr": b"", "extra": {},
-                             "started_at": utc_now_iso(),
-                             "message": f"the launcher could not run this: {type(e).__name__}: {e}"}
-            elif req.get("op") == "ping":
-                reply = {"op": "pong", "leftovers": sorted(self.leftovers)}
+                    self.run_queued(req)  # its fds are closed while the next run executes
+                except OSError:
+                    break  # the harness is gone
+                continue
             else:
-                continue  # a stray abort between runs: nothing to do
-            if self.stop:
+                if not self.reader.has_frame():
+                    # about to wait: hand over what finished, release the last run's fds
+                    try:
+                        self.flush_done()
+                    except OSError:
+                        break
+                    self.close_run_fds()
+                    if not self.take_input(block=True):
+                        break
+                    continue
+                try:
+                    req = self.reader.read()
+                except OSError:
+                    req = None
+            if req is None or not self.handle(req):
                 break
+        for m in self.inflight_maps.values():
+            m.close()
+
+    def take_input(self, block=False):
+        """Read what the pipes hold: queued batches, or one request-pipe message.
+
+        False when the harness is gone or asked the launcher to exit.
+        """
+        while self.qreader is not None and self.qreader.has_frame():
+            self.enqueue(self.qreader.read())
+        if self.reader.has_frame():
+            return self.handle(self.reader.read())
+        for fd, _ev in self.idle.poll(None if block else 0):
+            if fd == self.qfd:
+                try:
+                    batch = self.qreader.read()
+                except OSError:
+                    batch = None
+                if batch is None:  # queue pipe closed: the harness is gone
+                    return False
+                self.enqueue(batch)
+                while self.qreader.has_frame():
+                    self.enqueue(self.qreader.read())
+            elif fd == self.rfd:
+                try:
+                    msg = self.reader.read()
+                except OSError:
+                    msg = None
+                if msg is None or not self.handle(msg):
+                    return False
+        return True
+
+    def enqueue(self, batch):
+        """A batch of queued runs (with the journal and line format when they change)."""
+        if "journal" in batch and batch["journal"] != self.journal_path:
+            if self.journal_fd is not None:
+                os.close(self.journal_fd)
+                self.journal_fd = None
+            self.journal_path = batch["journal"]
+            if self.journal_path:
+                self.journal_fd = os.open(self.journal_path,
+                                          os.O_WRONLY | os.O_APPEND | os.O_CLOEXEC)
+        if "format" in batch:
+            self.line_format = batch["format"]
+            # A run with no extra fields of its own: its conditions, then the
+            # fields the harness adds to every run (rendered once here).
+            self.tail_fields = batch.get("fields")
+            tail = []
+            for k, v in (self.tail_fields or {}).items():
+                text = _json_value(v)
+                if text is None or _json_value(k) is None or k in ("load_1m", "cpu_mhz"):
+                    tail = None
+                    break
+                tail.append(',"%s":%s' % (k, text))
+            self.line_tail = None if tail is None else "".join(tail)
+            self.fast_format = (None if tail is None else self.line_format
+                                + ',"load_1m":%s,"cpu_mhz":%s'
+                                + self.line_tail.replace("%", "%%") + "}\n")
+        if "freq_files" in batch:
+            self.freq_files = batch["freq_files"]
+        self.queue.extend(batch["runs"])
+
+    def handle(self, req):
+        """One request-pipe message; False when the launcher should exit."""
+        op = req.get("op")
+        if op == "exit":
+            return False
+        if op == "run":
             try:
-                send(self.wfd, reply)
-            except OSError:
-                break
-            finally:
-                self.close_run_fds()
+                reply = self.run(req)
+            except Exception as e:  # noqa: BLE001 - one bad request must not end the session
+                reply = self.crash_reply(e)
+        elif op == "ping":
+            reply = {"op": "pong", "leftovers": sorted(self.leftovers),
+                     "bench": self.bench_log}
+            self.bench_log = []
+        elif op == "resume":
+            self.held = False
+            return True
+        elif op == "drop":
+            # The harness stops the queue: nothing queued runs any more.
+            self.queue, self.qpos, self.held = [], 0, False
+            reply = {"op": "dropped"}
+        else:
+            return True  # a stray abort between runs: nothing to do
+        if self.stop:
+            return False
+        try:
+            send(self.wfd, reply)
+        except OSError:
+            return False
+        finally:
+            self.close_run_fds()
+        return True
+
+    @staticmethod
+    def crash_reply(e):
+        return {"op": "done", "status": "failed", "exit_code": None, "wall_ns": None,
+                "rusage": None, "stdout": b"", "stderr": b"", "extra": {},
+                "started_at": utc_now_iso(),
+                "message": f"the launcher could not run this: {type(e).__name__}: {e}"}
+
+    def run_queued(self, req):
+        """Run one queued request; write its journal line when it ended ok."""
+        try:
+            reply = self.run(req)
+        except Exception as e:  # noqa: BLE001
+            reply = self.crash_reply(e)
+        reply["key"] = req.get("key")
+        if reply["status"] == "ok" and not self.stop and self.pending_msg is None:
+            line = self.journal_line(req, reply)
+            if line is not None:
+                n = os.write(self.journal_fd, line)
+                while n < len(line):  # only on short writes (full disk, signals)
+                    n += os.write(self.journal_fd, line[n:])
+                # The harness hears of journalled runs in batches: one reply
+                # write per batch rather than per run (see `flush_done`).
+                done = self.done
+                done.append((reply["key"], reply["wall_ns"], reply["rusage"], reply["extra"],
+                             reply.get("conditions"), reply["started_at"]))
+                now = time.perf_counter_ns()
+                if len(done) >= DONE_BATCH or now - self.done_since >= DONE_EVERY_NS:
+                    self.flush_done(now)
+                return
+        # Anything else is recorded by the harness; the queue waits for it.
+        reply["written"] = False
+        self.held = True
+        self.flush_done()
+        send(self.wfd, reply)
+
+    def flush_done(self, now=None):
+        """Send the batch of journalled runs not yet reported (``dones``)."""
+        if self.done:
+            send(self.wfd, {"op": "dones", "items": self.done})
+            self.done = []
+        self.done_since = time.perf_counter_ns() if now is None else now
+
+    def journal_line(self, req, reply):
+        """The run's journal line (bytes), or None if the harness must write it.
+
+        ``head`` (from the harness) is the record's opening up to its status;
+        ``line_format`` renders exit code, the usage figures and the start time;
+        then come this run's extra fields, its conditions and the fields the
+        harness adds to every such run, in the order the harness's own records
+        have them.
+        """
+        head = req.get("head")
+        if head is None or self.journal_fd is None or self.line_format is None:
+            return None
+        cond = reply.get("conditions")
+        if not reply["extra"] and cond is not None and self.line_tail is not None \
+                and req.get("fields") == self.tail_fields:
+            # The usual run: nothing of its own to add, so one format does it all.
+            load, mhz = cond["load_1m"], cond["cpu_mhz"]
+            return (head + self.fast_format % (
+                reply["exit_code"], reply["wall_ns"] / 1e9, *reply["rusage"],
+                reply["started_at"], "null" if load is None else repr(float(load)),
+                "null" if mhz is None else repr(float(mhz)))).encode()
+        parts = [head, self.line_format % (reply["exit_code"], reply["wall_ns"] / 1e9,
+                                           *reply["rusage"], reply["started_at"])]
+        fields = dict(reply["extra"])
+        for k, v in (reply.get("conditions") or {}).items():
+            fields.setdefault(k, v)
+        fields.update(req.get("fields") or {})
+        for k, v in fields.items():
+            text = _json_value(v)
+            if text is None or _json_value(k) is None:
+                return None
+            parts.append(',"%s":%s' % (k, text))
+        parts.append("}\n")
+        return "".join(parts).encode()
 
     def close_run_fds(self):
         while self.to_close:
@@ -663,8 +1076,11 @@ class Launcher:
 def main(argv=None):
     argv = sys.argv[1:] if argv is None else argv
     rfd, wfd = int(argv[0]), int(argv[1])
-    Launcher(rfd, wfd).serve()
-    return 0
+    qfd = int(argv[2]) if len(argv) > 2 else None
+    Launcher(rfd, wfd, qfd).serve()
+    # Nothing is buffered and nothing needs cleaning up: skip the interpreter's
+    # teardown, which the harness would otherwise wait for at the end of a run.
+    os._exit(0)
 
 
 if __name__ == "__main__":

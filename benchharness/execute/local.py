@@ -18,6 +18,8 @@ doing anything obviously wrong!".
 from __future__ import annotations
 
 import dataclasses as _dc
+import fcntl
+import marshal
 import os
 import select
 import signal
@@ -25,6 +27,7 @@ import subprocess
 import sys
 import threading
 from pathlib import Path
+from typing import Mapping
 
 from benchharness.errors import ExecutionError
 from benchharness.execute import launcher as _proto
@@ -32,6 +35,7 @@ from benchharness.execute.base import Measurement, OnStart, RunSpec
 from benchharness.execute.noise import check_cpus
 
 LAUNCHER_PATH = Path(_proto.__file__).resolve()
+_F_GETPIPE_SZ = 1032
 
 
 class LocalExecutor:
@@ -44,47 +48,81 @@ class LocalExecutor:
     """
 
     def __init__(self, kill_grace_s: float = 0.5, linger_s: float = 0.1,
-                 python: str | None = None):
+                 python: str | None = None, wait: bool = True):
+        """Start the launcher. ``wait=False`` returns at once; its greeting
+        (and a failure to start) is taken on first use, so the launcher's
+        interpreter starts while the caller does other work."""
         self.kill_grace_s = float(kill_grace_s)
         self.linger_s = float(linger_s)
         self._proc: subprocess.Popen | None = None
         self._lock = threading.Lock()
         self._closed = False
-        c2l_r, c2l_w = os.pipe()   # harness -> launcher
-        l2c_r, l2c_w = os.pipe()   # launcher -> harness
+        c2l_r, c2l_w = os.pipe()   # harness -> launcher: requests
+        l2c_r, l2c_w = os.pipe()   # launcher -> harness: replies
+        q_r, q_w = os.pipe()       # harness -> launcher: batches of queued runs
+        for fd in (l2c_r, q_w):
+            _proto.widen_pipe(fd)
         try:
             self._proc = subprocess.Popen(
                 [python or sys.executable, "-I", "-S", "-B", str(LAUNCHER_PATH),
-                 str(c2l_r), str(l2c_w)],
-                pass_fds=(c2l_r, l2c_w), stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                 str(c2l_r), str(l2c_w), str(q_r)],
+                pass_fds=(c2l_r, l2c_w, q_r), stdin=subprocess.DEVNULL,
+                stdout=subprocess.DEVNULL,
                 close_fds=True, process_group=0,  # Ctrl-C reaches the harness only
             )
         except OSError as e:
-            for fd in (c2l_r, c2l_w, l2c_r, l2c_w):
+            for fd in (c2l_r, c2l_w, l2c_r, l2c_w, q_r, q_w):
                 os.close(fd)
             raise ExecutionError(f"cannot start the launcher process: {e}") from e
         os.close(c2l_r)
         os.close(l2c_w)
+        os.close(q_r)
         self._w = c2l_w
         self._r = l2c_r
+        self._q = q_w
+        try:
+            self._q_capacity = fcntl.fcntl(q_w, _F_GETPIPE_SZ)
+        except OSError:
+            self._q_capacity = 65536
         self._reader = _proto.FrameReader(l2c_r)
-        hello = self._recv(timeout_s=30)
-        if hello.get("op") != "hello":
-            self._kill_launcher()
-            raise ExecutionError(f"the launcher answered {hello!r} instead of hello")
-        if hello.get("pidfd_error"):
-            self.close()
-            raise ExecutionError("local execution needs Linux 5.3 or later (pidfd_open); "
-                                 f"here it fails: {hello['pidfd_error']}")
-        self.launcher_pid: int = hello["pid"]
-        self.subreaper: bool = hello["subreaper"]
-        #: Whether this kernel lets a run turn off ASLR; reason when it does not.
-        self.aslr_control: bool = hello["aslr_control"]
-        self.aslr_reason: str = hello["aslr_reason"]
+        self.launcher_pid: int = self._proc.pid
         #: Writes RunSpec.inflight_path itself (the runner then needs no on_start call).
         self.records_inflight: bool = True
         self._current: tuple[int, int] | None = None
         self._last_env: dict | None = None
+        self._greeting: dict | None = None
+        if wait:
+            self._hello()
+
+    def _hello(self) -> dict:
+        """The launcher's greeting (its capabilities), read once."""
+        if self._greeting is None:
+            if self._closed:
+                raise ExecutionError("this executor is closed")
+            hello = self._recv(timeout_s=30)
+            if hello.get("op") != "hello":
+                self._kill_launcher()
+                raise ExecutionError(f"the launcher answered {hello!r} instead of hello")
+            if hello.get("pidfd_error"):
+                self.close()
+                raise ExecutionError("local execution needs Linux 5.3 or later (pidfd_open); "
+                                     f"here it fails: {hello['pidfd_error']}")
+            self._greeting = hello
+        return self._greeting
+
+    @property
+    def subreaper(self) -> bool:
+        """Whether processes that leave a run's tree stay below the launcher."""
+        return self._hello()["subreaper"]
+
+    @property
+    def aslr_control(self) -> bool:
+        """Whether this kernel lets a run turn off ASLR (`aslr_reason` says why not)."""
+        return self._hello()["aslr_control"]
+
+    @property
+    def aslr_reason(self) -> str:
+        return self._hello()["aslr_reason"]
 
     # ---------------------------------------------------------------- protocol
 
@@ -134,12 +172,12 @@ class LocalExecutor:
     def _release(self, wait_s: float) -> None:
         """Close our pipe ends and reap the launcher (killed if it does not exit in time)."""
         self._closed = True
-        for fd in (self._w, self._r):
+        for fd in (self._w, self._r, getattr(self, "_q", -1)):
             try:
                 os.close(fd)
             except OSError:
                 pass
-        self._w = self._r = -1
+        self._w = self._r = self._q = -1
         if self._proc is not None:
             try:
                 self._proc.wait(timeout=wait_s)
@@ -196,13 +234,30 @@ class LocalExecutor:
             "notify": notify,
         }
         if spec.inflight_path:
-            req["inflight"] = (str(spec.inflight_path), int(spec.run_id or 0), _boot_id())
+            path = str(spec.inflight_path)
+            try:  # the inode tells the launcher when the file is not the one it mapped
+                ino = os.stat(path).st_ino
+            except OSError:
+                ino = 0
+            req["inflight"] = (path, int(spec.run_id or 0), _boot_id(), ino)
         return req
+
+    def open_stream(self, journal_path: str | os.PathLike, freq_files: dict | None = None,
+                    fields: Mapping | None = None) -> "RunStream":
+        """Queue runs to the launcher, which journals the ones that end ok (`RunStream`).
+
+        ``fields``: plain-valued record fields added to every run's journal line.
+        """
+        if self._closed:
+            raise ExecutionError("this executor is closed")
+        self._hello()
+        return RunStream(self, str(journal_path), freq_files or {}, fields)
 
     def _execute(self, spec: RunSpec, on_start: OnStart | None,
                  while_running=None, prepared: dict | None = None) -> Measurement:
         if self._closed:
             raise ExecutionError("this executor is closed")
+        self._hello()
         if prepared is not None and prepared.get("notify") == (on_start is not None):
             req = prepared
         else:
@@ -239,9 +294,18 @@ class LocalExecutor:
 
     def leftovers(self) -> list[int]:
         """Pids of processes that earlier runs left running (still alive)."""
+        return list(self._ping()["leftovers"])
+
+    def bench_log(self) -> list[tuple[int, int]]:
+        """Benchmark only: the bare runs the launcher made beside queued runs
+        (``BENCHHARNESS_BENCH_BARE``), as (wall ns, segment ns), since last asked."""
+        return [tuple(x) for x in self._ping()["bench"]]
+
+    def _ping(self) -> dict:
         with self._lock:
+            self._hello()
             self._send({"op": "ping"})
-            return list(self._recv(timeout_s=30)["leftovers"])
+            return self._recv(timeout_s=30)
 
     def close(self) -> None:
         """Stop the launcher (processes that runs left behind are not killed)."""
@@ -269,6 +333,178 @@ class LocalExecutor:
                 self._shutdown(hard=False)
         except Exception:
             pass
+
+
+class StreamEvent:
+    """One finished queued run: its key, `Measurement` and whether the launcher
+    wrote its journal line (if not, the caller records it, then calls
+    `RunStream.release`)."""
+
+    __slots__ = ("key", "measurement", "written")
+
+    def __init__(self, key, measurement: Measurement, written: bool):
+        self.key, self.measurement, self.written = key, measurement, written
+
+
+class RunStream:
+    """Runs queued to the launcher, executed back to back with no round trip.
+
+    The caller `submit`s runs (each with the opening of its journal record),
+    `flush`es them in batches and collects `StreamEvent`s with `events`. A run
+    that ended ok is already in the journal when its event arrives; for any
+    other the launcher holds the queue until the caller has written the record
+    and called `release`, so the journal keeps execution order and every
+    finished run is in it before the next one starts. The executor is
+    reserved for the stream until `close` (which also drops what is still
+    queued, waiting for the run in flight to be stopped). Queued requests never
+    exceed what the queue pipe holds, so no write of the harness blocks while
+    the launcher waits to hand over a reply.
+    """
+
+    def __init__(self, ex: LocalExecutor, journal_path: str, freq_files: dict,
+                 fields: Mapping | None = None):
+        from benchharness.journal import stream_line_format
+
+        self.ex = ex
+        self.fields = dict(fields) if fields else None
+        self.header = {"journal": journal_path, "format": stream_line_format(),
+                       "fields": self.fields,
+                       "freq_files": {int(k): str(v) for k, v in freq_files.items()}}
+        self.pending: list = []
+        self.pending_bytes = 0
+        self.queued_bytes: dict = {}   # key -> marshalled size of its request
+        self.in_queue = 0              # bytes of requests sent and not finished
+        self.outstanding = 0           # runs sent and not finished
+        self.held = False
+        self.closed = False
+        # Room for one more request and the batch's own header.
+        self.capacity = max(4096, ex._q_capacity - 8192)
+        ex._lock.acquire()
+
+    def room(self) -> bool:
+        """Whether another run may be submitted now."""
+        return self.in_queue + self.pending_bytes < self.capacity
+
+    def submit(self, spec: RunSpec, key, head: str) -> None:
+        """Queue ``spec``; ``head`` is its journal record's JSON up to the status
+        (without the closing brace)."""
+        ex = self.ex
+        req = ex.prepare_request(spec)
+        if ex._last_env is None or spec.env != ex._last_env:
+            env = {str(k): str(v) for k, v in spec.env.items()}
+            req["env"] = env
+            ex._last_env = env
+        req["key"] = key
+        req["head"] = head
+        req["sample"] = True
+        if self.fields:
+            req["fields"] = self.fields
+        size = len(marshal.dumps(req)) + 16
+        self.pending.append(req)
+        self.pending_bytes += size
+        self.queued_bytes[key] = size
+
+    def flush(self) -> None:
+        """Send the submitted runs as one batch."""
+        if not self.pending:
+            return
+        batch = dict(self.header) if self.header else {}
+        self.header = None
+        batch["runs"] = self.pending
+        try:
+            _proto.send(self.ex._q, batch)
+        except OSError as e:
+            self.ex._cleanup_after_death()
+            raise ExecutionError(f"the launcher process is gone ({e.strerror or e})") from e
+        self.outstanding += len(self.pending)
+        self.in_queue += self.pending_bytes
+        self.pending, self.pending_bytes = [], 0
+
+    def events(self, timeout_s: float | None) -> list[StreamEvent]:
+        """Finished runs, waiting up to ``timeout_s`` for the first one."""
+        ex = self.ex
+        if not ex._reader.has_frame():
+            ready, _, _ = select.select([ex._r], [], [], timeout_s)
+            if not ready:
+                return []
+        out: list[StreamEvent] = []
+        while True:
+            self._take(ex._recv(), out)
+            if not ex._reader.has_frame():
+                if not select.select([ex._r], [], [], 0)[0]:
+                    return out
+
+    def _take(self, msg: dict, out: list) -> None:
+        """Turn a ``done`` (one run) or ``dones`` (journalled runs) frame into events."""
+        op = msg.get("op")
+        if op == "dones":
+            for key, wall_ns, rusage, extra, cond, started_at in msg["items"]:
+                out.append(self._event({"key": key, "status": "ok", "exit_code": 0,
+                                        "wall_ns": wall_ns, "rusage": rusage, "extra": extra,
+                                        "conditions": cond, "started_at": started_at,
+                                        "written": True}))
+        elif op == "done":
+            out.append(self._event(msg))
+        else:
+            self.ex._kill_launcher()
+            raise ExecutionError(f"unexpected message from the launcher: {op!r}")
+
+    def _event(self, msg: dict) -> StreamEvent:
+        key = msg.get("key")
+        self.outstanding -= 1
+        self.in_queue -= self.queued_bytes.pop(key, 0)
+        m = _measurement(msg)
+        cond = msg.get("conditions")
+        if cond:
+            for k, v in cond.items():
+                m.extra.setdefault(k, v)
+        written = bool(msg.get("written"))
+        if not written:
+            self.held = True
+        return StreamEvent(key, m, written)
+
+    def release(self) -> None:
+        """The caller recorded a run the launcher held on: let the queue go on."""
+        self.held = False
+        self.ex._send({"op": "resume"})
+
+    def close(self) -> list[StreamEvent]:
+        """Drop what is still queued; returns the events that arrived meanwhile
+        (runs that finished and were journalled before the drop took effect)."""
+        if self.closed:
+            return []
+        self.closed = True
+        ex = self.ex
+        out: list[StreamEvent] = []
+        try:
+            if self.outstanding:
+                ex._send({"op": "drop"})
+                while True:
+                    msg = ex._recv(timeout_s=60)
+                    if msg.get("op") == "dropped":
+                        break
+                    got: list[StreamEvent] = []
+                    self._take(msg, got)
+                    out.extend(ev for ev in got if ev.written)
+                ex._last_env = None  # dropped requests may have carried an environment
+                self.outstanding = 0
+        finally:
+            ex._lock.release()
+        return out
+
+    def __enter__(self) -> "RunStream":
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if exc_type is None:
+            self.close()
+        else:
+            # Ctrl-C or an error: stop the launcher (it kills the run in flight)
+            # without waiting on a queue that may never drain.
+            self.closed = True
+            if not self.ex._closed:
+                self.ex._shutdown(hard=True)
+            self.ex._lock.release()
 
 
 # Defaults of the optional Measurement fields (``extra`` is given per instance).
@@ -322,4 +558,4 @@ def _measurement(msg: dict) -> Measurement:
     return m
 
 
-__all__ = ["LocalExecutor", "LAUNCHER_PATH"]
+__all__ = ["LocalExecutor", "LAUNCHER_PATH", "RunStream", "StreamEvent"]
