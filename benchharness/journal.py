@@ -157,7 +157,7 @@ class Journal:
         self.inflight_fd = os.open(folder / "inflight", os.O_RDWR | os.O_CREAT, 0o644)
 
     def append(self, record: Mapping) -> None:
-        line = (_encode_line(record) + "\n").encode("utf-8")
+        line = encode_record(record)
         # One write(2) of the whole line; O_APPEND makes it land at the end.
         n = os.write(self.fd, line)
         while n < len(line):  # pragma: no cover - only on short writes (full disk, signals)
@@ -226,6 +226,11 @@ def _make_line_encoder():
 
 
 _encode_line = _make_line_encoder()
+
+def encode_record(record: Mapping) -> bytes:
+    """A record's journal line (compact JSON, newline-terminated)."""
+    return (_encode_line(record) + "\n").encode("utf-8")
+
 
 #: Usage figures the launcher renders with ``%r`` (floats); the others are counts.
 _FLOAT_FIELDS = ("wall_s", "user_s", "sys_s")
@@ -421,26 +426,67 @@ def _csv_value(v) -> str:
     return str(v)
 
 
+class RunsCsvWriter:
+    """``runs.csv`` written row by row into a temporary sibling, then put in place.
+
+    `export_runs_csv` writes all rows at once; the runner also uses this while
+    queued runs execute (rows are added as runs finish, off the path between
+    runs), then `commit`s it if the columns and order turned out as expected.
+    """
+
+    def __init__(self, folder: Path, factors: Sequence[str], cols: Sequence[str]):
+        self.path = folder / "runs.csv"
+        self.tmp = folder / "runs.csv.partial"
+        self.factors = list(factors)
+        self.cols = list(cols)
+        self.fixed = len(LEAD_COLUMNS) + len(self.factors) + len(CORE_COLUMNS)
+        self.fh = open(self.tmp, "w", encoding="utf-8", newline="")
+        self.writer = csv.writer(self.fh, lineterminator="\n")  # None -> empty field
+        self.writer.writerow(self.cols)
+
+    def add(self, rec: Mapping) -> None:
+        row = row_values(rec, self.factors, self.cols)
+        # Only the later columns and the metrics can hold true/false (written as
+        # such, not as Python's True/False); the fixed ones never do.
+        if True in map(_is_bool, row[self.fixed:]):
+            row = [_csv_value(v) for v in row]
+        self.writer.writerow(row)
+
+    def add_all(self, records: Iterable[Mapping]) -> None:
+        for rec in records:
+            self.add(rec)
+
+    def commit(self) -> Path:
+        self.fh.flush()
+        os.fsync(self.fh.fileno())
+        self.fh.close()
+        os.replace(self.tmp, self.path)
+        return self.path
+
+    def discard(self) -> None:
+        self.fh.close()
+        try:
+            self.tmp.unlink()
+        except FileNotFoundError:
+            pass
+
+
 def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapping]) -> Path:
     """Write ``runs.csv`` (one row per journal record, sorted by position) atomically."""
     records = sorted_records(records)
-    cols = runs_columns(factors, records)
-    buf = io.StringIO()
-    w = csv.writer(buf, lineterminator="\n")  # writes None as an empty field
-    w.writerow(cols)
-    # Only the later columns and the metrics can hold true/false (written as
-    # such, not as Python's True/False); the fixed ones never do.
-    fixed = len(LEAD_COLUMNS) + len(factors) + len(CORE_COLUMNS)
-    rows = []
-    for rec in records:
-        row = row_values(rec, factors, cols)
-        if True in map(_is_bool, row[fixed:]):
-            row = [_csv_value(v) for v in row]
-        rows.append(row)
-    w.writerows(rows)
-    path = folder / "runs.csv"
-    write_atomic(path, buf.getvalue())
-    return path
+    w = RunsCsvWriter(folder, factors, runs_columns(factors, records))
+    try:
+        w.add_all(records)
+    except BaseException:
+        w.discard()
+        raise
+    return w.commit()
+
+
+def in_order(records: Sequence[Mapping]) -> bool:
+    """Whether ``records`` are already in `sorted_records` order."""
+    keys = [(r.get("position", 0), r.get("run", 0)) for r in records]
+    return all(a <= b for a, b in zip(keys, keys[1:]))
 
 
 def _is_bool(v) -> bool:

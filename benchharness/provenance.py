@@ -50,30 +50,38 @@ def _git(args: list[str], cwd: str) -> str | None:
     return r.stdout if r.returncode == 0 else None
 
 
-def _git_pair(a: list[str], b: list[str], cwd: str) -> tuple[str | None, str | None]:
-    """Run two git commands at once; their outputs (None where one failed)."""
-    procs = []
-    for args in (a, b):
-        try:
-            procs.append(subprocess.Popen(["git", *args], cwd=cwd, stdout=subprocess.PIPE,
-                                          stderr=subprocess.DEVNULL, stdin=subprocess.DEVNULL,
-                                          text=True))
-        except OSError:
-            procs.append(None)
-    out = []
-    for p in procs:
-        if p is None:
-            out.append(None)
-            continue
-        try:
-            text, _ = p.communicate(timeout=20)
-        except subprocess.TimeoutExpired:
-            p.kill()
-            p.communicate()
-            out.append(None)
-            continue
-        out.append(text if p.returncode == 0 else None)
-    return out[0], out[1]
+_HEADS = ["rev-parse", "--show-toplevel", "HEAD", "--abbrev-ref", "HEAD"]
+_STATUS = ["status", "--porcelain", "--untracked-files=normal"]
+_PENDING: dict = {}   # directory -> git processes started ahead by `prefetch_git`
+
+
+def _start_git(args: list[str], cwd: str):
+    try:
+        return subprocess.Popen(["git", *args], cwd=cwd, stdout=subprocess.PIPE,
+                                stderr=subprocess.DEVNULL, stdin=subprocess.DEVNULL, text=True)
+    except OSError:
+        return None
+
+
+def _finish_git(p) -> str | None:
+    if p is None:
+        return None
+    try:
+        text, _ = p.communicate(timeout=20)
+    except subprocess.TimeoutExpired:
+        p.kill()
+        p.communicate()
+        return None
+    return text if p.returncode == 0 else None
+
+
+def prefetch_git(directory: str | os.PathLike) -> None:
+    """Start the git processes `git_state` needs for ``directory`` now (they run
+    while the caller sets up other things); `git_state` then collects them."""
+    d = str(directory)
+    if d in _PENDING or not shutil.which("git") or not os.path.isdir(d):
+        return
+    _PENDING[d] = (_start_git(_HEADS, d), _start_git(_STATUS, d))
 
 
 def git_state(directory: str | os.PathLike) -> dict | None:
@@ -87,9 +95,8 @@ def git_state(directory: str | os.PathLike) -> dict | None:
         return None
     # Two git processes side by side (this is part of every run's start-up):
     # top level, revision and branch in one, the working tree's state in the other.
-    both = _git_pair(["rev-parse", "--show-toplevel", "HEAD", "--abbrev-ref", "HEAD"],
-                     ["status", "--porcelain", "--untracked-files=normal"], d)
-    heads, status = both
+    procs = _PENDING.pop(d, None) or (_start_git(_HEADS, d), _start_git(_STATUS, d))
+    heads, status = _finish_git(procs[0]), _finish_git(procs[1])
     lines = heads.splitlines() if heads is not None else []
     if len(lines) == 3:
         root, rev, branch = lines

@@ -182,8 +182,13 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     from benchharness.sections import validate_sections
 
     validate_sections(exp)  # malformed capability sections fail before a folder exists
-    # The launcher's interpreter starts while the plan, folder and host facts are made.
+    # The launcher's interpreter, and the git processes that record the source
+    # tree's state, start while the plan, folder and host facts are made.
     early = default_executor(wait=False) if executor is None and not scheduler else None
+    if not scheduler:
+        from benchharness.provenance import prefetch_git
+
+        prefetch_git(Path(exp.path).resolve().parent if exp.path != "<string>" else os.getcwd())
     try:
         return _run_new(exp, exp_for_plan, notes, out, early or executor, early is not None,
                         base, seed, progress, plan, plan_kwargs, scheduler, same_host_ok,
@@ -450,8 +455,82 @@ def _outcome(pr: Mapping, m: Measurement) -> tuple[str, str]:
 STREAM_GATHER_S = 0.02
 
 
+class _Mirror:
+    """The journal lines a stream added, as records, and as the text they should be.
+
+    At the end the journal's new bytes are compared with that text (a read and
+    a comparison, far cheaper than parsing the journal again); when they are
+    the same the records serve the export of runs.csv. Kept only up to
+    `MIRROR_LIMIT` runs, so a very long experiment does not hold them all.
+    """
+
+    def __init__(self, path: Path, limit: int, factors=(), prior=()):
+        self.path = path
+        self.start = os.stat(path).st_size
+        self.records: list | None = []
+        self.lines: list = []
+        self.limit = limit
+        self.factors = list(factors)
+        self.prior = list(prior)
+        self.csv: J.RunsCsvWriter | None = None
+
+    def add(self, rec: dict) -> None:
+        if self.records is not None:
+            if len(self.records) >= self.limit:
+                self.drop()
+                return
+            self.records.append(rec)
+            self.lines.append(J.encode_record(rec))
+            try:
+                if self.csv is None:
+                    # runs.csv grows with the runs: its columns as the first run
+                    # shows them (checked again at the end)
+                    self.csv = J.RunsCsvWriter(self.path.parent, self.factors,
+                                               J.runs_columns(self.factors, [*self.prior, rec]))
+                    self.csv.add_all(self.prior)
+                self.csv.add(rec)
+            except OSError:
+                self.drop()
+
+    def drop(self) -> None:
+        self.records = self.lines = None
+        if self.csv is not None:
+            self.csv.discard()
+            self.csv = None
+
+    def commit_csv(self, records: list) -> bool:
+        """Put the runs.csv written along in place if it is what an export would write."""
+        csv_w, self.csv = self.csv, None
+        if csv_w is None:
+            return False
+        if (csv_w.cols == J.runs_columns(self.factors, records) and J.in_order(records)):
+            try:
+                csv_w.commit()
+                return True
+            except OSError:
+                pass
+        csv_w.discard()
+        return False
+
+    def verified(self) -> list | None:
+        """The records, if the journal holds exactly their lines after ``start``."""
+        if self.records is None:
+            return None
+        try:
+            with open(self.path, "rb") as fh:
+                fh.seek(self.start)
+                data = fh.read()
+        except OSError:
+            return None
+        return self.records if data == b"".join(self.lines) else None
+
+
+MIRROR_LIMIT = 200_000
+
+
 def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflight_path,
-                 fields, counts: dict, progress, on_tick) -> None:
+                 fields, counts: dict, progress, on_tick, mirror: _Mirror | None = None
+                 ) -> None:
     """Run ``todo`` as queued runs: the launcher runs them back to back and
     journals each run that ends ok itself; the harness records the others
     (the launcher waits for that), counts, and shows progress.
@@ -480,12 +559,17 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
                 by_key[pr["run"]] = (pr, c)
                 i += 1
             stream.flush()
+            if i < len(todo) and stream.room():
+                continue  # more to queue first (the first small batch is already running)
             events = stream.events(timeout_s=0.25)
             for ev in events:
                 pr, c = by_key.pop(ev.key)
                 if ev.written:
+                    # the record the launcher wrote (the same fields, values and order)
                     status = "warmup" if pr["warmup"] else "ok"
-                    rec = {"run": pr["run"], "status": status}
+                    rec = _record(pr, ev.measurement, status, "")
+                    if fields:
+                        rec.update(fields)
                 else:
                     status, message = _outcome(pr, ev.measurement)
                     rec = _record(pr, ev.measurement, status, message)
@@ -493,6 +577,8 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
                         rec.update(fields)
                     jr.append(rec)
                     stream.release()
+                if mirror is not None:
+                    mirror.add(rec)
                 counts[status] = counts.get(status, 0) + 1
                 progress.advance(rec, c["label"])
             on_tick()
@@ -607,6 +693,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
         return cb
 
     stop_notes = []
+    mirror = None
     streamed = (records_start and hasattr(executor, "open_stream") and quality.fast
                 and stop_check is None and pad_rng is None and not controls.cold_cache
                 and exp.build is None and exp.reset is None and exp.teardown is None)
@@ -620,9 +707,10 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     try:
         if streamed:
             todo_iter = ()
+            mirror = _Mirror(jr.path, MIRROR_LIMIT, exp.factor_names, prior)
             _stream_runs(executor, jr, todo, cells, timeout_s, inflight_path,
                          {"aslr": aslr_value} if aslr_value is not None else None,
-                         counts, progress, on_tick)
+                         counts, progress, on_tick, mirror)
         else:
             todo_iter = todo
         for index, pr in enumerate(todo_iter):
@@ -731,6 +819,8 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 pass
         jr.clear_inflight()
     finally:
+        if mirror is not None and sys.exc_info()[0] is not None:
+            mirror.drop()  # an error is on its way out: no half runs.csv stays behind
         try:
             show_progress()
         except Exception:  # noqa: BLE001 - a display problem must not lose the journal
@@ -751,25 +841,39 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 pass
     if stop_check is not None and stop_check.stopped:
         session["stopped"] = stop_check.stopped
+    known = None
+    csv_ready = False
+    if mirror is not None:
+        if not interrupted and len(prior) + len(todo) <= MIRROR_LIMIT:
+            new = mirror.verified()
+            if new is not None and len(new) == len(todo):
+                known = [*prior, *new]
+                csv_ready = mirror.commit_csv(known)
+        mirror.drop()
     outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
-                       quality=quality)
+                       quality=quality, records=known, runs_csv_written=csv_ready)
     outcome.notes.extend(stop_notes)
     return outcome
 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
-             interrupted: bool, host_json: dict | None = None, quality=None) -> RunOutcome:
+             interrupted: bool, host_json: dict | None = None, quality=None,
+             records: list | None = None, runs_csv_written: bool = False) -> RunOutcome:
     """Export runs.csv, record the end state in host.json and session.json.
 
     The counts by status are taken from the journal, which is the record of
     what ran (queued runs are journalled by the launcher, and after Ctrl-C the
-    harness may not have heard of the last few yet).
+    harness may not have heard of the last few yet). ``records``: the journal's
+    records when the caller already holds them, checked against its bytes;
+    ``runs_csv_written``: runs.csv is already in place for them.
     """
-    records = J.read_journal(folder / "runs.jsonl")
+    if records is None:
+        records = J.read_journal(folder / "runs.jsonl")
     counts = {}
     for r in records:
         counts[r["status"]] = counts.get(r["status"], 0) + 1
-    J.export_runs_csv(folder, exp.factor_names, records)
+    if not runs_csv_written:
+        J.export_runs_csv(folder, exp.factor_names, records)
     if quality is not None:
         quality.close(records)  # steady.json: warm-up classes, executions x iterations advice
     from benchharness.host import facts_at_end
