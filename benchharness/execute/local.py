@@ -179,8 +179,21 @@ class LocalExecutor:
                 pass
         self._w = self._r = self._q = -1
         if self._proc is not None:
+            # Waited for on its pidfd: Popen.wait with a timeout polls with
+            # growing sleeps, which made every run's end a few ms longer.
             try:
-                self._proc.wait(timeout=wait_s)
+                fd = os.pidfd_open(self._proc.pid)
+            except OSError:
+                fd = None
+            if fd is not None:
+                try:
+                    p = select.poll()
+                    p.register(fd, select.POLLIN)
+                    p.poll(int(wait_s * 1000))
+                finally:
+                    os.close(fd)
+            try:
+                self._proc.wait(timeout=0 if fd is not None else wait_s)
             except subprocess.TimeoutExpired:
                 self._proc.kill()
                 self._proc.wait()
