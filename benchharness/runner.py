@@ -450,11 +450,6 @@ def _outcome(pr: Mapping, m: Measurement) -> tuple[str, str]:
     return status, message
 
 
-#: While runs stream, finished ones are collected at most this often: the
-#: harness then wakes once per batch of short runs instead of once per run.
-STREAM_GATHER_S = 0.02
-
-
 class _Mirror:
     """The journal lines a stream added, as records, and as the text they should be.
 
@@ -538,7 +533,9 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
     Only for experiments whose runs need nothing from the harness between
     them (no build, reset or teardown, no quality sections, no padding, no
     cold cache, no stopping rule); the journal is the same as the one-by-one
-    path writes.
+    path writes. The launcher reports journalled runs in batches (64 runs or
+    20 ms, and whenever it runs out of work), so the harness wakes a few dozen
+    times a second at most, not once per run.
     """
     from benchharness.host import freq_files
 
@@ -582,9 +579,6 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
                 counts[status] = counts.get(status, 0) + 1
                 progress.advance(rec, c["label"])
             on_tick()
-            if events and stream.outstanding > 1:
-                # gather the next few: one wake-up per batch of short runs
-                time.sleep(STREAM_GATHER_S)
 
 
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,

@@ -242,6 +242,16 @@ def _resolve(cmd, env, cwd):
     return None, f"cannot start {cmd!r}: command not found in the run's PATH"
 
 
+SPAWN_SIGDEF = (signal.SIGPIPE, signal.SIGXFSZ)  # default in the child (Python ignores them)
+
+
+def _result(started_at, extra, status, message, conditions=None):
+    """The reply for a run that could not be started."""
+    return {"op": "done", "started_at": started_at, "status": status, "exit_code": None,
+            "wall_ns": None, "rusage": None, "stdout": b"", "stderr": b"", "extra": extra,
+            "message": message, "conditions": conditions}
+
+
 _SIGNAMES = {getattr(signal, n): n for n in dir(signal)
              if n.startswith("SIG") and not n.startswith("SIG_") and isinstance(getattr(signal, n), int)}
 
@@ -294,7 +304,7 @@ class Launcher:
         self.fast_format = self.line_tail = self.tail_fields = None
         self.freq_files = {}
         self.cpuinfo_cache = [-1.0, []]
-        self.last_conditions = None  # (when, cpus, {load_1m, cpu_mhz})
+        self.last_conditions = None  # (when, cpus, {load_1m, cpu_mhz}, their JSON text)
         self.bench_bare = os.environ.get("BENCHHARNESS_BENCH_BARE") or None
         self.bench_log = []      # (bare wall ns, bare segment ns) with bench_bare
         self.done = []           # journalled queued runs the harness has not heard of
@@ -326,6 +336,8 @@ class Launcher:
         self.leftovers = set()   # live descendants that earlier runs left behind
         self.to_close = []       # fds of the last run, closed after its reply
         self.pipes = None        # (out_r, out_w, err_r, err_w) kept between runs
+        self.pipe_poller = None  # poll object of those pipes and the request pipe
+        self.file_actions = None
         self.stop = False
 
     # ---- capabilities
@@ -370,7 +382,11 @@ class Launcher:
             return last[2]
         cond = {"load_1m": load_1m(),
                 "cpu_mhz": cpu_mhz_from(self.freq_files, cpus, self.cpuinfo_cache)}
-        self.last_conditions = (now, cpus, cond)
+        load, mhz = cond["load_1m"], cond["cpu_mhz"]
+        # ... and their journal text, made once per reading
+        text = ("null" if load is None else repr(float(load)),
+                "null" if mhz is None else repr(float(mhz)))
+        self.last_conditions = (now, cpus, cond, text)
         return cond
 
     def inflight_slot(self, inflight):
@@ -521,20 +537,14 @@ class Launcher:
 
     # ---- one run
 
-    def spawn(self, req, path, argv, env, out_w, err_w):
-        """Start the child; returns (pid, t0_ns, error message or None)."""
-        cpus = req.get("cpus")
-        nice = req.get("nice")
-        no_aslr = req.get("no_aslr")
+    def spawn(self, path, argv, env, cpus, nice, no_aslr):
+        """Start the child on the output pipes; returns (pid, t0_ns, error message or None)."""
+        out_w, err_w = self.pipes[1], self.pipes[3]
         if not cpus and nice is None and not no_aslr:
             t0 = time.perf_counter_ns()
             try:
-                pid = os.posix_spawn(
-                    path, argv, env,
-                    file_actions=[(os.POSIX_SPAWN_DUP2, self.devnull, 0),
-                                  (os.POSIX_SPAWN_DUP2, out_w, 1),
-                                  (os.POSIX_SPAWN_DUP2, err_w, 2)],
-                    setpgroup=0, setsigdef=(signal.SIGPIPE, signal.SIGXFSZ))
+                pid = os.posix_spawn(path, argv, env, file_actions=self.file_actions,
+                                     setpgroup=0, setsigdef=SPAWN_SIGDEF)
             except OSError as e:
                 return None, t0, f"cannot start {argv[0]!r}: {e.strerror or e}"
             except (ValueError, TypeError) as e:  # e.g. a NUL byte in an argument
@@ -601,70 +611,86 @@ class Launcher:
             return None, t0, err
         return pid, t0, None
 
+    def _pipes(self):
+        """The output pipes (kept between runs, see `settle` in `run`), the poll
+        object watching them and the request pipe, and the spawn's file actions."""
+        if self.pipes is None:
+            out_r, out_w = os.pipe()
+            err_r, err_w = os.pipe()
+            os.set_blocking(out_r, False)
+            os.set_blocking(err_r, False)
+            self.pipes = (out_r, out_w, err_r, err_w)
+            poller = select.poll()
+            for fd in (out_r, err_r, self.rfd):
+                poller.register(fd, select.POLLIN)
+            self.pipe_poller = poller
+            self.file_actions = [(os.POSIX_SPAWN_DUP2, self.devnull, 0),
+                                 (os.POSIX_SPAWN_DUP2, out_w, 1),
+                                 (os.POSIX_SPAWN_DUP2, err_w, 2)]
+        return self.pipes
+
     def run(self, req):
+        g = req.get
         started_at = utc_now_iso()
+        cpus, nice, no_aslr = g("cpus"), g("nice"), g("no_aslr")
+        conditions = self.conditions(cpus) if g("sample") else None
         extra = {}
-        if req.get("cpus"):
-            extra["cpus"] = ",".join(map(str, req["cpus"]))
-        if req.get("nice") is not None:
-            extra["nice"] = req["nice"]
-        if req.get("no_aslr"):
+        if cpus:
+            extra["cpus"] = ",".join(map(str, cpus))
+        if nice is not None:
+            extra["nice"] = nice
+        if no_aslr:
             extra["aslr"] = "off"
-        base = {"op": "done", "started_at": started_at, "exit_code": None,
-                "wall_ns": None, "rusage": None, "stdout": b"", "stderr": b"", "extra": extra}
-        if req.get("no_aslr") and not self.aslr_control:
-            return dict(base, status="failed", message="cannot turn off address-space "
-                        f"randomization here: personality() refused ({self.aslr_reason})")
-        if req.get("shell_command") is not None:
-            argv = ["/bin/sh", "-c", req["shell_command"]]
-        else:
-            argv = list(req["argv"])
+            if not self.aslr_control:
+                return _result(started_at, extra, "failed", "cannot turn off address-space "
+                               f"randomization here: personality() refused ({self.aslr_reason})",
+                               conditions)
+        shell = g("shell_command")
+        argv = ["/bin/sh", "-c", shell] if shell is not None else list(req["argv"])
         if "env" in req:  # absent: the same environment as the previous run
             self.env = req["env"] or {}
         env = self.env
-        cwd = req.get("cwd") or self.cwd0
+        cwd = g("cwd") or self.cwd0
         try:
             os.chdir(cwd)  # every run: the folder may have been replaced since
         except OSError as e:
-            return dict(base, status="failed",
-                        message=f"cannot change to working directory {cwd!r}: {e.strerror}")
+            return _result(started_at, extra, "failed",
+                           f"cannot change to working directory {cwd!r}: {e.strerror}",
+                           conditions)
         key = (argv[0], env.get("PATH"), cwd)
         path = self.resolved.get(key)
         if path is None:  # a path found before is used again (see the spawn below)
             path, err = _resolve(argv[0], env, cwd)
             if err:
-                return dict(base, status="failed", message=err)
+                return _result(started_at, extra, "failed", err, conditions)
             self.resolved[key] = path
-        cap = int(req.get("capture_bytes", 65536))
-        timeout_s = req.get("timeout_s")
-        grace_s = float(req.get("kill_grace_s", 0.5))
-        linger_s = float(req.get("linger_s", 0.1))
+        cap = int(g("capture_bytes", 65536))
+        timeout_s = g("timeout_s")
         if self.clear_refs is not None:
             try:
                 os.write(self.clear_refs, b"5")
             except OSError:
                 pass
-
         # The output pipes outlive a run when nothing but the child could hold
         # them (see `settle`): making and closing two pipes per run cost more
         # than the rest of the launcher's work between two runs.
-        if self.pipes is None:
-            self.pipes = os.pipe() + os.pipe()
-            os.set_blocking(self.pipes[0], False)
-            os.set_blocking(self.pipes[2], False)
-        out_r, out_w, err_r, err_w = self.pipes
+        out_r, out_w, err_r, err_w = self._pipes()
+        poller = self.pipe_poller
+        bufs = {out_r: bytearray(), err_r: bytearray()}
+        open_pipes = {out_r, err_r}
+        run = {"pid": None, "orphans": []}
+        inflight = g("inflight")
+        slot = self.inflight_slot(inflight) if inflight else None
+        if self.to_close:
+            self.close_run_fds()  # the last run's (nothing reads them any more)
         # Everything the wait needs is made before the spawn, so that only the
         # pidfd is set up between the two clock readings.
-        run = {"pid": None, "orphans": []}
-        bufs = {out_r: bytearray(), err_r: bytearray()}
-        poller = select.poll()
-        for fd in (out_r, err_r, self.rfd):
-            poller.register(fd, select.POLLIN)
-        open_pipes = {out_r, err_r}
         t1 = None
         timed_out = False
         aborted = None
         linger_end = None
+        held = []
+        kids_seen = [None]
 
         def drain(fd):
             try:
@@ -682,34 +708,12 @@ class Launcher:
             if len(b) > cap:
                 del b[:len(b) - cap]
 
-        inflight = req.get("inflight")
-        slot = self.inflight_slot(inflight) if inflight else None
-        if req.get("sample"):
-            base["conditions"] = self.conditions(req.get("cpus"))
-        if self.to_close:
-            self.close_run_fds()  # the last run's (nothing reads them any more)
-        pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
-        if pid is None and self.resolved.pop(key, None) is not None:
-            # The program found for an earlier run is gone or changed: look again.
-            path, err = _resolve(argv[0], env, cwd)
-            if err is None:
-                self.resolved[key] = path
-                pid, t0, err = self.spawn(req, path, argv, env, out_w, err_w)
-        if pid is None:
-            return dict(base, status="failed", message=err)
-        pidfd = os.pidfd_open(pid)
-        poller.register(pidfd, select.POLLIN)
-        if slot is not None:
-            slot[0][:] = (slot[1] % (pid, pid)).encode().ljust(INFLIGHT_SIZE)
         # We hold our own write ends while the child lives: its pipes then
         # never reach end-of-file early, so its exit costs one wake-up (the
         # pidfd) instead of three. Once it has exited they are either kept for
         # the next run (nothing else alive could write to them: drain what is
         # there) or closed, and the pipes read until end of file (a process
         # the run left behind may still hold them) and then given up.
-        held = []
-        kids_seen = [None]
-
         def release():
             if self.pipes is not None:
                 self.pipes = None
@@ -743,8 +747,21 @@ class Launcher:
                             del b[:len(b) - cap]
             open_pipes.clear()
 
+        pid, t0, err = self.spawn(path, argv, env, cpus, nice, no_aslr)
+        if pid is None and self.resolved.pop(key, None) is not None:
+            # The program found for an earlier run is gone or changed: look again.
+            path, err = _resolve(argv[0], env, cwd)
+            if err is None:
+                self.resolved[key] = path
+                pid, t0, err = self.spawn(path, argv, env, cpus, nice, no_aslr)
+        if pid is None:
+            return _result(started_at, extra, "failed", err, conditions)
+        pidfd = os.pidfd_open(pid)
+        poller.register(pidfd, select.POLLIN)
+        if slot is not None:
+            slot[0][:] = (slot[1] % (pid, pid)).encode().ljust(INFLIGHT_SIZE)
         run["pid"] = pid
-        if req.get("notify", True):
+        if g("notify", True):
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
         deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
 
@@ -759,10 +776,10 @@ class Launcher:
             if wait_ns is not None and wait_ns <= 0:
                 # timeout: kill the whole tree, keep the time of the kill's reap
                 timed_out = True
-                self.kill_tree(run, grace_s)
+                self.kill_tree(run, float(g("kill_grace_s", 0.5)))
                 t1 = time.perf_counter_ns()
                 release()
-                linger_end = t1 + int(linger_s * 1e9)
+                linger_end = t1 + int(float(g("linger_s", 0.1)) * 1e9)
                 poller.unregister(pidfd)
                 continue
             events = poller.poll(None if wait_ns is None else max(1, -(-wait_ns // 1_000_000)))
@@ -772,7 +789,7 @@ class Launcher:
                         t1 = time.perf_counter_ns()
                         poller.unregister(pidfd)
                         settle()
-                        linger_end = t1 + int(linger_s * 1e9)
+                        linger_end = t1 + int(float(g("linger_s", 0.1)) * 1e9)
                         break
             for fd, _ev in events:
                 if fd in open_pipes:
@@ -791,18 +808,20 @@ class Launcher:
                         "interrupted by the harness"
                     poller.unregister(self.rfd)
                     if t1 is None:
-                        self.kill_tree(run, grace_s)
+                        self.kill_tree(run, float(g("kill_grace_s", 0.5)))
                         t1 = time.perf_counter_ns()
                         release()
                         poller.unregister(pidfd)
-                        linger_end = t1 + int(linger_s * 1e9)
+                        linger_end = t1 + int(float(g("linger_s", 0.1)) * 1e9)
         if open_pipes:
             release()  # lingered until the time ran out: give these pipes up
+        if aborted is not None and self.pipes is not None:
+            poller.register(self.rfd, select.POLLIN)  # the kept poller watches it again
         if "rusage" not in run:
             _, status, ru = os.wait4(pid, 0)
             run["status_word"], run["rusage"] = status, ru
-        # The pidfd (and pipes given up) are closed once the reply is sent (see
-        # `serve`): nothing reads them any more.
+        # The pidfd (and pipes given up) are closed before the next spawn:
+        # nothing reads them any more.
         self.to_close.append(pidfd)
         # Our own children list is cheap to read; anything the run left
         # behind has an ancestor in it (orphans are re-parented to us), so the
@@ -810,28 +829,33 @@ class Launcher:
         kids = kids_seen[0] if kids_seen[0] is not None else self.own_children()
         if kids is None or kids:
             self.reap_orphans(run)  # also reaps leftovers of earlier runs that died
-        if kids is None or not kids <= self.leftovers:
-            left = [p for p in self.descendants() if p not in self.leftovers]
-            if left:
-                self.leftovers.update(left)
-                extra["leftover_processes"] = len(left)
+            if kids is None or not kids <= self.leftovers:
+                left = [p for p in self.descendants() if p not in self.leftovers]
+                if left:
+                    self.leftovers.update(left)
+                    extra["leftover_processes"] = len(left)
 
         status_word = run["status_word"]
         ru = run["rusage"]
-        usage = [ru.ru_utime, ru.ru_stime, ru.ru_maxrss, ru.ru_minflt, ru.ru_majflt,
+        orphans = run["orphans"]
+        if not orphans:
+            usage = (ru.ru_utime, ru.ru_stime, ru.ru_maxrss, ru.ru_minflt, ru.ru_majflt,
+                     ru.ru_nvcsw, ru.ru_nivcsw, ru.ru_inblock, ru.ru_oublock)
+        else:
+            u = [ru.ru_utime, ru.ru_stime, ru.ru_maxrss, ru.ru_minflt, ru.ru_majflt,
                  ru.ru_nvcsw, ru.ru_nivcsw, ru.ru_inblock, ru.ru_oublock]
-        for o in run["orphans"]:
-            usage[0] += o.ru_utime
-            usage[1] += o.ru_stime
-            usage[2] = max(usage[2], o.ru_maxrss)
-            usage[3] += o.ru_minflt
-            usage[4] += o.ru_majflt
-            usage[5] += o.ru_nvcsw
-            usage[6] += o.ru_nivcsw
-            usage[7] += o.ru_inblock
-            usage[8] += o.ru_oublock
-        if run["orphans"]:
-            extra["orphans_counted"] = len(run["orphans"])
+            for o in orphans:
+                u[0] += o.ru_utime
+                u[1] += o.ru_stime
+                u[2] = max(u[2], o.ru_maxrss)
+                u[3] += o.ru_minflt
+                u[4] += o.ru_majflt
+                u[5] += o.ru_nvcsw
+                u[6] += o.ru_nivcsw
+                u[7] += o.ru_inblock
+                u[8] += o.ru_oublock
+            usage = tuple(u)
+            extra["orphans_counted"] = len(orphans)
         stdout, stderr = bytes(bufs[out_r]), bytes(bufs[err_r])
         if os.WIFSIGNALED(status_word):
             sig = os.WTERMSIG(status_word)
@@ -839,7 +863,7 @@ class Launcher:
             why = f"killed by {_signame(sig)}"
         else:
             exit_code = os.waitstatus_to_exitcode(status_word)
-            why = f"exit code {exit_code}"
+            why = None
         if aborted:
             status, message = "failed", aborted
         elif timed_out:
@@ -850,9 +874,12 @@ class Launcher:
         else:
             status = "failed"
             tail = _tail_text(stderr)
-            message = why + (f": {tail}" if tail else " (nothing on stderr)")
-        return dict(base, status=status, exit_code=exit_code, wall_ns=t1 - t0,
-                    rusage=tuple(usage), stdout=stdout, stderr=stderr, message=message)
+            message = (why or f"exit code {exit_code}") + (f": {tail}" if tail
+                                                           else " (nothing on stderr)")
+        return {"op": "done", "started_at": started_at, "status": status,
+                "exit_code": exit_code, "wall_ns": t1 - t0, "rusage": usage,
+                "stdout": stdout, "stderr": stderr, "extra": extra, "message": message,
+                "conditions": conditions}
 
     def serve(self):
         send(self.wfd, self.hello())
@@ -1049,14 +1076,13 @@ class Launcher:
         if head is None or self.journal_fd is None or self.line_format is None:
             return None
         cond = reply.get("conditions")
-        if not reply["extra"] and cond is not None and self.line_tail is not None \
-                and req.get("fields") == self.tail_fields:
+        last = self.last_conditions
+        if not reply["extra"] and last is not None and cond is last[2] \
+                and self.line_tail is not None and req.get("fields") == self.tail_fields:
             # The usual run: nothing of its own to add, so one format does it all.
-            load, mhz = cond["load_1m"], cond["cpu_mhz"]
             return (head + self.fast_format % (
                 reply["exit_code"], reply["wall_ns"] / 1e9, *reply["rusage"],
-                reply["started_at"], "null" if load is None else repr(float(load)),
-                "null" if mhz is None else repr(float(mhz)))).encode()
+                reply["started_at"], *last[3])).encode()
         parts = [head, self.line_format % (reply["exit_code"], reply["wall_ns"] / 1e9,
                                            *reply["rusage"], reply["started_at"])]
         fields = dict(reply["extra"])

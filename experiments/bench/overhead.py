@@ -6,8 +6,8 @@ the methods alternate and each is compared with the bare loop next to it):
 * **bare**: ``os.posix_spawn`` + ``os.wait4`` in this process, each run timed with
   ``time.perf_counter_ns`` around the two calls (its own per-run measurement);
 * **executor**: `LocalExecutor.execute` one run at a time (launcher process,
-  pipes, bounded capture, pidfd wait, ``on_start`` callback), alternating run
-  by run with bare runs;
+  pipes, bounded capture, pidfd wait; no ``on_start`` callback, as the runner
+  calls it), alternating run by run with bare runs;
 * **runner**: a whole experiment through `benchharness.runner.run_experiment`,
   as ``benchharness run`` does it: its own launcher, plan, results folder, host
   facts, provenance, the journal with group-commit fsync, the in-flight record,
@@ -110,7 +110,7 @@ def executor_loop(ex, n, env):
     c0 = time.process_time() + proc_cpu_s(ex.launcher_pid)
     t_start = time.perf_counter_ns()
     for _ in range(n):
-        walls.append(alt.execute(spec, on_start=lambda pid, pgid: None).wall_s)
+        walls.append(alt.execute(spec).wall_s)
     total = time.perf_counter_ns() - t_start - alt.bare_segments
     cpu = time.process_time() + proc_cpu_s(ex.launcher_pid) - c0 - alt.bare_cpu
     return alt, total / 1e9, walls, cpu
