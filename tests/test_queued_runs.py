@@ -24,6 +24,7 @@ from benchharness.execute.base import RunSpec
 from benchharness.execute.local import LocalExecutor
 from benchharness.experiment import Experiment
 from benchharness.runner import run_experiment
+from executor_wrappers import Counting, OneByOne
 
 PATH = os.environ.get("PATH", "/usr/bin:/bin")
 
@@ -45,35 +46,6 @@ TREE_NOTES = {"orphans_counted", "leftover_processes"}
 MEASURED = TREE_NOTES | {"wall_s", "user_s", "sys_s", "max_rss_kib", "minor_faults", "major_faults",
             "voluntary_switches", "involuntary_switches", "in_blocks", "out_blocks",
             "started_at", "load_1m", "cpu_mhz"}
-
-
-class OneByOne:
-    """The same executor without queued runs (nor the overlap of the next request)."""
-
-    def __init__(self, inner):
-        self.inner = inner
-        self.records_inflight = inner.records_inflight
-
-    def execute(self, spec, on_start=None):
-        return self.inner.execute(spec, on_start=on_start)
-
-    def close(self):
-        pass
-
-
-class Counting:
-    """The executor, counting the streams opened on it."""
-
-    def __init__(self, inner):
-        self.inner = inner
-        self.streams = 0
-
-    def __getattr__(self, name):
-        return getattr(self.inner, name)
-
-    def open_stream(self, *a, **k):
-        self.streams += 1
-        return self.inner.open_stream(*a, **k)
 
 
 def _lines(folder: Path) -> list[bytes]:

@@ -2,8 +2,9 @@
 
 With an executor that supports ``while_running`` (the local launcher), the next
 run's spec and request are prepared, and the current run's conditions sampled,
-while a run executes. These tests compare that path with the plain path (the
-same executor behind a wrapper that hides the capability) on real processes.
+while a run executes (when runs are not queued: tests/test_queued_runs.py).
+These tests compare that path with the plain path (the same executor behind a
+wrapper that hides the capability) on real processes.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from benchharness.execute.base import RunSpec
 from benchharness.execute.local import LocalExecutor
 from benchharness.experiment import Experiment
 from benchharness.runner import run_experiment
+from executor_wrappers import NoQueue, OneByOne
 
 TEXT = """experiment: overlap
 command: [sh, -c, 'echo "$MODE" >&2; test "$MODE" != bad']
@@ -33,20 +35,6 @@ host_check: off
 """
 
 
-class Plain:
-    """The same executor without the overlap capability."""
-
-    def __init__(self, inner):
-        self.inner = inner
-        self.records_inflight = inner.records_inflight
-
-    def execute(self, spec, on_start=None):
-        return self.inner.execute(spec, on_start=on_start)
-
-    def close(self):
-        pass
-
-
 def _journal(folder):
     with open(folder / "runs.jsonl") as fh:
         return [json.loads(line) for line in fh]
@@ -55,8 +43,8 @@ def _journal(folder):
 def test_overlapped_and_plain_paths_record_the_same_runs(tmp_path):
     exp = Experiment.from_text(TEXT)
     with LocalExecutor() as ex:
-        a = run_experiment(exp, out=tmp_path / "a", executor=ex)
-        b = run_experiment(exp, out=tmp_path / "b", executor=Plain(ex))
+        a = run_experiment(exp, out=tmp_path / "a", executor=NoQueue(ex))
+        b = run_experiment(exp, out=tmp_path / "b", executor=OneByOne(ex))
     ra, rb = _journal(a.folder), _journal(b.folder)
     assert len(ra) == len(rb) == 3 * 3 + 3
     skip = {"wall_s", "user_s", "sys_s", "max_rss_kib", "minor_faults", "major_faults",
