@@ -37,7 +37,8 @@ RESERVED_COLUMNS = frozenset({
     "sys_s", "max_rss_kib", "minor_faults", "major_faults", "voluntary_switches",
     "involuntary_switches", "in_blocks", "out_blocks", "started_at", "message", "host",
     "worker", "host_position", "warmup", "levels", "metrics", "load_1m", "cpu_mhz",
-    "pad_env_bytes", "aslr", "steady_s", "steady_state", "session", "cell", "pgid", "pid",
+    "pad_env_bytes", "aslr", "steady_s", "steady_state", "gate_role", "session", "cell",
+    "pgid", "pid",
 })
 
 #: Keys of the core experiment file.

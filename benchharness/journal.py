@@ -49,7 +49,7 @@ LEAD_COLUMNS = ("run", "position", "block", "replicate")
 CORE_COLUMNS = ("status", "exit_code", *USAGE_FIELDS, "started_at", "message")
 #: Columns later capabilities add, in the order they appear when present.
 LATER_COLUMNS = ("host", "worker", "host_position", "load_1m", "cpu_mhz", "pad_env_bytes",
-                 "aslr", "steady_s", "steady_state")
+                 "aslr", "steady_s", "steady_state", "gate_role")
 
 FILES = ("experiment.yaml", "plan.csv", "runs.jsonl", "runs.csv", "host.json", "session.json")
 

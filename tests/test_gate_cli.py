@@ -174,6 +174,15 @@ def test_throughput_metric_from_metrics_section(cli, tmp_path):
 
     rows = list(csv.DictReader(open(tmp_path / "res" / "runs.csv")))
     assert all(float(row["rate_ops"]) > 0 for row in rows)
+    # each row says which build it measured
+    assert {row["gate_role"] for row in rows} == {"baseline", "candidate"}
+    # `analyze` on a gate folder analyses what the gate compared, unless told otherwise
+    an = cli("analyze", tmp_path / "res", "--json", "-")
+    assert an.returncode == 0, an.stderr
+    assert json.loads(an.stdout)["response"] == "rate_ops"
+    assert "the response this gate compared" in an.stderr
+    an = cli("analyze", tmp_path / "res", "--json", "-", "--response", "wall_s")
+    assert json.loads(an.stdout)["response"] == "wall_s"
     # `report` works on a gate folder
     rep = cli("report", tmp_path / "res")
     assert rep.returncode == 0, rep.stderr

@@ -14,8 +14,9 @@ def add_parser(sub) -> None:
                     "intervals and adjusted comparisons. Only runs with status ok are analysed; "
                     "the others are counted per cell.")
     p.add_argument("source", help="results folder or CSV file")
-    p.add_argument("--response", default="wall_s", metavar="COL",
-                   help="column to analyse (default wall_s)")
+    p.add_argument("--response", default=None, metavar="COL",
+                   help="column to analyse (default wall_s; for a gate's folder, the response "
+                        "the gate compared)")
     p.add_argument("--factors", metavar="A,B", default=None,
                    help="comma-separated factor columns (default: the experiment's factors; "
                         "required for a CSV)")
@@ -62,6 +63,13 @@ def main(args) -> int:
     from benchharness.journal import is_results_folder, load_results
 
     folder_res = load_results(args.source) if is_results_folder(args.source) else None
+    if args.response is None:
+        args.response = gate_response(args.source) if folder_res is not None else None
+        if args.response is not None:
+            print(f"analysing {args.response}, the response this gate compared "
+                  "(--response to choose another)", file=sys.stderr)
+        else:
+            args.response = "wall_s"
     model = args.model
     if model is None:
         model = "full"
@@ -101,3 +109,16 @@ def main(args) -> int:
                              ) from None
         print(f"\nanalysis written to {args.json}")
     return 0
+
+
+def gate_response(folder) -> str | None:
+    """The response a gate's results folder compared (its ``gate.json``), or None."""
+    import json
+    from pathlib import Path
+
+    try:
+        data = json.loads((Path(folder) / "gate.json").read_text())
+    except (OSError, ValueError):
+        return None
+    r = data.get("response") if isinstance(data, dict) else None
+    return r if isinstance(r, str) and r else None
