@@ -162,15 +162,28 @@ def as_bool(node: yaml.Node, what: str) -> bool:
 
 
 _DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?|\.\d+)\s*(ms|s|m|h)?\s*$")
+_DURATION_PART = re.compile(r"\s*(\d+(?:\.\d+)?|\.\d+)\s*(ms|h|m|s)")
 _UNIT_S = {"ms": 0.001, "s": 1.0, "m": 60.0, "h": 3600.0, None: 1.0}
+_UNIT_RANK = {"h": 0, "m": 1, "s": 2, "ms": 3}
 
 
 def parse_duration_s(text: str) -> float | None:
-    """``"90s"`` → 90.0, ``"5m"`` → 300.0, ``"250ms"`` → 0.25, ``"2"`` → 2.0; None if malformed."""
+    """``"90s"`` → 90.0, ``"5m"`` → 300.0, ``"250ms"`` → 0.25, ``"2"`` → 2.0,
+    ``"1h30m"`` → 5400.0, ``"2m 30s"`` → 150.0 (units from largest to smallest, each
+    once); None if malformed."""
     m = _DURATION.match(text)
-    if not m:
-        return None
-    return float(m.group(1)) * _UNIT_S[m.group(2)]
+    if m:
+        return float(m.group(1)) * _UNIT_S[m.group(2)]
+    t = text.strip()
+    total, pos, rank = 0.0, 0, -1
+    while pos < len(t):
+        part = _DURATION_PART.match(t, pos)
+        if part is None or _UNIT_RANK[part.group(2)] <= rank:
+            return None
+        rank = _UNIT_RANK[part.group(2)]
+        total += float(part.group(1)) * _UNIT_S[part.group(2)]
+        pos = part.end()
+    return total if rank >= 0 else None
 
 
 def as_duration_s(node: yaml.Node, what: str) -> float:
@@ -178,7 +191,7 @@ def as_duration_s(node: yaml.Node, what: str) -> float:
     value = parse_duration_s(text)
     if value is None or value <= 0:
         raise node_error(node, f"{what} {text!r} is not a duration; write a positive number "
-                               "with a unit, like 90s, 5m, 1h or 250ms")
+                               "with a unit, like 90s, 5m, 1h30m or 250ms")
     return value
 
 

@@ -126,6 +126,13 @@ def test_bad_duration():
     assert parse(GOOD + "timeout: 90s\n").timeout_s == 90
     assert parse(GOOD + "timeout: 5m\n").timeout_s == 300
     assert parse(GOOD + "timeout: 250ms\n").timeout_s == 0.25
+    # several units, largest first, each once (common practice for durations)
+    assert parse(GOOD + "timeout: 1h30m\n").timeout_s == 5400
+    assert parse(GOOD + "timeout: 2m 30s\n").timeout_s == 150
+    assert parse(GOOD + "timeout: 1m0.5s\n").timeout_s == 60.5
+    for bad in ("30m1h", "1m1m", "1h30", "h", "1 h x"):
+        e = error_of(GOOD + f"timeout: {bad}\n")
+        assert e.line == 8 and "not a duration" in str(e) and "1h30m" in str(e), bad
 
 
 def test_empty_command():

@@ -78,7 +78,7 @@ def _timing(args, exp, plan) -> dict:
     if args.budget:
         b = parse_duration_s(args.budget)
         if b is None or b <= 0:
-            raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m")
+            raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m or 1h30m")
         out["time_estimate"]["budget_s"] = b
         out["time_estimate"]["replicates_in_budget"] = replicates_in_budget(b, per_rep,
                                                                             est.warmup_s)

@@ -98,8 +98,8 @@ def _budget(args, exp):
         return None, None
     budget_s = parse_duration_s(args.budget)
     if budget_s is None or budget_s <= 0:
-        raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m, 2h or "
-                         f"90s")
+        raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m, 2h, "
+                         f"1h30m or 90s")
     estimate_s = None
     if args.pilot:
         from benchharness.design import build_plan
