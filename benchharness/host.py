@@ -513,9 +513,11 @@ def check_host(facts: dict | None = None, busy_interval_s: float = 0.1,
 
 
 def sample_run_conditions(cpus: tuple[int, ...] | None = None) -> dict:
-    """Cheap per-run sample: ``{"load_1m": float|None, "cpu_mhz": float|None}``."""
-    la = load_average()
-    return {"load_1m": la[0] if la else None, "cpu_mhz": cpu_mhz(cpus)}
+    """Cheap per-run sample: ``{"load_1m": float|None, "cpu_mhz": float|None}`` (the
+    launcher's own readers, so runs sampled there and here agree)."""
+    from benchharness.execute.launcher import load_1m
+
+    return {"load_1m": load_1m(), "cpu_mhz": cpu_mhz(cpus)}
 
 
 def facts_at_end(start: dict) -> dict:

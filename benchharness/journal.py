@@ -145,9 +145,8 @@ class Journal:
     def __init__(self, folder: Path, sync_interval_s: float = 1.0):
         self.path = folder / "runs.jsonl"
         self.fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
-        self._dirty = False
-        # The launcher appends the lines of queued runs itself: the size tells
-        # the syncer that there is something to fsync.
+        # What was fsynced, by size: the harness and, for queued runs, the
+        # launcher append to this file; a larger size means something to sync.
         self._synced_size = os.fstat(self.fd).st_size
         self._lock = threading.Lock()
         self._stop = threading.Event()
@@ -162,7 +161,6 @@ class Journal:
         n = os.write(self.fd, line)
         while n < len(line):  # pragma: no cover - only on short writes (full disk, signals)
             n += os.write(self.fd, line[n:])
-        self._dirty = True
 
     def mark_inflight(self, run: int, pid: int, pgid: int) -> None:
         """Record the run now executing (overwritten in place; read by --resume)."""
@@ -181,9 +179,8 @@ class Journal:
             size = os.fstat(self.fd).st_size
         except OSError:  # pragma: no cover - closed under us at exit
             return
-        if self._dirty or size != self._synced_size:
+        if size != self._synced_size:
             with self._lock:
-                self._dirty = False
                 try:
                     os.fsync(self.fd)
                     self._synced_size = size
@@ -193,8 +190,11 @@ class Journal:
     def close(self) -> None:
         self._stop.set()
         self._thread.join(timeout=5)
-        self._dirty = True
-        self.sync()
+        with self._lock:
+            try:
+                os.fsync(self.fd)
+            except OSError:  # pragma: no cover
+                pass
         os.close(self.fd)
         os.close(self.inflight_fd)
 
@@ -469,6 +469,76 @@ class RunsCsvWriter:
             self.tmp.unlink()
         except FileNotFoundError:
             pass
+
+
+class JournalMirror:
+    """The journal lines a stream added, as records, and as the text they should be.
+
+    At the end the journal's new bytes are compared with that text (a read and
+    a comparison, far cheaper than parsing the journal again); when they are
+    the same the records serve the export of runs.csv. Kept only up to
+    ``limit`` runs, so a very long experiment does not hold them all.
+    """
+
+    def __init__(self, path: Path, limit: int, factors=(), prior=()):
+        self.path = path
+        self.start = os.stat(path).st_size
+        self.records: list | None = []
+        self.lines: list = []
+        self.limit = limit
+        self.factors = list(factors)
+        self.prior = list(prior)
+        self.csv: RunsCsvWriter | None = None
+
+    def add(self, rec: dict) -> None:
+        if self.records is not None:
+            if len(self.records) >= self.limit:
+                self.drop()
+                return
+            self.records.append(rec)
+            self.lines.append(encode_record(rec))
+            try:
+                if self.csv is None:
+                    # runs.csv grows with the runs: its columns as the first run
+                    # shows them (checked again at the end)
+                    self.csv = RunsCsvWriter(self.path.parent, self.factors,
+                                               runs_columns(self.factors, [*self.prior, rec]))
+                    self.csv.add_all(self.prior)
+                self.csv.add(rec)
+            except OSError:
+                self.drop()
+
+    def drop(self) -> None:
+        self.records = self.lines = None
+        if self.csv is not None:
+            self.csv.discard()
+            self.csv = None
+
+    def commit_csv(self, records: list) -> bool:
+        """Put the runs.csv written along in place if it is what an export would write."""
+        csv_w, self.csv = self.csv, None
+        if csv_w is None:
+            return False
+        if (csv_w.cols == runs_columns(self.factors, records) and in_order(records)):
+            try:
+                csv_w.commit()
+                return True
+            except OSError:
+                pass
+        csv_w.discard()
+        return False
+
+    def verified(self) -> list | None:
+        """The records, if the journal holds exactly their lines after ``start``."""
+        if self.records is None:
+            return None
+        try:
+            with open(self.path, "rb") as fh:
+                fh.seek(self.start)
+                data = fh.read()
+        except OSError:
+            return None
+        return self.records if data == b"".join(self.lines) else None
 
 
 def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapping]) -> Path:

@@ -450,81 +450,12 @@ def _outcome(pr: Mapping, m: Measurement) -> tuple[str, str]:
     return status, message
 
 
-class _Mirror:
-    """The journal lines a stream added, as records, and as the text they should be.
-
-    At the end the journal's new bytes are compared with that text (a read and
-    a comparison, far cheaper than parsing the journal again); when they are
-    the same the records serve the export of runs.csv. Kept only up to
-    `MIRROR_LIMIT` runs, so a very long experiment does not hold them all.
-    """
-
-    def __init__(self, path: Path, limit: int, factors=(), prior=()):
-        self.path = path
-        self.start = os.stat(path).st_size
-        self.records: list | None = []
-        self.lines: list = []
-        self.limit = limit
-        self.factors = list(factors)
-        self.prior = list(prior)
-        self.csv: J.RunsCsvWriter | None = None
-
-    def add(self, rec: dict) -> None:
-        if self.records is not None:
-            if len(self.records) >= self.limit:
-                self.drop()
-                return
-            self.records.append(rec)
-            self.lines.append(J.encode_record(rec))
-            try:
-                if self.csv is None:
-                    # runs.csv grows with the runs: its columns as the first run
-                    # shows them (checked again at the end)
-                    self.csv = J.RunsCsvWriter(self.path.parent, self.factors,
-                                               J.runs_columns(self.factors, [*self.prior, rec]))
-                    self.csv.add_all(self.prior)
-                self.csv.add(rec)
-            except OSError:
-                self.drop()
-
-    def drop(self) -> None:
-        self.records = self.lines = None
-        if self.csv is not None:
-            self.csv.discard()
-            self.csv = None
-
-    def commit_csv(self, records: list) -> bool:
-        """Put the runs.csv written along in place if it is what an export would write."""
-        csv_w, self.csv = self.csv, None
-        if csv_w is None:
-            return False
-        if (csv_w.cols == J.runs_columns(self.factors, records) and J.in_order(records)):
-            try:
-                csv_w.commit()
-                return True
-            except OSError:
-                pass
-        csv_w.discard()
-        return False
-
-    def verified(self) -> list | None:
-        """The records, if the journal holds exactly their lines after ``start``."""
-        if self.records is None:
-            return None
-        try:
-            with open(self.path, "rb") as fh:
-                fh.seek(self.start)
-                data = fh.read()
-        except OSError:
-            return None
-        return self.records if data == b"".join(self.lines) else None
-
-
+#: Runs up to which the records of queued runs are kept for runs.csv (`JournalMirror`).
 MIRROR_LIMIT = 200_000
 
 
 def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflight_path,
-                 fields, counts: dict, progress, on_tick, mirror: _Mirror | None = None
+                 fields, counts: dict, progress, on_tick, mirror: J.JournalMirror | None = None
                  ) -> None:
     """Run ``todo`` as queued runs: the launcher runs them back to back and
     journals each run that ends ok itself; the harness records the others
@@ -700,14 +631,14 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
 
     try:
         if streamed:
-            todo_iter = ()
-            mirror = _Mirror(jr.path, MIRROR_LIMIT, exp.factor_names, prior)
+            one_by_one = ()  # all of them queued
+            mirror = J.JournalMirror(jr.path, MIRROR_LIMIT, exp.factor_names, prior)
             _stream_runs(executor, jr, todo, cells, timeout_s, inflight_path,
                          {"aslr": aslr_value} if aslr_value is not None else None,
                          counts, progress, on_tick, mirror)
         else:
-            todo_iter = todo
-        for index, pr in enumerate(todo_iter):
+            one_by_one = todo
+        for index, pr in enumerate(one_by_one):
             if pending_host and time.monotonic() >= host_due:
                 pending_host = False
                 host_warnings_now()

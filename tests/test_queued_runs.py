@@ -19,7 +19,6 @@ from pathlib import Path
 import pytest
 
 from benchharness import journal as J
-from benchharness import runner as R
 from benchharness.execute.base import RunSpec
 from benchharness.execute.local import LocalExecutor
 from benchharness.experiment import Experiment
@@ -99,7 +98,7 @@ def test_end_of_run_check_falls_back_to_the_journal(tmp_path):
     # holds exactly their lines; anything else and the journal is read again
     path = tmp_path / "runs.jsonl"
     path.write_bytes(b"")
-    m = R._Mirror(path, limit=10, factors=["k"])
+    m = J.JournalMirror(path, limit=10, factors=["k"])
     rec = {"run": 0, "position": 0, "block": 0, "replicate": 1, "levels": {"k": "a"},
            "status": "ok", "exit_code": 0, "wall_s": 0.5, "started_at": "", "message": ""}
     m.add(rec)
