@@ -39,7 +39,8 @@ def test_compare_agrees_with_pooled_ols_with_session_factor(tmp_path):
     import statsmodels.formula.api as smf
 
     a, b = _pair(tmp_path, ratios={("lzma", "9"): 1.2, ("zstd", "1"): 0.9}, n_b=5)
-    res = compare_folders(a, b, tolerance=0.05)
+    res = compare_folders(a, b, tolerance=0.05, adjust="none")
+    assert res.adjustment == "none"
     pooled, factors, *_ = pooled_table(a, b)
     df = pooled.assign(cell=pooled["codec"] + "/" + pooled["level"], ly=np.log(pooled["y"]))
     df["group"] = df["cell"] + "|" + df["session"]
@@ -149,7 +150,7 @@ def test_compare_agrees_with_benchharness_analysis_of_pooled_folders(tmp_path):
     # the analysis gives its declared family Bonferroni intervals: so does compare
     # with simultaneous=True (and, the same, per-cell level 1 - 0.05/m)
     ours = compare_folders(a, b, simultaneous=True)
-    same = compare_folders(a, b, conf_level=1 - 0.05 / m)
+    same = compare_folders(a, b, conf_level=1 - 0.05 / m, adjust="none")
     assert [c.low for c in ours.cells] == pytest.approx([c.low for c in same.cells])
     by = {tuple(c.cell[f] for f in factors): c for c in ours.cells}
     for r in rows:
@@ -158,3 +159,115 @@ def test_compare_agrees_with_benchharness_analysis_of_pooled_folders(tmp_path):
         assert c.low == pytest.approx(r["lower"], rel=1e-9)
         assert c.high == pytest.approx(r["upper"], rel=1e-9)
         assert c.p_value == pytest.approx(r["p"], rel=1e-6)
+
+
+# ------------------------------------------------- adjustment across cells
+
+CELLS16 = {"codec": ["zlib", "lzma", "zstd", "brotli"], "input": ["logs", "json", "csv", "bin"]}
+
+
+def _pooled16(rng, n=5, noise=0.05, ratios=None):
+    """A pooled table (as `pooled_table` returns) of two folders of one program, 16 cells."""
+    import itertools
+
+    import pandas as pd
+
+    ratios = ratios or {}
+    rows = []
+    for k, cell in enumerate(itertools.product(*CELLS16.values())):
+        base = 0.5 + 0.25 * k
+        for session in ("A", "B"):
+            r = ratios.get(cell, 1.0) if session == "B" else 1.0
+            for y in base * r * np.exp(rng.normal(0, noise, n)):
+                rows.append({"codec": cell[0], "input": cell[1], "session": session, "y": y,
+                             "_cell": "\x1f".join(cell)})
+    return pd.DataFrame(rows)
+
+
+def _family_flags(n_pairs, seed, tolerance, adjust):
+    from benchharness.history.compare import compare_pooled
+
+    rng = np.random.default_rng(seed)
+    flagged = 0
+    for _ in range(n_pairs):
+        *_, cells = compare_pooled(_pooled16(rng), list(CELLS16), tolerance=tolerance,
+                                   adjust=adjust)
+        flagged += any(c.verdict in ("higher", "lower") for c in cells)
+    return flagged
+
+
+def test_sidak_flags_match_statsmodels_adjusted_p_values(tmp_path):
+    # reference: statsmodels multipletests(method="sidak") adjusts p-values as
+    # 1 - (1 - p)^m; at tolerance 0 a cell is flagged exactly when its adjusted p < 0.05
+    from statsmodels.stats.multitest import multipletests
+
+    from benchharness.history.compare import compare_pooled, per_cell_level
+
+    assert per_cell_level(0.95, 16, "sidak") == pytest.approx(0.95 ** (1 / 16))
+    assert per_cell_level(0.95, 16, "bonferroni") == pytest.approx(1 - 0.05 / 16)
+    rng = np.random.default_rng(11)
+    pooled = _pooled16(rng, ratios={("lzma", "json"): 1.2, ("zstd", "bin"): 1.05,
+                                    ("zlib", "csv"): 0.85})
+    *_, cells = compare_pooled(pooled, list(CELLS16), tolerance=0.0, adjust="sidak")
+    reject, p_adj, *_ = multipletests([c.p_value for c in cells], alpha=0.05, method="sidak")
+    flagged = [c.verdict in ("higher", "lower") for c in cells]
+    assert flagged == list(reject)
+    assert 0 < sum(flagged) < 16       # the check has both outcomes in it
+
+
+def test_same_program_pairs_flag_nothing_at_the_stated_rate():
+    # planted truth: 200 pairs of folders of one program (16 cells, 5 runs each, 5 % noise);
+    # family-wise: a pair counts once if any of its 16 cells is flagged
+    from scipy import stats
+
+    n = 200
+    strict = _family_flags(n, seed=2024, tolerance=0.0, adjust="sidak")
+    default = _family_flags(n, seed=2025, tolerance=0.05, adjust="sidak")
+    unadjusted = _family_flags(n, seed=2024, tolerance=0.0, adjust="none")
+    # one-sided binomial test against the stated 5 % (scipy): not significantly above
+    assert stats.binomtest(strict, n, 0.05, alternative="greater").pvalue > 0.01, strict
+    assert default <= strict
+    # per-cell intervals would flag one pair in two (1 - 0.95^16 = 0.56): the
+    # adjustment is what holds the rate
+    assert unadjusted / n > 0.35, unadjusted
+
+
+@pytest.mark.slow
+def test_same_program_pairs_flag_nothing_at_the_stated_rate_long():
+    # the figures in docs/history.md (4,000 pairs per row)
+    n = 4000
+    for tol, seed in ((0.0, 7), (0.05, 8)):
+        flags = _family_flags(n, seed=seed, tolerance=tol, adjust="sidak")
+        assert flags / n <= 0.05, (tol, flags / n)
+
+
+def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
+    import itertools
+
+    rng = np.random.default_rng(5)
+    base = {c: 0.5 + 0.25 * k for k, c in enumerate(itertools.product(*CELLS16.values()))}
+
+    def values(ratio_cell=None):
+        return {c: list(b * (1.3 if c == ratio_cell else 1.0) * np.exp(rng.normal(0, 0.05, 5)))
+                for c, b in base.items()}
+
+    a = write_folder(tmp_path / "A", "archive-codecs", CELLS16, values())
+    same = write_folder(tmp_path / "B", "archive-codecs", CELLS16, values())
+    slower = write_folder(tmp_path / "C", "archive-codecs", CELLS16, values(("zstd", "csv")))
+    r = cli("compare", a, same, "--json", tmp_path / "same.json")
+    assert r.returncode == 0, r.stderr
+    assert "Sidak" in r.stdout and "all 16 cells together at 95%" in r.stdout
+    assert "slower (beyond" not in r.stdout and "faster (beyond" not in r.stdout
+    data = json.loads((tmp_path / "same.json").read_text())
+    assert data["interval_adjustment"] == "sidak"
+    assert data["per_cell_conf_level"] == pytest.approx(0.95 ** (1 / 16))
+    r = cli("compare", a, slower, "--json", tmp_path / "slow.json")
+    assert r.returncode == 0, r.stderr
+    cells = json.loads((tmp_path / "slow.json").read_text())["cells"]
+    flagged = [c["cell"] for c in cells if c["verdict"] != "within" and c["verdict"] != "unclear"]
+    assert flagged == [{"codec": "zstd", "input": "csv"}]
+    assert [c["wording"] for c in cells if c["cell"] == flagged[0]] == ["slower (beyond 5%)"]
+    r = cli("compare", a, same, "--adjust", "none")
+    assert r.returncode == 0 and "per cell" in r.stdout and "not adjusted" in r.stdout
+    r = cli("compare", a, same, "--adjust", "holm")
+    assert r.returncode == 2 and "Traceback" not in r.stderr

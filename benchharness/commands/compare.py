@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import json
 
 
@@ -20,8 +21,11 @@ def add_parser(sub) -> None:
                    help="response column (default wall_s)")
     p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL",
                    help="confidence level of the intervals (default 0.95)")
-    p.add_argument("--simultaneous", action="store_true",
-                   help="Bonferroni intervals that hold for all cells together")
+    p.add_argument("--adjust", choices=("sidak", "bonferroni", "none"), default=None,
+                   help="how the intervals account for the number of cells: sidak "
+                        "(default) and bonferroni hold for all cells together at the "
+                        "confidence level; none gives per-cell intervals")
+    p.add_argument("--simultaneous", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--json", metavar="FILE", help="also write the comparison as JSON")
     p.set_defaults(func=main)
 
@@ -46,8 +50,12 @@ def main(args) -> int:
     tol = parse_fraction(args.tolerance, "--tolerance")
     if not (0 < args.confidence < 1):
         raise UsageError(f"--confidence {args.confidence}: give a level between 0 and 1")
+    if args.simultaneous and args.adjust not in (None, "bonferroni"):
+        raise UsageError(f"--simultaneous (Bonferroni) and --adjust {args.adjust} disagree; "
+                         "give only --adjust")
+    adjust = args.adjust or ("bonferroni" if args.simultaneous else "sidak")
     result = compare_folders(args.a, args.b, response=args.response, tolerance=tol,
-                             conf_level=args.confidence, simultaneous=args.simultaneous)
+                             conf_level=args.confidence, adjust=adjust)
     print_comparison(result)
     if args.json:
         from benchharness.commands.history import write_text
@@ -73,7 +81,8 @@ def print_comparison(result) -> None:
         table.add_column(n)
     for col in ("n A/B", "A", "B", "B/A" if ratio else "B - A",
                 f"{result.conf_level * 100:g}% interval"
-                + (" (all cells)" if result.adjustment == "bonferroni" else ""), "verdict"):
+                + (" (per cell)" if result.adjustment == "none" else " (all cells)"),
+                "verdict"):
         if col == "verdict":
             table.add_column(col, justify="left", overflow="fold")
         else:
@@ -89,6 +98,7 @@ def print_comparison(result) -> None:
                   f"{result.response}. Verdicts: beyond {tol} = the whole interval is outside "
                   f"the tolerance band; same within {tol} = the whole interval is inside it; "
                   "unclear = the interval crosses the band's edge.", highlight=False)
+    console.print(result.adjustment_sentence(), highlight=False)
     if result.residual_sd is not None:
         noise = (f"{result.residual_sd * 100:.1f}% (SD of ln {result.response})" if ratio
                  else f"{result.residual_sd:.4g}")

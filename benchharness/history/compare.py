@@ -12,6 +12,11 @@ A verdict compares the interval with a tolerance band [1/(1+tol), 1+tol]:
 entirely above it -> B higher (slower, for times), entirely below -> B lower,
 entirely inside -> the same within tolerance, otherwise unclear.
 
+The intervals are adjusted for the number of cells by default (Sidak 1967), so
+they hold for all cells together: comparing two folders of the same program flags
+a difference in some cell with probability at most ``1 - conf_level``, however many
+cells there are. Per-cell intervals are available on request.
+
 Two folders are two sessions: whatever differed in the machine between them
 (load, temperature, frequency, other tenants) is mixed into every ratio. The
 result always carries that warning and points to `benchharness gate`, which
@@ -58,10 +63,27 @@ class Comparison:
     residual_df: int
     residual_sd: float | None
     cells: tuple[CellComparison, ...]
-    adjustment: str = "none"       # none | bonferroni
+    adjustment: str = "sidak"      # sidak | bonferroni | none
     only_in_a: tuple[dict, ...] = ()
     only_in_b: tuple[dict, ...] = ()
     warnings: tuple[str, ...] = field(default=())
+
+    @property
+    def per_cell_level(self) -> float:
+        return per_cell_level(self.conf_level, len(self.cells), self.adjustment)
+
+    def adjustment_sentence(self) -> str:
+        """One line saying how the intervals hold, for the output."""
+        m = len(self.cells)
+        lvl = f"{self.conf_level * 100:g}%"
+        if self.adjustment == "none":
+            return (f"Intervals are per cell ({lvl} each), not adjusted for the {m} cells: "
+                    "with many cells some miss by chance, so a flagged cell may be noise.")
+        name = {"sidak": "Sidak", "bonferroni": "Bonferroni"}[self.adjustment]
+        return (f"Intervals hold for all {m} cells together at {lvl} ({name} adjustment: "
+                f"each cell at {self.per_cell_level * 100:.4g}%); two folders of the same "
+                f"program flag some cell with probability at most "
+                f"{(1 - self.conf_level) * 100:g}%.")
 
     def to_json_dict(self) -> dict:
         return {
@@ -69,6 +91,7 @@ class Comparison:
             "estimate": "ratio_b_over_a" if self.scale == "log" else "difference_b_minus_a",
             "tolerance": self.tolerance, "conf_level": self.conf_level,
             "interval_adjustment": self.adjustment,
+            "per_cell_conf_level": self.per_cell_level,
             "residual_df": self.residual_df, "residual_sd": self.residual_sd,
             "cells": [{"cell": c.cell, "n_a": c.n_a, "n_b": c.n_b, "center_a": c.center_a,
                        "center_b": c.center_b, "estimate": c.estimate, "low": c.low,
@@ -117,26 +140,41 @@ def pooled_table(folder_a, folder_b, response: str = "wall_s"):
             da, db)
 
 
-def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: float = 0.05,
-                    conf_level: float = 0.95, simultaneous: bool = False) -> Comparison:
-    """Compare two results folders cell by cell (see the module docstring).
+ADJUSTMENTS = ("sidak", "bonferroni", "none")
 
-    ``simultaneous``: Bonferroni intervals (Dunn 1961), each at level
-    ``1 - (1 - conf_level)/m`` for m shared cells, so all m hold together with
-    probability at least ``conf_level``.
+
+def per_cell_level(conf_level: float, m: int, adjust: str = "sidak") -> float:
+    """Confidence level of each cell's interval so the family of ``m`` has ``conf_level``.
+
+    ``sidak``: ``conf_level ** (1/m)`` (Sidak 1967, "Rectangular confidence regions for
+    the means of multivariate normal distributions", JASA 62:626-633: two-sided t
+    intervals that share one pooled variance estimate cover together with probability
+    at least the product of their levels). ``bonferroni``: ``1 - (1 - conf_level)/m``
+    (Dunn 1961), slightly wider. ``none``: ``conf_level``, per cell.
+    """
+    if adjust not in ADJUSTMENTS:
+        raise DataError(f"interval adjustment {adjust!r}: choose one of "
+                        f"{', '.join(ADJUSTMENTS)}")
+    m = max(int(m), 1)
+    if adjust == "sidak":
+        return conf_level ** (1.0 / m)
+    if adjust == "bonferroni":
+        return 1 - (1 - conf_level) / m
+    return conf_level
+
+
+def compare_pooled(pooled, factors, response: str = "wall_s", tolerance: float = 0.05,
+                   conf_level: float = 0.95, adjust: str = "sidak"):
+    """The per-cell comparisons of a `pooled_table` (columns factors, session, y, _cell).
+
+    Returns ``(log_scale, residual df, residual SD or None, [CellComparison])``, cells in
+    the order they first appear.
     """
     import numpy as np
     from scipy import stats
 
-    from benchharness.history.fingerprint import host_fingerprint
     from benchharness.history.trends import lower_is_better
 
-    if not (0 <= tolerance < 1):
-        raise DataError(f"tolerance {tolerance!r} must be a fraction in [0, 1), e.g. 5%")
-    pooled, factors, only_a, only_b, da, db = pooled_table(folder_a, folder_b, response)
-    if pooled.empty:
-        raise DataError(f"{da.path} and {db.path} share no cell with timed runs of "
-                        f"`{response}`; nothing to compare")
     log_scale = bool((pooled["y"] > 0).all())
     pooled = pooled.assign(x=np.log(pooled["y"]) if log_scale else pooled["y"])
     groups = pooled.groupby(["_cell", "session"], sort=False)["x"]
@@ -146,7 +184,7 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
     df = int(len(pooled) - len(means))
     s = math.sqrt(ss / df) if df > 0 else None
     m_cells = len(means) // 2
-    per_cell = 1 - (1 - conf_level) / m_cells if simultaneous else conf_level
+    per_cell = per_cell_level(conf_level, m_cells, adjust)
     tq = float(stats.t.ppf(0.5 + per_cell / 2, df)) if df > 0 else math.nan
     band_hi, band_lo = 1 + tolerance, 1 / (1 + tolerance)
     low_better = lower_is_better(response)
@@ -192,6 +230,35 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
         out.append(CellComparison(cell=cell, n_a=na, n_b=nb, center_a=back(ma),
                                   center_b=back(mb), estimate=est, low=elo, high=ehi,
                                   p_value=p, verdict=verdict, wording=wording))
+    return log_scale, df, s, out
+
+
+def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: float = 0.05,
+                    conf_level: float = 0.95, simultaneous: bool = False,
+                    adjust: str | None = None) -> Comparison:
+    """Compare two results folders cell by cell (see the module docstring).
+
+    ``adjust`` (default ``sidak``): how each interval is widened for the number m of
+    shared cells so that all m hold together with probability at least
+    ``conf_level`` (`per_cell_level`). Verdicts use the adjusted intervals, so two
+    folders of the same program flag a difference in some cell with probability at
+    most ``1 - conf_level`` (less with a tolerance above 0). ``simultaneous=True``
+    (the older spelling) means ``bonferroni``; ``adjust="none"`` gives per-cell
+    intervals.
+    """
+    from benchharness.history.fingerprint import host_fingerprint
+
+    if adjust is None:
+        adjust = "bonferroni" if simultaneous else "sidak"
+    if not (0 <= tolerance < 1):
+        raise DataError(f"tolerance {tolerance!r} must be a fraction in [0, 1), e.g. 5%")
+    pooled, factors, only_a, only_b, da, db = pooled_table(folder_a, folder_b, response)
+    if pooled.empty:
+        raise DataError(f"{da.path} and {db.path} share no cell with timed runs of "
+                        f"`{response}`; nothing to compare")
+    log_scale, df, s, out = compare_pooled(pooled, factors, response, tolerance, conf_level,
+                                           adjust)
+
     def rank(c: CellComparison):
         return tuple(da.levels[f].index(c.cell[f]) if c.cell[f] in da.levels.get(f, [])
                      else len(da.levels.get(f, [])) for f in factors)
@@ -211,6 +278,6 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
     return Comparison(a=str(da.path), b=str(db.path), response=response,
                       scale="log" if log_scale else "linear", tolerance=tolerance,
                       conf_level=conf_level, residual_df=df, residual_sd=s, cells=tuple(out),
-                      adjustment="bonferroni" if simultaneous else "none",
+                      adjustment=adjust,
                       only_in_a=tuple(only_a), only_in_b=tuple(only_b),
                       warnings=tuple(warnings))
