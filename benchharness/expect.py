@@ -11,6 +11,12 @@ looks like; the runner applies it to every timed and warm-up run:
 Regular expressions are Python's `re` syntax, searched (not fully matched) in
 the kept tail of each stream (the last ``RunSpec.capture_bytes``, 64 KiB by
 default), decoded as UTF-8 with replacement characters.
+
+A regular expression can take exponential time on some text (``(a+)+$`` on a
+long line of ``a`` with no match). Every search here, and every metric
+pattern (`benchharness.metrics`), is given `REGEX_LIMIT_S` seconds: past that
+the run is marked failed with a message naming the expression, and the
+harness goes on to the next run instead of hanging outside any timeout.
 """
 
 from __future__ import annotations
@@ -19,6 +25,112 @@ import re
 from dataclasses import dataclass, replace
 
 from benchharness.execute.base import Measurement
+
+#: Seconds one regular expression may take on one run's output.
+REGEX_LIMIT_S = 2.0
+
+
+class RegexTimeout(Exception):
+    """A regular expression ran past `REGEX_LIMIT_S` on one output."""
+
+    def __init__(self, pattern: str, limit_s: float):
+        super().__init__(f"the regular expression /{pattern}/ took more than {limit_s:g} s on "
+                         "this output (it backtracks without end); simplify it, e.g. no "
+                         "nested repeats like (a+)+")
+        self.pattern = pattern
+
+
+def bounded(call, pattern: str, limit_s: float | None = None):
+    """``call()`` (a regex search over one text) stopped after ``limit_s`` seconds.
+
+    Python's regular expression engine checks for signals while it matches, so
+    in the main thread a one-shot ``SIGALRM`` timer interrupts it; any timer
+    already set (a test runner's) is put back with the time it had left. Off
+    the main thread (cluster workers) signals cannot be used and the search runs
+    in a forked child that is killed at the limit.
+    """
+    import signal
+    import threading
+    import time
+
+    limit = REGEX_LIMIT_S if limit_s is None else limit_s
+    if threading.current_thread() is not threading.main_thread():
+        return _bounded_in_child(call, pattern, limit)
+
+    def on_alarm(_sig, _frame):
+        raise RegexTimeout(pattern, limit)
+
+    old_handler = signal.signal(signal.SIGALRM, on_alarm)
+    old_delay, old_interval = signal.setitimer(signal.ITIMER_REAL, limit)
+    t0 = time.monotonic()
+    try:
+        return call()
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, old_handler)
+        if old_delay > 0:
+            left = max(old_delay - (time.monotonic() - t0), 1e-3)
+            signal.setitimer(signal.ITIMER_REAL, left, old_interval)
+
+
+def _bounded_in_child(call, pattern: str, limit: float):
+    import os
+    import pickle
+    import select
+    import signal
+
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # pragma: no cover - the child
+        try:
+            os.close(r)
+            res = call()
+            data = pickle.dumps(_plain_match(res))
+            os.write(w, data)
+        finally:
+            os._exit(0)
+    os.close(w)
+    try:
+        chunks = []
+        poll = select.poll()
+        poll.register(r, select.POLLIN | select.POLLHUP)
+        import time
+
+        end = time.monotonic() + limit
+        while True:
+            left = end - time.monotonic()
+            if left <= 0 or not poll.poll(left * 1000):
+                os.kill(pid, signal.SIGKILL)
+                raise RegexTimeout(pattern, limit)
+            b = os.read(r, 65536)
+            if not b:
+                break
+            chunks.append(b)
+    finally:
+        os.close(r)
+        os.waitpid(pid, 0)
+    return pickle.loads(b"".join(chunks)) if chunks else None
+
+
+class _Found:
+    """A match carried back from a child: its groups."""
+
+    def __init__(self, groups):
+        self._groups = groups
+
+    def group(self, i=0):
+        return self._groups[i]
+
+
+def _plain_match(res):
+    if res is None:
+        return None
+    if isinstance(res, list):
+        return [_plain_match(m) for m in res]
+    if hasattr(res, "group"):
+        return _Found([res.group(i) for i in range((res.re.groups if hasattr(res, "re") else 0)
+                                                   + 1)])
+    return res
 
 
 @dataclass(frozen=True)
@@ -96,7 +208,11 @@ def check_expect(spec: ExpectSpec, m: Measurement) -> tuple[bool, str]:
         if pattern is None:
             continue
         text = _text(raw)
-        if not pattern.search(text):
+        try:
+            found = bounded(lambda: pattern.search(text), pattern.pattern)
+        except RegexTimeout as exc:
+            return False, f"'expect: {name}': {exc}"
+        if not found:
             return False, (f"wrong output: {name} does not match /{pattern.pattern}/ "
                            f"({_snippet(text)})")
     return True, ""

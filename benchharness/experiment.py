@@ -43,7 +43,8 @@ RESERVED_COLUMNS = frozenset({
 
 #: Keys of the core experiment file.
 CORE_KEYS = ("experiment", "about", "command", "shell", "factors", "replicates", "warmup",
-             "order", "seed", "timeout", "env", "build", "reset", "teardown", "workdir")
+             "order", "seed", "timeout", "env", "build", "reset", "teardown", "workdir",
+             "max_runs")
 
 #: Sections validated by later capabilities; kept as raw YAML nodes.
 SECTION_KEYS = ("design", "gate", "choose", "compare", "metrics", "expect", "samples", "pin",
@@ -114,6 +115,10 @@ class Experiment:
     source_text: str = ""
     sections: Mapping[str, yaml.Node] = field(default_factory=dict)
     warnings: tuple[str, ...] = ()
+    #: Most runs a plan of this file may hold (``max_runs:``; `DEFAULT_MAX_RUNS`).
+    max_runs: int = 0
+    #: ``{top-level key: (line, column)}`` of the file, for messages about a whole key.
+    key_marks: Mapping[str, tuple[int, int]] = field(default_factory=dict)
 
     # -- convenience -------------------------------------------------------
     @property
@@ -166,26 +171,99 @@ class Experiment:
 
 # ---------------------------------------------------------------------------
 
-def load_experiment(path: str | os.PathLike) -> Experiment:
-    """Read and validate an experiment file; raises `ExperimentError` with a located message."""
-    p = Path(path)
+#: Largest experiment file read (bytes): a real one is a few kilobytes.
+MAX_FILE_BYTES = 1 << 20
+#: Deepest nesting of lists and mappings accepted (a real file nests 4 or 5 deep).
+MAX_DEPTH = 40
+#: Most runs a plan may hold unless the file raises the limit with ``max_runs:``.
+DEFAULT_MAX_RUNS = 1_000_000
+#: Highest ``max_runs:`` accepted: every planned run is held in memory.
+MAX_RUNS_CEILING = 20_000_000
+#: Most values (scalars, lists, mappings) the file may stand for once its
+#: aliases (``*name``) are expanded; each node is measured once, never walked twice.
+MAX_VALUES = 100_000
+
+
+def read_experiment_text(path: str | os.PathLike) -> str:
+    """The text of an experiment file: a regular file of at most `MAX_FILE_BYTES`.
+
+    Opened without blocking, so a FIFO with no writer, a terminal or a device
+    such as ``/dev/zero`` is refused at once instead of hanging or filling memory.
+    """
+    import stat
+
+    where = str(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
     except FileNotFoundError:
         raise ExperimentError("no such experiment file; give the path of a YAML experiment "
-                              "file", path=str(path)) from None
+                              "file", path=where) from None
     except IsADirectoryError:
-        raise ExperimentError("is a folder, not an experiment file", path=str(path)) from None
-    except UnicodeDecodeError as exc:
-        raise ExperimentError(f"is not UTF-8 text ({exc.reason})", path=str(path)) from None
+        raise ExperimentError("is a folder, not an experiment file", path=where) from None
     except OSError as exc:
-        raise ExperimentError(f"cannot be read ({exc.strerror})", path=str(path)) from None
-    return parse_experiment(text, str(path))
+        raise ExperimentError(f"cannot be read ({exc.strerror})", path=where) from None
+    chunks: list[bytes] = []
+    try:
+        st = os.fstat(fd)
+        if stat.S_ISDIR(st.st_mode):
+            raise ExperimentError("is a folder, not an experiment file", path=where)
+        if not stat.S_ISREG(st.st_mode):
+            what = ("a FIFO (named pipe)" if stat.S_ISFIFO(st.st_mode) else
+                    "a device" if stat.S_ISCHR(st.st_mode) or stat.S_ISBLK(st.st_mode) else
+                    "a socket" if stat.S_ISSOCK(st.st_mode) else "not a regular file")
+            raise ExperimentError(f"is {what}, not a regular file; give the path of a YAML "
+                                  "experiment file saved on disk", path=where)
+        total = 0
+        while total <= MAX_FILE_BYTES:
+            b = os.read(fd, MAX_FILE_BYTES + 1 - total)
+            if not b:
+                break
+            chunks.append(b)
+            total += len(b)
+        if total > MAX_FILE_BYTES:
+            raise ExperimentError(f"holds more than {MAX_FILE_BYTES:,} bytes; an experiment file "
+                                  f"may hold at most {MAX_FILE_BYTES:,} (is this the right "
+                                  "file?)", path=where)
+    except ExperimentError:
+        raise
+    except OSError as exc:
+        raise ExperimentError(f"cannot be read ({exc.strerror})", path=where) from None
+    finally:
+        os.close(fd)
+    try:
+        return b"".join(chunks).decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ExperimentError(f"is not UTF-8 text ({exc.reason})", path=where) from None
+
+
+def load_experiment(path: str | os.PathLike) -> Experiment:
+    """Read and validate an experiment file; raises `ExperimentError` with a located message."""
+    return parse_experiment(read_experiment_text(path), str(path))
+
+
+class _Bounded(Exception):
+    """A composed file beyond our bounds (depth, alias expansion, loops, NUL)."""
+
+    def __init__(self, mark, message: str):
+        super().__init__(message)
+        self.mark = mark
+        self.message = message
 
 
 def _compose(text: str, path: str) -> yaml.Node:
+    if len(text) > MAX_FILE_BYTES:
+        raise ExperimentError(f"holds {len(text):,} characters; an experiment file may hold at "
+                              f"most {MAX_FILE_BYTES:,}", path=path)
     try:
         nodes = list(yaml.compose_all(text, Loader=_Loader(path)))
+    except _Bounded as exc:
+        mark = exc.mark
+        raise ExperimentError(exc.message, path=path,
+                              line=mark.line + 1 if mark else None,
+                              col=mark.column + 1 if mark else None) from None
+    except RecursionError:  # pragma: no cover - the depth bound comes first
+        raise ExperimentError(f"values are nested too deeply; at most {MAX_DEPTH} levels of "
+                              "lists and mappings", path=path) from None
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         what = exc.problem or exc.context or "malformed YAML"
@@ -214,13 +292,88 @@ def _compose(text: str, path: str) -> yaml.Node:
     return nodes[0]
 
 
+class _BoundedLoader(yaml.SafeLoader):
+    """A SafeLoader that names the file in marks and composes within bounds.
+
+    Composing (not constructing) keeps an alias as a shared node. This loader
+    also keeps, for every node, how many values and how deep it would be with
+    its aliases expanded, computed once per node from its children's figures,
+    so a file whose aliases stand for billions of values (an "alias bomb") is
+    refused after one pass instead of being walked as a tree. An alias inside
+    the value it names (a loop), nesting deeper than `MAX_DEPTH` (the composer
+    recurses) and NUL characters (no command, environment or path can carry
+    one) are refused too.
+    """
+
+    def __init__(self, stream, name: str):
+        super().__init__(stream)
+        self.name = name
+        self._depth = 0
+        self._open: set = set()
+        self._measure: dict[int, tuple[int, int]] = {}  # id(node) -> (values, depth)
+
+    def compose_node(self, parent, index):
+        from yaml.events import AliasEvent
+
+        event = self.peek_event()
+        if isinstance(event, AliasEvent):
+            if event.anchor in self._open:
+                raise _Bounded(event.start_mark,
+                               f"the alias *{event.anchor} stands inside the value it names "
+                               f"(&{event.anchor}), a loop; refer only to a value defined "
+                               "before and outside it")
+            return super().compose_node(parent, index)
+        self._depth += 1
+        if self._depth > MAX_DEPTH:
+            raise _Bounded(event.start_mark, f"values are nested more than {MAX_DEPTH} deep; "
+                                             "an experiment file needs a few levels of lists "
+                                             "and mappings")
+        anchor = getattr(event, "anchor", None)
+        if anchor is not None:
+            self._open.add(anchor)
+        try:
+            node = super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+            if anchor is not None:
+                self._open.discard(anchor)
+        self._account(node)
+        return node
+
+    def _account(self, node) -> None:
+        if isinstance(node, yaml.ScalarNode):
+            if "\x00" in node.value:
+                raise _Bounded(node.start_mark, "this value holds a NUL character (\\0), which "
+                                                "no command line, environment or path can "
+                                                "carry; remove it")
+            self._measure[id(node)] = (1, 1)
+            return
+        if isinstance(node, yaml.MappingNode):
+            children = [c for pair in node.value for c in pair]
+        else:
+            children = node.value
+        count, depth = 1, 1
+        for c in children:
+            cn, cd = self._measure.get(id(c), (1, 1))
+            count += cn
+            depth = max(depth, cd + 1)
+        self._measure[id(node)] = (count, depth)
+        if count > MAX_VALUES:
+            raise _Bounded(node.start_mark, f"with its aliases (*name) expanded this value "
+                                            f"stands for {count:,} values, more than the "
+                                            f"{MAX_VALUES:,} an experiment file may hold; "
+                                            "write the values out or use fewer aliases")
+        if depth > MAX_DEPTH:
+            raise _Bounded(node.start_mark, f"with its aliases (*name) expanded this value is "
+                                            f"nested {depth} deep, more than {MAX_DEPTH}; "
+                                            "use fewer nested aliases")
+
+
 def _Loader(path: str):
-    """A SafeLoader factory that names the file in marks."""
+    """A loader factory naming the file in marks (see `_BoundedLoader`)."""
 
     def make(stream):
-        loader = yaml.SafeLoader(stream)
-        loader.name = path
-        return loader
+        return _BoundedLoader(stream, path)
 
     return make
 
@@ -282,6 +435,13 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
     seed = None
     if "seed" in nodes and not is_null(nodes["seed"]):
         seed = as_int(nodes["seed"], "'seed'", minimum=0)
+    max_runs = DEFAULT_MAX_RUNS
+    if "max_runs" in nodes and not is_null(nodes["max_runs"]):
+        max_runs = as_int(nodes["max_runs"], "'max_runs'", minimum=1)
+        if max_runs > MAX_RUNS_CEILING:
+            raise node_error(nodes["max_runs"], f"'max_runs' may be at most "
+                                                f"{MAX_RUNS_CEILING:,} (a plan that size "
+                                                f"already takes gigabytes), not {max_runs:,}")
     timeout_s = None
     if "timeout" in nodes and not is_null(nodes["timeout"]):
         timeout_s = as_duration_s(nodes["timeout"], "'timeout'")
@@ -355,8 +515,30 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
         warmup=warmup, order=order, seed=seed, timeout_s=timeout_s, shell=shell, env=env,
         build=steps.get("build"), reset=steps.get("reset"), teardown=steps.get("teardown"),
         workdir=workdir, path=path, source_text=text, sections=sections,
-        warnings=tuple(found_warnings),
+        warnings=tuple(found_warnings), max_runs=max_runs,
+        key_marks={k: (kn.start_mark.line + 1, kn.start_mark.column + 1)
+                   for k, kn in keynodes.items()},
     )
+
+
+def check_planned_runs(exp: Experiment, cells: int, replicates: int, warmup: int) -> int:
+    """The number of runs a plan of ``cells`` cells would hold; `ExperimentError` above
+    the file's limit (``max_runs:``), said before anything is built, so a slip such as
+    ``replicates: 1000000000`` or forty factors never fills memory with planned runs."""
+    total = cells * (replicates + warmup)
+    limit = exp.max_runs or DEFAULT_MAX_RUNS
+    if total <= limit:
+        return total
+    key = "replicates" if replicates * (1 + (warmup > 0)) >= cells else "factors"
+    line, col = exp.key_marks.get(key, (None, None))
+    parts = f"{cells:,} cell(s) × {replicates:,} replicate(s)"
+    if warmup:
+        parts = f"{cells:,} cell(s) × ({replicates:,} replicate(s) + {warmup:,} warm-up)"
+    advice = "use fewer factors, levels or replicates (or a fractional 'design:')"
+    if total <= MAX_RUNS_CEILING:
+        advice += f", or, if you mean it, raise the limit with 'max_runs: {total}'"
+    raise ExperimentError(f"this experiment plans {total:,} runs ({parts}), more than the "
+                          f"limit of {limit:,}; {advice}", path=exp.path, line=line, col=col)
 
 
 def _parse_name(node: yaml.Node) -> str:

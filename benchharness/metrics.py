@@ -193,7 +193,10 @@ def extract_metrics(config: MetricsConfig, stdout_tail, stderr_tail,
         value, why = None, ""
         try:
             if m.source == "pattern":
-                matches = list(m.pattern.finditer(texts[m.stream]))
+                from benchharness.expect import bounded
+
+                text, rx = texts[m.stream], m.pattern
+                matches = bounded(lambda: list(rx.finditer(text)), rx.pattern)
                 if not matches:
                     why = f"/{m.pattern.pattern}/ not found in {m.stream}"
                 else:

@@ -40,8 +40,12 @@ def node_error(node: yaml.Node | None, message: str, path: str | None = None) ->
 def check_tags(node: yaml.Node) -> None:
     """Reject tags that would construct objects (``!!python/...``, custom ``!foo``)."""
     stack = [node]
+    seen: set[int] = set()  # an alias is a shared node: check it once, not once per use
     while stack:
         n = stack.pop()
+        if id(n) in seen:
+            continue
+        seen.add(id(n))
         if n.tag not in _STD_TAGS:
             raise node_error(n, f"YAML tag {n.tag!r} is not allowed; write plain values "
                                 "(strings, numbers, lists, mappings)")

@@ -22,7 +22,26 @@ def build_plan(exp, seed=None, **kwargs):
     from benchharness.design.spec import design_of
 
     choice = design_of(exp)
+    _check_size(exp, choice, kwargs)
     info = dict(choice.info())
     info.update(kwargs.pop("info", None) or {})
     return make_plan(exp, seed=seed, cells=choice.cells(),
                      blocks_of_cell=choice.blocks_of_cell(), info=info, **kwargs)
+
+
+def _check_size(exp, choice, kwargs) -> None:
+    """Refuse a plan above the experiment's run limit before building it.
+
+    The count is the one `run` plans: adaptive replication plans its maximum.
+    """
+    from benchharness.design.adaptive import adaptive_rule
+    from benchharness.experiment import check_planned_runs
+
+    cells = choice.cells()
+    n_cells = len(cells) if cells is not None else exp.cells
+    reps = kwargs.get("replicates")
+    if reps is None:
+        rule = adaptive_rule(exp)
+        reps = max(exp.replicates, rule.max_replicates) if rule is not None else exp.replicates
+    warm = kwargs.get("warmup")
+    check_planned_runs(exp, n_cells, int(reps), int(exp.warmup if warm is None else warm))

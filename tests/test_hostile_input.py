@@ -1,0 +1,213 @@
+"""Fault injection: small hostile experiment files and checks made before running.
+
+Each case plants a file that used to hang, fill memory or crash the harness,
+runs the command a user would (in a subprocess with a timeout, so a regression
+fails instead of hanging the suite) and asserts what the tool says: exit code 2,
+one line on stderr naming FILE:LINE:COL and what to do, and no traceback.
+"""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+
+import pytest
+
+from conftest import ROOT, run_cli
+
+LIMIT_S = 30  # generous on a loaded 2-core machine; each case takes well under a second
+
+
+def one_line_error(proc, *needles):
+    """Assert a refused input: exit 2, a single stderr line holding every needle."""
+    assert proc.returncode == 2, (proc.returncode, proc.stdout, proc.stderr)
+    err = proc.stderr.strip()
+    assert "Traceback" not in err, err
+    lines = [ln for ln in err.splitlines() if not ln.startswith("warning:")]
+    assert len(lines) == 1, err
+    for n in needles:
+        assert n in lines[0], (n, lines[0])
+    return lines[0]
+
+
+def write(tmp_path, text, name="exp.yaml"):
+    p = tmp_path / name
+    p.write_text(text)
+    return p
+
+
+HEAD = 'experiment: hostile\ncommand: [echo, "{a}"]\nfactors: {a: [x, y]}\n'
+
+
+# -- item 10: bounded reading ------------------------------------------------------------
+
+def alias_bomb() -> str:
+    """About 500 bytes whose aliases stand for 9**9 (387 million) values."""
+    lines = [HEAD, "pin: &a0 [x, x, x, x, x, x, x, x, x]\n"]
+    for i in range(1, 9):
+        refs = ", ".join([f"*a{i - 1}"] * 9)
+        lines.append(f"x{i}: &a{i} [{refs}]\n")
+    return "".join(lines)
+
+
+def test_alias_bomb_is_refused_at_once(tmp_path):
+    text = alias_bomb()
+    assert len(text.encode()) < 600
+    p = write(tmp_path, text)
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    line = one_line_error(proc, str(p), "aliases", "100,000")
+    # located at the first value whose expansion passes the bound (the line of &a5)
+    assert f"{p}:9:" in line, line
+
+
+def test_alias_used_many_times_below_the_bound_is_fine(tmp_path):
+    # the same alias used in several places is ordinary YAML and must keep working
+    p = write(tmp_path, 'experiment: ok\ncommand: [echo, "{a}", "{b}"]\n'
+                        "factors: {a: &lv [x, y], b: *lv}\n")
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    assert proc.returncode == 0, proc.stderr
+    assert "4 cells" in proc.stdout or "cells" in proc.stdout
+
+
+def test_self_referencing_alias_is_a_loop(tmp_path):
+    p = write(tmp_path, HEAD + "pin: &p [x, *p]\n")
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, f"{p}:4:", "*p", "loop")
+
+
+@pytest.mark.parametrize("style", ["flow", "block"])
+def test_deep_nesting_has_a_limit(tmp_path, style):
+    if style == "flow":
+        body = "pin: " + "[" * 1000 + "]" * 1000 + "\n"
+    else:
+        body = "pin:\n" + "\n".join(" " * (2 * i) + "-" for i in range(1000)) + " x\n"
+    p = write(tmp_path, HEAD + body)
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, str(p), "nested more than 40 deep")
+
+
+def test_nesting_within_the_limit_is_read(tmp_path):
+    # 30 levels inside an unknown-to-us section still parses (and is judged by its owner)
+    p = write(tmp_path, HEAD + "about: " + "[" * 30 + "]" * 30 + "\n")
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, f"{p}:4:8", "'about' must be a single value")
+
+
+def test_billion_replicates_refused_with_the_override_named(tmp_path):
+    p = write(tmp_path, HEAD + "replicates: 1000000000\n")
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, f"{p}:4:1", "2,000,000,000 runs", "limit of 1,000,000")
+    # an absurd count is not offered the override: no plan that size fits in memory
+    assert "max_runs" not in proc.stderr
+
+
+def test_forty_factors_refused_before_any_cell_is_built(tmp_path):
+    names = [f"f{i}" for i in range(40)]
+    text = ("experiment: wide\ncommand: [echo, " + ", ".join(f'"{{{n}}}"' for n in names)
+            + "]\nfactors:\n" + "".join(f"  {n}: [a, b]\n" for n in names))
+    p = write(tmp_path, text)
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, f"{p}:3:1", f"{2 ** 40:,} runs")
+
+
+def test_max_runs_is_the_override(tmp_path):
+    # 3 cells x 400 replicates = 1,200 runs: refused under max_runs 1000, accepted at 1200
+    base = 'experiment: many\ncommand: [echo, "{a}"]\nfactors: {a: [x, y, z]}\nreplicates: 400\n'
+    p = write(tmp_path, base + "max_runs: 1000\n")
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, f"{p}:4:1", "1,200 runs", "limit of 1,000", "'max_runs: 1200'")
+    p = write(tmp_path, base + "max_runs: 1200\n")
+    proc = run_cli("plan", p, "--json", timeout=LIMIT_S)
+    assert proc.returncode == 0, proc.stderr
+    import json
+
+    assert json.loads(proc.stdout)["runs"] == 1200
+
+
+def test_adaptive_maximum_counts_against_the_limit(tmp_path):
+    # plan must refuse what run would plan: adaptive replication plans its maximum
+    p = write(tmp_path, HEAD + "replicates: {until: {ratio_halfwidth: 2%}, min: 3, "
+                               "max: 600000}\n")
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, f"{p}:4:1", "1,200,000 runs")
+
+
+def test_fifo_is_refused_without_blocking(tmp_path):
+    fifo = tmp_path / "exp.yaml"
+    os.mkfifo(fifo)
+    proc = run_cli("plan", fifo, timeout=LIMIT_S)
+    one_line_error(proc, str(fifo), "FIFO", "not a regular file")
+
+
+def test_dev_zero_is_refused(tmp_path):
+    proc = run_cli("plan", "/dev/zero", timeout=LIMIT_S)
+    one_line_error(proc, "/dev/zero", "device", "not a regular file")
+
+
+def test_oversized_file_is_refused(tmp_path):
+    p = tmp_path / "big.yaml"
+    p.write_text(HEAD + "about: '" + "x" * (1 << 20) + "'\n")
+    proc = run_cli("plan", p, timeout=LIMIT_S)
+    one_line_error(proc, str(p), "1,048,576 bytes")
+
+
+def test_catastrophic_expect_regex_is_stopped_and_named(tmp_path):
+    # (a+)+$ against 40 a's and a b backtracks about 2**40 times: stopped after 2 s a search
+    p = write(tmp_path, "experiment: rx\n"
+                        "command: [printf, 'aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaab{a}']\n"
+                        "factors: {a: [x]}\nreplicates: 1\n"
+                        "expect: {stdout: '^(a+)+$'}\n")
+    out = tmp_path / "out"
+    proc = run_cli("run", p, "--out", out, "--no-analysis", "--quiet", timeout=60)
+    assert "Traceback" not in proc.stderr
+    import json
+
+    recs = [json.loads(x) for x in (out / "runs.jsonl").read_text().splitlines()]
+    assert len(recs) == 1
+    assert recs[0]["status"] == "failed"
+    assert "/^(a+)+$/ took more than 2 s" in recs[0]["message"]
+
+
+def test_bounded_search_puts_back_an_outer_timer():
+    # A test runner's own alarm (pytest-timeout) must survive a bounded search.
+    code = r"""
+import re, signal, time
+from benchharness.expect import bounded, RegexTimeout
+fired = []
+signal.signal(signal.SIGALRM, lambda *a: fired.append(1))
+signal.setitimer(signal.ITIMER_REAL, 1.0)
+assert bounded(lambda: re.search('b', 'ab'), 'b', 0.5) is not None
+try:
+    bounded(lambda: re.search(r'(a+)+$', 'a' * 40 + 'b'), '(a+)+$', 0.2)
+    raise SystemExit('not stopped')
+except RegexTimeout:
+    pass
+time.sleep(1.2)
+print('fired', len(fired))
+"""
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=LIMIT_S, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)})
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "fired 1"
+
+
+def test_bounded_search_off_the_main_thread():
+    code = r"""
+import re, threading
+from benchharness.expect import bounded, RegexTimeout
+out = {}
+def work():
+    m = bounded(lambda: list(re.finditer(r'r=(\d+)', 'r=1 r=22')), 'x', 5)
+    out['groups'] = [x.group(1) for x in m]
+    try:
+        bounded(lambda: re.search(r'(a+)+$', 'a' * 40 + 'b'), '(a+)+$', 0.3)
+    except RegexTimeout:
+        out['stopped'] = True
+t = threading.Thread(target=work); t.start(); t.join()
+print(out)
+"""
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=LIMIT_S, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)})
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "{'groups': ['1', '22'], 'stopped': True}"
