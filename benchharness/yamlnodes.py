@@ -190,12 +190,21 @@ def parse_duration_s(text: str) -> float | None:
     return total if rank >= 0 else None
 
 
+#: Longest duration a file may give (24 days): waits are counted in milliseconds in a
+#: 32-bit number (``poll``), so anything longer could not be waited for at all.
+MAX_DURATION_S = 24 * 86400.0
+
+
 def as_duration_s(node: yaml.Node, what: str) -> float:
     text = scalar_text(node, what)
     value = parse_duration_s(text)
     if value is None or value <= 0:
         raise node_error(node, f"{what} {text!r} is not a duration; write a positive number "
                                "with a unit, like 90s, 5m, 1h30m or 250ms")
+    if value > MAX_DURATION_S:
+        raise node_error(node, f"{what} {text!r} is longer than the harness can wait (at most "
+                               f"24 days, {MAX_DURATION_S / 3600:g}h); give a shorter one, or "
+                               "none for no limit")
     return value
 
 

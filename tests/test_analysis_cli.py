@@ -160,11 +160,21 @@ def test_bad_declared_comparison_points_at_the_experiment_file(tmp_path):
           - n: ["1", "2"]
           - n: ["1", "7"]
         """))
+    # refused before anything runs (it used to surface only in the analysis afterwards)
+    with pytest.raises(ExperimentError) as info:
+        run_experiment(load_experiment(exp), out=tmp_path / "res")
+    msg = str(info.value)
+    assert "'7' is not a level of 'n'" in msg and f"{exp}:9:" in msg  # line of the bad item
+    assert not (tmp_path / "res").exists()
+    # a frozen copy edited afterwards is still pointed at by the analysis
+    exp.write_text(exp.read_text().replace('["1", "7"]', '["2", "1"]'))
     out = run_experiment(load_experiment(exp), out=tmp_path / "res")
+    frozen = out.folder / "experiment.yaml"
+    frozen.write_text(frozen.read_text().replace('["2", "1"]', '["1", "7"]'))
     with pytest.raises(ExperimentError) as info:
         analyze_results_folder(out.folder)
     msg = str(info.value)
-    assert "'7' is not a level of 'n'" in msg and ":9:" in msg  # line of the bad item
+    assert "'7' is not a level of 'n'" in msg and f"{frozen}:9:" in msg
 
 
 def test_cli_hostile_factor_names(cli, tmp_path):

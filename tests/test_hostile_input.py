@@ -211,3 +211,61 @@ print(out)
                           timeout=LIMIT_S, cwd=ROOT, env={**os.environ, "PYTHONPATH": str(ROOT)})
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.strip() == "{'groups': ['1', '22'], 'stopped': True}"
+
+
+# -- item 11: checked before running, not after ------------------------------------------
+
+BEFORE_RUN = {
+    # name: (file text, expected FILE:LINE:COL suffix, words of the message)
+    "compare-level": ('experiment: cmp\ncommand: [echo, "{a}", "{b}"]\n'
+                      "factors: {a: [x, y], b: [p, q]}\n"
+                      "compare:\n  - {a: [x, y]}\n  - {a: [x, z], within: {b: p}}\n",
+                      ":6:5:", ["'z' is not a level of 'a'", "levels: x, y"]),
+    "compare-factor": ('experiment: cmp\ncommand: [echo, "{a}"]\nfactors: {a: [x, y]}\n'
+                       "compare: [{codec: [x, y]}]\n", ":4:11:", ["'codec' is not a factor"]),
+    "nul-level": ('experiment: nul\ncommand: [echo, "{a}"]\nfactors: {a: [x, "y\\0z"]}\n',
+                  ":3:18:", ["NUL character"]),
+    "nul-env": ('experiment: nul\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                'env: {GREETING: "hi\\0there"}\n', ":4:17:", ["NUL character"]),
+    "nul-command": ('experiment: nul\ncommand: [echo, "{a}", "a\\x00b"]\nfactors: {a: [x]}\n',
+                    ":2:24:", ["NUL character"]),
+    "nul-workdir": ('experiment: nul\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                    'workdir: "/tmp\\0/x"\n', ":4:10:", ["NUL character"]),
+    "timeout-huge": ('experiment: to\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                     "timeout: 9999999999999999h\n", ":4:10:", ["longer than the harness can "
+                                                              "wait", "24 days"]),
+    "timeout-597h": ('experiment: to\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                     "timeout: 597h\n", ":4:10:", ["at most 24 days"]),
+    "pin-reversed": ('experiment: pin\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                     'pin: "5-2"\n', ":4:6:", ["LOW <= HIGH"]),
+    "pin-huge": ('experiment: pin\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                 'pin: "0-99999999"\n', ":4:6:", ["CPU 99999999", "at most 8191"]),
+    "pin-absent-cpu-in-one-cell": ('experiment: pin\ncommand: [echo, "{c}"]\n'
+                                   'factors: {c: ["0", "8191"]}\npin: "{c}"\n',
+                                   ":4:6:", ["CPU 8191 does not exist"]),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BEFORE_RUN))
+def test_checked_by_plan_and_at_the_start_of_run(tmp_path, case):
+    text, where, words = BEFORE_RUN[case]
+    p = write(tmp_path, text)
+    one_line_error(run_cli("plan", p, timeout=LIMIT_S), f"{p}{where}", *words)
+    out = tmp_path / "out"
+    proc = run_cli("run", p, "--out", out, "--quiet", "--no-analysis", timeout=LIMIT_S)
+    one_line_error(proc, f"{p}{where}", *words)
+    assert not out.exists(), "run must refuse before it creates a results folder"
+
+
+def test_timeout_just_under_the_bound_runs(tmp_path):
+    # 576h is the most accepted, and the launcher can wait that long (it used to fail every
+    # run with "timeout is too large" from 597h)
+    p = write(tmp_path, 'experiment: to\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                        "timeout: 576h\n")
+    out = tmp_path / "out"
+    proc = run_cli("run", p, "--out", out, "--quiet", "--no-analysis", timeout=LIMIT_S)
+    assert proc.returncode == 0, proc.stderr
+    import json
+
+    rec = json.loads((out / "runs.jsonl").read_text())
+    assert rec["status"] == "ok", rec

@@ -38,6 +38,10 @@ def format_cpu_list(cpus) -> str:
     return ",".join(parts)
 
 
+#: Highest CPU number a Linux kernel can have (``NR_CPUS`` is at most 8192).
+MAX_CPU = 8191
+
+
 def parse_cpu_list(text: str) -> tuple[int, ...]:
     """``"0-2,5"`` -> ``(0, 1, 2, 5)``; raises ValueError with a plain reason."""
     text = str(text).strip()
@@ -54,6 +58,10 @@ def parse_cpu_list(text: str) -> tuple[int, ...]:
             raise ValueError(f"{part!r} is not a CPU number or range; write e.g. 0, 2-3") from None
         if a < 0 or b < a:
             raise ValueError(f"{part!r} is not a valid CPU range; write LOW-HIGH with LOW <= HIGH")
+        if b > MAX_CPU:
+            # the kernel numbers at most this many CPUs; checked before the range is made
+            raise ValueError(f"{part!r} names CPU {b}, beyond any machine's numbering (at most "
+                             f"{MAX_CPU})")
         out.update(range(a, b + 1))
     return tuple(sorted(out))
 
