@@ -38,7 +38,7 @@ def run(experiment, out=None, **kwargs):
 
 
 def analyze(data, response="wall_s", factors=None, block=None, transform="auto",
-            model="full", ss_type=2, alpha=0.05, **kwargs):
+            model=None, ss_type=2, alpha=0.05, **kwargs):
     """Analyse a runs table (DataFrame, CSV path or results folder) as a designed experiment."""
     from benchharness.analysis import analyze as _analyze
 

@@ -185,9 +185,10 @@ def test_run_adds_fraction_to_analysis_json(tmp_path):
     assert J.load_results(out.folder).runs.shape[0] == 16
 
 
-def test_general_anova_of_a_fraction_uses_unaliased_terms(tmp_path):
-    # Resolution IV: main effects only (2FIs are aliased in pairs); the main-effect F
-    # tests then match statsmodels OLS + anova_lm on the same runs.
+def test_general_anova_of_a_fraction_fits_every_chain(tmp_path):
+    # Resolution IV: by default every estimable chain (the main effects and one
+    # representative of each aliased pair of 2FIs); with model="main" the main effects only.
+    # Both match statsmodels OLS + anova_lm on the same runs.
     import statsmodels.formula.api as smf
     from statsmodels.stats.anova import anova_lm
 
@@ -202,12 +203,21 @@ def test_general_anova_of_a_fraction_uses_unaliased_terms(tmp_path):
     exp = Experiment.from_text(text)
     model = SimulatedModel(effects={"threads": {"16": 0.8}}, cv=0.03)
     out = run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(model, seed=2))
+    runs = out.runs.assign(ly=lambda d: np.log(d.wall_s.astype(float)))
     an = analyze_results_folder(out.folder, transform="log")
     terms = [r["term"] for r in an.anova_rows]
-    assert terms == ["threads", "batch", "cache", "pin", "Residual"]
-    runs = out.runs.assign(ly=lambda d: np.log(d.wall_s.astype(float)))
-    ref = anova_lm(smf.ols("ly ~ C(threads) + C(batch) + C(cache) + C(pin)", data=runs).fit())
+    assert terms == ["threads", "batch", "cache", "pin", "threads:batch", "threads:cache",
+                     "threads:pin", "Residual"]
+    ref = anova_lm(smf.ols("ly ~ C(threads) + C(batch) + C(cache) + C(pin) + C(threads):C(batch)"
+                           " + C(threads):C(cache) + C(threads):C(pin)", data=runs).fit())
     for r in an.anova_rows[:-1]:
+        key = ":".join(f"C({t})" for t in r["term"].split(":"))
+        assert r["F"] == pytest.approx(ref.loc[key, "F"], rel=1e-6)
+    main = analyze_results_folder(out.folder, transform="log", model="main")
+    assert [r["term"] for r in main.anova_rows] == ["threads", "batch", "cache", "pin",
+                                                    "Residual"]
+    ref = anova_lm(smf.ols("ly ~ C(threads) + C(batch) + C(cache) + C(pin)", data=runs).fit())
+    for r in main.anova_rows[:-1]:
         assert r["F"] == pytest.approx(ref.loc[f"C({r['term']})", "F"], rel=1e-6)
 
 
@@ -241,8 +251,8 @@ def test_blocked_run_end_to_end(tmp_path):
 
 
 def test_analyze_command_on_a_fraction_uses_unaliased_terms_and_shows_chains(tmp_path, cli):
-    # `benchharness analyze RESULTS` on a 2^(4-1) fraction: by default the same unaliased
-    # model as after `run` (main effects) and the alias-chain estimates.
+    # `benchharness analyze RESULTS` on a 2^(4-1) fraction: by default the same model as
+    # after `run` (every alias chain, named by its chain) and the alias-chain estimates.
     from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
     from benchharness.experiment import Experiment
     from benchharness.runner import run_experiment
@@ -258,4 +268,4 @@ def test_analyze_command_on_a_fraction_uses_unaliased_terms_and_shows_chains(tmp
     assert "inestimable: the observed cells" not in r.stdout
     assert "A (+ BCD)" in r.stdout and "AB (+ CD)" in r.stdout
     anova = r.stdout.split("Residual")[0]
-    assert "threads:batch" not in anova
+    assert "threads:batch (+ cache:pin)" in anova and "cache:pin  " not in anova

@@ -54,6 +54,7 @@ class Analysis:
     art: dict | None
     notes: tuple[str, ...]
     counts: dict
+    fraction: dict | None = None    # two-level fraction: the alias-chain table (fraction.py)
     # arrays for figures (not serialised): per analysed row, in input order
     residuals: Any = field(default=None, repr=False, compare=False)
     fitted: Any = field(default=None, repr=False, compare=False)
@@ -89,6 +90,7 @@ class Analysis:
             "failures": self.failures,
             "art": self.art,
             "notes": list(self.notes),
+            **({"fraction": self.fraction} if self.fraction is not None else {}),
         })
 
     def to_json(self) -> str:
@@ -160,14 +162,17 @@ def _item_node(node, k):
 
 
 def analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
-            model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
+            model=None, ss_type: int = 2, alpha: float = 0.05, reference=None,
             adjust: str = "holm", compare=None, art="auto",
             comparisons: bool = True) -> "Analysis":
     """Analyse a runs table (DataFrame, tidy CSV path or results folder).
 
     ``block``: a column name; None (or "auto") for the default (``block`` for
     blocked experiments, ``host`` when it has more than one value); False for none.
-    ``model``: "full", "main" or N (interactions up to order N). ``ss_type``: 2 or 3.
+    ``model``: "full", "main" or N (interactions up to order N); default (None) "full",
+    or for a two-level fraction every estimable alias chain (``analysis.fraction``:
+    terms aliased with an earlier one are left out and named in its chain, Lenth's
+    method gives the p-values when there are no replicates). ``ss_type``: 2 or 3.
     ``reference``: {factor: level} or ["factor=level", ...] for the ratios
     (default: the first level). ``adjust``: "holm" or "bonferroni" for pairwise
     comparisons. ``compare``: declared comparisons (see
@@ -191,7 +196,7 @@ def analyze(data, response: str = "wall_s", factors=None, block=None, transform=
 
 
 def _analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
-            model="full", ss_type: int = 2, alpha: float = 0.05, reference=None,
+            model=None, ss_type: int = 2, alpha: float = 0.05, reference=None,
             adjust: str = "holm", compare=None, art="auto",
             comparisons: bool = True) -> Analysis:
     """The work of `analyze` (same arguments)."""
@@ -233,7 +238,18 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         codes.append(prep.block_codes)
     sizes = [len(lv) for lv in levels]
     factor_idx = list(range(len(fnames)))
+    # A two-level fraction: by default every estimable alias chain, named by its chain.
+    from benchharness.analysis import fraction as fr
+
+    fdesign = fr.recognise(fnames, flevels, codes[: len(fnames)], prep.experiment)
+    spec = model
+    if model is None:
+        model = fr.chain_order(fdesign) if fdesign is not None else "full"
+        spec = "every alias chain" if fdesign is not None and fdesign.is_fraction else "full"
     terms = model_terms(names, model, block_index)
+    aliased_out = []
+    if fdesign is not None:
+        terms, aliased_out = fr.chain_terms(terms, names, fdesign)
     cells = index_cells(codes, sizes)
     fcells = cells if block_index is None else index_cells(codes[:block_index], sizes[:block_index])
     y = prep.y
@@ -299,6 +315,19 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     for row in fit.table:
         if row.note:
             notes.append(f"{row.term}: {row.note}")
+    fraction = None
+    if fdesign is not None:
+        fraction, fnotes = fr.attach(fdesign, fnames, codes[: len(fnames)], z, choice.name,
+                                     alpha, anova_rows, terms, names, df_res,
+                                     prep.block_codes if prep.block is not None else None,
+                                     prep.response)
+        notes += fnotes
+        if aliased_out:
+            notes.append("terms aliased with an estimated chain are named in its chain, not "
+                         "fitted: " + ", ".join(t for t, _ in aliased_out))
+        for r in anova_rows:
+            if r.get("p") is not None and r.get("test"):
+                anova_p[r["term"]] = r["p"]
     from benchharness.analysis.hosts import host_split
 
     hosts = host_split(prep, z, terms, model, ss_type, fit, alpha)
@@ -311,23 +340,19 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         missing = _missing_cells(fcells, sizes[: len(fnames)], fnames, flevels)
         shown = "; ".join(", ".join(f"{k}={v}" for k, v in m.items()) for m in missing[:5])
         more = f" and {len(missing) - 5} more" if len(missing) > 5 else ""
-        by_design = False
-        try:
-            from benchharness.design.spec import design_of
-
-            d = design_of(prep.experiment) if prep.experiment is not None else None
-            by_design = bool(d is not None and d.changes_plan and d.design.is_fraction)
-        except Exception:  # noqa: BLE001 - a plain table has no design section
-            by_design = False
-        if by_design and len(missing) == expected_cells - d.design.n_cells:
-            notes.append(f"the fractional design runs {d.design.n_cells} of {expected_cells} "
-                         "cells by plan; effects aliased with each other are reported together "
-                         "(see the fraction's alias chains)")
+        if fdesign is not None and fcells.count == fdesign.n_cells:
+            notes.append(f"a two-level fraction {fraction['design'] if fraction else ''}: "
+                         f"{fdesign.n_cells} of {expected_cells} cells, defining relation "
+                         f"{fdesign.defining_relation_text()}; effects aliased with each other "
+                         "are estimated together and named by their alias chain")
         else:
             notes.append(f"{len(missing)} of {expected_cells} cells have no ok runs "
                          f"({shown}{more}); effects that need them are inestimable and their "
                          "means are left out")
-    if df_res <= 0:
+    if df_res <= 0 and any(r.get("test") for r in anova_rows):
+        notes.append("no replicates, so no residual degrees of freedom: the diagnostics cannot "
+                     "be checked; replicate the fraction for F tests and intervals")
+    elif df_res <= 0:
         notes.append("no residual degrees of freedom (one run per cell for this model): sums of "
                      "squares are shown without F tests, intervals or diagnostics; add replicates "
                      "or fit fewer interactions (--model main or --model N)")
@@ -436,7 +461,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
 
     counts = {"rows": N, "cells": fcells.count, "cells_expected": expected_cells,
               "model_cells": cells.count, "df_resid": df_res, "level_order": prep.order_source}
-    model_dict = {"spec": str(model), "terms": [t.name for t in terms], "ss_type": fit.ss_type,
+    model_dict = {"spec": str(spec), "terms": [t.name for t in terms], "ss_type": fit.ss_type,
                   "ss_type_requested": ss_type, "alpha": alpha, "adjust": adjust,
                   "rank": fit.rank, "mse": mse if df_res > 0 else None,
                   "references": {fnames[i]: flevels[i][j] for i, j in refs.items()}}
@@ -446,6 +471,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         model=model_dict, transform=tdict, anova_rows=tuple(anova_rows), means=tuple(means),
         diagnostics=diagnostics, effects=tuple(effects), comparisons=tuple(comps),
         failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)), counts=counts,
+        fraction=fraction,
         residuals=resid, fitted=fit.fitted[cells.row_cell], studentized=studentized,
         position=prep.position, run=prep.run, fit=fit)
 
@@ -481,14 +507,6 @@ def _missing_cells(fcells, sizes, names, levels):
 
 def analyze_results_folder(folder, **kwargs) -> Analysis:
     """Analyse a results folder with its experiment's defaults (used by ``benchharness run``)."""
-    if "model" not in kwargs:
-        # A fraction: only terms that are not aliased with each other (design capability).
-        from benchharness.analysis.fraction import default_model
-        from benchharness.journal import load_results
-
-        order = default_model(load_results(folder).experiment)
-        if order is not None:
-            kwargs["model"] = order
     return analyze(Path(folder), **kwargs)
 
 

@@ -151,7 +151,6 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
     finite response are used; ``log`` analyses ln(response) (needs > 0).
     """
     import numpy as np
-    from scipy import stats
 
     df = runs
     if "status" in df.columns:
@@ -167,20 +166,37 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
     if log:
         y = np.log(y)
     X = _coded(df, design)
+    blocks = df[block_column].astype(str).to_numpy() if block_column in df.columns else None
+    return estimate_chains(X, y, design, response=response, scale="log" if log else "none",
+                           alpha=alpha, blocks=blocks)
+
+
+def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
+                    alpha: float = 0.05, blocks=None) -> dict:
+    """The fraction table from coded columns: one estimate per alias chain (JSON-ready).
+
+    ``X`` (rows x k) holds -1/+1 per design factor, ``y`` the response already on
+    the analysis scale (``scale``: ``log`` gives ratios, ``none``/``boxcox`` not);
+    ``blocks`` (one label per row, optional) enter as indicators.
+    """
+    import numpy as np
+    from scipy import stats
+
+    log = scale == "log"
+    y = np.asarray(y, dtype=float)
+    n = len(y)
     classes = design.estimable()
     cols = []
     for rep, _al in classes:
-        v = np.ones(len(df))
+        v = np.ones(n)
         for pos in W.positions(rep):
             v = v * X[:, pos]
         cols.append(v)
-    E = np.column_stack(cols) if cols else np.zeros((len(df), 0))
-    parts = [np.ones((len(df), 1))]
-    block_values = []
-    if block_column in df.columns:
-        block_values = sorted(set(df[block_column].astype(str)))
+    E = np.column_stack(cols) if cols else np.zeros((n, 0))
+    parts = [np.ones((n, 1))]
+    block_values = sorted(set(blocks)) if blocks is not None else []
     if len(block_values) > 1:
-        b = df[block_column].astype(str).to_numpy()
+        b = np.asarray(blocks)
         parts.append(np.column_stack([(b == v).astype(float) for v in block_values[1:]]))
     B = np.column_stack(parts)
     # Chains in the span of the block indicators are confounded with blocks.
@@ -200,7 +216,7 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
     XtX_inv = np.linalg.inv(M.T @ M)
     beta = XtX_inv @ M.T @ y
     resid = y - M @ beta
-    df_resid = len(y) - M.shape[1]
+    df_resid = n - M.shape[1]
     nb = B.shape[1]
     effects = [2.0 * float(beta[nb + i]) for i in range(len(estimable_idx))]
     sigma = None
@@ -216,6 +232,7 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
         e = effects[i]
         row = {
             "effect": W.letters(rep), "label": chain_label(rep, al), "term": W.term(rep, names),
+            "chain": chain_of(W.positions(rep), names, design)["chain"],
             "aliases": [("-" if s < 0 else "") + W.term(m, names) for m, s in al if m],
             "order": W.order(rep), "estimate": e,
         }
@@ -227,8 +244,12 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
             row.update({"se": se, "t": t, "p": p, "ci_low": e - tq * se, "ci_high": e + tq * se,
                         "active": p < alpha})
         elif lenth_info is not None:
-            row.update({"se": lenth_info["pse"],
-                        "t": e / lenth_info["pse"] if lenth_info["pse"] > 0 else math.inf,
+            pse = lenth_info["pse"]
+            t = e / pse if pse > 0 else math.inf
+            row.update({"se": pse, "t": t,
+                        # Lenth's t-ratio against t with m/3 df: p < alpha exactly when
+                        # |effect| > ME (Lenth 1989)
+                        "p": float(2 * stats.t.sf(abs(t), lenth_info["df"])),
                         "ci_low": e - lenth_info["me"], "ci_high": e + lenth_info["me"],
                         "likely": abs(e) > lenth_info["me"], "active": abs(e) > lenth_info["sme"]})
         if log:
@@ -250,14 +271,21 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
     labels = [r["label"] for r in out_effects]
     return {
         "response": response,
-        "scale": "log" if log else "none",
+        "scale": scale,
         "design": f"2^({design.k}-{design.p})" if design.is_fraction else f"2^{design.k}",
         "resolution": design.resolution,
         "defining_relation": design.defining_words(),
+        "generators": [g.letters() for g in design.generators],
         "letters": design.letter_map(),
-        "runs_used": int(len(y)),
+        "runs_used": int(n),
         "residual_df": int(df_resid),
         "sigma": sigma,
+        "alpha": alpha,
+        "method": ("t tests on the replicates' residual mean square; active = Holm-adjusted "
+                   "p below alpha" if sigma is not None else
+                   "Lenth's pseudo standard error (no replicates); likely = beyond the margin "
+                   "of error, active = beyond the simultaneous margin" if lenth_info else
+                   "no error estimate"),
         "effect_definition": "mean at +1 minus mean at -1 (twice the coefficient)"
                              + ("; ratio = exp(effect) of the +1 level to the -1 level"
                                 if log else ""),
@@ -276,7 +304,8 @@ def format_fraction(result: dict) -> str:
              f"({result['runs_used']} runs, residual df {result['residual_df']})"]
     if result.get("letters"):
         lines.append("  letters: " + ", ".join(f"{a}={n}" for a, n in result["letters"].items()))
-    with_p = any("p" in e for e in result["effects"])
+    with_p = any("p_holm" in e for e in result["effects"])
+    with_lenth = not with_p and any("p" in e for e in result["effects"])
     rows = []
     for e in result["effects"]:
         ratio = f"x{e['ratio']:.4f}" if "ratio" in e else ""
@@ -288,8 +317,11 @@ def format_fraction(result: dict) -> str:
         row = [e["label"], f"{e['estimate']:+.4g}", ratio]
         if with_p:
             row.append(f"{e['p']:.3g} (Holm {e['p_holm']:.3g})")
+        elif with_lenth:
+            row.append(f"{e['p']:.3g}" if e.get("p") is not None else "")
         rows.append(row + [flag])
-    header = ["effect", "estimate", "ratio"] + (["p"] if with_p else []) + [""]
+    header = (["effect", "estimate", "ratio"] + (["p"] if with_p else [])
+              + (["p (Lenth)"] if with_lenth else []) + [""])
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h)
               for i, h in enumerate(header)]
     lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths)))
@@ -360,15 +392,15 @@ def _json_default(x):
 
 
 def default_model(exp) -> int | None:
-    """ANOVA model order for an experiment with a fraction: interactions up to order t where
-    resolution >= 2t + 1, so no two terms of the model are aliased (main effects only for
-    resolution III and IV, two-factor interactions too for V, ...). None without a fraction."""
+    """ANOVA model order for an experiment with a fraction: the order that reaches every
+    estimable alias chain (`chain_order`; terms aliased with an earlier one are then left
+    out by `chain_terms`). None without a fraction."""
     from benchharness.design.spec import design_of
 
     choice = design_of(exp)
     if not choice.changes_plan or not choice.design.is_fraction:
         return None
-    return max(1, (choice.design.resolution - 1) // 2)
+    return chain_order(choice.design)
 
 
 def _finite(x):
@@ -385,3 +417,195 @@ def _finite(x):
         except (TypeError, ValueError):
             return x
     return x
+
+
+# -- the fraction inside the general analysis ------------------------------------------------
+
+def recognise(names, levels, codes, experiment=None):
+    """The two-level fraction the analysed cells form, or None.
+
+    ``names``/``levels`` are the analysis' factors with their level labels (first
+    listed = -1); ``codes`` the level index of every analysed row per factor. The
+    experiment's ``design:`` section is used when it describes exactly these
+    factors; otherwise the fraction is recognised from the observed cells: they
+    must be a coset of a subspace of GF(2)^k (a regular fraction, Box & Hunter
+    1961), whose orthogonal complement is the defining relation. A full 2^k run
+    exactly once per cell is returned too (p = 0: nothing aliased, but no
+    replicates, so Lenth's method judges the effects). A replicated full
+    factorial, a factor with other than two levels, or an irregular set of cells
+    gives None.
+    """
+    import numpy as np
+
+    from benchharness.design.fractional import FractionalDesign, Generator
+
+    k = len(names)
+    if k < 2 or any(len(lv) != 2 for lv in levels) or k > W.MAX_FACTORS:
+        return None
+    labels = tuple((str(lv[0]), str(lv[1])) for lv in levels)
+    if experiment is not None:
+        try:
+            from benchharness.design.spec import design_of
+
+            d = design_of(experiment).design
+        except Exception:  # noqa: BLE001 - a table without a valid design section
+            d = None
+        if (d is not None and d.is_fraction and tuple(d.factor_names) == tuple(names)
+                and tuple(d.level_labels) == labels):
+            return d
+    if len(codes) != k or len(codes[0]) == 0:
+        return None
+    # bit i of a cell = 1 where factor i sits at its first level (coded -1)
+    weights = (1 << np.arange(k, dtype=np.int64))
+    minus = np.column_stack([np.asarray(c) == 0 for c in codes]).astype(np.int64)
+    cells = sorted({int(v) for v in np.unique(minus @ weights)})
+    b0 = cells[0]
+    pivots: dict[int, int] = {}
+    for c in cells[1:]:
+        v = c ^ b0
+        for r in pivots.values():
+            if v & (r & -r):
+                v ^= r
+        if v:
+            low = (v & -v)
+            for q in list(pivots):
+                if pivots[q] & low:
+                    pivots[q] ^= v
+            pivots[low.bit_length() - 1] = v
+    r = len(pivots)
+    if len(cells) != 2 ** r:
+        return None
+    if r == k:
+        # A full 2^k run once: no replicates, so its effects are judged by Lenth's method.
+        return FractionalDesign(tuple(names), labels, ()) if len(codes[0]) == 2 ** k else None
+    gens = []
+    for f in range(k):
+        if f in pivots:
+            continue
+        word = 0
+        for p_, row in pivots.items():
+            if row >> f & 1:
+                word |= 1 << p_
+        sign = -1 if bin(b0 & (word | 1 << f)).count("1") % 2 else 1
+        gens.append(Generator(f, word, sign))
+    d = FractionalDesign(tuple(names), labels, tuple(gens))
+    coded = {sum(1 << i for i, c in enumerate(cell) if c < 0) for cell in d.coded_cells()}
+    return d if coded == set(cells) else None
+
+
+def _mask(term_factors, names, design) -> int:
+    pos = {n: i for i, n in enumerate(design.factor_names)}
+    m = 0
+    for f in term_factors:
+        m |= 1 << pos[names[f]]
+    return m
+
+
+def class_rep(design, mask: int) -> int:
+    """The representative (lowest order, then first letters) of the alias chain of ``mask``;
+    0 when ``mask`` is aliased with the mean (a word of the defining relation)."""
+    return min((m for m, _ in design.alias_class(mask)), key=W.sort_key)
+
+
+def chain_order(design) -> int:
+    """Model order that reaches every estimable alias chain: the highest order of a
+    chain representative (1 for resolution III 2^(3-1), 2 for resolution IV 2^(4-1))."""
+    return max((W.order(rep) for rep, _ in design.estimable()), default=1)
+
+
+def chain_terms(terms, names, design):
+    """Keep the first term of each alias chain, drop the rest and terms aliased with the mean.
+
+    ``terms`` are `benchharness.analysis.model.Term` in model order (lowest order
+    first), indexing ``names``. Returns ``(kept, dropped)``; ``dropped`` lists
+    ``(term name, name of the kept term it is aliased with, or None for the mean)``.
+    A block term is always kept.
+    """
+    kept, dropped, seen = [], [], {}
+    for t in terms:
+        if t.is_block:
+            kept.append(t)
+            continue
+        rep = class_rep(design, _mask(t.factors, names, design))
+        if rep == 0:
+            dropped.append((t.name, None))
+        elif rep in seen:
+            dropped.append((t.name, seen[rep]))
+        else:
+            seen[rep] = t.name
+            kept.append(t)
+    return kept, dropped
+
+
+def chain_of(term_factors, names, design, max_shown: int = 3) -> dict:
+    """How a model term is named in a fraction: ``{"chain": "a:b (+ c:d)", "aliases": [...]}``.
+
+    The label lists the aliases of order up to two (or up to the term's own order, for
+    a chain of higher-order interactions), at most ``max_shown`` of them then ``+ ...``;
+    ``aliases`` lists every other member of the chain, ``-`` marking a negative sign
+    (``D = -ABC`` makes ``a:b:c`` enter with the opposite sign).
+    """
+    dnames = design.factor_names
+    mask = _mask(term_factors, names, design)
+    name = ":".join(names[f] for f in term_factors)
+    others = [(m, s) for m, s in design.alias_set(mask) if m]
+    limit = max(2, W.order(mask))
+    shown = [(m, s) for m, s in others if W.order(m) <= limit]
+    more = len(shown) > max_shown
+    shown = shown[:max_shown]
+    label = name
+    if shown:
+        parts = [("- " if s < 0 else "+ ") + W.term(m, dnames) for m, s in shown]
+        if more:
+            parts.append("+ ...")
+        label = f"{name} (" + " ".join(parts) + ")"
+    return {"chain": label,
+            "aliases": [("-" if s < 0 else "") + W.term(m, dnames) for m, s in others]}
+
+
+def attach(design, names, codes, z, scale: str, alpha: float, anova_rows, terms,
+           layout_names, df_resid: int, block_codes=None, response: str = "wall_s"):
+    """Name the ANOVA rows of a fraction by their chains and add the fraction table.
+
+    Mutates ``anova_rows`` (dicts in the order of ``terms``, then Residual): each
+    factor term gets ``chain`` and ``aliases``; with no residual degrees of freedom
+    (an unreplicated fraction) each also gets Lenth's (1989) ``p`` (F stays empty;
+    ``test`` says so). Returns ``(fraction table dict, notes)``.
+    """
+    import numpy as np
+
+    notes = []
+    X = np.column_stack([np.where(np.asarray(c) == 1, 1.0, -1.0) for c in codes])
+    try:
+        frac = estimate_chains(X, z, design, response=response, scale=scale, alpha=alpha,
+                               blocks=None if block_codes is None else np.asarray(block_codes))
+    except DataError as exc:
+        frac = None
+        notes.append(f"no table of alias chains: {exc}")
+    by_rep = {}
+    if frac is not None:
+        classes = {W.term(rep, design.factor_names): rep for rep, _ in design.estimable()}
+        for e in frac["effects"]:
+            by_rep[classes[e["term"]]] = e
+    by_name = {t.name: t for t in terms}
+    lenth_used = False
+    for row in anova_rows:
+        t = by_name.get(row.get("term"))
+        if t is None or t.is_block:
+            continue
+        row.update(chain_of(t.factors, layout_names, design))
+        e = by_rep.get(class_rep(design, _mask(t.factors, layout_names, design)))
+        if e is not None and df_resid <= 0 and e.get("p") is not None and row.get("df"):
+            row["p"] = e["p"]
+            row["test"] = "Lenth (1989)"
+            row["lenth_t"] = e["t"]
+            lenth_used = True
+    if frac is not None:
+        frac["model_terms"] = [r["chain"] for r in anova_rows if r.get("chain")]
+    if lenth_used:
+        ln = frac["lenth"]
+        notes.append(
+            f"no replicates: each chain's p comes from Lenth's (1989) method (pseudo standard "
+            f"error {ln['pse']:.4g} from the smaller effects, t with {ln['df']:.3g} df; margin of "
+            f"error {ln['me']:.4g}, simultaneous margin {ln['sme']:.4g} on the analysis scale)")
+    return frac, notes

@@ -61,7 +61,8 @@ def format_analysis(a) -> str:
     lines.append("")
     rows = []
     for r in d["anova"]:
-        label = r["term"] + (f" (+ {', '.join(r['aliases'])})" if r.get("aliases") else "")
+        label = r.get("chain") or (
+            r["term"] + (f" (+ {', '.join(r['aliases'])})" if r.get("aliases") else ""))
         rows.append([label, _g(r["df"]), _g(r["sum_sq"], 7), _g(r["mean_sq"], 7), _g(r["F"]),
                      _p(r["p"]), _g(r["partial_eta_sq"], 3), _g(r["omega_sq"], 3)])
     lines += _table(["Source", "df", "Sum of squares", "Mean square", "F", "p",

@@ -31,8 +31,8 @@ def add_parser(sub) -> None:
                    help="plain text layout instead of tables")
     p.add_argument("--model", default=None, metavar="full|main|N",
                    help="all interactions (full), main effects only (main), or interactions "
-                        "up to order N (default full; for a fractional design, the terms "
-                        "its resolution keeps apart)")
+                        "up to order N (default full; for a two-level fraction, every alias "
+                        "chain it can estimate, each named by its chain)")
     p.add_argument("--ss-type", type=int, choices=[2, 3], default=2,
                    help="type of sums of squares (default 2)")
     p.add_argument("--alpha", type=float, default=0.05, help="significance level (default 0.05)")
@@ -70,15 +70,7 @@ def main(args) -> int:
                   "(--response to choose another)", file=sys.stderr)
         else:
             args.response = "wall_s"
-    model = args.model
-    if model is None:
-        model = "full"
-        if folder_res is not None and factors is None:
-            from benchharness.analysis.fraction import default_model
-
-            order = default_model(folder_res.experiment)
-            if order is not None:
-                model = order
+    model = args.model  # None: full, or every alias chain of a two-level fraction
     an = analyze(args.source, response=args.response, factors=factors, block=block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=args.alpha, reference=args.reference, adjust=args.adjust,
@@ -92,15 +84,18 @@ def main(args) -> int:
         from benchharness.report.terminal import print_analysis
 
         print_analysis(an)
-    if folder_res is not None and factors is None:
-        # Two-level fractions and confounded blocks: effects labelled with their aliases.
-        from benchharness.analysis.fraction import format_fraction, fraction_analysis_for
+    frac = an.fraction
+    if frac is None and folder_res is not None and factors is None:
+        # Confounded blocks of a full two-level design: effects labelled with their aliases.
+        from benchharness.analysis.fraction import fraction_analysis_for
 
         frac = fraction_analysis_for(folder_res.experiment, folder_res.runs,
                                      response=args.response,
                                      log=(an.transform or {}).get("name") != "none")
-        if frac is not None:
-            print("\n" + format_fraction(frac))
+    if frac is not None:
+        from benchharness.analysis.fraction import format_fraction
+
+        print("\n" + format_fraction(frac))
     if args.json:
         try:
             write_analysis_json(an, args.json)

@@ -137,9 +137,10 @@ def verdict(data: ReportData) -> dict[str, Any]:
         row = by_term.get(f)
         if row is None:
             continue
-        effs = [e for e in effects if e.get("factor") == f]
+        f = row.get("chain") or f  # a fraction names the main effect by its alias chain
+        effs = [e for e in effects if e.get("factor") == row["term"]]
         entry = {
-            "factor": f,
+            "factor": row["term"],
             "significant": row["significant"],
             "p": row.get("p"),
             "eta": row.get("partial_eta_sq"),
@@ -174,8 +175,9 @@ def verdict(data: ReportData) -> dict[str, Any]:
         if r["significant"]:
             out["interactions"].append(
                 f"The effect of {parts[0]} depends on {' and '.join(parts[1:])} "
-                f"({r['term']}, p {_p_words(r.get('p'))}): read the interaction plot before "
-                "quoting a single ratio for either factor.")
+                f"({r.get('chain') or r['term']}, p {_p_words(r.get('p'))}): read the "
+                "interaction plot before quoting a single ratio for either factor."
+                + _alias_caveat(r))
     if matter:
         head = f"{_and(matter)} {'matters' if len(matter) == 1 else 'matter'}"
         if no_matter:
@@ -226,6 +228,16 @@ def verdict(data: ReportData) -> dict[str, Any]:
     out["sure"] = sureness(data)
     out["transform"] = transform_sentence(data)
     return out
+
+
+def _alias_caveat(row: dict) -> str:
+    """For a term of a fraction: which low-order aliases the design cannot tell it from."""
+    chain = row.get("chain") or ""
+    if "(" not in chain:
+        return ""
+    inner = chain[chain.index("(") + 1: chain.rindex(")")]
+    return (f" This fraction cannot tell {row['term']} from {inner.lstrip('+ ')}: the estimate "
+            "is their sum.")
 
 
 def _lost_runs(data: ReportData, levels: dict) -> int:

@@ -91,7 +91,7 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
         style = "bold" if r["significant"] else ("dim" if r.get("term") == "Residual" else None)
         from benchharness.report.context import _fmt_df
 
-        t.add_row(Text(str(r.get("term"))), _fmt_df(r.get("df")), fmt_num(r.get("sum_sq")),
+        t.add_row(Text(str(r.get("chain") or r.get("term"))), _fmt_df(r.get("df")), fmt_num(r.get("sum_sq")),
                   fmt_num(r.get("mean_sq")), fmt_num(r.get("F")),
                   fmt_p(r.get("p")).replace("< ", "<"),
                   fmt_num(r.get("partial_eta_sq"), 2), fmt_num(r.get("omega_sq"), 2),
