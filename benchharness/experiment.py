@@ -76,8 +76,9 @@ class Factor:
 @dataclass(frozen=True)
 class CommandTemplate:
     """A templated command. ``shell`` False: ``parts`` are argv templates (one
-    argument each). ``shell`` True: ``parts`` are words joined by spaces and given
-    to ``/bin/sh -c`` with every substituted value shell-quoted."""
+    argument each). ``shell`` True: ``parts`` are joined by spaces and given to
+    ``/bin/sh -c``, every substituted value arriving as exactly itself whether its
+    placeholder stands bare or inside quotes (`templating.render_shell`)."""
 
     parts: tuple[str, ...]
     shell: bool = False
@@ -85,7 +86,7 @@ class CommandTemplate:
     def render(self, lookup) -> tuple[tuple[str, ...] | None, str | None]:
         """``(argv, None)`` or ``(None, shell_command)`` for one cell."""
         if self.shell:
-            return None, " ".join(templating.render(p, lookup, quote=True) for p in self.parts)
+            return None, templating.render_shell(" ".join(self.parts), lookup)
         return tuple(templating.render(p, lookup) for p in self.parts), None
 
     def text(self) -> str:
@@ -499,6 +500,17 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
                                                f"factor {f.name!r} has no value named "
                                                f"{ph.name!r} (it has: {have}); give every "
                                                "level that value")
+
+    if shell:  # a value must be safe where its placeholder stands (templating.render_shell)
+        for key, tmpl in (("command", command), *steps.items()):
+            for ph, ctx in templating.shell_contexts(" ".join(tmpl.parts)):
+                f = factor_map[ph.factor]
+                for lv in f.levels:
+                    value = lv.label if ph.name is None else lv.values[ph.name]
+                    why = templating.check_shell_value(ph.text, ctx, value)
+                    if why:
+                        raise node_error(nodes[key], f"{why} (level {lv.label!r} of factor "
+                                                     f"{f.name!r})")
 
     found_warnings = []
     key_marks = {k: kn.start_mark for k, kn, _v in mapping_items(nodes["factors"], "'factors'")}

@@ -179,7 +179,10 @@ def test_shell_true_quotes_values():
           n: ["; touch X", "$(touch X)"]
         """)
     argv, shell = exp.render_command(exp.command, {"n": "; touch X"})
-    assert argv is None and shell == "echo '; touch X' | wc -c"
+    # the value is assigned, quoted, on a line of its own and referenced in the command
+    assert argv is None and shell == "__bhv1='; touch X'\necho \"${__bhv1}\" | wc -c"
+    argv, shell = exp.render_command(exp.command, {"n": "plain-1.5"})
+    assert shell == "echo plain-1.5 | wc -c"  # nothing special in it: written in place
 
 
 def test_load_missing_file(tmp_path):
