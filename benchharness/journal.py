@@ -19,8 +19,10 @@ would cost about a third of a ``/bin/true`` run), and the journal is fsynced at
 the end; the folder itself is fsynced when created, so a power cut loses at
 most the last second. A torn last line (a crash mid-write) is set aside in
 ``runs.jsonl.torn`` on resume, never silently dropped. While a harness writes a
-folder it holds an exclusive ``fcntl.flock`` on ``.lock``; a second ``run`` or
-``--resume`` on it is refused.
+folder it holds an exclusive ``fcntl.flock`` on the folder itself (deleting
+files cannot undo it) and names itself, with its start time, in ``.lock``; a
+second ``run`` or ``--resume`` on it is refused, and so is one while the owner
+named there, or the harness named in ``inflight``, is alive.
 
 Nothing already measured is overwritten: a new run never writes into an
 existing non-empty folder, and resume only appends.
@@ -114,29 +116,78 @@ def new_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
     return folder
 
 
+def _busy(folder: Path, who: str = "another benchharness") -> ResultsFolderError:
+    return ResultsFolderError(
+        f"{folder}: {who} is writing this results folder right now; wait for it to finish "
+        "(or stop it) before running or resuming here")
+
+
 class FolderLock:
-    """Exclusive lock on a results folder while a harness writes it."""
+    """Exclusive lock on a results folder while a harness writes it.
+
+    The lock is an ``flock`` on the folder's own directory, so deleting or
+    replacing ``.lock`` cannot release it (where a file system refuses locks on
+    directories, ``.lock`` itself is locked). ``.lock`` names the owner (pid,
+    start time, boot; `benchharness.execute.procs`) while it holds the lock and
+    is emptied on release: a lock is never taken while the owner named there is
+    alive, whatever became of the lock itself.
+    """
 
     def __init__(self, folder: Path):
+        from benchharness.execute import procs
+
         self.path = folder / ".lock"
-        self.fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        self.fd = self.dir_fd = None
         try:
-            fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            self.dir_fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_CLOEXEC)
+            fcntl.flock(self.dir_fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
-            os.close(self.fd)
-            raise ResultsFolderError(
-                f"{folder}: another benchharness is writing this results folder right now; "
-                "wait for it to finish (or stop it) before running or resuming here") from None
-        os.ftruncate(self.fd, 0)
-        os.write(self.fd, f"{os.getpid()}\n".encode())
+            os.close(self.dir_fd)
+            raise _busy(folder) from None
+        except OSError:
+            if self.dir_fd is not None:
+                os.close(self.dir_fd)
+            self.dir_fd = None
+        try:
+            self.fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+            if self.dir_fd is None:
+                fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            owner = _read_json_bytes(os.pread(self.fd, 4096, 0))
+            if (isinstance(owner, dict) and owner.get("pid") != os.getpid()
+                    and procs.owner_alive(owner)):
+                raise _busy(folder, f"a live benchharness (pid {owner['pid']})")
+            os.ftruncate(self.fd, 0)
+            os.pwrite(self.fd, (json.dumps(procs.identity(os.getpid())) + "\n").encode(), 0)
+        except BaseException as e:
+            self._close()
+            if isinstance(e, BlockingIOError):
+                raise _busy(folder) from None
+            raise
+
+    def _close(self) -> None:
+        for name in ("fd", "dir_fd"):
+            fd = getattr(self, name)
+            if fd is not None:
+                try:
+                    os.close(fd)  # closing the last descriptor releases its flock
+                except OSError:
+                    pass
+                setattr(self, name, None)
 
     def release(self) -> None:
         if self.fd is not None:
             try:
-                fcntl.flock(self.fd, fcntl.LOCK_UN)
-            finally:
-                os.close(self.fd)
-                self.fd = None
+                os.ftruncate(self.fd, 0)  # no owner any more
+            except OSError:
+                pass
+        self._close()
+
+
+def _read_json_bytes(data: bytes):
+    try:
+        return json.loads(data.decode("utf-8", "replace").strip() or "null")
+    except ValueError:
+        return None
 
 
 class Journal:
@@ -162,13 +213,25 @@ class Journal:
         while n < len(line):  # pragma: no cover - only on short writes (full disk, signals)
             n += os.write(self.fd, line[n:])
 
-    def mark_inflight(self, run: int, pid: int, pgid: int) -> None:
-        """Record the run now executing (overwritten in place; read by --resume)."""
-        data = json.dumps({"run": run, "pid": pid, "pgid": pgid, "boot": _boot_id()}).encode()
-        os.pwrite(self.inflight_fd, data.ljust(160), 0)
+    def mark_inflight(self, run: int, pid: int, pgid: int, start=None) -> None:
+        """Record the run now executing (overwritten in place; read by --resume).
+
+        ``start``: (low, high) bounds of its first process's start time in clock
+        ticks; read from /proc here when not given. A record without it is never
+        acted on.
+        """
+        from benchharness.execute.procs import start_ticks
+
+        if start is None:
+            t = start_ticks(pgid)
+            start = (t, t) if t is not None else None
+        rec = {"run": run, "pid": pid, "pgid": pgid, "boot": _boot_id()}
+        if start is not None:
+            rec["start"] = list(start)
+        os.pwrite(self.inflight_fd, json.dumps(rec).encode().ljust(INFLIGHT_SIZE), 0)
 
     def clear_inflight(self) -> None:
-        os.pwrite(self.inflight_fd, b" " * 160, 0)
+        os.pwrite(self.inflight_fd, b" " * INFLIGHT_SIZE, 0)
 
     def _syncer(self) -> None:
         while not self._stop.wait(self._interval):
@@ -258,17 +321,14 @@ def record_head(run: Mapping, status: str) -> str:
             "replicate": run["replicate"], "levels": run["levels"], "status": status}
     return _encode_line(head)[:-1]
 
-_BOOT_ID = None
+#: Bytes of the in-flight record (the launcher's `INFLIGHT_SIZE` is the same).
+INFLIGHT_SIZE = 256
 
 
 def _boot_id() -> str:
-    global _BOOT_ID
-    if _BOOT_ID is None:
-        try:
-            _BOOT_ID = Path("/proc/sys/kernel/random/boot_id").read_text().strip()
-        except OSError:
-            _BOOT_ID = ""
-    return _BOOT_ID
+    from benchharness.execute.procs import boot_id
+
+    return boot_id()
 
 
 def read_inflight(folder: Path) -> dict | None:
@@ -285,52 +345,70 @@ def read_inflight(folder: Path) -> dict | None:
 
 
 def kill_leftover(folder: Path) -> str | None:
-    """Kill the process group of a run a dead harness left running; returns what was done."""
-    import signal
+    """Kill the process group of a run a dead harness left running; returns what was done.
+
+    Nothing is signalled unless it is the very process recorded (its start time
+    and the boot match; `benchharness.execute.procs`): an id that passed to
+    another process, another experiment's launcher, a record from an older
+    version without identities, all are left alone. Raises `ResultsFolderError`
+    when the harness named in the record is still alive (its lock was removed):
+    a folder is never taken from a live owner.
+    """
+    from benchharness.execute import procs
 
     info = read_inflight(folder)
     if not info or info.get("boot") != _boot_id():
         return None
+    harness = info.get("harness")
+    if (harness and harness != os.getpid()
+            and procs.matches(harness, info.get("hstart"))):
+        raise _busy(folder, f"a live benchharness (pid {harness})")
     # First the dead harness's launcher, if it still lives: it must not start
     # (or journal) anything once this harness reads the journal.
-    _stop_launcher(int(info.get("launcher") or 0))
-    pgid = int(info.get("pgid") or 0)
+    _stop_launcher(info.get("launcher"), info.get("lstart"))
+    return _stop_run(info, "the earlier harness")
+
+
+def _stop_run(info: Mapping, whose: str) -> str | None:
+    """SIGKILL the process group of an in-flight record if it is still the run's; a note."""
+    from benchharness.execute import procs
+
+    try:
+        pgid = int(info.get("pgid") or 0)
+    except (TypeError, ValueError):
+        return None
     if pgid <= 1:
         return None
+    start = info.get("start")
+    run = info.get("run")
+    if not (isinstance(start, list) and len(start) == 2):
+        if procs.stat_fields(pgid) is None and not procs.group_members(pgid):
+            return None
+        return (f"process group {pgid} (run {run}) may have been left running by {whose}; it "
+                "was not signalled: the record does not say which process it was (check with "
+                f"`ps -o pid,lstart,args -g {pgid}`)")
+    what = procs.kill_group_checked(pgid, start[0], start[1])
+    if what == "killed":
+        return f"stopped process group {pgid} left running by {whose} (run {run})"
+    if what == "leaderless":
+        return (f"process group {pgid} (run {run}) lost its first process; its other processes "
+                "cannot be told apart from an unrelated group and were not signalled (check "
+                f"with `ps -o pid,lstart,args -g {pgid}`)")
+    return None  # gone, or the id now names another process: nothing of ours is left
+
+
+def _stop_launcher(pid, start) -> None:
+    """SIGKILL a launcher process (checked by its start time and command line) and wait
+    until it is gone."""
+    from benchharness.execute import procs
+
     try:
-        os.killpg(pgid, signal.SIGKILL)
-    except ProcessLookupError:
-        return None
-    except PermissionError:
-        return f"could not stop process group {pgid} left by the earlier harness (not ours)"
-    return f"stopped process group {pgid} left running by the earlier harness (run {info.get('run')})"
-
-
-def _stop_launcher(pid: int) -> None:
-    """SIGKILL a launcher process (checked by its command line) and wait until it is gone."""
-    import select
-    import signal
-
-    if pid <= 1:
+        pid = int(pid or 0)
+    except (TypeError, ValueError):
         return
-    try:
-        with open(f"/proc/{pid}/cmdline", "rb") as fh:
-            cmdline = fh.read()
-        fd = os.pidfd_open(pid)
-    except OSError:
-        return
-    try:
-        if b"launcher.py" not in cmdline:
-            return  # the pid now belongs to another process
-        try:
-            signal.pidfd_send_signal(fd, signal.SIGKILL)
-        except OSError:
-            return
-        p = select.poll()
-        p.register(fd, select.POLLIN)
-        p.poll(5000)
-    finally:
-        os.close(fd)
+    if pid <= 1 or start is None or b"launcher.py" not in procs.cmdline(pid):
+        return  # no such launcher, or no identity to check it by
+    procs.kill_checked(pid, start, start, wait_s=5)
 
 
 def read_journal(path: Path, repair: bool = False) -> list[dict]:

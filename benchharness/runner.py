@@ -26,7 +26,7 @@ from pathlib import Path
 from typing import Mapping, Sequence
 
 from benchharness import journal as J
-from benchharness.errors import ResultsFolderError
+from benchharness.errors import ExecutionError, ResultsFolderError
 from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
 
 DEFAULT_BASE = Path("results")
@@ -743,6 +743,13 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
             except (ProcessLookupError, PermissionError):
                 pass
         jr.clear_inflight()
+    except ExecutionError as e:
+        # The launcher died (killed, crashed): its run was stopped by the
+        # executor where it could be identified; what finished is recorded.
+        note = getattr(executor, "stopped_runs", None)
+        raise ExecutionError(f"{e}{'; ' + note if note else ''}; the runs that finished are "
+                             f"recorded: continue with `benchharness run --resume {folder}`"
+                             ) from None
     finally:
         if mirror is not None and sys.exc_info()[0] is not None:
             mirror.drop()  # an error is on its way out: no half runs.csv stays behind

@@ -133,3 +133,226 @@ def test_placeholder_in_a_quoted_here_document_is_refused(tmp_path, cli):
     r = cli("plan", p)
     assert r.returncode == 2
     assert "quoted delimiter" in r.stderr and "exp.yaml:" in r.stderr
+
+
+# ---------------------------------------------------------------- processes that are not ours
+
+import signal  # noqa: E402
+import time  # noqa: E402
+
+from benchharness import journal as J  # noqa: E402
+from benchharness.execute import procs  # noqa: E402
+from benchharness.execute.local import LocalExecutor  # noqa: E402
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def _wait_for(cond, timeout=20.0, what="condition"):
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        v = cond()
+        if v:
+            return v
+        time.sleep(0.02)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+def _alive(pid, start):
+    return procs.matches(pid, start)
+
+
+def _unrelated_leader():
+    """A process of our own that leads its own session and group, like an unrelated
+    session leader that took a recycled id."""
+    p = subprocess.Popen(["sleep", "60"], start_new_session=True)
+    start = _wait_for(lambda: procs.start_ticks(p.pid), what="its start time")
+    return p, start
+
+
+def _inflight(folder, **rec):
+    folder.mkdir(exist_ok=True)
+    (folder / "inflight").write_text(json.dumps(rec).ljust(J.INFLIGHT_SIZE))
+
+
+def test_resume_leaves_an_unrelated_group_that_took_the_id(tmp_path):
+    p, start = _unrelated_leader()
+    try:
+        # The dead harness's run had this id; it started earlier than the process now holding it.
+        _inflight(tmp_path, run=3, pid=p.pid, pgid=p.pid, start=[start - 500, start - 400],
+                  boot=procs.boot_id(), launcher=0, lstart=0)
+        assert J.kill_leftover(tmp_path) is None
+        time.sleep(0.1)
+        assert p.poll() is None and _alive(p.pid, start)
+        # A record without an identity (older versions) is never acted on either; it says so.
+        _inflight(tmp_path, run=3, pid=p.pid, pgid=p.pid, boot=procs.boot_id(), launcher=0)
+        note = J.kill_leftover(tmp_path)
+        assert note and "not signalled" in note and str(p.pid) in note
+        assert p.poll() is None
+        # A record from another boot is ignored.
+        _inflight(tmp_path, run=3, pid=p.pid, pgid=p.pid, start=[start, start], boot="x")
+        assert J.kill_leftover(tmp_path) is None and p.poll() is None
+    finally:
+        p.kill()
+        p.wait()
+
+
+def test_resume_stops_the_run_it_recorded(tmp_path):
+    # Planted truth: the record names exactly this group (start time matches): it is stopped.
+    p, start = _unrelated_leader()
+    try:
+        _inflight(tmp_path, run=5, pid=p.pid, pgid=p.pid, start=[start, start],
+                  boot=procs.boot_id(), launcher=0, lstart=0)
+        note = J.kill_leftover(tmp_path)
+        assert note and f"stopped process group {p.pid}" in note and "(run 5)" in note
+        assert p.wait(timeout=5) == -signal.SIGKILL
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.wait()
+
+
+def test_another_experiments_launcher_is_never_killed(tmp_path):
+    # The dead harness's launcher had this id; another experiment's launcher holds it now.
+    with LocalExecutor() as other:
+        lstart = other._hello()["start"]
+        assert lstart is not None
+        _inflight(tmp_path, run=1, pid=0, pgid=0, start=[0, 0], boot=procs.boot_id(),
+                  launcher=other.launcher_pid, lstart=lstart - 1)
+        J.kill_leftover(tmp_path)
+        time.sleep(0.1)
+        assert other._proc.poll() is None
+        from benchharness.execute.base import RunSpec
+
+        assert other.execute(RunSpec(argv=("true",), env=dict(os.environ))).status == "ok"
+
+
+def _cli_proc(*args, cwd):
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(ROOT) + os.pathsep + env.get("PYTHONPATH", "")
+    env["NO_COLOR"] = "1"
+    return subprocess.Popen([PY, "-m", "benchharness", *map(str, args)], cwd=cwd, env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def _waiting_experiment(tmp_path, runs=2):
+    """Runs that wait for the file ``go`` (then end ok): a run stays in flight until told."""
+    return _exp(tmp_path, f"""\
+        experiment: waits
+        shell: true
+        command: while [ ! -e TMP/go ]; do sleep 0.02; done
+        replicates: {runs}
+        host_check: off
+        factors:
+          k: [a]
+        """)
+
+
+def _record(folder):
+    info = J.read_inflight(folder)
+    return info if info and info.get("pid") else None
+
+
+def _force_pid(pid: int, tries: int = 50):
+    """Start an unrelated session leader with exactly ``pid`` (root: /proc/sys/kernel/ns_last_pid)."""
+    for _ in range(tries):
+        try:
+            with open("/proc/sys/kernel/ns_last_pid", "w") as fh:
+                fh.write(str(pid - 1))
+        except OSError:
+            return None
+        p = subprocess.Popen(["sleep", "60"], start_new_session=True)
+        if p.pid == pid:
+            return p
+        p.kill()
+        p.wait()
+    return None
+
+
+@pytest.mark.skipif(os.geteuid() != 0, reason="forcing a process id needs root "
+                                              "(/proc/sys/kernel/ns_last_pid)")
+def test_pid_reuse_forced_then_resume_leaves_the_newcomer(tmp_path, cli):
+    p = _waiting_experiment(tmp_path)
+    out = tmp_path / "res"
+    h = _cli_proc("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    try:
+        info = _wait_for(lambda: _record(out), what="the in-flight record")
+        run_pid = info["pid"]
+    finally:
+        h.kill()  # the harness dies other than by Ctrl-C; its launcher stops the run
+        h.communicate()
+    _wait_for(lambda: not procs.matches(run_pid, *info["start"]), what="the run's end")
+    newcomer = _force_pid(run_pid)
+    if newcomer is None:
+        pytest.skip("could not force the process id here (other processes took it)")
+    try:
+        (tmp_path / "go").write_text("")
+        r = cli("run", "--resume", out, "--no-analysis", cwd=tmp_path)
+        assert r.returncode == 0, r.stderr
+        assert "stopped process group" not in r.stdout
+        assert newcomer.poll() is None  # the session leader that took the id lives
+        runs = J.read_journal(out / "runs.jsonl")
+        assert sorted(x["run"] for x in runs) == [0, 1]
+    finally:
+        newcomer.kill()
+        newcomer.wait()
+
+
+def test_killing_the_launcher_stops_the_run_and_says_how_to_resume(tmp_path):
+    p = _waiting_experiment(tmp_path)
+    out = tmp_path / "res"
+    h = _cli_proc("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    try:
+        info = _wait_for(lambda: _record(out), what="the in-flight record")
+        assert procs.matches(info["pid"], *info["start"])
+        # The launcher is a child of the harness we started.
+        assert procs.matches(info["launcher"], info["lstart"])
+        os.kill(info["launcher"], signal.SIGKILL)
+        _, err = h.communicate(timeout=30)
+    finally:
+        if h.poll() is None:
+            h.kill()
+            h.communicate()
+    assert h.returncode == 2
+    assert "launcher process died" in err and f"run --resume {out}" in err
+    assert "Traceback" not in err
+    # the harness stopped its run itself: nothing of it is left for a later resume
+    assert not procs.matches(info["pid"], *info["start"])
+    assert not procs.group_members(info["pgid"])
+
+
+def test_deleted_lock_never_lets_a_second_harness_take_a_live_folder(tmp_path, cli):
+    p = _waiting_experiment(tmp_path)
+    out = tmp_path / "res"
+    h = _cli_proc("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    try:
+        info = _wait_for(lambda: _record(out), what="the in-flight record")
+        (out / ".lock").unlink()
+        r = cli("run", "--resume", out, "--no-analysis", cwd=tmp_path)
+        assert r.returncode == 2
+        assert "is writing this results folder" in r.stderr
+        # the first harness's launcher and run were not touched
+        assert procs.matches(info["launcher"], info["lstart"])
+        assert procs.matches(info["pid"], *info["start"])
+        (tmp_path / "go").write_text("")
+        _, err = h.communicate(timeout=60)
+    finally:
+        if h.poll() is None:
+            h.kill()
+            h.communicate()
+    assert h.returncode == 0, err
+    assert [x["status"] for x in J.read_journal(out / "runs.jsonl")] == ["ok", "ok"]
+
+
+def test_a_lock_naming_a_live_owner_is_refused(tmp_path):
+    owner, start = _unrelated_leader()
+    try:
+        (tmp_path / ".lock").write_text(json.dumps(procs.identity(owner.pid)))
+        with pytest.raises(J.ResultsFolderError, match=f"live benchharness \\(pid {owner.pid}\\)"):
+            J.FolderLock(tmp_path)
+    finally:
+        owner.kill()
+        owner.wait()
+    # its owner gone, the same lock file no longer stands in the way
+    lock = J.FolderLock(tmp_path)
+    lock.release()
+    assert (tmp_path / ".lock").read_text() == ""

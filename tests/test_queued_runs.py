@@ -158,7 +158,7 @@ def test_resume_stops_a_launcher_the_dead_harness_left(tmp_path):
     try:
         (tmp_path / "inflight").write_text(json.dumps(
             {"run": 3, "pid": 0, "pgid": 0, "boot": J._boot_id(),
-             "launcher": ex.launcher_pid}).ljust(160))
+             "launcher": ex.launcher_pid, "lstart": ex._hello()["start"]}).ljust(160))
         J.kill_leftover(tmp_path)
         deadline = time.monotonic() + 5
         while ex._proc.poll() is None and time.monotonic() < deadline:

@@ -61,7 +61,7 @@ import time
 HEADER_SIZE = 4
 F_SETPIPE_SZ = 1031
 PIPE_SIZE = 1 << 20   # queue and reply pipes are widened to this where allowed
-INFLIGHT_SIZE = 160   # bytes of the in-flight record, padded with spaces
+INFLIGHT_SIZE = 256   # bytes of the in-flight record, padded with spaces
 CONDITIONS_EVERY_NS = 10_000_000  # runs starting this close share one reading
 DONE_BATCH = 64       # journalled runs reported to the harness at once, at most
 DONE_EVERY_NS = 20_000_000  # ... and at least this often while runs go on
@@ -272,6 +272,19 @@ def _tail_text(data, limit=300):
     return out
 
 
+CLOCK_BOOTTIME = getattr(time, "CLOCK_BOOTTIME", time.CLOCK_MONOTONIC)
+
+
+def _start_ticks(pid):
+    """Start time of ``pid`` in clock ticks after boot (field 22 of /proc/PID/stat), or None."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as f:
+            stat = f.read()
+        return int(stat[stat.rfind(b")") + 2:].split()[19])
+    except (OSError, IndexError, ValueError):
+        return None
+
+
 def _is_zombie(pid):
     try:
         with open(f"/proc/{pid}/stat", "rb") as f:
@@ -315,6 +328,12 @@ class Launcher:
         if qfd is not None:
             self.idle.register(qfd, select.POLLIN)
         self.pid = os.getpid()
+        # Identities recorded beside process ids (benchharness.execute.procs):
+        # start times in clock ticks after boot, ours and the harness's.
+        self.tick_ns = 1_000_000_000 // (os.sysconf("SC_CLK_TCK") or 100)
+        self.start = _start_ticks(self.pid)
+        self.harness = os.getppid()
+        self.harness_start = _start_ticks(self.harness)
         self.cwd0 = os.getcwd()
         self.devnull = os.open(os.devnull, os.O_RDWR | os.O_CLOEXEC)
         self.libc, self.ctypes = _libc()
@@ -390,13 +409,19 @@ class Launcher:
         return cond
 
     def inflight_slot(self, inflight):
-        """(shared mapping of the in-flight file, record text with two ``%d`` for
-        the child's pid and process group), or None if the file cannot be mapped.
+        """(shared mapping of the in-flight file, record text with four ``%d`` for
+        the child's pid and process group and the bounds of its start time), or
+        None if the file cannot be mapped.
 
         The launcher records each running child there (for a later resume), by
         a store into the mapping: the page cache is what a resume reads, and a
         store costs no system call (a ``pwrite`` per run also updated the file's
-        times on disk).
+        times on disk). Beside each id goes what identifies its process
+        (`benchharness.execute.procs`): the boot, the child's start time as the
+        boot clock read just before and just after the spawn (in clock ticks,
+        the unit of ``/proc/PID/stat``), and the start times of the launcher
+        and of the harness, so that a later resume signals none of them unless
+        it is that very process.
         """
         path, run_id, boot = inflight[:3]
         key = tuple(inflight[::3])  # path and, when given, the file's inode number
@@ -416,8 +441,10 @@ class Launcher:
                     os.close(fd)
             except (OSError, ValueError):
                 return None  # the record helps a later resume; the run itself goes on
-        return m, ('{"run": %d, "pid": %%d, "pgid": %%d, "boot": "%s", "launcher": %d}'
-                   % (run_id, boot, self.pid))
+        return m, ('{"run":%d,"pid":%%d,"pgid":%%d,"start":[%%d,%%d],"boot":"%s",'
+                   '"launcher":%d,"lstart":%d,"harness":%d,"hstart":%d}'
+                   % (run_id, boot, self.pid, self.start or -1, self.harness,
+                      self.harness_start or -1))
 
     def hello(self):
         try:
@@ -425,7 +452,8 @@ class Launcher:
             pidfd = ""
         except (AttributeError, OSError) as e:
             pidfd = str(e) or type(e).__name__
-        return {"op": "hello", "pid": self.pid, "subreaper": self.subreaper, "pidfd_error": pidfd,
+        return {"op": "hello", "pid": self.pid, "start": self.start,
+                "subreaper": self.subreaper, "pidfd_error": pidfd,
                 "aslr_control": self.aslr_control, "aslr_reason": self.aslr_reason,
                 "children_file": os.path.exists(f"/proc/{self.pid}/task/{self.pid}/children")}
 
@@ -747,6 +775,8 @@ class Launcher:
                             del b[:len(b) - cap]
             open_pipes.clear()
 
+        # The boot clock before and after the spawn bound the child's start time.
+        start_lo = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
         pid, t0, err = self.spawn(path, argv, env, cpus, nice, no_aslr)
         if pid is None and self.resolved.pop(key, None) is not None:
             # The program found for an earlier run is gone or changed: look again.
@@ -758,11 +788,13 @@ class Launcher:
             return _result(started_at, extra, "failed", err, conditions)
         pidfd = os.pidfd_open(pid)
         poller.register(pidfd, select.POLLIN)
+        start_hi = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
         if slot is not None:
-            slot[0][:] = (slot[1] % (pid, pid)).encode().ljust(INFLIGHT_SIZE)
+            slot[0][:] = (slot[1] % (pid, pid, start_lo, start_hi)).encode().ljust(INFLIGHT_SIZE)
         run["pid"] = pid
         if g("notify", True):
-            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid})
+            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid,
+                            "start": (start_lo, start_hi)})
         deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
 
         while True:

@@ -22,7 +22,6 @@ import fcntl
 import marshal
 import os
 import select
-import signal
 import subprocess
 import sys
 import threading
@@ -88,7 +87,11 @@ class LocalExecutor:
         self.launcher_pid: int = self._proc.pid
         #: Writes RunSpec.inflight_path itself (the runner then needs no on_start call).
         self.records_inflight: bool = True
-        self._current: tuple[int, int] | None = None
+        self._current: tuple | None = None  # (pid, pgid, start bounds) of the run
+        self._inflight_path: str | None = None  # where the launcher records its runs
+        self._launcher_start: int | None = None
+        #: What was done about a run left when the launcher died (a note), if anything.
+        self.stopped_runs: str | None = None
         self._last_env: dict | None = None
         self._greeting: dict | None = None
         if wait:
@@ -108,6 +111,7 @@ class LocalExecutor:
                 raise ExecutionError("local execution needs Linux 5.3 or later (pidfd_open); "
                                      f"here it fails: {hello['pidfd_error']}")
             self._greeting = hello
+            self._launcher_start = hello.get("start")
         return self._greeting
 
     @property
@@ -160,14 +164,34 @@ class LocalExecutor:
             raise ExecutionError(f"the launcher process is gone ({e.strerror or e})") from e
 
     def _cleanup_after_death(self) -> None:
-        """The launcher is gone: kill the run it was watching, release the pipes."""
+        """The launcher is gone: kill the run it was watching, release the pipes.
+
+        The run is known from the launcher's ``started`` reply or, when runs go
+        without one, from the in-flight record the launcher keeps; its process
+        group is killed only if its first process is still the one the launcher
+        started (`procs.kill_group_checked`), so nothing else is ever signalled.
+        Processes of the run that left its group (``setsid``) were the
+        launcher's to find; with the launcher killed they are out of reach.
+        """
+        from benchharness.execute import procs
+
+        self._release(wait_s=5)  # the launcher reaped: it writes no record any more
         if self._current is not None:
-            try:
-                os.killpg(self._current[1], signal.SIGKILL)
-            except OSError:
-                pass
+            pid, pgid, start = self._current
+            if start is not None:
+                procs.kill_group_checked(pgid, start[0], start[1])
             self._current = None
-        self._release(wait_s=5)
+        elif self._inflight_path is not None:
+            from benchharness.journal import _read_json_bytes, _stop_run
+
+            try:
+                with open(self._inflight_path, "rb") as fh:
+                    info = _read_json_bytes(fh.read())
+            except OSError:
+                info = None
+            if isinstance(info, dict) and info.get("launcher") == self.launcher_pid \
+                    and info.get("lstart") == self._launcher_start:
+                self.stopped_runs = _stop_run(info, "the launcher")
 
     def _release(self, wait_s: float) -> None:
         """Close our pipe ends and reap the launcher (killed if it does not exit in time)."""
@@ -253,6 +277,7 @@ class LocalExecutor:
             except OSError:
                 ino = 0
             req["inflight"] = (path, int(spec.run_id or 0), _boot_id(), ino)
+            self._inflight_path = path
         return req
 
     def open_stream(self, journal_path: str | os.PathLike, freq_files: dict | None = None,
@@ -289,7 +314,7 @@ class LocalExecutor:
                 while_running()
             msg = self._recv()
             if msg.get("op") == "started":
-                self._current = (msg["pid"], msg["pgid"])
+                self._current = (msg["pid"], msg["pgid"], msg.get("start"))
                 if on_start is not None:
                     on_start(msg["pid"], msg["pgid"])
                 msg = self._recv()
