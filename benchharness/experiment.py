@@ -47,7 +47,7 @@ CORE_KEYS = ("experiment", "about", "command", "shell", "factors", "replicates",
              "max_runs")
 
 #: Sections validated by later capabilities; kept as raw YAML nodes.
-SECTION_KEYS = ("design", "gate", "choose", "compare", "metrics", "expect", "samples", "pin",
+SECTION_KEYS = ("design", "gate", "choose", "roles", "compare", "metrics", "expect", "samples", "pin",
                 "nice", "clean_env", "pad_env", "aslr", "cold_cache", "perf", "host_check")
 
 ORDERS = ("randomized", "blocked", "listed")

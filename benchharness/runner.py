@@ -237,6 +237,7 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
             "started_at": J.utc_iso(),
             "state": "running",
             "runs_planned": len(plan.runs),
+            "roles": _roles(exp),
         }
         if scheduler:
             session["scheduler"] = scheduler
@@ -878,3 +879,10 @@ def format_seconds(x: float | None) -> str:
     if x < 1:
         return f"{x * 1e3:.2f} ms"
     return f"{x:.3f} s"
+
+
+def _roles(exp) -> dict:
+    """The factors' roles, recorded in session.json (declared, or how they were guessed)."""
+    from benchharness.roles import factor_roles
+
+    return factor_roles(exp).to_dict()

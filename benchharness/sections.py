@@ -25,6 +25,10 @@ def validate_sections(exp) -> None:
     _check_controls(exp, controls)
     quality_config(exp)  # expect / metrics / samples / perf
     _check_compare(exp)
+    if "roles" in exp.sections:
+        from benchharness.roles import declared_roles
+
+        declared_roles(exp)
     if "choose" in exp.sections:
         from benchharness.choose.config import choose_settings
 

@@ -62,6 +62,8 @@ class Analysis:
     position: Any = field(default=None, repr=False, compare=False)
     run: Any = field(default=None, repr=False, compare=False)
     fit: Any = field(default=None, repr=False, compare=False)
+    #: the role of every factor (setting, workload, environment), see benchharness.roles
+    roles: dict | None = None
 
     @property
     def anova(self):
@@ -91,6 +93,7 @@ class Analysis:
             "art": self.art,
             "notes": list(self.notes),
             **({"fraction": self.fraction} if self.fraction is not None else {}),
+            "roles": self.roles,
         })
 
     def to_json(self) -> str:
@@ -473,7 +476,16 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)), counts=counts,
         fraction=fraction,
         residuals=resid, fitted=fit.fitted[cells.row_cell], studentized=studentized,
-        position=prep.position, run=prep.run, fit=fit)
+        position=prep.position, run=prep.run, fit=fit,
+        roles=_roles_of(prep.experiment, fnames, flevels))
+
+
+def _roles_of(experiment, names, levels) -> dict:
+    """Each factor's role: declared in the experiment file, else guessed (benchharness.roles)."""
+    from benchharness.roles import factor_roles
+
+    return factor_roles(experiment, factors=list(names),
+                        levels={f: list(lv) for f, lv in zip(names, levels)}).to_dict()
 
 
 def _load_check(resid, load, alpha):

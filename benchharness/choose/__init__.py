@@ -53,6 +53,14 @@ class Choice:
     runs_dropped: int = 0
     #: settings that were run but have no ok run with a value of the response
     without_runs: list = field(default_factory=list)
+    #: the role of every factor and where it came from (`benchharness.roles.Roles.to_dict`)
+    roles: dict = field(default_factory=dict)
+    #: the declared default (``prefer``), only the factors actually declared
+    declared_default: dict = field(default_factory=dict)
+    #: the practical margin of the trade-off front (with ``also``), a fraction
+    within: float | None = None
+    #: one entry per limit: what it asks, how it was judged, which settings meet it
+    limits: list = field(default_factory=list)
 
     def to_dict(self) -> dict:
         d = {
@@ -73,6 +81,9 @@ class Choice:
             "runs_used": self.runs_used,
             "runs_dropped": self.runs_dropped,
             "without_runs": [dict(w) for w in self.without_runs],
+            "roles": dict(self.roles),
+            "declared_default": dict(self.declared_default),
+            "limits": [dict(x) for x in self.limits],
             "candidates": [dict(c) for c in self.candidates],
             "reasons": list(self.reasons),
         }
@@ -80,7 +91,91 @@ class Choice:
             d["also"] = list(self.also)
             d["pareto"] = [dict(p) for p in (self.pareto or [])]
             d["responses"] = {k: dict(v) for k, v in self.responses.items()}
+            d["within"] = self.within
         return d
+
+
+#: The practical margin of the trade-off front when none is given (`--within`).
+DEFAULT_WITHIN = 0.03
+
+
+def _within(x) -> float:
+    """A margin from 0.03, "3%" or "0.03"; `UsageError` when it is not one."""
+    if isinstance(x, str):
+        from benchharness.yamlnodes import parse_percent
+
+        v = parse_percent(x)
+    else:
+        try:
+            v = float(x)
+        except (TypeError, ValueError):
+            v = None
+    if v is None or not np.isfinite(v) or not 0 <= v < 1:
+        raise UsageError(f"--within {x!r}: give a margin such as 3% (at least 0%, under 100%)")
+    return float(v)
+
+
+def _limit_list(x) -> list:
+    from benchharness.choose.limits import Limit, parse_limit
+
+    if isinstance(x, (str, Limit)):
+        x = [x]
+    return [v if isinstance(v, Limit) else parse_limit(str(v)) for v in x]
+
+
+def _resolve_roles(roles, experiment, df, factors, across_given):
+    """The roles to use: given here, else declared in the file, else guessed."""
+    from benchharness.roles import ROLES, Roles, factor_roles
+
+    if isinstance(roles, Roles):
+        return roles
+    if roles is not None:
+        if not isinstance(roles, Mapping):
+            raise UsageError("roles must map a role (setting, workload, environment) to "
+                             "factor names")
+        from benchharness.roles import declared_roles
+
+        base = declared_roles(experiment)
+        role = {}
+        if base is not None:
+            for r in ROLES:
+                role.update({f: r for f in getattr(base, r)})
+        given: dict = {}
+        for r, fs in roles.items():
+            if r not in ROLES:
+                raise UsageError(f"unknown role {r!r}; roles are {', '.join(ROLES)}")
+            for f in _as_list(fs):
+                if f not in factors:
+                    raise UsageError(f"roles: {f!r} is not a factor (factors: "
+                                     f"{', '.join(factors)})")
+                if f in given and given[f] != r:
+                    raise UsageError(f"{f!r} is given two roles ({given[f]} and {r}); give "
+                                     "each factor one role")
+                given[f] = r
+        role.update(given)
+        return Roles(setting=tuple(f for f in factors if role.get(f, "setting") == "setting"),
+                     workload=tuple(f for f in factors if role.get(f) == "workload"),
+                     environment=tuple(f for f in factors if role.get(f) == "environment"),
+                     source="command line")
+    levels = None
+    if experiment is None:
+        import pandas as pd
+
+        levels = {}
+        for f in factors:
+            col = df[f]
+            levels[f] = ([str(c) for c in col.cat.categories]
+                         if isinstance(col.dtype, pd.CategoricalDtype)
+                         else [str(v) for v in pd.unique(col.astype(str))])
+    return factor_roles(experiment, factors=factors, levels=levels, exclude=across_given)
+
+
+def _half_widths(m, confidence):
+    """Half-width of each setting's own interval (analysis scale), for the figure."""
+    from scipy.stats import t
+
+    q = float(t.ppf(0.5 + confidence / 2, m.df)) if np.isfinite(m.df) else 1.96
+    return q * m.sigma * np.sqrt(m.weights)
 
 
 def _as_list(x) -> list[str]:
@@ -101,7 +196,8 @@ def _describe(setting: Mapping) -> str:
 
 def choose(data, response: str | None = "wall_s", factors=None, across=None, also=None,
            confidence: float | None = 0.95, prefer: Mapping | None = None, better=None,
-           scale: str = "auto", residual: str = "auto", block=None) -> Choice:
+           scale: str = "auto", residual: str = "auto", block=None, roles=None,
+           within=None, limits=None) -> Choice:
     """Choose a default setting from a runs table.
 
     ``data``: a DataFrame, a CSV path or a results folder. ``factors``: the
@@ -118,10 +214,20 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     merged over the section's. ``block``: None/"auto" fits the default block
     term (``block`` for ``order: blocked`` experiments, ``host`` when the runs
     span several hosts), a column name fits that one, False fits none.
+
+    ``roles``: a `benchharness.roles.Roles` or a mapping role -> factors
+    (``{"workload": ["size"]}``; unnamed factors are settings) overriding the
+    experiment's ``roles:`` section. Only settings are chosen; workloads and
+    environments join ``across``. With no roles declared anywhere, factors
+    that look like inputs are treated as workloads (`benchharness.roles`),
+    and the reasons say so. ``within``: the practical margin of the
+    trade-off front (a fraction, 0.03, or text, "3%"; default 3%).
+    ``limits``: constraints such as ``"max_rss_kib within 5%"`` (see
+    `benchharness.choose.limits`); only settings that meet them are chosen.
     """
     from benchharness.choose.config import choose_settings, load_source, metric_directions
     from benchharness.choose.mcb import mcb
-    from benchharness.choose.model import fit_response, level_orders
+    from benchharness.choose.model import fit_response, level_orders, subset_settings
     from benchharness.choose.pareto import pareto_front
     from benchharness.choose.prefer import preference_rank, resolve_prefer
     from benchharness.choose.robust import robust_choice
@@ -139,8 +245,10 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
         raise UsageError(f"confidence must be a number between 0 and 1, not {confidence!r}")
     if not 0 < confidence < 1:
         raise UsageError(f"confidence must be between 0 and 1 (e.g. 0.95), not {confidence}")
-    across = _as_list(section.get("across") if across is None else across)
+    across_given = _as_list(section.get("across") if across is None else across)
     also = _as_list(section.get("also") if also is None else also)
+    within = _within(section.get("within", DEFAULT_WITHIN) if within is None else within)
+    limits = list(section.get("limits", []) if limits is None else _limit_list(limits))
     prefer = {**section.get("prefer", {}), **{str(k): str(v) for k, v in (prefer or {}).items()}}
     if factors_list is None:
         if experiment is not None:
@@ -148,12 +256,25 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
         else:
             raise UsageError("name the factors (factors=... / --factors A,B) for a table "
                              "without an experiment file")
-    for c in factors_list + across:
+    for c in factors_list + across_given:
         if c not in df.columns:
             raise DataError(f"column {c!r} is not in the table")
+    role_info = _resolve_roles(roles, experiment, df, factors_list, across_given)
+    across = list(dict.fromkeys([f for f in factors_list if f in role_info.conditions]
+                                + across_given))
     control = [f for f in factors_list if f not in across]
     if not control:
-        raise UsageError("every factor is in --across; nothing is left to choose")
+        if not role_info.declared and role_info.workload:
+            from benchharness.roles import declaration_text
+
+            raise UsageError(
+                "every factor looks like an input or is in --across, so nothing is left to "
+                f"choose ({'; '.join(f'{f}: {role_info.reasons[f]}' for f in role_info.workload)}"
+                "); declare the settings, e.g. roles: {setting: ["
+                + ", ".join(role_info.workload) + "]} or --setting "
+                + ",".join(role_info.workload))
+        raise UsageError("every factor is in --across or declared a workload or environment; "
+                         "nothing is left to choose")
     also = [a for a in also if a != response]
 
     directions = metric_directions(experiment)
@@ -172,15 +293,55 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
                             scale=scale if resp == response else "auto", orders=orders,
                             residual=residual, block=block)
 
-    main = fit(response)
-    settings = main.settings
-    k = len(settings)
+    full = fit(response)
+    all_settings = full.settings
     names = tuple(control)
 
     def as_map(s):
         return dict(zip(names, s))
 
     default, declared = resolve_prefer(prefer, names, orders)
+
+    # Pareto front over several responses (over every setting, before any limit)
+    pareto_idx = None
+    dominated_by = [None] * len(all_settings)
+    responses_info: dict = {}
+    fitted = {response: full}
+
+    def fit_same(resp, what):
+        if resp not in fitted:
+            m = fit(resp)
+            if m.settings != all_settings:
+                raise DataError(f"{resp!r} ({what}) is missing for some settings that have "
+                                f"{response!r}")
+            fitted[resp] = m
+        return fitted[resp]
+
+    if also:
+        models = [full] + [fit_same(a, "--also") for a in also]
+        par = pareto_front(models, confidence, within=within)
+        pareto_idx = list(par.front)
+        dominated_by = list(par.dominated_by)
+        for m, q, mg in zip(models, par.allowance, par.margins):
+            responses_info[m.response] = {
+                "better": m.better, "scale": m.scale, "sigma": m.sigma, "df": m.df,
+                "residual_model": m.residual_model, "allowance": q, "margin": mg,
+                "means": [float(x) for x in m.to_response_units(m.setting_means)],
+                "half_width": [float(x) for x in _half_widths(m, confidence)],
+            }
+
+    # Limits ("max_rss_kib within 5%"): which settings may be chosen at all
+    limit_results = []
+    eligible = list(range(len(all_settings)))
+    if limits:
+        from benchharness.choose.limits import apply_limits
+
+        limit_models = [fit_same(lim.response, "a limit") for lim in limits]
+        limit_results, eligible = apply_limits(limits, limit_models, confidence)
+    main = full if len(eligible) == len(all_settings) else subset_settings(full, eligible)
+    settings = main.settings
+    k = len(settings)
+
     g = main.goodness
     rank = preference_rank(settings, names, default, declared, g)
 
@@ -199,36 +360,17 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     def env_map(e):
         return dict(zip(main.across, main.environments[e]))
 
-    # Pareto front over several responses
-    pareto_idx = None
-    dominated_by = [None] * k
-    responses_info: dict = {}
-    if also:
-        models = [main]
-        for a in also:
-            m = fit(a)
-            if m.settings != settings:
-                raise DataError(f"{a!r} is missing for some settings that have {response!r}")
-            models.append(m)
-        par = pareto_front(models, confidence)
-        pareto_idx = list(par.front)
-        dominated_by = list(par.dominated_by)
-        for m, q in zip(models, par.allowance):
-            responses_info[m.response] = {
-                "better": m.better, "scale": m.scale, "sigma": m.sigma, "df": m.df,
-                "residual_model": m.residual_model, "allowance": q,
-                "means": [float(x) for x in m.to_response_units(m.setting_means)],
-            }
-
-    means_units = main.to_response_units(main.setting_means)
-    candidates = []
+    sub_dominated = [dominated_by[f] for f in eligible]
+    means_full = full.to_response_units(full.setting_means)
+    candidates: list = [None] * len(all_settings)
     for i, s in enumerate(settings):
+        fi = eligible[i]
         # loss vs the best of the others (+0.0 turns -0.0 into 0.0)
         loss_low, loss_high = -res.high[i] + 0.0, -res.low[i] + 0.0
         worst_case = ratio(loss_high) if is_log else loss_high
         c = {
             "setting": as_map(s),
-            "mean": float(means_units[i]),
+            "mean": float(means_full[fi]),
             "runs": int(main.cell_counts[i].sum()),
             "tied": bool(res.tied[i]),
             "recommended": i == best_i,
@@ -243,12 +385,33 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
             "mean_loss": float(rob.mean_loss[i]),
             "preference_rank": int(rank[i]),
         }
+        if limits:
+            c["within_limits"] = True
         if also:
-            c["on_front"] = i in pareto_idx
-            c["dominated_by"] = None if dominated_by[i] is None else as_map(settings[dominated_by[i]])
+            c["on_front"] = fi in pareto_idx
+            c["dominated_by"] = (None if dominated_by[fi] is None
+                                 else as_map(all_settings[dominated_by[fi]]))
         c["reason"] = _candidate_reason(i, c, res, best_i, top_i, default, declared, names,
-                                        is_log, confidence, settings, dominated_by, bool(also))
-        candidates.append(c)
+                                        is_log, confidence, settings, sub_dominated,
+                                        all_settings, bool(also), within)
+        candidates[fi] = c
+    for fi, s in enumerate(all_settings):
+        if candidates[fi] is not None:
+            continue
+        over = [lr for lr in limit_results if not lr["meets"][fi]]
+        c = {"setting": as_map(s), "mean": float(means_full[fi]),
+             "runs": int(full.cell_counts[fi].sum()), "tied": False, "recommended": False,
+             "loss_vs_best_of_others": None, "ratio_vs_best_of_others": None,
+             "worst_case_loss": None, "worst_ratio": None, "worst_loss": None,
+             "worst_environment": None, "mean_ratio": None, "mean_loss": None,
+             "preference_rank": None, "within_limits": False}
+        if also:
+            c["on_front"] = fi in pareto_idx
+            c["dominated_by"] = (None if dominated_by[fi] is None
+                                 else as_map(all_settings[dominated_by[fi]]))
+        c["reason"] = "outside the limits: " + "; ".join(
+            _limit_miss_words(lr, fi, confidence) for lr in over)
+        candidates[fi] = c
 
     robust = {"setting": as_map(settings[rob.robust]), "worst_ratio": ratio(rob.worst_loss[rob.robust]),
               "worst_loss": float(rob.worst_loss[rob.robust]),
@@ -266,8 +429,11 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
             "on_average_loss": float(rob.loss[a, e]), "robust_loss": float(rob.loss[r, e]),
         }
 
-    reasons = _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob,
-                           disagreement, pareto_idx, also, is_log, confidence, default, declared)
+    reasons = _role_reasons(role_info, names, across_given)
+    reasons += _limit_reasons(limit_results, all_settings, eligible, as_map, confidence)
+    reasons += _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob,
+                            disagreement, pareto_idx, also, is_log, confidence, default,
+                            declared, all_settings, within)
 
     return Choice(
         response=response, better=main.better, scale=main.scale, confidence=confidence,
@@ -278,10 +444,14 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
         residual={"model": main.residual_model, "block": main.block, "sigma": main.sigma,
                   "df": main.df, "critical": list(res.critical)},
         prefer=dict(default), also=tuple(also),
-        pareto=None if pareto_idx is None else [as_map(settings[i]) for i in pareto_idx],
-        responses=responses_info, reasons=reasons, runs_used=main.n_runs,
-        runs_dropped=main.dropped_runs,
-        without_runs=[as_map(w) for w in main.without_runs],
+        pareto=None if pareto_idx is None else [as_map(all_settings[i]) for i in pareto_idx],
+        responses=responses_info, reasons=reasons, runs_used=full.n_runs,
+        runs_dropped=full.dropped_runs,
+        without_runs=[as_map(w) for w in full.without_runs],
+        roles=role_info.to_dict(), declared_default={f: default[f] for f in names
+                                                     if f in declared},
+        within=within if also else None,
+        limits=[_limit_dict(lr, all_settings, as_map) for lr in limit_results],
     )
 
 
@@ -312,7 +482,7 @@ def _loss_words(x: float, is_log: bool) -> str:
 
 
 def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log, confidence,
-                      settings, dominated_by, with_also) -> str:
+                      settings, dominated_by, all_settings, with_also, within) -> str:
     conf = f"{confidence * 100:g}%"
     hi = c["loss_vs_best_of_others"]["high"]
     lo = c["loss_vs_best_of_others"]["low"]
@@ -322,10 +492,16 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
             parts.append("recommended: the best estimate")
         else:
             top = _describe(dict(zip(names, settings[top_i])))
-            parts.append(f"recommended: tied with the best estimate ({top}) and closer to "
-                         "the default")
-        if all(v == default[f] for f, v in zip(names, settings[i])):
+            parts.append(f"recommended: tied with the best estimate ({top}) and "
+                         + ("closer to the declared default" if declared
+                            else "first in the listed order of levels"))
+        keeps = declared and all(v == default[f] for f, v in zip(names, settings[i])
+                                 if f in declared)
+        if keeps and set(declared) == set(names):
             parts.append("it is the current default")
+        elif keeps:
+            parts.append("it keeps the declared default ("
+                         + ", ".join(f"{f}={default[f]}" for f in names if f in declared) + ")")
     if res.tied[i]:
         if lo >= 0 and hi <= 0:
             parts.append("as good as the best (the data show no difference at all)")
@@ -345,13 +521,91 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
         if d is None:
             parts.append("on the trade-off front")
         else:
-            parts.append("off the trade-off front (beaten on every response by "
-                         + _describe(dict(zip(names, settings[d]))) + ")")
+            margin = f" by more than {within * 100:g}%" if within else ""
+            parts.append("off the trade-off front ("
+                         + _describe(dict(zip(names, all_settings[d])))
+                         + f" is better on at least one response{margin} and not worse on any"
+                         + (f" beyond {within * 100:g}%" if within else "") + ")")
     return "; ".join(parts)
 
 
+def _role_reasons(roles, names, across_given) -> list[str]:
+    """What was chosen among and what was held as a condition, and on whose word."""
+    from benchharness.roles import declaration_text
+
+    chosen = ", ".join(names)
+    extra = [a for a in across_given if a not in roles.conditions]
+    if roles.declared:
+        conds = [f"{r}s {', '.join(getattr(roles, r))}" for r in ("workload", "environment")
+                 if getattr(roles, r)]
+        where = "the experiment file" if roles.source == "experiment file" else "the command line"
+        if not conds:
+            return []
+        return [f"Roles from {where}: choosing among the settings {chosen}; the "
+                + " and ".join(conds) + " are conditions the choice must hold up across."]
+    settings = [f for f in roles.setting if f in names]
+    out = []
+    if roles.workload:
+        why = "; ".join(f"{f} ({roles.reasons[f]})" for f in roles.workload)
+        out.append(
+            f"No roles are declared, so factors that look like inputs are treated as "
+            f"workloads and never recommended: {why}. "
+            f"Treated as settings: {', '.join(settings) or 'none'} (nothing marks them as "
+            f"inputs). To be sure, declare them in the experiment file: "
+            f"{declaration_text(roles)} (for a CSV: --workload {','.join(roles.workload)}).")
+    else:
+        out.append(
+            f"No roles are declared: every factor ({', '.join(settings) or chosen}) is treated "
+            "as a setting, since none looks like an input"
+            + (f" ({', '.join(extra)} held as conditions by --across)" if extra else "")
+            + ". If some are inputs or machines, declare them, e.g. "
+              "roles: {workload: [...], environment: [...]}.")
+    return out
+
+
+def _limit_miss_words(lr, fi, confidence) -> str:
+    log = lr["scale"] == "log"
+    if lr["confident"]:
+        amount = (_pct(lr["worst_ratio"][fi]) if log else f"{lr['worst_excess'][fi]:.4g}")
+        how = f"may be up to {amount} worse than the best ({confidence * 100:g}% confidence)"
+    else:
+        amount = _pct(lr["estimate_ratio"][fi]) if log else "more than the limit"
+        how = f"is estimated {amount} worse than the best"
+    return f"{lr['response']} {how}; the limit is {lr['within'] * 100:g}%"
+
+
+def _limit_dict(lr, all_settings, as_map) -> dict:
+    """A limit result for the JSON: per setting, what bounds it and whether it meets it."""
+    log = lr["scale"] == "log"
+    rows = []
+    for i, s in enumerate(all_settings):
+        rows.append({"setting": as_map(s), "meets": lr["meets"][i],
+                     "worst_ratio": lr["worst_ratio"][i] if log else None,
+                     "worst_excess": None if log else lr["worst_excess"][i],
+                     "estimate_ratio": lr["estimate_ratio"][i] if log else None})
+    return {"text": lr["text"], "response": lr["response"], "within": lr["within"],
+            "better": lr["better"], "scale": lr["scale"], "confident": lr["confident"],
+            "best": as_map(all_settings[lr["best"]]),
+            "met_by": [r["setting"] for r in rows if r["meets"]], "settings": rows}
+
+
+def _limit_reasons(limit_results, all_settings, eligible, as_map, confidence) -> list[str]:
+    out = []
+    for lr in limit_results:
+        n_meet = sum(bool(x) for x in lr["meets"])
+        how = ("shown within it" if lr["confident"] else
+               "within it by the estimates only (the data cannot show any setting within it "
+               f"at {confidence * 100:g}% confidence)")
+        out.append(f"Limit {lr['text']!r}: {n_meet} of {len(all_settings)} settings are {how}"
+                   f"; the best on {lr['response']} is {_describe(as_map(all_settings[lr['best']]))}.")
+    if limit_results and len(eligible) < len(all_settings):
+        out.append(f"Choosing among the {len(eligible)} setting(s) that meet every limit.")
+    return out
+
+
 def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disagreement,
-                 pareto_idx, also, is_log, confidence, default, declared) -> list[str]:
+                 pareto_idx, also, is_log, confidence, default, declared, all_settings,
+                 within) -> list[str]:
     conf = f"{confidence * 100:g}%"
     out = []
     best = _describe(as_map(settings[best_i]))
@@ -361,7 +615,10 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
     else:
         why = ("it is the best estimate" if best_i == top_i
                else "the data cannot tell it from the best estimate "
-                    f"({_describe(as_map(settings[top_i]))}) and it stays closest to the default")
+                    f"({_describe(as_map(settings[top_i]))}) and "
+                    + ("it stays closest to the declared default" if declared
+                       else "it comes first in the listed order of levels (no default is "
+                            "declared)"))
         out.append(f"{n_t} settings cannot be told apart from the best at {conf} confidence; "
                    f"recommending {best} because {why}.")
     if main.across:
@@ -396,14 +653,17 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
         out.append(f"Mind that {best} is {_loss_words(rob.worst_loss[best_i], is_log)} worse "
                    f"than the best where {env}; {safe_words}.")
     if also and pareto_idx is not None:
-        if len(pareto_idx) == len(settings):
-            out.append(f"Trading {main.response} against {', '.join(also)}: all "
-                       f"{len(settings)} settings are on the front; none is beaten on every "
-                       f"response at {conf} confidence.")
+        margin = f" by more than {within * 100:g}%" if within else ""
+        rule = (f"another setting is better on at least one response{margin} and not worse on "
+                f"any{' beyond ' + format(within * 100, 'g') + '%' if within else ''}, at "
+                f"{conf} confidence")
+        n = len(all_settings)
+        if len(pareto_idx) == n:
+            out.append(f"Trading {main.response} against {', '.join(also)}: all {n} settings "
+                       f"are on the front; none is off it (a setting is off when {rule}).")
         else:
             out.append(f"Trading {main.response} against {', '.join(also)}: {len(pareto_idx)} "
-                       f"of {len(settings)} settings are on the front; the others are beaten on "
-                       f"every response at {conf} confidence.")
+                       f"of {n} settings are on the front; for each of the others, {rule}.")
     return out
 
 

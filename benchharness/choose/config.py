@@ -11,6 +11,8 @@ CSV path or DataFrame), and reading two experiment-file sections:
       also: [max_rss_kib]        # further responses for the trade-off front
       response: wall_s
       confidence: 0.95
+      within: 3%                 # practical margin of the trade-off front
+      limits: ["max_rss_kib within 5%"]   # only settings within 5% of the leanest
 
 ``metrics:`` -- only the direction of each response is read here, from a
 ``better: lower | higher`` key of a metric's mapping (``metrics: {ops_per_s:
@@ -27,7 +29,7 @@ from benchharness.errors import DataError, ExperimentError
 
 __all__ = ["load_source", "choose_settings", "metric_directions"]
 
-_CHOOSE_KEYS = ("prefer", "across", "also", "response", "confidence")
+_CHOOSE_KEYS = ("prefer", "across", "also", "response", "confidence", "within", "limits")
 
 
 def load_source(data, factors=None):
@@ -57,8 +59,10 @@ def choose_settings(experiment) -> dict:
 
     Raises `ExperimentError` at ``FILE:LINE:COL`` for a malformed section.
     """
-    from benchharness.yamlnodes import (as_float, expect_mapping, is_null, node_error,
-                                        scalar_text, sequence_items, to_plain)
+    import yaml
+
+    from benchharness.yamlnodes import (as_float, as_percent, expect_mapping, is_null,
+                                        node_error, scalar_text, sequence_items, to_plain)
 
     out: dict = {}
     if experiment is None:
@@ -94,6 +98,26 @@ def choose_settings(experiment) -> dict:
             elif key == "response":
                 out["response"] = scalar_text(v, "choose.response")
                 _check_column(experiment, "response", out["response"], v)
+            elif key == "within":
+                out["within"] = as_percent(v, "choose.within")
+                if out["within"] >= 1:
+                    raise node_error(v, "choose.within must be under 100%, e.g. 3%")
+            elif key == "limits":
+                from benchharness.choose.limits import parse_limit
+                from benchharness.errors import UsageError
+
+                items = [v] if isinstance(v, yaml.ScalarNode) else sequence_items(
+                    v, "choose.limits")
+                limits = []
+                for item in items:
+                    text = scalar_text(item, "an entry of choose.limits")
+                    try:
+                        lim = parse_limit(text)
+                    except UsageError as exc:
+                        raise node_error(item, f"choose.limits: {exc}") from None
+                    _check_column(experiment, "limits", lim.response, item)
+                    limits.append(lim)
+                out["limits"] = limits
             elif key == "confidence":
                 c = as_float(v, "choose.confidence")
                 if not 0 < c < 1:

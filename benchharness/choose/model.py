@@ -41,7 +41,7 @@ import numpy as np
 
 from benchharness.errors import DataError
 
-__all__ = ["ResponseModel", "fit_response", "level_orders"]
+__all__ = ["ResponseModel", "fit_response", "level_orders", "subset_settings"]
 
 
 @dataclass(frozen=True)
@@ -240,6 +240,21 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
         df=dfe, residual_model=residual, n_runs=int(n), dropped_runs=int(n_total - n),
         block=block if block_cols else None, without_runs=without_runs,
     )
+
+
+def subset_settings(model: ResponseModel, keep) -> ResponseModel:
+    """The same estimates restricted to the settings at indexes ``keep``.
+
+    The noise (sigma, its degrees of freedom) stays the one pooled over every
+    setting: leaving settings out of the choice does not change what the runs
+    say about the noise.
+    """
+    from dataclasses import replace
+
+    keep = [int(i) for i in keep]
+    return replace(model, settings=tuple(model.settings[i] for i in keep),
+                   cell_means=model.cell_means[keep], cell_counts=model.cell_counts[keep],
+                   setting_means=model.setting_means[keep], weights=model.weights[keep])
 
 
 def _lstsq_sse(X, y) -> tuple[float, float]:

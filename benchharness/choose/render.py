@@ -26,23 +26,27 @@ def _ratio_words(r) -> str:
 
 
 def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
+    """The choice table: short headers, cells that wrap at spaces (fits a 1280 px page)."""
     resp = d["response"]
-    mean_kind = "geometric mean" if d["scale"] == "log" else "mean"
     log = d["scale"] == "log"
-    cols = ["setting", f"{mean_kind} {resp}", "runs", "verdict",
-            "loss vs best, at most" + (" (ratio)" if log else " (difference)"),
-            "ratio in worst environment" if d["across"] and log else
-            "loss in worst environment" if d["across"] else
-            ("ratio to best" if log else "difference from best")]
+    cols = ["setting", f"{resp} ({'geo. mean' if log else 'mean'})", "runs", "verdict",
+            "vs best, at most"]
+    cols.append("worst environment" if d["across"] else ("vs best" if log else "minus best"))
     if d["across"]:
-        cols.append("average ratio" if log else "average loss")
+        cols.append("average")
     if d.get("also"):
-        cols.append("trade-off front")
+        cols.append("on front")
+    if d.get("limits"):
+        cols.append("limits")
     rows = []
     for c in d["candidates"]:
-        verdict = "recommended" if c["recommended"] else ("tied" if c["tied"] else "worse")
+        excluded = c.get("within_limits") is False
+        verdict = ("outside limits" if excluded else "recommended" if c["recommended"]
+                   else "tied" if c["tied"] else "worse")
         wc = _ratio_words(c["worst_case_loss"]) if log else _fmt(c["worst_case_loss"])
-        if d["across"]:
+        if excluded:
+            we = "-"
+        elif d["across"]:
             env = _setting(c["worst_environment"])
             we = (f"{_ratio_words(c['worst_ratio'])} ({env})" if log
                   else f"{_fmt(c['worst_loss'])} ({env})")
@@ -53,6 +57,8 @@ def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
             row.append(_ratio_words(c["mean_ratio"]) if log else _fmt(c["mean_loss"]))
         if d.get("also"):
             row.append("yes" if c.get("on_front") else "no")
+        if d.get("limits"):
+            row.append("no" if excluded else "yes")
         rows.append(row)
     return cols, rows
 
@@ -72,9 +78,19 @@ def section_dict(choice) -> dict:
         f"{'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
         f"model{' with ' + res['block'] + ' as an additive block term' if res.get('block') else ''}, "
         f"{res['df']:g} degrees of freedom.",
-        "Worst-case loss: how much worse than the best of the other settings this setting "
-        f"can be, at {d['confidence'] * 100:g}% confidence (multiple comparisons with the best).",
+        "vs best, at most: how much worse than the best of the other settings this setting "
+        f"can be, at {d['confidence'] * 100:g}% confidence (multiple comparisons with the best"
+        f"{'; a ratio' if d['scale'] == 'log' else '; a difference'}).",
     ]
+    if d.get("also"):
+        notes.append(f"On front: not beaten on the trade-off between {d['response']} and "
+                     f"{', '.join(d['also'])} with a practical margin of "
+                     f"{(d.get('within') or 0) * 100:g}%.")
+    for lim in d.get("limits") or []:
+        notes.append(f"Limit {lim['text']}: judged "
+                     + ("on confidence bounds (shown within it)" if lim["confident"]
+                        else "on the estimates (no setting was shown within it)")
+                     + f"; met by {len(lim['met_by'])} of {len(lim['settings'])} settings.")
     if d.get("without_runs"):
         notes.append(f"Not candidates (no ok run with a value of {d['response']}): "
                      + "; ".join(_setting(w) for w in d["without_runs"]) + ".")
@@ -82,7 +98,8 @@ def section_dict(choice) -> dict:
         what = (f"{d['across'][0]} level" if len(d["across"]) == 1
                 else " and ".join(d["across"]) + " combination")
         notes.append("Worst environment: the setting's ratio to the best setting of the "
-                     f"{what} where it does worst (estimates).")
+                     f"{what} where it does worst (estimates); average: the geometric mean of "
+                     "those ratios over every environment.")
     return {
         "title": "Choosing a default",
         "summary": list(d["reasons"]),
@@ -112,6 +129,9 @@ def terminal_text(choice) -> str:
                         if d["on_average"]["mean_ratio"] is not None else ""))
     if d.get("also"):
         lines.append("Trade-off front: " + "; ".join(_setting(p) for p in d["pareto"]))
+    for lim in d.get("limits") or []:
+        lines.append(f"Within the limit {lim['text']}: "
+                     + "; ".join(_setting(p) for p in lim["met_by"]))
     lines.append("")
     cols, rows = s["columns"], s["rows"]
     widths = [max(len(c), *(len(r[i]) for r in rows)) for i, c in enumerate(cols)]

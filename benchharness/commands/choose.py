@@ -32,6 +32,19 @@ def add_parser(subparsers):
                         "'' for none even if the experiment file names some")
     p.add_argument("--also", default=None, metavar="METRIC,...",
                    help="further responses for the trade-off front, e.g. max_rss_kib; '' for none")
+    p.add_argument("--within", default=None, metavar="P%",
+                   help="practical margin of the trade-off front: a difference smaller than "
+                        "this does not count (default: choose.within or 3%%)")
+    p.add_argument("--limit", action="append", default=None, metavar="'RESPONSE within P%'",
+                   help="choose only among settings whose RESPONSE is within P%% of the best "
+                        "setting's, e.g. --limit 'max_rss_kib within 5%%' (repeatable)")
+    p.add_argument("--setting", default=None, metavar="F,...",
+                   help="factors that are settings (chosen); overrides the file's roles:")
+    p.add_argument("--workload", default=None, metavar="F,...",
+                   help="factors that are workloads (input kind, size): never chosen, the "
+                        "choice must hold up across them")
+    p.add_argument("--environment", default=None, metavar="F,...",
+                   help="factors that are environments (machine, runtime): never chosen")
     p.add_argument("--confidence", default=None, type=float,
                    help="confidence level, between 0 and 1 (default 0.95)")
     p.add_argument("--prefer", action="append", default=[], metavar="FACTOR=LEVEL",
@@ -65,6 +78,13 @@ def _prefer(items) -> dict | None:
     return out or None
 
 
+def _roles(args):
+    """Roles given on the command line (merged over the experiment file's by `choose`)."""
+    given = {r: getattr(args, r) for r in ("setting", "workload", "environment")
+             if getattr(args, r) is not None}
+    return given or None
+
+
 def _finite(x):
     if isinstance(x, float) and not math.isfinite(x):
         return None
@@ -91,6 +111,9 @@ def run(args) -> int:
         prefer=_prefer(args.prefer),
         better=args.better,
         block=False if args.no_block else args.block,
+        roles=_roles(args),
+        within=args.within,
+        limits=args.limit,
     )
     data = json.dumps(_finite(choice.to_dict()), indent=2, allow_nan=False)
     if args.json == "-":

@@ -35,7 +35,10 @@ def main(args) -> int:
     plan = build_plan(exp, seed=args.seed)
     timing = _timing(args, exp, plan)
     if args.json:
+        from benchharness.roles import factor_roles
+
         d = plan.to_json_dict()
+        d["roles"] = factor_roles(exp).to_dict()
         d.update(timing)
         json.dump(d, sys.stdout, indent=1)
         sys.stdout.write("\n")
@@ -116,11 +119,15 @@ def format_plan(exp, plan, show: int = 12) -> str:
     lines = [f"experiment  {exp.name}"]
     if exp.about:
         lines.append(f"question    {exp.about}")
+    from benchharness.roles import factor_roles
+
+    roles = factor_roles(exp)
     lines.append("factors")
     width = max(len(f.name) for f in exp.factors)
     for f in exp.factors:
         lines.append(f"  {f.name:<{width}}  {len(f.levels)} levels: "
-                     + ", ".join(f.labels))
+                     + ", ".join(f.labels) + f"  ({roles.role_of(f.name)})")
+    lines.append("roles       " + _roles_line(roles))
     seed_note = "" if exp.seed is not None else " (drawn now; set seed: in the file to fix it)"
     lines.append(f"cells       {plan.cells}")
     lines.append(f"timed runs  {plan.timed_runs} ({exp.replicates} per cell)")
@@ -145,3 +152,20 @@ def format_plan(exp, plan, show: int = 12) -> str:
         for row in rows:
             lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)))
     return "\n".join(lines)
+
+
+def _roles_line(roles) -> str:
+    """How the factors' roles were decided, in one line."""
+    from benchharness.roles import declaration_text
+
+    if roles.declared:
+        return ("declared in the file: " + "; ".join(
+            f"{r}s {', '.join(getattr(roles, r))}" for r in ("setting", "workload",
+                                                             "environment")
+            if getattr(roles, r)))
+    if roles.workload:
+        why = "; ".join(f"{f} ({roles.reasons[f]})" for f in roles.workload)
+        return (f"not declared; choose treats {why} as a workload, the rest as settings; "
+                f"declare them with {declaration_text(roles)}")
+    return ("not declared; every factor counts as a setting (none looks like an input); "
+            "declare inputs and machines with roles: {workload: [...], environment: [...]}")
