@@ -42,6 +42,7 @@ class RunOutcome:
     counts: dict = field(default_factory=dict)  # status → number of runs recorded
     interrupted: bool = False
     notes: list = field(default_factory=list)
+    stopped_early: str | None = None   # why the run stopped before the plan's end (early_stop)
     _runs: object = None
 
     @property
@@ -140,12 +141,14 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
                    seed: int | None = None, progress: Progress | None = None,
                    plan=None, scheduler: str | None = None,
                    same_host_ok: bool = False, budget_s: float | None = None,
-                   estimate_s: float | None = None) -> RunOutcome:
+                   estimate_s: float | None = None, early_stop: bool = False) -> RunOutcome:
     """Plan and execute ``exp`` into a new results folder.
 
     ``executor``: any `Executor` (default: local processes through the
     launcher). ``scheduler``: address of a Dask scheduler to spread the runs
     over its workers instead (blocks are assigned to hosts whole).
+    ``early_stop``: stop once the first runs of every cell failed the same way
+    (`benchharness.early_stop`); `benchharness run` turns it on.
     """
     import dataclasses
 
@@ -192,14 +195,15 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     try:
         return _run_new(exp, exp_for_plan, notes, out, early or executor, early is not None,
                         base, seed, progress, plan, plan_kwargs, scheduler, same_host_ok,
-                        budget_s, estimate_s)
+                        budget_s, estimate_s, early_stop)
     finally:
         if early is not None:
             early.close()  # already closed when the run went through
 
 
 def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, progress, plan,
-             plan_kwargs, scheduler, same_host_ok, budget_s, estimate_s) -> RunOutcome:
+             plan_kwargs, scheduler, same_host_ok, budget_s, estimate_s,
+             early_stop=False) -> RunOutcome:
     """`run_experiment` once the experiment is validated (see there)."""
     from benchharness.design import build_plan
     from benchharness.host import BusySampler, collect_facts, host_check_mode, preflight
@@ -275,7 +279,7 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
             gate = gate_for(exp, plan, folder, budget_s, estimate_s)
             outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts,
                                stop_check=gate, host_check=write_host_json,
-                               own_executor=own_executor)
+                               own_executor=own_executor, early_stop=early_stop)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -283,7 +287,8 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
 
 
 def resume_experiment(folder, executor=None, progress: Progress | None = None,
-                      scheduler: str | None = None, same_host_ok: bool = False) -> RunOutcome:
+                      scheduler: str | None = None, same_host_ok: bool = False,
+                      early_stop: bool = False) -> RunOutcome:
     """Continue an interrupted results folder; never records a run twice."""
     from benchharness.experiment import load_experiment
 
@@ -335,7 +340,7 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
                     gate = ReplicateGate(folder, {f.name: list(f.labels) for f in exp.factors},
                                          cells, rule, session.get("budget_s"))
             outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
-                               prior=records, stop_check=gate)
+                               prior=records, stop_check=gate, early_stop=early_stop)
         outcome.notes[:0] = notes
         return outcome
     finally:
@@ -456,8 +461,8 @@ MIRROR_LIMIT = 200_000
 
 
 def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflight_path,
-                 fields, counts: dict, progress, on_tick, mirror: J.JournalMirror | None = None
-                 ) -> None:
+                 fields, counts: dict, progress, on_tick, mirror: J.JournalMirror | None = None,
+                 watch=None) -> str | None:
     """Run ``todo`` as queued runs: the launcher runs them back to back and
     journals each run that ends ok itself; the harness records the others
     (the launcher waits for that), counts, and shows progress.
@@ -468,6 +473,10 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
     path writes. The launcher reports journalled runs in batches (64 runs or
     20 ms, and whenever it runs out of work), so the harness wakes a few dozen
     times a second at most, not once per run.
+
+    ``watch``: an `early_stop.FirstRunsWatch`; when it says stop, the failed
+    run is recorded, the launcher (holding the queue for it) drops the rest,
+    and the reason is returned.
     """
     from benchharness.host import freq_files
 
@@ -491,6 +500,7 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
             if i < len(todo) and stream.room():
                 continue  # more to queue first (the first small batch is already running)
             events = stream.events(timeout_s=0.25)
+            stop = None
             for ev in events:
                 pr, c = by_key.pop(ev.key)
                 if ev.written:
@@ -505,17 +515,34 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
                     if fields:
                         rec.update(fields)
                     jr.append(rec)
-                    stream.release()
+                    why = watch.observe(rec) if watch is not None else None
+                    if why:
+                        stop = why   # the queue stays held: nothing more starts
+                    else:
+                        stream.release()
                 if mirror is not None:
                     mirror.add(rec)
                 counts[status] = counts.get(status, 0) + 1
                 progress.advance(rec, c["label"])
+            if stop:
+                for ev in stream.close():   # journalled before the drop took effect
+                    pr, c = by_key.pop(ev.key)
+                    status = "warmup" if pr["warmup"] else "ok"
+                    rec = _record(pr, ev.measurement, status, "")
+                    if fields:
+                        rec.update(fields)
+                    if mirror is not None:
+                        mirror.add(rec)
+                    counts[status] = counts.get(status, 0) + 1
+                return stop
             on_tick()
+    return None
 
 
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
              executor, progress: Progress | None, facts: dict, prior=(),
-             stop_check=None, host_check=None, own_executor: bool = False) -> RunOutcome:
+             stop_check=None, host_check=None, own_executor: bool = False,
+             early_stop: bool = False) -> RunOutcome:
     if executor is None:
         own_executor = True
         executor = default_executor()
@@ -528,6 +555,12 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
         counts[r["status"]] = counts.get(r["status"], 0) + 1
     todo = [pr for pr in planned if int(pr["run"]) not in done]
     interrupted = False
+    watch = None
+    if early_stop:
+        from benchharness.early_stop import FirstRunsWatch
+
+        watch = FirstRunsWatch(pr["levels"] for pr in todo)
+    stopped_early = None
     progress.start(len(planned), len(planned) - len(todo), folder)
     from benchharness.quality import RunQuality
 
@@ -634,9 +667,10 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
         if streamed:
             one_by_one = ()  # all of them queued
             mirror = J.JournalMirror(jr.path, MIRROR_LIMIT, exp.factor_names, prior)
-            _stream_runs(executor, jr, todo, cells, timeout_s, inflight_path,
-                         {"aslr": aslr_value} if aslr_value is not None else None,
-                         counts, progress, on_tick, mirror)
+            stopped_early = _stream_runs(
+                executor, jr, todo, cells, timeout_s, inflight_path,
+                {"aslr": aslr_value} if aslr_value is not None else None,
+                counts, progress, on_tick, mirror, watch)
         else:
             one_by_one = todo
         for index, pr in enumerate(one_by_one):
@@ -721,12 +755,16 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 rec["aslr"] = aslr_value
             jr.append(rec)
             counts[status] = counts.get(status, 0) + 1
+            if watch is not None:
+                stopped_early = watch.observe(rec)
             if overlap:
                 # shown while the next run executes: the bar is not on the path
                 # from one run's end to the next one's start
                 shown.append((rec, c["label"]))
             else:
                 progress.advance(rec, c["label"])
+            if stopped_early:
+                break
         else:
             if stop_check is not None:
                 final = stop_check.finish()
@@ -774,6 +812,9 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 pass
     if stop_check is not None and stop_check.stopped:
         session["stopped"] = stop_check.stopped
+    if stopped_early:
+        session.setdefault("stopped_early", []).append(
+            {"reason": stopped_early, "at": J.utc_iso()})
     known = None
     csv_ready = False
     if mirror is not None:
@@ -784,14 +825,17 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 csv_ready = mirror.commit_csv(known)
         mirror.drop()
     outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
-                       quality=quality, records=known, runs_csv_written=csv_ready)
+                       quality=quality, records=known, runs_csv_written=csv_ready,
+                       state="stopped early" if stopped_early else None)
     outcome.notes.extend(stop_notes)
+    outcome.stopped_early = stopped_early
     return outcome
 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
              interrupted: bool, host_json: dict | None = None, quality=None,
-             records: list | None = None, runs_csv_written: bool = False) -> RunOutcome:
+             records: list | None = None, runs_csv_written: bool = False,
+             state: str | None = None) -> RunOutcome:
     """Export runs.csv, record the end state in host.json and session.json.
 
     The counts by status are taken from the journal, which is the record of
@@ -813,7 +857,7 @@ def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planne
 
     facts.update(facts_at_end(facts))
     J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
-    session["state"] = "interrupted" if interrupted else "complete"
+    session["state"] = state or ("interrupted" if interrupted else "complete")
     session["finished_at"] = J.utc_iso()
     if not interrupted:
         try:

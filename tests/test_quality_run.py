@@ -68,6 +68,9 @@ def test_warm_cache_demo_end_to_end(tmp_path, monkeypatch):
     monkeypatch.chdir(ROOT)   # the demo's command path is relative to the checkout
     # The demo file as shipped, with fewer replicates and batches to keep the test quick.
     text = (ROOT / "experiments" / "warm-cache.yaml").read_text()
+    # the copy lives elsewhere: its workdir points at the checkout explicitly
+    assert "\nworkdir: ..\n" in text
+    text = text.replace("\nworkdir: ..\n", f"\nworkdir: {json.dumps(str(ROOT))}\n")
     assert '--seed, "7"]' in text and "replicates: 4\nwarmup: 1\n" in text
     text = text.replace('--seed, "7"]', '--seed, "7", --batches, "80"]')
     text = text.replace("replicates: 4\nwarmup: 1\n", "replicates: 2\nwarmup: 0\n")

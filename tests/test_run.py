@@ -294,8 +294,8 @@ def test_ctrl_c_stops_cleanly_and_says_how_to_resume(tmp_path):
 
 def test_run_with_analysis_when_a_cell_always_fails(tmp_path, cli):
     # One cell fails every run, the other has two ok runs: one residual degree of
-    # freedom. The run must still exit 0 (failures are data) and analyse without a
-    # traceback (it used to crash in the outlier check).
+    # freedom. The run analyses without a traceback (it used to crash in the outlier
+    # check) and exits 4, since timed runs failed (0 with --allow-failures).
     p = exp_text(tmp_path, """\
         experiment: halfbad
         command: [sh, -c, "exit {code}"]
@@ -305,7 +305,7 @@ def test_run_with_analysis_when_a_cell_always_fails(tmp_path, cli):
         seed: 1
         """)
     r = cli("run", p, "--out", tmp_path / "res")
-    assert r.returncode == 0, r.stderr
+    assert r.returncode == 4, r.stderr
     assert "Traceback" not in r.stderr
     assert (tmp_path / "res" / "analysis.json").exists()
     rows = list(csv.DictReader(open(tmp_path / "res" / "runs.csv")))

@@ -1,9 +1,25 @@
-"""`benchharness run FILE`: plan, execute and record an experiment (or resume one)."""
+"""`benchharness run FILE`: plan, execute and record an experiment (or resume one).
+
+Exit codes, so a CI job can tell the outcomes apart:
+
+* 0 every timed run ended ok (or ``--allow-failures`` and the plan ran to its end);
+* 4 the plan ran to its end but some timed runs failed or timed out;
+* 5 stopped early: the first runs of every cell failed the same way (the command
+  cannot work as written), see `benchharness.early_stop`; ``--keep-going`` runs
+  the whole plan instead;
+* 130 Ctrl-C; 2 bad input; 70 an internal error.
+
+Both 4 and 5 leave a consistent results folder; after 5 (and 130) it can be
+continued with ``--resume`` once the cause is fixed.
+"""
 
 from __future__ import annotations
 
 import os
 import sys
+
+EXIT_RUNS_FAILED = 4      # timed runs failed or timed out
+EXIT_STOPPED_EARLY = 5    # the first runs of every cell failed the same way
 
 
 def add_parser(sub) -> None:
@@ -28,6 +44,12 @@ def add_parser(sub) -> None:
     p.add_argument("--history", metavar="DB",
                    help="add the results to this history database (SQLite) when done; the "
                         "commit is read from git")
+    p.add_argument("--allow-failures", action="store_true",
+                   help=f"exit 0 even when timed runs failed or timed out (otherwise exit "
+                        f"{EXIT_RUNS_FAILED})")
+    p.add_argument("--keep-going", action="store_true",
+                   help="run the whole plan even when the first runs of every cell fail the "
+                        f"same way (otherwise stop there, exit {EXIT_STOPPED_EARLY})")
     p.add_argument("--quiet", action="store_true", help="no progress display")
     p.add_argument("--no-analysis", action="store_true",
                    help="skip the analysis and reports at the end")
@@ -59,7 +81,8 @@ def main(args) -> int:
         _refuse_gate_folder(args.resume)
         outcome = runner.resume_experiment(args.resume, progress=progress,
                                            scheduler=args.scheduler,
-                                           same_host_ok=args.same_host_ok)
+                                           same_host_ok=args.same_host_ok,
+                                           early_stop=not args.keep_going)
     else:
         if not args.file:
             raise UsageError("run needs an experiment file (or --resume DIR)")
@@ -74,10 +97,11 @@ def main(args) -> int:
         outcome = runner.run_experiment(exp, out=args.out, seed=args.seed, progress=progress,
                                         scheduler=args.scheduler,
                                         same_host_ok=args.same_host_ok, budget_s=budget_s,
-                                        estimate_s=estimate_s)
+                                        estimate_s=estimate_s, early_stop=not args.keep_going)
     for note in outcome.notes:
         print(note)
-    code = finish(outcome, analysis=not args.no_analysis)
+    code = finish(outcome, analysis=not args.no_analysis,
+                  allow_failures=args.allow_failures)
     if code == 0 and args.history:
         from benchharness.history import add_results
 
@@ -114,8 +138,9 @@ def _budget(args, exp):
     return budget_s, estimate_s
 
 
-def finish(outcome, analysis: bool = True) -> int:
-    """Print the summary (and analysis, reports) of a finished or interrupted run."""
+def finish(outcome, analysis: bool = True, allow_failures: bool = False) -> int:
+    """Print the summary (and analysis, reports) of a finished or interrupted run; the
+    exit code (see the module docstring)."""
     from benchharness import journal as J
     from benchharness.commands import summary
 
@@ -126,12 +151,58 @@ def finish(outcome, analysis: bool = True) -> int:
         print(f"\nstopped early: {sum(outcome.counts.values())} of {outcome.planned} runs are "
               f"recorded. Continue with:\n  benchharness run --resume {folder}")
         return 130
+    if outcome.stopped_early:
+        recorded = sum(outcome.counts.values())
+        print(f"\nstopped early: {outcome.stopped_early}", file=sys.stderr)
+        hint = _path_hint(res)
+        if hint:
+            print(f"hint: {hint}", file=sys.stderr)
+        print(f"{recorded} of {outcome.planned} runs are recorded; the rest were not run, since "
+              f"they would most likely fail the same way. Fix the cause, then continue with:\n"
+              f"  benchharness run --resume {folder}\n(or run the whole plan regardless with "
+              f"--keep-going)", file=sys.stderr)
+        print(f"\nresults: {folder}")
+        return EXIT_STOPPED_EARLY
     if analysis:
         from benchharness.commands import postrun
 
         postrun.analyse_and_report(res)
     print(f"\nresults: {folder}")
+    bad = outcome.counts.get("failed", 0) + outcome.counts.get("timeout", 0)
+    if bad and not allow_failures:
+        print(f"{bad} timed run{'s' if bad != 1 else ''} failed or timed out (see the "
+              f"summary above): exit {EXIT_RUNS_FAILED}; --allow-failures accepts them",
+              file=sys.stderr)
+        return EXIT_RUNS_FAILED
     return 0
+
+
+def _path_hint(res) -> str | None:
+    """Why a command may not start: a relative path missing from the run directory."""
+    import shlex
+
+    from benchharness.early_stop import path_hint
+
+    exp, session = res.experiment, res.session or {}
+    if not res.records:
+        return None
+    levels = {k: str(v) for k, v in (res.records[0].get("levels") or {}).items()}
+    exp_dir = session.get("experiment_dir") or os.getcwd()
+    run_dir = session.get("cwd") or os.getcwd()
+    try:
+        wd = exp.render_workdir(levels)
+        for template in (exp.build, exp.command):
+            if template is None:
+                continue
+            argv, shell = exp.render_command(template, levels)
+            words = list(argv) if argv is not None else shlex.split(shell)
+            hint = path_hint(words, os.path.normpath(run_dir if wd is None else
+                                                     os.path.join(exp_dir, wd)), exp_dir)
+            if hint:
+                return hint
+    except (ValueError, KeyError):   # an odd shell line: no hint rather than a wrong one
+        return None
+    return None
 
 
 def _refuse_gate_folder(folder) -> None:
