@@ -7,7 +7,8 @@ through the library. This module stays thin and imports no heavy library, so
 
 Exit codes (DESIGN.md): 0 success, 1 a verdict that should fail CI, 2 bad input
 or usage (one line on stderr, no traceback), 3 inconclusive where asked, 130
-after Ctrl-C, 70 for an internal error (a bug), so that it is never read as a verdict.
+after Ctrl-C, 70 for an internal error (a bug), so that it is never read as a verdict,
+75 when the disk is full (what was recorded is kept; free space and resume).
 """
 
 from __future__ import annotations
@@ -73,16 +74,29 @@ def main(argv: list[str] | None = None) -> int:
         return int(args.func(args) or 0)
     except BenchharnessError as exc:
         print(f"benchharness: {exc}", file=sys.stderr)
-        return 2
+        return int(getattr(exc, "exit_code", 2))
     except KeyboardInterrupt:
         print("benchharness: interrupted", file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0
-    except Exception:  # noqa: BLE001 - a bug, not a verdict: never exit 1 (a regression)
-        import traceback
+    except OSError as exc:
+        from benchharness.errors import DISK_FULL_EXIT, is_disk_full
 
-        traceback.print_exc()
-        print("benchharness: internal error (this is a bug in benchharness, not a verdict "
-              "about your software); the traceback above helps to report it", file=sys.stderr)
-        return 70
+        if not is_disk_full(exc):
+            return _internal_error()
+        where = f" writing {exc.filename}" if exc.filename else ""
+        print(f"benchharness: the disk is full (no space left on the device{where}); "
+              "free some space and run the command again", file=sys.stderr)
+        return DISK_FULL_EXIT
+    except Exception:  # noqa: BLE001 - a bug, not a verdict: never exit 1 (a regression)
+        return _internal_error()
+
+
+def _internal_error() -> int:
+    import traceback
+
+    traceback.print_exc()
+    print("benchharness: internal error (this is a bug in benchharness, not a verdict "
+          "about your software); the traceback above helps to report it", file=sys.stderr)
+    return 70

@@ -12,6 +12,9 @@ from __future__ import annotations
 class BenchharnessError(Exception):
     """Root of all errors benchharness raises deliberately."""
 
+    #: The command line's exit code for this error (2: bad input or usage).
+    exit_code = 2
+
 
 class ExperimentError(BenchharnessError):
     """The experiment file is malformed or inconsistent."""
@@ -47,3 +50,22 @@ class ResultsFolderError(BenchharnessError):
 
 class ExecutionError(BenchharnessError):
     """The harness could not start or measure a run (not a failing command)."""
+
+
+#: Exit code after a full disk: a temporary failure, to retry once space is freed
+#: (``EX_TEMPFAIL`` of sysexits.h; common practice, as 70 is ``EX_SOFTWARE``).
+DISK_FULL_EXIT = 75
+
+
+class DiskFullError(BenchharnessError):
+    """No space left on the device (or quota): what was recorded is kept, and the
+    message says where and how to go on once space is freed."""
+
+    exit_code = DISK_FULL_EXIT
+
+
+def is_disk_full(exc: BaseException) -> bool:
+    """Whether ``exc`` is the operating system saying the disk (or quota) is full."""
+    import errno
+
+    return isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT)

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import csv
 import datetime as _dt
+import errno
 import fcntl
 import io
 import json
@@ -78,11 +79,18 @@ def fsync_dir(path: Path) -> None:
 def write_atomic(path: Path, data: bytes | str) -> None:
     """Write a whole file via a temporary sibling and rename (never a half file)."""
     tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "wb") as fh:
-        fh.write(data.encode("utf-8") if isinstance(data, str) else data)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as fh:
+            fh.write(data.encode("utf-8") if isinstance(data, str) else data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:  # a full disk: no half file stays behind (the old one is untouched)
+            tmp.unlink()
+        except OSError:
+            pass
+        raise
 
 
 def new_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
@@ -120,6 +128,123 @@ def _busy(folder: Path, who: str = "another benchharness") -> ResultsFolderError
     return ResultsFolderError(
         f"{folder}: {who} is writing this results folder right now; wait for it to finish "
         "(or stop it) before running or resuming here")
+
+
+#: Marks a results folder being set up (a hidden sibling of its final name).
+STARTING = ".starting-"
+#: What a folder being set up may hold (and a stale one may be removed with).
+_STARTING_FILES = {"experiment.yaml", "plan.csv", "design.json", "session.json", "host.json",
+                   "runs.jsonl", "inflight", ".lock"}
+
+
+def start_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
+    """A new, hidden folder to set a run up in, beside where its results will be.
+
+    The folder gets its final name only once it can be resumed (`publish_folder`):
+    a harness killed while setting up leaves no half folder under that name, only
+    this hidden one, which a later start in the same place removes (nothing was
+    measured in it). ``--out`` is checked here, before anything is made.
+    """
+    if out is not None:
+        final = Path(out)
+        if final.exists() or final.is_symlink():
+            if not final.is_dir():
+                raise ResultsFolderError(f"{final}: exists and is not a folder; choose another "
+                                         "--out")
+            if any(final.iterdir()):
+                raise ResultsFolderError(
+                    f"{final}: folder is not empty; results are never written into an existing "
+                    f"folder (choose a new --out, or continue it with "
+                    f"`benchharness run --resume {final}`)")
+        parent, stub = final.absolute().parent, final.name
+    else:
+        parent, stub = Path(base), name
+    parent.mkdir(parents=True, exist_ok=True)
+    remove_stale_starts(parent)
+    while True:
+        folder = parent / f".{stub}{STARTING}{os.getpid()}-{os.urandom(3).hex()}"
+        try:
+            folder.mkdir()
+            return folder
+        except FileExistsError:
+            continue
+
+
+def publish_folder(folder: Path, base: Path, name: str, out: str | os.PathLike | None) -> Path:
+    """Give a folder set up by `start_folder` its final name (one ``rename``) and fsync it.
+
+    Without ``--out`` the name is ``<experiment>-<UTC timestamp>`` (``-2``, ``-3``...
+    when taken), claimed by ``mkdir`` first so that no other harness's folder is
+    ever replaced; the rename then replaces only that empty claim.
+    """
+    if out is not None:
+        final = Path(out)
+        try:
+            os.rename(folder, final)
+        except OSError as e:
+            if isinstance(e, (IsADirectoryError, NotADirectoryError)) or \
+                    e.errno in (errno.ENOTEMPTY, errno.EEXIST):
+                raise ResultsFolderError(f"{final}: something was written there while this run "
+                                         "was being set up; choose another --out") from None
+            raise
+    else:
+        stamp = utc_stamp()
+        final = Path(base) / f"{name}-{stamp}"
+        n = 1
+        while True:
+            try:
+                final.mkdir()
+                break
+            except FileExistsError:
+                n += 1
+                final = Path(base) / f"{name}-{stamp}-{n}"
+        os.rename(folder, final)
+    fsync_dir(final)
+    fsync_dir(final.absolute().parent)
+    return final
+
+
+def remove_stale_starts(parent: Path) -> None:
+    """Remove folders that `start_folder` made in ``parent`` for harnesses that died
+    while setting up (no harness holds their lock, and they hold no measured run)."""
+    import shutil
+
+    try:
+        entries = [p for p in parent.iterdir() if p.name.startswith(".")
+                   and STARTING in p.name]
+    except OSError:
+        return
+    for p in entries:
+        owner = p.name.rsplit(STARTING, 1)[1].split("-", 1)[0]
+        if owner.isdigit() and (int(owner) == os.getpid() or os.path.exists(f"/proc/{owner}")):
+            continue  # its harness (or a process that took its id) lives: leave it
+        try:
+            if p.is_symlink() or not p.is_dir():
+                continue
+            names = {q.name for q in p.iterdir()}
+            if any(n not in _STARTING_FILES and not n.endswith(".tmp") for n in names):
+                continue  # something we did not make: not ours to remove
+            if (p / "runs.jsonl").exists() and (p / "runs.jsonl").stat().st_size:
+                continue
+            fd = os.open(p, os.O_RDONLY | os.O_DIRECTORY | os.O_CLOEXEC)
+        except OSError:
+            continue
+        try:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except OSError:
+                continue  # a live harness is setting it up
+            shutil.rmtree(p, ignore_errors=True)
+        finally:
+            os.close(fd)
+
+
+def discard_start(folder: Path) -> None:
+    """Remove a folder `start_folder` made (setting up failed; nothing was measured)."""
+    import shutil
+
+    if STARTING in folder.name:
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 class FolderLock:
@@ -207,11 +332,22 @@ class Journal:
         self.inflight_fd = os.open(folder / "inflight", os.O_RDWR | os.O_CREAT, 0o644)
 
     def append(self, record: Mapping) -> None:
+        """Append one record's line. On a failed write (a full disk) the part of
+        the line already written is cut off again, so the journal holds whole
+        lines only, and the error is raised."""
         line = encode_record(record)
         # One write(2) of the whole line; O_APPEND makes it land at the end.
-        n = os.write(self.fd, line)
-        while n < len(line):  # pragma: no cover - only on short writes (full disk, signals)
-            n += os.write(self.fd, line[n:])
+        n = 0
+        try:
+            n = os.write(self.fd, line)
+            while n < len(line):  # only on short writes (full disk, signals)
+                n += os.write(self.fd, line[n:])
+        except OSError as e:
+            if n:
+                cut_partial_line(self.fd, n)
+            if e.filename is None:
+                e.filename = str(self.path)
+            raise
 
     def mark_inflight(self, run: int, pid: int, pgid: int, start=None) -> None:
         """Record the run now executing (overwritten in place; read by --resume).
@@ -260,6 +396,14 @@ class Journal:
                 pass
         os.close(self.fd)
         os.close(self.inflight_fd)
+
+
+def cut_partial_line(fd: int, written: int) -> None:
+    """Cut the last ``written`` bytes (a line whose write failed half way) off the file."""
+    try:
+        os.ftruncate(fd, os.fstat(fd).st_size - written)
+    except OSError:  # pragma: no cover - then resume sets it aside as a torn line
+        pass
 
 
 def _json_default(obj):
@@ -542,10 +686,13 @@ class RunsCsvWriter:
         return self.path
 
     def discard(self) -> None:
-        self.fh.close()
+        try:
+            self.fh.close()
+        except OSError:  # its buffer could not be written (a full disk): dropped anyway
+            pass
         try:
             self.tmp.unlink()
-        except FileNotFoundError:
+        except OSError:
             pass
 
 

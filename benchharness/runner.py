@@ -26,7 +26,7 @@ from pathlib import Path
 from typing import Mapping, Sequence
 
 from benchharness import journal as J
-from benchharness.errors import ExecutionError, ResultsFolderError
+from benchharness.errors import DiskFullError, ExecutionError, ResultsFolderError, is_disk_full
 from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
 
 DEFAULT_BASE = Path("results")
@@ -219,52 +219,68 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
         host_warnings = preflight(exp, start_facts, busy_sampler=sampler)  # may stop here
     plan = plan or build_plan(exp_for_plan, seed=seed, **plan_kwargs)
     check_controls(exp, plan.runs)
-    folder = J.new_folder(Path(base), exp.name, out)
+    # Set up in a hidden folder, named only once it can be resumed (journal.start_folder).
+    folder = J.start_folder(Path(base), exp.name, out)
     lock = J.FolderLock(folder)
     try:
-        J.write_atomic(folder / "experiment.yaml", exp.source_text)
-        J.write_plan_csv(folder, exp.factor_names, plan.rows())
-        if plan.info:
-            J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
-                                                              default=str))
+        published = False
+        try:
+            J.write_atomic(folder / "experiment.yaml", exp.source_text)
+            J.write_plan_csv(folder, exp.factor_names, plan.rows())
+            if plan.info:
+                J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
+                                                                  default=str))
 
-        exp_dir = str(Path(exp.path).resolve().parent) if exp.path != "<string>" else os.getcwd()
-        session = {
-            "benchharness_version": _version(),
-            "seed": plan.seed,
-            "seed_drawn": exp.seed is None and seed is None,
-            "order": plan.order,
-            "experiment_path": str(exp.path),
-            "experiment_dir": exp_dir,
-            "cwd": os.getcwd(),
-            "argv": sys.argv,
-            "started_at": J.utc_iso(),
-            "state": "running",
-            "runs_planned": len(plan.runs),
-            "roles": _roles(exp),
-        }
-        if scheduler:
-            session["scheduler"] = scheduler
-        if budget_s is not None:
-            session["budget_s"] = budget_s
-        J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
-        facts = start_facts
+            exp_dir = (str(Path(exp.path).resolve().parent) if exp.path != "<string>"
+                       else os.getcwd())
+            session = {
+                "benchharness_version": _version(),
+                "seed": plan.seed,
+                "seed_drawn": exp.seed is None and seed is None,
+                "order": plan.order,
+                "experiment_path": str(exp.path),
+                "experiment_dir": exp_dir,
+                "cwd": os.getcwd(),
+                "argv": sys.argv,
+                "started_at": J.utc_iso(),
+                "state": "running",
+                "runs_planned": len(plan.runs),
+                "roles": _roles(exp),
+            }
+            if scheduler:
+                session["scheduler"] = scheduler
+            if budget_s is not None:
+                session["budget_s"] = budget_s
+            J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+            facts = start_facts
 
-        def write_host_json(exclude=()):
-            # Called once the busy-process sample is due (it then spans the folder
-            # set-up, provenance, the launcher's start and, when those take less
-            # than the sample's interval, the first runs; ``exclude``: our launcher).
-            if host_warnings is None and sampler is not None:
-                sampler.exclude_pids(exclude)
-            facts["warnings"] = (host_warnings if host_warnings is not None
-                                 else preflight(exp, facts, busy_sampler=sampler))
-            J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
+            def write_host_json(exclude=()):
+                # Called once the busy-process sample is due (it then spans the folder
+                # set-up, provenance, the launcher's start and, when those take less
+                # than the sample's interval, the first runs; ``exclude``: our launcher).
+                if host_warnings is None and sampler is not None:
+                    sampler.exclude_pids(exclude)
+                facts["warnings"] = (host_warnings if host_warnings is not None
+                                     else preflight(exp, facts, busy_sampler=sampler))
+                J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
 
-        write_host_json.due = (sampler.due if sampler is not None and host_warnings is None
-                               else 0.0)
-        if scheduler:
-            write_host_json()
-        J.fsync_dir(folder)
+            write_host_json.due = (sampler.due if sampler is not None and host_warnings is None
+                                   else 0.0)
+            if scheduler:
+                write_host_json()
+            (folder / "runs.jsonl").touch()
+            J.fsync_dir(folder)
+            folder = J.publish_folder(folder, Path(base), exp.name, out)
+            published = True
+        except BaseException as e:
+            if not published:
+                J.discard_start(folder)  # nothing was measured in it
+            if is_disk_full(e):
+                where = Path(out).absolute().parent if out is not None else Path(base)
+                raise DiskFullError(f"the disk is full: no space left on the device holding "
+                                    f"{where} to set up the results folder; nothing was run. "
+                                    "Free some space and run the command again") from None
+            raise
         planned = [{"run": r.run, "position": r.position, "block": r.block,
                     "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
                    for r in plan.runs]
@@ -293,6 +309,10 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
     from benchharness.experiment import load_experiment
 
     folder = Path(folder)
+    if folder.is_dir() and not J.is_results_folder(folder) and not any(folder.iterdir()):
+        raise ResultsFolderError(f"{folder}: is empty: the run that made it was stopped before "
+                                 "it wrote anything, so nothing was measured; start it again "
+                                 f"with `benchharness run FILE --out {folder}`")
     if not J.is_results_folder(folder):
         raise ResultsFolderError(f"{folder}: not a results folder (no experiment.yaml and "
                                  "runs.jsonl); give the folder an earlier `benchharness run` "
@@ -310,7 +330,12 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
         planned = J.read_plan_csv(folder)
         session["state"] = "running"
         session.setdefault("resumed_at", []).append(J.utc_iso())
-        J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+        try:
+            J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+        except OSError as e:
+            if is_disk_full(e):
+                raise disk_full_error(folder, e, len(planned)) from None
+            raise
         try:
             facts = json.loads((folder / "host.json").read_text())
         except (OSError, json.JSONDecodeError):
@@ -561,6 +586,7 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
 
         watch = FirstRunsWatch(pr["levels"] for pr in todo)
     stopped_early = None
+    disk_full = None
     progress.start(len(planned), len(planned) - len(todo), folder)
     from benchharness.quality import RunQuality
 
@@ -789,6 +815,10 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
         raise ExecutionError(f"{e}{'; ' + note if note else ''}; the runs that finished are "
                              f"recorded: continue with `benchharness run --resume {folder}`"
                              ) from None
+    except OSError as e:
+        if not is_disk_full(e):
+            raise
+        disk_full = e  # said once the journal is closed (below); the journal holds whole lines
     finally:
         if mirror is not None and sys.exc_info()[0] is not None:
             mirror.drop()  # an error is on its way out: no half runs.csv stays behind
@@ -804,12 +834,21 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 pass
         progress.stop()
         jr.close()
-        quality.close()
+        try:
+            quality.close()
+        except OSError as e:
+            if not is_disk_full(e) or sys.exc_info()[0] is not None:
+                raise
+            disk_full = disk_full or e
         if own_executor:
             try:
                 executor.close()
             except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
                 pass
+    if disk_full is not None:
+        if mirror is not None:
+            mirror.drop()
+        raise disk_full_error(folder, disk_full, len(planned))
     if stop_check is not None and stop_check.stopped:
         session["stopped"] = stop_check.stopped
     if stopped_early:
@@ -824,12 +863,36 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
                 known = [*prior, *new]
                 csv_ready = mirror.commit_csv(known)
         mirror.drop()
-    outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
-                       quality=quality, records=known, runs_csv_written=csv_ready,
-                       state="stopped early" if stopped_early else None)
+    try:
+        outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
+                           quality=quality, records=known, runs_csv_written=csv_ready,
+                           state="stopped early" if stopped_early else None)
+    except OSError as e:
+        if not is_disk_full(e):
+            raise
+        raise disk_full_error(folder, e, len(planned)) from None
     outcome.notes.extend(stop_notes)
     outcome.stopped_early = stopped_early
     return outcome
+
+
+def disk_full_error(folder: Path, exc: OSError, planned: int | None = None) -> DiskFullError:
+    """The one line said when the disk fills during a run: where, what is safe, how to go on.
+
+    The journal holds whole lines only (a line whose write failed is cut off
+    again), so every run it holds is kept and `resume_experiment` continues
+    from there once space is freed.
+    """
+    try:
+        n = len(J.read_journal(Path(folder) / "runs.jsonl"))
+        safe = f"{n} of {planned} runs are recorded there and safe" if planned else \
+            f"the {n} runs recorded there are safe"
+    except Exception:  # noqa: BLE001 - the message must come out whatever the folder holds
+        safe = "the runs recorded there are safe"
+    what = f" (writing {Path(exc.filename).name})" if getattr(exc, "filename", None) else ""
+    return DiskFullError(f"the disk is full: no space left on the device holding {folder}{what}; "
+                         f"{safe}. Free some space, then continue with "
+                         f"`benchharness run --resume {folder}`")
 
 
 def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,

@@ -356,3 +356,185 @@ def test_a_lock_naming_a_live_owner_is_refused(tmp_path):
     lock = J.FolderLock(tmp_path)
     lock.release()
     assert (tmp_path / ".lock").read_text() == ""
+
+
+# ---------------------------------------------------------------- a full disk
+
+import errno  # noqa: E402
+import types  # noqa: E402
+
+from benchharness.errors import DISK_FULL_EXIT, DiskFullError  # noqa: E402
+from benchharness.runner import resume_experiment  # noqa: E402
+
+
+def _many_runs(tmp_path, replicates, queued=True):
+    return _exp(tmp_path, f"""\
+        experiment: fills
+        command: [true, "{{k}}"]
+        replicates: {replicates}
+        host_check: off
+        {'' if queued else 'pad_env: true'}
+        factors:
+          k: [a, b]
+        """)
+
+
+def _failing_writes(after_lines):
+    """``os`` as journal.py sees it, with journal writes failing after ``after_lines``
+    lines as a filling disk makes them fail: a short write (half the line), then
+    ENOSPC for every write after it."""
+    state = {"lines": 0, "full": False}
+
+    def write(fd, data):
+        try:
+            name = os.readlink(f"/proc/self/fd/{fd}")
+        except OSError:
+            name = ""
+        if name.endswith("runs.jsonl"):
+            if state["full"]:
+                raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+            if state["lines"] >= after_lines:
+                state["full"] = True
+                return os.write(fd, bytes(data[:len(data) // 2]))
+            state["lines"] += 1
+        return os.write(fd, data)
+
+    proxy = types.SimpleNamespace(**{k: getattr(os, k) for k in dir(os) if not k.startswith("__")})
+    proxy.write = write
+    return proxy
+
+
+def test_disk_full_mid_run_says_so_and_leaves_the_folder_resumable(tmp_path, monkeypatch):
+    from benchharness import journal as journal_mod
+    from benchharness.experiment import load_experiment
+
+    p = _many_runs(tmp_path, 6, queued=False)  # 12 runs, one at a time (the harness writes)
+    out = tmp_path / "res"
+    monkeypatch.setattr(journal_mod, "os", _failing_writes(after_lines=5))
+    with pytest.raises(DiskFullError) as info:
+        run_experiment(load_experiment(p), out=out)
+    monkeypatch.undo()
+    msg = str(info.value)
+    assert info.value.exit_code == DISK_FULL_EXIT != 70
+    assert "the disk is full" in msg and str(out) in msg and "runs.jsonl" in msg
+    assert "5 of 12 runs are recorded" in msg and f"benchharness run --resume {out}" in msg
+    # the half-written line was cut off again: whole lines only, nothing set aside
+    assert (out / "runs.jsonl").read_bytes().endswith(b"}\n")
+    assert len(J.read_journal(out / "runs.jsonl", repair=True)) == 5
+    assert not (out / "runs.jsonl.torn").exists()
+    # space freed: the resume finishes the plan, each run recorded once
+    done = resume_experiment(out)
+    runs = J.read_journal(out / "runs.jsonl")
+    assert sorted(r["run"] for r in runs) == list(range(12))
+    assert done.counts == {"ok": 12} and not done.interrupted
+
+
+def test_disk_full_exit_code_and_one_line_from_the_command(tmp_path, monkeypatch, capsys):
+    from benchharness import cli
+    from benchharness import journal as journal_mod
+
+    p = _many_runs(tmp_path, 3, queued=False)
+    monkeypatch.setattr(journal_mod, "os", _failing_writes(after_lines=2))
+    code = cli.main(["run", str(p), "--out", str(tmp_path / "res"), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == DISK_FULL_EXIT
+    assert err.count("\n") == 1 and err.startswith("benchharness: the disk is full")
+    assert "Traceback" not in err and "internal error" not in err
+
+
+def test_a_journal_write_the_launcher_cannot_make_goes_to_the_harness(tmp_path):
+    # /dev/full answers every write with ENOSPC: the launcher writes nothing and hands
+    # the run over (written: false), then keeps serving.
+    from benchharness.execute.base import RunSpec
+
+    spec = RunSpec(argv=("true",), env=dict(os.environ))
+    with LocalExecutor() as ex:
+        stream = ex.open_stream("/dev/full")
+        stream.submit(spec, 7, J.record_head({"run": 7, "position": 0, "block": 0,
+                                              "replicate": 1, "levels": {}}, "ok"))
+        stream.flush()
+        events = _wait_for(lambda: stream.events(timeout_s=1), what="the run's event")
+        assert [(e.key, e.written, e.measurement.status) for e in events] == [(7, False, "ok")]
+        stream.release()
+        stream.close()
+        assert ex.execute(spec).status == "ok"
+
+
+@pytest.fixture
+def small_disk(tmp_path):
+    """A 256 KiB tmpfs (root only), unmounted afterwards."""
+    if os.geteuid() != 0 or not shutil.which("mount"):
+        pytest.skip("mounting a small tmpfs needs root")
+    d = tmp_path / "disk"
+    d.mkdir()
+    r = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(d)],
+                       capture_output=True, text=True)
+    if r.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {r.stderr.strip()}")
+    try:
+        yield d
+    finally:
+        subprocess.run(["umount", "-l", str(d)], capture_output=True)
+
+
+@pytest.mark.parametrize("queued", [True, False], ids=["queued", "one-at-a-time"])
+def test_real_full_disk_then_resume_after_space_is_freed(tmp_path, small_disk, cli, queued):
+    p = _many_runs(tmp_path, 600, queued=queued)  # 1,200 runs: more journal than the disk holds
+    out = small_disk / "res"
+    r = cli("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    assert r.returncode == DISK_FULL_EXIT, r.stderr
+    assert r.stderr.startswith("benchharness: the disk is full") and r.stderr.count("\n") == 1
+    assert f"run --resume {out}" in r.stderr and "Traceback" not in r.stderr
+    assert "runs are recorded there and safe" in r.stderr and "runs.jsonl" in r.stderr
+    assert not (out / "runs.csv.partial").exists()
+    kept = J.read_journal(out / "runs.jsonl")
+    assert 0 < len(kept) < 1200
+    subprocess.run(["mount", "-o", "remount,size=16m", str(small_disk)], check=True)
+    r = cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    runs = J.read_journal(out / "runs.jsonl")
+    assert sorted(x["run"] for x in runs) == list(range(1200))
+    assert not (out / "runs.jsonl.torn").exists()
+    assert all(x["status"] == "ok" for x in runs)
+
+
+# ---------------------------------------------------------------- a kill in the first moments
+
+
+def _kill_early(p, out, parent, delay_s):
+    """Start `run`, SIGKILL it ``delay_s`` after the first thing appears in ``parent``."""
+    before = set(os.listdir(parent))
+    h = _cli_proc("run", p, "--out", out, "--quiet", "--no-analysis", cwd=parent)
+    try:
+        _wait_for(lambda: set(os.listdir(parent)) - before or h.poll() is not None,
+                  timeout=60, what="the run's first file")
+        time.sleep(delay_s)
+    finally:
+        h.kill()
+        h.communicate()
+
+
+@pytest.mark.parametrize("delay_s", [0.0, 0.005, 0.03, 0.1])
+def test_a_kill_while_the_folder_is_set_up_leaves_it_resumable_or_absent(tmp_path, cli,
+                                                                         delay_s):
+    p = _many_runs(tmp_path, 2)
+    parent = tmp_path / "results"
+    parent.mkdir()
+    out = parent / "res"
+    _kill_early(p, out, parent, delay_s)
+    if out.exists() and any(out.iterdir()):
+        r = cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    else:  # nothing under the final name (or an empty folder): start again there
+        r = cli("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    assert sorted(x["run"] for x in J.read_journal(out / "runs.jsonl")) == [0, 1, 2, 3]
+    # what the killed start left aside was removed by the next start (or never existed)
+    assert sorted(os.listdir(parent)) == ["res"]
+
+
+def test_an_empty_folder_is_named_as_such_by_resume(tmp_path, cli):
+    (tmp_path / "res").mkdir()
+    r = cli("run", "--resume", tmp_path / "res", cwd=tmp_path)
+    assert r.returncode == 2
+    assert "is empty" in r.stderr and "nothing was measured" in r.stderr
+    assert f"--out {tmp_path / 'res'}" in r.stderr

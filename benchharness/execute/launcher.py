@@ -1069,10 +1069,7 @@ class Launcher:
         reply["key"] = req.get("key")
         if reply["status"] == "ok" and not self.stop and self.pending_msg is None:
             line = self.journal_line(req, reply)
-            if line is not None:
-                n = os.write(self.journal_fd, line)
-                while n < len(line):  # only on short writes (full disk, signals)
-                    n += os.write(self.journal_fd, line[n:])
+            if line is not None and self.write_line(line):
                 # The harness hears of journalled runs in batches: one reply
                 # write per batch rather than per run (see `flush_done`).
                 done = self.done
@@ -1087,6 +1084,25 @@ class Launcher:
         self.held = True
         self.flush_done()
         send(self.wfd, reply)
+
+    def write_line(self, line):
+        """Append a journal line with one ``write``; False if it could not be
+        written (a full disk): the part already written is cut off again, so the
+        journal holds whole lines only, and the run goes to the harness to record
+        (which then meets the full disk itself and says so)."""
+        n = 0
+        try:
+            n = os.write(self.journal_fd, line)
+            while n < len(line):  # only on short writes (full disk, signals)
+                n += os.write(self.journal_fd, line[n:])
+            return True
+        except OSError:
+            if n:
+                try:
+                    os.ftruncate(self.journal_fd, os.fstat(self.journal_fd).st_size - n)
+                except OSError:
+                    pass
+            return False
 
     def flush_done(self, now=None):
         """Send the batch of journalled runs not yet reported (``dones``)."""
