@@ -147,7 +147,7 @@ def test_whole_effect_inestimable_when_levels_confounded():
 
 def test_one_replicate_full_model_says_no_residual_df():
     d = battery_frame().groupby(["material", "temperature"], as_index=False).first()
-    an = analyze(d, response="life_h", factors=["material", "temperature"])
+    an = analyze(d, response="life_h", factors=["material", "temperature"], model="full")
     t = ours_table(an)
     assert t["Residual"]["df"] == 0
     assert all(r["F"] is None and r["p"] is None for r in an.anova_rows)

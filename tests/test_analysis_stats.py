@@ -149,9 +149,12 @@ def test_tukey_two_factors_matches_studentized_range_with_model_mse():
     import statsmodels.formula.api as smf
 
     d = toothgrowth()
-    an = analyze(d, response="len", factors=["supp", "dose"], transform="none")
+    an = analyze(d, response="len", factors=["supp", "dose"], transform="none",
+                 comparisons=["tukey"])   # dose is in a significant interaction: on request
     m = smf.ols("len ~ C(supp) * C(dose)", d).fit()
-    for c in (c for c in an.comparisons if c["method"] == "tukey" and c["factor"] == "dose"):
+    rows = [c for c in an.comparisons if c["method"] == "tukey" and c["factor"] == "dose"]
+    assert len(rows) == 3
+    for c in rows:
         ma = d.loc[d.dose == c["a"], "len"].mean()
         mb = d.loc[d.dose == c["b"], "len"].mean()
         q = abs(ma - mb) / math.sqrt(m.mse_resid / 20)
@@ -180,8 +183,10 @@ def test_pairwise_and_declared_match_statsmodels_t_tests_unbalanced():
         return {f"{s}_{dose}": 0.5 for s in ("VC", "OJ")}
 
     an = analyze(d, response="len", factors=["supp", "dose"], transform="none", adjust="holm",
-                 compare=[{"dose": ["2", "1"]}, {"supp": ["OJ", "VC"], "within": {"dose": "0.5"}}])
+                 compare=[{"dose": ["2", "1"]}, {"supp": ["OJ", "VC"], "within": {"dose": "0.5"}}],
+                 comparisons=["pairwise"])
     pw = [c for c in an.comparisons if c["method"] == "pairwise" and c["factor"] == "dose"]
+    assert len(pw) == 3
     raw = []
     for c in pw:
         w = emm_dose(c["a"])

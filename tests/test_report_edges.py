@@ -38,11 +38,15 @@ def test_one_run_per_cell_says_nothing_could_be_tested():
     rng = np.random.default_rng(2)
     df = pd.DataFrame([(a, b) for a in "xyz" for b in "pq"], columns=["A", "B"])
     df["wall_s"] = np.exp(rng.normal(0, .1, len(df)))
-    data, figs = build_report(df, factors=["A", "B"])
+    data, figs = build_report(df, factors=["A", "B"], model="full")
     md = render_markdown(data, figs, compact=True)
-    assert "could not test any factor" in md
-    assert "no residual degrees of freedom" in md
-    assert "no difference detected" not in md
+    assert "could not be tested" in md
+    assert "no residual degrees of freedom" in md.lower()
+    assert "no difference detected" not in md and "no detectable difference" not in md
+    # by default the A:B interaction serves as the error term, so the factors are tested
+    data, figs = build_report(df, factors=["A", "B"])
+    assert [r["term"] for r in data.analysis["anova"]] == ["A", "B", "Residual"]
+    assert any("one run per cell" in n for n in data.analysis["notes"])
 
 
 def test_blocked_main_effects_model_keeps_the_block_out_of_the_factors():
@@ -106,7 +110,8 @@ def test_custom_metric_where_higher_is_better(tmp_path):
     assert data.better == "higher"
     html = render_html(data, figs)
     # planted: nap=short, scale=1 is fastest, so it serves the most requests per second
-    assert "The best cell is nap=short, scale=1" in html
+    assert "Recommended: nap=short, scale=1" in html
+    assert data.analysis["best"]["cells"][0]["levels"] == {"nap": "short", "scale": "1"}
     assert "req/s" in html
 
 
@@ -212,7 +217,8 @@ def test_best_cell_with_timeouts_carries_a_caution():
     df.loc[[16, 17], "wall_s"] = np.nan
     data, _ = build_report(df, factors=["pool"])
     v = story.verdict(data)
-    assert v["best"].startswith("The fastest cell is pool=32")
+    assert v["best"].startswith("Best: pool=32")
+    assert v["recommendation"] == "Recommended: pool=32"
     assert "2 of this cell's runs did not finish" in v["best"]
     df.loc[[16, 17], "status"] = "ok"
     df.loc[[16, 17], "wall_s"] = np.exp(-0.5)

@@ -9,8 +9,10 @@ with one job:
 * ``model``        — exact least-squares fit from cell statistics, Type II / III SS;
 * ``diagnostics``  — normality, equal variances, outliers, drift, with verdicts;
 * ``effects``      — estimated marginal means, level ratios, partial η², ω²;
-* ``comparisons``  — pairwise (Holm / Bonferroni), Tukey HSD, simple effects, declared;
+* ``comparisons``  — Tukey HSD, simple effects, declared; pairwise (Bonferroni / Holm);
 * ``art``          — aligned rank transform cross-check (Wobbrock et al. 2011);
+* ``findings``     — the best cell or tied set, and the structured findings that
+                     every headline and report renders (``derive``);
 * ``render_text``  — plain terminal layout (``format_analysis``).
 
 ``Analysis.to_dict()`` is exactly the content of ``analysis.json``.
@@ -20,7 +22,7 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -55,6 +57,9 @@ class Analysis:
     notes: tuple[str, ...]
     counts: dict
     fraction: dict | None = None    # two-level fraction: the alias-chain table (fraction.py)
+    better: str = "lower"
+    best: dict | None = None
+    findings: tuple[dict, ...] = ()
     # arrays for figures (not serialised): per analysed row, in input order
     residuals: Any = field(default=None, repr=False, compare=False)
     fitted: Any = field(default=None, repr=False, compare=False)
@@ -94,6 +99,9 @@ class Analysis:
             "notes": list(self.notes),
             **({"fraction": self.fraction} if self.fraction is not None else {}),
             "roles": self.roles,
+            "better": self.better,
+            "best": self.best,
+            "findings": list(self.findings),
         })
 
     def to_json(self) -> str:
@@ -166,8 +174,8 @@ def _item_node(node, k):
 
 def analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
             model=None, ss_type: int = 2, alpha: float = 0.05, reference=None,
-            adjust: str = "holm", compare=None, art="auto",
-            comparisons: bool = True) -> "Analysis":
+            adjust: str = "bonferroni", compare=None, art="auto",
+            comparisons=True, better=None) -> "Analysis":
     """Analyse a runs table (DataFrame, tidy CSV path or results folder).
 
     ``block``: a column name; None (or "auto") for the default (``block`` for
@@ -177,11 +185,18 @@ def analyze(data, response: str = "wall_s", factors=None, block=None, transform=
     terms aliased with an earlier one are left out and named in its chain, Lenth's
     method gives the p-values when there are no replicates). ``ss_type``: 2 or 3.
     ``reference``: {factor: level} or ["factor=level", ...] for the ratios
-    (default: the first level). ``adjust``: "holm" or "bonferroni" for pairwise
-    comparisons. ``compare``: declared comparisons (see
+    (default: the first level). ``adjust``: "bonferroni" or "holm" for the
+    simple-effect, declared and pairwise families (interval and p always from
+    the same adjustment). ``compare``: declared comparisons (see
     ``comparisons.parse_declared``); default: the experiment's ``compare:``.
     ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
-    ``comparisons=False`` skips the post hoc comparisons (faster in simulations).
+    ``comparisons``: True (default family: Tukey HSD for each significant main
+    effect outside significant interactions, simple effects inside significant
+    two-factor interactions, declared comparisons), False (none; faster in
+    simulations), "all" or a list of method names (``tukey``, ``pairwise``,
+    ``simple``) to run those for every factor.
+    ``better``: "lower" or "higher" (which direction of the response is better;
+    default: the results folder's metrics.json, else lower).
 
     Linear algebra here works on small matrices (cells × parameters), where
     multi-threaded BLAS only adds overhead on a busy machine, so BLAS is held to
@@ -189,7 +204,8 @@ def analyze(data, response: str = "wall_s", factors=None, block=None, transform=
     """
     kwargs = dict(response=response, factors=factors, block=block, transform=transform,
                   model=model, ss_type=ss_type, alpha=alpha, reference=reference,
-                  adjust=adjust, compare=compare, art=art, comparisons=comparisons)
+                  adjust=adjust, compare=compare, art=art, comparisons=comparisons,
+                  better=better)
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:  # optional: only speed depends on it
@@ -200,8 +216,8 @@ def analyze(data, response: str = "wall_s", factors=None, block=None, transform=
 
 def _analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
             model=None, ss_type: int = 2, alpha: float = 0.05, reference=None,
-            adjust: str = "holm", compare=None, art="auto",
-            comparisons: bool = True) -> Analysis:
+            adjust: str = "bonferroni", compare=None, art="auto",
+            comparisons=True, better=None) -> Analysis:
     """The work of `analyze` (same arguments)."""
     from scipy import stats
 
@@ -227,6 +243,9 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         raise UsageError(f"transform {transform!r} is not one of {', '.join(tr.TRANSFORMS)}")
     if art not in ("auto", True, False):
         raise UsageError("art must be 'auto', True or False")
+    methods = _methods(comparisons)
+    if better not in (None, "lower", "higher"):
+        raise UsageError(f"better {better!r}: use lower or higher")
 
     prep = prepare(data, response=response, factors=factors, block=block)
     notes = list(prep.notes)
@@ -246,9 +265,20 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
 
     fdesign = fr.recognise(fnames, flevels, codes[: len(fnames)], prep.experiment)
     spec = model
-    if model is None:
+    if better is None:
+        better = _better_of(data, prep.response)
+    if model is None and fdesign is not None and fdesign.is_fraction:
+        model = fr.chain_order(fdesign)
+        spec = "every alias chain"
+    elif model is None:
         model = fr.chain_order(fdesign) if fdesign is not None else "full"
-        spec = "every alias chain" if fdesign is not None and fdesign.is_fraction else "full"
+        spec = "full"
+        fc = index_cells(codes[: len(fnames)], sizes[: len(fnames)])
+        if len(fnames) >= 2 and fc.count == len(prep.y) and block_index is None:
+            model = spec = len(fnames) - 1
+            notes.append("one run per cell: the " + ":".join(fnames) + " interaction is "
+                         "left out of the model and serves as the error term (add "
+                         "replicates to test it, or --model full to fit it without tests)")
     terms = model_terms(names, model, block_index)
     aliased_out = []
     if fdesign is not None:
@@ -424,12 +454,19 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     means = ef.marginal_means(fit, names, levels, choice, alpha)
     effects = ef.level_ratios(fit, names, levels, factor_idx, refs, choice, alpha)
     comps = []
-    if not comparisons:
+    if methods is None:
         compare = []
-    if comparisons:
-        comps += cmp.pairwise(fit, names, levels, factor_idx, choice, alpha, adjust)
-        comps += cmp.tukey(fit, names, levels, factor_idx, choice, alpha)
-        comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha)
+    else:
+        tk_idx, pw_idx = factor_idx, factor_idx
+        if methods == "default":
+            tk_idx = _tukey_factors(fit, anova_p, alpha, factor_idx)
+        if methods == "default" or "tukey" in methods:
+            comps += cmp.tukey(fit, names, levels, tk_idx, choice, alpha, refs)
+        if methods != "default" and "pairwise" in methods:
+            comps += cmp.pairwise(fit, names, levels, pw_idx, choice, alpha, adjust, refs)
+        if methods == "default" or "simple" in methods:
+            comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha, adjust,
+                                        refs)
     node = None
     if compare is None:
         compare, node = _declared_from_experiment(prep.experiment)
@@ -468,7 +505,17 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
                   "ss_type_requested": ss_type, "alpha": alpha, "adjust": adjust,
                   "rank": fit.rank, "mse": mse if df_res > 0 else None,
                   "references": {fnames[i]: flevels[i][j] for i, j in refs.items()}}
-    return Analysis(
+    from benchharness.analysis import findings as fd
+
+    roles = _roles_of(prep.experiment, fnames, flevels)
+    best = None
+    if len(fnames):
+        best = fd.best_cells(fit, names, levels, _setting_factors(roles, fnames), choice,
+                             alpha, better, prep.response)
+        if best is not None:
+            best["averaged_over"] = [f for f in fnames if f not in best["factors"]]
+            best["roles_source"] = roles.get("source")
+    an = Analysis(
         response=prep.response, factors=tuple(fnames),
         levels={f: list(lv) for f, lv in zip(fnames, flevels)}, block=prep.block,
         model=model_dict, transform=tdict, anova_rows=tuple(anova_rows), means=tuple(means),
@@ -476,8 +523,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)), counts=counts,
         fraction=fraction,
         residuals=resid, fitted=fit.fitted[cells.row_cell], studentized=studentized,
-        position=prep.position, run=prep.run, fit=fit,
-        roles=_roles_of(prep.experiment, fnames, flevels))
+        position=prep.position, run=prep.run, fit=fit, roles=roles, better=better, best=best)
+    return replace(an, findings=tuple(fd.derive(an.to_dict())))
 
 
 def _roles_of(experiment, names, levels) -> dict:
@@ -486,6 +533,64 @@ def _roles_of(experiment, names, levels) -> dict:
 
     return factor_roles(experiment, factors=list(names),
                         levels={f: list(lv) for f, lv in zip(names, levels)}).to_dict()
+
+
+def _methods(comparisons):
+    """"default", None (no comparisons) or a set of method names."""
+    from benchharness.analysis.comparisons import METHODS
+
+    if comparisons is True or comparisons == "default":
+        return "default"
+    if comparisons is False or comparisons is None:
+        return None
+    if comparisons == "all":
+        return set(METHODS)
+    items = [comparisons] if isinstance(comparisons, str) else list(comparisons)
+    bad = [m for m in items if m not in METHODS]
+    if bad:
+        raise UsageError(f"comparison method {bad[0]!r} is not one of "
+                         f"{', '.join(METHODS)} (or all)")
+    return set(items)
+
+
+def _tukey_factors(fit, anova_p, alpha, factor_idx):
+    """Factors whose main effect is significant and which are in no significant interaction."""
+    sig = {t.name for t in fit.terms if (anova_p.get(t.name) is not None
+                                          and anova_p[t.name] < alpha)}
+    inside = set()
+    for t in fit.terms:
+        if not t.is_block and len(t.factors) >= 2 and t.name in sig:
+            inside |= set(t.factors)
+    out = []
+    for f in factor_idx:
+        main = next((t for t in fit.terms if t.factors == (f,) and not t.is_block), None)
+        if main is not None and main.name in sig and f not in inside:
+            out.append(f)
+    return out
+
+
+def _setting_factors(roles: dict | None, fnames) -> list[int]:
+    """Indices of the factors a recommendation chooses: the settings (``benchharness.roles``).
+
+    Workloads and environments are averaged over, so the best cell is a setting
+    that holds up across them; without any setting every factor counts.
+    """
+    settings = set((roles or {}).get("setting") or [])
+    idx = [i for i, f in enumerate(fnames) if f in settings]
+    return idx or list(range(len(fnames)))
+
+
+def _better_of(data, response) -> str:
+    """Direction of the response: a results folder's metrics.json, else lower."""
+    try:
+        path = Path(data)
+    except TypeError:
+        return "lower"
+    if path.is_dir():
+        from benchharness.metrics import better_direction
+
+        return better_direction(path, response)
+    return "lower"
 
 
 def _load_check(resid, load, alpha):

@@ -5,19 +5,34 @@ Owns:
 * pairwise t-tests between estimated marginal means on the model's mean square
   error and residual degrees of freedom (standard errors of the marginal means
   from the model, so unbalanced data are handled), adjusted within each factor
-  by Bonferroni or Holm (Holm 1979, *Scand. J. Statistics* 6:65);
+  by Bonferroni or Holm (Holm 1979, *Scand. J. Statistics* 6:65) — on request;
 * Tukey HSD for each main effect (Tukey 1953; Kramer 1956 for unequal n):
   q = |difference| / (SE/√2) against the studentized range distribution
   (``srange``, checked against scipy);
 * simple effects: when a two-factor interaction is significant, the levels of
-  one factor compared within each level of the other, Holm-adjusted over that
+  one factor compared within each level of the other, adjusted over that
   family;
 * comparisons declared in advance in the experiment file (``compare:``),
   adjusted only among themselves because the family was fixed before the data.
 
-Intervals for adjusted families are Bonferroni-simultaneous (level 1 − α/m),
-which also covers Holm conservatively; Tukey intervals use the studentized
-range quantile.
+Which families run by default is decided in ``analysis.__init__`` (``family``):
+Tukey HSD for each significant main effect outside any significant
+interaction, simple effects inside significant two-factor interactions, and
+the declared comparisons; the others on request.
+
+Orientation: every comparison is a ratio *level over reference*, like the
+effects (> 1 = the level gives a larger response): a pair that contains the
+factor's reference level has it as ``b``; any other pair puts the later level
+over the earlier one.
+
+Interval and p always come from the same adjustment, so an adjusted p below α
+never sits beside an interval that contains 1×: Tukey intervals use the
+studentized range quantile of its p-values; Bonferroni intervals have level
+1 − α/m, the level of its p-values; with Holm, each interval has the level of
+the step that decided it (α/(m − k) for the k-th smallest p while the steps
+reject; the level of the first step that does not reject for the rest), so it
+excludes 1× exactly when Holm rejects. Only the Bonferroni and Tukey intervals
+are simultaneous at 1 − α; the Holm step intervals match its decisions.
 """
 
 from __future__ import annotations
@@ -32,7 +47,10 @@ from benchharness.errors import UsageError
 from benchharness.analysis.effects import contrast_result, margin_rows
 from benchharness.analysis.model import Fit
 
-ADJUST = ("holm", "bonferroni")
+ADJUST = ("bonferroni", "holm")
+
+#: comparison methods that can be requested by name (``declared`` always runs when given)
+METHODS = ("tukey", "pairwise", "simple")
 
 
 def adjust_p(p, method: str) -> np.ndarray:
@@ -61,27 +79,74 @@ def _t_p(d, se, df):
 
 
 def _family(fit: Fit, items, choice, alpha, adjust, method, names):
-    """items: (factor name, within dict|None, a label, b label, La, Lb)."""
+    """items: (factor name, within dict|None, a label, b label, La, Lb).
+
+    Raw p from the t test of each contrast; adjusted p by ``adjust``; each
+    interval at the level that matches its adjusted p (see the module notes).
+    """
     from scipy import stats
 
     m = len(items)
     if m == 0 or fit.df_resid <= 0:
         return []
-    q = float(stats.t.ppf(1 - alpha / (2 * m), fit.df_resid))
-    rows, ps = [], []
+    results, ps = [], []
     for factor, within, a, b, la, lb in items:
-        r = contrast_result(fit, la, lb, choice, q)
-        p = _t_p(r["estimate"], r["se"], fit.df_resid) if r["estimable"] else None
-        ps.append(p)
-        rows.append(_entry(method, factor, within, a, b, r, p))
+        r = contrast_result(fit, la, lb, choice, 1.0)
+        ps.append(_t_p(r["estimate"], r["se"], fit.df_resid) if r["estimable"] else None)
+        results.append(r)
     valid = [i for i, p in enumerate(ps) if p is not None]
     adj = adjust_p([ps[i] for i in valid], adjust)
-    for i, pa in zip(valid, adj):
-        rows[i]["p_adj"] = float(pa)
-    for row in rows:
-        row["adjust"] = adjust
-        row["family_size"] = m
+    levels = step_levels([ps[i] for i in valid], alpha, adjust)
+    p_adj = {i: float(pa) for i, pa in zip(valid, adj)}
+    level = {i: lv for i, lv in zip(valid, levels)}
+    rows = []
+    for i, (factor, within, a, b, la, lb) in enumerate(items):
+        q = float(stats.t.ppf(1 - level.get(i, alpha / m) / 2, fit.df_resid))
+        r = contrast_result(fit, la, lb, choice, q) if results[i]["estimable"] else results[i]
+        e = _entry(method, factor, within, a, b, r, ps[i])
+        e["p_adj"] = p_adj.get(i)
+        e["adjust"] = adjust
+        e["family_size"] = m
+        e["interval_level"] = 1 - level.get(i, alpha / m)
+        rows.append(e)
     return rows
+
+
+def step_levels(p, alpha: float, method: str) -> list[float]:
+    """Two-sided level of each interval so that it excludes 0 exactly when ``method`` rejects.
+
+    Bonferroni: α/m for all. Holm: α/(m − k) for the k-th smallest p (0-based)
+    while every step up to it rejects, then the level of the first step that
+    does not reject for that one and all larger p.
+    """
+    m = len(p)
+    if m == 0:
+        return []
+    if method == "bonferroni":
+        return [alpha / m] * m
+    order = np.argsort(np.asarray(p, dtype=float), kind="stable")
+    out = [0.0] * m
+    stop = None
+    for k, i in enumerate(order):
+        if stop is None and not (p[i] * (m - k) < alpha):
+            stop = alpha / (m - k)
+        out[i] = stop if stop is not None else alpha / (m - k)
+    return out
+
+
+def oriented_pairs(k: int, ref: int = 0) -> list[tuple[int, int]]:
+    """Every pair of levels as (a, b) for the ratio a/b, level over reference.
+
+    A pair holding the reference level ``ref`` has it as b; other pairs put the
+    later level over the earlier one.
+    """
+    out = []
+    for i, j in combinations(range(k), 2):
+        if j == ref:
+            out.append((i, j))
+        else:
+            out.append((j, i))
+    return out
 
 
 def _entry(method, factor, within, a, b, r, p):
@@ -94,12 +159,13 @@ def _entry(method, factor, within, a, b, r, p):
     return e
 
 
-def pairwise(fit: Fit, names, levels, factor_idx, choice, alpha, adjust) -> list[dict]:
+def pairwise(fit: Fit, names, levels, factor_idx, choice, alpha, adjust,
+             refs=None) -> list[dict]:
     out = []
     for f in factor_idx:
         _, L = margin_rows(fit, (f,))
         items = [(names[f], None, levels[f][i], levels[f][j], L[i], L[j])
-                 for i, j in combinations(range(fit.sizes[f]), 2)]
+                 for i, j in oriented_pairs(fit.sizes[f], (refs or {}).get(f, 0))]
         out += _family(fit, items, choice, alpha, adjust, "pairwise", names)
     return out
 
@@ -111,7 +177,7 @@ def _q_crit(alpha: float, k: int, df: int) -> float:
     return srange.isf(alpha, k, df)
 
 
-def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
+def tukey(fit: Fit, names, levels, factor_idx, choice, alpha, refs=None) -> list[dict]:
     from benchharness.analysis import srange
 
     if fit.df_resid <= 0:
@@ -124,13 +190,16 @@ def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
         _, L = margin_rows(fit, (f,))
         half = _q_crit(float(alpha), int(k), int(fit.df_resid)) / math.sqrt(2.0)
         rows, stats_q = [], []
-        for i, j in combinations(range(k), 2):
+        for i, j in oriented_pairs(k, (refs or {}).get(f, 0)):
             r = contrast_result(fit, L[i], L[j], choice, half)
             stat = None
             if r["estimable"] and r["se"] and r["se"] > 0:
                 stat = abs(r["estimate"]) / (r["se"] / math.sqrt(2.0))
             e = _entry("tukey", names[f], None, levels[f][i], levels[f][j], r, None)
             e["q"] = stat
+            e["adjust"] = "tukey"
+            e["family_size"] = k * (k - 1) // 2
+            e["interval_level"] = 1 - alpha
             rows.append(e)
             stats_q.append(stat)
         idx = [i for i, q in enumerate(stats_q) if q is not None]
@@ -142,8 +211,12 @@ def tukey(fit: Fit, names, levels, factor_idx, choice, alpha) -> list[dict]:
     return out
 
 
-def simple_effects(fit: Fit, names, levels, anova_p: dict, choice, alpha) -> list[dict]:
-    """Within each level of B, compare levels of A, for significant two-factor interactions."""
+def simple_effects(fit: Fit, names, levels, anova_p: dict, choice, alpha,
+                   adjust: str = "bonferroni", refs=None) -> list[dict]:
+    """Within each level of B, compare levels of A, for significant two-factor interactions.
+
+    One family per interaction and direction (A within B, B within A).
+    """
     out = []
     for t in fit.terms:
         if t.is_block or len(t.factors) != 2:
@@ -157,13 +230,13 @@ def simple_effects(fit: Fit, names, levels, anova_p: dict, choice, alpha) -> lis
             fa, fb = t.factors[a_pos], t.factors[b_pos]
             items = []
             for lb in range(fit.sizes[fb]):
-                for i, j in combinations(range(fit.sizes[fa]), 2):
+                for i, j in oriented_pairs(fit.sizes[fa], (refs or {}).get(fa, 0)):
                     ci, cj = [0, 0], [0, 0]
                     ci[a_pos], ci[b_pos] = i, lb
                     cj[a_pos], cj[b_pos] = j, lb
                     items.append((names[fa], {names[fb]: levels[fb][lb]}, levels[fa][i],
                                   levels[fa][j], L[index[tuple(ci)]], L[index[tuple(cj)]]))
-            rows = _family(fit, items, choice, alpha, "holm", "simple", names)
+            rows = _family(fit, items, choice, alpha, adjust, "simple", names)
             for r in rows:
                 r["interaction"] = t.name
             out += rows

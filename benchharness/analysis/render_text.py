@@ -1,6 +1,7 @@
 """Plain-text rendering of an `Analysis` for terminals and logs (no colour, no markup).
 
-Owns our own plain layout: a heading with what was analysed, the ANOVA table
+Owns our own plain layout: a heading with what was analysed, the findings
+(rendered from ``analysis.json``'s ``findings``, never recomputed), the ANOVA table
 (source, df, sum of squares, mean square, F, p, partial η², ω²), the scale
 chosen and why, level ratios in plain sentences, diagnostics verdicts,
 failed-run counts, comparisons whose adjusted p is below α, and notes.
@@ -59,6 +60,15 @@ def format_analysis(a) -> str:
                  + f"; {scale}; Type {d['model']['ss_type']} sums of squares")
     lines.append(f"Scale: {t['reason']}")
     lines.append("")
+    found = d.get("findings") or []
+    if found:
+        lines.append("Findings")
+        for f in found:
+            if f["kind"] == "simple effect":
+                continue        # stated inside its interaction
+            mark = {"caution": "!", "best": ">"}.get(f["kind"], "-")
+            lines.append(f"  {mark} {f['statement']}")
+        lines.append("")
     rows = []
     for r in d["anova"]:
         label = r.get("chain") or (
@@ -111,12 +121,15 @@ def format_analysis(a) -> str:
             lines.append(f"    {r['term']}: p {_p(r['p'])} vs ANOVA p {_p(r['anova_p'])} — {agree}")
     lines.append("")
     alpha = d["model"]["alpha"]
-    shown = [x for x in d["comparisons"] if x["p_adj"] is not None and x["p_adj"] < alpha]
+    shown = [x for x in d["comparisons"] if x["p_adj"] is not None and x["p_adj"] < alpha
+             and x.get("lower") is not None and x.get("upper") is not None
+             and (x["lower"] > 1 or x["upper"] < 1 or t["name"] == "none")]
     if d["comparisons"]:
         lines.append(f"Comparisons with adjusted p < {alpha:g} ({len(shown)} of "
-                     f"{len(d['comparisons'])})")
-        label = {"pairwise": f"pairwise ({d['model']['adjust']})", "tukey": "Tukey HSD",
-                 "simple": "simple effect (holm)", "declared": "declared"}
+                     f"{len(d['comparisons'])}; a over b)")
+        adj = d["model"]["adjust"]
+        label = {"pairwise": f"pairwise ({adj})", "tukey": "Tukey HSD",
+                 "simple": f"simple effect ({adj})", "declared": f"declared ({adj})"}
         diff = t["name"] == "none"
         rows = []
         for x in shown[:40]:
@@ -126,7 +139,7 @@ def format_analysis(a) -> str:
                        f"[{_g(x.get('difference_lower'))}, {_g(x.get('difference_upper'))}]"]
             else:
                 est = [_g(x["ratio"]), f"[{_g(x['lower'])}, {_g(x['upper'])}]"]
-            rows.append([label[x["method"]], f"{x['factor']}: {x['a']} vs {x['b']}{within}",
+            rows.append([label[x["method"]], f"{x['factor']}: {x['a']} over {x['b']}{within}",
                          *est, _p(x["p_adj"])])
         if not rows:
             lines.append("  none")

@@ -39,8 +39,17 @@ def add_parser(sub) -> None:
     p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
                    help="reference level of a factor for ratios (repeat the option for each "
                         "factor; default: the first level)")
-    p.add_argument("--adjust", choices=["holm", "bonferroni"], default="holm",
-                   help="adjustment of pairwise comparisons (default holm)")
+    p.add_argument("--adjust", choices=["bonferroni", "holm"], default="bonferroni",
+                   help="adjustment of the simple-effect, declared and pairwise families; "
+                        "intervals follow the same adjustment (default bonferroni)")
+    p.add_argument("--comparisons", default=None, metavar="METHODS",
+                   help="comparisons to make for every factor: tukey, pairwise, simple "
+                        "(comma-separated) or all; default: Tukey HSD for significant main "
+                        "effects outside significant interactions, simple effects inside "
+                        "them, and the experiment's declared comparisons")
+    p.add_argument("--better", choices=["lower", "higher"], default=None,
+                   help="which direction of the response is better (default: the metric's "
+                        "declaration in a results folder, else lower)")
     p.add_argument("--art", action="store_true",
                    help="always run the rank-based cross-check (aligned rank transform)")
     p.add_argument("--json", metavar="FILE", default=None,
@@ -74,7 +83,10 @@ def main(args) -> int:
     an = analyze(args.source, response=args.response, factors=factors, block=block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=args.alpha, reference=args.reference, adjust=args.adjust,
-                 art=True if args.art else "auto")
+                 art=True if args.art else "auto", better=args.better,
+                 comparisons=(True if args.comparisons is None else
+                              "all" if args.comparisons.strip() == "all" else
+                              [m.strip() for m in args.comparisons.split(",") if m.strip()]))
     if args.json == "-":
         sys.stdout.write(an.to_json() + "\n")
         return 0

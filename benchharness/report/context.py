@@ -59,6 +59,11 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         })
     effects = []
     has_diff = False
+    depends: dict[str, list[str]] = {}
+    for f in verdict["findings"]:
+        if f["kind"] == "interaction":
+            for x in f["factors"]:
+                depends.setdefault(x, []).extend(y for y in f["factors"] if y != x)
     for e in data.analysis.get("effects") or []:
         lo, hi = e.get("lower"), e.get("upper")
         sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
@@ -67,7 +72,8 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
                "interval": (f"{fmt_ratio(lo)} to {fmt_ratio(hi)}" if finite(lo) and finite(hi)
                             else "not estimable (empty cells)" if e.get("estimable") is False
                             else "–"),
-               "significant": sig, "difference": ""}
+               "significant": sig, "difference": "",
+               "depends": ", ".join(dict.fromkeys(depends.get(e.get("factor"), [])))}
         if finite(e.get("difference")):
             has_diff = True
             row["difference"] = fmt_value(e.get("difference"), resp)
@@ -87,8 +93,11 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
     comps_all = story.comparisons(data)
     comps = []
     for c in comps_all[:MAX_COMPARISONS]:
+        method = _METHOD_WORDS.get(c.get("method"), str(c.get("method")))
+        if c.get("adjust") in ("bonferroni", "holm") and c.get("method") != "tukey":
+            method += f" ({c['adjust'].capitalize()})"
         comps.append({
-            "method": _METHOD_WORDS.get(c.get("method"), str(c.get("method"))),
+            "method": method,
             "factor": c.get("factor"), "within": c["within_text"],
             "a": c.get("a"), "b": c.get("b"), "ratio": fmt_ratio(c.get("ratio")),
             "interval": (f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}"
@@ -144,6 +153,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "comparisons_split": len(comps) > MANY_COMPARISONS,
         "adjust": (data.analysis.get("model") or {}).get("adjust"),
         "comparisons_total": len(comps_all),
+        "comparisons_intro": _comparisons_intro(comps_all),
         "comparisons_shown": len(comps),
         "diagnostics": diags,
         "rank_check": art,
@@ -167,6 +177,27 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "version": _version(),
         "compact": compact,
     }
+
+
+def _comparisons_intro(comps) -> str:
+    """One sentence on which families were compared and why."""
+    kinds = {c.get("method") for c in comps}
+    parts = []
+    if "tukey" in kinds:
+        parts.append("Tukey HSD between all levels of each significant main effect that is "
+                     "in no significant interaction")
+    if "simple" in kinds:
+        parts.append("simple effects (the levels of one factor within each level of its "
+                     "partner) inside each significant interaction")
+    if "declared" in kinds:
+        parts.append("the comparisons declared in the experiment file, adjusted among "
+                     "themselves")
+    if "pairwise" in kinds:
+        parts.append("pairwise t-tests between the levels of every factor (on request)")
+    if not parts:
+        return ""
+    text = "; ".join(parts)
+    return text[0].upper() + text[1:] + "."
 
 
 def _extra_section(sec) -> dict:

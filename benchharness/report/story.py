@@ -124,107 +124,95 @@ def cell_means(data: ReportData) -> list[dict]:
     return rows
 
 
-def verdict(data: ReportData) -> dict[str, Any]:
-    """The plain-words answer: which factors matter, by how much, best cell, how sure."""
-    conf = confidence_pct(data)
-    rows = anova_rows(data)
-    by_term = {r["term"]: r for r in rows}
-    effects = data.analysis.get("effects") or []
-    out: dict[str, Any] = {"factors": [], "interactions": [], "best": None, "sure": []}
+def findings(data: ReportData) -> list[dict]:
+    """The analysis' findings (derived again for an analysis.json written before they existed)."""
+    found = data.analysis.get("findings")
+    if found is None and not data.analysis.get("unanalysed") and data.analysis.get("anova"):
+        from benchharness.analysis.findings import derive
 
-    matter, no_matter, untested = [], [], []
-    for f in data.factors:
-        row = by_term.get(f)
-        if row is None:
-            continue
-        f = row.get("chain") or f  # a fraction names the main effect by its alias chain
-        effs = [e for e in effects if e.get("factor") == row["term"]]
-        entry = {
-            "factor": row["term"],
-            "significant": row["significant"],
-            "p": row.get("p"),
-            "eta": row.get("partial_eta_sq"),
-            "effects": [_effect_phrase(data, e) for e in effs],
-        }
-        if row["significant"]:
-            matter.append(f)
-            if effs:
-                big = max(effs, key=lambda e: abs(math.log(float(e["ratio"])))
-                          if finite(e.get("ratio")) and float(e["ratio"]) > 0 else 0.0)
-                entry["summary"] = (
-                    f"{f} matters (p {_p_words(row.get('p'))}; partial η² "
-                    f"{fmt_num(row.get('partial_eta_sq'), 2)}). Largest change: "
-                    + _effect_phrase(data, big) + ".")
+        found = derive(data.analysis)
+    return list(found or [])
+
+
+def headline(found: list[dict]) -> str | None:
+    """One sentence from the findings: interactions with their per-level effects, then the
+    factors that matter, then those that made no detectable difference."""
+    from benchharness.analysis.findings import fmt_interval as fi, fmt_ratio as fr
+
+    parts, nothing, untested = [], [], []
+    for f in found:
+        if f["kind"] == "interaction":
+            per = f.get("per_level") or []
+            names = " and ".join(f["factors"]) if len(f["factors"]) == 2 else _and(f["factors"])
+            parts.append(f"{names} interact" + (f" ({per[0]})" if per else ""))
+        elif f["kind"] == "main":
+            if f["significant"]:
+                lead = f"{f['terms'][0]} matters"
+                if f.get("ratio") is not None:
+                    lead += (f" ({f['factors'][0]}={f['level']} {fr(f['ratio'])} "
+                             f"{fi(f.get('lower'), f.get('upper'))} against "
+                             f"{f['factors'][0]}={f['reference']})")
+                parts.append(lead)
+            elif f.get("untested"):
+                untested.append(f["terms"][0])
+            elif f["significant"] is None:
+                continue    # in a larger significant interaction, stated there
             else:
-                entry["summary"] = (f"{f} matters (p {_p_words(row.get('p'))}; partial η² "
-                                    f"{fmt_num(row.get('partial_eta_sq'), 2)}).")
-        elif not finite(row.get("p")):
-            untested.append(f)
-            entry["summary"] = (f"{f}: could not be tested (no p-value; see the ANOVA section "
-                                "and its notes).")
+                nothing.append(f["terms"][0])
+    if not parts and not nothing and not untested:
+        return None
+    text = "; ".join(parts)
+    if nothing:
+        if parts:
+            text += f"; {_and(nothing)} made no detectable difference"
         else:
-            no_matter.append(f)
-            entry["summary"] = (f"{f}: no difference detected (p {_p_words(row.get('p'))}); "
-                                "any effect is too small for this experiment to see.")
-        out["factors"].append(entry)
+            text = (f"None of the factors ({_and(nothing)}) made a difference this experiment "
+                    "could detect")
+    if untested:
+        text = (text + "; " if text else "") + f"{_and(untested)} could not be tested"
+    return text[0].upper() + text[1:] + "."
 
-    for r in rows:
-        parts = _term_parts(r["term"], data)
-        if not parts or len(parts) < 2 or any(p not in data.factors for p in parts):
-            continue
-        if r["significant"]:
-            out["interactions"].append(
-                f"The effect of {parts[0]} depends on {' and '.join(parts[1:])} "
-                f"({r.get('chain') or r['term']}, p {_p_words(r.get('p'))}): read the "
-                "interaction plot before quoting a single ratio for either factor."
-                + _alias_caveat(r))
-    if matter:
-        head = f"{_and(matter)} {'matters' if len(matter) == 1 else 'matter'}"
-        if no_matter:
-            head += f"; {_and(no_matter)} made no detectable difference"
-        out["headline"] = head + "."
-    elif no_matter:
-        out["headline"] = (f"None of the factors ({_and(no_matter)}) made a difference this "
-                           "experiment could detect.")
-    elif data.analysis.get("unanalysed"):
-        out["headline"] = ("No timed run finished successfully, so there is nothing to analyse; "
-                           "see the data-quality warnings for why the runs failed.")
-    else:
-        out["headline"] = "The analysis could not test any factor (see the ANOVA section)."
-    if untested and (matter or no_matter):
-        out["headline"] = out["headline"][:-1] + f"; {_and(untested)} could not be tested."
 
-    cells = cell_means(data)
-    if cells:
-        best = cells[0]
-        word = "fastest" if lower_is_better(data) and unit_of(data.response) == "s" else "best"
-        text = f"The {word} cell is {cell_label(best['levels'], data.factors)}: " \
-               f"{fmt_value(best['mean'], data.response)}"
-        if finite(best.get("lower")) and finite(best.get("upper")):
-            text += (f" ({conf} interval {fmt_value(best['lower'], data.response)} to "
-                     f"{fmt_value(best['upper'], data.response)})")
-        text += "."
-        if len(cells) > 1:
-            second = cells[1]
-            ratio = float(second["mean"]) / float(best["mean"]) if float(best["mean"]) else None
-            text += (f" Runner-up: {cell_label(second['levels'], data.factors)} at "
-                     f"{fmt_value(second['mean'], data.response)}")
-            if ratio is not None:
-                text += f" ({fmt_ratio(ratio)} the best)"
-            overlap = (finite(best.get("upper")) and finite(second.get("lower"))
-                       and (float(second["lower"]) <= float(best["upper"])
-                            if lower_is_better(data)
-                            else float(second["upper"]) >= float(best["lower"])))
-            if overlap:
-                text += "; their intervals overlap, so treat the two as close to tied."
-            else:
-                text += "."
-        lost = _lost_runs(data, best["levels"])
-        if lost:
-            text += (f" Caution: {lost} of this cell's runs did not finish (failed or timed "
-                     "out), so its mean counts only the runs that did and may flatter it.")
-        out["best"] = text
-
+def verdict(data: ReportData) -> dict[str, Any]:
+    """The plain-words answer, rendered from the analysis' findings: headline, one line per
+    factor and interaction, the recommendation (best cell or tied set) and how sure."""
+    found = findings(data)
+    out: dict[str, Any] = {"factors": [], "interactions": [], "best": None, "sure": [],
+                           "recommendation": None, "cautions": [], "findings": found}
+    for f in found:
+        if f["kind"] == "main":
+            out["factors"].append({"factor": f["factors"][0], "significant": bool(f["significant"]),
+                                   "p": f.get("p"), "summary": f["statement"] + "."})
+        elif f["kind"] == "interaction":
+            out["interactions"].append(f["statement"] + ".")
+        elif f["kind"] == "best":
+            out["best"] = f["statement"] + "."
+            cells = f.get("cells") or []
+            if len(cells) == 1:
+                out["recommendation"] = "Recommended: " + cell_label(cells[0], list(cells[0]))
+            elif cells and len(cells) < len(data.analysis.get("best", {}).get("cells") or []):
+                out["recommendation"] = ("Recommended: any of the tied set, "
+                                         + "; ".join(cell_label(c, list(c)) for c in cells[:6])
+                                         + (" …" if len(cells) > 6 else ""))
+            elif cells:
+                out["recommendation"] = ("No recommendation: no cell is distinguishable from "
+                                         "the best")
+            if f.get("best") is not None:
+                lost = _lost_runs(data, f["best"])
+                if lost:
+                    out["best"] += (f" Caution: {lost} of this cell's runs did not finish "
+                                    "(failed or timed out), so its mean counts only the runs "
+                                    "that did and may flatter it.")
+        elif f["kind"] == "caution":
+            out["cautions"].append(f["statement"] + ".")
+    head = headline(found)
+    if head is None:
+        if data.analysis.get("unanalysed"):
+            head = ("No timed run finished successfully, so there is nothing to analyse; "
+                    "see the data-quality warnings for why the runs failed.")
+        else:
+            head = "The analysis could not test any factor (see the ANOVA section)."
+    out["headline"] = head
     out["sure"] = sureness(data)
     out["transform"] = transform_sentence(data)
     return out
@@ -564,9 +552,24 @@ def comparisons(data: ReportData, limit: int | None = None) -> list[dict]:
         within = c.get("within") or {}
         row["within_text"] = ", ".join(f"{k}={v}" for k, v in within.items()) if within else ""
         p = c.get("p_adj")
-        row["significant"] = bool(finite(p) and float(p) < data.alpha)
+        lo, hi = c.get("lower"), c.get("upper")
+        # significant only when the interval shown agrees with the adjusted p
+        excludes = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
+        row["significant"] = bool(finite(p) and float(p) < data.alpha and excludes)
         out.append(row)
     return out[:limit] if limit else out
+
+
+def top_comparisons(data: ReportData, n: int = 10) -> list[dict]:
+    """The ``n`` comparisons that matter most: significant first, then by size of the ratio."""
+    rows = comparisons(data)
+
+    def size(c):
+        r = c.get("ratio")
+        return abs(math.log(float(r))) if finite(r) and float(r) > 0 else 0.0
+
+    rows.sort(key=lambda c: (not c["significant"], -size(c)))
+    return rows[:n]
 
 
 def design_rows(data: ReportData) -> list[tuple[str, str]]:

@@ -59,7 +59,7 @@ def _data_from(analysis) -> ReportData:
                       block=adict.get("block"))
 
 
-def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
+def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
     """Print verdict, ANOVA, effects, diagnostics, comparisons and warnings."""
     from rich import box
     from rich.table import Table
@@ -71,12 +71,16 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
     conf = story.confidence_pct(data)
 
     con.print(Text(v["headline"], style="bold"))
-    for f in v["factors"]:
-        con.print(Text("  • " + f["summary"], style=None if f["significant"] else "dim"))
     for i in v["interactions"]:
         con.print(Text("  • " + i))
+    for f in v["factors"]:
+        con.print(Text("  • " + f["summary"], style=None if f["significant"] else "dim"))
+    if v["recommendation"]:
+        con.print(Text("  " + v["recommendation"], style="bold green"))
     if v["best"]:
         con.print(Text("  " + v["best"], style="green"))
+    for c in v["cautions"]:
+        con.print(Text("  ! " + c, style="yellow"))
     for s in v["sure"]:
         con.print(Text("  " + s, style="dim"))
     con.print(Text("  " + v["transform"], style="dim"))
@@ -128,24 +132,33 @@ def print_analysis(analysis, console=None, comparisons: int = 20) -> None:
                       fmt_p(d["p"]) if d["p"] is not None else "", Text(d["verdict"]))
         con.print(t)
 
-    comps = [c for c in story.comparisons(data) if c["significant"]]
+    all_comps = story.comparisons(data)
+    comps = story.top_comparisons(data, comparisons)
     if comps:
-        t = Table(title=f"Comparisons with adjusted p < {data.alpha:g} "
-                        f"({len(comps)} of {len(story.comparisons(data))})",
+        n_sig = sum(1 for c in all_comps if c["significant"])
+        t = Table(title=f"Comparisons that matter most ({len(comps)} of {len(all_comps)}; "
+                        f"{n_sig} with adjusted p < {data.alpha:g}; ratio of a over b, "
+                        "> 1 = larger)",
                   box=box.SIMPLE_HEAD, title_justify="left", title_style="bold")
         for col, just in (("method", "left"), ("comparison", "left"), ("ratio a/b", "right"),
                           ("interval", "right"), ("p adj", "right")):
             t.add_column(col, justify=just, overflow="fold")
-        for c in comps[:comparisons]:
-            within = f" within {c['within_text']}" if c["within_text"] else ""
-            t.add_row(str(c.get("method")),
-                      Text(f"{c.get('factor')}: {c.get('a')} vs {c.get('b')}{within}"),
+        words = {"tukey": "Tukey HSD", "simple": "simple effect", "pairwise": "pairwise",
+                 "declared": "declared"}
+        for c in comps:
+            within = f" when {c['within_text']}" if c["within_text"] else ""
+            method = words.get(c.get("method"), str(c.get("method")))
+            if c.get("adjust") in ("bonferroni", "holm") and c.get("method") != "tukey":
+                method += f" ({c['adjust']})"
+            t.add_row(method,
+                      Text(f"{c.get('factor')}: {c.get('a')} over {c.get('b')}{within}"),
                       fmt_ratio(c.get("ratio")),
                       f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}",
-                      fmt_p(c.get("p_adj")))
+                      fmt_p(c.get("p_adj")), style="bold" if c["significant"] else None)
         con.print(t)
-        if len(comps) > comparisons:
-            con.print(Text(f"  … {len(comps) - comparisons} more in analysis.json", style="dim"))
+        if len(all_comps) > len(comps):
+            con.print(Text(f"  … {len(all_comps) - len(comps)} more in analysis.json",
+                           style="dim"))
 
     warns = story.warnings(data, list(data.extra_notes))
     notes = data.analysis.get("notes") or []

@@ -1,0 +1,475 @@
+"""Findings: what the fitted analysis says, as structured statements every report renders.
+
+Owns two steps:
+
+* ``best_cells`` — the best cell and the set of cells not distinguishable from
+  it, from the fitted model's estimated cell means. A cell stays in the tied
+  set unless some other cell is better by more than ``d`` standard errors of
+  their difference (Gupta's subset selection, Gupta 1965, *Technometrics* 7:225;
+  its equivalence with constrained multiple comparisons with the best is
+  Hsu 1984, *Annals of Statistics* 12:1136). ``d`` is the two-sided Bonferroni
+  t quantile over the ``k − 1`` comparisons with the best: conservative, valid
+  for the correlated estimates of any model, and for two cells exactly the
+  ordinary t test, so a tied pair never contradicts a main effect.
+* ``derive`` — the ONE function that turns the analysis (plain data, as in
+  ``analysis.json``) into ``findings``: a list of dicts with ``kind`` (main,
+  interaction, simple effect, best, caution), ``terms``, ``factors``,
+  ``significant``, ``ratio``/``lower``/``upper``, ``p`` and a one-line
+  ``statement``. Headlines and reports only render these.
+
+Rules the findings keep:
+
+* a factor inside a significant interaction is never "no detectable
+  difference": its effect is stated per level of its partner, with intervals
+  (from the simple-effect comparisons);
+* a term is called significant only when its stated interval agrees (a
+  significant F whose adjusted intervals all contain 1× is said as such);
+* the best cell, or the tied set, with its ratio to the runner-up, is always
+  stated; "best" respects the response's direction (``better``).
+
+Terms are named as the ANOVA rows name them (alias chains included).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+
+KINDS = ("interaction", "simple effect", "main", "best", "caution")
+
+#: most cells named in the tied set's statement (the finding lists them all)
+TIED_NAMED = 6
+#: more cells than this: no tied set is computed (k² differences)
+MAX_CELLS_FOR_TIES = 2000
+
+
+# ---------------------------------------------------------------------------------------------
+# formatting (plain text; renderers may restyle)
+
+def fmt_ratio(r) -> str:
+    if r is None or not math.isfinite(r):
+        return "–"
+    if r >= 100 or r < 0.01:
+        return f"×{r:.3g}"
+    return f"×{r:.3g}" if r >= 10 else f"×{r:.2f}"
+
+
+def fmt_interval(lo, hi) -> str:
+    if lo is None or hi is None:
+        return "[no interval]"
+    return f"[{fmt_ratio(lo)[1:]}, {fmt_ratio(hi)[1:]}]"
+
+
+def fmt_p(p) -> str:
+    if p is None:
+        return "p –"
+    if p < 1e-4:
+        return "p < 0.0001"
+    return f"p = {p:.2g}" if p < 0.01 else f"p = {p:.2f}"
+
+
+def fmt_value(x, response: str) -> str:
+    """A mean in the response's units when the name carries one (``_s``, ``_kib``)."""
+    if x is None or not math.isfinite(x):
+        return "–"
+    if response.endswith("_s"):
+        a = abs(x)
+        if a < 1e-4:
+            return f"{x * 1e6:.3g} µs"
+        if a < 0.1:
+            return f"{x * 1e3:.3g} ms"
+        return f"{x:.3g} s"
+    if response.endswith("_kib"):
+        return f"{x:.4g} KiB"
+    return f"{x:.4g}"
+
+
+def cell_text(levels: dict) -> str:
+    return ", ".join(f"{k}={v}" for k, v in levels.items())
+
+
+def _and(items) -> str:
+    items = list(items)
+    if len(items) <= 1:
+        return "".join(items)
+    return ", ".join(items[:-1]) + " and " + items[-1]
+
+
+# ---------------------------------------------------------------------------------------------
+# the best cell and the tied set (needs the fit)
+
+def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: str,
+               response: str) -> dict | None:
+    """Best cell over the factors ``setting_idx`` (others averaged) and its tied set.
+
+    Returns plain data: ``cells`` (every estimable cell, best first, with mean,
+    estimate and se on the analysis scale), ``tied`` (indices into ``cells``),
+    ``runner_up`` (ratio runner-up / best with its interval and whether it is
+    distinguishable), ``outside`` (the best cell outside the tied set, same
+    form) and ``critical`` (the quantile ``d``).
+    """
+    import numpy as np
+    from scipy import stats
+
+    from benchharness.analysis import transform as tr
+    from benchharness.analysis.effects import contrast_result, linear_estimates, margin_rows
+
+    if not setting_idx:
+        return None
+    combos, L = margin_rows(fit, tuple(setting_idx))
+    est, se, ok = linear_estimates(fit, L)
+    keep = np.flatnonzero(ok & np.isfinite(est))
+    if len(keep) == 0:
+        return None
+    sign = -1.0 if better == "higher" else 1.0      # smaller "badness" is better
+    bad = sign * est[keep]
+    order = keep[np.argsort(bad, kind="stable")]
+    k = len(order)
+    mean = tr.inverse(est[order], choice)
+    cells = []
+    for g, c in enumerate(order):
+        cells.append({"levels": {names[f]: levels[f][combos[c][j]]
+                                 for j, f in enumerate(setting_idx)},
+                      "mean": _num(mean[g]), "estimate": _num(est[c]), "se": _num(se[c])})
+    out = {"factors": [names[f] for f in setting_idx], "cells": cells, "tied": [0],
+           "runner_up": None, "outside": None, "critical": None, "better": better,
+           "tested": False, "response": response}
+    if k < 2:
+        return out
+    have_error = fit.df_resid > 0 and math.isfinite(fit.mse) and fit.mse > 0
+    d = float(stats.t.ppf(1 - alpha / (2 * (k - 1)), fit.df_resid)) if have_error else None
+    out["critical"] = d
+    Lk = L[order]
+    best = 0
+    if have_error and k <= MAX_CELLS_FOR_TIES:
+        V = (Lk @ fit.cov_unscaled @ Lk.T) * fit.mse
+        dv = np.diag(V)
+        se_diff = np.sqrt(np.maximum(dv[:, None] + dv[None, :] - 2 * V, 0.0))
+        b = sign * est[order]
+        # cell i leaves the tied set when some j is better by more than d·se
+        margin = (b[:, None] - b[None, :]) - d * se_diff
+        np.fill_diagonal(margin, -np.inf)
+        tied = [int(i) for i in range(k) if not np.any(margin[i] > 0)]
+        out["tied"] = tied
+        out["tested"] = True
+
+    def pair(i):
+        if not have_error:
+            r = contrast_result(fit, Lk[i], Lk[best], choice, float("nan"))
+            return {"cell": i, "ratio": r["ratio"], "lower": None, "upper": None,
+                    "distinguishable": None}
+        r = contrast_result(fit, Lk[i], Lk[best], choice, d)
+        lo, hi = r["lower"], r["upper"]
+        dist = None
+        if lo is not None and hi is not None:
+            dist = bool(lo > 1 or hi < 1)
+        if out["tested"]:
+            dist = i not in out["tied"]
+        return {"cell": i, "ratio": r["ratio"], "lower": lo, "upper": hi,
+                "distinguishable": dist}
+
+    out["runner_up"] = pair(1)
+    outside = [i for i in range(1, k) if i not in out["tied"]]
+    if out["tested"] and outside and outside[0] != 1:
+        out["outside"] = pair(outside[0])
+    return out
+
+
+def _num(x):
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+# ---------------------------------------------------------------------------------------------
+# the findings
+
+def term_label(row: dict) -> str:
+    """The name a term is shown by: its alias chain when the row has one (``a:b (+ c:d)``)."""
+    return str(row.get("chain") or row.get("term", ""))
+
+
+def term_members(row: dict, factors) -> list[tuple[str, ...]]:
+    """The factor tuples a term row names: its own, then those of its alias chain.
+
+    ``A:B (+ C:D)`` gives ``[("A", "B"), ("C", "D")]``. Without a chain label
+    the row's ``aliases`` are read; members that are not products of the
+    analysis' factors (signs, ``...``) are skipped.
+    """
+    label = term_label(row)
+    chain = []
+    if "(" in label and label.rstrip().endswith(")"):
+        inner = label[label.index("(") + 1: label.rindex(")")]
+        chain = [x.strip() for x in re.split(r"(?:^|\s)[+-]\s", " " + inner) if x.strip()]
+        label = label[: label.index("(")]
+    elif not row.get("chain"):
+        chain = [str(a).lstrip("-") for a in row.get("aliases") or []]
+    out = []
+    for member in [str(row.get("term") or label).strip()] + chain:
+        parts = tuple(p.strip() for p in member.split(":") if p.strip())
+        if parts and all(p in factors for p in parts) and parts not in out:
+            out.append(parts)
+    return out
+
+
+def derive(d: dict) -> list[dict]:
+    """The findings of an analysis (``d`` is the plain content of analysis.json).
+
+    Order: interactions (each followed by its simple effects), main effects,
+    the best cell or tied set, cautions.
+    """
+    alpha = float(d.get("alpha") or 0.05)
+    conf = f"{round((1 - alpha) * 100):g}%"
+    factors = [f["name"] if isinstance(f, dict) else str(f) for f in d.get("factors") or []]
+    refs = (d.get("model") or {}).get("references") or {}
+    log = (d.get("transform") or {}).get("name") == "log"
+    comps = d.get("comparisons") or []
+    rows = [r for r in d.get("anova") or []
+            if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
+    out: list[dict] = []
+
+    def sig_row(r):
+        return r.get("p") is not None and r["p"] < alpha
+
+    inside: dict[str, list[str]] = {f: [] for f in factors}   # in a sig. two-factor term
+    higher: dict[str, list[str]] = {f: [] for f in factors}   # in a sig. larger term
+    for r in rows:
+        members = term_members(r, factors)
+        if members and len(members[0]) >= 2 and sig_row(r):
+            for f in members[0]:
+                (inside if len(members[0]) == 2 else higher)[f].append(term_label(r))
+
+    # ---- interactions -----------------------------------------------------------------------
+    for r in rows:
+        members = term_members(r, factors)
+        if not members or len(members[0]) < 2 or not sig_row(r):
+            continue
+        pf = members[0]
+        aliased = members[1:]
+        alias_text = ""
+        if aliased:
+            alias_text = (" (aliased with " + _and(":".join(m) for m in aliased)
+                          + ": the design cannot tell them apart)")
+        if len(pf) == 2:
+            clauses, simple = [], []
+            for x, y in (pf, pf[::-1]):
+                rowsx = [c for c in comps if c.get("method") == "simple"
+                         and c.get("factor") == x and set((c.get("within") or {})) == {y}
+                         and c.get("b") == refs.get(x, c.get("b"))]
+                if not rowsx:
+                    continue
+                by_level: dict[str, list[dict]] = {}
+                for c in rowsx:
+                    by_level.setdefault(c["a"], []).append(c)
+                    simple.append(_simple_finding(c, x, y, term_label(r), alpha, conf))
+                parts = []
+                for lv, cs in by_level.items():
+                    each = "; ".join(
+                        f"{fmt_ratio(c['ratio'])} {fmt_interval(c['lower'], c['upper'])} "
+                        f"when {y}={c['within'][y]}" for c in cs)
+                    parts.append(f"{x}={lv} against {x}={cs[0]['b']}: {each}")
+                clauses.append(" | ".join(parts))
+            head = (f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {fmt_p(r['p'])})"
+                    f"{alias_text}")
+            statement = head + (": " + "; and ".join(clauses) if clauses else
+                                ": the effect of each depends on the level of the other")
+            out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
+                        "significant": True, "ratio": None, "lower": None, "upper": None,
+                        "p": r["p"], "statement": statement,
+                        "per_level": clauses})
+            out += simple
+        else:
+            statement = (f"{_and(pf)} interact together ({term_label(r)}, {fmt_p(r['p'])})"
+                         f"{alias_text}: the effect of each depends on the levels of the "
+                         "others, so read the cell means rather than any single ratio")
+            out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
+                        "significant": True, "ratio": None, "lower": None, "upper": None,
+                        "p": r["p"], "statement": statement, "per_level": []})
+
+    # ---- main effects -----------------------------------------------------------------------
+    effects = d.get("effects") or []
+    for r in rows:
+        members = term_members(r, factors)
+        if not members or len(members[0]) != 1:
+            continue
+        f = members[0][0]
+        if inside.get(f):
+            continue        # stated per level of its partner above
+        out.append(_main_finding(r, f, members[1:], comps, effects, refs, alpha, conf, log,
+                                 higher.get(f) or []))
+
+    # ---- best -------------------------------------------------------------------------------
+    best = d.get("best")
+    if best and best.get("cells"):
+        out.append(_best_finding(best, conf))
+
+    # ---- cautions ---------------------------------------------------------------------------
+    out += _cautions(d, alpha)
+    return out
+
+
+def _simple_finding(c, x, y, term, alpha, conf) -> dict:
+    lo, hi = c.get("lower"), c.get("upper")
+    agrees = lo is not None and hi is not None and (lo > 1 or hi < 1)
+    sig = bool(c.get("p_adj") is not None and c["p_adj"] < alpha and agrees)
+    words = "differs" if sig else "not distinguishable"
+    return {"kind": "simple effect", "terms": [term], "factors": [x, y], "significant": sig,
+            "factor": x, "level": c["a"], "reference": c["b"], "within": dict(c["within"]),
+            "ratio": c.get("ratio"), "lower": lo, "upper": hi, "p": c.get("p_adj"),
+            "statement": (f"{x}={c['a']} against {x}={c['b']} when {y}={c['within'][y]}: "
+                          f"{fmt_ratio(c.get('ratio'))} {fmt_interval(lo, hi)} "
+                          f"({fmt_p(c.get('p_adj'))}, {words})")}
+
+
+def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=()) -> dict:
+    alias_text = ""
+    if aliased:
+        alias_text = " (aliased with " + _and(":".join(m) for m in aliased) + ")"
+    also = ""
+    if higher:
+        also = f"; its effect also depends on the levels in {_and(higher)}"
+    base = {"kind": "main", "terms": [term_label(r)], "factors": [f], "p": r.get("p"),
+            "ratio": None, "lower": None, "upper": None}
+    label = term_label(r)
+    p = r.get("p")
+    if p is None:
+        return {**base, "significant": None, "untested": True,
+                "statement": f"{label} could not be tested (no error estimate){alias_text}"}
+    ref = refs.get(f)
+    tk = [c for c in comps if c.get("method") == "tukey" and c.get("factor") == f
+          and c.get("within") is None and (ref is None or c.get("b") == ref)]
+    stated = tk or [{"a": e["level"], "b": e["reference"], "ratio": e.get("ratio"),
+                     "lower": e.get("lower"), "upper": e.get("upper"), "p_adj": None}
+                    for e in effects if e.get("factor") == f]
+    stated = [c for c in stated if c.get("ratio") is not None]
+    big = max(stated, key=lambda c: abs(math.log(c["ratio"])) if c["ratio"] > 0 else 0.0,
+              default=None)
+    if big is not None:
+        base.update(ratio=big["ratio"], lower=big.get("lower"), upper=big.get("upper"),
+                    level=big["a"], reference=big["b"])
+
+    def excl(c):
+        lo, hi = c.get("lower"), c.get("upper")
+        return lo is not None and hi is not None and (lo > 1 or hi < 1)
+
+    listing = "; ".join(f"{f}={c['a']} {fmt_ratio(c['ratio'])} "
+                        f"{fmt_interval(c.get('lower'), c.get('upper'))}"
+                        for c in stated[:6]) + (" …" if len(stated) > 6 else "")
+    against = f" against {f}={stated[0]['b']}" if stated else ""
+    if p < alpha:
+        # pairs not involving the reference can carry the difference as well
+        all_tk = [c for c in comps if c.get("method") == "tukey" and c.get("factor") == f]
+        if any(excl(c) for c in (all_tk or stated)):
+            return {**base, "significant": True,
+                    "statement": f"{label} matters ({fmt_p(p)}){alias_text}: "
+                                 f"{listing}{against}{also}"}
+        return {**base, "significant": False,
+                "statement": f"{label}: the F test gives {fmt_p(p)}{alias_text}, but no two "
+                             f"of its levels are distinguishable at {conf} after adjustment "
+                             f"({listing}{against}){also}"}
+    if higher:
+        return {**base, "significant": None,
+                "statement": f"{label}: no detectable effect on average over the other "
+                             f"factors ({fmt_p(p)}){alias_text}, but it takes part in "
+                             f"{_and(higher)}, so its effect differs between their levels"}
+    return {**base, "significant": False,
+            "statement": f"{label} made no detectable difference ({fmt_p(p)}){alias_text}: "
+                         f"{listing}{against}" if stated else
+                         f"{label} made no detectable difference ({fmt_p(p)}){alias_text}"}
+
+
+def _best_finding(best: dict, conf: str) -> dict:
+    cells = best["cells"]
+    resp = best.get("response") or ""
+    higher = best.get("better") == "higher"
+    worse = "lower" if higher else ("slower" if resp.endswith("_s") else "higher")
+    top = cells[0]
+    tied = best.get("tied") or [0]
+    ru = best.get("runner_up")
+    base = {"kind": "best", "terms": [], "factors": list(best.get("factors") or []),
+            "significant": None, "cells": [cells[i]["levels"] for i in tied],
+            "best": top["levels"], "mean": top["mean"], "ratio": None, "lower": None,
+            "upper": None, "p": None}
+    over = best.get("averaged_over") or []
+    avg = (f", averaged over {_and(over)}" + (" (roles guessed from the names; declare them "
+                                             "in roles:)" if best.get("roles_source") ==
+                                             "guessed" else "")) if over else ""
+    where = f"{cell_text(top['levels'])} ({fmt_value(top['mean'], resp)}{avg})"
+    what = "time" if resp.endswith("_s") else "value"
+    if len(cells) == 1:
+        return {**base, "statement": f"Only one cell could be estimated: {where}"}
+
+    def ru_text(x, who):
+        c = cells[x["cell"]]
+        return (f"{who} {cell_text(c['levels'])} at {fmt_ratio(x['ratio'])} "
+                f"{fmt_interval(x['lower'], x['upper'])} the best's {what}")
+
+    if ru is not None:
+        base.update(ratio=ru["ratio"], lower=ru["lower"], upper=ru["upper"],
+                    runner_up=cells[ru["cell"]]["levels"])
+    if not best.get("tested"):
+        text = f"Best measured: {where}; no test of ties was possible (no error estimate)"
+        if ru is not None:
+            text += f"; runner-up {cell_text(cells[ru['cell']]['levels'])} at {fmt_ratio(ru['ratio'])}"
+        return {**base, "statement": text}
+    if len(tied) == 1:
+        base["significant"] = True
+        return {**base, "statement": f"Best: {where}, ahead of every other cell at {conf}; "
+                                     + ru_text(ru, "the runner-up") + f" ({worse})"}
+    if len(tied) == len(cells):
+        base["significant"] = False
+        return {**base, "statement": f"No cell is distinguishable from the best: all "
+                                     f"{len(cells)} are tied at {conf}; best measured {where}; "
+                                     + ru_text(ru, "runner-up")}
+    named = "; ".join(cell_text(cells[i]["levels"]) for i in tied[:TIED_NAMED])
+    more = f" and {len(tied) - TIED_NAMED} more" if len(tied) > TIED_NAMED else ""
+    text = (f"Tied for best at {conf} ({len(tied)} of {len(cells)} cells): {named}{more}; "
+            f"best measured {where}; " + ru_text(ru, "runner-up"))
+    if best.get("outside"):
+        text += "; the best cell outside the tied set, " + ru_text(best["outside"], "")[1:]
+        base["outside"] = {"levels": cells[best["outside"]["cell"]]["levels"],
+                           "ratio": best["outside"]["ratio"],
+                           "lower": best["outside"]["lower"],
+                           "upper": best["outside"]["upper"]}
+    return {**base, "significant": True, "statement": text}
+
+
+def _cautions(d: dict, alpha: float) -> list[dict]:
+    out = []
+
+    def caution(key, text, **extra):
+        out.append({"kind": "caution", "terms": [], "factors": [], "significant": None,
+                    "ratio": None, "lower": None, "upper": None, "p": extra.pop("p", None),
+                    "check": key, "statement": text, **extra})
+
+    dg = d.get("diagnostics") or {}
+    res_df = (d.get("counts") or {}).get("df_resid")
+    if res_df is not None and res_df <= 0:
+        caution("residual_df", "No residual degrees of freedom: nothing could be tested; "
+                "add replicates or fit fewer interactions")
+    names = {"normality": "Residuals are not normal", "equal_variance":
+             "Cells differ in spread", "drift": "Responses drift over the run order",
+             "load": "Responses follow the machine's load"}
+    for key, words in names.items():
+        item = dg.get(key)
+        if isinstance(item, dict) and item.get("ok") is False:
+            caution(key, f"{words}: {item.get('verdict')}", p=item.get("p"))
+    if dg.get("outlier_count"):
+        caution("outliers", f"Outlying runs: {dg.get('outlier_verdict')}")
+    art = d.get("art") or {}
+    dis = [t["term"] for t in art.get("terms") or [] if t.get("agrees") is False]
+    if dis:
+        caution("rank_check", "The rank-based cross-check disagrees for " + _and(dis)
+                + ": treat those tests as uncertain", terms=dis)
+    hosts = dg.get("hosts")
+    if isinstance(hosts, dict) and hosts.get("differ"):
+        caution("hosts", f"Hosts differ: {hosts.get('verdict')}")
+    fail = d.get("failures") or {}
+    if fail.get("cells_with_timeouts"):
+        caution("timeouts", f"{fail.get('verdict')}")
+    c = d.get("counts") or {}
+    if c.get("cells") is not None and c.get("cells_expected") and c["cells"] < c["cells_expected"]:
+        caution("missing_cells", f"{c['cells_expected'] - c['cells']} of "
+                f"{c['cells_expected']} cells have no analysed runs")
+    return out

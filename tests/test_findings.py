@@ -1,0 +1,156 @@
+"""Findings and comparisons: what the analysis *says*, checked against planted truths.
+
+Data are simulated with fixed seeds (planted answers, invented for the test);
+adjusted p-values are checked against statsmodels' ``multipletests`` and the
+tied-set rule for two cells against scipy's two-sample t test.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from benchharness.analysis import analyze
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def crossover_frame(seed=3, reps=4, sigma=0.1):
+    """A slows things ×2.5 when B=off and speeds them ×0.43 when B=on; C, D do nothing."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for a in ("lo", "hi"):
+        for b in ("off", "on"):
+            for c in ("x", "y"):
+                for _ in range(reps):
+                    m = 1.0
+                    if a == "hi":
+                        m *= 2.5 if b == "off" else 0.43
+                    rows.append({"A": a, "B": b, "C": c,
+                                 "wall_s": 0.1 * m * math.exp(rng.normal(0, sigma))})
+    return pd.DataFrame(rows)
+
+
+def run_cli(*args):
+    """The command a user would type; a wide terminal so the headline is one line."""
+    import os
+
+    env = dict(os.environ, COLUMNS="1000")
+    return subprocess.run([sys.executable, "-m", "benchharness", *map(str, args)], cwd=ROOT,
+                          capture_output=True, text=True, timeout=300, env=env)
+
+
+def test_crossover_headline_states_the_interaction_per_level(tmp_path):
+    csv = tmp_path / "cross.csv"
+    crossover_frame().to_csv(csv, index=False)
+    out = tmp_path / "a.json"
+    r = run_cli("analyze", csv, "--factors", "A,B,C", "--transform", "log", "--json", out)
+    assert r.returncode == 0, r.stderr
+    head = r.stdout.splitlines()[0]
+    assert "A and B interact" in head
+    assert "A made no detectable difference" not in r.stdout
+    assert "when B=off" in head and "when B=on" in head
+    d = json.loads(out.read_text())
+    kinds = [f["kind"] for f in d["findings"]]
+    assert kinds.count("interaction") == 1
+    inter = next(f for f in d["findings"] if f["kind"] == "interaction")
+    assert inter["terms"] == ["A:B"] and inter["significant"] is True
+    simple = {(f["factor"], f["within"].get("B")): f for f in d["findings"]
+              if f["kind"] == "simple effect" and f["factor"] == "A"}
+    # the planted ratios lie inside the stated intervals, on the right side of 1
+    off, on = simple[("A", "off")], simple[("A", "on")]
+    assert off["lower"] < 2.5 < off["upper"] and off["lower"] > 1 and off["significant"]
+    assert on["lower"] < 0.43 < on["upper"] and on["upper"] < 1 and on["significant"]
+    # no main-effect finding for A or B (they are stated per level); C made no difference
+    mains = {f["factors"][0]: f for f in d["findings"] if f["kind"] == "main"}
+    assert set(mains) == {"C"} and mains["C"]["significant"] is False
+    assert "C made no detectable difference" in head
+    best = next(f for f in d["findings"] if f["kind"] == "best")
+    assert all(c["A"] == "hi" and c["B"] == "on" for c in best["cells"])
+
+
+def test_comparisons_default_family_is_simple_effects_and_tukey():
+    d = crossover_frame(seed=5)
+    d["D"] = np.tile(["p", "q", "r"], len(d) // 3 + 1)[: len(d)]
+    d["wall_s"] *= np.where(d["C"] == "y", 1.6, 1.0)
+    an = analyze(d, factors=["A", "B", "C"], transform="log")
+    methods = {(c["method"], c["factor"]) for c in an.comparisons}
+    # A and B inside A:B: simple effects only; C significant and outside: Tukey only
+    assert methods == {("simple", "A"), ("simple", "B"), ("tukey", "C")}
+    tk = next(c for c in an.comparisons if c["method"] == "tukey")
+    # oriented like the effects: level over reference (x), > 1 = slower
+    assert (tk["a"], tk["b"]) == ("y", "x") and 1.45 < tk["ratio"] < 1.75
+    eff = next(e for e in an.effects if e["factor"] == "C")
+    assert tk["ratio"] == pytest.approx(eff["ratio"], rel=1e-12)
+    every = analyze(d, factors=["A", "B", "C"], transform="log", comparisons="all")
+    assert {c["method"] for c in every.comparisons} == {"simple", "tukey", "pairwise"}
+
+
+@pytest.mark.parametrize("adjust", ["bonferroni", "holm"])
+def test_interval_and_adjusted_p_agree(adjust):
+    # source: statsmodels multipletests for the adjusted p-values; the agreement of each
+    # interval with its adjusted p is the property under test
+    from statsmodels.stats.multitest import multipletests
+
+    rng = np.random.default_rng(11)
+    levels = [f"L{i}" for i in range(6)]
+    true = dict(zip(levels, [1.0, 1.0, 1.08, 1.12, 1.2, 1.5]))
+    rows = [{"f": lv, "g": g, "wall_s": true[lv] * math.exp(rng.normal(0, 0.08))}
+            for lv in levels for g in ("u", "v") for _ in range(4)]
+    an = analyze(pd.DataFrame(rows), factors=["f", "g"], transform="log", adjust=adjust,
+                 comparisons=["pairwise"])
+    pw = [c for c in an.comparisons if c["method"] == "pairwise" and c["factor"] == "f"]
+    assert len(pw) == 15
+    ref = multipletests([c["p"] for c in pw], method=adjust)[1]
+    np.testing.assert_allclose([c["p_adj"] for c in pw], ref, rtol=1e-9)
+    decided = 0
+    for c in pw:
+        excludes = c["lower"] > 1 or c["upper"] < 1
+        assert excludes == (c["p_adj"] < 0.05), c
+        decided += excludes
+        # orientation: a pair with the reference L0 has it as b
+        if "L0" in (c["a"], c["b"]):
+            assert c["b"] == "L0"
+    assert 0 < decided < 15   # the check is not vacuous
+
+
+def test_tied_set_of_two_cells_is_the_t_test():
+    # source: scipy.stats.ttest_ind (pooled variance) on the log times decides the tie
+    from scipy import stats
+
+    for seed, shift in ((1, 0.02), (2, 0.3)):
+        rng = np.random.default_rng(seed)
+        d = pd.DataFrame({"v": np.repeat(["a", "b"], 6)})
+        d["wall_s"] = np.exp(rng.normal(0, 0.1, 12) + shift * (d["v"] == "b"))
+        an = analyze(d, factors=["v"], transform="log")
+        p = stats.ttest_ind(np.log(d.wall_s[d.v == "a"]), np.log(d.wall_s[d.v == "b"])).pvalue
+        best = next(f for f in an.findings if f["kind"] == "best")
+        assert (len(best["cells"]) == 1) == (p < 0.05)
+        main = next(f for f in an.findings if f["kind"] == "main")
+        assert main["significant"] == (p < 0.05)
+        assert (best["lower"] > 1) == (p < 0.05)
+
+
+def test_higher_is_better_picks_the_largest(tmp_path):
+    rng = np.random.default_rng(8)
+    d = pd.DataFrame({"threads": np.repeat(["1", "2", "4"], 5)})
+    d["rate"] = np.exp(rng.normal(0, 0.05, 15)) * d["threads"].map({"1": 100, "2": 180,
+                                                                   "4": 330})
+    csv = tmp_path / "rate.csv"
+    d.to_csv(csv, index=False)
+    r = run_cli("analyze", csv, "--factors", "threads", "--response", "rate",
+                "--better", "higher", "--json", tmp_path / "a.json")
+    assert r.returncode == 0, r.stderr
+    found = json.loads((tmp_path / "a.json").read_text())["findings"]
+    best = next(f for f in found if f["kind"] == "best")
+    assert best["cells"] == [{"threads": "4"}] and best["ratio"] < 1
+    assert "Recommended: threads=4" in r.stdout
+    low = analyze(d, factors=["threads"], response="rate")
+    assert next(f for f in low.findings if f["kind"] == "best")["cells"] == [{"threads": "1"}]
