@@ -274,7 +274,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         model = fr.chain_order(fdesign) if fdesign is not None else "full"
         spec = "full"
         fc = index_cells(codes[: len(fnames)], sizes[: len(fnames)])
-        if len(fnames) >= 2 and fc.count == len(prep.y) and block_index is None:
+        if (fdesign is None and len(fnames) >= 2 and fc.count == len(prep.y)
+                and block_index is None):   # two-level designs: Lenth's method instead
             model = spec = len(fnames) - 1
             notes.append("one run per cell: the " + ":".join(fnames) + " interaction is "
                          "left out of the model and serves as the error term (add "

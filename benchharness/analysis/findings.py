@@ -249,8 +249,8 @@ def derive(d: dict) -> list[dict]:
         aliased = members[1:]
         alias_text = ""
         if aliased:
-            alias_text = (" (aliased with " + _and(":".join(m) for m in aliased)
-                          + ": the design cannot tell them apart)")
+            alias_text = (f"; this fraction cannot tell {':'.join(pf)} from "
+                          + _and(":".join(m) for m in aliased) + ": the estimate is their sum")
         if len(pf) == 2:
             clauses, simple = [], []
             for x, y in (pf, pf[::-1]):
@@ -270,14 +270,14 @@ def derive(d: dict) -> list[dict]:
                         f"when {y}={c['within'][y]}" for c in cs)
                     parts.append(f"{x}={lv} against {x}={cs[0]['b']}: {each}")
                 clauses.append(" | ".join(parts))
-            head = (f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {fmt_p(r['p'])})"
-                    f"{alias_text}")
+            head = f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {fmt_p(r['p'])})"
             statement = head + (": " + "; and ".join(clauses) if clauses else
                                 ": the effect of each depends on the level of the other")
+            statement += alias_text
             out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
                         "significant": True, "ratio": None, "lower": None, "upper": None,
                         "p": r["p"], "statement": statement,
-                        "per_level": clauses})
+                        "per_level": clauses, "aliased": [":".join(m) for m in aliased]})
             out += simple
         else:
             statement = (f"{_and(pf)} interact together ({term_label(r)}, {fmt_p(r['p'])})"
@@ -285,7 +285,8 @@ def derive(d: dict) -> list[dict]:
                          "others, so read the cell means rather than any single ratio")
             out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
                         "significant": True, "ratio": None, "lower": None, "upper": None,
-                        "p": r["p"], "statement": statement, "per_level": []})
+                        "p": r["p"], "statement": statement, "per_level": [],
+                        "aliased": [":".join(m) for m in aliased]})
 
     # ---- main effects -----------------------------------------------------------------------
     effects = d.get("effects") or []

@@ -144,7 +144,11 @@ def headline(found: list[dict]) -> str | None:
         if f["kind"] == "interaction":
             per = f.get("per_level") or []
             names = " and ".join(f["factors"]) if len(f["factors"]) == 2 else _and(f["factors"])
-            parts.append(f"{names} interact" + (f" ({per[0]})" if per else ""))
+            alias = ""
+            if f.get("aliased"):
+                alias = (f" (or {_and(f['aliased'])}: the fraction cannot tell "
+                         f"{f['terms'][0].split(' (')[0]} from {_and(f['aliased'])})")
+            parts.append(f"{names} interact{alias}" + (f" ({per[0]})" if per else ""))
         elif f["kind"] == "main":
             if f["significant"]:
                 lead = f"{f['terms'][0]} matters"
@@ -216,16 +220,6 @@ def verdict(data: ReportData) -> dict[str, Any]:
     out["sure"] = sureness(data)
     out["transform"] = transform_sentence(data)
     return out
-
-
-def _alias_caveat(row: dict) -> str:
-    """For a term of a fraction: which low-order aliases the design cannot tell it from."""
-    chain = row.get("chain") or ""
-    if "(" not in chain:
-        return ""
-    inner = chain[chain.index("(") + 1: chain.rindex(")")]
-    return (f" This fraction cannot tell {row['term']} from {inner.lstrip('+ ')}: the estimate "
-            "is their sum.")
 
 
 def _lost_runs(data: ReportData, levels: dict) -> int:
