@@ -238,3 +238,38 @@ def test_lenth_p_matches_its_margin(tmp_path):
     for e in res["effects"]:
         assert e["p"] == pytest.approx(2 * stats.t.sf(abs(e["estimate"]) / ln["pse"], 7 / 3))
     assert math.isclose(ln["df"], 7 / 3)
+
+
+def test_reports_show_the_chains_the_fraction_table_and_the_half_normal_plot(res4_folder, cli):
+    r = cli("report", res4_folder.folder)
+    assert r.returncode == 0, r.stderr
+    md = (res4_folder.folder / "report.md").read_text()
+    anova = md.split("## Analysis of variance")[1].split("## Alias chains of the fraction")[0]
+    assert "| **threads:batch (+ cache:pin)** |" in anova
+    assert "| threads:cache (+ batch:pin) |" in anova
+    frac = md.split("## Alias chains of the fraction")[1].split("## Comparisons")[0]
+    assert "defining relation I = ABCD" in frac
+    assert "Active: threads:batch (+ cache:pin); threads; cache." in frac
+    rows = [line for line in frac.splitlines() if line.startswith("| ")]
+    active_rows = [line for line in rows if line.rstrip().endswith("| active |")]
+    assert [line.split("|")[1].strip() for line in active_rows] == [
+        "**threads:batch (+ cache:pin)**", "**threads**", "**cache**"]
+    assert "figures/half-normal.png" in frac
+    assert (res4_folder.folder / "figures" / "half-normal.png").stat().st_size > 1000
+    html = (res4_folder.folder / "report.html").read_text()
+    section = html.split('<section id="fraction">')[1].split("</section>")[0]
+    assert "threads:batch (+ cache:pin)" in section and 'id="fig-half-normal"' in section
+    assert 'href="#fraction"' in html
+    assert "<td>threads:batch (+ cache:pin)</td>" in html.split('<section id="anova">')[1]
+
+
+def test_report_of_an_unreplicated_fraction_explains_lenth(tmp_path, cli):
+    model = SimulatedModel(effects={"a": {"hi": 2.0}, "e": {"hi": 0.6}}, cv=0.03)
+    out = run_folder(tmp_path, RES3_5, model, seed=2)
+    r = cli("report", out.folder)
+    assert r.returncode == 0, r.stderr
+    md = (out.folder / "report.md").read_text()
+    frac = md.split("## Alias chains of the fraction")[1].split("## Comparisons")[0]
+    assert "No replicates, so the noise is judged from the effects themselves (Lenth 1989)" in frac
+    assert "Active: a (+ b:d + c:e); e (+ a:c)." in frac
+    assert "| a (+ b:d + c:e) |" in md.split("## Analysis of variance")[1].replace("**", "")

@@ -25,15 +25,17 @@ def analyse_and_report(res) -> None:
         from benchharness.report.terminal import print_analysis
 
         print_analysis(an)
-        # Two-level fractions and confounded blocks: effects with their aliases.
+        # Two-level fractions (in the analysis itself) and confounded blocks of a full
+        # two-level design (added to analysis.json here): effects with their aliases.
         from benchharness.analysis.fraction import add_to_results_folder, format_fraction
 
-        try:
-            frac = add_to_results_folder(res.path, an.response,
-                                         log=(an.transform or {}).get("name") != "none")
-        except BenchharnessError as exc:
-            frac = None
-            print(f"note: no fraction analysis: {exc}", file=sys.stderr)
+        frac = an.fraction
+        if frac is None:
+            try:
+                frac = add_to_results_folder(res.path, an.response,
+                                             log=(an.transform or {}).get("name") != "none")
+            except BenchharnessError as exc:
+                print(f"note: no fraction analysis: {exc}", file=sys.stderr)
         if frac is not None:
             print()
             print(format_fraction(frac))

@@ -2,8 +2,8 @@
 
 One function turns a `ReportData` and its rendered figures into plain dicts and
 lists the templates lay out; both reports therefore tell the same story in the
-same order (question and verdict, design, effects, ANOVA, comparisons,
-diagnostics, data-quality warnings, appendix).
+same order (question and verdict, design, effects, ANOVA, the alias chains of a
+two-level fraction, comparisons, diagnostics, data-quality warnings, appendix).
 """
 
 from __future__ import annotations
@@ -127,6 +127,13 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
             "flag": c["timeout"] > 0 or c["failed"] > 0,
         })
     n_cells_total = len(story.cell_summary(data)) if len(cells) == MAX_CELLS else len(cells)
+    from benchharness.report import fraction as _fraction
+
+    frac = _fraction.section(data)
+    sections = list(SECTIONS)
+    if frac is not None:
+        at = [i for i, (sid, _t) in enumerate(sections) if sid == "anova"][0] + 1
+        sections.insert(at, ("fraction", "Alias chains of the fraction"))
     tr = data.analysis.get("transform") or {}
     mean_word = "geometric mean" if tr.get("name") == "log" else "estimated mean"
     return {
@@ -171,7 +178,9 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "figures_effects": figs.by_section("effects"),
         "figures_diagnostics": figs.by_section("diagnostics"),
         "figures": figs.figures,
-        "sections": SECTIONS,
+        "sections": sections,
+        "fraction": frac,
+        "figures_fraction": figs.by_section("fraction"),
         "extra": [_extra_section(x) for x in data.extra],
         "generated": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "version": _version(),

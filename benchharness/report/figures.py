@@ -6,7 +6,8 @@ level of the other factor; highlighted when the interaction is significant); the
 main-effect ratio plot with intervals; a normal Q-Q plot of the residuals
 (plotting positions of Blom 1958); residuals against fitted values; residuals
 against run position (drift); the Box-Cox profile log-likelihood (Box & Cox 1964)
-with the chosen λ marked.
+with the chosen λ marked; for a two-level fraction, the half-normal plot of its
+alias chains (Daniel 1959) with Lenth's (1989) margins.
 
 Cost does not grow with the number of runs beyond what the point layers need:
 point layers are subsampled past `MAX_POINTS_PER_CELL` runs per cell (and
@@ -511,6 +512,64 @@ def effects_plot(data: ReportData) -> Figure | None:
     return _render(fig, "effects", "Main effects as ratios", cap, "effects")
 
 
+def half_normal_plot(data: ReportData) -> Figure | None:
+    """Half-normal plot of a two-level fraction's chain effects (Daniel 1959), with the
+    margins that judge them: Lenth's (1989) ME and SME without replicates, else the
+    smallest effect significant at alpha."""
+    fr = data.analysis.get("fraction") or {}
+    pts = [p for p in fr.get("half_normal") or [] if finite(p.get("abs_effect"))]
+    if len(pts) < 2:
+        return None
+    by_label = {e.get("label"): e for e in fr.get("effects") or []}
+    fig = _new(6.4, 4.4)
+    ax = fig.subplots()
+    xs = [float(p["abs_effect"]) for p in pts]
+    ys = [float(p["quantile"]) for p in pts]
+    hot = [bool((by_label.get(p["label"]) or {}).get("active")
+                or (by_label.get(p["label"]) or {}).get("likely")) for p in pts]
+    ax.scatter([x for x, h in zip(xs, hot) if not h], [y for y, h in zip(ys, hot) if not h],
+               s=22, color=MUTED, zorder=3)
+    ax.scatter([x for x, h in zip(xs, hot) if h], [y for y, h in zip(ys, hot) if h],
+               s=30, color=ACCENT, zorder=3)
+    right_edge = max(xs)
+    for p, x, y, h in list(zip(pts, xs, ys, hot))[-min(5, len(pts)):]:
+        e = by_label.get(p["label"]) or {}
+        left = x > 0.5 * right_edge  # label on the side with room
+        ax.annotate(str(e.get("chain") or p["label"]), (x, y), fontsize=8,
+                    xytext=(-6 if left else 6, 0), textcoords="offset points", va="center",
+                    ha="right" if left else "left", color=ACCENT if h else INK)
+    ln = fr.get("lenth")
+    lines = []
+    if ln:
+        lines = [(ln.get("me"), "--", "margin of error (Lenth)"),
+                 (ln.get("sme"), ":", "simultaneous margin (Lenth)")]
+    else:
+        ses = [e.get("se") for e in fr.get("effects") or [] if finite(e.get("se"))]
+        df = fr.get("residual_df")
+        if ses and df:
+            from scipy import stats
+
+            cut = float(stats.t.ppf(1 - float(fr.get("alpha") or data.alpha) / 2, df)) * max(ses)
+            lines = [(cut, "--", f"smallest effect with p < {fr.get('alpha') or data.alpha:g}")]
+    for x, style, label in lines:
+        if finite(x):
+            ax.axvline(float(x), color=ACCENT, ls=style, lw=1, label=label)
+    if lines:
+        ax.legend(fontsize=8, loc="lower right")
+    ax.set_xlim(0, max(xs + [float(x) for x, _s, _l in lines if finite(x)]) * 1.08)
+    ax.set_ylim(0, max(ys) * 1.08)
+    scale = fr.get("scale")
+    what = "ln " + describe(data.response) if scale == "log" else describe(data.response)
+    ax.set_xlabel(f"|effect| on {what} (mean at the second level minus the first)")
+    ax.set_ylabel("half-normal quantile")
+    ax.set_title("Half-normal plot of the alias chains")
+    cap = ("Each point is one alias chain's effect, smallest to largest. Chains that do nothing "
+           "fall on a straight line through the origin; chains that stand out to the right "
+           "of it, past the dashed margin, are the active ones (highlighted).")
+    return _render(fig, "half-normal", "Half-normal plot of the alias chains", cap, "fraction",
+                   highlight=any(hot))
+
+
 def _scatter_subsample(n: int, rng, cap: int = MAX_SCATTER):
     import numpy as np
 
@@ -734,6 +793,9 @@ def make_figures(data: ReportData, seed: int = 0,
             add(eff)
         for a, b in interaction_pairs(data):
             add(interaction(data, a, b))
+        hn = half_normal_plot(data)
+        if hn is not None:
+            add(hn)
         qq = qq_plot(data)
         if qq is not None:
             add(qq)

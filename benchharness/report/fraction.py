@@ -1,0 +1,106 @@
+"""The report's section on a two-level fraction: its alias chains, their effects, the margins.
+
+Rendered from ``analysis["fraction"]`` (`benchharness.analysis.fraction`), never
+re-fitted: the design and its defining relation (Box & Hunter 1961), the
+effect of every alias chain with its interval and verdict, and how the verdict
+was reached (t tests on the replicates, or Lenth's 1989 pseudo standard error
+when there are none). The half-normal plot (Daniel 1959) is drawn by
+`benchharness.report.figures.half_normal_plot`. Returns plain strings and
+lists; the HTML and Markdown templates lay them out.
+"""
+
+from __future__ import annotations
+
+from benchharness.report.data import ReportData, finite
+from benchharness.report.units import fmt_num, fmt_p, fmt_ratio
+
+COLUMNS = ("alias chain", "letters", "effect", "ratio", "interval", "p", "verdict")
+
+
+def _roman(r) -> str:
+    from benchharness.design.fractional import roman
+
+    try:
+        return roman(int(r))
+    except (TypeError, ValueError):
+        return "–"
+
+
+def section(data: ReportData) -> dict | None:
+    """``{summary: [...], columns, rows: [[...]], active: [...]}`` or None without a fraction."""
+    fr = data.analysis.get("fraction")
+    if not isinstance(fr, dict) or not fr.get("effects"):
+        return None
+    alpha = fr.get("alpha") or data.alpha
+    log = fr.get("scale") == "log"
+    summary = []
+    letters = ", ".join(f"{k} = {v}" for k, v in (fr.get("letters") or {}).items())
+    if fr.get("defining_relation"):
+        summary.append(
+            f"A {fr.get('design')} fractional design of resolution {_roman(fr.get('resolution'))} "
+            f"({fr.get('runs_used')} runs analysed): defining relation I = "
+            + " = ".join(fr["defining_relation"])
+            + (f", from the generators {', '.join(fr['generators'])}" if fr.get("generators")
+               else "")
+            + ". Effects whose product is a word of that relation cannot be told apart: each "
+              "row below estimates a whole alias chain, named by its lowest-order member.")
+    else:
+        summary.append(f"A full {fr.get('design')} two-level design run once per cell "
+                       f"({fr.get('runs_used')} runs): nothing is aliased, but there are no "
+                       "replicates to measure the noise with.")
+    if letters:
+        summary.append(f"Letters: {letters}.")
+    ln = fr.get("lenth")
+    if ln:
+        summary.append(
+            f"No replicates, so the noise is judged from the effects themselves (Lenth 1989): "
+            f"the pseudo standard error {fmt_num(ln.get('pse'), 3)} is computed from the "
+            f"smaller effects; a chain beyond the margin of error {fmt_num(ln.get('me'), 3)} is "
+            f"likely active (p < {1 - float(ln.get('level') or 0.95):g} on its own), beyond "
+            f"the simultaneous margin {fmt_num(ln.get('sme'), 3)} active even allowing for the "
+            f"{len(fr['effects'])} chains looked at.")
+    elif fr.get("residual_df"):
+        summary.append(
+            f"Each chain is tested against the replicates' residual ({fr['residual_df']} "
+            f"degrees of freedom); active means a Holm-adjusted p below {alpha:g} over all "
+            f"{len(fr['effects'])} chains.")
+    summary.append(
+        "An effect is the mean at a factor's second level minus the mean at its first, on the "
+        + ("log scale, so its ratio is second level over first (a chain of two factors: "
+           "runs where both are at the same level over runs where they differ)."
+           if log else "analysis scale."))
+    if fr.get("confounded_with_blocks"):
+        summary.append("Confounded with blocks (not estimated): "
+                       + ", ".join(fr["confounded_with_blocks"]) + ".")
+    rows, active, likely = [], [], []
+    effects = sorted(fr["effects"], key=lambda e: -abs(float(e.get("estimate") or 0.0)))
+    for e in effects:
+        verdict = ""
+        if e.get("active"):
+            verdict = "active"
+        elif e.get("likely"):
+            verdict = "likely (beyond the margin of error)"
+        if verdict:
+            (active if e.get("active") else likely).append(e.get("chain") or e.get("label"))
+        if log and finite(e.get("ratio_low")) and finite(e.get("ratio_high")):
+            interval = f"{fmt_ratio(e['ratio_low'])} to {fmt_ratio(e['ratio_high'])}"
+        elif finite(e.get("ci_low")) and finite(e.get("ci_high")):
+            interval = f"{fmt_num(e['ci_low'], 3)} to {fmt_num(e['ci_high'], 3)}"
+        else:
+            interval = "–"
+        p = fmt_p(e.get("p")) if finite(e.get("p")) else "–"
+        if finite(e.get("p_holm")):
+            p += f" (Holm {fmt_p(e['p_holm'])})"
+        rows.append({"cells": [e.get("chain") or e.get("term"), e.get("label") or "",
+                               fmt_num(e.get("estimate"), 3),
+                               fmt_ratio(e.get("ratio")) if log else "–", interval, p, verdict],
+                     "significant": bool(verdict)})
+    found = []
+    if active:
+        found.append("Active: " + "; ".join(active) + ".")
+    if likely:
+        found.append("Likely active (beyond the margin of error, not the simultaneous "
+                     "margin): " + "; ".join(likely) + ".")
+    summary.insert(1, " ".join(found) if found else "No chain stands out from the noise.")
+    return {"summary": summary, "columns": list(COLUMNS), "rows": rows, "active": active,
+            "likely": likely}
