@@ -97,6 +97,10 @@ def new_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
     """Create the results folder (never reusing a non-empty one) and fsync it."""
     if out is not None:
         folder = Path(out)
+        if folder.is_symlink() and not folder.exists():
+            raise ResultsFolderError(f"{folder}: a symbolic link to {os.readlink(folder)}, which "
+                                     "does not exist; give --out a new folder path (or remove "
+                                     "the link)")
         if folder.exists():
             if not folder.is_dir():
                 raise ResultsFolderError(f"{folder}: exists and is not a folder; choose another "
@@ -106,9 +110,20 @@ def new_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
                     f"{folder}: folder is not empty; results are never written into an existing "
                     f"folder (choose a new --out, or continue it with "
                     f"`benchharness run --resume {folder}`)")
-        folder.mkdir(parents=True, exist_ok=True)
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            _probe_writable(folder)
+        except OSError as exc:
+            raise ResultsFolderError(f"{folder}: cannot create the results folder here "
+                                     f"({exc.strerror or exc}); give --out a path in a "
+                                     "writable folder") from None
     else:
-        base.mkdir(parents=True, exist_ok=True)
+        try:
+            base.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise ResultsFolderError(f"{base}: cannot create the results folder here "
+                                     f"({exc.strerror or exc}); run from a writable folder "
+                                     "or give --out") from None
         stamp = utc_stamp()
         folder = base / f"{name}-{stamp}"
         n = 1
@@ -555,51 +570,161 @@ def _stop_launcher(pid, start) -> None:
     procs.kill_checked(pid, start, start, wait_s=5)
 
 
-def read_journal(path: Path, repair: bool = False) -> list[dict]:
-    """All complete records of a journal. A torn last line is ignored, or with
-    ``repair`` moved to ``runs.jsonl.torn`` and cut off so appending can resume."""
+#: Keys every journal record has (`record_head` writes them first).
+RECORD_KEYS = ("run", "levels", "status")
+
+
+def _record_problem(rec) -> str | None:
+    """Why a parsed journal line is not a run record, or None if it is one."""
+    if type(rec) is not dict:
+        text = json.dumps(rec)
+        return f"the line holds {text[:40]!r}, not a run record"
+    missing = [k for k in RECORD_KEYS if k not in rec]
+    if missing:
+        return "the record has no " + " and no ".join(repr(k) for k in missing)
+    if type(rec["run"]) is not int:
+        return f"the record's run id is {json.dumps(rec['run'])[:40]}, not a whole number"
+    if type(rec["levels"]) is not dict:
+        return "the record's 'levels' is not a mapping of factor to level"
+    if type(rec["status"]) is not str:
+        return "the record's 'status' is not a word"
+    return None
+
+
+def _parse_line(line: bytes):
+    """``(record, None)`` or ``(None, what is wrong)`` for one complete journal line."""
+    try:
+        text = line.decode("utf-8")
+    except UnicodeDecodeError:
+        return None, "the line is not UTF-8 text"
+    try:
+        return json.loads(text), None
+    except ValueError:
+        pass
+    try:
+        first, end = json.JSONDecoder().raw_decode(text.lstrip())
+    except ValueError as exc:
+        return None, f"the line is not JSON ({str(exc).split(':')[0]})"
+    rest = text.lstrip()[end:].strip()
+    if type(first) is dict and rest.startswith("{"):
+        col = len(text) - len(text.lstrip()) + end + 1
+        return None, (f"two records run together on one line (a newline lost); put a newline "
+                      f"at column {col} so that each record has its own line")
+    return None, "the line holds something after its record"
+
+
+def _fast_records(data: bytes) -> list | None:
+    """All records of a journal of complete, valid, distinct lines (the usual case),
+    parsed in one call; None when anything needs the line-by-line reading."""
+    if not data.endswith(b"\n") or b"\n\n" in data or data.startswith(b"\n"):
+        return None
+    # A JSON string never holds a raw newline, so every newline ends a line.
+    try:
+        whole = json.loads(b"[" + data[:-1].replace(b"\n", b",") + b"]")
+    except ValueError:
+        return None
+    runs = set()
+    for r in whole:
+        if (type(r) is not dict or type(r.get("run")) is not int
+                or type(r.get("levels")) is not dict or type(r.get("status")) is not str):
+            return None
+        runs.add(r["run"])
+    return whole if len(runs) == len(whole) else None
+
+
+def read_journal(path: Path, repair: bool = False, notes: list | None = None) -> list[dict]:
+    """All complete records of a journal, each run once.
+
+    A torn last line (a write that did not finish) is ignored, or with
+    ``repair`` moved to ``runs.jsonl.torn`` and cut off so appending can resume.
+    A line that is not a run record (``1``, ``[]``, a record without ``run``,
+    ``levels`` or ``status``, two records on one line) is an error naming the
+    line and what to do: such a line is not what benchharness writes, and
+    guessing what it meant could count a run twice or not at all. A line that
+    repeats a run already read is set aside and never counted: the first record
+    of each run is used; with ``repair`` the repeats are moved to
+    ``runs.jsonl.duplicates`` (nothing is deleted). What was set aside is said
+    in ``notes`` when a list is given.
+    """
     if not path.exists():
         return []
     data = path.read_bytes()
-    if data.endswith(b"\n") and b"\n\n" not in data and not data.startswith(b"\n"):
-        # The usual case, a journal of complete lines, parsed in one call (a
-        # JSON string never holds a raw newline, so every newline ends a line).
-        try:
-            whole = json.loads(b"[" + data[:-1].replace(b"\n", b",") + b"]")
-        except ValueError:
-            pass  # a damaged line somewhere: the line-by-line reading below says where
-        else:
-            if all(type(r) is dict for r in whole):
-                return whole
-    records = []
+    fast = _fast_records(data)
+    if fast is not None:
+        return fast
+    records: list = []
+    seen: dict[int, int] = {}           # run id -> index in records
+    bad: list[tuple[int, str]] = []     # (line number, what is wrong)
+    dups: list[tuple[int, bytes, bool]] = []  # (line number, line, identical to the first)
+    kept: list[bytes] = []              # the lines kept, for a repair
     good_end = 0
     lines = data.split(b"\n")
     offset = 0
     for i, line in enumerate(lines):
         last = i == len(lines) - 1
         if line.strip():
-            try:
-                if last:  # no newline after it: a write that did not finish
-                    raise ValueError
-                records.append(json.loads(line))
-            except ValueError:
-                rest = b"\n".join(lines[i + 1:]).strip()
-                if rest:
-                    raise ResultsFolderError(
-                        f"{path}: damaged journal line at byte {offset} with complete runs "
-                        "after it; it needs a look by hand") from None
+            if last:  # no newline after it: a write that did not finish
                 break
+            rec, why = _parse_line(line)
+            if why is None:
+                why = _record_problem(rec)
+            if (why is not None and rec is None and not why.startswith("two records")
+                    and not b"\n".join(lines[i + 1:]).strip()):
+                break  # an unreadable final line: treated as torn
+            if why is not None:
+                bad.append((i + 1, why))
+            elif rec["run"] in seen:
+                first = records[seen[rec["run"]]]
+                dups.append((i + 1, line, first == rec))
+            else:
+                seen[rec["run"]] = len(records)
+                records.append(rec)
+                kept.append(line)
         offset += len(line) + 1
         if not last:
             good_end = offset
-    if good_end < len(data) and data[good_end:].strip():
+    if bad:
+        n, why = bad[0]
+        more = ""
+        if len(bad) > 1:
+            others = ", ".join(str(b[0]) for b in bad[1:6]) + (", ..." if len(bad) > 6 else "")
+            more = f" (lines {others} too)"
+        raise ResultsFolderError(
+            f"{path}:{n}: {why}{more}" + (
+                "" if why.startswith("two records") else
+                f"; benchharness never writes such a line: move it out of the journal (into "
+                f"{path.name}.bad, say)") + f", and run the command again; the {len(records)} "
+            "runs recorded on the other lines are kept")
+    torn_tail = good_end < len(data) and data[good_end:].strip()
+    if dups:
+        same = sum(1 for d in dups if d[2])
+        ids = sorted({json.loads(d[1])["run"] for d in dups})
+        shown = ", ".join(map(str, ids[:8])) + (", ..." if len(ids) > 8 else "")
+        kind = (f"{same} identical" if same == len(dups) else
+                f"{same} identical, {len(dups) - same} with other values")
+        where = "set aside"
         if repair:
-            torn = path.with_name(path.name + ".torn")
-            with open(torn, "ab") as fh:
-                fh.write(data[good_end:] + b"\n")
-            with open(path, "r+b") as fh:
-                fh.truncate(good_end)
+            side = path.with_name(path.name + ".duplicates")
+            with open(side, "ab") as fh:
+                fh.write(b"".join(d[1] + b"\n" for d in dups))
+                fh.flush()
                 os.fsync(fh.fileno())
+            body = b"".join(k + b"\n" for k in kept)
+            write_atomic(path, body + (data[good_end:] if torn_tail else b""))
+            data = path.read_bytes()
+            good_end = len(body)
+            where = f"moved to {side.name}"
+        if notes is not None:
+            notes.append(f"{path.name}: {len(dups)} line(s) repeat a run already recorded "
+                         f"({kind}; run {shown}); {where} and not counted: the first record of "
+                         "each run is used")
+    if torn_tail and repair:
+        torn = path.with_name(path.name + ".torn")
+        with open(torn, "ab") as fh:
+            fh.write(data[good_end:] + b"\n")
+        with open(path, "r+b") as fh:
+            fh.truncate(good_end)
+            os.fsync(fh.fileno())
     return records
 
 
@@ -807,20 +932,117 @@ def write_plan_csv(folder: Path, factors: Sequence[str], rows: Sequence[Mapping]
         write_atomic(path, buf.getvalue())
 
 
-def read_plan_csv(folder: Path) -> list[dict]:
+def read_plan_csv(folder: Path, factors: Sequence[str] | None = None) -> list[dict]:
+    """The planned runs of ``plan.csv``; a damaged file is an error naming its line.
+
+    ``factors``: the experiment's factor names, which must be the file's columns.
+    """
     path = folder / "plan.csv"
+    damaged = (f"; plan.csv lists the runs resume continues with: put back the file as "
+               f"`benchharness run` wrote it (the runs recorded so far stay readable by "
+               f"`benchharness analyze {folder}`)")
     try:
         with open(path, newline="", encoding="utf-8") as fh:
-            rows = list(csv.DictReader(fh))
+            reader = csv.DictReader(fh)
+            rows = list(reader)
+            cols = reader.fieldnames or []
     except FileNotFoundError:
         raise ResultsFolderError(f"{folder}: no plan.csv; this is not a results folder "
                                  "benchharness can resume") from None
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise ResultsFolderError(f"{path}: damaged ({exc})" + damaged) from None
+    fixed = ["run", "position", "block", "replicate", "warmup"]
+    lacking = [c for c in [*fixed, *(factors or [])] if c not in cols]
+    if lacking:
+        raise ResultsFolderError(f"{path}:1: the header has no column {lacking[0]!r}" + damaged)
+    extra = [c for c in cols if c not in fixed and factors is not None and c not in factors]
+    if extra:
+        raise ResultsFolderError(f"{path}:1: the column {extra[0]!r} is not a factor of "
+                                 "experiment.yaml" + damaged)
     out = []
-    for r in rows:
-        out.append({"run": int(r.pop("run")), "position": int(r.pop("position")),
-                    "block": int(r.pop("block")), "replicate": int(r.pop("replicate")),
-                    "warmup": r.pop("warmup") == "true", "levels": r})
+    runs = set()
+    for n, r in enumerate(rows, 2):
+        if None in r or any(v is None for v in r.values()):
+            raise ResultsFolderError(f"{path}:{n}: the row does not have one value per column"
+                                     + damaged)
+        try:
+            row = {"run": int(r.pop("run")), "position": int(r.pop("position")),
+                   "block": int(r.pop("block")), "replicate": int(r.pop("replicate")),
+                   "warmup": r.pop("warmup") == "true", "levels": r}
+        except ValueError as exc:
+            raise ResultsFolderError(f"{path}:{n}: {exc}" + damaged) from None
+        if row["run"] in runs:
+            raise ResultsFolderError(f"{path}:{n}: run {row['run']} is planned twice" + damaged)
+        runs.add(row["run"])
+        out.append(row)
     return out
+
+
+def experiment_digest(text: str) -> str:
+    """SHA-256 of the frozen experiment file's text (recorded in session.json)."""
+    import hashlib
+
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def read_session(folder: Path) -> dict:
+    """``session.json`` of a folder to resume; a damaged one is an error saying what to do."""
+    path = folder / "session.json"
+    try:
+        value = json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise ResultsFolderError(f"{path}: missing; it holds the seed and state resume needs, "
+                                 "so this folder cannot be resumed (its runs stay readable by "
+                                 f"`benchharness analyze {folder}`)") from None
+    except (OSError, ValueError) as exc:
+        why = getattr(exc, "strerror", None) or str(exc).split(":")[0]
+        raise ResultsFolderError(f"{path}: damaged ({why}); it holds the seed and state resume "
+                                 "needs: put back the file as `benchharness run` wrote it, or "
+                                 "start afresh (the runs recorded so far stay readable by "
+                                 f"`benchharness analyze {folder}`)") from None
+    if not isinstance(value, dict):
+        raise ResultsFolderError(f"{path}: damaged (not a JSON object); put back the file as "
+                                 "`benchharness run` wrote it, or start afresh")
+    return value
+
+
+def check_frozen(folder: Path, exp, session: Mapping) -> None:
+    """Refuse to resume when the frozen ``experiment.yaml`` changed since the start:
+    the remaining runs would not be the experiment the first ones belong to."""
+    want = session.get("experiment_sha256")
+    if want and experiment_digest(exp.source_text) != want:
+        raise ResultsFolderError(
+            f"{folder / 'experiment.yaml'}: changed since this experiment started (its "
+            "SHA-256 differs from the one in session.json); resume runs only what was "
+            "planned: put back the file as it was run (to run something else, start a new "
+            "experiment)")
+
+
+def _probe_writable(folder: Path) -> None:
+    """Raise OSError unless a file can be created in ``folder`` (also for root on a
+    read-only mount, where permission bits say nothing)."""
+    probe = folder / f".write-probe-{os.getpid()}"
+    fd = os.open(probe, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    os.close(fd)
+    os.unlink(probe)
+
+
+def check_writable(folder: Path) -> None:
+    """A folder to append to must be writable; say so plainly if it is not."""
+    try:
+        _probe_writable(folder)
+        for name in ("runs.jsonl", "session.json"):
+            if (folder / name).exists() and not os.access(folder / name, os.W_OK):
+                raise PermissionError(13, "Permission denied", str(folder / name))
+    except OSError as exc:
+        import errno
+
+        fix = (f"copy it to a writable place (cp -a {folder} NEW) and resume the copy"
+               if exc.errno == errno.EROFS else
+               f"make it writable (chmod -R u+w {folder}), or copy it elsewhere and resume "
+               "the copy")
+        raise ResultsFolderError(f"{folder}: cannot be written ({exc.strerror or exc}); resume "
+                                 f"appends runs here: {fix}") from None
 
 
 # ---------------------------------------------------------------------------
@@ -835,6 +1057,7 @@ class Results:
     plan: object        # pandas.DataFrame of plan.csv
     session: dict
     records: tuple = ()  # the journal's records in execution order (as read once)
+    notes: tuple = ()    # what reading set aside or could not use (one sentence each)
 
 
 def is_results_folder(path: str | os.PathLike) -> bool:
@@ -855,8 +1078,10 @@ def load_results(folder: str | os.PathLike) -> Results:
         raise ResultsFolderError(f"{p}: not a results folder (needs experiment.yaml and "
                                  "runs.jsonl)")
     exp = load_experiment(p / "experiment.yaml")
-    records = sorted_records(read_journal(p / "runs.jsonl"))
+    notes: list[str] = []
+    records = sorted_records(read_journal(p / "runs.jsonl", notes=notes))
     factors = list(exp.factor_names)
+    check_levels(p, exp, records)
     cols = runs_columns(factors, records)
     runs = pd.DataFrame([row_values(r, factors, cols) for r in records], columns=cols)
     for f in factors:
@@ -864,17 +1089,52 @@ def load_results(folder: str | os.PathLike) -> Results:
                                  categories=list(exp.levels_of(f)))
     host = _read_json(p / "host.json")
     session = _read_json(p / "session.json")
+    if (p / "session.json").exists() and not session:
+        notes.append("session.json is damaged (not a JSON object); the runs are read without "
+                     "it, but `run --resume` needs it")
     try:
         plan = pd.read_csv(p / "plan.csv", dtype={f: str for f in factors},
                            keep_default_na=False)
     except FileNotFoundError:
         plan = pd.DataFrame()
+    except (ValueError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError):
+        plan = pd.DataFrame()
+        notes.append("plan.csv is damaged; the runs are read without it, but `run --resume` "
+                     "needs it")
+    # what the reading set aside reaches the analysis' notes (`prepare`)
+    runs.attrs["journal_notes"] = list(notes)
     return Results(path=p, experiment=exp, runs=runs, host=host, plan=plan, session=session,
-                   records=tuple(records))
+                   records=tuple(records), notes=tuple(notes))
+
+
+def check_levels(folder: Path, exp, records) -> None:
+    """Every record's levels are levels the frozen experiment lists.
+
+    A frozen ``experiment.yaml`` edited after the runs (a level renamed or
+    dropped, a factor added) would otherwise turn those runs into missing
+    values without a word.
+    """
+    known = {f.name: set(f.labels) for f in exp.factors}
+    for r in records:
+        lv = r["levels"]
+        for f, labels in known.items():
+            v = lv.get(f)
+            if v is None:
+                raise ResultsFolderError(
+                    f"{folder / 'experiment.yaml'}: run {r['run']} was recorded without the "
+                    f"factor {f!r}; experiment.yaml was changed after the runs (a factor "
+                    "added); put back the file as it was run")
+            if v not in labels:
+                raise ResultsFolderError(
+                    f"{folder / 'experiment.yaml'}: run {r['run']} was recorded with the level "
+                    f"{v!r} of {f!r}, which experiment.yaml does not list (it lists "
+                    f"{', '.join(sorted(labels))}); the file was changed after the runs; put "
+                    "that level back")
 
 
 def _read_json(path: Path) -> dict:
     try:
-        return json.loads(path.read_text())
-    except (OSError, json.JSONDecodeError):
+        value = json.loads(path.read_text())
+    except (OSError, ValueError):
         return {}
+    return value if isinstance(value, dict) else {}

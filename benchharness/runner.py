@@ -246,6 +246,7 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
                 "state": "running",
                 "runs_planned": len(plan.runs),
                 "roles": _roles(exp),
+                "experiment_sha256": J.experiment_digest(exp.source_text),
             }
             if scheduler:
                 session["scheduler"] = scheduler
@@ -317,6 +318,7 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
         raise ResultsFolderError(f"{folder}: not a results folder (no experiment.yaml and "
                                  "runs.jsonl); give the folder an earlier `benchharness run` "
                                  "made")
+    J.check_writable(folder)
     lock = J.FolderLock(folder)
     try:
         notes = []
@@ -324,10 +326,13 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
         if killed:
             notes.append(killed)
         exp = load_experiment(folder / "experiment.yaml")
-        session = json.loads((folder / "session.json").read_text())
-        records = J.read_journal(folder / "runs.jsonl", repair=True)
+        session = J.read_session(folder)
+        J.check_frozen(folder, exp, session)
+        planned = J.read_plan_csv(folder, exp.factor_names)
+        J.check_levels(folder, exp, planned)
+        records = J.read_journal(folder / "runs.jsonl", repair=True, notes=notes)
+        J.check_levels(folder, exp, records)
         done = {int(r["run"]) for r in records}
-        planned = J.read_plan_csv(folder)
         session["state"] = "running"
         session.setdefault("resumed_at", []).append(J.utc_iso())
         try:

@@ -269,3 +269,201 @@ def test_timeout_just_under_the_bound_runs(tmp_path):
 
     rec = json.loads((out / "runs.jsonl").read_text())
     assert rec["status"] == "ok", rec
+
+
+# -- item 7: damaged results folders -----------------------------------------------------
+
+import json as _json
+import shutil
+
+SMALL = ('experiment: small\ncommand: [printf, "{a}"]\nfactors: {a: [x, y]}\nreplicates: 5\n'
+         "seed: 1\n")
+
+
+@pytest.fixture(scope="module")
+def measured(tmp_path_factory):
+    """A finished folder: 2 cells x 5 replicates, all ok."""
+    d = tmp_path_factory.mktemp("measured")
+    exp = d / "small.yaml"
+    exp.write_text(SMALL)
+    proc = run_cli("run", exp, "--out", d / "folder", "--quiet", "--no-analysis",
+                   timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    return d / "folder"
+
+
+@pytest.fixture
+def folder(measured, tmp_path):
+    f = tmp_path / "folder"
+    shutil.copytree(measured, f)
+    return f
+
+
+def analysis_json(folder, tmp_path):
+    out = tmp_path / "analysis.json"
+    proc = run_cli("analyze", folder, "--json", out, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    return _json.loads(out.read_text())
+
+
+def insert_line(folder, n, text):
+    p = folder / "runs.jsonl"
+    lines = p.read_text().splitlines(True)
+    lines.insert(n - 1, text + "\n")
+    p.write_text("".join(lines))
+
+
+BAD_LINES = {
+    "one": ("1", "the line holds '1', not a run record"),
+    "list": ("[]", "the line holds '[]', not a run record"),
+    "null": ("null", "the line holds 'null', not a run record"),
+    "no-run": ('{"levels": {"a": "x"}, "status": "ok", "wall_s": 1.0}', "has no 'run'"),
+    "no-levels": ('{"run": 50, "status": "ok", "wall_s": 1.0}', "has no 'levels'"),
+    "no-status": ('{"run": 50, "levels": {"a": "x"}, "wall_s": 1.0}', "has no 'status'"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_LINES))
+def test_journal_line_that_is_not_a_record(folder, case):
+    text, words = BAD_LINES[case]
+    insert_line(folder, 4, text)
+    before = (folder / "runs.jsonl").read_bytes()
+    for args in (("analyze", folder), ("run", "--resume", folder, "--quiet")):
+        proc = run_cli(*args, timeout=LIMIT_S * 2)
+        one_line_error(proc, f"{folder}/runs.jsonl:4: ", words, "move it out of the journal",
+                       "the 10 runs recorded on the other lines are kept")
+        # nothing measured is lost or rewritten by a refused command
+        assert (folder / "runs.jsonl").read_bytes() == before
+
+
+def test_two_records_on_one_line_says_where_to_split(folder, tmp_path):
+    p = folder / "runs.jsonl"
+    lines = p.read_text().splitlines(True)
+    joined = lines[2].rstrip("\n") + lines[3]
+    p.write_text("".join(lines[:2] + [joined] + lines[4:]))
+    proc = run_cli("analyze", folder, timeout=LIMIT_S * 2)
+    line = one_line_error(proc, f"{p}:3: ", "two records run together")
+    col = int(line.split("put a newline at column ")[1].split()[0])
+    # planted truth: the column given is where the first record ends
+    assert col == len(lines[2].rstrip("\n")) + 1
+    fixed = lines[:2] + [joined[:col - 1] + "\n", joined[col - 1:]] + lines[4:]
+    p.write_text("".join(fixed))
+    assert analysis_json(folder, tmp_path)["counts"]["rows"] == 10
+
+
+def test_duplicate_lines_are_set_aside_not_counted(folder, measured, tmp_path):
+    (tmp_path / "clean").mkdir()
+    clean = analysis_json(measured, tmp_path / "clean")
+    p = folder / "runs.jsonl"
+    text = p.read_text()
+    x_lines = [ln for ln in text.splitlines() if _json.loads(ln)["levels"]["a"] == "x"]
+    with open(p, "a") as fh:  # three of cell x's five runs written twice
+        fh.write("\n".join(x_lines[:3]) + "\n")
+    an = analysis_json(folder, tmp_path)
+    # the cell keeps its 5 runs (it showed 8) and the residual df stays that of 10 runs (8)
+    n = {m["levels"]["a"]: m["n"] for m in an["means"] if m["term"] == "a"}
+    assert n == {"x": 5, "y": 5}
+    assert an["counts"]["df_resid"] == clean["counts"]["df_resid"] == 8
+    assert an["counts"]["rows"] == 10
+    assert any("3 line(s) repeat a run already recorded" in n and "not counted" in n
+               for n in an["notes"]), an["notes"]
+    # resume sets them aside in a file of their own: nothing deleted
+    before = p.read_bytes()
+    proc = run_cli("run", "--resume", folder, "--quiet", "--no-analysis", timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert "moved to runs.jsonl.duplicates" in proc.stdout + proc.stderr
+    side = (folder / "runs.jsonl.duplicates").read_bytes()
+    assert len(p.read_text().splitlines()) == 10
+    assert sorted(p.read_bytes().splitlines() + side.splitlines()) == \
+        sorted(before.splitlines())
+    assert sum(1 for _ in open(folder / "runs.csv")) == 11  # header + 10 runs
+
+
+def test_garbage_session_json(folder, tmp_path):
+    (folder / "session.json").write_text("{not json")
+    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    one_line_error(proc, f"{folder}/session.json: damaged", "put back the file",
+                   f"benchharness analyze {folder}")
+    (folder / "session.json").write_text("[1, 2]")
+    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    one_line_error(proc, f"{folder}/session.json: damaged")
+    # the measured runs stay readable
+    an = analysis_json(folder, tmp_path)
+    assert an["counts"]["rows"] == 10
+    assert any("session.json is damaged" in n for n in an["notes"])
+
+
+@pytest.mark.parametrize("text,where,words", [
+    ("garbage\n", ":1:", "no column 'run'"),
+    ("run,position,block,replicate,warmup,a\n0,0,1,one,false,x\n", ":2:", "'one'"),
+    ("run,position,block,replicate,warmup,a\n0,0,1,1,false\n", ":2:", "one value per column"),
+    ("run,position,block,replicate,warmup,b\n0,0,1,1,false,x\n", ":1:", "no column 'a'"),
+    ("run,position,block,replicate,warmup,a\n0,0,1,1,false,x\n0,1,1,2,false,y\n", ":3:",
+     "planned twice"),
+])
+def test_garbage_plan_csv(folder, text, where, words):
+    (folder / "plan.csv").write_text(text)
+    before = (folder / "runs.jsonl").read_bytes()
+    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    one_line_error(proc, f"{folder}/plan.csv{where}", words, "put back the file")
+    assert (folder / "runs.jsonl").read_bytes() == before
+    proc = run_cli("analyze", folder, timeout=LIMIT_S * 2)
+    assert proc.returncode == 0, proc.stderr
+
+
+def test_changed_frozen_experiment(folder):
+    frozen = folder / "experiment.yaml"
+    frozen.write_text(frozen.read_text().replace("replicates: 5", "replicates: 7"))
+    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    one_line_error(proc, f"{frozen}: changed since this experiment started", "put back")
+    # a level renamed in the frozen copy: the analysis refuses rather than losing those runs
+    frozen.write_text(SMALL.replace("[x, y]", "[x, z]"))
+    proc = run_cli("analyze", folder, timeout=LIMIT_S * 2)
+    one_line_error(proc, f"{frozen}: run ", "the level 'y' of 'a'", "does not list",
+                   "put that level back")
+
+
+def test_read_only_folder(folder, tmp_path):
+    before = (folder / "runs.jsonl").read_bytes()
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    if os.geteuid() != 0:
+        subprocess.run(["chmod", "-R", "a-w", str(folder)], check=True)
+        try:
+            proc = subprocess.run([sys.executable, "-m", "benchharness", "run", "--resume",
+                                   str(folder)], capture_output=True, text=True, env=env,
+                                  timeout=LIMIT_S)
+        finally:
+            subprocess.run(["chmod", "-R", "u+w", str(folder)], check=True)
+        one_line_error(proc, f"{folder}: cannot be written", "resume appends runs here")
+        return
+    # root ignores permission bits: make the folder a read-only mount in a private namespace
+    script = (f'mount --bind "{folder}" "{folder}" && mount -o remount,bind,ro "{folder}" '
+              f'|| exit 99; exec "{sys.executable}" -m benchharness run --resume "{folder}"')
+    try:
+        proc = subprocess.run(["unshare", "-m", "sh", "-c", script], capture_output=True,
+                              text=True, env=env, timeout=LIMIT_S)
+    except FileNotFoundError:
+        pytest.skip("unshare is not installed")
+    if proc.returncode == 99 or "unshare failed" in proc.stderr:
+        pytest.skip("cannot make a read-only mount here: " + proc.stderr.strip()[:200])
+    one_line_error(proc, f"{folder}: cannot be written (Read-only file system)",
+                   "copy it to a writable place")
+    assert (folder / "runs.jsonl").read_bytes() == before
+
+
+def test_out_at_a_dangling_link(tmp_path):
+    exp = write(tmp_path, SMALL)
+    link = tmp_path / "link"
+    link.symlink_to(tmp_path / "nowhere")
+    proc = run_cli("run", exp, "--out", link, "--quiet", timeout=LIMIT_S)
+    one_line_error(proc, f"{link}: a symbolic link to {tmp_path / 'nowhere'}, which does not "
+                         "exist")
+    assert not (tmp_path / "nowhere").exists()
+
+
+@pytest.mark.parametrize("out", ["/proc/benchharness-results", "/proc/self/results"])
+def test_out_under_proc(tmp_path, out):
+    exp = write(tmp_path, SMALL)
+    proc = run_cli("run", exp, "--out", out, "--quiet", timeout=LIMIT_S)
+    one_line_error(proc, f"{out}: cannot create the results folder here",
+                   "give --out a path in a writable folder")

@@ -126,7 +126,7 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     if response in factors:
         raise UsageError(f"{response!r} cannot be both the response and a factor")
 
-    notes = []
+    notes = list(getattr(df, "attrs", {}).get("journal_notes", ()))
     # status: analyse ok rows only; warm-up rows are not part of the experiment.
     if "status" in columns:
         st_codes, st_labels = pd.factorize(df["status"].astype(object), sort=False)
