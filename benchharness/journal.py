@@ -162,6 +162,10 @@ def start_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
     """
     if out is not None:
         final = Path(out)
+        if final.is_symlink() and not final.exists():
+            raise ResultsFolderError(f"{final}: a symbolic link to {os.readlink(final)}, which "
+                                     "does not exist; give --out a new folder path (or remove "
+                                     "the link)")
         if final.exists() or final.is_symlink():
             if not final.is_dir():
                 raise ResultsFolderError(f"{final}: exists and is not a folder; choose another "
@@ -174,15 +178,26 @@ def start_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
         parent, stub = final.absolute().parent, final.name
     else:
         parent, stub = Path(base), name
-    parent.mkdir(parents=True, exist_ok=True)
+    where = "give --out a path in a writable folder" if out is not None else \
+        "run from a writable folder or give --out"
+    try:
+        parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise ResultsFolderError(f"{out if out is not None else parent}: cannot create the "
+                                 f"results folder here ({exc.strerror or exc}); {where}") from None
     remove_stale_starts(parent)
     while True:
         folder = parent / f".{stub}{STARTING}{os.getpid()}-{os.urandom(3).hex()}"
         try:
             folder.mkdir()
+            _probe_writable(folder)
             return folder
         except FileExistsError:
             continue
+        except OSError as exc:
+            raise ResultsFolderError(f"{out if out is not None else parent}: cannot create the "
+                                     f"results folder here ({exc.strerror or exc}); "
+                                     f"{where}") from None
 
 
 def publish_folder(folder: Path, base: Path, name: str, out: str | os.PathLike | None) -> Path:
