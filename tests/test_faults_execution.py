@@ -538,3 +538,25 @@ def test_an_empty_folder_is_named_as_such_by_resume(tmp_path, cli):
     assert r.returncode == 2
     assert "is empty" in r.stderr and "nothing was measured" in r.stderr
     assert f"--out {tmp_path / 'res'}" in r.stderr
+
+
+def test_disk_full_under_any_other_command_is_one_line_and_75(monkeypatch, capsys):
+    from benchharness import cli
+    from benchharness.commands import plan as plan_cmd
+
+    def fills(args):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), "/somewhere/report.html")
+
+    monkeypatch.setattr(plan_cmd, "main", fills)
+    code = cli.main(["plan", "x.yaml"])
+    err = capsys.readouterr().err
+    assert code == DISK_FULL_EXIT
+    assert err == ("benchharness: the disk is full (no space left on the device writing "
+                   "/somewhere/report.html); free some space and run the command again\n")
+
+
+def test_values_passed_in_shell_variables_are_not_exported(tmp_path):
+    cmd = T.render_shell("printf '[%s]' \"{v}\"; env", lambda f, n: "a b; c")
+    assert cmd.startswith("__bhv1=")
+    r = subprocess.run(["/bin/sh", "-c", cmd], capture_output=True, text=True, timeout=10)
+    assert r.stdout.startswith("[a b; c]") and "__bhv" not in r.stdout
