@@ -29,15 +29,12 @@ def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
     """The choice table: short headers, cells that wrap at spaces (fits a 1280 px page)."""
     resp = d["response"]
     log = d["scale"] == "log"
-    cols = ["setting", f"{resp} ({'geo. mean' if log else 'mean'})", "runs", "verdict",
-            "vs best, at most"]
+    cols = ["setting", resp, "runs", "verdict", "vs best, at most"]
     cols.append("worst environment" if d["across"] else ("vs best" if log else "minus best"))
     if d["across"]:
         cols.append("average")
     if d.get("also"):
         cols.append("on front")
-    if d.get("limits"):
-        cols.append("limits")
     rows = []
     for c in d["candidates"]:
         excluded = c.get("within_limits") is False
@@ -57,8 +54,6 @@ def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
             row.append(_ratio_words(c["mean_ratio"]) if log else _fmt(c["mean_loss"]))
         if d.get("also"):
             row.append("yes" if c.get("on_front") else "no")
-        if d.get("limits"):
-            row.append("no" if excluded else "yes")
         rows.append(row)
     return cols, rows
 
@@ -73,7 +68,9 @@ def section_dict(choice) -> dict:
     notes = [
         f"Response {d['response']} ({d['better']} is better), analysed on the "
         f"{'log' if d['scale'] == 'log' else 'original'} scale; "
-        f"{d['runs_used']} ok runs used, {d['runs_dropped']} left out.",
+        f"{d['runs_used']} ok runs used, {d['runs_dropped']} left out. The {d['response']} "
+        f"column is each setting's {'geometric ' if d['scale'] == 'log' else ''}mean"
+        + (", every condition weighing the same." if d["across"] else "."),
         f"Noise: pooled residual of the "
         f"{'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
         f"model{' with ' + res['block'] + ' as an additive block term' if res.get('block') else ''}, "

@@ -810,4 +810,10 @@ def make_figures(data: ReportData, seed: int = 0,
         bc = boxcox_plot(data)
         if bc is not None:
             add(bc)
+        from benchharness.report.tradeoff import tradeoff_figure
+
+        for sec in data.extra:  # a choice with --also: its trade-off figure
+            tf = tradeoff_figure(sec, str(sec.get("id") or "extra"))
+            if tf is not None:
+                add(tf)
     return out
