@@ -531,10 +531,7 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
 
 def _role_reasons(roles, names, across_given) -> list[str]:
     """What was chosen among and what was held as a condition, and on whose word."""
-    from benchharness.roles import declaration_text
-
     chosen = ", ".join(names)
-    extra = [a for a in across_given if a not in roles.conditions]
     if roles.declared:
         conds = [f"{r}s {', '.join(getattr(roles, r))}" for r in ("workload", "environment")
                  if getattr(roles, r)]
@@ -543,24 +540,27 @@ def _role_reasons(roles, names, across_given) -> list[str]:
             return []
         return [f"Roles from {where}: choosing among the settings {chosen}; the "
                 + " and ".join(conds) + " are conditions the choice must hold up across."]
-    settings = [f for f in roles.setting if f in names]
-    out = []
+    across_factors = [a for a in across_given
+                      if a not in names and a not in ("host", "worker", "block", "replicate")]
+    held = (f"; {', '.join(across_factors)} held as condition(s) through --across"
+            if across_factors else "")
+    parts = []
+    if roles.workload:
+        parts.append(f"workload: [{', '.join(roles.workload)}]")
+    if across_factors:
+        parts.append(f"environment: [{', '.join(across_factors)}]")
+    declaration = ("roles: {" + ", ".join(parts) + "}" if parts
+                   else "roles: {workload: [...], environment: [...]}")
     if roles.workload:
         why = "; ".join(f"{f} ({roles.reasons[f]})" for f in roles.workload)
-        out.append(
+        return [
             f"No roles are declared, so factors that look like inputs are treated as "
-            f"workloads and never recommended: {why}. "
-            f"Treated as settings: {', '.join(settings) or 'none'} (nothing marks them as "
-            f"inputs). To be sure, declare them in the experiment file: "
-            f"{declaration_text(roles)} (for a CSV: --workload {','.join(roles.workload)}).")
-    else:
-        out.append(
-            f"No roles are declared: every factor ({', '.join(settings) or chosen}) is treated "
-            "as a setting, since none looks like an input"
-            + (f" ({', '.join(extra)} held as conditions by --across)" if extra else "")
-            + ". If some are inputs or machines, declare them, e.g. "
-              "roles: {workload: [...], environment: [...]}.")
-    return out
+            f"workloads and never recommended: {why}. Treated as settings: {chosen} (nothing "
+            f"marks them as inputs){held}. To be sure, declare them in the experiment file: "
+            f"{declaration} (for a CSV: --workload {','.join(roles.workload)})."]
+    return [f"No roles are declared: {chosen} treated as setting(s), since nothing marks "
+            f"them as inputs{held}. If some factors are inputs or machines, declare them in "
+            f"the experiment file: {declaration}."]
 
 
 def _limit_miss_words(lr, fi, confidence) -> str:
