@@ -95,6 +95,19 @@ def test_res4_default_model_finds_and_names_the_active_chain(res4_folder, cli):
     assert eff["threads:batch"]["ratio"] == pytest.approx(2.25, rel=0.1)
     assert eff["threads"]["ratio"] == pytest.approx(0.7, rel=0.1)
     assert {t for t, e in eff.items() if e["active"]} == {"threads", "cache", "threads:batch"}
+    # What it says: the chain is an interaction finding, named with its alias; the main
+    # effects found are the planted ones; only cells that ran can be the best; a fraction's
+    # unrun cells are not a caution.
+    said = {(f["kind"], f["terms"][0]) for f in a["findings"]
+            if f.get("significant") and f["kind"] in ("main", "interaction")}
+    assert said == {("interaction", "threads:batch (+ cache:pin)"), ("main", "cache")}
+    inter = [f for f in a["findings"] if f["kind"] == "interaction"][0]
+    assert "cannot tell threads:batch from cache:pin" in inter["statement"]
+    ran = {tuple(c.values()) for c in res4_folder.runs[["threads", "batch", "cache", "pin"]]
+           .astype(str).to_dict("records")}
+    best = [f for f in a["findings"] if f["kind"] == "best"][0]
+    assert all(tuple(c.values()) in ran for c in best["cells"])
+    assert not any(f.get("check") == "missing_cells" for f in a["findings"])
 
 
 def test_res4_terminal_names_the_chain_in_the_verdict(res4_folder, cli):
@@ -192,6 +205,19 @@ def test_unreplicated_2_5_2_uses_lenth(tmp_path, cli):
         assert (e["p"] < 0.05) == (abs(e["estimate"]) > ln["me"])
     assert eff["a"]["ratio"] == pytest.approx(2.0, rel=0.1)
     assert any("Lenth" in n for n in a["notes"])
+    # What it says: a and e matter (intervals from Lenth's PSE agree with the p-values),
+    # nothing else; the caution names Lenth's method instead of "nothing could be tested".
+    mains = {f["terms"][0]: f for f in a["findings"] if f["kind"] == "main"}
+    assert {t for t, f in mains.items() if f["significant"]} == {"a (+ b:d + c:e)",
+                                                                 "e (+ a:c)"}
+    lo, hi = mains["a (+ b:d + c:e)"]["lower"], mains["a (+ b:d + c:e)"]["upper"]
+    assert lo == pytest.approx(math.exp(eff["a"]["estimate"] - ln["me"]), rel=1e-6)
+    assert hi == pytest.approx(math.exp(eff["a"]["estimate"] + ln["me"]), rel=1e-6)
+    cautions = " ".join(f["statement"] for f in a["findings"] if f["kind"] == "caution")
+    assert "Lenth's method" in cautions and "nothing could be tested" not in cautions
+    r = cli("analyze", out.folder, "--transform", "log")
+    head = r.stdout.splitlines()[0].lower()
+    assert "a (+ b:d + c:e) matters" in head and "e (+ a:c) matters" in head
 
 
 def test_unreplicated_two_level_factorial_published_example(tmp_path, cli):

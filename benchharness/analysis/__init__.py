@@ -452,6 +452,12 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
 
     # ---- effects, means, comparisons -----------------------------------------------------
     refs = _parse_reference(reference, fnames, flevels)
+    fit_ls = fit   # the least-squares fit itself (Analysis.fit)
+    lenth_error = bool(fraction and fraction.get("lenth") and df_res <= 0
+                       and any(r.get("test") for r in anova_rows))
+    if lenth_error:
+        # An unreplicated fraction: intervals from Lenth's pseudo standard error.
+        fit = fr.lenth_fit(fit, fraction)
     means = ef.marginal_means(fit, names, levels, choice, alpha)
     effects = ef.level_ratios(fit, names, levels, factor_idx, refs, choice, alpha)
     comps = []
@@ -461,6 +467,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         tk_idx, pw_idx = factor_idx, factor_idx
         if methods == "default":
             tk_idx = _tukey_factors(fit, anova_p, alpha, factor_idx)
+        if lenth_error:
+            tk_idx = []   # two levels each: the level ratio is the comparison
         if methods == "default" or "tukey" in methods:
             comps += cmp.tukey(fit, names, levels, tk_idx, choice, alpha, refs)
         if methods != "default" and "pairwise" in methods:
@@ -501,6 +509,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
                      "that finished and so look faster than the configuration is")
 
     counts = {"rows": N, "cells": fcells.count, "cells_expected": expected_cells,
+              **({"cells_planned": fdesign.n_cells} if fdesign is not None else {}),
               "model_cells": cells.count, "df_resid": df_res, "level_order": prep.order_source}
     model_dict = {"spec": str(spec), "terms": [t.name for t in terms], "ss_type": fit.ss_type,
                   "ss_type_requested": ss_type, "alpha": alpha, "adjust": adjust,
@@ -511,8 +520,14 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     roles = _roles_of(prep.experiment, fnames, flevels)
     best = None
     if len(fnames):
-        best = fd.best_cells(fit, names, levels, _setting_factors(roles, fnames), choice,
-                             alpha, better, prep.response)
+        setting = _setting_factors(roles, fnames)
+        run_cells = None
+        if fdesign is not None and fdesign.is_fraction:
+            # A fraction: only cells that ran (their means do not depend on which member
+            # of an alias chain is at work; a cell that did not run would).
+            run_cells = {tuple(int(codes[f][i]) for f in setting) for i in range(N)}
+        best = fd.best_cells(fit, names, levels, setting, choice, alpha, better,
+                             prep.response, only=run_cells)
         if best is not None:
             best["averaged_over"] = [f for f in fnames if f not in best["factors"]]
             best["roles_source"] = roles.get("source")
@@ -524,7 +539,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)), counts=counts,
         fraction=fraction,
         residuals=resid, fitted=fit.fitted[cells.row_cell], studentized=studentized,
-        position=prep.position, run=prep.run, fit=fit, roles=roles, better=better, best=best)
+        position=prep.position, run=prep.run, fit=fit_ls, roles=roles, better=better, best=best)
     return replace(an, findings=tuple(fd.derive(an.to_dict())))
 
 

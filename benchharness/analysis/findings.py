@@ -99,14 +99,15 @@ def _and(items) -> str:
 # the best cell and the tied set (needs the fit)
 
 def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: str,
-               response: str) -> dict | None:
+               response: str, only=None) -> dict | None:
     """Best cell over the factors ``setting_idx`` (others averaged) and its tied set.
 
     Returns plain data: ``cells`` (every estimable cell, best first, with mean,
     estimate and se on the analysis scale), ``tied`` (indices into ``cells``),
     ``runner_up`` (ratio runner-up / best with its interval and whether it is
     distinguishable), ``outside`` (the best cell outside the tied set, same
-    form) and ``critical`` (the quantile ``d``).
+    form) and ``critical`` (the quantile ``d``). ``only``: level-index tuples over
+    ``setting_idx`` to consider (a fraction's cells that ran), None for all.
     """
     import numpy as np
     from scipy import stats
@@ -119,6 +120,8 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     combos, L = margin_rows(fit, tuple(setting_idx))
     est, se, ok = linear_estimates(fit, L)
     keep = np.flatnonzero(ok & np.isfinite(est))
+    if only is not None:
+        keep = np.array([c for c in keep if tuple(int(v) for v in combos[c]) in only], dtype=int)
     if len(keep) == 0:
         return None
     sign = -1.0 if better == "higher" else 1.0      # smaller "badness" is better
@@ -446,7 +449,12 @@ def _cautions(d: dict, alpha: float) -> list[dict]:
 
     dg = d.get("diagnostics") or {}
     res_df = (d.get("counts") or {}).get("df_resid")
-    if res_df is not None and res_df <= 0:
+    lenth = any(r.get("test") for r in d.get("anova") or [])
+    if res_df is not None and res_df <= 0 and lenth:
+        caution("residual_df", "No replicates: each effect was judged by Lenth's method "
+                "against the spread of the smaller effects, and the model's assumptions could "
+                "not be checked; replicate the fraction to test against run-to-run noise")
+    elif res_df is not None and res_df <= 0:
         caution("residual_df", "No residual degrees of freedom: nothing could be tested; "
                 "add replicates or fit fewer interactions")
     names = {"normality": "Residuals are not normal", "equal_variance":
@@ -470,7 +478,8 @@ def _cautions(d: dict, alpha: float) -> list[dict]:
     if fail.get("cells_with_timeouts"):
         caution("timeouts", f"{fail.get('verdict')}")
     c = d.get("counts") or {}
-    if c.get("cells") is not None and c.get("cells_expected") and c["cells"] < c["cells_expected"]:
-        caution("missing_cells", f"{c['cells_expected'] - c['cells']} of "
-                f"{c['cells_expected']} cells have no analysed runs")
+    expected = c.get("cells_planned") or c.get("cells_expected")   # a fraction plans fewer
+    if c.get("cells") is not None and expected and c["cells"] < expected:
+        caution("missing_cells", f"{expected - c['cells']} of "
+                f"{expected} cells have no analysed runs")
     return out

@@ -609,3 +609,20 @@ def attach(design, names, codes, z, scale: str, alpha: float, anova_rows, terms,
             f"error {ln['pse']:.4g} from the smaller effects, t with {ln['df']:.3g} df; margin of "
             f"error {ln['me']:.4g}, simultaneous margin {ln['sme']:.4g} on the analysis scale)")
     return frac, notes
+
+
+def lenth_fit(fit, frac: dict):
+    """A copy of the model fit whose error is Lenth's, for an unreplicated fraction.
+
+    In a saturated orthogonal two-level design of N runs each effect (mean at +1
+    minus mean at -1) has variance 4 sigma^2 / N; Lenth's (1989) PSE estimates its
+    standard deviation. Setting the error mean square to PSE^2 N / 4 with m/3
+    degrees of freedom therefore gives every effect the interval effect +- ME, and
+    any contrast of cell means (level ratios, simple effects, means) its standard
+    error from the same PSE, with t on m/3 degrees of freedom.
+    """
+    from dataclasses import replace
+
+    ln = frac["lenth"]
+    mse = float(ln["pse"]) ** 2 * int(frac["runs_used"]) / 4.0
+    return replace(fit, rss=mse * float(ln["df"]), df_resid=float(ln["df"]))

@@ -321,7 +321,12 @@ def sureness(data: ReportData) -> list[str]:
     d = data.design
     res_df = next((r.get("df") for r in data.analysis.get("anova") or []
                    if r.get("term") == "Residual"), None)
-    if res_df is not None and finite(res_df) and float(res_df) == 0:
+    lenth = any(r.get("test") for r in data.analysis.get("anova") or [])
+    if res_df is not None and finite(res_df) and float(res_df) == 0 and lenth:
+        out.append("There are no replicates, so each effect was judged by Lenth's method "
+                   "against the spread of the smaller effects (see the alias chains); the "
+                   "model's assumptions could not be checked. Replicate to be surer.")
+    elif res_df is not None and finite(res_df) and float(res_df) == 0:
         out.append("There are no residual degrees of freedom (one run per cell): no test "
                    "could be made, so nothing here is a verdict. Add replicates.")
     n_ok = d.get("runs_ok")
