@@ -108,8 +108,9 @@ def test_false_step_rate_over_500_flat_series():
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("N,tau", [(8, 0.0), (30, 0.0), (30, 0.01), (60, 0.02)])
+@pytest.mark.parametrize("N,tau", [(5, 0.0), (8, 0.0), (30, 0.0), (30, 0.01), (60, 0.02)])
 def test_false_step_rate_slow(N, tau):
+    # the figures in docs/history.md (whole-series and newest-commits tests together)
     hits = _false_step_rate(2000, N=N, tau=tau, seed=N, n_sim=999)
     _assert_rate_at_most(hits, 2000, 0.05)
 
@@ -152,22 +153,75 @@ def test_transient_step_does_not_persist():
 
 
 def test_newest_commits_shift():
-    # one odd newest point in a short stretch looks like one unlucky session: not
-    # reported (see the module docstring); two shifted points are a step
+    # one odd newest point looks like one unlucky session: not a step, reported as
+    # not yet confirmed; once the next commit shows it too, a step
     x, s, n = simulate(np.random.default_rng(8), N=20)
     x[-1] += np.log(1.12)
-    assert cp.detect_steps(x, s, n).steps == ()
+    det = cp.detect_steps(x, s, n)
+    assert det.steps == ()
+    assert [u.index for u in det.unconfirmed] == [19]
+    assert det.unconfirmed[0].ratio_low < 1.12 < det.unconfirmed[0].ratio_high
     x[-2] += np.log(1.12)
     det = cp.detect_steps(x, s, n)
     assert [st.index for st in det.steps] == [18]
-    assert det.steps[0].persists is True
-    # with more than 2/alpha points the newest point alone is enough, too recent
-    # to say whether it lasts
+    assert det.steps[0].persists is True and det.unconfirmed == ()
+    # a long series: the newest point alone is still only "not yet confirmed"
     x, s, n = simulate(np.random.default_rng(8), N=60)
     x[-1] += np.log(1.12)
     det = cp.detect_steps(x, s, n)
-    assert [st.index for st in det.steps] == [59]
-    assert det.steps[0].persists is None
+    assert det.steps == ()
+    assert [u.index for u in det.unconfirmed] == [59]
+
+
+def test_step_at_the_tip_of_a_short_series_watched_commit_by_commit():
+    # three commits at one speed, then three at 2.3x the time (5 runs each, 2 % noise):
+    # after the first slow commit "not yet confirmed", from the second on a step at
+    # the first slow commit
+    x, s, n = simulate(np.random.default_rng(31), N=6, step_at=3, step=1.3)
+    seen = []
+    for m in range(3, 7):
+        det = cp.detect_steps(x[:m], s[:m], n[:m])
+        seen.append(([st.index for st in det.steps], [u.index for u in det.unconfirmed]))
+    assert seen == [([], []), ([], [3]), ([3], []), ([3], [])]
+    det = cp.detect_steps(x[:5], s[:5], n[:5])
+    st = det.steps[0]
+    assert st.found_by == "newest commits" and st.ratio_low < 2.3 < st.ratio_high
+
+
+def test_tip_statistics_match_scipy_two_sample_t():
+    # reference: scipy.stats.ttest_ind(equal_var=True), the pooled two-sample t
+    from benchharness.history import tip
+
+    x = np.random.default_rng(2).normal(0, 1, 12)
+    t = tip.tip_statistics(x)[0]
+    assert len(t) == tip.TIP_MAX
+    for k in range(1, tip.TIP_MAX + 1):
+        ref = stats.ttest_ind(x[-k:], x[:-k], equal_var=True).statistic
+        assert t[k - 1] == pytest.approx(ref, rel=1e-10)
+    # with three points only k = 1 is looked at: max |t_1| has Student's t law
+    # with 1 df, so the simulated critical value is its quantile (scipy.stats.t)
+    assert tip.critical_value(3, 0.2) == pytest.approx(stats.t.ppf(0.9, 1), rel=0.1)
+    assert tip.critical_value(3, 0.0001) == np.inf      # beyond what 1,999 series show
+
+
+def _flat_looks(n_series, N, tau, seed, n_sim):
+    """Steps and not-yet-confirmed flags in flat series at their newest look."""
+    rng = np.random.default_rng(seed)
+    steps = pending = 0
+    for _ in range(n_series):
+        x, s, n = simulate(rng, N=N, tau=tau)
+        det = cp.detect_steps(x, s, n, alpha=0.05, n_sim=n_sim)
+        steps += bool(det.steps)
+        pending += bool(det.unconfirmed)
+    return steps, pending
+
+
+@pytest.mark.parametrize("N", [5, 8])
+def test_false_step_rate_of_short_flat_series(N):
+    # the newest-commits test shares the level: short series, where it matters most
+    steps, pending = _flat_looks(400, N=N, tau=0.005, seed=400 + N, n_sim=199)
+    _assert_rate_at_most(steps, 400, 0.05)
+    _assert_rate_at_most(pending, 400, 0.05)
 
 
 def test_lone_odd_point_in_the_middle_is_not_a_step():

@@ -126,3 +126,41 @@ def test_html_page_loads_offline_in_chromium(tmp_path):
             browser.close()
     assert errors == []
     assert [u for u in requests if not u.startswith(("file:", "data:"))] == []
+
+
+def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, cli):
+    # planted: three commits at one speed, then three at 2.3x the time (5 runs each,
+    # 2 % noise); `history show --fail-on-regression` as a nightly job runs it after
+    # the third, fourth and fifth commit
+    from benchharness.history.store import add_results
+
+    rng = np.random.default_rng(77)
+    db = tmp_path / "hist.sqlite"
+    outs = {}
+    for i in range(5):
+        slow = 2.3 if i >= 3 else 1.0
+        f = write_folder(tmp_path / f"nightly-{i}", "archive-codecs", {"codec": ["zlib"]},
+                         {("zlib",): list(0.4 * slow * np.exp(rng.normal(0, 0.02, 5)))},
+                         start=datetime(2026, 11, 1, tzinfo=timezone.utc) + timedelta(days=i))
+        assert add_results(db, f, commit=f"c{i}", branch="main", cwd=tmp_path) == 1
+        if i >= 2:
+            outs[i] = cli("history", "show", "--db", db, "--fail-on-regression",
+                          "--json", tmp_path / f"show{i}.json")
+    assert [outs[i].returncode for i in (2, 3, 4)] == [0, 0, 1]
+    assert "No step found" in outs[2].stdout and "NOT YET" not in outs[2].stdout
+    four = outs[3]
+    said = " ".join(four.stdout.split())     # the line under the table, unwrapped
+    assert re.search(r"Newest commit c3: possible regression x2\.\d+ \(", said), said
+    assert "(not yet confirmed; not counted as a step)" in said
+    assert "NOT YET CONFIRMED" in four.stdout            # marked in the table too
+    assert "not yet confirmed: archive-codecs wall_s codec=zlib at commit c3" in four.stderr
+    assert "STEP" not in four.stdout
+    data = json.loads((tmp_path / "show3.json").read_text())["cells"][0]
+    assert data["steps"] == [] and data["not_yet_confirmed"][0]["commit"] == "c3"
+    five = outs[4]
+    assert "STEP: regression" in five.stdout and "1 step(s) found" in five.stdout
+    assert "regression: archive-codecs wall_s codec=zlib at commit c3" in five.stderr
+    steps = json.loads((tmp_path / "show4.json").read_text())["cells"][0]["steps"]
+    assert [s["commit"] for s in steps] == ["c3"]
+    assert steps[0]["found_by"] == "newest commits" and steps[0]["persists"] is True
+    assert steps[0]["ratio_low"] < 2.3 < steps[0]["ratio_high"]

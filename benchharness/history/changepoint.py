@@ -45,6 +45,15 @@ fingerprint). The method, on the points measured on one host:
    against the segment before the step (interval of the ratio excludes 1);
    ``None`` when only one point follows. Intervals ignore that the step location was
    chosen from the data, so they are somewhat optimistic.
+6. **The newest commits** of the host measured last get a test of their own
+   (`benchharness.history.tip`), on the stretch since its last step: a change
+   shown by two or more of the newest commits is a step (``found_by``
+   ``"newest commits"``) even in a short series; a change shown by the newest
+   commit alone -- from either test -- is reported apart, as **not yet
+   confirmed** (``Detection.unconfirmed``), never as a step. That host's level
+   is shared: ``alpha/2`` for the whole-series test, ``alpha/2`` for the newest
+   commits, so a steady series still shows a false step with chance at most
+   ``alpha`` (Bonferroni); other hosts keep ``alpha`` for the whole-series test.
 
 Each host's points are searched on their own, in order (a pool of machines
 measured in turn still gets detection per machine). A change of host between
@@ -72,6 +81,7 @@ class Step:
     persists: bool | None      # None: too few points after to say
     statistic: float           # cost reduction of this split (chi-square-like)
     critical: float            # penalty / critical value used
+    found_by: str = "whole series"   # or "newest commits" (benchharness.history.tip)
 
 
 @dataclass(frozen=True)
@@ -100,6 +110,7 @@ class Detection:
     segments: tuple[Segment, ...]
     tau: tuple[float, ...] = field(default=())      # session noise SD per host
     alpha: float = 0.05
+    unconfirmed: tuple[Step, ...] = field(default=())  # newest commit alone differs
 
 
 # ----------------------------------------------------------------- variances
@@ -346,11 +357,15 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
     """
     from scipy import stats
 
+    from benchharness.history import tip
+
     x = np.asarray(x, dtype=float)
     sd = np.asarray(sd, dtype=float)
     n = np.asarray(n, dtype=float)
     N = len(x)
     hosts = list(hosts) if hosts is not None else ["host"] * N
+    newest = hosts[-1] if N else None
+    unconfirmed: list[Step] = []
     z = float(stats.norm.ppf(0.5 + conf_level / 2))
     groups: dict[str, list[int]] = {}
     for i, h in enumerate(hosts):
@@ -373,14 +388,29 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
         w = 1.0 / (v + tau2)
         cps: list[int] = []
         crit = math.nan
+        at_tip = host == newest and len(xs) >= tip.MIN_TIP_POINTS
+        level = alpha / 2 if at_tip else alpha      # shared with the newest-commits test
         if len(xs) >= MIN_POINTS:
-            stat, crit, pvalue = permutation_test(xs, v, alpha, n_sim)
-            if pvalue <= alpha:
+            stat, crit, pvalue = permutation_test(xs, v, level, n_sim)
+            if pvalue <= level:
                 # penalty per step min(c, (c + price)/2): whatever made the test
                 # fire (one step, or a step and a step back) is then always found
                 c = min(crit, stat * (1 - 1e-9))
                 cps = pelt(xs, w, min(c, (c + step_back_price(len(xs))) / 2))
                 cps = prune_steps(xs, w, cps, c)
+        found_by = {k: ("whole series", crit) for k in cps}
+        pending = None       # (index in xs, statistic, critical): the newest point alone
+        if at_tip:
+            if cps and cps[-1] == len(xs) - 1:
+                pending = (cps.pop(), math.nan, crit)   # one commit shows it: not yet
+            start = cps[-1] if cps else 0
+            res = tip.tip_test(xs[start:], v[start:], alpha / 2)
+            if res is not None and res.confirmed:
+                cps.append(len(xs) - res.k)
+                found_by[len(xs) - res.k] = ("newest commits", res.critical)
+                pending = None
+            elif res is not None:
+                pending = (len(xs) - 1, res.statistic, res.critical)
         edges = [0] + cps + [len(xs)]
         segs = []
         for s0, s1 in zip(edges[:-1], edges[1:]):
@@ -403,7 +433,14 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
                     _, rlo, rhi = _ratio(later.mean, later.se, before.mean, before.se, z)
                     if not (rlo > 1 if r > 1 else rhi < 1):
                         persists = False
-            steps.append(Step(int(idx_a[cp]), r, lo, hi, persists, local[j], crit))
+            by, used = found_by.get(cp, ("whole series", crit))
+            steps.append(Step(int(idx_a[cp]), r, lo, hi, persists, local[j], used, by))
+        if pending is not None:
+            k, stat_p, crit_p = pending
+            m0, se0 = _wmean(xs[edges[-2]:k], w[edges[-2]:k])   # the stretch before it
+            r, lo, hi = _ratio(float(xs[k]), math.sqrt(1 / w[k]), m0, se0, z)
+            unconfirmed.append(Step(int(idx_a[k]), r, lo, hi, None, stat_p, crit_p,
+                                    "newest commits"))
     breaks: list[HostBreak] = []
     for b in range(1, N):
         if hosts[b] == hosts[b - 1]:
@@ -413,4 +450,5 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
         breaks.append(HostBreak(b, hosts[b - 1], hosts[b], r, lo, hi))
     steps.sort(key=lambda st: st.index)
     segments.sort(key=lambda sg: (sg.start, sg.host))
-    return Detection(tuple(steps), tuple(breaks), tuple(segments), tuple(taus), alpha)
+    return Detection(tuple(steps), tuple(breaks), tuple(segments), tuple(taus), alpha,
+                     tuple(unconfirmed))

@@ -41,7 +41,17 @@ def point_notes(t: CellTrend) -> dict[int, str]:
         kind = step_kind(t.response, s.ratio, s.persists).replace(" (did not last)", "")
         notes[s.index] = (f"STEP: {kind} {_ratio_text(s.ratio, s.ratio_low, s.ratio_high)}, "
                           f"{last[s.persists]}")
+    for s in det.unconfirmed:
+        notes[s.index] = unconfirmed_text(t, s)
     return notes
+
+
+def unconfirmed_text(t: CellTrend, s) -> str:
+    """The wording of a change shown by the newest commit alone."""
+    kind = step_kind(t.response, s.ratio, None)
+    return (f"NOT YET CONFIRMED: possible {kind} "
+            f"{_ratio_text(s.ratio, s.ratio_low, s.ratio_high)}; only this newest commit "
+            "shows it, the next one decides")
 
 
 _LASTS = {True: "yes", False: "no, undone later", None: "too recent to tell"}
@@ -114,8 +124,12 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
             if det.steps:
                 console.print(f"  {len(det.steps)} step(s) found (false-step level "
                               f"{det.alpha:g} per host).")
-            elif len(t.points) >= 4:
+            elif len(t.points) >= 3:
                 console.print(f"  No step found (false-step level {det.alpha:g} per host).")
+            for u in det.unconfirmed:
+                console.print(f"  Newest commit {t.points[u.index].commit[:12]}: "
+                              f"{unconfirmed_text(t, u)[len('NOT YET CONFIRMED: '):]} "
+                              "(not yet confirmed; not counted as a step).", highlight=False)
         if t.note:
             console.print(f"  Note: {t.note}.")
         console.print()
@@ -259,8 +273,11 @@ def render_html(trends: list[CellTrend], experiment: str | None = None,
         if det is not None and det.steps:
             summary = "; ".join(f"{notes[s.index]} at {t.points[s.index].commit[:12]}"
                                 for s in det.steps)
-        elif det is not None and len(t.points) >= 4:
+        elif det is not None and len(t.points) >= 3:
             summary = "No step found."
+        if det is not None and det.unconfirmed:
+            summary = "; ".join([summary] * bool(summary) + [
+                f"{notes[u.index]} ({t.points[u.index].commit[:12]})" for u in det.unconfirmed])
         cells.append({"trend": t, "rows": rows, "svg": trend_figure_svg(t), "summary": summary,
                       "with_time": any(p.commit_time for p in t.points)})
     return env.from_string(_PAGE).render(

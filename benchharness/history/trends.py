@@ -134,8 +134,9 @@ def build_trends(history, alpha: float = 0.05, conf_level: float = 0.95,
                                   np.array([p.n for p in points]),
                                   hosts=[p.host for p in points], alpha=alpha,
                                   conf_level=conf_level, **kw)
-            if len(points) < cp.MIN_POINTS:
-                note = f"steps are searched for from {cp.MIN_POINTS} commits on one host"
+            if len(points) < 3:
+                note = ("steps are searched for from 3 commits on one host (a change at the "
+                        f"newest commits), {cp.MIN_POINTS} for the whole series")
         elif scale == "linear" and not note:
             note = "values <= 0 occur, so steps (ratios) are not searched for"
         trends.append(CellTrend(experiment=exp, response=resp, cell=json.loads(cell_json),
@@ -164,13 +165,20 @@ def to_json_dict(trends: list[CellTrend]) -> dict:
         det = t.detection
         steps = []
         breaks = []
+        unconfirmed = []
         if det is not None:
             for s in det.steps:
                 p = t.points[s.index]
                 steps.append({"commit": p.commit, "index": s.index, "ratio": s.ratio,
                               "ratio_low": s.ratio_low, "ratio_high": s.ratio_high,
                               "persists": s.persists,
-                              "kind": step_kind(t.response, s.ratio, s.persists)})
+                              "kind": step_kind(t.response, s.ratio, s.persists),
+                              "found_by": s.found_by})
+            for s in det.unconfirmed:
+                p = t.points[s.index]
+                unconfirmed.append({"commit": p.commit, "index": s.index, "ratio": s.ratio,
+                                    "ratio_low": s.ratio_low, "ratio_high": s.ratio_high,
+                                    "kind": step_kind(t.response, s.ratio, None)})
             for b in det.breaks:
                 p = t.points[b.index]
                 breaks.append({"commit": p.commit, "index": b.index, "from_host": b.from_host,
@@ -186,6 +194,6 @@ def to_json_dict(trends: list[CellTrend]) -> dict:
                         "ci_low": p.ci_low, "ci_high": p.ci_high,
                         "noise_sd": None if not math.isfinite(p.sd) else p.sd,
                         "folders": list(p.folders)} for p in t.points],
-            "steps": steps, "host_breaks": breaks,
+            "steps": steps, "not_yet_confirmed": unconfirmed, "host_breaks": breaks,
         })
     return {"cells": cells}
