@@ -216,6 +216,21 @@ def _flat_looks(n_series, N, tau, seed, n_sim):
     return steps, pending
 
 
+def test_newest_two_commits_shifted_are_steps_one_is_not_yet():
+    # 20 steady commits, then a 10 % change (session noise 0.5 %), 40 series each
+    one = two = one_pending = 0
+    for seed in range(40):
+        x, s, n = simulate(np.random.default_rng(seed), N=22, step_at=20, step=0.10,
+                           tau=0.005)
+        det1 = cp.detect_steps(x[:21], s[:21], n[:21])
+        one += any(st.index >= 19 for st in det1.steps)
+        one_pending += [u.index for u in det1.unconfirmed] == [20]
+        det2 = cp.detect_steps(x, s, n)
+        two += any(st.index == 20 and st.ratio > 1 for st in det2.steps)
+    assert one == 0 and one_pending >= 36
+    assert two == 40
+
+
 @pytest.mark.parametrize("N", [5, 8])
 def test_false_step_rate_of_short_flat_series(N):
     # the newest-commits test shares the level: short series, where it matters most
