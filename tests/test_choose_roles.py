@@ -219,3 +219,17 @@ def test_bad_roles_are_reported_at_their_line_and_column(cli, tmp_path, block, w
         from benchharness.sections import validate_sections
 
         validate_sections(Experiment.from_text(text, path=str(f)))
+
+
+def test_choose_uses_the_scale_the_folders_analysis_recorded(declared_folder):
+    # analysis.json says the response was analysed on the original scale: choose follows it
+    # (losses become differences, no ratios); without a record it takes the log scale.
+    assert choose(declared_folder).scale == "log"
+    (declared_folder / "analysis.json").write_text(json.dumps(
+        {"response": "wall_s", "transform": {"name": "none"}}))
+    c = choose(declared_folder)
+    assert c.scale == "none" and c.candidates[0]["ratio_vs_best_of_others"] is None
+    # a record about another response is not this response's scale
+    (declared_folder / "analysis.json").write_text(json.dumps(
+        {"response": "max_rss_kib", "transform": {"name": "none"}}))
+    assert choose(declared_folder).scale == "log"

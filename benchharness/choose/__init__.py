@@ -288,6 +288,11 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     orders = level_orders(df[df["status"].astype(str) == "ok"] if "status" in df.columns else df,
                           control + across, experiment)
 
+    if scale == "auto":  # the scale the folder's analysis recorded for this response
+        from benchharness.choose.config import recorded_scale
+
+        scale = recorded_scale(data, response) or "auto"
+
     def fit(resp):
         return fit_response(df, resp, control, across, better=directions.get(resp, "lower"),
                             scale=scale if resp == response else "auto", orders=orders,

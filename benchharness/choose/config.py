@@ -27,7 +27,7 @@ from pathlib import Path
 
 from benchharness.errors import DataError, ExperimentError
 
-__all__ = ["load_source", "choose_settings", "metric_directions"]
+__all__ = ["load_source", "choose_settings", "metric_directions", "recorded_scale"]
 
 _CHOOSE_KEYS = ("prefer", "across", "also", "response", "confidence", "within", "limits")
 
@@ -197,3 +197,27 @@ def metric_directions(experiment) -> dict[str, str]:
             if isinstance(b, str) and b.strip().lower() in ("lower", "higher"):
                 out[str(name)] = b.strip().lower()
     return out
+
+
+def recorded_scale(data, response: str) -> str | None:
+    """The scale a results folder's ``analysis.json`` recorded for ``response``.
+
+    ``log`` or ``none`` when the folder's analysis of this response used that
+    transform, so `choose` judges the response on the same scale as the
+    analysis; None when there is no such record (or it is Box-Cox, which a
+    choice does not use: it then keeps its own rule).
+    """
+    import json
+
+    if not isinstance(data, (str, Path)):
+        return None
+    path = Path(data) / "analysis.json"
+    try:
+        stored = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(stored, dict) or stored.get("response") != response:
+        return None
+    name = (stored.get("transform") or {}).get("name") if isinstance(
+        stored.get("transform"), dict) else None
+    return name if name in ("log", "none") else None
