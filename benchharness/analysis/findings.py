@@ -235,14 +235,6 @@ def derive(d: dict) -> list[dict]:
     def sig_row(r):
         return r.get("p") is not None and r["p"] < alpha
 
-    inside: dict[str, list[str]] = {f: [] for f in factors}   # in a sig. two-factor term
-    higher: dict[str, list[str]] = {f: [] for f in factors}   # in a sig. larger term
-    for r in rows:
-        members = term_members(r, factors)
-        if members and len(members[0]) >= 2 and sig_row(r):
-            for f in members[0]:
-                (inside if len(members[0]) == 2 else higher)[f].append(term_label(r))
-
     # ---- interactions -----------------------------------------------------------------------
     for r in rows:
         members = term_members(r, factors)
@@ -273,12 +265,20 @@ def derive(d: dict) -> list[dict]:
                         f"when {y}={c['within'][y]}" for c in cs)
                     parts.append(f"{x}={lv} against {x}={cs[0]['b']}: {each}")
                 clauses.append(" | ".join(parts))
-            head = f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {fmt_p(r['p'])})"
-            statement = head + (": " + "; and ".join(clauses) if clauses else
-                                ": the effect of each depends on the level of the other")
+            # called significant only when a stated simple effect agrees (no comparisons
+            # made: the F test alone)
+            agrees = not simple or any(x["significant"] for x in simple)
+            if agrees:
+                head = f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {fmt_p(r['p'])})"
+                statement = head + (": " + "; and ".join(clauses) if clauses else
+                                    ": the effect of each depends on the level of the other")
+            else:
+                statement = (f"{term_label(r)}: the F test gives {fmt_p(r['p'])}, but no simple "
+                             f"effect is distinguishable at {conf} after adjustment ("
+                             + "; and ".join(clauses) + ")")
             statement += alias_text
             out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
-                        "significant": True, "ratio": None, "lower": None, "upper": None,
+                        "significant": agrees, "ratio": None, "lower": None, "upper": None,
                         "p": r["p"], "statement": statement,
                         "per_level": clauses, "aliased": [":".join(m) for m in aliased]})
             out += simple
@@ -291,6 +291,16 @@ def derive(d: dict) -> list[dict]:
                         "p": r["p"], "statement": statement, "per_level": [],
                         "aliased": [":".join(m) for m in aliased]})
 
+    inside: dict[str, list[str]] = {f: [] for f in factors}   # in a stated two-factor term
+    higher: dict[str, list[str]] = {f: [] for f in factors}   # in a larger one
+    unclear: dict[str, list[str]] = {f: [] for f in factors}  # F only, no simple effect
+    for f in out:
+        if f["kind"] == "interaction":
+            where = (higher if len(f["factors"]) > 2 else inside if f["significant"]
+                     else unclear)
+            for x in f["factors"]:
+                where[x].append(f["terms"][0])
+
     # ---- main effects -----------------------------------------------------------------------
     effects = d.get("effects") or []
     for r in rows:
@@ -301,7 +311,7 @@ def derive(d: dict) -> list[dict]:
         if inside.get(f):
             continue        # stated per level of its partner above
         out.append(_main_finding(r, f, members[1:], comps, effects, refs, alpha, conf, log,
-                                 higher.get(f) or []))
+                                 higher.get(f) or [], unclear.get(f) or []))
 
     # ---- best -------------------------------------------------------------------------------
     best = d.get("best")
@@ -326,13 +336,17 @@ def _simple_finding(c, x, y, term, alpha, conf) -> dict:
                           f"({fmt_p(c.get('p_adj'))}, {words})")}
 
 
-def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=()) -> dict:
+def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=(),
+                  unclear=()) -> dict:
     alias_text = ""
     if aliased:
         alias_text = " (aliased with " + _and(":".join(m) for m in aliased) + ")"
     also = ""
     if higher:
         also = f"; its effect also depends on the levels in {_and(higher)}"
+    elif unclear:
+        also = (f"; {_and(unclear)} passes its F test but shows no distinguishable simple "
+                "effect")
     base = {"kind": "main", "terms": [term_label(r)], "factors": [f], "p": r.get("p"),
             "ratio": None, "lower": None, "upper": None}
     label = term_label(r)
@@ -379,7 +393,7 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=
                              f"{_and(higher)}, so its effect differs between their levels"}
     return {**base, "significant": False,
             "statement": f"{label} made no detectable difference ({fmt_p(p)}){alias_text}: "
-                         f"{listing}{against}" if stated else
+                         f"{listing}{against}{also}" if stated else
                          f"{label} made no detectable difference ({fmt_p(p)}){alias_text}"}
 
 
