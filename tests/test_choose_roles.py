@@ -233,3 +233,9 @@ def test_choose_uses_the_scale_the_folders_analysis_recorded(declared_folder):
     (declared_folder / "analysis.json").write_text(json.dumps(
         {"response": "max_rss_kib", "transform": {"name": "none"}}))
     assert choose(declared_folder).scale == "log"
+
+
+def test_a_default_declared_for_a_workload_is_refused_with_the_way_out(tmp_path):
+    df = pd.read_csv(_kernel_csv(tmp_path / "k.csv"), dtype={"opt": str, "arch": str, "n": str})
+    with pytest.raises(UsageError, match=r"'n', which is a workload, not a setting.*--setting n"):
+        choose(df, factors=["opt", "arch", "n"], response="ns_per_item", prefer={"n": "100"})

@@ -305,6 +305,13 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     def as_map(s):
         return dict(zip(names, s))
 
+    for f in prefer:
+        if f in across and f in factors_list:
+            role = role_info.role_of(f) or "condition (--across)"
+            raise UsageError(
+                f"prefer names {f!r}, which is a {role}, not a setting: a default is chosen "
+                f"among settings only; drop it from prefer, or declare it a setting "
+                f"(roles: {{setting: [{f}]}} or --setting {f})")
     default, declared = resolve_prefer(prefer, names, orders)
 
     # Pareto front over several responses (over every setting, before any limit)
