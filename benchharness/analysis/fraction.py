@@ -455,10 +455,14 @@ def recognise(names, levels, codes, experiment=None):
             return d
     if len(codes) != k or len(codes[0]) == 0:
         return None
+    if len(codes[0]) > 1 << 20:
+        return None   # recognising from the cells is for tables of ordinary size
     # bit i of a cell = 1 where factor i sits at its first level (coded -1)
     weights = (1 << np.arange(k, dtype=np.int64))
     minus = np.column_stack([np.asarray(c) == 0 for c in codes]).astype(np.int64)
-    cells = sorted({int(v) for v in np.unique(minus @ weights)})
+    cells = [int(v) for v in np.unique(minus @ weights)]
+    if len(cells) > 1 << 14:
+        return None   # more cells than any fraction we would recognise from a table
     b0 = cells[0]
     pivots: dict[int, int] = {}
     for c in cells[1:]:
