@@ -148,7 +148,8 @@ def headline(found: list[dict]) -> str | None:
             if f.get("aliased"):
                 alias = (f" (or {_and(f['aliased'])}: the fraction cannot tell "
                          f"{f['terms'][0].split(' (')[0]} from {_and(f['aliased'])})")
-            parts.append(f"{names} interact{alias}" + (f" ({per[0]})" if per else ""))
+            short = _interaction_clause(f, found, fr, fi)
+            parts.append(f"{names} interact{alias}" + (f" ({short})" if short else ""))
         elif f["kind"] == "main":
             if f["significant"]:
                 lead = f"{f['terms'][0]} matters"
@@ -175,6 +176,35 @@ def headline(found: list[dict]) -> str | None:
     if untested:
         text = (text + "; " if text else "") + f"{_and(untested)} could not be tested"
     return text[0].upper() + text[1:] + "."
+
+
+def _interaction_clause(inter: dict, found: list[dict], fr, fi, most: int = 4) -> str:
+    """The first factor's effect per level of its partner, for the level whose effect
+    changes most (the full statement lists every level)."""
+    import math as _m
+
+    if len(inter["factors"]) != 2:
+        return ""
+    x, y = inter["factors"]
+    rows = [f for f in found if f["kind"] == "simple effect" and f["terms"] == inter["terms"]
+            and f.get("factor") == x and f.get("ratio")]
+    if not rows:
+        return ""
+    by_level: dict[str, list[dict]] = {}
+    for f in rows:
+        by_level.setdefault(f["level"], []).append(f)
+
+    def spread(fs):
+        logs = [_m.log(f["ratio"]) for f in fs if f["ratio"] > 0]
+        return max(logs) - min(logs) if logs else 0.0
+
+    level, fs = max(by_level.items(), key=lambda kv: spread(kv[1]))
+    fs = sorted(fs, key=lambda f: f["ratio"])
+    if len(fs) > most:
+        fs = [fs[0], fs[-1]]
+    each = "; ".join(f"{fr(f['ratio'])} {fi(f.get('lower'), f.get('upper'))} when "
+                     f"{y}={f['within'][y]}" for f in fs)
+    return f"{x}={level} against {x}={fs[0]['reference']}: {each}"
 
 
 def verdict(data: ReportData) -> dict[str, Any]:
