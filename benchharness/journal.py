@@ -525,17 +525,21 @@ def kill_leftover(folder: Path) -> str | None:
     and the boot match; `benchharness.execute.procs`): an id that passed to
     another process, another experiment's launcher, a record from an older
     version without identities, all are left alone. Raises `ResultsFolderError`
-    when the harness named in the record is still alive (its lock was removed):
-    a folder is never taken from a live owner.
+    when the harness named in the record is alive and still drives the launcher
+    named there (its lock was removed): a folder is never taken from a live owner.
     """
     from benchharness.execute import procs
 
     info = read_inflight(folder)
     if not info or info.get("boot") != _boot_id():
         return None
-    harness = info.get("harness")
-    if (harness and harness != os.getpid()
-            and procs.matches(harness, info.get("hstart"))):
+    harness, launcher = info.get("harness"), info.get("launcher")
+    if (harness and harness != os.getpid() and procs.matches(harness, info.get("hstart"))
+            and procs.matches(launcher, info.get("lstart"))
+            and procs.parent_of(launcher) == harness):
+        # That harness still drives its launcher: it is running this folder (its
+        # lock must have been removed). A harness that merely lives on after its
+        # run ended has closed its launcher and holds nothing.
         raise _busy(folder, f"a live benchharness (pid {harness})")
     # First the dead harness's launcher, if it still lives: it must not start
     # (or journal) anything once this harness reads the journal.

@@ -560,3 +560,25 @@ def test_values_passed_in_shell_variables_are_not_exported(tmp_path):
     assert cmd.startswith("__bhv1=")
     r = subprocess.run(["/bin/sh", "-c", cmd], capture_output=True, text=True, timeout=10)
     assert r.stdout.startswith("[a b; c]") and "__bhv" not in r.stdout
+
+
+def test_resume_refuses_a_folder_whose_harness_still_drives_its_launcher(tmp_path):
+    # A stand-in harness of our own (sh) with a child standing in for its launcher.
+    h = subprocess.Popen(["sh", "-c", "sleep 60 & wait"], start_new_session=True)
+    try:
+        kids = _wait_for(lambda: open(f"/proc/{h.pid}/task/{h.pid}/children").read().split(),
+                         what="the child")
+        child = int(kids[0])
+        hstart, cstart = procs.start_ticks(h.pid), procs.start_ticks(child)
+        rec = dict(run=1, pid=0, pgid=0, start=[0, 0], boot=procs.boot_id(),
+                   harness=h.pid, hstart=hstart, launcher=child, lstart=cstart)
+        _inflight(tmp_path, **rec)
+        with pytest.raises(J.ResultsFolderError, match=f"live benchharness \\(pid {h.pid}\\)"):
+            J.kill_leftover(tmp_path)
+        # a harness that lives on after its run ended (its launcher closed) holds nothing
+        _inflight(tmp_path, **{**rec, "launcher": 0})
+        assert J.kill_leftover(tmp_path) is None
+        assert h.poll() is None and procs.matches(child, cstart)  # nothing was signalled
+    finally:
+        os.killpg(h.pid, signal.SIGKILL)
+        h.wait()

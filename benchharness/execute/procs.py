@@ -191,6 +191,15 @@ def kill_group_checked(pgid: int, lo, hi=None) -> str:
         os.close(fd)
 
 
+def parent_of(pid) -> int | None:
+    """The parent process id of ``pid`` (stat field 4), or None."""
+    try:
+        f = stat_fields(int(pid))
+        return int(f[1]) if f else None
+    except (IndexError, ValueError, TypeError):
+        return None
+
+
 def _is_zombie(pid: int) -> bool:
     f = stat_fields(pid)
     return bool(f) and _state(f) in (b"Z", b"X")
@@ -205,4 +214,4 @@ def cmdline(pid: int) -> bytes:
 
 
 __all__ = ["boot_id", "start_ticks", "identity", "matches", "owner_alive", "kill_checked",
-           "kill_group_checked", "group_members", "cmdline", "stat_fields"]
+           "kill_group_checked", "group_members", "cmdline", "stat_fields", "parent_of"]
