@@ -96,8 +96,8 @@ def test_res4_default_model_finds_and_names_the_active_chain(res4_folder, cli):
     assert eff["threads"]["ratio"] == pytest.approx(0.7, rel=0.1)
     assert {t for t, e in eff.items() if e["active"]} == {"threads", "cache", "threads:batch"}
     # What it says: the chain is an interaction finding, named with its alias; the main
-    # effects found are the planted ones; only cells that ran can be the best; a fraction's
-    # unrun cells are not a caution.
+    # effects found are the planted ones; a best or tied cell that did not run is said to be
+    # a prediction; a fraction's unrun cells are not a caution.
     said = {(f["kind"], f["terms"][0]) for f in a["findings"]
             if f.get("significant") and f["kind"] in ("main", "interaction")}
     assert said == {("interaction", "threads:batch (+ cache:pin)"), ("main", "cache")}
@@ -106,7 +106,10 @@ def test_res4_default_model_finds_and_names_the_active_chain(res4_folder, cli):
     ran = {tuple(c.values()) for c in res4_folder.runs[["threads", "batch", "cache", "pin"]]
            .astype(str).to_dict("records")}
     best = [f for f in a["findings"] if f["kind"] == "best"][0]
-    assert all(tuple(c.values()) in ran for c in best["cells"])
+    unrun = [c for c in best["cells"] if tuple(c[f] for f in ("threads", "batch", "cache", "pin"))
+             not in ran]
+    assert unrun, "the planted truth ties a cell the fraction did not run"
+    assert best["not_run"] == unrun and "not run in this fraction" in best["statement"]
     assert not any(f.get("check") == "missing_cells" for f in a["findings"])
 
 

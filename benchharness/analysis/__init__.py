@@ -521,13 +521,14 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     best = None
     if len(fnames):
         setting = _setting_factors(roles, fnames)
-        run_cells = None
-        if fdesign is not None and fdesign.is_fraction:
-            # A fraction: only cells that ran (their means do not depend on which member
-            # of an alias chain is at work; a cell that did not run would).
-            run_cells = {tuple(int(codes[f][i]) for f in setting) for i in range(N)}
         best = fd.best_cells(fit, names, levels, setting, choice, alpha, better,
-                             prep.response, only=run_cells)
+                             prep.response)
+        if best is not None and fdesign is not None and fdesign.is_fraction:
+            # A fraction: a cell that did not run has a mean predicted from the alias
+            # chains (as if each acts through its first-named member); say so.
+            ran = {tuple(flevels[f][int(codes[f][i])] for f in setting) for i in range(N)}
+            best["not_run"] = [j for j, c in enumerate(best["cells"])
+                               if tuple(c["levels"][fnames[f]] for f in setting) not in ran]
         if best is not None:
             best["averaged_over"] = [f for f in fnames if f not in best["factors"]]
             best["roles_source"] = roles.get("source")

@@ -99,15 +99,14 @@ def _and(items) -> str:
 # the best cell and the tied set (needs the fit)
 
 def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: str,
-               response: str, only=None) -> dict | None:
+               response: str) -> dict | None:
     """Best cell over the factors ``setting_idx`` (others averaged) and its tied set.
 
     Returns plain data: ``cells`` (every estimable cell, best first, with mean,
     estimate and se on the analysis scale), ``tied`` (indices into ``cells``),
     ``runner_up`` (ratio runner-up / best with its interval and whether it is
     distinguishable), ``outside`` (the best cell outside the tied set, same
-    form) and ``critical`` (the quantile ``d``). ``only``: level-index tuples over
-    ``setting_idx`` to consider (a fraction's cells that ran), None for all.
+    form) and ``critical`` (the quantile ``d``).
     """
     import numpy as np
     from scipy import stats
@@ -120,8 +119,6 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     combos, L = margin_rows(fit, tuple(setting_idx))
     est, se, ok = linear_estimates(fit, L)
     keep = np.flatnonzero(ok & np.isfinite(est))
-    if only is not None:
-        keep = np.array([c for c in keep if tuple(int(v) for v in combos[c]) in only], dtype=int)
     if len(keep) == 0:
         return None
     sign = -1.0 if better == "higher" else 1.0      # smaller "badness" is better
@@ -316,7 +313,18 @@ def derive(d: dict) -> list[dict]:
     # ---- best -------------------------------------------------------------------------------
     best = d.get("best")
     if best and best.get("cells"):
-        out.append(_best_finding(best, conf))
+        found = _best_finding(best, conf)
+        # a fraction's cell that did not run: its mean is a prediction (see fraction.py)
+        unrun = [i for i in best.get("not_run") or []
+                 if i in (best.get("tied") or [0]) or i == 0]
+        if unrun:
+            found["not_run"] = [best["cells"][i]["levels"] for i in unrun]
+            found["statement"] += (
+                "; not run in this fraction: " + "; ".join(
+                    cell_text(best["cells"][i]["levels"]) for i in unrun[:TIED_NAMED])
+                + " (a mean predicted from the alias chains, as if each acts through its "
+                  "first-named member: run it to confirm)")
+        out.append(found)
 
     # ---- cautions ---------------------------------------------------------------------------
     out += _cautions(d, alpha)
