@@ -220,8 +220,19 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
     plan = plan or build_plan(exp_for_plan, seed=seed, **plan_kwargs)
     check_controls(exp, plan.runs)
     # Set up in a hidden folder, named only once it can be resumed (journal.start_folder).
-    folder = J.start_folder(Path(base), exp.name, out)
-    lock = J.FolderLock(folder)
+    try:
+        folder = J.start_folder(Path(base), exp.name, out)
+    except OSError as e:
+        if is_disk_full(e):
+            raise _no_room_to_start(base, out) from None
+        raise
+    try:
+        lock = J.FolderLock(folder)
+    except BaseException as e:
+        J.discard_start(folder)
+        if is_disk_full(e):
+            raise _no_room_to_start(base, out) from None
+        raise
     try:
         published = False
         try:
@@ -277,10 +288,7 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
             if not published:
                 J.discard_start(folder)  # nothing was measured in it
             if is_disk_full(e):
-                where = Path(out).absolute().parent if out is not None else Path(base)
-                raise DiskFullError(f"the disk is full: no space left on the device holding "
-                                    f"{where} to set up the results folder; nothing was run. "
-                                    "Free some space and run the command again") from None
+                raise _no_room_to_start(base, out) from None
             raise
         planned = [{"run": r.run, "position": r.position, "block": r.block,
                     "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
@@ -879,6 +887,13 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     outcome.notes.extend(stop_notes)
     outcome.stopped_early = stopped_early
     return outcome
+
+
+def _no_room_to_start(base, out) -> DiskFullError:
+    where = Path(out).absolute().parent if out is not None else Path(base)
+    return DiskFullError(f"the disk is full: no space left on the device holding {where} to set "
+                         "up the results folder; nothing was run. Free some space and run the "
+                         "command again")
 
 
 def disk_full_error(folder: Path, exc: OSError, planned: int | None = None) -> DiskFullError:

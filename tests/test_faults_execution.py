@@ -442,6 +442,23 @@ def test_disk_full_exit_code_and_one_line_from_the_command(tmp_path, monkeypatch
     assert "Traceback" not in err and "internal error" not in err
 
 
+def test_full_disk_before_the_folder_is_set_up(tmp_path, small_disk, cli):
+    filler = small_disk / "filler"
+    fd = os.open(filler, os.O_WRONLY | os.O_CREAT)
+    try:
+        while os.write(fd, b"x" * 4096):
+            pass
+    except OSError as e:
+        assert e.errno == errno.ENOSPC
+    finally:
+        os.close(fd)
+    r = cli("run", _many_runs(tmp_path, 2), "--out", small_disk / "res", "--quiet", cwd=tmp_path)
+    assert r.returncode == DISK_FULL_EXIT, r.stderr
+    assert "the disk is full" in r.stderr and "nothing was run" in r.stderr
+    assert r.stderr.count("\n") == 1 and "Traceback" not in r.stderr
+    assert sorted(os.listdir(small_disk)) == ["filler"]  # nothing half made is left
+
+
 def test_a_journal_write_the_launcher_cannot_make_goes_to_the_harness(tmp_path):
     # /dev/full answers every write with ENOSPC: the launcher writes nothing and hands
     # the run over (written: false), then keeps serving.
@@ -489,6 +506,10 @@ def test_real_full_disk_then_resume_after_space_is_freed(tmp_path, small_disk, c
     assert not (out / "runs.csv.partial").exists()
     kept = J.read_journal(out / "runs.jsonl")
     assert 0 < len(kept) < 1200
+    # resumed while the disk is still full: the same line, nothing lost
+    r = cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
+    assert r.returncode == DISK_FULL_EXIT and "the disk is full" in r.stderr, r.stderr
+    assert len(J.read_journal(out / "runs.jsonl")) >= len(kept)
     subprocess.run(["mount", "-o", "remount,size=16m", str(small_disk)], check=True)
     r = cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
     assert r.returncode == 0, r.stderr
