@@ -652,8 +652,11 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
 
     def on_start_for(run_id):
         def cb(pid, pgid):
-            inflight_pgid[0] = pgid
-            jr.mark_inflight(run_id, pid, pgid)
+            from benchharness.execute.procs import start_ticks
+
+            t = start_ticks(pgid) if pgid and pgid > 1 else None
+            inflight_pgid[0] = (pgid, t) if t is not None else None
+            jr.mark_inflight(run_id, pid, pgid, (t, t) if t is not None else None)
         return cb
 
     # While a run executes, the harness prepares the next run's spec and samples
@@ -812,14 +815,11 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
         jr.clear_inflight()
     except KeyboardInterrupt:
         interrupted = True
-        pg = inflight_pgid[0]
-        if pg:
-            import signal
+        if inflight_pgid[0]:
+            from benchharness.execute.procs import kill_group_checked
 
-            try:
-                os.killpg(pg, signal.SIGKILL)
-            except (ProcessLookupError, PermissionError):
-                pass
+            pg, t = inflight_pgid[0]
+            kill_group_checked(pg, t, t)  # only while it is still the run's group
         jr.clear_inflight()
     except ExecutionError as e:
         # The launcher died (killed, crashed): its run was stopped by the
