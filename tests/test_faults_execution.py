@@ -234,7 +234,7 @@ def _cli_proc(*args, cwd):
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
-def _waiting_experiment(tmp_path, runs=2):
+def _waiting_experiment(tmp_path, runs=2, queued=True):
     """Runs that wait for the file ``go`` (then end ok): a run stays in flight until told."""
     return _exp(tmp_path, f"""\
         experiment: waits
@@ -242,6 +242,7 @@ def _waiting_experiment(tmp_path, runs=2):
         command: while [ ! -e TMP/go ]; do sleep 0.02; done
         replicates: {runs}
         host_check: off
+        {'' if queued else 'pad_env: true'}
         factors:
           k: [a]
         """)
@@ -297,8 +298,9 @@ def test_pid_reuse_forced_then_resume_leaves_the_newcomer(tmp_path, cli):
         newcomer.wait()
 
 
-def test_killing_the_launcher_stops_the_run_and_says_how_to_resume(tmp_path):
-    p = _waiting_experiment(tmp_path)
+@pytest.mark.parametrize("queued", [True, False], ids=["queued", "one-at-a-time"])
+def test_killing_the_launcher_stops_the_run_and_says_how_to_resume(tmp_path, queued):
+    p = _waiting_experiment(tmp_path, queued=queued)
     out = tmp_path / "res"
     h = _cli_proc("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
     try:
