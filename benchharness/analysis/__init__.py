@@ -362,6 +362,15 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         for r in anova_rows:
             if r.get("p") is not None and r.get("test"):
                 anova_p[r["term"]] = r["p"]
+    # Holm over the effect terms of the table: the terms the findings state (an ANOVA of
+    # many terms tests many hypotheses; Cramer et al. 2016, Psychon. Bull. Rev. 23:640)
+    eff_terms = [r["term"] for r in anova_rows
+                 if r.get("kind") == "effect" and r["term"] in anova_p]
+    adj = cmp.adjust_p([anova_p[t] for t in eff_terms], "holm")
+    anova_p_holm = {t: float(a) for t, a in zip(eff_terms, adj)}
+    for r in anova_rows:
+        if r["term"] in anova_p_holm:
+            r["p_holm"] = anova_p_holm[r["term"]]
     from benchharness.analysis.hosts import host_split
 
     hosts = host_split(prep, z, terms, model, ss_type, fit, alpha)
@@ -466,7 +475,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     else:
         tk_idx, pw_idx = factor_idx, factor_idx
         if methods == "default":
-            tk_idx = _tukey_factors(fit, anova_p, alpha, factor_idx)
+            tk_idx = _tukey_factors(fit, anova_p_holm, alpha, factor_idx)
         if lenth_error:
             tk_idx = []   # two levels each: the level ratio is the comparison
         if methods == "default" or "tukey" in methods:
@@ -474,8 +483,9 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         if methods != "default" and "pairwise" in methods:
             comps += cmp.pairwise(fit, names, levels, pw_idx, choice, alpha, adjust, refs)
         if methods == "default" or "simple" in methods:
-            comps += cmp.simple_effects(fit, names, levels, anova_p, choice, alpha, adjust,
-                                        refs)
+            comps += cmp.simple_effects(fit, names, levels,
+                                        anova_p_holm if methods == "default" else anova_p,
+                                        choice, alpha, adjust, refs)
     node = None
     if compare is None:
         compare, node = _declared_from_experiment(prep.experiment)

@@ -230,7 +230,8 @@ def derive(d: dict) -> list[dict]:
     out: list[dict] = []
 
     def sig_row(r):
-        return r.get("p") is not None and r["p"] < alpha
+        p = r.get("p_holm", r.get("p"))
+        return p is not None and p < alpha
 
     # ---- interactions -----------------------------------------------------------------------
     for r in rows:
@@ -266,26 +267,26 @@ def derive(d: dict) -> list[dict]:
             # made: the F test alone)
             agrees = not simple or any(x["significant"] for x in simple)
             if agrees:
-                head = f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {fmt_p(r['p'])})"
+                head = f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {_p_text(r)})"
                 statement = head + (": " + "; and ".join(clauses) if clauses else
                                     ": the effect of each depends on the level of the other")
             else:
-                statement = (f"{term_label(r)}: the F test gives {fmt_p(r['p'])}, but no simple "
+                statement = (f"{term_label(r)}: the F test gives {_p_text(r)}, but no simple "
                              f"effect is distinguishable at {conf} after adjustment ("
                              + "; and ".join(clauses) + ")")
             statement += alias_text
             out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
                         "significant": agrees, "ratio": None, "lower": None, "upper": None,
-                        "p": r["p"], "statement": statement,
+                        "p": r.get("p_holm", r["p"]), "p_raw": r["p"], "statement": statement,
                         "per_level": clauses, "aliased": [":".join(m) for m in aliased]})
             out += simple
         else:
-            statement = (f"{_and(pf)} interact together ({term_label(r)}, {fmt_p(r['p'])})"
+            statement = (f"{_and(pf)} interact together ({term_label(r)}, {_p_text(r)})"
                          f"{alias_text}: the effect of each depends on the levels of the "
                          "others, so read the cell means rather than any single ratio")
             out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
                         "significant": True, "ratio": None, "lower": None, "upper": None,
-                        "p": r["p"], "statement": statement, "per_level": [],
+                        "p": r.get("p_holm", r["p"]), "p_raw": r["p"], "statement": statement, "per_level": [],
                         "aliased": [":".join(m) for m in aliased]})
 
     inside: dict[str, list[str]] = {f: [] for f in factors}   # in a stated two-factor term
@@ -331,6 +332,15 @@ def derive(d: dict) -> list[dict]:
     return out
 
 
+def _p_text(r: dict) -> str:
+    """The p of a term as stated: Holm-adjusted over the table's terms when that differs."""
+    p, ph = r.get("p"), r.get("p_holm")
+    if ph is None or p is None or abs(ph - p) <= 1e-12 * max(p, 1e-300):
+        return fmt_p(p)
+    alone = fmt_p(p).replace("p = ", "").replace("p < ", "< ")
+    return f"{fmt_p(ph)} Holm-adjusted over the terms, {alone} alone"
+
+
 def _simple_finding(c, x, y, term, alpha, conf) -> dict:
     lo, hi = c.get("lower"), c.get("upper")
     agrees = lo is not None and hi is not None and (lo > 1 or hi < 1)
@@ -355,10 +365,11 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=
     elif unclear:
         also = (f"; {_and(unclear)} passes its F test but shows no distinguishable simple "
                 "effect")
-    base = {"kind": "main", "terms": [term_label(r)], "factors": [f], "p": r.get("p"),
-            "ratio": None, "lower": None, "upper": None}
+    p = r.get("p_holm", r.get("p"))
+    base = {"kind": "main", "terms": [term_label(r)], "factors": [f], "p": p,
+            "p_raw": r.get("p"), "ratio": None, "lower": None, "upper": None}
     label = term_label(r)
-    p = r.get("p")
+    ptext = _p_text(r)
     if p is None:
         return {**base, "significant": None, "untested": True,
                 "statement": f"{label} could not be tested (no error estimate){alias_text}"}
@@ -388,21 +399,21 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=
         all_tk = [c for c in comps if c.get("method") == "tukey" and c.get("factor") == f]
         if any(excl(c) for c in (all_tk or stated)):
             return {**base, "significant": True,
-                    "statement": f"{label} matters ({fmt_p(p)}){alias_text}: "
+                    "statement": f"{label} matters ({ptext}){alias_text}: "
                                  f"{listing}{against}{also}"}
         return {**base, "significant": False,
-                "statement": f"{label}: the F test gives {fmt_p(p)}{alias_text}, but no two "
+                "statement": f"{label}: the F test gives {ptext}{alias_text}, but no two "
                              f"of its levels are distinguishable at {conf} after adjustment "
                              f"({listing}{against}){also}"}
     if higher:
         return {**base, "significant": None,
                 "statement": f"{label}: no detectable effect on average over the other "
-                             f"factors ({fmt_p(p)}){alias_text}, but it takes part in "
+                             f"factors ({ptext}){alias_text}, but it takes part in "
                              f"{_and(higher)}, so its effect differs between their levels"}
     return {**base, "significant": False,
-            "statement": f"{label} made no detectable difference ({fmt_p(p)}){alias_text}: "
+            "statement": f"{label} made no detectable difference ({ptext}){alias_text}: "
                          f"{listing}{against}{also}" if stated else
-                         f"{label} made no detectable difference ({fmt_p(p)}){alias_text}"}
+                         f"{label} made no detectable difference ({ptext}){alias_text}"}
 
 
 def _best_finding(best: dict, conf: str) -> dict:
@@ -418,13 +429,15 @@ def _best_finding(best: dict, conf: str) -> dict:
             "best": top["levels"], "mean": top["mean"], "ratio": None, "lower": None,
             "upper": None, "p": None}
     over = best.get("averaged_over") or []
-    avg = (f", averaged over {_and(over)}" + (" (roles guessed from the names; declare them "
-                                             "in roles:)" if best.get("roles_source") ==
-                                             "guessed" else "")) if over else ""
-    where = f"{cell_text(top['levels'])} ({fmt_value(top['mean'], resp)}{avg})"
+    where = f"{cell_text(top['levels'])} ({fmt_value(top['mean'], resp)})"
     what = "time" if resp.endswith("_s") else "value"
     if len(cells) == 1:
         return {**base, "statement": f"Only one cell could be estimated: {where}"}
+    tail = ""
+    if over:
+        guessed = " (taken as workloads or environments from their names; a roles: section " \
+                  "says otherwise)" if best.get("roles_source") == "guessed" else ""
+        tail = f"; settings compared averaged over {_and(over)}{guessed}"
 
     def ru_text(x, who):
         c = cells[x["cell"]]
@@ -438,16 +451,16 @@ def _best_finding(best: dict, conf: str) -> dict:
         text = f"Best measured: {where}; no test of ties was possible (no error estimate)"
         if ru is not None:
             text += f"; runner-up {cell_text(cells[ru['cell']]['levels'])} at {fmt_ratio(ru['ratio'])}"
-        return {**base, "statement": text}
+        return {**base, "statement": text + tail}
     if len(tied) == 1:
         base["significant"] = True
         return {**base, "statement": f"Best: {where}, ahead of every other cell at {conf}; "
-                                     + ru_text(ru, "the runner-up") + f" ({worse})"}
+                                     + ru_text(ru, "the runner-up") + f" ({worse})" + tail}
     if len(tied) == len(cells):
         base["significant"] = False
         return {**base, "statement": f"No cell is distinguishable from the best: all "
                                      f"{len(cells)} are tied at {conf}; best measured {where}; "
-                                     + ru_text(ru, "runner-up")}
+                                     + ru_text(ru, "runner-up") + tail}
     named = "; ".join(cell_text(cells[i]["levels"]) for i in tied[:TIED_NAMED])
     more = f" and {len(tied) - TIED_NAMED} more" if len(tied) > TIED_NAMED else ""
     text = (f"Tied for best at {conf} ({len(tied)} of {len(cells)} cells): {named}{more}; "
@@ -458,7 +471,7 @@ def _best_finding(best: dict, conf: str) -> dict:
                            "ratio": best["outside"]["ratio"],
                            "lower": best["outside"]["lower"],
                            "upper": best["outside"]["upper"]}
-    return {**base, "significant": True, "statement": text}
+    return {**base, "significant": True, "statement": text + tail}
 
 
 def _cautions(d: dict, alpha: float) -> list[dict]:

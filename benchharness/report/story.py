@@ -37,11 +37,14 @@ def cell_label(levels: dict, factors) -> str:
 
 
 def anova_rows(data: ReportData) -> list[dict]:
-    """ANOVA rows with a 'significant' flag, in analysis order."""
+    """ANOVA rows with a 'significant' flag, in analysis order.
+
+    Significant: below α after Holm's adjustment over the table's terms (``p_holm``,
+    the terms the findings state), or the p itself in an analysis without it."""
     rows = []
     for r in data.analysis.get("anova") or []:
         row = dict(r)
-        p = row.get("p")
+        p = row.get("p_holm", row.get("p"))
         row["significant"] = bool(finite(p) and float(p) < data.alpha
                                   and row.get("term") != "Residual")
         rows.append(row)
