@@ -27,7 +27,11 @@ def plantgrowth():
 
 
 def _brute_force_profile(z_of_lam, y, X, grid):
-    """Box-Cox profile log-likelihood by statsmodels OLS at every λ of a grid."""
+    """Box-Cox profile log-likelihood by statsmodels OLS at every λ of a grid.
+
+    With the residual degrees of freedom ν (statsmodels' ``df_resid``) in place of N:
+    −(ν/2)·log(RSS(z_λ)/ν), z_λ the normalised transform (Box & Cox 1964, §4).
+    """
     import statsmodels.api as sm
 
     gm = math.exp(np.mean(np.log(y)))
@@ -37,8 +41,8 @@ def _brute_force_profile(z_of_lam, y, X, grid):
             z = gm * np.log(y)
         else:
             z = (y**lam - 1) / (lam * gm ** (lam - 1))
-        rss = sm.OLS(z, X).fit().ssr
-        ll.append(-0.5 * len(y) * math.log(rss / len(y)))
+        fit = sm.OLS(z, X).fit()
+        ll.append(-0.5 * fit.df_resid * math.log(fit.ssr / fit.df_resid))
     return np.array(ll)
 
 
@@ -59,8 +63,25 @@ def test_boxcox_lambda_matches_brute_force_statsmodels_grid():
     lo, hi = an.transform["lambda_ci"]
     assert lo == pytest.approx(inside.min(), abs=0.006)
     assert hi == pytest.approx(inside.max(), abs=0.006)
-    # the interval holds 1 but not 0: no transform, by the documented rule
+    # Tooth length is ratio-scaled, so the log scale is the default; here λ = 0 lies outside
+    # the 99% interval too, and on the log scale the cell variances differ significantly by more
+    # than 10× (Brown-Forsythe), so `auto` leaves log for λ = 1, inside the 95% interval, and
+    # says why.
+    lo99, hi99 = an.transform["lambda_ci99"]
+    assert 0 < lo99 < lo and hi < hi99
     assert an.transform["name"] == "none" and an.transform["lambda"] == 1.0
+    assert an.transform["reason"].startswith("the original scale instead of the log scale: "
+                                             "λ = 0 lies outside the 99% interval")
+    assert "on the log scale the cell variances differ a lot" in an.transform["reason"]
+    assert "not consistent with the log scale" in an.transform["evidence"]
+    # the same data on the log scale, checked by scipy: Brown-Forsythe is levene(center="median")
+    from scipy import stats
+
+    groups = [np.log(g["len"].to_numpy(float)) for _, g in d.groupby(["supp", "dose"])]
+    assert stats.levene(*groups, center="median").pvalue < 0.05
+    forced = analyze(d, response="len", factors=["supp", "dose"], transform="log")
+    assert forced.diagnostics["equal_variance"]["level"] == "fail"
+    assert forced.transform["summary"].startswith("Analysed on the log scale, as requested")
 
 
 def test_boxcox_with_block_model_matches_brute_force():
@@ -89,28 +110,83 @@ def test_transform_rule_cases():
     from benchharness.analysis.transform import Profile, choose
     from benchharness.errors import DataError
 
-    def prof(lh, lo, hi):
-        return Profile(lh, (lo, hi), (False, False), (), (), 0.0)
+    def prof(lh, lo, hi, lo99=None, hi99=None):
+        ci99 = (lo - 0.1 if lo99 is None else lo99, hi + 0.1 if hi99 is None else hi99)
+        return Profile(lh, (lo, hi), (False, False), (), (), 0.0, ci99, 20.0)
 
-    assert choose("auto", prof(0.4, -0.1, 1.2), True).name == "log"        # holds 0 and 1
-    assert choose("auto", prof(0.2, -0.1, 0.6), True).name == "log"        # holds 0
-    c = choose("auto", prof(0.8, 0.4, 1.3), True)
-    assert (c.name, c.lam) == ("none", 1.0)                                 # 1, not 0
-    c = choose("auto", prof(0.45, 0.3, 0.7), True)
+    def never():
+        raise AssertionError("the log-scale checks are needed only when λ = 0 is outside 99%")
+
+    def fails():
+        return "the residuals are clearly not normal (skewness +1.40, p 0.0001)"
+
+    # a positive, ratio-scaled response stays on the log scale...
+    assert choose("auto", prof(0.4, -0.1, 1.2), True, log_check=never).name == "log"
+    c = choose("auto", prof(0.8, 0.4, 1.3, -0.05, 1.5), True, log_check=never)  # 0 in 99%
+    assert c.name == "log" and c.reason.startswith("the log scale, the default")
+    c = choose("auto", prof(0.8, 0.4, 1.3, 0.2, 1.5), True, log_check=lambda: None)
+    assert c.name == "log" and "log is kept" in c.reason                 # strong, checks pass
+    # ...and leaves it only on strong evidence *and* failing checks, then says why
+    c = choose("auto", prof(0.8, 0.4, 1.3, 0.2, 1.5), True, log_check=fails)
+    assert (c.name, c.lam) == ("none", 1.0)                                 # 1 is inside
+    assert c.reason == ("the original scale instead of the log scale: λ = 0 lies outside the 99% "
+                        "interval for λ (0.20 to 1.50, λ̂ = 0.80) and on the log scale " + fails())
+    c = choose("auto", prof(0.45, 0.3, 0.7), True, log_check=fails)
     assert (c.name, c.lam) == ("boxcox", 0.5)                               # multiple of 0.5
-    c = choose("auto", prof(-0.83, -0.9, -0.7), True)
+    c = choose("auto", prof(-0.83, -0.9, -0.7), True, log_check=fails)
     assert (c.name, c.lam) == ("boxcox", -0.8)                              # rounded to 0.1
-    c = choose("auto", prof(-1.1, -1.3, -0.95), True)
+    c = choose("auto", prof(-1.1, -1.3, -0.95), True, log_check=fails)
     assert (c.name, c.lam) == ("boxcox", -1.0)
     # λ̂ rounds to 1.5, which is outside; 2.0 is the multiple of 0.5 nearest λ̂ inside
-    c = choose("auto", prof(1.7, 1.6, 2.1), True)
+    c = choose("auto", prof(1.7, 1.6, 2.1), True, log_check=fails)
     assert (c.name, c.lam) == ("boxcox", 2.0)
-    c = choose("auto", prof(-0.3, -0.6, -0.05), True)                       # -0.5 inside
+    c = choose("auto", prof(-0.3, -0.6, -0.05, -0.7, -0.01), True, log_check=fails)
     assert (c.name, c.lam) == ("boxcox", -0.5)
-    assert "multiple of 0.5" in c.reason and "λ̂ = -0.30" in c.reason
+    assert "λ̂ = −0.30" in c.reason and c.reason.startswith("a Box-Cox scale (λ = -0.5)")
+    # a unit that is a difference stays on the original scale
+    c = choose("auto", prof(0.1, -0.2, 0.4), True, ratio=(False, "its unit '°C' is a difference"))
+    assert c.name == "none" and "°C" in c.reason
+    # requests are obeyed and said
+    assert choose("log", prof(0.9, 0.6, 1.2), True).reason.startswith("the log scale, as requested")
+    assert choose("none", None, True).name == "none"
+    assert choose("boxcox", prof(0.33, 0.1, 0.6), True).lam == 0.33
     with pytest.raises(DataError):
         choose("log", None, False)
     assert choose("auto", None, False).name == "none"
+    assert choose("auto", None, True, "no residual degrees of freedom").name == "log"
+
+
+def test_ratio_scaled_units():
+    from benchharness.analysis.transform import ratio_scaled
+
+    for unit in (None, "", "s", "ms", "KiB", "req/s", "ratio", "logins/s", "bytes"):
+        assert ratio_scaled(unit)[0], unit
+    for unit in ("°C", "degC", "delta ms", "ms difference", "dB", "change in s", "z", "score"):
+        assert not ratio_scaled(unit)[0], unit
+
+
+def test_profile_matches_scipy_boxcox_llf_and_interval():
+    # source: scipy.stats.boxcox_llf and scipy.stats.boxcox(alpha=...) for one sample (the
+    # intercept-only model, ν = N - 1). Our profile is (ν/N)·llf(λ) + const, so λ̂ is scipy's
+    # and the 95% interval is scipy's likelihood interval at the level whose χ²₁ quantile is
+    # (N/ν)·χ²₁(0.95).
+    from scipy import stats
+
+    from benchharness.analysis.transform import BoxCoxProfile
+
+    y = np.random.default_rng(3).lognormal(1.0, 0.4, 15) + 0.3
+    N = len(y)
+    prof = BoxCoxProfile(y, np.zeros(N, dtype=np.intp), np.array([float(N)]), None, df=N - 1)
+    for lam in (-1.0, 0.0, 0.5, 1.5):
+        diff = prof.loglik(lam) - (N - 1) / N * stats.boxcox_llf(lam, y)
+        diff0 = prof.loglik(1.0) - (N - 1) / N * stats.boxcox_llf(1.0, y)
+        assert diff == pytest.approx(diff0, abs=1e-9)
+    p = prof.profile()
+    level = stats.chi2.sf(N / (N - 1) * stats.chi2.ppf(0.95, 1), 1)
+    _, lam_scipy, (lo, hi) = stats.boxcox(y, alpha=level)
+    assert p.lam_hat == pytest.approx(lam_scipy, abs=2e-3)
+    assert p.ci[0] == pytest.approx(lo, abs=2e-3) and p.ci[1] == pytest.approx(hi, abs=2e-3)
+    assert p.df == N - 1
 
 
 def test_log_needs_positive_responses():

@@ -177,10 +177,13 @@ def test_boxcox_profile_matches_brute_force_statsmodels(folder):
     y = ok["wall_s"].to_numpy(dtype=float)
     cells = pd.get_dummies(ok["nap"].astype(str) + "|" + ok["scale"].astype(str)).to_numpy(float)
     prof = d.profile
+    gm = float(np.exp(np.log(y).mean()))
     for lam in (-1.0, 0.0, 0.5, 1.0):
-        z = np.log(y) if lam == 0 else (y ** lam - 1) / lam
-        rss = float(sm.OLS(z, cells).fit().ssr)
-        ref = -len(y) / 2 * np.log(rss / len(y)) + (lam - 1) * np.log(y).sum()
+        # normalised transform, residual degrees of freedom ν from statsmodels (Box & Cox
+        # 1964, §4): -(ν/2) log(RSS/ν)
+        z = gm * np.log(y) if lam == 0 else (y ** lam - 1) / (lam * gm ** (lam - 1))
+        fit = sm.OLS(z, cells).fit()
+        ref = -fit.df_resid / 2 * np.log(fit.ssr / fit.df_resid)
         mine = float(np.interp(lam, prof["lambda"], prof["loglik"]))
         assert mine == pytest.approx(ref, abs=0.05)
     peak = float(prof["lambda"][prof["loglik"].idxmax()])

@@ -294,7 +294,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     positive = bool(np.all(y > 0))
     profile = None
     why = ""
-    if transform in ("auto", "boxcox") and positive:
+    if positive:  # the Box-Cox profile is evidence on every scale (transform.py)
         X, _ = design(cells.levels, terms, sizes)
         B = _basis(X * np.sqrt(n_cells)[:, None])
         df_res = N - B.shape[1]
@@ -304,18 +304,13 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
             why = "all responses are equal"
         else:
             prof = tr.BoxCoxProfile(y, cells.row_cell, n_cells,
-                                    None if B.shape[1] >= cells.count else B)
+                                    None if B.shape[1] >= cells.count else B, df=df_res)
             profile = prof.profile(alpha=0.05)
-    choice = tr.choose(transform, profile, positive, why)
-    tdict = {"name": choice.name, "lambda": choice.lam,
-             "lambda_hat": profile.lam_hat if profile else None,
-             "lambda_ci": list(profile.ci) if profile else None,
-             "lambda_ci_open": list(profile.ci_open) if profile else None,
-             "reason": choice.reason,
-             "ratios": "exact (log scale)" if choice.name == "log" else
-                       "approximate (delta method on back-transformed means)",
-             "profile": ({"lambda": list(profile.grid), "loglik": list(profile.loglik)}
-                         if profile else None)}
+    unit = tr.unit_of_response(prep.response, prep.experiment)
+    choice = tr.choose(transform, profile, positive, why, tr.ratio_scaled(unit),
+                       log_check=lambda: dg.scale_check(np.log(y), cells, fcells, terms,
+                                                        ss_type, alpha))
+    tdict = tr.describe(choice, profile, transform, unit)
 
     # ---- model -----------------------------------------------------------------------------
     z = tr.forward(y, choice)
@@ -447,10 +442,11 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     art_result = None
     run_art = (art is True) or (art == "auto" and not assumptions_ok and N <= ART_AUTO_MAX_ROWS)
     if run_art and df_res > 0:
-        rows = _run_art(codes[: len(fnames)], sizes[: len(fnames)], fnames, y, terms, ss_type, alpha,
-                      anova_p)
+        rows = _run_art(codes, sizes, names, z, terms, ss_type, alpha, anova_p,
+                        fit.fitted[cells.row_cell])
         art_result = {"reason": "requested" if art is True else
-                      "assumptions fail after the transform", "terms": rows}
+                      "assumptions fail on the analysis scale", "scale": choice.name,
+                      "terms": rows}
         disagree = [r["term"] for r in rows if r["agrees"] is False]
         if disagree:
             notes.append("the rank-based cross-check disagrees for " + ", ".join(disagree)
@@ -630,10 +626,10 @@ def _load_check(resid, load, alpha):
             "ok": out.get("verdict") != "related"}
 
 
-def _run_art(codes, sizes, names, y, terms, ss_type, alpha, anova_p):
+def _run_art(codes, sizes, names, z, terms, ss_type, alpha, anova_p, fitted):
     from benchharness.analysis.art import art_anova
 
-    return art_anova(codes, sizes, names, y, terms, ss_type, alpha, anova_p)
+    return art_anova(codes, sizes, names, z, terms, ss_type, alpha, anova_p, fitted)
 
 
 def _missing_cells(fcells, sizes, names, levels):

@@ -17,10 +17,16 @@ Owns, on the analysis scale:
   and the Wald-Wolfowitz runs test of residual signs (Wald & Wolfowitz 1940);
 * cells with fewer than two runs or zero spread.
 
-With many residuals every test rejects, so each verdict also weighs the size
-of the departure (skewness and excess kurtosis, largest/smallest cell variance,
-drift in % per 100 runs). The thresholds are common practice, stated in
-docs/analysis.md.
+With many residuals every test rejects, and with few it rejects nothing, so
+each verdict also weighs the size of the departure (skewness and excess
+kurtosis, largest/smallest cell variance, drift in % per 100 runs). Each check
+carries ``level``: ``ok`` (green), ``caution`` (a large departure the test
+could not confirm, or a clustering of residual signs) or ``fail`` (the test
+rejects and the departure is not small); ``ok`` is true only for ``ok``. A
+departure above the "large" threshold — |skewness| above 1, largest/smallest
+cell variance above 10×, drift above 5% per 100 runs — is never ``ok``,
+whatever the p-value, and its verdict states the size. The thresholds are
+common practice, stated in docs/analysis.md.
 """
 
 from __future__ import annotations
@@ -36,6 +42,10 @@ SKEW_MILD, KURT_MILD = 0.5, 1.0
 VAR_RATIO_MILD = 3.0
 #: drift smaller than 1 % per 100 runs is treated as negligible.
 DRIFT_MILD_PCT = 1.0
+#: common practice: beyond these sizes a departure matters whatever a test's p-value says
+#: (|skewness| above 1 is "highly skewed"; a variance ratio above 10 upsets F tests and
+#: intervals of unbalanced comparisons; our threshold for drift).
+SKEW_LARGE, VAR_RATIO_LARGE, DRIFT_LARGE_PCT = 1.0, 10.0, 5.0
 #: our threshold: fewer than 80 % of the expected runs of residual signs is a clear clustering.
 RUNS_MILD_SHARE = 0.8
 
@@ -92,17 +102,26 @@ def normality(r: np.ndarray, alpha: float) -> dict:
         test, p = "anderson-darling", anderson_darling_p(stat, n)
     size = f"skewness {skew:+.2f}, excess kurtosis {kurt:+.2f}"
     mild = abs(skew) < SKEW_MILD and abs(kurt) < KURT_MILD
-    if p >= alpha:
-        verdict, ok = f"consistent with a normal distribution ({size})", True
+    large = abs(skew) > SKEW_LARGE
+    if p >= alpha and large:
+        level = "caution"
+        verdict = (f"residuals are strongly skewed (skewness {skew:+.2f}, beyond ±{SKEW_LARGE:g}; "
+                   f"excess kurtosis {kurt:+.2f}), although the test does not reject with "
+                   f"{n} residuals; another transform may suit, and the rank-based "
+                   "cross-check is the safer guide")
+    elif p >= alpha:
+        level, verdict = "ok", f"consistent with a normal distribution ({size})"
     elif mild:
-        verdict, ok = (f"a departure from normal is detectable but small ({size}); "
-                       "the F tests are robust to this"), True
+        level, verdict = "ok", (f"a departure from normal is detectable but small ({size}); "
+                                "the F tests are robust to this")
     else:
-        verdict, ok = (f"residuals are clearly not normal ({size}); look at the outliers, try "
-                       "another transform, and trust the rank-based cross-check where it "
-                       "disagrees"), False
+        level = "fail"
+        verdict = (f"residuals are clearly not normal ({size}); look at the outliers, try "
+                   "another transform, and trust the rank-based cross-check where it "
+                   "disagrees")
     return {"test": test, "statistic": stat, "p": p, "n": n, "skewness": skew,
-            "excess_kurtosis": kurt, "verdict": verdict, "ok": ok}
+            "excess_kurtosis": kurt, "size": _size(abs(skew), SKEW_MILD, SKEW_LARGE),
+            "verdict": verdict, "level": level, "ok": level == "ok"}
 
 
 def group_medians(row_group: np.ndarray, values: np.ndarray, count: int) -> np.ndarray:
@@ -147,34 +166,51 @@ def brown_forsythe(row_group, values, count, alpha: float) -> dict:
     dev = z - zbar_g[rg]
     within = float(dev @ dev)
     df1, df2 = g - 1, N - g
-    if within <= 0 or df2 <= 0:
-        why = ("with two runs per cell both deviations from the median are equal, so the "
-               "test is degenerate" if n[use_g].max() <= 2 else "no spread within cells")
-        return {"test": "brown-forsythe", "statistic": None, "p": None,
-                "verdict": f"{why}; not tested", "ok": True}
-    F = (between / df1) / (within / df2)
-    p = float(stats.f.sf(F, df1, df2))
-    # size of the departure: ratio of largest to smallest cell variance
+    # size of the departure: ratio of largest to smallest cell variance (cells with spread;
+    # cells without any are listed by `small_cells`)
     s1 = np.bincount(row_group, weights=values, minlength=count)
     s2 = np.bincount(row_group, weights=values * values, minlength=count)
     var = np.divide(s2 - s1 * s1 / np.maximum(n, 1), n - 1, out=np.full(count, np.nan),
                     where=use_g)
     var = var[use_g]
-    ratio = float(var.max() / var.min()) if var.min() > 0 else float("inf")
+    var = var[var > 0]
+    ratio = float(var.max() / var.min()) if len(var) >= 2 else float("nan")
     size = f"the largest cell variance is {ratio:.3g}× the smallest"
-    if p >= alpha and ratio < VAR_RATIO_MILD:
-        verdict, ok = f"cell variances are consistent with being equal ({size})", True
+    runs = int(np.median(n[use_g]))
+    if within <= 0 or df2 <= 0:
+        why = ("with two runs per cell both deviations from the median are equal, so the "
+               "test is degenerate" if n[use_g].max() <= 2 else "no spread within cells")
+        if ratio > VAR_RATIO_LARGE:
+            return {"test": "brown-forsythe", "statistic": None, "p": None,
+                    "variance_ratio": ratio, "size": "large", "level": "caution", "ok": False,
+                    "verdict": f"{size}, beyond {VAR_RATIO_LARGE:g}×; {why}, so not tested; "
+                               "comparisons between the noisiest cells deserve caution"}
+        return {"test": "brown-forsythe", "statistic": None, "p": None,
+                "variance_ratio": ratio if math.isfinite(ratio) else None,
+                "verdict": f"{why}; not tested", "level": "ok", "ok": True}
+    F = (between / df1) / (within / df2)
+    p = float(stats.f.sf(F, df1, df2))
+    if p >= alpha and ratio > VAR_RATIO_LARGE:
+        level = "caution"
+        verdict = (f"{size}, beyond {VAR_RATIO_LARGE:g}×; the test does not confirm unequal "
+                   f"variances (with about {runs} runs per cell it has little power, and such "
+                   "spreads also arise by chance), so comparisons between the noisiest cells "
+                   "deserve caution")
+    elif p >= alpha and ratio < VAR_RATIO_MILD:
+        level, verdict = "ok", f"cell variances are consistent with being equal ({size})"
     elif p >= alpha:
-        verdict, ok = (f"no clear evidence of unequal variances, though {size}; with few "
-                       "runs per cell the test has little power"), True
+        level, verdict = "ok", (f"no clear evidence of unequal variances, though {size}; with "
+                                "few runs per cell the test has little power")
     elif ratio < VAR_RATIO_MILD:
-        verdict, ok = (f"unequal variances are detectable but small ({size}); "
-                       "the F tests are robust to this"), True
+        level, verdict = "ok", (f"unequal variances are detectable but small ({size}); "
+                                "the F tests are robust to this")
     else:
-        verdict, ok = (f"cell variances differ a lot ({size}); a transform may even them out, "
-                       "and comparisons between the noisiest cells deserve caution"), False
+        level = "fail"
+        verdict = (f"cell variances differ a lot ({size}); a transform may even them out, "
+                   "and comparisons between the noisiest cells deserve caution")
     return {"test": "brown-forsythe", "statistic": float(F), "p": p, "df": [df1, df2],
-            "variance_ratio": ratio, "verdict": verdict, "ok": ok}
+            "variance_ratio": ratio, "size": _size(ratio, VAR_RATIO_MILD, VAR_RATIO_LARGE),
+            "verdict": verdict, "level": level, "ok": level == "ok"}
 
 
 def outliers(r, leverage_rows, rss, df_resid, run_ids, alpha: float, limit: int = 50) -> dict:
@@ -253,13 +289,18 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
     per100 = slope * 100.0
     pct = per100 * pct_per_unit
     size = f"{pct:+.2f}% per 100 runs"
-    ok = True
-    if p >= alpha:
+    level = "ok"
+    if p >= alpha and abs(pct) > DRIFT_LARGE_PCT:
+        level = "caution"
+        verdict = (f"the response moves {size} over the run order, beyond ±{DRIFT_LARGE_PCT:g}%, "
+                   f"although the slope is not significant (p {p:.2g}); check for warm-up, "
+                   "throttling or background load before trusting small effects")
+    elif p >= alpha:
         verdict = f"no clear drift over the run order (slope {size}, not significant)"
     elif abs(pct) < DRIFT_MILD_PCT:
         verdict = f"a trend over the run order is detectable but small ({size})"
     else:
-        ok = False
+        level = "fail"
         verdict = (f"timings drift over the run order ({size}); the machine may be warming up or "
                    "throttling: add warm-up runs, use blocks, or check for background load")
     runs_info = {"runs": nruns, "z": z, "p": p_runs}
@@ -271,13 +312,50 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
         verdict += (f"; residual signs cluster in time ({nruns} runs of signs where about "
                     f"{expected:.0f} are expected; runs test p {p_runs:.2g}), so neighbouring "
                     "runs are not independent and intervals may be too narrow")
-        if share < RUNS_MILD_SHARE:
-            ok = False
+        if share < RUNS_MILD_SHARE and level == "ok":
+            level = "caution"
     elif p_runs is not None and p_runs < alpha:
         verdict += ("; residual signs alternate more often than chance (runs test p "
                     f"{p_runs:.2g})")
     return {"slope_per_100_runs": per100, "percent_per_100_runs": pct, "p": p,
-            "runs_test": runs_info, "verdict": verdict, "ok": ok}
+            "runs_test": runs_info, "size": _size(abs(pct), DRIFT_MILD_PCT, DRIFT_LARGE_PCT),
+            "verdict": verdict, "level": level, "ok": level == "ok"}
+
+
+def _size(x: float, mild: float, large: float) -> str:
+    """small | moderate | large by the thresholds of a check."""
+    if not math.isfinite(x):
+        return "large"
+    return "small" if x < mild else "large" if x > large else "moderate"
+
+
+def scale_check(z, cells, fcells, terms, ss_type: int, alpha: float) -> str | None:
+    """Do the residuals of the model on the scale ``z`` fail a check? None, or which and how.
+
+    Used by the scale rule: ``auto`` may leave the log scale only when these
+    checks *fail* there (the test rejects and the departure is not small), not
+    on a caution alone.
+    """
+    from benchharness.analysis.cells import moments
+    from benchharness.analysis.model import fit_model
+
+    mom = moments(cells.row_cell, z, cells.count)
+    fit = fit_model(cells, mom, terms, ss_type)
+    if fit.df_resid <= 0:
+        return None
+    resid = z - fit.fitted[cells.row_cell]
+    scale = np.sqrt(np.clip(1.0 - fit.leverage[cells.row_cell], 0.0, None))
+    use = scale > 1e-8
+    failing = []
+    nm = normality(resid[use] / scale[use], alpha)
+    if nm.get("level") == "fail":
+        failing.append(f"the residuals are clearly not normal (skewness {nm['skewness']:+.2f}, "
+                       f"p {nm['p']:.2g})")
+    ev = brown_forsythe(fcells.row_cell, resid, fcells.count, alpha)
+    if ev.get("level") == "fail":
+        failing.append(f"the cell variances differ a lot ({ev['variance_ratio']:.3g}× between "
+                       f"largest and smallest, p {ev['p']:.2g})")
+    return " and ".join(failing) or None
 
 
 def small_cells(n, ss_within, labels_of_cell) -> list[dict]:

@@ -58,7 +58,7 @@ def format_analysis(a) -> str:
     lines.append(f"Analysis of {d['response']} — {c['rows']} runs in {c['cells']} cells"
                  + (f", blocks: {d['block']}" if d["block"] else "")
                  + f"; {scale}; Type {d['model']['ss_type']} sums of squares")
-    lines.append(f"Scale: {t['reason']}")
+    lines.append(f"Scale: {t.get('summary') or t['reason']}")
     lines.append("")
     found = d.get("findings") or []
     if found:

@@ -26,7 +26,9 @@ def add_parser(sub) -> None:
                         "host when it has more than one value)")
     g.add_argument("--no-block", action="store_true", help="fit no block term")
     p.add_argument("--transform", choices=["auto", "none", "log", "boxcox"], default="auto",
-                   help="analysis scale (default auto: chosen from the Box-Cox interval)")
+                   help="analysis scale (default auto: the log scale for positive, ratio-scaled "
+                        "responses such as times, unless the Box-Cox profile and the "
+                        "diagnostics both argue strongly against it)")
     p.add_argument("--plain", action="store_true",
                    help="plain text layout instead of tables")
     p.add_argument("--model", default=None, metavar="full|main|N",
@@ -50,8 +52,12 @@ def add_parser(sub) -> None:
     p.add_argument("--better", choices=["lower", "higher"], default=None,
                    help="which direction of the response is better (default: the metric's "
                         "declaration in a results folder, else lower)")
-    p.add_argument("--art", action="store_true",
-                   help="always run the rank-based cross-check (aligned rank transform)")
+    x = p.add_mutually_exclusive_group()
+    x.add_argument("--art", action="store_true",
+                   help="always run the rank-based cross-check (aligned rank transform on the "
+                        "analysis scale; by default it runs when the assumptions look doubtful)")
+    x.add_argument("--no-cross-check", action="store_true",
+                   help="never run the rank-based cross-check (for very large tables)")
     p.add_argument("--json", metavar="FILE", default=None,
                    help="also write the analysis as JSON to FILE ('-' for stdout only)")
     p.set_defaults(func=main)
@@ -83,7 +89,8 @@ def main(args) -> int:
     an = analyze(args.source, response=args.response, factors=factors, block=block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=args.alpha, reference=args.reference, adjust=args.adjust,
-                 art=True if args.art else "auto", better=args.better,
+                 art=True if args.art else False if args.no_cross_check else "auto",
+                 better=args.better,
                  comparisons=(True if args.comparisons is None else
                               "all" if args.comparisons.strip() == "all" else
                               [m.strip() for m in args.comparisons.split(",") if m.strip()]))

@@ -173,8 +173,7 @@ def boxcox_profile(runs, analysis: dict, factors: list[str], block: str | None =
     # up to a constant in λ (Box & Cox 1964, the normalised transform).
     gm = float(np.exp(logy.mean()))
     ys = y / gm
-    n = len(y)
-    sum_log = float(logy.sum())
+    nu = float(tr.get("profile_df") or len(y))
     out = []
     for lam in grid:
         z = np.log(ys) if abs(lam) < 1e-12 else (np.power(ys, lam) - 1.0) / lam
@@ -182,7 +181,8 @@ def boxcox_profile(runs, analysis: dict, factors: list[str], block: str | None =
         if rss <= 0:
             out.append(np.nan)
             continue
-        # RSS on the unscaled data is RSS_scaled * gm^(2λ).
-        ll = -0.5 * n * (np.log(rss / n) + 2 * lam * np.log(gm)) + (lam - 1.0) * sum_log
+        # The normalised transform z = (y^λ − 1)/(λ ġ^(λ−1)) has RSS_scaled · ġ²; the
+        # profile uses the analysis's residual degrees of freedom ν (transform.py).
+        ll = -0.5 * nu * np.log(rss * gm * gm / nu)
         out.append(ll)
     return pd.DataFrame({"lambda": np.asarray(grid, dtype=float), "loglik": out})

@@ -62,6 +62,8 @@ def transform_sentence(data: ReportData) -> str:
     if data.analysis.get("unanalysed"):
         return ""
     tr = data.analysis.get("transform") or {}
+    if tr.get("summary"):  # the analysis states its scale and the profile's evidence itself
+        return str(tr["summary"])
     name = tr.get("name", "none")
     reason = tr.get("reason") or ""
     if name == "log":
