@@ -29,12 +29,13 @@ def _layout(shape, reps):
     return [np.repeat(g.ravel(), reps) for g in grids]
 
 
-def lambda_coverage(shape, reps, n_exp, seed, sigma=0.3, step=0.4):
+def lambda_coverage(shape, reps, n_exp, seed, sigma=0.3, step=0.4, use_n=False):
     """Share of lognormal experiments whose 95% λ interval holds 0 (the true λ).
 
     Full factorial ``shape`` with ``reps`` runs per cell, multiplicative main effects
     (each level step multiplies the time by e^step), noise sd ``sigma`` on the log scale;
-    the interval is the analysis's own (`BoxCoxProfile.profile`, full model).
+    the interval is the analysis's own (`BoxCoxProfile.profile`, full model); ``use_n``
+    puts N where the residual degrees of freedom belong (the plain likelihood, for contrast).
     """
     from benchharness.analysis.cells import index_cells
     from benchharness.analysis.transform import BoxCoxProfile
@@ -48,7 +49,8 @@ def lambda_coverage(shape, reps, n_exp, seed, sigma=0.3, step=0.4):
     hits = 0
     for _ in range(n_exp):
         y = 0.05 * np.exp(mu + sigma * rng.standard_normal(N))
-        p = BoxCoxProfile(y, cells.row_cell, n, None, df=N - cells.count).profile()
+        p = BoxCoxProfile(y, cells.row_cell, n, None,
+                          df=N if use_n else N - cells.count).profile()
         hits += p.ci[0] <= 0.0 <= p.ci[1]
     return hits / n_exp
 
@@ -130,10 +132,11 @@ def test_lambda_interval_coverage_small(shape, reps):
 
 @pytest.mark.slow
 @pytest.mark.parametrize("shape,reps", DESIGNS)
-def test_lambda_interval_coverage_4000(shape, reps):
-    cov = lambda_coverage(shape, reps, 4000, seed=2026)
+def test_lambda_interval_coverage_10000(shape, reps):
+    cov = lambda_coverage(shape, reps, 10000, seed=2026)
+    with_n = lambda_coverage(shape, reps, 10000, seed=2026, use_n=True)
     print(f"\nλ interval coverage {'×'.join(map(str, shape))}, {reps} runs per cell: "
-          f"{100 * cov:.1f}% of 4000")
+          f"{100 * cov:.1f}% of 10000 (with N in place of ν: {100 * with_n:.1f}%)")
     assert 0.94 <= cov <= 0.96
 
 
@@ -383,3 +386,54 @@ def test_terminal_marks_a_large_departure_as_a_concern(tmp_path, cli):
     assert line.lstrip().startswith("! Equal spread across cells")
     assert "the largest cell variance is 99.4× the smallest, beyond 10×" in " ".join(
         out.stdout.split())
+
+
+# ---- every command that judges the response uses the recorded scale and says which --------
+
+def _two_folders(tmp_path):
+    from history_helpers import write_folder
+
+    rng = np.random.default_rng(17)
+    vals = {(c,): list(np.exp(rng.normal(m, 0.1, 4))) for c, m in (("zlib", 0.0), ("lzma", 0.7))}
+    a = write_folder(tmp_path / "a", "codecs", {"codec": ["zlib", "lzma"]}, vals)
+    vals_b = {k: [x * 1.3 for x in v] for k, v in vals.items()}
+    b = write_folder(tmp_path / "b", "codecs", {"codec": ["zlib", "lzma"]}, vals_b)
+    return a, b
+
+
+def test_choose_compare_and_history_use_the_scale_the_analysis_records(tmp_path):
+    from benchharness.analysis import write_analysis_json
+    from benchharness.choose import choose
+    from benchharness.history.cells import summarize_cells
+    from benchharness.history.compare import compare_folders
+    from benchharness.history.folder import read_folder
+
+    a, b = _two_folders(tmp_path)
+    # no analysis.json yet: the same rule, log for positive times
+    ch = choose(a)
+    assert ch.scale == "log"
+    assert ch.scale_reason == "the log scale, the default for a positive, ratio-scaled response"
+    cmp_ = compare_folders(a, b)
+    assert cmp_.scale == "log" and cmp_.cells[0].estimate == pytest.approx(1.3, rel=1e-9)
+    # the analysis recorded the original scale (asked for): every command follows it
+    write_analysis_json(analyze(a, transform="none"), a / "analysis.json")
+    ch = choose(a)
+    assert ch.scale == "none"
+    assert ch.scale_reason == "the original scale, the scale analysis.json records for wall_s"
+    from benchharness.choose.render import terminal_text
+
+    assert ("analysed on the original scale, the scale analysis.json records for wall_s"
+            in terminal_text(ch))
+    cmp_ = compare_folders(a, b)
+    assert cmp_.scale == "linear" and "records for wall_s" in cmp_.scale_reason
+    d = read_folder(a)
+    assert {c.scale for c in summarize_cells(d.runs, d.factors, "wall_s", folder=a)} == {"linear"}
+    assert {c.scale for c in summarize_cells(d.runs, d.factors, "wall_s")} == {"log"}
+
+
+def test_compare_command_says_which_scale(tmp_path, cli):
+    a, b = _two_folders(tmp_path)
+    out = cli("compare", a, b)
+    assert out.returncode == 0, out.stderr
+    assert ("Compared on the log scale, the default for a positive, ratio-scaled response."
+            in " ".join(out.stdout.split()))

@@ -404,6 +404,46 @@ def _power_from_interval(profile: Profile) -> float:
     return float(round(lh, 1))
 
 
+def recorded_transform(folder, response: str) -> dict | None:
+    """The ``transform`` that a results folder's analysis.json records for ``response``."""
+    import json
+    from pathlib import Path
+
+    if folder is None:
+        return None
+    try:
+        data = json.loads((Path(folder) / "analysis.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    if not isinstance(data, dict) or data.get("response") != response:
+        return None
+    tr = data.get("transform")
+    return tr if isinstance(tr, dict) and tr.get("name") in ("log", "none", "boxcox") else None
+
+
+def scale_for(response: str, values, folder=None, experiment=None) -> tuple[str, float, str]:
+    """The scale a command that judges ``response`` uses: (name, λ, reason in a few words).
+
+    The scale analysis.json records for that response when the folder has one
+    (the analysis chose it with the full rule, Box-Cox evidence included);
+    otherwise the same rule's default: the log scale for a positive,
+    ratio-scaled response, else the original scale.
+    """
+    rec = recorded_transform(folder, response)
+    if rec is not None:
+        lam = float(rec.get("lambda", 0.0 if rec["name"] == "log" else 1.0))
+        return rec["name"], lam, (f"{scale_words(rec['name'], lam)}, the scale analysis.json "
+                                  f"records for {response}")
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if len(v) and not np.all(v > 0):
+        return "none", 1.0, "the original scale: some values are zero or negative"
+    is_ratio, why = ratio_scaled(unit_of_response(response, experiment, folder))
+    if not is_ratio:
+        return "none", 1.0, f"the original scale: {why}"
+    return "log", 0.0, "the log scale, the default for a positive, ratio-scaled response"
+
+
 def forward(y: np.ndarray, choice: Choice) -> np.ndarray:
     if choice.name == "none":
         return np.asarray(y, dtype=float)

@@ -61,12 +61,15 @@ class Choice:
     within: float | None = None
     #: one entry per limit: what it asks, how it was judged, which settings meet it
     limits: list = field(default_factory=list)
+    #: which scale the choice was made on, and why (the analysis's scale for this response)
+    scale_reason: str = ""
 
     def to_dict(self) -> dict:
         d = {
             "response": self.response,
             "better": self.better,
             "scale": self.scale,
+            "scale_reason": self.scale_reason,
             "confidence": self.confidence,
             "factors": list(self.control),
             "across": list(self.across),
@@ -288,15 +291,15 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     orders = level_orders(df[df["status"].astype(str) == "ok"] if "status" in df.columns else df,
                           control + across, experiment)
 
-    if scale == "auto":  # the scale the folder's analysis recorded for this response
-        from benchharness.choose.config import recorded_scale
-
-        scale = recorded_scale(data, response) or "auto"
+    # the scale the folder's analysis recorded for this response, else the same rule
+    # (`_scale_of`; choose.config.recorded_scale reads the same record)
+    scale_reasons: dict[str, str] = {}
 
     def fit(resp):
+        name, why = _scale_of(df, resp, scale if resp == response else "auto", data, experiment)
+        scale_reasons[resp] = why
         return fit_response(df, resp, control, across, better=directions.get(resp, "lower"),
-                            scale=scale if resp == response else "auto", orders=orders,
-                            residual=residual, block=block)
+                            scale=name, orders=orders, residual=residual, block=block)
 
     full = fit(response)
     all_settings = full.settings
@@ -464,7 +467,30 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
                                                      if f in declared},
         within=within if also else None,
         limits=[_limit_dict(lr, all_settings, as_map) for lr in limit_results],
+        scale_reason=scale_reasons.get(response, ""),
     )
+
+
+def _scale_of(df, resp, requested, data, experiment) -> tuple[str, str]:
+    """("log" | "none", why): the scale the analysis records or its rule (one scale per response)."""
+    from pathlib import Path
+
+    import pandas as pd
+
+    from benchharness.analysis.transform import scale_for, scale_words
+
+    if requested != "auto":
+        return requested, f"{scale_words(requested)}, as requested"
+    if resp not in df.columns:
+        return "auto", ""  # fit_response names the missing column
+    ok = df["status"].astype(str) == "ok" if "status" in df.columns else slice(None)
+    values = pd.to_numeric(df.loc[ok, resp], errors="coerce").to_numpy(dtype=float)
+    folder = data if isinstance(data, (str, Path)) and Path(data).is_dir() else None
+    name, lam, why = scale_for(resp, values, folder, experiment)
+    if name == "boxcox":
+        return "none", (f"the original scale: analysis.json records a Box-Cox scale (λ = {lam:g}) "
+                        "for it, and losses are stated in the response's own units there")
+    return name, why
 
 
 def _block_column(block, df, experiment, factors, across, response):

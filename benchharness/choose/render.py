@@ -66,9 +66,10 @@ def section_dict(choice) -> dict:
     cols, rows = _rows(d)
     res = d["residual"]
     notes = [
-        f"Response {d['response']} ({d['better']} is better), analysed on the "
-        f"{'log' if d['scale'] == 'log' else 'original'} scale; "
-        f"{d['runs_used']} ok runs used, {d['runs_dropped']} left out. The {d['response']} "
+        f"Response {d['response']} ({d['better']} is better), analysed on "
+        + (d.get("scale_reason") or
+           f"the {'log' if d['scale'] == 'log' else 'original'} scale")
+        + f"; {d['runs_used']} ok runs used, {d['runs_dropped']} left out. The {d['response']} "
         f"column is each setting's {'geometric ' if d['scale'] == 'log' else ''}mean"
         + (", every condition weighing the same." if d["across"] else "."),
         f"Noise: pooled residual of the "

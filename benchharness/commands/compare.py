@@ -99,6 +99,8 @@ def print_comparison(result) -> None:
                   f"the tolerance band; same within {tol} = the whole interval is inside it; "
                   "unclear = the interval crosses the band's edge.", highlight=False)
     console.print(result.adjustment_sentence(), highlight=False)
+    if result.scale_reason:
+        console.print(f"Compared on {result.scale_reason}.", highlight=False)
     if result.residual_sd is not None:
         noise = (f"{result.residual_sd * 100:.1f}% (SD of ln {result.response})" if ratio
                  else f"{result.residual_sd:.4g}")

@@ -49,7 +49,8 @@ def terminal_lines(out: GateOutcome) -> list[str]:
     s = out.settings
     kind = "higher is better" if s.higher_is_better else "lower is better"
     lines = [
-        f"gate on {out.response} ({kind}): slowdown ratio candidate vs baseline, "
+        f"gate on {out.response} ({kind}): slowdown ratio candidate vs baseline on the log "
+        "scale, "
         f"tolerance {s.tolerance * 100:g}%, confidence {s.confidence:g}, "
         f"{len(out.judgements)} workload(s)",
     ]
@@ -120,6 +121,7 @@ def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
         "verdict": out.verdict,
         "response": out.response,
         "higher_is_better": s.higher_is_better,
+        "scale": "log",
         "tolerance": s.tolerance,
         "confidence": s.confidence,
         "max_runs": s.max_runs,

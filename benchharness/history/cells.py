@@ -6,8 +6,10 @@ as the geometric mean), the standard deviation of the logs (the run-to-run
 noise, a relative spread: 0.02 is about 2 %), the standard error and a
 Student-t confidence interval mapped back to the original scale. Timings are
 right-skewed and multiplicative effects are the norm (common practice), which is
-why the log scale is the default; a response with any value <= 0 is summarised
-on its own scale (arithmetic mean, SD, t interval) instead, and the row says so.
+why the log scale is the default for positive, ratio-scaled responses — the same
+scale the analysis records for the response; a response with any value <= 0, a
+unit that is a difference, or another recorded scale is summarised on its own
+scale (arithmetic mean, SD, t interval) instead, and the row says so.
 """
 
 from __future__ import annotations
@@ -42,12 +44,15 @@ class CellSummary:
 
 
 def summarize_cells(runs, factors, response: str = "wall_s", conf_level: float = 0.95,
-                    level_order: dict | None = None) -> list[CellSummary]:
+                    level_order: dict | None = None, folder=None) -> list[CellSummary]:
     """Summaries of `response` per cell over the runs with status ``ok``.
 
     ``runs`` is a DataFrame shaped like runs.csv; ``factors`` the factor names.
     Cells in the order of ``level_order`` (factor -> labels as listed in the
-    experiment) when given, else in order of first appearance.
+    experiment) when given, else in order of first appearance. The scale is the
+    one the analysis uses for the response (``benchharness.analysis.transform.
+    scale_for``: what ``folder``'s analysis.json records, else log for a
+    positive, ratio-scaled response); a Box-Cox scale is summarised as measured.
     """
     import numpy as np
     import pandas as pd
@@ -62,7 +67,9 @@ def summarize_cells(runs, factors, response: str = "wall_s", conf_level: float =
     ok = ok[np.isfinite(ok["_y"])]
     if ok.empty:
         return []
-    log_scale = bool((ok["_y"] > 0).all())
+    from benchharness.analysis.transform import scale_for
+
+    log_scale = scale_for(response, ok["_y"].to_numpy(dtype=float), folder)[0] == "log"
     ok = ok.assign(_x=np.log(ok["_y"]) if log_scale else ok["_y"])
     out: list[CellSummary] = []
     groups = (ok.groupby(list(factors), sort=False, dropna=False) if factors

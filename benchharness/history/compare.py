@@ -67,6 +67,7 @@ class Comparison:
     only_in_a: tuple[dict, ...] = ()
     only_in_b: tuple[dict, ...] = ()
     warnings: tuple[str, ...] = field(default=())
+    scale_reason: str = ""         # which scale, and why (one scale per response)
 
     @property
     def per_cell_level(self) -> float:
@@ -88,6 +89,7 @@ class Comparison:
     def to_json_dict(self) -> dict:
         return {
             "a": self.a, "b": self.b, "response": self.response, "scale": self.scale,
+            "scale_reason": self.scale_reason,
             "estimate": "ratio_b_over_a" if self.scale == "log" else "difference_b_minus_a",
             "tolerance": self.tolerance, "conf_level": self.conf_level,
             "interval_adjustment": self.adjustment,
@@ -164,18 +166,20 @@ def per_cell_level(conf_level: float, m: int, adjust: str = "sidak") -> float:
 
 
 def compare_pooled(pooled, factors, response: str = "wall_s", tolerance: float = 0.05,
-                   conf_level: float = 0.95, adjust: str = "sidak"):
+                   conf_level: float = 0.95, adjust: str = "sidak", log_scale=None):
     """The per-cell comparisons of a `pooled_table` (columns factors, session, y, _cell).
 
-    Returns ``(log_scale, residual df, residual SD or None, [CellComparison])``, cells in
-    the order they first appear.
+    ``log_scale``: the response's scale (`comparison_scale`); None means log when every
+    value is positive. Returns ``(log_scale, residual df, residual SD or None,
+    [CellComparison])``, cells in the order they first appear.
     """
     import numpy as np
     from scipy import stats
 
     from benchharness.history.trends import lower_is_better
 
-    log_scale = bool((pooled["y"] > 0).all())
+    if log_scale is None:
+        log_scale = bool((pooled["y"] > 0).all())
     pooled = pooled.assign(x=np.log(pooled["y"]) if log_scale else pooled["y"])
     groups = pooled.groupby(["_cell", "session"], sort=False)["x"]
     means = groups.mean()
@@ -256,8 +260,9 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
     if pooled.empty:
         raise DataError(f"{da.path} and {db.path} share no cell with timed runs of "
                         f"`{response}`; nothing to compare")
+    scale_name, scale_reason = comparison_scale(response, pooled["y"].to_numpy(), da, db)
     log_scale, df, s, out = compare_pooled(pooled, factors, response, tolerance, conf_level,
-                                           adjust)
+                                           adjust, log_scale=scale_name == "log")
 
     def rank(c: CellComparison):
         return tuple(da.levels[f].index(c.cell[f]) if c.cell[f] in da.levels.get(f, [])
@@ -272,12 +277,34 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
     if da.experiment != db.experiment:
         warnings.append(f"the experiments are named differently ({da.experiment!r} and "
                         f"{db.experiment!r}); cells were matched by factor levels.")
-    if not log_scale:
-        warnings.append(f"`{response}` has values <= 0, so B - A differences on its own scale "
-                        "are shown instead of ratios.")
     return Comparison(a=str(da.path), b=str(db.path), response=response,
                       scale="log" if log_scale else "linear", tolerance=tolerance,
                       conf_level=conf_level, residual_df=df, residual_sd=s, cells=tuple(out),
                       adjustment=adjust,
                       only_in_a=tuple(only_a), only_in_b=tuple(only_b),
-                      warnings=tuple(warnings))
+                      warnings=tuple(warnings), scale_reason=scale_reason)
+
+
+def comparison_scale(response: str, values, da, db) -> tuple[str, str]:
+    """("log" | "linear", why): the scale the folders' analyses record, else the same rule.
+
+    One scale per response (see ``benchharness.analysis.transform``): A's
+    analysis.json first, then B's; a Box-Cox scale or values <= 0 mean the
+    response's own scale, compared as a difference.
+    """
+    import numpy as np
+
+    from benchharness.analysis.transform import recorded_transform, scale_for
+
+    v = np.asarray(values, dtype=float)
+    if len(v) and not np.all(v > 0):
+        return "linear", (f"the original scale: `{response}` has values <= 0, so B - A "
+                          "differences are shown instead of ratios")
+    # A's analysis.json first; B's when A has none for this response
+    folder = da.path if recorded_transform(da.path, response) is not None else db.path
+    name, lam, why = scale_for(response, v, folder, None)
+    if name == "boxcox":
+        return "linear", (f"the original scale: the analysis records a Box-Cox scale "
+                          f"(λ = {lam:g}) for `{response}`, so B - A differences in its own "
+                          "units are shown")
+    return ("log" if name == "log" else "linear"), why

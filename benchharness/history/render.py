@@ -86,7 +86,8 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
     for t in trends:
         scale = "geo. mean" if t.scale == "log" else "mean"
         branches = {p.branch for p in t.points}
-        title = f"{t.experiment} | {t.response} | {t.label}"
+        title = (f"{t.experiment} | {t.response} "
+                 f"({'log scale' if t.scale == 'log' else 'original scale'}) | {t.label}")
         if len(branches) == 1 and None not in branches:
             title += f" | branch {next(iter(branches))}"
         table = Table(title=title, title_justify="left")

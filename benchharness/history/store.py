@@ -187,7 +187,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     summaries = []
     for response in responses:
         summaries.extend(enumerate(summarize_cells(runs, factors, response,
-                                                   conf_level, data.levels)))
+                                                   conf_level, data.levels, data.path)))
     journal = data.path / "runs.jsonl"
     journal_bytes = journal.read_bytes() if journal.is_file() else b""
     conn = connect(db_path)
