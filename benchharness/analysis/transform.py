@@ -15,7 +15,7 @@ of the model fitted to z_λ, the maximum-likelihood profile is
 ℓ_N(λ) = −(N/2)·log(RSS(λ)/N). Its likelihood-ratio statistic
 2(ℓ_N(λ̂) − ℓ_N(λ₀)) = N·log(RSS(λ₀)/RSS(λ̂)) is χ²₁ only as N grows; in
 factorial experiments, where the model spends many of the N runs on cell means,
-it is too large and the 95% interval covers λ₀ in only 83–91% of experiments
+it is too large and the 95% interval covers λ₀ in only 84–90% of experiments
 (3×2×4 to 3×3×3×3 designs, 2–3 runs per cell). Box & Cox (1964, §4) give, for
 the same model, the marginal posterior of λ as proportional to
 RSS(λ)^{−ν/2} with ν = N − rank(X) the residual degrees of freedom (their
