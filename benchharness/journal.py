@@ -43,7 +43,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable, Mapping, Sequence
 
-from benchharness.errors import ResultsFolderError
+from benchharness.errors import ResultsFolderError, is_disk_full
 from benchharness.execute.base import USAGE_FIELDS
 
 #: Fixed leading columns of runs.csv, before the factor columns.
@@ -183,6 +183,8 @@ def start_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
     try:
         parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
+        if is_disk_full(exc):
+            raise  # said as such by the runner (a full disk is no bad input)
         raise ResultsFolderError(f"{out if out is not None else parent}: cannot create the "
                                  f"results folder here ({exc.strerror or exc}); {where}") from None
     remove_stale_starts(parent)
@@ -195,6 +197,9 @@ def start_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
         except FileExistsError:
             continue
         except OSError as exc:
+            if is_disk_full(exc):
+                discard_start(folder)
+                raise
             raise ResultsFolderError(f"{out if out is not None else parent}: cannot create the "
                                      f"results folder here ({exc.strerror or exc}); "
                                      f"{where}") from None
@@ -1056,6 +1061,8 @@ def check_writable(folder: Path) -> None:
     except OSError as exc:
         import errno
 
+        if is_disk_full(exc):
+            raise  # said as such by the runner
         fix = (f"copy it to a writable place (cp -a {folder} NEW) and resume the copy"
                if exc.errno == errno.EROFS else
                f"make it writable (chmod -R u+w {folder}), or copy it elsewhere and resume "

@@ -326,8 +326,18 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
         raise ResultsFolderError(f"{folder}: not a results folder (no experiment.yaml and "
                                  "runs.jsonl); give the folder an earlier `benchharness run` "
                                  "made")
-    J.check_writable(folder)
-    lock = J.FolderLock(folder)
+    try:
+        J.check_writable(folder)
+    except OSError as e:
+        if is_disk_full(e):
+            raise disk_full_error(folder, e) from None
+        raise
+    try:
+        lock = J.FolderLock(folder)
+    except OSError as e:
+        if is_disk_full(e):
+            raise disk_full_error(folder, e) from None
+        raise
     try:
         notes = []
         killed = J.kill_leftover(folder)
@@ -906,9 +916,9 @@ def disk_full_error(folder: Path, exc: OSError, planned: int | None = None) -> D
     try:
         n = len(J.read_journal(Path(folder) / "runs.jsonl"))
         safe = f"{n} of {planned} runs are recorded there and safe" if planned else \
-            f"the {n} runs recorded there are safe"
+            f"{n} runs are recorded there and safe"
     except Exception:  # noqa: BLE001 - the message must come out whatever the folder holds
-        safe = "the runs recorded there are safe"
+        safe = "the runs are recorded there and safe"
     what = f" (writing {Path(exc.filename).name})" if getattr(exc, "filename", None) else ""
     return DiskFullError(f"the disk is full: no space left on the device holding {folder}{what}; "
                          f"{safe}. Free some space, then continue with "

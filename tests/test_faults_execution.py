@@ -510,7 +510,8 @@ def test_real_full_disk_then_resume_after_space_is_freed(tmp_path, small_disk, c
     assert 0 < len(kept) < 1200
     # resumed while the disk is still full: the same line, nothing lost
     r = cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
-    assert r.returncode == DISK_FULL_EXIT and "the disk is full" in r.stderr, r.stderr
+    assert r.returncode == DISK_FULL_EXIT, r.stderr
+    assert "recorded there and safe" in r.stderr and f"--resume {out}" in r.stderr
     assert len(J.read_journal(out / "runs.jsonl")) >= len(kept)
     subprocess.run(["mount", "-o", "remount,size=16m", str(small_disk)], check=True)
     r = cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
