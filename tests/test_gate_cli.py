@@ -18,6 +18,8 @@ def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
             "--junit", junit, "--summary", summary, "--json", tmp_path / "g.json")
     assert r.returncode == 1, r.stdout + r.stderr
     assert "SLOWER" in r.stdout
+    # the gate says which scale it judges on (one scale per response: ratios of times)
+    assert "slowdown ratio candidate vs baseline on the log scale" in r.stdout
     root = ET.parse(junit).getroot()
     cases = root.findall(".//testcase")
     assert [c.get("name") for c in cases] == ["all"]
@@ -25,7 +27,7 @@ def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
     text = summary.read_text()
     assert text.startswith("earlier content\n") and "Performance gate: FAIL" in text
     data = json.loads((tmp_path / "g.json").read_text())
-    assert data["verdict"] == "regression"
+    assert data["verdict"] == "regression" and data["scale"] == "log"
     assert data["workloads"][0]["ratio"] == pytest.approx(1.3, rel=0.15)
     folder = tmp_path / "res"
     for name in ("experiment.yaml", "runs.jsonl", "runs.csv", "plan.csv", "host.json",

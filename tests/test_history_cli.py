@@ -52,6 +52,7 @@ def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, cli):
     assert r.returncode == 1, r.stderr          # the planted step is an open regression
     assert "regression: archive-codecs wall_s codec=<fast> at commit c0" in r.stderr
     assert "STEP: regression" in r.stdout and "HOST CHANGED" in r.stdout
+    assert "archive-codecs | wall_s (log scale) | codec=" in r.stdout   # the scale is said
     data = json.loads(out_json.read_text())
     cells = {c["cell"]["codec"]: c for c in data["cells"]}
     fast, lzma = cells["<fast>"], cells["lzma"]
