@@ -287,3 +287,18 @@ def test_ctrl_c_exits_130_and_the_folder_is_not_resumable_as_a_run(tmp_path, cli
     r = cli("run", "--resume", folder)
     assert r.returncode == 2 and "is a gate session" in r.stderr
     assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"
+
+
+def test_metric_in_a_difference_unit_is_refused_before_any_run(cli, tmp_path):
+    # one scale per response: the gate judges ratios on the log scale, which mean nothing for
+    # a metric declared in °C; it says so in one line and runs nothing
+    exp = _rate_gate(tmp_path, 700)
+    exp.write_text(exp.read_text().replace("    better: higher\n",
+                                           "    better: higher\n    unit: °C\n"))
+    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
+    assert r.returncode == 2, r.stdout + r.stderr
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and "rate.yaml:" in lines[0]
+    assert "the gate judges slowdown ratios on the log scale" in lines[0]
+    assert "its unit '°C' is a difference or an interval scale" in lines[0]
+    assert not (tmp_path / "res" / "runs.jsonl").exists()

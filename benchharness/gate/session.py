@@ -116,6 +116,8 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
         response = o.pop("response")
     _check_response(exp, response, None if "response" in (overrides or {}) and
                     (overrides or {}).get("response") is not None else items.get("response"))
+    _check_ratio_scale(exp, response, items.get("response") if "response" not in (
+        overrides or {}) or (overrides or {}).get("response") is None else None)
     if "direction" not in items and "higher_is_better" not in o:
         # a custom metric knows its direction (metrics: NAME: {better: higher})
         if _metric_better(exp, response) == "higher":
@@ -152,6 +154,35 @@ def _check_response(exp, response: str, node) -> None:
               "use one of: " + ", ".join(known))
            + " (a custom metric needs a 'metrics:' entry in an experiment file)")
     if node is not None:
+        raise node_error(node, msg)
+    raise UsageError(f"--response: {msg}")
+
+
+def _check_ratio_scale(exp, response: str, node) -> None:
+    """The gate judges slowdown ratios on the log scale: refuse a metric whose unit is a difference.
+
+    One scale per response (``benchharness.analysis.transform``): a metric declared
+    in a unit that is a difference or an interval scale (°C, a change in ms) has no
+    meaningful ratio, so a ratio gate could not decide anything true about it.
+    """
+    from benchharness.quality import quality_config
+
+    metrics = quality_config(exp).metrics
+    unit = next((m.unit for m in (metrics.metrics if metrics is not None else ())
+                 if m.name == response), None)
+    if unit is None:
+        return
+    from benchharness.analysis.transform import ratio_scaled
+
+    is_ratio, why = ratio_scaled(unit)
+    if is_ratio:
+        return
+    msg = (f"the gate judges slowdown ratios on the log scale, but the response {response!r}: "
+           f"{why}, where ratios mean nothing; gate on a ratio-scaled response (a time, a size, "
+           "a rate) or compare this one with `benchharness analyze`")
+    if node is not None:
+        from benchharness.yamlnodes import node_error
+
         raise node_error(node, msg)
     raise UsageError(f"--response: {msg}")
 
