@@ -103,12 +103,58 @@ def test_usage_errors_exit_2(cli, tmp_path):
     assert "<gate quick form>" not in r.stderr
 
 
-def test_failing_candidate_is_a_regression(cli, tmp_path):
-    r = cli("gate", "--baseline", "true", "--candidate", "false", "--seed", "2",
-            "--out", tmp_path / "res", "--json", tmp_path / "g.json")
-    assert r.returncode == 1, r.stdout + r.stderr
+@pytest.mark.parametrize("inconclusive", [None, "pass"])
+def test_candidate_that_never_succeeds_stops_with_exit_5(cli, tmp_path, inconclusive):
+    junit, js = tmp_path / "j.xml", tmp_path / "g.json"
+    extra = ("--inconclusive", inconclusive) if inconclusive else ()
+    r = cli("gate", "--baseline", "true", "--candidate", "exit 3", "--seed", "2",
+            "--out", tmp_path / "res", "--json", js, "--junit", junit, *extra)
+    assert r.returncode == 5, r.stdout + r.stderr
+    assert "NEVER-OK" in r.stdout and "the candidate failed all 3 of its runs" in r.stdout
+    assert "a build never ran successfully" in r.stdout
+    data = json.loads(js.read_text())
+    assert data["verdict"] == "never_ok" and data["runs"] <= 4   # 2 blocks, not the budget
+    case = ET.parse(junit).getroot().find(".//testcase")
+    assert case.find("error") is not None and case.find("failure") is None
+
+
+def test_file_form_baseline_command_missing_stops_with_exit_5(cli, tmp_path):
+    exp = tmp_path / "gate.yaml"
+    exp.write_text("""experiment: missing-gate
+about: The baseline's script was never built.
+command: ["{build.bin}"]
+factors:
+  build:
+    old: {bin: ./no-such-script.sh}
+    new: {bin: "true"}
+  size: [small, large]
+warmup: 1
+gate: {factor: build, baseline: old, tolerance: 10%, max_runs: 30}
+""")
+    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--json", tmp_path / "g.json")
+    assert r.returncode == 5, r.stdout + r.stderr
+    assert "the baseline failed all 3 of its runs" in r.stdout
     data = json.loads((tmp_path / "g.json").read_text())
-    assert "failed" in data["workloads"][0]["reason"]
+    assert data["verdict"] == "never_ok" and data["runs"] <= 6   # two workloads: 2 rounds + 1 block
+
+
+def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
+    # Both builds run the same script, which fails on every 10th run of its own (a
+    # counter file per build); the candidate's first failure comes before the
+    # baseline's. One failure must not decide: exit 0, and the reason names the counts.
+    script = tmp_path / "flaky.sh"
+    script.write_text('n=$(cat "$1" 2>/dev/null || echo 0); echo $((n + 1)) > "$1"\n'
+                      'sleep 0.03\n[ $((n % 10)) -ne "$2" ]\n')
+    base = f"sh {script} {tmp_path / 'count-base'} 7"
+    cand = f"sh {script} {tmp_path / 'count-cand'} 4"
+    r = cli("gate", "--baseline", base, "--candidate", cand, "--tolerance", "30%",
+            "--seed", "4", "--max-runs", "40", "--out", tmp_path / "res",
+            "--json", tmp_path / "g.json")
+    data = json.loads((tmp_path / "g.json").read_text())
+    w = data["workloads"][0]
+    assert w["candidate_failures"] >= 1, data           # the planted failure happened
+    assert r.returncode == 0, r.stdout + r.stderr
+    assert data["verdict"] in ("no_regression", "improvement")
 
 
 def test_stored_baseline_warns(cli, tmp_path):

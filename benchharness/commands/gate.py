@@ -4,7 +4,7 @@ Quick form: ``benchharness gate --baseline CMD --candidate CMD``. File form:
 ``benchharness gate FILE`` with a ``gate:`` section. The work is done by
 `benchharness.gate.session`; this module parses, prints and maps the verdict to
 the exit code (0 no regression, 1 regression, 2 bad input, 3 inconclusive
-unless ``--inconclusive pass|fail``).
+unless ``--inconclusive pass|fail``, 5 a build never ran successfully).
 """
 
 from __future__ import annotations
@@ -18,7 +18,8 @@ def add_parser(sub) -> None:
         description="Run baseline and candidate back to back in random order, block after "
                     "block, until the slowdown ratio is known to be below or above "
                     "1 + tolerance (or the budget is spent). Exit 0: no regression, 1: "
-                    "regression, 3: inconclusive, 2: bad input.")
+                    "regression, 3: inconclusive, 5: a build never ran successfully, 2: bad "
+                    "input.")
     p.add_argument("file", nargs="?", metavar="FILE",
                    help="experiment file with a 'gate:' section (file form)")
     p.add_argument("--baseline", metavar="CMD", help="baseline command (quick form)")
@@ -38,7 +39,7 @@ def add_parser(sub) -> None:
     p.add_argument("--seed", type=int, metavar="N", help="seed of the run order")
     p.add_argument("--inconclusive", choices=("pass", "fail"),
                    help="exit code for an inconclusive verdict: 0 (pass) or 1 (fail) "
-                        "instead of 3")
+                        "instead of 3 (never for a build that never ran successfully: 5)")
     p.add_argument("--against", metavar="FOLDER",
                    help="stored baseline: take the baseline's runs from an earlier results "
                         "folder (confounds the change with the session; not recommended)")

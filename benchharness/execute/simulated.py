@@ -18,6 +18,8 @@ so ``mean_s`` is the expected run time, ``cv`` the coefficient of variation of
 each run time (the same for every cell, so ratios of means equal ratios of
 medians) and ``drift_per_run`` a linear drift on the log scale (a machine that
 slows down or speeds up steadily; 0.001 means about +0.1 % per run).
+Occasional slow runs (another job on the host, a cache flush): with
+probability ``outlier_prob`` a run takes ``outlier_factor`` times as long.
 Per-level failure probabilities make a run fail (exit code 1) or time out.
 Run times above ``spec.timeout_s`` are reported as timeouts. A throughput
 metric (``work_items / wall_s``) can be added to ``Measurement.extra`` to test
@@ -51,6 +53,8 @@ class SimulatedModel:
     (probabilities of several factors combine as independent causes).
     ``timeout_share`` is the share of those failures reported as timeouts.
     ``work_items`` (when set) adds ``extra[throughput_name] = work_items / wall_s``.
+    ``outlier_prob`` is the chance that a run is slowed by ``outlier_factor``
+    (any level, independently of everything else).
     """
 
     base_s: float = 1.0
@@ -61,6 +65,8 @@ class SimulatedModel:
     timeout_share: float = 0.0
     work_items: float | None = None
     throughput_name: str = "items_per_s"
+    outlier_prob: float = 0.0
+    outlier_factor: float = 1.5
 
     def __post_init__(self):
         if not self.base_s > 0:
@@ -75,6 +81,10 @@ class SimulatedModel:
             for lab, p in levels.items():
                 if not 0.0 <= p <= 1.0:
                     raise ValueError(f"failure probability of {fac}={lab} must be in [0, 1]")
+        if not 0.0 <= self.outlier_prob <= 1.0:
+            raise ValueError("outlier_prob must be in [0, 1]")
+        if not self.outlier_factor > 0:
+            raise ValueError("outlier_factor must be positive")
 
     def mean_s(self, levels: Mapping[str, str], position: int = 0) -> float:
         """Expected run time of a run with these levels at this execution position."""
@@ -119,6 +129,8 @@ class SimulatedExecutor:
         mean = m.mean_s(levels, self.position)
         s = m.sigma_log
         wall = float(self.rng.lognormal(math.log(mean) - s * s / 2.0, s)) if s > 0 else mean
+        if m.outlier_prob > 0 and self.rng.random() < m.outlier_prob:
+            wall *= m.outlier_factor      # drawn only when asked: other seeds' streams unchanged
         fails = self.rng.random() < m.fail_prob(levels)
         timed_out_by_kind = fails and self.rng.random() < m.timeout_share
         self.position += 1

@@ -14,6 +14,12 @@ Fleming type), each at level ``alpha_w = (1 - confidence) / m`` for ``m``
 workloads (Bonferroni; valid whatever each workload's stopping time, so "no
 regression anywhere" needs no further adjustment).
 
+The estimate resists a few slow runs: the location of the ``d`` values is the
+MM-type estimate of `benchharness.gate.robust` (Huber 1964 proposal 2 for the
+scale, Tukey biweight for the location) with its sandwich standard error, and
+the sequential boundaries are those of that studentized statistic, simulated on
+the same null paths (``estimator="mean"`` gives the plain mean and t statistic).
+
 At each look (no look before ``min_runs`` blocks):
 
 * ``regression``    when ``L > log(1 + tolerance)``;
@@ -22,24 +28,30 @@ At each look (no look before ``min_runs`` blocks):
 * otherwise keep adding blocks; at the budget (``max_runs`` runs of each build)
   or once the planned information is spent the verdict is ``inconclusive``.
 
-Failures: a candidate whose runs fail or time out where the baseline's do not
-is a regression, whatever its timings. When the baseline never failed, one
-failed candidate run decides it. When both builds fail sometimes, the blocks
-where exactly one of them failed are compared with an exact one-sided sign test
-(McNemar 1947, exact binomial form) at ``alpha_w / max_runs`` (Bonferroni over
-every possible look). Blocks with a failed run carry no timing difference.
+Failures: the failure *rates* of the two builds are compared by an exact
+sequential sign test on the blocks where exactly one run failed
+(`benchharness.gate.failures`), at the workload's level ``(1 - confidence) /
+m`` with Lan & DeMets spending: a candidate that fails more often is a
+regression whatever its timings, one failure alone never is. A pass by the
+timings waits while the candidate's excess failures are suggestive (one-sided
+exact p below ``failure_hold``), so a candidate that fails often is not passed
+merely because its timings settled first. Blocks with a
+failed run carry no timing difference. A build that never ran successfully is
+caught by the run loop (`benchharness.gate.orchestrate`), verdict
+``never_ok``.
 """
 
 from __future__ import annotations
 
 import math
-from functools import lru_cache
 from dataclasses import asdict, dataclass, field
 from typing import Sequence
 
+from benchharness.gate.failures import failure_verdict, failures_lean_against
+from benchharness.gate.robust import robust_summary
 from benchharness.gate.sequential import SequentialDesign, SpendingTracker
 
-VERDICTS = ("regression", "no_regression", "improvement", "inconclusive")
+VERDICTS = ("regression", "no_regression", "improvement", "inconclusive", "never_ok")
 OK = "ok"
 
 
@@ -53,11 +65,21 @@ class GateSettings:
     min_runs: int = 6            # blocks before the first look
     higher_is_better: bool = False
     beta: float = 0.05           # design miss rate at the design distance
-    horizon_factor: float = 0.8  # planned information / fixed-design information
-    # noise estimate that sets the horizon: "ratchet" = the largest sd seen at any look
-    # so far (the horizon never shrinks); also "current", "pilot", "upper:q" (upper
-    # 1-q confidence bound of sigma at this look) or a number (known sigma)
+    horizon_factor: float = 1.0  # planned information / fixed-design information
+    # noise estimate that sets the horizon: "ratchet" = the largest seen at any look
+    # from `ratchet_from` blocks on (the horizon never shrinks from there; before,
+    # the current estimate: with fewer blocks one slow run can dominate any
+    # estimate); also "current" or a number (known sigma)
     horizon_from: str = "ratchet"
+    ratchet_from: int = 16
+    # location of the log differences: "robust" (benchharness.gate.robust) or "mean"
+    estimator: str = "robust"
+    # a build with no successful run among its first this-many runs (warm-ups
+    # included) stops the gate: verdict never_ok, exit code 5
+    never_ok_after: int = 3
+    # a pass by the timings waits while the candidate failed alone more often with a
+    # one-sided exact sign-test p below this (more blocks will tell); see failures.py
+    failure_hold: float = 0.3
     # share of the level the sequential bounds spend: the horizon follows the
     # noise estimate, which costs a little level; calibrated by simulation
     level_calibration: float = 0.7
@@ -71,6 +93,8 @@ class GateSettings:
             raise ValueError("min_runs must be at least 2")
         if self.max_runs < self.min_runs:
             raise ValueError("max_runs must be at least min_runs")
+        if self.estimator not in ("robust", "mean"):
+            raise ValueError("estimator must be 'robust' or 'mean'")
 
     @property
     def threshold_log(self) -> float:
@@ -86,6 +110,15 @@ class GateSettings:
         """Design distance on the log scale: from 1+tol to 1+2*tol (the nearer side)."""
         t = self.tolerance
         return min(math.log((1 + 2 * t) / (1 + t)), math.log1p(t))
+
+    def failure_alpha(self, workloads: int = 1) -> float:
+        """One-sided level of the failure-rate comparison of each workload: (1 - confidence) / m."""
+        return (1.0 - self.confidence) / max(1, workloads)
+
+    def tracker(self, workloads: int = 1) -> SpendingTracker:
+        """A fresh level-spending record for one workload, for this estimator's statistic."""
+        return SpendingTracker(self.design(workloads).alpha,
+                               statistic="robust" if self.estimator == "robust" else "t")
 
     def design(self, workloads: int = 1) -> SequentialDesign:
         return SequentialDesign(
@@ -146,25 +179,11 @@ def log_slowdown(block: Block, higher_is_better: bool = False) -> float | None:
     return math.log(b / c) if higher_is_better else math.log(c / b)
 
 
-def _failure_verdict(blocks: Sequence[Block], alpha_w: float, max_runs: int) -> str | None:
-    base_fail = sum(b.baseline_status != OK for b in blocks)
-    cand_fail = sum(b.candidate_status != OK for b in blocks)
-    if cand_fail == 0:
-        return None
-    if base_fail == 0:
-        return (f"{cand_fail} candidate run(s) failed or timed out; the baseline's never did")
+def _failure_counts(blocks: Sequence[Block]) -> tuple[int, int]:
+    """(blocks where only the candidate failed, blocks where only the baseline failed)."""
     only_c = sum(b.candidate_status != OK and b.baseline_status == OK for b in blocks)
     only_b = sum(b.baseline_status != OK and b.candidate_status == OK for b in blocks)
-    disc = only_c + only_b
-    if disc == 0 or only_c <= only_b:
-        return None
-    from scipy.stats import binom
-
-    p = float(binom.sf(only_c - 1, disc, 0.5))
-    if p <= alpha_w / max(1, max_runs):
-        return (f"candidate failed alone in {only_c} blocks, baseline alone in {only_b} "
-                f"(exact sign test p={p:.2g})")
-    return None
+    return only_c, only_b
 
 
 def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1,
@@ -177,7 +196,7 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1,
     gate would have said, stopping there).
     """
     if tracker is None:
-        tracker = SpendingTracker(settings.design(workloads).alpha)
+        tracker = settings.tracker(workloads)
         j = None
         for i in range(1, len(blocks) + 1):
             j = _judge(blocks[:i], settings, workloads, tracker)
@@ -201,11 +220,18 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
     if n >= 1:
         mean = sum(diffs) / n
     if n >= 2:
-        sd = math.sqrt(sum((x - mean) ** 2 for x in diffs) / (n - 1))
+        if settings.estimator == "robust":
+            mean, sd = robust_summary(diffs)
+        else:
+            sd = math.sqrt(sum((x - mean) ** 2 for x in diffs) / (n - 1))
         sd = max(sd, 1e-9)
     ratio = math.exp(mean) if mean is not None else None
+    only_c, only_b = _failure_counts(blocks)
 
     def make(verdict, reason, lo=None, hi=None, horizon=None):
+        if verdict in ("no_regression", "improvement") and only_c > only_b:
+            reason += (f"; the candidate alone failed in {only_c} blocks, the baseline alone in "
+                       f"{only_b}: too few to say it fails more often")
         return Judgement(
             verdict=verdict, blocks=n_blocks, usable_blocks=n, ratio=ratio,
             lower=math.exp(lo) if lo is not None else None,
@@ -215,9 +241,16 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
             candidate_failures=cand_fail, sd_log=sd,
         )
 
-    fail_reason = _failure_verdict(blocks, alpha_w, settings.max_runs)
+    fail_reason = failure_verdict(only_c, only_b, settings.max_runs,
+                                  settings.failure_alpha(workloads))
     if fail_reason:
         return make("regression", fail_reason)
+    passed = getattr(tracker, "timing_pass", None)
+    if passed is not None:
+        # timings already passed at an earlier look; only the failure question is open
+        if failures_lean_against(only_c, only_b, settings.failure_hold):
+            return _held(make, passed, only_c, only_b, at_budget)
+        return make(*passed)
 
     if n < max(2, settings.min_runs) or sd is None:
         if at_budget:
@@ -225,7 +258,7 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
         return make(None, "waiting for the first look")
 
     # sd > 0 from here
-    plan_sd = _plan_sd(diffs, settings)
+    plan_sd = _plan_sd(sd, n, settings, tracker)
     horizon = design.horizon(plan_sd)
     final = at_budget or n >= horizon
     ct = tracker.boundary(n, horizon, final)
@@ -241,8 +274,16 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
                     f"{settings.confidence:.3g} confidence", lo, hi, horizon)
     if hi < thr:
         if hi < settings.improvement_log:
-            return make("improvement", f"faster than {1 - settings.tolerance:.3g}x", lo, hi, horizon)
-        return make("no_regression", f"not slower than {1 + settings.tolerance:.3g}x", lo, hi, horizon)
+            passed = ("improvement", f"faster than {1 - settings.tolerance:.3g}x", lo, hi, horizon)
+        else:
+            passed = ("no_regression", f"not slower than {1 + settings.tolerance:.3g}x", lo, hi,
+                      horizon)
+        if failures_lean_against(only_c, only_b, settings.failure_hold):
+            # the timings pass, but the candidate's failures might still decide: keep
+            # adding blocks for the failure question only
+            tracker.timing_pass = passed
+            return _held(make, passed, only_c, only_b, at_budget)
+        return make(*passed)
     if final:
         why = ("budget spent" if at_budget else "planned information spent")
         return make("inconclusive", f"{why}; the ratio is too close to the tolerance to tell",
@@ -250,40 +291,30 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
     return make(None, "undecided", lo, hi, horizon)
 
 
-@lru_cache(maxsize=4096)
-def _chi2_ppf(q: float, df: int) -> float:
-    from scipy.stats import chi2
-
-    return float(chi2.ppf(q, df))
-
-
-def _running_sd(diffs):
-    """Standard deviation of diffs[:j] for j = 1..len(diffs) (nan for j = 1)."""
-    out, s1, s2 = [], 0.0, 0.0
-    for j, x in enumerate(diffs, start=1):
-        s1 += x
-        s2 += x * x
-        out.append(math.sqrt(max(s2 - s1 * s1 / j, 0.0) / (j - 1)) if j > 1 else float("nan"))
-    return out
+def _held(make, passed, only_c: int, only_b: int, at_budget: bool) -> Judgement:
+    """A timing pass held back while the candidate's failures lean against it."""
+    verdict, reason, lo, hi, horizon = passed
+    if at_budget:
+        return make("inconclusive", f"{reason}, but the candidate alone failed in {only_c} "
+                    f"blocks and the baseline alone in {only_b}: the budget ran out before "
+                    "it was clear whether the candidate fails more often", lo, hi, horizon)
+    return make(None, f"{reason}; waiting: the candidate failed alone more often", lo, hi,
+                horizon)
 
 
-def _plan_sd(diffs, settings: GateSettings) -> float:
-    """Noise estimate that sets the planned horizon (see `GateSettings.horizon_from`)."""
+def _plan_sd(sd: float, n: int, settings: GateSettings, tracker: SpendingTracker) -> float:
+    """Noise estimate that sets the planned horizon (see `GateSettings.horizon_from`).
+
+    "ratchet": the largest estimate seen at any look of this workload with at
+    least ``ratchet_from`` usable blocks (kept on its tracker), so from there the
+    horizon may grow, never shrink; before, the current estimate.
+    """
     mode = settings.horizon_from
-    n = len(diffs)
-    first = max(2, settings.min_runs)
-    q = None
-    if "upper:" in mode:
-        q = float(mode.split("upper:")[1])
-    def adj(sd, j):
-        if q is None:
+    if mode == "ratchet":
+        if n < settings.ratchet_from:
             return sd
-        return sd * math.sqrt((j - 1) / _chi2_ppf(q, j - 1))
-    run = _running_sd(diffs)
-    if mode.startswith("ratchet"):
-        return max(1e-9, max(adj(run[j - 1], j) for j in range(first, n + 1)))
-    if mode == "pilot":
-        return max(1e-9, run[first - 1])
-    if mode == "current" or mode.startswith("upper:"):
-        return max(1e-9, adj(run[n - 1], n))
+        tracker.plan_sd = max(tracker.plan_sd, sd)
+        return tracker.plan_sd
+    if mode == "current":
+        return sd
     return float(mode)

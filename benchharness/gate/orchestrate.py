@@ -9,7 +9,11 @@ For every workload (a combination of the non-build factors' levels):
    complete blocks; the block is an additive term removed by the within-block
    difference); workloads take turns in a random order each round;
 3. after each block the workload is judged (`benchharness.gate.decide.judge`);
-   it drops out of the rotation once decided or at its budget.
+   it drops out of the rotation once decided or at its budget;
+4. a build with no successful run among its first ``never_ok_after`` runs of a
+   workload (warm-ups included) stops the whole gate at once with the verdict
+   ``never_ok`` (exit code 5, as `run` when it stops early): nothing can be compared, and spending the budget
+   on it would only delay the message.
 
 The loop talks to the outside world through an `Executor` (real processes, or
 `SimulatedExecutor` for validation) and an optional ``on_record`` callback that
@@ -26,9 +30,9 @@ from typing import Callable, Mapping, Sequence
 
 from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
 from benchharness.gate.decide import Block, GateSettings, Judgement, judge
-from benchharness.gate.sequential import SpendingTracker
 
 BASELINE, CANDIDATE = "baseline", "candidate"
+NEVER_OK_EXIT = 5
 
 
 @dataclass(frozen=True)
@@ -47,6 +51,8 @@ class GateOutcome:
     @property
     def verdict(self) -> str:
         vs = [j.verdict for j in self.judgements.values()]
+        if "never_ok" in vs:
+            return "never_ok"
         if "regression" in vs:
             return "regression"
         if "inconclusive" in vs or None in vs:
@@ -56,11 +62,14 @@ class GateOutcome:
         return "no_regression"
 
     def exit_code(self, inconclusive: str | None = None) -> int:
-        """0 no regression (improvements included), 1 regression, 3 inconclusive.
+        """0 no regression (improvements included), 1 regression, 3 inconclusive, 5 never ok.
 
-        ``inconclusive`` = ``"pass"`` maps an inconclusive verdict to 0, ``"fail"`` to 1.
+        ``inconclusive`` = ``"pass"`` maps an inconclusive verdict to 0, ``"fail"`` to 1;
+        it never applies to a build that never ran successfully (4).
         """
         v = self.verdict
+        if v == "never_ok":
+            return NEVER_OK_EXIT
         if v == "regression":
             return 1
         if v == "inconclusive":
@@ -114,6 +123,8 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
             if have < settings.max_runs:
                 budget[k] = have
     counter = {"run": 0, "position": 0}
+    # per (workload, role): [runs made, successful runs, first failure's message]
+    tally: dict[tuple[str, str], list] = {(k, r): [0, 0, ""] for k in keys for r in roles}
 
     def do(key: str, role: str, block: int, replicate: int, is_warmup: bool) -> Measurement:
         run_id = counter["run"]
@@ -127,7 +138,34 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
                 "warmup": is_warmup, "levels": dict(spec.levels), "measurement": meas,
             })
         counter["position"] += 1
+        t = tally[(key, role)]
+        t[0] += 1
+        if meas.status == "ok" and (is_warmup or response_value(meas, response) is not None):
+            t[1] += 1
+        elif not t[2]:
+            t[2] = (meas.message or meas.status) if meas.status != "ok" else \
+                f"the run ended ok but gave no value for {response}"
         return meas
+
+    def never_ok(key: str, blocks_run: int) -> Judgement | None:
+        """A never_ok judgement when a build of this workload has not succeeded yet."""
+        broken = []
+        for role in roles:
+            made, good, first = tally[(key, role)]
+            if made >= settings.never_ok_after and good == 0:
+                broken.append(f"the {role} failed all {made} of its runs (first: {first})")
+        if stored_baseline is not None:
+            st = [s for _v, s in stored_baseline.get(key, ())]
+            if st and all(s != "ok" for s in st):
+                broken.append(f"the stored baseline has no successful run ({len(st)} runs)")
+        if not broken:
+            return None
+        return Judgement(
+            verdict="never_ok", blocks=blocks_run, usable_blocks=0, ratio=None, lower=None,
+            upper=None, horizon_blocks=settings.max_runs, alpha=settings.failure_alpha(m),
+            reason="; ".join(broken) + "; nothing to compare: fix the command or the build",
+            baseline_failures=sum(b.baseline_status != "ok" for b in blocks.get(key, [])),
+            candidate_failures=sum(b.candidate_status != "ok" for b in blocks.get(key, [])))
 
     warmups = 0
     for _ in range(max(0, int(warmup))):
@@ -137,18 +175,26 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
                 warmups += 1
 
     blocks: dict[str, list[Block]] = {k: [] for k in keys}
-    alpha_w = settings.design(m).alpha
-    trackers = {k: SpendingTracker(alpha_w) for k in keys}
+    trackers = {k: settings.tracker(m) for k in keys}
     judgements: dict[str, Judgement] = {}
     open_keys = [k for k in keys]
+    stopped = None
     for k in keys:
-        if budget[k] < settings.min_runs:
+        j = never_ok(k, 0)
+        if j is not None:
+            judgements[k] = stopped = j
+            break
+    if stopped is not None:
+        open_keys = []
+    for k in keys:
+        if budget[k] < settings.min_runs and k not in judgements:
             judgements[k] = Judgement(
                 verdict="inconclusive", blocks=0, usable_blocks=0, ratio=None, lower=None,
                 upper=None, horizon_blocks=budget[k], alpha=(1 - settings.confidence) / m,
                 reason=f"only {budget[k]} stored baseline runs; at least "
                        f"{settings.min_runs} are needed")
-            open_keys.remove(k)
+            if k in open_keys:
+                open_keys.remove(k)
     block_no = 0
     runs = 0
     while open_keys:
@@ -168,11 +214,26 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
                 bs = "failed" if bv is None else bs
                 cs = "failed" if cv is None else cs
             blocks[k].append(Block(bv, cv, bs, cs))
+            stopped = never_ok(k, len(blocks[k]))
+            if stopped is not None:
+                judgements[k] = stopped
+                open_keys = []
+                break
             s = settings if budget[k] == settings.max_runs else _with_budget(settings, budget[k])
             j = judge(blocks[k], s, m, trackers[k])
             if j.decided:
                 judgements[k] = j
                 open_keys.remove(k)
+    if stopped is not None:
+        for k in keys:
+            if k not in judgements:
+                judgements[k] = Judgement(
+                    verdict="inconclusive", blocks=len(blocks[k]),
+                    usable_blocks=0, ratio=None, lower=None, upper=None,
+                    horizon_blocks=budget[k], alpha=settings.failure_alpha(m),
+                    reason="not judged: the gate stopped because a build never ran "
+                           "successfully")
+        judgements = {k: judgements[k] for k in keys}
     return GateOutcome(settings=settings, response=response, judgements=judgements,
                        workload_levels={k: dict(v) for k, v in workloads.items()},
                        runs=runs, warmups=warmups,

@@ -4,7 +4,8 @@ Pure functions from a `GateOutcome` to text (the command writes the files).
 JUnit XML is the de facto format CI systems read: one ``testsuite`` named
 ``benchharness gate``, one ``testcase`` per workload, a ``failure`` element on
 a regression, a ``skipped`` element on an inconclusive verdict (so it shows up
-without failing the job; the exit code still reports it).
+without failing the job; the exit code still reports it), an ``error`` element
+when a build never ran successfully (nothing was measured).
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ WORDS = {
     "no_regression": "ok",
     "improvement": "FASTER",
     "inconclusive": "UNDECIDED",
+    "never_ok": "NEVER-OK",
 }
 
 OVERALL = {
@@ -26,6 +28,7 @@ OVERALL = {
     "no_regression": "no workload got slower beyond the tolerance",
     "improvement": "every workload got faster",
     "inconclusive": "not enough evidence either way within the budget",
+    "never_ok": "a build never ran successfully, so nothing was compared (exit code 5)",
 }
 
 
@@ -70,7 +73,7 @@ def terminal_lines(out: GateOutcome) -> list[str]:
 def markdown_summary(out: GateOutcome, folder: Path | None = None) -> str:
     s = out.settings
     icon = {"regression": "FAIL", "no_regression": "PASS", "improvement": "PASS",
-            "inconclusive": "UNDECIDED"}[out.verdict]
+            "inconclusive": "UNDECIDED", "never_ok": "BROKEN"}[out.verdict]
     md = [f"### Performance gate: {icon}", "",
           f"{OVERALL[out.verdict].capitalize()} (response `{out.response}`, tolerance "
           f"{s.tolerance * 100:g}%, confidence {s.confidence:g}).", ""]
@@ -94,7 +97,7 @@ def junit_xml(out: GateOutcome) -> str:
         "name": "benchharness gate", "tests": str(len(cases)),
         "failures": str(sum(j.verdict == "regression" for _, j in cases)),
         "skipped": str(sum(j.verdict == "inconclusive" for _, j in cases)),
-        "errors": "0",
+        "errors": str(sum(j.verdict == "never_ok" for _, j in cases)),
     })
     for key, j in cases:
         tc = ET.SubElement(suite, "testcase", {"classname": "benchharness.gate", "name": key})
@@ -107,12 +110,25 @@ def junit_xml(out: GateOutcome) -> str:
             f.text = text
         elif j.verdict == "inconclusive":
             ET.SubElement(tc, "skipped", {"message": f"inconclusive: {text}"})
+        elif j.verdict == "never_ok":
+            e = ET.SubElement(tc, "error", {"message": f"never ran successfully: {j.reason}",
+                                            "type": "build never ran successfully"})
+            e.text = text
         so = ET.SubElement(tc, "system-out")
         so.text = text
     suites = ET.Element("testsuites")
     suites.append(suite)
     ET.indent(suites)
     return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(suites, encoding="unicode") + "\n"
+
+
+def _method(s) -> str:
+    est = ("outlier-resistant location of the block log differences (Huber proposal 2 "
+           "scale, Tukey biweight location, sandwich standard error)" if s.estimator == "robust"
+           else "mean of the block log differences (t statistic)")
+    return (f"{est}; group-sequential repeated confidence bounds, Lan-DeMets "
+            "O'Brien-Fleming-type alpha spending; failure rates by an exact sequential sign "
+            "test on discordant blocks (Pocock-type spending); Bonferroni across workloads")
 
 
 def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
@@ -126,8 +142,7 @@ def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
         "confidence": s.confidence,
         "max_runs": s.max_runs,
         "min_runs": s.min_runs,
-        "method": "group-sequential repeated confidence bounds, Lan-DeMets "
-                  "O'Brien-Fleming-type alpha spending, Bonferroni across workloads",
+        "method": _method(s),
         "stored_baseline": out.stored_baseline,
         "warnings": list(out.warnings),
         "runs": out.runs,

@@ -48,7 +48,9 @@ is a simultaneous upper bound. Any stopping rule built from ``L`` and ``U``
 however the stopping time depends on the data.
 
 Unknown ``sigma``: the gate uses the t statistics ``T_k = sqrt(n_k) (m_k -
-mu) / s_k``. Their joint law at the looks is free of ``mu`` and ``sigma``, so
+mu) / s_k`` (or, by default, the studentized outlier-resistant location of
+`benchharness.gate.robust`, whose law is equally free of ``mu`` and ``sigma``;
+`SpendingTracker(statistic="robust")` simulates it on the same raw paths). Their joint law at the looks is free of ``mu`` and ``sigma``, so
 boundaries ``b_k`` with the same spending,
 ``P(T_j < b_j, j < k; T_k >= b_k) = A(t_k) - A(t_{k-1})``, are found on a fixed
 set of seeded simulated null paths (`t_boundaries`, `SpendingTracker`): at each
@@ -63,9 +65,11 @@ a fixed-size one-sided paired t-test at level ``a`` needs for power ``1 - beta``
 at the design distance ``delta`` (the gate: the log distance from ``1 + tol``
 to ``1 + 2 tol``), Guenther's (1981) approximation
 ``((z_a + z_beta) / (delta / sigma))^2 + z_a^2 / 2`` (the gate: beta = 0.05), times
-a factor ``H`` (the gate: 0.8, tuned by simulation),
+a factor ``H`` (the gate: 1.0, tuned by simulation),
 capped at the budget. ``sigma`` is planned with the largest ``s_j`` seen at any
-look so far (the horizon may grow, never shrink) and re-planned at every look. When
+look from 16 blocks on (the horizon may grow, never shrink; before that the
+current ``s``, since with fewer blocks one slow run can dominate any estimate)
+and re-planned at every look. When
 ``n_k >= N`` the whole level is spent: that look is final. What earlier looks
 really spent is counted on the same null paths under the boundaries really
 used (`SpendingTracker`), so a moving horizon never makes the total exceed
@@ -301,6 +305,38 @@ def _null_t_stream(looks, paths, seed):
         yield mean * np.sqrt(n / var)
 
 
+_RAW_CHUNK = 160
+
+
+@lru_cache(maxsize=1)
+def _null_raw(paths: int, seed: int, rows: int):
+    """``rows`` x ``paths`` seeded standard normal draws (float32): the raw null paths.
+
+    A longer table starts with the rows of a shorter one (same seed, drawn row
+    by row), so the paths stay the same whatever length is asked for.
+    """
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    return rng.standard_normal((rows, paths), dtype=np.float32)
+
+
+@lru_cache(maxsize=1024)
+def _null_robust_column(paths: int, seed: int, n: int):
+    """Studentized robust statistics (`benchharness.gate.robust`) of the null paths after n blocks."""
+    import numpy as np
+
+    from benchharness.gate.robust import robust_t
+
+    rows = -(-n // _RAW_CHUNK) * _RAW_CHUNK
+    raw = _null_raw(paths, seed, rows)
+    out = np.empty(paths)
+    step = 8192
+    for a in range(0, paths, step):
+        out[a:a + step] = robust_t(raw[:n, a:a + step].T.astype(np.float64))
+    return out
+
+
 class SpendingTracker:
     """Alpha spent so far by one sequential test, on the shared simulated null paths.
 
@@ -312,7 +348,13 @@ class SpendingTracker:
     that moves between looks never makes the total exceed ``alpha``.
     """
 
-    def __init__(self, alpha: float, paths: int = 60_000, seed: int = 19830101):
+    def __init__(self, alpha: float, paths: int = 60_000, seed: int = 19830101,
+                 statistic: str = "t"):
+        if statistic not in ("t", "robust"):
+            raise ValueError("statistic must be 't' or 'robust'")
+        self.statistic = statistic
+        self.plan_sd = 0.0          # largest noise estimate seen at any look (horizon ratchet)
+        self.timing_pass = None     # a pass by the timings held back for the failure question
         self.alpha = float(alpha)
         self.paths = int(paths)
         self.seed = int(seed)
@@ -328,6 +370,8 @@ class SpendingTracker:
     def _column(self, n: int):
         import numpy as np
 
+        if self.statistic == "robust":
+            return _null_robust_column(self.paths, self.seed, n)
         if n <= _PATH_CACHE_MAX:
             upto = next(u for u in (20, 40, 80, _PATH_CACHE_MAX) if u >= n)
             return _null_t_paths(self.paths, self.seed, upto)[:, n]

@@ -11,6 +11,12 @@ noncentral t distribution.
 
     python experiments/bench/gate_validation.py            # full figures (>= 2000 gates each)
     python experiments/bench/gate_validation.py --gates 300 # quicker look
+    python experiments/bench/gate_validation.py --cvs 0.08 --sections rates   # one part
+
+Sections: ``rates`` (noise CV x true ratio, clean and with 5% of runs 1.5x as
+slow), ``drift``, ``workloads`` (three workloads at the boundary), ``failures``
+(flaky builds: equal failure rates, candidate or baseline failing more often,
+a build that never succeeds).
 
 The simulated system draws times, it does not sleep; machine noise does not
 enter these figures.
@@ -47,10 +53,12 @@ def wilson(k: int, n: int, z: float = 1.959964) -> tuple[float, float]:
 
 
 def simulate_gate(ratio: float, cv: float, seed: int, settings: GateSettings,
-                  drift_per_run: float = 0.0, workloads: int = 1):
-    """One simulated gate session; returns the judgement of each workload."""
+                  drift_per_run: float = 0.0, workloads: int = 1, outliers: float = 0.0,
+                  failure_prob=None, outcome: bool = False):
+    """One simulated gate session; returns the judgement of each workload (or the outcome)."""
     model = SimulatedModel(effects={"build": {"old": 1.0, "new": ratio}}, cv=cv,
-                           drift_per_run=drift_per_run)
+                           drift_per_run=drift_per_run, outlier_prob=outliers,
+                           failure_prob=failure_prob or {})
     ex = SimulatedExecutor(model, seed=seed)
     wl = {f"w{i}": {"w": str(i)} for i in range(workloads)}
 
@@ -59,7 +67,7 @@ def simulate_gate(ratio: float, cv: float, seed: int, settings: GateSettings,
                        levels={**wl[key], "build": LEVEL[role]})
 
     out = run_gate(wl, spec, ex, settings, seed=seed + 10_000_019, warmup=1)
-    return list(out.judgements.values())
+    return out if outcome else list(out.judgements.values())
 
 
 def baseline_first(ratio: float, cv: float, seed: int, settings: GateSettings, n: int,
@@ -79,13 +87,15 @@ def baseline_first(ratio: float, cv: float, seed: int, settings: GateSettings, n
     return judge(blocks, fixed, 1)
 
 
-def scenario(name, ratio, cv, gates, settings, drift=0.0, workloads=1, seed0=0):
+def scenario(name, ratio, cv, gates, settings, drift=0.0, workloads=1, seed0=0, outliers=0.0):
     t0 = time.time()
-    verdicts = {"regression": 0, "no_regression": 0, "improvement": 0, "inconclusive": 0}
+    verdicts = {"regression": 0, "no_regression": 0, "improvement": 0, "inconclusive": 0,
+                "never_ok": 0}
     runs = 0
     count = 0
     for g in range(gates):
-        for j in simulate_gate(ratio, cv, seed0 + 7919 * g + 1, settings, drift, workloads):
+        for j in simulate_gate(ratio, cv, seed0 + 7919 * g + 1, settings, drift, workloads,
+                               outliers):
             verdicts[j.verdict] += 1
             runs += j.blocks
             count += 1
@@ -106,80 +116,108 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--gates", type=int, default=2000)
     ap.add_argument("--tolerance", type=float, default=0.05)
+    ap.add_argument("--cvs", default="0.03,0.05,0.08", help="noise CVs of the rates section")
+    ap.add_argument("--sections", default="rates,drift,workloads,failures")
+    ap.add_argument("--ratios", default=None,
+                    help="true ratios of the rates section (default: 1, 1+t, 1+2t, and "
+                         "without outliers 1+4t, 1-2t)")
+    ap.add_argument("--outliers", default="0,0.05",
+                    help="shares of runs 1.5x as slow in the rates section")
+    ap.add_argument("--estimator", default="robust", choices=("robust", "mean"))
     args = ap.parse_args(argv)
     tol = args.tolerance
-    st = GateSettings(tolerance=tol)
+    st = GateSettings(tolerance=tol, estimator=args.estimator)
     alpha = 1 - st.confidence
     G = args.gates
+    sections = set(args.sections.split(","))
     print(f"gate validation: tolerance {tol:.0%}, confidence {st.confidence}, min_runs "
-          f"{st.min_runs}, max_runs {st.max_runs}, {G} simulated gates per row")
+          f"{st.min_runs}, max_runs {st.max_runs}, estimator {st.estimator}, {G} simulated "
+          "gates per row")
     print("rates with 95% Wilson intervals; runs = runs of each build per workload\n")
 
-    rows = []
-    for cv in (0.03, 0.05, 0.08):
+    if "rates" in sections:
+        for cv in (float(c) for c in args.cvs.split(",")):
+            nfix = fixed_pairs(alpha, st.beta, st.design_delta / sigma_d(cv))
+            print(f"noise CV {cv:.0%}: fixed-size design with the same error rates "
+                  f"(one-sided paired t-test, level {alpha:g}, power {1 - st.beta:g} at "
+                  f"{1 + 2 * tol:g}x): {nfix} runs of each build")
+            print(f"  {'outliers':>8}  {'true ratio':>10}  {'fail (regression)':>26}  "
+                  f"{'pass':>8}  {'undecided':>9}  {'mean runs':>9}  {'vs fixed':>8}")
+            for outliers in (float(o) for o in args.outliers.split(",")):
+                ratios = (1.0, 1 + tol, 1 + 2 * tol) if outliers else \
+                    (1.0, 1 + tol, 1 + 2 * tol, 1 + 4 * tol, 1 - 2 * tol)
+                if args.ratios:
+                    ratios = tuple(float(r) for r in args.ratios.split(","))
+                for ratio in ratios:
+                    r = scenario(f"cv{cv}", ratio, cv, G, st, outliers=outliers)
+                    v, n = r["verdicts"], r["gates"]
+                    passed = v["no_regression"] + v["improvement"]
+                    print(f"  {outliers:>8.0%}  {ratio:>10.2f}  "
+                          f"{fmt_rate(v['regression'], n):>26}  "
+                          f"{100 * passed / n:7.2f}%  {100 * v['inconclusive'] / n:8.2f}%  "
+                          f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}   "
+                          f"({r['seconds']:.0f} s)", flush=True)
+            print()
+
+    if "drift" in sections:
+        # Drift as large as the effect: over the n runs of a fixed design the machine
+        # slows by the design effect log(1 + 2 tol).
+        cv = 0.03
         nfix = fixed_pairs(alpha, st.beta, st.design_delta / sigma_d(cv))
-        print(f"noise CV {cv:.0%}: fixed-size design with the same error rates "
-              f"(one-sided paired t-test, level {alpha:g}, power {1 - st.beta:g} at "
-              f"{1 + 2 * tol:g}x): {nfix} runs of each build")
-        print(f"  {'true ratio':>10}  {'fail (regression)':>26}  {'pass':>8}  {'undecided':>9}  "
-              f"{'mean runs':>9}  {'vs fixed':>8}")
-        for ratio in (1.0, 1 + tol, 1 + 2 * tol, 1 + 4 * tol, 1 - 2 * tol):
-            r = scenario(f"cv{cv}", ratio, cv, G, st)
-            v, n = r["verdicts"], r["gates"]
-            passed = v["no_regression"] + v["improvement"]
-            print(f"  {ratio:>10.2f}  {fmt_rate(v['regression'], n):>26}  "
-                  f"{100 * passed / n:7.2f}%  {100 * v['inconclusive'] / n:8.2f}%  "
-                  f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}   ({r['seconds']:.0f} s)")
-            rows.append((r, nfix))
-        print()
-
-    # At CV 3% the fixed design needs only ~11 runs, so the default first look at
-    # 6 blocks is itself more than half of it: show the large effects with an earlier look.
-    from dataclasses import replace
-
-    st3 = replace(st, min_runs=3)
-    nfix = fixed_pairs(alpha, st.beta, st.design_delta / sigma_d(0.03))
-    print(f"noise CV 3% with --min-runs 3 (first look after 3 blocks); fixed design {nfix} runs")
-    for ratio in (1.0, 1 + 2 * tol, 1 + 4 * tol, 1 - 2 * tol):
-        r = scenario("cv0.03-min3", ratio, 0.03, G, st3)
+        drift = math.log1p(2 * tol) / nfix
+        print(f"drift: log-time rises {drift:.4f} per run (over {nfix} runs as much as a "
+              f"{2 * tol:.0%} slowdown), true ratio 1.00, CV {cv:.0%}")
+        r = scenario("drift", 1.0, cv, G, st, drift=drift)
         v, n = r["verdicts"], r["gates"]
-        passed = v["no_regression"] + v["improvement"]
-        print(f"  {ratio:>10.2f}  {fmt_rate(v['regression'], n):>26}  "
-              f"{100 * passed / n:7.2f}%  {100 * v['inconclusive'] / n:8.2f}%  "
-              f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}")
-    print()
+        print(f"  interleaved gate:        false fail {fmt_rate(v['regression'], n)}, "
+              f"undecided {100 * v['inconclusive'] / n:.2f}%, mean runs {r['mean_runs']:.2f}")
+        r = scenario("drift-boundary", 1 + tol, cv, G, st, drift=drift)
+        v, n = r["verdicts"], r["gates"]
+        print(f"  interleaved gate at the boundary ratio {1 + tol:.2f}: fail "
+              f"{fmt_rate(v['regression'], n)}, undecided {100 * v['inconclusive'] / n:.2f}%")
+        k = 0
+        for g in range(G):
+            j = baseline_first(1.0, cv, 7919 * g + 3, st, nfix, drift)
+            k += j.verdict == "regression"
+        print(f"  all baseline runs first: false fail {fmt_rate(k, G)} (fixed design, {nfix} "
+              "runs of each build)")
+        print(flush=True)
 
-    # Drift as large as the effect: over the n runs of a fixed design the machine
-    # slows by the design effect log(1 + 2 tol).
-    cv = 0.03
-    nfix = fixed_pairs(alpha, st.beta, st.design_delta / sigma_d(cv))
-    drift = math.log1p(2 * tol) / nfix
-    print(f"drift: log-time rises {drift:.4f} per run (over {nfix} runs as much as a "
-          f"{2 * tol:.0%} slowdown), true ratio 1.00, CV {cv:.0%}")
-    r = scenario("drift", 1.0, cv, G, st, drift=drift)
-    v, n = r["verdicts"], r["gates"]
-    print(f"  interleaved gate:        false fail {fmt_rate(v['regression'], n)}, "
-          f"undecided {100 * v['inconclusive'] / n:.2f}%, mean runs {r['mean_runs']:.2f}")
-    r = scenario("drift-boundary", 1 + tol, cv, G, st, drift=drift)
-    v, n = r["verdicts"], r["gates"]
-    print(f"  interleaved gate at the boundary ratio {1 + tol:.2f}: fail "
-          f"{fmt_rate(v['regression'], n)}, undecided {100 * v['inconclusive'] / n:.2f}%")
-    k = 0
-    for g in range(G):
-        j = baseline_first(1.0, cv, 7919 * g + 3, st, nfix, drift)
-        k += j.verdict == "regression"
-    print(f"  all baseline runs first: false fail {fmt_rate(k, G)} (fixed design, {nfix} runs "
-          "of each build)")
-    print()
+    if "workloads" in sections:
+        # Several workloads: Bonferroni alpha/m, "no regression anywhere" needs no more.
+        m = 3
+        fails = 0
+        for g in range(G // 2):
+            js = simulate_gate(1 + tol, 0.03, 104729 * g + 5, st, workloads=m)
+            fails += any(j.verdict == "regression" for j in js)
+        print(f"{m} workloads, each at true ratio {1 + tol:.2f} (the boundary), alpha/{m} each: "
+              f"gates failing anywhere {fmt_rate(fails, G // 2)}")
+        print(flush=True)
 
-    # Several workloads: Bonferroni alpha/m, "no regression anywhere" needs no more.
-    m = 3
-    fails = 0
-    for g in range(G // 2):
-        js = simulate_gate(1 + tol, 0.03, 104729 * g + 5, st, workloads=m)
-        fails += any(j.verdict == "regression" for j in js)
-    print(f"{m} workloads, each at true ratio {1 + tol:.2f} (the boundary), alpha/{m} each: "
-          f"gates failing anywhere {fmt_rate(fails, G // 2)}")
+    if "failures" in sections:
+        print("failures (true ratio 1.00, CV 3%): failure probability of each run per build")
+        cases = [("equal, 10% each", {"old": 0.1, "new": 0.1}),
+                 ("equal, 30% each", {"old": 0.3, "new": 0.3}),
+                 ("candidate 30%, baseline 0%", {"new": 0.3}),
+                 ("candidate 20%, baseline 5%", {"old": 0.05, "new": 0.2}),
+                 ("baseline 30%, candidate 0%", {"old": 0.3}),
+                 ("candidate 100% (never succeeds)", {"new": 1.0}),
+                 ("baseline 100% (never succeeds)", {"old": 1.0})]
+        for label, fp in cases:
+            t0 = time.time()
+            counts = {"regression": 0, "no_regression": 0, "improvement": 0,
+                      "inconclusive": 0, "never_ok": 0}
+            runs = 0
+            for g in range(G):
+                out = simulate_gate(1.0, 0.03, 31337 * g + 11, st, failure_prob={"build": fp},
+                                    outcome=True)
+                counts[out.verdict] += 1
+                runs += out.runs / 2
+            passed = counts["no_regression"] + counts["improvement"]
+            print(f"  {label:<32} regression {fmt_rate(counts['regression'], G)}  pass "
+                  f"{100 * passed / G:6.2f}%  undecided {100 * counts['inconclusive'] / G:6.2f}%"
+                  f"  never ok {100 * counts['never_ok'] / G:6.2f}%  mean runs {runs / G:6.2f}"
+                  f"   ({time.time() - t0:.0f} s)", flush=True)
     return 0
 
 
