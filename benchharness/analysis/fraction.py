@@ -314,13 +314,13 @@ def format_fraction(result: dict) -> str:
             flag = "active" if with_p else "active (beyond SME)"
         elif e.get("likely"):
             flag = "likely (beyond ME)"
-        row = [e["label"], f"{e['estimate']:+.4g}", ratio]
+        row = [e.get("chain") or e["term"], e["label"], f"{e['estimate']:+.4g}", ratio]
         if with_p:
             row.append(f"{e['p']:.3g} (Holm {e['p_holm']:.3g})")
         elif with_lenth:
             row.append(f"{e['p']:.3g}" if e.get("p") is not None else "")
         rows.append(row + [flag])
-    header = (["effect", "estimate", "ratio"] + (["p"] if with_p else [])
+    header = (["alias chain", "letters", "estimate", "ratio"] + (["p"] if with_p else [])
               + (["p (Lenth)"] if with_lenth else []) + [""])
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h)
               for i, h in enumerate(header)]
