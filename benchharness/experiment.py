@@ -179,7 +179,7 @@ MAX_DEPTH = 40
 #: Most runs a plan may hold unless the file raises the limit with ``max_runs:``.
 DEFAULT_MAX_RUNS = 1_000_000
 #: Highest ``max_runs:`` accepted: every planned run is held in memory.
-MAX_RUNS_CEILING = 20_000_000
+MAX_RUNS_CEILING = 5_000_000
 #: Most values (scalars, lists, mappings) the file may stand for once its
 #: aliases (``*name``) are expanded; each node is measured once, never walked twice.
 MAX_VALUES = 100_000

@@ -123,6 +123,9 @@ def test_max_runs_is_the_override(tmp_path):
     import json
 
     assert json.loads(proc.stdout)["runs"] == 1200
+    # the override has a ceiling: every planned run is held in memory
+    p = write(tmp_path, base + "max_runs: 6000000\n")
+    one_line_error(run_cli("plan", p, timeout=LIMIT_S), f"{p}:5:11", "at most 5,000,000")
 
 
 def test_adaptive_maximum_counts_against_the_limit(tmp_path):
