@@ -21,6 +21,11 @@ def validate_sections(exp) -> None:
     from benchharness.execute.controls import parse_controls
     from benchharness.quality import quality_config
 
+    from benchharness.design import check_plan_size
+    from benchharness.host import host_check_mode
+
+    check_plan_size(exp)  # before anything is built: the planned-run limit
+    host_check_mode(exp)
     controls = parse_controls(exp)
     _check_controls(exp, controls)
     quality_config(exp)  # expect / metrics / samples / perf

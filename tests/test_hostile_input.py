@@ -243,6 +243,11 @@ BEFORE_RUN = {
                      'pin: "5-2"\n', ":4:6:", ["LOW <= HIGH"]),
     "pin-huge": ('experiment: pin\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
                  'pin: "0-99999999"\n', ":4:6:", ["CPU 99999999", "at most 8191"]),
+    # found by the fuzz test: plan accepted it, run refused it (after starting its launcher)
+    "host-check": ('experiment: hc\ncommand: [echo, "{a}"]\nfactors: {a: [x]}\n'
+                   "host_check: off\n 1000000000\n", ":4:13:", ["'host_check' is 'off 1000000000'"]),
+    "run-limit": ('experiment: many\ncommand: [echo, "{a}"]\nfactors: {a: [x, y]}\n'
+                  "replicates: 1000000000\n", ":4:1:", ["2,000,000,000 runs"]),
     "pin-absent-cpu-in-one-cell": ('experiment: pin\ncommand: [echo, "{c}"]\n'
                                    'factors: {c: ["0", "8191"]}\npin: "{c}"\n',
                                    ":4:6:", ["CPU 8191 does not exist"]),

@@ -29,7 +29,14 @@ def build_plan(exp, seed=None, **kwargs):
                      blocks_of_cell=choice.blocks_of_cell(), info=info, **kwargs)
 
 
-def _check_size(exp, choice, kwargs) -> None:
+def check_plan_size(exp) -> int:
+    """The number of runs `run` would plan for ``exp``; `ExperimentError` above its limit."""
+    from benchharness.design.spec import design_of
+
+    return _check_size(exp, design_of(exp), {})
+
+
+def _check_size(exp, choice, kwargs) -> int:
     """Refuse a plan above the experiment's run limit before building it.
 
     The count is the one `run` plans: adaptive replication plans its maximum.
@@ -44,4 +51,5 @@ def _check_size(exp, choice, kwargs) -> None:
         rule = adaptive_rule(exp)
         reps = max(exp.replicates, rule.max_replicates) if rule is not None else exp.replicates
     warm = kwargs.get("warmup")
-    check_planned_runs(exp, n_cells, int(reps), int(exp.warmup if warm is None else warm))
+    return check_planned_runs(exp, n_cells, int(reps),
+                              int(exp.warmup if warm is None else warm))

@@ -1162,7 +1162,12 @@ def main(argv=None):
     # requests are held); it runs when the launcher is about to wait, at most
     # once a second.
     gc.disable()
-    Launcher(rfd, wfd, qfd).serve()
+    try:
+        Launcher(rfd, wfd, qfd).serve()
+    except BrokenPipeError:
+        # The harness closed its end before the first exchange (it stopped at a
+        # mistake found while the launcher started): nothing ran, nothing to say.
+        os._exit(0)
     # Nothing is buffered and nothing needs cleaning up: skip the interpreter's
     # teardown, which the harness would otherwise wait for at the end of a run.
     os._exit(0)
