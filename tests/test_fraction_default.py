@@ -302,3 +302,23 @@ def test_report_of_an_unreplicated_fraction_explains_lenth(tmp_path, cli):
     assert "No replicates, so the noise is judged from the effects themselves (Lenth 1989)" in frac
     assert "Active: a (+ b:d + c:e); e (+ a:c)." in frac
     assert "| a (+ b:d + c:e) |" in md.split("## Analysis of variance")[1].replace("**", "")
+
+
+def test_fraction_in_confounded_blocks_enters_its_blocks(tmp_path, cli):
+    # Planted: cache x1.3 and a shift of the later blocks (a slowing machine); the design
+    # confounds one chain with the blocks, which must be reported, not estimated.
+    text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
+            " '{pin}', '{log}']\nfactors:\n" + FACTORS + "  log: [sync, async]\n"
+            "design: {resolution: 4, blocks: 2}\nreplicates: 2\nseed: 3\n")
+    model = SimulatedModel(effects={"cache": {"on": 1.3}}, cv=0.03, drift_per_run=0.01)
+    out = run_folder(tmp_path, text, model, seed=6)
+    a = analysis_json(cli, out.folder, "--transform", "log")
+    assert a["block"] == "block"
+    confounded = a["fraction"]["confounded_with_blocks"]
+    assert len(confounded) == 1
+    assert len(a["fraction"]["effects"]) == 15 - 1
+    rows = {r["term"]: r for r in a["anova"]}
+    assert rows["block"]["df"] == 3
+    assert significant(a) == {"block", "cache"}
+    eff = {e["term"]: e for e in a["fraction"]["effects"]}
+    assert eff["cache"]["ratio"] == pytest.approx(1.3, rel=0.05)

@@ -153,6 +153,17 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     sections = getattr(exp, "sections", None) or {}
     if hasattr(sections, "get") and sections.get("gate") is not None:
         order_blocked = True
+    # A two-level design in confounded blocks (design: {blocks: N} / block_on): its blocks
+    # are part of the plan, so they enter the model (the chains confounded with them are
+    # then reported, not estimated).
+    if hasattr(sections, "get") and sections.get("design") is not None:
+        try:
+            from benchharness.design.spec import design_of
+
+            if design_of(exp).blocking is not None:
+                order_blocked = True
+        except Exception:  # noqa: BLE001 - a bad design section is reported by plan/run
+            pass
     has_hosts = "host" in columns and df["host"].astype(str).nunique() > 1
     if block is False or block == "":
         block = None
