@@ -333,12 +333,13 @@ def derive(d: dict) -> list[dict]:
 
 
 def _p_text(r: dict) -> str:
-    """The p of a term as stated: Holm-adjusted over the table's terms when that differs."""
+    """The p of a term as stated: Holm-adjusted over the table's terms, with the F test's
+    own p beside it when the two read differently."""
     p, ph = r.get("p"), r.get("p_holm")
-    if ph is None or p is None or abs(ph - p) <= 1e-12 * max(p, 1e-300):
-        return fmt_p(p)
+    if ph is None or p is None or fmt_p(ph) == fmt_p(p):
+        return fmt_p(p if ph is None else ph)
     alone = fmt_p(p).replace("p = ", "").replace("p < ", "< ")
-    return f"{fmt_p(ph)} Holm-adjusted over the terms, {alone} alone"
+    return f"{fmt_p(ph)} after Holm over the terms, {alone} alone"
 
 
 def _simple_finding(c, x, y, term, alpha, conf) -> dict:
