@@ -226,7 +226,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     from benchharness.analysis import effects as ef
     from benchharness.analysis import transform as tr
     from benchharness.analysis.cells import index_cells, moments
-    from benchharness.analysis.model import design, fit_model, model_terms, _basis
+    from benchharness.analysis.model import design, fit_model, limit_terms, model_terms, _basis
     from benchharness.analysis.prepare import prepare
 
     if not (isinstance(alpha, (int, float)) and 0 < alpha < 1):
@@ -288,6 +288,11 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     fcells = cells if block_index is None else index_cells(codes[:block_index], sizes[:block_index])
     y = prep.y
     N = len(y)
+    limit = limit_terms(terms, names, sizes, cells.count, N)   # cost follows what is estimable
+    if limit.message:
+        terms = limit.terms
+        notes.append(limit.message)
+        model = limit.order
     n_cells = np.bincount(cells.row_cell, minlength=cells.count).astype(float)
 
     # ---- scale -----------------------------------------------------------------------------
@@ -520,6 +525,10 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     model_dict = {"spec": str(spec), "terms": [t.name for t in terms], "ss_type": fit.ss_type,
                   "ss_type_requested": ss_type, "alpha": alpha, "adjust": adjust,
                   "rank": fit.rank, "mse": mse if df_res > 0 else None,
+                  "limited": ({"reason": limit.reason, "order": limit.order,
+                               "parameters_requested": limit.requested,
+                               "parameters_fitted": limit.fitted, "message": limit.message}
+                              if limit.message else None),
                   "references": {fnames[i]: flevels[i][j] for i, j in refs.items()}}
     from benchharness.analysis import findings as fd
 

@@ -84,7 +84,8 @@ def art_anova(codes, sizes, names, z, terms, ss_type, alpha, anova_p: dict,
         step = 1e-10 * (float(np.abs(aligned).max()) or 1.0)
         ranks = stats.rankdata(np.round(aligned / step))
         rmom = moments(cells.row_cell, ranks, cells.count, n=n_cells)
-        fit = fit_model(cells, rmom, terms, ss_type)
+        # only the one sum of squares kept: a fit per term, not a table per term
+        fit = fit_model(cells, rmom, terms, ss_type, only=(t.name,))
         row = next(x for x in fit.table if x.term == t.name)
         F_ = p = None
         if fit.df_resid > 0 and row.df > 0 and fit.rss > 0 and np.isfinite(row.sum_sq):

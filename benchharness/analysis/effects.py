@@ -18,7 +18,6 @@ the columns of terms contained in the margin.
 from __future__ import annotations
 
 import math
-from itertools import product
 
 import numpy as np
 
@@ -26,9 +25,44 @@ from benchharness.analysis.model import Fit, sum_contrasts
 from benchharness.analysis import transform as tr
 
 
-def margin_rows(fit: Fit, factors: tuple[int, ...]):
-    """Averaging rows L (G, p) for every combination of the levels of ``factors``."""
-    combos = np.array(list(product(*[range(fit.sizes[f]) for f in factors])), dtype=np.int64)
+#: most level combinations `margin_estimates` evaluates (beyond: None, nothing ranked)
+MAX_MARGIN_CELLS = 2_000_000
+#: rows of L built at a time by `margin_estimates` (memory: this × parameters × 8 bytes)
+MARGIN_CHUNK = 20_000
+
+
+def level_combos(sizes) -> np.ndarray:
+    """(G, k) every combination of levels, the last factor varying fastest."""
+    G = int(np.prod(sizes, dtype=np.int64)) if len(sizes) else 1
+    if not len(sizes):
+        return np.zeros((1, 0), dtype=np.int64)
+    return np.stack(np.unravel_index(np.arange(G), tuple(sizes)), axis=1).astype(np.int64)
+
+
+def margin_estimates(fit: Fit, factors: tuple[int, ...]):
+    """(combos, est, se, ok) of every combination of ``factors``, built in chunks.
+
+    Memory stays O(MARGIN_CHUNK × parameters) however many combinations there
+    are; (None, None, None, None) above `MAX_MARGIN_CELLS` combinations.
+    """
+    sizes = [fit.sizes[f] for f in factors]
+    if float(np.prod(sizes, dtype=np.float64)) > MAX_MARGIN_CELLS:
+        return None, None, None, None
+    combos = level_combos(sizes)
+    parts = []
+    for a in range(0, len(combos), MARGIN_CHUNK):
+        _, L = margin_rows(fit, factors, combos[a:a + MARGIN_CHUNK])
+        parts.append(linear_estimates(fit, L))
+    est, se, ok = (np.concatenate([p_[i] for p_ in parts]) for i in range(3))
+    return combos, est, se, ok
+
+
+def margin_rows(fit: Fit, factors: tuple[int, ...], combos=None):
+    """Averaging rows L (G, p) for every combination of the levels of ``factors``
+    (or for the given (G, k) ``combos``)."""
+    if combos is None:
+        combos = level_combos([fit.sizes[f] for f in factors])
+    combos = np.asarray(combos, dtype=np.int64).reshape(-1, len(factors))
     G = len(combos)
     L = np.zeros((G, fit.X.shape[1]))
     L[:, 0] = 1.0

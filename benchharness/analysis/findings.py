@@ -41,6 +41,8 @@ KINDS = ("interaction", "simple effect", "main", "best", "caution")
 TIED_NAMED = 6
 #: more cells than this: no tied set is computed (k² differences)
 MAX_CELLS_FOR_TIES = 2000
+#: at most this many cells (the best first) are listed in ``best["cells"]``
+MAX_CELLS_LISTED = 2000
 
 
 # ---------------------------------------------------------------------------------------------
@@ -112,12 +114,13 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     from scipy import stats
 
     from benchharness.analysis import transform as tr
-    from benchharness.analysis.effects import contrast_result, linear_estimates, margin_rows
+    from benchharness.analysis.effects import contrast_result, margin_estimates, margin_rows
 
     if not setting_idx:
         return None
-    combos, L = margin_rows(fit, tuple(setting_idx))
-    est, se, ok = linear_estimates(fit, L)
+    combos, est, se, ok = margin_estimates(fit, tuple(setting_idx))   # bounded memory
+    if combos is None:
+        return None
     keep = np.flatnonzero(ok & np.isfinite(est))
     if len(keep) == 0:
         return None
@@ -127,19 +130,19 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     k = len(order)
     mean = tr.inverse(est[order], choice)
     cells = []
-    for g, c in enumerate(order):
+    for g, c in enumerate(order[:MAX_CELLS_LISTED]):
         cells.append({"levels": {names[f]: levels[f][combos[c][j]]
                                  for j, f in enumerate(setting_idx)},
                       "mean": _num(mean[g]), "estimate": _num(est[c]), "se": _num(se[c])})
     out = {"factors": [names[f] for f in setting_idx], "cells": cells, "tied": [0],
            "runner_up": None, "outside": None, "critical": None, "better": better,
-           "tested": False, "response": response}
+           "tested": False, "response": response, "cells_total": int(k)}
     if k < 2:
         return out
     have_error = fit.df_resid > 0 and math.isfinite(fit.mse) and fit.mse > 0
     d = float(stats.t.ppf(1 - alpha / (2 * (k - 1)), fit.df_resid)) if have_error else None
     out["critical"] = d
-    Lk = L[order]
+    Lk = margin_rows(fit, tuple(setting_idx), combos[order[:MAX_CELLS_LISTED]])[1]
     best = 0
     if have_error and k <= MAX_CELLS_FOR_TIES:
         V = (Lk @ fit.cov_unscaled @ Lk.T) * fit.mse
@@ -169,7 +172,7 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
                 "distinguishable": dist}
 
     out["runner_up"] = pair(1)
-    outside = [i for i in range(1, k) if i not in out["tied"]]
+    outside = [i for i in range(1, min(k, MAX_CELLS_LISTED)) if i not in out["tied"]]
     if out["tested"] and outside and outside[0] != 1:
         out["outside"] = pair(outside[0])
     return out

@@ -19,6 +19,17 @@ orthogonal to the terms it is adjusted for, computed from orthonormal bases
 linearly dependent; the rank drop tells which effects lose degrees of freedom
 (inestimable effects), and Type III, which is then not uniquely defined, falls
 back to Type II with a note.
+
+Cost. The cell design has one row per *observed* cell and one column per
+parameter, never a row per run nor a row per possible cell. It is factored
+once (pivoted QR), and every later projection works on the small triangular
+factor instead of the design (an orthogonal change of basis keeps every sum of
+squares). A term contained in no other term is tested from the full fit by
+the Wald form b' V⁻¹ b when the fit has full rank (equal to the extra sum of
+squares; Searle 1971, ch. 5). `limit_terms` keeps the requested term set only
+while it has no more parameters than runs and stays under
+`MAX_PARAMETERS` and `MAX_WORK`; otherwise the highest-order interactions are
+left out and the caller says so.
 """
 
 from __future__ import annotations
@@ -73,6 +84,114 @@ def model_terms(names, model="full", block_index=None) -> list[Term]:
         for combo in combinations(factor_idx, r):
             terms.append(Term(combo, ":".join(names[i] for i in combo)))
     return terms
+
+
+#: the largest number of parameters (columns of the cell design) a model may have.
+MAX_PARAMETERS = 2000
+#: the largest estimated work of one fit, in floating-point operations (about 10 s on one
+#: busy core of the development machine at the top; see `fit_work`).
+MAX_WORK = 2.0e9
+
+
+def parameter_count(terms, sizes) -> int:
+    """Columns of the cell design of ``terms``: 1 + the product of (levels - 1) per term."""
+    p = 1
+    for t in terms:
+        d = 1
+        for f in t.factors:
+            d *= max(int(sizes[f]) - 1, 0)
+        p += d
+    return p
+
+
+def fit_work(terms, sizes, n_cells: int) -> float:
+    """Estimated floating-point operations of `fit_model`.
+
+    One QR of the (cells × p) design; a term contained in no other is tested
+    from the full fit (cheap), each other term needs a QR of the p-column
+    triangular factor.
+    """
+    terms = list(terms)
+    p = parameter_count(terms, sizes)
+    c = max(int(n_cells), 1)
+    inner = sum(1 for t in terms
+                if any(o is not t and set(o.factors) > set(t.factors) for o in terms))
+    return 2.0 * c * p * p + 2.0 * inner * float(p) ** 3
+
+
+@dataclass(frozen=True)
+class TermLimit:
+    """What `limit_terms` kept: the terms, their order and why (None when all were kept)."""
+
+    terms: list
+    order: int | None           # highest interaction order kept (None: unchanged)
+    requested: int              # parameters of the requested term set
+    fitted: int                 # parameters of the kept term set
+    reason: str | None          # "rows", "parameters" or "work"
+    message: str | None         # one line for the user
+
+
+def limit_terms(terms, names, sizes, n_cells: int, n_rows: int) -> TermLimit:
+    """Leave out the highest-order interactions until the model can be fitted.
+
+    A model cannot estimate more parameters than it has runs; beyond that,
+    and beyond `MAX_PARAMETERS` or `MAX_WORK`, interactions are dropped from the
+    top order down (the block and main effects always stay). When even the
+    main effects do not fit, `UsageError` says which factor is too large.
+    """
+    terms = list(terms)
+    p_req = parameter_count(terms, sizes)
+    def fits(ts):
+        p = parameter_count(ts, sizes)
+        if p > max(int(n_rows), 1):
+            return "rows"
+        if p > MAX_PARAMETERS:
+            return "parameters"
+        if fit_work(ts, sizes, n_cells) > MAX_WORK:
+            return "work"
+        return None
+
+    why = fits(terms)
+    if why is None:
+        return TermLimit(terms, None, p_req, p_req, None, None)
+    top = max((len(t.factors) for t in terms if not t.is_block), default=1)
+    kept, order, last = terms, top, (top, p_req, why)   # last: the smallest order refused
+    while order > 1:
+        order -= 1
+        kept = [t for t in terms if t.is_block or len(t.factors) <= order]
+        w = fits(kept)
+        if w is None:
+            break
+        last = (order, parameter_count(kept, sizes), w)
+    else:
+        kept = [t for t in terms if t.is_block or len(t.factors) <= 1]
+        if fits(kept) is not None:
+            big = max((t for t in kept if not t.is_block), key=lambda t: sizes[t.factors[0]],
+                      default=None)
+            what = (f"the main effects need {parameter_count(kept, sizes):,} parameters"
+                    + (f" ({big.name} alone has {sizes[big.factors[0]]:,} levels)" if big else ""))
+            raise UsageError(
+                f"cannot analyse: {what}, {_limit_text(fits(kept), n_cells, n_rows)}; analyse "
+                "fewer levels (a subset of the runs, or levels grouped into a coarser factor)")
+    p_fit = parameter_count(kept, sizes)
+    n_main = sum(1 for t in terms if not t.is_block and len(t.factors) == 1)
+    req = "the full model" if top == n_main else f"the model with interactions up to order {top}"
+    fitted = "main effects only" if order == 1 else f"interactions up to order {order}"
+    msg = (f"{req} has {p_req:,} parameters, {_limit_text(why, n_cells, n_rows)}; "
+           f"fitted {fitted} ({p_fit:,} parameters) instead")
+    if last[0] != top:
+        msg += (f" (interactions up to order {last[0]} would need {last[1]:,} parameters, "
+                f"{_limit_text(last[2], n_cells, n_rows)})")
+    return TermLimit(kept, order, p_req, p_fit, why, msg)
+
+
+def _limit_text(why, n_cells, n_rows) -> str:
+    if why == "rows":
+        return (f"more than {n_rows:,} runs ({n_cells:,} distinct cells) can estimate")
+    if why == "parameters":
+        return f"above the analysis limit of {MAX_PARAMETERS:,} parameters"
+    return "too much work for one analysis (above the analysis limit of %.0e operations)" \
+        % MAX_WORK
 
 
 def sum_contrasts(k: int) -> np.ndarray:
@@ -206,7 +325,21 @@ def _confounded_with(Xw, slices, t, earlier):
     return out
 
 
-def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
+def _factor(Xw: np.ndarray):
+    """Pivoted QR of the weighted design: (Q (C, r), R (r, p) in the original column order)."""
+    from scipy.linalg import qr
+
+    if Xw.shape[1] == 0 or Xw.shape[0] == 0:
+        return np.zeros((Xw.shape[0], 0)), np.zeros((0, Xw.shape[1]))
+    q, r, piv = qr(Xw, mode="economic", pivoting=True, check_finite=False)
+    d = np.abs(np.diag(r))
+    rank = int(np.count_nonzero(d > (d[0] if d.size else 0.0) * 1e-10 * max(Xw.shape)))
+    R = np.empty((rank, Xw.shape[1]))
+    R[:, piv] = r[:rank]
+    return q[:, :rank], R
+
+
+def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None) -> Fit:
     """Fit the model and compute Type II or III sums of squares for every term.
 
     A term whose columns are entirely explained by earlier terms (aliasing in a
@@ -215,22 +348,27 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
     carried by the earlier terms it is confounded with (they list it in
     ``aliases``). Terms that only lose part of their degrees of freedom (empty
     cells) stay in, and what needs the missing cells is not estimable.
+
+    ``only``: names of the terms whose sums of squares are wanted (default
+    all); the others get NaN (the rank-based cross-check needs one per fit).
     """
     terms = tuple(terms)
     X, slices = design(cells.levels, terms, cells.sizes)
     Xw = X * np.sqrt(mom.n)[:, None]
-    if np.linalg.matrix_rank(Xw) >= X.shape[1]:
-        return _fit(cells, mom, terms, ss_type)
-    seq = _sequential_df(Xw, slices, terms)
+    Q, R = _factor(Xw)
+    if R.shape[0] >= X.shape[1]:
+        return _fit(cells, mom, terms, ss_type, only, pre=(X, slices, Q, R))
+    # R has the inner products of Xw's columns: projections on it keep every length
+    seq = _sequential_df(R, slices, terms)
     dropped = [t for t in terms if seq[t.name] == 0 and not _single_level(t, cells.sizes)]
     if not dropped:
-        return _fit(cells, mom, terms, ss_type)
+        return _fit(cells, mom, terms, ss_type, only, pre=(X, slices, Q, R))
     kept = tuple(t for t in terms if t not in dropped)
-    fit = _fit(cells, mom, kept, ss_type)
+    fit = _fit(cells, mom, kept, ss_type, only)
     partners = {}
     for t in dropped:
         earlier = [s for s in terms[: terms.index(t)] if s in kept]
-        partners[t.name] = _confounded_with(Xw, slices, t, earlier)
+        partners[t.name] = _confounded_with(R, slices, t, earlier)
     carried = {}
     for d, ps in partners.items():
         for p_ in ps:
@@ -259,57 +397,76 @@ def _single_level(t: Term, sizes) -> bool:
     return any(sizes[f] < 2 for f in t.factors)
 
 
-def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
+def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=None) -> Fit:
     if ss_type not in (2, 3):
         raise UsageError(f"sums of squares type {ss_type!r} is not supported; use 2 or 3")
     terms = tuple(terms)
     sizes = cells.sizes
-    X, slices = design(cells.levels, terms, sizes)
     w = np.sqrt(mom.n)
-    Xw = X * w[:, None]
+    if pre is None:
+        X, slices = design(cells.levels, terms, sizes)
+        Q, R = _factor(X * w[:, None])
+    else:
+        X, slices, Q, R = pre
+    p = X.shape[1]
     yw = mom.mean * w
     n_obs = mom.total_n
     ss_within = float(mom.ss_within.sum())
 
-    u, s, vt = np.linalg.svd(Xw, full_matrices=False)
-    keep = s > (s[0] if s.size else 0.0) * 1e-10 * max(Xw.shape)
-    u_r, s_r, vt_r = u[:, keep], s[keep], vt[keep]
+    # Xw = Q R; the SVD of the small R gives the minimum-norm solution and (X'WX)^+
+    _, s, vt = np.linalg.svd(R, full_matrices=False)
+    keep = s > (s[0] if s.size else 0.0) * 1e-10 * max(X.shape)
+    s_r, vt_r = s[keep], vt[keep]
     rank = int(keep.sum())
-    coef = u_r.T @ yw
-    beta = vt_r.T @ (coef / s_r)
+    zq = Q.T @ yw                     # coordinates of the projection of yw on col(Xw)
+    beta = vt_r.T @ (((vt_r @ R.T) @ zq) / s_r**2) if rank else np.zeros(p)
     cov_unscaled = (vt_r.T / s_r**2) @ vt_r
-    resid_w = yw - u_r @ coef
+    fitted_w = Q @ zq
+    resid_w = yw - fitted_w
     rss = ss_within + float(resid_w @ resid_w)
-    fitted = (u_r @ coef) / w
-    leverage = (u_r**2).sum(axis=1) / mom.n
+    fitted = fitted_w / w
+    leverage = (Q**2).sum(axis=1) / mom.n
     df_resid = n_obs - rank
 
     notes = []
     used_type = ss_type
-    if ss_type == 3 and rank < X.shape[1]:
+    if ss_type == 3 and rank < p:
         used_type = 2
         notes.append("Type III sums of squares are not uniquely defined when cells are empty "
                      "(the model is rank deficient); Type II sums of squares are reported instead")
-    col = {t.name: Xw[:, slices[t.name]] for t in terms}
-    intercept = Xw[:, :1]
+    wanted = None if only is None else set(only)
+    col = {t.name: R[:, slices[t.name]] for t in terms}
+    intercept = R[:, :1]
+    full_rank = rank == p and R.shape[0] == p
     table = []
     for t in terms:
         ft = set(t.factors)
+        df_full = 1
+        for f in t.factors:
+            df_full *= sizes[f] - 1
+        if wanted is not None and t.name not in wanted:
+            table.append(TermSS(t.name, 0, df_full, float("nan"), t.is_block,
+                                "not computed"))
+            continue
         if used_type == 2:
             others = [o for o in terms if o is not t and not set(o.factors) >= ft]
         else:
             others = [o for o in terms if o is not t]
-        a = np.hstack([intercept] + [col[o.name] for o in others])
-        b1 = _basis(a)
-        xt = col[t.name]
-        r = xt - b1 @ (b1.T @ xt)
-        b2 = _basis(r, scale=_norm2(xt))
-        proj = b2.T @ yw
-        ss = float(proj @ proj)
-        df = int(b2.shape[1])
-        df_full = 1
-        for f in t.factors:
-            df_full *= sizes[f] - 1
+        sl = slices[t.name]
+        if full_rank and len(others) == len(terms) - 1 and sl.stop > sl.start:
+            # adjusted for every other term: the Wald form from the full fit
+            bt = beta[sl]
+            ss = float(bt @ np.linalg.solve(cov_unscaled[sl, sl], bt))
+            df = sl.stop - sl.start
+        else:
+            a = np.hstack([intercept] + [col[o.name] for o in others])
+            b1 = _basis(a)
+            xt = col[t.name]
+            r = xt - b1 @ (b1.T @ xt)
+            b2 = _basis(r, scale=_norm2(xt))
+            proj = b2.T @ zq
+            ss = float(proj @ proj)
+            df = int(b2.shape[1])
         note = None
         if df_full == 0:
             note = "no effect to estimate: a factor in this term has a single level"
@@ -322,6 +479,6 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2) -> Fit:
         table.append(TermSS(t.name, df, df_full, ss, t.is_block, note))
 
     return Fit(terms=terms, sizes=sizes, cells=cells, moments=mom, X=X, slices=slices,
-               beta=beta, cov_unscaled=cov_unscaled, rowspace=vt_r, basis=u_r, rank=rank,
+               beta=beta, cov_unscaled=cov_unscaled, rowspace=vt_r, basis=Q, rank=rank,
                n_obs=n_obs, df_resid=df_resid, ss_within=ss_within, rss=rss, fitted=fitted,
                leverage=leverage, table=tuple(table), ss_type=used_type, notes=tuple(notes))

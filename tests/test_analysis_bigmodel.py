@@ -1,0 +1,110 @@
+"""Cost that follows what the data can estimate: large, partly run designs (invented data).
+
+The truth is planted (fixed seeds); the checks are what `analyze` says (its
+notes, its findings, its exit code) and, for the sums of squares of the model
+it fitted, statsmodels ``ols`` + ``anova_lm`` (Type II) on the same rows and terms.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from benchharness.analysis import analyze
+from benchharness.analysis import model as model_mod
+from analysis_refs import assert_same_anova, sm_anova
+
+ROOT = Path(__file__).resolve().parents[1]
+NAMES = ["threads", "cache", "batch", "compaction", "bloom"]
+
+
+def partial_plan(rows=600, seed=3):
+    """A 5 × 10-level plan (100,000 cells) in random order, stopped after ``rows`` runs.
+
+    Planted: threads changes the time by up to about ×1.5 (10 levels), cache
+    by ×1.3, the other three nothing; lognormal noise of 5 %.
+    """
+    rng = np.random.default_rng(seed)
+    order = rng.permutation(np.repeat(np.arange(10 ** 5), 2))[:rows]
+    codes = [(order // 10 ** (4 - j)) % 10 for j in range(5)]
+    logy = (np.log(0.05) + np.linspace(0, 0.4, 10)[codes[0]]
+            + np.linspace(0, 0.25, 10)[codes[1]] + rng.normal(0, 0.05, rows))
+    d = pd.DataFrame({n: np.char.add("v", c.astype(str)) for n, c in zip(NAMES, codes)})
+    d["wall_s"] = np.exp(logy)
+    return d
+
+
+def test_partly_run_large_design_never_builds_rows_by_cells(monkeypatch):
+    d = partial_plan()
+    shapes = []
+    real = model_mod.design
+
+    def spy(levels, terms, sizes):
+        X, sl = real(levels, terms, sizes)
+        shapes.append(X.shape)
+        return X, sl
+
+    monkeypatch.setattr(model_mod, "design", spy)
+    an = analyze(d, factors=NAMES, transform="log", block=False, art=True)
+    # one run per cell: the requested model (up to order 4) has 40,951 columns; what is
+    # built stays within the rows
+    assert shapes and max(c for _, c in shapes) <= len(d)
+    assert max(r * c for r, c in shapes) < len(d) * 10 ** 5 / 100
+    lim = an.model["limited"]
+    assert lim["parameters_requested"] == 40951 and lim["parameters_fitted"] <= len(d)
+    said = [n for n in an.notes if "fitted" in n and "instead" in n]
+    assert len(said) == 1 and "40,951 parameters" in said[0] and "600 runs" in said[0]
+    # the planted truth: threads and cache matter, the other three do not
+    p = {r["term"]: r["p"] for r in an.anova_rows if r.get("p") is not None}
+    assert p["threads"] < 1e-6 and p["cache"] < 1e-6
+    assert all(p[f] > 0.001 for f in ("batch", "compaction", "bloom"))
+    # the cross-check follows the fitted model, one F test per fitted term
+    assert {r["term"] for r in an.art["terms"]} == {t for t in an.model["terms"]}
+
+
+def test_incomplete_design_type2_matches_statsmodels():
+    # source: statsmodels ols + anova_lm(typ=2) on the same rows and the same terms
+    # (every pair of factors fully observed, a third of the three-factor cells empty)
+    rng = np.random.default_rng(11)
+    full = [(a, b, c) for a in range(3) for b in range(4) for c in range(3)]
+    keep = [cell for i, cell in enumerate(full) if i % 3 != 1]
+    rows = [cell for cell in keep for _ in range(2)]
+    d = pd.DataFrame(rows, columns=["a", "b", "c"]).astype(str)
+    d["y"] = (1.0 + 0.3 * d["a"].astype(int) + 0.1 * (d["b"] == "2")
+              + 0.2 * (d["a"] == "1") * (d["c"] == "2") + rng.normal(0, 0.05, len(d)))
+    an = analyze(d, response="y", factors=["a", "b", "c"], transform="none", model=2,
+                 block=False)
+    ref, _ = sm_anova(d, "y", ["a", "b", "c"], typ=2, order=2)
+    assert_same_anova(an, ref)
+
+
+def test_limit_message_names_what_was_fitted():
+    sizes = [2] * 10
+    names = [f"f{i}" for i in range(10)]
+    terms = model_mod.model_terms(names, "full")
+    lim = model_mod.limit_terms(terms, names, sizes, n_cells=181, n_rows=200)
+    # 1 + 10 + 45 + 120 = 176 parameters up to order 3; 386 up to order 4
+    assert lim.order == 3 and lim.fitted == 176 and lim.requested == 1024
+    assert lim.message.startswith("the full model has 1,024 parameters, more than 200 runs")
+    assert "fitted interactions up to order 3 (176 parameters) instead" in lim.message
+    assert "order 4 would need 386 parameters" in lim.message
+
+
+def test_too_many_levels_for_any_model_is_one_line_exit_2(tmp_path):
+    n = model_mod.MAX_PARAMETERS + 500
+    d = pd.DataFrame({"input": [f"in{i}" for i in range(n)] * 2,
+                      "wall_s": np.random.default_rng(1).uniform(1, 2, 2 * n)})
+    csv = tmp_path / "runs.csv"
+    d.to_csv(csv, index=False)
+    res = subprocess.run([sys.executable, "-m", "benchharness", "analyze", str(csv),
+                          "--factors", "input"], cwd=ROOT, capture_output=True, text=True,
+                         timeout=120)
+    assert res.returncode == 2
+    err = res.stderr.strip().splitlines()
+    assert len(err) == 1 and "Traceback" not in res.stderr
+    assert f"input alone has {n:,} levels" in err[0] and "cannot analyse" in err[0]
