@@ -230,9 +230,14 @@ def verdict(data: ReportData) -> dict[str, Any]:
             if len(cells) == 1:
                 out["recommendation"] = "Recommended: " + cell_label(cells[0], list(cells[0]))
             elif cells and len(cells) < len(data.analysis.get("best", {}).get("cells") or []):
-                out["recommendation"] = ("Recommended: any of the tied set, "
-                                         + "; ".join(cell_label(c, list(c)) for c in cells[:6])
-                                         + (" …" if len(cells) > 6 else ""))
+                top = f.get("best") or cells[0]
+                others = [c for c in cells if c != top]
+                out["recommendation"] = (
+                    "Recommended: " + cell_label(top, list(top)) + " (best measured; "
+                    + "; ".join(cell_label(c, list(c)) for c in others[:5])
+                    + (" …" if len(others) > 5 else "")
+                    + (" is" if len(others) == 1 else " are")
+                    + " not distinguishable from it)")
             elif cells:
                 out["recommendation"] = ("No recommendation: no cell is distinguishable from "
                                          "the best")
