@@ -226,7 +226,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     from benchharness.analysis import effects as ef
     from benchharness.analysis import transform as tr
     from benchharness.analysis.cells import index_cells, moments
-    from benchharness.analysis.model import design, fit_model, limit_terms, model_terms, _basis
+    from benchharness.analysis.model import (ZERO_SPREAD, _basis, design, fit_model, limit_terms,
+                                             model_terms)
     from benchharness.analysis.prepare import prepare
 
     if not (isinstance(alpha, (int, float)) and 0 < alpha < 1):
@@ -295,6 +296,12 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         model = limit.order
     n_cells = np.bincount(cells.row_cell, minlength=cells.count).astype(float)
 
+    # ---- no variation at all, or none within cells ------------------------------------------
+    constant = bool(N and float(np.ptp(y)) <= ZERO_SPREAD * float(np.max(np.abs(y))))
+    ymom = moments(cells.row_cell, y, cells.count, n=n_cells)
+    within_zero = bool(float(ymom.ss_within.sum())
+                       <= ZERO_SPREAD**2 * float((ymom.n * ymom.mean**2).sum()))
+
     # ---- scale -----------------------------------------------------------------------------
     positive = bool(np.all(y > 0))
     profile = None
@@ -305,8 +312,10 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         df_res = N - B.shape[1]
         if df_res <= 0:
             why = "no residual degrees of freedom"
-        elif float(np.ptp(y)) == 0:
+        elif constant:
             why = "all responses are equal"
+        elif within_zero and B.shape[1] >= cells.count:
+            why = "every run in a cell gave the same value"
         else:
             prof = tr.BoxCoxProfile(y, cells.row_cell, n_cells,
                                     None if B.shape[1] >= cells.count else B, df=df_res)
@@ -326,6 +335,20 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     mse = fit.mse
     grand = float((mom.n * mom.mean).sum() / N)
     ss_total = float(mom.ss_within.sum() + (mom.n * (mom.mean - grand) ** 2).sum())
+    no_variation = None
+    if constant or fit.exact:
+        # zero variance is a finding of its own, never an F test on round-off
+        value = f"{float(y[0]):.6g}"
+        if constant:
+            no_variation = {"kind": "constant", "statement": (
+                f"Every run gave the same {prep.response} ({value}): no factor changed it in "
+                "these runs, and with no variation there is nothing to test (no F tests)")}
+        else:
+            no_variation = {"kind": "within cells", "statement": (
+                f"Every run in a cell gave the same {prep.response}: there is no run-to-run "
+                "variation, so no F tests (they need an error term); the differences between "
+                "cells are shown as measured, untested")}
+        notes.append(no_variation["statement"])
     anova_rows, anova_p = [], {}
     for row in fit.table:
         ms = row.sum_sq / row.df if row.df > 0 else float("nan")
@@ -335,7 +358,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
             p = float(stats.f.sf(F, row.df, df_res))
             anova_p[row.term] = p
         peta, omega = ef.effect_sizes(row.sum_sq, row.df, fit.rss, ss_total, mse)
-        if df_res <= 0:  # no error estimate: SS/(SS + 0) = 1 would say nothing
+        if df_res <= 0 or no_variation:  # no error estimate: SS/(SS + 0) = 1 says nothing
             peta = omega = None
         anova_rows.append({"term": row.term, "df": row.df, "sum_sq": row.sum_sq,
                            "mean_sq": ms, "F": F, "p": p, "partial_eta_sq": peta,
@@ -343,8 +366,9 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
                            "df_full": row.df_full, "note": row.note,
                            "aliases": list(row.aliases)})
     anova_rows.append({"term": "Residual", "df": df_res,
-                       "sum_sq": fit.rss if df_res > 0 else 0.0,  # round-off only
-                       "mean_sq": mse if df_res > 0 else None, "F": None, "p": None,
+                       "sum_sq": fit.rss if df_res > 0 and not no_variation else 0.0,
+                       "mean_sq": mse if df_res > 0 and not no_variation else None,
+                       "F": None, "p": None,   # (0.0 above: round-off only)
                        "partial_eta_sq": None, "omega_sq": None, "kind": "residual"})
     for row in fit.table:
         if row.note:
@@ -407,7 +431,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     if hosts is not None:
         diagnostics["hosts"] = hosts
     studentized = None
-    if df_res > 0:
+    if df_res > 0 and not no_variation:
         scale = np.sqrt(np.clip(1.0 - lev_rows, 0.0, None))
         use = scale > 1e-8
         diagnostics["normality"] = dg.normality(resid[use] / scale[use], alpha)
@@ -430,7 +454,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         if "load_1m" in prep.extra:
             diagnostics["load"] = _load_check(resid, prep.extra["load_1m"], alpha)
     else:
-        skipped = {"verdict": "not checked: no residual degrees of freedom"}
+        skipped = {"verdict": "not checked: " + ("no variation between runs" if no_variation
+                                                 else "no residual degrees of freedom")}
         diagnostics.update(normality=dict(skipped, test=None, statistic=None, p=None),
                            equal_variance=dict(skipped, test=None, statistic=None, p=None),
                            outliers=[], drift=dict(skipped, slope_per_100_runs=None, p=None),
@@ -439,6 +464,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     diagnostics["small_cells"] = dg.small_cells(
         fmom.n, fmom.ss_within, lambda c: {fnames[j]: flevels[j][fcells.levels[c, j]]
                                            for j in range(len(fnames))})
+    if no_variation:    # zero spread everywhere is the finding itself, not a cell's problem
+        diagnostics["small_cells"] = [c for c in diagnostics["small_cells"] if c["n"] < 2]
     assumptions_ok = (diagnostics["normality"].get("ok", True)
                       and diagnostics["equal_variance"].get("ok", True))
     diagnostics["assumptions_ok"] = bool(assumptions_ok)
@@ -446,7 +473,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     # ---- rank-based cross-check ----------------------------------------------------------
     art_result = None
     run_art = (art is True) or (art == "auto" and not assumptions_ok and N <= ART_AUTO_MAX_ROWS)
-    if run_art and df_res > 0:
+    if run_art and df_res > 0 and not no_variation:
         rows = _run_art(codes, sizes, names, z, terms, ss_type, alpha, anova_p,
                         fit.fitted[cells.row_cell])
         art_result = {"reason": "requested" if art is True else
@@ -524,7 +551,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
               "model_cells": cells.count, "df_resid": df_res, "level_order": prep.order_source}
     model_dict = {"spec": str(spec), "terms": [t.name for t in terms], "ss_type": fit.ss_type,
                   "ss_type_requested": ss_type, "alpha": alpha, "adjust": adjust,
-                  "rank": fit.rank, "mse": mse if df_res > 0 else None,
+                  "rank": fit.rank, "mse": mse if df_res > 0 and not no_variation else None,
+                  "no_variation": no_variation,
                   "limited": ({"reason": limit.reason, "order": limit.order,
                                "parameters_requested": limit.requested,
                                "parameters_fitted": limit.fitted, "message": limit.message}
@@ -534,7 +562,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
 
     roles = _roles_of(prep.experiment, fnames, flevels)
     best = None
-    if len(fnames):
+    if len(fnames) and not constant:     # every cell equal: nothing to choose between
         setting = _setting_factors(roles, fnames)
         best = fd.best_cells(fit, names, levels, setting, choice, alpha, better,
                              prep.response)

@@ -231,6 +231,8 @@ def derive(d: dict) -> list[dict]:
     rows = [r for r in d.get("anova") or []
             if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
     out: list[dict] = []
+    if ((d.get("model") or {}).get("no_variation") or {}).get("kind") == "constant":
+        return _cautions(d, alpha)[:1]   # every run the same: that is the whole finding
 
     def sig_row(r):
         p = r.get("p_holm", r.get("p"))
@@ -488,6 +490,9 @@ def _cautions(d: dict, alpha: float) -> list[dict]:
 
     dg = d.get("diagnostics") or {}
     res_df = (d.get("counts") or {}).get("df_resid")
+    still = (d.get("model") or {}).get("no_variation")
+    if still:   # zero variance: a finding of its own (analysis/__init__.py)
+        caution("no_variation", still["statement"])
     lenth = any(r.get("test") for r in d.get("anova") or [])
     if res_df is not None and res_df <= 0 and lenth:
         caution("residual_df", "No replicates: each effect was judged by Lenth's method "

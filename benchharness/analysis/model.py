@@ -86,6 +86,11 @@ def model_terms(names, model="full", block_index=None) -> list[Term]:
     return terms
 
 
+#: relative spread below which a response counts as having no variation at all: the
+#: residual root mean square under this fraction of the root mean square value is
+#: round-off of equal values (double precision keeps about 16 digits).
+ZERO_SPREAD = 1e-12
+
 #: the largest number of parameters (columns of the cell design) a model may have.
 MAX_PARAMETERS = 2000
 #: the largest estimated work of one fit, in floating-point operations (about 10 s on one
@@ -282,9 +287,13 @@ class Fit:
     ss_type: int                # the type actually reported
     notes: tuple[str, ...] = field(default=())
     left_out: tuple[str, ...] = field(default=())   # terms confounded with earlier ones
+    #: no residual variation (round-off only): nothing can be tested against the error
+    exact: bool = False
 
     @property
     def mse(self) -> float:
+        if self.exact:
+            return float("nan")
         return self.rss / self.df_resid if self.df_resid > 0 else float("nan")
 
     def estimable(self, L: np.ndarray) -> np.ndarray:
@@ -427,6 +436,9 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=Non
     fitted = fitted_w / w
     leverage = (Q**2).sum(axis=1) / mom.n
     df_resid = n_obs - rank
+    # the uncentred sum of squares: the size of the values, against which round-off is judged
+    size = float((mom.n * mom.mean**2).sum()) + ss_within
+    exact = df_resid > 0 and rss <= ZERO_SPREAD**2 * size
 
     notes = []
     used_type = ss_type
@@ -468,6 +480,8 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=Non
             ss = float(proj @ proj)
             df = int(b2.shape[1])
         note = None
+        if exact and ss <= ZERO_SPREAD**2 * size:
+            ss = 0.0        # round-off of equal values
         if df_full == 0:
             note = "no effect to estimate: a factor in this term has a single level"
             ss = float("nan")
@@ -481,4 +495,5 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=Non
     return Fit(terms=terms, sizes=sizes, cells=cells, moments=mom, X=X, slices=slices,
                beta=beta, cov_unscaled=cov_unscaled, rowspace=vt_r, basis=Q, rank=rank,
                n_obs=n_obs, df_resid=df_resid, ss_within=ss_within, rss=rss, fitted=fitted,
-               leverage=leverage, table=tuple(table), ss_type=used_type, notes=tuple(notes))
+               leverage=leverage, table=tuple(table), ss_type=used_type, notes=tuple(notes),
+               exact=bool(exact))
