@@ -189,7 +189,12 @@ def analyze(data, response: str = "wall_s", factors=None, block=None, transform=
     simple-effect, declared and pairwise families (interval and p always from
     the same adjustment). ``compare``: declared comparisons (see
     ``comparisons.parse_declared``); default: the experiment's ``compare:``.
-    ``art``: "auto" (run when assumptions fail and at most 50,000 rows), True, False.
+    ``art``: the rank-based cross-check on the analysed scale, following ``model``:
+    "auto" (run when normality or equal variances is not ``ok`` and at most 50,000
+    rows), True (always), False (never; the CLI's ``--no-cross-check``).
+    ``transform``: "auto" (the log scale for a positive, ratio-scaled response
+    unless the Box-Cox evidence and the log-scale checks both argue against it;
+    see ``transform.choose``), "log", "none" or "boxcox".
     ``comparisons``: True (default family: Tukey HSD for each significant main
     effect outside significant interactions, simple effects inside significant
     two-factor interactions, declared comparisons), False (none; faster in

@@ -731,6 +731,8 @@ def boxcox_plot(data: ReportData) -> Figure | None:
     top = float(ll.max())
     cut = top - 0.5 * 3.841458820694124  # χ²₁ 95% quantile / 2 (Box & Cox 1964)
     ax.axhline(cut, color=MUTED, lw=0.9, ls=":", label="95% interval cut-off")
+    cut99 = top - 0.5 * 6.6348966010212145  # χ²₁ 99% quantile / 2: the scale rule's strong evidence
+    ax.axhline(cut99, color=MUTED, lw=0.9, ls="--", label="99% interval cut-off")
     ci = tr.get("lambda_ci")
     if isinstance(ci, (list, tuple)) and len(ci) == 2 and all(finite(v) for v in ci):
         ax.axvspan(float(ci[0]), float(ci[1]), color=PALETTE[4], alpha=0.18,
@@ -744,15 +746,17 @@ def boxcox_plot(data: ReportData) -> Figure | None:
         word = {"log": "log", "none": "no transform", "boxcox": "Box-Cox"}.get(name, name)
         ax.axvline(float(chosen), color=ACCENT, lw=2, label=f"chosen λ = {float(chosen):g} "
                                                              f"({word})")
-    lo = min(cut - 0.6 * (top - cut) - 1, float(np.percentile(ll, 20)))
+    lo = min(cut99 - 0.6 * (top - cut99) - 1, float(np.percentile(ll, 20)))
     ax.set_ylim(lo, top + 0.25 * (top - lo))
     ax.set_xlabel("λ (Box-Cox power: 1 = as measured, 0 = log, −1 = reciprocal)")
     ax.set_ylabel("log-likelihood")
     ax.set_title("Box-Cox profile likelihood")
     ax.legend(fontsize=7.5, loc="upper left", bbox_to_anchor=(1.01, 1.0))
-    cap = ("How well each power transform of the response fits the model. The peak is the "
-           "best-fitting λ; every λ above the dotted line is consistent with the data. "
-           "The thick line is the transform the analysis used.")
+    cap = ("How well each power transform of the response fits the model (residual degrees "
+           "of freedom in place of the number of runs). The peak is the best-fitting λ; every "
+           "λ above the dotted line is consistent with the data at 95%. The analysis leaves "
+           "the log scale (λ = 0) only when λ = 0 falls below the dashed 99% line and the "
+           "checks on the log scale fail. The thick line is the transform the analysis used.")
     return _render(fig, "boxcox", "Box-Cox profile likelihood", cap, "diagnostics")
 
 
