@@ -437,3 +437,21 @@ def test_compare_command_says_which_scale(tmp_path, cli):
     assert out.returncode == 0, out.stderr
     assert ("Compared on the log scale, the default for a positive, ratio-scaled response."
             in " ".join(out.stdout.split()))
+
+
+def test_profile_sentences():
+    from benchharness.analysis.transform import Profile
+
+    def say(lh, ci, ci99, open_=(False, False)):
+        return Profile(lh, ci, open_, (), (), 0.0, ci99, 20.0).sentence()
+
+    assert say(0.05, (-0.3, 0.4), (-0.45, 0.55)) == (
+        "the data are consistent with the log scale (λ̂ = 0.05, 95% interval −0.30 to 0.40)")
+    assert say(0.6, (0.1, 1.1), (-0.1, 1.3)) == (
+        "the data lean away from the log scale, but not strongly (λ̂ = 0.60, 95% interval 0.10 "
+        "to 1.10; λ = 0 is inside the 99% interval −0.10 to 1.30)")
+    assert say(0.9, (0.5, 1.3), (0.4, 1.4)) == (
+        "the data are not consistent with the log scale (λ̂ = 0.90, 95% interval 0.50 to 1.30; "
+        "99% interval 0.40 to 1.40); they are consistent with no transform (λ = 1)")
+    assert "95% interval −0.01 to 5.00 or higher" in say(5.0, (-0.01, 5.0), (-0.3, 5.0),
+                                                            (False, True))

@@ -125,8 +125,8 @@ class Profile:
     def sentence(self) -> str:
         """What the profile says about the log scale, in plain words."""
         lh, (lo, hi) = self.lam_hat, self.ci
-        lo_t = ("below " if self.ci_open[0] else "") + _num(lo)
-        hi_t = _num(hi) + (" or above" if self.ci_open[1] else "")
+        lo_t = _num(lo) + (" or lower" if self.ci_open[0] else "")
+        hi_t = _num(hi) + (" or higher" if self.ci_open[1] else "")
         iv = f"λ̂ = {_num(lh)}, 95% interval {lo_t} to {hi_t}"
         if lo <= 0 <= hi:
             tail = ", and also with no transform (λ = 1)" if lo <= 1 <= hi else ""
