@@ -70,6 +70,7 @@ def art_anova(codes, sizes, names, z, terms, ss_type, alpha, anova_p: dict,
     resid = z - fitted
     n_cells = np.bincount(cells.row_cell, minlength=cells.count).astype(float)
     out = []
+    factored: dict = {}    # the ranks change per term, the design does not
     for t in terms:
         if t.is_block:
             continue
@@ -85,7 +86,7 @@ def art_anova(codes, sizes, names, z, terms, ss_type, alpha, anova_p: dict,
         ranks = stats.rankdata(np.round(aligned / step))
         rmom = moments(cells.row_cell, ranks, cells.count, n=n_cells)
         # only the one sum of squares kept: a fit per term, not a table per term
-        fit = fit_model(cells, rmom, terms, ss_type, only=(t.name,))
+        fit = fit_model(cells, rmom, terms, ss_type, only=(t.name,), cache=factored)
         row = next(x for x in fit.table if x.term == t.name)
         F_ = p = None
         if fit.df_resid > 0 and row.df > 0 and fit.rss > 0 and np.isfinite(row.sum_sq):

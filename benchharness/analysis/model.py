@@ -348,7 +348,20 @@ def _factor(Xw: np.ndarray):
     return q[:, :rank], R
 
 
-def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None) -> Fit:
+def _factored(cells: Cells, n, terms, cache):
+    """(X, slices, Q, R) of ``terms`` on these cells and weights, from ``cache`` if there."""
+    key = tuple(t.name for t in terms)
+    if cache is not None and key in cache:
+        return cache[key]
+    X, slices = design(cells.levels, terms, cells.sizes)
+    Q, R = _factor(X * np.sqrt(n)[:, None])
+    if cache is not None:
+        cache[key] = (X, slices, Q, R)
+    return X, slices, Q, R
+
+
+def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None,
+              cache: dict | None = None) -> Fit:
     """Fit the model and compute Type II or III sums of squares for every term.
 
     A term whose columns are entirely explained by earlier terms (aliasing in a
@@ -360,20 +373,26 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None) ->
 
     ``only``: names of the terms whose sums of squares are wanted (default
     all); the others get NaN (the rank-based cross-check needs one per fit).
+    ``cache``: a dict kept by a caller that fits many responses on the same
+    cells and counts (the cross-check's ranks): the design is factored once.
     """
     terms = tuple(terms)
-    X, slices = design(cells.levels, terms, cells.sizes)
-    Xw = X * np.sqrt(mom.n)[:, None]
-    Q, R = _factor(Xw)
+    X, slices, Q, R = _factored(cells, mom.n, terms, cache)
     if R.shape[0] >= X.shape[1]:
         return _fit(cells, mom, terms, ss_type, only, pre=(X, slices, Q, R))
     # R has the inner products of Xw's columns: projections on it keep every length
-    seq = _sequential_df(R, slices, terms)
+    key = ("dropped",) + tuple(t.name for t in terms)
+    if cache is not None and key in cache:
+        seq = cache[key]
+    else:
+        seq = _sequential_df(R, slices, terms)
+        if cache is not None:
+            cache[key] = seq
     dropped = [t for t in terms if seq[t.name] == 0 and not _single_level(t, cells.sizes)]
     if not dropped:
         return _fit(cells, mom, terms, ss_type, only, pre=(X, slices, Q, R))
     kept = tuple(t for t in terms if t not in dropped)
-    fit = _fit(cells, mom, kept, ss_type, only)
+    fit = _fit(cells, mom, kept, ss_type, only, pre=_factored(cells, mom.n, kept, cache))
     partners = {}
     for t in dropped:
         earlier = [s for s in terms[: terms.index(t)] if s in kept]
