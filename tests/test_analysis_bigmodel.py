@@ -108,3 +108,31 @@ def test_too_many_levels_for_any_model_is_one_line_exit_2(tmp_path):
     err = res.stderr.strip().splitlines()
     assert len(err) == 1 and "Traceback" not in res.stderr
     assert f"input alone has {n:,} levels" in err[0] and "cannot analyse" in err[0]
+
+
+def test_failures_are_counted_per_cell_in_a_huge_plan():
+    # 12 factors of 10 levels: 10^12 cells, of which 300 ran and 12 of those failed
+    rng = np.random.default_rng(4)
+    names = [f"k{i}" for i in range(12)]
+    d = pd.DataFrame({n: rng.choice([f"L{j}" for j in range(10)], 300) for n in names})
+    d["wall_s"] = np.exp(rng.normal(0, 0.05, 300))
+    d["status"] = "ok"
+    d.loc[:11, "status"] = "failed"
+    an = analyze(d, factors=names, transform="log", block=False, comparisons=False)
+    assert an.failures["runs"] == 300 and an.failures["not_ok"] == 12
+    assert len(an.failures["cells"]) == 12
+    assert an.counts["cells_expected"] == 10 ** 12 and an.counts["rows"] == 288
+
+
+def test_seventy_two_level_factors_keys_do_not_overflow():
+    # 2^70 cells: more than a 64-bit cell number holds; planted: s0 doubles the time
+    rng = np.random.default_rng(6)
+    names = [f"s{i}" for i in range(70)]
+    codes = rng.integers(0, 2, (160, 70))
+    d = pd.DataFrame({n: np.where(codes[:, i] == 1, "on", "off") for i, n in enumerate(names)})
+    d["wall_s"] = np.exp(np.log(2.0) * codes[:, 0] + rng.normal(0, 0.05, 160))
+    an = analyze(d, factors=names, transform="log", block=False, model="main",
+                 comparisons=False)
+    assert an.counts["cells"] == len({tuple(r) for r in codes.tolist()})
+    p = {r["term"]: r["p"] for r in an.anova_rows if r["kind"] == "effect"}
+    assert p["s0"] < 1e-6 and sum(v < 0.001 for v in p.values()) == 1

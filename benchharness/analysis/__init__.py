@@ -407,7 +407,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
         notes.append("hosts differ significantly (F test of hosts against blocks within "
                      f"hosts, p {hosts['between_hosts']['p']:.3g}); the block term keeps this "
                      "out of the factor effects, but the hosts are not interchangeable")
-    expected_cells = int(np.prod([sizes[f] for f in factor_idx]))
+    expected_cells = math.prod(sizes[f] for f in factor_idx)
     if fcells.count < expected_cells:
         missing = _missing_cells(fcells, sizes[: len(fnames)], fnames, flevels)
         shown = "; ".join(", ".join(f"{k}={v}" for k, v in m.items()) for m in missing[:5])

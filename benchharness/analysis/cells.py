@@ -42,6 +42,11 @@ def index_cells(codes, sizes) -> Cells:
     total = 1
     for k in sizes:
         total *= k
+    if total >= 1 << 62:    # the combined key would overflow: group the rows of codes
+        rows = np.stack([np.asarray(c, dtype=np.int64) for c in codes], axis=1)
+        levels, row_cell = np.unique(rows, axis=0, return_inverse=True)
+        return Cells(sizes=sizes, row_cell=row_cell.reshape(-1).astype(np.intp, copy=False),
+                     levels=levels.astype(np.int64))
     key = np.zeros(n, dtype=np.int64)
     for c, k in zip(codes, sizes):
         key *= k
@@ -53,6 +58,7 @@ def index_cells(codes, sizes) -> Cells:
         row_cell = remap[key]
     else:
         present, row_cell = np.unique(key, return_inverse=True)
+        row_cell = row_cell.reshape(-1)
     levels = np.empty((len(present), len(sizes)), dtype=np.int64)
     rem = present.copy()
     for j in range(len(sizes) - 1, -1, -1):

@@ -206,33 +206,29 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     # per factor cell: counts of runs by status (all statuses, before dropping)
     ok = status_is("ok")
     sizes = [len(lv) for lv in levels]
-    key = np.zeros(len(df), dtype=np.int64)
-    for c, k in zip(codes, sizes):
-        key = key * k + c
-    total_cells = int(np.prod(sizes, dtype=np.float64))
+    # counted over the observed cells only: memory O(rows), whatever the plan's size
+    from benchharness.analysis.cells import index_cells
+
+    seen = index_cells(codes, sizes)
+    m_cells, inv = seen.count, seen.row_cell
     status_counts = []
     lost_masks = {s: status_is(s) for s in _LOST}
-    if total_cells <= 5_000_000:
-        n_ok = np.bincount(key[ok], minlength=total_cells)
-        n_lost = {s: np.bincount(key[m], minlength=total_cells) for s, m in lost_masks.items()}
-        n_all = np.bincount(key, minlength=total_cells)
-        present = np.flatnonzero(n_all)
-        other = n_all - n_ok - sum(n_lost.values())
-        for cell in present:
-            labels, rem = {}, int(cell)
-            for f, lv, k in reversed(list(zip(factors, levels, sizes))):
-                labels[f] = lv[rem % k]
-                rem //= k
-            labels = {f: labels[f] for f in factors}
-            runs = int(n_all[cell])
-            lost = int(sum(n_lost[s][cell] for s in _LOST) + other[cell])
-            status_counts.append({
-                "levels": labels, "runs": runs, "ok": int(n_ok[cell]),
-                "failed": int(n_lost["failed"][cell]), "timeout": int(n_lost["timeout"][cell]),
-                "other": int(other[cell]),
-                "failure_rate": lost / runs if runs else 0.0,
-                "flag": "timeouts" if n_lost["timeout"][cell] else None,
-            })
+    n_ok = np.bincount(inv[ok], minlength=m_cells)
+    n_lost = {s: np.bincount(inv[m], minlength=m_cells) for s, m in lost_masks.items()}
+    n_all = np.bincount(inv, minlength=m_cells)
+    other = n_all - n_ok - sum(n_lost.values())
+    for cell in range(m_cells):
+        labels = {f: lv[int(seen.levels[cell, j])] for j, (f, lv) in enumerate(zip(factors,
+                                                                                 levels))}
+        runs = int(n_all[cell])
+        lost = int(sum(n_lost[s][cell] for s in _LOST) + other[cell])
+        status_counts.append({
+            "levels": labels, "runs": runs, "ok": int(n_ok[cell]),
+            "failed": int(n_lost["failed"][cell]), "timeout": int(n_lost["timeout"][cell]),
+            "other": int(other[cell]),
+            "failure_rate": lost / runs if runs else 0.0,
+            "flag": "timeouts" if n_lost["timeout"][cell] else None,
+        })
 
     y_col = df[response]
     if pd.api.types.is_numeric_dtype(y_col.dtype):
