@@ -215,6 +215,8 @@ def analyze(data, response: str = "wall_s", factors=None, block=None, transform=
         from threadpoolctl import threadpool_limits
     except ImportError:  # optional: only speed depends on it
         return _analyze(data, **kwargs)
+    import scipy.linalg  # noqa: F401  (its own BLAS, loaded before the limit so it holds)
+
     with threadpool_limits(1):
         return _analyze(data, **kwargs)
 

@@ -489,6 +489,18 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=Non
             bt = beta[sl]
             ss = float(bt @ np.linalg.solve(cov_unscaled[sl, sl], bt))
             df = sl.stop - sl.start
+        elif full_rank and sl.stop > sl.start:
+            # full rank: t's columns last after the others, with the response appended; the
+            # triangular factor's last column holds Q'z, whose entries in t's rows are the
+            # extra sum of squares of t (one unpivoted QR, no basis formed)
+            from scipy.linalg import qr
+
+            a = np.hstack([intercept] + [col[o.name] for o in others] + [col[t.name],
+                                                                          zq[:, None]])
+            r_aug = qr(a, mode="r", check_finite=False)[0]
+            p1 = a.shape[1] - 1
+            df = sl.stop - sl.start
+            ss = float((r_aug[p1 - df:p1, -1] ** 2).sum())
         else:
             a = np.hstack([intercept] + [col[o.name] for o in others])
             b1 = _basis(a)

@@ -13,7 +13,7 @@ average at the start:
 * ``manylevels``: one factor with 5,000 levels (input files), 2 runs each.
 
 Usage: python experiments/bench/big_model.py [--case partial|twolevel|manylevels|all]
-       [--model SPEC] [--timeout 600] [--limit-mb 3000] [--keep DIR]
+       [--model SPEC] [--timeout 600] [--limit-mb 3000] [--tree DIR] [--keep DIR]
 Prints one line per case: wall seconds, peak MB, exit code, load average, and
 the lines of the output that say what was fitted.
 """
@@ -81,7 +81,7 @@ CASES = {"partial": (partial, [[]]), "twolevel": (twolevel, [[], ["--model", "2"
          "manylevels": (manylevels, [[]])}
 
 
-def measure(csv: Path, extra, timeout: float, limit_mb: float):
+def measure(csv: Path, extra, timeout: float, limit_mb: float, tree=ROOT):
     """Run ``analyze`` in a child; return (wall s, peak MB, exit code, output, load)."""
     cmd = [sys.executable, "-m", "benchharness", "analyze", str(csv), *extra]
 
@@ -91,7 +91,7 @@ def measure(csv: Path, extra, timeout: float, limit_mb: float):
 
     load = os.getloadavg()[0]
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+    proc = subprocess.Popen(cmd, cwd=tree, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
                             text=True, preexec_fn=cap)
     try:
         out, _ = proc.communicate(timeout=timeout)
@@ -112,6 +112,9 @@ def main(argv=None):
     ap.add_argument("--model", default=None, help="analyse only with this --model")
     ap.add_argument("--timeout", type=float, default=600.0)
     ap.add_argument("--keep", default=None, help="write the CSVs into this folder")
+    ap.add_argument("--tree", default=str(ROOT),
+                    help="source tree whose benchharness is measured (e.g. an exported "
+                         "older commit, for a before/after figure)")
     ap.add_argument("--limit-mb", type=float, default=3000.0,
                     help="address-space limit of the analysing process (MB)")
     args = ap.parse_args(argv)
@@ -129,8 +132,8 @@ def main(argv=None):
             # a fresh interpreter per measurement, so ru_maxrss is this child's alone
             code = ("import sys; sys.path.insert(0, %r); from experiments.bench.big_model "
                     "import measure; from pathlib import Path; w, p, rc, out, load = "
-                    "measure(Path(%r), %r, %r, %r); print(repr((w, p, rc, load))); print(out)"
-                    % (str(ROOT), str(csv), extra, args.timeout, args.limit_mb))
+                    "measure(Path(%r), %r, %r, %r, %r); print(repr((w, p, rc, load))); print(out)"
+                    % (str(ROOT), str(csv), extra, args.timeout, args.limit_mb, args.tree))
             res = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                                  cwd=ROOT)
             head, _, out = res.stdout.partition("\n")
