@@ -247,3 +247,33 @@ def test_a_flaky_build_is_not_called_never_ok():
     never = sum(o.verdict == "never_ok" for o in outs)
     assert never <= 12
     assert sum(o.verdict == "regression" for o in outs) >= 25
+
+
+def test_a_candidate_that_only_fails_more_often_is_not_called_slower():
+    # Planted: the same timings (ratio 1.00), the candidate failing 40% of its runs.
+    # The gate fails it (exit 1), but what it says must be the failure rate, not
+    # "slower than the tolerance allows": the ratio is inside the tolerance.
+    import xml.etree.ElementTree as ET
+
+    from benchharness.gate.output import junit_xml, markdown_summary, terminal_lines
+
+    outs = [_sim(1.0, 0.03, 7100 + g, fail={"build": {"new": 0.4}}) for g in range(12)]
+    by_fail = [o for o in outs if o.verdict == "regression"]
+    assert len(by_fail) >= 8
+    for o in by_fail:
+        j = o.judgements["w0"]
+        assert "fails more often" in j.reason and j.ratio < 1.05
+        text = "\n".join(terminal_lines(o))
+        assert "verdict: the candidate fails more often than the baseline" in text
+        assert "slower" not in text.lower() and "SLOWER" not in text
+        assert "FAILS" in text.splitlines()[2]
+        md = markdown_summary(o)
+        assert "fails more often" in md and "slower" not in md.lower()
+        msg = ET.fromstring(junit_xml(o).split("\n", 1)[1]).find(".//failure").get("message")
+        assert msg.startswith("fails more often than the baseline") and "slower" not in msg
+    # a candidate planted 30% slower that never fails is still said to be slower
+    slow = _sim(1.3, 0.03, 7200)
+    assert slow.verdict == "regression"
+    text = "\n".join(terminal_lines(slow))
+    assert "verdict: the candidate is slower than the tolerance allows" in text
+    assert "SLOWER" in text and "fails more often" not in text

@@ -228,7 +228,7 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
     ratio = math.exp(mean) if mean is not None else None
     only_c, only_b = _failure_counts(blocks)
 
-    def make(verdict, reason, lo=None, hi=None, horizon=None):
+    def make(verdict, reason, lo=None, hi=None, horizon=None, extra=None):
         if verdict in ("no_regression", "improvement") and only_c > only_b:
             reason += (f"; the candidate alone failed in {only_c} blocks, the baseline alone in "
                        f"{only_b}: too few to say it fails more often")
@@ -238,13 +238,14 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
             upper=math.exp(hi) if hi is not None else None,
             horizon_blocks=horizon if horizon is not None else settings.max_runs,
             alpha=alpha_w, reason=reason, baseline_failures=base_fail,
-            candidate_failures=cand_fail, sd_log=sd,
+            candidate_failures=cand_fail, sd_log=sd, extra=extra or {},
         )
 
     fail_reason = failure_verdict(only_c, only_b, settings.max_runs,
                                   settings.failure_alpha(workloads))
     if fail_reason:
-        return make("regression", fail_reason)
+        # a regression by failure rate, not by timings: said so in every output
+        return make("regression", fail_reason, extra={"cause": "failures"})
     passed = getattr(tracker, "timing_pass", None)
     if passed is not None:
         # timings already passed at an earlier look; only the failure question is open

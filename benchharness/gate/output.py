@@ -32,6 +32,31 @@ OVERALL = {
 }
 
 
+def by_failures(j) -> bool:
+    """A regression called by the failure-rate test (the candidate fails more often),
+    not by the timings: its ratio may be well inside the tolerance."""
+    return j.verdict == "regression" and j.extra.get("cause") == "failures"
+
+
+def _word(j) -> str:
+    return "FAILS" if by_failures(j) else WORDS.get(j.verdict, "?")
+
+
+def _overall(out: GateOutcome) -> str:
+    """The overall verdict in words; a regression says whether the candidate was
+    slower, failed more often, or both (in different workloads)."""
+    if out.verdict != "regression":
+        return OVERALL[out.verdict]
+    regs = [j for j in out.judgements.values() if j.verdict == "regression"]
+    fails = sum(by_failures(j) for j in regs)
+    if regs and fails == len(regs):
+        return "the candidate fails more often than the baseline"
+    if fails:
+        return ("the candidate is slower than the tolerance allows in some workloads and "
+                "fails more often than the baseline in others")
+    return OVERALL["regression"]
+
+
 def _pct(r: float | None) -> str:
     if r is None or not math.isfinite(r):
         return "n/a"
@@ -63,9 +88,9 @@ def terminal_lines(out: GateOutcome) -> list[str]:
     lines.append(f"  {'workload':<{width}}  {'verdict':<9}  {'ratio':>6}  {'change':>7}  "
                  f"{'bounds':<17}  runs  why")
     for key, j in out.judgements.items():
-        lines.append(f"  {key:<{width}}  {WORDS.get(j.verdict, '?'):<9}  {_ratio(j.ratio):>6}  "
+        lines.append(f"  {key:<{width}}  {_word(j):<9}  {_ratio(j.ratio):>6}  "
                      f"{_pct(j.ratio):>7}  {_interval(j):<17}  {j.blocks:>4}  {j.reason}")
-    lines.append(f"verdict: {OVERALL[out.verdict]} ({out.runs} timed runs, "
+    lines.append(f"verdict: {_overall(out)} ({out.runs} timed runs, "
                  f"{out.warmups} warm-up runs)")
     return lines
 
@@ -75,14 +100,14 @@ def markdown_summary(out: GateOutcome, folder: Path | None = None) -> str:
     icon = {"regression": "FAIL", "no_regression": "PASS", "improvement": "PASS",
             "inconclusive": "UNDECIDED", "never_ok": "BROKEN"}[out.verdict]
     md = [f"### Performance gate: {icon}", "",
-          f"{OVERALL[out.verdict].capitalize()} (response `{out.response}`, tolerance "
+          f"{_overall(out).capitalize()} (response `{out.response}`, tolerance "
           f"{s.tolerance * 100:g}%, confidence {s.confidence:g}).", ""]
     for w in out.warnings:
         md += [f"> {w}", ""]
     md += ["| workload | verdict | slowdown ratio | bounds | runs per build |",
            "| --- | --- | ---: | --- | ---: |"]
     for key, j in out.judgements.items():
-        md.append(f"| {key} | {WORDS.get(j.verdict, '?')} | {_ratio(j.ratio)} ({_pct(j.ratio)}) "
+        md.append(f"| {key} | {_word(j)} | {_ratio(j.ratio)} ({_pct(j.ratio)}) "
                   f"| {_interval(j)} | {j.blocks} |")
     if folder is not None:
         md += ["", f"Results folder: `{folder}`"]
@@ -105,7 +130,10 @@ def junit_xml(out: GateOutcome) -> str:
                 f"{j.blocks} runs per build; {j.reason}")
         if j.verdict == "regression":
             f = ET.SubElement(tc, "failure", {
-                "message": f"slower than {1 + out.settings.tolerance:g}x: {_pct(j.ratio)}",
+                "message": (f"fails more often than the baseline: {j.candidate_failures} "
+                            f"failed runs against {j.baseline_failures}" if by_failures(j)
+                            else f"slower than {1 + out.settings.tolerance:g}x: "
+                                 f"{_pct(j.ratio)}"),
                 "type": "performance regression"})
             f.text = text
         elif j.verdict == "inconclusive":
