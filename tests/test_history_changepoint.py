@@ -296,3 +296,29 @@ def test_alternating_hosts_each_get_their_own_search():
     flat_x, flat_s, flat_n = simulate(np.random.default_rng(14), N=40)
     flat_x[1::2] += np.log(1.3)
     assert cp.detect_steps(flat_x, flat_s, flat_n, hosts=hosts).steps == ()
+
+
+def test_a_change_the_previous_look_missed_is_named_at_its_first_commit():
+    # Planted: three noisy commits (within-commit SD 17-27 %) at one level, then commits
+    # at 1.9x. The look at four points cannot tell (two commits before, df 2); at five
+    # the newest two show it, and the newest alone matches its predecessor. The flag
+    # must name the first slow commit with the ratio of the slow commits, never the
+    # newest one as "only this newest commit shows it" with a diluted ratio.
+    from benchharness.history.render import unconfirmed_text
+
+    x = np.log(0.06) + np.array([0.06, 0.0, -0.06, np.log(1.9) + 0.03, np.log(1.9) - 0.03,
+                                 np.log(1.9) + 0.01])
+    s = np.array([0.27, 0.19, 0.17, 0.09, 0.07, 0.08])
+    n = np.full(6, 5.0)
+    assert cp.detect_steps(x[:4], s[:4], n[:4]).steps == ()
+    det = cp.detect_steps(x[:5], s[:5], n[:5])
+    assert det.steps == () and [u.index for u in det.unconfirmed] == [3]
+    u = det.unconfirmed[0]
+    assert u.newest == 2 and u.ratio_low < 1.9 < u.ratio_high and u.ratio_low > 1.5
+
+    class _T:
+        response = "wall_s"
+    text = unconfirmed_text(_T, u)
+    assert "the newest 2 commits show it" in text and "only this newest" not in text
+    det = cp.detect_steps(x, s, n)
+    assert [st.index for st in det.steps] == [3] and det.unconfirmed == ()

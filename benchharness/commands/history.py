@@ -110,9 +110,11 @@ def main_show(args) -> int:
         for t in trends:
             for st in (t.detection.unconfirmed if t.detection is not None else ()):
                 if step_kind(t.response, st.ratio, None) == "regression":
+                    who = ("only the newest commit shows it" if (st.newest or 1) == 1 else
+                           f"the newest {st.newest} commits show it, but the look before "
+                           "did not")
                     print(f"not yet confirmed: {t.experiment} {t.response} {t.label} at "
-                          f"commit {t.points[st.index].commit} (x{st.ratio:.3f}); only the "
-                          "newest commit shows it, so it does not fail this check yet",
-                          file=sys.stderr)
+                          f"commit {t.points[st.index].commit} (x{st.ratio:.3f}); {who}, so "
+                          "it does not fail this check yet", file=sys.stderr)
         return 1 if open_regressions else 0
     return 0

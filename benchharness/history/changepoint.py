@@ -82,6 +82,7 @@ class Step:
     statistic: float           # cost reduction of this split (chi-square-like)
     critical: float            # penalty / critical value used
     found_by: str = "whole series"   # or "newest commits" (benchharness.history.tip)
+    newest: int = 0            # not yet confirmed only: how many newest commits show it
 
 
 @dataclass(frozen=True)
@@ -410,7 +411,9 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
                 found_by[len(xs) - res.k] = ("newest commits", res.critical)
                 pending = None
             elif res is not None:
-                pending = (len(xs) - 1, res.statistic, res.critical)
+                # the newest res.k commits differ (k = 1: the newest alone), but the
+                # look before did not show it yet: not yet confirmed, at the first of them
+                pending = (len(xs) - res.k, res.statistic, res.critical)
         edges = [0] + cps + [len(xs)]
         segs = []
         for s0, s1 in zip(edges[:-1], edges[1:]):
@@ -438,9 +441,10 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
         if pending is not None:
             k, stat_p, crit_p = pending
             m0, se0 = _wmean(xs[edges[-2]:k], w[edges[-2]:k])   # the stretch before it
-            r, lo, hi = _ratio(float(xs[k]), math.sqrt(1 / w[k]), m0, se0, z)
+            m1, se1 = _wmean(xs[k:], w[k:])                       # the newest commits
+            r, lo, hi = _ratio(m1, se1, m0, se0, z)
             unconfirmed.append(Step(int(idx_a[k]), r, lo, hi, None, stat_p, crit_p,
-                                    "newest commits"))
+                                    "newest commits", len(xs) - k))
     breaks: list[HostBreak] = []
     for b in range(1, N):
         if hosts[b] == hosts[b - 1]:

@@ -47,11 +47,14 @@ def point_notes(t: CellTrend) -> dict[int, str]:
 
 
 def unconfirmed_text(t: CellTrend, s) -> str:
-    """The wording of a change shown by the newest commit alone."""
+    """The wording of a change not yet confirmed: shown by the newest commit alone, or
+    by the newest few when the look before did not show it yet."""
     kind = step_kind(t.response, s.ratio, None)
+    k = getattr(s, "newest", 1) or 1
+    who = ("only this newest commit shows it" if k == 1 else
+           f"the newest {k} commits show it from this one on, but the look before did not")
     return (f"NOT YET CONFIRMED: possible {kind} "
-            f"{_ratio_text(s.ratio, s.ratio_low, s.ratio_high)}; only this newest commit "
-            "shows it, the next one decides")
+            f"{_ratio_text(s.ratio, s.ratio_low, s.ratio_high)}; {who}, the next one decides")
 
 
 _LASTS = {True: "yes", False: "no, undone later", None: "too recent to tell"}
@@ -128,7 +131,8 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
             elif len(t.points) >= 3:
                 console.print(f"  No step found (false-step level {det.alpha:g} per host).")
             for u in det.unconfirmed:
-                console.print(f"  Newest commit {t.points[u.index].commit[:12]}: "
+                label = "Newest commit" if (u.newest or 1) == 1 else "Commit"
+                console.print(f"  {label} {t.points[u.index].commit[:12]}: "
                               f"{unconfirmed_text(t, u)[len('NOT YET CONFIRMED: '):]} "
                               "(not yet confirmed; not counted as a step).", highlight=False)
         if t.note:

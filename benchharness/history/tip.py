@@ -26,8 +26,10 @@ If the largest ``|t_k|`` is beyond the critical value:
   **confirmed** step at the first of the newest ``k`` commits (the ``k`` with the
   largest ``|t_k|``). Two commits show it; one odd newest point that drags the
   mean of the newest two along is not enough;
-* otherwise the newest commit alone differs, **not yet confirmed**: one session
-  cannot be told from one unlucky session; the next commit decides.
+* otherwise **not yet confirmed**: the newest commit alone differs (one session
+  cannot be told from one unlucky session), or the newest ``k`` do while the look
+  before did not show it (it is then named at the first of them); the next
+  commit decides.
 
 `changepoint.detect_steps` gives this test half the false-step level of the
 host measured last and the whole-series test the other half, so the chance of
@@ -131,4 +133,9 @@ def tip_test(x, v, alpha: float) -> TipResult | None:
     if beyond:
         k = max(beyond, key=lambda j: a[j - 1])
         return TipResult(k, True, float(a[k - 1]), crit, tuple(map(float, t)))
-    return TipResult(1, False, float(a[0]), crit, tuple(map(float, t)))
+    # not yet confirmed: the newest commit alone when it is beyond by itself; else the
+    # newest k that are (a change the look before missed), so the flag names the
+    # commit where the change began, not a newest commit that matches its predecessor
+    k = 1 if a[0] > crit else max((j for j in range(1, len(t) + 1) if a[j - 1] > crit),
+                                  key=lambda j: a[j - 1])
+    return TipResult(k, False, float(a[k - 1]), crit, tuple(map(float, t)))
