@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -154,3 +155,79 @@ def test_higher_is_better_picks_the_largest(tmp_path):
     assert "Recommended: threads=4" in r.stdout
     low = analyze(d, factors=["threads"], response="rate")
     assert next(f for f in low.findings if f["kind"] == "best")["cells"] == [{"threads": "1"}]
+
+
+def test_a_rate_named_per_s_is_not_read_as_seconds(tmp_path):
+    """``ops_per_s`` ends in ``_s`` but is a rate: its mean is not "1.43e+03 s" and the
+    runner-up is not compared with "the best's time" (planted: batch=32 ×1.3 more ops)."""
+    rng = np.random.default_rng(1404)
+    d = pd.DataFrame({"batch": np.repeat(["8", "32"], 6)})
+    d["ops_per_s"] = np.exp(rng.normal(0, 0.03, 12)) * d["batch"].map({"8": 1000, "32": 1300})
+    csv = tmp_path / "ops.csv"
+    d.to_csv(csv, index=False)
+    r = run_cli("analyze", csv, "--factors", "batch", "--response", "ops_per_s",
+                "--better", "higher", "--json", tmp_path / "a.json")
+    assert r.returncode == 0, r.stderr
+    best = next(f for f in json.loads((tmp_path / "a.json").read_text())["findings"]
+                if f["kind"] == "best")
+    assert best["cells"] == [{"batch": "32"}]
+    assert re.search(r"\(1[23]\d\d per s\)", best["statement"]), best["statement"]
+    assert "time" not in best["statement"] and "slower" not in best["statement"]
+    # a time in milliseconds is still a time, shown in its unit
+    d = d.rename(columns={"ops_per_s": "latency_ms"})
+    low = analyze(d, factors=["batch"], response="latency_ms")
+    text = next(f for f in low.findings if f["kind"] == "best")["statement"]
+    assert "the best's time" in text and "(slower)" in text and " s (" not in text
+    assert re.search(r"batch=8 \((1|1\.0\d?|0\.99\d?) s\)", text), text  # ~1000 ms: ~1 s
+
+
+def test_headline_keeps_a_factor_name_as_written(tmp_path):
+    """Factor names are exact text: the headline starts with ``batch``, not ``Batch``."""
+    from benchharness.report.story import headline
+
+    rng = np.random.default_rng(14)
+    d = pd.DataFrame({"batch": np.repeat(["8", "32"], 6), "pin": np.tile(["no", "yes"], 6)})
+    d["wall_s"] = np.exp(rng.normal(0, 0.03, 12)) * d["batch"].map({"8": 1.0, "32": 0.7})
+    found = analyze(d, factors=["batch", "pin"]).findings
+    text = headline(found)
+    assert text.startswith("batch matters") and "pin made no detectable difference" in text
+    r = run_cli("analyze", _csv(tmp_path, d), "--factors", "batch,pin")
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.splitlines()[0].startswith("batch matters")
+
+
+def _csv(tmp_path, frame):
+    path = tmp_path / "data.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+def test_a_best_cell_the_fraction_did_not_run_is_not_called_measured(tmp_path):
+    """A 2^(4-1) half fraction I = -ABCD leaves out the all-lo cell, which the planted effects
+    (every factor's hi level slower) make the best: it is predicted, never "measured"."""
+    rng = np.random.default_rng(41)
+    rows = []
+    for a in (0, 1):
+        for b in (0, 1):
+            for c in (0, 1):
+                dd = 1 - (a + b + c) % 2      # the all-lo cell is left out of this half
+                for _ in range(2):
+                    m = 0.2 * 2.0 ** a * 1.8 ** b * 1.5 ** c * 1.05 ** dd
+                    rows.append({"A": "lh"[a], "B": "lh"[b], "C": "lh"[c], "D": "lh"[dd],
+                                 "wall_s": m * math.exp(rng.normal(0, 0.08))})
+    frame = pd.DataFrame(rows)
+    assert not ((frame[["A", "B", "C", "D"]] == "l").all(axis=1)).any()
+    an = analyze(frame, factors=["A", "B", "C", "D"])
+    best = next(f for f in an.findings if f["kind"] == "best")
+    assert best["best"] == {"A": "l", "B": "l", "C": "l", "D": "l"}
+    assert best["best"] in best["not_run"]
+    assert best["statement"].startswith("Tied for best")   # D=h (×1.05, ran) is tied
+    assert "best measured" not in best["statement"] and "best predicted" in best["statement"]
+    md = tmp_path / "r.md"
+    r = run_cli("report", _csv(tmp_path, frame), "--factors", "A,B,C,D", "--markdown", md,
+                "--html", tmp_path / "r.html")
+    assert r.returncode == 0, r.stderr
+    text = md.read_text()
+    assert "best predicted A=l, B=l, C=l, D=l" in text and "best measured" not in text
+    rec = next(line for line in text.splitlines() if "Recommended:" in line)
+    assert "(best predicted, not run in this fraction;" in rec, rec

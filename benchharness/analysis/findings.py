@@ -70,11 +70,30 @@ def fmt_p(p) -> str:
     return f"p = {p:.2g}" if p < 0.01 else f"p = {p:.2f}"
 
 
+#: name suffixes of time responses and their size in seconds (a ``_per_s`` rate is not a time)
+_TIME_SUFFIXES = (("_ns", 1e-9), ("_us", 1e-6), ("_ms", 1e-3), ("_s", 1.0))
+
+
+def seconds_per_unit(response: str) -> float | None:
+    """Seconds per unit of a response named as a time (``wall_s``, ``latency_ms``), else None.
+
+    ``ops_per_s`` ends in ``_s`` but is a rate, not a time: higher is not slower.
+    """
+    low = str(response or "").lower()
+    if low.endswith("_per_s"):
+        return None
+    return next((f for suf, f in _TIME_SUFFIXES if low.endswith(suf)), None)
+
+
 def fmt_value(x, response: str) -> str:
     """A mean in the response's units when the name carries one (``_s``, ``_kib``)."""
     if x is None or not math.isfinite(x):
         return "–"
-    if response.endswith("_s"):
+    if str(response).lower().endswith("_per_s"):
+        return f"{x:.4g} per s"
+    sec = seconds_per_unit(response)
+    if sec is not None:
+        x = x * sec
         a = abs(x)
         if a < 1e-4:
             return f"{x * 1e6:.3g} µs"
@@ -325,6 +344,10 @@ def derive(d: dict) -> list[dict]:
                  if i in (best.get("tied") or [0]) or i == 0]
         if unrun:
             found["not_run"] = [best["cells"][i]["levels"] for i in unrun]
+            if 0 in unrun:      # the best cell was never measured: its mean is a prediction
+                found["statement"] = (found["statement"]
+                                      .replace("best measured ", "best predicted ", 1)
+                                      .replace("Best measured: ", "Best predicted: ", 1))
             found["statement"] += (
                 "; not run in this fraction: " + "; ".join(
                     cell_text(best["cells"][i]["levels"]) for i in unrun[:TIED_NAMED])
@@ -426,7 +449,8 @@ def _best_finding(best: dict, conf: str) -> dict:
     cells = best["cells"]
     resp = best.get("response") or ""
     higher = best.get("better") == "higher"
-    worse = "lower" if higher else ("slower" if resp.endswith("_s") else "higher")
+    is_time = seconds_per_unit(resp) is not None
+    worse = "lower" if higher else ("slower" if is_time else "higher")
     top = cells[0]
     tied = best.get("tied") or [0]
     ru = best.get("runner_up")
@@ -436,7 +460,7 @@ def _best_finding(best: dict, conf: str) -> dict:
             "upper": None, "p": None}
     over = best.get("averaged_over") or []
     where = f"{cell_text(top['levels'])} ({fmt_value(top['mean'], resp)})"
-    what = "time" if resp.endswith("_s") else "value"
+    what = "time" if is_time else (resp or "value")
     if len(cells) == 1:
         return {**base, "statement": f"Only one cell could be estimated: {where}"}
     tail = ""

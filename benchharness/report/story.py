@@ -180,7 +180,9 @@ def headline(found: list[dict]) -> str | None:
                     "could detect")
     if untested:
         text = (text + "; " if text else "") + f"{_and(untested)} could not be tested"
-    return text[0].upper() + text[1:] + "."
+    # no capital letter forced on the first word: it is a factor's name (exact text, so
+    # ``codec`` must not read ``Codec``) or already "None"
+    return text + "."
 
 
 def _interaction_clause(inter: dict, found: list[dict], fr, fi, most: int = 4) -> str:
@@ -232,8 +234,10 @@ def verdict(data: ReportData) -> dict[str, Any]:
             elif cells and len(cells) < len(data.analysis.get("best", {}).get("cells") or []):
                 top = f.get("best") or cells[0]
                 others = [c for c in cells if c != top]
+                how = ("best predicted, not run in this fraction"
+                       if top in (f.get("not_run") or []) else "best measured")
                 out["recommendation"] = (
-                    "Recommended: " + cell_label(top, list(top)) + " (best measured; "
+                    "Recommended: " + cell_label(top, list(top)) + f" ({how}; "
                     + "; ".join(cell_label(c, list(c)) for c in others[:5])
                     + (" …" if len(others) > 5 else "")
                     + (" is" if len(others) == 1 else " are")
