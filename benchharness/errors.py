@@ -64,6 +64,13 @@ class DiskFullError(BenchharnessError):
     exit_code = DISK_FULL_EXIT
 
 
+def disk_full_writing(path) -> DiskFullError:
+    """The one line for an output file (a report, ``--json``, a summary) that a full disk
+    stopped: where, and what to do. Exit code 75 like every full disk, never 2 (bad input)."""
+    return DiskFullError(f"the disk is full (no space left on the device writing {path}); "
+                         "free some space and run the command again")
+
+
 def is_disk_full(exc: BaseException) -> bool:
     """Whether ``exc`` is the operating system saying the disk (or quota) is full."""
     import errno

@@ -606,3 +606,58 @@ def test_resume_refuses_a_folder_whose_harness_still_drives_its_launcher(tmp_pat
     finally:
         os.killpg(h.pid, signal.SIGKILL)
         h.wait()
+
+
+def _csv_with_an_effect(path):
+    """Two factors, 4 runs a cell; a doubles the time (a planted effect, fixed seed)."""
+    import random
+
+    rng = random.Random(3)
+    lines = ["a,b,t"]
+    for a in ("x", "y"):
+        for b in ("u", "v"):
+            for _ in range(4):
+                lines.append(f"{a},{b},{(2.0 if a == 'y' else 1.0) * rng.uniform(0.95, 1.05):.5f}")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def _disk_full_under(monkeypatch, folder):
+    """Every ``Path.write_text`` under ``folder`` creates its file, then fails with ENOSPC,
+    as a write onto a full disk does (the open succeeds, the data do not fit)."""
+    import pathlib
+
+    real = pathlib.Path.write_text
+
+    def write_text(self, data, *a, **k):
+        if str(self).startswith(str(folder)):
+            real(self, "", *a, **k)
+            raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+        return real(self, data, *a, **k)
+
+    monkeypatch.setattr(pathlib.Path, "write_text", write_text)
+
+
+@pytest.mark.parametrize("command", ["analyze", "report", "choose"])
+def test_an_output_file_on_a_full_disk_is_exit_75_and_leaves_no_half_file(
+        tmp_path, monkeypatch, capsys, command):
+    # The real commands, not a stand-in: each used to turn ENOSPC into "cannot write
+    # the file (No space left on device)" with exit 2 (bad input), and left a
+    # zero-byte *.tmp beside the target.
+    from benchharness import cli
+
+    src = _csv_with_an_effect(tmp_path / "runs.csv")
+    full = tmp_path / "full"
+    full.mkdir()
+    _disk_full_under(monkeypatch, full)
+    target = {"analyze": ["--json", str(full / "a.json")],
+              "report": ["--html", str(full / "r.html"), "--markdown", str(full / "r.md")],
+              "choose": ["--json", str(full / "c.json")]}[command]
+    code = cli.main([command, str(src), "--factors", "a,b", "--response", "t", *target])
+    err = capsys.readouterr().err
+    assert code == DISK_FULL_EXIT, err
+    assert err.count("\n") == 1 and err.startswith("benchharness: the disk is full")
+    assert str(full) in err and "free some space and run the command again" in err
+    assert "Traceback" not in err and "cannot write" not in err
+    left = os.listdir(full)  # no half file, no *.tmp left behind (figures may be made)
+    assert not [n for n in left if n.endswith((".tmp", ".json", ".html", ".md"))], left

@@ -698,8 +698,12 @@ def write_analysis_json(analysis: Analysis, path) -> Path:
     """Write ``analysis.json`` (never over an existing file of another name: caller's choice)."""
     path = Path(path)
     tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(analysis.to_json() + "\n", encoding="utf-8")
-    tmp.replace(path)
+    try:
+        tmp.write_text(analysis.to_json() + "\n", encoding="utf-8")
+        tmp.replace(path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)  # a full disk leaves no half file behind
+        raise
     return path
 
 

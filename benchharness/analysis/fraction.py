@@ -372,9 +372,13 @@ def add_to_results_folder(folder, response: str = "wall_s", log: bool = True) ->
             data = {}
     data["fraction"] = _finite(result)
     tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(data, indent=2, ensure_ascii=False, default=_json_default,
-                              allow_nan=False) + "\n", encoding="utf-8")
-    tmp.replace(path)
+    try:
+        tmp.write_text(json.dumps(data, indent=2, ensure_ascii=False, default=_json_default,
+                                  allow_nan=False) + "\n", encoding="utf-8")
+        tmp.replace(path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)  # a full disk leaves no half file behind
+        raise
     if result["half_normal"]:
         try:
             half_normal_figure(result["half_normal"], folder / "half_normal.png",

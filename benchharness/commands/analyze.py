@@ -119,6 +119,10 @@ def main(args) -> int:
         try:
             write_analysis_json(an, args.json)
         except OSError as exc:
+            from benchharness.errors import disk_full_writing, is_disk_full
+
+            if is_disk_full(exc):
+                raise disk_full_writing(args.json) from None
             raise UsageError(f"--json {args.json}: cannot write the file ({exc.strerror or exc})"
                              ) from None
         print(f"\nanalysis written to {args.json}")

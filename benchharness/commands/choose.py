@@ -121,8 +121,16 @@ def run(args) -> int:
         return 0
     print(terminal_text(choice), end="")
     if args.json:
-        try:
-            Path(args.json).write_text(data + "\n", encoding="utf-8")
+        target = Path(args.json)
+        tmp = target.with_name(target.name + ".tmp")
+        try:  # via a sibling and a rename: a full disk leaves the old file, never half one
+            tmp.write_text(data + "\n", encoding="utf-8")
+            tmp.replace(target)
         except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            from benchharness.errors import disk_full_writing, is_disk_full
+
+            if is_disk_full(exc):
+                raise disk_full_writing(args.json) from None
             raise UsageError(f"--json {args.json}: cannot write ({exc.strerror})") from None
     return 0

@@ -160,7 +160,14 @@ def main(args) -> int:
             Path(args.json).write_text(json.dumps(output.to_json_dict(outcome, folder),
                                                   indent=1) + "\n", encoding="utf-8")
     except OSError as exc:
-        raise UsageError(f"{exc.filename}: cannot write ({exc.strerror}); the verdict is in "
+        from benchharness.errors import DiskFullError, is_disk_full
+
+        target = exc.filename or args.summary or args.junit or args.json
+        if is_disk_full(exc):  # exit 75, never a verdict code nor 2 (bad input)
+            raise DiskFullError(f"the disk is full (no space left on the device writing "
+                                f"{target}); the verdict is in {folder}/gate.json; free some "
+                                "space and run the command again") from None
+        raise UsageError(f"{target}: cannot write ({exc.strerror}); the verdict is in "
                          f"{folder}/gate.json") from None
     if args.history:
         from benchharness.history import add_results

@@ -61,6 +61,10 @@ def write_text(path: str, text: str, option: str) -> None:
         with open(path, "w", encoding="utf-8") as fh:
             fh.write(text)
     except OSError as exc:
+        from benchharness.errors import disk_full_writing, is_disk_full
+
+        if is_disk_full(exc):
+            raise disk_full_writing(path) from None
         raise UsageError(f"{option} {path}: cannot write ({exc.strerror or exc})") from None
 
 

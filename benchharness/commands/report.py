@@ -24,12 +24,14 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
-    from benchharness.errors import UsageError
+    from benchharness.errors import UsageError, disk_full_writing, is_disk_full
 
     try:
         return _main(args)
     except OSError as exc:  # a report path that cannot be written: one line, exit 2
         where = exc.filename or args.html or args.markdown or args.source
+        if is_disk_full(exc):  # not bad input: exit 75, like every full disk
+            raise disk_full_writing(where) from None
         raise UsageError(f"{where}: cannot write the report ({exc.strerror or exc})") from None
 
 

@@ -247,6 +247,10 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
             raise
         return added
     except sqlite3.DatabaseError as exc:
+        if getattr(exc, "sqlite_errorcode", None) == getattr(sqlite3, "SQLITE_FULL", 13):
+            from benchharness.errors import disk_full_writing
+
+            raise disk_full_writing(db_path) from None  # exit 75, nothing added
         raise DataError(f"{db_path}: cannot write the history file ({exc})") from None
     finally:
         conn.close()

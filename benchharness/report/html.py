@@ -46,6 +46,10 @@ def write_html(data: ReportData, figs: FigureSet, path) -> Path:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(render_html(data, figs), encoding="utf-8")
-    tmp.replace(path)
+    try:
+        tmp.write_text(render_html(data, figs), encoding="utf-8")
+        tmp.replace(path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)  # a full disk leaves no half file behind
+        raise
     return path

@@ -64,7 +64,11 @@ def write_markdown(data: ReportData, figs: FigureSet, path, compact: bool = Fals
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(render_markdown(data, figs, compact=compact, figures_rel=figures_rel),
-                   encoding="utf-8")
-    tmp.replace(path)
+    try:
+        tmp.write_text(render_markdown(data, figs, compact=compact, figures_rel=figures_rel),
+                       encoding="utf-8")
+        tmp.replace(path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)  # a full disk leaves no half file behind
+        raise
     return path
