@@ -231,3 +231,28 @@ def test_a_best_cell_the_fraction_did_not_run_is_not_called_measured(tmp_path):
     assert "best predicted A=l, B=l, C=l, D=l" in text and "best measured" not in text
     rec = next(line for line in text.splitlines() if "Recommended:" in line)
     assert "(best predicted, not run in this fraction;" in rec, rec
+
+
+def test_no_detectable_difference_never_sits_beside_an_interval_that_excludes_one():
+    """Planted: D ×1.08 (small), A, B, C nothing; 2^4 with 2 runs, seed 2. D's F test gives
+    p = 0.02 alone but 0.35 after Holm over the 15 terms, while its per-term 95% interval
+    [1.01, 1.17] excludes 1×: the statement must say the failure comes from the adjustment
+    and that the interval is unadjusted, not a bare "made no detectable difference"."""
+    import itertools
+
+    rng = np.random.default_rng(2)
+    rows = []
+    for a, b, c, d in itertools.product("01", "01", "01", "01"):
+        for _ in range(2):
+            rows.append({"A": a, "B": b, "C": c, "D": d, "wall_s": 0.2 * (
+                1.08 if d == "1" else 1.0) * math.exp(rng.normal(0, 0.1))})
+    an = analyze(pd.DataFrame(rows), factors=list("ABCD"))
+    f = next(x for x in an.findings if x["kind"] == "main" and x["factors"] == ["D"])
+    assert f["p_raw"] < 0.05 <= f["p"] and f["lower"] > 1      # the situation planted
+    assert f["significant"] is False
+    assert "made no detectable difference" not in f["statement"]
+    assert "after adjusting over the model's terms" in f["statement"]
+    assert "not adjusted for the other terms" in f["statement"]
+    for x in an.findings:   # elsewhere the plain words stay where the interval holds 1×
+        if x["kind"] == "main" and "made no detectable difference" in x["statement"]:
+            assert x["lower"] is None or x["lower"] <= 1 <= x["upper"]

@@ -439,6 +439,14 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=
                 "statement": f"{label}: no detectable effect on average over the other "
                              f"factors ({ptext}){alias_text}, but it takes part in "
                              f"{_and(higher)}, so its effect differs between their levels"}
+    if stated and any(excl(c) for c in stated):
+        # the term fails after Holm over the terms while a stated (per-term) interval
+        # excludes 1×: say which holds, so the words and the interval do not contradict
+        return {**base, "significant": False,
+                "statement": f"{label} made no difference detectable after adjusting over "
+                             f"the model's terms ({ptext}){alias_text}: {listing}{against} "
+                             f"(these {conf} intervals are not adjusted for the other terms)"
+                             f"{also}"}
     return {**base, "significant": False,
             "statement": f"{label} made no detectable difference ({ptext}){alias_text}: "
                          f"{listing}{against}{also}" if stated else
