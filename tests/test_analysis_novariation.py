@@ -45,6 +45,8 @@ def test_constant_response_with_round_off_is_one_finding_and_no_test(tmp_path):
                          capture_output=True, text=True, timeout=120)
     assert res.returncode == 0, res.stderr
     assert "Every run gave the same wall_s" in res.stdout
+    assert "checks could not be made" in res.stdout
+    assert "raise no concern" not in res.stdout
     js = json.loads(out.read_text())
     assert all(r["p"] is None for r in js["anova"])
     assert js["model"]["no_variation"]["kind"] == "constant"
@@ -79,3 +81,22 @@ def test_tiny_but_real_noise_is_still_tested():
     assert an.model["no_variation"] is None
     assert t["A"]["p"] is not None and t["A"]["p"] < 1e-3
     assert t["B"]["p"] > 0.01
+
+
+def test_cells_exactly_equal_without_error_are_tied_not_ranked(tmp_path):
+    # planted: A=p is twice as fast as A=q; B does nothing; every run in a cell is equal,
+    # so there is no error estimate and B=u and B=v are exactly tied within A=p
+    d = layout()
+    d = d.assign(A=np.where(d["A"] == "x", "p", "q"), B=np.where(d["B"] == "p", "u", "v"))
+    d = d[d["A"].isin(["p", "q"])]
+    d["wall_s"] = np.where(d["A"] == "p", 1.0, 2.0)
+    csv = tmp_path / "runs.csv"
+    d.to_csv(csv, index=False)
+    res = subprocess.run([sys.executable, "-m", "benchharness", "analyze", str(csv),
+                          "--factors", "A,B"], cwd=ROOT, capture_output=True, text=True,
+                         timeout=120)
+    assert res.returncode == 0, res.stderr
+    out = " ".join(res.stdout.split())
+    assert "exactly equal to it: A=p, B=" in out
+    rec = [ln for ln in res.stdout.splitlines() if "Recommended" in ln]
+    assert rec and "not distinguishable" in " ".join(rec), res.stdout

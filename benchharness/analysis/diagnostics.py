@@ -183,7 +183,7 @@ def brown_forsythe(row_group, values, count, alpha: float) -> dict:
         if ratio > VAR_RATIO_LARGE:
             return {"test": "brown-forsythe", "statistic": None, "p": None,
                     "variance_ratio": ratio, "size": "large", "level": "caution", "ok": False,
-                    "verdict": f"{size}, beyond {VAR_RATIO_LARGE:g}×; {why}, so not tested; "
+                    "verdict": f"{size}, beyond {VAR_RATIO_LARGE:g}×; {why}, hence not tested; "
                                "comparisons between the noisiest cells deserve caution"}
         return {"test": "brown-forsythe", "statistic": None, "p": None,
                 "variance_ratio": ratio if math.isfinite(ratio) else None,

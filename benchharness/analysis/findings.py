@@ -174,6 +174,12 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
         tied = [int(i) for i in range(k) if not np.any(margin[i] > 0)]
         out["tied"] = tied
         out["tested"] = True
+    elif not have_error:
+        # no error estimate, so no test of ties; but cells whose estimates are exactly
+        # equal (a response constant within cells) are tied as a matter of arithmetic
+        b = sign * est[order[:MAX_CELLS_LISTED]]
+        out["tied"] = [int(i) for i in range(len(b))
+                       if abs(b[i] - b[0]) <= 1e-9 * max(1.0, abs(b[0]))]
 
     def pair(i):
         if not have_error:
@@ -487,6 +493,10 @@ def _best_finding(best: dict, conf: str) -> dict:
                     runner_up=cells[ru["cell"]]["levels"])
     if not best.get("tested"):
         text = f"Best measured: {where}; no test of ties was possible (no error estimate)"
+        if len(tied) > 1:
+            text += ("; exactly equal to it: "
+                     + "; ".join(cell_text(cells[i]["levels"]) for i in tied[1:TIED_NAMED])
+                     + (f" and {len(tied) - TIED_NAMED} more" if len(tied) > TIED_NAMED else ""))
         if ru is not None:
             text += f"; runner-up {cell_text(cells[ru['cell']]['levels'])} at {fmt_ratio(ru['ratio'])}"
         return {**base, "statement": text + tail}

@@ -379,7 +379,13 @@ def sureness(data: ReportData) -> list[str]:
         out.append(f"Based on {n_ok} timed runs" + (f" ({reps} replicates per cell)"
                                                      if reps else "") + ".")
     concerns = [i for i in diagnostic_items(data) if i["concern"]]
-    if concerns:
+    no_var = ((data.analysis.get("model") or {}).get("no_variation") or {}).get("kind")
+    if no_var:
+        out.append("The model's assumption checks could not be made: "
+                   + ("no run differed from any other." if no_var == "constant"
+                      else "runs did not vary within cells.")
+                   + " Nothing here is a test result.")
+    elif concerns:
         out.append("The checks of the model's assumptions raise concerns about "
                    + _and([c["name"].lower() for c in concerns])
                    + "; see Diagnostics before relying on p-values near the threshold.")
