@@ -6,7 +6,7 @@ table. It combines:
 * `model` -- per-setting means on the analysis scale and the pooled noise;
 * `mcb` -- Hsu's constrained multiple comparisons with the best (Hsu 1981,
   1984): the settings not shown worse than the best;
-* `prefer` -- ties broken toward the declared default or first listed level;
+* `prefer` -- ties broken toward the declared default, else the better estimate;
 * `robust` -- minimax regret across the ``across`` environments (Savage 1951)
   against the best on average;
 * `pareto` -- the confident Pareto front over several responses.

@@ -2,16 +2,15 @@
 
 This module owns the preference order among settings that the data cannot
 tell apart. The *default* of each control factor is the level declared in
-``choose: {prefer: {factor: level}}`` (or ``--prefer factor=level``), and for
-a factor not declared there, its first listed level (common practice: the
-first level listed is the one in use today).
+``choose: {prefer: {factor: level}}`` (or ``--prefer factor=level``). A
+factor with no declared default has none: listing a level first says nothing
+about what is in use, so its ties go to the better estimate.
 
 Settings are ranked by, in order:
 
 1. how many *declared* factors differ from their declared level (fewer first);
-2. how many undeclared factors differ from their first listed level;
-3. the estimate (better first);
-4. listed order.
+2. the estimate (better first);
+3. listed order.
 
 Among the tied settings of `mcb` the first in this order is the
 recommendation.
@@ -58,8 +57,7 @@ def preference_rank(settings, control, default: Mapping[str, str], declared,
     keys = []
     for i, s in enumerate(settings):
         d_decl = sum(1 for f, v in zip(control, s) if f in declared and v != default[f])
-        d_rest = sum(1 for f, v in zip(control, s) if f not in declared and v != default[f])
-        keys.append((d_decl, d_rest, -float(goodness[i]), i))
+        keys.append((d_decl, -float(goodness[i]), i))
     order = sorted(range(len(settings)), key=lambda i: keys[i])
     rank = np.empty(len(settings), dtype=int)
     rank[order] = np.arange(len(settings))
