@@ -277,3 +277,23 @@ def test_a_candidate_that_only_fails_more_often_is_not_called_slower():
     text = "\n".join(terminal_lines(slow))
     assert "verdict: the candidate is slower than the tolerance allows" in text
     assert "SLOWER" in text and "fails more often" not in text
+
+
+def test_slow_runs_do_not_push_the_statistic_past_its_clean_tail():
+    # Small fixed-seed version of `gate_validation.py --sections tails`: with 5% of runs
+    # 1.5x as slow at noise CV 5% (a slow run about six scales out, where the biweight
+    # keeps part of its weight), the studentized resistant statistic at one look passes
+    # its clean-noise upper 1% point no more often than clean noise does (binomial
+    # allowance for 20,000 samples: 1% + 3 sd = 1.21%). An understated standard error
+    # would push this share well above 1%.
+    rng = np.random.default_rng(11)
+    paths, n = 20_000, 10
+    q99 = np.quantile(robust_t(rng.standard_normal((paths, n))), 0.99)
+    s = math.sqrt(math.log1p(0.05 ** 2))
+    slow = math.log(1.5)
+    d = (rng.normal(0, s, (paths, n)) + slow * (rng.random((paths, n)) < 0.05)
+         - rng.normal(0, s, (paths, n)) - slow * (rng.random((paths, n)) < 0.05))
+    share = float(np.mean(robust_t(d) > q99))
+    assert share <= 0.0121
+    # and the slow runs are really there: the plain mean moves by more than the noise says
+    assert np.mean(np.abs(d) > 4 * s * math.sqrt(2)) > 0.05

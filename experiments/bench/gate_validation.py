@@ -14,7 +14,8 @@ noncentral t distribution.
     python experiments/bench/gate_validation.py --cvs 0.08 --sections rates   # one part
 
 Sections: ``rates`` (noise CV x true ratio, clean and with 5% of runs 1.5x as
-slow), ``drift``, ``workloads`` (three workloads at the boundary), ``failures``
+slow), ``tails`` (one look, no gate: how often the resistant statistic passes
+its clean-noise 1% and 0.5% points when 5% of runs are 1.5x as slow), ``drift``, ``workloads`` (three workloads at the boundary), ``failures``
 (flaky builds: equal failure rates, candidate or baseline failing more often,
 a build that never succeeds).
 
@@ -112,27 +113,64 @@ def sigma_d(cv):
     return math.sqrt(2 * math.log1p(cv * cv))
 
 
+def tails(tol: float, paths: int = 40_000, seed: int = 1) -> None:
+    """Tail of the studentized resistant statistic at one look, with slow runs.
+
+    The sequential boundaries are simulated for normal log differences; this
+    checks whether slow runs (each run of either build 1.5x as slow with
+    probability 0.05) push the statistic past its clean-noise upper 1% and
+    0.5% points more often than that, at a fixed number of blocks and with no
+    stopping, i.e. whether the standard error understates the spread.
+    """
+    import numpy as np
+
+    from benchharness.gate.robust import robust_t
+
+    rng = np.random.default_rng(seed)
+    print(f"one look, no stopping, {paths} samples each: share of the resistant statistic above "
+          "its clean-noise upper 1% / 0.5% points with 5% of runs 1.5x as slow")
+    for n in (6, 10, 16, 27):
+        q = np.quantile(robust_t(rng.standard_normal((paths, n))), [0.99, 0.995])
+        cells = []
+        for cv in (0.03, 0.05, 0.08):
+            s = math.sqrt(math.log1p(cv * cv))
+            d = (rng.normal(0, s, (paths, n)) + math.log(1.5) * (rng.random((paths, n)) < 0.05)
+                 - rng.normal(0, s, (paths, n)) - math.log(1.5) * (rng.random((paths, n)) < 0.05))
+            t = robust_t(d)
+            cells.append(f"CV {cv:.0%}: {100 * np.mean(t > q[0]):.2f}% / "
+                         f"{100 * np.mean(t > q[1]):.2f}%")
+        print(f"  {n:>3} blocks  " + "   ".join(cells), flush=True)
+    print()
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--gates", type=int, default=2000)
     ap.add_argument("--tolerance", type=float, default=0.05)
     ap.add_argument("--cvs", default="0.03,0.05,0.08", help="noise CVs of the rates section")
-    ap.add_argument("--sections", default="rates,drift,workloads,failures")
+    ap.add_argument("--sections", default="rates,tails,drift,workloads,failures")
     ap.add_argument("--ratios", default=None,
                     help="true ratios of the rates section (default: 1, 1+t, 1+2t, and "
                          "without outliers 1+4t, 1-2t)")
     ap.add_argument("--outliers", default="0,0.05",
                     help="shares of runs 1.5x as slow in the rates section")
     ap.add_argument("--estimator", default="robust", choices=("robust", "mean"))
+    ap.add_argument("--setting", action="append", default=[], metavar="NAME=VALUE",
+                    help="override one GateSettings field (a number), e.g. "
+                         "level_calibration=0.6")
     args = ap.parse_args(argv)
     tol = args.tolerance
-    st = GateSettings(tolerance=tol, estimator=args.estimator)
+    extra = {}
+    for item in args.setting:
+        key, _, value = item.partition("=")
+        extra[key] = type(getattr(GateSettings, key))(value)
+    st = GateSettings(tolerance=tol, estimator=args.estimator, **extra)
     alpha = 1 - st.confidence
     G = args.gates
     sections = set(args.sections.split(","))
     print(f"gate validation: tolerance {tol:.0%}, confidence {st.confidence}, min_runs "
           f"{st.min_runs}, max_runs {st.max_runs}, estimator {st.estimator}, {G} simulated "
-          "gates per row")
+          f"gates per row{', ' + ', '.join(args.setting) if args.setting else ''}")
     print("rates with 95% Wilson intervals; runs = runs of each build per workload\n")
 
     if "rates" in sections:
@@ -158,6 +196,9 @@ def main(argv=None) -> int:
                           f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}   "
                           f"({r['seconds']:.0f} s)", flush=True)
             print()
+
+    if "tails" in sections:
+        tails(args.tolerance)
 
     if "drift" in sections:
         # Drift as large as the effect: over the n runs of a fixed design the machine
