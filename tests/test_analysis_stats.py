@@ -216,6 +216,18 @@ def test_tukey_one_factor_matches_scipy_tukey_hsd():
         assert c["difference"] == pytest.approx(ref.statistic[i, j], rel=1e-10)
         assert c["difference_lower"] == pytest.approx(ci.low[i, j], rel=1e-4)
         assert c["difference_upper"] == pytest.approx(ci.high[i, j], rel=1e-4)
+        # p is the pair's own, unadjusted: the pooled-variance t test with the model's
+        # residual df (source: statsmodels ols t test of the same contrast)
+        import statsmodels.formula.api as smf
+
+        fit = smf.ols("weight ~ C(group)", d).fit()
+        names = {g: ("Intercept" if g == levels[0] else f"C(group)[T.{g}]") for g in levels}
+        L = np.zeros(len(fit.params))
+        for g, sgn in ((c["a"], 1.0), (c["b"], -1.0)):
+            if g != levels[0]:
+                L[list(fit.params.index).index(names[g])] += sgn
+        assert c["p"] == pytest.approx(float(fit.t_test(L).pvalue), rel=1e-8)
+        assert c["p"] <= c["p_adj"]
 
 
 def test_tukey_two_factors_matches_studentized_range_with_model_mse():

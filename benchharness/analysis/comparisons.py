@@ -205,8 +205,12 @@ def tukey(fit: Fit, names, levels, factor_idx, choice, alpha, refs=None) -> list
         idx = [i for i, q in enumerate(stats_q) if q is not None]
         if idx:
             ps = srange.sf(np.array([stats_q[i] for i in idx]), k, fit.df_resid)
+            from scipy import stats as st
+
             for i, p in zip(idx, np.atleast_1d(ps)):
-                rows[i]["p"] = rows[i]["p_adj"] = float(p)
+                # p: the pair's own two-sided t test (t = q / √2); p_adj: Tukey's
+                rows[i]["p"] = float(2 * st.t.sf(stats_q[i] / math.sqrt(2.0), fit.df_resid))
+                rows[i]["p_adj"] = float(p)
         out += rows
     return out
 
