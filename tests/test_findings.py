@@ -58,6 +58,7 @@ def test_crossover_headline_states_the_interaction_per_level(tmp_path):
     assert "A and B interact" in head
     assert "A made no detectable difference" not in r.stdout
     assert "when B=off" in head and "when B=on" in head
+    assert head.index("when B=off") < head.index("when B=on")   # the listed level order
     d = json.loads(out.read_text())
     kinds = [f["kind"] for f in d["findings"]]
     assert kinds.count("interaction") == 1

@@ -206,9 +206,9 @@ def _interaction_clause(inter: dict, found: list[dict], fr, fi, most: int = 4) -
         return max(logs) - min(logs) if logs else 0.0
 
     level, fs = max(by_level.items(), key=lambda kv: spread(kv[1]))
-    fs = sorted(fs, key=lambda f: f["ratio"])
-    if len(fs) > most:
-        fs = [fs[0], fs[-1]]
+    if len(fs) > most:    # the two extremes, still in the partner's level order
+        lo, hi = min(fs, key=lambda f: f["ratio"]), max(fs, key=lambda f: f["ratio"])
+        fs = [f for f in fs if f is lo or f is hi]
     each = "; ".join(f"{fr(f['ratio'])} {fi(f.get('lower'), f.get('upper'))} when "
                      f"{y}={f['within'][y]}" for f in fs)
     return f"{x}={level} against {x}={fs[0]['reference']}: {each}"
