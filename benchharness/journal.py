@@ -93,23 +93,29 @@ def write_atomic(path: Path, data: bytes | str) -> None:
         raise
 
 
+def check_out(folder: Path) -> None:
+    """Refuse an ``--out`` that cannot become a new results folder: a dangling link, a
+    file, or a folder that already holds something (results are never written into one)."""
+    if folder.is_symlink() and not folder.exists():
+        raise ResultsFolderError(f"{folder}: a symbolic link to {os.readlink(folder)}, which "
+                                 "does not exist; give --out a new folder path (or remove "
+                                 "the link)")
+    if folder.exists():
+        if not folder.is_dir():
+            raise ResultsFolderError(f"{folder}: exists and is not a folder; choose another "
+                                     "--out")
+        if any(folder.iterdir()):
+            raise ResultsFolderError(
+                f"{folder}: folder is not empty; results are never written into an existing "
+                f"folder (choose a new --out, or continue it with "
+                f"`benchharness run --resume {folder}`)")
+
+
 def new_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
     """Create the results folder (never reusing a non-empty one) and fsync it."""
     if out is not None:
         folder = Path(out)
-        if folder.is_symlink() and not folder.exists():
-            raise ResultsFolderError(f"{folder}: a symbolic link to {os.readlink(folder)}, which "
-                                     "does not exist; give --out a new folder path (or remove "
-                                     "the link)")
-        if folder.exists():
-            if not folder.is_dir():
-                raise ResultsFolderError(f"{folder}: exists and is not a folder; choose another "
-                                         "--out")
-            if any(folder.iterdir()):
-                raise ResultsFolderError(
-                    f"{folder}: folder is not empty; results are never written into an existing "
-                    f"folder (choose a new --out, or continue it with "
-                    f"`benchharness run --resume {folder}`)")
+        check_out(folder)
         try:
             folder.mkdir(parents=True, exist_ok=True)
             _probe_writable(folder)
@@ -162,19 +168,7 @@ def start_folder(base: Path, name: str, out: str | os.PathLike | None) -> Path:
     """
     if out is not None:
         final = Path(out)
-        if final.is_symlink() and not final.exists():
-            raise ResultsFolderError(f"{final}: a symbolic link to {os.readlink(final)}, which "
-                                     "does not exist; give --out a new folder path (or remove "
-                                     "the link)")
-        if final.exists() or final.is_symlink():
-            if not final.is_dir():
-                raise ResultsFolderError(f"{final}: exists and is not a folder; choose another "
-                                         "--out")
-            if any(final.iterdir()):
-                raise ResultsFolderError(
-                    f"{final}: folder is not empty; results are never written into an existing "
-                    f"folder (choose a new --out, or continue it with "
-                    f"`benchharness run --resume {final}`)")
+        check_out(final)
         parent, stub = final.absolute().parent, final.name
     else:
         parent, stub = Path(base), name

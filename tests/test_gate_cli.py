@@ -242,7 +242,12 @@ def test_throughput_metric_higher_candidate_passes(cli, tmp_path):
             "--json", tmp_path / "g.json")
     assert r.returncode == 0, r.stdout + r.stderr
     data = json.loads((tmp_path / "g.json").read_text())
-    assert {w["verdict"] for w in data["workloads"]} == {"improvement"}
+    # 30% more records per second: never a regression. The gate may stop as soon as a
+    # slowdown is ruled out ("no regression") or go on until the gain is shown
+    # ("improvement"); the workload's noise is not seeded, so either may come first.
+    assert {w["verdict"] for w in data["workloads"]} <= {"improvement", "no_regression"}
+    for w in data["workloads"]:
+        assert w["ratio"] == pytest.approx(1000 / 1300, rel=0.1)
 
 
 def test_unknown_response_is_located(cli, tmp_path):
