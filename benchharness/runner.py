@@ -328,11 +328,6 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
                                  "made")
     try:
         J.check_writable(folder)
-    except OSError as e:
-        if is_disk_full(e):
-            raise disk_full_error(folder, e) from None
-        raise
-    try:
         lock = J.FolderLock(folder)
     except OSError as e:
         if is_disk_full(e):
