@@ -18,7 +18,7 @@ __all__ = ["load_experiment", "plan", "run", "analyze", "choose", "__version__"]
 
 def load_experiment(path):
     """Load and validate an experiment file; returns an `Experiment`."""
-    from benchharness.experiment import load_experiment as _load
+    from benchharness.experiment.file import load_experiment as _load
 
     return _load(path)
 
@@ -32,7 +32,7 @@ def plan(experiment, seed=None):
 
 def run(experiment, out=None, **kwargs):
     """Plan and execute an experiment; returns a `RunOutcome` (``.folder``, ``.runs``)."""
-    from benchharness.runner import run_experiment
+    from benchharness.execute.runner import run_experiment
 
     return run_experiment(experiment, out=out, **kwargs)
 

@@ -16,7 +16,7 @@ AFTER = ["status", "exit_code", "wall_s", "user_s", "sys_s", "max_rss_kib", "min
          "major_faults", "voluntary_switches", "involuntary_switches", "in_blocks", "out_blocks",
          "started_at", "message"]
 
-# keys as benchharness.host.collect_facts writes them
+# keys as benchharness.measure.host.collect_facts writes them
 HOST_A = {"hostname": "ci-runner-7", "cpu_model": "Example CPU 3000", "physical_cores": 2,
           "logical_cores": 2, "memory_bytes": 8589934592, "memory_available_bytes": 4000000000,
           "os": "Linux", "kernel": "6.1.0", "machine": "x86_64", "python": "3.11.7",

@@ -76,8 +76,8 @@ class PlantedExecutor:
 
 def make_results(tmp_path, text=EXPERIMENT, executor=None, name="out"):
     """Run ``text`` with the planted executor into ``tmp_path/name``; returns the folder."""
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = Experiment.from_text(text, path=str(tmp_path / "experiment.yaml"))
     (tmp_path / "experiment.yaml").write_text(text)

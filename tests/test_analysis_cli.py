@@ -114,8 +114,8 @@ def test_cli_missing_source(cli, tmp_path):
 
 
 def test_results_folder_analysis_and_json(tmp_path):
-    from benchharness.experiment import load_experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import load_experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = tmp_path / "exp.yaml"
     exp.write_text(textwrap.dedent(f"""\
@@ -145,8 +145,8 @@ def test_results_folder_analysis_and_json(tmp_path):
 
 def test_bad_declared_comparison_points_at_the_experiment_file(tmp_path):
     from benchharness.errors import ExperimentError
-    from benchharness.experiment import load_experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import load_experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = tmp_path / "exp.yaml"
     exp.write_text(textwrap.dedent(f"""\

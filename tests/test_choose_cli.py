@@ -53,8 +53,8 @@ class PlantedExecutor:
 
 @pytest.fixture
 def folder(tmp_path):
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = Experiment.from_text(EXPERIMENT, path=str(tmp_path / "pool.yaml"))
     out = run_experiment(exp, out=tmp_path / "results", executor=PlantedExecutor(1))
@@ -173,8 +173,8 @@ class ThroughputExecutor:
 
 def test_direction_comes_from_the_metrics_section(tmp_path):
     from benchharness.choose import choice_section, choose
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = Experiment.from_text(THROUGHPUT, path=str(tmp_path / "batch.yaml"))
     folder = run_experiment(exp, out=tmp_path / "res", executor=ThroughputExecutor()).folder
@@ -199,7 +199,7 @@ def test_direction_comes_from_the_metrics_section(tmp_path):
 def test_section_errors_carry_file_and_line(section, needle):
     from benchharness.choose.config import choose_settings
     from benchharness.errors import ExperimentError
-    from benchharness.experiment import Experiment
+    from benchharness.experiment.file import Experiment
 
     text = EXPERIMENT.split("choose:")[0] + section
     exp = Experiment.from_text(text, path="pool.yaml")
@@ -211,7 +211,7 @@ def test_section_errors_carry_file_and_line(section, needle):
 
 def test_section_reads_plain_values():
     from benchharness.choose.config import choose_settings
-    from benchharness.experiment import Experiment
+    from benchharness.experiment.file import Experiment
 
     exp = Experiment.from_text(EXPERIMENT.split("choose:")[0] + (
         "choose:\n  prefer: {threads: 8}\n  across: disk\n  also: [max_rss_kib]\n"

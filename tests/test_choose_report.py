@@ -115,8 +115,8 @@ class Planted:
 
 
 def test_report_shows_the_trade_off_figure_and_a_table_that_fits(cli, tmp_path):
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = Experiment.from_text(EXPERIMENT, path=str(tmp_path / "pool.yaml"))
     folder = run_experiment(exp, out=tmp_path / "results", executor=Planted(1)).folder

@@ -16,7 +16,7 @@ import pytest
 from benchharness.choose import choose
 from benchharness.errors import ExperimentError, UsageError
 from benchharness.execute.base import Measurement
-from benchharness.roles import guess_roles
+from benchharness.experiment.roles import guess_roles
 
 
 def _kernel_csv(path, seed=1):
@@ -154,8 +154,8 @@ class Planted:
 
 @pytest.fixture
 def declared_folder(tmp_path):
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = Experiment.from_text(EXPERIMENT, path=str(tmp_path / "squeeze.yaml"))
     return run_experiment(exp, out=tmp_path / "results", executor=Planted(2)).folder
@@ -215,8 +215,8 @@ def test_bad_roles_are_reported_at_their_line_and_column(cli, tmp_path, block, w
     assert f"bad.yaml:{where}:" in r.stderr and what in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1
     with pytest.raises(ExperimentError):
-        from benchharness.experiment import Experiment
-        from benchharness.sections import validate_sections
+        from benchharness.experiment.file import Experiment
+        from benchharness.experiment.sections import validate_sections
 
         validate_sections(Experiment.from_text(text, path=str(f)))
 

@@ -143,7 +143,7 @@ def test_limits_and_within_in_the_choose_section(cli, tmp_path):
     f.write_text(good)
     assert cli("plan", f).returncode == 0
     from benchharness.choose.config import choose_settings
-    from benchharness.experiment import Experiment
+    from benchharness.experiment.file import Experiment
 
     s = choose_settings(Experiment.from_text(good))
     assert s["within"] == pytest.approx(0.02) and s["limits"][0].response == "max_rss_kib"

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from benchharness import journal as J
+from benchharness.results import journal as J
 
 pytestmark = [pytest.mark.dask, pytest.mark.timeout(120)]
 distributed = pytest.importorskip("distributed")

@@ -9,8 +9,8 @@ import textwrap
 import pytest
 
 from benchharness.errors import ExperimentError
-from benchharness.experiment import load_experiment
-from benchharness.runner import run_experiment
+from benchharness.experiment.file import load_experiment
+from benchharness.execute.runner import run_experiment
 
 PY = sys.executable
 

@@ -10,7 +10,7 @@ import pytest
 
 from benchharness.design import adaptive, budget
 from benchharness.errors import ExperimentError
-from benchharness.experiment import Experiment
+from benchharness.experiment.file import Experiment
 
 BASE = """\
 experiment: codecs

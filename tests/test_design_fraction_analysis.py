@@ -161,11 +161,11 @@ def test_runs_outside_the_fraction_are_refused():
 def test_run_adds_fraction_to_analysis_json(tmp_path):
     import json
 
-    from benchharness import journal as J
+    from benchharness.results import journal as J
     from benchharness.analysis.fraction import add_to_results_folder
     from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
             " '{pin}', '{log}']\nfactors:\n  threads: [4, 16]\n  batch: [1, 64]\n"
@@ -194,8 +194,8 @@ def test_general_anova_of_a_fraction_fits_every_chain(tmp_path):
 
     from benchharness.analysis import analyze_results_folder
     from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
             " '{pin}']\nfactors:\n  threads: [4, 16]\n  batch: [1, 64]\n  cache: [off, on]\n"
@@ -228,8 +228,8 @@ def test_blocked_run_end_to_end(tmp_path):
 
     from benchharness.analysis.fraction import add_to_results_folder
     from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
             " '{pin}']\nfactors:\n  threads: [4, 16]\n  batch: [1, 64]\n  cache: [off, on]\n"
@@ -254,8 +254,8 @@ def test_analyze_command_on_a_fraction_uses_unaliased_terms_and_shows_chains(tmp
     # `benchharness analyze RESULTS` on a 2^(4-1) fraction: by default the same model as
     # after `run` (every alias chain, named by its chain) and the alias-chain estimates.
     from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
             " '{pin}']\nfactors:\n  threads: [4, 16]\n  batch: [1, 64]\n  cache: [off, on]\n"

@@ -9,7 +9,7 @@ import pytest
 
 from benchharness.design import build_plan
 from benchharness.errors import ExperimentError
-from benchharness.experiment import Experiment
+from benchharness.experiment.file import Experiment
 
 BASE = """\
 experiment: pool-screen

@@ -8,8 +8,8 @@ import pytest
 
 from benchharness.design import sequential
 from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
-from benchharness.experiment import Experiment
-from benchharness.runner import resume_experiment, run_experiment
+from benchharness.experiment.file import Experiment
+from benchharness.execute.runner import resume_experiment, run_experiment
 
 BASE = """\
 experiment: codecs

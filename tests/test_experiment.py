@@ -7,7 +7,7 @@ import textwrap
 import pytest
 
 from benchharness.errors import ExperimentError
-from benchharness.experiment import Experiment, load_experiment
+from benchharness.experiment.file import Experiment, load_experiment
 
 GOOD = """\
 experiment: archive-codecs

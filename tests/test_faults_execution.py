@@ -18,8 +18,8 @@ from pathlib import Path
 
 import pytest
 
-from benchharness import templating as T
-from benchharness.runner import run_experiment
+from benchharness.experiment import templating as T
+from benchharness.execute.runner import run_experiment
 
 PY = sys.executable
 
@@ -92,7 +92,7 @@ def test_shell_experiment_runs_hostile_levels_as_data(tmp_path, where):
         factors:
           v: LEVELS
         """.replace("WHERE", where).replace("LEVELS", json.dumps(levels)))
-    from benchharness.experiment import load_experiment
+    from benchharness.experiment.file import load_experiment
 
     out = run_experiment(load_experiment(p), out=tmp_path / "res")
     assert not (tmp_path / "F").exists()
@@ -140,7 +140,7 @@ def test_placeholder_in_a_quoted_here_document_is_refused(tmp_path, cli):
 import signal  # noqa: E402
 import time  # noqa: E402
 
-from benchharness import journal as J  # noqa: E402
+from benchharness.results import journal as J  # noqa: E402
 from benchharness.execute import procs  # noqa: E402
 from benchharness.execute.local import LocalExecutor  # noqa: E402
 
@@ -282,6 +282,10 @@ def test_pid_reuse_forced_then_resume_leaves_the_newcomer(tmp_path, cli):
         h.kill()  # the harness dies other than by Ctrl-C; its launcher stops the run
         h.communicate()
     _wait_for(lambda: not procs.matches(run_pid, *info["start"]), what="the run's end")
+    # A process is told apart by its start time in clock ticks (10 ms): one started in the
+    # very tick of the run cannot be, and the id cannot wrap round that fast outside a test
+    # that forces it. Let the newcomer start at least two ticks after the run did.
+    time.sleep(0.03)
     newcomer = _force_pid(run_pid)
     if newcomer is None:
         pytest.skip("could not force the process id here (other processes took it)")
@@ -366,7 +370,7 @@ import errno  # noqa: E402
 import types  # noqa: E402
 
 from benchharness.errors import DISK_FULL_EXIT, DiskFullError  # noqa: E402
-from benchharness.runner import resume_experiment  # noqa: E402
+from benchharness.execute.runner import resume_experiment  # noqa: E402
 
 
 def _many_runs(tmp_path, replicates, queued=True):
@@ -407,8 +411,8 @@ def _failing_writes(after_lines):
 
 
 def test_disk_full_mid_run_says_so_and_leaves_the_folder_resumable(tmp_path, monkeypatch):
-    from benchharness import journal as journal_mod
-    from benchharness.experiment import load_experiment
+    from benchharness.results import journal as journal_mod
+    from benchharness.experiment.file import load_experiment
 
     p = _many_runs(tmp_path, 6, queued=False)  # 12 runs, one at a time (the harness writes)
     out = tmp_path / "res"
@@ -433,7 +437,7 @@ def test_disk_full_mid_run_says_so_and_leaves_the_folder_resumable(tmp_path, mon
 
 def test_disk_full_exit_code_and_one_line_from_the_command(tmp_path, monkeypatch, capsys):
     from benchharness import cli
-    from benchharness import journal as journal_mod
+    from benchharness.results import journal as journal_mod
 
     p = _many_runs(tmp_path, 3, queued=False)
     monkeypatch.setattr(journal_mod, "os", _failing_writes(after_lines=2))

@@ -44,8 +44,8 @@ HI = {"threads": "16", "batch": "64", "cache": "on", "pin": "yes", "log": "async
 
 
 def run_folder(tmp_path, text, model, seed):
-    from benchharness.experiment import Experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import run_experiment
 
     exp = Experiment.from_text(text)
     return run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(model, seed=seed))

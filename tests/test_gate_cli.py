@@ -42,7 +42,7 @@ def test_identical_commands_pass(cli, tmp_path):
             "--inconclusive", "fail")
     assert r.returncode == 0, r.stdout + r.stderr
     # the results folder is a normal one: the runs table loads
-    from benchharness.journal import load_results
+    from benchharness.results.journal import load_results
 
     res = load_results(tmp_path / "res")
     timed = res.runs[res.runs["status"] != "warmup"]

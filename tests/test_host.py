@@ -1,4 +1,4 @@
-"""Host facts and noise checks (benchharness.host, `benchharness host`)."""
+"""Host facts and noise checks (benchharness.measure.host, `benchharness host`)."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ import time
 
 import pytest
 
-from benchharness import host
+from benchharness.measure import host
 
 
 def test_collect_facts_is_plain_json_with_the_contract_keys():
@@ -151,7 +151,7 @@ def test_facts_at_end_detect_throttling_during_run(tmp_path, monkeypatch):
 
 def test_host_check_modes(tmp_path, monkeypatch):
     from benchharness.errors import ExecutionError, ExperimentError
-    from benchharness.experiment import Experiment
+    from benchharness.experiment.file import Experiment
 
     def exp(line):
         return Experiment.from_text(f"experiment: t\ncommand: [\"true\"]\nfactors: {{a: [1]}}\n"

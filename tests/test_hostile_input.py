@@ -176,7 +176,7 @@ def test_bounded_search_puts_back_an_outer_timer():
     # A test runner's own alarm (pytest-timeout) must survive a bounded search.
     code = r"""
 import re, signal, time
-from benchharness.expect import bounded, RegexTimeout
+from benchharness.measure.expect import bounded, RegexTimeout
 fired = []
 signal.signal(signal.SIGALRM, lambda *a: fired.append(1))
 signal.setitimer(signal.ITIMER_REAL, 1.0)
@@ -198,7 +198,7 @@ print('fired', len(fired))
 def test_bounded_search_off_the_main_thread():
     code = r"""
 import re, threading
-from benchharness.expect import bounded, RegexTimeout
+from benchharness.measure.expect import bounded, RegexTimeout
 out = {}
 def work():
     m = bounded(lambda: list(re.finditer(r'r=(\d+)', 'r=1 r=22')), 'x', 5)

@@ -7,7 +7,7 @@ from __future__ import annotations
 import os
 import time
 
-from benchharness import journal as J
+from benchharness.results import journal as J
 
 
 def _record_fsyncs(monkeypatch):

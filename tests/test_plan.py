@@ -7,7 +7,7 @@ import json
 import textwrap
 
 from benchharness.design.plan import make_plan
-from benchharness.experiment import Experiment
+from benchharness.experiment.file import Experiment
 
 BASE = """\
 experiment: p

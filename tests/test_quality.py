@@ -13,7 +13,7 @@ import pytest
 
 from benchharness.errors import ExperimentError
 from benchharness.execute.base import Measurement
-from benchharness.experiment import Experiment
+from benchharness.experiment.file import Experiment
 
 
 def _exp(section: str, factors: str = "{codec: [zlib, lzma]}"):
@@ -29,7 +29,7 @@ def _m(status="ok", code=0, out=b"", err=b""):
 # --------------------------------------------------------------------------- expect
 
 def test_expect_catches_wrong_output_and_exit():
-    from benchharness.expect import apply_expect, check_expect, parse_expect
+    from benchharness.measure.expect import apply_expect, check_expect, parse_expect
 
     spec = parse_expect(_exp("expect: {exit: 0, stdout: '^checksum 9f2c$'}").sections["expect"])
     assert check_expect(spec, _m(out=b"warming\nchecksum 9f2c\n")) == (True, "")
@@ -50,7 +50,7 @@ def test_expect_catches_wrong_output_and_exit():
 
 
 def test_expect_accepts_listed_nonzero_exit_and_checks_stderr():
-    from benchharness.expect import apply_expect, parse_expect
+    from benchharness.measure.expect import apply_expect, parse_expect
 
     spec = parse_expect(_exp("expect: {exit: [0, 3], stderr: 'done'}").sections["expect"])
     m = apply_expect(spec, _m(status="failed", code=3, err=b"all done\n"))
@@ -65,7 +65,7 @@ def test_expect_accepts_listed_nonzero_exit_and_checks_stderr():
     ("expect: {stdot: x}", "did you mean 'stdout'"),
 ])
 def test_expect_errors_name_file_line_col(section, needle):
-    from benchharness.expect import parse_expect
+    from benchharness.measure.expect import parse_expect
 
     with pytest.raises(ExperimentError) as ei:
         parse_expect(_exp(section).sections["expect"])
@@ -84,14 +84,14 @@ METRICS = """metrics:
 
 
 def _metrics():
-    from benchharness.metrics import parse_metrics
+    from benchharness.measure.metrics import parse_metrics
 
     exp = _exp(METRICS)
     return parse_metrics(exp.sections["metrics"], exp.factor_names)
 
 
 def test_regex_and_json_metrics_parse(tmp_path):
-    from benchharness.metrics import extract_metrics
+    from benchharness.measure.metrics import extract_metrics
 
     cfg = _metrics()
     assert cfg.names == ("rate_rps", "warn_count", "p99_ms", "first_ms", "hit_ratio")
@@ -112,7 +112,7 @@ def test_regex_and_json_metrics_parse(tmp_path):
 
 
 def test_malformed_output_gives_missing_values_with_reasons(tmp_path):
-    from benchharness.metrics import extract_metrics, reasons_message, snapshot_files
+    from benchharness.measure.metrics import extract_metrics, reasons_message, snapshot_files
 
     cfg = _metrics()
     (tmp_path / "stats-zlib.json").write_text("{not json")
@@ -162,7 +162,7 @@ def test_malformed_output_gives_missing_values_with_reasons(tmp_path):
     ("bad-name: {json: a, better: lower}", "letters, digits"),
 ])
 def test_metric_config_errors_are_located(body, needle):
-    from benchharness.metrics import parse_metrics
+    from benchharness.measure.metrics import parse_metrics
 
     exp = _exp("metrics:\n  " + body)
     with pytest.raises(ExperimentError) as ei:
@@ -173,8 +173,8 @@ def test_metric_config_errors_are_located(body, needle):
 def test_every_runs_csv_column_is_reserved():
     # A metric (or factor) named like a column the runner writes would overwrite that
     # column in runs.csv (e.g. `aslr`), so every such column is reserved.
-    from benchharness.experiment import RESERVED_COLUMNS
-    from benchharness.journal import CORE_COLUMNS, LATER_COLUMNS, LEAD_COLUMNS
+    from benchharness.experiment.file import RESERVED_COLUMNS
+    from benchharness.results.journal import CORE_COLUMNS, LATER_COLUMNS, LEAD_COLUMNS
 
     assert set(LEAD_COLUMNS + CORE_COLUMNS + LATER_COLUMNS) <= RESERVED_COLUMNS
 
@@ -182,7 +182,7 @@ def test_every_runs_csv_column_is_reserved():
 # --------------------------------------------------------------------------- provenance
 
 def test_executable_hash_changes_when_the_binary_does(tmp_path):
-    from benchharness.provenance import collect_provenance, command_files, sha256_file
+    from benchharness.measure.provenance import collect_provenance, command_files, sha256_file
     import hashlib
 
     tool = tmp_path / "bin" / "squeeze"
@@ -213,7 +213,7 @@ def test_executable_hash_changes_when_the_binary_does(tmp_path):
 
 
 def test_git_revision_and_dirty_state(tmp_path):
-    from benchharness.provenance import git_state
+    from benchharness.measure.provenance import git_state
 
     if subprocess.run(["git", "--version"], capture_output=True).returncode != 0:
         pytest.skip("git is not installed")
@@ -238,7 +238,7 @@ def test_git_revision_and_dirty_state(tmp_path):
 # --------------------------------------------------------------------------- perf
 
 def test_perf_output_parsing_and_wrapping():
-    from benchharness.perfstat import PerfConfig, parse_perf_output, wrap
+    from benchharness.measure.perfstat import PerfConfig, parse_perf_output, wrap
 
     text = ("# started on Tue\n\n1234567,,cycles:u,1000,100.00,,\n"
             "<not supported>,,cache-misses,0,100.00,,\n987654,,instructions:u,1000,100.00,0.8,insn per cycle\n")
@@ -252,7 +252,7 @@ def test_perf_output_parsing_and_wrapping():
 
 
 def test_perf_counts_where_supported_or_a_clear_note(tmp_path):
-    from benchharness.perfstat import PerfConfig, perf_support, read_counts, wrap
+    from benchharness.measure.perfstat import PerfConfig, perf_support, read_counts, wrap
 
     works, note = perf_support()
     if not works:
@@ -267,7 +267,7 @@ def test_perf_counts_where_supported_or_a_clear_note(tmp_path):
 
 
 def test_perf_section_values():
-    from benchharness.perfstat import parse_perf
+    from benchharness.measure.perfstat import parse_perf
 
     assert parse_perf(_exp("perf: true").sections["perf"]).events[0] == "cycles"
     assert parse_perf(_exp("perf: false").sections["perf"]) is None
@@ -282,7 +282,7 @@ def test_perf_section_values():
 ])
 def test_perf_columns_may_not_be_taken_by_a_metric_or_factor(section, needle):
     # Either would overwrite the counter's runs.csv column.
-    from benchharness.quality import quality_config
+    from benchharness.measure.quality import quality_config
 
     with pytest.raises(ExperimentError, match=needle):
         quality_config(_exp(section, factors="{perf_cycles: [a, b]}" if "factor" in needle
@@ -295,7 +295,7 @@ def test_load_correlation_finds_planted_relation_like_scipy():
     import numpy as np
     from scipy import stats
 
-    from benchharness.analysis_load import load_correlation
+    from benchharness.analysis.load_check import load_correlation
 
     rng = np.random.default_rng(2)
     load = rng.uniform(0, 4, 60)
@@ -311,7 +311,7 @@ def test_load_correlation_finds_planted_relation_like_scipy():
 
 
 def test_metric_direction_from_results_folder(tmp_path):
-    from benchharness.metrics import better_direction, read_manifest
+    from benchharness.measure.metrics import better_direction, read_manifest
 
     (tmp_path / "metrics.json").write_text(json.dumps(_metrics().manifest()))
     assert better_direction(tmp_path, "rate_rps") == "higher"
@@ -326,7 +326,7 @@ def test_load_check_on_a_fitted_analysis():
     import pandas as pd
 
     from benchharness.analysis import analyze
-    from benchharness.analysis_load import load_check
+    from benchharness.analysis.load_check import load_check
 
     rng = np.random.default_rng(4)
     n = 40

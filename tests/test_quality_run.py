@@ -14,8 +14,8 @@ from pathlib import Path
 import pytest
 
 from benchharness.execute.base import Measurement
-from benchharness.experiment import load_experiment
-from benchharness.runner import run_experiment
+from benchharness.experiment.file import load_experiment
+from benchharness.execute.runner import run_experiment
 
 ROOT = Path(__file__).resolve().parent.parent
 PY = sys.executable
@@ -28,7 +28,7 @@ class PopenExecutor:
         self.specs = []
 
     def execute(self, spec, on_start=None):
-        from benchharness.journal import utc_iso
+        from benchharness.results.journal import utc_iso
 
         self.specs.append(spec)
         started = utc_iso()
@@ -176,7 +176,7 @@ def test_bad_section_fails_before_any_folder_exists(tmp_path):
 
 
 def test_perf_section_without_counters_gives_a_note(tmp_path):
-    from benchharness.perfstat import perf_support
+    from benchharness.measure.perfstat import perf_support
 
     works, note = perf_support()
     exp = _write(tmp_path, """\
@@ -242,7 +242,7 @@ def test_steady_command_reports_advice(tmp_path, cli):
 
 
 def test_resumed_folder_keeps_first_provenance_and_flags_changed_files(tmp_path):
-    from benchharness.quality import RunQuality
+    from benchharness.measure.quality import RunQuality
 
     script = tmp_path / "app.py"
     script.write_text("print(1)\n")
@@ -281,7 +281,7 @@ def test_plan_checks_quality_sections(tmp_path, cli):
 
 def test_metric_file_placeholders_are_checked(tmp_path):
     from benchharness.errors import ExperimentError
-    from benchharness.quality import quality_config
+    from benchharness.measure.quality import quality_config
 
     exp = _write(tmp_path, """\
         experiment: files

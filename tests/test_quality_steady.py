@@ -8,11 +8,11 @@ import warnings
 import numpy as np
 import pytest
 
-from benchharness.steady.changepoint import optimal_partitioning, pelt, segment_cost
-from benchharness.steady.components import (Components, balanced, best_iterations, recommend,
+from benchharness.measure.steady.changepoint import optimal_partitioning, pelt, segment_cost
+from benchharness.measure.steady.components import (Components, balanced, best_iterations, recommend,
                                             variance_components)
-from benchharness.steady.samples import SamplesConfig, extract_samples
-from benchharness.steady.warmup import classify
+from benchharness.measure.steady.samples import SamplesConfig, extract_samples
+from benchharness.measure.steady.warmup import classify
 
 
 def _series(seed):

@@ -18,11 +18,11 @@ from pathlib import Path
 
 import pytest
 
-from benchharness import journal as J
+from benchharness.results import journal as J
 from benchharness.execute.base import RunSpec
 from benchharness.execute.local import LocalExecutor
-from benchharness.experiment import Experiment
-from benchharness.runner import run_experiment
+from benchharness.experiment.file import Experiment
+from benchharness.execute.runner import run_experiment
 from executor_wrappers import Counting, OneByOne
 
 PATH = os.environ.get("PATH", "/usr/bin:/bin")

@@ -153,7 +153,7 @@ def test_report_of_a_gate_results_folder(tmp_path, cli):
     from statsmodels.stats.anova import anova_lm
 
     from benchharness import analyze
-    from benchharness.journal import load_results
+    from benchharness.results.journal import load_results
 
     out = tmp_path / "gate"
     r = cli("gate", "--baseline", "sleep 0.02", "--candidate", "sleep 0.04", "--seed", "2",

@@ -14,8 +14,8 @@ from pathlib import Path
 
 import pytest
 
-from benchharness import journal as J
-from benchharness.runner import resume_experiment, run_experiment
+from benchharness.results import journal as J
+from benchharness.execute.runner import resume_experiment, run_experiment
 ROOT = Path(__file__).resolve().parent.parent
 
 PY = sys.executable
@@ -29,7 +29,7 @@ def exp_text(tmp_path, body):
 
 
 def load(p):
-    from benchharness.experiment import load_experiment
+    from benchharness.experiment.file import load_experiment
 
     return load_experiment(p)
 

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from benchharness import journal as J
+from benchharness.results import journal as J
 
 ROOT = Path(__file__).resolve().parent.parent
 PY = sys.executable
@@ -197,8 +197,8 @@ def test_every_demo_names_files_that_exist_from_its_run_directory(path, tmp_path
                                                                  monkeypatch):
     # started from an unrelated directory, every relative path in each demo's
     # command and build must resolve (build outputs: produced by the build)
-    from benchharness.early_stop import _relative_paths
-    from benchharness.experiment import load_experiment
+    from benchharness.execute.early_stop import _relative_paths
+    from benchharness.experiment.file import load_experiment
 
     monkeypatch.chdir(tmp_path)
     exp = load_experiment(path)
@@ -220,8 +220,8 @@ def test_every_demo_names_files_that_exist_from_its_run_directory(path, tmp_path
 def test_archive_demo_runs_from_another_directory(tmp_path, monkeypatch):
     # the shipped file, one replicate, no warm-up, started from an unrelated directory
     from benchharness.design import build_plan
-    from benchharness.experiment import load_experiment
-    from benchharness.runner import run_experiment
+    from benchharness.experiment.file import load_experiment
+    from benchharness.execute.runner import run_experiment
 
     monkeypatch.chdir(tmp_path)
     exp = load_experiment(ROOT / "experiments" / "archive-codecs.yaml")

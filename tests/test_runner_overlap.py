@@ -15,11 +15,11 @@ import time
 
 import pytest
 
-from benchharness import host
+from benchharness.measure import host
 from benchharness.execute.base import RunSpec
 from benchharness.execute.local import LocalExecutor
-from benchharness.experiment import Experiment
-from benchharness.runner import run_experiment
+from benchharness.experiment.file import Experiment
+from benchharness.execute.runner import run_experiment
 from executor_wrappers import NoQueue, OneByOne
 
 TEXT = """experiment: overlap

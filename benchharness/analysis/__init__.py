@@ -67,7 +67,7 @@ class Analysis:
     position: Any = field(default=None, repr=False, compare=False)
     run: Any = field(default=None, repr=False, compare=False)
     fit: Any = field(default=None, repr=False, compare=False)
-    #: the role of every factor (setting, workload, environment), see benchharness.roles
+    #: the role of every factor (setting, workload, environment), see benchharness.experiment.roles
     roles: dict | None = None
 
     @property
@@ -159,7 +159,7 @@ def _declared_from_experiment(exp):
     node = sections.get("compare") if hasattr(sections, "get") else None
     if node is None:
         return None, None
-    from benchharness.yamlnodes import to_plain
+    from benchharness.experiment.yamlnodes import to_plain
 
     return to_plain(node), node
 
@@ -529,7 +529,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     except UsageError as exc:
         if node is None:
             raise
-        from benchharness.yamlnodes import node_error
+        from benchharness.experiment.yamlnodes import node_error
 
         k = getattr(exc, "item", None)
         raise node_error(_item_node(node, k) if k else node, str(exc),
@@ -595,8 +595,8 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
 
 
 def _roles_of(experiment, names, levels) -> dict:
-    """Each factor's role: declared in the experiment file, else guessed (benchharness.roles)."""
-    from benchharness.roles import factor_roles
+    """Each factor's role: declared in the experiment file, else guessed (benchharness.experiment.roles)."""
+    from benchharness.experiment.roles import factor_roles
 
     return factor_roles(experiment, factors=list(names),
                         levels={f: list(lv) for f, lv in zip(names, levels)}).to_dict()
@@ -637,7 +637,7 @@ def _tukey_factors(fit, anova_p, alpha, factor_idx):
 
 
 def _setting_factors(roles: dict | None, fnames) -> list[int]:
-    """Indices of the factors a recommendation chooses: the settings (``benchharness.roles``).
+    """Indices of the factors a recommendation chooses: the settings (``benchharness.experiment.roles``).
 
     Workloads and environments are averaged over, so the best cell is a setting
     that holds up across them; without any setting every factor counts.
@@ -654,15 +654,15 @@ def _better_of(data, response) -> str:
     except TypeError:
         return "lower"
     if path.is_dir():
-        from benchharness.metrics import better_direction
+        from benchharness.measure.metrics import better_direction
 
         return better_direction(path, response)
     return "lower"
 
 
 def _load_check(resid, load, alpha):
-    """Do residuals follow the machine's load? (Spearman; ``benchharness.analysis_load``)."""
-    from benchharness.analysis_load import load_correlation
+    """Do residuals follow the machine's load? (Spearman; ``benchharness.analysis.load_check``)."""
+    from benchharness.analysis.load_check import load_correlation
 
     out = load_correlation(resid, load, alpha=alpha)
     return {"test": "spearman", "statistic": out.get("rho"), "p": out.get("p"),

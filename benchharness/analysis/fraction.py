@@ -356,7 +356,7 @@ def add_to_results_folder(folder, response: str = "wall_s", log: bool = True) ->
     import json
     from pathlib import Path
 
-    from benchharness import journal as J
+    from benchharness.results import journal as J
 
     folder = Path(folder)
     res = J.load_results(folder)

@@ -54,7 +54,7 @@ def load_source(data, factors=None):
     if not isinstance(data, (str, Path)):
         raise UsageError(f"cannot analyse a {type(data).__name__}; give a DataFrame, a CSV file "
                          "or a results folder")
-    from benchharness.source import load_table
+    from benchharness.results.source import load_table
 
     return load_table(data, factors=factors)
 

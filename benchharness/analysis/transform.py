@@ -91,7 +91,7 @@ def unit_of_response(response: str, experiment=None, folder=None) -> str | None:
     if folder is None and experiment is not None and getattr(experiment, "path", None):
         folder = os.path.dirname(str(experiment.path))
     if folder is not None:
-        from benchharness.metrics import read_manifest
+        from benchharness.measure.metrics import read_manifest
 
         entry = read_manifest(folder).get(response)
         if isinstance(entry, dict) and entry.get("unit") is not None:
@@ -100,7 +100,7 @@ def unit_of_response(response: str, experiment=None, folder=None) -> str | None:
     node = sections.get("metrics") if hasattr(sections, "get") else None
     if node is not None:
         try:
-            from benchharness.metrics import parse_metrics
+            from benchharness.measure.metrics import parse_metrics
 
             for m in parse_metrics(node, tuple(getattr(experiment, "factor_names", ()) or ())
                                    ).metrics:

@@ -53,7 +53,7 @@ class Choice:
     runs_dropped: int = 0
     #: settings that were run but have no ok run with a value of the response
     without_runs: list = field(default_factory=list)
-    #: the role of every factor and where it came from (`benchharness.roles.Roles.to_dict`)
+    #: the role of every factor and where it came from (`benchharness.experiment.roles.Roles.to_dict`)
     roles: dict = field(default_factory=dict)
     #: the declared default (``prefer``), only the factors actually declared
     declared_default: dict = field(default_factory=dict)
@@ -105,7 +105,7 @@ DEFAULT_WITHIN = 0.03
 def _within(x) -> float:
     """A margin from 0.03, "3%" or "0.03"; `UsageError` when it is not one."""
     if isinstance(x, str):
-        from benchharness.yamlnodes import parse_percent
+        from benchharness.experiment.yamlnodes import parse_percent
 
         v = parse_percent(x)
     else:
@@ -128,7 +128,7 @@ def _limit_list(x) -> list:
 
 def _resolve_roles(roles, experiment, df, factors, across_given):
     """The roles to use: given here, else declared in the file, else guessed."""
-    from benchharness.roles import ROLES, Roles, factor_roles
+    from benchharness.experiment.roles import ROLES, Roles, factor_roles
 
     if isinstance(roles, Roles):
         return roles
@@ -136,7 +136,7 @@ def _resolve_roles(roles, experiment, df, factors, across_given):
         if not isinstance(roles, Mapping):
             raise UsageError("roles must map a role (setting, workload, environment) to "
                              "factor names")
-        from benchharness.roles import declared_roles
+        from benchharness.experiment.roles import declared_roles
 
         base = declared_roles(experiment)
         role = {}
@@ -218,11 +218,11 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     term (``block`` for ``order: blocked`` experiments, ``host`` when the runs
     span several hosts), a column name fits that one, False fits none.
 
-    ``roles``: a `benchharness.roles.Roles` or a mapping role -> factors
+    ``roles``: a `benchharness.experiment.roles.Roles` or a mapping role -> factors
     (``{"workload": ["size"]}``; unnamed factors are settings) overriding the
     experiment's ``roles:`` section. Only settings are chosen; workloads and
     environments join ``across``. With no roles declared anywhere, factors
-    that look like inputs are treated as workloads (`benchharness.roles`),
+    that look like inputs are treated as workloads (`benchharness.experiment.roles`),
     and the reasons say so. ``within``: the practical margin of the
     trade-off front (a fraction, 0.03, or text, "3%"; default 3%).
     ``limits``: constraints such as ``"max_rss_kib within 5%"`` (see
@@ -268,7 +268,7 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     control = [f for f in factors_list if f not in across]
     if not control:
         if not role_info.declared and role_info.workload:
-            from benchharness.roles import declaration_text
+            from benchharness.experiment.roles import declaration_text
 
             raise UsageError(
                 "every factor looks like an input or is in --across, so nothing is left to "

@@ -36,11 +36,11 @@ def load_source(data, factors=None):
     """(DataFrame, Experiment | None) from a DataFrame, CSV path or results folder.
 
     A DataFrame without ``factors`` is returned as is (the caller asks for
-    the factors); everything else goes through `benchharness.source.load_table`.
+    the factors); everything else goes through `benchharness.results.source.load_table`.
     """
     import pandas as pd
 
-    from benchharness.source import load_table
+    from benchharness.results.source import load_table
 
     if isinstance(data, pd.DataFrame) and factors is None:
         return data, None
@@ -61,7 +61,7 @@ def choose_settings(experiment) -> dict:
     """
     import yaml
 
-    from benchharness.yamlnodes import (as_float, as_percent, expect_mapping, is_null,
+    from benchharness.experiment.yamlnodes import (as_float, as_percent, expect_mapping, is_null,
                                         node_error, scalar_text, sequence_items, to_plain)
 
     out: dict = {}
@@ -138,7 +138,7 @@ _ENVIRONMENT_COLUMNS = ("host", "worker", "block", "replicate")
 def _check_column(experiment, key, name, node) -> None:
     """An `across` entry must be a factor or an environment column; `also` and
     `response` a measured response (usage figure, metric, steady_s, perf counter)."""
-    from benchharness.yamlnodes import node_error
+    from benchharness.experiment.yamlnodes import node_error
 
     factors = tuple(getattr(experiment, "factor_names", ()) or ())
     if not factors:
@@ -150,7 +150,7 @@ def _check_column(experiment, key, name, node) -> None:
                                    f"{', '.join(_ENVIRONMENT_COLUMNS)}")
         return
     else:
-        from benchharness.quality import response_columns
+        from benchharness.measure.quality import response_columns
 
         if name.startswith("perf_") and "perf" in (getattr(experiment, "sections", {}) or {}):
             return
@@ -173,14 +173,14 @@ def _known_factors(experiment, node):
     names = tuple(getattr(experiment, "factor_names", ()) or ())
     if names:
         return names
-    from benchharness.yamlnodes import mapping_items
+    from benchharness.experiment.yamlnodes import mapping_items
 
     return [k for k, _kn, _v in mapping_items(node, "choose.prefer")]
 
 
 def metric_directions(experiment) -> dict[str, str]:
     """Map of response name -> 'lower' | 'higher' from the ``metrics:`` section."""
-    from benchharness.yamlnodes import to_plain
+    from benchharness.experiment.yamlnodes import to_plain
 
     if experiment is None:
         return {}

@@ -49,7 +49,7 @@ class Limit:
 
 def parse_limit(text: str) -> Limit:
     """A `Limit` from ``"max_rss_kib within 5%"``; `UsageError` with the form otherwise."""
-    from benchharness.yamlnodes import parse_percent
+    from benchharness.experiment.yamlnodes import parse_percent
 
     m = _FORM.match(str(text))
     if not m:

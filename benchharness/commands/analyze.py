@@ -75,7 +75,7 @@ def main(args) -> int:
     if not 0 < args.alpha < 1:
         raise UsageError(f"--alpha {args.alpha}: must be between 0 and 1")
     block = False if args.no_block else args.block
-    from benchharness.journal import is_results_folder, load_results
+    from benchharness.results.journal import is_results_folder, load_results
 
     folder_res = load_results(args.source) if is_results_folder(args.source) else None
     if args.response is None:

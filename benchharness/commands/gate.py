@@ -71,7 +71,7 @@ def main(args) -> int:
     from pathlib import Path
 
     from benchharness.errors import UsageError
-    from benchharness.experiment import Experiment, load_experiment
+    from benchharness.experiment.file import Experiment, load_experiment
     from benchharness.gate import output
     from benchharness.gate.session import parse_gate_section, quick_experiment_text, run_session
 
@@ -117,7 +117,7 @@ def main(args) -> int:
         raise UsageError("--warmup must be 0 or more")
     if quick:
         if args.timeout is not None:
-            from benchharness.yamlnodes import parse_duration_s
+            from benchharness.experiment.yamlnodes import parse_duration_s
 
             if not parse_duration_s(args.timeout):
                 raise UsageError(f"--timeout {args.timeout!r}: give a duration like 60s or 5m")

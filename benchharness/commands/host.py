@@ -31,7 +31,7 @@ def _fmt(v) -> str:
 
 
 def main(args) -> int:
-    from benchharness.host import check_host, collect_facts
+    from benchharness.measure.host import check_host, collect_facts
 
     facts = collect_facts()
     warnings = check_host(facts)

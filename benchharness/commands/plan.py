@@ -23,11 +23,11 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
-    from benchharness.experiment import load_experiment
+    from benchharness.experiment.file import load_experiment
     from benchharness.design import build_plan
 
     exp = load_experiment(args.file)
-    from benchharness.sections import validate_sections
+    from benchharness.experiment.sections import validate_sections
 
     validate_sections(exp)  # every capability section: errors before any run
     for w in exp.warnings:
@@ -35,7 +35,7 @@ def main(args) -> int:
     plan = build_plan(exp, seed=args.seed)
     timing = _timing(args, exp, plan)
     if args.json:
-        from benchharness.roles import factor_roles
+        from benchharness.experiment.roles import factor_roles
 
         d = plan.to_json_dict()
         d["roles"] = factor_roles(exp).to_dict()
@@ -65,8 +65,8 @@ def _timing(args, exp, plan) -> dict:
     if not args.pilot:
         return out
     from benchharness.design.budget import estimate_plan, pilot_timing, replicates_in_budget
-    from benchharness.source import load_table
-    from benchharness.yamlnodes import parse_duration_s
+    from benchharness.results.source import load_table
+    from benchharness.experiment.yamlnodes import parse_duration_s
 
     pilot, _ = load_table(args.pilot) if os.path.isdir(args.pilot) else \
         load_table(args.pilot, factors=list(exp.factor_names))
@@ -119,7 +119,7 @@ def format_plan(exp, plan, show: int = 12) -> str:
     lines = [f"experiment  {exp.name}"]
     if exp.about:
         lines.append(f"question    {exp.about}")
-    from benchharness.roles import factor_roles
+    from benchharness.experiment.roles import factor_roles
 
     roles = factor_roles(exp)
     lines.append("factors")
@@ -156,7 +156,7 @@ def format_plan(exp, plan, show: int = 12) -> str:
 
 def _roles_line(roles) -> str:
     """How the factors' roles were decided, in one line."""
-    from benchharness.roles import declaration_text
+    from benchharness.experiment.roles import declaration_text
 
     if roles.declared:
         return ("declared in the file: " + "; ".join(

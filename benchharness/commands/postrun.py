@@ -58,7 +58,7 @@ def analyse_and_report(res) -> None:
 def _nothing_finished(folder) -> bool:
     """True when no timed run of the results folder finished with a value."""
     try:
-        from benchharness.journal import load_results
+        from benchharness.results.journal import load_results
         from benchharness.report.data import _nothing_finished as nothing
 
         return nothing(load_results(folder).runs, "wall_s")

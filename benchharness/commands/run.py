@@ -5,7 +5,7 @@ Exit codes, so a CI job can tell the outcomes apart:
 * 0 every timed run ended ok (or ``--allow-failures`` and the plan ran to its end);
 * 4 the plan ran to its end but some timed runs failed or timed out;
 * 5 stopped early: the first runs of every cell failed the same way (the command
-  cannot work as written), see `benchharness.early_stop`; ``--keep-going`` runs
+  cannot work as written), see `benchharness.execute.early_stop`; ``--keep-going`` runs
   the whole plan instead;
 * 130 Ctrl-C; 2 bad input; 70 an internal error.
 
@@ -57,7 +57,7 @@ def add_parser(sub) -> None:
 
 
 def _progress(quiet: bool):
-    from benchharness.runner import PlainProgress, Progress, RichProgress
+    from benchharness.execute.runner import PlainProgress, Progress, RichProgress
 
     if quiet:
         return Progress()
@@ -67,7 +67,7 @@ def _progress(quiet: bool):
 
 
 def main(args) -> int:
-    from benchharness import runner
+    from benchharness.execute import runner
     from benchharness.errors import UsageError
 
     if args.scheduler:
@@ -86,7 +86,7 @@ def main(args) -> int:
     else:
         if not args.file:
             raise UsageError("run needs an experiment file (or --resume DIR)")
-        from benchharness.experiment import load_experiment
+        from benchharness.experiment.file import load_experiment
 
         exp = load_experiment(args.file)
         for w in exp.warnings:
@@ -113,7 +113,7 @@ def main(args) -> int:
 def _budget(args, exp):
     """(budget in seconds or None, pilot estimate of one replicate in seconds or None)."""
     from benchharness.errors import UsageError
-    from benchharness.yamlnodes import parse_duration_s
+    from benchharness.experiment.yamlnodes import parse_duration_s
 
     if args.budget is None:
         if args.pilot:
@@ -128,7 +128,7 @@ def _budget(args, exp):
     if args.pilot:
         from benchharness.design import build_plan
         from benchharness.design.budget import estimate_plan, pilot_timing
-        from benchharness.source import load_table
+        from benchharness.results.source import load_table
 
         pilot, _ = load_table(args.pilot) if os.path.isdir(args.pilot) else \
             load_table(args.pilot, factors=list(exp.factor_names))
@@ -141,7 +141,7 @@ def _budget(args, exp):
 def finish(outcome, analysis: bool = True, allow_failures: bool = False) -> int:
     """Print the summary (and analysis, reports) of a finished or interrupted run; the
     exit code (see the module docstring)."""
-    from benchharness import journal as J
+    from benchharness.results import journal as J
     from benchharness.commands import summary
 
     folder = outcome.folder
@@ -181,7 +181,7 @@ def _path_hint(res) -> str | None:
     """Why a command may not start: a relative path missing from the run directory."""
     import shlex
 
-    from benchharness.early_stop import path_hint
+    from benchharness.execute.early_stop import path_hint
 
     exp, session = res.experiment, res.session or {}
     if not res.records:

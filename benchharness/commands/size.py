@@ -36,7 +36,7 @@ def add_parser(sub) -> None:
 
 def _percent(text: str, what: str) -> float:
     from benchharness.errors import UsageError
-    from benchharness.yamlnodes import parse_percent
+    from benchharness.experiment.yamlnodes import parse_percent
 
     v = parse_percent(text)
     if v is None or v <= 0:
@@ -49,7 +49,7 @@ def _factors_from_levels(text: str):
     from benchharness.errors import UsageError
 
     if os.path.exists(text) or text.endswith((".yaml", ".yml")):
-        from benchharness.experiment import load_experiment
+        from benchharness.experiment.file import load_experiment
 
         exp = load_experiment(text)
         return _factors_from_experiment(exp) + (exp,)
@@ -81,7 +81,7 @@ def main(args) -> int:
     detect = _percent(args.detect, "--detect")
     pilot_df = pilot_exp = None
     if args.pilot:
-        from benchharness.source import load_table
+        from benchharness.results.source import load_table
 
         if os.path.isdir(args.pilot):
             pilot_df, pilot_exp = load_table(args.pilot)
@@ -99,7 +99,7 @@ def main(args) -> int:
         raise UsageError("say what the factors are: --levels 3,2,4, --levels FILE, or --pilot "
                          "RESULTS")
     if args.pilot and pilot_df is None:
-        from benchharness.source import load_table
+        from benchharness.results.source import load_table
 
         names = [n for n, _ in factors]
         pilot_df, _ = load_table(args.pilot, factors=names)

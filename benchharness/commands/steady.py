@@ -20,7 +20,7 @@ def add_parser(sub) -> None:
 
 
 def _fmt_s(x) -> str:
-    from benchharness.runner import format_seconds
+    from benchharness.execute.runner import format_seconds
 
     return format_seconds(x) if x is not None else "-"
 
@@ -28,12 +28,12 @@ def _fmt_s(x) -> str:
 def main(args) -> int:
     from pathlib import Path
 
-    from benchharness import journal as J
+    from benchharness.results import journal as J
     from benchharness.errors import DataError, UsageError
-    from benchharness.experiment import load_experiment
-    from benchharness.quality import quality_config
-    from benchharness.steady.samples import cell_advice, read_samples_records
-    from benchharness.yamlnodes import parse_percent
+    from benchharness.experiment.file import load_experiment
+    from benchharness.measure.quality import quality_config
+    from benchharness.measure.steady.samples import cell_advice, read_samples_records
+    from benchharness.experiment.yamlnodes import parse_percent
 
     folder = Path(args.folder)
     if not J.is_results_folder(folder):

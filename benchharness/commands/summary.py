@@ -6,7 +6,7 @@ import sys
 
 
 def print_summary(res, outcome) -> None:
-    from benchharness.runner import cell_summary, format_seconds
+    from benchharness.execute.runner import cell_summary, format_seconds
 
     exp = res.experiment
     records = res.records

@@ -42,7 +42,7 @@ def _check_size(exp, choice, kwargs) -> int:
     The count is the one `run` plans: adaptive replication plans its maximum.
     """
     from benchharness.design.adaptive import adaptive_rule
-    from benchharness.experiment import check_planned_runs
+    from benchharness.experiment.file import check_planned_runs
 
     cells = choice.cells()
     n_cells = len(cells) if cells is not None else exp.cells

@@ -37,7 +37,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
-from benchharness.yamlnodes import (
+from benchharness.experiment.yamlnodes import (
     as_int, as_percent, expect_mapping, node_error, scalar_text,
 )
 
@@ -78,7 +78,7 @@ def adaptive_rule(exp) -> AdaptiveRule | None:
     response = "wall_s"
     if "response" in until:
         response = scalar_text(until["response"], "'response'")
-        from benchharness.quality import response_columns
+        from benchharness.measure.quality import response_columns
 
         known = response_columns(exp)
         if response not in known and not (response.startswith("perf_")

@@ -31,7 +31,7 @@ import secrets
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
-from benchharness.experiment import Experiment
+from benchharness.experiment.file import Experiment
 
 
 @dataclass(frozen=True)

@@ -83,7 +83,7 @@ class ReplicateGate:
                 pass
 
     def _read_journal(self) -> list:
-        from benchharness import journal as J
+        from benchharness.results import journal as J
 
         return J.read_journal(self.folder / "runs.jsonl")
 
@@ -157,7 +157,7 @@ class ReplicateGate:
         return out
 
     def _write(self) -> None:
-        from benchharness import journal as J
+        from benchharness.results import journal as J
 
         try:
             J.write_atomic(self.folder / STOPPING_FILE,

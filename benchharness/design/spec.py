@@ -27,7 +27,7 @@ from benchharness.design.fractional import (
     DesignError, FractionalDesign, design_for_cells, design_for_resolution,
     design_from_generators, full_design, roman,
 )
-from benchharness.yamlnodes import (
+from benchharness.experiment.yamlnodes import (
     as_int, expect_mapping, node_error, scalar_text, sequence_items,
 )
 
@@ -96,7 +96,7 @@ def design_of(exp) -> DesignChoice:
     node = getattr(exp, "sections", {}).get("design")
     if node is None:
         return DesignChoice()
-    from benchharness.yamlnodes import to_plain
+    from benchharness.experiment.yamlnodes import to_plain
 
     try:
         key = (repr(to_plain(node)), tuple((f.name, tuple(f.labels)) for f in exp.factors))

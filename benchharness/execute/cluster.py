@@ -33,7 +33,7 @@ import time
 from pathlib import Path
 from typing import Mapping, Sequence
 
-from benchharness import journal as J
+from benchharness.results import journal as J
 from benchharness.errors import ExecutionError, UsageError
 from benchharness.execute.base import Measurement
 
@@ -146,7 +146,7 @@ def _one_line(exc) -> str:
 
 
 def _record_from(pr: Mapping, result: Mapping, position: int, quality=None, token=None) -> dict:
-    from benchharness.runner import _record
+    from benchharness.execute.runner import _record
 
     md = result.get("measurement")
     m = None
@@ -206,14 +206,14 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
                        progress, facts: dict, scheduler: str, same_host_ok: bool = False,
                        prior=(), known_hosts: Mapping | None = None, poll_s: float = 0.25):
     """Run the not-yet-done planned runs on the cluster; returns a `RunOutcome`."""
-    from benchharness.runner import Progress, _CellCache, finalize
+    from benchharness.execute.runner import Progress, _CellCache, finalize
     from benchharness.execute import remote
 
     client = _connect(scheduler)
     progress = _HostProgress(progress or Progress())
     cells = _CellCache(exp, session)
     jr = J.Journal(folder)
-    from benchharness.quality import RunQuality
+    from benchharness.measure.quality import RunQuality
 
     quality = RunQuality(exp, folder)
     distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
@@ -283,7 +283,7 @@ def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set,
             pr = rest.popleft()
             c = cells.get(pr["levels"])
             attempts[pr["run"]] += 1
-            from benchharness.runner import _spec
+            from benchharness.execute.runner import _spec
 
             spec, token = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
                                                 run_id=pr["run"], levels=pr["levels"]),

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from benchharness.yamlnodes import as_bool, is_null, node_error, scalar_text
+from benchharness.experiment.yamlnodes import as_bool, is_null, node_error, scalar_text
 
 
 @dataclass(frozen=True)
@@ -65,7 +65,7 @@ def parse_controls(exp) -> Controls:
 
 def resolve_cell(exp, controls: Controls, levels) -> dict:
     """Rendered, checked controls of one cell: ``{cpus, nice}`` (located errors)."""
-    from benchharness import templating
+    from benchharness.experiment import templating
     from benchharness.errors import ExecutionError
     from benchharness.execute.noise import check_cpus
 

@@ -159,7 +159,7 @@ def cpu_mhz_from(freq_files, cpus, cache):
     (kHz). Where there are none (or none readable) the ``cpu MHz`` lines of
     /proc/cpuinfo are used, re-read at most once a second because generating
     that file is costly; ``cache`` is a two-item list ``[monotonic time,
-    per-CPU values]`` the caller keeps between calls. `benchharness.host` uses
+    per-CPU values]`` the caller keeps between calls. `benchharness.measure.host` uses
     this same function for its own readings.
     """
     vals = []

@@ -182,7 +182,7 @@ class LocalExecutor:
                 procs.kill_group_checked(pgid, start[0], start[1])
             self._current = None
         elif self._inflight_path is not None:
-            from benchharness.journal import _read_json_bytes, _stop_run
+            from benchharness.results.journal import _read_json_bytes, _stop_run
 
             try:
                 with open(self._inflight_path, "rb") as fh:
@@ -401,7 +401,7 @@ class RunStream:
 
     def __init__(self, ex: LocalExecutor, journal_path: str, freq_files: dict,
                  fields: Mapping | None = None):
-        from benchharness.journal import stream_line_format
+        from benchharness.results.journal import stream_line_format
 
         self.ex = ex
         self.fields = dict(fields) if fields else None
@@ -556,7 +556,7 @@ _BOOT = None
 def _boot_id() -> str:
     global _BOOT
     if _BOOT is None:
-        from benchharness.journal import _boot_id as read_boot_id
+        from benchharness.results.journal import _boot_id as read_boot_id
 
         _BOOT = read_boot_id()
     return _BOOT

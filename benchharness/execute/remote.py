@@ -43,7 +43,7 @@ def _worker_name(dask_worker=None) -> tuple[str, str]:
 
 def host_facts() -> dict:
     """Machine facts of the host this worker runs on (for host.json)."""
-    from benchharness.host import collect_facts
+    from benchharness.measure.host import collect_facts
 
     facts = collect_facts()
     facts["worker_pid"] = os.getpid()
@@ -114,7 +114,7 @@ def execute_run(payload: dict) -> dict:
             out.update(status="failed",
                        message="reset failed: " + (rm.message or f"exit code {rm.exit_code}"))
     if out["status"] is None:
-        from benchharness.host import sample_run_conditions
+        from benchharness.measure.host import sample_run_conditions
 
         cmd = payload["command"]
         out["conditions"] = sample_run_conditions(tuple(cmd["cpus"]) if cmd.get("cpus")

@@ -1,4 +1,4 @@
-"""Validation entry point for the ``gate:`` section (called by `benchharness.sections`).
+"""Validation entry point for the ``gate:`` section (called by `benchharness.experiment.sections`).
 
 `gate_settings(exp)` returns the parsed `GateConfig` (build factor, baseline and
 candidate levels, `GateSettings`) or raises `ExperimentError` located at

@@ -1,7 +1,7 @@
 """One gate session: from an experiment (file or quick form) to verdicts and a results folder.
 
 This module owns the edges of the gate: reading the ``gate:`` section of an
-experiment file (validated with `benchharness.yamlnodes`, errors located
+experiment file (validated with `benchharness.experiment.yamlnodes`, errors located
 ``FILE:LINE:COL``), building the experiment for the quick form, rendering each
 run's command with the experiment's templates (the runner's cell cache, so
 environment, working directory and noise controls behave as in ``run``),
@@ -52,7 +52,7 @@ class GateConfig:
 
 def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
     """Validate ``gate:`` of an experiment file; ``overrides`` are command-line values."""
-    from benchharness import yamlnodes as Y
+    from benchharness.experiment import yamlnodes as Y
 
     node = exp.sections.get("gate")
     if node is None:
@@ -141,12 +141,12 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
 
 def _check_response(exp, response: str, node) -> None:
     """The response must be a runs.csv figure or one of the experiment's metrics."""
-    from benchharness.quality import response_columns
+    from benchharness.measure.quality import response_columns
 
     known = response_columns(exp)
     if response in known or (response.startswith("perf_") and "perf" in exp.sections):
         return
-    from benchharness.yamlnodes import node_error, suggest
+    from benchharness.experiment.yamlnodes import node_error, suggest
 
     hint = suggest(response, known)
     msg = (f"the gate's response {response!r} is not measured by this experiment; "
@@ -165,7 +165,7 @@ def _check_ratio_scale(exp, response: str, node) -> None:
     in a unit that is a difference or an interval scale (°C, a change in ms) has no
     meaningful ratio, so a ratio gate could not decide anything true about it.
     """
-    from benchharness.quality import quality_config
+    from benchharness.measure.quality import quality_config
 
     metrics = quality_config(exp).metrics
     unit = next((m.unit for m in (metrics.metrics if metrics is not None else ())
@@ -181,14 +181,14 @@ def _check_ratio_scale(exp, response: str, node) -> None:
            f"{why}, where ratios mean nothing; gate on a ratio-scaled response (a time, a size, "
            "a rate) or compare this one with `benchharness analyze`")
     if node is not None:
-        from benchharness.yamlnodes import node_error
+        from benchharness.experiment.yamlnodes import node_error
 
         raise node_error(node, msg)
     raise UsageError(f"--response: {msg}")
 
 
 def _metric_better(exp, response: str) -> str | None:
-    from benchharness.quality import quality_config
+    from benchharness.measure.quality import quality_config
 
     metrics = quality_config(exp).metrics
     for m in (metrics.metrics if metrics is not None else ()):
@@ -238,7 +238,7 @@ def workloads_of(exp, factor: str) -> dict[str, dict[str, str]]:
 
 
 def _stored_baseline(folder, exp, cfg: GateConfig, workloads) -> dict:
-    from benchharness.journal import load_results
+    from benchharness.results.journal import load_results
 
     res = load_results(folder)
     runs = res.runs
@@ -270,7 +270,7 @@ class _StepRunner:
     """Executor adapter: build once per rendered form, reset/teardown around timed runs."""
 
     def __init__(self, exp, executor, cells, timeout_s, journal, quality=None):
-        from benchharness.runner import _spec
+        from benchharness.execute.runner import _spec
 
         self.quality = quality
         self.exp, self.executor, self.cells, self.timeout_s = exp, executor, cells, timeout_s
@@ -281,7 +281,7 @@ class _StepRunner:
 
     def execute(self, spec, on_start=None):
         from benchharness.execute.base import Measurement
-        from benchharness.runner import _short
+        from benchharness.execute.runner import _short
 
         levels = dict(spec.levels)
         c = self.cells.get(levels)
@@ -330,9 +330,9 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
                 stored_baseline=None, base="results", progress=None,
                 simulated: bool = False) -> tuple[GateOutcome, Path]:
     """Run a gate session into a new results folder; returns (outcome, folder)."""
-    from benchharness import journal as J
-    from benchharness.host import collect_facts
-    from benchharness.runner import _CellCache, _record, _spec, _version, finalize
+    from benchharness.results import journal as J
+    from benchharness.measure.host import collect_facts
+    from benchharness.execute.runner import _CellCache, _record, _spec, _version, finalize
 
     workloads = workloads_of(exp, cfg.factor)
     settings = cfg.settings
@@ -347,7 +347,7 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
     lock = J.FolderLock(folder)
     own = executor is None
     if own:
-        from benchharness.runner import default_executor
+        from benchharness.execute.runner import default_executor
 
         executor = default_executor()
     try:
@@ -367,7 +367,7 @@ def run_session(exp, cfg: GateConfig, out=None, executor=None, seed: int | None 
         jr = J.Journal(folder)
         quality = None
         if not simulated:
-            from benchharness.quality import RunQuality
+            from benchharness.measure.quality import RunQuality
 
             quality = RunQuality(exp, folder)
             quality.start([(lv, cells.get(lv)) for lv in _all_cells(exp)])

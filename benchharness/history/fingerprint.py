@@ -16,7 +16,7 @@ import hashlib
 import json
 import re
 
-#: the keys benchharness.host.collect_facts writes, per component
+#: the keys benchharness.measure.host.collect_facts writes, per component
 KNOWN_KEYS = {
     "cpu_model": ("cpu_model",),
     "cores": ("physical_cores", "logical_cores"),

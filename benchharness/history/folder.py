@@ -7,7 +7,7 @@ facts -- and the folder's identity, a SHA-256 over the experiment name, the
 folder name and the journal bytes, so importing the same folder twice can be
 recognised.
 
-The files are read with the foundation's ``benchharness.journal.load_results``
+The files are read with the foundation's ``benchharness.results.journal.load_results``
 (runs from the journal, so an interrupted folder reads too).
 """
 
@@ -49,7 +49,7 @@ def folder_identity(experiment: str, folder_name: str, journal_bytes: bytes) -> 
 
 def read_folder(folder: str | Path) -> FolderData:
     """Read a results folder; raise ResultsFolderError with one clear line if it is not one."""
-    from benchharness.journal import load_results
+    from benchharness.results.journal import load_results
 
     path = Path(folder)
     if not path.is_dir():

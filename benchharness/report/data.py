@@ -120,7 +120,7 @@ def _levels_from(runs, factors, experiment, adict=None) -> dict[str, tuple[str, 
 
 def _read_folder(folder: Path):
     """(runs DataFrame, Experiment, host dict, session dict) of a results folder."""
-    from benchharness.journal import load_results
+    from benchharness.results.journal import load_results
 
     res = load_results(folder)
     return res.runs, res.experiment, dict(res.host or {}), dict(getattr(res, "session", {}) or {})
@@ -223,7 +223,7 @@ def collect(source, *, analysis=None, response: str | None = None,
             folder = path
             runs, experiment, host, session = _read_folder(path)
         else:
-            from benchharness.source import load_table
+            from benchharness.results.source import load_table
 
             runs, experiment = load_table(path, factors=factors)
 

@@ -28,8 +28,8 @@ ROOT = Path(__file__).resolve().parents[2]
 def child(nbytes: int, out: str) -> None:
     sys.path.insert(0, str(ROOT))
     from benchharness.execute.local import LocalExecutor
-    from benchharness.experiment import Experiment
-    from benchharness.runner import Progress, run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import Progress, run_experiment
 
     text = (f"experiment: flood\ncommand: [head, -c, '{{n}}', /dev/zero]\nfactors:\n"
             f"  n: ['{nbytes}']\nreplicates: 2\nseed: 1\n")

@@ -8,7 +8,7 @@ the methods alternate and each is compared with the bare loop next to it):
 * **executor**: `LocalExecutor.execute` one run at a time (launcher process,
   pipes, bounded capture, pidfd wait; no ``on_start`` callback, as the runner
   calls it), alternating run by run with bare runs;
-* **runner**: a whole experiment through `benchharness.runner.run_experiment`,
+* **runner**: a whole experiment through `benchharness.execute.runner.run_experiment`,
   as ``benchharness run`` does it: its own launcher, plan, results folder, host
   facts, provenance, the journal with group-commit fsync, the in-flight record,
   runs.csv export. Its runs are queued to the launcher, so the bare runs are
@@ -124,8 +124,8 @@ def runner_once(n, env, workdir):
     bare segments ns). The launcher makes the bare runs itself
     (``BENCHHARNESS_BENCH_BARE``), right before each queued run.
     """
-    from benchharness.experiment import Experiment
-    from benchharness.runner import Progress, run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.execute.runner import Progress, run_experiment
 
     text = (f"experiment: overhead\ncommand: [{TRUE}]\nfactors:\n  kind: [a, b]\n"
             f"replicates: {max(1, n // 2)}\nseed: 1\nenv:\n  PATH: {env['PATH']}\n"
@@ -171,7 +171,7 @@ def main(argv=None):
     env = clean_environment({"PATH": "/usr/bin:/bin", "HOME": os.environ.get("HOME", "/")})
     n = args.runs
     try:
-        import benchharness.runner  # noqa: F401
+        import benchharness.execute.runner  # noqa: F401
         have_runner = True
     except ImportError:
         have_runner = False

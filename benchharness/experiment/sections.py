@@ -19,10 +19,10 @@ _CONTROL_CELLS = 100_000
 def validate_sections(exp) -> None:
     """Raise `ExperimentError` for the first malformed capability section."""
     from benchharness.execute.controls import parse_controls
-    from benchharness.quality import quality_config
+    from benchharness.measure.quality import quality_config
 
     from benchharness.design import check_plan_size
-    from benchharness.host import host_check_mode
+    from benchharness.measure.host import host_check_mode
 
     check_plan_size(exp)  # before anything is built: the planned-run limit
     host_check_mode(exp)
@@ -31,7 +31,7 @@ def validate_sections(exp) -> None:
     quality_config(exp)  # expect / metrics / samples / perf
     _check_compare(exp)
     if "roles" in exp.sections:
-        from benchharness.roles import declared_roles
+        from benchharness.experiment.roles import declared_roles
 
         declared_roles(exp)
     if "choose" in exp.sections:
@@ -51,7 +51,7 @@ def _check_compare(exp) -> None:
     import yaml
 
     from benchharness.errors import UsageError
-    from benchharness.yamlnodes import is_null, node_error, to_plain
+    from benchharness.experiment.yamlnodes import is_null, node_error, to_plain
 
     node = exp.sections.get("compare")
     if node is None or is_null(node):
@@ -76,7 +76,7 @@ def _check_controls(exp, controls) -> None:
     check each (CPUs this machine has, a niceness from -20 to 19)."""
     import itertools
 
-    from benchharness import templating
+    from benchharness.experiment import templating
     from benchharness.execute.controls import resolve_cell
 
     if not (controls.pin or controls.nice):

@@ -1071,7 +1071,7 @@ def check_writable(folder: Path) -> None:
 @dataclass(frozen=True)
 class Results:
     path: Path
-    experiment: object  # benchharness.experiment.Experiment
+    experiment: object  # benchharness.experiment.file.Experiment
     runs: object        # pandas.DataFrame, as runs.csv
     host: dict
     plan: object        # pandas.DataFrame of plan.csv
@@ -1091,7 +1091,7 @@ def load_results(folder: str | os.PathLike) -> Results:
     folder reads too); factor columns are strings in the experiment's level order."""
     import pandas as pd
 
-    from benchharness.experiment import load_experiment
+    from benchharness.experiment.file import load_experiment
 
     p = Path(folder)
     if not is_results_folder(p):

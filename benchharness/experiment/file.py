@@ -9,7 +9,7 @@ levels), and (c) no YAML tag can construct an object.
 
 Sections that belong to later capabilities (``design``, ``gate``, ``choose``,
 ``metrics`` ...) are kept as raw nodes in `Experiment.sections`; each capability
-validates its own section with the helpers in `benchharness.yamlnodes`.
+validates its own section with the helpers in `benchharness.experiment.yamlnodes`.
 """
 
 from __future__ import annotations
@@ -24,9 +24,9 @@ from typing import Mapping
 
 import yaml
 
-from benchharness import templating
+from benchharness.experiment import templating
 from benchharness.errors import ExperimentError
-from benchharness.yamlnodes import (
+from benchharness.experiment.yamlnodes import (
     as_bool, as_duration_s, as_int, check_tags, is_null, kind, mapping_items, node_error,
     scalar_text, suggest,
 )

@@ -51,7 +51,7 @@ def response_columns(exp) -> list[str]:
     figures, the ``metrics:`` names and ``steady_s`` with ``samples:`` (``perf_*``
     counters too when ``perf:`` is on; not listed, their names depend on the events)."""
     from benchharness.execute.base import USAGE_FIELDS
-    from benchharness.yamlnodes import is_null, mapping_items
+    from benchharness.experiment.yamlnodes import is_null, mapping_items
 
     sec = getattr(exp, "sections", {}) or {}
     out = list(USAGE_FIELDS)
@@ -67,33 +67,33 @@ def quality_config(exp) -> QualityConfig:
     sec = getattr(exp, "sections", {}) or {}
     metrics = expect = samples = perf = None
     if "metrics" in sec:
-        from benchharness.metrics import parse_metrics
-        from benchharness.yamlnodes import is_null
+        from benchharness.measure.metrics import parse_metrics
+        from benchharness.experiment.yamlnodes import is_null
 
         if not is_null(sec["metrics"]):
             metrics = parse_metrics(sec["metrics"], exp.factor_names)
             _check_file_templates(exp, metrics, sec["metrics"])
     if "expect" in sec:
-        from benchharness.expect import parse_expect
+        from benchharness.measure.expect import parse_expect
 
         expect = parse_expect(sec["expect"])
     if "samples" in sec:
-        from benchharness.steady.samples import parse_samples_config
+        from benchharness.measure.steady.samples import parse_samples_config
 
         samples = parse_samples_config(sec["samples"])
     if "perf" in sec:
-        from benchharness.perfstat import parse_perf
+        from benchharness.measure.perfstat import parse_perf
 
         perf = parse_perf(sec["perf"])
     if perf is not None:
-        from benchharness.yamlnodes import node_error
+        from benchharness.experiment.yamlnodes import node_error
 
         clash = set(exp.factor_names) & set(perf.columns())
         if clash:
             raise node_error(sec["perf"], f"factor {sorted(clash)[0]!r} clashes with a perf "
                                           "counter column; rename the factor")
     if metrics is not None and perf is not None:
-        from benchharness.yamlnodes import node_error
+        from benchharness.experiment.yamlnodes import node_error
 
         clash = set(metrics.names) & set(perf.columns())
         if clash:
@@ -104,8 +104,8 @@ def quality_config(exp) -> QualityConfig:
 
 def _check_file_templates(exp, metrics, node) -> None:
     """Every ``{factor}`` / ``{factor.name}`` in a metric's ``file:`` must exist."""
-    from benchharness import templating
-    from benchharness.yamlnodes import mapping_items, node_error
+    from benchharness.experiment import templating
+    from benchharness.experiment.yamlnodes import mapping_items, node_error
 
     nodes = {}
     for name, _k, v in mapping_items(node, "'metrics'"):
@@ -142,7 +142,7 @@ def _epoch(iso: str) -> float | None:
 
 
 def _sample(cpus):
-    from benchharness.host import sample_run_conditions
+    from benchharness.measure.host import sample_run_conditions
 
     return sample_run_conditions(cpus)
 
@@ -161,7 +161,7 @@ class RunQuality:
         self._last_sync = 0.0
         self._fast = not self.cfg.active
         if self.cfg.perf is not None:
-            from benchharness.perfstat import perf_support
+            from benchharness.measure.perfstat import perf_support
 
             self.perf_ok, self.perf_note = perf_support()
             if not self.perf_ok:
@@ -180,7 +180,7 @@ class RunQuality:
         if self.cfg.metrics is not None:
             out.update(self.cfg.metrics.manifest())
         if self.cfg.perf is not None:
-            from benchharness.perfstat import column_name
+            from benchharness.measure.perfstat import column_name
 
             for e in self.cfg.perf.events:
                 out[column_name(e)] = {"unit": "count", "better": "lower", "source": "perf",
@@ -195,8 +195,8 @@ class RunQuality:
 
     def start(self, cells: Iterable[tuple[Mapping[str, str], Mapping]]) -> None:
         """Write ``metrics.json`` and ``provenance.json``; ``cells`` = (levels, cell dict)."""
-        from benchharness import journal as J
-        from benchharness.provenance import collect_provenance
+        from benchharness.results import journal as J
+        from benchharness.measure.provenance import collect_provenance
 
         man = self.manifest()
         if man:
@@ -243,13 +243,13 @@ class RunQuality:
         if self._fast:  # the common case, kept cheap: only the run conditions
             return spec, {"conditions": None if sample_later else _sample(spec.cpus),
                           "fast": True, "cpus": spec.cpus}
-        from benchharness.host import sample_run_conditions
+        from benchharness.measure.host import sample_run_conditions
         token: dict = {"levels": dict(levels), "cwd": spec.cwd}
         if self.cfg.samples is not None and spec.capture_bytes < SAMPLES_CAPTURE_BYTES:
             spec = replace(spec, capture_bytes=SAMPLES_CAPTURE_BYTES)
         token["capture_bytes"] = spec.capture_bytes
         if self.cfg.perf is not None and self.perf_ok:
-            from benchharness.perfstat import wrap
+            from benchharness.measure.perfstat import wrap
 
             fd, out_file = tempfile.mkstemp(prefix="benchharness-perf-", suffix=".csv")
             os.close(fd)
@@ -257,8 +257,8 @@ class RunQuality:
             spec = replace(spec, argv=wrap(spec.argv, spec.shell_command, self.cfg.perf,
                                            out_file), shell_command=None)
         if self.cfg.metrics is not None and self.cfg.metrics.file_templates():
-            from benchharness import templating
-            from benchharness.metrics import snapshot_files
+            from benchharness.experiment import templating
+            from benchharness.measure.metrics import snapshot_files
 
             lookup = self.exp.lookup(levels)
             files = {n: templating.render(t, lookup)
@@ -293,12 +293,12 @@ class RunQuality:
             extra.setdefault(k, v)
         reasons: list[str] = []
         if self.cfg.expect is not None:
-            from benchharness.expect import apply_expect
+            from benchharness.measure.expect import apply_expect
 
             m = apply_expect(self.cfg.expect, m)
         values: dict = dict(extra.get("metrics") or {})
         if self.cfg.perf is not None:
-            from benchharness.perfstat import read_counts
+            from benchharness.measure.perfstat import read_counts
 
             if "perf_file" in token:
                 counts, why = read_counts(token["perf_file"], self.cfg.perf)
@@ -308,7 +308,7 @@ class RunQuality:
                 counts = {c: None for c in self.cfg.perf.columns()}
             values.update(counts)
         if self.cfg.metrics is not None:
-            from benchharness.metrics import extract_metrics, reasons_message
+            from benchharness.measure.metrics import extract_metrics, reasons_message
 
             started = _epoch(m.started_at) or token.get("t0")
             vals, why = extract_metrics(self.cfg.metrics, m.stdout_tail, m.stderr_tail,
@@ -327,7 +327,7 @@ class RunQuality:
         return replace(m, extra=extra)
 
     def _samples(self, token, planned, m: Measurement, reasons: list[str]) -> dict:
-        from benchharness.steady.samples import analyse_run, extract_samples
+        from benchharness.measure.steady.samples import analyse_run, extract_samples
 
         cfg = self.cfg.samples
         raw = m.stdout_tail if cfg.stream == "stdout" else m.stderr_tail
@@ -374,8 +374,8 @@ class RunQuality:
                 self._samples_fh = None
         if self.cfg.samples is None or records is None:
             return
-        from benchharness import journal as J
-        from benchharness.steady.samples import cell_advice, read_samples_records
+        from benchharness.results import journal as J
+        from benchharness.measure.steady.samples import cell_advice, read_samples_records
 
         samples = {k: v for k, v in read_samples_records(self.folder / "samples.jsonl").items()
                    if not v.get("warmup")}

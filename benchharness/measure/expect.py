@@ -14,7 +14,7 @@ default), decoded as UTF-8 with replacement characters.
 
 A regular expression can take exponential time on some text (``(a+)+$`` on a
 long line of ``a`` with no match). Every search here, and every metric
-pattern (`benchharness.metrics`), is given `REGEX_LIMIT_S` seconds: past that
+pattern (`benchharness.measure.metrics`), is given `REGEX_LIMIT_S` seconds: past that
 the run is marked failed with a message naming the expression, and the
 harness goes on to the next run instead of hanging outside any timeout.
 """
@@ -146,7 +146,7 @@ class ExpectSpec:
 
 
 def compile_regex(node, what: str) -> re.Pattern:
-    from benchharness import yamlnodes as yn
+    from benchharness.experiment import yamlnodes as yn
 
     text = yn.as_str(node, what)
     try:
@@ -158,7 +158,7 @@ def compile_regex(node, what: str) -> re.Pattern:
 
 def parse_expect(node) -> ExpectSpec:
     """Validate the ``expect:`` node (errors name FILE:LINE:COL)."""
-    from benchharness import yamlnodes as yn
+    from benchharness.experiment import yamlnodes as yn
 
     fields = yn.expect_mapping(node, "'expect'", {"exit", "stdout", "stderr"})
     codes: tuple[int, ...] = (0,)

@@ -44,7 +44,7 @@ class SamplesConfig:
 
 def parse_samples_config(node, path: str | None = None) -> SamplesConfig:
     """Validate the ``samples:`` YAML node (errors name FILE:LINE:COL)."""
-    from benchharness import yamlnodes as yn
+    from benchharness.experiment import yamlnodes as yn
 
     fields = yn.expect_mapping(node, "'samples'", {"from", "format", "key", "unit", "target"})
     kw: dict = {}
@@ -182,7 +182,7 @@ def extract_samples(cfg: SamplesConfig, stdout: bytes | str, stderr: bytes | str
 
 def analyse_run(samples_s: list[float], settings=None) -> tuple[dict, dict]:
     """(runs.csv columns, samples.jsonl analysis fields) for one run's samples."""
-    from benchharness.steady.warmup import classify
+    from benchharness.measure.steady.warmup import classify
 
     res = classify(samples_s, settings)
     columns = {
@@ -250,7 +250,7 @@ def cell_advice(records, samples: dict[int, dict], factor_names, target: float =
     """
     import numpy as np
 
-    from benchharness.steady.components import balanced, recommend, variance_components
+    from benchharness.measure.steady.components import balanced, recommend, variance_components
 
     cells: dict[tuple, list] = {}
     for r in records:

@@ -49,7 +49,7 @@ def parse_perf(node) -> PerfConfig | None:
     """``perf: true | false | [event, ...]`` (errors FILE:LINE:COL)."""
     import yaml
 
-    from benchharness import yamlnodes as yn
+    from benchharness.experiment import yamlnodes as yn
 
     if isinstance(node, yaml.SequenceNode):
         events = tuple(yn.as_str(n, "'perf' event") for n in yn.sequence_items(node, "'perf'"))

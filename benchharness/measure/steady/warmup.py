@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from benchharness.steady.changepoint import DEFAULT_PENALTY_FACTOR, pelt
+from benchharness.measure.steady.changepoint import DEFAULT_PENALTY_FACTOR, pelt
 
 SHAPES = ("flat", "warm-up", "slow-down", "no steady state")
 

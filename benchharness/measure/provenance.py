@@ -196,7 +196,7 @@ def collect_provenance(directory: str | os.PathLike,
     ``cells`` yields ``(levels, argv, shell_command, env, cwd)`` per cell,
     rendered exactly as the runner will run them.
     """
-    from benchharness.journal import utc_iso
+    from benchharness.results.journal import utc_iso
 
     hasher = _Hasher()
     out_cells = []

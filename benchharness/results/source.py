@@ -20,7 +20,7 @@ def load_table(source, factors: Sequence[str] | None = None):
     """``(runs DataFrame, Experiment or None)`` for a results folder, CSV path or DataFrame."""
     import pandas as pd
 
-    from benchharness import journal as J
+    from benchharness.results import journal as J
 
     if isinstance(source, pd.DataFrame):
         df = source.copy()

@@ -83,10 +83,10 @@ class MetricsConfig:
 
 def parse_metrics(node, factor_names=(), reserved=None) -> MetricsConfig:
     """Validate the ``metrics:`` node; errors are ``FILE:LINE:COL: ...`` one-liners."""
-    from benchharness import yamlnodes as yn
+    from benchharness.experiment import yamlnodes as yn
 
     if reserved is None:
-        from benchharness.experiment import RESERVED_COLUMNS as reserved
+        from benchharness.experiment.file import RESERVED_COLUMNS as reserved
     out = []
     for name, knode, vnode in yn.mapping_items(node, "'metrics'"):
         if not _NAME.match(name):
@@ -183,7 +183,7 @@ def extract_metrics(config: MetricsConfig, stdout_tail, stderr_tail,
     (from `snapshot_files`, taken just before the run) is the sharper test: a
     file whose modification time and size did not change is stale.
     """
-    from benchharness.steady.samples import key_path, last_json_line
+    from benchharness.measure.steady.samples import key_path, last_json_line
 
     values: dict[str, float | None] = {}
     reasons: dict[str, str] = {}
@@ -193,7 +193,7 @@ def extract_metrics(config: MetricsConfig, stdout_tail, stderr_tail,
         value, why = None, ""
         try:
             if m.source == "pattern":
-                from benchharness.expect import bounded
+                from benchharness.measure.expect import bounded
 
                 text, rx = texts[m.stream], m.pattern
                 matches = bounded(lambda: list(rx.finditer(text)), rx.pattern)
@@ -252,7 +252,7 @@ def snapshot_files(config: MetricsConfig, rendered_files: dict[str, str] | None 
 
 def _from_file(path: str, key: str, started_at_epoch: float | None,
                before=_MISSING) -> tuple[float | None, str]:
-    from benchharness.steady.samples import key_path
+    from benchharness.measure.steady.samples import key_path
 
     try:
         st = os.stat(path)

@@ -112,7 +112,7 @@ def declared_roles(experiment) -> Roles | None:
     Raises `ExperimentError` at ``FILE:LINE:COL`` for an unknown role, an
     unknown factor, or a factor given two roles.
     """
-    from benchharness.yamlnodes import (is_null, mapping_items, node_error, scalar_text,
+    from benchharness.experiment.yamlnodes import (is_null, mapping_items, node_error, scalar_text,
                                         suggest)
 
     if experiment is None:

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping, Sequence
 
-from benchharness import journal as J
+from benchharness.results import journal as J
 from benchharness.errors import DiskFullError, ExecutionError, ResultsFolderError, is_disk_full
 from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
 
@@ -148,12 +148,12 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     launcher). ``scheduler``: address of a Dask scheduler to spread the runs
     over its workers instead (blocks are assigned to hosts whole).
     ``early_stop``: stop once the first runs of every cell failed the same way
-    (`benchharness.early_stop`); `benchharness run` turns it on.
+    (`benchharness.execute.early_stop`); `benchharness run` turns it on.
     """
     import dataclasses
 
     if isinstance(exp, (str, os.PathLike)):
-        from benchharness.experiment import load_experiment
+        from benchharness.experiment.file import load_experiment
 
         exp = load_experiment(exp)
     notes = []
@@ -182,14 +182,14 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
                          "can stop between replicates")
         if rule is not None:
             plan_kwargs["replicates"] = rule.max_replicates
-    from benchharness.sections import validate_sections
+    from benchharness.experiment.sections import validate_sections
 
     validate_sections(exp)  # malformed capability sections fail before a folder exists
     # The launcher's interpreter, and the git processes that record the source
     # tree's state, start while the plan, folder and host facts are made.
     early = default_executor(wait=False) if executor is None and not scheduler else None
     if not scheduler:
-        from benchharness.provenance import prefetch_git
+        from benchharness.measure.provenance import prefetch_git
 
         prefetch_git(Path(exp.path).resolve().parent if exp.path != "<string>" else os.getcwd())
     try:
@@ -206,7 +206,7 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
              early_stop=False) -> RunOutcome:
     """`run_experiment` once the experiment is validated (see there)."""
     from benchharness.design import build_plan
-    from benchharness.host import BusySampler, collect_facts, host_check_mode, preflight
+    from benchharness.measure.host import BusySampler, collect_facts, host_check_mode, preflight
 
     # The busy-process sample spans the setup below instead of a sleep of its
     # own: started first, read once the folder is written (strict mode: before
@@ -315,7 +315,7 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
                       scheduler: str | None = None, same_host_ok: bool = False,
                       early_stop: bool = False) -> RunOutcome:
     """Continue an interrupted results folder; never records a run twice."""
-    from benchharness.experiment import load_experiment
+    from benchharness.experiment.file import load_experiment
 
     folder = Path(folder)
     if folder.is_dir() and not J.is_results_folder(folder) and not any(folder.iterdir()):
@@ -521,7 +521,7 @@ def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflig
     run is recorded, the launcher (holding the queue for it) drops the rest,
     and the reason is returned.
     """
-    from benchharness.host import freq_files
+    from benchharness.measure.host import freq_files
 
     by_key: dict = {}
     i = 0
@@ -600,13 +600,13 @@ def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: 
     interrupted = False
     watch = None
     if early_stop:
-        from benchharness.early_stop import FirstRunsWatch
+        from benchharness.execute.early_stop import FirstRunsWatch
 
         watch = FirstRunsWatch(pr["levels"] for pr in todo)
     stopped_early = None
     disk_full = None
     progress.start(len(planned), len(planned) - len(todo), folder)
-    from benchharness.quality import RunQuality
+    from benchharness.measure.quality import RunQuality
 
     quality = RunQuality(exp, folder)
     distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
@@ -941,7 +941,7 @@ def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planne
         J.export_runs_csv(folder, exp.factor_names, records)
     if quality is not None:
         quality.close(records)  # steady.json: warm-up classes, executions x iterations advice
-    from benchharness.host import facts_at_end
+    from benchharness.measure.host import facts_at_end
 
     facts.update(facts_at_end(facts))
     J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
@@ -1015,6 +1015,6 @@ def format_seconds(x: float | None) -> str:
 
 def _roles(exp) -> dict:
     """The factors' roles, recorded in session.json (declared, or how they were guessed)."""
-    from benchharness.roles import factor_roles
+    from benchharness.experiment.roles import factor_roles
 
     return factor_roles(exp).to_dict()

@@ -13,7 +13,7 @@ Three jobs, all read-only:
   follow common benchmarking practice (common practice; no single source).
 * `sample_run_conditions` — a cheap per-run sample (1-minute load average and
   current CPU frequency) that the runner records with each run, so the analysis
-  can ask whether residuals follow load (`benchharness.analysis_load`).
+  can ask whether residuals follow load (`benchharness.analysis.load_check`).
 
 Sources: psutil, ``os.getloadavg``, /proc (cpuinfo, pressure/memory), /sys
 (cpufreq, intel_pstate, thermal_throttle, dmi) and ``systemd-detect-virt``.
@@ -242,7 +242,7 @@ def collect_facts() -> dict:
     import psutil
 
     from benchharness import __version__
-    from benchharness.journal import utc_iso
+    from benchharness.results.journal import utc_iso
 
     freq = None
     try:
@@ -551,7 +551,7 @@ def host_check_mode(exp) -> str:
     node = (getattr(exp, "sections", {}) or {}).get("host_check")
     if node is None:
         return "warn"
-    from benchharness import yamlnodes as yn
+    from benchharness.experiment import yamlnodes as yn
 
     text = yn.scalar_text(node, "'host_check'")
     if text in yn._TRUE:

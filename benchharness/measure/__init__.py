@@ -1,0 +1,1 @@
+"""Measuring each run: the host, metrics, expectations, counters, provenance, steady state."""

@@ -1,0 +1,1 @@
+"""The results folder: frozen inputs, the journal, the runs table, reading sources."""
