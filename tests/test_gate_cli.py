@@ -322,7 +322,10 @@ def test_ctrl_c_exits_130_and_the_folder_is_not_resumable_as_a_run(tmp_path, cli
     proc = subprocess.Popen([sys.executable, "-m", "benchharness", "gate", "--baseline",
                              "sleep 0.2", "--candidate", "sleep 0.2", "--out", str(folder)],
                             env=env, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            text=True, start_new_session=True)
+                            text=True, start_new_session=True,
+                            # Ctrl-C reaches it even when the suite was started with
+                            # SIGINT ignored (`cmd &` in a script): the child inherits that
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     deadline = time.time() + 30
     while time.time() < deadline:
         jl = folder / "runs.jsonl"

@@ -274,7 +274,10 @@ def test_ctrl_c_stops_cleanly_and_says_how_to_resume(tmp_path):
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     proc = subprocess.Popen([PY, "-m", "benchharness", "run", str(p), "--out", str(folder),
                              "--no-analysis"], env=env, cwd=ROOT, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+                            stderr=subprocess.PIPE, text=True, start_new_session=True,
+                            # Ctrl-C reaches it even when the suite was started with
+                            # SIGINT ignored (`cmd &` in a script): the child inherits that
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     deadline = time.time() + 30
     while time.time() < deadline:
         jl = folder / "runs.jsonl"

@@ -77,7 +77,11 @@ def fsync_dir(path: Path) -> None:
 
 
 def write_atomic(path: Path, data: bytes | str) -> None:
-    """Write a whole file via a temporary sibling and rename (never a half file)."""
+    """Write a whole file via a temporary sibling and rename (never a half file).
+
+    The file is fsynced before the rename and its folder after it, so a power cut
+    leaves either the old file or the whole new one under the name.
+    """
     tmp = path.with_name(path.name + ".tmp")
     try:
         with open(tmp, "wb") as fh:
@@ -85,6 +89,7 @@ def write_atomic(path: Path, data: bytes | str) -> None:
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)
+        fsync_dir(path.parent)
     except BaseException:
         try:  # a full disk: no half file stays behind (the old one is untouched)
             tmp.unlink()
