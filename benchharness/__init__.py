@@ -11,7 +11,7 @@ that ``import benchharness`` stays cheap.
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+from benchharness.version import __version__
 
 __all__ = ["load_experiment", "plan", "run", "analyze", "choose", "__version__"]
 

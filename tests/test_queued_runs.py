@@ -157,7 +157,7 @@ def test_resume_stops_a_launcher_the_dead_harness_left(tmp_path):
     ex = LocalExecutor()
     try:
         (tmp_path / "inflight").write_text(json.dumps(
-            {"run": 3, "pid": 0, "pgid": 0, "boot": J._boot_id(),
+            {"run": 3, "pid": 0, "pgid": 0, "boot": J.boot_id(),
              "launcher": ex.launcher_pid, "lstart": ex._hello()["start"]}).ljust(160))
         J.kill_leftover(tmp_path)
         deadline = time.monotonic() + 5
@@ -171,7 +171,7 @@ def test_resume_stops_a_launcher_the_dead_harness_left(tmp_path):
 def test_a_pid_that_is_no_launcher_is_left_alone(tmp_path):
     # the record names a pid that now belongs to another process (here: ours)
     (tmp_path / "inflight").write_text(json.dumps(
-        {"run": 3, "pid": 0, "pgid": 0, "boot": J._boot_id(),
+        {"run": 3, "pid": 0, "pgid": 0, "boot": J.boot_id(),
          "launcher": os.getpid()}).ljust(160))
     assert J.kill_leftover(tmp_path) is None  # and we are still here
 

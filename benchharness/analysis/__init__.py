@@ -233,7 +233,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     from benchharness.analysis import effects as ef
     from benchharness.analysis import transform as tr
     from benchharness.analysis.cells import index_cells, moments
-    from benchharness.analysis.model import (ZERO_SPREAD, _basis, design, fit_model, limit_terms,
+    from benchharness.analysis.model import (ZERO_SPREAD, term_basis, design, fit_model, limit_terms,
                                              model_terms)
     from benchharness.analysis.prepare import prepare
 
@@ -315,7 +315,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     why = ""
     if positive:  # the Box-Cox profile is evidence on every scale (transform.py)
         X, _ = design(cells.levels, terms, sizes)
-        B = _basis(X * np.sqrt(n_cells)[:, None])
+        B = term_basis(X * np.sqrt(n_cells)[:, None])
         df_res = N - B.shape[1]
         if df_res <= 0:
             why = "no residual degrees of freedom"

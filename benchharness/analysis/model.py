@@ -229,7 +229,7 @@ def design(levels, terms, sizes):
     return np.hstack(blocks), slices
 
 
-def _basis(a: np.ndarray, scale: float | None = None):
+def term_basis(a: np.ndarray, scale: float | None = None):
     """Orthonormal basis of the column space of ``a``.
 
     Rank-revealing QR with column pivoting (Businger & Golub 1965); a column
@@ -306,12 +306,12 @@ class Fit:
 
 def _sequential_df(Xw, slices, terms):
     """Rank added by each term after the intercept and every earlier term."""
-    basis = _basis(Xw[:, :1])
+    basis = term_basis(Xw[:, :1])
     out = {}
     for t in terms:
         xt = Xw[:, slices[t.name]]
         r = xt - basis @ (basis.T @ xt)
-        b2 = _basis(r, scale=_norm2(xt))
+        b2 = term_basis(r, scale=_norm2(xt))
         out[t.name] = int(b2.shape[1])
         basis = np.hstack([basis, b2])
     return out
@@ -319,7 +319,7 @@ def _sequential_df(Xw, slices, terms):
 
 def _confounded_with(Xw, slices, t, earlier):
     """Earlier terms whose columns share directions with ``t`` (after the intercept)."""
-    one = _basis(Xw[:, :1])
+    one = term_basis(Xw[:, :1])
 
     def centred(a):
         return a - one @ (one.T @ a)
@@ -328,7 +328,7 @@ def _confounded_with(Xw, slices, t, earlier):
     scale = _norm2(xt)
     out = []
     for s in earlier:
-        bs = _basis(centred(Xw[:, slices[s.name]]))
+        bs = term_basis(centred(Xw[:, slices[s.name]]))
         if bs.shape[1] and _norm2(bs.T @ xt) > 1e-8 * max(scale, 1e-300):
             out.append(s.name)
     return out
@@ -503,10 +503,10 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=Non
             ss = float((r_aug[p1 - df:p1, -1] ** 2).sum())
         else:
             a = np.hstack([intercept] + [col[o.name] for o in others])
-            b1 = _basis(a)
+            b1 = term_basis(a)
             xt = col[t.name]
             r = xt - b1 @ (b1.T @ xt)
-            b2 = _basis(r, scale=_norm2(xt))
+            b2 = term_basis(r, scale=_norm2(xt))
             proj = b2.T @ zq
             ss = float(proj @ proj)
             df = int(b2.shape[1])

@@ -41,7 +41,7 @@ def analyse_and_report(res) -> None:
             print(format_fraction(frac))
     except BenchharnessError as exc:
         print(f"note: no analysis: {exc}", file=sys.stderr)
-        if not _nothing_finished(res.path):
+        if not nothing_finished(res.path):
             return
         # Every run failed: the report still shows the design and why the runs failed.
     try:
@@ -55,11 +55,11 @@ def analyse_and_report(res) -> None:
         print(f"note: no report: {exc}", file=sys.stderr)
 
 
-def _nothing_finished(folder) -> bool:
+def nothing_finished(folder) -> bool:
     """True when no timed run of the results folder finished with a value."""
     try:
         from benchharness.results.journal import load_results
-        from benchharness.report.data import _nothing_finished as nothing
+        from benchharness.report.data import nothing_finished as nothing
 
         return nothing(load_results(folder).runs, "wall_s")
     except Exception:  # noqa: BLE001 - only decides whether to try the report

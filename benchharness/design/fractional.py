@@ -370,7 +370,7 @@ def parse_generator(text: str, names: Sequence[str]) -> tuple[int, int, int]:
 
 # -- building designs ------------------------------------------------------------
 
-def _two_level_labels(factors) -> tuple[tuple[str, ...], tuple[tuple[str, str], ...]]:
+def two_level_labels(factors) -> tuple[tuple[str, ...], tuple[tuple[str, str], ...]]:
     """factors: sequence of (name, [level labels]). Checks every factor has two levels."""
     names = tuple(n for n, _ in factors)
     labels = []
@@ -388,13 +388,13 @@ def _two_level_labels(factors) -> tuple[tuple[str, ...], tuple[tuple[str, str], 
 
 
 def full_design(factors) -> FractionalDesign:
-    names, labels = _two_level_labels(factors)
+    names, labels = two_level_labels(factors)
     return FractionalDesign(names, labels, ())
 
 
 def design_from_generators(factors, generator_texts: Sequence[str]) -> FractionalDesign:
     """A fraction from user generators. ``factors`` = [(name, [lo, hi]), ...]."""
-    names, labels = _two_level_labels(factors)
+    names, labels = two_level_labels(factors)
     parsed = [parse_generator(t, names) for t in generator_texts]
     generated = {}
     for (pos, _m, _s), t in zip(parsed, generator_texts):
@@ -464,7 +464,7 @@ def rao_bound_allows(k: int, cells: int, resolution: int) -> bool:
 
 def design_for_cells(factors, cells: int, node_limit: int = DEFAULT_NODE_LIMIT) -> FractionalDesign:
     """Minimum-aberration fraction with ``cells`` cells (a power of two)."""
-    names, labels = _two_level_labels(factors)
+    names, labels = two_level_labels(factors)
     k = len(names)
     if cells < 2 or cells & (cells - 1):
         raise DesignError(f"cells: {cells} is not a power of two; a two-level fraction has "
@@ -496,7 +496,7 @@ def design_for_resolution(factors, resolution: int,
 
     Returns the full factorial when no fraction reaches it.
     """
-    names, labels = _two_level_labels(factors)
+    names, labels = two_level_labels(factors)
     k = len(names)
     if resolution < 3:
         raise DesignError(f"resolution: {resolution}; ask for 3 (main effects clear of each "

@@ -184,9 +184,9 @@ def _design_of(exp, node) -> DesignChoice:
 
 def _generators_located(factors, seq_node, gens, path):
     """Build the fraction; an error in one generator points at that generator's line."""
-    from benchharness.design.fractional import _two_level_labels
+    from benchharness.design.fractional import two_level_labels
 
-    _two_level_labels(factors)   # level-count errors belong to the factors, not a generator
+    two_level_labels(factors)   # level-count errors belong to the factors, not a generator
     for i, gnode in enumerate(seq_node.value):
         try:
             design_from_generators(factors, gens[:i + 1])

@@ -4,13 +4,15 @@ An executor takes a `RunSpec` (what to start, with which environment, limits
 and noise controls) and returns a `Measurement` (what happened and what it
 cost). Executors: `local` (real processes through a small launcher process),
 `simulated` (draws run times from a known model, for tests and validation of
-statistical procedures), `dask` (runs on a cluster of hosts).
+statistical procedures), `dask` (runs on a cluster of hosts). `Executor` is
+the contract, with every optional capability an executor may offer declared.
 """
 
 from __future__ import annotations
 
+import abc
 from dataclasses import dataclass, field
-from typing import Callable, Mapping, Protocol
+from typing import Callable, Mapping
 
 # Resource-usage fields every measurement carries, in runs.csv column order.
 USAGE_FIELDS = (
@@ -82,12 +84,90 @@ class Measurement:
 # Called by an executor as soon as the child exists: (pid, process group id).
 OnStart = Callable[[int, int], None]
 
+# Called by an executor (on another thread) while a run executes: work the
+# caller does meanwhile (the next run's request, this run's conditions).
+WhileRunning = Callable[[], None]
 
-class Executor(Protocol):
-    """Anything that can run a `RunSpec` and measure it."""
 
+class Executor(abc.ABC):
+    """Anything that can run a `RunSpec` and measure it: the executor contract.
+
+    Every executor implements `execute`; `close` releases what it holds. The
+    run engine (`benchharness.execute.engine`) reads the optional capabilities
+    below from the executor itself, never by probing for attributes: a
+    subclass that offers one sets its flag and implements its method; the
+    defaults here say "not offered", which is always correct (the engine then
+    does the work itself, one run at a time).
+
+    ``records_inflight``
+        `execute` writes the running child to ``RunSpec.inflight_path`` itself
+        (so the engine passes no ``on_start`` callback and wakes up for nothing
+        mid-run). Otherwise the executor calls ``on_start(pid, pgid)``.
+    ``supports_while_running``
+        `execute` accepts ``while_running`` (called once the child started,
+        while it executes) and ``prepared`` (a request built by
+        `prepare_request` ahead of time).
+    ``supports_queued_runs``
+        `open_stream` queues runs back to back and journals those that end ok
+        itself (`benchharness.execute.local.RunStream`).
+    ``aslr_control``, ``aslr_reason``
+        whether a run can turn address-space randomization off, and why not.
+    ``launcher_pid``
+        a helper process of ours that a busy-process check must not count.
+    ``stopped_runs``
+        after the executor died under a run: what it did to stop that run.
+    """
+
+    records_inflight: bool = False
+    supports_while_running: bool = False
+    supports_queued_runs: bool = False
+    launcher_pid: int | None = None
+    stopped_runs: str | None = None
+
+    @property
+    def aslr_control(self) -> bool:
+        """Whether a run may turn ASLR off here (`aslr_reason` says why not)."""
+        return True
+
+    @property
+    def aslr_reason(self) -> str:
+        return "the kernel does not allow it"
+
+    @abc.abstractmethod
     def execute(self, spec: RunSpec, on_start: OnStart | None = None) -> Measurement:
-        ...
+        """Run ``spec`` to its end (or timeout) and return what it did and cost.
+
+        With ``supports_while_running`` the executor also takes the keywords
+        ``while_running`` (a `WhileRunning`) and ``prepared``.
+        """
+
+    def prepare_request(self, spec: RunSpec, notify: bool = False) -> dict:
+        """Check ``spec`` and build its request ahead of time (``supports_while_running``)."""
+        raise NotImplementedError(f"{type(self).__name__} does not prepare requests ahead")
+
+    def open_stream(self, journal_path, freq_files: dict | None = None,
+                    fields: Mapping | None = None):
+        """Queue runs to be run back to back (``supports_queued_runs``)."""
+        raise NotImplementedError(f"{type(self).__name__} does not queue runs")
 
     def close(self) -> None:
-        ...
+        """Release what the executor holds (a helper process, connections)."""
+
+
+class BasicExecutor(Executor):
+    """Any object with ``execute(spec, on_start=None)`` (and maybe ``close()``), seen
+    through the contract with none of its optional capabilities."""
+
+    def __init__(self, inner):
+        self.inner = inner
+
+    def execute(self, spec: RunSpec, on_start: OnStart | None = None) -> Measurement:
+        return self.inner.execute(spec, on_start=on_start)
+
+    def close(self) -> None:
+        self.inner.close()
+
+
+def as_executor(obj) -> Executor:
+    """``obj`` itself when it declares the contract, else a `BasicExecutor` around it."""
+    return obj if isinstance(obj, Executor) else BasicExecutor(obj)

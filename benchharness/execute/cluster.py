@@ -16,28 +16,50 @@ run two benchmarks at once and disturb each other; the coordinator warns when
 it sees that unless told it is intended (``same_host_ok``, as in tests, where
 each worker then stands for a host of its own).
 
-The coordinator keeps the journal exactly as for local runs: each result is
-appended as it arrives (``position`` is the order of arrival; ``host_position``
-the order on that host) and fsynced within a second. A worker lost mid-run has
-its run re-queued, together with the rest of its block, on another host; its
-late result, if any, is ignored, so every run is recorded once. The analysis
-then uses (block, host) pairs as blocks and says so.
+A worker receives whole blocks (one Dask task per block, holding the resource
+for the block) and runs them back to back; it already holds its next block
+when one ends, so it never waits for the coordinator between runs or blocks.
+Each result streams back the moment its run ends, as a Dask event on a topic
+of this session (`Worker.log_event` → `Client.subscribe_topic`: pushed, not
+polled); the block's return value carries every result again, so a lost event
+costs nothing but time. The coordinator sleeps on one local queue fed by those
+events and by the blocks' completions.
+
+The coordinator keeps the journal exactly as for local runs, through the run
+engine (`benchharness.execute.engine`: the same records as local runs): each
+result is appended as it arrives (``position`` is the order of arrival;
+``host_position`` the order on that host) and fsynced within a second. A
+worker lost mid-block has the runs of its blocks that never came back re-queued
+on another host; its late results, if any, are ignored, so every run is
+recorded once. A coordinator that dies leaves its workers to finish the run in
+progress and stop (the scheduler cancels the block); ``--resume`` re-queues
+only the runs that never came back. The analysis then uses (block, host) pairs
+as blocks and says so.
 """
 
 from __future__ import annotations
 
 import collections
 import os
+import queue
 import sys
 import time
+import uuid
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping, Sequence
 
-from benchharness.results import journal as J
 from benchharness.errors import ExecutionError, UsageError
+from benchharness.execute import remote
 from benchharness.execute.base import Measurement
+from benchharness.execute.cells import CellCache
+from benchharness.execute.engine import (Progress, RunEngine, finalize, not_run,
+                                         start_quality)
+from benchharness.results import journal as J
 
 RESOURCE = "bench"
+#: Blocks a worker holds at once: the one it runs and the next (no wait between blocks).
+AHEAD = 2
 
 
 def check_address(address: str, timeout_s: float = 5.0) -> None:
@@ -145,41 +167,6 @@ def _one_line(exc) -> str:
     return text if len(text) <= 160 else text[:157] + "..."
 
 
-def _record_from(pr: Mapping, result: Mapping, position: int, quality=None, token=None) -> dict:
-    from benchharness.execute.runner import _record
-
-    md = result.get("measurement")
-    m = None
-    if md:
-        m = Measurement(**{k: v for k, v in md.items() if k in Measurement.__dataclass_fields__})
-        if quality is not None and token is not None:
-            token = dict(token, conditions=result.get("conditions") or {})
-            m = quality.finish(token, pr, m)
-            result = dict(result, status=m.status, message=m.message)
-    status = result["status"]
-    message = result.get("message") or ""
-    if pr["warmup"] and m is not None:
-        if status != "ok":
-            message = f"warm-up run {status}: {message}"
-        status = "warmup"
-    rec = _record(pr, m, status, message)
-    rec["position"] = position
-    rec["host"] = result.get("host_name")
-    rec["worker"] = result.get("worker")
-    rec["host_position"] = result.get("host_position")
-    return rec
-
-
-def _wait_some(futures, timeout_s: float) -> list:
-    """Futures that are done within ``timeout_s`` (possibly none)."""
-    end = time.monotonic() + timeout_s
-    while True:
-        done = [f for f in futures if f.done()]
-        if done or time.monotonic() >= end:
-            return done
-        time.sleep(0.005)
-
-
 class _HostProgress:
     """Wraps a Progress so that the current cell is shown with the host running it."""
 
@@ -202,186 +189,310 @@ class _HostProgress:
         self.inner.stop()
 
 
+@dataclass(eq=False)
+class _Block:
+    """One attempt at a block on one worker: what was sent and what has not come back."""
+
+    key: str
+    addr: str
+    runs: list                 # planned runs, in order
+    future: object = None
+    back: set = field(default_factory=set)   # run ids whose result arrived
+
+    def missing(self) -> list:
+        return [pr for pr in self.runs if pr["run"] not in self.back]
+
+
+class _Coordinator:
+    """Runs the not-yet-done planned runs on the cluster, block by block.
+
+    Each free worker gets a whole block (`remote.execute_block`), which it runs
+    back to back; each result streams back as an event as soon as its run ends
+    and is journalled on arrival by the run engine. The coordinator sleeps on
+    one local queue fed by those events and by the blocks' completion, so it
+    wakes for work, never to poll. A block whose worker is lost, or whose
+    task fails, goes back to the front of the queue with only the runs that
+    never came back.
+    """
+
+    def __init__(self, folder: Path, exp, planned, done: set, session: dict, progress,
+                 scheduler: str, same_host_ok: bool, prior, known_hosts, poll_s: float):
+        self.folder, self.exp, self.planned, self.session = folder, exp, planned, session
+        self.scheduler, self.same_host_ok, self.poll_s = scheduler, same_host_ok, poll_s
+        self.progress = _HostProgress(progress or Progress())
+        self.client = _connect(scheduler)
+        self.jr = J.Journal(folder)
+        cells = CellCache(exp, session)
+        self.quality = start_quality(exp, folder, cells, planned)
+        if self.quality.cfg.metrics is not None and self.quality.cfg.metrics.file_templates():
+            self.quality.notes.append("note: metrics read from files (file:) are read on the "
+                                      "coordinator; on a cluster the file must be on a shared "
+                                      "path")
+        self.engine = RunEngine(exp, folder, session, None, self.jr, quality=self.quality,
+                                cells=cells, resumed=len(done), note=self.progress.note)
+        for r in prior:
+            self.engine.count(r["status"])
+        self.position = max([int(r.get("position", -1)) for r in prior], default=-1) + 1
+        self.recorded = set(done)
+        self.hosts_facts = dict(known_hosts or {})
+        self.host_of: dict = {}
+        self.workers: dict = {}
+        self.queue: collections.deque = collections.deque()
+        self.busy: dict[str, list] = {}          # worker address -> its blocks, in order
+        self.blocks: dict[str, _Block] = {}      # attempt key -> block (live attempts)
+        self.prepared: dict = {}                 # run id -> (pr, Prepared)
+        self.attempts = collections.Counter()
+        self.events: queue.Queue = queue.Queue()
+        self.topic = f"benchharness-{os.getpid()}-{uuid.uuid4().hex[:12]}"
+        self.n_attempts = 0
+        self.next_check = 0.0
+
+    # -- workers -----------------------------------------------------------------
+
+    def meet_workers(self) -> None:
+        """Wait for workers, check they can run our code, record their hosts."""
+        workers = _workers(self.client)
+        deadline = time.monotonic() + 30
+        while not workers and time.monotonic() < deadline:
+            time.sleep(0.5)
+            workers = _workers(self.client)
+        if not workers:
+            raise ExecutionError(f"the Dask scheduler at {self.scheduler} has no workers; start "
+                                 f"some with `dask worker {self.scheduler} --nthreads 1 "
+                                 f"--resources {RESOURCE}=1`")
+        try:
+            idents = self.client.run(remote.identity)
+        except Exception as exc:  # noqa: BLE001 - raised on the worker, re-raised by Dask
+            raise ExecutionError(
+                f"the workers of {self.scheduler} cannot run benchharness code "
+                f"({_one_line(exc)}); install benchharness on every worker (or start "
+                f"`dask worker` with it on PYTHONPATH)") from None
+        for w in check_workers(workers, idents, self.same_host_ok):
+            print(f"warning: {w}", file=sys.stderr)
+        self._learn(idents, self.client.run(remote.host_facts))
+        self.workers = workers
+
+    def _learn(self, idents: Mapping, facts: Mapping) -> None:
+        for addr, ident in idents.items():
+            self.host_of[addr] = ident["worker"] if self.same_host_ok else ident["hostname"]
+        for addr, f in facts.items():
+            self.hosts_facts.setdefault(self.host_of[addr], f)
+
+    def check_workers(self) -> None:
+        """Lost workers give their blocks back; new workers are identified (at most
+        every ``poll_s``, and whenever a block ended)."""
+        now = time.monotonic()
+        if now < self.next_check:
+            return
+        self.next_check = now + self.poll_s
+        live = _workers(self.client)
+        for addr in list(self.busy):
+            if addr not in live:
+                self._lost(addr)
+        new = [a for a in live if a not in self.host_of]
+        if new:
+            self._learn(self.client.run(remote.identity, workers=new),
+                        self.client.run(remote.host_facts, workers=new))
+        self.workers = live
+
+    def _lost(self, addr: str) -> None:
+        """A worker is gone: what its blocks did not send back goes to another host."""
+        lost = 0
+        for block in reversed(self.busy.pop(addr)):
+            self.blocks.pop(block.key, None)   # its late events, if any, are ignored
+            try:
+                block.future.cancel()
+            except Exception:  # noqa: BLE001
+                pass
+            runs = [pr for pr in block.missing() if pr["run"] not in self.recorded]
+            if runs:
+                self.queue.appendleft(runs)
+                lost += len(runs)
+        if lost:
+            self.progress.note(f"worker {self.host_of.get(addr, addr)} was lost; {lost} "
+                               "runs of its block go to another host")
+
+    # -- blocks ------------------------------------------------------------------
+
+    def fill_queue(self, todo: Sequence[Mapping]) -> None:
+        """Blocks in plan order; warm-up runs (block 0) one at a time, to any free host."""
+        blocks: collections.OrderedDict = collections.OrderedDict()
+        for pr in todo:
+            blocks.setdefault(pr["block"], []).append(pr)
+        for b, runs in blocks.items():
+            if b == 0:
+                self.queue.extend([[pr] for pr in runs])
+            else:
+                self.queue.append(list(runs))
+
+    def dispatch(self) -> None:
+        """Every live worker holds the block it runs and the next one (``AHEAD``), so
+        it goes from one block to the next without waiting for the coordinator."""
+        for _ in range(AHEAD):
+            for addr in self.workers:
+                if len(self.busy.get(addr, ())) < AHEAD and self.queue:
+                    self._send(addr, self.queue.popleft())
+
+    def _send(self, addr: str, runs: list) -> None:
+        self.n_attempts += 1
+        key = f"bh-block-{os.getpid()}-{self.n_attempts}-{runs[0]['run']}"
+        payloads = []
+        for pr in runs:
+            self.attempts[pr["run"]] += 1
+            payloads.append(self._payload(pr))
+        has_resource = (self.workers.get(addr, {}).get("resources") or {}).get(RESOURCE)
+        block = _Block(key, addr, runs)
+        self.blocks[key] = block
+        self.busy.setdefault(addr, []).append(block)
+        block.future = self.client.submit(
+            remote.execute_block, payloads, self.topic, key, key=key, workers=[addr],
+            allow_other_workers=False, resources={RESOURCE: 1} if has_resource else None,
+            pure=False, retries=0)
+        block.future.add_done_callback(lambda _f, k=key: self.events.put(("done", k)))
+
+    def _payload(self, pr: Mapping) -> dict:
+        eng = self.engine
+        p = eng.prepare(pr, sample_later=True)   # conditions are sampled on the worker
+        p.pad_bytes = eng.pad_length()
+        self.prepared[pr["run"]] = (pr, p)
+        out = _payload(p.cell, pr, eng.timeout_s, spec=p.spec,
+                       clean_env=eng.controls.clean_env, pad_bytes=p.pad_bytes)
+        out["keep_output"] = not self.quality.fast
+        return out
+
+    # -- results -----------------------------------------------------------------
+
+    def wait(self) -> None:
+        """Sleep until a result or a block's end arrives (or ``poll_s``), then take
+        everything that is there."""
+        try:
+            items = [self.events.get(timeout=self.poll_s)]
+        except queue.Empty:
+            return
+        while True:
+            try:
+                items.append(self.events.get_nowait())
+            except queue.Empty:
+                break
+        for kind, value in items:
+            if kind == "result":
+                self._result(value.get("attempt"), value.get("result") or {})
+            else:
+                self._block_done(value)
+
+    def on_event(self, event) -> None:
+        """Called by the Dask client (its own thread) for every streamed result."""
+        _ts, msg = event
+        self.events.put(("result", msg))
+
+    def _result(self, key, result: Mapping) -> None:
+        block = self.blocks.get(key)
+        run = result.get("run")
+        if block is None or run in self.recorded or run not in self.prepared:
+            return  # from an attempt given up on, or a late duplicate: recorded once already
+        block.back.add(run)
+        pr, p = self.prepared.pop(run)
+        ran = self._ran(pr, p, result)
+        rec = self.engine.record(dict(pr, position=self.position), ran, extra={
+            "host": self.host_of.get(block.addr, result.get("hostname")),
+            "worker": result.get("worker"), "host_position": result.get("host_position")})
+        self.position += 1
+        self.recorded.add(run)
+        self.progress.advance(rec, " ".join(f"{k}={v}" for k, v in pr["levels"].items()))
+
+    def _ran(self, pr: Mapping, p, result: Mapping):
+        md = result.get("measurement")
+        if md is None:
+            ran = not_run(pr, result.get("not_run") or "not run")
+        else:
+            m = Measurement(**{k: v for k, v in md.items()
+                               if k in Measurement.__dataclass_fields__})
+            ran = self.engine.conclude(pr, m, p.token, result.get("conditions") or {})
+            if result.get("teardown"):
+                ran.message = (ran.message + "; " if ran.message else "") + result["teardown"]
+        ran.pad_bytes = p.pad_bytes
+        return ran
+
+    def _block_done(self, key: str) -> None:
+        block = self.blocks.pop(key, None)
+        if block is None:
+            return  # given up on already (its worker was lost)
+        mine = self.busy.get(block.addr, [])
+        if block in mine:
+            mine.remove(block)
+        if not mine:
+            self.busy.pop(block.addr, None)
+        self.next_check = 0.0
+        fut = block.future
+        if fut.status == "finished":
+            self.blocks[key] = block      # results not streamed yet are taken from here
+            for result in fut.result():
+                self._result(key, result)
+            self.blocks.pop(key, None)
+            rest = [pr for pr in block.missing() if pr["run"] not in self.recorded]
+            if rest:
+                self.queue.appendleft(rest)   # stopped before its end
+            return
+        self._failed(block)
+
+    def _failed(self, block: _Block) -> None:
+        """Errored or cancelled (worker died, comm lost): run what is missing elsewhere."""
+        rest = [pr for pr in block.missing() if pr["run"] not in self.recorded]
+        if not rest:
+            return
+        first = rest[0]
+        if self.attempts[first["run"]] >= 5:
+            why = _one_line(block.future.exception())
+            hint = ""
+            if "deserializ" in why or "No module" in why:
+                hint = ("; the scheduler and workers need the same Python packages as this "
+                        "machine, benchharness included")
+            raise ExecutionError(f"run {first['run']} failed on the cluster 5 times "
+                                 f"({why}){hint}")
+        self.queue.appendleft(rest)
+
+    # -- the whole run -------------------------------------------------------------
+
+    def run(self, todo: Sequence[Mapping]) -> None:
+        self.meet_workers()
+        self.fill_queue(todo)
+        self.progress.start(len(self.planned), len(self.planned) - len(todo), self.folder)
+        self.client.subscribe_topic(self.topic, self.on_event)
+        while self.queue or self.busy:
+            self.check_workers()
+            self.dispatch()
+            if self.busy or self.queue:
+                self.wait()
+        for note in self.quality.notes:
+            self.progress.note(note)
+        self.quality.notes.clear()
+
+    def close(self) -> None:
+        self.progress.stop()
+        self.jr.close()
+        try:
+            self.client.unsubscribe_topic(self.topic)
+        except Exception:  # noqa: BLE001
+            pass
+        try:
+            self.client.close(timeout=5)
+        except Exception:  # noqa: BLE001
+            pass
+
+
 def execute_on_cluster(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
                        progress, facts: dict, scheduler: str, same_host_ok: bool = False,
                        prior=(), known_hosts: Mapping | None = None, poll_s: float = 0.25):
     """Run the not-yet-done planned runs on the cluster; returns a `RunOutcome`."""
-    from benchharness.execute.runner import Progress, _CellCache, finalize
-    from benchharness.execute import remote
-
-    client = _connect(scheduler)
-    progress = _HostProgress(progress or Progress())
-    cells = _CellCache(exp, session)
-    jr = J.Journal(folder)
-    from benchharness.measure.quality import RunQuality
-
-    quality = RunQuality(exp, folder)
-    distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
-    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
-    if quality.cfg.metrics is not None and quality.cfg.metrics.file_templates():
-        quality.notes.append("note: metrics read from files (file:) are read on the "
-                             "coordinator; on a cluster the file must be on a shared path")
-    pad_rng = None
-    if cells.controls.pad_env:
-        import numpy as np
-
-        pad_rng = np.random.default_rng([int(session.get("seed") or 0), len(done), 7])
-    counts: dict[str, int] = collections.Counter(r["status"] for r in prior)
-    position = max([int(r.get("position", -1)) for r in prior], default=-1) + 1
-    recorded = set(done)
+    co = _Coordinator(folder, exp, planned, done, session, progress, scheduler, same_host_ok,
+                      prior, known_hosts, poll_s)
     interrupted = False
-    hosts_facts = dict(known_hosts or {})
     try:
-        workers = _workers(client)
-        deadline = time.monotonic() + 30
-        while not workers and time.monotonic() < deadline:
-            time.sleep(0.5)
-            workers = _workers(client)
-        if not workers:
-            raise ExecutionError(f"the Dask scheduler at {scheduler} has no workers; start "
-                                 f"some with `dask worker {scheduler} --nthreads 1 --resources "
-                                 f"{RESOURCE}=1`")
-        try:
-            idents = client.run(remote.identity)
-        except Exception as exc:  # noqa: BLE001 - raised on the worker, re-raised by Dask
-            raise ExecutionError(
-                f"the workers of {scheduler} cannot run benchharness code "
-                f"({_one_line(exc)}); install benchharness on every worker (or start "
-                f"`dask worker` with it on PYTHONPATH)") from None
-        for w in check_workers(workers, idents, same_host_ok):
-            print(f"warning: {w}", file=sys.stderr)
-        host_of = {}
-        for addr, ident in idents.items():
-            host_of[addr] = ident["worker"] if same_host_ok else ident["hostname"]
-        for addr, f in client.run(remote.host_facts).items():
-            hosts_facts.setdefault(host_of[addr], f)
-
-        # Blocks in plan order; warm-up runs (block 0) may go to any free host.
-        todo = [pr for pr in planned if int(pr["run"]) not in done]
-        blocks: collections.OrderedDict = collections.OrderedDict()
-        for pr in todo:
-            blocks.setdefault(pr["block"], []).append(pr)
-        queue: collections.deque = collections.deque()
-        for b, runs in blocks.items():
-            if b == 0:
-                queue.extend([[pr] for pr in runs])  # warm-ups: one at a time, anywhere
-            else:
-                queue.append(list(runs))
-        current: dict[str, collections.deque] = {}   # worker addr → rest of its block
-        inflight: dict = {}                           # future → (addr, planned run)
-        attempts = collections.Counter()
-        tokens: dict = {}
-        timeout_s = exp.timeout_s
-        progress.start(len(planned), len(planned) - len(todo), folder)
-
-        def submit(addr):
-            rest = current.get(addr)
-            if not rest:
-                if not queue:
-                    return False
-                rest = current[addr] = collections.deque(queue.popleft())
-            pr = rest.popleft()
-            c = cells.get(pr["levels"])
-            attempts[pr["run"]] += 1
-            from benchharness.execute.runner import _spec
-
-            spec, token = quality.prepare(_spec((c["argv"], c["shell"]), c, timeout_s,
-                                                run_id=pr["run"], levels=pr["levels"]),
-                                          pr["levels"], c)
-            pad = int(pad_rng.integers(0, 4097)) if pad_rng is not None else None
-            tokens[pr["run"]] = (token, pad)
-            payload = _payload(c, pr, timeout_s, spec=spec,
-                               clean_env=cells.controls.clean_env, pad_bytes=pad)
-            fut = client.submit(remote.execute_run, payload,
-                                key=f"bh-run-{pr['run']}-{attempts[pr['run']]}-{os.getpid()}",
-                                workers=[addr], allow_other_workers=False,
-                                resources={RESOURCE: 1} if (workers.get(addr, {}).get(
-                                    "resources") or {}).get(RESOURCE) else None,
-                                pure=False, retries=0)
-            inflight[fut] = (addr, pr)
-            return True
-
-        def requeue_worker(addr):
-            """A worker is gone: its in-flight run and the rest of its block go elsewhere."""
-            lost = [(f, pr) for f, (a, pr) in inflight.items() if a == addr]
-            rest = list(current.pop(addr, []))
-            for f, pr in lost:
-                inflight.pop(f, None)
-                try:
-                    f.cancel()
-                except Exception:  # noqa: BLE001
-                    pass
-            runs = [pr for _f, pr in lost if pr["run"] not in recorded] + rest
-            if runs:
-                queue.appendleft(runs)
-                progress.note(f"worker {host_of.get(addr, addr)} was lost; {len(runs)} runs of "
-                              "its block go to another host")
-
-        while True:
-            live = _workers(client)
-            for addr in list(current) + [a for _f, (a, _p) in inflight.items()]:
-                if addr not in live:
-                    requeue_worker(addr)
-            new = [a for a in live if a not in host_of]
-            if new:
-                more = client.run(remote.identity, workers=new)
-                for addr, ident in more.items():
-                    host_of[addr] = ident["worker"] if same_host_ok else ident["hostname"]
-                for addr, f in client.run(remote.host_facts, workers=new).items():
-                    hosts_facts.setdefault(host_of[addr], f)
-            workers = live
-            busy = {a for a, _p in inflight.values()}
-            for addr in live:
-                if addr not in busy:
-                    submit(addr)
-            if not inflight:
-                if not queue and not any(current.values()):
-                    break
-                if not live:
-                    time.sleep(poll_s)
-                    continue
-            finished = _wait_some(list(inflight), poll_s)
-            for fut in finished:
-                addr, pr = inflight.pop(fut)
-                if fut.status == "finished":
-                    result = fut.result()
-                    if pr["run"] in recorded:
-                        continue  # a late duplicate: recorded once already
-                    result["host_name"] = host_of.get(addr, result.get("hostname"))
-                    token, pad = tokens.get(pr["run"], (None, None))
-                    rec = _record_from(pr, result, position, quality, token)
-                    if pad is not None:
-                        rec["pad_env_bytes"] = pad
-                    position += 1
-                    jr.append(rec)
-                    recorded.add(pr["run"])
-                    counts[rec["status"]] += 1
-                    progress.advance(rec, " ".join(f"{k}={v}" for k, v in pr["levels"].items()))
-                else:
-                    # Errored or cancelled (worker died, comm lost): run it elsewhere.
-                    if pr["run"] not in recorded:
-                        if attempts[pr["run"]] >= 5:
-                            why = _one_line(fut.exception())
-                            hint = ""
-                            if "deserializ" in why or "No module" in why:
-                                hint = ("; the scheduler and workers need the same Python "
-                                        "packages as this machine, benchharness included")
-                            raise ExecutionError(f"run {pr['run']} failed on the cluster 5 "
-                                                 f"times ({why}){hint}")
-                        rest = list(current.pop(addr, []))
-                        queue.appendleft([pr] + rest)
-        for note in quality.notes:
-            progress.note(note)
-        quality.notes.clear()
+        co.run([pr for pr in planned if int(pr["run"]) not in done])
     except KeyboardInterrupt:
         interrupted = True
     finally:
-        progress.stop()
-        jr.close()
-        try:
-            client.close(timeout=5)
-        except Exception:  # noqa: BLE001
-            pass
-    host_json = {"coordinator": facts, "hosts": hosts_facts}
-    return finalize(folder, exp, session, facts, dict(counts), len(planned), interrupted,
-                    host_json=host_json, quality=quality)
+        co.close()
+    host_json = {"coordinator": facts, "hosts": co.hosts_facts}
+    return finalize(folder, exp, session, facts, dict(co.engine.counts), len(planned),
+                    interrupted, host_json=host_json, quality=co.quality)

@@ -1,6 +1,6 @@
 """Local execution: runs commands on this machine through the launcher process.
 
-`LocalExecutor` implements the `Executor` protocol of `benchharness.execute.base`.
+`LocalExecutor` implements the `Executor` contract of `benchharness.execute.base`.
 It owns one launcher process (`benchharness/execute/launcher.py`, stdlib only)
 and sends it one `RunSpec` at a time over a pipe; the launcher spawns, times and
 reaps the child and answers with the measurement. Why a separate process: on
@@ -30,14 +30,14 @@ from typing import Mapping
 
 from benchharness.errors import ExecutionError
 from benchharness.execute import launcher as _proto
-from benchharness.execute.base import Measurement, OnStart, RunSpec
+from benchharness.execute.base import Executor, Measurement, OnStart, RunSpec
 from benchharness.execute.noise import check_cpus
 
 LAUNCHER_PATH = Path(_proto.__file__).resolve()
 _F_GETPIPE_SZ = 1032
 
 
-class LocalExecutor:
+class LocalExecutor(Executor):
     """Run `RunSpec`s as local processes, one at a time, and measure them.
 
     ``kill_grace_s``: time between SIGTERM and SIGKILL when a run times out.
@@ -182,16 +182,16 @@ class LocalExecutor:
                 procs.kill_group_checked(pgid, start[0], start[1])
             self._current = None
         elif self._inflight_path is not None:
-            from benchharness.results.journal import _read_json_bytes, _stop_run
+            from benchharness.results.journal import read_json_bytes, stop_run
 
             try:
                 with open(self._inflight_path, "rb") as fh:
-                    info = _read_json_bytes(fh.read())
+                    info = read_json_bytes(fh.read())
             except OSError:
                 info = None
             if isinstance(info, dict) and info.get("launcher") == self.launcher_pid \
                     and info.get("lstart") == self._launcher_start:
-                self.stopped_runs = _stop_run(info, "the launcher")
+                self.stopped_runs = stop_run(info, "the launcher")
 
     def _release(self, wait_s: float) -> None:
         """Close our pipe ends and reap the launcher (killed if it does not exit in time)."""
@@ -231,6 +231,8 @@ class LocalExecutor:
 
     #: `execute` takes ``while_running``: work the caller does while the run executes.
     supports_while_running = True
+    #: `open_stream` queues runs back to back; the launcher journals the ok ones.
+    supports_queued_runs = True
 
     def execute(self, spec: RunSpec, on_start: OnStart | None = None,
                 while_running=None, prepared: dict | None = None) -> Measurement:
@@ -556,7 +558,7 @@ _BOOT = None
 def _boot_id() -> str:
     global _BOOT
     if _BOOT is None:
-        from benchharness.results.journal import _boot_id as read_boot_id
+        from benchharness.execute.procs import boot_id as read_boot_id
 
         _BOOT = read_boot_id()
     return _BOOT

@@ -1,10 +1,17 @@
-"""Executing a plan: the loop that runs, measures and journals every run.
+"""Executing a plan on this machine: a results folder, the plan's runs in order, resume.
 
-The runner owns the order of side effects around each run — build (once per
-distinct rendered form), reset (before every timed run), the run itself,
-teardown (after every run) — and writes each finished run to the journal
-before the next one starts. It works with any `Executor` (local processes, a
-simulated system for tests, a cluster), so the same loop serves every backend.
+The runner makes the results folder (frozen experiment, plan, session, host
+facts), then hands the plan's runs, in order, to the run engine
+(`benchharness.execute.engine`), which prepares, runs, records and journals
+each one — build (once per distinct rendered form), reset (before every timed
+run), the run itself, teardown (after every run) — and writes each finished run
+to the journal before the next one starts. It works with any `Executor`
+(local processes, a simulated system for tests); with a scheduler address the
+runs go to the cluster coordinator (`benchharness.execute.cluster`) instead.
+The runner adds what only a run of the whole plan needs: the host check once
+its sample is due, stopping rules between replicates, stopping early when the
+first runs of every cell failed, and progress shown while the next run
+executes.
 
 Ctrl-C stops after recording what finished: the run in flight is killed and not
 recorded, the journal is synced, ``runs.csv`` exported, and the user is told how
@@ -21,47 +28,24 @@ import os
 import statistics
 import sys
 import time
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping, Sequence
 
-from benchharness.results import journal as J
 from benchharness.errors import DiskFullError, ExecutionError, ResultsFolderError, is_disk_full
-from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
+from benchharness.execute.base import as_executor
+from benchharness.execute.engine import (MIRROR_LIMIT, Progress, RunEngine, RunOutcome, finalize,
+                                         start_quality, version)
+from benchharness.results import journal as J
+
+__all__ = ["RunOutcome", "Progress", "PlainProgress", "RichProgress", "run_experiment",
+           "resume_experiment", "default_executor", "check_controls", "disk_full_error",
+           "cell_summary", "format_seconds"]
 
 DEFAULT_BASE = Path("results")
 
 
-@dataclass
-class RunOutcome:
-    """What `run_experiment` returns: where the results are and what happened."""
-
-    folder: Path
-    seed: int
-    planned: int                 # runs in the plan, warm-ups included
-    counts: dict = field(default_factory=dict)  # status → number of runs recorded
-    interrupted: bool = False
-    notes: list = field(default_factory=list)
-    stopped_early: str | None = None   # why the run stopped before the plan's end (early_stop)
-    _runs: object = None
-
-    @property
-    def runs(self):
-        """The runs table, equal to ``runs.csv`` (factor columns as strings)."""
-        if self._runs is None:
-            self._runs = J.load_results(self.folder).runs
-        return self._runs
-
-
 # ---------------------------------------------------------------------------
-# Progress reporting (terminal bar, plain lines for logs, or nothing).
-
-class Progress:
-    def start(self, total: int, done: int, folder: Path) -> None: ...
-    def advance(self, record: Mapping, label: str) -> None: ...
-    def note(self, text: str) -> None: ...
-    def stop(self) -> None: ...
-
+# Progress reporting (terminal bar, plain lines for logs, or nothing: `engine.Progress`).
 
 class PlainProgress(Progress):
     """Periodic plain lines (CI logs): at most one every ``every_s`` seconds."""
@@ -150,38 +134,11 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
     ``early_stop``: stop once the first runs of every cell failed the same way
     (`benchharness.execute.early_stop`); `benchharness run` turns it on.
     """
-    import dataclasses
-
     if isinstance(exp, (str, os.PathLike)):
         from benchharness.experiment.file import load_experiment
 
         exp = load_experiment(exp)
-    notes = []
-    if scheduler and plan is None and exp.order == "randomized":
-        # Hosts receive complete blocks, so each replicate becomes a block.
-        exp_for_plan = dataclasses.replace(exp, order="blocked")
-        notes.append("on a cluster each replicate is run as a complete block on one host "
-                     "(order: blocked), so that hosts are blocks of the design")
-    else:
-        exp_for_plan = exp
-    # Adaptive replicates and time budgets decide between complete replicates
-    # (benchharness.design.sequential): each replicate runs as one block.
-    from benchharness.design.adaptive import adaptive_rule
-
-    rule = adaptive_rule(exp)
-    plan_kwargs = {}
-    if rule is not None or budget_s is not None:
-        if scheduler:
-            from benchharness.errors import UsageError
-
-            raise UsageError("adaptive replicates and --budget decide on one machine between "
-                             "replicates; drop --scheduler for this experiment")
-        if exp.order != "blocked" and plan is None:
-            exp_for_plan = dataclasses.replace(exp, order="blocked")
-            notes.append("each replicate runs as a complete block (order: blocked), so the run "
-                         "can stop between replicates")
-        if rule is not None:
-            plan_kwargs["replicates"] = rule.max_replicates
+    exp_for_plan, notes, plan_kwargs = _plan_order(exp, plan, scheduler, budget_s)
     from benchharness.experiment.sections import validate_sections
 
     validate_sections(exp)  # malformed capability sections fail before a folder exists
@@ -201,109 +158,98 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
             early.close()  # already closed when the run went through
 
 
+def _plan_order(exp, plan, scheduler, budget_s):
+    """The experiment to plan from (its order changed where blocks must be whole),
+    the notes saying so, and the plan's keyword arguments."""
+    import dataclasses
+
+    notes = []
+    exp_for_plan = exp
+    if scheduler and plan is None and exp.order == "randomized":
+        # Hosts receive complete blocks, so each replicate becomes a block.
+        exp_for_plan = dataclasses.replace(exp, order="blocked")
+        notes.append("on a cluster each replicate is run as a complete block on one host "
+                     "(order: blocked), so that hosts are blocks of the design")
+    # Adaptive replicates and time budgets decide between complete replicates
+    # (benchharness.design.sequential): each replicate runs as one block.
+    from benchharness.design.adaptive import adaptive_rule
+
+    rule = adaptive_rule(exp)
+    plan_kwargs = {}
+    if rule is not None or budget_s is not None:
+        if scheduler:
+            from benchharness.errors import UsageError
+
+            raise UsageError("adaptive replicates and --budget decide on one machine between "
+                             "replicates; drop --scheduler for this experiment")
+        if exp.order != "blocked" and plan is None:
+            exp_for_plan = dataclasses.replace(exp, order="blocked")
+            notes.append("each replicate runs as a complete block (order: blocked), so the run "
+                         "can stop between replicates")
+        if rule is not None:
+            plan_kwargs["replicates"] = rule.max_replicates
+    return exp_for_plan, notes, plan_kwargs
+
+
+class _HostCheck:
+    """The host check of a new folder: its busy-process sample spans the set-up
+    (and the first runs, when those take less than its interval) instead of a
+    sleep of its own; ``host.json`` is written with its warnings once it is due."""
+
+    def __init__(self, exp):
+        from benchharness.measure.host import BusySampler, collect_facts, host_check_mode, preflight
+
+        mode = host_check_mode(exp)
+        self.exp = exp
+        self.sampler = BusySampler().start_in_background() if mode != "off" else None
+        self.facts = collect_facts()
+        self.warnings = None
+        if mode == "strict":  # before the folder exists, since it may refuse to start
+            self.warnings = preflight(exp, self.facts, busy_sampler=self.sampler)
+        self.due = (self.sampler.due if self.sampler is not None and self.warnings is None
+                    else 0.0)
+        self.folder = None
+
+    def __call__(self, exclude=()):
+        """Write host.json with the warnings (``exclude``: our own helper processes)."""
+        from benchharness.measure.host import preflight
+
+        if self.warnings is None and self.sampler is not None:
+            self.sampler.exclude_pids(exclude)
+        self.facts["warnings"] = (self.warnings if self.warnings is not None
+                                  else preflight(self.exp, self.facts,
+                                                 busy_sampler=self.sampler))
+        J.write_atomic(self.folder / "host.json",
+                       json.dumps(self.facts, indent=1, default=str))
+
+
 def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, progress, plan,
              plan_kwargs, scheduler, same_host_ok, budget_s, estimate_s,
              early_stop=False) -> RunOutcome:
     """`run_experiment` once the experiment is validated (see there)."""
     from benchharness.design import build_plan
-    from benchharness.measure.host import BusySampler, collect_facts, host_check_mode, preflight
 
-    # The busy-process sample spans the setup below instead of a sleep of its
-    # own: started first, read once the folder is written (strict mode: before
-    # the folder exists, since it may refuse to start).
-    mode = host_check_mode(exp)
-    sampler = BusySampler().start_in_background() if mode != "off" else None
-    start_facts = collect_facts()
-    host_warnings = None
-    if mode == "strict":
-        host_warnings = preflight(exp, start_facts, busy_sampler=sampler)  # may stop here
+    host = _HostCheck(exp)
     plan = plan or build_plan(exp_for_plan, seed=seed, **plan_kwargs)
     check_controls(exp, plan.runs)
-    # Set up in a hidden folder, named only once it can be resumed (journal.start_folder).
+    folder, lock = _start_folder(base, exp.name, out)
     try:
-        folder = J.start_folder(Path(base), exp.name, out)
-    except OSError as e:
-        if is_disk_full(e):
-            raise _no_room_to_start(base, out) from None
-        raise
-    try:
-        lock = J.FolderLock(folder)
-    except BaseException as e:
-        J.discard_start(folder)
-        if is_disk_full(e):
-            raise _no_room_to_start(base, out) from None
-        raise
-    try:
-        published = False
-        try:
-            J.write_atomic(folder / "experiment.yaml", exp.source_text)
-            J.write_plan_csv(folder, exp.factor_names, plan.rows())
-            if plan.info:
-                J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1,
-                                                                  default=str))
-
-            exp_dir = (str(Path(exp.path).resolve().parent) if exp.path != "<string>"
-                       else os.getcwd())
-            session = {
-                "benchharness_version": _version(),
-                "seed": plan.seed,
-                "seed_drawn": exp.seed is None and seed is None,
-                "order": plan.order,
-                "experiment_path": str(exp.path),
-                "experiment_dir": exp_dir,
-                "cwd": os.getcwd(),
-                "argv": sys.argv,
-                "started_at": J.utc_iso(),
-                "state": "running",
-                "runs_planned": len(plan.runs),
-                "roles": _roles(exp),
-                "experiment_sha256": J.experiment_digest(exp.source_text),
-            }
-            if scheduler:
-                session["scheduler"] = scheduler
-            if budget_s is not None:
-                session["budget_s"] = budget_s
-            J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
-            facts = start_facts
-
-            def write_host_json(exclude=()):
-                # Called once the busy-process sample is due (it then spans the folder
-                # set-up, provenance, the launcher's start and, when those take less
-                # than the sample's interval, the first runs; ``exclude``: our launcher).
-                if host_warnings is None and sampler is not None:
-                    sampler.exclude_pids(exclude)
-                facts["warnings"] = (host_warnings if host_warnings is not None
-                                     else preflight(exp, facts, busy_sampler=sampler))
-                J.write_atomic(folder / "host.json", json.dumps(facts, indent=1, default=str))
-
-            write_host_json.due = (sampler.due if sampler is not None and host_warnings is None
-                                   else 0.0)
-            if scheduler:
-                write_host_json()
-            (folder / "runs.jsonl").touch()
-            J.fsync_dir(folder)
-            folder = J.publish_folder(folder, Path(base), exp.name, out)
-            published = True
-        except BaseException as e:
-            if not published:
-                J.discard_start(folder)  # nothing was measured in it
-            if is_disk_full(e):
-                raise _no_room_to_start(base, out) from None
-            raise
+        session = _session_record(exp, plan, seed, scheduler, budget_s)
+        folder = _write_new_folder(folder, base, out, exp, plan, session, host, scheduler)
         planned = [{"run": r.run, "position": r.position, "block": r.block,
                     "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
                    for r in plan.runs]
         if scheduler:
             from benchharness.execute.cluster import execute_on_cluster
 
-            outcome = execute_on_cluster(folder, exp, planned, set(), session, progress, facts,
-                                         scheduler, same_host_ok=same_host_ok)
+            outcome = execute_on_cluster(folder, exp, planned, set(), session, progress,
+                                         host.facts, scheduler, same_host_ok=same_host_ok)
         else:
             from benchharness.design.sequential import gate_for
 
             gate = gate_for(exp, plan, folder, budget_s, estimate_s)
-            outcome = _execute(folder, exp, planned, set(), session, executor, progress, facts,
-                               stop_check=gate, host_check=write_host_json,
+            outcome = _execute(folder, exp, planned, set(), session, executor, progress,
+                               host.facts, stop_check=gate, host_check=host,
                                own_executor=own_executor, early_stop=early_stop)
         outcome.notes[:0] = notes
         return outcome
@@ -311,13 +257,111 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
         lock.release()
 
 
+def _start_folder(base, name, out):
+    """A hidden folder, named only once it can be resumed (`journal.start_folder`), locked."""
+    try:
+        folder = J.start_folder(Path(base), name, out)
+    except OSError as e:
+        if is_disk_full(e):
+            raise _no_room_to_start(base, out) from None
+        raise
+    try:
+        return folder, J.FolderLock(folder)
+    except BaseException as e:
+        J.discard_start(folder)
+        if is_disk_full(e):
+            raise _no_room_to_start(base, out) from None
+        raise
+
+
+def _session_record(exp, plan, seed, scheduler, budget_s) -> dict:
+    """What ``session.json`` says at the start of a run."""
+    exp_dir = (str(Path(exp.path).resolve().parent) if exp.path != "<string>"
+               else os.getcwd())
+    session = {
+        "benchharness_version": version(),
+        "seed": plan.seed,
+        "seed_drawn": exp.seed is None and seed is None,
+        "order": plan.order,
+        "experiment_path": str(exp.path),
+        "experiment_dir": exp_dir,
+        "cwd": os.getcwd(),
+        "argv": sys.argv,
+        "started_at": J.utc_iso(),
+        "state": "running",
+        "runs_planned": len(plan.runs),
+        "roles": _roles(exp),
+        "experiment_sha256": J.experiment_digest(exp.source_text),
+    }
+    if scheduler:
+        session["scheduler"] = scheduler
+    if budget_s is not None:
+        session["budget_s"] = budget_s
+    return session
+
+
+def _write_new_folder(folder, base, out, exp, plan, session, host, scheduler) -> Path:
+    """Write the frozen inputs, then give the folder its name; nothing is left
+    behind when that fails (nothing was measured in it)."""
+    published = False
+    try:
+        J.write_atomic(folder / "experiment.yaml", exp.source_text)
+        J.write_plan_csv(folder, exp.factor_names, plan.rows())
+        if plan.info:
+            J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1, default=str))
+        J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+        host.folder = folder
+        if scheduler:
+            host()
+        (folder / "runs.jsonl").touch()
+        J.fsync_dir(folder)
+        folder = J.publish_folder(folder, Path(base), exp.name, out)
+        host.folder = folder
+        published = True
+        return folder
+    except BaseException as e:
+        if not published:
+            J.discard_start(folder)
+        if is_disk_full(e):
+            raise _no_room_to_start(base, out) from None
+        raise
+
+
 def resume_experiment(folder, executor=None, progress: Progress | None = None,
                       scheduler: str | None = None, same_host_ok: bool = False,
                       early_stop: bool = False) -> RunOutcome:
     """Continue an interrupted results folder; never records a run twice."""
-    from benchharness.experiment.file import load_experiment
-
     folder = Path(folder)
+    lock = _lock_for_resume(folder)
+    try:
+        notes = []
+        killed = J.kill_leftover(folder)
+        if killed:
+            notes.append(killed)
+        exp, session, planned, records = _resume_state(folder, notes)
+        try:
+            facts = json.loads((folder / "host.json").read_text())
+        except (OSError, json.JSONDecodeError):
+            facts = {}
+        done = {int(r["run"]) for r in records}
+        if scheduler:
+            from benchharness.execute.cluster import execute_on_cluster
+
+            outcome = execute_on_cluster(folder, exp, planned, done, session, progress,
+                                         facts.get("coordinator", facts), scheduler,
+                                         same_host_ok=same_host_ok, prior=records,
+                                         known_hosts=facts.get("hosts"))
+        else:
+            planned, gate = _resume_stopping_rule(folder, exp, session, planned)
+            outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
+                               prior=records, stop_check=gate, early_stop=early_stop)
+        outcome.notes[:0] = notes
+        return outcome
+    finally:
+        lock.release()
+
+
+def _lock_for_resume(folder: Path):
     if folder.is_dir() and not J.is_results_folder(folder) and not any(folder.iterdir()):
         raise ResultsFolderError(f"{folder}: is empty: the run that made it was stopped before "
                                  "it wrote anything, so nothing was measured; start it again "
@@ -328,72 +372,51 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
                                  "made")
     try:
         J.check_writable(folder)
-        lock = J.FolderLock(folder)
+        return J.FolderLock(folder)
     except OSError as e:
         if is_disk_full(e):
             raise disk_full_error(folder, e) from None
         raise
+
+
+def _resume_state(folder: Path, notes: list):
+    """The frozen experiment, the session (marked running again), the plan and the journal."""
+    from benchharness.experiment.file import load_experiment
+
+    exp = load_experiment(folder / "experiment.yaml")
+    session = J.read_session(folder)
+    J.check_frozen(folder, exp, session)
+    planned = J.read_plan_csv(folder, exp.factor_names)
+    J.check_levels(folder, exp, planned)
+    records = J.read_journal(folder / "runs.jsonl", repair=True, notes=notes)
+    J.check_levels(folder, exp, records)
+    session["state"] = "running"
+    session.setdefault("resumed_at", []).append(J.utc_iso())
     try:
-        notes = []
-        killed = J.kill_leftover(folder)
-        if killed:
-            notes.append(killed)
-        exp = load_experiment(folder / "experiment.yaml")
-        session = J.read_session(folder)
-        J.check_frozen(folder, exp, session)
-        planned = J.read_plan_csv(folder, exp.factor_names)
-        J.check_levels(folder, exp, planned)
-        records = J.read_journal(folder / "runs.jsonl", repair=True, notes=notes)
-        J.check_levels(folder, exp, records)
-        done = {int(r["run"]) for r in records}
-        session["state"] = "running"
-        session.setdefault("resumed_at", []).append(J.utc_iso())
-        try:
-            J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
-        except OSError as e:
-            if is_disk_full(e):
-                raise disk_full_error(folder, e, len(planned)) from None
-            raise
-        try:
-            facts = json.loads((folder / "host.json").read_text())
-        except (OSError, json.JSONDecodeError):
-            facts = {}
-        if scheduler:
-            from benchharness.execute.cluster import execute_on_cluster
-
-            outcome = execute_on_cluster(folder, exp, planned, done, session, progress,
-                                         facts.get("coordinator", facts), scheduler,
-                                         same_host_ok=same_host_ok, prior=records,
-                                         known_hosts=facts.get("hosts"))
-        else:
-            gate = None
-            if session.get("stopped"):
-                # A stopping rule or budget ended this folder: never run past it.
-                last = int(session["stopped"]["replicates"])
-                planned = [pr for pr in planned
-                           if pr["warmup"] or int(pr["replicate"]) <= last]
-            else:
-                from benchharness.design.sequential import ReplicateGate
-                from benchharness.design.adaptive import adaptive_rule
-
-                rule = adaptive_rule(exp)
-                if rule is not None or session.get("budget_s") is not None:
-                    cells = list({tuple(sorted(pr["levels"].items())): pr["levels"]
-                                  for pr in planned}.values())
-                    gate = ReplicateGate(folder, {f.name: list(f.labels) for f in exp.factors},
-                                         cells, rule, session.get("budget_s"))
-            outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
-                               prior=records, stop_check=gate, early_stop=early_stop)
-        outcome.notes[:0] = notes
-        return outcome
-    finally:
-        lock.release()
+        J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
+    except OSError as e:
+        if is_disk_full(e):
+            raise disk_full_error(folder, e, len(planned)) from None
+        raise
+    return exp, session, planned, records
 
 
-def _version() -> str:
-    from benchharness import __version__
+def _resume_stopping_rule(folder: Path, exp, session: dict, planned: list):
+    """The runs a resume may still make, and the stopping rule that goes on deciding."""
+    if session.get("stopped"):
+        # A stopping rule or budget ended this folder: never run past it.
+        last = int(session["stopped"]["replicates"])
+        return [pr for pr in planned if pr["warmup"] or int(pr["replicate"]) <= last], None
+    from benchharness.design.adaptive import adaptive_rule
+    from benchharness.design.sequential import ReplicateGate
 
-    return __version__
+    rule = adaptive_rule(exp)
+    if rule is None and session.get("budget_s") is None:
+        return planned, None
+    cells = list({tuple(sorted(pr["levels"].items())): pr["levels"]
+                  for pr in planned}.values())
+    return planned, ReplicateGate(folder, {f.name: list(f.labels) for f in exp.factors},
+                                  cells, rule, session.get("budget_s"))
 
 
 def check_controls(exp, runs) -> None:
@@ -411,487 +434,233 @@ def check_controls(exp, runs) -> None:
                 resolve_cell(exp, controls, levels)
 
 
-class _CellCache:
-    """Rendered command, environment and steps per cell (computed once per cell)."""
-
-    def __init__(self, exp, session: Mapping, extra_env: Mapping[str, str] | None = None):
-        from benchharness.execute.controls import parse_controls
-
-        self.exp = exp
-        self.factor_names = tuple(exp.factor_names)
-        self.cache: dict[tuple, dict] = {}
-        self.controls = parse_controls(exp)
-        if self.controls.clean_env:
-            from benchharness.execute.envs import clean_environment
-
-            self.base_env = clean_environment(os.environ)
-        else:
-            self.base_env = dict(os.environ)
-        self.exp_dir = session.get("experiment_dir") or os.getcwd()
-        self.cwd = session.get("cwd") or os.getcwd()
-
-    def get(self, levels: Mapping[str, str]) -> dict:
-        key = tuple([levels[f] for f in self.factor_names])
-        c = self.cache.get(key)
-        if c is None:
-            exp = self.exp
-            env_over = exp.render_env(levels)
-            env = dict(self.base_env)
-            env.update(env_over)
-            wd = exp.render_workdir(levels)
-            cwd = self.cwd if wd is None else str(Path(self.exp_dir, wd))
-            argv, shell = exp.render_command(exp.command, levels)
-            from benchharness.execute.controls import resolve_cell
-
-            ctl = resolve_cell(exp, self.controls, levels)
-            c = {"cpus": ctl["cpus"], "nice": ctl["nice"], "no_aslr": self.controls.aslr_off,
-                 "argv": argv, "shell": shell, "env": env, "env_over": env_over, "cwd": cwd,
-                 "label": " ".join(f"{k}={v}" for k, v in levels.items())}
-            for step in ("build", "reset", "teardown"):
-                t = getattr(exp, step)
-                c[step] = exp.render_command(t, levels) if t is not None else None
-            self.cache[key] = c
-        return c
-
-
-def _spec(argv_shell, c: dict, timeout_s, run_id=None, levels=None, env=None,
-          inflight_path=None) -> RunSpec:
-    argv, shell = argv_shell
-    return RunSpec(argv=argv, shell_command=shell, env=env or c["env"], cwd=c["cwd"],
-                   timeout_s=timeout_s, run_id=run_id, levels=levels or {},
-                   cpus=c["cpus"], nice=c["nice"], no_aslr=c["no_aslr"],
-                   inflight_path=inflight_path)
-
-
-def _short(m: Measurement) -> str:
-    if m.message:
-        return m.message
-    if m.status == "timeout":
-        return "timed out"
-    return f"exit code {m.exit_code}"
-
-
-def _record(pr: Mapping, m: Measurement | None, status: str, message: str) -> dict:
-    rec = {"run": pr["run"], "position": pr["position"], "block": pr["block"],
-           "replicate": pr["replicate"], "levels": pr["levels"], "status": status,
-           "exit_code": m.exit_code if m else None}
-    for f in USAGE_FIELDS:
-        rec[f] = getattr(m, f) if m else None
-    rec["started_at"] = m.started_at if m and m.started_at else J.utc_iso()
-    rec["message"] = message
-    if m is not None and m.extra:
-        for k, v in m.extra.items():
-            if k == "metrics":
-                rec["metrics"] = v
-            else:
-                rec[k] = v
-    return rec
-
-
-def _outcome(pr: Mapping, m: Measurement) -> tuple[str, str]:
-    """The status and message recorded for planned run ``pr`` that measured ``m``."""
-    status = m.status
-    message = m.message if m.status != "ok" else (m.message or "")
-    if pr["warmup"]:
-        if m.status != "ok":
-            message = f"warm-up run {m.status}: {_short(m)}"
-        status = "warmup"
-    return status, message
-
-
-#: Runs up to which the records of queued runs are kept for runs.csv (`JournalMirror`).
-MIRROR_LIMIT = 200_000
-
-
-def _stream_runs(executor, jr, todo: Sequence[Mapping], cells, timeout_s, inflight_path,
-                 fields, counts: dict, progress, on_tick, mirror: J.JournalMirror | None = None,
-                 watch=None) -> str | None:
-    """Run ``todo`` as queued runs: the launcher runs them back to back and
-    journals each run that ends ok itself; the harness records the others
-    (the launcher waits for that), counts, and shows progress.
-
-    Only for experiments whose runs need nothing from the harness between
-    them (no build, reset or teardown, no quality sections, no padding, no
-    cold cache, no stopping rule); the journal is the same as the one-by-one
-    path writes. The launcher reports journalled runs in batches (64 runs or
-    20 ms, and whenever it runs out of work), so the harness wakes a few dozen
-    times a second at most, not once per run.
-
-    ``watch``: an `early_stop.FirstRunsWatch`; when it says stop, the failed
-    run is recorded, the launcher (holding the queue for it) drops the rest,
-    and the reason is returned.
-    """
-    from benchharness.measure.host import freq_files
-
-    by_key: dict = {}
-    i = 0
-    with executor.open_stream(jr.path, freq_files(), fields) as stream:
-        batch = 8  # a small first batch: the first run starts without waiting for the rest
-        while i < len(todo) or stream.outstanding:
-            limit = i + batch
-            batch = 512
-            while i < len(todo) and i < limit and stream.room():
-                pr = todo[i]
-                c = cells.get(pr["levels"])
-                spec = _spec((c["argv"], c["shell"]), c, timeout_s, run_id=pr["run"],
-                             levels=pr["levels"], inflight_path=inflight_path)
-                stream.submit(spec, pr["run"],
-                              J.record_head(pr, "warmup" if pr["warmup"] else "ok"))
-                by_key[pr["run"]] = (pr, c)
-                i += 1
-            stream.flush()
-            if i < len(todo) and stream.room():
-                continue  # more to queue first (the first small batch is already running)
-            events = stream.events(timeout_s=0.25)
-            stop = None
-            for ev in events:
-                pr, c = by_key.pop(ev.key)
-                if ev.written:
-                    # the record the launcher wrote (the same fields, values and order)
-                    status = "warmup" if pr["warmup"] else "ok"
-                    rec = _record(pr, ev.measurement, status, "")
-                    if fields:
-                        rec.update(fields)
-                else:
-                    status, message = _outcome(pr, ev.measurement)
-                    rec = _record(pr, ev.measurement, status, message)
-                    if fields:
-                        rec.update(fields)
-                    jr.append(rec)
-                    why = watch.observe(rec) if watch is not None else None
-                    if why:
-                        stop = why   # the queue stays held: nothing more starts
-                    else:
-                        stream.release()
-                if mirror is not None:
-                    mirror.add(rec)
-                counts[status] = counts.get(status, 0) + 1
-                progress.advance(rec, c["label"])
-            if stop:
-                for ev in stream.close():   # journalled before the drop took effect
-                    pr, c = by_key.pop(ev.key)
-                    status = "warmup" if pr["warmup"] else "ok"
-                    rec = _record(pr, ev.measurement, status, "")
-                    if fields:
-                        rec.update(fields)
-                    if mirror is not None:
-                        mirror.add(rec)
-                    counts[status] = counts.get(status, 0) + 1
-                return stop
-            on_tick()
-    return None
-
+# ---------------------------------------------------------------------------
+# The plan's runs on this machine, in order, through the run engine.
 
 def _execute(folder: Path, exp, planned: Sequence[Mapping], done: set, session: dict,
              executor, progress: Progress | None, facts: dict, prior=(),
              stop_check=None, host_check=None, own_executor: bool = False,
              early_stop: bool = False) -> RunOutcome:
+    """Run the planned runs not in ``done`` (see `_LocalRun`)."""
     if executor is None:
         own_executor = True
         executor = default_executor()
-    progress = progress or Progress()
-    cells = _CellCache(exp, session)
-    jr = J.Journal(folder)
-    builds: dict[tuple, tuple[bool, str]] = {}
-    counts: dict[str, int] = {}
-    for r in prior:
-        counts[r["status"]] = counts.get(r["status"], 0) + 1
-    todo = [pr for pr in planned if int(pr["run"]) not in done]
-    interrupted = False
-    watch = None
-    if early_stop:
-        from benchharness.execute.early_stop import FirstRunsWatch
+    run = _LocalRun(folder, exp, planned, done, session, as_executor(executor),
+                    progress or Progress(), facts, prior, stop_check, host_check, own_executor,
+                    early_stop)
+    return run.execute()
 
-        watch = FirstRunsWatch(pr["levels"] for pr in todo)
-    stopped_early = None
-    disk_full = None
-    progress.start(len(planned), len(planned) - len(todo), folder)
-    from benchharness.measure.quality import RunQuality
 
-    quality = RunQuality(exp, folder)
-    distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
-    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
-    own_pids = [p for p in (getattr(executor, "launcher_pid", None),) if p]
+class _LocalRun:
+    """One pass over the plan's remaining runs: set up, loop, clean up, finish.
 
-    def host_warnings_now():
+    ``stop_check``: a stopping rule asked before each run (`design.sequential`);
+    ``host_check``: the new folder's host check, called once its sample is due;
+    ``early_stop``: stop once the first runs of every cell failed the same way.
+    """
+
+    def __init__(self, folder, exp, planned, done, session, executor, progress, facts, prior,
+                 stop_check, host_check, own_executor, early_stop):
+        self.folder, self.exp, self.planned, self.done = folder, exp, planned, done
+        self.session, self.executor, self.progress, self.facts = session, executor, progress, facts
+        self.prior, self.stop_check, self.host_check = prior, stop_check, host_check
+        self.own_executor = own_executor
+        self.todo = [pr for pr in planned if int(pr["run"]) not in done]
+        self.watch = None
+        if early_stop:
+            from benchharness.execute.early_stop import FirstRunsWatch
+
+            self.watch = FirstRunsWatch(pr["levels"] for pr in self.todo)
+        self.stopped_early = None
+        self.interrupted = False
+        self.disk_full = None
+        self.stop_notes: list = []
+        self.mirror = None
+        self.shown: list = []   # finished runs whose progress waits for the next run's start
+        self.host_due = getattr(host_check, "due", 0.0) if host_check is not None else 0.0
+        self.pending_host = True
+
+    # -- set up ----------------------------------------------------------------
+
+    def _start(self) -> None:
+        from benchharness.execute.cells import CellCache
+
+        self.jr = J.Journal(self.folder)
+        self.progress.start(len(self.planned), len(self.planned) - len(self.todo), self.folder)
+        cells = CellCache(self.exp, self.session)
+        self.quality = start_quality(self.exp, self.folder, cells, self.planned)
+        if time.monotonic() >= self.host_due:
+            self._host_warnings_now()
+        for note in self.quality.notes:
+            self.progress.note(note)
+        self.quality.notes.clear()
+        self.engine = RunEngine(self.exp, self.folder, self.session, self.executor, self.jr,
+                                quality=self.quality, cells=cells, resumed=len(self.done),
+                                note=self.progress.note)
+        for r in self.prior:
+            self.engine.count(r["status"])
+
+    def _host_warnings_now(self) -> None:
         # host_check: the run's host check, due once its busy-process sample has
         # lasted long enough; runs may already have started (warn mode only).
-        if host_check is not None:
-            host_check(own_pids)
-        if not done:  # a fresh folder: show the host warnings found at its start
-            for w in facts.get("warnings") or []:
+        self.pending_host = False
+        if self.host_check is not None:
+            pid = self.executor.launcher_pid
+            self.host_check([pid] if pid else [])
+        if not self.done:  # a fresh folder: show the host warnings found at its start
+            for w in self.facts.get("warnings") or []:
                 if isinstance(w, dict) and w.get("severity") == "warning":
-                    progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
+                    self.progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
 
-    host_due = getattr(host_check, "due", 0.0) if host_check is not None else 0.0
-    pending_host = True
-    if time.monotonic() >= host_due:
-        host_warnings_now()
-        pending_host = False
-    for note in quality.notes:
-        progress.note(note)
-    quality.notes.clear()
-    timeout_s = exp.timeout_s
-    inflight_pgid = [None]
-    controls = cells.controls
-    pad_rng = None
-    if controls.pad_env:
-        import numpy as np
+    def _tick(self) -> None:
+        if self.pending_host and time.monotonic() >= self.host_due:
+            self._host_warnings_now()
 
-        from benchharness.execute.envs import pad_environment
+    # -- the loop ----------------------------------------------------------------
 
-        # Seeded from the plan's seed and the runs already done, so a resumed
-        # folder continues with fresh (not repeated) padding lengths.
-        pad_rng = np.random.default_rng([int(session.get("seed") or 0), len(done), 7])
-    aslr_value = None
-    if controls.aslr_off:
-        ok = getattr(executor, "aslr_control", True)
-        aslr_value = "off" if ok else "on"
-        if not ok:
-            progress.note("note: ASLR stays on: " + getattr(executor, "aslr_reason",
-                                                           "the kernel does not allow it"))
-    cold_ok = None
-
-    inflight_path = str(folder / "inflight")
-    records_start = getattr(executor, "records_inflight", False)
-
-    def on_start_for(run_id):
-        def cb(pid, pgid):
-            from benchharness.execute.procs import start_ticks
-
-            t = start_ticks(pgid) if pgid and pgid > 1 else None
-            inflight_pgid[0] = (pgid, t) if t is not None else None
-            jr.mark_inflight(run_id, pid, pgid, (t, t) if t is not None else None)
-        return cb
-
-    # While a run executes, the harness prepares the next run's spec and samples
-    # this run's conditions (executors that support it), so that only the
-    # journal line lies between one run's end and the next one's request.
-    overlap = bool(getattr(executor, "supports_while_running", False))
-    ahead: dict = {}   # run id -> (RunSpec, request) made while the run before it executed
-    prepare_request = getattr(executor, "prepare_request", None) if overlap else None
-
-    def spec_for(pr, c, run_env):
-        return _spec((c["argv"], c["shell"]), c, timeout_s, run_id=pr["run"],
-                     levels=pr["levels"], env=run_env,
-                     inflight_path=inflight_path if records_start else None)
-
-    shown: list = []   # finished runs whose progress update waits for the next run's start
-
-    def show_progress():
-        while shown:
-            rec, label = shown.pop(0)
-            progress.advance(rec, label)
-
-    def while_running_for(index, qtoken):
-        def cb():
-            try:
-                quality.sample(qtoken)
-                show_progress()
-                if pad_rng is None and index + 1 < len(todo):
-                    nxt = todo[index + 1]
-                    ahead.clear()
-                    nspec = spec_for(nxt, cells.get(nxt["levels"]), None)
-                    ahead[nxt["run"]] = (nspec, prepare_request(nspec)
-                                         if prepare_request is not None else None)
-            except Exception:  # noqa: BLE001 - done again, and reported, on the main path
-                ahead.clear()
-        return cb
-
-    stop_notes = []
-    mirror = None
-    streamed = (records_start and hasattr(executor, "open_stream") and quality.fast
-                and stop_check is None and pad_rng is None and not controls.cold_cache
-                and exp.build is None and exp.reset is None and exp.teardown is None)
-
-    def on_tick():
-        nonlocal pending_host
-        if pending_host and time.monotonic() >= host_due:
-            pending_host = False
-            host_warnings_now()
-
-    try:
-        if streamed:
-            one_by_one = ()  # all of them queued
-            mirror = J.JournalMirror(jr.path, MIRROR_LIMIT, exp.factor_names, prior)
-            stopped_early = _stream_runs(
-                executor, jr, todo, cells, timeout_s, inflight_path,
-                {"aslr": aslr_value} if aslr_value is not None else None,
-                counts, progress, on_tick, mirror, watch)
-        else:
-            one_by_one = todo
-        for index, pr in enumerate(one_by_one):
-            if pending_host and time.monotonic() >= host_due:
-                pending_host = False
-                host_warnings_now()
-            if stop_check is not None:
-                why = stop_check.before_run(pr)
-                if why:
-                    stop_notes.append(why)
-                    break
-            levels = pr["levels"]
-            c = cells.get(levels)
-            if shown and (c["build"] is not None or c["reset"] is not None):
-                show_progress()
-            status = None
-            message = ""
-            m = None
-            if c["build"] is not None:
-                bkey = (c["build"], c["cwd"], tuple(sorted(c["env_over"].items())))
-                if bkey not in builds:
-                    bm = executor.execute(_spec(c["build"], c, None, levels=levels))
-                    ok = bm.status == "ok"
-                    builds[bkey] = (ok, "" if ok else
-                                    f"build failed: {_short(bm)}"
-                                    + ("" if bm.message else
-                                       _tail(bm.stderr_tail or bm.stdout_tail)))
-                ok, bmsg = builds[bkey]
-                if not ok:
-                    status, message = "failed", bmsg
-            if status is None and c["reset"] is not None and not pr["warmup"]:
-                rm = executor.execute(_spec(c["reset"], c, timeout_s, levels=levels))
-                if rm.status != "ok":
-                    status, message = "failed", f"reset failed: {_short(rm)}"
-            pad_bytes = None
-            run_env = None
-            if status is None and pad_rng is not None:
-                run_env, pad_bytes = pad_environment(c["env"], pad_rng)
-            if status is None and controls.cold_cache and not pr["warmup"] and cold_ok is not False:
-                from benchharness.execute.noise import drop_page_cache
-
-                ok, why = drop_page_cache()
-                if not ok and cold_ok is None:
-                    progress.note(f"note: cold-cache mode is off for this run: {why}")
-                    session["cold_cache"] = f"not possible: {why}"
-                cold_ok = ok
-                if ok:
-                    session["cold_cache"] = "page cache dropped before each timed run"
-            if status is None:
-                spec0, req = ahead.pop(pr["run"], (None, None)) if run_env is None else \
-                    (None, None)
-                if spec0 is None:
-                    spec0 = spec_for(pr, c, run_env)
-                spec, qtoken = quality.prepare(spec0, levels, c, sample_later=overlap)
-                if records_start:
-                    # The executor records the child itself: no harness wake-up mid-run.
-                    if overlap:
-                        cb = while_running_for(index, qtoken)
-                        if req is not None and spec is spec0:
-                            m = executor.execute(spec, while_running=cb, prepared=req)
-                        else:
-                            m = executor.execute(spec, while_running=cb)
-                    else:
-                        m = executor.execute(spec)
-                else:
-                    m = executor.execute(spec, on_start=on_start_for(pr["run"]))
-                inflight_pgid[0] = None
-                m = quality.finish(qtoken, pr, m)  # expect, metrics, samples, perf counts
-                status, message = _outcome(pr, m)
-                if c["teardown"] is not None:
-                    tm = executor.execute(_spec(c["teardown"], c, timeout_s, levels=levels))
-                    if tm.status != "ok":
-                        message = (message + "; " if message else "") + \
-                            f"teardown failed: {_short(tm)}"
-            if pr["warmup"] and status != "warmup":
-                message = f"warm-up run not done: {message}"
-                status = "warmup"
-            rec = _record(pr, m, status, message)
-            if pad_bytes is not None:
-                rec["pad_env_bytes"] = pad_bytes
-            if aslr_value is not None:
-                rec["aslr"] = aslr_value
-            jr.append(rec)
-            counts[status] = counts.get(status, 0) + 1
-            if watch is not None:
-                stopped_early = watch.observe(rec)
-            if overlap:
-                # shown while the next run executes: the bar is not on the path
-                # from one run's end to the next one's start
-                shown.append((rec, c["label"]))
-            else:
-                progress.advance(rec, c["label"])
-            if stopped_early:
-                break
-        else:
-            if stop_check is not None:
-                final = stop_check.finish()
-                if final:
-                    stop_notes.append(final)
-        jr.clear_inflight()
-    except KeyboardInterrupt:
-        interrupted = True
-        if inflight_pgid[0]:
-            from benchharness.execute.procs import kill_group_checked
-
-            pg, t = inflight_pgid[0]
-            kill_group_checked(pg, t, t)  # only while it is still the run's group
-        jr.clear_inflight()
-    except ExecutionError as e:
-        # The launcher died (killed, crashed): its run was stopped by the
-        # executor where it could be identified; what finished is recorded.
-        note = getattr(executor, "stopped_runs", None)
-        raise ExecutionError(f"{e}{'; ' + note if note else ''}; the runs that finished are "
-                             f"recorded: continue with `benchharness run --resume {folder}`"
-                             ) from None
-    except OSError as e:
-        if not is_disk_full(e):
-            raise
-        disk_full = e  # said once the journal is closed (below); the journal holds whole lines
-    finally:
-        if mirror is not None and sys.exc_info()[0] is not None:
-            mirror.drop()  # an error is on its way out: no half runs.csv stays behind
+    def execute(self) -> RunOutcome:
+        self._start()
         try:
-            show_progress()
+            self._loop()
+            self.jr.clear_inflight()
+        except KeyboardInterrupt:
+            self.interrupted = True
+            self.engine.stop_inflight()
+            self.jr.clear_inflight()
+        except ExecutionError as e:
+            # The launcher died (killed, crashed): its run was stopped by the
+            # executor where it could be identified; what finished is recorded.
+            note = self.executor.stopped_runs
+            raise ExecutionError(f"{e}{'; ' + note if note else ''}; the runs that finished "
+                                 "are recorded: continue with `benchharness run --resume "
+                                 f"{self.folder}`") from None
+        except OSError as e:
+            if not is_disk_full(e):
+                raise
+            self.disk_full = e  # said once the journal is closed; it holds whole lines
+        finally:
+            self._clean_up(failing=sys.exc_info()[0] is not None)
+        return self._finish()
+
+    def _loop(self) -> None:
+        eng = self.engine
+        if eng.can_queue(self.stop_check is not None):
+            self.mirror = J.JournalMirror(self.jr.path, MIRROR_LIMIT, self.exp.factor_names,
+                                          self.prior)
+            self.stopped_early = eng.run_queued(self.todo, self.progress, self._tick,
+                                                self.mirror, self.watch)
+            self._stopping_rule_done()
+            return
+        for index, pr in enumerate(self.todo):
+            self._tick()
+            if self._stopping_rule_says(pr):
+                return
+            if self._one(pr, index):
+                return
+        self._stopping_rule_done()
+
+    def _stopping_rule_says(self, pr) -> bool:
+        if self.stop_check is None:
+            return False
+        why = self.stop_check.before_run(pr)
+        if why:
+            self.stop_notes.append(why)
+        return bool(why)
+
+    def _stopping_rule_done(self) -> None:
+        if self.stop_check is not None and not self.stopped_early:
+            final = self.stop_check.finish()
+            if final:
+                self.stop_notes.append(final)
+
+    def _one(self, pr, index: int) -> bool:
+        """Run one planned run through the engine; True when the run must stop early."""
+        eng = self.engine
+        c = eng.cells.get(pr["levels"])
+        if self.shown and (c["build"] is not None or c["reset"] is not None):
+            self._show_progress()
+        nxt = self.todo[index + 1] if index + 1 < len(self.todo) else None
+        rec = eng.run(pr, next_pr=nxt, during=self._show_progress)
+        if self.watch is not None:
+            self.stopped_early = self.watch.observe(rec)
+        if eng.overlap:
+            # shown while the next run executes: the bar is not on the path
+            # from one run's end to the next one's start
+            self.shown.append((rec, c["label"]))
+        else:
+            self.progress.advance(rec, c["label"])
+        return bool(self.stopped_early)
+
+    def _show_progress(self) -> None:
+        while self.shown:
+            rec, label = self.shown.pop(0)
+            self.progress.advance(rec, label)
+
+    # -- clean up and finish -------------------------------------------------------
+
+    def _clean_up(self, failing: bool) -> None:
+        if self.mirror is not None and failing:
+            self.mirror.drop()  # an error is on its way out: no half runs.csv stays behind
+        try:
+            self._show_progress()
         except Exception:  # noqa: BLE001 - a display problem must not lose the journal
             pass
-        if pending_host:  # fewer runs than the sample's interval: finish it now
-            pending_host = False
+        if self.pending_host:  # fewer runs than the sample's interval: finish it now
             try:
-                host_warnings_now()
+                self._host_warnings_now()
             except Exception:  # noqa: BLE001 - host.json stays without warnings
                 pass
-        progress.stop()
-        jr.close()
+        self.progress.stop()
+        self.jr.close()
         try:
-            quality.close()
+            self.quality.close()
         except OSError as e:
-            if not is_disk_full(e) or sys.exc_info()[0] is not None:
+            if not is_disk_full(e) or failing:
                 raise
-            disk_full = disk_full or e
-        if own_executor:
+            self.disk_full = self.disk_full or e
+        if self.own_executor:
             try:
-                executor.close()
+                self.executor.close()
             except Exception:  # noqa: BLE001 - the launcher may already be gone after ^C
                 pass
-    if disk_full is not None:
-        if mirror is not None:
-            mirror.drop()
-        raise disk_full_error(folder, disk_full, len(planned))
-    if stop_check is not None and stop_check.stopped:
-        session["stopped"] = stop_check.stopped
-    if stopped_early:
-        session.setdefault("stopped_early", []).append(
-            {"reason": stopped_early, "at": J.utc_iso()})
-    known = None
-    csv_ready = False
-    if mirror is not None:
-        if not interrupted and len(prior) + len(todo) <= MIRROR_LIMIT:
-            new = mirror.verified()
-            if new is not None and len(new) == len(todo):
-                known = [*prior, *new]
-                csv_ready = mirror.commit_csv(known)
-        mirror.drop()
-    try:
-        outcome = finalize(folder, exp, session, facts, counts, len(planned), interrupted,
-                           quality=quality, records=known, runs_csv_written=csv_ready,
-                           state="stopped early" if stopped_early else None)
-    except OSError as e:
-        if not is_disk_full(e):
-            raise
-        raise disk_full_error(folder, e, len(planned)) from None
-    outcome.notes.extend(stop_notes)
-    outcome.stopped_early = stopped_early
-    return outcome
+
+    def _finish(self) -> RunOutcome:
+        if self.disk_full is not None:
+            if self.mirror is not None:
+                self.mirror.drop()
+            raise disk_full_error(self.folder, self.disk_full, len(self.planned))
+        if self.stop_check is not None and self.stop_check.stopped:
+            self.session["stopped"] = self.stop_check.stopped
+        if self.stopped_early:
+            self.session.setdefault("stopped_early", []).append(
+                {"reason": self.stopped_early, "at": J.utc_iso()})
+        known, csv_ready = self._mirrored_records()
+        try:
+            outcome = finalize(self.folder, self.exp, self.session, self.facts,
+                               self.engine.counts, len(self.planned), self.interrupted,
+                               quality=self.quality, records=known, runs_csv_written=csv_ready,
+                               state="stopped early" if self.stopped_early else None)
+        except OSError as e:
+            if not is_disk_full(e):
+                raise
+            raise disk_full_error(self.folder, e, len(self.planned)) from None
+        outcome.notes.extend(self.stop_notes)
+        outcome.stopped_early = self.stopped_early
+        return outcome
+
+    def _mirrored_records(self):
+        """The journal's records kept while queued runs went, and whether runs.csv is written."""
+        if self.mirror is None:
+            return None, False
+        known, csv_ready = None, False
+        n = len(self.prior) + len(self.todo)
+        if not self.interrupted and n <= MIRROR_LIMIT:
+            new = self.mirror.verified()
+            if new is not None and len(new) == len(self.todo):
+                known = [*self.prior, *new]
+                csv_ready = self.mirror.commit_csv(known)
+        self.mirror.drop()
+        return known, csv_ready
 
 
 def _no_room_to_start(base, out) -> DiskFullError:
@@ -918,54 +687,6 @@ def disk_full_error(folder: Path, exc: OSError, planned: int | None = None) -> D
     return DiskFullError(f"the disk is full: no space left on the device holding {folder}{what}; "
                          f"{safe}. Free some space, then continue with "
                          f"`benchharness run --resume {folder}`")
-
-
-def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planned: int,
-             interrupted: bool, host_json: dict | None = None, quality=None,
-             records: list | None = None, runs_csv_written: bool = False,
-             state: str | None = None) -> RunOutcome:
-    """Export runs.csv, record the end state in host.json and session.json.
-
-    The counts by status are taken from the journal, which is the record of
-    what ran (queued runs are journalled by the launcher, and after Ctrl-C the
-    harness may not have heard of the last few yet). ``records``: the journal's
-    records when the caller already holds them, checked against its bytes;
-    ``runs_csv_written``: runs.csv is already in place for them.
-    """
-    if records is None:
-        records = J.read_journal(folder / "runs.jsonl")
-    counts = {}
-    for r in records:
-        counts[r["status"]] = counts.get(r["status"], 0) + 1
-    if not runs_csv_written:
-        J.export_runs_csv(folder, exp.factor_names, records)
-    if quality is not None:
-        quality.close(records)  # steady.json: warm-up classes, executions x iterations advice
-    from benchharness.measure.host import facts_at_end
-
-    facts.update(facts_at_end(facts))
-    J.write_atomic(folder / "host.json", json.dumps(host_json or facts, indent=1, default=str))
-    session["state"] = state or ("interrupted" if interrupted else "complete")
-    session["finished_at"] = J.utc_iso()
-    if not interrupted:
-        try:
-            (folder / "inflight").unlink()
-        except FileNotFoundError:
-            pass
-    J.write_atomic(folder / "session.json", json.dumps(session, indent=1))
-    return RunOutcome(folder=folder, seed=session["seed"], planned=planned, counts=counts,
-                      interrupted=interrupted,
-                      notes=list(quality.notes) if quality is not None else [])
-
-
-def _tail(b: bytes, n: int = 300) -> str:
-    if not b:
-        return ""
-    text = b.decode("utf-8", "replace").strip()
-    if not text:
-        return ""
-    text = text[-n:].replace("\n", " | ")
-    return f" ({text})"
 
 
 # ---------------------------------------------------------------------------

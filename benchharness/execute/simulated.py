@@ -38,7 +38,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from typing import Mapping
 
-from benchharness.execute.base import Measurement, OnStart, RunSpec
+from benchharness.execute.base import Executor, Measurement, OnStart, RunSpec
 
 _EPOCH = datetime(2026, 1, 1, tzinfo=timezone.utc)
 
@@ -106,7 +106,7 @@ class SimulatedModel:
         return math.sqrt(math.log1p(self.cv ** 2))
 
 
-class SimulatedExecutor:
+class SimulatedExecutor(Executor):
     """Executor drawing lognormal run times from a `SimulatedModel`, seeded.
 
     ``SimulatedExecutor(model, seed=7)``; ``execute(spec)`` returns a

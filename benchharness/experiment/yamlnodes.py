@@ -152,15 +152,15 @@ def as_float(node: yaml.Node, what: str, minimum: float | None = None,
     return value
 
 
-_TRUE = {"true", "yes", "on", "True", "TRUE", "Yes", "YES", "On", "ON"}
-_FALSE = {"false", "no", "off", "False", "FALSE", "No", "NO", "Off", "OFF"}
+TRUE_WORDS = {"true", "yes", "on", "True", "TRUE", "Yes", "YES", "On", "ON"}
+FALSE_WORDS = {"false", "no", "off", "False", "FALSE", "No", "NO", "Off", "OFF"}
 
 
 def as_bool(node: yaml.Node, what: str) -> bool:
     text = scalar_text(node, what)
-    if text in _TRUE:
+    if text in TRUE_WORDS:
         return True
-    if text in _FALSE:
+    if text in FALSE_WORDS:
         return False
     raise node_error(node, f"{what} must be true or false, not {text!r}")
 

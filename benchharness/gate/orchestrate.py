@@ -109,136 +109,179 @@ def run_gate(workloads: Mapping[str, Mapping[str, str]], make_spec: SpecMaker, e
     to (response, status) of earlier baseline runs; when given, no baseline runs
     are made.
     """
-    import numpy as np
+    loop = _GateLoop(workloads, make_spec, executor, settings, response, seed, on_record,
+                     stored_baseline)
+    loop.warm_up(warmup)
+    loop.judge_before_blocks()
+    while loop.open_keys:
+        loop.one_round()
+    return loop.outcome()
 
-    rng = np.random.default_rng(seed)
-    keys = list(workloads)
-    m = len(keys)
-    roles = [CANDIDATE] if stored_baseline is not None else [BASELINE, CANDIDATE]
-    budget = {k: settings.max_runs for k in keys}
-    warnings: list[str] = []
-    if stored_baseline is not None:
-        for k in keys:
-            have = len(stored_baseline.get(k, ()))
-            if have < settings.max_runs:
-                budget[k] = have
-    counter = {"run": 0, "position": 0}
-    # per (workload, role): [runs made, successful runs, first failure's message]
-    tally: dict[tuple[str, str], list] = {(k, r): [0, 0, ""] for k in keys for r in roles}
 
-    def do(key: str, role: str, block: int, replicate: int, is_warmup: bool) -> Measurement:
-        run_id = counter["run"]
-        counter["run"] += 1
-        spec = make_spec(key, role, run_id, is_warmup)
-        meas = executor.execute(spec)
-        if on_record is not None:
-            on_record({
-                "run": run_id, "position": counter["position"], "block": block,
+class _GateLoop:
+    """The state of one gate loop: which run comes next, and when to stop (see `run_gate`)."""
+
+    def __init__(self, workloads, make_spec, executor, settings: GateSettings, response: str,
+                 seed, on_record, stored_baseline):
+        import numpy as np
+
+        self.workloads, self.make_spec, self.executor = workloads, make_spec, executor
+        self.settings, self.response, self.on_record = settings, response, on_record
+        self.stored_baseline = stored_baseline
+        self.rng = np.random.default_rng(seed)
+        self.keys = list(workloads)
+        self.m = len(self.keys)
+        self.roles = [CANDIDATE] if stored_baseline is not None else [BASELINE, CANDIDATE]
+        self.budget = {k: settings.max_runs for k in self.keys}
+        if stored_baseline is not None:
+            for k in self.keys:
+                have = len(stored_baseline.get(k, ()))
+                if have < settings.max_runs:
+                    self.budget[k] = have
+        self.counter = {"run": 0, "position": 0}
+        # per (workload, role): [runs made, successful runs, first failure's message]
+        self.tally: dict[tuple[str, str], list] = {(k, r): [0, 0, ""] for k in self.keys
+                                                   for r in self.roles}
+        self.blocks: dict[str, list[Block]] = {k: [] for k in self.keys}
+        self.judgements: dict[str, Judgement] = {}
+        self.open_keys = list(self.keys)
+        self.stopped: Judgement | None = None
+        self.warmups = 0
+        self.runs = 0
+        self.block_no = 0
+
+    def do(self, key: str, role: str, block: int, replicate: int,
+           is_warmup: bool) -> Measurement:
+        """Make one run and tally whether it gave a value."""
+        run_id = self.counter["run"]
+        self.counter["run"] += 1
+        spec = self.make_spec(key, role, run_id, is_warmup)
+        meas = self.executor.execute(spec)
+        if self.on_record is not None:
+            self.on_record({
+                "run": run_id, "position": self.counter["position"], "block": block,
                 "replicate": replicate, "workload": key, "role": role,
                 "warmup": is_warmup, "levels": dict(spec.levels), "measurement": meas,
             })
-        counter["position"] += 1
-        t = tally[(key, role)]
+        self.counter["position"] += 1
+        t = self.tally[(key, role)]
         t[0] += 1
-        if meas.status == "ok" and (is_warmup or response_value(meas, response) is not None):
+        if meas.status == "ok" and (is_warmup or
+                                    response_value(meas, self.response) is not None):
             t[1] += 1
         elif not t[2]:
             t[2] = (meas.message or meas.status) if meas.status != "ok" else \
-                f"the run ended ok but gave no value for {response}"
+                f"the run ended ok but gave no value for {self.response}"
         return meas
 
-    def never_ok(key: str, blocks_run: int) -> Judgement | None:
+    def never_ok(self, key: str, blocks_run: int) -> Judgement | None:
         """A never_ok judgement when a build of this workload has not succeeded yet."""
+        settings = self.settings
         broken = []
-        for role in roles:
-            made, good, first = tally[(key, role)]
+        for role in self.roles:
+            made, good, first = self.tally[(key, role)]
             if made >= settings.never_ok_after and good == 0:
                 broken.append(f"the {role} failed all {made} of its runs (first: {first})")
-        if stored_baseline is not None:
-            st = [s for _v, s in stored_baseline.get(key, ())]
+        if self.stored_baseline is not None:
+            st = [s for _v, s in self.stored_baseline.get(key, ())]
             if st and all(s != "ok" for s in st):
                 broken.append(f"the stored baseline has no successful run ({len(st)} runs)")
         if not broken:
             return None
+        done = self.blocks.get(key, [])
         return Judgement(
             verdict="never_ok", blocks=blocks_run, usable_blocks=0, ratio=None, lower=None,
-            upper=None, horizon_blocks=settings.max_runs, alpha=settings.failure_alpha(m),
+            upper=None, horizon_blocks=settings.max_runs, alpha=settings.failure_alpha(self.m),
             reason="; ".join(broken) + "; nothing to compare: fix the command or the build",
-            baseline_failures=sum(b.baseline_status != "ok" for b in blocks.get(key, [])),
-            candidate_failures=sum(b.candidate_status != "ok" for b in blocks.get(key, [])))
+            baseline_failures=sum(b.baseline_status != "ok" for b in done),
+            candidate_failures=sum(b.candidate_status != "ok" for b in done))
 
-    warmups = 0
-    for _ in range(max(0, int(warmup))):
-        for k in [keys[i] for i in rng.permutation(m)]:
-            for role in [roles[i] for i in rng.permutation(len(roles))]:
-                do(k, role, -1, -1, True)
-                warmups += 1
+    def warm_up(self, warmup: int) -> None:
+        """Untimed runs of each build first, workloads and builds in a random order."""
+        for _ in range(max(0, int(warmup))):
+            for k in [self.keys[i] for i in self.rng.permutation(self.m)]:
+                for role in [self.roles[i] for i in self.rng.permutation(len(self.roles))]:
+                    self.do(k, role, -1, -1, True)
+                    self.warmups += 1
 
-    blocks: dict[str, list[Block]] = {k: [] for k in keys}
-    trackers = {k: settings.tracker(m) for k in keys}
-    judgements: dict[str, Judgement] = {}
-    open_keys = [k for k in keys]
-    stopped = None
-    for k in keys:
-        j = never_ok(k, 0)
-        if j is not None:
-            judgements[k] = stopped = j
-            break
-    if stopped is not None:
-        open_keys = []
-    for k in keys:
-        if budget[k] < settings.min_runs and k not in judgements:
-            judgements[k] = Judgement(
-                verdict="inconclusive", blocks=0, usable_blocks=0, ratio=None, lower=None,
-                upper=None, horizon_blocks=budget[k], alpha=(1 - settings.confidence) / m,
-                reason=f"only {budget[k]} stored baseline runs; at least "
-                       f"{settings.min_runs} are needed")
-            if k in open_keys:
-                open_keys.remove(k)
-    block_no = 0
-    runs = 0
-    while open_keys:
-        for k in [open_keys[i] for i in rng.permutation(len(open_keys))]:
-            i = len(blocks[k])
-            got: dict[str, tuple[float | None, str]] = {}
-            for role in [roles[j] for j in rng.permutation(len(roles))]:
-                meas = do(k, role, block_no, i, False)
-                runs += 1
-                got[role] = (response_value(meas, response), meas.status)
-            if stored_baseline is not None:
-                got[BASELINE] = tuple(stored_baseline[k][i])
-            block_no += 1
-            (bv, bs), (cv, cs) = got[BASELINE], got[CANDIDATE]
-            if bs == "ok" and bv is None or cs == "ok" and cv is None:
-                # a run that finished but lacks the response cannot be judged
-                bs = "failed" if bv is None else bs
-                cs = "failed" if cv is None else cs
-            blocks[k].append(Block(bv, cv, bs, cs))
-            stopped = never_ok(k, len(blocks[k]))
-            if stopped is not None:
-                judgements[k] = stopped
-                open_keys = []
+    def judge_before_blocks(self) -> None:
+        """A build that never ran ok in its warm-ups stops the gate; a workload with too
+        few stored baseline runs is inconclusive before it starts."""
+        settings = self.settings
+        self.trackers = {k: settings.tracker(self.m) for k in self.keys}
+        for k in self.keys:
+            j = self.never_ok(k, 0)
+            if j is not None:
+                self.judgements[k] = self.stopped = j
                 break
-            s = settings if budget[k] == settings.max_runs else _with_budget(settings, budget[k])
-            j = judge(blocks[k], s, m, trackers[k])
-            if j.decided:
-                judgements[k] = j
-                open_keys.remove(k)
-    if stopped is not None:
-        for k in keys:
-            if k not in judgements:
-                judgements[k] = Judgement(
-                    verdict="inconclusive", blocks=len(blocks[k]),
-                    usable_blocks=0, ratio=None, lower=None, upper=None,
-                    horizon_blocks=budget[k], alpha=settings.failure_alpha(m),
-                    reason="not judged: the gate stopped because a build never ran "
-                           "successfully")
-        judgements = {k: judgements[k] for k in keys}
-    return GateOutcome(settings=settings, response=response, judgements=judgements,
-                       workload_levels={k: dict(v) for k, v in workloads.items()},
-                       runs=runs, warmups=warmups,
-                       stored_baseline=stored_baseline is not None,
-                       warnings=tuple(warnings))
+        if self.stopped is not None:
+            self.open_keys = []
+        for k in self.keys:
+            if self.budget[k] < settings.min_runs and k not in self.judgements:
+                self.judgements[k] = Judgement(
+                    verdict="inconclusive", blocks=0, usable_blocks=0, ratio=None, lower=None,
+                    upper=None, horizon_blocks=self.budget[k],
+                    alpha=(1 - settings.confidence) / self.m,
+                    reason=f"only {self.budget[k]} stored baseline runs; at least "
+                           f"{settings.min_runs} are needed")
+                if k in self.open_keys:
+                    self.open_keys.remove(k)
+
+    def one_round(self) -> None:
+        """One block of every undecided workload, the workloads in a random order."""
+        for k in [self.open_keys[i] for i in self.rng.permutation(len(self.open_keys))]:
+            if self._block(k):
+                return
+
+    def _block(self, k: str) -> bool:
+        """Both builds back to back in a random order, then judge; True when the gate stops."""
+        i = len(self.blocks[k])
+        got: dict[str, tuple[float | None, str]] = {}
+        for role in [self.roles[j] for j in self.rng.permutation(len(self.roles))]:
+            meas = self.do(k, role, self.block_no, i, False)
+            self.runs += 1
+            got[role] = (response_value(meas, self.response), meas.status)
+        if self.stored_baseline is not None:
+            got[BASELINE] = tuple(self.stored_baseline[k][i])
+        self.block_no += 1
+        (bv, bs), (cv, cs) = got[BASELINE], got[CANDIDATE]
+        if bs == "ok" and bv is None or cs == "ok" and cv is None:
+            # a run that finished but lacks the response cannot be judged
+            bs = "failed" if bv is None else bs
+            cs = "failed" if cv is None else cs
+        self.blocks[k].append(Block(bv, cv, bs, cs))
+        self.stopped = self.never_ok(k, len(self.blocks[k]))
+        if self.stopped is not None:
+            self.judgements[k] = self.stopped
+            self.open_keys = []
+            return True
+        settings = self.settings
+        s = settings if self.budget[k] == settings.max_runs else \
+            _with_budget(settings, self.budget[k])
+        j = judge(self.blocks[k], s, self.m, self.trackers[k])
+        if j.decided:
+            self.judgements[k] = j
+            self.open_keys.remove(k)
+        return False
+
+    def outcome(self) -> GateOutcome:
+        judgements = self.judgements
+        if self.stopped is not None:
+            for k in self.keys:
+                if k not in judgements:
+                    judgements[k] = Judgement(
+                        verdict="inconclusive", blocks=len(self.blocks[k]),
+                        usable_blocks=0, ratio=None, lower=None, upper=None,
+                        horizon_blocks=self.budget[k],
+                        alpha=self.settings.failure_alpha(self.m),
+                        reason="not judged: the gate stopped because a build never ran "
+                               "successfully")
+            judgements = {k: judgements[k] for k in self.keys}
+        return GateOutcome(settings=self.settings, response=self.response,
+                           judgements=judgements,
+                           workload_levels={k: dict(v) for k, v in self.workloads.items()},
+                           runs=self.runs, warmups=self.warmups,
+                           stored_baseline=self.stored_baseline is not None, warnings=())
 
 
 def _with_budget(settings: GateSettings, budget: int) -> GateSettings:

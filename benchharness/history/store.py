@@ -15,7 +15,6 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from benchharness.errors import DataError, UsageError
-from benchharness.history import DEFAULT_DB  # noqa: F401  (re-exported)
 
 SCHEMA_VERSION = 1
 

@@ -241,7 +241,7 @@ def collect_facts() -> dict:
     """Facts of this machine for host.json (null where not exposed)."""
     import psutil
 
-    from benchharness import __version__
+    from benchharness.version import __version__
     from benchharness.results.journal import utc_iso
 
     freq = None
@@ -554,9 +554,9 @@ def host_check_mode(exp) -> str:
     from benchharness.experiment import yamlnodes as yn
 
     text = yn.scalar_text(node, "'host_check'")
-    if text in yn._TRUE:
+    if text in yn.TRUE_WORDS:
         return "warn"
-    if text in yn._FALSE:
+    if text in yn.FALSE_WORDS:
         return "off"
     if text in HOST_CHECK_MODES:
         return text

@@ -51,7 +51,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
     ss_type = data.analysis.get("ss_type") or (data.analysis.get("model") or {}).get("ss_type")
     for r in story.anova_rows(data):
         anova.append({
-            "term": r.get("chain") or r.get("term"), "df": _fmt_df(r.get("df")),
+            "term": r.get("chain") or r.get("term"), "df": fmt_df(r.get("df")),
             "sum_sq": fmt_num(r.get("sum_sq"), 4), "mean_sq": fmt_num(r.get("mean_sq"), 4),
             "F": fmt_num(r.get("F"), 4), "p": fmt_p(r.get("p")),
             "eta": fmt_num(r.get("partial_eta_sq"), 2), "omega": fmt_num(r.get("omega_sq"), 2),
@@ -222,7 +222,7 @@ def _extra_section(sec) -> dict:
     }
 
 
-def _fmt_df(df) -> str:
+def fmt_df(df) -> str:
     if finite(df) and float(df) == int(float(df)):
         return str(int(float(df)))
     return fmt_num(df, 4)

@@ -260,7 +260,7 @@ def collect(source, *, analysis=None, response: str | None = None,
         same_fac = stored.get("factors") is None or _factor_names(stored) == factors
         if same_resp and same_fac:
             adict = stored
-    if adict is None and _nothing_finished(runs, response or "wall_s"):
+    if adict is None and nothing_finished(runs, response or "wall_s"):
         # Every timed run failed or timed out: a report of the design and of why the runs
         # did not finish is still worth reading; there is just nothing to analyse.
         adict = unanalysed(runs, response or "wall_s", factors, levels=None)
@@ -333,7 +333,7 @@ def collect(source, *, analysis=None, response: str | None = None,
     )
 
 
-def _nothing_finished(runs, response: str) -> bool:
+def nothing_finished(runs, response: str) -> bool:
     """True when the table records run statuses and no timed run finished with a value."""
     import pandas as pd
 

@@ -21,40 +21,19 @@ vary lightness as well as hue, avoid pairing red with green).
 
 from __future__ import annotations
 
-import io
 import math
 from dataclasses import dataclass, field
 from itertools import combinations
 from pathlib import Path
 
 from benchharness.report.data import ReportData, finite
+from benchharness.report.drawing import (ACCENT, INK, MUTED, PALETTE, Figure, log_ticks,
+                                         new_figure, render_figure)
 from benchharness.report.units import axis_label, describe, display_scale, fmt_p, unit_of
-
-# Our palette: deep blue, amber, teal, brick, sky, plum, olive-gold, slate.
-PALETTE = ("#2b5c9e", "#e0a030", "#23917f", "#c2562b", "#6fb3de", "#a8578e",
-           "#bfae3c", "#4d4d4d")
-ACCENT = "#c2562b"        # significant things
-MUTED = "#8a8a8a"         # not significant, reference lines
-INK = "#222222"
 
 MAX_POINTS_PER_CELL = 2000
 MAX_POINTS_DISTRIBUTIONS = 40000   # over all cells of the distribution plot
 MAX_SCATTER = 20000
-
-
-@dataclass(frozen=True)
-class Figure:
-    """One rendered figure."""
-
-    name: str          # file stem under figures/
-    title: str
-    caption: str
-    png: bytes
-    svg: str
-    width_px: int
-    height_px: int
-    highlight: bool = False
-    section: str = "effects"     # effects | diagnostics
 
 
 @dataclass
@@ -100,58 +79,6 @@ def _rc():
         "path.simplify": True,
         "figure.dpi": 100,
     }
-
-
-def _new(width_in: float, height_in: float):
-    from matplotlib.figure import Figure as MplFigure
-
-    return MplFigure(figsize=(width_in, height_in), layout="constrained")
-
-
-def _render(fig, name, title, caption, section="effects", highlight=False,
-            dpi: int = 100) -> Figure:
-    """Draw once with Agg for the PNG, then reuse that layout for the SVG."""
-    import numpy as np
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.backends.backend_svg import FigureCanvasSVG
-
-    canvas = FigureCanvasAgg(fig)
-    fig.set_dpi(dpi)
-    fig.set_facecolor("white")
-    canvas.draw()
-    width, height = canvas.get_width_height()
-    png = _encode_png(np.asarray(canvas.buffer_rgba()))
-    fig.set_layout_engine("none")  # keep the layout just computed; the SVG reuses it
-    FigureCanvasSVG(fig)
-    sbuf = io.StringIO()
-    fig.savefig(sbuf, format="svg", facecolor="white", metadata={"Date": None}, dpi=dpi)
-    return Figure(name=name, title=title, caption=caption, png=png, svg=sbuf.getvalue(),
-                  width_px=int(width), height_px=int(height), highlight=highlight,
-                  section=section)
-
-
-def _encode_png(rgba) -> bytes:
-    """PNG of an RGBA buffer, quantised to an adaptive 256-colour palette (plots have few
-    colours, so the file shrinks several times at no visible cost)."""
-    from PIL import Image
-
-    img = Image.fromarray(rgba[..., :3].copy())
-    q = img.quantize(colors=256, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
-    out = io.BytesIO()
-    q.save(out, format="PNG", optimize=False, compress_level=9)
-    return out.getvalue()
-
-
-def _log_ticks(axis, lo: float, hi: float) -> None:
-    """Readable ticks on a log axis: plain numbers, linear steps for a narrow range."""
-    from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullLocator
-
-    if lo > 0 and hi / lo < 4:
-        axis.set_major_locator(MaxNLocator(nbins=6, steps=[1, 2, 2.5, 5, 10]))
-    else:
-        axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
-    axis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}"))
-    axis.set_minor_locator(NullLocator())  # minor ticks cost draw time and add nothing here
 
 
 def _wrap(label: str, width: int = 14) -> str:
@@ -221,7 +148,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
     color_of = dict(zip(data.levels[f1], _colors(len(data.levels[f1]))))
     width = min(13.0, max(5.0, 1.4 + len(cols) * (0.6 + 0.42 * n_in)))
     height = min(3.2 * len(rows) + 0.9, 30.0)
-    fig = _new(width, height)
+    fig = new_figure(width, height)
     axes = fig.subplots(len(rows), len(cols), squeeze=False, sharey=True)
     subsampled = 0
     logax = _use_log_axis(data, y)
@@ -277,7 +204,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
                     ax.axvline(g * group - 0.5, color="#cccccc", lw=0.8, zorder=1)
             if logax:
                 ax.set_yscale("log")
-                _log_ticks(ax.yaxis, float(yv.min()), float(yv.max()))
+                log_ticks(ax.yaxis, float(yv.min()), float(yv.max()))
             title = []
             if col_f:
                 title.append(f"{col_f} = {cv}")
@@ -306,7 +233,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
            "1.5 × IQR); dots are individual runs, spread sideways so they do not overlap.")
     if note:
         cap += " " + note
-    return _render(fig, "distributions", f"Runs per cell: {describe(data.response)}", cap,
+    return render_figure(fig, "distributions", f"Runs per cell: {describe(data.response)}", cap,
                    "effects"), note
 
 
@@ -384,7 +311,7 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
     la, lb = list(data.levels[a]), list(data.levels[b])
     vals = [v[0] for v in means.values() if finite(v[0])]
     mult, unit = display_scale(data.response, float(np.median(vals)) if vals else None)
-    fig = _new(min(9.5, 4.6 + 0.55 * len(la)), 3.5)
+    fig = new_figure(min(9.5, 4.6 + 0.55 * len(la)), 3.5)
     ax = fig.subplots()
     colors = _colors(len(lb))
     dodge = 0.06 if len(lb) > 1 else 0.0
@@ -413,7 +340,7 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
     if logscale:
         ax.set_yscale("log")
         lo_y, hi_y = ax.get_ylim()
-        _log_ticks(ax.yaxis, lo_y, hi_y)
+        log_ticks(ax.yaxis, lo_y, hi_y)
     ax.set_ylabel(("mean " if from_model else "geometric mean ")
                   + axis_label(data.response, unit))
     ax.legend(title=b, fontsize=8.5, title_fontsize=9, loc="center left",
@@ -439,7 +366,7 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
         cap += " The axis is logarithmic, so parallel means the same ratio."
     if not from_model:
         cap += " (The model has no such term: means and intervals come from the runs directly.)"
-    return _render(fig, f"interaction-{_slug(a)}-{_slug(b)}", f"Interaction of {a} and {b}",
+    return render_figure(fig, f"interaction-{_slug(a)}-{_slug(b)}", f"Interaction of {a} and {b}",
                    cap, "effects", highlight=significant)
 
 
@@ -460,7 +387,7 @@ def effects_plot(data: ReportData) -> Figure | None:
     if not effects:
         return None
 
-    fig = _new(7.2, min(1.2 + 0.34 * (len(effects) + len(data.factors)), 24))
+    fig = new_figure(7.2, min(1.2 + 0.34 * (len(effects) + len(data.factors)), 24))
     ax = fig.subplots()
     y = 0
     ticks, labels = [], []
@@ -496,7 +423,7 @@ def effects_plot(data: ReportData) -> Figure | None:
     from matplotlib.ticker import FuncFormatter
 
     lo_x, hi_x = ax.get_xlim()
-    _log_ticks(ax.xaxis, lo_x, hi_x)
+    log_ticks(ax.xaxis, lo_x, hi_x)
     ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}×"))
     ax.set_yticks(ticks)
     ax.set_yticklabels(labels)
@@ -509,7 +436,7 @@ def effects_plot(data: ReportData) -> Figure | None:
            "change, 2× twice as much, 0.5× half. Highlighted rows have intervals that exclude 1×.")
     if name not in ("log", None):
         cap += " The analysis did not use the log scale, so these ratios are approximate."
-    return _render(fig, "effects", "Main effects as ratios", cap, "effects")
+    return render_figure(fig, "effects", "Main effects as ratios", cap, "effects")
 
 
 def half_normal_plot(data: ReportData) -> Figure | None:
@@ -521,7 +448,7 @@ def half_normal_plot(data: ReportData) -> Figure | None:
     if len(pts) < 2:
         return None
     by_label = {e.get("label"): e for e in fr.get("effects") or []}
-    fig = _new(6.4, 4.4)
+    fig = new_figure(6.4, 4.4)
     ax = fig.subplots()
     xs = [float(p["abs_effect"]) for p in pts]
     ys = [float(p["quantile"]) for p in pts]
@@ -566,7 +493,7 @@ def half_normal_plot(data: ReportData) -> Figure | None:
     cap = ("Each point is one alias chain's effect, smallest to largest. Chains that do nothing "
            "fall on a straight line through the origin; chains that stand out to the right "
            "of it, past the dashed margin, are the active ones (highlighted).")
-    return _render(fig, "half-normal", "Half-normal plot of the alias chains", cap, "fraction",
+    return render_figure(fig, "half-normal", "Half-normal plot of the alias chains", cap, "fraction",
                    highlight=any(hot))
 
 
@@ -606,7 +533,7 @@ def qq_plot(data: ReportData) -> Figure | None:
         r_, q_ = r[keep], q[keep]
     else:
         r_, q_ = r, q
-    fig = _new(4.8, 4.0)
+    fig = new_figure(4.8, 4.0)
     ax = fig.subplots()
     ax.scatter(q_, r_, s=9, color=PALETTE[0], alpha=0.6, linewidths=0, rasterized=True)
     q1, q3 = np.percentile(r, [25, 75])
@@ -624,7 +551,7 @@ def qq_plot(data: ReportData) -> Figure | None:
            "(common for timings).")
     if n > MAX_SCATTER:
         cap += f" {MAX_SCATTER:,} evenly spaced order statistics of {n:,} are drawn."
-    return _render(fig, "qq", "Q-Q plot of residuals", cap, "diagnostics")
+    return render_figure(fig, "qq", "Q-Q plot of residuals", cap, "diagnostics")
 
 
 def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
@@ -636,7 +563,7 @@ def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
     idx, note = _scatter_subsample(len(res), rng)
     sub = res.iloc[idx]
     f1 = data.factors[0]
-    fig = _new(7.2, 3.8)
+    fig = new_figure(7.2, 3.8)
     ax = fig.subplots()
     for lv, c in zip(data.levels[f1], _colors(len(data.levels[f1]))):
         part = sub[sub[f1] == lv]
@@ -665,7 +592,7 @@ def resid_fitted(data: ReportData, rng) -> tuple[Figure | None, str | None]:
            "value (a transform helps).")
     if note:
         cap += " " + note
-    return _render(fig, "residuals-fitted", "Residuals against fitted values", cap,
+    return render_figure(fig, "residuals-fitted", "Residuals against fitted values", cap,
                    "diagnostics"), note
 
 
@@ -678,7 +605,7 @@ def resid_position(data: ReportData, rng) -> Figure | None:
     pos = res["position"].to_numpy(dtype=float)
     r = res["residual"].to_numpy(dtype=float)
     idx, _ = _scatter_subsample(len(res), rng)
-    fig = _new(8.6, 3.4)
+    fig = new_figure(8.6, 3.4)
     ax = fig.subplots()
     ax.scatter(pos[idx], r[idx], s=8, color=PALETTE[0], alpha=0.5, linewidths=0,
                rasterized=True, label="run")
@@ -708,7 +635,7 @@ def resid_position(data: ReportData, rng) -> Figure | None:
     cap = ("Residuals in the order the runs were executed. A slope or a step means the "
            "machine changed during the experiment (warming up, throttling, other load); "
            "randomised order keeps that from biasing the effects but it still widens intervals.")
-    return _render(fig, "residuals-position", "Residuals in run order (drift)", cap,
+    return render_figure(fig, "residuals-position", "Residuals in run order (drift)", cap,
                    "diagnostics", highlight=concern)
 
 
@@ -725,7 +652,7 @@ def boxcox_plot(data: ReportData) -> Figure | None:
     if len(lam) < 3:
         return None
     tr = data.analysis.get("transform") or {}
-    fig = _new(7.6, 3.6)
+    fig = new_figure(7.6, 3.6)
     ax = fig.subplots()
     ax.plot(lam, ll, color=PALETTE[0], lw=1.8, label="profile log-likelihood")
     top = float(ll.max())
@@ -757,7 +684,7 @@ def boxcox_plot(data: ReportData) -> Figure | None:
            "λ above the dotted line is consistent with the data at 95%. The analysis leaves "
            "the log scale (λ = 0) only when λ = 0 falls below the dashed 99% line and the "
            "checks on the log scale fail. The thick line is the transform the analysis used.")
-    return _render(fig, "boxcox", "Box-Cox profile likelihood", cap, "diagnostics")
+    return render_figure(fig, "boxcox", "Box-Cox profile likelihood", cap, "diagnostics")
 
 
 def interaction_pairs(data: ReportData) -> list[tuple[str, str]]:

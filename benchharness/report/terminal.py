@@ -93,9 +93,9 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
         t.add_column(col, justify="right", no_wrap=True)
     for r in story.anova_rows(data):
         style = "bold" if r["significant"] else ("dim" if r.get("term") == "Residual" else None)
-        from benchharness.report.context import _fmt_df
+        from benchharness.report.context import fmt_df
 
-        t.add_row(Text(str(r.get("chain") or r.get("term"))), _fmt_df(r.get("df")), fmt_num(r.get("sum_sq")),
+        t.add_row(Text(str(r.get("chain") or r.get("term"))), fmt_df(r.get("df")), fmt_num(r.get("sum_sq")),
                   fmt_num(r.get("mean_sq")), fmt_num(r.get("F")),
                   fmt_p(r.get("p")).replace("< ", "<"),
                   fmt_num(r.get("partial_eta_sq"), 2), fmt_num(r.get("omega_sq"), 2),

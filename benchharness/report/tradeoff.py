@@ -33,8 +33,8 @@ def tradeoff_figure(section: dict, section_id: str = "choose"):
     """A `benchharness.report.figures.Figure`, or None when the choice has no ``also``."""
     import numpy as np
 
-    from benchharness.report.figures import (ACCENT, INK, MUTED, PALETTE, _log_ticks, _new,
-                                             _render)
+    from benchharness.report.drawing import (ACCENT, INK, MUTED, PALETTE, log_ticks,
+                                             new_figure, render_figure)
     from benchharness.report.units import axis_label, display_scale, unit_of
 
     d = section.get("choice") or {}
@@ -56,7 +56,7 @@ def tradeoff_figure(section: dict, section_id: str = "choose"):
     xs = [tuple(v * mx for v in x) for x in xs]
     ys = [tuple(v * my for v in y) for y in ys]
     on = [bool(c.get("on_front")) for c in cands]
-    fig = _new(7.2, 4.6)
+    fig = new_figure(7.2, 4.6)
     ax = fig.subplots()
     ax.margins(x=0.14, y=0.1)  # room for the labels at the edges
     for i, c in enumerate(cands):
@@ -80,7 +80,7 @@ def tradeoff_figure(section: dict, section_id: str = "choose"):
             lo = min(v[1] for v in vals)
             hi = max(v[2] for v in vals)
             (ax.set_xscale if axis is ax.xaxis else ax.set_yscale)("log")
-            _log_ticks(axis, lo, hi)
+            log_ticks(axis, lo, hi)
     ax.set_xlabel(axis_label(resp, ux or unit_of(resp)) + f" ({rx.get('better', 'lower')} is "
                   "better)")
     ax.set_ylabel(axis_label(other, uy or unit_of(other)) + f" ({ry.get('better', 'lower')} is "
@@ -99,5 +99,5 @@ def tradeoff_figure(section: dict, section_id: str = "choose"):
     if len(also) > 1:
         cap += (f" The front was decided on {', '.join([resp] + list(also))}; only the first "
                 "two are drawn.")
-    return _render(fig, "choose-tradeoff", f"Trade-off between {resp} and {other}", cap,
+    return render_figure(fig, "choose-tradeoff", f"Trade-off between {resp} and {other}", cap,
                    section_id)

@@ -311,7 +311,7 @@ class FolderLock:
             self.fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
             if self.dir_fd is None:
                 fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            owner = _read_json_bytes(os.pread(self.fd, 4096, 0))
+            owner = read_json_bytes(os.pread(self.fd, 4096, 0))
             if (isinstance(owner, dict) and owner.get("pid") != os.getpid()
                     and procs.owner_alive(owner)):
                 raise _busy(folder, f"a live benchharness (pid {owner['pid']})")
@@ -342,7 +342,7 @@ class FolderLock:
         self._close()
 
 
-def _read_json_bytes(data: bytes):
+def read_json_bytes(data: bytes):
     try:
         return json.loads(data.decode("utf-8", "replace").strip() or "null")
     except ValueError:
@@ -395,7 +395,7 @@ class Journal:
         if start is None:
             t = start_ticks(pgid)
             start = (t, t) if t is not None else None
-        rec = {"run": run, "pid": pid, "pgid": pgid, "boot": _boot_id()}
+        rec = {"run": run, "pid": pid, "pgid": pgid, "boot": boot_id()}
         if start is not None:
             rec["start"] = list(start)
         os.pwrite(self.inflight_fd, json.dumps(rec).encode().ljust(INFLIGHT_SIZE), 0)
@@ -503,7 +503,7 @@ def record_head(run: Mapping, status: str) -> str:
 INFLIGHT_SIZE = 256
 
 
-def _boot_id() -> str:
+def boot_id() -> str:
     from benchharness.execute.procs import boot_id
 
     return boot_id()
@@ -535,7 +535,7 @@ def kill_leftover(folder: Path) -> str | None:
     from benchharness.execute import procs
 
     info = read_inflight(folder)
-    if not info or info.get("boot") != _boot_id():
+    if not info or info.get("boot") != boot_id():
         return None
     harness, launcher = info.get("harness"), info.get("launcher")
     if (harness and harness != os.getpid() and procs.matches(harness, info.get("hstart"))
@@ -548,10 +548,10 @@ def kill_leftover(folder: Path) -> str | None:
     # First the dead harness's launcher, if it still lives: it must not start
     # (or journal) anything once this harness reads the journal.
     _stop_launcher(info.get("launcher"), info.get("lstart"))
-    return _stop_run(info, "the earlier harness")
+    return stop_run(info, "the earlier harness")
 
 
-def _stop_run(info: Mapping, whose: str) -> str | None:
+def stop_run(info: Mapping, whose: str) -> str | None:
     """SIGKILL the process group of an in-flight record if it is still the run's; a note."""
     from benchharness.execute import procs
 
