@@ -78,7 +78,7 @@ def test_a_workload_named_on_the_command_line_is_held_as_a_condition(cli, tmp_pa
     pd.DataFrame(rows).to_csv(csv, index=False)
     guessed = json.loads(cli("choose", csv, "--factors", "pool,disk", "--json", "-").stdout)
     assert guessed["factors"] == ["pool", "disk"]            # nothing looks like an input
-    assert guessed["reasons"][0].startswith("No roles are declared: pool, disk treated as setting(s)")
+    assert guessed["reasons"][0].startswith("No roles are declared: pool, disk treated as settings")
     r = cli("choose", csv, "--factors", "pool,disk", "--environment", "disk", "--json", "-")
     d = json.loads(r.stdout)
     assert d["factors"] == ["pool"] and d["across"] == ["disk"] and d["best"] == {"pool": "8"}

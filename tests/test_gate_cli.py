@@ -17,17 +17,25 @@ def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
             "--seed", "3", "--max-runs", "30", "--out", tmp_path / "res",
             "--junit", junit, "--summary", summary, "--json", tmp_path / "g.json")
     assert r.returncode == 1, r.stdout + r.stderr
-    assert "SLOWER" in r.stdout
+    # one verdict word in all four outputs of this gate (docs/gate.md, "Verdict words")
+    row = next(line for line in r.stdout.splitlines() if line.strip().startswith("all "))
+    assert row.split()[1] == "worse", r.stdout
+    assert "verdict: worse:" in r.stdout
     # the gate says which scale it judges on (one scale per response: ratios of times)
     assert "slowdown ratio candidate vs baseline on the log scale" in r.stdout
     root = ET.parse(junit).getroot()
     cases = root.findall(".//testcase")
     assert [c.get("name") for c in cases] == ["all"]
-    assert cases[0].find("failure") is not None
+    failure = cases[0].find("failure")
+    assert failure is not None and failure.get("type") == "worse"
+    assert failure.get("message").startswith("worse: slower than 1.05×")
     text = summary.read_text()
-    assert text.startswith("earlier content\n") and "Performance gate: FAIL" in text
+    assert text.startswith("earlier content\n") and "Performance gate: worse" in text
+    assert "| all | worse |" in text
     data = json.loads((tmp_path / "g.json").read_text())
-    assert data["verdict"] == "regression" and data["scale"] == "log"
+    assert data["verdict"] == "worse" and data["scale"] == "log"
+    assert data["workloads"][0]["verdict"] == "worse"
+    assert data["workloads"][0]["cause"] == "timings"
     assert data["workloads"][0]["ratio"] == pytest.approx(1.3, rel=0.15)
     folder = tmp_path / "res"
     for name in ("experiment.yaml", "runs.jsonl", "runs.csv", "plan.csv", "host.json",
@@ -110,10 +118,10 @@ def test_candidate_that_never_succeeds_stops_with_exit_5(cli, tmp_path, inconclu
     r = cli("gate", "--baseline", "true", "--candidate", "exit 3", "--seed", "2",
             "--out", tmp_path / "res", "--json", js, "--junit", junit, *extra)
     assert r.returncode == 5, r.stdout + r.stderr
-    assert "NEVER-OK" in r.stdout and "the candidate failed all 3 of its runs" in r.stdout
+    assert " broken " in r.stdout and "the candidate failed all 3 of its runs" in r.stdout
     assert "a build never ran successfully" in r.stdout
     data = json.loads(js.read_text())
-    assert data["verdict"] == "never_ok" and data["runs"] <= 4   # 2 blocks, not the budget
+    assert data["verdict"] == "broken" and data["runs"] <= 4   # 2 blocks, not the budget
     case = ET.parse(junit).getroot().find(".//testcase")
     assert case.find("error") is not None and case.find("failure") is None
 
@@ -135,7 +143,7 @@ gate: {factor: build, baseline: old, tolerance: 10%, max_runs: 30}
     assert r.returncode == 5, r.stdout + r.stderr
     assert "the baseline failed all 3 of its runs" in r.stdout
     data = json.loads((tmp_path / "g.json").read_text())
-    assert data["verdict"] == "never_ok" and data["runs"] <= 6   # two workloads: 2 rounds + 1 block
+    assert data["verdict"] == "broken" and data["runs"] <= 6   # two workloads: 2 rounds + 1 block
 
 
 def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
@@ -154,7 +162,7 @@ def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
     w = data["workloads"][0]
     assert w["candidate_failures"] >= 1, data           # the planted failure happened
     assert r.returncode == 0, r.stdout + r.stderr
-    assert data["verdict"] in ("no_regression", "improvement")
+    assert data["verdict"] in ("not worse", "better")
 
 
 def test_stored_baseline_warns(cli, tmp_path):
@@ -213,7 +221,7 @@ def test_throughput_metric_from_metrics_section(cli, tmp_path):
     data = json.loads((tmp_path / "g.json").read_text())
     assert data["higher_is_better"] is True
     for w in data["workloads"]:
-        assert w["verdict"] == "regression"
+        assert w["verdict"] == "worse"
         assert w["ratio"] == pytest.approx(1000 / 700, rel=0.1)
     cases = {c.get("name"): c for c in ET.parse(junit).getroot().iter("testcase")}
     assert sorted(cases) == ["w=a", "w=b"]
@@ -245,7 +253,7 @@ def test_throughput_metric_higher_candidate_passes(cli, tmp_path):
     # 30% more records per second: never a regression. The gate may stop as soon as a
     # slowdown is ruled out ("no regression") or go on until the gain is shown
     # ("improvement"); the workload's noise is not seeded, so either may come first.
-    assert {w["verdict"] for w in data["workloads"]} <= {"improvement", "no_regression"}
+    assert {w["verdict"] for w in data["workloads"]} <= {"better", "not worse"}
     for w in data["workloads"]:
         assert w["ratio"] == pytest.approx(1000 / 1300, rel=0.1)
 
@@ -270,7 +278,7 @@ def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
         r = cli("gate", "--baseline", "false", "--candidate", "false",
                 "--min-runs", "2", "--max-runs", "2", "--seed", "7", "--warmup", "0",
                 "--out", tmp_path / f"res{i}", "--summary", summary, *extra)
-        assert "UNDECIDED" in r.stdout, r.stdout + r.stderr
+        assert " undecided " in r.stdout, r.stdout + r.stderr
         codes.append(r.returncode)
     assert codes == [3, 0, 1]
     assert summary.read_text().count("### Performance gate") == 3

@@ -264,19 +264,22 @@ def test_a_candidate_that_only_fails_more_often_is_not_called_slower():
         j = o.judgements["w0"]
         assert "fails more often" in j.reason and j.ratio < 1.05
         text = "\n".join(terminal_lines(o))
-        assert "verdict: the candidate fails more often than the baseline" in text
-        assert "slower" not in text.lower() and "SLOWER" not in text
-        assert "FAILS" in text.splitlines()[2]
+        assert "verdict: worse: the candidate fails more often than the baseline" in text
+        assert "slower" not in text.lower()
+        row = text.splitlines()[2].split()
+        assert row[:2] == ["w0", "worse"] and "fails more often" in text.splitlines()[2]
         md = markdown_summary(o)
         assert "fails more often" in md and "slower" not in md.lower()
         msg = ET.fromstring(junit_xml(o).split("\n", 1)[1]).find(".//failure").get("message")
-        assert msg.startswith("fails more often than the baseline") and "slower" not in msg
+        assert msg.startswith("worse: fails more often than the baseline")
+        assert "slower" not in msg
     # a candidate planted 30% slower that never fails is still said to be slower
     slow = _sim(1.3, 0.03, 7200)
     assert slow.verdict == "regression"
     text = "\n".join(terminal_lines(slow))
-    assert "verdict: the candidate is slower than the tolerance allows" in text
-    assert "SLOWER" in text and "fails more often" not in text
+    assert "verdict: worse: the candidate is slower than the tolerance allows" in text
+    assert text.splitlines()[2].split()[:2] == ["w0", "worse"]
+    assert "fails more often" not in text
 
 
 def test_slow_runs_do_not_push_the_statistic_past_its_clean_tail():

@@ -42,7 +42,7 @@ def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, cli):
         assert add_results(db, f, commit=f"c{i:02d}", branch="main", cwd=tmp_path) == 2
     r = cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main", "--db", db)
     assert r.returncode == 0, r.stderr
-    assert "2 cell row(s) added" in r.stdout
+    assert "2 cell rows added" in r.stdout
     r = cli("history", "add", *folders[:3], "--commit", "c00", "--db", db)
     assert r.returncode == 2 and "already recorded as commit c01" in r.stderr
 
@@ -151,7 +151,7 @@ def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, c
     assert "No step found" in outs[2].stdout and "NOT YET" not in outs[2].stdout
     four = outs[3]
     said = " ".join(four.stdout.split())     # the line under the table, unwrapped
-    assert re.search(r"Newest commit c3: possible regression x2\.\d+ \(", said), said
+    assert re.search(r"Newest commit c3: possible regression 2\.\d+× \(", said), said
     assert "(not yet confirmed; not counted as a step)" in said
     assert "NOT YET CONFIRMED" in four.stdout            # marked in the table too
     assert "not yet confirmed: archive-codecs wall_s codec=zlib at commit c3" in four.stderr
@@ -159,7 +159,7 @@ def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, c
     data = json.loads((tmp_path / "show3.json").read_text())["cells"][0]
     assert data["steps"] == [] and data["not_yet_confirmed"][0]["commit"] == "c3"
     five = outs[4]
-    assert "STEP: regression" in five.stdout and "1 step(s) found" in five.stdout
+    assert "STEP: regression" in five.stdout and "1 step found" in five.stdout
     assert "regression: archive-codecs wall_s codec=zlib at commit c3" in five.stderr
     steps = json.loads((tmp_path / "show4.json").read_text())["cells"][0]["steps"]
     assert [s["commit"] for s in steps] == ["c3"]

@@ -90,7 +90,8 @@ def test_warm_cache_demo_end_to_end(tmp_path, monkeypatch):
         # the stderr regex and the JSON line report the same throughput (rounded)
         assert float(r["served_rps"]) == pytest.approx(float(r["throughput_rps"]), rel=1e-3)
         assert 0 <= float(r["hit_ratio"]) <= 1
-        assert r["steady_state"] in ("flat", "warm-up", "slow-down", "no steady state")
+        assert r["steady_state"] in ("steady from the start", "steady after speeding up",
+                                     "steady after slowing down", "never steady")
     # a cache that holds every product fills over tens of batches: the first
     # iterations are visibly slower than the last ones (robust to a busy machine;
     # the PELT classification itself is checked on planted series elsewhere)
@@ -207,8 +208,8 @@ def test_no_steady_state_is_flagged(tmp_path):
         """)
     out = run_experiment(exp, out=tmp_path / "res", executor=PopenExecutor())
     rows = _rows(out.folder)
-    assert all(r["steady_state"] == "no steady state" and r["steady_s"] == "" for r in rows)
-    assert all("no steady state" in r["message"] for r in rows)
+    assert all(r["steady_state"] == "never steady" and r["steady_s"] == "" for r in rows)
+    assert all("never steady" in r["message"] for r in rows)
     steady = json.loads((out.folder / "steady.json").read_text())
     assert len(steady["runs_without_steady_state"]) == 2
     assert any("never reached a steady state" in n for n in out.notes)
@@ -226,13 +227,14 @@ def test_steady_command_reports_advice(tmp_path, cli):
         """.replace('"{replicate}"', '"0"'))
     out = run_experiment(exp, out=tmp_path / "res", executor=PopenExecutor())
     rows = _rows(out.folder)
-    assert all(r["steady_state"] == "warm-up" for r in rows)
+    assert all(r["steady_state"] == "steady after speeding up" for r in rows)
     r = cli("steady", out.folder, "--json")
     assert r.returncode == 0, r.stderr
     data = json.loads(r.stdout)
     assert data["target_rel_halfwidth"] == 0.01
     for cell in data["cells"]:
-        assert cell["runs_with_steady_state"] == 4 and cell["cell_shape"] == "warm-up"
+        assert cell["runs_with_steady_state"] == 4
+        assert cell["cell_shape"] == "steady after speeding up"
         assert cell["components"]["iterations"] >= 85
         assert cell["advice"]["executions"] >= 2
     text = cli("steady", out.folder, "--target", "5%")

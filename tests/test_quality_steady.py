@@ -82,7 +82,7 @@ def test_planted_warmup_length_is_found(warm):
     rng = np.random.default_rng(warm)
     y = np.concatenate([_timings(rng, 4e-3, warm), _timings(rng, 1e-3, 240 - warm)])
     res = classify(y)
-    assert res.shape == "warm-up"
+    assert res.shape == "steady after speeding up"
     assert abs(res.steady_from - warm) <= 2
     assert res.steady_s == pytest.approx(1e-3, rel=0.02)
 
@@ -94,7 +94,7 @@ def test_gradual_warmup_cache_filling():
     i = np.arange(300)
     y = 1e-3 * (1 + 4 * np.exp(-i / 8)) * np.exp(rng.normal(0, 0.03, 300))
     res = classify(y)
-    assert res.shape == "warm-up"
+    assert res.shape == "steady after speeding up"
     assert 10 <= res.steady_from <= 60
     assert res.steady_s == pytest.approx(1e-3, rel=0.03)
 
@@ -102,14 +102,46 @@ def test_gradual_warmup_cache_filling():
 def test_flat_slowdown_and_no_steady_state():
     rng = np.random.default_rng(11)
     flat = classify(_timings(rng, 2e-3, 200))
-    assert flat.shape == "flat" and flat.steady_from == 0
+    assert flat.shape == "steady from the start" and flat.steady_from == 0
     slow = classify(np.concatenate([_timings(rng, 1e-3, 100), _timings(rng, 1.6e-3, 100)]))
-    assert slow.shape == "slow-down" and abs(slow.steady_from - 100) <= 2
+    assert slow.shape == "steady after slowing down" and abs(slow.steady_from - 100) <= 2
     late = classify(np.concatenate([_timings(rng, 1e-3, 185), _timings(rng, 2e-3, 15)]))
-    assert late.shape == "no steady state" and late.steady_s is None
+    assert late.shape == "never steady" and late.steady_s is None
     assert "still changes" in late.reason
     short = classify([1e-3, 1e-3])
     assert short.shape == "too short" and short.steady_s is None
+
+
+def test_cell_classes_in_our_words_and_earlier_names_read():
+    """Planted: in one cell two runs speed up then settle and one keeps changing; in the
+    other every run is steady from the start. The cell says "runs disagree" only where
+    the runs do. A samples.jsonl written with the earlier class names reads the same."""
+    from benchharness.measure.steady.samples import analyse_run, cell_advice
+    from benchharness.measure.steady.warmup import EARLIER_NAMES, SHAPES
+
+    rng = np.random.default_rng(5)
+    warm = lambda: np.concatenate([_timings(rng, 3e-3, 30), _timings(rng, 1e-3, 170)])  # noqa
+    late = lambda: np.concatenate([_timings(rng, 1e-3, 185), _timings(rng, 2e-3, 15)])  # noqa
+    flat = lambda: _timings(rng, 2e-3, 200)  # noqa
+    plan = [("a", warm()), ("a", warm()), ("a", late()), ("b", flat()), ("b", flat())]
+    records, samples = [], {}
+    for run, (level, y) in enumerate(plan):
+        _cols, an = analyse_run(list(y))
+        records.append({"run": run, "status": "ok", "levels": {"k": level},
+                        "wall_s": float(np.sum(y))})
+        samples[run] = {"run": run, "samples_s": list(y), "analysis": an}
+    cells = {c["levels"]["k"]: c for c in cell_advice(records, samples, ["k"], 0.01)}
+    assert cells["a"]["cell_shape"] == "runs disagree"
+    assert cells["a"]["shapes"] == {"steady after speeding up": 2, "never steady": 1}
+    assert cells["b"]["cell_shape"] == "steady from the start"
+    # none of the earlier names is printed any more; each one still reads
+    assert not set(EARLIER_NAMES) & set(SHAPES)
+    old = {k: {**v, "analysis": {**v["analysis"], "shape": {
+        "steady after speeding up": "warm-up", "never steady": "no steady state",
+        "steady from the start": "flat"}[v["analysis"]["shape"]]}} for k, v in samples.items()}
+    again = {c["levels"]["k"]: c for c in cell_advice(records, old, ["k"], 0.01)}
+    assert again["a"]["shapes"] == cells["a"]["shapes"]
+    assert again["b"]["cell_shape"] == "steady from the start"
 
 
 def test_isolated_spikes_do_not_break_a_flat_series():
@@ -117,7 +149,7 @@ def test_isolated_spikes_do_not_break_a_flat_series():
     y = _timings(rng, 1e-3, 300)
     y[[50, 51, 140, 260]] = 8e-3     # interrupts, a collection pause
     res = classify(y)
-    assert res.shape == "flat"
+    assert res.shape == "steady from the start"
     assert res.spikes >= 3
     # spikes stay in the steady mean: they are a real cost
     assert res.steady_s == pytest.approx(y.mean(), rel=1e-12)
@@ -239,7 +271,7 @@ def _planted_hits(seeds, n=200, tol=3):
         cv = float(rng.uniform(0.01, 0.08))
         y = np.concatenate([_timings(rng, ratio * 1e-3, warm, cv), _timings(rng, 1e-3, n - warm, cv)])
         res = classify(y)
-        hits += res.shape == "warm-up" and abs(res.steady_from - warm) <= tol
+        hits += res.shape == "steady after speeding up" and abs(res.steady_from - warm) <= tol
     return hits
 
 
@@ -287,5 +319,5 @@ def test_long_series_are_searched_in_blocks():
     rng = np.random.default_rng(21)
     y = np.concatenate([_timings(rng, 3e-3, 150), _timings(rng, 1e-3, 29850)])
     res = classify(y)
-    assert res.shape == "warm-up" and abs(res.steady_from - 150) <= 8
+    assert res.shape == "steady after speeding up" and abs(res.steady_from - 150) <= 8
     assert res.steady_s == pytest.approx(1e-3, rel=0.01)

@@ -281,5 +281,5 @@ def test_outlier_count_and_cutoff_come_from_the_analysis():
     assert an["diagnostics"]["outlier_count"] == 3
     item = next(i for i in diagnostic_items(collect(d, analysis=an, factors=["a"]))
                 if i["key"] == "outliers")
-    assert item["concern"] and "3 run(s) stand out" in item["verdict"]
+    assert item["concern"] and "3 runs stand out" in item["verdict"]
     assert f"±{an['diagnostics']['outlier_cutoff']:.2f}"[:4] in item["test"]

@@ -89,7 +89,7 @@ def test_units_and_markdown_escaping():
     assert fmt_value(0.0123, "wall_s") == "12.3 ms"
     assert fmt_value(2.5e-5, "wall_s") == "25.0 µs"
     assert fmt_value(1.5, "wall_s") == "1.50 s"
-    assert fmt_value(2048, "max_rss_kib") == "2,048 KiB"
+    assert fmt_value(2048, "max_rss_kib") == "2.00 MiB"      # 1 MiB = 1024 KiB
     assert axis_label("wall_s", "ms") == "wall-clock time [wall_s] (ms)"
     assert fmt_p(3e-9) == "< 0.001" and fmt_p(0.0412) == "0.041"
     assert md_escape("a|b *c* <d> [e](f)") == r"a\|b \*c\* &lt;d&gt; \[e\](f)"

@@ -235,10 +235,12 @@ def outliers(r, leverage_rows, rss, df_resid, run_ids, alpha: float, limit: int 
     listed = [{"run": (int(run_ids[i]) if run_ids is not None else int(i)),
                "studentized": float(t[i])} for i in idx[:limit]]
     if len(idx) == 0:
-        verdict = "no run stands out beyond the Bonferroni cut-off"
+        verdict = "no run stands out from its cell"
     else:
-        verdict = (f"{len(idx)} run(s) stand out beyond the Bonferroni cut-off ±{cutoff:.2f}; "
-                   "check them for interference (other load, a cold cache) before trusting means")
+        verdict = (f"{'1 run stands' if len(idx) == 1 else f'{len(idx)} runs stand'} out from "
+                   f"their cells (studentized residuals beyond ±{cutoff:.2f}, the Bonferroni "
+                   "cut-off); check them for interference (other load, a cold cache) before "
+                   "trusting means")
     return {"cutoff": cutoff, "count": int(len(idx)), "runs": listed, "verdict": verdict,
             "studentized": t}
 

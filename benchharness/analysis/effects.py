@@ -203,6 +203,8 @@ def level_ratios(fit: Fit, names, levels, factor_idx, references, choice, alpha)
 
 def ratio_wording(e: dict, factor: str, level_of_confidence: str = "95%") -> str:
     """One plain sentence for a level ratio, e.g. ``codec=lzma is 2.31× codec=zlib (131% higher ...)``."""
+    from benchharness.numbers import fmt_ratio, fmt_ratio_interval
+
     r, lo, hi = e["ratio"], e["lower"], e["upper"]
     a, b = f"{factor}={e['level']}", f"{factor}={e['reference']}"
     if r is None:
@@ -210,10 +212,10 @@ def ratio_wording(e: dict, factor: str, level_of_confidence: str = "95%") -> str
     about = "about " if e.get("approximate") else ""
     pct = (r - 1.0) * 100.0
     change = f"{abs(pct):.3g}% {'higher' if pct > 0 else 'lower'}" if pct else "the same"
-    text = f"{a} is {about}{r:.3g}× {b} ({change}"
+    text = f"{a} is {about}{fmt_ratio(r)} {b} ({change}"
     if lo is None or hi is None:
         return text + "; no interval without residual degrees of freedom)"
-    text += f"; {level_of_confidence} interval {lo:.3g}× to {hi:.3g}×)"
+    text += f"; {level_of_confidence} interval {fmt_ratio_interval(lo, hi)})"
     if lo <= 1.0 <= hi:
         text += ": not distinguishable"
     return text

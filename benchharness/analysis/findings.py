@@ -35,6 +35,8 @@ from __future__ import annotations
 import math
 import re
 
+from benchharness import numbers as _numbers
+
 KINDS = ("interaction", "simple effect", "main", "best", "caution")
 
 #: most cells named in the tied set's statement (the finding lists them all)
@@ -49,17 +51,15 @@ MAX_CELLS_LISTED = 2000
 # formatting (plain text; renderers may restyle)
 
 def fmt_ratio(r) -> str:
-    if r is None or not math.isfinite(r):
-        return "–"
-    if r >= 100 or r < 0.01:
-        return f"×{r:.3g}"
-    return f"×{r:.3g}" if r >= 10 else f"×{r:.2f}"
+    """A ratio, ``1.23×`` (`benchharness.numbers`, the formatter of every output)."""
+    return _numbers.fmt_ratio(r)
 
 
 def fmt_interval(lo, hi) -> str:
+    """A ratio interval inside a sentence: ``[1.09× to 1.29×]``."""
     if lo is None or hi is None:
         return "[no interval]"
-    return f"[{fmt_ratio(lo)[1:]}, {fmt_ratio(hi)[1:]}]"
+    return f"[{_numbers.fmt_ratio_interval(lo, hi)}]"
 
 
 def fmt_p(p) -> str:
@@ -90,19 +90,13 @@ def fmt_value(x, response: str) -> str:
     if x is None or not math.isfinite(x):
         return "–"
     if str(response).lower().endswith("_per_s"):
-        return f"{x:.4g} per s"
+        return f"{_numbers.fmt_num(x)} per s"
     sec = seconds_per_unit(response)
     if sec is not None:
-        x = x * sec
-        a = abs(x)
-        if a < 1e-4:
-            return f"{x * 1e6:.3g} µs"
-        if a < 0.1:
-            return f"{x * 1e3:.3g} ms"
-        return f"{x:.3g} s"
-    if response.endswith("_kib"):
-        return f"{x:.4g} KiB"
-    return f"{x:.4g}"
+        return _numbers.fmt_seconds(x * sec)
+    if str(response).lower().endswith("_kib"):
+        return _numbers.fmt_quantity(x, "KiB")
+    return _numbers.fmt_num(x, 4)
 
 
 def cell_text(levels: dict) -> str:

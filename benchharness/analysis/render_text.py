@@ -9,6 +9,18 @@ failed-run counts, comparisons whose adjusted p is below α, and notes.
 
 from __future__ import annotations
 
+from benchharness.numbers import fmt_ratio, fmt_ratio_interval, pick_scale, plural
+
+
+def _unit(response: str) -> str:
+    """The unit a response's name carries (``wall_s`` -> s), else none."""
+    from benchharness.analysis.findings import seconds_per_unit
+
+    sec = seconds_per_unit(response)
+    if sec is not None:
+        return {1.0: "s", 1e-3: "ms", 1e-6: "µs", 1e-9: "ns"}[sec]
+    return "KiB" if str(response).lower().endswith("_kib") else ""
+
 
 def _g(x, digits=4):
     if x is None:
@@ -55,10 +67,10 @@ def format_analysis(a) -> str:
     t = d["transform"]
     scale = {"none": "original scale", "log": "log scale"}.get(
         t["name"], f"Box-Cox scale (λ = {t['lambda']:.2f})")
-    lines.append(f"Analysis of {d['response']} — {c['rows']} runs in {c['cells']} cells"
-                 + (f", blocks: {d['block']}" if d["block"] else "")
-                 + f"; {scale}; Type {d['model']['ss_type']} sums of squares")
-    lines.append(f"Scale: {t.get('summary') or t['reason']}")
+    # the headline in plain words; the scale and the kind of sums of squares head the table
+    lines.append(f"Analysis of {d['response']} — {plural(c['rows'], 'run')} in "
+                 f"{plural(c['cells'], 'cell')}"
+                 + (f", in blocks of {d['block']}" if d["block"] else ""))
     lines.append("")
     found = d.get("findings") or []
     if found:
@@ -69,6 +81,9 @@ def format_analysis(a) -> str:
             mark = {"caution": "!", "best": ">"}.get(f["kind"], "-")
             lines.append(f"  {mark} {f['statement']}")
         lines.append("")
+    lines.append(f"Scale: {t.get('summary') or t['reason']}")
+    lines.append(f"Analysis of variance on the {scale}, Type {d['model']['ss_type']} sums of "
+                 "squares")
     rows = []
     for r in d["anova"]:
         label = r.get("chain") or (
@@ -131,14 +146,16 @@ def format_analysis(a) -> str:
         label = {"pairwise": f"pairwise ({adj})", "tukey": "Tukey HSD",
                  "simple": f"simple effect ({adj})", "declared": f"declared ({adj})"}
         diff = t["name"] == "none"
+        dscale = pick_scale(d.get("unit") or _unit(d["response"]),
+                            [x.get("difference") for x in shown])
         rows = []
         for x in shown[:40]:
             within = f" within {_levels(x['within'])}" if x["within"] else ""
             if diff:
-                est = [_g(x.get("difference")),
-                       f"[{_g(x.get('difference_lower'))}, {_g(x.get('difference_upper'))}]"]
+                est = [dscale.fmt(x.get("difference"), 4),
+                       dscale.interval(x.get("difference_lower"), x.get("difference_upper"))]
             else:
-                est = [_g(x["ratio"]), f"[{_g(x['lower'])}, {_g(x['upper'])}]"]
+                est = [fmt_ratio(x["ratio"]), fmt_ratio_interval(x["lower"], x["upper"])]
             rows.append([label[x["method"]], f"{x['factor']}: {x['a']} over {x['b']}{within}",
                          *est, _p(x["p_adj"])])
         if not rows:

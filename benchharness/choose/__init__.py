@@ -408,7 +408,8 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
                                  else as_map(all_settings[dominated_by[fi]]))
         c["reason"] = _candidate_reason(i, c, res, best_i, top_i, default, declared, names,
                                         is_log, confidence, settings, sub_dominated,
-                                        all_settings, bool(also), within)
+                                        all_settings, bool(also), within,
+                                        unit=_unit(main.response))
         candidates[fi] = c
     for fi, s in enumerate(all_settings):
         if candidates[fi] is not None:
@@ -448,7 +449,7 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     reasons += _limit_reasons(limit_results, all_settings, eligible, as_map, confidence)
     reasons += _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob,
                             disagreement, pareto_idx, also, is_log, confidence, default,
-                            declared, all_settings, within)
+                            declared, all_settings, within, unit=_unit(main.response))
 
     return Choice(
         response=response, better=main.better, scale=main.scale, confidence=confidence,
@@ -515,12 +516,22 @@ def _block_column(block, df, experiment, factors, across, response):
     return block
 
 
-def _loss_words(x: float, is_log: bool) -> str:
-    return _pct(float(np.exp(x))) if is_log else f"{x:.4g}"
+def _loss_words(x: float, is_log: bool, unit: str = "") -> str:
+    """A loss against the best: a percentage on the log scale, else a difference with the
+    response's unit (`benchharness.numbers`)."""
+    from benchharness.numbers import fmt_quantity
+
+    return _pct(float(np.exp(x))) if is_log else fmt_quantity(x, unit, digits=4)
+
+
+def _unit(response: str) -> str:
+    from benchharness.report.units import unit_of
+
+    return unit_of(response)
 
 
 def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log, confidence,
-                      settings, dominated_by, all_settings, with_also, within) -> str:
+                      settings, dominated_by, all_settings, with_also, within, unit: str = "") -> str:
     conf = f"{confidence * 100:g}%"
     hi = c["loss_vs_best_of_others"]["high"]
     lo = c["loss_vs_best_of_others"]["low"]
@@ -545,15 +556,15 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
             parts.append("as good as the best (the data show no difference at all)")
         elif lo < 0 and hi <= 0:
             parts.append(f"better than every other setting ({conf} confidence), by at most "
-                         f"{_loss_words(-lo, is_log)}")
+                         f"{_loss_words(-lo, is_log, unit)}")
         elif hi <= 0:
             parts.append("better than every other setting")
         else:
-            parts.append(f"not shown worse than the best: at most {_loss_words(hi, is_log)} "
+            parts.append(f"not shown worse than the best: at most {_loss_words(hi, is_log, unit)} "
                          f"worse ({conf} confidence)")
     else:
         parts.append(f"shown worse than the best ({conf} confidence): by at most "
-                     f"{_loss_words(hi, is_log)}")
+                     f"{_loss_words(hi, is_log, unit)}")
     if with_also:
         d = dominated_by[i]
         if d is None:
@@ -580,7 +591,8 @@ def _role_reasons(roles, names, across_given) -> list[str]:
                 + " and ".join(conds) + " are conditions the choice must hold up across."]
     across_factors = [a for a in across_given
                       if a not in names and a not in ("host", "worker", "block", "replicate")]
-    held = (f"; {', '.join(across_factors)} held as condition(s) through --across"
+    held = (f"; {', '.join(across_factors)} held as "
+            f"{'a condition' if len(across_factors) == 1 else 'conditions'} through --across"
             if across_factors else "")
     parts = []
     if roles.workload:
@@ -596,7 +608,9 @@ def _role_reasons(roles, names, across_given) -> list[str]:
             f"workloads and never recommended: {why}. Treated as settings: {chosen} (nothing "
             f"marks them as inputs){held}. To be sure, declare them in the experiment file: "
             f"{declaration} (for a CSV: --workload {','.join(roles.workload)})."]
-    return [f"No roles are declared: {chosen} treated as setting(s), since nothing marks "
+    n_set = len(list(names))
+    return [f"No roles are declared: {chosen} treated as "
+            f"{'a setting' if n_set == 1 else 'settings'}, since nothing marks "
             f"them as inputs{held}. If some factors are inputs or machines, declare them in "
             f"the experiment file: {declaration}."]
 
@@ -604,7 +618,8 @@ def _role_reasons(roles, names, across_given) -> list[str]:
 def _limit_miss_words(lr, fi, confidence) -> str:
     log = lr["scale"] == "log"
     if lr["confident"]:
-        amount = (_pct(lr["worst_ratio"][fi]) if log else f"{lr['worst_excess'][fi]:.4g}")
+        amount = (_pct(lr["worst_ratio"][fi]) if log
+                  else _loss_words(lr["worst_excess"][fi], False, _unit(lr["response"])))
         how = f"may be up to {amount} worse than the best ({confidence * 100:g}% confidence)"
     else:
         amount = _pct(lr["estimate_ratio"][fi]) if log else "more than the limit"
@@ -637,13 +652,16 @@ def _limit_reasons(limit_results, all_settings, eligible, as_map, confidence) ->
         out.append(f"Limit {lr['text']!r}: {n_meet} of {len(all_settings)} settings are {how}"
                    f"; the best on {lr['response']} is {_describe(as_map(all_settings[lr['best']]))}.")
     if limit_results and len(eligible) < len(all_settings):
-        out.append(f"Choosing among the {len(eligible)} setting(s) that meet every limit.")
+        from benchharness.numbers import plural
+
+        out.append(f"Choosing among the {plural(len(eligible), 'setting')} that "
+                   f"{'meets' if len(eligible) == 1 else 'meet'} every limit.")
     return out
 
 
 def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disagreement,
                  pareto_idx, also, is_log, confidence, default, declared, all_settings,
-                 within) -> list[str]:
+                 within, unit: str = "") -> list[str]:
     conf = f"{confidence * 100:g}%"
     out = []
     best = _describe(as_map(settings[best_i]))
@@ -663,7 +681,7 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
         across_words = " and ".join(main.across)
         r = _describe(as_map(settings[rob.robust]))
         a = _describe(as_map(settings[rob.on_average]))
-        wr = _loss_words(rob.worst_loss[rob.robust], is_log)
+        wr = _loss_words(rob.worst_loss[rob.robust], is_log, unit)
         if disagreement is None and rob.worst_loss[rob.robust] <= 1e-12:
             out.append(f"Across {across_words}, {r} has the best estimate in every "
                        "environment.")
@@ -674,11 +692,11 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
         else:
             env = _describe(disagreement["environment"])
             there = (f"{r} is the best there" if disagreement["robust_loss"] <= 1e-12 else
-                     f"{r}: {_loss_words(disagreement['robust_loss'], is_log)} worse there")
+                     f"{r}: {_loss_words(disagreement['robust_loss'], is_log, unit)} worse there")
             out.append(
                 f"Across {across_words}, {r} is the safest choice (never more than "
                 f"{wr} worse than the best of an environment), while {a} is best on average "
-                f"but {_loss_words(disagreement['on_average_loss'], is_log)} worse than the "
+                f"but {_loss_words(disagreement['on_average_loss'], is_log, unit)} worse than the "
                 f"best where {env} ({there}).")
     if main.across and best_i not in (rob.robust, rob.on_average):
         e = int(rob.worst_env[best_i])
@@ -687,8 +705,8 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
         safe_words = (f"{safe} is the best in every environment"
                       if rob.worst_loss[rob.robust] <= 1e-12 else
                       f"{safe} never loses more than "
-                      f"{_loss_words(rob.worst_loss[rob.robust], is_log)}")
-        out.append(f"Mind that {best} is {_loss_words(rob.worst_loss[best_i], is_log)} worse "
+                      f"{_loss_words(rob.worst_loss[rob.robust], is_log, unit)}")
+        out.append(f"Mind that {best} is {_loss_words(rob.worst_loss[best_i], is_log, unit)} worse "
                    f"than the best where {env}; {safe_words}.")
     if also and pareto_idx is not None:
         margin = f" by more than {within * 100:g}%" if within else ""

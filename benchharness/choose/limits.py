@@ -24,6 +24,8 @@ choice says so.
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import re
 from dataclasses import dataclass
 
@@ -103,7 +105,7 @@ def apply_limits(limits, models, confidence: float):
     eligible = [int(i) for i in np.flatnonzero(ok)]
     if limits and not eligible:
         raise DataError("no setting meets every limit ("
-                        + "; ".join(f"{r['text']}: {sum(r['meets'])} setting(s)"
+                        + "; ".join(f"{r['text']}: {plural(sum(r['meets']), 'setting')}"
                                     for r in results)
                         + "); loosen one of them")
     return results, eligible

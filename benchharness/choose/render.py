@@ -6,23 +6,24 @@ statistics; everything comes from ``Choice.to_dict()``.
 
 from __future__ import annotations
 
+from benchharness.numbers import fmt_ratio, pick_scale
+
 __all__ = ["section_dict", "terminal_text"]
+
+
+def _unit(d: dict) -> str:
+    """The response's unit (from its name, or as declared for a custom metric)."""
+    from benchharness.report.units import unit_of
+
+    return unit_of(d["response"])
 
 
 def _setting(m) -> str:
     return ", ".join(f"{k}={v}" for k, v in m.items()) or "(all runs)"
 
 
-def _fmt(x, digits=4) -> str:
-    if x is None:
-        return "-"
-    return f"{x:.{digits}g}"
-
-
 def _ratio_words(r) -> str:
-    if r is None:
-        return "-"
-    return f"x{r:.3f}"
+    return fmt_ratio(r)
 
 
 def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
@@ -36,22 +37,27 @@ def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
     if d.get("also"):
         cols.append("on front")
     rows = []
+    unit = _unit(d)
+    # one unit per column, chosen from the column's values (docs/cli.md)
+    mean_s = pick_scale(unit, [c["mean"] for c in d["candidates"]])
+    loss_s = pick_scale(unit, [c.get(k) for c in d["candidates"]
+                               for k in ("worst_case_loss", "worst_loss", "mean_loss")])
     for c in d["candidates"]:
         excluded = c.get("within_limits") is False
         verdict = ("outside limits" if excluded else "recommended" if c["recommended"]
                    else "tied" if c["tied"] else "worse")
-        wc = _ratio_words(c["worst_case_loss"]) if log else _fmt(c["worst_case_loss"])
+        wc = _ratio_words(c["worst_case_loss"]) if log else loss_s.fmt(c["worst_case_loss"])
         if excluded:
             we = "-"
         elif d["across"]:
             env = _setting(c["worst_environment"])
             we = (f"{_ratio_words(c['worst_ratio'])} ({env})" if log
-                  else f"{_fmt(c['worst_loss'])} ({env})")
+                  else f"{loss_s.fmt(c['worst_loss'])} ({env})")
         else:
-            we = _ratio_words(c["worst_ratio"]) if log else _fmt(c["worst_loss"])
-        row = [_setting(c["setting"]), _fmt(c["mean"]), str(c["runs"]), verdict, wc, we]
+            we = _ratio_words(c["worst_ratio"]) if log else loss_s.fmt(c["worst_loss"])
+        row = [_setting(c["setting"]), mean_s.fmt(c["mean"]), str(c["runs"]), verdict, wc, we]
         if d["across"]:
-            row.append(_ratio_words(c["mean_ratio"]) if log else _fmt(c["mean_loss"]))
+            row.append(_ratio_words(c["mean_ratio"]) if log else loss_s.fmt(c["mean_loss"]))
         if d.get("also"):
             row.append("yes" if c.get("on_front") else "no")
         rows.append(row)

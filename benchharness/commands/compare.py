@@ -87,11 +87,18 @@ def print_comparison(result) -> None:
             table.add_column(col, justify="left", overflow="fold")
         else:
             table.add_column(col, justify="right", no_wrap=True)
-    num = (lambda v: f"{v:.3f}") if ratio else (lambda v: f"{v:.4g}")  # noqa: E731
+    from benchharness.numbers import fmt_ratio, fmt_ratio_interval, pick_scale, plural
+    from benchharness.report.units import unit_of
+
+    unit = unit_of(result.response)
+    # one unit per column, chosen from the column's values; A and B share theirs
+    means = pick_scale(unit, [x for c in cells for x in (c.center_a, c.center_b)])
+    diffs = pick_scale(unit, [x for c in cells for x in (c.estimate, c.low, c.high)])
     for c in cells:
-        table.add_row(*[c.cell[n] for n in names], f"{c.n_a}/{c.n_b}", f"{c.center_a:.4g}",
-                      f"{c.center_b:.4g}", num(c.estimate), f"{num(c.low)}-{num(c.high)}",
-                      c.wording)
+        est = fmt_ratio(c.estimate) if ratio else diffs.fmt(c.estimate)
+        iv = fmt_ratio_interval(c.low, c.high) if ratio else diffs.interval(c.low, c.high)
+        table.add_row(*[c.cell[n] for n in names], f"{c.n_a}/{c.n_b}", means.fmt(c.center_a),
+                      means.fmt(c.center_b), est, iv, c.wording)
     console.print(table)
     tol = f"{result.tolerance * 100:g}%"
     console.print(f"A and B columns: {'geometric ' if ratio else ''}means of "
@@ -103,12 +110,12 @@ def print_comparison(result) -> None:
         console.print(f"Compared on {result.scale_reason}.", highlight=False)
     if result.residual_sd is not None:
         noise = (f"{result.residual_sd * 100:.1f}% (SD of ln {result.response})" if ratio
-                 else f"{result.residual_sd:.4g}")
+                 else pick_scale(unit, [result.residual_sd]).fmt(result.residual_sd))
         console.print(f"Run-to-run noise pooled over cells and both sessions: {noise}, "
                       f"{result.residual_df} df.")
     for label, only in (("A", result.only_in_a), ("B", result.only_in_b)):
         if only:
-            console.print(f"{len(only)} cell(s) only in {label}: "
+            console.print(f"{plural(len(only), 'cell')} only in {label}: "
                           + "; ".join(", ".join(f"{k}={v}" for k, v in c.items()) for c in only))
     for w in result.warnings:
         console.print(f"warning: {w}")

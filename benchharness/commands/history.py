@@ -76,7 +76,9 @@ def main_add(args) -> int:
     for folder in args.results:
         n = add_results(args.db, folder, commit=args.commit, branch=args.branch,
                         responses=responses, select=select)
-        what = f"{n} cell row(s) added" if n else "already recorded, nothing added"
+        from benchharness.numbers import plural
+
+        what = f"{plural(n, 'cell row')} added" if n else "already recorded, nothing added"
         print(f"{folder}: {what} ({args.db})")
     return 0
 
@@ -104,13 +106,15 @@ def main_show(args) -> int:
                                           alpha=args.false_step_level), "--html")
         print(f"wrote {args.html}", file=sys.stderr)
     if args.fail_on_regression:
+        from benchharness.numbers import fmt_ratio
+
         open_regressions = [
             (t, st) for t in trends if t.detection is not None for st in t.detection.steps
             if st.persists is not False and step_kind(t.response, st.ratio, st.persists)
             == "regression"]
         for t, st in open_regressions:
             print(f"regression: {t.experiment} {t.response} {t.label} at commit "
-                  f"{t.points[st.index].commit} (x{st.ratio:.3f})", file=sys.stderr)
+                  f"{t.points[st.index].commit} ({fmt_ratio(st.ratio)})", file=sys.stderr)
         for t in trends:
             for st in (t.detection.unconfirmed if t.detection is not None else ()):
                 if step_kind(t.response, st.ratio, None) == "regression":
@@ -118,7 +122,7 @@ def main_show(args) -> int:
                            f"the newest {st.newest} commits show it, but the look before "
                            "did not")
                     print(f"not yet confirmed: {t.experiment} {t.response} {t.label} at "
-                          f"commit {t.points[st.index].commit} (x{st.ratio:.3f}); {who}, so "
+                          f"commit {t.points[st.index].commit} ({fmt_ratio(st.ratio)}); {who}, so "
                           "it does not fail this check yet", file=sys.stderr)
         return 1 if open_regressions else 0
     return 0

@@ -1,4 +1,4 @@
-"""`benchharness steady FOLDER`: warm-up, steady state and how many runs x iterations."""
+"""`benchharness steady FOLDER`: warm-up, steady state and how many runs × iterations."""
 
 from __future__ import annotations
 
@@ -20,9 +20,9 @@ def add_parser(sub) -> None:
 
 
 def _fmt_s(x) -> str:
-    from benchharness.execute.runner import format_seconds
+    from benchharness.numbers import fmt_seconds
 
-    return format_seconds(x) if x is not None else "-"
+    return fmt_seconds(x)
 
 
 def main(args) -> int:
@@ -53,6 +53,7 @@ def main(args) -> int:
     samples = {k: v for k, v in read_samples_records(folder / "samples.jsonl").items()
                if not v.get("warmup")}
     cells = cell_advice(records, samples, exp.factor_names, target)
+    from benchharness.numbers import plural
     if args.json:
         print(json.dumps({"target_rel_halfwidth": target, "cells": cells}, indent=1))
         return 0
@@ -60,8 +61,9 @@ def main(args) -> int:
           "mean)\n")
     for c in cells:
         label = " ".join(f"{k}={v}" for k, v in c["levels"].items()) or "(single cell)"
-        shapes = ", ".join(f"{n} {k}" for k, n in sorted(c["shapes"].items()))
-        print(f"{label}: {c['cell_shape'] or 'no samples'} — {c['runs']} runs ({shapes})")
+        shapes = "; ".join(f"{n} {k}" for k, n in sorted(c["shapes"].items()))
+        print(f"{label}: {c['cell_shape'] or 'no samples'} — {plural(c['runs'], 'run')} "
+              f"({shapes})")
         if "advice" not in c:
             print(f"  {c['note']}")
             continue
@@ -72,11 +74,13 @@ def main(args) -> int:
         print(f"  steady iteration time {_fmt_s(comp['mean_s'])}; spread between runs "
               f"{_fmt_s(sd_runs)} ({sd_runs / mean:.0%}), between iterations "
               f"{_fmt_s(sd_iter)} ({sd_iter / mean:.0%}) "
-              f"(from {comp['executions']} runs x {comp['iterations']} steady iterations)")
+              f"(from {plural(comp['executions'], 'run')} × "
+              f"{plural(comp['iterations'], 'steady iteration')})")
         print(f"  a run costs {_fmt_s(c['cost_execution_s'])} before its steady iterations, "
               f"an iteration {_fmt_s(c['cost_iteration_s'])}")
         verdict = "reaches" if adv["reached"] else "does not reach"
-        print(f"  advice: {adv['executions']} runs x {adv['iterations']} steady iterations "
+        print(f"  advice: {plural(adv['executions'], 'run')} × "
+              f"{plural(adv['iterations'], 'steady iteration')} "
               f"(about {_fmt_s(adv['cost_s'])}) {verdict} ±{adv['rel_halfwidth']:.2%}")
         if adv.get("note"):
             print(f"  note: {adv['note']}")

@@ -6,7 +6,8 @@ import sys
 
 
 def print_summary(res, outcome) -> None:
-    from benchharness.execute.runner import cell_summary, format_seconds
+    from benchharness.execute.runner import cell_summary
+    from benchharness.numbers import pick_scale
 
     exp = res.experiment
     records = res.records
@@ -31,8 +32,10 @@ def print_summary(res, outcome) -> None:
             print(f"  ... and {len(reasons) - 5} other messages (see the message column of "
                   "runs.csv)")
     header = [*exp.factor_names, "runs ok", "median wall", "IQR", "failed", "timed out"]
-    table = [[*(str(r["levels"][f]) for f in exp.factor_names), str(r["n"]), format_seconds(r["median"]),
-              format_seconds(r["iqr"]), str(r["failed"]), str(r["timeout"])] for r in rows]
+    med = pick_scale("s", [r["median"] for r in rows])   # one unit per column
+    iqr = pick_scale("s", [r["iqr"] for r in rows])
+    table = [[*(str(r["levels"][f]) for f in exp.factor_names), str(r["n"]), med.fmt(r["median"]),
+              iqr.fmt(r["iqr"]), str(r["failed"]), str(r["timeout"])] for r in rows]
     if sys.stdout.isatty():
         from rich.console import Console
         from rich.table import Table

@@ -271,13 +271,13 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
     lo, hi = mean - half, mean + half
     thr = settings.threshold_log
     if lo > thr:
-        return make("regression", f"slower than {1 + settings.tolerance:.3g}x with "
-                    f"{settings.confidence:.3g} confidence", lo, hi, horizon)
+        return make("regression", f"slower than {1 + settings.tolerance:.3g}× with "
+                    f"{settings.confidence * 100:g}% confidence", lo, hi, horizon)
     if hi < thr:
         if hi < settings.improvement_log:
-            passed = ("improvement", f"faster than {1 - settings.tolerance:.3g}x", lo, hi, horizon)
+            passed = ("improvement", f"faster than {1 - settings.tolerance:.3g}×", lo, hi, horizon)
         else:
-            passed = ("no_regression", f"not slower than {1 + settings.tolerance:.3g}x", lo, hi,
+            passed = ("no_regression", f"not slower than {1 + settings.tolerance:.3g}×", lo, hi,
                       horizon)
         if failures_lean_against(only_c, only_b, settings.failure_hold):
             # the timings pass, but the candidate's failures might still decide: keep

@@ -1,11 +1,13 @@
 """What the gate tells people and CI systems: terminal lines, Markdown, JUnit XML, JSON.
 
 Pure functions from a `GateOutcome` to text (the command writes the files).
+Every output speaks the same five verdict words (`WORDS`: worse, not worse,
+better, undecided, broken) and writes numbers with `benchharness.numbers`.
 JUnit XML is the de facto format CI systems read: one ``testsuite`` named
-``benchharness gate``, one ``testcase`` per workload, a ``failure`` element on
-a regression, a ``skipped`` element on an inconclusive verdict (so it shows up
-without failing the job; the exit code still reports it), an ``error`` element
-when a build never ran successfully (nothing was measured).
+``benchharness gate``, one ``testcase`` per workload, a ``failure`` element when
+the verdict is *worse*, a ``skipped`` element when it is *undecided* (so it shows
+up without failing the job; the exit code still reports it), an ``error``
+element when it is *broken* (a build never ran successfully: nothing was measured).
 """
 
 from __future__ import annotations
@@ -14,15 +16,20 @@ import math
 from pathlib import Path
 
 from benchharness.gate.orchestrate import GateOutcome
+from benchharness.numbers import fmt_change, fmt_ratio, fmt_ratio_interval, plural
 
+#: The gate's verdict words: the same strings in the terminal, the Markdown summary, the
+#: JSON (``verdict``) and JUnit XML (docs/gate.md, "Verdict words"). Keys are the
+#: decision's internal names (`benchharness.gate.decide.VERDICTS`).
 WORDS = {
-    "regression": "SLOWER",
-    "no_regression": "ok",
-    "improvement": "FASTER",
-    "inconclusive": "UNDECIDED",
-    "never_ok": "NEVER-OK",
+    "regression": "worse",
+    "no_regression": "not worse",
+    "improvement": "better",
+    "inconclusive": "undecided",
+    "never_ok": "broken",
 }
 
+#: What each verdict word means, in one sentence (the overall line, the Markdown summary).
 OVERALL = {
     "regression": "the candidate is slower than the tolerance allows",
     "no_regression": "no workload got slower beyond the tolerance",
@@ -32,6 +39,11 @@ OVERALL = {
 }
 
 
+def word(verdict: str) -> str:
+    """The verdict word of an internal verdict name ('?' for an unknown one)."""
+    return WORDS.get(verdict, "?")
+
+
 def by_failures(j) -> bool:
     """A regression called by the failure-rate test (the candidate fails more often),
     not by the timings: its ratio may be well inside the tolerance."""
@@ -39,7 +51,14 @@ def by_failures(j) -> bool:
 
 
 def _word(j) -> str:
-    return "FAILS" if by_failures(j) else WORDS.get(j.verdict, "?")
+    return word(j.verdict)
+
+
+def _why(j) -> str:
+    """The reason column; a regression called by the failure-rate test says so first."""
+    if by_failures(j) and "fails more often" not in j.reason:
+        return f"fails more often than the baseline: {j.reason}"
+    return j.reason
 
 
 def _overall(out: GateOutcome) -> str:
@@ -58,60 +77,74 @@ def _overall(out: GateOutcome) -> str:
 
 
 def _pct(r: float | None) -> str:
-    if r is None or not math.isfinite(r):
-        return "n/a"
-    return f"{(r - 1) * 100:+.1f}%"
+    return "n/a" if r is None or not math.isfinite(r) else fmt_change(r)
 
 
 def _ratio(r: float | None) -> str:
-    return "n/a" if r is None or not math.isfinite(r) else f"{r:.3f}"
+    return "n/a" if r is None or not math.isfinite(r) else fmt_ratio(r)
 
 
 def _interval(j) -> str:
     if j.lower is None or j.upper is None:
-        return "[n/a]"
-    return f"[{_ratio(j.lower)}, {_ratio(j.upper)}]"
+        return "no bounds"
+    return fmt_ratio_interval(j.lower, j.upper)
+
+
+def _question(out: GateOutcome) -> str:
+    s = out.settings
+    kind = "higher is better" if s.higher_is_better else "lower is better"
+    return (f"Is the candidate worse than the baseline by more than {s.tolerance * 100:g}%? "
+            f"{plural(len(out.judgements), 'workload')}; {out.response} ({kind}) judged by the "
+            f"slowdown ratio candidate vs baseline on the log scale, {s.confidence * 100:g}% "
+            "confidence")
+
+
+def _table(headers: list[str], rows: list[list[str]], right: set[int]) -> list[str]:
+    """Columns padded to their widest cell; the last column is never padded."""
+    widths = [max(len(r[i]) for r in [headers, *rows]) for i in range(len(headers))]
+    out = []
+    for r in [headers, *rows]:
+        cells = [c.rjust(w) if i in right else c.ljust(w)
+                 for i, (c, w) in enumerate(zip(r, widths))]
+        cells[-1] = r[-1]
+        out.append(("  " + "  ".join(cells)).rstrip())
+    return out
 
 
 def terminal_lines(out: GateOutcome) -> list[str]:
-    s = out.settings
-    kind = "higher is better" if s.higher_is_better else "lower is better"
-    lines = [
-        f"gate on {out.response} ({kind}): slowdown ratio candidate vs baseline on the log "
-        "scale, "
-        f"tolerance {s.tolerance * 100:g}%, confidence {s.confidence:g}, "
-        f"{len(out.judgements)} workload(s)",
-    ]
+    """The question, any warnings, one row per workload, then the verdict line."""
+    lines = [_question(out)]
     for w in out.warnings:
         lines.append(w)
-    width = max([len(k) for k in out.judgements] + [8])
-    lines.append(f"  {'workload':<{width}}  {'verdict':<9}  {'ratio':>6}  {'change':>7}  "
-                 f"{'bounds':<17}  runs  why")
-    for key, j in out.judgements.items():
-        lines.append(f"  {key:<{width}}  {_word(j):<9}  {_ratio(j.ratio):>6}  "
-                     f"{_pct(j.ratio):>7}  {_interval(j):<17}  {j.blocks:>4}  {j.reason}")
-    lines.append(f"verdict: {_overall(out)} ({out.runs} timed runs, "
-                 f"{out.warmups} warm-up runs)")
+    rows = [[key, _word(j), _ratio(j.ratio), _pct(j.ratio), _interval(j), str(j.blocks),
+             _why(j)] for key, j in out.judgements.items()]
+    lines += _table(["workload", "verdict", "ratio", "change", "bounds", "runs each", "why"],
+                    rows, right={2, 3, 5})
+    lines.append(f"verdict: {word(out.verdict)}: {_overall(out)} "
+                 f"({plural(out.runs, 'timed run')}, {plural(out.warmups, 'warm-up run')})")
     return lines
 
 
 def markdown_summary(out: GateOutcome, folder: Path | None = None) -> str:
     s = out.settings
-    icon = {"regression": "FAIL", "no_regression": "PASS", "improvement": "PASS",
-            "inconclusive": "UNDECIDED", "never_ok": "BROKEN"}[out.verdict]
-    md = [f"### Performance gate: {icon}", "",
+    md = [f"### Performance gate: {word(out.verdict)}", "",
           f"{_overall(out).capitalize()} (response `{out.response}`, tolerance "
-          f"{s.tolerance * 100:g}%, confidence {s.confidence:g}).", ""]
+          f"{s.tolerance * 100:g}%, {s.confidence * 100:g}% confidence).", ""]
     for w in out.warnings:
         md += [f"> {w}", ""]
-    md += ["| workload | verdict | slowdown ratio | bounds | runs per build |",
-           "| --- | --- | ---: | --- | ---: |"]
+    md += ["| workload | verdict | slowdown ratio | bounds | runs per build | why |",
+           "| --- | --- | ---: | --- | ---: | --- |"]
     for key, j in out.judgements.items():
-        md.append(f"| {key} | {_word(j)} | {_ratio(j.ratio)} ({_pct(j.ratio)}) "
-                  f"| {_interval(j)} | {j.blocks} |")
+        md.append(f"| {_md(key)} | {_word(j)} | {_ratio(j.ratio)} ({_pct(j.ratio)}) "
+                  f"| {_interval(j)} | {j.blocks} | {_md(_why(j))} |")
     if folder is not None:
         md += ["", f"Results folder: `{folder}`"]
     return "\n".join(md) + "\n\n"
+
+
+def _md(text: str) -> str:
+    """Text safe inside a Markdown table cell."""
+    return str(text).replace("|", "\\|").replace("\n", " ")
 
 
 def junit_xml(out: GateOutcome) -> str:
@@ -126,21 +159,23 @@ def junit_xml(out: GateOutcome) -> str:
     })
     for key, j in cases:
         tc = ET.SubElement(suite, "testcase", {"classname": "benchharness.gate", "name": key})
-        text = (f"slowdown ratio {_ratio(j.ratio)} ({_pct(j.ratio)}), bounds {_interval(j)}, "
-                f"{j.blocks} runs per build; {j.reason}")
+        text = (f"verdict {_word(j)}; slowdown ratio {_ratio(j.ratio)} ({_pct(j.ratio)}), "
+                f"bounds {_interval(j)}, {plural(j.blocks, 'run')} per build; {_why(j)}")
         if j.verdict == "regression":
             f = ET.SubElement(tc, "failure", {
-                "message": (f"fails more often than the baseline: {j.candidate_failures} "
-                            f"failed runs against {j.baseline_failures}" if by_failures(j)
-                            else f"slower than {1 + out.settings.tolerance:g}x: "
-                                 f"{_pct(j.ratio)}"),
-                "type": "performance regression"})
+                "message": (f"{_word(j)}: fails more often than the baseline: "
+                            f"{j.candidate_failures} failed runs against {j.baseline_failures}"
+                            if by_failures(j)
+                            else f"{_word(j)}: slower than "
+                                 f"{fmt_ratio(1 + out.settings.tolerance)}: {_pct(j.ratio)}"),
+                "type": _word(j)})
             f.text = text
         elif j.verdict == "inconclusive":
-            ET.SubElement(tc, "skipped", {"message": f"inconclusive: {text}"})
+            ET.SubElement(tc, "skipped", {"message": f"{_word(j)}: {text}"})
         elif j.verdict == "never_ok":
-            e = ET.SubElement(tc, "error", {"message": f"never ran successfully: {j.reason}",
-                                            "type": "build never ran successfully"})
+            e = ET.SubElement(tc, "error", {"message": f"{_word(j)}: never ran successfully: "
+                                                       f"{j.reason}",
+                                            "type": _word(j)})
             e.text = text
         so = ET.SubElement(tc, "system-out")
         so.text = text
@@ -162,7 +197,7 @@ def _method(s) -> str:
 def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
     s = out.settings
     return {
-        "verdict": out.verdict,
+        "verdict": word(out.verdict),
         "response": out.response,
         "higher_is_better": s.higher_is_better,
         "scale": "log",
@@ -178,7 +213,9 @@ def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
         "results_folder": str(folder) if folder is not None else None,
         "workloads": [
             {"workload": key, "levels": dict(out.workload_levels.get(key, {})),
-             **j.to_json_dict()}
+             **j.to_json_dict(), "verdict": _word(j),
+             "cause": "failures" if by_failures(j) else
+                      ("timings" if j.verdict == "regression" else None)}
             for key, j in out.judgements.items()
         ],
     }

@@ -13,18 +13,20 @@ import math
 import re
 
 from benchharness.history.trends import CellTrend, step_kind
+from benchharness.numbers import Scale, fmt_ratio, fmt_ratio_interval, pick_scale, plural
 
 
-def _fmt(v, digits: int = 4) -> str:
-    if v is None or (isinstance(v, float) and not math.isfinite(v)):
-        return "-"
-    return f"{v:.{digits}g}"
+def _scale(t: CellTrend) -> Scale:
+    """One unit for the cell's whole table (means, intervals, noise), from its values."""
+    from benchharness.report.units import unit_of
+
+    return pick_scale(unit_of(t.response), [p.center for p in t.points])
 
 
 def _ratio_text(r, lo, hi) -> str:
     if r is None:
         return ""
-    return f"x{r:.3f} ({lo:.3f}-{hi:.3f})"
+    return f"{fmt_ratio(r)} ({fmt_ratio_interval(lo, hi)})"
 
 
 def point_notes(t: CellTrend) -> dict[int, str]:
@@ -71,8 +73,8 @@ def step_rows(trends: list[CellTrend]) -> list[dict]:
                          "commit": t.points[st.index].commit[:12],
                          "kind": step_kind(t.response, st.ratio, st.persists).replace(
                              " (did not last)", ""),
-                         "ratio": f"x{st.ratio:.3f}",
-                         "interval": f"{st.ratio_low:.3f}-{st.ratio_high:.3f}",
+                         "ratio": fmt_ratio(st.ratio),
+                         "interval": fmt_ratio_interval(st.ratio_low, st.ratio_high),
                          "lasts": _LASTS[st.persists]})
     return rows
 
@@ -110,23 +112,24 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
             else:
                 table.add_column(col, justify=just, no_wrap=True)
         notes = point_notes(t)
+        sc = _scale(t)
         for i, p in enumerate(t.points):
             noise = "-"
             if math.isfinite(p.sd):
-                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else _fmt(p.sd)
-            ci = "-" if p.ci_low is None else f"{_fmt(p.ci_low)}-{_fmt(p.ci_high)}"
+                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
+            ci = "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high)
             row = [str(i + 1), p.commit[:10]]
             if with_time:
                 row.append((p.commit_time or "")[:10])
             if with_branch:
                 row.append(p.branch or "")
-            row += [str(p.n), _fmt(p.center), ci, noise, notes.get(i, "")]
+            row += [str(p.n), sc.fmt(p.center), ci, noise, notes.get(i, "")]
             table.add_row(*row)
         console.print(table)
         det = t.detection
         if det is not None:
             if det.steps:
-                console.print(f"  {len(det.steps)} step(s) found (false-step level "
+                console.print(f"  {plural(len(det.steps), 'step')} found (false-step level "
                               f"{det.alpha:g} per host).")
             elif len(t.points) >= 3:
                 console.print(f"  No step found (false-step level {det.alpha:g} per host).")
@@ -176,7 +179,7 @@ def trend_figure_svg(t: CellTrend) -> str:
                 ax.hlines(level, seg.start - 0.4, seg.stop - 0.6, color="#7f7f7f", lw=1.5)
             for s in det.steps:
                 ax.axvline(s.index - 0.5, color="#b22222", ls="--", lw=1.2)
-                ax.annotate(f"x{s.ratio:.3f}", (s.index - 0.5, 1), xycoords=("data",
+                ax.annotate(fmt_ratio(s.ratio), (s.index - 0.5, 1), xycoords=("data",
                             "axes fraction"), color="#b22222", fontsize=8, ha="left",
                             va="top", xytext=(3, -3), textcoords="offset points")
             for b in det.breaks:
@@ -265,13 +268,14 @@ def render_html(trends: list[CellTrend], experiment: str | None = None,
         det = t.detection
         breaks = {b.index for b in det.breaks} if det is not None else set()
         rows = []
+        sc = _scale(t)
         for i, p in enumerate(t.points):
             noise = "-"
             if math.isfinite(p.sd):
-                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else _fmt(p.sd)
+                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
             rows.append({"i": i + 1, "commit": p.commit[:12], "time": (p.commit_time or "")[:19],
-                         "branch": p.branch or "", "n": p.n, "center": _fmt(p.center),
-                         "ci": "-" if p.ci_low is None else f"{_fmt(p.ci_low)} - {_fmt(p.ci_high)}",
+                         "branch": p.branch or "", "n": p.n, "center": sc.fmt(p.center),
+                         "ci": "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high),
                          "noise": noise, "note": notes.get(i, ""),
                          "cls": "host" if i in breaks else ("step" if i in notes else "")})
         summary = ""

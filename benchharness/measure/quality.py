@@ -30,6 +30,7 @@ from pathlib import Path
 from typing import Iterable, Mapping
 
 from benchharness.execute.base import Measurement, RunSpec
+from benchharness.numbers import plural
 
 SAMPLES_CAPTURE_BYTES = 8 * 2**20
 
@@ -328,6 +329,7 @@ class RunQuality:
 
     def _samples(self, token, planned, m: Measurement, reasons: list[str]) -> dict:
         from benchharness.measure.steady.samples import analyse_run, extract_samples
+        from benchharness.measure.steady.warmup import NEVER_STEADY, TOO_SHORT
 
         cfg = self.cfg.samples
         raw = m.stdout_tail if cfg.stream == "stdout" else m.stderr_tail
@@ -342,9 +344,9 @@ class RunQuality:
             return cols
         c, analysis = analyse_run(samples)
         cols = {"steady_s": c["steady_s"], "steady_state": c["warmup_shape"]}
-        if c["warmup_shape"] == "no steady state":
-            reasons.append(f"no steady state: {analysis['reason']}")
-        elif c["warmup_shape"] == "too short":
+        if c["warmup_shape"] == NEVER_STEADY:
+            reasons.append(f"never steady: {analysis['reason']}")
+        elif c["warmup_shape"] == TOO_SHORT:
             reasons.append(f"steady state unknown: {analysis['reason']}")
         self._write_samples({"run": planned["run"], "position": planned.get("position"),
                              "warmup": bool(planned.get("warmup")), "status": m.status,
@@ -376,13 +378,14 @@ class RunQuality:
             return
         from benchharness.results import journal as J
         from benchharness.measure.steady.samples import cell_advice, read_samples_records
+        from benchharness.measure.steady.warmup import NEVER_STEADY, class_name
 
         samples = {k: v for k, v in read_samples_records(self.folder / "samples.jsonl").items()
                    if not v.get("warmup")}
         advice = cell_advice(records, samples, self.exp.factor_names,
                              self.cfg.samples.target_rel_halfwidth)
         flagged = sorted(int(k) for k, v in samples.items()
-                         if (v.get("analysis") or {}).get("shape") == "no steady state")
+                         if class_name((v.get("analysis") or {}).get("shape")) == NEVER_STEADY)
         J.write_atomic(self.folder / "steady.json", json.dumps({
             "method": "PELT changepoints (Killick et al. 2012) on log iteration times, "
                       "warm-up classes after Barrett et al. 2017, variance components and "
@@ -391,7 +394,7 @@ class RunQuality:
             "runs_without_steady_state": flagged,
             "cells": advice}, indent=1, default=str))
         if flagged:
-            self.notes.append(f"{len(flagged)} run(s) never reached a steady state "
+            self.notes.append(f"{plural(len(flagged), 'run')} never reached a steady state "
                               f"(runs {', '.join(map(str, flagged[:10]))}); see steady.json")
 
 

@@ -13,7 +13,9 @@ import datetime as _dt
 from benchharness.report import story
 from benchharness.report.data import ReportData, finite
 from benchharness.report.figures import FigureSet
-from benchharness.report.units import describe, fmt_num, fmt_p, fmt_ratio, fmt_value
+from benchharness.report.units import (
+    column_scale, describe, fmt_num, fmt_p, fmt_ratio, fmt_ratio_interval,
+)
 
 #: Most comparison rows listed in a report (the rest are in analysis.json).
 MAX_COMPARISONS = 200
@@ -64,29 +66,31 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         if f["kind"] == "interaction":
             for x in f["factors"]:
                 depends.setdefault(x, []).extend(y for y in f["factors"] if y != x)
+    dscale = column_scale(resp, [e.get("difference") for e in data.analysis.get("effects") or []])
     for e in data.analysis.get("effects") or []:
         lo, hi = e.get("lower"), e.get("upper")
         sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
         row = {"factor": e.get("factor"), "level": e.get("level"),
                "reference": e.get("reference"), "ratio": fmt_ratio(e.get("ratio")),
-               "interval": (f"{fmt_ratio(lo)} to {fmt_ratio(hi)}" if finite(lo) and finite(hi)
+               "interval": (fmt_ratio_interval(lo, hi) if finite(lo) and finite(hi)
                             else "not estimable (empty cells)" if e.get("estimable") is False
                             else "–"),
                "significant": sig, "difference": "",
                "depends": ", ".join(dict.fromkeys(depends.get(e.get("factor"), [])))}
         if finite(e.get("difference")):
             has_diff = True
-            row["difference"] = fmt_value(e.get("difference"), resp)
+            row["difference"] = dscale.fmt(e.get("difference"))
         effects.append(row)
     level_means = []
-    for m in data.analysis.get("means") or []:
+    shown_means = [m for m in data.analysis.get("means") or [] if m.get("term") in data.factors]
+    scale = column_scale(resp, [m.get(k) for m in shown_means for k in ("mean", "lower", "upper")])
+    for m in shown_means:
         term = m.get("term")
         if term in data.factors:
             level_means.append({
                 "factor": term, "level": (m.get("levels") or {}).get(term, ""),
-                "mean": fmt_value(m.get("mean"), resp),
-                "interval": (f"{fmt_value(m.get('lower'), resp)} to "
-                             f"{fmt_value(m.get('upper'), resp)}"
+                "mean": scale.fmt(m.get("mean")),
+                "interval": (scale.interval(m.get("lower"), m.get("upper"))
                              if finite(m.get("lower")) and finite(m.get("upper")) else "–"),
                 "n": m.get("n", ""),
             })
@@ -100,7 +104,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
             "method": method,
             "factor": c.get("factor"), "within": c["within_text"],
             "a": c.get("a"), "b": c.get("b"), "ratio": fmt_ratio(c.get("ratio")),
-            "interval": (f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}"
+            "interval": (fmt_ratio_interval(c.get("lower"), c.get("upper"))
                          if finite(c.get("lower")) and finite(c.get("upper"))
                          else "not estimable"),
             "p": fmt_p(c.get("p_adj")), "significant": c["significant"],
@@ -115,14 +119,16 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
     else:
         art = None
     cells = []
-    for c in story.cell_summary(data)[:MAX_CELLS]:
+    summary = story.cell_summary(data)[:MAX_CELLS]
+    # one unit per column, chosen from the column's values (docs/cli.md)
+    sc = {k: column_scale(resp, [c[k] for c in summary])
+          for k in ("median", "iqr", "min", "max", "mean")}
+    for c in summary:
         cells.append({
             "levels": [c["levels"][f] for f in data.factors],
             "ok": c["ok"], "failed": c["failed"], "timeout": c["timeout"],
-            "median": fmt_value(c["median"], resp), "iqr": fmt_value(c["iqr"], resp),
-            "min": fmt_value(c["min"], resp), "max": fmt_value(c["max"], resp),
-            "mean": fmt_value(c["mean"], resp),
-            "interval": (f"{fmt_value(c['lower'], resp)} to {fmt_value(c['upper'], resp)}"
+            **{k: sc[k].fmt(c[k]) for k in ("median", "iqr", "min", "max", "mean")},
+            "interval": (sc["mean"].interval(c["lower"], c["upper"])
                          if finite(c.get("lower")) and finite(c.get("upper")) else ""),
             "flag": c["timeout"] > 0 or c["failed"] > 0,
         })

@@ -14,20 +14,53 @@ from typing import Mapping
 
 from benchharness.report import story
 from benchharness.report.data import ReportData
-from benchharness.report.units import fmt_num, fmt_p, fmt_ratio
+from benchharness.report.units import fmt_num, fmt_p, fmt_ratio, fmt_ratio_interval
+
+
+class PipedText:
+    """A text stream for output that is not a terminal: lines are written whole, with
+    no trailing spaces (tables pad their last column; a log or a diff should not see it)."""
+
+    def __init__(self, stream):
+        self._stream = stream
+        self._pending = ""
+
+    def write(self, text: str) -> int:
+        self._pending += text
+        *lines, self._pending = self._pending.split("\n")
+        for line in lines:
+            self._stream.write(line.rstrip(" ") + "\n")
+        return len(text)
+
+    def flush(self) -> None:
+        if self._pending:
+            self._stream.write(self._pending.rstrip(" "))
+            self._pending = ""
+        self._stream.flush()
+
+    def isatty(self) -> bool:
+        return False
+
+
+#: Width given to rich when the output is not a terminal: wide enough that no prose or
+#: table is ever hard-wrapped (a log viewer or an editor wraps for its reader).
+PIPED_WIDTH = 100_000
 
 
 def make_console(file=None):
+    """A rich console: colour only on a terminal with ``NO_COLOR`` unset; when piped no
+    colour, no wrapping and no trailing spaces (docs/cli.md, "What goes where")."""
     from rich.console import Console
 
     stream = file or sys.stdout
     tty = hasattr(stream, "isatty") and stream.isatty()
     no_color = bool(os.environ.get("NO_COLOR")) or not tty
-    # Not a terminal (a log, a pipe): no width to fit, so keep tables readable.
-    width = None if tty else int(os.environ.get("COLUMNS", 0) or 0) or 110
+    if not tty:
+        return Console(file=PipedText(stream), no_color=True, highlight=False, emoji=False,
+                       force_terminal=False, width=PIPED_WIDTH, color_system=None,
+                       soft_wrap=True)
     return Console(file=stream, no_color=no_color, highlight=False, emoji=False,
-                   force_terminal=tty if tty else None, width=width,
-                   color_system=None if no_color else "auto")
+                   force_terminal=True, color_system=None if no_color else "auto")
 
 
 def _data_from(analysis) -> ReportData:
@@ -74,16 +107,15 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
     for i in v["interactions"]:
         con.print(Text("  • " + i))
     for f in v["factors"]:
-        con.print(Text("  • " + f["summary"], style=None if f["significant"] else "dim"))
+        con.print(Text("  • " + f["summary"]))
     if v["recommendation"]:
         con.print(Text("  " + v["recommendation"], style="bold green"))
     if v["best"]:
         con.print(Text("  " + v["best"], style="green"))
     for c in v["cautions"]:
         con.print(Text("  ! " + c, style="yellow"))
-    for s in v["sure"]:
-        con.print(Text("  " + s, style="dim"))
-    con.print(Text("  " + v["transform"], style="dim"))
+    for s in v["sure"]:        # how far to trust the verdict: a caution, never dim
+        con.print(Text("  " + s))
     con.print()
 
     t = Table(title="Analysis of variance", box=box.SIMPLE_HEAD, title_justify="left",
@@ -97,10 +129,13 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
 
         t.add_row(Text(str(r.get("chain") or r.get("term"))), fmt_df(r.get("df")), fmt_num(r.get("sum_sq")),
                   fmt_num(r.get("mean_sq")), fmt_num(r.get("F")),
-                  fmt_p(r.get("p")).replace("< ", "<"),
+                  fmt_p(r.get("p")),
                   fmt_num(r.get("partial_eta_sq"), 2), fmt_num(r.get("omega_sq"), 2),
                   style=style)
     con.print(t)
+    if v["transform"]:     # the scale and the Box-Cox evidence belong with the table
+        con.print(Text("  Scale: " + v["transform"]))
+        con.print()
 
     effects = data.analysis.get("effects") or []
     if effects:
@@ -114,7 +149,7 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
             sig = lo is not None and hi is not None and (float(lo) > 1 or float(hi) < 1)
             t.add_row(Text(str(e.get("factor"))), Text(str(e.get("level"))),
                       Text(str(e.get("reference"))), fmt_ratio(e.get("ratio")),
-                      (f"{fmt_ratio(lo)} to {fmt_ratio(hi)}" if lo is not None and hi is not None
+                      (fmt_ratio_interval(lo, hi) if lo is not None and hi is not None
                        else "not estimable (empty cells)" if e.get("estimable") is False
                        else "–"), style="bold" if sig else None)
         con.print(t)
@@ -153,7 +188,7 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
             t.add_row(method,
                       Text(f"{c.get('factor')}: {c.get('a')} over {c.get('b')}{within}"),
                       fmt_ratio(c.get("ratio")),
-                      f"{fmt_ratio(c.get('lower'))} to {fmt_ratio(c.get('upper'))}",
+                      fmt_ratio_interval(c.get("lower"), c.get("upper")),
                       fmt_p(c.get("p_adj")), style="bold" if c["significant"] else None)
         con.print(t)
         if len(all_comps) > len(comps):
@@ -167,4 +202,4 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
         for w in warns:
             con.print(Text(f"  ! {w['kind']}: {w['text']}", style="yellow"))
         for n in notes:
-            con.print(Text(f"  - {n}", style="dim"))
+            con.print(Text(f"  - {n}"))

@@ -1,14 +1,19 @@
 """Units and number formatting shared by every report renderer.
 
 Column names carry their unit as a suffix (DESIGN.md: ``wall_s``, ``max_rss_kib``).
-This module reads that suffix back, gives a readable axis label, picks a display
-scale (seconds shown as ms or µs when values are small) and formats numbers,
-ratios and p-values in one consistent way for HTML, Markdown and the terminal.
+This module reads that suffix back, gives a readable axis label and picks a display
+scale (seconds shown as ms or µs when values are small); the numbers themselves are
+written by `benchharness.numbers`, the one formatter of every output.
 """
 
 from __future__ import annotations
 
 import math
+
+from benchharness.numbers import (  # noqa: F401  (re-exported: the renderers import them here)
+    Scale, fmt_change, fmt_interval, fmt_num, fmt_p, fmt_pct, fmt_ratio, fmt_ratio_interval,
+    pick_scale, plural,
+)
 
 # suffix -> (unit shown, family, factor to base unit of the family)
 _SUFFIXES = {
@@ -68,16 +73,19 @@ def describe(column: str) -> str:
 def display_scale(column: str, typical: float | None) -> tuple[float, str]:
     """(multiplier, unit) to show values of ``column`` whose typical size is ``typical``.
 
-    Times in seconds below 0.1 s are shown in ms, below 100 µs in µs, so axis ticks
-    read ``12.5`` rather than ``0.0125``.
+    The same rule as every table column (`benchharness.numbers.pick_scale`): times in
+    seconds below 0.1 s are shown in ms, below 100 µs in µs, so axis ticks read
+    ``12.5`` rather than ``0.0125``.
     """
-    unit = unit_of(column)
-    if unit == "s" and typical is not None and math.isfinite(typical) and typical > 0:
-        if typical < 1e-4:
-            return 1e6, "µs"
-        if typical < 0.1:
-            return 1e3, "ms"
-    return 1.0, unit
+    if typical is None or not math.isfinite(typical) or typical <= 0:
+        return 1.0, unit_of(column)
+    return tuple(pick_scale(unit_of(column), [typical]))
+
+
+def column_scale(column: str, values) -> Scale:
+    """One display unit for a whole table column of ``column``'s values (never µs above
+    ms above s); ``.fmt(x)`` writes one value, ``.interval(lo, hi)`` an interval."""
+    return pick_scale(unit_of(column), values)
 
 
 def axis_label(column: str, unit: str | None = None) -> str:
@@ -89,63 +97,10 @@ def axis_label(column: str, unit: str | None = None) -> str:
     return f"{name} ({unit})" if unit else name
 
 
-def fmt_num(x, digits: int = 3) -> str:
-    """A number with ``digits`` significant figures; '–' for missing."""
-    if x is None:
-        return "–"
-    try:
-        x = float(x)
-    except (TypeError, ValueError):
-        return str(x)
-    if not math.isfinite(x):
-        return "–" if math.isnan(x) else ("∞" if x > 0 else "-∞")
-    if x == 0:
-        return "0"
-    ax = abs(x)
-    if ax >= 1e6 or ax < 1e-4:
-        return f"{x:.{digits - 1}e}"
-    decimals = max(0, digits - 1 - int(math.floor(math.log10(ax))))
-    return f"{x:,.{decimals}f}"
-
-
 def fmt_value(x, column: str) -> str:
-    """A response value with its unit, seconds scaled to ms/µs when small."""
-    if x is None or (isinstance(x, float) and math.isnan(x)):
-        return "–"
-    mult, unit = display_scale(column, abs(float(x)))
-    text = fmt_num(float(x) * mult)
-    return f"{text} {unit}" if unit else text
-
-
-def fmt_ratio(x) -> str:
-    """A ratio such as ``2.31×``."""
-    if x is None:
-        return "–"
-    x = float(x)
-    if not math.isfinite(x):
-        return "–"
-    return f"{fmt_num(x)}×"
-
-
-def fmt_p(p) -> str:
-    """A p-value: ``< 0.001`` below that, else three decimals (two significant if tiny)."""
-    if p is None:
-        return "–"
-    p = float(p)
-    if math.isnan(p):
-        return "–"
-    if p < 0.001:
-        return "< 0.001"
-    return f"{p:.3f}"
-
-
-def fmt_pct(x, digits: int = 1) -> str:
-    if x is None:
-        return "–"
-    x = float(x)
-    if math.isnan(x):
-        return "–"
-    return f"{100 * x:.{digits}f}%"
+    """A response value with its unit, seconds scaled to ms/µs when small (a lone value;
+    a table column uses `column_scale` so that all its rows share one unit)."""
+    return pick_scale(unit_of(column), [x]).fmt(x)
 
 
 def times_phrase(ratio: float) -> str:

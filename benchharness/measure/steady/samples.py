@@ -251,6 +251,7 @@ def cell_advice(records, samples: dict[int, dict], factor_names, target: float =
     import numpy as np
 
     from benchharness.measure.steady.components import balanced, recommend, variance_components
+    from benchharness.measure.steady.warmup import RUNS_DISAGREE, class_name
 
     cells: dict[tuple, list] = {}
     for r in records:
@@ -267,7 +268,8 @@ def cell_advice(records, samples: dict[int, dict], factor_names, target: float =
             if not rec:
                 continue
             an = rec.get("analysis") or {}
-            shapes[an.get("shape", "?")] = shapes.get(an.get("shape", "?"), 0) + 1
+            shape = class_name(an.get("shape", "?"))
+            shapes[shape] = shapes.get(shape, 0) + 1
             start = an.get("steady_from")
             if start is None:
                 continue
@@ -277,10 +279,10 @@ def cell_advice(records, samples: dict[int, dict], factor_names, target: float =
             steady.append(part)
             if r.get("wall_s") is not None:
                 exec_costs.append(max(float(r["wall_s"]) - float(sum(part)), 0.0))
-        # Across executions (Barrett et al. 2017): one class when all runs agree,
-        # else "inconsistent".
+        # Across executions (as Barrett et al. 2017 do): one class when all runs agree,
+        # else "runs disagree".
         cell_shape = next(iter(shapes)) if len(shapes) == 1 else (
-            "inconsistent" if shapes else None)
+            RUNS_DISAGREE if shapes else None)
         entry: dict = {"levels": levels, "runs": len(runs), "shapes": shapes,
                        "cell_shape": cell_shape, "runs_with_steady_state": len(steady)}
         mat = balanced(steady)

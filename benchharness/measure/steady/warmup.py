@@ -1,22 +1,24 @@
 """Warm-up versus steady state of one execution's per-iteration timings.
 
-Classification of warm-up behaviour after Barrett, Bolz-Tereick, Killick,
-Mount & Tratt (2017), "Virtual machine warmup blows hot and cold" (OOPSLA):
-changepoints are found with PELT (Killick et al. 2012, see `changepoint`), the
-last segment is the candidate steady state, and the series is called
+The method follows Barrett, Bolz-Tereick, Killick, Mount & Tratt (2017),
+"Virtual machine warmup blows hot and cold" (OOPSLA): changepoints are found
+with PELT (Killick et al. 2012, see `changepoint`), the last segment is the
+candidate steady state, and the series falls in one of four classes, which we
+name in our own plain words (`SHAPES`; docs/measurement.md):
 
-* ``flat``: no change in mean worth the name anywhere;
-* ``warm-up``: the steady state is reached and no earlier stretch was faster;
-* ``slow-down``: the steady state is reached but some earlier stretch was
-  faster (the program got slower and stayed so);
-* ``no steady state``: the mean still changes within the final part of the
+* ``steady from the start``: no change in mean worth the name anywhere;
+* ``steady after speeding up``: the steady state is reached and no earlier stretch
+  was faster (the run sped up, then settled);
+* ``steady after slowing down``: the steady state is reached but some earlier
+  stretch was faster (the program got slower and stayed so);
+* ``never steady``: the mean still changes within the final part of the
   series, so the run never settled.
 
 Following Barrett et al., the changepoint penalty is 15 log n and a change
-inside the last quarter of the series means no steady state (both from
+inside the last quarter of the series means never steady (both from
 memory). Our own choices, documented in docs/measurement.md: a final segment
 whose first and last thirds differ by more than the tolerance and three
-standard errors is still drifting (no steady state); the search runs on
+standard errors is still drifting (never steady); the search runs on
 log timings (per-run timings are right-skewed, common practice; a change then
 means a relative change); isolated spikes (up to three points in a row far outside a
 rolling median +- 6 rolling MADs, the first iteration excepted) are replaced
@@ -35,14 +37,31 @@ import numpy as np
 
 from benchharness.measure.steady.changepoint import DEFAULT_PENALTY_FACTOR, pelt
 
-SHAPES = ("flat", "warm-up", "slow-down", "no steady state")
+STEADY_FROM_START = "steady from the start"
+FASTER_THEN_STEADY = "steady after speeding up"
+SLOWER_THEN_STEADY = "steady after slowing down"
+NEVER_STEADY = "never steady"
+TOO_SHORT = "too short"
+#: the classes of one run, in our own words (the JSON, runs.csv and every report use them)
+SHAPES = (STEADY_FROM_START, FASTER_THEN_STEADY, SLOWER_THEN_STEADY, NEVER_STEADY)
+#: the class of a cell whose runs fall in different classes
+RUNS_DISAGREE = "runs disagree"
+#: the names results folders written before this vocabulary carry, read as the new ones
+EARLIER_NAMES = {"flat": STEADY_FROM_START, "warm-up": FASTER_THEN_STEADY,
+                 "slow-down": SLOWER_THEN_STEADY, "no steady state": NEVER_STEADY,
+                 "inconsistent": RUNS_DISAGREE}
+
+
+def class_name(name):
+    """The current name of a class read from a file (earlier names translated)."""
+    return EARLIER_NAMES.get(name, name)
 
 
 @dataclass(frozen=True)
 class WarmupSettings:
     penalty_factor: float = DEFAULT_PENALTY_FACTOR  # penalty = factor * log(n)
     min_size: int = 2
-    final_fraction: float = 0.25   # a change inside the last 25 % -> no steady state
+    final_fraction: float = 0.25   # a change inside the last 25 % -> never steady
     min_final: int = 3             # ... or inside the last 3 iterations, whichever is more
     rel_tol: float = 0.02          # segment means within 2 % are the same level
     abs_tol_s: float = 1e-9
@@ -64,7 +83,7 @@ class Segment:
 class WarmupResult:
     """What one execution's iterations say.
 
-    ``shape`` is one of `SHAPES` (or ``"too short"``); ``steady_from`` is the
+    ``shape`` is one of `SHAPES` (or `TOO_SHORT`); ``steady_from`` is the
     first iteration of the steady state (= warm-up length); ``steady_s`` the
     mean iteration time there (None without a steady state); ``changepoints``
     the raw PELT changepoints; ``segments`` after merging equivalent
@@ -166,7 +185,7 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     y = y[np.isfinite(y)]
     n = int(y.size)
     if n < s.min_iterations:
-        return WarmupResult(n, "too short", None, None, None, 0, (), (), 0,
+        return WarmupResult(n, TOO_SHORT, None, None, None, 0, (), (), 0,
                             reason=f"{n} iterations; at least {s.min_iterations} are needed "
                                    "to tell warm-up from steady state", settings=s)
     positive = bool(np.all(y > 0))
@@ -204,18 +223,18 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     last = segments[-1]
     final = max(s.min_final, int(math.ceil(s.final_fraction * n)))
     if len(segments) > 1 and last.start > n - final:
-        return WarmupResult(n, "no steady state", None, None, None, 0, changepoints, segments,
+        return WarmupResult(n, NEVER_STEADY, None, None, None, 0, changepoints, segments,
                             spikes, reason=f"the mean still changes at iteration {last.start} "
                             f"of {n} (within the last {final})", settings=s)
     drift = _drift(y[last.start:last.end], s)
     if drift:
-        return WarmupResult(n, "no steady state", None, None, None, 0, changepoints,
+        return WarmupResult(n, NEVER_STEADY, None, None, None, 0, changepoints,
                             segments, spikes, reason=drift, settings=s)
     if len(segments) == 1:
-        shape = "flat"
+        shape = STEADY_FROM_START
     else:
         faster = [g for g in segments[:-1]
                   if g.mean_s < last.mean_s and not _same_level(g.mean_s, last.mean_s, s)]
-        shape = "slow-down" if faster else "warm-up"
+        shape = SLOWER_THEN_STEADY if faster else FASTER_THEN_STEADY
     return WarmupResult(n, shape, last.start, last.mean_s, last.sd_s, last.end - last.start,
                         changepoints, segments, spikes, settings=s)
