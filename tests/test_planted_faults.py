@@ -196,7 +196,9 @@ def test_outlier_cutoff_is_bonferroni_over_the_runs():
     np.testing.assert_allclose(an.studentized, ref["student_resid"].to_numpy(), rtol=1e-8)
     # what it says: one run stands out, named with the Bonferroni cut-off
     assert an.diagnostics["outlier_count"] == 1
-    assert "1 run(s) stand out beyond the Bonferroni cut-off" in an.diagnostics["outlier_verdict"]
+    said = an.diagnostics["outlier_verdict"]
+    assert said.startswith("1 run stands out from its cell (studentized residuals beyond ±")
+    assert "the Bonferroni cut-off" in said
     # the 5-sd run is beyond the unadjusted cut-off, so a cut-off without Bonferroni
     # would have named it too
     t5 = abs(float(an.studentized[5]))
@@ -207,7 +209,7 @@ def test_no_planted_outlier_no_run_stands_out():
     d = _runs_with_planted_outliers(planted=())
     an = analyze(d, factors=["a", "b"], transform="log", comparisons=False, art=False)
     assert an.diagnostics["outliers"] == [] and an.diagnostics["outlier_count"] == 0
-    assert an.diagnostics["outlier_verdict"] == "no run stands out beyond the Bonferroni cut-off"
+    assert an.diagnostics["outlier_verdict"] == "no run stands out from its cell"
 
 
 # ---------------------------------------------------------------- atomic writer

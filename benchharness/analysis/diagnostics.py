@@ -237,8 +237,9 @@ def outliers(r, leverage_rows, rss, df_resid, run_ids, alpha: float, limit: int 
     if len(idx) == 0:
         verdict = "no run stands out from its cell"
     else:
-        verdict = (f"{'1 run stands' if len(idx) == 1 else f'{len(idx)} runs stand'} out from "
-                   f"their cells (studentized residuals beyond ±{cutoff:.2f}, the Bonferroni "
+        who = ("1 run stands out from its cell" if len(idx) == 1 else
+               f"{len(idx)} runs stand out from their cells")
+        verdict = (f"{who} (studentized residuals beyond ±{cutoff:.2f}, the Bonferroni "
                    "cut-off); check them for interference (other load, a cold cache) before "
                    "trusting means")
     return {"cutoff": cutoff, "count": int(len(idx)), "runs": listed, "verdict": verdict,
