@@ -204,20 +204,16 @@ def analyze(data, response: str = "wall_s", factors=None, block=None, transform=
     default: the results folder's metrics.json, else lower).
 
     Linear algebra here works on small matrices (cells × parameters), where
-    multi-threaded BLAS only adds overhead on a busy machine, so BLAS is held to
-    one thread for the call when threadpoolctl is available.
+    multi-threaded BLAS only adds overhead on a busy machine, so every BLAS copy is
+    held to one thread for the call when threadpoolctl is available (threads.py).
     """
     kwargs = dict(response=response, factors=factors, block=block, transform=transform,
                   model=model, ss_type=ss_type, alpha=alpha, reference=reference,
                   adjust=adjust, compare=compare, art=art, comparisons=comparisons,
                   better=better)
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # optional: only speed depends on it
-        return _analyze(data, **kwargs)
-    import scipy.linalg  # noqa: F401  (its own BLAS, loaded before the limit so it holds)
+    from benchharness.analysis.threads import one_thread
 
-    with threadpool_limits(1):
+    with one_thread():  # every BLAS copy held to one thread (threads.py)
         return _analyze(data, **kwargs)
 
 
@@ -226,7 +222,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
             adjust: str = "bonferroni", compare=None, art="auto",
             comparisons=True, better=None) -> Analysis:
     """The work of `analyze` (same arguments)."""
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     from benchharness.analysis import comparisons as cmp
     from benchharness.analysis import diagnostics as dg

@@ -60,7 +60,7 @@ def art_anova(codes, sizes, names, z, terms, ss_type, alpha, anova_p: dict,
     the model's fitted value of each row (computed when None); ``anova_p`` holds
     the parametric p-values to compare with.
     """
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     codes = list(codes)
     cells = index_cells(codes, sizes)

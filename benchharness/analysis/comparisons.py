@@ -71,7 +71,7 @@ def adjust_p(p, method: str) -> np.ndarray:
 
 
 def _t_p(d, se, df):
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     if se is None or not (se > 0) or df <= 0:
         return None
@@ -84,7 +84,7 @@ def _family(fit: Fit, items, choice, alpha, adjust, method, names):
     Raw p from the t test of each contrast; adjusted p by ``adjust``; each
     interval at the level that matches its adjusted p (see the module notes).
     """
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     m = len(items)
     if m == 0 or fit.df_resid <= 0:
@@ -205,7 +205,7 @@ def tukey(fit: Fit, names, levels, factor_idx, choice, alpha, refs=None) -> list
         idx = [i for i, q in enumerate(stats_q) if q is not None]
         if idx:
             ps = srange.sf(np.array([stats_q[i] for i in idx]), k, fit.df_resid)
-            from scipy import stats as st
+            from benchharness.analysis import dist as st
 
             for i, p in zip(idx, np.atleast_1d(ps)):
                 # p: the pair's own two-sided t test (t = q / √2); p_adj: Tukey's

@@ -79,7 +79,7 @@ def anderson_darling_stat(x: np.ndarray) -> float:
 
 
 def normality(r: np.ndarray, alpha: float) -> dict:
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     n = len(r)
     if n < 3:
@@ -146,7 +146,7 @@ def group_medians(row_group: np.ndarray, values: np.ndarray, count: int) -> np.n
 
 def brown_forsythe(row_group, values, count, alpha: float) -> dict:
     """Median-centred Levene test across groups with at least two values."""
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     n = np.bincount(row_group, minlength=count).astype(float)
     use_g = n >= 2
@@ -215,7 +215,7 @@ def brown_forsythe(row_group, values, count, alpha: float) -> dict:
 
 def outliers(r, leverage_rows, rss, df_resid, run_ids, alpha: float, limit: int = 50) -> dict:
     """Externally studentized residuals beyond the Bonferroni cut-off."""
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     n = len(r)
     if df_resid < 2:
@@ -248,7 +248,7 @@ def outliers(r, leverage_rows, rss, df_resid, run_ids, alpha: float, limit: int 
 
 def runs_test(signs_in_order: np.ndarray) -> tuple[int, float | None, float | None]:
     """Wald-Wolfowitz runs test on a sequence of booleans; returns (runs, z, p)."""
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     s = np.asarray(signs_in_order, dtype=bool)
     n = len(s)
@@ -267,7 +267,7 @@ def runs_test(signs_in_order: np.ndarray) -> tuple[int, float | None, float | No
 
 def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
     """Slope of residuals on run order (per 100 runs) and the runs test."""
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     if position is None or len(r) < 3:
         return {"slope_per_100_runs": None, "percent_per_100_runs": None, "p": None,

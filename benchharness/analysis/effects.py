@@ -105,7 +105,7 @@ def linear_estimates(fit: Fit, L: np.ndarray):
 
 
 def t_quantile(fit: Fit, alpha: float) -> float:
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     if fit.df_resid <= 0:
         return float("nan")

@@ -124,7 +124,7 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     form) and ``critical`` (the quantile ``d``).
     """
     import numpy as np
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     from benchharness.analysis import transform as tr
     from benchharness.analysis.effects import contrast_result, margin_estimates, margin_rows

@@ -42,7 +42,7 @@ from benchharness.errors import DataError
 def lenth(effects: Sequence[float], level: float = 0.95) -> dict:
     """Lenth's (1989) pseudo standard error, margin of error and simultaneous margin."""
     import numpy as np
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     c = np.abs(np.asarray(effects, dtype=float))
     m = len(c)
@@ -60,7 +60,7 @@ def lenth(effects: Sequence[float], level: float = 0.95) -> dict:
 
 def half_normal_points(effects: Sequence[float], labels: Sequence[str]) -> list[dict]:
     """Daniel's (1959) half-normal plot: |effects| ascending with their quantiles."""
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     m = len(effects)
     order = sorted(range(m), key=lambda i: abs(effects[i]))
@@ -180,7 +180,7 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
     ``blocks`` (one label per row, optional) enter as indicators.
     """
     import numpy as np
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     log = scale == "log"
     y = np.asarray(y, dtype=float)

@@ -23,7 +23,7 @@ import numpy as np
 
 def host_split(prep, z, terms_model, model, ss_type, fit_block, alpha: float) -> dict | None:
     """The between/within-host decomposition, or None when there is nothing to split."""
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     from benchharness.analysis.cells import index_cells, moments
     from benchharness.analysis.model import fit_model, model_terms

@@ -21,7 +21,7 @@ def load_correlation(residuals, load_1m, alpha: float = ALPHA) -> dict:
     (load or residuals constant) or ``too few runs`` (n < 5).
     """
     import numpy as np
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     r = np.asarray(residuals, dtype=float)
     x = np.asarray(load_1m, dtype=float)

@@ -24,7 +24,7 @@ _HZ = _Z[1] - _Z[0]
 
 @lru_cache(maxsize=64)
 def _s_nodes(df: float, n: int = 64):
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     if not np.isfinite(df) or df > 1e7:
         return np.array([0.0]), np.array([1.0])
@@ -63,7 +63,7 @@ def sf(q, k: int, df: float) -> np.ndarray:
 
 def isf(p: float, k: int, df: float) -> float:
     """The q with P(Q > q) = p (root of `sf`)."""
-    from scipy.optimize import brentq
+    from benchharness.analysis.roots import brentq
 
     hi = 10.0
     while sf(hi, k, df)[0] > p and hi < 1e4:

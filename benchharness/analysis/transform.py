@@ -208,7 +208,8 @@ class BoxCoxProfile:
         falling back to bounded Brent; the interval ends are roots found by Brent's
         method inside the grid bracket. Every λ is evaluated at most once.
         """
-        from scipy import optimize, stats
+        from benchharness.analysis import dist as stats
+        from benchharness.analysis import roots as optimize
 
         memo: dict[float, float] = {}
 
@@ -253,7 +254,7 @@ class BoxCoxProfile:
     @staticmethod
     def _interval(L, grid, ll, lam_hat, cut, lo, hi):
         """Ends of {λ : ℓ(λ) ≥ cut} around λ̂ (Brent roots inside the grid brackets)."""
-        from scipy import optimize
+        from benchharness.analysis import roots as optimize
 
         ends, open_ = [], []
         for side, edge in ((grid < lam_hat, lo), (grid > lam_hat, hi)):

@@ -283,7 +283,7 @@ def _pair_means(data: ReportData, a: str, b: str):
         return got, True
     ok, y = _ok_values(data)
     log = bool(len(y) and (y > 0).all())
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     frame = ok[[a, b]].astype(str).assign(_z=np.log(y) if log else y)
     for (la, lb), g in frame.groupby([a, b], observed=True)["_z"]:
@@ -474,7 +474,7 @@ def half_normal_plot(data: ReportData) -> Figure | None:
         ses = [e.get("se") for e in fr.get("effects") or [] if finite(e.get("se"))]
         df = fr.get("residual_df")
         if ses and df:
-            from scipy import stats
+            from benchharness.analysis import dist as stats
 
             cut = float(stats.t.ppf(1 - float(fr.get("alpha") or data.alpha) / 2, df)) * max(ses)
             lines = [(cut, "--", f"smallest effect with p < {fr.get('alpha') or data.alpha:g}")]
@@ -519,7 +519,7 @@ def residual_label(data: ReportData) -> str:
 
 def qq_plot(data: ReportData) -> Figure | None:
     import numpy as np
-    from scipy import stats
+    from benchharness.analysis import dist as stats
 
     res = data.residuals
     if res is None or len(res) < 3:

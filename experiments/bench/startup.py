@@ -1,0 +1,157 @@
+"""Start-up cost of the commands, and `analyze` of a large CSV end to end (invented data).
+
+Two sections, each a set of commands run in separate processes, interleaved
+(one of each in turn) and repeated; the medians of wall time and of CPU time
+(user + system of the child) are printed with the ratios to a reference run in
+the same session, and the load average before and after:
+
+* ``startup`` (issue 18 item 3): ``python -c pass``, ``python -c "import pandas"``
+  (the reference), ``benchharness --help``, ``benchharness plan`` of the demo,
+  ``benchharness analyze`` of a 100-row CSV (an invented codec × level timing
+  table), ``benchharness report`` of a copy of the committed example folder
+  (``results/example-archive-codecs``: 12 figures as PNG and SVG, HTML, Markdown),
+  and ``report --no-figures``-like cost is not separated: drawing is part of it.
+* ``big`` (issue 18 item 2): ``benchharness analyze`` of a 1,000,000-row CSV with
+  ``--json`` (start-up, read, analysis, JSON) against the analysis call alone
+  (``benchharness.analysis.analyze`` on the table already in memory, in a process
+  that has read it and imported the library: the second of two calls).
+
+Usage: python experiments/bench/startup.py [--sections startup,big] [--repeat 5]
+       [--rows 1000000] [--tree DIR]
+``--tree DIR`` measures the benchharness checked out in DIR (before/after figures).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def timed(argv, env, cwd) -> tuple[float, float, int]:
+    """Wall and CPU seconds of one child process, and its exit code."""
+    before = os.times()
+    t0 = time.perf_counter()
+    r = subprocess.run(argv, env=env, cwd=cwd, stdout=subprocess.DEVNULL,
+                       stderr=subprocess.DEVNULL)
+    wall = time.perf_counter() - t0
+    after = os.times()
+    cpu = (after.children_user - before.children_user) + (after.children_system
+                                                           - before.children_system)
+    return wall, cpu, r.returncode
+
+
+def small_csv(path: Path) -> Path:
+    import numpy as np
+
+    rng = np.random.default_rng(5)
+    lines = ["codec,level,wall_s"]
+    for i in range(100):
+        codec, level = ("zlib", "bz2")[i % 2], ("1", "9")[(i // 2) % 2]
+        y = 0.2 * (1.3 if codec == "bz2" else 1.0) * float(np.exp(rng.normal(0, 0.1)))
+        lines.append(f"{codec},{level},{y:.6f}")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def run_section(name, commands, ref, repeat, env, cwd):
+    load0 = os.getloadavg()[0]
+    res = {k: [] for k in commands}
+    for _ in range(repeat):
+        for k, argv in commands.items():
+            wall, cpu, rc = timed(argv, env, cwd)
+            if rc != 0:
+                print(f"  {k}: exit code {rc}", file=sys.stderr)
+            res[k].append((wall, cpu))
+    load1 = os.getloadavg()[0]
+    rw = statistics.median(w for w, _ in res[ref])
+    rc_ = statistics.median(c for _, c in res[ref])
+    print(f"\n{name}: medians of {repeat} interleaved starts "
+          f"(load average {load0:.1f} -> {load1:.1f}); ratios to {ref}")
+    for k in commands:
+        w = statistics.median(x for x, _ in res[k])
+        c = statistics.median(x for _, x in res[k])
+        print(f"  {k:34} wall {w:7.3f} s  (x{w / rw:5.2f})   cpu {c:7.3f} s  (x{c / rc_:5.2f})")
+    return res
+
+
+ALONE = """
+import sys, time
+import pandas as pd
+from benchharness.analysis import analyze
+df = pd.read_csv(sys.argv[1], dtype={f: str for f in sys.argv[2].split(",")})
+factors = sys.argv[2].split(",")
+times = []
+for _ in range(2):
+    t0 = time.perf_counter()
+    analyze(df, factors=factors)
+    times.append(time.perf_counter() - t0)
+print(times[-1])
+"""
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--sections", default="startup,big")
+    ap.add_argument("--repeat", type=int, default=5)
+    ap.add_argument("--rows", type=int, default=1_000_000)
+    ap.add_argument("--tree", default=str(ROOT))
+    a = ap.parse_args()
+    tree = Path(a.tree).resolve()
+    env = dict(os.environ, PYTHONPATH=str(tree))
+    py = sys.executable
+    bh = [py, "-m", "benchharness"]
+    sections = a.sections.split(",")
+    with tempfile.TemporaryDirectory(prefix="startup-") as tmp:
+        work = Path(tmp)
+        if "startup" in sections:
+            csv = small_csv(work / "small.csv")
+            example = work / "example"
+            shutil.copytree(ROOT / "results" / "example-archive-codecs", example)
+            commands = {
+                "python -c pass": [py, "-c", "pass"],
+                "python -c 'import pandas'": [py, "-c", "import pandas"],
+                "benchharness --help": bh + ["--help"],
+                "benchharness plan (demo)": bh + ["plan", str(ROOT / "experiments"
+                                                        / "archive-codecs.yaml")],
+                "benchharness analyze (100 rows)": bh + ["analyze", str(csv), "--factors",
+                                                         "codec,level"],
+                "benchharness report (example)": bh + ["report", str(example)],
+            }
+            run_section("startup", commands, "python -c 'import pandas'", a.repeat, env, work)
+        if "big" in sections:
+            sys.path.insert(0, str(ROOT / "experiments" / "bench"))
+            from analysis_speed import FACTORS, make_data
+
+            big = work / "big.csv"
+            make_data(a.rows).to_csv(big, index=False)
+            factors = ",".join(FACTORS)
+            load0 = os.getloadavg()[0]
+            ends, alone = [], []
+            for _ in range(a.repeat):
+                w, _c, rc = timed(bh + ["analyze", str(big), "--factors", factors, "--json",
+                                        str(work / "a.json")], env, work)
+                ends.append(w)
+                r = subprocess.run([py, "-c", ALONE, str(big), factors], env=env, cwd=work,
+                                   capture_output=True, text=True)
+                alone.append(float(r.stdout.strip().splitlines()[-1]))
+            load1 = os.getloadavg()[0]
+            e, al = statistics.median(ends), statistics.median(alone)
+            print(f"\nbig: {a.rows:,} rows, medians of {a.repeat} interleaved "
+                  f"(load average {load0:.1f} -> {load1:.1f})")
+            print(f"  analyze end to end (start-up, read, analysis, JSON): {e:.3f} s")
+            print(f"  the analysis call alone:                             {al:.3f} s")
+            print(f"  ratio: x{e / al:.2f}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
