@@ -48,7 +48,11 @@ def _finite(x) -> float | None:
 # --------------------------------------------------------------------------- plain numbers
 
 def _decimals(ax: float, digits: int) -> int:
-    return max(0, digits - 1 - int(math.floor(math.log10(ax))))
+    """Decimals giving ``ax`` ``digits`` significant figures (0.99996 -> 1.00, not 1.000)."""
+    exp = int(math.floor(math.log10(ax)))
+    if round(ax, max(0, digits - 1 - exp)) >= 10.0 ** (exp + 1):
+        exp += 1
+    return max(0, digits - 1 - exp)
 
 
 def fmt_num(x, digits: int = 3) -> str:
@@ -236,10 +240,12 @@ _IRREGULAR = {"series": "series", "child": "children", "datum": "data"}
 def plural(n, noun: str, many: str | None = None) -> str:
     """``n`` and the noun in the right number: ``1 run``, ``3 runs``, ``0 runs``.
 
-    ``many`` gives an irregular plural (``plural(2, "series", "series")``); a noun
+    Whole numbers are written with thousands separators (``1,200 runs``); ``many`` gives
+    an irregular plural (``plural(2, "series", "series")``); a noun
     phrase pluralises its last word (``1 warm-up run``, ``2 warm-up runs``).
     """
-    return f"{n} {noun if n == 1 else (many or plural_word(noun))}"
+    text = f"{n:,}" if isinstance(n, int) and not isinstance(n, bool) else str(n)
+    return f"{text} {noun if n == 1 else (many or plural_word(noun))}"
 
 
 def plural_word(noun: str) -> str:

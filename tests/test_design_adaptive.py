@@ -159,7 +159,7 @@ def test_plan_estimate_counts_cells_the_pilot_lacks():
     secs = {("zlib", "1"): 0.5, ("zlib", "9"): 0.7}
     est = budget.estimate_plan(build_plan(exp), budget.pilot_timing(_pilot(secs, 0.0),
                                                                      ["codec", "level"]))
-    assert est.cells_without_pilot == 4 and "4 cell(s)" in est.notes[0]
+    assert est.cells_without_pilot == 4 and "4 cells were not in the pilot" in est.notes[0]
     # a pilot of another experiment (no shared factor) says so
     other = _pilot(secs, 0.0).rename(columns={"codec": "x", "level": "y"})
     est = budget.estimate_plan(build_plan(exp), budget.pilot_timing(other, ["codec", "level"]))

@@ -373,7 +373,7 @@ def test_duplicate_lines_are_set_aside_not_counted(folder, measured, tmp_path):
     assert n == {"x": 5, "y": 5}
     assert an["counts"]["df_resid"] == clean["counts"]["df_resid"] == 8
     assert an["counts"]["rows"] == 10
-    assert any("3 line(s) repeat a run already recorded" in n and "not counted" in n
+    assert any("3 lines repeat a run already recorded" in n and "not counted" in n
                for n in an["notes"]), an["notes"]
     # resume sets them aside in a file of their own: nothing deleted
     before = p.read_bytes()

@@ -74,6 +74,7 @@ def test_single_quantities_always_carry_their_unit():
 def test_numbers_changes_shares_and_p_values():
     assert fmt_num(1234.5) == "1,234"      # Python rounds half to even: 1234.5 -> 1234
     assert fmt_num(0.012345) == "0.0123"
+    assert fmt_num(0.99996) == "1.00" and fmt_num(9.9996) == "10.0"   # rounding up a decade
     assert fmt_num(2.5e-6) == "2.50e-06"
     assert fmt_change(1.034) == "+3.4%" and fmt_change(0.88) == "-12.0%"
     assert fmt_pct(0.05) == "5.0%"

@@ -12,6 +12,8 @@ No formula strings are ever built from names or labels.
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -89,7 +91,7 @@ def _code(series, listed: Sequence[str] | None, name: str):
         return codes, tuple(listed)
     codes, uniques = pd.factorize(text, sort=False)
     if (codes < 0).any():
-        raise DataError(f"factor {name!r} has no level in {int((codes < 0).sum())} row(s); "
+        raise DataError(f"factor {name!r} has no level in {plural(int((codes < 0).sum()), 'row')}; "
                         "give every row a level")
     return codes.astype(np.int64), tuple(str(u) for u in uniques)
 
@@ -182,7 +184,7 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
             pair = "block@host"
             df = df.assign(**{pair: df["block"].astype(str) + "@" + df["host"].astype(str)})
             columns.add(pair)
-            notes.append(f"{int((spread > 1).sum())} block(s) ran partly on another host (a "
+            notes.append(f"{plural(int((spread > 1).sum()), 'block')} ran partly on another host (a "
                          "worker was lost); (block, host) pairs are used as blocks")
             block = pair
     if block is not None:
@@ -238,7 +240,8 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     use = ok & np.isfinite(y)
     bad_y = int((ok & ~np.isfinite(y)).sum())
     if bad_y:
-        notes.append(f"{bad_y} ok run(s) have no numeric {response!r} value and were left out")
+        notes.append(f"{plural(bad_y, 'ok run')} {'has' if bad_y == 1 else 'have'} no numeric "
+                     f"{response!r} value and {'was' if bad_y == 1 else 'were'} left out")
     n_lost = int((~ok).sum())
     if n_lost:
         said = {"timeout": "timed-out"}
@@ -246,7 +249,8 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         oth = n_lost - sum(int(m.sum()) for m in lost_masks.values())
         if oth:
             parts.append(f"{oth} with another status")
-        notes.append("not analysed: " + ", ".join(parts) + " run(s); see the failure counts "
+        notes.append("not analysed: " + ", ".join(parts) + (" run" if n_lost == 1 else " runs")
+                     + "; see the failure counts "
                      "per cell")
     if not use.any():
         if ok.any():

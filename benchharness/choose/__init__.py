@@ -611,7 +611,7 @@ def _role_reasons(roles, names, across_given) -> list[str]:
     n_set = len(list(names))
     return [f"No roles are declared: {chosen} treated as "
             f"{'a setting' if n_set == 1 else 'settings'}, since nothing marks "
-            f"them as inputs{held}. If some factors are inputs or machines, declare them in "
+            f"{'it as an input' if n_set == 1 else 'them as inputs'}{held}. If some factors are inputs or machines, declare them in "
             f"the experiment file: {declaration}."]
 
 

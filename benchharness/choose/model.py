@@ -35,6 +35,8 @@ This module owns turning a runs table into plain numbers for one response:
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -195,7 +197,7 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
         env = ", ".join(f"{c}={v}" for c, v in zip(across, envs[e]))
         raise DataError(f"setting {where} has no ok run of {response!r} in environment {env}; "
                         f"every setting needs runs in every --across level "
-                        f"({len(missing)} such gap(s))")
+                        f"({plural(len(missing), 'such gap')})")
     means = sums / counts
     n = len(y)
     block_cols: list[np.ndarray] = []

@@ -90,6 +90,7 @@ def _timing(args, exp, plan) -> dict:
 
 def _timing_lines(timing: dict) -> list[str]:
     from benchharness.design.budget import fmt_s
+    from benchharness.numbers import plural
 
     lines = []
     a = timing.get("adaptive")
@@ -108,14 +109,16 @@ def _timing_lines(timing: dict) -> list[str]:
             lines.append(f"            at most about {fmt_s(t['expected_at_max_replicates_s'])} "
                          f"if all {a['max']} replicates run")
         if "replicates_in_budget" in t:
-            lines.append(f"budget      {fmt_s(t['budget_s'])} fits {t['replicates_in_budget']} "
-                         f"complete replicate(s)")
+            lines.append(f"budget      {fmt_s(t['budget_s'])} fits "
+                         f"{plural(t['replicates_in_budget'], 'complete replicate')}")
         for n in t.get("notes", []):
             lines.append(f"note        {n}")
     return lines
 
 
 def format_plan(exp, plan, show: int = 12) -> str:
+    from benchharness.numbers import plural
+
     lines = [f"experiment  {exp.name}"]
     if exp.about:
         lines.append(f"question    {exp.about}")
@@ -131,7 +134,7 @@ def format_plan(exp, plan, show: int = 12) -> str:
     seed_note = "" if exp.seed is not None else " (drawn now; set seed: in the file to fix it)"
     lines.append(f"cells       {plan.cells}")
     lines.append(f"timed runs  {plan.timed_runs} ({exp.replicates} per cell)")
-    lines.append(f"warm-up     {plan.warmup_runs} untimed runs")
+    lines.append(f"warm-up     {plural(plan.warmup_runs, 'untimed run')}")
     lines.append(f"order       {plan.order}, seed {plan.seed}{seed_note}")
     from benchharness.design.spec import DESIGN_INFO_KEYS, describe_info
 

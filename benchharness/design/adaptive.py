@@ -33,6 +33,8 @@ record it in the results folder after each replicate.
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import math
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
@@ -200,7 +202,7 @@ def decide(runs, factor_levels: Mapping[str, Sequence[str]], rule: AdaptiveRule,
     done = complete_replicates(runs, n_cells)
     target = rule.ratio_halfwidth
     if done < rule.min_replicates:
-        return StopDecision(False, f"{done} complete replicate(s), the minimum is "
+        return StopDecision(False, f"{plural(done, 'complete replicate')}, the minimum is "
                                    f"{rule.min_replicates}", done)
     intervals, problem = main_effect_intervals(runs, factor_levels, cells, rule.response,
                                                rule.confidence)

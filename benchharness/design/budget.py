@@ -17,6 +17,8 @@ half-run. (A plain "plan the work to fit the time" rule; common practice.)
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import math
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
@@ -120,7 +122,9 @@ def estimate_plan(plan, timing: PilotTiming) -> PlanEstimate:
         notes.append("the pilot has none of this experiment's factors; every run is estimated "
                      f"at the pilot's mean of {timing.mean_s:.3g} s")
     elif missing:
-        notes.append(f"{len(missing)} cell(s) were not in the pilot; their runs are estimated "
+        notes.append(f"{plural(len(missing), 'cell')} "
+                     f"{'was' if len(missing) == 1 else 'were'} not in the pilot; their runs "
+                     "are estimated "
                      f"at the pilot's mean of {timing.mean_s:.3g} s")
     per_rep = dict(sorted(per_rep.items()))
     return PlanEstimate(timed + warm, timed, warm, per_rep, timing.overhead_s, len(missing),
@@ -133,7 +137,7 @@ def next_replicate_fits(budget_s: float, elapsed_s: float,
     """May the next complete replicate start? (see the module docstring)."""
     if replicate_durations_s:
         need = sum(replicate_durations_s) / len(replicate_durations_s)
-        basis = f"mean of {len(replicate_durations_s)} replicate(s) so far"
+        basis = f"mean of {plural(len(replicate_durations_s), 'replicate')} so far"
     elif estimate_s is not None:
         need = estimate_s
         basis = "pilot estimate"

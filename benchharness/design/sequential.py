@@ -16,6 +16,8 @@ stop goes into ``session.json`` under ``stopped`` so a resume does not run past 
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import json
 import time
 from pathlib import Path
@@ -102,7 +104,7 @@ class ReplicateGate:
                                           self.estimate_s)
             entry["budget"] = {"fits": ok, "reason": why}
             if not ok:
-                reason = (f"{why}; stopped after {completed} complete replicate(s) in "
+                reason = (f"{why}; stopped after {plural(completed, 'complete replicate')} in "
                           f"{fmt_s(now - self.start)}")
         entry["stop"] = reason is not None
         entry["reason"] = reason

@@ -29,6 +29,8 @@ two-level factors it equals the F-test power (t^2 = F).
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import math
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
@@ -153,7 +155,7 @@ def size_design(factors: Sequence[tuple[str, int]], detect: float, sigma_log: fl
         raise UsageError("--alpha and --power must lie strictly between 0 and 1")
     for name, a in factors:
         if a < 2:
-            raise UsageError(f"factor {name!r} has {a} level(s); a factor needs at least 2")
+            raise UsageError(f"factor {name!r} has {plural(a, 'level')}; a factor needs at least 2")
     if cells is None:
         cells = math.prod(a for _, a in factors)
     D = log_difference(detect)

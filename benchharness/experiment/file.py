@@ -14,6 +14,8 @@ validates its own section with the helpers in `benchharness.experiment.yamlnodes
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import os
 import re
 import shlex
@@ -543,9 +545,9 @@ def check_planned_runs(exp: Experiment, cells: int, replicates: int, warmup: int
         return total
     key = "replicates" if replicates * (1 + (warmup > 0)) >= cells else "factors"
     line, col = exp.key_marks.get(key, (None, None))
-    parts = f"{cells:,} cell(s) × {replicates:,} replicate(s)"
+    parts = f"{plural(cells, 'cell')} × {plural(replicates, 'replicate')}"
     if warmup:
-        parts = f"{cells:,} cell(s) × ({replicates:,} replicate(s) + {warmup:,} warm-up)"
+        parts = f"{plural(cells, 'cell')} × ({plural(replicates, 'replicate')} + {warmup:,} warm-up)"
     advice = "use fewer factors, levels or replicates (or a fractional 'design:')"
     if total <= MAX_RUNS_CEILING:
         advice += f", or, if you mean it, raise the limit with 'max_runs: {total}'"

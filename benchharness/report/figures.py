@@ -29,7 +29,7 @@ from pathlib import Path
 from benchharness.report.data import ReportData, finite
 from benchharness.report.drawing import (ACCENT, INK, MUTED, PALETTE, Figure, log_ticks,
                                          new_figure, render_figure)
-from benchharness.report.units import axis_label, describe, display_scale, fmt_p, unit_of
+from benchharness.report.units import axis_label, describe, display_scale, fmt_p, plural, unit_of
 
 MAX_POINTS_PER_CELL = 2000
 MAX_POINTS_DISTRIBUTIONS = 40000   # over all cells of the distribution plot
@@ -228,7 +228,7 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
     note = None
     if subsampled:
         note = (f"The distribution plot draws a random {max_points:,} of the runs in each of "
-                f"{subsampled} cell(s) that had more; the boxes use every run.")
+                f"{plural(subsampled, 'cell')} that had more; the boxes use every run.")
     cap = ("Each box spans the middle half of the runs of one cell (line: median; whiskers: "
            "1.5 × IQR); dots are individual runs, spread sideways so they do not overlap.")
     if note:

@@ -14,7 +14,7 @@ from typing import Any
 
 from benchharness.report.data import ReportData, finite
 from benchharness.report.units import (
-    describe, fmt_num, fmt_p, fmt_ratio, fmt_value, unit_of,
+    describe, fmt_num, fmt_p, fmt_ratio, fmt_value, plural, unit_of,
 )
 
 
@@ -376,8 +376,8 @@ def sureness(data: ReportData) -> list[str]:
     n_ok = d.get("runs_ok")
     if n_ok is not None and not data.analysis.get("unanalysed"):
         reps = d.get("replicates")
-        out.append(f"Based on {n_ok} timed runs" + (f" ({reps} replicates per cell)"
-                                                     if reps else "") + ".")
+        out.append(f"Based on {plural(n_ok, 'timed run')}"
+                   + (f" ({plural(reps, 'replicate')} per cell)" if reps else "") + ".")
     concerns = [i for i in diagnostic_items(data) if i["concern"]]
     no_var = ((data.analysis.get("model") or {}).get("no_variation") or {}).get("kind")
     if no_var:
@@ -519,12 +519,13 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
                     why = f" First message: “{first[:200]}{'…' if len(first) > 200 else ''}”"
             if n_to:
                 out.append({"kind": "Timeouts",
-                            "text": f"{label}: {n_to} run(s) timed out. Only the runs that "
+                            "text": f"{label}: {plural(n_to, 'run')} timed out. Only the runs that "
                                     "finished are analysed, so this cell looks faster than "
                                     f"it is.{why}"})
             else:
                 out.append({"kind": "Failed runs",
-                            "text": f"{label}: {n_bad} run(s) failed and are left out of the "
+                            "text": f"{label}: {plural(n_bad, 'run')} failed and "
+                                    f"{'is' if n_bad == 1 else 'are'} left out of the "
                                     f"analysis.{why}"})
     host = dict(data.host or {})
     load = _first_load(_host_get(host, "load_average_start", "load_start", "loadavg", "load_average", "load.start",

@@ -30,6 +30,8 @@ existing non-empty folder, and resume only appends.
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import csv
 import datetime as _dt
 import errno
@@ -738,7 +740,8 @@ def read_journal(path: Path, repair: bool = False, notes: list | None = None) ->
             good_end = len(body)
             where = f"moved to {side.name}"
         if notes is not None:
-            notes.append(f"{path.name}: {len(dups)} line(s) repeat a run already recorded "
+            notes.append(f"{path.name}: {plural(len(dups), 'line')} "
+                         f"{'repeats' if len(dups) == 1 else 'repeat'} a run already recorded "
                          f"({kind}; run {shown}); {where} and not counted: the first record of "
                          "each run is used")
     if torn_tail and repair:

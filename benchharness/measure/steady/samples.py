@@ -17,6 +17,8 @@ uses the steady-state mean as the run's ``steady_s`` response.
 
 from __future__ import annotations
 
+from benchharness.numbers import plural
+
 import json
 import math
 from dataclasses import dataclass
@@ -174,7 +176,9 @@ def extract_samples(cfg: SamplesConfig, stdout: bytes | str, stderr: bytes | str
     if not out:
         reasons.append(f"no per-iteration samples found on {cfg.stream} (format {cfg.format})")
     if bad:
-        reasons.append(f"{bad} sample value(s) were not finite numbers and were skipped")
+        reasons.append(f"{plural(bad, 'sample value')} "
+                       f"{'was not a finite number and was' if bad == 1 else 'were not finite numbers and were'} "
+                       "skipped")
     if truncated and cfg.format != "json":
         reasons.append(f"{cfg.stream} was longer than the kept tail; early samples are lost")
     return [f * cfg.scale for f in out], "; ".join(reasons)
