@@ -68,7 +68,8 @@ DONE_EVERY_NS = 20_000_000  # ... and at least this often while runs go on
 PR_SET_CHILD_SUBREAPER = 36
 ADDR_NO_RANDOMIZE = 0x0040000
 PERSONALITY_QUERY = 0xFFFFFFFF
-READ_CHUNK = 1 << 16
+OUTPUT_PIPE_SIZE = 1 << 20  # the run's stdout and stderr pipes, where allowed
+TAIL_MIN = 1 << 18    # bytes of each output ring at least (reads of a loud command)
 
 
 # ---------------------------------------------------------------- framing
@@ -114,11 +115,12 @@ class FrameReader:
                 and len(buf) >= HEADER_SIZE + int.from_bytes(buf[:HEADER_SIZE], "big"))
 
 
-def widen_pipe(fd):
-    """Ask for a 1 MiB pipe buffer (the default 64 KiB fills with a few replies)."""
+def widen_pipe(fd, size=PIPE_SIZE):
+    """Ask for a larger pipe buffer (1 MiB: the default 64 KiB fills with a few
+    replies, and makes a loud command wait for its reader 16 times as often)."""
     try:
         import fcntl
-        fcntl.fcntl(fd, F_SETPIPE_SZ, PIPE_SIZE)
+        fcntl.fcntl(fd, F_SETPIPE_SZ, size)
     except (ImportError, OSError):
         pass
 
@@ -295,6 +297,99 @@ def _is_zombie(pid):
     return stat[stat.rfind(b")") + 2:stat.rfind(b")") + 3] in (b"Z", b"X")
 
 
+class Tail:
+    """The last bytes of one output stream, kept in a ring that reads go straight into.
+
+    Each wake-up reads the pipe until it is empty (a read that returns less
+    than asked for says so; no extra call to learn it) with ``readv`` into the
+    ring's two parts, so a command that floods its output costs no memory and
+    no copy beyond the read itself. The ring is anonymous memory: its pages
+    become resident only when output arrives and are given back after a loud
+    run, because the launcher's resident size is every later run's memory
+    floor.
+    """
+
+    __slots__ = ("ring", "view", "size", "pos", "total")
+
+    def __init__(self, cap):
+        self.size = max(cap, TAIL_MIN)
+        self.ring = mmap.mmap(-1, self.size)
+        self.view = memoryview(self.ring)
+        self.pos = self.total = 0
+
+    def fill(self, fd):
+        """Read what ``fd`` holds; False at end of file (or on a read error)."""
+        view, size = self.view, self.size
+        while True:
+            pos = self.pos
+            try:
+                n = os.readv(fd, (view[pos:], view[:pos]) if pos else (view,))
+            except BlockingIOError:
+                return True
+            except OSError:
+                return False
+            if not n:
+                return False
+            self.total += n
+            self.pos = (pos + n) % size
+            if n < size:
+                return True
+
+    def take(self, cap):
+        """The last ``cap`` bytes read since the last call (the ring is emptied)."""
+        total = self.total
+        if not total:
+            return b""
+        pos, size = self.pos, self.size
+        n = min(cap, total, size)
+        if pos >= n:
+            data = bytes(self.view[pos - n:pos])
+        else:
+            data = bytes(self.view[size - (n - pos):]) + bytes(self.view[:pos])
+        if total > 2 * mmap.PAGESIZE:
+            self.ring.madvise(mmap.MADV_DONTNEED)  # back to zero resident pages
+        self.pos = self.total = 0
+        return data
+
+
+class Run:
+    """One run's state between the steps of `Launcher.run`."""
+
+    __slots__ = ("req", "started_at", "conditions", "extra", "argv", "env", "cwd", "key",
+                 "path", "cap", "tails", "open_pipes", "pid", "pidfd", "t0", "t1", "deadline",
+                 "linger_end", "timed_out", "aborted", "status_word", "rusage", "orphans",
+                 "kids")
+
+    def __init__(self, req):
+        self.req = req
+        self.extra = {}
+        self.conditions = self.pid = self.pidfd = self.t1 = self.deadline = None
+        self.linger_end = self.aborted = self.status_word = self.rusage = self.kids = None
+        self.timed_out = False
+        self.orphans = []
+
+    def failed(self, message):
+        """The reply for a run that could not be started."""
+        return _result(self.started_at, self.extra, "failed", message, self.conditions)
+
+
+def _with_orphans(usage, orphans):
+    """The run's usage figures with those of its reaped orphans added (the
+    peak is the largest single process, the rest are sums)."""
+    u = list(usage)
+    for o in orphans:
+        u[0] += o.ru_utime
+        u[1] += o.ru_stime
+        u[2] = max(u[2], o.ru_maxrss)
+        u[3] += o.ru_minflt
+        u[4] += o.ru_majflt
+        u[5] += o.ru_nvcsw
+        u[6] += o.ru_nivcsw
+        u[7] += o.ru_inblock
+        u[8] += o.ru_oublock
+    return tuple(u)
+
+
 class Launcher:
     def __init__(self, rfd, wfd, qfd=None):
         self.rfd = rfd
@@ -318,8 +413,6 @@ class Launcher:
         self.freq_files = {}
         self.cpuinfo_cache = [-1.0, []]
         self.last_conditions = None  # (when, cpus, {load_1m, cpu_mhz}, their JSON text)
-        self.bench_bare = os.environ.get("BENCHHARNESS_BENCH_BARE") or None
-        self.bench_log = []      # (bare wall ns, bare segment ns) with bench_bare
         self.done = []           # journalled queued runs the harness has not heard of
         self.done_since = 0
         self.collected_at = time.monotonic()
@@ -357,6 +450,8 @@ class Launcher:
         self.pipes = None        # (out_r, out_w, err_r, err_w) kept between runs
         self.pipe_poller = None  # poll object of those pipes and the request pipe
         self.file_actions = None
+        self.tail_size = 0       # the output rings (`Tail`), made for the first run
+        self.out_tail = self.err_tail = None
         self.stop = False
 
     # ---- capabilities
@@ -371,19 +466,6 @@ class Launcher:
             return False, os.strerror(self.ctypes.get_errno())
         self.libc.personality(p)
         return True, ""
-
-    def bare_run(self):
-        """Benchmark only (``BENCHHARNESS_BENCH_BARE``): one bare ``posix_spawn`` +
-        ``wait4`` of that program, timed like a bare loop times itself; the
-        timings are kept for ``ping``. experiments/bench/overhead.py uses it to
-        set a bare run beside every queued run, so that the two see the same
-        machine at the same moment."""
-        s0 = time.perf_counter_ns()
-        t0 = time.perf_counter_ns()
-        pid = os.posix_spawn(self.bench_bare, [self.bench_bare], self.env)
-        os.wait4(pid, 0)
-        t1 = time.perf_counter_ns()
-        self.bench_log.append((t1 - t0, time.perf_counter_ns() - s0))
 
     def conditions(self, cpus):
         """The machine's load and CPU clock for a run about to start.
@@ -513,20 +595,19 @@ class Launcher:
                 return
             if pid == 0:
                 return
-            if pid == run.get("pid"):
-                run["status_word"] = status
-                run["rusage"] = ru
+            if pid == run.pid:
+                run.status_word, run.rusage = status, ru
             elif pid in self.leftovers:
                 self.leftovers.discard(pid)
             else:
-                run["orphans"].append(ru)
+                run.orphans.append(ru)
 
     def signal_tree(self, run, sig):
         """Send ``sig`` to the run's process group and to every descendant it produced."""
         sent = 0
-        if "rusage" not in run:  # group id still pinned by our unreaped child
+        if run.rusage is None:  # group id still pinned by our unreaped child
             try:
-                os.killpg(run["pid"], sig)
+                os.killpg(run.pid, sig)
                 sent += 1
             except (ProcessLookupError, PermissionError):
                 pass
@@ -547,7 +628,7 @@ class Launcher:
         while True:
             self.reap_orphans(run)
             alive = [p for p in self.descendants() if p not in self.leftovers]
-            if "rusage" in run and not alive:
+            if run.rusage is not None and not alive:
                 return
             if time.monotonic() >= end:
                 break
@@ -556,18 +637,280 @@ class Launcher:
             self.signal_tree(run, signal.SIGKILL)
             self.reap_orphans(run)
             alive = [p for p in self.descendants() if p not in self.leftovers]
-            if "rusage" in run and not alive:
+            if run.rusage is not None and not alive:
                 return
             select.poll().poll(5)
-        if "rusage" not in run:  # the child itself is gone from view; block for it
-            pid, status, ru = os.wait4(run["pid"], 0)
-            run["status_word"], run["rusage"] = status, ru
+        if run.rusage is None:  # the child itself is gone from view; block for it
+            _, run.status_word, run.rusage = os.wait4(run.pid, 0)
 
     # ---- one run
 
+    def run(self, req):
+        """Start, watch and measure one run; its ``done`` reply.
+
+        Named steps: `prepare` (what to start and where), `arm` (everything the
+        wait needs, made before the clock starts), `launch` (the spawn: the
+        timed window opens), `watch` (output and the exit, or the timeout),
+        `collect` (reaping, resource usage, what the run left behind) and
+        `reply`. Between `launch` and the wait only the pidfd is set up and
+        the in-flight record stored: the child shares a CPU with the
+        launcher then, so work there would lengthen its ``wall_s``.
+        """
+        run = Run(req)
+        reply = self.prepare(run)
+        if reply is not None:
+            return reply
+        slot = self.arm(run)
+        err = self.launch(run, slot)
+        if err is not None:
+            return _result(run.started_at, run.extra, "failed", err, run.conditions)
+        self.watch(run)
+        self.collect(run)
+        return self.reply(run)
+
+    def prepare(self, run):
+        """The run's program, arguments, environment and directory (with its
+        start time, conditions and noise-control fields); a ``done`` reply
+        saying why when it cannot start."""
+        req = run.req
+        g = req.get
+        run.started_at = utc_now_iso()
+        cpus = g("cpus")
+        run.conditions = self.conditions(cpus) if g("sample") else None
+        extra = run.extra
+        if cpus:
+            extra["cpus"] = ",".join(map(str, cpus))
+        if g("nice") is not None:
+            extra["nice"] = g("nice")
+        if g("no_aslr"):
+            extra["aslr"] = "off"
+            if not self.aslr_control:
+                return run.failed("cannot turn off address-space randomization here: "
+                                  f"personality() refused ({self.aslr_reason})")
+        shell = g("shell_command")
+        argv = run.argv = ["/bin/sh", "-c", shell] if shell is not None else req["argv"]
+        if "env" in req:  # absent: the same environment as the previous run
+            self.env = req["env"] or {}
+        env = run.env = self.env
+        cwd = g("cwd") or self.cwd0
+        try:
+            os.chdir(cwd)  # every run: the folder may have been replaced since
+        except OSError as e:
+            return run.failed(f"cannot change to working directory {cwd!r}: {e.strerror}")
+        run.cwd = cwd
+        key = run.key = (argv[0], env.get("PATH"), cwd)
+        path = self.resolved.get(key)
+        if path is None:  # a path found before is used again (see `launch`)
+            path, err = _resolve(argv[0], env, cwd)
+            if err:
+                return run.failed(err)
+            self.resolved[key] = path
+        run.path = path
+        return None
+
+    def arm(self, run):
+        """Made before the spawn: the peak-RSS mark reset, the output pipes
+        (kept between runs, see `settle`) and their tails, the last run's fds
+        closed; returns the in-flight slot (or None)."""
+        if self.clear_refs is not None:
+            try:
+                os.write(self.clear_refs, b"5")
+            except OSError:
+                pass
+        out_r, _out_w, err_r, _err_w = self._pipes()
+        cap = run.cap = int(run.req.get("capture_bytes", 65536))
+        if cap > self.tail_size:
+            self.tail_size = cap
+            self.out_tail, self.err_tail = Tail(cap), Tail(cap)
+        run.tails = {out_r: self.out_tail, err_r: self.err_tail}
+        run.open_pipes = {out_r, err_r}
+        inflight = run.req.get("inflight")
+        slot = self.inflight_slot(inflight) if inflight else None
+        if self.to_close:
+            self.close_run_fds()  # the last run's (nothing reads them any more)
+        return slot
+
+    def launch(self, run, slot):
+        """Spawn the child (the timed window opens) and set up its pidfd;
+        the error message when it could not start, else None."""
+        g = run.req.get
+        # The boot clock before and after the spawn bound the child's start time.
+        start_lo = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
+        pid, t0, err = self.spawn(run.path, run.argv, run.env, g("cpus"), g("nice"),
+                                  g("no_aslr"))
+        if pid is None and self.resolved.pop(run.key, None) is not None:
+            # The program found for an earlier run is gone or changed: look again.
+            path, err = _resolve(run.argv[0], run.env, run.cwd)
+            if err is None:
+                self.resolved[run.key] = path
+                pid, t0, err = self.spawn(path, run.argv, run.env, g("cpus"), g("nice"),
+                                          g("no_aslr"))
+        if pid is None:
+            return err
+        pidfd = run.pidfd = os.pidfd_open(pid)
+        self.pipe_poller.register(pidfd, select.POLLIN)
+        start_hi = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
+        if slot is not None:
+            slot[0][:] = (slot[1] % (pid, pid, start_lo, start_hi)).encode().ljust(INFLIGHT_SIZE)
+        run.pid, run.t0 = pid, t0
+        if g("notify", True):
+            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid,
+                            "start": (start_lo, start_hi)})
+        timeout_s = g("timeout_s")
+        run.deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
+        return None
+
+    def watch(self, run):
+        """Wait on the pidfd, the output pipes and the request pipe until the
+        child exits (the timed window closes) or its time is up; then read
+        the pipes until end of file while a leftover process may still hold
+        them, for at most ``linger_s``."""
+        poller = self.pipe_poller
+        linger_ns = int(float(run.req.get("linger_s", 0.1)) * 1e9)
+        pidfd = run.pidfd
+        while True:
+            now = time.perf_counter_ns()
+            if run.t1 is None:
+                wait_ns = None if run.deadline is None else run.deadline - now
+            else:
+                if not run.open_pipes or now >= run.linger_end:
+                    break
+                wait_ns = run.linger_end - now
+            if wait_ns is not None and wait_ns <= 0:
+                self.stop_tree(run, linger_ns, timed_out=True)
+                continue
+            events = poller.poll(None if wait_ns is None else max(1, -(-wait_ns // 1_000_000)))
+            if run.t1 is None:
+                for fd, _ev in events:
+                    if fd == pidfd:
+                        run.t1 = time.perf_counter_ns()
+                        poller.unregister(pidfd)
+                        self.settle(run)
+                        run.linger_end = run.t1 + linger_ns
+                        break
+            for fd, _ev in events:
+                if fd in run.open_pipes:
+                    if not run.tails[fd].fill(fd):  # end of file
+                        poller.unregister(fd)
+                        run.open_pipes.discard(fd)
+                elif fd == self.rfd and run.aborted is None:
+                    self.interrupted(run, linger_ns)
+        if run.open_pipes:
+            self.release()  # lingered until the time ran out: give these pipes up
+        if run.aborted is not None and self.pipes is not None:
+            poller.register(self.rfd, select.POLLIN)  # the kept poller watches it again
+
+    def interrupted(self, run, linger_ns):
+        """A message on the request pipe during a run: the harness went away
+        (stop after this run) or asked for something (handled after it); the
+        run's tree is killed either way."""
+        msg = None
+        try:
+            msg = self.reader.read()
+        except Exception:  # noqa: BLE001
+            msg = None
+        if msg is None:
+            self.stop = True
+        else:
+            self.pending_msg = msg  # handled once this run is over
+        run.aborted = ("interrupted: the harness went away" if msg is None
+                       else "interrupted by the harness")
+        self.pipe_poller.unregister(self.rfd)
+        if run.t1 is None:
+            self.stop_tree(run, linger_ns)
+
+    def stop_tree(self, run, linger_ns, timed_out=False):
+        """Kill the run's whole tree; the timed window closes at the reap."""
+        run.timed_out = timed_out
+        self.kill_tree(run, float(run.req.get("kill_grace_s", 0.5)))
+        run.t1 = time.perf_counter_ns()
+        self.release()
+        self.pipe_poller.unregister(run.pidfd)
+        run.linger_end = run.t1 + linger_ns
+
+    def release(self):
+        """Give the output pipes up: our write ends are closed now (while the
+        child lives we hold them, so its pipes never reach end of file early
+        and its exit costs one wake-up, the pidfd), the read ends after the
+        reply; the next run gets new pipes."""
+        if self.pipes is not None:
+            out_r, out_w, err_r, err_w = self.pipes
+            self.pipes = None
+            os.close(out_w)
+            os.close(err_w)
+            self.to_close.extend((out_r, err_r))
+
+    def settle(self, run):
+        """The child has exited: reap it; keep the pipes if nobody else can hold them.
+
+        The child has written all it will: one ``poll`` without waiting tells
+        which pipes hold data (usually none), and only those are read.
+        """
+        _, run.status_word, run.rusage = os.wait4(run.pid, 0)
+        kids = run.kids = self.own_children()
+        if kids is None or not kids <= self.leftovers:
+            self.release()
+            return
+        for fd, _ev in self.pipe_poller.poll(0):
+            tail = run.tails.get(fd)
+            if tail is not None:
+                tail.fill(fd)
+        run.open_pipes.clear()
+
+    def collect(self, run):
+        """Reap the child if the wait did not, and find what the run left behind."""
+        if run.rusage is None:
+            _, run.status_word, run.rusage = os.wait4(run.pid, 0)
+        # The pidfd (and pipes given up) are closed before the next spawn:
+        # nothing reads them any more.
+        self.to_close.append(run.pidfd)
+        # Our own children list is cheap to read; anything the run left
+        # behind has an ancestor in it (orphans are re-parented to us), so the
+        # full walk and the reaping only happen when it shows something new.
+        kids = run.kids if run.kids is not None else self.own_children()
+        if kids is None or kids:
+            self.reap_orphans(run)  # also reaps leftovers of earlier runs that died
+            if kids is None or not kids <= self.leftovers:
+                left = [p for p in self.descendants() if p not in self.leftovers]
+                if left:
+                    self.leftovers.update(left)
+                    run.extra["leftover_processes"] = len(left)
+
+    def reply(self, run):
+        """The ``done`` reply: status, exit code, time, usage, output tails, message."""
+        ru = run.rusage
+        usage = (ru.ru_utime, ru.ru_stime, ru.ru_maxrss, ru.ru_minflt, ru.ru_majflt,
+                 ru.ru_nvcsw, ru.ru_nivcsw, ru.ru_inblock, ru.ru_oublock)
+        if run.orphans:
+            usage = _with_orphans(usage, run.orphans)
+            run.extra["orphans_counted"] = len(run.orphans)
+        stdout, stderr = self.out_tail.take(run.cap), self.err_tail.take(run.cap)
+        status_word = run.status_word
+        if os.WIFSIGNALED(status_word):
+            exit_code = -os.WTERMSIG(status_word)
+        else:
+            exit_code = os.waitstatus_to_exitcode(status_word)
+        if run.aborted:
+            status, message = "failed", run.aborted
+        elif run.timed_out:
+            status = "timeout"
+            message = (f"timed out after {run.req.get('timeout_s'):g} s; "
+                       "the run's process tree was killed")
+        elif exit_code == 0:
+            status, message = "ok", ""
+        else:
+            status = "failed"
+            why = f"killed by {_signame(-exit_code)}" if exit_code < 0 else \
+                f"exit code {exit_code}"
+            tail = _tail_text(stderr)
+            message = why + (f": {tail}" if tail else " (nothing on stderr)")
+        return {"op": "done", "started_at": run.started_at, "status": status,
+                "exit_code": exit_code, "wall_ns": run.t1 - run.t0, "rusage": usage,
+                "stdout": stdout, "stderr": stderr, "extra": run.extra, "message": message,
+                "conditions": run.conditions}
+
     def spawn(self, path, argv, env, cpus, nice, no_aslr):
         """Start the child on the output pipes; returns (pid, t0_ns, error message or None)."""
-        out_w, err_w = self.pipes[1], self.pipes[3]
         if not cpus and nice is None and not no_aslr:
             t0 = time.perf_counter_ns()
             try:
@@ -578,40 +921,16 @@ class Launcher:
             except (ValueError, TypeError) as e:  # e.g. a NUL byte in an argument
                 return None, t0, f"cannot start {argv[0]!r}: {e}"
             return pid, t0, None
-        # fork+exec: the child sets itself up, writes its clock reading right
-        # before execve (so the fork of this Python process is not timed),
-        # and reports a failed step through the close-on-exec pipe.
+        return self.fork_exec(path, argv, env, cpus, nice, no_aslr)
+
+    def fork_exec(self, path, argv, env, cpus, nice, no_aslr):
+        """fork+exec: the child sets itself up, writes its clock reading right
+        before execve (so the fork of this Python process is not timed), and
+        reports a failed step through the close-on-exec pipe."""
         ep_r, ep_w = os.pipe()
         pid = os.fork()
         if pid == 0:  # child
-            step = "set up the process group"
-            try:
-                os.setpgid(0, 0)
-                for s in (signal.SIGPIPE, signal.SIGXFSZ):
-                    signal.signal(s, signal.SIG_DFL)
-                if cpus:
-                    step = f"pin to CPUs {','.join(map(str, cpus))}"
-                    os.sched_setaffinity(0, cpus)
-                if nice is not None:
-                    step = f"set niceness {nice}"
-                    os.setpriority(os.PRIO_PROCESS, 0, nice)
-                if no_aslr:
-                    step = "turn off address-space randomization"
-                    cur = self.libc.personality(PERSONALITY_QUERY)
-                    if cur == -1 or self.libc.personality(cur | ADDR_NO_RANDOMIZE) == -1:
-                        raise OSError(self.ctypes.get_errno(), os.strerror(self.ctypes.get_errno()))
-                os.dup2(self.devnull, 0)
-                os.dup2(out_w, 1)
-                os.dup2(err_w, 2)
-                step = f"start {argv[0]!r}"
-                os.write(ep_w, b"T" + time.perf_counter_ns().to_bytes(8, "big"))
-                os.execve(path, argv, env)
-            except BaseException as e:  # noqa: BLE001 - report anything, then die
-                try:
-                    reason = getattr(e, "strerror", None) or str(e) or type(e).__name__
-                    os.write(ep_w, b"E" + f"cannot {step}: {reason}".encode("utf-8", "replace"))
-                finally:
-                    os._exit(127)
+            self.child_setup(ep_w, path, argv, env, cpus, nice, no_aslr)  # never returns
         os.close(ep_w)
         try:
             os.setpgid(pid, pid)
@@ -639,14 +958,51 @@ class Launcher:
             return None, t0, err
         return pid, t0, None
 
+    def child_setup(self, ep_w, path, argv, env, cpus, nice, no_aslr):
+        """In the forked child: process group, signals, CPUs, niceness, ASLR,
+        the standard streams, then ``execve``; a failed step is written to
+        ``ep_w`` and the child exits 127."""
+        step = "set up the process group"
+        try:
+            os.setpgid(0, 0)
+            for s in SPAWN_SIGDEF:
+                signal.signal(s, signal.SIG_DFL)
+            if cpus:
+                step = f"pin to CPUs {','.join(map(str, cpus))}"
+                os.sched_setaffinity(0, cpus)
+            if nice is not None:
+                step = f"set niceness {nice}"
+                os.setpriority(os.PRIO_PROCESS, 0, nice)
+            if no_aslr:
+                step = "turn off address-space randomization"
+                cur = self.libc.personality(PERSONALITY_QUERY)
+                if cur == -1 or self.libc.personality(cur | ADDR_NO_RANDOMIZE) == -1:
+                    raise OSError(self.ctypes.get_errno(), os.strerror(self.ctypes.get_errno()))
+            os.dup2(self.devnull, 0)
+            os.dup2(self.pipes[1], 1)
+            os.dup2(self.pipes[3], 2)
+            step = f"start {argv[0]!r}"
+            os.write(ep_w, b"T" + time.perf_counter_ns().to_bytes(8, "big"))
+            os.execve(path, argv, env)
+        except BaseException as e:  # noqa: BLE001 - report anything, then die
+            try:
+                reason = getattr(e, "strerror", None) or str(e) or type(e).__name__
+                os.write(ep_w, b"E" + f"cannot {step}: {reason}".encode("utf-8", "replace"))
+            finally:
+                os._exit(127)
+
     def _pipes(self):
-        """The output pipes (kept between runs, see `settle` in `run`), the poll
-        object watching them and the request pipe, and the spawn's file actions."""
+        """The output pipes (kept between runs, see `settle`), widened so a
+        loud command blocks less often and wakes the launcher less often, the
+        poll object watching them and the request pipe, and the spawn's file
+        actions."""
         if self.pipes is None:
             out_r, out_w = os.pipe()
             err_r, err_w = os.pipe()
             os.set_blocking(out_r, False)
             os.set_blocking(err_r, False)
+            widen_pipe(out_r, OUTPUT_PIPE_SIZE)
+            widen_pipe(err_r, OUTPUT_PIPE_SIZE)
             self.pipes = (out_r, out_w, err_r, err_w)
             poller = select.poll()
             for fd in (out_r, err_r, self.rfd):
@@ -656,262 +1012,6 @@ class Launcher:
                                  (os.POSIX_SPAWN_DUP2, out_w, 1),
                                  (os.POSIX_SPAWN_DUP2, err_w, 2)]
         return self.pipes
-
-    def run(self, req):
-        g = req.get
-        started_at = utc_now_iso()
-        cpus, nice, no_aslr = g("cpus"), g("nice"), g("no_aslr")
-        conditions = self.conditions(cpus) if g("sample") else None
-        extra = {}
-        if cpus:
-            extra["cpus"] = ",".join(map(str, cpus))
-        if nice is not None:
-            extra["nice"] = nice
-        if no_aslr:
-            extra["aslr"] = "off"
-            if not self.aslr_control:
-                return _result(started_at, extra, "failed", "cannot turn off address-space "
-                               f"randomization here: personality() refused ({self.aslr_reason})",
-                               conditions)
-        shell = g("shell_command")
-        argv = ["/bin/sh", "-c", shell] if shell is not None else list(req["argv"])
-        if "env" in req:  # absent: the same environment as the previous run
-            self.env = req["env"] or {}
-        env = self.env
-        cwd = g("cwd") or self.cwd0
-        try:
-            os.chdir(cwd)  # every run: the folder may have been replaced since
-        except OSError as e:
-            return _result(started_at, extra, "failed",
-                           f"cannot change to working directory {cwd!r}: {e.strerror}",
-                           conditions)
-        key = (argv[0], env.get("PATH"), cwd)
-        path = self.resolved.get(key)
-        if path is None:  # a path found before is used again (see the spawn below)
-            path, err = _resolve(argv[0], env, cwd)
-            if err:
-                return _result(started_at, extra, "failed", err, conditions)
-            self.resolved[key] = path
-        cap = int(g("capture_bytes", 65536))
-        timeout_s = g("timeout_s")
-        if self.clear_refs is not None:
-            try:
-                os.write(self.clear_refs, b"5")
-            except OSError:
-                pass
-        # The output pipes outlive a run when nothing but the child could hold
-        # them (see `settle`): making and closing two pipes per run cost more
-        # than the rest of the launcher's work between two runs.
-        out_r, out_w, err_r, err_w = self._pipes()
-        poller = self.pipe_poller
-        bufs = {out_r: bytearray(), err_r: bytearray()}
-        open_pipes = {out_r, err_r}
-        run = {"pid": None, "orphans": []}
-        inflight = g("inflight")
-        slot = self.inflight_slot(inflight) if inflight else None
-        if self.to_close:
-            self.close_run_fds()  # the last run's (nothing reads them any more)
-        # Everything the wait needs is made before the spawn, so that only the
-        # pidfd is set up between the two clock readings.
-        t1 = None
-        timed_out = False
-        aborted = None
-        linger_end = None
-        held = []
-        kids_seen = [None]
-
-        def drain(fd):
-            try:
-                data = os.read(fd, READ_CHUNK)
-            except BlockingIOError:
-                return
-            except OSError:
-                data = b""
-            if not data:
-                poller.unregister(fd)
-                open_pipes.discard(fd)
-                return
-            b = bufs[fd]
-            b += data
-            if len(b) > cap:
-                del b[:len(b) - cap]
-
-        # We hold our own write ends while the child lives: its pipes then
-        # never reach end-of-file early, so its exit costs one wake-up (the
-        # pidfd) instead of three. Once it has exited they are either kept for
-        # the next run (nothing else alive could write to them: drain what is
-        # there) or closed, and the pipes read until end of file (a process
-        # the run left behind may still hold them) and then given up.
-        def release():
-            if self.pipes is not None:
-                self.pipes = None
-                held.extend((out_w, err_w))
-                self.to_close.extend((out_r, err_r))
-            while held:
-                os.close(held.pop())
-
-        def settle():
-            """The child has exited: reap it; keep the pipes if nobody else can hold them.
-
-            The child has written all it will: one ``poll`` without waiting
-            tells which pipes hold data (usually none), and only those are read.
-            """
-            _, status, ru = os.wait4(pid, 0)
-            run["status_word"], run["rusage"] = status, ru
-            kids = kids_seen[0] = self.own_children()
-            if kids is None or not kids <= self.leftovers:
-                release()
-                return
-            for fd, _ev in poller.poll(0):
-                if fd == out_r or fd == err_r:
-                    while True:
-                        try:
-                            data = os.read(fd, READ_CHUNK)
-                        except BlockingIOError:
-                            break
-                        b = bufs[fd]
-                        b += data
-                        if len(b) > cap:
-                            del b[:len(b) - cap]
-            open_pipes.clear()
-
-        # The boot clock before and after the spawn bound the child's start time.
-        start_lo = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
-        pid, t0, err = self.spawn(path, argv, env, cpus, nice, no_aslr)
-        if pid is None and self.resolved.pop(key, None) is not None:
-            # The program found for an earlier run is gone or changed: look again.
-            path, err = _resolve(argv[0], env, cwd)
-            if err is None:
-                self.resolved[key] = path
-                pid, t0, err = self.spawn(path, argv, env, cpus, nice, no_aslr)
-        if pid is None:
-            return _result(started_at, extra, "failed", err, conditions)
-        pidfd = os.pidfd_open(pid)
-        poller.register(pidfd, select.POLLIN)
-        start_hi = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
-        if slot is not None:
-            slot[0][:] = (slot[1] % (pid, pid, start_lo, start_hi)).encode().ljust(INFLIGHT_SIZE)
-        run["pid"] = pid
-        if g("notify", True):
-            send(self.wfd, {"op": "started", "pid": pid, "pgid": pid,
-                            "start": (start_lo, start_hi)})
-        deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
-
-        while True:
-            now = time.perf_counter_ns()
-            if t1 is None:
-                wait_ns = None if deadline is None else deadline - now
-            else:
-                if not open_pipes or now >= linger_end:
-                    break
-                wait_ns = linger_end - now
-            if wait_ns is not None and wait_ns <= 0:
-                # timeout: kill the whole tree, keep the time of the kill's reap
-                timed_out = True
-                self.kill_tree(run, float(g("kill_grace_s", 0.5)))
-                t1 = time.perf_counter_ns()
-                release()
-                linger_end = t1 + int(float(g("linger_s", 0.1)) * 1e9)
-                poller.unregister(pidfd)
-                continue
-            events = poller.poll(None if wait_ns is None else max(1, -(-wait_ns // 1_000_000)))
-            if t1 is None:
-                for fd, _ev in events:
-                    if fd == pidfd:
-                        t1 = time.perf_counter_ns()
-                        poller.unregister(pidfd)
-                        settle()
-                        linger_end = t1 + int(float(g("linger_s", 0.1)) * 1e9)
-                        break
-            for fd, _ev in events:
-                if fd in open_pipes:
-                    drain(fd)
-                elif fd == self.rfd and aborted is None:
-                    msg = None
-                    try:
-                        msg = self.reader.read()
-                    except Exception:  # noqa: BLE001
-                        msg = None
-                    if msg is None:
-                        self.stop = True
-                    else:
-                        self.pending_msg = msg  # handled once this run is over
-                    aborted = "interrupted: the harness went away" if msg is None else \
-                        "interrupted by the harness"
-                    poller.unregister(self.rfd)
-                    if t1 is None:
-                        self.kill_tree(run, float(g("kill_grace_s", 0.5)))
-                        t1 = time.perf_counter_ns()
-                        release()
-                        poller.unregister(pidfd)
-                        linger_end = t1 + int(float(g("linger_s", 0.1)) * 1e9)
-        if open_pipes:
-            release()  # lingered until the time ran out: give these pipes up
-        if aborted is not None and self.pipes is not None:
-            poller.register(self.rfd, select.POLLIN)  # the kept poller watches it again
-        if "rusage" not in run:
-            _, status, ru = os.wait4(pid, 0)
-            run["status_word"], run["rusage"] = status, ru
-        # The pidfd (and pipes given up) are closed before the next spawn:
-        # nothing reads them any more.
-        self.to_close.append(pidfd)
-        # Our own children list is cheap to read; anything the run left
-        # behind has an ancestor in it (orphans are re-parented to us), so the
-        # full walk and the reaping only happen when it shows something new.
-        kids = kids_seen[0] if kids_seen[0] is not None else self.own_children()
-        if kids is None or kids:
-            self.reap_orphans(run)  # also reaps leftovers of earlier runs that died
-            if kids is None or not kids <= self.leftovers:
-                left = [p for p in self.descendants() if p not in self.leftovers]
-                if left:
-                    self.leftovers.update(left)
-                    extra["leftover_processes"] = len(left)
-
-        status_word = run["status_word"]
-        ru = run["rusage"]
-        orphans = run["orphans"]
-        if not orphans:
-            usage = (ru.ru_utime, ru.ru_stime, ru.ru_maxrss, ru.ru_minflt, ru.ru_majflt,
-                     ru.ru_nvcsw, ru.ru_nivcsw, ru.ru_inblock, ru.ru_oublock)
-        else:
-            u = [ru.ru_utime, ru.ru_stime, ru.ru_maxrss, ru.ru_minflt, ru.ru_majflt,
-                 ru.ru_nvcsw, ru.ru_nivcsw, ru.ru_inblock, ru.ru_oublock]
-            for o in orphans:
-                u[0] += o.ru_utime
-                u[1] += o.ru_stime
-                u[2] = max(u[2], o.ru_maxrss)
-                u[3] += o.ru_minflt
-                u[4] += o.ru_majflt
-                u[5] += o.ru_nvcsw
-                u[6] += o.ru_nivcsw
-                u[7] += o.ru_inblock
-                u[8] += o.ru_oublock
-            usage = tuple(u)
-            extra["orphans_counted"] = len(orphans)
-        stdout, stderr = bytes(bufs[out_r]), bytes(bufs[err_r])
-        if os.WIFSIGNALED(status_word):
-            sig = os.WTERMSIG(status_word)
-            exit_code = -sig
-            why = f"killed by {_signame(sig)}"
-        else:
-            exit_code = os.waitstatus_to_exitcode(status_word)
-            why = None
-        if aborted:
-            status, message = "failed", aborted
-        elif timed_out:
-            status = "timeout"
-            message = f"timed out after {timeout_s:g} s; the run's process tree was killed"
-        elif exit_code == 0:
-            status, message = "ok", ""
-        else:
-            status = "failed"
-            tail = _tail_text(stderr)
-            message = (why or f"exit code {exit_code}") + (f": {tail}" if tail
-                                                           else " (nothing on stderr)")
-        return {"op": "done", "started_at": started_at, "status": status,
-                "exit_code": exit_code, "wall_ns": t1 - t0, "rusage": usage,
-                "stdout": stdout, "stderr": stderr, "extra": extra, "message": message,
-                "conditions": conditions}
 
     def serve(self):
         send(self.wfd, self.hello())
@@ -930,8 +1030,6 @@ class Launcher:
                 if self.qpos > 4096:
                     del self.queue[:self.qpos]
                     self.qpos = 0
-                if self.bench_bare:
-                    self.bare_run()
                 try:
                     self.run_queued(req)  # its fds are closed while the next run executes
                 except OSError:
@@ -1031,9 +1129,7 @@ class Launcher:
             except Exception as e:  # noqa: BLE001 - one bad request must not end the session
                 reply = self.crash_reply(e)
         elif op == "ping":
-            reply = {"op": "pong", "leftovers": sorted(self.leftovers),
-                     "bench": self.bench_log}
-            self.bench_log = []
+            reply = {"op": "pong", "leftovers": sorted(self.leftovers)}
         elif op == "resume":
             self.held = False
             return True

@@ -336,11 +336,6 @@ class LocalExecutor(Executor):
         """Pids of processes that earlier runs left running (still alive)."""
         return list(self._ping()["leftovers"])
 
-    def bench_log(self) -> list[tuple[int, int]]:
-        """Benchmark only: the bare runs the launcher made beside queued runs
-        (``BENCHHARNESS_BENCH_BARE``), as (wall ns, segment ns), since last asked."""
-        return [tuple(x) for x in self._ping()["bench"]]
-
     def _ping(self) -> dict:
         with self._lock:
             self._hello()
