@@ -87,8 +87,11 @@ def test_launcher_written_lines_are_the_harness_encoding_and_runs_csv_matches(tm
         assert J.encode_record(json.loads(line)) == line
     # runs.csv, written while the runs went on, equals a fresh export of the journal
     made = (out.folder / "runs.csv").read_bytes()
-    J.export_runs_csv(tmp_path, ["k"], J.read_journal(out.folder / "runs.jsonl"))
+    session = json.loads((out.folder / "session.json").read_text())
+    J.export_runs_csv(tmp_path, ["k"], J.read_journal(out.folder / "runs.jsonl"),
+                      J.session_floor_kib(session))
     assert (tmp_path / "runs.csv").read_bytes() == made
+    assert "max_rss_at_floor" in made.splitlines()[0].decode().split(",")
     assert not (out.folder / "runs.csv.partial").exists()
     assert out.runs["aslr"].nunique() == 1  # off, or on where the kernel refuses
 

@@ -114,6 +114,9 @@ class Executor(abc.ABC):
         whether a run can turn address-space randomization off, and why not.
     ``launcher_pid``
         a helper process of ours that a busy-process check must not count.
+    ``memory_floor``
+        ``{"kib": ..., "how": ...}``: the ``max_rss_kib`` a do-nothing run
+        records here (`benchharness.measure.floor`), or None.
     ``stopped_runs``
         after the executor died under a run: what it did to stop that run.
     """
@@ -132,6 +135,11 @@ class Executor(abc.ABC):
     @property
     def aslr_reason(self) -> str:
         return "the kernel does not allow it"
+
+    @property
+    def memory_floor(self) -> dict | None:
+        """The smallest ``max_rss_kib`` a run can record here, when measured."""
+        return None
 
     @abc.abstractmethod
     def execute(self, spec: RunSpec, on_start: OnStart | None = None) -> Measurement:

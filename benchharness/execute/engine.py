@@ -537,7 +537,7 @@ def finalize(folder: Path, exp, session: dict, facts: dict, counts: dict, planne
     for r in records:
         counts[r["status"]] = counts.get(r["status"], 0) + 1
     if not runs_csv_written:
-        J.export_runs_csv(folder, exp.factor_names, records)
+        J.export_runs_csv(folder, exp.factor_names, records, J.session_floor_kib(session))
     if quality is not None:
         quality.close(records)  # steady.json: warm-up classes, executions x iterations advice
     from benchharness.measure.host import facts_at_end

@@ -528,6 +528,46 @@ class Launcher:
                    % (run_id, boot, self.pid, self.start or -1, self.harness,
                       self.harness_start or -1))
 
+    def memory_floor(self):
+        """The peak resident size (KiB) a run that uses almost no memory records.
+
+        On Linux a child's ``ru_maxrss`` starts from the resident size of the
+        address space it was spawned from: ours, its peak mark reset before
+        each spawn. A program smaller than the launcher therefore records the
+        launcher's size. Measured the way a run is made: the mark reset, a
+        do-nothing program (``true``) spawned and reaped, its ``ru_maxrss``
+        taken; where there is no such program, our own resident size
+        (``VmRSS``). First the C heap's free memory is given back to the
+        system (``malloc_trim``; compiling this module leaves about 2 MiB of
+        it), so the floor is as low as it can cheaply be.
+        """
+        trim = getattr(self.libc, "malloc_trim", None)
+        if trim is not None:
+            trim(0)
+        if self.clear_refs is not None:
+            try:
+                os.write(self.clear_refs, b"5")
+            except OSError:
+                pass
+        for true in ("/bin/true", "/usr/bin/true"):
+            try:
+                pid = os.posix_spawn(true, [true], {}, setpgroup=0, file_actions=[
+                    (os.POSIX_SPAWN_DUP2, self.devnull, fd) for fd in (0, 1, 2)])
+                _, status, ru = os.wait4(pid, 0)
+            except OSError:
+                continue
+            if status == 0 and ru.ru_maxrss > 0:
+                return {"kib": ru.ru_maxrss, "how": f"{true} started by the launcher"}
+        try:
+            with open("/proc/self/status", "rb") as f:
+                for line in f:
+                    if line.startswith(b"VmRSS:"):
+                        return {"kib": int(line.split()[1]),
+                                "how": "the launcher's resident size (VmRSS)"}
+        except (OSError, ValueError, IndexError):
+            pass
+        return None
+
     def hello(self):
         try:
             os.close(os.pidfd_open(self.pid))
@@ -537,6 +577,7 @@ class Launcher:
         return {"op": "hello", "pid": self.pid, "start": self.start,
                 "subreaper": self.subreaper, "pidfd_error": pidfd,
                 "aslr_control": self.aslr_control, "aslr_reason": self.aslr_reason,
+                "memory_floor": self.memory_floor(),
                 "children_file": os.path.exists(f"/proc/{self.pid}/task/{self.pid}/children")}
 
     # ---- process tree
@@ -1247,6 +1288,51 @@ class Launcher:
                 os.close(self.to_close.pop())
             except OSError:
                 pass
+
+
+#: How the harness starts the launcher: ``python -I -S -B -c BOOTSTRAP PATH FDS...``.
+#: Compiling this module takes about 3 MiB that the interpreter keeps (the
+#: parser's memory is interleaved with what lives on, so neither the garbage
+#: collector nor ``malloc_trim`` gives it back), and the launcher's resident
+#: size is every run's memory floor. So a forked child compiles it and sends
+#: the code object back marshalled; the launcher only loads it (measured: 12.6
+#: MiB compiled in place, 9.4 MiB loaded). Where the fork or the compile
+#: fails, it is compiled here after all.
+BOOTSTRAP = """\
+import marshal, os, sys
+path = sys.argv[1]
+sys.argv = sys.argv[1:]
+code = None
+try:
+    r, w = os.pipe()
+    pid = os.fork()
+    if pid == 0:
+        try:
+            os.close(r)
+            with open(path, "rb") as f:
+                view = memoryview(marshal.dumps(compile(f.read(), path, "exec")))
+            while view:
+                view = view[os.write(w, view):]
+        finally:
+            os._exit(0)
+    os.close(w)
+    parts = []
+    while True:
+        b = os.read(r, 1 << 16)
+        if not b:
+            break
+        parts.append(b)
+    os.close(r)
+    os.waitpid(pid, 0)
+    code = marshal.loads(b"".join(parts))
+    del parts
+except Exception:
+    code = None
+if code is None:
+    with open(path, "rb") as f:
+        code = compile(f.read(), path, "exec")
+exec(code, {"__name__": "__main__", "__file__": path, "__builtins__": __builtins__})
+"""
 
 
 def main(argv=None):

@@ -35,6 +35,12 @@ from benchharness.execute.noise import check_cpus
 
 LAUNCHER_PATH = Path(_proto.__file__).resolve()
 _F_GETPIPE_SZ = 1032
+#: Bytes of queued requests (marshalled) the launcher holds at most. Every
+#: request it holds adds to its resident size, which is every run's memory
+#: floor (a 1 MiB queue raised ``max_rss_kib`` of /bin/true by 2 MiB); this
+#: is still hundreds of runs ahead of the launcher, and the harness tops the
+#: queue up every 20 ms while runs go.
+QUEUE_BUDGET = 128 * 1024
 
 
 class LocalExecutor(Executor):
@@ -63,7 +69,8 @@ class LocalExecutor(Executor):
             _proto.widen_pipe(fd)
         try:
             self._proc = subprocess.Popen(
-                [python or sys.executable, "-I", "-S", "-B", str(LAUNCHER_PATH),
+                [python or sys.executable, "-I", "-S", "-B", "-c", _proto.BOOTSTRAP,
+                 str(LAUNCHER_PATH),
                  str(c2l_r), str(l2c_w), str(q_r)],
                 pass_fds=(c2l_r, l2c_w, q_r), stdin=subprocess.DEVNULL,
                 stdout=subprocess.DEVNULL,
@@ -127,6 +134,13 @@ class LocalExecutor(Executor):
     @property
     def aslr_reason(self) -> str:
         return self._hello()["aslr_reason"]
+
+    @property
+    def memory_floor(self) -> dict | None:
+        """The memory floor of runs from this launcher: ``{"kib": ..., "how": ...}``
+        measured when it started (`launcher.Launcher.memory_floor`), or None."""
+        floor = self._hello().get("memory_floor")
+        return dict(floor) if floor else None
 
     # ---------------------------------------------------------------- protocol
 
@@ -413,7 +427,7 @@ class RunStream:
         self.held = False
         self.closed = False
         # Room for one more request and the batch's own header.
-        self.capacity = max(4096, ex._q_capacity - 8192)
+        self.capacity = max(4096, min(QUEUE_BUDGET, ex._q_capacity - 8192))
         ex._lock.acquire()
 
     def room(self) -> bool:

@@ -36,6 +36,7 @@ from benchharness.execute.base import as_executor
 from benchharness.execute.engine import (MIRROR_LIMIT, Progress, RunEngine, RunOutcome, finalize,
                                          start_quality, version)
 from benchharness.results import journal as J
+from benchharness.measure import floor as memory_floor
 
 __all__ = ["RunOutcome", "Progress", "PlainProgress", "RichProgress", "run_experiment",
            "resume_experiment", "default_executor", "check_controls", "disk_full_error",
@@ -544,9 +545,10 @@ class _LocalRun:
 
     def _loop(self) -> None:
         eng = self.engine
+        memory_floor.record(self.session, self.executor.memory_floor)  # session.json
         if eng.can_queue(self.stop_check is not None):
             self.mirror = J.JournalMirror(self.jr.path, MIRROR_LIMIT, self.exp.factor_names,
-                                          self.prior)
+                                          self.prior, memory_floor.floor_kib(self.session))
             self.stopped_early = eng.run_queued(self.todo, self.progress, self._tick,
                                                 self.mirror, self.watch)
             self._stopping_rule_done()

@@ -40,7 +40,7 @@ RESERVED_COLUMNS = frozenset({
     "involuntary_switches", "in_blocks", "out_blocks", "started_at", "message", "host",
     "worker", "host_position", "warmup", "levels", "metrics", "load_1m", "cpu_mhz",
     "pad_env_bytes", "aslr", "steady_s", "steady_state", "gate_role", "session", "cell",
-    "pgid", "pid",
+    "pgid", "pid", "max_rss_at_floor",
 })
 
 #: Keys of the core experiment file.

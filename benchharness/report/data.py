@@ -320,6 +320,9 @@ def collect(source, *, analysis=None, response: str | None = None,
     if session.get("benchharness_version"):
         design["version"] = session["benchharness_version"]
     extra, extra_notes = _extra_sections(folder, experiment, response)
+    from benchharness.measure.floor import note as floor_note
+
+    extra_notes += floor_note(runs, session, response)  # peak memory at the launcher's size
     better = _declared_metric(folder, response)
     name = getattr(experiment, "name", None) or (
         folder.name if folder else "experiment" if src_text == "<table>" else Path(src_text).stem)

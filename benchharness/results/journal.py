@@ -47,6 +47,8 @@ from typing import Iterable, Mapping, Sequence
 
 from benchharness.errors import ResultsFolderError, is_disk_full
 from benchharness.execute.base import USAGE_FIELDS
+from benchharness.measure.floor import COLUMN as FLOOR_COLUMN, at_floor
+from benchharness.measure.floor import floor_kib as session_floor_kib
 
 #: Fixed leading columns of runs.csv, before the factor columns.
 LEAD_COLUMNS = ("run", "position", "block", "replicate")
@@ -754,7 +756,11 @@ def read_journal(path: Path, repair: bool = False, notes: list | None = None) ->
     return records
 
 
-def runs_columns(factors: Sequence[str], records: Iterable[Mapping]) -> list[str]:
+def runs_columns(factors: Sequence[str], records: Iterable[Mapping],
+                 floor_kib: int | None = None) -> list[str]:
+    """runs.csv's columns: fixed ones, factors, core figures, the memory-floor
+    mark when the session measured a floor (`benchharness.measure.floor`),
+    later capabilities' columns present in ``records``, metrics."""
     extra_present = []
     metric_names: list[str] = []
     for rec in records:
@@ -765,12 +771,15 @@ def runs_columns(factors: Sequence[str], records: Iterable[Mapping]) -> list[str
             if m not in metric_names:
                 metric_names.append(m)
     extras = [c for c in LATER_COLUMNS if c in extra_present]
-    return [*LEAD_COLUMNS, *factors, *CORE_COLUMNS, *extras, *metric_names]
+    marks = [FLOOR_COLUMN] if floor_kib is not None else []
+    return [*LEAD_COLUMNS, *factors, *CORE_COLUMNS, *marks, *extras, *metric_names]
 
 
-def row_values(rec: Mapping, factors: Sequence[str], cols: Sequence[str]) -> list:
+def row_values(rec: Mapping, factors: Sequence[str], cols: Sequence[str],
+               floor_kib: int | None = None) -> list:
     """One journal record as a ``runs.csv`` row, values in the order of ``cols``
-    (as `runs_columns` gives them: fixed columns, factors, later columns, metrics)."""
+    (as `runs_columns` gives them: fixed columns, factors, the floor mark,
+    later columns, metrics)."""
     g = rec.get
     lv = g("levels") or {}
     row = list(map(g, LEAD_COLUMNS))
@@ -780,7 +789,12 @@ def row_values(rec: Mapping, factors: Sequence[str], cols: Sequence[str]) -> lis
     if tail:
         mt = g("metrics") or {}
         for c in tail:
-            row.append(g(c) if c in LATER_COLUMNS else mt.get(c))
+            if c in LATER_COLUMNS:
+                row.append(g(c))
+            elif c == FLOOR_COLUMN:
+                row.append(at_floor(g("max_rss_kib"), floor_kib))
+            else:
+                row.append(mt.get(c))
     return row
 
 
@@ -807,8 +821,10 @@ class RunsCsvWriter:
     runs), then `commit`s it if the columns and order turned out as expected.
     """
 
-    def __init__(self, folder: Path, factors: Sequence[str], cols: Sequence[str]):
+    def __init__(self, folder: Path, factors: Sequence[str], cols: Sequence[str],
+                 floor_kib: int | None = None):
         self.path = folder / "runs.csv"
+        self.floor_kib = floor_kib
         self.tmp = folder / "runs.csv.partial"
         self.factors = list(factors)
         self.cols = list(cols)
@@ -818,7 +834,7 @@ class RunsCsvWriter:
         self.writer.writerow(self.cols)
 
     def add(self, rec: Mapping) -> None:
-        row = row_values(rec, self.factors, self.cols)
+        row = row_values(rec, self.factors, self.cols, self.floor_kib)
         # Only the later columns and the metrics can hold true/false (written as
         # such, not as Python's True/False); the fixed ones never do.
         if True in map(_is_bool, row[self.fixed:]):
@@ -856,8 +872,10 @@ class JournalMirror:
     ``limit`` runs, so a very long experiment does not hold them all.
     """
 
-    def __init__(self, path: Path, limit: int, factors=(), prior=()):
+    def __init__(self, path: Path, limit: int, factors=(), prior=(),
+                 floor_kib: int | None = None):
         self.path = path
+        self.floor_kib = floor_kib
         self.start = os.stat(path).st_size
         self.records: list | None = []
         self.lines: list = []
@@ -877,8 +895,10 @@ class JournalMirror:
                 if self.csv is None:
                     # runs.csv grows with the runs: its columns as the first run
                     # shows them (checked again at the end)
-                    self.csv = RunsCsvWriter(self.path.parent, self.factors,
-                                               runs_columns(self.factors, [*self.prior, rec]))
+                    self.csv = RunsCsvWriter(
+                        self.path.parent, self.factors,
+                        runs_columns(self.factors, [*self.prior, rec], self.floor_kib),
+                        self.floor_kib)
                     self.csv.add_all(self.prior)
                 self.csv.add(rec)
             except OSError:
@@ -895,7 +915,8 @@ class JournalMirror:
         csv_w, self.csv = self.csv, None
         if csv_w is None:
             return False
-        if (csv_w.cols == runs_columns(self.factors, records) and in_order(records)):
+        if (csv_w.cols == runs_columns(self.factors, records, self.floor_kib)
+                and in_order(records)):
             try:
                 csv_w.commit()
                 return True
@@ -917,10 +938,12 @@ class JournalMirror:
         return self.records if data == b"".join(self.lines) else None
 
 
-def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapping]) -> Path:
-    """Write ``runs.csv`` (one row per journal record, sorted by position) atomically."""
+def export_runs_csv(folder: Path, factors: Sequence[str], records: Sequence[Mapping],
+                    floor_kib: int | None = None) -> Path:
+    """Write ``runs.csv`` (one row per journal record, sorted by position) atomically;
+    ``floor_kib``: the session's memory floor (adds the `FLOOR_COLUMN` mark)."""
     records = sorted_records(records)
-    w = RunsCsvWriter(folder, factors, runs_columns(factors, records))
+    w = RunsCsvWriter(folder, factors, runs_columns(factors, records, floor_kib), floor_kib)
     try:
         w.add_all(records)
     except BaseException:
@@ -1110,13 +1133,14 @@ def load_results(folder: str | os.PathLike) -> Results:
     records = sorted_records(read_journal(p / "runs.jsonl", notes=notes))
     factors = list(exp.factor_names)
     check_levels(p, exp, records)
-    cols = runs_columns(factors, records)
-    runs = pd.DataFrame([row_values(r, factors, cols) for r in records], columns=cols)
+    session = _read_json(p / "session.json")
+    floor = session_floor_kib(session)
+    cols = runs_columns(factors, records, floor)
+    runs = pd.DataFrame([row_values(r, factors, cols, floor) for r in records], columns=cols)
     for f in factors:
         runs[f] = pd.Categorical(runs[f].astype("string").astype(object),
                                  categories=list(exp.levels_of(f)))
     host = _read_json(p / "host.json")
-    session = _read_json(p / "session.json")
     if (p / "session.json").exists() and not session:
         notes.append("session.json is damaged (not a JSON object); the runs are read without "
                      "it, but `run --resume` needs it")
