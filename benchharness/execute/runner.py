@@ -35,8 +35,8 @@ from benchharness.errors import DiskFullError, ExecutionError, ResultsFolderErro
 from benchharness.execute.base import as_executor
 from benchharness.execute.engine import (MIRROR_LIMIT, Progress, RunEngine, RunOutcome, finalize,
                                          start_quality, version)
-from benchharness.results import journal as J
 from benchharness.measure import floor as memory_floor
+from benchharness.results import journal as J
 
 __all__ = ["RunOutcome", "Progress", "PlainProgress", "RichProgress", "run_experiment",
            "resume_experiment", "default_executor", "check_controls", "disk_full_error",
