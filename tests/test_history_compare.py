@@ -8,6 +8,7 @@ Values are invented with planted ratios (truth known by construction).
 from __future__ import annotations
 
 import json
+import re
 
 import numpy as np
 import pytest
@@ -258,6 +259,7 @@ def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
     assert r.returncode == 0, r.stderr
     assert "Sidak" in r.stdout and "all 16 cells together at 95%" in r.stdout
     assert "slower (beyond" not in r.stdout and "faster (beyond" not in r.stdout
+    assert "slower beyond" not in r.stdout.splitlines()[0]
     data = json.loads((tmp_path / "same.json").read_text())
     assert data["interval_adjustment"] == "sidak"
     assert data["per_cell_conf_level"] == pytest.approx(0.95 ** (1 / 16))
@@ -267,6 +269,13 @@ def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
     flagged = [c["cell"] for c in cells if c["verdict"] != "within" and c["verdict"] != "unclear"]
     assert flagged == [{"codec": "zstd", "input": "csv"}]
     assert [c["wording"] for c in cells if c["cell"] == flagged[0]] == ["slower (beyond 5%)"]
+    # the first line says it in plain words (planted: one cell 1.3× as slow); the
+    # numbers carry units and ratios read 1.30×, intervals "a to b"
+    head = r.stdout.splitlines()[0]
+    assert head.startswith("B against A, wall_s: 1 cell slower beyond 5%"), head
+    assert "(of 16 shared cells)" in head and "faster" not in head
+    assert " s " in r.stdout and "×" in r.stdout and "× to " in r.stdout
+    assert not re.search(r"\d-\d\.\d", r.stdout)     # no "1.01-1.10" intervals left
     r = cli("compare", a, same, "--adjust", "none")
     assert r.returncode == 0 and "per cell" in r.stdout and "not adjusted" in r.stdout
     r = cli("compare", a, same, "--adjust", "holm")

@@ -64,6 +64,35 @@ def main(args) -> int:
     return 0
 
 
+def headline(result) -> str:
+    """One plain sentence first: how many shared cells B changed beyond the tolerance, which
+    way, and how many it left the same or could not tell (the numbers follow in the table)."""
+    from benchharness.numbers import plural
+
+    cells = result.cells
+    if not cells:
+        return "A and B share no cell, so nothing was compared."
+    count = {}
+    for c in cells:
+        count.setdefault(c.verdict, []).append(c)
+    tol = f"{result.tolerance * 100:g}%"
+    parts = []
+    for verdict in ("higher", "lower"):
+        if count.get(verdict):
+            word = count[verdict][0].wording.split(" (")[0]
+            parts.append(f"{plural(len(count[verdict]), 'cell')} {word} beyond {tol}")
+    if count.get("within"):
+        parts.append(f"{plural(len(count['within']), 'cell')} the same within {tol}")
+    if count.get("unclear"):
+        parts.append(f"{plural(len(count['unclear']), 'cell')} unclear")
+    if len(parts) > 1:
+        text = ", ".join(parts[:-1]) + " and " + parts[-1]
+    else:
+        text = parts[0]
+    return (f"B against A, {result.response}: {text} "
+            f"(of {plural(len(cells), 'shared cell')}).")
+
+
 def print_comparison(result) -> None:
     from rich.table import Table
 
@@ -71,6 +100,7 @@ def print_comparison(result) -> None:
 
     console = make_console()
     ratio = result.scale == "log"
+    console.print(headline(result), highlight=False)
     console.print(f"A (baseline): {result.a}", highlight=False)
     console.print(f"B:            {result.b}", highlight=False)
     table = Table(title=f"{result.response}, B/A per cell" if ratio else

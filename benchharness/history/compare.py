@@ -77,6 +77,10 @@ class Comparison:
         """One line saying how the intervals hold, for the output."""
         m = len(self.cells)
         lvl = f"{self.conf_level * 100:g}%"
+        if m == 1:
+            return (f"The interval holds at {lvl} for the one shared cell; two folders of the "
+                    f"same program flag it with probability at most "
+                    f"{(1 - self.conf_level) * 100:g}%.")
         if self.adjustment == "none":
             return (f"Intervals are per cell ({lvl} each), not adjusted for the {m} cells: "
                     "with many cells some miss by chance, so a flagged cell may be noise.")

@@ -12,7 +12,9 @@ lists; the HTML and Markdown templates lay them out.
 from __future__ import annotations
 
 from benchharness.report.data import ReportData, finite
-from benchharness.report.units import fmt_num, fmt_p, fmt_ratio
+from benchharness.report.units import (
+    fmt_interval, fmt_num, fmt_p, fmt_ratio, fmt_ratio_interval,
+)
 
 COLUMNS = ("alias chain", "letters", "effect", "ratio", "interval", "p", "verdict")
 
@@ -83,9 +85,9 @@ def section(data: ReportData) -> dict | None:
         if verdict:
             (active if e.get("active") else likely).append(e.get("chain") or e.get("label"))
         if log and finite(e.get("ratio_low")) and finite(e.get("ratio_high")):
-            interval = f"{fmt_ratio(e['ratio_low'])} to {fmt_ratio(e['ratio_high'])}"
+            interval = fmt_ratio_interval(e["ratio_low"], e["ratio_high"])
         elif finite(e.get("ci_low")) and finite(e.get("ci_high")):
-            interval = f"{fmt_num(e['ci_low'], 3)} to {fmt_num(e['ci_high'], 3)}"
+            interval = fmt_interval(e["ci_low"], e["ci_high"])
         else:
             interval = "–"
         p = fmt_p(e.get("p")) if finite(e.get("p")) else "–"

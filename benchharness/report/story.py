@@ -14,7 +14,7 @@ from typing import Any
 
 from benchharness.report.data import ReportData, finite
 from benchharness.report.units import (
-    describe, fmt_num, fmt_p, fmt_ratio, fmt_value, plural, unit_of,
+    describe, fmt_num, fmt_p, fmt_ratio, fmt_ratio_interval, fmt_value, plural, unit_of,
 )
 
 
@@ -87,7 +87,7 @@ def _effect_phrase(data: ReportData, e: dict) -> str:
     what = describe(data.response)
     f = e.get("factor")
     ratio, lo, hi = e.get("ratio"), e.get("lower"), e.get("upper")
-    interval = f"{conf} interval {fmt_ratio(lo)} to {fmt_ratio(hi)}"
+    interval = f"{conf} interval {fmt_ratio_interval(lo, hi)}"
     verb = "takes" if unit_of(data.response) == "s" else "gives"
     if finite(ratio):
         r = float(ratio)
