@@ -53,6 +53,10 @@ def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, cli):
     assert "regression: archive-codecs wall_s codec=<fast> at commit c0" in r.stderr
     assert "STEP: regression" in r.stdout and "HOST CHANGED" in r.stdout
     assert "archive-codecs | wall_s (log scale) | codec=" in r.stdout   # the scale is said
+    # the first line answers in plain words: the planted 6% step at c06, the host at c12
+    head = r.stdout.splitlines()[0]
+    assert re.match(r"History of 2 cell series: 1 step found: a regression of 1\.0[4-8]× at "
+                    r"commit c06 \(codec=<fast>\); the host changed at c12 \(a known break", head), head
     data = json.loads(out_json.read_text())
     cells = {c["cell"]["codec"]: c for c in data["cells"]}
     fast, lzma = cells["<fast>"], cells["lzma"]

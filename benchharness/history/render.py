@@ -79,6 +79,38 @@ def step_rows(trends: list[CellTrend]) -> list[dict]:
     return rows
 
 
+def headline(trends: list[CellTrend]) -> str:
+    """The answer in one plain sentence: how many series, the steps found (kind, ratio,
+    commit, cell), changes not yet confirmed and host changes; the tables follow."""
+    steps, pending, hosts = [], 0, {}
+    for t in trends:
+        det = t.detection
+        if det is None:
+            continue
+        pending += len(det.unconfirmed)
+        for b in det.breaks:
+            hosts.setdefault(t.points[b.index].commit[:12], None)
+        for st in det.steps:
+            kind = step_kind(t.response, st.ratio, st.persists)
+            steps.append(f"{'an' if kind[0] in 'aeiou' else 'a'} {kind} of "
+                         f"{fmt_ratio(st.ratio)} at commit {t.points[st.index].commit[:12]} "
+                         f"({t.label})")
+    where = f"History of {plural(len(trends), 'cell series')}: "
+    if steps:
+        text = f"{plural(len(steps), 'step')} found: " + "; ".join(steps[:3]) + (
+            f"; and {len(steps) - 3} more" if len(steps) > 3 else "")
+    else:
+        text = "no step found"
+    if pending:
+        text += (f"; {plural(pending, 'change')} at the newest commits not yet confirmed")
+    if hosts:
+        text += (f"; the host changed at {', '.join(list(hosts)[:3])}"
+                 + (" and more" if len(hosts) > 3 else "")
+                 + (" (a known break, not a regression)" if len(hosts) == 1
+                    else " (known breaks, not regressions)"))
+    return where + text + "."
+
+
 def print_trends(trends: list[CellTrend], console=None) -> None:
     from rich.table import Table
 
@@ -88,6 +120,8 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
     if not trends:
         console.print("No history rows match.")
         return
+    console.print(headline(trends), highlight=False)
+    console.print()
     for t in trends:
         scale = "geo. mean" if t.scale == "log" else "mean"
         branches = {p.branch for p in t.points}
