@@ -208,7 +208,8 @@ def test_executable_hash_changes_when_the_binary_does(tmp_path):
     assert missing["executable"] is None and "not found" in missing["note"]
     prov = collect_provenance(tmp_path, [({"codec": "zlib"}, ("squeeze",), None, env,
                                           str(tmp_path))])
-    assert prov["cells"][0]["levels"] == {"codec": "zlib"}
+    assert prov["programs"][0]["example"]["levels"] == {"codec": "zlib"}
+    assert prov["programs"][0]["executable"] == str(tool.resolve())
     json.dumps(prov)
 
 

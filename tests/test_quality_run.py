@@ -117,10 +117,10 @@ def test_warm_cache_demo_end_to_end(tmp_path, monkeypatch):
     advised = [c for c in steady["cells"] if "advice" in c]
     assert advised and all(c["advice"]["executions"] >= 2 for c in advised)
     prov = json.loads((folder / "provenance.json").read_text())
-    assert len(prov["cells"]) == 4
-    script = [f for f in prov["cells"][0]["files"] if f["path"].endswith("warmcache.py")]
+    assert prov["cell_count"] == 4 and prov["programs_vary_with"] == []   # one program
+    script = [f for f in prov["programs"][0]["files"] if f["path"].endswith("warmcache.py")]
     assert script and len(script[0]["sha256"]) == 64
-    assert prov["cells"][0]["executable_sha256"]
+    assert prov["programs"][0]["executable_sha256"]
 
 
 def test_expect_marks_wrong_answers_failed_and_metrics_missing(tmp_path):
@@ -260,13 +260,14 @@ def test_resumed_folder_keeps_first_provenance_and_flags_changed_files(tmp_path)
     q = RunQuality(exp, folder)
     q.start([({"a": "1"}, cell)])
     first = json.loads((folder / "provenance.json").read_text())
-    assert first["cells"][0]["files"][0]["path"] == str(script.resolve())
+    assert first["programs"][0]["files"][0]["path"] == str(script.resolve())
     script.write_text("print(2)\n")
     q2 = RunQuality(exp, folder)
     q2.start([({"a": "1"}, cell)])
     assert json.loads((folder / "provenance.json").read_text()) == first   # never overwritten
     again = json.loads((folder / "provenance.resumed-1.json").read_text())
-    assert again["cells"][0]["files"][0]["sha256"] != first["cells"][0]["files"][0]["sha256"]
+    assert (again["programs"][0]["files"][0]["sha256"]
+            != first["programs"][0]["files"][0]["sha256"])
     assert any("changed" in n and "app.py" in n for n in q2.notes)
 
 

@@ -109,55 +109,75 @@ def make_plan(exp: Experiment, seed: int | None = None,
     a design confounds effects with blocks. ``first_replicate``/``first_run``
     let adaptive replication append further complete replicates to a plan.
     """
+    import numpy as np
     from numpy.random import Generator, PCG64
 
     if seed is None:
         seed = exp.seed if exp.seed is not None else draw_seed()
     rng = Generator(PCG64(seed))
-    cell_list = [dict(c) for c in (cells if cells is not None else full_factorial_cells(exp))]
+    cell_list = (full_factorial_cells(exp) if cells is None else [dict(c) for c in cells])
     n_cells = len(cell_list)
     reps = exp.replicates if replicates is None else replicates
     n_warm = exp.warmup if warmup is None else warmup
     order = exp.order
 
-    # (cell index, replicate, block, warmup)
-    warm: list[tuple[int, int, int, bool]] = [(c, 0, 0, True)
-                                             for _ in range(n_warm) for c in range(n_cells)]
-    if order != "listed":
-        warm = [warm[i] for i in rng.permutation(len(warm))] if warm else []
-
-    timed: list[tuple[int, int, int, bool]] = []
-    rep_range = range(first_replicate, first_replicate + reps)
+    # Runs as parallel arrays (cell index, replicate, block), in execution order; the
+    # random draws are the same, call for call, as one run at a time would make.
+    all_cells = np.arange(n_cells, dtype=np.int64)
+    warm_c = np.tile(all_cells, n_warm)
+    if order != "listed" and len(warm_c):
+        warm_c = warm_c[rng.permutation(len(warm_c))]
+    rep_range = np.arange(first_replicate, first_replicate + reps, dtype=np.int64)
     if order == "listed":
-        for c in range(n_cells):
-            for r in rep_range:
-                timed.append((c, r, _block(blocks_of_cell, c, r, order), False))
+        c = np.repeat(all_cells, reps)
+        r = np.tile(rep_range, n_cells)
+        b = (r if order == "blocked" else np.ones_like(r)) if blocks_of_cell is None else \
+            np.array([_block(blocks_of_cell, int(ci), int(ri), order)
+                      for ci, ri in zip(c, r)], dtype=np.int64)
     elif order == "blocked" or blocks_of_cell is not None:
-        for r in rep_range:
+        cs, rs, bs = [], [], []
+        for rep in rep_range.tolist():
             if blocks_of_cell is None:
                 perm = rng.permutation(n_cells)
-                timed.extend((int(c), r, r, False) for c in perm)
+                cs.append(perm)
+                rs.append(np.full(n_cells, rep))
+                bs.append(np.full(n_cells, rep))
             else:
                 # Each design block runs complete and in random order; blocks of a
                 # replicate follow one another in random order.
                 nb = max(blocks_of_cell) + 1
-                for b in rng.permutation(nb):
-                    members = [c for c in range(n_cells) if blocks_of_cell[c] == b]
+                for blk in rng.permutation(nb):
+                    members = [ci for ci in range(n_cells) if blocks_of_cell[ci] == blk]
                     for i in rng.permutation(len(members)):
-                        c = members[int(i)]
-                        timed.append((c, r, _block(blocks_of_cell, c, r, order), False))
+                        ci = members[int(i)]
+                        cs.append([ci])
+                        rs.append([rep])
+                        bs.append([_block(blocks_of_cell, ci, rep, order)])
+        c = np.concatenate(cs) if cs else all_cells[:0]
+        r = np.concatenate(rs) if rs else all_cells[:0]
+        b = np.concatenate(bs) if bs else all_cells[:0]
     else:
-        allr = [(c, r) for r in rep_range for c in range(n_cells)]
-        for i in rng.permutation(len(allr)):
-            c, r = allr[int(i)]
-            timed.append((c, r, 1, False))
+        perm = rng.permutation(n_cells * reps)      # over (cell, replicate), replicate-major
+        c = perm % n_cells if n_cells else perm
+        r = rep_range[perm // n_cells] if n_cells else perm
+        b = np.ones_like(c)
 
-    runs = []
-    for pos, (c, r, b, w) in enumerate(warm + timed):
-        runs.append(PlannedRun(run=first_run + pos, position=first_run + pos, block=b,
-                               replicate=r, warmup=w, levels=cell_list[c], cell=c))
+    n_w = len(warm_c)
+    runs = [_planned(first_run + pos, 0, 0, True, cell_list[ci], ci)
+            for pos, ci in enumerate(warm_c.tolist())]
+    runs += [_planned(first_run + n_w + pos, bi, ri, False, cell_list[ci], ci)
+             for pos, (ci, ri, bi) in enumerate(zip(c.tolist(), r.tolist(), b.tolist()))]
     return Plan(factors=exp.factor_names, cells=n_cells, seed=int(seed), order=order,
                 runs=tuple(runs), info=dict(info or {}))
+
+
+def _planned(pos: int, block: int, replicate: int, warmup: bool, levels, cell: int) -> PlannedRun:
+    """A `PlannedRun` made without the frozen dataclass's per-field checks (a plan may
+    hold a million); the levels dict is shared by every run of its cell."""
+    pr = object.__new__(PlannedRun)
+    pr.__dict__.update(run=pos, position=pos, block=block, replicate=replicate, warmup=warmup,
+                       levels=levels, cell=cell)
+    return pr
 
 
 def _block(blocks_of_cell, c: int, r: int, order: str) -> int:

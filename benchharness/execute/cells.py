@@ -33,6 +33,7 @@ class CellCache:
         self.exp = exp
         self.factor_names = tuple(exp.factor_names)
         self.cache: dict[tuple, dict] = {}
+        self.envs: dict[tuple, dict] = {}
         self.controls = parse_controls(exp)
         if self.controls.clean_env:
             from benchharness.execute.envs import clean_environment
@@ -50,23 +51,32 @@ class CellCache:
             c = self.cache[key] = self._render(levels)
         return c
 
+    def _env_for(self, env_over: Mapping[str, str]) -> dict:
+        """One shared environment per distinct set of templated variables (never a copy
+        per cell: a plan of 100,000 cells would hold 100,000 environments)."""
+        k = tuple(env_over.items())
+        env = self.envs.get(k)
+        if env is None:
+            env = self.envs[k] = {**self.base_env, **env_over}
+        return env
+
     def _render(self, levels: Mapping[str, str]) -> dict:
         from benchharness.execute.controls import resolve_cell
 
         exp = self.exp
-        env_over = exp.render_env(levels)
-        env = dict(self.base_env)
-        env.update(env_over)
-        wd = exp.render_workdir(levels)
+        lookup = exp.lookup(levels)     # once per cell, for every template of it
+        env_over = exp.render_env(levels, lookup)
+        env = self._env_for(env_over)
+        wd = exp.render_workdir(levels, lookup)
         cwd = self.cwd if wd is None else str(Path(self.exp_dir, wd))
-        argv, shell = exp.render_command(exp.command, levels)
+        argv, shell = exp.render_command(exp.command, levels, lookup)
         ctl = resolve_cell(exp, self.controls, levels)
         c = {"cpus": ctl["cpus"], "nice": ctl["nice"], "no_aslr": self.controls.aslr_off,
              "argv": argv, "shell": shell, "env": env, "env_over": env_over, "cwd": cwd,
              "label": " ".join(f"{k}={v}" for k, v in levels.items())}
         for step in STEPS:
             t = getattr(exp, step)
-            c[step] = exp.render_command(t, levels) if t is not None else None
+            c[step] = exp.render_command(t, levels, lookup) if t is not None else None
         return c
 
 

@@ -146,26 +146,37 @@ class Experiment:
 
     def lookup(self, levels: Mapping[str, str]):
         """Template lookup for a cell given as factor → label."""
+        table = self._level_values
         values = {}
-        for f in self.factors:
-            label = levels[f.name]
-            for lv in f.levels:
-                if lv.label == label:
-                    values[f.name] = lv.values
-                    break
+        for name, by_label in table:
+            v = by_label.get(levels[name])
+            if v is not None:
+                values[name] = v
         return templating.level_lookup(levels, values)
 
-    def render_command(self, template: CommandTemplate, levels: Mapping[str, str]):
-        return template.render(self.lookup(levels))
+    @property
+    def _level_values(self) -> tuple:
+        """``((factor, {label: named values}), ...)``, made once (a plan renders every cell)."""
+        cached = self.__dict__.get("_level_values_cache")
+        if cached is None:
+            cached = tuple((f.name, {lv.label: lv.values for lv in reversed(f.levels)})
+                           for f in self.factors)
+            self.__dict__["_level_values_cache"] = cached   # frozen: set past __setattr__
+        return cached
 
-    def render_env(self, levels: Mapping[str, str]) -> dict[str, str]:
-        lookup = self.lookup(levels)
+    # ``lookup``: `lookup(levels)` made once by a caller that renders several templates
+    # of the same cell.
+    def render_command(self, template: CommandTemplate, levels: Mapping[str, str], lookup=None):
+        return template.render(lookup or self.lookup(levels))
+
+    def render_env(self, levels: Mapping[str, str], lookup=None) -> dict[str, str]:
+        lookup = lookup or self.lookup(levels)
         return {k: templating.render(v, lookup) for k, v in self.env.items()}
 
-    def render_workdir(self, levels: Mapping[str, str]) -> str | None:
+    def render_workdir(self, levels: Mapping[str, str], lookup=None) -> str | None:
         if self.workdir is None:
             return None
-        return templating.render(self.workdir, self.lookup(levels))
+        return templating.render(self.workdir, lookup or self.lookup(levels))
 
     @classmethod
     def from_text(cls, text: str, path: str = "<string>") -> "Experiment":

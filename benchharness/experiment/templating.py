@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import re
 import shlex
+from functools import lru_cache
 from dataclasses import dataclass
 from typing import Callable, Mapping
 
@@ -83,16 +84,34 @@ def render(template: str, lookup: Callable[[str, str | None], str],
     also handles placeholders inside quotes.
     """
 
-    def sub(m: re.Match) -> str:
-        if m.group(0) == "{{":
-            return "{"
-        if m.group(0) == "}}":
-            return "}"
-        factor, _, name = m.group(1).partition(".")
-        value = lookup(factor, name or None)
-        return shlex.quote(value) if quote else value
+    out = []
+    for piece in _compiled(template):
+        if piece.__class__ is str:
+            out.append(piece)
+        else:
+            value = lookup(*piece)
+            out.append(shlex.quote(value) if quote else value)
+    return "".join(out)
 
-    return _PLACEHOLDER.sub(sub, template)
+
+@lru_cache(maxsize=4096)
+def _compiled(template: str) -> tuple:
+    """A template split once into literal text and ``(factor, name)`` placeholders
+    (a plan renders the same few templates for every one of its cells)."""
+    out: list = []
+    pos = 0
+    for m in _PLACEHOLDER.finditer(template):
+        if m.start() > pos:
+            out.append(template[pos:m.start()])
+        pos = m.end()
+        if m.group(0) in ("{{", "}}"):
+            out.append(m.group(0)[0])
+            continue
+        factor, _, name = m.group(1).partition(".")
+        out.append((factor, name or None))
+    if pos < len(template):
+        out.append(template[pos:])
+    return tuple(out)
 
 
 class _ShellReader:

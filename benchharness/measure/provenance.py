@@ -5,14 +5,18 @@ records, as plain dicts for ``provenance.json``:
 
 * the git revision, branch and dirty state (with the changed paths) of the
   experiment's directory when it lies in a git repository;
-* for each cell, the executable the command resolves to — ``shutil.which``
+* for each program the cells run, the executable the command resolves to — ``shutil.which``
   on ``argv[0]`` with the run's ``PATH`` and working directory, the same
   lookup ``execve`` by name performs — and its SHA-256; plus the SHA-256 of
   every other argument that names an existing file (the script an interpreter
   runs, an input file), because ``python3 bench.py`` changes when ``bench.py``
   does.
 
-Hashes are computed once per distinct path and file state.
+Hashes are computed once per distinct path and file state, and what is common
+to many cells is stored once: ``provenance.json`` (layout 2) lists one entry per
+distinct program, keyed by the levels of the factors that decide it (often
+none: one entry for a plan of any size). `read_provenance` also reads layout 1,
+written before, with one entry per cell.
 """
 
 from __future__ import annotations
@@ -188,21 +192,212 @@ def command_files(argv: tuple[str, ...] | None, shell_command: str | None,
     return out
 
 
+#: Layout of provenance.json written by `collect_provenance` (1: one entry per cell).
+LAYOUT = 2
+
+
+class _Programs:
+    """What each cell runs, found once per distinct executable lookup and file argument.
+
+    Two cells whose rendered commands name the same executable (looked up with the
+    same PATH from the same directory) and the same existing files run the same
+    program; its hashes are computed once (`_Hasher`), and every lookup is memoised,
+    so a plan of 100,000 cells costs dictionary look-ups per cell, not file-system
+    calls.
+    """
+
+    def __init__(self):
+        self.hasher = _Hasher()
+        self.exe: dict = {}        # (name, PATH, cwd) -> resolved path or None
+        self.arg: dict = {}        # (argument, cwd) -> real path of an existing file, or None
+        self.hash: dict = {}       # path -> sha256 (file states do not change within a call)
+
+    def _sha(self, path: str) -> str | None:
+        if path not in self.hash:
+            self.hash[path] = self.hasher(path)
+        return self.hash[path]
+
+    def _file(self, arg: str, cwd: str) -> str | None:
+        key = (arg, cwd)
+        if key not in self.arg:
+            cand = arg.split("=", 1)[1] if arg.startswith("--") and "=" in arg else arg
+            rp = None
+            if cand and not (cand.startswith("-") and cand == arg):
+                p = cand if os.path.isabs(cand) else os.path.join(cwd, cand)
+                if os.path.isfile(p):
+                    rp = os.path.realpath(p)
+            self.arg[key] = rp
+        return self.arg[key]
+
+    def key(self, argv, shell_command, env, cwd) -> tuple:
+        """A hashable description of the program a rendered command runs."""
+        cwd = cwd or os.getcwd()
+        note = ""
+        if argv is None:
+            try:
+                words = shlex.split(shell_command or "")
+            except ValueError:
+                words = (shell_command or "").split()
+            note = "shell command: the first word is taken as the executable"
+            while words and "=" in words[0] and not words[0].startswith(("/", ".")):
+                words = words[1:]
+            argv = tuple(words)
+        if not argv:
+            return (None, (), "empty command")
+        path = (env or os.environ).get("PATH", os.defpath)
+        k = (argv[0], path, cwd)
+        if k not in self.exe:
+            self.exe[k] = resolve_executable(argv[0], env, cwd)
+        exe = self.exe[k]
+        files, seen = [], {exe} if exe else set()
+        for arg in argv[1:]:
+            rp = self._file(arg, cwd)
+            if rp is not None and rp not in seen:
+                seen.add(rp)
+                files.append((arg, rp))
+        if exe is None:
+            note = f"{argv[0]!r} was not found on PATH or relative to {cwd}"
+        return (exe, tuple(files), note)
+
+    def entry(self, key: tuple) -> dict:
+        exe, files, note = key
+        out = {"executable": exe, "executable_sha256": self._sha(exe) if exe else None,
+               "files": [{"argument": a, "path": p, "sha256": self._sha(p)} for a, p in files]}
+        if note:
+            out["note"] = note
+        return out
+
+
+def _deciding_factors(names: list[str], keys: list[tuple], ids: list[int]) -> list[str]:
+    """Fewest factors (dropped greedily, last first) whose levels still decide the program."""
+    if len(set(ids)) <= 1:
+        return []
+    keep = list(range(len(names)))
+    for j in reversed(range(len(names))):
+        trial = [i for i in keep if i != j]
+        seen: dict = {}
+        ok = True
+        for k, pid in zip(keys, ids):
+            proj = tuple(k[i] for i in trial)
+            if seen.setdefault(proj, pid) != pid:
+                ok = False
+                break
+        if ok:
+            keep = trial
+    return [names[i] for i in keep]
+
+
 def collect_provenance(directory: str | os.PathLike,
                        cells: Iterable[tuple[Mapping[str, str], tuple[str, ...] | None,
                                              str | None, Mapping[str, str], str | None]]) -> dict:
-    """``provenance.json`` content.
+    """``provenance.json`` content (layout 2: what is common is stored once).
 
     ``cells`` yields ``(levels, argv, shell_command, env, cwd)`` per cell,
-    rendered exactly as the runner will run them.
+    rendered exactly as the runner will run them. The result names the factors
+    whose levels decide which program and files a cell runs
+    (``programs_vary_with``; empty when every cell runs the same) and lists one
+    entry per distinct combination of their levels (``programs``): executable and
+    its SHA-256, file arguments and theirs, and the command of the first such cell
+    (``example``). Its size grows with the number of distinct programs, not of
+    cells. `read_provenance` reads this layout and layout 1 (one entry per cell).
     """
     from benchharness.results.journal import utc_iso
 
-    hasher = _Hasher()
-    out_cells = []
+    progs = _Programs()
+    names: list[str] | None = None
+    pkeys: dict[tuple, int] = {}
+    level_keys: list[tuple] = []
+    ids: list[int] = []
+    first: dict[int, tuple] = {}
     for levels, argv, shell_command, env, cwd in cells:
-        entry = {"levels": dict(levels)}
-        entry.update(command_files(argv, shell_command, env, cwd, hasher))
-        out_cells.append(entry)
-    return {"recorded_at": utc_iso(), "directory": str(Path(directory).resolve()),
-            "git": git_state(directory), "cells": out_cells}
+        if names is None:
+            names = list(levels)
+        pk = progs.key(argv, shell_command, env, cwd)
+        pid = pkeys.setdefault(pk, len(pkeys))
+        lk = tuple(levels[n] for n in names)
+        if pid not in first:
+            first[pid] = (lk, list(argv) if shell_command is None and argv is not None
+                          else shell_command)
+        level_keys.append(lk)
+        ids.append(pid)
+    names = names or []
+    vary = _deciding_factors(names, level_keys, ids)
+    idx = [names.index(n) for n in vary]
+    by_id = list(pkeys)    # program keys in the order of their ids
+    programs: dict[tuple, dict] = {}
+    for lk, pid in zip(level_keys, ids):
+        proj = tuple(lk[i] for i in idx)
+        e = programs.get(proj)
+        if e is None:
+            ex_levels, ex_command = first[pid]
+            e = {"levels": dict(zip(vary, proj)), "cells": 0}
+            e.update(progs.entry(by_id[pid]))
+            e["example"] = {"levels": dict(zip(names, ex_levels)), "command": ex_command}
+            programs[proj] = e
+        e["cells"] += 1
+    return {"layout": LAYOUT, "recorded_at": utc_iso(),
+            "directory": str(Path(directory).resolve()), "git": git_state(directory),
+            "factors": names, "cell_count": len(ids), "programs_vary_with": vary,
+            "programs": list(programs.values())}
+
+
+def read_provenance(source) -> dict:
+    """A ``provenance.json`` (path, or its parsed content) in layout 2, whatever its layout.
+
+    Layout 1 (folders written before layout 2: ``cells``, one full entry per
+    cell) is converted: entries that agree are merged and the deciding factors
+    found as `collect_provenance` finds them.
+    """
+    import json
+
+    prov = source if isinstance(source, Mapping) else json.loads(Path(source).read_text())
+    if prov.get("layout", 1) >= 2:
+        return dict(prov)
+    old = [c for c in prov.get("cells") or [] if isinstance(c, Mapping)]
+    names = list(old[0].get("levels") or {}) if old else []
+    keys: dict = {}
+    level_keys, ids, entries = [], [], {}
+    for c in old:
+        content = {k: c.get(k) for k in ("executable", "executable_sha256", "files", "note")
+                   if k in c}
+        pid = keys.setdefault(json.dumps(content, sort_keys=True), len(keys))
+        entries.setdefault(pid, (content, c))
+        level_keys.append(tuple((c.get("levels") or {}).get(n) for n in names))
+        ids.append(pid)
+    vary = _deciding_factors(names, level_keys, ids)
+    idx = [names.index(n) for n in vary]
+    programs: dict = {}
+    for lk, pid in zip(level_keys, ids):
+        proj = tuple(lk[i] for i in idx)
+        if proj not in programs:
+            content, c = entries[pid]
+            programs[proj] = {"levels": dict(zip(vary, proj)), "cells": 0, **content,
+                              "example": {"levels": dict(c.get("levels") or {}),
+                                          "command": c.get("command")}}
+        programs[proj]["cells"] += 1
+    out = {k: v for k, v in prov.items() if k != "cells"}
+    out.update({"layout": 2, "converted_from_layout": 1, "factors": names,
+                "cell_count": len(old), "programs_vary_with": vary,
+                "programs": list(programs.values())})
+    return out
+
+
+def program_of(prov: Mapping, levels: Mapping[str, str]) -> dict | None:
+    """The program entry of the cell with ``levels`` (either layout), or None."""
+    prov = read_provenance(prov)
+    want = {f: str(levels.get(f)) for f in prov.get("programs_vary_with") or []}
+    for e in prov.get("programs") or []:
+        if {k: str(v) for k, v in (e.get("levels") or {}).items()} == want:
+            return e
+    return None
+
+
+def file_hashes(prov: Mapping) -> dict[str, str | None]:
+    """Every executable and file argument recorded (either layout), path → SHA-256."""
+    out: dict = {}
+    for e in read_provenance(prov).get("programs") or []:
+        if e.get("executable"):
+            out[e["executable"]] = e.get("executable_sha256")
+        for f in e.get("files") or []:
+            out[f["path"]] = f.get("sha256")
+    return out

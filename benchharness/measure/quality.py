@@ -399,14 +399,7 @@ class RunQuality:
 
 
 def _changed_executables(first: dict, now: dict) -> list[str]:
-    def hashes(p):
-        out = {}
-        for c in p.get("cells") or []:
-            if c.get("executable"):
-                out[c["executable"]] = c.get("executable_sha256")
-            for f in c.get("files") or []:
-                out[f["path"]] = f.get("sha256")
-        return out
+    from benchharness.measure.provenance import file_hashes  # either layout of the file
 
-    a, b = hashes(first), hashes(now)
+    a, b = file_hashes(first), file_hashes(now)
     return sorted(p for p in a.keys() & b.keys() if a[p] != b[p])
