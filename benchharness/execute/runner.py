@@ -238,7 +238,7 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
         session = _session_record(exp, plan, seed, scheduler, budget_s)
         folder = _write_new_folder(folder, base, out, exp, plan, session, host, scheduler)
         planned = [{"run": r.run, "position": r.position, "block": r.block,
-                    "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
+                    "replicate": r.replicate, "warmup": r.warmup, "levels": r.levels}
                    for r in plan.runs]
         if scheduler:
             from benchharness.execute.cluster import execute_on_cluster
