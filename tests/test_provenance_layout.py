@@ -66,7 +66,7 @@ def test_the_factor_that_picks_an_input_file_decides_the_program(tmp_path):
                       str(tmp_path)))
     prov = collect_provenance(tmp_path, cells)
     assert prov["programs_vary_with"] == ["corpus"]
-    assert [p["levels"] for p in prov["programs"]] == [{"corpus": "text"}, {"corpus": "binary"}]
+    assert [p["when"] for p in prov["programs"]] == [[{"corpus": "text"}], [{"corpus": "binary"}]]
     assert all(p["cells"] == 4 for p in prov["programs"])
     binary = program_of(prov, {"codec": "lzma", "corpus": "binary", "level": "1"})
     assert binary["files"][0]["sha256"] == hashlib.sha256(b"\x00\x01").hexdigest()
@@ -127,3 +127,39 @@ def test_a_run_writes_layout_two(tmp_path, cli):
     prov = json.loads((tmp_path / "res" / "provenance.json").read_text())
     assert prov["layout"] == 2 and prov["cell_count"] == 6 and len(prov["programs"]) == 1
     assert prov["programs"][0]["executable"] == os.path.realpath(shutil.which("true"))
+
+
+def _experiment(tmp_path, command: str, factors: str):
+    from benchharness.experiment.file import load_experiment
+
+    p = tmp_path / "e.yaml"
+    p.write_text(f"experiment: t\ncommand: {command}\nfactors: {factors}\n")
+    return load_experiment(p)
+
+
+def test_a_plan_whose_levels_cannot_change_the_program_renders_one_cell(tmp_path):
+    from benchharness.design.plan import full_factorial_cells
+    from benchharness.measure.provenance import plan_provenance
+
+    exp = _experiment(tmp_path, "[/bin/true, '{a}', '--b={b}']",
+                      "{a: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10], b: [x, y, z]}")
+    calls = []
+
+    def command_of(lv):
+        calls.append(lv)
+        return ("/bin/true", lv["a"], f"--b={lv['b']}"), None, dict(os.environ), str(tmp_path)
+
+    prov = plan_provenance(tmp_path, exp, full_factorial_cells(exp), command_of)
+    assert len(calls) == 1                          # one cell rendered for thirty
+    assert prov["cell_count"] == 30 and prov["programs"][0]["cells"] == 30
+    assert prov["programs_vary_with"] == []
+    # planted: a level that names an existing file makes every cell count again
+    (tmp_path / "7").write_text("seven")
+    calls.clear()
+    prov = plan_provenance(tmp_path, exp, full_factorial_cells(exp), command_of)
+    assert len(calls) == 30
+    assert prov["programs_vary_with"] == ["a"] and len(prov["programs"]) == 2
+    seven = program_of(prov, {"a": "7", "b": "y"})
+    assert seven["cells"] == 3 and seven["when"] == [{"a": "7"}]
+    assert len(program_of(prov, {"a": "1", "b": "x"})["when"]) == 9     # stored once for nine
+    assert seven["files"][0]["sha256"] == hashlib.sha256(b"seven").hexdigest()  # ref: hashlib

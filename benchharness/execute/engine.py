@@ -563,5 +563,5 @@ def start_quality(exp, folder: Path, cells: CellCache, planned: Sequence[Mapping
 
     quality = RunQuality(exp, folder)
     distinct = {tuple(sorted(pr["levels"].items())): pr["levels"] for pr in planned}
-    quality.start([(lv, cells.get(lv)) for lv in distinct.values()])
+    quality.start(distinct.values(), render=cells.get)  # cells rendered only as needed
     return quality

@@ -295,11 +295,11 @@ def collect_provenance(directory: str | os.PathLike,
     ``cells`` yields ``(levels, argv, shell_command, env, cwd)`` per cell,
     rendered exactly as the runner will run them. The result names the factors
     whose levels decide which program and files a cell runs
-    (``programs_vary_with``; empty when every cell runs the same) and lists one
-    entry per distinct combination of their levels (``programs``): executable and
-    its SHA-256, file arguments and theirs, and the command of the first such cell
-    (``example``). Its size grows with the number of distinct programs, not of
-    cells. `read_provenance` reads this layout and layout 1 (one entry per cell).
+    (``programs_vary_with``; empty when every cell runs the same) and lists each
+    distinct program once (``programs``): the combinations of those factors'
+    levels whose cells run it (``when``), executable and its SHA-256, file
+    arguments and theirs, and the command of its first cell (``example``). Its size
+    grows with the number of distinct programs, not of cells. `read_provenance` reads this layout and layout 1 (one entry per cell).
     """
     from benchharness.results.journal import utc_iso
 
@@ -322,23 +322,31 @@ def collect_provenance(directory: str | os.PathLike,
         ids.append(pid)
     names = names or []
     vary = _deciding_factors(names, level_keys, ids)
-    idx = [names.index(n) for n in vary]
     by_id = list(pkeys)    # program keys in the order of their ids
-    programs: dict[tuple, dict] = {}
-    for lk, pid in zip(level_keys, ids):
-        proj = tuple(lk[i] for i in idx)
-        e = programs.get(proj)
-        if e is None:
-            ex_levels, ex_command = first[pid]
-            e = {"levels": dict(zip(vary, proj)), "cells": 0}
-            e.update(progs.entry(by_id[pid]))
-            e["example"] = {"levels": dict(zip(names, ex_levels)), "command": ex_command}
-            programs[proj] = e
-        e["cells"] += 1
+    programs = []
+    for pid, (ex_levels, ex_command) in sorted(first.items()):
+        e = {"when": [], "cells": 0}
+        e.update(progs.entry(by_id[pid]))
+        e["example"] = {"levels": dict(zip(names, ex_levels)), "command": ex_command}
+        programs.append(e)
+    _fill_when(programs, names, vary, level_keys, ids)
     return {"layout": LAYOUT, "recorded_at": utc_iso(),
             "directory": str(Path(directory).resolve()), "git": git_state(directory),
             "factors": names, "cell_count": len(ids), "programs_vary_with": vary,
-            "programs": list(programs.values())}
+            "programs": programs}
+
+
+def _fill_when(programs: list, names, vary, level_keys, ids) -> None:
+    """Each program's ``cells`` count and ``when``: the combinations of the deciding
+    factors' levels whose cells run it (``[{}]`` when no factor decides)."""
+    idx = [names.index(n) for n in vary]
+    seen: set = set()
+    for lk, pid in zip(level_keys, ids):
+        programs[pid]["cells"] += 1
+        proj = tuple(lk[i] for i in idx)
+        if proj not in seen:
+            seen.add(proj)
+            programs[pid]["when"].append(dict(zip(vary, proj)))
 
 
 def read_provenance(source) -> dict:
@@ -365,20 +373,16 @@ def read_provenance(source) -> dict:
         level_keys.append(tuple((c.get("levels") or {}).get(n) for n in names))
         ids.append(pid)
     vary = _deciding_factors(names, level_keys, ids)
-    idx = [names.index(n) for n in vary]
-    programs: dict = {}
-    for lk, pid in zip(level_keys, ids):
-        proj = tuple(lk[i] for i in idx)
-        if proj not in programs:
-            content, c = entries[pid]
-            programs[proj] = {"levels": dict(zip(vary, proj)), "cells": 0, **content,
-                              "example": {"levels": dict(c.get("levels") or {}),
-                                          "command": c.get("command")}}
-        programs[proj]["cells"] += 1
+    programs = []
+    for pid in range(len(keys)):
+        content, c = entries[pid]
+        programs.append({"when": [], "cells": 0, **content,
+                         "example": {"levels": dict(c.get("levels") or {}),
+                                     "command": c.get("command")}})
+    _fill_when(programs, names, vary, level_keys, ids)
     out = {k: v for k, v in prov.items() if k != "cells"}
     out.update({"layout": 2, "converted_from_layout": 1, "factors": names,
-                "cell_count": len(old), "programs_vary_with": vary,
-                "programs": list(programs.values())})
+                "cell_count": len(old), "programs_vary_with": vary, "programs": programs})
     return out
 
 
@@ -387,7 +391,7 @@ def program_of(prov: Mapping, levels: Mapping[str, str]) -> dict | None:
     prov = read_provenance(prov)
     want = {f: str(levels.get(f)) for f in prov.get("programs_vary_with") or []}
     for e in prov.get("programs") or []:
-        if {k: str(v) for k, v in (e.get("levels") or {}).items()} == want:
+        if any({k: str(v) for k, v in w.items()} == want for w in e.get("when") or []):
             return e
     return None
 
@@ -401,3 +405,81 @@ def file_hashes(prov: Mapping) -> dict[str, str | None]:
         for f in e.get("files") or []:
             out[f["path"]] = f.get("sha256")
     return out
+
+
+#: Most renderings of one templated argument examined to show that no level makes it a file.
+ONE_PROGRAM_MAX_RENDERINGS = 4096
+
+
+def plan_provenance(directory: str | os.PathLike, exp, cell_levels, command_of) -> dict:
+    """``provenance.json`` content for the cells of a plan, rendering as few as it can.
+
+    ``cell_levels``: the levels of every cell; ``command_of(levels)`` gives
+    ``(argv, shell_command, env, cwd)`` rendered as the runner will run them.
+    When the experiment's templates leave no room for a level to change the
+    program (`_one_program`), one cell is rendered and stands for all: a plan of
+    100,000 cells costs what a plan of one does. Otherwise every cell is rendered
+    (`collect_provenance`).
+    """
+    cell_levels = list(cell_levels)
+    if not cell_levels:
+        return collect_provenance(directory, [])
+    first = command_of(cell_levels[0])
+    if _one_program(exp, first):
+        prov = collect_provenance(directory, [(cell_levels[0], *first)])
+        prov["cell_count"] = len(cell_levels)
+        prov["programs"][0]["cells"] = len(cell_levels)
+        return prov
+    return collect_provenance(directory, ((lv, *(first if i == 0 else command_of(lv)))
+                                          for i, lv in enumerate(cell_levels)))
+
+
+def _one_program(exp, first) -> bool:
+    """Whether every cell of ``exp`` runs the program its first cell runs.
+
+    True when the command is a list (no shell), its first word, the working
+    directory and ``PATH`` hold no placeholder, and no templated argument names
+    an existing file for any combination of the levels it uses (each distinct
+    rendering checked once, at most `ONE_PROGRAM_MAX_RENDERINGS` per argument).
+    """
+    import itertools
+
+    from benchharness.experiment.templating import placeholders, render
+
+    argv, shell_command, _env, cwd = first
+    parts = getattr(exp.command, "parts", ())
+    if shell_command is not None or argv is None or getattr(exp.command, "shell", True):
+        return False
+    if len(parts) != len(argv) or not parts or placeholders(parts[0]):
+        return False
+    if exp.workdir is not None and placeholders(exp.workdir):
+        return False
+    if placeholders(str((exp.env or {}).get("PATH", ""))):
+        return False
+    factors = {f.name: f for f in exp.factors}
+    progs = _Programs()
+    for part in parts[1:]:
+        used = list(dict.fromkeys(p.factor for p in placeholders(part)))
+        if not used:
+            continue
+        if any(u not in factors for u in used):
+            return False
+        total = 1
+        for u in used:
+            total *= len(factors[u].levels)
+        if total > ONE_PROGRAM_MAX_RENDERINGS:
+            return False
+        for combo in itertools.product(*(factors[u].levels for u in used)):
+            chosen = dict(zip(used, combo))
+
+            def lookup(factor, name, chosen=chosen):
+                lv = chosen[factor]
+                return lv.label if name is None else lv.values[name]
+
+            try:
+                text = render(part, lookup)
+            except (KeyError, TypeError):
+                return False
+            if progs._file(text, cwd or os.getcwd()) is not None:
+                return False
+    return True

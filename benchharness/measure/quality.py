@@ -194,18 +194,34 @@ class RunQuality:
                                "unit_reported": self.cfg.samples.unit}
         return out
 
-    def start(self, cells: Iterable[tuple[Mapping[str, str], Mapping]]) -> None:
-        """Write ``metrics.json`` and ``provenance.json``; ``cells`` = (levels, cell dict)."""
+    def start(self, cells: Iterable, render=None) -> None:
+        """Write ``metrics.json`` and ``provenance.json``.
+
+        ``cells``: ``(levels, cell dict)`` pairs; or, with ``render``, the levels
+        of each cell alone, ``render(levels)`` giving its cell dict only when the
+        provenance needs it (a large plan then renders one cell here, not all).
+        """
         from benchharness.results import journal as J
-        from benchharness.measure.provenance import collect_provenance
+        from benchharness.measure.provenance import plan_provenance
 
         man = self.manifest()
         if man:
             J.write_atomic(self.folder / "metrics.json", json.dumps(man, indent=1))
         exp_dir = (str(Path(self.exp.path).resolve().parent)
                    if getattr(self.exp, "path", "<string>") != "<string>" else os.getcwd())
-        prov = collect_provenance(exp_dir, [
-            (levels, c["argv"], c["shell"], c["env"], c["cwd"]) for levels, c in cells])
+        if render is None:
+            pairs = list(cells)
+            levels_list = [lv for lv, _ in pairs]
+            by_key = {tuple(sorted(lv.items())): c for lv, c in pairs}
+            render = lambda lv: by_key[tuple(sorted(lv.items()))]  # noqa: E731
+        else:
+            levels_list = list(cells)
+
+        def command_of(levels):
+            c = render(levels)
+            return c["argv"], c["shell"], c["env"], c["cwd"]
+
+        prov = plan_provenance(exp_dir, self.exp, levels_list, command_of)
         target = self.folder / "provenance.json"
         if target.exists():
             # a resumed folder: keep the first record, add this one, flag changed binaries
