@@ -59,7 +59,7 @@ def _position_table(order: str, warmup: bool) -> np.ndarray:
 
 
 @pytest.mark.parametrize("order,warmup", [("randomized", False), ("randomized", True),
-                                          ("blocked", False)])
+                                          ("blocked", False), ("blocked", True)])
 def test_each_run_is_equally_likely_at_every_position_over_seeds(order, warmup):
     # Planted fault it catches: the randomized (or blocked) order left unshuffled, so each
     # run always sits at the same place. Reference: scipy.stats.chi2_contingency, the
