@@ -1,0 +1,251 @@
+"""Mutation testing of one area of benchharness with cosmic-ray, on a fixed-seed sample.
+
+Not part of the tool: a developer's script (DEVELOPERS.md, "Mutation testing"). It needs
+the ``dev`` extra (cosmic-ray, coverage). Every step works in a scratch folder
+(``$MUTATION_WORK``, default ``/tmp/benchharness-mutation``) on copies of the checkout,
+never on the checkout itself: cosmic-ray writes each mutant into the files it tests.
+
+    python experiments/mutation/mutants.py map AREA      # which tests run which line
+    python experiments/mutation/mutants.py init AREA     # the mutants, a sample of them
+    python experiments/mutation/mutants.py exec AREA     # run the sample (resumable)
+    python experiments/mutation/mutants.py rerun AREA    # survivors again, current tests
+    python experiments/mutation/mutants.py report AREA [-v]
+
+Areas, their modules, sample sizes and test files are in ``areas.json`` beside this
+script. ``init`` leaves out the mutants inside annotations (never evaluated under
+``from __future__ import annotations``, so equivalent by construction), restricts an
+area to the functions it names, sorts the rest by (module, line, column, operator,
+occurrence) and keeps ``random.Random(seed).sample(..., sample)`` of them.
+
+Each mutant runs only the tests that executed its line (coverage.py with one context
+per test function, from ``map``), with ``pytest -x``; a line no in-process test ran
+(code run in a child process, or at import) runs the area's ``fallback`` files.
+"""
+
+from __future__ import annotations
+
+import ast
+import json
+import os
+import random
+import shutil
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+WORK = Path(os.environ.get("MUTATION_WORK", "/tmp/benchharness-mutation"))
+PY = sys.executable
+CR = str(Path(PY).with_name("cosmic-ray"))
+AREAS = json.loads((Path(__file__).with_name("areas.json")).read_text())
+
+
+def _copy_checkout(dest: Path, only_tests: bool = False) -> None:
+    files = subprocess.run(["git", "ls-files", "-co", "--exclude-standard"], cwd=ROOT,
+                           capture_output=True, text=True, check=True).stdout.split()
+    for f in files:
+        if not only_tests or f.startswith("tests/"):
+            (dest / f).parent.mkdir(parents=True, exist_ok=True)
+            shutil.copy2(ROOT / f, dest / f)
+
+
+def _nodeid(ctx: str) -> str:
+    """coverage's test_function context ``test_x.Class.test_y`` -> a pytest node id."""
+    if not ctx:
+        return ""
+    parts = ctx.split(".")
+    mod = next(i for i, p in enumerate(parts) if p.startswith("test_"))
+    return "tests/" + "/".join(parts[:mod + 1]) + ".py::" + "::".join(parts[mod + 1:])
+
+
+def cmd_map(area: str, A: dict, tests: list[str]) -> None:
+    copy = WORK / f"cov_{area}"
+    shutil.rmtree(copy, ignore_errors=True)
+    _copy_checkout(copy)
+    rc = WORK / f"{area}.coveragerc"
+    rc.write_text("[run]\ndynamic_context = test_function\nsource = benchharness\n")
+    data, out = WORK / f"{area}.cov", WORK / f"{area}.cov.json"
+    env = dict(os.environ, PYTHONDONTWRITEBYTECODE="1")
+    subprocess.run(["nice", "-n", "15", PY, "-m", "coverage", "run", f"--rcfile={rc}",
+                    f"--data-file={data}", "-m", "pytest", "-q", "-p", "no:cacheprovider",
+                    *(tests or A["tests"])], cwd=copy, env=env)
+    subprocess.run([PY, "-m", "coverage", "json", f"--rcfile={rc}", f"--data-file={data}",
+                    "--show-contexts", "-o", str(out)], cwd=copy, env=env, check=True)
+    path = WORK / f"{area}.map.json"
+    mp = json.loads(path.read_text()) if tests and path.exists() else {}
+    for fname, f in json.loads(out.read_text())["files"].items():
+        rel = str(Path(fname).resolve().relative_to(copy)) if fname.startswith("/") else fname
+        if rel in A["modules"]:
+            d = mp.setdefault(rel, {})
+            for line, ctxs in f.get("contexts", {}).items():
+                d[line] = sorted(set(d.get(line, [])) | {_nodeid(c) for c in ctxs})
+    path.write_text(json.dumps(mp))
+    print({m: len(v) for m, v in mp.items()})
+
+
+def _annotation_spans(source: str):
+    spans = []
+    for node in ast.walk(ast.parse(source)):
+        anns = []
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)):
+            a = node.args
+            anns = [node.returns] + [x.annotation for x in
+                                     a.posonlyargs + a.args + a.kwonlyargs + [a.vararg, a.kwarg]
+                                     if x is not None]
+        elif isinstance(node, ast.AnnAssign):
+            anns = [node.annotation]
+        spans += [((x.lineno, x.col_offset), (x.end_lineno, x.end_col_offset))
+                  for x in anns if x is not None]
+    return spans
+
+
+def _function_lines(source: str, names) -> list[list[int]]:
+    tree = ast.parse(source)
+    for node in ast.walk(tree):
+        for child in ast.iter_child_nodes(node):
+            if isinstance(child, (ast.FunctionDef, ast.ClassDef)):
+                child.qual = (getattr(node, "qual", "") + "." + child.name).lstrip(".")
+    return [[n.lineno, n.end_lineno] for n in ast.walk(tree) if getattr(n, "qual", None) in names]
+
+
+def cmd_init(area: str, A: dict) -> None:
+    copy = WORK / f"cr_{area}"
+    shutil.rmtree(copy, ignore_errors=True)
+    _copy_checkout(copy)
+    orig = WORK / f"orig_{area}"
+    shutil.rmtree(orig, ignore_errors=True)
+    for m in A["modules"]:
+        (orig / m).parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy2(copy / m, orig / m)
+    cfg, db = WORK / f"{area}.toml", WORK / f"{area}.sqlite"
+    cfg.write_text(f'''[cosmic-ray]
+module-path = {json.dumps(A["modules"])}
+timeout = {A.get("timeout", 300)}
+excluded-modules = []
+test-command = "{PY} {Path(__file__).resolve()} select {area}"
+
+[cosmic-ray.distributor]
+name = "local"
+''')
+    db.unlink(missing_ok=True)
+    subprocess.run([CR, "init", str(cfg), str(db)], cwd=copy, check=True)
+    c = sqlite3.connect(db)
+    rows = c.execute("select job_id, module_path, start_pos_row, start_pos_col, operator_name,"
+                     " occurrence from mutation_specs").fetchall()
+    total = len(rows)
+    src = {m: (copy / m).read_text() for m in A["modules"]}
+    spans = {m: _annotation_spans(s) for m, s in src.items()}
+    rows = [r for r in rows if not any(lo <= (r[2], r[3]) < hi for lo, hi in spans[r[1]])]
+    no_ann = len(rows)
+    if A.get("functions"):
+        ranges = {m: _function_lines(src[m], names) for m, names in A["functions"].items()}
+        rows = [r for r in rows if any(lo <= r[2] <= hi for lo, hi in ranges.get(r[1], []))]
+    rows.sort(key=lambda r: r[1:])
+    n = min(A["sample"], len(rows))
+    keep = {r[0] for r in random.Random(A.get("seed", 17)).sample(rows, n)}
+    drop = [(j,) for (j,) in c.execute("select job_id from mutation_specs") if j not in keep]
+    c.executemany("delete from mutation_specs where job_id = ?", drop)
+    c.executemany("delete from work_items where job_id = ?", drop)
+    c.commit()
+    print(f"{area}: {total} mutants, {total - no_ann} in annotations left out, "
+          f"{len(rows)} in scope, sample {n} (seed {A.get('seed', 17)})")
+
+
+def _enclosing_function_lines(source: str, line: int):
+    best = None
+    for node in ast.walk(ast.parse("\\n".join(source) if isinstance(source, list) else source)):
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and \
+                node.lineno <= line <= node.end_lineno:
+            if best is None or node.lineno > best[0]:
+                best = (node.lineno, node.end_lineno)
+    return best
+
+
+def _tests_for(cmap_mod, source, line):
+    """Tests that ran the line; for a line run only at import (a def with its defaults),
+    the tests that ran any line of its function; None: use the fallback."""
+    if str(line) not in cmap_mod:
+        return None          # no in-process test ran it: maybe a child process does
+    ctx = [c for c in cmap_mod[str(line)] if c]
+    if ctx:
+        return ctx
+    span = _enclosing_function_lines(source, line)
+    if span is None:
+        return None
+    union = {c for ln in range(span[0], span[1] + 1) for c in cmap_mod.get(str(ln), []) if c}
+    return sorted(union) or None
+
+
+def cmd_select(area: str, A: dict) -> None:
+    """The test command of one mutant (run by cosmic-ray in the area's copy)."""
+    orig = WORK / f"orig_{area}"
+    mpath = WORK / f"{area}.map.json"
+    cmap = json.loads(mpath.read_text()) if mpath.exists() else {}
+    tests = A.get("fallback", A["tests"])
+    for m in A["modules"]:
+        a, b = (orig / m).read_text().splitlines(), Path(m).read_text().splitlines()
+        if a != b:
+            line = next(i + 1 for i, (x, y) in enumerate(zip(a, b)) if x != y)
+            sel = _tests_for(cmap.get(m, {}), a, line)
+            if sel:
+                tests = sel
+            print("mutant at", m, line, "->", len(tests), "test file(s)/test(s)", flush=True)
+            break
+    t = str(A.get("timeout", 300))
+    os.execv("/usr/bin/env", ["env", "PYTHONDONTWRITEBYTECODE=1", "nice", "-n", "15", PY, "-m",
+                              "pytest", "-x", "-q", "-p", "no:cacheprovider", f"--timeout={t}",
+                              *tests])
+
+
+def cmd_exec(area: str, A: dict, rerun: bool) -> None:
+    copy = WORK / f"cr_{area}"
+    _copy_checkout(copy, only_tests=True)
+    db = WORK / f"{area}.sqlite"
+    if rerun:
+        c = sqlite3.connect(db)
+        c.execute("delete from work_results where upper(test_outcome) = 'SURVIVED'")
+        c.commit()
+    subprocess.run(["nice", "-n", "15", CR, "exec", str(WORK / f"{area}.toml"),
+                    str(db)], cwd=copy)
+
+
+def cmd_report(area: str, verbose: bool) -> None:
+    c = sqlite3.connect(WORK / f"{area}.sqlite")
+    res = c.execute("select s.module_path, s.start_pos_row, s.operator_name, r.test_outcome,"
+                    " r.diff from mutation_specs s left join work_results r using (job_id)"
+                    " order by 1, 2").fetchall()
+    done = [r for r in res if r[3] is not None]
+    out = {k: sum((r[3] or "").lower() == k for r in done) for k in ("killed", "survived")}
+    other = len(done) - sum(out.values())
+    print(f"{area}: {len(res)} sampled, {len(done)} run, {out['killed']} killed, "
+          f"{out['survived']} survived, {other} incompetent"
+          + (f", score {out['killed'] / len(done):.0%}" if done else ""))
+    if verbose:
+        for r in done:
+            if (r[3] or "").lower() != "killed":
+                print("====", r[0], r[1], r[2], r[3])
+                print("\n".join(x for x in (r[4] or "").splitlines()
+                                if x[:1] in "+-" and x[:3] not in ("---", "+++")))
+
+
+def main(argv):
+    cmd, area = argv[0], argv[1]
+    A = AREAS[area]
+    WORK.mkdir(parents=True, exist_ok=True)
+    if cmd == "map":
+        cmd_map(area, A, argv[2:])
+    elif cmd == "init":
+        cmd_init(area, A)
+    elif cmd == "select":
+        cmd_select(area, A)
+    elif cmd in ("exec", "rerun"):
+        cmd_exec(area, A, cmd == "rerun")
+    elif cmd == "report":
+        cmd_report(area, "-v" in argv)
+    else:
+        raise SystemExit(__doc__)
+
+
+if __name__ == "__main__":
+    main(sys.argv[1:])

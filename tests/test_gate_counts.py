@@ -1,0 +1,92 @@
+"""The gate's counts as it reports them: failures per build, the JUnit tallies, the
+overall verdict and its exit code (DEVELOPERS.md, "Exit codes").
+
+Planted truths, written to kill mutants that survived the rest of the suite
+(DEVELOPERS.md, "Mutation testing").
+"""
+
+from __future__ import annotations
+
+import xml.etree.ElementTree as ET
+
+import pytest
+
+from benchharness.execute.base import RunSpec
+from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+from benchharness.gate.decide import GateSettings, Judgement
+from benchharness.gate.orchestrate import GateOutcome, run_gate
+from benchharness.gate.output import junit_xml
+
+LEVELS = {"baseline": "old", "candidate": "new"}
+
+
+def _gate(fail, seed=11, warmup=1):
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": 1.0}}, cv=0.03,
+                           failure_prob=fail)
+    wl = {"w0": {"w": "0"}}
+    return run_gate(wl, lambda k, r, i, w=False: RunSpec(levels={**wl[k], "build": LEVELS[r]}),
+                    SimulatedExecutor(model, seed=seed), GateSettings(), seed=seed + 1,
+                    warmup=warmup)
+
+
+def test_both_builds_never_ok_count_every_failed_run_of_each():
+    # Planted: every run of both builds fails. The gate stops as soon as it may, saying
+    # both never ran successfully, and counts each build's failed timed runs: all of them.
+    out = _gate({"build": {"old": 1.0, "new": 1.0}})
+    j = out.judgements["w0"]
+    assert out.verdict == "never_ok" and out.exit_code() == 5
+    assert j.blocks >= 1
+    assert j.baseline_failures == j.candidate_failures == j.blocks
+    assert "the baseline failed all" in j.reason and "the candidate failed all" in j.reason
+
+
+def _judgement(verdict):
+    return Judgement(verdict=verdict, blocks=10, usable_blocks=10, ratio=1.0, lower=0.98,
+                     upper=1.02, horizon_blocks=20, alpha=0.05, reason=f"planted {verdict}")
+
+
+def _outcome(verdicts):
+    js = {f"w{i}": _judgement(v) for i, v in enumerate(verdicts)}
+    return GateOutcome(settings=GateSettings(), response="wall_s", judgements=js,
+                       workload_levels={k: {"w": k} for k in js}, runs=40, warmups=2)
+
+
+TAG = {"regression": ["failure"], "no_regression": [], "improvement": [],
+       "inconclusive": ["skipped"], "never_ok": ["error"]}
+
+
+@pytest.mark.parametrize("verdicts", [
+    ["regression", "no_regression", "improvement", "inconclusive", "never_ok"],
+    ["improvement", "improvement", "no_regression"],
+    ["inconclusive", "inconclusive", "regression", "regression", "regression"],
+])
+def test_junit_tallies_match_the_cases_they_count(verdicts):
+    # The suite's attributes count its test cases by outcome: tests (all), failures
+    # (cases with <failure>), skipped (<skipped>), errors (<error>) -- JUnit XML, common
+    # practice. Planted: workloads with known verdicts.
+    root = ET.fromstring(junit_xml(_outcome(verdicts)).split("\n", 1)[1])
+    suite = root.find("testsuite")
+    cases = suite.findall("testcase")
+    assert len(cases) == len(verdicts) == int(suite.get("tests"))
+    kinds = {c.get("name"): [e.tag for e in c if e.tag != "system-out"] for c in cases}
+    assert kinds == {f"w{i}": TAG[v] for i, v in enumerate(verdicts)}
+    for attr, tag in (("failures", "failure"), ("skipped", "skipped"), ("errors", "error")):
+        want = sum(TAG[v] == [tag] for v in verdicts)
+        assert int(suite.get(attr)) == sum(tag in k for k in kinds.values()) == want, attr
+
+
+@pytest.mark.parametrize("verdicts,overall,codes", [
+    (["no_regression", "improvement"], "no_regression", (0, 0, 0)),
+    (["improvement", "improvement"], "improvement", (0, 0, 0)),
+    (["inconclusive", "improvement"], "inconclusive", (3, 0, 1)),
+    (["inconclusive", "regression"], "regression", (1, 1, 1)),
+    (["regression", "never_ok"], "never_ok", (5, 5, 5)),
+    ([None, "no_regression"], "inconclusive", (3, 0, 1)),
+])
+def test_overall_verdict_and_exit_code(verdicts, overall, codes):
+    # the worst workload decides: a build that never ran > a regression > inconclusive
+    # (or still open) > no regression; all improvements make an improvement. Exit codes
+    # 0 / 1 / 3 / 5, with --inconclusive pass|fail mapping only the inconclusive one.
+    out = _outcome(verdicts)
+    assert out.verdict == overall
+    assert (out.exit_code(), out.exit_code("pass"), out.exit_code("fail")) == codes
