@@ -90,3 +90,17 @@ def test_overall_verdict_and_exit_code(verdicts, overall, codes):
     out = _outcome(verdicts)
     assert out.verdict == overall
     assert (out.exit_code(), out.exit_code("pass"), out.exit_code("fail")) == codes
+
+
+@pytest.mark.parametrize("workloads,warmup", [(1, 1), (3, 2)])
+def test_runs_and_warmups_counted_as_made(workloads, warmup):
+    # Planted: a clean gate (ratio 1.00, CV 3%). Each block is one timed run of each
+    # build, so the timed runs are twice the blocks over all workloads; each warm-up
+    # round runs both builds of every workload once.
+    model = SimulatedModel(effects={"build": {"old": 1.0, "new": 1.0}}, cv=0.03)
+    wl = {f"w{i}": {"w": str(i)} for i in range(workloads)}
+    ex = SimulatedExecutor(model, seed=5)
+    out = run_gate(wl, lambda k, r, i, w=False: RunSpec(levels={**wl[k], "build": LEVELS[r]}),
+                   ex, GateSettings(), seed=6, warmup=warmup)
+    assert out.runs == 2 * sum(j.blocks for j in out.judgements.values()) > 0
+    assert out.warmups == 2 * workloads * warmup

@@ -1,0 +1,48 @@
+"""What the launcher keeps of a run's output (execute/launcher.py).
+
+The last ``capture_bytes`` of each stream are kept, whatever the run writes before.
+
+The launcher keeps reading a run's output pipes for ``linger_s`` after the run itself
+exits, so that the last words of a child it left behind are kept. Planted truth: a background child that writes 0.3 s
+after the run exits is heard with a 3 s linger and not with none. Written to kill a
+mutant that survived the rest of the suite (DEVELOPERS.md, "Mutation testing").
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+
+from benchharness.execute.base import RunSpec
+from benchharness.execute.local import LocalExecutor
+
+ENV = {"PATH": os.environ.get("PATH", "/usr/bin:/bin")}
+SCRIPT = "echo early; (sleep 0.3; echo late) & exit 0"
+
+
+def test_output_written_after_exit_is_read_within_the_linger():
+    with LocalExecutor(kill_grace_s=0.3, linger_s=3.0) as ex:
+        m = ex.execute(RunSpec(argv=("sh", "-c", SCRIPT), env=ENV))
+    assert m.status == "ok", m.message
+    assert m.stdout_tail.split() == [b"early", b"late"]
+
+
+def test_output_after_the_linger_is_given_up():
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.0) as ex:
+        m = ex.execute(RunSpec(argv=("sh", "-c", SCRIPT), env=ENV))
+    assert m.stdout_tail.split() == [b"early"]
+
+
+def test_only_the_last_capture_bytes_of_a_long_output_are_kept():
+    # Planted truth: the run prints 0 .. 29999, one a line (168,890 bytes), in small
+    # writes; the tail kept is the last capture_bytes of exactly that text, on each stream.
+    text = "".join(f"{i}\n" for i in range(30000)).encode()
+    code = ("import sys\nfor i in range(30000):\n    sys.stdout.write(f'{i}\\n')\n"
+            "    sys.stderr.write(f'{i}\\n')\n    sys.stdout.flush(); sys.stderr.flush()")
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        for cap in (65536, 1000):
+            m = ex.execute(RunSpec(argv=(sys.executable, "-c", code), env=ENV,
+                                   capture_bytes=cap))
+            assert m.status == "ok", m.message
+            assert m.stdout_tail == text[-cap:]
+            assert m.stderr_tail == text[-cap:]
