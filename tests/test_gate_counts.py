@@ -104,3 +104,36 @@ def test_runs_and_warmups_counted_as_made(workloads, warmup):
                    ex, GateSettings(), seed=6, warmup=warmup)
     assert out.runs == 2 * sum(j.blocks for j in out.judgements.values()) > 0
     assert out.warmups == 2 * workloads * warmup
+
+
+@pytest.mark.parametrize("looks", [(2, 4, 8, 16, 30), (5, 10, 20, 40, 60)])
+def test_t_boundaries_spend_the_level_as_scheduled(looks):
+    # Outside check by an independent simulation (numpy, another seed): 20,000 Gaussian
+    # paths, one-sample t statistics at the looks; the share first crossing the
+    # boundaries by each look matches the O'Brien-Fleming-type spending (Lan & DeMets
+    # 1983) within 4 standard errors, and every look has a boundary (early looks that
+    # may spend nothing are +inf, never dropped).
+    import math
+
+    import numpy as np
+
+    from benchharness.gate.sequential import obf_spending, t_boundaries
+
+    alpha, paths = 0.05, 20_000
+    b = t_boundaries(looks, alpha, paths=paths)
+    assert len(b) == len(looks)
+    rng = np.random.default_rng(2024)
+    x = rng.normal(size=(paths, looks[-1]))
+    alive = np.ones(paths, dtype=bool)
+    crossed = 0
+    for n, bound in zip(looks, b):
+        m, s = x[:, :n].mean(axis=1), x[:, :n].std(axis=1, ddof=1)
+        t = math.sqrt(n) * m / s
+        hit = alive & (t >= bound)
+        crossed += int(hit.sum())
+        alive &= ~hit
+        want = obf_spending(n / looks[-1], alpha) if n < looks[-1] else alpha
+        se = math.sqrt(max(want, 1e-4) * (1 - want) / paths)
+        assert abs(crossed / paths - want) <= 4 * se + 1e-4, (n, crossed / paths, want)
+    if looks[0] == 2:
+        assert b[0] == math.inf     # the first look may spend nothing at all

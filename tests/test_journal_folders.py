@@ -1,4 +1,5 @@
-"""The results folder's name and what counts as one (results/journal.py).
+"""The results folder: its name, what counts as one, damaged lines, edited inputs
+(results/journal.py).
 
 Planted truths written to kill mutants that survived the rest of the suite
 (DEVELOPERS.md, "Mutation testing"): two harnesses publishing the same experiment in
@@ -41,3 +42,41 @@ def test_results_folder_needs_the_experiment_and_the_journal_or_runs_csv(tmp_pat
     (tmp_path / "file.csv").write_text("x")
     assert not J.is_results_folder(tmp_path / "file.csv")
     assert not J.is_results_folder(tmp_path / "missing")
+
+
+def test_a_journal_line_that_is_not_utf8_is_named_not_a_crash(tmp_path):
+    # Planted: three records, the middle line replaced by bytes that are not UTF-8. The
+    # reader names that line and what is wrong, and counts the runs on the others.
+    import json
+
+    import pytest
+
+    from benchharness.errors import ResultsFolderError
+
+    recs = [json.dumps({"run": i, "status": "ok", "wall_s": 1.0, "levels": {"a": "x"}})
+            for i in range(3)]
+    p = tmp_path / "runs.jsonl"
+    p.write_bytes(recs[0].encode() + b"\n\xff\xfe half a record\n" + recs[2].encode() + b"\n")
+    with pytest.raises(ResultsFolderError) as e:
+        J.read_journal(p)
+    msg = str(e.value)
+    assert msg.startswith(f"{p}:2: the line is not UTF-8 text")
+    assert "the 2 runs recorded on the other lines are kept" in msg
+
+
+def test_resume_refuses_an_edited_experiment_naming_the_file(tmp_path):
+    # the frozen experiment.yaml changed after the start: its SHA-256 (hashlib, outside
+    # reference) differs from the one recorded, and the error names the file
+    import hashlib
+    from types import SimpleNamespace
+
+    import pytest
+
+    from benchharness.errors import ResultsFolderError
+
+    text = "experiment: frozen\n"
+    session = {"experiment_sha256": hashlib.sha256(text.encode()).hexdigest()}
+    J.check_frozen(tmp_path, SimpleNamespace(source_text=text), session)   # unchanged: fine
+    with pytest.raises(ResultsFolderError) as e:
+        J.check_frozen(tmp_path, SimpleNamespace(source_text=text + "# edited\n"), session)
+    assert str(e.value).startswith(f"{tmp_path / 'experiment.yaml'}: changed since")
