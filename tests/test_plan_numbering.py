@@ -64,6 +64,12 @@ def test_appended_replicates_continue_the_numbering():
     assert set(rows[0]) == {"run", "position", "block", "replicate", "warmup", "a", "b"}
 
 
+def test_listed_warmups_are_in_the_files_order_whatever_the_seed():
+    for seed in (1, 2, 3):
+        plan = make_plan(exp("order: listed\n"), seed=seed)
+        assert [r.cell for r in plan.runs if r.warmup] == [0, 1, 2, 3, 0, 1, 2, 3]
+
+
 def test_cells_are_the_full_factorial_first_factor_slowest():
     cells = full_factorial_cells(exp())
     assert cells == [{"a": "x", "b": "1"}, {"a": "x", "b": "2"},

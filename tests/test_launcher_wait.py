@@ -1,0 +1,56 @@
+"""How the launcher waits for a run, and what it says when it cannot start one
+(execute/launcher.py).
+
+While a run runs, the launcher sleeps until the run exits, its output arrives, or its
+time limit comes: it does not wake up on a timer and share the CPU with the run
+(DEVELOPERS.md, the launcher). Planted truth: a run that sleeps 1 s with a 60 s time
+limit costs the launcher a handful of wake-ups (counted by the kernel in
+/proc/PID/status, voluntary_ctxt_switches), not one per millisecond. Written to kill
+mutants that survived the rest of the suite (DEVELOPERS.md, "Mutation testing").
+"""
+
+from __future__ import annotations
+
+import os
+import stat
+
+import pytest
+
+from benchharness.execute.base import RunSpec
+from benchharness.execute.local import LocalExecutor
+
+ENV = {"PATH": os.environ.get("PATH", "/usr/bin:/bin")}
+
+
+def _wakeups(pid: int) -> int:
+    with open(f"/proc/{pid}/status") as f:
+        for line in f:
+            if line.startswith("voluntary_ctxt_switches:"):
+                return int(line.split()[1])
+    raise AssertionError("no voluntary_ctxt_switches in /proc/PID/status")
+
+
+@pytest.mark.parametrize("timeout_s", [None, 60.0])
+def test_the_launcher_sleeps_while_the_run_runs(timeout_s):
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        ex.execute(RunSpec(argv=("true",), env=ENV))          # started and warm
+        before = _wakeups(ex.launcher_pid)
+        m = ex.execute(RunSpec(argv=("sleep", "1"), env=ENV, timeout_s=timeout_s))
+        after = _wakeups(ex.launcher_pid)
+    assert m.status == "ok", m.message
+    # a timer of 1 ms would be ~1000 wake-ups; reading the request, spawning, the exit
+    # and the reply take a few
+    assert after - before < 100, after - before
+
+
+def test_a_program_that_cannot_be_started_is_named(tmp_path):
+    # an executable file that is no program (no #! line, not ELF): the kernel refuses it
+    # (ENOEXEC); the message names the program, not one of its arguments
+    prog = tmp_path / "not-a-program"
+    prog.write_bytes(b"\x00\x01 this is no program\n")
+    prog.chmod(prog.stat().st_mode | stat.S_IXUSR)
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        m = ex.execute(RunSpec(argv=(str(prog), "some-argument"), env=ENV))
+    assert m.status == "failed"
+    assert f"cannot start {str(prog)!r}" in m.message, m.message
+    assert "some-argument" not in m.message
