@@ -137,3 +137,48 @@ def test_t_boundaries_spend_the_level_as_scheduled(looks):
         assert abs(crossed / paths - want) <= 4 * se + 1e-4, (n, crossed / paths, want)
     if looks[0] == 2:
         assert b[0] == math.inf     # the first look may spend nothing at all
+
+
+def test_failure_verdict_is_a_regression_exactly_at_or_beyond_the_boundary():
+    # The sign test calls a regression when the candidate-only count reaches the boundary
+    # u_k at look k, and also when it is beyond it (more failures never help a build).
+    from benchharness.gate.failures import failure_verdict, sign_boundaries
+
+    K = 40
+    u = sign_boundaries(K, 0.05)
+    seen_beyond = 0
+    for k in range(1, K + 1):
+        for s in range(k + 1):
+            called = failure_verdict(s, k - s, K, 0.05) is not None
+            want = u[k - 1] is not None and s >= u[k - 1] and s > k - s
+            assert called == want, (k, s, u[k - 1])
+            seen_beyond += want and s > u[k - 1]
+    assert seen_beyond > 0        # counts beyond the boundary were checked
+
+
+@pytest.mark.parametrize("first,horizon", [(2, 10), (5, 200), (6, 6), (8, 1000), (3, 57)])
+def test_look_schedule_spans_first_to_horizon_in_equal_steps(first, horizon):
+    import math
+
+    from benchharness.gate.sequential import MAX_LOOKS, look_schedule
+
+    looks = look_schedule(first, horizon)
+    assert looks[0] == first and looks[-1] == horizon
+    assert len(looks) <= MAX_LOOKS
+    assert all(b > a for a, b in zip(looks, looks[1:]))
+    g = max(1, math.ceil((horizon - first) / (MAX_LOOKS - 1)))
+    assert all(b - a == g for a, b in zip(looks[:-1], looks[1:-1]))
+    assert 0 < looks[-1] - looks[-2] <= g if len(looks) > 1 else looks == (first,)
+
+
+def test_robust_location_of_one_sample_is_that_of_a_one_row_table():
+    import numpy as np
+
+    from benchharness.gate.robust import robust_location
+
+    x = np.random.default_rng(3).normal(0.05, 0.02, 30)
+    one = robust_location(x)
+    table = robust_location(x[None, :])
+    for a, b in zip(one, table):
+        assert np.shape(a) == (1,)
+        np.testing.assert_allclose(a, b, rtol=0, atol=0)

@@ -80,3 +80,40 @@ def test_resume_refuses_an_edited_experiment_naming_the_file(tmp_path):
     with pytest.raises(ResultsFolderError) as e:
         J.check_frozen(tmp_path, SimpleNamespace(source_text=text + "# edited\n"), session)
     assert str(e.value).startswith(f"{tmp_path / 'experiment.yaml'}: changed since")
+
+
+def _records(n):
+    import json
+
+    return [json.dumps({"run": i, "status": "ok", "wall_s": 1.0,
+                        "levels": {"a": "x"}}).encode() for i in range(n)]
+
+
+def test_a_record_without_its_newline_is_a_write_that_did_not_finish(tmp_path):
+    # A record counts once its line is complete (newline included): a power cut between
+    # the record and its newline leaves a run that the resume runs again, not half-kept.
+    r = _records(3)
+    p = tmp_path / "runs.jsonl"
+    p.write_bytes(r[0] + b"\n" + r[1] + b"\n" + r[2])
+    assert [x["run"] for x in J.read_journal(p)] == [0, 1]
+    J.read_journal(p, repair=True, notes=[])
+    assert p.read_bytes() == r[0] + b"\n" + r[1] + b"\n"     # cut back to complete lines
+
+
+def test_a_first_line_torn_by_a_crash_leaves_an_empty_journal_not_an_error(tmp_path):
+    # the harness was killed while writing its first record: nothing was measured yet
+    p = tmp_path / "runs.jsonl"
+    p.write_bytes(b'{"run": 0, "sta\n')
+    assert J.read_journal(p) == []
+    p.write_bytes(_records(2)[0] + b"\n" + b'{"run": 1, "st\n')
+    assert [x["run"] for x in J.read_journal(p)] == [0]
+
+
+def test_a_new_folder_is_named_after_the_experiment_and_the_time(tmp_path, monkeypatch):
+    monkeypatch.setattr(J, "utc_stamp", lambda now=None: "20261205T101500Z")
+    a = J.new_folder(tmp_path / "results", "codecs", None)
+    b = J.new_folder(tmp_path / "results", "codecs", None)
+    assert (a.name, b.name) == ("codecs-20261205T101500Z", "codecs-20261205T101500Z-2")
+    assert a.is_dir() and b.is_dir() and not any(a.iterdir())
+    c = J.new_folder(tmp_path / "results", "codecs", tmp_path / "chosen")
+    assert c == tmp_path / "chosen" and c.is_dir()
