@@ -182,3 +182,38 @@ def test_robust_location_of_one_sample_is_that_of_a_one_row_table():
     for a, b in zip(one, table):
         assert np.shape(a) == (1,)
         np.testing.assert_allclose(a, b, rtol=0, atol=0)
+
+
+@pytest.mark.parametrize("alpha,beta,d", [(0.05, 0.2, 0.4), (0.025, 0.2, 0.48), (0.05, 0.1, 0.59),
+                                          (0.05, 0.05, 0.35)])
+def test_fixed_pairs_is_the_smallest_n_with_the_power(alpha, beta, d):
+    # Reference: statsmodels TTestPower (one-sample t test, alternative "larger"): the
+    # fixed size is the smallest whole number of pairs whose power reaches 1 - beta. The
+    # first three cases sit where the power at n - 1 is just short of the target, so one
+    # degree of freedom more or less in the critical value changes the answer.
+    from statsmodels.stats.power import TTestPower
+
+    from benchharness.gate.sequential import fixed_pairs
+
+    n = fixed_pairs(alpha, beta, d)
+    pw = TTestPower()
+    assert pw.power(effect_size=d, nobs=n, alpha=alpha, alternative="larger") >= 1 - beta - 1e-9
+    assert pw.power(effect_size=d, nobs=n - 1, alpha=alpha, alternative="larger") < 1 - beta
+
+
+def _gate_exp(extra):
+    from benchharness.experiment.file import Experiment
+
+    return Experiment.from_text(
+        "experiment: g\ncommand: [echo, '{build}']\nfactors:\n  build: [old, new]\n"
+        f"gate: {{factor: build, baseline: old, candidate: new{extra}}}\n")
+
+
+def test_gate_direction_lower_or_higher_else_a_clear_error():
+    from benchharness.errors import ExperimentError
+    from benchharness.gate.session import parse_gate_section
+
+    assert parse_gate_section(_gate_exp(", direction: lower")).settings.higher_is_better is False
+    assert parse_gate_section(_gate_exp("")).settings.higher_is_better is False
+    with pytest.raises(ExperimentError, match="'gate: direction' must be lower"):
+        parse_gate_section(_gate_exp(", direction: sideways"))

@@ -117,3 +117,21 @@ def test_a_new_folder_is_named_after_the_experiment_and_the_time(tmp_path, monke
     assert a.is_dir() and b.is_dir() and not any(a.iterdir())
     c = J.new_folder(tmp_path / "results", "codecs", tmp_path / "chosen")
     assert c == tmp_path / "chosen" and c.is_dir()
+
+
+def test_a_repeated_run_is_moved_beside_the_journal_on_repair(tmp_path):
+    # Planted: run 1 recorded twice with other values (a resume that ran it again). On
+    # repair the first record stays, the repeat goes to runs.jsonl.duplicates, and the
+    # note says so; nothing is lost.
+    import json
+
+    r = _records(3)
+    again = json.dumps({"run": 1, "status": "ok", "wall_s": 2.0, "levels": {"a": "x"}}).encode()
+    p = tmp_path / "runs.jsonl"
+    p.write_bytes(b"\n".join([r[0], r[1], again, r[2]]) + b"\n")
+    notes = []
+    recs = J.read_journal(p, repair=True, notes=notes)
+    assert [(x["run"], x["wall_s"]) for x in recs] == [(0, 1.0), (1, 1.0), (2, 1.0)]
+    assert (tmp_path / "runs.jsonl.duplicates").read_bytes() == again + b"\n"
+    assert p.read_bytes() == b"\n".join(r) + b"\n"
+    assert any("moved to runs.jsonl.duplicates" in n for n in notes), notes
