@@ -96,3 +96,65 @@ def test_derivative_of_the_inverse_box_cox(lam):
                                np.exp([0.2]))
     np.testing.assert_allclose(derivative_inverse(np.array([0.2]), Choice("none", 1.0, "")),
                                [1.0])
+
+
+def test_one_residual_degree_of_freedom_still_gets_its_f_test():
+    # Planted: two levels, three runs (x twice, y once): one residual degree of freedom.
+    # Reference: statsmodels anova_lm (type 2) on the same log response.
+    import statsmodels.api as sm
+    import statsmodels.formula.api as smf
+
+    d = pd.DataFrame({"a": ["x", "x", "y"], "wall_s": [1.00, 1.04, 1.50]})
+    an = analyze(d, factors=["a"], transform="log", comparisons=False, art=False)
+    row = next(r for r in an.anova_rows if r["term"] == "a")
+    d["ly"] = np.log(d["wall_s"])
+    ref = sm.stats.anova_lm(smf.ols("ly ~ C(a)", data=d).fit(), typ=2)
+    assert ref["df"].iloc[-1] == 1
+    assert row["F"] == pytest.approx(ref["F"].iloc[0], rel=1e-9)
+    assert row["p"] == pytest.approx(ref["PR(>F)"].iloc[0], rel=1e-9)
+
+
+def test_ratio_interval_when_the_reference_mean_is_negative():
+    # On the original scale a response may be negative (a difference, a balance). The
+    # ratio of level means then gets the plain delta-method interval ratio +- q s with
+    # s^2 = ratio^2 (var_a / a^2 + var_b / b^2) (independent level means; common
+    # practice), var from statsmodels OLS cov_params, q the t quantile from scipy.
+    import statsmodels.formula.api as smf
+    from scipy import stats
+
+    rng = np.random.default_rng(7)
+    d = pd.DataFrame({"f": np.repeat(["r", "x"], 6)})
+    d["delta"] = np.where(d.f == "r", -2.0, 1.0) + rng.normal(0, 0.1, 12)
+    an = analyze(d, response="delta", factors=["f"], transform="none", comparisons=False,
+                 art=False)
+    e = next(x for x in an.effects if x["factor"] == "f" and x["level"] == "x")
+    assert e["reference"] == "r"
+    fit = smf.ols("delta ~ C(f, Treatment('r')) - 1", data=d.assign(f=d.f)).fit()
+    ma, mb = d.delta[d.f == "x"].mean(), d.delta[d.f == "r"].mean()
+    cov = fit.cov_params().to_numpy()
+    va, vb = cov[1, 1], cov[0, 0]
+    ratio = ma / mb
+    s = abs(ratio) * np.sqrt(va / ma**2 + vb / mb**2)
+    q = stats.t.ppf(0.975, fit.df_resid)
+    assert ratio < 0 and e["ratio"] == pytest.approx(ratio, rel=1e-9)
+    assert e["lower"] == pytest.approx(ratio - q * s, rel=1e-7)
+    assert e["upper"] == pytest.approx(ratio + q * s, rel=1e-7)
+
+
+def test_a_level_whose_count_is_always_zero_is_analysed_not_a_crash():
+    # Planted: an error count that is 0 in every run of level x (the original scale, as a
+    # count must be). Its mean is zero up to rounding; the ratio to the reference is ~0
+    # with an interval that cannot bound it from above. It used to overflow (a traceback)
+    # when rounding left the mean a hair above zero.
+    rng = np.random.default_rng(3)
+    d = pd.DataFrame({"f": np.repeat(["r", "x", "y"], 6)})
+    d["errors"] = np.where(d.f == "r", 5.0, np.where(d.f == "x", 0.0, 2.0)) + np.where(
+        d.f == "x", 0.0, rng.normal(0, 0.5, 18))
+    an = analyze(d, response="errors", factors=["f"], transform="none", art=False)
+    x = next(e for e in an.effects if e["factor"] == "f" and e["level"] == "x")
+    assert abs(x["ratio"]) < 1e-9
+    assert x["upper"] is None or x["upper"] > 0.1
+    y = next(e for e in an.effects if e["factor"] == "f" and e["level"] == "y")
+    assert 0.3 < y["ratio"] < 0.5 and y["lower"] < y["ratio"] < y["upper"]
+    assert next(r for r in an.anova_rows if r["term"] == "f")["p"] < 1e-6
+    assert "errors" in an.to_json()          # analysis.json can be written (no inf, no NaN)

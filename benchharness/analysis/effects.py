@@ -166,7 +166,9 @@ def contrast_result(fit: Fit, la: np.ndarray, lb: np.ndarray, choice, q: float) 
     if a > 0 and b > 0:
         v = (ga / a) ** 2 * cov[0, 0] + (gb / b) ** 2 * cov[1, 1] - 2 * ga * gb / (a * b) * cov[0, 1]
         s = math.sqrt(max(v, 0.0))
-        lo, hi = ratio * math.exp(-q * s), ratio * math.exp(q * s)
+        # a mean at (or a rounding error above) zero leaves the log ratio unbounded
+        lo, hi = ((ratio * math.exp(-q * s), ratio * math.exp(q * s)) if q * s < 700
+                  else (0.0, math.inf))
     else:
         v = ratio**2 * ((ga / a) ** 2 * cov[0, 0] + (gb / b) ** 2 * cov[1, 1]
                         - 2 * ga * gb / (a * b) * cov[0, 1]) if a and b else float("nan")
