@@ -46,3 +46,17 @@ def test_only_the_last_capture_bytes_of_a_long_output_are_kept():
             assert m.status == "ok", m.message
             assert m.stdout_tail == text[-cap:]
             assert m.stderr_tail == text[-cap:]
+
+
+def test_output_still_in_the_pipe_at_exit_keeps_its_last_capture_bytes():
+    # a run that writes its whole output in one go and exits at once: most of it is read
+    # after the exit is seen (the launcher's last read of the pipes); the tail kept is
+    # still the last capture_bytes. Twenty runs, so that both orders of "output read"
+    # and "exit seen" occur.
+    text = "".join(f"{i:04d}\n" for i in range(1000)).encode()      # 5000 bytes
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        for _ in range(20):
+            m = ex.execute(RunSpec(argv=("printf", "%s", text.decode()), env=ENV,
+                                   capture_bytes=1000))
+            assert m.status == "ok", m.message
+            assert m.stdout_tail == text[-1000:]
