@@ -87,7 +87,7 @@ def test_limit_message_names_what_was_fitted():
     sizes = [2] * 10
     names = [f"f{i}" for i in range(10)]
     terms = model_mod.model_terms(names, "full")
-    lim = model_mod.limit_terms(terms, names, sizes, n_cells=181, n_rows=200)
+    lim = model_mod.limit_terms(terms, sizes, n_cells=181, n_rows=200)
     # 1 + 10 + 45 + 120 = 176 parameters up to order 3; 386 up to order 4
     assert lim.order == 3 and lim.fitted == 176 and lim.requested == 1024
     assert lim.message.startswith("the full model has 1,024 parameters, more than 200 runs")

@@ -292,7 +292,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     fcells = cells if block_index is None else index_cells(codes[:block_index], sizes[:block_index])
     y = prep.y
     N = len(y)
-    limit = limit_terms(terms, names, sizes, cells.count, N)   # cost follows what is estimable
+    limit = limit_terms(terms, sizes, cells.count, N)   # cost follows what is estimable
     if limit.message:
         terms = limit.terms
         notes.append(limit.message)
@@ -378,7 +378,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
             notes.append(f"{row.term}: {row.note}")
     fraction = None
     if fdesign is not None:
-        fraction, fnotes = fr.attach(fdesign, fnames, codes[: len(fnames)], z, choice.name,
+        fraction, fnotes = fr.attach(fdesign, codes[: len(fnames)], z, choice.name,
                                      alpha, anova_rows, terms, names, df_res,
                                      prep.block_codes if prep.block is not None else None,
                                      prep.response)
@@ -400,7 +400,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
             r["p_holm"] = anova_p_holm[r["term"]]
     from benchharness.analysis.hosts import host_split
 
-    hosts = host_split(prep, z, terms, model, ss_type, fit, alpha)
+    hosts = host_split(prep, z, model, ss_type, fit, alpha)
     if hosts and hosts["differ"]:
         notes.append("hosts differ significantly (F test of hosts against blocks within "
                      f"hosts, p {hosts['between_hosts']['p']:.3g}); the block term keeps this "
@@ -477,7 +477,7 @@ def _analyze(data, response: str = "wall_s", factors=None, block=None, transform
     art_result = None
     run_art = (art is True) or (art == "auto" and not assumptions_ok and N <= ART_AUTO_MAX_ROWS)
     if run_art and df_res > 0 and not no_variation:
-        rows = _run_art(codes, sizes, names, z, terms, ss_type, alpha, anova_p,
+        rows = _run_art(codes, sizes, z, terms, ss_type, alpha, anova_p,
                         fit.fitted[cells.row_cell])
         art_result = {"reason": "requested" if art is True else
                       "assumptions fail on the analysis scale", "scale": choice.name,
@@ -666,10 +666,10 @@ def _load_check(resid, load, alpha):
             "ok": out.get("verdict") != "related"}
 
 
-def _run_art(codes, sizes, names, z, terms, ss_type, alpha, anova_p, fitted):
+def _run_art(codes, sizes, z, terms, ss_type, alpha, anova_p, fitted):
     from benchharness.analysis.art import art_anova
 
-    return art_anova(codes, sizes, names, z, terms, ss_type, alpha, anova_p, fitted)
+    return art_anova(codes, sizes, z, terms, ss_type, alpha, anova_p, fitted)
 
 
 def _missing_cells(fcells, sizes, names, levels):

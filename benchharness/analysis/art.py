@@ -51,11 +51,11 @@ def _marginal_mean_rows(codes, sizes, subset, y):
     return (s / n)[inv]
 
 
-def art_anova(codes, sizes, names, z, terms, ss_type, alpha, anova_p: dict,
+def art_anova(codes, sizes, z, terms, ss_type, alpha, anova_p: dict,
               fitted=None) -> list[dict]:
     """ART F test per non-block term of the model ``terms``.
 
-    ``codes``/``sizes``/``names`` describe the model's whole layout (factors and
+    ``codes``/``sizes`` describe the model's whole layout (factors and
     the block, if any); ``z`` is the response on the analysed scale; ``fitted``
     the model's fitted value of each row (computed when None); ``anova_p`` holds
     the parametric p-values to compare with.

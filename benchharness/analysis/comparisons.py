@@ -54,6 +54,12 @@ METHODS = ("tukey", "pairwise", "simple")
 
 
 def adjust_p(p, method: str) -> np.ndarray:
+    """Adjusted p-values of one family: Bonferroni, or Holm's (1979) step-down.
+
+    Holm: the i-th smallest of m p-values (0-based) times m − i, capped at 1,
+    with the running maximum carried forward so the adjusted values keep the
+    order of the raw ones. The project's only Holm adjustment.
+    """
     p = np.asarray(p, dtype=float)
     m = len(p)
     if m == 0:
@@ -78,7 +84,7 @@ def _t_p(d, se, df):
     return float(2 * stats.t.sf(abs(d / se), df))
 
 
-def _family(fit: Fit, items, choice, alpha, adjust, method, names):
+def _family(fit: Fit, items, choice, alpha, adjust, method):
     """items: (factor name, within dict|None, a label, b label, La, Lb).
 
     Raw p from the t test of each contrast; adjusted p by ``adjust``; each
@@ -166,7 +172,7 @@ def pairwise(fit: Fit, names, levels, factor_idx, choice, alpha, adjust,
         _, L = margin_rows(fit, (f,))
         items = [(names[f], None, levels[f][i], levels[f][j], L[i], L[j])
                  for i, j in oriented_pairs(fit.sizes[f], (refs or {}).get(f, 0))]
-        out += _family(fit, items, choice, alpha, adjust, "pairwise", names)
+        out += _family(fit, items, choice, alpha, adjust, "pairwise")
     return out
 
 
@@ -240,7 +246,7 @@ def simple_effects(fit: Fit, names, levels, anova_p: dict, choice, alpha,
                     cj[a_pos], cj[b_pos] = j, lb
                     items.append((names[fa], {names[fb]: levels[fb][lb]}, levels[fa][i],
                                   levels[fa][j], L[index[tuple(ci)]], L[index[tuple(cj)]]))
-            rows = _family(fit, items, choice, alpha, adjust, "simple", names)
+            rows = _family(fit, items, choice, alpha, adjust, "simple")
             for r in rows:
                 r["interaction"] = t.name
             out += rows
@@ -332,4 +338,4 @@ def declared(fit: Fit, names, levels, items, choice, alpha, adjust) -> list[dict
             return L[index[tuple(key)]]
 
         fam.append((it["factor"], it["within"], it["a"], it["b"], row(it["a"]), row(it["b"])))
-    return _family(fit, fam, choice, alpha, adjust, "declared", names)
+    return _family(fit, fam, choice, alpha, adjust, "declared")

@@ -245,13 +245,12 @@ def derive(d: dict) -> list[dict]:
     conf = f"{round((1 - alpha) * 100):g}%"
     factors = [f["name"] if isinstance(f, dict) else str(f) for f in d.get("factors") or []]
     refs = (d.get("model") or {}).get("references") or {}
-    log = (d.get("transform") or {}).get("name") == "log"
     comps = d.get("comparisons") or []
     rows = [r for r in d.get("anova") or []
             if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
     out: list[dict] = []
     if ((d.get("model") or {}).get("no_variation") or {}).get("kind") == "constant":
-        return _cautions(d, alpha)[:1]   # every run the same: that is the whole finding
+        return _cautions(d)[:1]   # every run the same: that is the whole finding
 
     def sig_row(r):
         p = r.get("p_holm", r.get("p"))
@@ -279,7 +278,7 @@ def derive(d: dict) -> list[dict]:
                 by_level: dict[str, list[dict]] = {}
                 for c in rowsx:
                     by_level.setdefault(c["a"], []).append(c)
-                    simple.append(_simple_finding(c, x, y, term_label(r), alpha, conf))
+                    simple.append(_simple_finding(c, x, y, term_label(r), alpha))
                 parts = []
                 for lv, cs in by_level.items():
                     each = "; ".join(
@@ -332,7 +331,7 @@ def derive(d: dict) -> list[dict]:
         f = members[0][0]
         if inside.get(f):
             continue        # stated per level of its partner above
-        out.append(_main_finding(r, f, members[1:], comps, effects, refs, alpha, conf, log,
+        out.append(_main_finding(r, f, members[1:], comps, effects, refs, alpha, conf,
                                  higher.get(f) or [], unclear.get(f) or []))
 
     # ---- best -------------------------------------------------------------------------------
@@ -356,7 +355,7 @@ def derive(d: dict) -> list[dict]:
         out.append(found)
 
     # ---- cautions ---------------------------------------------------------------------------
-    out += _cautions(d, alpha)
+    out += _cautions(d)
     return out
 
 
@@ -370,7 +369,7 @@ def _p_text(r: dict) -> str:
     return f"{fmt_p(ph)} after Holm over the terms, {alone} alone"
 
 
-def _simple_finding(c, x, y, term, alpha, conf) -> dict:
+def _simple_finding(c, x, y, term, alpha) -> dict:
     lo, hi = c.get("lower"), c.get("upper")
     agrees = lo is not None and hi is not None and (lo > 1 or hi < 1)
     sig = bool(c.get("p_adj") is not None and c["p_adj"] < alpha and agrees)
@@ -383,7 +382,7 @@ def _simple_finding(c, x, y, term, alpha, conf) -> dict:
                           f"({fmt_p(c.get('p_adj'))}, {words})")}
 
 
-def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, log, higher=(),
+def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
                   unclear=()) -> dict:
     alias_text = ""
     if aliased:
@@ -516,7 +515,7 @@ def _best_finding(best: dict, conf: str) -> dict:
     return {**base, "significant": True, "statement": text + tail}
 
 
-def _cautions(d: dict, alpha: float) -> list[dict]:
+def _cautions(d: dict) -> list[dict]:
     out = []
 
     def caution(key, text, **extra):

@@ -260,14 +260,11 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
         out_effects.append(row)
     if sigma is not None and out_effects:
         # Holm (1979) across the effects for the "active" flag: screening tests many chains.
-        ps = [r["p"] for r in out_effects]
-        order = sorted(range(len(ps)), key=lambda i: ps[i])
-        m = len(ps)
-        running = 0.0
-        for rank, i in enumerate(order):
-            running = max(running, min(1.0, (m - rank) * ps[i]))
-            out_effects[i]["p_holm"] = running
-            out_effects[i]["active"] = running < alpha
+        from benchharness.analysis.comparisons import adjust_p
+
+        for row, p_holm in zip(out_effects, adjust_p([r["p"] for r in out_effects], "holm")):
+            row["p_holm"] = float(p_holm)
+            row["active"] = bool(p_holm < alpha)
     labels = [r["label"] for r in out_effects]
     return {
         "response": response,
@@ -448,11 +445,12 @@ def recognise(names, levels, codes, experiment=None):
         return None
     labels = tuple((str(lv[0]), str(lv[1])) for lv in levels)
     if experiment is not None:
-        try:
-            from benchharness.design.spec import design_of
+        from benchharness.design.spec import design_of
+        from benchharness.errors import BenchharnessError
 
+        try:
             d = design_of(experiment).design
-        except Exception:  # noqa: BLE001 - a table without a valid design section
+        except BenchharnessError:  # an invalid design section: plan and run report it
             d = None
         if (d is not None and d.is_fraction and tuple(d.factor_names) == tuple(names)
                 and tuple(d.level_labels) == labels):
@@ -571,7 +569,7 @@ def chain_of(term_factors, names, design, max_shown: int = 3) -> dict:
             "aliases": [("-" if s < 0 else "") + W.term(m, dnames) for m, s in others]}
 
 
-def attach(design, names, codes, z, scale: str, alpha: float, anova_rows, terms,
+def attach(design, codes, z, scale: str, alpha: float, anova_rows, terms,
            layout_names, df_resid: int, block_codes=None, response: str = "wall_s"):
     """Name the ANOVA rows of a fraction by their chains and add the fraction table.
 

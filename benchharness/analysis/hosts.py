@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 
 
-def host_split(prep, z, terms_model, model, ss_type, fit_block, alpha: float) -> dict | None:
+def host_split(prep, z, model, ss_type, fit_block, alpha: float) -> dict | None:
     """The between/within-host decomposition, or None when there is nothing to split."""
     from benchharness.analysis import dist as stats
 

@@ -136,7 +136,7 @@ class TermLimit:
     message: str | None         # one line for the user
 
 
-def limit_terms(terms, names, sizes, n_cells: int, n_rows: int) -> TermLimit:
+def limit_terms(terms, sizes, n_cells: int, n_rows: int) -> TermLimit:
     """Leave out the highest-order interactions until the model can be fitted.
 
     A model cannot estimate more parameters than it has runs; beyond that,

@@ -159,12 +159,13 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     # are part of the plan, so they enter the model (the chains confounded with them are
     # then reported, not estimated).
     if hasattr(sections, "get") and sections.get("design") is not None:
-        try:
-            from benchharness.design.spec import design_of
+        from benchharness.design.spec import design_of
+        from benchharness.errors import BenchharnessError
 
+        try:
             if design_of(exp).blocking is not None:
                 order_blocked = True
-        except Exception:  # noqa: BLE001 - a bad design section is reported by plan/run
+        except BenchharnessError:  # a bad design section is reported by plan/run
             pass
     has_hosts = "host" in columns and df["host"].astype(str).nunique() > 1
     if block is False or block == "":

@@ -99,15 +99,17 @@ def unit_of_response(response: str, experiment=None, folder=None) -> str | None:
     sections = getattr(experiment, "sections", None) or {}
     node = sections.get("metrics") if hasattr(sections, "get") else None
     if node is not None:
-        try:
-            from benchharness.measure.metrics import parse_metrics
+        from benchharness.errors import BenchharnessError
+        from benchharness.measure.metrics import parse_metrics
 
-            for m in parse_metrics(node, tuple(getattr(experiment, "factor_names", ()) or ())
-                                   ).metrics:
-                if m.name == response:
-                    return m.unit
-        except Exception:  # noqa: BLE001 - an invalid section was reported when it was loaded
+        try:
+            metrics = parse_metrics(node, tuple(getattr(experiment, "factor_names", ()) or ())
+                                    ).metrics
+        except BenchharnessError:  # an invalid section was reported when it was loaded
             return None
+        for m in metrics:
+            if m.name == response:
+                return m.unit
     return None
 
 

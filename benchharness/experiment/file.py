@@ -19,7 +19,6 @@ from benchharness.numbers import plural
 import os
 import re
 import shlex
-import warnings as _warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping
@@ -674,8 +673,3 @@ def _template_nodes(node: yaml.Node) -> list[tuple[str, yaml.Node]]:
         elif isinstance(n, yaml.MappingNode):
             stack.extend(v for _k, v in n.value)
     return out
-
-
-def warn_unused(exp: Experiment) -> None:  # pragma: no cover - convenience
-    for w in exp.warnings:
-        _warnings.warn(w)

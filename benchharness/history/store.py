@@ -291,7 +291,6 @@ def read_history(db_path: str | Path, experiment: str | None = None,
     df = df.sort_values(["experiment", "response", "_rank", "cell", "_order", "_started",
                          "imported_at"], kind="stable", na_position="last")
     return df.drop(columns=["_order", "_started", "_rank"]).reset_index(drop=True)
-    return df
 
 
 def parse_cell_filter(text: str | None, option: str = "--cell") -> dict | None:

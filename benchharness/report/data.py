@@ -107,7 +107,7 @@ def _levels_from(runs, factors, experiment, adict=None) -> dict[str, tuple[str, 
         if experiment is not None and listed is None:
             try:
                 listed = tuple(experiment.levels_of(f))
-            except Exception:  # a CSV factor the experiment does not declare
+            except KeyError:  # a CSV factor the experiment does not declare
                 listed = None
         seen = [str(v) for v in runs[f].dropna().astype(str).unique()]
         if listed:
@@ -263,7 +263,7 @@ def collect(source, *, analysis=None, response: str | None = None,
     if adict is None and nothing_finished(runs, response or "wall_s"):
         # Every timed run failed or timed out: a report of the design and of why the runs
         # did not finish is still worth reading; there is just nothing to analyse.
-        adict = unanalysed(runs, response or "wall_s", factors, levels=None)
+        adict = unanalysed(runs, response or "wall_s", factors)
     if adict is None:
         if not compute_analysis:
             raise DataError(f"{src_text}: no analysis to report")
@@ -319,7 +319,7 @@ def collect(source, *, analysis=None, response: str | None = None,
         design["run_from"] = session["cwd"]
     if session.get("benchharness_version"):
         design["version"] = session["benchharness_version"]
-    extra, extra_notes = _extra_sections(folder, experiment, response)
+    extra, extra_notes = _extra_sections(folder, experiment)
     from benchharness.measure.floor import note as floor_note
 
     extra_notes += floor_note(runs, session, response)  # peak memory at the launcher's size
@@ -352,7 +352,7 @@ def nothing_finished(runs, response: str) -> bool:
     return not bool(ok.any())
 
 
-def unanalysed(runs, response: str, factors, levels=None) -> dict:
+def unanalysed(runs, response: str, factors) -> dict:
     """The analysis dict of a table where no timed run finished: counts and a note only."""
     status = runs["status"].astype(str)
     timed = runs[status != "warmup"]
@@ -391,7 +391,7 @@ def _declared_metric(folder, response) -> str | None:
     return better if better in ("lower", "higher") else None
 
 
-def _extra_sections(folder, experiment, response):
+def _extra_sections(folder, experiment):
     """Sections of later capabilities that the experiment file asks for.
 
     `choose:` -> "Choosing a default" (benchharness.choose.choice_section). A section

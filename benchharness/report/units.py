@@ -101,12 +101,3 @@ def fmt_value(x, column: str) -> str:
     """A response value with its unit, seconds scaled to ms/µs when small (a lone value;
     a table column uses `column_scale` so that all its rows share one unit)."""
     return pick_scale(unit_of(column), [x]).fmt(x)
-
-
-def times_phrase(ratio: float) -> str:
-    """Plain words for a ratio of a time: '2.3× as long' or '35% less time'."""
-    if ratio >= 1:
-        if ratio < 1.1:
-            return f"{(ratio - 1) * 100:.1f}% more"
-        return f"{fmt_num(ratio)}× as much"
-    return f"{(1 - ratio) * 100:.1f}% less"

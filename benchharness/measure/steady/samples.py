@@ -198,27 +198,6 @@ def analyse_run(samples_s: list[float], settings=None) -> tuple[dict, dict]:
     return columns, {**res.to_json_dict(), "reason": res.reason}
 
 
-def samples_record(run: int, samples_s: list[float], analysis: dict, unit: str) -> dict:
-    """One line of ``samples.jsonl``."""
-    return {"run": run, "unit_reported": unit, "samples_s": samples_s, "analysis": analysis}
-
-
-def read_samples(path) -> dict[int, list[float]]:
-    """``samples.jsonl`` back as {run id: samples in seconds}; later lines win."""
-    out: dict[int, list[float]] = {}
-    with open(path, encoding="utf-8") as fh:
-        for line in fh:
-            line = line.strip()
-            if not line:
-                continue
-            try:
-                rec = json.loads(line)
-            except ValueError:
-                continue   # a torn last line after a crash
-            out[int(rec["run"])] = [float(x) for x in rec.get("samples_s", [])]
-    return out
-
-
 def read_samples_records(path) -> dict[int, dict]:
     """``samples.jsonl`` as {run id: record}; later lines win (a re-done run)."""
     out: dict[int, dict] = {}
