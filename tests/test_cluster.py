@@ -119,6 +119,32 @@ def test_every_run_recorded_once_with_hosts(cluster, tmp_path):
     assert set(host) == {"coordinator", "hosts"} and set(host["hosts"]) == {"hostA", "hostB"}
 
 
+def test_a_block_goes_whole_and_each_result_is_journalled_as_its_run_ends(cluster, tmp_path):
+    # One block of four 0.6 s runs, sent to a worker as one task: its results must reach
+    # the journal one by one while the block still runs (streamed), not all at its end.
+    address, _ = cluster
+    out = tmp_path / "res"
+    exp = _exp(tmp_path, reps=1, sleep=0.6)
+    coord = subprocess.Popen([PY, "-m", "benchharness", "run", str(exp), "--out", str(out),
+                              "--scheduler", address, "--same-host-ok", "--quiet",
+                              "--no-analysis"], env=_env(), cwd=ROOT, stdout=subprocess.PIPE,
+                             stderr=subprocess.PIPE, text=True, start_new_session=True)
+    jl = out / "runs.jsonl"
+    seen = set()
+    deadline = time.time() + 90
+    while coord.poll() is None and time.time() < deadline:
+        if jl.exists():
+            seen.add(len(jl.read_bytes().splitlines()))
+        time.sleep(0.02)
+    _out, err = coord.communicate(timeout=30)
+    assert coord.returncode == 0, err
+    recs = J.read_journal(jl)
+    assert sorted(x["run"] for x in recs) == [0, 1, 2, 3]
+    assert len({x["host"] for x in recs}) == 1          # one block, one host
+    assert seen & {1, 2, 3}, f"line counts seen while running: {sorted(seen)}"
+    assert [x["host_position"] for x in recs] == sorted(x["host_position"] for x in recs)
+
+
 def test_lost_worker_and_killed_coordinator(cluster, tmp_path):
     address, workers = cluster
     out = tmp_path / "res"

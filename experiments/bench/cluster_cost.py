@@ -19,7 +19,7 @@ do not count. Reported: milliseconds per run for each method, the cluster's cost
 as a ratio to local runs, and the throughput of two workers as a ratio to one,
 with the load average before and after.
 
-    python experiments/bench/cluster_cost.py [--rounds 3] [--small 2] [--large 20] [--json]
+    python experiments/bench/cluster_cost.py [--rounds 3] [--small 2] [--large 32] [--json]
 """
 
 from __future__ import annotations
@@ -116,7 +116,7 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--small", type=int, default=2, help="replicates of the small experiment")
-    ap.add_argument("--large", type=int, default=20, help="replicates of the large experiment")
+    ap.add_argument("--large", type=int, default=32, help="replicates of the large experiment")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args(argv)
     per_block = CELLS[0] * CELLS[1]
