@@ -165,7 +165,6 @@ class Prepared:
     spec: RunSpec
     token: object = None
     pad_bytes: int | None = None
-    env: dict | None = None
     request: dict | None = None   # the executor's request, built while the run before ran
 
 
@@ -246,7 +245,7 @@ class RunEngine:
         if self.quality is not None:
             spec, token = self.quality.prepare(spec0, pr["levels"], c,
                                                sample_later=sample_later)
-        return Prepared(c, spec, token, pad, env, req if spec is spec0 else None)
+        return Prepared(c, spec, token, pad, req if spec is spec0 else None)
 
     def _padding(self, c: Mapping):
         if self.pad_rng is None:
