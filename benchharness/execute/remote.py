@@ -5,9 +5,9 @@ memory figures are the run's, not the worker's), a cache of the build steps it
 has already run (once per host and rendered form), and a counter giving each
 run's position on that host. The coordinator sends whole blocks
 (`execute_block`); each result streams back as an event the moment its run
-ends, so a run costs the worker its own launch and nothing more. Functions here are sent to workers by reference,
-so benchharness must be importable on every worker (same version as the
-coordinator).
+ends, so a run costs the worker its own launch and nothing more. Functions
+here are sent to workers by reference, so benchharness must be importable on
+every worker (same version as the coordinator).
 """
 
 from __future__ import annotations
