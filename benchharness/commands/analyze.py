@@ -6,15 +6,24 @@ import sys
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser(
         "analyze", help="analyse a results folder or a tidy CSV (ANOVA, effects, comparisons)",
         description="Analyse the runs of a results folder (or any tidy CSV, one row per "
                     "observation) as a factorial experiment: ANOVA of main effects and "
                     "interactions, residual diagnostics, scale choice, level ratios with "
                     "intervals and adjusted comparisons. Only runs with status ok are analysed; "
-                    "the others are counted per cell.")
-    p.add_argument("source", help="results folder or CSV file")
-    p.add_argument("--response", default=None, metavar="COL",
+                    "the others are counted per cell.",
+        epilog=O.examples(
+            "benchharness analyze results/example-archive-codecs  # ANOVA, effects as ratios, "
+            "comparisons and findings of a results folder",
+            "benchharness analyze runs.csv --factors codec,level --confidence 99%  # a tidy "
+            "CSV from elsewhere, 99% intervals",
+            "benchharness analyze results/example-archive-codecs --json > analysis.json  # the "
+            "analysis as one JSON document"))
+    p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV file")
+    p.add_argument("--response", default=None, metavar="NAME",
                    help="column to analyse (default wall_s; for a gate's folder, the response "
                         "the gate compared)")
     p.add_argument("--factors", metavar="A,B", default=None,
@@ -37,7 +46,11 @@ def add_parser(sub) -> None:
                         "chain it can estimate, each named by its chain)")
     p.add_argument("--ss-type", type=int, choices=[2, 3], default=2,
                    help="type of sums of squares (default 2)")
-    p.add_argument("--alpha", type=float, default=0.05, help="significance level (default 0.05)")
+    p.add_argument("--confidence", type=O.confidence, default=0.95, metavar="PCT",
+                   help="confidence of the intervals; tests are made at 100%% minus it "
+                        "(default 95%%)")
+    O.alias(p, "--alpha", "--confidence 95% (for --alpha 0.05)", "confidence",
+            convert=lambda t: 1.0 - O.percent(0.0, 1.0, low_open=True)(t))
     p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
                    help="reference level of a factor for ratios (repeat the option for each "
                         "factor; default: the first level)")
@@ -58,13 +71,12 @@ def add_parser(sub) -> None:
                         "analysis scale; by default it runs when the assumptions look doubtful)")
     x.add_argument("--no-cross-check", action="store_true",
                    help="never run the rank-based cross-check (for very large tables)")
-    p.add_argument("--json", metavar="FILE", default=None,
-                   help="also write the analysis as JSON to FILE ('-' for stdout only)")
+    O.add_json(p, "the analysis")
     p.set_defaults(func=main)
 
 
 def main(args) -> int:
-    from benchharness.analysis import analyze, format_analysis, write_analysis_json
+    from benchharness.analysis import analyze, format_analysis
     from benchharness.errors import UsageError
 
     factors = None
@@ -72,8 +84,6 @@ def main(args) -> int:
         factors = [f for f in args.factors.split(",")]
         if any(not f for f in factors):
             raise UsageError(f"--factors {args.factors!r}: an empty factor name")
-    if not 0 < args.alpha < 1:
-        raise UsageError(f"--alpha {args.alpha}: must be between 0 and 1")
     block = False if args.no_block else args.block
     from benchharness.results.journal import is_results_folder, load_results
 
@@ -88,15 +98,18 @@ def main(args) -> int:
     model = args.model  # None: full, or every alias chain of a two-level fraction
     an = analyze(args.source, response=args.response, factors=factors, block=block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
-                 alpha=args.alpha, reference=args.reference, adjust=args.adjust,
+                 alpha=1.0 - args.confidence, reference=args.reference, adjust=args.adjust,
                  art=True if args.art else False if args.no_cross_check else "auto",
                  better=args.better,
                  comparisons=(True if args.comparisons is None else
                               "all" if args.comparisons.strip() == "all" else
                               [m.strip() for m in args.comparisons.split(",") if m.strip()]))
-    if args.json == "-":
-        sys.stdout.write(an.to_json() + "\n")
-        return 0
+    if args.json or args.json_out:
+        from benchharness.commands.options import emit_json, wants_json_only
+
+        emit_json(args, an.to_json())
+        if wants_json_only(args):
+            return 0
     if args.plain:
         print(format_analysis(an), end="")
     else:
@@ -115,17 +128,8 @@ def main(args) -> int:
         from benchharness.analysis.fraction import format_fraction
 
         print("\n" + format_fraction(frac))
-    if args.json:
-        try:
-            write_analysis_json(an, args.json)
-        except OSError as exc:
-            from benchharness.errors import disk_full_writing, is_disk_full
-
-            if is_disk_full(exc):
-                raise disk_full_writing(args.json) from None
-            raise UsageError(f"--json {args.json}: cannot write the file ({exc.strerror or exc})"
-                             ) from None
-        print(f"\nanalysis written to {args.json}")
+    if args.json_out:
+        print(f"\nanalysis written to {args.json_out}", file=sys.stderr)
     return 0
 
 

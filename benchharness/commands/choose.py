@@ -8,12 +8,13 @@ from __future__ import annotations
 
 import json
 import math
-from pathlib import Path
 
 from benchharness.errors import UsageError
 
 
 def add_parser(subparsers):
+    from benchharness.commands import options as O
+
     p = subparsers.add_parser(
         "choose",
         help="recommend a default: the best or tied settings, robust across environments",
@@ -21,9 +22,17 @@ def add_parser(subparsers):
                     "settings that cannot be told apart from the best, the setting that holds "
                     "up across environments, and (with --also) the trade-off front. Options "
                     "left out are taken from the experiment file's choose: section.",
+        epilog=O.examples(
+            "benchharness choose results/example-archive-codecs  # the best or tied settings, "
+            "holding up across the workloads",
+            "benchharness choose results/example-archive-codecs --also max_rss_kib --limit "
+            "'max_rss_kib within 5%'  # fastest among settings whose memory is within 5% of "
+            "the smallest",
+            "benchharness choose results/example-archive-codecs --json  # the choice as one "
+            "JSON document"),
     )
     p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV of runs")
-    p.add_argument("--response", default=None,
+    p.add_argument("--response", default=None, metavar="NAME",
                    help="response column to choose on (default: choose.response or wall_s)")
     p.add_argument("--factors", default=None, metavar="A,B",
                    help="factor columns (needed for a CSV without an experiment file)")
@@ -32,7 +41,7 @@ def add_parser(subparsers):
                         "'' for none even if the experiment file names some")
     p.add_argument("--also", default=None, metavar="METRIC,...",
                    help="further responses for the trade-off front, e.g. max_rss_kib; '' for none")
-    p.add_argument("--within", default=None, metavar="P%",
+    p.add_argument("--within", default=None, metavar="PCT", type=O.percent(0.0, 1.0),
                    help="practical margin of the trade-off front: a difference smaller than "
                         "this does not count (default: choose.within or 3%%)")
     p.add_argument("--limit", action="append", default=None, metavar="'RESPONSE within P%'",
@@ -45,8 +54,8 @@ def add_parser(subparsers):
                         "choice must hold up across them")
     p.add_argument("--environment", default=None, metavar="F,...",
                    help="factors that are environments (machine, runtime): never chosen")
-    p.add_argument("--confidence", default=None, type=float,
-                   help="confidence level, between 0 and 1 (default 0.95)")
+    p.add_argument("--confidence", default=None, type=O.confidence, metavar="PCT",
+                   help="confidence level (default: choose.confidence or 95%%)")
     p.add_argument("--prefer", action="append", default=[], metavar="FACTOR=LEVEL",
                    help="current default of a factor; ties go its way (repeatable)")
     p.add_argument("--better", choices=("lower", "higher"), default=None,
@@ -56,8 +65,7 @@ def add_parser(subparsers):
                    help="block column fitted as an additive noise term (default: 'block' for "
                         "blocked experiments, 'host' when runs span several hosts)")
     g.add_argument("--no-block", action="store_true", help="fit no block term")
-    p.add_argument("--json", default=None, metavar="FILE",
-                   help="also write the choice as JSON to FILE ('-' for standard output only)")
+    O.add_json(p, "the choice")
     p.set_defaults(func=run)
     return p
 
@@ -99,8 +107,6 @@ def run(args) -> int:
     from benchharness.choose import choose
     from benchharness.choose.render import terminal_text
 
-    if args.confidence is not None and not 0 < args.confidence < 1:
-        raise UsageError(f"--confidence {args.confidence}: must be between 0 and 1, e.g. 0.95")
     choice = choose(
         args.source,
         response=args.response,
@@ -115,22 +121,11 @@ def run(args) -> int:
         within=args.within,
         limits=args.limit,
     )
-    data = json.dumps(_finite(choice.to_dict()), indent=2, allow_nan=False)
-    if args.json == "-":
-        print(data)
-        return 0
-    print(terminal_text(choice), end="")
-    if args.json:
-        target = Path(args.json)
-        tmp = target.with_name(target.name + ".tmp")
-        try:  # via a sibling and a rename: a full disk leaves the old file, never half one
-            tmp.write_text(data + "\n", encoding="utf-8")
-            tmp.replace(target)
-        except OSError as exc:
-            tmp.unlink(missing_ok=True)
-            from benchharness.errors import disk_full_writing, is_disk_full
+    if args.json or args.json_out:
+        from benchharness.commands.options import emit_json, wants_json_only
 
-            if is_disk_full(exc):
-                raise disk_full_writing(args.json) from None
-            raise UsageError(f"--json {args.json}: cannot write ({exc.strerror})") from None
+        emit_json(args, json.dumps(_finite(choice.to_dict()), indent=2, allow_nan=False))
+        if wants_json_only(args):
+            return 0
+    print(terminal_text(choice), end="")
     return 0

@@ -2,65 +2,62 @@
 
 from __future__ import annotations
 
-import argparse
 import json
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser("compare", help="compare two results folders cell by cell",
                        description="For each cell two results folders share, estimate the "
                                    "ratio B/A of the geometric means with its confidence "
                                    "interval and say whether it is beyond a tolerance. Runs "
                                    "from different sessions confound the change with the "
-                                   "machine's state; `benchharness gate` interleaves both.")
+                                   "machine's state; `benchharness gate` interleaves both.",
+                       epilog=O.examples(
+                           "benchharness compare results/codecs-monday results/codecs-friday  "
+                           "# per cell, Friday's time as a ratio of Monday's",
+                           "benchharness compare results/codecs-monday results/codecs-friday "
+                           "--tolerance 2% --confidence 99%  # a tighter band, wider intervals",
+                           "benchharness compare results/codecs-monday results/codecs-friday "
+                           "--json  # the comparison as one JSON document"))
     p.add_argument("a", metavar="A", help="results folder of the baseline")
     p.add_argument("b", metavar="B", help="results folder to compare with the baseline")
-    p.add_argument("--tolerance", default="5%", metavar="PCT",
-                   help="change that is still 'the same' (default 5%%)")
+    p.add_argument("--tolerance", default=1.05, metavar="RATIO",
+                   type=O.ratio("--tolerance", above_one=False),
+                   help="change that is still 'the same': 5%% or 1.05x (default 5%%)")
     p.add_argument("--response", default="wall_s", metavar="NAME",
                    help="response column (default wall_s)")
-    p.add_argument("--confidence", type=float, default=0.95, metavar="LEVEL",
-                   help="confidence level of the intervals (default 0.95)")
+    p.add_argument("--confidence", type=O.confidence, default=0.95, metavar="PCT",
+                   help="confidence level of the intervals (default 95%%)")
     p.add_argument("--adjust", choices=("sidak", "bonferroni", "none"), default=None,
                    help="how the intervals account for the number of cells: sidak "
                         "(default) and bonferroni hold for all cells together at the "
                         "confidence level; none gives per-cell intervals")
-    p.add_argument("--simultaneous", action="store_true", help=argparse.SUPPRESS)
-    p.add_argument("--json", metavar="FILE", help="also write the comparison as JSON")
+    O.alias(p, "--simultaneous", "--adjust bonferroni", "adjust", flag=True,
+            convert=lambda _: "bonferroni")
+    O.add_json(p, "the comparison")
     p.set_defaults(func=main)
-
-
-def parse_fraction(text: str, option: str) -> float:
-    from benchharness.errors import UsageError
-
-    t = text.strip()
-    try:
-        value = float(t[:-1]) / 100 if t.endswith("%") else float(t)
-    except ValueError:
-        raise UsageError(f"{option} {text!r}: give a percentage like 5% (or 0.05)") from None
-    if not (0 <= value < 1):
-        raise UsageError(f"{option} {text!r}: must be at least 0% and below 100%")
-    return value
 
 
 def main(args) -> int:
     from benchharness.errors import UsageError
     from benchharness.history.compare import compare_folders
 
-    tol = parse_fraction(args.tolerance, "--tolerance")
-    if not (0 < args.confidence < 1):
-        raise UsageError(f"--confidence {args.confidence}: give a level between 0 and 1")
-    if args.simultaneous and args.adjust not in (None, "bonferroni"):
-        raise UsageError(f"--simultaneous (Bonferroni) and --adjust {args.adjust} disagree; "
-                         "give only --adjust")
-    adjust = args.adjust or ("bonferroni" if args.simultaneous else "sidak")
+    tol = args.tolerance - 1.0
+    if not 0 <= tol < 1:
+        raise UsageError("--tolerance: must be at least 0% and below 100% (a ratio from 1 "
+                         "to 2)")
+    adjust = args.adjust or "sidak"
     result = compare_folders(args.a, args.b, response=args.response, tolerance=tol,
                              conf_level=args.confidence, adjust=adjust)
-    print_comparison(result)
-    if args.json:
-        from benchharness.commands.history import write_text
+    if args.json or args.json_out:
+        from benchharness.commands.options import emit_json, wants_json_only
 
-        write_text(args.json, json.dumps(result.to_json_dict(), indent=1) + "\n", "--json")
+        emit_json(args, json.dumps(result.to_json_dict(), indent=1))
+        if wants_json_only(args):
+            return 0
+    print_comparison(result)
     return 0
 
 

@@ -13,29 +13,53 @@ import sys
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser(
         "gate", help="CI regression gate: interleaved baseline vs candidate runs",
-        description="Run baseline and candidate back to back in random order, block after "
-                    "block, until the slowdown ratio is known to be below or above "
+        description="Run baseline and candidate back to back in random order, one pair "
+                    "after another, until the slowdown ratio is known to be below or above "
                     "1 + tolerance (or the budget is spent). Exit 0: no regression, 1: "
                     "regression, 3: inconclusive, 5: a build never ran successfully, 2: bad "
-                    "input.")
+                    "input.",
+        epilog=O.examples(
+            "benchharness gate --baseline 'python3 experiments/workloads/squeeze.py --codec "
+            "zlib --level 6 --input text' --candidate 'python3 experiments/workloads/squeeze.py "
+            "--codec zlib --level 9 --input text' --tolerance 5%  # quick form: is level 9 more "
+            "than 5% slower than level 6?",
+            "benchharness gate experiments/gate-levels.yaml --junit gate.xml --summary "
+            "summary.md  # file form: each input kind judged on its own, CI files written",
+            "benchharness gate experiments/gate-levels.yaml --json > verdicts.json  # the "
+            "verdicts as one JSON document"))
     p.add_argument("file", nargs="?", metavar="FILE",
                    help="experiment file with a 'gate:' section (file form)")
     p.add_argument("--baseline", metavar="CMD", help="baseline command (quick form)")
     p.add_argument("--candidate", metavar="CMD", help="candidate command (quick form)")
-    p.add_argument("--tolerance", metavar="PCT", help="slowdown still accepted (default 5%%)")
-    p.add_argument("--confidence", metavar="LEVEL", help="confidence of the bounds (default 0.95)")
-    p.add_argument("--max-runs", type=int, metavar="N",
-                   help="budget: runs of each build for each workload (default 100)")
-    p.add_argument("--min-runs", type=int, metavar="N",
-                   help="blocks before the first look (default 6)")
+    p.add_argument("--tolerance", metavar="RATIO", type=O.ratio("--tolerance"),
+                   help="slowdown still accepted: 5%% or 1.05x (default 5%%)")
+    p.add_argument("--confidence", metavar="PCT", type=O.confidence,
+                   help="confidence of the bounds, 50%% to 100%% (default 95%%)")
+    p.add_argument("--max-pairs", type=O.count(2), metavar="N", dest="max_pairs",
+                   help="budget: most pairs (one baseline and one candidate run) for each "
+                        "workload (default 100)")
+    O.alias(p, "--max-runs", "--max-pairs N", "max_pairs", convert=O.count(2), metavar="N")
+    p.add_argument("--first-look-pairs", type=O.count(2), metavar="N", dest="first_look_pairs",
+                   help="pairs run before the first look at the bounds (default 6)")
+    O.alias(p, "--min-runs", "--first-look-pairs N", "first_look_pairs", convert=O.count(2),
+            metavar="N")
     p.add_argument("--response", metavar="NAME", help="what to compare (default wall_s)")
-    p.add_argument("--higher-is-better", action="store_true", default=None,
-                   help="the response is a rate (throughput): slowdown = baseline/candidate")
-    p.add_argument("--warmup", type=int, metavar="N",
-                   help="warm-up runs of each build (quick form; default 1)")
-    p.add_argument("--timeout", metavar="DURATION", help="per-run time limit (quick form), e.g. 60s")
+    p.add_argument("--better", choices=("lower", "higher"), default=None,
+                   help="which direction of the response is better (default: the metric's "
+                        "declaration, else lower); higher for a rate such as throughput, "
+                        "where slowdown = baseline/candidate")
+    O.alias(p, "--higher-is-better", "--better higher", "better", flag=True,
+            convert=lambda _: "higher")
+    p.add_argument("--warmup-runs", type=O.count(0), metavar="N", dest="warmup_runs",
+                   help="untimed runs of each build before the first pair (quick form; "
+                        "default 1)")
+    O.alias(p, "--warmup", "--warmup-runs N", "warmup_runs", convert=O.count(0), metavar="N")
+    p.add_argument("--timeout", metavar="DURATION", type=O.duration,
+                   help="per-run time limit (quick form), e.g. 60s")
     p.add_argument("--seed", type=int, metavar="N", help="seed of the run order")
     p.add_argument("--inconclusive", choices=("pass", "fail"),
                    help="exit code for an inconclusive verdict: 0 (pass) or 1 (fail) "
@@ -43,27 +67,19 @@ def add_parser(sub) -> None:
     p.add_argument("--against", metavar="FOLDER",
                    help="stored baseline: take the baseline's runs from an earlier results "
                         "folder (confounds the change with the session; not recommended)")
-    p.add_argument("--summary", metavar="FILE", help="append a Markdown summary to FILE")
-    p.add_argument("--junit", metavar="FILE", help="write JUnit XML (one test case per workload)")
-    p.add_argument("--json", metavar="FILE", help="write the verdicts as JSON")
-    p.add_argument("--out", metavar="DIR", help="results folder to create "
-                                                "(default results/<name>-<time>)")
-    p.add_argument("--history", metavar="DB",
+    p.add_argument("--summary", metavar="FILE", type=O.out_file("--summary"),
+                   help="append a Markdown summary to FILE")
+    p.add_argument("--junit", metavar="FILE", type=O.out_file("--junit"),
+                   help="write JUnit XML (one test case per workload)")
+    O.add_json(p, "the verdicts")
+    p.add_argument("--out", metavar="DIR", type=O.out_file("--out"),
+                   help="results folder to create (default results/<name>-<time>)")
+    p.add_argument("--history-db", metavar="FILE", type=O.out_file("--history-db"),
                    help="record the candidate's runs in this history database under the "
                         "current git commit")
+    O.alias(p, "--history", "--history-db FILE", "history_db", metavar="FILE")
     p.add_argument("--quiet", action="store_true", help="print only the verdict lines")
     p.set_defaults(func=main)
-
-
-def _fraction(text, option):
-    from benchharness.errors import UsageError
-
-    t = str(text).strip()
-    try:
-        v = float(t[:-1]) / 100 if t.endswith("%") else float(t)
-    except ValueError:
-        raise UsageError(f"{option} {text!r}: give a percentage like 5% (or 0.05)") from None
-    return v
 
 
 def main(args) -> int:
@@ -89,50 +105,40 @@ def main(args) -> int:
         raise UsageError("the quick form needs both --baseline CMD and --candidate CMD")
     over: dict = {}
     if args.tolerance is not None:
-        tol = _fraction(args.tolerance, "--tolerance")
+        tol = args.tolerance - 1.0
         if not 0 < tol < 1:
-            raise UsageError(f"--tolerance {args.tolerance}: must be above 0% and below 100%")
+            raise UsageError("--tolerance: must be above 0% and below 100% (a ratio between 1 "
+                             "and 2)")
         over["tolerance"] = tol
     if args.confidence is not None:
-        c = _fraction(args.confidence, "--confidence")
-        if not 0.5 < c < 1:
-            raise UsageError(f"--confidence {args.confidence}: give a level between 0.5 and 1, "
-                             "e.g. 0.95")
-        over["confidence"] = c
-    if args.max_runs is not None:
-        if args.max_runs < 2:
-            raise UsageError("--max-runs must be at least 2")
-        over["max_runs"] = args.max_runs
-    if args.min_runs is not None:
-        if args.min_runs < 2:
-            raise UsageError("--min-runs must be at least 2")
-        over["min_runs"] = args.min_runs
+        if not 0.5 < args.confidence < 1:
+            raise UsageError(f"--confidence {args.confidence:.0%}: give a level between 50% "
+                             "and 100%, e.g. 95%")
+        over["confidence"] = args.confidence
+    if args.max_pairs is not None:
+        over["max_runs"] = args.max_pairs
+    if args.first_look_pairs is not None:
+        over["min_runs"] = args.first_look_pairs
     if args.response:
         over["response"] = args.response
-    if args.higher_is_better:
-        over["higher_is_better"] = True
+    if args.better is not None:
+        over["higher_is_better"] = args.better == "higher"
     if args.inconclusive:
         over["inconclusive"] = args.inconclusive
-    if args.warmup is not None and args.warmup < 0:
-        raise UsageError("--warmup must be 0 or more")
     if quick:
-        if args.timeout is not None:
-            from benchharness.experiment.yamlnodes import parse_duration_s
-
-            if not parse_duration_s(args.timeout):
-                raise UsageError(f"--timeout {args.timeout!r}: give a duration like 60s or 5m")
         text = quick_experiment_text(args.baseline, args.candidate,
-                                     warmup=1 if args.warmup is None else args.warmup,
-                                     timeout=args.timeout)
+                                     warmup=1 if args.warmup_runs is None else args.warmup_runs,
+                                     timeout=None if args.timeout is None else
+                                     f"{args.timeout!r}s")
         exp = Experiment.from_text(text, path="<gate quick form>")
     else:
-        if args.warmup is not None or args.timeout is not None:
-            raise UsageError("--warmup and --timeout belong to the quick form; set warmup: and "
-                             "timeout: in the experiment file")
+        if args.warmup_runs is not None or args.timeout is not None:
+            raise UsageError("--warmup-runs and --timeout belong to the quick form; set warmup: "
+                             "and timeout: in the experiment file")
         exp = load_experiment(args.file)
     cfg = parse_gate_section(exp, over)
     if cfg.settings.min_runs > cfg.settings.max_runs:
-        raise UsageError("--min-runs must not exceed --max-runs")
+        raise UsageError("--first-look-pairs must not exceed --max-pairs")
 
     def progress(rec):
         if not args.quiet and sys.stderr.isatty():
@@ -140,8 +146,8 @@ def main(args) -> int:
 
     # the verdict's files must be writable before any run is spent deciding it
     for opt, target in (("--summary", args.summary), ("--junit", args.junit),
-                        ("--json", args.json)):
-        if target:
+                        ("--json-out", args.json_out)):
+        if target and target != "-":
             _check_writable(opt, target)
     outcome, folder = run_session(exp, cfg, out=args.out, seed=args.seed,
                                   stored_baseline=args.against, progress=progress)
@@ -156,25 +162,26 @@ def main(args) -> int:
                 fh.write(output.markdown_summary(outcome, folder))
         if args.junit:
             Path(args.junit).write_text(output.junit_xml(outcome), encoding="utf-8")
-        if args.json:
-            Path(args.json).write_text(json.dumps(output.to_json_dict(outcome, folder),
-                                                  indent=1) + "\n", encoding="utf-8")
+        if args.json or args.json_out:
+            from benchharness.commands.options import emit_json
+
+            emit_json(args, json.dumps(output.to_json_dict(outcome, folder), indent=1))
     except OSError as exc:
         from benchharness.errors import DiskFullError, is_disk_full
 
-        target = exc.filename or args.summary or args.junit or args.json
+        target = exc.filename or args.summary or args.junit or args.json_out
         if is_disk_full(exc):  # exit 75, never a verdict code nor 2 (bad input)
             raise DiskFullError(f"the disk is full (no space left on the device writing "
                                 f"{target}); the verdict is in {folder}/gate.json; free some "
                                 "space and run the command again") from None
         raise UsageError(f"{target}: cannot write ({exc.strerror}); the verdict is in "
                          f"{folder}/gate.json") from None
-    if args.history:
+    if args.history_db:
         from benchharness.history import add_results
 
-        n = add_results(args.history, folder, responses=(cfg.response,),
+        n = add_results(args.history_db, folder, responses=(cfg.response,),
                         select={cfg.factor: cfg.candidate})
-        print(f"history: {n} cell rows of the candidate added to {args.history}")
+        print(f"history: {n} cell rows of the candidate added to {args.history_db}")
     return outcome.exit_code(cfg.inconclusive)
 
 

@@ -3,16 +3,24 @@
 from __future__ import annotations
 
 import json
+import sys
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser("host", help="show machine facts and noise warnings",
                        description="Show the facts benchharness records about this machine and "
                                    "check for conditions that disturb timings (load, busy "
                                    "processes, frequency scaling, boost, throttling, memory "
-                                   "pressure, battery, virtualization), each with a fix.")
-    p.add_argument("--json", action="store_true",
-                   help="print {facts, warnings} as JSON instead of text")
+                                   "pressure, battery, virtualization), each with a fix. "
+                                   "Warnings and notes go to standard error.",
+                       epilog=O.examples(
+                           "benchharness host  # the facts, then what may disturb timings here",
+                           "benchharness host --strict  # exit 1 when a check warns (a CI "
+                           "runner that should be quiet)",
+                           "benchharness host --json  # {facts, warnings} as one JSON document"))
+    O.add_json(p, "{facts, warnings}")
     p.add_argument("--strict", action="store_true",
                    help="exit with code 1 when any check gives a warning (notes do not count)")
     p.set_defaults(func=main)
@@ -35,9 +43,12 @@ def main(args) -> int:
 
     facts = collect_facts()
     warnings = check_host(facts)
-    if args.json:
-        print(json.dumps({"facts": facts, "warnings": warnings}, indent=1, default=str))
-    else:
+    from benchharness.commands.options import emit_json, wants_json_only
+
+    if args.json or args.json_out:
+        emit_json(args, json.dumps({"facts": facts, "warnings": warnings}, indent=1,
+                                   default=str))
+    if not wants_json_only(args):
         gib = (facts.get("memory_bytes") or 0) / 2**30
         lines = [
             ("CPU", f"{facts.get('cpu_model') or 'unknown'} ({facts.get('physical_cores')} "
@@ -58,12 +69,11 @@ def main(args) -> int:
         width = max(len(k) for k, _ in lines)
         for k, v in lines:
             print(f"{k:<{width}}  {v}")
-        print()
         if not warnings:
-            print("no conditions found that are known to disturb timings")
-        for w in warnings:
-            print(f"{w['severity']}: {w['message']}")
-            print(f"  fix: {w['fix']}")
+            print("\nno conditions found that are known to disturb timings")
+        for w in warnings:  # warnings and notes: standard error, like every command's
+            print(f"{w['severity']}: {w['message']}", file=sys.stderr)
+            print(f"  fix: {w['fix']}", file=sys.stderr)
     if args.strict and any(w["severity"] == "warning" for w in warnings):
         return 1
     return 0

@@ -7,17 +7,28 @@ import sys
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser("plan", help="show the planned runs of an experiment file",
                        description="Expand an experiment file into its planned runs and show "
-                                   "them (nothing is executed).")
-    p.add_argument("file", help="experiment file (YAML)")
-    p.add_argument("--json", action="store_true", help="print the plan as JSON")
-    p.add_argument("--seed", type=int, default=None, help="override the file's seed")
-    p.add_argument("--pilot", metavar="RESULTS",
+                                   "them (nothing is executed).",
+                       epilog=O.examples(
+                           "benchharness plan experiments/archive-codecs.yaml  # cells, runs, "
+                           "seed and the first runs in execution order",
+                           "benchharness plan experiments/archive-codecs.yaml --pilot "
+                           "results/example-archive-codecs --budget 30m  # how long it takes, "
+                           "and how many replicates fit in 30 minutes",
+                           "benchharness plan experiments/archive-codecs.yaml --json  # the "
+                           "plan as one JSON document"))
+    p.add_argument("file", metavar="FILE", help="experiment file (YAML)")
+    O.add_json(p, "the plan")
+    p.add_argument("--seed", type=int, default=None, metavar="N",
+                   help="override the file's seed")
+    p.add_argument("--pilot", metavar="SOURCE",
                    help="earlier results folder (or tidy CSV): estimate how long the plan takes")
-    p.add_argument("--budget", metavar="DURATION",
+    p.add_argument("--budget", metavar="DURATION", type=O.duration,
                    help="with --pilot: how many complete replicates fit this time (e.g. 30m)")
-    p.add_argument("--show", type=int, default=12, metavar="N",
+    p.add_argument("--show", type=O.count(0), default=12, metavar="N",
                    help="how many runs of the execution order to list (default 12)")
     p.set_defaults(func=main)
 
@@ -34,15 +45,16 @@ def main(args) -> int:
         print(f"warning: {w}", file=sys.stderr)
     plan = build_plan(exp, seed=args.seed)
     timing = _timing(args, exp, plan)
-    if args.json:
+    if args.json or args.json_out:
+        from benchharness.commands.options import emit_json, wants_json_only
         from benchharness.experiment.roles import factor_roles
 
         d = plan.to_json_dict()
         d["roles"] = factor_roles(exp).to_dict()
         d.update(timing)
-        json.dump(d, sys.stdout, indent=1)
-        sys.stdout.write("\n")
-        return 0
+        emit_json(args, json.dumps(d, indent=1))
+        if wants_json_only(args):
+            return 0
     print(format_plan(exp, plan, show=args.show))
     for line in _timing_lines(timing):
         print(line)
@@ -66,8 +78,6 @@ def _timing(args, exp, plan) -> dict:
         return out
     from benchharness.design.budget import estimate_plan, pilot_timing, replicates_in_budget
     from benchharness.results.source import load_table
-    from benchharness.experiment.yamlnodes import parse_duration_s
-
     pilot, _ = load_table(args.pilot) if os.path.isdir(args.pilot) else \
         load_table(args.pilot, factors=list(exp.factor_names))
     est = estimate_plan(plan, pilot_timing(pilot, exp.factor_names))
@@ -79,9 +89,7 @@ def _timing(args, exp, plan) -> dict:
         out["time_estimate"]["expected_at_max_replicates_s"] = \
             est.warmup_s + per_rep * rule.max_replicates
     if args.budget:
-        b = parse_duration_s(args.budget)
-        if b is None or b <= 0:
-            raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m or 1h30m")
+        b = args.budget
         out["time_estimate"]["budget_s"] = b
         out["time_estimate"]["replicates_in_budget"] = replicates_in_budget(b, per_rep,
                                                                             est.warmup_s)

@@ -4,22 +4,34 @@ from __future__ import annotations
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser(
         "report", help="write the HTML and Markdown reports of a results folder or CSV",
         description="Analyse SOURCE (a results folder, or a tidy CSV with --factors) and write "
                     "a self-contained HTML report, a Markdown report and the figures (PNG and "
-                    "SVG under figures/). For a results folder the files go into the folder.")
+                    "SVG under figures/). For a results folder the files go into the folder.",
+        epilog=O.examples(
+            "benchharness report results/example-archive-codecs  # report.html, report.md and "
+            "figures/ inside the folder",
+            "benchharness report results/example-archive-codecs --compact --markdown -  # a "
+            "short Markdown report on standard output, for a CI page",
+            "benchharness report runs.csv --factors codec,level --html codecs.html  # a tidy "
+            "CSV from elsewhere"))
     p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV file")
-    p.add_argument("--html", metavar="FILE", help="HTML report path (default: SOURCE/report.html)")
-    p.add_argument("--markdown", metavar="FILE",
-                   help="Markdown report path (default: SOURCE/report.md; '-' prints it)")
+    p.add_argument("--html", metavar="FILE", type=O.out_file("--html"),
+                   help="HTML report path (default: SOURCE/report.html)")
+    p.add_argument("--markdown", metavar="FILE", type=O.out_file("--markdown", stdout_ok=True),
+                   help="Markdown report path (default: SOURCE/report.md; '-' prints it on "
+                        "standard output)")
     p.add_argument("--compact", action="store_true",
                    help="short Markdown for a CI job summary page (verdict, effects, warnings)")
     p.add_argument("--factors", metavar="A,B", help="factor columns (required for a CSV)")
-    p.add_argument("--response", metavar="COL", help="response column (default: the analysis' "
+    p.add_argument("--response", metavar="NAME", help="response column (default: the analysis' "
                    "response, else wall_s)")
     p.add_argument("--tables", action="store_true",
                    help="also print the analysis as tables in the terminal")
+    O.add_json(p, "where the reports were written and their headline")
     p.set_defaults(func=main)
 
 
@@ -56,6 +68,9 @@ def _main(args) -> int:
         base, stem = src.parent, f"{src.stem}.report"
     html = Path(args.html) if args.html else base / f"{stem}.html"
     to_stdout = args.markdown == "-"
+    if to_stdout and (args.json or args.json_out == "-"):
+        raise UsageError("--markdown - and --json both want standard output; write the "
+                         "Markdown to a file (--markdown FILE) or drop --json")
     md = None if to_stdout else (Path(args.markdown) if args.markdown else base / f"{stem}.md")
     data, figs = build_report(src, response=args.response, factors=factors)
     fig_root = (md.parent if md is not None else html.parent)
@@ -71,6 +86,7 @@ def _main(args) -> int:
         sys.stdout.write(render_markdown(data, figs, compact=args.compact,
                                          figures_rel=os.path.relpath(fig_root / fig_dir)))
         print(f"report: {html}", file=sys.stderr)
+        _json(args, data, html, None, fig_root / fig_dir)
         return 0
     import os
 
@@ -85,4 +101,16 @@ def _main(args) -> int:
 
         print(verdict(data)["headline"])
     print(f"reports: {html}\n         {md}\nfigures: {fig_root / fig_dir}")
+    _json(args, data, html, md, fig_root / fig_dir)
     return 0
+
+
+def _json(args, data, html, md, figures) -> None:
+    """The ``--json`` document of `report`: the files written and the headline."""
+    if not (args.json or args.json_out):
+        return
+    from benchharness.commands.options import dumps, emit_json
+    from benchharness.report.story import verdict
+
+    emit_json(args, dumps({"html": str(html), "markdown": None if md is None else str(md),
+                           "figures": str(figures), "headline": verdict(data)["headline"]}))

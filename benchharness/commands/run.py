@@ -23,27 +23,44 @@ EXIT_STOPPED_EARLY = 5    # the first runs of every cell failed the same way
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser("run", help="run an experiment file into a results folder",
                        description="Plan the experiment, run every planned run in order while "
-                                   "measuring it, and write a results folder.")
-    p.add_argument("file", nargs="?", help="experiment file (YAML)")
-    p.add_argument("--out", metavar="DIR", help="results folder to create (default: "
+                                   "measuring it, and write a results folder. Exit 0: every "
+                                   f"timed run ended ok, {EXIT_RUNS_FAILED}: some failed or "
+                                   f"timed out, {EXIT_STOPPED_EARLY}: stopped early (the first "
+                                   "runs of every cell failed the same way), 2: bad input, "
+                                   "75: the disk is full, 130: Ctrl-C.",
+                       epilog=O.examples(
+                           "benchharness run experiments/archive-codecs.yaml  # run the demo "
+                           "experiment, analyse it and write the reports",
+                           "benchharness run experiments/archive-codecs.yaml --out "
+                           "results/codecs-try --budget 20m  # stop after the last complete "
+                           "replicate that fits in 20 minutes",
+                           "benchharness run --resume results/codecs-try  # continue an "
+                           "interrupted results folder"))
+    p.add_argument("file", nargs="?", metavar="FILE", help="experiment file (YAML)")
+    p.add_argument("--out", metavar="DIR", type=O.out_file("--out"),
+                   help="results folder to create (default: "
                    "results/<experiment>-<UTC timestamp>); must not exist or be empty")
-    p.add_argument("--seed", type=int, default=None, help="override the file's seed")
-    p.add_argument("--resume", metavar="DIR", help="continue an interrupted results folder")
+    p.add_argument("--seed", type=int, default=None, metavar="N",
+                   help="override the file's seed")
+    p.add_argument("--resume", metavar="FOLDER", help="continue an interrupted results folder")
     p.add_argument("--scheduler", metavar="ADDRESS",
                    help="run on a Dask cluster (tcp://HOST:PORT); hosts become blocks")
     p.add_argument("--same-host-ok", action="store_true",
                    help="several workers on one host are intended (each counts as a host)")
-    p.add_argument("--budget", metavar="DURATION",
+    p.add_argument("--budget", metavar="DURATION", type=O.duration,
                    help="time budget (e.g. 30m, 2h): stop at the end of the last complete "
                         "replicate that fits")
-    p.add_argument("--pilot", metavar="RESULTS",
-                   help="earlier results folder whose run times estimate the first replicate "
-                        "for --budget")
-    p.add_argument("--history", metavar="DB",
+    p.add_argument("--pilot", metavar="SOURCE",
+                   help="earlier results folder (or tidy CSV) whose run times estimate the "
+                        "first replicate for --budget")
+    p.add_argument("--history-db", metavar="FILE", type=O.out_file("--history-db"),
                    help="add the results to this history database (SQLite) when done; the "
                         "commit is read from git")
+    O.alias(p, "--history", "--history-db FILE", "history_db", metavar="FILE")
     p.add_argument("--allow-failures", action="store_true",
                    help=f"exit 0 even when timed runs failed or timed out (otherwise exit "
                         f"{EXIT_RUNS_FAILED})")
@@ -53,6 +70,7 @@ def add_parser(sub) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress display")
     p.add_argument("--no-analysis", action="store_true",
                    help="skip the analysis and reports at the end")
+    O.add_json(p, "what the run recorded (folder, counts, exit code, reports)")
     p.set_defaults(func=main)
 
 
@@ -99,31 +117,44 @@ def main(args) -> int:
                                         same_host_ok=args.same_host_ok, budget_s=budget_s,
                                         estimate_s=estimate_s, early_stop=not args.keep_going)
     for note in outcome.notes:
-        print(note)
+        print(f"note: {note}", file=sys.stderr)
     code = finish(outcome, analysis=not args.no_analysis,
                   allow_failures=args.allow_failures)
-    if code == 0 and args.history:
+    added = None
+    if code == 0 and args.history_db:
         from benchharness.history import add_results
 
-        n = add_results(args.history, outcome.folder)
-        print(f"history: {n} cell rows added to {args.history}")
+        added = add_results(args.history_db, outcome.folder)
+        print(f"history: {added} cell rows added to {args.history_db}")
+    if args.json or args.json_out:
+        from benchharness.commands.options import dumps, emit_json
+
+        emit_json(args, dumps(run_json(outcome, code, added, args.history_db)))
     return code
+
+
+def run_json(outcome, code: int, added, db) -> dict:
+    """The ``--json`` document of `run`: where the results are and what happened."""
+    folder = outcome.folder
+    files = {name: str(folder / name) for name in ("analysis.json", "report.html", "report.md")
+             if (folder / name).exists()}
+    return {"results_folder": str(folder), "seed": outcome.seed, "planned_runs": outcome.planned,
+            "counts": dict(outcome.counts), "interrupted": bool(outcome.interrupted),
+            "stopped_early": outcome.stopped_early, "exit_code": code, "files": files,
+            "notes": [str(n) for n in outcome.notes],
+            "history": None if db is None else {"db": str(db), "cell_rows_added": added}}
 
 
 def _budget(args, exp):
     """(budget in seconds or None, pilot estimate of one replicate in seconds or None)."""
     from benchharness.errors import UsageError
-    from benchharness.experiment.yamlnodes import parse_duration_s
 
     if args.budget is None:
         if args.pilot:
             raise UsageError("--pilot on `run` only serves --budget; give --budget too "
                              "(or use `benchharness plan FILE --pilot RESULTS`)")
         return None, None
-    budget_s = parse_duration_s(args.budget)
-    if budget_s is None or budget_s <= 0:
-        raise UsageError(f"--budget {args.budget!r} is not a duration; write e.g. 30m, 2h, "
-                         f"1h30m or 90s")
+    budget_s = args.budget
     estimate_s = None
     if args.pilot:
         from benchharness.design import build_plan

@@ -4,44 +4,47 @@ from __future__ import annotations
 
 import json
 import os
-import sys
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser(
         "size", help="replicates per cell needed to detect a given ratio",
         description="Replicates per cell so that the ANOVA detects, with the given power, a "
                     "ratio of --detect between two levels of any factor (noncentral F; see "
-                    "docs/design.md).")
-    p.add_argument("--detect", required=True, metavar="PCT",
-                   help="smallest ratio between two levels that must be found, e.g. 3%%")
+                    "docs/design.md).",
+        epilog=O.examples(
+            "benchharness size --detect 3% --noise-cv 2% --levels 3,3,2  # replicates to find "
+            "a 1.03x ratio in a 3x3x2 design",
+            "benchharness size --detect 1.05x --pilot results/example-archive-codecs  # noise, "
+            "factors and run times from an earlier run",
+            "benchharness size --detect 3% --noise-cv 2% --levels experiments/archive-codecs.yaml "
+            "--json  # the answer as one JSON document"))
+    p.add_argument("--detect", required=True, metavar="RATIO", type=O.ratio("--detect"),
+                   help="smallest ratio between two levels that must be found: 3%% or 1.03x")
     noise = p.add_mutually_exclusive_group()
-    noise.add_argument("--noise-cv", metavar="PCT",
+    noise.add_argument("--noise-cv", metavar="PCT", type=O.percent(0.0, 1.0, low_open=True),
                        help="run-to-run coefficient of variation of the response, e.g. 2%%")
-    noise.add_argument("--pilot", metavar="RESULTS",
+    noise.add_argument("--pilot", metavar="SOURCE",
                        help="earlier results folder (or tidy CSV): noise and run times from it")
     p.add_argument("--levels", metavar="LIST|FILE",
                    help="levels per factor, e.g. 3,2,4, or an experiment file "
                         "(default: the pilot's experiment)")
-    p.add_argument("--alpha", type=float, default=0.05, help="false-alarm rate (default 0.05)")
-    p.add_argument("--power", type=float, default=0.9, help="wanted power (default 0.9)")
+    p.add_argument("--confidence", type=O.confidence, default=0.95, metavar="PCT",
+                   help="the tests are made at 100%% minus this, their false-alarm rate "
+                        "(default 95%%: 5%%)")
+    O.alias(p, "--alpha", "--confidence 95% (for --alpha 0.05)", "confidence",
+            convert=lambda t: 1.0 - O.percent(0.0, 1.0, low_open=True)(t))
+    p.add_argument("--power", type=O.percent(0.0, 1.0, low_open=True), default=0.9,
+                   metavar="PCT", help="wanted power (default 90%%)")
     p.add_argument("--for", dest="target", choices=("anova", "pairwise"), default="anova",
                    help="size the main-effect F tests (default) or the Holm-adjusted pairwise "
                         "comparisons between levels (needs more)")
-    p.add_argument("--response", default="wall_s",
+    p.add_argument("--response", default="wall_s", metavar="NAME",
                    help="response column of the pilot (default wall_s)")
-    p.add_argument("--json", action="store_true", help="print the answer as JSON")
+    O.add_json(p, "the answer")
     p.set_defaults(func=main)
-
-
-def _percent(text: str, what: str) -> float:
-    from benchharness.errors import UsageError
-    from benchharness.experiment.yamlnodes import parse_percent
-
-    v = parse_percent(text)
-    if v is None or v <= 0:
-        raise UsageError(f"{what} {text!r} is not a positive percentage; write e.g. 3%")
-    return v
 
 
 def _factors_from_levels(text: str):
@@ -78,7 +81,7 @@ def main(args) -> int:
     from benchharness.design import budget, sizing
     from benchharness.errors import UsageError
 
-    detect = _percent(args.detect, "--detect")
+    detect = args.detect - 1.0
     pilot_df = pilot_exp = None
     if args.pilot:
         from benchharness.results.source import load_table
@@ -105,7 +108,7 @@ def main(args) -> int:
         pilot_df, _ = load_table(args.pilot, factors=names)
     sigma_note = ""
     if args.noise_cv:
-        cv = _percent(args.noise_cv, "--noise-cv")
+        cv = args.noise_cv
         sigma = sizing.sigma_from_cv(cv)
         sigma_note = f"CV {cv * 100:g}% -> sd of ln({args.response}) {sigma:.4g}"
     elif pilot_df is not None:
@@ -117,7 +120,7 @@ def main(args) -> int:
                       f"{pn.cells} cells ({pn.df} df)")
     else:
         raise UsageError("say how noisy the runs are: --noise-cv 2% or --pilot RESULTS")
-    ans = sizing.size_design(factors, detect, sigma, alpha=args.alpha, power=args.power,
+    ans = sizing.size_design(factors, detect, sigma, alpha=1.0 - args.confidence, power=args.power,
                              method=args.target, cells=cells)
     out = ans.to_json_dict()
     out["noise"] = sigma_note
@@ -129,10 +132,12 @@ def main(args) -> int:
         warm = exp.warmup if exp is not None else 0
         if warm:
             out["expected_wall_s"] += per_run * warm * ans.cells
-    if args.json:
-        json.dump(out, sys.stdout, indent=1)
-        sys.stdout.write("\n")
-        return 0
+    if args.json or args.json_out:
+        from benchharness.commands.options import emit_json, wants_json_only
+
+        emit_json(args, json.dumps(out, indent=1))
+        if wants_json_only(args):
+            return 0
     print(format_answer(ans, out))
     return 0
 

@@ -6,16 +6,26 @@ import json
 
 
 def add_parser(sub) -> None:
+    from benchharness.commands import options as O
+
     p = sub.add_parser("steady", help="warm-up classes and executions x iterations advice",
                        description="For an experiment with a `samples:` section: per cell, how "
                                    "the runs warmed up, the steady-state time, the variance "
                                    "between runs and between iterations, and how many runs x "
-                                   "iterations reach a target precision at least cost.")
-    p.add_argument("folder", help="results folder")
+                                   "iterations reach a target precision at least cost.",
+                       epilog=O.examples(
+                           "benchharness run experiments/warm-cache.yaml --out results/warm  # "
+                           "an experiment with a samples: section",
+                           "benchharness steady results/warm  # warm-up and steady state per "
+                           "cell, and how many runs x iterations to use",
+                           "benchharness steady results/warm --target 0.5% --json  # aim "
+                           "tighter; the advice as one JSON document"))
+    p.add_argument("folder", metavar="FOLDER", help="results folder")
     p.add_argument("--target", default=None, metavar="PCT",
+                   type=O.percent(0.0, 1.0, low_open=True),
                    help="relative half-width of the 95%% confidence interval to aim at, e.g. "
                         "1%% (default: the experiment's samples: target, else 1%%)")
-    p.add_argument("--json", action="store_true", help="print the advice as JSON")
+    O.add_json(p, "the advice")
     p.set_defaults(func=main)
 
 
@@ -29,11 +39,10 @@ def main(args) -> int:
     from pathlib import Path
 
     from benchharness.results import journal as J
-    from benchharness.errors import DataError, UsageError
+    from benchharness.errors import DataError
     from benchharness.experiment.file import load_experiment
     from benchharness.measure.quality import quality_config
     from benchharness.measure.steady.samples import cell_advice, read_samples_records
-    from benchharness.experiment.yamlnodes import parse_percent
 
     folder = Path(args.folder)
     if not J.is_results_folder(folder):
@@ -45,18 +54,18 @@ def main(args) -> int:
                         "and a command that prints per-iteration times")
     target = cfg.target_rel_halfwidth if cfg else 0.01
     if args.target is not None:
-        t = parse_percent(args.target)
-        if t is None or not 0 < t < 1:
-            raise UsageError(f"--target {args.target!r}: give a percentage such as 1%")
-        target = t
+        target = args.target
     records = J.read_journal(folder / "runs.jsonl")
     samples = {k: v for k, v in read_samples_records(folder / "samples.jsonl").items()
                if not v.get("warmup")}
     cells = cell_advice(records, samples, exp.factor_names, target)
     from benchharness.numbers import plural
-    if args.json:
-        print(json.dumps({"target_rel_halfwidth": target, "cells": cells}, indent=1))
-        return 0
+    if args.json or args.json_out:
+        from benchharness.commands.options import emit_json, wants_json_only
+
+        emit_json(args, json.dumps({"target_rel_halfwidth": target, "cells": cells}, indent=1))
+        if wants_json_only(args):
+            return 0
     print(f"{exp.name}: steady state per cell (aim: 95% interval within ±{target:.1%} of the "
           "mean)\n")
     for c in cells:

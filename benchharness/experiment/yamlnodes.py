@@ -20,6 +20,8 @@ from typing import Any, Iterable
 import yaml
 
 from benchharness.errors import ExperimentError
+from benchharness.values import ValueFormError, parse_duration, parse_ratio
+from benchharness.values import parse_percent as _parse_percent
 
 _STD_TAGS = {
     "tag:yaml.org,2002:str", "tag:yaml.org,2002:int", "tag:yaml.org,2002:float",
@@ -165,29 +167,14 @@ def as_bool(node: yaml.Node, what: str) -> bool:
     raise node_error(node, f"{what} must be true or false, not {text!r}")
 
 
-_DURATION = re.compile(r"^\s*(\d+(?:\.\d+)?|\.\d+)\s*(ms|s|m|h)?\s*$")
-_DURATION_PART = re.compile(r"\s*(\d+(?:\.\d+)?|\.\d+)\s*(ms|h|m|s)")
-_UNIT_S = {"ms": 0.001, "s": 1.0, "m": 60.0, "h": 3600.0, None: 1.0}
-_UNIT_RANK = {"h": 0, "m": 1, "s": 2, "ms": 3}
-
-
 def parse_duration_s(text: str) -> float | None:
-    """``"90s"`` → 90.0, ``"5m"`` → 300.0, ``"250ms"`` → 0.25, ``"2"`` → 2.0,
-    ``"1h30m"`` → 5400.0, ``"2m 30s"`` → 150.0 (units from largest to smallest, each
-    once); None if malformed."""
-    m = _DURATION.match(text)
-    if m:
-        return float(m.group(1)) * _UNIT_S[m.group(2)]
-    t = text.strip()
-    total, pos, rank = 0.0, 0, -1
-    while pos < len(t):
-        part = _DURATION_PART.match(t, pos)
-        if part is None or _UNIT_RANK[part.group(2)] <= rank:
-            return None
-        rank = _UNIT_RANK[part.group(2)]
-        total += float(part.group(1)) * _UNIT_S[part.group(2)]
-        pos = part.end()
-    return total if rank >= 0 else None
+    """Seconds of ``"90s"``, ``"5m"``, ``"250ms"``, ``"1h30m"``, ``"2m 30s"`` (the one
+    duration reading, `benchharness.values.parse_duration`: units required); None if
+    malformed."""
+    try:
+        return parse_duration(text)
+    except ValueFormError:
+        return None
 
 
 #: Longest duration a file may give (24 days): waits are counted in milliseconds in a
@@ -197,10 +184,13 @@ MAX_DURATION_S = 24 * 86400.0
 
 def as_duration_s(node: yaml.Node, what: str) -> float:
     text = scalar_text(node, what)
-    value = parse_duration_s(text)
-    if value is None or value <= 0:
-        raise node_error(node, f"{what} {text!r} is not a duration; write a positive number "
-                               "with a unit, like 90s, 5m, 1h30m or 250ms")
+    try:
+        value = parse_duration(text)
+    except ValueFormError as exc:
+        raise node_error(node, f"{what}: {exc}") from None
+    if value <= 0:
+        raise node_error(node, f"{what} {text!r} is not a positive duration; write e.g. 90s, "
+                               "5m, 1h30m or 250ms")
     if value > MAX_DURATION_S:
         raise node_error(node, f"{what} {text!r} is longer than the harness can wait (at most "
                                f"24 days, {MAX_DURATION_S / 3600:g}h); give a shorter one, or "
@@ -209,24 +199,36 @@ def as_duration_s(node: yaml.Node, what: str) -> float:
 
 
 def parse_percent(text: str) -> float | None:
-    """``"5%"`` → 0.05; a bare number below 1 is a fraction (``0.05``); None if malformed."""
-    t = text.strip()
+    """``"5%"`` -> 0.05 and ``"0.05"`` -> 0.05 (the one percentage reading,
+    `benchharness.values.parse_percent`: a bare number >= 1 is refused); None if
+    malformed."""
     try:
-        if t.endswith("%"):
-            return float(t[:-1]) / 100.0
-        v = float(t)
-    except ValueError:
+        return _parse_percent(text)
+    except ValueFormError:
         return None
-    return v if v < 1 else v / 100.0
 
 
 def as_percent(node: yaml.Node, what: str) -> float:
     text = scalar_text(node, what)
-    value = parse_percent(text)
-    if value is None or value < 0:
-        raise node_error(node, f"{what} must be a percentage like 5% (or a fraction like 0.05), "
-                               f"not {text!r}")
+    try:
+        value = _parse_percent(text)
+    except ValueFormError as exc:
+        raise node_error(node, f"{what}: {exc}") from None
+    if value < 0:
+        raise node_error(node, f"{what} must be a percentage of at least 0%, like 5% (or the "
+                               f"fraction 0.05), not {text!r}")
     return value
+
+
+def as_ratio(node: yaml.Node, what: str) -> float:
+    """A ratio (``1.05``, ``1.05x`` or ``5%`` meaning 1.05), `benchharness.values.parse_ratio`."""
+    text = scalar_text(node, what)
+    mark = node.start_mark
+    where = f"{mark.name}:{mark.line + 1}:{mark.column + 1}: " if mark is not None else ""
+    try:
+        return parse_ratio(text, what=f"{where}{what}")
+    except ValueFormError as exc:
+        raise node_error(node, f"{what}: {exc}") from None
 
 
 def as_str(node: yaml.Node, what: str) -> str:

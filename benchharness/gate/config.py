@@ -16,8 +16,13 @@ from typing import Mapping
 from benchharness.errors import ExperimentError, UsageError
 from benchharness.gate.decide import GateSettings
 
-GATE_KEYS = ("factor", "baseline", "candidate", "tolerance", "confidence", "max_runs",
-             "min_runs", "response", "direction", "inconclusive")
+GATE_KEYS = ("factor", "baseline", "candidate", "tolerance", "confidence", "max_pairs",
+             "first_look_pairs", "response", "better", "inconclusive",
+             # spellings that shipped, still read with a deprecation note (docs/cli.md)
+             "max_runs", "min_runs", "direction")
+
+#: old key -> the one spelling now (docs/cli.md)
+GATE_OLD_KEYS = {"max_runs": "max_pairs", "min_runs": "first_look_pairs", "direction": "better"}
 
 
 @dataclass(frozen=True)
@@ -46,6 +51,7 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
         raise ExperimentError("the experiment file has no 'gate:' section; add e.g. "
                               "gate: {factor: build, baseline: old}", path=str(exp.path))
     items = Y.expect_mapping(node, "'gate'", GATE_KEYS, required=("factor", "baseline"))
+    items = _new_keys(items)
     factor, baseline, candidate = _builds(exp, items)
     kw = _decision_settings(items)
     response = Y.scalar_text(items["response"], "'gate: response'") \
@@ -59,7 +65,7 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
         (overrides or {}).get("response") is not None else items.get("response")
     _check_response(exp, response, response_node)
     _check_ratio_scale(exp, response, response_node)
-    if "direction" not in items and "higher_is_better" not in o:
+    if "better" not in items and "higher_is_better" not in o:
         # a custom metric knows its direction (metrics: NAME: {better: higher})
         if _metric_better(exp, response) == "higher":
             kw["higher_is_better"] = True
@@ -69,6 +75,27 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
     settings = _settings(node, items, kw, o)
     return GateConfig(factor=factor, baseline=baseline, candidate=candidate,
                       settings=settings, response=response, inconclusive=inconclusive)
+
+
+def _new_keys(items: dict) -> dict:
+    """The gate keys under their one spelling; an old key gets a located deprecation note
+    (and both spellings of one key together are refused)."""
+    from benchharness.experiment import yamlnodes as Y
+    from benchharness.values import deprecated
+
+    out = dict(items)
+    for old, new in GATE_OLD_KEYS.items():
+        if old not in out:
+            continue
+        node = out.pop(old)
+        if new in out:
+            raise Y.node_error(node, f"'gate: {old}' and 'gate: {new}' are one setting; keep "
+                               f"only '{new}'")
+        mark = node.start_mark
+        where = f"{mark.name}:{mark.line + 1}:{mark.column + 1}: " if mark is not None else ""
+        deprecated(f"{where}'gate: {old}' is deprecated; write '{new}'")
+        out[new] = node
+    return out
 
 
 def _builds(exp, items) -> tuple[str, str, str]:
@@ -103,7 +130,7 @@ def _decision_settings(items) -> dict:
 
     kw: dict = {}
     if "tolerance" in items:
-        kw["tolerance"] = Y.as_percent(items["tolerance"], "'gate: tolerance'")
+        kw["tolerance"] = Y.as_ratio(items["tolerance"], "'gate: tolerance'") - 1.0
         if not 0 < kw["tolerance"] < 1:
             raise Y.node_error(items["tolerance"], "'gate: tolerance' must be above 0% and "
                                "below 100%, e.g. 5%")
@@ -113,14 +140,15 @@ def _decision_settings(items) -> dict:
             raise Y.node_error(items["confidence"], "'gate: confidence' must be between 0.5 "
                                "and 1, e.g. 0.95")
         kw["confidence"] = c
-    if "max_runs" in items:
-        kw["max_runs"] = Y.as_int(items["max_runs"], "'gate: max_runs'", minimum=2)
-    if "min_runs" in items:
-        kw["min_runs"] = Y.as_int(items["min_runs"], "'gate: min_runs'", minimum=2)
-    if "direction" in items:
-        d = Y.scalar_text(items["direction"], "'gate: direction'")
+    if "max_pairs" in items:
+        kw["max_runs"] = Y.as_int(items["max_pairs"], "'gate: max_pairs'", minimum=2)
+    if "first_look_pairs" in items:
+        kw["min_runs"] = Y.as_int(items["first_look_pairs"], "'gate: first_look_pairs'",
+                                  minimum=2)
+    if "better" in items:
+        d = Y.scalar_text(items["better"], "'gate: better'")
         if d not in ("lower", "higher"):
-            raise Y.node_error(items["direction"], "'gate: direction' must be lower (times: "
+            raise Y.node_error(items["better"], "'gate: better' must be lower (times: "
                                "lower is better) or higher (throughput: higher is better)")
         kw["higher_is_better"] = d == "higher"
     return kw
@@ -144,10 +172,11 @@ def _settings(node, items, kw: dict, o: Mapping) -> GateSettings:
 
     if kw.get("min_runs", 6) > kw.get("max_runs", 100):
         if "min_runs" in o or "max_runs" in o:  # a command-line value: no file line to name
-            raise UsageError(f"--min-runs ({kw.get('min_runs', 6)}) must not exceed "
-                             f"--max-runs ({kw.get('max_runs', 100)})")
-        where = items.get("min_runs") or items.get("max_runs") or node
-        raise Y.node_error(where, "'gate: min_runs' must not exceed 'gate: max_runs'")
+            raise UsageError(f"--first-look-pairs ({kw.get('min_runs', 6)}) must not exceed "
+                             f"--max-pairs ({kw.get('max_runs', 100)})")
+        where = items.get("first_look_pairs") or items.get("max_pairs") or node
+        raise Y.node_error(where, "'gate: first_look_pairs' must not exceed "
+                           "'gate: max_pairs'")
     try:
         return GateSettings(**kw)
     except ValueError as exc:
