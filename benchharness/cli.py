@@ -209,8 +209,11 @@ def main(argv: list[str] | None = None) -> int:
             from benchharness.commands import options
 
             options.json_stream = sys.stdout
-            with contextlib.redirect_stdout(sys.stderr):
-                return int(args.func(args) or 0)
+            try:
+                with contextlib.redirect_stdout(sys.stderr):
+                    return int(args.func(args) or 0)
+            finally:
+                options.json_stream = None
         return int(args.func(args) or 0)
     except BenchharnessError as exc:
         print(f"benchharness: {exc}", file=sys.stderr)

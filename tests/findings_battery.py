@@ -225,7 +225,7 @@ def run_analyze(csv, args, json_path) -> tuple[int, str, dict]:
 
     out, err = io.StringIO(), io.StringIO()
     with redirect_stdout(out), redirect_stderr(err):
-        code = main(["analyze", str(csv), *args, "--json", str(json_path)])
+        code = main(["analyze", str(csv), *args, "--json-out", str(json_path)])
     if code != 0:
         raise AssertionError(f"exit {code}: {err.getvalue()}")
     return code, out.getvalue(), json.loads(json_path.read_text())

@@ -78,7 +78,7 @@ def test_cli_analyze_csv_and_json(cli, tmp_path):
     p = _csv(tmp_path)
     out = tmp_path / "a.json"
     r = cli("analyze", p, "--response", "life_h", "--factors", "material,temperature",
-            "--transform", "none", "--json", out, "--reference", "temperature=70")
+            "--transform", "none", "--json-out", out, "--reference", "temperature=70")
     assert r.returncode == 0, r.stderr
     assert "Sum of squares" in r.stdout and "material:temperature" in r.stdout
     d = json.loads(out.read_text())
@@ -87,7 +87,7 @@ def test_cli_analyze_csv_and_json(cli, tmp_path):
     assert ss["material"] == pytest.approx(10683.72, abs=0.01)
     assert d["model"]["references"]["temperature"] == "70"
     r = cli("analyze", p, "--response", "life_h", "--factors", "material,temperature",
-            "--json", "-", "--ss-type", "3", "--model", "main")
+            "--json", "--ss-type", "3", "--model", "main")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert [x["term"] for x in d["anova"]] == ["material", "temperature", "Residual"]
@@ -185,7 +185,7 @@ def test_cli_hostile_factor_names(cli, tmp_path):
                       "wall_s": rng.lognormal(0, 0.1, 24)})
     p = tmp_path / "hostile.csv"
     d.to_csv(p, index=False)
-    r = cli("analyze", p, "--factors", ",".join(names), "--json", "-")
+    r = cli("analyze", p, "--factors", ",".join(names), "--json")
     assert r.returncode == 0, r.stderr
     out = json.loads(r.stdout)
     assert [f["levels"] for f in out["factors"]][0] == ["1", "1.0"]
@@ -233,13 +233,13 @@ def test_cli_awkward_inputs_one_line_or_a_result(cli, tmp_path):
     assert "'fast'" in r.stderr and "--response" in r.stderr
     p = _csv(tmp_path)
     r = cli("analyze", p, "--response", "life_h", "--factors", "material",
-            "--json", tmp_path / "no" / "such" / "dir" / "a.json")
+            "--json-out", tmp_path / "no" / "such" / "dir" / "a.json")
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
     assert "cannot write" in r.stderr
     # two runs of one level: one residual degree of freedom, too few to look for outliers
     tiny = tmp_path / "tiny.csv"
     tiny.write_text("a,wall_s\nx,1\nx,2\n")
-    r = cli("analyze", tiny, "--factors", "a", "--json", "-")
+    r = cli("analyze", tiny, "--factors", "a", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["anova"][-1]["df"] == 1

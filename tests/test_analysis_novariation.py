@@ -41,7 +41,7 @@ def test_constant_response_with_round_off_is_one_finding_and_no_test(tmp_path):
     d.to_csv(csv, index=False)
     out = tmp_path / "a.json"
     res = subprocess.run([sys.executable, "-m", "benchharness", "analyze", str(csv),
-                          "--factors", "A,B", "--json", str(out)], cwd=ROOT,
+                          "--factors", "A,B", "--json-out", str(out)], cwd=ROOT,
                          capture_output=True, text=True, timeout=120)
     assert res.returncode == 0, res.stderr
     assert "Every run gave the same wall_s" in res.stdout

@@ -279,9 +279,9 @@ def test_cross_check_can_be_switched_off_from_the_command_line(tmp_path, cli):
                       "wall_s": rng.standard_cauchy(24) ** 2 + 1.0})
     src = tmp_path / "t.csv"
     d.to_csv(src, index=False)
-    on = cli("analyze", str(src), "--factors", "a", "--art", "--json", "-")
+    on = cli("analyze", str(src), "--factors", "a", "--art", "--json")
     assert on.returncode == 0 and json.loads(on.stdout)["art"] is not None
-    off = cli("analyze", str(src), "--factors", "a", "--no-cross-check", "--json", "-")
+    off = cli("analyze", str(src), "--factors", "a", "--no-cross-check", "--json")
     assert off.returncode == 0 and json.loads(off.stdout)["art"] is None
     both = cli("analyze", str(src), "--factors", "a", "--art", "--no-cross-check")
     assert both.returncode == 2 and "not allowed with" in both.stderr

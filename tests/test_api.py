@@ -90,7 +90,7 @@ def test_run_adds_to_history_database(tmp_path, cli):
     subprocess.run(["git", "-c", "user.name=t", "-c", "user.email=t@t", "commit", "-qm", "x"],
                    cwd=tmp_path, check=True)
     db = tmp_path / "h.sqlite"
-    r = cli("run", p, "--out", tmp_path / "res", "--no-analysis", "--history", db,
+    r = cli("run", p, "--out", tmp_path / "res", "--no-analysis", "--history-db", db,
             cwd=tmp_path)
     assert r.returncode == 0, r.stderr
     assert "history: 2 cell rows added" in r.stdout
@@ -108,8 +108,8 @@ def test_gate_records_the_candidate_in_history(tmp_path, cli):
     subprocess.run(["git", "-c", "user.name=t", "-c", "user.email=t@t", "commit", "-qm", "x"],
                    cwd=tmp_path, check=True)
     db = tmp_path / "h.sqlite"
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-runs", "8",
-            "--out", tmp_path / "g", "--history", db, cwd=tmp_path)
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "8",
+            "--out", tmp_path / "g", "--history-db", db, cwd=tmp_path)
     assert r.returncode in (0, 3), r.stderr
     assert "history: 1 cell rows of the candidate added" in r.stdout
     with sqlite3.connect(db) as con:

@@ -63,7 +63,7 @@ def folder(tmp_path):
 
 def test_json_keys_and_planted_answer_from_a_results_folder(cli, folder, tmp_path):
     target = tmp_path / "choice.json"
-    r = cli("choose", folder, "--json", target)
+    r = cli("choose", folder, "--json-out", target)
     assert r.returncode == 0, r.stderr
     d = json.loads(target.read_text())
     for key in ("best", "tied", "robust", "on_average", "pareto", "candidates", "reasons"):
@@ -85,7 +85,7 @@ def test_json_keys_and_planted_answer_from_a_results_folder(cli, folder, tmp_pat
 
 
 def test_command_line_overrides_the_section(cli, folder):
-    r = cli("choose", folder, "--across", "", "--also", "", "--json", "-")
+    r = cli("choose", folder, "--across", "", "--also", "", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     # an empty value switches the section's across/also off: disk is then a
@@ -93,7 +93,7 @@ def test_command_line_overrides_the_section(cli, folder):
     assert d["across"] == [] and "pareto" not in d
     assert d["factors"] == ["threads", "disk"]
     assert d["best"] == {"threads": "16", "disk": "nvme"}
-    r = cli("choose", folder, "--confidence", "0.9", "--response", "max_rss_kib", "--json", "-")
+    r = cli("choose", folder, "--confidence", "0.9", "--response", "max_rss_kib", "--json")
     d = json.loads(r.stdout)
     assert d["response"] == "max_rss_kib" and d["confidence"] == 0.9
     assert d["best"] == {"threads": "4"}
@@ -105,16 +105,16 @@ def test_csv_source_needs_factors_and_names_them(cli, tmp_path):
             for c, mu in [("zlib", 1.0), ("lzma", 1.5), ("bz2", 1.004)] for _ in range(6)]
     csv = tmp_path / "runs.csv"
     pd.DataFrame(rows).to_csv(csv, index=False)
-    r = cli("choose", csv, "--json", "-")
+    r = cli("choose", csv, "--json")
     assert r.returncode == 2 and "--factors" in r.stderr and "Traceback" not in r.stderr
-    r = cli("choose", csv, "--factors", "codec", "--json", "-")
+    r = cli("choose", csv, "--factors", "codec", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["tied"] == [{"codec": "zlib"}, {"codec": "bz2"}]
     # no default declared: the tie goes to the better estimate, not the first listed
     means = {c["setting"]["codec"]: c["mean"] for c in d["candidates"]}
     assert d["best"] == {"codec": min(("zlib", "bz2"), key=means.get)}
-    r = cli("choose", csv, "--factors", "codec", "--prefer", "codec=bz2", "--json", "-")
+    r = cli("choose", csv, "--factors", "codec", "--prefer", "codec=bz2", "--json")
     assert json.loads(r.stdout)["best"] == {"codec": "bz2"}
 
 
@@ -122,7 +122,8 @@ def test_bad_input_exits_2_with_one_line(cli, folder, tmp_path):
     for args, needle in [
         (("--prefer", "threads"), "FACTOR=LEVEL"),
         (("--prefer", "threads=3"), "not a level"),
-        (("--confidence", "1.5"), "between 0 and 1"),
+        (("--confidence", "1.5"), "did you mean 1.5%?"),
+        (("--confidence", "100%"), "below 100%"),
         (("--response", "nope_s"), "nope_s"),
     ]:
         r = cli("choose", folder, *args)
@@ -189,7 +190,8 @@ def test_direction_comes_from_the_metrics_section(tmp_path):
 @pytest.mark.parametrize("section,needle", [
     ("choose:\n  prefer: {threads: 5}\n", "'5' is not a level of threads"),
     ("choose:\n  prefer: {thread: 4}\n", "did you mean 'threads'"),
-    ("choose:\n  across: disk\n  confidence: 2\n", "between 0 and 1"),
+    ("choose:\n  across: disk\n  confidence: 2\n", "did you mean 2%?"),
+    ("choose:\n  across: disk\n  confidence: 100%\n", "below 100%"),
     ("choose:\n  also: {a: 1}\n", "must be a list"),
     ("choose: [threads]\n", "must be a mapping"),
     ("choose:\n  across: [dsk]\n", "'dsk' is not a column of the runs"),

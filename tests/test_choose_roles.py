@@ -39,7 +39,7 @@ def _kernel_csv(path, seed=1):
 def test_an_input_size_is_never_recommended_and_the_reason_is_given(cli, tmp_path):
     csv = _kernel_csv(tmp_path / "kernel.csv")
     r = cli("choose", csv, "--factors", "opt,arch,n", "--response", "ns_per_item",
-            "--json", "-")
+            "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["best"] == {"opt": "3", "arch": "native"}      # no n in the recommendation
@@ -76,10 +76,10 @@ def test_a_workload_named_on_the_command_line_is_held_as_a_condition(cli, tmp_pa
             for p in ["4", "8"] for k in ["ssd", "hdd"] for _ in range(4)]
     csv = tmp_path / "pool.csv"
     pd.DataFrame(rows).to_csv(csv, index=False)
-    guessed = json.loads(cli("choose", csv, "--factors", "pool,disk", "--json", "-").stdout)
+    guessed = json.loads(cli("choose", csv, "--factors", "pool,disk", "--json").stdout)
     assert guessed["factors"] == ["pool", "disk"]            # nothing looks like an input
     assert guessed["reasons"][0].startswith("No roles are declared: pool, disk treated as settings")
-    r = cli("choose", csv, "--factors", "pool,disk", "--environment", "disk", "--json", "-")
+    r = cli("choose", csv, "--factors", "pool,disk", "--environment", "disk", "--json")
     d = json.loads(r.stdout)
     assert d["factors"] == ["pool"] and d["across"] == ["disk"] and d["best"] == {"pool": "8"}
     assert d["roles"]["environment"] == ["disk"] and d["roles"]["declared"] is True
@@ -177,7 +177,7 @@ def test_declared_roles_reach_plan_the_folder_choose_and_analysis_json(cli, tmp_
     assert plan["roles"]["workload"] == ["logs"] and plan["roles"]["environment"] == ["box"]
     session = json.loads((declared_folder / "session.json").read_text())
     assert session["roles"]["setting"] == ["codec"] and session["roles"]["declared"]
-    d = json.loads(cli("choose", declared_folder, "--json", "-").stdout)
+    d = json.loads(cli("choose", declared_folder, "--json").stdout)
     assert d["factors"] == ["codec"] and d["across"] == ["logs", "box"]
     assert d["best"] == {"codec": "fast"}
     assert d["roles"]["source"] == "experiment file"

@@ -32,7 +32,7 @@ def _builds(seed=3, reps=4):
 def test_a_much_slower_setting_with_the_same_memory_is_off_the_front(cli, tmp_path):
     csv = tmp_path / "builds.csv"
     _builds().to_csv(csv, index=False)
-    r = cli("choose", csv, "--factors", "build", "--also", "max_rss_kib", "--json", "-")
+    r = cli("choose", csv, "--factors", "build", "--also", "max_rss_kib", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["within"] == pytest.approx(0.03)
@@ -44,7 +44,7 @@ def test_a_much_slower_setting_with_the_same_memory_is_off_the_front(cli, tmp_pa
     assert len(d["pareto"]) == 7
     # with no margin the old, lenient rule keeps everything (memory differences are noise)
     strict = json.loads(cli("choose", csv, "--factors", "build", "--also", "max_rss_kib",
-                            "--within", "0%", "--json", "-").stdout)
+                            "--within", "0%", "--json").stdout)
     assert {"build": "h"} in strict["pareto"] and len(strict["pareto"]) == 8
 
 
@@ -91,10 +91,10 @@ def _codecs(seed=11, reps=5):
 def test_fastest_whose_memory_is_within_5_percent_of_the_smallest(cli, tmp_path):
     csv = tmp_path / "codecs.csv"
     _codecs().to_csv(csv, index=False)
-    plain = json.loads(cli("choose", csv, "--factors", "codec", "--json", "-").stdout)
+    plain = json.loads(cli("choose", csv, "--factors", "codec", "--json").stdout)
     assert plain["best"] == {"codec": "turbo"}           # unconstrained: the fastest
     r = cli("choose", csv, "--factors", "codec", "--limit", "max_rss_kib within 5%",
-            "--json", "-")
+            "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["best"] == {"codec": "brisk"}

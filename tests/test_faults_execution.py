@@ -654,9 +654,9 @@ def test_an_output_file_on_a_full_disk_is_exit_75_and_leaves_no_half_file(
     full = tmp_path / "full"
     full.mkdir()
     _disk_full_under(monkeypatch, full)
-    target = {"analyze": ["--json", str(full / "a.json")],
+    target = {"analyze": ["--json-out", str(full / "a.json")],
               "report": ["--html", str(full / "r.html"), "--markdown", str(full / "r.md")],
-              "choose": ["--json", str(full / "c.json")]}[command]
+              "choose": ["--json-out", str(full / "c.json")]}[command]
     code = cli.main([command, str(src), "--factors", "a,b", "--response", "t", *target])
     err = capsys.readouterr().err
     assert code == DISK_FULL_EXIT, err

@@ -52,7 +52,7 @@ def test_crossover_headline_states_the_interaction_per_level(tmp_path):
     csv = tmp_path / "cross.csv"
     crossover_frame().to_csv(csv, index=False)
     out = tmp_path / "a.json"
-    r = run_cli("analyze", csv, "--factors", "A,B,C", "--transform", "log", "--json", out)
+    r = run_cli("analyze", csv, "--factors", "A,B,C", "--transform", "log", "--json-out", out)
     assert r.returncode == 0, r.stderr
     head = r.stdout.splitlines()[0]
     assert "A and B interact" in head
@@ -148,7 +148,7 @@ def test_higher_is_better_picks_the_largest(tmp_path):
     csv = tmp_path / "rate.csv"
     d.to_csv(csv, index=False)
     r = run_cli("analyze", csv, "--factors", "threads", "--response", "rate",
-                "--better", "higher", "--json", tmp_path / "a.json")
+                "--better", "higher", "--json-out", tmp_path / "a.json")
     assert r.returncode == 0, r.stderr
     found = json.loads((tmp_path / "a.json").read_text())["findings"]
     best = next(f for f in found if f["kind"] == "best")
@@ -167,7 +167,7 @@ def test_a_rate_named_per_s_is_not_read_as_seconds(tmp_path):
     csv = tmp_path / "ops.csv"
     d.to_csv(csv, index=False)
     r = run_cli("analyze", csv, "--factors", "batch", "--response", "ops_per_s",
-                "--better", "higher", "--json", tmp_path / "a.json")
+                "--better", "higher", "--json-out", tmp_path / "a.json")
     assert r.returncode == 0, r.stderr
     best = next(f for f in json.loads((tmp_path / "a.json").read_text())["findings"]
                 if f["kind"] == "best")

@@ -52,7 +52,7 @@ def run_folder(tmp_path, text, model, seed):
 
 
 def analysis_json(cli, source, *args):
-    r = cli("analyze", source, *args, "--json", "-")
+    r = cli("analyze", source, *args, "--json")
     assert r.returncode == 0, r.stderr
     return json.loads(r.stdout)
 

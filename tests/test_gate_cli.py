@@ -14,8 +14,8 @@ def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
     # coreutils sleep: process start-up (about a millisecond, common practice) stays small
     # next to the sleep, so the true ratio is close to 1.3
     r = cli("gate", "--baseline", "sleep 0.2", "--candidate", "sleep 0.26",
-            "--seed", "3", "--max-runs", "30", "--out", tmp_path / "res",
-            "--junit", junit, "--summary", summary, "--json", tmp_path / "g.json")
+            "--seed", "3", "--max-pairs", "30", "--out", tmp_path / "res",
+            "--junit", junit, "--summary", summary, "--json-out", tmp_path / "g.json")
     assert r.returncode == 1, r.stdout + r.stderr
     # one verdict word in all four outputs of this gate (docs/gate.md, "Verdict words")
     row = next(line for line in r.stdout.splitlines() if line.strip().startswith("all "))
@@ -46,7 +46,7 @@ def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
 def test_identical_commands_pass(cli, tmp_path):
     cmd = "sleep 0.05"
     r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "25%",
-            "--seed", "5", "--max-runs", "40", "--out", tmp_path / "res",
+            "--seed", "5", "--max-pairs", "40", "--out", tmp_path / "res",
             "--inconclusive", "fail")
     assert r.returncode == 0, r.stdout + r.stderr
     # the results folder is a normal one: the runs table loads
@@ -77,7 +77,7 @@ factors:
     new: {t: "0.06"}
   size: [small, large]
 warmup: 1
-gate: {factor: build, baseline: old, tolerance: 10%, max_runs: 20, min_runs: 4}
+gate: {factor: build, baseline: old, tolerance: 10%, max_pairs: 20, first_look_pairs: 4}
 """)
     junit = tmp_path / "j.xml"
     r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--junit", junit)
@@ -105,8 +105,8 @@ def test_usage_errors_exit_2(cli, tmp_path):
     assert r.returncode == 2 and "--candidate" in r.stderr
     r = cli("gate", "--baseline", "true", "--candidate", "true", "--tolerance", "abc")
     assert r.returncode == 2 and "tolerance" in r.stderr
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-runs", "3",
-            "--min-runs", "5")
+    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "3",
+            "--first-look-pairs", "5")
     assert r.returncode == 2 and "--min-runs (5) must not exceed --max-runs (3)" in r.stderr
     assert "<gate quick form>" not in r.stderr
 
@@ -116,7 +116,7 @@ def test_candidate_that_never_succeeds_stops_with_exit_5(cli, tmp_path, inconclu
     junit, js = tmp_path / "j.xml", tmp_path / "g.json"
     extra = ("--inconclusive", inconclusive) if inconclusive else ()
     r = cli("gate", "--baseline", "true", "--candidate", "exit 3", "--seed", "2",
-            "--out", tmp_path / "res", "--json", js, "--junit", junit, *extra)
+            "--out", tmp_path / "res", "--json-out", js, "--junit", junit, *extra)
     assert r.returncode == 5, r.stdout + r.stderr
     assert " broken " in r.stdout and "the candidate failed all 3 of its runs" in r.stdout
     assert "a build never ran successfully" in r.stdout
@@ -137,9 +137,9 @@ factors:
     new: {bin: "true"}
   size: [small, large]
 warmup: 1
-gate: {factor: build, baseline: old, tolerance: 10%, max_runs: 30}
+gate: {factor: build, baseline: old, tolerance: 10%, max_pairs: 30}
 """)
-    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--json", tmp_path / "g.json")
+    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--json-out", tmp_path / "g.json")
     assert r.returncode == 5, r.stdout + r.stderr
     assert "the baseline failed all 3 of its runs" in r.stdout
     data = json.loads((tmp_path / "g.json").read_text())
@@ -156,8 +156,8 @@ def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
     base = f"sh {script} {tmp_path / 'count-base'} 7"
     cand = f"sh {script} {tmp_path / 'count-cand'} 4"
     r = cli("gate", "--baseline", base, "--candidate", cand, "--tolerance", "30%",
-            "--seed", "4", "--max-runs", "40", "--out", tmp_path / "res",
-            "--json", tmp_path / "g.json")
+            "--seed", "4", "--max-pairs", "40", "--out", tmp_path / "res",
+            "--json-out", tmp_path / "g.json")
     data = json.loads((tmp_path / "g.json").read_text())
     w = data["workloads"][0]
     assert w["candidate_failures"] >= 1, data           # the planted failure happened
@@ -168,15 +168,15 @@ def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
 def test_stored_baseline_warns(cli, tmp_path):
     cmd = "sleep 0.02"
     r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "4",
-            "--max-runs", "10", "--out", tmp_path / "first")
+            "--max-pairs", "10", "--out", tmp_path / "first")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "5",
-            "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
+            "--max-pairs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert "earlier session" in r.stdout
     # only the candidate runs, so --baseline is not required with --against
     r = cli("gate", "--candidate", cmd, "--tolerance", "50%", "--seed", "6",
-            "--max-runs", "10", "--against", tmp_path / "first", "--out", tmp_path / "third")
+            "--max-pairs", "10", "--against", tmp_path / "first", "--out", tmp_path / "third")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert "earlier session" in r.stdout
     data = json.loads((tmp_path / "third" / "gate.json").read_text())
@@ -195,7 +195,7 @@ metrics:
   rate_ops:
     pattern: 'rate ([0-9.]+)'
     better: higher
-gate: {factor: build, baseline: old, response: RESPONSE, max_runs: 20}
+gate: {factor: build, baseline: old, response: RESPONSE, max_pairs: 20}
 """
 
 
@@ -215,7 +215,7 @@ def test_throughput_metric_from_metrics_section(cli, tmp_path):
     # nothing: the gate did not extract metrics at all and ended undecided.
     junit = tmp_path / "j.xml"
     r = cli("gate", _rate_gate(tmp_path, 700), "--seed", "1", "--out", tmp_path / "res",
-            "--junit", junit, "--json", tmp_path / "g.json")
+            "--junit", junit, "--json-out", tmp_path / "g.json")
     assert r.returncode == 1, r.stdout + r.stderr
     assert "higher is better" in r.stdout
     data = json.loads((tmp_path / "g.json").read_text())
@@ -233,11 +233,11 @@ def test_throughput_metric_from_metrics_section(cli, tmp_path):
     # each row says which build it measured
     assert {row["gate_role"] for row in rows} == {"baseline", "candidate"}
     # `analyze` on a gate folder analyses what the gate compared, unless told otherwise
-    an = cli("analyze", tmp_path / "res", "--json", "-")
+    an = cli("analyze", tmp_path / "res", "--json")
     assert an.returncode == 0, an.stderr
     assert json.loads(an.stdout)["response"] == "rate_ops"
     assert "the response this gate compared" in an.stderr
-    an = cli("analyze", tmp_path / "res", "--json", "-", "--response", "wall_s")
+    an = cli("analyze", tmp_path / "res", "--json", "--response", "wall_s")
     assert json.loads(an.stdout)["response"] == "wall_s"
     # `report` works on a gate folder
     rep = cli("report", tmp_path / "res")
@@ -247,7 +247,7 @@ def test_throughput_metric_from_metrics_section(cli, tmp_path):
 
 def test_throughput_metric_higher_candidate_passes(cli, tmp_path):
     r = cli("gate", _rate_gate(tmp_path, 1300), "--seed", "1", "--out", tmp_path / "res",
-            "--json", tmp_path / "g.json")
+            "--json-out", tmp_path / "g.json")
     assert r.returncode == 0, r.stdout + r.stderr
     data = json.loads((tmp_path / "g.json").read_text())
     # 30% more records per second: never a regression. The gate may stop as soon as a
@@ -276,7 +276,7 @@ def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
     codes = []
     for i, extra in enumerate([[], ["--inconclusive", "pass"], ["--inconclusive", "fail"]]):
         r = cli("gate", "--baseline", "false", "--candidate", "false",
-                "--min-runs", "2", "--max-runs", "2", "--seed", "7", "--warmup", "0",
+                "--first-look-pairs", "2", "--max-pairs", "2", "--seed", "7", "--warmup-runs", "0",
                 "--out", tmp_path / f"res{i}", "--summary", summary, *extra)
         assert " undecided " in r.stdout, r.stdout + r.stderr
         codes.append(r.returncode)
@@ -296,7 +296,7 @@ command: [sleep, "0.01"]
 factors:
   build: [0, 2]
 warmup: 1
-gate: {{factor: build, baseline: "0", tolerance: 50%, max_runs: 6, min_runs: 6}}
+gate: {{factor: build, baseline: "0", tolerance: 50%, max_pairs: 6, first_look_pairs: 6}}
 """)
     r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
     # the verdict on two equal sleeps is not the point here (a load spike may sway it)

@@ -40,14 +40,14 @@ def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, cli):
 
     for i, f in enumerate(folders[:-1]):       # the library call the CLI makes
         assert add_results(db, f, commit=f"c{i:02d}", branch="main", cwd=tmp_path) == 2
-    r = cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main", "--db", db)
+    r = cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main", "--history-db", db)
     assert r.returncode == 0, r.stderr
     assert "2 cell rows added" in r.stdout
-    r = cli("history", "add", *folders[:3], "--commit", "c00", "--db", db)
+    r = cli("history", "add", *folders[:3], "--commit", "c00", "--history-db", db)
     assert r.returncode == 2 and "already recorded as commit c01" in r.stderr
 
     out_json, out_html = tmp_path / "t.json", tmp_path / "t.html"
-    r = cli("history", "show", "--db", db, "--json", out_json, "--html", out_html,
+    r = cli("history", "show", "--history-db", db, "--json-out", out_json, "--html", out_html,
             "--fail-on-regression")
     assert r.returncode == 1, r.stderr          # the planted step is an open regression
     assert "regression: archive-codecs wall_s codec=<fast> at commit c0" in r.stderr
@@ -87,12 +87,12 @@ def test_history_usage_errors(tmp_path, cli):
     f = write_folder(tmp_path / "r", "e", {"x": ["p"]}, {("p",): [1.0, 1.1]})
     plain = tmp_path / "plain"
     plain.mkdir()
-    r = cli("history", "add", f, "--db", tmp_path / "h.sqlite", cwd=plain)
+    r = cli("history", "add", f, "--history-db", tmp_path / "h.sqlite", cwd=plain)
     assert r.returncode == 2 and "not a git repository; pass --commit" in r.stderr
     assert "Traceback" not in r.stderr
-    r = cli("history", "show", "--db", tmp_path / "none.sqlite")
+    r = cli("history", "show", "--history-db", tmp_path / "none.sqlite")
     assert r.returncode == 2 and "no history file" in r.stderr
-    r = cli("history", "show", "--db", tmp_path / "none.sqlite", "--cell", "bad")
+    r = cli("history", "show", "--history-db", tmp_path / "none.sqlite", "--cell", "bad")
     assert r.returncode == 2 and "Traceback" not in r.stderr
     r = cli("--help")
     assert "history" in r.stdout and "compare" in r.stdout
@@ -149,8 +149,8 @@ def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, c
                          start=datetime(2026, 11, 1, tzinfo=timezone.utc) + timedelta(days=i))
         assert add_results(db, f, commit=f"c{i}", branch="main", cwd=tmp_path) == 1
         if i >= 2:
-            outs[i] = cli("history", "show", "--db", db, "--fail-on-regression",
-                          "--json", tmp_path / f"show{i}.json")
+            outs[i] = cli("history", "show", "--history-db", db, "--fail-on-regression",
+                          "--json-out", tmp_path / f"show{i}.json")
     assert [outs[i].returncode for i in (2, 3, 4)] == [0, 0, 1]
     assert "No step found" in outs[2].stdout and "NOT YET" not in outs[2].stdout
     four = outs[3]

@@ -117,7 +117,7 @@ def test_mismatched_factors_are_refused(tmp_path):
 def test_compare_command(tmp_path, cli):
     a, b = _pair(tmp_path, ratios={("lzma", "9"): 1.3})
     out = tmp_path / "cmp.json"
-    r = cli("compare", a, b, "--tolerance", "5%", "--json", out)
+    r = cli("compare", a, b, "--tolerance", "5%", "--json-out", out)
     assert r.returncode == 0, r.stderr
     assert "benchharness gate" in r.stdout
     assert "slower" in r.stdout
@@ -126,7 +126,7 @@ def test_compare_command(tmp_path, cli):
     assert lz["verdict"] == "higher" and lz["wording"] == "slower (beyond 5%)"
     assert data["estimate"] == "ratio_b_over_a" and len(data["cells"]) == 6
     r = cli("compare", a, b, "--tolerance", "five")
-    assert r.returncode == 2 and "percentage" in r.stderr and "Traceback" not in r.stderr
+    assert r.returncode == 2 and "not a ratio" in r.stderr and "Traceback" not in r.stderr
     r = cli("compare", a, tmp_path / "missing")
     assert r.returncode == 2 and "Traceback" not in r.stderr
 
@@ -255,7 +255,7 @@ def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
     a = write_folder(tmp_path / "A", "archive-codecs", CELLS16, values())
     same = write_folder(tmp_path / "B", "archive-codecs", CELLS16, values())
     slower = write_folder(tmp_path / "C", "archive-codecs", CELLS16, values(("zstd", "csv")))
-    r = cli("compare", a, same, "--json", tmp_path / "same.json")
+    r = cli("compare", a, same, "--json-out", tmp_path / "same.json")
     assert r.returncode == 0, r.stderr
     assert "Sidak" in r.stdout and "all 16 cells together at 95%" in r.stdout
     assert "slower (beyond" not in r.stdout and "faster (beyond" not in r.stdout
@@ -263,7 +263,7 @@ def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
     data = json.loads((tmp_path / "same.json").read_text())
     assert data["interval_adjustment"] == "sidak"
     assert data["per_cell_conf_level"] == pytest.approx(0.95 ** (1 / 16))
-    r = cli("compare", a, slower, "--json", tmp_path / "slow.json")
+    r = cli("compare", a, slower, "--json-out", tmp_path / "slow.json")
     assert r.returncode == 0, r.stderr
     cells = json.loads((tmp_path / "slow.json").read_text())["cells"]
     flagged = [c["cell"] for c in cells if c["verdict"] != "within" and c["verdict"] != "unclear"]

@@ -309,7 +309,7 @@ def folder(measured, tmp_path):
 
 def analysis_json(folder, tmp_path):
     out = tmp_path / "analysis.json"
-    proc = run_cli("analyze", folder, "--json", out, timeout=120)
+    proc = run_cli("analyze", folder, "--json-out", out, timeout=120)
     assert proc.returncode == 0, proc.stderr
     return _json.loads(out.read_text())
 

@@ -157,7 +157,7 @@ def test_report_of_a_gate_results_folder(tmp_path, cli):
 
     out = tmp_path / "gate"
     r = cli("gate", "--baseline", "sleep 0.02", "--candidate", "sleep 0.04", "--seed", "2",
-            "--max-runs", "8", "--out", out, timeout=180)
+            "--max-pairs", "8", "--out", out, timeout=180)
     assert r.returncode in (0, 1, 3), r.stderr
     r = cli("report", out)
     assert r.returncode == 0, r.stderr

@@ -61,7 +61,7 @@ def choose_settings(experiment) -> dict:
     """
     import yaml
 
-    from benchharness.experiment.yamlnodes import (as_float, as_percent, expect_mapping, is_null,
+    from benchharness.experiment.yamlnodes import (as_percent, expect_mapping, is_null,
                                         node_error, scalar_text, sequence_items, to_plain)
 
     out: dict = {}
@@ -119,10 +119,10 @@ def choose_settings(experiment) -> dict:
                     limits.append(lim)
                 out["limits"] = limits
             elif key == "confidence":
-                c = as_float(v, "choose.confidence")
+                c = as_percent(v, "choose.confidence")
                 if not 0 < c < 1:
-                    raise node_error(v, f"choose.confidence must be between 0 and 1 "
-                                        f"(e.g. 0.95), not {scalar_text(v)}")
+                    raise node_error(v, f"choose.confidence must be above 0% and below 100% "
+                                        f"(e.g. 95%), not {scalar_text(v)}")
                 out["confidence"] = c
     except ExperimentError as exc:
         if exc.path in (None, "<string>") and path:
