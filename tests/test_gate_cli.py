@@ -107,7 +107,7 @@ def test_usage_errors_exit_2(cli, tmp_path):
     assert r.returncode == 2 and "tolerance" in r.stderr
     r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "3",
             "--first-look-pairs", "5")
-    assert r.returncode == 2 and "--min-runs (5) must not exceed --max-runs (3)" in r.stderr
+    assert r.returncode == 2 and "--first-look-pairs (5) must not exceed --max-pairs (3)" in r.stderr
     assert "<gate quick form>" not in r.stderr
 
 
@@ -304,7 +304,7 @@ gate: {{factor: build, baseline: "0", tolerance: 50%, max_pairs: 6, first_look_p
     assert sorted(log.read_text().split()) == ["-O0", "-O2"]
 
 
-@pytest.mark.parametrize("opt", ["--junit", "--summary", "--json"])
+@pytest.mark.parametrize("opt", ["--junit", "--summary", "--json-out"])
 def test_unwritable_output_refused_before_any_run(cli, tmp_path, opt):
     # exit 2 with one line before running anything (it was a traceback with exit 1,
     # which a CI job reads as a regression, after the whole gate had run)

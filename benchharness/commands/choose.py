@@ -44,9 +44,9 @@ def add_parser(subparsers):
     p.add_argument("--within", default=None, metavar="PCT", type=O.percent(0.0, 1.0),
                    help="practical margin of the trade-off front: a difference smaller than "
                         "this does not count (default: choose.within or 3%%)")
-    p.add_argument("--limit", action="append", default=None, metavar="'RESPONSE within P%'",
-                   help="choose only among settings whose RESPONSE is within P%% of the best "
-                        "setting's, e.g. --limit 'max_rss_kib within 5%%' (repeatable)")
+    p.add_argument("--limit", action="append", default=None, metavar="'NAME within PCT'",
+                   help="choose only among settings whose response NAME is within PCT of the "
+                        "best setting's, e.g. --limit 'max_rss_kib within 5%%' (repeatable)")
     p.add_argument("--setting", default=None, metavar="F,...",
                    help="factors that are settings (chosen); overrides the file's roles:")
     p.add_argument("--workload", default=None, metavar="F,...",

@@ -144,5 +144,7 @@ def print_comparison(result) -> None:
         if only:
             console.print(f"{plural(len(only), 'cell')} only in {label}: "
                           + "; ".join(", ".join(f"{k}={v}" for k, v in c.items()) for c in only))
-    for w in result.warnings:
-        console.print(f"warning: {w}")
+    import sys
+
+    for w in result.warnings:  # warnings go to standard error, like every command's
+        print(f"warning: {w}", file=sys.stderr)
