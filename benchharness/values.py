@@ -138,17 +138,3 @@ def parse_duration(text) -> float:
         raise ValueFormError(f"{t!r} is not a duration; write a number with a unit, like 90s, "
                              "5m, 1h30m or 250ms")
     return total
-
-
-def check_range(value: float, shown: str, low: float | None = None,
-                high: float | None = None, low_open: bool = True, high_open: bool = True,
-                hint: str = "") -> float:
-    """``value`` inside the interval, else `ValueFormError` naming it as ``shown``."""
-    bad = ((low is not None and (value < low or (low_open and value == low)))
-           or (high is not None and (value > high or (high_open and value == high))))
-    if bad:
-        lo = "" if low is None else f"{'above' if low_open else 'at least'} {low:g}"
-        hi = "" if high is None else f"{'below' if high_open else 'at most'} {high:g}"
-        span = " and ".join(s for s in (lo, hi) if s)
-        raise ValueFormError(f"{shown} must be {span}{'; ' + hint if hint else ''}")
-    return value

@@ -282,10 +282,12 @@ def test_every_result_command_prints_one_json_document(fixture_dir, capsys, monk
     assert rep["headline"]
 
     same, _ = _json(capsys, ["compare", res, res])
-    # a folder compared with itself: every ratio is exactly 1, every interval holds it, and
-    # no cell is said to have changed (three runs a cell may be too few to say "same")
-    assert all(math.isclose(c["estimate"], 1.0) for c in same["cells"])
-    assert all(c["low"] < 1.0 < c["high"] for c in same["cells"])
+    # a folder compared with itself: every ratio is exactly 1 (every difference 0 on a linear
+    # scale), every interval holds it, and no cell is said to have changed (three runs a
+    # cell may be too few to say "same")
+    none = 1.0 if same["scale"] == "log" else 0.0
+    assert all(math.isclose(c["estimate"], none, abs_tol=1e-12) for c in same["cells"])
+    assert all(c["low"] < none < c["high"] for c in same["cells"])
     assert {c["verdict"] for c in same["cells"]} <= {"same", "unclear"}
 
     db = d / "h.sqlite"

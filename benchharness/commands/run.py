@@ -152,7 +152,7 @@ def _budget(args, exp):
     if args.budget is None:
         if args.pilot:
             raise UsageError("--pilot on `run` only serves --budget; give --budget too "
-                             "(or use `benchharness plan FILE --pilot RESULTS`)")
+                             "(or use `benchharness plan FILE --pilot SOURCE`)")
         return None, None
     budget_s = args.budget
     estimate_s = None
