@@ -119,7 +119,7 @@ def test_compare_command(tmp_path, cli):
     out = tmp_path / "cmp.json"
     r = cli("compare", a, b, "--tolerance", "5%", "--json-out", out)
     assert r.returncode == 0, r.stderr
-    assert "benchharness gate" in r.stdout
+    assert "benchharness gate" in r.stderr  # a warning: standard error (docs/cli.md)
     assert "slower" in r.stdout
     data = json.loads(out.read_text())
     lz = [c for c in data["cells"] if c["cell"] == {"codec": "lzma", "level": "9"}][0]

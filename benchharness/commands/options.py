@@ -217,10 +217,11 @@ def write_file(path: str, text: str, option: str) -> None:
     file, never half a new one); a bad path is one line (exit 2), a full disk exit 75."""
     from benchharness.errors import UsageError, disk_full_writing, is_disk_full
 
-    tmp = f"{path}.tmp{os.getpid()}"
+    from pathlib import Path
+
+    tmp = Path(f"{path}.tmp{os.getpid()}")
     try:
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
+        tmp.write_text(text, encoding="utf-8")
         os.replace(tmp, path)
     except OSError as exc:
         try:
