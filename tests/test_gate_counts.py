@@ -213,7 +213,10 @@ def test_gate_direction_lower_or_higher_else_a_clear_error():
     from benchharness.errors import ExperimentError
     from benchharness.gate.session import parse_gate_section
 
-    assert parse_gate_section(_gate_exp(", direction: lower")).settings.higher_is_better is False
+    assert parse_gate_section(_gate_exp(", better: lower")).settings.higher_is_better is False
+    assert parse_gate_section(_gate_exp(", better: higher")).settings.higher_is_better is True
+    # `direction:` is the deprecated spelling of `better:` (docs/cli.md): still read
+    assert parse_gate_section(_gate_exp(", direction: higher")).settings.higher_is_better is True
     assert parse_gate_section(_gate_exp("")).settings.higher_is_better is False
-    with pytest.raises(ExperimentError, match="'gate: direction' must be lower"):
-        parse_gate_section(_gate_exp(", direction: sideways"))
+    with pytest.raises(ExperimentError, match="'gate: better' must be lower"):
+        parse_gate_section(_gate_exp(", better: sideways"))

@@ -152,7 +152,7 @@ def size_design(factors: Sequence[tuple[str, int]], detect: float, sigma_log: fl
         raise UsageError("the noise must be positive (a CV like 2%, or a pilot with "
                          "varying run times)")
     if not 0 < alpha < 1 or not 0 < power < 1:
-        raise UsageError("--alpha and --power must lie strictly between 0 and 1")
+        raise UsageError("--confidence and --power must lie strictly between 0% and 100%")
     for name, a in factors:
         if a < 2:
             raise UsageError(f"factor {name!r} has {plural(a, 'level')}; a factor needs at least 2")
