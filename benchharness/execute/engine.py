@@ -474,8 +474,9 @@ class QueuedRuns:
         while self.i < len(self.todo) and self.i < limit and stream.room():
             pr = self.todo[self.i]
             c = eng.cells.get(pr["levels"])
-            stream.submit(eng.spec_for(pr, c), pr["run"],
-                          J.record_head(pr, "warmup" if pr["warmup"] else "ok"))
+            spec = run_spec((c["argv"], c["shell"]), c, eng.timeout_s, run_id=pr["run"],
+                            levels=pr["levels"], inflight_path=eng.inflight_path)
+            stream.submit(spec, pr["run"], J.record_head(pr, "warmup" if pr["warmup"] else "ok"))
             self.by_key[pr["run"]] = (pr, c)
             self.i += 1
         stream.flush()
@@ -507,7 +508,8 @@ class QueuedRuns:
             rec.update(eng.fields)
         if self.mirror is not None:
             self.mirror.add(rec)
-        eng.count(status)
+        counts = eng.counts   # inline: once per queued run
+        counts[status] = counts.get(status, 0) + 1
         return rec
 
     def _drain(self, events) -> None:
