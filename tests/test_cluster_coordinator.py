@@ -182,3 +182,42 @@ def test_a_lost_worker_gives_back_only_what_never_came_back(coordinator):
         [p["run"] for p in pay1[1:]], [p["run"] for p in _second[2]]]
     assert [r["run"] for r in J.read_journal(folder / "runs.jsonl")] == [pay1[0]["run"]]
     co.close()
+
+
+def test_padding_is_drawn_once_per_run_and_recorded_as_sent(tmp_path, monkeypatch):
+    # pad_env on a cluster: the coordinator draws each run's padding length once, the
+    # worker pads with it, and the journal records the length that was sent.
+    exp = Experiment.from_text(TEXT + "pad_env: true\n")
+    from benchharness.design import build_plan
+
+    planned = [{"run": r.run, "position": r.position, "block": r.block,
+                "replicate": r.replicate, "warmup": r.warmup, "levels": dict(r.levels)}
+               for r in build_plan(exp, seed=4).runs]
+    folder = tmp_path / "res"
+    folder.mkdir()
+    client = FakeClient({"w1": {"name": "w1", "resources": {"bench": 1}}})
+    monkeypatch.setattr(cluster, "_connect", lambda address: client)
+    co = cluster._Coordinator(folder, exp, planned, set(), {"seed": 4}, None, "tcp://fake:1",
+                              True, (), None, poll_s=0.01)
+    co.meet_workers()
+    co.fill_queue(planned)
+    drawn = []
+
+    class Counted:   # the engine's generator, each draw noted
+        def __init__(self, rng):
+            self.rng = rng
+
+        def integers(self, *a, **k):
+            drawn.append(self.rng.integers(*a, **k))
+            return drawn[-1]
+
+    co.engine.pad_rng = Counted(co.engine.pad_rng)
+    co.dispatch()
+    (_, key1, pay1, fut1), _second = client.submitted
+    sent = [p["command"]["pad_bytes"] for p in pay1 + _second[2]]
+    assert len(drawn) == 8 and sent == [int(x) for x in drawn]
+    assert all(0 <= n <= 4096 for n in sent) and len(set(sent)) > 1
+    fut1.finish([result_of(p, i, "w1") for i, p in enumerate(pay1)])
+    co.wait()
+    assert [r["pad_env_bytes"] for r in journal(folder)] == sent[:4]
+    co.close()

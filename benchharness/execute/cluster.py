@@ -352,7 +352,7 @@ class _Coordinator:
 
     def _payload(self, pr: Mapping) -> dict:
         eng = self.engine
-        p = eng.prepare(pr, sample_later=True)   # conditions are sampled on the worker
+        p = eng.prepare(pr, sample_later=True, pad=False)  # both done on the worker
         p.pad_bytes = eng.pad_length()
         self.prepared[pr["run"]] = (pr, p)
         out = _payload(p.cell, pr, eng.timeout_s, spec=p.spec,

@@ -231,10 +231,14 @@ class RunEngine:
         return run_spec((c["argv"], c["shell"]), c, self.timeout_s, run_id=pr["run"],
                         levels=pr["levels"], env=env, inflight_path=self.inflight_path)
 
-    def prepare(self, pr: Mapping, sample_later: bool = False) -> Prepared:
-        """Padding and the quality checks' preparation (no step runs here)."""
+    def prepare(self, pr: Mapping, sample_later: bool = False, pad: bool = True) -> Prepared:
+        """Padding and the quality checks' preparation (no step runs here).
+
+        ``pad=False``: the environment is padded where the run executes (a
+        cluster worker, given `pad_length`), not here.
+        """
         c = self.cells.get(pr["levels"])
-        env, pad = self._padding(c)
+        env, pad = self._padding(c) if pad else (None, None)
         spec0 = None
         req = None
         if env is None:
