@@ -71,7 +71,12 @@ def _check_columns(df, factors, where: str) -> None:
 
 
 def _as_categorical(series):
+    """Levels in order of first appearance; one hashing pass (``factorize``), which
+    matters at a million rows."""
     import pandas as pd
 
-    cats = list(dict.fromkeys(series.tolist()))
-    return pd.Categorical(series, categories=cats)
+    codes, uniques = pd.factorize(series, sort=False)
+    if (codes < 0).any():   # a missing value: let Categorical say what is wrong, as before
+        cats = list(dict.fromkeys(series.tolist()))
+        return pd.Categorical(series, categories=cats)
+    return pd.Categorical.from_codes(codes, categories=list(uniques))  # inferred as before
