@@ -307,7 +307,7 @@ def _write_new_folder(folder, base, out, exp, plan, session, host, scheduler) ->
     published = False
     try:
         J.write_atomic(folder / "experiment.yaml", exp.source_text)
-        J.write_plan_csv(folder, exp.factor_names, plan.rows())
+        J.write_plan_csv(folder, exp.factor_names, plan.runs)  # per-cell columns formatted once
         if plan.info:
             J.write_atomic(folder / "design.json", json.dumps(plan.info, indent=1, default=str))
         J.write_atomic(folder / "session.json", json.dumps(session, indent=1))

@@ -37,6 +37,7 @@ import datetime as _dt
 import errno
 import fcntl
 import io
+import itertools
 import json
 import os
 import threading
@@ -962,15 +963,23 @@ def _is_bool(v) -> bool:
     return v.__class__ is bool
 
 
-def write_plan_csv(folder: Path, factors: Sequence[str], rows: Sequence[Mapping],
+def write_plan_csv(folder: Path, factors: Sequence[str], rows: Sequence,
                    append: bool = False) -> None:
+    """``plan.csv``: ``rows`` are dicts of its columns, or planned runs (objects with
+    ``run``, ``position``, ``block``, ``replicate``, ``warmup`` and ``levels``),
+    whose factor columns are formatted once per cell (a plan may hold a million)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     cols = ["run", "position", "block", "replicate", "warmup", *factors]
     if not append:
         w.writerow(cols)
-    for row in rows:
-        w.writerow([_csv_value(row[c]) for c in cols])
+    rows = iter(rows)
+    first = next(rows, None)
+    if first is not None and not isinstance(first, Mapping):
+        buf.write(_planned_lines(factors, itertools.chain([first], rows)))
+    else:
+        for row in itertools.chain([first] if first is not None else [], rows):
+            w.writerow([_csv_value(row[c]) for c in cols])
     path = folder / "plan.csv"
     if append:
         with open(path, "a", encoding="utf-8") as fh:
@@ -979,6 +988,25 @@ def write_plan_csv(folder: Path, factors: Sequence[str], rows: Sequence[Mapping]
             os.fsync(fh.fileno())
     else:
         write_atomic(path, buf.getvalue())
+
+
+def _planned_lines(factors: Sequence[str], runs) -> str:
+    """``plan.csv`` lines of planned runs, as `csv.writer` writes them."""
+    cell_buf = io.StringIO()
+    cw = csv.writer(cell_buf, lineterminator="\n")   # as in plan.csv: quotes a line break
+    parts: dict[int, str] = {}   # id of a cell's levels dict -> its factor columns
+    out = []
+    for r in runs:
+        lv = r.levels
+        part = parts.get(id(lv))
+        if part is None:
+            cell_buf.seek(0)
+            cell_buf.truncate()
+            cw.writerow([_csv_value(lv[f]) for f in factors])
+            part = parts[id(lv)] = ("," + cell_buf.getvalue()[:-1]) if factors else ""
+        out.append(f"{r.run},{r.position},{r.block},{r.replicate},"
+                   f"{'true' if r.warmup else 'false'}{part}\n")
+    return "".join(out)
 
 
 def read_plan_csv(folder: Path, factors: Sequence[str] | None = None) -> list[dict]:
