@@ -991,19 +991,28 @@ def write_plan_csv(folder: Path, factors: Sequence[str], rows: Sequence,
 
 
 def _planned_lines(factors: Sequence[str], runs) -> str:
-    """``plan.csv`` lines of planned runs, as `csv.writer` writes them."""
-    cell_buf = io.StringIO()
-    cw = csv.writer(cell_buf, lineterminator="\n")   # as in plan.csv: quotes a line break
+    """``plan.csv`` lines of planned runs, as `csv.writer` writes them: each distinct
+    label is formatted (quoted where needed) once, each cell's columns joined once."""
+    buf = io.StringIO()
+    cw = csv.writer(buf, lineterminator="\n")
+    labels: dict = {}            # label -> its CSV field text
     parts: dict[int, str] = {}   # id of a cell's levels dict -> its factor columns
+
+    def field(value) -> str:
+        text = labels.get(value)
+        if text is None:
+            buf.seek(0)
+            buf.truncate()
+            cw.writerow([_csv_value(value), "x"])   # in a row of two, as in plan.csv
+            text = labels[value] = buf.getvalue()[:-3]
+        return text
+
     out = []
     for r in runs:
         lv = r.levels
         part = parts.get(id(lv))
         if part is None:
-            cell_buf.seek(0)
-            cell_buf.truncate()
-            cw.writerow([_csv_value(lv[f]) for f in factors])
-            part = parts[id(lv)] = ("," + cell_buf.getvalue()[:-1]) if factors else ""
+            part = parts[id(lv)] = "".join("," + field(lv[f]) for f in factors)
         out.append(f"{r.run},{r.position},{r.block},{r.replicate},"
                    f"{'true' if r.warmup else 'false'}{part}\n")
     return "".join(out)
