@@ -9,7 +9,7 @@ failed-run counts, comparisons whose adjusted p is below α, and notes.
 
 from __future__ import annotations
 
-from benchharness.numbers import fmt_ratio, fmt_ratio_interval, pick_scale, plural
+from benchharness.numbers import fmt_p, fmt_ratio, fmt_ratio_interval, pick_scale, plural
 
 
 def _unit(response: str) -> str:
@@ -36,11 +36,7 @@ def _g(x, digits=4):
 
 
 def _p(p):
-    if p is None:
-        return "-"
-    if p < 1e-4:
-        return "<0.0001"
-    return f"{p:.4f}"
+    return "-" if p is None else fmt_p(p)
 
 
 def _table(headers, rows, align):
