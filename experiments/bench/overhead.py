@@ -186,6 +186,10 @@ def runner_once(n, env, workdir):
     return total, walls, cpu
 
 
+def _p10(xs):
+    return statistics.quantiles(xs, n=10)[0]
+
+
 def runner_rounds(n, rounds, env, workdir):
     """``rounds`` pairs of (experiment, independent bare block), alternating
     which goes first (ABBA), each pair compared on its own."""
@@ -205,6 +209,8 @@ def runner_rounds(n, rounds, env, workdir):
                     "median_wall_ms": statistics.median(walls) * 1e3,
                     "median_wall_ratio": statistics.median(walls)
                     / statistics.median(bare_walls),
+                    # the 10th percentiles: runs that waited for no one (robust to load)
+                    "p10_wall_ratio": _p10(walls) / _p10(bare_walls),
                     "bare_cpu_per_run_ms": None,
                     "cpu_per_run_ms": cpu / k * 1e3,
                     "load_1m": os.getloadavg()[0]})
@@ -264,6 +270,8 @@ def main(argv=None):
         out["runner"] = dict(mid, rounds=[round(r["total_ratio"], 3) for r in rounds],
                              median_wall_rounds=[round(r["median_wall_ratio"], 4)
                                                  for r in rounds],
+                             p10_wall_rounds=[round(r["p10_wall_ratio"], 4) for r in rounds],
+                             loads=[round(r["load_1m"], 1) for r in rounds],
                              median_of_median_wall_ratios=statistics.median(
                                  r["median_wall_ratio"] for r in rounds))
     if args.json:
@@ -280,7 +288,9 @@ def main(argv=None):
                f"whole experiment vs an independent bare loop in its own process, "
                f"median of {len(r['rounds'])} alternating pairs (ratios "
                f"{', '.join(f'x{x:.3f}' for x in r['rounds'])}; median wall_s ratios "
-               f"{', '.join(f'x{x:.3f}' for x in r['median_wall_rounds'])})")
+               f"{', '.join(f'x{x:.3f}' for x in r['median_wall_rounds'])}; 10th-percentile "
+               f"wall_s ratios {', '.join(f'x{x:.3f}' for x in r['p10_wall_rounds'])}; "
+               f"load {', '.join(f'{x:.1f}' for x in r['loads'])})")
         print(f"{name} ({how}): {r['total_per_run_ms']:.3f} ms per run vs bare "
               f"{r['bare_total_per_run_ms']:.3f} (x{r['total_ratio']:.3f}"
               f"{'; target <= 1.15' if name == 'runner' else ''}); "
