@@ -62,6 +62,7 @@ HEADER_SIZE = 4
 F_SETPIPE_SZ = 1031
 PIPE_SIZE = 1 << 20   # queue and reply pipes are widened to this where allowed
 INFLIGHT_SIZE = 256   # bytes of the in-flight record, padded with spaces
+INFLIGHT_AFTER_NS = 1_000_000  # a run still going this long after its spawn is recorded
 CONDITIONS_EVERY_NS = 10_000_000  # runs starting this close share one reading
 DONE_BATCH = 64       # journalled runs reported to the harness at once, at most
 DONE_EVERY_NS = 20_000_000  # ... and at least this often while runs go on
@@ -357,13 +358,14 @@ class Run:
 
     __slots__ = ("req", "started_at", "conditions", "extra", "argv", "env", "cwd", "key",
                  "path", "cap", "tails", "open_pipes", "pid", "pidfd", "t0", "t1", "deadline",
+                 "slot", "start",
                  "linger_end", "timed_out", "aborted", "status_word", "rusage", "orphans",
                  "kids")
 
     def __init__(self, req):
         self.req = req
         self.extra = {}
-        self.conditions = self.pid = self.pidfd = self.t1 = self.deadline = None
+        self.conditions = self.pid = self.pidfd = self.t1 = self.deadline = self.slot = None
         self.linger_end = self.aborted = self.status_word = self.rusage = self.kids = None
         self.timed_out = False
         self.orphans = []
@@ -797,11 +799,10 @@ class Launcher:
             return err
         pidfd = run.pidfd = os.pidfd_open(pid)
         self.pipe_poller.register(pidfd, select.POLLIN)
-        start_hi = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
-        if slot is not None:
-            slot[0][:] = (slot[1] % (pid, pid, start_lo, start_hi)).encode().ljust(INFLIGHT_SIZE)
-        run.pid, run.t0 = pid, t0
+        run.start = (start_lo, time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns)
+        run.pid, run.t0, run.slot = pid, t0, slot
         if g("notify", True):
+            start_hi = run.start[1]
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid,
                             "start": (start_lo, start_hi)})
         timeout_s = g("timeout_s")
@@ -820,13 +821,15 @@ class Launcher:
             now = time.perf_counter_ns()
             if run.t1 is None:
                 wait_ns = None if run.deadline is None else run.deadline - now
+                if wait_ns is not None and wait_ns <= 0:
+                    self.stop_tree(run, linger_ns, timed_out=True)
+                    continue
+                if run.slot is not None:
+                    wait_ns = self.inflight_due(run, now, wait_ns)
             else:
                 if not run.open_pipes or now >= run.linger_end:
                     break
                 wait_ns = run.linger_end - now
-            if wait_ns is not None and wait_ns <= 0:
-                self.stop_tree(run, linger_ns, timed_out=True)
-                continue
             events = poller.poll(None if wait_ns is None else max(1, -(-wait_ns // 1_000_000)))
             if run.t1 is None:
                 for fd, _ev in events:
@@ -847,6 +850,26 @@ class Launcher:
             self.release()  # lingered until the time ran out: give these pipes up
         if run.aborted is not None and self.pipes is not None:
             poller.register(self.rfd, select.POLLIN)  # the kept poller watches it again
+
+    def inflight_due(self, run, now, wait_ns):
+        """Record the run in flight once it has gone on for `INFLIGHT_AFTER_NS`;
+        the wait until then (or ``wait_ns``, if sooner).
+
+        The record lets a later resume stop a run that outlived both the
+        harness and the launcher. Made at once, it would sit inside the timed
+        window of every run; made after the first millisecond, a run that ends
+        sooner costs nothing, and a longer one is recorded while it goes on.
+        (A launcher killed within a run's first millisecond leaves the last
+        run's record: that run is over, and resume signals nothing that is
+        not still the recorded process.)
+        """
+        due = run.t0 + INFLIGHT_AFTER_NS - now
+        if due > 0:
+            return due if wait_ns is None or due < wait_ns else wait_ns
+        m, text = run.slot
+        run.slot = None
+        m[:] = (text % (run.pid, run.pid, *run.start)).encode().ljust(INFLIGHT_SIZE)
+        return wait_ns
 
     def interrupted(self, run, linger_ns):
         """A message on the request pipe during a run: the harness went away
