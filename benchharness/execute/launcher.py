@@ -839,17 +839,22 @@ class Launcher:
                         self.settle(run)
                         run.linger_end = run.t1 + linger_ns
                         break
-            for fd, _ev in events:
-                if fd in run.open_pipes:
-                    if not run.tails[fd].fill(fd):  # end of file
-                        poller.unregister(fd)
-                        run.open_pipes.discard(fd)
-                elif fd == self.rfd and run.aborted is None:
-                    self.interrupted(run, linger_ns)
+            self.on_events(run, events, linger_ns)
         if run.open_pipes:
             self.release()  # lingered until the time ran out: give these pipes up
         if run.aborted is not None and self.pipes is not None:
             poller.register(self.rfd, select.POLLIN)  # the kept poller watches it again
+
+    def on_events(self, run, events, linger_ns):
+        """Output to read (until each pipe is empty, or its end), or a message
+        on the request pipe while the run goes on."""
+        for fd, _ev in events:
+            if fd in run.open_pipes:
+                if not run.tails[fd].fill(fd):  # end of file
+                    self.pipe_poller.unregister(fd)
+                    run.open_pipes.discard(fd)
+            elif fd == self.rfd and run.aborted is None:
+                self.interrupted(run, linger_ns)
 
     def inflight_due(self, run, now, wait_ns):
         """Record the run in flight once it has gone on for `INFLIGHT_AFTER_NS`;
