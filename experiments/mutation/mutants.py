@@ -4,6 +4,7 @@ Not part of the tool: a developer's script (DEVELOPERS.md, "Mutation testing"). 
 the ``dev`` extra (cosmic-ray, coverage). Every step works in a scratch folder
 (``$MUTATION_WORK``, default ``/tmp/benchharness-mutation``) on copies of the checkout,
 never on the checkout itself: cosmic-ray writes each mutant into the files it tests.
+``$MUTATION_ROOT`` names another checkout to measure (default: this one).
 
     python experiments/mutation/mutants.py map AREA      # which tests run which line
     python experiments/mutation/mutants.py init AREA     # the mutants, a sample of them
@@ -34,7 +35,8 @@ import subprocess
 import sys
 from pathlib import Path
 
-ROOT = Path(__file__).resolve().parents[2]
+# the checkout whose code and tests are measured (default: the one holding this script)
+ROOT = Path(os.environ.get("MUTATION_ROOT") or Path(__file__).resolve().parents[2])
 WORK = Path(os.environ.get("MUTATION_WORK", "/tmp/benchharness-mutation"))
 PY = sys.executable
 CR = str(Path(PY).with_name("cosmic-ray"))
@@ -80,7 +82,9 @@ def cmd_map(area: str, A: dict, tests: list[str]) -> None:
             d = mp.setdefault(rel, {})
             for line, ctxs in f.get("contexts", {}).items():
                 d[line] = sorted(set(d.get(line, [])) | {_nodeid(c) for c in ctxs})
-    path.write_text(json.dumps(mp))
+    tmp = path.with_suffix(".tmp")
+    tmp.write_text(json.dumps(mp))
+    os.replace(tmp, path)        # a mutant being run may be reading the map meanwhile
     print({m: len(v) for m, v in mp.items()})
 
 
