@@ -135,3 +135,49 @@ def test_a_repeated_run_is_moved_beside_the_journal_on_repair(tmp_path):
     assert (tmp_path / "runs.jsonl.duplicates").read_bytes() == again + b"\n"
     assert p.read_bytes() == b"\n".join(r) + b"\n"
     assert any("moved to runs.jsonl.duplicates" in n for n in notes), notes
+
+
+def test_a_record_missing_its_levels_is_named(tmp_path):
+    import json
+
+    import pytest
+
+    from benchharness.errors import ResultsFolderError
+
+    p = tmp_path / "runs.jsonl"
+    p.write_bytes(_records(1)[0] + b"\n"
+                  + json.dumps({"run": 1, "status": "ok", "wall_s": 1.0}).encode() + b"\n")
+    with pytest.raises(ResultsFolderError) as e:
+        J.read_journal(p)
+    assert str(e.value).startswith(f"{p}:2: the record has no 'levels'")
+
+
+def test_plan_csv_with_columns_that_are_not_factors_names_the_first(tmp_path):
+    import pytest
+
+    from benchharness.errors import ResultsFolderError
+
+    (tmp_path / "plan.csv").write_text("run,position,block,replicate,warmup,a,zz,yy\n"
+                                       "0,0,1,1,False,x,1,2\n")
+    with pytest.raises(ResultsFolderError) as e:
+        J.read_plan_csv(tmp_path, ["a"])
+    assert str(e.value).startswith(f"{tmp_path / 'plan.csv'}:1: the column 'zz' is not a factor")
+
+
+def test_records_whose_levels_the_experiment_no_longer_lists_are_refused(tmp_path):
+    import pytest
+
+    from benchharness.errors import ResultsFolderError
+    from benchharness.experiment.file import Experiment
+
+    exp = Experiment.from_text("experiment: e\ncommand: [echo, '{a}']\nfactors:\n"
+                               "  a: [x, y]\n  b: [p, q]\n")
+    J.check_levels(tmp_path, exp, [{"run": 0, "levels": {"a": "x", "b": "p"}}])
+    with pytest.raises(ResultsFolderError) as e:
+        J.check_levels(tmp_path, exp, [{"run": 3, "levels": {"a": "x"}}])
+    assert str(e.value).startswith(
+        f"{tmp_path / 'experiment.yaml'}: run 3 was recorded without the factor 'b'")
+    with pytest.raises(ResultsFolderError) as e:
+        J.check_levels(tmp_path, exp, [{"run": 4, "levels": {"a": "w", "b": "p"}}])
+    assert str(e.value).startswith(
+        f"{tmp_path / 'experiment.yaml'}: run 4 was recorded with the level 'w' of 'a'")
