@@ -158,7 +158,7 @@ name = "local"
 
 def _enclosing_function_lines(source: str, line: int):
     best = None
-    for node in ast.walk(ast.parse("\\n".join(source) if isinstance(source, list) else source)):
+    for node in ast.walk(ast.parse("\n".join(source) if isinstance(source, list) else source)):
         if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)) and \
                 node.lineno <= line <= node.end_lineno:
             if best is None or node.lineno > best[0]:
