@@ -158,3 +158,41 @@ def test_a_level_whose_count_is_always_zero_is_analysed_not_a_crash():
     assert 0.3 < y["ratio"] < 0.5 and y["lower"] < y["ratio"] < y["upper"]
     assert next(r for r in an.anova_rows if r["term"] == "f")["p"] < 1e-6
     assert "errors" in an.to_json()          # analysis.json can be written (no inf, no NaN)
+
+
+def test_runs_of_other_statuses_are_counted_per_cell():
+    # Planted: in cell x, 6 ok, 1 failed, 1 timeout and 2 runs with a status of their own
+    # ("crashed"); cell y all 10 ok. Every run that is not ok counts against the cell.
+    rng = np.random.default_rng(8)
+    d = pd.DataFrame({"a": np.repeat(["x", "y"], 10), "wall_s": rng.lognormal(0, 0.1, 20),
+                      "status": ["ok"] * 20})
+    d.loc[[0], "status"] = "failed"
+    d.loc[[1], "status"] = "timeout"
+    d.loc[[2, 3], "status"] = "crashed"
+    an = analyze(d, factors=["a"], transform="log", comparisons=False, art=False)
+    cells = {c["levels"]["a"]: c for c in an.failures["cells"]}
+    assert {k: cells["x"][k] for k in ("runs", "ok", "failed", "timeout", "other")} == {
+        "runs": 10, "ok": 6, "failed": 1, "timeout": 1, "other": 2}
+    assert cells["x"]["failure_rate"] == pytest.approx(0.4)
+    assert "y" not in cells or cells["y"]["other"] == 0
+    assert an.failures["not_ok"] == 4
+
+
+@pytest.mark.parametrize("seed", [1, 2])
+def test_normal_residuals_are_called_consistent_with_normal(seed):
+    # Planted: normal residuals. Reference: scipy.stats.shapiro (Shapiro & Wilk 1965).
+    from scipy import stats
+
+    from benchharness.analysis.diagnostics import normality
+
+    r = np.random.default_rng(seed).normal(0, 1, 60)
+    res = normality(r, 0.05)
+    ref = stats.shapiro(r).pvalue
+    assert res["test"] == "shapiro-wilk" and res["p"] == pytest.approx(ref, rel=1e-6)
+    assert ref > 0.05
+    assert res["ok"] is True and res["verdict"].startswith("consistent with a normal")
+    # and clearly skewed residuals are not
+    skewed = np.random.default_rng(seed).exponential(1.0, 60)
+    bad = normality(skewed, 0.05)
+    assert stats.shapiro(skewed).pvalue < 0.05
+    assert bad["ok"] is False and bad["verdict"].startswith("residuals are clearly not normal")
