@@ -196,3 +196,77 @@ def test_normal_residuals_are_called_consistent_with_normal(seed):
     bad = normality(skewed, 0.05)
     assert stats.shapiro(skewed).pvalue < 0.05
     assert bad["ok"] is False and bad["verdict"].startswith("residuals are clearly not normal")
+
+
+def test_inverse_box_cox_matches_scipy():
+    # Reference: scipy.special.inv_boxcox, for values on both sides of the transform's
+    # zero (1 + lam z between 0 and 1 as well as above 1).
+    from scipy.special import inv_boxcox
+
+    from benchharness.analysis.transform import Choice, inverse
+
+    for lam in (0.5, -0.5, 2.0):
+        z = np.array([-0.9, -0.4, 0.0, 0.3, 0.9]) / abs(lam)
+        z = z[1.0 + lam * z > 0]
+        np.testing.assert_allclose(inverse(z, Choice("boxcox", lam, "")), inv_boxcox(z, lam),
+                                   rtol=1e-12)
+
+
+def test_hosts_tested_against_the_residual_when_each_host_is_one_block():
+    # Planted: two hosts, host B 10% slower; factor a with two levels; every run of a host
+    # in one block (the host), so there are no blocks within hosts to test against.
+    # Reference: statsmodels anova_lm (type 2) of ln(wall_s) ~ C(a) + C(host).
+    import statsmodels.api as sm
+    import statsmodels.formula.api as smf
+
+    rng = np.random.default_rng(21)
+    d = pd.DataFrame({"a": np.tile(np.repeat(["x", "y"], 6), 2),
+                      "host": np.repeat(["hostA", "hostB"], 12)})
+    d["block"] = np.where(d.host == "hostA", 1, 2)
+    d["wall_s"] = np.exp(0.2 * (d.a == "y") + 0.1 * (d.host == "hostB")
+                         + rng.normal(0, 0.03, 24))
+    an = analyze(d, factors=["a"], block="block", transform="log", comparisons=False,
+                 art=False)
+    h = an.diagnostics["hosts"]
+    d["ly"] = np.log(d["wall_s"])
+    ref = sm.stats.anova_lm(smf.ols("ly ~ C(a) + C(host)", data=d).fit(), typ=2)
+    assert h["between_hosts"]["tested_against"] == "residual"
+    assert h["between_hosts"]["F"] == pytest.approx(ref.loc["C(host)", "F"], rel=1e-9)
+    assert h["p"] == pytest.approx(ref.loc["C(host)", "PR(>F)"], rel=1e-6)
+    assert h["differ"] is True and h["verdict"].startswith("hosts differ significantly")
+
+
+def test_ratio_interval_uses_the_covariance_of_the_two_level_means():
+    # Planted: an unbalanced 2 x 3 layout analysed with the additive model on the original
+    # scale: the two marginal means of a share the b coefficients, so they are correlated.
+    # The ratio's interval is ratio * exp(+-q s), s^2 = c_aa/a^2 + c_bb/b^2 - 2 c_ab/(a b)
+    # (delta method on the log ratio; common practice), c from statsmodels OLS cov_params
+    # of the marginal means (each the average of the fitted cell values over b).
+    import statsmodels.formula.api as smf
+    from scipy import stats
+
+    rng = np.random.default_rng(13)
+    rows = []
+    for a, nb in (("r", (2, 5, 3)), ("x", (6, 2, 4))):
+        for b, n in zip("pqs", nb):
+            for _ in range(n):
+                rows.append({"a": a, "b": b,
+                             "v": 10 + 3 * (a == "x") + 4 * "pqs".index(b) + rng.normal(0, 1)})
+    d = pd.DataFrame(rows)
+    an = analyze(d, response="v", factors=["a", "b"], transform="none", model="main",
+                 comparisons=False, art=False)
+    e = next(x for x in an.effects if x["factor"] == "a" and x["level"] == "x")
+    fit = smf.ols("v ~ C(a) + C(b)", data=d).fit()
+    names = list(fit.params.index)       # Intercept, C(a)[T.x], C(b)[T.q], C(b)[T.s]
+    X = np.array([[1.0 if n == "Intercept" or n == f"C(a)[T.{a}]" or n == f"C(b)[T.{b}]"
+                   else 0.0 for n in names] for a in "rx" for b in "pqs"])
+    L = np.vstack([X[3:].mean(axis=0), X[:3].mean(axis=0)])      # x, then r
+    m = L @ fit.params.to_numpy()
+    c = L @ fit.cov_params().to_numpy() @ L.T
+    ratio = m[0] / m[1]
+    s = np.sqrt(c[0, 0] / m[0] ** 2 + c[1, 1] / m[1] ** 2 - 2 * c[0, 1] / (m[0] * m[1]))
+    q = stats.t.ppf(0.975, fit.df_resid)
+    assert abs(c[0, 1]) > 1e-3                     # the situation planted: correlated means
+    assert e["ratio"] == pytest.approx(ratio, rel=1e-9)
+    assert e["lower"] == pytest.approx(ratio * np.exp(-q * s), rel=1e-7)
+    assert e["upper"] == pytest.approx(ratio * np.exp(q * s), rel=1e-7)
