@@ -181,3 +181,17 @@ def test_records_whose_levels_the_experiment_no_longer_lists_are_refused(tmp_pat
         J.check_levels(tmp_path, exp, [{"run": 4, "levels": {"a": "w", "b": "p"}}])
     assert str(e.value).startswith(
         f"{tmp_path / 'experiment.yaml'}: run 4 was recorded with the level 'w' of 'a'")
+
+
+def test_plan_csv_with_a_run_number_that_is_not_a_number_is_named(tmp_path):
+    import pytest
+
+    from benchharness.errors import ResultsFolderError
+
+    (tmp_path / "plan.csv").write_text("run,position,block,replicate,warmup,a\n"
+                                       "0,0,1,1,false,x\nseven,1,1,1,false,y\n")
+    with pytest.raises(ResultsFolderError) as e:
+        J.read_plan_csv(tmp_path, ["a"])
+    msg = str(e.value)
+    assert msg.startswith(f"{tmp_path / 'plan.csv'}:3: invalid literal for int()")
+    assert "put back the file as `benchharness run` wrote it" in msg
