@@ -135,12 +135,13 @@ def test_reproduce_command_uses_the_run_flags(folder, html):
 
 
 def test_residuals_match_statsmodels_with_an_additive_block():
-    """Backfitted residuals against `statsmodels` OLS on an unbalanced design with a block
-    (reference library: statsmodels ols with treatment coding)."""
+    """The report's residuals (carried by the Analysis, never re-fitted) against
+    `statsmodels` OLS on an unbalanced design with a block (reference library:
+    statsmodels ols with treatment coding)."""
     import pandas as pd
     import statsmodels.formula.api as smf
 
-    from benchharness.report.model import residual_table
+    from benchharness.report.data import collect
 
     rng = np.random.default_rng(5)
     rows = []
@@ -154,10 +155,10 @@ def test_residuals_match_statsmodels_with_an_additive_block():
     df["position"] = rng.permutation(len(df))
     df["wall_s"] = np.exp(rng.normal(0, 0.2, len(df)) + (df["a"] == "y") * 0.5
                           + df["block"] * 0.05)
-    analysis = {"response": "wall_s", "transform": {"name": "log", "lambda": 0.0},
-                "anova": [{"term": "block"}, {"term": "a"}, {"term": "b"}, {"term": "a:b"},
-                          {"term": "Residual"}]}
-    mine = residual_table(df, analysis, ["a", "b"], block="block")
+    d = collect(df, factors=["a", "b"], block="block", transform="log")
+    assert [r["term"] for r in d.analysis["anova"]] == ["block", "a", "b", "a:b", "Residual"]
+    mine = d.residuals
+    assert list(mine["run"]) == list(df["run"]) and list(mine["a"]) == list(df["a"])
     ref = smf.ols("np.log(wall_s) ~ C(block) + C(a) * C(b)", df).fit()
     assert np.allclose(mine["residual"].to_numpy(), ref.resid.to_numpy(), atol=1e-9)
     assert np.allclose(mine["fitted"].to_numpy(), ref.fittedvalues.to_numpy(), atol=1e-9)

@@ -348,15 +348,16 @@ def add_to_results_folder(folder, response: str = "wall_s", log: bool = True) ->
     """For a two-level ``design:``: add the ``fraction`` key to ``analysis.json`` (creating
     the file if needed) and save ``half_normal.png``; returns the fraction analysis or None.
 
-    Used by `benchharness run` after the general analysis.
+    ``folder``: a results folder, or one already read (`journal.Results`, as
+    `benchharness run` passes it after the general analysis).
     """
     import json
     from pathlib import Path
 
     from benchharness.results import journal as J
 
-    folder = Path(folder)
-    res = J.load_results(folder)
+    res = folder if isinstance(folder, J.Results) else J.load_results(folder)
+    folder = Path(res.path)
     result = fraction_analysis_for(res.experiment, res.runs, response=response, log=log)
     if result is None:
         return None

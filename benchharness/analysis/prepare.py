@@ -45,14 +45,22 @@ class Prepared:
     experiment: Any = None
     order_source: str = "experiment"         # where the level order came from
     extra: dict = field(default_factory=dict)
+    rows: np.ndarray | None = None            # index of each ok row in the table read
 
 
 def load_source(data, factors=None):
-    """Return ``(DataFrame, Experiment | None)`` for a DataFrame, CSV path or results folder."""
+    """Return ``(DataFrame, Experiment | None)`` for a DataFrame, CSV path, results folder
+    or a results folder already read (`benchharness.results.journal.Results`)."""
     import pandas as pd
+
+    from benchharness.results.journal import Results
 
     if isinstance(data, pd.DataFrame):
         return data, None  # used as is: no copy of a large table
+    if isinstance(data, Results):
+        from benchharness.results.source import results_table
+
+        return results_table(data, factors), data.experiment
     if not isinstance(data, (str, Path)):
         raise UsageError(f"cannot analyse a {type(data).__name__}; give a DataFrame, a CSV file "
                          "or a results folder")
@@ -316,5 +324,5 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         codes=tuple(c[use] for c in codes), block=block, block_levels=tuple(block_levels),
         block_codes=block_codes, y=y[use], run=run, position=position,
         status_counts=status_counts, notes=tuple(notes), experiment=exp,
-        order_source=order_source, extra=extra,
+        order_source=order_source, extra=extra, rows=np.flatnonzero(use),
     )

@@ -394,6 +394,26 @@ def describe(choice: Choice, profile: Profile | None, requested: str, unit: str 
     }
 
 
+def profile_curve(boxcox: BoxCoxProfile | None, transform: dict | None, points: int = 81):
+    """(λ grid, log-likelihood) of ``boxcox`` for the report's figure, or None.
+
+    The grid spans [−2, 2], widened to half a unit past λ̂, the chosen λ and the
+    ends of its interval (``transform`` is analysis.json's entry); λ where the
+    model fits exactly give NaN (the likelihood is unbounded there).
+    """
+    if boxcox is None:
+        return None
+    tr = transform or {}
+    lo, hi = -2.0, 2.0
+    for v in [tr.get("lambda_hat"), tr.get("lambda"), *(tr.get("lambda_ci") or [])]:
+        if v is not None and np.isfinite(v):
+            lo, hi = min(lo, float(v) - 0.5), max(hi, float(v) + 0.5)
+    grid = np.linspace(lo, hi, points)
+    ll = np.array([boxcox.loglik(float(lam)) for lam in grid])
+    ll[~np.isfinite(ll)] = np.nan
+    return grid, ll
+
+
 def _power_from_interval(profile: Profile) -> float:
     """1 when the 95% interval holds it; else the multiple of 0.5 nearest λ̂ inside, else λ̂ to 0.1."""
     lo, hi = profile.ci

@@ -96,7 +96,8 @@ def main(args) -> int:
         else:
             args.response = "wall_s"
     model = args.model  # None: full, or every alias chain of a two-level fraction
-    an = analyze(args.source, response=args.response, factors=factors, block=block,
+    an = analyze(folder_res if folder_res is not None else args.source,  # read once
+                 response=args.response, factors=factors, block=block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=1.0 - args.confidence, reference=args.reference, adjust=args.adjust,
                  art=True if args.art else False if args.no_cross_check else "auto",

@@ -5,8 +5,10 @@ Pipeline of this package (plain data between steps)::
     results folder / CSV --data.collect--> ReportData --figures.make_figures--> FigureSet
         --> html.render_html / markdown.render_markdown / terminal.print_analysis
 
-`write_reports(folder)` is what `benchharness run` calls at the end: it writes
+`write_reports(folder, analysis=...)` is what `benchharness run` calls at the end,
+with the folder it has read and the analysis it has made: it writes
 ``report.html``, ``report.md`` and ``figures/*.png|svg`` into the results folder.
+Nothing in this package fits a model: it renders the `Analysis`.
 Heavy libraries (pandas, matplotlib, jinja2) are imported inside the functions.
 """
 
@@ -28,7 +30,8 @@ def build_report(source, *, analysis=None, response=None, factors=None, **kwargs
 
 def write_reports(folder, *, html=None, markdown=None, analysis=None, response=None,
                   factors=None, compact: bool = False, figures_dir=None, **kwargs):
-    """Write the HTML and Markdown reports (and figures) of a results folder.
+    """Write the HTML and Markdown reports (and figures) of a results folder (a path, or
+    one already read: `benchharness.results.journal.Results`), CSV or DataFrame.
 
     Defaults: ``<folder>/report.html``, ``<folder>/report.md`` and
     ``<folder>/figures/``. For a CSV source pass ``html``/``markdown`` paths; the
@@ -37,8 +40,7 @@ def write_reports(folder, *, html=None, markdown=None, analysis=None, response=N
     from benchharness.report.html import write_html
     from benchharness.report.markdown import write_markdown
 
-    src = Path(folder) if not hasattr(folder, "columns") else None
-    base = src if src is not None and src.is_dir() else None
+    base = _folder_of(folder)
     if html is None:
         html = (base or Path(".")) / "report.html"
     if markdown is None:
@@ -51,6 +53,18 @@ def write_reports(folder, *, html=None, markdown=None, analysis=None, response=N
     md_path = write_markdown(data, figs, markdown, compact=compact,
                              figures_rel=_relative(fig_root / "figures", Path(markdown).parent))
     return html_path, md_path
+
+
+def _folder_of(source) -> Path | None:
+    """The results folder of a source (a path, or one already read), else None."""
+    from benchharness.results.journal import Results
+
+    if isinstance(source, Results):
+        return Path(source.path)
+    if hasattr(source, "columns"):   # a DataFrame
+        return None
+    path = Path(source)
+    return path if path.is_dir() else None
 
 
 def _relative(target: Path, start: Path) -> str:

@@ -1,9 +1,9 @@
 """Everything one report needs, gathered into one plain object (`ReportData`).
 
 Renderers (figures, HTML, Markdown, terminal) read only `ReportData`; this module
-is the edge that reads a results folder or a tidy CSV, takes (or computes) the
-analysis, and derives the per-run residuals and the Box-Cox profile for the
-diagnostic figures (see `benchharness.report.model`).
+is the edge that reads a results folder or a tidy CSV once, takes (or computes)
+the analysis once, and lays out the per-run residuals and the Box-Cox profile
+that the `Analysis` carries for the diagnostic figures. Nothing here fits a model.
 """
 
 from __future__ import annotations
@@ -118,14 +118,6 @@ def _levels_from(runs, factors, experiment, adict=None) -> dict[str, tuple[str, 
     return levels
 
 
-def _read_folder(folder: Path):
-    """(runs DataFrame, Experiment, host dict, session dict) of a results folder."""
-    from benchharness.results.journal import load_results
-
-    res = load_results(folder)
-    return res.runs, res.experiment, dict(res.host or {}), dict(getattr(res, "session", {}) or {})
-
-
 def _design_of(experiment, runs, factors, levels) -> dict:
     import numpy as np
 
@@ -198,87 +190,132 @@ def _seed_used(session: dict, experiment) -> int | None:
     return seed
 
 
+@dataclass(frozen=True)
+class _Source:
+    """What a report reads, read once: the runs and what the results folder says."""
+
+    runs: Any                       # DataFrame as read (factor columns as the loader gives)
+    text: str                       # how the source is named in messages
+    experiment: Any = None
+    host: Mapping[str, Any] = field(default_factory=dict)
+    session: Mapping[str, Any] = field(default_factory=dict)
+    folder: Path | None = None
+    results: Any = None             # benchharness.results.journal.Results of a folder
+
+    def for_analysis(self):
+        """What `analyze` is given: the folder already read, else the table."""
+        return self.results if self.results is not None else self.runs
+
+
 def collect(source, *, analysis=None, response: str | None = None,
             factors: list[str] | None = None, block: str | None = None,
             compute_analysis: bool = True, **analyze_kwargs) -> ReportData:
-    """Gather a `ReportData` from a results folder, a CSV path or a DataFrame.
+    """Gather a `ReportData` from a results folder (a path, or one already read:
+    `benchharness.results.journal.Results`), a CSV path or a DataFrame.
 
     ``analysis`` may be an `Analysis` object or an analysis.json dict; without it,
     a results folder's ``analysis.json`` is used when it answers the same question
-    (same response and factors), else the analysis is computed.
+    (same response and factors), else the analysis is computed. The source is read
+    once; the per-run residuals, fitted values and Box-Cox profile of the figures
+    come from the `Analysis` (for a stored analysis.json, from the analysis run
+    again with the options it records).
     """
+    src = _read_source(source, factors)
+    factors = _factor_list(factors, src, analysis)
+    runs = _text_factors(src.runs, factors)
+    user_block = block
+    adict, obj, notes = _analysis_for(src, runs, analysis, response, factors, user_block,
+                                      compute_analysis, analyze_kwargs)
+    response = adict.get("response") or response or "wall_s"
+    if response not in runs.columns:
+        raise DataError(f"{src.text}: no response column {response!r}")
+    block = _block_used(adict, runs, factors, _default_block(block, src.experiment, runs))
+    levels = _levels_from(runs, factors, src.experiment, adict)
+    residuals = _residual_frame(obj, runs, factors) if obj is not None else None
+    profile = _profile_frame(obj, adict, len(runs))
+    extra, extra_notes = _extra_sections(src.folder, src.experiment)
+    from benchharness.measure.floor import note as floor_note
+
+    extra_notes += floor_note(runs, src.session, response)  # peak memory at the launcher's size
+    seed = _seed_used(src.session, src.experiment)
+    return ReportData(
+        name=_name_of(src), about=str(getattr(src.experiment, "about", None) or ""),
+        response=response, factors=tuple(factors), levels=levels, analysis=adict, runs=runs,
+        residuals=residuals, profile=profile,
+        design=_design_section(src, runs, factors, levels, seed), host=dict(src.host),
+        folder=src.folder, source=src.text,
+        reproduce=_reproduce_command(src.folder, src.experiment, seed, src.session),
+        block=block, extra=tuple(extra), extra_notes=tuple(notes + extra_notes),
+        better=_declared_metric(src.folder, response),
+    )
+
+
+def _read_source(source, factors) -> _Source:
+    """Read a results folder, CSV or DataFrame once."""
     import pandas as pd
 
-    experiment = None
-    host: dict = {}
-    session: dict = {}
-    folder: Path | None = None
+    from benchharness.results.journal import Results
+
     if isinstance(source, pd.DataFrame):
-        runs = source
-        src_text = "<table>"
-    else:
-        path = Path(source)
-        src_text = str(path)
-        if path.is_dir():
-            folder = path
-            runs, experiment, host, session = _read_folder(path)
-        else:
-            from benchharness.results.source import load_table
+        return _Source(runs=source, text="<table>")
+    if isinstance(source, Results):
+        return _folder_source(source)
+    path = Path(source)
+    if path.is_dir():
+        from benchharness.results.journal import load_results
 
-            runs, experiment = load_table(path, factors=factors)
+        return _folder_source(load_results(path))
+    from benchharness.results.source import load_table
 
+    runs, experiment = load_table(path, factors=factors)
+    return _Source(runs=runs, text=str(path), experiment=experiment)
+
+
+def _folder_source(res) -> _Source:
+    return _Source(runs=res.runs, text=str(res.path), experiment=res.experiment,
+                   host=dict(res.host or {}), session=dict(getattr(res, "session", {}) or {}),
+                   folder=Path(res.path), results=res)
+
+
+def _factor_list(factors, src: _Source, analysis) -> list[str]:
+    """The factors asked for, else the experiment's, else the analysis'; all must be columns."""
     if factors is None:
-        if experiment is not None:
-            factors = list(experiment.factor_names)
+        if src.experiment is not None:
+            factors = list(src.experiment.factor_names)
         elif analysis is not None:
             factors = _factor_names(_as_dict(analysis))
         if not factors:
-            raise DataError(f"{src_text}: name the factors (--factors A,B,...)")
+            raise DataError(f"{src.text}: name the factors (--factors A,B,...)")
     factors = list(factors)
-    missing = [f for f in factors if f not in runs.columns]
+    missing = [f for f in factors if f not in src.runs.columns]
     if missing:
-        raise DataError(f"{src_text}: no column named {missing[0]!r} "
-                        f"(columns: {', '.join(map(str, runs.columns))})")
-    raw_runs = runs
-    user_block = block
+        raise DataError(f"{src.text}: no column named {missing[0]!r} "
+                        f"(columns: {', '.join(map(str, src.runs.columns))})")
+    return factors
+
+
+def _text_factors(runs, factors):
+    """A copy of the runs with every factor column as text (what the renderers compare)."""
     runs = runs.copy()
     for f in factors:
         runs[f] = runs[f].astype(str)
+    return runs
 
-    if block is None:
-        if experiment is not None and getattr(experiment, "order", None) == "blocked" \
-                and "block" in runs.columns:
-            block = "block"
-        elif "host" in runs.columns and runs["host"].nunique(dropna=True) > 1:
-            block = "host"
 
-    obj = analysis
-    adict = _as_dict(analysis) if analysis is not None else None
-    if adict is None and folder is not None and (folder / "analysis.json").exists():
-        stored = json.loads((folder / "analysis.json").read_text())
-        same_resp = response is None or stored.get("response") == response
-        same_fac = stored.get("factors") is None or _factor_names(stored) == factors
-        if same_resp and same_fac:
-            adict = stored
-    if adict is None and nothing_finished(runs, response or "wall_s"):
-        # Every timed run failed or timed out: a report of the design and of why the runs
-        # did not finish is still worth reading; there is just nothing to analyse.
-        adict = unanalysed(runs, response or "wall_s", factors)
-    if adict is None:
-        if not compute_analysis:
-            raise DataError(f"{src_text}: no analysis to report")
-        from benchharness import analyze
+def _default_block(block, experiment, runs):
+    """The block column a default analysis would use (before reading the analysis)."""
+    if block is not None:
+        return block
+    if experiment is not None and getattr(experiment, "order", None) == "blocked" \
+            and "block" in runs.columns:
+        return "block"
+    if "host" in runs.columns and runs["host"].nunique(dropna=True) > 1:
+        return "host"
+    return None
 
-        target = raw_runs if isinstance(source, pd.DataFrame) else Path(source)
-        obj = analyze(target, response=response or "wall_s", factors=factors,
-                      block=user_block, **analyze_kwargs)
-        adict = _as_dict(obj)
-    adict = _jsonable(adict)
-    response = adict.get("response") or response or "wall_s"
-    if response not in runs.columns:
-        raise DataError(f"{src_text}: no response column {response!r}")
 
-    # The block the analysis actually used, read from its ANOVA rows.
+def _block_used(adict, runs, factors, block):
+    """The block the analysis actually used, read from its ANOVA rows."""
     terms = {r.get("term") for r in adict.get("anova") or []}
     if adict.get("block") and adict["block"] in runs.columns:
         block = adict["block"]
@@ -288,52 +325,116 @@ def collect(source, *, analysis=None, response: str | None = None,
         for cand in ("block", "host"):
             if cand in terms and cand in runs.columns and cand not in factors:
                 block = cand
+    return block
 
-    levels = _levels_from(runs, factors, experiment, adict)
 
-    residuals = None
-    if obj is not None and not isinstance(obj, Mapping):
-        residuals = _residuals_of(obj, runs, factors)
-    profile = (adict.get("transform") or {}).get("profile")
-    from benchharness.report import model
+def _analysis_for(src: _Source, runs, analysis, response, factors, user_block,
+                  compute_analysis: bool, analyze_kwargs):
+    """(analysis dict as analysis.json, `Analysis` with the per-run arrays or None, notes).
 
-    residuals = _normalise_residuals(residuals)
-    if residuals is None and not adict.get("unanalysed"):
+    In order: the analysis given; the folder's analysis.json when it answers the
+    same question; a table where nothing finished; the analysis computed here.
+    """
+    notes: list[str] = []
+    if analysis is not None and not isinstance(analysis, Mapping):
+        return _jsonable(_as_dict(analysis)), analysis, notes
+    adict = _as_dict(analysis) if analysis is not None else _stored_analysis(src, response,
+                                                                             factors)
+    if adict is not None:
+        obj = None
+        if not adict.get("unanalysed"):
+            obj, note = _arrays_for(adict, src, factors)
+            notes += [note] if note else []
+        return _jsonable(adict), obj, notes
+    if nothing_finished(runs, response or "wall_s"):
+        # Every timed run failed or timed out: a report of the design and of why the runs
+        # did not finish is still worth reading; there is just nothing to analyse.
+        return _jsonable(unanalysed(runs, response or "wall_s", factors)), None, notes
+    if not compute_analysis:
+        raise DataError(f"{src.text}: no analysis to report")
+    from benchharness import analyze
+
+    obj = analyze(src.for_analysis(), response=response or "wall_s", factors=factors,
+                  block=user_block, **analyze_kwargs)
+    return _jsonable(_as_dict(obj)), obj, notes
+
+
+def _stored_analysis(src: _Source, response, factors) -> dict | None:
+    """The folder's analysis.json when it is about the same response and factors."""
+    if src.folder is None or not (src.folder / "analysis.json").exists():
+        return None
+    stored = json.loads((src.folder / "analysis.json").read_text())
+    same_resp = response is None or stored.get("response") == response
+    same_fac = stored.get("factors") is None or _factor_names(stored) == factors
+    return stored if same_resp and same_fac else None
+
+
+def _arrays_for(adict: Mapping, src: _Source, factors):
+    """(`Analysis`, None) of the runs with the options ``adict`` records, for the per-run
+    figures; (None, why) when the runs no longer give that model.
+
+    The tables shown stay those of ``adict``; only the residuals, fitted values and
+    Box-Cox profile come from here (the same model, fitted once, by the analysis).
+    """
+    from benchharness import analyze
+    from benchharness.errors import BenchharnessError
+
+    model = adict.get("model") or {}
+    tr = adict.get("transform") or {}
+    spec = str(model.get("spec") or "full")
+    block = adict.get("block")
+    options = dict(
+        response=adict.get("response") or "wall_s", factors=factors,
+        block=(False if not block else block if block in src.runs.columns else None),
+        transform=tr.get("requested") or tr.get("name") or "auto",
+        ss_type=model.get("ss_type_requested") or model.get("ss_type") or 2,
+        alpha=float(model.get("alpha") or adict.get("alpha") or 0.05),
+        reference=model.get("references") or None, comparisons=False, art=False)
+    # "full" is also what the default model records; the default is tried first
+    for m in ([None, "full"] if spec == "full" else
+              [None] if spec == "every alias chain" else [spec]):
         try:
-            residuals = model.residual_table(runs, adict, factors, block)
-        except (KeyError, ValueError) as exc:  # e.g. a response with no usable values
-            raise DataError(f"{src_text}: cannot compute residuals: {exc}") from exc
-    # A fine profile of our own (cheap: one projection per λ); the analysis' coarse
-    # grid is the fallback.
-    stored = _normalise_profile(profile)
-    fine = None
-    if not adict.get("unanalysed") and (stored is None or len(runs) <= 50_000):
-        # (above 50,000 rows: the analysis' own grid)
-        fine = model.boxcox_profile(runs, adict, factors, block)
-    profile = fine if fine is not None else stored
+            an = analyze(src.for_analysis(), model=m, **options)
+        except BenchharnessError as exc:
+            return None, _no_residuals(f"the analysis cannot be repeated ({exc})")
+        if _same_model(an, adict):
+            return an, None
+    return None, _no_residuals("analysis.json describes a model the runs no longer give")
 
-    design = _design_of(experiment, runs, factors, levels)
-    seed = _seed_used(session, experiment)
+
+def _no_residuals(why: str) -> str:
+    return (f"The residual figures are left out: {why}; `benchharness analyze` with --json "
+            "writes a new analysis.json.")
+
+
+def _same_model(an, adict: Mapping) -> bool:
+    """Whether ``an`` fits the model and scale that ``adict`` records, on the same rows."""
+    model, tr = adict.get("model") or {}, adict.get("transform") or {}
+    lam, lam_an = tr.get("lambda"), an.transform.get("lambda")
+    same_lam = (lam is None and lam_an is None) or (
+        lam is not None and lam_an is not None and math.isclose(float(lam), float(lam_an),
+                                                                rel_tol=1e-9, abs_tol=1e-12))
+    return (list(an.model.get("terms") or []) == list(model.get("terms") or [])
+            and an.transform.get("name") == tr.get("name") and same_lam
+            and (adict.get("counts") or {}).get("rows") in (None, an.counts.get("rows")))
+
+
+def _name_of(src: _Source) -> str:
+    name = getattr(src.experiment, "name", None) or (
+        src.folder.name if src.folder else "experiment" if src.text == "<table>"
+        else Path(src.text).stem)
+    return str(name)
+
+
+def _design_section(src: _Source, runs, factors, levels, seed) -> dict:
+    """The design facts of the report: counts, the experiment's settings, how it was run."""
+    design = _design_of(src.experiment, runs, factors, levels)
     design["seed"] = seed
-    if session.get("cwd"):
-        design["run_from"] = session["cwd"]
-    if session.get("benchharness_version"):
-        design["version"] = session["benchharness_version"]
-    extra, extra_notes = _extra_sections(folder, experiment)
-    from benchharness.measure.floor import note as floor_note
-
-    extra_notes += floor_note(runs, session, response)  # peak memory at the launcher's size
-    better = _declared_metric(folder, response)
-    name = getattr(experiment, "name", None) or (
-        folder.name if folder else "experiment" if src_text == "<table>" else Path(src_text).stem)
-    about = getattr(experiment, "about", None) or ""
-    return ReportData(
-        name=str(name), about=str(about), response=response, factors=tuple(factors),
-        levels=levels, analysis=adict, runs=runs, residuals=residuals, profile=profile,
-        design=design, host=host, folder=folder, source=src_text,
-        reproduce=_reproduce_command(folder, experiment, seed, session), block=block,
-        extra=tuple(extra), extra_notes=tuple(extra_notes), better=better,
-    )
+    if src.session.get("cwd"):
+        design["run_from"] = src.session["cwd"]
+    if src.session.get("benchharness_version"):
+        design["version"] = src.session["benchharness_version"]
+    return design
 
 
 def nothing_finished(runs, response: str) -> bool:
@@ -424,68 +525,48 @@ def _factor_names(adict: Mapping) -> list[str]:
     return out
 
 
-def _residuals_of(obj, runs, factors):
-    """Per-run residual table from an `Analysis` object's arrays, levels joined by run id."""
+def _residual_frame(obj, runs, factors):
+    """Per-run residual table from an `Analysis`: run, position, factor levels (text),
+    fitted and residual on the analysis scale; None when the arrays do not fit ``runs``."""
     import numpy as np
     import pandas as pd
 
-    res = getattr(obj, "residuals", None)
-    fit = getattr(obj, "fitted", None)
-    pos = getattr(obj, "position", None)
+    res, fit, rows = (getattr(obj, k, None) for k in ("residuals", "fitted", "rows"))
+    if res is None or fit is None or rows is None:
+        return None
+    rows = np.asarray(rows)
+    if len(rows) != len(res) or (len(rows) and int(rows.max()) >= len(runs)):
+        return None   # an analysis of another table
+    used = runs.iloc[rows]
     run = getattr(obj, "run", None)
-    if res is None or fit is None or run is None or "run" not in runs.columns:
-        return None
-    res, fit, run = np.asarray(res, float), np.asarray(fit, float), np.asarray(run)
-    if not (len(res) == len(fit) == len(run)):
-        return None
-    frame = pd.DataFrame({"run": run, "fitted": fit, "residual": res})
-    if pos is not None and len(pos) == len(res):
-        frame["position"] = np.asarray(pos, float)
-    levels = runs.drop_duplicates("run").set_index("run")
-    cols = list(factors) + ([] if "position" in frame.columns else ["position"])
-    try:
-        joined = levels.loc[frame["run"], cols].reset_index(drop=True)
-    except KeyError:
-        return None
-    for c in cols:
-        frame[c] = joined[c].astype(str).to_numpy() if c in factors else joined[c].to_numpy()
+    pos = getattr(obj, "position", None)
+    frame = pd.DataFrame({
+        "run": np.asarray(run) if run is not None else np.arange(len(rows)),
+        "position": np.asarray(pos, float) if pos is not None else np.arange(len(rows)),
+    })
+    for f in factors:
+        frame[f] = used[f].astype(str).to_numpy()
+    frame["fitted"] = np.asarray(fit, float)
+    frame["residual"] = np.asarray(res, float)
     return frame
 
 
-def _normalise_residuals(frame):
-    if frame is None:
-        return None
-    try:
-        import pandas as pd
-
-        frame = pd.DataFrame(frame)
-    except Exception:
-        return None
-    if not {"fitted", "residual"} <= set(frame.columns):
-        return None
-    if "position" not in frame.columns:
-        return None
-    return frame
-
-
-def _normalise_profile(prof):
-    if prof is None:
-        return None
+def _profile_frame(obj, adict: Mapping, n_runs: int):
+    """(lambda, loglik) of the Box-Cox profile: the analysis' own likelihood on a fine grid
+    (up to 50,000 runs), else the grid analysis.json records; None without either."""
     import pandas as pd
 
-    if isinstance(prof, Mapping):
-        lam = prof.get("lambda") or prof.get("lambdas")
-        ll = prof.get("loglik") or prof.get("llf")
-        if lam is None or ll is None:
-            return None
-        return pd.DataFrame({"lambda": list(lam), "loglik": list(ll)})
-    try:
-        frame = pd.DataFrame(prof)
-    except Exception:
+    if obj is not None and n_runs <= 50_000 and getattr(obj, "boxcox", None) is not None:
+        lam, ll = obj.profile_curve()
+        return pd.DataFrame({"lambda": lam, "loglik": ll})
+    prof = (adict.get("transform") or {}).get("profile")
+    if not isinstance(prof, Mapping):
         return None
-    if {"lambda", "loglik"} <= set(frame.columns):
-        return frame
-    return None
+    lam, ll = prof.get("lambda"), prof.get("loglik")
+    if lam is None or ll is None:
+        return None
+    return pd.DataFrame({"lambda": list(lam), "loglik": [float("nan") if v is None else v
+                                                         for v in ll]})
 
 
 def finite(x) -> bool:

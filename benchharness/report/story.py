@@ -51,13 +51,6 @@ def anova_rows(data: ReportData) -> list[dict]:
     return rows
 
 
-def _term_parts(term: str, data: ReportData) -> tuple[str, ...] | None:
-    from benchharness.report.model import term_factors
-
-    names = list(data.factors) + ([data.block] if data.block else [])
-    return term_factors(term, names)
-
-
 def transform_sentence(data: ReportData) -> str:
     if data.analysis.get("unanalysed"):
         return ""

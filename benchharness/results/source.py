@@ -17,7 +17,8 @@ from benchharness.errors import DataError
 
 
 def load_table(source, factors: Sequence[str] | None = None):
-    """``(runs DataFrame, Experiment or None)`` for a results folder, CSV path or DataFrame."""
+    """``(runs DataFrame, Experiment or None)`` for a results folder (a path, or one already
+    read: `journal.Results`), a CSV path or a DataFrame."""
     import pandas as pd
 
     from benchharness.results import journal as J
@@ -32,17 +33,12 @@ def load_table(source, factors: Sequence[str] | None = None):
             if not isinstance(df[f].dtype, pd.CategoricalDtype):
                 df[f] = _as_categorical(df[f].astype(str))
         return df, exp
+    if isinstance(source, J.Results):
+        return results_table(source, factors), source.experiment
     path = Path(os.fspath(source))
     if path.is_dir():
         res = J.load_results(path)
-        df = res.runs
-        exp = res.experiment
-        if factors is not None:
-            _check_columns(df, factors, str(path / "runs.csv"))
-            for f in factors:
-                if not isinstance(df[f].dtype, pd.CategoricalDtype):
-                    df[f] = _as_categorical(df[f].astype("string").astype(object))
-        return df, exp
+        return results_table(res, factors), res.experiment
     if not path.exists():
         raise DataError(f"{path}: no such file or folder; give a results folder or a CSV file")
     if factors is None:
@@ -61,6 +57,23 @@ def load_table(source, factors: Sequence[str] | None = None):
     for f in factors:
         df[f] = _as_categorical(df[f])
     return df, None
+
+
+def results_table(res, factors: Sequence[str] | None = None):
+    """The runs table of a results folder already read (`journal.Results`), with the
+    ``factors`` asked for (columns beyond the experiment's) as text categories."""
+    import pandas as pd
+
+    df = res.runs
+    if factors is None:
+        return df
+    _check_columns(df, factors, str(res.path / "runs.csv"))
+    plain = [f for f in factors if not isinstance(df[f].dtype, pd.CategoricalDtype)]
+    if plain:
+        df = df.copy()   # the folder's own table stays as read
+        for f in plain:
+            df[f] = _as_categorical(df[f].astype("string").astype(object))
+    return df
 
 
 def _check_columns(df, factors, where: str) -> None:
