@@ -22,6 +22,7 @@ EXPERIMENT = """\
       wait: {short: {s: "0.002"}, long: {s: "0.03"}}
       tag: [a, b]
     replicates: 3
+    warmup: 1
     seed: 5
     """
 
@@ -127,6 +128,10 @@ def test_report_renders_the_stored_tables_with_the_analysis_residuals(ran):
     an = analyze(folder)
     np.testing.assert_allclose(d.residuals["residual"].to_numpy(), an.residuals, atol=1e-12)
     np.testing.assert_allclose(d.residuals["fitted"].to_numpy(), an.fitted, atol=1e-12)
+    # each residual sits beside its own run's levels (warm-up rows are in the table read)
+    assert (d.runs["status"] == "warmup").sum() == 4
+    by_run = d.runs.drop_duplicates("run").set_index("run")
+    assert list(d.residuals["wait"]) == [by_run.loc[r, "wait"] for r in d.residuals["run"]]
     lam, ll = an.profile_curve()
     np.testing.assert_allclose(d.profile["loglik"].to_numpy(), ll, equal_nan=True)
 

@@ -110,9 +110,29 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     ``block``: None or "auto" picks the default block column (``block`` for blocked
     experiments, ``host`` when it has more than one value); False means no block.
     """
-    import pandas as pd
-
     df, exp = load_source(data, factors)
+    factors = _factor_list(factors, exp)
+    _check_columns(df, factors, response)
+    notes = list(getattr(df, "attrs", {}).get("journal_notes", ()))
+    df, source_rows, status_is = _timed_runs(df)
+    df, block, has_hosts = _block_column(df, exp, block, factors, response, notes)
+    codes, levels, order_source = _code_factors(df, factors, exp)
+    ok = status_is("ok")
+    status_counts = _status_counts(codes, levels, factors, ok, status_is)
+    y, use = _response_values(df, response, ok, status_is, notes)
+    block, block_codes, block_levels = _block_codes(df, block, use, notes)
+    return Prepared(
+        response=response, factors=tuple(factors), levels=tuple(levels),
+        codes=tuple(c[use] for c in codes), block=block, block_levels=tuple(block_levels),
+        block_codes=block_codes, y=y[use], run=_numeric(df, "run", use),
+        position=_numeric(df, "position", use), status_counts=status_counts,
+        notes=tuple(notes), experiment=exp, order_source=order_source,
+        extra=_extra_columns(df, use, has_hosts, block), rows=source_rows[use],
+    )
+
+
+def _factor_list(factors, exp) -> list[str]:
+    """The factors asked for, else the experiment's; each named once."""
     if factors is None:
         if exp is None:
             raise UsageError("name the factors (--factors A,B or factors=[...]): a plain table does "
@@ -125,6 +145,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         raise UsageError("at least one factor is needed")
     if len(set(factors)) != len(factors):
         raise UsageError("a factor is named twice in the factor list")
+    return factors
+
+
+def _check_columns(df, factors, response) -> None:
+    """Every factor and the response are columns; the response is not a factor."""
     columns = set(df.columns)
     missing = [f for f in factors if f not in columns]
     if missing:
@@ -136,15 +161,24 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
     if response in factors:
         raise UsageError(f"{response!r} cannot be both the response and a factor")
 
-    notes = list(getattr(df, "attrs", {}).get("journal_notes", ()))
-    # status: analyse ok rows only; warm-up rows are not part of the experiment.
-    if "status" in columns:
+
+def _timed_runs(df):
+    """(table without warm-up rows, their row numbers in the table read, status test).
+
+    ``status_is(label)`` is a boolean mask over the rows kept; a table without a
+    ``status`` column counts every row as ok.
+    """
+    import pandas as pd
+
+    source_rows = np.arange(len(df))
+    if "status" in df.columns:
         st_codes, st_labels = pd.factorize(df["status"].astype(object), sort=False)
         st_labels = [str(x).strip() for x in st_labels]
-        if "warmup" in st_labels:
+        if "warmup" in st_labels:   # warm-up rows are not part of the experiment
             keep = st_codes != st_labels.index("warmup")
             df = df.loc[keep]
             st_codes = st_codes[keep]
+            source_rows = source_rows[keep]
     else:
         st_codes, st_labels = np.zeros(len(df), dtype=np.int64), ["ok"]
 
@@ -155,32 +189,43 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
 
     if len(df) == 0:
         raise DataError("the data have no runs to analyse")
+    return df, source_rows, status_is
 
-    # block column
-    order_blocked = getattr(exp, "order", None) == "blocked"
+
+def _runs_in_blocks(exp) -> bool:
+    """Whether the experiment ran its replicates as blocks (order, a gate, confounded blocks)."""
+    if getattr(exp, "order", None) == "blocked":
+        return True
+    sections = getattr(exp, "sections", None) or {}
+    if not hasattr(sections, "get"):
+        return False
     # The gate runs baseline and candidate back to back in blocks (benchharness.gate):
     # its folders are blocked experiments too.
-    sections = getattr(exp, "sections", None) or {}
-    if hasattr(sections, "get") and sections.get("gate") is not None:
-        order_blocked = True
+    if sections.get("gate") is not None:
+        return True
     # A two-level design in confounded blocks (design: {blocks: N} / block_on): its blocks
     # are part of the plan, so they enter the model (the chains confounded with them are
     # then reported, not estimated).
-    if hasattr(sections, "get") and sections.get("design") is not None:
-        from benchharness.design.spec import design_of
-        from benchharness.errors import BenchharnessError
+    if sections.get("design") is None:
+        return False
+    from benchharness.design.spec import design_of
+    from benchharness.errors import BenchharnessError
 
-        try:
-            if design_of(exp).blocking is not None:
-                order_blocked = True
-        except BenchharnessError:  # a bad design section is reported by plan/run
-            pass
+    try:
+        return design_of(exp).blocking is not None
+    except BenchharnessError:  # a bad design section is reported by plan/run
+        return False
+
+
+def _block_column(df, exp, block, factors, response, notes: list):
+    """(table, block column or None, whether the runs span several hosts)."""
+    columns = set(df.columns)
     has_hosts = "host" in columns and df["host"].astype(str).nunique() > 1
     if block is False or block == "":
         block = None
     elif block is None or block == "auto":
         block = None
-        if "block" in columns and (order_blocked or (
+        if "block" in columns and (_runs_in_blocks(exp) or (
                 has_hosts and df["block"].astype(str).nunique() > 1)):
             # On a cluster every replicate is a complete block run on one host,
             # so blocks are nested in hosts and the block term absorbs hosts.
@@ -201,7 +246,11 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
             raise DataError(f"no block column {block!r} in the data")
         if block in factors or block == response:
             raise UsageError(f"{block!r} cannot be both the block and a factor or the response")
+    return df, block, has_hosts
 
+
+def _code_factors(df, factors, exp):
+    """(codes, levels, where the level order came from) of every factor."""
     codes, levels = [], []
     order_source = "experiment" if exp is not None else "first appearance in the data"
     for f in factors:
@@ -213,21 +262,23 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
         c, lv = _code(df[f], listed, f)
         codes.append(c)
         levels.append(lv)
+    return codes, levels, order_source
 
-    # per factor cell: counts of runs by status (all statuses, before dropping)
-    ok = status_is("ok")
-    sizes = [len(lv) for lv in levels]
-    # counted over the observed cells only: memory O(rows), whatever the plan's size
+
+def _status_counts(codes, levels, factors, ok, status_is) -> list[dict[str, Any]]:
+    """Per factor cell: runs by status (all statuses, before dropping), over the observed
+    cells only (memory O(rows), whatever the plan's size)."""
     from benchharness.analysis.cells import index_cells
 
+    sizes = [len(lv) for lv in levels]
     seen = index_cells(codes, sizes)
     m_cells, inv = seen.count, seen.row_cell
-    status_counts = []
     lost_masks = {s: status_is(s) for s in _LOST}
     n_ok = np.bincount(inv[ok], minlength=m_cells)
     n_lost = {s: np.bincount(inv[m], minlength=m_cells) for s, m in lost_masks.items()}
     n_all = np.bincount(inv, minlength=m_cells)
     other = n_all - n_ok - sum(n_lost.values())
+    status_counts = []
     for cell in range(m_cells):
         labels = {f: lv[int(seen.levels[cell, j])] for j, (f, lv) in enumerate(zip(factors,
                                                                                  levels))}
@@ -240,6 +291,12 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
             "failure_rate": lost / runs if runs else 0.0,
             "flag": "timeouts" if n_lost["timeout"][cell] else None,
         })
+    return status_counts
+
+
+def _response_values(df, response, ok, status_is, notes: list):
+    """(response as floats, mask of the rows analysed: ok with a finite value)."""
+    import pandas as pd
 
     y_col = df[response]
     if pd.api.types.is_numeric_dtype(y_col.dtype):
@@ -253,6 +310,7 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
                      f"{response!r} value and {'was' if bad_y == 1 else 'were'} left out")
     n_lost = int((~ok).sum())
     if n_lost:
+        lost_masks = {s: status_is(s) for s in _LOST}
         said = {"timeout": "timed-out"}
         parts = [f"{int(m.sum())} {said.get(s, s)}" for s, m in lost_masks.items() if m.sum()]
         oth = n_lost - sum(int(m.sum()) for m in lost_masks.values())
@@ -268,44 +326,55 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
                             + (f" (it holds values like {sample!r})" if sample else "")
                             + "; name a numeric column with --response")
         raise DataError(f"no run with status ok and a numeric {response!r} value to analyse")
+    return y, use
 
-    block_codes, block_levels = None, ()
-    if block is not None:
-        bc, bl = _code(df[block], None, block)
-        # order blocks numerically when every label is an integer
-        try:
-            as_int = [int(b) for b in bl]
-            order = np.argsort(as_int, kind="stable")
-            remap = np.empty(len(bl), dtype=np.int64)
-            remap[order] = np.arange(len(bl))
-            bc = remap[bc]
-            bl = tuple(bl[i] for i in order)
-        except ValueError:
-            pass
-        bsel = bc[use]
-        present = np.unique(bsel)
-        if len(present) < len(bl):  # drop blocks with no ok runs
-            remap = -np.ones(len(bl), dtype=np.int64)
-            remap[present] = np.arange(len(present))
-            bsel = remap[bsel]
-            bl = tuple(bl[i] for i in present)
-        block_codes, block_levels = bsel, bl
-        if len(bl) < 2:
-            notes.append(f"block column {block!r} has a single value; no block term")
-            block, block_codes, block_levels = None, None, ()
 
-    def numeric(col):
-        if col not in columns:
-            return None
-        col_s = df[col]
-        if pd.api.types.is_numeric_dtype(col_s.dtype):
-            v = col_s.to_numpy(dtype=float)[use]
-        else:
-            v = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
-        return v if np.isfinite(v).all() else None
+def _block_codes(df, block, use, notes: list):
+    """(block, codes of the analysed rows, labels): blocks in numeric order when every
+    label is an integer, blocks without analysed runs dropped, a single block none."""
+    if block is None:
+        return None, None, ()
+    bc, bl = _code(df[block], None, block)
+    try:
+        as_int = [int(b) for b in bl]
+        order = np.argsort(as_int, kind="stable")
+        remap = np.empty(len(bl), dtype=np.int64)
+        remap[order] = np.arange(len(bl))
+        bc = remap[bc]
+        bl = tuple(bl[i] for i in order)
+    except ValueError:
+        pass
+    bsel = bc[use]
+    present = np.unique(bsel)
+    if len(present) < len(bl):  # drop blocks with no ok runs
+        remap = -np.ones(len(bl), dtype=np.int64)
+        remap[present] = np.arange(len(present))
+        bsel = remap[bsel]
+        bl = tuple(bl[i] for i in present)
+    if len(bl) < 2:
+        notes.append(f"block column {block!r} has a single value; no block term")
+        return None, None, ()
+    return block, bsel, bl
 
-    run = numeric("run")
-    position = numeric("position")
+
+def _numeric(df, col, use):
+    """Column ``col`` of the analysed rows as floats; None when absent or not all finite."""
+    import pandas as pd
+
+    if col not in df.columns:
+        return None
+    col_s = df[col]
+    if pd.api.types.is_numeric_dtype(col_s.dtype):
+        v = col_s.to_numpy(dtype=float)[use]
+    else:
+        v = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
+    return v if np.isfinite(v).all() else None
+
+
+def _extra_columns(df, use, has_hosts, block) -> dict:
+    """Hosts (when blocks are nested in them) and the load at each run's start."""
+    import pandas as pd
+
     extra = {}
     if has_hosts and block in ("block", "block@host"):
         hc, hl = _code(df["host"].astype(str), None, "host")
@@ -316,13 +385,7 @@ def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
             remap[present] = np.arange(len(present))
             extra["host_codes"] = remap[hsel]
             extra["host_levels"] = tuple(hl[i] for i in present)
-    if "load_1m" in columns:  # machine load at the start of each run (runs.csv column)
+    if "load_1m" in df.columns:  # machine load at the start of each run (runs.csv column)
         col_s = df["load_1m"]
         extra["load_1m"] = pd.to_numeric(col_s, errors="coerce").to_numpy(dtype=float)[use]
-    return Prepared(
-        response=response, factors=tuple(factors), levels=tuple(levels),
-        codes=tuple(c[use] for c in codes), block=block, block_levels=tuple(block_levels),
-        block_codes=block_codes, y=y[use], run=run, position=position,
-        status_counts=status_counts, notes=tuple(notes), experiment=exp,
-        order_source=order_source, extra=extra, rows=np.flatnonzero(use),
-    )
+    return extra

@@ -70,13 +70,22 @@ def render_figure(fig, name, title, caption, section="effects", highlight=False,
 
 def encode_png(rgba) -> bytes:
     """PNG of an RGBA buffer, quantised to an adaptive 256-colour palette (plots have few
-    colours, so the file shrinks several times at no visible cost)."""
+    colours, so the file shrinks several times at no visible cost; the octree method
+    is several times faster than median cut, at the same size)."""
     from PIL import Image
 
     img = Image.fromarray(rgba[..., :3].copy())
-    q = img.quantize(colors=256, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
+    q = img.quantize(colors=256, method=Image.Quantize.FASTOCTREE, dither=Image.Dither.NONE)
+    # the commonest colour is the background: keep it exactly white (the octree would
+    # average it with the anti-aliased pixels next to it)
+    counts = q.histogram()[:256]
+    bg = max(range(len(counts)), key=counts.__getitem__)
+    palette = q.getpalette()
+    if all(v >= 248 for v in palette[3 * bg: 3 * bg + 3]):
+        palette[3 * bg: 3 * bg + 3] = [255, 255, 255]
+        q.putpalette(palette)
     out = io.BytesIO()
-    q.save(out, format="PNG", optimize=False, compress_level=9)
+    q.save(out, format="PNG", optimize=False, compress_level=6)
     return out.getvalue()
 
 

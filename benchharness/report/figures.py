@@ -692,59 +692,109 @@ def interaction_pairs(data: ReportData) -> list[tuple[str, str]]:
     return list(combinations(data.factors, 2))
 
 
-def make_figures(data: ReportData, seed: int = 0,
-                 max_points: int = MAX_POINTS_PER_CELL) -> FigureSet:
-    """Render every figure of the report."""
-    import matplotlib
-    import numpy as np
+#: from this many analysed runs on, the figures are drawn by two processes at once
+PARALLEL_MIN_RUNS = 2000
 
-    rng = np.random.default_rng(seed)
+
+def make_figures(data: ReportData, seed: int = 0,
+                 max_points: int = MAX_POINTS_PER_CELL, workers: int | None = None) -> FigureSet:
+    """Render every figure of the report.
+
+    Each figure is one job with its own random stream (``seed`` and its place in the
+    list), so the figures are the same whether the jobs run one after another or,
+    with ``workers`` > 1, in that many forked processes (default: two on a machine
+    with two or more cores when the report has `PARALLEL_MIN_RUNS` runs or more).
+    """
     out = FigureSet()
-    seen: dict[str, int] = {}
     if data.analysis.get("unanalysed"):
         return out  # no run finished: no figure would show anything
+    jobs = _figure_jobs(data, seed, max_points)
+    if workers is None:
+        workers = _default_workers(data)
+    seen: dict[str, int] = {}
+    for fig, note in _run_jobs(jobs, workers):
+        if fig is not None:
+            # two factor names may share a slug ("a b", "a-b"): keep every file
+            n = seen.get(fig.name, 0)
+            seen[fig.name] = n + 1
+            if n:
+                from dataclasses import replace
 
-    def add(fig):
-        # two factor names may share a slug ("a b", "a-b"): keep every file
-        n = seen.get(fig.name, 0)
-        seen[fig.name] = n + 1
-        if n:
-            from dataclasses import replace
+                fig = replace(fig, name=f"{fig.name}-{n + 1}")
+            out.figures.append(fig)
+        if note:
+            out.notes.append(note)
+    return out
 
-            fig = replace(fig, name=f"{fig.name}-{n + 1}")
-        out.figures.append(fig)
+
+def _figure_jobs(data: ReportData, seed: int, max_points: int) -> list:
+    """The report's figures in order, each a call returning (Figure or None, note or None)."""
+    import numpy as np
+
+    from benchharness.report.tradeoff import tradeoff_figure
+
+    def rng(k):
+        return np.random.default_rng([seed, k])
+
+    def alone(fig):
+        return fig, None
+
+    jobs = [lambda: distributions(data, rng(0), max_points=max_points),
+            lambda: alone(effects_plot(data))]
+    jobs += [lambda a=a, b=b: alone(interaction(data, a, b)) for a, b in interaction_pairs(data)]
+    jobs += [lambda: alone(half_normal_plot(data)), lambda: alone(qq_plot(data)),
+             lambda: resid_fitted(data, rng(1)), lambda: alone(resid_position(data, rng(2))),
+             lambda: alone(boxcox_plot(data))]
+    # a choice with --also: its trade-off figure
+    jobs += [lambda sec=sec: alone(tradeoff_figure(sec, str(sec.get("id") or "extra")))
+             for sec in data.extra]
+    return jobs
+
+
+def _default_workers(data: ReportData) -> int:
+    """Two processes for a large report on a machine with two or more cores, else one."""
+    import multiprocessing
+    import os
+
+    if len(data.ok_runs) < PARALLEL_MIN_RUNS or multiprocessing.current_process().daemon:
+        return 1   # (a daemonic process may not start processes of its own)
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # not Linux
+        return 1
+    return min(2, cores)
+
+
+#: the jobs of the drawing in progress, read by forked workers (`_run_pending`)
+_PENDING: list = []
+
+
+def _run_pending(k: int):
+    return _draw(_PENDING[k])
+
+
+def _draw(job):
+    import matplotlib
 
     with matplotlib.rc_context(_rc()):
-        fig, note = distributions(data, rng, max_points=max_points)
-        add(fig)
-        if note:
-            out.notes.append(note)
-        eff = effects_plot(data)
-        if eff is not None:
-            add(eff)
-        for a, b in interaction_pairs(data):
-            add(interaction(data, a, b))
-        hn = half_normal_plot(data)
-        if hn is not None:
-            add(hn)
-        qq = qq_plot(data)
-        if qq is not None:
-            add(qq)
-        rf, note = resid_fitted(data, rng)
-        if rf is not None:
-            add(rf)
-        if note:
-            out.notes.append(note)
-        rp = resid_position(data, rng)
-        if rp is not None:
-            add(rp)
-        bc = boxcox_plot(data)
-        if bc is not None:
-            add(bc)
-        from benchharness.report.tradeoff import tradeoff_figure
+        return job()
 
-        for sec in data.extra:  # a choice with --also: its trade-off figure
-            tf = tradeoff_figure(sec, str(sec.get("id") or "extra"))
-            if tf is not None:
-                add(tf)
-    return out
+
+def _run_jobs(jobs: list, workers: int) -> list:
+    """Results of ``jobs`` in order: here, or in ``workers`` forked processes that share
+    the report's data with this one (nothing is copied in; each figure comes back)."""
+    global _PENDING
+
+    if workers <= 1 or len(jobs) < 2:
+        return [_draw(job) for job in jobs]
+    import multiprocessing
+
+    _PENDING = jobs
+    pool = multiprocessing.get_context("fork").Pool(min(workers, len(jobs)))
+    try:
+        # in order, one at a time: the largest figure (the distributions) starts first
+        return pool.map(_run_pending, range(len(jobs)), chunksize=1)
+    finally:
+        pool.close()
+        pool.join()
+        _PENDING = []
