@@ -38,16 +38,17 @@ import json
 import numpy as np, pandas as pd
 from threadpoolctl import threadpool_info
 import benchharness.analysis as A
+import benchharness.analysis.steps as S
 rng = np.random.default_rng(1)
 df = pd.DataFrame({"a": rng.choice(list("xyz"), 300), "b": rng.choice(list("pq"), 300)})
 df["wall_s"] = np.exp(rng.normal(0, 0.3, 300)) * np.where(df.a == "x", 1.5, 1.0)
 inside = []
-real = A._analyze
+real = S.run_analysis
 def spy(*args, **kw):
     out = real(*args, **kw)
     inside.append([(i["filepath"], i["num_threads"]) for i in threadpool_info()])
     return out
-A._analyze = spy
+S.run_analysis = spy
 res = A.analyze(df, factors=["a", "b"], art=True)
 after = [i["num_threads"] for i in threadpool_info()]
 print(json.dumps({"inside": inside[0], "after": after,

@@ -84,7 +84,7 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
                  model=None, ss_type=2, alpha=0.05, reference=None, adjust="bonferroni",
                  compare=None, art="auto", comparisons=True, better=None):
     """The work of `analyze` (same arguments), step by step."""
-    from benchharness.analysis import Analysis
+    from benchharness.analysis.result import Analysis
     from benchharness.analysis import findings as fd
     from benchharness.analysis import fraction as fr
     from benchharness.analysis.prepare import prepare

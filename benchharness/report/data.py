@@ -158,25 +158,29 @@ def _reproduce_command(folder: Path | None, experiment, seed, session=None) -> s
         return None
     argv = list((session or {}).get("argv") or [])
     if (session or {}).get("gate") and len(argv) > 1 and argv[1] == "gate":
-        # The gate's own command line, without --out (a new folder each time) and with
-        # the seed it used, so the blocks come in the same order.
-        parts, skip = ["benchharness"], False
-        for a in argv[1:]:
-            if skip:
-                skip = False
-                continue
-            if a in ("--out", "--seed"):
-                skip = True
-                continue
-            if a.startswith("--out=") or a.startswith("--seed="):
-                continue
-            parts.append(str(a))
-        if seed is not None:
-            parts += ["--seed", str(seed)]
-        return " ".join(shlex.quote(p) for p in parts)
+        return _gate_command(argv, seed)
     original = (session or {}).get("experiment_path")
     target = original if original and original != "<string>" else str(folder / "experiment.yaml")
     parts = ["benchharness", "run", str(target)]
+    if seed is not None:
+        parts += ["--seed", str(seed)]
+    return " ".join(shlex.quote(p) for p in parts)
+
+
+def _gate_command(argv: list, seed) -> str:
+    """The gate's own command line, without --out (a new folder each time) and with the
+    seed it used, so the blocks come in the same order."""
+    parts, skip = ["benchharness"], False
+    for a in argv[1:]:
+        if skip:
+            skip = False
+            continue
+        if a in ("--out", "--seed"):
+            skip = True
+            continue
+        if a.startswith("--out=") or a.startswith("--seed="):
+            continue
+        parts.append(str(a))
     if seed is not None:
         parts += ["--seed", str(seed)]
     return " ".join(shlex.quote(p) for p in parts)
