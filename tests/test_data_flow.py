@@ -3,8 +3,9 @@ once, and the reports render it (no second model in the report).
 
 The commands run in this process (`benchharness.cli.main`), with the folder
 reader, the analysis and the least-squares fit wrapped to count their calls.
-Planted truth: runs of `sleep` that take about 2 ms at ``wait=short`` and 30 ms
-at ``wait=long``; every report must say that ``wait`` matters.
+Planted truth: runs of `sleep` that take about 1 ms at ``wait=short`` and 150 ms
+at ``wait=long`` (far beyond what a busy machine adds); every report must say that
+``wait`` matters.
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ EXPERIMENT = """\
     about: Does the wait matter?
     command: [sleep, "{wait.s}"]
     factors:
-      wait: {short: {s: "0.002"}, long: {s: "0.03"}}
+      wait: {short: {s: "0.001"}, long: {s: "0.15"}}
       tag: [a, b]
     replicates: 3
     warmup: 1
