@@ -248,82 +248,97 @@ def derive(d: dict) -> list[dict]:
     comps = d.get("comparisons") or []
     rows = [r for r in d.get("anova") or []
             if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
-    out: list[dict] = []
     if ((d.get("model") or {}).get("no_variation") or {}).get("kind") == "constant":
         return _cautions(d)[:1]   # every run the same: that is the whole finding
+    out = _interaction_findings(rows, factors, comps, refs, alpha, conf)
+    out += _main_findings(rows, factors, out, comps, d.get("effects") or [], refs, alpha, conf)
+    best = d.get("best")
+    if best and best.get("cells"):
+        out.append(_best_with_unrun(best, conf))
+    out += _cautions(d)
+    return out
 
-    def sig_row(r):
-        p = r.get("p_holm", r.get("p"))
-        return p is not None and p < alpha
 
-    # ---- interactions -----------------------------------------------------------------------
+def _significant_row(r, alpha) -> bool:
+    p = r.get("p_holm", r.get("p"))
+    return p is not None and p < alpha
+
+
+def _interaction_findings(rows, factors, comps, refs, alpha, conf) -> list[dict]:
+    """Each significant interaction, a two-factor one followed by its simple effects."""
+    out: list[dict] = []
     for r in rows:
         members = term_members(r, factors)
-        if not members or len(members[0]) < 2 or not sig_row(r):
+        if not members or len(members[0]) < 2 or not _significant_row(r, alpha):
             continue
-        pf = members[0]
-        aliased = members[1:]
+        pf, aliased = members[0], members[1:]
         alias_text = ""
         if aliased:
             alias_text = (f"; this fraction cannot tell {':'.join(pf)} from "
                           + _and(":".join(m) for m in aliased) + ": the estimate is their sum")
         if len(pf) == 2:
-            clauses, simple = [], []
-            for x, y in (pf, pf[::-1]):
-                rowsx = [c for c in comps if c.get("method") == "simple"
-                         and c.get("factor") == x and set((c.get("within") or {})) == {y}
-                         and c.get("b") == refs.get(x, c.get("b"))]
-                if not rowsx:
-                    continue
-                by_level: dict[str, list[dict]] = {}
-                for c in rowsx:
-                    by_level.setdefault(c["a"], []).append(c)
-                    simple.append(_simple_finding(c, x, y, term_label(r), alpha))
-                parts = []
-                for lv, cs in by_level.items():
-                    each = "; ".join(
-                        f"{fmt_ratio(c['ratio'])} {fmt_interval(c['lower'], c['upper'])} "
-                        f"when {y}={c['within'][y]}" for c in cs)
-                    parts.append(f"{x}={lv} against {x}={cs[0]['b']}: {each}")
-                clauses.append(" | ".join(parts))
-            # called significant only when a stated simple effect agrees (no comparisons
-            # made: the F test alone)
-            agrees = not simple or any(x["significant"] for x in simple)
-            if agrees:
-                head = f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {_p_text(r)})"
-                statement = head + (": " + "; and ".join(clauses) if clauses else
-                                    ": the effect of each depends on the level of the other")
-            else:
-                statement = (f"{term_label(r)}: the F test gives {_p_text(r)}, but no simple "
-                             f"effect is distinguishable at {conf} after adjustment ("
-                             + "; and ".join(clauses) + ")")
-            statement += alias_text
-            out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
-                        "significant": agrees, "ratio": None, "lower": None, "upper": None,
-                        "p": r.get("p_holm", r["p"]), "p_raw": r["p"], "statement": statement,
-                        "per_level": clauses, "aliased": [":".join(m) for m in aliased]})
-            out += simple
-        else:
-            statement = (f"{_and(pf)} interact together ({term_label(r)}, {_p_text(r)})"
-                         f"{alias_text}: the effect of each depends on the levels of the "
-                         "others, so read the cell means rather than any single ratio")
-            out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
-                        "significant": True, "ratio": None, "lower": None, "upper": None,
-                        "p": r.get("p_holm", r["p"]), "p_raw": r["p"], "statement": statement, "per_level": [],
-                        "aliased": [":".join(m) for m in aliased]})
+            out += _two_factor_findings(r, pf, aliased, alias_text, comps, refs, alpha, conf)
+            continue
+        statement = (f"{_and(pf)} interact together ({term_label(r)}, {_p_text(r)})"
+                     f"{alias_text}: the effect of each depends on the levels of the "
+                     "others, so read the cell means rather than any single ratio")
+        out.append({"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
+                    "significant": True, "ratio": None, "lower": None, "upper": None,
+                    "p": r.get("p_holm", r["p"]), "p_raw": r["p"], "statement": statement,
+                    "per_level": [], "aliased": [":".join(m) for m in aliased]})
+    return out
 
+
+def _two_factor_findings(r, pf, aliased, alias_text, comps, refs, alpha, conf) -> list[dict]:
+    """A two-factor interaction stated per level of each partner, then its simple effects."""
+    clauses, simple = [], []
+    for x, y in (pf, pf[::-1]):
+        rowsx = [c for c in comps if c.get("method") == "simple"
+                 and c.get("factor") == x and set((c.get("within") or {})) == {y}
+                 and c.get("b") == refs.get(x, c.get("b"))]
+        if not rowsx:
+            continue
+        by_level: dict[str, list[dict]] = {}
+        for c in rowsx:
+            by_level.setdefault(c["a"], []).append(c)
+            simple.append(_simple_finding(c, x, y, term_label(r), alpha))
+        parts = []
+        for lv, cs in by_level.items():
+            each = "; ".join(
+                f"{fmt_ratio(c['ratio'])} {fmt_interval(c['lower'], c['upper'])} "
+                f"when {y}={c['within'][y]}" for c in cs)
+            parts.append(f"{x}={lv} against {x}={cs[0]['b']}: {each}")
+        clauses.append(" | ".join(parts))
+    # called significant only when a stated simple effect agrees (no comparisons
+    # made: the F test alone)
+    agrees = not simple or any(x["significant"] for x in simple)
+    if agrees:
+        head = f"{pf[0]} and {pf[1]} interact ({term_label(r)}, {_p_text(r)})"
+        statement = head + (": " + "; and ".join(clauses) if clauses else
+                            ": the effect of each depends on the level of the other")
+    else:
+        statement = (f"{term_label(r)}: the F test gives {_p_text(r)}, but no simple "
+                     f"effect is distinguishable at {conf} after adjustment ("
+                     + "; and ".join(clauses) + ")")
+    statement += alias_text
+    return [{"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
+             "significant": agrees, "ratio": None, "lower": None, "upper": None,
+             "p": r.get("p_holm", r["p"]), "p_raw": r["p"], "statement": statement,
+             "per_level": clauses, "aliased": [":".join(m) for m in aliased]}] + simple
+
+
+def _main_findings(rows, factors, found, comps, effects, refs, alpha, conf) -> list[dict]:
+    """Each factor's main effect, except one stated per level of its partner in ``found``."""
     inside: dict[str, list[str]] = {f: [] for f in factors}   # in a stated two-factor term
     higher: dict[str, list[str]] = {f: [] for f in factors}   # in a larger one
     unclear: dict[str, list[str]] = {f: [] for f in factors}  # F only, no simple effect
-    for f in out:
+    for f in found:
         if f["kind"] == "interaction":
             where = (higher if len(f["factors"]) > 2 else inside if f["significant"]
                      else unclear)
             for x in f["factors"]:
                 where[x].append(f["terms"][0])
-
-    # ---- main effects -----------------------------------------------------------------------
-    effects = d.get("effects") or []
+    out = []
     for r in rows:
         members = term_members(r, factors)
         if not members or len(members[0]) != 1:
@@ -333,30 +348,27 @@ def derive(d: dict) -> list[dict]:
             continue        # stated per level of its partner above
         out.append(_main_finding(r, f, members[1:], comps, effects, refs, alpha, conf,
                                  higher.get(f) or [], unclear.get(f) or []))
-
-    # ---- best -------------------------------------------------------------------------------
-    best = d.get("best")
-    if best and best.get("cells"):
-        found = _best_finding(best, conf)
-        # a fraction's cell that did not run: its mean is a prediction (see fraction.py)
-        unrun = [i for i in best.get("not_run") or []
-                 if i in (best.get("tied") or [0]) or i == 0]
-        if unrun:
-            found["not_run"] = [best["cells"][i]["levels"] for i in unrun]
-            if 0 in unrun:      # the best cell was never measured: its mean is a prediction
-                found["statement"] = (found["statement"]
-                                      .replace("best measured ", "best predicted ", 1)
-                                      .replace("Best measured: ", "Best predicted: ", 1))
-            found["statement"] += (
-                "; not run in this fraction: " + "; ".join(
-                    cell_text(best["cells"][i]["levels"]) for i in unrun[:TIED_NAMED])
-                + " (a mean predicted from the alias chains, as if each acts through its "
-                  "first-named member: run it to confirm)")
-        out.append(found)
-
-    # ---- cautions ---------------------------------------------------------------------------
-    out += _cautions(d)
     return out
+
+
+def _best_with_unrun(best: dict, conf: str) -> dict:
+    """The best-cell finding; a fraction's cell that did not run is said to be predicted."""
+    found = _best_finding(best, conf)
+    # a fraction's cell that did not run: its mean is a prediction (see fraction.py)
+    unrun = [i for i in best.get("not_run") or []
+             if i in (best.get("tied") or [0]) or i == 0]
+    if unrun:
+        found["not_run"] = [best["cells"][i]["levels"] for i in unrun]
+        if 0 in unrun:      # the best cell was never measured: its mean is a prediction
+            found["statement"] = (found["statement"]
+                                  .replace("best measured ", "best predicted ", 1)
+                                  .replace("Best measured: ", "Best predicted: ", 1))
+        found["statement"] += (
+            "; not run in this fraction: " + "; ".join(
+                cell_text(best["cells"][i]["levels"]) for i in unrun[:TIED_NAMED])
+            + " (a mean predicted from the alias chains, as if each acts through its "
+              "first-named member: run it to confirm)")
+    return found
 
 
 def _p_text(r: dict) -> str:
@@ -516,49 +528,66 @@ def _best_finding(best: dict, conf: str) -> dict:
 
 
 def _cautions(d: dict) -> list[dict]:
+    """What limits the findings: no variation or error term, failed checks, disagreeing
+    ranks, differing hosts, timeouts, missing cells."""
+    return _fit_cautions(d) + _check_cautions(d) + _data_cautions(d)
+
+
+def _caution(key, text, **extra) -> dict:
+    return {"kind": "caution", "terms": [], "factors": [], "significant": None,
+            "ratio": None, "lower": None, "upper": None, "p": extra.pop("p", None),
+            "check": key, "statement": text, **extra}
+
+
+def _fit_cautions(d: dict) -> list[dict]:
     out = []
-
-    def caution(key, text, **extra):
-        out.append({"kind": "caution", "terms": [], "factors": [], "significant": None,
-                    "ratio": None, "lower": None, "upper": None, "p": extra.pop("p", None),
-                    "check": key, "statement": text, **extra})
-
-    dg = d.get("diagnostics") or {}
     res_df = (d.get("counts") or {}).get("df_resid")
     still = (d.get("model") or {}).get("no_variation")
-    if still:   # zero variance: a finding of its own (analysis/__init__.py)
-        caution("no_variation", still["statement"])
+    if still:   # zero variance: a finding of its own (analysis/steps.py)
+        out.append(_caution("no_variation", still["statement"]))
     lenth = any(r.get("test") for r in d.get("anova") or [])
     if res_df is not None and res_df <= 0 and lenth:
-        caution("residual_df", "No replicates: each effect was judged by Lenth's method "
-                "against the spread of the smaller effects, and the model's assumptions could "
-                "not be checked; replicate the fraction to test against run-to-run noise")
+        out.append(_caution(
+            "residual_df", "No replicates: each effect was judged by Lenth's method "
+            "against the spread of the smaller effects, and the model's assumptions could "
+            "not be checked; replicate the fraction to test against run-to-run noise"))
     elif res_df is not None and res_df <= 0:
-        caution("residual_df", "No residual degrees of freedom: nothing could be tested; "
-                "add replicates or fit fewer interactions")
+        out.append(_caution("residual_df", "No residual degrees of freedom: nothing could be "
+                            "tested; add replicates or fit fewer interactions"))
+    return out
+
+
+def _check_cautions(d: dict) -> list[dict]:
+    out = []
+    dg = d.get("diagnostics") or {}
     names = {"normality": "Residuals are not normal", "equal_variance":
              "Cells differ in spread", "drift": "Responses drift over the run order",
              "load": "Responses follow the machine's load"}
     for key, words in names.items():
         item = dg.get(key)
         if isinstance(item, dict) and item.get("ok") is False:
-            caution(key, f"{words}: {item.get('verdict')}", p=item.get("p"))
+            out.append(_caution(key, f"{words}: {item.get('verdict')}", p=item.get("p")))
     if dg.get("outlier_count"):
-        caution("outliers", f"Outlying runs: {dg.get('outlier_verdict')}")
+        out.append(_caution("outliers", f"Outlying runs: {dg.get('outlier_verdict')}"))
     art = d.get("art") or {}
     dis = [t["term"] for t in art.get("terms") or [] if t.get("agrees") is False]
     if dis:
-        caution("rank_check", "The rank-based cross-check disagrees for " + _and(dis)
-                + ": treat those tests as uncertain", terms=dis)
+        out.append(_caution("rank_check", "The rank-based cross-check disagrees for "
+                            + _and(dis) + ": treat those tests as uncertain", terms=dis))
     hosts = dg.get("hosts")
     if isinstance(hosts, dict) and hosts.get("differ"):
-        caution("hosts", f"Hosts differ: {hosts.get('verdict')}")
+        out.append(_caution("hosts", f"Hosts differ: {hosts.get('verdict')}"))
+    return out
+
+
+def _data_cautions(d: dict) -> list[dict]:
+    out = []
     fail = d.get("failures") or {}
     if fail.get("cells_with_timeouts"):
-        caution("timeouts", f"{fail.get('verdict')}")
+        out.append(_caution("timeouts", f"{fail.get('verdict')}"))
     c = d.get("counts") or {}
     expected = c.get("cells_planned") or c.get("cells_expected")   # a fraction plans fewer
     if c.get("cells") is not None and expected and c["cells"] < expected:
-        caution("missing_cells", f"{expected - c['cells']} of "
-                f"{expected} cells have no analysed runs")
+        out.append(_caution("missing_cells", f"{expected - c['cells']} of "
+                            f"{expected} cells have no analysed runs"))
     return out

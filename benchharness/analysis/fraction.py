@@ -437,35 +437,67 @@ def recognise(names, levels, codes, experiment=None):
     factorial, a factor with other than two levels, or an irregular set of cells
     gives None.
     """
-    import numpy as np
-
-    from benchharness.design.fractional import FractionalDesign, Generator
+    from benchharness.design.fractional import FractionalDesign
 
     k = len(names)
     if k < 2 or any(len(lv) != 2 for lv in levels) or k > W.MAX_FACTORS:
         return None
     labels = tuple((str(lv[0]), str(lv[1])) for lv in levels)
-    if experiment is not None:
-        from benchharness.design.spec import design_of
-        from benchharness.errors import BenchharnessError
+    declared = _declared_fraction(experiment, names, labels)
+    if declared is not None:
+        return declared
+    cells = _observed_cells(codes, k)
+    if cells is None:
+        return None
+    b0, pivots = _span(cells)
+    r = len(pivots)
+    if len(cells) != 2 ** r:
+        return None
+    if r == k:
+        # A full 2^k run once: no replicates, so its effects are judged by Lenth's method.
+        return FractionalDesign(tuple(names), labels, ()) if len(codes[0]) == 2 ** k else None
+    d = FractionalDesign(tuple(names), labels, tuple(_generators(pivots, b0, k)))
+    coded = {sum(1 << i for i, c in enumerate(cell) if c < 0) for cell in d.coded_cells()}
+    return d if coded == set(cells) else None
 
-        try:
-            d = design_of(experiment).design
-        except BenchharnessError:  # an invalid design section: plan and run report it
-            d = None
-        if (d is not None and d.is_fraction and tuple(d.factor_names) == tuple(names)
-                and tuple(d.level_labels) == labels):
-            return d
+
+def _declared_fraction(experiment, names, labels):
+    """The experiment's ``design:`` fraction when it describes exactly these factors."""
+    if experiment is None:
+        return None
+    from benchharness.design.spec import design_of
+    from benchharness.errors import BenchharnessError
+
+    try:
+        d = design_of(experiment).design
+    except BenchharnessError:  # an invalid design section: plan and run report it
+        return None
+    if (d is not None and d.is_fraction and tuple(d.factor_names) == tuple(names)
+            and tuple(d.level_labels) == labels):
+        return d
+    return None
+
+
+def _observed_cells(codes, k):
+    """The distinct cells as bit masks (bit i set where factor i sits at its first level,
+    coded -1), or None when there are none or too many to recognise a fraction from."""
+    import numpy as np
+
     if len(codes) != k or len(codes[0]) == 0:
         return None
     if len(codes[0]) > 1 << 20:
         return None   # recognising from the cells is for tables of ordinary size
-    # bit i of a cell = 1 where factor i sits at its first level (coded -1)
     weights = (1 << np.arange(k, dtype=np.int64))
     minus = np.column_stack([np.asarray(c) == 0 for c in codes]).astype(np.int64)
     cells = [int(v) for v in np.unique(minus @ weights)]
     if len(cells) > 1 << 14:
         return None   # more cells than any fraction we would recognise from a table
+    return cells
+
+
+def _span(cells):
+    """(first cell, reduced basis {pivot bit: row}) of the differences from the first cell
+    over GF(2) (Gauss-Jordan elimination on bit masks)."""
     b0 = cells[0]
     pivots: dict[int, int] = {}
     for c in cells[1:]:
@@ -479,12 +511,14 @@ def recognise(names, levels, codes, experiment=None):
                 if pivots[q] & low:
                     pivots[q] ^= v
             pivots[low.bit_length() - 1] = v
-    r = len(pivots)
-    if len(cells) != 2 ** r:
-        return None
-    if r == k:
-        # A full 2^k run once: no replicates, so its effects are judged by Lenth's method.
-        return FractionalDesign(tuple(names), labels, ()) if len(codes[0]) == 2 ** k else None
+    return b0, pivots
+
+
+def _generators(pivots, b0, k):
+    """One generator per factor outside the pivots: the word of pivot factors it equals,
+    with the sign the coset's first cell gives it."""
+    from benchharness.design.fractional import Generator
+
     gens = []
     for f in range(k):
         if f in pivots:
@@ -495,9 +529,8 @@ def recognise(names, levels, codes, experiment=None):
                 word |= 1 << p_
         sign = -1 if bin(b0 & (word | 1 << f)).count("1") % 2 else 1
         gens.append(Generator(f, word, sign))
-    d = FractionalDesign(tuple(names), labels, tuple(gens))
-    coded = {sum(1 << i for i, c in enumerate(cell) if c < 0) for cell in d.coded_cells()}
-    return d if coded == set(cells) else None
+    return gens
+
 
 
 def _mask(term_factors, names, design) -> int:

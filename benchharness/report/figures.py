@@ -122,108 +122,71 @@ def _scale_text(data: ReportData) -> str:
     return unit or "as measured"
 
 
+@dataclass(frozen=True)
+class _Panels:
+    """The distribution figure's layout: a panel per level of the second factor (columns)
+    and the third (rows); inside a panel, x runs over the first factor and the rest."""
+
+    factors: list
+    f1: str
+    col_f: str | None
+    row_f: str | None
+    inner: list          # the factors along x (the first one told by colour)
+    cols: list
+    rows: list
+    combos: list         # level combinations of ``inner``, one x position each
+
+
+def _panels(data: ReportData) -> _Panels:
+    import itertools
+
+    factors = list(data.factors)
+    col_f = factors[1] if len(factors) > 1 else None
+    row_f = factors[2] if len(factors) > 2 else None
+    inner = [factors[0]] + factors[3:]
+    return _Panels(factors=factors, f1=factors[0], col_f=col_f, row_f=row_f, inner=inner,
+                   cols=list(data.levels[col_f]) if col_f else [None],
+                   rows=list(data.levels[row_f]) if row_f else [None],
+                   combos=list(itertools.product(*[data.levels[f] for f in inner])))
+
+
 def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
     """Box plot per cell with every run (or a stated subsample) drawn over it."""
     import numpy as np
 
     ok, y = _ok_values(data)
-    factors = list(data.factors)
+    p = _panels(data)
     typical = float(np.median(y)) if len(y) else None
     mult, unit = display_scale(data.response, typical)
     yv = y * mult
-    f1 = factors[0]
-    col_f = factors[1] if len(factors) > 1 else None
-    row_f = factors[2] if len(factors) > 2 else None
-    inner = [f1] + factors[3:]
-    cols = list(data.levels[col_f]) if col_f else [None]
-    rows = list(data.levels[row_f]) if row_f else [None]
-    # x positions inside a panel: every combination of the inner factors.
-    import itertools
-
-    inner_combos = list(itertools.product(*[data.levels[f] for f in inner]))
-    n_in = len(inner_combos)
-    frame = ok[factors].astype(str).reset_index(drop=True)
+    frame = ok[p.factors].astype(str).reset_index(drop=True)
     codes = {(k if isinstance(k, tuple) else (k,)): v
-             for k, v in frame.groupby(factors, observed=True, sort=False).indices.items()}
-    color_of = dict(zip(data.levels[f1], _colors(len(data.levels[f1]))))
-    width = min(13.0, max(5.0, 1.4 + len(cols) * (0.6 + 0.42 * n_in)))
-    height = min(3.2 * len(rows) + 0.9, 30.0)
+             for k, v in frame.groupby(p.factors, observed=True, sort=False).indices.items()}
+    color_of = dict(zip(data.levels[p.f1], _colors(len(data.levels[p.f1]))))
+    n_in = len(p.combos)
+    width = min(13.0, max(5.0, 1.4 + len(p.cols) * (0.6 + 0.42 * n_in)))
+    height = min(3.2 * len(p.rows) + 0.9, 30.0)
     fig = new_figure(width, height)
-    axes = fig.subplots(len(rows), len(cols), squeeze=False, sharey=True)
-    subsampled = 0
+    axes = fig.subplots(len(p.rows), len(p.cols), squeeze=False, sharey=True)
     logax = _use_log_axis(data, y)
     max_points = min(max_points, max(200, MAX_POINTS_DISTRIBUTIONS // max(1, len(codes))))
     per_cell = len(yv) / max(1, len(codes))
     dot = 16 if per_cell <= 20 else 9 if per_cell <= 200 else 5
-    # Ticks name the inner factors after the first; the first is told by colour (legend).
-    if len(inner) == 1:
-        tick_text = [_wrap(c[0]) for c in inner_combos]
-        raw = [c[0] for c in inner_combos]
-    else:
-        raw = [" · ".join(c[1:]) for c in inner_combos]
-        tick_text = [_wrap(t) for t in raw]
-    longest = max((len(t) for t in raw), default=1)
-    rot = 30 if n_in * min(longest, 14) > 40 else 0
-    group = len(inner_combos) // max(1, len(data.levels[f1]))
-    for ri, rv in enumerate(rows):
-        for ci, cv in enumerate(cols):
+    ticks = _tick_labels(p)
+    ylabel = axis_label(data.response, unit) + (" — log axis" if logax else "")
+    subsampled = 0
+    for ri, rv in enumerate(p.rows):
+        for ci, cv in enumerate(p.cols):
             ax = axes[ri][ci]
-            boxes, positions, colors = [], [], []
-            px, py, pc = [], [], []
-            for xi, combo in enumerate(inner_combos):
-                lv = dict(zip(inner, combo))
-                if col_f:
-                    lv[col_f] = cv
-                if row_f:
-                    lv[row_f] = rv
-                key = tuple(lv[f] for f in factors)
-                idx = codes.get(key)
-                if idx is None or len(idx) == 0:
-                    continue
-                vals = yv[idx]
-                boxes.append(vals)
-                positions.append(xi)
-                colors.append(color_of[lv[f1]])
-                pts = vals
-                if len(pts) > max_points:
-                    pts = rng.choice(pts, size=max_points, replace=False)
-                    subsampled += 1
-                px.append(xi + rng.uniform(-0.18, 0.18, size=len(pts)))
-                py.append(pts)
-                pc += [color_of[lv[f1]]] * len(pts)
-            if boxes:
-                _boxes(ax, boxes, positions, colors)
-                ax.scatter(np.concatenate(px), np.concatenate(py), s=dot, c=pc, alpha=0.6,
-                           linewidths=0, rasterized=True, zorder=3)
-            ax.set_xticks(range(n_in))
-            ax.set_xticklabels(tick_text, rotation=rot, ha="right" if rot else "center",
-                               fontsize=8.5)
-            ax.set_xlim(-0.6, n_in - 0.4)
-            if len(inner) > 1:
-                for g in range(1, len(data.levels[f1])):
-                    ax.axvline(g * group - 0.5, color="#cccccc", lw=0.8, zorder=1)
-            if logax:
-                ax.set_yscale("log")
-                log_ticks(ax.yaxis, float(yv.min()), float(yv.max()))
-            title = []
-            if col_f:
-                title.append(f"{col_f} = {cv}")
-            if row_f:
-                title.append(f"{row_f} = {rv}")
-            if title:
-                ax.set_title(" · ".join(title), fontsize=9.5)
-            if ci == 0:
-                ax.set_ylabel(axis_label(data.response, unit)
-                              + (" — log axis" if logax else ""))
-            if ri == len(rows) - 1:
-                ax.set_xlabel(" · ".join(inner[1:]) if len(inner) > 1 else f1)
-            ax.grid(axis="x", visible=False)
-    if len(inner) > 1:
+            subsampled += _panel_points(ax, p, rv, cv, codes, yv, color_of, rng, max_points,
+                                        dot)
+            _panel_axes(ax, data, p, ticks, (ri, rv), (ci, cv), yv if logax else None, ylabel)
+    if len(p.inner) > 1:
         from matplotlib.patches import Patch
 
         handles = [Patch(facecolor=color_of[lv], alpha=0.6, edgecolor="#555555", label=_wrap(lv))
-                   for lv in data.levels[f1]]
-        fig.legend(handles=handles, title=f1, loc="outside upper center",
+                   for lv in data.levels[p.f1]]
+        fig.legend(handles=handles, title=p.f1, loc="outside upper center",
                    ncols=min(6, len(handles)), fontsize=8.5, title_fontsize=9)
     note = None
     if subsampled:
@@ -235,6 +198,79 @@ def distributions(data: ReportData, rng, max_points: int = MAX_POINTS_PER_CELL):
         cap += " " + note
     return render_figure(fig, "distributions", f"Runs per cell: {describe(data.response)}", cap,
                    "effects"), note
+
+
+def _tick_labels(p: _Panels):
+    """(tick texts, rotation): ticks name the inner factors after the first; the first is
+    told by colour (legend)."""
+    if len(p.inner) == 1:
+        raw = [c[0] for c in p.combos]
+    else:
+        raw = [" · ".join(c[1:]) for c in p.combos]
+    longest = max((len(t) for t in raw), default=1)
+    rot = 30 if len(p.combos) * min(longest, 14) > 40 else 0
+    return [_wrap(t) for t in raw], rot
+
+
+def _panel_points(ax, p: _Panels, rv, cv, codes, yv, color_of, rng, max_points, dot) -> int:
+    """One panel's boxes and points; returns how many of its cells were subsampled."""
+    import numpy as np
+
+    boxes, positions, colors = [], [], []
+    px, py, pc = [], [], []
+    subsampled = 0
+    for xi, combo in enumerate(p.combos):
+        lv = dict(zip(p.inner, combo))
+        if p.col_f:
+            lv[p.col_f] = cv
+        if p.row_f:
+            lv[p.row_f] = rv
+        idx = codes.get(tuple(lv[f] for f in p.factors))
+        if idx is None or len(idx) == 0:
+            continue
+        vals = yv[idx]
+        boxes.append(vals)
+        positions.append(xi)
+        colors.append(color_of[lv[p.f1]])
+        pts = vals
+        if len(pts) > max_points:
+            pts = rng.choice(pts, size=max_points, replace=False)
+            subsampled += 1
+        px.append(xi + rng.uniform(-0.18, 0.18, size=len(pts)))
+        py.append(pts)
+        pc += [color_of[lv[p.f1]]] * len(pts)
+    if boxes:
+        _boxes(ax, boxes, positions, colors)
+        ax.scatter(np.concatenate(px), np.concatenate(py), s=dot, c=pc, alpha=0.6,
+                   linewidths=0, rasterized=True, zorder=3)
+    return subsampled
+
+
+def _panel_axes(ax, data: ReportData, p: _Panels, ticks, row, col, log_values, ylabel) -> None:
+    """A panel's ticks, separators, log axis, title and the labels on the figure's edges."""
+    (ri, rv), (ci, cv) = row, col
+    tick_text, rot = ticks
+    n_in = len(p.combos)
+    ax.set_xticks(range(n_in))
+    ax.set_xticklabels(tick_text, rotation=rot, ha="right" if rot else "center", fontsize=8.5)
+    ax.set_xlim(-0.6, n_in - 0.4)
+    if len(p.inner) > 1:
+        group = n_in // max(1, len(data.levels[p.f1]))
+        for g in range(1, len(data.levels[p.f1])):
+            ax.axvline(g * group - 0.5, color="#cccccc", lw=0.8, zorder=1)
+    if log_values is not None:
+        ax.set_yscale("log")
+        log_ticks(ax.yaxis, float(log_values.min()), float(log_values.max()))
+    title = [f"{p.col_f} = {cv}"] if p.col_f else []
+    if p.row_f:
+        title.append(f"{p.row_f} = {rv}")
+    if title:
+        ax.set_title(" · ".join(title), fontsize=9.5)
+    if ci == 0:
+        ax.set_ylabel(ylabel)
+    if ri == len(p.rows) - 1:
+        ax.set_xlabel(" · ".join(p.inner[1:]) if len(p.inner) > 1 else p.f1)
+    ax.grid(axis="x", visible=False)
 
 
 def _boxes(ax, groups, positions, colors, width: float = 0.62) -> None:
@@ -452,32 +488,10 @@ def half_normal_plot(data: ReportData) -> Figure | None:
     ax = fig.subplots()
     xs = [float(p["abs_effect"]) for p in pts]
     ys = [float(p["quantile"]) for p in pts]
-    hot = [bool((by_label.get(p["label"]) or {}).get("active")
-                or (by_label.get(p["label"]) or {}).get("likely")) for p in pts]
-    ax.scatter([x for x, h in zip(xs, hot) if not h], [y for y, h in zip(ys, hot) if not h],
-               s=22, color=MUTED, zorder=3)
-    ax.scatter([x for x, h in zip(xs, hot) if h], [y for y, h in zip(ys, hot) if h],
-               s=30, color=ACCENT, zorder=3)
-    right_edge = max(xs)
-    for p, x, y, h in list(zip(pts, xs, ys, hot))[-min(5, len(pts)):]:
-        e = by_label.get(p["label"]) or {}
-        left = x > 0.5 * right_edge  # label on the side with room
-        ax.annotate(str(e.get("chain") or p["label"]), (x, y), fontsize=8,
-                    xytext=(-6 if left else 6, 0), textcoords="offset points", va="center",
-                    ha="right" if left else "left", color=ACCENT if h else INK)
-    ln = fr.get("lenth")
-    lines = []
-    if ln:
-        lines = [(ln.get("me"), "--", "margin of error (Lenth)"),
-                 (ln.get("sme"), ":", "simultaneous margin (Lenth)")]
-    else:
-        ses = [e.get("se") for e in fr.get("effects") or [] if finite(e.get("se"))]
-        df = fr.get("residual_df")
-        if ses and df:
-            from benchharness.analysis import dist as stats
-
-            cut = float(stats.t.ppf(1 - float(fr.get("alpha") or data.alpha) / 2, df)) * max(ses)
-            lines = [(cut, "--", f"smallest effect with p < {fr.get('alpha') or data.alpha:g}")]
+    hot = [_stands_out(by_label.get(p["label"])) for p in pts]
+    _chain_points(ax, xs, ys, hot)
+    _label_largest(ax, pts, xs, ys, hot, by_label)
+    lines = _margins(fr, data.alpha)
     for x, style, label in lines:
         if finite(x):
             ax.axvline(float(x), color=ACCENT, ls=style, lw=1, label=label)
@@ -495,6 +509,48 @@ def half_normal_plot(data: ReportData) -> Figure | None:
            "of it, past the dashed margin, are the active ones (highlighted).")
     return render_figure(fig, "half-normal", "Half-normal plot of the alias chains", cap, "fraction",
                    highlight=any(hot))
+
+
+def _stands_out(effect) -> bool:
+    """Whether a chain is active (or likely active, by Lenth's ME)."""
+    effect = effect or {}
+    return bool(effect.get("active") or effect.get("likely"))
+
+
+def _chain_points(ax, xs, ys, hot) -> None:
+    """The chains, those that stand out in the accent colour."""
+    ax.scatter([x for x, h in zip(xs, hot) if not h], [y for y, h in zip(ys, hot) if not h],
+               s=22, color=MUTED, zorder=3)
+    ax.scatter([x for x, h in zip(xs, hot) if h], [y for y, h in zip(ys, hot) if h],
+               s=30, color=ACCENT, zorder=3)
+
+
+def _label_largest(ax, pts, xs, ys, hot, by_label) -> None:
+    """Name the five largest chains, each on the side of its point with room."""
+    right_edge = max(xs)
+    for p, x, y, h in list(zip(pts, xs, ys, hot))[-min(5, len(pts)):]:
+        e = by_label.get(p["label"]) or {}
+        left = x > 0.5 * right_edge  # label on the side with room
+        ax.annotate(str(e.get("chain") or p["label"]), (x, y), fontsize=8,
+                    xytext=(-6 if left else 6, 0), textcoords="offset points", va="center",
+                    ha="right" if left else "left", color=ACCENT if h else INK)
+
+
+def _margins(fr: dict, alpha: float) -> list:
+    """(x, line style, label) of the margins that judge a chain: Lenth's ME and SME, else
+    the smallest effect significant at alpha; none when neither is known."""
+    ln = fr.get("lenth")
+    if ln:
+        return [(ln.get("me"), "--", "margin of error (Lenth)"),
+                (ln.get("sme"), ":", "simultaneous margin (Lenth)")]
+    ses = [e.get("se") for e in fr.get("effects") or [] if finite(e.get("se"))]
+    df = fr.get("residual_df")
+    if not (ses and df):
+        return []
+    from benchharness.analysis import dist as stats
+
+    cut = float(stats.t.ppf(1 - float(fr.get("alpha") or alpha) / 2, df)) * max(ses)
+    return [(cut, "--", f"smallest effect with p < {fr.get('alpha') or alpha:g}")]
 
 
 def _scatter_subsample(n: int, rng, cap: int = MAX_SCATTER):
