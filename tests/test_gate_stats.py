@@ -125,6 +125,48 @@ def test_one_candidate_failure_does_not_decide_a_failure_rate_does():
     assert judge(flaky, st).verdict != "regression"
 
 
+def test_six_close_blocks_at_the_tolerance_wait_for_the_pilot():
+    # Planted: the true ratio is the tolerance itself (1.05) plus 1%, and the first six
+    # blocks happen to lie close together (spread 0.6% where CV 5% noise gives about 7%).
+    # Planned from that spread the horizon would be 6 blocks: the whole level spent at
+    # once, on a statistic the same small spread inflates. The gate waits instead (the
+    # horizon stays at the pilot's 16 blocks until 16 blocks have estimated the noise).
+    thr = math.log(1.05)
+    d = [thr + 0.01 + 0.006 * z for z in (0.5, -1.0, 0.2, 1.1, -0.6, -0.2)]
+    blocks = [Block(1.0, math.exp(x)) for x in d]
+    j = judge(blocks, GateSettings())
+    assert j.verdict is None and j.horizon_blocks == 16
+    assert j.lower < 1.05 < j.upper
+    # the rule without the pilot called this a regression "with 0.95 confidence"
+    old = judge(blocks, GateSettings(horizon_from="current", level_calibration=0.7))
+    assert old.verdict == "regression" and old.horizon_blocks == 6
+    # a large slowdown is still called at the first look
+    big = [Block(1.0, math.exp(math.log(1.5) + 0.006 * z)) for z in (0.5, -1.0, 0.2, 1.1,
+                                                                    -0.6, -0.2)]
+    assert judge(big, GateSettings()).verdict == "regression"
+
+
+def test_own_horizon_null_paths_small_fixed_seed():
+    # Small, fixed-seed version of `gate_validation.py --sections calibrate`: paths at
+    # the boundary ratio, noise CV 5%, each with its own noise estimate and horizon.
+    from benchharness.gate.calibrate import (boundary_false_fail, boundary_table,
+                                             null_paths_at_boundary)
+
+    st = GateSettings(max_runs=40)
+    share = st.level_calibration
+    table = boundary_table(share * 0.05, st)     # the gate's seeded null paths
+    mu, se = null_paths_at_boundary(0.05, st, paths=6000, seed=5)
+    rate = {rule: boundary_false_fail(mu, se, 0.05, share, rule, st, table)
+            for rule in ("known", "no-pilot", "pilot")}
+    se3 = 3 * math.sqrt(0.04 * 0.96 / 6000)      # binomial standard error, 3 of them
+    # horizon from the true noise: the level spent (0.6 x 5% = 3%) is held
+    assert rate["known"] <= share * 0.05 + se3
+    # the horizon that follows the estimate from the first look runs over; the pilot
+    # brings it back within the 4.5% the gate promises at the boundary
+    assert rate["no-pilot"] > rate["pilot"] + 0.005
+    assert rate["pilot"] <= 0.045
+
+
 def test_budget_makes_it_inconclusive():
     st = GateSettings(max_runs=8, min_runs=6)
     j = judge(_blocks(1.05, 8, sd=0.05), st)
@@ -250,7 +292,10 @@ def test_issue_rates_from_2000_gates_each():
     assert rb["regression"] <= 0.05 + se(0.05)           # the boundary 1 + tolerance
     r2, runs2 = rates(1.10, 0.03, 40_000)
     assert r2["regression"] >= 0.90 - se(0.90)           # detection at 1 + 2 x tolerance
-    assert runs1 <= 0.80 * nfix(0.03) and runs2 <= 0.80 * nfix(0.03)
+    # the pilot (no horizon below 16 blocks) costs runs at CV 3%: about the fixed design's
+    # 11 at 1.00 and 1.10 (docs/gate.md), where the horizon alone needed 82-84% of them
+    # but ran over the level at the boundary at CV 5%
+    assert runs1 <= 1.10 * nfix(0.03) and runs2 <= 1.10 * nfix(0.03)
     # at CV 3% the fixed design needs only 11 runs and the first look (min_runs 6) is
     # already 55% of it, so the <= 50% figures for large effects are checked at CV 5%
     _, runs4 = rates(1.20, 0.05, 50_000)

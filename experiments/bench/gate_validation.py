@@ -14,7 +14,9 @@ noncentral t distribution.
     python experiments/bench/gate_validation.py --cvs 0.08 --sections rates   # one part
 
 Sections: ``rates`` (noise CV x true ratio, clean and with 5% of runs 1.5x as
-slow), ``tails`` (one look, no gate: how often the resistant statistic passes
+slow), ``calibrate`` (the boundary false-fail rate of the decision rule on null
+paths that each carry their own noise estimate and horizon, over noise CVs 2-12%:
+how the share of the level was chosen), ``tails`` (one look, no gate: how often the resistant statistic passes
 its clean-noise 1% and 0.5% points when 5% of runs are 1.5x as slow), ``drift``, ``workloads`` (three workloads at the boundary), ``failures``
 (flaky builds: equal failure rates, candidate or baseline failing more often,
 a build that never succeeds).
@@ -143,18 +145,58 @@ def tails(tol: float, paths: int = 40_000, seed: int = 1) -> None:
     print()
 
 
+def calibrate(settings: GateSettings, cvs, shares, paths: int = 10_000,
+              null_paths: int = 20_000) -> None:
+    """Boundary false-fail rate of the rule on null paths with their own horizons.
+
+    `benchharness.gate.calibrate`: for each share of the level, the horizon
+    planned from the true noise ('known': the level spent is held), from the
+    estimate with no floor ('no-pilot': the rule before the pilot) and the
+    gate's rule ('pilot'). The largest share whose worst case over the CVs stays
+    within the target is the worst-case adjusted level (Kieser & Friede 2000).
+    """
+    from benchharness.gate.calibrate import (RULES, boundary_false_fail, boundary_table,
+                                             null_paths_at_boundary)
+
+    print(f"calibration: boundary false-fail of the rule on {paths} null paths per CV with "
+          f"their own noise estimates and horizons (true ratio {1 + settings.tolerance:g}); "
+          f"boundaries from {null_paths} null paths; for each share of the level: 'known' "
+          "plans the horizon from the true noise, 'no-pilot' from the estimate with no "
+          "floor (the rule before the pilot), 'pilot' is the gate's rule")
+    tables = {c: boundary_table(c * (1 - settings.confidence), settings, null_paths)
+              for c in shares}
+    worst: dict[str, float] = {}
+    for cv in cvs:
+        mu, se = null_paths_at_boundary(cv, settings, paths)
+        cells = []
+        for c in shares:
+            for rule in RULES:
+                rate = boundary_false_fail(mu, se, cv, c, rule, settings, tables[c])
+                label = f"{rule} {c:g}"
+                worst[label] = max(worst.get(label, 0.0), rate)
+                cells.append(f"{label} {100 * rate:.2f}%")
+        print(f"  CV {cv:4.0%}  " + "  ".join(cells), flush=True)
+    print("  worst case over the CVs: " +
+          "  ".join(f"{k} {100 * v:.2f}%" for k, v in worst.items()))
+    print()
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--gates", type=int, default=2000)
     ap.add_argument("--tolerance", type=float, default=0.05)
     ap.add_argument("--cvs", default="0.03,0.05,0.08", help="noise CVs of the rates section")
-    ap.add_argument("--sections", default="rates,tails,drift,workloads,failures")
+    ap.add_argument("--sections", default="rates,calibrate,tails,drift,workloads,failures")
     ap.add_argument("--ratios", default=None,
                     help="true ratios of the rates section (default: 1, 1+t, 1+2t, and "
                          "without outliers 1+4t, 1-2t)")
     ap.add_argument("--outliers", default="0,0.05",
                     help="shares of runs 1.5x as slow in the rates section")
     ap.add_argument("--estimator", default="robust", choices=("robust", "mean"))
+    ap.add_argument("--calibrate-cvs", default="0.02,0.03,0.04,0.05,0.06,0.08,0.10,0.12",
+                    help="noise CVs of the calibrate section")
+    ap.add_argument("--shares", default="0.5,0.6,0.7",
+                    help="shares of the level tried by the calibrate section")
     ap.add_argument("--setting", action="append", default=[], metavar="NAME=VALUE",
                     help="override one GateSettings field (a number), e.g. "
                          "level_calibration=0.6")
@@ -196,6 +238,10 @@ def main(argv=None) -> int:
                           f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}   "
                           f"({r['seconds']:.0f} s)", flush=True)
             print()
+
+    if "calibrate" in sections:
+        calibrate(st, [float(c) for c in args.calibrate_cvs.split(",")],
+                  [float(c) for c in args.shares.split(",")])
 
     if "tails" in sections:
         tails(args.tolerance)
