@@ -81,22 +81,30 @@ def boundary_table(alpha: float, settings, paths: int = 20_000, seed: int = 1983
     return table
 
 
-def null_paths_at_boundary(cv: float, settings, paths: int = 10_000, seed: int = 3):
+def null_paths_at_boundary(cv: float, settings, paths: int = 10_000, seed: int = 3,
+                           outliers: float = 0.0, outlier_factor: float = 1.5):
     """Resistant location and standard error after every block, for paths at the boundary.
 
     Run times lognormal with coefficient of variation ``cv`` (each run of each
-    build), true slowdown ratio exactly ``1 + tolerance``. Returns ``(mu, se)``,
-    arrays indexed ``[n, path]`` for n blocks.
+    build), true slowdown ratio exactly ``1 + tolerance``; with probability
+    ``outliers`` a run takes ``outlier_factor`` times as long (as
+    `SimulatedModel`). Returns ``(mu, se)``, arrays indexed ``[n, path]`` for n
+    blocks.
     """
     import numpy as np
 
     from benchharness.gate.robust import robust_location
 
     top = settings.max_runs
-    rng = np.random.default_rng(seed + int(round(cv * 10_000)))
+    rng = np.random.default_rng(seed + int(round(cv * 10_000)) + int(round(outliers * 1000)))
     s = math.sqrt(math.log1p(cv * cv))
-    d = (rng.normal(0.0, s, (paths, top)) - rng.normal(0.0, s, (paths, top))
-         + settings.threshold_log)
+    slow = math.log(outlier_factor)
+
+    def runs():
+        x = rng.normal(0.0, s, (paths, top))
+        return x + slow * (rng.random((paths, top)) < outliers) if outliers > 0 else x
+
+    d = runs() - runs() + settings.threshold_log
     mu = np.zeros((top + 1, paths))
     se = np.ones((top + 1, paths))
     for n in range(max(2, settings.min_runs), top + 1):

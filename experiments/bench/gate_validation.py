@@ -146,7 +146,7 @@ def tails(tol: float, paths: int = 40_000, seed: int = 1) -> None:
 
 
 def calibrate(settings: GateSettings, cvs, shares, paths: int = 10_000,
-              null_paths: int = 20_000) -> None:
+              null_paths: int = 20_000, outliers: float = 0.0) -> None:
     """Boundary false-fail rate of the rule on null paths with their own horizons.
 
     `benchharness.gate.calibrate`: for each share of the level, the horizon
@@ -159,7 +159,8 @@ def calibrate(settings: GateSettings, cvs, shares, paths: int = 10_000,
                                              null_paths_at_boundary)
 
     print(f"calibration: boundary false-fail of the rule on {paths} null paths per CV with "
-          f"their own noise estimates and horizons (true ratio {1 + settings.tolerance:g}); "
+          f"their own noise estimates and horizons (true ratio {1 + settings.tolerance:g}, "
+          f"{outliers:.0%} of runs 1.5x as slow); "
           f"boundaries from {null_paths} null paths; for each share of the level: 'known' "
           "plans the horizon from the true noise, 'no-pilot' from the estimate with no "
           "floor (the rule before the pilot), 'pilot' is the gate's rule")
@@ -167,7 +168,7 @@ def calibrate(settings: GateSettings, cvs, shares, paths: int = 10_000,
               for c in shares}
     worst: dict[str, float] = {}
     for cv in cvs:
-        mu, se = null_paths_at_boundary(cv, settings, paths)
+        mu, se = null_paths_at_boundary(cv, settings, paths, outliers=outliers)
         cells = []
         for c in shares:
             for rule in RULES:
@@ -195,6 +196,8 @@ def main(argv=None) -> int:
     ap.add_argument("--estimator", default="robust", choices=("robust", "mean"))
     ap.add_argument("--calibrate-cvs", default="0.02,0.03,0.04,0.05,0.06,0.08,0.10,0.12",
                     help="noise CVs of the calibrate section")
+    ap.add_argument("--calibrate-outliers", type=float, default=0.0,
+                    help="share of runs 1.5x as slow in the calibrate section")
     ap.add_argument("--shares", default="0.5,0.6,0.7",
                     help="shares of the level tried by the calibrate section")
     ap.add_argument("--setting", action="append", default=[], metavar="NAME=VALUE",
@@ -241,7 +244,8 @@ def main(argv=None) -> int:
 
     if "calibrate" in sections:
         calibrate(st, [float(c) for c in args.calibrate_cvs.split(",")],
-                  [float(c) for c in args.shares.split(",")])
+                  [float(c) for c in args.shares.split(",")],
+                  outliers=args.calibrate_outliers)
 
     if "tails" in sections:
         tails(args.tolerance)
