@@ -64,7 +64,7 @@ def boundary_table(alpha: float, settings, paths: int = 20_000, seed: int = 1983
         spent = 0
         for n in range(first, N + 1):
             target = obf_spending(n / N, alpha) if n < N else alpha
-            want = int(round(target * paths)) - spent
+            want = round(target * paths) - spent
             if want <= 0:
                 continue
             t = cols[n]
@@ -96,7 +96,7 @@ def null_paths_at_boundary(cv: float, settings, paths: int = 10_000, seed: int =
     from benchharness.gate.robust import robust_location
 
     top = settings.max_runs
-    rng = np.random.default_rng(seed + int(round(cv * 10_000)) + int(round(outliers * 1000)))
+    rng = np.random.default_rng(seed + round(cv * 10_000) + round(outliers * 1000))
     s = math.sqrt(math.log1p(cv * cv))
     slow = math.log(outlier_factor)
 

@@ -155,8 +155,12 @@ def calibrate(settings: GateSettings, cvs, shares, paths: int = 10_000,
     gate's rule ('pilot'). The largest share whose worst case over the CVs stays
     within the target is the worst-case adjusted level (Kieser & Friede 2000).
     """
-    from benchharness.gate.calibrate import (RULES, boundary_false_fail, boundary_table,
-                                             null_paths_at_boundary)
+    from benchharness.gate.calibrate import (
+        RULES,
+        boundary_false_fail,
+        boundary_table,
+        null_paths_at_boundary,
+    )
 
     print(f"calibration: boundary false-fail of the rule on {paths} null paths per CV with "
           f"their own noise estimates and horizons (true ratio {1 + settings.tolerance:g}, "
