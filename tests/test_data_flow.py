@@ -180,3 +180,17 @@ def test_a_stale_analysis_json_keeps_its_tables_and_says_why_residual_figures_ar
     assert d.analysis["model"]["terms"] == ["wait", "tag"]
     assert d.residuals is None
     assert any("residual figures are left out" in n for n in d.extra_notes)
+
+
+def test_a_run_with_a_choose_section_still_reads_the_folder_once(tmp_path, monkeypatch):
+    # the report's "Choosing a default" section is chosen from the folder already read
+    from benchharness.cli import main
+
+    exp = tmp_path / "flow.yaml"
+    exp.write_text(textwrap.dedent(EXPERIMENT) + "choose: {}\n")
+    c = counters(monkeypatch)
+    assert main(["run", str(exp), "--out", str(tmp_path / "res")]) == 0
+    assert c["read"].calls == 1        # (choose takes the table from the folder read)
+    assert c["analyse"].calls == 1
+    html = (tmp_path / "res" / "report.html").read_text()
+    assert 'id="choose"' in html and "wait=short" in html   # the planted faster level

@@ -486,6 +486,10 @@ def _scale_of(df, resp, requested, data, experiment) -> tuple[str, str]:
         return "auto", ""  # fit_response names the missing column
     ok = df["status"].astype(str) == "ok" if "status" in df.columns else slice(None)
     values = pd.to_numeric(df.loc[ok, resp], errors="coerce").to_numpy(dtype=float)
+    from benchharness.results.journal import Results
+
+    if isinstance(data, Results):   # a folder already read
+        data = data.path
     folder = data if isinstance(data, (str, Path)) and Path(data).is_dir() else None
     name, lam, why = scale_for(resp, values, folder, experiment)
     if name == "boxcox":

@@ -33,18 +33,20 @@ _CHOOSE_KEYS = ("prefer", "across", "also", "response", "confidence", "within", 
 
 
 def load_source(data, factors=None):
-    """(DataFrame, Experiment | None) from a DataFrame, CSV path or results folder.
+    """(DataFrame, Experiment | None) from a DataFrame, CSV path or results folder (a path,
+    or one already read: `benchharness.results.journal.Results`, not read again).
 
     A DataFrame without ``factors`` is returned as is (the caller asks for
     the factors); everything else goes through `benchharness.results.source.load_table`.
     """
     import pandas as pd
 
+    from benchharness.results.journal import Results
     from benchharness.results.source import load_table
 
     if isinstance(data, pd.DataFrame) and factors is None:
         return data, None
-    if not isinstance(data, (pd.DataFrame, str, Path)):
+    if not isinstance(data, (pd.DataFrame, str, Path, Results)):
         raise DataError(f"cannot read data of type {type(data).__name__}; give a DataFrame, "
                         "a CSV path or a results folder")
     return load_table(data, list(factors) if factors is not None else None)

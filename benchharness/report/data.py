@@ -237,7 +237,7 @@ def collect(source, *, analysis=None, response: str | None = None,
     levels = _levels_from(runs, factors, src.experiment, adict)
     residuals = _residual_frame(obj, runs, factors) if obj is not None else None
     profile = _profile_frame(obj, adict, len(runs))
-    extra, extra_notes = _extra_sections(src.folder, src.experiment)
+    extra, extra_notes = _extra_sections(src.folder, src.experiment, src.results)
     from benchharness.measure.floor import note as floor_note
 
     extra_notes += floor_note(runs, src.session, response)  # peak memory at the launcher's size
@@ -496,11 +496,12 @@ def _declared_metric(folder, response) -> str | None:
     return better if better in ("lower", "higher") else None
 
 
-def _extra_sections(folder, experiment):
+def _extra_sections(folder, experiment, results=None):
     """Sections of later capabilities that the experiment file asks for.
 
-    `choose:` -> "Choosing a default" (benchharness.choose.choice_section). A section
-    that cannot be computed becomes a one-line note instead.
+    `choose:` -> "Choosing a default" (benchharness.choose.choice_section), given the
+    folder already read (``results``) when there is one. A section that cannot be
+    computed becomes a one-line note instead.
     """
     from benchharness.errors import BenchharnessError
 
@@ -513,7 +514,7 @@ def _extra_sections(folder, experiment):
             choice_section = None
         if choice_section is not None:
             try:
-                sec = dict(choice_section(folder))
+                sec = dict(choice_section(results if results is not None else folder))
                 sec.setdefault("id", "choose")
                 sections.append(sec)
             except BenchharnessError as exc:
