@@ -54,10 +54,10 @@ def boundary_table(alpha: float, settings, paths: int = 20_000, seed: int = 1983
     """
     import numpy as np
 
-    from benchharness.gate.sequential import _null_robust_column, obf_spending
+    from benchharness.gate.sequential import null_robust_column, obf_spending
 
     top, first = settings.max_runs, settings.min_runs
-    cols = {n: _null_robust_column(paths, seed, n) for n in range(first, top + 1)}
+    cols = {n: null_robust_column(paths, seed, n) for n in range(first, top + 1)}
     table = np.full((top + 1, top + 1), np.inf)
     for N in range(first, top + 1):
         alive = np.ones(paths, dtype=bool)

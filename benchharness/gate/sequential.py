@@ -328,7 +328,7 @@ def _null_raw(paths: int, seed: int, rows: int):
 
 
 @lru_cache(maxsize=1024)
-def _null_robust_column(paths: int, seed: int, n: int):
+def null_robust_column(paths: int, seed: int, n: int):
     """Studentized robust statistics (`benchharness.gate.robust`) of the null paths after n blocks."""
     import numpy as np
 
@@ -377,7 +377,7 @@ class SpendingTracker:
         import numpy as np
 
         if self.statistic == "robust":
-            return _null_robust_column(self.paths, self.seed, n)
+            return null_robust_column(self.paths, self.seed, n)
         if n <= _PATH_CACHE_MAX:
             upto = next(u for u in (20, 40, 80, _PATH_CACHE_MAX) if u >= n)
             return _null_t_paths(self.paths, self.seed, upto)[:, n]
