@@ -189,6 +189,10 @@ def calibrate(settings: GateSettings, cvs, shares, paths: int = 10_000,
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--gates", type=int, default=2000)
+    ap.add_argument("--first-gate", type=int, default=0,
+                    help="number of the first simulated gate of the rates section (to split a "
+                         "row into chunks: --gates 1000 then --first-gate 1000 --gates 1000 "
+                         "are the 2,000 gates of --gates 2000)")
     ap.add_argument("--tolerance", type=float, default=0.05)
     ap.add_argument("--cvs", default="0.03,0.05,0.08", help="noise CVs of the rates section")
     ap.add_argument("--sections", default="rates,calibrate,tails,drift,workloads,failures")
@@ -236,7 +240,8 @@ def main(argv=None) -> int:
                 if args.ratios:
                     ratios = tuple(float(r) for r in args.ratios.split(","))
                 for ratio in ratios:
-                    r = scenario(f"cv{cv}", ratio, cv, G, st, outliers=outliers)
+                    r = scenario(f"cv{cv}", ratio, cv, G, st, outliers=outliers,
+                                 seed0=7919 * args.first_gate)
                     v, n = r["verdicts"], r["gates"]
                     passed = v["no_regression"] + v["improvement"]
                     print(f"  {outliers:>8.0%}  {ratio:>10.2f}  "
