@@ -109,6 +109,12 @@ def parse_ratio(text, what: str = "a ratio") -> float:
     raise ValueFormError(f"{t!r} is not a ratio; write e.g. 1.05x, 1.05 or 5% (a ratio of 1.05)")
 
 
+def change_of(ratio: float) -> float:
+    """The relative change a ratio stands for (1.05 -> 0.05), without the float residue
+    of the subtraction (``1.05 - 1`` is 0.050000000000000044)."""
+    return round(ratio - 1.0, 12)
+
+
 _UNIT_S = {"ms": 0.001, "s": 1.0, "m": 60.0, "h": 3600.0}
 _UNIT_RANK = {"h": 0, "m": 1, "s": 2, "ms": 3}
 _DURATION_PART = re.compile(r"\s*(\d+(?:\.\d+)?|\.\d+)\s*(ms|h|m|s)(?![a-z])")

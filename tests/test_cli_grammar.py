@@ -142,6 +142,12 @@ def test_ratio_forms(text, value):
     assert V.parse_ratio(text) == pytest.approx(value)
 
 
+def test_a_ratio_option_gives_the_change_exactly():
+    # `--tolerance 5%` is a 5% change, not 0.050000000000000044 (which gate.json once said)
+    assert V.change_of(V.parse_ratio("5%")) == 0.05
+    assert V.change_of(V.parse_ratio("1.05x")) == 0.05
+
+
 def test_ratio_refuses_ambiguous_and_notes_old_fraction(capsys):
     with pytest.raises(V.ValueFormError, match="5% .* or 5x"):
         V.parse_ratio("5")

@@ -44,7 +44,9 @@ def main(args) -> int:
     from benchharness.errors import UsageError
     from benchharness.history.compare import compare_folders
 
-    tol = args.tolerance - 1.0
+    from benchharness import values as V
+
+    tol = V.change_of(args.tolerance)
     if not 0 <= tol < 1:
         raise UsageError("--tolerance: must be at least 0% and below 100% (a ratio from 1 "
                          "to 2)")

@@ -105,7 +105,9 @@ def main(args) -> int:
         raise UsageError("the quick form needs both --baseline CMD and --candidate CMD")
     over: dict = {}
     if args.tolerance is not None:
-        tol = args.tolerance - 1.0
+        from benchharness import values as V
+
+        tol = V.change_of(args.tolerance)
         if not 0 < tol < 1:
             raise UsageError("--tolerance: must be above 0% and below 100% (a ratio between 1 "
                              "and 2)")

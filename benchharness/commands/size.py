@@ -81,7 +81,9 @@ def main(args) -> int:
     from benchharness.design import budget, sizing
     from benchharness.errors import UsageError
 
-    detect = args.detect - 1.0
+    from benchharness import values as V
+
+    detect = V.change_of(args.detect)
     pilot_df = pilot_exp = None
     if args.pilot:
         from benchharness.results.source import load_table

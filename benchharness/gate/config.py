@@ -127,10 +127,11 @@ def _builds(exp, items) -> tuple[str, str, str]:
 def _decision_settings(items) -> dict:
     """Tolerance, confidence, run limits and direction as `GateSettings` keywords."""
     from benchharness.experiment import yamlnodes as Y
+    from benchharness.values import change_of
 
     kw: dict = {}
     if "tolerance" in items:
-        kw["tolerance"] = Y.as_ratio(items["tolerance"], "'gate: tolerance'") - 1.0
+        kw["tolerance"] = change_of(Y.as_ratio(items["tolerance"], "'gate: tolerance'"))
         if not 0 < kw["tolerance"] < 1:
             raise Y.node_error(items["tolerance"], "'gate: tolerance' must be above 0% and "
                                "below 100%, e.g. 5%")
