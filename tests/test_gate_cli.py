@@ -177,12 +177,12 @@ def test_stored_baseline_warns(cli, tmp_path):
     r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "5",
             "--max-pairs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
     assert r.returncode in (0, 3), r.stdout + r.stderr
-    assert "earlier session" in r.stdout
+    assert "earlier session" in r.stderr  # a warning: standard error
     # only the candidate runs, so --baseline is not required with --against
     r = cli("gate", "--candidate", cmd, "--tolerance", "50%", "--seed", "6",
             "--max-pairs", "10", "--against", tmp_path / "first", "--out", tmp_path / "third")
     assert r.returncode in (0, 3), r.stdout + r.stderr
-    assert "earlier session" in r.stdout
+    assert "earlier session" in r.stderr
     data = json.loads((tmp_path / "third" / "gate.json").read_text())
     assert data["stored_baseline"] is True
 

@@ -155,8 +155,9 @@ def main(args) -> int:
                                   stored_baseline=args.against, progress=progress)
     if not args.quiet and sys.stderr.isatty():
         print("", file=sys.stderr)
+    warnings = set(outcome.warnings)  # warnings go to standard error (docs/cli.md)
     for line in output.terminal_lines(outcome):
-        print(line)
+        print(line, file=sys.stderr if line in warnings else sys.stdout)
     print(f"results folder: {folder}")
     try:
         if args.summary:
