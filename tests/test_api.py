@@ -47,8 +47,8 @@ def test_cli_run_prints_progress_lines_summary_and_location(tmp_path, cli):
     r = cli("run", p, "--out", tmp_path / "res")
     assert r.returncode == 0, r.stderr
     out = r.stdout
-    assert "running 4 runs into" in out
-    assert "[4/4]" in out            # plain progress line (stdout is not a terminal)
+    assert "running 4 runs into" in r.stderr  # progress: standard error (docs/cli.md)
+    assert "[4/4]" in r.stderr       # plain progress line (stderr is not a terminal)
     assert "median wall" in out and "IQR" in out
     assert "seed" in out and "drawn" in out   # no seed in the file: drawn and reported
     assert f"results: {tmp_path / 'res'}" in out

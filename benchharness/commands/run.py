@@ -79,9 +79,12 @@ def _progress(quiet: bool):
 
     if quiet:
         return Progress()
-    if sys.stdout.isatty():
-        return RichProgress()
-    return PlainProgress()
+    # progress, and the host warnings and notes said on the way, go to standard error
+    if sys.stderr.isatty():
+        from rich.console import Console
+
+        return RichProgress(console=Console(stderr=True))
+    return PlainProgress(stream=sys.stderr)
 
 
 def main(args) -> int:
