@@ -50,7 +50,7 @@ def add_parser(sub) -> None:
                    help="confidence of the intervals; tests are made at 100%% minus it "
                         "(default 95%%)")
     O.alias(p, "--alpha", "--confidence 95% (for --alpha 0.05)", "confidence",
-            convert=lambda t: 1.0 - O.percent(0.0, 1.0, low_open=True)(t))
+            convert=O.complement)
     p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
                    help="reference level of a factor for ratios (repeat the option for each "
                         "factor; default: the first level)")
@@ -99,7 +99,8 @@ def main(args) -> int:
     an = analyze(folder_res if folder_res is not None else args.source,  # read once
                  response=args.response, factors=factors, block=block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
-                 alpha=1.0 - args.confidence, reference=args.reference, adjust=args.adjust,
+                 alpha=round(1.0 - args.confidence, 12), reference=args.reference,
+                 adjust=args.adjust,
                  art=True if args.art else False if args.no_cross_check else "auto",
                  better=args.better,
                  comparisons=(True if args.comparisons is None else

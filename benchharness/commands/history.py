@@ -74,7 +74,7 @@ def add_parser(sub) -> None:
                    help="a flat series of one host shows a false step with a chance of at "
                         "most 100%% minus this (default 95%%: 5%%)")
     O.alias(s, "--false-step-level", "--confidence 95% (for --false-step-level 0.05)",
-            "confidence", convert=lambda t: 1.0 - O.percent(0.0, 1.0, low_open=True)(t),
+            "confidence", convert=O.complement,
             metavar="P")
     s.add_argument("--fail-on-regression", action="store_true",
                    help="exit 1 when a regression step is found that has not been undone "
@@ -125,7 +125,7 @@ def main_show(args) -> int:
     from benchharness.history.store import parse_cell_filter, read_history
     from benchharness.history.trends import build_trends, step_kind, to_json_dict
 
-    false_step = 1.0 - args.confidence
+    false_step = round(1.0 - args.confidence, 12)
     df = read_history(args.history_db, experiment=args.experiment, response=args.response,
                       cell_filter=parse_cell_filter(args.cell))
     if args.branch is not None:

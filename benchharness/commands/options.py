@@ -92,6 +92,12 @@ def confidence(text: str) -> float:
 confidence = _type(confidence, "confidence")
 
 
+def complement(text: str) -> float:
+    """A significance level (``0.05`` or ``5%``) as the confidence it leaves (0.95): the
+    reading of the deprecated ``--alpha`` and ``--false-step-level``."""
+    return round(1.0 - percent(0.0, 1.0, low_open=True, high_open=True)(text), 12)
+
+
 def ratio(option: str, above_one: bool = True):
     """argparse type: ``1.05``, ``1.05x`` or ``5%`` -> 1.05 (above 1 when ``above_one``)."""
 

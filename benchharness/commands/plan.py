@@ -73,7 +73,7 @@ def _timing(args, exp, plan) -> dict:
     if rule is not None:
         out["adaptive"] = rule.to_json_dict()
     if args.budget and not args.pilot:
-        raise UsageError("--budget on `plan` needs --pilot RESULTS to know how long runs take")
+        raise UsageError("--budget on `plan` needs --pilot SOURCE to know how long runs take")
     if not args.pilot:
         return out
     from benchharness.design.budget import estimate_plan, pilot_timing, replicates_in_budget

@@ -35,7 +35,7 @@ def add_parser(sub) -> None:
                    help="the tests are made at 100%% minus this, their false-alarm rate "
                         "(default 95%%: 5%%)")
     O.alias(p, "--alpha", "--confidence 95% (for --alpha 0.05)", "confidence",
-            convert=lambda t: 1.0 - O.percent(0.0, 1.0, low_open=True)(t))
+            convert=O.complement)
     p.add_argument("--power", type=O.percent(0.0, 1.0, low_open=True), default=0.9,
                    metavar="PCT", help="wanted power (default 90%%)")
     p.add_argument("--for", dest="target", choices=("anova", "pairwise"), default="anova",
@@ -102,7 +102,7 @@ def main(args) -> int:
         exp = pilot_exp
     else:
         raise UsageError("say what the factors are: --levels 3,2,4, --levels FILE, or --pilot "
-                         "RESULTS")
+                         "SOURCE")
     if args.pilot and pilot_df is None:
         from benchharness.results.source import load_table
 
@@ -121,8 +121,9 @@ def main(args) -> int:
         sigma_note = (f"pilot: sd of ln({args.response}) {sigma:.4g} from {pn.runs} runs in "
                       f"{pn.cells} cells ({pn.df} df)")
     else:
-        raise UsageError("say how noisy the runs are: --noise-cv 2% or --pilot RESULTS")
-    ans = sizing.size_design(factors, detect, sigma, alpha=1.0 - args.confidence, power=args.power,
+        raise UsageError("say how noisy the runs are: --noise-cv 2% or --pilot SOURCE")
+    ans = sizing.size_design(factors, detect, sigma, alpha=round(1.0 - args.confidence, 12),
+                             power=args.power,
                              method=args.target, cells=cells)
     out = ans.to_json_dict()
     out["noise"] = sigma_note
