@@ -137,7 +137,7 @@ def main() -> int:
             load0 = os.getloadavg()[0]
             ends, alone = [], []
             for _ in range(a.repeat):
-                w, _c, rc = timed(bh + ["analyze", str(big), "--factors", factors, "--json",
+                w, _c, rc = timed(bh + ["analyze", str(big), "--factors", factors, "--json-out",
                                         str(work / "a.json")], env, work)
                 ends.append(w)
                 r = subprocess.run([py, "-c", ALONE, str(big), factors], env=env, cwd=work,
