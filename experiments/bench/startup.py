@@ -91,10 +91,10 @@ df = pd.read_csv(sys.argv[1], dtype={f: str for f in sys.argv[2].split(",")})
 factors = sys.argv[2].split(",")
 times = []
 for _ in range(2):
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     analyze(df, factors=factors)
-    times.append(time.perf_counter() - t0)
-print(times[-1])
+    times.append((time.perf_counter() - t0, time.process_time() - c0))
+print(*times[-1])
 """
 
 
@@ -135,21 +135,27 @@ def main() -> int:
             make_data(a.rows).to_csv(big, index=False)
             factors = ",".join(FACTORS)
             load0 = os.getloadavg()[0]
-            ends, alone = [], []
+            ends, end_cpu, alone, alone_cpu = [], [], [], []
             for _ in range(a.repeat):
-                w, _c, rc = timed(bh + ["analyze", str(big), "--factors", factors, "--json-out",
-                                        str(work / "a.json")], env, work)
+                w, c, rc = timed(bh + ["analyze", str(big), "--factors", factors, "--json-out",
+                                       str(work / "a.json")], env, work)
                 ends.append(w)
+                end_cpu.append(c)
                 r = subprocess.run([py, "-c", ALONE, str(big), factors], env=env, cwd=work,
                                    capture_output=True, text=True)
-                alone.append(float(r.stdout.strip().splitlines()[-1]))
+                aw, ac = map(float, r.stdout.strip().splitlines()[-1].split())
+                alone.append(aw)
+                alone_cpu.append(ac)
             load1 = os.getloadavg()[0]
             e, al = statistics.median(ends), statistics.median(alone)
+            ec, ac = statistics.median(end_cpu), statistics.median(alone_cpu)
             print(f"\nbig: {a.rows:,} rows, medians of {a.repeat} interleaved "
                   f"(load average {load0:.1f} -> {load1:.1f})")
-            print(f"  analyze end to end (start-up, read, analysis, JSON): {e:.3f} s")
-            print(f"  the analysis call alone:                             {al:.3f} s")
-            print(f"  ratio: x{e / al:.2f}")
+            print(f"  analyze end to end (start-up, read, analysis, JSON): {e:.3f} s, "
+                  f"CPU {ec:.3f} s")
+            print(f"  the analysis call alone:                             {al:.3f} s, "
+                  f"CPU {ac:.3f} s")
+            print(f"  ratio: x{e / al:.2f} wall, x{ec / ac:.2f} CPU")
     return 0
 
 
