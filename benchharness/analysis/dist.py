@@ -14,9 +14,9 @@ can say ``from benchharness.analysis import dist as stats`` and keep its calls
 * ``chi2.ppf``, ``chi2.isf``, ``chi2.logpdf``: chi-square through the regularised
   incomplete gamma function and its inverses;
 * ``rankdata``: mid-ranks (ties share the mean of their ranks);
-* ``spearmanr``: Spearman's rank correlation with the two-sided p-value of
-  ``r sqrt((n-2)/(1-r²))`` against t(n−2) (Spearman 1904; the t approximation as
-  in Zar, *Biostatistical Analysis*, ch. 19);
+* ``spearmanr``: Spearman's rank correlation (Spearman 1904) with the two-sided
+  p-value of ``r sqrt((n-2)/(1-r²))`` against t(n−2), the usual large-sample
+  approximation (the one ``scipy.stats.spearmanr`` uses);
 * ``shapiro``: the Shapiro-Wilk test (`benchharness.analysis.swilk`).
 
 Each agrees with ``scipy.stats`` to rounding (tests/test_dist.py compares them).
