@@ -21,8 +21,11 @@ whose first and last thirds differ by more than the tolerance and three
 standard errors is still drifting (never steady); the search runs on
 log timings (per-run timings are right-skewed, common practice; a change then
 means a relative change); isolated spikes (up to three points in a row far outside a
-rolling median +- 6 rolling MADs, the first iteration excepted) are replaced
-by the rolling median for the search only; adjacent segments whose means differ by
+rolling median +- 6 rolling MADs, with an ordinary iteration before them:
+outlying iterations from the first one on are warm-up) are replaced
+by the rolling median for the search only; a single slow first iteration,
+which PELT's two-iteration shortest segment cannot isolate, is split off
+after the search; adjacent segments whose means differ by
 less than ``rel_tol`` (2 %) or ``abs_tol_s`` are merged; the steady-state mean
 is the plain mean of the final merged segment, spikes included (they are a
 real cost of each iteration).
@@ -133,7 +136,16 @@ def _rolling(values: np.ndarray, half: int, fn) -> np.ndarray:
 
 def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0,
             max_run: int = 3) -> tuple[np.ndarray, int]:
-    """Replace isolated spikes (runs of at most ``max_run`` points) by the rolling median."""
+    """Replace isolated spikes (runs of at most ``max_run`` points) by the rolling median.
+
+    A run of outlying points that starts at the first iteration is warm-up, not a
+    spike: the first iteration is the prime warm-up suspect, and the iterations
+    that follow it at the same far-off level (30, 31, 32 ms before a 10 ms steady
+    state) are the rest of that warm-up. Hiding them would leave PELT a single
+    outlying point, which a segment of at least ``min_size`` 2 cannot isolate,
+    so the warm-up would be cut short and the hidden iterations counted in the
+    steady state. Only runs with an ordinary iteration before them are spikes.
+    """
     n = z.size
     if n < 2 * half_window:
         return z.copy(), 0
@@ -141,7 +153,6 @@ def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0,
     mad = _rolling(np.abs(z - med), half_window, np.median)
     scale = np.maximum(1.4826 * mad, 1e-12 + 1e-6 * np.abs(med))
     flagged = np.abs(z - med) > k * scale
-    flagged[0] = False   # the first iteration is the prime warm-up suspect; never a spike
     out = z.copy()
     count = 0
     i = 0
@@ -150,7 +161,7 @@ def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0,
             j = i
             while j < n and flagged[j]:
                 j += 1
-            if j - i <= max_run:
+            if i > 0 and j - i <= max_run:
                 out[i:j] = med[i:j]
                 count += j - i
             i = j
@@ -176,6 +187,31 @@ def _drift(part: np.ndarray, s: WarmupSettings) -> str:
         return (f"the last {part.size} iterations keep getting {way} (their last third is "
                 f"{abs(diff) / abs(float(a.mean())):.1%} {way} than their first third)")
     return ""
+
+
+def _short_head(before: Segment, last: Segment, z: np.ndarray, min_size: int, make):
+    """Move the start of the steady state back over iterations PELT had to leave out.
+
+    PELT's shortest segment is ``min_size`` iterations, so a warm-up shorter than
+    that (a single slow first iteration) comes out as a segment padded with
+    steady iterations: [30, 10.2 | 10.2, 10.2, ...] ms. When the segment before
+    the steady state is too short for PELT to have split it, its last iterations
+    join the steady state if each lies nearer (on the searched scale) to the
+    steady mean than to the rest of its own segment. Longer segments were the
+    search's free choice and are left alone.
+    """
+    best = 0
+    for d in range(1, min(min_size, before.end - before.start)):
+        if before.end - before.start - d >= min_size:
+            continue
+        head = z[before.start:before.end - d]
+        moved = z[before.end - d:before.end]
+        steady = float(z[last.start:last.end].mean())
+        if np.all(np.abs(moved - steady) < np.abs(moved - float(head.mean()))):
+            best = d
+    if not best:
+        return [before, last]
+    return [make(before.start, before.end - best), make(before.end - best, last.end)]
 
 
 def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
@@ -219,6 +255,8 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
             merged[-1] = make(merged[-1].start, b)
         else:
             merged.append(cur)
+    if len(merged) > 1:
+        merged[-2:] = _short_head(merged[-2], merged[-1], z, s.min_size, make)
     segments = tuple(merged)
     last = segments[-1]
     final = max(s.min_final, int(math.ceil(s.final_fraction * n)))
