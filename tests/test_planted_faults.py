@@ -1,9 +1,9 @@
 """Checks that catch ordinary faults the rest of the suite once let through (issue 17).
 
 Each test here was shown to fail with its fault planted (listed beside it) and to pass
-without it: the randomized order left unshuffled, Holm without its monotone step (in
-either implementation), the outlier cut-off without Bonferroni, no fsync in the atomic
-file writer. The references are outside the project: scipy's chi-square and t
+without it: the randomized order left unshuffled, Holm without its monotone step
+(checked in ``adjust_p`` and through the fraction screen's active flags), the outlier
+cut-off without Bonferroni, no fsync in the atomic file writer. The references are outside the project: scipy's chi-square and t
 quantiles, statsmodels' ``multipletests`` and ``outlier_test``.
 """
 
