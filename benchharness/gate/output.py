@@ -203,6 +203,10 @@ def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
         "scale": "log",
         "tolerance": s.tolerance,
         "confidence": s.confidence,
+        "max_pairs": s.max_runs,
+        "first_look_pairs": s.min_runs,
+        # the names before the options were renamed (they held pair counts too);
+        # kept with the same values so existing readers of gate.json keep working
         "max_runs": s.max_runs,
         "min_runs": s.min_runs,
         "method": _method(s),
