@@ -257,3 +257,38 @@ def test_no_detectable_difference_never_sits_beside_an_interval_that_excludes_on
     for x in an.findings:   # elsewhere the plain words stay where the interval holds 1×
         if x["kind"] == "main" and "made no detectable difference" in x["statement"]:
             assert x["lower"] is None or x["lower"] <= 1 <= x["upper"]
+
+
+def brew_frame(seed=36, reps=4, sigma=0.1):
+    """Planted: brew=press 1.15× the time, size=large 1.5×, noise CV about 10% (invented)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for brew in ("drip", "press"):
+        for size in ("small", "large"):
+            for _ in range(reps):
+                m = (1.15 if brew == "press" else 1.0) * (1.5 if size == "large" else 1.0)
+                rows.append({"brew": brew, "size": size,
+                             "wall_s": 0.04 * m * math.exp(rng.normal(0, sigma))})
+    return pd.DataFrame(rows)
+
+
+def test_a_p_just_above_the_threshold_is_not_printed_as_the_threshold(tmp_path):
+    """At 99% confidence brew's Holm-adjusted p is 0.0112 (seed 36): the finding says brew
+    made no difference detectable, so the p it states must read above 0.01 — in three
+    decimals like every other p (docs/cli.md), not rounded to ``p = 0.01``."""
+    csv = tmp_path / "brew.csv"
+    brew_frame().to_csv(csv, index=False)
+    out = tmp_path / "a.json"
+    r = run_cli("analyze", csv, "--factors", "brew,size", "--confidence", "99%",
+                "--json-out", out)
+    assert r.returncode == 0, r.stderr
+    d = json.loads(out.read_text())
+    row = next(x for x in d["anova"] if x["term"] == "brew")
+    assert 0.01 < row["p_holm"] < 0.0125 and row["p"] < 0.01   # the planted situation
+    f = next(x for x in d["findings"] if x["kind"] == "main" and x["factors"] == ["brew"])
+    assert f["significant"] is False
+    assert "no difference detectable" in f["statement"]
+    stated = re.search(r"p = (\S+) after Holm", f["statement"])
+    assert stated and float(stated.group(1)) > 0.01, f["statement"]
+    assert "p = 0.011 after Holm over the terms, 0.006 alone" in r.stdout
+    assert "p < 0.0001" not in r.stdout and "p = 0.01 " not in r.stdout
