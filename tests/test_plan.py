@@ -122,3 +122,17 @@ def test_plan_imports_no_heavy_libraries(root):
              "if m in sys.modules])")
     out = subprocess.run([sys.executable, "-c", code2], capture_output=True, text=True, cwd=root)
     assert "HEAVY []" in out.stdout, out.stdout + out.stderr
+
+
+def test_plan_piped_has_no_trailing_spaces(cli, tmp_path):
+    """docs/cli.md: piped output has no line ending in spaces. The last factor's levels
+    (``tiny``, ``enormous``) are longer than its name, so a padded header would end in
+    spaces; the rows with the short level would too."""
+    p = tmp_path / "e.yaml"
+    p.write_text(BASE.replace("  c: [p, q]", "  c: [tiny, enormous]"))
+    r = cli("plan", p)
+    assert r.returncode == 0, r.stderr
+    lines = r.stdout.splitlines()
+    assert any(ln.lstrip().startswith("#") and ln.endswith(" c") for ln in lines), r.stdout
+    assert any(ln.endswith(" tiny") for ln in lines)
+    assert [ln for ln in lines if ln != ln.rstrip()] == []

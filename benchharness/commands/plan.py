@@ -159,9 +159,10 @@ def format_plan(exp, plan, show: int = 12) -> str:
                  "warm-up" if r.warmup else str(r.replicate),
                  *(r.levels[f] for f in names)] for r in plan.runs[:n]]
         widths = [max(len(h), *(len(row[i]) for row in rows)) for i, h in enumerate(header)]
-        lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths)))
+        # the last column is not padded: piped output has no line ending in spaces
+        lines.append(("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths))).rstrip())
         for row in rows:
-            lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)))
+            lines.append(("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths))).rstrip())
     return "\n".join(lines)
 
 
