@@ -220,6 +220,19 @@ def test_old_spellings_still_work_with_one_note(capsys):
                      ("--min-runs", "--first-look-pairs"), ("--warmup", "--warmup-runs"),
                      ("--higher-is-better", "--better higher"), ("--history", "--history-db")]:
         assert sum(ln.startswith(f"note: {old} is deprecated; write {new}") for ln in err) == 1
+    # the note names the level the user typed, not a stock example: --alpha 0.01 is 99%
+    assert "note: --alpha is deprecated; write --confidence 99% (for --alpha 0.01)" in err
+    assert ("note: --false-step-level is deprecated; write --confidence 90% "
+            "(for --false-step-level 10%)") in err
+
+
+def test_old_significance_note_follows_the_value(capsys):
+    """``size --alpha 0.001`` asks for tests at 0.1%: the note and the answer both say so."""
+    assert main(["size", "--detect", "10%", "--noise-cv", "5%", "--levels", "2,2",
+                 "--alpha", "0.001"]) == 0
+    out, err = capsys.readouterr()
+    assert "note: --alpha is deprecated; write --confidence 99.9% (for --alpha 0.001)" in err
+    assert "95%" not in err and "alpha 0.001" in out
 
 
 # --- --json: one document on stdout, for every command that produces a result -----------

@@ -49,7 +49,7 @@ def add_parser(sub) -> None:
     p.add_argument("--confidence", type=O.confidence, default=0.95, metavar="PCT",
                    help="confidence of the intervals; tests are made at 100%% minus it "
                         "(default 95%%)")
-    O.alias(p, "--alpha", "--confidence 95% (for --alpha 0.05)", "confidence",
+    O.alias(p, "--alpha", O.confidence_for("--alpha"), "confidence",
             convert=O.complement)
     p.add_argument("--reference", action="append", default=None, metavar="FACTOR=LEVEL",
                    help="reference level of a factor for ratios (repeat the option for each "

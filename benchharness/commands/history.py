@@ -73,7 +73,7 @@ def add_parser(sub) -> None:
     s.add_argument("--confidence", type=O.confidence, default=0.95, metavar="PCT",
                    help="a flat series of one host shows a false step with a chance of at "
                         "most 100%% minus this (default 95%%: 5%%)")
-    O.alias(s, "--false-step-level", "--confidence 95% (for --false-step-level 0.05)",
+    O.alias(s, "--false-step-level", O.confidence_for("--false-step-level"),
             "confidence", convert=O.complement,
             metavar="P")
     s.add_argument("--fail-on-regression", action="store_true",

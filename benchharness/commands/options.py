@@ -159,14 +159,27 @@ class _Alias(argparse.Action):
                 value = self.convert(values)
             except (argparse.ArgumentTypeError, V.ValueFormError) as exc:
                 raise argparse.ArgumentError(self, str(exc)) from None
-        V.deprecated(f"{option_string} is deprecated; write {self.new}")
+        new = self.new(values, value) if callable(self.new) else self.new
+        V.deprecated(f"{option_string} is deprecated; write {new}")
         setattr(namespace, self.dest, value)
+
+
+def confidence_for(old: str):
+    """The new spelling of an old significance option, for the value typed: ``--alpha
+    0.01`` -> ``--confidence 99% (for --alpha 0.01)``, so the note never suggests another
+    level than the one the user asked for."""
+
+    def new(raw, confidence: float) -> str:
+        return f"--confidence {round(100 * confidence, 9):g}% (for {old} {raw})"
+
+    return new
 
 
 def alias(p, old: str, new: str, dest: str, convert=None, flag: bool = False,
           metavar: str | None = None) -> None:
     """Keep the shipped spelling ``old`` working: it sets ``dest`` (through ``convert``)
-    with a one-line deprecation note naming ``new``. Hidden from ``--help``."""
+    with a one-line deprecation note naming ``new`` (a string, or a function of the typed
+    and the converted value giving it). Hidden from ``--help``."""
     p.add_argument(old, dest=dest, action=_Alias, new=new, convert=convert,
                    nargs=0 if flag else None, metavar=metavar, default=argparse.SUPPRESS)
 

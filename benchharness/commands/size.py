@@ -34,7 +34,7 @@ def add_parser(sub) -> None:
     p.add_argument("--confidence", type=O.confidence, default=0.95, metavar="PCT",
                    help="the tests are made at 100%% minus this, their false-alarm rate "
                         "(default 95%%: 5%%)")
-    O.alias(p, "--alpha", "--confidence 95% (for --alpha 0.05)", "confidence",
+    O.alias(p, "--alpha", O.confidence_for("--alpha"), "confidence",
             convert=O.complement)
     p.add_argument("--power", type=O.percent(0.0, 1.0, low_open=True), default=0.9,
                    metavar="PCT", help="wanted power (default 90%%)")
