@@ -111,7 +111,7 @@ def test_gate_records_the_candidate_in_history(tmp_path, cli):
     r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "8",
             "--out", tmp_path / "g", "--history-db", db, cwd=tmp_path)
     assert r.returncode in (0, 3), r.stderr
-    assert "history: 1 cell rows of the candidate added" in r.stdout
+    assert "history: 1 cell row of the candidate added" in r.stdout   # one workload, one row
     with sqlite3.connect(db) as con:
         assert con.execute("select count(*) from cells").fetchone()[0] == 1
 

@@ -184,7 +184,9 @@ def main(args) -> int:
 
         n = add_results(args.history_db, folder, responses=(cfg.response,),
                         select={cfg.factor: cfg.candidate})
-        print(f"history: {n} cell rows of the candidate added to {args.history_db}")
+        from benchharness.numbers import plural
+
+        print(f"history: {plural(n, 'cell row')} of the candidate added to {args.history_db}")
     return outcome.exit_code(cfg.inconclusive)
 
 

@@ -128,7 +128,9 @@ def main(args) -> int:
         from benchharness.history import add_results
 
         added = add_results(args.history_db, outcome.folder)
-        print(f"history: {added} cell rows added to {args.history_db}")
+        from benchharness.numbers import plural
+
+        print(f"history: {plural(added, 'cell row')} added to {args.history_db}")
     if args.json or args.json_out:
         from benchharness.commands.options import dumps, emit_json
 
