@@ -171,20 +171,10 @@ def analyze_fraction(runs, design, response: str = "wall_s", log: bool = True,
                            alpha=alpha, blocks=blocks)
 
 
-def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
-                    alpha: float = 0.05, blocks=None) -> dict:
-    """The fraction table from coded columns: one estimate per alias chain (JSON-ready).
-
-    ``X`` (rows x k) holds -1/+1 per design factor, ``y`` the response already on
-    the analysis scale (``scale``: ``log`` gives ratios, ``none``/``boxcox`` not);
-    ``blocks`` (one label per row, optional) enter as indicators.
-    """
+def _chain_columns(X, design, n: int):
+    """The estimable alias classes and one product column per class (its representative word)."""
     import numpy as np
-    from benchharness.analysis import dist as stats
 
-    log = scale == "log"
-    y = np.asarray(y, dtype=float)
-    n = len(y)
     classes = design.estimable()
     cols = []
     for rep, _al in classes:
@@ -193,13 +183,26 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
             v = v * X[:, pos]
         cols.append(v)
     E = np.column_stack(cols) if cols else np.zeros((n, 0))
+    return classes, E
+
+
+def _block_matrix(blocks, n: int):
+    """Intercept plus one indicator per block label after the first."""
+    import numpy as np
+
     parts = [np.ones((n, 1))]
     block_values = sorted(set(blocks)) if blocks is not None else []
     if len(block_values) > 1:
         b = np.asarray(blocks)
         parts.append(np.column_stack([(b == v).astype(float) for v in block_values[1:]]))
-    B = np.column_stack(parts)
-    # Chains in the span of the block indicators are confounded with blocks.
+    return np.column_stack(parts)
+
+
+def _split_confounded(B, E):
+    """Chains in the span of the block indicators are confounded with blocks; the rest are
+    estimable. Returns (confounded, estimable) column indices of ``E``."""
+    import numpy as np
+
     confounded = []
     estimable_idx = []
     for j in range(E.shape[1]):
@@ -208,6 +211,15 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
             confounded.append(j)
         else:
             estimable_idx.append(j)
+    return confounded, estimable_idx
+
+
+def _least_squares(B, E, estimable_idx, y):
+    """Ordinary least squares of ``y`` on the blocks and the estimable chains:
+    (inverse of X'X, coefficients, residual df, residual standard deviation or None)."""
+    import numpy as np
+
+    n = len(y)
     M = np.column_stack([B, E[:, estimable_idx]]) if estimable_idx else B
     rank = np.linalg.matrix_rank(M)
     if rank < M.shape[1]:
@@ -217,11 +229,94 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
     beta = XtX_inv @ M.T @ y
     resid = y - M @ beta
     df_resid = n - M.shape[1]
-    nb = B.shape[1]
-    effects = [2.0 * float(beta[nb + i]) for i in range(len(estimable_idx))]
     sigma = None
     if df_resid > 0:
         sigma = math.sqrt(float(resid @ resid) / df_resid)
+    return XtX_inv, beta, df_resid, sigma
+
+
+def _chain_row(rep, al, e, names, design) -> dict:
+    """The identity of one chain's effect: letters, label, term, chain, aliases, estimate."""
+    return {
+        "effect": W.letters(rep), "label": chain_label(rep, al), "term": W.term(rep, names),
+        "chain": chain_of(W.positions(rep), names, design)["chain"],
+        "aliases": [("-" if s < 0 else "") + W.term(m, names) for m, s in al if m],
+        "order": W.order(rep), "estimate": e,
+    }
+
+
+def _t_test_fields(e, var_factor, sigma, df_resid, alpha) -> dict:
+    """Standard error, t, p and interval of one effect from the replicates' residual mean
+    square (``var_factor`` is its diagonal entry of the inverse of X'X)."""
+    from benchharness.analysis import dist as stats
+
+    se = 2.0 * sigma * math.sqrt(var_factor)
+    t = e / se if se > 0 else math.inf
+    p = float(2 * stats.t.sf(abs(t), df_resid))
+    tq = float(stats.t.ppf(1 - alpha / 2, df_resid))
+    return {"se": se, "t": t, "p": p, "ci_low": e - tq * se, "ci_high": e + tq * se,
+            "active": p < alpha}
+
+
+def _lenth_fields(e, lenth_info) -> dict:
+    """Pseudo standard error, t, p and margins of one effect without replicates."""
+    from benchharness.analysis import dist as stats
+
+    pse = lenth_info["pse"]
+    t = e / pse if pse > 0 else math.inf
+    return {"se": pse, "t": t,
+            # Lenth's t-ratio against t with m/3 df: p < alpha exactly when
+            # |effect| > ME (Lenth 1989)
+            "p": float(2 * stats.t.sf(abs(t), lenth_info["df"])),
+            "ci_low": e - lenth_info["me"], "ci_high": e + lenth_info["me"],
+            "likely": abs(e) > lenth_info["me"], "active": abs(e) > lenth_info["sme"]}
+
+
+def _add_ratios(row: dict) -> None:
+    """On the log scale, the effect and its interval as ratios of the +1 to the -1 level."""
+    row["ratio"] = math.exp(row["estimate"])
+    if "ci_low" in row:
+        row["ratio_low"] = math.exp(row["ci_low"])
+        row["ratio_high"] = math.exp(row["ci_high"])
+
+
+def _holm_active(out_effects: list, alpha: float) -> None:
+    """Holm (1979) across the effects for the "active" flag: screening tests many chains."""
+    from benchharness.analysis.comparisons import adjust_p
+
+    for row, p_holm in zip(out_effects, adjust_p([r["p"] for r in out_effects], "holm")):
+        row["p_holm"] = float(p_holm)
+        row["active"] = bool(p_holm < alpha)
+
+
+def _method_text(sigma, lenth_info) -> str:
+    """How the effects were judged, in words."""
+    return ("t tests on the replicates' residual mean square; active = Holm-adjusted "
+            "p below alpha" if sigma is not None else
+            "Lenth's pseudo standard error (no replicates); likely = beyond the margin "
+            "of error, active = beyond the simultaneous margin" if lenth_info else
+            "no error estimate")
+
+
+def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
+                    alpha: float = 0.05, blocks=None) -> dict:
+    """The fraction table from coded columns: one estimate per alias chain (JSON-ready).
+
+    ``X`` (rows x k) holds -1/+1 per design factor, ``y`` the response already on
+    the analysis scale (``scale``: ``log`` gives ratios, ``none``/``boxcox`` not);
+    ``blocks`` (one label per row, optional) enter as indicators.
+    """
+    import numpy as np
+
+    log = scale == "log"
+    y = np.asarray(y, dtype=float)
+    n = len(y)
+    classes, E = _chain_columns(X, design, n)
+    B = _block_matrix(blocks, n)
+    confounded, estimable_idx = _split_confounded(B, E)
+    XtX_inv, beta, df_resid, sigma = _least_squares(B, E, estimable_idx, y)
+    nb = B.shape[1]
+    effects = [2.0 * float(beta[nb + i]) for i in range(len(estimable_idx))]
     lenth_info = None
     if df_resid == 0 and len(effects) >= 2:
         lenth_info = lenth(effects)
@@ -230,41 +325,16 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
     for i, j in enumerate(estimable_idx):
         rep, al = classes[j]
         e = effects[i]
-        row = {
-            "effect": W.letters(rep), "label": chain_label(rep, al), "term": W.term(rep, names),
-            "chain": chain_of(W.positions(rep), names, design)["chain"],
-            "aliases": [("-" if s < 0 else "") + W.term(m, names) for m, s in al if m],
-            "order": W.order(rep), "estimate": e,
-        }
+        row = _chain_row(rep, al, e, names, design)
         if sigma is not None:
-            se = 2.0 * sigma * math.sqrt(float(XtX_inv[nb + i, nb + i]))
-            t = e / se if se > 0 else math.inf
-            p = float(2 * stats.t.sf(abs(t), df_resid))
-            tq = float(stats.t.ppf(1 - alpha / 2, df_resid))
-            row.update({"se": se, "t": t, "p": p, "ci_low": e - tq * se, "ci_high": e + tq * se,
-                        "active": p < alpha})
+            row.update(_t_test_fields(e, float(XtX_inv[nb + i, nb + i]), sigma, df_resid, alpha))
         elif lenth_info is not None:
-            pse = lenth_info["pse"]
-            t = e / pse if pse > 0 else math.inf
-            row.update({"se": pse, "t": t,
-                        # Lenth's t-ratio against t with m/3 df: p < alpha exactly when
-                        # |effect| > ME (Lenth 1989)
-                        "p": float(2 * stats.t.sf(abs(t), lenth_info["df"])),
-                        "ci_low": e - lenth_info["me"], "ci_high": e + lenth_info["me"],
-                        "likely": abs(e) > lenth_info["me"], "active": abs(e) > lenth_info["sme"]})
+            row.update(_lenth_fields(e, lenth_info))
         if log:
-            row["ratio"] = math.exp(e)
-            if "ci_low" in row:
-                row["ratio_low"] = math.exp(row["ci_low"])
-                row["ratio_high"] = math.exp(row["ci_high"])
+            _add_ratios(row)
         out_effects.append(row)
     if sigma is not None and out_effects:
-        # Holm (1979) across the effects for the "active" flag: screening tests many chains.
-        from benchharness.analysis.comparisons import adjust_p
-
-        for row, p_holm in zip(out_effects, adjust_p([r["p"] for r in out_effects], "holm")):
-            row["p_holm"] = float(p_holm)
-            row["active"] = bool(p_holm < alpha)
+        _holm_active(out_effects, alpha)
     labels = [r["label"] for r in out_effects]
     return {
         "response": response,
@@ -278,11 +348,7 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
         "residual_df": int(df_resid),
         "sigma": sigma,
         "alpha": alpha,
-        "method": ("t tests on the replicates' residual mean square; active = Holm-adjusted "
-                   "p below alpha" if sigma is not None else
-                   "Lenth's pseudo standard error (no replicates); likely = beyond the margin "
-                   "of error, active = beyond the simultaneous margin" if lenth_info else
-                   "no error estimate"),
+        "method": _method_text(sigma, lenth_info),
         "effect_definition": "mean at +1 minus mean at -1 (twice the coefficient)"
                              + ("; ratio = exp(effect) of the +1 level to the -1 level"
                                 if log else ""),
