@@ -360,6 +360,48 @@ def estimate_chains(X, y, design, response: str = "wall_s", scale: str = "log",
     }
 
 
+def _fraction_flag(e: dict, with_p: bool) -> str:
+    """The verdict word of one chain: active, or likely (Lenth's margins), or nothing."""
+    if e.get("active"):
+        return "active" if with_p else "active (beyond SME)"
+    if e.get("likely"):
+        return "likely (beyond ME)"
+    return ""
+
+
+def _fraction_row(e: dict, with_p: bool, with_lenth: bool) -> list:
+    """The cells of one chain's line in the fraction table."""
+    ratio = f"x{e['ratio']:.4f}" if "ratio" in e else ""
+    row = [e.get("chain") or e["term"], e["label"], f"{e['estimate']:+.4g}", ratio]
+    if with_p:
+        row.append(f"{e['p']:.3g} (Holm {e['p_holm']:.3g})")
+    elif with_lenth:
+        row.append(f"{e['p']:.3g}" if e.get("p") is not None else "")
+    return row + [_fraction_flag(e, with_p)]
+
+
+def _aligned(header: list, rows: list) -> list:
+    """Header and rows as left-aligned columns, each line indented by two spaces."""
+    widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h)
+              for i, h in enumerate(header)]
+    lines = ["  " + "  ".join(h.ljust(w) for h, w in zip(header, widths))]
+    for r in rows:
+        lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)))
+    return lines
+
+
+def _fraction_notes(result: dict) -> list:
+    """Lines after the table: Lenth's margins and the chains confounded with blocks."""
+    lines = []
+    if result.get("lenth"):
+        ln = result["lenth"]
+        lines.append(f"Lenth: PSE {ln['pse']:.4g}, margin of error {ln['me']:.4g}, simultaneous "
+                     f"margin {ln['sme']:.4g} (df {ln['df']:.3g})")
+    if result.get("confounded_with_blocks"):
+        lines.append("confounded with blocks: " + ", ".join(result["confounded_with_blocks"]))
+    return lines
+
+
 def format_fraction(result: dict) -> str:
     """Plain-text table of `analyze_fraction` output."""
     lines = [f"effects of the {result['design']} design on "
@@ -369,33 +411,11 @@ def format_fraction(result: dict) -> str:
         lines.append("  letters: " + ", ".join(f"{a}={n}" for a, n in result["letters"].items()))
     with_p = any("p_holm" in e for e in result["effects"])
     with_lenth = not with_p and any("p" in e for e in result["effects"])
-    rows = []
-    for e in result["effects"]:
-        ratio = f"x{e['ratio']:.4f}" if "ratio" in e else ""
-        flag = ""
-        if e.get("active"):
-            flag = "active" if with_p else "active (beyond SME)"
-        elif e.get("likely"):
-            flag = "likely (beyond ME)"
-        row = [e.get("chain") or e["term"], e["label"], f"{e['estimate']:+.4g}", ratio]
-        if with_p:
-            row.append(f"{e['p']:.3g} (Holm {e['p_holm']:.3g})")
-        elif with_lenth:
-            row.append(f"{e['p']:.3g}" if e.get("p") is not None else "")
-        rows.append(row + [flag])
+    rows = [_fraction_row(e, with_p, with_lenth) for e in result["effects"]]
     header = (["alias chain", "letters", "estimate", "ratio"] + (["p"] if with_p else [])
               + (["p (Lenth)"] if with_lenth else []) + [""])
-    widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h)
-              for i, h in enumerate(header)]
-    lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths)))
-    for r in rows:
-        lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)))
-    if result.get("lenth"):
-        ln = result["lenth"]
-        lines.append(f"Lenth: PSE {ln['pse']:.4g}, margin of error {ln['me']:.4g}, simultaneous "
-                     f"margin {ln['sme']:.4g} (df {ln['df']:.3g})")
-    if result.get("confounded_with_blocks"):
-        lines.append("confounded with blocks: " + ", ".join(result["confounded_with_blocks"]))
+    lines.extend(_aligned(header, rows))
+    lines.extend(_fraction_notes(result))
     return "\n".join(lines)
 
 
