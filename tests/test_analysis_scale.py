@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 
 import numpy as np
 import pandas as pd
@@ -357,9 +358,14 @@ def test_large_drift_is_never_ok_even_when_the_slope_is_not_significant():
     assert dr["p"] == pytest.approx(ref.pvalue, rel=1e-9)
     assert abs(dr["percent_per_100_runs"]) > 5 and dr["p"] >= 0.05
     assert (dr["level"], dr["ok"]) == ("caution", False)
-    assert dr["verdict"].startswith(f"the response moves {dr['percent_per_100_runs']:+.2f}% per "
+    # three significant figures and a p written as every output writes them (docs/cli.md)
+    pct = dr["percent_per_100_runs"]
+    stated = re.search(r"moves ([+-][\d.,]+)% per 100 runs", dr["verdict"])
+    assert stated and float(stated.group(1)) == pytest.approx(pct, rel=5e-3)
+    assert len(stated.group(1).lstrip("+-").replace(".", "").lstrip("0")) == 3
+    assert dr["verdict"].startswith(f"the response moves {stated.group(1)}% per "
                                     "100 runs over the run order, beyond ±5%, although the "
-                                    "slope is not significant")
+                                    f"slope is not significant (p = {dr['p']:.3f})")
 
 
 def test_small_departures_stay_ok():

@@ -291,12 +291,12 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
     nruns, z, p_runs = runs_test(nz > 0)
     per100 = slope * 100.0
     pct = per100 * pct_per_unit
-    size = f"{pct:+.2f}% per 100 runs"
+    size = f"{_signed(pct)}% per 100 runs"
     level = "ok"
     if p >= alpha and abs(pct) > DRIFT_LARGE_PCT:
         level = "caution"
         verdict = (f"the response moves {size} over the run order, beyond ±{DRIFT_LARGE_PCT:g}%, "
-                   f"although the slope is not significant (p {p:.2g}); check for warm-up, "
+                   f"although the slope is not significant ({_p(p)}); check for warm-up, "
                    "throttling or background load before trusting small effects")
     elif p >= alpha:
         verdict = f"no clear drift over the run order (slope {size}, not significant)"
@@ -323,6 +323,22 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
     return {"slope_per_100_runs": per100, "percent_per_100_runs": pct, "p": p,
             "runs_test": runs_info, "size": _size(abs(pct), DRIFT_MILD_PCT, DRIFT_LARGE_PCT),
             "verdict": verdict, "level": level, "ok": level == "ok"}
+
+
+def _signed(x: float) -> str:
+    """A signed number in three significant figures, as every output writes one
+    (``numbers.fmt_num``): ``+92.8``, ``-3.46``."""
+    from benchharness.numbers import fmt_num
+
+    return ("+" if x > 0 else "") + fmt_num(x)
+
+
+def _p(p: float) -> str:
+    """A p-value in a sentence: ``p = 0.078``, ``p < 0.001`` (``numbers.fmt_p``)."""
+    from benchharness.numbers import fmt_p
+
+    text = fmt_p(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
 
 
 def _size(x: float, mild: float, large: float) -> str:
