@@ -136,6 +136,43 @@ class TermLimit:
     message: str | None         # one line for the user
 
 
+def _refusal(ts, sizes, n_cells: int, n_rows: int):
+    """Why the term set ``ts`` cannot be fitted ("rows", "parameters", "work"), or None."""
+    p = parameter_count(ts, sizes)
+    if p > max(int(n_rows), 1):
+        return "rows"
+    if p > MAX_PARAMETERS:
+        return "parameters"
+    if fit_work(ts, sizes, n_cells) > MAX_WORK:
+        return "work"
+    return None
+
+
+def _main_effects_too_large(kept, sizes, why, n_cells: int, n_rows: int) -> UsageError:
+    """The error when even the main effects (and block) cannot be fitted: names the largest
+    factor."""
+    big = max((t for t in kept if not t.is_block), key=lambda t: sizes[t.factors[0]],
+              default=None)
+    what = (f"the main effects need {parameter_count(kept, sizes):,} parameters"
+            + (f" ({big.name} alone has {sizes[big.factors[0]]:,} levels)" if big else ""))
+    return UsageError(
+        f"cannot analyse: {what}, {_limit_text(why, n_cells, n_rows)}; analyse "
+        "fewer levels (a subset of the runs, or levels grouped into a coarser factor)")
+
+
+def _limit_message(terms, top, order, p_req, p_fit, why, last, n_cells, n_rows) -> str:
+    """One line for the user: what was requested, why it was refused, what was fitted."""
+    n_main = sum(1 for t in terms if not t.is_block and len(t.factors) == 1)
+    req = "the full model" if top == n_main else f"the model with interactions up to order {top}"
+    fitted = "main effects only" if order == 1 else f"interactions up to order {order}"
+    msg = (f"{req} has {p_req:,} parameters, {_limit_text(why, n_cells, n_rows)}; "
+           f"fitted {fitted} ({p_fit:,} parameters) instead")
+    if last[0] != top:
+        msg += (f" (interactions up to order {last[0]} would need {last[1]:,} parameters, "
+                f"{_limit_text(last[2], n_cells, n_rows)})")
+    return msg
+
+
 def limit_terms(terms, sizes, n_cells: int, n_rows: int) -> TermLimit:
     """Leave out the highest-order interactions until the model can be fitted.
 
@@ -146,15 +183,9 @@ def limit_terms(terms, sizes, n_cells: int, n_rows: int) -> TermLimit:
     """
     terms = list(terms)
     p_req = parameter_count(terms, sizes)
+
     def fits(ts):
-        p = parameter_count(ts, sizes)
-        if p > max(int(n_rows), 1):
-            return "rows"
-        if p > MAX_PARAMETERS:
-            return "parameters"
-        if fit_work(ts, sizes, n_cells) > MAX_WORK:
-            return "work"
-        return None
+        return _refusal(ts, sizes, n_cells, n_rows)
 
     why = fits(terms)
     if why is None:
@@ -171,22 +202,9 @@ def limit_terms(terms, sizes, n_cells: int, n_rows: int) -> TermLimit:
     else:
         kept = [t for t in terms if t.is_block or len(t.factors) <= 1]
         if fits(kept) is not None:
-            big = max((t for t in kept if not t.is_block), key=lambda t: sizes[t.factors[0]],
-                      default=None)
-            what = (f"the main effects need {parameter_count(kept, sizes):,} parameters"
-                    + (f" ({big.name} alone has {sizes[big.factors[0]]:,} levels)" if big else ""))
-            raise UsageError(
-                f"cannot analyse: {what}, {_limit_text(fits(kept), n_cells, n_rows)}; analyse "
-                "fewer levels (a subset of the runs, or levels grouped into a coarser factor)")
+            raise _main_effects_too_large(kept, sizes, fits(kept), n_cells, n_rows)
     p_fit = parameter_count(kept, sizes)
-    n_main = sum(1 for t in terms if not t.is_block and len(t.factors) == 1)
-    req = "the full model" if top == n_main else f"the model with interactions up to order {top}"
-    fitted = "main effects only" if order == 1 else f"interactions up to order {order}"
-    msg = (f"{req} has {p_req:,} parameters, {_limit_text(why, n_cells, n_rows)}; "
-           f"fitted {fitted} ({p_fit:,} parameters) instead")
-    if last[0] != top:
-        msg += (f" (interactions up to order {last[0]} would need {last[1]:,} parameters, "
-                f"{_limit_text(last[2], n_cells, n_rows)})")
+    msg = _limit_message(terms, top, order, p_req, p_fit, why, last, n_cells, n_rows)
     return TermLimit(kept, order, p_req, p_fit, why, msg)
 
 
