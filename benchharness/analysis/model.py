@@ -398,6 +398,21 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None,
     X, slices, Q, R = _factored(cells, mom.n, terms, cache)
     if R.shape[0] >= X.shape[1]:
         return _fit(cells, mom, terms, ss_type, only, pre=(X, slices, Q, R))
+    dropped = _dropped_terms(R, slices, terms, cells.sizes, cache)
+    if not dropped:
+        return _fit(cells, mom, terms, ss_type, only, pre=(X, slices, Q, R))
+    kept = tuple(t for t in terms if t not in dropped)
+    fit = _fit(cells, mom, kept, ss_type, only, pre=_factored(cells, mom.n, kept, cache))
+    partners, carried = _confounding(R, slices, terms, kept, dropped)
+    table = _table_with_dropped(terms, dropped, fit.table, partners, carried, cells.sizes)
+    from dataclasses import replace
+
+    return replace(fit, table=tuple(table), left_out=tuple(t.name for t in dropped))
+
+
+def _dropped_terms(R, slices, terms, sizes, cache) -> list:
+    """The terms whose columns earlier terms explain entirely (no sequential df left), other
+    than those with a single-level factor."""
     # R has the inner products of Xw's columns: projections on it keep every length
     key = ("dropped",) + tuple(t.name for t in terms)
     if cache is not None and key in cache:
@@ -406,11 +421,12 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None,
         seq = _sequential_df(R, slices, terms)
         if cache is not None:
             cache[key] = seq
-    dropped = [t for t in terms if seq[t.name] == 0 and not _single_level(t, cells.sizes)]
-    if not dropped:
-        return _fit(cells, mom, terms, ss_type, only, pre=(X, slices, Q, R))
-    kept = tuple(t for t in terms if t not in dropped)
-    fit = _fit(cells, mom, kept, ss_type, only, pre=_factored(cells, mom.n, kept, cache))
+    return [t for t in terms if seq[t.name] == 0 and not _single_level(t, sizes)]
+
+
+def _confounding(R, slices, terms, kept, dropped):
+    """Which kept earlier terms each dropped term is confounded with (``partners``), and the
+    other way round, which dropped terms each kept term carries (``carried``)."""
     partners = {}
     for t in dropped:
         earlier = [s for s in terms[: terms.index(t)] if s in kept]
@@ -419,13 +435,25 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None,
     for d, ps in partners.items():
         for p_ in ps:
             carried.setdefault(p_, []).append(d)
-    rows = {r.term: r for r in fit.table}
+    return partners, carried
+
+
+def _full_df(t: Term, sizes) -> int:
+    """Degrees of freedom of a term with every cell observed: the product of (levels - 1)."""
+    df_full = 1
+    for f in t.factors:
+        df_full *= sizes[f] - 1
+    return df_full
+
+
+def _table_with_dropped(terms, dropped, fitted_table, partners, carried, sizes) -> list:
+    """The ANOVA rows in the requested term order: the dropped terms as inestimable (df 0),
+    the kept ones with the dropped terms they carry."""
+    rows = {r.term: r for r in fitted_table}
     table = []
     for t in terms:
         if t in dropped:
-            df_full = 1
-            for f in t.factors:
-                df_full *= cells.sizes[f] - 1
+            df_full = _full_df(t, sizes)
             with_ = ", ".join(partners[t.name]) or "earlier terms"
             table.append(TermSS(t.name, 0, df_full, float("nan"), t.is_block,
                                 f"inestimable: completely confounded with {with_}; left out of "
@@ -434,9 +462,7 @@ def fit_model(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None,
             r = rows[t.name]
             table.append(TermSS(r.term, r.df, r.df_full, r.sum_sq, r.is_block, r.note,
                                 tuple(carried.get(t.name, ()))))
-    from dataclasses import replace
-
-    return replace(fit, table=tuple(table), left_out=tuple(t.name for t in dropped))
+    return table
 
 
 def _single_level(t: Term, sizes) -> bool:
