@@ -469,6 +469,78 @@ def _single_level(t: Term, sizes) -> bool:
     return any(sizes[f] < 2 for f in t.factors)
 
 
+def _solve(X, Q, R, yw, p: int):
+    """Weighted least squares through Xw = Q R: the SVD of the small R gives the
+    minimum-norm solution and (X'WX)^+. Returns (beta, (X'WX)^+, row space, rank, Q'yw)."""
+    # Xw = Q R; the SVD of the small R gives the minimum-norm solution and (X'WX)^+
+    _, s, vt = np.linalg.svd(R, full_matrices=False)
+    keep = s > (s[0] if s.size else 0.0) * 1e-10 * max(X.shape)
+    s_r, vt_r = s[keep], vt[keep]
+    rank = int(keep.sum())
+    zq = Q.T @ yw                     # coordinates of the projection of yw on col(Xw)
+    beta = vt_r.T @ (((vt_r @ R.T) @ zq) / s_r**2) if rank else np.zeros(p)
+    cov_unscaled = (vt_r.T / s_r**2) @ vt_r
+    return beta, cov_unscaled, vt_r, rank, zq
+
+
+def _adjusted_for(t: Term, terms, used_type: int) -> list:
+    """The terms ``t``'s sum of squares is adjusted for: Type II leaves out the terms that
+    contain ``t``, Type III none."""
+    if used_type == 2:
+        ft = set(t.factors)
+        return [o for o in terms if o is not t and not set(o.factors) >= ft]
+    return [o for o in terms if o is not t]
+
+
+def _term_ss(t: Term, others, n_terms: int, sl, full_rank: bool, beta, cov_unscaled, col,
+             intercept, zq):
+    """Extra sum of squares of ``t`` after ``others`` and its df, by the cheapest exact route."""
+    if full_rank and len(others) == n_terms - 1 and sl.stop > sl.start:
+        # adjusted for every other term: the Wald form from the full fit
+        bt = beta[sl]
+        ss = float(bt @ np.linalg.solve(cov_unscaled[sl, sl], bt))
+        df = sl.stop - sl.start
+    elif full_rank and sl.stop > sl.start:
+        # full rank: t's columns last after the others, with the response appended; the
+        # triangular factor's last column holds Q'z, whose entries in t's rows are the
+        # extra sum of squares of t (one unpivoted QR, no basis formed)
+        from scipy.linalg import qr
+
+        a = np.hstack([intercept] + [col[o.name] for o in others] + [col[t.name],
+                                                                      zq[:, None]])
+        r_aug = qr(a, mode="r", check_finite=False)[0]
+        p1 = a.shape[1] - 1
+        df = sl.stop - sl.start
+        ss = float((r_aug[p1 - df:p1, -1] ** 2).sum())
+    else:
+        a = np.hstack([intercept] + [col[o.name] for o in others])
+        b1 = term_basis(a)
+        xt = col[t.name]
+        r = xt - b1 @ (b1.T @ xt)
+        b2 = term_basis(r, scale=_norm2(xt))
+        proj = b2.T @ zq
+        ss = float(proj @ proj)
+        df = int(b2.shape[1])
+    return ss, df
+
+
+def _term_note(ss: float, df: int, df_full: int, round_off: bool):
+    """The sum of squares as reported (0 for round-off of equal values, NaN when there is
+    nothing to estimate) and the row's note."""
+    note = None
+    if round_off:
+        ss = 0.0        # round-off of equal values
+    if df_full == 0:
+        note = "no effect to estimate: a factor in this term has a single level"
+        ss = float("nan")
+    elif df == 0:
+        note = "inestimable: the observed cells cannot separate this effect from the others"
+        ss = float("nan")
+    elif df < df_full:
+        note = (f"only {df} of {df_full} degrees of freedom estimable (empty cells)")
+    return ss, note
+
+
 def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=None) -> Fit:
     if ss_type not in (2, 3):
         raise UsageError(f"sums of squares type {ss_type!r} is not supported; use 2 or 3")
@@ -485,14 +557,7 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=Non
     n_obs = mom.total_n
     ss_within = float(mom.ss_within.sum())
 
-    # Xw = Q R; the SVD of the small R gives the minimum-norm solution and (X'WX)^+
-    _, s, vt = np.linalg.svd(R, full_matrices=False)
-    keep = s > (s[0] if s.size else 0.0) * 1e-10 * max(X.shape)
-    s_r, vt_r = s[keep], vt[keep]
-    rank = int(keep.sum())
-    zq = Q.T @ yw                     # coordinates of the projection of yw on col(Xw)
-    beta = vt_r.T @ (((vt_r @ R.T) @ zq) / s_r**2) if rank else np.zeros(p)
-    cov_unscaled = (vt_r.T / s_r**2) @ vt_r
+    beta, cov_unscaled, vt_r, rank, zq = _solve(X, Q, R, yw, p)
     fitted_w = Q @ zq
     resid_w = yw - fitted_w
     rss = ss_within + float(resid_w @ resid_w)
@@ -511,60 +576,18 @@ def _fit(cells: Cells, mom: Moments, terms, ss_type: int = 2, only=None, pre=Non
                      "(the model is rank deficient); Type II sums of squares are reported instead")
     wanted = None if only is None else set(only)
     col = {t.name: R[:, slices[t.name]] for t in terms}
-    intercept = R[:, :1]
     full_rank = rank == p and R.shape[0] == p
     table = []
     for t in terms:
-        ft = set(t.factors)
-        df_full = 1
-        for f in t.factors:
-            df_full *= sizes[f] - 1
+        df_full = _full_df(t, sizes)
         if wanted is not None and t.name not in wanted:
             table.append(TermSS(t.name, 0, df_full, float("nan"), t.is_block,
                                 "not computed"))
             continue
-        if used_type == 2:
-            others = [o for o in terms if o is not t and not set(o.factors) >= ft]
-        else:
-            others = [o for o in terms if o is not t]
-        sl = slices[t.name]
-        if full_rank and len(others) == len(terms) - 1 and sl.stop > sl.start:
-            # adjusted for every other term: the Wald form from the full fit
-            bt = beta[sl]
-            ss = float(bt @ np.linalg.solve(cov_unscaled[sl, sl], bt))
-            df = sl.stop - sl.start
-        elif full_rank and sl.stop > sl.start:
-            # full rank: t's columns last after the others, with the response appended; the
-            # triangular factor's last column holds Q'z, whose entries in t's rows are the
-            # extra sum of squares of t (one unpivoted QR, no basis formed)
-            from scipy.linalg import qr
-
-            a = np.hstack([intercept] + [col[o.name] for o in others] + [col[t.name],
-                                                                          zq[:, None]])
-            r_aug = qr(a, mode="r", check_finite=False)[0]
-            p1 = a.shape[1] - 1
-            df = sl.stop - sl.start
-            ss = float((r_aug[p1 - df:p1, -1] ** 2).sum())
-        else:
-            a = np.hstack([intercept] + [col[o.name] for o in others])
-            b1 = term_basis(a)
-            xt = col[t.name]
-            r = xt - b1 @ (b1.T @ xt)
-            b2 = term_basis(r, scale=_norm2(xt))
-            proj = b2.T @ zq
-            ss = float(proj @ proj)
-            df = int(b2.shape[1])
-        note = None
-        if exact and ss <= ZERO_SPREAD**2 * size:
-            ss = 0.0        # round-off of equal values
-        if df_full == 0:
-            note = "no effect to estimate: a factor in this term has a single level"
-            ss = float("nan")
-        elif df == 0:
-            note = "inestimable: the observed cells cannot separate this effect from the others"
-            ss = float("nan")
-        elif df < df_full:
-            note = (f"only {df} of {df_full} degrees of freedom estimable (empty cells)")
+        others = _adjusted_for(t, terms, used_type)
+        ss, df = _term_ss(t, others, len(terms), slices[t.name], full_rank, beta, cov_unscaled,
+                          col, R[:, :1], zq)
+        ss, note = _term_note(ss, df, df_full, exact and ss <= ZERO_SPREAD**2 * size)
         table.append(TermSS(t.name, df, df_full, ss, t.is_block, note))
 
     return Fit(terms=terms, sizes=sizes, cells=cells, moments=mom, X=X, slices=slices,
