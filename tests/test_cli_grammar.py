@@ -232,7 +232,7 @@ def test_old_significance_note_follows_the_value(capsys):
                  "--alpha", "0.001"]) == 0
     out, err = capsys.readouterr()
     assert "note: --alpha is deprecated; write --confidence 99.9% (for --alpha 0.001)" in err
-    assert "95%" not in err and "alpha 0.001" in out
+    assert "95%" not in err and "tests at 99.9% confidence" in out
 
 
 # --- --json: one document on stdout, for every command that produces a result -----------

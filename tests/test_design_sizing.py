@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 
 import numpy as np
 import pytest
@@ -228,3 +229,23 @@ def test_pairwise_bound_is_conservative_by_simulation():
     ok = pv[order] <= 0.05 / (6 - np.arange(6))
     k = 6 if ok.all() else int(np.argmin(ok))
     assert set(order[:k]) == set(np.flatnonzero(rej))
+
+
+def test_size_text_says_its_question_in_the_grammar_and_aligns_its_table(cli):
+    """The answer's first line uses the grammar's words (a ratio 1.10×, power and
+    confidence in per cent, docs/cli.md), and the per-factor table keeps its columns under
+    their headers even when the factor names (A, B) are shorter than 'factor'."""
+    r = cli("size", "--detect", "10%", "--noise-cv", "5%", "--levels", "2,2",
+            "--power", "80%", "--confidence", "99%")
+    assert r.returncode == 0, r.stderr
+    lines = r.stdout.splitlines()
+    assert ("to detect a ratio of 1.10× (+10%) with 80% power, tests at 99% confidence"
+            in lines[0]), lines[0]
+    assert "alpha" not in r.stdout
+    head = next(ln for ln in lines if ln.lstrip().startswith("factor"))
+    rows = [ln for ln in lines if ln.startswith("  A ") or ln.startswith("  B ")]
+    assert len(rows) == 2
+    end = head.index("replicates") + len("replicates")
+    for row in rows:   # the replicate count is right-aligned under its header
+        assert row[end - 1].isdigit() and row[end] == " ", (head, row)
+    assert re.search(r"timed runs: \d+ \(\d+ × 4 cells\)", r.stdout)

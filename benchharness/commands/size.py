@@ -150,16 +150,22 @@ def format_answer(ans, out: dict) -> str:
 
     what = ("Holm-adjusted pairwise comparisons" if ans.method == "pairwise"
             else "main-effect F tests")
-    lines = [f"replicates per cell: {ans.replicates}  (to detect a {ans.detect * 100:g}% ratio "
-             f"with power {ans.target_power:g} at alpha {ans.alpha:g}, {what})",
+    from benchharness.numbers import fmt_ratio
+
+    def pct(x: float) -> str:
+        return f"{round(100 * x, 9):g}%"
+
+    lines = [f"replicates per cell: {ans.replicates}  (to detect a ratio of "
+             f"{fmt_ratio(1 + ans.detect)} (+{pct(ans.detect)}) with {pct(ans.target_power)} "
+             f"power, tests at {pct(1 - ans.alpha)} confidence, {what})",
              f"noise: {out['noise']}"]
-    width = max(len(n) for n in ans.per_factor)
+    width = max(len("factor"), *(len(n) for n in ans.per_factor))
     lines.append(f"  {'factor':<{width}}  replicates  power at {ans.replicates}")
     for name, n in ans.per_factor.items():
         mark = "  <- needs the most" if name == ans.binding_factor and len(ans.per_factor) > 1 \
             else ""
         lines.append(f"  {name:<{width}}  {n:>10}  {ans.per_factor_power[name]:.3f}{mark}")
-    lines.append(f"timed runs: {ans.runs} ({ans.replicates} x {ans.cells} cells)")
+    lines.append(f"timed runs: {ans.runs} ({ans.replicates} × {ans.cells} cells)")
     lines.append(f"power of {ans.binding_factor} at other replicate counts: "
                  + ", ".join(f"{n}: {p:.2f}" for n, p in ans.curve))
     if "expected_wall_s" in out:
