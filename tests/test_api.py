@@ -128,3 +128,28 @@ def test_an_internal_error_is_never_exit_1(monkeypatch, capsys):
     parser._subparsers._group_actions[0].choices["plan"].set_defaults(func=boom)
     assert cli.main(["plan", "x.yaml"]) == 70
     assert "internal error" in capsys.readouterr().err
+
+
+def test_run_says_host_warnings_as_warning_lines_on_stderr(tmp_path, monkeypatch, capsys):
+    """docs/cli.md: warnings, the host's included, are `warning: ...` lines on standard
+    error, so a script filtering `^warning:` sees them. Planted: the host check finds one
+    warning (an invented one); stdout must not carry it."""
+    from benchharness.cli import main
+    from benchharness.measure import host
+
+    planted = {"severity": "warning", "message": "planted: the kettle is boiling",
+               "fix": "wait for it"}
+    monkeypatch.setattr(host, "preflight", lambda *a, **k: [planted])
+    p = tmp_path / "e.yaml"
+    p.write_text(textwrap.dedent(f"""\
+        experiment: kettle-note
+        command: [{sys.executable}, -c, "pass"]
+        factors:
+          n: [a, b]
+        replicates: 1
+        seed: 3
+        """))
+    assert main(["run", str(p), "--out", str(tmp_path / "res"), "--no-analysis"]) == 0
+    out, err = capsys.readouterr()
+    assert "warning: planted: the kettle is boiling; fix: wait for it" in err.splitlines()
+    assert "kettle is boiling" not in out

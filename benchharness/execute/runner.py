@@ -511,7 +511,7 @@ class _LocalRun:
         if not self.done:  # a fresh folder: show the host warnings found at its start
             for w in self.facts.get("warnings") or []:
                 if isinstance(w, dict) and w.get("severity") == "warning":
-                    self.progress.note(f"host warning: {w['message']}; fix: {w['fix']}")
+                    self.progress.note(f"warning: {w['message']}; fix: {w['fix']}")
 
     def _tick(self) -> None:
         if self.pending_host and time.monotonic() >= self.host_due:
