@@ -115,6 +115,57 @@ def _and(items) -> str:
 # ---------------------------------------------------------------------------------------------
 # the best cell and the tied set (needs the fit)
 
+def _listed_cells(order, combos, est, se, mean, names, levels, setting_idx) -> list[dict]:
+    """The first `MAX_CELLS_LISTED` cells, best first, as plain data."""
+    cells = []
+    for g, c in enumerate(order[:MAX_CELLS_LISTED]):
+        cells.append({"levels": {names[f]: levels[f][combos[c][j]]
+                                 for j, f in enumerate(setting_idx)},
+                      "mean": _num(mean[g]), "estimate": _num(est[c]), "se": _num(se[c])})
+    return cells
+
+
+def _tested_ties(fit, Lk, b, d: float, k: int) -> list[int]:
+    """The tied set by test: cell i leaves it when some j is better by more than d·se of
+    their difference (``b``: badness, smaller is better, best first)."""
+    import numpy as np
+
+    V = (Lk @ fit.cov_unscaled @ Lk.T) * fit.mse
+    dv = np.diag(V)
+    se_diff = np.sqrt(np.maximum(dv[:, None] + dv[None, :] - 2 * V, 0.0))
+    # cell i leaves the tied set when some j is better by more than d·se
+    margin = (b[:, None] - b[None, :]) - d * se_diff
+    np.fill_diagonal(margin, -np.inf)
+    return [int(i) for i in range(k) if not np.any(margin[i] > 0)]
+
+
+def _exact_ties(b) -> list[int]:
+    """No error estimate, so no test of ties; but cells whose estimates are exactly equal
+    (a response constant within cells) are tied as a matter of arithmetic."""
+    return [int(i) for i in range(len(b))
+            if abs(b[i] - b[0]) <= 1e-9 * max(1.0, abs(b[0]))]
+
+
+def _against_best(fit, Lk, i: int, best: int, choice, have_error: bool, d, out: dict) -> dict:
+    """Cell ``i`` as a ratio to the best cell, with its interval and whether it is
+    distinguishable (by the tie test when there was one)."""
+    from benchharness.analysis.effects import contrast_result
+
+    if not have_error:
+        r = contrast_result(fit, Lk[i], Lk[best], choice, float("nan"))
+        return {"cell": i, "ratio": r["ratio"], "lower": None, "upper": None,
+                "distinguishable": None}
+    r = contrast_result(fit, Lk[i], Lk[best], choice, d)
+    lo, hi = r["lower"], r["upper"]
+    dist = None
+    if lo is not None and hi is not None:
+        dist = bool(lo > 1 or hi < 1)
+    if out["tested"]:
+        dist = i not in out["tied"]
+    return {"cell": i, "ratio": r["ratio"], "lower": lo, "upper": hi,
+            "distinguishable": dist}
+
+
 def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: str,
                response: str) -> dict | None:
     """Best cell over the factors ``setting_idx`` (others averaged) and its tied set.
@@ -129,7 +180,7 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     from benchharness.analysis import dist as stats
 
     from benchharness.analysis import transform as tr
-    from benchharness.analysis.effects import contrast_result, margin_estimates, margin_rows
+    from benchharness.analysis.effects import margin_estimates, margin_rows
 
     if not setting_idx:
         return None
@@ -144,11 +195,7 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     order = keep[np.argsort(bad, kind="stable")]
     k = len(order)
     mean = tr.inverse(est[order], choice)
-    cells = []
-    for g, c in enumerate(order[:MAX_CELLS_LISTED]):
-        cells.append({"levels": {names[f]: levels[f][combos[c][j]]
-                                 for j, f in enumerate(setting_idx)},
-                      "mean": _num(mean[g]), "estimate": _num(est[c]), "se": _num(se[c])})
+    cells = _listed_cells(order, combos, est, se, mean, names, levels, setting_idx)
     out = {"factors": [names[f] for f in setting_idx], "cells": cells, "tied": [0],
            "runner_up": None, "outside": None, "critical": None, "better": better,
            "tested": False, "response": response, "cells_total": int(k)}
@@ -160,42 +207,15 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     Lk = margin_rows(fit, tuple(setting_idx), combos[order[:MAX_CELLS_LISTED]])[1]
     best = 0
     if have_error and k <= MAX_CELLS_FOR_TIES:
-        V = (Lk @ fit.cov_unscaled @ Lk.T) * fit.mse
-        dv = np.diag(V)
-        se_diff = np.sqrt(np.maximum(dv[:, None] + dv[None, :] - 2 * V, 0.0))
-        b = sign * est[order]
-        # cell i leaves the tied set when some j is better by more than d·se
-        margin = (b[:, None] - b[None, :]) - d * se_diff
-        np.fill_diagonal(margin, -np.inf)
-        tied = [int(i) for i in range(k) if not np.any(margin[i] > 0)]
-        out["tied"] = tied
+        out["tied"] = _tested_ties(fit, Lk, sign * est[order], d, k)
         out["tested"] = True
     elif not have_error:
-        # no error estimate, so no test of ties; but cells whose estimates are exactly
-        # equal (a response constant within cells) are tied as a matter of arithmetic
-        b = sign * est[order[:MAX_CELLS_LISTED]]
-        out["tied"] = [int(i) for i in range(len(b))
-                       if abs(b[i] - b[0]) <= 1e-9 * max(1.0, abs(b[0]))]
+        out["tied"] = _exact_ties(sign * est[order[:MAX_CELLS_LISTED]])
 
-    def pair(i):
-        if not have_error:
-            r = contrast_result(fit, Lk[i], Lk[best], choice, float("nan"))
-            return {"cell": i, "ratio": r["ratio"], "lower": None, "upper": None,
-                    "distinguishable": None}
-        r = contrast_result(fit, Lk[i], Lk[best], choice, d)
-        lo, hi = r["lower"], r["upper"]
-        dist = None
-        if lo is not None and hi is not None:
-            dist = bool(lo > 1 or hi < 1)
-        if out["tested"]:
-            dist = i not in out["tied"]
-        return {"cell": i, "ratio": r["ratio"], "lower": lo, "upper": hi,
-                "distinguishable": dist}
-
-    out["runner_up"] = pair(1)
+    out["runner_up"] = _against_best(fit, Lk, 1, best, choice, have_error, d, out)
     outside = [i for i in range(1, min(k, MAX_CELLS_LISTED)) if i not in out["tied"]]
     if out["tested"] and outside and outside[0] != 1:
-        out["outside"] = pair(outside[0])
+        out["outside"] = _against_best(fit, Lk, outside[0], best, choice, have_error, d, out)
     return out
 
 
