@@ -416,8 +416,14 @@ def _simple_finding(c, x, y, term, alpha) -> dict:
                           f"({fmt_p(c.get('p_adj'))}, {words})")}
 
 
-def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
-                  unclear=()) -> dict:
+def _excludes_one(c: dict) -> bool:
+    """Whether a comparison's interval lies wholly above or below 1×."""
+    lo, hi = c.get("lower"), c.get("upper")
+    return lo is not None and hi is not None and (lo > 1 or hi < 1)
+
+
+def _qualifiers(aliased, higher, unclear):
+    """The aliasing note after a term's name, and what its effect also depends on."""
     alias_text = ""
     if aliased:
         alias_text = " (aliased with " + _and(":".join(m) for m in aliased) + ")"
@@ -427,31 +433,25 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
     elif unclear:
         also = (f"; {_and(unclear)} passes its F test but shows no distinguishable simple "
                 "effect")
-    p = r.get("p_holm", r.get("p"))
-    base = {"kind": "main", "terms": [term_label(r)], "factors": [f], "p": p,
-            "p_raw": r.get("p"), "ratio": None, "lower": None, "upper": None}
-    label = term_label(r)
-    ptext = _p_text(r)
-    if p is None:
-        return {**base, "significant": None, "untested": True,
-                "statement": f"{label} could not be tested (no error estimate){alias_text}"}
+    return alias_text, also
+
+
+def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
+    """The level ratios a main finding states: Tukey's against the reference, else the
+    effects table's, those with a ratio."""
     ref = refs.get(f)
     tk = [c for c in comps if c.get("method") == "tukey" and c.get("factor") == f
           and c.get("within") is None and (ref is None or c.get("b") == ref)]
     stated = tk or [{"a": e["level"], "b": e["reference"], "ratio": e.get("ratio"),
                      "lower": e.get("lower"), "upper": e.get("upper"), "p_adj": None}
                     for e in effects if e.get("factor") == f]
-    stated = [c for c in stated if c.get("ratio") is not None]
-    big = max(stated, key=lambda c: abs(math.log(c["ratio"])) if c["ratio"] > 0 else 0.0,
-              default=None)
-    if big is not None:
-        base.update(ratio=big["ratio"], lower=big.get("lower"), upper=big.get("upper"),
-                    level=big["a"], reference=big["b"])
+    return [c for c in stated if c.get("ratio") is not None]
 
-    def excl(c):
-        lo, hi = c.get("lower"), c.get("upper")
-        return lo is not None and hi is not None and (lo > 1 or hi < 1)
 
+def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, p):
+    """(significant, statement) of a tested main effect, so that words and intervals agree."""
+    label = term_label(r)
+    ptext = _p_text(r)
     listing = "; ".join(f"{f}={c['a']} {fmt_ratio(c['ratio'])} "
                         f"{fmt_interval(c.get('lower'), c.get('upper'))}"
                         for c in stated[:6]) + (" …" if len(stated) > 6 else "")
@@ -459,31 +459,47 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
     if p < alpha:
         # pairs not involving the reference can carry the difference as well
         all_tk = [c for c in comps if c.get("method") == "tukey" and c.get("factor") == f]
-        if any(excl(c) for c in (all_tk or stated)):
-            return {**base, "significant": True,
-                    "statement": f"{label} matters ({ptext}){alias_text}: "
-                                 f"{listing}{against}{also}"}
-        return {**base, "significant": False,
-                "statement": f"{label}: the F test gives {ptext}{alias_text}, but no two "
-                             f"of its levels are distinguishable at {conf} after adjustment "
-                             f"({listing}{against}){also}"}
+        if any(_excludes_one(c) for c in (all_tk or stated)):
+            return True, (f"{label} matters ({ptext}){alias_text}: "
+                          f"{listing}{against}{also}")
+        return False, (f"{label}: the F test gives {ptext}{alias_text}, but no two "
+                       f"of its levels are distinguishable at {conf} after adjustment "
+                       f"({listing}{against}){also}")
     if higher:
-        return {**base, "significant": None,
-                "statement": f"{label}: no detectable effect on average over the other "
-                             f"factors ({ptext}){alias_text}, but it takes part in "
-                             f"{_and(higher)}, so its effect differs between their levels"}
-    if stated and any(excl(c) for c in stated):
+        return None, (f"{label}: no detectable effect on average over the other "
+                      f"factors ({ptext}){alias_text}, but it takes part in "
+                      f"{_and(higher)}, so its effect differs between their levels")
+    if stated and any(_excludes_one(c) for c in stated):
         # the term fails after Holm over the terms while a stated (per-term) interval
         # excludes 1×: say which holds, so the words and the interval do not contradict
-        return {**base, "significant": False,
-                "statement": f"{label} made no difference detectable after adjusting over "
-                             f"the model's terms ({ptext}){alias_text}: {listing}{against} "
-                             f"(these {conf} intervals are not adjusted for the other terms)"
-                             f"{also}"}
-    return {**base, "significant": False,
-            "statement": f"{label} made no detectable difference ({ptext}){alias_text}: "
-                         f"{listing}{against}{also}" if stated else
-                         f"{label} made no detectable difference ({ptext}){alias_text}"}
+        return False, (f"{label} made no difference detectable after adjusting over "
+                       f"the model's terms ({ptext}){alias_text}: {listing}{against} "
+                       f"(these {conf} intervals are not adjusted for the other terms)"
+                       f"{also}")
+    return False, (f"{label} made no detectable difference ({ptext}){alias_text}: "
+                   f"{listing}{against}{also}" if stated else
+                   f"{label} made no detectable difference ({ptext}){alias_text}")
+
+
+def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
+                  unclear=()) -> dict:
+    alias_text, also = _qualifiers(aliased, higher, unclear)
+    p = r.get("p_holm", r.get("p"))
+    base = {"kind": "main", "terms": [term_label(r)], "factors": [f], "p": p,
+            "p_raw": r.get("p"), "ratio": None, "lower": None, "upper": None}
+    if p is None:
+        return {**base, "significant": None, "untested": True,
+                "statement": f"{term_label(r)} could not be tested (no error estimate)"
+                             f"{alias_text}"}
+    stated = _stated_comparisons(f, comps, effects, refs)
+    big = max(stated, key=lambda c: abs(math.log(c["ratio"])) if c["ratio"] > 0 else 0.0,
+              default=None)
+    if big is not None:
+        base.update(ratio=big["ratio"], lower=big.get("lower"), upper=big.get("upper"),
+                    level=big["a"], reference=big["b"])
+    significant, statement = _main_statement(r, f, alias_text, also, stated, comps, higher,
+                                             alpha, conf, p)
+    return {**base, "significant": significant, "statement": statement}
 
 
 def _best_finding(best: dict, conf: str) -> dict:
