@@ -502,6 +502,41 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
     return {**base, "significant": significant, "statement": statement}
 
 
+def _named_cells(cells, idx) -> str:
+    """Up to `TIED_NAMED` of the cells ``idx`` by their levels, then how many more."""
+    named = "; ".join(cell_text(cells[i]["levels"]) for i in idx[:TIED_NAMED])
+    more = f" and {len(idx) - TIED_NAMED} more" if len(idx) > TIED_NAMED else ""
+    return named + more
+
+
+def _untested_best_text(cells, tied, ru, where) -> str:
+    """The best cell without a test of ties: the exactly equal cells and the runner-up."""
+    text = f"Best measured: {where}; no test of ties was possible (no error estimate)"
+    if len(tied) > 1:
+        text += ("; exactly equal to it: "
+                 + "; ".join(cell_text(cells[i]["levels"]) for i in tied[1:TIED_NAMED])
+                 + (f" and {len(tied) - TIED_NAMED} more" if len(tied) > TIED_NAMED else ""))
+    if ru is not None:
+        text += f"; runner-up {cell_text(cells[ru['cell']]['levels'])} at {fmt_ratio(ru['ratio'])}"
+    return text
+
+
+def _settings_tail(best: dict) -> str:
+    """What the settings were averaged over, and whether that split was guessed."""
+    over = best.get("averaged_over") or []
+    if not over:
+        return ""
+    guessed = " (taken as workloads or environments from their names; a roles: section " \
+              "says otherwise)" if best.get("roles_source") == "guessed" else ""
+    return f"; settings compared averaged over {_and(over)}{guessed}"
+
+
+def _outside_summary(cells, outside: dict) -> dict:
+    """The best cell outside the tied set as plain data."""
+    return {"levels": cells[outside["cell"]]["levels"], "ratio": outside["ratio"],
+            "lower": outside["lower"], "upper": outside["upper"]}
+
+
 def _best_finding(best: dict, conf: str) -> dict:
     cells = best["cells"]
     resp = best.get("response") or ""
@@ -515,16 +550,11 @@ def _best_finding(best: dict, conf: str) -> dict:
             "significant": None, "cells": [cells[i]["levels"] for i in tied],
             "best": top["levels"], "mean": top["mean"], "ratio": None, "lower": None,
             "upper": None, "p": None}
-    over = best.get("averaged_over") or []
     where = f"{cell_text(top['levels'])} ({fmt_value(top['mean'], resp)})"
     what = "time" if is_time else (resp or "value")
     if len(cells) == 1:
         return {**base, "statement": f"Only one cell could be estimated: {where}"}
-    tail = ""
-    if over:
-        guessed = " (taken as workloads or environments from their names; a roles: section " \
-                  "says otherwise)" if best.get("roles_source") == "guessed" else ""
-        tail = f"; settings compared averaged over {_and(over)}{guessed}"
+    tail = _settings_tail(best)
 
     def ru_text(x, who):
         c = cells[x["cell"]]
@@ -535,14 +565,7 @@ def _best_finding(best: dict, conf: str) -> dict:
         base.update(ratio=ru["ratio"], lower=ru["lower"], upper=ru["upper"],
                     runner_up=cells[ru["cell"]]["levels"])
     if not best.get("tested"):
-        text = f"Best measured: {where}; no test of ties was possible (no error estimate)"
-        if len(tied) > 1:
-            text += ("; exactly equal to it: "
-                     + "; ".join(cell_text(cells[i]["levels"]) for i in tied[1:TIED_NAMED])
-                     + (f" and {len(tied) - TIED_NAMED} more" if len(tied) > TIED_NAMED else ""))
-        if ru is not None:
-            text += f"; runner-up {cell_text(cells[ru['cell']]['levels'])} at {fmt_ratio(ru['ratio'])}"
-        return {**base, "statement": text + tail}
+        return {**base, "statement": _untested_best_text(cells, tied, ru, where) + tail}
     if len(tied) == 1:
         base["significant"] = True
         return {**base, "statement": f"Best: {where}, ahead of every other cell at {conf}; "
@@ -552,16 +575,11 @@ def _best_finding(best: dict, conf: str) -> dict:
         return {**base, "statement": f"No cell is distinguishable from the best: all "
                                      f"{len(cells)} are tied at {conf}; best measured {where}; "
                                      + ru_text(ru, "runner-up") + tail}
-    named = "; ".join(cell_text(cells[i]["levels"]) for i in tied[:TIED_NAMED])
-    more = f" and {len(tied) - TIED_NAMED} more" if len(tied) > TIED_NAMED else ""
-    text = (f"Tied for best at {conf} ({len(tied)} of {len(cells)} cells): {named}{more}; "
-            f"best measured {where}; " + ru_text(ru, "runner-up"))
+    text = (f"Tied for best at {conf} ({len(tied)} of {len(cells)} cells): "
+            f"{_named_cells(cells, tied)}; best measured {where}; " + ru_text(ru, "runner-up"))
     if best.get("outside"):
         text += "; the best cell outside the tied set, " + ru_text(best["outside"], "")[1:]
-        base["outside"] = {"levels": cells[best["outside"]["cell"]]["levels"],
-                           "ratio": best["outside"]["ratio"],
-                           "lower": best["outside"]["lower"],
-                           "upper": best["outside"]["upper"]}
+        base["outside"] = _outside_summary(cells, best["outside"])
     return {**base, "significant": True, "statement": text + tail}
 
 
