@@ -265,32 +265,28 @@ def runs_test(signs_in_order: np.ndarray) -> tuple[int, float | None, float | No
     return runs, float(z), float(2 * stats.norm.sf(abs(z)))
 
 
-def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
-    """Slope of residuals on run order (per 100 runs) and the runs test."""
+def _order_slope(r, x):
+    """Least-squares slope of the residuals ``r`` on the positions ``x`` and its two-sided
+    t-test p value (None when every position is the same)."""
     from benchharness.analysis import dist as stats
 
-    if position is None or len(r) < 3:
-        return {"slope_per_100_runs": None, "percent_per_100_runs": None, "p": None,
-                "runs_test": None, "verdict": "run order unknown; drift not checked"}
-    x = np.asarray(position, dtype=float)
     xc = x - x.mean()
     sxx = float(xc @ xc)
     n = len(r)
     if sxx == 0:
-        return {"slope_per_100_runs": None, "percent_per_100_runs": None, "p": None,
-                "runs_test": None, "verdict": "all runs share one position; drift not checked"}
+        return None, None
     rc = r - r.mean()
     slope = float(xc @ rc) / sxx
     resid = rc - slope * xc
     s2 = float(resid @ resid) / (n - 2)
     se = math.sqrt(s2 / sxx) if s2 > 0 else 0.0
     p = float(2 * stats.t.sf(abs(slope / se), n - 2)) if se > 0 else (0.0 if slope else 1.0)
-    order = np.argsort(x, kind="stable") if np.any(np.diff(x) < 0) else None
-    ro = r if order is None else r[order]
-    nz = ro[ro != 0]
-    nruns, z, p_runs = runs_test(nz > 0)
-    per100 = slope * 100.0
-    pct = per100 * pct_per_unit
+    return slope, p
+
+
+def _slope_verdict(pct: float, p: float, alpha: float):
+    """(level, verdict) of the slope: its size against the mild and large limits and its
+    significance."""
     size = f"{_signed(pct)}% per 100 runs"
     level = "ok"
     if p >= alpha and abs(pct) > DRIFT_LARGE_PCT:
@@ -306,20 +302,49 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
         level = "fail"
         verdict = (f"timings drift over the run order ({size}); the machine may be warming up or "
                    "throttling: add warm-up runs, use blocks, or check for background load")
-    runs_info = {"runs": nruns, "z": z, "p": p_runs}
+    return level, verdict
+
+
+def _runs_clause(nz, nruns, z, p_runs, alpha: float, level: str):
+    """What the runs test of residual signs (in run order, zeros left out) adds to the
+    verdict, and the level it leaves."""
     if p_runs is not None and p_runs < alpha and z is not None and z < 0:
         # Size of the clustering: observed runs of signs against the number expected.
         n1 = int(np.count_nonzero(nz > 0))
         expected = 2.0 * n1 * (len(nz) - n1) / len(nz) + 1.0
         share = nruns / expected
-        verdict += (f"; residual signs cluster in time ({nruns} runs of signs where about "
-                    f"{expected:.0f} are expected; runs test p {p_runs:.2g}), so neighbouring "
-                    "runs are not independent and intervals may be too narrow")
+        text = (f"; residual signs cluster in time ({nruns} runs of signs where about "
+                f"{expected:.0f} are expected; runs test p {p_runs:.2g}), so neighbouring "
+                "runs are not independent and intervals may be too narrow")
         if share < RUNS_MILD_SHARE and level == "ok":
             level = "caution"
-    elif p_runs is not None and p_runs < alpha:
-        verdict += ("; residual signs alternate more often than chance (runs test p "
-                    f"{p_runs:.2g})")
+        return text, level
+    if p_runs is not None and p_runs < alpha:
+        return ("; residual signs alternate more often than chance (runs test p "
+                f"{p_runs:.2g})"), level
+    return "", level
+
+
+def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
+    """Slope of residuals on run order (per 100 runs) and the runs test."""
+    if position is None or len(r) < 3:
+        return {"slope_per_100_runs": None, "percent_per_100_runs": None, "p": None,
+                "runs_test": None, "verdict": "run order unknown; drift not checked"}
+    x = np.asarray(position, dtype=float)
+    slope, p = _order_slope(r, x)
+    if slope is None:
+        return {"slope_per_100_runs": None, "percent_per_100_runs": None, "p": None,
+                "runs_test": None, "verdict": "all runs share one position; drift not checked"}
+    order = np.argsort(x, kind="stable") if np.any(np.diff(x) < 0) else None
+    ro = r if order is None else r[order]
+    nz = ro[ro != 0]
+    nruns, z, p_runs = runs_test(nz > 0)
+    per100 = slope * 100.0
+    pct = per100 * pct_per_unit
+    level, verdict = _slope_verdict(pct, p, alpha)
+    runs_info = {"runs": nruns, "z": z, "p": p_runs}
+    clause, level = _runs_clause(nz, nruns, z, p_runs, alpha, level)
+    verdict += clause
     return {"slope_per_100_runs": per100, "percent_per_100_runs": pct, "p": p,
             "runs_test": runs_info, "size": _size(abs(pct), DRIFT_MILD_PCT, DRIFT_LARGE_PCT),
             "verdict": verdict, "level": level, "ok": level == "ok"}
