@@ -336,19 +336,10 @@ def _pair_means(data: ReportData, a: str, b: str):
     return got, False
 
 
-def interaction(data: ReportData, a: str, b: str) -> Figure:
+def _interaction_lines(ax, means, la, lb, mult) -> None:
+    """One line of means with interval bars per level of the second factor, dodged sideways."""
     import numpy as np
 
-    means, from_model = _pair_means(data, a, b)
-    term = f"{a}:{b}"
-    row = next((r for r in data.analysis.get("anova") or [] if r.get("term") == term), None)
-    p = row.get("p") if row else None
-    significant = bool(finite(p) and float(p) < data.alpha)
-    la, lb = list(data.levels[a]), list(data.levels[b])
-    vals = [v[0] for v in means.values() if finite(v[0])]
-    mult, unit = display_scale(data.response, float(np.median(vals)) if vals else None)
-    fig = new_figure(min(9.5, 4.6 + 0.55 * len(la)), 3.5)
-    ax = fig.subplots()
     colors = _colors(len(lb))
     dodge = 0.06 if len(lb) > 1 else 0.0
     for j, (lvb, c) in enumerate(zip(lb, colors)):
@@ -368,6 +359,51 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
                          np.where(np.isnan(hi_a), 0, hi_a - ms_a)])
         ax.errorbar(xs, ms_a, yerr=err, color=c, marker="o", ms=5, lw=1.8, capsize=3,
                     label=_wrap(lvb, 24))
+
+
+def _interaction_title(ax, a: str, b: str, row, p, significant: bool) -> None:
+    """The verdict as the title; a significant interaction is drawn in the accent colour."""
+    if significant:
+        status = f"interaction significant, p {_pw(p)}"
+        ax.set_title(f"{a} × {b}: {status}", color=ACCENT, fontweight="bold")
+        for s in ax.spines.values():
+            s.set_edgecolor(ACCENT)
+            s.set_linewidth(1.6)
+    else:
+        status = (f"no interaction detected, p {_pw(p)}" if row
+                  else "interaction not in the model")
+        ax.set_title(f"{a} × {b}: {status}")
+
+
+def _interaction_caption(data: ReportData, a: str, b: str, p, significant: bool, logscale,
+                         from_model: bool) -> str:
+    """How to read the interaction figure."""
+    conf = f"{round((1 - data.alpha) * 100):g}%"
+    cap = f"Significant interaction (p {_pw(p)}). " if significant else ""
+    cap += (f"Estimated mean of each {a} × {b} combination with its {conf} interval; one line "
+           f"per level of {b}. Parallel lines mean the effect of {a} is the same at every "
+           f"level of {b}; crossing or diverging lines mean it is not.")
+    if logscale:
+        cap += " The axis is logarithmic, so parallel means the same ratio."
+    if not from_model:
+        cap += " (The model has no such term: means and intervals come from the runs directly.)"
+    return cap
+
+
+def interaction(data: ReportData, a: str, b: str) -> Figure:
+    import numpy as np
+
+    means, from_model = _pair_means(data, a, b)
+    term = f"{a}:{b}"
+    row = next((r for r in data.analysis.get("anova") or [] if r.get("term") == term), None)
+    p = row.get("p") if row else None
+    significant = bool(finite(p) and float(p) < data.alpha)
+    la, lb = list(data.levels[a]), list(data.levels[b])
+    vals = [v[0] for v in means.values() if finite(v[0])]
+    mult, unit = display_scale(data.response, float(np.median(vals)) if vals else None)
+    fig = new_figure(min(9.5, 4.6 + 0.55 * len(la)), 3.5)
+    ax = fig.subplots()
+    _interaction_lines(ax, means, la, lb, mult)
     ax.set_xticks(range(len(la)))
     ax.set_xticklabels([_wrap(x) for x in la])
     ax.set_xlabel(a)
@@ -381,27 +417,10 @@ def interaction(data: ReportData, a: str, b: str) -> Figure:
                   + axis_label(data.response, unit))
     ax.legend(title=b, fontsize=8.5, title_fontsize=9, loc="center left",
               bbox_to_anchor=(1.01, 0.5))
-    if significant:
-        status = f"interaction significant, p {_pw(p)}"
-        ax.set_title(f"{a} × {b}: {status}", color=ACCENT, fontweight="bold")
-        for s in ax.spines.values():
-            s.set_edgecolor(ACCENT)
-            s.set_linewidth(1.6)
-    else:
-        status = (f"no interaction detected, p {_pw(p)}" if row
-                  else "interaction not in the model")
-        ax.set_title(f"{a} × {b}: {status}")
+    _interaction_title(ax, a, b, row, p, significant)
     if logscale:
         ax.set_ylabel(ax.get_ylabel() + " — log axis")
-    conf = f"{round((1 - data.alpha) * 100):g}%"
-    cap = f"Significant interaction (p {_pw(p)}). " if significant else ""
-    cap += (f"Estimated mean of each {a} × {b} combination with its {conf} interval; one line "
-           f"per level of {b}. Parallel lines mean the effect of {a} is the same at every "
-           f"level of {b}; crossing or diverging lines mean it is not.")
-    if logscale:
-        cap += " The axis is logarithmic, so parallel means the same ratio."
-    if not from_model:
-        cap += " (The model has no such term: means and intervals come from the runs directly.)"
+    cap = _interaction_caption(data, a, b, p, significant, logscale, from_model)
     return render_figure(fig, f"interaction-{_slug(a)}-{_slug(b)}", f"Interaction of {a} and {b}",
                    cap, "effects", highlight=significant)
 
