@@ -437,17 +437,14 @@ def _slug(text: str) -> str:
     return s or "factor"
 
 
-def effects_plot(data: ReportData) -> Figure | None:
-    effects = [e for e in data.analysis.get("effects") or [] if finite(e.get("ratio"))]
-    if not effects:
-        return None
-
-    fig = new_figure(7.2, min(1.2 + 0.34 * (len(effects) + len(data.factors)), 24))
-    ax = fig.subplots()
+def _effect_rows(ax, factors, effects):
+    """One row per level against its reference, grouped by factor with a line between groups:
+    the interval as a bar, the ratio as a dot, accented when the interval excludes 1×.
+    Returns (last y, tick positions, tick labels)."""
     y = 0
     ticks, labels = [], []
     seps = []
-    for f in data.factors:
+    for f in factors:
         effs = [e for e in effects if e.get("factor") == f]
         if not effs:
             continue
@@ -465,7 +462,11 @@ def effects_plot(data: ReportData) -> Figure | None:
         y -= 0.4
     for s in seps[:-1]:
         ax.axhline(s, color="#cccccc", lw=0.8)
-    ax.set_ylim(y + 0.6, 0.7)
+    return y, ticks, labels
+
+
+def _ratio_axis(ax, effects) -> None:
+    """A log ratio axis around 1× that holds every ratio and interval, ticked as ratios."""
     ax.axvline(1.0, color=INK, lw=1, ls="--")
     ax.set_xscale("log")
     vals = [float(e["ratio"]) for e in effects]
@@ -480,6 +481,18 @@ def effects_plot(data: ReportData) -> Figure | None:
     lo_x, hi_x = ax.get_xlim()
     log_ticks(ax.xaxis, lo_x, hi_x)
     ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}×"))
+
+
+def effects_plot(data: ReportData) -> Figure | None:
+    effects = [e for e in data.analysis.get("effects") or [] if finite(e.get("ratio"))]
+    if not effects:
+        return None
+
+    fig = new_figure(7.2, min(1.2 + 0.34 * (len(effects) + len(data.factors)), 24))
+    ax = fig.subplots()
+    y, ticks, labels = _effect_rows(ax, data.factors, effects)
+    ax.set_ylim(y + 0.6, 0.7)
+    _ratio_axis(ax, effects)
     ax.set_yticks(ticks)
     ax.set_yticklabels(labels)
     ax.grid(axis="y", visible=False)
