@@ -207,6 +207,51 @@ def _interaction_clause(inter: dict, found: list[dict], fr, fi, most: int = 4) -
     return f"{x}={level} against {x}={fs[0]['reference']}: {each}"
 
 
+def _recommendation(data: ReportData, f: dict) -> str | None:
+    """The recommendation line from the best-cell finding: the one best cell, the best with
+    the cells tied with it, or none when every cell is tied."""
+    cells = f.get("cells") or []
+    if len(cells) == 1:
+        return "Recommended: " + cell_label(cells[0], list(cells[0]))
+    if cells and len(cells) < len(data.analysis.get("best", {}).get("cells") or []):
+        top = f.get("best") or cells[0]
+        others = [c for c in cells if c != top]
+        how = ("best predicted, not run in this fraction"
+               if top in (f.get("not_run") or []) else "best measured")
+        return ("Recommended: " + cell_label(top, list(top)) + f" ({how}; "
+                + "; ".join(cell_label(c, list(c)) for c in others[:5])
+                + (" …" if len(others) > 5 else "")
+                + (" is" if len(others) == 1 else " are")
+                + " not distinguishable from it)")
+    if cells:
+        return "No recommendation: no cell is distinguishable from the best"
+    return None
+
+
+def _best_text(data: ReportData, f: dict) -> str:
+    """The best-cell finding as a sentence, with a caution when some of its runs were lost."""
+    text = f["statement"] + "."
+    if f.get("best") is not None:
+        lost = _lost_runs(data, f["best"])
+        if lost:
+            text += (f" Caution: {lost} of this cell's runs did not finish "
+                     "(failed or timed out), so its mean counts only the runs "
+                     "that did and may flatter it.")
+    return text
+
+
+def _headline_or_default(data: ReportData, found) -> str:
+    """The headline, or why there is none."""
+    head = headline(found)
+    if head is None:
+        if data.analysis.get("unanalysed"):
+            head = ("No timed run finished successfully, so there is nothing to analyse; "
+                    "see the data-quality warnings for why the runs failed.")
+        else:
+            head = "The analysis could not test any factor (see the ANOVA section)."
+    return head
+
+
 def verdict(data: ReportData) -> dict[str, Any]:
     """The plain-words answer, rendered from the analysis' findings: headline, one line per
     factor and interaction, the recommendation (best cell or tied set) and how sure."""
@@ -221,39 +266,13 @@ def verdict(data: ReportData) -> dict[str, Any]:
             out["interactions"].append(f["statement"] + ".")
         elif f["kind"] == "best":
             out["best"] = f["statement"] + "."
-            cells = f.get("cells") or []
-            if len(cells) == 1:
-                out["recommendation"] = "Recommended: " + cell_label(cells[0], list(cells[0]))
-            elif cells and len(cells) < len(data.analysis.get("best", {}).get("cells") or []):
-                top = f.get("best") or cells[0]
-                others = [c for c in cells if c != top]
-                how = ("best predicted, not run in this fraction"
-                       if top in (f.get("not_run") or []) else "best measured")
-                out["recommendation"] = (
-                    "Recommended: " + cell_label(top, list(top)) + f" ({how}; "
-                    + "; ".join(cell_label(c, list(c)) for c in others[:5])
-                    + (" …" if len(others) > 5 else "")
-                    + (" is" if len(others) == 1 else " are")
-                    + " not distinguishable from it)")
-            elif cells:
-                out["recommendation"] = ("No recommendation: no cell is distinguishable from "
-                                         "the best")
-            if f.get("best") is not None:
-                lost = _lost_runs(data, f["best"])
-                if lost:
-                    out["best"] += (f" Caution: {lost} of this cell's runs did not finish "
-                                    "(failed or timed out), so its mean counts only the runs "
-                                    "that did and may flatter it.")
+            rec = _recommendation(data, f)
+            if rec is not None:
+                out["recommendation"] = rec
+            out["best"] = _best_text(data, f)
         elif f["kind"] == "caution":
             out["cautions"].append(f["statement"] + ".")
-    head = headline(found)
-    if head is None:
-        if data.analysis.get("unanalysed"):
-            head = ("No timed run finished successfully, so there is nothing to analyse; "
-                    "see the data-quality warnings for why the runs failed.")
-        else:
-            head = "The analysis could not test any factor (see the ANOVA section)."
-    out["headline"] = head
+    out["headline"] = _headline_or_default(data, found)
     out["sure"] = sureness(data)
     out["transform"] = transform_sentence(data)
     return out
