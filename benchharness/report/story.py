@@ -371,8 +371,9 @@ def diagnostic_items(data: ReportData) -> list[dict]:
     return items
 
 
-def sureness(data: ReportData) -> list[str]:
-    """Sentences on how far to trust the verdict."""
+def _error_df_sentences(data: ReportData) -> list[str]:
+    """What the lack of residual degrees of freedom means, and how many runs the verdict
+    rests on."""
     out = []
     d = data.design
     res_df = next((r.get("df") for r in data.analysis.get("anova") or []
@@ -390,36 +391,62 @@ def sureness(data: ReportData) -> list[str]:
         reps = d.get("replicates")
         out.append(f"Based on {plural(n_ok, 'timed run')}"
                    + (f" ({plural(reps, 'replicate')} per cell)" if reps else "") + ".")
+    return out
+
+
+def _assumption_sentence(data: ReportData) -> str | None:
+    """What the checks of the model's assumptions say, in one sentence."""
     concerns = [i for i in diagnostic_items(data) if i["concern"]]
     no_var = ((data.analysis.get("model") or {}).get("no_variation") or {}).get("kind")
     if no_var:
-        out.append("The model's assumption checks could not be made: "
-                   + ("no run differed from any other." if no_var == "constant"
-                      else "runs did not vary within cells.")
-                   + " Nothing here is a test result.")
-    elif concerns:
-        out.append("The checks of the model's assumptions raise concerns about "
-                   + _and([c["name"].lower() for c in concerns])
-                   + "; see Diagnostics before relying on p-values near the threshold.")
-    elif diagnostic_items(data):
-        out.append("The model's assumption checks raise no concern.")
+        return ("The model's assumption checks could not be made: "
+                + ("no run differed from any other." if no_var == "constant"
+                   else "runs did not vary within cells.")
+                + " Nothing here is a test result.")
+    if concerns:
+        return ("The checks of the model's assumptions raise concerns about "
+                + _and([c["name"].lower() for c in concerns])
+                + "; see Diagnostics before relying on p-values near the threshold.")
+    if diagnostic_items(data):
+        return "The model's assumption checks raise no concern."
+    return None
+
+
+def _cross_check_sentence(data: ReportData) -> str | None:
+    """Whether the rank-based cross-check agrees with the ANOVA."""
     art = data.analysis.get("art") or {}
     disagree = [t.get("term") for t in (art.get("terms") or []) if t.get("agrees") is False]
     if disagree:
-        out.append("The rank-based cross-check disagrees with the ANOVA for "
-                   + _and([str(t) for t in disagree])
-                   + ": treat the verdict on those terms as uncertain.")
-    elif art.get("terms"):
-        out.append("A rank-based cross-check (which does not assume normal residuals) agrees "
-                   "with the ANOVA on every term.")
+        return ("The rank-based cross-check disagrees with the ANOVA for "
+                + _and([str(t) for t in disagree])
+                + ": treat the verdict on those terms as uncertain.")
+    if art.get("terms"):
+        return ("A rank-based cross-check (which does not assume normal residuals) agrees "
+                "with the ANOVA on every term.")
+    return None
+
+
+def _failed_runs_sentence(data: ReportData) -> str | None:
+    """What the failed and timed-out runs mean for the verdict."""
+    d = data.design
     bad = d.get("runs_failed", 0) + d.get("runs_timeout", 0)
     if bad and data.analysis.get("unanalysed"):
-        out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out; fix what the "
-                   "runs report (see Data-quality warnings) and run the experiment again.")
-    elif bad:
-        out.append(f"{bad} run{'s' if bad != 1 else ''} failed or timed out and "
-                   "{} not in the analysis; the affected cells may look faster than they are."
-                   .format("is" if bad == 1 else "are"))
+        return (f"{bad} run{'s' if bad != 1 else ''} failed or timed out; fix what the "
+                "runs report (see Data-quality warnings) and run the experiment again.")
+    if bad:
+        return (f"{bad} run{'s' if bad != 1 else ''} failed or timed out and "
+                "{} not in the analysis; the affected cells may look faster than they are."
+                .format("is" if bad == 1 else "are"))
+    return None
+
+
+def sureness(data: ReportData) -> list[str]:
+    """Sentences on how far to trust the verdict."""
+    out = _error_df_sentences(data)
+    for sentence in (_assumption_sentence(data), _cross_check_sentence(data),
+                     _failed_runs_sentence(data)):
+        if sentence is not None:
+            out.append(sentence)
     return out
 
 
