@@ -464,10 +464,8 @@ def _host_get(host: dict, *names):
     return None
 
 
-def host_summary(host: dict) -> list[tuple[str, str]]:
-    """Readable (what, value) pairs from host.json."""
-    if not host:
-        return []
+def _hardware_pairs(host: dict) -> list[tuple[str, str]]:
+    """CPU, cores and memory, under whichever of the known key names host.json uses."""
     pairs = []
     cpu = _host_get(host, "cpu_model", "cpu.model", "processor", "cpu")
     if cpu is not None and not isinstance(cpu, dict):
@@ -486,6 +484,12 @@ def host_summary(host: dict) -> list[tuple[str, str]]:
         pairs.append(("memory", f"{float(mem) / 1024 ** 3:.1f} GiB"))
     elif finite(mem_kib):
         pairs.append(("memory", f"{float(mem_kib) / 1024 ** 2:.1f} GiB"))
+    return pairs
+
+
+def _software_pairs(host: dict) -> list[tuple[str, str]]:
+    """Operating system, Python and the frequency governor."""
+    pairs = []
     osname = _host_get(host, "os", "platform", "system", "os.name")
     kernel = _host_get(host, "kernel", "release", "os.kernel")
     if osname is not None:
@@ -497,6 +501,12 @@ def host_summary(host: dict) -> list[tuple[str, str]]:
     gov = _host_get(host, "governor", "cpu_governor", "frequency_governor", "cpu.governor")
     if gov is not None:
         pairs.append(("frequency governor", str(gov)))
+    return pairs
+
+
+def _load_pairs(host: dict) -> list[tuple[str, str]]:
+    """The load average at the start and at the end of the runs."""
+    pairs = []
     load = _host_get(host, "load_average_start", "load_start", "loadavg", "load_average", "load.start",
                      "load_avg_start")
     if load is not None:
@@ -504,6 +514,14 @@ def host_summary(host: dict) -> list[tuple[str, str]]:
     load_end = _host_get(host, "load_average_end", "load_end", "load.end", "load_avg_end")
     if load_end is not None:
         pairs.append(("load average at end", _fmt_load(load_end)))
+    return pairs
+
+
+def host_summary(host: dict) -> list[tuple[str, str]]:
+    """Readable (what, value) pairs from host.json."""
+    if not host:
+        return []
+    pairs = _hardware_pairs(host) + _software_pairs(host) + _load_pairs(host)
     hostname = _host_get(host, "hostname", "node", "host")
     if hostname is not None and not isinstance(hostname, dict):
         pairs.insert(0, ("host", str(hostname)))
