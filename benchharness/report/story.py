@@ -302,72 +302,96 @@ def _and(items) -> str:
     return ", ".join(items[:-1]) + " and " + items[-1]
 
 
-def diagnostic_items(data: ReportData) -> list[dict]:
-    """Each diagnostic as {name, test, statistic, p, verdict, concern} for display."""
-    diag = data.analysis.get("diagnostics") or {}
-    titles = {
-        "normality": "Normality of residuals",
-        "equal_variance": "Equal spread across cells",
-        "drift": "Drift over the run order",
-        "outliers": "Outlying runs",
-        "runs_test": "Order of residual signs",
-        "small_cells": "Cells with too few runs",
-        "hosts": "Differences between hosts",
-        "load": "Machine load and residuals",
-    }
-    items = []
+_DIAGNOSTIC_TITLES = {
+    "normality": "Normality of residuals",
+    "equal_variance": "Equal spread across cells",
+    "drift": "Drift over the run order",
+    "outliers": "Outlying runs",
+    "runs_test": "Order of residual signs",
+    "small_cells": "Cells with too few runs",
+    "hosts": "Differences between hosts",
+    "load": "Machine load and residuals",
+}
+
+
+def _outlier_check(diag: dict) -> dict:
+    """The outlier check's count, cut-off and verdict, from either layout."""
     check = diag.get("outlier_check") if isinstance(diag.get("outlier_check"), dict) else {}
     if not check:  # the keys analysis.json carries (benchharness.analysis)
         check = {k: diag.get(f"outlier_{k}") for k in ("count", "cutoff", "verdict")
                  if diag.get(f"outlier_{k}") is not None}
+    return check
+
+
+def _outliers_item(key, val, check: dict) -> dict:
+    """The outlying runs as one display item: how many, which, and the cut-off used."""
+    outl = val if isinstance(val, list) else (val or {}).get("runs", [])
+    n = int(check.get("count", len(outl)) or 0) if check else len(outl)
+    listed = ", ".join(f"run {o.get('run')} ({fmt_num(o.get('studentized'))})"
+                       for o in outl[:12]) + (" …" if len(outl) > 12 else "")
+    verdict = check.get("verdict") or ("No run stands out." if not n else "")
+    if listed:
+        verdict = f"{verdict}: {listed}" if verdict else listed
+    cut = check.get("cutoff")
+    return {
+        "key": key, "name": _DIAGNOSTIC_TITLES[key], "test": "externally studentized residuals, "
+        "Bonferroni cut-off" + (f" ±{fmt_num(cut)}" if finite(cut) else ""),
+        "statistic": None, "stat_text": "", "p": None, "verdict": verdict,
+        "concern": n > 0,
+    }
+
+
+def _small_cells_item(key, val, factors) -> dict:
+    """The cells with too few runs as one display item."""
+    text = "; ".join(
+        f"{cell_label(c.get('levels') or {}, factors)}: {c.get('problem', '')}"
+        f" (n={c.get('n')})" for c in val[:8]) + (" …" if len(val) > 8 else "")
+    return {"key": key, "name": _DIAGNOSTIC_TITLES[key], "test": "", "statistic": None,
+            "stat_text": "", "p": None, "verdict": text, "concern": True}
+
+
+def _test_item(key, val: dict, alpha: float) -> dict:
+    """One test-like diagnostic (normality, spread, drift...) as a display item; a concern
+    when the analysis says so, else when p is below alpha."""
+    p = val.get("p")
+    concern = val.get("concern")
+    if concern is None and "ok" in val:
+        concern = not bool(val["ok"])
+    if concern is None:
+        concern = bool(finite(p) and float(p) < alpha)
+    stat = val.get("statistic")
+    stat_text = f"statistic {fmt_num(stat)}" if finite(stat) else ""
+    if key == "drift":
+        pct = val.get("percent_per_100_runs")
+        if finite(pct):
+            stat_text = f"{float(pct):+.1f}% per 100 runs"
+        elif finite(val.get("slope_per_100_runs")):
+            stat_text = f"slope {fmt_num(val['slope_per_100_runs'])} per 100 runs"
+    return {
+        "key": key, "name": _DIAGNOSTIC_TITLES.get(key, key.replace("_", " ")),
+        "test": val.get("test") or ("slope of residuals on run position"
+                                    if key == "drift" else ""),
+        "statistic": stat, "stat_text": stat_text, "p": p,
+        "verdict": str(val.get("verdict") or ""), "concern": bool(concern),
+    }
+
+
+def diagnostic_items(data: ReportData) -> list[dict]:
+    """Each diagnostic as {name, test, statistic, p, verdict, concern} for display."""
+    diag = data.analysis.get("diagnostics") or {}
+    items = []
+    check = _outlier_check(diag)
     for key, val in diag.items():
         if key == "outliers":
-            outl = val if isinstance(val, list) else (val or {}).get("runs", [])
-            n = int(check.get("count", len(outl)) or 0) if check else len(outl)
-            listed = ", ".join(f"run {o.get('run')} ({fmt_num(o.get('studentized'))})"
-                               for o in outl[:12]) + (" …" if len(outl) > 12 else "")
-            verdict = check.get("verdict") or ("No run stands out." if not n else "")
-            if listed:
-                verdict = f"{verdict}: {listed}" if verdict else listed
-            cut = check.get("cutoff")
-            items.append({
-                "key": key, "name": titles[key], "test": "externally studentized residuals, "
-                "Bonferroni cut-off" + (f" ±{fmt_num(cut)}" if finite(cut) else ""),
-                "statistic": None, "stat_text": "", "p": None, "verdict": verdict,
-                "concern": n > 0,
-            })
+            items.append(_outliers_item(key, val, check))
             continue
         if key == "small_cells":
             if val:
-                text = "; ".join(
-                    f"{cell_label(c.get('levels') or {}, data.factors)}: {c.get('problem', '')}"
-                    f" (n={c.get('n')})" for c in val[:8]) + (" …" if len(val) > 8 else "")
-                items.append({"key": key, "name": titles[key], "test": "", "statistic": None,
-                              "stat_text": "", "p": None, "verdict": text, "concern": True})
+                items.append(_small_cells_item(key, val, data.factors))
             continue
         if not isinstance(val, dict) or key == "outlier_check":
             continue
-        p = val.get("p")
-        concern = val.get("concern")
-        if concern is None and "ok" in val:
-            concern = not bool(val["ok"])
-        if concern is None:
-            concern = bool(finite(p) and float(p) < data.alpha)
-        stat = val.get("statistic")
-        stat_text = f"statistic {fmt_num(stat)}" if finite(stat) else ""
-        if key == "drift":
-            pct = val.get("percent_per_100_runs")
-            if finite(pct):
-                stat_text = f"{float(pct):+.1f}% per 100 runs"
-            elif finite(val.get("slope_per_100_runs")):
-                stat_text = f"slope {fmt_num(val['slope_per_100_runs'])} per 100 runs"
-        items.append({
-            "key": key, "name": titles.get(key, key.replace("_", " ")),
-            "test": val.get("test") or ("slope of residuals on run position"
-                                        if key == "drift" else ""),
-            "statistic": stat, "stat_text": stat_text, "p": p,
-            "verdict": str(val.get("verdict") or ""), "concern": bool(concern),
-        })
+        items.append(_test_item(key, val, data.alpha))
     return items
 
 
