@@ -33,6 +33,12 @@ SHAPES = [
     ("plateau of 3", [30, 31, 32], {3}),
     ("plateau of 4", [30, 31, 32, 31], {4}),
     ("plateau of 5", [30, 31, 32, 31, 30], {5}),
+    # longer plateaus: the rolling median passes the plateau's level before its
+    # end, so its last iterations were flagged and hidden as spikes (steady from
+    # 6 of 8, the steady time 7 % high) until a spike had to stand apart from the
+    # iterations on both sides of it
+    ("plateau of 8", [30, 31, 32, 31, 30, 31, 32, 31], {8}),
+    ("plateau of 10", [30, 31, 32, 31, 30, 31, 32, 31, 30, 31], {10}),
     # a gradual warm-up: the last head iterations are within 4 % of the steady
     # time, so the steady state may start one or two early
     ("gradual", [30, 24, 19, 15, 12.5, 11.2, 10.6], {5, 6, 7}),

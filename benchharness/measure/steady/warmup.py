@@ -144,7 +144,8 @@ def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0,
     state) are the rest of that warm-up. Hiding them would leave PELT a single
     outlying point, which a segment of at least ``min_size`` 2 cannot isolate,
     so the warm-up would be cut short and the hidden iterations counted in the
-    steady state. Only runs with an ordinary iteration before them are spikes.
+    steady state. Only runs with an ordinary iteration before them are spikes, and only those that
+    stand apart from the iterations on both sides of them (`_departs`).
     """
     n = z.size
     if n < 2 * half_window:
@@ -161,13 +162,27 @@ def despike(z: np.ndarray, half_window: int = 10, k: float = 6.0,
             j = i
             while j < n and flagged[j]:
                 j += 1
-            if i > 0 and j - i <= max_run:
+            if i > 0 and j - i <= max_run and _departs(z, i, j, k * scale[i:j].max()):
                 out[i:j] = med[i:j]
                 count += j - i
             i = j
         else:
             i += 1
     return out, count
+
+
+def _departs(z: np.ndarray, i: int, j: int, cut: float) -> bool:
+    """Whether the run ``z[i:j]`` stands apart from the iteration on each side of it.
+
+    The rolling median lags behind a change of level, so the last iterations of a
+    plateau (8 slow iterations, the median window already past them) or the
+    first of a new level can be flagged; they continue the level of their
+    neighbour and are part of a segment, not a spike.
+    """
+    level = float(np.median(z[i:j]))
+    if abs(level - z[i - 1]) <= cut:
+        return False
+    return j >= z.size or abs(level - z[j]) > cut
 
 
 def _same_level(a: float, b: float, s: WarmupSettings) -> bool:
