@@ -574,8 +574,8 @@ def _first_load(load):
     return load
 
 
-def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
-    """Data-quality warnings: {kind, text}; ``notes`` adds renderer notes (subsampling)."""
+def _diagnostic_warnings(data: ReportData) -> list[dict]:
+    """The diagnostics that concern the data's quality: drift, outliers, sign runs, load."""
     out = []
     for item in diagnostic_items(data):
         if item["key"] in ("drift", "outliers", "runs_test") and item["concern"]:
@@ -583,6 +583,22 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
         elif item["key"] == "load" and item["concern"]:
             # timings that follow the machine's load: a noisy host, seen in the data
             out.append({"kind": "Noisy host", "text": item["verdict"] or item["name"]})
+    return out
+
+
+def _first_message(g) -> str:
+    """The first non-empty message of a cell's lost runs, quoted and cut at 200 characters."""
+    if "message" in g.columns:
+        msgs = [str(m) for m in g["message"].dropna() if str(m).strip()]
+        if msgs:
+            first = " ".join(msgs[0].split())
+            return f" First message: “{first[:200]}{'…' if len(first) > 200 else ''}”"
+    return ""
+
+
+def _lost_run_warnings(data: ReportData) -> list[dict]:
+    """One warning per cell with failed or timed-out runs, since what is left flatters it."""
+    out = []
     timed = data.timed_runs
     if "status" in timed.columns and len(timed):
         st = timed["status"].astype(str)
@@ -592,12 +608,7 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
             label = cell_label(dict(zip(data.factors, key)), data.factors)
             gst = g["status"].astype(str)
             n_to, n_bad = int((gst == "timeout").sum()), len(g)
-            why = ""
-            if "message" in g.columns:
-                msgs = [str(m) for m in g["message"].dropna() if str(m).strip()]
-                if msgs:
-                    first = " ".join(msgs[0].split())
-                    why = f" First message: “{first[:200]}{'…' if len(first) > 200 else ''}”"
+            why = _first_message(g)
             if n_to:
                 out.append({"kind": "Timeouts",
                             "text": f"{label}: {plural(n_to, 'run')} timed out. Only the runs that "
@@ -608,7 +619,12 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
                             "text": f"{label}: {plural(n_bad, 'run')} failed and "
                                     f"{'is' if n_bad == 1 else 'are'} left out of the "
                                     f"analysis.{why}"})
-    host = dict(data.host or {})
+    return out
+
+
+def _host_warnings(host: dict) -> list[dict]:
+    """A busy machine at the start, a varying clock, and the host's own warnings."""
+    out = []
     load = _first_load(_host_get(host, "load_average_start", "load_start", "loadavg", "load_average", "load.start",
                                  "load_avg_start"))
     cores = _host_get(host, "cores_logical", "logical_cores", "cpu.logical_cores",
@@ -629,6 +645,13 @@ def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
         text = w.get("text") or w.get("message") if isinstance(w, dict) else str(w)
         if text:
             out.append({"kind": "Noisy host", "text": str(text)})
+    return out
+
+
+def warnings(data: ReportData, notes: list[str] | None = None) -> list[dict]:
+    """Data-quality warnings: {kind, text}; ``notes`` adds renderer notes (subsampling)."""
+    out = _diagnostic_warnings(data) + _lost_run_warnings(data)
+    out += _host_warnings(dict(data.host or {}))
     for w in data.analysis.get("warnings") or []:
         out.append({"kind": "Analysis", "text": w if isinstance(w, str) else
                     str(w.get("text") or w.get("message") or w)})
