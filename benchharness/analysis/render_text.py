@@ -56,18 +56,9 @@ def _levels(d):
     return ", ".join(f"{k}={v}" for k, v in d.items())
 
 
-def format_analysis(a) -> str:
-    d = a.to_dict()
+def _findings_lines(d: dict) -> list[str]:
+    """The findings in plain words, interactions' simple effects left inside them."""
     lines = []
-    c = d["counts"]
-    t = d["transform"]
-    scale = {"none": "original scale", "log": "log scale"}.get(
-        t["name"], f"Box-Cox scale (λ = {t['lambda']:.2f})")
-    # the headline in plain words; the scale and the kind of sums of squares head the table
-    lines.append(f"Analysis of {d['response']} — {plural(c['rows'], 'run')} in "
-                 f"{plural(c['cells'], 'cell')}"
-                 + (f", in blocks of {d['block']}" if d["block"] else ""))
-    lines.append("")
     found = d.get("findings") or []
     if found:
         lines.append("Findings")
@@ -77,9 +68,13 @@ def format_analysis(a) -> str:
             mark = {"caution": "!", "best": ">"}.get(f["kind"], "-")
             lines.append(f"  {mark} {f['statement']}")
         lines.append("")
-    lines.append(f"Scale: {t.get('summary') or t['reason']}")
-    lines.append(f"Analysis of variance on the {scale}, Type {d['model']['ss_type']} sums of "
-                 "squares")
+    return lines
+
+
+def _anova_lines(d: dict, scale: str) -> list[str]:
+    """The ANOVA table, aliased terms named with their chain."""
+    lines = [f"Analysis of variance on the {scale}, Type {d['model']['ss_type']} sums of "
+             "squares"]
     rows = []
     for r in d["anova"]:
         label = r.get("chain") or (
@@ -89,6 +84,12 @@ def format_analysis(a) -> str:
     lines += _table(["Source", "df", "Sum of squares", "Mean square", "F", "p",
                      "partial η²", "ω²"], rows, "<>>>>>>>")
     lines.append("")
+    return lines
+
+
+def _effects_lines(d: dict, t: dict) -> list[str]:
+    """Each level against its reference, with a note when the ratios are approximate."""
+    lines = []
     if d["effects"]:
         lines.append("Effects (each level against its reference)")
         if t["name"] != "log":
@@ -97,8 +98,12 @@ def format_analysis(a) -> str:
         for e in d["effects"]:
             lines.append("  " + e["wording"])
         lines.append("")
-    dg = d["diagnostics"]
-    lines.append("Diagnostics")
+    return lines
+
+
+def _check_lines(dg: dict) -> list[str]:
+    """The tests of the model's assumptions, the hosts and the outlying runs and cells."""
+    lines = []
     for key, label in (("normality", "normality"), ("equal_variance", "equal variances"),
                        ("drift", "drift"), ("load", "machine load")):
         if key not in dg:
@@ -120,6 +125,12 @@ def format_analysis(a) -> str:
             lines.append(f"    run {o['run']}: studentized residual {o['studentized']:+.2f}")
     for s in dg.get("small_cells", [])[:10]:
         lines.append(f"  cell {_levels(s['levels'])}: {s['problem']} (n={s['n']})")
+    return lines
+
+
+def _diagnostics_lines(d: dict) -> list[str]:
+    """Diagnostics: the checks, the failed runs per cell and the rank-based cross-check."""
+    lines = ["Diagnostics"] + _check_lines(d["diagnostics"])
     lines.append(f"  failed runs: {d['failures']['verdict']}")
     for cell in d["failures"]["cells"][:10]:
         flag = " — has timeouts" if cell["flag"] else ""
@@ -131,6 +142,34 @@ def format_analysis(a) -> str:
             agree = {True: "agrees", False: "DISAGREES", None: "-"}[r["agrees"]]
             lines.append(f"    {r['term']}: p {_p(r['p'])} vs ANOVA p {_p(r['anova_p'])} — {agree}")
     lines.append("")
+    return lines
+
+
+def _comparison_rows(d: dict, t: dict, shown: list) -> list[list[str]]:
+    """The first 40 shown comparisons as table rows: differences on the original scale,
+    else ratios."""
+    adj = d["model"]["adjust"]
+    label = {"pairwise": f"pairwise ({adj})", "tukey": "Tukey HSD",
+             "simple": f"simple effect ({adj})", "declared": f"declared ({adj})"}
+    diff = t["name"] == "none"
+    dscale = pick_scale(d.get("unit") or _unit(d["response"]),
+                        [x.get("difference") for x in shown])
+    rows = []
+    for x in shown[:40]:
+        within = f" within {_levels(x['within'])}" if x["within"] else ""
+        if diff:
+            est = [dscale.fmt(x.get("difference"), 4),
+                   dscale.interval(x.get("difference_lower"), x.get("difference_upper"))]
+        else:
+            est = [fmt_ratio(x["ratio"]), fmt_ratio_interval(x["lower"], x["upper"])]
+        rows.append([label[x["method"]], f"{x['factor']}: {x['a']} over {x['b']}{within}",
+                     *est, _p(x["p_adj"])])
+    return rows
+
+
+def _comparisons_lines(d: dict, t: dict) -> list[str]:
+    """The comparisons whose adjusted p is below alpha (and whose interval excludes 1×)."""
+    lines = []
     alpha = d["model"]["alpha"]
     shown = [x for x in d["comparisons"] if x["p_adj"] is not None and x["p_adj"] < alpha
              and x.get("lower") is not None and x.get("upper") is not None
@@ -138,22 +177,8 @@ def format_analysis(a) -> str:
     if d["comparisons"]:
         lines.append(f"Comparisons with adjusted p < {alpha:g} ({len(shown)} of "
                      f"{len(d['comparisons'])}; a over b)")
-        adj = d["model"]["adjust"]
-        label = {"pairwise": f"pairwise ({adj})", "tukey": "Tukey HSD",
-                 "simple": f"simple effect ({adj})", "declared": f"declared ({adj})"}
         diff = t["name"] == "none"
-        dscale = pick_scale(d.get("unit") or _unit(d["response"]),
-                            [x.get("difference") for x in shown])
-        rows = []
-        for x in shown[:40]:
-            within = f" within {_levels(x['within'])}" if x["within"] else ""
-            if diff:
-                est = [dscale.fmt(x.get("difference"), 4),
-                       dscale.interval(x.get("difference_lower"), x.get("difference_upper"))]
-            else:
-                est = [fmt_ratio(x["ratio"]), fmt_ratio_interval(x["lower"], x["upper"])]
-            rows.append([label[x["method"]], f"{x['factor']}: {x['a']} over {x['b']}{within}",
-                         *est, _p(x["p_adj"])])
+        rows = _comparison_rows(d, t, shown)
         if not rows:
             lines.append("  none")
         if rows:
@@ -163,6 +188,27 @@ def format_analysis(a) -> str:
         if len(shown) > 40:
             lines.append(f"  ... {len(shown) - 40} more in the JSON output")
         lines.append("")
+    return lines
+
+
+def format_analysis(a) -> str:
+    d = a.to_dict()
+    lines = []
+    c = d["counts"]
+    t = d["transform"]
+    scale = {"none": "original scale", "log": "log scale"}.get(
+        t["name"], f"Box-Cox scale (λ = {t['lambda']:.2f})")
+    # the headline in plain words; the scale and the kind of sums of squares head the table
+    lines.append(f"Analysis of {d['response']} — {plural(c['rows'], 'run')} in "
+                 f"{plural(c['cells'], 'cell')}"
+                 + (f", in blocks of {d['block']}" if d["block"] else ""))
+    lines.append("")
+    lines += _findings_lines(d)
+    lines.append(f"Scale: {t.get('summary') or t['reason']}")
+    lines += _anova_lines(d, scale)
+    lines += _effects_lines(d, t)
+    lines += _diagnostics_lines(d)
+    lines += _comparisons_lines(d, t)
     if d["notes"]:
         lines.append("Notes")
         for n in d["notes"]:
