@@ -92,16 +92,9 @@ def _data_from(analysis) -> ReportData:
                       block=adict.get("block"))
 
 
-def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
-    """Print verdict, ANOVA, effects, diagnostics, comparisons and warnings."""
-    from rich import box
-    from rich.table import Table
+def _print_verdict(con, v) -> None:
+    """The verdict in plain words: headline, findings, recommendation, cautions, how sure."""
     from rich.text import Text
-
-    con = console or make_console()
-    data = _data_from(analysis)
-    v = story.verdict(data)
-    conf = story.confidence_pct(data)
 
     con.print(Text(v["headline"], style="bold"))
     for i in v["interactions"]:
@@ -117,6 +110,13 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
     for s in v["sure"]:        # how far to trust the verdict: a caution, never dim
         con.print(Text("  " + s))
     con.print()
+
+
+def _print_anova(con, data, v) -> None:
+    """The ANOVA table, then the scale it was computed on."""
+    from rich import box
+    from rich.table import Table
+    from rich.text import Text
 
     t = Table(title="Analysis of variance", box=box.SIMPLE_HEAD, title_justify="left",
               title_style="bold")
@@ -137,6 +137,13 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
         con.print(Text("  Scale: " + v["transform"]))
         con.print()
 
+
+def _print_effects(con, data, conf) -> None:
+    """Each level as a ratio to its reference level with its interval."""
+    from rich import box
+    from rich.table import Table
+    from rich.text import Text
+
     effects = data.analysis.get("effects") or []
     if effects:
         t = Table(title=f"Effects as ratios to the reference level ({conf} intervals)",
@@ -154,6 +161,13 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
                        else "–"), style="bold" if sig else None)
         con.print(t)
 
+
+def _print_diagnostics(con, data) -> None:
+    """One line per diagnostic, marked ok or with a concern."""
+    from rich import box
+    from rich.table import Table
+    from rich.text import Text
+
     diags = story.diagnostic_items(data)
     if diags:
         t = Table(title="Diagnostics", box=box.SIMPLE_HEAD, title_justify="left",
@@ -166,6 +180,13 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
                            style="yellow" if d["concern"] else "green"),
                       fmt_p(d["p"]) if d["p"] is not None else "", Text(d["verdict"]))
         con.print(t)
+
+
+def _print_comparisons(con, data, comparisons) -> None:
+    """The comparisons that matter most, and how many more there are."""
+    from rich import box
+    from rich.table import Table
+    from rich.text import Text
 
     all_comps = story.comparisons(data)
     comps = story.top_comparisons(data, comparisons)
@@ -195,6 +216,11 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
             con.print(Text(f"  … {len(all_comps) - len(comps)} more in analysis.json",
                            style="dim"))
 
+
+def _print_warnings(con, data) -> None:
+    """Data-quality warnings and the analysis notes."""
+    from rich.text import Text
+
     warns = story.warnings(data, list(data.extra_notes))
     notes = data.analysis.get("notes") or []
     if warns or notes:
@@ -203,3 +229,18 @@ def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
             con.print(Text(f"  ! {w['kind']}: {w['text']}", style="yellow"))
         for n in notes:
             con.print(Text(f"  - {n}"))
+
+
+def print_analysis(analysis, console=None, comparisons: int = 10) -> None:
+    """Print verdict, ANOVA, effects, diagnostics, comparisons and warnings."""
+    con = console or make_console()
+    data = _data_from(analysis)
+    v = story.verdict(data)
+    conf = story.confidence_pct(data)
+
+    _print_verdict(con, v)
+    _print_anova(con, data, v)
+    _print_effects(con, data, conf)
+    _print_diagnostics(con, data)
+    _print_comparisons(con, data, comparisons)
+    _print_warnings(con, data)
