@@ -150,22 +150,27 @@ class _Hasher:
         return self.cache[key]
 
 
+def command_words(argv: tuple[str, ...] | None, shell_command: str | None):
+    """The words of a rendered command and a note: ``argv`` as given, or a shell
+    command's words with leading ``VAR=value`` assignments skipped (its first
+    word is then taken as the executable)."""
+    if argv is not None:
+        return argv, ""
+    try:
+        words = shlex.split(shell_command or "")
+    except ValueError:
+        words = (shell_command or "").split()
+    while words and "=" in words[0] and not words[0].startswith(("/", ".")):
+        words = words[1:]
+    return tuple(words), "shell command: the first word is taken as the executable"
+
+
 def command_files(argv: tuple[str, ...] | None, shell_command: str | None,
                   env: Mapping[str, str] | None, cwd: str | None, hasher=None) -> dict:
     """Executable and file arguments of one rendered command, with hashes."""
     hasher = hasher or _Hasher()
     cwd = cwd or os.getcwd()
-    note = ""
-    if argv is None:
-        try:
-            words = shlex.split(shell_command or "")
-        except ValueError:
-            words = (shell_command or "").split()
-        note = "shell command: the first word is taken as the executable"
-        # skip leading VAR=value assignments
-        while words and "=" in words[0] and not words[0].startswith(("/", ".")):
-            words = words[1:]
-        argv = tuple(words)
+    argv, note = command_words(argv, shell_command)
     if not argv:
         return {"executable": None, "executable_sha256": None, "files": [],
                 "note": "empty command"}
@@ -232,16 +237,7 @@ class _Programs:
     def key(self, argv, shell_command, env, cwd) -> tuple:
         """A hashable description of the program a rendered command runs."""
         cwd = cwd or os.getcwd()
-        note = ""
-        if argv is None:
-            try:
-                words = shlex.split(shell_command or "")
-            except ValueError:
-                words = (shell_command or "").split()
-            note = "shell command: the first word is taken as the executable"
-            while words and "=" in words[0] and not words[0].startswith(("/", ".")):
-                words = words[1:]
-            argv = tuple(words)
+        argv, note = command_words(argv, shell_command)
         if not argv:
             return (None, (), "empty command")
         path = (env or os.environ).get("PATH", os.defpath)

@@ -138,6 +138,11 @@ def pelt(y, penalty: float | None = None, min_size: int = 2,
         if prunable.size:
             pending[t] = prunable
 
+    return _traced_back(last, F, n, penalty)
+
+
+def _traced_back(last, F, n: int, penalty: float) -> Segmentation:
+    """The segmentation ending at ``n``, read back through each end's best last start."""
     cps: list[int] = []
     t = n
     while t > 0:
@@ -147,8 +152,8 @@ def pelt(y, penalty: float | None = None, min_size: int = 2,
         t = s
     cps.reverse()
     bounds = [0, *cps, n]
-    segments = tuple((bounds[i], bounds[i + 1]) for i in range(len(bounds) - 1))
-    return Segmentation(n, tuple(cps), segments, float(F[n]), float(penalty))
+    return Segmentation(n, tuple(cps), tuple(zip(bounds[:-1], bounds[1:])), float(F[n]),
+                        float(penalty))
 
 
 def optimal_partitioning(y, penalty: float, min_size: int = 2,
@@ -167,14 +172,4 @@ def optimal_partitioning(y, penalty: float, min_size: int = 2,
         i = int(np.argmin(total))
         F[t] = total[i]
         last[t] = starts[i]
-    cps = []
-    t = n
-    while t > 0:
-        s = int(last[t])
-        if s > 0:
-            cps.append(s)
-        t = s
-    cps.reverse()
-    bounds = [0, *cps, n]
-    return Segmentation(n, tuple(cps), tuple(zip(bounds[:-1], bounds[1:])), float(F[n]),
-                        float(penalty))
+    return _traced_back(last, F, n, penalty)
