@@ -110,7 +110,9 @@ def test_gate_records_the_candidate_in_history(tmp_path, cli):
     db = tmp_path / "h.sqlite"
     r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "8",
             "--out", tmp_path / "g", "--history-db", db, cwd=tmp_path)
-    assert r.returncode in (0, 3), r.stderr
+    # the verdict on two equal 1 ms commands is not the point (a load spike on a shared
+    # CI host may sway it); the record is
+    assert r.returncode in (0, 1, 3) and "Traceback" not in r.stderr, r.stderr
     assert "history: 1 cell row of the candidate added" in r.stdout   # one workload, one row
     with sqlite3.connect(db) as con:
         assert con.execute("select count(*) from cells").fetchone()[0] == 1

@@ -17,7 +17,8 @@ def test_gate_json_pair_counts_under_new_and_old_keys(cli, tmp_path, spelling):
     js = tmp_path / "g.json"
     r = cli("gate", "--baseline", "true", "--candidate", "true", "--seed", "1",
             big, "9", first, "7", "--out", tmp_path / "res", "--json-out", js)
-    assert r.returncode in (0, 3), r.stdout + r.stderr
+    # the verdict on two equal 1 ms commands is not the point here (load may sway it)
+    assert r.returncode in (0, 1, 3) and "Traceback" not in r.stderr, r.stdout + r.stderr
     for data in (json.loads(js.read_text()),
                  json.loads((tmp_path / "res" / "gate.json").read_text())):
         assert data["max_pairs"] == 9 and data["first_look_pairs"] == 7
