@@ -27,12 +27,15 @@ from benchharness.design.fractional import (
     DesignError, FractionalDesign, design_for_cells, design_for_resolution,
     design_from_generators, full_design, roman,
 )
+from benchharness.design.surface import TYPE as surface_type
+from benchharness.design.surface import SurfaceDesign
+from benchharness.design.surface import describe as surface_describe
 from benchharness.experiment.yamlnodes import (
     as_int, expect_mapping, node_error, scalar_text, sequence_items,
 )
 
 KEYS = ("type", "generators", "resolution", "cells", "blocks", "block_on")
-TYPES = ("full", "fractional")
+TYPES = ("full", "fractional", surface_type)
 #: Keys `DesignChoice.info` adds to ``Plan.info`` (shown by `describe_info`).
 DESIGN_INFO_KEYS = ("design", "resolution", "defining_relation", "aliases",
                     "confounded_with_blocks")
@@ -44,12 +47,16 @@ class DesignChoice:
 
     design: FractionalDesign | None = None
     blocking: Blocking | None = None
+    surface: SurfaceDesign | None = None     # a response-surface design (design/surface.py)
 
     @property
     def changes_plan(self) -> bool:
+        """A two-level design (fraction or confounded blocks) replaces the full factorial."""
         return self.design is not None and (self.design.is_fraction or self.blocking is not None)
 
     def cells(self) -> list[dict[str, str]] | None:
+        if self.surface is not None:
+            return self.surface.cells()
         if not self.changes_plan:
             return None
         return self.design.cells()
@@ -61,6 +68,8 @@ class DesignChoice:
 
     def info(self) -> dict:
         """Design facts for ``plan --json`` and ``design.json`` (JSON-ready)."""
+        if self.surface is not None:
+            return {"design": self.surface.to_json_dict()}
         if not self.changes_plan:
             return {}
         d = self.design.to_json_dict()
@@ -76,6 +85,8 @@ class DesignChoice:
         return info
 
     def describe(self) -> list[str]:
+        if self.surface is not None:
+            return surface_describe(self.surface.to_json_dict())
         if not self.changes_plan:
             return []
         lines = self.design.describe()
@@ -114,13 +125,19 @@ def design_of(exp) -> DesignChoice:
 
 def _design_of(exp, node) -> DesignChoice:
     path = getattr(exp, "path", None)
+    from benchharness.design import surface
+
+    type_node = surface.type_node_of(node)
+    if type_node is not None and getattr(type_node, "value", None) == surface_type:
+        keys = expect_mapping(node, "'design'", surface.KEYS)
+        return DesignChoice(surface=surface.from_section(exp, keys, type_node, path))
     keys = expect_mapping(node, "'design'", KEYS)
     kind = "full"
     if "type" in keys:
         kind = scalar_text(keys["type"], "'design: type'")
         if kind not in TYPES:
-            raise node_error(keys["type"], f"design type {kind!r} is not known; use 'full' or "
-                                           f"'fractional'")
+            raise node_error(keys["type"], f"design type {kind!r} is not known; use 'full', "
+                                           f"'fractional' or '{surface_type}'")
     fraction_keys = [k for k in ("generators", "resolution", "cells") if k in keys]
     if kind == "full" and fraction_keys and "type" in keys:
         raise node_error(keys[fraction_keys[0]],
@@ -201,6 +218,8 @@ def describe_info(info: dict) -> list[str]:
     d = info.get("design")
     if not d:
         return []
+    if d.get("type") == surface_type:
+        return surface_describe(d)
     lines = []
     letters = ", ".join(f"{a}={n}" for a, n in d["factors"].items())
     if d["type"] == "fractional":

@@ -27,6 +27,7 @@ import yaml
 
 from benchharness.experiment import templating
 from benchharness.errors import ExperimentError
+from benchharness.design.surface import expand_factors as expand_surface_factors
 from benchharness.experiment.yamlnodes import (
     as_bool, as_duration_s, as_int, check_tags, is_null, kind, mapping_items, node_error,
     scalar_text, suggest,
@@ -419,6 +420,7 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
     about = "" if is_null(nodes.get("about")) else scalar_text(nodes["about"], "'about'")
     shell = as_bool(nodes["shell"], "'shell'") if "shell" in nodes else False
     factors = _parse_factors(nodes["factors"])
+    factors = expand_surface_factors(factors, nodes["factors"], nodes.get("design"), path)
     factor_map = {f.name: f for f in factors}
 
     command = _parse_command(nodes["command"], "'command'", shell)
