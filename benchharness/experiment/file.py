@@ -393,8 +393,64 @@ def _Loader(path: str):
 
 
 def parse_experiment(text: str, path: str = "<string>") -> Experiment:
+    """Validate an experiment file's text into an `Experiment`.
+
+    The steps follow the file's reading order: the top-level keys, the core values,
+    the commands and steps, then the placeholders that tie them to the factors. The
+    first problem found is raised as an `ExperimentError` at its line; sections of
+    later capabilities are kept as raw nodes for their owners to validate."""
     root = _compose(text, path)
     check_tags(root)
+    nodes, keynodes = _top_level_nodes(root, path)
+    name = _parse_name(nodes["experiment"])
+    about = "" if is_null(nodes.get("about")) else scalar_text(nodes["about"], "'about'")
+    shell = as_bool(nodes["shell"], "'shell'") if "shell" in nodes else False
+    factors = _parse_factors(nodes["factors"])
+    factors = expand_surface_factors(factors, nodes["factors"], nodes.get("design"), path)
+    factor_map = {f.name: f for f in factors}
+    command = _parse_command(nodes["command"], "'command'", shell)
+    sections: dict[str, yaml.Node] = {k: nodes[k] for k in SECTION_KEYS if k in nodes}
+    replicates = _parse_replicates(nodes.get("replicates"), sections)
+    warmup = as_int(nodes["warmup"], "'warmup'", minimum=0) if "warmup" in nodes else 0
+    order = _parse_order(nodes)
+    seed = as_int(nodes["seed"], "'seed'", minimum=0) if _given(nodes, "seed") else None
+    max_runs = _parse_max_runs(nodes)
+    timeout_s = (as_duration_s(nodes["timeout"], "'timeout'") if _given(nodes, "timeout")
+                 else None)
+    env = _parse_env(nodes["env"]) if _given(nodes, "env") else {}
+    steps = {step: _parse_command(nodes[step], f"'{step}'", shell)
+             for step in ("build", "reset", "teardown") if _given(nodes, step)}
+    workdir = scalar_text(nodes["workdir"], "'workdir'") if _given(nodes, "workdir") else None
+
+    used = _check_placeholders(_templated_texts(nodes, steps, sections, workdir), factor_map)
+    if shell:
+        _check_shell_values(nodes, command, steps, factor_map)
+    found_warnings = _unused_factor_warnings(nodes["factors"], factors, used, path)
+
+    return Experiment(
+        name=name, about=about, command=command, factors=factors, replicates=replicates,
+        warmup=warmup, order=order, seed=seed, timeout_s=timeout_s, shell=shell, env=env,
+        build=steps.get("build"), reset=steps.get("reset"), teardown=steps.get("teardown"),
+        workdir=workdir, path=path, source_text=text, sections=sections,
+        warnings=tuple(found_warnings), max_runs=max_runs,
+        key_marks={k: (kn.start_mark.line + 1, kn.start_mark.column + 1)
+                   for k, kn in keynodes.items()},
+    )
+
+
+#: What to write when a required top-level key is missing.
+_REQUIRED_KEYS = {
+    "experiment": "name the experiment, e.g. experiment: archive-codecs",
+    "command": "give the command to benchmark, e.g. "
+               "command: [./app, --threads, \"{threads}\"]",
+    "factors": "list the factors and their levels, e.g. factors: {threads: [1, 2, 4]}",
+}
+
+
+def _top_level_nodes(root: yaml.Node, path: str) -> tuple[dict[str, yaml.Node],
+                                                           dict[str, yaml.Node]]:
+    """The file's top-level value nodes and key nodes by key; refuses a file that is
+    not a mapping, an unknown key, or a missing required key."""
     if not isinstance(root, yaml.MappingNode):
         raise node_error(root, f"the experiment file must be a mapping of keys (experiment:, "
                                f"command:, factors:, ...), not {kind(root)}", path)
@@ -406,93 +462,94 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
             raise node_error(knode, f"unknown key {key!r}; {suggest(key, known)}")
         nodes[key] = vnode
         keynodes[key] = knode
-    for req in ("experiment", "command", "factors"):
+    for req, hint in _REQUIRED_KEYS.items():
         if req not in nodes:
-            raise node_error(root, f"missing the key {req!r}; "
-                                   + {"experiment": "name the experiment, e.g. experiment: "
-                                                    "archive-codecs",
-                                      "command": "give the command to benchmark, e.g. "
-                                                 "command: [./app, --threads, \"{threads}\"]",
-                                      "factors": "list the factors and their levels, e.g. "
-                                                 "factors: {threads: [1, 2, 4]}"}[req])
+            raise node_error(root, f"missing the key {req!r}; {hint}")
+    return nodes, keynodes
 
-    name = _parse_name(nodes["experiment"])
-    about = "" if is_null(nodes.get("about")) else scalar_text(nodes["about"], "'about'")
-    shell = as_bool(nodes["shell"], "'shell'") if "shell" in nodes else False
-    factors = _parse_factors(nodes["factors"])
-    factors = expand_surface_factors(factors, nodes["factors"], nodes.get("design"), path)
-    factor_map = {f.name: f for f in factors}
 
-    command = _parse_command(nodes["command"], "'command'", shell)
+def _given(nodes: Mapping[str, yaml.Node], key: str) -> bool:
+    """Whether the file gives ``key`` a value (present and not empty/null)."""
+    return key in nodes and not is_null(nodes[key])
 
-    sections: dict[str, yaml.Node] = {k: nodes[k] for k in SECTION_KEYS if k in nodes}
 
-    rep_node = nodes.get("replicates")
+def _parse_replicates(rep_node: yaml.Node | None, sections: dict[str, yaml.Node]) -> int:
+    """The replicate count; for adaptive replication (a mapping) the section is kept
+    for the design capability to validate and the plan starts from its ``min``."""
     if rep_node is None:
-        replicates = 1
-    elif isinstance(rep_node, yaml.MappingNode):
-        # Adaptive replication: validated by the design capability; start from `min`.
-        sections["replicates"] = rep_node
-        replicates = 3
-        for key, _k, v in mapping_items(rep_node, "'replicates'"):
-            if key == "min":
-                replicates = as_int(v, "'replicates: min'", minimum=1)
-    else:
-        replicates = as_int(rep_node, "'replicates'", minimum=1)
+        return 1
+    if not isinstance(rep_node, yaml.MappingNode):
+        return as_int(rep_node, "'replicates'", minimum=1)
+    sections["replicates"] = rep_node
+    replicates = 3
+    for key, _k, v in mapping_items(rep_node, "'replicates'"):
+        if key == "min":
+            replicates = as_int(v, "'replicates: min'", minimum=1)
+    return replicates
 
-    warmup = as_int(nodes["warmup"], "'warmup'", minimum=0) if "warmup" in nodes else 0
-    order = "randomized"
-    if "order" in nodes:
-        order = scalar_text(nodes["order"], "'order'")
-        if order not in ORDERS:
-            raise node_error(nodes["order"], f"'order' must be one of {', '.join(ORDERS)}, "
-                                             f"not {order!r}")
-    seed = None
-    if "seed" in nodes and not is_null(nodes["seed"]):
-        seed = as_int(nodes["seed"], "'seed'", minimum=0)
-    max_runs = DEFAULT_MAX_RUNS
-    if "max_runs" in nodes and not is_null(nodes["max_runs"]):
-        max_runs = as_int(nodes["max_runs"], "'max_runs'", minimum=1)
-        if max_runs > MAX_RUNS_CEILING:
-            raise node_error(nodes["max_runs"], f"'max_runs' may be at most "
-                                                f"{MAX_RUNS_CEILING:,} (a plan that size "
-                                                f"already takes gigabytes), not {max_runs:,}")
-    timeout_s = None
-    if "timeout" in nodes and not is_null(nodes["timeout"]):
-        timeout_s = as_duration_s(nodes["timeout"], "'timeout'")
 
+def _parse_order(nodes: Mapping[str, yaml.Node]) -> str:
+    """The run order (one of `ORDERS`; randomized unless the file says otherwise)."""
+    if "order" not in nodes:
+        return "randomized"
+    order = scalar_text(nodes["order"], "'order'")
+    if order not in ORDERS:
+        raise node_error(nodes["order"], f"'order' must be one of {', '.join(ORDERS)}, "
+                                         f"not {order!r}")
+    return order
+
+
+def _parse_max_runs(nodes: Mapping[str, yaml.Node]) -> int:
+    """The most runs a plan may hold, at most `MAX_RUNS_CEILING`."""
+    if not _given(nodes, "max_runs"):
+        return DEFAULT_MAX_RUNS
+    max_runs = as_int(nodes["max_runs"], "'max_runs'", minimum=1)
+    if max_runs > MAX_RUNS_CEILING:
+        raise node_error(nodes["max_runs"], f"'max_runs' may be at most "
+                                            f"{MAX_RUNS_CEILING:,} (a plan that size "
+                                            f"already takes gigabytes), not {max_runs:,}")
+    return max_runs
+
+
+def _parse_env(node: yaml.Node) -> dict[str, str]:
+    """The ``env:`` mapping: valid variable names, each with a single value."""
     env: dict[str, str] = {}
-    if "env" in nodes and not is_null(nodes["env"]):
-        for key, knode, vnode in mapping_items(nodes["env"], "'env'"):
-            if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", key):
-                raise node_error(knode, f"environment variable name {key!r} is not valid; use "
-                                        "letters, digits and underscores")
-            if isinstance(vnode, yaml.ScalarNode) and not is_null(vnode):
-                env[key] = vnode.value
-            else:
-                raise node_error(vnode, f"'env: {key}' must be a single value, not {kind(vnode)}")
+    for key, knode, vnode in mapping_items(node, "'env'"):
+        if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", key):
+            raise node_error(knode, f"environment variable name {key!r} is not valid; use "
+                                    "letters, digits and underscores")
+        if isinstance(vnode, yaml.ScalarNode) and not is_null(vnode):
+            env[key] = vnode.value
+        else:
+            raise node_error(vnode, f"'env: {key}' must be a single value, not {kind(vnode)}")
+    return env
 
-    steps = {}
-    for step in ("build", "reset", "teardown"):
-        if step in nodes and not is_null(nodes[step]):
-            steps[step] = _parse_command(nodes[step], f"'{step}'", shell)
-    workdir = None
-    if "workdir" in nodes and not is_null(nodes["workdir"]):
-        workdir = scalar_text(nodes["workdir"], "'workdir'")
 
-    # -- placeholders: every one must name a factor (and a named value it has) --
-    used: set[str] = set()
+def _templated_texts(nodes: Mapping[str, yaml.Node], steps: Mapping[str, CommandTemplate],
+                     sections: Mapping[str, yaml.Node],
+                     workdir: str | None) -> list[tuple[str, yaml.Node]]:
+    """Every text that may hold placeholders, with its node (for the error's line):
+    the command, the steps, env values, the workdir, and the pin/nice sections
+    (metrics/expect hold regexes; their owners check them)."""
     templated: list[tuple[str, yaml.Node]] = []
     templated += _template_nodes(nodes["command"])
     for step in steps:
         templated += _template_nodes(nodes[step])
-    if "env" in nodes and not is_null(nodes["env"]):
+    if _given(nodes, "env"):
         templated += [(v.value, v) for _k, v in nodes["env"].value]
     if workdir is not None:
         templated.append((workdir, nodes["workdir"]))
-    for key in ("pin", "nice"):  # metrics/expect hold regexes; their owners check them
+    for key in ("pin", "nice"):
         if key in sections:
             templated += _template_nodes(sections[key])
+    return templated
+
+
+def _check_placeholders(templated: list[tuple[str, yaml.Node]],
+                        factor_map: Mapping[str, Factor]) -> set[str]:
+    """Every placeholder must name a factor (and a named value each of its levels has);
+    returns the names of the factors used."""
+    used: set[str] = set()
     for text_, node in templated:
         try:
             phs = templating.placeholders(text_)
@@ -507,27 +564,43 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
                                           if hint else "declare it under 'factors'"))
             used.add(f.name)
             if ph.name is not None:
-                for lv in f.levels:
-                    if ph.name not in lv.values:
-                        have = ", ".join(sorted(lv.values)) or "none"
-                        raise node_error(node, f"placeholder {ph.text}: level {lv.label!r} of "
-                                               f"factor {f.name!r} has no value named "
-                                               f"{ph.name!r} (it has: {have}); give every "
-                                               "level that value")
+                _check_named_value(ph, f, node)
+    return used
 
-    if shell:  # a value must be safe where its placeholder stands (templating.render_shell)
-        for key, tmpl in (("command", command), *steps.items()):
-            for ph, ctx in templating.shell_contexts(" ".join(tmpl.parts)):
-                f = factor_map[ph.factor]
-                for lv in f.levels:
-                    value = lv.label if ph.name is None else lv.values[ph.name]
-                    why = templating.check_shell_value(ph.text, ctx, value)
-                    if why:
-                        raise node_error(nodes[key], f"{why} (level {lv.label!r} of factor "
-                                                     f"{f.name!r})")
 
+def _check_named_value(ph, f: Factor, node: yaml.Node) -> None:
+    """A ``{factor.name}`` placeholder needs that named value on every level."""
+    for lv in f.levels:
+        if ph.name not in lv.values:
+            have = ", ".join(sorted(lv.values)) or "none"
+            raise node_error(node, f"placeholder {ph.text}: level {lv.label!r} of "
+                                   f"factor {f.name!r} has no value named "
+                                   f"{ph.name!r} (it has: {have}); give every "
+                                   "level that value")
+
+
+def _check_shell_values(nodes: Mapping[str, yaml.Node], command: CommandTemplate,
+                        steps: Mapping[str, CommandTemplate],
+                        factor_map: Mapping[str, Factor]) -> None:
+    """With ``shell: true``, every level's value must be safe where its placeholder
+    stands (see `templating.render_shell`)."""
+    for key, tmpl in (("command", command), *steps.items()):
+        for ph, ctx in templating.shell_contexts(" ".join(tmpl.parts)):
+            f = factor_map[ph.factor]
+            for lv in f.levels:
+                value = lv.label if ph.name is None else lv.values[ph.name]
+                why = templating.check_shell_value(ph.text, ctx, value)
+                if why:
+                    raise node_error(nodes[key], f"{why} (level {lv.label!r} of factor "
+                                                 f"{f.name!r})")
+
+
+def _unused_factor_warnings(factors_node: yaml.Node, factors: tuple[Factor, ...],
+                            used: set[str], path: str) -> list[str]:
+    """A warning for each factor no command, env or step mentions: its levels would
+    not change what runs."""
     found_warnings = []
-    key_marks = {k: kn.start_mark for k, kn, _v in mapping_items(nodes["factors"], "'factors'")}
+    key_marks = {k: kn.start_mark for k, kn, _v in mapping_items(factors_node, "'factors'")}
     for f in factors:
         if f.name not in used:
             mark = key_marks.get(f.name)
@@ -535,16 +608,7 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
             found_warnings.append(
                 f"{where}: factor {f.name!r} is used in no command, env or step; its levels "
                 f"will not change what runs (write {{{f.name}}} where it belongs)")
-
-    return Experiment(
-        name=name, about=about, command=command, factors=factors, replicates=replicates,
-        warmup=warmup, order=order, seed=seed, timeout_s=timeout_s, shell=shell, env=env,
-        build=steps.get("build"), reset=steps.get("reset"), teardown=steps.get("teardown"),
-        workdir=workdir, path=path, source_text=text, sections=sections,
-        warnings=tuple(found_warnings), max_runs=max_runs,
-        key_marks={k: (kn.start_mark.line + 1, kn.start_mark.column + 1)
-                   for k, kn in keynodes.items()},
-    )
+    return found_warnings
 
 
 def check_planned_runs(exp: Experiment, cells: int, replicates: int, warmup: int) -> int:
@@ -579,6 +643,8 @@ def _parse_name(node: yaml.Node) -> str:
 
 
 def _parse_factors(node: yaml.Node) -> tuple[Factor, ...]:
+    """The ``factors:`` mapping: each factor's name, its levels (a list of labels, or a
+    mapping of labels to named values) and no level twice."""
     if is_null(node):
         raise node_error(node, "'factors' is empty; list at least one factor with its levels, "
                                "e.g. threads: [1, 2, 4]")
@@ -587,51 +653,80 @@ def _parse_factors(node: yaml.Node) -> tuple[Factor, ...]:
         raise node_error(node, "'factors' is empty; list at least one factor with its levels")
     factors = []
     for fname, knode, vnode in items:
-        if fname in RESERVED_COLUMNS:
-            raise node_error(knode, f"factor name {fname!r} is a column of runs.csv; rename "
-                                    f"the factor (e.g. {fname}_level)")
-        if not fname.strip() or any(c in fname for c in "{}.,=") or fname != fname.strip():
-            raise node_error(knode, f"factor name {fname!r} cannot be used in templates; use a "
-                                    "name without braces, dots, commas, '=' or edge spaces")
-        levels: list[Level] = []
-        if isinstance(vnode, yaml.SequenceNode):
-            for lnode in vnode.value:
-                if not isinstance(lnode, yaml.ScalarNode) or is_null(lnode):
-                    raise node_error(lnode, f"a level of factor {fname!r} must be a single "
-                                            f"value, not {kind(lnode)}; for named values "
-                                            "write the levels as a mapping")
-                levels.append(Level(lnode.value))
-            lnodes = vnode.value
-        elif isinstance(vnode, yaml.MappingNode):
-            lnodes = []
-            for label, lknode, lvnode in mapping_items(vnode, f"factor {fname!r}"):
-                values: dict[str, str] = {}
-                if not is_null(lvnode):
-                    for vname, vknode, vvnode in mapping_items(
-                            lvnode, f"level {label!r} of factor {fname!r}"):
-                        if not isinstance(vvnode, yaml.ScalarNode) or is_null(vvnode):
-                            raise node_error(vvnode, f"value {vname!r} of level {label!r} must "
-                                                     f"be a single value, not {kind(vvnode)}")
-                        values[vname] = vvnode.value
-                levels.append(Level(label, values))
-                lnodes.append(lknode)
-        elif is_null(vnode):
-            raise node_error(knode, f"factor {fname!r} has no levels; list at least one, "
-                                    f"e.g. {fname}: [a, b]")
-        else:
-            raise node_error(vnode, f"factor {fname!r} must list its levels, e.g. "
-                                    f"{fname}: [a, b], not {kind(vnode)}")
-        if not levels:
-            raise node_error(vnode, f"factor {fname!r} has no levels; list at least one")
-        seen: dict[str, yaml.Node] = {}
-        for lv, ln in zip(levels, lnodes):
-            if lv.label in seen:
-                raise node_error(ln, f"factor {fname!r} lists the level {lv.label!r} twice "
-                                     f"(also on line {seen[lv.label].start_mark.line + 1}); "
-                                     "each level once")
-            seen[lv.label] = ln
+        _check_factor_name(fname, knode)
+        levels, lnodes = _parse_levels(fname, knode, vnode)
+        _check_distinct_levels(fname, levels, lnodes)
         factors.append(Factor(fname, tuple(levels)))
     return tuple(factors)
+
+
+def _check_factor_name(fname: str, knode: yaml.Node) -> None:
+    """A factor name must not be a runs.csv column and must fit in a placeholder."""
+    if fname in RESERVED_COLUMNS:
+        raise node_error(knode, f"factor name {fname!r} is a column of runs.csv; rename "
+                                f"the factor (e.g. {fname}_level)")
+    if not fname.strip() or any(c in fname for c in "{}.,=") or fname != fname.strip():
+        raise node_error(knode, f"factor name {fname!r} cannot be used in templates; use a "
+                                "name without braces, dots, commas, '=' or edge spaces")
+
+
+def _parse_levels(fname: str, knode: yaml.Node,
+                  vnode: yaml.Node) -> tuple[list[Level], list[yaml.Node]]:
+    """A factor's levels and the node of each (for error lines); at least one."""
+    if isinstance(vnode, yaml.SequenceNode):
+        levels, lnodes = _listed_levels(fname, vnode)
+    elif isinstance(vnode, yaml.MappingNode):
+        levels, lnodes = _named_levels(fname, vnode)
+    elif is_null(vnode):
+        raise node_error(knode, f"factor {fname!r} has no levels; list at least one, "
+                                f"e.g. {fname}: [a, b]")
+    else:
+        raise node_error(vnode, f"factor {fname!r} must list its levels, e.g. "
+                                f"{fname}: [a, b], not {kind(vnode)}")
+    if not levels:
+        raise node_error(vnode, f"factor {fname!r} has no levels; list at least one")
+    return levels, lnodes
+
+
+def _listed_levels(fname: str, vnode: yaml.SequenceNode) -> tuple[list[Level], list[yaml.Node]]:
+    """Levels written as a list: each a single value, its label the source text."""
+    levels: list[Level] = []
+    for lnode in vnode.value:
+        if not isinstance(lnode, yaml.ScalarNode) or is_null(lnode):
+            raise node_error(lnode, f"a level of factor {fname!r} must be a single "
+                                    f"value, not {kind(lnode)}; for named values "
+                                    "write the levels as a mapping")
+        levels.append(Level(lnode.value))
+    return levels, vnode.value
+
+
+def _named_levels(fname: str, vnode: yaml.MappingNode) -> tuple[list[Level], list[yaml.Node]]:
+    """Levels written as a mapping: label → named values (each a single value)."""
+    levels: list[Level] = []
+    lnodes = []
+    for label, lknode, lvnode in mapping_items(vnode, f"factor {fname!r}"):
+        values: dict[str, str] = {}
+        if not is_null(lvnode):
+            for vname, vknode, vvnode in mapping_items(
+                    lvnode, f"level {label!r} of factor {fname!r}"):
+                if not isinstance(vvnode, yaml.ScalarNode) or is_null(vvnode):
+                    raise node_error(vvnode, f"value {vname!r} of level {label!r} must "
+                                             f"be a single value, not {kind(vvnode)}")
+                values[vname] = vvnode.value
+        levels.append(Level(label, values))
+        lnodes.append(lknode)
+    return levels, lnodes
+
+
+def _check_distinct_levels(fname: str, levels: list[Level], lnodes: list[yaml.Node]) -> None:
+    """Each level once."""
+    seen: dict[str, yaml.Node] = {}
+    for lv, ln in zip(levels, lnodes):
+        if lv.label in seen:
+            raise node_error(ln, f"factor {fname!r} lists the level {lv.label!r} twice "
+                                 f"(also on line {seen[lv.label].start_mark.line + 1}); "
+                                 "each level once")
+        seen[lv.label] = ln
 
 
 def _parse_command(node: yaml.Node, what: str, shell: bool) -> CommandTemplate:
