@@ -128,49 +128,71 @@ def _limit_list(x) -> list:
 
 def _resolve_roles(roles, experiment, df, factors, across_given):
     """The roles to use: given here, else declared in the file, else guessed."""
-    from benchharness.experiment.roles import ROLES, Roles, factor_roles
+    from benchharness.experiment.roles import Roles, factor_roles
 
     if isinstance(roles, Roles):
         return roles
     if roles is not None:
-        if not isinstance(roles, Mapping):
-            raise UsageError("roles must map a role (setting, workload, environment) to "
-                             "factor names")
-        from benchharness.experiment.roles import declared_roles
-
-        base = declared_roles(experiment)
-        role = {}
-        if base is not None:
-            for r in ROLES:
-                role.update({f: r for f in getattr(base, r)})
-        given: dict = {}
-        for r, fs in roles.items():
-            if r not in ROLES:
-                raise UsageError(f"unknown role {r!r}; roles are {', '.join(ROLES)}")
-            for f in _as_list(fs):
-                if f not in factors:
-                    raise UsageError(f"roles: {f!r} is not a factor (factors: "
-                                     f"{', '.join(factors)})")
-                if f in given and given[f] != r:
-                    raise UsageError(f"{f!r} is given two roles ({given[f]} and {r}); give "
-                                     "each factor one role")
-                given[f] = r
-        role.update(given)
-        return Roles(setting=tuple(f for f in factors if role.get(f, "setting") == "setting"),
-                     workload=tuple(f for f in factors if role.get(f) == "workload"),
-                     environment=tuple(f for f in factors if role.get(f) == "environment"),
-                     source="command line")
+        return _roles_given(roles, experiment, factors)
     levels = None
     if experiment is None:
-        import pandas as pd
-
-        levels = {}
-        for f in factors:
-            col = df[f]
-            levels[f] = ([str(c) for c in col.cat.categories]
-                         if isinstance(col.dtype, pd.CategoricalDtype)
-                         else [str(v) for v in pd.unique(col.astype(str))])
+        levels = _table_levels(df, factors)
     return factor_roles(experiment, factors=factors, levels=levels, exclude=across_given)
+
+
+def _roles_given(roles, experiment, factors):
+    """Roles given in the call (role -> factors) over those the file declares; a factor
+    named nowhere is a setting."""
+    from benchharness.experiment.roles import ROLES, Roles
+
+    if not isinstance(roles, Mapping):
+        raise UsageError("roles must map a role (setting, workload, environment) to "
+                         "factor names")
+    from benchharness.experiment.roles import declared_roles
+
+    base = declared_roles(experiment)
+    role = {}
+    if base is not None:
+        for r in ROLES:
+            role.update({f: r for f in getattr(base, r)})
+    role.update(_role_of_each(roles, factors))
+    return Roles(setting=tuple(f for f in factors if role.get(f, "setting") == "setting"),
+                 workload=tuple(f for f in factors if role.get(f) == "workload"),
+                 environment=tuple(f for f in factors if role.get(f) == "environment"),
+                 source="command line")
+
+
+def _role_of_each(roles, factors) -> dict:
+    """Factor -> role from a mapping role -> factors; `UsageError` for an unknown role, a
+    name that is not a factor, or a factor given two roles."""
+    from benchharness.experiment.roles import ROLES
+
+    given: dict = {}
+    for r, fs in roles.items():
+        if r not in ROLES:
+            raise UsageError(f"unknown role {r!r}; roles are {', '.join(ROLES)}")
+        for f in _as_list(fs):
+            if f not in factors:
+                raise UsageError(f"roles: {f!r} is not a factor (factors: "
+                                 f"{', '.join(factors)})")
+            if f in given and given[f] != r:
+                raise UsageError(f"{f!r} is given two roles ({given[f]} and {r}); give "
+                                 "each factor one role")
+            given[f] = r
+    return given
+
+
+def _table_levels(df, factors) -> dict:
+    """Each factor's levels as text, in the table's order (a categorical's own order)."""
+    import pandas as pd
+
+    levels = {}
+    for f in factors:
+        col = df[f]
+        levels[f] = ([str(c) for c in col.cat.categories]
+                     if isinstance(col.dtype, pd.CategoricalDtype)
+                     else [str(v) for v in pd.unique(col.astype(str))])
+    return levels
 
 
 def _half_widths(m, confidence):
@@ -228,16 +250,114 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     ``limits``: constraints such as ``"max_rss_kib within 5%"`` (see
     `benchharness.choose.limits`); only settings that meet them are chosen.
     """
-    from benchharness.choose.config import choose_settings, load_source, metric_directions
-    from benchharness.choose.mcb import mcb
-    from benchharness.choose.model import fit_response, level_orders, subset_settings
-    from benchharness.choose.pareto import pareto_front
-    from benchharness.choose.prefer import preference_rank, resolve_prefer
-    from benchharness.choose.robust import robust_choice
+    from benchharness.choose.config import choose_settings, load_source
+    from benchharness.choose.model import level_orders, subset_settings
+    from benchharness.choose.prefer import resolve_prefer
 
     factors_list = _as_list(factors) or None
     df, experiment = load_source(data, factors_list)
-    section = choose_settings(experiment)
+    ask = _asked(choose_settings(experiment), response, confidence, across, also, within,
+                 limits, prefer)
+    response, confidence = ask.response, ask.confidence
+    factors_list, role_info, across, control = _factors_and_roles(
+        df, experiment, factors_list, ask.across_given, roles)
+    also = [a for a in ask.also if a != response]
+    directions = _directions(experiment, better, response)
+    block = _block_column(block, df, experiment, factors_list, across, response)
+    orders = level_orders(df[df["status"].astype(str) == "ok"] if "status" in df.columns else df,
+                          control + across, experiment)
+
+    fits = _Fits(df, data, experiment, response, scale, control, across, directions, orders,
+                 residual, block)
+    full = fits.first()
+    names = tuple(control)
+    _check_prefer(ask.prefer, across, factors_list, role_info)
+    default, declared = resolve_prefer(ask.prefer, names, orders)
+
+    # the trade-off front (over every setting, before any limit), then the limits
+    pareto_idx, dominated_by, responses_info = _front(fits, full, also, confidence, ask.within)
+    limit_results, eligible = _eligible(fits, ask.limits, confidence, len(full.settings))
+    main = full if len(eligible) == len(full.settings) else subset_settings(full, eligible)
+
+    j = _judge(names, full, main, default, declared, confidence, eligible, dominated_by,
+               pareto_idx, also, ask, limit_results)
+    return _choice(j, ask, role_info, responses_info, fits.scale_reasons.get(response, ""))
+
+
+def _judge(names, full, main, default, declared, confidence, eligible, dominated_by,
+           pareto_idx, also, ask, limit_results) -> "_Judgement":
+    """Hsu's comparisons with the best among the eligible settings (ties going the way
+    of the declared default) and the robust choice across the conditions."""
+    from benchharness.choose.mcb import mcb
+    from benchharness.choose.prefer import preference_rank
+    from benchharness.choose.robust import robust_choice
+
+    rank = preference_rank(main.settings, names, default, declared, main.goodness)
+    res = mcb(main.goodness, main.weights, main.sigma, main.df, confidence)
+    tied_idx = [i for i in range(len(main.settings)) if res.tied[i]]
+    tied_idx.sort(key=lambda i: rank[i])
+    best_i = tied_idx[0]
+    top_i = int(np.argmax(main.goodness))
+    return _Judgement(
+        names=names, full=full, main=main, res=res, rob=robust_choice(main.cell_goodness, rank),
+        rank=rank, best_i=best_i, top_i=top_i, tied_idx=tied_idx,
+        eligible=eligible, dominated_by=dominated_by, pareto_idx=pareto_idx, also=also,
+        limits=bool(ask.limits), limit_results=limit_results, default=default,
+        declared=declared, confidence=confidence, within=ask.within)
+
+
+def _choice(j: "_Judgement", ask: "_Asked", role_info, responses_info,
+            scale_reason: str) -> Choice:
+    """The `Choice`: the judgement put as candidates, summaries and reasons in words."""
+    main, res, also, confidence = j.main, j.res, j.also, ask.confidence
+    candidates = _candidates(j)
+    robust, on_average, disagreement = _robust_summaries(j)
+    reasons = _role_reasons(role_info, j.names, ask.across_given)
+    reasons += _limit_reasons(j.limit_results, j.all_settings, j.eligible, j.as_map, confidence)
+    reasons += _top_reasons(main, res, j.best_i, j.top_i, j.tied_idx, j.settings, j.as_map,
+                            j.rob, disagreement, j.pareto_idx, also, j.is_log, confidence,
+                            j.default, j.declared, j.all_settings, ask.within,
+                            unit=_unit(main.response))
+    return Choice(
+        response=ask.response, better=main.better, scale=main.scale, confidence=confidence,
+        control=j.names, across=tuple(main.across), best=j.as_map(j.settings[j.best_i]),
+        estimated_best=j.as_map(j.settings[j.top_i]),
+        tied=[j.as_map(j.settings[i]) for i in j.tied_idx],
+        robust=robust, on_average=on_average, disagreement=disagreement,
+        candidates=candidates,
+        residual={"model": main.residual_model, "block": main.block, "sigma": main.sigma,
+                  "df": main.df, "critical": list(res.critical)},
+        prefer=dict(j.default), also=tuple(also),
+        pareto=(None if j.pareto_idx is None
+                else [j.as_map(j.all_settings[i]) for i in j.pareto_idx]),
+        responses=responses_info, reasons=reasons, runs_used=j.full.n_runs,
+        runs_dropped=j.full.dropped_runs,
+        without_runs=[j.as_map(w) for w in j.full.without_runs],
+        roles=role_info.to_dict(), declared_default={f: j.default[f] for f in j.names
+                                                     if f in j.declared},
+        within=ask.within if also else None,
+        limits=[_limit_dict(lr, j.all_settings, j.as_map) for lr in j.limit_results],
+        scale_reason=scale_reason,
+    )
+
+
+@dataclass(frozen=True)
+class _Asked:
+    """The options of one `choose` call, the experiment's ``choose:`` section filling
+    whatever the call left out."""
+
+    response: str
+    confidence: float
+    across_given: list
+    also: list
+    within: float
+    limits: list
+    prefer: dict
+
+
+def _asked(section, response, confidence, across, also, within, limits, prefer) -> _Asked:
+    """The call's options over the section's; `UsageError` for a confidence that is not
+    a number strictly between 0 and 1, a bad margin or a bad limit."""
     if response is None:
         response = section.get("response", "wall_s")
     if confidence is None:
@@ -248,11 +368,19 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
         raise UsageError(f"confidence must be a number between 0 and 1, not {confidence!r}")
     if not 0 < confidence < 1:
         raise UsageError(f"confidence must be between 0 and 1 (e.g. 0.95), not {confidence}")
-    across_given = _as_list(section.get("across") if across is None else across)
-    also = _as_list(section.get("also") if also is None else also)
-    within = _within(section.get("within", DEFAULT_WITHIN) if within is None else within)
-    limits = list(section.get("limits", []) if limits is None else _limit_list(limits))
-    prefer = {**section.get("prefer", {}), **{str(k): str(v) for k, v in (prefer or {}).items()}}
+    return _Asked(
+        response=response, confidence=confidence,
+        across_given=_as_list(section.get("across") if across is None else across),
+        also=_as_list(section.get("also") if also is None else also),
+        within=_within(section.get("within", DEFAULT_WITHIN) if within is None else within),
+        limits=list(section.get("limits", []) if limits is None else _limit_list(limits)),
+        prefer={**section.get("prefer", {}),
+                **{str(k): str(v) for k, v in (prefer or {}).items()}})
+
+
+def _factors_and_roles(df, experiment, factors_list, across_given, roles):
+    """``(factors, roles, across, control)``: the factor columns, the role of each, the
+    conditions the choice must hold up across, and the settings left to choose."""
     if factors_list is None:
         if experiment is not None:
             factors_list = list(experiment.factor_names)
@@ -267,47 +395,79 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
                                 + across_given))
     control = [f for f in factors_list if f not in across]
     if not control:
-        if not role_info.declared and role_info.workload:
-            from benchharness.experiment.roles import declaration_text
+        _refuse_nothing_to_choose(role_info)
+    return factors_list, role_info, across, control
 
-            raise UsageError(
-                "every factor looks like an input or is in --across, so nothing is left to "
-                f"choose ({'; '.join(f'{f}: {role_info.reasons[f]}' for f in role_info.workload)}"
-                "); declare the settings, e.g. roles: {setting: ["
-                + ", ".join(role_info.workload) + "]} or --setting "
-                + ",".join(role_info.workload))
-        raise UsageError("every factor is in --across or declared a workload or environment; "
-                         "nothing is left to choose")
-    also = [a for a in also if a != response]
+
+def _refuse_nothing_to_choose(role_info) -> None:
+    """`UsageError` when every factor is a condition; says how to declare settings when
+    the roles were guessed."""
+    if not role_info.declared and role_info.workload:
+        raise UsageError(
+            "every factor looks like an input or is in --across, so nothing is left to "
+            f"choose ({'; '.join(f'{f}: {role_info.reasons[f]}' for f in role_info.workload)}"
+            "); declare the settings, e.g. roles: {setting: ["
+            + ", ".join(role_info.workload) + "]} or --setting "
+            + ",".join(role_info.workload))
+    raise UsageError("every factor is in --across or declared a workload or environment; "
+                     "nothing is left to choose")
+
+
+def _directions(experiment, better, response) -> dict:
+    """Response -> "lower"/"higher": the ``metrics:`` section, overridden by ``better``."""
+    from benchharness.choose.config import metric_directions
 
     directions = metric_directions(experiment)
     if isinstance(better, Mapping):
         directions.update({str(k): str(v) for k, v in better.items()})
     elif better is not None:
         directions[response] = str(better)
+    return directions
 
-    block = _block_column(block, df, experiment, factors_list, across, response)
 
-    orders = level_orders(df[df["status"].astype(str) == "ok"] if "status" in df.columns else df,
-                          control + across, experiment)
+class _Fits:
+    """The fits of one choice: each response fitted once over the same settings, on the
+    scale the folder's analysis recorded for it, else the same rule (`_scale_of`;
+    choose.config.recorded_scale reads the same record)."""
 
-    # the scale the folder's analysis recorded for this response, else the same rule
-    # (`_scale_of`; choose.config.recorded_scale reads the same record)
-    scale_reasons: dict[str, str] = {}
+    def __init__(self, df, data, experiment, response, scale, control, across, directions,
+                 orders, residual, block):
+        self.df, self.data, self.experiment = df, data, experiment
+        self.response, self.scale = response, scale
+        self.control, self.across, self.directions = control, across, directions
+        self.orders, self.residual, self.block = orders, residual, block
+        self.scale_reasons: dict[str, str] = {}
+        self.fitted: dict = {}
 
-    def fit(resp):
-        name, why = _scale_of(df, resp, scale if resp == response else "auto", data, experiment)
-        scale_reasons[resp] = why
-        return fit_response(df, resp, control, across, better=directions.get(resp, "lower"),
-                            scale=name, orders=orders, residual=residual, block=block)
+    def fit(self, resp):
+        from benchharness.choose.model import fit_response
 
-    full = fit(response)
-    all_settings = full.settings
-    names = tuple(control)
+        name, why = _scale_of(self.df, resp, self.scale if resp == self.response else "auto",
+                              self.data, self.experiment)
+        self.scale_reasons[resp] = why
+        return fit_response(self.df, resp, self.control, self.across,
+                            better=self.directions.get(resp, "lower"), scale=name,
+                            orders=self.orders, residual=self.residual, block=self.block)
 
-    def as_map(s):
-        return dict(zip(names, s))
+    def first(self):
+        """The fit of the response chosen on."""
+        self.fitted[self.response] = full = self.fit(self.response)
+        return full
 
+    def same(self, resp, what):
+        """The fit of a further response (``what`` names why it is needed); `DataError`
+        when it lacks some settings the main response has."""
+        if resp not in self.fitted:
+            m = self.fit(resp)
+            if m.settings != self.fitted[self.response].settings:
+                raise DataError(f"{resp!r} ({what}) is missing for some settings that have "
+                                f"{self.response!r}")
+            self.fitted[resp] = m
+        return self.fitted[resp]
+
+
+def _check_prefer(prefer, across, factors_list, role_info) -> None:
+    """A declared default may name settings only."""
     for f in prefer:
         if f in across and f in factors_list:
             role = role_info.role_of(f) or "condition (--across)"
@@ -315,124 +475,169 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
                 f"prefer names {f!r}, which is a {role}, not a setting: a default is chosen "
                 f"among settings only; drop it from prefer, or declare it a setting "
                 f"(roles: {{setting: [{f}]}} or --setting {f})")
-    default, declared = resolve_prefer(prefer, names, orders)
 
-    # Pareto front over several responses (over every setting, before any limit)
-    pareto_idx = None
-    dominated_by = [None] * len(all_settings)
+
+def _front(fits, full, also, confidence, within):
+    """``(front, dominated_by, responses)``: the confident trade-off front over the
+    response and ``also`` (indices into every setting), which setting dominates each,
+    and each response's fit in brief; ``(None, [None, ...], {})`` without ``also``."""
+    from benchharness.choose.pareto import pareto_front
+
+    if not also:
+        return None, [None] * len(full.settings), {}
+    models = [full] + [fits.same(a, "--also") for a in also]
+    par = pareto_front(models, confidence, within=within)
     responses_info: dict = {}
-    fitted = {response: full}
-
-    def fit_same(resp, what):
-        if resp not in fitted:
-            m = fit(resp)
-            if m.settings != all_settings:
-                raise DataError(f"{resp!r} ({what}) is missing for some settings that have "
-                                f"{response!r}")
-            fitted[resp] = m
-        return fitted[resp]
-
-    if also:
-        models = [full] + [fit_same(a, "--also") for a in also]
-        par = pareto_front(models, confidence, within=within)
-        pareto_idx = list(par.front)
-        dominated_by = list(par.dominated_by)
-        for m, q, mg in zip(models, par.allowance, par.margins):
-            responses_info[m.response] = {
-                "better": m.better, "scale": m.scale, "sigma": m.sigma, "df": m.df,
-                "residual_model": m.residual_model, "allowance": q, "margin": mg,
-                "means": [float(x) for x in m.to_response_units(m.setting_means)],
-                "half_width": [float(x) for x in _half_widths(m, confidence)],
-            }
-
-    # Limits ("max_rss_kib within 5%"): which settings may be chosen at all
-    limit_results = []
-    eligible = list(range(len(all_settings)))
-    if limits:
-        from benchharness.choose.limits import apply_limits
-
-        limit_models = [fit_same(lim.response, "a limit") for lim in limits]
-        limit_results, eligible = apply_limits(limits, limit_models, confidence)
-    main = full if len(eligible) == len(all_settings) else subset_settings(full, eligible)
-    settings = main.settings
-    k = len(settings)
-
-    g = main.goodness
-    rank = preference_rank(settings, names, default, declared, g)
-
-    res = mcb(g, main.weights, main.sigma, main.df, confidence)
-    tied_idx = [i for i in range(k) if res.tied[i]]
-    tied_idx.sort(key=lambda i: rank[i])
-    best_i = tied_idx[0]
-    top_i = int(np.argmax(g))
-
-    rob = robust_choice(main.cell_goodness, rank)
-    is_log = main.scale == "log"
-
-    def ratio(x):
-        return float(np.exp(x)) if is_log else None
-
-    def env_map(e):
-        return dict(zip(main.across, main.environments[e]))
-
-    sub_dominated = [dominated_by[f] for f in eligible]
-    means_full = full.to_response_units(full.setting_means)
-    candidates: list = [None] * len(all_settings)
-    for i, s in enumerate(settings):
-        fi = eligible[i]
-        # loss vs the best of the others (+0.0 turns -0.0 into 0.0)
-        loss_low, loss_high = -res.high[i] + 0.0, -res.low[i] + 0.0
-        worst_case = ratio(loss_high) if is_log else loss_high
-        c = {
-            "setting": as_map(s),
-            "mean": float(means_full[fi]),
-            "runs": int(main.cell_counts[i].sum()),
-            "tied": bool(res.tied[i]),
-            "recommended": i == best_i,
-            "loss_vs_best_of_others": {"low": float(loss_low), "high": float(loss_high)},
-            "ratio_vs_best_of_others": ({"low": ratio(loss_low), "high": ratio(loss_high)}
-                                        if is_log else None),
-            "worst_case_loss": float(worst_case),
-            "worst_ratio": ratio(rob.worst_loss[i]),
-            "worst_loss": float(rob.worst_loss[i]),
-            "worst_environment": env_map(int(rob.worst_env[i])),
-            "mean_ratio": ratio(rob.mean_loss[i]),
-            "mean_loss": float(rob.mean_loss[i]),
-            "preference_rank": int(rank[i]),
+    for m, q, mg in zip(models, par.allowance, par.margins):
+        responses_info[m.response] = {
+            "better": m.better, "scale": m.scale, "sigma": m.sigma, "df": m.df,
+            "residual_model": m.residual_model, "allowance": q, "margin": mg,
+            "means": [float(x) for x in m.to_response_units(m.setting_means)],
+            "half_width": [float(x) for x in _half_widths(m, confidence)],
         }
-        if limits:
-            c["within_limits"] = True
-        if also:
-            c["on_front"] = fi in pareto_idx
-            c["dominated_by"] = (None if dominated_by[fi] is None
-                                 else as_map(all_settings[dominated_by[fi]]))
-        c["reason"] = _candidate_reason(i, c, res, best_i, top_i, default, declared, names,
-                                        is_log, confidence, settings, sub_dominated,
-                                        all_settings, bool(also), within,
-                                        unit=_unit(main.response))
-        candidates[fi] = c
-    for fi, s in enumerate(all_settings):
-        if candidates[fi] is not None:
-            continue
-        over = [lr for lr in limit_results if not lr["meets"][fi]]
-        c = {"setting": as_map(s), "mean": float(means_full[fi]),
-             "runs": int(full.cell_counts[fi].sum()), "tied": False, "recommended": False,
-             "loss_vs_best_of_others": None, "ratio_vs_best_of_others": None,
-             "worst_case_loss": None, "worst_ratio": None, "worst_loss": None,
-             "worst_environment": None, "mean_ratio": None, "mean_loss": None,
-             "preference_rank": None, "within_limits": False}
-        if also:
-            c["on_front"] = fi in pareto_idx
-            c["dominated_by"] = (None if dominated_by[fi] is None
-                                 else as_map(all_settings[dominated_by[fi]]))
-        c["reason"] = "outside the limits: " + "; ".join(
-            _limit_miss_words(lr, fi, confidence) for lr in over)
-        candidates[fi] = c
+    return list(par.front), list(par.dominated_by), responses_info
 
-    robust = {"setting": as_map(settings[rob.robust]), "worst_ratio": ratio(rob.worst_loss[rob.robust]),
+
+def _eligible(fits, limits, confidence, n_settings):
+    """``(limit results, eligible indices)``: which settings the limits
+    ("max_rss_kib within 5%") let be chosen at all."""
+    if not limits:
+        return [], list(range(n_settings))
+    from benchharness.choose.limits import apply_limits
+
+    limit_models = [fits.same(lim.response, "a limit") for lim in limits]
+    return apply_limits(limits, limit_models, confidence)
+
+
+@dataclass
+class _Judgement:
+    """What the comparisons found, for wording the candidates: ``full`` covers every
+    setting, ``main`` the eligible ones (``eligible`` maps its indices to ``full``'s)."""
+
+    names: tuple
+    full: object
+    main: object
+    res: object
+    rob: object
+    rank: object
+    best_i: int
+    top_i: int
+    tied_idx: list
+    eligible: list
+    dominated_by: list
+    pareto_idx: list | None
+    also: list
+    limits: bool
+    limit_results: list
+    default: dict
+    declared: object
+    confidence: float
+    within: float
+
+    @property
+    def settings(self):
+        return self.main.settings
+
+    @property
+    def all_settings(self):
+        return self.full.settings
+
+    @property
+    def is_log(self) -> bool:
+        return self.main.scale == "log"
+
+    def as_map(self, s) -> dict:
+        return dict(zip(self.names, s))
+
+    def ratio(self, x):
+        return float(np.exp(x)) if self.is_log else None
+
+    def env_map(self, e) -> dict:
+        return dict(zip(self.main.across, self.main.environments[e]))
+
+
+def _candidates(j: _Judgement) -> list:
+    """One entry per setting run (in the fit's order): the eligible ones judged, the
+    others marked outside the limits."""
+    sub_dominated = [j.dominated_by[f] for f in j.eligible]
+    means_full = j.full.to_response_units(j.full.setting_means)
+    candidates: list = [None] * len(j.all_settings)
+    for i, s in enumerate(j.settings):
+        fi = j.eligible[i]
+        candidates[fi] = _judged_candidate(j, i, s, float(means_full[fi]), sub_dominated)
+    for fi, s in enumerate(j.all_settings):
+        if candidates[fi] is None:
+            candidates[fi] = _excluded_candidate(j, fi, s, float(means_full[fi]))
+    return candidates
+
+
+def _judged_candidate(j: _Judgement, i: int, s, mean: float, sub_dominated) -> dict:
+    """An eligible setting: its loss against the best of the others, its worst and mean
+    loss across the conditions, and the reason in words."""
+    res, rob, ratio = j.res, j.rob, j.ratio
+    fi = j.eligible[i]
+    # loss vs the best of the others (+0.0 turns -0.0 into 0.0)
+    loss_low, loss_high = -res.high[i] + 0.0, -res.low[i] + 0.0
+    worst_case = ratio(loss_high) if j.is_log else loss_high
+    c = {
+        "setting": j.as_map(s),
+        "mean": mean,
+        "runs": int(j.main.cell_counts[i].sum()),
+        "tied": bool(res.tied[i]),
+        "recommended": i == j.best_i,
+        "loss_vs_best_of_others": {"low": float(loss_low), "high": float(loss_high)},
+        "ratio_vs_best_of_others": ({"low": ratio(loss_low), "high": ratio(loss_high)}
+                                    if j.is_log else None),
+        "worst_case_loss": float(worst_case),
+        "worst_ratio": ratio(rob.worst_loss[i]),
+        "worst_loss": float(rob.worst_loss[i]),
+        "worst_environment": j.env_map(int(rob.worst_env[i])),
+        "mean_ratio": ratio(rob.mean_loss[i]),
+        "mean_loss": float(rob.mean_loss[i]),
+        "preference_rank": int(j.rank[i]),
+    }
+    if j.limits:
+        c["within_limits"] = True
+    _front_fields(j, c, fi)
+    c["reason"] = _candidate_reason(i, c, res, j.best_i, j.top_i, j.default, j.declared,
+                                    j.names, j.is_log, j.confidence, j.settings, sub_dominated,
+                                    j.all_settings, bool(j.also), j.within,
+                                    unit=_unit(j.main.response))
+    return c
+
+
+def _excluded_candidate(j: _Judgement, fi: int, s, mean: float) -> dict:
+    """A setting outside the limits: which limits it misses."""
+    over = [lr for lr in j.limit_results if not lr["meets"][fi]]
+    c = {"setting": j.as_map(s), "mean": mean,
+         "runs": int(j.full.cell_counts[fi].sum()), "tied": False, "recommended": False,
+         "loss_vs_best_of_others": None, "ratio_vs_best_of_others": None,
+         "worst_case_loss": None, "worst_ratio": None, "worst_loss": None,
+         "worst_environment": None, "mean_ratio": None, "mean_loss": None,
+         "preference_rank": None, "within_limits": False}
+    _front_fields(j, c, fi)
+    c["reason"] = "outside the limits: " + "; ".join(
+        _limit_miss_words(lr, fi, j.confidence) for lr in over)
+    return c
+
+
+def _front_fields(j: _Judgement, c: dict, fi: int) -> None:
+    """With ``also``: whether setting ``fi`` is on the trade-off front, and what beats it."""
+    if j.also:
+        c["on_front"] = fi in j.pareto_idx
+        c["dominated_by"] = (None if j.dominated_by[fi] is None
+                             else j.as_map(j.all_settings[j.dominated_by[fi]]))
+
+
+def _robust_summaries(j: _Judgement):
+    """``(robust, on_average, disagreement)``: the minimax-regret setting, the best on
+    average, and the condition that separates them (None when they agree)."""
+    rob, ratio, settings = j.rob, j.ratio, j.settings
+    robust = {"setting": j.as_map(settings[rob.robust]),
+              "worst_ratio": ratio(rob.worst_loss[rob.robust]),
               "worst_loss": float(rob.worst_loss[rob.robust]),
-              "worst_environment": env_map(int(rob.worst_env[rob.robust]))}
-    on_average = {"setting": as_map(settings[rob.on_average]),
+              "worst_environment": j.env_map(int(rob.worst_env[rob.robust]))}
+    on_average = {"setting": j.as_map(settings[rob.on_average]),
                   "mean_ratio": ratio(rob.mean_loss[rob.on_average]),
                   "mean_loss": float(rob.mean_loss[rob.on_average])}
     disagreement = None
@@ -440,36 +645,11 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
         e = rob.separating_env
         a, r = rob.on_average, rob.robust
         disagreement = {
-            "environment": env_map(e),
+            "environment": j.env_map(e),
             "on_average_ratio": ratio(rob.loss[a, e]), "robust_ratio": ratio(rob.loss[r, e]),
             "on_average_loss": float(rob.loss[a, e]), "robust_loss": float(rob.loss[r, e]),
         }
-
-    reasons = _role_reasons(role_info, names, across_given)
-    reasons += _limit_reasons(limit_results, all_settings, eligible, as_map, confidence)
-    reasons += _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob,
-                            disagreement, pareto_idx, also, is_log, confidence, default,
-                            declared, all_settings, within, unit=_unit(main.response))
-
-    return Choice(
-        response=response, better=main.better, scale=main.scale, confidence=confidence,
-        control=names, across=tuple(main.across), best=as_map(settings[best_i]),
-        estimated_best=as_map(settings[top_i]), tied=[as_map(settings[i]) for i in tied_idx],
-        robust=robust, on_average=on_average, disagreement=disagreement,
-        candidates=candidates,
-        residual={"model": main.residual_model, "block": main.block, "sigma": main.sigma,
-                  "df": main.df, "critical": list(res.critical)},
-        prefer=dict(default), also=tuple(also),
-        pareto=None if pareto_idx is None else [as_map(all_settings[i]) for i in pareto_idx],
-        responses=responses_info, reasons=reasons, runs_used=full.n_runs,
-        runs_dropped=full.dropped_runs,
-        without_runs=[as_map(w) for w in full.without_runs],
-        roles=role_info.to_dict(), declared_default={f: default[f] for f in names
-                                                     if f in declared},
-        within=within if also else None,
-        limits=[_limit_dict(lr, all_settings, as_map) for lr in limit_results],
-        scale_reason=scale_reasons.get(response, ""),
-    )
+    return robust, on_average, disagreement
 
 
 def _scale_of(df, resp, requested, data, experiment) -> tuple[str, str]:
@@ -536,50 +716,65 @@ def _unit(response: str) -> str:
 
 def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log, confidence,
                       settings, dominated_by, all_settings, with_also, within, unit: str = "") -> str:
+    """Why a setting stands where it does: recommended or not, its comparison with the
+    best (Hsu's intervals), and its place on the trade-off front."""
+    parts = []
+    if i == best_i:
+        parts += _recommended_words(i, top_i, default, declared, names, settings)
+    parts.append(_comparison_words(i, c, res, is_log, confidence, unit))
+    if with_also:
+        parts.append(_front_words(dominated_by[i], names, all_settings, within))
+    return "; ".join(parts)
+
+
+def _recommended_words(i, top_i, default, declared, names, settings) -> list[str]:
+    """Why the recommended setting was picked, and whether it keeps the declared default."""
+    parts = []
+    if i == top_i:
+        parts.append("recommended: the best estimate")
+    else:
+        top = _describe(dict(zip(names, settings[top_i])))
+        parts.append(f"recommended: tied with the best estimate ({top}) and "
+                     + ("closer to the declared default" if declared
+                        else "first in the listed order of levels"))
+    keeps = declared and all(v == default[f] for f, v in zip(names, settings[i])
+                             if f in declared)
+    if keeps and set(declared) == set(names):
+        parts.append("it is the current default")
+    elif keeps:
+        parts.append("it keeps the declared default ("
+                     + ", ".join(f"{f}={default[f]}" for f in names if f in declared) + ")")
+    return parts
+
+
+def _comparison_words(i, c, res, is_log, confidence, unit) -> str:
+    """The setting against the best of the others, from its constrained interval."""
     conf = f"{confidence * 100:g}%"
     hi = c["loss_vs_best_of_others"]["high"]
     lo = c["loss_vs_best_of_others"]["low"]
-    parts = []
-    if i == best_i:
-        if i == top_i:
-            parts.append("recommended: the best estimate")
-        else:
-            top = _describe(dict(zip(names, settings[top_i])))
-            parts.append(f"recommended: tied with the best estimate ({top}) and "
-                         + ("closer to the declared default" if declared
-                            else "first in the listed order of levels"))
-        keeps = declared and all(v == default[f] for f, v in zip(names, settings[i])
-                                 if f in declared)
-        if keeps and set(declared) == set(names):
-            parts.append("it is the current default")
-        elif keeps:
-            parts.append("it keeps the declared default ("
-                         + ", ".join(f"{f}={default[f]}" for f in names if f in declared) + ")")
-    if res.tied[i]:
-        if lo >= 0 and hi <= 0:
-            parts.append("as good as the best (the data show no difference at all)")
-        elif lo < 0 and hi <= 0:
-            parts.append(f"better than every other setting ({conf} confidence), by at most "
-                         f"{_loss_words(-lo, is_log, unit)}")
-        elif hi <= 0:
-            parts.append("better than every other setting")
-        else:
-            parts.append(f"not shown worse than the best: at most {_loss_words(hi, is_log, unit)} "
-                         f"worse ({conf} confidence)")
-    else:
-        parts.append(f"shown worse than the best ({conf} confidence): by at most "
-                     f"{_loss_words(hi, is_log, unit)}")
-    if with_also:
-        d = dominated_by[i]
-        if d is None:
-            parts.append("on the trade-off front")
-        else:
-            margin = f" by more than {within * 100:g}%" if within else ""
-            parts.append("off the trade-off front ("
-                         + _describe(dict(zip(names, all_settings[d])))
-                         + f" is better on at least one response{margin} and not worse on any"
-                         + (f" beyond {within * 100:g}%" if within else "") + ")")
-    return "; ".join(parts)
+    if not res.tied[i]:
+        return (f"shown worse than the best ({conf} confidence): by at most "
+                f"{_loss_words(hi, is_log, unit)}")
+    if lo >= 0 and hi <= 0:
+        return "as good as the best (the data show no difference at all)"
+    if lo < 0 and hi <= 0:
+        return (f"better than every other setting ({conf} confidence), by at most "
+                f"{_loss_words(-lo, is_log, unit)}")
+    if hi <= 0:
+        return "better than every other setting"
+    return (f"not shown worse than the best: at most {_loss_words(hi, is_log, unit)} "
+            f"worse ({conf} confidence)")
+
+
+def _front_words(d, names, all_settings, within) -> str:
+    """On the trade-off front, or which setting ``d`` keeps it off."""
+    if d is None:
+        return "on the trade-off front"
+    margin = f" by more than {within * 100:g}%" if within else ""
+    return ("off the trade-off front ("
+            + _describe(dict(zip(names, all_settings[d])))
+            + f" is better on at least one response{margin} and not worse on any"
+            + (f" beyond {within * 100:g}%" if within else "") + ")")
 
 
 def _role_reasons(roles, names, across_given) -> list[str]:
