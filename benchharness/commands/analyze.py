@@ -76,63 +76,93 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
-    from benchharness.analysis import analyze, format_analysis
-    from benchharness.errors import UsageError
-
-    factors = None
-    if args.factors is not None:
-        factors = [f for f in args.factors.split(",")]
-        if any(not f for f in factors):
-            raise UsageError(f"--factors {args.factors!r}: an empty factor name")
-    block = False if args.no_block else args.block
+    from benchharness.analysis import analyze
     from benchharness.results.journal import is_results_folder, load_results
 
+    factors = _factor_list(args.factors)
     folder_res = load_results(args.source) if is_results_folder(args.source) else None
-    if args.response is None:
-        args.response = gate_response(args.source) if folder_res is not None else None
-        if args.response is not None:
-            print(f"analysing {args.response}, the response this gate compared "
-                  "(--response to choose another)", file=sys.stderr)
-        else:
-            args.response = "wall_s"
+    args.response = _response(args, folder_res)
     model = args.model  # None: full, or every alias chain of a two-level fraction
     an = analyze(folder_res if folder_res is not None else args.source,  # read once
-                 response=args.response, factors=factors, block=block,
+                 response=args.response, factors=factors,
+                 block=False if args.no_block else args.block,
                  transform=args.transform, model=model, ss_type=args.ss_type,
                  alpha=round(1.0 - args.confidence, 12), reference=args.reference,
                  adjust=args.adjust,
                  art=True if args.art else False if args.no_cross_check else "auto",
-                 better=args.better,
-                 comparisons=(True if args.comparisons is None else
-                              "all" if args.comparisons.strip() == "all" else
-                              [m.strip() for m in args.comparisons.split(",") if m.strip()]))
+                 better=args.better, comparisons=_comparisons(args.comparisons))
     if args.json or args.json_out:
         from benchharness.commands.options import emit_json, wants_json_only
 
         emit_json(args, an.to_json())
         if wants_json_only(args):
             return 0
-    if args.plain:
-        print(format_analysis(an), end="")
-    else:
-        from benchharness.report.terminal import print_analysis
+    _print_analysis(an, args.plain)
+    _print_fraction(an, folder_res, factors, args.response)
+    if args.json_out:
+        print(f"\nanalysis written to {args.json_out}", file=sys.stderr)
+    return 0
 
-        print_analysis(an)
+
+def _factor_list(text: str | None) -> list[str] | None:
+    """The factor columns named by --factors, or None when the option was not given."""
+    from benchharness.errors import UsageError
+
+    if text is None:
+        return None
+    factors = [f for f in text.split(",")]
+    if any(not f for f in factors):
+        raise UsageError(f"--factors {text!r}: an empty factor name")
+    return factors
+
+
+def _response(args, folder_res) -> str:
+    """The response to analyse: --response, else what a gate's folder compared, else wall_s."""
+    if args.response is not None:
+        return args.response
+    response = gate_response(args.source) if folder_res is not None else None
+    if response is None:
+        return "wall_s"
+    print(f"analysing {response}, the response this gate compared "
+          "(--response to choose another)", file=sys.stderr)
+    return response
+
+
+def _comparisons(text: str | None):
+    """--comparisons as `analyze` takes it: True (the default choice), "all" or a list."""
+    if text is None:
+        return True
+    if text.strip() == "all":
+        return "all"
+    return [m.strip() for m in text.split(",") if m.strip()]
+
+
+def _print_analysis(an, plain: bool) -> None:
+    """The analysis on standard output: plain text, or the terminal's tables."""
+    if plain:
+        from benchharness.analysis import format_analysis
+
+        print(format_analysis(an), end="")
+        return
+    from benchharness.report.terminal import print_analysis
+
+    print_analysis(an)
+
+
+def _print_fraction(an, folder_res, factors, response: str) -> None:
+    """The alias chains of a fraction, or of a full two-level design in confounded blocks."""
     frac = an.fraction
     if frac is None and folder_res is not None and factors is None:
         # Confounded blocks of a full two-level design: effects labelled with their aliases.
         from benchharness.analysis.fraction import fraction_analysis_for
 
         frac = fraction_analysis_for(folder_res.experiment, folder_res.runs,
-                                     response=args.response,
+                                     response=response,
                                      log=(an.transform or {}).get("name") != "none")
     if frac is not None:
         from benchharness.analysis.fraction import format_fraction
 
         print("\n" + format_fraction(frac))
-    if args.json_out:
-        print(f"\nanalysis written to {args.json_out}", file=sys.stderr)
-    return 0
 
 
 def gate_response(folder) -> str | None:
