@@ -78,63 +78,26 @@ def _factors_from_experiment(exp):
 
 
 def main(args) -> int:
-    from benchharness.design import budget, sizing
-    from benchharness.errors import UsageError
+    from benchharness.design import sizing
 
     from benchharness import values as V
 
     detect = V.change_of(args.detect)
-    pilot_df = pilot_exp = None
-    if args.pilot:
-        from benchharness.results.source import load_table
-
-        if os.path.isdir(args.pilot):
-            pilot_df, pilot_exp = load_table(args.pilot)
-        else:
-            if not args.levels:
-                raise UsageError("a CSV pilot needs --levels FILE (an experiment file naming "
-                                 "the factors)")
-    exp = None
-    if args.levels:
-        factors, cells, exp = _factors_from_levels(args.levels)
-    elif pilot_exp is not None:
-        factors, cells = _factors_from_experiment(pilot_exp)
-        exp = pilot_exp
-    else:
-        raise UsageError("say what the factors are: --levels 3,2,4, --levels FILE, or --pilot "
-                         "SOURCE")
+    pilot_df, pilot_exp = _pilot_folder(args)
+    factors, cells, exp = _factors(args, pilot_exp)
     if args.pilot and pilot_df is None:
         from benchharness.results.source import load_table
 
         names = [n for n, _ in factors]
         pilot_df, _ = load_table(args.pilot, factors=names)
-    sigma_note = ""
-    if args.noise_cv:
-        cv = args.noise_cv
-        sigma = sizing.sigma_from_cv(cv)
-        sigma_note = f"CV {cv * 100:g}% -> sd of ln({args.response}) {sigma:.4g}"
-    elif pilot_df is not None:
-        pf = [f for f in (pilot_exp.factor_names if pilot_exp else [n for n, _ in factors])
-              if f in pilot_df.columns]
-        pn = sizing.pilot_noise(pilot_df, pf, args.response)
-        sigma = pn.sigma_log
-        sigma_note = (f"pilot: sd of ln({args.response}) {sigma:.4g} from {pn.runs} runs in "
-                      f"{pn.cells} cells ({pn.df} df)")
-    else:
-        raise UsageError("say how noisy the runs are: --noise-cv 2% or --pilot SOURCE")
+    sigma, sigma_note = _noise(args, pilot_df, pilot_exp, factors)
     ans = sizing.size_design(factors, detect, sigma, alpha=round(1.0 - args.confidence, 12),
                              power=args.power,
                              method=args.target, cells=cells)
     out = ans.to_json_dict()
     out["noise"] = sigma_note
     if pilot_df is not None:
-        timing = budget.pilot_timing(pilot_df, [n for n, _ in factors], args.response)
-        per_run = timing.mean_s + timing.overhead_s
-        out["expected_run_s"] = per_run
-        out["expected_wall_s"] = per_run * ans.runs
-        warm = exp.warmup if exp is not None else 0
-        if warm:
-            out["expected_wall_s"] += per_run * warm * ans.cells
+        out.update(_expected_time(args, pilot_df, factors, exp, ans))
     if args.json or args.json_out:
         from benchharness.commands.options import emit_json, wants_json_only
 
@@ -143,6 +106,68 @@ def main(args) -> int:
             return 0
     print(format_answer(ans, out))
     return 0
+
+
+def _pilot_folder(args):
+    """(runs table, experiment) of a --pilot results folder; (None, None) for a CSV or none.
+
+    A CSV pilot is read once the factors are known, and needs --levels FILE to know them.
+    """
+    from benchharness.errors import UsageError
+
+    if not args.pilot:
+        return None, None
+    if os.path.isdir(args.pilot):
+        from benchharness.results.source import load_table
+
+        return load_table(args.pilot)
+    if not args.levels:
+        raise UsageError("a CSV pilot needs --levels FILE (an experiment file naming "
+                         "the factors)")
+    return None, None
+
+
+def _factors(args, pilot_exp):
+    """(factors [(name, levels)], cells or None, experiment or None): --levels, else the pilot's."""
+    from benchharness.errors import UsageError
+
+    if args.levels:
+        return _factors_from_levels(args.levels)
+    if pilot_exp is not None:
+        return _factors_from_experiment(pilot_exp) + (pilot_exp,)
+    raise UsageError("say what the factors are: --levels 3,2,4, --levels FILE, or --pilot "
+                     "SOURCE")
+
+
+def _noise(args, pilot_df, pilot_exp, factors) -> tuple[float, str]:
+    """(sd of the log response, how it was found): from --noise-cv, else from the pilot's runs."""
+    from benchharness.design import sizing
+    from benchharness.errors import UsageError
+
+    if args.noise_cv:
+        cv = args.noise_cv
+        sigma = sizing.sigma_from_cv(cv)
+        return sigma, f"CV {cv * 100:g}% -> sd of ln({args.response}) {sigma:.4g}"
+    if pilot_df is None:
+        raise UsageError("say how noisy the runs are: --noise-cv 2% or --pilot SOURCE")
+    pf = [f for f in (pilot_exp.factor_names if pilot_exp else [n for n, _ in factors])
+          if f in pilot_df.columns]
+    pn = sizing.pilot_noise(pilot_df, pf, args.response)
+    return pn.sigma_log, (f"pilot: sd of ln({args.response}) {pn.sigma_log:.4g} from "
+                          f"{pn.runs} runs in {pn.cells} cells ({pn.df} df)")
+
+
+def _expected_time(args, pilot_df, factors, exp, ans) -> dict:
+    """The pilot's time per run and the whole sized experiment's, its warm-up runs included."""
+    from benchharness.design import budget
+
+    timing = budget.pilot_timing(pilot_df, [n for n, _ in factors], args.response)
+    per_run = timing.mean_s + timing.overhead_s
+    out = {"expected_run_s": per_run, "expected_wall_s": per_run * ans.runs}
+    warm = exp.warmup if exp is not None else 0
+    if warm:
+        out["expected_wall_s"] += per_run * warm * ans.cells
+    return out
 
 
 def format_answer(ans, out: dict) -> str:
