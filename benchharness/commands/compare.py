@@ -93,15 +93,25 @@ def headline(result) -> str:
 
 
 def print_comparison(result) -> None:
-    from rich.table import Table
-
     from benchharness.report.terminal import make_console
 
     console = make_console()
-    ratio = result.scale == "log"
     console.print(headline(result), highlight=False)
     console.print(f"A (baseline): {result.a}", highlight=False)
     console.print(f"B:            {result.b}", highlight=False)
+    console.print(_cell_table(result))
+    _print_notes(console, result)
+    import sys
+
+    for w in result.warnings:  # warnings go to standard error, like every command's
+        print(f"warning: {w}", file=sys.stderr)
+
+
+def _cell_table(result):
+    """The rich table of the cells: sizes, both centres, B/A (or B - A), interval, verdict."""
+    from rich.table import Table
+
+    ratio = result.scale == "log"
     table = Table(title=f"{result.response}, B/A per cell" if ratio else
                   f"{result.response}, B - A per cell", title_justify="left")
     cells = result.cells
@@ -110,13 +120,10 @@ def print_comparison(result) -> None:
         table.add_column(n)
     for col in ("n A/B", "A", "B", "B/A" if ratio else "B - A",
                 f"{result.conf_level * 100:g}% interval"
-                + (" (per cell)" if result.adjustment == "none" else " (all cells)"),
-                "verdict"):
-        if col == "verdict":
-            table.add_column(col, justify="left", overflow="fold")
-        else:
-            table.add_column(col, justify="right", no_wrap=True)
-    from benchharness.numbers import fmt_ratio, fmt_ratio_interval, pick_scale, plural
+                + (" (per cell)" if result.adjustment == "none" else " (all cells)")):
+        table.add_column(col, justify="right", no_wrap=True)
+    table.add_column("verdict", justify="left", overflow="fold")
+    from benchharness.numbers import fmt_ratio, fmt_ratio_interval, pick_scale
     from benchharness.report.units import unit_of
 
     unit = unit_of(result.response)
@@ -128,7 +135,15 @@ def print_comparison(result) -> None:
         iv = fmt_ratio_interval(c.low, c.high) if ratio else diffs.interval(c.low, c.high)
         table.add_row(*[c.cell[n] for n in names], f"{c.n_a}/{c.n_b}", means.fmt(c.center_a),
                       means.fmt(c.center_b), est, iv, c.wording)
-    console.print(table)
+    return table
+
+
+def _print_notes(console, result) -> None:
+    """What the columns and verdicts mean, the adjustment, the scale, the noise, unshared cells."""
+    from benchharness.numbers import pick_scale, plural
+    from benchharness.report.units import unit_of
+
+    ratio = result.scale == "log"
     tol = f"{result.tolerance * 100:g}%"
     console.print(f"A and B columns: {'geometric ' if ratio else ''}means of "
                   f"{result.response}. Verdicts: beyond {tol} = the whole interval is outside "
@@ -138,6 +153,7 @@ def print_comparison(result) -> None:
     if result.scale_reason:
         console.print(f"Compared on {result.scale_reason}.", highlight=False)
     if result.residual_sd is not None:
+        unit = unit_of(result.response)
         noise = (f"{result.residual_sd * 100:.1f}% (SD of ln {result.response})" if ratio
                  else pick_scale(unit, [result.residual_sd]).fmt(result.residual_sd))
         console.print(f"Run-to-run noise pooled over cells and both sessions: {noise}, "
@@ -146,7 +162,3 @@ def print_comparison(result) -> None:
         if only:
             console.print(f"{plural(len(only), 'cell')} only in {label}: "
                           + "; ".join(", ".join(f"{k}={v}" for k, v in c.items()) for c in only))
-    import sys
-
-    for w in result.warnings:  # warnings go to standard error, like every command's
-        print(f"warning: {w}", file=sys.stderr)
