@@ -83,61 +83,13 @@ def add_parser(sub) -> None:
 
 
 def main(args) -> int:
-    import json
-    from pathlib import Path
-
     from benchharness.errors import UsageError
-    from benchharness.experiment.file import Experiment, load_experiment
     from benchharness.gate import output
-    from benchharness.gate.session import parse_gate_section, quick_experiment_text, run_session
+    from benchharness.gate.session import parse_gate_section, run_session
 
-    quick = args.baseline is not None or args.candidate is not None
-    if quick and args.file:
-        raise UsageError("give either FILE or --baseline/--candidate, not both")
-    if not quick and not args.file:
-        raise UsageError("give an experiment FILE with a 'gate:' section, or --baseline CMD "
-                         "--candidate CMD")
-    if quick and args.against and args.baseline is None and args.candidate is not None:
-        # stored-baseline mode runs only the candidate: the baseline's runs are read from
-        # the folder, so no baseline command is needed (a shell no-op records where from)
-        args.baseline = f": stored baseline runs from {args.against}"
-    if quick and (args.baseline is None or args.candidate is None):
-        raise UsageError("the quick form needs both --baseline CMD and --candidate CMD")
-    over: dict = {}
-    if args.tolerance is not None:
-        from benchharness import values as V
-
-        tol = V.change_of(args.tolerance)
-        if not 0 < tol < 1:
-            raise UsageError("--tolerance: must be above 0% and below 100% (a ratio between 1 "
-                             "and 2)")
-        over["tolerance"] = tol
-    if args.confidence is not None:
-        if not 0.5 < args.confidence < 1:
-            raise UsageError(f"--confidence {args.confidence:.0%}: give a level between 50% "
-                             "and 100%, e.g. 95%")
-        over["confidence"] = args.confidence
-    if args.max_pairs is not None:
-        over["max_runs"] = args.max_pairs
-    if args.first_look_pairs is not None:
-        over["min_runs"] = args.first_look_pairs
-    if args.response:
-        over["response"] = args.response
-    if args.better is not None:
-        over["higher_is_better"] = args.better == "higher"
-    if args.inconclusive:
-        over["inconclusive"] = args.inconclusive
-    if quick:
-        text = quick_experiment_text(args.baseline, args.candidate,
-                                     warmup=1 if args.warmup_runs is None else args.warmup_runs,
-                                     timeout=None if args.timeout is None else
-                                     f"{args.timeout!r}s")
-        exp = Experiment.from_text(text, path="<gate quick form>")
-    else:
-        if args.warmup_runs is not None or args.timeout is not None:
-            raise UsageError("--warmup-runs and --timeout belong to the quick form; set warmup: "
-                             "and timeout: in the experiment file")
-        exp = load_experiment(args.file)
+    quick = _form(args)
+    over = _overrides(args)
+    exp = _experiment(args, quick)
     cfg = parse_gate_section(exp, over)
     if cfg.settings.min_runs > cfg.settings.max_runs:
         raise UsageError("--first-look-pairs must not exceed --max-pairs")
@@ -159,6 +111,97 @@ def main(args) -> int:
     for line in output.terminal_lines(outcome):
         print(line, file=sys.stderr if line in warnings else sys.stdout)
     print(f"results folder: {folder}")
+    _write_files(args, outcome, folder)
+    if args.history_db:
+        from benchharness.history import add_results
+
+        n = add_results(args.history_db, folder, responses=(cfg.response,),
+                        select={cfg.factor: cfg.candidate})
+        from benchharness.numbers import plural
+
+        print(f"history: {plural(n, 'cell row')} of the candidate added to {args.history_db}")
+    return outcome.exit_code(cfg.inconclusive)
+
+
+def _form(args) -> bool:
+    """True for the quick form (--baseline/--candidate), False for the file form; refuses a mix.
+
+    In stored-baseline mode (--against) the quick form needs only --candidate.
+    """
+    from benchharness.errors import UsageError
+
+    quick = args.baseline is not None or args.candidate is not None
+    if quick and args.file:
+        raise UsageError("give either FILE or --baseline/--candidate, not both")
+    if not quick and not args.file:
+        raise UsageError("give an experiment FILE with a 'gate:' section, or --baseline CMD "
+                         "--candidate CMD")
+    if quick and args.against and args.baseline is None and args.candidate is not None:
+        # stored-baseline mode runs only the candidate: the baseline's runs are read from
+        # the folder, so no baseline command is needed (a shell no-op records where from)
+        args.baseline = f": stored baseline runs from {args.against}"
+    if quick and (args.baseline is None or args.candidate is None):
+        raise UsageError("the quick form needs both --baseline CMD and --candidate CMD")
+    return quick
+
+
+def _overrides(args) -> dict:
+    """The gate settings given on the command line, each checked, keyed as the gate section's."""
+    from benchharness.errors import UsageError
+
+    over: dict = {}
+    if args.tolerance is not None:
+        from benchharness import values as V
+
+        tol = V.change_of(args.tolerance)
+        if not 0 < tol < 1:
+            raise UsageError("--tolerance: must be above 0% and below 100% (a ratio between 1 "
+                             "and 2)")
+        over["tolerance"] = tol
+    if args.confidence is not None:
+        if not 0.5 < args.confidence < 1:
+            raise UsageError(f"--confidence {args.confidence:.0%}: give a level between 50% "
+                             "and 100%, e.g. 95%")
+        over["confidence"] = args.confidence
+    for key, value in (("max_runs", args.max_pairs), ("min_runs", args.first_look_pairs)):
+        if value is not None:
+            over[key] = value
+    if args.response:
+        over["response"] = args.response
+    if args.better is not None:
+        over["higher_is_better"] = args.better == "higher"
+    if args.inconclusive:
+        over["inconclusive"] = args.inconclusive
+    return over
+
+
+def _experiment(args, quick: bool):
+    """The experiment to gate: written from the two commands (quick form) or read from FILE."""
+    from benchharness.errors import UsageError
+    from benchharness.experiment.file import Experiment, load_experiment
+    from benchharness.gate.session import quick_experiment_text
+
+    if quick:
+        text = quick_experiment_text(args.baseline, args.candidate,
+                                     warmup=1 if args.warmup_runs is None else args.warmup_runs,
+                                     timeout=None if args.timeout is None else
+                                     f"{args.timeout!r}s")
+        return Experiment.from_text(text, path="<gate quick form>")
+    if args.warmup_runs is not None or args.timeout is not None:
+        raise UsageError("--warmup-runs and --timeout belong to the quick form; set warmup: "
+                         "and timeout: in the experiment file")
+    return load_experiment(args.file)
+
+
+def _write_files(args, outcome, folder) -> None:
+    """The --summary, --junit and --json(-out) files; a write that fails names the file and
+    where the verdict still is (exit 75 for a full disk, else 2)."""
+    import json
+    from pathlib import Path
+
+    from benchharness.errors import UsageError
+    from benchharness.gate import output
+
     try:
         if args.summary:
             with open(args.summary, "a", encoding="utf-8") as fh:
@@ -179,15 +222,6 @@ def main(args) -> int:
                                 "space and run the command again") from None
         raise UsageError(f"{target}: cannot write ({exc.strerror}); the verdict is in "
                          f"{folder}/gate.json") from None
-    if args.history_db:
-        from benchharness.history import add_results
-
-        n = add_results(args.history_db, folder, responses=(cfg.response,),
-                        select={cfg.factor: cfg.candidate})
-        from benchharness.numbers import plural
-
-        print(f"history: {plural(n, 'cell row')} of the candidate added to {args.history_db}")
-    return outcome.exit_code(cfg.inconclusive)
 
 
 def _check_writable(opt: str, target) -> None:
