@@ -129,38 +129,11 @@ def make_plan(exp: Experiment, seed: int | None = None,
         warm_c = warm_c[rng.permutation(len(warm_c))]
     rep_range = np.arange(first_replicate, first_replicate + reps, dtype=np.int64)
     if order == "listed":
-        c = np.repeat(all_cells, reps)
-        r = np.tile(rep_range, n_cells)
-        b = (r if order == "blocked" else np.ones_like(r)) if blocks_of_cell is None else \
-            np.array([_block(blocks_of_cell, int(ci), int(ri), order)
-                      for ci, ri in zip(c, r)], dtype=np.int64)
+        c, r, b = _listed_order(all_cells, reps, rep_range, blocks_of_cell, order)
     elif order == "blocked" or blocks_of_cell is not None:
-        cs, rs, bs = [], [], []
-        for rep in rep_range.tolist():
-            if blocks_of_cell is None:
-                perm = rng.permutation(n_cells)
-                cs.append(perm)
-                rs.append(np.full(n_cells, rep))
-                bs.append(np.full(n_cells, rep))
-            else:
-                # Each design block runs complete and in random order; blocks of a
-                # replicate follow one another in random order.
-                nb = max(blocks_of_cell) + 1
-                for blk in rng.permutation(nb):
-                    members = [ci for ci in range(n_cells) if blocks_of_cell[ci] == blk]
-                    for i in rng.permutation(len(members)):
-                        ci = members[int(i)]
-                        cs.append([ci])
-                        rs.append([rep])
-                        bs.append([_block(blocks_of_cell, ci, rep, order)])
-        c = np.concatenate(cs) if cs else all_cells[:0]
-        r = np.concatenate(rs) if rs else all_cells[:0]
-        b = np.concatenate(bs) if bs else all_cells[:0]
+        c, r, b = _blocked_order(rng, all_cells, rep_range, blocks_of_cell, order)
     else:
-        perm = rng.permutation(n_cells * reps)      # over (cell, replicate), replicate-major
-        c = perm % n_cells if n_cells else perm
-        r = rep_range[perm // n_cells] if n_cells else perm
-        b = np.ones_like(c)
+        c, r, b = _randomized_order(rng, n_cells, reps, rep_range)
 
     n_w = len(warm_c)
     runs = [_planned(first_run + pos, 0, 0, True, cell_list[ci], ci)
@@ -169,6 +142,66 @@ def make_plan(exp: Experiment, seed: int | None = None,
              for pos, (ci, ri, bi) in enumerate(zip(c.tolist(), r.tolist(), b.tolist()))]
     return Plan(factors=exp.factor_names, cells=n_cells, seed=int(seed), order=order,
                 runs=tuple(runs), info=dict(info or {}))
+
+
+def _listed_order(all_cells, reps, rep_range, blocks_of_cell, order):
+    """``(cells, replicates, blocks)`` in the file's order: each cell's replicates back
+    to back."""
+    import numpy as np
+
+    n_cells = len(all_cells)
+    c = np.repeat(all_cells, reps)
+    r = np.tile(rep_range, n_cells)
+    b = (r if order == "blocked" else np.ones_like(r)) if blocks_of_cell is None else \
+        np.array([_block(blocks_of_cell, int(ci), int(ri), order)
+                  for ci, ri in zip(c, r)], dtype=np.int64)
+    return c, r, b
+
+
+def _blocked_order(rng, all_cells, rep_range, blocks_of_cell, order):
+    """``(cells, replicates, blocks)`` run block by block: each replicate (or each design
+    block of it) complete and in random order."""
+    import numpy as np
+
+    n_cells = len(all_cells)
+    cs, rs, bs = [], [], []
+    for rep in rep_range.tolist():
+        if blocks_of_cell is None:
+            perm = rng.permutation(n_cells)
+            cs.append(perm)
+            rs.append(np.full(n_cells, rep))
+            bs.append(np.full(n_cells, rep))
+        else:
+            _design_blocks(rng, blocks_of_cell, n_cells, rep, order, cs, rs, bs)
+    c = np.concatenate(cs) if cs else all_cells[:0]
+    r = np.concatenate(rs) if rs else all_cells[:0]
+    b = np.concatenate(bs) if bs else all_cells[:0]
+    return c, r, b
+
+
+def _design_blocks(rng, blocks_of_cell, n_cells, rep, order, cs, rs, bs) -> None:
+    """One replicate of a design confounded with blocks, appended to ``cs, rs, bs``: each
+    design block runs complete and in random order; the blocks of a replicate follow one
+    another in random order."""
+    nb = max(blocks_of_cell) + 1
+    for blk in rng.permutation(nb):
+        members = [ci for ci in range(n_cells) if blocks_of_cell[ci] == blk]
+        for i in rng.permutation(len(members)):
+            ci = members[int(i)]
+            cs.append([ci])
+            rs.append([rep])
+            bs.append([_block(blocks_of_cell, ci, rep, order)])
+
+
+def _randomized_order(rng, n_cells, reps, rep_range):
+    """``(cells, replicates, blocks)`` in one random permutation over every timed run."""
+    import numpy as np
+
+    perm = rng.permutation(n_cells * reps)      # over (cell, replicate), replicate-major
+    c = perm % n_cells if n_cells else perm
+    r = rep_range[perm // n_cells] if n_cells else perm
+    b = np.ones_like(c)
+    return c, r, b
 
 
 def _planned(pos: int, block: int, replicate: int, warmup: bool, levels, cell: int) -> PlannedRun:
