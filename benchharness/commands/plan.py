@@ -147,6 +147,9 @@ def format_plan(exp, plan, show: int = 12) -> str:
     from benchharness.design.spec import DESIGN_INFO_KEYS, describe_info
 
     lines.extend(describe_info(plan.info))
+    from benchharness.design.exclude import describe_space
+
+    lines.extend(describe_space(exp))   # exclude: / only_when:
     for key, value in plan.info.items():
         if key not in DESIGN_INFO_KEYS and isinstance(value, (str, int, float)):
             lines.append(f"{key:<11} {value}")

@@ -25,7 +25,12 @@ def build_plan(exp, seed=None, **kwargs):
     _check_size(exp, choice, kwargs)
     info = dict(choice.info())
     info.update(kwargs.pop("info", None) or {})
-    return make_plan(exp, seed=seed, cells=choice.cells(),
+    cells = choice.cells()
+    if getattr(exp, "space", None) is not None:   # exclude: / only_when: (design.exclude)
+        from benchharness.design.exclude import space_cells
+
+        cells, info["space"] = space_cells(exp, choice)
+    return make_plan(exp, seed=seed, cells=cells,
                      blocks_of_cell=choice.blocks_of_cell(), info=info, **kwargs)
 
 
@@ -46,6 +51,10 @@ def _check_size(exp, choice, kwargs) -> int:
 
     cells = choice.cells()
     n_cells = len(cells) if cells is not None else exp.cells
+    if getattr(exp, "space", None) is not None:
+        from benchharness.design.exclude import space_cells
+
+        n_cells = len(space_cells(exp, choice)[0])
     reps = kwargs.get("replicates")
     if reps is None:
         rule = adaptive_rule(exp)

@@ -26,6 +26,7 @@ from typing import Mapping
 import yaml
 
 from benchharness.experiment import templating
+from benchharness.experiment.space import Space, parse_space
 from benchharness.errors import ExperimentError
 from benchharness.design.surface import expand_factors as expand_surface_factors
 from benchharness.experiment.yamlnodes import (
@@ -50,7 +51,8 @@ CORE_KEYS = ("experiment", "about", "command", "shell", "factors", "replicates",
 
 #: Sections validated by later capabilities; kept as raw YAML nodes.
 SECTION_KEYS = ("design", "gate", "choose", "roles", "compare", "metrics", "expect", "samples", "pin",
-                "nice", "clean_env", "pad_env", "aslr", "cold_cache", "perf", "host_check")
+                "nice", "clean_env", "pad_env", "aslr", "cold_cache", "perf", "host_check",
+                "exclude", "only_when")
 
 ORDERS = ("randomized", "blocked", "listed")
 
@@ -122,6 +124,8 @@ class Experiment:
     max_runs: int = 0
     #: ``{top-level key: (line, column)}`` of the file, for messages about a whole key.
     key_marks: Mapping[str, tuple[int, int]] = field(default_factory=dict)
+    #: excluded combinations and conditional factors (`benchharness.experiment.space`)
+    space: "Space | None" = None
 
     # -- convenience -------------------------------------------------------
     @property
@@ -135,7 +139,10 @@ class Experiment:
         raise KeyError(name)
 
     def levels_of(self, name: str) -> tuple[str, ...]:
-        return self.factor(name).labels
+        """The labels runs of factor ``name`` may carry: its levels, then ``-`` for a
+        conditional factor where it does not apply (`benchharness.experiment.space`)."""
+        labels = self.factor(name).labels
+        return labels if self.space is None else self.space.levels_in_runs(name, labels)
 
     @property
     def cells(self) -> int:
@@ -145,13 +152,19 @@ class Experiment:
         return n
 
     def lookup(self, levels: Mapping[str, str]):
-        """Template lookup for a cell given as factor → label."""
+        """Template lookup for a cell given as factor → label (a conditional factor that
+        does not apply renders empty, its named values too)."""
         table = self._level_values
         values = {}
         for name, by_label in table:
             v = by_label.get(levels[name])
             if v is not None:
                 values[name] = v
+        if self.space is not None:
+            off = self.space.off(levels)
+            if off:
+                levels = {k: ("" if k in off else v) for k, v in levels.items()}
+                values.update({k: _Empty() for k in off})
         return templating.level_lookup(levels, values)
 
     @property
@@ -167,6 +180,12 @@ class Experiment:
     # ``lookup``: `lookup(levels)` made once by a caller that renders several templates
     # of the same cell.
     def render_command(self, template: CommandTemplate, levels: Mapping[str, str], lookup=None):
+        if self.space is not None and not template.shell:
+            off = self.space.off(levels)
+            if off:   # an argument naming a factor that does not apply is left out whole
+                template = CommandTemplate(tuple(
+                    p for p in template.parts
+                    if not any(ph.factor in off for ph in templating.placeholders(p))))
         return template.render(lookup or self.lookup(levels))
 
     def render_env(self, levels: Mapping[str, str], lookup=None) -> dict[str, str]:
@@ -181,6 +200,13 @@ class Experiment:
     @classmethod
     def from_text(cls, text: str, path: str = "<string>") -> "Experiment":
         return parse_experiment(text, path)
+
+
+class _Empty(dict):
+    """Named values of a conditional factor where it does not apply: every one is empty."""
+
+    def __missing__(self, key):
+        return ""
 
 
 # ---------------------------------------------------------------------------
@@ -426,13 +452,15 @@ def parse_experiment(text: str, path: str = "<string>") -> Experiment:
     if shell:
         _check_shell_values(nodes, command, steps, factor_map)
     found_warnings = _unused_factor_warnings(nodes["factors"], factors, used, path)
+    space = parse_space(nodes, factors, path)   # exclude: / only_when: (experiment.space)
+    found_warnings += space.warnings if space is not None else []
 
     return Experiment(
         name=name, about=about, command=command, factors=factors, replicates=replicates,
         warmup=warmup, order=order, seed=seed, timeout_s=timeout_s, shell=shell, env=env,
         build=steps.get("build"), reset=steps.get("reset"), teardown=steps.get("teardown"),
         workdir=workdir, path=path, source_text=text, sections=sections,
-        warnings=tuple(found_warnings), max_runs=max_runs,
+        warnings=tuple(found_warnings), max_runs=max_runs, space=space,
         key_marks={k: (kn.start_mark.line + 1, kn.start_mark.column + 1)
                    for k, kn in keynodes.items()},
     )

@@ -1203,7 +1203,7 @@ def check_levels(folder: Path, exp, records) -> None:
     dropped, a factor added) would otherwise turn those runs into missing
     values without a word.
     """
-    known = {f.name: set(f.labels) for f in exp.factors}
+    known = {f.name: set(exp.levels_of(f.name)) for f in exp.factors}
     for r in records:
         lv = r["levels"]
         for f, labels in known.items():
