@@ -229,7 +229,7 @@ def simple_effects(fit: Fit, names, levels, anova_p: dict, choice, alpha,
     """
     out = []
     for t in fit.terms:
-        if t.is_block or len(t.factors) != 2:
+        if t.is_block or len(t.factors) != 2 or t.parts is not None:   # nested: own ratios
             continue
         p = anova_p.get(t.name)
         if p is None or p >= alpha:

@@ -60,6 +60,10 @@ def margin_estimates(fit: Fit, factors: tuple[int, ...]):
 def margin_rows(fit: Fit, factors: tuple[int, ...], combos=None):
     """Averaging rows L (G, p) for every combination of the levels of ``factors``
     (or for the given (G, k) ``combos``)."""
+    if fit.support is not None:   # cells missing by design: average over those that exist
+        from benchharness.analysis.incomplete import support_rows
+
+        return support_rows(fit, factors, combos)
     if combos is None:
         combos = level_combos([fit.sizes[f] for f in factors])
     combos = np.asarray(combos, dtype=np.int64).reshape(-1, len(factors))

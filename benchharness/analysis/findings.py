@@ -274,6 +274,10 @@ def derive(d: dict) -> list[dict]:
         return _cautions(d)[:1]   # every run the same: that is the whole finding
     out = _interaction_findings(rows, factors, comps, refs, alpha, conf)
     out += _main_findings(rows, factors, out, comps, d.get("effects") or [], refs, alpha, conf)
+    if d.get("incomplete"):   # nested terms ("level within codec"): analysis.incomplete
+        from benchharness.analysis.incomplete import findings as nested_findings
+
+        out += nested_findings(d)
     best = d.get("best")
     if best and best.get("cells"):
         out.append(_best_with_unrun(best, conf))

@@ -48,6 +48,13 @@ class Term:
     factors: tuple[int, ...]   # indices into the layout's factor list
     name: str
     is_block: bool = False
+    #: the factor products whose columns make up the term (default: ``factors`` alone); a
+    #: nested term ``b within a`` is made of ``b`` and ``a:b`` (`analysis.incomplete`)
+    parts: tuple[tuple[int, ...], ...] | None = None
+
+    @property
+    def products(self) -> tuple[tuple[int, ...], ...]:
+        return self.parts if self.parts is not None else (self.factors,)
 
 
 def model_terms(names, model="full", block_index=None) -> list[Term]:
@@ -102,10 +109,11 @@ def parameter_count(terms, sizes) -> int:
     """Columns of the cell design of ``terms``: 1 + the product of (levels - 1) per term."""
     p = 1
     for t in terms:
-        d = 1
-        for f in t.factors:
-            d *= max(int(sizes[f]) - 1, 0)
-        p += d
+        for part in t.products:
+            d = 1
+            for f in part:
+                d *= max(int(sizes[f]) - 1, 0)
+            p += d
     return p
 
 
@@ -228,11 +236,14 @@ def sum_contrasts(k: int) -> np.ndarray:
 
 def term_matrix(levels: np.ndarray, term: Term, sizes) -> np.ndarray:
     """Columns of ``term`` for cells whose level codes are the rows of ``levels``."""
-    m = np.ones((levels.shape[0], 1))
-    for f in term.factors:
-        c = sum_contrasts(sizes[f])[levels[:, f]]
-        m = (m[:, :, None] * c[:, None, :]).reshape(levels.shape[0], -1)
-    return m
+    out = []
+    for part in term.products:
+        m = np.ones((levels.shape[0], 1))
+        for f in part:
+            c = sum_contrasts(sizes[f])[levels[:, f]]
+            m = (m[:, :, None] * c[:, None, :]).reshape(levels.shape[0], -1)
+        out.append(m)
+    return out[0] if len(out) == 1 else np.hstack(out)
 
 
 def design(levels, terms, sizes):
@@ -307,6 +318,9 @@ class Fit:
     left_out: tuple[str, ...] = field(default=())   # terms confounded with earlier ones
     #: no residual variation (round-off only): nothing can be tested against the error
     exact: bool = False
+    #: the cells that exist, when some are missing by design: margins average over them
+    #: (`benchharness.analysis.incomplete.Support`); None: over every level combination
+    support: object = None
 
     @property
     def mse(self) -> float:
@@ -440,9 +454,12 @@ def _confounding(R, slices, terms, kept, dropped):
 
 def _full_df(t: Term, sizes) -> int:
     """Degrees of freedom of a term with every cell observed: the product of (levels - 1)."""
-    df_full = 1
-    for f in t.factors:
-        df_full *= sizes[f] - 1
+    df_full = 0
+    for part in t.products:
+        d = 1
+        for f in part:
+            d *= sizes[f] - 1
+        df_full += d
     return df_full
 
 

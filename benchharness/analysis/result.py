@@ -52,6 +52,8 @@ class Analysis:
     boxcox: Any = field(default=None, repr=False, compare=False)
     #: the role of every factor (setting, workload, environment), see benchharness.experiment.roles
     roles: dict | None = None
+    #: cells missing by design, nested factors, what is estimable (analysis.incomplete)
+    incomplete: dict | None = None
 
     @property
     def anova(self):
@@ -81,6 +83,7 @@ class Analysis:
             "art": self.art,
             "notes": list(self.notes),
             **({"fraction": self.fraction} if self.fraction is not None else {}),
+            **({"incomplete": self.incomplete} if self.incomplete is not None else {}),
             "roles": self.roles,
             "better": self.better,
             "best": self.best,

@@ -57,6 +57,7 @@ class Setup:
     fcells: Any           # cells of the factors alone
     limit: Any            # model.TermLimit
     n_cells: np.ndarray   # runs per layout cell
+    nested: Any = None    # nested factor index -> parent indices (analysis.incomplete)
 
 
 @dataclass(frozen=True)
@@ -114,6 +115,8 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
     refs = parse_reference(reference, lay.fnames, lay.flevels)
     ifit, lenth = interval_fit(fitted.fit, fraction, anova_rows)
     means, effects = estimates(ifit, lay, refs, scale.choice, alpha)
+    incomplete, effects = incomplete_part(setup, lay, prep, ifit, anova_rows, refs, scale,
+                                          alpha, effects, notes)
     comps = default_comparisons(methods, ifit, lay, refs, scale.choice, alpha, adjust,
                                 anova_p, anova_p_holm, lenth)
     comps += declared_comparisons(compare, methods, prep, ifit, lay, scale.choice, alpha,
@@ -121,6 +124,10 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
     failures = failures_of(prep, notes)
     roles = roles_of(prep.experiment, lay.fnames, lay.flevels)
     best = best_setting(ifit, lay, prep, roles, fdesign, scale, alpha, better)
+    if incomplete is not None and best:
+        from benchharness.analysis.incomplete import unmatched
+
+        notes += unmatched(ifit, lay, best["factors"], incomplete)
     resid = fitted.z - fitted.fit.fitted[setup.cells.row_cell]
     an = Analysis(
         response=prep.response, factors=tuple(lay.fnames),
@@ -132,7 +139,8 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
         counts=counts_of(prep, setup, fdesign, expected_cells, fitted.fit.df_resid),
         fraction=fraction, residuals=resid, fitted=fitted.fit.fitted[setup.cells.row_cell],
         studentized=studentized, position=prep.position, run=prep.run, fit=fitted.fit,
-        roles=roles, better=better, best=best, rows=prep.rows, boxcox=scale.boxcox)
+        roles=roles, better=better, best=best, rows=prep.rows, boxcox=scale.boxcox,
+        incomplete=incomplete)
     return replace(an, findings=tuple(fd.derive(an.to_dict())))
 
 
@@ -240,6 +248,7 @@ def default_model(model, fdesign, lay: Layout, n_rows: int, notes: list):
 def model_setup(lay: Layout, prep, model, fdesign, notes: list) -> Setup:
     """The terms to fit (the default model, a fraction's chains, the size limit) and cells."""
     from benchharness.analysis import fraction as fr
+    from benchharness.analysis import incomplete as inc
     from benchharness.analysis.cells import index_cells
     from benchharness.analysis.model import limit_terms, model_terms
 
@@ -252,6 +261,9 @@ def model_setup(lay: Layout, prep, model, fdesign, notes: list) -> Setup:
     cells = index_cells(lay.codes, lay.sizes)
     fcells = cells if lay.block_index is None else index_cells(lay.codes[: lay.block_index],
                                                                 lay.sizes[: lay.block_index])
+    nested = None if fdesign is not None else inc.find_nesting(lay.fnames, lay.flevels,
+                                                               fcells.levels, prep.experiment)
+    terms = inc.nest_terms(terms, lay.names, nested or {})   # "level within codec"
     limit = limit_terms(terms, lay.sizes, cells.count, n_rows)   # cost follows what is estimable
     if limit.message:
         terms = limit.terms
@@ -259,7 +271,7 @@ def model_setup(lay: Layout, prep, model, fdesign, notes: list) -> Setup:
         model = limit.order
     n_cells = np.bincount(cells.row_cell, minlength=cells.count).astype(float)
     return Setup(model=model, spec=str(spec), terms=terms, aliased_out=aliased_out,
-                 cells=cells, fcells=fcells, limit=limit, n_cells=n_cells)
+                 cells=cells, fcells=fcells, limit=limit, n_cells=n_cells, nested=nested or {})
 
 
 # ---- the scale --------------------------------------------------------------------------
@@ -314,6 +326,7 @@ def boxcox_profile(y, lay: Layout, setup: Setup, constant: bool, within_zero: bo
 
 def fit_on_scale(prep, setup: Setup, scale: Scale, ss_type, notes: list) -> Fitted:
     """Least squares on the chosen scale; zero variation is stated, never tested."""
+    from benchharness.analysis import incomplete as inc
     from benchharness.analysis import transform as tr
     from benchharness.analysis.cells import moments
     from benchharness.analysis.model import fit_model
@@ -323,6 +336,8 @@ def fit_on_scale(prep, setup: Setup, scale: Scale, ss_type, notes: list) -> Fitt
     mom = moments(setup.cells.row_cell, z, setup.cells.count, n=setup.n_cells)
     fit = fit_model(setup.cells, mom, setup.terms, ss_type)
     notes += fit.notes
+    if inc.is_incomplete(prep.experiment, setup.nested):
+        fit = inc.attach_support(fit, setup.fcells.levels, setup.nested, len(prep.levels))
     grand = float((mom.n * mom.mean).sum() / N)
     ss_total = float(mom.ss_within.sum() + (mom.n * (mom.mean - grand) ** 2).sum())
     no_variation = None
@@ -555,6 +570,10 @@ def cross_check(art, assumptions_ok, lay: Layout, setup: Setup, fitted: Fitted, 
 
     N = len(fitted.z)
     run_art = (art is True) or (art == "auto" and not assumptions_ok and N <= ART_AUTO_MAX_ROWS)
+    if run_art and setup.nested:
+        notes.append("the rank-based cross-check aligns crossed effects only; with a nested "
+                     "factor it is not run")
+        return None
     if run_art and fitted.fit.df_resid > 0 and not fitted.no_variation:
         rows = art_anova(lay.codes, lay.sizes, fitted.z, setup.terms, ss_type, alpha, anova_p,
                          fitted.fit.fitted[setup.cells.row_cell])
@@ -569,6 +588,33 @@ def cross_check(art, assumptions_ok, lay: Layout, setup: Setup, fitted: Fitted, 
         notes.append(f"assumptions fail, but with more than {ART_AUTO_MAX_ROWS:,} rows the "
                      "rank-based cross-check runs only on request (--art)")
     return None
+
+
+def incomplete_part(setup: Setup, lay: Layout, prep, fit, anova_rows, refs, scale: Scale,
+                    alpha, effects, notes: list):
+    """(analysis.json's ``incomplete`` or None, the effects): for cells missing by design or
+    a nested factor, what is estimable, and a nested factor's ratios within its parent in
+    place of its undefined overall ones (analysis.incomplete)."""
+    from benchharness.analysis import incomplete as inc
+
+    if fit.support is None:
+        return None, effects
+    d = inc.describe(lay, fit, setup.fcells, setup.nested, anova_rows, prep.experiment, alpha)
+    nested_terms = [t for t in setup.terms if t.parts is not None]
+    notes[:] = inc.clean_notes(notes, anova_rows, nested_terms)
+    d["terms"] = [dict(t, df_full=t["df"]) if t["term"] in {x.name for x in nested_terms}
+                  else t for t in d["terms"]]
+    if setup.nested or d["cells_planned"] == setup.fcells.count:   # missing by design
+        notes[:] = [n for n in notes if "cells have no ok runs" not in n]
+    notes.extend(d["statements"])
+    within = inc.within_ratios(fit, lay, setup.nested, refs, scale.choice, alpha)
+    d["within_ratios"] = within
+    shown = [dict(e, factor=f"{e['factor']} within "
+                  + ", ".join(f"{k}={v}" for k, v in e["within"].items()), nested=e["factor"])
+             for e in within]
+    nested_names = {lay.fnames[f] for f in setup.nested}
+    effects = [e for e in effects if e["factor"] not in nested_names] + shown
+    return d, effects
 
 
 # ---- effects and comparisons ------------------------------------------------------------
@@ -725,8 +771,14 @@ def failures_of(prep, notes: list) -> dict:
 
 def counts_of(prep, setup: Setup, fdesign, expected_cells, df_res) -> dict:
     """analysis.json's ``counts``."""
+    from benchharness.analysis.incomplete import planned_cells
+
+    planned = planned_cells(prep.experiment, prep.factors)   # exclude: / only_when:
+    if planned is None and setup.nested:    # a table with a nested factor: its cells are
+        planned = setup.fcells.count        # what its design can have, as far as is known
     return {"rows": len(prep.y), "cells": setup.fcells.count, "cells_expected": expected_cells,
-            **({"cells_planned": fdesign.n_cells} if fdesign is not None else {}),
+            **({"cells_planned": fdesign.n_cells} if fdesign is not None else
+               {"cells_planned": planned} if planned is not None else {}),
             "model_cells": setup.cells.count, "df_resid": df_res,
             "level_order": prep.order_source}
 

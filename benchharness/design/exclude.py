@@ -5,7 +5,8 @@ list of cells a plan runs: counts, order, blocking (each replicate a complete
 block of the cells that remain) and replicates then work on what remains, as
 for any other list of cells (`benchharness.design.plan.make_plan`).
 
-A two-level fraction or confounded blocks are built from the full 2^k grid:
+A two-level fraction, confounded blocks or a response-surface design choose
+their own cells from the full grid:
 with combinations missing their alias structure no longer holds, so the
 combination is refused with one located line rather than planned wrongly.
 """
@@ -17,13 +18,14 @@ from benchharness.experiment.space import enumerate_cells
 
 def space_cells(exp, choice=None) -> tuple[list[dict], dict]:
     """(cells that remain, in listed order; the facts ``plan --json`` shows)."""
-    if choice is not None and choice.changes_plan:
+    if choice is not None and (choice.changes_plan or choice.cells() is not None):
         from benchharness.errors import ExperimentError
 
         line, col = exp.key_marks.get("design", (None, None))
-        raise ExperimentError("a fractional or block-confounded 'design' cannot be combined "
-                              "with 'exclude' or 'only_when' (its aliases assume every "
-                              "combination of the full two-level grid); remove one of them",
+        raise ExperimentError("a fractional, block-confounded or response-surface 'design' "
+                              "cannot be combined with 'exclude' or 'only_when' (it chooses "
+                              "its own cells from the full grid, and its aliases or coded "
+                              "levels assume every one of them); remove one of the two",
                               path=exp.path, line=line, col=col)
     cached = exp.__dict__.get("_space_cells")
     if cached is None:

@@ -1,0 +1,518 @@
+"""Incomplete factorials: cells missing by design, conditional and nested factors.
+
+When some combinations of levels do not exist (``exclude:``), or a factor
+applies only under a condition (``only_when:``), or a factor's levels exist
+only within one level of another (nesting), the full crossed model has
+parameters no data can estimate. This module makes the analysis estimate what
+the data can, and say what it cannot:
+
+* **Nesting.** A conditional factor is nested within the factors of its
+  condition, and a factor whose every level occurs with only one level of
+  another is nested within it (Montgomery, *Design and Analysis of
+  Experiments*, ch. 14, the two-stage nested design). The nested factor has no
+  main-effect term of its own: its term is ``level within codec``, made of the
+  columns of ``level`` and ``codec:level`` (`nest_terms`), so it measures how
+  ``level`` matters inside each ``codec`` where it applies.
+* **The largest estimable hierarchical model.** The model is fitted on the
+  cells that exist; a term keeps the degrees of freedom those cells can
+  estimate. Type II sums of squares are then the model comparisons of each term
+  against the terms that do not contain it (Searle, *Linear Models for
+  Unbalanced Data*, 1987, ch. 4 and 9: the R( | ) reductions for data with
+  empty cells). `describe` says which terms are estimable in full, in part or
+  not at all.
+* **Margins over the cells that exist** (`Support`, `support_rows`). An
+  estimated marginal mean averages the model's cell means over the other
+  factors' combinations that exist for most levels of the margin, and over a
+  nested factor's own levels within its parent; a margin combination that
+  lacks some of those is not given a mean (so a ratio is given only where it is
+  defined, never extrapolated into a missing cell). The ratios of a nested
+  factor are given within each level of its parent (`within_ratios`).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+#: the word between a nested factor and its parents in a term name
+WITHIN = "within"
+
+
+@dataclass(frozen=True)
+class Support:
+    """The factor cells that exist (level codes, one row per cell) and the nesting."""
+
+    cells: np.ndarray                 # (C, nf) level codes of the observed factor cells
+    nested: dict                      # nested factor index -> tuple of parent indices
+    nf: int                           # number of factors (a block, if any, comes after)
+
+
+# ---- nesting ------------------------------------------------------------------------------
+
+def find_nesting(names, levels, fcell_levels: np.ndarray, experiment=None) -> dict:
+    """{nested factor index: parent indices}: conditional factors of the experiment, then
+    factors whose every observed level occurs with exactly one level of another factor
+    (and that have more levels than it, so they are not a relabelling of it)."""
+    out: dict[int, tuple[int, ...]] = {}
+    space = getattr(experiment, "space", None)
+    if space is not None:
+        for f, cond in space.conditions.items():
+            if f in names and all(p in names for p in cond.factors):
+                out[names.index(f)] = tuple(sorted(names.index(p) for p in cond.factors))
+    k = len(names)
+    marker = _marker()
+    for f in range(k):   # a factor whose runs carry `-` somewhere: conditional on a factor
+        if f in out or marker not in levels[f]:      # whose levels tell where it applies
+            continue
+        m = levels[f].index(marker)
+        off = fcell_levels[:, f] == m
+        for p in range(k):
+            if p != f and marker not in levels[p] and off.any() and (~off).any() and not (
+                    set(fcell_levels[off, p].tolist()) & set(fcell_levels[~off, p].tolist())):
+                out[f] = (p,)
+                break
+    for f in range(k):
+        if f in out or len(levels[f]) < 2:
+            continue
+        for p in range(k):
+            if p == f or p in out and f in out[p]:
+                continue
+            pairs = {(int(a), int(b)) for a, b in fcell_levels[:, [f, p]].tolist()}
+            f_levels = {a for a, _ in pairs}
+            p_levels = {b for _, b in pairs}
+            if len(p_levels) >= 2 and len(f_levels) > len(p_levels) \
+                    and len(pairs) == len(f_levels):
+                out[f] = (p,)
+                break
+    return out
+
+
+def nested_name(names, nested: dict, factors) -> str:
+    """``level within codec``, ``(level within codec):rows``: the term of ``factors``."""
+    fs = set(factors)
+    kids = [f for f in sorted(fs) if f in nested and set(nested[f]) <= fs]
+    used = set()
+    parts = []
+    for f in sorted(fs):
+        if f in used:
+            continue
+        if f in kids:
+            ps = nested[f]
+            parts.append((f, f"{names[f]} {WITHIN} " + ":".join(names[p] for p in ps)))
+            used |= {f, *ps}
+    rest = [f for f in sorted(fs) if f not in used]
+    if not parts:
+        return ":".join(names[f] for f in sorted(fs))
+    if not rest and len(parts) == 1:
+        return parts[0][1]
+    items = [(f, f"({text})") for f, text in parts] + [(f, names[f]) for f in rest]
+    return ":".join(text for _f, text in sorted(items))
+
+
+def closure(factors, nested: dict) -> tuple[int, ...]:
+    """A term's factors with the parents of every nested factor in it added."""
+    out = set(factors)
+    for f in list(out):
+        out |= set(nested.get(f, ()))
+    return tuple(sorted(out))
+
+
+def nest_terms(terms, names, nested: dict) -> list:
+    """The terms of a crossed model rewritten for nesting: each term becomes the term of its
+    closure (its factors and their parents); terms with the same closure merge into one,
+    made of every product of factors whose closure it is (so the column space is the same
+    as the crossed model's, divided among fewer terms)."""
+    from itertools import combinations
+
+    from benchharness.analysis.model import Term
+
+    if not nested:
+        return list(terms)
+    out: dict[tuple, object] = {}
+    for t in terms:
+        if t.is_block:
+            out[("block", t.factors)] = t
+            continue
+        c = closure(t.factors, nested)
+        if c in out:
+            continue
+        parts = tuple(sub for r in range(1, len(c) + 1) for sub in combinations(c, r)
+                      if closure(sub, nested) == c)
+        if parts == (c,):
+            out[c] = Term(c, ":".join(names[f] for f in c))
+        else:
+            out[c] = Term(c, nested_name(names, nested, c), parts=parts)
+    blocks = [t for k, t in out.items() if k[0] == "block"]
+    rest = sorted((t for k, t in out.items() if k[0] != "block"), key=lambda t: len(t.factors))
+    return blocks + rest
+
+
+# ---- margins over the cells that exist ------------------------------------------------------
+
+def support_rows(fit, factors, combos=None):
+    """Averaging rows L (G, p) of every combination of ``factors`` (or the given ``combos``)
+    over the cells that exist; NaN rows where a combination has no defined mean."""
+    from benchharness.analysis.effects import level_combos
+    from benchharness.analysis.model import design
+
+    sup: Support = fit.support
+    factors = tuple(factors)
+    if combos is None:
+        combos = level_combos([fit.sizes[f] for f in factors])
+    combos = np.asarray(combos, dtype=np.int64).reshape(-1, len(factors))
+    p = fit.X.shape[1]
+    L = np.full((len(combos), p), np.nan)
+    plan = margin_plan(sup, factors)
+    if plan is None:
+        return combos, L
+    index = {tuple(c): g for g, c in enumerate(plan["combos"])}
+    block_cols = [fit.slices[t.name] for t in fit.terms if t.is_block]
+    n_cols = len(fit.sizes)
+    for g, c in enumerate(combos.tolist()):
+        j = index.get(tuple(c))
+        if j is None or plan["cells"][j] is None:
+            continue
+        cells = plan["cells"][j]
+        lv = np.zeros((len(cells), n_cols), dtype=np.int64)
+        lv[:, : sup.nf] = cells
+        X, _ = design(lv, fit.terms, fit.sizes)
+        row = X.mean(axis=0)
+        for sl in block_cols:
+            row[sl] = 0.0        # sum-to-zero block columns average to zero over the blocks
+        L[g] = row
+    return combos, L
+
+
+def margin_plan(sup: Support, factors) -> dict | None:
+    """For each existing combination of ``factors``: the factor cells its mean averages over
+    (None where the combination lacks some of them), and what was left out, for the words."""
+    M = tuple(factors)
+    if any(f >= sup.nf for f in M):
+        return None
+    others = [f for f in range(sup.nf) if f not in M]
+    kids = [f for f in others if f in sup.nested and set(sup.nested[f]) <= set(M)]
+    cross = [f for f in others if f not in kids]
+    cells = sup.cells
+    keyM = [tuple(r) for r in cells[:, list(M)].tolist()]
+    keyX = [tuple(r) for r in cells[:, cross].tolist()]
+    keyK = [tuple(r) for r in cells[:, kids].tolist()]
+    present: dict[tuple, dict[tuple, set]] = {}
+    for m, x, k in zip(keyM, keyX, keyK):
+        present.setdefault(m, {}).setdefault(x, set()).add(k)
+    combos = sorted(present)
+    # cross combinations present for more than half of the margin's combinations
+    count: dict[tuple, int] = {}
+    for m in combos:
+        for x in present[m]:
+            count[x] = count.get(x, 0) + 1
+    common = {x for x, n in count.items() if 2 * n > len(combos)}
+    if not common:
+        common = set.intersection(*(set(present[m]) for m in combos)) if combos else set()
+    # a nested factor's levels: those every combination of its group (same parents) has
+    parent_pos = [j for j, f in enumerate(M) if any(f in sup.nested.get(kf, ()) for kf in kids)]
+    groups: dict[tuple, set] = {}
+    for m in combos:
+        if not common <= set(present[m]):
+            continue
+        gk = tuple(m[j] for j in parent_pos)
+        ks = set.intersection(*(present[m][x] for x in common)) if common else set()
+        groups[gk] = ks if gk not in groups else groups[gk] & ks
+    out_cells, lacking = [], []
+    for m in combos:
+        gk = tuple(m[j] for j in parent_pos)
+        if not common or not common <= set(present[m]) or not groups.get(gk):
+            out_cells.append(None)
+            lacking.append(m)
+            continue
+        rows = []
+        for x in sorted(common):
+            for k in sorted(groups[gk]):
+                r = np.zeros(sup.nf, dtype=np.int64)
+                r[list(M)] = m
+                r[cross] = x
+                r[kids] = k
+                rows.append(r)
+        out_cells.append(np.array(rows))
+    return {"combos": combos, "cells": out_cells, "lacking": lacking, "cross": cross,
+            "kids": kids, "common": sorted(common), "groups": groups}
+
+
+# ---- the fit, and what it can estimate ------------------------------------------------------
+
+def attach_support(fit, fcell_levels, nested: dict, nf: int):
+    """The fit with its `Support` (margins then average over the cells that exist)."""
+    return replace(fit, support=Support(cells=np.asarray(fcell_levels, dtype=np.int64),
+                                        nested=dict(nested), nf=nf))
+
+
+def is_incomplete(experiment, nested: dict) -> bool:
+    """Cells missing by design (the experiment's ``exclude:``/``only_when:``) or a nested
+    factor: margins then average over the cells that exist (`Support`). Cells missing from
+    a full grid for other reasons (failed runs) keep the crossed margins, which leave out
+    every mean that needs them."""
+    return bool(nested) or getattr(experiment, "space", None) is not None
+
+
+def planned_cells(experiment, names=None, what: str = "cells") -> int | None:
+    """How many cells the experiment planned (its space), or with ``what="combinations"``
+    how many its full grid has; None when it has no space."""
+    if getattr(experiment, "space", None) is None:
+        return None
+    from benchharness.design.exclude import space_cells
+
+    try:
+        _cells, info = space_cells(experiment)
+    except Exception:  # noqa: BLE001 - an experiment with a design of its own: unknown
+        return None
+    return int(info[what])
+
+
+def describe(lay, fit, fcells, nested: dict, anova_rows, experiment, alpha) -> dict:
+    """analysis.json's ``incomplete``: the nesting, the cells, each term's estimability, and
+    what cannot be said, as plain data with one sentence per item."""
+    names = lay.fnames
+    grid = planned_cells(experiment, what="combinations") or math.prod(lay.sizes[: lay.nf])
+    planned = planned_cells(experiment, names)
+    space = getattr(experiment, "space", None)
+    nest = {names[f]: [names[p] for p in ps] for f, ps in nested.items()}
+    why = {}
+    for f, ps in nest.items():
+        cond = space.conditions.get(f) if space is not None else None
+        marked = _marker() in lay.flevels[names.index(f)]
+        why[f] = (f"{f} applies only where {cond.text} (only_when)" if cond is not None else
+                  f"its runs carry {_marker()!r} (it does not apply) for some levels of "
+                  f"{', '.join(ps)} only" if marked else
+                  f"each level of {f} occurs with one level of {', '.join(ps)} only")
+    terms = []
+    for r in anova_rows:
+        if r.get("kind") != "effect":
+            continue
+        df, full = int(r.get("df") or 0), int(r.get("df_full") or 0)
+        state = "full" if df >= full else ("none" if df == 0 else "part")
+        terms.append({"term": r["term"], "df": df, "df_full": full, "estimable": state})
+    statements = []
+    for f, ps in nest.items():
+        statements.append(f"{f} is analysed within {', '.join(ps)} ({why[f]}): it has no main "
+                          f"effect of its own, and its ratios are given within each level of "
+                          f"{', '.join(ps)} where it applies; each level of {', '.join(ps)} is "
+                          f"compared averaged over its own levels of {f}"
+                          + _partial_levels(fit, lay, nested, names.index(f)))
+    if fcells.count < grid:
+        what = (f"{planned} cells planned of the {grid} combinations"
+                if planned is not None else f"{fcells.count} cells ran" if nested else
+                f"{fcells.count} of the {grid} combinations ran")
+        statements.append(f"{what}: each term is estimated from the cells that exist, Type II "
+                          "sums of squares by model comparison; means and ratios average over "
+                          "the combinations that exist, never over missing ones")
+    part = [t for t in terms if t["estimable"] == "part" and t["term"] not in
+            {r["term"] for r in anova_rows if WITHIN in r["term"]}]
+    none = [t for t in terms if t["estimable"] == "none"]
+    if part:
+        statements.append("estimable in part (the missing cells carry the rest): "
+                          + ", ".join(f"{t['term']} ({t['df']} of {t['df_full']} df)"
+                                      for t in part))
+    if none:
+        statements.append("not estimable from these cells: "
+                          + ", ".join(t["term"] for t in none))
+    return {"nested": nest, "why": why, "cells": int(fcells.count), "combinations": grid,
+            "cells_planned": planned, "terms": terms, "statements": statements}
+
+
+def _partial_levels(fit, lay, nested: dict, f: int) -> str:
+    """`` (codec=lzma over level 1, 6 only)``: parents whose mean averages over fewer levels
+    of the nested factor than ran with them (the others lack a combination)."""
+    plan = margin_plan(fit.support, nested[f])
+    if plan is None or f not in plan["kids"]:
+        return ""
+    names, levels = lay.fnames, lay.flevels
+    parts = []
+    for m, cells in zip(plan["combos"], plan["cells"]):
+        sel = np.all(fit.support.cells[:, list(nested[f])] == np.asarray(m), axis=1)
+        ran = sorted(set(fit.support.cells[sel, f].tolist()))
+        used = sorted({int(r[f]) for r in cells}) if cells is not None else []
+        if cells is not None and len(used) < len(ran):
+            where = ", ".join(f"{names[p]}={levels[p][c]}" for p, c in zip(nested[f], m))
+            parts.append(f"{where} over {names[f]} "
+                         + ", ".join(levels[f][c] for c in used) + " only, the levels it ran "
+                         "with every level of " + (", ".join(names[g] for g in plan["cross"])
+                                                   or "the other factors"))
+    return f" ({'; '.join(parts)})" if parts else ""
+
+
+def clean_notes(notes: list, anova_rows, nested_terms) -> list:
+    """Row notes of nested terms count the columns of a grid that does not exist: drop them."""
+    names = {t.name for t in nested_terms}
+    for r in anova_rows:
+        if r["term"] in names:
+            r["df_full"] = r["df"]
+            r["note"] = None
+    return [n for n in notes if not any(n.startswith(f"{t}: ") for t in names)]
+
+
+def pair_rows(fit, factors, ca, cb):
+    """Averaging rows of two combinations ``ca``, ``cb`` of ``factors`` over the other
+    factors' combinations that exist for both (None when there is none), and those
+    combinations (codes of the other factors), so a ratio is never extrapolated."""
+    from benchharness.analysis.model import design
+
+    sup: Support = fit.support
+    M = list(factors)
+    others = [f for f in range(sup.nf) if f not in M]
+    cells = sup.cells
+    have = {}
+    for c in (tuple(ca), tuple(cb)):
+        rows = cells[np.all(cells[:, M] == np.asarray(c), axis=1)]
+        have[c] = {tuple(r) for r in rows[:, others].tolist()}
+    common = sorted(have[tuple(ca)] & have[tuple(cb)])
+    if not common:
+        return None, None, []
+    block_cols = [fit.slices[t.name] for t in fit.terms if t.is_block]
+    out = []
+    for c in (ca, cb):
+        lv = np.zeros((len(common), len(fit.sizes)), dtype=np.int64)
+        lv[:, M] = c
+        lv[:, others] = np.asarray(common, dtype=np.int64).reshape(len(common), -1)
+        X, _ = design(lv, fit.terms, fit.sizes)
+        row = X.mean(axis=0)
+        for sl in block_cols:
+            row[sl] = 0.0
+        out.append(row)
+    return out[0], out[1], common
+
+
+def within_ratios(fit, lay, nested: dict, refs, choice, alpha) -> list[dict]:
+    """Each level of a nested factor against its reference, within each parent combination
+    where both exist, averaged over the other factors' combinations that exist for both
+    (``over`` names them when some are missing)."""
+    from benchharness.analysis.effects import contrast_result, ratio_wording, t_quantile
+
+    q = t_quantile(fit, alpha)
+    names, levels = lay.fnames, lay.flevels
+    sup: Support = fit.support
+    out = []
+    for f, ps in nested.items():
+        M = tuple(sorted((*ps, f)))
+        pos = {g: j for j, g in enumerate(M)}
+        present = {tuple(r) for r in sup.cells[:, list(M)].tolist()}
+        marker = levels[f].index(_marker()) if _marker() in levels[f] else -1
+        others = [g for g in range(sup.nf) if g not in M]
+        n_other = len({tuple(r) for r in sup.cells[:, others].tolist()})
+        for pc in sorted({tuple(c[pos[p]] for p in ps) for c in present}):
+            have = [j for j in range(len(levels[f])) if j != marker
+                    and _key(M, pos, ps, pc, f, j) in present]
+            if len(have) < 2:
+                continue
+            ref = refs.get(f, 0) if refs.get(f, 0) in have else have[0]
+            within = {names[p]: levels[p][pc[i]] for i, p in enumerate(ps)}
+            for j in have:
+                if j == ref:
+                    continue
+                la, lb, common = pair_rows(fit, M, _key(M, pos, ps, pc, f, j),
+                                           _key(M, pos, ps, pc, f, ref))
+                if la is None:
+                    continue
+                r = contrast_result(fit, la, lb, choice, q)
+                e = {"factor": names[f], "level": levels[f][j], "reference": levels[f][ref],
+                     "within": within, "ratio": r["ratio"], "lower": r["lower"],
+                     "upper": r["upper"], "estimable": r["estimable"]}
+                for k in ("difference", "difference_lower", "difference_upper", "approximate"):
+                    if k in r:
+                        e[k] = r[k]
+                if others and len(common) < n_other:
+                    e["over"] = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)}
+                                 for c in common]
+                where = ", ".join(f"{k}={v}" for k, v in within.items())
+                only = ""
+                if "over" in e:
+                    only = " (only " + "; ".join(", ".join(f"{k}={v}" for k, v in o.items())
+                                                for o in e["over"]) + ", where both ran)"
+                e["wording"] = f"within {where}{only}: " + ratio_wording(e, names[f])
+                e["where"] = where + only
+                out.append(e)
+    return out
+
+
+def unmatched(fit, lay, factors, incomplete: dict) -> list[str]:
+    """Sentences naming the combinations of ``factors`` left out of a comparison averaged
+    over the other factors, because they lack some of the combinations the others have."""
+    idx = tuple(lay.fnames.index(f) for f in factors if f in lay.fnames)
+    plan = margin_plan(fit.support, idx) if idx else None
+    if not plan or not plan["lacking"]:
+        return []
+    names, levels = lay.fnames, lay.flevels
+    cross = [names[g] for g in plan["cross"]]
+    shown = "; ".join(", ".join(f"{names[f]}={levels[f][c]}" for f, c in zip(idx, m))
+                      for m in plan["lacking"])
+    text = (f"{shown} not compared with the other settings averaged over "
+            f"{', '.join(cross) or 'the other factors'}: it lacks combinations the others "
+            "ran (excluded or missing); its cell means are in the table of means")
+    incomplete["not_compared"] = [{names[f]: levels[f][c] for f, c in zip(idx, m)}
+                                  for m in plan["lacking"]]
+    return [text]
+
+
+def _marker() -> str:
+    from benchharness.experiment.space import NOT_APPLIED
+
+    return NOT_APPLIED
+
+
+def _key(M, pos, ps, pc, f, j) -> tuple:
+    c = [0] * len(M)
+    for i, p in enumerate(ps):
+        c[pos[p]] = pc[i]
+    c[pos[f]] = j
+    return tuple(c)
+
+
+# ---- findings -------------------------------------------------------------------------------
+
+def findings(d: dict) -> list[dict]:
+    """Findings for nested terms (``level within codec``), which name no plain factor
+    product and so get no finding of the crossed kind: whether the nested factor matters
+    within its parent, with its ratios per parent level."""
+    from benchharness.analysis.findings import fmt_interval, fmt_p, fmt_ratio
+
+    inc = d.get("incomplete") or {}
+    if not inc.get("nested"):
+        return []
+    alpha = float(d.get("alpha") or (d.get("model") or {}).get("alpha") or 0.05)
+    out = []
+    for r in d.get("anova") or []:
+        if WITHIN not in str(r.get("term")) or r.get("kind") != "effect":
+            continue
+        f = str(r["term"]).split(f" {WITHIN} ")[0].strip("(")
+        p = r.get("p_holm", r.get("p"))
+        sig = p is not None and p < alpha
+        ratios = [e for e in inc.get("within_ratios") or [] if e["factor"] == f]
+        by_parent: dict[str, list[str]] = {}
+        for e in ratios:
+            where = e.get("where") or ", ".join(f"{k}={v}" for k, v in e["within"].items())
+            by_parent.setdefault(where, []).append(
+                f"{f}={e['level']} {fmt_ratio(e['ratio'])} {fmt_interval(e['lower'], e['upper'])}"
+                f" against {f}={e['reference']}" if e["ratio"] is not None else
+                f"{f}={e['level']} not estimable")
+        detail = "; ".join(f"within {w}: " + ", ".join(items) for w, items in by_parent.items())
+        crossed = str(r["term"]).startswith("(")   # (level within codec):rows
+        if p is None:
+            head = f"{r['term']}: untested ({r.get('note') or 'no error term'})"
+        elif crossed:
+            partner = str(r["term"]).split("):", 1)[-1]
+            head = (f"the effect of {f} within its parent "
+                    + ("depends" if sig else "does not depend detectably")
+                    + f" on {partner} ({r['term']}, {fmt_p(p)})")
+            detail = ""
+        elif sig:
+            head = f"{f} matters within {str(r['term']).split(f' {WITHIN} ')[1].rstrip(')')} " \
+                   f"({r['term']}, {fmt_p(p)})"
+        else:
+            head = f"{f} made no detectable difference within its parent ({r['term']}, " \
+                   f"{fmt_p(p)})"
+        out.append({"kind": "main", "terms": [r["term"]], "factors": [f],
+                    "significant": bool(sig), "ratio": None, "lower": None, "upper": None,
+                    "p": p, "p_raw": r.get("p"),
+                    "statement": head + (f": {detail}" if detail and sig else ""),
+                    "within": True})
+    return out
