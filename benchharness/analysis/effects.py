@@ -61,7 +61,7 @@ def margin_rows(fit: Fit, factors: tuple[int, ...], combos=None):
     """Averaging rows L (G, p) for every combination of the levels of ``factors``
     (or for the given (G, k) ``combos``)."""
     if fit.support is not None:   # cells missing by design: average over those that exist
-        from benchharness.analysis.incomplete import support_rows
+        from benchharness.analysis.support import support_rows
 
         return support_rows(fit, factors, combos)
     if combos is None:

@@ -20,7 +20,7 @@ the data can, and say what it cannot:
   Unbalanced Data*, 1987, ch. 4 and 9: the R( | ) reductions for data with
   empty cells). `describe` says which terms are estimable in full, in part or
   not at all.
-* **Margins over the cells that exist** (`Support`, `support_rows`). An
+* **Margins over the cells that exist** (`benchharness.analysis.support`). An
   estimated marginal mean averages the model's cell means over the other
   factors' combinations that exist for most levels of the margin, and over a
   nested factor's own levels within its parent; a margin combination that
@@ -32,21 +32,14 @@ the data can, and say what it cannot:
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import replace
 
 import numpy as np
 
+from benchharness.analysis.support import Support, margin_plan, pair_rows
+
 #: the word between a nested factor and its parents in a term name
 WITHIN = "within"
-
-
-@dataclass(frozen=True)
-class Support:
-    """The factor cells that exist (level codes, one row per cell) and the nesting."""
-
-    cells: np.ndarray                 # (C, nf) level codes of the observed factor cells
-    nested: dict                      # nested factor index -> tuple of parent indices
-    nf: int                           # number of factors (a block, if any, comes after)
 
 
 # ---- nesting ------------------------------------------------------------------------------
@@ -147,96 +140,6 @@ def nest_terms(terms, names, nested: dict) -> list:
     blocks = [t for k, t in out.items() if k[0] == "block"]
     rest = sorted((t for k, t in out.items() if k[0] != "block"), key=lambda t: len(t.factors))
     return blocks + rest
-
-
-# ---- margins over the cells that exist ------------------------------------------------------
-
-def support_rows(fit, factors, combos=None):
-    """Averaging rows L (G, p) of every combination of ``factors`` (or the given ``combos``)
-    over the cells that exist; NaN rows where a combination has no defined mean."""
-    from benchharness.analysis.effects import level_combos
-    from benchharness.analysis.model import design
-
-    sup: Support = fit.support
-    factors = tuple(factors)
-    if combos is None:
-        combos = level_combos([fit.sizes[f] for f in factors])
-    combos = np.asarray(combos, dtype=np.int64).reshape(-1, len(factors))
-    p = fit.X.shape[1]
-    L = np.full((len(combos), p), np.nan)
-    plan = margin_plan(sup, factors)
-    if plan is None:
-        return combos, L
-    index = {tuple(c): g for g, c in enumerate(plan["combos"])}
-    block_cols = [fit.slices[t.name] for t in fit.terms if t.is_block]
-    n_cols = len(fit.sizes)
-    for g, c in enumerate(combos.tolist()):
-        j = index.get(tuple(c))
-        if j is None or plan["cells"][j] is None:
-            continue
-        cells = plan["cells"][j]
-        lv = np.zeros((len(cells), n_cols), dtype=np.int64)
-        lv[:, : sup.nf] = cells
-        X, _ = design(lv, fit.terms, fit.sizes)
-        row = X.mean(axis=0)
-        for sl in block_cols:
-            row[sl] = 0.0        # sum-to-zero block columns average to zero over the blocks
-        L[g] = row
-    return combos, L
-
-
-def margin_plan(sup: Support, factors) -> dict | None:
-    """For each existing combination of ``factors``: the factor cells its mean averages over
-    (None where the combination lacks some of them), and what was left out, for the words."""
-    M = tuple(factors)
-    if any(f >= sup.nf for f in M):
-        return None
-    others = [f for f in range(sup.nf) if f not in M]
-    kids = [f for f in others if f in sup.nested and set(sup.nested[f]) <= set(M)]
-    cross = [f for f in others if f not in kids]
-    cells = sup.cells
-    keyM = [tuple(r) for r in cells[:, list(M)].tolist()]
-    keyX = [tuple(r) for r in cells[:, cross].tolist()]
-    keyK = [tuple(r) for r in cells[:, kids].tolist()]
-    present: dict[tuple, dict[tuple, set]] = {}
-    for m, x, k in zip(keyM, keyX, keyK):
-        present.setdefault(m, {}).setdefault(x, set()).add(k)
-    combos = sorted(present)
-    # cross combinations present for more than half of the margin's combinations
-    count: dict[tuple, int] = {}
-    for m in combos:
-        for x in present[m]:
-            count[x] = count.get(x, 0) + 1
-    common = {x for x, n in count.items() if 2 * n > len(combos)}
-    if not common:
-        common = set.intersection(*(set(present[m]) for m in combos)) if combos else set()
-    # a nested factor's levels: those every combination of its group (same parents) has
-    parent_pos = [j for j, f in enumerate(M) if any(f in sup.nested.get(kf, ()) for kf in kids)]
-    groups: dict[tuple, set] = {}
-    for m in combos:
-        if not common <= set(present[m]):
-            continue
-        gk = tuple(m[j] for j in parent_pos)
-        ks = set.intersection(*(present[m][x] for x in common)) if common else set()
-        groups[gk] = ks if gk not in groups else groups[gk] & ks
-    out_cells, lacking = [], []
-    for m in combos:
-        gk = tuple(m[j] for j in parent_pos)
-        if not common or not common <= set(present[m]) or not groups.get(gk):
-            out_cells.append(None)
-            lacking.append(m)
-            continue
-        rows = []
-        for x in sorted(common):
-            for k in sorted(groups[gk]):
-                r = np.zeros(sup.nf, dtype=np.int64)
-                r[list(M)] = m
-                r[cross] = x
-                r[kids] = k
-                rows.append(r)
-        out_cells.append(np.array(rows))
-    return {"combos": combos, "cells": out_cells, "lacking": lacking, "cross": cross,
-            "kids": kids, "common": sorted(common), "groups": groups}
 
 
 # ---- the fit, and what it can estimate ------------------------------------------------------
@@ -351,37 +254,6 @@ def clean_notes(notes: list, anova_rows, nested_terms) -> list:
     return [n for n in notes if not any(n.startswith(f"{t}: ") for t in names)]
 
 
-def pair_rows(fit, factors, ca, cb):
-    """Averaging rows of two combinations ``ca``, ``cb`` of ``factors`` over the other
-    factors' combinations that exist for both (None when there is none), and those
-    combinations (codes of the other factors), so a ratio is never extrapolated."""
-    from benchharness.analysis.model import design
-
-    sup: Support = fit.support
-    M = list(factors)
-    others = [f for f in range(sup.nf) if f not in M]
-    cells = sup.cells
-    have = {}
-    for c in (tuple(ca), tuple(cb)):
-        rows = cells[np.all(cells[:, M] == np.asarray(c), axis=1)]
-        have[c] = {tuple(r) for r in rows[:, others].tolist()}
-    common = sorted(have[tuple(ca)] & have[tuple(cb)])
-    if not common:
-        return None, None, []
-    block_cols = [fit.slices[t.name] for t in fit.terms if t.is_block]
-    out = []
-    for c in (ca, cb):
-        lv = np.zeros((len(common), len(fit.sizes)), dtype=np.int64)
-        lv[:, M] = c
-        lv[:, others] = np.asarray(common, dtype=np.int64).reshape(len(common), -1)
-        X, _ = design(lv, fit.terms, fit.sizes)
-        row = X.mean(axis=0)
-        for sl in block_cols:
-            row[sl] = 0.0
-        out.append(row)
-    return out[0], out[1], common
-
-
 def within_ratios(fit, lay, nested: dict, refs, choice, alpha) -> list[dict]:
     """Each level of a nested factor against its reference, within each parent combination
     where both exist, averaged over the other factors' combinations that exist for both
@@ -473,7 +345,15 @@ def findings(d: dict) -> list[dict]:
     """Findings for nested terms (``level within codec``), which name no plain factor
     product and so get no finding of the crossed kind: whether the nested factor matters
     within its parent, with its ratios per parent level."""
-    from benchharness.analysis.findings import fmt_interval, fmt_p, fmt_ratio
+    from benchharness.numbers import fmt_p as _p
+    from benchharness.numbers import fmt_ratio, fmt_ratio_interval
+
+    def fmt_interval(lo, hi):
+        return "[no interval]" if lo is None or hi is None else f"[{fmt_ratio_interval(lo, hi)}]"
+
+    def fmt_p(p):
+        text = _p(p)
+        return f"p {text}" if text.startswith("<") else f"p = {text}"
 
     inc = d.get("incomplete") or {}
     if not inc.get("nested"):
