@@ -137,3 +137,35 @@ def test_plan_says_what_was_removed_and_why(cli, tmp_path):
     r = cli("plan", str(f))
     assert r.returncode == 2 and "Traceback" not in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1 and ":8:5:" in r.stderr
+
+
+def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path):
+    """End to end on the simulated system (no processes): the excluded setting would be the
+    fastest where it ran, yet choose never picks it; analyze reads level within codec."""
+    from benchharness.analysis import analyze
+    from benchharness.choose import choose
+    from benchharness.execute.runner import run_experiment
+    from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+    from benchharness.results.journal import load_results
+
+    exp = exp_of(SPACE.replace("lzma, level: 9, rows: large", "lzma, level: 9, rows: large")
+                 + "roles: {workload: [rows]}\nreplicates: 3\nseed: 2\n")
+    truth = SimulatedModel(base_s=0.05, cv=0.03, effects={
+        "codec": {"none": 1.0, "zlib": 0.9, "lzma": 0.7},
+        "level": {"1": 1.0, "6": 1.1, "9": 0.5},
+        "rows": {"small": 1.0, "large": 2.0}})
+    run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(truth, seed=4))
+    res = load_results(tmp_path / "r")
+    ran = {(r["levels"]["codec"], r["levels"]["level"], r["levels"]["rows"]) for r in res.records}
+    assert ("lzma", "9", "large") not in ran and ("none", NOT_APPLIED, "large") in ran
+    an = analyze(res)
+    said = " | ".join(f["statement"] for f in an.findings)
+    assert "level matters within codec" in said and "rows matters" in said
+    ch = choose(res)
+    # lzma/9 (0.35 on small) is faster than zlib/9 (0.45) but never ran on large rows
+    assert ch.best == {"codec": "zlib", "level": "9"}
+    assert len(ch.candidates) == 6 and {"codec": "lzma", "level": "9"} not in [
+        c["setting"] for c in ch.candidates]
+    assert ch.unavailable == [{"setting": {"codec": "lzma", "level": "9"},
+                               "missing": [{"rows": "large"}]}]
+    assert any("lzma, level=9 is not a candidate" in r for r in ch.reasons)

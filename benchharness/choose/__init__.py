@@ -53,6 +53,8 @@ class Choice:
     runs_dropped: int = 0
     #: settings that were run but have no ok run with a value of the response
     without_runs: list = field(default_factory=list)
+    #: settings left out because the experiment excludes them in some condition (choose.space)
+    unavailable: list = field(default_factory=list)
     #: the role of every factor and where it came from (`benchharness.experiment.roles.Roles.to_dict`)
     roles: dict = field(default_factory=dict)
     #: the declared default (``prefer``), only the factors actually declared
@@ -84,6 +86,7 @@ class Choice:
             "runs_used": self.runs_used,
             "runs_dropped": self.runs_dropped,
             "without_runs": [dict(w) for w in self.without_runs],
+            "unavailable": [dict(u) for u in self.unavailable],
             "roles": dict(self.roles),
             "declared_default": dict(self.declared_default),
             "limits": [dict(x) for x in self.limits],
@@ -267,6 +270,9 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     orders = level_orders(df[df["status"].astype(str) == "ok"] if "status" in df.columns else df,
                           control + across, experiment)
 
+    from benchharness.choose.space import drop_unavailable
+
+    df, unavailable = drop_unavailable(df, experiment, control, across, response)  # exclude:
     fits = _Fits(df, data, experiment, response, scale, control, across, directions, orders,
                  residual, block)
     full = fits.first()
@@ -281,7 +287,23 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
 
     j = _judge(names, full, main, default, declared, confidence, eligible, dominated_by,
                pareto_idx, also, ask, limit_results)
-    return _choice(j, ask, role_info, responses_info, fits.scale_reasons.get(response, ""))
+    choice = _choice(j, ask, role_info, responses_info, fits.scale_reasons.get(response, ""))
+    return _with_unavailable(choice, unavailable, len(_role_reasons(role_info, names,
+                                                                     ask.across_given)))
+
+
+def _with_unavailable(choice: Choice, unavailable, after: int) -> Choice:
+    """The choice with the settings an exclusion kept out (`choose.space`), said after the
+    roles."""
+    if not unavailable:
+        return choice
+    from dataclasses import replace
+
+    from benchharness.choose.space import unavailable_reasons
+
+    reasons = list(choice.reasons)
+    reasons[after:after] = unavailable_reasons(unavailable)
+    return replace(choice, unavailable=list(unavailable), reasons=reasons)
 
 
 def _judge(names, full, main, default, declared, confidence, eligible, dominated_by,
