@@ -169,3 +169,30 @@ def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path):
     assert ch.unavailable == [{"setting": {"codec": "lzma", "level": "9"},
                                "missing": [{"rows": "large"}]}]
     assert any("lzma, level=9 is not a candidate" in r for r in ch.reasons)
+
+
+def test_the_gate_compares_builds_on_the_workloads_that_exist():
+    from benchharness.gate.config import gate_settings
+    from benchharness.gate.session import workloads_of
+
+    base = """\
+experiment: g
+command: [./app, "{build}", "--level={level}", "{rows}"]
+factors:
+  build: [old, new]
+  codec: [none, zlib]
+  level: [1, 9]
+  rows: [small, large]
+only_when:
+  level: {codec: zlib}
+gate: {factor: build, baseline: old}
+"""
+    exp = parse_experiment(base + "exclude:\n  - {codec: zlib, level: 9, rows: large}\n", "g.yaml")
+    gate_settings(exp)
+    assert sorted(workloads_of(exp, "build")) == [
+        "codec=none level=- rows=large", "codec=none level=- rows=small",
+        "codec=zlib level=1 rows=large", "codec=zlib level=1 rows=small",
+        "codec=zlib level=9 rows=small"]
+    exp = parse_experiment(base + "exclude:\n  - {build: new, rows: large}\n", "g.yaml")
+    with pytest.raises(ExperimentError, match=r"g\.yaml:10:16: 'gate: factor' 'build' is named"):
+        gate_settings(exp)

@@ -106,6 +106,12 @@ def _builds(exp, items) -> tuple[str, str, str]:
     if factor not in exp.factor_names:
         raise Y.node_error(items["factor"], f"'gate: factor' {factor!r} is not a factor of the "
                            f"experiment; factors: {', '.join(exp.factor_names)}")
+    space = getattr(exp, "space", None)
+    if space is not None and (factor in space.conditions
+                              or any(factor in r.match.factors for r in space.rules)):
+        raise Y.node_error(items["factor"], f"'gate: factor' {factor!r} is named by 'exclude' or "
+                           "'only_when': the gate compares its baseline and candidate on every "
+                           "workload, so both must exist on each; exclude other factors only")
     levels = exp.levels_of(factor)
     baseline = Y.scalar_text(items["baseline"], "'gate: baseline'")
     if baseline not in levels:

@@ -72,7 +72,12 @@ def workloads_of(exp, factor: str) -> dict[str, dict[str, str]]:
     if not others:
         return {"all": {}}
     out = {}
-    for combo in itertools.product(*[exp.levels_of(f) for f in others]):
+    combos = itertools.product(*[exp.levels_of(f) for f in others])
+    if getattr(exp, "space", None) is not None:    # exclude: / only_when: (design.exclude)
+        from benchharness.design.exclude import space_cells
+
+        combos = dict.fromkeys(tuple(c[f] for f in others) for c in space_cells(exp)[0])
+    for combo in combos:
         lv = dict(zip(others, combo))
         out[" ".join(f"{k}={v}" for k, v in lv.items())] = lv
     return out
@@ -134,6 +139,11 @@ def _all_cells(exp):
     import itertools
 
     names = exp.factor_names
+    if getattr(exp, "space", None) is not None:    # the cells that exist (design.exclude)
+        from benchharness.design.exclude import space_cells
+
+        yield from space_cells(exp)[0]
+        return
     for combo in itertools.product(*[exp.levels_of(f) for f in names]):
         yield dict(zip(names, combo))
 
