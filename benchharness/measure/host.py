@@ -417,9 +417,15 @@ def check_host(facts: dict | None = None, busy_interval_s: float = 0.1,
     `BusySampler` started earlier (its wait then overlaps the caller's work).
     """
     facts = facts or collect_facts()
+    return (_competing_work(facts, busy_interval_s, busy_sampler) + _clock_warnings()
+            + _memory_warnings(facts) + _power_and_guest_warnings())
+
+
+def _competing_work(facts: dict, busy_interval_s: float,
+                    busy_sampler: BusySampler | None) -> list[dict]:
+    """Other work on the machine: a high load average, processes busy right now."""
     out: list[dict] = []
     ncpu = facts.get("logical_cores") or os.cpu_count() or 1
-
     load = facts.get("load_average_start") or load_average()
     if load is not None and load[0] / ncpu > LOAD_PER_CPU_WARN:
         out.append(_warning(
@@ -437,7 +443,12 @@ def check_host(facts: dict | None = None, busy_interval_s: float = 0.1,
             "busy_processes", "warning", f"busy processes: {top}",
             "stop or pause these processes (kill -STOP PID, resume later with kill -CONT PID) "
             "or pin the benchmark to other CPUs with `pin:`"))
+    return out
 
+
+def _clock_warnings() -> list[dict]:
+    """What moves the clock speed: the frequency governor, turbo/boost, thermal throttling."""
+    out: list[dict] = []
     govs = governors()
     if govs is None:
         out.append(_warning(
@@ -476,7 +487,12 @@ def check_host(facts: dict | None = None, busy_interval_s: float = 0.1,
             "during a run slows it unpredictably",
             "improve cooling, lower the machine's other load, and compare host.json counters "
             "before and after the run (the runner records them)"))
+    return out
 
+
+def _memory_warnings(facts: dict) -> list[dict]:
+    """Little memory available, or tasks stalled waiting for memory (pressure stall info)."""
+    out: list[dict] = []
     total = facts.get("memory_bytes") or 0
     avail = facts.get("memory_available_bytes")
     if total and avail is not None and avail / total < MEMORY_AVAILABLE_WARN:
@@ -492,7 +508,12 @@ def check_host(facts: dict | None = None, busy_interval_s: float = 0.1,
             f"tasks stalled on memory {psi['some']['avg10']:.1f}% of the last 10 s "
             "(/proc/pressure/memory)",
             "free memory (stop other jobs) before benchmarking"))
+    return out
 
+
+def _power_and_guest_warnings() -> list[dict]:
+    """Running on battery, and running as a guest under virtualization."""
+    out: list[dict] = []
     bat = battery()
     if bat is not None and bat.get("plugged_in") is False:
         out.append(_warning(
