@@ -87,66 +87,90 @@ def parse_metrics(node, factor_names=(), reserved=None) -> MetricsConfig:
 
     if reserved is None:
         from benchharness.experiment.file import RESERVED_COLUMNS as reserved
-    out = []
-    for name, knode, vnode in yn.mapping_items(node, "'metrics'"):
-        if not _NAME.match(name):
-            raise yn.node_error(knode, f"metric name {name!r} must be letters, digits and _ "
-                                       "(it becomes a column name), e.g. throughput_rps")
-        if name in reserved or name in factor_names:
-            what = "a factor" if name in factor_names else "a runs.csv column"
-            raise yn.node_error(knode, f"metric name {name!r} is already {what}; pick another "
-                                       "name")
-        what = f"metric {name!r}"
-        f = yn.expect_mapping(vnode, what, {"pattern", "from", "json", "file", "unit", "better"})
-        if "better" not in f:
-            raise yn.node_error(vnode, f"{what} needs `better: lower` or `better: higher` "
-                                       "(which direction is an improvement)")
-        better = yn.scalar_text(f["better"], f"{what}: better")
-        if better not in ("lower", "higher"):
-            raise yn.node_error(f["better"], f"{what}: better is {better!r}; use lower or higher")
-        unit = "" if yn.is_null(f.get("unit")) else yn.scalar_text(f["unit"], f"{what}: unit")
-        has = [k for k in ("pattern", "json", "file") if k in f]
-        if "pattern" in f and ("json" in f or "file" in f):
-            raise yn.node_error(vnode, f"{what} has both pattern and json/file; a metric reads "
-                                       "one source")
-        if not has:
-            raise yn.node_error(vnode, f"{what} needs a source: pattern: REGEX (one group), "
-                                       "json: KEY.PATH (last JSON line of stdout), or file: PATH "
-                                       "with json: KEY.PATH")
-        if "from" in f and "pattern" not in f:
-            raise yn.node_error(f["from"], f"{what}: from applies to pattern only")
-        if "pattern" in f:
-            text = yn.as_str(f["pattern"], f"{what}: pattern")
-            try:
-                rx = re.compile(text, re.MULTILINE)
-            except re.error as exc:
-                raise yn.node_error(f["pattern"], f"{what}: pattern is not a valid regular "
-                                                  f"expression ({exc})") from None
-            if rx.groups != 1:
-                raise yn.node_error(f["pattern"], f"{what}: pattern must have exactly one "
-                                                  f"capture group (it has {rx.groups}), e.g. "
-                                                  "'rate ([0-9.]+)'; use (?:...) for others")
-            stream = "stdout"
-            if "from" in f:
-                stream = yn.scalar_text(f["from"], f"{what}: from")
-                if stream not in ("stdout", "stderr"):
-                    raise yn.node_error(f["from"], f"{what}: from is {stream!r}; use stdout or "
-                                                   "stderr")
-            out.append(Metric(name, unit, better, "pattern", pattern=rx, stream=stream))
-            continue
-        if "file" in f and "json" not in f:
-            raise yn.node_error(vnode, f"{what}: file needs json: KEY.PATH naming the value "
-                                       "inside the file")
-        key = yn.as_str(f["json"], f"{what}: json")
-        if any(not part for part in key.split(".")):
-            raise yn.node_error(f["json"], f"{what}: json key path {key!r} has an empty part; "
-                                           "write e.g. latency.p99_ms")
-        if "file" in f:
-            tmpl = yn.as_str(f["file"], f"{what}: file")
-            out.append(Metric(name, unit, better, "file", key=key, file=tmpl))
-        else:
-            out.append(Metric(name, unit, better, "json", key=key))
-    return MetricsConfig(tuple(out))
+    return MetricsConfig(tuple(_parse_metric(name, knode, vnode, factor_names, reserved)
+                               for name, knode, vnode in yn.mapping_items(node, "'metrics'")))
+
+
+def _parse_metric(name: str, knode, vnode, factor_names, reserved) -> Metric:
+    """One metric of the section: its name, direction, unit and source (pattern, json or file)."""
+    from benchharness.experiment import yamlnodes as yn
+
+    _check_metric_name(name, knode, factor_names, reserved)
+    what = f"metric {name!r}"
+    f = yn.expect_mapping(vnode, what, {"pattern", "from", "json", "file", "unit", "better"})
+    if "better" not in f:
+        raise yn.node_error(vnode, f"{what} needs `better: lower` or `better: higher` "
+                                   "(which direction is an improvement)")
+    better = yn.scalar_text(f["better"], f"{what}: better")
+    if better not in ("lower", "higher"):
+        raise yn.node_error(f["better"], f"{what}: better is {better!r}; use lower or higher")
+    unit = "" if yn.is_null(f.get("unit")) else yn.scalar_text(f["unit"], f"{what}: unit")
+    has = [k for k in ("pattern", "json", "file") if k in f]
+    if "pattern" in f and ("json" in f or "file" in f):
+        raise yn.node_error(vnode, f"{what} has both pattern and json/file; a metric reads "
+                                   "one source")
+    if not has:
+        raise yn.node_error(vnode, f"{what} needs a source: pattern: REGEX (one group), "
+                                   "json: KEY.PATH (last JSON line of stdout), or file: PATH "
+                                   "with json: KEY.PATH")
+    if "from" in f and "pattern" not in f:
+        raise yn.node_error(f["from"], f"{what}: from applies to pattern only")
+    if "pattern" in f:
+        return _pattern_metric(name, unit, better, f, what)
+    return _json_metric(name, unit, better, f, vnode, what)
+
+
+def _check_metric_name(name: str, knode, factor_names, reserved) -> None:
+    """A metric's name becomes a runs.csv column: a plain word, neither a factor nor a column."""
+    from benchharness.experiment import yamlnodes as yn
+
+    if not _NAME.match(name):
+        raise yn.node_error(knode, f"metric name {name!r} must be letters, digits and _ "
+                                   "(it becomes a column name), e.g. throughput_rps")
+    if name in reserved or name in factor_names:
+        what = "a factor" if name in factor_names else "a runs.csv column"
+        raise yn.node_error(knode, f"metric name {name!r} is already {what}; pick another "
+                                   "name")
+
+
+def _pattern_metric(name: str, unit: str, better: str, f: dict, what: str) -> Metric:
+    """A metric read by a regular expression with one group from stdout or stderr."""
+    from benchharness.experiment import yamlnodes as yn
+
+    text = yn.as_str(f["pattern"], f"{what}: pattern")
+    try:
+        rx = re.compile(text, re.MULTILINE)
+    except re.error as exc:
+        raise yn.node_error(f["pattern"], f"{what}: pattern is not a valid regular "
+                                          f"expression ({exc})") from None
+    if rx.groups != 1:
+        raise yn.node_error(f["pattern"], f"{what}: pattern must have exactly one "
+                                          f"capture group (it has {rx.groups}), e.g. "
+                                          "'rate ([0-9.]+)'; use (?:...) for others")
+    stream = "stdout"
+    if "from" in f:
+        stream = yn.scalar_text(f["from"], f"{what}: from")
+        if stream not in ("stdout", "stderr"):
+            raise yn.node_error(f["from"], f"{what}: from is {stream!r}; use stdout or "
+                                           "stderr")
+    return Metric(name, unit, better, "pattern", pattern=rx, stream=stream)
+
+
+def _json_metric(name: str, unit: str, better: str, f: dict, vnode, what: str) -> Metric:
+    """A metric read by a key path from stdout's last JSON line, or from a JSON file."""
+    from benchharness.experiment import yamlnodes as yn
+
+    if "file" in f and "json" not in f:
+        raise yn.node_error(vnode, f"{what}: file needs json: KEY.PATH naming the value "
+                                   "inside the file")
+    key = yn.as_str(f["json"], f"{what}: json")
+    if any(not part for part in key.split(".")):
+        raise yn.node_error(f["json"], f"{what}: json key path {key!r} has an empty part; "
+                                       "write e.g. latency.p99_ms")
+    if "file" in f:
+        tmpl = yn.as_str(f["file"], f"{what}: file")
+        return Metric(name, unit, better, "file", key=key, file=tmpl)
+    return Metric(name, unit, better, "json", key=key)
 
 
 def _number(v, what: str) -> tuple[float | None, str]:
