@@ -127,51 +127,14 @@ def extract_samples(cfg: SamplesConfig, stdout: bytes | str, stderr: bytes | str
     """Per-iteration times in seconds, and a reason when something was off."""
     raw = stdout if cfg.stream == "stdout" else stderr
     text = raw.decode("utf-8", "replace") if isinstance(raw, bytes) else (raw or "")
-    out: list[float] = []
-    bad = 0
     if cfg.format == "lines":
-        for line in text.splitlines():
-            line = line.strip()
-            if not line:
-                continue
-            f = _number(line)
-            if f is None:
-                # non-numeric lines are other output; only count numeric-looking junk
-                if line[:1].isdigit() or line[:1] in "+-.":
-                    bad += 1
-                continue
-            out.append(f)
+        out, bad = _line_samples(text)
     elif cfg.format == "jsonl":
-        for line in text.splitlines():
-            line = line.strip()
-            if not line.startswith("{"):
-                continue
-            try:
-                obj = json.loads(line)
-                v = key_path(obj, cfg.key)
-            except (ValueError, KeyError):
-                continue
-            f = _number(v)
-            if f is None:
-                bad += 1
-            else:
-                out.append(f)
+        out, bad = _jsonl_samples(text, cfg.key)
     else:
-        obj = last_json_line(text)
-        if obj is None:
-            return [], f"no JSON line on {cfg.stream} to read samples from"
-        try:
-            v = key_path(obj, cfg.key)
-        except KeyError as exc:
-            return [], f"samples: {exc.args[0]} in the last JSON line of {cfg.stream}"
-        if not isinstance(v, list):
-            return [], f"samples: {cfg.key!r} in the last JSON line is not a list"
-        for item in v:
-            f = _number(item)
-            if f is None:
-                bad += 1
-            else:
-                out.append(f)
+        out, bad, err = _json_list_samples(text, cfg)
+        if err:
+            return [], err
     reasons = []
     if not out:
         reasons.append(f"no per-iteration samples found on {cfg.stream} (format {cfg.format})")
@@ -182,6 +145,72 @@ def extract_samples(cfg: SamplesConfig, stdout: bytes | str, stderr: bytes | str
     if truncated and cfg.format != "json":
         reasons.append(f"{cfg.stream} was longer than the kept tail; early samples are lost")
     return [f * cfg.scale for f in out], "; ".join(reasons)
+
+
+def _line_samples(text: str) -> tuple[list[float], int]:
+    """(numbers, count of bad ones) of format ``lines``: one number per line.
+
+    Lines that are not numbers are the program's other output; only lines that
+    look like a number but are not one (``1.2.3``, ``nan``...) count as bad.
+    """
+    out: list[float] = []
+    bad = 0
+    for line in text.splitlines():
+        line = line.strip()
+        if not line:
+            continue
+        f = _number(line)
+        if f is None:
+            # non-numeric lines are other output; only count numeric-looking junk
+            if line[:1].isdigit() or line[:1] in "+-.":
+                bad += 1
+            continue
+        out.append(f)
+    return out, bad
+
+
+def _jsonl_samples(text: str, key: str) -> tuple[list[float], int]:
+    """(numbers, count of bad ones) of format ``jsonl``: ``key`` of each JSON object line."""
+    out: list[float] = []
+    bad = 0
+    for line in text.splitlines():
+        line = line.strip()
+        if not line.startswith("{"):
+            continue
+        try:
+            obj = json.loads(line)
+            v = key_path(obj, key)
+        except (ValueError, KeyError):
+            continue
+        f = _number(v)
+        if f is None:
+            bad += 1
+        else:
+            out.append(f)
+    return out, bad
+
+
+def _json_list_samples(text: str, cfg: SamplesConfig) -> tuple[list[float], int, str]:
+    """(numbers, count of bad ones, error) of format ``json``: a list under ``key`` in the
+    last JSON line; the error says why no list could be read (else it is empty)."""
+    obj = last_json_line(text)
+    if obj is None:
+        return [], 0, f"no JSON line on {cfg.stream} to read samples from"
+    try:
+        v = key_path(obj, cfg.key)
+    except KeyError as exc:
+        return [], 0, f"samples: {exc.args[0]} in the last JSON line of {cfg.stream}"
+    if not isinstance(v, list):
+        return [], 0, f"samples: {cfg.key!r} in the last JSON line is not a list"
+    out: list[float] = []
+    bad = 0
+    for item in v:
+        f = _number(item)
+        if f is None:
+            bad += 1
+        else:
+            out.append(f)
+    return out, bad, ""
 
 
 def analyse_run(samples_s: list[float], settings=None) -> tuple[dict, dict]:
