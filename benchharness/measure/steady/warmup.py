@@ -239,6 +239,25 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
         return WarmupResult(n, TOO_SHORT, None, None, None, 0, (), (), 0,
                             reason=f"{n} iterations; at least {s.min_iterations} are needed "
                                    "to tell warm-up from steady state", settings=s)
+    z, floor, spikes = _search_scale(y, s)
+    changepoints, segments = _segments(y, z, floor, s)
+    last = segments[-1]
+    final = max(s.min_final, int(math.ceil(s.final_fraction * n)))
+    if len(segments) > 1 and last.start > n - final:
+        return WarmupResult(n, NEVER_STEADY, None, None, None, 0, changepoints, segments,
+                            spikes, reason=f"the mean still changes at iteration {last.start} "
+                            f"of {n} (within the last {final})", settings=s)
+    drift = _drift(y[last.start:last.end], s)
+    if drift:
+        return WarmupResult(n, NEVER_STEADY, None, None, None, 0, changepoints,
+                            segments, spikes, reason=drift, settings=s)
+    return WarmupResult(n, _shape(segments, s), last.start, last.mean_s, last.sd_s,
+                        last.end - last.start, changepoints, segments, spikes, settings=s)
+
+
+def _search_scale(y: np.ndarray, s: WarmupSettings) -> tuple[np.ndarray, float, int]:
+    """(series to search, its variance floor, spikes removed): the log of the times when
+    they are all positive and ``use_log`` is set, else the times; despiked when asked."""
     positive = bool(np.all(y > 0))
     if s.use_log and positive:
         z = np.log(y)
@@ -249,6 +268,15 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
     spikes = 0
     if s.despike:
         z, spikes = despike(z)
+    return z, floor, spikes
+
+
+def _segments(y: np.ndarray, z: np.ndarray, floor: float,
+              s: WarmupSettings) -> tuple[tuple[int, ...], tuple[Segment, ...]]:
+    """(changepoints, segments): PELT's changes in the mean (Killick et al. 2012) on ``z``,
+    neighbours at the same level merged, the steady state's start moved back over a warm-up
+    too short for PELT to split off."""
+    n = int(y.size)
     # Long series: PELT's cost grows towards n^2 when there are few changes, so
     # beyond `max_points` the search runs on means of consecutive blocks of k
     # iterations (changepoints are then known to within k iterations).
@@ -272,22 +300,14 @@ def classify(samples_s, settings: WarmupSettings | None = None) -> WarmupResult:
             merged.append(cur)
     if len(merged) > 1:
         merged[-2:] = _short_head(merged[-2], merged[-1], z, s.min_size, make)
-    segments = tuple(merged)
+    return changepoints, tuple(merged)
+
+
+def _shape(segments: tuple[Segment, ...], s: WarmupSettings) -> str:
+    """Steady from the start, or faster/slower before the steady state (the last segment)."""
     last = segments[-1]
-    final = max(s.min_final, int(math.ceil(s.final_fraction * n)))
-    if len(segments) > 1 and last.start > n - final:
-        return WarmupResult(n, NEVER_STEADY, None, None, None, 0, changepoints, segments,
-                            spikes, reason=f"the mean still changes at iteration {last.start} "
-                            f"of {n} (within the last {final})", settings=s)
-    drift = _drift(y[last.start:last.end], s)
-    if drift:
-        return WarmupResult(n, NEVER_STEADY, None, None, None, 0, changepoints,
-                            segments, spikes, reason=drift, settings=s)
     if len(segments) == 1:
-        shape = STEADY_FROM_START
-    else:
-        faster = [g for g in segments[:-1]
-                  if g.mean_s < last.mean_s and not _same_level(g.mean_s, last.mean_s, s)]
-        shape = SLOWER_THEN_STEADY if faster else FASTER_THEN_STEADY
-    return WarmupResult(n, shape, last.start, last.mean_s, last.sd_s, last.end - last.start,
-                        changepoints, segments, spikes, settings=s)
+        return STEADY_FROM_START
+    faster = [g for g in segments[:-1]
+              if g.mean_s < last.mean_s and not _same_level(g.mean_s, last.mean_s, s)]
+    return SLOWER_THEN_STEADY if faster else FASTER_THEN_STEADY
