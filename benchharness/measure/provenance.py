@@ -438,11 +438,20 @@ def _one_program(exp, first) -> bool:
     an existing file for any combination of the levels it uses (each distinct
     rendering checked once, at most `ONE_PROGRAM_MAX_RENDERINGS` per argument).
     """
-    import itertools
+    if not _fixed_program_word(exp, first):
+        return False
+    cwd = first[3]
+    factors = {f.name: f for f in exp.factors}
+    progs = _Programs()
+    return all(_never_a_file(part, factors, progs, cwd) for part in exp.command.parts[1:])
 
-    from benchharness.experiment.templating import placeholders, render
 
-    argv, shell_command, _env, cwd = first
+def _fixed_program_word(exp, first) -> bool:
+    """Whether the command is a list run without a shell whose first word, working directory
+    and ``PATH`` hold no placeholder (so only a templated argument could name another file)."""
+    from benchharness.experiment.templating import placeholders
+
+    argv, shell_command, _env, _cwd = first
     parts = getattr(exp.command, "parts", ())
     if shell_command is not None or argv is None or getattr(exp.command, "shell", True):
         return False
@@ -452,30 +461,38 @@ def _one_program(exp, first) -> bool:
         return False
     if placeholders(str((exp.env or {}).get("PATH", ""))):
         return False
-    factors = {f.name: f for f in exp.factors}
-    progs = _Programs()
-    for part in parts[1:]:
-        used = list(dict.fromkeys(p.factor for p in placeholders(part)))
-        if not used:
-            continue
-        if any(u not in factors for u in used):
-            return False
-        total = 1
-        for u in used:
-            total *= len(factors[u].levels)
-        if total > ONE_PROGRAM_MAX_RENDERINGS:
-            return False
-        for combo in itertools.product(*(factors[u].levels for u in used)):
-            chosen = dict(zip(used, combo))
+    return True
 
-            def lookup(factor, name, chosen=chosen):
-                lv = chosen[factor]
-                return lv.label if name is None else lv.values[name]
 
-            try:
-                text = render(part, lookup)
-            except (KeyError, TypeError):
-                return False
-            if progs._file(text, cwd or os.getcwd()) is not None:
-                return False
+def _never_a_file(part: str, factors: dict, progs, cwd: str | None) -> bool:
+    """Whether no rendering of the argument template ``part`` names an existing file: each
+    combination of the levels it uses is rendered once, at most
+    `ONE_PROGRAM_MAX_RENDERINGS` of them (more, or a rendering that fails, counts as no)."""
+    import itertools
+
+    from benchharness.experiment.templating import placeholders, render
+
+    used = list(dict.fromkeys(p.factor for p in placeholders(part)))
+    if not used:
+        return True
+    if any(u not in factors for u in used):
+        return False
+    total = 1
+    for u in used:
+        total *= len(factors[u].levels)
+    if total > ONE_PROGRAM_MAX_RENDERINGS:
+        return False
+    for combo in itertools.product(*(factors[u].levels for u in used)):
+        chosen = dict(zip(used, combo))
+
+        def lookup(factor, name, chosen=chosen):
+            lv = chosen[factor]
+            return lv.label if name is None else lv.values[name]
+
+        try:
+            text = render(part, lookup)
+        except (KeyError, TypeError):
+            return False
+        if progs._file(text, cwd or os.getcwd()) is not None:
+            return False
     return True
