@@ -315,25 +315,9 @@ class RunQuality:
             m = apply_expect(self.cfg.expect, m)
         values: dict = dict(extra.get("metrics") or {})
         if self.cfg.perf is not None:
-            from benchharness.measure.perfstat import read_counts
-
-            if "perf_file" in token:
-                counts, why = read_counts(token["perf_file"], self.cfg.perf)
-                if why and m.status == "ok":
-                    reasons.append(why)
-            else:
-                counts = {c: None for c in self.cfg.perf.columns()}
-            values.update(counts)
+            values.update(self._perf_counts(token, m, reasons))
         if self.cfg.metrics is not None:
-            from benchharness.measure.metrics import extract_metrics, reasons_message
-
-            started = _epoch(m.started_at) or token.get("t0")
-            vals, why = extract_metrics(self.cfg.metrics, m.stdout_tail, m.stderr_tail,
-                                        token.get("files"), started, token.get("cwd"),
-                                        token.get("files_before"))
-            values.update(vals)
-            if why and m.status == "ok":
-                reasons.append(reasons_message(why))
+            values.update(self._metric_values(token, m, reasons))
         if values:
             extra["metrics"] = values
         if self.cfg.samples is not None:
@@ -342,6 +326,31 @@ class RunQuality:
             msg = "; ".join(x for x in [m.message, *reasons] if x)
             m = replace(m, message=msg)
         return replace(m, extra=extra)
+
+    def _perf_counts(self, token: Mapping, m: Measurement, reasons: list[str]) -> dict:
+        """The run's hardware counts (None each when perf could not count); why a
+        successful run has none is added to ``reasons``."""
+        from benchharness.measure.perfstat import read_counts
+
+        if "perf_file" not in token:
+            return {c: None for c in self.cfg.perf.columns()}
+        counts, why = read_counts(token["perf_file"], self.cfg.perf)
+        if why and m.status == "ok":
+            reasons.append(why)
+        return counts
+
+    def _metric_values(self, token: Mapping, m: Measurement, reasons: list[str]) -> dict:
+        """The run's values of the ``metrics:`` section; why a successful run lacks one is
+        added to ``reasons``."""
+        from benchharness.measure.metrics import extract_metrics, reasons_message
+
+        started = _epoch(m.started_at) or token.get("t0")
+        vals, why = extract_metrics(self.cfg.metrics, m.stdout_tail, m.stderr_tail,
+                                    token.get("files"), started, token.get("cwd"),
+                                    token.get("files_before"))
+        if why and m.status == "ok":
+            reasons.append(reasons_message(why))
+        return vals
 
     def _samples(self, token, planned, m: Measurement, reasons: list[str]) -> dict:
         from benchharness.measure.steady.samples import analyse_run, extract_samples
