@@ -953,5 +953,5 @@ def choice_section(folder_or_choice, **kwargs) -> dict:
     from benchharness.choose.render import section_dict
 
     choice = folder_or_choice if isinstance(folder_or_choice, Choice) else choose(
-        folder_or_choice, **kwargs)
+        folder_or_choice, **{"response": None, **kwargs})   # None: the section's response
     return section_dict(choice)

@@ -133,6 +133,10 @@ def _design_of(experiment, runs, factors, levels) -> dict:
     timed = runs if status is None else runs[status != "warmup"]
     if factors:
         d["cells_planned"] = int(np.prod([len(levels[f]) for f in factors]))
+        if getattr(experiment, "space", None) is not None:   # exclude: / only_when:
+            from benchharness.design.exclude import space_cells
+
+            d["cells_planned"] = len(space_cells(experiment)[0])
         d["cells_observed"] = int(timed.groupby(list(factors), observed=True).ngroups)
     if "replicate" in timed.columns and len(timed):
         d["replicates_seen"] = int(timed["replicate"].nunique())
