@@ -49,97 +49,20 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
     resp = data.response
     conf = story.confidence_pct(data)
     verdict = story.verdict(data)
-    anova = []
     ss_type = data.analysis.get("ss_type") or (data.analysis.get("model") or {}).get("ss_type")
-    for r in story.anova_rows(data):
-        anova.append({
-            "term": r.get("chain") or r.get("term"), "df": fmt_df(r.get("df")),
-            "sum_sq": fmt_num(r.get("sum_sq"), 4), "mean_sq": fmt_num(r.get("mean_sq"), 4),
-            "F": fmt_num(r.get("F"), 4), "p": fmt_p(r.get("p")),
-            "eta": fmt_num(r.get("partial_eta_sq"), 2), "omega": fmt_num(r.get("omega_sq"), 2),
-            "significant": r["significant"], "residual": r.get("term") == "Residual",
-        })
-    effects = []
-    has_diff = False
-    depends: dict[str, list[str]] = {}
-    for f in verdict["findings"]:
-        if f["kind"] == "interaction":
-            for x in f["factors"]:
-                depends.setdefault(x, []).extend(y for y in f["factors"] if y != x)
-    dscale = column_scale(resp, [e.get("difference") for e in data.analysis.get("effects") or []])
-    for e in data.analysis.get("effects") or []:
-        lo, hi = e.get("lower"), e.get("upper")
-        sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
-        row = {"factor": e.get("factor"), "level": e.get("level"),
-               "reference": e.get("reference"), "ratio": fmt_ratio(e.get("ratio")),
-               "interval": (fmt_ratio_interval(lo, hi) if finite(lo) and finite(hi)
-                            else "not estimable (empty cells)" if e.get("estimable") is False
-                            else "–"),
-               "significant": sig, "difference": "",
-               "depends": ", ".join(dict.fromkeys(depends.get(e.get("factor"), [])))}
-        if finite(e.get("difference")):
-            has_diff = True
-            row["difference"] = dscale.fmt(e.get("difference"))
-        effects.append(row)
-    level_means = []
-    shown_means = [m for m in data.analysis.get("means") or [] if m.get("term") in data.factors]
-    scale = column_scale(resp, [m.get(k) for m in shown_means for k in ("mean", "lower", "upper")])
-    for m in shown_means:
-        term = m.get("term")
-        if term in data.factors:
-            level_means.append({
-                "factor": term, "level": (m.get("levels") or {}).get(term, ""),
-                "mean": scale.fmt(m.get("mean")),
-                "interval": (scale.interval(m.get("lower"), m.get("upper"))
-                             if finite(m.get("lower")) and finite(m.get("upper")) else "–"),
-                "n": m.get("n", ""),
-            })
+    anova = _anova_rows(data)
+    effects, has_diff = _effect_rows(data, verdict)
+    level_means = _level_mean_rows(data)
     comps_all = story.comparisons(data)
-    comps = []
-    for c in comps_all[:MAX_COMPARISONS]:
-        method = _METHOD_WORDS.get(c.get("method"), str(c.get("method")))
-        if c.get("adjust") in ("bonferroni", "holm") and c.get("method") != "tukey":
-            method += f" ({c['adjust'].capitalize()})"
-        comps.append({
-            "method": method,
-            "factor": c.get("factor"), "within": c["within_text"],
-            "a": c.get("a"), "b": c.get("b"), "ratio": fmt_ratio(c.get("ratio")),
-            "interval": (fmt_ratio_interval(c.get("lower"), c.get("upper"))
-                         if finite(c.get("lower")) and finite(c.get("upper"))
-                         else "not estimable"),
-            "p": fmt_p(c.get("p_adj")), "significant": c["significant"],
-        })
-    diags = []
-    for d in story.diagnostic_items(data):
-        diags.append({**d, "p": fmt_p(d["p"]) if d["p"] is not None else ""})
-    art = data.analysis.get("art") or (data.analysis.get("diagnostics") or {}).get("art")
-    if isinstance(art, dict) and art.get("terms"):
-        art = {**art, "terms": [{**t, "p_text": fmt_p(t.get("p")),
-                                 "anova_p_text": fmt_p(t.get("anova_p"))} for t in art["terms"]]}
-    else:
-        art = None
-    cells = []
-    summary = story.cell_summary(data)[:MAX_CELLS]
-    # one unit per column, chosen from the column's values (docs/cli.md)
-    sc = {k: column_scale(resp, [c[k] for c in summary])
-          for k in ("median", "iqr", "min", "max", "mean")}
-    for c in summary:
-        cells.append({
-            "levels": [c["levels"][f] for f in data.factors],
-            "ok": c["ok"], "failed": c["failed"], "timeout": c["timeout"],
-            **{k: sc[k].fmt(c[k]) for k in ("median", "iqr", "min", "max", "mean")},
-            "interval": (sc["mean"].interval(c["lower"], c["upper"])
-                         if finite(c.get("lower")) and finite(c.get("upper")) else ""),
-            "flag": c["timeout"] > 0 or c["failed"] > 0,
-        })
-    n_cells_total = len(story.cell_summary(data)) if len(cells) == MAX_CELLS else len(cells)
+    comps = [_comparison_row(c) for c in comps_all[:MAX_COMPARISONS]]
+    diags = [{**d, "p": fmt_p(d["p"]) if d["p"] is not None else ""}
+             for d in story.diagnostic_items(data)]
+    art = _rank_check(data)
+    cells, n_cells_total = _cell_rows(data)
     from benchharness.report import fraction as _fraction
 
     frac = _fraction.section(data)
-    sections = list(SECTIONS)
-    if frac is not None:
-        at = [i for i, (sid, _t) in enumerate(sections) if sid == "anova"][0] + 1
-        sections.insert(at, ("fraction", "Alias chains of the fraction"))
+    sections = _sections(frac)
     tr = data.analysis.get("transform") or {}
     mean_word = "geometric mean" if tr.get("name") == "log" else "estimated mean"
     return {
@@ -192,6 +115,129 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "version": _version(),
         "compact": compact,
     }
+
+
+def _anova_rows(data: ReportData) -> list[dict]:
+    """The ANOVA table's rows, formatted (alias chains in place of terms for a fraction)."""
+    anova = []
+    for r in story.anova_rows(data):
+        anova.append({
+            "term": r.get("chain") or r.get("term"), "df": fmt_df(r.get("df")),
+            "sum_sq": fmt_num(r.get("sum_sq"), 4), "mean_sq": fmt_num(r.get("mean_sq"), 4),
+            "F": fmt_num(r.get("F"), 4), "p": fmt_p(r.get("p")),
+            "eta": fmt_num(r.get("partial_eta_sq"), 2), "omega": fmt_num(r.get("omega_sq"), 2),
+            "significant": r["significant"], "residual": r.get("term") == "Residual",
+        })
+    return anova
+
+
+def _interaction_partners(verdict: dict) -> dict[str, list[str]]:
+    """Factor -> the factors it interacts with (from the verdict's findings)."""
+    depends: dict[str, list[str]] = {}
+    for f in verdict["findings"]:
+        if f["kind"] == "interaction":
+            for x in f["factors"]:
+                depends.setdefault(x, []).extend(y for y in f["factors"] if y != x)
+    return depends
+
+
+def _effect_rows(data: ReportData, verdict: dict) -> tuple[list[dict], bool]:
+    """The effects table (ratio, interval, difference in one unit for the column, and
+    the factors each effect depends on) and whether any difference is shown."""
+    resp = data.response
+    effects = []
+    has_diff = False
+    depends = _interaction_partners(verdict)
+    dscale = column_scale(resp, [e.get("difference") for e in data.analysis.get("effects") or []])
+    for e in data.analysis.get("effects") or []:
+        lo, hi = e.get("lower"), e.get("upper")
+        sig = finite(lo) and finite(hi) and (float(lo) > 1 or float(hi) < 1)
+        row = {"factor": e.get("factor"), "level": e.get("level"),
+               "reference": e.get("reference"), "ratio": fmt_ratio(e.get("ratio")),
+               "interval": (fmt_ratio_interval(lo, hi) if finite(lo) and finite(hi)
+                            else "not estimable (empty cells)" if e.get("estimable") is False
+                            else "–"),
+               "significant": sig, "difference": "",
+               "depends": ", ".join(dict.fromkeys(depends.get(e.get("factor"), [])))}
+        if finite(e.get("difference")):
+            has_diff = True
+            row["difference"] = dscale.fmt(e.get("difference"))
+        effects.append(row)
+    return effects, has_diff
+
+
+def _level_mean_rows(data: ReportData) -> list[dict]:
+    """Each factor level's estimated mean with its interval, in one unit for the table."""
+    level_means = []
+    shown_means = [m for m in data.analysis.get("means") or [] if m.get("term") in data.factors]
+    scale = column_scale(data.response,
+                         [m.get(k) for m in shown_means for k in ("mean", "lower", "upper")])
+    for m in shown_means:
+        term = m.get("term")
+        if term in data.factors:
+            level_means.append({
+                "factor": term, "level": (m.get("levels") or {}).get(term, ""),
+                "mean": scale.fmt(m.get("mean")),
+                "interval": (scale.interval(m.get("lower"), m.get("upper"))
+                             if finite(m.get("lower")) and finite(m.get("upper")) else "–"),
+                "n": m.get("n", ""),
+            })
+    return level_means
+
+
+def _comparison_row(c: dict) -> dict:
+    """One comparison, formatted, its method in words with the adjustment named."""
+    method = _METHOD_WORDS.get(c.get("method"), str(c.get("method")))
+    if c.get("adjust") in ("bonferroni", "holm") and c.get("method") != "tukey":
+        method += f" ({c['adjust'].capitalize()})"
+    return {
+        "method": method,
+        "factor": c.get("factor"), "within": c["within_text"],
+        "a": c.get("a"), "b": c.get("b"), "ratio": fmt_ratio(c.get("ratio")),
+        "interval": (fmt_ratio_interval(c.get("lower"), c.get("upper"))
+                     if finite(c.get("lower")) and finite(c.get("upper"))
+                     else "not estimable"),
+        "p": fmt_p(c.get("p_adj")), "significant": c["significant"],
+    }
+
+
+def _rank_check(data: ReportData) -> dict | None:
+    """The aligned-rank check of the ANOVA's terms with its p-values formatted; None
+    when the analysis made none."""
+    art = data.analysis.get("art") or (data.analysis.get("diagnostics") or {}).get("art")
+    if isinstance(art, dict) and art.get("terms"):
+        return {**art, "terms": [{**t, "p_text": fmt_p(t.get("p")),
+                                  "anova_p_text": fmt_p(t.get("anova_p"))} for t in art["terms"]]}
+    return None
+
+
+def _cell_rows(data: ReportData) -> tuple[list[dict], int]:
+    """The appendix's per-cell rows (at most `MAX_CELLS`) and how many cells there are."""
+    cells = []
+    summary = story.cell_summary(data)[:MAX_CELLS]
+    # one unit per column, chosen from the column's values (docs/cli.md)
+    sc = {k: column_scale(data.response, [c[k] for c in summary])
+          for k in ("median", "iqr", "min", "max", "mean")}
+    for c in summary:
+        cells.append({
+            "levels": [c["levels"][f] for f in data.factors],
+            "ok": c["ok"], "failed": c["failed"], "timeout": c["timeout"],
+            **{k: sc[k].fmt(c[k]) for k in ("median", "iqr", "min", "max", "mean")},
+            "interval": (sc["mean"].interval(c["lower"], c["upper"])
+                         if finite(c.get("lower")) and finite(c.get("upper")) else ""),
+            "flag": c["timeout"] > 0 or c["failed"] > 0,
+        })
+    n_cells_total = len(story.cell_summary(data)) if len(cells) == MAX_CELLS else len(cells)
+    return cells, n_cells_total
+
+
+def _sections(frac) -> list[tuple[str, str]]:
+    """The report's sections in order; the alias chains follow the ANOVA for a fraction."""
+    sections = list(SECTIONS)
+    if frac is not None:
+        at = [i for i, (sid, _t) in enumerate(sections) if sid == "anova"][0] + 1
+        sections.insert(at, ("fraction", "Alias chains of the fraction"))
+    return sections
 
 
 def _comparisons_intro(comps) -> str:
