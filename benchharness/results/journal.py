@@ -680,6 +680,32 @@ def read_journal(path: Path, repair: bool = False, notes: list | None = None) ->
     fast = _fast_records(data)
     if fast is not None:
         return fast
+    records, bad, dups, kept, good_end = _scan_journal(data)
+    if bad:
+        _refuse_bad_lines(path, bad, len(records))
+    torn_tail = good_end < len(data) and data[good_end:].strip()
+    if dups:
+        data, good_end = _set_aside_repeats(path, data, dups, kept, good_end, torn_tail,
+                                            repair, notes)
+    if torn_tail and repair:
+        torn = path.with_name(path.name + ".torn")
+        with open(torn, "ab") as fh:
+            fh.write(data[good_end:] + b"\n")
+        with open(path, "r+b") as fh:
+            fh.truncate(good_end)
+            os.fsync(fh.fileno())
+    return records
+
+
+def _scan_journal(data: bytes):
+    """One pass over a journal's lines: ``(records, bad, repeats, kept lines, good_end)``.
+
+    ``records``: the first record of each run; ``bad``: (line number, what is
+    wrong) of lines that are not run records; ``repeats``: (line number, line,
+    identical to the first) of lines repeating a run; ``good_end``: the byte
+    offset after the last complete line. A last line without its newline, or an
+    unreadable final line, is a write that did not finish and is left out.
+    """
     records: list = []
     seen: dict[int, int] = {}           # run id -> index in records
     bad: list[tuple[int, str]] = []     # (line number, what is wrong)
@@ -711,50 +737,51 @@ def read_journal(path: Path, repair: bool = False, notes: list | None = None) ->
         offset += len(line) + 1
         if not last:
             good_end = offset
-    if bad:
-        n, why = bad[0]
-        more = ""
-        if len(bad) > 1:
-            others = ", ".join(str(b[0]) for b in bad[1:6]) + (", ..." if len(bad) > 6 else "")
-            more = f" (lines {others} too)"
-        raise ResultsFolderError(
-            f"{path}:{n}: {why}{more}" + (
-                "" if why.startswith("two records") else
-                f"; benchharness never writes such a line: move it out of the journal (into "
-                f"{path.name}.bad, say)") + f", and run the command again; the {len(records)} "
-            "runs recorded on the other lines are kept")
-    torn_tail = good_end < len(data) and data[good_end:].strip()
-    if dups:
-        same = sum(1 for d in dups if d[2])
-        ids = sorted({json.loads(d[1])["run"] for d in dups})
-        shown = ", ".join(map(str, ids[:8])) + (", ..." if len(ids) > 8 else "")
-        kind = (f"{same} identical" if same == len(dups) else
-                f"{same} identical, {len(dups) - same} with other values")
-        where = "set aside"
-        if repair:
-            side = path.with_name(path.name + ".duplicates")
-            with open(side, "ab") as fh:
-                fh.write(b"".join(d[1] + b"\n" for d in dups))
-                fh.flush()
-                os.fsync(fh.fileno())
-            body = b"".join(k + b"\n" for k in kept)
-            write_atomic(path, body + (data[good_end:] if torn_tail else b""))
-            data = path.read_bytes()
-            good_end = len(body)
-            where = f"moved to {side.name}"
-        if notes is not None:
-            notes.append(f"{path.name}: {plural(len(dups), 'line')} "
-                         f"{'repeats' if len(dups) == 1 else 'repeat'} a run already recorded "
-                         f"({kind}; run {shown}); {where} and not counted: the first record of "
-                         "each run is used")
-    if torn_tail and repair:
-        torn = path.with_name(path.name + ".torn")
-        with open(torn, "ab") as fh:
-            fh.write(data[good_end:] + b"\n")
-        with open(path, "r+b") as fh:
-            fh.truncate(good_end)
+    return records, bad, dups, kept, good_end
+
+
+def _refuse_bad_lines(path: Path, bad: list[tuple[int, str]], n_records: int) -> None:
+    """Raise the error naming the first line that is not a run record (and a few others)."""
+    n, why = bad[0]
+    more = ""
+    if len(bad) > 1:
+        others = ", ".join(str(b[0]) for b in bad[1:6]) + (", ..." if len(bad) > 6 else "")
+        more = f" (lines {others} too)"
+    raise ResultsFolderError(
+        f"{path}:{n}: {why}{more}" + (
+            "" if why.startswith("two records") else
+            f"; benchharness never writes such a line: move it out of the journal (into "
+            f"{path.name}.bad, say)") + f", and run the command again; the {n_records} "
+        "runs recorded on the other lines are kept")
+
+
+def _set_aside_repeats(path: Path, data: bytes, dups, kept: list[bytes], good_end: int,
+                       torn_tail, repair: bool, notes: list | None) -> tuple[bytes, int]:
+    """Say which lines repeat a run; with ``repair`` move them to ``.duplicates`` and rewrite
+    the journal without them. Returns the journal's bytes and good end as they now are."""
+    same = sum(1 for d in dups if d[2])
+    ids = sorted({json.loads(d[1])["run"] for d in dups})
+    shown = ", ".join(map(str, ids[:8])) + (", ..." if len(ids) > 8 else "")
+    kind = (f"{same} identical" if same == len(dups) else
+            f"{same} identical, {len(dups) - same} with other values")
+    where = "set aside"
+    if repair:
+        side = path.with_name(path.name + ".duplicates")
+        with open(side, "ab") as fh:
+            fh.write(b"".join(d[1] + b"\n" for d in dups))
+            fh.flush()
             os.fsync(fh.fileno())
-    return records
+        body = b"".join(k + b"\n" for k in kept)
+        write_atomic(path, body + (data[good_end:] if torn_tail else b""))
+        data = path.read_bytes()
+        good_end = len(body)
+        where = f"moved to {side.name}"
+    if notes is not None:
+        notes.append(f"{path.name}: {plural(len(dups), 'line')} "
+                     f"{'repeats' if len(dups) == 1 else 'repeat'} a run already recorded "
+                     f"({kind}; run {shown}); {where} and not counted: the first record of "
+                     "each run is used")
+    return data, good_end
 
 
 def runs_columns(factors: Sequence[str], records: Iterable[Mapping],
