@@ -248,6 +248,13 @@ BEFORE_RUN = {
                    "host_check: off\n 1000000000\n", ":4:13:", ["'host_check' is 'off 1000000000'"]),
     "run-limit": ('experiment: many\ncommand: [echo, "{a}"]\nfactors: {a: [x, y]}\n'
                   "replicates: 1000000000\n", ":4:1:", ["2,000,000,000 runs"]),
+    "exclude-everything": ('experiment: ex\ncommand: [echo, "{a}"]\nfactors: {a: [x, y]}\n'
+                           "exclude:\n  - {a: x}\n  - {a: [y]}\n", ":6:5:",
+                           ["remove every combination"]),
+    "only-when-unknown-level": ('experiment: ow\ncommand: [echo, "{a}", "{b}"]\n'
+                                "factors: {a: [x, y], b: [p, q]}\n"
+                                "only_when:\n  b: {a: z}\n", ":5:10:",
+                                ["'z' is not a level of 'a'", "x, y"]),
     "pin-absent-cpu-in-one-cell": ('experiment: pin\ncommand: [echo, "{c}"]\n'
                                    'factors: {c: ["0", "8191"]}\npin: "{c}"\n',
                                    ":4:6:", ["CPU 8191 does not exist"]),

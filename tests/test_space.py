@@ -139,7 +139,7 @@ def test_plan_says_what_was_removed_and_why(cli, tmp_path):
     assert len(r.stderr.strip().splitlines()) == 1 and ":8:5:" in r.stderr
 
 
-def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path):
+def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path, cli):
     """End to end on the simulated system (no processes): the excluded setting would be the
     fastest where it ran, yet choose never picks it; analyze reads level within codec."""
     from benchharness.analysis import analyze
@@ -169,6 +169,14 @@ def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path):
     assert ch.unavailable == [{"setting": {"codec": "lzma", "level": "9"},
                                "missing": [{"rows": "large"}]}]
     assert any("lzma, level=9 is not a candidate" in r for r in ch.reasons)
+    # what a user reads, and the exit codes
+    r = cli("analyze", str(tmp_path / "r"), "--plain")
+    assert r.returncode == 0, r.stderr
+    assert "level matters within codec" in r.stdout and "level within codec" in r.stdout
+    r = cli("choose", str(tmp_path / "r"))
+    assert r.returncode == 0, r.stderr
+    assert "Recommended default: codec=zlib, level=9" in r.stdout
+    assert "codec=lzma, level=9 is not a candidate" in r.stdout
 
 
 def test_the_gate_compares_builds_on_the_workloads_that_exist():
