@@ -124,6 +124,8 @@ def design_of(exp) -> DesignChoice:
 
 
 def _design_of(exp, node) -> DesignChoice:
+    """Validate the ``design:`` section into a `DesignChoice`: which kind of design, the
+    two-level design itself, then its blocking; errors point at the key they concern."""
     path = getattr(exp, "path", None)
     from benchharness.design import surface
 
@@ -132,6 +134,16 @@ def _design_of(exp, node) -> DesignChoice:
         keys = expect_mapping(node, "'design'", surface.KEYS)
         return DesignChoice(surface=surface.from_section(exp, keys, type_node, path))
     keys = expect_mapping(node, "'design'", KEYS)
+    kind, fraction_keys = _design_kind(node, keys)
+    if kind == "full" and "blocks" not in keys and "block_on" not in keys:
+        return DesignChoice()
+    design = _two_level_design(exp, node, keys, kind, fraction_keys, path)
+    return DesignChoice(design, _blocking_of(design, node, keys, path))
+
+
+def _design_kind(node, keys) -> tuple[str, list[str]]:
+    """``(kind, fraction keys)``: "full" or "fractional" and which of generators,
+    resolution and cells make the fraction (at most one); refuses contradictions."""
     kind = "full"
     if "type" in keys:
         kind = scalar_text(keys["type"], "'design: type'")
@@ -155,48 +167,60 @@ def _design_of(exp, node) -> DesignChoice:
     if "blocks" in keys and "block_on" in keys:
         raise node_error(keys["block_on"], "give 'blocks' (chosen automatically) or 'block_on' "
                                            "(the interactions to confound), not both")
-    if kind == "full" and "blocks" not in keys and "block_on" not in keys:
-        return DesignChoice()
+    return kind, fraction_keys
 
-    def located(key):
-        class _Ctx:
-            def __enter__(self):
-                return self
 
-            def __exit__(self, et, ev, tb):
-                if isinstance(ev, DesignError):
-                    raise node_error(keys.get(key, node), f"design: {ev.bare}", path) from None
-                return False
-        return _Ctx()
+class _Located:
+    """A `DesignError` raised inside becomes an error at the line of ``key`` (else of
+    the section)."""
 
+    def __init__(self, keys, node, key, path):
+        self.keys, self.node, self.key, self.path = keys, node, key, path
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, et, ev, tb):
+        if isinstance(ev, DesignError):
+            raise node_error(self.keys.get(self.key, self.node), f"design: {ev.bare}",
+                             self.path) from None
+        return False
+
+
+def _two_level_design(exp, node, keys, kind, fraction_keys, path):
+    """The full two-level factorial or the fraction the section asks for (by generators,
+    resolution or number of cells)."""
     factors = _factors(exp)
     first_key = fraction_keys[0] if fraction_keys else ("blocks" if "blocks" in keys else "block_on")
-    with located(first_key):
+    with _Located(keys, node, first_key, path):
         if kind == "full":
-            design = full_design(factors)
-        elif "generators" in keys:
+            return full_design(factors)
+        if "generators" in keys:
             gens = [scalar_text(g, "a generator") for g in
                     sequence_items(keys["generators"], "'design: generators'")]
             if not gens:
                 raise DesignError("generators is empty; give one or more like 'D = ABC'")
-            design = _generators_located(factors, keys["generators"], gens, path)
-        elif "resolution" in keys:
+            return _generators_located(factors, keys["generators"], gens, path)
+        if "resolution" in keys:
             r = as_int(keys["resolution"], "'design: resolution'", minimum=3)
-            design = design_for_resolution(factors, r)
-        else:
-            n = as_int(keys["cells"], "'design: cells'", minimum=2)
-            design = design_for_cells(factors, n)
-    blocking = None
+            return design_for_resolution(factors, r)
+        n = as_int(keys["cells"], "'design: cells'", minimum=2)
+        return design_for_cells(factors, n)
+
+
+def _blocking_of(design, node, keys, path):
+    """The blocking the section asks for (a number of blocks, or the interactions to
+    confound with blocks); None without one."""
     if "blocks" in keys:
-        with located("blocks"):
-            blocking = choose_blocking(design, as_int(keys["blocks"], "'design: blocks'",
-                                                      minimum=2))
-    elif "block_on" in keys:
+        with _Located(keys, node, "blocks", path):
+            return choose_blocking(design, as_int(keys["blocks"], "'design: blocks'",
+                                                  minimum=2))
+    if "block_on" in keys:
         words = [scalar_text(w, "a block word") for w in
                  sequence_items(keys["block_on"], "'design: block_on'")]
-        with located("block_on"):
-            blocking = blocking_from_words(design, words)
-    return DesignChoice(design, blocking)
+        with _Located(keys, node, "block_on", path):
+            return blocking_from_words(design, words)
+    return None
 
 
 def _generators_located(factors, seq_node, gens, path):
@@ -229,45 +253,60 @@ def describe_info(info: dict) -> list[str]:
         lines.append(f"design      full two-level factorial {d['fraction']}: {d['cells']} cells")
     lines.append(f"  letters   {letters} (first listed level = -1, second = +1)")
     if d["type"] == "fractional":
-        how = "chosen by minimum aberration" if "generator_search" in d else "as given"
-        lines.append(f"  generators ({how}): " + ", ".join(d["generators"]))
-        gs = d.get("generator_search")
-        if gs and not gs.get("exhaustive", True):
-            lines.append("  note: the generator search hit its work limit; this is the best "
-                         "design found, not proven minimum aberration")
-        lines.append("  defining relation: I = " + " = ".join(d["defining_relation"]))
-        wlp = d["word_length_pattern"]
-        lines.append("  word-length pattern (words of length 3, 4, ...): "
-                     + " ".join(str(c) for c in wlp[2:]))
-        lines.append("  aliases (up to three-factor interactions):")
-        chains = [(eff, al) for eff, al in d["aliases"].items() if al]
-        if len(chains) > 30:
-            mains = [(eff, al) for eff, al in chains if len(eff) == 1]
-            for eff, al in mains:
-                lines.append(f"    {eff} = " + " = ".join(al))
-            lines.append(f"    ... and {len(chains) - len(mains)} two-factor interaction chains "
-                         f"(see plan --json)")
-        else:
-            for eff, al in chains:
-                lines.append(f"    {eff} = " + " = ".join(al))
-        clear = d["clear_effects"]
-        lines.append("  clear (aliased with no main effect or two-factor interaction): "
-                     + (", ".join(clear) if clear else "none"))
-    b = d.get("blocking")
-    if b:
-        per = d["cells"] // b["blocks"]
-        how = "chosen to keep confounded effects of highest order" if "block_search" in b \
-            else "as given"
-        lines.append(f"  blocks    {b['blocks']} per replicate, {per} cells each; generators "
-                     f"({how}): " + ", ".join(b["block_generators"]))
-        chains = b.get("confounded_with_blocks_aliases", {})
-        parts = []
-        for w in b["confounded_with_blocks"]:
-            al = chains.get(w) or []
-            parts.append(w + (" (= " + " = ".join(al) + ")" if al else ""))
-        lines.append("  confounded with blocks: " + ", ".join(parts))
-        low = [w for w in b["confounded_with_blocks"] if len(w) <= 2]
-        if low:
-            lines.append("  warning: two-factor interactions confounded with blocks: "
-                         + ", ".join(low))
+        lines += _fraction_lines(d)
+    if d.get("blocking"):
+        lines += _blocking_lines(d)
+    return lines
+
+
+def _fraction_lines(d: dict) -> list[str]:
+    """A fraction's generators, defining relation, word-length pattern, alias chains and
+    clear effects."""
+    lines = []
+    how = "chosen by minimum aberration" if "generator_search" in d else "as given"
+    lines.append(f"  generators ({how}): " + ", ".join(d["generators"]))
+    gs = d.get("generator_search")
+    if gs and not gs.get("exhaustive", True):
+        lines.append("  note: the generator search hit its work limit; this is the best "
+                     "design found, not proven minimum aberration")
+    lines.append("  defining relation: I = " + " = ".join(d["defining_relation"]))
+    wlp = d["word_length_pattern"]
+    lines.append("  word-length pattern (words of length 3, 4, ...): "
+                 + " ".join(str(c) for c in wlp[2:]))
+    lines.append("  aliases (up to three-factor interactions):")
+    chains = [(eff, al) for eff, al in d["aliases"].items() if al]
+    if len(chains) > 30:
+        mains = [(eff, al) for eff, al in chains if len(eff) == 1]
+        for eff, al in mains:
+            lines.append(f"    {eff} = " + " = ".join(al))
+        lines.append(f"    ... and {len(chains) - len(mains)} two-factor interaction chains "
+                     f"(see plan --json)")
+    else:
+        for eff, al in chains:
+            lines.append(f"    {eff} = " + " = ".join(al))
+    clear = d["clear_effects"]
+    lines.append("  clear (aliased with no main effect or two-factor interaction): "
+                 + (", ".join(clear) if clear else "none"))
+    return lines
+
+
+def _blocking_lines(d: dict) -> list[str]:
+    """The blocks: how many, their generators, and the effects confounded with them."""
+    b = d["blocking"]
+    lines = []
+    per = d["cells"] // b["blocks"]
+    how = "chosen to keep confounded effects of highest order" if "block_search" in b \
+        else "as given"
+    lines.append(f"  blocks    {b['blocks']} per replicate, {per} cells each; generators "
+                 f"({how}): " + ", ".join(b["block_generators"]))
+    chains = b.get("confounded_with_blocks_aliases", {})
+    parts = []
+    for w in b["confounded_with_blocks"]:
+        al = chains.get(w) or []
+        parts.append(w + (" (= " + " = ".join(al) + ")" if al else ""))
+    lines.append("  confounded with blocks: " + ", ".join(parts))
+    low = [w for w in b["confounded_with_blocks"] if len(w) <= 2]
+    if low:
+        lines.append("  warning: two-factor interactions confounded with blocks: "
+                     + ", ".join(low))
     return lines
