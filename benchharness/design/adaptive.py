@@ -131,33 +131,63 @@ def main_effect_intervals(runs, factor_levels: Mapping[str, Sequence[str]],
     ``{factor, level, reference, ratio, low, high, halfwidth}``; ``problem`` a
     reason string when they cannot be computed yet (None otherwise).
     """
-    import numpy as np
     from scipy import stats
 
     names = list(factor_levels)
+    groups, problem = _log_groups(runs, names, response)
+    if problem:
+        return [], problem
+    design_cells = _design_cells(factor_levels, names, cells)
+    missing = [c for c in design_cells if c not in groups]
+    if missing:
+        label = ", ".join(f"{n}={v}" for n, v in zip(names, missing[0]))
+        return [], f"cell {label} has no successful run yet"
+    means, counts, sigma2, dof = _cell_means_fit(groups, design_cells)
+    if dof == 0:
+        return [], "no cell has two successful runs yet (no error estimate)"
+    tq = float(stats.t.ppf(0.5 + confidence / 2, dof))
+    out = []
+    for i, name in enumerate(names):
+        out += _level_pairs(i, name, list(factor_levels[name]), design_cells, means, counts,
+                            sigma2, tq, dof)
+    return out, None
+
+
+def _log_groups(runs, names, response):
+    """``(groups, problem)``: the log responses of the successful runs by cell (a tuple
+    of level labels); ``problem`` a reason when there are none to group."""
+    import numpy as np
+
     df = runs
     if "status" in df.columns:
         df = df[df["status"] == "ok"]
     if response not in df.columns:
-        return [], f"no column {response!r} in the runs"
+        return {}, f"no column {response!r} in the runs"
     y = df[response].astype(float)
     df = df[y > 0]
     if len(df) == 0:
-        return [], "no successful runs yet"
+        return {}, "no successful runs yet"
     keys = [tuple(str(v) for v in row) for row in df[names].astype(str).itertuples(index=False)]
     logy = np.log(df[response].astype(float).to_numpy())
     groups: dict[tuple, list[float]] = {}
     for k, v in zip(keys, logy):
         groups.setdefault(k, []).append(float(v))
+    return groups, None
+
+
+def _design_cells(factor_levels, names, cells) -> list[tuple]:
+    """The design's cells as tuples of labels: the full factorial, or the given cells."""
     if cells is None:
         import itertools
-        design_cells = [tuple(c) for c in itertools.product(*(factor_levels[n] for n in names))]
-    else:
-        design_cells = [tuple(str(c[n]) for n in names) for c in cells]
-    missing = [c for c in design_cells if c not in groups]
-    if missing:
-        label = ", ".join(f"{n}={v}" for n, v in zip(names, missing[0]))
-        return [], f"cell {label} has no successful run yet"
+        return [tuple(c) for c in itertools.product(*(factor_levels[n] for n in names))]
+    return [tuple(str(c[n]) for n in names) for c in cells]
+
+
+def _cell_means_fit(groups, design_cells):
+    """``(means, counts, sigma2, dof)`` of the cell-means model: each cell's mean and run
+    count, the pooled within-cell variance and its degrees of freedom."""
+    import numpy as np
+
     ss = 0.0
     dof = 0
     means = {}
@@ -168,31 +198,32 @@ def main_effect_intervals(runs, factor_levels: Mapping[str, Sequence[str]],
         counts[c] = len(v)
         ss += float(((v - v.mean()) ** 2).sum())
         dof += len(v) - 1
-    if dof == 0:
-        return [], "no cell has two successful runs yet (no error estimate)"
-    sigma2 = ss / dof
-    tq = float(stats.t.ppf(0.5 + confidence / 2, dof))
+    sigma2 = ss / dof if dof else None
+    return means, counts, sigma2, dof
+
+
+def _level_pairs(i, name, levels, design_cells, means, counts, sigma2, tq, dof) -> list[dict]:
+    """The ratio interval of every pair of levels of factor ``name`` (position ``i`` in a
+    cell), each level's mean averaged over the cells it appears in."""
+    lm = {}
+    lv = {}
+    for lev in levels:
+        cs = [c for c in design_cells if c[i] == lev]
+        if not cs:
+            continue
+        lm[lev] = sum(means[c] for c in cs) / len(cs)
+        lv[lev] = sigma2 * sum(1.0 / counts[c] for c in cs) / len(cs) ** 2
+    present = [lev for lev in levels if lev in lm]
     out = []
-    for i, name in enumerate(names):
-        levels = list(factor_levels[name])
-        lm = {}
-        lv = {}
-        for lev in levels:
-            cs = [c for c in design_cells if c[i] == lev]
-            if not cs:
-                continue
-            lm[lev] = sum(means[c] for c in cs) / len(cs)
-            lv[lev] = sigma2 * sum(1.0 / counts[c] for c in cs) / len(cs) ** 2
-        present = [lev for lev in levels if lev in lm]
-        for a in range(len(present)):
-            for b in range(a + 1, len(present)):
-                ref, lev = present[a], present[b]
-                d = lm[lev] - lm[ref]
-                h = tq * math.sqrt(lv[lev] + lv[ref])
-                out.append({"factor": name, "level": lev, "reference": ref,
-                            "ratio": math.exp(d), "low": math.exp(d - h), "high": math.exp(d + h),
-                            "halfwidth": math.expm1(h), "log_halfwidth": h, "df": dof})
-    return out, None
+    for a in range(len(present)):
+        for b in range(a + 1, len(present)):
+            ref, lev = present[a], present[b]
+            d = lm[lev] - lm[ref]
+            h = tq * math.sqrt(lv[lev] + lv[ref])
+            out.append({"factor": name, "level": lev, "reference": ref,
+                        "ratio": math.exp(d), "low": math.exp(d - h), "high": math.exp(d + h),
+                        "halfwidth": math.expm1(h), "log_halfwidth": h, "df": dof})
+    return out
 
 
 def decide(runs, factor_levels: Mapping[str, Sequence[str]], rule: AdaptiveRule,
