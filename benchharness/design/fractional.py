@@ -288,58 +288,78 @@ def parse_word(text: str, names: Sequence[str], star_mode: bool, what: str = "wo
     ``star_mode``: the text uses ``*``/``:`` between factor names.
     """
     gen_text = text if gen_text is None else gen_text
+    s, sign = _strip_sign(text)
+    if not s:
+        raise DesignError(f"{gen_text!r}: the {what} is empty; write e.g. 'D = ABC' "
+                          f"or 'cache = threads*batch'")
+    if star_mode:
+        return _star_mask(s, names, gen_text), sign
+    mask = _letters_mask(s, len(names))
+    if mask is not None:
+        return mask, sign
+    if s in names:
+        return 1 << names.index(s), sign
+    raise _word_error(s, len(names), gen_text)
+
+
+def _strip_sign(text: str) -> tuple[str, int]:
+    """The word without its leading signs, and the sign they make (+1 or -1)."""
     s = text.strip()
     sign = 1
     while s[:1] in "+-":
         if s[0] == "-":
             sign = -sign
         s = s[1:].strip()
-    if not s:
-        raise DesignError(f"{gen_text!r}: the {what} is empty; write e.g. 'D = ABC' "
-                          f"or 'cache = threads*batch'")
+    return s, sign
+
+
+def _star_mask(s: str, names: Sequence[str], gen_text: str) -> int:
+    """The mask of factor names (or single factor letters) joined by ``*`` or ``:``."""
     k = len(names)
     mask = 0
-    if star_mode:
-        tokens = [t.strip() for t in re.split(r"[*:]", s)]
-        for t in tokens:
-            if not t:
-                raise DesignError(f"{gen_text!r}: empty factor name around '*'")
-            if t in names:
-                pos = names.index(t)
-            elif len(t) == 1 and t in W.LETTERS and W.LETTERS.index(t) < k:
-                pos = W.LETTERS.index(t)
-            else:
-                raise DesignError(f"{gen_text!r}: {t!r} is not a factor; factors are "
-                                  + ", ".join(names))
-            if mask >> pos & 1:
-                raise DesignError(f"{gen_text!r}: {t!r} appears twice")
-            mask |= 1 << pos
-        return mask, sign
-    if _LETTER_RUN.match(s):
-        ok = True
-        for ch in s:
-            pos = W.LETTERS.index(ch)
-            if pos >= k or mask >> pos & 1:
-                ok = False
-                break
-            mask |= 1 << pos
-        if ok:
-            return mask, sign
-        mask = 0
-    if s in names:
-        return 1 << names.index(s), sign
+    for t in (t.strip() for t in re.split(r"[*:]", s)):
+        if not t:
+            raise DesignError(f"{gen_text!r}: empty factor name around '*'")
+        if t in names:
+            pos = names.index(t)
+        elif len(t) == 1 and t in W.LETTERS and W.LETTERS.index(t) < k:
+            pos = W.LETTERS.index(t)
+        else:
+            raise DesignError(f"{gen_text!r}: {t!r} is not a factor; factors are "
+                              + ", ".join(names))
+        if mask >> pos & 1:
+            raise DesignError(f"{gen_text!r}: {t!r} appears twice")
+        mask |= 1 << pos
+    return mask
+
+
+def _letters_mask(s: str, k: int) -> int | None:
+    """The mask of a run of distinct factor letters; None when ``s`` is not one."""
+    if not _LETTER_RUN.match(s):
+        return None
+    mask = 0
+    for ch in s:
+        pos = W.LETTERS.index(ch)
+        if pos >= k or mask >> pos & 1:
+            return None
+        mask |= 1 << pos
+    return mask
+
+
+def _word_error(s: str, k: int, gen_text: str) -> DesignError:
+    """Why ``s`` is neither factor letters nor a factor name, in words."""
     if _LETTER_RUN.match(s):
         bad = [ch for ch in s if W.LETTERS.index(ch) >= k]
         if bad:
-            raise DesignError(
+            return DesignError(
                 f"{gen_text!r}: letter {bad[0]} names no factor; with {k} factors the "
                 f"letters are {W.LETTERS[:k]} (A = first listed factor; I is skipped)")
-        raise DesignError(f"{gen_text!r}: a letter appears twice in {s!r}")
+        return DesignError(f"{gen_text!r}: a letter appears twice in {s!r}")
     if "I" in s and re.fullmatch(r"[A-Z]+", s):
-        raise DesignError(f"{gen_text!r}: I is the identity, not a factor letter; "
-                          f"letters skip it ({W.LETTERS[:min(k, 10)]}...)")
-    raise DesignError(f"{gen_text!r}: {s!r} is neither factor letters nor a factor "
-                      f"name; use letters (D = ABC) or names joined by '*' (cache = threads*batch)")
+        return DesignError(f"{gen_text!r}: I is the identity, not a factor letter; "
+                           f"letters skip it ({W.LETTERS[:min(k, 10)]}...)")
+    return DesignError(f"{gen_text!r}: {s!r} is neither factor letters nor a factor "
+                       f"name; use letters (D = ABC) or names joined by '*' (cache = threads*batch)")
 
 
 def parse_generator(text: str, names: Sequence[str]) -> tuple[int, int, int]:
