@@ -135,3 +135,37 @@ def test_plan_json_counts_and_info():
     first = d["order"][0]
     assert first == {"run": 0, "block": 0, "replicate": 0, "warmup": True,
                      "levels": plan.runs[0].levels}
+
+
+def test_appended_runs_after_warmups_number_from_first_run():
+    # run ids and positions count from first_run through the warm-up runs too: 4 warm-up
+    # runs then 8 timed runs are runs 5..16, each id once
+    plan = make_plan(exp(), seed=3, replicates=2, warmup=1, first_run=5)
+    assert [r.run for r in plan.runs] == list(range(5, 17))
+    assert [r.position for r in plan.runs] == list(range(5, 17))
+    assert [r.warmup for r in plan.runs] == [True] * 4 + [False] * 8
+
+
+@pytest.mark.parametrize("drawn", [0, 2**31 - 2])
+def test_a_seed_drawn_at_either_end_of_the_range_is_valid(monkeypatch, drawn):
+    # the random source's extremes (randbelow(2^31 - 1) gives 0 .. 2^31 - 2) map to the
+    # ends of 1 .. 2^31 - 1; such a seed gives a plan and is recorded as drawn
+    import secrets
+
+    monkeypatch.setattr(secrets, "randbelow", lambda n: min(drawn, n - 1))
+    assert draw_seed() == drawn + 1
+    no_seed = Experiment.from_text(BASE.replace("seed: 5\n", ""))
+    plan = make_plan(no_seed)
+    assert plan.seed == drawn + 1 and plan.timed_runs == 12
+
+
+def test_a_plan_and_its_runs_cannot_be_changed_after_planning():
+    # a plan is plain data shared by the stages after it (frozen dataclasses): the runner,
+    # the journal and the report all read the same runs
+    import dataclasses
+
+    plan = make_plan(exp())
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        plan.seed = 6
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        plan.runs[0].block = 9

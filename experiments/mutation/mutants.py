@@ -33,6 +33,7 @@ import shutil
 import sqlite3
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 # the checkout whose code and tests are measured (default: the one holding this script)
@@ -195,8 +196,10 @@ def cmd_select(area: str, A: dict) -> None:
             if sel:
                 tests = sel
             print("mutant at", m, line, "->", len(tests), "test file(s)/test(s)", flush=True)
+            with open(WORK / f"{area}.starts.log", "a") as log:  # durations, for planning
+                log.write(f"{time.time():.1f} {m} {line} {len(tests)}\n")
             break
-    t = str(A.get("timeout", 300))
+    t = str(A.get("test_timeout", A.get("timeout", 300)))
     os.execv("/usr/bin/env", ["env", "PYTHONDONTWRITEBYTECODE=1", "nice", "-n", "15", PY, "-m",
                               "pytest", "-x", "-q", "-p", "no:cacheprovider", f"--timeout={t}",
                               *tests])
@@ -207,6 +210,10 @@ def cmd_exec(area: str, A: dict, rerun: bool) -> None:
     _copy_checkout(copy, only_tests=True)
     db = WORK / f"{area}.sqlite"
     if rerun:
+        with open(WORK / f"{area}.passes.log", "a") as log:   # each pass's tally, kept
+            log.write(time.strftime("%Y-%m-%dT%H:%M:%SZ ", time.gmtime()))
+            log.write(subprocess.run([PY, __file__, "report", area], capture_output=True,
+                                     text=True).stdout)
         c = sqlite3.connect(db)
         c.execute("delete from work_results where upper(test_outcome) = 'SURVIVED'")
         c.commit()
@@ -214,22 +221,49 @@ def cmd_exec(area: str, A: dict, rerun: bool) -> None:
                     str(db)], cwd=copy)
 
 
+def wilson(k: int, n: int, z: float = 1.959964) -> tuple[float, float]:
+    """The 95% Wilson score interval of a share k/n (Wilson, 1927)."""
+    if n == 0:
+        return (0.0, 1.0)
+    p = k / n
+    mid = (p + z * z / (2 * n)) / (1 + z * z / n)
+    half = z / (1 + z * z / n) * (p * (1 - p) / n + z * z / (4 * n * n)) ** 0.5
+    return (max(0.0, mid - half), min(1.0, mid + half))
+
+
+def _equivalent(area: str) -> dict:
+    """Survivors judged equivalent (``equivalent.json``): (module, line, col, operator,
+    occurrence) -> why."""
+    path = Path(__file__).with_name("equivalent.json")
+    rows = json.loads(path.read_text()).get(area, []) if path.exists() else []
+    return {(e["module"], e["line"], e["col"], e["operator"], e["occurrence"]): e["why"]
+            for e in rows}
+
+
 def cmd_report(area: str, verbose: bool) -> None:
     c = sqlite3.connect(WORK / f"{area}.sqlite")
-    res = c.execute("select s.module_path, s.start_pos_row, s.operator_name, r.test_outcome,"
-                    " r.diff from mutation_specs s left join work_results r using (job_id)"
-                    " order by 1, 2").fetchall()
-    done = [r for r in res if r[3] is not None]
-    out = {k: sum((r[3] or "").lower() == k for r in done) for k in ("killed", "survived")}
+    res = c.execute("select s.module_path, s.start_pos_row, s.start_pos_col, s.operator_name,"
+                    " s.occurrence, r.test_outcome, r.diff from mutation_specs s"
+                    " left join work_results r using (job_id) order by 1, 2, 3").fetchall()
+    done = [r for r in res if r[5] is not None]
+    out = {k: sum((r[5] or "").lower() == k for r in done) for k in ("killed", "survived")}
     other = len(done) - sum(out.values())
-    print(f"{area}: {len(res)} sampled, {len(done)} run, {out['killed']} killed, "
-          f"{out['survived']} survived, {other} incompetent"
-          + (f", score {out['killed'] / len(done):.0%}" if done else ""))
+    eq = _equivalent(area)
+    n_eq = sum(1 for r in done if (r[5] or "").lower() == "survived" and tuple(r[:5]) in eq)
+    line = (f"{area}: {len(res)} sampled, {len(done)} run, {out['killed']} killed, "
+            f"{out['survived']} survived ({n_eq} equivalent), {other} incompetent")
+    if done:
+        lo, hi = wilson(out["killed"], len(done))
+        score = out["killed"] / max(1, len(done) - n_eq)
+        line += (f"; score {score:.0%}, raw {out['killed'] / len(done):.0%} "
+                 f"(95% Wilson {lo:.0%}-{hi:.0%})")
+    print(line)
     if verbose:
         for r in done:
-            if (r[3] or "").lower() != "killed":
-                print("====", r[0], r[1], r[2], r[3])
-                print("\n".join(x for x in (r[4] or "").splitlines()
+            if (r[5] or "").lower() != "killed":
+                tag = "equivalent" if tuple(r[:5]) in eq else r[5]
+                print("====", r[0], f"{r[1]}:{r[2]}", r[3], f"#{r[4]}", tag)
+                print("\n".join(x for x in (r[6] or "").splitlines()
                                 if x[:1] in "+-" and x[:3] not in ("---", "+++")))
 
 
