@@ -146,17 +146,19 @@ def test_appended_runs_after_warmups_number_from_first_run():
     assert [r.warmup for r in plan.runs] == [True] * 4 + [False] * 8
 
 
-@pytest.mark.parametrize("drawn", [0, 2**31 - 2])
-def test_a_seed_drawn_at_either_end_of_the_range_is_valid(monkeypatch, drawn):
-    # the random source's extremes (randbelow(2^31 - 1) gives 0 .. 2^31 - 2) map to the
-    # ends of 1 .. 2^31 - 1; such a seed gives a plan and is recorded as drawn
+@pytest.mark.parametrize("end", ["lowest", "highest"])
+def test_a_seed_drawn_at_either_end_of_the_range_is_valid(monkeypatch, end):
+    # the random source at its extremes (randbelow(n) gives 0 .. n - 1) gives the ends
+    # of 1 .. 2^31 - 1; such a seed gives a plan and is recorded as drawn
     import secrets
 
-    monkeypatch.setattr(secrets, "randbelow", lambda n: min(drawn, n - 1))
-    assert draw_seed() == drawn + 1
+    monkeypatch.setattr(secrets, "randbelow", (lambda n: 0) if end == "lowest" else
+                        (lambda n: n - 1))
+    want = 1 if end == "lowest" else 2**31 - 1
+    assert draw_seed() == want
     no_seed = Experiment.from_text(BASE.replace("seed: 5\n", ""))
     plan = make_plan(no_seed)
-    assert plan.seed == drawn + 1 and plan.timed_runs == 12
+    assert plan.seed == want and plan.timed_runs == 12
 
 
 def test_a_plan_and_its_runs_cannot_be_changed_after_planning():

@@ -4,9 +4,12 @@ Not part of the tool: a developer's script (DEVELOPERS.md, "Mutation testing"). 
 the ``dev`` extra (cosmic-ray, coverage). Every step works in a scratch folder
 (``$MUTATION_WORK``, default ``/tmp/benchharness-mutation``) on copies of the checkout,
 never on the checkout itself: cosmic-ray writes each mutant into the files it tests.
-``$MUTATION_ROOT`` names another checkout to measure (default: this one).
+``$MUTATION_ROOT`` names another checkout to measure (default: this one), for example a
+clone pinned at the commit whose mutants are drawn; ``$MUTATION_TESTS`` the checkout whose
+``tests/`` are run against it (default: ``$MUTATION_ROOT``), for the tests written since.
 
     python experiments/mutation/mutants.py map AREA      # which tests run which line
+    python experiments/mutation/mutants.py durations AREA  # each test's time (optional)
     python experiments/mutation/mutants.py init AREA     # the mutants, a sample of them
     python experiments/mutation/mutants.py exec AREA     # run the sample (resumable)
     python experiments/mutation/mutants.py rerun AREA    # survivors again, current tests
@@ -38,6 +41,8 @@ from pathlib import Path
 
 # the checkout whose code and tests are measured (default: the one holding this script)
 ROOT = Path(os.environ.get("MUTATION_ROOT") or Path(__file__).resolve().parents[2])
+# the checkout whose tests/ are run (default: ROOT); new tests against a pinned snapshot
+TESTS = Path(os.environ.get("MUTATION_TESTS") or ROOT)
 WORK = Path(os.environ.get("MUTATION_WORK", "/tmp/benchharness-mutation"))
 PY = sys.executable
 CR = str(Path(PY).with_name("cosmic-ray"))
@@ -45,12 +50,16 @@ AREAS = json.loads((Path(__file__).with_name("areas.json")).read_text())
 
 
 def _copy_checkout(dest: Path, only_tests: bool = False) -> None:
-    files = subprocess.run(["git", "ls-files", "-co", "--exclude-standard"], cwd=ROOT,
-                           capture_output=True, text=True, check=True).stdout.split()
-    for f in files:
-        if not only_tests or f.startswith("tests/"):
-            (dest / f).parent.mkdir(parents=True, exist_ok=True)
-            shutil.copy2(ROOT / f, dest / f)
+    """Copy the code from ROOT and the tests from TESTS (the same checkout by default)."""
+    for root, tests in ((ROOT, False), (TESTS, True)):
+        if only_tests and not tests:
+            continue
+        files = subprocess.run(["git", "ls-files", "-co", "--exclude-standard"], cwd=root,
+                               capture_output=True, text=True, check=True).stdout.split()
+        for f in files:
+            if f.startswith("tests/") == tests and (root / f).exists():
+                (dest / f).parent.mkdir(parents=True, exist_ok=True)
+                shutil.copy2(root / f, dest / f)
 
 
 def _nodeid(ctx: str) -> str:
@@ -87,6 +96,30 @@ def cmd_map(area: str, A: dict, tests: list[str]) -> None:
     tmp.write_text(json.dumps(mp))
     os.replace(tmp, path)        # a mutant being run may be reading the map meanwhile
     print({m: len(v) for m, v in mp.items()})
+
+
+def cmd_durations(area: str, A: dict) -> None:
+    """How long each of the area's tests takes (a JUnit XML report): ``select`` runs a
+    mutant's tests quickest first, so that with ``-x`` a killed mutant stops early."""
+    import xml.etree.ElementTree as ET
+
+    copy = WORK / f"cov_{area}"
+    if not copy.exists():
+        _copy_checkout(copy)
+    xml = WORK / f"{area}.junit.xml"
+    subprocess.run(["nice", "-n", "15", PY, "-m", "pytest", "-q", "-p", "no:cacheprovider",
+                    f"--junitxml={xml}", *A["tests"]], cwd=copy,
+                   env=dict(os.environ, PYTHONDONTWRITEBYTECODE="1"))
+    took: dict[str, float] = {}
+    for case in ET.parse(xml).iter("testcase"):
+        mod = case.get("classname", "").split(".")
+        # classname tests.test_x[.Class] -> tests/test_x.py[::Class]
+        i = next((k for k, p in enumerate(mod) if p.startswith("test_")), len(mod) - 1)
+        node = "/".join(mod[:i + 1]) + ".py" + "".join("::" + p for p in mod[i + 1:])
+        node += "::" + case.get("name", "").split("[")[0]
+        took[node] = took.get(node, 0.0) + float(case.get("time") or 0)
+    (WORK / f"{area}.durations.json").write_text(json.dumps(took, indent=0))
+    print(f"{area}: {len(took)} tests, {sum(took.values()):.0f} s in all")
 
 
 def _annotation_spans(source: str):
@@ -195,6 +228,10 @@ def cmd_select(area: str, A: dict) -> None:
             sel = _tests_for(cmap.get(m, {}), a, line)
             if sel:
                 tests = sel
+                dpath = WORK / f"{area}.durations.json"
+                if dpath.exists():   # quickest first: with -x a killed mutant stops early
+                    took = json.loads(dpath.read_text())
+                    tests = sorted(tests, key=lambda t: took.get(t, 0.0))
             print("mutant at", m, line, "->", len(tests), "test file(s)/test(s)", flush=True)
             with open(WORK / f"{area}.starts.log", "a") as log:  # durations, for planning
                 log.write(f"{time.time():.1f} {m} {line} {len(tests)}\n")
@@ -205,11 +242,31 @@ def cmd_select(area: str, A: dict) -> None:
                               *tests])
 
 
+def _restore(area: str, A: dict) -> None:
+    """Put the area's original modules back in its copy (an interrupted ``exec`` may
+    leave a mutant written into one)."""
+    for m in A["modules"]:
+        shutil.copy2(WORK / f"orig_{area}" / m, WORK / f"cr_{area}" / m)
+
+
+def _finished(db: Path) -> int:
+    with sqlite3.connect(db) as c:
+        return c.execute("select count(*) from work_results").fetchone()[0]
+
+
 def cmd_exec(area: str, A: dict, rerun: bool) -> None:
+    """Run the pending mutants (cosmic-ray draws them in random order). With
+    ``$MUTATION_BATCH=k`` stop once k more have finished: the next one, just started,
+    is stopped and stays pending, so areas can take turns without favouring quick
+    mutants."""
     copy = WORK / f"cr_{area}"
+    _restore(area, A)
     _copy_checkout(copy, only_tests=True)
     db = WORK / f"{area}.sqlite"
     if rerun:
+        first = WORK / f"{area}.pass1.sqlite"
+        if not first.exists():
+            shutil.copy2(db, first)      # the first pass, in the order it ran
         with open(WORK / f"{area}.passes.log", "a") as log:   # each pass's tally, kept
             log.write(time.strftime("%Y-%m-%dT%H:%M:%SZ ", time.gmtime()))
             log.write(subprocess.run([PY, __file__, "report", area], capture_output=True,
@@ -217,8 +274,42 @@ def cmd_exec(area: str, A: dict, rerun: bool) -> None:
         c = sqlite3.connect(db)
         c.execute("delete from work_results where upper(test_outcome) = 'SURVIVED'")
         c.commit()
-    subprocess.run(["nice", "-n", "15", CR, "exec", str(WORK / f"{area}.toml"),
-                    str(db)], cwd=copy)
+        c.close()
+    batch = int(os.environ.get("MUTATION_BATCH") or 0)
+    target = _finished(db) + batch
+    p = subprocess.Popen(["nice", "-n", "15", CR, "exec", str(WORK / f"{area}.toml"),
+                          str(db)], cwd=copy, start_new_session=True)
+    try:
+        while p.poll() is None:
+            if batch and _finished(db) >= target:
+                break
+            time.sleep(0.5)
+    finally:
+        if p.poll() is None:
+            for pid in [p.pid, *_descendants(p.pid)]:   # cosmic-ray runs tests in their
+                try:                                    # own process groups
+                    os.killpg(os.getpgid(pid), 15)
+                except (ProcessLookupError, PermissionError):
+                    pass
+            p.wait()
+            time.sleep(1)
+        _restore(area, A)
+
+
+def _descendants(root: int) -> list[int]:
+    parent = {}
+    for d in Path("/proc").iterdir():
+        if d.name.isdigit():
+            try:
+                parent[int(d.name)] = int((d / "stat").read_text().rsplit(")", 1)[1].split()[1])
+            except (OSError, ValueError, IndexError):
+                pass
+    out, todo = [], [root]
+    while todo:
+        kids = [q for q, pp in parent.items() if pp == todo.pop()]
+        out += kids
+        todo += kids
+    return out
 
 
 def wilson(k: int, n: int, z: float = 1.959964) -> tuple[float, float]:
@@ -275,6 +366,8 @@ def main(argv):
         cmd_map(area, A, argv[2:])
     elif cmd == "init":
         cmd_init(area, A)
+    elif cmd == "durations":
+        cmd_durations(area, A)
     elif cmd == "select":
         cmd_select(area, A)
     elif cmd in ("exec", "rerun"):
