@@ -60,3 +60,15 @@ def test_output_still_in_the_pipe_at_exit_keeps_its_last_capture_bytes():
                                    capture_bytes=1000))
             assert m.status == "ok", m.message
             assert m.stdout_tail == text[-1000:]
+
+
+def test_a_run_stopped_at_its_time_limit_keeps_what_it_said_while_stopping():
+    # Planted truth: the run answers SIGTERM by writing a line to stderr, then exits. The
+    # launcher stops it at its time limit (0.3 s) and then reads the pipes for linger_s,
+    # so the line is in the run's stderr tail.
+    script = 'trap "echo stopping >&2; exit 3" TERM; echo started; sleep 30 & wait'
+    with LocalExecutor(kill_grace_s=2.0, linger_s=1.0) as ex:
+        m = ex.execute(RunSpec(argv=("sh", "-c", script), env=ENV, timeout_s=0.3))
+    assert m.status == "timeout", m.message
+    assert m.stdout_tail.split() == [b"started"]
+    assert m.stderr_tail.split() == [b"stopping"]
