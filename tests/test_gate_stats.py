@@ -74,11 +74,14 @@ def test_fixed_pairs_matches_statsmodels_power():
     # Outside check: statsmodels TTestPower (one-sample / paired t-test power).
     from statsmodels.stats.power import TTestPower
 
-    for d in (0.5, 1.1):
+    p = TTestPower()
+    # 1.8 and 2.2 standard deviations need only 6 and 5 blocks: there the t distribution's
+    # degrees of freedom (n - 1) decide the smallest n
+    for d in (0.5, 1.1, 1.8, 2.2):
         n = fixed_pairs(0.05, 0.05, d)
-        p = TTestPower()
         assert p.power(effect_size=d, nobs=n, alpha=0.05, alternative="larger") >= 0.95
         assert p.power(effect_size=d, nobs=n - 1, alpha=0.05, alternative="larger") < 0.95
+    assert fixed_pairs(0.05, 0.05, 1.8) == 6 and fixed_pairs(0.05, 0.05, 2.2) == 5
 
 
 def _blocks(ratio, n, sd=0.02, seed=0):

@@ -306,7 +306,8 @@ def _descendants(root: int) -> list[int]:
                 pass
     out, todo = [], [root]
     while todo:
-        kids = [q for q, pp in parent.items() if pp == todo.pop()]
+        pid = todo.pop()
+        kids = [q for q, pp in parent.items() if pp == pid]
         out += kids
         todo += kids
     return out
