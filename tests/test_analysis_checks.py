@@ -270,3 +270,25 @@ def test_ratio_interval_uses_the_covariance_of_the_two_level_means():
     assert e["ratio"] == pytest.approx(ratio, rel=1e-9)
     assert e["lower"] == pytest.approx(ratio * np.exp(-q * s), rel=1e-7)
     assert e["upper"] == pytest.approx(ratio * np.exp(q * s), rel=1e-7)
+
+
+def test_a_level_the_experiment_does_not_list_is_named_in_the_error(tmp_path):
+    # Planted: the runs table holds a level ('buddy') that the experiment file does not
+    # list; the error names that level (not some listed one) and the listed ones.
+    import pandas as pd
+
+    from benchharness.analysis.prepare import prepare
+    from benchharness.errors import DataError
+    from benchharness.experiment.file import Experiment
+    from benchharness.results.journal import Results
+
+    exp = Experiment.from_text("experiment: e\ncommand: [echo, '{alloc}']\n"
+                               "factors:\n  alloc: [arena, pool, slab]\n")
+    runs = pd.DataFrame({"run": range(6), "status": ["ok"] * 6,
+                         "alloc": ["arena", "pool", "slab", "pool", "buddy", "arena"],
+                         "wall_s": [1.0, 2.0, 3.0, 2.0, 1.0, 1.0]})
+    res = Results(path=tmp_path, experiment=exp, runs=runs, host={}, plan=None, session={})
+    with pytest.raises(DataError) as e:
+        prepare(res, factors=["alloc"])
+    assert str(e.value) == ("factor 'alloc': level 'buddy' in the data is not one of the "
+                            "levels listed in the experiment ('arena', 'pool', 'slab')")
