@@ -378,66 +378,22 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
     for host, idx in groups.items():
         idx_a = np.asarray(idx)
         xs = x[idx_a]
-        v = moderated_variances(sd[idx_a], n[idx_a])
-        if not np.isfinite(v).all():
-            # no usable spread at all (single runs everywhere): fall back to the
-            # scatter of the points themselves
-            spread = np.var(np.diff(xs), ddof=0) / 2 if len(xs) > 2 else np.nan
-            v = np.full(len(xs), spread if np.isfinite(spread) and spread > 0 else 1e-12)
+        v = _host_variances(xs, sd[idx_a], n[idx_a])
         tau2 = session_variance(xs, v)
         taus.append(math.sqrt(tau2))
         w = 1.0 / (v + tau2)
-        cps: list[int] = []
-        crit = math.nan
         at_tip = host == newest and len(xs) >= tip.MIN_TIP_POINTS
         level = alpha / 2 if at_tip else alpha      # shared with the newest-commits test
-        if len(xs) >= MIN_POINTS:
-            stat, crit, pvalue = permutation_test(xs, v, level, n_sim)
-            if pvalue <= level:
-                # penalty per step min(c, (c + price)/2): whatever made the test
-                # fire (one step, or a step and a step back) is then always found
-                c = min(crit, stat * (1 - 1e-9))
-                cps = pelt(xs, w, min(c, (c + step_back_price(len(xs))) / 2))
-                cps = prune_steps(xs, w, cps, c)
+        cps, crit = _whole_series_steps(xs, v, w, level, n_sim)
         found_by = {k: ("whole series", crit) for k in cps}
-        pending = None       # (index in xs, statistic, critical): the newest point alone
-        if at_tip:
-            if cps and cps[-1] == len(xs) - 1:
-                pending = (cps.pop(), math.nan, crit)   # one commit shows it: not yet
-            start = cps[-1] if cps else 0
-            res = tip.tip_test(xs[start:], v[start:], alpha / 2)
-            if res is not None and res.confirmed:
-                cps.append(len(xs) - res.k)
-                found_by[len(xs) - res.k] = ("newest commits", res.critical)
-                pending = None
-            elif res is not None:
-                # the newest res.k commits differ (k = 1: the newest alone), but the
-                # look before did not show it yet: not yet confirmed, at the first of them
-                pending = (len(xs) - res.k, res.statistic, res.critical)
+        pending = _newest_commits(xs, v, cps, found_by, alpha, crit) if at_tip else None
         edges = [0] + cps + [len(xs)]
-        segs = []
-        for s0, s1 in zip(edges[:-1], edges[1:]):
-            m, se = _wmean(xs[s0:s1], w[s0:s1])
-            seg = Segment(int(idx_a[s0]), int(idx_a[s1 - 1]) + 1, m, se, host)
-            segs.append(seg)
+        segs = _host_segments(xs, w, idx_a, edges, host)
+        for seg, s0, s1 in zip(segs, edges[:-1], edges[1:]):
             for k in idx_a[s0:s1]:
                 segment_of[int(k)] = seg
         segments.extend(segs)
-        local = local_statistics(xs, w, cps)
-        for j, cp in enumerate(cps):
-            before, after = segs[j], segs[j + 1]
-            r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
-            if len(xs) - cp < 2:
-                persists = None
-            else:
-                # every later segment of this host stays shifted the same way
-                persists = True
-                for later in segs[j + 1:]:
-                    _, rlo, rhi = _ratio(later.mean, later.se, before.mean, before.se, z)
-                    if not (rlo > 1 if r > 1 else rhi < 1):
-                        persists = False
-            by, used = found_by.get(cp, ("whole series", crit))
-            steps.append(Step(int(idx_a[cp]), r, lo, hi, persists, local[j], used, by))
+        steps.extend(_host_steps(xs, w, idx_a, cps, segs, found_by, crit, z))
         if pending is not None:
             k, stat_p, crit_p = pending
             m0, se0 = _wmean(xs[edges[-2]:k], w[edges[-2]:k])   # the stretch before it
@@ -445,14 +401,102 @@ def detect_steps(x, sd, n, hosts=None, alpha: float = 0.05, conf_level: float = 
             r, lo, hi = _ratio(m1, se1, m0, se0, z)
             unconfirmed.append(Step(int(idx_a[k]), r, lo, hi, None, stat_p, crit_p,
                                     "newest commits", len(xs) - k))
+    breaks = _host_breaks(hosts, segment_of, z)
+    steps.sort(key=lambda st: st.index)
+    segments.sort(key=lambda sg: (sg.start, sg.host))
+    return Detection(tuple(steps), tuple(breaks), tuple(segments), tuple(taus), alpha,
+                     tuple(unconfirmed))
+
+
+def _host_variances(xs: np.ndarray, sd: np.ndarray, n: np.ndarray) -> np.ndarray:
+    """Variance of each point's log mean on one host, moderated; when no point has a usable
+    spread (single runs everywhere), the scatter of the points themselves."""
+    v = moderated_variances(sd, n)
+    if not np.isfinite(v).all():
+        # no usable spread at all (single runs everywhere): fall back to the
+        # scatter of the points themselves
+        spread = np.var(np.diff(xs), ddof=0) / 2 if len(xs) > 2 else np.nan
+        v = np.full(len(xs), spread if np.isfinite(spread) and spread > 0 else 1e-12)
+    return v
+
+
+def _whole_series_steps(xs, v, w, level: float, n_sim: int) -> tuple[list[int], float]:
+    """(step positions, critical value) of one host's series: a permutation test at
+    ``level`` for any step, then PELT and pruning to place them when it fires."""
+    cps: list[int] = []
+    crit = math.nan
+    if len(xs) >= MIN_POINTS:
+        stat, crit, pvalue = permutation_test(xs, v, level, n_sim)
+        if pvalue <= level:
+            # penalty per step min(c, (c + price)/2): whatever made the test
+            # fire (one step, or a step and a step back) is then always found
+            c = min(crit, stat * (1 - 1e-9))
+            cps = pelt(xs, w, min(c, (c + step_back_price(len(xs))) / 2))
+            cps = prune_steps(xs, w, cps, c)
+    return cps, crit
+
+
+def _newest_commits(xs, v, cps: list[int], found_by: dict, alpha: float, crit: float):
+    """The newest-commits test on the series since its last step (updates ``cps`` and
+    ``found_by`` with a confirmed step); the step not yet confirmed, as (index in xs,
+    statistic, critical), or None."""
+    from benchharness.history import tip
+
+    pending = None       # (index in xs, statistic, critical): the newest point alone
+    if cps and cps[-1] == len(xs) - 1:
+        pending = (cps.pop(), math.nan, crit)   # one commit shows it: not yet
+    start = cps[-1] if cps else 0
+    res = tip.tip_test(xs[start:], v[start:], alpha / 2)
+    if res is not None and res.confirmed:
+        cps.append(len(xs) - res.k)
+        found_by[len(xs) - res.k] = ("newest commits", res.critical)
+        pending = None
+    elif res is not None:
+        # the newest res.k commits differ (k = 1: the newest alone), but the
+        # look before did not show it yet: not yet confirmed, at the first of them
+        pending = (len(xs) - res.k, res.statistic, res.critical)
+    return pending
+
+
+def _host_segments(xs, w, idx_a, edges: list[int], host) -> list[Segment]:
+    """The segments between one host's steps, each with its weighted mean and SE."""
+    segs = []
+    for s0, s1 in zip(edges[:-1], edges[1:]):
+        m, se = _wmean(xs[s0:s1], w[s0:s1])
+        segs.append(Segment(int(idx_a[s0]), int(idx_a[s1 - 1]) + 1, m, se, host))
+    return segs
+
+
+def _host_steps(xs, w, idx_a, cps: list[int], segs: list[Segment], found_by: dict,
+                crit: float, z: float) -> list[Step]:
+    """One host's steps: the ratio across each with its interval, and whether every later
+    segment stays shifted the same way (None when too few points follow)."""
+    steps = []
+    local = local_statistics(xs, w, cps)
+    for j, cp in enumerate(cps):
+        before, after = segs[j], segs[j + 1]
+        r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
+        if len(xs) - cp < 2:
+            persists = None
+        else:
+            # every later segment of this host stays shifted the same way
+            persists = True
+            for later in segs[j + 1:]:
+                _, rlo, rhi = _ratio(later.mean, later.se, before.mean, before.se, z)
+                if not (rlo > 1 if r > 1 else rhi < 1):
+                    persists = False
+        by, used = found_by.get(cp, ("whole series", crit))
+        steps.append(Step(int(idx_a[cp]), r, lo, hi, persists, local[j], used, by))
+    return steps
+
+
+def _host_breaks(hosts: list, segment_of: dict[int, Segment], z: float) -> list[HostBreak]:
+    """Every change of host between consecutive points, with the ratio across it."""
     breaks: list[HostBreak] = []
-    for b in range(1, N):
+    for b in range(1, len(hosts)):
         if hosts[b] == hosts[b - 1]:
             continue
         before, after = segment_of[b - 1], segment_of[b]
         r, lo, hi = _ratio(after.mean, after.se, before.mean, before.se, z)
         breaks.append(HostBreak(b, hosts[b - 1], hosts[b], r, lo, hi))
-    steps.sort(key=lambda st: st.index)
-    segments.sort(key=lambda sg: (sg.start, sg.host))
-    return Detection(tuple(steps), tuple(breaks), tuple(segments), tuple(taus), alpha,
-                     tuple(unconfirmed))
+    return breaks
