@@ -96,53 +96,65 @@ def _as_recorded(r) -> Point:
 def build_trends(history, alpha: float = 0.05, conf_level: float = 0.95,
                  n_sim: int | None = None) -> list[CellTrend]:
     """Per-cell trends (with step detection) from a `read_history` DataFrame."""
-    import numpy as np
-
-    from benchharness.history import changepoint as cp
-
     trends: list[CellTrend] = []
     if history is None or len(history) == 0:
         return trends
     for (exp, resp, cell_json), grp in history.groupby(["experiment", "response", "cell"],
                                                        sort=False):
-        rows = grp.to_dict("records")
-        scales = {r["scale"] for r in rows}
-        scale = "log" if scales == {"log"} else "linear"
-        note = ""
-        if len(scales) > 1:
-            note = ("some folders had values <= 0, so this cell is shown on its own scale "
-                    "and steps are not searched for")
-        points: list[Point] = []
-        if len(scales) > 1:
-            # a mixture of scales cannot be pooled: one point per folder, as recorded
-            points = [_as_recorded(r) for r in rows]
-        else:
-            group: list[dict] = []
-            for r in rows:
-                if group and (r["commit_id"] != group[0]["commit_id"]
-                              or r["host_fingerprint"] != group[0]["host_fingerprint"]):
-                    points.append(_pool(group, scale, conf_level))
-                    group = []
-                group.append(r)
-            if group:
-                points.append(_pool(group, scale, conf_level))
-        det = None
-        if scale == "log" and len(scales) == 1:
-            kw = {} if n_sim is None else {"n_sim": n_sim}
-            det = cp.detect_steps(np.array([p.mean for p in points]),
-                                  np.array([p.sd for p in points]),
-                                  np.array([p.n for p in points]),
-                                  hosts=[p.host for p in points], alpha=alpha,
-                                  conf_level=conf_level, **kw)
-            if len(points) < 3:
-                note = ("steps are searched for from 3 commits on one host (a change at the "
-                        f"newest commits), {cp.MIN_POINTS} for the whole series")
-        elif scale == "linear" and not note:
-            note = "values <= 0 occur, so steps (ratios) are not searched for"
-        trends.append(CellTrend(experiment=exp, response=resp, cell=json.loads(cell_json),
-                                scale=scale, points=tuple(points), detection=det, note=note,
-                                conf_level=conf_level))
+        trends.append(_cell_trend(exp, resp, cell_json, grp.to_dict("records"), alpha,
+                                  conf_level, n_sim))
     return trends
+
+
+def _cell_trend(exp: str, resp: str, cell_json: str, rows: list[dict], alpha: float,
+                conf_level: float, n_sim: int | None) -> CellTrend:
+    """One cell's trend: its points over commits and, on the log scale, the steps found."""
+    import numpy as np
+
+    from benchharness.history import changepoint as cp
+
+    scales = {r["scale"] for r in rows}
+    scale = "log" if scales == {"log"} else "linear"
+    note = ""
+    if len(scales) > 1:
+        note = ("some folders had values <= 0, so this cell is shown on its own scale "
+                "and steps are not searched for")
+    points = _cell_points(rows, scale, len(scales) > 1, conf_level)
+    det = None
+    if scale == "log" and len(scales) == 1:
+        kw = {} if n_sim is None else {"n_sim": n_sim}
+        det = cp.detect_steps(np.array([p.mean for p in points]),
+                              np.array([p.sd for p in points]),
+                              np.array([p.n for p in points]),
+                              hosts=[p.host for p in points], alpha=alpha,
+                              conf_level=conf_level, **kw)
+        if len(points) < 3:
+            note = ("steps are searched for from 3 commits on one host (a change at the "
+                    f"newest commits), {cp.MIN_POINTS} for the whole series")
+    elif scale == "linear" and not note:
+        note = "values <= 0 occur, so steps (ratios) are not searched for"
+    return CellTrend(experiment=exp, response=resp, cell=json.loads(cell_json),
+                     scale=scale, points=tuple(points), detection=det, note=note,
+                     conf_level=conf_level)
+
+
+def _cell_points(rows: list[dict], scale: str, mixed: bool, conf_level: float) -> list[Point]:
+    """One point per run of consecutive folders of one commit on one host, pooled; with
+    ``mixed`` scales (which cannot be pooled), one point per folder as recorded."""
+    if mixed:
+        # a mixture of scales cannot be pooled: one point per folder, as recorded
+        return [_as_recorded(r) for r in rows]
+    points: list[Point] = []
+    group: list[dict] = []
+    for r in rows:
+        if group and (r["commit_id"] != group[0]["commit_id"]
+                      or r["host_fingerprint"] != group[0]["host_fingerprint"]):
+            points.append(_pool(group, scale, conf_level))
+            group = []
+        group.append(r)
+    if group:
+        points.append(_pool(group, scale, conf_level))
+    return points
 
 
 def step_kind(response: str, ratio: float, persists) -> str:
