@@ -112,8 +112,6 @@ def headline(trends: list[CellTrend]) -> str:
 
 
 def print_trends(trends: list[CellTrend], console=None) -> None:
-    from rich.table import Table
-
     from benchharness.report.terminal import make_console
 
     console = console or make_console()
@@ -123,70 +121,87 @@ def print_trends(trends: list[CellTrend], console=None) -> None:
     console.print(headline(trends), highlight=False)
     console.print()
     for t in trends:
-        scale = "geo. mean" if t.scale == "log" else "mean"
-        branches = {p.branch for p in t.points}
-        title = (f"{t.experiment} | {t.response} "
-                 f"({'log scale' if t.scale == 'log' else 'original scale'}) | {t.label}")
-        if len(branches) == 1 and None not in branches:
-            title += f" | branch {next(iter(branches))}"
-        table = Table(title=title, title_justify="left")
-        cols = [("#", "right"), ("commit", "left")]
-        with_time = any(p.commit_time for p in t.points)
-        with_branch = len(branches) > 1
-        if with_time:
-            cols.append(("date", "left"))
-        if with_branch:
-            cols.append(("branch", "left"))
-        cols += [("n", "right"), (scale, "right"),
-                 (f"{round(t.conf_level * 100)}% interval", "right"), ("noise", "right"),
-                 ("change here", "left")]
-        for col, just in cols:
-            if col == "change here":
-                table.add_column(col, justify=just, overflow="fold")
-            else:
-                table.add_column(col, justify=just, no_wrap=True)
-        notes = point_notes(t)
-        sc = _scale(t)
-        for i, p in enumerate(t.points):
-            noise = "-"
-            if math.isfinite(p.sd):
-                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
-            ci = "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high)
-            row = [str(i + 1), p.commit[:10]]
-            if with_time:
-                row.append((p.commit_time or "")[:10])
-            if with_branch:
-                row.append(p.branch or "")
-            row += [str(p.n), sc.fmt(p.center), ci, noise, notes.get(i, "")]
-            table.add_row(*row)
-        console.print(table)
-        det = t.detection
-        if det is not None:
-            if det.steps:
-                console.print(f"  {plural(len(det.steps), 'step')} found (false-step level "
-                              f"{det.alpha:g} per host).")
-            elif len(t.points) >= 3:
-                console.print(f"  No step found (false-step level {det.alpha:g} per host).")
-            for u in det.unconfirmed:
-                label = "Newest commit" if (u.newest or 1) == 1 else "Commit"
-                console.print(f"  {label} {t.points[u.index].commit[:12]}: "
-                              f"{unconfirmed_text(t, u)[len('NOT YET CONFIRMED: '):]} "
-                              "(not yet confirmed; not counted as a step).", highlight=False)
+        console.print(_trend_table(t))
+        _print_detection(console, t)
         if t.note:
             console.print(f"  Note: {t.note}.")
         console.print()
-    rows = step_rows(trends)
     if len(trends) > 1:
-        summary = Table(title=f"Steps found in {len(trends)} cell series", title_justify="left")
-        for col in ("cell", "commit", "kind", "ratio", "interval", "lasts"):
-            summary.add_column(col, overflow="fold")
-        for r in rows:
-            summary.add_row(r["cell"], r["commit"], r["kind"], r["ratio"], r["interval"],
-                            r["lasts"])
-        if rows:
-            console.print(summary)
-        else:
-            console.print(f"No steps found in {len(trends)} cell series.")
+        _print_step_summary(console, trends)
+
+
+def _trend_table(t: CellTrend):
+    """The rich table of one cell series: one row per point, the change at each."""
+    from rich.table import Table
+
+    scale = "geo. mean" if t.scale == "log" else "mean"
+    branches = {p.branch for p in t.points}
+    title = (f"{t.experiment} | {t.response} "
+             f"({'log scale' if t.scale == 'log' else 'original scale'}) | {t.label}")
+    if len(branches) == 1 and None not in branches:
+        title += f" | branch {next(iter(branches))}"
+    table = Table(title=title, title_justify="left")
+    cols = [("#", "right"), ("commit", "left")]
+    with_time = any(p.commit_time for p in t.points)
+    with_branch = len(branches) > 1
+    if with_time:
+        cols.append(("date", "left"))
+    if with_branch:
+        cols.append(("branch", "left"))
+    cols += [("n", "right"), (scale, "right"),
+             (f"{round(t.conf_level * 100)}% interval", "right"), ("noise", "right")]
+    for col, just in cols:
+        table.add_column(col, justify=just, no_wrap=True)
+    table.add_column("change here", justify="left", overflow="fold")
+    notes = point_notes(t)
+    sc = _scale(t)
+    for i, p in enumerate(t.points):
+        noise = "-"
+        if math.isfinite(p.sd):
+            noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
+        ci = "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high)
+        row = [str(i + 1), p.commit[:10]]
+        if with_time:
+            row.append((p.commit_time or "")[:10])
+        if with_branch:
+            row.append(p.branch or "")
+        row += [str(p.n), sc.fmt(p.center), ci, noise, notes.get(i, "")]
+        table.add_row(*row)
+    return table
+
+
+def _print_detection(console, t: CellTrend) -> None:
+    """Under a cell's table: how many steps were found, and changes not yet confirmed."""
+    det = t.detection
+    if det is None:
+        return
+    if det.steps:
+        console.print(f"  {plural(len(det.steps), 'step')} found (false-step level "
+                      f"{det.alpha:g} per host).")
+    elif len(t.points) >= 3:
+        console.print(f"  No step found (false-step level {det.alpha:g} per host).")
+    for u in det.unconfirmed:
+        label = "Newest commit" if (u.newest or 1) == 1 else "Commit"
+        console.print(f"  {label} {t.points[u.index].commit[:12]}: "
+                      f"{unconfirmed_text(t, u)[len('NOT YET CONFIRMED: '):]} "
+                      "(not yet confirmed; not counted as a step).", highlight=False)
+
+
+def _print_step_summary(console, trends: list[CellTrend]) -> None:
+    """The steps of all the cell series in one table (or that there are none)."""
+    from rich.table import Table
+
+    rows = step_rows(trends)
+    summary = Table(title=f"Steps found in {len(trends)} cell series", title_justify="left")
+    for col in ("cell", "commit", "kind", "ratio", "interval", "lasts"):
+        summary.add_column(col, overflow="fold")
+    for r in rows:
+        summary.add_row(r["cell"], r["commit"], r["kind"], r["ratio"], r["interval"],
+                        r["lasts"])
+    if rows:
+        console.print(summary)
+    else:
+        console.print(f"No steps found in {len(trends)} cell series.")
 
 
 # ------------------------------------------------------------------- HTML
@@ -299,31 +314,43 @@ def render_html(trends: list[CellTrend], experiment: str | None = None,
     cells = []
     for t in trends:
         notes = point_notes(t)
-        det = t.detection
-        breaks = {b.index for b in det.breaks} if det is not None else set()
-        rows = []
-        sc = _scale(t)
-        for i, p in enumerate(t.points):
-            noise = "-"
-            if math.isfinite(p.sd):
-                noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
-            rows.append({"i": i + 1, "commit": p.commit[:12], "time": (p.commit_time or "")[:19],
-                         "branch": p.branch or "", "n": p.n, "center": sc.fmt(p.center),
-                         "ci": "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high),
-                         "noise": noise, "note": notes.get(i, ""),
-                         "cls": "host" if i in breaks else ("step" if i in notes else "")})
-        summary = ""
-        if det is not None and det.steps:
-            summary = "; ".join(f"{notes[s.index]} at {t.points[s.index].commit[:12]}"
-                                for s in det.steps)
-        elif det is not None and len(t.points) >= 3:
-            summary = "No step found."
-        if det is not None and det.unconfirmed:
-            summary = "; ".join([summary] * bool(summary) + [
-                f"{notes[u.index]} ({t.points[u.index].commit[:12]})" for u in det.unconfirmed])
-        cells.append({"trend": t, "rows": rows, "svg": trend_figure_svg(t), "summary": summary,
+        cells.append({"trend": t, "rows": _html_rows(t, notes), "svg": trend_figure_svg(t),
+                      "summary": _html_summary(t, notes),
                       "with_time": any(p.commit_time for p in t.points)})
     return env.from_string(_PAGE).render(
         cells=cells, experiment=experiment, alpha=alpha, all_steps=step_rows(trends),
         conf_pct=round((trends[0].conf_level if trends else 0.95) * 100),
         any_log=any(t.scale == "log" for t in trends))
+
+
+def _html_rows(t: CellTrend, notes: dict[int, str]) -> list[dict]:
+    """The page's table rows of one cell series; a host change or a step marks its row."""
+    det = t.detection
+    breaks = {b.index for b in det.breaks} if det is not None else set()
+    rows = []
+    sc = _scale(t)
+    for i, p in enumerate(t.points):
+        noise = "-"
+        if math.isfinite(p.sd):
+            noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
+        rows.append({"i": i + 1, "commit": p.commit[:12], "time": (p.commit_time or "")[:19],
+                     "branch": p.branch or "", "n": p.n, "center": sc.fmt(p.center),
+                     "ci": "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high),
+                     "noise": noise, "note": notes.get(i, ""),
+                     "cls": "host" if i in breaks else ("step" if i in notes else "")})
+    return rows
+
+
+def _html_summary(t: CellTrend, notes: dict[int, str]) -> str:
+    """One line under a cell's figure: its steps and changes not yet confirmed."""
+    det = t.detection
+    summary = ""
+    if det is not None and det.steps:
+        summary = "; ".join(f"{notes[s.index]} at {t.points[s.index].commit[:12]}"
+                            for s in det.steps)
+    elif det is not None and len(t.points) >= 3:
+        summary = "No step found."
+    if det is not None and det.unconfirmed:
+        summary = "; ".join([summary] * bool(summary) + [
+            f"{notes[u.index]} ({t.points[u.index].commit[:12]})" for u in det.unconfirmed])
+    return summary
