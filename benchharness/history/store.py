@@ -176,9 +176,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     of a folder is its own record.
     """
     from benchharness.history.cells import summarize_cells
-    from benchharness.history.fingerprint import host_facts, host_fingerprint
-    from benchharness.history.folder import folder_identity, read_folder
-    from benchharness.history.gitinfo import CommitInfo, resolve_commit
+    from benchharness.history.folder import read_folder
 
     data = read_folder(folder)
     runs, factors = _selected(data, select)
@@ -193,53 +191,8 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     try:
         conn.execute("BEGIN IMMEDIATE")
         try:
-            existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
-                                    (record,)).fetchone()
-            if existing is not None:
-                if not _same_commit(existing[0], commit):
-                    raise DataError(f"{data.path}: this results folder is already recorded as "
-                                    f"commit {existing[0]}; a folder measures one commit")
-            else:
-                earlier = None
-                for row in conn.execute(
-                        "SELECT folder_id, journal_size, commit_id, commit_time, branch "
-                        "FROM folders WHERE experiment = ? AND folder_name = ? AND "
-                        "journal_size < ?", (data.experiment, data.name, len(journal_bytes))):
-                    if _record_id(folder_identity(data.experiment, data.name,
-                                                  journal_bytes[:row[1]]), select) == row[0]:
-                        earlier = row
-                        break
-                if earlier is not None:
-                    # the same folder, resumed since: its new summaries replace the old
-                    if not _same_commit(earlier[2], commit):
-                        raise DataError(f"{data.path}: this results folder is already "
-                                        f"recorded as commit {earlier[2]}; a folder measures "
-                                        "one commit")
-                    info = CommitInfo(earlier[2], earlier[3], branch or earlier[4])
-                    conn.execute("DELETE FROM cells WHERE folder_id = ?", (earlier[0],))
-                    conn.execute("DELETE FROM folders WHERE folder_id = ?", (earlier[0],))
-                else:
-                    info = resolve_commit(commit, branch, cwd)
-                _insert_folder(conn, {
-                    "folder_id": record, "folder_name": data.name,
-                    "folder_path": str(data.path.resolve()), "experiment": data.experiment,
-                    "journal_size": len(journal_bytes),
-                    "commit_id": info.commit, "commit_time": info.commit_time,
-                    "branch": info.branch, "started_at": data.first_started_at,
-                    "host_fingerprint": host_fingerprint(data.host),
-                    "host_facts": json.dumps(host_facts(data.host), sort_keys=True),
-                    "host_json": json.dumps(data.host, sort_keys=True, default=str),
-                    "imported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-                })
-            added = 0
-            for order, s in summaries:
-                added += _insert_cell(conn, {
-                    "folder_id": record, "experiment": data.experiment, "cell": s.key,
-                    "cell_order": order,
-                    "response": s.response, "scale": s.scale, "n": s.n, "center": s.center,
-                    "ci_low": s.ci_low, "ci_high": s.ci_high, "conf_level": s.conf_level,
-                    "mean": s.mean, "se": s.se, "noise_sd": s.noise_sd,
-                })
+            _record_folder(conn, data, record, select, journal_bytes, commit, branch, cwd)
+            added = _insert_cells(conn, data, record, summaries)
             conn.execute("COMMIT")
         except BaseException:
             conn.execute("ROLLBACK")
@@ -253,6 +206,75 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
         raise DataError(f"{db_path}: cannot write the history file ({exc})") from None
     finally:
         conn.close()
+
+
+def _record_folder(conn, data, record: str, select, journal_bytes: bytes, commit, branch,
+                   cwd) -> None:
+    """The folder's row, inside the caller's transaction: nothing when it is recorded already
+    (under the same commit, else refused); the earlier rows of the same folder before it was
+    resumed replaced (keeping their commit); else a new row under the commit resolved."""
+    from benchharness.history.fingerprint import host_facts, host_fingerprint
+    from benchharness.history.gitinfo import CommitInfo, resolve_commit
+
+    existing = conn.execute("SELECT commit_id FROM folders WHERE folder_id = ?",
+                            (record,)).fetchone()
+    if existing is not None:
+        if not _same_commit(existing[0], commit):
+            raise DataError(f"{data.path}: this results folder is already recorded as "
+                            f"commit {existing[0]}; a folder measures one commit")
+        return
+    earlier = _earlier_record(conn, data, select, journal_bytes)
+    if earlier is not None:
+        # the same folder, resumed since: its new summaries replace the old
+        if not _same_commit(earlier[2], commit):
+            raise DataError(f"{data.path}: this results folder is already "
+                            f"recorded as commit {earlier[2]}; a folder measures "
+                            "one commit")
+        info = CommitInfo(earlier[2], earlier[3], branch or earlier[4])
+        conn.execute("DELETE FROM cells WHERE folder_id = ?", (earlier[0],))
+        conn.execute("DELETE FROM folders WHERE folder_id = ?", (earlier[0],))
+    else:
+        info = resolve_commit(commit, branch, cwd)
+    _insert_folder(conn, {
+        "folder_id": record, "folder_name": data.name,
+        "folder_path": str(data.path.resolve()), "experiment": data.experiment,
+        "journal_size": len(journal_bytes),
+        "commit_id": info.commit, "commit_time": info.commit_time,
+        "branch": info.branch, "started_at": data.first_started_at,
+        "host_fingerprint": host_fingerprint(data.host),
+        "host_facts": json.dumps(host_facts(data.host), sort_keys=True),
+        "host_json": json.dumps(data.host, sort_keys=True, default=str),
+        "imported_at": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    })
+
+
+def _earlier_record(conn, data, select, journal_bytes: bytes):
+    """The row (folder_id, journal_size, commit_id, commit_time, branch) recording this
+    folder when its journal was shorter (a run resumed since), or None."""
+    from benchharness.history.folder import folder_identity
+
+    for row in conn.execute(
+            "SELECT folder_id, journal_size, commit_id, commit_time, branch "
+            "FROM folders WHERE experiment = ? AND folder_name = ? AND "
+            "journal_size < ?", (data.experiment, data.name, len(journal_bytes))):
+        if _record_id(folder_identity(data.experiment, data.name,
+                                      journal_bytes[:row[1]]), select) == row[0]:
+            return row
+    return None
+
+
+def _insert_cells(conn, data, record: str, summaries) -> int:
+    """The cell rows of the folder's summaries; the number written."""
+    added = 0
+    for order, s in summaries:
+        added += _insert_cell(conn, {
+            "folder_id": record, "experiment": data.experiment, "cell": s.key,
+            "cell_order": order,
+            "response": s.response, "scale": s.scale, "n": s.n, "center": s.center,
+            "ci_low": s.ci_low, "ci_high": s.ci_high, "conf_level": s.conf_level,
+            "mean": s.mean, "se": s.se, "noise_sd": s.noise_sd,
+        })
+    return added
 
 
 def read_history(db_path: str | Path, experiment: str | None = None,
