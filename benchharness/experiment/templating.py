@@ -146,21 +146,13 @@ class _ShellReader:
             i = self._step(s, i)
 
     def _step(self, s: str, i: int) -> int:
+        """Read the character at ``i`` in the current frame; the index of the next one."""
         ch = s[i]
         nxt = s[i + 1] if i + 1 < len(s) else ""
         top = self.stack[-1]
         kind = top[0]
         if kind == "H":
-            if ch == "\n":
-                delim, _quoted, strip = top[1]
-                line = self.line.lstrip("\t") if strip else self.line
-                self.line = ""
-                if line == delim:
-                    self.stack.pop()
-                    self._heredoc_next()
-            else:
-                self.line += ch
-            return i + 1
+            return self._in_heredoc(top, ch, i)
         if self.escape:
             self.escape = False
             self.word_start = False
@@ -178,29 +170,58 @@ class _ShellReader:
             self.escape = True
             return i + 1
         if kind == "D":
-            if ch == '"':
-                self.stack.pop()
-                self.word_start = False
-                return i + 1
-            return self._dollar_or_backquote(s, i, ch, nxt)
+            return self._in_double(s, i, ch, nxt)
         if kind == "A":
-            if ch == "(":
-                top[2] += 1
-            elif ch == ")":
-                top[2] -= 1
-                if top[2] <= 0:
-                    self.stack.pop()
-                    return i + (2 if nxt == ")" else 1)
-            return i + 1
+            return self._in_arith(top, i, ch, nxt)
         if kind == "P":
-            if ch == "}":
+            return self._in_param(s, i, ch, nxt)
+        return self._unquoted(s, i, ch, nxt, top)
+
+    def _in_heredoc(self, top, ch: str, i: int) -> int:
+        """A here-document body: collect the line; its delimiter line closes it."""
+        if ch == "\n":
+            delim, _quoted, strip = top[1]
+            line = self.line.lstrip("\t") if strip else self.line
+            self.line = ""
+            if line == delim:
                 self.stack.pop()
-                return i + 1
-            if ch in "'\"":
-                self.stack.append(["S" if ch == "'" else "D", None, 0])
-                return i + 1
-            return self._dollar_or_backquote(s, i, ch, nxt)
-        # unquoted
+                self._heredoc_next()
+        else:
+            self.line += ch
+        return i + 1
+
+    def _in_double(self, s: str, i: int, ch: str, nxt: str) -> int:
+        """Inside double quotes: the closing quote, or an expansion opening."""
+        if ch == '"':
+            self.stack.pop()
+            self.word_start = False
+            return i + 1
+        return self._dollar_or_backquote(s, i, ch, nxt)
+
+    def _in_arith(self, top, i: int, ch: str, nxt: str) -> int:
+        """Inside ``$(( ))``: count parentheses until the closing ``))``."""
+        if ch == "(":
+            top[2] += 1
+        elif ch == ")":
+            top[2] -= 1
+            if top[2] <= 0:
+                self.stack.pop()
+                return i + (2 if nxt == ")" else 1)
+        return i + 1
+
+    def _in_param(self, s: str, i: int, ch: str, nxt: str) -> int:
+        """Inside ``${ }``: the closing brace, quotes, or an expansion opening."""
+        if ch == "}":
+            self.stack.pop()
+            return i + 1
+        if ch in "'\"":
+            self.stack.append(["S" if ch == "'" else "D", None, 0])
+            return i + 1
+        return self._dollar_or_backquote(s, i, ch, nxt)
+
+    def _unquoted(self, s: str, i: int, ch: str, nxt: str, top) -> int:
+        """Unquoted text (the top level, ``$( )`` or backquotes): quotes, comments,
+        newlines, here-documents, the end of a command substitution, expansions."""
         if ch == "'":
             self.stack.append(["S", None, 0])
             self.word_start = False
