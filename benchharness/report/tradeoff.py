@@ -31,11 +31,8 @@ def _bounds(info: dict, i: int) -> tuple[float, float, float]:
 
 def tradeoff_figure(section: dict, section_id: str = "choose"):
     """A `benchharness.report.figures.Figure`, or None when the choice has no ``also``."""
-    import numpy as np
-
-    from benchharness.report.drawing import (ACCENT, INK, MUTED, PALETTE, log_ticks,
-                                             new_figure, render_figure)
-    from benchharness.report.units import axis_label, display_scale, unit_of
+    from benchharness.report.drawing import new_figure, render_figure
+    from benchharness.report.units import axis_label, unit_of
 
     d = section.get("choice") or {}
     also = d.get("also") or []
@@ -49,16 +46,42 @@ def tradeoff_figure(section: dict, section_id: str = "choose"):
     n = len(cands)
     if n == 0 or len(rx.get("means") or []) != n or len(ry.get("means") or []) != n:
         return None
-    xs = [_bounds(rx, i) for i in range(n)]
-    ys = [_bounds(ry, i) for i in range(n)]
-    mx, ux = display_scale(resp, float(np.median([x[0] for x in xs])))
-    my, uy = display_scale(other, float(np.median([y[0] for y in ys])))
-    xs = [tuple(v * mx for v in x) for x in xs]
-    ys = [tuple(v * my for v in y) for y in ys]
+    xs, ux = _points(rx, resp, n)
+    ys, uy = _points(ry, other, n)
     on = [bool(c.get("on_front")) for c in cands]
     fig = new_figure(7.2, 4.6)
     ax = fig.subplots()
     ax.margins(x=0.14, y=0.1)  # room for the labels at the edges
+    _draw_settings(ax, cands, xs, ys, on)
+    for axis, info, vals in ((ax.xaxis, rx, xs), (ax.yaxis, ry, ys)):
+        _log_axis(ax, axis, info, vals)
+    ax.set_xlabel(axis_label(resp, ux or unit_of(resp)) + f" ({rx.get('better', 'lower')} is "
+                  "better)")
+    ax.set_ylabel(axis_label(other, uy or unit_of(other)) + f" ({ry.get('better', 'lower')} is "
+                  "better)")
+    n_front = sum(on)
+    ax.set_title(f"Trading {resp} against {other}: {n_front} of {n} settings on the front")
+    return render_figure(fig, "choose-tradeoff", f"Trade-off between {resp} and {other}",
+                         _caption(d, resp, other, rx, also), section_id)
+
+
+def _points(info: dict, name: str, n: int) -> tuple[list[tuple[float, float, float]], str]:
+    """(mean, low, high) of each setting in the display unit of response ``name``, and
+    that unit."""
+    import numpy as np
+
+    from benchharness.report.units import display_scale
+
+    vals = [_bounds(info, i) for i in range(n)]
+    mult, unit = display_scale(name, float(np.median([v[0] for v in vals])))
+    return [tuple(v * mult for v in val) for val in vals], unit
+
+
+def _draw_settings(ax, cands: list[dict], xs, ys, on: list[bool]) -> None:
+    """One point per setting with its intervals on both axes: filled on the front, hollow and
+    muted off it, the recommendation ringed; the front joined in order of x."""
+    from benchharness.report.drawing import ACCENT, INK, MUTED, PALETTE
+
     for i, c in enumerate(cands):
         x, xl, xh = xs[i]
         y, yl, yh = ys[i]
@@ -70,25 +93,29 @@ def tradeoff_figure(section: dict, section_id: str = "choose"):
             ax.plot([x], [y], "o", ms=13, mfc="none", mec=ACCENT, mew=1.8, zorder=4)
         ax.annotate(_label(c["setting"]), (x, y), xytext=(5, 4), textcoords="offset points",
                     fontsize=7.5, color=INK if on[i] else MUTED, zorder=5)
-    front = sorted((xs[i][0], ys[i][0]) for i in range(n) if on[i])
+    front = sorted((xs[i][0], ys[i][0]) for i in range(len(cands)) if on[i])
     if len(front) > 1:
         ax.plot([p[0] for p in front], [p[1] for p in front], "-", color=PALETTE[0], lw=1.4,
                 alpha=0.7, zorder=2, label="trade-off front")
         ax.legend(fontsize=8, loc="best")
-    for axis, info, vals in ((ax.xaxis, rx, xs), (ax.yaxis, ry, ys)):
-        if info.get("scale") == "log" and min(v[1] for v in vals) > 0:
-            lo = min(v[1] for v in vals)
-            hi = max(v[2] for v in vals)
-            (ax.set_xscale if axis is ax.xaxis else ax.set_yscale)("log")
-            log_ticks(axis, lo, hi)
-    ax.set_xlabel(axis_label(resp, ux or unit_of(resp)) + f" ({rx.get('better', 'lower')} is "
-                  "better)")
-    ax.set_ylabel(axis_label(other, uy or unit_of(other)) + f" ({ry.get('better', 'lower')} is "
-                  "better)")
+
+
+def _log_axis(ax, axis, info: dict, vals) -> None:
+    """A log axis, ticked over the intervals' range, for a response analysed on the log
+    scale whose lower bounds are all positive."""
+    from benchharness.report.drawing import log_ticks
+
+    if info.get("scale") == "log" and min(v[1] for v in vals) > 0:
+        lo = min(v[1] for v in vals)
+        hi = max(v[2] for v in vals)
+        (ax.set_xscale if axis is ax.xaxis else ax.set_yscale)("log")
+        log_ticks(axis, lo, hi)
+
+
+def _caption(d: dict, resp: str, other: str, rx: dict, also: list) -> str:
+    """What the figure shows: points, intervals, the front and its margin, the ring."""
     conf = f"{float(d.get('confidence', 0.95)) * 100:g}%"
     within = d.get("within")
-    n_front = sum(on)
-    ax.set_title(f"Trading {resp} against {other}: {n_front} of {n} settings on the front")
     cap = (f"One point per setting: its {'geometric ' if rx.get('scale') == 'log' else ''}mean "
            f"{resp} across and its {other} up, each with its own {conf} interval. Filled points "
            f"joined by the line are on the trade-off front; a hollow point is beaten: another "
@@ -99,5 +126,4 @@ def tradeoff_figure(section: dict, section_id: str = "choose"):
     if len(also) > 1:
         cap += (f" The front was decided on {', '.join([resp] + list(also))}; only the first "
                 "two are drawn.")
-    return render_figure(fig, "choose-tradeoff", f"Trade-off between {resp} and {other}", cap,
-                   section_id)
+    return cap
