@@ -112,9 +112,6 @@ def declared_roles(experiment) -> Roles | None:
     Raises `ExperimentError` at ``FILE:LINE:COL`` for an unknown role, an
     unknown factor, or a factor given two roles.
     """
-    from benchharness.experiment.yamlnodes import (is_null, mapping_items, node_error, scalar_text,
-                                        suggest)
-
     if experiment is None:
         return None
     node = (getattr(experiment, "sections", None) or {}).get("roles")
@@ -123,32 +120,7 @@ def declared_roles(experiment) -> Roles | None:
     path = str(getattr(experiment, "path", "") or "") or None
     names = tuple(experiment.factor_names)
     try:
-        if is_null(node):
-            raise node_error(node, "'roles' is empty; map a role to its factors, e.g. "
-                                   "roles: {workload: [size]}")
-        given: dict[str, list[str]] = {r: [] for r in ROLES}
-        seen: dict[str, tuple[str, object]] = {}
-        for role, knode, vnode in mapping_items(node, "'roles'"):
-            if role not in ROLES:
-                raise node_error(knode, f"unknown role {role!r} in 'roles'; "
-                                        f"{suggest(role, ROLES)} (roles: {', '.join(ROLES)})")
-            import yaml
-
-            if is_null(vnode):
-                continue
-            entries = vnode.value if isinstance(vnode, yaml.SequenceNode) else [vnode]
-            for e in entries:
-                f = scalar_text(e, f"an entry of roles.{role}")
-                if f not in names:
-                    raise node_error(e, f"roles.{role}: {f!r} is not a factor; "
-                                        f"{suggest(f, names)} (factors: {', '.join(names)})")
-                if f in seen:
-                    other, onode = seen[f]
-                    raise node_error(e, f"roles.{role}: {f!r} already has the role {other!r} "
-                                        f"(line {onode.start_mark.line + 1}); give each factor "
-                                        "one role")
-                seen[f] = (role, e)
-                given[role].append(f)
+        given = _roles_section(node, names)
     except ExperimentError as exc:
         if exc.path in (None, "<string>") and path:
             raise ExperimentError(exc.bare, path=path, line=exc.line, col=exc.col) from None
@@ -158,6 +130,47 @@ def declared_roles(experiment) -> Roles | None:
     return Roles(setting=setting, workload=tuple(f for f in names if f in given["workload"]),
                  environment=tuple(f for f in names if f in given["environment"]),
                  source="experiment file")
+
+
+def _roles_section(node, names) -> dict[str, list[str]]:
+    """Role -> the factors the ``roles:`` node gives it (every role a key)."""
+    from benchharness.experiment.yamlnodes import is_null, mapping_items, node_error, suggest
+
+    if is_null(node):
+        raise node_error(node, "'roles' is empty; map a role to its factors, e.g. "
+                               "roles: {workload: [size]}")
+    given: dict[str, list[str]] = {r: [] for r in ROLES}
+    seen: dict[str, tuple[str, object]] = {}
+    for role, knode, vnode in mapping_items(node, "'roles'"):
+        if role not in ROLES:
+            raise node_error(knode, f"unknown role {role!r} in 'roles'; "
+                                    f"{suggest(role, ROLES)} (roles: {', '.join(ROLES)})")
+        if is_null(vnode):
+            continue
+        _role_entries(role, vnode, names, given, seen)
+    return given
+
+
+def _role_entries(role, vnode, names, given, seen) -> None:
+    """Add the factors listed under one role to ``given``; each must be a factor and have
+    no other role (``seen``: factor -> (role, node) so far)."""
+    import yaml
+
+    from benchharness.experiment.yamlnodes import node_error, scalar_text, suggest
+
+    entries = vnode.value if isinstance(vnode, yaml.SequenceNode) else [vnode]
+    for e in entries:
+        f = scalar_text(e, f"an entry of roles.{role}")
+        if f not in names:
+            raise node_error(e, f"roles.{role}: {f!r} is not a factor; "
+                                f"{suggest(f, names)} (factors: {', '.join(names)})")
+        if f in seen:
+            other, onode = seen[f]
+            raise node_error(e, f"roles.{role}: {f!r} already has the role {other!r} "
+                                f"(line {onode.start_mark.line + 1}); give each factor "
+                                "one role")
+        seen[f] = (role, e)
+        given[role].append(f)
 
 
 def _why_input(name: str, levels: list) -> str | None:
