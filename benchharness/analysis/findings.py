@@ -37,7 +37,7 @@ import re
 
 from benchharness import numbers as _numbers
 
-KINDS = ("interaction", "simple effect", "main", "best", "caution")
+KINDS = ("surface", "interaction", "simple effect", "main", "best", "caution")
 
 #: most cells named in the tied set's statement (the finding lists them all)
 TIED_NAMED = 6
@@ -260,8 +260,9 @@ def term_members(row: dict, factors) -> list[tuple[str, ...]]:
 def derive(d: dict) -> list[dict]:
     """The findings of an analysis (``d`` is the plain content of analysis.json).
 
-    Order: interactions (each followed by its simple effects), main effects,
-    the best cell or tied set, cautions.
+    Order: a response surface's findings (stationary point, fit, proposal),
+    interactions (each followed by its simple effects), main effects, the best cell
+    or tied set, cautions.
     """
     alpha = float(d.get("alpha") or 0.05)
     conf = f"{round((1 - alpha) * 100):g}%"
@@ -272,7 +273,8 @@ def derive(d: dict) -> list[dict]:
             if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
     if ((d.get("model") or {}).get("no_variation") or {}).get("kind") == "constant":
         return _cautions(d)[:1]   # every run the same: that is the whole finding
-    out = _interaction_findings(rows, factors, comps, refs, alpha, conf)
+    out = list((d.get("surface") or {}).get("findings") or [])   # analysis/surface.py
+    out += _interaction_findings(rows, factors, comps, refs, alpha, conf)
     out += _main_findings(rows, factors, out, comps, d.get("effects") or [], refs, alpha, conf)
     if d.get("incomplete"):   # nested terms ("level within codec"): analysis.incomplete
         from benchharness.analysis.incomplete import findings as nested_findings

@@ -54,6 +54,8 @@ class Analysis:
     roles: dict | None = None
     #: cells missing by design, nested factors, what is estimable (analysis.incomplete)
     incomplete: dict | None = None
+    #: a response-surface design: the second-order fit and its findings (analysis/surface.py)
+    surface: dict | None = None
 
     @property
     def anova(self):
@@ -84,6 +86,7 @@ class Analysis:
             "notes": list(self.notes),
             **({"fraction": self.fraction} if self.fraction is not None else {}),
             **({"incomplete": self.incomplete} if self.incomplete is not None else {}),
+            **({"surface": self.surface} if self.surface is not None else {}),
             "roles": self.roles,
             "better": self.better,
             "best": self.best,

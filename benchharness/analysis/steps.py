@@ -128,6 +128,7 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
         from benchharness.analysis.incomplete import unmatched
 
         notes += unmatched(ifit, lay, best["factors"], incomplete)
+    surface = surface_fit(prep, lay, fitted, scale, alpha, better, notes)
     resid = fitted.z - fitted.fit.fitted[setup.cells.row_cell]
     an = Analysis(
         response=prep.response, factors=tuple(lay.fnames),
@@ -136,11 +137,12 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
         transform=scale.tdict, anova_rows=tuple(anova_rows), means=tuple(means),
         diagnostics=diagnostics, effects=tuple(effects), comparisons=tuple(comps),
         failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)),
-        counts=counts_of(prep, setup, fdesign, expected_cells, fitted.fit.df_resid),
+        counts=counts_of(prep, setup, fdesign, expected_cells, fitted.fit.df_resid,
+                         surface),
         fraction=fraction, residuals=resid, fitted=fitted.fit.fitted[setup.cells.row_cell],
         studentized=studentized, position=prep.position, run=prep.run, fit=fitted.fit,
         roles=roles, better=better, best=best, rows=prep.rows, boxcox=scale.boxcox,
-        incomplete=incomplete)
+        incomplete=incomplete, surface=surface)
     return replace(an, findings=tuple(fd.derive(an.to_dict())))
 
 
@@ -769,16 +771,36 @@ def failures_of(prep, notes: list) -> dict:
     }
 
 
-def counts_of(prep, setup: Setup, fdesign, expected_cells, df_res) -> dict:
+def surface_fit(prep, lay: Layout, fitted: Fitted, scale: Scale, alpha, better, notes: list):
+    """A response-surface design's second-order fit (analysis/surface.py), or None; its
+    unrun combinations of setting values are by plan, not missing."""
+    from benchharness.analysis.surface import from_analysis
+
+    surface = from_analysis(prep, lay.fnames, lay.flevels, lay.codes[: lay.nf], fitted.z,
+                            scale.choice, alpha, better)
+    if surface is not None:
+        expected = math.prod(lay.sizes[f] for f in lay.factor_idx)
+        notes[:] = [n for n in notes if f"of {expected} cells have no ok runs" not in n]
+        notes.append(f"a response-surface design: {lay.nf} settings run at "
+                     f"{surface.get('lack_of_fit', {}).get('points', '?')} of the {expected} "
+                     "combinations of their values, by plan; the second-order fit "
+                     "(surface) uses every run, the cell table only the cells run")
+    return surface
+
+
+def counts_of(prep, setup: Setup, fdesign, expected_cells, df_res, surface=None) -> dict:
     """analysis.json's ``counts``."""
     from benchharness.analysis.incomplete import planned_cells
 
     planned = planned_cells(prep.experiment, prep.factors)   # exclude: / only_when:
     if planned is None and setup.nested:    # a table with a nested factor: its cells are
         planned = setup.fcells.count        # what its design can have, as far as is known
+    if fdesign is not None:
+        planned = fdesign.n_cells
+    if surface is not None and surface.get("fitted"):
+        planned = surface["lack_of_fit"]["points"]     # the design's distinct points
     return {"rows": len(prep.y), "cells": setup.fcells.count, "cells_expected": expected_cells,
-            **({"cells_planned": fdesign.n_cells} if fdesign is not None else
-               {"cells_planned": planned} if planned is not None else {}),
+            **({"cells_planned": planned} if planned is not None else {}),
             "model_cells": setup.cells.count, "df_resid": df_res,
             "level_order": prep.order_source}
 
