@@ -92,8 +92,10 @@ def test_planted_minimum_found_with_its_interval_and_proposed():
     assert words[0].startswith("The fitted surface has a minimum at buffer_kib=")
     assert "inside the explored region" in words[0]
     assert words[1].startswith("The second-order surface fits")
-    assert words[2].startswith("Proposed setting: buffer_kib=") and "stationary point" in words[2]
-    assert "supported by the fitted surface" in words[2]
+    assert words[2].startswith("Proposed setting: buffer_kib=")
+    assert "(the fitted surface's minimum; whole numbers rounded)" in words[2]
+    assert "supported by the fitted surface: the second-order surface fits" in words[2]
+    assert "not shown better" not in words[2] and "uncertain" not in words[2]
 
 
 def test_a_minimum_outside_the_region_gives_a_proposal_on_its_edge():

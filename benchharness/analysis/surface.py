@@ -203,16 +203,16 @@ def lack_of_fit(x: np.ndarray, z: np.ndarray, sse: float, p: int, alpha: float) 
         out["verdict"] = "does not fit"
         out["statement"] = (f"The second-order surface does not fit: it misses the data by "
                             f"more than the spread of repeated runs (lack of fit F = {F:.3g}, "
-                            f"{_p_words(pv)}); values between the tested ones are not proposed")
+                            f"{p_words(pv)}); values between the tested ones are not proposed")
     else:
         out["verdict"] = "fits"
         out["statement"] = (f"The second-order surface fits: it misses the data by no more "
                             f"than the spread of repeated runs explains (lack of fit "
-                            f"F = {F:.3g}, {_p_words(pv)})")
+                            f"F = {F:.3g}, {p_words(pv)})")
     return out
 
 
-def _p_words(p: float) -> str:
+def p_words(p: float) -> str:
     from benchharness.numbers import fmt_p
 
     text = fmt_p(p)
@@ -520,34 +520,60 @@ def findings(fit: dict, design) -> list[dict]:
     if not pr["supported"]:
         why = {"lack_of_fit": "the surface does not fit",
                "flat": ("the settings make no detectable difference within the explored "
-                        f"region (the surface's F test, {_p_words(fit['model_p'])})"),
+                        f"region (the surface's F test, {p_words(fit['model_p'])})"),
                "no_whole_number_point": "no whole-number setting lies inside the region"}
         out.append(_finding("proposal", f"No setting between the tested values is proposed "
                                         f"because {why[pr['reason']]}; the best tested "
                                         f"setting is {tested}", names, supported=False))
         return out
-    where = pr["where"]
-    rounded = " (whole numbers rounded)" if pr["rounded"] else ""
-    text = (f"Proposed setting: {_setting_text(design, pr['actual'])}, at the {where}"
-            f"{rounded}: a value between the tested levels, supported by the fitted surface "
-            f"(lack of fit: {lof['verdict']}); predicted {resp} "
-            f"{fmt_value(pr['predicted'], resp)} [{fmt_value(pr['predicted_interval'][0], resp)}"
-            f" to {fmt_value(pr['predicted_interval'][1], resp)}]")
-    a = pr.get("against_tested_best") or {}
-    extra = {}
-    if "ratio" in a:
-        text += (f", {fmt_ratio(a['ratio'])} {fmt_interval(a['ratio_low'], a['ratio_high'])} "
-                 f"the best tested setting ({tested}), {conf} intervals")
-        extra = {"ratio": a["ratio"], "lower": a["ratio_low"], "upper": a["ratio_high"]}
-    out.append(_finding("proposal", text, names, supported=True, **extra))
+    out.append(_finding("proposal", _proposal_text(fit, design, tested, conf), names,
+                        supported=True, **_against(pr)))
     return out
+
+
+def _against(pr: dict) -> dict:
+    a = pr.get("against_tested_best") or {}
+    if "ratio" not in a:
+        return {}
+    return {"ratio": a["ratio"], "lower": a["ratio_low"], "upper": a["ratio_high"]}
+
+
+def _proposal_text(fit: dict, design, tested: str, conf: str) -> str:
+    """The proposal in words: where, why it is supported, what it is predicted to give,
+    how it compares with the best tested setting, and how sure its location is."""
+    from benchharness.analysis.findings import fmt_interval, fmt_ratio, fmt_value
+
+    pr, lof, st = fit["proposal"], fit["lack_of_fit"], fit.get("stationary_point") or {}
+    resp = fit["response"]
+    where = ("the fitted surface's " + st["kind"] if pr["where"] == "stationary point"
+             else "the best point on the " + pr["where"])
+    rounded = "; whole numbers rounded" if pr["rounded"] else ""
+    fits = ("the second-order surface fits (lack of fit " + p_words(lof["p"]) + ")"
+            if lof.get("p") is not None else "the lack of fit could not be tested")
+    lo, hi = pr["predicted_interval"]
+    text = (f"Proposed setting: {_setting_text(design, pr['actual'])} ({where}{rounded}), a "
+            f"value between the tested levels supported by the fitted surface: {fits}; "
+            f"predicted {resp} {fmt_value(pr['predicted'], resp)} "
+            f"[{fmt_value(lo, resp)} to {fmt_value(hi, resp)}]")
+    a = _against(pr)
+    if a:
+        text += (f", {fmt_ratio(a['ratio'])} {fmt_interval(a['lower'], a['upper'])} the best "
+                 f"tested setting ({tested})")
+        if a["lower"] <= 1 <= a["upper"]:
+            text += ", so not shown better than it"
+    text += f" ({conf} intervals)"
+    if pr["where"] == "stationary point" and (
+            not st.get("kind_settled") or st["confidence_region"]["reaches_region_edge"]):
+        text += ("; where the optimum lies is uncertain (see the stationary point): more "
+                 "runs, or a design centred on the proposal, would pin it down")
+    return text
 
 
 def _stationary_text(fit: dict, design, conf: str) -> str:
     st = fit.get("stationary_point")
     if fit["model_p"] >= fit["alpha"]:
         return (f"The settings make no detectable difference within the explored region "
-                f"(the second-order fit's F test, {_p_words(fit['model_p'])}): the fitted "
+                f"(the second-order fit's F test, {p_words(fit['model_p'])}): the fitted "
                 "surface's shape and its stationary point are noise")
     if st is None:
         return ("The fitted surface has no single stationary point (its curvature vanishes "

@@ -65,6 +65,8 @@ class Choice:
     limits: list = field(default_factory=list)
     #: which scale the choice was made on, and why (the analysis's scale for this response)
     scale_reason: str = ""
+    #: a response surface's proposal between the tested levels (`benchharness.choose.surface`)
+    surface: dict | None = None
 
     def to_dict(self) -> dict:
         d = {
@@ -93,6 +95,8 @@ class Choice:
             "candidates": [dict(c) for c in self.candidates],
             "reasons": list(self.reasons),
         }
+        if self.surface is not None:
+            d["surface"] = dict(self.surface)
         if self.also:
             d["also"] = list(self.also)
             d["pareto"] = [dict(p) for p in (self.pareto or [])]
@@ -288,6 +292,7 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     j = _judge(names, full, main, default, declared, confidence, eligible, dominated_by,
                pareto_idx, also, ask, limit_results)
     choice = _choice(j, ask, role_info, responses_info, fits.scale_reasons.get(response, ""))
+    choice = _with_surface(choice, df, experiment)
     return _with_unavailable(choice, unavailable, len(_role_reasons(role_info, names,
                                                                      ask.across_given)))
 
@@ -304,6 +309,18 @@ def _with_unavailable(choice: Choice, unavailable, after: int) -> Choice:
     reasons = list(choice.reasons)
     reasons[after:after] = unavailable_reasons(unavailable)
     return replace(choice, unavailable=list(unavailable), reasons=reasons)
+
+
+def _with_surface(choice: Choice, df, experiment) -> Choice:
+    """The choice with a response surface's proposal between the tested levels
+    (`choose.surface`; unchanged when the design is not a response surface)."""
+    from dataclasses import replace
+
+    from benchharness.choose.surface import proposal
+
+    surface = proposal(df, experiment, choice.response, choice.better, choice.scale,
+                       choice.confidence, choice.control, choice.across, choice.best)
+    return choice if surface is None else replace(choice, surface=surface)
 
 
 def _judge(names, full, main, default, declared, confidence, eligible, dominated_by,

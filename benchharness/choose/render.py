@@ -104,9 +104,10 @@ def section_dict(choice) -> dict:
         notes.append("Worst environment: the setting's ratio to the best setting of the "
                      f"{what} where it does worst (estimates); average: the geometric mean of "
                      "those ratios over every environment.")
+    sf = d.get("surface")
     return {
         "title": "Choosing a default",
-        "summary": list(d["reasons"]),
+        "summary": ([sf["statement"] + "."] if sf else []) + list(d["reasons"]),
         "recommendation": dict(d["best"]),
         "columns": cols,
         "rows": rows,
@@ -115,12 +116,24 @@ def section_dict(choice) -> dict:
     }
 
 
+def surface_lines(d: dict) -> list[str]:
+    """A response surface's proposal (or why there is none) leading the choice's text."""
+    sf = d.get("surface")
+    if not sf or not sf.get("used"):
+        return [sf["statement"], ""] if sf else []
+    if sf.get("supported"):
+        return [f"Proposed default (between the tested levels): {_setting(sf['setting'])}",
+                "  " + sf["statement"] + ".",
+                f"Recommended among the tested settings: {_setting(d['best'])}", ""]
+    return [f"Recommended default: {_setting(d['best'])}", "  " + sf["statement"] + ".", ""]
+
+
 def terminal_text(choice) -> str:
     """Plain text for the terminal."""
     s = section_dict(choice)
     d = s["choice"]
-    lines = [f"Recommended default: {_setting(d['best'])}", ""]
-    lines += s["summary"]
+    lines = surface_lines(d) or [f"Recommended default: {_setting(d['best'])}", ""]
+    lines += s["summary"][1:] if d.get("surface") else s["summary"]
     lines.append("")
     tied = "; ".join(_setting(t) for t in d["tied"])
     lines.append(f"Cannot be told apart from the best: {tied}")

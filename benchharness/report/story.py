@@ -257,7 +257,9 @@ def verdict(data: ReportData) -> dict[str, Any]:
     factor and interaction, the recommendation (best cell or tied set) and how sure."""
     found = findings(data)
     out: dict[str, Any] = {"factors": [], "interactions": [], "best": None, "sure": [],
-                           "recommendation": None, "cautions": [], "findings": found}
+                           "recommendation": None, "cautions": [], "findings": found,
+                           "surface": [f["statement"] + "." for f in found
+                                       if f["kind"] == "surface"]}
     for f in found:
         if f["kind"] == "main":
             out["factors"].append({"factor": f["factors"][0], "significant": bool(f["significant"]),
@@ -273,6 +275,8 @@ def verdict(data: ReportData) -> dict[str, Any]:
         elif f["kind"] == "caution":
             out["cautions"].append(f["statement"] + ".")
     out["headline"] = _headline_or_default(data, found)
+    if out["surface"]:      # a response surface: its proposal is the answer (analysis/surface.py)
+        out["headline"] = out["surface"].pop()
     out["sure"] = sureness(data)
     out["transform"] = transform_sentence(data)
     return out

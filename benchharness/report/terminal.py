@@ -97,6 +97,8 @@ def _print_verdict(con, v) -> None:
     from rich.text import Text
 
     con.print(Text(v["headline"], style="bold"))
+    for s in v.get("surface") or []:
+        con.print(Text("  • " + s))
     for i in v["interactions"]:
         con.print(Text("  • " + i))
     for f in v["factors"]:
