@@ -320,6 +320,7 @@ def analyse(design, x: np.ndarray, z: np.ndarray, choice, alpha: float = 0.05,
         "residual_sd": math.sqrt(ss["sse"] / df),
         "r_squared": 1 - ss["sse"] / ss["ss_total"] if ss["ss_total"] > 0 else None,
         "model_F": F_model, "model_p": p_model, "lack_of_fit": lof,
+        "tested_points": np.unique(np.round(x, 9), axis=0).tolist(),
     }
     out["stationary_point"] = _stationary(q, design, region, alpha, df, tq, sign, choice)
     out["canonical"] = _canonical(q, tq, names)

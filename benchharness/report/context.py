@@ -63,6 +63,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
 
     frac = _fraction.section(data)
     sections = _sections(frac)
+    surface = surface_section(data, sections)
     tr = data.analysis.get("transform") or {}
     mean_word = "geometric mean" if tr.get("name") == "log" else "estimated mean"
     return {
@@ -110,6 +111,8 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "sections": sections,
         "fraction": frac,
         "figures_fraction": figs.by_section("fraction"),
+        "surface": surface,
+        "figures_surface": figs.by_section("surface"),
         "extra": [_extra_section(x) for x in data.extra],
         "generated": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
         "version": _version(),
@@ -238,6 +241,17 @@ def _sections(frac) -> list[tuple[str, str]]:
         at = [i for i, (sid, _t) in enumerate(sections) if sid == "anova"][0] + 1
         sections.insert(at, ("fraction", "Alias chains of the fraction"))
     return sections
+
+
+def surface_section(data, sections: list) -> dict | None:
+    """A response surface's section (report/surface.py), listed before the effects."""
+    from benchharness.report import surface as _surface
+
+    sec = _surface.section(data)
+    if sec is not None:
+        at = [i for i, (sid, _t) in enumerate(sections) if sid == "effects"][0]
+        sections.insert(at, ("surface", "Response surface"))
+    return sec
 
 
 def _comparisons_intro(comps) -> str:

@@ -819,6 +819,7 @@ def _figure_jobs(data: ReportData, seed: int, max_points: int) -> list:
     """The report's figures in order, each a call returning (Figure or None, note or None)."""
     import numpy as np
 
+    from benchharness.report.surface import surface_figure
     from benchharness.report.tradeoff import tradeoff_figure
 
     def rng(k):
@@ -830,6 +831,7 @@ def _figure_jobs(data: ReportData, seed: int, max_points: int) -> list:
     jobs = [lambda: distributions(data, rng(0), max_points=max_points),
             lambda: alone(effects_plot(data))]
     jobs += [lambda a=a, b=b: alone(interaction(data, a, b)) for a, b in interaction_pairs(data)]
+    jobs += [lambda: alone(surface_figure(data))]     # a response surface's contours
     jobs += [lambda: alone(half_normal_plot(data)), lambda: alone(qq_plot(data)),
              lambda: resid_fitted(data, rng(1)), lambda: alone(resid_position(data, rng(2))),
              lambda: alone(boxcox_plot(data))]

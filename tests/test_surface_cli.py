@@ -1,0 +1,140 @@
+"""A response surface end to end, as a user runs it: run, analyze, report and choose (what
+`plan` says is checked in test_surface_design.py)
+on a command whose output follows a known formula (a planted optimum), and what `choose`
+says when the surface does not hold."""
+
+from __future__ import annotations
+
+import json
+import math
+import textwrap
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from benchharness.experiment.file import parse_experiment
+
+# The planted cost: ln cost = ln 0.2 + 0.35 u^2 + 0.25 v^2 + 0.10 u v, u = log2(b/64)/2 - 0.25,
+# v = (w - 5)/3 + 0.3: a minimum at buffer_kib = 64 * 2**0.5 = 90.5, workers = 4.1.
+WORKLOAD = textwrap.dedent("""\
+    import json, math, random, sys
+    b, w, state = float(sys.argv[1]), float(sys.argv[2]), sys.argv[3]
+    with open(state, "a+") as f:          # the run's number: deterministic noise
+        f.seek(0)
+        n = len(f.read())
+        f.write("x")
+    u = math.log2(b / 64) / 2 - 0.25
+    v = (w - 5) / 3 + 0.3
+    noise = random.Random(n).gauss(0, 0.02)
+    print(json.dumps({"cost_s": 0.2 * math.exp(0.35 * u * u + 0.25 * v * v + 0.10 * u * v
+                                               + noise)}))
+    """)
+
+EXP = textwrap.dedent("""\
+    experiment: spool-cost
+    about: Which buffer size and worker count cost least?
+    command: [{python}, {script}, "{{buffer_kib}}", "{{workers}}", {state}]
+    factors:
+      buffer_kib: [16, 256]
+      workers: [2, 8]
+    design:
+      type: response-surface
+      log_scale: [buffer_kib]
+    metrics:
+      cost_s: {{json: cost_s, unit: s, better: lower}}
+    choose:
+      response: cost_s
+    replicates: 1
+    seed: 4
+    """)
+
+TRUE_CODED = (0.25, -0.3 * 3 / 3)     # u = 0.25; workers 4.1 is coded (4.1 - 5) / 3 = -0.3
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    import sys
+
+    from conftest import run_cli
+
+    d = tmp_path_factory.mktemp("surface")
+    (d / "work.py").write_text(WORKLOAD)
+    exp = d / "spool.yaml"
+    exp.write_text(EXP.format(python=sys.executable, script=d / "work.py", state=d / "n"))
+    r = run_cli("run", str(exp), "--out", str(d / "res"), "--no-analysis")
+    assert r.returncode == 0, r.stderr
+    return d / "res"
+
+
+@pytest.fixture(scope="module")
+def analysis(folder):
+    from benchharness.analysis import analyze
+
+    return analyze(folder, response="cost_s")
+
+
+def test_analyze_finds_the_planted_minimum_and_says_so(folder, analysis, cli):
+    sf = json.loads(analysis.to_json())["surface"]
+    st = sf["stationary_point"]
+    assert st["kind"] == "minimum" and st["inside_region"] and st["kind_settled"]
+    for (lo, hi), t in zip(st["coded_intervals"], TRUE_CODED):
+        assert lo <= t <= hi
+    assert sf["lack_of_fit"]["verdict"] == "fits"
+    assert sf["proposal"]["supported"] and sf["proposal"]["actual"]["workers"] == 4
+    assert abs(math.log2(sf["proposal"]["actual"]["buffer_kib"] / 90.5)) < 0.5
+    r = cli("analyze", str(folder), "--response", "cost_s")
+    head = r.stdout.splitlines()
+    assert head[0].startswith("Proposed setting: buffer_kib=")
+    assert "workers=4 (the fitted surface's minimum; whole numbers rounded)" in head[0]
+    assert "supported by the fitted surface: the second-order surface fits" in head[0]
+    assert head[1].startswith("  • The fitted surface has a minimum at buffer_kib=")
+    assert "no ok runs" not in r.stdout      # untested combinations are by plan
+
+
+def test_choose_proposes_between_tested_levels(folder, cli):
+    r = cli("choose", str(folder))
+    assert r.returncode == 0, r.stderr
+    lines = r.stdout.splitlines()
+    assert lines[0].startswith("Proposed default (between the tested levels): buffer_kib=")
+    assert lines[0].endswith(", workers=4")
+    assert "the second-order surface fits (lack of fit p = " in lines[1]
+    assert lines[2].startswith("Recommended among the tested settings: ")
+
+
+def test_report_has_the_surface_section_and_contour_figure(folder, analysis):
+    from benchharness.report import write_reports
+
+    write_reports(folder, analysis=analysis, response="cost_s")
+    md = (folder / "report.md").read_text()
+    assert "## Response surface" in md and "figures/surface.png" in md
+    assert "| buffer\\_kib:workers |" in md
+    assert "The fitted surface has a minimum at buffer\\_kib=" in md
+    assert (folder / "figures" / "surface.svg").exists()
+    assert 'id="surface"' in (folder / "report.html").read_text()
+
+
+def test_choose_falls_back_to_the_best_tested_setting_when_the_surface_does_not_fit():
+    from benchharness.choose.surface import proposal
+
+    exp = parse_experiment(EXP.format(python="python3", script="w.py", state="n"), "s.yaml")
+    from benchharness.design.spec import design_of
+
+    d = design_of(exp).surface
+    rng = np.random.default_rng(3)
+    rows = []
+    for rep in range(3):
+        for pt in d.coded_points():
+            labels = {s.name: s.label(x) for s, x in zip(d.settings, pt)}
+            x = d.coded_of_labels(labels)
+            # a step the quadratic cannot follow: lack of fit
+            z = -1.6 + 0.5 * (x[0] > 0.5) * (abs(x[1]) < 0.5) + rng.normal(0, 0.01)
+            rows.append({**labels, "status": "ok", "cost_s": math.exp(z)})
+    df = pd.DataFrame(rows)
+    out = proposal(df, exp, "cost_s", "lower", "log", 0.95, ["buffer_kib", "workers"], [],
+                   {"buffer_kib": "64", "workers": "5"})
+    assert out["supported"] is False and out["reason"] == "lack_of_fit"
+    assert out["statement"].startswith("No value between the tested levels is proposed "
+                                       "because the fitted second-order surface does not hold")
+    assert out["statement"].endswith("falls back to the best tested setting, buffer_kib=64, "
+                                     "workers=5")
