@@ -340,14 +340,29 @@ def _factor_nodes(fnode) -> list:
 
 
 def _from_nodes(factor_nodes, keys: dict, type_node, path) -> SurfaceDesign:
-    import yaml
+    """The design from the file's factor nodes and design keys; errors located."""
+    from benchharness.experiment.yamlnodes import node_error
 
+    names = [n for n, _v in factor_nodes]
+    points, axial, centre, logs = _options(keys, names, path)
+    lows_highs, whole = _lows_highs(factor_nodes, path)
+    try:
+        return build(names, lows_highs, points=points, axial=axial, centre_runs=centre,
+                     log_scale=logs, whole=whole)
+    except DesignError as e:
+        node = type_node
+        if e.bare.startswith("factor "):
+            node = dict(factor_nodes).get(e.bare.split("'")[1], type_node)
+        elif e.bare.startswith("a Box-Behnken"):
+            node = keys.get("points", type_node)
+        raise node_error(node, f"design: {e.bare}", path) from None
+
+
+def _options(keys: dict, names, path):
+    """(points, axial, centre runs or None, log-scale settings) from the design keys."""
     from benchharness.experiment.yamlnodes import (
         as_int, node_error, scalar_text, sequence_items,
     )
-
-    names = [n for n, _v in factor_nodes]
-    where = dict(factor_nodes)
 
     def opt(key, default, allowed):
         if key not in keys:
@@ -367,13 +382,22 @@ def _from_nodes(factor_nodes, keys: dict, type_node, path) -> SurfaceDesign:
     if "centre_runs" in keys:
         centre = as_int(keys["centre_runs"], "'design: centre_runs'", minimum=2)
     logs: list[str] = []
-    if "log_scale" in keys:
-        for n in sequence_items(keys["log_scale"], "'design: log_scale'"):
-            name = scalar_text(n, "a factor name")
-            if name not in names:
-                raise node_error(n, f"design: log_scale names {name!r}, which is not a "
-                                    "factor; the settings are " + ", ".join(names), path)
-            logs.append(name)
+    for n in (sequence_items(keys["log_scale"], "'design: log_scale'")
+              if "log_scale" in keys else []):
+        name = scalar_text(n, "a factor name")
+        if name not in names:
+            raise node_error(n, f"design: log_scale names {name!r}, which is not a "
+                                "factor; the settings are " + ", ".join(names), path)
+        logs.append(name)
+    return points, axial, centre, logs
+
+
+def _lows_highs(factor_nodes, path):
+    """([(low, high)], [whole numbers?]) of every factor, each written ``[low, high]``."""
+    import yaml
+
+    from benchharness.experiment.yamlnodes import node_error
+
     lows_highs, whole = [], []
     for name, vnode in factor_nodes:
         items = vnode.value if isinstance(vnode, yaml.SequenceNode) else None
@@ -391,16 +415,7 @@ def _from_nodes(factor_nodes, keys: dict, type_node, path) -> SurfaceDesign:
             raise node_error(vnode, f"factor {name!r}: low and high must be finite numbers",
                              path)
         whole.append(all(_is_whole_text(t) for t in texts))
-    try:
-        return build(names, lows_highs, points=points, axial=axial, centre_runs=centre,
-                     log_scale=logs, whole=whole)
-    except DesignError as e:
-        node = type_node
-        if e.bare.startswith("factor "):
-            node = where.get(e.bare.split("'")[1], type_node)
-        elif e.bare.startswith("a Box-Behnken"):
-            node = keys.get("points", type_node)
-        raise node_error(node, f"design: {e.bare}", path) from None
+    return lows_highs, whole
 
 
 def _is_whole_text(text: str) -> bool:
