@@ -15,7 +15,7 @@ cost model we know exactly, so the response-surface demo has a planted answer:
 With u = log2(buffer_kib / 64) / 2 (so 16 KiB is -1 and 256 KiB is +1) and
 w = (workers - 5) / 3 (2 workers is -1, 8 is +1), one batch takes
 
-    t = 0.20 s * exp(0.35 (u - 0.25)^2 + 0.25 (w + 0.3)^2 + 0.10 (u - 0.25)(w + 0.3))
+    t = 0.60 s * exp(0.35 (u - 0.25)^2 + 0.25 (w + 0.3)^2 + 0.10 (u - 0.25)(w + 0.3))
 
 times a little random noise (3% on the log scale), spent sleeping: the
 spooler's work is modelled, not done. The optimum is at buffer_kib = 64 *
@@ -31,7 +31,7 @@ import random
 import sys
 import time
 
-BASE_S = 0.20
+BASE_S = 0.60
 
 
 def batch_seconds(buffer_kib: float, workers: float) -> float:
