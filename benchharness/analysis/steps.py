@@ -98,6 +98,7 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
     fdesign = fr.recognise(lay.fnames, lay.flevels, lay.codes[: lay.nf], prep.experiment)
     if better is None:
         better = better_of(data, prep.response)
+    model = surface_cell_model(prep, model, notes)
     setup = model_setup(lay, prep, model, fdesign, notes)
     scale = choose_scale(prep, lay, setup, transform, ss_type, alpha)
     fitted = fit_on_scale(prep, setup, scale, ss_type, notes)
@@ -769,6 +770,22 @@ def failures_of(prep, notes: list) -> dict:
                     "low (only the runs that finished are analysed)" if flagged else
                     f"{lost} run(s) failed; the failure rate per cell is listed"),
     }
+
+
+def surface_cell_model(prep, model, notes: list):
+    """A response surface's cell table: main effects by default (its few points leave
+    interactions of the values-as-labels inestimable; the surface fit has the curvature
+    and the interaction)."""
+    if model is not None or prep.experiment is None:
+        return model
+    from benchharness.design.spec import design_of
+
+    if design_of(prep.experiment).surface is None:
+        return model
+    notes.append("a response-surface design: the cell table treats the values as labels and "
+                 "fits main effects only; the second-order fit (surface) is the analysis of "
+                 "the settings as quantities")
+    return "main"
 
 
 def surface_fit(prep, lay: Layout, fitted: Fitted, scale: Scale, alpha, better, notes: list):
