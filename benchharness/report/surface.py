@@ -99,12 +99,14 @@ def surface_figure(data: ReportData):
     title = "Fitted response surface"
     held = ""
     if k > 2:
-        held = (" Settings not on a panel's axes are held at the proposal ("
+        held = (" Settings not on a panel's axes are held at the proposal (or the centre), "
+                "so each panel is a slice of the surface and of the confidence region ("
                 + ", ".join(f"{s.name}={fmt_num(s.exact(fixed[n]), 4)}"
                             for n, s in enumerate(settings)) + ").")
     cap = (f"Predicted {sf['response']} from the second-order fit, inside the explored region "
            "only (darker is better). Dots: tested settings. Cross: the stationary point, "
-           "with the dashed line around it its joint confidence region (Box & Hunter 1954). "
+           "with the dashed line around it its joint confidence region (Box & Hunter 1954; "
+           "not drawn when the settings make no detectable difference). "
            "Star: the proposed setting." + held)
     return render_figure(fig, "surface", title, cap, "surface",
                          highlight=bool((sf.get("proposal") or {}).get("supported")))
@@ -149,7 +151,7 @@ def _panel(fig, ax, sf: dict, settings, i: int, j: int, fixed) -> None:
     _edge(ax, region, si, sj, fixed, i, j)
     _tested(ax, sf, settings, i, j, INK)
     st = sf.get("stationary_point")
-    if st:
+    if st and sf.get("model_p", 1.0) < sf.get("alpha", 0.05):   # a flat surface: noise
         crit = st["confidence_region"]["critical_F"]
         bh = q.box_hunter_many(pts).reshape(n, n)
         if np.isfinite(bh).any() and np.nanmin(bh) <= crit:
