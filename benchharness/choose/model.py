@@ -138,49 +138,20 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
     """
     control = tuple(control)
     across = tuple(across)
-    if better not in ("lower", "higher"):
-        raise DataError(f"better must be 'lower' or 'higher', not {better!r}")
-    if not control:
-        raise DataError("no control factors left to choose between (every factor is in --across)")
-    for col in control + across:
-        if col not in df.columns:
-            raise DataError(f"column {col!r} is not in the table")
+    _check_request(df, control, across, better)
     keep, y_all = _ok_rows(df, response)
     n_total = len(df)
     sub = df.loc[keep, list(control + across)].astype(str)
     y = y_all[keep]
     if len(y) == 0:
         raise DataError(f"no ok runs with a value of {response!r}")
-    if scale == "auto":
-        scale = "log" if np.all(y > 0) else "none"
-    if scale == "log":
-        if np.any(y <= 0):
-            raise DataError(f"{response!r} has values <= 0; the log scale needs positive values")
-        y = np.log(y)
-    elif scale != "none":
-        raise DataError(f"scale must be auto, log or none, not {scale!r}")
+    scale, y = _on_scale(y, scale, response)
     if orders is None:
         orders = level_orders(df.loc[keep], control + across)
 
-    def combos(cols):
-        keys = list(zip(*[sub[c].tolist() for c in cols])) if cols else [()] * len(sub)
-        present = set(keys)
-        # product order over listed levels, restricted to what was run
-        out: list[tuple[str, ...]] = [()]
-        for c in cols:
-            out = [o + (lv,) for o in out for lv in orders[c]]
-        return [o for o in out if o in present], keys
-
-    settings, s_keys = combos(control)
-    seen = set(settings)
-    all_keys = zip(*[df[c].astype(str).tolist() for c in control])
-    without_runs = tuple(dict.fromkeys(k for k in all_keys if k not in seen))
-
-    def listed(key):
-        return tuple(orders[c].index(v) if v in orders.get(c, ()) else len(orders.get(c, ()))
-                     for c, v in zip(control, key))
-    without_runs = tuple(sorted(without_runs, key=listed))
-    envs, e_keys = combos(across)
+    settings, s_keys = _combos(sub, control, orders)
+    without_runs = _without_runs(df, control, settings, orders)
+    envs, e_keys = _combos(sub, across, orders)
     s_index = {s: i for i, s in enumerate(settings)}
     e_index = {e: i for i, e in enumerate(envs)}
     si = np.array([s_index[k] for k in s_keys], dtype=int)
@@ -190,43 +161,17 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
     sums = np.zeros((S, E))
     np.add.at(counts, (si, ei), 1)
     np.add.at(sums, (si, ei), y)
-    missing = np.argwhere(counts == 0)
-    if missing.size:
-        s, e = missing[0]
-        where = ", ".join(f"{c}={v}" for c, v in zip(control, settings[s]))
-        env = ", ".join(f"{c}={v}" for c, v in zip(across, envs[e]))
-        raise DataError(f"setting {where} has no ok run of {response!r} in environment {env}; "
-                        f"every setting needs runs in every --across level "
-                        f"({plural(len(missing), 'such gap')})")
+    _refuse_gaps(counts, control, across, settings, envs, response)
     means = sums / counts
     n = len(y)
-    block_cols: list[np.ndarray] = []
-    n_blocks = 0
-    if block is not None:
-        bl = df.loc[keep, block].astype(str).to_numpy()
-        levels = list(dict.fromkeys(bl.tolist()))
-        n_blocks = len(levels)
-        block_cols = [(bl == lv).astype(float) for lv in levels[1:]]
+    block_cols, n_blocks = _block_columns(df, keep, block)
     df_cells = n - S * E - max(n_blocks - 1, 0)
     if residual == "auto":
         residual = "cells" if df_cells > 0 else "additive"
     if residual == "cells":
-        if not block_cols:
-            resid = y - means[si, ei]
-            sse, dfe = float(resid @ resid), float(n - S * E)
-        else:
-            cell = si * E + ei
-            X = np.column_stack([(cell == c).astype(float) for c in range(S * E)] + block_cols)
-            sse, dfe = _lstsq_sse(X, y)
+        sse, dfe = _cells_sse(y, si, ei, means, S, E, block_cols)
     elif residual == "additive":
-        cols = [np.ones(n)]
-        for i in range(1, S):
-            cols.append((si == i).astype(float))
-        for c in across:
-            lv = sub[c].to_numpy()
-            for level in orders[c][1:]:
-                cols.append((lv == level).astype(float))
-        sse, dfe = _lstsq_sse(np.column_stack(cols + block_cols), y)
+        sse, dfe = _additive_sse(y, si, S, sub, across, orders, block_cols)
     else:
         raise DataError(f"residual must be auto, cells or additive, not {residual!r}")
     if dfe <= 0:
@@ -242,6 +187,99 @@ def fit_response(df, response: str, control, across=(), better: str = "lower",
         df=dfe, residual_model=residual, n_runs=int(n), dropped_runs=int(n_total - n),
         block=block if block_cols else None, without_runs=without_runs,
     )
+
+
+def _check_request(df, control, across, better) -> None:
+    """`DataError` for a direction other than lower/higher, no control factor, or a
+    column the table lacks."""
+    if better not in ("lower", "higher"):
+        raise DataError(f"better must be 'lower' or 'higher', not {better!r}")
+    if not control:
+        raise DataError("no control factors left to choose between (every factor is in --across)")
+    for col in control + across:
+        if col not in df.columns:
+            raise DataError(f"column {col!r} is not in the table")
+
+
+def _on_scale(y, scale: str, response: str):
+    """``(scale, y)``: the analysis scale ("auto" becomes log when every value is
+    positive) and the values on it."""
+    if scale == "auto":
+        scale = "log" if np.all(y > 0) else "none"
+    if scale == "log":
+        if np.any(y <= 0):
+            raise DataError(f"{response!r} has values <= 0; the log scale needs positive values")
+        y = np.log(y)
+    elif scale != "none":
+        raise DataError(f"scale must be auto, log or none, not {scale!r}")
+    return scale, y
+
+
+def _combos(sub, cols, orders):
+    """``(combinations, keys)``: the level combinations of ``cols`` that were run, in the
+    product order of the listed levels, and each kept row's combination."""
+    keys = list(zip(*[sub[c].tolist() for c in cols])) if cols else [()] * len(sub)
+    present = set(keys)
+    # product order over listed levels, restricted to what was run
+    out: list[tuple[str, ...]] = [()]
+    for c in cols:
+        out = [o + (lv,) for o in out for lv in orders[c]]
+    return [o for o in out if o in present], keys
+
+
+def _without_runs(df, control, settings, orders) -> tuple:
+    """Settings in the table with no ok run with a value, in listed order."""
+    seen = set(settings)
+    all_keys = zip(*[df[c].astype(str).tolist() for c in control])
+    without_runs = tuple(dict.fromkeys(k for k in all_keys if k not in seen))
+
+    def listed(key):
+        return tuple(orders[c].index(v) if v in orders.get(c, ()) else len(orders.get(c, ()))
+                     for c, v in zip(control, key))
+    return tuple(sorted(without_runs, key=listed))
+
+
+def _refuse_gaps(counts, control, across, settings, envs, response) -> None:
+    """`DataError` when some setting has no run in some environment."""
+    missing = np.argwhere(counts == 0)
+    if missing.size:
+        s, e = missing[0]
+        where = ", ".join(f"{c}={v}" for c, v in zip(control, settings[s]))
+        env = ", ".join(f"{c}={v}" for c, v in zip(across, envs[e]))
+        raise DataError(f"setting {where} has no ok run of {response!r} in environment {env}; "
+                        f"every setting needs runs in every --across level "
+                        f"({plural(len(missing), 'such gap')})")
+
+
+def _block_columns(df, keep, block):
+    """``(indicator columns, number of blocks)`` of the block term (none without one)."""
+    if block is None:
+        return [], 0
+    bl = df.loc[keep, block].astype(str).to_numpy()
+    levels = list(dict.fromkeys(bl.tolist()))
+    return [(bl == lv).astype(float) for lv in levels[1:]], len(levels)
+
+
+def _cells_sse(y, si, ei, means, S, E, block_cols):
+    """``(SSE, df)`` of the full setting-by-environment model (plus the block term)."""
+    if not block_cols:
+        resid = y - means[si, ei]
+        return float(resid @ resid), float(len(y) - S * E)
+    cell = si * E + ei
+    X = np.column_stack([(cell == c).astype(float) for c in range(S * E)] + block_cols)
+    return _lstsq_sse(X, y)
+
+
+def _additive_sse(y, si, S, sub, across, orders, block_cols):
+    """``(SSE, df)`` of the additive model: setting + each across column (+ blocks)."""
+    cols = [np.ones(len(y))]
+    for i in range(1, S):
+        cols.append((si == i).astype(float))
+    for c in across:
+        lv = sub[c].to_numpy()
+        for level in orders[c][1:]:
+            cols.append((lv == level).astype(float))
+    return _lstsq_sse(np.column_stack(cols + block_cols), y)
 
 
 def subset_settings(model: ResponseModel, keep) -> ResponseModel:
