@@ -28,40 +28,49 @@ def _ratio_words(r) -> str:
 
 def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
     """The choice table: short headers, cells that wrap at spaces (fits a 1280 px page)."""
-    resp = d["response"]
     log = d["scale"] == "log"
-    cols = ["setting", resp, "runs", "verdict", "vs best, at most"]
-    cols.append("worst environment" if d["across"] else ("vs best" if log else "minus best"))
-    if d["across"]:
-        cols.append("average")
-    if d.get("also"):
-        cols.append("on front")
-    rows = []
+    cols = _columns(d, log)
     unit = _unit(d)
     # one unit per column, chosen from the column's values (docs/cli.md)
     mean_s = pick_scale(unit, [c["mean"] for c in d["candidates"]])
     loss_s = pick_scale(unit, [c.get(k) for c in d["candidates"]
                                for k in ("worst_case_loss", "worst_loss", "mean_loss")])
-    for c in d["candidates"]:
-        excluded = c.get("within_limits") is False
-        verdict = ("outside limits" if excluded else "recommended" if c["recommended"]
-                   else "tied" if c["tied"] else "worse")
-        wc = _ratio_words(c["worst_case_loss"]) if log else loss_s.fmt(c["worst_case_loss"])
-        if excluded:
-            we = "-"
-        elif d["across"]:
-            env = _setting(c["worst_environment"])
-            we = (f"{_ratio_words(c['worst_ratio'])} ({env})" if log
-                  else f"{loss_s.fmt(c['worst_loss'])} ({env})")
-        else:
-            we = _ratio_words(c["worst_ratio"]) if log else loss_s.fmt(c["worst_loss"])
-        row = [_setting(c["setting"]), mean_s.fmt(c["mean"]), str(c["runs"]), verdict, wc, we]
-        if d["across"]:
-            row.append(_ratio_words(c["mean_ratio"]) if log else loss_s.fmt(c["mean_loss"]))
-        if d.get("also"):
-            row.append("yes" if c.get("on_front") else "no")
-        rows.append(row)
-    return cols, rows
+    return cols, [_row(d, c, log, mean_s, loss_s) for c in d["candidates"]]
+
+
+def _columns(d: dict, log: bool) -> list[str]:
+    """The table's headers (the worst-environment and average columns with ``across``)."""
+    cols = ["setting", d["response"], "runs", "verdict", "vs best, at most"]
+    cols.append("worst environment" if d["across"] else ("vs best" if log else "minus best"))
+    if d["across"]:
+        cols.append("average")
+    if d.get("also"):
+        cols.append("on front")
+    return cols
+
+
+def _row(d: dict, c: dict, log: bool, mean_s, loss_s) -> list[str]:
+    """One candidate's row: its mean, runs, verdict and losses against the best."""
+    excluded = c.get("within_limits") is False
+    verdict = ("outside limits" if excluded else "recommended" if c["recommended"]
+               else "tied" if c["tied"] else "worse")
+    wc = _ratio_words(c["worst_case_loss"]) if log else loss_s.fmt(c["worst_case_loss"])
+    we = "-" if excluded else _worst_words(d, c, log, loss_s)
+    row = [_setting(c["setting"]), mean_s.fmt(c["mean"]), str(c["runs"]), verdict, wc, we]
+    if d["across"]:
+        row.append(_ratio_words(c["mean_ratio"]) if log else loss_s.fmt(c["mean_loss"]))
+    if d.get("also"):
+        row.append("yes" if c.get("on_front") else "no")
+    return row
+
+
+def _worst_words(d: dict, c: dict, log: bool, loss_s) -> str:
+    """The worst loss against the best: with ``across``, in which environment."""
+    if d["across"]:
+        env = _setting(c["worst_environment"])
+        return (f"{_ratio_words(c['worst_ratio'])} ({env})" if log
+                else f"{loss_s.fmt(c['worst_loss'])} ({env})")
+    return _ratio_words(c["worst_ratio"]) if log else loss_s.fmt(c["worst_loss"])
 
 
 def section_dict(choice) -> dict:
