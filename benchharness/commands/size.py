@@ -74,6 +74,10 @@ def _factors_from_experiment(exp):
 
     choice = design_of(exp)
     cells = choice.design.n_cells if choice.changes_plan else None
+    if getattr(exp, "space", None) is not None:   # exclude: / only_when: the cells that exist
+        from benchharness.design.exclude import space_cells
+
+        cells = len(space_cells(exp)[0])
     return [(f.name, len(f.levels)) for f in exp.factors], cells
 
 
