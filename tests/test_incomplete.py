@@ -203,3 +203,32 @@ def test_within_ratio_intervals_and_null_interactions_rates():
     # than 1,600 independent ones (± 0.016 for 400 clusters of four, taking them as one)
     assert 0.925 <= coverage <= 0.975
     assert 0.027 <= false_rate <= 0.073     # 5% ± 3 binomial standard errors
+
+
+def test_an_excluded_cell_leaves_a_ratio_where_both_levels_ran(tmp_path):
+    """Crossed factors with one combination excluded: lzma never ran on large rows, so its
+    ratio to zlib is given over small rows only, and holds the planted 2×."""
+    from benchharness.execute.runner import run_experiment
+    from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+    from benchharness.experiment.file import parse_experiment
+
+    exp = parse_experiment('experiment: x\ncommand: [./app, "{codec}", "{rows}", "{t}"]\n'
+                           "factors:\n  codec: [zlib, bz2, lzma]\n  rows: [small, large]\n"
+                           "  t: [1, 2]\nexclude:\n  - {codec: lzma, rows: large}\n"
+                           "replicates: 3\nseed: 1\n", "x.yaml")
+    truth = SimulatedModel(base_s=0.05, cv=0.03, effects={
+        "codec": {"bz2": 1.5, "lzma": 2.0}, "rows": {"large": 2.0}, "t": {"2": 0.6}})
+    run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(truth, seed=3))
+    an = analyze(tmp_path / "r")
+    e = {(x["factor"], x["level"]): x for x in an.effects}
+    assert e[("codec", "lzma")]["over"] == [{"rows": "small", "t": "1"},
+                                            {"rows": "small", "t": "2"}]
+    assert "only rows=small, where both ran" in e[("codec", "lzma")]["wording"]
+    for key, want in ((("codec", "lzma"), 2.0), (("codec", "bz2"), 1.5), (("rows", "large"), 2.0)):
+        assert e[key]["lower"] < want < e[key]["upper"], key
+    assert "over" not in e[("codec", "bz2")]
+    terms = {t["term"]: t for t in an.incomplete["terms"]}
+    assert terms["codec:rows"]["estimable"] == "part" and terms["codec"]["estimable"] == "full"
+    assert an.counts["cells_planned"] == 10 and an.counts["cells"] == 10
+    assert not any(f["kind"] == "caution" and "no analysed runs" in f["statement"]
+                   for f in an.findings)

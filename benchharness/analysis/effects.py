@@ -195,7 +195,12 @@ def level_ratios(fit: Fit, names, levels, factor_idx, references, choice, alpha)
         for j in range(fit.sizes[f]):
             if j == ref:
                 continue
-            r = contrast_result(fit, L[j], L[ref], choice, q)
+            over = None
+            if fit.support is not None and not (np.isfinite(L[j]).all()
+                                                and np.isfinite(L[ref]).all()):
+                r, over = _pair_ratio(fit, f, j, ref, choice, q, names, levels)
+            else:
+                r = contrast_result(fit, L[j], L[ref], choice, q)
             entry = {"factor": names[f], "level": levels[f][j], "reference": levels[f][ref],
                      "ratio": r["ratio"], "lower": r["lower"], "upper": r["upper"]}
             for k in ("difference", "difference_lower", "difference_upper", "approximate"):
@@ -203,8 +208,27 @@ def level_ratios(fit: Fit, names, levels, factor_idx, references, choice, alpha)
                     entry[k] = r[k]
             entry["estimable"] = r["estimable"]
             entry["wording"] = ratio_wording(entry, names[f])
+            if over:
+                from benchharness.analysis.support import where_both_ran
+
+                entry["over"] = over
+                entry["wording"] += f" ({where_both_ran(over)})"
             out.append(entry)
     return out
+
+
+def _pair_ratio(fit: Fit, f: int, j: int, ref: int, choice, q, names, levels):
+    """(contrast, the other factors' combinations it averages over) of levels ``j`` and
+    ``ref`` of factor ``f`` over the combinations where both ran, when the cells missing by
+    design leave the level's margin undefined (`benchharness.analysis.support.pair_rows`)."""
+    from benchharness.analysis.support import pair_rows
+
+    la, lb, common = pair_rows(fit, (f,), (j,), (ref,))
+    if la is None:
+        return {"ratio": None, "lower": None, "upper": None, "estimable": False}, None
+    others = [g for g in range(fit.support.nf) if g != f]
+    over = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)} for c in common]
+    return contrast_result(fit, la, lb, choice, q), over
 
 
 def ratio_wording(e: dict, factor: str, level_of_confidence: str = "95%") -> str:

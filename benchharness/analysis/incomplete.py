@@ -36,7 +36,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from benchharness.analysis.support import Support, margin_plan, pair_rows
+from benchharness.analysis.support import Support, margin_plan, pair_rows, where_both_ran
 
 #: the word between a nested factor and its parents in a term name
 WITHIN = "within"
@@ -296,10 +296,7 @@ def within_ratios(fit, lay, nested: dict, refs, choice, alpha) -> list[dict]:
                     e["over"] = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)}
                                  for c in common]
                 where = ", ".join(f"{k}={v}" for k, v in within.items())
-                only = ""
-                if "over" in e:
-                    only = " (only " + "; ".join(", ".join(f"{k}={v}" for k, v in o.items())
-                                                for o in e["over"]) + ", where both ran)"
+                only = f" ({where_both_ran(e['over'])})" if "over" in e else ""
                 e["wording"] = f"within {where}{only}: " + ratio_wording(e, names[f])
                 e["where"] = where + only
                 out.append(e)

@@ -148,3 +148,16 @@ def pair_rows(fit, factors, ca, cb):
             row[sl] = 0.0
         out.append(row)
     return out[0], out[1], common
+
+
+def where_both_ran(over) -> str:
+    """``only rows=small, where both ran``: the factors that stay at one level over the
+    combinations a pairwise ratio averages over (else up to four of the combinations)."""
+    keys = list(over[0]) if over else []
+    fixed = [k for k in keys if len({o[k] for o in over}) == 1]
+    if fixed:
+        text = ", ".join(f"{k}={over[0][k]}" for k in fixed)
+    else:
+        text = "; ".join(", ".join(f"{k}={v}" for k, v in o.items()) for o in over[:4])
+        text += f" and {len(over) - 4} more" if len(over) > 4 else ""
+    return f"only {text}, where both ran"
