@@ -32,6 +32,7 @@ the data can, and say what it cannot:
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import replace
 
 import numpy as np
@@ -46,40 +47,57 @@ WITHIN = "within"
 
 def find_nesting(names, levels, fcell_levels: np.ndarray, experiment=None) -> dict:
     """{nested factor index: parent indices}: conditional factors of the experiment, then
-    factors whose every observed level occurs with exactly one level of another factor
-    (and that have more levels than it, so they are not a relabelling of it)."""
+    factors whose runs carry ``-`` exactly for some levels of another factor, then factors
+    whose every observed level occurs with exactly one level of another factor (and that
+    have more levels than it, so they are not a relabelling of it)."""
+    out = _declared_nesting(names, experiment)
+    for f in range(len(names)):
+        if f not in out and _marker() in levels[f]:
+            p = _marker_parent(f, levels, fcell_levels)
+            if p is not None:
+                out[f] = (p,)
+    for f in range(len(names)):
+        if f not in out and len(levels[f]) >= 2:
+            p = _level_parent(f, out, fcell_levels)
+            if p is not None:
+                out[f] = (p,)
+    return out
+
+
+def _declared_nesting(names, experiment) -> dict:
+    """The experiment's conditional factors (``only_when:``) within their condition's factors."""
     out: dict[int, tuple[int, ...]] = {}
     space = getattr(experiment, "space", None)
-    if space is not None:
-        for f, cond in space.conditions.items():
-            if f in names and all(p in names for p in cond.factors):
-                out[names.index(f)] = tuple(sorted(names.index(p) for p in cond.factors))
-    k = len(names)
-    marker = _marker()
-    for f in range(k):   # a factor whose runs carry `-` somewhere: conditional on a factor
-        if f in out or marker not in levels[f]:      # whose levels tell where it applies
-            continue
-        m = levels[f].index(marker)
-        off = fcell_levels[:, f] == m
-        for p in range(k):
-            if p != f and marker not in levels[p] and off.any() and (~off).any() and not (
-                    set(fcell_levels[off, p].tolist()) & set(fcell_levels[~off, p].tolist())):
-                out[f] = (p,)
-                break
-    for f in range(k):
-        if f in out or len(levels[f]) < 2:
-            continue
-        for p in range(k):
-            if p == f or p in out and f in out[p]:
-                continue
-            pairs = {(int(a), int(b)) for a, b in fcell_levels[:, [f, p]].tolist()}
-            f_levels = {a for a, _ in pairs}
-            p_levels = {b for _, b in pairs}
-            if len(p_levels) >= 2 and len(f_levels) > len(p_levels) \
-                    and len(pairs) == len(f_levels):
-                out[f] = (p,)
-                break
+    for f, cond in (space.conditions.items() if space is not None else ()):
+        if f in names and all(p in names for p in cond.factors):
+            out[names.index(f)] = tuple(sorted(names.index(p) for p in cond.factors))
     return out
+
+
+def _marker_parent(f, levels, fcell_levels):
+    """The factor whose levels tell exactly where factor ``f`` carries ``-``, or None."""
+    off = fcell_levels[:, f] == levels[f].index(_marker())
+    if not off.any() or off.all():
+        return None
+    for p in range(len(levels)):
+        if p != f and _marker() not in levels[p] and not (
+                set(fcell_levels[off, p].tolist()) & set(fcell_levels[~off, p].tolist())):
+            return p
+    return None
+
+
+def _level_parent(f, found, fcell_levels):
+    """A factor with at least two levels that each level of ``f`` occurs with only one of,
+    when ``f`` has more levels than it; else None."""
+    for p in range(fcell_levels.shape[1]):
+        if p == f or (p in found and f in found[p]):
+            continue
+        pairs = {(int(a), int(b)) for a, b in fcell_levels[:, [f, p]].tolist()}
+        f_levels = {a for a, _ in pairs}
+        p_levels = {b for _, b in pairs}
+        if len(p_levels) >= 2 and len(f_levels) > len(p_levels) and len(pairs) == len(f_levels):
+            return p
+    return None
 
 
 def nested_name(names, nested: dict, factors) -> str:
@@ -178,30 +196,14 @@ def describe(lay, fit, fcells, nested: dict, anova_rows, experiment, alpha) -> d
     names = lay.fnames
     grid = planned_cells(experiment, what="combinations") or math.prod(lay.sizes[: lay.nf])
     planned = planned_cells(experiment, names)
-    space = getattr(experiment, "space", None)
     nest = {names[f]: [names[p] for p in ps] for f, ps in nested.items()}
-    why = {}
-    for f, ps in nest.items():
-        cond = space.conditions.get(f) if space is not None else None
-        marked = _marker() in lay.flevels[names.index(f)]
-        why[f] = (f"{f} applies only where {cond.text} (only_when)" if cond is not None else
-                  f"its runs carry {_marker()!r} (it does not apply) for some levels of "
-                  f"{', '.join(ps)} only" if marked else
-                  f"each level of {f} occurs with one level of {', '.join(ps)} only")
-    terms = []
-    for r in anova_rows:
-        if r.get("kind") != "effect":
-            continue
-        df, full = int(r.get("df") or 0), int(r.get("df_full") or 0)
-        state = "full" if df >= full else ("none" if df == 0 else "part")
-        terms.append({"term": r["term"], "df": df, "df_full": full, "estimable": state})
-    statements = []
-    for f, ps in nest.items():
-        statements.append(f"{f} is analysed within {', '.join(ps)} ({why[f]}): it has no main "
-                          f"effect of its own, and its ratios are given within each level of "
-                          f"{', '.join(ps)} where it applies; each level of {', '.join(ps)} is "
-                          f"compared averaged over its own levels of {f}"
-                          + _partial_levels(fit, lay, nested, names.index(f)))
+    why = {f: _why_nested(f, ps, lay, experiment) for f, ps in nest.items()}
+    terms = _term_states(anova_rows)
+    statements = [f"{f} is analysed within {', '.join(ps)} ({why[f]}): it has no main effect "
+                  f"of its own, and its ratios are given within each level of {', '.join(ps)} "
+                  f"where it applies; each level of {', '.join(ps)} is compared averaged over "
+                  f"its own levels of {f}" + _partial_levels(fit, lay, nested, names.index(f))
+                  for f, ps in nest.items()]
     if fcells.count < grid:
         what = (f"{planned} cells planned of the {grid} combinations"
                 if planned is not None else f"{fcells.count} cells ran" if nested else
@@ -209,18 +211,47 @@ def describe(lay, fit, fcells, nested: dict, anova_rows, experiment, alpha) -> d
         statements.append(f"{what}: each term is estimated from the cells that exist, Type II "
                           "sums of squares by model comparison; means and ratios average over "
                           "the combinations that exist, never over missing ones")
-    part = [t for t in terms if t["estimable"] == "part" and t["term"] not in
-            {r["term"] for r in anova_rows if WITHIN in r["term"]}]
-    none = [t for t in terms if t["estimable"] == "none"]
-    if part:
-        statements.append("estimable in part (the missing cells carry the rest): "
-                          + ", ".join(f"{t['term']} ({t['df']} of {t['df_full']} df)"
-                                      for t in part))
-    if none:
-        statements.append("not estimable from these cells: "
-                          + ", ".join(t["term"] for t in none))
+    statements += _estimability_statements(terms)
     return {"nested": nest, "why": why, "cells": int(fcells.count), "combinations": grid,
             "cells_planned": planned, "terms": terms, "statements": statements}
+
+
+def _why_nested(f: str, ps, lay, experiment) -> str:
+    """Why ``f`` is analysed within ``ps``: its condition, its ``-`` runs, or its levels."""
+    space = getattr(experiment, "space", None)
+    cond = space.conditions.get(f) if space is not None else None
+    if cond is not None:
+        return f"{f} applies only where {cond.text} (only_when)"
+    if _marker() in lay.flevels[lay.fnames.index(f)]:
+        return (f"its runs carry {_marker()!r} (it does not apply) for some levels of "
+                f"{', '.join(ps)} only")
+    return f"each level of {f} occurs with one level of {', '.join(ps)} only"
+
+
+def _term_states(anova_rows) -> list[dict]:
+    """Each effect term with its df, its df on the full grid, and full | part | none."""
+    terms = []
+    for r in anova_rows:
+        if r.get("kind") != "effect":
+            continue
+        df, full = int(r.get("df") or 0), int(r.get("df_full") or 0)
+        state = "full" if df >= full else ("none" if df == 0 else "part")
+        terms.append({"term": r["term"], "df": df, "df_full": full, "estimable": state})
+    return terms
+
+
+def _estimability_statements(terms) -> list[str]:
+    """The crossed terms estimable only in part, and those not at all (nested terms have no
+    grid to fall short of)."""
+    out = []
+    part = [t for t in terms if t["estimable"] == "part" and WITHIN not in t["term"]]
+    none = [t for t in terms if t["estimable"] == "none"]
+    if part:
+        out.append("estimable in part (the missing cells carry the rest): "
+                   + ", ".join(f"{t['term']} ({t['df']} of {t['df_full']} df)" for t in part))
+    if none:
+        out.append("not estimable from these cells: " + ", ".join(t["term"] for t in none))
+    return out
 
 
 def _partial_levels(fit, lay, nested: dict, f: int) -> str:
@@ -258,49 +289,56 @@ def within_ratios(fit, lay, nested: dict, refs, choice, alpha) -> list[dict]:
     """Each level of a nested factor against its reference, within each parent combination
     where both exist, averaged over the other factors' combinations that exist for both
     (``over`` names them when some are missing)."""
-    from benchharness.analysis.effects import contrast_result, ratio_wording, t_quantile
+    from benchharness.analysis.effects import t_quantile
 
     q = t_quantile(fit, alpha)
-    names, levels = lay.fnames, lay.flevels
-    sup: Support = fit.support
     out = []
     for f, ps in nested.items():
         M = tuple(sorted((*ps, f)))
         pos = {g: j for j, g in enumerate(M)}
-        present = {tuple(r) for r in sup.cells[:, list(M)].tolist()}
-        marker = levels[f].index(_marker()) if _marker() in levels[f] else -1
-        others = [g for g in range(sup.nf) if g not in M]
-        n_other = len({tuple(r) for r in sup.cells[:, others].tolist()})
+        present = {tuple(r) for r in fit.support.cells[:, list(M)].tolist()}
         for pc in sorted({tuple(c[pos[p]] for p in ps) for c in present}):
-            have = [j for j in range(len(levels[f])) if j != marker
-                    and _key(M, pos, ps, pc, f, j) in present]
+            def key(j, pc=pc):
+                return _key(M, pos, ps, pc, f, j)
+
+            have = [j for j, lv in enumerate(lay.flevels[f])
+                    if lv != _marker() and key(j) in present]
             if len(have) < 2:
                 continue
             ref = refs.get(f, 0) if refs.get(f, 0) in have else have[0]
-            within = {names[p]: levels[p][pc[i]] for i, p in enumerate(ps)}
+            within = {lay.fnames[p]: lay.flevels[p][pc[i]] for i, p in enumerate(ps)}
             for j in have:
-                if j == ref:
-                    continue
-                la, lb, common = pair_rows(fit, M, _key(M, pos, ps, pc, f, j),
-                                           _key(M, pos, ps, pc, f, ref))
-                if la is None:
-                    continue
-                r = contrast_result(fit, la, lb, choice, q)
-                e = {"factor": names[f], "level": levels[f][j], "reference": levels[f][ref],
-                     "within": within, "ratio": r["ratio"], "lower": r["lower"],
-                     "upper": r["upper"], "estimable": r["estimable"]}
-                for k in ("difference", "difference_lower", "difference_upper", "approximate"):
-                    if k in r:
-                        e[k] = r[k]
-                if others and len(common) < n_other:
-                    e["over"] = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)}
-                                 for c in common]
-                where = ", ".join(f"{k}={v}" for k, v in within.items())
-                only = f" ({where_both_ran(e['over'])})" if "over" in e else ""
-                e["wording"] = f"within {where}{only}: " + ratio_wording(e, names[f])
-                e["where"] = where + only
-                out.append(e)
+                e = None if j == ref else _within_entry(fit, lay, f, M, key(j), key(ref),
+                                                        within, choice, q)
+                if e is not None:
+                    out.append(e)
     return out
+
+
+def _within_entry(fit, lay, f, M, ca, cb, within, choice, q) -> dict | None:
+    """One ratio of a nested factor's level ``ca`` over ``cb`` (codes of ``M``) inside
+    ``within``, over the other factors' combinations where both ran."""
+    from benchharness.analysis.effects import contrast_result, ratio_wording
+
+    names, levels = lay.fnames, lay.flevels
+    la, lb, common = pair_rows(fit, M, ca, cb)
+    if la is None:
+        return None
+    r = contrast_result(fit, la, lb, choice, q)
+    e = {"factor": names[f], "level": levels[f][ca[M.index(f)]],
+         "reference": levels[f][cb[M.index(f)]], "within": within, "ratio": r["ratio"],
+         "lower": r["lower"], "upper": r["upper"], "estimable": r["estimable"]}
+    e.update({k: r[k] for k in ("difference", "difference_lower", "difference_upper",
+                                "approximate") if k in r})
+    others = [g for g in range(fit.support.nf) if g not in M]
+    n_other = len({tuple(x) for x in fit.support.cells[:, others].tolist()})
+    if others and len(common) < n_other:
+        e["over"] = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)} for c in common]
+    where = ", ".join(f"{k}={v}" for k, v in within.items())
+    only = f" ({where_both_ran(e['over'])})" if "over" in e else ""
+    e["wording"] = f"within {where}{only}: " + ratio_wording(e, names[f])
+    e["where"] = where + only
+    return e
 
 
 def unmatched(fit, lay, factors, incomplete: dict) -> list[str]:
@@ -341,55 +379,74 @@ def _key(M, pos, ps, pc, f, j) -> tuple:
 def findings(d: dict) -> list[dict]:
     """Findings for nested terms (``level within codec``), which name no plain factor
     product and so get no finding of the crossed kind: whether the nested factor matters
-    within its parent, with its ratios per parent level."""
-    from benchharness.numbers import fmt_p as _p
-    from benchharness.numbers import fmt_ratio, fmt_ratio_interval
-
-    def fmt_interval(lo, hi):
-        return "[no interval]" if lo is None or hi is None else f"[{fmt_ratio_interval(lo, hi)}]"
-
-    def fmt_p(p):
-        text = _p(p)
-        return f"p {text}" if text.startswith("<") else f"p = {text}"
-
+    within its parent, with its ratios per parent level; for a nested term crossed with
+    other factors, whether its effect depends on them."""
     inc = d.get("incomplete") or {}
     if not inc.get("nested"):
         return []
     alpha = float(d.get("alpha") or (d.get("model") or {}).get("alpha") or 0.05)
     out = []
     for r in d.get("anova") or []:
-        if WITHIN not in str(r.get("term")) or r.get("kind") != "effect":
+        parsed = _parse_nested(str(r.get("term")))
+        if parsed is None or r.get("kind") != "effect":
             continue
-        f = str(r["term"]).split(f" {WITHIN} ")[0].strip("(")
+        f, parents, partners = parsed
         p = r.get("p_holm", r.get("p"))
         sig = p is not None and p < alpha
-        ratios = [e for e in inc.get("within_ratios") or [] if e["factor"] == f]
-        by_parent: dict[str, list[str]] = {}
-        for e in ratios:
-            where = e.get("where") or ", ".join(f"{k}={v}" for k, v in e["within"].items())
-            by_parent.setdefault(where, []).append(
-                f"{f}={e['level']} {fmt_ratio(e['ratio'])} {fmt_interval(e['lower'], e['upper'])}"
-                f" against {f}={e['reference']}" if e["ratio"] is not None else
-                f"{f}={e['level']} not estimable")
-        detail = "; ".join(f"within {w}: " + ", ".join(items) for w, items in by_parent.items())
-        crossed = str(r["term"]).startswith("(")   # (level within codec):rows
         if p is None:
             head = f"{r['term']}: untested ({r.get('note') or 'no error term'})"
-        elif crossed:
-            partner = str(r["term"]).split("):", 1)[-1]
-            head = (f"the effect of {f} within its parent "
+        elif partners:
+            head = (f"the effect of {f} within {parents} "
                     + ("depends" if sig else "does not depend detectably")
-                    + f" on {partner} ({r['term']}, {fmt_p(p)})")
-            detail = ""
+                    + f" on {partners} ({r['term']}, {_fmt_p(p)})")
         elif sig:
-            head = f"{f} matters within {str(r['term']).split(f' {WITHIN} ')[1].rstrip(')')} " \
-                   f"({r['term']}, {fmt_p(p)})"
+            head = f"{f} matters within {parents} ({r['term']}, {_fmt_p(p)})"
+            detail = _within_detail(f, inc.get("within_ratios") or [])
+            head += f": {detail}" if detail else ""
         else:
-            head = f"{f} made no detectable difference within its parent ({r['term']}, " \
-                   f"{fmt_p(p)})"
+            head = (f"{f} made no detectable difference within {parents} ({r['term']}, "
+                    f"{_fmt_p(p)})")
         out.append({"kind": "main", "terms": [r["term"]], "factors": [f],
                     "significant": bool(sig), "ratio": None, "lower": None, "upper": None,
-                    "p": p, "p_raw": r.get("p"),
-                    "statement": head + (f": {detail}" if detail and sig else ""),
-                    "within": True})
+                    "p": p, "p_raw": r.get("p"), "statement": head, "within": True})
     return out
+
+
+_NESTED_CROSSED = re.compile(r"\(([^():]+) " + WITHIN + r" ([^()]+)\)")
+_NESTED_ALONE = re.compile(r"^([^():]+) " + WITHIN + r" ([^()]+)$")
+
+
+def _parse_nested(term: str):
+    """``(level within codec):rows`` -> ("level", "codec", "rows"), ``level within codec``
+    -> ("level", "codec", ""); None for a crossed term."""
+    m = _NESTED_CROSSED.search(term) or _NESTED_ALONE.search(term)
+    if m is None:
+        return None
+    rest = (term[: m.start()] + term[m.end():]).strip(":")
+    return m.group(1), m.group(2), rest
+
+
+def _fmt_p(p) -> str:
+    from benchharness.numbers import fmt_p
+
+    text = fmt_p(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
+
+
+def _within_detail(f: str, ratios) -> str:
+    """``within codec=zlib: level=6 1.30× [1.2× to 1.4×] against level=1, ...; within ...``."""
+    from benchharness.numbers import fmt_ratio, fmt_ratio_interval
+
+    by_parent: dict[str, list[str]] = {}
+    for e in ratios:
+        if e["factor"] != f:
+            continue
+        where = e.get("where") or ", ".join(f"{k}={v}" for k, v in e["within"].items())
+        if e["ratio"] is None:
+            text = f"{f}={e['level']} not estimable"
+        else:
+            iv = ("[no interval]" if e["lower"] is None or e["upper"] is None
+                  else f"[{fmt_ratio_interval(e['lower'], e['upper'])}]")
+            text = f"{f}={e['level']} {fmt_ratio(e['ratio'])} {iv} against {f}={e['reference']}"
+        by_parent.setdefault(where, []).append(text)
+    return "; ".join(f"within {w}: " + ", ".join(items) for w, items in by_parent.items())

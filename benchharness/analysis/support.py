@@ -74,49 +74,70 @@ def margin_plan(sup: Support, factors) -> dict | None:
     others = [f for f in range(sup.nf) if f not in M]
     kids = [f for f in others if f in sup.nested and set(sup.nested[f]) <= set(M)]
     cross = [f for f in others if f not in kids]
-    cells = sup.cells
-    keyM = [tuple(r) for r in cells[:, list(M)].tolist()]
-    keyX = [tuple(r) for r in cells[:, cross].tolist()]
-    keyK = [tuple(r) for r in cells[:, kids].tolist()]
-    present: dict[tuple, dict[tuple, set]] = {}
-    for m, x, k in zip(keyM, keyX, keyK):
-        present.setdefault(m, {}).setdefault(x, set()).add(k)
+    present = _presence(sup.cells, M, cross, kids)
     combos = sorted(present)
-    # cross combinations present for more than half of the margin's combinations
+    common = _common_cross(present, combos)
+    parent_pos = [j for j, f in enumerate(M) if any(f in sup.nested.get(kf, ()) for kf in kids)]
+    groups = _kid_levels(present, combos, common, parent_pos)
+    out_cells, lacking = [], []
+    for m in combos:
+        ks = groups.get(tuple(m[j] for j in parent_pos))
+        if not common or not common <= set(present[m]) or not ks:
+            out_cells.append(None)
+            lacking.append(m)
+        else:
+            out_cells.append(_cell_rows(sup.nf, M, m, cross, sorted(common), kids, sorted(ks)))
+    return {"combos": combos, "cells": out_cells, "lacking": lacking, "cross": cross,
+            "kids": kids, "common": sorted(common), "groups": groups}
+
+
+def _presence(cells, M, cross, kids) -> dict:
+    """{margin combination: {cross combination: {nested-factor combinations}}} that exist."""
+    present: dict[tuple, dict[tuple, set]] = {}
+    for m, x, k in zip(map(tuple, cells[:, list(M)].tolist()),
+                       map(tuple, cells[:, cross].tolist()),
+                       map(tuple, cells[:, kids].tolist())):
+        present.setdefault(m, {}).setdefault(x, set()).add(k)
+    return present
+
+
+def _common_cross(present, combos) -> set:
+    """The cross combinations present for more than half of the margin's combinations (else
+    those present for all)."""
     count: dict[tuple, int] = {}
     for m in combos:
         for x in present[m]:
             count[x] = count.get(x, 0) + 1
     common = {x for x, n in count.items() if 2 * n > len(combos)}
-    if not common:
-        common = set.intersection(*(set(present[m]) for m in combos)) if combos else set()
-    # a nested factor's levels: those every combination of its group (same parents) has
-    parent_pos = [j for j, f in enumerate(M) if any(f in sup.nested.get(kf, ()) for kf in kids)]
+    if not common and combos:
+        common = set.intersection(*(set(present[m]) for m in combos))
+    return common
+
+
+def _kid_levels(present, combos, common, parent_pos) -> dict:
+    """A nested factor's levels per parent combination: those every margin combination of
+    that parent has with every common cross combination."""
     groups: dict[tuple, set] = {}
     for m in combos:
-        if not common <= set(present[m]):
+        if not common or not common <= set(present[m]):
             continue
         gk = tuple(m[j] for j in parent_pos)
-        ks = set.intersection(*(present[m][x] for x in common)) if common else set()
+        ks = set.intersection(*(present[m][x] for x in common))
         groups[gk] = ks if gk not in groups else groups[gk] & ks
-    out_cells, lacking = [], []
-    for m in combos:
-        gk = tuple(m[j] for j in parent_pos)
-        if not common or not common <= set(present[m]) or not groups.get(gk):
-            out_cells.append(None)
-            lacking.append(m)
-            continue
-        rows = []
-        for x in sorted(common):
-            for k in sorted(groups[gk]):
-                r = np.zeros(sup.nf, dtype=np.int64)
-                r[list(M)] = m
-                r[cross] = x
-                r[kids] = k
-                rows.append(r)
-        out_cells.append(np.array(rows))
-    return {"combos": combos, "cells": out_cells, "lacking": lacking, "cross": cross,
-            "kids": kids, "common": sorted(common), "groups": groups}
+    return groups
+
+
+def _cell_rows(nf, M, m, cross, common, kids, ks) -> np.ndarray:
+    """The level codes of the cells one margin combination averages over."""
+    rows = []
+    for x in common:
+        for k in ks:
+            r = np.zeros(nf, dtype=np.int64)
+            r[list(M)] = m
+            r[cross] = x
+            r[kids] = k
+            rows.append(r)
+    return np.array(rows)
 
 
 def pair_rows(fit, factors, ca, cb):
