@@ -61,10 +61,7 @@ def choose_settings(experiment) -> dict:
 
     Raises `ExperimentError` at ``FILE:LINE:COL`` for a malformed section.
     """
-    import yaml
-
-    from benchharness.experiment.yamlnodes import (as_percent, expect_mapping, is_null,
-                                        node_error, scalar_text, sequence_items, to_plain)
+    from benchharness.experiment.yamlnodes import expect_mapping, is_null
 
     out: dict = {}
     if experiment is None:
@@ -76,61 +73,101 @@ def choose_settings(experiment) -> dict:
     try:
         keys = expect_mapping(node, "choose", _CHOOSE_KEYS)
         for key, v in keys.items():
-            if key == "prefer":
-                items = expect_mapping(v, "choose.prefer", _known_factors(experiment, v))
-                prefer = {}
-                for f, lv in items.items():
-                    level = scalar_text(lv, f"choose.prefer.{f}")
-                    listed = _levels(experiment, f)
-                    if listed and level not in listed:
-                        raise node_error(lv, f"choose.prefer.{f}: {level!r} is not a level of "
-                                             f"{f}; levels: {', '.join(listed)}")
-                    prefer[f] = level
-                out["prefer"] = prefer
-            elif key in ("across", "also"):
-                if isinstance(to_plain(v), str):
-                    out[key] = [x.strip() for x in to_plain(v).split(",") if x.strip()]
-                    entries = [(x, v) for x in out[key]]
-                else:
-                    entries = [(scalar_text(x, f"an entry of choose.{key}"), x)
-                               for x in sequence_items(v, f"choose.{key}")]
-                    out[key] = [x for x, _n in entries]
-                for x, n in entries:
-                    _check_column(experiment, key, x, n)
-            elif key == "response":
-                out["response"] = scalar_text(v, "choose.response")
-                _check_column(experiment, "response", out["response"], v)
-            elif key == "within":
-                out["within"] = as_percent(v, "choose.within")
-                if out["within"] >= 1:
-                    raise node_error(v, "choose.within must be under 100%, e.g. 3%")
-            elif key == "limits":
-                from benchharness.choose.limits import parse_limit
-                from benchharness.errors import UsageError
-
-                items = [v] if isinstance(v, yaml.ScalarNode) else sequence_items(
-                    v, "choose.limits")
-                limits = []
-                for item in items:
-                    text = scalar_text(item, "an entry of choose.limits")
-                    try:
-                        lim = parse_limit(text)
-                    except UsageError as exc:
-                        raise node_error(item, f"choose.limits: {exc}") from None
-                    _check_column(experiment, "limits", lim.response, item)
-                    limits.append(lim)
-                out["limits"] = limits
-            elif key == "confidence":
-                c = as_percent(v, "choose.confidence")
-                if not 0 < c < 1:
-                    raise node_error(v, f"choose.confidence must be above 0% and below 100% "
-                                        f"(e.g. 95%), not {scalar_text(v)}")
-                out["confidence"] = c
+            out[key] = _READERS[key](experiment, key, v)
     except ExperimentError as exc:
         if exc.path in (None, "<string>") and path:
             raise ExperimentError(exc.bare, path=path, line=exc.line, col=exc.col) from None
         raise
     return out
+
+
+def _read_prefer(experiment, _key, v) -> dict:
+    """``prefer:``: factor -> one of its levels (the current default)."""
+    from benchharness.experiment.yamlnodes import expect_mapping, node_error, scalar_text
+
+    items = expect_mapping(v, "choose.prefer", _known_factors(experiment, v))
+    prefer = {}
+    for f, lv in items.items():
+        level = scalar_text(lv, f"choose.prefer.{f}")
+        listed = _levels(experiment, f)
+        if listed and level not in listed:
+            raise node_error(lv, f"choose.prefer.{f}: {level!r} is not a level of "
+                                 f"{f}; levels: {', '.join(listed)}")
+        prefer[f] = level
+    return prefer
+
+
+def _read_columns(experiment, key, v) -> list[str]:
+    """``across:`` / ``also:``: column names, as a list or one comma-separated text."""
+    from benchharness.experiment.yamlnodes import scalar_text, sequence_items, to_plain
+
+    if isinstance(to_plain(v), str):
+        names = [x.strip() for x in to_plain(v).split(",") if x.strip()]
+        entries = [(x, v) for x in names]
+    else:
+        entries = [(scalar_text(x, f"an entry of choose.{key}"), x)
+                   for x in sequence_items(v, f"choose.{key}")]
+        names = [x for x, _n in entries]
+    for x, n in entries:
+        _check_column(experiment, key, x, n)
+    return names
+
+
+def _read_response(experiment, _key, v) -> str:
+    """``response:``: the column to choose on."""
+    from benchharness.experiment.yamlnodes import scalar_text
+
+    response = scalar_text(v, "choose.response")
+    _check_column(experiment, "response", response, v)
+    return response
+
+
+def _read_within(_experiment, _key, v) -> float:
+    """``within:``: the trade-off front's practical margin, under 100%."""
+    from benchharness.experiment.yamlnodes import as_percent, node_error
+
+    within = as_percent(v, "choose.within")
+    if within >= 1:
+        raise node_error(v, "choose.within must be under 100%, e.g. 3%")
+    return within
+
+
+def _read_limits(experiment, _key, v) -> list:
+    """``limits:``: one limit or a list of them ("max_rss_kib within 5%")."""
+    import yaml
+
+    from benchharness.choose.limits import parse_limit
+    from benchharness.errors import UsageError
+    from benchharness.experiment.yamlnodes import node_error, scalar_text, sequence_items
+
+    items = [v] if isinstance(v, yaml.ScalarNode) else sequence_items(v, "choose.limits")
+    limits = []
+    for item in items:
+        text = scalar_text(item, "an entry of choose.limits")
+        try:
+            lim = parse_limit(text)
+        except UsageError as exc:
+            raise node_error(item, f"choose.limits: {exc}") from None
+        _check_column(experiment, "limits", lim.response, item)
+        limits.append(lim)
+    return limits
+
+
+def _read_confidence(_experiment, _key, v) -> float:
+    """``confidence:``: above 0% and below 100%."""
+    from benchharness.experiment.yamlnodes import as_percent, node_error, scalar_text
+
+    c = as_percent(v, "choose.confidence")
+    if not 0 < c < 1:
+        raise node_error(v, f"choose.confidence must be above 0% and below 100% "
+                            f"(e.g. 95%), not {scalar_text(v)}")
+    return c
+
+
+#: How each key of the ``choose:`` section is read and checked.
+_READERS = {"prefer": _read_prefer, "across": _read_columns, "also": _read_columns,
+            "response": _read_response, "confidence": _read_confidence,
+            "within": _read_within, "limits": _read_limits}
 
 
 #: Columns besides the factors that can be environments (`across`).
