@@ -53,6 +53,13 @@ def test_single_look_is_the_fixed_test():
     assert boundaries((10,), 0.05)[0] == pytest.approx(norm.isf(0.05), abs=2e-3)
     # t boundaries by simulation: one look is the Student t quantile (scipy.stats.t)
     assert t_boundaries((10,), 0.05)[0] == pytest.approx(t.isf(0.05, 9), abs=0.03)
+    # a first look too early to spend anything (2 of 1,000 blocks: the O'Brien-Fleming
+    # spending there is below 1e-12) has no boundary, removes no paths, and leaves the
+    # whole level to the last look: the fixed test's z quantile (scipy.stats.norm)
+    assert obf_spending(2 / 1000, 0.05) < 1e-12
+    early = boundaries((2, 1000), 0.05)
+    assert early[0] == math.inf
+    assert early[1] == pytest.approx(norm.isf(0.05), abs=2e-3)
 
 
 def test_t_boundaries_keep_the_level_on_fresh_paths():
