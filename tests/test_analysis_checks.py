@@ -292,3 +292,24 @@ def test_a_level_the_experiment_does_not_list_is_named_in_the_error(tmp_path):
         prepare(res, factors=["alloc"])
     assert str(e.value) == ("factor 'alloc': level 'buddy' in the data is not one of the "
                             "levels listed in the experiment ('arena', 'pool', 'slab')")
+
+
+def test_one_run_per_cell_fits_main_effects_and_says_so():
+    # Planted: a 2 x 3 layout, one run per cell (no replicates). The a:b interaction is
+    # the error term, so the model fitted is order 1 (main effects) and analysis.json's
+    # model says so; the ANOVA is statsmodels' additive OLS fit (anova_lm, type 2).
+    import statsmodels.formula.api as smf
+    from statsmodels.stats.anova import anova_lm
+
+    rng = np.random.default_rng(1)
+    d = pd.DataFrame([{"a": a, "b": b, "wall_s": 1.0 + 0.5 * (a == "y") + 0.1 * i
+                       + rng.normal(0, 0.01)}
+                      for a in ("x", "y") for i, b in enumerate("pqr")])
+    an = analyze(d, factors=["a", "b"], transform="none", art=False)
+    assert an.model["spec"] == "1" and an.model["terms"] == ["a", "b"]
+    assert any("one run per cell" in n for n in an.notes)
+    ref = anova_lm(smf.ols("wall_s ~ C(a) + C(b)", data=d).fit(), typ=2)
+    rows = {r["term"]: r for r in an.anova_rows}
+    assert rows["Residual"]["df"] == ref.loc["Residual", "df"] == 2
+    for t in ("a", "b"):
+        assert rows[t]["F"] == pytest.approx(ref.loc[f"C({t})", "F"], rel=1e-6)

@@ -195,3 +195,21 @@ def test_plan_csv_with_a_run_number_that_is_not_a_number_is_named(tmp_path):
     msg = str(e.value)
     assert msg.startswith(f"{tmp_path / 'plan.csv'}:3: invalid literal for int()")
     assert "put back the file as `benchharness run` wrote it" in msg
+
+
+def test_repeated_runs_are_counted_as_identical_or_with_other_values(tmp_path):
+    # Planted: run 1 is recorded four times: the first record, one identical repeat and
+    # two repeats with other values. The first record is used; the note counts the three
+    # repeats and splits them 1 identical, 2 with other values.
+    import json
+
+    r = _records(3)
+    other = [json.dumps({"run": 1, "status": "ok", "wall_s": w, "levels": {"a": "x"}}).encode()
+             for w in (2.0, 3.0)]
+    p = tmp_path / "runs.jsonl"
+    p.write_bytes(b"\n".join([r[0], r[1], other[0], r[1], other[1], r[2]]) + b"\n")
+    notes = []
+    recs = J.read_journal(p, notes=notes)
+    assert [(x["run"], x["wall_s"]) for x in recs] == [(0, 1.0), (1, 1.0), (2, 1.0)]
+    assert any("3 lines repeat a run already recorded (1 identical, 2 with other values; "
+               "run 1)" in n for n in notes), notes
