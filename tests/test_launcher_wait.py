@@ -54,3 +54,27 @@ def test_a_program_that_cannot_be_started_is_named(tmp_path):
     assert m.status == "failed"
     assert f"cannot start {str(prog)!r}" in m.message, m.message
     assert "some-argument" not in m.message
+
+
+def test_the_launcher_sleeps_while_it_lingers_for_output():
+    # The run exits at once and leaves a child that holds its stdout for 1 s: the launcher
+    # reads the pipes until their end (linger_s 3 s) and sleeps meanwhile, a handful of
+    # wake-ups, not one per millisecond.
+    with LocalExecutor(kill_grace_s=0.3, linger_s=3.0) as ex:
+        ex.execute(RunSpec(argv=("true",), env=ENV))          # started and warm
+        before = _wakeups(ex.launcher_pid)
+        m = ex.execute(RunSpec(argv=("sh", "-c", "(sleep 1; echo late) & exit 0"), env=ENV))
+        after = _wakeups(ex.launcher_pid)
+    assert m.status == "ok", m.message
+    assert m.stdout_tail.split() == [b"late"]
+    assert after - before < 100, after - before
+
+
+@pytest.mark.parametrize("sig", ["HUP", "TERM"])
+def test_a_run_killed_by_a_signal_says_which(sig):
+    # Planted: the run sends itself SIGHUP (signal 1, the lowest) or SIGTERM; it failed,
+    # and the message names the signal, not an exit code
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        m = ex.execute(RunSpec(argv=("sh", "-c", f"kill -{sig} $$"), env=ENV))
+    assert m.status == "failed"
+    assert m.message.startswith(f"killed by SIG{sig}"), m.message
