@@ -53,6 +53,9 @@ def test_single_look_is_the_fixed_test():
     assert boundaries((10,), 0.05)[0] == pytest.approx(norm.isf(0.05), abs=2e-3)
     # t boundaries by simulation: one look is the Student t quantile (scipy.stats.t)
     assert t_boundaries((10,), 0.05)[0] == pytest.approx(t.isf(0.05, 9), abs=0.03)
+    # beyond the stored paths (160 blocks) the paths are drawn look by look: one look at
+    # 400 blocks is the Student t quantile too (Monte Carlo error about 0.009)
+    assert t_boundaries((400,), 0.05)[0] == pytest.approx(t.isf(0.05, 399), abs=0.03)
     # a first look too early to spend anything (2 of 1,000 blocks: the O'Brien-Fleming
     # spending there is below 1e-12) has no boundary, removes no paths, and leaves the
     # whole level to the last look: the fixed test's z quantile (scipy.stats.norm)

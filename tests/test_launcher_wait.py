@@ -78,3 +78,36 @@ def test_a_run_killed_by_a_signal_says_which(sig):
         m = ex.execute(RunSpec(argv=("sh", "-c", f"kill -{sig} $$"), env=ENV))
     assert m.status == "failed"
     assert m.message.startswith(f"killed by SIG{sig}"), m.message
+
+
+@pytest.mark.parametrize("cpus", [None, (0,)])
+def test_a_run_starts_with_default_signal_handling_either_way_it_is_started(cpus):
+    # Python ignores SIGPIPE and SIGXFSZ, and an exec keeps what is ignored. A run starts
+    # with both at their defaults (blocked-pipe writers die quietly, as in a shell),
+    # whether the launcher spawns it directly or forks to pin it to CPUs first. Planted
+    # truth: the run reads its own ignored-signal mask (/proc/self/status, SigIgn).
+    import signal
+
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        m = ex.execute(RunSpec(argv=("cat", "/proc/self/status"), env=ENV, cpus=cpus))
+    assert m.status == "ok", m.message
+    ign = int(next(ln for ln in m.stdout_tail.decode().splitlines()
+                   if ln.startswith("SigIgn:")).split()[1], 16)
+    for sig in (signal.SIGPIPE, signal.SIGXFSZ):
+        assert not ign & (1 << (sig - 1)), hex(ign)
+
+
+def test_a_run_with_a_time_limit_is_recorded_in_flight_while_it_runs(tmp_path):
+    # A run still going after its first millisecond is recorded in the in-flight file (a
+    # later resume stops it from there), also when it has a time limit far away. Planted
+    # truth: the run itself reads the file 0.3 s after it started and prints its pid.
+    import json
+
+    path = tmp_path / "inflight"
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        m = ex.execute(RunSpec(argv=("sh", "-c", f"sleep 0.3; cat {path}; echo; echo $$"),
+                               env=ENV, timeout_s=60.0, run_id=7, inflight_path=str(path)))
+    assert m.status == "ok", m.message
+    record, pid = m.stdout_tail.decode().split("\n")[:2]
+    rec = json.loads(record)
+    assert (rec["run"], rec["pid"], rec["pgid"]) == (7, int(pid), int(pid))
