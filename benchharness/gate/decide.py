@@ -213,94 +213,154 @@ def judge(blocks: Sequence[Block], settings: GateSettings, workloads: int = 1,
 
 
 def _judge(blocks, settings, workloads, tracker) -> Judgement:
-    design = settings.design(workloads)
-    alpha_w = design.alpha
-    n_blocks = len(blocks)
-    diffs = [d for d in (log_slowdown(b, settings.higher_is_better) for b in blocks) if d is not None]
-    n = len(diffs)
-    base_fail = sum(b.baseline_status != OK for b in blocks)
-    cand_fail = sum(b.candidate_status != OK for b in blocks)
-    at_budget = n_blocks >= settings.max_runs
-
-    mean = sd = None
-    if n >= 1:
-        mean = sum(diffs) / n
-    if n >= 2:
-        if settings.estimator == "robust":
-            mean, sd = robust_summary(diffs)
-        else:
-            sd = math.sqrt(sum((x - mean) ** 2 for x in diffs) / (n - 1))
-        sd = max(sd, 1e-9)
-    ratio = math.exp(mean) if mean is not None else None
-    only_c, only_b = _failure_counts(blocks)
-
-    def make(verdict, reason, lo=None, hi=None, horizon=None, extra=None):
-        if verdict in ("no_regression", "improvement") and only_c > only_b:
-            reason += (f"; the candidate alone failed in {only_c} blocks, the baseline alone in "
-                       f"{only_b}: too few to say it fails more often")
-        return Judgement(
-            verdict=verdict, blocks=n_blocks, usable_blocks=n, ratio=ratio,
-            lower=math.exp(lo) if lo is not None else None,
-            upper=math.exp(hi) if hi is not None else None,
-            horizon_blocks=horizon if horizon is not None else settings.max_runs,
-            alpha=alpha_w, reason=reason, baseline_failures=base_fail,
-            candidate_failures=cand_fail, sd_log=sd, extra=extra or {},
-        )
-
-    fail_reason = failure_verdict(only_c, only_b, settings.max_runs,
-                                  settings.failure_alpha(workloads))
-    if fail_reason:
-        # a regression by failure rate, not by timings: said so in every output
-        return make("regression", fail_reason, extra={"cause": "failures"})
+    """One look: the failure rule first, then the timing bounds (see the module docstring)."""
+    look = _Look.of(blocks, settings, workloads)
+    by_failures = _failure_regression(look, settings, workloads)
+    if by_failures is not None:
+        return by_failures
     passed = getattr(tracker, "timing_pass", None)
     if passed is not None:
         # timings already passed at an earlier look; only the failure question is open
-        if failures_lean_against(only_c, only_b, settings.failure_hold):
-            return _held(make, passed, only_c, only_b, at_budget)
-        return make(*passed)
+        return _pass_or_hold(look, passed, tracker, settings, earlier=True)
+    if look.n < max(2, settings.min_runs) or look.sd is None:
+        if look.at_budget:
+            return look.make("inconclusive",
+                             f"only {look.n} blocks with both runs ok within the budget")
+        return look.make(None, "waiting for the first look")
+    return _bounds_verdict(look, settings, look.design, tracker)
 
-    if n < max(2, settings.min_runs) or sd is None:
-        if at_budget:
-            return make("inconclusive", f"only {n} blocks with both runs ok within the budget")
-        return make(None, "waiting for the first look")
 
-    # sd > 0 from here
-    plan_sd = _plan_sd(sd, n, settings, tracker)
-    horizon = design.horizon(plan_sd)
+@dataclass(frozen=True)
+class _Look:
+    """What one look knows: counts, the location and noise of the log slowdowns."""
+
+    settings: GateSettings
+    design: SequentialDesign
+    n_blocks: int                   # blocks run
+    n: int                          # blocks with a timing difference
+    mean: float | None              # location of the log slowdowns
+    sd: float | None                # their noise (resistant or plain)
+    base_fail: int
+    cand_fail: int
+    only_c: int                     # blocks where only the candidate failed
+    only_b: int                     # blocks where only the baseline failed
+
+    @classmethod
+    def of(cls, blocks, settings: GateSettings, workloads: int) -> "_Look":
+        diffs = [d for d in (log_slowdown(b, settings.higher_is_better) for b in blocks)
+                 if d is not None]
+        mean, sd = _location_and_noise(diffs, settings.estimator)
+        only_c, only_b = _failure_counts(blocks)
+        return cls(settings=settings, design=settings.design(workloads),
+                   n_blocks=len(blocks), n=len(diffs), mean=mean, sd=sd,
+                   base_fail=sum(b.baseline_status != OK for b in blocks),
+                   cand_fail=sum(b.candidate_status != OK for b in blocks),
+                   only_c=only_c, only_b=only_b)
+
+    @property
+    def at_budget(self) -> bool:
+        return self.n_blocks >= self.settings.max_runs
+
+    def make(self, verdict, reason, lo=None, hi=None, horizon=None, extra=None) -> Judgement:
+        """The judgement of this look; a pass notes candidate failures too few to decide."""
+        if verdict in ("no_regression", "improvement") and self.only_c > self.only_b:
+            reason += (f"; the candidate alone failed in {self.only_c} blocks, the baseline "
+                       f"alone in {self.only_b}: too few to say it fails more often")
+        return Judgement(
+            verdict=verdict, blocks=self.n_blocks, usable_blocks=self.n,
+            ratio=math.exp(self.mean) if self.mean is not None else None,
+            lower=math.exp(lo) if lo is not None else None,
+            upper=math.exp(hi) if hi is not None else None,
+            horizon_blocks=horizon if horizon is not None else self.settings.max_runs,
+            alpha=self.design.alpha, reason=reason, baseline_failures=self.base_fail,
+            candidate_failures=self.cand_fail, sd_log=self.sd, extra=extra or {},
+        )
+
+
+def _location_and_noise(diffs: Sequence[float], estimator: str
+                        ) -> tuple[float | None, float | None]:
+    """(location, noise) of the log slowdowns: the mean from one, the estimator's from two."""
+    n = len(diffs)
+    if n == 0:
+        return None, None
+    mean = sum(diffs) / n
+    if n == 1:
+        return mean, None
+    if estimator == "robust":
+        mean, sd = robust_summary(diffs)
+    else:
+        sd = math.sqrt(sum((x - mean) ** 2 for x in diffs) / (n - 1))
+    return mean, max(sd, 1e-9)
+
+
+def _failure_regression(look: _Look, settings: GateSettings, workloads: int
+                        ) -> Judgement | None:
+    """A regression by failure rate (exact sequential sign test), else None."""
+    reason = failure_verdict(look.only_c, look.only_b, settings.max_runs,
+                             settings.failure_alpha(workloads))
+    if not reason:
+        return None
+    # a regression by failure rate, not by timings: said so in every output
+    return look.make("regression", reason, extra={"cause": "failures"})
+
+
+def _pass_or_hold(look: _Look, passed: tuple, tracker, settings: GateSettings,
+                  earlier: bool = False) -> Judgement:
+    """A pass by the timings, held back while the candidate's failures lean against it."""
+    if failures_lean_against(look.only_c, look.only_b, settings.failure_hold):
+        if not earlier:
+            # the timings pass, but the candidate's failures might still decide: keep
+            # adding blocks for the failure question only
+            tracker.timing_pass = passed
+        return _held(look.make, passed, look.only_c, look.only_b, look.at_budget)
+    return look.make(*passed)
+
+
+def _look_horizon(look: _Look, settings: GateSettings, design: SequentialDesign,
+                  tracker) -> int:
+    """The planned horizon (blocks) at this look: from the noise, with the pilot's floor."""
+    horizon = design.horizon(_plan_sd(look.sd, look.n, settings, tracker))
     if settings.horizon_from == "ratchet":
         # the pilot: a horizon planned from fewer blocks would end early exactly when
         # the estimate came out small, the same small estimate that inflates the
         # statistic, and spend the rest of the level there (docs/gate.md)
         horizon = max(horizon, min(settings.ratchet_from, settings.max_runs))
-    final = at_budget or n >= horizon
-    ct = tracker.boundary(n, horizon, final)
+    return horizon
+
+
+def _bounds_verdict(look: _Look, settings: GateSettings, design: SequentialDesign,
+                    tracker) -> Judgement:
+    """The repeated bounds at this look and what they say (sd > 0 here)."""
+    horizon = _look_horizon(look, settings, design, tracker)
+    final = look.at_budget or look.n >= horizon
+    ct = tracker.boundary(look.n, horizon, final)
     if not math.isfinite(ct):
         if final:
-            return make("inconclusive", "budget spent before a look could decide", horizon=horizon)
-        return make(None, "no level to spend at this look yet", horizon=horizon)
-    half = ct * sd / math.sqrt(n)
-    lo, hi = mean - half, mean + half
+            return look.make("inconclusive", "budget spent before a look could decide",
+                             horizon=horizon)
+        return look.make(None, "no level to spend at this look yet", horizon=horizon)
+    half = ct * look.sd / math.sqrt(look.n)
+    lo, hi = look.mean - half, look.mean + half
     thr = settings.threshold_log
     if lo > thr:
-        return make("regression", f"slower than {1 + settings.tolerance:.3g}× with "
-                    f"{settings.confidence * 100:g}% confidence", lo, hi, horizon)
+        return look.make("regression", f"slower than {1 + settings.tolerance:.3g}× with "
+                         f"{settings.confidence * 100:g}% confidence", lo, hi, horizon)
     if hi < thr:
-        if hi < settings.improvement_log:
-            passed = ("improvement", f"faster than {1 - settings.tolerance:.3g}×", lo, hi, horizon)
-        else:
-            passed = ("no_regression", f"not slower than {1 + settings.tolerance:.3g}×", lo, hi,
-                      horizon)
-        if failures_lean_against(only_c, only_b, settings.failure_hold):
-            # the timings pass, but the candidate's failures might still decide: keep
-            # adding blocks for the failure question only
-            tracker.timing_pass = passed
-            return _held(make, passed, only_c, only_b, at_budget)
-        return make(*passed)
+        return _pass_or_hold(look, _pass(settings, lo, hi, horizon), tracker, settings)
     if final:
-        why = ("budget spent" if at_budget else "planned information spent")
-        return make("inconclusive", f"{why}; the ratio is too close to the tolerance to tell",
-                    lo, hi, horizon)
-    return make(None, "undecided", lo, hi, horizon)
+        why = ("budget spent" if look.at_budget else "planned information spent")
+        return look.make("inconclusive",
+                         f"{why}; the ratio is too close to the tolerance to tell",
+                         lo, hi, horizon)
+    return look.make(None, "undecided", lo, hi, horizon)
+
+
+def _pass(settings: GateSettings, lo: float, hi: float, horizon: int) -> tuple:
+    """(verdict, reason, lo, hi, horizon) of a pass: better when below 1 - tolerance too."""
+    if hi < settings.improvement_log:
+        return ("improvement", f"faster than {1 - settings.tolerance:.3g}×", lo, hi, horizon)
+    return ("no_regression", f"not slower than {1 + settings.tolerance:.3g}×", lo, hi,
+            horizon)
 
 
 def _held(make, passed, only_c: int, only_b: int, at_budget: bool) -> Judgement:
