@@ -66,3 +66,51 @@ def test_runs_share_levels_and_cells_share_one_environment():
                                      "env: {LEVEL: '{a}'}\n")
     tc = CellCache(templated, {})
     assert tc.get({"a": "1"})["env"]["LEVEL"] == "1" and tc.get({"a": "2"})["env"]["LEVEL"] == "2"
+
+
+def test_distinct_levels_merges_equal_cells_like_sorting_their_items():
+    from benchharness.execute.engine import distinct_levels
+
+    exp = Experiment.from_text(TRICKY)
+    plan = make_plan(exp)
+    # reference: the plain definition, each dict keyed by its sorted items
+    def reference(dicts):
+        return list({tuple(sorted(d.items())): d for d in dicts}.values())
+
+    shared = [r.levels for r in plan.runs]                       # a fresh plan
+    per_row = [dict(r.levels) for r in plan.runs]                # resumed: a dict per row
+    mixed = per_row + [dict(reversed(list(d.items()))) for d in per_row[:7]] + [{"a": "new"}]
+    for dicts in (shared, per_row, mixed):
+        got = distinct_levels(dicts)
+        assert got == reference(dicts)
+    assert len(distinct_levels(shared)) == 30 and len(distinct_levels(mixed)) == 31
+
+
+def test_collector_is_off_during_set_up_and_restored_after(tmp_path, monkeypatch):
+    """Set-up (plan, folder, provenance) runs with the cyclic collector off; the runs
+    with it on, set-up's objects frozen; afterwards everything is as before."""
+    import gc
+
+    from benchharness.execute import collector
+    from benchharness.execute import runner as R
+    from benchharness.execute.simulated import SimulatedExecutor
+
+    seen = {}
+    real_build, real_settle = R._write_new_folder, collector.settle
+
+    def write_folder(*a, **k):
+        seen["set-up"] = gc.isenabled()
+        return real_build(*a, **k)
+
+    def settle():
+        real_settle()
+        seen["runs"] = (gc.isenabled(), gc.get_freeze_count() > 0)
+
+    exp = Experiment.from_text("experiment: t\ncommand: [x, '{a}']\nfactors: {a: [1, 2]}\n"
+                               "replicates: 2\nseed: 2\n")
+    monkeypatch.setattr(R, "_write_new_folder", write_folder)
+    monkeypatch.setattr(collector, "settle", settle)
+    out = R.run_experiment(exp, out=tmp_path / "out", executor=SimulatedExecutor())
+    assert out.counts.get("ok") == 4
+    assert seen == {"set-up": False, "runs": (True, True)}
+    assert gc.isenabled() and gc.get_freeze_count() == 0

@@ -53,13 +53,25 @@ class FirstRunsWatch:
     """Watches the runs of one session; `observe` says when to stop (see the module)."""
 
     def __init__(self, cells: Iterable[Mapping[str, str]]):
-        self.cells = {tuple(sorted(c.items())) for c in cells}
+        # the cells' keys are made at the first failure, not before the first run
+        # (100,000 cells cost 0.25 s of CPU): a session whose first run ends ok never
+        # needs them
+        self._cells_of = cells
+        self._cells: set | None = None
         self.seen: set = set()
         self.kinds: Counter = Counter()
         self.messages: Counter = Counter()
         self.runs = 0
-        self.active = bool(self.cells)
+        self.active = True
         self.reason: str | None = None
+
+    @property
+    def cells(self) -> set:
+        """The cells still to run when the watch began, as sorted ``(factor, level)`` tuples."""
+        if self._cells is None:
+            self._cells = {tuple(sorted(c.items())) for c in _distinct(self._cells_of)}
+            self._cells_of = ()
+        return self._cells
 
     def observe(self, rec: Mapping) -> str | None:
         """Take one recorded run; returns the reason to stop, once, or None."""
@@ -68,6 +80,9 @@ class FirstRunsWatch:
         fail = failure_of(rec)
         if fail is None:
             self.active = False      # something works: never stop this session early
+            return None
+        if not self.cells:
+            self.active = False      # nothing was left to run
             return None
         status, code, message = fail
         self.runs += 1
@@ -86,6 +101,11 @@ class FirstRunsWatch:
                        f"({self.runs} run{'s' if self.runs != 1 else ''}, none ok): "
                        f"{message[:300]}")
         return self.reason
+
+
+def _distinct(dicts: Iterable[Mapping]) -> list:
+    """Each mapping once by identity (a plan shares one levels dict among a cell's runs)."""
+    return list({id(d): d for d in dicts}.values())
 
 
 def _relative_paths(argv: Iterable[str]) -> list[str]:

@@ -32,6 +32,7 @@ from pathlib import Path
 from typing import Mapping, Sequence
 
 from benchharness.errors import DiskFullError, ExecutionError, ResultsFolderError, is_disk_full
+from benchharness.execute import collector
 from benchharness.execute.base import as_executor
 from benchharness.execute.engine import (MIRROR_LIMIT, Progress, RunEngine, RunOutcome, finalize,
                                          start_quality, version)
@@ -151,9 +152,10 @@ def run_experiment(exp, out=None, executor=None, base: str | os.PathLike = DEFAU
 
         prefetch_git(Path(exp.path).resolve().parent if exp.path != "<string>" else os.getcwd())
     try:
-        return _run_new(exp, exp_for_plan, notes, out, early or executor, early is not None,
-                        base, seed, progress, plan, plan_kwargs, scheduler, same_host_ok,
-                        budget_s, estimate_s, early_stop)
+        with collector.paused():   # until the runs start: set-up makes no garbage
+            return _run_new(exp, exp_for_plan, notes, out, early or executor, early is not None,
+                            base, seed, progress, plan, plan_kwargs, scheduler, same_host_ok,
+                            budget_s, estimate_s, early_stop)
     finally:
         if early is not None:
             early.close()  # already closed when the run went through
@@ -237,12 +239,13 @@ def _run_new(exp, exp_for_plan, notes, out, executor, own_executor, base, seed, 
     try:
         session = _session_record(exp, plan, seed, scheduler, budget_s)
         folder = _write_new_folder(folder, base, out, exp, plan, session, host, scheduler)
-        planned = [{"run": r.run, "position": r.position, "block": r.block,
-                    "replicate": r.replicate, "warmup": r.warmup, "levels": r.levels}
-                   for r in plan.runs]
+        planned = [{"run": d["run"], "position": d["position"], "block": d["block"],
+                    "replicate": d["replicate"], "warmup": d["warmup"], "levels": d["levels"]}
+                   for d in (r.__dict__ for r in plan.runs)]   # no attribute look-ups
         if scheduler:
             from benchharness.execute.cluster import execute_on_cluster
 
+            collector.settle()
             outcome = execute_on_cluster(folder, exp, planned, set(), session, progress,
                                          host.facts, scheduler, same_host_ok=same_host_ok)
         else:
@@ -335,31 +338,38 @@ def resume_experiment(folder, executor=None, progress: Progress | None = None,
     folder = Path(folder)
     lock = _lock_for_resume(folder)
     try:
-        notes = []
-        killed = J.kill_leftover(folder)
-        if killed:
-            notes.append(killed)
-        exp, session, planned, records = _resume_state(folder, notes)
-        try:
-            facts = json.loads((folder / "host.json").read_text())
-        except (OSError, json.JSONDecodeError):
-            facts = {}
-        done = {int(r["run"]) for r in records}
-        if scheduler:
-            from benchharness.execute.cluster import execute_on_cluster
-
-            outcome = execute_on_cluster(folder, exp, planned, done, session, progress,
-                                         facts.get("coordinator", facts), scheduler,
-                                         same_host_ok=same_host_ok, prior=records,
-                                         known_hosts=facts.get("hosts"))
-        else:
-            planned, gate = _resume_stopping_rule(folder, exp, session, planned)
-            outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
-                               prior=records, stop_check=gate, early_stop=early_stop)
-        outcome.notes[:0] = notes
-        return outcome
+        with collector.paused():   # until the runs start: set-up makes no garbage
+            return _resume(folder, executor, progress, scheduler, same_host_ok, early_stop)
     finally:
         lock.release()
+
+
+def _resume(folder, executor, progress, scheduler, same_host_ok, early_stop) -> RunOutcome:
+    """`resume_experiment` once the folder is locked (see there)."""
+    notes = []
+    killed = J.kill_leftover(folder)
+    if killed:
+        notes.append(killed)
+    exp, session, planned, records = _resume_state(folder, notes)
+    try:
+        facts = json.loads((folder / "host.json").read_text())
+    except (OSError, json.JSONDecodeError):
+        facts = {}
+    done = {int(r["run"]) for r in records}
+    if scheduler:
+        from benchharness.execute.cluster import execute_on_cluster
+
+        collector.settle()
+        outcome = execute_on_cluster(folder, exp, planned, done, session, progress,
+                                     facts.get("coordinator", facts), scheduler,
+                                     same_host_ok=same_host_ok, prior=records,
+                                     known_hosts=facts.get("hosts"))
+    else:
+        planned, gate = _resume_stopping_rule(folder, exp, session, planned)
+        outcome = _execute(folder, exp, planned, done, session, executor, progress, facts,
+                           prior=records, stop_check=gate, early_stop=early_stop)
+    outcome.notes[:0] = notes
+    return outcome
 
 
 def _lock_for_resume(folder: Path):
@@ -545,6 +555,7 @@ class _LocalRun:
 
     def _loop(self) -> None:
         eng = self.engine
+        collector.settle()   # the runs start: the collector back on, set-up's objects frozen
         memory_floor.record(self.session, self.executor.memory_floor)  # session.json
         if eng.can_queue(self.stop_check is not None):
             self.mirror = J.JournalMirror(self.jr.path, MIRROR_LIMIT, self.exp.factor_names,
