@@ -10,7 +10,7 @@ sizes and point counts as the report, each saved as PNG and SVG, plus a short
 Markdown page listing them. It imports nothing from this project and runs in
 its own process.
 
-Usage: python experiments/bench/report_reference.py RUNS.csv OUT_DIR --factors A,B,C,D
+Usage: python experiments/bench/report_reference.py RUNS.csv OUT_DIR --factors A,B,C,D [--once]
 Prints one JSON line: {"wall_s": ..., "cpu_s": ..., "figures": N} for the drawing
 and writing (imports and reading the CSV excluded; one untimed warm-up first, as
 for the report).
@@ -186,13 +186,17 @@ def main(argv=None) -> int:
     ap.add_argument("csv", type=Path)
     ap.add_argument("out", type=Path)
     ap.add_argument("--factors", required=True)
+    ap.add_argument("--once", action="store_true",
+                    help="draw once, without the untimed warm-up (startup.py times the "
+                         "whole process: the floor of `benchharness report`)")
     args = ap.parse_args(argv)
     factors = args.factors.split(",")
     df = pd.read_csv(args.csv, dtype={f: str for f in factors})
     for f in factors:   # levels in order of first appearance in the table
         df[f] = pd.Categorical(df[f], categories=list(dict.fromkeys(df[f])))
     args.out.mkdir(parents=True, exist_ok=True)
-    draw(df, factors, args.out)   # warm-up: font cache, first-use costs
+    if not args.once:
+        draw(df, factors, args.out)   # warm-up: font cache, first-use costs
     c0, t0 = time.process_time(), time.perf_counter()
     n = draw(df, factors, args.out)
     print(json.dumps({"wall_s": time.perf_counter() - t0, "cpu_s": time.process_time() - c0,

@@ -10,7 +10,11 @@ the same session, and the load average before and after:
   ``benchharness analyze`` of a 100-row CSV (an invented codec × level timing
   table), ``benchharness report`` of a copy of the committed example folder
   (``results/example-archive-codecs``: 12 figures as PNG and SVG, HTML, Markdown),
-  and ``report --no-figures``-like cost is not separated: drawing is part of it.
+  and ``report --no-figures``-like cost is not separated: drawing is part of it;
+  beside it the **floor** of that report: ``report_reference.py --once``, a plain
+  pandas + matplotlib script (nothing from this project) drawing the same figures
+  as PNG and SVG from the example's ``runs.csv``, timed as a whole process like
+  the commands (start-up, imports, reading, drawing, writing).
 * ``big`` (issue 18 item 2): ``benchharness analyze`` of a 1,000,000-row CSV with
   ``--json`` (start-up, read, analysis, JSON) against the analysis call alone
   (``benchharness.analysis.analyze`` on the table already in memory, in a process
@@ -140,6 +144,10 @@ def main() -> int:
                 "benchharness analyze (100 rows)": bh + ["analyze", str(csv), "--factors",
                                                          "codec,level"],
                 "benchharness report (example)": bh + ["report", str(example)],
+                "floor: plain script, same figures": [
+                    py, str(ROOT / "experiments" / "bench" / "report_reference.py"),
+                    str(example / "runs.csv"), str(work / "reference"),
+                    "--factors", "codec,level,corpus", "--once"],
             }
             run_section("startup", commands, "python -c 'import pandas'", a.repeat, env, work)
         if "big" in sections:
