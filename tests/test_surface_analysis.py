@@ -185,3 +185,35 @@ def test_planted_optimum_coverage_rates():
           f"each {each[0]:.4f} {each[1]:.4f}")
     assert abs(region - 0.95) < 3 * np.sqrt(0.95 * 0.05 / 10_000)
     assert both > 0.85
+
+
+def test_without_repeated_runs_the_lack_of_fit_is_not_tested_and_too_few_runs_fit_nothing():
+    x = np.array(CCD2.parts()["corner"] + CCD2.parts()["axial"] + CCD2.parts()["centre"])
+    from benchharness.analysis.surface import model_matrix
+
+    z = model_matrix(x) @ np.array(MIN2) + np.random.default_rng(2).normal(0, 0.01, len(x))
+    out = analyse(CCD2, x, z, LOG)
+    assert out["lack_of_fit"]["verdict"] == "not tested"
+    assert "no settings were run more than once (add centre runs)" in \
+        out["lack_of_fit"]["statement"]
+    assert out["proposal"]["supported"]        # still proposed, saying the test was not made
+    assert "the lack of fit could not be tested" in findings(out, CCD2)[2]["statement"]
+    few = analyse(CCD2, x[:5], z[:5], LOG)
+    assert few["fitted"] is False
+    assert findings(few, CCD2)[0]["statement"] == ("The second-order surface needs more than "
+                                                   "6 runs (5 analysed); no surface was fitted")
+
+
+def test_a_tilted_plane_is_best_on_the_region_edge_in_the_downhill_direction():
+    from benchharness.analysis.surface import Quadratic, best_in_region, inside
+
+    # z = -0.3 a - 0.4 b: steepest descent along (0.6, 0.8); the best point of the
+    # disc of radius sqrt(2) is sqrt(2) * (0.6, 0.8)
+    q = Quadratic([0, -0.3, -0.4, 0, 0, 0], np.eye(6), 2, 5)
+    region = CCD2.region()
+    x = best_in_region(q, region, 1.0, [(0.0, 0.0), (1.0, -1.0)])
+    assert np.allclose(x, np.sqrt(2) * np.array([0.6, 0.8]), atol=1e-4)
+    assert inside(x, region) and not inside(x * 1.01, region)
+    # higher is better: the opposite edge
+    x = best_in_region(q, region, -1.0, [(0.0, 0.0)])
+    assert np.allclose(x, -np.sqrt(2) * np.array([0.6, 0.8]), atol=1e-4)

@@ -138,3 +138,21 @@ def test_choose_falls_back_to_the_best_tested_setting_when_the_surface_does_not_
                                        "because the fitted second-order surface does not hold")
     assert out["statement"].endswith("falls back to the best tested setting, buffer_kib=64, "
                                      "workers=5")
+
+
+def test_choose_proposes_nothing_between_levels_for_other_settings_and_no_surface_otherwise():
+    from benchharness.choose.surface import proposal
+
+    exp = parse_experiment(EXP.format(python="python3", script="w.py", state="n"), "s.yaml")
+    df = pd.DataFrame({"buffer_kib": ["64"], "workers": ["5"], "status": ["ok"],
+                       "cost_s": [0.2]})
+    out = proposal(df, exp, "cost_s", "lower", "log", 0.95, ["buffer_kib"], ["workers"],
+                   {"buffer_kib": "64"})
+    assert out["used"] is False
+    assert out["statement"].endswith("no value between the tested levels is proposed")
+    no_design = "design:\n  type: response-surface\n  log_scale: [buffer_kib]\n"
+    assert no_design in EXP
+    plain = parse_experiment(EXP.replace(no_design, "")
+                             .format(python="python3", script="w.py", state="n"), "p.yaml")
+    assert proposal(df, plain, "cost_s", "lower", "log", 0.95, ["buffer_kib", "workers"], [],
+                    {}) is None
