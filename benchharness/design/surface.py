@@ -448,6 +448,8 @@ def describe(d: dict) -> list[str]:
                 f"±{d['alpha']:.4g}), {k} settings: {c['corner']} corner + {c['axial']} "
                 f"axial points + {c['centre']} centre runs = {d['runs_per_replicate']} runs "
                 "per replicate")
+    distinct = len({tuple(p) for p in d["coded_points"]})
+    head += f" ({distinct} distinct settings; the centre is run {c['centre']} times)"
     lines = [head, "  coded -> actual values (low = -1, high = +1):"]
     moved = []
     for s, lv in zip(d["settings"], d["levels"]):
