@@ -220,3 +220,13 @@ def test_gate_direction_lower_or_higher_else_a_clear_error():
     assert parse_gate_section(_gate_exp("")).settings.higher_is_better is False
     with pytest.raises(ExperimentError, match="'gate: better' must be lower"):
         parse_gate_section(_gate_exp(", better: sideways"))
+
+
+def test_markdown_summary_states_tolerance_and_confidence_in_percent():
+    # GateSettings' defaults are the documented 5% tolerance at 95% confidence
+    from benchharness.gate.output import markdown_summary
+
+    out = _outcome(["no_regression"])
+    s = out.settings
+    assert (s.tolerance, s.confidence) == (0.05, 0.95)
+    assert "tolerance 5%, 95% confidence)." in markdown_summary(out)

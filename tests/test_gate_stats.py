@@ -56,6 +56,13 @@ def test_single_look_is_the_fixed_test():
     # beyond the stored paths (160 blocks) the paths are drawn look by look: one look at
     # 400 blocks is the Student t quantile too (Monte Carlo error about 0.009)
     assert t_boundaries((400,), 0.05)[0] == pytest.approx(t.isf(0.05, 399), abs=0.03)
+    # the gate's own tracker past the stored paths adds block after block: one final look
+    # at 200 blocks is the t quantile as well (20,000 paths: Monte Carlo error about 0.015)
+    from benchharness.gate.sequential import SpendingTracker
+
+    tracker = SpendingTracker(0.05, paths=20_000)
+    assert tracker.boundary(200, 200, final=True) == pytest.approx(t.isf(0.05, 199), abs=0.05)
+    assert tracker.spent == pytest.approx(0.05)
     # a first look too early to spend anything (2 of 1,000 blocks: the O'Brien-Fleming
     # spending there is below 1e-12) has no boundary, removes no paths, and leaves the
     # whole level to the last look: the fixed test's z quantile (scipy.stats.norm)

@@ -74,3 +74,22 @@ def test_a_run_stopped_at_its_time_limit_keeps_what_it_said_while_stopping():
     assert m.status == "timeout", m.message
     assert m.stdout_tail.split() == [b"started"]
     assert b"stopping" in m.stderr_tail.split(), m.stderr_tail  # (sh may add "Terminated")
+
+
+def test_orphans_add_each_usage_figure_to_its_own_and_the_peak_is_the_largest():
+    # Planted: two orphans with distinct figures (powers of ten) in every field of their
+    # resource usage. Each sum lands in its own place; the peak RSS is the largest of the
+    # run and its orphans, not a sum (the launcher's rule for reaped orphans).
+    from types import SimpleNamespace
+
+    from benchharness.execute.launcher import _with_orphans
+
+    fields = ("ru_utime", "ru_stime", "ru_maxrss", "ru_minflt", "ru_majflt", "ru_nvcsw",
+              "ru_nivcsw", "ru_inblock", "ru_oublock")
+    run = tuple(1 + i for i in range(9))
+    orphans = [SimpleNamespace(**{f: 10 ** (k + 1) * (i + 1) for i, f in enumerate(fields)})
+               for k in range(2)]
+    got = _with_orphans(run, orphans)
+    want = tuple(run[i] + 10 * (i + 1) + 100 * (i + 1) for i in range(9))
+    assert got[:2] == want[:2] and got[3:] == want[3:]
+    assert got[2] == max(3, 30, 300)
