@@ -190,6 +190,23 @@ def test_own_horizon_null_paths_small_fixed_seed():
     assert rate["pilot"] <= 0.045
 
 
+def test_a_path_that_passed_is_not_counted_as_a_false_fail_later():
+    # Planted: two paths and a bound of 2 at every look. Path 0 passes at the first look
+    # (statistic -3) and would cross the upper bound at the next (+3); path 1 only crosses
+    # the upper bound at the second look. A sequential test stops at its first crossing,
+    # so one path in two is a false fail, under every rule.
+    from benchharness.gate.calibrate import boundary_false_fail
+
+    st = GateSettings(max_runs=40)
+    first, top, thr = st.min_runs, st.max_runs, st.threshold_log
+    mu, se = np.full((top + 1, 2), thr), np.ones((top + 1, 2))
+    mu[first, 0], mu[first + 1, 0] = thr - 3, thr + 3
+    mu[first + 1, 1] = thr + 3
+    table = np.full((top + 1, top + 1), 2.0)
+    for rule in ("known", "no-pilot", "pilot"):
+        assert boundary_false_fail(mu, se, 0.05, 0.6, rule, st, table) == 0.5
+
+
 @pytest.mark.slow
 def test_level_share_is_the_largest_within_the_target_over_noise_levels():
     """The share of the level the bounds spend (`GateSettings.level_calibration`) is the
