@@ -111,3 +111,12 @@ def test_a_run_with_a_time_limit_is_recorded_in_flight_while_it_runs(tmp_path):
     record, pid = m.stdout_tail.decode().split("\n")[:2]
     rec = json.loads(record)
     assert (rec["run"], rec["pid"], rec["pgid"]) == (7, int(pid), int(pid))
+
+
+def test_an_argument_with_a_nul_byte_is_refused_naming_the_program():
+    # no program can receive a NUL byte inside an argument: the run fails at once and the
+    # message names the program (argv[0]), not the argument
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        m = ex.execute(RunSpec(argv=("echo", "before\x00after"), env=ENV))
+    assert m.status == "failed"
+    assert m.message.startswith("cannot start 'echo': "), m.message
