@@ -56,6 +56,9 @@ def test_single_look_is_the_fixed_test():
     # beyond the stored paths (160 blocks) the paths are drawn look by look: one look at
     # 400 blocks is the Student t quantile too (Monte Carlo error about 0.009)
     assert t_boundaries((400,), 0.05)[0] == pytest.approx(t.isf(0.05, 399), abs=0.03)
+    # so is a look at 8 blocks (t with 7 degrees of freedom, far from normal) when the
+    # schedule reaches past 160 blocks and the paths are drawn look by look
+    assert t_boundaries((8, 200), 0.05, horizon=8)[0] == pytest.approx(t.isf(0.05, 7), abs=0.03)
     # the gate's own tracker past the stored paths adds block after block: one final look
     # at 200 blocks is the t quantile as well (20,000 paths: Monte Carlo error about 0.015)
     from benchharness.gate.sequential import SpendingTracker
