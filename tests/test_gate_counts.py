@@ -230,3 +230,14 @@ def test_markdown_summary_states_tolerance_and_confidence_in_percent():
     s = out.settings
     assert (s.tolerance, s.confidence) == (0.05, 0.95)
     assert "tolerance 5%, 95% confidence)." in markdown_summary(out)
+
+
+@pytest.mark.parametrize("value", ["150%", "100%", "0.4"])
+def test_a_gate_confidence_outside_one_half_to_one_is_refused(value):
+    # a confidence of 100% or more can never be reached, one of 50% or less decides nothing
+    from benchharness.errors import ExperimentError
+    from benchharness.gate.session import parse_gate_section
+
+    with pytest.raises(ExperimentError, match="'gate: confidence' must be between 0.5 and 1"):
+        parse_gate_section(_gate_exp(f", confidence: {value}"))
+    assert parse_gate_section(_gate_exp(", confidence: 99%")).settings.confidence == 0.99
