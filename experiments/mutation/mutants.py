@@ -277,7 +277,12 @@ def cmd_exec(area: str, A: dict, rerun: bool) -> None:
             log.write(subprocess.run([PY, __file__, "report", area], capture_output=True,
                                      text=True).stdout)
         c = sqlite3.connect(db)
-        c.execute("delete from work_results where upper(test_outcome) = 'SURVIVED'")
+        eq = _equivalent(area)     # judged equivalent: no test can kill them, not run again
+        again = [(j,) for (j, *key) in c.execute(
+            "select r.job_id, s.module_path, s.start_pos_row, s.start_pos_col,"
+            " s.operator_name, s.occurrence from work_results r join mutation_specs s"
+            " using (job_id) where upper(r.test_outcome) = 'SURVIVED'") if tuple(key) not in eq]
+        c.executemany("delete from work_results where job_id = ?", again)
         c.commit()
         c.close()
     batch = int(os.environ.get("MUTATION_BATCH") or 0)
