@@ -14,6 +14,7 @@ clone pinned at the commit whose mutants are drawn; ``$MUTATION_TESTS`` the chec
     python experiments/mutation/mutants.py exec AREA     # run the sample (resumable)
     python experiments/mutation/mutants.py rerun AREA    # survivors again, current tests
     python experiments/mutation/mutants.py report AREA [-v]
+    python experiments/mutation/mutants.py summary AREA... [--n=N]  # equal samples
 
 Areas, their modules, sample sizes and test files are in ``areas.json`` beside this
 script. ``init`` leaves out the mutants inside annotations (never evaluated under
@@ -369,7 +370,52 @@ def cmd_report(area: str, verbose: bool) -> None:
                                 if x[:1] in "+-" and x[:3] not in ("---", "+++")))
 
 
+def cmd_summary(areas: list[str], n: int | None) -> None:
+    """One table row per area over ``n`` of the mutants it finished in its first pass: those
+    with the smallest job ids. cosmic-ray runs pending mutants in random order and job ids
+    are random, so these are a random subsample of the area's sample, whatever their
+    outcome (``n``: the fewest any area finished, unless given). Columns: n, killed in the
+    first pass, killed now, survived (equivalent), score, raw share with its 95% Wilson
+    interval."""
+    rows = {}
+    for area in areas:
+        db = WORK / f"{area}.sqlite"
+        first = WORK / f"{area}.pass1.sqlite"
+        with sqlite3.connect(first if first.exists() else db) as c:
+            # job ids are random (uuid4): their order has nothing to do with the outcome
+            order = c.execute("select job_id, test_outcome from work_results"
+                              " order by job_id").fetchall()
+        with sqlite3.connect(db) as c:
+            now = dict(c.execute("select job_id, test_outcome from work_results"))
+            key = {j: tuple(k) for j, *k in c.execute(
+                "select job_id, module_path, start_pos_row, start_pos_col, operator_name,"
+                " occurrence from mutation_specs")}
+        rows[area] = (order, now, key)
+    if n is None:
+        n = min(len(o) for o, _, _ in rows.values())
+    print(f"{n} mutants of each area (the smallest job ids among those its first pass ran)")
+    print("| area | n | killed, first pass | killed | survived (equivalent) | score "
+          "| raw (95% interval) |")
+    print("| --- | ---: | ---: | ---: | ---: | ---: | ---: |")
+    for area, (order, now, key) in rows.items():
+        eq = _equivalent(area)
+        take = order[:n]
+        k1 = sum((o or "").lower() == "killed" for _, o in take)
+        k = sum((now.get(j) or "").lower() == "killed" for j, _ in take)
+        surv = [j for j, _ in take if (now.get(j) or "").lower() == "survived"]
+        n_eq = sum(key[j] in eq for j in surv)
+        lo, hi = wilson(k, len(take))
+        print(f"| {area} | {len(take)} | {k1} | {k} | {len(surv)} ({n_eq}) | "
+              f"{k / max(1, len(take) - n_eq):.0%} | {k / len(take):.0%} "
+              f"({lo:.0%}–{hi:.0%}) |")
+
+
 def main(argv):
+    if argv and argv[0] == "summary":
+        WORK.mkdir(parents=True, exist_ok=True)
+        n = next((int(a[4:]) for a in argv if a.startswith("--n=")), None)
+        cmd_summary([a for a in argv[1:] if not a.startswith("--")], n)
+        return
     cmd, area = argv[0], argv[1]
     A = AREAS[area]
     WORK.mkdir(parents=True, exist_ok=True)
