@@ -213,3 +213,27 @@ def test_repeated_runs_are_counted_as_identical_or_with_other_values(tmp_path):
     assert [(x["run"], x["wall_s"]) for x in recs] == [(0, 1.0), (1, 1.0), (2, 1.0)]
     assert any("3 lines repeat a run already recorded (1 identical, 2 with other values; "
                "run 1)" in n for n in notes), notes
+
+
+def test_an_old_in_flight_record_names_a_group_whose_first_process_is_gone(tmp_path):
+    # Planted: a process group whose first process exited, leaving a member running (a
+    # background sleep), and an in-flight record without start times (an older harness).
+    # The group cannot be told apart from an unrelated one, so it is not signalled, but
+    # the note says it may have been left running.
+    import os
+    import signal
+    import subprocess
+
+    leader = subprocess.Popen(["sh", "-c", "sleep 30 & echo $!"], stdout=subprocess.PIPE,
+                              start_new_session=True)
+    member = int(leader.stdout.readline())
+    leader.wait()
+    pgid = leader.pid
+    try:
+        note = J.stop_run({"pgid": pgid, "run": 3}, "the earlier harness")
+        assert note is not None and note.startswith(
+            f"process group {pgid} (run 3) may have been left running by the earlier harness")
+        os.kill(member, 0)                      # not signalled: still there
+    finally:
+        os.killpg(pgid, signal.SIGKILL)
+        leader.stdout.close()
