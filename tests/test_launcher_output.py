@@ -64,13 +64,13 @@ def test_output_still_in_the_pipe_at_exit_keeps_its_last_capture_bytes():
 
 def test_a_run_stopped_at_its_time_limit_keeps_what_it_said_while_stopping():
     # Planted truth: the run answers SIGTERM by tidying up for 0.2 s, writing a line to
-    # stderr, then exiting. The launcher stops it at its time limit (1 s), gives it
+    # stderr, then exiting. The launcher stops it at its time limit (0.5 s), gives it
     # kill_grace_s (2 s) before SIGKILL, and then reads the pipes for linger_s, so the
     # line is in the run's stderr tail.
     script = ('trap "sleep 0.2; echo stopping >&2; exit 3" TERM; echo started; '
               'sleep 30 & wait')
     with LocalExecutor(kill_grace_s=2.0, linger_s=1.0) as ex:
-        m = ex.execute(RunSpec(argv=("sh", "-c", script), env=ENV, timeout_s=1.0))
+        m = ex.execute(RunSpec(argv=("sh", "-c", script), env=ENV, timeout_s=0.5))
     assert m.status == "timeout", m.message
     assert m.stdout_tail.split() == [b"started"]
     assert b"stopping" in m.stderr_tail.split(), m.stderr_tail  # (sh may add "Terminated")

@@ -57,13 +57,13 @@ def test_a_program_that_cannot_be_started_is_named(tmp_path):
 
 
 def test_the_launcher_sleeps_while_it_lingers_for_output():
-    # The run exits at once and leaves a child that holds its stdout for 1 s: the launcher
+    # The run exits at once and leaves a child that holds its stdout for 0.3 s: the launcher
     # reads the pipes until their end (linger_s 3 s) and sleeps meanwhile, a handful of
     # wake-ups, not one per millisecond.
     with LocalExecutor(kill_grace_s=0.3, linger_s=3.0) as ex:
         ex.execute(RunSpec(argv=("true",), env=ENV))          # started and warm
         before = _wakeups(ex.launcher_pid)
-        m = ex.execute(RunSpec(argv=("sh", "-c", "(sleep 1; echo late) & exit 0"), env=ENV))
+        m = ex.execute(RunSpec(argv=("sh", "-c", "(sleep 0.3; echo late) & exit 0"), env=ENV))
         after = _wakeups(ex.launcher_pid)
     assert m.status == "ok", m.message
     assert m.stdout_tail.split() == [b"late"]
