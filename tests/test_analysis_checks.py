@@ -359,3 +359,26 @@ def test_at_most_two_thousand_cells_are_listed_best_first():
     assert an.best["cells_total"] == 2001
     assert len(an.best["cells"]) == 2000
     assert an.best["cells"][0]["levels"] == {"a": "a0", "b": "b0"}
+
+
+def test_with_no_error_estimate_the_best_cell_names_the_cells_exactly_equal_to_it():
+    # Planted: a 3 x 2 layout, one run per cell, full model (no residual degree of
+    # freedom, not a two-level design: nothing can be tested). Three cells took exactly
+    # 1.0 s: the best-cell finding says no test of ties was possible and names the other
+    # two as exactly equal.
+    d = pd.DataFrame({"a": ["x", "x", "y", "y", "z", "z"], "b": ["p", "q"] * 3,
+                      "wall_s": [1.0, 1.0, 2.0, 3.0, 1.0, 4.0]})
+    an = analyze(d, factors=["a", "b"], model="full", transform="none", art=False)
+    best = next(f for f in an.findings if f["kind"] == "best")["statement"]
+    assert "no test of ties was possible (no error estimate); exactly equal to it: " in best
+    ones = {"a=x, b=p", "a=x, b=q", "a=z, b=p"}
+    first = best.split("Best measured: ")[1].split(" (")[0]
+    equal = best.split("exactly equal to it: ")[1].split("; runner-up")[0].split("; ")
+    assert first in ones and set(equal) == ones - {first}
+
+
+def test_the_same_data_give_an_equal_analysis():
+    # the analysis is plain data and deterministic: two analyses of one table compare
+    # equal (the arrays kept for figures are left out of the comparison)
+    d = _levels_frame(3, 4, seed=2)
+    assert analyze(d, factors=["f"], art=False) == analyze(d, factors=["f"], art=False)
