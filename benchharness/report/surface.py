@@ -137,7 +137,9 @@ def _panel(fig, ax, sf: dict, settings, i: int, j: int, fixed) -> None:
     zhat, _se = q.predict(pts)
     scale = sf.get("scale", "log")
     yhat = inverse(zhat, Choice(scale, 0.0 if scale == "log" else 1.0, ""))
-    mask = np.array([not inside(p, region) for p in pts])
+    # drawn a little past the edge, then clipped to it (a smooth edge, not grid steps)
+    wider = {"reach": region["reach"] * 1.04, "radius": region["radius"] * 1.04}
+    mask = np.array([not inside(p, wider) for p in pts])
     yhat = np.where(mask, np.nan, yhat).reshape(n, n)
     si, sj = settings[i], settings[j]
     ax_i = np.vectorize(si.exact)(gi)
@@ -145,10 +147,13 @@ def _panel(fig, ax, sf: dict, settings, i: int, j: int, fixed) -> None:
     better_low = sf.get("better", "lower") == "lower"
     cmap = "viridis" if better_low else "viridis_r"
     cs = ax.contourf(ax_i, ax_j, yhat, levels=14, cmap=cmap)
-    ax.contour(ax_i, ax_j, yhat, levels=cs.levels, colors="white", linewidths=0.4, alpha=0.6)
+    lines = ax.contour(ax_i, ax_j, yhat, levels=cs.levels, colors="white", linewidths=0.4,
+                       alpha=0.6)
     cb = fig.colorbar(cs, ax=ax, shrink=0.9)
     cb.set_label(sf["response"])
-    _edge(ax, region, si, sj, fixed, i, j)
+    edge = _edge(ax, region, si, sj, fixed, i, j)
+    cs.set_clip_path(edge)
+    lines.set_clip_path(edge)
     _tested(ax, sf, settings, i, j, INK)
     st = sf.get("stationary_point")
     if st and sf.get("model_p", 1.0) < sf.get("alpha", 0.05):   # a flat surface: noise
@@ -174,17 +179,24 @@ def _panel(fig, ax, sf: dict, settings, i: int, j: int, fixed) -> None:
 
 
 def _log_ticks(ax, si, sj, ax_i, ax_j) -> None:
+    """Readable ticks: plain numbers on log axes, at most five or so on linear ones."""
+    from matplotlib.ticker import MaxNLocator
+
     from benchharness.report.drawing import log_ticks
 
-    if si.log:
-        log_ticks(ax.xaxis, float(ax_i.min()), float(ax_i.max()))
-    if sj.log:
-        log_ticks(ax.yaxis, float(ax_j.min()), float(ax_j.max()))
+    for s, axis, vals in ((si, ax.xaxis, ax_i), (sj, ax.yaxis, ax_j)):
+        if s.log:
+            log_ticks(axis, float(vals.min()), float(vals.max()))
+        else:
+            axis.set_major_locator(MaxNLocator(nbins=5, steps=[1, 2, 2.5, 5, 10]))
 
 
-def _edge(ax, region, si, sj, fixed, i, j) -> None:
-    """The explored region's edge in this panel's plane."""
+def _edge(ax, region, si, sj, fixed, i, j):
+    """The explored region's edge in this panel's plane, drawn; returns it as a patch
+    (invisible) to clip the contours with."""
     import numpy as np
+    from matplotlib.patches import PathPatch
+    from matplotlib.path import Path
 
     from benchharness.report.drawing import MUTED
 
@@ -193,7 +205,11 @@ def _edge(ax, region, si, sj, fixed, i, j) -> None:
     t = np.linspace(0, 2 * math.pi, 361)
     ci = np.clip(r * np.cos(t), -region["reach"], region["reach"])
     cj = np.clip(r * np.sin(t), -region["reach"], region["reach"])
-    ax.plot([si.exact(v) for v in ci], [sj.exact(v) for v in cj], color=MUTED, lw=1)
+    xy = np.column_stack([[si.exact(v) for v in ci], [sj.exact(v) for v in cj]])
+    ax.plot(xy[:, 0], xy[:, 1], color=MUTED, lw=1)
+    patch = PathPatch(Path(xy), transform=ax.transData, facecolor="none", edgecolor="none")
+    ax.add_patch(patch)
+    return patch
 
 
 def _tested(ax, sf: dict, settings, i: int, j: int, colour) -> None:
