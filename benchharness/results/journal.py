@@ -1035,11 +1035,16 @@ def _planned_lines(factors: Sequence[str], runs) -> str:
         return text
 
     out = []
+    get_part = parts.get
     for r in runs:
         lv = r.levels
-        part = parts.get(id(lv))
+        part = get_part(id(lv))
         if part is None:
-            part = parts[id(lv)] = "".join("," + field(lv[f]) for f in factors)
+            try:   # labels already formatted: plain look-ups (a plan may hold 100,000 cells)
+                part = ",".join(["", *[labels[lv[f]] for f in factors]])
+            except KeyError:
+                part = "".join("," + field(lv[f]) for f in factors)
+            parts[id(lv)] = part
         out.append(f"{r.run},{r.position},{r.block},{r.replicate},"
                    f"{'true' if r.warmup else 'false'}{part}\n")
     return "".join(out)
