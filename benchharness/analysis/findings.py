@@ -13,7 +13,7 @@ Owns two steps:
   ordinary t test, so a tied pair never contradicts a main effect.
 * ``derive`` — the ONE function that turns the analysis (plain data, as in
   ``analysis.json``) into ``findings``: a list of dicts with ``kind`` (main,
-  interaction, simple effect, best, caution), ``terms``, ``factors``,
+  interaction, simple effect, trend, scaling, best, caution), ``terms``, ``factors``,
   ``significant``, ``ratio``/``lower``/``upper``, ``p`` and a one-line
   ``statement``. Headlines and reports only render these.
 
@@ -37,7 +37,8 @@ import re
 
 from benchharness import numbers as _numbers
 
-KINDS = ("surface", "interaction", "simple effect", "main", "best", "caution")
+KINDS = ("surface", "interaction", "simple effect", "main", "trend", "scaling", "best",
+         "caution")
 
 #: most cells named in the tied set's statement (the finding lists them all)
 TIED_NAMED = 6
@@ -280,11 +281,19 @@ def derive(d: dict) -> list[dict]:
         from benchharness.analysis.incomplete import findings as nested_findings
 
         out += nested_findings(d)
+    out += numeric_findings(d)
     best = d.get("best")
     if best and best.get("cells"):
         out.append(_best_with_unrun(best, conf))
     out += _cautions(d)
     return out
+
+
+def numeric_findings(d: dict) -> list[dict]:
+    """Trends over numeric factors and parallel scaling (`trend_words`)."""
+    from benchharness.analysis.trend_words import findings
+
+    return findings(d)
 
 
 def _significant_row(r, alpha) -> bool:

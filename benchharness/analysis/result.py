@@ -56,6 +56,8 @@ class Analysis:
     incomplete: dict | None = None
     #: a response-surface design: the second-order fit and its findings (analysis/surface.py)
     surface: dict | None = None
+    #: numeric factors: log-log trend, lack of fit, contrasts, scaling (analysis/numeric.py)
+    trends: list | None = None
 
     @property
     def anova(self):
@@ -91,6 +93,7 @@ class Analysis:
             "better": self.better,
             "best": self.best,
             "findings": list(self.findings),
+            **({"trends": self.trends} if self.trends else {}),
         })
 
     def profile_curve(self, points: int = 81):

@@ -130,6 +130,7 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
 
         notes += unmatched(ifit, lay, best["factors"], incomplete)
     surface = surface_fit(prep, lay, fitted, scale, alpha, better, notes)
+    trends = numeric_trends(prep, alpha, anova_rows, roles, better)
     resid = fitted.z - fitted.fit.fitted[setup.cells.row_cell]
     an = Analysis(
         response=prep.response, factors=tuple(lay.fnames),
@@ -143,7 +144,7 @@ def run_analysis(data, response="wall_s", factors=None, block=None, transform="a
         fraction=fraction, residuals=resid, fitted=fitted.fit.fitted[setup.cells.row_cell],
         studentized=studentized, position=prep.position, run=prep.run, fit=fitted.fit,
         roles=roles, better=better, best=best, rows=prep.rows, boxcox=scale.boxcox,
-        incomplete=incomplete, surface=surface)
+        incomplete=incomplete, surface=surface, trends=trends)
     return replace(an, findings=tuple(fd.derive(an.to_dict())))
 
 
@@ -843,6 +844,13 @@ def roles_of(experiment, names, levels) -> dict:
 
     return factor_roles(experiment, factors=list(names),
                         levels={f: list(lv) for f, lv in zip(names, levels)}).to_dict()
+
+
+def numeric_trends(prep, alpha, anova_rows, roles, better):
+    """The trend over every numeric factor, and scaling over parallel ones (numeric.py)."""
+    from benchharness.analysis.numeric import trends
+
+    return trends(prep, alpha, anova_rows, roles, better)
 
 
 def setting_factors(roles: dict | None, fnames) -> list[int]:

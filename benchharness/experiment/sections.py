@@ -34,6 +34,10 @@ def validate_sections(exp) -> None:
         from benchharness.experiment.roles import declared_roles
 
         declared_roles(exp)
+    if "numeric" in exp.sections:
+        from benchharness.experiment.quantities import declared_numeric
+
+        declared_numeric(exp)
     if "choose" in exp.sections:
         from benchharness.choose.config import choose_settings
 

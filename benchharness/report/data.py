@@ -242,6 +242,7 @@ def collect(source, *, analysis=None, response: str | None = None,
     residuals = _residual_frame(obj, runs, factors) if obj is not None else None
     profile = _profile_frame(obj, adict, len(runs))
     extra, extra_notes = _extra_sections(src.folder, src.experiment, src.results)
+    extra = trend_sections(adict) + extra
     from benchharness.measure.floor import note as floor_note
 
     extra_notes += floor_note(runs, src.session, response)  # peak memory at the launcher's size
@@ -498,6 +499,13 @@ def _declared_metric(folder, response) -> str | None:
     declare_unit(response, str(info.get("unit") or ""))
     better = info.get("better")
     return better if better in ("lower", "higher") else None
+
+
+def trend_sections(adict: Mapping) -> list[dict]:
+    """The sections on numeric factors' trends (`benchharness.report.trends`)."""
+    from benchharness.report.trends import sections
+
+    return sections(dict(adict)) if adict.get("trends") else []
 
 
 def _extra_sections(folder, experiment, results=None):

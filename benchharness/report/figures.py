@@ -835,10 +835,17 @@ def _figure_jobs(data: ReportData, seed: int, max_points: int) -> list:
     jobs += [lambda: alone(half_normal_plot(data)), lambda: alone(qq_plot(data)),
              lambda: resid_fitted(data, rng(1)), lambda: alone(resid_position(data, rng(2))),
              lambda: alone(boxcox_plot(data))]
+    jobs += trend_figure_jobs(data)     # numeric factors: log-log trends (report/trends.py)
     # a choice with --also: its trade-off figure
     jobs += [lambda sec=sec: alone(tradeoff_figure(sec, str(sec.get("id") or "extra")))
              for sec in data.extra]
     return jobs
+
+
+def trend_figure_jobs(data: ReportData) -> list:
+    from benchharness.report.trends import figure_jobs
+
+    return figure_jobs(data)
 
 
 def _default_workers(data: ReportData) -> int:

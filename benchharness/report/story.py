@@ -138,8 +138,11 @@ def headline(found: list[dict]) -> str | None:
     from benchharness.analysis.findings import fmt_interval as fi, fmt_ratio as fr
 
     parts, nothing, untested = [], [], []
+    numeric = numeric_clauses(found)
     for f in found:
-        if f["kind"] == "interaction":
+        if f["kind"] == "main" and f["factors"][0] in numeric:
+            parts.append(numeric.pop(f["factors"][0]))   # its trend says more than labels
+        elif f["kind"] == "interaction":
             per = f.get("per_level") or []
             names = " and ".join(f["factors"]) if len(f["factors"]) == 2 else _and(f["factors"])
             alias = ""
@@ -162,6 +165,7 @@ def headline(found: list[dict]) -> str | None:
                 continue    # in a larger significant interaction, stated there
             else:
                 nothing.append(f["terms"][0])
+    parts += numeric.values()     # trends of factors with no main-effect finding
     if not parts and not nothing and not untested:
         return None
     text = "; ".join(parts)
@@ -176,6 +180,19 @@ def headline(found: list[dict]) -> str | None:
     # no capital letter forced on the first word: it is a factor's name (exact text, so
     # ``codec`` must not read ``Codec``) or already "None"
     return text + "."
+
+
+def numeric_clauses(found: list[dict]) -> dict[str, str]:
+    """factor -> the headline's words for its trend and scaling (analysis/trend_words.py),
+    for the quantities that lead the headline (parallel, workload or declared numeric)."""
+    out: dict[str, list[str]] = {}
+    for f in found:
+        if not f.get("headline") or f["kind"] not in ("trend", "scaling"):
+            continue
+        if f["kind"] == "trend" and f.get("parallel"):
+            continue     # a parallel factor is said by its speed-up and serial fraction
+        out.setdefault(f["factors"][0], []).append(f["short"])
+    return {k: "; ".join(v) for k, v in out.items()}
 
 
 def _interaction_clause(inter: dict, found: list[dict], fr, fi, most: int = 4) -> str:

@@ -1,0 +1,172 @@
+"""Findings about numeric factors, in plain words: the trend and the parallel scaling.
+
+Turns analysis.json's ``trends`` (`numeric`) into findings of kind ``trend``
+and ``scaling`` that `findings.derive` appends after the main effects, so that
+every headline and report renders them and none recomputes them:
+
+* ``trend`` — "wall_s grows as n^1.02 [0.98 to 1.06]": the exponent and its
+  interval, whether it differs with another factor (and per level when it
+  does), and whether a power law fits (lack of fit);
+* ``scaling`` — the speed-up and efficiency at the largest level over the
+  smallest, and Amdahl's serial fraction with its interval, or that the law
+  does not describe the timings.
+
+A trend whose interval contains 0 is "no detectable trend", never a growth;
+an exponent is called different across levels only when its F test says so.
+"""
+
+from __future__ import annotations
+
+import math
+
+from benchharness import numbers as _numbers
+
+
+def fmt_exponent(b) -> str:
+    """An exponent: two decimals (three below 0.1 in size)."""
+    if b is None or not math.isfinite(b):
+        return "–"
+    return f"{b:.3f}" if abs(b) < 0.1 else f"{b:.2f}"
+
+
+def power_text(name: str, slope: dict) -> str:
+    """``n^1.02 [0.98 to 1.06]``."""
+    lo, hi = slope.get("lower"), slope.get("upper")
+    ci = f" [{fmt_exponent(lo)} to {fmt_exponent(hi)}]" if lo is not None else ""
+    return f"{name}^{fmt_exponent(slope['estimate'])}{ci}"
+
+
+def _p_text(p) -> str:
+    text = _numbers.fmt_p(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
+
+
+def _excludes_zero(s: dict) -> bool:
+    lo, hi = s.get("lower"), s.get("upper")
+    return lo is not None and hi is not None and (lo > 0 or hi < 0)
+
+
+def trend_finding(t: dict, response: str, conf: str) -> dict | None:
+    """The ``trend`` finding of one numeric factor (None when it was skipped)."""
+    name = t["factor"]
+    slope = t.get("slope")
+    if slope is None:
+        return None
+    sig = _excludes_zero(slope)
+    if sig:
+        verb = "grows" if slope["estimate"] > 0 else "falls"
+        short = f"{response} {verb} as {power_text(name, slope)}"
+    else:
+        short = f"{response} shows no detectable trend over {name} ({power_text(name, slope)})"
+    text = short + f" ({conf} interval of the log-log slope"
+    over = [b["factor"] for b in t.get("by") or []]
+    text += (", averaged over " + ", ".join(over) + ")") if over else ")"
+    differ = [b for b in t.get("by") or [] if b.get("differ")]
+    for b in differ:
+        per = "; ".join(f"{power_text(name, s)} at {b['factor']}={s['level']}"
+                        for s in b["slopes"])
+        text += (f"; the exponent differs with {b['factor']} ({_p_text(b['test']['p'])}): "
+                 + per)
+    lof = t.get("lack_of_fit")
+    alpha = 1 - float(conf.rstrip("%")) / 100
+    bends = bool(lof and lof["p"] < alpha)
+    if bends:
+        text += (f"; the points do not lie on a straight line on log-log axes (lack of fit "
+                 f"{_p_text(lof['p'])}), so the exponent is an average over the levels "
+                 f"tested, not a law to extrapolate")
+    elif lof:
+        text += f"; a power law fits these levels (lack of fit {_p_text(lof['p'])})"
+    else:
+        text += "; with two levels the shape between them cannot be checked"
+    return {"kind": "trend", "terms": [name], "factors": [name], "significant": sig,
+            "exponent": slope["estimate"], "lower": slope.get("lower"),
+            "upper": slope.get("upper"), "p": slope.get("p"),
+            "differs_with": [b["factor"] for b in differ], "lack_of_fit": bends,
+            "parallel": bool(t.get("scaling")),
+            "headline": bool(t.get("headline")), "short": short, "statement": text}
+
+
+def scaling_finding(t: dict, conf: str) -> dict | None:
+    """The ``scaling`` finding of a parallel factor (None when it has no scaling)."""
+    sc = t.get("scaling")
+    if not sc or not sc.get("speedups"):
+        return None
+    name = t["factor"]
+    top = max(sc["speedups"], key=lambda s: s["workers"])
+    base = f"{name}={sc['smallest']}"
+    fr = _numbers.fmt_ratio
+    ci = _numbers.fmt_ratio_interval(top["lower"], top["upper"])
+    faster = top["lower"] > 1
+    slower = top["upper"] < 1
+    if faster:
+        lead = f"{name}={top['level']} is {fr(top['speedup'])} [{ci}] as fast as {base}"
+    elif slower:
+        lead = (f"{name}={top['level']} is slower than {base} ({fr(top['speedup'])} [{ci}] "
+                "of its speed)")
+    else:
+        lead = (f"{name}={top['level']} is not detectably faster than {base} "
+                f"({fr(top['speedup'])} [{ci}])")
+    eff = (f"parallel efficiency {_pct(top['efficiency'])} [{_pct(top['efficiency_lower'])} "
+           f"to {_pct(top['efficiency_upper'])}] of the ideal {top['ideal']:g}×")
+    text = f"{lead}: {eff}"
+    sf = sc.get("serial_fraction") or {}
+    lof = sc.get("lack_of_fit")
+    alpha = 1 - float(conf.rstrip("%")) / 100
+    fits = not (lof and lof["p"] < alpha)
+    s_text = _fraction_text(sf)
+    if sf.get("estimate") is not None:
+        if fits:
+            text += f"; Amdahl's law fits with a serial fraction of {s_text}"
+            if sf.get("max_speedup"):
+                text += (f", so no number of {name} can make it more than "
+                         f"{fr(sf['max_speedup'])} as fast")
+            if lof is None:
+                text += " (its fit cannot be checked with these levels)"
+        else:
+            text += (f"; Amdahl's law does not describe these timings (lack of fit "
+                     f"{_p_text(lof['p'])}): its serial fraction {s_text} is only a summary")
+    per = ((sc.get("by") or {}).get("serial_fractions")) or []
+    if len(per) > 1 and sf.get("estimate") is not None:
+        by = sc["by"]["factor"]
+        text += "; serial fraction by " + by + ": " + "; ".join(
+            f"{_fraction_text(p)} at {by}={p['level']}" for p in per)
+    short = f"{lead} (efficiency {_pct(top['efficiency'])}"
+    short += f", serial fraction {s_text})" if sf.get("estimate") is not None and fits else ")"
+    return {"kind": "scaling", "terms": [name], "factors": [name], "significant": faster,
+            "speedup": top["speedup"], "lower": top["lower"], "upper": top["upper"],
+            "serial_fraction": sf.get("estimate"), "serial_lower": sf.get("lower"),
+            "serial_upper": sf.get("upper"), "amdahl_fits": fits,
+            "headline": bool(t.get("headline")), "short": short, "statement": text}
+
+
+def _pct(x) -> str:
+    return "–" if x is None else f"{100 * x:.0f}%"
+
+
+def _fraction_text(sf: dict) -> str:
+    est, lo, hi = sf.get("estimate"), sf.get("lower"), sf.get("upper")
+    if est is None:
+        return "–"
+    text = f"{est:.3f}"
+    if lo is not None and hi is not None:
+        text += f" [{lo:.3f} to {hi:.3f}]"
+    return text
+
+
+def findings(d: dict) -> list[dict]:
+    """The trend and scaling findings of an analysis (plain analysis.json content)."""
+    alpha = float(d.get("alpha") or 0.05)
+    conf = f"{round((1 - alpha) * 100):g}%"
+    out = []
+    for t in d.get("trends") or []:
+        if t.get("skipped"):
+            out.append({"kind": "caution", "terms": [], "factors": [t["factor"]],
+                        "significant": None, "ratio": None, "lower": None, "upper": None,
+                        "p": None, "check": "trend",
+                        "statement": f"No trend over {t['factor']}: {t['skipped']}"})
+            continue
+        for f in (trend_finding(t, d.get("response") or "the response", conf),
+                  scaling_finding(t, conf)):
+            if f is not None:
+                out.append(f)
+    return out

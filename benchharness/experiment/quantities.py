@@ -1,0 +1,150 @@
+"""Numeric factors: which factors are quantities, and which set how much runs in parallel.
+
+A factor is a *quantity* when every level label reads as a finite number
+(``n: [1000, 10000, 100000]``, ``threads: [1, 2, 4, 8]``): its levels keep their
+values, and the analysis adds a trend over them beside the ANOVA
+(`benchharness.analysis.trend`). The experiment file may say so explicitly, or
+say the opposite, in one top-level section::
+
+    numeric:
+      n: yes              # a quantity (the default when its levels are numbers)
+      threads: parallel   # a quantity that sets how many workers run at once
+      level: no           # numbers, but analysed as labels only
+
+A list of names (``numeric: [n, threads]``) declares each a quantity. A
+quantity named like a parallelism setting (``threads``, ``workers``, ``jobs``,
+``procs``, ``cores`` ... as a whole name or a word of it) is a parallel
+factor without being declared: the analysis adds its speed-up, parallel
+efficiency and serial fraction (`benchharness.analysis.scaling`).
+
+Errors (an unknown factor, a value other than yes / no / parallel, a factor
+declared numeric whose levels are not all numbers, a parallel factor with a
+level that is not a positive number) are one line at ``FILE:LINE:COL``.
+Standard library only: ``plan`` shows the quantities without importing
+anything heavy.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+
+__all__ = ["KINDS", "PARALLEL_WORDS", "level_values", "parallel_name", "declared_numeric",
+           "numeric_factors"]
+
+#: what a factor may be declared as in ``numeric:``
+KINDS = ("yes", "no", "parallel")
+
+#: words of a factor name that make a quantity a parallelism setting (common practice)
+PARALLEL_WORDS = frozenset({
+    "threads", "thread", "nthreads", "workers", "worker", "nworkers", "jobs", "njobs",
+    "procs", "nprocs", "processes", "cores", "ncores", "parallel", "parallelism",
+    "concurrency", "ranks", "tasks",
+})
+
+_YES = {"yes", "true", "on", "numeric", "quantity"}
+_NO = {"no", "false", "off", "labels", "categorical"}
+
+
+def level_values(labels) -> list[float] | None:
+    """The number every label reads as, or None unless all are distinct finite numbers."""
+    values = []
+    for label in labels:
+        try:
+            v = float(str(label).strip().replace("_", "x"))   # 1_000 is a label, not a number
+        except ValueError:
+            return None
+        if not math.isfinite(v):
+            return None
+        values.append(v)
+    if len(values) < 2 or len(set(values)) != len(values):
+        return None
+    return values
+
+
+def parallel_name(name: str) -> bool:
+    """Whether a factor's name reads as a parallelism setting (``threads``, ``n_workers``)."""
+    words = [w for w in re.split(r"[^a-z0-9]+", str(name).lower()) if w]
+    return any(w in PARALLEL_WORDS for w in words)
+
+
+def declared_numeric(experiment) -> dict[str, str]:
+    """The validated ``numeric:`` section: factor -> ``yes`` | ``no`` | ``parallel``.
+
+    Raises `ExperimentError` at ``FILE:LINE:COL`` for an unknown factor, an
+    unknown kind, or levels that cannot be what is declared.
+    """
+    import yaml
+
+    from benchharness.experiment.yamlnodes import (is_null, mapping_items, node_error,
+                                                   scalar_text, suggest)
+
+    node = (getattr(experiment, "sections", None) or {}).get("numeric")
+    if node is None or is_null(node):
+        return {}
+    path = getattr(experiment, "path", None)
+    factors = {f.name: f for f in experiment.factors}
+    items = []
+    if isinstance(node, yaml.SequenceNode):
+        for item in node.value:
+            items.append((scalar_text(item, "'numeric'"), item, "yes", item))
+    elif isinstance(node, yaml.MappingNode):
+        for key, knode, vnode in mapping_items(node, "'numeric'"):
+            kind = "yes" if is_null(vnode) else scalar_text(vnode, f"'numeric: {key}'").lower()
+            items.append((key, knode, kind, vnode))
+    else:
+        raise node_error(node, "'numeric' lists the factors that are quantities, e.g. "
+                               "numeric: {n: yes, threads: parallel}", path)
+    out: dict[str, str] = {}
+    for name, knode, kind, vnode in items:
+        if name not in factors:
+            hint = suggest(name, factors)
+            hint = hint if hint.startswith("did you") else "factors: " + ", ".join(factors)
+            raise node_error(knode, f"'numeric' names {name!r}, which is not a factor; {hint}",
+                             path)
+        if name in out:
+            raise node_error(knode, f"'numeric' names {name!r} twice; name each factor once",
+                             path)
+        kind = "yes" if kind in _YES else "no" if kind in _NO else kind
+        if kind not in KINDS:
+            raise node_error(vnode, f"'numeric: {name}' is {kind!r}; use yes, no or parallel",
+                             path)
+        labels = list(factors[name].labels)
+        values = level_values(labels)
+        if kind != "no" and values is None:
+            raise node_error(knode, f"factor {name!r} is declared numeric but its levels "
+                             f"({', '.join(labels)}) are not all distinct numbers; give numbers "
+                             "or write no", path)
+        if kind == "parallel" and min(values) <= 0:
+            raise node_error(knode, f"factor {name!r} is declared parallel but has a level "
+                             f"{labels[values.index(min(values))]} that is not a positive count; "
+                             "give counts of 1 or more", path)
+        out[name] = kind
+    return out
+
+
+def numeric_factors(experiment=None, names=(), levels=None) -> dict[str, dict]:
+    """Every quantity among the factors: name -> {values, parallel, source}.
+
+    ``names``/``levels`` default to the experiment's; a bare table (no
+    experiment) has its quantities recognised from the labels and names alone.
+    ``source`` says why: ``declared`` or ``levels are numbers``.
+    """
+    if experiment is not None and not names:
+        names = list(experiment.factor_names)
+    if levels is None:
+        levels = {f.name: list(f.labels) for f in getattr(experiment, "factors", ())}
+    declared = declared_numeric(experiment) if experiment is not None else {}
+    out = {}
+    for name in names:
+        kind = declared.get(name)
+        if kind == "no":
+            continue
+        values = level_values(levels.get(name) or ())
+        if values is None:
+            continue
+        parallel = kind == "parallel" or (parallel_name(name) and min(values) > 0)
+        out[name] = {"values": values, "parallel": parallel,
+                     "source": "declared" if kind else "levels are numbers"}
+    return out
+
