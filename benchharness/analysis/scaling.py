@@ -53,9 +53,16 @@ def fit_amdahl(cd: tr.CellData, p_cells: np.ndarray, others: list[int], alpha: f
     from benchharness.analysis import roots
 
     base = tr.base_columns(cd, others)
+    w = np.sqrt(cd.n)
+    A = base * w[:, None]
+    U, sv, _ = np.linalg.svd(A, full_matrices=False)
+    Q = U[:, sv > sv.max() * 1e-10]          # an orthonormal basis of the intercepts
+    ssw = cd.ss_within
 
-    def rss(s: float) -> float:
-        return tr.wls(base, cd, cd.mean - sign * amdahl_shape(s, p_cells)).rss
+    def rss(s: float) -> float:              # the log T1 profiled out by projection
+        b = w * (cd.mean - sign * amdahl_shape(s, p_cells))
+        r = b - Q @ (Q.T @ b)
+        return float(r @ r) + ssw
 
     best = roots.minimize_scalar(rss, (0.0, 1.0), options={"xatol": 1e-7})
     s_hat, r_min = float(best.x), float(best.fun)
@@ -63,7 +70,7 @@ def fit_amdahl(cd: tr.CellData, p_cells: np.ndarray, others: list[int], alpha: f
         r = rss(edge)
         if r < r_min:
             s_hat, r_min = edge, r
-    df = tr.wls(base, cd).df - 1
+    df = cd.N - Q.shape[1] - 1
     out = {"estimate": s_hat, "lower": None, "upper": None, "df": int(df),
            "rss": r_min, "method": "profile least squares on the log scale"}
     if df <= 0 or not r_min > 0:

@@ -70,7 +70,11 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
     lof = t.get("lack_of_fit")
     alpha = 1 - float(conf.rstrip("%")) / 100
     bends = bool(lof and lof["p"] < alpha)
-    if bends:
+    if bends and t.get("scaling"):
+        text += (f"; the points bend away from a straight line on log-log axes (lack of fit "
+                 f"{_p_text(lof['p'])}), as they do when part of the work is serial: see the "
+                 "speed-up and the serial fraction")
+    elif bends:
         text += (f"; the points do not lie on a straight line on log-log axes (lack of fit "
                  f"{_p_text(lof['p'])}), so the exponent is an average over the levels "
                  f"tested, not a law to extrapolate")

@@ -273,8 +273,9 @@ def verdict(data: ReportData) -> dict[str, Any]:
     """The plain-words answer, rendered from the analysis' findings: headline, one line per
     factor and interaction, the recommendation (best cell or tied set) and how sure."""
     found = findings(data)
-    out: dict[str, Any] = {"factors": [], "interactions": [], "best": None, "sure": [],
-                           "recommendation": None, "cautions": [], "findings": found,
+    out: dict[str, Any] = {"factors": [], "interactions": [], "trends": [], "best": None,
+                           "sure": [], "recommendation": None, "cautions": [],
+                           "findings": found,
                            "surface": [f["statement"] + "." for f in found
                                        if f["kind"] == "surface"]}
     for f in found:
@@ -283,6 +284,8 @@ def verdict(data: ReportData) -> dict[str, Any]:
                                    "p": f.get("p"), "summary": f["statement"] + "."})
         elif f["kind"] == "interaction":
             out["interactions"].append(f["statement"] + ".")
+        elif f["kind"] in ("trend", "scaling"):
+            out["trends"].append(f["statement"] + ".")
         elif f["kind"] == "best":
             out["best"] = f["statement"] + "."
             rec = _recommendation(data, f)

@@ -103,6 +103,8 @@ def _print_verdict(con, v) -> None:
         con.print(Text("  • " + i))
     for f in v["factors"]:
         con.print(Text("  • " + f["summary"]))
+    for t in v.get("trends") or []:
+        con.print(Text("  • " + t))
     if v["recommendation"]:
         con.print(Text("  " + v["recommendation"], style="bold green"))
     if v["best"]:

@@ -136,23 +136,33 @@ def trend_figure(data, trend: dict):
            f"{_conf(data)} interval, on log-log axes"
            + (f", one line per level of {trend['line_by']} (the factor with the largest "
               "effect besides it)" if trend.get("line_by") else "")
-           + ". A straight line is a power law; its slope is the exponent. Dashed: the fitted "
-             "common slope through each line's mean.")
+           + ". A straight line is a power law; its slope is the exponent. Dashed: "
+           + ("Amdahl's law with the fitted serial fraction, through each line's points."
+              if (trend.get("scaling") or {}).get("serial_fraction") else
+              "the fitted common slope through each line's points."))
     return render_figure(fig, section_id(trend), f"Trend over {trend['factor']}", cap,
                          section_id(trend))
 
 
 def _fitted_line(ax, trend: dict, xs, ms) -> None:
-    """The common fitted slope, drawn through the geometric centre of one line's points."""
+    """The fitted law through the geometric centre of one line's points: Amdahl's curve
+    with the common serial fraction for a parallel factor, else the common power law."""
     import numpy as np
 
-    b = (trend.get("slope") or {}).get("estimate")
-    if not _ok(b) or len(xs) < 2:
-        return
     lx, ly = np.log(xs), np.log(ms)
-    grid = np.linspace(lx.min(), lx.max(), 20)
-    ax.plot(np.exp(grid), np.exp(ly.mean() + b * (grid - lx.mean())), color="#8a8a8a",
-            lw=1, ls="--", zorder=1)
+    grid = np.linspace(lx.min(), lx.max(), 40)
+    s = ((trend.get("scaling") or {}).get("serial_fraction") or {}).get("estimate")
+    sign = -1.0 if (trend.get("scaling") or {}).get("better") == "higher" else 1.0
+    if _ok(s):
+        def shape(x):
+            return sign * np.log(s + (1.0 - s) / x)
+        fit = (ly - shape(np.exp(lx))).mean() + shape(np.exp(grid))
+    else:
+        b = (trend.get("slope") or {}).get("estimate")
+        if not _ok(b) or len(xs) < 2:
+            return
+        fit = ly.mean() + b * (grid - lx.mean())
+    ax.plot(np.exp(grid), np.exp(fit), color="#8a8a8a", lw=1, ls="--", zorder=1)
 
 
 def _conf(data) -> str:
