@@ -51,6 +51,9 @@ def main(args) -> int:
 
         d = plan.to_json_dict()
         d["roles"] = factor_roles(exp).to_dict()
+        from benchharness.experiment.quantities import json_dict
+
+        d["numeric"] = json_dict(exp)
         d.update(timing)
         emit_json(args, json.dumps(d, indent=1))
         if wants_json_only(args):
@@ -139,6 +142,9 @@ def format_plan(exp, plan, show: int = 12) -> str:
         lines.append(f"  {f.name:<{width}}  {len(f.levels)} levels: "
                      + ", ".join(f.labels) + f"  ({roles.role_of(f.name)})")
     lines.append("roles       " + _roles_line(roles))
+    from benchharness.experiment.quantities import plan_lines
+
+    lines += plan_lines(exp)     # numeric factors: trends and scaling
     seed_note = "" if exp.seed is not None else " (drawn now; set seed: in the file to fix it)"
     lines.append(f"cells       {plan.cells}")
     lines.append(f"timed runs  {plan.timed_runs} ({exp.replicates} per cell)")

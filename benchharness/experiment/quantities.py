@@ -148,3 +148,29 @@ def numeric_factors(experiment=None, names=(), levels=None) -> dict[str, dict]:
                      "source": "declared" if kind else "levels are numbers"}
     return out
 
+
+
+def plan_lines(experiment) -> list[str]:
+    """What `plan` says about the quantities: which factors get a trend, which scaling."""
+    found = numeric_factors(experiment)
+    declared = declared_numeric(experiment)
+    labels = [n for n, k in declared.items() if k == "no"]
+    if not found and not labels:
+        return []
+    parts = [f"{n} (parallel: speed-up, efficiency, serial fraction)" if q["parallel"]
+             else f"{n} (trend over log {n})" if min(q["values"]) > 0
+             else f"{n} (polynomial contrasts; no log-log trend, a level is not positive)"
+             for n, q in found.items()]
+    line = "numeric     " + (", ".join(parts) if parts else "none")
+    guessed = [n for n, q in found.items() if q["source"] != "declared"]
+    if guessed:
+        line += (f"; recognised from the levels: {', '.join(guessed)} (numeric: "
+                 f"{{{guessed[0]}: no}} analyses a factor as labels only)")
+    if labels:
+        line += f"; analysed as labels only: {', '.join(labels)}"
+    return [line]
+
+
+def json_dict(experiment) -> dict:
+    """`plan --json`'s ``numeric``: factor -> {values, parallel, source}."""
+    return numeric_factors(experiment)

@@ -1,0 +1,123 @@
+"""Numeric factors from the user's side: the ``numeric:`` section, `plan`, `analyze`, `report`."""
+
+from __future__ import annotations
+
+import json
+import textwrap
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from benchharness.errors import ExperimentError
+from benchharness.experiment.file import Experiment
+from benchharness.experiment.quantities import numeric_factors
+
+BASE = """\
+experiment: scaling
+command: [./job, "{pool}", "{n}", "{level}"]
+factors:
+  pool: [1, 2, 4]
+  n: [1000, 10000]
+  level: [1, 6, 9]
+"""
+
+
+def _exp(extra=""):
+    from benchharness.experiment.sections import validate_sections
+
+    e = Experiment.from_text(textwrap.dedent(BASE + extra), path="scaling.yaml")
+    validate_sections(e)
+    return e
+
+
+def test_quantities_are_recognised_declared_and_turned_off():
+    q = numeric_factors(_exp())
+    assert set(q) == {"pool", "n", "level"} and not q["pool"]["parallel"]
+    assert q["n"]["values"] == [1000.0, 10000.0]
+    q = numeric_factors(_exp("numeric:\n  pool: parallel\n  level: no\n"))
+    assert set(q) == {"pool", "n"} and q["pool"]["parallel"] and q["pool"]["source"] == "declared"
+    assert set(numeric_factors(_exp("numeric: [n]\n"))) == {"pool", "n", "level"}
+
+
+@pytest.mark.parametrize("extra, line, words", [
+    ("numeric:\n  pol: yes\n", 8, "'numeric' names 'pol', which is not a factor; did you "
+                                  "mean 'pool'?"),
+    ("numeric:\n  size: yes\n", 8, "'numeric' names 'size', which is not a factor; factors: "
+                                   "pool, n, level"),
+    ("numeric:\n  pool: sometimes\n", 8, "'numeric: pool' is 'sometimes'; use yes, no or "
+                                         "parallel"),
+    ("numeric: 3\n", 7, "'numeric' lists the factors that are quantities"),
+])
+def test_a_bad_numeric_section_is_one_located_line(extra, line, words):
+    with pytest.raises(ExperimentError) as e:
+        _exp(extra)
+    assert str(e.value).startswith(f"scaling.yaml:{line}:") and words in str(e.value)
+
+
+def test_declared_numeric_levels_must_be_numbers():
+    from benchharness.experiment.sections import validate_sections
+
+    text = BASE.replace("level: [1, 6, 9]", "level: [fast, 6, 9]") + "numeric: {level: yes}\n"
+    with pytest.raises(ExperimentError, match="s.yaml:7:11: .*declared numeric but its levels"):
+        validate_sections(Experiment.from_text(text, "s.yaml"))
+    text = BASE + "numeric: {n: parallel}\n"
+    assert numeric_factors(Experiment.from_text(text, "s.yaml"))["n"]["parallel"]
+
+
+def test_plan_says_which_factors_get_a_trend(cli, tmp_path):
+    p = tmp_path / "s.yaml"
+    p.write_text(BASE + "numeric:\n  pool: parallel\n  level: no\n")
+    out = cli("plan", p)
+    assert out.returncode == 0, out.stderr
+    line = [x for x in out.stdout.splitlines() if x.startswith("numeric")][0]
+    assert "pool (parallel: speed-up, efficiency, serial fraction)" in line
+    assert "n (trend over log n)" in line and "analysed as labels only: level" in line
+    p.write_text(BASE + "numeric:\n  pol: parallel\n")
+    bad = cli("plan", p)
+    assert bad.returncode == 2 and bad.stdout == ""
+    assert bad.stderr.strip().count("\n") == 0 and "did you mean 'pool'" in bad.stderr
+
+
+def test_analyze_of_a_csv_says_the_planted_exponent(tmp_path, capsys):
+    from benchharness.cli import main
+
+    rng = np.random.default_rng(21)
+    rows = [{"workers": str(w), "n": str(n),
+             "wall_s": 1e-3 * (n / 1e3) ** 1.5 * (0.2 + 0.8 / w) * np.exp(rng.normal(0, .04))}
+            for w in (1, 2, 4, 8) for n in (1000, 4000, 16000) for _ in range(3)]
+    src = tmp_path / "runs.csv"
+    pd.DataFrame(rows).to_csv(src, index=False)
+    assert main(["analyze", str(src), "--factors", "workers,n", "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    n = next(t for t in d["trends"] if t["factor"] == "n")
+    assert n["slope"]["lower"] < 1.5 < n["slope"]["upper"]        # planted n^1.5
+    w = next(t for t in d["trends"] if t["factor"] == "workers")
+    sf = w["scaling"]["serial_fraction"]
+    assert sf["lower"] < 0.2 < sf["upper"]                         # planted s = 0.2
+    kinds = [f["kind"] for f in d["findings"]]
+    assert "trend" in kinds and "scaling" in kinds
+    assert main(["analyze", str(src), "--factors", "workers,n"]) == 0
+    text = capsys.readouterr().out
+    head = text.splitlines()[0]
+    assert "wall_s grows as n^1.5" in head or "wall_s grows as n^1.4" in head
+    assert "workers=8 is " in head and "as fast as workers=1" in head
+
+
+@pytest.mark.slow
+def test_the_scaling_demo_runs_end_to_end_and_recovers_its_formula(cli, tmp_path):
+    out = tmp_path / "demo"
+    r = cli("run", "experiments/thread-scaling.yaml", "--out", out)
+    assert r.returncode == 0, r.stderr
+    a = cli("analyze", out, "--response", "work_s", "--json")
+    assert a.returncode == 0, a.stderr
+    d = json.loads(a.stdout)
+    rec = next(t for t in d["trends"] if t["factor"] == "records")
+    # the workload's formula: work grows as records^1.25, 10% of it serial
+    assert rec["slope"]["estimate"] == pytest.approx(1.25, abs=0.06)
+    th = next(t for t in d["trends"] if t["factor"] == "threads")
+    assert th["scaling"]["serial_fraction"]["estimate"] == pytest.approx(0.10, abs=0.03)
+    rep = cli("report", out, "--response", "work_s")
+    assert rep.returncode == 0, rep.stderr
+    assert (out / "figures" / "trend-threads.png").exists()
+    assert "## Trend over records" in (out / "report.md").read_text()
