@@ -141,7 +141,8 @@ def headline(found: list[dict]) -> str | None:
     numeric = numeric_clauses(found)
     for f in found:
         if f["kind"] == "main" and f["factors"][0] in numeric:
-            parts.append(numeric.pop(f["factors"][0]))   # its trend says more than labels
+            said = numeric.pop(f["factors"][0])    # its trend says more than its labels
+            parts.append(f"{f['terms'][0]} matters: {said}" if f["significant"] else said)
         elif f["kind"] == "interaction":
             per = f.get("per_level") or []
             names = " and ".join(f["factors"]) if len(f["factors"]) == 2 else _and(f["factors"])
