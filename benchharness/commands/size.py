@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import os
 
 
@@ -12,7 +13,9 @@ def add_parser(sub) -> None:
     p = sub.add_parser(
         "size", help="replicates per cell needed to detect a given ratio",
         description="Replicates per cell so that the ANOVA detects, with the given power, a "
-                    "ratio of --detect between two levels of any factor (noncentral F; see "
+                    "ratio of --detect between two levels of any factor, a change of that "
+                    "ratio between two levels of another (--for interaction), or a log-log "
+                    "slope of --slope over a numeric factor (--for trend) (noncentral F; see "
                     "docs/design.md).",
         epilog=O.examples(
             "benchharness size --detect 3% --noise-cv 2% --levels 3,3,2  # replicates to find "
@@ -20,9 +23,20 @@ def add_parser(sub) -> None:
             "benchharness size --detect 1.05x --pilot results/example-archive-codecs  # noise, "
             "factors and run times from an earlier run",
             "benchharness size --detect 3% --noise-cv 2% --levels experiments/archive-codecs.yaml "
-            "--json  # the answer as one JSON document"))
-    p.add_argument("--detect", required=True, metavar="RATIO", type=O.ratio("--detect"),
-                   help="smallest ratio between two levels that must be found: 3%% or 1.03x")
+            "--json  # the answer as one JSON document",
+            "benchharness size --for interaction --detect 5% --noise-cv 2% --levels 3,2  # a "
+            "ratio that changes by 1.05x between two levels of the other factor",
+            "benchharness size --for trend --slope 0.05 --noise-cv 3% --levels "
+            "experiments/thread-scaling.yaml  # an exponent of 0.05 over each numeric factor, "
+            "and exponents that differ by 0.05"))
+    p.add_argument("--detect", metavar="RATIO", type=O.ratio("--detect"),
+                   help="smallest ratio between two levels that must be found: 3%% or 1.03x "
+                        "(with --for interaction: the change of a ratio between two levels of "
+                        "another factor)")
+    p.add_argument("--slope", metavar="B", type=float,
+                   help="with --for trend: the smallest log-log slope (exponent) to find, and "
+                        "the smallest difference of exponents between levels of another "
+                        "factor, e.g. 0.05")
     noise = p.add_mutually_exclusive_group()
     noise.add_argument("--noise-cv", metavar="PCT", type=O.percent(0.0, 1.0, low_open=True),
                        help="run-to-run coefficient of variation of the response, e.g. 2%%")
@@ -38,9 +52,12 @@ def add_parser(sub) -> None:
             convert=O.complement)
     p.add_argument("--power", type=O.percent(0.0, 1.0, low_open=True), default=0.9,
                    metavar="PCT", help="wanted power (default 90%%)")
-    p.add_argument("--for", dest="target", choices=("anova", "pairwise"), default="anova",
-                   help="size the main-effect F tests (default) or the Holm-adjusted pairwise "
-                        "comparisons between levels (needs more)")
+    p.add_argument("--for", dest="target", choices=("anova", "pairwise", "interaction", "trend"),
+                   default="anova",
+                   help="size the main-effect F tests (default), the Holm-adjusted pairwise "
+                        "comparisons between levels (needs more), every two-factor "
+                        "interaction, or the trend over each numeric factor (needs an "
+                        "experiment file)")
     p.add_argument("--response", default="wall_s", metavar="NAME",
                    help="response column of the pilot (default wall_s)")
     O.add_json(p, "the answer")
@@ -86,7 +103,8 @@ def main(args) -> int:
 
     from benchharness import values as V
 
-    detect = V.change_of(args.detect)
+    _check_target(args)
+    detect = V.change_of(args.detect) if args.detect is not None else None
     pilot_df, pilot_exp = _pilot_folder(args)
     factors, cells, exp = _factors(args, pilot_exp)
     if args.pilot and pilot_df is None:
@@ -95,10 +113,12 @@ def main(args) -> int:
         names = [n for n, _ in factors]
         pilot_df, _ = load_table(args.pilot, factors=names)
     sigma, sigma_note = _noise(args, pilot_df, pilot_exp, factors)
-    ans = sizing.size_design(factors, detect, sigma, alpha=round(1.0 - args.confidence, 12),
-                             power=args.power,
-                             method=args.target, cells=cells)
+    ans = _answer(args, sizing, factors, cells, exp, detect, sigma)
     out = ans.to_json_dict()
+    if args.target == "trend":
+        out.pop("log_difference", None)
+        out["detect"] = None
+        out["slope"] = args.slope
     out["noise"] = sigma_note
     if pilot_df is not None:
         out.update(_expected_time(args, pilot_df, factors, exp, ans))
@@ -174,22 +194,85 @@ def _expected_time(args, pilot_df, factors, exp, ans) -> dict:
     return out
 
 
+def _check_target(args) -> None:
+    """--detect for ratios, --slope for trends: each where it means something."""
+    from benchharness.errors import UsageError
+
+    if args.target == "trend":
+        if args.slope is None:
+            raise UsageError("--for trend needs --slope B, the smallest exponent to find "
+                             "(e.g. --slope 0.05)")
+        if not args.slope > 0:
+            raise UsageError(f"--slope {args.slope:g}: give a positive exponent, e.g. 0.05")
+        if args.detect is not None:
+            raise UsageError("--for trend sizes a slope: give --slope, not --detect")
+    else:
+        if args.detect is None:
+            raise UsageError("say what must be found: --detect 3% (a ratio between two levels)")
+        if args.slope is not None:
+            raise UsageError("--slope is for --for trend; other targets take --detect")
+
+
+def _answer(args, sizing, factors, cells, exp, detect, sigma):
+    """The sizing for the chosen target (sizing.size_design or sizing.size_effects)."""
+    from benchharness.errors import UsageError
+
+    alpha = round(1.0 - args.confidence, 12)
+    if args.target in ("anova", "pairwise"):
+        return sizing.size_design(factors, detect, sigma, alpha=alpha, power=args.power,
+                                  method=args.target, cells=cells)
+    if cells is None:
+        cells = math.prod(a for _, a in factors)
+    elif cells != math.prod(a for _, a in factors):
+        raise UsageError(f"--for {args.target} sizes full factorials; this design runs "
+                         f"{cells} of its cells")
+    if args.target == "interaction":
+        if not detect > 0:
+            raise UsageError("the change to detect must be positive, like 5%")
+        effects = sizing.interaction_effects(factors, cells, sizing.log_difference(detect),
+                                             sigma)
+        notes = ["an interaction here is a ratio between two levels of one factor that "
+                 "changes by the --detect ratio between two levels of another"]
+        return sizing.size_effects(effects, cells, detect, sigma, alpha, args.power,
+                                   "interaction", notes)
+    if exp is None:
+        raise UsageError("--for trend needs the levels' values: --levels FILE (an experiment "
+                         "file) or --pilot FOLDER")
+    from benchharness.experiment.quantities import numeric_factors
+
+    values = {n: q["values"] for n, q in numeric_factors(exp).items() if min(q["values"]) > 0}
+    effects = sizing.trend_effects(factors, values, cells, args.slope, sigma)
+    notes = ["assumes the power law holds (no lack of fit); a slope is an exponent: "
+             "time ∝ x^b"]
+    return sizing.size_effects(effects, cells, args.slope, sigma, alpha, args.power, "trend",
+                               notes)
+
+
 def format_answer(ans, out: dict) -> str:
     from benchharness.design.budget import fmt_s
 
-    what = ("Holm-adjusted pairwise comparisons" if ans.method == "pairwise"
-            else "main-effect F tests")
+    what = {"pairwise": "Holm-adjusted pairwise comparisons",
+            "interaction": "two-factor interaction F tests",
+            "trend": "log-log slope tests"}.get(ans.method, "main-effect F tests")
     from benchharness.numbers import fmt_ratio
 
     def pct(x: float) -> str:
         return f"{round(100 * x, 9):g}%"
 
-    lines = [f"replicates per cell: {ans.replicates}  (to detect a ratio of "
-             f"{fmt_ratio(1 + ans.detect)} (+{pct(ans.detect)}) with {pct(ans.target_power)} "
-             f"power, tests at {pct(1 - ans.alpha)} confidence, {what})",
+    if ans.method == "trend":
+        target = (f"an exponent of {ans.detect:g} over each numeric factor, and exponents "
+                  f"that differ by {ans.detect:g} across another factor's levels")
+    elif ans.method == "interaction":
+        target = (f"a ratio that changes by {fmt_ratio(1 + ans.detect)} (+{pct(ans.detect)}) "
+                  "between two levels of another factor")
+    else:
+        target = f"a ratio of {fmt_ratio(1 + ans.detect)} (+{pct(ans.detect)})"
+    lines = [f"replicates per cell: {ans.replicates}  (to detect {target} with "
+             f"{pct(ans.target_power)} power, tests at {pct(1 - ans.alpha)} confidence, {what})",
              f"noise: {out['noise']}"]
-    width = max(len("factor"), *(len(n) for n in ans.per_factor))
-    lines.append(f"  {'factor':<{width}}  replicates  power at {ans.replicates}")
+    head = "factor" if ans.method in ("anova", "pairwise") else "effect"
+    width = max(len(head), *(len(n) for n in ans.per_factor))
+    lines.append(f"  {head:<{width}}  replicates  power at {ans.replicates}")
     for name, n in ans.per_factor.items():
         mark = "  <- needs the most" if name == ans.binding_factor and len(ans.per_factor) > 1 \
             else ""

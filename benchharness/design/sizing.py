@@ -226,3 +226,126 @@ def pilot_noise(runs, factors: Sequence[str], response: str = "wall_s") -> Pilot
         raise UsageError("the pilot has no cell with two or more successful runs, so its noise "
                          "cannot be estimated; run the pilot with replicates: 2 or more")
     return PilotNoise(sigma_log=math.sqrt(ss / dof), df=dof, runs=len(df), cells=len(uniq))
+
+
+# -- interactions and trends ----------------------------------------------------------
+#
+# Every test sized below is an F test (a two-sided t test is F with one numerator
+# degree of freedom), so one power function serves them all: an effect is its
+# numerator degrees of freedom, its noncentrality per replicate of every cell, and
+# the number of parameters of the model whose residual is the error term.
+
+@dataclass(frozen=True)
+class Effect:
+    """One test to size: power(n) = P(F'(df1, n·cells − params; n·lam1) > F crit)."""
+
+    name: str
+    df1: int
+    lam1: float          # noncentrality with one replicate per cell
+    params: int          # parameters of the model whose residual is the error
+
+    def power(self, n: int, cells: int, alpha: float) -> float:
+        from scipy import stats
+
+        df2 = n * cells - self.params
+        if df2 <= 0 or self.df1 <= 0:
+            return 0.0
+        crit = stats.f.isf(alpha, self.df1, df2)
+        return float(stats.ncf.sf(crit, self.df1, df2, n * self.lam1))
+
+
+def interaction_effects(factors: Sequence[tuple[str, int]], cells: int, D: float,
+                        sigma: float) -> list[Effect]:
+    """Every two-factor interaction, sized for a ratio of ratios ``e^D``.
+
+    The interaction to find: one factor's ratio between two of its levels changes
+    by ``e^D`` between two levels of the other (a difference of differences D on
+    the log scale). The smallest interaction pattern with that contrast puts
+    ±D/4 on the four cells of a 2×2 sub-table, so Σ(αβ)² = D²/4 over the
+    a×b table, each cell mean resting on cells/(a·b) combinations of the other
+    factors: λ = n·(cells/(a·b))·D²/(4σ²), with (a−1)(b−1) degrees of freedom
+    (Montgomery, *Design and Analysis of Experiments*, §5.3, for the
+    noncentral F of a fixed-effects term).
+    """
+    out = []
+    for i, (fa, a) in enumerate(factors):
+        for fb, b in factors[i + 1:]:
+            out.append(Effect(name=f"{fa}:{fb}", df1=(a - 1) * (b - 1),
+                              lam1=cells / (a * b) * D * D / (4.0 * sigma * sigma),
+                              params=cells))
+    return out
+
+
+def trend_effects(factors: Sequence[tuple[str, int]], values: Mapping[str, Sequence[float]],
+                  cells: int, slope: float, sigma: float) -> list[Effect]:
+    """The log-log slope of each numeric factor, and its difference across each other factor.
+
+    With levels at u_j = ln x_j and S = Σ (u_j − ū)², the slope over a numeric
+    factor with k levels, one intercept per combination of the others
+    (m = cells/k of them), has variance σ²/(n·m·S): a slope ``slope`` away from
+    the null gives λ = n·m·S·slope²/σ² on 1 degree of freedom, with m + 1
+    parameters (`benchharness.analysis.trend`). Slopes that differ by ``slope``
+    between two of the L levels of another factor (the rest midway) give
+    Σ(b_l − b̄)² = slope²/2, each slope resting on m/L combinations:
+    λ = n·(m/L)·S·slope²/(2σ²) on L − 1 degrees of freedom, with m + L parameters
+    (the extra-sum-of-squares F test of separate slopes; Fisher 1932).
+    """
+    out = []
+    sizes = dict(factors)
+    for name, xs in values.items():
+        u = [math.log(float(x)) for x in xs]
+        mean = sum(u) / len(u)
+        S = sum((v - mean) ** 2 for v in u)
+        m = cells / len(u)
+        out.append(Effect(name=f"trend over {name}", df1=1,
+                          lam1=m * S * slope * slope / (sigma * sigma),
+                          params=int(round(m)) + 1))
+        for other, L in sizes.items():
+            if other == name:
+                continue
+            out.append(Effect(name=f"{name} exponent by {other}", df1=L - 1,
+                              lam1=(m / L) * S * slope * slope / (2.0 * sigma * sigma),
+                              params=int(round(m)) + L))
+    return out
+
+
+def effect_replicates(effect: Effect, cells: int, alpha: float, power: float) -> int:
+    """Smallest n ≥ 2 at which ``effect`` reaches ``power`` (doubling, then bisection)."""
+    lo, hi = 1, 2
+    while effect.power(hi, cells, alpha) < power:
+        lo, hi = hi, hi * 2
+        if hi > MAX_REPLICATES:
+            raise UsageError(f"more than {MAX_REPLICATES} replicates per cell would be needed "
+                             f"for {effect.name}; the effect to detect is tiny next to the noise")
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if effect.power(mid, cells, alpha) >= power:
+            hi = mid
+        else:
+            lo = mid
+    return hi
+
+
+def size_effects(effects: Sequence[Effect], cells: int, detect: float, sigma_log: float,
+                 alpha: float, power: float, method: str, notes=()) -> SizingAnswer:
+    """Replicates per cell so that every effect in ``effects`` is found with ``power``."""
+    if not effects:
+        raise UsageError({"interaction": "an interaction needs two factors or more",
+                          "trend": "no numeric factor to size a trend for: give an "
+                                   "experiment file whose levels are numbers (--levels FILE)"}
+                         .get(method, "nothing to size"))
+    if not sigma_log > 0:
+        raise UsageError("the noise must be positive (a CV like 2%, or a pilot with "
+                         "varying run times)")
+    if not 0 < alpha < 1 or not 0 < power < 1:
+        raise UsageError("--confidence and --power must lie strictly between 0% and 100%")
+    per = {e.name: effect_replicates(e, cells, alpha, power) for e in effects}
+    n = max(per.values())
+    pf = {e.name: e.power(n, cells, alpha) for e in effects}
+    binding = min(effects, key=lambda e: (pf[e.name], -per[e.name]))
+    others = sorted({m for m in (2, 3, n // 2, n - 1, n, n + 1, 2 * n) if m >= 2})
+    curve = tuple((m, binding.power(m, cells, alpha)) for m in others)
+    return SizingAnswer(replicates=n, power=pf[binding.name], runs=n * cells, cells=cells,
+                        per_factor=per, per_factor_power=pf, binding_factor=binding.name,
+                        curve=curve, detect=detect, sigma_log=sigma_log, alpha=alpha,
+                        target_power=power, method=method, notes=tuple(notes))
