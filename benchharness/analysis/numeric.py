@@ -33,8 +33,8 @@ def trends(prep, alpha: float, anova_rows, roles: dict | None = None,
     names = list(prep.factors)
     levels = {f: list(lv) for f, lv in zip(names, prep.levels)}
     quantities = numeric_factors(prep.experiment, names, levels)
-    if not quantities:
-        return None
+    if not quantities or response_surface(prep.experiment):
+        return None     # a response surface has its own second-order analysis
     y = np.asarray(prep.y, dtype=float)
     if not len(y) or not np.all(y > 0):
         return [{"factor": f, "skipped": "the log-log trend needs a positive response"}
@@ -63,6 +63,18 @@ def trends(prep, alpha: float, anova_rows, roles: dict | None = None,
                                    t["line_by"], better)
         out.append(t)
     return out or None
+
+
+def response_surface(experiment) -> bool:
+    """Whether the experiment file asks for a response-surface design."""
+    node = (getattr(experiment, "sections", None) or {}).get("design")
+    if node is None:
+        return False
+    from benchharness.experiment.yamlnodes import to_plain
+
+    plain = to_plain(node)
+    return isinstance(plain, dict) and str(plain.get("type", "")).replace("_", "-") == \
+        "response-surface"
 
 
 def _label_levels(t: dict, names, levels) -> None:
