@@ -142,3 +142,13 @@ def test_a_throughput_scales_the_other_way():
     (sc,) = [f for f in an.findings if f["kind"] == "scaling"]
     assert sc["speedup"] > 4 and sc["serial_lower"] < 0.1 < sc["serial_upper"]
     assert sc["statement"].startswith("threads=16 is ")
+
+
+def test_without_replicates_only_the_serial_fraction_is_said_and_its_fit_is_not_claimed():
+    rng = np.random.default_rng(15)
+    an = analyze(_frame(rng, s=0.1, sd=0.03, reps=1), factors=["threads", "n"])
+    (sc,) = [f for f in an.findings if f["kind"] == "scaling"]
+    assert sc["amdahl_fits"] is None and sc["speedup"] is None
+    assert "without replicates neither the speed-ups' intervals nor the law's fit" in \
+        sc["statement"]
+    assert sc["serial_lower"] < 0.1 < sc["serial_upper"]

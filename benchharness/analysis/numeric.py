@@ -37,12 +37,13 @@ def trends(prep, alpha: float, anova_rows, roles: dict | None = None,
         return None     # a response surface has its own second-order analysis
     y = np.asarray(prep.y, dtype=float)
     if not len(y) or not np.all(y > 0):
-        return [{"factor": f, "skipped": "the log-log trend needs a positive response"}
-                for f in quantities]
+        return [{"factor": f, "skipped": "the log-log trend needs a positive response",
+                 "source": q["source"]} for f, q in quantities.items()]
     cd = tn.cell_data(prep.codes, prep.block_codes, y)
     if len(cd.n) > MAX_CELLS:
         return [{"factor": f, "skipped": f"more than {MAX_CELLS:,} cells: the trend is fitted "
-                 "only on smaller experiments"} for f in quantities]
+                 "only on smaller experiments", "source": q["source"]}
+                for f, q in quantities.items()]
     sizes = [len(lv) for lv in prep.levels]
     sat = tn.saturated(cd)
     importance = {r["term"]: r.get("partial_eta_sq") for r in anova_rows or []}

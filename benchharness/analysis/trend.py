@@ -106,11 +106,18 @@ def wls(X: np.ndarray, cd: CellData, target=None) -> LinFit:
     w = np.sqrt(cd.n)
     A = X * w[:, None]
     b = m * w
-    coef, *_ = np.linalg.lstsq(A, b, rcond=None)
-    rank = int(np.linalg.matrix_rank(A)) if A.size else 0
-    rss = float(((b - A @ coef) ** 2).sum()) + cd.ss_within
-    return LinFit(coef=coef, cov=np.linalg.pinv(A.T @ A), rss=max(rss, 0.0),
-                  df=cd.N - rank)
+    if not A.size:
+        return LinFit(coef=np.zeros(X.shape[1]), cov=np.zeros((X.shape[1],) * 2),
+                      rss=float(b @ b) + cd.ss_within, df=cd.N)
+    # one SVD gives the minimum-norm solution, the rank and (X'WX)^+ together
+    U, sv, Vt = np.linalg.svd(A, full_matrices=False)
+    keep = sv > sv[0] * max(A.shape) * np.finfo(float).eps
+    Uk, sk, Vk = U[:, keep], sv[keep], Vt[keep].T
+    coef = Vk @ ((Uk.T @ b) / sk)
+    r = b - Uk @ (Uk.T @ b)
+    rss = float(r @ r) + cd.ss_within
+    return LinFit(coef=coef, cov=(Vk / sk**2) @ Vk.T, rss=max(rss, 0.0),
+                  df=cd.N - int(keep.sum()))
 
 
 def one_hot(codes) -> np.ndarray:
@@ -192,16 +199,24 @@ class Saturated:
 
 
 def saturated(cd: CellData) -> Saturated:
+    """The cell-means model (closed form without a block: the means themselves)."""
     groups = group_ids(cd.codes, range(cd.codes.shape[1]))
+    first = np.zeros(int(groups.max()) + 1 if len(groups) else 0, dtype=np.int64)
+    first[groups] = np.arange(len(groups))
+    if cd.block is None:       # one cell per factor cell: no least squares needed
+        coef = np.zeros(len(first))
+        coef[groups] = cd.mean
+        inv_n = np.zeros(len(first))
+        inv_n[groups] = 1.0 / cd.n
+        fit = LinFit(coef=coef, cov=np.diag(inv_n), rss=cd.ss_within, df=cd.N - len(first))
+        return Saturated(fit=fit, groups=groups, cell_codes=cd.codes[first],
+                         block_mean=np.zeros(0))
     X = one_hot(groups)
-    G = X.shape[1]
     bm = np.zeros(0)
     if cd.block is not None:
         B = one_hot(cd.block)[:, 1:]
         X = np.hstack([X, B])
         bm = np.full(B.shape[1], 1.0 / (B.shape[1] + 1))
-    first = np.zeros(G, dtype=np.int64)
-    first[groups] = np.arange(len(groups))
     return Saturated(fit=wls(X, cd), groups=groups, cell_codes=cd.codes[first], block_mean=bm)
 
 

@@ -93,9 +93,11 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
 def scaling_finding(t: dict, conf: str) -> dict | None:
     """The ``scaling`` finding of a parallel factor (None when it has no scaling)."""
     sc = t.get("scaling")
-    if not sc or not sc.get("speedups"):
+    if not sc:
         return None
     name = t["factor"]
+    if not sc.get("speedups"):
+        return _serial_only(sc, name)
     top = max(sc["speedups"], key=lambda s: s["workers"])
     base = f"{name}={sc['smallest']}"
     fr = _numbers.fmt_ratio
@@ -143,6 +145,20 @@ def scaling_finding(t: dict, conf: str) -> dict | None:
             "headline": bool(t.get("headline")), "short": short, "statement": text}
 
 
+def _serial_only(sc: dict, name: str) -> dict | None:
+    """Without replicates (no pure error): the serial fraction alone, its fit unchecked."""
+    sf = sc.get("serial_fraction") or {}
+    if sf.get("estimate") is None or sf.get("lower") is None:
+        return None
+    text = (f"Amdahl's law gives {name} a serial fraction of {_fraction_text(sf)} (without "
+            "replicates neither the speed-ups' intervals nor the law's fit can be checked)")
+    return {"kind": "scaling", "terms": [name], "factors": [name], "significant": None,
+            "speedup": None, "lower": None, "upper": None,
+            "serial_fraction": sf["estimate"], "serial_lower": sf["lower"],
+            "serial_upper": sf["upper"], "amdahl_fits": None, "headline": False,
+            "short": text, "statement": text}
+
+
 def _pct(x) -> str:
     return "–" if x is None else f"{100 * x:.0f}%"
 
@@ -164,6 +180,8 @@ def findings(d: dict) -> list[dict]:
     out = []
     for t in d.get("trends") or []:
         if t.get("skipped"):
+            if t.get("source") != "declared":
+                continue        # numbers as labels that cannot carry a trend: nothing to say
             out.append({"kind": "caution", "terms": [], "factors": [t["factor"]],
                         "significant": None, "ratio": None, "lower": None, "upper": None,
                         "p": None, "check": "trend",
