@@ -93,13 +93,13 @@ def speedups(sat: tr.Saturated, j: int, values, labels, alpha: float,
 
     values = list(values)
     k0 = values.index(min(values))
-    ref = tr.marginal(sat, {j: k0}, alpha)
+    ref = tr.marginal(sat, {j: k0})
     if ref is None or sat.fit.df <= 0:
         return []
     q = float(stats.t.ppf(1 - alpha / 2, sat.fit.df))
     out = []
     for k, v in enumerate(values):
-        m = tr.marginal(sat, {j: k}, alpha)
+        m = tr.marginal(sat, {j: k})
         if m is None:
             return []
         L = sign * (ref[2] - m[2])
@@ -127,7 +127,7 @@ def scaling(cd: tr.CellData, j: int, values, names, levels, sizes, alpha: float,
     overall = fit_amdahl(cd, p_cells, others, alpha, sign)
     out = {"factor": names[j], "smallest": levels[names[j]][int(np.argmin(values))],
            "speedups": (speedups(sat, j, values, levels[names[j]], alpha, sign)
-                        if tr.complete(cd, j, sizes) else []),
+                        if tr.complete(cd, sizes) else []),
            "serial_fraction": overall, "by": None, "better": better}
     if overall["df"] > 0:
         model = tr.LinFit(coef=np.zeros(0), cov=np.zeros((0, 0)), rss=overall["rss"],

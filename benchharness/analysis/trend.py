@@ -220,9 +220,11 @@ def saturated(cd: CellData) -> Saturated:
     return Saturated(fit=wls(X, cd), groups=groups, cell_codes=cd.codes[first], block_mean=bm)
 
 
-def marginal(sat: Saturated, fixed: dict, alpha: float, df=None):
-    """(mean of log y, se) over the factor cells matching ``fixed`` {factor index: code},
-    each weighted equally; None when a combination needed is missing."""
+def marginal(sat: Saturated, fixed: dict):
+    """(mean of log y, se, its weights over the fit's coefficients) over the factor cells
+    matching ``fixed`` {factor index: code}, each weighted equally; None when none ran.
+    Callers check `complete` first: with cells missing, an equal-weight mean is not the
+    marginal mean of the design."""
     codes = sat.cell_codes
     mask = np.ones(len(codes), dtype=bool)
     for j, c in fixed.items():
@@ -238,7 +240,7 @@ def marginal(sat: Saturated, fixed: dict, alpha: float, df=None):
     return est, math.sqrt(var) if var >= 0 else float("nan"), L
 
 
-def complete(cd: CellData, j: int, sizes) -> bool:
+def complete(cd: CellData, sizes) -> bool:
     """Whether every combination of the factors' levels was observed (EMMs defined)."""
     groups = np.unique(group_ids(cd.codes, range(cd.codes.shape[1])))
     return len(groups) == int(np.prod(sizes))
@@ -247,7 +249,8 @@ def complete(cd: CellData, j: int, sizes) -> bool:
 # ---- one numeric factor ---------------------------------------------------------------------
 
 def slope_fits(cd: CellData, j: int, u_levels: np.ndarray, others: list[int]):
-    """(common-slope fit, index of the slope column, columns builder) for factor ``j``."""
+    """(the common-slope fit, its intercept columns, each cell's score) for factor ``j``;
+    the slope is the fit's last coefficient."""
     u = u_levels[cd.codes[:, j]]
     base = base_columns(cd, others)
     common = wls(np.hstack([base, u[:, None]]), cd)
@@ -273,11 +276,10 @@ def trend_of(cd: CellData, j: int, name: str, labels, values, names, sizes, alph
     out["by"] = [slope_by(cd, j, g, u, base, common, names, alpha) for g in others]
     out["lack_of_fit"] = lack_of_fit(cd, u, base, others, sat, k)
     out["contrasts"] = (polynomial_contrasts(sat, j, scores, alpha)
-                        if complete(cd, j, sizes) and sat.fit.df > 0 else [])
+                        if complete(cd, sizes) and sat.fit.df > 0 else [])
     line_by = most_important(others, names, importance)
     out["line_by"] = names[line_by] if line_by is not None else None
-    out["points"] = points(sat, j, line_by, names, sizes, alpha) if complete(
-        cd, j, sizes) else []
+    out["points"] = points(sat, j, line_by, names, sizes, alpha) if complete(cd, sizes) else []
     return out
 
 
@@ -317,7 +319,7 @@ def polynomial_contrasts(sat: Saturated, j: int, scores, alpha: float) -> list[d
     k = len(scores)
     Ls = []
     for level in range(k):
-        m = marginal(sat, {j: level}, alpha)
+        m = marginal(sat, {j: level})
         if m is None:
             return []
         Ls.append(m[2])
@@ -357,7 +359,7 @@ def points(sat: Saturated, j: int, g, names, sizes, alpha: float) -> list[dict]:
     for gl in glevels:
         for level in range(sizes[j]):
             fixed = {j: level} if gl is None else {j: level, g: gl}
-            m = marginal(sat, fixed, alpha)
+            m = marginal(sat, fixed)
             if m is None:
                 continue
             est, se, _ = m
