@@ -67,15 +67,12 @@ def trends(prep, alpha: float, anova_rows, roles: dict | None = None,
 
 
 def response_surface(experiment) -> bool:
-    """Whether the experiment file asks for a response-surface design."""
-    node = (getattr(experiment, "sections", None) or {}).get("design")
-    if node is None:
+    """Whether the experiment file asks for a response-surface design (design/spec.py)."""
+    if experiment is None or "design" not in (getattr(experiment, "sections", None) or {}):
         return False
-    from benchharness.experiment.yamlnodes import to_plain
+    from benchharness.design.spec import design_of
 
-    plain = to_plain(node)
-    return isinstance(plain, dict) and str(plain.get("type", "")).replace("_", "-") == \
-        "response-surface"
+    return design_of(experiment).surface is not None
 
 
 def _label_levels(t: dict, names, levels) -> None:
