@@ -29,7 +29,7 @@ def paused():
     try:
         yield
     finally:
-        _paused.remove(entry)
+        del _paused[next(i for i, e in enumerate(_paused) if e is entry)]  # this one
         if entry[1]:
             gc.unfreeze()
         if entry[0]:
