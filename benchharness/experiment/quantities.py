@@ -1,8 +1,9 @@
 """Numeric factors: which factors are quantities, and which set how much runs in parallel.
 
 A factor is a *quantity* when every level label reads as a finite number
-(``n: [1000, 10000, 100000]``, ``threads: [1, 2, 4, 8]``): its levels keep their
-values, and the analysis adds a trend over them beside the ANOVA
+(``n: [1000, 10000, 100000]``, ``threads: [1, 2, 4, 8]``) and does not read as a
+version (a name like ``python_version``, or a label such as ``3.10`` or ``010``
+that a quantity would not be written as): its levels keep their values, and the analysis adds a trend over them beside the ANOVA
 (`benchharness.analysis.trend`). The experiment file may say so explicitly, or
 say the opposite, in one top-level section::
 
@@ -60,6 +61,26 @@ def level_values(labels) -> list[float] | None:
     if len(values) < 2 or len(set(values)) != len(values):
         return None
     return values
+
+
+#: words of a factor name that make numbers version labels, not quantities (common practice)
+VERSION_WORDS = frozenset({"version", "ver", "release", "python", "py", "gcc", "clang",
+                           "llvm", "jdk", "java", "node", "kernel", "api", "abi", "std"})
+
+
+def version_like(name: str, labels) -> bool:
+    """Numbers that read as versions: a name like ``python_version``, or labels written
+    like ``3.10`` or ``010`` (a trailing or leading zero a quantity would not carry)."""
+    words = [w for w in re.split(r"[^a-z0-9]+", str(name).lower()) if w]
+    if any(w in VERSION_WORDS for w in words):
+        return True
+    for label in labels:
+        text = str(label).strip().lstrip("+-")
+        whole, _, frac = text.partition(".")
+        if (frac and frac.endswith("0") and "e" not in frac.lower()) or \
+                (len(whole) > 1 and whole.startswith("0")):
+            return True
+    return False
 
 
 def parallel_name(name: str) -> bool:
@@ -141,8 +162,8 @@ def numeric_factors(experiment=None, names=(), levels=None) -> dict[str, dict]:
         if kind == "no":
             continue
         values = level_values(levels.get(name) or ())
-        if values is None:
-            continue
+        if values is None or (kind is None and version_like(name, levels.get(name) or ())):
+            continue       # a version such as 3.10 is a label unless declared numeric
         parallel = kind == "parallel" or (parallel_name(name) and min(values) > 0)
         out[name] = {"values": values, "parallel": parallel,
                      "source": "declared" if kind else "levels are numbers"}
