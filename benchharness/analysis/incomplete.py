@@ -298,17 +298,15 @@ def within_ratios(fit, lay, nested: dict, refs, choice, alpha) -> list[dict]:
         pos = {g: j for j, g in enumerate(M)}
         present = {tuple(r) for r in fit.support.cells[:, list(M)].tolist()}
         for pc in sorted({tuple(c[pos[p]] for p in ps) for c in present}):
-            def key(j, pc=pc):
-                return _key(M, pos, ps, pc, f, j)
-
+            keys = {j: _key(M, pos, ps, pc, f, j) for j in range(len(lay.flevels[f]))}
             have = [j for j, lv in enumerate(lay.flevels[f])
-                    if lv != _marker() and key(j) in present]
+                    if lv != _marker() and keys[j] in present]
             if len(have) < 2:
                 continue
             ref = refs.get(f, 0) if refs.get(f, 0) in have else have[0]
             within = {lay.fnames[p]: lay.flevels[p][pc[i]] for i, p in enumerate(ps)}
             for j in have:
-                e = None if j == ref else _within_entry(fit, lay, f, M, key(j), key(ref),
+                e = None if j == ref else _within_entry(fit, lay, f, M, keys[j], keys[ref],
                                                         within, choice, q)
                 if e is not None:
                     out.append(e)
