@@ -99,7 +99,7 @@ def test_planted_minimum_found_with_its_interval_and_proposed():
 
 
 def test_a_minimum_outside_the_region_gives_a_proposal_on_its_edge():
-    beta = [0.5, -0.6, 0.0, 0.15, 0.15, 0.0]      # minimum at coded (2, 0)
+    beta = [0.5, -0.6, -0.3, 0.15, 0.15, 0.0]     # minimum at coded (2, 1)
     x, z = _planted(CCD2, beta, reps=2, sd=0.02, seed=5)
     out = analyse(CCD2, x, z, LOG)
     st, pr = out["stationary_point"], out["proposal"]
@@ -107,8 +107,16 @@ def test_a_minimum_outside_the_region_gives_a_proposal_on_its_edge():
     assert pr["supported"] and "outside" in pr["where"]
     xc = np.array(pr["coded"])
     assert np.linalg.norm(xc) <= CCD2.region()["radius"] + 1e-6      # never outside
-    assert xc[0] > 1.2                                               # towards the optimum
+    assert xc[0] > 1.0 and xc[1] > 0.3                               # towards the optimum
     assert "outside the explored region" in findings(out, CCD2)[0]["statement"]
+    # straight along buffer_kib (minimum at coded (2, 0)) the edge's best whole-number point
+    # rounds to 454 KiB (455 lies beyond the edge), predicted worse than the axial point
+    # already run (coded 1.414): nothing untested is proposed
+    beta = [0.5, -0.6, 0.0, 0.15, 0.15, 0.0]
+    x, z = _planted(CCD2, beta, reps=2, sd=0.02, seed=5)
+    pr = analyse(CCD2, x, z, LOG)["proposal"]
+    assert not pr["supported"] and pr["reason"] == "tested_better"
+    assert pr["tested_predicted_best"]["coded"] == pytest.approx([2 ** 0.5, 0.0])
 
 
 def test_saddle_maximum_lack_of_fit_and_flat_surfaces_say_so():
@@ -217,3 +225,29 @@ def test_a_tilted_plane_is_best_on_the_region_edge_in_the_downhill_direction():
     # higher is better: the opposite edge
     x = best_in_region(q, region, -1.0, [(0.0, 0.0)])
     assert np.allclose(x, -np.sqrt(2) * np.array([0.6, 0.8]), atol=1e-4)
+
+
+def test_no_untested_value_is_proposed_when_the_fit_predicts_a_tested_setting_better():
+    # A planted saddle, ln t = 3 + 0.3 x1^2 - 0.3 x2^2, on a rotatable design whose whole-number
+    # axial points of workers (8 -/+ 5.66 = 2.34, 13.66) are run at 2 and 14: coded -/+1.5,
+    # beyond the explored region's radius 1.414. The best inside the region (after rounding,
+    # workers 3 or 13) is predicted about 1.14x slower than workers 2, which already ran: the
+    # analysis must not propose it as better than the tested levels (common practice: a
+    # proposal is never predicted worse than a setting already measured).
+    d = build(["queue_depth", "workers"], [(25, 75), (4, 12)], whole=[True, True])
+    x = np.array([d.coded_of_labels(c) for c in d.cells()] * 2)
+    assert x[:, 1].min() == pytest.approx(-1.5) and d.region()["radius"] < 1.5
+    from benchharness.analysis.surface import model_matrix
+
+    z = model_matrix(x) @ np.array([3.0, 0, 0, 0.3, -0.3, 0]) \
+        + np.random.default_rng(1).normal(0, 0.02, len(x))
+    out = analyse(d, x, z, LOG)
+    pr = out["proposal"]
+    assert out["stationary_point"]["kind"] == "saddle"
+    assert pr["supported"] is False and pr["reason"] == "tested_better"
+    assert pr["tested_predicted_best"]["actual"]["workers"] in (2, 14)
+    words = findings(out, d)[-1]["statement"]
+    assert words.startswith("No setting between the tested values is proposed because the "
+                            "fitted surface predicts no untested setting inside the explored "
+                            "region better than")
+    assert "Proposed setting" not in words

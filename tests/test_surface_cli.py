@@ -156,3 +156,31 @@ def test_choose_proposes_nothing_between_levels_for_other_settings_and_no_surfac
                              .format(python="python3", script="w.py", state="n"), "p.yaml")
     assert proposal(df, plain, "cost_s", "lower", "log", 0.95, ["buffer_kib", "workers"], [],
                     {}) is None
+
+
+def test_choose_falls_back_when_a_tested_setting_is_predicted_better_than_any_proposal():
+    # A planted saddle: ln cost falls towards both ends of workers. With workers [3, 7] the
+    # rotatable design's axial values 2.17 and 7.83 run as 2 and 8, coded -/+1.5, beyond the
+    # explored region's radius 1.414: every untested point inside is predicted worse than
+    # those tested ones, so choose keeps to the tested setting and says why.
+    from benchharness.choose.surface import proposal
+    from benchharness.design.spec import design_of
+
+    text = EXP.replace("workers: [2, 8]", "workers: [3, 7]")
+    exp = parse_experiment(text.format(python="python3", script="w.py", state="n"), "s.yaml")
+    d = design_of(exp).surface
+    rng = np.random.default_rng(5)
+    rows = []
+    for _rep in range(2):
+        for labels in d.cells():
+            x = d.coded_of_labels(labels)
+            z = -1.6 + 0.3 * x[0] ** 2 - 0.3 * x[1] ** 2 + rng.normal(0, 0.02)
+            rows.append({**labels, "status": "ok", "cost_s": math.exp(z)})
+    out = proposal(pd.DataFrame(rows), exp, "cost_s", "lower", "log", 0.95,
+                   ["buffer_kib", "workers"], [], {"buffer_kib": "64", "workers": "2"})
+    assert out["supported"] is False and out["reason"] == "tested_better"
+    assert out["statement"].startswith(
+        "No value between the tested levels is proposed because the fitted surface predicts "
+        "no untested setting inside the explored region better than")
+    assert out["statement"].endswith("falls back to the best tested setting, buffer_kib=64, "
+                                     "workers=2")

@@ -422,6 +422,13 @@ def _proposal(q, design, x, z, region, sign, choice, alpha, tq, fit: dict) -> di
     if xr is None:
         out.update(supported=False, reason="no_whole_number_point")
         return out
+    rival = _tested_predicted_better(q, design, x, xr, sign)
+    if rival is not None:
+        # a setting already run (an axial point rounded beyond the region's edge, or the
+        # rounded point itself) is predicted at least as good: a value between the tested
+        # levels is proposed only when the fit predicts it better than every tested one
+        out.update(supported=False, reason="tested_better", tested_predicted_best=rival)
+        return out
     value, vse = q.predict(xr[None, :])
     out.update(supported=True, where=where, coded=xr.tolist(),
                actual={s.name: (round(s.exact(float(v))) if s.whole else s.exact(float(v)))
@@ -443,6 +450,18 @@ def _proposal(q, design, x, z, region, sign, choice, alpha, tq, fit: dict) -> di
         out["against_tested_best"] = {"difference": diff, "low": diff - tq * dse,
                                       "high": diff + tq * dse}
     return out
+
+
+def _tested_predicted_better(q: Quadratic, design, x, xr, sign) -> dict | None:
+    """The tested setting (as run) the fit predicts best, when it is predicted at least as
+    good as the proposal ``xr`` (so also when ``xr`` is itself a tested setting: rounding
+    can land on one); else None."""
+    pts = np.unique(np.round(np.asarray(x, dtype=float), 9), axis=0)
+    bad = sign * q.predict(pts)[0]
+    j = int(np.argmin(bad))
+    if bad[j] > sign * float(q.predict(np.asarray(xr)[None, :])[0][0]) + 1e-12:
+        return None
+    return {"coded": pts[j].tolist(), "actual": _actual(design, pts[j])}
 
 
 def _best_tested(design, x, z, sign) -> dict:
@@ -522,7 +541,8 @@ def findings(fit: dict, design) -> list[dict]:
         why = {"lack_of_fit": "the surface does not fit",
                "flat": ("the settings make no detectable difference within the explored "
                         f"region (the surface's F test, {p_words(fit['model_p'])})"),
-               "no_whole_number_point": "no whole-number setting lies inside the region"}
+               "no_whole_number_point": "no whole-number setting lies inside the region",
+               "tested_better": _tested_better_words(pr, design)}
         out.append(_finding("proposal", f"No setting between the tested values is proposed "
                                         f"because {why[pr['reason']]}; the best tested "
                                         f"setting is {tested}", names, supported=False))
@@ -530,6 +550,19 @@ def findings(fit: dict, design) -> list[dict]:
     out.append(_finding("proposal", _proposal_text(fit, design, tested, conf), names,
                         supported=True, **_against(pr)))
     return out
+
+
+def _tested_better_words(pr: dict, design) -> str:
+    """Why no value between the tested levels is proposed when a tested setting is predicted
+    better than all of them, in words."""
+    rival = pr.get("tested_predicted_best")
+    if not rival:
+        return ""
+    same = np.allclose(rival["coded"], pr["tested_best"]["coded"])
+    who = ("the best tested setting" if same else "the tested setting "
+           + _setting_text(design, rival["actual"]))
+    return ("the fitted surface predicts no untested setting inside the explored region "
+            f"better than {who}")
 
 
 def _against(pr: dict) -> dict:

@@ -74,7 +74,7 @@ def proposal(df, experiment, response: str, better: str, scale: str, confidence:
                    statement=found[-1]["statement"])
     else:
         out.update(reason=pr.get("reason"), fallback=dict(recommended),
-                   statement=_fallback_text(pr.get("reason"), lof, fit, recommended))
+                   statement=_fallback_text(pr.get("reason"), lof, fit, recommended, design))
     return out
 
 
@@ -84,7 +84,7 @@ def _labels(design, values: dict) -> dict:
     return {s.name: number_label(values[s.name], s.whole) for s in design.settings}
 
 
-def _fallback_text(reason, lof, fit, recommended) -> str:
+def _fallback_text(reason, lof, fit, recommended, design) -> str:
     from benchharness.analysis.surface import p_words
 
     setting = ", ".join(f"{k}={v}" for k, v in recommended.items())
@@ -94,6 +94,10 @@ def _fallback_text(reason, lof, fit, recommended) -> str:
     elif reason == "flat":
         why = (f"the settings make no detectable difference on the fitted surface "
                f"({p_words(fit['model_p'])})")
+    elif reason == "tested_better":
+        from benchharness.analysis.surface import _tested_better_words
+
+        why = _tested_better_words(fit["proposal"], design)
     else:
         why = "no whole-number setting lies inside the explored region"
     return (f"No value between the tested levels is proposed because {why}; the choice "
