@@ -152,3 +152,25 @@ def test_without_replicates_only_the_serial_fraction_is_said_and_its_fit_is_not_
     assert "without replicates neither the speed-ups' intervals nor the law's fit" in \
         sc["statement"]
     assert sc["serial_lower"] < 0.1 < sc["serial_upper"]
+
+
+def test_choose_says_what_a_larger_parallel_setting_could_give_and_recommends_none():
+    import re
+
+    from benchharness.choose import choose
+    from benchharness.choose.scaling import gain_from_doubling
+
+    rng = np.random.default_rng(16)
+    ch = choose(_frame(rng, s=0.08, sd=0.03), factors=["threads", "n"])
+    assert ch.best == {"threads": "16"}
+    (said,) = [r for r in ch.reasons if "largest threads tested" in r]
+    assert "no larger one was run, so none is recommended" in said
+    # Amdahl's formula (from memory): with s = 0.08, 32 threads over 16 is 1.264x
+    assert gain_from_doubling(0.08, 16) == pytest.approx(0.1375 / 0.10875)
+    lo, hi = map(float, re.search(r"\[([0-9.]+)× to ([0-9.]+)×\] as fast as threads=16",
+                                  said).groups())
+    assert lo < gain_from_doubling(0.08, 16) < hi
+    # an overhead past 8 threads: the best is not the largest level, nothing is said
+    ch = choose(_frame(rng, s=0.05, sd=0.03, overhead=0.01), factors=["threads", "n"])
+    assert ch.best != {"threads": "16"}
+    assert not [r for r in ch.reasons if "largest threads tested" in r]

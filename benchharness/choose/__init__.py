@@ -293,6 +293,7 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
                pareto_idx, also, ask, limit_results)
     choice = _choice(j, ask, role_info, responses_info, fits.scale_reasons.get(response, ""))
     choice = _with_surface(choice, df, experiment)
+    choice = _with_scaling(choice, df, experiment)
     return _with_unavailable(choice, unavailable, len(_role_reasons(role_info, names,
                                                                      ask.across_given)))
 
@@ -321,6 +322,18 @@ def _with_surface(choice: Choice, df, experiment) -> Choice:
     surface = proposal(df, experiment, choice.response, choice.better, choice.scale,
                        choice.confidence, choice.control, choice.across, choice.best)
     return choice if surface is None else replace(choice, surface=surface)
+
+
+def _with_scaling(choice: Choice, df, experiment) -> Choice:
+    """The choice with what Amdahl's law says about a larger parallel setting, when the
+    recommended one is the largest tested (`choose.scaling`)."""
+    from dataclasses import replace
+
+    from benchharness.choose.scaling import beyond_tested
+
+    more = beyond_tested(df, experiment, choice.response, choice.better, choice.control,
+                         choice.across, choice.best, choice.confidence)
+    return choice if not more else replace(choice, reasons=list(choice.reasons) + more)
 
 
 def _judge(names, full, main, default, declared, confidence, eligible, dominated_by,
