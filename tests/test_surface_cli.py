@@ -184,3 +184,66 @@ def test_choose_falls_back_when_a_tested_setting_is_predicted_better_than_any_pr
         "no untested setting inside the explored region better than")
     assert out["statement"].endswith("falls back to the best tested setting, buffer_kib=64, "
                                      "workers=2")
+
+
+BB_EXP = """\
+experiment: ingest-latency
+about: Which queue depth, worker count and fill fraction give the lowest latency?
+command: [ingest, --depth, "{queue_depth}", --workers, "{workers}", --fill, "{fill}"]
+factors:
+  queue_depth: [25, 75]
+  workers: [4, 12]
+  fill: [0.25, 0.75]
+design:
+  type: response-surface
+  points: box-behnken
+replicates: 1
+seed: 7
+"""
+
+
+class _BoxBehnkenLatency:
+    """Stands in for processes: ln wall_s = ln 0.02 + 0.3 (x1 - 1.6)^2 + 0.5 x2^2
+    + 0.4 (x3 + 0.2)^2 + noise (sd 0.02) on the coded settings."""
+
+    def __init__(self, seed=0):
+        self.rng = np.random.default_rng(seed)
+
+    def execute(self, spec, on_start=None):
+        from benchharness.execute.base import Measurement
+
+        lv = spec.levels
+        x1 = (float(lv["queue_depth"]) - 50) / 25
+        x2 = (float(lv["workers"]) - 8) / 4
+        x3 = (float(lv["fill"]) - 0.5) / 0.25
+        wall = 0.02 * math.exp(0.3 * (x1 - 1.6) ** 2 + 0.5 * x2 ** 2 + 0.4 * (x3 + 0.2) ** 2
+                               + self.rng.normal(0, 0.02))
+        return Measurement(status="ok", exit_code=0, wall_s=wall, user_s=wall, sys_s=0.0,
+                           max_rss_kib=1000, started_at="2026-01-01T00:00:00.000000+00:00")
+
+    def close(self):
+        pass
+
+
+def test_the_cell_table_recommends_only_a_setting_the_surface_ran(tmp_path):
+    # A Box-Behnken design runs 13 of the 27 combinations of its settings' values. The
+    # main-effects cell table's best combination (queue_depth 75, workers 8, fill 0.5:
+    # each value best on its own) was never run; the recommendation must be among those
+    # that ran (here queue_depth=75, workers=8, fill=0.25, the planted best of them: ln
+    # excess 0.108 + 0.256 against 0.108 + 0.576 for fill 0.75), as choose's is.
+    from benchharness.analysis import analyze
+    from benchharness.execute.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+
+    exp = Experiment.from_text(BB_EXP, path=str(tmp_path / "bb.yaml"))
+    out = run_experiment(exp, out=tmp_path / "results", executor=_BoxBehnkenLatency(2))
+    a = analyze(out.folder, comparisons=False, art=False)
+    runs = pd.read_csv(out.folder / "runs.csv", dtype=str)
+    ran = {tuple(r) for r in runs[["queue_depth", "workers", "fill"]].itertuples(index=False)}
+    best = a.to_dict()["best"]
+    assert len(best["cells"]) == len(ran) == 13
+    for c in best["cells"]:
+        assert (c["levels"]["queue_depth"], c["levels"]["workers"], c["levels"]["fill"]) in ran
+    assert best["cells"][0]["levels"] == {"queue_depth": "75", "workers": "8", "fill": "0.25"}
+    found = [f for f in a.to_dict()["findings"] if f["kind"] == "best"][0]
+    assert found["statement"].startswith("Best: queue_depth=75, workers=8, fill=0.25")

@@ -168,8 +168,12 @@ def _against_best(fit, Lk, i: int, best: int, choice, have_error: bool, d, out: 
 
 
 def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: str,
-               response: str) -> dict | None:
+               response: str, ran=None) -> dict | None:
     """Best cell over the factors ``setting_idx`` (others averaged) and its tied set.
+
+    ``ran`` (a set of level-code tuples over ``setting_idx``), when given, keeps only those
+    combinations: a response surface's cell table chooses among the settings it ran, never
+    a combination its design leaves out (whose mean only the main-effects model predicts).
 
     Returns plain data: ``cells`` (every estimable cell, best first, with mean,
     estimate and se on the analysis scale), ``tied`` (indices into ``cells``),
@@ -189,6 +193,9 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     if combos is None:
         return None
     keep = np.flatnonzero(ok & np.isfinite(est))
+    if ran is not None:
+        keep = np.array([i for i in keep if tuple(int(c) for c in combos[i]) in ran],
+                        dtype=np.int64)
     if len(keep) == 0:
         return None
     sign = -1.0 if better == "higher" else 1.0      # smaller "badness" is better

@@ -871,8 +871,15 @@ def best_setting(fit, lay: Layout, prep, roles, fdesign, scale: Scale, alpha, be
     if not lay.nf or scale.constant:     # every cell equal: nothing to choose between
         return None
     setting = setting_factors(roles, lay.fnames)
+    ran = None
+    if prep.experiment is not None:
+        from benchharness.design.spec import design_of
+
+        if design_of(prep.experiment).surface is not None:
+            # a response surface runs a few of its values' combinations: choose among those
+            ran = {tuple(int(lay.codes[f][i]) for f in setting) for i in range(len(prep.y))}
     best = fd.best_cells(fit, lay.names, lay.levels, setting, scale.choice, alpha, better,
-                         prep.response)
+                         prep.response, ran=ran)
     if best is None:
         return None
     if fdesign is not None and fdesign.is_fraction:
