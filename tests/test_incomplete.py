@@ -232,3 +232,55 @@ def test_an_excluded_cell_leaves_a_ratio_where_both_levels_ran(tmp_path):
     assert an.counts["cells_planned"] == 10 and an.counts["cells"] == 10
     assert not any(f["kind"] == "caution" and "no analysed runs" in f["statement"]
                    for f in an.findings)
+
+
+def shipper_table(seed=5, reps=3, sd=0.05) -> pd.DataFrame:
+    """A log shipper: ``ack`` applies only to tcp and quic ('-' for udp), and udp never ran with
+    batch=b256 on big payloads, so udp's margin lacks a combination tcp has."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for transport, base in (("tcp", 20.0), ("udp", 12.0), ("quic", 16.0)):
+        for ack in (["every", "window"] if transport != "udp" else ["-"]):
+            for batch in ("off", "b256"):
+                for payload in ("small", "big"):
+                    if (transport, batch, payload) == ("udp", "b256", "big"):
+                        continue
+                    ms = base * {"every": 1.5, "window": 1.0, "-": 1.0}[ack]
+                    ms *= (0.6 if batch == "b256" else 1.0) * (1.5 if payload == "big" else 1.0)
+                    for _ in range(reps):
+                        out.append({"transport": transport, "ack": ack, "batch": batch,
+                                    "payload": payload, "status": "ok",
+                                    "wall_s": ms / 1000 * math.exp(rng.normal(0, sd))})
+    return pd.DataFrame(out)
+
+
+def test_a_parent_level_without_the_nested_factor_is_compared_where_both_ran():
+    """udp (no ack) against tcp (averaged over its two acks), over the batch and payload
+    combinations where both ran: the ratio is defined, holds the planted 12 / (20·√1.5),
+    equals statsmodels' ``t_test`` on the cell-means ols fit (reference), and the finding
+    names it (it was "cannot be compared: the cells needed are empty")."""
+    import statsmodels.formula.api as smf
+
+    df = shipper_table()
+    an = analyze(df, factors=["transport", "ack", "batch", "payload"], comparisons=False)
+    assert an.incomplete["nested"] == {"ack": ["transport"]}
+    e = next(x for x in an.effects if (x["factor"], x["level"]) == ("transport", "udp"))
+    want = 12.0 / (20.0 * math.sqrt(1.5))
+    assert e["estimable"] and e["lower"] < want < e["upper"]
+    both = [("off", "small"), ("off", "big"), ("b256", "small")]
+    assert sorted((o["batch"], o["payload"]) for o in e["over"]) == sorted(both)
+    d = df.assign(z=np.log(df["wall_s"]),
+                  cell=df["transport"] + "_" + df["ack"] + "_" + df["batch"] + "_" + df["payload"])
+    ref = smf.ols("z ~ C(cell) - 1", d).fit()
+    names = list(ref.params.index)
+    L = np.zeros(len(names))
+    for b, p in both:
+        L[names.index(f"C(cell)[udp_-_{b}_{p}]")] += 1 / len(both)
+        for ack in ("every", "window"):
+            L[names.index(f"C(cell)[tcp_{ack}_{b}_{p}]")] -= 1 / (2 * len(both))
+    t = ref.t_test(L)
+    assert e["ratio"] == pytest.approx(float(np.exp(t.effect[0])), rel=1e-9)
+    assert (e["lower"], e["upper"]) == pytest.approx(tuple(np.exp(t.conf_int(0.05)[0])),
+                                                     rel=1e-9)
+    main = next(f for f in an.findings if f["kind"] == "main" and f["factors"] == ["transport"])
+    assert main["significant"] and "transport=udp 0.4" in main["statement"]

@@ -223,10 +223,9 @@ def _pair_ratio(fit: Fit, f: int, j: int, ref: int, choice, q, names, levels):
     design leave the level's margin undefined (`benchharness.analysis.support.pair_rows`)."""
     from benchharness.analysis.support import pair_rows
 
-    la, lb, common = pair_rows(fit, (f,), (j,), (ref,))
+    la, lb, common, others = pair_rows(fit, (f,), (j,), (ref,))
     if la is None:
         return {"ratio": None, "lower": None, "upper": None, "estimable": False}, None
-    others = [g for g in range(fit.support.nf) if g != f]
     over = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)} for c in common]
     return contrast_result(fit, la, lb, choice, q), over
 

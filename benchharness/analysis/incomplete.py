@@ -319,7 +319,7 @@ def _within_entry(fit, lay, f, M, ca, cb, within, choice, q) -> dict | None:
     from benchharness.analysis.effects import contrast_result, ratio_wording
 
     names, levels = lay.fnames, lay.flevels
-    la, lb, common = pair_rows(fit, M, ca, cb)
+    la, lb, common, others = pair_rows(fit, M, ca, cb)
     if la is None:
         return None
     r = contrast_result(fit, la, lb, choice, q)
@@ -328,7 +328,6 @@ def _within_entry(fit, lay, f, M, ca, cb, within, choice, q) -> dict | None:
          "lower": r["lower"], "upper": r["upper"], "estimable": r["estimable"]}
     e.update({k: r[k] for k in ("difference", "difference_lower", "difference_upper",
                                 "approximate") if k in r})
-    others = [g for g in range(fit.support.nf) if g not in M]
     n_other = len({tuple(x) for x in fit.support.cells[:, others].tolist()})
     if others and len(common) < n_other:
         e["over"] = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)} for c in common]

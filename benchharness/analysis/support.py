@@ -142,33 +142,46 @@ def _cell_rows(nf, M, m, cross, common, kids, ks) -> np.ndarray:
 
 def pair_rows(fit, factors, ca, cb):
     """Averaging rows of two combinations ``ca``, ``cb`` of ``factors`` over the other
-    factors' combinations that exist for both (None when there is none), and those
-    combinations (codes of the other factors), so a ratio is never extrapolated."""
+    factors' combinations that exist for both (None when there is none), those combinations
+    (codes of the other factors) and the other factors' indices, so a ratio is never
+    extrapolated. A factor nested in ``factors`` is not matched between the two: each side
+    averages over its own levels of it (``transport=udp``, where ``ack`` does not apply,
+    against ``transport=tcp`` averaged over its acks), as `margin_plan` does for a mean."""
     from benchharness.analysis.model import design
 
     sup: Support = fit.support
     M = list(factors)
     others = [f for f in range(sup.nf) if f not in M]
+    kids = [f for f in others if f in sup.nested and set(sup.nested[f]) <= set(M)]
+    cross = [f for f in others if f not in kids]
     cells = sup.cells
-    have = {}
+    have: dict[tuple, dict[tuple, set]] = {}
     for c in (tuple(ca), tuple(cb)):
         rows = cells[np.all(cells[:, M] == np.asarray(c), axis=1)]
-        have[c] = {tuple(r) for r in rows[:, others].tolist()}
-    common = sorted(have[tuple(ca)] & have[tuple(cb)])
+        have[c] = {}
+        for x, k in zip(map(tuple, rows[:, cross].tolist()), map(tuple, rows[:, kids].tolist())):
+            have[c].setdefault(x, set()).add(k)
+    common = sorted(set(have[tuple(ca)]) & set(have[tuple(cb)]))
     if not common:
-        return None, None, []
+        return None, None, [], cross
     block_cols = [fit.slices[t.name] for t in fit.terms if t.is_block]
     out = []
     for c in (ca, cb):
-        lv = np.zeros((len(common), len(fit.sizes)), dtype=np.int64)
+        # the nested factor's levels this side has with every common combination
+        ks = sorted(set.intersection(*(have[tuple(c)][x] for x in common)))
+        if not ks:
+            return None, None, [], cross
+        pairs = [(x, k) for x in common for k in ks]
+        lv = np.zeros((len(pairs), len(fit.sizes)), dtype=np.int64)
         lv[:, M] = c
-        lv[:, others] = np.asarray(common, dtype=np.int64).reshape(len(common), -1)
+        lv[:, cross] = np.asarray([x for x, _ in pairs], dtype=np.int64).reshape(len(pairs), -1)
+        lv[:, kids] = np.asarray([k for _, k in pairs], dtype=np.int64).reshape(len(pairs), -1)
         X, _ = design(lv, fit.terms, fit.sizes)
         row = X.mean(axis=0)
         for sl in block_cols:
             row[sl] = 0.0
         out.append(row)
-    return out[0], out[1], common
+    return out[0], out[1], common, cross
 
 
 def where_both_ran(over) -> str:
