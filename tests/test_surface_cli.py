@@ -247,3 +247,62 @@ def test_the_cell_table_recommends_only_a_setting_the_surface_ran(tmp_path):
     assert best["cells"][0]["levels"] == {"queue_depth": "75", "workers": "8", "fill": "0.25"}
     found = [f for f in a.to_dict()["findings"] if f["kind"] == "best"][0]
     assert found["statement"].startswith("Best: queue_depth=75, workers=8, fill=0.25")
+
+
+class _RowsLinger:
+    """Stands in for processes: ln wall_s = ln 0.01 + 0.4 u^2 + 0.3 w^2 + 0.1 u w with
+    u = x1 - 0.3, w = x2 + 0.4 on the coded settings (a minimum at batch_rows 620, linger_ms
+    3.4), noise sd 0.02."""
+
+    def __init__(self, seed=0):
+        self.rng = np.random.default_rng(seed)
+
+    def execute(self, spec, on_start=None):
+        from benchharness.execute.base import Measurement
+
+        u = (float(spec.levels["batch_rows"]) - 500) / 400 - 0.3
+        w = (float(spec.levels["linger_ms"]) - 5) / 4 + 0.4
+        wall = 0.01 * math.exp(0.4 * u * u + 0.3 * w * w + 0.1 * u * w
+                               + self.rng.normal(0, 0.02))
+        return Measurement(status="ok", exit_code=0, wall_s=wall, user_s=wall, sys_s=0.0,
+                           max_rss_kib=1000, started_at="2026-01-01T00:00:00.000000+00:00")
+
+    def close(self):
+        pass
+
+
+def test_a_surface_setting_named_like_an_input_is_still_a_setting(tmp_path):
+    # batch_rows reads as an input by its name ('rows'), but a response surface proposes
+    # values for all of its settings: without a roles: section it must not be taken as a
+    # workload (which left choose with no proposal and the cell table averaged over it).
+    from benchharness.choose import choose
+    from benchharness.commands.plan import _roles_line
+    from benchharness.execute.runner import run_experiment
+    from benchharness.experiment.file import Experiment
+    from benchharness.experiment.roles import factor_roles
+
+    text = textwrap.dedent("""\
+        experiment: ingest-batch
+        command: [ingest, --rows, "{batch_rows}", --linger, "{linger_ms}"]
+        factors:
+          batch_rows: [100, 900]
+          linger_ms: [1.0, 9.0]
+        design:
+          type: response-surface
+          axial: face
+        replicates: 2
+        seed: 5
+        """)
+    exp = Experiment.from_text(text, path=str(tmp_path / "ingest.yaml"))
+    roles = factor_roles(exp)
+    assert roles.setting == ("batch_rows", "linger_ms") and not roles.workload
+    assert "a response surface proposes values for all of its settings" in _roles_line(roles)
+    plain = Experiment.from_text(text.replace("design:\n  type: response-surface\n"
+                                              "  axial: face\n", ""), path="p.yaml")
+    assert factor_roles(plain).workload == ("batch_rows",)     # the name guess elsewhere
+    out = run_experiment(exp, out=tmp_path / "results", executor=_RowsLinger(3))
+    c = choose(out.folder).to_dict()
+    sf = c["surface"]
+    assert sf["used"] and sf["supported"]
+    assert abs(float(sf["setting"]["batch_rows"]) - 620) < 40           # planted 620
+    assert abs(float(sf["setting"]["linger_ms"]) - 3.4) < 0.5           # planted 3.4

@@ -860,6 +860,11 @@ def _role_reasons(roles, names, across_given) -> list[str]:
             f"marks them as inputs){held}. To be sure, declare them in the experiment file: "
             f"{declaration} (for a CSV: --workload {','.join(roles.workload)})."]
     n_set = len(list(names))
+    from benchharness.experiment.roles import surface_guess
+
+    if surface_guess(roles):
+        return [f"No roles are declared: {chosen} treated as settings, since a response "
+                f"surface proposes values for all of its settings{held}."]
     return [f"No roles are declared: {chosen} treated as "
             f"{'a setting' if n_set == 1 else 'settings'}, since nothing marks "
             f"{'it as an input' if n_set == 1 else 'them as inputs'}{held}. If some factors are inputs or machines, declare them in "

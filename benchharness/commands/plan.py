@@ -177,8 +177,11 @@ def format_plan(exp, plan, show: int = 12) -> str:
 
 def _roles_line(roles) -> str:
     """How the factors' roles were decided, in one line."""
-    from benchharness.experiment.roles import declaration_text
+    from benchharness.experiment.roles import declaration_text, surface_guess
 
+    if surface_guess(roles):
+        return ("not declared; every factor counts as a setting (a response surface proposes "
+                "values for all of its settings)")
     if roles.declared:
         return ("declared in the file: " + "; ".join(
             f"{r}s {', '.join(getattr(roles, r))}" for r in ("setting", "workload",

@@ -21,7 +21,9 @@ to the factors that play it; factors it does not name are settings::
 plain value.) Unknown roles, unknown factors and a factor named twice are
 errors at ``FILE:LINE:COL``.
 
-When no roles are declared, `guess_roles` treats a factor as a workload when
+When no roles are declared and the experiment's ``design:`` is a response surface, every
+factor is a setting (the surface proposes values for all of them, whatever their names).
+Otherwise `guess_roles` treats a factor as a workload when
 its name or its levels read like an input (the name ``n``, ``size``,
 ``input``, ``corpus``, ``dataset``, ``file`` ...; levels that are file paths
 or carry an input value such as ``{n: 200000}``) and says why for each, so a
@@ -60,6 +62,8 @@ _INPUT_VALUE_KEYS = frozenset({
     "n", "size", "input", "file", "path", "corpus", "dataset", "data", "rows", "records",
     "items", "bytes", "length", "count",
 })
+#: Why every factor of a response surface is a setting when no roles are declared.
+SURFACE_REASON = "a setting of the response surface, which proposes values for all of them"
 _FILE_NAME = re.compile(r"[^./\\][^/\\]*\.[A-Za-z][A-Za-z0-9]{0,4}")
 
 
@@ -249,6 +253,11 @@ def factor_roles(experiment=None, factors: Iterable[str] | None = None,
                          environment=tuple(f for f in declared.environment if f in keep),
                          source=declared.source)
         return declared
+    if experiment is not None and _is_surface(experiment):
+        names = [f for f in (list(factors) if factors is not None
+                             else list(experiment.factor_names)) if f not in set(exclude)]
+        return Roles(setting=tuple(names), source="guessed",
+                     reasons={f: SURFACE_REASON for f in names})
     if experiment is not None:
         lv = _factor_labels(experiment)
         names = list(factors) if factors is not None else list(experiment.factor_names)
@@ -257,6 +266,25 @@ def factor_roles(experiment=None, factors: Iterable[str] | None = None,
         names = list(factors or [])
         lv = dict(levels or {})
     return guess_roles(names, lv, exclude=exclude)
+
+
+def _is_surface(experiment) -> bool:
+    """Whether the experiment's ``design:`` is a response surface (its factors are the
+    settings whose values it proposes, whatever their names suggest)."""
+    import yaml
+
+    node = (getattr(experiment, "sections", None) or {}).get("design")
+    if not isinstance(node, yaml.MappingNode):
+        return False
+    return any(getattr(k, "value", None) == "type" and getattr(v, "value", None)
+               == "response-surface" for k, v in node.value)
+
+
+def surface_guess(roles: Roles) -> bool:
+    """Whether ``roles`` were guessed from a response-surface design (every factor a
+    setting because the surface chooses values for all of them)."""
+    return (not roles.declared and bool(roles.reasons)
+            and set(roles.reasons.values()) == {SURFACE_REASON})
 
 
 def declaration_text(roles: Roles) -> str:
