@@ -176,3 +176,28 @@ def test_trend_section_round_trips_through_json():
     n = _trend(an, "n")
     assert n["axis"] == "log n" and n["line_by"] == "threads"
     assert len(n["points"]) == 9 and {p["by"] for p in n["points"]} == {"1", "2", "4"}
+
+
+def test_the_headline_qualifies_an_exponent_that_differs_or_is_no_power_law(tmp_path, capsys):
+    """Planted: n^0.8 for png, n^1.1 for webp (a common exponent near 0.95 describes
+    neither); then a bend on log-log axes (no power law). The headline must not state one
+    exponent as the law: it says the per-level exponents, or that the exponent is an average. (``n`` reads as an input, so its trend leads the headline.)"""
+    from benchharness.cli import main
+
+    rng = np.random.default_rng(8)
+    exps = {"png": 0.8, "webp": 1.1}
+    rows = [{"fmt": f, "n": str(n),
+             "wall_s": 0.05 * (n / 16) ** exps[f] * np.exp(rng.normal(0, .02))}
+            for f in exps for n in (16, 64, 256) for _ in range(3)]
+    src = tmp_path / "runs.csv"
+    pd.DataFrame(rows).to_csv(src, index=False)
+    assert main(["analyze", str(src), "--factors", "fmt,n"]) == 0
+    head = capsys.readouterr().out.splitlines()[0]
+    assert "the exponent differing with fmt: n^0.8" in head, head
+    assert "at fmt=png to n^1.1" in head and "at fmt=webp" in head, head
+    # a bend: ln y = ln x + 0.4·(ln x)², far from a straight line on log-log axes
+    df = _frame(curve=0.4, sd=0.02, seed=4)
+    df.to_csv(src, index=False)
+    assert main(["analyze", str(src), "--factors", "threads,n"]) == 0
+    head = capsys.readouterr().out.splitlines()[0]
+    assert "on average over the levels tested (not a power law: lack of fit p < 0.001)" in head

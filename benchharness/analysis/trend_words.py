@@ -62,14 +62,15 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
     over = [b["factor"] for b in t.get("by") or []]
     text += (", averaged over " + ", ".join(over) + ")") if over else ")"
     differ = [b for b in t.get("by") or [] if b.get("differ")]
+    lof = t.get("lack_of_fit")
+    alpha = 1 - float(conf.rstrip("%")) / 100
+    bends = bool(lof and lof["p"] < alpha)
+    short = _short_caveats(short, name, differ, bends and not t.get("scaling"), lof)
     for b in differ:
         per = "; ".join(f"{power_text(name, s)} at {b['factor']}={s['level']}"
                         for s in b["slopes"])
         text += (f"; the exponent differs with {b['factor']} ({_p_text(b['test']['p'])}): "
                  + per)
-    lof = t.get("lack_of_fit")
-    alpha = 1 - float(conf.rstrip("%")) / 100
-    bends = bool(lof and lof["p"] < alpha)
     if bends and t.get("scaling"):
         text += (f"; the points bend away from a straight line on log-log axes (lack of fit "
                  f"{_p_text(lof['p'])}), as they do when part of the work is serial: see the "
@@ -88,6 +89,28 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
             "differs_with": [b["factor"] for b in differ], "lack_of_fit": bends,
             "parallel": bool(t.get("scaling")),
             "headline": bool(t.get("headline")), "short": short, "statement": text}
+
+
+def _short_caveats(short: str, name: str, differ: list[dict], bends: bool, lof) -> str:
+    """The headline's words for a trend, qualified where one exponent would mislead: when
+    the points do not lie on a power law, the exponent is an average over the levels
+    tested; when it differs with another factor, the average describes no level of it, so
+    the extreme levels' exponents are given (the strongest difference first)."""
+    if bends:
+        short += (f" on average over the levels tested (not a power law: lack of fit "
+                  f"{_p_text(lof['p'])})")
+    if differ:
+        first = min(differ, key=lambda b: b["test"]["p"])
+        lo = min(first["slopes"], key=lambda s: s["estimate"])
+        hi = max(first["slopes"], key=lambda s: s["estimate"])
+        short += ("" if bends else " on average") + (
+            f", the exponent differing with {first['factor']}: {power_text(name, lo)} at "
+            f"{first['factor']}={lo['level']} to {power_text(name, hi)} at "
+            f"{first['factor']}={hi['level']}")
+        rest = [b["factor"] for b in differ if b is not first]
+        if rest:
+            short += " (and with " + ", ".join(rest) + ")"
+    return short
 
 
 def scaling_finding(t: dict, conf: str) -> dict | None:
