@@ -284,3 +284,25 @@ def test_a_parent_level_without_the_nested_factor_is_compared_where_both_ran():
                                                      rel=1e-9)
     main = next(f for f in an.findings if f["kind"] == "main" and f["factors"] == ["transport"])
     assert main["significant"] and "transport=udp 0.4" in main["statement"]
+
+
+def test_a_nested_finding_states_the_tables_p_beside_the_adjusted_one():
+    """A nested term's finding gives its Holm-adjusted p as the crossed terms' findings do,
+    with the ANOVA table's own p beside it: a bare "p = 1.000" beside a table row reading
+    0.4 contradicted the table."""
+    from benchharness.analysis.findings import fmt_p
+
+    an = analyze(shipper_table(seed=2), factors=["transport", "ack", "batch", "payload"],
+                 comparisons=False)
+    rows = {r["term"]: r for r in an.anova_rows}
+    checked = 0
+    for f in an.findings:
+        if not f.get("within"):
+            continue
+        r = rows[f["terms"][0]]
+        if fmt_p(r["p_holm"]) != fmt_p(r["p"]):
+            raw = fmt_p(r["p"]).replace("p = ", "")
+            assert f"{fmt_p(r['p_holm'])} after Holm over the terms, {raw} alone" \
+                in f["statement"]
+            checked += 1
+    assert checked >= 1      # the planted interactions are null: their Holm p differs

@@ -395,14 +395,14 @@ def findings(d: dict) -> list[dict]:
         elif partners:
             head = (f"the effect of {f} within {parents} "
                     + ("depends" if sig else "does not depend detectably")
-                    + f" on {partners} ({r['term']}, {_fmt_p(p)})")
+                    + f" on {partners} ({r['term']}, {_p_stated(r)})")
         elif sig:
-            head = f"{f} matters within {parents} ({r['term']}, {_fmt_p(p)})"
+            head = f"{f} matters within {parents} ({r['term']}, {_p_stated(r)})"
             detail = _within_detail(f, inc.get("within_ratios") or [])
             head += f": {detail}" if detail else ""
         else:
             head = (f"{f} made no detectable difference within {parents} ({r['term']}, "
-                    f"{_fmt_p(p)})")
+                    f"{_p_stated(r)})")
         out.append({"kind": "main", "terms": [r["term"]], "factors": [f],
                     "significant": bool(sig), "ratio": None, "lower": None, "upper": None,
                     "p": p, "p_raw": r.get("p"), "statement": head, "within": True})
@@ -423,11 +423,17 @@ def _parse_nested(term: str):
     return m.group(1), m.group(2), rest
 
 
-def _fmt_p(p) -> str:
-    from benchharness.numbers import fmt_p
+def _p_stated(r: dict) -> str:
+    """The p of a nested term as its finding states it, worded as the crossed terms' are:
+    Holm-adjusted over the table's terms, with the F test's own p (the ANOVA table's)
+    beside it when the two read differently, so the finding never contradicts the table."""
+    from benchharness.analysis.findings import fmt_p
 
-    text = fmt_p(p)
-    return f"p {text}" if text.startswith("<") else f"p = {text}"
+    p, ph = r.get("p"), r.get("p_holm")
+    if ph is None or p is None or fmt_p(ph) == fmt_p(p):
+        return fmt_p(p if ph is None else ph)
+    alone = fmt_p(p).replace("p = ", "").replace("p < ", "< ")
+    return f"{fmt_p(ph)} after Holm over the terms, {alone} alone"
 
 
 def _within_detail(f: str, ratios) -> str:
