@@ -71,10 +71,14 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
                         for s in b["slopes"])
         text += (f"; the exponent differs with {b['factor']} ({_p_text(b['test']['p'])}): "
                  + per)
-    if bends and t.get("scaling"):
+    if bends and t.get("scaling") and _amdahl_fits(t["scaling"], alpha):
         text += (f"; the points bend away from a straight line on log-log axes (lack of fit "
                  f"{_p_text(lof['p'])}), as they do when part of the work is serial: see the "
                  "speed-up and the serial fraction")
+    elif bends and t.get("scaling"):
+        text += (f"; the points bend away from a straight line on log-log axes (lack of fit "
+                 f"{_p_text(lof['p'])}), and not only as a serial part of the work would bend "
+                 "them (Amdahl's law does not fit either): see the speed-up of each level")
     elif bends:
         text += (f"; the points do not lie on a straight line on log-log axes (lack of fit "
                  f"{_p_text(lof['p'])}), so the exponent is an average over the levels "
@@ -89,6 +93,23 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
             "differs_with": [b["factor"] for b in differ], "lack_of_fit": bends,
             "parallel": bool(t.get("scaling")),
             "headline": bool(t.get("headline")), "short": short, "statement": text}
+
+
+def _amdahl_fits(sc: dict, alpha: float) -> bool:
+    """False when the law's lack of fit is significant (True when it fits or is unchecked)."""
+    lof = sc.get("lack_of_fit")
+    return not (lof and lof["p"] < alpha)
+
+
+def _peak_text(sc: dict, name: str, top: dict) -> str:
+    """When a level below the largest has the largest speed-up (an overhead that grows
+    with the workers overtakes the gain), that level and its speed-up; else ''."""
+    peak = max(sc["speedups"], key=lambda s: s["speedup"])
+    if peak is top or peak["speedup"] <= top["speedup"]:
+        return ""
+    ci = _numbers.fmt_ratio_interval(peak["lower"], peak["upper"])
+    return (f"the largest measured speed-up is at {name}={peak['level']} "
+            f"({_numbers.fmt_ratio(peak['speedup'])} [{ci}]), not at the most {name}")
 
 
 def _short_caveats(short: str, name: str, differ: list[dict], bends: bool, lof) -> str:
@@ -138,10 +159,12 @@ def scaling_finding(t: dict, conf: str) -> dict | None:
     eff = (f"parallel efficiency {_pct(top['efficiency'])} [{_pct(top['efficiency_lower'])} "
            f"to {_pct(top['efficiency_upper'])}] of the ideal {top['ideal']:g}×")
     text = f"{lead}: {eff}"
+    peak = _peak_text(sc, name, top)
+    text += f"; {peak}" if peak else ""
     sf = sc.get("serial_fraction") or {}
     lof = sc.get("lack_of_fit")
     alpha = 1 - float(conf.rstrip("%")) / 100
-    fits = not (lof and lof["p"] < alpha)
+    fits = _amdahl_fits(sc, alpha)
     s_text = _fraction_text(sf)
     if sf.get("estimate") is not None:
         if fits:
@@ -161,6 +184,7 @@ def scaling_finding(t: dict, conf: str) -> dict | None:
             f"{_fraction_text(p)} at {by}={p['level']}" for p in per)
     short = f"{lead} (efficiency {_pct(top['efficiency'])}"
     short += f", serial fraction {s_text})" if sf.get("estimate") is not None and fits else ")"
+    short += f"; {peak}" if peak else ""
     return {"kind": "scaling", "terms": [name], "factors": [name], "significant": faster,
             "speedup": top["speedup"], "lower": top["lower"], "upper": top["upper"],
             "serial_fraction": sf.get("estimate"), "serial_lower": sf.get("lower"),
