@@ -297,6 +297,11 @@ def test_a_surface_setting_named_like_an_input_is_still_a_setting(tmp_path):
     roles = factor_roles(exp)
     assert roles.setting == ("batch_rows", "linger_ms") and not roles.workload
     assert "a response surface proposes values for all of its settings" in _roles_line(roles)
+    # nor does plan promise trends or a speed-up for them: analyze fits the surface instead
+    from benchharness.experiment.quantities import plan_lines
+
+    assert plan_lines(exp) == ["numeric     every setting, as a quantity in the response "
+                               "surface's second-order fit (no separate trends or speed-up)"]
     plain = Experiment.from_text(text.replace("design:\n  type: response-surface\n"
                                               "  axial: face\n", ""), path="p.yaml")
     assert factor_roles(plain).workload == ("batch_rows",)     # the name guess elsewhere

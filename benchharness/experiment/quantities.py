@@ -173,6 +173,12 @@ def numeric_factors(experiment=None, names=(), levels=None) -> dict[str, dict]:
 
 def plan_lines(experiment) -> list[str]:
     """What `plan` says about the quantities: which factors get a trend, which scaling."""
+    from benchharness.experiment.roles import is_response_surface
+
+    if is_response_surface(experiment):
+        # analysis/numeric.py leaves a surface's settings to its second-order fit
+        return ["numeric     every setting, as a quantity in the response surface's "
+                "second-order fit (no separate trends or speed-up)"]
     found = numeric_factors(experiment)
     declared = declared_numeric(experiment)
     labels = [n for n, k in declared.items() if k == "no"]

@@ -40,7 +40,7 @@ from typing import Iterable, Mapping
 from benchharness.errors import ExperimentError
 
 __all__ = ["ROLES", "Roles", "declared_roles", "guess_roles", "factor_roles",
-           "declaration_text"]
+           "declaration_text", "is_response_surface", "surface_guess"]
 
 ROLES = ("setting", "workload", "environment")
 
@@ -253,7 +253,7 @@ def factor_roles(experiment=None, factors: Iterable[str] | None = None,
                          environment=tuple(f for f in declared.environment if f in keep),
                          source=declared.source)
         return declared
-    if experiment is not None and _is_surface(experiment):
+    if experiment is not None and is_response_surface(experiment):
         names = [f for f in (list(factors) if factors is not None
                              else list(experiment.factor_names)) if f not in set(exclude)]
         return Roles(setting=tuple(names), source="guessed",
@@ -268,7 +268,7 @@ def factor_roles(experiment=None, factors: Iterable[str] | None = None,
     return guess_roles(names, lv, exclude=exclude)
 
 
-def _is_surface(experiment) -> bool:
+def is_response_surface(experiment) -> bool:
     """Whether the experiment's ``design:`` is a response surface (its factors are the
     settings whose values it proposes, whatever their names suggest)."""
     import yaml
