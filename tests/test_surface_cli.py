@@ -110,6 +110,13 @@ def test_report_has_the_surface_section_and_contour_figure(folder, analysis):
     assert "## Response surface" in md and "figures/surface.png" in md
     assert "| buffer\\_kib:workers |" in md
     assert "The fitted surface has a minimum at buffer\\_kib=" in md
+    # how the fit was made: whole-number settings as whole numbers, every p said as one
+    import re
+
+    assert "buffer\\_kib: 16 is -1 and 256 is +1, coded in its logarithm" in md
+    assert "workers: 2 is -1 and 8 is +1, coded linearly" in md
+    assert re.search(r"the surface against a flat one: p (=|&lt;) ", md)
+    assert re.search(r"Lack of fit: .*, F = [0-9.]+, p (=|&lt;) ", md)
     assert (folder / "figures" / "surface.svg").exists()
     assert 'id="surface"' in (folder / "report.html").read_text()
 

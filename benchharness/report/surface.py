@@ -52,21 +52,25 @@ def section(data: ReportData) -> dict | None:
                 else "not distinguishable from flat")
         canonical.append(f"Along ({direction}): curvature {fmt_num(c['eigenvalue'], 3)} "
                          f"[{fmt_num(c['ci_low'], 3)} to {fmt_num(c['ci_high'], 3)}], {sign}.")
+    from benchharness.analysis.surface import p_words
+    from benchharness.design.surface import number_label
+
     coding = []
     for c in sf["coding"]:
         how = "in its logarithm" if c["scale"] == "log" else "linearly"
-        coding.append(f"{c['name']}: {fmt_num(c['low'], 4)} is -1 and {fmt_num(c['high'], 4)} "
-                      f"is +1, coded {how}")
+        whole = bool(c.get("whole_numbers"))
+        coding.append(f"{c['name']}: {number_label(c['low'], whole)} is -1 and "
+                      f"{number_label(c['high'], whole)} is +1, coded {how}")
     lof = sf["lack_of_fit"]
     notes = [
         f"The fit: {scale}{sf['response']} = a full quadratic in the coded settings ("
         + "; ".join(coding) + f"), least squares on {sf['df_resid'] + len(sf['terms'])} runs; "
         f"R² = {fmt_num(sf.get('r_squared'), 3)}, residual SD {fmt_num(sf['residual_sd'], 3)} "
         f"on {sf['df_resid']} degrees of freedom; the surface against a flat one: "
-        f"{fmt_p(sf['model_p'])}.",
+        f"{p_words(sf['model_p'])}.",
         f"Lack of fit: {lof['df_lack_of_fit']} degrees of freedom against "
         f"{lof['df_pure_error']} of pure error from {lof['points']} distinct settings"
-        + (f", F = {fmt_num(lof['F'], 3)}, p {fmt_p(lof['p'])}." if finite(lof.get("F"))
+        + (f", F = {fmt_num(lof['F'], 3)}, {p_words(lof['p'])}." if finite(lof.get("F"))
            else ", not tested."),
         "Stationary point: where the fitted gradient is zero; its kind (minimum, maximum or "
         "saddle) from the signs of the curvatures along the principal directions (canonical "
