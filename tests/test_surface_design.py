@@ -84,7 +84,8 @@ def test_coding_log_scale_and_whole_numbers():
 
 
 @pytest.mark.parametrize("kwargs,msg", [
-    (dict(names=["a"], lows_highs=[(1, 2)]), "2 to 4 numeric settings"),
+    (dict(names=["a"], lows_highs=[(1, 2)]), "2 to 4 numeric settings, not 1; add a second"),
+    (dict(names=list("abcde"), lows_highs=[(1, 2)] * 5), "not 5; fix the others at one"),
     (dict(names=["a", "b"], lows_highs=[(1, 2)] * 2, points="box-behnken"), "3 or 4"),
     (dict(names=["a", "b"], lows_highs=[(1, 9), (1, 2)]), "not a positive value"),
     (dict(names=["a", "b"], lows_highs=[(4, 2), (1, 2)]), "low value first"),

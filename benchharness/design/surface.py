@@ -218,9 +218,11 @@ def build(names, lows_highs, points="central-composite", axial="rotatable",
     """
     k = len(names)
     if not MIN_SETTINGS <= k <= MAX_SETTINGS:
-        raise DesignError(f"a response surface takes 2 to 4 numeric settings, not {k}; "
-                          "fix the others at one level in the command, or screen them "
-                          "first with a fractional design")
+        fix = ("add a second numeric setting, or study the one setting with its levels "
+               "listed and no design: (a trend over it)" if k < MIN_SETTINGS else
+               "fix the others at one level in the command, or screen them first with a "
+               "fractional design")
+        raise DesignError(f"a response surface takes 2 to 4 numeric settings, not {k}; {fix}")
     if points not in POINTS:
         raise DesignError(f"points {points!r} is not known; use " + " or ".join(POINTS))
     if points == "box-behnken":
