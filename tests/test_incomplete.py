@@ -241,12 +241,13 @@ def shipper_table(seed=5, reps=3, sd=0.05) -> pd.DataFrame:
     out = []
     for transport, base in (("tcp", 20.0), ("udp", 12.0), ("quic", 16.0)):
         for ack in (["every", "window"] if transport != "udp" else ["-"]):
-            for batch in ("off", "b256"):
+            for batch in ("off", "b32", "b256"):
                 for payload in ("small", "big"):
                     if (transport, batch, payload) == ("udp", "b256", "big"):
                         continue
                     ms = base * {"every": 1.5, "window": 1.0, "-": 1.0}[ack]
-                    ms *= (0.6 if batch == "b256" else 1.0) * (1.5 if payload == "big" else 1.0)
+                    ms *= {"off": 1.0, "b32": 0.7, "b256": 0.6}[batch]
+                    ms *= 1.5 if payload == "big" else 1.0
                     for _ in range(reps):
                         out.append({"transport": transport, "ack": ack, "batch": batch,
                                     "payload": payload, "status": "ok",
@@ -267,7 +268,8 @@ def test_a_parent_level_without_the_nested_factor_is_compared_where_both_ran():
     e = next(x for x in an.effects if (x["factor"], x["level"]) == ("transport", "udp"))
     want = 12.0 / (20.0 * math.sqrt(1.5))
     assert e["estimable"] and e["lower"] < want < e["upper"]
-    both = [("off", "small"), ("off", "big"), ("b256", "small")]
+    both = [("off", "small"), ("off", "big"), ("b32", "small"), ("b32", "big"),
+            ("b256", "small")]
     assert sorted((o["batch"], o["payload"]) for o in e["over"]) == sorted(both)
     d = df.assign(z=np.log(df["wall_s"]),
                   cell=df["transport"] + "_" + df["ack"] + "_" + df["batch"] + "_" + df["payload"])
@@ -306,3 +308,18 @@ def test_a_nested_finding_states_the_tables_p_beside_the_adjusted_one():
                 in f["statement"]
             checked += 1
     assert checked >= 1      # the planted interactions are null: their Holm p differs
+
+
+def test_a_level_without_a_tukey_interval_is_still_stated_where_both_ran():
+    """batch=b256 never ran for udp on big payloads, so Tukey's comparison of batch levels
+    has no interval for it; the finding still states its ratio (planted 0.6×) over the
+    combinations where both ran, instead of naming only b32 (planted 0.7×)."""
+    an = analyze(shipper_table(seed=4), factors=["transport", "ack", "batch", "payload"])
+    tk = [c for c in an.comparisons if c.get("method") == "tukey" and c.get("factor") == "batch"
+          and c.get("a") == "b256" and c.get("b") == "off"]
+    assert tk and tk[0].get("ratio") is None          # the case this test is about
+    main = next(f for f in an.findings if f["kind"] == "main" and f["factors"] == ["batch"])
+    assert main["significant"] and main["level"] == "b256"
+    assert main["lower"] < 0.6 < main["upper"]
+    assert "batch=b256 0.6" in main["statement"] and "where both ran" in main["statement"]
+    assert "batch=b32 0.6" in main["statement"]       # 0.695× here: planted 0.7×

@@ -464,9 +464,17 @@ def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
     ref = refs.get(f)
     tk = [c for c in comps if c.get("method") == "tukey" and c.get("factor") == f
           and c.get("within") is None and (ref is None or c.get("b") == ref)]
-    stated = tk or [{"a": e["level"], "b": e["reference"], "ratio": e.get("ratio"),
-                     "lower": e.get("lower"), "upper": e.get("upper"), "p_adj": None}
-                    for e in effects if e.get("factor") == f]
+    table = [{"a": e["level"], "b": e["reference"], "ratio": e.get("ratio"),
+              "lower": e.get("lower"), "upper": e.get("upper"), "p_adj": None,
+              **({"over": e["over"]} if e.get("over") else {})}
+             for e in effects if e.get("factor") == f]
+    if tk:
+        # a level whose margin lacks a combination excluded by design has no Tukey
+        # interval; the effects table compares it where both ran: say that one rather
+        # than leave the level out of the finding
+        mine = {c["a"]: c for c in table if c.get("ratio") is not None}
+        tk = [mine.get(c["a"], c) if c.get("ratio") is None else c for c in tk]
+    stated = tk or table
     return [c for c in stated if c.get("ratio") is not None]
 
 
@@ -475,7 +483,7 @@ def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, 
     label = term_label(r)
     ptext = _p_text(r)
     listing = "; ".join(f"{f}={c['a']} {fmt_ratio(c['ratio'])} "
-                        f"{fmt_interval(c.get('lower'), c.get('upper'))}"
+                        f"{fmt_interval(c.get('lower'), c.get('upper'))}{_where_both(c)}"
                         for c in stated[:6]) + (" …" if len(stated) > 6 else "")
     against = f" against {f}={stated[0]['b']}" if stated else ""
     if p < alpha:
@@ -501,6 +509,16 @@ def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, 
     return False, (f"{label} made no detectable difference ({ptext}){alias_text}: "
                    f"{listing}{against}{also}" if stated else
                    f"{label} made no detectable difference ({ptext}){alias_text}")
+
+
+def _where_both(c: dict) -> str:
+    """`` (only rows=small, where both ran)`` after a ratio compared over part of the
+    other factors' combinations (`benchharness.analysis.support.where_both_ran`)."""
+    if not c.get("over"):
+        return ""
+    from benchharness.analysis.support import where_both_ran
+
+    return f" ({where_both_ran(c['over'])})"
 
 
 def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
