@@ -178,6 +178,12 @@ def test_size_command_with_pilot(cli, tmp_path):
     d = json.loads(r.stdout)
     assert d["expected_run_s"] == pytest.approx(0.25, rel=0.15)
     assert d["expected_wall_s"] == pytest.approx(d["expected_run_s"] * d["runs"])
+    # sizing a metric in ms: the runs still take their wall clock, not 200 "seconds"
+    pd.DataFrame(rows).assign(spill_ms=lambda t: t["wall_s"] * 1000).to_csv(csv, index=False)
+    r = cli("size", "--detect", "5%", "--pilot", csv, "--levels", exp, "--response",
+            "spill_ms", "--json")
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)["expected_run_s"] == pytest.approx(0.25, rel=0.15)
 
 
 def _simulate_holm_pairwise(levels, n, detect, cv, alpha, sims, seed):

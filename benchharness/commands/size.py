@@ -182,10 +182,15 @@ def _noise(args, pilot_df, pilot_exp, factors) -> tuple[float, str]:
 
 
 def _expected_time(args, pilot_df, factors, exp, ans) -> dict:
-    """The pilot's time per run and the whole sized experiment's, its warm-up runs included."""
+    """The pilot's time per run and the whole sized experiment's, its warm-up runs included.
+    Runs are timed by their wall clock (``wall_s``) whatever response is sized: a metric in
+    milliseconds, or no time at all, says nothing of how long a run takes."""
     from benchharness.design import budget
 
-    timing = budget.pilot_timing(pilot_df, [n for n, _ in factors], args.response)
+    clock = "wall_s" if "wall_s" in pilot_df.columns else args.response
+    if clock != "wall_s" and not clock.endswith("_s"):
+        return {}
+    timing = budget.pilot_timing(pilot_df, [n for n, _ in factors], clock)
     per_run = timing.mean_s + timing.overhead_s
     out = {"expected_run_s": per_run, "expected_wall_s": per_run * ans.runs}
     warm = exp.warmup if exp is not None else 0
