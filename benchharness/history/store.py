@@ -306,8 +306,11 @@ def read_history(db_path: str | Path, experiment: str | None = None,
             levels = json.loads(cell_json)
             return all(levels.get(k) == v for k, v in cell_filter.items())
         df = df[df["cell"].map(keep)]
-    when = pd.to_datetime(df["commit_time"], utc=True, errors="coerce", format="ISO8601")
-    started = pd.to_datetime(df["started_at"], utc=True, errors="coerce", format="ISO8601")
+    # one time unit for both columns, so that one fills the other's gaps without a cast
+    when = pd.to_datetime(df["commit_time"], utc=True, errors="coerce",
+                          format="ISO8601").dt.as_unit("us")
+    started = pd.to_datetime(df["started_at"], utc=True, errors="coerce",
+                             format="ISO8601").dt.as_unit("us")
     first_rank = df.groupby(["experiment", "response", "cell"])["cell_order"].transform("min")
     df = df.assign(_order=when.fillna(started), _started=started, _rank=first_rank)
     df = df.sort_values(["experiment", "response", "_rank", "cell", "_order", "_started",
