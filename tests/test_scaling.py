@@ -159,6 +159,22 @@ def test_without_replicates_only_the_serial_fraction_is_said_and_its_fit_is_not_
     assert "without replicates neither the speed-ups' intervals nor the law's fit" in \
         sc["statement"]
     assert sc["serial_lower"] < 0.1 < sc["serial_upper"]
+    # five thread counts: what is missing is the pure error, not levels
+    (tr,) = [f for f in an.findings if f["kind"] == "trend" and f["factors"] == ["threads"]]
+    assert "with two levels" not in tr["statement"]
+    assert "cannot be checked without repeated runs" in tr["statement"]
+
+
+def test_with_two_thread_counts_the_law_is_not_said_to_fit():
+    """Two levels: Amdahl's law passes exactly through both means, so 'fits' would be a
+    claim the data cannot make; the serial fraction is given as the law's reading."""
+    rng = np.random.default_rng(16)
+    df = _frame(rng, s=0.1, sd=0.03, threads=(1, 8))
+    an = analyze(df[df["n"] == "1000"], factors=["threads"])     # one T1, one s: exact
+    (sc,) = [f for f in an.findings if f["kind"] == "scaling"]
+    assert "Amdahl's law fits" not in sc["statement"]
+    assert "by Amdahl's law (whose fit cannot be checked with these levels)" in sc["statement"]
+    assert sc["serial_lower"] < 0.1 < sc["serial_upper"]
 
 
 def test_choose_says_what_a_larger_parallel_setting_could_give_and_recommends_none():

@@ -85,8 +85,11 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
                  f"tested, not a law to extrapolate")
     elif lof:
         text += f"; a power law fits these levels (lack of fit {_p_text(lof['p'])})"
-    else:
+    elif len(t.get("levels") or []) <= 2:
         text += "; with two levels the shape between them cannot be checked"
+    else:
+        text += ("; whether a power law fits cannot be checked without repeated runs of a "
+                 "cell (no pure error to judge the lack of fit by)")
     return {"kind": "trend", "terms": [name], "factors": [name], "significant": sig,
             "exponent": slope["estimate"], "lower": slope.get("lower"),
             "upper": slope.get("upper"), "p": slope.get("p"),
@@ -168,12 +171,12 @@ def scaling_finding(t: dict, conf: str) -> dict | None:
     s_text = _fraction_text(sf)
     if sf.get("estimate") is not None:
         if fits:
-            text += f"; Amdahl's law fits with a serial fraction of {s_text}"
+            text += (f"; Amdahl's law fits with a serial fraction of {s_text}" if lof else
+                     f"; by Amdahl's law (whose fit cannot be checked with these levels) the "
+                     f"serial fraction is {s_text}")
             if sf.get("max_speedup"):
                 text += (f", so no number of {name} can make it more than "
                          f"{fr(sf['max_speedup'])} as fast")
-            if lof is None:
-                text += " (its fit cannot be checked with these levels)"
         else:
             text += (f"; Amdahl's law does not describe these timings (lack of fit "
                      f"{_p_text(lof['p'])}): its serial fraction {s_text} is only a summary")
