@@ -201,3 +201,22 @@ def test_the_headline_qualifies_an_exponent_that_differs_or_is_no_power_law(tmp_
     assert main(["analyze", str(src), "--factors", "threads,n"]) == 0
     head = capsys.readouterr().out.splitlines()[0]
     assert "on average over the levels tested (not a power law: lack of fit p < 0.001)" in head
+
+
+def test_the_figure_draws_lines_by_the_factor_the_exponent_differs_with():
+    """Planted: workers has by far the largest effect but leaves the exponent alone
+    (time ∝ workers^-0.7), while fmt barely moves the mean yet changes the exponent over
+    tiles (0.8 against 1.1). The figure's lines follow fmt, so it shows what is said."""
+    rng = np.random.default_rng(12)
+    exps = {"png": 0.8, "webp": 1.1}
+    rows = [{"workers": str(w), "fmt": f, "tiles": str(n),
+             "wall_s": (n / 64) ** exps[f] * w ** -0.7 * np.exp(rng.normal(0, .02))}
+            for w in (1, 4, 16) for f in exps for n in (16, 64, 256) for _ in range(2)]
+    an = analyze(pd.DataFrame(rows), factors=["workers", "fmt", "tiles"])
+    t = _trend(an, "tiles")
+    assert [b["factor"] for b in t["by"] if b["differ"]] == ["fmt"]
+    assert t["line_by"] == "fmt" and t["line_by_reason"] == "exponent differs"
+    assert {p["by"] for p in t["points"]} == {"png", "webp"}
+    # without a difference in exponents: the most important other factor (threads)
+    w = _trend(analyze(_frame(), factors=["threads", "n"]), "n")
+    assert w["line_by"] == "threads" and w["line_by_reason"] == "largest effect"

@@ -277,8 +277,14 @@ def trend_of(cd: CellData, j: int, name: str, labels, values, names, sizes, alph
     out["lack_of_fit"] = lack_of_fit(cd, u, base, others, sat, k)
     out["contrasts"] = (polynomial_contrasts(sat, j, scores, alpha)
                         if complete(cd, sizes) and sat.fit.df > 0 else [])
-    line_by = most_important(others, names, importance)
+    # the figure's lines: by the factor the exponent differs with most, where one does (so
+    # the figure shows what the finding says), else by the most important other factor
+    differ = [b for b in out["by"] if b["differ"]]
+    line_by = (names.index(min(differ, key=lambda b: b["test"]["p"])["factor"]) if differ
+               else most_important(others, names, importance))
     out["line_by"] = names[line_by] if line_by is not None else None
+    out["line_by_reason"] = ("exponent differs" if differ else
+                             "largest effect" if line_by is not None else None)
     out["points"] = points(sat, j, line_by, names, sizes, alpha) if complete(cd, sizes) else []
     return out
 

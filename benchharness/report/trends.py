@@ -9,7 +9,8 @@ findings drawn from it (`benchharness.analysis.trend_words`), never re-fitted:
   parallel factor the speed-up and efficiency of every level;
 * ``trend_figure(data, trend)`` — the geometric mean of the response against
   the factor on log-log axes, with its interval, one line per level of the
-  most important other factor (the trend's ``line_by``), the fitted common
+  factor the exponent differs with, else of the most important other factor
+  (the trend's ``line_by``), the fitted common
   power law dashed beside the points.
 """
 
@@ -129,13 +130,21 @@ def trend_figure(data, trend: dict):
         ax.legend(fontsize=8.5, loc="best")
     slope = trend.get("slope") or {}
     title = f"{data.response} against {trend['factor']}"
-    if _ok(slope.get("estimate")):
+    per = [b for b in trend.get("by") or [] if b.get("factor") == trend.get("line_by")]
+    if trend.get("line_by_reason") == "exponent differs" and per:
+        ests = [s["estimate"] for s in per[0]["slopes"] if _ok(s.get("estimate"))]
+        title += (f": slopes {min(ests):.2f} to {max(ests):.2f} by {trend['line_by']}"
+                  if ests else "")
+    elif _ok(slope.get("estimate")):
         title += f": slope {slope['estimate']:.2f}"
     ax.set_title(title, fontsize=10)
     cap = (f"Geometric mean of {data.response} at each {trend['factor']} with its "
            f"{_conf(data)} interval, on log-log axes"
-           + (f", one line per level of {trend['line_by']} (the factor with the largest "
-              "effect besides it)" if trend.get("line_by") else "")
+           + (f", one line per level of {trend['line_by']} ("
+              + ("the factor the exponent differs with"
+                 if trend.get("line_by_reason") == "exponent differs" else
+                 "the factor with the largest effect besides it") + ")"
+              if trend.get("line_by") else "")
            + ". A straight line is a power law; its slope is the exponent. Dashed: "
            + ("Amdahl's law with the fitted serial fraction, through each line's points."
               if (trend.get("scaling") or {}).get("serial_fraction") else
