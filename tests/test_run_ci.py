@@ -36,11 +36,11 @@ def rows(folder):
 def test_failed_and_timed_out_runs_give_exit_4_unless_accepted(tmp_path, cli):
     p = write(tmp_path, """\
         experiment: mixed
-        command: [PY, -c, "import sys, time; a = sys.argv[1]; time.sleep(5 if a == 'slow' else 0); sys.exit(3 if a == 'bad' else 0)", "{a}"]
+        command: [sh, -c, 'case "$0" in slow) sleep 20;; bad) exit 3;; esac', "{a}"]
         factors:
           a: [good, bad, slow]
         replicates: 2
-        timeout: 0.5s
+        timeout: 1s
         seed: 4
         """)
     r = cli("run", p, "--out", tmp_path / "r1", "--quiet", "--no-analysis")
