@@ -321,5 +321,36 @@ def test_a_level_without_a_tukey_interval_is_still_stated_where_both_ran():
     main = next(f for f in an.findings if f["kind"] == "main" and f["factors"] == ["batch"])
     assert main["significant"] and main["level"] == "b256"
     assert main["lower"] < 0.6 < main["upper"]
-    assert "batch=b256 0.6" in main["statement"] and "where both ran" in main["statement"]
+    assert "batch=b256 0.6" in main["statement"]
+    assert "(not at transport=udp, ack=-, payload=big, where only one of them ran)" \
+        in main["statement"]
     assert "batch=b32 0.6" in main["statement"]       # 0.695× here: planted 0.7×
+
+
+def test_a_ratio_over_part_of_the_combinations_says_where_it_holds(tmp_path):
+    """a=y is excluded with b=q: a's levels are compared at b=p only and b's at a=x only, and
+    the ratios (planted 1.3× and 0.7×) say so; a level left out of one combination among
+    many names that combination rather than listing the ones kept."""
+    from benchharness.execute.runner import run_experiment
+    from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
+    from benchharness.experiment.file import parse_experiment
+
+    exp = parse_experiment('experiment: x\ncommand: [./app, "{a}", "{b}", "{c}"]\n'
+                           "factors:\n  a: [x, y]\n  b: [p, q]\n  c: [s, t]\n"
+                           "exclude:\n  - {a: y, b: q}\nreplicates: 4\nseed: 1\n", "x.yaml")
+    truth = SimulatedModel(base_s=0.01, cv=0.04, effects={
+        "a": {"y": 1.3}, "b": {"q": 0.7}, "c": {"t": 0.8}})
+    run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(truth, seed=3))
+    an = analyze(tmp_path / "r")
+    e = {x["factor"]: x for x in an.effects}
+    assert e["a"]["lower"] < 1.3 < e["a"]["upper"] and e["b"]["lower"] < 0.7 < e["b"]["upper"]
+    assert "only b=p, where both ran" in e["a"]["wording"]
+    assert "only a=x, where both ran" in e["b"]["wording"]
+    assert "over" not in e["c"]
+    main = {f["factors"][0]: f for f in an.findings if f["kind"] == "main"}
+    assert "(only b=p, where both ran)" in main["a"]["statement"]
+    assert "where both ran" not in main["c"]["statement"]
+    ship = analyze(shipper_table(seed=4), factors=["transport", "ack", "batch", "payload"],
+                   comparisons=False)
+    udp = next(x for x in ship.effects if x["level"] == "udp")
+    assert "(not at batch=b256, payload=big, where only one of them ran)" in udp["wording"]

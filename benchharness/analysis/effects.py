@@ -192,6 +192,7 @@ def level_ratios(fit: Fit, names, levels, factor_idx, references, choice, alpha)
     for f in factor_idx:
         combos, L = margin_rows(fit, (f,))
         ref = references[f]
+        part = _margin_over(fit, f, names, levels) if fit.support is not None else None
         for j in range(fit.sizes[f]):
             if j == ref:
                 continue
@@ -200,7 +201,7 @@ def level_ratios(fit: Fit, names, levels, factor_idx, references, choice, alpha)
                                                 and np.isfinite(L[ref]).all()):
                 r, over = _pair_ratio(fit, f, j, ref, choice, q, names, levels)
             else:
-                r = contrast_result(fit, L[j], L[ref], choice, q)
+                r, over = contrast_result(fit, L[j], L[ref], choice, q), part
             entry = {"factor": names[f], "level": levels[f][j], "reference": levels[f][ref],
                      "ratio": r["ratio"], "lower": r["lower"], "upper": r["upper"]}
             for k in ("difference", "difference_lower", "difference_upper", "approximate"):
@@ -211,23 +212,52 @@ def level_ratios(fit: Fit, names, levels, factor_idx, references, choice, alpha)
             if over:
                 from benchharness.analysis.support import where_both_ran
 
+                over, left_out = over
                 entry["over"] = over
-                entry["wording"] += f" ({where_both_ran(over)})"
+                entry["left_out"] = left_out
+                entry["wording"] += f" ({where_both_ran(over, left_out)})"
             out.append(entry)
     return out
 
 
+def _margin_over(fit: Fit, f: int, names, levels) -> list[dict] | None:
+    """(The other factors' combinations the margins of factor ``f`` average over, those
+    left out), when they
+    are fewer than those that ran (``b=q`` ran only with ``a=x``: ``a``'s levels are compared
+    at ``b=p`` only), so the wording says where the ratio holds; None when it is all of them
+    (`benchharness.analysis.support.margin_plan`)."""
+    from benchharness.analysis.support import margin_plan
+
+    plan = margin_plan(fit.support, (f,))
+    cross = plan["cross"] if plan else []
+    if not cross:
+        return None
+    ran = {tuple(c) for c in fit.support.cells[:, cross].tolist()}
+    if not plan["common"] or len(plan["common"]) >= len(ran):
+        return None
+    return _named(plan["common"], cross, names, levels), \
+        _named(sorted(ran - set(plan["common"])), cross, names, levels)
+
+
+def _named(combos, factors, names, levels) -> list[dict]:
+    """Level codes of ``factors`` as ``{factor: level}`` dicts."""
+    return [{names[g]: levels[g][c[i]] for i, g in enumerate(factors)} for c in combos]
+
+
 def _pair_ratio(fit: Fit, f: int, j: int, ref: int, choice, q, names, levels):
-    """(contrast, the other factors' combinations it averages over) of levels ``j`` and
-    ``ref`` of factor ``f`` over the combinations where both ran, when the cells missing by
-    design leave the level's margin undefined (`benchharness.analysis.support.pair_rows`)."""
+    """(contrast, (the other factors' combinations it averages over, those where only one
+    of the two ran)) of levels ``j`` and ``ref`` of factor ``f`` over the combinations where
+    both ran, when the cells missing by design leave the level's margin undefined (`benchharness.analysis.support.pair_rows`)."""
     from benchharness.analysis.support import pair_rows
 
     la, lb, common, others = pair_rows(fit, (f,), (j,), (ref,))
     if la is None:
         return {"ratio": None, "lower": None, "upper": None, "estimable": False}, None
-    over = [{names[g]: levels[g][c[i]] for i, g in enumerate(others)} for c in common]
-    return contrast_result(fit, la, lb, choice, q), over
+    cells = fit.support.cells
+    either = {tuple(c) for c in cells[np.isin(cells[:, f], (j, ref))][:, others].tolist()}
+    left_out = sorted(either - set(common))
+    return contrast_result(fit, la, lb, choice, q), (_named(common, others, names, levels),
+                                                     _named(left_out, others, names, levels))
 
 
 def ratio_wording(e: dict, factor: str, level_of_confidence: str = "95%") -> str:

@@ -466,14 +466,18 @@ def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
           and c.get("within") is None and (ref is None or c.get("b") == ref)]
     table = [{"a": e["level"], "b": e["reference"], "ratio": e.get("ratio"),
               "lower": e.get("lower"), "upper": e.get("upper"), "p_adj": None,
-              **({"over": e["over"]} if e.get("over") else {})}
+              **({"over": e["over"], "left_out": e.get("left_out")} if e.get("over")
+                 else {})}
              for e in effects if e.get("factor") == f]
     if tk:
         # a level whose margin lacks a combination excluded by design has no Tukey
         # interval; the effects table compares it where both ran: say that one rather
         # than leave the level out of the finding
         mine = {c["a"]: c for c in table if c.get("ratio") is not None}
-        tk = [mine.get(c["a"], c) if c.get("ratio") is None else c for c in tk]
+        tk = [mine.get(c["a"], c) if c.get("ratio") is None else
+              {**c, **({k: mine[c["a"]].get(k) for k in ("over", "left_out")}
+                       if mine.get(c["a"], {}).get("over") else {})}
+              for c in tk]
     stated = tk or table
     return [c for c in stated if c.get("ratio") is not None]
 
@@ -518,7 +522,7 @@ def _where_both(c: dict) -> str:
         return ""
     from benchharness.analysis.support import where_both_ran
 
-    return f" ({where_both_ran(c['over'])})"
+    return f" ({where_both_ran(c['over'], c.get('left_out'))})"
 
 
 def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),

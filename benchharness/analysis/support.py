@@ -184,14 +184,18 @@ def pair_rows(fit, factors, ca, cb):
     return out[0], out[1], common, cross
 
 
-def where_both_ran(over) -> str:
+def where_both_ran(over, left_out=None) -> str:
     """``only rows=small, where both ran``: the factors that stay at one level over the
-    combinations a pairwise ratio averages over (else up to four of the combinations)."""
+    combinations a pairwise ratio averages over; else, when fewer, the combinations it
+    leaves out (``not at transport=udp, payload=big, where only one of them ran``); else up
+    to four of the combinations."""
     keys = list(over[0]) if over else []
     fixed = [k for k in keys if len({o[k] for o in over}) == 1]
     if fixed:
-        text = ", ".join(f"{k}={over[0][k]}" for k in fixed)
-    else:
-        text = "; ".join(", ".join(f"{k}={v}" for k, v in o.items()) for o in over[:4])
-        text += f" and {len(over) - 4} more" if len(over) > 4 else ""
+        return "only " + ", ".join(f"{k}={over[0][k]}" for k in fixed) + ", where both ran"
+    if left_out and len(left_out) < len(over) and len(left_out) <= 4:
+        text = "; ".join(", ".join(f"{k}={v}" for k, v in o.items()) for o in left_out)
+        return f"not at {text}, where only one of them ran"
+    text = "; ".join(", ".join(f"{k}={v}" for k, v in o.items()) for o in over[:4])
+    text += f" and {len(over) - 4} more" if len(over) > 4 else ""
     return f"only {text}, where both ran"
