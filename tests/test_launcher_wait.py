@@ -72,10 +72,15 @@ def test_the_launcher_sleeps_while_it_lingers_for_output():
 
 @pytest.mark.parametrize("sig", ["HUP", "TERM"])
 def test_a_run_killed_by_a_signal_says_which(sig):
-    # Planted: the run sends itself SIGHUP (signal 1, the lowest) or SIGTERM; it failed,
+    # Planted: the run sends itself SIGHUP (signal 1, the lowest) or SIGTERM, at its
+    # default action even if the suite was started with it ignored (nohup); it failed,
     # and the message names the signal, not an exit code
+    import sys
+
+    code = (f"import os, signal; signal.signal(signal.SIG{sig}, signal.SIG_DFL); "
+            f"os.kill(os.getpid(), signal.SIG{sig})")
     with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
-        m = ex.execute(RunSpec(argv=("sh", "-c", f"kill -{sig} $$"), env=ENV))
+        m = ex.execute(RunSpec(argv=(sys.executable, "-c", code), env=ENV))
     assert m.status == "failed"
     assert m.message.startswith(f"killed by SIG{sig}"), m.message
 
