@@ -370,3 +370,10 @@ def test_issue_rates_from_2000_gates_each():
     _, runs4 = rates(1.20, 0.05, 50_000)
     _, runs_imp = rates(0.90, 0.05, 60_000)
     assert runs4 <= 0.50 * nfix(0.05) and runs_imp <= 0.50 * nfix(0.05)
+
+
+@pytest.mark.parametrize("looks", [(1, 5), (5, 4), (5, 5), (4, 8, 6)])
+def test_t_boundaries_refuse_looks_that_are_not_increasing_counts_of_two_or_more(looks):
+    # a t statistic needs two blocks, and looks are made after more blocks each time
+    with pytest.raises(ValueError, match="looks must be increasing block counts >= 2"):
+        t_boundaries(looks, 0.05)

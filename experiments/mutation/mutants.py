@@ -24,7 +24,8 @@ occurrence) and keeps ``random.Random(seed).sample(..., sample)`` of them.
 
 Each mutant runs only the tests that executed its line (coverage.py with one context
 per test function, from ``map``), with ``pytest -x``; a line no in-process test ran
-(code run in a child process, or at import) runs the area's ``fallback`` files.
+(code run in a child process) runs the area's ``fallback`` files, and a line run only at
+import (a module constant) the area's ``tests``.
 """
 
 from __future__ import annotations
@@ -208,7 +209,8 @@ def _enclosing_function_lines(source: str, line: int):
 
 def _tests_for(cmap_mod, source, line):
     """Tests that ran the line; for a line run only at import (a def with its defaults),
-    the tests that ran any line of its function; None: use the fallback."""
+    the tests that ran any line of its function; "all" (the area's tests, which all import
+    it) for a line run at import only; None: no in-process test ran it, use the fallback."""
     if str(line) not in cmap_mod:
         return None          # no in-process test ran it: maybe a child process does
     ctx = [c for c in cmap_mod[str(line)] if c]
@@ -216,9 +218,9 @@ def _tests_for(cmap_mod, source, line):
         return ctx
     span = _enclosing_function_lines(source, line)
     if span is None:
-        return None
+        return "all"         # run at import only (a module constant): every test imports it
     union = {c for ln in range(span[0], span[1] + 1) for c in cmap_mod.get(str(ln), []) if c}
-    return sorted(union) or None
+    return sorted(union) or "all"   # a function run only at import, for a module constant
 
 
 def cmd_select(area: str, A: dict) -> None:
@@ -232,7 +234,9 @@ def cmd_select(area: str, A: dict) -> None:
         if a != b:
             line = next(i + 1 for i, (x, y) in enumerate(zip(a, b)) if x != y)
             sel = _tests_for(cmap.get(m, {}), a, line)
-            if sel:
+            if sel == "all":
+                tests = A["tests"]
+            elif sel:
                 tests = sel
                 dpath = WORK / f"{area}.durations.json"
                 if dpath.exists():   # quickest first: with -x a killed mutant stops early
