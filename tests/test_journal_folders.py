@@ -237,3 +237,31 @@ def test_an_old_in_flight_record_names_a_group_whose_first_process_is_gone(tmp_p
     finally:
         os.killpg(pgid, signal.SIGKILL)
         leader.stdout.close()
+
+
+def test_runs_csv_written_along_is_kept_only_when_its_columns_are_the_exports(tmp_path):
+    # runs.csv grows as runs finish, with the columns the first run shows; at the end it
+    # is put in place only if an export of all the records would have the same columns.
+    # Planted: two runs alike (kept), then two where the second brings a metric the first
+    # did not have (not kept: the export writes it whole).
+    import csv
+
+    def rec(i, **metrics):
+        r = {"run": i, "status": "ok", "wall_s": 1.0 + i, "levels": {"a": "x"}}
+        return {**r, "metrics": metrics} if metrics else r
+
+    for name, recs, kept in (("alike", [rec(0), rec(1)], True),
+                             ("later", [rec(0), rec(1, hits=3)], False)):
+        folder = tmp_path / name
+        folder.mkdir()
+        (folder / "runs.jsonl").write_bytes(b"")
+        mirror = J.JournalMirror(folder / "runs.jsonl", limit=10, factors=("a",))
+        for r in recs:
+            mirror.add(r)
+        assert mirror.commit_csv(recs) is kept
+        assert (folder / "runs.csv").exists() is kept
+        if kept:
+            with open(folder / "runs.csv", newline="") as fh:
+                rows = list(csv.DictReader(fh))
+            assert [(r["run"], r["a"], r["wall_s"]) for r in rows] == [("0", "x", "1.0"),
+                                                                        ("1", "x", "2.0")]
