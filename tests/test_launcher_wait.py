@@ -125,3 +125,50 @@ def test_an_argument_with_a_nul_byte_is_refused_naming_the_program():
         m = ex.execute(RunSpec(argv=("echo", "before\x00after"), env=ENV))
     assert m.status == "failed"
     assert m.message.startswith("cannot start 'echo': "), m.message
+
+
+SETUP_FAULT = """
+import os, sys
+from benchharness.execute import launcher as L
+
+say = os.dup(1)                           # the launcher takes fds 1 and 2 for its runs
+r1, w1 = os.pipe()
+r2, w2 = os.pipe()
+la = L.Launcher(r1, w2)
+la._pipes()
+mode = sys.argv[1]
+if mode == "silent":                      # the child dies before reporting anything
+    la.child_setup = lambda *a: os._exit(127)
+elif mode == "early":                     # a set-up step fails before the clock reading
+    def child_setup(ep_w, *a):
+        os.write(ep_w, b"Ecannot pin to CPUs 0: refused by the test")
+        os._exit(127)
+    la.child_setup = child_setup
+else:                                     # the kernel refuses to turn ASLR off
+    class Refusing:
+        def personality(self, x):
+            return 0 if x == L.PERSONALITY_QUERY else -1
+    la.libc = Refusing()
+pid, t0, err = la.fork_exec("/bin/true", ["true"], {}, None, None, mode == "aslr")
+os.write(say, f"{pid is None} {err}".encode())
+"""
+
+
+@pytest.mark.parametrize("mode, said", [
+    ("silent", "the child died while being set up"),
+    ("early", "cannot pin to CPUs 0: refused by the test"),
+    ("aslr", "cannot turn off address-space randomization")])
+def test_a_set_up_step_that_fails_in_the_child_is_reported_not_run(mode, said):
+    # Planted faults, in a launcher of its own (a child Python): the forked child dies
+    # without a word, reports a failed step before its clock reading, or is refused by
+    # personality(). The launcher starts nothing and says why.
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parent.parent
+    out = subprocess.run([sys.executable, "-c", SETUP_FAULT, mode], cwd=root, text=True,
+                         capture_output=True, timeout=60,
+                         env={**os.environ, "PYTHONPATH": str(root)})
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.startswith(f"True {said}"), out.stdout
