@@ -382,3 +382,20 @@ def test_the_same_data_give_an_equal_analysis():
     # equal (the arrays kept for figures are left out of the comparison)
     d = _levels_frame(3, 4, seed=2)
     assert analyze(d, factors=["f"], art=False) == analyze(d, factors=["f"], art=False)
+
+
+def test_differences_on_the_original_scale_carry_the_unit_of_the_response():
+    # Planted: three levels 10, 12 and 15 ms apart by design (wall_s, seconds), analysed
+    # without a transform: the text states each difference in ms, as statsmodels' OLS
+    # contrast b - a gives it
+    import statsmodels.formula.api as smf
+
+    from benchharness.analysis import format_analysis
+
+    rng = np.random.default_rng(4)
+    d = pd.DataFrame({"f": np.repeat(["a", "b", "c"], 5),
+                      "wall_s": np.repeat([0.010, 0.012, 0.015], 5) + rng.normal(0, 2e-4, 15)})
+    an = analyze(d, factors=["f"], transform="none", comparisons=["pairwise"], art=False)
+    diff_ms = smf.ols("wall_s ~ C(f)", data=d).fit().params["C(f)[T.b]"] * 1000
+    line = next(ln for ln in format_analysis(an).splitlines() if "f: b over a" in ln)
+    assert f"{diff_ms:.3f} ms" in line, line

@@ -66,6 +66,11 @@ def test_single_look_is_the_fixed_test():
     tracker = SpendingTracker(0.05, paths=20_000)
     assert tracker.boundary(200, 200, final=True) == pytest.approx(t.isf(0.05, 199), abs=0.05)
     assert tracker.spent == pytest.approx(0.05)
+    # one block has no t statistic (no boundary); two blocks give the t with one degree of
+    # freedom, heavy-tailed: its 95% point 6.31 (Monte Carlo error about 0.2)
+    small = SpendingTracker(0.05, paths=20_000)
+    assert small.boundary(1, 10) == math.inf
+    assert small.boundary(2, 2, final=True) == pytest.approx(t.isf(0.05, 1), abs=0.8)
     # a first look too early to spend anything (2 of 1,000 blocks: the O'Brien-Fleming
     # spending there is below 1e-12) has no boundary, removes no paths, and leaves the
     # whole level to the last look: the fixed test's z quantile (scipy.stats.norm)
