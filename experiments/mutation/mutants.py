@@ -282,6 +282,17 @@ def cmd_exec(area: str, A: dict, rerun: bool) -> None:
             log.write(subprocess.run([PY, __file__, "report", area], capture_output=True,
                                      text=True).stdout)
         c = sqlite3.connect(db)
+        # mutants the first pass never ran are held back: a rerun is of the survivors only
+        c.execute("create table if not exists held_specs as select * from mutation_specs"
+                  " where 0")
+        c.execute("create table if not exists held_items as select * from work_items where 0")
+        c.execute("insert into held_specs select * from mutation_specs where job_id not in"
+                  " (select job_id from work_results)")
+        c.execute("insert into held_items select * from work_items where job_id not in"
+                  " (select job_id from work_results)")
+        c.execute("delete from mutation_specs where job_id in (select job_id from held_specs)")
+        c.execute("delete from work_items where job_id in (select job_id from held_items)")
+        c.commit()
         eq = _equivalent(area)     # judged equivalent: no test can kill them, not run again
         again = [(j,) for (j, *key) in c.execute(
             "select r.job_id, s.module_path, s.start_pos_row, s.start_pos_col,"
@@ -309,6 +320,12 @@ def cmd_exec(area: str, A: dict, rerun: bool) -> None:
             p.wait()
             time.sleep(1)
         _restore(area, A)
+        if rerun:
+            with sqlite3.connect(db) as c:
+                c.execute("insert into work_items select * from held_items")
+                c.execute("insert into mutation_specs select * from held_specs")
+                c.execute("delete from held_items")
+                c.execute("delete from held_specs")
 
 
 def _descendants(root: int) -> list[int]:
