@@ -382,3 +382,16 @@ def test_t_boundaries_refuse_looks_that_are_not_increasing_counts_of_two_or_more
     # a t statistic needs two blocks, and looks are made after more blocks each time
     with pytest.raises(ValueError, match="looks must be increasing block counts >= 2"):
         t_boundaries(looks, 0.05)
+
+
+def test_a_look_past_the_planned_horizon_is_final_and_has_a_bound():
+    # Planted: the noise estimate is tiny, so the planned horizon is the first look (6
+    # blocks), but 20 blocks are already in. That look is final: it spends the rest of
+    # the level with a finite bound, at a horizon of 20, the t quantile's neighbourhood
+    from benchharness.gate.sequential import SequentialDesign
+
+    design = SequentialDesign(alpha=0.05, delta=0.05)
+    assert design.horizon(1e-6) == 6
+    ct, horizon, final = design.critical(20, 1e-6)
+    assert final and horizon == 20
+    assert math.isfinite(ct) and 1.5 < ct < 3.5
