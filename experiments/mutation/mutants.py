@@ -282,17 +282,18 @@ def cmd_exec(area: str, A: dict, rerun: bool) -> None:
             log.write(subprocess.run([PY, __file__, "report", area], capture_output=True,
                                      text=True).stdout)
         c = sqlite3.connect(db)
-        # mutants the first pass never ran are held back: a rerun is of the survivors only
+        # mutants the first pass never ran are held back: a rerun is of its survivors only
+        c.execute("attach database ? as first", (str(first),))
+        ran = "(select job_id from first.work_results)"
         c.execute("create table if not exists held_specs as select * from mutation_specs"
                   " where 0")
         c.execute("create table if not exists held_items as select * from work_items where 0")
-        c.execute("insert into held_specs select * from mutation_specs where job_id not in"
-                  " (select job_id from work_results)")
-        c.execute("insert into held_items select * from work_items where job_id not in"
-                  " (select job_id from work_results)")
+        c.execute(f"insert into held_specs select * from mutation_specs where job_id not in {ran}")
+        c.execute(f"insert into held_items select * from work_items where job_id not in {ran}")
         c.execute("delete from mutation_specs where job_id in (select job_id from held_specs)")
         c.execute("delete from work_items where job_id in (select job_id from held_items)")
         c.commit()
+        c.execute("detach database first")
         eq = _equivalent(area)     # judged equivalent: no test can kill them, not run again
         again = [(j,) for (j, *key) in c.execute(
             "select r.job_id, s.module_path, s.start_pos_row, s.start_pos_col,"
