@@ -542,7 +542,7 @@ def findings(fit: dict, design) -> list[dict]:
                "flat": ("the settings make no detectable difference within the explored "
                         f"region (the surface's F test, {p_words(fit['model_p'])})"),
                "no_whole_number_point": "no whole-number setting lies inside the region",
-               "tested_better": _tested_better_words(pr, design)}
+               "tested_better": tested_better_words(pr, design)}
         out.append(_finding("proposal", f"No setting between the tested values is proposed "
                                         f"because {why[pr['reason']]}; the best tested "
                                         f"setting is {tested}", names, supported=False))
@@ -552,7 +552,7 @@ def findings(fit: dict, design) -> list[dict]:
     return out
 
 
-def _tested_better_words(pr: dict, design) -> str:
+def tested_better_words(pr: dict, design) -> str:
     """Why no value between the tested levels is proposed when a tested setting is predicted
     better than all of them, in words."""
     rival = pr.get("tested_predicted_best")

@@ -95,9 +95,9 @@ def _fallback_text(reason, lof, fit, recommended, design) -> str:
         why = (f"the settings make no detectable difference on the fitted surface "
                f"({p_words(fit['model_p'])})")
     elif reason == "tested_better":
-        from benchharness.analysis.surface import _tested_better_words
+        from benchharness.analysis.surface import tested_better_words
 
-        why = _tested_better_words(fit["proposal"], design)
+        why = tested_better_words(fit["proposal"], design)
     else:
         why = "no whole-number setting lies inside the explored region"
     return (f"No value between the tested levels is proposed because {why}; the choice "
