@@ -427,13 +427,22 @@ def _p_stated(r: dict) -> str:
     """The p of a nested term as its finding states it, worded as the crossed terms' are:
     Holm-adjusted over the table's terms, with the F test's own p (the ANOVA table's)
     beside it when the two read differently, so the finding never contradicts the table."""
-    from benchharness.analysis.findings import fmt_p
-
     p, ph = r.get("p"), r.get("p_holm")
     if ph is None or p is None or fmt_p(ph) == fmt_p(p):
         return fmt_p(p if ph is None else ph)
     alone = fmt_p(p).replace("p = ", "").replace("p < ", "< ")
     return f"{fmt_p(ph)} after Holm over the terms, {alone} alone"
+
+
+def fmt_p(p) -> str:
+    """A p-value in a sentence as `findings.fmt_p` writes it (``p = 0.013``, ``p < 0.001``);
+    here, not imported from findings, which imports this module (no import circle)."""
+    from benchharness.numbers import fmt_p as _fmt
+
+    if p is None:
+        return "p –"
+    text = _fmt(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
 
 
 def _within_detail(f: str, ratios) -> str:
