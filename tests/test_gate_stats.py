@@ -165,8 +165,10 @@ def test_six_close_blocks_at_the_tolerance_wait_for_the_pilot():
     j = judge(blocks, GateSettings())
     assert j.verdict is None and j.horizon_blocks == 16
     assert j.lower < 1.05 < j.upper
-    # the rule without the pilot called this a regression "with 0.95 confidence"
-    old = judge(blocks, GateSettings(horizon_from="current", level_calibration=0.7))
+    # the rule without the pilot (horizon from the spread about the estimate, no floor)
+    # called this a regression "with 0.95 confidence"
+    old = judge(blocks, GateSettings(horizon_from="current", level_calibration=0.7,
+                                     plan_noise="estimate", horizon_factor=1.0))
     assert old.verdict == "regression" and old.horizon_blocks == 6
     # a large slowdown is still called at the first look
     big = [Block(1.0, math.exp(math.log(1.5) + 0.006 * z)) for z in (0.5, -1.0, 0.2, 1.1,
@@ -177,6 +179,8 @@ def test_six_close_blocks_at_the_tolerance_wait_for_the_pilot():
 def test_own_horizon_null_paths_small_fixed_seed():
     # Small, fixed-seed version of `gate_validation.py --sections calibrate`: paths at
     # the boundary ratio, noise CV 5%, each with its own noise estimate and horizon.
+    from dataclasses import replace
+
     from benchharness.gate.calibrate import (
         boundary_false_fail,
         boundary_table,
@@ -184,18 +188,50 @@ def test_own_horizon_null_paths_small_fixed_seed():
     )
 
     st = GateSettings(max_runs=40)
+    before = replace(st, plan_noise="estimate", horizon_factor=1.0)   # the rule before
     share = st.level_calibration
-    table = boundary_table(share * 0.05, st)     # the gate's seeded null paths
-    mu, se = null_paths_at_boundary(0.05, st, paths=6000, seed=5)
-    rate = {rule: boundary_false_fail(mu, se, 0.05, share, rule, st, table)
-            for rule in ("known", "no-pilot", "pilot")}
     se3 = 3 * math.sqrt(0.04 * 0.96 / 6000)      # binomial standard error, 3 of them
+    mu, se = null_paths_at_boundary(0.05, st, paths=6000, seed=5)
+    rate = {}
+    table = boundary_table(share * 0.05, st)     # the gate's seeded null paths (both rules)
+    for name, rules in (("now", st), ("before", before)):
+        for rule in ("known", "no-pilot", "pilot"):
+            rate[name, rule] = boundary_false_fail(mu, se, 0.05, share, rule, rules, table)
     # horizon from the true noise: the level spent (0.6 x 5% = 3%) is held
-    assert rate["known"] <= share * 0.05 + se3
-    # the horizon that follows the estimate from the first look runs over; the pilot
-    # brings it back within the 4.5% the gate promises at the boundary
-    assert rate["no-pilot"] > rate["pilot"] + 0.005
-    assert rate["pilot"] <= 0.045
+    assert rate["now", "known"] <= share * 0.05 + se3
+    # planned from the spread about the estimate with no floor it runs over; the pilot
+    # brings it back
+    assert rate["before", "no-pilot"] > rate["before", "pilot"] + 0.005
+    # planned from the spread about the tolerance (Basu 1955) it is lower still, and
+    # within the 4.5% the gate promises at the boundary even without the pilot's floor
+    assert rate["now", "pilot"] < rate["before", "pilot"]
+    assert rate["now", "no-pilot"] <= 0.045 and rate["now", "pilot"] <= 0.045
+
+
+def test_tracked_rule_is_the_gates_own_decision():
+    # `calibrate.gate_rule_outcomes` (the rule with its real spending record, vectorized
+    # over paths for the validation) says what `judge` says, block for block
+    from benchharness.gate.calibrate import gate_rule_outcomes
+    from benchharness.gate.robust import robust_location
+
+    st = GateSettings(max_runs=24)
+    rng = np.random.default_rng(8)
+    paths, top = 12, 24
+    s = math.sqrt(math.log1p(0.05 ** 2))
+    shift = rng.choice([0.0, 0.03, 0.06, -0.05], paths)[:, None]
+    d = (rng.normal(0, s, (paths, top)) - rng.normal(0, s, (paths, top)) + st.threshold_log
+         + shift + math.log(1.5) * (rng.random((paths, top)) < 0.05))
+    mu, se = np.zeros((top + 1, paths)), np.ones((top + 1, paths))
+    for n in range(2, top + 1):
+        m, e, _ = robust_location(d[:, :n])
+        mu[n], se[n] = m, np.maximum(e, 1e-300)
+    verdicts, stopped = gate_rule_outcomes(mu, se, st)
+    words = {"regression": "regression", "no_regression": "pass", "improvement": "pass",
+             "inconclusive": "inconclusive"}
+    for i in range(paths):
+        j = judge([Block(1.0, math.exp(x)) for x in d[i]], st)
+        assert (words[j.verdict], j.blocks) == (verdicts[i], stopped[i])
+    assert {"regression", "pass"} <= set(verdicts)
 
 
 def test_a_path_that_passed_is_not_counted_as_a_false_fail_later():
@@ -228,17 +264,25 @@ def test_level_share_is_the_largest_within_the_target_over_noise_levels():
         null_paths_at_boundary,
     )
 
+    from dataclasses import replace
+
     st = GateSettings()
+    # the share was chosen for the rule before 2026-12-05 (horizon from the spread about
+    # the estimate, horizon factor 1.0) and kept for the rule now (spread about the
+    # tolerance, factor 0.7), which stays within the target too
+    before = replace(st, plan_noise="estimate", horizon_factor=1.0)
     tables = {c: boundary_table(c * 0.05, st) for c in (0.6, 0.7)}
-    worst = {0.6: 0.0, 0.7: 0.0}
+    worst = {(c, r): 0.0 for c in (0.6, 0.7) for r in ("before", "now")}
     for cv in (0.02, 0.03, 0.04, 0.05, 0.06, 0.08, 0.10, 0.12):
         for slow in ((0.0, 0.05) if cv in (0.03, 0.05, 0.08) else (0.0,)):
             mu, se = null_paths_at_boundary(cv, st, outliers=slow)
             for c, table in tables.items():
-                worst[c] = max(worst[c], boundary_false_fail(mu, se, cv, c, "pilot", st,
-                                                             table))
+                for r, rules in (("before", before), ("now", st)):
+                    worst[c, r] = max(worst[c, r], boundary_false_fail(
+                        mu, se, cv, c, "pilot", rules, table))
     assert st.level_calibration == 0.6
-    assert worst[0.6] <= 0.045 < worst[0.7], worst
+    assert worst[0.6, "before"] <= 0.045 < worst[0.7, "before"], worst
+    assert worst[0.6, "now"] <= 0.045, worst
 
 
 def test_budget_makes_it_inconclusive():
@@ -366,15 +410,18 @@ def test_issue_rates_from_2000_gates_each():
     assert rb["regression"] <= 0.05 + se(0.05)           # the boundary 1 + tolerance
     r2, runs2 = rates(1.10, 0.03, 40_000)
     assert r2["regression"] >= 0.90 - se(0.90)           # detection at 1 + 2 x tolerance
-    # the pilot (no horizon below 16 blocks) costs runs at CV 3%: about the fixed design's
-    # 11 at 1.00 and 1.10 (docs/gate.md), where the horizon alone needed 82-84% of them
+    # the pilot (no horizon below 16 blocks) and the horizon planned from the spread
+    # about the tolerance cost runs at CV 3%: about the fixed design's 11 at 1.00 and
+    # 1.10 (11.6 and 12.1, docs/gate.md), where the horizon alone needed 82-84% of them
     # but ran over the level at the boundary at CV 5%
-    assert runs1 <= 1.10 * nfix(0.03) and runs2 <= 1.10 * nfix(0.03)
+    assert runs1 <= 1.10 * nfix(0.03) and runs2 <= 1.15 * nfix(0.03)
     # at CV 3% the fixed design needs only 11 runs and the first look (min_runs 6) is
-    # already 55% of it, so the <= 50% figures for large effects are checked at CV 5%
+    # already 55% of it, so large effects are checked at CV 5%: the horizon planned from
+    # the spread about the tolerance (its distance counted up to 4 standard errors)
+    # makes them wait a few blocks more than before (about 14 runs, was under 13.5)
     _, runs4 = rates(1.20, 0.05, 50_000)
     _, runs_imp = rates(0.90, 0.05, 60_000)
-    assert runs4 <= 0.50 * nfix(0.05) and runs_imp <= 0.50 * nfix(0.05)
+    assert runs4 <= 0.60 * nfix(0.05) and runs_imp <= 0.60 * nfix(0.05)
 
 
 @pytest.mark.parametrize("looks", [(1, 5), (5, 4), (5, 5), (4, 8, 6)])

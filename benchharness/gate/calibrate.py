@@ -12,17 +12,25 @@ largest one whose error stays within the target in the worst case over the
 noise.
 
 This module measures that error for the gate's own rule. Each simulated path
-(normal log differences, true log ratio exactly ``log(1 + tolerance)``) carries
-its own resistant estimate (`benchharness.gate.robust`) and therefore its own
-horizon, look by look, as a real gate does (``horizon_from`` "ratchet", the
-pilot's floor of ``ratchet_from`` blocks, `benchharness.gate.decide`). The
-boundaries are the resistant statistic's boundaries for a horizon fixed from the
-start, on seeded null paths; the real spending record
-(`benchharness.gate.sequential.SpendingTracker`) also counts what earlier looks
-really spent, which the full gate simulation
-(``experiments/bench/gate_validation.py --sections rates``) measures to err a
-little lower. Everything is vectorized over paths; the numbers are
-deterministic for a seed.
+(normal log differences, true log ratio exactly ``log(1 + tolerance)``, with
+optional slow runs) carries its own resistant estimate (`benchharness.gate.robust`)
+and therefore its own horizon, look by look, as a real gate does. Two
+simulations:
+
+* `boundary_false_fail`: the boundaries of a horizon fixed from the start, for
+  the current horizon at each look (fast, fully vectorized; how the share of
+  the level was chosen);
+* `gate_rule_outcomes`: the gate's own horizon code and a real spending record
+  (`benchharness.gate.sequential.SpendingTracker`) that counts what earlier
+  looks of the path really spent, as the gate loop does; it gives the gate
+  loop's verdicts on the same blocks (tests/test_gate_stats.py) and, with the
+  statistic vectorized over paths, takes a fraction of its time.
+
+The horizon is planned from the noise of ``settings.plan_noise``: by default
+the spread about ``log(1 + tolerance)``, which at the boundary is independent
+of the studentized statistic (Basu 1955; `benchharness.gate.decide`), so a
+small estimate no longer shortens the horizon on the paths it inflates.
+Everything is deterministic for a seed.
 """
 
 from __future__ import annotations
@@ -117,11 +125,12 @@ def boundary_false_fail(mu, se, cv: float, share: float, rule: str, settings,
                         table=None) -> float:
     """Share of the paths ``(mu, se)`` the rule calls a regression (true ratio 1 + tolerance).
 
-    ``rule``: "pilot" (the gate's: horizon from the current estimate, at least
-    ``ratchet_from`` blocks, from there the largest estimate), "no-pilot" (the
-    same without the floor: the rule before the pilot) or "known" (the horizon
-    from the true noise: the level spent is then held). ``share`` is the share
-    of ``1 - confidence`` spent.
+    ``rule``: "pilot" (the gate's: horizon from the noise of ``settings.plan_noise``,
+    at least ``ratchet_from`` blocks, from there the largest such noise), "no-pilot"
+    (the same without the floor) or "known" (the horizon from the true noise: the
+    level spent is then held). ``share`` is the share of ``1 - confidence`` spent.
+    The rule before 2026-12-05 is "pilot" with ``plan_noise="estimate"`` and
+    ``horizon_factor=1.0``.
     """
     import numpy as np
 
@@ -138,7 +147,7 @@ def boundary_false_fail(mu, se, cv: float, share: float, rule: str, settings,
     most = np.zeros(paths)
     true_sd = math.sqrt(2.0 * math.log1p(cv * cv))
     for n in range(first, top + 1):
-        sd = se[n] * math.sqrt(n)
+        sd = planning_noise(mu[n], se[n], n, settings)
         if rule == "known":
             plan = np.full(paths, true_sd)
         elif n < rf:
@@ -158,3 +167,86 @@ def boundary_false_fail(mu, se, cv: float, share: float, rule: str, settings,
         if not alive.any():
             break
     return float(fail.mean())
+
+
+def planning_noise(mu, se, n: int, settings):
+    """`benchharness.gate.decide`'s planning noise for arrays of locations and errors."""
+    import numpy as np
+
+    sd = se * math.sqrt(n)
+    if settings.plan_noise == "estimate":
+        return sd
+    from benchharness.gate.decide import PLAN_DISTANCE_SE
+
+    off = np.minimum(np.abs(mu - settings.threshold_log), PLAN_DISTANCE_SE * se)
+    return np.sqrt(sd * sd * (n - 1) / n + off * off)
+
+
+def gate_rule_outcomes(mu, se, settings, shift: float = 0.0):
+    """What the gate's own decision rule says on each path, with its real spending record.
+
+    The paths ``(mu, se)`` are the resistant location and standard error after
+    every block (`null_paths_at_boundary`); ``shift`` moves the true log ratio
+    (0: at the boundary). Unlike `boundary_false_fail` (boundaries of a horizon
+    fixed from the start), each path is judged look by look with the gate's
+    horizon code (`benchharness.gate.decide._look_horizon`) and a
+    `SpendingTracker` that counts what earlier looks of that path really
+    spent; paths whose horizons agree so far share one record. Returns
+    ``(verdicts, stopped_at)``: arrays of "regression", "pass" or
+    "inconclusive" and of the block count at the decision.
+    """
+    import copy
+
+    import numpy as np
+
+    from benchharness.gate import decide
+
+    design = settings.design(1)
+    thr = settings.threshold_log
+    paths = mu.shape[1]
+    mu = mu + shift
+    verdict = np.full(paths, "", dtype=object)
+    stopped = np.zeros(paths, dtype=int)
+    states = [_PathState() for _ in range(paths)]
+    groups = {(): (settings.tracker(1), list(range(paths)))}
+    for n in range(max(2, settings.min_runs), settings.max_runs + 1):
+        sd = np.maximum(se[n] * math.sqrt(n), 1e-9)
+        nxt = {}
+        for key, (tracker, ids) in groups.items():
+            by_horizon: dict[tuple[int, bool], list[int]] = {}
+            for i in ids:
+                look = decide._Look(settings, design, n, n, float(mu[n, i]), float(sd[i]),
+                                    0, 0, 0, 0)
+                horizon = decide._look_horizon(look, settings, design, states[i])
+                final = n >= settings.max_runs or n >= horizon
+                by_horizon.setdefault((horizon, final), []).append(i)
+            for (horizon, final), members in by_horizon.items():
+                record = copy.copy(tracker)
+                record.alive = None if tracker.alive is None else tracker.alive.copy()
+                record.looks = list(tracker.looks)
+                ct = record.boundary(n, horizon, final)
+                rest = []
+                for i in members:
+                    half = ct * sd[i] / math.sqrt(n) if math.isfinite(ct) else math.inf
+                    if mu[n, i] - half > thr:
+                        verdict[i] = "regression"
+                    elif mu[n, i] + half < thr:
+                        verdict[i] = "pass"
+                    elif final:
+                        verdict[i] = "inconclusive"
+                    else:
+                        rest.append(i)
+                        continue
+                    stopped[i] = n
+                if rest:
+                    nxt[key + ((horizon, final),)] = (record, rest)
+        groups = nxt
+        if not groups:
+            break
+    return verdict, stopped
+
+
+class _PathState:
+    """The per-workload state `decide._plan_sd` keeps on a tracker (the ratchet)."""
+
+    plan_sd = 0.0

@@ -51,6 +51,10 @@ from benchharness.gate.failures import failure_verdict, failures_lean_against
 from benchharness.gate.robust import robust_summary
 from benchharness.gate.sequential import SequentialDesign, SpendingTracker
 
+# the distance to the tolerance counts in the planning noise up to this many standard
+# errors (`_planning_noise`)
+PLAN_DISTANCE_SE = 4.0
+
 VERDICTS = ("regression", "no_regression", "improvement", "inconclusive", "never_ok")
 OK = "ok"
 
@@ -65,7 +69,7 @@ class GateSettings:
     min_runs: int = 6            # blocks before the first look
     higher_is_better: bool = False
     beta: float = 0.05           # design miss rate at the design distance
-    horizon_factor: float = 1.0  # planned information / fixed-design information
+    horizon_factor: float = 0.7  # planned information / fixed-design information
     # noise estimate that sets the horizon: "ratchet" = an internal pilot of
     # `ratchet_from` blocks (Wittes & Brittain 1990): the horizon is never planned
     # below `ratchet_from` blocks, and from there it follows the largest estimate seen
@@ -74,6 +78,12 @@ class GateSettings:
     # sigma), both without the pilot's floor (for experiments).
     horizon_from: str = "ratchet"
     ratchet_from: int = 16
+    # where the noise that plans the horizon is measured from: "tolerance" = the
+    # spread of the log slowdowns about log(1 + tolerance), the value both bounds
+    # test (at the boundary it is independent of the studentized statistic: Basu
+    # 1955), or "estimate" = about their own location (the rule before 2026-12-05,
+    # whose small estimates both inflated the statistic and shortened the horizon)
+    plan_noise: str = "tolerance"
     # location of the log differences: "robust" (benchharness.gate.robust) or "mean"
     estimator: str = "robust"
     # a build with no successful run among its first this-many runs (warm-ups
@@ -87,7 +97,8 @@ class GateSettings:
     # share is the worst case over the noise-to-tolerance ratio (Kieser & Friede
     # 2000), found by simulating the whole rule on null paths that each carry their
     # own noise estimate and horizon (experiments/bench/gate_validation.py
-    # --sections calibrate; docs/gate.md)
+    # --sections calibrate; docs/gate.md); chosen for the rule before 2026-12-05
+    # (horizon from the spread about the estimate) and kept
     level_calibration: float = 0.6
 
     def __post_init__(self):
@@ -101,6 +112,8 @@ class GateSettings:
             raise ValueError("max_runs must be at least min_runs")
         if self.estimator not in ("robust", "mean"):
             raise ValueError("estimator must be 'robust' or 'mean'")
+        if self.plan_noise not in ("tolerance", "estimate"):
+            raise ValueError("plan_noise must be 'tolerance' or 'estimate'")
 
     @property
     def threshold_log(self) -> float:
@@ -319,7 +332,8 @@ def _pass_or_hold(look: _Look, passed: tuple, tracker, settings: GateSettings,
 def _look_horizon(look: _Look, settings: GateSettings, design: SequentialDesign,
                   tracker) -> int:
     """The planned horizon (blocks) at this look: from the noise, with the pilot's floor."""
-    horizon = design.horizon(_plan_sd(look.sd, look.n, settings, tracker))
+    horizon = design.horizon(_plan_sd(_planning_noise(look, settings), look.n, settings,
+                                      tracker))
     if settings.horizon_from == "ratchet":
         # the pilot: a horizon planned from fewer blocks would end early exactly when
         # the estimate came out small, the same small estimate that inflates the
@@ -372,6 +386,34 @@ def _held(make, passed, only_c: int, only_b: int, at_budget: bool) -> Judgement:
                     "it was clear whether the candidate fails more often", lo, hi, horizon)
     return make(None, f"{reason}; waiting: the candidate failed alone more often", lo, hi,
                 horizon)
+
+
+def _planning_noise(look: _Look, settings: GateSettings) -> float:
+    """The noise that plans the horizon: by default the spread about log(1 + tolerance).
+
+    Both bounds test the log ratio ``mu0 = log(1 + tolerance)``. With normal
+    log slowdowns and ``mu = mu0``, the studentized statistics at this look and
+    all earlier ones are functions of the direction of the vector ``d - mu0``
+    only (they do not change when it is scaled), while the root mean square
+    ``sqrt(mean (d - mu0)^2)`` is its length; the length is independent of the
+    direction (Basu 1955). So a horizon planned from this spread does not shrink
+    on the paths where the statistic is inflated, as one planned from the spread
+    about the estimate does (a small ``s`` there both inflates the statistic and
+    shortens the horizon). Computed here from the resistant location and noise:
+    ``s^2 (n - 1) / n + min(|location - mu0|, 4 se)^2`` with ``se = s / sqrt(n)``:
+    the distance to the tolerance counted up to four standard errors, beyond
+    which a path is deciding anyway, so a large change is not made to wait for
+    a horizon planned as if its distance were noise (a 50% slowdown at CV 3% is
+    still called within the first looks). A cap at the design distance instead
+    would drop the protection at high noise, where that distance is under two
+    standard errors. Near the boundary the distance makes the horizon a little longer;
+    the horizon factor (0.7) is set for the power at ``1 + 2 tolerance``.
+    """
+    if settings.plan_noise == "estimate":
+        return look.sd
+    n = look.n
+    off = min(abs(look.mean - settings.threshold_log), PLAN_DISTANCE_SE * look.sd / math.sqrt(n))
+    return math.sqrt(look.sd * look.sd * (n - 1) / n + off * off)
 
 
 def _plan_sd(sd: float, n: int, settings: GateSettings, tracker: SpendingTracker) -> float:

@@ -14,7 +14,8 @@ noncentral t distribution.
     python experiments/bench/gate_validation.py --cvs 0.08 --sections rates   # one part
 
 Sections: ``rates`` (noise CV x true ratio, clean and with 5% of runs 1.5x as
-slow), ``calibrate`` (the boundary false-fail rate of the decision rule on null
+slow), ``rule`` (the same rule on vectorized simulated paths with the real
+spending record: the gate's verdicts at a fraction of the cost), ``calibrate`` (the boundary false-fail rate of the decision rule on null
 paths that each carry their own noise estimate and horizon, over noise CVs 2-12%:
 how the share of the level was chosen), ``tails`` (one look, no gate: how often the resistant statistic passes
 its clean-noise 1% and 0.5% points when 5% of runs are 1.5x as slow), ``drift``, ``workloads`` (three workloads at the boundary), ``failures``
@@ -90,7 +91,8 @@ def baseline_first(ratio: float, cv: float, seed: int, settings: GateSettings, n
     return judge(blocks, fixed, 1)
 
 
-def scenario(name, ratio, cv, gates, settings, drift=0.0, workloads=1, seed0=0, outliers=0.0):
+def scenario(name, ratio, cv, gates, settings, drift=0.0, workloads=1, seed0=0, outliers=0.0,
+             progress=0):
     t0 = time.time()
     verdicts = {"regression": 0, "no_regression": 0, "improvement": 0, "inconclusive": 0,
                 "never_ok": 0}
@@ -102,6 +104,10 @@ def scenario(name, ratio, cv, gates, settings, drift=0.0, workloads=1, seed0=0, 
             verdicts[j.verdict] += 1
             runs += j.blocks
             count += 1
+        if progress and (g + 1) % progress == 0 and g + 1 < gates:
+            print(f"    ... {g + 1} gates: regression {verdicts['regression']}, pass "
+                  f"{verdicts['no_regression'] + verdicts['improvement']}, undecided "
+                  f"{verdicts['inconclusive']}, runs {runs}", flush=True)
     return {"name": name, "ratio": ratio, "cv": cv, "gates": count, "verdicts": verdicts,
             "mean_runs": runs / count, "seconds": time.time() - t0, "drift": drift}
 
@@ -186,6 +192,64 @@ def calibrate(settings: GateSettings, cvs, shares, paths: int = 10_000,
     print()
 
 
+def use_null_cache(path: str, top: int = 100) -> None:
+    """Load (or compute and save) the gate's null robust statistics after 2..top blocks.
+
+    The values are those `benchharness.gate.sequential.null_robust_column` computes
+    (the same seeded paths); the gate's spending record then reads them from here.
+    """
+    import numpy as np
+
+    from benchharness.gate import sequential as seq
+
+    p = Path(path)
+    paths, seed = 60_000, 19830101
+    if p.exists():
+        table = np.load(p)
+    else:
+        table = np.stack([seq.null_robust_column(paths, seed, n) for n in range(2, top + 1)])
+        tmp = p.with_suffix(".part.npy")
+        np.save(tmp, table)
+        tmp.replace(p)
+    original = seq.null_robust_column
+
+    def column(p_, s_, n):
+        if p_ == paths and s_ == seed and 2 <= n <= top:
+            return table[n - 2]
+        return original(p_, s_, n)
+
+    seq.null_robust_column = column
+
+
+def rule_rates(settings: GateSettings, cvs, outliers, ratios, paths: int, seed: int = 3) -> None:
+    """The gate's decision rule on simulated paths, with its real spending record.
+
+    `benchharness.gate.calibrate.gate_rule_outcomes`: the resistant statistic of
+    every path after every block (vectorized), then each path judged look by look
+    by the gate's own horizon code and a `SpendingTracker` per horizon history.
+    It agrees with the gate loop verdict for verdict on the same blocks
+    (tests/test_gate_stats.py) and takes a fraction of its time.
+    """
+    import numpy as np
+
+    from benchharness.gate.calibrate import gate_rule_outcomes, null_paths_at_boundary
+
+    print(f"decision rule on {paths} simulated paths per row (real spending record)")
+    for cv in cvs:
+        for o in outliers:
+            mu, se = null_paths_at_boundary(cv, settings, paths, seed=seed, outliers=o)
+            for ratio in ratios:
+                t0 = time.time()
+                v, n = gate_rule_outcomes(mu, se, settings,
+                                          shift=math.log(ratio / (1 + settings.tolerance)))
+                k = int(np.sum(v == "regression"))
+                print(f"  CV {cv:4.0%}  slow runs {o:4.0%}  ratio {ratio:.2f}  fail "
+                      f"{fmt_rate(k, paths)}  pass {100 * np.mean(v == 'pass'):6.2f}%  "
+                      f"undecided {100 * np.mean(v == 'inconclusive'):6.2f}%  mean runs "
+                      f"{n.mean():6.2f}   ({time.time() - t0:.0f} s)", flush=True)
+    print()
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--gates", type=int, default=2000)
@@ -208,10 +272,20 @@ def main(argv=None) -> int:
                     help="share of runs 1.5x as slow in the calibrate section")
     ap.add_argument("--shares", default="0.5,0.6,0.7",
                     help="shares of the level tried by the calibrate section")
+    ap.add_argument("--rule-paths", type=int, default=2000,
+                    help="simulated paths per row of the rule section")
+    ap.add_argument("--progress", type=int, default=0, metavar="N",
+                    help="print the counts so far every N gates of a rates row")
+    ap.add_argument("--null-cache", default=None, metavar="FILE",
+                    help="keep the resistant statistic's seeded null paths (the gate's "
+                         "boundaries, identical values) in this .npy file, so chunks run as "
+                         "separate processes compute them once")
     ap.add_argument("--setting", action="append", default=[], metavar="NAME=VALUE",
                     help="override one GateSettings field (a number), e.g. "
                          "level_calibration=0.6")
     args = ap.parse_args(argv)
+    if args.null_cache:
+        use_null_cache(args.null_cache)
     tol = args.tolerance
     extra = {}
     for item in args.setting:
@@ -241,7 +315,7 @@ def main(argv=None) -> int:
                     ratios = tuple(float(r) for r in args.ratios.split(","))
                 for ratio in ratios:
                     r = scenario(f"cv{cv}", ratio, cv, G, st, outliers=outliers,
-                                 seed0=7919 * args.first_gate)
+                                 seed0=7919 * args.first_gate, progress=args.progress)
                     v, n = r["verdicts"], r["gates"]
                     passed = v["no_regression"] + v["improvement"]
                     print(f"  {outliers:>8.0%}  {ratio:>10.2f}  "
@@ -250,6 +324,12 @@ def main(argv=None) -> int:
                           f"{r['mean_runs']:9.2f}  {r['mean_runs'] / nfix:8.0%}   "
                           f"({r['seconds']:.0f} s)", flush=True)
             print()
+
+    if "rule" in sections:
+        rule_rates(st, [float(c) for c in args.cvs.split(",")],
+                   [float(o) for o in args.outliers.split(",")],
+                   [float(r) for r in (args.ratios or f"{1 + tol}").split(",")],
+                   args.rule_paths)
 
     if "calibrate" in sections:
         calibrate(st, [float(c) for c in args.calibrate_cvs.split(",")],
