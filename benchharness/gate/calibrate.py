@@ -189,7 +189,7 @@ def gate_rule_outcomes(mu, se, settings, shift: float = 0.0):
     every block (`null_paths_at_boundary`); ``shift`` moves the true log ratio
     (0: at the boundary). Unlike `boundary_false_fail` (boundaries of a horizon
     fixed from the start), each path is judged look by look with the gate's
-    horizon code (`benchharness.gate.decide._look_horizon`) and a
+    horizon code (`benchharness.gate.decide.planned_horizon`) and a
     `SpendingTracker` that counts what earlier looks of that path really
     spent; paths whose horizons agree so far share one record. Returns
     ``(verdicts, stopped_at)``: arrays of "regression", "pass" or
@@ -201,7 +201,6 @@ def gate_rule_outcomes(mu, se, settings, shift: float = 0.0):
 
     from benchharness.gate import decide
 
-    design = settings.design(1)
     thr = settings.threshold_log
     paths = mu.shape[1]
     mu = mu + shift
@@ -215,9 +214,8 @@ def gate_rule_outcomes(mu, se, settings, shift: float = 0.0):
         for key, (tracker, ids) in groups.items():
             by_horizon: dict[tuple[int, bool], list[int]] = {}
             for i in ids:
-                look = decide._Look(settings, design, n, n, float(mu[n, i]), float(sd[i]),
-                                    0, 0, 0, 0)
-                horizon = decide._look_horizon(look, settings, design, states[i])
+                horizon = decide.planned_horizon(float(mu[n, i]), float(sd[i]), n, settings,
+                                                 states[i])
                 final = n >= settings.max_runs or n >= horizon
                 by_horizon.setdefault((horizon, final), []).append(i)
             for (horizon, final), members in by_horizon.items():
@@ -247,6 +245,6 @@ def gate_rule_outcomes(mu, se, settings, shift: float = 0.0):
 
 
 class _PathState:
-    """The per-workload state `decide._plan_sd` keeps on a tracker (the ratchet)."""
+    """The per-workload state the gate keeps on a tracker between looks (the ratchet)."""
 
     plan_sd = 0.0

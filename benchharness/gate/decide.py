@@ -342,6 +342,16 @@ def _look_horizon(look: _Look, settings: GateSettings, design: SequentialDesign,
     return horizon
 
 
+def planned_horizon(mean: float, sd: float, n: int, settings: GateSettings, state,
+                    workloads: int = 1) -> int:
+    """The horizon the gate plans at a look with ``n`` usable blocks, location ``mean``
+    and noise ``sd``; ``state`` keeps the pilot's ratchet (``plan_sd``) between looks
+    as the workload's tracker does. Used to simulate the rule (`benchharness.gate.calibrate`).
+    """
+    look = _Look(settings, settings.design(workloads), n, n, mean, sd, 0, 0, 0, 0)
+    return _look_horizon(look, settings, look.design, state)
+
+
 def _bounds_verdict(look: _Look, settings: GateSettings, design: SequentialDesign,
                     tracker) -> Judgement:
     """The repeated bounds at this look and what they say (sd > 0 here)."""
