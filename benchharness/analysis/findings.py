@@ -182,7 +182,6 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     form) and ``critical`` (the quantile ``d``).
     """
     import numpy as np
-    from benchharness.analysis import dist as stats
 
     from benchharness.analysis import transform as tr
     from benchharness.analysis.effects import margin_estimates, margin_rows
@@ -192,10 +191,7 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
     combos, est, se, ok = margin_estimates(fit, tuple(setting_idx))   # bounded memory
     if combos is None:
         return None
-    keep = np.flatnonzero(ok & np.isfinite(est))
-    if ran is not None:
-        keep = np.array([i for i in keep if tuple(int(c) for c in combos[i]) in ran],
-                        dtype=np.int64)
+    keep = _estimable_cells(combos, est, ok, ran)
     if len(keep) == 0:
         return None
     sign = -1.0 if better == "higher" else 1.0      # smaller "badness" is better
@@ -209,22 +205,45 @@ def best_cells(fit, names, levels, setting_idx, choice, alpha: float, better: st
            "tested": False, "response": response, "cells_total": int(k)}
     if k < 2:
         return out
+    Lk = margin_rows(fit, tuple(setting_idx), combos[order[:MAX_CELLS_LISTED]])[1]
+    _ties_and_margins(fit, Lk, sign * est[order], k, alpha, choice, out)
+    return out
+
+
+def _estimable_cells(combos, est, ok, ran):
+    """Indices of the cells with a finite estimate, kept to the combinations in ``ran``."""
+    import numpy as np
+
+    keep = np.flatnonzero(ok & np.isfinite(est))
+    if ran is not None:
+        keep = np.array([i for i in keep if tuple(int(c) for c in combos[i]) in ran],
+                        dtype=np.int64)
+    return keep
+
+
+def _ties_and_margins(fit, Lk, bad, k: int, alpha: float, choice, out: dict) -> None:
+    """Fill ``out``'s critical value, tied set, runner-up and best cell outside the ties.
+
+    ``bad`` is the ordered "badness" (smaller is better) of the ``k`` cells, ``Lk`` the
+    contrast rows of the listed ones; the ties use the Bonferroni-adjusted t quantile
+    over the ``k - 1`` comparisons with the best.
+    """
+    from benchharness.analysis import dist as stats
+
     have_error = fit.df_resid > 0 and math.isfinite(fit.mse) and fit.mse > 0
     d = float(stats.t.ppf(1 - alpha / (2 * (k - 1)), fit.df_resid)) if have_error else None
     out["critical"] = d
-    Lk = margin_rows(fit, tuple(setting_idx), combos[order[:MAX_CELLS_LISTED]])[1]
     best = 0
     if have_error and k <= MAX_CELLS_FOR_TIES:
-        out["tied"] = _tested_ties(fit, Lk, sign * est[order], d, k)
+        out["tied"] = _tested_ties(fit, Lk, bad, d, k)
         out["tested"] = True
     elif not have_error:
-        out["tied"] = _exact_ties(sign * est[order[:MAX_CELLS_LISTED]])
+        out["tied"] = _exact_ties(bad[:MAX_CELLS_LISTED])
 
     out["runner_up"] = _against_best(fit, Lk, 1, best, choice, have_error, d, out)
     outside = [i for i in range(1, min(k, MAX_CELLS_LISTED)) if i not in out["tied"]]
     if out["tested"] and outside and outside[0] != 1:
         out["outside"] = _against_best(fit, Lk, outside[0], best, choice, have_error, d, out)
-    return out
 
 
 def _num(x):
@@ -274,11 +293,7 @@ def derive(d: dict) -> list[dict]:
     """
     alpha = float(d.get("alpha") or 0.05)
     conf = f"{round((1 - alpha) * 100):g}%"
-    factors = [f["name"] if isinstance(f, dict) else str(f) for f in d.get("factors") or []]
-    refs = (d.get("model") or {}).get("references") or {}
-    comps = d.get("comparisons") or []
-    rows = [r for r in d.get("anova") or []
-            if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
+    factors, refs, comps, rows = _terms_read(d)
     if ((d.get("model") or {}).get("no_variation") or {}).get("kind") == "constant":
         return _cautions(d)[:1]   # every run the same: that is the whole finding
     out = list((d.get("surface") or {}).get("findings") or [])   # analysis/surface.py
@@ -294,6 +309,16 @@ def derive(d: dict) -> list[dict]:
         out.append(_best_with_unrun(best, conf))
     out += _cautions(d)
     return out
+
+
+def _terms_read(d: dict):
+    """The factor names, reference levels, comparisons and effect rows of the ANOVA in ``d``."""
+    factors = [f["name"] if isinstance(f, dict) else str(f) for f in d.get("factors") or []]
+    refs = (d.get("model") or {}).get("references") or {}
+    comps = d.get("comparisons") or []
+    rows = [r for r in d.get("anova") or []
+            if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
+    return factors, refs, comps, rows
 
 
 def numeric_findings(d: dict) -> list[dict]:
