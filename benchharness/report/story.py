@@ -139,36 +139,51 @@ def headline(found: list[dict]) -> str | None:
 
     parts, nothing, untested = [], [], []
     numeric = numeric_clauses(found)
+    lists = {"said": parts, "nothing": nothing, "untested": untested}
     for f in found:
-        if f["kind"] == "main" and f["factors"][0] in numeric:
-            said = numeric.pop(f["factors"][0])    # its trend says more than its labels
-            parts.append(f"{f['terms'][0]} matters: {said}" if f["significant"] else said)
-        elif f["kind"] == "interaction":
-            per = f.get("per_level") or []
-            names = " and ".join(f["factors"]) if len(f["factors"]) == 2 else _and(f["factors"])
-            alias = ""
-            if f.get("aliased"):
-                alias = (f" (or {_and(f['aliased'])}: the fraction cannot tell "
-                         f"{f['terms'][0].split(' (')[0]} from {_and(f['aliased'])})")
-            short = _interaction_clause(f, found, fr, fi)
-            parts.append(f"{names} interact{alias}" + (f" ({short})" if short else ""))
-        elif f["kind"] == "main":
-            if f["significant"]:
-                lead = f"{f['terms'][0]} matters"
-                if f.get("ratio") is not None:
-                    lead += (f" ({f['factors'][0]}={f['level']} {fr(f['ratio'])} "
-                             f"{fi(f.get('lower'), f.get('upper'))} against "
-                             f"{f['factors'][0]}={f['reference']})")
-                parts.append(lead)
-            elif f.get("untested"):
-                untested.append(f["terms"][0])
-            elif f["significant"] is None:
-                continue    # in a larger significant interaction, stated there
-            else:
-                nothing.append(f["terms"][0])
+        where, clause = _headline_clause(f, found, numeric, fr, fi)
+        if where:
+            lists[where].append(clause)
     parts += numeric.values()     # trends of factors with no main-effect finding
     if not parts and not nothing and not untested:
         return None
+    return _headline_sentence(parts, nothing, untested)
+
+
+def _headline_clause(f: dict, found: list[dict], numeric: dict[str, str], fr, fi):
+    """(list, clause) one finding adds to the headline: ``said``, ``nothing`` (made no
+    detectable difference) or ``untested``; (None, None) when it adds nothing. A numeric
+    factor's trend words are taken out of ``numeric`` when its main finding says them."""
+    if f["kind"] == "main" and f["factors"][0] in numeric:
+        said = numeric.pop(f["factors"][0])    # its trend says more than its labels
+        return "said", (f"{f['terms'][0]} matters: {said}" if f["significant"] else said)
+    if f["kind"] == "interaction":
+        names = " and ".join(f["factors"]) if len(f["factors"]) == 2 else _and(f["factors"])
+        alias = ""
+        if f.get("aliased"):
+            alias = (f" (or {_and(f['aliased'])}: the fraction cannot tell "
+                     f"{f['terms'][0].split(' (')[0]} from {_and(f['aliased'])})")
+        short = _interaction_clause(f, found, fr, fi)
+        return "said", f"{names} interact{alias}" + (f" ({short})" if short else "")
+    if f["kind"] != "main":
+        return None, None
+    if f["significant"]:
+        lead = f"{f['terms'][0]} matters"
+        if f.get("ratio") is not None:
+            lead += (f" ({f['factors'][0]}={f['level']} {fr(f['ratio'])} "
+                     f"{fi(f.get('lower'), f.get('upper'))} against "
+                     f"{f['factors'][0]}={f['reference']})")
+        return "said", lead
+    if f.get("untested"):
+        return "untested", f["terms"][0]
+    if f["significant"] is None:
+        return None, None    # in a larger significant interaction, stated there
+    return "nothing", f["terms"][0]
+
+
+def _headline_sentence(parts: list[str], nothing: list[str], untested: list[str]) -> str:
+    """The headline's sentence from what matters, what made no difference and what could
+    not be tested."""
     text = "; ".join(parts)
     if nothing:
         if parts:
