@@ -44,6 +44,14 @@ def trends(prep, alpha: float, anova_rows, roles: dict | None = None,
         return [{"factor": f, "skipped": f"more than {MAX_CELLS:,} cells: the trend is fitted "
                  "only on smaller experiments", "source": q["source"]}
                 for f, q in quantities.items()]
+    return _fitted_trends(prep, cd, quantities, names, levels, alpha, anova_rows, roles,
+                          better) or None
+
+
+def _fitted_trends(prep, cd, quantities: dict, names, levels: dict, alpha: float, anova_rows,
+                   roles: dict | None, better: str) -> list[dict]:
+    """The trend (and, for a parallel factor, the scaling) of each quantity that varies
+    over the observed cells ``cd``, its level codes replaced by labels."""
     sizes = [len(lv) for lv in prep.levels]
     sat = tn.saturated(cd)
     importance = {r["term"]: r.get("partial_eta_sq") for r in anova_rows or []}
@@ -63,7 +71,7 @@ def trends(prep, alpha: float, anova_rows, roles: dict | None = None,
             t["scaling"] = scaling(cd, j, q["values"], names, levels, sizes, alpha, sat,
                                    t["line_by"], better)
         out.append(t)
-    return out or None
+    return out
 
 
 def response_surface(experiment) -> bool:
