@@ -71,31 +71,36 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
                         for s in b["slopes"])
         text += (f"; the exponent differs with {b['factor']} ({_p_text(b['test']['p'])}): "
                  + per)
-    if bends and t.get("scaling") and _amdahl_fits(t["scaling"], alpha):
-        text += (f"; the points bend away from a straight line on log-log axes (lack of fit "
-                 f"{_p_text(lof['p'])}), as they do when part of the work is serial: see the "
-                 "speed-up and the serial fraction")
-    elif bends and t.get("scaling"):
-        text += (f"; the points bend away from a straight line on log-log axes (lack of fit "
-                 f"{_p_text(lof['p'])}), and not only as a serial part of the work would bend "
-                 "them (Amdahl's law does not fit either): see the speed-up of each level")
-    elif bends:
-        text += (f"; the points do not lie on a straight line on log-log axes (lack of fit "
-                 f"{_p_text(lof['p'])}), so the exponent is an average over the levels "
-                 f"tested, not a law to extrapolate")
-    elif lof:
-        text += f"; a power law fits these levels (lack of fit {_p_text(lof['p'])})"
-    elif len(t.get("levels") or []) <= 2:
-        text += "; with two levels the shape between them cannot be checked"
-    else:
-        text += ("; whether a power law fits cannot be checked without repeated runs of a "
-                 "cell (no pure error to judge the lack of fit by)")
+    text += _shape_text(t, lof, bends, alpha)
     return {"kind": "trend", "terms": [name], "factors": [name], "significant": sig,
             "exponent": slope["estimate"], "lower": slope.get("lower"),
             "upper": slope.get("upper"), "p": slope.get("p"),
             "differs_with": [b["factor"] for b in differ], "lack_of_fit": bends,
             "parallel": bool(t.get("scaling")),
             "headline": bool(t.get("headline")), "short": short, "statement": text}
+
+
+def _shape_text(t: dict, lof: dict | None, bends: bool, alpha: float) -> str:
+    """The trend statement's last clause: whether a power law fits the levels (the lack of
+    fit against pure error), and for a parallel factor whether a serial part explains a bend."""
+    if bends and t.get("scaling") and _amdahl_fits(t["scaling"], alpha):
+        return (f"; the points bend away from a straight line on log-log axes (lack of fit "
+                f"{_p_text(lof['p'])}), as they do when part of the work is serial: see the "
+                "speed-up and the serial fraction")
+    if bends and t.get("scaling"):
+        return (f"; the points bend away from a straight line on log-log axes (lack of fit "
+                f"{_p_text(lof['p'])}), and not only as a serial part of the work would bend "
+                "them (Amdahl's law does not fit either): see the speed-up of each level")
+    if bends:
+        return (f"; the points do not lie on a straight line on log-log axes (lack of fit "
+                f"{_p_text(lof['p'])}), so the exponent is an average over the levels "
+                f"tested, not a law to extrapolate")
+    if lof:
+        return f"; a power law fits these levels (lack of fit {_p_text(lof['p'])})"
+    if len(t.get("levels") or []) <= 2:
+        return "; with two levels the shape between them cannot be checked"
+    return ("; whether a power law fits cannot be checked without repeated runs of a "
+            "cell (no pure error to judge the lack of fit by)")
 
 
 def _amdahl_fits(sc: dict, alpha: float) -> bool:
