@@ -95,16 +95,26 @@ def declared_numeric(experiment) -> dict[str, str]:
     Raises `ExperimentError` at ``FILE:LINE:COL`` for an unknown factor, an
     unknown kind, or levels that cannot be what is declared.
     """
-    import yaml
-
-    from benchharness.experiment.yamlnodes import (is_null, mapping_items, node_error,
-                                                   scalar_text, suggest)
+    from benchharness.experiment.yamlnodes import is_null
 
     node = (getattr(experiment, "sections", None) or {}).get("numeric")
     if node is None or is_null(node):
         return {}
     path = getattr(experiment, "path", None)
     factors = {f.name: f for f in experiment.factors}
+    out: dict[str, str] = {}
+    for name, knode, kind, vnode in _numeric_items(node, path):
+        out[name] = _checked_kind(name, knode, kind, vnode, factors, out, path)
+    return out
+
+
+def _numeric_items(node, path) -> list[tuple]:
+    """The ``numeric:`` section's entries as (factor, key node, kind as written, value node):
+    a list means ``yes`` for each factor named; a mapping gives each factor its kind."""
+    import yaml
+
+    from benchharness.experiment.yamlnodes import is_null, mapping_items, node_error, scalar_text
+
     items = []
     if isinstance(node, yaml.SequenceNode):
         for item in node.value:
@@ -116,32 +126,38 @@ def declared_numeric(experiment) -> dict[str, str]:
     else:
         raise node_error(node, "'numeric' lists the factors that are quantities, e.g. "
                                "numeric: {n: yes, threads: parallel}", path)
-    out: dict[str, str] = {}
-    for name, knode, kind, vnode in items:
-        if name not in factors:
-            hint = suggest(name, factors)
-            hint = hint if hint.startswith("did you") else "factors: " + ", ".join(factors)
-            raise node_error(knode, f"'numeric' names {name!r}, which is not a factor; {hint}",
-                             path)
-        if name in out:
-            raise node_error(knode, f"'numeric' names {name!r} twice; name each factor once",
-                             path)
-        kind = "yes" if kind in _YES else "no" if kind in _NO else kind
-        if kind not in KINDS:
-            raise node_error(vnode, f"'numeric: {name}' is {kind!r}; use yes, no or parallel",
-                             path)
-        labels = list(factors[name].labels)
-        values = level_values(labels)
-        if kind != "no" and values is None:
-            raise node_error(knode, f"factor {name!r} is declared numeric but its levels "
-                             f"({', '.join(labels)}) are not all distinct numbers; give numbers "
-                             "or write no", path)
-        if kind == "parallel" and min(values) <= 0:
-            raise node_error(knode, f"factor {name!r} is declared parallel but has a level "
-                             f"{labels[values.index(min(values))]} that is not a positive count; "
-                             "give counts of 1 or more", path)
-        out[name] = kind
-    return out
+    return items
+
+
+def _checked_kind(name: str, knode, kind: str, vnode, factors: dict, seen: dict,
+                  path) -> str:
+    """One entry's kind (``yes``, ``no`` or ``parallel``), checked against the factor it
+    names and that factor's levels; raises `ExperimentError` at the entry otherwise."""
+    from benchharness.experiment.yamlnodes import node_error, suggest
+
+    if name not in factors:
+        hint = suggest(name, factors)
+        hint = hint if hint.startswith("did you") else "factors: " + ", ".join(factors)
+        raise node_error(knode, f"'numeric' names {name!r}, which is not a factor; {hint}",
+                         path)
+    if name in seen:
+        raise node_error(knode, f"'numeric' names {name!r} twice; name each factor once",
+                         path)
+    kind = "yes" if kind in _YES else "no" if kind in _NO else kind
+    if kind not in KINDS:
+        raise node_error(vnode, f"'numeric: {name}' is {kind!r}; use yes, no or parallel",
+                         path)
+    labels = list(factors[name].labels)
+    values = level_values(labels)
+    if kind != "no" and values is None:
+        raise node_error(knode, f"factor {name!r} is declared numeric but its levels "
+                         f"({', '.join(labels)}) are not all distinct numbers; give numbers "
+                         "or write no", path)
+    if kind == "parallel" and min(values) <= 0:
+        raise node_error(knode, f"factor {name!r} is declared parallel but has a level "
+                         f"{labels[values.index(min(values))]} that is not a positive count; "
+                         "give counts of 1 or more", path)
+    return kind
 
 
 def numeric_factors(experiment=None, names=(), levels=None) -> dict[str, dict]:
