@@ -147,41 +147,54 @@ def pair_rows(fit, factors, ca, cb):
     extrapolated. A factor nested in ``factors`` is not matched between the two: each side
     averages over its own levels of it (``transport=udp``, where ``ack`` does not apply,
     against ``transport=tcp`` averaged over its acks), as `margin_plan` does for a mean."""
-    from benchharness.analysis.model import design
-
     sup: Support = fit.support
     M = list(factors)
     others = [f for f in range(sup.nf) if f not in M]
     kids = [f for f in others if f in sup.nested and set(sup.nested[f]) <= set(M)]
     cross = [f for f in others if f not in kids]
-    cells = sup.cells
-    have: dict[tuple, dict[tuple, set]] = {}
-    for c in (tuple(ca), tuple(cb)):
-        rows = cells[np.all(cells[:, M] == np.asarray(c), axis=1)]
-        have[c] = {}
-        for x, k in zip(map(tuple, rows[:, cross].tolist()), map(tuple, rows[:, kids].tolist())):
-            have[c].setdefault(x, set()).add(k)
+    have = {c: _ran_with(sup.cells, M, cross, kids, c) for c in (tuple(ca), tuple(cb))}
     common = sorted(set(have[tuple(ca)]) & set(have[tuple(cb)]))
     if not common:
         return None, None, [], cross
-    block_cols = [fit.slices[t.name] for t in fit.terms if t.is_block]
     out = []
     for c in (ca, cb):
-        # the nested factor's levels this side has with every common combination
-        ks = sorted(set.intersection(*(have[tuple(c)][x] for x in common)))
-        if not ks:
+        row = _side_row(fit, M, cross, kids, c, common, have[tuple(c)])
+        if row is None:
             return None, None, [], cross
-        pairs = [(x, k) for x in common for k in ks]
-        lv = np.zeros((len(pairs), len(fit.sizes)), dtype=np.int64)
-        lv[:, M] = c
-        lv[:, cross] = np.asarray([x for x, _ in pairs], dtype=np.int64).reshape(len(pairs), -1)
-        lv[:, kids] = np.asarray([k for _, k in pairs], dtype=np.int64).reshape(len(pairs), -1)
-        X, _ = design(lv, fit.terms, fit.sizes)
-        row = X.mean(axis=0)
-        for sl in block_cols:
-            row[sl] = 0.0
         out.append(row)
     return out[0], out[1], common, cross
+
+
+def _ran_with(cells, M, cross, kids, c) -> dict[tuple, set]:
+    """For the combination ``c`` of the factors ``M``: the crossed factors' combinations it
+    ran with, each with the set of nested factors' combinations it ran at."""
+    have: dict[tuple, set] = {}
+    rows = cells[np.all(cells[:, M] == np.asarray(c), axis=1)]
+    for x, k in zip(map(tuple, rows[:, cross].tolist()), map(tuple, rows[:, kids].tolist())):
+        have.setdefault(x, set()).add(k)
+    return have
+
+
+def _side_row(fit, M, cross, kids, c, common, have_c):
+    """The averaging row of one side ``c`` over the ``common`` crossed combinations and
+    the nested levels it has with every one of them (block columns zeroed); None when it
+    has no nested level in common with them all."""
+    from benchharness.analysis.model import design
+
+    # the nested factor's levels this side has with every common combination
+    ks = sorted(set.intersection(*(have_c[x] for x in common)))
+    if not ks:
+        return None
+    pairs = [(x, k) for x in common for k in ks]
+    lv = np.zeros((len(pairs), len(fit.sizes)), dtype=np.int64)
+    lv[:, M] = c
+    lv[:, cross] = np.asarray([x for x, _ in pairs], dtype=np.int64).reshape(len(pairs), -1)
+    lv[:, kids] = np.asarray([k for _, k in pairs], dtype=np.int64).reshape(len(pairs), -1)
+    X, _ = design(lv, fit.terms, fit.sizes)
+    row = X.mean(axis=0)
+    for sl in (fit.slices[t.name] for t in fit.terms if t.is_block):
+        row[sl] = 0.0
+    return row
 
 
 def where_both_ran(over, left_out=None) -> str:
