@@ -93,10 +93,9 @@ def _ok(x) -> bool:
 def trend_figure(data, trend: dict):
     """Log-log figure of one trend (a `report.drawing.Figure`), or None without points."""
     import numpy as np
-    from matplotlib.ticker import NullLocator
 
-    from benchharness.report.drawing import PALETTE, log_ticks, new_figure, render_figure
-    from benchharness.report.units import axis_label, display_scale
+    from benchharness.report.drawing import new_figure, render_figure
+    from benchharness.report.units import display_scale
 
     pts = [p for p in trend.get("points") or [] if _ok(p.get("mean")) and p["mean"] > 0]
     if len(pts) < 2 or not trend.get("log_log"):
@@ -105,6 +104,22 @@ def trend_figure(data, trend: dict):
     mult, unit = display_scale(data.response, float(np.median([p["mean"] for p in pts])))
     fig = new_figure(6.4, 4.2)
     ax = fig.subplots()
+    groups = _draw_lines(ax, trend, pts, value, mult)
+    _log_axes(ax, data, trend, value, unit)
+    if len(groups) > 1:
+        ax.legend(fontsize=8.5, loc="best")
+    ax.set_title(_trend_title(data, trend), fontsize=10)
+    return render_figure(fig, section_id(trend), f"Trend over {trend['factor']}",
+                         _trend_caption(data, trend), section_id(trend))
+
+
+def _draw_lines(ax, trend: dict, pts: list[dict], value: dict, mult: float) -> list:
+    """One line of geometric means with interval bars per level of ``line_by`` (its fitted
+    law dashed beside it); returns the levels drawn, in order."""
+    import numpy as np
+
+    from benchharness.report.drawing import PALETTE
+
     groups = list(dict.fromkeys(p["by"] for p in pts))
     for k, g in enumerate(groups):
         mine = sorted((p for p in pts if p["by"] == g), key=lambda p: value[p["level"]])
@@ -116,6 +131,16 @@ def trend_figure(data, trend: dict):
         ax.errorbar(xs, ms, yerr=np.vstack([ms - lo, hi - ms]), color=PALETTE[k % 8],
                     marker="o", ms=5, lw=1.6, capsize=3, label=label)
         _fitted_line(ax, trend, xs, ms)
+    return groups
+
+
+def _log_axes(ax, data, trend: dict, value: dict, unit) -> None:
+    """Log-log axes: the factor's levels as the x ticks, decades on y, both labelled."""
+    from matplotlib.ticker import NullLocator
+
+    from benchharness.report.drawing import log_ticks
+    from benchharness.report.units import axis_label
+
     ax.set_xscale("log")
     ax.set_yscale("log")
     xs_all = sorted(value.values())
@@ -126,8 +151,11 @@ def trend_figure(data, trend: dict):
     log_ticks(ax.yaxis, lo_y, hi_y)
     ax.set_xlabel(f"{trend['factor']} (log axis)")
     ax.set_ylabel("geometric mean " + axis_label(data.response, unit) + " — log axis")
-    if len(groups) > 1:
-        ax.legend(fontsize=8.5, loc="best")
+
+
+def _trend_title(data, trend: dict) -> str:
+    """The figure's title with the exponent: the range of slopes when it differs with the
+    lines' factor, else the common slope."""
     slope = trend.get("slope") or {}
     title = f"{data.response} against {trend['factor']}"
     per = [b for b in trend.get("by") or [] if b.get("factor") == trend.get("line_by")]
@@ -137,20 +165,23 @@ def trend_figure(data, trend: dict):
                   if ests else "")
     elif _ok(slope.get("estimate")):
         title += f": slope {slope['estimate']:.2f}"
-    ax.set_title(title, fontsize=10)
-    cap = (f"Geometric mean of {data.response} at each {trend['factor']} with its "
-           f"{_conf(data)} interval, on log-log axes"
-           + (f", one line per level of {trend['line_by']} ("
-              + ("the factor the exponent differs with"
-                 if trend.get("line_by_reason") == "exponent differs" else
-                 "the factor with the largest effect besides it") + ")"
-              if trend.get("line_by") else "")
-           + ". A straight line is a power law; its slope is the exponent. Dashed: "
-           + ("Amdahl's law with the fitted serial fraction, through each line's points."
-              if (trend.get("scaling") or {}).get("serial_fraction") else
-              "the fitted common slope through each line's points."))
-    return render_figure(fig, section_id(trend), f"Trend over {trend['factor']}", cap,
-                         section_id(trend))
+    return title
+
+
+def _trend_caption(data, trend: dict) -> str:
+    """The figure's caption: what is drawn, why the lines are split as they are, and what
+    the dashed line is."""
+    return (f"Geometric mean of {data.response} at each {trend['factor']} with its "
+            f"{_conf(data)} interval, on log-log axes"
+            + (f", one line per level of {trend['line_by']} ("
+               + ("the factor the exponent differs with"
+                  if trend.get("line_by_reason") == "exponent differs" else
+                  "the factor with the largest effect besides it") + ")"
+               if trend.get("line_by") else "")
+            + ". A straight line is a power law; its slope is the exponent. Dashed: "
+            + ("Amdahl's law with the fitted serial fraction, through each line's points."
+               if (trend.get("scaling") or {}).get("serial_fraction") else
+               "the fitted common slope through each line's points."))
 
 
 def _fitted_line(ax, trend: dict, xs, ms) -> None:
