@@ -109,16 +109,19 @@ def test_the_scaling_demo_runs_end_to_end_and_recovers_its_formula(cli, tmp_path
     out = tmp_path / "demo"
     r = cli("run", "experiments/thread-scaling.yaml", "--out", out)
     assert r.returncode == 0, r.stderr
-    a = cli("analyze", out, "--response", "work_s", "--json")
+    # the file's response: work_s is what run analysed and what analyze reads by default
+    assert json.loads((out / "analysis.json").read_text())["response"] == "work_s"
+    a = cli("analyze", out, "--json")
     assert a.returncode == 0, a.stderr
     d = json.loads(a.stdout)
+    assert d["response"] == "work_s"
     rec = next(t for t in d["trends"] if t["factor"] == "records")
     # the workload's formula: work grows as records^1.25, 10% of it serial; a busy machine
     # wakes the threads late, which adds serial time (0.13 at load 14), so the bounds are wide
     assert rec["slope"]["estimate"] == pytest.approx(1.25, abs=0.12)
     th = next(t for t in d["trends"] if t["factor"] == "threads")
     assert 0.07 < th["scaling"]["serial_fraction"]["estimate"] < 0.16
-    rep = cli("report", out, "--response", "work_s")
+    rep = cli("report", out)
     assert rep.returncode == 0, rep.stderr
     assert (out / "figures" / "trend-threads.png").exists()
     assert "## Trend over records" in (out / "report.md").read_text()

@@ -29,11 +29,14 @@ __all__ = ["analyze", "Analysis", "analyze_results_folder", "write_analysis_json
            "format_analysis"]
 
 
-def analyze(data, response: str = "wall_s", factors=None, block=None, transform="auto",
+def analyze(data, response: str | None = None, factors=None, block=None, transform="auto",
             model=None, ss_type: int = 2, alpha: float = 0.05, reference=None,
             adjust: str = "bonferroni", compare=None, art="auto",
             comparisons=True, better=None) -> "Analysis":
     """Analyse a runs table (DataFrame, tidy CSV path or results folder).
+
+    ``response``: the column analysed; default (None) the experiment file's
+    ``response:`` key, else ``wall_s`` (``experiment.response``).
 
     ``block``: a column name; None (or "auto") for the default (``block`` for
     blocked experiments, ``host`` when it has more than one value); False for none.

@@ -104,13 +104,18 @@ def _code(series, listed: Sequence[str] | None, name: str):
     return codes.astype(np.int64), tuple(str(u) for u in uniques)
 
 
-def prepare(data, response="wall_s", factors=None, block=None) -> Prepared:
+def prepare(data, response=None, factors=None, block=None) -> Prepared:
     """Load and code a runs table.
 
     ``block``: None or "auto" picks the default block column (``block`` for blocked
     experiments, ``host`` when it has more than one value); False means no block.
+    ``response``: None for the experiment file's ``response:``, else ``wall_s``.
     """
     df, exp = load_source(data, factors)
+    if response is None:
+        from benchharness.experiment.response import default_response
+
+        response = default_response(exp)
     factors = _factor_list(factors, exp)
     _check_columns(df, factors, response)
     notes = list(getattr(df, "attrs", {}).get("journal_notes", ()))

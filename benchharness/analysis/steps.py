@@ -81,7 +81,7 @@ class Fitted:
     no_variation: dict | None
 
 
-def run_analysis(data, response="wall_s", factors=None, block=None, transform="auto",
+def run_analysis(data, response=None, factors=None, block=None, transform="auto",
                  model=None, ss_type=2, alpha=0.05, reference=None, adjust="bonferroni",
                  compare=None, art="auto", comparisons=True, better=None):
     """The work of `analyze` (same arguments), step by step."""

@@ -242,7 +242,8 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     Settings from the experiment's ``choose:`` section fill whatever is not
     given here: ``across``/``also`` left as None come from the section (an
     empty list means none); pass ``response=None`` / ``confidence=None`` to
-    take those from the section too (else ``wall_s`` and 0.95). ``prefer`` is
+    take those from the section too (the response: else the file's top-level
+    ``response:``, else ``wall_s``; the confidence else 0.95). ``prefer`` is
     merged over the section's. ``block``: None/"auto" fits the default block
     term (``block`` for ``order: blocked`` experiments, ``host`` when the runs
     span several hosts), a column name fits that one, False fits none.
@@ -263,7 +264,8 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
 
     factors_list = _as_list(factors) or None
     df, experiment = load_source(data, factors_list)
-    ask = _asked(choose_settings(experiment), response, confidence, across, also, within,
+    ask = _asked(_with_file_response(choose_settings(experiment), experiment), response,
+                 confidence, across, also, within,
                  limits, prefer)
     response, confidence = ask.response, ask.confidence
     factors_list, role_info, across, control = _factors_and_roles(
@@ -405,6 +407,17 @@ class _Asked:
     within: float
     limits: list
     prefer: dict
+
+
+def _with_file_response(section, experiment) -> dict:
+    """The ``choose:`` section with the experiment file's ``response:`` as the response
+    when the section names none (precedence: the call, the section, the file, wall_s)."""
+    if "response" in section or experiment is None:
+        return section
+    from benchharness.experiment.response import declared_response
+
+    declared = declared_response(experiment)
+    return section if declared is None else {**section, "response": declared}
 
 
 def _asked(section, response, confidence, across, also, within, limits, prefer) -> _Asked:

@@ -24,7 +24,8 @@ def add_parser(sub) -> None:
             "analysis as one JSON document"))
     p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV file")
     p.add_argument("--response", default=None, metavar="NAME",
-                   help="column to analyse (default wall_s; for a gate's folder, the response "
+                   help="column to analyse (default: the experiment file's response:, else wall_s; "
+                        "for a gate's folder, the response "
                         "the gate compared)")
     p.add_argument("--factors", metavar="A,B", default=None,
                    help="comma-separated factor columns (default: the experiment's factors; "
@@ -117,11 +118,19 @@ def _factor_list(text: str | None) -> list[str] | None:
 
 
 def _response(args, folder_res) -> str:
-    """The response to analyse: --response, else what a gate's folder compared, else wall_s."""
+    """The response to analyse: --response, else what a gate's folder compared, else the
+    experiment file's ``response:``, else wall_s."""
     if args.response is not None:
         return args.response
     response = gate_response(args.source) if folder_res is not None else None
     if response is None:
+        from benchharness.experiment.response import declared_response
+
+        declared = declared_response(folder_res.experiment) if folder_res is not None else None
+        if declared is not None:
+            print(f"analysing {declared}, the response the experiment file names "
+                  "(--response to choose another)", file=sys.stderr)
+            return declared
         return "wall_s"
     print(f"analysing {response}, the response this gate compared "
           "(--response to choose another)", file=sys.stderr)

@@ -33,7 +33,8 @@ def add_parser(subparsers):
     )
     p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV of runs")
     p.add_argument("--response", default=None, metavar="NAME",
-                   help="response column to choose on (default: choose.response or wall_s)")
+                   help="response column to choose on (default: choose.response, else the file's "
+                        "response:, else wall_s)")
     p.add_argument("--factors", default=None, metavar="A,B",
                    help="factor columns (needed for a CSV without an experiment file)")
     p.add_argument("--across", default=None, metavar="F,...",

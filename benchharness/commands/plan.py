@@ -145,6 +145,12 @@ def format_plan(exp, plan, show: int = 12) -> str:
     from benchharness.experiment.quantities import plan_lines
 
     lines += plan_lines(exp)     # numeric factors: trends and scaling
+    from benchharness.experiment.response import declared_response
+
+    declared = declared_response(exp)
+    if declared is not None:
+        lines.append(f"response    {declared} (analysed by run, analyze, report and choose; "
+                     "--response to ask about another)")
     seed_note = "" if exp.seed is not None else " (drawn now; set seed: in the file to fix it)"
     lines.append(f"cells       {plan.cells}")
     lines.append(f"timed runs  {plan.timed_runs} ({exp.replicates} per cell)")

@@ -66,6 +66,7 @@ def _analyse(res):
 
 def _nothing_finished(res) -> bool:
     """True when no timed run of the results folder finished with a value."""
+    from benchharness.experiment.response import default_response
     from benchharness.report.data import nothing_finished
 
-    return nothing_finished(res.runs, "wall_s")
+    return nothing_finished(res.runs, default_response(getattr(res, "experiment", None)))

@@ -28,7 +28,7 @@ def add_parser(sub) -> None:
                    help="short Markdown for a CI job summary page (verdict, effects, warnings)")
     p.add_argument("--factors", metavar="A,B", help="factor columns (required for a CSV)")
     p.add_argument("--response", metavar="NAME", help="response column (default: the analysis' "
-                   "response, else wall_s)")
+                   "response, else the experiment file's response:, else wall_s)")
     p.add_argument("--tables", action="store_true",
                    help="also print the analysis as tables in the terminal")
     O.add_json(p, "where the reports were written and their headline")

@@ -51,6 +51,7 @@ CORE_KEYS = ("experiment", "about", "command", "shell", "factors", "replicates",
 
 #: Sections validated by later capabilities; kept as raw YAML nodes.
 SECTION_KEYS = ("design", "gate", "choose", "roles", "compare", "metrics", "expect", "samples", "pin",
+                "response",
                 "nice", "clean_env", "pad_env", "aslr", "cold_cache", "perf", "host_check",
                 "exclude", "only_when", "numeric")
 

@@ -30,6 +30,10 @@ def validate_sections(exp) -> None:
     _check_controls(exp, controls)
     quality_config(exp)  # expect / metrics / samples / perf
     _check_compare(exp)
+    if "response" in exp.sections:
+        from benchharness.experiment.response import declared_response
+
+        declared_response(exp)
     if "roles" in exp.sections:
         from benchharness.experiment.roles import declared_roles
 

@@ -355,15 +355,19 @@ def _analysis_for(src: _Source, runs, analysis, response, factors, user_block,
             obj, note = _arrays_for(adict, src, factors)
             notes += [note] if note else []
         return _jsonable(adict), obj, notes
-    if nothing_finished(runs, response or "wall_s"):
+    if response is None:   # the experiment file's response:, else wall_s
+        from benchharness.experiment.response import default_response
+
+        response = default_response(src.experiment)
+    if nothing_finished(runs, response):
         # Every timed run failed or timed out: a report of the design and of why the runs
         # did not finish is still worth reading; there is just nothing to analyse.
-        return _jsonable(unanalysed(runs, response or "wall_s", factors)), None, notes
+        return _jsonable(unanalysed(runs, response, factors)), None, notes
     if not compute_analysis:
         raise DataError(f"{src.text}: no analysis to report")
     from benchharness import analyze
 
-    obj = analyze(src.for_analysis(), response=response or "wall_s", factors=factors,
+    obj = analyze(src.for_analysis(), response=response, factors=factors,
                   block=user_block, **analyze_kwargs)
     return _jsonable(_as_dict(obj)), obj, notes
 
