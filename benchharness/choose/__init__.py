@@ -786,7 +786,11 @@ def _candidate_reason(i, c, res, best_i, top_i, default, declared, names, is_log
     parts = []
     if i == best_i:
         parts += _recommended_words(i, top_i, default, declared, names, settings)
-    parts.append(_comparison_words(i, c, res, is_log, confidence, unit))
+    if len(settings) == 1 < len(all_settings):
+        parts.append("the only setting that meets every limit, so nothing is compared with it")
+    else:
+        parts.append(_comparison_words(i, c, res, is_log, confidence, unit,
+                                       limited=len(settings) < len(all_settings)))
     if with_also:
         parts.append(_front_words(dominated_by[i], names, all_settings, within))
     return "; ".join(parts)
@@ -812,9 +816,11 @@ def _recommended_words(i, top_i, default, declared, names, settings) -> list[str
     return parts
 
 
-def _comparison_words(i, c, res, is_log, confidence, unit) -> str:
-    """The setting against the best of the others, from its constrained interval."""
+def _comparison_words(i, c, res, is_log, confidence, unit, limited: bool = False) -> str:
+    """The setting against the best of the others, from its constrained interval; with
+    ``limited``, the others are only the settings that meet every limit."""
     conf = f"{confidence * 100:g}%"
+    others = "every other setting that meets the limits" if limited else "every other setting"
     hi = c["loss_vs_best_of_others"]["high"]
     lo = c["loss_vs_best_of_others"]["low"]
     if not res.tied[i]:
@@ -823,10 +829,10 @@ def _comparison_words(i, c, res, is_log, confidence, unit) -> str:
     if lo >= 0 and hi <= 0:
         return "as good as the best (the data show no difference at all)"
     if lo < 0 and hi <= 0:
-        return (f"better than every other setting ({conf} confidence), by at most "
+        return (f"better than {others} ({conf} confidence), by at most "
                 f"{_loss_words(-lo, is_log, unit)}")
     if hi <= 0:
-        return "better than every other setting"
+        return f"better than {others}"
     return (f"not shown worse than the best: at most {_loss_words(hi, is_log, unit)} "
             f"worse ({conf} confidence)")
 
@@ -935,8 +941,13 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
     out = []
     best = _describe(as_map(settings[best_i]))
     n_t = len(tied_idx)
-    if n_t == 1:
-        out.append(f"{best} is better than every other setting at {conf} confidence.")
+    limited = len(settings) < len(all_settings)
+    if len(settings) == 1 and limited:
+        out.append(f"{best} is the only setting that meets every limit: it is not compared "
+                   "with the others on this response.")
+    elif n_t == 1:
+        others = "every other setting that meets the limits" if limited else "every other setting"
+        out.append(f"{best} is better than {others} at {conf} confidence.")
     else:
         why = ("it is the best estimate" if best_i == top_i
                else "the data cannot tell it from the best estimate "
