@@ -273,6 +273,7 @@ def test_a_candidate_that_only_fails_more_often_is_not_called_slower():
         msg = ET.fromstring(junit_xml(o).split("\n", 1)[1]).find(".//failure").get("message")
         assert msg.startswith("worse: fails more often than the baseline")
         assert "slower" not in msg
+        assert "bounds no bounds" not in junit_xml(o)
     # a candidate planted 30% slower that never fails is still said to be slower
     slow = _sim(1.3, 0.03, 7200)
     assert slow.verdict == "regression"

@@ -90,6 +90,12 @@ def _interval(j) -> str:
     return fmt_ratio_interval(j.lower, j.upper)
 
 
+def _bounds_words(j) -> str:
+    """"bounds 0.91× to 1.04×", or "no bounds" when none were computed (never "bounds no
+    bounds")."""
+    return "no bounds" if j.lower is None or j.upper is None else f"bounds {_interval(j)}"
+
+
 def _question(out: GateOutcome) -> str:
     s = out.settings
     kind = "higher is better" if s.higher_is_better else "lower is better"
@@ -160,7 +166,7 @@ def junit_xml(out: GateOutcome) -> str:
     for key, j in cases:
         tc = ET.SubElement(suite, "testcase", {"classname": "benchharness.gate", "name": key})
         text = (f"verdict {_word(j)}; slowdown ratio {_ratio(j.ratio)} ({_pct(j.ratio)}), "
-                f"bounds {_interval(j)}, {plural(j.blocks, 'run')} per build; {_why(j)}")
+                f"{_bounds_words(j)}, {plural(j.blocks, 'run')} per build; {_why(j)}")
         if j.verdict == "regression":
             f = ET.SubElement(tc, "failure", {
                 "message": (f"{_word(j)}: fails more often than the baseline: "
