@@ -286,6 +286,15 @@ def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
         codes.append(r.returncode)
     assert codes == [3, 0, 1]
     assert summary.read_text().count("### Performance gate") == 3
+    # the documented default "distinct" can be asked for, and wins over the file's "pass"
+    exp = tmp_path / "gate.yaml"
+    exp.write_text("experiment: both-fail\ncommand: [\"{build.bin}\"]\nwarmup: 0\n"
+                   "factors:\n  build:\n    old: {bin: \"false\"}\n    new: {bin: \"false\"}\n"
+                   "gate: {factor: build, baseline: old, first_look_pairs: 2, max_pairs: 2, "
+                   "inconclusive: pass}\n")
+    r = cli("gate", exp, "--seed", "7", "--out", tmp_path / "res-file",
+            "--inconclusive", "distinct")
+    assert r.returncode == 3 and " undecided " in r.stdout, r.stdout + r.stderr
 
 
 def test_file_form_build_once_per_rendered_form_with_env(cli, tmp_path):

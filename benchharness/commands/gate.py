@@ -61,9 +61,10 @@ def add_parser(sub) -> None:
     p.add_argument("--timeout", metavar="DURATION", type=O.duration,
                    help="per-run time limit (quick form), e.g. 60s")
     p.add_argument("--seed", type=int, metavar="N", help="seed of the run order")
-    p.add_argument("--inconclusive", choices=("pass", "fail"),
+    p.add_argument("--inconclusive", choices=("pass", "fail", "distinct"),
                    help="exit code for an inconclusive verdict: 0 (pass) or 1 (fail) "
-                        "instead of 3 (never for a build that never ran successfully: 5)")
+                        "instead of 3 (never for a build that never ran successfully: 5); "
+                        "distinct keeps 3, over a gate: section's inconclusive")
     p.add_argument("--against", metavar="FOLDER",
                    help="stored baseline: take the baseline's runs from an earlier results "
                         "folder (confounds the change with the session; not recommended)")
@@ -171,7 +172,7 @@ def _overrides(args) -> dict:
     if args.better is not None:
         over["higher_is_better"] = args.better == "higher"
     if args.inconclusive:
-        over["inconclusive"] = args.inconclusive
+        over["inconclusive"] = args.inconclusive   # "distinct" is mapped in gate/config.py
     return over
 
 

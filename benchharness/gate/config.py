@@ -69,8 +69,9 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
         # a custom metric knows its direction (metrics: NAME: {better: higher})
         if _metric_better(exp, response) == "higher":
             kw["higher_is_better"] = True
-    if "inconclusive" in o:
+    if "inconclusive" in o:   # --inconclusive distinct restores exit 3 over the file's key
         inconclusive = o.pop("inconclusive")
+        inconclusive = None if inconclusive == "distinct" else inconclusive
     kw.update(o)
     settings = _settings(node, items, kw, o)
     return GateConfig(factor=factor, baseline=baseline, candidate=candidate,
