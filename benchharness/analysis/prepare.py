@@ -125,6 +125,7 @@ def prepare(data, response=None, factors=None, block=None) -> Prepared:
     ok = status_is("ok")
     status_counts = _status_counts(codes, levels, factors, ok, status_is)
     y, use = _response_values(df, response, ok, status_is, notes)
+    codes, levels = _without_levels_that_never_finished(codes, levels, factors, use, notes)
     block, block_codes, block_levels = _block_codes(df, block, use, notes)
     return Prepared(
         response=response, factors=tuple(factors), levels=tuple(levels),
@@ -252,6 +253,36 @@ def _block_column(df, exp, block, factors, response, notes: list):
         if block in factors or block == response:
             raise UsageError(f"{block!r} cannot be both the block and a factor or the response")
     return df, block, has_hosts
+
+
+def _without_levels_that_never_finished(codes, levels, factors, use, notes: list):
+    """Leave out the levels whose runs all failed or gave no value.
+
+    Such a level has no measurement, so nothing can be said of it: kept, the missing
+    cells would read as a fractional design and the level would get a mean predicted
+    from alias chains (a statement the data cannot support). Its failures stay in the
+    per-cell failure counts, which are taken before this step. A level that never ran
+    at all is not touched here.
+    """
+    new_codes, new_levels = [], []
+    for f, c, lv in zip(factors, codes, levels):
+        ran = np.bincount(c, minlength=len(lv))
+        measured = np.bincount(c[use], minlength=len(lv))
+        dead = [i for i in range(len(lv)) if ran[i] and not measured[i]]
+        if not dead:
+            new_codes.append(c)
+            new_levels.append(lv)
+            continue
+        keep = [i for i in range(len(lv)) if i not in dead]
+        index = np.full(len(lv), -1, dtype=c.dtype)
+        index[keep] = np.arange(len(keep), dtype=c.dtype)
+        new_codes.append(index[c])
+        new_levels.append(tuple(lv[i] for i in keep))
+        for i in dead:
+            notes.append(f"{f}={lv[i]}: none of its {plural(int(ran[i]), 'run')} finished with "
+                         "a value, so it is left out of the analysis (its failures are counted "
+                         "per cell)")
+    return new_codes, new_levels
 
 
 def _code_factors(df, factors, exp):
