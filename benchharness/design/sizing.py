@@ -88,15 +88,22 @@ def replicates_needed(a: int, cells: int, D: float, sigma: float, alpha: float, 
                       method: str = "anova") -> int:
     """Smallest n >= 2 reaching ``power`` (power grows with n: doubling then bisection)."""
     fn = POWER_FUNCTIONS[method]
+    return _smallest_n(lambda n: fn(n, a, cells, D, sigma, alpha), power,
+                       "; the difference to detect is tiny next to the noise")
+
+
+def _smallest_n(power_at, power: float, why: str) -> int:
+    """Smallest n >= 2 with ``power_at(n) >= power``: doubling, then bisection (power grows
+    with n). Past MAX_REPLICATES it is a usage error ending with ``why``."""
     lo, hi = 1, 2
-    while fn(hi, a, cells, D, sigma, alpha) < power:
+    while power_at(hi) < power:
         lo, hi = hi, hi * 2
         if hi > MAX_REPLICATES:
-            raise UsageError(f"more than {MAX_REPLICATES} replicates per cell would be needed; "
-                             f"the difference to detect is tiny next to the noise")
+            raise UsageError(f"more than {MAX_REPLICATES} replicates per cell would be needed"
+                             + why)
     while hi - lo > 1:
         mid = (lo + hi) // 2
-        if fn(mid, a, cells, D, sigma, alpha) >= power:
+        if power_at(mid) >= power:
             hi = mid
         else:
             lo = mid
@@ -311,19 +318,8 @@ def trend_effects(factors: Sequence[tuple[str, int]], values: Mapping[str, Seque
 
 def effect_replicates(effect: Effect, cells: int, alpha: float, power: float) -> int:
     """Smallest n ≥ 2 at which ``effect`` reaches ``power`` (doubling, then bisection)."""
-    lo, hi = 1, 2
-    while effect.power(hi, cells, alpha) < power:
-        lo, hi = hi, hi * 2
-        if hi > MAX_REPLICATES:
-            raise UsageError(f"more than {MAX_REPLICATES} replicates per cell would be needed "
-                             f"for {effect.name}; the effect to detect is tiny next to the noise")
-    while hi - lo > 1:
-        mid = (lo + hi) // 2
-        if effect.power(mid, cells, alpha) >= power:
-            hi = mid
-        else:
-            lo = mid
-    return hi
+    return _smallest_n(lambda n: effect.power(n, cells, alpha), power,
+                       f" for {effect.name}; the effect to detect is tiny next to the noise")
 
 
 def size_effects(effects: Sequence[Effect], cells: int, detect: float, sigma_log: float,
