@@ -62,7 +62,6 @@ HEADER_SIZE = 4
 F_SETPIPE_SZ = 1031
 PIPE_SIZE = 1 << 20   # queue and reply pipes are widened to this where allowed
 INFLIGHT_SIZE = 256   # bytes of the in-flight record, padded with spaces
-INFLIGHT_AFTER_NS = 1_000_000  # a run still going this long after its spawn is recorded
 CONDITIONS_EVERY_NS = 10_000_000  # runs starting this close share one reading
 DONE_BATCH = 64       # journalled runs reported to the harness at once, at most
 DONE_EVERY_NS = 20_000_000  # ... and at least this often while runs go on
@@ -801,6 +800,8 @@ class Launcher:
         self.pipe_poller.register(pidfd, select.POLLIN)
         run.start = (start_lo, time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns)
         run.pid, run.t0, run.slot = pid, t0, slot
+        if slot is not None:
+            self.record_inflight(run)
         if g("notify", True):
             start_hi = run.start[1]
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid,
@@ -824,8 +825,6 @@ class Launcher:
                 if wait_ns is not None and wait_ns <= 0:
                     self.stop_tree(run, linger_ns, timed_out=True)
                     continue
-                if run.slot is not None:
-                    wait_ns = self.inflight_due(run, now, wait_ns)
             else:
                 if not run.open_pipes or now >= run.linger_end:
                     break
@@ -856,25 +855,22 @@ class Launcher:
             elif fd == self.rfd and run.aborted is None:
                 self.interrupted(run, linger_ns)
 
-    def inflight_due(self, run, now, wait_ns):
-        """Record the run in flight once it has gone on for `INFLIGHT_AFTER_NS`;
-        the wait until then (or ``wait_ns``, if sooner).
+    @staticmethod
+    def record_inflight(run):
+        """Record the run in flight (for a later resume that finds it still going).
 
-        The record lets a later resume stop a run that outlived both the
-        harness and the launcher. Made at once, it would sit inside the timed
-        window of every run; made after the first millisecond, a run that ends
-        sooner costs nothing, and a longer one is recorded while it goes on.
-        (A launcher killed within a run's first millisecond leaves the last
-        run's record: that run is over, and resume signals nothing that is
-        not still the recorded process.)
+        One store into the shared mapping, right after the spawn. Measured
+        (experiments/bench/launcher_window.py): this costs about 1% of the
+        ``wall_s`` of ``/bin/true``; waiting on a 1 ms timer to make it only
+        for longer runs cost 4.4%, since a ``poll`` with a near timeout wakes
+        the child's exit later than one without. (A launcher killed between
+        the spawn and this store leaves the last run's record: that run is
+        over, and resume signals nothing that is not still the recorded
+        process.)
         """
-        due = run.t0 + INFLIGHT_AFTER_NS - now
-        if due > 0:
-            return due if wait_ns is None or due < wait_ns else wait_ns
         m, text = run.slot
         run.slot = None
         m[:] = (text % (run.pid, run.pid, *run.start)).encode().ljust(INFLIGHT_SIZE)
-        return wait_ns
 
     def interrupted(self, run, linger_ns):
         """A message on the request pipe during a run: the harness went away
