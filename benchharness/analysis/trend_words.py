@@ -142,8 +142,13 @@ def _short_caveats(short: str, name: str, differ: list[dict], bends: bool, lof) 
     return short
 
 
-def scaling_finding(t: dict, conf: str) -> dict | None:
-    """The ``scaling`` finding of a parallel factor (None when it has no scaling)."""
+def scaling_finding(t: dict, conf: str, depends: dict | None = None) -> dict | None:
+    """The ``scaling`` finding of a parallel factor (None when it has no scaling).
+
+    ``depends`` (`speedup_depends`): the factor whose significant interaction with this
+    one makes the speed-up differ between its levels, with the speed-up at each of them;
+    then no single speed-up is said as if it held at every level, in the headline or the
+    statement: the range over the partner's levels leads, the average follows."""
     sc = t.get("scaling")
     if not sc:
         return None
@@ -166,7 +171,7 @@ def scaling_finding(t: dict, conf: str) -> dict | None:
                 f"({fr(top['speedup'])} [{ci}])")
     eff = (f"parallel efficiency {_pct(top['efficiency'])} [{_pct(top['efficiency_lower'])} "
            f"to {_pct(top['efficiency_upper'])}] of the ideal {top['ideal']:g}×")
-    text = f"{lead}: {eff}"
+    text = f"{lead}{' on average over ' + depends['factor'] if depends else ''}: {eff}"
     peak = _peak_text(sc, name, top)
     text += f"; {peak}" if peak else ""
     sf = sc.get("serial_fraction") or {}
@@ -193,11 +198,99 @@ def scaling_finding(t: dict, conf: str) -> dict | None:
     short = f"{lead} (efficiency {_pct(top['efficiency'])}"
     short += f", serial fraction {s_text})" if sf.get("estimate") is not None and fits else ")"
     short += f"; {peak}" if peak else ""
+    if depends:
+        short = _depends_short(name, base, top, depends)
+        text += "; " + _depends_text(name, top, depends)
     return {"kind": "scaling", "terms": [name], "factors": [name], "significant": faster,
+            "depends_on": depends["factor"] if depends else None,
             "speedup": top["speedup"], "lower": top["lower"], "upper": top["upper"],
             "serial_fraction": sf.get("estimate"), "serial_lower": sf.get("lower"),
             "serial_upper": sf.get("upper"), "amdahl_fits": fits,
             "headline": bool(t.get("headline")), "short": short, "statement": text}
+
+
+def speedup_depends(d: dict, name: str, top_level: str, smallest: str) -> dict | None:
+    """The partner whose significant two-factor interaction with ``name`` (Holm-adjusted p
+    of the ANOVA term below α) makes the speed-up of ``name=top_level`` over
+    ``name=smallest`` differ between its levels, with that speed-up at each of them.
+
+    The speed-ups are the interaction's own simple effects (`analysis.comparisons`,
+    inverted for a time), with their adjusted intervals, so that the scaling finding and
+    the interaction state one interval for one quantity. None when there is no such
+    interaction; ``per_level`` is empty when the simple effects were not computed.
+    """
+    alpha = float(d.get("alpha") or 0.05)
+    higher = d.get("better") == "higher"
+    best = None
+    for r in d.get("anova") or []:
+        parts = str(r.get("term") or "").split(":")
+        p = r.get("p_holm", r.get("p"))
+        if (len(parts) != 2 or name not in parts or r.get("chain") or p is None
+                or p >= alpha):
+            continue
+        if best is None or p < best[2]:
+            best = (parts[1] if parts[0] == name else parts[0], r["term"], p)
+    if best is None:
+        return None
+    partner, term, p = best
+    per = []
+    for c in d.get("comparisons") or []:
+        within = c.get("within") or {}
+        if (c.get("method") != "simple" or c.get("factor") != name or set(within) != {partner}
+                or c.get("ratio") is None or c.get("lower") is None):
+            continue
+        if (c["a"], c["b"]) == (top_level, smallest):
+            r, lo, hi = c["ratio"], c["lower"], c["upper"]
+        elif (c["a"], c["b"]) == (smallest, top_level):
+            r, lo, hi = 1 / c["ratio"], 1 / c["upper"], 1 / c["lower"]
+        else:
+            continue
+        if not higher:      # a time: the speed-up is the inverse of the time ratio
+            r, lo, hi = 1 / r, 1 / hi, 1 / lo
+        per.append({"level": within[partner], "speedup": r, "lower": lo, "upper": hi,
+                    "adjust": c.get("adjust")})
+    return {"factor": partner, "term": term, "p": p, "per_level": per}
+
+
+def _adjusted_words(adjust) -> str:
+    """How an interval of the simple effects was adjusted, in a few words."""
+    return {"bonferroni": "Bonferroni-adjusted", "holm": "Holm-adjusted",
+            "tukey": "Tukey-adjusted"}.get(str(adjust or ""), "adjusted")
+
+
+def _depends_short(name: str, base: str, top: dict, dep: dict) -> str:
+    """The headline's speed-up when it differs with another factor: its range over the
+    partner's levels (lowest and highest), then the average, which holds at none."""
+    y = dep["factor"]
+    per = dep["per_level"]
+    fr = _numbers.fmt_ratio
+    avg = f"{fr(top['speedup'])} on average over {y}"
+    if not per:
+        return (f"the speed-up of {name}={top['level']} over {base} depends on {y} "
+                f"({dep['term']}, {_p_text(dep['p'])}; {avg})")
+    lo = min(per, key=lambda s: s["speedup"])
+    hi = max(per, key=lambda s: s["speedup"])
+
+    def one(s):
+        return (f"{fr(s['speedup'])} [{_numbers.fmt_ratio_interval(s['lower'], s['upper'])}] "
+                f"at {y}={s['level']}")
+
+    return (f"the speed-up of {name}={top['level']} over {base} depends on {y}: "
+            f"from {one(lo)} to {one(hi)} ({_adjusted_words(lo['adjust'])}; {avg})")
+
+
+def _depends_text(name: str, top: dict, dep: dict) -> str:
+    """The statement's clause on a speed-up that differs with another factor: each level's."""
+    y = dep["factor"]
+    head = (f"the speed-up differs with {y} ({dep['term']}, {_p_text(dep['p'])}), so the "
+            f"{_numbers.fmt_ratio(top['speedup'])} above is an average over its levels, not the "
+            "speed-up at each")
+    if not dep["per_level"]:
+        return head
+    each = "; ".join(f"{_numbers.fmt_ratio(s['speedup'])} "
+                     f"[{_numbers.fmt_ratio_interval(s['lower'], s['upper'])}] at {y}={s['level']}"
+                     for s in dep["per_level"])
+    return f"{head}: {each} ({_adjusted_words(dep['per_level'][0]['adjust'])} intervals)"
 
 
 def _serial_only(sc: dict, name: str) -> dict | None:
@@ -242,8 +335,13 @@ def findings(d: dict) -> list[dict]:
                         "p": None, "check": "trend",
                         "statement": f"No trend over {t['factor']}: {t['skipped']}"})
             continue
+        sc = t.get("scaling") or {}
+        depends = None
+        if sc.get("speedups"):
+            top = max(sc["speedups"], key=lambda s: s["workers"])
+            depends = speedup_depends(d, t["factor"], top["level"], sc["smallest"])
         for f in (trend_finding(t, d.get("response") or "the response", conf),
-                  scaling_finding(t, conf)):
+                  scaling_finding(t, conf, depends)):
             if f is not None:
                 out.append(f)
     return out

@@ -163,7 +163,7 @@ def _headline_clause(f: dict, found: list[dict], numeric: dict[str, str], fr, fi
         if f.get("aliased"):
             alias = (f" (or {_and(f['aliased'])}: the fraction cannot tell "
                      f"{f['terms'][0].split(' (')[0]} from {_and(f['aliased'])})")
-        short = _interaction_clause(f, found, fr, fi)
+        short = "" if _said_by_scaling(f, found) else _interaction_clause(f, found, fr, fi)
         return "said", f"{names} interact{alias}" + (f" ({short})" if short else "")
     if f["kind"] != "main":
         return None, None
@@ -179,6 +179,15 @@ def _headline_clause(f: dict, found: list[dict], numeric: dict[str, str], fr, fi
     if f["significant"] is None:
         return None, None    # in a larger significant interaction, stated there
     return "nothing", f["terms"][0]
+
+
+def _said_by_scaling(inter: dict, found: list[dict]) -> bool:
+    """Whether a headline scaling finding already gives this two-factor interaction's
+    effect per level (its speed-up at each level of the partner): said once, not twice."""
+    pair = set(inter["factors"])
+    return len(pair) == 2 and any(
+        f["kind"] == "scaling" and f.get("headline") and f.get("depends_on")
+        and {f["factors"][0], f["depends_on"]} == pair for f in found)
 
 
 def _headline_sentence(parts: list[str], nothing: list[str], untested: list[str]) -> str:
