@@ -63,3 +63,16 @@ def test_a_speedup_that_holds_at_every_input_is_still_said_as_one_ratio():
     assert sc["depends_on"] is None
     assert sc["short"].startswith("threads=8 is ")
     assert "depends on" not in headline(list(an.findings))
+
+
+def test_an_interaction_elsewhere_leaves_a_speedup_that_holds_everywhere_one_ratio():
+    # planted: the same serial share at every size, so 8 threads give one speed-up;
+    # an interaction carried by the other thread counts (2 threads pay a fixed cost on
+    # the small input only) must not split the 8-thread speed-up by size
+    df = _pool(seed=5, serial={100000: 0.1, 200000: 0.1, 400000: 0.1})
+    two_small = (df.threads == "2") & (df.records == "100000")
+    df.loc[two_small, "work_s"] *= 1.5
+    an = analyze(df, response="work_s", factors=["threads", "records"])
+    assert any(f["kind"] == "interaction" and f["significant"] for f in an.findings)
+    (sc,) = [f for f in an.findings if f["kind"] == "scaling"]
+    assert sc["depends_on"] is None and sc["short"].startswith("threads=8 is ")

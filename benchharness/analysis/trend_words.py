@@ -217,7 +217,9 @@ def speedup_depends(d: dict, name: str, top_level: str, smallest: str) -> dict |
     The speed-ups are the interaction's own simple effects (`analysis.comparisons`,
     inverted for a time), with their adjusted intervals, so that the scaling finding and
     the interaction state one interval for one quantity. None when there is no such
-    interaction; ``per_level`` is empty when the simple effects were not computed.
+    interaction, or when the speed-ups at its levels do not differ materially
+    (`_differ_materially`); ``per_level`` is empty when the simple effects were not
+    computed.
     """
     alpha = float(d.get("alpha") or 0.05)
     higher = d.get("better") == "higher"
@@ -249,7 +251,19 @@ def speedup_depends(d: dict, name: str, top_level: str, smallest: str) -> dict |
             r, lo, hi = 1 / r, 1 / hi, 1 / lo
         per.append({"level": within[partner], "speedup": r, "lower": lo, "upper": hi,
                     "adjust": c.get("adjust")})
+    if per and not _differ_materially(per):
+        return None     # the interaction lies elsewhere: this speed-up holds at every level
     return {"factor": partner, "term": term, "p": p, "per_level": per}
+
+
+def _differ_materially(per: list[dict]) -> bool:
+    """Whether the speed-ups at the partner's levels differ beyond their noise: the
+    smallest one's adjusted interval lies wholly below the largest one's (intervals that
+    do not overlap: a conservative reading of a difference). A significant interaction
+    carried by other levels leaves this speed-up one ratio."""
+    lo = min(per, key=lambda s: s["speedup"])
+    hi = max(per, key=lambda s: s["speedup"])
+    return lo["upper"] < hi["lower"]
 
 
 def _adjusted_words(adjust) -> str:
