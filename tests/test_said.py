@@ -7,6 +7,8 @@ support is a defect even when every number is right.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -76,3 +78,40 @@ def test_an_interaction_elsewhere_leaves_a_speedup_that_holds_everywhere_one_rat
     assert any(f["kind"] == "interaction" and f["significant"] for f in an.findings)
     (sc,) = [f for f in an.findings if f["kind"] == "scaling"]
     assert sc["depends_on"] is None and sc["short"].startswith("threads=8 is ")
+
+
+def _spill(seed=19):
+    """The spill demo's truth (tests/test_incomplete.py): level applies only where codec is
+    not none, and lzma at level 9 never ran with large rows."""
+    from test_incomplete import spill_table
+
+    return spill_table(seed=seed)
+
+
+def test_a_nested_term_whose_levels_all_ran_within_each_parent_is_fully_estimable():
+    an = analyze(_spill(), factors=["codec", "level", "rows"])
+    terms = {t["term"]: t for t in an.incomplete["terms"]}
+    # planted: levels 1, 6 and 9 all ran within zlib and within lzma, so "level within
+    # codec" has (3 − 1) + (3 − 1) = 4 df of 4 (Montgomery ch. 14, a(b − 1), from memory)
+    assert terms["level within codec"]["estimable"] == "full"
+    assert terms["level within codec"]["df_full"] == 4
+    # lzma level 9 never ran with large rows: 3 of the 4 df of its crossing with rows
+    t = terms["(level within codec):rows"]
+    assert (t["estimable"], t["df"], t["df_full"]) == ("part", 3, 4)
+
+
+def test_a_ratio_that_averages_over_fewer_nested_levels_says_so():
+    an = analyze(_spill(), factors=["codec", "level", "rows"])
+    (main,) = [f for f in an.findings if f["kind"] == "main" and f["factors"] == ["codec"]]
+    # lzma's mean leaves out level 9 (it did not run with large rows); zlib's averages over
+    # all three levels, so only lzma's ratio is qualified
+    assert ("codec=lzma averaged over level=1, 6 only: level=9 did not run at every rows"
+            in main["statement"])
+    assert "codec=zlib averaged" not in main["statement"]
+    head = headline(list(an.findings))
+    assert "codec=lzma averaged over level=1, 6 only" in head
+    # the planted lzma/none ratio over levels 1 and 6 (geometric mean of 1.2 and 2.0 times
+    # 24/30 ms), not over 1, 6 and 9, is what the interval covers
+    want = (24 / 30) * math.sqrt(1.2 * 2.0)
+    (e,) = [e for e in an.effects if e["factor"] == "codec" and e["level"] == "lzma"]
+    assert e["lower"] < want < e["upper"]

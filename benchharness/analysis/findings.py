@@ -492,7 +492,8 @@ def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
     table = [{"a": e["level"], "b": e["reference"], "ratio": e.get("ratio"),
               "lower": e.get("lower"), "upper": e.get("upper"), "p_adj": None,
               **({"over": e["over"], "left_out": e.get("left_out")} if e.get("over")
-                 else {})}
+                 else {}),
+              **({"nested_over": e["nested_over"]} if e.get("nested_over") else {})}
              for e in effects if e.get("factor") == f]
     if tk:
         # a level whose margin lacks a combination excluded by design has no Tukey
@@ -501,10 +502,13 @@ def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
         mine = {c["a"]: c for c in table if c.get("ratio") is not None}
         tk = [mine.get(c["a"], c) if c.get("ratio") is None else
               {**c, **({k: mine[c["a"]].get(k) for k in ("over", "left_out")}
-                       if mine.get(c["a"], {}).get("over") else {})}
+                       if mine.get(c["a"], {}).get("over") else {}),
+               **({"nested_over": mine[c["a"]]["nested_over"]}
+                  if mine.get(c["a"], {}).get("nested_over") else {})}
               for c in tk]
     stated = tk or table
-    return [c for c in stated if c.get("ratio") is not None]
+    return [dict(c, factor_name=f) if c.get("nested_over") else c
+            for c in stated if c.get("ratio") is not None]
 
 
 def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, p):
@@ -542,12 +546,28 @@ def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, 
 
 def _where_both(c: dict) -> str:
     """`` (only rows=small, where both ran)`` after a ratio compared over part of the
-    other factors' combinations (`benchharness.analysis.support.where_both_ran`)."""
-    if not c.get("over"):
-        return ""
-    from benchharness.analysis.support import where_both_ran
+    other factors' combinations (`benchharness.analysis.support.where_both_ran`), and
+    `` (codec=lzma averaged over level=1, 6 only: level=9 did not run with every rows)``
+    after one whose level averages over fewer levels of its nested factor than the
+    other levels do (`benchharness.analysis.incomplete.mark_partial_effects`)."""
+    said = []
+    if c.get("over"):
+        from benchharness.analysis.support import where_both_ran
 
-    return f" ({where_both_ran(c['over'], c.get('left_out'))})"
+        said.append(where_both_ran(c["over"], c.get("left_out")))
+    said += [nested_over_text(c["factor_name"], m) for m in c.get("nested_over") or []
+             if c.get("factor_name")]
+    return f" ({'; '.join(said)})" if said else ""
+
+
+def nested_over_text(f: str, m: dict) -> str:
+    """``codec=lzma averaged over level=1, 6 only: level=9 did not run at every rows``:
+    what one parent level's mean averages over when some of its nested levels are left
+    out (the other levels of ``f`` average over all of theirs)."""
+    across = " and ".join(m.get("across") or []) or "level of the other factors"
+    return (f"{f}={m['at']} averaged over {m['factor']}=" + ", ".join(m["levels"])
+            + f" only: {m['factor']}=" + ", ".join(m["left_out"])
+            + f" did not run at every {across}")
 
 
 def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
@@ -566,6 +586,8 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
     if big is not None:
         base.update(ratio=big["ratio"], lower=big.get("lower"), upper=big.get("upper"),
                     level=big["a"], reference=big["b"])
+        if big.get("nested_over"):      # the headline says what this ratio averages over
+            base["qualifier"] = _where_both({**big, "over": None})[2:-1]
     significant, statement = _main_statement(r, f, alias_text, also, stated, comps, higher,
                                              alpha, conf, p)
     return {**base, "significant": significant, "statement": statement}

@@ -254,25 +254,104 @@ def _estimability_statements(terms) -> list[str]:
     return out
 
 
-def _partial_levels(fit, lay, nested: dict, f: int) -> str:
-    """`` (codec=lzma over level 1, 6 only)``: parents whose mean averages over fewer levels
-    of the nested factor than ran with them (the others lack a combination)."""
+def partial_levels(fit, lay, nested: dict, f: int) -> dict:
+    """{parent levels (a tuple of labels): (the levels of ``f`` its mean averages over, those
+    that ran with it but are left out)} for the parents whose mean averages over fewer
+    levels of the nested factor ``f`` than ran with them (the others lack a combination)."""
     plan = margin_plan(fit.support, nested[f])
     if plan is None or f not in plan["kids"]:
-        return ""
-    names, levels = lay.fnames, lay.flevels
-    parts = []
+        return {}
+    levels = lay.flevels
+    out = {}
     for m, cells in zip(plan["combos"], plan["cells"]):
         sel = np.all(fit.support.cells[:, list(nested[f])] == np.asarray(m), axis=1)
         ran = sorted(set(fit.support.cells[sel, f].tolist()))
         used = sorted({int(r[f]) for r in cells}) if cells is not None else []
         if cells is not None and len(used) < len(ran):
-            where = ", ".join(f"{names[p]}={levels[p][c]}" for p, c in zip(nested[f], m))
-            parts.append(f"{where} over {names[f]} "
-                         + ", ".join(levels[f][c] for c in used) + " only, the levels it ran "
-                         "with every level of " + (", ".join(names[g] for g in plan["cross"])
+            key = tuple(levels[p][c] for p, c in zip(nested[f], m))
+            out[key] = ([levels[f][c] for c in used],
+                        [levels[f][c] for c in ran if c not in used])
+    return out
+
+
+def _partial_levels(fit, lay, nested: dict, f: int) -> str:
+    """`` (codec=lzma over level 1, 6 only)``: parents whose mean averages over fewer levels
+    of the nested factor than ran with them (the others lack a combination)."""
+    plan = margin_plan(fit.support, nested[f])
+    names = lay.fnames
+    parts = []
+    for key, (used, _left) in partial_levels(fit, lay, nested, f).items():
+        where = ", ".join(f"{names[p]}={v}" for p, v in zip(nested[f], key))
+        parts.append(f"{where} over {names[f]} " + ", ".join(used) + " only, the levels it "
+                     "ran with every level of " + (", ".join(names[g] for g in plan["cross"])
                                                    or "the other factors"))
     return f" ({'; '.join(parts)})" if parts else ""
+
+
+def mark_partial_effects(effects: list[dict], fit, lay, nested: dict) -> list[dict]:
+    """Each ratio of a parent level whose mean averages over only some levels of its nested
+    factor, marked ``nested_over`` (a list of ``{"at", "factor", "levels", "left_out",
+    "across"}``: the parent level, its nested factor, the levels averaged over, those left
+    out, and the factors they did not run at every level of;
+    the ratio's level and its reference each when partial), so the sentence
+    that states it says what it averages over when that differs from the other levels'."""
+    marks = {}
+    for f, ps in nested.items():
+        if len(ps) != 1:
+            continue
+        plan = margin_plan(fit.support, ps)
+        cross = [lay.fnames[g] for g in plan["cross"]] if plan is not None else []
+        for key, (used, left) in partial_levels(fit, lay, nested, f).items():
+            marks[(lay.fnames[ps[0]], key[0])] = {"factor": lay.fnames[f], "levels": used,
+                                                  "left_out": left, "across": cross}
+    out = []
+    for e in effects:
+        said = [dict(marks[(e.get("factor"), v)], at=v) for v in (e.get("level"),
+                                                                e.get("reference"))
+                if (e.get("factor"), v) in marks]
+        out.append(dict(e, nested_over=said) if said else e)
+    return out
+
+
+def nested_full_df(factors, nested: dict, cells: np.ndarray, sizes) -> int:
+    """The degrees of freedom a nested term has when every cell of its nested grid ran.
+
+    A nested factor ``f`` within parents ``P`` spans, inside each parent combination
+    that ran, one fewer df than the levels of ``f`` that ran there (Montgomery, *Design
+    and Analysis of Experiments*, ch. 14: a(b − 1) for ``b`` within ``a``, summed over the
+    parents when their counts differ); a crossed factor of the term adds its own
+    ``levels − 1``. So ``level within codec`` is full when it has one df fewer than its
+    levels inside each codec where it applies, whatever the crossed grid would count.
+    """
+    factors = tuple(factors)
+    parents = {p for f in factors if f in nested for p in nested[f]}
+    df = 1
+    for f in factors:
+        if f in nested:
+            ps = list(nested[f])
+            combos = {tuple(r) for r in cells[:, ps].tolist()}
+            df *= sum(len(set(cells[np.all(cells[:, ps] == np.asarray(c), axis=1), f]
+                              .tolist())) - 1 for c in combos)
+        elif f not in parents:
+            df *= int(sizes[f]) - 1
+    return int(df)
+
+
+def nested_term_states(terms: list[dict], nested_terms, nested: dict, cells,
+                       sizes) -> list[dict]:
+    """``describe``'s term states with each nested term judged against its nested grid
+    (`nested_full_df`), not the crossed grid it has no part in."""
+    own = {t.name: t.factors for t in nested_terms}
+    out = []
+    for t in terms:
+        if t["term"] not in own:
+            out.append(t)
+            continue
+        full = nested_full_df(own[t["term"]], nested, cells, sizes)
+        df = t["df"]
+        state = "full" if df >= full else ("none" if df == 0 else "part")
+        out.append(dict(t, df_full=max(full, df), estimable=state))
+    return out
 
 
 def clean_notes(notes: list, anova_rows, nested_terms) -> list:

@@ -606,8 +606,8 @@ def incomplete_part(setup: Setup, lay: Layout, prep, fit, anova_rows, refs, scal
     d = inc.describe(lay, fit, setup.fcells, setup.nested, anova_rows, prep.experiment, alpha)
     nested_terms = [t for t in setup.terms if t.parts is not None]
     notes[:] = inc.clean_notes(notes, anova_rows, nested_terms)
-    d["terms"] = [dict(t, df_full=t["df"]) if t["term"] in {x.name for x in nested_terms}
-                  else t for t in d["terms"]]
+    d["terms"] = inc.nested_term_states(d["terms"], nested_terms, setup.nested,
+                                        fit.support.cells, lay.sizes)
     if setup.nested or d["cells_planned"] == setup.fcells.count:   # missing by design
         notes[:] = [n for n in notes if "cells have no ok runs" not in n]
     notes.extend(d["statements"])
@@ -618,7 +618,7 @@ def incomplete_part(setup: Setup, lay: Layout, prep, fit, anova_rows, refs, scal
              for e in within]
     nested_names = {lay.fnames[f] for f in setup.nested}
     effects = [e for e in effects if e["factor"] not in nested_names] + shown
-    return d, effects
+    return d, inc.mark_partial_effects(effects, fit, lay, setup.nested)
 
 
 # ---- effects and comparisons ------------------------------------------------------------

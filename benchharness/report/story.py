@@ -172,7 +172,8 @@ def _headline_clause(f: dict, found: list[dict], numeric: dict[str, str], fr, fi
         if f.get("ratio") is not None:
             lead += (f" ({f['factors'][0]}={f['level']} {fr(f['ratio'])} "
                      f"{fi(f.get('lower'), f.get('upper'))} against "
-                     f"{f['factors'][0]}={f['reference']})")
+                     f"{f['factors'][0]}={f['reference']}"
+                     + (f"; {f['qualifier']})" if f.get("qualifier") else ")"))
         return "said", lead
     if f.get("untested"):
         return "untested", f["terms"][0]
