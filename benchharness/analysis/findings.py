@@ -491,9 +491,7 @@ def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
           and c.get("within") is None and (ref is None or c.get("b") == ref)]
     table = [{"a": e["level"], "b": e["reference"], "ratio": e.get("ratio"),
               "lower": e.get("lower"), "upper": e.get("upper"), "p_adj": None,
-              **({"over": e["over"], "left_out": e.get("left_out")} if e.get("over")
-                 else {}),
-              **({"nested_over": e["nested_over"]} if e.get("nested_over") else {})}
+              **_where_keys(e)}
              for e in effects if e.get("factor") == f]
     if tk:
         # a level whose margin lacks a combination excluded by design has no Tukey
@@ -501,14 +499,20 @@ def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
         # than leave the level out of the finding
         mine = {c["a"]: c for c in table if c.get("ratio") is not None}
         tk = [mine.get(c["a"], c) if c.get("ratio") is None else
-              {**c, **({k: mine[c["a"]].get(k) for k in ("over", "left_out")}
-                       if mine.get(c["a"], {}).get("over") else {}),
-               **({"nested_over": mine[c["a"]]["nested_over"]}
-                  if mine.get(c["a"], {}).get("nested_over") else {})}
-              for c in tk]
+              {**c, **_where_keys(mine.get(c["a"]) or {})} for c in tk]
     stated = tk or table
     return [dict(c, factor_name=f) if c.get("nested_over") else c
             for c in stated if c.get("ratio") is not None]
+
+
+def _where_keys(e: dict) -> dict:
+    """What an effects-table ratio says about where it holds (``over``/``left_out``: the
+    combinations where both levels ran; ``nested_over``: a nested factor's levels averaged
+    over), to carry onto the Tukey comparison of the same levels."""
+    out = {k: e.get(k) for k in ("over", "left_out")} if e.get("over") else {}
+    if e.get("nested_over"):
+        out["nested_over"] = e["nested_over"]
+    return out
 
 
 def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, p):

@@ -142,6 +142,20 @@ def _short_caveats(short: str, name: str, differ: list[dict], bends: bool, lof) 
     return short
 
 
+def _speedup_lead(name: str, base: str, top: dict) -> str:
+    """``threads=8 is 4.61× [4.49× to 4.74×] as fast as threads=1`` (or slower, or not
+    detectably faster, as its interval says)."""
+    fr = _numbers.fmt_ratio
+    ci = _numbers.fmt_ratio_interval(top["lower"], top["upper"])
+    if top["lower"] > 1:
+        return f"{name}={top['level']} is {fr(top['speedup'])} [{ci}] as fast as {base}"
+    if top["upper"] < 1:
+        return (f"{name}={top['level']} is slower than {base} ({fr(top['speedup'])} [{ci}] "
+                "of its speed)")
+    return (f"{name}={top['level']} is not detectably faster than {base} "
+            f"({fr(top['speedup'])} [{ci}])")
+
+
 def scaling_finding(t: dict, conf: str, depends: dict | None = None) -> dict | None:
     """The ``scaling`` finding of a parallel factor (None when it has no scaling).
 
@@ -158,17 +172,8 @@ def scaling_finding(t: dict, conf: str, depends: dict | None = None) -> dict | N
     top = max(sc["speedups"], key=lambda s: s["workers"])
     base = f"{name}={sc['smallest']}"
     fr = _numbers.fmt_ratio
-    ci = _numbers.fmt_ratio_interval(top["lower"], top["upper"])
     faster = top["lower"] > 1
-    slower = top["upper"] < 1
-    if faster:
-        lead = f"{name}={top['level']} is {fr(top['speedup'])} [{ci}] as fast as {base}"
-    elif slower:
-        lead = (f"{name}={top['level']} is slower than {base} ({fr(top['speedup'])} [{ci}] "
-                "of its speed)")
-    else:
-        lead = (f"{name}={top['level']} is not detectably faster than {base} "
-                f"({fr(top['speedup'])} [{ci}])")
+    lead = _speedup_lead(name, base, top)
     eff = (f"parallel efficiency {_pct(top['efficiency'])} [{_pct(top['efficiency_lower'])} "
            f"to {_pct(top['efficiency_upper'])}] of the ideal {top['ideal']:g}×")
     text = f"{lead}{' on average over ' + depends['factor'] if depends else ''}: {eff}"
@@ -221,8 +226,20 @@ def speedup_depends(d: dict, name: str, top_level: str, smallest: str) -> dict |
     (`_differ_materially`); ``per_level`` is empty when the simple effects were not
     computed.
     """
+    best = _interacting_partner(d, name)
+    if best is None:
+        return None
+    partner, term, p = best
+    per = _speedups_within(d, name, partner, top_level, smallest)
+    if per and not _differ_materially(per):
+        return None     # the interaction lies elsewhere: this speed-up holds at every level
+    return {"factor": partner, "term": term, "p": p, "per_level": per}
+
+
+def _interacting_partner(d: dict, name: str):
+    """(partner, term, Holm-adjusted p) of the strongest significant two-factor
+    interaction of ``name`` in the ANOVA (not a fraction's alias chain), or None."""
     alpha = float(d.get("alpha") or 0.05)
-    higher = d.get("better") == "higher"
     best = None
     for r in d.get("anova") or []:
         parts = str(r.get("term") or "").split(":")
@@ -232,28 +249,29 @@ def speedup_depends(d: dict, name: str, top_level: str, smallest: str) -> dict |
             continue
         if best is None or p < best[2]:
             best = (parts[1] if parts[0] == name else parts[0], r["term"], p)
-    if best is None:
-        return None
-    partner, term, p = best
+    return best
+
+
+def _speedups_within(d: dict, name: str, partner: str, top_level: str,
+                     smallest: str) -> list[dict]:
+    """The speed-up of ``name=top_level`` over ``name=smallest`` at each level of
+    ``partner``, from the simple effects (inverted for a time), with their intervals."""
+    higher = d.get("better") == "higher"
     per = []
     for c in d.get("comparisons") or []:
         within = c.get("within") or {}
         if (c.get("method") != "simple" or c.get("factor") != name or set(within) != {partner}
                 or c.get("ratio") is None or c.get("lower") is None):
             continue
-        if (c["a"], c["b"]) == (top_level, smallest):
-            r, lo, hi = c["ratio"], c["lower"], c["upper"]
-        elif (c["a"], c["b"]) == (smallest, top_level):
-            r, lo, hi = 1 / c["ratio"], 1 / c["upper"], 1 / c["lower"]
-        else:
+        pair = (c["a"], c["b"])
+        if pair not in ((top_level, smallest), (smallest, top_level)):
             continue
-        if not higher:      # a time: the speed-up is the inverse of the time ratio
-            r, lo, hi = 1 / r, 1 / hi, 1 / lo
+        r, lo, hi = c["ratio"], c["lower"], c["upper"]
+        if (pair == (smallest, top_level)) != (not higher):
+            r, lo, hi = 1 / r, 1 / hi, 1 / lo      # a time: the speed-up is its inverse
         per.append({"level": within[partner], "speedup": r, "lower": lo, "upper": hi,
                     "adjust": c.get("adjust")})
-    if per and not _differ_materially(per):
-        return None     # the interaction lies elsewhere: this speed-up holds at every level
-    return {"factor": partner, "term": term, "p": p, "per_level": per}
+    return per
 
 
 def _differ_materially(per: list[dict]) -> bool:
