@@ -47,9 +47,10 @@ import math
 from dataclasses import asdict, dataclass, field
 from typing import Sequence
 
-from benchharness.gate.failures import failure_verdict, failures_lean_against
+from benchharness.gate.failures import failure_verdict, failures_lean_against, rates_words
 from benchharness.gate.robust import robust_summary
 from benchharness.gate.sequential import SequentialDesign, SpendingTracker
+from benchharness.numbers import fmt_change, fmt_ratio, plural
 
 # the distance to the tolerance counts in the planning noise up to this many standard
 # errors (`_planning_noise`)
@@ -310,7 +311,9 @@ def _failure_regression(look: _Look, settings: GateSettings, workloads: int
                         ) -> Judgement | None:
     """A regression by failure rate (exact sequential sign test), else None."""
     reason = failure_verdict(look.only_c, look.only_b, settings.max_runs,
-                             settings.failure_alpha(workloads))
+                             settings.failure_alpha(workloads),
+                             rates=rates_words(look.cand_fail, look.base_fail, look.n_blocks,
+                                               settings.confidence))
     if not reason:
         return None
     # a regression by failure rate, not by timings: said so in every output
@@ -372,11 +375,47 @@ def _bounds_verdict(look: _Look, settings: GateSettings, design: SequentialDesig
     if hi < thr:
         return _pass_or_hold(look, _pass(settings, lo, hi, horizon), tracker, settings)
     if final:
-        why = ("budget spent" if look.at_budget else "planned information spent")
-        return look.make("inconclusive",
-                         f"{why}; the ratio is too close to the tolerance to tell",
-                         lo, hi, horizon)
+        return look.make("inconclusive", undecided_reason(look, settings, ct), lo, hi,
+                         horizon)
     return look.make(None, "undecided", lo, hi, horizon)
+
+
+#: power with which the budget named in a noisy undecided reason would settle the ratio
+SETTLE_POWER_Z = 1.2816  # the standard normal's 90% point
+
+
+def undecided_reason(look: _Look, settings: GateSettings, ct: float) -> str:
+    """Why a final look left the bounds around ``1 + tolerance``: closeness or noise.
+
+    The bounds are ``location ± ct·s/√n``. When their half-width is within the
+    design distance δ (the gap between ``1 + tolerance`` and ``1 + 2·tolerance``
+    the gate is planned to resolve), the runs were precise enough and the
+    estimate sits within δ of the tolerance: it is *close to the tolerance*.
+    When the half-width is wider than δ, the *noise* kept it open, whatever the
+    estimate: the reason says so, with the spread per pair and the pairs that
+    would likely (9 times in 10, normal approximation with this look's boundary:
+    ``n = ((ct + z_0.9)·s / D)²``) settle a ratio at the estimate's distance
+    ``D`` from the tolerance, or at δ when the estimate itself is nearer.
+    """
+    why = "budget spent" if look.at_budget else "planned information spent"
+    thr, delta = settings.threshold_log, settings.design_delta
+    half = ct * look.sd / math.sqrt(look.n)
+    tol = fmt_ratio(1 + settings.tolerance)
+    est = fmt_ratio(math.exp(look.mean), 4)
+    if half <= delta:
+        return (f"{why}; the ratio {est} is too close to the tolerance {tol} to tell: "
+                f"the bounds are narrow but contain it")
+    dist = abs(look.mean - thr)
+    head = (f"{why}; too noisy for the budget: the pairs differ by about "
+            f"{fmt_change(math.exp(look.sd))[1:]} (spread of the log slowdowns), too much "
+            f"for {plural(look.n, 'pair')} to tell")
+    need = math.ceil(((max(ct, 0.0) + SETTLE_POWER_Z) * look.sd / max(dist, delta)) ** 2)
+    pairs = f"about {need:,} pairs" if need <= 100_000 else "more than 100,000 pairs"
+    if dist >= delta:
+        return f"{head}; {pairs} would likely settle a ratio this far from {tol}"
+    lo_r, hi_r = fmt_ratio(math.exp(thr - delta)), fmt_ratio(math.exp(thr + delta))
+    return (f"{head}; {pairs} would likely settle it if the true ratio is outside "
+            f"{lo_r} to {hi_r} (the estimate {est} is near the tolerance)")
 
 
 def _pass(settings: GateSettings, lo: float, hi: float, horizon: int) -> tuple:

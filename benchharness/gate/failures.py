@@ -77,8 +77,9 @@ def sign_boundaries(max_discordant: int, alpha: float) -> tuple[int | None, ...]
 
 
 def failure_verdict(only_candidate: int, only_baseline: int, max_discordant: int,
-                    alpha: float) -> str | None:
-    """A regression reason when the candidate fails more often at this look, else None."""
+                    alpha: float, rates: str = "") -> str | None:
+    """A regression reason when the candidate fails more often at this look, else None;
+    ``rates`` (`rates_words`) is said first when given."""
     k = only_candidate + only_baseline
     if k == 0 or only_candidate <= only_baseline:
         return None
@@ -86,7 +87,8 @@ def failure_verdict(only_candidate: int, only_baseline: int, max_discordant: int
     u = bounds[k - 1]
     if u is None or only_candidate < u:
         return None
-    return (f"the candidate fails more often: it alone failed in {only_candidate} blocks, "
+    rates = f"{rates}; " if rates else ""
+    return (f"the candidate fails more often: {rates}it alone failed in {only_candidate} blocks, "
             f"the baseline alone in {only_baseline} (exact sequential sign test, "
             f"level {alpha:.3g})")
 
@@ -106,3 +108,49 @@ def failures_lean_against(only_candidate: int, only_baseline: int, hold: float) 
     sequential test above does that), so it costs blocks, not level.
     """
     return only_candidate > only_baseline and lean_p(only_candidate, only_baseline) < hold
+
+
+def rate_interval(failed: int, runs: int, confidence: float = 0.95
+                  ) -> tuple[float, float, float] | None:
+    """(rate, lower, upper): the share of ``runs`` that failed with its two-sided
+    Wilson score interval at ``confidence`` (Wilson 1927), or None without runs.
+
+    The Wilson interval keeps its coverage near the stated level for the small
+    counts a gate sees (a few failures in 10-100 runs) and never leaves 0..1,
+    where the plain normal interval collapses to a point at 0 or 1 failures
+    (Brown, Cai & DasGupta 2001).
+    """
+    from statistics import NormalDist
+
+    if runs <= 0:
+        return None
+    z = NormalDist().inv_cdf(0.5 + confidence / 2.0)
+    p = failed / runs
+    den = 1.0 + z * z / runs
+    mid = (p + z * z / (2 * runs)) / den
+    half = z * math.sqrt(p * (1 - p) / runs + z * z / (4 * runs * runs)) / den
+    return p, max(0.0, mid - half), min(1.0, mid + half)
+
+
+def rates_words(candidate_failed: int, baseline_failed: int, runs: int,
+                confidence: float = 0.95) -> str:
+    """"50% [28% to 72%] of its runs vs 0% [0% to 19%] of the baseline's (95% Wilson
+    intervals)": each build's failure rate over its ``runs`` timed runs (`rate_pair`)."""
+    c, b = rate_pair(candidate_failed, baseline_failed, runs, confidence)
+    return (f"{c} of its runs vs {b} of the baseline's "
+            f"({confidence * 100:g}% Wilson intervals)")
+
+
+def rate_pair(candidate_failed: int, baseline_failed: int, runs: int,
+              confidence: float = 0.95) -> tuple[str, str]:
+    """Each build's failure rate with its Wilson interval (`rate_interval`), written
+    ``50% [28% to 72%]`` (`benchharness.numbers.fmt_pct`); ``n/a`` without runs."""
+    from benchharness.numbers import fmt_pct
+
+    def one(failed):
+        r = rate_interval(failed, runs, confidence)
+        if r is None:
+            return "n/a"
+        return f"{fmt_pct(r[0], 0)} [{fmt_pct(r[1], 0)} to {fmt_pct(r[2], 0)}]"
+
+    return one(candidate_failed), one(baseline_failed)

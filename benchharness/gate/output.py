@@ -15,6 +15,7 @@ from __future__ import annotations
 import math
 from pathlib import Path
 
+from benchharness.gate.failures import rate_interval, rate_pair
 from benchharness.gate.orchestrate import GateOutcome
 from benchharness.numbers import fmt_change, fmt_ratio, fmt_ratio_interval, plural
 
@@ -84,16 +85,42 @@ def _ratio(r: float | None) -> str:
     return "n/a" if r is None or not math.isfinite(r) else fmt_ratio(r)
 
 
-def _interval(j) -> str:
+def _interval(j, confidence: float = 0.95) -> str:
+    """The bounds column: the ratio's bounds; for a regression by failure rate the
+    failure rates with their intervals, the evidence that decided it."""
+    if by_failures(j):
+        return _fail_rates(j, confidence)
     if j.lower is None or j.upper is None:
         return "no bounds"
     return fmt_ratio_interval(j.lower, j.upper)
 
 
-def _bounds_words(j) -> str:
+def _fail_rates(j, confidence: float) -> str:
+    """"fails 50% [28% to 72%] vs 0% [0% to 19%]": candidate vs baseline."""
+    c, b = rate_pair(j.candidate_failures, j.baseline_failures, j.blocks, confidence)
+    return f"fails {c} vs {b}"
+
+
+def _bounds_words(j, confidence: float = 0.95) -> str:
     """"bounds 0.91× to 1.04×", or "no bounds" when none were computed (never "bounds no
-    bounds")."""
+    bounds"); a regression by failure rate gives the failure rates instead."""
+    if by_failures(j):
+        return (f"{_fail_rates(j, confidence)} of runs ({confidence * 100:g}% Wilson "
+                "intervals)")
     return "no bounds" if j.lower is None or j.upper is None else f"bounds {_interval(j)}"
+
+
+def failure_rates(j, confidence: float) -> dict | None:
+    """gate.json's ``failure_rates`` of one workload: each build's failed timed runs, their
+    share and its two-sided Wilson interval (Wilson 1927) at the gate's confidence."""
+    def one(failed):
+        r = rate_interval(failed, j.blocks, confidence)
+        return {"failed": failed, "runs": j.blocks, "rate": r[0], "lower": r[1], "upper": r[2]}
+
+    if not j.blocks:
+        return None
+    return {"confidence": confidence, "interval": "wilson",
+            "baseline": one(j.baseline_failures), "candidate": one(j.candidate_failures)}
 
 
 def _question(out: GateOutcome) -> str:
@@ -122,7 +149,8 @@ def terminal_lines(out: GateOutcome) -> list[str]:
     lines = [_question(out)]
     for w in out.warnings:
         lines.append(w)
-    rows = [[key, _word(j), _ratio(j.ratio), _pct(j.ratio), _interval(j), str(j.blocks),
+    conf = out.settings.confidence
+    rows = [[key, _word(j), _ratio(j.ratio), _pct(j.ratio), _interval(j, conf), str(j.blocks),
              _why(j)] for key, j in out.judgements.items()]
     lines += _table(["workload", "verdict", "ratio", "change", "bounds", "runs each", "why"],
                     rows, right={2, 3, 5})
@@ -142,7 +170,7 @@ def markdown_summary(out: GateOutcome, folder: Path | None = None) -> str:
            "| --- | --- | ---: | --- | ---: | --- |"]
     for key, j in out.judgements.items():
         md.append(f"| {_md(key)} | {_word(j)} | {_ratio(j.ratio)} ({_pct(j.ratio)}) "
-                  f"| {_interval(j)} | {j.blocks} | {_md(_why(j))} |")
+                  f"| {_interval(j, s.confidence)} | {j.blocks} | {_md(_why(j))} |")
     if folder is not None:
         md += ["", f"Results folder: `{folder}`"]
     return "\n".join(md) + "\n\n"
@@ -165,12 +193,13 @@ def junit_xml(out: GateOutcome) -> str:
     })
     for key, j in cases:
         tc = ET.SubElement(suite, "testcase", {"classname": "benchharness.gate", "name": key})
+        conf = out.settings.confidence
         text = (f"verdict {_word(j)}; slowdown ratio {_ratio(j.ratio)} ({_pct(j.ratio)}), "
-                f"{_bounds_words(j)}, {plural(j.blocks, 'run')} per build; {_why(j)}")
+                f"{_bounds_words(j, conf)}, {plural(j.blocks, 'run')} per build; {_why(j)}")
         if j.verdict == "regression":
             f = ET.SubElement(tc, "failure", {
                 "message": (f"{_word(j)}: fails more often than the baseline: "
-                            f"{j.candidate_failures} failed runs against {j.baseline_failures}"
+                            f"{_bounds_words(j, conf)}"
                             if by_failures(j)
                             else f"{_word(j)}: slower than "
                                  f"{fmt_ratio(1 + out.settings.tolerance)}: {_pct(j.ratio)}"),
@@ -225,7 +254,8 @@ def to_json_dict(out: GateOutcome, folder: Path | None = None) -> dict:
             {"workload": key, "levels": dict(out.workload_levels.get(key, {})),
              **j.to_json_dict(), "verdict": _word(j),
              "cause": "failures" if by_failures(j) else
-                      ("timings" if j.verdict == "regression" else None)}
+                      ("timings" if j.verdict == "regression" else None),
+             "failure_rates": failure_rates(j, s.confidence)}
             for key, j in out.judgements.items()
         ],
     }
