@@ -111,6 +111,91 @@ def test_json_options_mean_one_thing(name):
     assert by_opt["--json-out"].metavar == "FILE", name
 
 
+#: A concept recognised by the words of an option's name, whatever new spelling it gets:
+#: (concept in O.GRAMMAR, pattern). An option whose name matches must be the concept's one
+#: spelling (or a hidden deprecated alias), so `--alpha2`, `--significance` or `--database`
+#: cannot slip in beside `--confidence` and `--history-db`.
+CONCEPT_WORDS = [
+    ("confidence (significance = 100% - confidence)",
+     r"alpha|signif|confid|false-step|conf-level"),
+    ("direction of better", r"better|worse|direction|higher|lower"),
+    ("history database", r"(^--|-)db$|database|^--history"),
+    ("seed of the run order", r"seed"),
+    ("time budget", r"budget|time-limit|deadline"),
+    ("warm-up runs", r"warm"),
+    ("response column", r"^--(response|metric)s?$"),
+]
+#: dest -> the one option that may store into it (an alias may too, hidden)
+CONCEPT_DESTS = {"confidence": "--confidence", "better": "--better",
+                 "history_db": "--history-db", "json": "--json", "json_out": "--json-out",
+                 "seed": "--seed", "budget": "--budget", "warmup_runs": "--warmup-runs",
+                 "response": "--response", "factors": "--factors", "pilot": "--pilot"}
+#: the value kinds of docs/cli.md "Values": metavar <-> the one parser of that kind
+VALUE_KINDS = {"PCT": {"percentage", "confidence"}, "RATIO": {"ratio"},
+               "DURATION": {"duration"}}
+#: options that write a file: each must refuse '-' as a file name (`options.out_file`)
+OUTPUT_NAMES = r"^--(out|json-out|html|junit|summary|markdown)$|-out$"
+#: plain floats that are none of the value kinds above, with the reason
+PLAIN_FLOATS = {("size", "--slope"): "a log-log exponent, not a percentage or a ratio"}
+
+
+def _visible(parser):
+    for action in parser._actions:
+        if action.option_strings and action.help is not argparse.SUPPRESS \
+                and not isinstance(action, argparse._HelpAction):
+            yield action
+
+
+@pytest.mark.parametrize("name,parser", PARSERS, ids=[n for n, _ in PARSERS])
+def test_no_new_spelling_of_a_concept(name, parser):
+    import re
+
+    for action in _visible(parser):
+        for opt in action.option_strings:
+            for concept, pattern in CONCEPT_WORDS:
+                one = O.GRAMMAR[concept][0]
+                if re.search(pattern, opt):
+                    assert opt == one, (f"{name}: {opt} looks like a second spelling of "
+                                        f"'{concept}'; write {one}")
+            if "json" in opt:
+                assert opt in ("--json", "--json-out"), f"{name}: {opt}: JSON is --json " \
+                                                        "(stdout) or --json-out FILE"
+        want = CONCEPT_DESTS.get(action.dest)
+        if want is not None:
+            assert action.option_strings == [want], (
+                f"{name}: {action.option_strings} store {action.dest!r}; spell it {want}")
+
+
+@pytest.mark.parametrize("name,parser", PARSERS, ids=[n for n, _ in PARSERS])
+def test_each_value_kind_is_read_by_its_one_parser(name, parser):
+    import re
+
+    for action in _visible(parser):
+        opt = action.option_strings[0]
+        kind = getattr(action.type, "__name__", None)
+        if action.metavar in VALUE_KINDS:
+            assert kind in VALUE_KINDS[action.metavar], (
+                f"{name}: {opt} {action.metavar} is not read by the {action.metavar} parser "
+                "of benchharness.commands.options")
+        for metavar, kinds in VALUE_KINDS.items():
+            if kind in kinds:
+                assert action.metavar == metavar, f"{name}: {opt} should show {metavar}"
+        if action.type is float:
+            assert (name, opt) in PLAIN_FLOATS, (
+                f"{name}: {opt} reads a bare float; a percentage, ratio or duration takes "
+                "options.percent / ratio / duration (docs/cli.md, Values)")
+        if re.search(OUTPUT_NAMES, opt):
+            assert kind == "path", (f"{name}: {opt} writes a file but does not refuse '-' "
+                                    "(use options.out_file)")
+            stdout_ok = opt in ("--json-out",) or (name, opt) == ("report", "--markdown")
+            try:
+                action.type("-")
+                took_dash = True
+            except argparse.ArgumentTypeError:
+                took_dash = False
+            assert took_dash == stdout_ok, (name, opt, "'-' handling")
+
+
 def test_gate_options_say_what_they_count():
     gate = dict(PARSERS)["gate"]
     shown = {o for a in gate._actions if a.help is not argparse.SUPPRESS
