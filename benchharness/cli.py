@@ -216,7 +216,7 @@ def main(argv: list[str] | None = None) -> int:
                 options.json_stream = None
         return int(args.func(args) or 0)
     except BenchharnessError as exc:
-        print(f"benchharness: {exc}", file=sys.stderr)
+        print(_error_line(exc, args), file=sys.stderr)
         return int(getattr(exc, "exit_code", 2))
     except KeyboardInterrupt:
         print("benchharness: interrupted", file=sys.stderr)
@@ -234,6 +234,31 @@ def main(argv: list[str] | None = None) -> int:
         return DISK_FULL_EXIT
     except Exception:  # noqa: BLE001 - a bug, not a verdict: never exit 1 (a regression)
         return _internal_error()
+
+
+#: ``FILE:LINE:`` or ``FILE:LINE:COL:`` at the start of a message: an error inside a file
+_LOCATED = re.compile(r"^[^\s:][^:]*:\d+(?::\d+)?: ")
+
+
+def _error_line(exc: BenchharnessError, args) -> str:
+    """The one line for an error the command raised after its arguments were read.
+
+    An error about what was asked (a value the command refuses, a missing file, a folder
+    that is not a results folder) names the command and points at its own ``--help``, as
+    argparse's errors do; an error inside a file points at ``FILE:LINE:COL`` instead, and
+    a failure of the machine or the run (a full disk, a command that cannot start) at
+    neither.
+    """
+    from benchharness.errors import DiskFullError, ExecutionError, ExperimentError
+
+    text = str(exc)
+    p = getattr(args, "_cmd_parser", None)
+    inside_file = _LOCATED.match(text) or (isinstance(exc, ExperimentError)
+                                           and exc.line is not None)
+    if (p is None or inside_file or isinstance(exc, (DiskFullError, ExecutionError))
+            or getattr(exc, "exit_code", 2) != 2):
+        return f"benchharness: {text}"
+    return f"{p.prog}: {text} (see `{p.prog} --help`)"
 
 
 def _internal_error() -> int:

@@ -288,6 +288,29 @@ def test_bad_value_names_the_option_and_the_command_help(capsys):
     assert "`benchharness size --help`" in err[0]
 
 
+def test_errors_after_parsing_point_at_the_commands_help(tmp_path, capsys):
+    """A mistake in what was asked, found after argparse (a missing folder or file, an
+    option the command refuses in combination), names the command and points at its own
+    help like argparse's errors; an error inside a file points at FILE:LINE:COL only."""
+    missing = tmp_path / "nowhere"
+    cases = [(["steady", str(missing)], "steady"), (["analyze", str(missing)], "analyze"),
+             (["plan", str(missing)], "plan"),
+             (["size", "--detect", "5%"], "size"),
+             (["gate", "--baseline", "true"], "gate"),
+             (["history", "show", "--history-db", str(missing)], "history show")]
+    for argv, cmd in cases:
+        assert main(argv) == 2, argv
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1, err
+        assert err[0].startswith(f"benchharness {cmd}: "), err
+        assert err[0].endswith(f"(see `benchharness {cmd} --help`)"), err
+    f = tmp_path / "t.yaml"
+    f.write_text("experiment: t\ncommand: [/bin/true]\nfactors:\n  a: [x, y]\ntimeout: 60\n")
+    assert main(["plan", str(f)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith(f"benchharness: {f}:5:10: ") and "--help" not in err, err
+
+
 def test_old_spellings_still_work_with_one_note(capsys):
     p = build_parser()
     args = p.parse_args(["analyze", "x.csv", "--alpha", "0.01"])

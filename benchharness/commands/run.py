@@ -98,7 +98,7 @@ def main(args) -> int:
     progress = _progress(args.quiet)
     if args.resume:
         if args.file:
-            raise UsageError("give either an experiment file or --resume DIR, not both")
+            raise UsageError("give either an experiment file or --resume FOLDER, not both")
         _refuse_gate_folder(args.resume)
         outcome = runner.resume_experiment(args.resume, progress=progress,
                                            scheduler=args.scheduler,
@@ -106,7 +106,7 @@ def main(args) -> int:
                                            early_stop=not args.keep_going)
     else:
         if not args.file:
-            raise UsageError("run needs an experiment file (or --resume DIR)")
+            raise UsageError("run needs an experiment file (or --resume FOLDER)")
         from benchharness.experiment.file import load_experiment
 
         exp = load_experiment(args.file)

@@ -67,7 +67,7 @@ def connect(db_path: str | Path, create: bool = True) -> sqlite3.Connection:
     path = Path(db_path)
     if not create and not path.is_file():
         raise UsageError(f"{path}: no history file here; add results first with "
-                         "`benchharness history add RESULTS`")
+                         "`benchharness history add FOLDER`")
     if create:
         try:
             path.parent.mkdir(parents=True, exist_ok=True)
