@@ -176,3 +176,45 @@ def test_piped_output_is_not_wrapped_and_has_no_trailing_spaces_or_colour(cli, t
                    for line in lines)
     # prose is one line per sentence group, longer than any terminal width
     assert max(len(line) for line in lines) > 110
+
+
+#: a metric whose name ends in _per_s but which declares its own unit: its values must be
+#: printed as declared (`rows/s`), never as "per s" (the numerator lost) nor bare. Planted:
+#: level `on` gives about 3,000 rows/s, `off` about 1,000 (a little spread from the pid).
+METRIC_EXPERIMENT = """\
+experiment: unit-fixture
+command: [/bin/sh, -c, "echo rows $(( {cache.r} + $$ % 7 ))"]
+factors:
+  cache: {off: {r: "1000"}, on: {r: "3000"}}
+metrics:
+  rows_per_s: {pattern: 'rows ([0-9]+)', unit: rows/s, better: higher}
+replicates: 3
+seed: 4
+timeout: 10s
+"""
+
+
+def test_a_metrics_declared_unit_is_printed_as_declared(tmp_path, capsys, monkeypatch):
+    from benchharness.cli import main
+    from benchharness.report import units
+
+    monkeypatch.setattr(units, "DECLARED_UNITS", {})   # nothing left from other tests
+    (tmp_path / "exp.yaml").write_text(METRIC_EXPERIMENT)
+    res = tmp_path / "res"
+    assert main(["run", str(tmp_path / "exp.yaml"), "--out", str(res), "--quiet",
+                 "--no-analysis"]) == 0
+    capsys.readouterr()
+    outs = {}
+    for name, argv in [("analyze", ["analyze", res]), ("choose", ["choose", res]),
+                       ("compare", ["compare", res, res])]:
+        monkeypatch.setattr(units, "DECLARED_UNITS", {})   # each command finds it itself
+        assert main([*map(str, argv), "--response", "rows_per_s"]) == 0
+        outs[name] = capsys.readouterr().out
+        assert "per s" not in outs[name], (name, outs[name])
+    # the best setting is the planted one, with its value in the declared unit
+    assert re.search(r"cache=on \(3,00\d rows/s\)", outs["analyze"]), \
+        outs["analyze"]
+    assert re.search(r"^cache=on\s+3,00\d rows/s\s+3\s+recommended", outs["choose"], re.M), \
+        outs["choose"]
+    rows = [ln for ln in outs["compare"].splitlines() if ln.startswith("│ o")]
+    assert len(rows) == 2 and all(ln.count(" rows/s") == 2 for ln in rows), rows

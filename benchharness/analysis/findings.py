@@ -88,10 +88,14 @@ def seconds_per_unit(response: str) -> float | None:
     return next((f for suf, f in _TIME_SUFFIXES if low.endswith(suf)), None)
 
 
-def fmt_value(x, response: str) -> str:
-    """A mean in the response's units when the name carries one (``_s``, ``_kib``)."""
+def fmt_value(x, response: str, unit: str | None = None) -> str:
+    """A mean in the response's units: the unit a metric declares (``rows/s``, printed as
+    declared, or rescaled when it is a time or a size), else the one its name carries
+    (``_s``, ``_kib``, ``_per_s``)."""
     if x is None or not math.isfinite(x):
         return "–"
+    if unit:
+        return _numbers.fmt_quantity(x, unit)
     if str(response).lower().endswith("_per_s"):
         return f"{_numbers.fmt_num(x)} per s"
     sec = seconds_per_unit(response)
@@ -645,7 +649,7 @@ def _best_finding(best: dict, conf: str) -> dict:
             "significant": None, "cells": [cells[i]["levels"] for i in tied],
             "best": top["levels"], "mean": top["mean"], "ratio": None, "lower": None,
             "upper": None, "p": None}
-    where = f"{cell_text(top['levels'])} ({fmt_value(top['mean'], resp)})"
+    where = f"{cell_text(top['levels'])} ({fmt_value(top['mean'], resp, best.get('unit'))})"
     what = "time" if is_time else (resp or "value")
     if len(cells) == 1:
         return {**base, "statement": f"Only one cell could be estimated: {where}"}

@@ -152,7 +152,8 @@ def _comparison_rows(d: dict, t: dict, shown: list) -> list[list[str]]:
     label = {"pairwise": f"pairwise ({adj})", "tukey": "Tukey HSD",
              "simple": f"simple effect ({adj})", "declared": f"declared ({adj})"}
     diff = t["name"] == "none"
-    dscale = pick_scale(d.get("unit") or _unit(d["response"]),
+    dscale = pick_scale(d.get("unit") or (d.get("transform") or {}).get("unit")
+                        or _unit(d["response"]),
                         [x.get("difference") for x in shown])
     rows = []
     for x in shown[:40]:

@@ -890,6 +890,7 @@ def best_setting(fit, lay: Layout, prep, roles, fdesign, scale: Scale, alpha, be
                for i in range(len(prep.y))}
         best["not_run"] = [j for j, c in enumerate(best["cells"])
                            if tuple(c["levels"][lay.fnames[f]] for f in setting) not in ran]
+    best["unit"] = (scale.tdict or {}).get("unit")   # a metric's declared unit, if any
     best["averaged_over"] = [f for f in lay.fnames if f not in best["factors"]]
     best["roles_source"] = roles.get("source")
     return best

@@ -80,8 +80,11 @@ def main(args) -> int:
     from benchharness.analysis import analyze
     from benchharness.results.journal import is_results_folder, load_results
 
+    from benchharness.report.units import declare_folder_units
+
     factors = _factor_list(args.factors)
     folder_res = load_results(args.source) if is_results_folder(args.source) else None
+    declare_folder_units(args.source if folder_res is not None else None)
     args.response = _response(args, folder_res)
     model = args.model  # None: full, or every alias chain of a two-level fraction
     an = analyze(folder_res if folder_res is not None else args.source,  # read once

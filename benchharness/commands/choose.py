@@ -107,7 +107,9 @@ def _finite(x):
 def run(args) -> int:
     from benchharness.choose import choose
     from benchharness.choose.render import terminal_text
+    from benchharness.report.units import declare_folder_units
 
+    declare_folder_units(args.source)   # a metric's declared unit, printed as declared
     choice = choose(
         args.source,
         response=args.response,

@@ -51,6 +51,10 @@ def main(args) -> int:
         raise UsageError("--tolerance: must be at least 0% and below 100% (a ratio from 1 "
                          "to 2)")
     adjust = args.adjust or "sidak"
+    from benchharness.report.units import declare_folder_units
+
+    for folder in (args.b, args.a):   # a metric's declared unit; the baseline's wins
+        declare_folder_units(folder)
     result = compare_folders(args.a, args.b, response=args.response, tolerance=tol,
                              conf_level=args.confidence, adjust=adjust)
     if args.json or args.json_out:

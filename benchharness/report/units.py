@@ -54,6 +54,22 @@ def declare_unit(column: str, unit: str) -> None:
         DECLARED_UNITS[str(column)] = str(unit)
 
 
+def declare_folder_units(source) -> None:
+    """Record the declared unit of every custom metric of a results folder (its
+    ``metrics.json``), so tables and sentences print a metric's values in the unit the
+    experiment file declared (``rows/s``), not bare or guessed from the name. A CSV or a
+    folder without metrics declares nothing."""
+    import os
+
+    if source is None or not os.path.isdir(str(source)):
+        return
+    from benchharness.measure.metrics import read_manifest
+
+    for column, info in read_manifest(source).items():
+        if isinstance(info, dict) and info.get("unit"):
+            declare_unit(column, str(info["unit"]))
+
+
 def unit_of(column: str) -> str:
     """The unit carried by a column name ('' when it carries none)."""
     if column in DECLARED_UNITS:
