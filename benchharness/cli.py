@@ -178,12 +178,15 @@ def _unknown(args, extras: list[str], parser) -> int:
     """One line for words no option took, with the nearest option of that command."""
     p = getattr(args, "_cmd_parser", None) or parser
     options = sorted({s for a in p._actions for s in a.option_strings
-                      if a.help is not argparse.SUPPRESS})
+                      if a.help is not argparse.SUPPRESS
+                      and not isinstance(a, argparse._HelpAction)})  # never "--help?"
     word = next((e for e in extras if e.startswith("-")), extras[0])
     if word.startswith("-"):
         name = word.split("=", 1)[0]
-        near = difflib.get_close_matches(name, options, n=1, cutoff=0.6)
-        hint = f"; did you mean {near[0]}?" if near else ""
+        # compared without the dashes they all share, so --html is not "near" --model
+        bare = {o.lstrip("-"): o for o in options}
+        near = difflib.get_close_matches(name.lstrip("-"), list(bare), n=1, cutoff=0.7)
+        hint = f"; did you mean {bare[near[0]]}?" if near else ""
         msg = f"unknown option {name}{hint}"
     else:
         msg = f"unexpected argument {word!r}"

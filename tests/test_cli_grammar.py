@@ -274,6 +274,10 @@ def test_misspelt_command_and_option_get_the_nearest(capsys):
     err = capsys.readouterr().err.strip()
     assert err == ("benchharness gate: unknown option --tolerence; did you mean --tolerance? "
                    "(see `benchharness gate --help`)")
+    # an option of another command is not "did you mean --help?"
+    assert main(["analyze", "x", "--html", "a.html"]) == 2
+    assert capsys.readouterr().err.strip() == ("benchharness analyze: unknown option --html "
+                                               "(see `benchharness analyze --help`)")
     with pytest.raises(SystemExit):
         main(["history", "shwo"])
     assert "did you mean show?" in capsys.readouterr().err
@@ -416,6 +420,9 @@ def test_every_result_command_prints_one_json_document(fixture_dir, capsys, monk
     assert all(math.isclose(c["estimate"], none, abs_tol=1e-12) for c in same["cells"])
     assert all(c["low"] < none < c["high"] for c in same["cells"])
     assert {c["verdict"] for c in same["cells"]} <= {"within", "unclear"}   # docs/history.md
+    # one folder is one session: the warning says so rather than "different sessions"
+    assert same["warnings"][0].startswith("A and B are the same results folder")
+    assert not any("different sessions" in w for w in same["warnings"])
 
     db = d / "h.sqlite"
     added, _ = _json(capsys, ["history", "add", res, "--commit", "c1", "--branch", "main",

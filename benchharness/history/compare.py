@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from pathlib import Path
 
 from benchharness.errors import DataError
 
@@ -35,6 +36,10 @@ SESSION_WARNING = (
     "whatever differed in the machine between the sessions (load, temperature, CPU "
     "frequency, other tenants). To decide on a change, run both versions interleaved in "
     "one session with `benchharness gate`.")
+
+SAME_FOLDER_WARNING = (
+    "A and B are the same results folder: every ratio is 1 by construction, and the "
+    "intervals count each run twice, so they are narrower than two real sessions would give.")
 
 
 @dataclass(frozen=True)
@@ -273,7 +278,8 @@ def compare_folders(folder_a, folder_b, response: str = "wall_s", tolerance: flo
                      else len(da.levels.get(f, [])) for f in factors)
 
     out.sort(key=rank)
-    warnings = [SESSION_WARNING]
+    same = Path(da.path).resolve() == Path(db.path).resolve()
+    warnings = [SAME_FOLDER_WARNING if same else SESSION_WARNING]
     fa, fb = host_fingerprint(da.host), host_fingerprint(db.host)
     if fa != fb:
         warnings.append(f"A and B were measured on different hosts (fingerprints {fa} and "
