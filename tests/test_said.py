@@ -115,3 +115,93 @@ def test_a_ratio_that_averages_over_fewer_nested_levels_says_so():
     want = (24 / 30) * math.sqrt(1.2 * 2.0)
     (e,) = [e for e in an.effects if e["factor"] == "codec" and e["level"] == "lzma"]
     assert e["lower"] < want < e["upper"]
+
+
+def _codecs(seed=7, reps=3, codecs=("zlib", "lzma"), sd=0.05):
+    """codec × corpus with a planted codec effect (lzma 1.5× zlib's time)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for codec in codecs:
+        for corpus in ("text", "binary"):
+            for _ in range(reps):
+                t = 0.1 * (1.5 if codec == "lzma" else 1.0) * (1.2 if corpus == "text" else 1)
+                rows.append({"codec": codec, "corpus": corpus,
+                             "wall_s": t * np.exp(rng.normal(0, sd))})
+    return pd.DataFrame(rows)
+
+
+def test_a_factor_left_with_one_level_says_why_it_could_not_be_tested():
+    df = _codecs()
+    an = analyze(df[df.codec == "zlib"], factors=["codec", "corpus"])
+    (main,) = [f for f in an.findings if f["kind"] == "main" and f["factors"] == ["codec"]]
+    assert main["untested"]
+    assert "only one of its levels has analysed runs (codec=zlib)" in main["statement"]
+    assert "no error estimate" not in main["statement"]     # there is one: 10 residual df
+    assert an.counts["df_resid"] > 0
+    assert "codec (only one level has runs) could not be tested" in headline(
+        list(an.findings))
+
+
+def test_a_factor_without_replicates_left_says_the_noise_could_not_be_estimated():
+    # three codecs (not a two-level design, which Lenth's method would judge without
+    # replicates): 6 cells, 6 parameters in the full model, nothing left for the noise
+    df = _codecs(reps=1, codecs=("zlib", "lzma", "bz2"))
+    an = analyze(df, factors=["codec", "corpus"], model="full")
+    assert an.counts["df_resid"] == 0
+    (main,) = [f for f in an.findings if f["kind"] == "main" and f["factors"] == ["codec"]]
+    assert "no replicate is left to estimate the noise" in main["statement"]
+    assert "only one of its levels" not in main["statement"]
+
+
+def _cache_table(seed=1, missing=("on", "large", "y")):
+    """A 2×2×2 full factorial (cache, size, mode) with one combination never run; planted:
+    cache on costs 1.3×, a large size 2×, mode nothing."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for a in ("off", "on"):
+        for b in ("small", "large"):
+            for c in ("x", "y"):
+                if (a, b, c) == missing:
+                    continue
+                for _ in range(3):
+                    t = 0.1 * (1.3 if a == "on" else 1) * (2 if b == "large" else 1)
+                    rows.append({"cache": a, "size": b, "mode": c,
+                                 "wall_s": t * np.exp(rng.normal(0, 0.05))})
+    return pd.DataFrame(rows)
+
+
+def test_a_missing_cell_of_a_full_factorial_is_not_worded_as_a_fractions_alias():
+    an = analyze(_cache_table(), factors=["cache", "size", "mode"])
+    said = [f["statement"] for f in an.findings]
+    assert not any("alias" in s for s in said)
+    (miss,) = [f for f in an.findings if f.get("check") == "missing_cells"]
+    assert miss["statement"].startswith(
+        "1 of 8 cells has no analysed runs (cache=on, size=large, mode=y): a combination of "
+        "the full factorial with no runs")
+    # with one cell of a 2^3 missing, the three-factor interaction has no df left
+    # (8 − 1 cells = 7 parameters: the mean and six lower terms; common practice)
+    assert "not estimable from these cells: cache:size:mode" in miss["statement"]
+    # the planted effects are still found
+    mains = {f["factors"][0]: f for f in an.findings if f["kind"] == "main"}
+    assert mains["cache"]["significant"] and mains["size"]["significant"]
+    assert not mains["mode"]["significant"]
+
+
+def test_each_note_is_printed_once(capsys, tmp_path):
+    from benchharness.cli import main
+
+    path = tmp_path / "cache.csv"
+    _cache_table().to_csv(path, index=False)
+    an = analyze(_cache_table(), factors=["cache", "size", "mode"])
+    assert any(f.get("check") == "rank_check" for f in an.findings)   # a note to repeat
+    assert main(["analyze", str(path), "--factors", "cache,size,mode"]) == 0
+    out = capsys.readouterr().out
+    # the missing cell: named once by the caution, not again by the notes
+    assert out.count("cache=on, size=large, mode=y") == 1
+    assert "cells have no ok runs" not in out
+    # the rank-based cross-check (it disagrees on this table): one sentence, not three
+    assert out.count("rank-based cross-check disagrees") == 1
+    assert main(["analyze", str(path), "--factors", "cache,size,mode", "--plain"]) == 0
+    plain = capsys.readouterr().out
+    assert plain.count("cache=on, size=large, mode=y") == 1
+    assert plain.count("rank-based cross-check disagrees") == 1

@@ -302,7 +302,8 @@ def derive(d: dict) -> list[dict]:
         return _cautions(d)[:1]   # every run the same: that is the whole finding
     out = list((d.get("surface") or {}).get("findings") or [])   # analysis/surface.py
     out += _interaction_findings(rows, factors, comps, refs, alpha, conf)
-    out += _main_findings(rows, factors, out, comps, d.get("effects") or [], refs, alpha, conf)
+    out += _main_findings(_with_levels(rows, d), factors, out, comps, d.get("effects") or [],
+                          refs, alpha, conf)
     if d.get("incomplete"):   # nested terms ("level within codec"): analysis.incomplete
         from benchharness.analysis.incomplete import findings as nested_findings
 
@@ -322,7 +323,41 @@ def _terms_read(d: dict):
     comps = d.get("comparisons") or []
     rows = [r for r in d.get("anova") or []
             if r.get("term") != "Residual" and r.get("kind", "effect") == "effect"]
+    if not d.get("fraction"):
+        # outside a fraction a term confounded with others lost its columns to a
+        # combination with no runs: the missing-cells caution says so once, in those
+        # words, rather than each term calling it an alias (`_missing_cells_caution`)
+        rows = [dict(r, aliases=[]) if r.get("aliases") and not r.get("chain") else r
+                for r in rows]
     return factors, refs, comps, rows
+
+
+def _with_levels(rows: list[dict], d: dict) -> list[dict]:
+    """The ANOVA rows of the main effects that could not be tested, each with the factor's
+    analysed levels and the residual df beside it, so the finding can say why
+    (`untested_why`)."""
+    levels = {f["name"]: list(f.get("levels") or []) for f in d.get("factors") or []
+              if isinstance(f, dict)}
+    res_df = (d.get("counts") or {}).get("df_resid")
+    return [dict(r, analysed_levels=levels.get(r.get("term")), df_resid=res_df)
+            if r.get("p") is None and r.get("term") in levels else r for r in rows]
+
+
+def untested_why(r: dict) -> tuple[str, str]:
+    """(long, short) reason a main effect has no test: only one of its levels has runs (a
+    filtered table, or the other levels' runs all failed), or no run is left over to
+    estimate the noise, or what the ANOVA's row notes."""
+    lv = r.get("analysed_levels")
+    if lv is not None and len(lv) == 1:
+        f = r.get("term")
+        return (f"only one of its levels has analysed runs ({f}={lv[0]}), so there is "
+                "nothing to compare it with", "only one level has runs")
+    if r.get("df_resid") is not None and r["df_resid"] <= 0:
+        return ("no replicate is left to estimate the noise (no residual degrees of "
+                "freedom): add replicates or fit fewer interactions", "no replicate left to "
+                "estimate the noise")
+    note = str(r.get("note") or "no error estimate")
+    return note, note
 
 
 def numeric_findings(d: dict) -> list[dict]:
@@ -585,9 +620,9 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
     base = {"kind": "main", "terms": [term_label(r)], "factors": [f], "p": p,
             "p_raw": r.get("p"), "ratio": None, "lower": None, "upper": None}
     if p is None:
-        return {**base, "significant": None, "untested": True,
-                "statement": f"{term_label(r)} could not be tested (no error estimate)"
-                             f"{alias_text}"}
+        why, short = untested_why(r)
+        return {**base, "significant": None, "untested": True, "why_untested": short,
+                "statement": f"{term_label(r)} could not be tested: {why}{alias_text}"}
     stated = _stated_comparisons(f, comps, effects, refs)
     big = max(stated, key=lambda c: abs(math.log(c["ratio"])) if c["ratio"] > 0 else 0.0,
               default=None)
@@ -743,6 +778,46 @@ def _data_cautions(d: dict) -> list[dict]:
     c = d.get("counts") or {}
     expected = c.get("cells_planned") or c.get("cells_expected")   # a fraction plans fewer
     if c.get("cells") is not None and expected and c["cells"] < expected:
-        out.append(_caution("missing_cells", f"{expected - c['cells']} of "
-                            f"{expected} cells have no analysed runs"))
+        out.append(_missing_cells_caution(d, c, expected))
     return out
+
+
+def _missing_cells_caution(d: dict, c: dict, expected: int) -> dict:
+    """The cells of a full factorial with no analysed runs, named as combinations with no
+    runs (not a fraction's aliases), with the terms they leave estimable in part or not at
+    all, in the incomplete-factorial words (`analysis.incomplete.estimability_statements`)."""
+    from benchharness.analysis.incomplete import estimability_statements, term_states
+
+    n = expected - c["cells"]
+    text = f"{n} of {expected} cells {'has' if n == 1 else 'have'} no analysed runs"
+    missing = c.get("missing_cells") or []
+    if not missing:
+        return _caution("missing_cells", text)
+    named = "; ".join(cell_text(m) for m in missing[:TIED_NAMED])
+    more = f" and {n - TIED_NAMED} more" if n > TIED_NAMED else ""
+    text += (f" ({named}{more}): {'a combination' if n == 1 else 'combinations'} of the full "
+             "factorial with no runs")
+    said = estimability_statements(term_states(d.get("anova") or []))
+    if said:
+        text += "; " + "; ".join(said)
+        if any(t["estimable"] == "none" for t in term_states(d.get("anova") or [])):
+            text += (" (left out of the model: an effect it has, if any, is counted in the "
+                     "terms it overlaps)")
+    return _caution("missing_cells", text, covers=["cells have no ok runs",
+                                                   ": inestimable: completely confounded",
+                                                   "degrees of freedom estimable (empty cells)"])
+
+
+#: what each caution's check says that an analysis note says too (the note is not printed
+#: beside it): the start or a part of the note's text
+_COVERED = {"rank_check": ["the rank-based cross-check disagrees for "]}
+
+
+def notes_not_said(d: dict, found: list[dict]) -> list[str]:
+    """The analysis' notes that no finding already says: each note printed once (a caution
+    that names the missing cells replaces the note listing them, for instance)."""
+    covers = []
+    for f in found:
+        if f.get("kind") == "caution":
+            covers += list(f.get("covers") or []) + _COVERED.get(f.get("check"), [])
+    return [n for n in d.get("notes") or [] if not any(part in str(n) for part in covers)]

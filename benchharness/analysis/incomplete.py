@@ -198,7 +198,7 @@ def describe(lay, fit, fcells, nested: dict, anova_rows, experiment, alpha) -> d
     planned = planned_cells(experiment, names)
     nest = {names[f]: [names[p] for p in ps] for f, ps in nested.items()}
     why = {f: _why_nested(f, ps, lay, experiment) for f, ps in nest.items()}
-    terms = _term_states(anova_rows)
+    terms = term_states(anova_rows)
     statements = [f"{f} is analysed within {', '.join(ps)} ({why[f]}): it has no main effect "
                   f"of its own, and its ratios are given within each level of {', '.join(ps)} "
                   f"where it applies; each level of {', '.join(ps)} is compared averaged over "
@@ -211,7 +211,7 @@ def describe(lay, fit, fcells, nested: dict, anova_rows, experiment, alpha) -> d
         statements.append(f"{what}: each term is estimated from the cells that exist, Type II "
                           "sums of squares by model comparison; means and ratios average over "
                           "the combinations that exist, never over missing ones")
-    statements += _estimability_statements(terms)
+    statements += estimability_statements(terms)
     return {"nested": nest, "why": why, "cells": int(fcells.count), "combinations": grid,
             "cells_planned": planned, "terms": terms, "statements": statements}
 
@@ -228,7 +228,7 @@ def _why_nested(f: str, ps, lay, experiment) -> str:
     return f"each level of {f} occurs with one level of {', '.join(ps)} only"
 
 
-def _term_states(anova_rows) -> list[dict]:
+def term_states(anova_rows) -> list[dict]:
     """Each effect term with its df, its df on the full grid, and full | part | none."""
     terms = []
     for r in anova_rows:
@@ -240,7 +240,7 @@ def _term_states(anova_rows) -> list[dict]:
     return terms
 
 
-def _estimability_statements(terms) -> list[str]:
+def estimability_statements(terms) -> list[str]:
     """The crossed terms estimable only in part, and those not at all (nested terms have no
     grid to fall short of)."""
     out = []

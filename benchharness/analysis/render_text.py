@@ -10,6 +10,7 @@ failed-run counts, comparisons whose adjusted p is below α, and notes.
 from __future__ import annotations
 
 from benchharness.numbers import fmt_p, fmt_ratio, fmt_ratio_interval, pick_scale, plural
+from benchharness.analysis.findings import notes_not_said
 
 
 def _unit(response: str) -> str:
@@ -210,8 +211,9 @@ def format_analysis(a) -> str:
     lines += _effects_lines(d, t)
     lines += _diagnostics_lines(d)
     lines += _comparisons_lines(d, t)
-    if d["notes"]:
+    notes = notes_not_said(d, d.get("findings") or [])
+    if notes:
         lines.append("Notes")
-        for n in d["notes"]:
+        for n in notes:
             lines.append(f"  - {n}")
     return "\n".join(lines).rstrip() + "\n"

@@ -140,7 +140,7 @@ def run_analysis(data, response=None, factors=None, block=None, transform="auto"
         diagnostics=diagnostics, effects=tuple(effects), comparisons=tuple(comps),
         failures=failures, art=art_result, notes=tuple(dict.fromkeys(notes)),
         counts=counts_of(prep, setup, fdesign, expected_cells, fitted.fit.df_resid,
-                         surface),
+                         surface, lay),
         fraction=fraction, residuals=resid, fitted=fitted.fit.fitted[setup.cells.row_cell],
         studentized=studentized, position=prep.position, run=prep.run, fit=fitted.fit,
         roles=roles, better=better, best=best, rows=prep.rows, boxcox=scale.boxcox,
@@ -806,8 +806,15 @@ def surface_fit(prep, lay: Layout, fitted: Fitted, scale: Scale, alpha, better, 
     return surface
 
 
-def counts_of(prep, setup: Setup, fdesign, expected_cells, df_res, surface=None) -> dict:
-    """analysis.json's ``counts``."""
+#: most cells with no runs that ``counts["missing_cells"]`` lists
+MISSING_LISTED = 20
+
+
+def counts_of(prep, setup: Setup, fdesign, expected_cells, df_res, surface=None,
+              lay: Layout | None = None) -> dict:
+    """analysis.json's ``counts``; ``missing_cells`` lists (up to `MISSING_LISTED`) the
+    combinations of a full factorial with no analysed runs, when they are missing by
+    accident (not a fraction's, an exclusion's or a response surface's by plan)."""
     from benchharness.analysis.incomplete import planned_cells
 
     planned = planned_cells(prep.experiment, prep.factors)   # exclude: / only_when:
@@ -817,8 +824,13 @@ def counts_of(prep, setup: Setup, fdesign, expected_cells, df_res, surface=None)
         planned = fdesign.n_cells
     if surface is not None and surface.get("fitted"):
         planned = surface["lack_of_fit"]["points"]     # the design's distinct points
+    missing = []
+    if lay is not None and planned is None and setup.fcells.count < expected_cells:
+        missing = missing_cells(setup.fcells, lay.sizes[: lay.nf], lay.fnames,
+                                lay.flevels)[:MISSING_LISTED]
     return {"rows": len(prep.y), "cells": setup.fcells.count, "cells_expected": expected_cells,
             **({"cells_planned": planned} if planned is not None else {}),
+            **({"missing_cells": missing} if missing else {}),
             "model_cells": setup.cells.count, "df_resid": df_res,
             "level_order": prep.order_source}
 

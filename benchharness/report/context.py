@@ -94,7 +94,7 @@ def build(data: ReportData, figs: FigureSet, compact: bool = False) -> dict:
         "comparisons_shown": len(comps),
         "diagnostics": diags,
         "rank_check": art,
-        "notes": [str(n) for n in data.analysis.get("notes") or []],
+        "notes": [str(n) for n in story.printed_notes(data)],
         "report_command": report_command(data),
         "warnings": story.warnings(data, list(figs.notes) + list(data.extra_notes)),
         "cells": cells,

@@ -132,6 +132,13 @@ def findings(data: ReportData) -> list[dict]:
     return list(found or [])
 
 
+def printed_notes(data: ReportData) -> list:
+    """The analysis' notes a report prints: those no finding says already (each once)."""
+    from benchharness.analysis.findings import notes_not_said
+
+    return notes_not_said(data.analysis, findings(data))
+
+
 def headline(found: list[dict]) -> str | None:
     """One sentence from the findings: interactions with their per-level effects, then the
     factors that matter, then those that made no detectable difference."""
@@ -176,7 +183,8 @@ def _headline_clause(f: dict, found: list[dict], numeric: dict[str, str], fr, fi
                      + (f"; {f['qualifier']})" if f.get("qualifier") else ")"))
         return "said", lead
     if f.get("untested"):
-        return "untested", f["terms"][0]
+        why = f.get("why_untested")
+        return "untested", f["terms"][0] + (f" ({why})" if why else "")
     if f["significant"] is None:
         return None, None    # in a larger significant interaction, stated there
     return "nothing", f["terms"][0]
@@ -490,6 +498,8 @@ def _cross_check_sentence(data: ReportData) -> str | None:
     """Whether the rank-based cross-check agrees with the ANOVA."""
     art = data.analysis.get("art") or {}
     disagree = [t.get("term") for t in (art.get("terms") or []) if t.get("agrees") is False]
+    if disagree and any(f.get("check") == "rank_check" for f in findings(data)):
+        return None     # a caution of the findings says it
     if disagree:
         return ("The rank-based cross-check disagrees with the ANOVA for "
                 + _and([str(t) for t in disagree])

@@ -226,7 +226,7 @@ def _print_warnings(con, data) -> None:
     from rich.text import Text
 
     warns = story.warnings(data, list(data.extra_notes))
-    notes = data.analysis.get("notes") or []
+    notes = story.printed_notes(data)
     if warns or notes:
         con.print(Text("Warnings and notes", style="bold"))
         for w in warns:
