@@ -182,7 +182,7 @@ def test_declared_roles_reach_plan_the_folder_choose_and_analysis_json(cli, tmp_
     assert d["best"] == {"codec": "fast"}
     assert d["roles"]["source"] == "experiment file"
     assert d["reasons"][0].startswith("Roles from the experiment file: choosing among the "
-                                      "settings codec; the workloads logs and environments box")
+                                      "settings codec; the workload logs and environment box are conditions")
     # no default declared: never called "the current default"
     assert "current default" not in json.dumps(d)
     a = analyze(declared_folder).to_dict()

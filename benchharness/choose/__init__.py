@@ -7,7 +7,7 @@ table. It combines:
 * `mcb` -- Hsu's constrained multiple comparisons with the best (Hsu 1981,
   1984): the settings not shown worse than the best;
 * `prefer` -- ties broken toward the declared default, else the better estimate;
-* `robust` -- minimax regret across the ``across`` environments (Savage 1951)
+* `robust` -- minimax regret across the ``across`` conditions (Savage 1951)
   against the best on average;
 * `pareto` -- the confident Pareto front over several responses.
 
@@ -51,6 +51,8 @@ class Choice:
     reasons: list = field(default_factory=list)
     runs_used: int = 0
     runs_dropped: int = 0
+    #: why the runs not used were left out: {failed, no_value, warmup, unavailable} counts
+    runs_left_out: dict = field(default_factory=dict)
     #: settings that were run but have no ok run with a value of the response
     without_runs: list = field(default_factory=list)
     #: settings left out because the experiment excludes them in some condition (choose.space)
@@ -87,6 +89,7 @@ class Choice:
             "residual": dict(self.residual),
             "runs_used": self.runs_used,
             "runs_dropped": self.runs_dropped,
+            "runs_left_out": dict(self.runs_left_out),
             "without_runs": [dict(w) for w in self.without_runs],
             "unavailable": [dict(u) for u in self.unavailable],
             "roles": dict(self.roles),
@@ -278,6 +281,7 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
 
     from benchharness.choose.space import drop_unavailable
 
+    table = df
     df, unavailable = drop_unavailable(df, experiment, control, across, response)  # exclude:
     fits = _Fits(df, data, experiment, response, scale, control, across, directions, orders,
                  residual, block)
@@ -296,8 +300,22 @@ def choose(data, response: str | None = "wall_s", factors=None, across=None, als
     choice = _choice(j, ask, role_info, responses_info, fits.scale_reasons.get(response, ""))
     choice = _with_surface(choice, df, experiment)
     choice = _with_scaling(choice, df, experiment)
+    choice = _with_left_out(choice, table, df, response)
     return _with_unavailable(choice, unavailable, len(_role_reasons(role_info, names,
                                                                      ask.across_given)))
+
+
+def _with_left_out(choice: Choice, table, kept, response: str) -> Choice:
+    """The choice counting every run of ``table`` it did not use, by why: failed or timed
+    out, ok without a value, warm-up, or of a setting an exclusion kept out (``kept`` is
+    the table without those)."""
+    from dataclasses import replace
+
+    from benchharness.choose.space import left_out_counts
+
+    counts = left_out_counts(table, kept, response)
+    return replace(choice, runs_left_out=counts,
+                   runs_dropped=len(table) - choice.runs_used)
 
 
 def _with_unavailable(choice: Choice, unavailable, after: int) -> Choice:
@@ -307,10 +325,12 @@ def _with_unavailable(choice: Choice, unavailable, after: int) -> Choice:
         return choice
     from dataclasses import replace
 
+    from benchharness.choose.render import condition_word
     from benchharness.choose.space import unavailable_reasons
 
     reasons = list(choice.reasons)
-    reasons[after:after] = unavailable_reasons(unavailable)
+    reasons[after:after] = unavailable_reasons(unavailable,
+                                               condition_word(choice.across, choice.roles))
     return replace(choice, unavailable=list(unavailable), reasons=reasons)
 
 
@@ -368,10 +388,13 @@ def _choice(j: "_Judgement", ask: "_Asked", role_info, responses_info,
     robust, on_average, disagreement = _robust_summaries(j)
     reasons = _role_reasons(role_info, j.names, ask.across_given)
     reasons += _limit_reasons(j.limit_results, j.all_settings, j.eligible, j.as_map, confidence)
+    from benchharness.choose.render import condition_word
+
     reasons += _top_reasons(main, res, j.best_i, j.top_i, j.tied_idx, j.settings, j.as_map,
                             j.rob, disagreement, j.pareto_idx, also, j.is_log, confidence,
                             j.default, j.declared, j.all_settings, ask.within,
-                            unit=_unit(main.response))
+                            unit=_unit(main.response),
+                            noun=condition_word(main.across, role_info.to_dict()))
     return Choice(
         response=ask.response, better=main.better, scale=main.scale, confidence=confidence,
         control=j.names, across=tuple(main.across), best=j.as_map(j.settings[j.best_i]),
@@ -852,13 +875,16 @@ def _role_reasons(roles, names, across_given) -> list[str]:
     """What was chosen among and what was held as a condition, and on whose word."""
     chosen = ", ".join(names)
     if roles.declared:
-        conds = [f"{r}s {', '.join(getattr(roles, r))}" for r in ("workload", "environment")
+        held = [f for r in ("workload", "environment") for f in getattr(roles, r)]
+        conds = [f"{r}{'s' if len(getattr(roles, r)) > 1 else ''} "
+                 f"{', '.join(getattr(roles, r))}" for r in ("workload", "environment")
                  if getattr(roles, r)]
         where = "the experiment file" if roles.source == "experiment file" else "the command line"
         if not conds:
             return []
+        are = "are conditions" if len(held) > 1 else "is a condition"
         return [f"Roles from {where}: choosing among the settings {chosen}; the "
-                + " and ".join(conds) + " are conditions the choice must hold up across."]
+                + " and ".join(conds) + f" {are} the choice must hold up across."]
     across_factors = [a for a in across_given
                       if a not in names and a not in ("host", "worker", "block", "replicate")]
     held = (f"; {', '.join(across_factors)} held as "
@@ -936,8 +962,13 @@ def _limit_reasons(limit_results, all_settings, eligible, as_map, confidence) ->
 
 def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disagreement,
                  pareto_idx, also, is_log, confidence, default, declared, all_settings,
-                 within, unit: str = "") -> list[str]:
+                 within, unit: str = "", noun: str = "condition") -> list[str]:
+    """The reasons for the pick; ``noun`` names one combination of the ``across`` columns
+    (`render.condition_word`: workload, environment or condition)."""
+    from benchharness.choose.render import article
+
     conf = f"{confidence * 100:g}%"
+    one = f"{article(noun)} {noun}"
     out = []
     best = _describe(as_map(settings[best_i]))
     n_t = len(tied_idx)
@@ -964,10 +995,10 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
         wr = _loss_words(rob.worst_loss[rob.robust], is_log, unit)
         if disagreement is None and rob.worst_loss[rob.robust] <= 1e-12:
             out.append(f"Across {across_words}, {r} has the best estimate in every "
-                       "environment.")
+                       f"{noun}.")
         elif disagreement is None:
             out.append(f"Across {across_words}, {r} is both the safest choice "
-                       f"(never more than {wr} worse than the best of an environment) and the "
+                       f"(never more than {wr} worse than the best of {one}) and the "
                        "best on average.")
         else:
             env = _describe(disagreement["environment"])
@@ -975,14 +1006,14 @@ def _top_reasons(main, res, best_i, top_i, tied_idx, settings, as_map, rob, disa
                      f"{r}: {_loss_words(disagreement['robust_loss'], is_log, unit)} worse there")
             out.append(
                 f"Across {across_words}, {r} is the safest choice (never more than "
-                f"{wr} worse than the best of an environment), while {a} is best on average "
+                f"{wr} worse than the best of {one}), while {a} is best on average "
                 f"but {_loss_words(disagreement['on_average_loss'], is_log, unit)} worse than the "
                 f"best where {env} ({there}).")
     if main.across and best_i not in (rob.robust, rob.on_average):
         e = int(rob.worst_env[best_i])
         env = _describe(dict(zip(main.across, main.environments[e])))
         safe = _describe(as_map(settings[rob.robust]))
-        safe_words = (f"{safe} is the best in every environment"
+        safe_words = (f"{safe} is the best in every {noun}"
                       if rob.worst_loss[rob.robust] <= 1e-12 else
                       f"{safe} never loses more than "
                       f"{_loss_words(rob.worst_loss[rob.robust], is_log, unit)}")

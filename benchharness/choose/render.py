@@ -8,7 +8,35 @@ from __future__ import annotations
 
 from benchharness.numbers import fmt_ratio, pick_scale
 
-__all__ = ["section_dict", "terminal_text"]
+__all__ = ["condition_word", "section_dict", "terminal_text"]
+
+#: columns besides the factors that are environments (where the runs happened)
+_ENVIRONMENT_COLUMNS = ("host", "worker")
+
+
+def condition_word(across, roles: dict) -> str:
+    """The word for one combination of the ``across`` columns (DESIGN.md, "Factor roles"):
+    ``workload`` when every column is a workload (declared or guessed), ``environment``
+    when every one is an environment (declared, or the ``host``/``worker`` columns),
+    else ``condition`` (columns of mixed or undeclared roles, blocks, replicates)."""
+    kinds = set()
+    for a in across:
+        if a in (roles.get("workload") or ()):
+            kinds.add("workload")
+        elif a in (roles.get("environment") or ()) or a in _ENVIRONMENT_COLUMNS:
+            kinds.add("environment")
+        else:
+            kinds.add("condition")
+    return kinds.pop() if len(kinds) == 1 else "condition"
+
+
+def article(noun: str) -> str:
+    """'a' or 'an' before ``noun``."""
+    return "an" if noun[:1] in "aeiou" else "a"
+
+
+def _noun(d: dict) -> str:
+    return condition_word(d.get("across") or (), d.get("roles") or {})
 
 
 def _unit(d: dict) -> str:
@@ -39,9 +67,9 @@ def _rows(d: dict) -> tuple[list[str], list[list[str]]]:
 
 
 def _columns(d: dict, log: bool) -> list[str]:
-    """The table's headers (the worst-environment and average columns with ``across``)."""
+    """The table's headers (the worst-condition and average columns with ``across``)."""
     cols = ["setting", d["response"], "runs", "verdict", "vs best, at most"]
-    cols.append("worst environment" if d["across"] else ("vs best" if log else "minus best"))
+    cols.append(f"worst {_noun(d)}" if d["across"] else ("vs best" if log else "minus best"))
     if d["across"]:
         cols.append("average")
     if d.get("also"):
@@ -65,7 +93,7 @@ def _row(d: dict, c: dict, log: bool, mean_s, loss_s) -> list[str]:
 
 
 def _worst_words(d: dict, c: dict, log: bool, loss_s) -> str:
-    """The worst loss against the best: with ``across``, in which environment."""
+    """The worst loss against the best: with ``across``, in which condition."""
     if d["across"]:
         env = _setting(c["worst_environment"])
         return (f"{_ratio_words(c['worst_ratio'])} ({env})" if log
@@ -80,15 +108,17 @@ def section_dict(choice) -> dict:
     d = choice.to_dict()
     cols, rows = _rows(d)
     res = d["residual"]
+    noun = _noun(d)
     notes = [
         f"Response {d['response']} ({d['better']} is better), analysed on "
         + (d.get("scale_reason") or
            f"the {'log' if d['scale'] == 'log' else 'original'} scale")
-        + f"; {d['runs_used']} ok runs used, {d['runs_dropped']} left out. The {d['response']} "
+        + f"; {runs_words(d)}. The {d['response']} "
         f"column is each setting's {'geometric ' if d['scale'] == 'log' else ''}mean"
-        + (", every condition weighing the same." if d["across"] else "."),
+        + (f", every {noun} weighing the same." if d["across"] else "."),
         f"Noise: pooled residual of the "
-        f"{'full setting-by-environment' if res['model'] == 'cells' else 'additive setting + environment'} "
+        + (f"full setting-by-{noun}" if res['model'] == 'cells' else f"additive setting + {noun}")
+        + " "
         f"model{' with ' + res['block'] + ' as an additive block term' if res.get('block') else ''}, "
         f"{res['df']:g} degrees of freedom.",
         "vs best, at most: how much worse than the best of the other settings this setting "
@@ -110,9 +140,9 @@ def section_dict(choice) -> dict:
     if d["across"]:
         what = (f"{d['across'][0]} level" if len(d["across"]) == 1
                 else " and ".join(d["across"]) + " combination")
-        notes.append("Worst environment: the setting's ratio to the best setting of the "
+        notes.append(f"Worst {noun}: the setting's ratio to the best setting of the "
                      f"{what} where it does worst (estimates); average: the geometric mean of "
-                     "those ratios over every environment.")
+                     f"those ratios over every {noun}.")
     sf = d.get("surface")
     return {
         "title": "Choosing a default",
@@ -123,6 +153,32 @@ def section_dict(choice) -> dict:
         "notes": notes,
         "choice": d,
     }
+
+
+def runs_words(d: dict) -> str:
+    """"30 ok runs used, 9 left out: 6 failed or timed out (...), 3 of a setting not
+    considered (...)": every run of the table is either used or counted, with why."""
+    from benchharness.numbers import plural
+
+    out = d.get("runs_left_out") or {}
+    parts = []
+    if out.get("failed"):
+        every = [_setting(w) for w in d.get("without_runs") or []]
+        parts.append(f"{out['failed']} failed or timed out"
+                     + (f" (among them every run of {'; '.join(every)}, never successful)"
+                        if every else ""))
+    if out.get("no_value"):
+        parts.append(f"{out['no_value']} ok without a value of {d['response']}")
+    if out.get("warmup"):
+        parts.append(f"{plural(out['warmup'], 'warm-up run')}")
+    if out.get("unavailable"):
+        which = "; ".join(
+            f"{_setting(u['setting'])}, excluded with "
+            + " / ".join(_setting(m) for m in u["missing"]) for u in d.get("unavailable") or [])
+        parts.append(f"{out['unavailable']} of settings that could not be considered "
+                     f"({which})")
+    head = f"{d['runs_used']} ok runs used, {d['runs_dropped']} left out"
+    return head + (": " + ", ".join(parts) if parts else "")
 
 
 def surface_lines(d: dict) -> list[str]:

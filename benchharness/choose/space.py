@@ -43,12 +43,32 @@ def drop_unavailable(df, experiment, control, across, response: str):
     return df.loc[keep], out
 
 
-def unavailable_reasons(unavailable) -> list[str]:
-    """One sentence per setting left out."""
+def left_out_counts(table, kept, response: str) -> dict:
+    """Runs of ``table`` a choice cannot use, by why: ``unavailable`` (of a setting an
+    exclusion keeps from some condition: in ``table`` but not in ``kept``), and among
+    ``kept``: ``warmup``, ``failed`` (failed or timed out) and ``no_value`` (ok but no
+    finite value of ``response``)."""
+    import pandas as pd
+
+    status = (kept["status"].astype(str) if "status" in kept.columns
+              else pd.Series("ok", index=kept.index))
+    value = (pd.to_numeric(kept[response], errors="coerce") if response in kept.columns
+             else pd.Series(float("nan"), index=kept.index))
+    ok = status == "ok"
+    finite = value.notna() & value.abs().ne(float("inf"))
+    return {"failed": int((~ok & (status != "warmup")).sum()),
+            "warmup": int((status == "warmup").sum()),
+            "no_value": int((ok & ~finite).sum()),
+            "unavailable": int(len(table) - len(kept))}
+
+
+def unavailable_reasons(unavailable, noun: str = "condition") -> list[str]:
+    """One sentence per setting left out; ``noun`` names what the ``across`` columns'
+    combinations are (workload, environment or condition)."""
     out = []
     for u in unavailable:
         s = ", ".join(f"{k}={v}" for k, v in u["setting"].items())
         miss = "; ".join(", ".join(f"{k}={v}" for k, v in e.items()) for e in u["missing"])
         out.append(f"{s} is not a candidate: the experiment excludes it with {miss}, so it "
-                   "cannot be the default across every condition")
+                   f"cannot be the default across every {noun}")
     return out

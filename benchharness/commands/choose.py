@@ -17,10 +17,11 @@ def add_parser(subparsers):
 
     p = subparsers.add_parser(
         "choose",
-        help="recommend a default: the best or tied settings, robust across environments",
+        help="recommend a default: the best or tied settings, robust across workloads and "
+             "environments",
         description="Recommend a default setting from a results folder or a tidy CSV: the "
                     "settings that cannot be told apart from the best, the setting that holds "
-                    "up across environments, and (with --also) the trade-off front. Options "
+                    "up across the workloads and environments, and (with --also) the trade-off front. Options "
                     "left out are taken from the experiment file's choose: section.",
         epilog=O.examples(
             "benchharness choose results/example-archive-codecs  # the best or tied settings, "
@@ -38,7 +39,8 @@ def add_parser(subparsers):
     p.add_argument("--factors", default=None, metavar="A,B",
                    help="factor columns (needed for a CSV without an experiment file)")
     p.add_argument("--across", default=None, metavar="F,...",
-                   help="environment columns the default must live with (not choices); "
+                   help="further columns whose levels are conditions the default must live with "
+                        "(workloads, environments; never chosen); "
                         "'' for none even if the experiment file names some")
     p.add_argument("--also", default=None, metavar="METRIC,...",
                    help="further responses for the trade-off front, e.g. max_rss_kib; '' for none")
