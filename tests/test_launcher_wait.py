@@ -172,3 +172,25 @@ def test_a_set_up_step_that_fails_in_the_child_is_reported_not_run(mode, said):
                          env={**os.environ, "PYTHONPATH": str(root)})
     assert out.returncode == 0, out.stderr
     assert out.stdout.startswith(f"True {said}"), out.stdout
+
+
+def test_time_limits_are_kept_by_the_timer_run_after_run():
+    # A run with a time limit is woken by a timer armed before the spawn (the wait itself
+    # has no timeout). Planted truth: the limits are 0.25 s and 0.4 s; a `sleep 10` is
+    # stopped after its own limit and not before it (the timer goes off a few
+    # microseconds early, the wait must finish the rest); a quick run's timer must not
+    # stop the next run, which has no limit and sleeps past where that timer was set,
+    # nor wake the launcher over and over (a timer left readable would).
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        a = ex.execute(RunSpec(argv=("sleep", "10"), env=ENV, timeout_s=0.25))
+        b = ex.execute(RunSpec(argv=("true",), env=ENV, timeout_s=0.25))
+        before = _wakeups(ex.launcher_pid)
+        c = ex.execute(RunSpec(argv=("sleep", "0.5"), env=ENV))
+        after = _wakeups(ex.launcher_pid)
+        d = ex.execute(RunSpec(argv=("sleep", "10"), env=ENV, timeout_s=0.4))
+    assert a.status == d.status == "timeout"
+    assert "timed out after 0.25 s" in a.message and "timed out after 0.4 s" in d.message
+    assert 0.25 <= a.wall_s < 5 and 0.4 <= d.wall_s < 5, (a.wall_s, d.wall_s)
+    assert b.status == c.status == "ok", (b.message, c.message)
+    assert c.wall_s >= 0.5
+    assert after - before < 100, after - before

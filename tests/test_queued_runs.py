@@ -191,3 +191,31 @@ def test_runs_that_need_the_harness_between_them_are_not_queued(tmp_path, text):
         out = run_experiment(Experiment.from_text(text), out=tmp_path / "x", executor=counting)
     assert counting.streams == 0
     assert out.counts == {"ok": 1}
+
+
+def test_each_queued_run_is_the_one_in_the_inflight_record_while_it_runs(tmp_path):
+    # The stream builds one request per cell and copies it per run with that
+    # run's id: each run, reading the in-flight record while it runs, must find
+    # its own run id and its own pid there (what a resume relies on to stop
+    # the right process; common practice: the record names the live run). The
+    # launcher stores it right after the spawn while the child already runs,
+    # so the command waits (up to 3 s) for its own pid to appear first.
+    out = tmp_path / "res"
+    seen = tmp_path / "seen.txt"
+    wait = (f'for i in $(seq 300); do grep -qE "\\"pid\\": *$$," {out}/inflight && break; '
+            'sleep 0.01; done; ')
+    text = ("experiment: inflight\n"
+            f"command: [sh, -c, '{wait}echo $$ $(cat {out}/inflight) >> {seen}']\n"
+            "factors:\n  k: [a, b]\nreplicates: 3\nseed: 4\nhost_check: off\n")
+    with LocalExecutor() as ex:
+        counting = Counting(ex)
+        res = run_experiment(Experiment.from_text(text), out=out, executor=counting)
+    assert counting.streams == 1 and res.counts == {"ok": 6}
+    recs = J.sorted_records(json.loads(x) for x in _lines(res.folder))
+    got = [line.split(" ", 1) for line in seen.read_text().splitlines()]
+    assert len(got) == len(recs) == 6
+    for (pid, record), rec in zip(got, recs):
+        record = json.loads(record)
+        assert record["run"] == rec["run"]
+        assert record["pid"] == record["pgid"] == int(pid)
+    assert len({r["run"] for r in recs}) == 6

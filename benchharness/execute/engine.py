@@ -451,6 +451,7 @@ class QueuedRuns:
         self.engine, self.todo, self.progress = engine, todo, progress
         self.on_tick, self.mirror, self.watch = on_tick, mirror, watch
         self.by_key: dict = {}
+        self.specs: dict = {}   # id(cell) -> (cell, its RunSpec)
         self.i = 0
 
     def run(self) -> str | None:
@@ -475,13 +476,20 @@ class QueuedRuns:
     def _submit(self, stream, batch: int) -> None:
         eng = self.engine
         limit = self.i + batch
+        specs = self.specs
         while self.i < len(self.todo) and self.i < limit and stream.room():
             pr = self.todo[self.i]
             c = eng.cells.get(pr["levels"])
-            spec = run_spec((c["argv"], c["shell"]), c, eng.timeout_s, run_id=pr["run"],
-                            levels=pr["levels"], inflight_path=eng.inflight_path)
-            stream.submit(spec, pr["run"], J.record_head(pr, "warmup" if pr["warmup"] else "ok"))
-            self.by_key[pr["run"]] = (pr, c)
+            # one spec per cell, reused for its every run (the stream copies its request)
+            cs = specs.get(id(c))
+            if cs is None or cs[0] is not c:
+                cs = specs[id(c)] = (c, run_spec((c["argv"], c["shell"]), c, eng.timeout_s,
+                                                 levels=pr["levels"],
+                                                 inflight_path=eng.inflight_path))
+            run = pr["run"]
+            stream.submit(cs[1], run, J.record_head(pr, "warmup" if pr["warmup"] else "ok"),
+                          run_id=run)
+            self.by_key[run] = (pr, c)
             self.i += 1
         stream.flush()
 

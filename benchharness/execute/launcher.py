@@ -62,6 +62,7 @@ HEADER_SIZE = 4
 F_SETPIPE_SZ = 1031
 PIPE_SIZE = 1 << 20   # queue and reply pipes are widened to this where allowed
 INFLIGHT_SIZE = 256   # bytes of the in-flight record, padded with spaces
+INFLIGHT_WIDTHS = (10, 7, 7, 12, 12)  # run id, pid, pgid, start bounds: fixed widths
 CONDITIONS_EVERY_NS = 10_000_000  # runs starting this close share one reading
 DONE_BATCH = 64       # journalled runs reported to the harness at once, at most
 DONE_EVERY_NS = 20_000_000  # ... and at least this often while runs go on
@@ -359,14 +360,14 @@ class Run:
                  "path", "cap", "tails", "open_pipes", "pid", "pidfd", "t0", "t1", "deadline",
                  "slot", "start",
                  "linger_end", "timed_out", "aborted", "status_word", "rusage", "orphans",
-                 "kids")
+                 "kids", "timer")
 
     def __init__(self, req):
         self.req = req
         self.extra = {}
         self.conditions = self.pid = self.pidfd = self.t1 = self.deadline = self.slot = None
         self.linger_end = self.aborted = self.status_word = self.rusage = self.kids = None
-        self.timed_out = False
+        self.timed_out = self.timer = False
         self.orphans = []
 
     def failed(self, message):
@@ -451,7 +452,7 @@ class Launcher:
             self.clear_refs = None
         self.children_path = f"/proc/{self.pid}/task/{self.pid}/children"
         self.children_fd = None
-        self.inflight_maps = {}  # in-flight record path -> shared mapping of it
+        self.inflight_maps = {}  # (path, inode) -> [shared mapping, template, boot, last length]
         self.env = {}
         self.resolved = {}  # (command, PATH, cwd) -> executable path
         self.leftovers = set()   # live descendants that earlier runs left behind
@@ -461,6 +462,8 @@ class Launcher:
         self.tail_size = 0       # the output rings (`Tail`), made for the first run
         self.out_tail = self.err_tail = None
         self.stop = False
+        self.timer_fd = None     # a timerfd for runs with a time limit (`arm_timer`)
+        self.timer_spec = self.timer_settime = None
 
     # ---- capabilities
 
@@ -499,9 +502,13 @@ class Launcher:
         return cond
 
     def inflight_slot(self, inflight):
-        """(shared mapping of the in-flight file, record text with four ``%d`` for
-        the child's pid and process group and the bounds of its start time), or
-        None if the file cannot be mapped.
+        """(shared mapping of the in-flight file, record template, run id), or
+        None if the file cannot be mapped. The template is bytes with five
+        ``%d`` (run id, the child's pid and process group, the bounds of its
+        start time), made once per file: numbers right-aligned in fixed widths
+        (JSON allows the spaces), so records are all of one length
+        and the store after the spawn is one format and one copy (see
+        `record_inflight`).
 
         The launcher records each running child there (for a later resume), by
         a store into the mapping: the page cache is what a resume reads, and a
@@ -514,27 +521,37 @@ class Launcher:
         it is that very process.
         """
         path, run_id, boot = inflight[:3]
-        key = tuple(inflight[::3])  # path and, when given, the file's inode number
+        key = (inflight[0], *inflight[3:])  # path and, when given, the file's inode number
         maps = self.inflight_maps
         m = maps.get(key)
+        if m is not None and m[2] == boot:
+            return m, run_id
         if m is None:
             for old in maps.values():  # one folder at a time: release the last one
-                old.close()
+                old[0].close()
             maps.clear()
             try:
                 fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
                 try:
                     if os.fstat(fd).st_size < INFLIGHT_SIZE:
                         os.pwrite(fd, b" " * INFLIGHT_SIZE, 0)
-                    m = maps[key] = mmap.mmap(fd, INFLIGHT_SIZE)
+                    m = mmap.mmap(fd, INFLIGHT_SIZE)
                 finally:
                     os.close(fd)
             except (OSError, ValueError):
                 return None  # the record helps a later resume; the run itself goes on
-        return m, ('{"run":%d,"pid":%%d,"pgid":%%d,"start":[%%d,%%d],"boot":"%s",'
-                   '"launcher":%d,"lstart":%d,"harness":%d,"hstart":%d}'
-                   % (run_id, boot, self.pid, self.start or -1, self.harness,
-                      self.harness_start or -1))
+        else:
+            m = m[0]
+        text = ('{"run":%%%dd,"pid":%%%dd,"pgid":%%%dd,"start":[%%%dd,%%%dd],"boot":"%s",'
+                '"launcher":%d,"lstart":%d,"harness":%d,"hstart":%d}'
+                % (*INFLIGHT_WIDTHS, boot, self.pid, self.start or -1, self.harness,
+                   self.harness_start or -1)).encode("ascii", "replace")
+        if len(text % tuple(10 ** w - 1 for w in INFLIGHT_WIDTHS)) > INFLIGHT_SIZE:
+            maps.pop(key, None)
+            m.close()  # an odd boot id: no record rather than a cut one
+            return None
+        entry = maps[key] = [m, text, boot, -1]  # ..., length of the last record stored
+        return entry, run_id
 
     def memory_floor(self):
         """The peak resident size (KiB) a run that uses almost no memory records.
@@ -783,6 +800,9 @@ class Launcher:
         """Spawn the child (the timed window opens) and set up its pidfd;
         the error message when it could not start, else None."""
         g = run.req.get
+        timeout_s = g("timeout_s")
+        if timeout_s is not None:
+            run.timer = self.arm_timer(timeout_s)
         # The boot clock before and after the spawn bound the child's start time.
         start_lo = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
         pid, t0, err = self.spawn(run.path, run.argv, run.env, g("cpus"), g("nice"),
@@ -795,6 +815,8 @@ class Launcher:
                 pid, t0, err = self.spawn(path, run.argv, run.env, g("cpus"), g("nice"),
                                           g("no_aslr"))
         if pid is None:
+            if run.timer:
+                self.disarm_timer(run)
             return err
         pidfd = run.pidfd = os.pidfd_open(pid)
         self.pipe_poller.register(pidfd, select.POLLIN)
@@ -806,7 +828,6 @@ class Launcher:
             start_hi = run.start[1]
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid,
                             "start": (start_lo, start_hi)})
-        timeout_s = g("timeout_s")
         run.deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
         return None
 
@@ -825,6 +846,8 @@ class Launcher:
                 if wait_ns is not None and wait_ns <= 0:
                     self.stop_tree(run, linger_ns, timed_out=True)
                     continue
+                if run.timer:
+                    wait_ns = None  # the timer wakes us (see `arm_timer`)
             else:
                 if not run.open_pipes or now >= run.linger_end:
                     break
@@ -834,6 +857,8 @@ class Launcher:
                 for fd, _ev in events:
                     if fd == pidfd:
                         run.t1 = time.perf_counter_ns()
+                        if run.timer:
+                            self.disarm_timer(run)
                         poller.unregister(pidfd)
                         self.settle(run)
                         run.linger_end = run.t1 + linger_ns
@@ -854,6 +879,60 @@ class Launcher:
                     run.open_pipes.discard(fd)
             elif fd == self.rfd and run.aborted is None:
                 self.interrupted(run, linger_ns)
+            elif fd == self.timer_fd:
+                try:
+                    os.read(fd, 8)  # the time limit is near: the loop checks it
+                except OSError:
+                    pass
+                run.timer = False
+
+    def arm_timer(self, timeout_s):
+        """Arm the timerfd to go off ``timeout_s`` from now; False where there is none.
+
+        Made before the spawn, so the wait after it can block with no timeout:
+        measured (experiments/bench/launcher_window.py), a ``poll`` with a far
+        but finite timeout saw ``/bin/true``'s exit later (its ``wall_s``
+        x1.011 the bare runs') than one without. The timer goes off a few
+        microseconds before the deadline (it starts before the clock does);
+        the wait then finishes with an ordinary timeout.
+        """
+        fd = self.timer_fd
+        if fd is None:
+            fd = self.timer_fd = self._make_timer()
+            if fd and self.pipe_poller is not None:
+                self.pipe_poller.register(fd, select.POLLIN)
+        if not fd:
+            return False
+        spec = self.timer_spec
+        sec = int(timeout_s)
+        ns = int((timeout_s - sec) * 1e9)
+        if sec == 0 and ns == 0:
+            ns = 1  # zero would disarm it
+        spec[2], spec[3] = sec, ns
+        return self.timer_settime(fd, 0, spec, None) == 0
+
+    def disarm_timer(self, run):
+        spec = self.timer_spec
+        spec[2] = spec[3] = 0
+        self.timer_settime(self.timer_fd, 0, spec, None)
+        run.timer = False
+
+    def _make_timer(self):
+        """A non-blocking, close-on-exec ``timerfd`` on the monotonic clock
+        (through the C library: no ``os.timerfd_create`` before Python 3.13),
+        or False."""
+        libc, ct = self.libc, self.ctypes
+        try:
+            fd = libc.timerfd_create(time.CLOCK_MONOTONIC, os.O_NONBLOCK | os.O_CLOEXEC)
+            if fd < 0:
+                return False
+            self.timer_spec = (ct.c_long * 4)()  # struct itimerspec: interval, value
+            settime = libc.timerfd_settime
+            settime.argtypes = (ct.c_int, ct.c_int, ct.c_void_p, ct.c_void_p)
+            self.timer_settime = settime
+            return fd
+        except (AttributeError, OSError, TypeError):
+            return False
 
     @staticmethod
     def record_inflight(run):
@@ -868,9 +947,16 @@ class Launcher:
         over, and resume signals nothing that is not still the recorded
         process.)
         """
-        m, text = run.slot
+        entry, run_id = run.slot
         run.slot = None
-        m[:] = (text % (run.pid, run.pid, *run.start)).encode().ljust(INFLIGHT_SIZE)
+        pid = run.pid
+        rec = entry[1] % (run_id, pid, pid, *run.start)
+        n = len(rec)
+        if n == entry[3]:
+            entry[0][:n] = rec   # the rest already holds spaces (the last store padded it)
+        else:
+            entry[0][:] = rec.ljust(INFLIGHT_SIZE)
+            entry[3] = n
 
     def interrupted(self, run, linger_ns):
         """A message on the request pipe during a run: the harness went away
@@ -894,6 +980,8 @@ class Launcher:
     def stop_tree(self, run, linger_ns, timed_out=False):
         """Kill the run's whole tree; the timed window closes at the reap."""
         run.timed_out = timed_out
+        if run.timer:
+            self.disarm_timer(run)
         self.kill_tree(run, float(run.req.get("kill_grace_s", 0.5)))
         run.t1 = time.perf_counter_ns()
         self.release()
@@ -1087,6 +1175,8 @@ class Launcher:
             poller = select.poll()
             for fd in (out_r, err_r, self.rfd):
                 poller.register(fd, select.POLLIN)
+            if self.timer_fd:
+                poller.register(self.timer_fd, select.POLLIN)
             self.pipe_poller = poller
         return self.pipes
 
@@ -1134,7 +1224,7 @@ class Launcher:
             if req is None or not self.handle(req):
                 break
         for m in self.inflight_maps.values():
-            m.close()
+            m[0].close()
 
     def take_input(self, block=False):
         """Read what the pipes hold: queued batches, or one request-pipe message.

@@ -865,8 +865,11 @@ class RunsCsvWriter:
         row = row_values(rec, self.factors, self.cols, self.floor_kib)
         # Only the later columns and the metrics can hold true/false (written as
         # such, not as Python's True/False); the fixed ones never do.
-        if True in map(_is_bool, row[self.fixed:]):
-            row = [_csv_value(v) for v in row]
+        # (Only those are converted: the csv writer renders every other value as
+        # `_csv_value` would, and the floor mark is a bool in every row.)
+        fixed = self.fixed
+        if True in map(_is_bool, row[fixed:]):
+            row[fixed:] = [_csv_value(v) if v.__class__ is bool else v for v in row[fixed:]]
         self.writer.writerow(row)
 
     def add_all(self, records: Iterable[Mapping]) -> None:
