@@ -153,7 +153,7 @@ def format_plan(exp, plan, show: int = 12) -> str:
                      "--response to ask about another)")
     seed_note = "" if exp.seed is not None else " (drawn now; set seed: in the file to fix it)"
     lines.append(f"cells       {plan.cells}")
-    lines.append(f"timed runs  {plan.timed_runs} ({exp.replicates} per cell)")
+    lines.append(f"timed runs  {plan.timed_runs} ({_per_cell(plan, exp.replicates)})")
     lines.append(f"warm-up     {plural(plan.warmup_runs, 'untimed run')}")
     lines.append(f"order       {plan.order}, seed {plan.seed}{seed_note}")
     from benchharness.design.spec import DESIGN_INFO_KEYS, describe_info
@@ -179,6 +179,21 @@ def format_plan(exp, plan, show: int = 12) -> str:
         for row in rows:
             lines.append(("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths))).rstrip())
     return "\n".join(lines)
+
+
+def _per_cell(plan, replicates: int) -> str:
+    """"2 per cell", and for a cell the design lists several times in each replicate (a
+    response surface's centre) how many runs it gets: those copies are its runs."""
+    from benchharness.numbers import plural
+
+    said = f"{replicates} per cell"
+    for levels, copies in plan.repeated:
+        where = ", ".join(f"{k}={v}" for k, v in levels.items())
+        centre = "the centre " if plan.info.get("design", {}).get("type") == \
+            "response-surface" else ""
+        said += (f"; {copies * replicates} at {centre}{where}: {copies} in each of "
+                 f"{plural(replicates, 'replicate')}")
+    return said
 
 
 def _roles_line(roles) -> str:

@@ -52,11 +52,14 @@ class PlannedRun:
 @dataclass(frozen=True)
 class Plan:
     factors: tuple[str, ...]
-    cells: int
+    cells: int                      # distinct combinations of levels (a cell run twice is one)
     seed: int
     order: str
     runs: tuple[PlannedRun, ...]
     info: Mapping[str, object] = field(default_factory=dict)  # design facts (aliases, ...)
+    #: cells a design lists more than once in each replicate (a response surface's centre):
+    #: ((levels, copies per replicate), ...); their copies are runs, not cells
+    repeated: tuple = ()
 
     @property
     def timed_runs(self) -> int:
@@ -131,7 +134,7 @@ def make_plan(exp: Experiment, seed: int | None = None,
     if order == "listed":
         c, r, b = _listed_order(all_cells, reps, rep_range, blocks_of_cell, order)
     elif order == "blocked" or blocks_of_cell is not None:
-        c, r, b = _blocked_order(rng, all_cells, rep_range, blocks_of_cell, order)
+        c, r, b = _blocked_order(rng, all_cells, rep_range, blocks_of_cell)
     else:
         c, r, b = _randomized_order(rng, n_cells, reps, rep_range)
 
@@ -140,8 +143,27 @@ def make_plan(exp: Experiment, seed: int | None = None,
             for pos, ci in enumerate(warm_c.tolist())]
     runs += [_planned(first_run + n_w + pos, bi, ri, False, cell_list[ci], ci)
              for pos, (ci, ri, bi) in enumerate(zip(c.tolist(), r.tolist(), b.tolist()))]
-    return Plan(factors=exp.factor_names, cells=n_cells, seed=int(seed), order=order,
-                runs=tuple(runs), info=dict(info or {}))
+    distinct, repeated = ((n_cells, ()) if cells is None   # a full factorial: all distinct
+                          else _distinct_cells(cell_list))
+    return Plan(factors=exp.factor_names, cells=distinct, seed=int(seed), order=order,
+                runs=tuple(runs), info=dict(info or {}), repeated=repeated)
+
+
+def _distinct_cells(cell_list) -> tuple[int, tuple]:
+    """(distinct cells, the cells listed more than once with their copies): a response
+    surface lists its centre several times in each replicate; those copies are replicate
+    runs of one cell (Box & Wilson 1951), not further cells. (Every cell lists the
+    factors in the same order, so its values are its key.)"""
+    keys = [tuple(c.values()) for c in cell_list]
+    distinct = set(keys)
+    if len(distinct) == len(keys):
+        return len(keys), ()
+    copies: dict[tuple, int] = {}
+    first: dict[tuple, Mapping[str, str]] = {}
+    for key, c in zip(keys, cell_list):
+        copies[key] = copies.get(key, 0) + 1
+        first.setdefault(key, c)
+    return len(copies), tuple((dict(first[k]), n) for k, n in copies.items() if n > 1)
 
 
 def _listed_order(all_cells, reps, rep_range, blocks_of_cell, order):
@@ -153,12 +175,12 @@ def _listed_order(all_cells, reps, rep_range, blocks_of_cell, order):
     c = np.repeat(all_cells, reps)
     r = np.tile(rep_range, n_cells)
     b = (r if order == "blocked" else np.ones_like(r)) if blocks_of_cell is None else \
-        np.array([_block(blocks_of_cell, int(ci), int(ri), order)
+        np.array([_block(blocks_of_cell, int(ci), int(ri))
                   for ci, ri in zip(c, r)], dtype=np.int64)
     return c, r, b
 
 
-def _blocked_order(rng, all_cells, rep_range, blocks_of_cell, order):
+def _blocked_order(rng, all_cells, rep_range, blocks_of_cell):
     """``(cells, replicates, blocks)`` run block by block: each replicate (or each design
     block of it) complete and in random order."""
     import numpy as np
@@ -172,14 +194,14 @@ def _blocked_order(rng, all_cells, rep_range, blocks_of_cell, order):
             rs.append(np.full(n_cells, rep))
             bs.append(np.full(n_cells, rep))
         else:
-            _design_blocks(rng, blocks_of_cell, n_cells, rep, order, cs, rs, bs)
+            _design_blocks(rng, blocks_of_cell, n_cells, rep, cs, rs, bs)
     c = np.concatenate(cs) if cs else all_cells[:0]
     r = np.concatenate(rs) if rs else all_cells[:0]
     b = np.concatenate(bs) if bs else all_cells[:0]
     return c, r, b
 
 
-def _design_blocks(rng, blocks_of_cell, n_cells, rep, order, cs, rs, bs) -> None:
+def _design_blocks(rng, blocks_of_cell, n_cells, rep, cs, rs, bs) -> None:
     """One replicate of a design confounded with blocks, appended to ``cs, rs, bs``: each
     design block runs complete and in random order; the blocks of a replicate follow one
     another in random order."""
@@ -190,7 +212,7 @@ def _design_blocks(rng, blocks_of_cell, n_cells, rep, order, cs, rs, bs) -> None
             ci = members[int(i)]
             cs.append([ci])
             rs.append([rep])
-            bs.append([_block(blocks_of_cell, ci, rep, order)])
+            bs.append([_block(blocks_of_cell, ci, rep)])
 
 
 def _randomized_order(rng, n_cells, reps, rep_range):
@@ -213,8 +235,8 @@ def _planned(pos: int, block: int, replicate: int, warmup: bool, levels, cell: i
     return pr
 
 
-def _block(blocks_of_cell, c: int, r: int, order: str) -> int:
-    if blocks_of_cell is None:
-        return r if order == "blocked" else 1
+def _block(blocks_of_cell, c: int, r: int) -> int:
+    """The block of cell ``c`` in replicate ``r`` of a design confounded with blocks
+    (``blocks_of_cell`` given: both callers handle the plain orders themselves)."""
     nb = max(blocks_of_cell) + 1
     return (r - 1) * nb + blocks_of_cell[c] + 1

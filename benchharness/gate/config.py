@@ -200,11 +200,10 @@ def _check_response(exp, response: str, node) -> None:
         return
     from benchharness.experiment.yamlnodes import node_error, suggest
 
-    hint = suggest(response, known)
-    msg = (f"the gate's response {response!r} is not measured by this experiment; "
-           + (hint.replace("known keys", "known responses") if hint else
-              "use one of: " + ", ".join(known))
-           + " (a custom metric needs a 'metrics:' entry in an experiment file)")
+    # suggest() always answers: the closest name, else the list of known ones
+    hint = suggest(response, known).replace("known keys", "known responses")
+    msg = (f"the gate's response {response!r} is not measured by this experiment; {hint}"
+           " (a custom metric needs a 'metrics:' entry in an experiment file)")
     if node is not None:
         raise node_error(node, msg)
     raise UsageError(f"--response: {msg}")
