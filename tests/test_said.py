@@ -205,3 +205,44 @@ def test_each_note_is_printed_once(capsys, tmp_path):
     plain = capsys.readouterr().out
     assert plain.count("cache=on, size=large, mode=y") == 1
     assert plain.count("rank-based cross-check disagrees") == 1
+
+
+def test_analyze_and_choose_draw_one_tied_set_on_the_committed_example():
+    from pathlib import Path
+
+    from benchharness.choose import choose
+    from benchharness.results.journal import load_results
+
+    folder = Path(__file__).resolve().parents[1] / "results" / "example-archive-codecs"
+    res = load_results(folder)
+    an = analyze(res)
+    (best,) = [f for f in an.findings if f["kind"] == "best"]
+    ch = choose(res)
+    # zlib at levels 1 and 6 differ by 1.06x: analyze called them tied and choose called
+    # level 1 better than every other setting; one method now draws both
+    assert sorted(map(str, best["cells"])) == sorted(map(str, ch.tied))
+    assert len(ch.tied) == 2
+    assert "cannot be told apart from the best" in best["statement"]
+    assert "intervals adjusted for the comparisons with the best" in best["statement"]
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_a_tie_of_two_settings_is_the_two_sided_t_test_in_analyze_and_choose(seed):
+    from scipy import stats
+
+    from benchharness.choose import choose
+
+    rng = np.random.default_rng(seed)
+    # two builds 4% apart, 6 runs each, 4% noise: sometimes told apart, sometimes not
+    df = pd.DataFrame({"build": ["old"] * 6 + ["new"] * 6,
+                       "wall_s": np.exp(np.r_[np.zeros(6), np.full(6, np.log(1.04))]
+                                        + rng.normal(0, 0.04, 12))})
+    an = analyze(df, factors=["build"])
+    (best,) = [f for f in an.findings if f["kind"] == "best"]
+    ch = choose(df, factors=["build"])
+    z = np.log(df["wall_s"])
+    # scipy's two-sample t test on the log scale (the pooled-variance test the one-factor
+    # ANOVA is): tied exactly when it does not reject at 5%
+    p = stats.ttest_ind(z[df.build == "old"], z[df.build == "new"]).pvalue
+    assert (len(best["cells"]) == 2) == (p >= 0.05)
+    assert (len(ch.tied) == 2) == (p >= 0.05)

@@ -7,10 +7,13 @@ Owns two steps:
   set unless some other cell is better by more than ``d`` standard errors of
   their difference (Gupta's subset selection, Gupta 1965, *Technometrics* 7:225;
   its equivalence with constrained multiple comparisons with the best is
-  Hsu 1984, *Annals of Statistics* 12:1136). ``d`` is the two-sided Bonferroni
-  t quantile over the ``k − 1`` comparisons with the best: conservative, valid
-  for the correlated estimates of any model, and for two cells exactly the
-  ordinary t test, so a tied pair never contradicts a main effect.
+  Hsu 1984, *Annals of Statistics* 12:1136). ``d`` is each cell's own critical
+  value of Hsu's multiple comparisons with the best (Dunnett 1955's one-sided
+  many-to-one quantile, `analysis.mcb`, at ``tie_confidence``): the method and
+  level `choose` uses, so the two commands never word one tie two ways; for two
+  cells exactly the ordinary two-sided t test, so a tied pair never contradicts
+  a main effect. The weights treat the cell estimates as independent (exact
+  for a full model's cell means); past `MCB_MAX_CELLS` the Bonferroni quantile.
 * ``derive`` — the ONE function that turns the analysis (plain data, as in
   ``analysis.json``) into ``findings``: a list of dicts with ``kind`` (main,
   interaction, simple effect, trend, scaling, best, caution), ``terms``, ``factors``,
@@ -36,6 +39,7 @@ import math
 import re
 
 from benchharness import numbers as _numbers
+from benchharness.analysis.trend_words import adjusted_words
 
 KINDS = ("surface", "interaction", "simple effect", "main", "trend", "scaling", "best",
          "caution")
@@ -138,8 +142,9 @@ def _tested_ties(fit, Lk, b, d: float, k: int) -> list[int]:
     V = (Lk @ fit.cov_unscaled @ Lk.T) * fit.mse
     dv = np.diag(V)
     se_diff = np.sqrt(np.maximum(dv[:, None] + dv[None, :] - 2 * V, 0.0))
-    # cell i leaves the tied set when some j is better by more than d·se
-    margin = (b[:, None] - b[None, :]) - d * se_diff
+    # cell i leaves the tied set when some j is better by more than d_i·se (d_i: cell i's
+    # own critical value against the others)
+    margin = (b[:, None] - b[None, :]) - np.asarray(d)[:, None] * se_diff
     np.fill_diagonal(margin, -np.inf)
     return [int(i) for i in range(k) if not np.any(margin[i] > 0)]
 
@@ -225,18 +230,45 @@ def _estimable_cells(combos, est, ok, ran):
     return keep
 
 
+#: up to this many cells each cell's critical value is Hsu's exact one (Dunnett's
+#: one-sided many-to-one quantile at `analysis.mcb.tie_confidence`); above, the Bonferroni
+#: t quantile over the k − 1 comparisons at the same level, never smaller (conservative)
+MCB_MAX_CELLS = 500
+
+
+def critical_per_cell(fit, Lk, k: int, alpha: float):
+    """The one-sided critical value of each listed cell against all the others: Hsu's
+    multiple comparisons with the best (Hsu 1984; `analysis.mcb`), the method `choose`
+    uses, so the two commands draw one tied set from one model. Each cell's weight is the
+    variance of its estimate over σ²; the estimates are taken as independent (exact for
+    the cell means of a full model)."""
+    import numpy as np
+
+    from benchharness.analysis import dist as stats
+
+    n = min(k, Lk.shape[0])
+    if k > MCB_MAX_CELLS:
+        return np.full(n, float(stats.t.ppf(1 - alpha / (2 * (k - 1)), fit.df_resid)))
+    from benchharness.analysis.mcb import critical_values, tie_confidence
+
+    w = np.einsum("ij,jk,ik->i", Lk, fit.cov_unscaled, Lk)
+    return critical_values(np.maximum(w, 1e-300), float(fit.df_resid),
+                           tie_confidence(1 - alpha), decimals=12 if k <= 20 else 3)
+
+
 def _ties_and_margins(fit, Lk, bad, k: int, alpha: float, choice, out: dict) -> None:
     """Fill ``out``'s critical value, tied set, runner-up and best cell outside the ties.
 
     ``bad`` is the ordered "badness" (smaller is better) of the ``k`` cells, ``Lk`` the
-    contrast rows of the listed ones; the ties use the Bonferroni-adjusted t quantile
-    over the ``k - 1`` comparisons with the best.
+    contrast rows of the listed ones; the ties use each cell's critical value of the
+    multiple comparisons with the best (`critical_per_cell`), and a cell's ratio to the
+    best is given with that value, so its interval excludes 1× when it is outside the
+    tied set because of the best.
     """
-    from benchharness.analysis import dist as stats
-
     have_error = fit.df_resid > 0 and math.isfinite(fit.mse) and fit.mse > 0
-    d = float(stats.t.ppf(1 - alpha / (2 * (k - 1)), fit.df_resid)) if have_error else None
-    out["critical"] = d
+    d = critical_per_cell(fit, Lk, k, alpha) if have_error else None
+    out["critical"] = float(d[0]) if d is not None else None
+    out["method"] = "comparisons with the best (Hsu)" if have_error else None
     best = 0
     if have_error and k <= MAX_CELLS_FOR_TIES:
         out["tied"] = _tested_ties(fit, Lk, bad, d, k)
@@ -244,10 +276,12 @@ def _ties_and_margins(fit, Lk, bad, k: int, alpha: float, choice, out: dict) -> 
     elif not have_error:
         out["tied"] = _exact_ties(bad[:MAX_CELLS_LISTED])
 
-    out["runner_up"] = _against_best(fit, Lk, 1, best, choice, have_error, d, out)
+    out["runner_up"] = _against_best(fit, Lk, 1, best, choice, have_error,
+                                     None if d is None else float(d[1]), out)
     outside = [i for i in range(1, min(k, MAX_CELLS_LISTED)) if i not in out["tied"]]
     if out["tested"] and outside and outside[0] != 1:
-        out["outside"] = _against_best(fit, Lk, outside[0], best, choice, have_error, d, out)
+        out["outside"] = _against_best(fit, Lk, outside[0], best, choice, have_error,
+                                       float(d[outside[0]]), out)
 
 
 def _num(x):
@@ -416,7 +450,9 @@ def _two_factor_findings(r, pf, aliased, alias_text, comps, refs, alpha, conf) -
                 f"{fmt_ratio(c['ratio'])} {fmt_interval(c['lower'], c['upper'])} "
                 f"when {y}={c['within'][y]}" for c in cs)
             parts.append(f"{x}={lv} against {x}={cs[0]['b']}: {each}")
-        clauses.append(" | ".join(parts))
+        adj = rowsx[0].get("adjust")
+        clauses.append(" | ".join(parts) + (f" ({adjusted_words(adj)} within each level of "
+                                            f"{y})" if adj else ""))
     # called significant only when a stated simple effect agrees (no comparisons
     # made: the F test alone)
     agrees = not simple or any(x["significant"] for x in simple)
@@ -497,9 +533,15 @@ def _simple_finding(c, x, y, term, alpha) -> dict:
     return {"kind": "simple effect", "terms": [term], "factors": [x, y], "significant": sig,
             "factor": x, "level": c["a"], "reference": c["b"], "within": dict(c["within"]),
             "ratio": c.get("ratio"), "lower": lo, "upper": hi, "p": c.get("p_adj"),
+            "adjusted": adjusted_words(c["adjust"]) if c.get("adjust") else None,
             "statement": (f"{x}={c['a']} against {x}={c['b']} when {y}={c['within'][y]}: "
                           f"{fmt_ratio(c.get('ratio'))} {fmt_interval(lo, hi)} "
-                          f"({fmt_p(c.get('p_adj'))}, {words})")}
+                          f"({_adjusted_prefix(c)}{fmt_p(c.get('p_adj'))}, {words})")}
+
+
+def _adjusted_prefix(c: dict) -> str:
+    """``Bonferroni-adjusted: `` before a comparison's p and interval when adjusted."""
+    return f"{adjusted_words(c['adjust'])}: " if c.get("adjust") else ""
 
 
 def _excludes_one(c: dict) -> bool:
@@ -544,6 +586,13 @@ def _stated_comparisons(f, comps, effects, refs) -> list[dict]:
             for c in stated if c.get("ratio") is not None]
 
 
+def _family_label(stated: list[dict]) -> str:
+    """``Tukey-adjusted`` when the stated ratios' intervals come from an adjusted family
+    (the comparisons), '' when they are the effects table's own (unadjusted) intervals."""
+    adj = {c.get("adjust") for c in stated if c.get("p_adj") is not None and c.get("adjust")}
+    return adjusted_words(adj.pop()) if len(adj) == 1 else ""
+
+
 def _where_keys(e: dict) -> dict:
     """What an effects-table ratio says about where it holds (``over``/``left_out``: the
     combinations where both levels ran; ``nested_over``: a nested factor's levels averaged
@@ -562,6 +611,8 @@ def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, 
                         f"{fmt_interval(c.get('lower'), c.get('upper'))}{_where_both(c)}"
                         for c in stated[:6]) + (" …" if len(stated) > 6 else "")
     against = f" against {f}={stated[0]['b']}" if stated else ""
+    adj = _family_label(stated)
+    against += f" ({adj} {conf} intervals)" if adj else ""
     if p < alpha:
         # pairs not involving the reference can carry the difference as well
         all_tk = [c for c in comps if c.get("method") == "tukey" and c.get("factor") == f]
@@ -628,7 +679,8 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
               default=None)
     if big is not None:
         base.update(ratio=big["ratio"], lower=big.get("lower"), upper=big.get("upper"),
-                    level=big["a"], reference=big["b"])
+                    level=big["a"], reference=big["b"],
+                    adjusted=_family_label([big]) or None)
         if big.get("nested_over"):      # the headline says what this ratio averages over
             base["qualifier"] = _where_both({**big, "over": None})[2:-1]
     significant, statement = _main_statement(r, f, alias_text, also, stated, comps, higher,
@@ -653,6 +705,13 @@ def _untested_best_text(cells, tied, ru, where) -> str:
     if ru is not None:
         text += f"; runner-up {cell_text(cells[ru['cell']]['levels'])} at {fmt_ratio(ru['ratio'])}"
     return text
+
+
+#: the one phrase for settings whose difference from the best is not detectable, shared by
+#: analyze's findings and report and by choose (`choose.render`, `choose._top_reasons`)
+TIE_WORDS = "cannot be told apart from the best"
+#: how the best-cell finding's intervals were adjusted (`critical_per_cell`)
+ADJUSTED_WITH_BEST = "intervals adjusted for the comparisons with the best (Hsu, as in choose)"
 
 
 def _settings_tail(best: dict) -> str:
@@ -700,16 +759,17 @@ def _best_finding(best: dict, conf: str) -> dict:
                     runner_up=cells[ru["cell"]]["levels"])
     if not best.get("tested"):
         return {**base, "statement": _untested_best_text(cells, tied, ru, where) + tail}
+    tail = "; " + ADJUSTED_WITH_BEST + tail
     if len(tied) == 1:
         base["significant"] = True
         return {**base, "statement": f"Best: {where}, ahead of every other cell at {conf}; "
                                      + ru_text(ru, "the runner-up") + f" ({worse})" + tail}
     if len(tied) == len(cells):
         base["significant"] = False
-        return {**base, "statement": f"No cell is distinguishable from the best: all "
-                                     f"{len(cells)} are tied at {conf}; best measured {where}; "
+        return {**base, "statement": f"No cell can be told apart from the best at {conf}: "
+                                     f"all {len(cells)} are tied; best measured {where}; "
                                      + ru_text(ru, "runner-up") + tail}
-    text = (f"Tied for best at {conf} ({len(tied)} of {len(cells)} cells): "
+    text = (f"Tied for best at {conf} ({len(tied)} of {len(cells)} cells {TIE_WORDS}): "
             f"{_named_cells(cells, tied)}; best measured {where}; " + ru_text(ru, "runner-up"))
     if best.get("outside"):
         text += "; the best cell outside the tied set, " + ru_text(best["outside"], "")[1:]

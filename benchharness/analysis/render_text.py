@@ -92,7 +92,7 @@ def _effects_lines(d: dict, t: dict) -> list[str]:
     """Each level against its reference, with a note when the ratios are approximate."""
     lines = []
     if d["effects"]:
-        lines.append("Effects (each level against its reference)")
+        lines.append("Effects (each level against its reference; unadjusted intervals)")
         if t["name"] != "log":
             lines.append("  (ratios of back-transformed means; their intervals are approximate"
                          + (", differences are exact" if t["name"] == "none" else "") + ")")

@@ -284,8 +284,10 @@ def _differ_materially(per: list[dict]) -> bool:
     return lo["upper"] < hi["lower"]
 
 
-def _adjusted_words(adjust) -> str:
-    """How an interval of the simple effects was adjusted, in a few words."""
+def adjusted_words(adjust) -> str:
+    """How a family of intervals was adjusted, in a word every output uses beside them
+    (``Tukey-adjusted``, ``Bonferroni-adjusted``, ``Holm-adjusted``): two intervals of one
+    quantity that differ by their adjustment say so."""
     return {"bonferroni": "Bonferroni-adjusted", "holm": "Holm-adjusted",
             "tukey": "Tukey-adjusted"}.get(str(adjust or ""), "adjusted")
 
@@ -308,7 +310,7 @@ def _depends_short(name: str, base: str, top: dict, dep: dict) -> str:
                 f"at {y}={s['level']}")
 
     return (f"the speed-up of {name}={top['level']} over {base} depends on {y}: "
-            f"from {one(lo)} to {one(hi)} ({_adjusted_words(lo['adjust'])}; {avg})")
+            f"from {one(lo)} to {one(hi)} ({adjusted_words(lo['adjust'])}; {avg})")
 
 
 def _depends_text(name: str, top: dict, dep: dict) -> str:
@@ -322,7 +324,7 @@ def _depends_text(name: str, top: dict, dep: dict) -> str:
     each = "; ".join(f"{_numbers.fmt_ratio(s['speedup'])} "
                      f"[{_numbers.fmt_ratio_interval(s['lower'], s['upper'])}] at {y}={s['level']}"
                      for s in dep["per_level"])
-    return f"{head}: {each} ({_adjusted_words(dep['per_level'][0]['adjust'])} intervals)"
+    return f"{head}: {each} ({adjusted_words(dep['per_level'][0]['adjust'])} intervals)"
 
 
 def _serial_only(sc: dict, name: str) -> dict | None:

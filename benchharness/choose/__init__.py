@@ -362,12 +362,13 @@ def _judge(names, full, main, default, declared, confidence, eligible, dominated
            pareto_idx, also, ask, limit_results) -> "_Judgement":
     """Hsu's comparisons with the best among the eligible settings (ties going the way
     of the declared default) and the robust choice across the conditions."""
-    from benchharness.choose.mcb import mcb
+    from benchharness.choose.mcb import mcb, tie_confidence
     from benchharness.choose.prefer import preference_rank
     from benchharness.choose.robust import robust_choice
 
     rank = preference_rank(main.settings, names, default, declared, main.goodness)
-    res = mcb(main.goodness, main.weights, main.sigma, main.df, confidence)
+    # the tie drawn as analyze draws it (`analysis.mcb.tie_confidence`): one tied set
+    res = mcb(main.goodness, main.weights, main.sigma, main.df, tie_confidence(confidence))
     tied_idx = [i for i in range(len(main.settings)) if res.tied[i]]
     tied_idx.sort(key=lambda i: rank[i])
     best_i = tied_idx[0]

@@ -12,6 +12,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
+from benchharness.analysis.findings import TIE_WORDS
 from benchharness.report.data import ReportData, finite
 from benchharness.report.units import (
     describe, fmt_num, fmt_p, fmt_ratio, fmt_ratio_interval, fmt_value, plural, unit_of,
@@ -180,6 +181,7 @@ def _headline_clause(f: dict, found: list[dict], numeric: dict[str, str], fr, fi
             lead += (f" ({f['factors'][0]}={f['level']} {fr(f['ratio'])} "
                      f"{fi(f.get('lower'), f.get('upper'))} against "
                      f"{f['factors'][0]}={f['reference']}"
+                     + (f", {f['adjusted']}" if f.get("adjusted") else "")
                      + (f"; {f['qualifier']})" if f.get("qualifier") else ")"))
         return "said", lead
     if f.get("untested"):
@@ -255,7 +257,8 @@ def _interaction_clause(inter: dict, found: list[dict], fr, fi, most: int = 4) -
         fs = [f for f in fs if f is lo or f is hi]
     each = "; ".join(f"{fr(f['ratio'])} {fi(f.get('lower'), f.get('upper'))} when "
                      f"{y}={f['within'][y]}" for f in fs)
-    return f"{x}={level} against {x}={fs[0]['reference']}: {each}"
+    adj = f"; {fs[0]['adjusted']}" if fs[0].get("adjusted") else ""
+    return f"{x}={level} against {x}={fs[0]['reference']}: {each}{adj}"
 
 
 def _recommendation(data: ReportData, f: dict) -> str | None:
@@ -272,10 +275,9 @@ def _recommendation(data: ReportData, f: dict) -> str | None:
         return ("Recommended: " + cell_label(top, list(top)) + f" ({how}; "
                 + "; ".join(cell_label(c, list(c)) for c in others[:5])
                 + (" …" if len(others) > 5 else "")
-                + (" is" if len(others) == 1 else " are")
-                + " not distinguishable from it)")
+                + f" {TIE_WORDS.replace('the best', 'it')})")
     if cells:
-        return "No recommendation: no cell is distinguishable from the best"
+        return "No recommendation: every cell " + TIE_WORDS
     return None
 
 

@@ -150,7 +150,8 @@ def _print_effects(con, data, conf) -> None:
 
     effects = data.analysis.get("effects") or []
     if effects:
-        t = Table(title=f"Effects as ratios to the reference level ({conf} intervals)",
+        t = Table(title=f"Effects as ratios to the reference level ({conf} intervals, "
+                  "each unadjusted)",
                   box=box.SIMPLE_HEAD, title_justify="left", title_style="bold")
         for col, just in (("factor", "left"), ("level", "left"), ("against", "left"),
                           ("ratio", "right"), ("interval", "right")):
