@@ -876,16 +876,7 @@ def _role_reasons(roles, names, across_given) -> list[str]:
     """What was chosen among and what was held as a condition, and on whose word."""
     chosen = ", ".join(names)
     if roles.declared:
-        held = [f for r in ("workload", "environment") for f in getattr(roles, r)]
-        conds = [f"{r}{'s' if len(getattr(roles, r)) > 1 else ''} "
-                 f"{', '.join(getattr(roles, r))}" for r in ("workload", "environment")
-                 if getattr(roles, r)]
-        where = "the experiment file" if roles.source == "experiment file" else "the command line"
-        if not conds:
-            return []
-        are = "are conditions" if len(held) > 1 else "is a condition"
-        return [f"Roles from {where}: choosing among the settings {chosen}; the "
-                + " and ".join(conds) + f" {are} the choice must hold up across."]
+        return _declared_roles_reason(roles, chosen)
     across_factors = [a for a in across_given
                       if a not in names and a not in ("host", "worker", "block", "replicate")]
     held = (f"; {', '.join(across_factors)} held as "
@@ -915,6 +906,21 @@ def _role_reasons(roles, names, across_given) -> list[str]:
             f"{'a setting' if n_set == 1 else 'settings'}, since nothing marks "
             f"{'it as an input' if n_set == 1 else 'them as inputs'}{held}. If some factors are inputs or machines, declare them in "
             f"the experiment file: {declaration}."]
+
+
+def _declared_roles_reason(roles, chosen: str) -> list[str]:
+    """The declared roles in one sentence: the settings chosen among, and the workloads
+    and environments held as conditions (none when nothing is held)."""
+    held = [f for r in ("workload", "environment") for f in getattr(roles, r)]
+    conds = [f"{r}{'s' if len(getattr(roles, r)) > 1 else ''} "
+             f"{', '.join(getattr(roles, r))}" for r in ("workload", "environment")
+             if getattr(roles, r)]
+    if not conds:
+        return []
+    where = "the experiment file" if roles.source == "experiment file" else "the command line"
+    are = "are conditions" if len(held) > 1 else "is a condition"
+    return [f"Roles from {where}: choosing among the settings {chosen}; the "
+            + " and ".join(conds) + f" {are} the choice must hold up across."]
 
 
 def _limit_miss_words(lr, fi, confidence) -> str:

@@ -116,7 +116,7 @@ def section_dict(choice) -> dict:
         + f"; {runs_words(d)}. The {d['response']} "
         f"column is each setting's {'geometric ' if d['scale'] == 'log' else ''}mean"
         + (f", every {noun} weighing the same." if d["across"] else "."),
-        f"Noise: pooled residual of the "
+        "Noise: pooled residual of the "
         + (f"full setting-by-{noun}" if res['model'] == 'cells' else f"additive setting + {noun}")
         + " "
         f"model{' with ' + res['block'] + ' as an additive block term' if res.get('block') else ''}, "

@@ -226,6 +226,8 @@ def _answer(args, sizing, factors, cells, exp, detect, sigma):
     if args.target in ("anova", "pairwise"):
         return sizing.size_design(factors, detect, sigma, alpha=alpha, power=args.power,
                                   method=args.target, cells=cells)
+    if args.target == "interaction" and getattr(exp, "space", None) is not None:
+        return _interaction_on_space(args, sizing, factors, exp, detect, sigma, alpha)
     if cells is None:
         cells = math.prod(a for _, a in factors)
     elif cells != math.prod(a for _, a in factors):
@@ -236,10 +238,8 @@ def _answer(args, sizing, factors, cells, exp, detect, sigma):
             raise UsageError("the change to detect must be positive, like 5%")
         effects = sizing.interaction_effects(factors, cells, sizing.log_difference(detect),
                                              sigma)
-        notes = ["an interaction here is a ratio between two levels of one factor that "
-                 "changes by the --detect ratio between two levels of another"]
         return sizing.size_effects(effects, cells, detect, sigma, alpha, args.power,
-                                   "interaction", notes)
+                                   "interaction", [INTERACTION_NOTE])
     if exp is None:
         raise UsageError("--for trend needs the levels' values: --levels FILE (an experiment "
                          "file) or --pilot FOLDER")
@@ -251,6 +251,39 @@ def _answer(args, sizing, factors, cells, exp, detect, sigma):
              "time ∝ x^b"]
     return sizing.size_effects(effects, cells, args.slope, sigma, alpha, args.power, "trend",
                                notes)
+
+
+INTERACTION_NOTE = ("an interaction here is a ratio between two levels of one factor that "
+                    "changes by the --detect ratio between two levels of another")
+
+
+def _interaction_on_space(args, sizing, factors, exp, detect, sigma, alpha):
+    """--for interaction on the cells an ``exclude:``/``only_when:`` leaves: each
+    interaction with a 2×2 sub-grid among them, the others named in a note (all of
+    them unestimable: one line, exit 2)."""
+    from benchharness.design.exclude import space_cells
+    from benchharness.errors import UsageError
+
+    if not detect > 0:
+        raise UsageError("the change to detect must be positive, like 5%")
+    cells, info = space_cells(exp)
+    effects, skipped = sizing.interaction_effects_on_cells(
+        factors, cells, sizing.log_difference(detect), sigma)
+    if not effects:
+        if not skipped:
+            raise UsageError("an interaction needs two factors or more")
+        raise UsageError(f"{exp.path}: --for interaction: no two-factor interaction can be "
+                         f"estimated on the {len(cells)} cells the exclusions leave ("
+                         + "; ".join(skipped) + "); exclude less, so that two levels of one "
+                         "factor run with the same two levels of another, or size the main "
+                         "effects (--for anova)")
+    notes = [INTERACTION_NOTE,
+             f"sized on the {len(cells)} cells the exclusions leave (of "
+             f"{info.get('combinations', len(cells))} combinations), for the worst 2×2 "
+             "sub-grid of each pair of factors"]
+    notes += [f"not sized, it cannot be estimated on these cells: {why}" for why in skipped]
+    return sizing.size_effects(effects, len(cells), detect, sigma, alpha, args.power,
+                               "interaction", notes)
 
 
 def format_answer(ans, out: dict) -> str:

@@ -283,6 +283,108 @@ def interaction_effects(factors: Sequence[tuple[str, int]], cells: int, D: float
     return out
 
 
+def interaction_effects_on_cells(factors: Sequence[tuple[str, int]],
+                                 cells: Sequence[Mapping[str, str]], D: float, sigma: float
+                                 ) -> tuple[list[Effect], list[str]]:
+    """Every two-factor interaction estimable on the cells an exclusion leaves, and why
+    each other one is not: (effects, [one sentence per interaction left out]).
+
+    The test is the extra-sum-of-squares F test of the ``a:b`` columns in the model
+    with every main effect and every two-factor interaction, fitted to the cells that
+    remain (treatment coding; a conditional factor's ``-`` is one more level), against
+    the pure error of the cell means (``params`` = the cells), as for a full grid.
+    With the cell means ``mu`` of one replicate, its noncentrality is
+    ``lam1 = |(I - P_red) mu|² / σ²`` (``P_red`` the projection on the model without
+    ``a:b``) on ``rank(full) − rank(reduced)`` degrees of freedom: the general linear
+    hypothesis (Searle, *Linear Models*, 1971, §5.5). The planted pattern is the
+    ±D/4 of `interaction_effects` on a 2×2 sub-grid of the two factors' levels, on
+    every remaining cell with those levels; the sizing takes the sub-grid with the
+    smallest noncentrality (the worst case). On a full grid this is exactly
+    `interaction_effects`. An interaction needs a 2×2 sub-grid: two levels of ``a``
+    each run with the same two levels of ``b``; where the rules leave none it
+    cannot be estimated at all.
+    """
+    import numpy as np
+
+    from benchharness.experiment.space import NOT_APPLIED
+
+    names = [f for f, _ in factors]
+    dummies = {f: _dummy_columns([c[f] for c in cells]) for f in names}
+    pairs = [(fa, fb) for i, fa in enumerate(names) for fb in names[i + 1:]]
+    inter = {pr: _product_columns(dummies[pr[0]], dummies[pr[1]]) for pr in pairs}
+    main = np.column_stack([np.ones(len(cells))] + [dummies[f] for f in names])
+    full = np.column_stack([main] + [inter[pr] for pr in pairs])
+    rank_full = np.linalg.matrix_rank(full)
+    effects, skipped = [], []
+    for fa, fb in pairs:
+        grids = _sub_grids([(c[fa], c[fb]) for c in cells
+                            if c[fa] != NOT_APPLIED and c[fb] != NOT_APPLIED])
+        if not grids:
+            skipped.append(f"{fa}:{fb}: no 2×2 sub-grid, no two levels of {fa} run with the "
+                           f"same two levels of {fb}")
+            continue
+        reduced = np.column_stack([main] + [inter[pr] for pr in pairs if pr != (fa, fb)])
+        df1 = int(rank_full - np.linalg.matrix_rank(reduced))
+        if df1 <= 0:
+            skipped.append(f"{fa}:{fb}: its contrasts cannot be told apart from the other "
+                           "interactions on these cells")
+            continue
+        lam = min(_unexplained(reduced, _pattern(cells, fa, fb, g, D)) for g in grids)
+        effects.append(Effect(name=f"{fa}:{fb}", df1=df1, lam1=lam / (sigma * sigma),
+                              params=len(cells)))
+    return effects, skipped
+
+
+def _dummy_columns(labels):
+    """Treatment-coded indicator columns of one factor (its first level the reference)."""
+    import numpy as np
+
+    levels = list(dict.fromkeys(labels))
+    return np.array([[lab == lv for lv in levels[1:]] for lab in labels], dtype=float
+                    ).reshape(len(labels), len(levels) - 1)
+
+
+def _product_columns(a, b):
+    """Every product of a column of ``a`` with a column of ``b`` (an interaction's columns)."""
+    import numpy as np
+
+    cols = [a[:, i] * b[:, j] for i in range(a.shape[1]) for j in range(b.shape[1])]
+    return np.column_stack(cols) if cols else np.zeros((a.shape[0], 0))
+
+
+def _sub_grids(pairs) -> list[tuple]:
+    """Every ((a1, a2), (b1, b2)) whose four combinations are all among ``pairs``."""
+    have = set(pairs)
+    la = list(dict.fromkeys(p[0] for p in pairs))
+    lb = list(dict.fromkeys(p[1] for p in pairs))
+    out = []
+    for i, a1 in enumerate(la):
+        for a2 in la[i + 1:]:
+            for j, b1 in enumerate(lb):
+                for b2 in lb[j + 1:]:
+                    if {(a1, b1), (a1, b2), (a2, b1), (a2, b2)} <= have:
+                        out.append(((a1, a2), (b1, b2)))
+    return out
+
+
+def _pattern(cells, fa, fb, grid, D):
+    """±D/4 on the cells whose (fa, fb) levels lie on the 2×2 sub-grid, 0 elsewhere."""
+    import numpy as np
+
+    (a1, a2), (b1, b2) = grid
+    sign = {(a1, b1): 1, (a2, b2): 1, (a1, b2): -1, (a2, b1): -1}
+    return np.array([sign.get((c[fa], c[fb]), 0) * D / 4.0 for c in cells])
+
+
+def _unexplained(X, mu) -> float:
+    """|(I − P_X) mu|²: what of ``mu`` the columns of ``X`` cannot fit."""
+    import numpy as np
+
+    coef = np.linalg.lstsq(X, mu, rcond=None)[0]
+    r = mu - X @ coef
+    return float(r @ r)
+
+
 def trend_effects(factors: Sequence[tuple[str, int]], values: Mapping[str, Sequence[float]],
                   cells: int, slope: float, sigma: float) -> list[Effect]:
     """The log-log slope of each numeric factor, and its difference across each other factor.
