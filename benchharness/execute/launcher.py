@@ -248,6 +248,14 @@ def _resolve(cmd, env, cwd):
 SPAWN_SIGDEF = (signal.SIGPIPE, signal.SIGXFSZ)  # default in the child (Python ignores them)
 
 
+def _spawn_error(argv, e):
+    """Why ``posix_spawn`` refused ``argv``: an OSError's reason, or a bad
+    argument's (a NUL byte: ValueError)."""
+    if isinstance(e, OSError):
+        return f"cannot start {argv[0]!r}: {e.strerror or e}"
+    return f"cannot start {argv[0]!r}: {e}"
+
+
 def _result(started_at, extra, status, message, conditions=None):
     """The reply for a run that could not be started."""
     return {"op": "done", "started_at": started_at, "status": status, "exit_code": None,
@@ -358,14 +366,13 @@ class Run:
 
     __slots__ = ("req", "started_at", "conditions", "extra", "argv", "env", "cwd", "key",
                  "path", "cap", "tails", "open_pipes", "pid", "pidfd", "t0", "t1", "deadline",
-                 "slot", "start",
-                 "linger_end", "timed_out", "aborted", "status_word", "rusage", "orphans",
-                 "kids", "timer")
+                 "start", "linger_end", "timed_out", "aborted", "status_word", "rusage", "orphans",
+                 "kids", "timer", "linger_ns")
 
     def __init__(self, req):
         self.req = req
         self.extra = {}
-        self.conditions = self.pid = self.pidfd = self.t1 = self.deadline = self.slot = None
+        self.conditions = self.pid = self.pidfd = self.t1 = self.deadline = None
         self.linger_end = self.aborted = self.status_word = self.rusage = self.kids = None
         self.timed_out = self.timer = False
         self.orphans = []
@@ -508,7 +515,7 @@ class Launcher:
         start time), made once per file: numbers right-aligned in fixed widths
         (JSON allows the spaces), so records are all of one length
         and the store after the spawn is one format and one copy (see
-        `record_inflight`).
+        `launch`).
 
         The launcher records each running child there (for a later resume), by
         a store into the mapping: the page cache is what a resume reads, and a
@@ -789,6 +796,7 @@ class Launcher:
             self.tail_size = cap
             self.out_tail, self.err_tail = Tail(cap), Tail(cap)
         run.tails = {out_r: self.out_tail, err_r: self.err_tail}
+        run.linger_ns = int(float(run.req.get("linger_s", 0.1)) * 1e9)
         run.open_pipes = {out_r, err_r}
         inflight = run.req.get("inflight")
         slot = self.inflight_slot(inflight) if inflight else None
@@ -797,16 +805,38 @@ class Launcher:
         return slot
 
     def launch(self, run, slot):
-        """Spawn the child (the timed window opens) and set up its pidfd;
-        the error message when it could not start, else None."""
+        """Spawn the child (the timed window opens), set up its pidfd and
+        store the in-flight record; the error message when it could not
+        start, else None.
+
+        Everything that can be worked out before the spawn is (the time
+        limit, whether to notify, the spawn's kind): from the spawn to the
+        wait the launcher runs on cold caches while the child waits for the
+        CPU, so each step there lengthens the run's ``wall_s`` (measured in
+        place with ``perf_counter_ns`` stamps over 2,000 queued runs of
+        ``/bin/true``: about 12 us from the spawn's return to the ``poll``
+        before these changes, of which 4 us the in-flight store).
+        """
         g = run.req.get
         timeout_s = g("timeout_s")
         if timeout_s is not None:
             run.timer = self.arm_timer(timeout_s)
+            timeout_ns = int(timeout_s * 1e9)
+        notify = g("notify", True)
+        plain = not g("cpus") and g("nice") is None and not g("no_aslr")
+        clock, tick = time.clock_gettime_ns, self.tick_ns
         # The boot clock before and after the spawn bound the child's start time.
-        start_lo = time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns
-        pid, t0, err = self.spawn(run.path, run.argv, run.env, g("cpus"), g("nice"),
-                                  g("no_aslr"))
+        start_lo = clock(CLOCK_BOOTTIME) // tick
+        if plain:  # `spawn` inlined: a call and a tuple less inside the window
+            t0 = time.perf_counter_ns()
+            try:
+                pid = os.posix_spawn(run.path, run.argv, run.env, setpgroup=0,
+                                     setsigdef=SPAWN_SIGDEF)
+            except (OSError, ValueError, TypeError) as e:
+                pid, err = None, _spawn_error(run.argv, e)
+        else:
+            pid, t0, err = self.spawn(run.path, run.argv, run.env, g("cpus"), g("nice"),
+                                      g("no_aslr"))
         if pid is None and self.resolved.pop(run.key, None) is not None:
             # The program found for an earlier run is gone or changed: look again.
             path, err = _resolve(run.argv[0], run.env, run.cwd)
@@ -820,15 +850,32 @@ class Launcher:
             return err
         pidfd = run.pidfd = os.pidfd_open(pid)
         self.pipe_poller.register(pidfd, select.POLLIN)
-        run.start = (start_lo, time.clock_gettime_ns(CLOCK_BOOTTIME) // self.tick_ns)
-        run.pid, run.t0, run.slot = pid, t0, slot
+        start_hi = clock(CLOCK_BOOTTIME) // tick
+        run.pid, run.t0 = pid, t0
         if slot is not None:
-            self.record_inflight(run)
-        if g("notify", True):
-            start_hi = run.start[1]
+            # The in-flight record (for a later resume that finds the run still
+            # going): one format and one copy into the shared mapping. Measured
+            # (experiments/bench/launcher_window.py): about 1% of the ``wall_s``
+            # of ``/bin/true``; waiting on a 1 ms timer to make it only for
+            # longer runs cost 4.4%, since a ``poll`` with a near timeout sees
+            # the child's exit later than one without. (A launcher killed
+            # between the spawn and this store leaves the last run's record:
+            # that run is over, and resume signals nothing that is not still
+            # the recorded process.)
+            entry, run_id = slot
+            rec = entry[1] % (run_id, pid, pid, start_lo, start_hi)
+            n = len(rec)
+            if n == entry[3]:
+                entry[0][:n] = rec   # the rest already holds spaces (the last store padded it)
+            else:
+                entry[0][:] = rec.ljust(INFLIGHT_SIZE)
+                entry[3] = n
+        run.start = (start_lo, start_hi)
+        if notify:
             send(self.wfd, {"op": "started", "pid": pid, "pgid": pid,
                             "start": (start_lo, start_hi)})
-        run.deadline = None if timeout_s is None else t0 + int(timeout_s * 1e9)
+        if timeout_s is not None:
+            run.deadline = t0 + timeout_ns
         return None
 
     def watch(self, run):
@@ -837,7 +884,7 @@ class Launcher:
         the pipes until end of file while a leftover process may still hold
         them, for at most ``linger_s``."""
         poller = self.pipe_poller
-        linger_ns = int(float(run.req.get("linger_s", 0.1)) * 1e9)
+        linger_ns = run.linger_ns
         pidfd = run.pidfd
         while True:
             now = time.perf_counter_ns()
@@ -933,30 +980,6 @@ class Launcher:
             return fd
         except (AttributeError, OSError, TypeError):
             return False
-
-    @staticmethod
-    def record_inflight(run):
-        """Record the run in flight (for a later resume that finds it still going).
-
-        One store into the shared mapping, right after the spawn. Measured
-        (experiments/bench/launcher_window.py): this costs about 1% of the
-        ``wall_s`` of ``/bin/true``; waiting on a 1 ms timer to make it only
-        for longer runs cost 4.4%, since a ``poll`` with a near timeout wakes
-        the child's exit later than one without. (A launcher killed between
-        the spawn and this store leaves the last run's record: that run is
-        over, and resume signals nothing that is not still the recorded
-        process.)
-        """
-        entry, run_id = run.slot
-        run.slot = None
-        pid = run.pid
-        rec = entry[1] % (run_id, pid, pid, *run.start)
-        n = len(rec)
-        if n == entry[3]:
-            entry[0][:n] = rec   # the rest already holds spaces (the last store padded it)
-        else:
-            entry[0][:] = rec.ljust(INFLIGHT_SIZE)
-            entry[3] = n
 
     def interrupted(self, run, linger_ns):
         """A message on the request pipe during a run: the harness went away
@@ -1077,10 +1100,8 @@ class Launcher:
             t0 = time.perf_counter_ns()
             try:
                 pid = os.posix_spawn(path, argv, env, setpgroup=0, setsigdef=SPAWN_SIGDEF)
-            except OSError as e:
-                return None, t0, f"cannot start {argv[0]!r}: {e.strerror or e}"
-            except (ValueError, TypeError) as e:  # e.g. a NUL byte in an argument
-                return None, t0, f"cannot start {argv[0]!r}: {e}"
+            except (OSError, ValueError, TypeError) as e:
+                return None, t0, _spawn_error(argv, e)
             return pid, t0, None
         return self.fork_exec(path, argv, env, cpus, nice, no_aslr)
 
