@@ -194,3 +194,19 @@ def test_time_limits_are_kept_by_the_timer_run_after_run():
     assert b.status == c.status == "ok", (b.message, c.message)
     assert c.wall_s >= 0.5
     assert after - before < 100, after - before
+
+
+def test_another_childs_exit_does_not_end_the_runs_clock():
+    # A run's exit wakes the launcher through SIGCHLD (a signalfd); so does the death of
+    # an orphan re-parented to it. Planted truth: the run leaves a background `sleep 0.05`
+    # (re-parented to the launcher, a subreaper, when its subshell exits) and itself
+    # sleeps 0.3 s: the orphan's end must not be taken for the run's, so wall_s >= 0.3;
+    # its usage is counted with the run's.
+    with LocalExecutor(kill_grace_s=0.3, linger_s=0.1) as ex:
+        m = ex.execute(RunSpec(argv=("sh", "-c", "(sleep 0.05 >/dev/null 2>&1 &); sleep 0.3"),
+                               env=ENV))
+        after = ex.execute(RunSpec(argv=("true",), env=ENV))
+    assert m.status == "ok", m.message
+    assert m.wall_s >= 0.3, m.wall_s
+    assert m.extra.get("orphans_counted") == 1, m.extra
+    assert after.status == "ok" and after.wall_s < 0.3
