@@ -8,7 +8,8 @@ ratio, an interval or a time reads the same wherever it appears (docs/cli.md,
   notation only below 0.0001 or from a million up (`fmt_num`);
 * a ratio: ``1.23×`` — always the multiplication sign, never a letter x (`fmt_ratio`);
 * an interval: ``LOW to HIGH`` with the unit on both ends: ``1.09× to 1.29×``,
-  ``12.1 ms to 14.3 ms``, ``-0.32 to 0.15``; both ends share their decimals
+  ``12.1 ms to 14.3 ms``, ``-0.32 to 0.15``; both ends share their decimals while they
+  are within a factor of ten of each other, else each has three significant figures
   (`fmt_ratio_interval`, `fmt_interval`);
 * a change: ``+3.4%`` / ``-12.0%`` (`fmt_change`), a share ``42.0%`` (`fmt_pct`);
 * a p-value: ``0.012`` or ``< 0.001`` (`fmt_p`);
@@ -86,6 +87,23 @@ def _shared_decimals(values: Iterable[float], digits: int) -> int:
     return _decimals(min(small), digits) if small else 0
 
 
+#: ends of an interval further apart than this factor are each written on their own
+SHARED_SPAN = 10.0
+
+
+def _ends(a: float, b: float, digits: int, sign: str = "", unit: str = "") -> str:
+    """``LOW to HIGH``: both ends with the decimals of the smaller one (``0.998× to
+    1.010×``) while they are within a factor of ten of each other; further apart, each
+    end with its own ``digits`` significant figures (``0.0181 to 1,130``, not
+    ``0.0181 to 1,131.0171``, whose digits nothing measured)."""
+    sfx = f"{sign}{unit}"
+    sizes = [abs(v) for v in (a, b) if v]
+    if sizes and max(sizes) / min(sizes) >= SHARED_SPAN:
+        return f"{fmt_num(a, digits)}{sfx} to {fmt_num(b, digits)}{sfx}"
+    d = _shared_decimals((a, b), digits)
+    return f"{_fixed(a, d)}{sfx} to {_fixed(b, d)}{sfx}"
+
+
 # --------------------------------------------------------------------------- ratios
 
 def fmt_ratio(x, digits: int = 3) -> str:
@@ -103,8 +121,7 @@ def fmt_ratio_interval(lo, hi, digits: int = 3) -> str:
         return "no interval"
     if not (1e-4 <= min(abs(a), abs(b)) and max(abs(a), abs(b)) < 1e6):
         return f"{fmt_ratio(a, digits)} to {fmt_ratio(b, digits)}"
-    d = _shared_decimals((a, b), digits)
-    return f"{_fixed(a, d)}{RATIO_SIGN} to {_fixed(b, d)}{RATIO_SIGN}"
+    return _ends(a, b, digits, sign=RATIO_SIGN)
 
 
 def fmt_interval(lo, hi, unit: str = "", digits: int = 3) -> str:
@@ -112,9 +129,7 @@ def fmt_interval(lo, hi, unit: str = "", digits: int = 3) -> str:
     a, b = _finite(lo), _finite(hi)
     if a is None or b is None:
         return "no interval"
-    d = _shared_decimals((a, b), digits)
-    sfx = f" {unit}" if unit else ""
-    return f"{_fixed(a, d)}{sfx} to {_fixed(b, d)}{sfx}"
+    return _ends(a, b, digits, unit=f" {unit}" if unit else "")
 
 
 def fmt_change(ratio, decimals: int = 1) -> str:

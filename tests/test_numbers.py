@@ -30,7 +30,15 @@ def test_ratio_intervals_read_low_to_high_with_shared_decimals():
     assert fmt_ratio_interval(1.0912, 1.2934) == "1.09× to 1.29×"
     # both ends keep the decimals of the smaller one, so 1.01 is not shortened to 1.01/1.0
     assert fmt_ratio_interval(0.9981, 1.0104) == "0.998× to 1.010×"
-    assert fmt_ratio_interval(0.5, 12.5) == "0.500× to 12.500×"
+    # ends more than ten times apart: each with three significant figures, not the small
+    # end's decimals on the large one (a Tukey interval once read "4.91× to 107.30×" and a
+    # history interval "0.0181 ms to 1,131.0171 ms": digits nothing measured)
+    assert fmt_ratio_interval(0.5, 12.5) == "0.500× to 12.5×"
+    assert fmt_ratio_interval(4.912, 107.3) == "4.91× to 107×"
+    assert fmt_ratio_interval(0.2991, 3.348) == "0.299× to 3.35×"
+    assert fmt_ratio_interval(1.97, 10.39) == "1.97× to 10.39×"      # within ten: shared
+    assert pick_scale("s", [4.53e-3]).interval(1.81e-5, 1.1310171) == "0.0181 ms to 1,131 ms"
+    assert fmt_interval(-0.0123, 0.151) == "-0.0123 to 0.151"
     assert fmt_ratio_interval(None, 1.2) == "no interval"
 
 
