@@ -226,3 +226,20 @@ def test_a_metrics_declared_unit_is_printed_as_declared(tmp_path, capsys, monkey
         outs["choose"]
     rows = [ln for ln in outs["compare"].splitlines() if ln.startswith("│ o")]
     assert len(rows) == 2 and all(ln.count(" rows/s") == 2 for ln in rows), rows
+
+
+def test_counts_of_failed_runs_and_cells_take_their_noun_in_the_right_number(tmp_path, capsys):
+    """One timed-out run in one cell: "1 run did not finish", "1 cell had timeouts" (the
+    notes once said "1 run(s)" and "1 cell(s)")."""
+    import json
+
+    from benchharness.cli import main
+
+    csv = tmp_path / "t.csv"
+    csv.write_text("a,status,wall_s\n" + "".join(f"x,ok,1.0{i}\ny,ok,2.0{i}\n"
+                                                 for i in range(4)) + "y,timeout,\n")
+    assert main(["analyze", str(csv), "--factors", "a", "--json"]) == 0
+    an = json.loads(capsys.readouterr().out)
+    assert an["failures"]["verdict"].startswith("1 run did not finish;")
+    assert "1 cell had timeouts: their means" in " ".join(an["notes"])
+    assert "(s)" not in json.dumps(an)

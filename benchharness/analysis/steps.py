@@ -759,17 +759,19 @@ def failures_of(prep, notes: list) -> dict:
     sc = prep.status_counts
     flagged = [c for c in sc if c["flag"]]
     lost = sum(c["runs"] - c["ok"] for c in sc)
+    from benchharness.numbers import plural
+
     if flagged:
-        notes.append(f"{len(flagged)} cell(s) had timeouts: their means describe only the runs "
-                     "that finished and so look faster than the configuration is")
+        notes.append(f"{plural(len(flagged), 'cell')} had timeouts: their means describe only "
+                     "the runs that finished and so look faster than the configuration is")
     return {
         "runs": sum(c["runs"] for c in sc), "not_ok": lost,
         "cells": [c for c in sc if c["runs"] > c["ok"]],
         "cells_with_timeouts": [c["levels"] for c in flagged],
         "verdict": ("every run finished" if lost == 0 else
-                    f"{lost} run(s) did not finish; means of cells with timeouts are biased "
-                    "low (only the runs that finished are analysed)" if flagged else
-                    f"{lost} run(s) failed; the failure rate per cell is listed"),
+                    f"{plural(lost, 'run')} did not finish; means of cells with timeouts are "
+                    "biased low (only the runs that finished are analysed)" if flagged else
+                    f"{plural(lost, 'run')} failed; the failure rate per cell is listed"),
     }
 
 
