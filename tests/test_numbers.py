@@ -243,3 +243,16 @@ def test_counts_of_failed_runs_and_cells_take_their_noun_in_the_right_number(tmp
     assert an["failures"]["verdict"].startswith("1 run did not finish;")
     assert "1 cell had timeouts: their means" in " ".join(an["notes"])
     assert "(s)" not in json.dumps(an)
+
+
+def test_host_prints_the_three_load_averages_alike(capsys, monkeypatch):
+    from benchharness.cli import main
+    from benchharness.measure import host
+
+    facts = {"cpu_model": "Example CPU", "physical_cores": 2, "logical_cores": 2,
+             "memory_bytes": 2 ** 33, "load_average_start": [1.5, 0.949, 1.216]}
+    monkeypatch.setattr(host, "collect_facts", lambda: facts)
+    monkeypatch.setattr(host, "check_host", lambda f: [])
+    assert main(["host"]) == 0
+    out = capsys.readouterr().out
+    assert re.search(r"^load average\s+1\.50, 0\.95, 1\.22$", out, re.M), out

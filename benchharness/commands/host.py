@@ -33,8 +33,8 @@ def _fmt(v) -> str:
         return "yes" if v else "no"
     if isinstance(v, dict):
         return ", ".join(f"{k} {_fmt(x)}" for k, x in v.items()) or "-"
-    if isinstance(v, list):
-        return ", ".join(map(str, v)) or "-"
+    if isinstance(v, list):   # load averages alike: "1.86, 0.95, 1.22", not "1.86, 0.949, 1.216"
+        return ", ".join(f"{x:.2f}" if isinstance(x, float) else _fmt(x) for x in v) or "-"
     return str(v)
 
 
