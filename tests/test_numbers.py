@@ -226,6 +226,20 @@ def test_a_metrics_declared_unit_is_printed_as_declared(tmp_path, capsys, monkey
         outs["choose"]
     rows = [ln for ln in outs["compare"].splitlines() if ln.startswith("│ o")]
     assert len(rows) == 2 and all(ln.count(" rows/s") == 2 for ln in rows), rows
+    # the history keeps the unit, and shows it once the folder is gone
+    db = tmp_path / "h.sqlite"
+    assert main(["history", "add", str(res), "--response", "rows_per_s", "--commit", "c1",
+                 "--branch", "main", "--history-db", str(db)]) == 0
+    import shutil
+
+    shutil.rmtree(res)
+    monkeypatch.setattr(units, "DECLARED_UNITS", {})
+    capsys.readouterr()
+    assert main(["history", "show", "--response", "rows_per_s", "--history-db", str(db)]) == 0
+    shown = capsys.readouterr().out
+    rows = [ln for ln in shown.splitlines() if ln.startswith("│ 1")]
+    assert len(rows) == 2 and all(re.search(r"[13],00\d rows/s .* rows/s to .* rows/s", ln)
+                                  for ln in rows), shown
 
 
 def test_counts_of_failed_runs_and_cells_take_their_noun_in_the_right_number(tmp_path, capsys):

@@ -130,6 +130,12 @@ def main_show(args) -> int:
                       cell_filter=parse_cell_filter(args.cell))
     if args.branch is not None:
         df = df[df["branch"] == args.branch]
+    from benchharness.history.store import read_units
+    from benchharness.report.units import declare_unit
+
+    for (experiment, response), unit in read_units(args.history_db).items():
+        if args.experiment in (None, experiment):   # a metric's unit, printed as declared
+            declare_unit(response, unit)
     trends = build_trends(df, alpha=false_step)
     from benchharness.history.render import print_trends, render_html
 

@@ -75,7 +75,7 @@ def connect(db_path: str | Path, create: bool = True) -> sqlite3.Connection:
             raise UsageError(f"{path}: cannot create the history file's folder "
                              f"({exc.strerror or exc})") from None
     if path.is_dir():
-        raise UsageError(f"{path}: is a folder; --db names the history file, e.g. "
+        raise UsageError(f"{path}: is a folder; --history-db names the history file, e.g. "
                          f"{path / 'history.sqlite'}")
     try:
         conn = sqlite3.connect(str(path), isolation_level=None, timeout=30)
@@ -193,6 +193,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
         try:
             _record_folder(conn, data, record, select, journal_bytes, commit, branch, cwd)
             added = _insert_cells(conn, data, record, summaries)
+            _record_units(conn, data, responses)
             conn.execute("COMMIT")
         except BaseException:
             conn.execute("ROLLBACK")
@@ -275,6 +276,40 @@ def _insert_cells(conn, data, record: str, summaries) -> int:
             "mean": s.mean, "se": s.se, "noise_sd": s.noise_sd,
         })
     return added
+
+
+#: the unit a custom metric declares (its results folder's metrics.json), per experiment;
+#: created when first needed, so history files written before it read the same
+_UNITS_TABLE = ("CREATE TABLE IF NOT EXISTS units (experiment TEXT NOT NULL, "
+                "response TEXT NOT NULL, unit TEXT NOT NULL, PRIMARY KEY (experiment, response))")
+
+
+def _record_units(conn, data, responses) -> None:
+    """Keep the declared unit of each recorded metric, so `history show` prints its values
+    as declared (``rows/s``) once the results folder is gone."""
+    from benchharness.measure.metrics import read_manifest
+
+    manifest = read_manifest(data.path)
+    for response in responses:
+        info = manifest.get(response)
+        if isinstance(info, dict) and info.get("unit"):
+            conn.execute(_UNITS_TABLE)
+            conn.execute("INSERT OR REPLACE INTO units (experiment, response, unit) "
+                         "VALUES (?, ?, ?)", (data.experiment, response, str(info["unit"])))
+
+
+def read_units(db_path: str | Path) -> dict[tuple[str, str], str]:
+    """{(experiment, response): unit} of the metrics recorded with a declared unit."""
+    conn = connect(db_path, create=False)
+    try:
+        rows = conn.execute("SELECT experiment, response, unit FROM units").fetchall()
+    except sqlite3.OperationalError:   # no metric with a unit recorded yet
+        rows = []
+    except sqlite3.DatabaseError as exc:
+        raise DataError(f"{db_path}: cannot read the history file ({exc})") from None
+    finally:
+        conn.close()
+    return {(e, r): u for e, r, u in rows}
 
 
 def read_history(db_path: str | Path, experiment: str | None = None,
