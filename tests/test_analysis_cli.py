@@ -100,16 +100,16 @@ def test_cli_analyze_csv_and_json(cli, tmp_path):
     (["--factors", "material", "--model", "wild"], "wild"),
     ([], "factors"),
 ])
-def test_cli_bad_input_one_line_exit_2(cli, tmp_path, args, needle):
+def test_cli_bad_input_one_line_exit_2(main_cli, tmp_path, args, needle):
     p = _csv(tmp_path)
-    r = cli("analyze", p, *(["--response", "life_h"] if "--response" not in args else []), *args)
+    r = main_cli("analyze", p, *(["--response", "life_h"] if "--response" not in args else []), *args)
     assert r.returncode == 2
     assert len(r.stderr.strip().splitlines()) == 1, r.stderr
     assert needle in r.stderr and "Traceback" not in r.stderr
 
 
-def test_cli_missing_source(cli, tmp_path):
-    r = cli("analyze", tmp_path / "none.csv", "--factors", "a")
+def test_cli_missing_source(main_cli, tmp_path):
+    r = main_cli("analyze", tmp_path / "none.csv", "--factors", "a")
     assert r.returncode == 2 and "none.csv" in r.stderr
 
 
@@ -177,7 +177,7 @@ def test_bad_declared_comparison_points_at_the_experiment_file(tmp_path):
     assert "'7' is not a level of 'n'" in msg and f"{frozen}:9:" in msg
 
 
-def test_cli_hostile_factor_names(cli, tmp_path):
+def test_cli_hostile_factor_names(main_cli, tmp_path):
     rng = np.random.default_rng(3)
     names = ["C", "I", "it's \"Q\" a.b"]
     d = pd.DataFrame({names[0]: np.tile(["1", "1.0"], 12), names[1]: np.repeat(["x", "y"], 12),
@@ -185,7 +185,7 @@ def test_cli_hostile_factor_names(cli, tmp_path):
                       "wall_s": rng.lognormal(0, 0.1, 24)})
     p = tmp_path / "hostile.csv"
     d.to_csv(p, index=False)
-    r = cli("analyze", p, "--factors", ",".join(names), "--json")
+    r = main_cli("analyze", p, "--factors", ",".join(names), "--json")
     assert r.returncode == 0, r.stderr
     out = json.loads(r.stdout)
     assert [f["levels"] for f in out["factors"]][0] == ["1", "1.0"]
@@ -224,25 +224,25 @@ def test_text_layout_shows_failures_timeouts_and_notes():
         assert word in text
 
 
-def test_cli_awkward_inputs_one_line_or_a_result(cli, tmp_path):
+def test_cli_awkward_inputs_one_line_or_a_result(main_cli, tmp_path):
     """No traceback: a text response, an unwritable --json path, one residual df."""
     text = tmp_path / "text.csv"
     text.write_text("a,wall_s\nx,fast\ny,slow\n")
-    r = cli("analyze", text, "--factors", "a")
+    r = main_cli("analyze", text, "--factors", "a")
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
     assert "'fast'" in r.stderr and "--response" in r.stderr
     p = _csv(tmp_path)
-    r = cli("analyze", p, "--response", "life_h", "--factors", "material",
+    r = main_cli("analyze", p, "--response", "life_h", "--factors", "material",
             "--json-out", tmp_path / "no" / "such" / "dir" / "a.json")
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
     assert "cannot write" in r.stderr
     # two runs of one level: one residual degree of freedom, too few to look for outliers
     tiny = tmp_path / "tiny.csv"
     tiny.write_text("a,wall_s\nx,1\nx,2\n")
-    r = cli("analyze", tiny, "--factors", "a", "--json")
+    r = main_cli("analyze", tiny, "--factors", "a", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["anova"][-1]["df"] == 1
     assert "not enough residual degrees of freedom" in d["diagnostics"]["outlier_verdict"]
-    r = cli("report", tiny, "--factors", "a", "--html", "/proc/no/such/r.html")
+    r = main_cli("report", tiny, "--factors", "a", "--html", "/proc/no/such/r.html")
     assert r.returncode == 2 and "cannot write the report" in r.stderr, r.stderr

@@ -274,17 +274,17 @@ def test_cross_check_follows_the_fitted_model():
     assert a_row["F"] == pytest.approx(ref.loc["C(fa)", "F"], rel=1e-9)
 
 
-def test_cross_check_can_be_switched_off_from_the_command_line(tmp_path, cli):
+def test_cross_check_can_be_switched_off_from_the_command_line(tmp_path, main_cli):
     rng = np.random.default_rng(8)
     d = pd.DataFrame({"a": np.repeat(["x", "y", "z"], 8),
                       "wall_s": rng.standard_cauchy(24) ** 2 + 1.0})
     src = tmp_path / "t.csv"
     d.to_csv(src, index=False)
-    on = cli("analyze", str(src), "--factors", "a", "--art", "--json")
+    on = main_cli("analyze", str(src), "--factors", "a", "--art", "--json")
     assert on.returncode == 0 and json.loads(on.stdout)["art"] is not None
-    off = cli("analyze", str(src), "--factors", "a", "--no-cross-check", "--json")
+    off = main_cli("analyze", str(src), "--factors", "a", "--no-cross-check", "--json")
     assert off.returncode == 0 and json.loads(off.stdout)["art"] is None
-    both = cli("analyze", str(src), "--factors", "a", "--art", "--no-cross-check")
+    both = main_cli("analyze", str(src), "--factors", "a", "--art", "--no-cross-check")
     assert both.returncode == 2 and "not allowed with" in both.stderr
 
 
@@ -380,13 +380,13 @@ def test_small_departures_stay_ok():
         assert an.diagnostics[key]["ok"] is True
 
 
-def test_terminal_marks_a_large_departure_as_a_concern(tmp_path, cli):
+def test_terminal_marks_a_large_departure_as_a_concern(tmp_path, main_cli):
     rng = np.random.default_rng(0)
     sd = np.repeat([1, 1, 1, 6], 3)
     d = pd.DataFrame({"a": np.repeat(list("pqrs"), 3), "v": 50 + rng.normal(0, 1, 12) * sd})
     src = tmp_path / "t.csv"
     d.to_csv(src, index=False)
-    out = cli("analyze", str(src), "--factors", "a", "--response", "v", "--transform", "none")
+    out = main_cli("analyze", str(src), "--factors", "a", "--response", "v", "--transform", "none")
     assert out.returncode == 0
     line = next(x for x in out.stdout.splitlines() if "Equal spread across cells" in x)
     assert line.lstrip().startswith("! Equal spread across cells")
@@ -437,9 +437,9 @@ def test_choose_compare_and_history_use_the_scale_the_analysis_records(tmp_path)
     assert {c.scale for c in summarize_cells(d.runs, d.factors, "wall_s")} == {"log"}
 
 
-def test_compare_command_says_which_scale(tmp_path, cli):
+def test_compare_command_says_which_scale(tmp_path, main_cli):
     a, b = _two_folders(tmp_path)
-    out = cli("compare", a, b)
+    out = main_cli("compare", a, b)
     assert out.returncode == 0, out.stderr
     assert ("Compared on the log scale, the default for a positive, ratio-scaled response."
             in " ".join(out.stdout.split()))

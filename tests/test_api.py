@@ -54,7 +54,7 @@ def test_cli_run_prints_progress_lines_summary_and_location(tmp_path, cli):
     assert f"results: {tmp_path / 'res'}" in out
 
 
-def test_summary_with_a_factor_named_like_a_summary_column(tmp_path, cli):
+def test_summary_with_a_factor_named_like_a_summary_column(tmp_path, main_cli):
     p = tmp_path / "e.yaml"
     p.write_text(textwrap.dedent(f"""\
         experiment: named-n
@@ -65,14 +65,14 @@ def test_summary_with_a_factor_named_like_a_summary_column(tmp_path, cli):
         replicates: 2
         seed: 1
         """))
-    r = cli("run", p, "--out", tmp_path / "res", "--no-analysis")
+    r = main_cli("run", p, "--out", tmp_path / "res", "--no-analysis")
     assert r.returncode == 0, r.stderr
     lines = [ln.split() for ln in r.stdout.splitlines() if ln.split()[:1] in (["1"], ["3"])]
     assert sorted((ln[0], ln[1], ln[2]) for ln in lines) == [
         ("1", "hi", "2"), ("1", "lo", "2"), ("3", "hi", "2"), ("3", "lo", "2")]
 
 
-def test_run_adds_to_history_database(tmp_path, cli):
+def test_run_adds_to_history_database(tmp_path, main_cli):
     import sqlite3
     import subprocess
 
@@ -90,7 +90,7 @@ def test_run_adds_to_history_database(tmp_path, cli):
     subprocess.run(["git", "-c", "user.name=t", "-c", "user.email=t@t", "commit", "-qm", "x"],
                    cwd=tmp_path, check=True)
     db = tmp_path / "h.sqlite"
-    r = cli("run", p, "--out", tmp_path / "res", "--no-analysis", "--history-db", db,
+    r = main_cli("run", p, "--out", tmp_path / "res", "--no-analysis", "--history-db", db,
             cwd=tmp_path)
     assert r.returncode == 0, r.stderr
     assert "history: 2 cell rows added" in r.stdout
@@ -98,7 +98,7 @@ def test_run_adds_to_history_database(tmp_path, cli):
         assert con.execute("select count(*) from cells").fetchone()[0] == 2
 
 
-def test_gate_records_the_candidate_in_history(tmp_path, cli):
+def test_gate_records_the_candidate_in_history(tmp_path, main_cli):
     import sqlite3
     import subprocess
 
@@ -108,7 +108,7 @@ def test_gate_records_the_candidate_in_history(tmp_path, cli):
     subprocess.run(["git", "-c", "user.name=t", "-c", "user.email=t@t", "commit", "-qm", "x"],
                    cwd=tmp_path, check=True)
     db = tmp_path / "h.sqlite"
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "8",
+    r = main_cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "8",
             "--out", tmp_path / "g", "--history-db", db, cwd=tmp_path)
     # the verdict on two equal 1 ms commands is not the point (a load spike on a shared
     # CI host may sway it); the record is

@@ -84,8 +84,8 @@ def test_json_keys_and_planted_answer_from_a_results_folder(cli, folder, tmp_pat
     assert "disk=hdd" in r.stdout
 
 
-def test_command_line_overrides_the_section(cli, folder):
-    r = cli("choose", folder, "--across", "", "--also", "", "--json")
+def test_command_line_overrides_the_section(main_cli, folder):
+    r = main_cli("choose", folder, "--across", "", "--also", "", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     # an empty value switches the section's across/also off: disk is then a
@@ -93,32 +93,32 @@ def test_command_line_overrides_the_section(cli, folder):
     assert d["across"] == [] and "pareto" not in d
     assert d["factors"] == ["threads", "disk"]
     assert d["best"] == {"threads": "16", "disk": "nvme"}
-    r = cli("choose", folder, "--confidence", "0.9", "--response", "max_rss_kib", "--json")
+    r = main_cli("choose", folder, "--confidence", "0.9", "--response", "max_rss_kib", "--json")
     d = json.loads(r.stdout)
     assert d["response"] == "max_rss_kib" and d["confidence"] == 0.9
     assert d["best"] == {"threads": "4"}
 
 
-def test_csv_source_needs_factors_and_names_them(cli, tmp_path):
+def test_csv_source_needs_factors_and_names_them(main_cli, tmp_path):
     rng = np.random.default_rng(4)
     rows = [{"codec": c, "status": "ok", "wall_s": mu * np.exp(rng.normal(0, 0.02))}
             for c, mu in [("zlib", 1.0), ("lzma", 1.5), ("bz2", 1.004)] for _ in range(6)]
     csv = tmp_path / "runs.csv"
     pd.DataFrame(rows).to_csv(csv, index=False)
-    r = cli("choose", csv, "--json")
+    r = main_cli("choose", csv, "--json")
     assert r.returncode == 2 and "--factors" in r.stderr and "Traceback" not in r.stderr
-    r = cli("choose", csv, "--factors", "codec", "--json")
+    r = main_cli("choose", csv, "--factors", "codec", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["tied"] == [{"codec": "zlib"}, {"codec": "bz2"}]
     # no default declared: the tie goes to the better estimate, not the first listed
     means = {c["setting"]["codec"]: c["mean"] for c in d["candidates"]}
     assert d["best"] == {"codec": min(("zlib", "bz2"), key=means.get)}
-    r = cli("choose", csv, "--factors", "codec", "--prefer", "codec=bz2", "--json")
+    r = main_cli("choose", csv, "--factors", "codec", "--prefer", "codec=bz2", "--json")
     assert json.loads(r.stdout)["best"] == {"codec": "bz2"}
 
 
-def test_bad_input_exits_2_with_one_line(cli, folder, tmp_path):
+def test_bad_input_exits_2_with_one_line(main_cli, folder, tmp_path):
     for args, needle in [
         (("--prefer", "threads"), "FACTOR=LEVEL"),
         (("--prefer", "threads=3"), "not a level"),
@@ -126,18 +126,18 @@ def test_bad_input_exits_2_with_one_line(cli, folder, tmp_path):
         (("--confidence", "100%"), "below 100%"),
         (("--response", "nope_s"), "nope_s"),
     ]:
-        r = cli("choose", folder, *args)
+        r = main_cli("choose", folder, *args)
         assert r.returncode == 2, (args, r.stderr)
         assert needle in r.stderr and len(r.stderr.strip().splitlines()) == 1, r.stderr
-    r = cli("choose", tmp_path / "missing")
+    r = main_cli("choose", tmp_path / "missing")
     assert r.returncode == 2 and "Traceback" not in r.stderr
 
 
-def test_malformed_choose_section_points_at_the_line(cli, folder):
+def test_malformed_choose_section_points_at_the_line(main_cli, folder):
     text = (folder / "experiment.yaml").read_text().replace("prefer: {threads: 4}",
                                                              "prefr: {threads: 4}")
     (folder / "experiment.yaml").write_text(text)
-    r = cli("choose", folder)
+    r = main_cli("choose", folder)
     assert r.returncode == 2
     assert "experiment.yaml:10:" in r.stderr and "prefer" in r.stderr
 

@@ -114,13 +114,13 @@ class Planted:
         pass
 
 
-def test_report_shows_the_trade_off_figure_and_a_table_that_fits(cli, tmp_path):
+def test_report_shows_the_trade_off_figure_and_a_table_that_fits(main_cli, tmp_path):
     from benchharness.experiment.file import Experiment
     from benchharness.execute.runner import run_experiment
 
     exp = Experiment.from_text(EXPERIMENT, path=str(tmp_path / "pool.yaml"))
     folder = run_experiment(exp, out=tmp_path / "results", executor=Planted(1)).folder
-    r = cli("report", folder)
+    r = main_cli("report", folder)
     assert r.returncode == 0, r.stderr
     html = (folder / "report.html").read_text()
     p = _ChooseTable()

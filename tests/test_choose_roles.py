@@ -36,9 +36,9 @@ def _kernel_csv(path, seed=1):
     return path
 
 
-def test_an_input_size_is_never_recommended_and_the_reason_is_given(cli, tmp_path):
+def test_an_input_size_is_never_recommended_and_the_reason_is_given(main_cli, tmp_path):
     csv = _kernel_csv(tmp_path / "kernel.csv")
-    r = cli("choose", csv, "--factors", "opt,arch,n", "--response", "ns_per_item",
+    r = main_cli("choose", csv, "--factors", "opt,arch,n", "--response", "ns_per_item",
             "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
@@ -47,7 +47,7 @@ def test_an_input_size_is_never_recommended_and_the_reason_is_given(cli, tmp_pat
     assert d["roles"]["source"] == "guessed" and d["roles"]["workload"] == ["n"]
     assert "reads as an input" in d["roles"]["reasons"]["n"]
     assert "current default" not in " ".join(c["reason"] for c in d["candidates"])
-    r = cli("choose", csv, "--factors", "opt,arch,n", "--response", "ns_per_item")
+    r = main_cli("choose", csv, "--factors", "opt,arch,n", "--response", "ns_per_item")
     assert r.returncode == 0
     first = r.stdout.splitlines()[0]
     assert first == "Recommended default: opt=3, arch=native"
@@ -67,7 +67,7 @@ def test_without_the_guess_the_input_would_have_been_recommended(tmp_path):
     assert c.to_dict()["roles"]["source"] == "command line"
 
 
-def test_a_workload_named_on_the_command_line_is_held_as_a_condition(cli, tmp_path):
+def test_a_workload_named_on_the_command_line_is_held_as_a_condition(main_cli, tmp_path):
     # "disk" does not look like an input; --environment makes it a condition.
     rng = np.random.default_rng(4)
     rows = [dict(pool=p, disk=k, status="ok",
@@ -76,16 +76,16 @@ def test_a_workload_named_on_the_command_line_is_held_as_a_condition(cli, tmp_pa
             for p in ["4", "8"] for k in ["ssd", "hdd"] for _ in range(4)]
     csv = tmp_path / "pool.csv"
     pd.DataFrame(rows).to_csv(csv, index=False)
-    guessed = json.loads(cli("choose", csv, "--factors", "pool,disk", "--json").stdout)
+    guessed = json.loads(main_cli("choose", csv, "--factors", "pool,disk", "--json").stdout)
     assert guessed["factors"] == ["pool", "disk"]            # nothing looks like an input
     assert guessed["reasons"][0].startswith("No roles are declared: pool, disk treated as settings")
-    r = cli("choose", csv, "--factors", "pool,disk", "--environment", "disk", "--json")
+    r = main_cli("choose", csv, "--factors", "pool,disk", "--environment", "disk", "--json")
     d = json.loads(r.stdout)
     assert d["factors"] == ["pool"] and d["across"] == ["disk"] and d["best"] == {"pool": "8"}
     assert d["roles"]["environment"] == ["disk"] and d["roles"]["declared"] is True
-    r = cli("choose", csv, "--factors", "pool,disk", "--workload", "disk", "--setting", "disk")
+    r = main_cli("choose", csv, "--factors", "pool,disk", "--workload", "disk", "--setting", "disk")
     assert r.returncode == 2 and "two roles" in r.stderr and "Traceback" not in r.stderr
-    r = cli("choose", csv, "--factors", "pool,disk", "--workload", "nope")
+    r = main_cli("choose", csv, "--factors", "pool,disk", "--workload", "nope")
     assert r.returncode == 2 and "'nope' is not a factor" in r.stderr
 
 
@@ -161,23 +161,23 @@ def declared_folder(tmp_path):
     return run_experiment(exp, out=tmp_path / "results", executor=Planted(2)).folder
 
 
-def test_declared_roles_reach_plan_the_folder_choose_and_analysis_json(cli, tmp_path,
+def test_declared_roles_reach_plan_the_folder_choose_and_analysis_json(main_cli, tmp_path,
                                                                       declared_folder):
     from benchharness.analysis import analyze
 
     f = tmp_path / "squeeze.yaml"
     f.write_text(EXPERIMENT)
-    r = cli("plan", f)
+    r = main_cli("plan", f)
     assert r.returncode == 0, r.stderr
     assert "codec  2 levels: fast, small  (setting)" in r.stdout
     assert "logs   2 levels: app, audit  (workload)" in r.stdout
     assert "box    2 levels: arm, x86  (environment)" in r.stdout
     assert "roles       declared in the file" in r.stdout
-    plan = json.loads(cli("plan", f, "--json").stdout)
+    plan = json.loads(main_cli("plan", f, "--json").stdout)
     assert plan["roles"]["workload"] == ["logs"] and plan["roles"]["environment"] == ["box"]
     session = json.loads((declared_folder / "session.json").read_text())
     assert session["roles"]["setting"] == ["codec"] and session["roles"]["declared"]
-    d = json.loads(cli("choose", declared_folder, "--json").stdout)
+    d = json.loads(main_cli("choose", declared_folder, "--json").stdout)
     assert d["factors"] == ["codec"] and d["across"] == ["logs", "box"]
     assert d["best"] == {"codec": "fast"}
     assert d["roles"]["source"] == "experiment file"
@@ -205,12 +205,12 @@ def test_current_default_only_when_declared(declared_folder):
     ("roles:\n  workload: [logs]\n  environment: [logs]\n", "8:17",
      "'logs' already has the role 'workload' (line 7)"),
 ])
-def test_bad_roles_are_reported_at_their_line_and_column(cli, tmp_path, block, where, what):
+def test_bad_roles_are_reported_at_their_line_and_column(main_cli, tmp_path, block, where, what):
     text = ("experiment: x\ncommand: [true]\nfactors:\n  codec: [a, b]\n  logs: [p, q]\n"
             + block)
     f = tmp_path / "bad.yaml"
     f.write_text(text)
-    r = cli("plan", f)
+    r = main_cli("plan", f)
     assert r.returncode == 2 and "Traceback" not in r.stderr
     assert f"bad.yaml:{where}:" in r.stderr and what in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1

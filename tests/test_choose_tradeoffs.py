@@ -29,10 +29,10 @@ def _builds(seed=3, reps=4):
     return pd.DataFrame(rows)
 
 
-def test_a_much_slower_setting_with_the_same_memory_is_off_the_front(cli, tmp_path):
+def test_a_much_slower_setting_with_the_same_memory_is_off_the_front(main_cli, tmp_path):
     csv = tmp_path / "builds.csv"
     _builds().to_csv(csv, index=False)
-    r = cli("choose", csv, "--factors", "build", "--also", "max_rss_kib", "--json")
+    r = main_cli("choose", csv, "--factors", "build", "--also", "max_rss_kib", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["within"] == pytest.approx(0.03)
@@ -43,7 +43,7 @@ def test_a_much_slower_setting_with_the_same_memory_is_off_the_front(cli, tmp_pa
     # the seven builds within noise of each other stay: none is shown worse beyond 3 %
     assert len(d["pareto"]) == 7
     # with no margin the old, lenient rule keeps everything (memory differences are noise)
-    strict = json.loads(cli("choose", csv, "--factors", "build", "--also", "max_rss_kib",
+    strict = json.loads(main_cli("choose", csv, "--factors", "build", "--also", "max_rss_kib",
                             "--within", "0%", "--json").stdout)
     assert {"build": "h"} in strict["pareto"] and len(strict["pareto"]) == 8
 
@@ -88,12 +88,12 @@ def _codecs(seed=11, reps=5):
     return pd.DataFrame(rows)
 
 
-def test_fastest_whose_memory_is_within_5_percent_of_the_smallest(cli, tmp_path):
+def test_fastest_whose_memory_is_within_5_percent_of_the_smallest(main_cli, tmp_path):
     csv = tmp_path / "codecs.csv"
     _codecs().to_csv(csv, index=False)
-    plain = json.loads(cli("choose", csv, "--factors", "codec", "--json").stdout)
+    plain = json.loads(main_cli("choose", csv, "--factors", "codec", "--json").stdout)
     assert plain["best"] == {"codec": "turbo"}           # unconstrained: the fastest
-    r = cli("choose", csv, "--factors", "codec", "--limit", "max_rss_kib within 5%",
+    r = main_cli("choose", csv, "--factors", "codec", "--limit", "max_rss_kib within 5%",
             "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
@@ -104,7 +104,7 @@ def test_fastest_whose_memory_is_within_5_percent_of_the_smallest(cli, tmp_path)
     turbo = next(c for c in d["candidates"] if c["setting"] == {"codec": "turbo"})
     assert turbo["within_limits"] is False and turbo["recommended"] is False
     assert turbo["reason"].startswith("outside the limits: max_rss_kib may be up to")
-    text = cli("choose", csv, "--factors", "codec", "--limit", "max_rss_kib within 5%").stdout
+    text = main_cli("choose", csv, "--factors", "codec", "--limit", "max_rss_kib within 5%").stdout
     assert text.splitlines()[0] == "Recommended default: codec=brisk"
     assert "Limit 'max_rss_kib within 5%': 2 of 4 settings are shown within it" in text
     assert "outside limits" in text
@@ -126,22 +126,22 @@ def test_limits_that_no_setting_meets_together_are_refused():
 
 
 @pytest.mark.parametrize("text", ["max_rss_kib under 5%", "within 5%", "wall_s within five"])
-def test_limit_grammar_errors_say_the_form(text, cli, tmp_path):
+def test_limit_grammar_errors_say_the_form(text, main_cli, tmp_path):
     with pytest.raises(UsageError, match="RESPONSE within P%|not a percentage"):
         parse_limit(text)
     csv = tmp_path / "codecs.csv"
     _codecs().to_csv(csv, index=False)
-    r = cli("choose", csv, "--factors", "codec", "--limit", text)
+    r = main_cli("choose", csv, "--factors", "codec", "--limit", text)
     assert r.returncode == 2 and "Traceback" not in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1
 
 
-def test_limits_and_within_in_the_choose_section(cli, tmp_path):
+def test_limits_and_within_in_the_choose_section(main_cli, tmp_path):
     good = ("experiment: x\ncommand: [true]\nfactors:\n  codec: [a, b]\n"
             "choose:\n  within: 2%\n  limits: [\"max_rss_kib within 5%\"]\n")
     f = tmp_path / "good.yaml"
     f.write_text(good)
-    assert cli("plan", f).returncode == 0
+    assert main_cli("plan", f).returncode == 0
     from benchharness.choose.config import choose_settings
     from benchharness.experiment.file import Experiment
 
@@ -149,10 +149,10 @@ def test_limits_and_within_in_the_choose_section(cli, tmp_path):
     assert s["within"] == pytest.approx(0.02) and s["limits"][0].response == "max_rss_kib"
     bad = good.replace("max_rss_kib within 5%", "max_rss_kib below 5%")
     f.write_text(bad)
-    r = cli("plan", f)
+    r = main_cli("plan", f)
     assert r.returncode == 2 and "good.yaml:7:12:" in r.stderr and "RESPONSE within P%" in r.stderr
     f.write_text(good.replace("max_rss_kib within", "max_rss within"))
-    r = cli("plan", f)
+    r = main_cli("plan", f)
     assert r.returncode == 2 and "'max_rss' is not a measured response" in r.stderr
 
 

@@ -106,28 +106,28 @@ def test_scheduler_with_budget_is_refused(tmp_path):
         run_experiment(exp, out=tmp_path / "r", budget_s=10, scheduler="tcp://127.0.0.1:1")
 
 
-def test_plan_command_estimates_time_from_a_pilot(cli, tmp_path):
+def test_plan_command_estimates_time_from_a_pilot(main_cli, tmp_path):
     exp = Experiment.from_text(BASE + "replicates: 2\n", path=str(tmp_path / "c.yaml"))
     run_experiment(exp, out=tmp_path / "pilot", executor=SimulatedExecutor(MODEL, seed=5))
     f = tmp_path / "c.yaml"
     f.write_text(BASE + "replicates: 10\nwarmup: 1\n")
-    r = cli("plan", f, "--pilot", tmp_path / "pilot", "--budget", "30s", "--json")
+    r = main_cli("plan", f, "--pilot", tmp_path / "pilot", "--budget", "30s", "--json")
     assert r.returncode == 0, r.stderr
     t = json.loads(r.stdout)["time_estimate"]
     # Mean run time of the pilot is about 0.5 * (1 + 1.3) / 2 = 0.575 s; 11 runs per cell.
     assert t["expected_total_s"] == pytest.approx(44 * 0.575, rel=0.15)
     assert t["replicates_in_budget"] == int((30 - t["expected_warmup_s"]) //
                                             t["expected_replicate_s"])
-    r = cli("plan", f, "--budget", "30s")
+    r = main_cli("plan", f, "--budget", "30s")
     assert r.returncode == 2 and "--pilot" in r.stderr
 
 
-def test_size_command_with_a_pilot_folder(cli, tmp_path):
+def test_size_command_with_a_pilot_folder(main_cli, tmp_path):
     # Planted answer: the simulated pilot has CV 5%, so sd of ln(wall_s) is about
     # sqrt(ln(1 + 0.05^2)) = 0.05; the sizing must use it and give the pilot's run time.
     exp = Experiment.from_text(BASE + "replicates: 8\n", path=str(tmp_path / "c.yaml"))
     run_experiment(exp, out=tmp_path / "pilot", executor=SimulatedExecutor(MODEL, seed=8))
-    r = cli("size", "--detect", "4%", "--pilot", tmp_path / "pilot", "--json")
+    r = main_cli("size", "--detect", "4%", "--pilot", tmp_path / "pilot", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["sigma_log"] == pytest.approx(0.05, rel=0.3)
@@ -139,16 +139,16 @@ def test_size_command_with_a_pilot_folder(cli, tmp_path):
                                                       .log1p(0.04), d["sigma_log"], 0.05))
 
 
-def test_plan_shows_the_adaptive_rule(cli, tmp_path):
+def test_plan_shows_the_adaptive_rule(main_cli, tmp_path):
     f = tmp_path / "c.yaml"
     f.write_text(BASE + "replicates: {until: {ratio_halfwidth: 2%}, max: 30, min: 4}\n")
-    r = cli("plan", f, "--json")
+    r = main_cli("plan", f, "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["adaptive"] == {"ratio_halfwidth": 0.02, "max": 30, "min": 4, "confidence": 0.95,
                              "response": "wall_s"}
     assert d["runs"] == 4 * 4
-    r = cli("plan", f)
+    r = main_cli("plan", f)
     assert "adaptive: 4 to 30" in r.stdout
 
 

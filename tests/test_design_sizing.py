@@ -155,7 +155,7 @@ def test_size_command_json_and_text(cli):
     assert r.returncode == 2 and "--noise-cv" in r.stderr
 
 
-def test_size_command_with_pilot(cli, tmp_path):
+def test_size_command_with_pilot(main_cli, tmp_path):
     import pandas as pd
 
     rng = np.random.default_rng(5)
@@ -173,14 +173,14 @@ def test_size_command_with_pilot(cli, tmp_path):
     exp = tmp_path / "e.yaml"
     exp.write_text("experiment: codecs\ncommand: [true, '{codec}']\nfactors:\n"
                    "  codec: [zlib, lzma]\nreplicates: 3\n")
-    r = cli("size", "--detect", "5%", "--pilot", csv, "--levels", exp, "--json")
+    r = main_cli("size", "--detect", "5%", "--pilot", csv, "--levels", exp, "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert d["expected_run_s"] == pytest.approx(0.25, rel=0.15)
     assert d["expected_wall_s"] == pytest.approx(d["expected_run_s"] * d["runs"])
     # sizing a metric in ms: the runs still take their wall clock, not 200 "seconds"
     pd.DataFrame(rows).assign(spill_ms=lambda t: t["wall_s"] * 1000).to_csv(csv, index=False)
-    r = cli("size", "--detect", "5%", "--pilot", csv, "--levels", exp, "--response",
+    r = main_cli("size", "--detect", "5%", "--pilot", csv, "--levels", exp, "--response",
             "spill_ms", "--json")
     assert r.returncode == 0, r.stderr
     assert json.loads(r.stdout)["expected_run_s"] == pytest.approx(0.25, rel=0.15)
@@ -237,11 +237,11 @@ def test_pairwise_bound_is_conservative_by_simulation():
     assert set(order[:k]) == set(np.flatnonzero(rej))
 
 
-def test_size_text_says_its_question_in_the_grammar_and_aligns_its_table(cli):
+def test_size_text_says_its_question_in_the_grammar_and_aligns_its_table(main_cli):
     """The answer's first line uses the grammar's words (a ratio 1.10×, power and
     confidence in per cent, docs/cli.md), and the per-factor table keeps its columns under
     their headers even when the factor names (A, B) are shorter than 'factor'."""
-    r = cli("size", "--detect", "10%", "--noise-cv", "5%", "--levels", "2,2",
+    r = main_cli("size", "--detect", "10%", "--noise-cv", "5%", "--levels", "2,2",
             "--power", "80%", "--confidence", "99%")
     assert r.returncode == 0, r.stderr
     lines = r.stdout.splitlines()

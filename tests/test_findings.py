@@ -10,8 +10,6 @@ from __future__ import annotations
 import json
 import math
 import re
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
@@ -40,12 +38,11 @@ def crossover_frame(seed=3, reps=4, sigma=0.1):
 
 
 def run_cli(*args):
-    """The command a user would type; a wide terminal so the headline is one line."""
-    import os
+    """The command a user would type (in this process: conftest's `run_main`); a wide
+    terminal so the headline is one line."""
+    from conftest import run_main
 
-    env = dict(os.environ, COLUMNS="1000")
-    return subprocess.run([sys.executable, "-m", "benchharness", *map(str, args)], cwd=ROOT,
-                          capture_output=True, text=True, timeout=300, env=env)
+    return run_main(*args, env={"COLUMNS": "1000"})
 
 
 def test_crossover_headline_states_the_interaction_per_level(tmp_path):

@@ -51,8 +51,8 @@ def run_folder(tmp_path, text, model, seed):
     return run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(model, seed=seed))
 
 
-def analysis_json(cli, source, *args):
-    r = cli("analyze", source, *args, "--json")
+def analysis_json(main_cli, source, *args):
+    r = main_cli("analyze", source, *args, "--json")
     assert r.returncode == 0, r.stderr
     return json.loads(r.stdout)
 
@@ -75,8 +75,8 @@ def res4_folder(tmp_path_factory):
     return run_folder(tmp_path_factory.mktemp("res4"), RES4, model, seed=14)
 
 
-def test_res4_default_model_finds_and_names_the_active_chain(res4_folder, cli):
-    a = analysis_json(cli, res4_folder.folder)
+def test_res4_default_model_finds_and_names_the_active_chain(res4_folder, main_cli):
+    a = analysis_json(main_cli, res4_folder.folder)
     terms = [r["term"] for r in a["anova"]]
     assert terms == ["threads", "batch", "cache", "pin", "threads:batch", "threads:cache",
                      "threads:pin", "Residual"]
@@ -113,25 +113,25 @@ def test_res4_default_model_finds_and_names_the_active_chain(res4_folder, cli):
     assert not any(f.get("check") == "missing_cells" for f in a["findings"])
 
 
-def test_res4_terminal_names_the_chain_in_the_verdict(res4_folder, cli):
-    r = cli("analyze", res4_folder.folder)
+def test_res4_terminal_names_the_chain_in_the_verdict(res4_folder, main_cli):
+    r = main_cli("analyze", res4_folder.folder)
     assert r.returncode == 0, r.stderr
     out = " ".join(r.stdout.split())
     assert "threads:batch (+ cache:pin)" in out
     assert "cannot tell threads:batch from cache:pin" in out
     # the fraction table follows, in letters
     assert "AB (+ CD)" in out and "active" in out
-    plain = cli("analyze", res4_folder.folder, "--plain")
+    plain = main_cli("analyze", res4_folder.folder, "--plain")
     assert "threads:batch (+ cache:pin)" in plain.stdout
 
 
-def test_res4_sums_of_squares_match_statsmodels(res4_folder, cli):
+def test_res4_sums_of_squares_match_statsmodels(res4_folder, main_cli):
     # Reference: statsmodels ols + anova_lm(typ=2) of the model with each chain's
     # representative term (threads:batch for threads:batch = cache:pin, ...).
     import statsmodels.api as sm
     import statsmodels.formula.api as smf
 
-    a = analysis_json(cli, res4_folder.folder, "--transform", "log")
+    a = analysis_json(main_cli, res4_folder.folder, "--transform", "log")
     runs = res4_folder.runs
     d = pd.DataFrame({"ft": runs["threads"].astype(str), "fb": runs["batch"].astype(str),
                       "fc": runs["cache"].astype(str), "fp": runs["pin"].astype(str),
@@ -148,18 +148,18 @@ def test_res4_sums_of_squares_match_statsmodels(res4_folder, cli):
             assert r["p"] == pytest.approx(ref.loc[names[r["term"]], "PR(>F)"], rel=1e-6)
 
 
-def test_main_effects_model_on_request(res4_folder, cli):
-    a = analysis_json(cli, res4_folder.folder, "--model", "main")
+def test_main_effects_model_on_request(res4_folder, main_cli):
+    a = analysis_json(main_cli, res4_folder.folder, "--model", "main")
     assert [r["term"] for r in a["anova"]] == ["threads", "batch", "cache", "pin", "Residual"]
     assert a["model"]["spec"] == "main"
 
 
-def test_csv_of_a_fraction_is_recognised_from_its_cells(res4_folder, cli, tmp_path):
+def test_csv_of_a_fraction_is_recognised_from_its_cells(res4_folder, main_cli, tmp_path):
     # The same runs as a plain CSV (no experiment file): the defining relation is found
     # from the observed cells, and the analysis is the same.
     csv = tmp_path / "runs.csv"
     res4_folder.runs.to_csv(csv, index=False)
-    a = analysis_json(cli, csv, "--factors", "threads,batch,cache,pin")
+    a = analysis_json(main_cli, csv, "--factors", "threads,batch,cache,pin")
     assert a["fraction"]["defining_relation"] == ["ABCD"]
     assert {r["term"]: r.get("chain") for r in a["anova"]}["threads:batch"] == \
         "threads:batch (+ cache:pin)"
@@ -171,15 +171,15 @@ RES3 = ("experiment: codecs\ncommand: [python3, -c, pass, '{codec}', '{level}', 
         "design: {resolution: 3}\nreplicates: 3\nseed: 8\n")
 
 
-def test_res3_names_main_effects_with_their_two_factor_aliases(tmp_path, cli):
+def test_res3_names_main_effects_with_their_two_factor_aliases(tmp_path, main_cli):
     # Planted: codec x1.6, dict x0.8 (main effects only) in a replicated 2^(3-1).
     model = SimulatedModel(effects={"codec": {"lzma": 1.6}, "dict": {"yes": 0.8}}, cv=0.04)
     out = run_folder(tmp_path, RES3, model, seed=5)
-    a = analysis_json(cli, out.folder)
+    a = analysis_json(main_cli, out.folder)
     chains = [r.get("chain") for r in a["anova"][:-1]]
     assert chains == ["codec (+ level:dict)", "level (+ codec:dict)", "dict (+ codec:level)"]
     assert significant(a) == {"codec", "dict"}
-    r = cli("analyze", out.folder)
+    r = main_cli("analyze", out.folder)
     text = " ".join(r.stdout.split())
     assert "codec (+ level:dict) matters" in text or "codec (+ level:dict) and" in text
     assert "level (+ codec:dict)" in text
@@ -190,11 +190,11 @@ RES3_5 = ("experiment: service\ncommand: [python3, -c, pass, '{a}', '{b}', '{c}'
           "design: {generators: ['D = AB', 'E = AC']}\nseed: 3\n")
 
 
-def test_unreplicated_2_5_2_uses_lenth(tmp_path, cli):
+def test_unreplicated_2_5_2_uses_lenth(tmp_path, main_cli):
     # Planted: a x2 and e x0.6 in a 2^(5-2) run once (8 runs, 7 chains, no residual df).
     model = SimulatedModel(effects={"a": {"hi": 2.0}, "e": {"hi": 0.6}}, cv=0.03)
     out = run_folder(tmp_path, RES3_5, model, seed=2)
-    a = analysis_json(cli, out.folder, "--transform", "log")
+    a = analysis_json(main_cli, out.folder, "--transform", "log")
     rows = {r["term"]: r for r in a["anova"]}
     assert rows["Residual"]["df"] == 0
     assert rows["a"]["chain"] == "a (+ b:d + c:e)"
@@ -218,12 +218,12 @@ def test_unreplicated_2_5_2_uses_lenth(tmp_path, cli):
     assert hi == pytest.approx(math.exp(eff["a"]["estimate"] + ln["me"]), rel=1e-6)
     cautions = " ".join(f["statement"] for f in a["findings"] if f["kind"] == "caution")
     assert "Lenth's method" in cautions and "nothing could be tested" not in cautions
-    r = cli("analyze", out.folder, "--transform", "log")
+    r = main_cli("analyze", out.folder, "--transform", "log")
     head = r.stdout.splitlines()[0].lower()
     assert "a (+ b:d + c:e) matters" in head and "e (+ a:c) matters" in head
 
 
-def test_unreplicated_two_level_factorial_published_example(tmp_path, cli):
+def test_unreplicated_two_level_factorial_published_example(tmp_path, main_cli):
     # Published worked example, from memory: the filtration-rate pilot-plant experiment in
     # Montgomery, Design and Analysis of Experiments (ch. 6), a 2^4 run once; data in
     # standard order (1), a, b, ab, c, ..., abcd. Its effects are A 21.625, C 9.875,
@@ -234,7 +234,7 @@ def test_unreplicated_two_level_factorial_published_example(tmp_path, cli):
         rows.append({f: ("lo", "hi")[(i >> b) & 1] for b, f in enumerate("ABCD")} | {"rate": v})
     csv = tmp_path / "filtration.csv"
     pd.DataFrame(rows).to_csv(csv, index=False)
-    a = analysis_json(cli, csv, "--factors", "A,B,C,D", "--response", "rate",
+    a = analysis_json(main_cli, csv, "--factors", "A,B,C,D", "--response", "rate",
                       "--transform", "none")
     eff = {e["term"]: e["estimate"] for e in a["fraction"]["effects"]}
     assert eff["A"] == pytest.approx(21.625) and eff["A:C"] == pytest.approx(-18.125)
@@ -269,8 +269,8 @@ def test_lenth_p_matches_its_margin(tmp_path):
     assert math.isclose(ln["df"], 7 / 3)
 
 
-def test_reports_show_the_chains_the_fraction_table_and_the_half_normal_plot(res4_folder, cli):
-    r = cli("report", res4_folder.folder)
+def test_reports_show_the_chains_the_fraction_table_and_the_half_normal_plot(res4_folder, main_cli):
+    r = main_cli("report", res4_folder.folder)
     assert r.returncode == 0, r.stderr
     md = (res4_folder.folder / "report.md").read_text()
     anova = md.split("## Analysis of variance")[1].split("## Alias chains of the fraction")[0]
@@ -292,10 +292,10 @@ def test_reports_show_the_chains_the_fraction_table_and_the_half_normal_plot(res
     assert "<td>threads:batch (+ cache:pin)</td>" in html.split('<section id="anova">')[1]
 
 
-def test_report_of_an_unreplicated_fraction_explains_lenth(tmp_path, cli):
+def test_report_of_an_unreplicated_fraction_explains_lenth(tmp_path, main_cli):
     model = SimulatedModel(effects={"a": {"hi": 2.0}, "e": {"hi": 0.6}}, cv=0.03)
     out = run_folder(tmp_path, RES3_5, model, seed=2)
-    r = cli("report", out.folder)
+    r = main_cli("report", out.folder)
     assert r.returncode == 0, r.stderr
     md = (out.folder / "report.md").read_text()
     frac = md.split("## Alias chains of the fraction")[1].split("## Comparisons")[0]
@@ -304,7 +304,7 @@ def test_report_of_an_unreplicated_fraction_explains_lenth(tmp_path, cli):
     assert "| a (+ b:d + c:e) |" in md.split("## Analysis of variance")[1].replace("**", "")
 
 
-def test_fraction_in_confounded_blocks_enters_its_blocks(tmp_path, cli):
+def test_fraction_in_confounded_blocks_enters_its_blocks(tmp_path, main_cli):
     # Planted: cache x1.3 and a shift of the later blocks (a slowing machine); the design
     # confounds one chain with the blocks, which must be reported, not estimated.
     text = ("experiment: router\ncommand: [python3, -c, pass, '{threads}', '{batch}', '{cache}',"
@@ -312,7 +312,7 @@ def test_fraction_in_confounded_blocks_enters_its_blocks(tmp_path, cli):
             "design: {resolution: 4, blocks: 2}\nreplicates: 2\nseed: 3\n")
     model = SimulatedModel(effects={"cache": {"on": 1.3}}, cv=0.03, drift_per_run=0.01)
     out = run_folder(tmp_path, text, model, seed=6)
-    a = analysis_json(cli, out.folder, "--transform", "log")
+    a = analysis_json(main_cli, out.folder, "--transform", "log")
     assert a["block"] == "block"
     confounded = a["fraction"]["confounded_with_blocks"]
     assert len(confounded) == 1

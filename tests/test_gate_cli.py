@@ -43,9 +43,9 @@ def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
         assert (folder / name).exists(), name
 
 
-def test_identical_commands_pass(cli, tmp_path):
+def test_identical_commands_pass(main_cli, tmp_path):
     cmd = "sleep 0.05"
-    r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "25%",
+    r = main_cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "25%",
             "--seed", "5", "--max-pairs", "40", "--out", tmp_path / "res",
             "--inconclusive", "fail")
     assert r.returncode == 0, r.stdout + r.stderr
@@ -66,7 +66,7 @@ def test_identical_commands_pass(cli, tmp_path):
         assert sorted(grp["build"].astype(str)) == ["baseline", "candidate"]
 
 
-def test_file_form_junit_names_each_workload(cli, tmp_path):
+def test_file_form_junit_names_each_workload(main_cli, tmp_path):
     exp = tmp_path / "gate.yaml"
     exp.write_text("""experiment: nap-gate
 about: Does the new build of the napper sleep longer?
@@ -80,13 +80,13 @@ warmup: 1
 gate: {factor: build, baseline: old, tolerance: 10%, max_pairs: 20, first_look_pairs: 4}
 """)
     junit = tmp_path / "j.xml"
-    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--junit", junit)
+    r = main_cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--junit", junit)
     assert r.returncode == 1, r.stdout + r.stderr
     names = sorted(c.get("name") for c in ET.parse(junit).getroot().iter("testcase"))
     assert names == ["size=large", "size=small"]
 
 
-def test_bad_gate_section_is_located(cli, tmp_path):
+def test_bad_gate_section_is_located(main_cli, tmp_path):
     exp = tmp_path / "gate.yaml"
     exp.write_text("""experiment: x
 command: [echo, "{build}"]
@@ -94,28 +94,28 @@ factors:
   build: [old, new]
 gate: {factor: build, baseline: oldd}
 """)
-    r = cli("gate", exp)
+    r = main_cli("gate", exp)
     assert r.returncode == 2
     assert f"{exp}:5:" in r.stderr and "oldd" in r.stderr
     assert "Traceback" not in r.stderr
 
 
-def test_usage_errors_exit_2(cli, tmp_path):
-    r = cli("gate", "--baseline", "true")
+def test_usage_errors_exit_2(main_cli, tmp_path):
+    r = main_cli("gate", "--baseline", "true")
     assert r.returncode == 2 and "--candidate" in r.stderr
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--tolerance", "abc")
+    r = main_cli("gate", "--baseline", "true", "--candidate", "true", "--tolerance", "abc")
     assert r.returncode == 2 and "tolerance" in r.stderr
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "3",
+    r = main_cli("gate", "--baseline", "true", "--candidate", "true", "--max-pairs", "3",
             "--first-look-pairs", "5")
     assert r.returncode == 2 and "--first-look-pairs (5) must not exceed --max-pairs (3)" in r.stderr
     assert "<gate quick form>" not in r.stderr
 
 
 @pytest.mark.parametrize("inconclusive", [None, "pass"])
-def test_candidate_that_never_succeeds_stops_with_exit_5(cli, tmp_path, inconclusive):
+def test_candidate_that_never_succeeds_stops_with_exit_5(main_cli, tmp_path, inconclusive):
     junit, js = tmp_path / "j.xml", tmp_path / "g.json"
     extra = ("--inconclusive", inconclusive) if inconclusive else ()
-    r = cli("gate", "--baseline", "true", "--candidate", "exit 3", "--seed", "2",
+    r = main_cli("gate", "--baseline", "true", "--candidate", "exit 3", "--seed", "2",
             "--out", tmp_path / "res", "--json-out", js, "--junit", junit, *extra)
     assert r.returncode == 5, r.stdout + r.stderr
     assert " broken " in r.stdout and "the candidate failed all 3 of its runs" in r.stdout
@@ -126,7 +126,7 @@ def test_candidate_that_never_succeeds_stops_with_exit_5(cli, tmp_path, inconclu
     assert case.find("error") is not None and case.find("failure") is None
 
 
-def test_file_form_baseline_command_missing_stops_with_exit_5(cli, tmp_path):
+def test_file_form_baseline_command_missing_stops_with_exit_5(main_cli, tmp_path):
     exp = tmp_path / "gate.yaml"
     exp.write_text("""experiment: missing-gate
 about: The baseline's script was never built.
@@ -139,14 +139,14 @@ factors:
 warmup: 1
 gate: {factor: build, baseline: old, tolerance: 10%, max_pairs: 30}
 """)
-    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--json-out", tmp_path / "g.json")
+    r = main_cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--json-out", tmp_path / "g.json")
     assert r.returncode == 5, r.stdout + r.stderr
     assert "the baseline failed all 3 of its runs" in r.stdout
     data = json.loads((tmp_path / "g.json").read_text())
     assert data["verdict"] == "broken" and data["runs"] <= 6   # two workloads: 2 rounds + 1 block
 
 
-def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
+def test_identical_flaky_commands_are_not_a_regression(main_cli, tmp_path):
     # Both builds run the same script, which fails on every 10th run of its own (a
     # counter file per build); the candidate's first failure comes before the
     # baseline's. One failure must not decide: exit 0, and the reason names the counts.
@@ -155,7 +155,7 @@ def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
                       'sleep 0.03\n[ $((n % 10)) -ne "$2" ]\n')
     base = f"sh {script} {tmp_path / 'count-base'} 7"
     cand = f"sh {script} {tmp_path / 'count-cand'} 4"
-    r = cli("gate", "--baseline", base, "--candidate", cand, "--tolerance", "30%",
+    r = main_cli("gate", "--baseline", base, "--candidate", cand, "--tolerance", "30%",
             "--seed", "4", "--max-pairs", "40", "--out", tmp_path / "res",
             "--json-out", tmp_path / "g.json")
     data = json.loads((tmp_path / "g.json").read_text())
@@ -169,17 +169,17 @@ def test_identical_flaky_commands_are_not_a_regression(cli, tmp_path):
     assert "verdict: the candidate fails more often" not in r.stdout
 
 
-def test_stored_baseline_warns(cli, tmp_path):
+def test_stored_baseline_warns(main_cli, tmp_path):
     cmd = "sleep 0.02"
-    r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "4",
+    r = main_cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "4",
             "--max-pairs", "10", "--out", tmp_path / "first")
     assert r.returncode in (0, 3), r.stdout + r.stderr
-    r = cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "5",
+    r = main_cli("gate", "--baseline", cmd, "--candidate", cmd, "--tolerance", "50%", "--seed", "5",
             "--max-pairs", "10", "--against", tmp_path / "first", "--out", tmp_path / "second")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert "earlier session" in r.stderr  # a warning: standard error
     # only the candidate runs, so --baseline is not required with --against
-    r = cli("gate", "--candidate", cmd, "--tolerance", "50%", "--seed", "6",
+    r = main_cli("gate", "--candidate", cmd, "--tolerance", "50%", "--seed", "6",
             "--max-pairs", "10", "--against", tmp_path / "first", "--out", tmp_path / "third")
     assert r.returncode in (0, 3), r.stdout + r.stderr
     assert "earlier session" in r.stderr
@@ -212,13 +212,13 @@ def _rate_gate(tmp_path, new_rate, response="rate_ops"):
     return exp
 
 
-def test_throughput_metric_from_metrics_section(cli, tmp_path):
+def test_throughput_metric_from_metrics_section(main_cli, tmp_path):
     # A custom metric with `better: higher`: 30% fewer records per second is a
     # regression (slowdown = baseline / candidate), and the JUnit file has one
     # test case per workload, each with a failure element. This used to judge
     # nothing: the gate did not extract metrics at all and ended undecided.
     junit = tmp_path / "j.xml"
-    r = cli("gate", _rate_gate(tmp_path, 700), "--seed", "1", "--out", tmp_path / "res",
+    r = main_cli("gate", _rate_gate(tmp_path, 700), "--seed", "1", "--out", tmp_path / "res",
             "--junit", junit, "--json-out", tmp_path / "g.json")
     assert r.returncode == 1, r.stdout + r.stderr
     assert "higher is better" in r.stdout
@@ -237,20 +237,20 @@ def test_throughput_metric_from_metrics_section(cli, tmp_path):
     # each row says which build it measured
     assert {row["gate_role"] for row in rows} == {"baseline", "candidate"}
     # `analyze` on a gate folder analyses what the gate compared, unless told otherwise
-    an = cli("analyze", tmp_path / "res", "--json")
+    an = main_cli("analyze", tmp_path / "res", "--json")
     assert an.returncode == 0, an.stderr
     assert json.loads(an.stdout)["response"] == "rate_ops"
     assert "the response this gate compared" in an.stderr
-    an = cli("analyze", tmp_path / "res", "--json", "--response", "wall_s")
+    an = main_cli("analyze", tmp_path / "res", "--json", "--response", "wall_s")
     assert json.loads(an.stdout)["response"] == "wall_s"
     # `report` works on a gate folder
-    rep = cli("report", tmp_path / "res")
+    rep = main_cli("report", tmp_path / "res")
     assert rep.returncode == 0, rep.stderr
     assert (tmp_path / "res" / "report.html").exists()
 
 
-def test_throughput_metric_higher_candidate_passes(cli, tmp_path):
-    r = cli("gate", _rate_gate(tmp_path, 1300), "--seed", "1", "--out", tmp_path / "res",
+def test_throughput_metric_higher_candidate_passes(main_cli, tmp_path):
+    r = main_cli("gate", _rate_gate(tmp_path, 1300), "--seed", "1", "--out", tmp_path / "res",
             "--json-out", tmp_path / "g.json")
     assert r.returncode == 0, r.stdout + r.stderr
     data = json.loads((tmp_path / "g.json").read_text())
@@ -262,24 +262,24 @@ def test_throughput_metric_higher_candidate_passes(cli, tmp_path):
         assert w["ratio"] == pytest.approx(1000 / 1300, rel=0.1)
 
 
-def test_unknown_response_is_located(cli, tmp_path):
+def test_unknown_response_is_located(main_cli, tmp_path):
     exp = _rate_gate(tmp_path, 700, response="rate_op")
-    r = cli("gate", exp, "--out", tmp_path / "res")
+    r = main_cli("gate", exp, "--out", tmp_path / "res")
     assert r.returncode == 2
     assert f"{exp}:13:" in r.stderr and "did you mean 'rate_ops'" in r.stderr
     assert not (tmp_path / "res").exists()
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--response", "rate_ops")
+    r = main_cli("gate", "--baseline", "true", "--candidate", "true", "--response", "rate_ops")
     assert r.returncode == 2 and "--response" in r.stderr and "Traceback" not in r.stderr
 
 
-def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
+def test_inconclusive_exit_codes_and_summary_appends(main_cli, tmp_path):
     # Both builds always fail: no block carries a timing difference and neither build
     # fails where the other does not, so within the budget the verdict is inconclusive,
     # deterministically (timings alone could, rarely, settle even two blocks).
     summary = tmp_path / "summary.md"
     codes = []
     for i, extra in enumerate([[], ["--inconclusive", "pass"], ["--inconclusive", "fail"]]):
-        r = cli("gate", "--baseline", "false", "--candidate", "false",
+        r = main_cli("gate", "--baseline", "false", "--candidate", "false",
                 "--first-look-pairs", "2", "--max-pairs", "2", "--seed", "7", "--warmup-runs", "0",
                 "--out", tmp_path / f"res{i}", "--summary", summary, *extra)
         assert " undecided " in r.stdout, r.stdout + r.stderr
@@ -292,12 +292,12 @@ def test_inconclusive_exit_codes_and_summary_appends(cli, tmp_path):
                    "factors:\n  build:\n    old: {bin: \"false\"}\n    new: {bin: \"false\"}\n"
                    "gate: {factor: build, baseline: old, first_look_pairs: 2, max_pairs: 2, "
                    "inconclusive: pass}\n")
-    r = cli("gate", exp, "--seed", "7", "--out", tmp_path / "res-file",
+    r = main_cli("gate", exp, "--seed", "7", "--out", tmp_path / "res-file",
             "--inconclusive", "distinct")
     assert r.returncode == 3 and " undecided " in r.stdout, r.stdout + r.stderr
 
 
-def test_file_form_build_once_per_rendered_form_with_env(cli, tmp_path):
+def test_file_form_build_once_per_rendered_form_with_env(main_cli, tmp_path):
     # The two builds differ only in a templated environment variable: each is built
     # exactly once, before its first run.
     log = tmp_path / "build.log"
@@ -311,17 +311,17 @@ factors:
 warmup: 1
 gate: {{factor: build, baseline: "0", tolerance: 50%, max_pairs: 6, first_look_pairs: 6}}
 """)
-    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
+    r = main_cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
     # the verdict on two equal sleeps is not the point here (a load spike may sway it)
     assert r.returncode in (0, 1, 3) and "Traceback" not in r.stderr, r.stdout + r.stderr
     assert sorted(log.read_text().split()) == ["-O0", "-O2"]
 
 
 @pytest.mark.parametrize("opt", ["--junit", "--summary", "--json-out"])
-def test_unwritable_output_refused_before_any_run(cli, tmp_path, opt):
+def test_unwritable_output_refused_before_any_run(main_cli, tmp_path, opt):
     # exit 2 with one line before running anything (it was a traceback with exit 1,
     # which a CI job reads as a regression, after the whole gate had run)
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--out", tmp_path / "res",
+    r = main_cli("gate", "--baseline", "true", "--candidate", "true", "--out", tmp_path / "res",
             opt, tmp_path / "missing" / "out.file")
     assert r.returncode == 2, r.stdout + r.stderr
     assert opt in r.stderr and "does not exist" in r.stderr and "Traceback" not in r.stderr
@@ -364,13 +364,13 @@ def test_ctrl_c_exits_130_and_the_folder_is_not_resumable_as_a_run(tmp_path, cli
     assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"
 
 
-def test_metric_in_a_difference_unit_is_refused_before_any_run(cli, tmp_path):
+def test_metric_in_a_difference_unit_is_refused_before_any_run(main_cli, tmp_path):
     # one scale per response: the gate judges ratios on the log scale, which mean nothing for
     # a metric declared in °C; it says so in one line and runs nothing
     exp = _rate_gate(tmp_path, 700)
     exp.write_text(exp.read_text().replace("    better: higher\n",
                                            "    better: higher\n    unit: °C\n"))
-    r = cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
+    r = main_cli("gate", exp, "--seed", "1", "--out", tmp_path / "res")
     assert r.returncode == 2, r.stdout + r.stderr
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and "rate.yaml:" in lines[0]

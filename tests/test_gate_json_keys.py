@@ -10,12 +10,12 @@ import pytest
 
 @pytest.mark.parametrize("spelling", [("--max-pairs", "--first-look-pairs"),
                                       ("--max-runs", "--min-runs")])
-def test_gate_json_pair_counts_under_new_and_old_keys(cli, tmp_path, spelling):
+def test_gate_json_pair_counts_under_new_and_old_keys(main_cli, tmp_path, spelling):
     # Planted: the counts given on the command line are the ones written, whichever
     # spelling gave them (the old options are aliases with a note on stderr).
     big, first = spelling
     js = tmp_path / "g.json"
-    r = cli("gate", "--baseline", "true", "--candidate", "true", "--seed", "1",
+    r = main_cli("gate", "--baseline", "true", "--candidate", "true", "--seed", "1",
             big, "9", first, "7", "--out", tmp_path / "res", "--json-out", js)
     # the verdict on two equal 1 ms commands is not the point here (load may sway it)
     assert r.returncode in (0, 1, 3) and "Traceback" not in r.stderr, r.stdout + r.stderr

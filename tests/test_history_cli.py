@@ -33,21 +33,21 @@ def _history(tmp_path, n_commits=16, step_at=6, host_at=12):
     return folders
 
 
-def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, cli):
+def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, main_cli):
     folders = _history(tmp_path)
     db = tmp_path / "hist.sqlite"
     from benchharness.history.store import add_results
 
     for i, f in enumerate(folders[:-1]):       # the library call the CLI makes
         assert add_results(db, f, commit=f"c{i:02d}", branch="main", cwd=tmp_path) == 2
-    r = cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main", "--history-db", db)
+    r = main_cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main", "--history-db", db)
     assert r.returncode == 0, r.stderr
     assert "2 cell rows added" in r.stdout
-    r = cli("history", "add", *folders[:3], "--commit", "c00", "--history-db", db)
+    r = main_cli("history", "add", *folders[:3], "--commit", "c00", "--history-db", db)
     assert r.returncode == 2 and "already recorded as commit c01" in r.stderr
 
     out_json, out_html = tmp_path / "t.json", tmp_path / "t.html"
-    r = cli("history", "show", "--history-db", db, "--json-out", out_json, "--html", out_html,
+    r = main_cli("history", "show", "--history-db", db, "--json-out", out_json, "--html", out_html,
             "--fail-on-regression")
     assert r.returncode == 1, r.stderr          # the planted step is an open regression
     assert "regression: archive-codecs wall_s codec=<fast> at commit c0" in r.stderr
@@ -133,7 +133,7 @@ def test_html_page_loads_offline_in_chromium(tmp_path):
     assert [u for u in requests if not u.startswith(("file:", "data:"))] == []
 
 
-def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, cli):
+def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, main_cli):
     # planted: three commits at one speed, then three at 2.3x the time (5 runs each,
     # 2 % noise); `history show --fail-on-regression` as a nightly job runs it after
     # the third, fourth and fifth commit
@@ -149,7 +149,7 @@ def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, c
                          start=datetime(2026, 11, 1, tzinfo=timezone.utc) + timedelta(days=i))
         assert add_results(db, f, commit=f"c{i}", branch="main", cwd=tmp_path) == 1
         if i >= 2:
-            outs[i] = cli("history", "show", "--history-db", db, "--fail-on-regression",
+            outs[i] = main_cli("history", "show", "--history-db", db, "--fail-on-regression",
                           "--json-out", tmp_path / f"show{i}.json")
     assert [outs[i].returncode for i in (2, 3, 4)] == [0, 0, 1]
     assert "No step found" in outs[2].stdout and "NOT YET" not in outs[2].stdout

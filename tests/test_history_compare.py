@@ -242,7 +242,7 @@ def test_same_program_pairs_flag_nothing_at_the_stated_rate_long():
         assert flags / n <= 0.05, (tol, flags / n)
 
 
-def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
+def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, main_cli):
     import itertools
 
     rng = np.random.default_rng(5)
@@ -255,7 +255,7 @@ def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
     a = write_folder(tmp_path / "A", "archive-codecs", CELLS16, values())
     same = write_folder(tmp_path / "B", "archive-codecs", CELLS16, values())
     slower = write_folder(tmp_path / "C", "archive-codecs", CELLS16, values(("zstd", "csv")))
-    r = cli("compare", a, same, "--json-out", tmp_path / "same.json")
+    r = main_cli("compare", a, same, "--json-out", tmp_path / "same.json")
     assert r.returncode == 0, r.stderr
     assert "Sidak" in r.stdout and "all 16 cells together at 95%" in r.stdout
     assert "slower (beyond" not in r.stdout and "faster (beyond" not in r.stdout
@@ -263,7 +263,7 @@ def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
     data = json.loads((tmp_path / "same.json").read_text())
     assert data["interval_adjustment"] == "sidak"
     assert data["per_cell_conf_level"] == pytest.approx(0.95 ** (1 / 16))
-    r = cli("compare", a, slower, "--json-out", tmp_path / "slow.json")
+    r = main_cli("compare", a, slower, "--json-out", tmp_path / "slow.json")
     assert r.returncode == 0, r.stderr
     cells = json.loads((tmp_path / "slow.json").read_text())["cells"]
     flagged = [c["cell"] for c in cells if c["verdict"] != "within" and c["verdict"] != "unclear"]
@@ -276,7 +276,7 @@ def test_a_planted_1_3x_cell_is_still_flagged_among_16(tmp_path, cli):
     assert "(of 16 shared cells)" in head and "faster" not in head
     assert " s " in r.stdout and "×" in r.stdout and "× to " in r.stdout
     assert not re.search(r"\d-\d\.\d", r.stdout)     # no "1.01-1.10" intervals left
-    r = cli("compare", a, same, "--adjust", "none")
+    r = main_cli("compare", a, same, "--adjust", "none")
     assert r.returncode == 0 and "per cell" in r.stdout and "not adjusted" in r.stdout
-    r = cli("compare", a, same, "--adjust", "holm")
+    r = main_cli("compare", a, same, "--adjust", "holm")
     assert r.returncode == 2 and "Traceback" not in r.stderr
