@@ -257,6 +257,20 @@ def test_duration_without_a_unit_is_refused(text):
 def test_file_timeout_without_unit_is_a_located_error(tmp_path, capsys):
     f = tmp_path / "t.yaml"
     f.write_text("experiment: t\ncommand: [/bin/true]\nfactors:\n  a: [x, y]\ntimeout: 60\n")
+    # an experiment file where a results folder or CSV is wanted: said as such, not "a CSV
+    # needs --factors" (every SOURCE is read by options.source)
+    for argv, cmd in [(["analyze", str(f)], "analyze"), (["choose", str(f)], "choose"),
+                      (["size", "--detect", "5%", "--pilot", str(f)], "size")]:
+        with pytest.raises(SystemExit) as info:
+            main(argv)
+        err = capsys.readouterr().err.strip()
+        assert info.value.code == 2 and f"{f} is an experiment file; give the results " \
+            "folder a run of it wrote" in err and err.endswith(
+                f"(see `benchharness {cmd} --help`)"), err
+    for name, parser in PARSERS:
+        for action in parser._actions:
+            if action.metavar == "SOURCE":
+                assert getattr(action.type, "__name__", None) == "source", (name, action.dest)
     assert main(["plan", str(f)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and f"{f}:5:10:" in err[0] and "did you mean 60s?" in err[0], err

@@ -22,7 +22,8 @@ def add_parser(sub) -> None:
             "CSV from elsewhere, 99% intervals",
             "benchharness analyze results/example-archive-codecs --json > analysis.json  # the "
             "analysis as one JSON document"))
-    p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV file")
+    p.add_argument("source", metavar="SOURCE", type=O.source,
+                   help="results folder or tidy CSV file")
     p.add_argument("--response", default=None, metavar="NAME",
                    help="column to analyse (default: the experiment file's response:, else wall_s; "
                         "for a gate's folder, the response "

@@ -32,7 +32,8 @@ def add_parser(subparsers):
             "benchharness choose results/example-archive-codecs --json  # the choice as one "
             "JSON document"),
     )
-    p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV of runs")
+    p.add_argument("source", metavar="SOURCE", type=O.source,
+                   help="results folder or tidy CSV of runs")
     p.add_argument("--response", default=None, metavar="NAME",
                    help="response column to choose on (default: choose.response, else the file's "
                         "response:, else wall_s)")

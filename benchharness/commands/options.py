@@ -199,6 +199,20 @@ def out_file(option: str, stdout_ok: bool = False):
     return _type(parse, "path")
 
 
+def source(text: str) -> str:
+    """argparse type of a SOURCE (a results folder or a tidy CSV): an experiment file given
+    there by mistake is refused at once, saying what to give instead (it was read as a CSV
+    and refused for lacking --factors)."""
+    if text.lower().endswith((".yaml", ".yml")) and os.path.isfile(text):
+        raise argparse.ArgumentTypeError(
+            f"{text} is an experiment file; give the results folder a run of it wrote "
+            f"(`benchharness run {text}` makes one) or a tidy CSV")
+    return text
+
+
+source = _type(source, "source")
+
+
 def add_json(p, what: str) -> None:
     """``--json`` (one JSON document on stdout, nothing else) and ``--json-out FILE``."""
     p.add_argument("--json", action="store_true",

@@ -24,7 +24,7 @@ def add_parser(sub) -> None:
     O.add_json(p, "the plan")
     p.add_argument("--seed", type=int, default=None, metavar="N",
                    help="override the file's seed")
-    p.add_argument("--pilot", metavar="SOURCE",
+    p.add_argument("--pilot", metavar="SOURCE", type=O.source,
                    help="earlier results folder (or tidy CSV): estimate how long the plan takes")
     p.add_argument("--budget", metavar="DURATION", type=O.duration,
                    help="with --pilot: how many complete replicates fit this time (e.g. 30m)")

@@ -18,7 +18,8 @@ def add_parser(sub) -> None:
             "short Markdown report on standard output, for a CI page",
             "benchharness report runs.csv --factors codec,level --html codecs.html  # a tidy "
             "CSV from elsewhere"))
-    p.add_argument("source", metavar="SOURCE", help="results folder or tidy CSV file")
+    p.add_argument("source", metavar="SOURCE", type=O.source,
+                   help="results folder or tidy CSV file")
     p.add_argument("--html", metavar="FILE", type=O.out_file("--html"),
                    help="HTML report path (default: SOURCE/report.html)")
     p.add_argument("--markdown", metavar="FILE", type=O.out_file("--markdown", stdout_ok=True),

@@ -54,7 +54,7 @@ def add_parser(sub) -> None:
     p.add_argument("--budget", metavar="DURATION", type=O.duration,
                    help="time budget (e.g. 30m, 2h): stop at the end of the last complete "
                         "replicate that fits")
-    p.add_argument("--pilot", metavar="SOURCE",
+    p.add_argument("--pilot", metavar="SOURCE", type=O.source,
                    help="earlier results folder (or tidy CSV) whose run times estimate the "
                         "first replicate for --budget")
     p.add_argument("--history-db", metavar="FILE", type=O.out_file("--history-db"),

@@ -40,7 +40,7 @@ def add_parser(sub) -> None:
     noise = p.add_mutually_exclusive_group()
     noise.add_argument("--noise-cv", metavar="PCT", type=O.percent(0.0, 1.0, low_open=True),
                        help="run-to-run coefficient of variation of the response, e.g. 2%%")
-    noise.add_argument("--pilot", metavar="SOURCE",
+    noise.add_argument("--pilot", metavar="SOURCE", type=O.source,
                        help="earlier results folder (or tidy CSV): noise and run times from it")
     p.add_argument("--levels", metavar="LIST|FILE",
                    help="levels per factor, e.g. 3,2,4, or an experiment file "
