@@ -494,3 +494,22 @@ def test_legacy_json_file_still_written(tmp_path, capsys):
     assert main(["analyze", str(csv), "--factors", "a", "--json", "-"]) == 0
     out, err = capsys.readouterr()
     assert json.loads(out)["response"] == "wall_s" and "--json - is deprecated" in err
+
+
+def test_a_refused_first_history_add_leaves_no_file(tmp_path, capsys, monkeypatch):
+    """Outside git and without --commit, `history add` is refused (exit 2): the history
+    file (and its folder) it would have created are not left behind empty, so a later
+    `history show` says there is no history file rather than "no rows match"."""
+    from history_helpers import write_folder
+
+    folder = write_folder(tmp_path / "res", "spool", {"pool": ["2", "8"]},
+                          {("2",): [0.1, 0.11], ("8",): [0.2, 0.21]})
+    work = tmp_path / "work"
+    work.mkdir()
+    monkeypatch.chdir(work)
+    monkeypatch.setenv("GIT_CEILING_DIRECTORIES", str(tmp_path))
+    assert main(["history", "add", str(folder)]) == 2
+    assert "no --commit given" in capsys.readouterr().err
+    assert list(work.iterdir()) == []
+    assert main(["history", "add", str(folder), "--commit", "c1", "--branch", "main"]) == 0
+    assert (work / "results" / "history.sqlite").is_file()

@@ -10,6 +10,7 @@ used; the file is meant to be kept as a CI artifact or cache.
 from __future__ import annotations
 
 import json
+import os
 import sqlite3
 from datetime import datetime, timezone
 from pathlib import Path
@@ -187,7 +188,10 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
                                                    conf_level, data.levels, data.path)))
     journal = data.path / "runs.jsonl"
     journal_bytes = journal.read_bytes() if journal.is_file() else b""
+    created = not Path(db_path).exists()
+    made_folder = not Path(db_path).parent.exists()
     conn = connect(db_path)
+    added = None
     try:
         conn.execute("BEGIN IMMEDIATE")
         try:
@@ -196,6 +200,7 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
             _record_units(conn, data, responses)
             conn.execute("COMMIT")
         except BaseException:
+            added = None
             conn.execute("ROLLBACK")
             raise
         return added
@@ -207,6 +212,26 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
         raise DataError(f"{db_path}: cannot write the history file ({exc})") from None
     finally:
         conn.close()
+        if created and added is None:
+            _remove_if_empty(db_path, made_folder)
+
+
+def _remove_if_empty(db_path, made_folder: bool) -> None:
+    """A history file this add created and then refused to fill (no commit given outside
+    git, say) is removed, so a failed first add leaves no empty file behind for `history
+    show` to read as "no rows match"; a file holding any folder is never touched."""
+    try:
+        conn = sqlite3.connect(str(db_path))
+        try:
+            empty = conn.execute("SELECT COUNT(*) FROM folders").fetchone()[0] == 0
+        finally:
+            conn.close()
+        if empty:
+            os.unlink(db_path)
+            if made_folder:
+                os.rmdir(Path(db_path).parent)   # only when empty; else OSError, kept
+    except (sqlite3.DatabaseError, OSError):
+        pass
 
 
 def _record_folder(conn, data, record: str, select, journal_bytes: bytes, commit, branch,
