@@ -107,6 +107,9 @@ def test_interrupted_import_leaves_no_partial_rows(tmp_path, monkeypatch):
             raise RuntimeError("disk pulled out mid-import")
         return real(conn, row)
 
+    # an existing history file (a first add that fails removes the file it made:
+    # tests/test_cli_grammar.py::test_a_refused_first_history_add_leaves_no_file)
+    store.connect(db).close()
     monkeypatch.setattr(store, "_insert_cell", failing)
     with pytest.raises(RuntimeError):
         add_results(db, f, commit="aaa1", cwd=tmp_path)
