@@ -73,6 +73,7 @@ ADDR_NO_RANDOMIZE = 0x0040000
 PERSONALITY_QUERY = 0xFFFFFFFF
 OUTPUT_PIPE_SIZE = 1 << 20  # the run's stdout and stderr pipes, where allowed
 TAIL_MIN = 1 << 18    # bytes of each output ring at least (reads of a loud command)
+BYTEORDER = sys.byteorder
 
 
 # ---------------------------------------------------------------- framing
@@ -510,19 +511,20 @@ class Launcher:
         ended, 2 if ``pid`` has ended nonetheless (its signal merged into one
         already pending), 0 if it still runs (the signal was another child's:
         an orphan re-parented to us)."""
-        try:
-            data = os.read(self.sigfd, 128 * 32)  # struct signalfd_siginfo: 128 bytes
-        except OSError:
-            data = b""
-        # ssi_code at bytes 8-11 (CLD_EXITED, _KILLED or _DUMPED), ssi_pid at 12-15
-        if len(data) == 128:  # the usual case: one signal, the run's own
-            if data[8] < 4 and int.from_bytes(data[12:16], sys.byteorder) == pid:
+        # One struct signalfd_siginfo (128 bytes) at a time: usually the only
+        # one, the run's own (a larger read costs a 4 KiB buffer cut down
+        # again); any others are drained in `settle`.
+        fd = self.sigfd
+        while True:
+            try:
+                data = os.read(fd, 128)
+            except OSError:
+                break
+            if len(data) < 16:
+                break
+            # ssi_code at bytes 8-11 (CLD_EXITED, _KILLED or _DUMPED), ssi_pid at 12-15
+            if data[8] < 4 and int.from_bytes(data[12:16], BYTEORDER) == pid:
                 return 1
-        else:
-            want = pid.to_bytes(4, sys.byteorder)
-            for off in range(0, len(data), 128):
-                if data[off + 12:off + 16] == want and data[off + 8] < 4:
-                    return 1
         try:
             return 2 if os.waitid(os.P_PID, pid, os.WEXITED | os.WNOHANG | os.WNOWAIT) else 0
         except ChildProcessError:
