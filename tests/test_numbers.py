@@ -266,7 +266,11 @@ def test_host_prints_the_three_load_averages_alike(capsys, monkeypatch):
     facts = {"cpu_model": "Example CPU", "physical_cores": 2, "logical_cores": 2,
              "memory_bytes": 2 ** 33, "load_average_start": [1.5, 0.949, 1.216]}
     monkeypatch.setattr(host, "collect_facts", lambda: facts)
-    monkeypatch.setattr(host, "check_host", lambda f: [])
+    planted = {"severity": "warning", "message": "planted: the kettle is boiling",
+               "fix": "wait for it"}
+    monkeypatch.setattr(host, "check_host", lambda f: [planted])
     assert main(["host"]) == 0
-    out = capsys.readouterr().out
+    out, err = capsys.readouterr()
     assert re.search(r"^load average\s+1\.50, 0\.95, 1\.22$", out, re.M), out
+    # a warning is one line on stderr, as `run` writes it
+    assert err.splitlines() == ["warning: planted: the kettle is boiling; fix: wait for it"]

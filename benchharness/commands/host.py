@@ -72,8 +72,8 @@ def main(args) -> int:
         if not warnings:
             print("\nno conditions found that are known to disturb timings")
         for w in warnings:  # warnings and notes: standard error, like every command's
-            print(f"{w['severity']}: {w['message']}", file=sys.stderr)
-            print(f"  fix: {w['fix']}", file=sys.stderr)
+            # one line each, as `run` says them: "warning: MESSAGE; fix: FIX"
+            print(f"{w['severity']}: {w['message']}; fix: {w['fix']}", file=sys.stderr)
     if args.strict and any(w["severity"] == "warning" for w in warnings):
         return 1
     return 0
