@@ -6,7 +6,7 @@ statistics; everything comes from ``Choice.to_dict()``.
 
 from __future__ import annotations
 
-from benchharness.numbers import fmt_ratio, pick_scale
+from benchharness.numbers import MISSING, fmt_ratio, pick_scale
 
 __all__ = ["condition_word", "section_dict", "terminal_text"]
 
@@ -83,7 +83,7 @@ def _row(d: dict, c: dict, log: bool, mean_s, loss_s) -> list[str]:
     verdict = ("outside limits" if excluded else "recommended" if c["recommended"]
                else "tied" if c["tied"] else "worse")
     wc = _ratio_words(c["worst_case_loss"]) if log else loss_s.fmt(c["worst_case_loss"])
-    we = "-" if excluded else _worst_words(d, c, log, loss_s)
+    we = MISSING if excluded else _worst_words(d, c, log, loss_s)
     row = [_setting(c["setting"]), mean_s.fmt(c["mean"]), str(c["runs"]), verdict, wc, we]
     if d["across"]:
         row.append(_ratio_words(c["mean_ratio"]) if log else loss_s.fmt(c["mean_loss"]))

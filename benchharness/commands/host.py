@@ -5,6 +5,8 @@ from __future__ import annotations
 import json
 import sys
 
+from benchharness.numbers import MISSING
+
 
 def add_parser(sub) -> None:
     from benchharness.commands import options as O
@@ -32,9 +34,9 @@ def _fmt(v) -> str:
     if isinstance(v, bool):
         return "yes" if v else "no"
     if isinstance(v, dict):
-        return ", ".join(f"{k} {_fmt(x)}" for k, x in v.items()) or "-"
+        return ", ".join(f"{k} {_fmt(x)}" for k, x in v.items()) or MISSING
     if isinstance(v, list):   # load averages alike: "1.86, 0.95, 1.22", not "1.86, 0.949, 1.216"
-        return ", ".join(f"{x:.2f}" if isinstance(x, float) else _fmt(x) for x in v) or "-"
+        return ", ".join(f"{x:.2f}" if isinstance(x, float) else _fmt(x) for x in v) or MISSING
     return str(v)
 
 
