@@ -15,12 +15,15 @@ def add_parser(sub) -> None:
                                    "from different sessions confound the change with the "
                                    "machine's state; `benchharness gate` interleaves both.",
                        epilog=O.examples(
-                           "benchharness compare results/codecs-monday results/codecs-friday  "
-                           "# per cell, Friday's time as a ratio of Monday's",
-                           "benchharness compare results/codecs-monday results/codecs-friday "
-                           "--tolerance 2% --confidence 99%  # a tighter band, wider intervals",
-                           "benchharness compare results/codecs-monday results/codecs-friday "
-                           "--json  # the comparison as one JSON document"))
+                           "benchharness compare results/example-archive-codecs "
+                           "results/codecs-try  # per cell, your run's time as a ratio of the "
+                           "shipped demo's (`benchharness run experiments/archive-codecs.yaml "
+                           "--out results/codecs-try` makes it)",
+                           "benchharness compare results/example-archive-codecs "
+                           "results/codecs-try --tolerance 2% --confidence 99%  # a tighter "
+                           "band, wider intervals",
+                           "benchharness compare results/example-archive-codecs "
+                           "results/codecs-try --json  # the comparison as one JSON document"))
     p.add_argument("a", metavar="A", help="results folder of the baseline")
     p.add_argument("b", metavar="B", help="results folder to compare with the baseline")
     p.add_argument("--tolerance", default=1.05, metavar="RATIO",
