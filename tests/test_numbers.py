@@ -212,6 +212,9 @@ def test_a_metrics_declared_unit_is_printed_as_declared(tmp_path, capsys, monkey
     assert main(["run", str(tmp_path / "exp.yaml"), "--out", str(res), "--quiet",
                  "--no-analysis"]) == 0
     capsys.readouterr()
+    # resuming a folder whose runs are all recorded says so (it said "running 0 runs")
+    assert main(["run", "--resume", str(res), "--no-analysis"]) == 0
+    assert "nothing left to run: every planned run of" in capsys.readouterr().err
     outs = {}
     for name, argv in [("analyze", ["analyze", res]), ("choose", ["choose", res]),
                        ("compare", ["compare", res, res])]:

@@ -59,7 +59,7 @@ class PlainProgress(Progress):
     def start(self, total, done, folder):
         self.total, self.done, self.t0, self.last = total, done, time.monotonic(), 0.0
         self.first_done = done
-        print(f"running {total - done} runs into {folder}", file=self.stream, flush=True)
+        print(_running(total - done, folder), file=self.stream, flush=True)
 
     def advance(self, record, label):
         self.done += 1
@@ -76,6 +76,16 @@ class PlainProgress(Progress):
         print(text, file=self.stream, flush=True)
 
 
+def _running(left: int, folder) -> str:
+    """The line a run (or a resume) starts with: "running 1 run into ...", or that nothing
+    is left when every planned run of a resumed folder is recorded."""
+    from benchharness.numbers import plural
+
+    if left == 0:
+        return f"nothing left to run: every planned run of {folder} is recorded"
+    return f"running {plural(left, 'run')} into {folder}"
+
+
 class RichProgress(Progress):
     """A live bar with count, elapsed, time left and the current cell."""
 
@@ -88,7 +98,7 @@ class RichProgress(Progress):
                                    TimeElapsedColumn, TimeRemainingColumn)
 
         self.console = self.console or Console(stderr=False)
-        self.console.print(f"running {total - done} runs into [bold]{folder}[/bold]")
+        self.console.print(_running(total - done, f"[bold]{folder}[/bold]"))
         self.bar = RP(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                       TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
                       TextColumn("{task.fields[cell]}"), console=self.console,
