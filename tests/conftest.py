@@ -68,18 +68,20 @@ def _environ(env: dict):
 def run_main(*args, cwd=None, env=None, timeout=None, input=None):
     """Run ``benchharness ARGS`` in this process (``benchharness.cli.main``), as
     ``run_cli`` would in a new one: the same working directory (the checkout unless
-    ``cwd``), environment, standard input and captured output, and the exit code argparse
-    or the command gives. ``timeout`` is accepted for a drop-in swap and not enforced."""
+    ``cwd``), environment, ``sys.argv``, standard input and captured output, and the exit
+    code argparse or the command gives. ``timeout`` is accepted for a drop-in swap and not enforced."""
     from benchharness import cli, values
 
     argv = [str(a) for a in args]
     out, err = _Stream(), _Stream()
     values._said.clear()   # a new process says each deprecation note once again
-    saved = sys.stdin, sys.stdout, sys.stderr
+    saved = sys.stdin, sys.stdout, sys.stderr, sys.argv
     old_cwd = os.getcwd()
     with _environ(_cli_env(env)):
         os.chdir(cwd or ROOT)
         sys.stdin, sys.stdout, sys.stderr = _Stream(input or ""), out, err
+        # what `python -m benchharness ARGS` sees (a results folder records it)
+        sys.argv = [str(ROOT / "benchharness" / "__main__.py"), *argv]
         try:
             code = cli.main(argv)
         except SystemExit as exc:   # argparse's --help, --version and usage errors
@@ -88,7 +90,7 @@ def run_main(*args, cwd=None, env=None, timeout=None, input=None):
                 print(code, file=err)
                 code = 1
         finally:
-            sys.stdin, sys.stdout, sys.stderr = saved
+            sys.stdin, sys.stdout, sys.stderr, sys.argv = saved
             os.chdir(old_cwd)
     return subprocess.CompletedProcess(["benchharness", *argv], int(code or 0),
                                        out.getvalue(), err.getvalue())

@@ -4,6 +4,11 @@ Each case plants a file that used to hang, fill memory or crash the harness,
 runs the command a user would (in a subprocess with a timeout, so a regression
 fails instead of hanging the suite) and asserts what the tool says: exit code 2,
 one line on stderr naming FILE:LINE:COL and what to do, and no traceback.
+
+The damaged results folders (a journal line that is not a record, garbage in
+plan.csv or session.json, a changed frozen experiment) are read in this process
+(conftest's `run_main`): those commands only read small files, which cannot hang
+or fill memory, and a new process for each would cost a second of imports.
 """
 
 from __future__ import annotations
@@ -14,7 +19,7 @@ import sys
 
 import pytest
 
-from conftest import ROOT, run_cli
+from conftest import ROOT, run_cli, run_main
 
 LIMIT_S = 30  # generous on a loaded 2-core machine; each case takes well under a second
 
@@ -301,7 +306,7 @@ def measured(tmp_path_factory):
     d = tmp_path_factory.mktemp("measured")
     exp = d / "small.yaml"
     exp.write_text(SMALL)
-    proc = run_cli("run", exp, "--out", d / "folder", "--quiet", "--no-analysis",
+    proc = run_main("run", exp, "--out", d / "folder", "--quiet", "--no-analysis",
                    timeout=120)
     assert proc.returncode == 0, proc.stderr
     return d / "folder"
@@ -316,7 +321,7 @@ def folder(measured, tmp_path):
 
 def analysis_json(folder, tmp_path):
     out = tmp_path / "analysis.json"
-    proc = run_cli("analyze", folder, "--json-out", out, timeout=120)
+    proc = run_main("analyze", folder, "--json-out", out, timeout=120)
     assert proc.returncode == 0, proc.stderr
     return _json.loads(out.read_text())
 
@@ -344,7 +349,7 @@ def test_journal_line_that_is_not_a_record(folder, case):
     insert_line(folder, 4, text)
     before = (folder / "runs.jsonl").read_bytes()
     for args in (("analyze", folder), ("run", "--resume", folder, "--quiet")):
-        proc = run_cli(*args, timeout=LIMIT_S * 2)
+        proc = run_main(*args, timeout=LIMIT_S * 2)
         one_line_error(proc, f"{folder}/runs.jsonl:4: ", words, "move it out of the journal",
                        "the 10 runs recorded on the other lines are kept")
         # nothing measured is lost or rewritten by a refused command
@@ -356,7 +361,7 @@ def test_two_records_on_one_line_says_where_to_split(folder, tmp_path):
     lines = p.read_text().splitlines(True)
     joined = lines[2].rstrip("\n") + lines[3]
     p.write_text("".join(lines[:2] + [joined] + lines[4:]))
-    proc = run_cli("analyze", folder, timeout=LIMIT_S * 2)
+    proc = run_main("analyze", folder, timeout=LIMIT_S * 2)
     line = one_line_error(proc, f"{p}:3: ", "two records run together")
     col = int(line.split("put a newline at column ")[1].split()[0])
     # planted truth: the column given is where the first record ends
@@ -384,7 +389,7 @@ def test_duplicate_lines_are_set_aside_not_counted(folder, measured, tmp_path):
                for n in an["notes"]), an["notes"]
     # resume sets them aside in a file of their own: nothing deleted
     before = p.read_bytes()
-    proc = run_cli("run", "--resume", folder, "--quiet", "--no-analysis", timeout=120)
+    proc = run_main("run", "--resume", folder, "--quiet", "--no-analysis", timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert "moved to runs.jsonl.duplicates" in proc.stdout + proc.stderr
     side = (folder / "runs.jsonl.duplicates").read_bytes()
@@ -396,11 +401,11 @@ def test_duplicate_lines_are_set_aside_not_counted(folder, measured, tmp_path):
 
 def test_garbage_session_json(folder, tmp_path):
     (folder / "session.json").write_text("{not json")
-    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    proc = run_main("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
     one_line_error(proc, f"{folder}/session.json: damaged", "put back the file",
                    f"benchharness analyze {folder}")
     (folder / "session.json").write_text("[1, 2]")
-    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    proc = run_main("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
     one_line_error(proc, f"{folder}/session.json: damaged")
     # the measured runs stay readable
     an = analysis_json(folder, tmp_path)
@@ -419,21 +424,21 @@ def test_garbage_session_json(folder, tmp_path):
 def test_garbage_plan_csv(folder, text, where, words):
     (folder / "plan.csv").write_text(text)
     before = (folder / "runs.jsonl").read_bytes()
-    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    proc = run_main("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
     one_line_error(proc, f"{folder}/plan.csv{where}", words, "put back the file")
     assert (folder / "runs.jsonl").read_bytes() == before
-    proc = run_cli("analyze", folder, timeout=LIMIT_S * 2)
+    proc = run_main("analyze", folder, timeout=LIMIT_S * 2)
     assert proc.returncode == 0, proc.stderr
 
 
 def test_changed_frozen_experiment(folder):
     frozen = folder / "experiment.yaml"
     frozen.write_text(frozen.read_text().replace("replicates: 5", "replicates: 7"))
-    proc = run_cli("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
+    proc = run_main("run", "--resume", folder, "--quiet", timeout=LIMIT_S * 2)
     one_line_error(proc, f"{frozen}: changed since this experiment started", "put back")
     # a level renamed in the frozen copy: the analysis refuses rather than losing those runs
     frozen.write_text(SMALL.replace("[x, y]", "[x, z]"))
-    proc = run_cli("analyze", folder, timeout=LIMIT_S * 2)
+    proc = run_main("analyze", folder, timeout=LIMIT_S * 2)
     one_line_error(proc, f"{frozen}: run ", "the level 'y' of 'a'", "does not list",
                    "put that level back")
 

@@ -213,7 +213,8 @@ def test_terminal_has_no_colour_when_not_a_tty(folder):
     assert "Analysis of variance" in out and "nap:scale" in out and HOSTILE in out
 
 
-def test_report_command_on_folder_and_csv(folder, tmp_path, cli):
+def test_report_command_on_folder_and_csv(folder, tmp_path, cli, main_cli):
+    # the first in a new process (the console script); the rest in this one
     r = cli("report", folder, "--html", tmp_path / "r.html", "--markdown", tmp_path / "r.md")
     assert r.returncode == 0, r.stderr
     assert (tmp_path / "r.html").exists() and (tmp_path / "figures" / "qq.png").exists()
@@ -221,21 +222,21 @@ def test_report_command_on_folder_and_csv(folder, tmp_path, cli):
         assert (tmp_path / link).exists()
     csv = tmp_path / "timings.csv"
     csv.write_text((folder / "runs.csv").read_text())
-    r = cli("report", csv, "--factors", "nap,scale")
+    r = main_cli("report", csv, "--factors", "nap,scale")
     assert r.returncode == 0, r.stderr
     assert (tmp_path / "timings.report.html").exists()
     # a second CSV in the same directory keeps its own figures: links of both still resolve
     other = tmp_path / "other.csv"
     runs = folder / "runs.csv"
     other.write_text(runs.read_text())
-    r = cli("report", other, "--factors", "nap")
+    r = main_cli("report", other, "--factors", "nap")
     assert r.returncode == 0, r.stderr
     for name in ("timings", "other"):
         text = (tmp_path / f"{name}.report.md").read_text()
         links = re.findall(r"\]\(([^)\s]+\.png)\)", text)
         assert links and all(link.startswith(f"{name}.figures/") for link in links)
         assert all((tmp_path / link).exists() for link in links)
-    r = cli("report", csv)
+    r = main_cli("report", csv)
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1
     assert "--factors" in r.stderr
 
@@ -245,7 +246,7 @@ def test_write_reports_returns_paths(folder):
     assert Path(folder / "report.md").read_text().startswith("# nap-planted")
 
 
-def test_run_command_writes_the_reports_of_real_processes(tmp_path, cli):
+def test_run_command_writes_the_reports_of_real_processes(tmp_path, main_cli):
     """End to end through `benchharness run`: real child processes, analysis, reports."""
     exp = tmp_path / "naps.yaml"
     exp.write_text(
@@ -255,7 +256,7 @@ def test_run_command_writes_the_reports_of_real_processes(tmp_path, cli):
         "factors:\n  nap: ['0.005', '0.03']\n"
         "replicates: 3\nseed: 5\n")
     out = tmp_path / "out"
-    r = cli("run", exp, "--out", out, "--quiet", timeout=240)
+    r = main_cli("run", exp, "--out", out, "--quiet")
     assert r.returncode == 0, r.stderr
     assert "report.html" in r.stdout
     html = (out / "report.html").read_text()

@@ -11,6 +11,7 @@ import pytest
 import pandas as pd
 
 from benchharness.report import build_report
+from benchharness.report.data import collect
 from benchharness.report.html import render_html
 from benchharness.report.markdown import render_markdown
 
@@ -44,7 +45,7 @@ def test_one_run_per_cell_says_nothing_could_be_tested():
     assert "no residual degrees of freedom" in md.lower()
     assert "no difference detected" not in md and "no detectable difference" not in md
     # by default the A:B interaction serves as the error term, so the factors are tested
-    data, figs = build_report(df, factors=["A", "B"])
+    data = collect(df, factors=["A", "B"])
     assert [r["term"] for r in data.analysis["anova"]] == ["A", "B", "Residual"]
     assert any("one run per cell" in n for n in data.analysis["notes"])
 
@@ -115,7 +116,7 @@ def test_custom_metric_where_higher_is_better(tmp_path):
     assert "req/s" in html
 
 
-def test_report_of_a_folder_whose_runs_all_failed(tmp_path, cli):
+def test_report_of_a_folder_whose_runs_all_failed(tmp_path, main_cli):
     """Every run exits non-zero: `run` and `report` still write a report that says so."""
     exp = tmp_path / "broken.yaml"
     exp.write_text(
@@ -127,12 +128,12 @@ def test_report_of_a_folder_whose_runs_all_failed(tmp_path, cli):
     out = tmp_path / "out"
     # --keep-going: the whole plan although every cell fails the same way; exit 4
     # since timed runs failed
-    r = cli("run", exp, "--out", out, "--quiet", "--keep-going", timeout=120)
+    r = main_cli("run", exp, "--out", out, "--quiet", "--keep-going", timeout=120)
     assert r.returncode == 4, r.stderr
     assert "Traceback" not in r.stderr
     assert (out / "report.html").exists() and (out / "report.md").exists()
     (out / "report.html").unlink()
-    r = cli("report", out)
+    r = main_cli("report", out)
     assert r.returncode == 0, r.stderr
     assert "Traceback" not in r.stderr
     assert "nothing to analyse" in r.stdout
@@ -147,7 +148,7 @@ def test_report_of_a_folder_whose_runs_all_failed(tmp_path, cli):
     assert md.count("Nothing to show: no run finished.") == 2
 
 
-def test_report_of_a_gate_results_folder(tmp_path, cli):
+def test_report_of_a_gate_results_folder(tmp_path, main_cli):
     """A gate folder: blocks are pairs of runs, the report uses them and repeats the gate."""
     import statsmodels.formula.api as smf
     from statsmodels.stats.anova import anova_lm
@@ -156,10 +157,10 @@ def test_report_of_a_gate_results_folder(tmp_path, cli):
     from benchharness.results.journal import load_results
 
     out = tmp_path / "gate"
-    r = cli("gate", "--baseline", "sleep 0.02", "--candidate", "sleep 0.04", "--seed", "2",
+    r = main_cli("gate", "--baseline", "sleep 0.02", "--candidate", "sleep 0.04", "--seed", "2",
             "--max-pairs", "8", "--out", out, timeout=180)
     assert r.returncode in (0, 1, 3), r.stderr
-    r = cli("report", out)
+    r = main_cli("report", out)
     assert r.returncode == 0, r.stderr
     md = (out / "report.md").read_text()
     assert "| **block** |" in md or "| block |" in md
@@ -181,9 +182,8 @@ def test_transform_sentence_keeps_the_lambda_symbol():
     # a reason that starts with λ̂ must not become Λ̂ (another symbol) when capitalised
     from benchharness.report.story import transform_sentence
 
-    data, _ = build_report(pd.DataFrame({"a": np.repeat(["x", "y"], 6),
-                                         "wall_s": np.exp(np.linspace(0, 1, 12))}),
-                           factors=["a"])
+    data = collect(pd.DataFrame({"a": np.repeat(["x", "y"], 6),
+                                 "wall_s": np.exp(np.linspace(0, 1, 12))}), factors=["a"])
     # the report says which scale the analysis used and what the Box-Cox profile says
     text = transform_sentence(data)
     assert text.startswith("Analysed on the log scale, the default for a positive, "
@@ -202,7 +202,7 @@ def test_timings_that_follow_the_load_are_a_data_quality_warning():
     df = pd.DataFrame({"a": np.tile(["x", "y"], n // 2), "load_1m": load,
                        "wall_s": np.exp(0.1 * (np.arange(n) % 2) + 0.05 * load
                                         + rng.normal(0, 0.02, n))})
-    data, _ = build_report(df, factors=["a"])
+    data = collect(df, factors=["a"])
     assert data.analysis["diagnostics"]["load"]["ok"] is False
     noisy = [w["text"] for w in warnings(data) if w["kind"] == "Noisy host"]
     assert any("load" in t for t in noisy), warnings(data)
@@ -217,14 +217,14 @@ def test_best_cell_with_timeouts_carries_a_caution():
     df["wall_s"] = np.exp(rng.normal(0, 0.05, 18) - 0.5 * (df.pool == "32"))
     df.loc[[16, 17], "status"] = "timeout"
     df.loc[[16, 17], "wall_s"] = np.nan
-    data, _ = build_report(df, factors=["pool"])
+    data = collect(df, factors=["pool"])
     v = story.verdict(data)
     assert v["best"].startswith("Best: pool=32")
     assert v["recommendation"] == "Recommended: pool=32"
     assert "2 of this cell's runs did not finish" in v["best"]
     df.loc[[16, 17], "status"] = "ok"
     df.loc[[16, 17], "wall_s"] = np.exp(-0.5)
-    assert "did not finish" not in story.verdict(build_report(df, factors=["pool"])[0])["best"]
+    assert "did not finish" not in story.verdict(collect(df, factors=["pool"]))["best"]
 
 
 def test_effect_of_an_empty_level_says_not_estimable():
