@@ -45,12 +45,11 @@ def _start_scheduler(sched_file, env, log, cwd=None):
     raise AssertionError("the scheduler did not start")
 
 
-@pytest.fixture
-def cluster(tmp_path):
+def _cluster(where):
     """A scheduler and two single-thread workers with the bench resource, as processes."""
-    sched_file = tmp_path / "scheduler.json"
+    sched_file = where / "scheduler.json"
     procs = []
-    log = open(tmp_path / "cluster.log", "w")
+    log = open(where / "cluster.log", "w")
     sched, address = _start_scheduler(sched_file, _env(), log)
     procs.append(sched)
     workers = {}
@@ -73,6 +72,19 @@ def cluster(tmp_path):
             pass
         p.wait()
     log.close()
+
+
+@pytest.fixture(scope="module")
+def cluster(tmp_path_factory):
+    """One cluster for the tests that leave it whole (each uses its own results folder and
+    experiment, so a build one test made is not one another needs)."""
+    yield from _cluster(tmp_path_factory.mktemp("cluster"))
+
+
+@pytest.fixture
+def own_cluster(tmp_path):
+    """A cluster of the test's own, for a test that kills one of its workers."""
+    yield from _cluster(tmp_path)
 
 
 def _exp(tmp_path, reps=4, sleep=0.05):
@@ -120,11 +132,11 @@ def test_every_run_recorded_once_with_hosts(cluster, tmp_path):
 
 
 def test_a_block_goes_whole_and_each_result_is_journalled_as_its_run_ends(cluster, tmp_path):
-    # One block of four 0.6 s runs, sent to a worker as one task: its results must reach
+    # One block of four 0.3 s runs, sent to a worker as one task: its results must reach
     # the journal one by one while the block still runs (streamed), not all at its end.
     address, _ = cluster
     out = tmp_path / "res"
-    exp = _exp(tmp_path, reps=1, sleep=0.6)
+    exp = _exp(tmp_path, reps=1, sleep=0.3)
     coord = subprocess.Popen([PY, "-m", "benchharness", "run", str(exp), "--out", str(out),
                               "--scheduler", address, "--same-host-ok", "--quiet",
                               "--no-analysis"], env=_env(), cwd=ROOT, stdout=subprocess.PIPE,
@@ -145,8 +157,8 @@ def test_a_block_goes_whole_and_each_result_is_journalled_as_its_run_ends(cluste
     assert [x["host_position"] for x in recs] == sorted(x["host_position"] for x in recs)
 
 
-def test_lost_worker_and_killed_coordinator(cluster, tmp_path):
-    address, workers = cluster
+def test_lost_worker_and_killed_coordinator(own_cluster, tmp_path):
+    address, workers = own_cluster
     out = tmp_path / "res"
     exp = _exp(tmp_path, reps=6, sleep=0.2)
     coord = subprocess.Popen([PY, "-m", "benchharness", "run", str(exp), "--out", str(out),

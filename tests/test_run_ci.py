@@ -40,7 +40,7 @@ def test_failed_and_timed_out_runs_give_exit_4_unless_accepted(tmp_path, cli):
         factors:
           a: [good, bad, slow]
         replicates: 2
-        timeout: 1s
+        timeout: 500ms
         seed: 4
         """)
     r = cli("run", p, "--out", tmp_path / "r1", "--quiet", "--no-analysis")
@@ -54,7 +54,7 @@ def test_failed_and_timed_out_runs_give_exit_4_unless_accepted(tmp_path, cli):
     assert "2 ok, 2 failed, 2 timed out" in r.stdout
 
 
-def test_all_ok_exits_0(tmp_path, cli):
+def test_all_ok_exits_0(tmp_path, main_cli):
     p = write(tmp_path, """\
         experiment: fine
         command: [PY, -c, "pass", "{a}"]
@@ -63,13 +63,13 @@ def test_all_ok_exits_0(tmp_path, cli):
         replicates: 2
         seed: 4
         """)
-    r = cli("run", p, "--out", tmp_path / "r", "--quiet", "--no-analysis")
+    r = main_cli("run", p, "--out", tmp_path / "r", "--quiet", "--no-analysis")
     assert r.returncode == 0, r.stderr
     assert "timed runs failed" not in r.stderr
 
 
 @pytest.mark.parametrize("warmup", [1, 0])
-def test_a_command_that_cannot_start_stops_early_and_resumes(tmp_path, cli, warmup):
+def test_a_command_that_cannot_start_stops_early_and_resumes(tmp_path, main_cli, warmup):
     # 3 x 2 cells, 5 replicates: 30 timed runs (+6 warm-ups); the script does not exist
     script = tmp_path / "work" / "bench.py"
     p = write(tmp_path, f"""\
@@ -85,7 +85,7 @@ def test_a_command_that_cannot_start_stops_early_and_resumes(tmp_path, cli, warm
         """)
     folder = tmp_path / "res"
     (tmp_path / "elsewhere").mkdir()
-    r = cli("run", p, "--out", folder, "--quiet", cwd=tmp_path)
+    r = main_cli("run", p, "--out", folder, "--quiet", cwd=tmp_path)
     assert r.returncode == 5, (r.stdout, r.stderr)
     assert "stopped early: the first runs of all 6 cells failed the same way" in r.stderr
     assert "bench.py" in r.stderr and "No such file" in r.stderr
@@ -108,7 +108,7 @@ def test_a_command_that_cannot_start_stops_early_and_resumes(tmp_path, cli, warm
     # the cause is fixed: resume runs the rest, keeping what was recorded
     script.parent.mkdir(parents=True, exist_ok=True)
     script.write_text("import sys\nsum(range(1000))\n")
-    r = cli("run", "--resume", folder, "--quiet", "--no-analysis",
+    r = main_cli("run", "--resume", folder, "--quiet", "--no-analysis",
             "--allow-failures", cwd=tmp_path / "elsewhere")
     assert r.returncode == 0, r.stderr
     after = J.read_journal(folder / "runs.jsonl")
@@ -118,7 +118,7 @@ def test_a_command_that_cannot_start_stops_early_and_resumes(tmp_path, cli, warm
     assert json.loads((folder / "session.json").read_text())["state"] == "complete"
 
 
-def test_keep_going_runs_the_whole_plan(tmp_path, cli):
+def test_keep_going_runs_the_whole_plan(tmp_path, main_cli):
     p = write(tmp_path, """\
         experiment: missing-script
         command: [PY, nowhere/bench.py, "{a}"]
@@ -128,14 +128,14 @@ def test_keep_going_runs_the_whole_plan(tmp_path, cli):
         warmup: 1
         seed: 3
         """)
-    r = cli("run", p, "--out", tmp_path / "res", "--quiet", "--no-analysis", "--keep-going")
+    r = main_cli("run", p, "--out", tmp_path / "res", "--quiet", "--no-analysis", "--keep-going")
     assert r.returncode == 4, r.stderr
     assert "stopped early" not in r.stderr
     assert len(rows(tmp_path / "res")) == 8
     assert "0 ok, 6 failed" in r.stdout
 
 
-def test_different_failures_or_one_broken_level_do_not_stop_early(tmp_path, cli):
+def test_different_failures_or_one_broken_level_do_not_stop_early(tmp_path, main_cli):
     # every cell fails, but not the same way (exit 3 and exit 4): not one cause
     p = write(tmp_path, """\
         experiment: two-ways
@@ -145,7 +145,7 @@ def test_different_failures_or_one_broken_level_do_not_stop_early(tmp_path, cli)
         replicates: 3
         seed: 1
         """)
-    r = cli("run", p, "--out", tmp_path / "r1", "--quiet", "--no-analysis")
+    r = main_cli("run", p, "--out", tmp_path / "r1", "--quiet", "--no-analysis")
     assert r.returncode == 4 and "stopped early" not in r.stderr
     assert len(rows(tmp_path / "r1")) == 6
     # one level cannot start, run in listed order so its cells come first: the
@@ -162,14 +162,14 @@ def test_different_failures_or_one_broken_level_do_not_stop_early(tmp_path, cli)
         order: listed
         seed: 1
         """, name="exp2.yaml")
-    r = cli("run", p, "--out", tmp_path / "r2", "--quiet", "--no-analysis")
+    r = main_cli("run", p, "--out", tmp_path / "r2", "--quiet", "--no-analysis")
     assert r.returncode == 4, r.stderr
     assert "stopped early" not in r.stderr
     st = [(x["tool"], x["status"]) for x in rows(tmp_path / "r2")]
     assert sorted(set(st)) == [("broken", "failed"), ("fine", "ok")] and len(st) == 8
 
 
-def test_failing_build_in_every_cell_stops_early(tmp_path, cli):
+def test_failing_build_in_every_cell_stops_early(tmp_path, main_cli):
     p = write(tmp_path, """\
         experiment: no-compiler
         build: [sh, -c, "echo no C compiler found >&2; exit 1", "{opt}"]
@@ -181,7 +181,7 @@ def test_failing_build_in_every_cell_stops_early(tmp_path, cli):
         warmup: 1
         seed: 5
         """)
-    r = cli("run", p, "--out", tmp_path / "res", "--quiet", "--no-analysis")
+    r = main_cli("run", p, "--out", tmp_path / "res", "--quiet", "--no-analysis")
     assert r.returncode == 5, r.stderr
     assert "build failed" in r.stderr and "no C compiler found" in r.stderr
     assert len(J.read_journal(tmp_path / "res" / "runs.jsonl")) == 4
