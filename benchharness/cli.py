@@ -204,7 +204,7 @@ def main(argv: list[str] | None = None) -> int:
     if extras:
         return _unknown(args, extras, parser)
     if not getattr(args, "func", None):
-        parser.print_help()
+        parser.print_help(sys.stderr)   # a usage error (exit 2): standard error, like every one
         return 2
     try:
         if getattr(args, "json", False) or getattr(args, "json_out", None) == "-":

@@ -85,6 +85,23 @@ def test_one_spelling_per_concept_and_help_for_every_option(name, parser):
                 f"{sorted(POSITIONAL_METAVARS)}")
 
 
+def test_help_texts_write_the_multiplication_sign():
+    """Ratios and products are written with ×, never a letter x (docs/cli.md), in --help too:
+    `steady` was 'executions x iterations advice'."""
+    import re
+
+    texts = []
+    for name, parser in PARSERS:
+        texts += [parser.description or "", parser.epilog or ""]
+        texts += [a.help for a in parser._actions if isinstance(a.help, str)]
+        sub = next((a for a in parser._actions if isinstance(a, argparse._SubParsersAction)),
+                   None)
+        texts += [c.help or "" for c in (sub._choices_actions if sub else [])]
+    # (a value typed as `1.05x` is an accepted input spelling; a product is "runs × iterations")
+    bad = [t for t in texts if re.search(r"\sx\s", t)]
+    assert not bad, bad
+
+
 @pytest.mark.parametrize("name,parser", PARSERS, ids=[n for n, _ in PARSERS])
 def test_every_help_ends_with_real_examples(name, parser):
     epilog = parser.epilog or ""
@@ -295,6 +312,13 @@ def test_misspelt_command_and_option_get_the_nearest(capsys):
     with pytest.raises(SystemExit):
         main(["history", "shwo"])
     assert "did you mean show?" in capsys.readouterr().err
+
+
+def test_no_command_or_action_is_a_usage_error_on_stderr(capsys):
+    for argv in ([], ["history"]):
+        assert main(argv) == 2
+        out, err = capsys.readouterr()
+        assert out == "" and err.startswith("usage: benchharness") and "examples:" in err
 
 
 def test_bad_value_names_the_option_and_the_command_help(capsys):

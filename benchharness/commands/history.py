@@ -81,7 +81,7 @@ def add_parser(sub) -> None:
                         "(two or more commits show it); a change only the newest commit "
                         "shows is named as not yet confirmed and does not fail")
     s.set_defaults(func=main_show)
-    p.set_defaults(func=lambda args: (p.print_help(), 2)[1])
+    p.set_defaults(func=lambda args: (p.print_help(sys.stderr), 2)[1])   # no action: usage
 
 
 def write_text(path: str, text: str, option: str) -> None:

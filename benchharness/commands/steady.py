@@ -8,16 +8,16 @@ import json
 def add_parser(sub) -> None:
     from benchharness.commands import options as O
 
-    p = sub.add_parser("steady", help="warm-up classes and executions x iterations advice",
+    p = sub.add_parser("steady", help="how runs warm up, and runs × iterations advice",
                        description="For an experiment with a `samples:` section: per cell, how "
                                    "the runs warmed up, the steady-state time, the variance "
-                                   "between runs and between iterations, and how many runs x "
+                                   "between runs and between iterations, and how many runs × "
                                    "iterations reach a target precision at least cost.",
                        epilog=O.examples(
                            "benchharness run experiments/warm-cache.yaml --out results/warm  # "
                            "an experiment with a samples: section",
                            "benchharness steady results/warm  # warm-up and steady state per "
-                           "cell, and how many runs x iterations to use",
+                           "cell, and how many runs × iterations to use",
                            "benchharness steady results/warm --target 0.5% --json  # aim "
                            "tighter; the advice as one JSON document"))
     p.add_argument("folder", metavar="FOLDER", help="results folder")
