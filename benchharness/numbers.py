@@ -16,6 +16,7 @@ ratio, an interval or a time reads the same wherever it appears (docs/cli.md,
 * a quantity always with its unit; a time in seconds is shown in s, ms, µs or ns and
   a memory size in bytes, KiB, MiB or GiB, chosen once per table column from the
   column's values (`pick_scale`), so a column never mixes µs and ms;
+* a length of time: ``153 ms``, ``13.8 s``, ``2 min 5 s``, ``1 h 5 min`` (`fmt_duration`);
 * a count with its noun: ``1 run``, ``3 runs`` (`plural`).
 
 This module imports nothing beyond the standard library and belongs to no stage: the
@@ -245,6 +246,24 @@ def fmt_quantity(x, unit: str | None, digits: int = 3) -> str:
 def fmt_seconds(x, digits: int = 3) -> str:
     """A duration in seconds: ``12.5 ms``, ``1.20 s``."""
     return fmt_quantity(x, "s", digits)
+
+
+def fmt_duration(x) -> str:
+    """A length of time, as a person reads it: under a minute like every quantity
+    (``153 ms``, ``13.8 s``), then whole minutes and seconds (``2 min 5 s``, ``30 min``),
+    then hours and minutes (``1 h 5 min``)."""
+    v = _finite(x)
+    if v is None:
+        return MISSING
+    if abs(v) < 59.95:
+        return fmt_seconds(v)
+    total = int(round(v))
+    if total < 3600:
+        m, sec = divmod(total, 60)
+        return f"{m} min {sec} s" if sec else f"{m} min"
+    minutes = int(round(v / 60))
+    h, m = divmod(minutes, 60)
+    return f"{h:,} h {m} min" if m else f"{h:,} h"
 
 
 # --------------------------------------------------------------------------- words

@@ -277,3 +277,25 @@ def test_host_prints_the_three_load_averages_alike(capsys, monkeypatch):
     assert re.search(r"^load average\s+1\.50, 0\.95, 1\.22$", out, re.M), out
     # a warning is one line on stderr, as `run` writes it
     assert err.splitlines() == ["warning: planted: the kettle is boiling; fix: wait for it"]
+
+
+def test_lengths_of_time_read_like_every_quantity():
+    from benchharness.numbers import fmt_duration
+
+    assert [fmt_duration(x) for x in (0.153, 13.8, 125, 1800, 3900, 7200)] == [
+        "0.153 s", "13.8 s", "2 min 5 s", "30 min", "1 h 5 min", "2 h"]
+    assert fmt_duration(59.97) == "1 min" and fmt_duration(None) == "–"
+
+
+def test_plan_time_estimate_and_budget_use_the_formatter(root, capsys, monkeypatch):
+    """`plan --pilot --budget` wrote '13.8s', '0ms overhead', '30m00s fits': a quantity is
+    a number, a space and its unit (docs/cli.md)."""
+    from benchharness.cli import main
+
+    monkeypatch.chdir(root)
+    assert main(["plan", "experiments/archive-codecs.yaml", "--pilot",
+                 "results/example-archive-codecs", "--budget", "30m"]) == 0
+    out = capsys.readouterr().out
+    lines = [ln for ln in out.splitlines() if ln.startswith(("expected", "budget"))]
+    assert len(lines) == 2 and lines[1].startswith("budget      30 min fits "), lines
+    assert not any(re.search(r"\d(ms|s|m\d+s)\b", ln) for ln in lines), lines

@@ -158,12 +158,7 @@ def replicates_in_budget(budget_s: float, per_replicate_s: float, warmup_s: floa
 
 
 def fmt_s(s: float) -> str:
-    s = float(s)
-    if s < 1:
-        return f"{s * 1000:.0f}ms"
-    if s < 60:
-        return f"{s:.1f}s"
-    m = int(round(s)) // 60
-    if m < 60:
-        return f"{m}m{int(round(s)) % 60:02d}s"
-    return f"{m // 60}h{m % 60:02d}m"
+    """A time estimate or budget as the one formatter writes it (``13.8 s``, ``2 min 5 s``)."""
+    from benchharness.numbers import fmt_duration
+
+    return fmt_duration(s)
