@@ -99,4 +99,4 @@ def test_cells_exactly_equal_without_error_are_tied_not_ranked(tmp_path):
     out = " ".join(res.stdout.split())
     assert "exactly equal to it: A=p, B=" in out
     rec = [ln for ln in res.stdout.splitlines() if "Recommended" in ln]
-    assert rec and "not distinguishable" in " ".join(rec), res.stdout
+    assert rec and "cannot be told apart from it" in " ".join(rec), res.stdout

@@ -373,14 +373,17 @@ def _with_levels(rows: list[dict], d: dict) -> list[dict]:
     levels = {f["name"]: list(f.get("levels") or []) for f in d.get("factors") or []
               if isinstance(f, dict)}
     res_df = (d.get("counts") or {}).get("df_resid")
-    return [dict(r, analysed_levels=levels.get(r.get("term")), df_resid=res_df)
+    still = bool((d.get("model") or {}).get("no_variation"))
+    return [dict(r, analysed_levels=levels.get(r.get("term")), df_resid=res_df,
+                 no_variation=still)
             if r.get("p") is None and r.get("term") in levels else r for r in rows]
 
 
 def untested_why(r: dict) -> tuple[str, str]:
     """(long, short) reason a main effect has no test: only one of its levels has runs (a
     filtered table, or the other levels' runs all failed), or no run is left over to
-    estimate the noise, or what the ANOVA's row notes."""
+    estimate the noise, or the runs do not vary within cells, or what the ANOVA's row
+    notes."""
     lv = r.get("analysed_levels")
     if lv is not None and len(lv) == 1:
         f = r.get("term")
@@ -390,6 +393,9 @@ def untested_why(r: dict) -> tuple[str, str]:
         return ("no replicate is left to estimate the noise (no residual degrees of "
                 "freedom): add replicates or fit fewer interactions", "no replicate left to "
                 "estimate the noise")
+    if r.get("no_variation"):
+        return ("every run in a cell gave the same value, so there is no run-to-run "
+                "variation to judge it against", "no run-to-run variation")
     note = str(r.get("note") or "no error estimate")
     return note, note
 
