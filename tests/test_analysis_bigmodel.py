@@ -7,9 +7,6 @@ it fitted, statsmodels ``ols`` + ``anova_lm`` (Type II) on the same rows and ter
 
 from __future__ import annotations
 
-import subprocess
-import sys
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -18,8 +15,7 @@ import pytest
 from benchharness.analysis import analyze
 from benchharness.analysis import model as model_mod
 from analysis_refs import assert_same_anova, sm_anova
-
-ROOT = Path(__file__).resolve().parents[1]
+from conftest import run_main
 NAMES = ["threads", "cache", "batch", "compaction", "bloom"]
 
 
@@ -101,9 +97,7 @@ def test_too_many_levels_for_any_model_is_one_line_exit_2(tmp_path):
                       "wall_s": np.random.default_rng(1).uniform(1, 2, 2 * n)})
     csv = tmp_path / "runs.csv"
     d.to_csv(csv, index=False)
-    res = subprocess.run([sys.executable, "-m", "benchharness", "analyze", str(csv),
-                          "--factors", "input"], cwd=ROOT, capture_output=True, text=True,
-                         timeout=120)
+    res = run_main("analyze", csv, "--factors", "input")
     assert res.returncode == 2
     err = res.stderr.strip().splitlines()
     assert len(err) == 1 and "Traceback" not in res.stderr

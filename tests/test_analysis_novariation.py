@@ -3,9 +3,6 @@
 from __future__ import annotations
 
 import json
-import subprocess
-import sys
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -13,8 +10,7 @@ import pytest
 
 from benchharness.analysis import analyze
 from analysis_refs import ours_table, sm_anova
-
-ROOT = Path(__file__).resolve().parents[1]
+from conftest import run_main
 
 
 def layout(reps=3):
@@ -40,9 +36,7 @@ def test_constant_response_with_round_off_is_one_finding_and_no_test(tmp_path):
     csv = tmp_path / "runs.csv"
     d.to_csv(csv, index=False)
     out = tmp_path / "a.json"
-    res = subprocess.run([sys.executable, "-m", "benchharness", "analyze", str(csv),
-                          "--factors", "A,B", "--json-out", str(out)], cwd=ROOT,
-                         capture_output=True, text=True, timeout=120)
+    res = run_main("analyze", csv, "--factors", "A,B", "--json-out", out)
     assert res.returncode == 0, res.stderr
     assert "Every run gave the same wall_s" in res.stdout
     assert "checks could not be made" in res.stdout
@@ -92,9 +86,7 @@ def test_cells_exactly_equal_without_error_are_tied_not_ranked(tmp_path):
     d["wall_s"] = np.where(d["A"] == "p", 1.0, 2.0)
     csv = tmp_path / "runs.csv"
     d.to_csv(csv, index=False)
-    res = subprocess.run([sys.executable, "-m", "benchharness", "analyze", str(csv),
-                          "--factors", "A,B"], cwd=ROOT, capture_output=True, text=True,
-                         timeout=120)
+    res = run_main("analyze", csv, "--factors", "A,B")
     assert res.returncode == 0, res.stderr
     out = " ".join(res.stdout.split())
     assert "exactly equal to it: A=p, B=" in out

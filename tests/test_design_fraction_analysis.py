@@ -250,7 +250,7 @@ def test_blocked_run_end_to_end(tmp_path):
     assert by["batch"]["ratio"] == pytest.approx(1.25, rel=0.05)
 
 
-def test_analyze_command_on_a_fraction_uses_unaliased_terms_and_shows_chains(tmp_path, cli):
+def test_analyze_command_on_a_fraction_uses_unaliased_terms_and_shows_chains(tmp_path, main_cli):
     # `benchharness analyze RESULTS` on a 2^(4-1) fraction: by default the same model as
     # after `run` (every alias chain, named by its chain) and the alias-chain estimates.
     from benchharness.execute.simulated import SimulatedExecutor, SimulatedModel
@@ -263,7 +263,7 @@ def test_analyze_command_on_a_fraction_uses_unaliased_terms_and_shows_chains(tmp
     exp = Experiment.from_text(text)
     model = SimulatedModel(effects={"threads": {"16": 0.8}}, cv=0.02)
     out = run_experiment(exp, out=tmp_path / "r", executor=SimulatedExecutor(model, seed=2))
-    r = cli("analyze", out.folder)
+    r = main_cli("analyze", out.folder)
     assert r.returncode == 0, r.stderr
     assert "inestimable: the observed cells" not in r.stdout
     assert "A (+ BCD)" in r.stdout and "AB (+ CD)" in r.stdout

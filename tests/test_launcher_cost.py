@@ -59,7 +59,7 @@ def test_at_floor_rule():
     assert len(session["memory_floor"]["resumed"]) == 1
 
 
-def test_run_marks_runs_at_the_floor_and_the_report_says_so(tmp_path, cli):
+def test_run_marks_runs_at_the_floor_and_the_report_says_so(tmp_path, main_cli):
     # Planted: mib=0 exits at once from a small shell (at the floor); mib=64
     # fills 64 MiB (well above it).
     exp = tmp_path / "floor.yaml"
@@ -74,7 +74,8 @@ def test_run_marks_runs_at_the_floor_and_the_report_says_so(tmp_path, cli):
         host_check: off
         """))
     out = tmp_path / "res"
-    r = cli("run", str(exp), "--out", str(out))
+    # no analysis here: the report commands below make the one this test reads
+    r = main_cli("run", str(exp), "--out", str(out), "--no-analysis")
     assert r.returncode == 0, r.stderr
     session = json.loads((out / "session.json").read_text())
     floor = session["memory_floor"]["kib"]
@@ -88,13 +89,13 @@ def test_run_marks_runs_at_the_floor_and_the_report_says_so(tmp_path, cli):
         if row["mib"] == "64":
             assert int(row["max_rss_kib"]) >= 64 * 1024
     # the report of peak memory says how many runs sit at the floor
-    rep = cli("report", str(out), "--response", "max_rss_kib", "--markdown", "-")
+    rep = main_cli("report", str(out), "--response", "max_rss_kib", "--markdown", "-")
     assert rep.returncode == 0, rep.stderr
     text = " ".join(rep.stdout.replace("\\_", "_").split())
     assert "3 of the 6 ok runs recorded a max_rss_kib within 10% of the memory floor" in text
     assert f"({floor} KiB" in text
     # ... and a report of time does not
-    rep = cli("report", str(out), "--markdown", "-")
+    rep = main_cli("report", str(out), "--markdown", "-")
     assert rep.returncode == 0 and "memory floor" not in rep.stdout
 
 

@@ -30,14 +30,14 @@ def _table(path):
         w.writerows(rows)
 
 
-def test_a_level_that_never_finished_is_left_out_with_a_note(tmp_path, cli):
+def test_a_level_that_never_finished_is_left_out_with_a_note(tmp_path, main_cli):
     p = tmp_path / "f.csv"
     _table(p)
     an = analyze(str(p), factors=["mode", "size"])
     assert an.fraction is None                       # not taken for a fractional design
     assert not any(e.get("level") == "bad" for e in an.effects if isinstance(e, dict))
     assert any("mode=bad" in n and "none of its 6 runs" in n for n in an.notes)
-    r = cli("analyze", p, "--factors", "mode,size")
+    r = main_cli("analyze", p, "--factors", "mode,size")
     assert r.returncode == 0, r.stderr
     out = r.stdout
     assert "fraction" not in out and "alias" not in out

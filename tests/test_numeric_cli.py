@@ -65,16 +65,16 @@ def test_declared_numeric_levels_must_be_numbers():
     assert numeric_factors(Experiment.from_text(text, "s.yaml"))["n"]["parallel"]
 
 
-def test_plan_says_which_factors_get_a_trend(cli, tmp_path):
+def test_plan_says_which_factors_get_a_trend(main_cli, tmp_path):
     p = tmp_path / "s.yaml"
     p.write_text(BASE + "numeric:\n  pool: parallel\n  level: no\n")
-    out = cli("plan", p)
+    out = main_cli("plan", p)
     assert out.returncode == 0, out.stderr
     line = [x for x in out.stdout.splitlines() if x.startswith("numeric")][0]
     assert "pool (parallel: speed-up, efficiency, serial fraction)" in line
     assert "n (trend over log n)" in line and "analysed as labels only: level" in line
     p.write_text(BASE + "numeric:\n  pol: parallel\n")
-    bad = cli("plan", p)
+    bad = main_cli("plan", p)
     assert bad.returncode == 2 and bad.stdout == ""
     assert bad.stderr.strip().count("\n") == 0 and "did you mean 'pool'" in bad.stderr
 
@@ -105,13 +105,13 @@ def test_analyze_of_a_csv_says_the_planted_exponent(tmp_path, capsys):
 
 
 @pytest.mark.slow
-def test_the_scaling_demo_runs_end_to_end_and_recovers_its_formula(cli, tmp_path):
+def test_the_scaling_demo_runs_end_to_end_and_recovers_its_formula(main_cli, tmp_path):
     out = tmp_path / "demo"
-    r = cli("run", "experiments/thread-scaling.yaml", "--out", out)
+    r = main_cli("run", "experiments/thread-scaling.yaml", "--out", out)
     assert r.returncode == 0, r.stderr
     # the file's response: work_s is what run analysed and what analyze reads by default
     assert json.loads((out / "analysis.json").read_text())["response"] == "work_s"
-    a = cli("analyze", out, "--json")
+    a = main_cli("analyze", out, "--json")
     assert a.returncode == 0, a.stderr
     d = json.loads(a.stdout)
     assert d["response"] == "work_s"
@@ -121,7 +121,7 @@ def test_the_scaling_demo_runs_end_to_end_and_recovers_its_formula(cli, tmp_path
     assert rec["slope"]["estimate"] == pytest.approx(1.25, abs=0.12)
     th = next(t for t in d["trends"] if t["factor"] == "threads")
     assert 0.07 < th["scaling"]["serial_fraction"]["estimate"] < 0.16
-    rep = cli("report", out)
+    rep = main_cli("report", out)
     assert rep.returncode == 0, rep.stderr
     assert (out / "figures" / "trend-threads.png").exists()
     assert "## Trend over records" in (out / "report.md").read_text()

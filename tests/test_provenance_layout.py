@@ -118,11 +118,11 @@ def test_resuming_a_layout_one_folder_flags_a_changed_script(tmp_path):
     assert any("changed" in n and "app.py" in n for n in q.notes)
 
 
-def test_a_run_writes_layout_two(tmp_path, cli):
+def test_a_run_writes_layout_two(tmp_path, main_cli):
     exp = tmp_path / "e.yaml"
     exp.write_text("experiment: lay\ncommand: [/bin/true, '{a}', '{b}']\n"
                    "factors: {a: [1, 2, 3], b: [x, y]}\nhost_check: off\nseed: 1\n")
-    r = cli("run", exp, "--out", tmp_path / "res")
+    r = main_cli("run", exp, "--out", tmp_path / "res", "--no-analysis")
     assert r.returncode == 0, r.stderr
     prov = json.loads((tmp_path / "res" / "provenance.json").read_text())
     assert prov["layout"] == 2 and prov["cell_count"] == 6 and len(prov["programs"]) == 1

@@ -215,7 +215,7 @@ def test_no_steady_state_is_flagged(tmp_path):
     assert any("never reached a steady state" in n for n in out.notes)
 
 
-def test_steady_command_reports_advice(tmp_path, cli):
+def test_steady_command_reports_advice(tmp_path, main_cli):
     # Planted two-level data: each run has its own offset (between-run spread)
     # plus iteration noise, after a 10-iteration warm-up.
     exp = _write(tmp_path, """\
@@ -228,7 +228,7 @@ def test_steady_command_reports_advice(tmp_path, cli):
     out = run_experiment(exp, out=tmp_path / "res", executor=PopenExecutor())
     rows = _rows(out.folder)
     assert all(r["steady_state"] == "steady after speeding up" for r in rows)
-    r = cli("steady", out.folder, "--json")
+    r = main_cli("steady", out.folder, "--json")
     assert r.returncode == 0, r.stderr
     data = json.loads(r.stdout)
     assert data["target_rel_halfwidth"] == 0.01
@@ -237,9 +237,9 @@ def test_steady_command_reports_advice(tmp_path, cli):
         assert cell["cell_shape"] == "steady after speeding up"
         assert cell["components"]["iterations"] >= 85
         assert cell["advice"]["executions"] >= 2
-    text = cli("steady", out.folder, "--target", "5%")
+    text = main_cli("steady", out.folder, "--target", "5%")
     assert text.returncode == 0 and "advice:" in text.stdout and "±5.0%" in text.stdout
-    bad = cli("steady", out.folder, "--target", "lots")
+    bad = main_cli("steady", out.folder, "--target", "lots")
     assert bad.returncode == 2 and "--target" in bad.stderr
 
 
@@ -271,14 +271,14 @@ def test_resumed_folder_keeps_first_provenance_and_flags_changed_files(tmp_path)
     assert any("changed" in n and "app.py" in n for n in q2.notes)
 
 
-def test_plan_checks_quality_sections(tmp_path, cli):
+def test_plan_checks_quality_sections(tmp_path, main_cli):
     p = tmp_path / "exp.yaml"
     p.write_text("experiment: t\ncommand: [\"true\"]\nfactors: {a: [1]}\n"
                  "samples: {format: csv}\n")
-    r = cli("plan", p)
+    r = main_cli("plan", p)
     assert r.returncode == 2
     assert f"{p}:4:19: samples.format is 'csv'" in r.stderr and "Traceback" not in r.stderr
-    r = cli("plan", ROOT / "experiments" / "warm-cache.yaml")
+    r = main_cli("plan", ROOT / "experiments" / "warm-cache.yaml")
     assert r.returncode == 0, r.stderr
 
 

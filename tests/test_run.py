@@ -295,7 +295,7 @@ def test_ctrl_c_stops_cleanly_and_says_how_to_resume(tmp_path):
     assert json.loads((folder / "session.json").read_text())["state"] == "interrupted"
 
 
-def test_run_with_analysis_when_a_cell_always_fails(tmp_path, cli):
+def test_run_with_analysis_when_a_cell_always_fails(tmp_path, main_cli):
     # One cell fails every run, the other has two ok runs: one residual degree of
     # freedom. The run analyses without a traceback (it used to crash in the outlier
     # check) and exits 4, since timed runs failed (0 with --allow-failures).
@@ -307,7 +307,7 @@ def test_run_with_analysis_when_a_cell_always_fails(tmp_path, cli):
         replicates: 2
         seed: 1
         """)
-    r = cli("run", p, "--out", tmp_path / "res")
+    r = main_cli("run", p, "--out", tmp_path / "res")
     assert r.returncode == 4, r.stderr
     assert "Traceback" not in r.stderr
     assert (tmp_path / "res" / "analysis.json").exists()

@@ -121,25 +121,25 @@ def test_a_rule_that_removes_nothing_is_a_located_warning():
                for w in exp.warnings)
 
 
-def test_plan_says_what_was_removed_and_why(cli, tmp_path):
+def test_plan_says_what_was_removed_and_why(main_cli, tmp_path):
     f = tmp_path / "e.yaml"
     f.write_text(BASE + SPACE + "replicates: 2\nseed: 1\n")
-    r = cli("plan", str(f), "--show", "0")
+    r = main_cli("plan", str(f), "--show", "0")
     assert r.returncode == 0, r.stderr
     assert "cells       13" in r.stdout and "timed runs  26" in r.stdout
     assert "13 of 18 combinations run" in r.stdout
     assert "level applies only where codec is not none" in r.stdout
     assert "excluded codec=lzma, level=9, rows=large (line 10): too slow: 1 combination " \
            "removed" in r.stdout
-    r = cli("plan", str(f), "--json")
+    r = main_cli("plan", str(f), "--json")
     assert json.loads(r.stdout)["space"]["cells"] == 13
     f.write_text(BASE + "exclude:\n  - {codec: [none, zlib, lzma]}\n")
-    r = cli("plan", str(f))
+    r = main_cli("plan", str(f))
     assert r.returncode == 2 and "Traceback" not in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1 and ":8:5:" in r.stderr
 
 
-def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path, cli):
+def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path, main_cli):
     """End to end on the simulated system (no processes): the excluded setting would be the
     fastest where it ran, yet choose never picks it; analyze reads level within codec."""
     from benchharness.analysis import analyze
@@ -170,10 +170,10 @@ def test_run_analyze_and_choose_on_a_space_with_a_planted_truth(tmp_path, cli):
                                "missing": [{"rows": "large"}]}]
     assert any("lzma, level=9 is not a candidate" in r for r in ch.reasons)
     # what a user reads, and the exit codes
-    r = cli("analyze", str(tmp_path / "r"), "--plain")
+    r = main_cli("analyze", str(tmp_path / "r"), "--plain")
     assert r.returncode == 0, r.stderr
     assert "level matters within codec" in r.stdout and "level within codec" in r.stdout
-    r = cli("choose", str(tmp_path / "r"))
+    r = main_cli("choose", str(tmp_path / "r"))
     assert r.returncode == 0, r.stderr
     assert "Recommended default: codec=zlib, level=9" in r.stdout
     assert "codec=lzma, level=9 is not a candidate" in r.stdout

@@ -76,7 +76,7 @@ def test_spikes_after_an_ordinary_first_iteration_are_still_spikes():
     assert res.steady_s == pytest.approx(y.mean(), rel=1e-12)   # spikes are a real cost
 
 
-def test_steady_command_on_a_three_iteration_plateau(tmp_path, cli):
+def test_steady_command_on_a_three_iteration_plateau(tmp_path, cli, main_cli):
     """Through `run` and `benchharness steady`: each run prints 30, 31, 32 ms then a
     10.2 ms steady state; the folder's runs say warm-up 3, no spikes and 10.2 ms, and `steady`
     says the cell sped up and settled at 10.2 ms an iteration (within 1 %)."""
@@ -96,7 +96,7 @@ def test_steady_command_on_a_three_iteration_plateau(tmp_path, cli):
         samples: {{format: lines}}
         """))
     folder = tmp_path / "res"
-    ran = cli("run", p, "--out", folder)
+    ran = main_cli("run", p, "--out", folder)   # `steady` below: in a new process
     assert ran.returncode == 0, ran.stderr
     with open(folder / "runs.csv") as fh:
         rows = list(csv.DictReader(fh))

@@ -56,13 +56,13 @@ TRUE_CODED = (0.25, -0.3 * 3 / 3)     # u = 0.25; workers 4.1 is coded (4.1 - 5)
 def folder(tmp_path_factory):
     import sys
 
-    from conftest import run_cli
+    from conftest import run_main
 
     d = tmp_path_factory.mktemp("surface")
     (d / "work.py").write_text(WORKLOAD)
     exp = d / "spool.yaml"
     exp.write_text(EXP.format(python=sys.executable, script=d / "work.py", state=d / "n"))
-    r = run_cli("run", str(exp), "--out", str(d / "res"), "--no-analysis")
+    r = run_main("run", str(exp), "--out", str(d / "res"), "--no-analysis")
     assert r.returncode == 0, r.stderr
     return d / "res"
 
@@ -74,7 +74,7 @@ def analysis(folder):
     return analyze(folder, response="cost_s")
 
 
-def test_analyze_finds_the_planted_minimum_and_says_so(folder, analysis, cli):
+def test_analyze_finds_the_planted_minimum_and_says_so(folder, analysis, main_cli):
     sf = json.loads(analysis.to_json())["surface"]
     st = sf["stationary_point"]
     assert st["kind"] == "minimum" and st["inside_region"] and st["kind_settled"]
@@ -83,7 +83,7 @@ def test_analyze_finds_the_planted_minimum_and_says_so(folder, analysis, cli):
     assert sf["lack_of_fit"]["verdict"] == "fits"
     assert sf["proposal"]["supported"] and sf["proposal"]["actual"]["workers"] == 4
     assert abs(math.log2(sf["proposal"]["actual"]["buffer_kib"] / 90.5)) < 0.5
-    r = cli("analyze", str(folder), "--response", "cost_s")
+    r = main_cli("analyze", str(folder), "--response", "cost_s")
     head = r.stdout.splitlines()
     assert head[0].startswith("Proposed setting: buffer_kib=")
     assert "workers=4 (the fitted surface's minimum; whole numbers rounded)" in head[0]
@@ -92,8 +92,8 @@ def test_analyze_finds_the_planted_minimum_and_says_so(folder, analysis, cli):
     assert "no ok runs" not in r.stdout      # untested combinations are by plan
 
 
-def test_choose_proposes_between_tested_levels(folder, cli):
-    r = cli("choose", str(folder))
+def test_choose_proposes_between_tested_levels(folder, main_cli):
+    r = main_cli("choose", str(folder))
     assert r.returncode == 0, r.stderr
     lines = r.stdout.splitlines()
     assert lines[0].startswith("Proposed default (between the tested levels): buffer_kib=")

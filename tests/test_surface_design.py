@@ -142,10 +142,10 @@ def test_bad_surface_sections_are_located(edit, where, msg):
         parse_experiment(EXP.replace(edit, where), "pool.yaml")
 
 
-def test_plan_says_coded_and_actual_values_and_rounding(cli, tmp_path):
+def test_plan_says_coded_and_actual_values_and_rounding(main_cli, tmp_path):
     f = tmp_path / "pool.yaml"
     f.write_text(EXP)
-    r = cli("plan", str(f))
+    r = main_cli("plan", str(f))
     assert r.returncode == 0, r.stderr
     out = r.stdout
     assert "response surface, central composite (rotatable, axial points at ±1.414)" in out
@@ -157,6 +157,6 @@ def test_plan_says_coded_and_actual_values_and_rounding(cli, tmp_path):
     assert "timed runs  26" in out
     bad = tmp_path / "bad.yaml"
     bad.write_text(EXP.replace("  workers: [2, 8]\n", "  workers: [2, 8]\n  codec: [a, b]\n"))
-    r = cli("plan", str(bad))
+    r = main_cli("plan", str(bad))
     assert r.returncode == 2 and "Traceback" not in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1 and "must be numeric" in r.stderr
