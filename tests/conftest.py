@@ -69,7 +69,8 @@ def run_main(*args, cwd=None, env=None, timeout=None, input=None):
     """Run ``benchharness ARGS`` in this process (``benchharness.cli.main``), as
     ``run_cli`` would in a new one: the same working directory (the checkout unless
     ``cwd``), environment, ``sys.argv``, standard input and captured output, and the exit
-    code argparse or the command gives. ``timeout`` is accepted for a drop-in swap and not enforced."""
+    code argparse or the command gives. ``timeout`` is accepted for a drop-in swap and not
+    enforced."""
     from benchharness import cli, values
 
     argv = [str(a) for a in args]

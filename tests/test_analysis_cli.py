@@ -102,7 +102,8 @@ def test_cli_analyze_csv_and_json(cli, tmp_path):
 ])
 def test_cli_bad_input_one_line_exit_2(main_cli, tmp_path, args, needle):
     p = _csv(tmp_path)
-    r = main_cli("analyze", p, *(["--response", "life_h"] if "--response" not in args else []), *args)
+    r = main_cli("analyze", p, *(["--response", "life_h"] if "--response" not in args else []),
+                 *args)
     assert r.returncode == 2
     assert len(r.stderr.strip().splitlines()) == 1, r.stderr
     assert needle in r.stderr and "Traceback" not in r.stderr

@@ -139,7 +139,8 @@ factors:
 warmup: 1
 gate: {factor: build, baseline: old, tolerance: 10%, max_pairs: 30}
 """)
-    r = main_cli("gate", exp, "--seed", "1", "--out", tmp_path / "res", "--json-out", tmp_path / "g.json")
+    r = main_cli("gate", exp, "--seed", "1", "--out", tmp_path / "res",
+                 "--json-out", tmp_path / "g.json")
     assert r.returncode == 5, r.stdout + r.stderr
     assert "the baseline failed all 3 of its runs" in r.stdout
     data = json.loads((tmp_path / "g.json").read_text())

@@ -40,7 +40,8 @@ def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, main_cli)
 
     for i, f in enumerate(folders[:-1]):       # the library call the CLI makes
         assert add_results(db, f, commit=f"c{i:02d}", branch="main", cwd=tmp_path) == 2
-    r = main_cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main", "--history-db", db)
+    r = main_cli("history", "add", folders[-1], "--commit", "c15", "--branch", "main",
+                 "--history-db", db)
     assert r.returncode == 0, r.stderr
     assert "2 cell rows added" in r.stdout
     r = main_cli("history", "add", *folders[:3], "--commit", "c00", "--history-db", db)
