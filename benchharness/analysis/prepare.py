@@ -174,12 +174,9 @@ def _timed_runs(df):
     ``status_is(label)`` is a boolean mask over the rows kept; a table without a
     ``status`` column counts every row as ok.
     """
-    import pandas as pd
-
     source_rows = np.arange(len(df))
     if "status" in df.columns:
-        st_codes, st_labels = pd.factorize(df["status"].astype(object), sort=False)
-        st_labels = [str(x).strip() for x in st_labels]
+        st_codes, st_labels = _status_codes(df["status"])
         if "warmup" in st_labels:   # warm-up rows are not part of the experiment
             keep = st_codes != st_labels.index("warmup")
             df = df.loc[keep]
@@ -196,6 +193,22 @@ def _timed_runs(df):
     if len(df) == 0:
         raise DataError("the data have no runs to analyse")
     return df, source_rows, status_is
+
+
+def _status_codes(status):
+    """(code of each row, label of each code) of the status column, labels stripped.
+
+    A categorical column (as `load_table` reads a CSV's) is used as coded when its
+    stripped labels are distinct, which saves hashing a million strings again; any
+    other column is coded in order of first appearance."""
+    import pandas as pd
+
+    if isinstance(status.dtype, pd.CategoricalDtype):
+        labels = [str(x).strip() for x in status.cat.categories]
+        if len(set(labels)) == len(labels):
+            return status.cat.codes.to_numpy(), labels
+    codes, labels = pd.factorize(status.astype(object), sort=False)
+    return codes, [str(x).strip() for x in labels]
 
 
 def _runs_in_blocks(exp) -> bool:

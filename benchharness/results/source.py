@@ -48,18 +48,75 @@ def load_table(source, factors: Sequence[str] | None = None):
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise DataError(f"{path}: cannot be read as CSV ({str(exc).splitlines()[0]})") from None
     _check_columns(header, factors, str(path))
+    df = _read_coded(path, header, factors)
+    if df is not None:
+        return df, None
     try:
         # factor columns as plain Python strings (object), hashed once into codes by
-        # `_as_categorical`: at a million rows this is half the time of pandas' own
-        # string column and its factorize (0.25 s against 0.47 s of CPU)
+        # `_as_categorical`
         df = pd.read_csv(path, dtype={f: object for f in factors}, keep_default_na=False,
-                         na_values={c: ["", "NA", "NaN", "nan"] for c in header.columns
-                                    if c not in factors})
+                         na_values=_missing_marks(header, factors))
     except (pd.errors.ParserError, ValueError) as exc:
         raise DataError(f"{path}: cannot be read as CSV ({str(exc).splitlines()[0]})") from None
     for f in factors:
         df[f] = _as_categorical(df[f])
     return df, None
+
+
+#: rows read first to learn a large CSV's factor levels (`_read_coded`)
+HEAD_ROWS = 20_000
+
+
+def _missing_marks(header, factors) -> dict:
+    """What reads as a missing value: in the columns other than the factors only (a
+    factor's level is its text, whatever it says)."""
+    return {c: ["", "NA", "NaN", "nan"] for c in header.columns if c not in factors}
+
+
+def _read_coded(path, header, factors):
+    """A large CSV read in one pass with its factor columns (and ``status``) coded by
+    pandas' C parser as they are parsed, or None where that does not apply (a file of
+    at most `HEAD_ROWS` rows, a level first seen after them, a missing level, a
+    status column that reads as numbers); `load_table` then reads the file as text.
+
+    The parser hashes each field's bytes once, without a Python string per row or a
+    second pass to code the column. Each factor is given its categories, as text:
+    left to infer them, the parser turns labels that look like numbers into numbers
+    (``1.10`` would become 1.1, and ``1`` and ``1.0`` one level). They are learnt
+    from the first `HEAD_ROWS` rows, in order of first appearance; a level not among
+    them reads as missing, which sends the file to the text reading. At a million
+    rows and four factors this takes 0.19 s of CPU against 0.31 s for the columns
+    read as text and coded afterwards.
+    """
+    import warnings
+
+    import pandas as pd
+
+    head = pd.read_csv(path, usecols=list(factors), dtype=object, keep_default_na=False,
+                       nrows=HEAD_ROWS)
+    if len(head) < HEAD_ROWS or head.isna().any().any():
+        return None
+    levels = {f: list(pd.unique(head[f].to_numpy())) for f in factors}
+    dtype = {f: pd.CategoricalDtype(pd.Index(levels[f], dtype=object)) for f in factors}
+    if "status" in header.columns and "status" not in factors:
+        dtype["status"] = "category"
+    try:
+        with warnings.catch_warnings():
+            # a label outside the given categories reads as missing (pandas 3 also
+            # warns that it will refuse it): both are taken as "not applicable"
+            warnings.filterwarnings("ignore", message="Constructing a Categorical with a dtype")
+            df = pd.read_csv(path, dtype=dtype, keep_default_na=False,
+                             na_values=_missing_marks(header, factors))
+    except (ValueError, TypeError):   # a bad file: the text reading says what is wrong
+        return None
+    if "status" in dtype and df["status"].cat.categories.dtype.kind not in "OUT":
+        return None   # labels read as numbers or booleans: keep their text
+    for f in factors:
+        codes = df[f].cat.codes.to_numpy()
+        if (codes < 0).any():
+            return None
+        df[f] = pd.Categorical.from_codes(codes, categories=levels[f])  # as `_as_categorical`
+    return df
 
 
 def results_table(res, factors: Sequence[str] | None = None):
