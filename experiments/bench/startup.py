@@ -16,7 +16,8 @@ the same session, and the load average before and after:
   as PNG and SVG from the example's ``runs.csv``, timed as a whole process like
   the commands (start-up, imports, reading, drawing, writing).
 * ``big`` (issue 18 item 2): ``benchharness analyze`` of a 1,000,000-row CSV with
-  ``--json`` (start-up, read, analysis, JSON) against the analysis call alone
+  ``--json-out FILE`` (start-up, read, analysis, the JSON file, and the terminal
+  report, which ``--json-out`` prints too) against the analysis call alone
   (``benchharness.analysis.analyze`` on the table already in memory, in a process
   that has read it and imported the library: the second of two calls), and the
   **floor**: a minimal script in its own process doing only the unavoidable part of
@@ -25,8 +26,15 @@ the same session, and the load average before and after:
   written). Its ratio to the call alone is the least any command built on pandas
   and this analysis could show.
 
+Python's compiled bytecode: by default the children run as the environment says
+(with ``PYTHONDONTWRITEBYTECODE=1``, as on the development machine, every process
+compiles the project's modules again: about 0.1 s of CPU for ``analyze``);
+``--cached-bytecode`` keeps it between runs, as an installed copy has it
+(``PYTHONPYCACHEPREFIX`` in the temporary folder, filled by one untimed run of each
+command). The condition is printed with the figures.
+
 Usage: python experiments/bench/startup.py [--sections startup,big] [--repeat 5]
-       [--rows 1000000] [--tree DIR]
+       [--rows 1000000] [--tree DIR] [--cached-bytecode]
 ``--tree DIR`` measures the benchharness checked out in DIR (before/after figures).
 """
 
@@ -71,7 +79,25 @@ def small_csv(path: Path) -> Path:
     return path
 
 
+def bytecode_condition(env) -> str:
+    """How the children get their bytecode, in words (printed with the figures)."""
+    if env.get("PYTHONPYCACHEPREFIX"):
+        return "bytecode cached between runs"
+    if env.get("PYTHONDONTWRITEBYTECODE"):
+        return "bytecode compiled in every process (PYTHONDONTWRITEBYTECODE=1)"
+    return "bytecode as Python writes it (__pycache__)"
+
+
+def warm_up(commands, env, cwd) -> None:
+    """One untimed run of each command, to fill a bytecode cache."""
+    for argv in commands:
+        subprocess.run(argv, env=env, cwd=cwd, stdout=subprocess.DEVNULL,
+                       stderr=subprocess.DEVNULL)
+
+
 def run_section(name, commands, ref, repeat, env, cwd):
+    if env.get("PYTHONPYCACHEPREFIX"):
+        warm_up(commands.values(), env, cwd)
     load0 = os.getloadavg()[0]
     res = {k: [] for k in commands}
     for _ in range(repeat):
@@ -84,7 +110,8 @@ def run_section(name, commands, ref, repeat, env, cwd):
     rw = statistics.median(w for w, _ in res[ref])
     rc_ = statistics.median(c for _, c in res[ref])
     print(f"\n{name}: medians of {repeat} interleaved starts "
-          f"(load average {load0:.1f} -> {load1:.1f}); ratios to {ref}")
+          f"(load average {load0:.1f} -> {load1:.1f}; {bytecode_condition(env)}); "
+          f"ratios to {ref}")
     for k in commands:
         w = statistics.median(x for x, _ in res[k])
         c = statistics.median(x for _, x in res[k])
@@ -123,6 +150,8 @@ def main() -> int:
     ap.add_argument("--repeat", type=int, default=5)
     ap.add_argument("--rows", type=int, default=1_000_000)
     ap.add_argument("--tree", default=str(ROOT))
+    ap.add_argument("--cached-bytecode", action="store_true",
+                    help="keep compiled bytecode between runs, as an installed copy has it")
     a = ap.parse_args()
     tree = Path(a.tree).resolve()
     env = dict(os.environ, PYTHONPATH=str(tree))
@@ -131,6 +160,9 @@ def main() -> int:
     sections = a.sections.split(",")
     with tempfile.TemporaryDirectory(prefix="startup-") as tmp:
         work = Path(tmp)
+        if a.cached_bytecode:
+            env.pop("PYTHONDONTWRITEBYTECODE", None)
+            env["PYTHONPYCACHEPREFIX"] = str(work / "bytecode")
         if "startup" in sections:
             csv = small_csv(work / "small.csv")
             example = work / "example"
@@ -157,6 +189,11 @@ def main() -> int:
             big = work / "big.csv"
             make_data(a.rows).to_csv(big, index=False)
             factors = ",".join(FACTORS)
+            end_to_end = bh + ["analyze", str(big), "--factors", factors, "--json-out",
+                               str(work / "a.json")]
+            if a.cached_bytecode:
+                warm_up([[py, "-c", FLOOR, str(big), factors], end_to_end,
+                         [py, "-c", ALONE, str(big), factors]], env, work)
             load0 = os.getloadavg()[0]
             ends, end_cpu, alone, alone_cpu = [], [], [], []
             floor, floor_cpu = [], []
@@ -164,8 +201,9 @@ def main() -> int:
                 w, c, rc = timed([py, "-c", FLOOR, str(big), factors], env, work)
                 floor.append(w)
                 floor_cpu.append(c)
-                w, c, rc = timed(bh + ["analyze", str(big), "--factors", factors, "--json-out",
-                                       str(work / "a.json")], env, work)
+                w, c, rc = timed(end_to_end, env, work)
+                if rc != 0:
+                    print(f"  analyze end to end: exit code {rc}", file=sys.stderr)
                 ends.append(w)
                 end_cpu.append(c)
                 r = subprocess.run([py, "-c", ALONE, str(big), factors], env=env, cwd=work,
@@ -178,7 +216,7 @@ def main() -> int:
             ec, ac = statistics.median(end_cpu), statistics.median(alone_cpu)
             fl, fc = statistics.median(floor), statistics.median(floor_cpu)
             print(f"\nbig: {a.rows:,} rows, medians of {a.repeat} interleaved "
-                  f"(load average {load0:.1f} -> {load1:.1f})")
+                  f"(load average {load0:.1f} -> {load1:.1f}; {bytecode_condition(env)})")
             print(f"  analyze end to end (start-up, read, analysis, JSON): {e:.3f} s, "
                   f"CPU {ec:.3f} s")
             print(f"  the analysis call alone:                             {al:.3f} s, "
