@@ -523,11 +523,11 @@ def recognise(names, levels, codes, experiment=None):
     factorial, a factor with other than two levels, or an irregular set of cells
     gives None.
     """
-    from benchharness.design.fractional import FractionalDesign
-
     k = len(names)
     if k < 2 or any(len(lv) != 2 for lv in levels) or k > W.MAX_FACTORS:
         return None
+    from benchharness.design.fractional import FractionalDesign
+
     labels = tuple((str(lv[0]), str(lv[1])) for lv in levels)
     declared = _declared_fraction(experiment, names, labels)
     if declared is not None:

@@ -437,7 +437,7 @@ def unmatched(fit, lay, factors, incomplete: dict) -> list[str]:
 
 
 def _marker() -> str:
-    from benchharness.experiment.space import NOT_APPLIED
+    from benchharness.experiment import NOT_APPLIED
 
     return NOT_APPLIED
 

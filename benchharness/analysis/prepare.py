@@ -53,19 +53,15 @@ def load_source(data, factors=None):
     or a results folder already read (`benchharness.results.journal.Results`)."""
     import pandas as pd
 
-    from benchharness.results.journal import Results
+    from benchharness.results.source import is_folder_read, load_table, results_table
 
     if isinstance(data, pd.DataFrame):
         return data, None  # used as is: no copy of a large table
-    if isinstance(data, Results):
-        from benchharness.results.source import results_table
-
+    if is_folder_read(data):
         return results_table(data, factors), data.experiment
     if not isinstance(data, (str, Path)):
         raise UsageError(f"cannot analyse a {type(data).__name__}; give a DataFrame, a CSV file "
                          "or a results folder")
-    from benchharness.results.source import load_table
-
     return load_table(data, factors=factors)
 
 

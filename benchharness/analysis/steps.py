@@ -209,9 +209,9 @@ def layout_of(prep) -> Layout:
 
 def better_of(data, response) -> str:
     """Direction of the response: a results folder's metrics.json, else lower."""
-    from benchharness.results.journal import Results
+    from benchharness.results.source import is_folder_read
 
-    folder = data.path if isinstance(data, Results) else data   # a folder already read
+    folder = data.path if is_folder_read(data) else data   # a folder already read
     try:
         path = Path(folder)
     except TypeError:

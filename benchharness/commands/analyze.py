@@ -79,12 +79,10 @@ def add_parser(sub) -> None:
 
 def main(args) -> int:
     from benchharness.analysis import analyze
-    from benchharness.results.journal import is_results_folder, load_results
-
     from benchharness.report.units import declare_folder_units
 
     factors = _factor_list(args.factors)
-    folder_res = load_results(args.source) if is_results_folder(args.source) else None
+    folder_res = _results_folder(args.source)
     declare_folder_units(args.source if folder_res is not None else None)
     args.response = _response(args, folder_res)
     model = args.model  # None: full, or every alias chain of a two-level fraction
@@ -107,6 +105,18 @@ def main(args) -> int:
     if args.json_out:
         print(f"\nanalysis written to {args.json_out}", file=sys.stderr)
     return 0
+
+
+def _results_folder(source: str):
+    """The results folder SOURCE names, read once; None for a CSV file (for which the
+    journal module is not even imported)."""
+    import os
+
+    if not os.path.isdir(source):
+        return None
+    from benchharness.results.journal import is_results_folder, load_results
+
+    return load_results(source) if is_results_folder(source) else None
 
 
 def _factor_list(text: str | None) -> list[str] | None:

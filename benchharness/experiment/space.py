@@ -36,12 +36,12 @@ from typing import Mapping, Sequence
 
 import yaml
 
+# the level a conditional factor carries in cells where it does not apply
+from benchharness.experiment import NOT_APPLIED
 from benchharness.experiment.yamlnodes import (
     is_null, kind, mapping_items, node_error, scalar_text, sequence_items, suggest,
 )
 
-#: The level a conditional factor carries in cells where it does not apply.
-NOT_APPLIED = "-"
 #: Keys of the experiment file owned here.
 KEYS = ("exclude", "only_when")
 #: Most combinations enumerated to apply the rules (the planned-run limit comes first).

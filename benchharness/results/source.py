@@ -10,6 +10,7 @@ levels, or for a CSV in order of first appearance.
 from __future__ import annotations
 
 import os
+import sys
 from pathlib import Path
 from typing import Sequence
 
@@ -21,8 +22,6 @@ def load_table(source, factors: Sequence[str] | None = None):
     read: `journal.Results`), a CSV path or a DataFrame."""
     import pandas as pd
 
-    from benchharness.results import journal as J
-
     if isinstance(source, pd.DataFrame):
         df = source.copy()
         exp = None
@@ -33,11 +32,13 @@ def load_table(source, factors: Sequence[str] | None = None):
             if not isinstance(df[f].dtype, pd.CategoricalDtype):
                 df[f] = _as_categorical(df[f].astype(str))
         return df, exp
-    if isinstance(source, J.Results):
+    if is_folder_read(source):
         return results_table(source, factors), source.experiment
     path = Path(os.fspath(source))
     if path.is_dir():
-        res = J.load_results(path)
+        from benchharness.results.journal import load_results
+
+        res = load_results(path)
         return results_table(res, factors), res.experiment
     if not path.exists():
         raise DataError(f"{path}: no such file or folder; give a results folder or a CSV file")
@@ -117,6 +118,14 @@ def _read_coded(path, header, factors):
             return None
         df[f] = pd.Categorical.from_codes(codes, categories=levels[f])  # as `_as_categorical`
     return df
+
+
+def is_folder_read(obj) -> bool:
+    """Whether ``obj`` is a results folder already read (`journal.Results`). A CSV or a
+    DataFrame is told apart without importing the journal (an instance can exist only
+    once it is loaded), which `analyze` of a CSV would otherwise import for nothing."""
+    journal = sys.modules.get("benchharness.results.journal")
+    return journal is not None and isinstance(obj, journal.Results)
 
 
 def results_table(res, factors: Sequence[str] | None = None):
