@@ -119,3 +119,24 @@ def test_analysis_of_a_large_csv_says_the_same_either_way(tmp_path, monkeypatch,
     p = {row["term"]: row["p"] for row in d["anova"] if row["term"] != "Residual"}
     assert p["level"] < 0.001 and p["mode"] > 0.05
     assert "level matters" in outs[200][1]
+
+
+def test_analyze_of_a_csv_imports_only_what_it_uses(tmp_path):
+    """`analyze` of a CSV reads no experiment file and no results folder, so the YAML
+    machinery, the journal and the fraction designs stay unimported (start-up cost,
+    issue 18); the analysis still answers (a fresh interpreter: other tests load them)."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    path = _write(tmp_path / "t.csv", _timing_rows(60, np.random.default_rng(6)), HEADER)
+    code = ("import sys\nfrom benchharness.cli import main\n"
+            f"rc = main(['analyze', {str(path)!r}, '--factors', 'level', '--json-out', "
+            f"{str(tmp_path / 'a.json')!r}])\n"
+            "print('RC', rc, 'LOADED', sorted(m for m in ('yaml', 'benchharness.results.journal', "
+            "'benchharness.experiment.space', 'benchharness.design.fractional') "
+            "if m in sys.modules))")
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=root)
+    assert "RC 0 LOADED []" in r.stdout, r.stdout + r.stderr
+    assert json.loads((tmp_path / "a.json").read_text())["factors"][0]["name"] == "level"
