@@ -9,13 +9,16 @@ two-level fraction, comparisons, diagnostics, data-quality warnings, appendix).
 from __future__ import annotations
 
 import datetime as _dt
+from typing import TYPE_CHECKING
 
 from benchharness.report import story
 from benchharness.report.data import ReportData, finite
-from benchharness.report.figures import FigureSet
 from benchharness.report.units import (
     column_scale, describe, fmt_num, fmt_p, fmt_ratio, fmt_ratio_interval,
 )
+
+if TYPE_CHECKING:   # the figures' module is imported by what draws them, not by the terminal
+    from benchharness.report.figures import FigureSet
 
 #: Most comparison rows listed in a report (the rest are in analysis.json).
 MAX_COMPARISONS = 200
