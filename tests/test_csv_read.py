@@ -123,7 +123,7 @@ def test_analysis_of_a_large_csv_says_the_same_either_way(tmp_path, monkeypatch,
 
 def test_analyze_of_a_csv_imports_only_what_it_uses(tmp_path):
     """`analyze` of a CSV reads no experiment file and no results folder, so the YAML
-    machinery, the journal and the fraction designs stay unimported (start-up cost,
+    machinery, the journal, the fraction designs and the figures stay unimported (start-up cost,
     issue 18); the analysis still answers (a fresh interpreter: other tests load them)."""
     import subprocess
     import sys
@@ -135,7 +135,8 @@ def test_analyze_of_a_csv_imports_only_what_it_uses(tmp_path):
             f"rc = main(['analyze', {str(path)!r}, '--factors', 'level', '--json-out', "
             f"{str(tmp_path / 'a.json')!r}])\n"
             "print('RC', rc, 'LOADED', sorted(m for m in ('yaml', 'benchharness.results.journal', "
-            "'benchharness.experiment.space', 'benchharness.design.fractional') "
+            "'benchharness.experiment.space', 'benchharness.design.fractional', "
+            "'benchharness.report.figures') "
             "if m in sys.modules))")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=root)
     assert "RC 0 LOADED []" in r.stdout, r.stdout + r.stderr
