@@ -1224,6 +1224,7 @@ class Launcher:
             err = "the child died while being set up"
         if err is not None:
             os.waitpid(pid, 0)
+            self.drain_signals()  # its SIGCHLD must not wake the next run's wait
             return None, t0, err
         return pid, t0, None
 
