@@ -345,7 +345,7 @@ def derive(d: dict) -> list[dict]:
     out += numeric_findings(d)
     best = d.get("best")
     if best and best.get("cells"):
-        out.append(_best_with_unrun(best, conf))
+        out.append(_not_adjusted_over_terms(_best_with_unrun(best, conf), out))
     out += _cautions(d)
     return out
 
@@ -521,6 +521,22 @@ def _best_with_unrun(best: dict, conf: str) -> dict:
     return found
 
 
+def _not_adjusted_over_terms(found: dict, said: list[dict]) -> dict:
+    """A best cell called ahead of the others, when the effect of a factor it differs by is
+    detectable alone but not after Holm over the ANOVA's terms: the comparison with the best
+    is not adjusted over those terms, and the statement says so rather than contradict the
+    factor's finding silently."""
+    if not found.get("significant"):
+        return found
+    alone = [f["factors"][0] for f in said if f.get("kind") == "main" and f.get("only_alone")
+             and f["factors"][0] in (found.get("factors") or [])]
+    if alone:
+        found = dict(found, statement=found["statement"] + (
+            f"; this comparison with the best is not adjusted over the model's terms: after "
+            f"that adjustment the effect of {_and(alone)} is not detectable"))
+    return found
+
+
 def _p_text(r: dict) -> str:
     """The p of a term as stated: Holm-adjusted over the table's terms, with the F test's
     own p beside it when the two read differently."""
@@ -691,7 +707,11 @@ def _main_finding(r, f, aliased, comps, effects, refs, alpha, conf, higher=(),
             base["qualifier"] = _where_both({**big, "over": None})[2:-1]
     significant, statement = _main_statement(r, f, alias_text, also, stated, comps, higher,
                                              alpha, conf, p)
-    return {**base, "significant": significant, "statement": statement}
+    # detectable alone, not after Holm over the terms: the headline and the best cell say so
+    alone = (not significant and r.get("p") is not None and r["p"] < alpha
+             and "after adjusting over the model's terms" in statement)
+    return {**base, "significant": significant, "statement": statement,
+            **({"only_alone": True} if alone else {})}
 
 
 def _named_cells(cells, idx) -> str:
