@@ -106,10 +106,18 @@ def _run(args, timeout=90):
                           capture_output=True, text=True, timeout=timeout)
 
 
+def _run_here(args):
+    """`benchharness ARGS` in this process (conftest's `run_main`): the coordinator's Dask
+    client is closed when the command ends; a new process would import Dask again."""
+    from conftest import run_main
+
+    return run_main(*args, env={"DASK_DISTRIBUTED__WORKER__DAEMON": "False"})
+
+
 def test_every_run_recorded_once_with_hosts(cluster, tmp_path):
     address, _ = cluster
     out = tmp_path / "res"
-    r = _run(["run", _exp(tmp_path), "--out", out, "--scheduler", address, "--same-host-ok",
+    r = _run_here(["run", _exp(tmp_path), "--out", out, "--scheduler", address, "--same-host-ok",
               "--quiet", "--no-analysis"])
     assert r.returncode == 0, r.stderr
     recs = J.read_journal(out / "runs.jsonl")
@@ -280,12 +288,12 @@ def test_workers_without_benchharness_give_one_clear_line(tmp_path):
 
 def test_two_workers_on_one_host_warn_without_same_host_ok(cluster, tmp_path):
     address, _ = cluster
-    r = _run(["run", _exp(tmp_path, reps=1, sleep=0.01), "--out", tmp_path / "res",
+    r = _run_here(["run", _exp(tmp_path, reps=1, sleep=0.01), "--out", tmp_path / "res",
               "--scheduler", address, "--quiet", "--no-analysis"])
     assert r.returncode == 0, r.stderr
     text = r.stdout + r.stderr
     assert "2 workers run on host" in text and "--same-host-ok" in text
-    r = _run(["run", _exp(tmp_path, reps=1, sleep=0.01), "--out", tmp_path / "res2",
+    r = _run_here(["run", _exp(tmp_path, reps=1, sleep=0.01), "--out", tmp_path / "res2",
               "--scheduler", address, "--same-host-ok", "--quiet", "--no-analysis"])
     assert r.returncode == 0, r.stderr
     assert "workers run on host" not in r.stdout + r.stderr
@@ -309,7 +317,7 @@ def test_build_once_per_host_and_rendered_form(cluster, tmp_path):
         seed: 5
         """))
     out = tmp_path / "res"
-    r = _run(["run", p, "--out", out, "--scheduler", address, "--same-host-ok", "--quiet",
+    r = _run_here(["run", p, "--out", out, "--scheduler", address, "--same-host-ok", "--quiet",
               "--no-analysis"])
     assert r.returncode == 0, r.stderr
     recs = J.read_journal(out / "runs.jsonl")

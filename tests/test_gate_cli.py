@@ -13,7 +13,7 @@ def test_candidate_sleeping_30_percent_longer_fails(cli, tmp_path):
     summary.write_text("earlier content\n")
     # coreutils sleep: process start-up (about a millisecond, common practice) stays small
     # next to the sleep, so the true ratio is close to 1.3
-    r = cli("gate", "--baseline", "sleep 0.2", "--candidate", "sleep 0.26",
+    r = cli("gate", "--baseline", "sleep 0.1", "--candidate", "sleep 0.13",
             "--seed", "3", "--max-pairs", "30", "--out", tmp_path / "res",
             "--junit", junit, "--summary", summary, "--json-out", tmp_path / "g.json")
     assert r.returncode == 1, r.stdout + r.stderr
