@@ -74,7 +74,8 @@ def test_none_transform_effects_carry_difference():
     assert x15["approximate"] is True
 
 
-def test_cli_analyze_csv_and_json(cli, tmp_path):
+def test_cli_analyze_csv_and_json(cli, main_cli, tmp_path):
+    # the first command in a new process (the console script), the rest in this one
     p = _csv(tmp_path)
     out = tmp_path / "a.json"
     r = cli("analyze", p, "--response", "life_h", "--factors", "material,temperature",
@@ -86,7 +87,7 @@ def test_cli_analyze_csv_and_json(cli, tmp_path):
     # Montgomery battery-life example, from memory
     assert ss["material"] == pytest.approx(10683.72, abs=0.01)
     assert d["model"]["references"]["temperature"] == "70"
-    r = cli("analyze", p, "--response", "life_h", "--factors", "material,temperature",
+    r = main_cli("analyze", p, "--response", "life_h", "--factors", "material,temperature",
             "--json", "--ss-type", "3", "--model", "main")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)

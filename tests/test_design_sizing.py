@@ -141,17 +141,18 @@ def test_pilot_noise_is_pooled_within_cell_sd():
     assert pn.df == 58
 
 
-def test_size_command_json_and_text(cli):
+def test_size_command_json_and_text(cli, main_cli):
+    # the first command in a new process (the console script), the rest in this one
     r = cli("size", "--detect", "3%", "--noise-cv", "2%", "--levels", "3,2,4", "--json")
     assert r.returncode == 0, r.stderr
     d = json.loads(r.stdout)
     assert set(d) >= {"replicates", "power", "runs", "per_factor"}
     assert d["runs"] == d["replicates"] * 24
     assert d["power"] == pytest.approx(direct_power(d["replicates"], 4, 24, 0.03, 0.02, 0.05))
-    r = cli("size", "--detect", "3%", "--noise-cv", "2%", "--levels", "3,2,4", "--for",
+    r = main_cli("size", "--detect", "3%", "--noise-cv", "2%", "--levels", "3,2,4", "--for",
             "pairwise")
     assert r.returncode == 0 and "replicates per cell" in r.stdout
-    r = cli("size", "--detect", "3%", "--levels", "3,2")
+    r = main_cli("size", "--detect", "3%", "--levels", "3,2")
     assert r.returncode == 2 and "--noise-cv" in r.stderr
 
 

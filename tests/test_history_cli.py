@@ -84,18 +84,19 @@ def test_add_and_show_find_the_step_and_mark_the_host_change(tmp_path, main_cli)
     assert "codec=&lt;fast&gt;" in html and "<fast>" not in html
 
 
-def test_history_usage_errors(tmp_path, cli):
+def test_history_usage_errors(tmp_path, cli, main_cli):
+    # the first command in a new process (the console script), the rest in this one
     f = write_folder(tmp_path / "r", "e", {"x": ["p"]}, {("p",): [1.0, 1.1]})
     plain = tmp_path / "plain"
     plain.mkdir()
     r = cli("history", "add", f, "--history-db", tmp_path / "h.sqlite", cwd=plain)
     assert r.returncode == 2 and "not a git repository; pass --commit" in r.stderr
     assert "Traceback" not in r.stderr
-    r = cli("history", "show", "--history-db", tmp_path / "none.sqlite")
+    r = main_cli("history", "show", "--history-db", tmp_path / "none.sqlite")
     assert r.returncode == 2 and "no history file" in r.stderr
-    r = cli("history", "show", "--history-db", tmp_path / "none.sqlite", "--cell", "bad")
+    r = main_cli("history", "show", "--history-db", tmp_path / "none.sqlite", "--cell", "bad")
     assert r.returncode == 2 and "Traceback" not in r.stderr
-    r = cli("--help")
+    r = main_cli("--help")
     assert "history" in r.stdout and "compare" in r.stdout
 
 

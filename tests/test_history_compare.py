@@ -114,7 +114,8 @@ def test_mismatched_factors_are_refused(tmp_path):
         compare_folders(a, b)
 
 
-def test_compare_command(tmp_path, cli):
+def test_compare_command(tmp_path, cli, main_cli):
+    # the first command in a new process (the console script), the rest in this one
     a, b = _pair(tmp_path, ratios={("lzma", "9"): 1.3})
     out = tmp_path / "cmp.json"
     r = cli("compare", a, b, "--tolerance", "5%", "--json-out", out)
@@ -125,9 +126,9 @@ def test_compare_command(tmp_path, cli):
     lz = [c for c in data["cells"] if c["cell"] == {"codec": "lzma", "level": "9"}][0]
     assert lz["verdict"] == "higher" and lz["wording"] == "slower (beyond 5%)"
     assert data["estimate"] == "ratio_b_over_a" and len(data["cells"]) == 6
-    r = cli("compare", a, b, "--tolerance", "five")
+    r = main_cli("compare", a, b, "--tolerance", "five")
     assert r.returncode == 2 and "not a ratio" in r.stderr and "Traceback" not in r.stderr
-    r = cli("compare", a, tmp_path / "missing")
+    r = main_cli("compare", a, tmp_path / "missing")
     assert r.returncode == 2 and "Traceback" not in r.stderr
 
 
