@@ -156,21 +156,27 @@ def test_checker_finds_private_names_taken_across_modules(tmp_path):
     assert cycles(edges) == []
 
 
-def test_benchharness_has_no_import_circle():
-    edges, _private = import_graph(ROOT, "benchharness")
+@pytest.fixture(scope="module")
+def package_graph():
+    """The package's import graph, read once for the tests below that only read it."""
+    return import_graph(ROOT, "benchharness")
+
+
+def test_benchharness_has_no_import_circle(package_graph):
+    edges, _private = package_graph
     assert len(edges) > 100   # the whole package was read
     assert cycles(edges) == [], "import circles (each a set of modules that import each other)"
 
 
-def test_no_module_takes_a_private_name_of_another():
-    _edges, private = import_graph(ROOT, "benchharness")
+def test_no_module_takes_a_private_name_of_another(package_graph):
+    _edges, private = package_graph
     assert private == [], "private names imported across modules: (module, line, from, name)"
 
 
-def test_the_run_engine_is_shared_and_imports_none_of_its_callers():
+def test_the_run_engine_is_shared_and_imports_none_of_its_callers(package_graph):
     # One engine, used by the local runner, the gate and the cluster coordinator;
     # it knows none of them (they differ only in where the next run comes from).
-    edges, _private = import_graph(ROOT, "benchharness")
+    edges, _private = package_graph
     engine = "benchharness.execute.engine"
     for caller in ("benchharness.execute.runner", "benchharness.gate.session",
                    "benchharness.execute.cluster"):
