@@ -9,7 +9,10 @@ every headline and report renders them and none recomputes them:
   does), and whether a power law fits (lack of fit);
 * ``scaling`` — the speed-up and efficiency at the largest level over the
   smallest, and Amdahl's serial fraction with its interval, or that the law
-  does not describe the timings.
+  does not describe the timings; where the speed-up differs with another
+  factor (a significant interaction whose adjusted simple effects at the
+  partner's extreme levels do not overlap) the speed-up at each of its levels,
+  and the overall one called the average it is (`speedup_depends`).
 
 A trend whose interval contains 0 is "no detectable trend", never a growth;
 an exponent is called different across levels only when its F test says so.
