@@ -273,3 +273,17 @@ def test_a_best_setting_whose_factor_fails_only_after_holm_says_so():
     assert best["statement"].endswith(
         "this comparison with the best is not adjusted over the model's terms: after that "
         "adjustment the effect of cache_size is not detectable")
+
+
+def test_the_bounding_critical_values_are_never_below_the_exact_ones():
+    # Slepian's inequality (Slepian 1962, from memory): smaller correlations raise a
+    # one-sided multivariate-t quantile, so each bound is >= the exact value (which
+    # tests/test_choose_mcb.py checks against scipy.stats.dunnett), equal when balanced
+    from benchharness.analysis.mcb import bounding_critical_values, critical_values
+
+    w = 1 / np.random.default_rng(1).integers(4, 9, 8)
+    exact, bound = critical_values(w, 30, 0.975), bounding_critical_values(w, 30, 0.975)
+    assert np.all(bound >= exact - 1e-9) and np.all(bound <= exact * 1.05)
+    even = np.full(8, 0.2)
+    assert np.allclose(bounding_critical_values(even, 30, 0.975),
+                       critical_values(even, 30, 0.975), rtol=0, atol=1e-12)

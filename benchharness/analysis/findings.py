@@ -234,6 +234,10 @@ def _estimable_cells(combos, est, ok, ran):
 #: one-sided many-to-one quantile at `analysis.mcb.tie_confidence`); above, the Bonferroni
 #: t quantile over the k − 1 comparisons at the same level, never smaller (conservative)
 MCB_MAX_CELLS = 500
+#: up to this many cells the critical values are exact even when the cells' weights differ;
+#: above, Slepian's bound (`analysis.mcb.bounding_critical_values`: equal on a balanced
+#: table, a little larger otherwise), which costs a few roots instead of one per cell
+MCB_EXACT_CELLS = 20
 
 
 def critical_per_cell(fit, Lk, k: int, alpha: float):
@@ -249,11 +253,13 @@ def critical_per_cell(fit, Lk, k: int, alpha: float):
     n = min(k, Lk.shape[0])
     if k > MCB_MAX_CELLS:
         return np.full(n, float(stats.t.ppf(1 - alpha / (2 * (k - 1)), fit.df_resid)))
-    from benchharness.analysis.mcb import critical_values, tie_confidence
+    from benchharness.analysis.mcb import (bounding_critical_values, critical_values,
+                                           tie_confidence)
 
-    w = np.einsum("ij,jk,ik->i", Lk, fit.cov_unscaled, Lk)
-    return critical_values(np.maximum(w, 1e-300), float(fit.df_resid),
-                           tie_confidence(1 - alpha), decimals=12 if k <= 20 else 3)
+    w = np.maximum(np.einsum("ij,jk,ik->i", Lk, fit.cov_unscaled, Lk), 1e-300)
+    if k <= MCB_EXACT_CELLS:
+        return critical_values(w, float(fit.df_resid), tie_confidence(1 - alpha))
+    return bounding_critical_values(w, float(fit.df_resid), tie_confidence(1 - alpha))
 
 
 def _ties_and_margins(fit, Lk, bad, k: int, alpha: float, choice, out: dict) -> None:
