@@ -249,9 +249,9 @@ def test_sigkill_mid_experiment_then_resume(tmp_path):
     proc.wait()
     before = J.read_journal(folder / "runs.jsonl")
     assert 5 <= len(before) < 18
-    r = subprocess.run([PY, "-m", "benchharness", "run", "--resume", str(folder), "--quiet",
-                        "--no-analysis"], env=env, cwd=ROOT, capture_output=True, text=True,
-                       timeout=120)
+    from conftest import run_main   # the resume in this process; the killed run was not
+
+    r = run_main("run", "--resume", folder, "--quiet", "--no-analysis")
     assert r.returncode == 0, r.stderr
     recs = J.read_journal(folder / "runs.jsonl")
     ids = [rec["run"] for rec in recs]
