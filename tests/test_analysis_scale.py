@@ -360,12 +360,22 @@ def test_large_drift_is_never_ok_even_when_the_slope_is_not_significant():
     assert (dr["level"], dr["ok"]) == ("caution", False)
     # three significant figures and a p written as every output writes them (docs/cli.md)
     pct = dr["percent_per_100_runs"]
-    stated = re.search(r"moves ([+-][\d.,]+)% per 100 runs", dr["verdict"])
+    stated = re.search(r"run order, ([+-][\d.,]+)% per 100 runs", dr["verdict"])
     assert stated and float(stated.group(1)) == pytest.approx(pct, rel=5e-3)
     assert len(stated.group(1).lstrip("+-").replace(".", "").lstrip("0")) == 3
-    assert dr["verdict"].startswith(f"the response moves {stated.group(1)}% per "
-                                    "100 runs over the run order, beyond ±5%, although the "
-                                    f"slope is not significant (p = {dr['p']:.3f})")
+    # Not significant, so it is not said that the response moves: the verdict says a drift
+    # that large cannot be ruled out, with the slope's 95% interval (scipy's linregress
+    # standard error and t quantile) holding both 0 and a value beyond the limit.
+    assert "the response moves" not in dr["verdict"]
+    assert dr["verdict"].startswith("a drift beyond ±5% per 100 runs cannot be ruled out: the "
+                                    f"slope over the run order, {stated.group(1)}% per 100 runs, "
+                                    f"is not significant (p = {dr['p']:.3f}); its 95% interval")
+    half = stats.t.ppf(0.975, n - 2) * ref.stderr * 100 * 100
+    lo, hi = (float(x.replace(",", "")) for x in re.search(
+        r"95% interval, ([+-][\d.,]+)% to ([+-][\d.,]+)% per 100 runs", dr["verdict"]).groups())
+    assert lo == pytest.approx(ref.slope * 1e4 - half, rel=5e-3)
+    assert hi == pytest.approx(ref.slope * 1e4 + half, rel=5e-3)
+    assert lo < 0 < 5 < abs(hi) or hi > 0 > -5 > lo
 
 
 def test_small_departures_stay_ok():

@@ -266,34 +266,46 @@ def runs_test(signs_in_order: np.ndarray) -> tuple[int, float | None, float | No
 
 
 def _order_slope(r, x):
-    """Least-squares slope of the residuals ``r`` on the positions ``x`` and its two-sided
-    t-test p value (None when every position is the same)."""
+    """Least-squares slope of the residuals ``r`` on the positions ``x``, its two-sided
+    t-test p value and its standard error (Nones when every position is the same)."""
     from benchharness.analysis import dist as stats
 
     xc = x - x.mean()
     sxx = float(xc @ xc)
     n = len(r)
     if sxx == 0:
-        return None, None
+        return None, None, None
     rc = r - r.mean()
     slope = float(xc @ rc) / sxx
     resid = rc - slope * xc
     s2 = float(resid @ resid) / (n - 2)
     se = math.sqrt(s2 / sxx) if s2 > 0 else 0.0
     p = float(2 * stats.t.sf(abs(slope / se), n - 2)) if se > 0 else (0.0 if slope else 1.0)
-    return slope, p
+    return slope, p, se
 
 
-def _slope_verdict(pct: float, p: float, alpha: float):
+def _slope_verdict(pct: float, p: float, alpha: float, interval=None):
     """(level, verdict) of the slope: its size against the mild and large limits and its
-    significance."""
+    significance.
+
+    A large slope that is not significant is a caution, and it is worded by its
+    interval (``interval``: the slope's ``1 - alpha`` confidence interval in % per 100
+    runs): the data hold both no drift and a drift beyond the limit, so the verdict
+    says a drift that large cannot be ruled out, not that the response moves.
+    """
     size = f"{_signed(pct)}% per 100 runs"
     level = "ok"
     if p >= alpha and abs(pct) > DRIFT_LARGE_PCT:
         level = "caution"
-        verdict = (f"the response moves {size} over the run order, beyond ±{DRIFT_LARGE_PCT:g}%, "
-                   f"although the slope is not significant ({_p(p)}); check for warm-up, "
-                   "throttling or background load before trusting small effects")
+        within = ""
+        if interval is not None and all(map(math.isfinite, interval)):
+            lo, hi = interval
+            within = (f"; its {_pct_conf(alpha)} interval, {_signed(lo)}% to {_signed(hi)}% "
+                      "per 100 runs, holds both no drift and a larger one")
+        verdict = (f"a drift beyond ±{DRIFT_LARGE_PCT:g}% per 100 runs cannot be ruled out: the "
+                   f"slope over the run order, {size}, is not significant ({_p(p)}){within}. "
+                   "More runs would tell; check for warm-up, throttling or background load "
+                   "before trusting small effects")
     elif p >= alpha:
         verdict = f"no clear drift over the run order (slope {size}, not significant)"
     elif abs(pct) < DRIFT_MILD_PCT:
@@ -331,7 +343,7 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
         return {"slope_per_100_runs": None, "percent_per_100_runs": None, "p": None,
                 "runs_test": None, "verdict": "run order unknown; drift not checked"}
     x = np.asarray(position, dtype=float)
-    slope, p = _order_slope(r, x)
+    slope, p, se = _order_slope(r, x)
     if slope is None:
         return {"slope_per_100_runs": None, "percent_per_100_runs": None, "p": None,
                 "runs_test": None, "verdict": "all runs share one position; drift not checked"}
@@ -341,7 +353,13 @@ def drift(r, position, pct_per_unit: float, alpha: float) -> dict:
     nruns, z, p_runs = runs_test(nz > 0)
     per100 = slope * 100.0
     pct = per100 * pct_per_unit
-    level, verdict = _slope_verdict(pct, p, alpha)
+    interval = None
+    if se > 0 and len(r) > 2:
+        from benchharness.analysis import dist as stats
+
+        half = float(stats.t.ppf(1 - alpha / 2, len(r) - 2)) * se * 100.0 * pct_per_unit
+        interval = sorted((pct - half, pct + half))
+    level, verdict = _slope_verdict(pct, p, alpha, interval)
     runs_info = {"runs": nruns, "z": z, "p": p_runs}
     clause, level = _runs_clause(nz, nruns, z, p_runs, alpha, level)
     verdict += clause
@@ -356,6 +374,11 @@ def _signed(x: float) -> str:
     from benchharness.numbers import fmt_num
 
     return ("+" if x > 0 else "") + fmt_num(x)
+
+
+def _pct_conf(alpha: float) -> str:
+    """The confidence of a ``1 - alpha`` interval in words: ``95%``."""
+    return f"{100 * (1 - alpha):.6g}%"
 
 
 def _p(p: float) -> str:
