@@ -128,3 +128,14 @@ def test_a_worse_by_failure_rate_states_both_rates_with_their_intervals_everywhe
     assert rates["candidate"]["upper"] == pytest.approx(ref_c[1], abs=1e-12)
     assert rates["baseline"]["upper"] == pytest.approx(ref_b[1], abs=1e-12)
     assert f"{said_c} of its runs vs {said_b} of the baseline's" in doc["reason"]
+
+
+def test_counts_in_gate_reasons_take_the_right_number():
+    # planted: a budget of 3 blocks where both builds failed in two, so one block is usable;
+    # the reason counts it in the singular ("1 block", never "1 blocks")
+    from benchharness.gate.decide import Block, GateSettings, judge
+
+    failed = Block(None, None, "failed", "failed")
+    j = judge([Block(1.0, 1.0), failed, failed], GateSettings(max_runs=3, min_runs=2))
+    assert j.verdict == "inconclusive"
+    assert j.reason == "only 1 block with both runs ok within the budget"

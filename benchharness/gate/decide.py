@@ -239,7 +239,7 @@ def _judge(blocks, settings, workloads, tracker) -> Judgement:
     if look.n < max(2, settings.min_runs) or look.sd is None:
         if look.at_budget:
             return look.make("inconclusive",
-                             f"only {look.n} blocks with both runs ok within the budget")
+                             f"only {plural(look.n, 'block')} with both runs ok within the budget")
         return look.make(None, "waiting for the first look")
     return _bounds_verdict(look, settings, look.design, tracker)
 
@@ -278,7 +278,7 @@ class _Look:
     def make(self, verdict, reason, lo=None, hi=None, horizon=None, extra=None) -> Judgement:
         """The judgement of this look; a pass notes candidate failures too few to decide."""
         if verdict in ("no_regression", "improvement") and self.only_c > self.only_b:
-            reason += (f"; the candidate alone failed in {self.only_c} blocks, the baseline "
+            reason += (f"; the candidate alone failed in {plural(self.only_c, 'block')}, the baseline "
                        f"alone in {self.only_b}: too few to say it fails more often")
         return Judgement(
             verdict=verdict, blocks=self.n_blocks, usable_blocks=self.n,

@@ -34,6 +34,8 @@ from __future__ import annotations
 import math
 from functools import lru_cache
 
+from benchharness.numbers import plural
+
 
 def pocock_spending(t: float, alpha: float) -> float:
     """Lan & DeMets (1983) Pocock-type spending function: alpha * ln(1 + (e - 1) t)."""
@@ -88,7 +90,7 @@ def failure_verdict(only_candidate: int, only_baseline: int, max_discordant: int
     if u is None or only_candidate < u:
         return None
     rates = f"{rates}; " if rates else ""
-    return (f"the candidate fails more often: {rates}it alone failed in {only_candidate} blocks, "
+    return (f"the candidate fails more often: {rates}it alone failed in {plural(only_candidate, 'block')}, "
             f"the baseline alone in {only_baseline} (exact sequential sign test, "
             f"level {alpha:.3g})")
 

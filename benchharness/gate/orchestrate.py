@@ -30,6 +30,7 @@ from typing import Callable, Mapping, Sequence
 
 from benchharness.execute.base import USAGE_FIELDS, Measurement, RunSpec
 from benchharness.gate.decide import Block, GateSettings, Judgement, judge
+from benchharness.numbers import plural
 
 BASELINE, CANDIDATE = "baseline", "candidate"
 NEVER_OK_EXIT = 5
@@ -185,7 +186,8 @@ class _GateLoop:
         if self.stored_baseline is not None:
             st = [s for _v, s in self.stored_baseline.get(key, ())]
             if st and all(s != "ok" for s in st):
-                broken.append(f"the stored baseline has no successful run ({len(st)} runs)")
+                broken.append("the stored baseline has no successful run "
+                              f"({plural(len(st), 'run')})")
         if not broken:
             return None
         done = self.blocks.get(key, [])
