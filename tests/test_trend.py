@@ -163,6 +163,25 @@ def test_no_trend_is_never_called_growth():
     assert "grows" not in f["statement"]
 
 
+def test_repeats_without_any_variation_give_exponents_as_measured_and_no_test():
+    # planted: every run of a cell gives the same time, pool^0.5 at cache=on and pool^1 at
+    # cache=off, with a bump at pool=4 (so a line leaves residuals that are lack of fit, not
+    # noise). Nothing can be tested: no interval, no "differs with cache (p < 0.001)".
+    rows = [{"cache": c, "pool": str(p),
+             "wall_s": 0.02 * (p / 2) ** (0.5 if c == "on" else 1.0) * (1.3 if p == 4 else 1)}
+            for c in ("on", "off") for p in (2, 4, 8) for _ in range(3)]
+    an = analyze(pd.DataFrame(rows), factors=["cache", "pool"])
+    f = [f for f in an.findings if f["kind"] == "trend"][0]
+    assert f["untested"] and not f["significant"] and f["differs_with"] == []
+    assert f["lower"] is None and f["p"] is None
+    assert "differs" not in f["statement"] and "p <" not in f["statement"]
+    assert "untested: every run in a cell gave the same value" in f["statement"]
+    t = an.to_dict()["trends"][0]
+    assert all(b["test"] is None and not b["differ"] for b in t["by"])
+    by = {s["level"]: s["estimate"] for s in t["by"][0]["slopes"]}
+    assert sorted(round(v, 9) for v in by.values()) == [0.5, 1.0]
+
+
 def test_labels_that_are_not_all_numbers_get_no_trend():
     df = _frame().assign(n=lambda d: d["n"].replace({"1000": "small"}))
     an = analyze(df, factors=["threads", "n"])

@@ -270,10 +270,17 @@ def trend_of(cd: CellData, j: int, name: str, labels, values, names, sizes, alph
                  "axis": f"log {name}" if loglog else name, "log_log": loglog}
     slope = t_interval(float(common.coef[-1]), math.sqrt(max(common.cov[-1, -1], 0.0)
                                                          * common.mse), common.df, alpha)
+    untested = no_run_to_run_variation(cd)
+    if untested:
+        # Repeated runs of a cell all gave the same value: there is no noise to judge a
+        # slope or a difference of slopes against (the residuals of a line are its lack
+        # of fit, not noise), so the exponents are given as measured, untested.
+        slope = {**slope, "se": None, "lower": None, "upper": None, "p": None}
+        out["untested"] = "no run-to-run variation"
     out["slope"] = slope if loglog else None
     if not loglog:
         out["slope_on_log_scale"] = slope   # log y per unit of the factor
-    out["by"] = [slope_by(cd, j, g, u, base, common, names, alpha) for g in others]
+    out["by"] = [slope_by(cd, j, g, u, base, common, names, alpha, untested) for g in others]
     out["lack_of_fit"] = lack_of_fit(cd, u, base, others, sat, k)
     out["contrasts"] = (polynomial_contrasts(sat, j, scores, alpha)
                         if complete(cd, sizes) and sat.fit.df > 0 else [])
@@ -289,8 +296,15 @@ def trend_of(cd: CellData, j: int, name: str, labels, values, names, sizes, alph
     return out
 
 
-def slope_by(cd: CellData, j: int, g: int, u, base, common: LinFit, names, alpha) -> dict:
-    """A slope per level of factor ``g``, and the F test of their differences."""
+def no_run_to_run_variation(cd: CellData) -> bool:
+    """Cells were run more than once and every repeat gave the same value."""
+    return bool(np.any(cd.n > 1)) and cd.ss_within == 0
+
+
+def slope_by(cd: CellData, j: int, g: int, u, base, common: LinFit, names, alpha,
+             untested: bool = False) -> dict:
+    """A slope per level of factor ``g``, and the F test of their differences (none when
+    ``untested``: no run-to-run variation to test against)."""
     G = one_hot(cd.codes[:, g])
     present = np.unique(cd.codes[:, g])
     fit = wls(np.hstack([base, u[:, None] * G]), cd)
@@ -300,8 +314,10 @@ def slope_by(cd: CellData, j: int, g: int, u, base, common: LinFit, names, alpha
         i = p0 + col
         se = math.sqrt(max(fit.cov[i, i], 0.0) * fit.mse) if fit.df > 0 else float("nan")
         s = t_interval(float(fit.coef[i]), se, fit.df, alpha)
+        if untested:
+            s = {**s, "se": None, "lower": None, "upper": None, "p": None}
         slopes.append({"level": int(code), **s})
-    test = f_test(common, fit)
+    test = None if untested else f_test(common, fit)
     return {"factor": names[g], "slopes": slopes, "test": test,
             "differ": bool(test is not None and test["p"] < alpha)}
 

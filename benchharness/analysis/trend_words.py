@@ -55,6 +55,8 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
     slope = t.get("slope")
     if slope is None:
         return None
+    if t.get("untested"):
+        return _untested_trend(t, response, name, slope)
     sig = _excludes_zero(slope)
     if sig:
         verb = "grows" if slope["estimate"] > 0 else "falls"
@@ -81,6 +83,23 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
             "differs_with": [b["factor"] for b in differ], "lack_of_fit": bends,
             "parallel": bool(t.get("scaling")),
             "headline": bool(t.get("headline")), "short": short, "statement": text}
+
+
+def _untested_trend(t: dict, response: str, name: str, slope: dict) -> dict:
+    """The trend of a factor whose cells were repeated without any variation: the exponents
+    as measured, and no claim that one is detectable or that they differ."""
+    short = f"{response} changes as {power_text(name, slope)} over {name}, as measured"
+    text = short + " (untested: every run in a cell gave the same value, so there is no " \
+        "run-to-run variation to judge the exponent against)"
+    for b in t.get("by") or []:
+        per = "; ".join(f"{power_text(name, s)} at {b['factor']}={s['level']}"
+                        for s in b["slopes"])
+        text += f"; as measured at each level of {b['factor']}: {per}"
+    return {"kind": "trend", "terms": [name], "factors": [name], "significant": False,
+            "exponent": slope["estimate"], "lower": None, "upper": None, "p": None,
+            "differs_with": [], "lack_of_fit": False, "parallel": bool(t.get("scaling")),
+            "headline": bool(t.get("headline")), "short": short + " (untested)",
+            "statement": text, "untested": True}
 
 
 def _shape_text(t: dict, lof: dict | None, bends: bool, alpha: float) -> str:
