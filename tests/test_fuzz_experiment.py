@@ -242,6 +242,7 @@ def test_corpus_is_valid(tmp_path):
         f.write_text(text)
         proc = run_main("plan", f, cwd=tmp_path)
         assert proc.returncode == 0, (text, proc.stderr)
+        assert planned_runs(proc.stdout) > 0, (text, proc.stdout)
 
 
 @pytest.mark.parametrize("k,text", list(mutants(24, seed=20261205)),

@@ -66,6 +66,7 @@ def test_all_ok_exits_0(tmp_path, main_cli):
     r = main_cli("run", p, "--out", tmp_path / "r", "--quiet", "--no-analysis")
     assert r.returncode == 0, r.stderr
     assert "timed runs failed" not in r.stderr
+    assert [x["status"] for x in rows(tmp_path / "r")] == ["ok"] * 4
 
 
 @pytest.mark.parametrize("warmup", [1, 0])
