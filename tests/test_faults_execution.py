@@ -543,17 +543,17 @@ def _kill_early(p, out, parent, delay_s):
 
 
 @pytest.mark.parametrize("delay_s", [0.0, 0.005, 0.03, 0.1])
-def test_a_kill_while_the_folder_is_set_up_leaves_it_resumable_or_absent(tmp_path, cli,
+def test_a_kill_while_the_folder_is_set_up_leaves_it_resumable_or_absent(tmp_path, main_cli,
                                                                          delay_s):
     p = _many_runs(tmp_path, 2)
     parent = tmp_path / "results"
     parent.mkdir()
     out = parent / "res"
-    _kill_early(p, out, parent, delay_s)
+    _kill_early(p, out, parent, delay_s)   # the killed start: a process of its own
     if out.exists() and any(out.iterdir()):
-        r = cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
+        r = main_cli("run", "--resume", out, "--quiet", "--no-analysis", cwd=tmp_path)
     else:  # nothing under the final name (or an empty folder): start again there
-        r = cli("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
+        r = main_cli("run", p, "--out", out, "--quiet", "--no-analysis", cwd=tmp_path)
     assert r.returncode == 0, r.stderr
     assert sorted(x["run"] for x in J.read_journal(out / "runs.jsonl")) == [0, 1, 2, 3]
     # what the killed start left aside was removed by the next start (or never existed)
