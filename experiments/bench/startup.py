@@ -54,7 +54,6 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
-BENCH = Path(__file__).resolve().parent
 
 
 def timed(argv, env, cwd) -> tuple[float, float, int]:
@@ -125,15 +124,18 @@ def run_section(name, commands, ref, repeat, env, cwd):
 
 ALONE = """
 import sys, time
+import numpy as np
 import pandas as pd
-sys.path.insert(0, sys.argv[3])
-from analysis_speed import make_data
 from benchharness.analysis import analyze
 factors = sys.argv[2].split(",")
-# imports and one-time set-up done on another, small table: a second call on the same
-# table would find per-process caches (the many-to-one critical values of the best
-# cell's comparisons, analysis/mcb.py) already filled, which no user's analyze does
-analyze(make_data(2000, seed=7), factors=factors)
+# imports and one-time set-up done on another, small table (made here: importing
+# analysis_speed would put this checkout first on sys.path, whatever --tree says): a
+# second call on the same table would find per-process caches (the critical values of
+# the comparisons with the best, analysis/mcb.py) filled, which no analyze command finds
+rng = np.random.default_rng(7)
+small = pd.DataFrame({f: rng.choice(["a", "b", "c"], 300) for f in factors})
+small["wall_s"] = np.exp(rng.normal(0, 0.1, 300))
+analyze(small, factors=factors)
 df = pd.read_csv(sys.argv[1], dtype={f: str for f in factors})
 t0, c0 = time.perf_counter(), time.process_time()
 analyze(df, factors=factors)
@@ -200,7 +202,7 @@ def main() -> int:
                                str(work / "a.json")]
             if a.cached_bytecode:
                 warm_up([[py, "-c", FLOOR, str(big), factors], end_to_end,
-                         [py, "-c", ALONE, str(big), factors, str(BENCH)]], env, work)
+                         [py, "-c", ALONE, str(big), factors]], env, work)
             load0 = os.getloadavg()[0]
             ends, end_cpu, alone, alone_cpu = [], [], [], []
             floor, floor_cpu = [], []
@@ -213,8 +215,7 @@ def main() -> int:
                     print(f"  analyze end to end: exit code {rc}", file=sys.stderr)
                 ends.append(w)
                 end_cpu.append(c)
-                r = subprocess.run([py, "-c", ALONE, str(big), factors, str(BENCH)], env=env,
-                                   cwd=work,
+                r = subprocess.run([py, "-c", ALONE, str(big), factors], env=env, cwd=work,
                                    capture_output=True, text=True)
                 aw, ac = map(float, r.stdout.strip().splitlines()[-1].split())
                 alone.append(aw)
