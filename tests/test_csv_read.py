@@ -125,6 +125,7 @@ def test_analyze_of_a_csv_imports_only_what_it_uses(tmp_path):
     """`analyze` of a CSV reads no experiment file and no results folder, so the YAML
     machinery, the journal, the fraction designs and the figures stay unimported (start-up cost,
     issue 18); the analysis still answers (a fresh interpreter: other tests load them)."""
+    import os
     import subprocess
     import sys
     from pathlib import Path
@@ -137,7 +138,15 @@ def test_analyze_of_a_csv_imports_only_what_it_uses(tmp_path):
             "print('RC', rc, 'LOADED', sorted(m for m in ('yaml', 'benchharness.results.journal', "
             "'benchharness.experiment.space', 'benchharness.design.fractional', "
             "'benchharness.report.figures') "
-            "if m in sys.modules))")
-    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=root)
+            "if m in sys.modules))\n"
+            "import os\nfrom threadpoolctl import threadpool_info\n"
+            "print('THREADS', sorted({i['num_threads'] for i in threadpool_info()}), "
+            "'ENV', os.environ.get('OPENBLAS_NUM_THREADS'))")
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=root,
+                       env=env)
     assert "RC 0 LOADED []" in r.stdout, r.stdout + r.stderr
+    # every BLAS copy was loaded with one thread (no idle workers spinning), and the
+    # variable that asked for it is gone again (a child of this process would not see it)
+    assert "THREADS [1] ENV None" in r.stdout, r.stdout + r.stderr
     assert json.loads((tmp_path / "a.json").read_text())["factors"][0]["name"] == "level"
