@@ -187,6 +187,27 @@ def test_a_missing_cell_of_a_full_factorial_is_not_worded_as_a_fractions_alias()
     assert not mains["mode"]["significant"]
 
 
+def test_a_factor_whose_ratios_cannot_be_estimated_still_matters_when_its_test_says_so():
+    # planted: a=1 is 1.2x slower than a=1.10 and a=1.0; b does nothing; level b=z ran only
+    # with a=1.0, so no ratio of a's levels can be averaged over b. The F test of a still
+    # finds the planted effect: the finding says a matters, and nothing about which levels
+    # differ (it said "no two of its levels are distinguishable ... ()" and the headline
+    # "None of the factors ... made a difference").
+    rng = np.random.default_rng(11)
+    rows = [{"a": a, "b": b, "wall_s": 0.1 * (1.2 if a == "1" else 1.0)
+             * math.exp(rng.normal(0, 0.1))}
+            for a in ("1.10", "1", "1.0") for b in ("x", "y") for _ in range(20)]
+    rows += [{"a": "1.0", "b": "z", "wall_s": 0.1 * math.exp(rng.normal(0, 0.1))}
+             for _ in range(3)]
+    an = analyze(pd.DataFrame(rows), factors=["a", "b"])
+    mains = {f["factors"][0]: f for f in an.findings if f["kind"] == "main"}
+    assert mains["a"]["significant"] and not mains["b"]["significant"]
+    assert mains["a"]["statement"].startswith("a matters (p < 0.001)")
+    assert "which levels differ is not said" in mains["a"]["statement"]
+    assert "()" not in mains["a"]["statement"]
+    assert headline(list(an.findings)).startswith("a matters")
+
+
 def test_each_note_is_printed_once(capsys, tmp_path):
     from benchharness.cli import main
 

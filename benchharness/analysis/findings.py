@@ -474,8 +474,8 @@ def _two_factor_findings(r, pf, aliased, alias_text, comps, refs, alpha, conf) -
                             ": the effect of each depends on the level of the other")
     else:
         statement = (f"{term_label(r)}: the F test gives {_p_text(r)}, but no simple "
-                     f"effect is distinguishable at {conf} after adjustment ("
-                     + "; and ".join(clauses) + ")")
+                     f"effect is distinguishable at {conf} after adjustment"
+                     + (" (" + "; and ".join(clauses) + ")" if clauses else ""))
     statement += alias_text
     return [{"kind": "interaction", "terms": [term_label(r)], "factors": list(pf),
              "significant": agrees, "ratio": None, "lower": None, "upper": None,
@@ -647,6 +647,12 @@ def _main_statement(r, f, alias_text, also, stated, comps, higher, alpha, conf, 
         if any(_excludes_one(c) for c in (all_tk or stated)):
             return True, (f"{label} matters ({ptext}){alias_text}: "
                           f"{listing}{against}{also}")
+        if not stated:
+            # no ratio between its levels could be estimated (missing cells): the F test
+            # stands, no interval contradicts it, and which levels differ is not said
+            return True, (f"{label} matters ({ptext}){alias_text}; no ratio between its "
+                          "levels could be estimated from these cells (some combinations "
+                          f"have no runs), so which levels differ is not said{also}")
         return False, (f"{label}: the F test gives {ptext}{alias_text}, but no two "
                        f"of its levels are distinguishable at {conf} after adjustment "
                        f"({listing}{against}){also}")
