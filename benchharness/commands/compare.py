@@ -29,8 +29,9 @@ def add_parser(sub) -> None:
     p.add_argument("--tolerance", default=1.05, metavar="RATIO",
                    type=O.ratio("--tolerance", above_one=False),
                    help="change that is still 'the same': 5%% or 1.05x (default 5%%)")
-    p.add_argument("--response", default="wall_s", metavar="NAME",
-                   help="response column (default wall_s)")
+    p.add_argument("--response", default=None, metavar="NAME",
+                   help="response column (default: the response: of A's experiment file, "
+                        "else wall_s)")
     p.add_argument("--confidence", type=O.confidence, default=0.95, metavar="PCT",
                    help="confidence level of the intervals (default 95%%)")
     p.add_argument("--adjust", choices=("sidak", "bonferroni", "none"), default=None,
@@ -54,11 +55,23 @@ def main(args) -> int:
         raise UsageError("--tolerance: must be at least 0% and below 100% (a ratio from 1 "
                          "to 2)")
     adjust = args.adjust or "sidak"
+    response = args.response
+    if response is None:   # what the baseline's experiment file names, as analyze does
+        from benchharness.experiment.response import folder_response
+
+        response = folder_response(args.a)
+        if response is not None:
+            import sys
+
+            print(f"comparing {response}, the response the experiment file names "
+                  "(--response to choose another)", file=sys.stderr)
+        else:
+            response = "wall_s"
     from benchharness.report.units import declare_folder_units
 
     for folder in (args.b, args.a):   # a metric's declared unit; the baseline's wins
         declare_folder_units(folder)
-    result = compare_folders(args.a, args.b, response=args.response, tolerance=tol,
+    result = compare_folders(args.a, args.b, response=response, tolerance=tol,
                              conf_level=args.confidence, adjust=adjust)
     if args.json or args.json_out:
         from benchharness.commands.options import emit_json, wants_json_only

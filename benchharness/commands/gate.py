@@ -47,7 +47,8 @@ def add_parser(sub) -> None:
                    help="pairs run before the first look at the bounds (default 6)")
     O.alias(p, "--min-runs", "--first-look-pairs N", "first_look_pairs", convert=O.count(2),
             metavar="N")
-    p.add_argument("--response", metavar="NAME", help="what to compare (default wall_s)")
+    p.add_argument("--response", metavar="NAME", help="what to compare (default: the file's gate: response:, else its "
+                        "response:, else wall_s)")
     p.add_argument("--better", choices=("lower", "higher"), default=None,
                    help="which direction of the response is better (default: the metric's "
                         "declaration, else lower); higher for a rate such as throughput, "

@@ -58,8 +58,9 @@ def add_parser(sub) -> None:
                         "comparisons between levels (needs more), every two-factor "
                         "interaction, or the trend over each numeric factor (needs an "
                         "experiment file)")
-    p.add_argument("--response", default="wall_s", metavar="NAME",
-                   help="response column of the pilot (default wall_s)")
+    p.add_argument("--response", default=None, metavar="NAME",
+                   help="response column of the pilot (default: the experiment file's "
+                        "response:, else wall_s)")
     O.add_json(p, "the answer")
     p.set_defaults(func=main)
 
@@ -107,6 +108,10 @@ def main(args) -> int:
     detect = V.change_of(args.detect) if args.detect is not None else None
     pilot_df, pilot_exp = _pilot_folder(args)
     factors, cells, exp = _factors(args, pilot_exp)
+    if args.response is None:   # the pilot's (or --levels FILE's) `response:`, else wall_s
+        from benchharness.experiment.response import default_response
+
+        args.response = default_response(pilot_exp if pilot_exp is not None else exp)
     if args.pilot and pilot_df is None:
         from benchharness.results.source import load_table
 

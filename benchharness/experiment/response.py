@@ -3,7 +3,8 @@
 A workload that times its own work (a metric such as ``work_s``) is better judged by
 that figure than by ``wall_s``, which adds the process start-up to every run. The key
 names it once in the file, and `run`'s own analysis, ``analyze FOLDER``, ``report
-FOLDER`` and ``choose`` use it. Precedence, most specific first: the command line's
+FOLDER``, ``choose``, ``gate FILE`` (after ``gate: {response: ...}``), ``compare A B``
+(A's file) and ``size`` (the pilot's or ``--levels FILE``'s) use it. Precedence, most specific first: the command line's
 ``--response``, then ``choose: {response: ...}`` (for `choose` only), then this key,
 then ``wall_s``. Without the key, nothing changes for old files and folders.
 """
@@ -50,3 +51,22 @@ def default_response(exp) -> str:
     if exp is None:
         return DEFAULT_RESPONSE
     return declared_response(exp) or DEFAULT_RESPONSE
+
+
+def folder_response(folder) -> str | None:
+    """The ``response:`` the frozen ``experiment.yaml`` of results folder FOLDER names;
+    None when it names none or the folder has no readable experiment file (whoever reads
+    the folder next reports that in its own words)."""
+    from pathlib import Path
+
+    from benchharness.errors import BenchharnessError
+
+    path = Path(folder) / "experiment.yaml"
+    if not path.is_file():
+        return None
+    try:
+        from benchharness.experiment.file import load_experiment
+
+        return declared_response(load_experiment(path))
+    except BenchharnessError:
+        return None

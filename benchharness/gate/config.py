@@ -54,8 +54,12 @@ def parse_gate_section(exp, overrides: Mapping | None = None) -> GateConfig:
     items = _new_keys(items)
     factor, baseline, candidate = _builds(exp, items)
     kw = _decision_settings(items)
-    response = Y.scalar_text(items["response"], "'gate: response'") \
-        if "response" in items else "wall_s"
+    if "response" in items:
+        response = Y.scalar_text(items["response"], "'gate: response'")
+    else:   # the experiment file's own `response:` (checked at its line), else wall_s
+        from benchharness.experiment.response import default_response
+
+        response = default_response(exp)
     inconclusive = _inconclusive(items)
     o = {k: v for k, v in (overrides or {}).items() if v is not None}
     if "response" in o:
