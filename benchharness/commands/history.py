@@ -123,19 +123,14 @@ def main_add(args) -> int:
 
 def main_show(args) -> int:
     from benchharness.history.store import parse_cell_filter, read_history
-    from benchharness.history.trends import build_trends, step_kind, to_json_dict
+    from benchharness.history.trends import build_trends, to_json_dict
 
     false_step = round(1.0 - args.confidence, 12)
     df = read_history(args.history_db, experiment=args.experiment, response=args.response,
                       cell_filter=parse_cell_filter(args.cell))
     if args.branch is not None:
         df = df[df["branch"] == args.branch]
-    from benchharness.history.store import read_units
-    from benchharness.report.units import declare_unit
-
-    for (experiment, response), unit in read_units(args.history_db).items():
-        if args.experiment in (None, experiment):   # a metric's unit, printed as declared
-            declare_unit(response, unit)
+    _declare_units(args)
     trends = build_trends(df, alpha=false_step)
     from benchharness.history.render import print_trends, render_html
 
@@ -150,23 +145,40 @@ def main_show(args) -> int:
                                           alpha=false_step), "--html")
         print(f"wrote {args.html}", file=sys.stderr)
     if args.fail_on_regression:
-        from benchharness.numbers import fmt_ratio
-
-        open_regressions = [
-            (t, st) for t in trends if t.detection is not None for st in t.detection.steps
-            if st.persists is not False and step_kind(t.response, st.ratio, st.persists)
-            == "regression"]
-        for t, st in open_regressions:
-            print(f"regression: {t.experiment} {t.response} {t.label} at commit "
-                  f"{t.points[st.index].commit} ({fmt_ratio(st.ratio)})", file=sys.stderr)
-        for t in trends:
-            for st in (t.detection.unconfirmed if t.detection is not None else ()):
-                if step_kind(t.response, st.ratio, None) == "regression":
-                    who = ("only the newest commit shows it" if (st.newest or 1) == 1 else
-                           f"the newest {st.newest} commits show it, but the look before "
-                           "did not")
-                    print(f"not yet confirmed: {t.experiment} {t.response} {t.label} at "
-                          f"commit {t.points[st.index].commit} ({fmt_ratio(st.ratio)}); {who}, so "
-                          "it does not fail this check yet", file=sys.stderr)
-        return 1 if open_regressions else 0
+        return _regression_exit(trends)
     return 0
+
+
+def _declare_units(args) -> None:
+    """Each metric's unit as the history file recorded it, so it prints as declared."""
+    from benchharness.history.store import read_units
+    from benchharness.report.units import declare_unit
+
+    for (experiment, response), unit in read_units(args.history_db).items():
+        if args.experiment in (None, experiment):
+            declare_unit(response, unit)
+
+
+def _regression_exit(trends) -> int:
+    """``--fail-on-regression``: 1 when a confirmed regression step is open, else 0; each
+    open regression, and each one not yet confirmed, named on stderr."""
+    from benchharness.history.trends import step_kind
+    from benchharness.numbers import fmt_ratio
+
+    open_regressions = [
+        (t, st) for t in trends if t.detection is not None for st in t.detection.steps
+        if st.persists is not False and step_kind(t.response, st.ratio, st.persists)
+        == "regression"]
+    for t, st in open_regressions:
+        print(f"regression: {t.experiment} {t.response} {t.label} at commit "
+              f"{t.points[st.index].commit} ({fmt_ratio(st.ratio)})", file=sys.stderr)
+    for t in trends:
+        for st in (t.detection.unconfirmed if t.detection is not None else ()):
+            if step_kind(t.response, st.ratio, None) == "regression":
+                who = ("only the newest commit shows it" if (st.newest or 1) == 1 else
+                       f"the newest {st.newest} commits show it, but the look before "
+                       "did not")
+                print(f"not yet confirmed: {t.experiment} {t.response} {t.label} at "
+                      f"commit {t.points[st.index].commit} ({fmt_ratio(st.ratio)}); {who}, so "
+                      "it does not fail this check yet", file=sys.stderr)
+    return 1 if open_regressions else 0
