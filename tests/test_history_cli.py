@@ -155,6 +155,10 @@ def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, m
                           "--json-out", tmp_path / f"show{i}.json")
     assert [outs[i].returncode for i in (2, 3, 4)] == [0, 0, 1]
     assert "No step found" in outs[2].stdout and "NOT YET" not in outs[2].stdout
+    # the default --confidence 95% said as a percentage chance, never the deprecated
+    # "false-step level 0.05" (docs/cli.md: significance is spoken of as confidence)
+    assert "(at most a 5% chance of a false step per host)" in outs[2].stdout
+    assert "false-step level" not in outs[2].stdout
     four = outs[3]
     said = " ".join(four.stdout.split())     # the line under the table, unwrapped
     assert re.search(r"Newest commit c3: possible regression 2\.\d+× \(", said), said

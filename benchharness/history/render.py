@@ -170,16 +170,21 @@ def _trend_table(t: CellTrend):
     return table
 
 
+def _false_step(alpha: float) -> str:
+    """The search's false-step chance in the words of ``--confidence`` (docs/cli.md): a
+    percentage, never the bare fraction of the older ``--false-step-level``."""
+    return f"at most a {100 * alpha:.3g}% chance of a false step per host"
+
+
 def _print_detection(console, t: CellTrend) -> None:
     """Under a cell's table: how many steps were found, and changes not yet confirmed."""
     det = t.detection
     if det is None:
         return
     if det.steps:
-        console.print(f"  {plural(len(det.steps), 'step')} found (false-step level "
-                      f"{det.alpha:g} per host).")
+        console.print(f"  {plural(len(det.steps), 'step')} found ({_false_step(det.alpha)}).")
     elif len(t.points) >= 3:
-        console.print(f"  No step found (false-step level {det.alpha:g} per host).")
+        console.print(f"  No step found ({_false_step(det.alpha)}).")
     for u in det.unconfirmed:
         label = "Newest commit" if (u.newest or 1) == 1 else "Commit"
         console.print(f"  {label} {t.points[u.index].commit[:12]}: "
@@ -274,7 +279,7 @@ code { font-size: 0.95em; }
 <p>{{ cells|length }} cell series. Each point is one commit measured on one host
 (results folders of the same commit and host pooled); the interval is the
 {{ conf_pct }}% confidence interval of its {{ "geometric " if any_log }}mean. Steps are
-searched for among the points of each host, with a false-step level of {{ alpha }} per host; a
+searched for among the points of each host, with at most a {{ '%.3g' % (100 * alpha) }}% chance of a false step per host; a
 change of host is a known break, never a regression.</p>
 <h2>Steps found</h2>
 {% if all_steps %}<table><thead><tr><th class="l">experiment</th><th class="l">response</th>
