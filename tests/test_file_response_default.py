@@ -55,6 +55,9 @@ def test_compare_judges_the_files_response(main_cli, folders):
     # --response still chooses another column
     r = main_cli("compare", folders["a"], folders["b"], "--response", "wall_s", "--json")
     assert json.loads(r.stdout)["response"] == "wall_s"
+    # a mistake is still one line on standard error (exit 2), without the note before it
+    r = main_cli("compare", folders["a"], folders["a"].parent / "missing")
+    assert r.returncode == 2 and len(r.stderr.splitlines()) == 1, r.stderr
 
 
 def test_size_from_a_pilot_sizes_the_files_response(main_cli, folders):

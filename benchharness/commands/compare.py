@@ -59,20 +59,18 @@ def main(args) -> int:
     if response is None:   # what the baseline's experiment file names, as analyze does
         from benchharness.experiment.response import folder_response
 
-        response = folder_response(args.a)
-        if response is not None:
-            import sys
-
-            print(f"comparing {response}, the response the experiment file names "
-                  "(--response to choose another)", file=sys.stderr)
-        else:
-            response = "wall_s"
+        response = folder_response(args.a) or "wall_s"
     from benchharness.report.units import declare_folder_units
 
     for folder in (args.b, args.a):   # a metric's declared unit; the baseline's wins
         declare_folder_units(folder)
     result = compare_folders(args.a, args.b, response=response, tolerance=tol,
                              conf_level=args.confidence, adjust=adjust)
+    if args.response is None and response != "wall_s":   # said once the folders are read
+        import sys
+
+        print(f"comparing {response}, the response the experiment file names "
+              "(--response to choose another)", file=sys.stderr)
     if args.json or args.json_out:
         from benchharness.commands.options import emit_json, wants_json_only
 
