@@ -80,3 +80,16 @@ def test_gate_section_without_response_gates_the_files_response(main_cli, tmp_pa
     assert r.returncode == 1, r.stdout + r.stderr
     assert "render_s (lower is better)" in r.stdout
     assert "verdict: worse:" in r.stdout
+
+
+def test_history_records_and_shows_the_files_response_beside_wall_s(main_cli, folders,
+                                                                    tmp_path):
+    db = tmp_path / "h.sqlite"
+    r = main_cli("history", "add", folders["a"], "--commit", "c1", "--history-db", db)
+    assert r.returncode == 0 and "4 cell rows added" in r.stdout, r.stdout + r.stderr
+    r = main_cli("history", "show", "--history-db", db, "--json")
+    cells = json.loads(r.stdout)["cells"]
+    assert sorted({c["response"] for c in cells}) == ["render_s", "wall_s"]
+    render = [c for c in cells if c["response"] == "render_s"]
+    # the planted level: 0.100-0.106 s per run
+    assert all(0.099 < c["points"][0]["center"] < 0.107 for c in render), render

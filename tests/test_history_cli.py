@@ -175,3 +175,29 @@ def test_a_step_at_the_newest_commits_fails_once_two_commits_show_it(tmp_path, m
     assert [s["commit"] for s in steps] == ["c3"]
     assert steps[0]["found_by"] == "newest commits" and steps[0]["persists"] is True
     assert steps[0]["ratio_low"] < 2.3 < steps[0]["ratio_high"]
+
+
+def test_a_cell_mixing_scales_says_why_and_keeps_each_points_noise_in_its_own_terms(
+        tmp_path, main_cli):
+    """Planted: two folders of positive times with a 2% spread (summarised on the log
+    scale) and one with a zero among its values (the original scale). The points cannot be
+    pooled: the table says the scales differ and gives the log points' noise as a
+    percentage (2.0%, not "0.0200 s"), and the JSON says each point's scale."""
+    from benchharness.history.store import add_results
+
+    db = tmp_path / "h.sqlite"
+    spread = list(0.5 * np.exp(np.array([-0.02, 0.0, 0.02])))   # SD of ln exactly 0.02
+    for i, values in enumerate((spread, spread, [0.0, 0.5, 0.5])):
+        f = write_folder(tmp_path / f"f{i}", "mixed", {"codec": ["zlib"]},
+                         {("zlib",): values},
+                         start=datetime(2026, 11, 1, tzinfo=timezone.utc) + timedelta(days=i))
+        assert add_results(db, f, commit=f"c{i}", branch="main", cwd=tmp_path) == 1
+    r = main_cli("history", "show", "--history-db", db, "--json-out", tmp_path / "s.json")
+    assert r.returncode == 0, r.stderr
+    said = " ".join(r.stdout.split())
+    assert "summarised on different scales" in said and "values <= 0" not in said
+    assert "(mixed scales)" in said
+    rows = [line for line in r.stdout.splitlines() if "│ c" in line]
+    assert [row.count("2.0%") for row in rows[:2]] == [1, 1], r.stdout
+    points = json.loads((tmp_path / "s.json").read_text())["cells"][0]["points"]
+    assert [p["scale"] for p in points] == ["log", "log", "linear"]

@@ -41,7 +41,8 @@ def add_parser(sub) -> None:
                    help=f"history database (default {DEFAULT_DB})")
     O.alias(a, "--db", "--history-db FILE", "history_db", metavar="FILE")
     a.add_argument("--response", action="append", metavar="NAME",
-                   help="response column to record; repeat for several (default wall_s)")
+                   help="response column to record; repeat for several (default wall_s "
+                        "and the experiment file's response:)")
     a.add_argument("--only", metavar="K=V,...",
                    help="record only the runs at these levels, leaving those factors out of "
                         "the cells (e.g. the candidate side of an interleaved comparison)")
@@ -61,8 +62,8 @@ def add_parser(sub) -> None:
                           "trends and steps as JSON, exit 1 on a confirmed regression"))
     s.add_argument("--experiment", metavar="NAME", help="only this experiment")
     s.add_argument("--cell", metavar="K=V,...", help="only cells with these levels")
-    s.add_argument("--response", metavar="NAME", default="wall_s",
-                   help="response to show (default wall_s)")
+    s.add_argument("--response", metavar="NAME", default=None,
+                   help="response to show (default: every response recorded)")
     s.add_argument("--branch", metavar="NAME", help="only commits recorded on this branch")
     s.add_argument("--history-db", metavar="FILE", default=str(DEFAULT_DB),
                    help=f"history database (default {DEFAULT_DB})")
@@ -102,7 +103,7 @@ def write_text(path: str, text: str, option: str) -> None:
 def main_add(args) -> int:
     from benchharness.history.store import add_results, parse_cell_filter
 
-    responses = tuple(args.response or ("wall_s",))
+    responses = tuple(args.response) if args.response else None   # None: wall_s + the file's
     select = parse_cell_filter(args.only, option="--only")
     added = []
     for folder in args.results:

@@ -134,10 +134,11 @@ def _trend_table(t: CellTrend):
     """The rich table of one cell series: one row per point, the change at each."""
     from rich.table import Table
 
-    scale = "geo. mean" if t.scale == "log" else "mean"
+    mixed = len({p.scale for p in t.points if p.scale}) > 1   # one point per folder
+    scale = "geo. mean" if t.scale == "log" else "mean or geo. mean" if mixed else "mean"
     branches = {p.branch for p in t.points}
-    title = (f"{t.experiment} | {t.response} "
-             f"({'log scale' if t.scale == 'log' else 'original scale'}) | {t.label}")
+    said = "log scale" if t.scale == "log" else "mixed scales" if mixed else "original scale"
+    title = f"{t.experiment} | {t.response} ({said}) | {t.label}"
     if len(branches) == 1 and None not in branches:
         title += f" | branch {next(iter(branches))}"
     table = Table(title=title, title_justify="left")
@@ -158,7 +159,7 @@ def _trend_table(t: CellTrend):
     for i, p in enumerate(t.points):
         noise = "-"
         if math.isfinite(p.sd):
-            noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
+            noise = f"{p.sd * 100:.1f}%" if (p.scale or t.scale) == "log" else sc.fmt(p.sd)
         ci = "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high)
         row = [str(i + 1), p.commit[:10]]
         if with_time:
@@ -337,7 +338,7 @@ def _html_rows(t: CellTrend, notes: dict[int, str]) -> list[dict]:
     for i, p in enumerate(t.points):
         noise = "-"
         if math.isfinite(p.sd):
-            noise = f"{p.sd * 100:.1f}%" if t.scale == "log" else sc.fmt(p.sd)
+            noise = f"{p.sd * 100:.1f}%" if (p.scale or t.scale) == "log" else sc.fmt(p.sd)
         rows.append({"i": i + 1, "commit": p.commit[:12], "time": (p.commit_time or "")[:19],
                      "branch": p.branch or "", "n": p.n, "center": sc.fmt(p.center),
                      "ci": "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high),

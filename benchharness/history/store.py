@@ -161,7 +161,7 @@ def _record_id(identity: str, select) -> str:
 
 
 def add_results(db_path: str | Path, folder: str | Path, commit: str | None = None,
-                branch: str | None = None, responses=("wall_s",), cwd: str | Path | None = None,
+                branch: str | None = None, responses=None, cwd: str | Path | None = None,
                 conf_level: float = 0.95, select: dict | None = None) -> int:
     """Record a results folder in the history file; returns the number of cell rows written.
 
@@ -175,6 +175,9 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     those factors left out of the cells -- e.g. the candidate side of a folder
     that interleaved two builds, under the candidate's commit. Each selection
     of a folder is its own record.
+
+    ``responses`` default: ``wall_s`` and, when the experiment file names another
+    (``response: work_s``), that one too, so the figure its commands judge has a history.
     """
     from benchharness.history.cells import summarize_cells
     from benchharness.history.folder import read_folder
@@ -182,6 +185,11 @@ def add_results(db_path: str | Path, folder: str | Path, commit: str | None = No
     data = read_folder(folder)
     runs, factors = _selected(data, select)
     record = _record_id(data.identity, select)
+    if responses is None:
+        from benchharness.experiment.response import folder_response
+
+        declared = folder_response(data.path)
+        responses = ("wall_s",) + ((declared,) if declared not in (None, "wall_s") else ())
     summaries = []
     for response in responses:
         summaries.extend(enumerate(summarize_cells(runs, factors, response,

@@ -36,6 +36,7 @@ class Point:
     ci_low: float | None
     ci_high: float | None
     folders: tuple[str, ...]
+    scale: str | None = None  # a point's own scale when its cell mixes scales, else None
 
 
 @dataclass(frozen=True)
@@ -90,7 +91,7 @@ def _as_recorded(r) -> Point:
                  host=r["host_fingerprint"], n=int(r["n"]), mean=float(r["mean"]),
                  sd=math.nan if sd is None else sd, center=float(r["center"]),
                  ci_low=_num(r["ci_low"]), ci_high=_num(r["ci_high"]),
-                 folders=(r["folder_name"],))
+                 folders=(r["folder_name"],), scale=r["scale"])
 
 
 def build_trends(history, alpha: float = 0.05, conf_level: float = 0.95,
@@ -117,8 +118,11 @@ def _cell_trend(exp: str, resp: str, cell_json: str, rows: list[dict], alpha: fl
     scale = "log" if scales == {"log"} else "linear"
     note = ""
     if len(scales) > 1:
-        note = ("some folders had values <= 0, so this cell is shown on its own scale "
-                "and steps are not searched for")
+        # an analysis that chose the original scale for one folder (or values <= 0 in it)
+        # and the log scale for another: the points cannot be pooled or compared as ratios
+        note = ("its folders were summarised on different scales (log for some, the "
+                "original scale for others), so each folder is shown as recorded and steps "
+                "are not searched for")
     points = _cell_points(rows, scale, len(scales) > 1, conf_level)
     det = None
     if scale == "log" and len(scales) == 1:
@@ -205,6 +209,7 @@ def to_json_dict(trends: list[CellTrend]) -> dict:
                         "host_fingerprint": p.host, "n": p.n, "center": p.center,
                         "ci_low": p.ci_low, "ci_high": p.ci_high,
                         "noise_sd": None if not math.isfinite(p.sd) else p.sd,
+                        "scale": p.scale or t.scale,
                         "folders": list(p.folders)} for p in t.points],
             "steps": steps, "not_yet_confirmed": unconfirmed, "host_breaks": breaks,
         })
