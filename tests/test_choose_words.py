@@ -75,3 +75,24 @@ def test_left_out_counts_every_run_not_used_and_says_why(tmp_path):
             "codec=none, level=-, never successful), 3 of settings that could not be "
             "considered (codec=lzma, level=9, excluded with rows=large)") in text
     assert "cannot be the default across every workload" in text
+
+
+def test_a_loss_on_the_original_scale_is_written_like_the_table_three_figures(tmp_path,
+                                                                               main_cli):
+    """Planted: a response with values around zero (so the original scale), s=a best where
+    w=p and 0.3123456 ms behind s=b where w=q; s=b 0.4623 ms worse on average. The
+    sentences give those differences as the table does, with three significant figures
+    (docs/cli.md, "Numbers, units and verdict words"), never "0.3123 ms" beside "0.312 ms"."""
+    jitter = [-0.002, -0.001, 0.0, 0.001, 0.002, 0.0]
+    rows = ["s,w,delta_ms"] + [
+        f"{s},{w},{off + x:.7f}"
+        for s, offs in (("a", {"p": 0.0, "q": 0.3123456}), ("b", {"p": 1.234567, "q": 0.0}))
+        for w, off in offs.items() for x in jitter]
+    (tmp_path / "loss.csv").write_text("\n".join(rows) + "\n")
+    r = main_cli("choose", tmp_path / "loss.csv", "--factors", "s,w", "--workload", "w",
+                 "--response", "delta_ms")
+    assert r.returncode == 0, r.stderr
+    said = " ".join(r.stdout.split())
+    assert "Recommended default: s=a" in said
+    assert "never more than 0.312 ms worse than the best of a workload" in said
+    assert "by at most 0.462 ms" in said and "0.3123" not in said and "0.4623" not in said

@@ -794,7 +794,7 @@ def _loss_words(x: float, is_log: bool, unit: str = "") -> str:
     response's unit (`benchharness.numbers`)."""
     from benchharness.numbers import fmt_quantity
 
-    return _pct(float(np.exp(x))) if is_log else fmt_quantity(x, unit, digits=4)
+    return _pct(float(np.exp(x))) if is_log else fmt_quantity(x, unit)
 
 
 def _unit(response: str) -> str:
