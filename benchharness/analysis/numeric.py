@@ -61,6 +61,11 @@ def _fitted_trends(prep, cd, quantities: dict, names, levels: dict, alpha: float
         j = names.index(name)
         if len(np.unique(cd.codes[:, j])) < 2:
             continue
+        if tn.confounded_with_block(cd, j, q["values"]):
+            out.append({"factor": name, "source": q["source"], "skipped": (
+                "each block ran one level of it, so its trend cannot be told apart from "
+                "the differences between blocks")})
+            continue
         t = tn.trend_of(cd, j, name, levels[name], q["values"], names, sizes, alpha, sat,
                         importance)
         t["source"] = q["source"]

@@ -257,6 +257,25 @@ def slope_fits(cd: CellData, j: int, u_levels: np.ndarray, others: list[int]):
     return common, base, u
 
 
+def confounded_with_block(cd: CellData, j: int, values) -> bool:
+    """Whether factor ``j``'s trend is lost in the block: its score column is a combination
+    of the block's and the other factors' intercepts (e.g. each block ran one level of it,
+    as a gate's pairs do), but not of the other factors' intercepts alone. Least squares
+    would then split the factor's effect between the slope and the block columns in an
+    arbitrary way and give a slope with a narrow but meaningless interval."""
+    if cd.block is None:
+        return False
+    values = np.asarray(values, dtype=float)
+    scores = np.log(values) if np.all(values > 0) else values
+    u = scores[cd.codes[:, j]][:, None]
+    others = [i for i in range(cd.codes.shape[1]) if i != j]
+    plain = one_hot(group_ids(cd.codes, others))
+    base = base_columns(cd, others)
+    rank = np.linalg.matrix_rank
+    return bool(rank(np.hstack([base, u])) == rank(base)
+                and rank(np.hstack([plain, u])) > rank(plain))
+
+
 def trend_of(cd: CellData, j: int, name: str, labels, values, names, sizes, alpha: float,
              sat: Saturated, importance: dict) -> dict:
     """Everything the trend section says about numeric factor ``j``."""
