@@ -243,3 +243,16 @@ def test_every_demo_runs_from_another_directory(path, tmp_path, cli):
             cwd=tmp_path)
     assert r.returncode == 0, r.stderr
     assert {x["status"] for x in rows(tmp_path / "res")} <= {"ok", "warmup"}
+
+
+@pytest.mark.parametrize("levels,which", [("[a]", "the one cell"), ("[a, b]", "both cells")])
+def test_stopping_early_counts_the_cells_in_words(main_cli, tmp_path, levels, which):
+    """docs/cli.md: a count goes with its noun in the right number ("all 2 cells" and
+    "all 1 cells" were said before)."""
+    p = tmp_path / "dead.yaml"
+    p.write_text(f"experiment: dead\ncommand: [/nonexistent/tool, '{{k}}']\n"
+                 f"factors:\n  k: {levels}\nreplicates: 3\nseed: 1\n")
+    r = main_cli("run", p, "--out", tmp_path / "res", "--quiet", "--no-analysis",
+                 cwd=tmp_path)
+    assert r.returncode == 5, (r.stdout, r.stderr)
+    assert f"stopped early: the first runs of {which} failed the same way" in r.stderr

@@ -97,7 +97,9 @@ class FirstRunsWatch:
         self.active = False
         message = self.messages.most_common(1)[0][0] or (
             "timed out" if status == "timeout" else f"exit code {code}")
-        self.reason = (f"the first runs of all {len(self.cells)} cells failed the same way "
+        n = len(self.cells)
+        which = "the one cell" if n == 1 else "both cells" if n == 2 else f"all {n:,} cells"
+        self.reason = (f"the first runs of {which} failed the same way "
                        f"({self.runs} run{'s' if self.runs != 1 else ''}, none ok): "
                        f"{message[:300]}")
         return self.reason
