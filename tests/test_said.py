@@ -208,6 +208,33 @@ def test_a_factor_whose_ratios_cannot_be_estimated_still_matters_when_its_test_s
     assert headline(list(an.findings)).startswith("a matters")
 
 
+def test_an_interaction_on_the_original_scale_is_said_in_differences_not_alike_ratios():
+    # planted: lanczos takes 1.3x as long as box at every mp (one ratio), time grows with
+    # mp, and the noise is additive and small. On the original scale filter:mp is real in
+    # differences only (about +6 ms at mp=1, +28 ms at mp=8); it was said as "1.30× when
+    # mp=1; 1.30× when mp=8", which reads as no interaction at all.
+    rng = np.random.default_rng(5)
+    rows = [{"filter": f, "mp": str(mp), "wall_s": 0.02 * mp ** 0.75
+             * (1.3 if f == "lanczos" else 1.0) + rng.normal(0, 0.0003)}
+            for f in ("box", "lanczos") for mp in (1, 2, 4, 8) for _ in range(4)]
+    df = pd.DataFrame(rows)
+    an = analyze(df, factors=["filter", "mp"], transform="none")
+    inter = [f for f in an.findings if f["kind"] == "interaction"][0]
+    simple = [f for f in an.findings if f["kind"] == "simple effect"
+              and f["factor"] == "filter"]
+    means = df.groupby(["filter", "mp"])["wall_s"].mean()   # the cell means, by pandas
+    for f in simple:
+        mp = f["within"]["mp"]
+        assert f["difference"] == pytest.approx(means["lanczos", mp] - means["box", mp],
+                                                rel=1e-9)
+    diffs = [f["difference"] for f in sorted(simple, key=lambda f: int(f["within"]["mp"]))]
+    assert diffs == sorted(diffs) and diffs[-1] > 4 * diffs[0]
+    head = headline(list(an.findings))
+    assert head.startswith("filter and mp interact (filter=lanczos against filter=box: +")
+    assert " ms [" in head and "(1.30×) when mp=8" in head
+    assert "ms" in inter["statement"] and "(1.30×) when mp=1" in inter["statement"]
+
+
 def test_each_note_is_printed_once(capsys, tmp_path):
     from benchharness.cli import main
 

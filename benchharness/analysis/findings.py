@@ -341,6 +341,9 @@ def derive(d: dict) -> list[dict]:
     if ((d.get("model") or {}).get("no_variation") or {}).get("kind") == "constant":
         return _cautions(d)[:1]   # every run the same: that is the whole finding
     out = list((d.get("surface") or {}).get("findings") or [])   # analysis/surface.py
+    unit = (d.get("best") or {}).get("unit")
+    comps = [dict(c, response=d.get("response"), unit=unit) if "difference" in c else c
+             for c in comps]
     out += _interaction_findings(rows, factors, comps, refs, alpha, conf)
     out += _main_findings(_with_levels(rows, d), factors, out, comps, d.get("effects") or [],
                           refs, alpha, conf)
@@ -458,9 +461,7 @@ def _two_factor_findings(r, pf, aliased, alias_text, comps, refs, alpha, conf) -
             simple.append(_simple_finding(c, x, y, term_label(r), alpha))
         parts = []
         for lv, cs in by_level.items():
-            each = "; ".join(
-                f"{fmt_ratio(c['ratio'])} {fmt_interval(c['lower'], c['upper'])} "
-                f"when {y}={c['within'][y]}" for c in cs)
+            each = "; ".join(f"{_simple_size(c)} when {y}={c['within'][y]}" for c in cs)
             parts.append(f"{x}={lv} against {x}={cs[0]['b']}: {each}")
         adj = rowsx[0].get("adjust")
         clauses.append(" | ".join(parts) + (f" ({adjusted_words(adj)} within each level of "
@@ -553,6 +554,26 @@ def _p_text(r: dict) -> str:
     return f"{fmt_p(ph)} after Holm over the terms, {alone} alone"
 
 
+def _simple_size(c: dict) -> str:
+    """A simple effect's size in an interaction's statement: its ratio and interval, or,
+    on the original scale (where the interaction is one of differences, and a ratio can
+    be the same at every level while the differences grow), the difference with its
+    interval in the response's unit, and the ratio beside it."""
+    ratio = f"{fmt_ratio(c['ratio'])} {fmt_interval(c['lower'], c['upper'])}"
+    if "difference" not in c or c.get("difference") is None:
+        return ratio
+    resp, unit = c.get("response") or "", c.get("unit")
+
+    def val(x):
+        text = fmt_value(abs(x), resp, unit)
+        return text if x >= 0 else "-" + text
+
+    lo, hi = c.get("difference_lower"), c.get("difference_upper")
+    interval = (f" [{val(lo)} to {val(hi)}]" if lo is not None and hi is not None else "")
+    d = c["difference"]
+    return f"{'+' if d >= 0 else ''}{val(d)}{interval} ({fmt_ratio(c['ratio'])})"
+
+
 def _simple_finding(c, x, y, term, alpha) -> dict:
     lo, hi = c.get("lower"), c.get("upper")
     agrees = lo is not None and hi is not None and (lo > 1 or hi < 1)
@@ -561,9 +582,11 @@ def _simple_finding(c, x, y, term, alpha) -> dict:
     return {"kind": "simple effect", "terms": [term], "factors": [x, y], "significant": sig,
             "factor": x, "level": c["a"], "reference": c["b"], "within": dict(c["within"]),
             "ratio": c.get("ratio"), "lower": lo, "upper": hi, "p": c.get("p_adj"),
+            "difference": c.get("difference"),
             "adjusted": adjusted_words(c["adjust"]) if c.get("adjust") else None,
+            "size": _simple_size(c),
             "statement": (f"{x}={c['a']} against {x}={c['b']} when {y}={c['within'][y]}: "
-                          f"{fmt_ratio(c.get('ratio'))} {fmt_interval(lo, hi)} "
+                          f"{_simple_size(c)} "
                           f"({_adjusted_prefix(c)}{fmt_p(c.get('p_adj'))}, {words})")}
 
 

@@ -247,16 +247,22 @@ def _interaction_clause(inter: dict, found: list[dict], fr, fi, most: int = 4) -
     for f in rows:
         by_level.setdefault(f["level"], []).append(f)
 
+    # On the original scale the interaction is one of differences (the ratios may all be
+    # alike): the level whose difference changes most, each said by its difference.
+    additive = all(f.get("difference") is not None for f in rows)
+    size = (lambda f: f["difference"]) if additive else (lambda f: _m.log(f["ratio"]))
+
     def spread(fs):
-        logs = [_m.log(f["ratio"]) for f in fs if f["ratio"] > 0]
-        return max(logs) - min(logs) if logs else 0.0
+        vals = [size(f) for f in fs if additive or f["ratio"] > 0]
+        return max(vals) - min(vals) if vals else 0.0
 
     level, fs = max(by_level.items(), key=lambda kv: spread(kv[1]))
     if len(fs) > most:    # the two extremes, still in the partner's level order
-        lo, hi = min(fs, key=lambda f: f["ratio"]), max(fs, key=lambda f: f["ratio"])
+        lo, hi = min(fs, key=size), max(fs, key=size)
         fs = [f for f in fs if f is lo or f is hi]
-    each = "; ".join(f"{fr(f['ratio'])} {fi(f.get('lower'), f.get('upper'))} when "
-                     f"{y}={f['within'][y]}" for f in fs)
+    each = "; ".join((f["size"] if additive and f.get("size") else
+                      f"{fr(f['ratio'])} {fi(f.get('lower'), f.get('upper'))}")
+                     + f" when {y}={f['within'][y]}" for f in fs)
     adj = f"; {fs[0]['adjusted']}" if fs[0].get("adjusted") else ""
     return f"{x}={level} against {x}={fs[0]['reference']}: {each}{adj}"
 
