@@ -235,6 +235,20 @@ def test_an_interaction_on_the_original_scale_is_said_in_differences_not_alike_r
     assert "ms" in inter["statement"] and "(1.30×) when mp=1" in inter["statement"]
 
 
+def test_a_factor_confounded_with_the_blocks_gets_a_short_reason_in_the_headline():
+    # planted: mp is run in blocks of its own (as a gate folder's workload is), so it
+    # cannot be tested; the headline names why in a few words and the finding says the rest
+    rng = np.random.default_rng(3)
+    rows = [{"a": a, "mp": mp, "block": mp, "wall_s": 0.01 * (1.3 if a == "y" else 1.0)
+             * float(mp) * math.exp(rng.normal(0, 0.05))}
+            for a in "xy" for mp in ("1", "2") for _ in range(5)]
+    an = analyze(pd.DataFrame(rows), factors=["a", "mp"], block="block")
+    head = headline(list(an.findings))
+    assert head.endswith("mp (completely confounded with block) could not be tested.")
+    (mp,) = [f for f in an.findings if f["kind"] == "main" and f["factors"] == ["mp"]]
+    assert "left out of the model" in mp["statement"]
+
+
 def test_each_note_is_printed_once(capsys, tmp_path):
     from benchharness.cli import main
 

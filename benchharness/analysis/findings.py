@@ -406,7 +406,11 @@ def untested_why(r: dict) -> tuple[str, str]:
         return ("every run in a cell gave the same value, so there is no run-to-run "
                 "variation to judge it against", "no run-to-run variation")
     note = str(r.get("note") or "no error estimate")
-    return note, note
+    # the headline's part: the note's first clause ("completely confounded with block"),
+    # the rest ("left out of the model, ...") stays in the finding
+    short = note.split(";")[0].strip()
+    short = short[len("inestimable: "):] if short.startswith("inestimable: ") else short
+    return note, short or note
 
 
 def numeric_findings(d: dict) -> list[dict]:
