@@ -182,6 +182,18 @@ def test_repeats_without_any_variation_give_exponents_as_measured_and_no_test():
     assert sorted(round(v, 9) for v in by.values()) == [0.5, 1.0]
 
 
+def test_a_factor_with_one_level_left_is_not_said_to_be_averaged_over():
+    # planted: n^0.9 with codec at one level only (a filtered table): the slope is not an
+    # average over codec, so the words do not say so
+    rng = np.random.default_rng(2)
+    rows = [{"codec": "zlib", "n": str(n), "wall_s": 0.001 * n ** 0.9
+             * np.exp(rng.normal(0, 0.03))} for n in (10, 100, 1000) for _ in range(4)]
+    an = analyze(pd.DataFrame(rows), factors=["codec", "n"])
+    (f,) = [f for f in an.findings if f["kind"] == "trend"]
+    assert f["statement"].startswith("wall_s grows as n^0.9")
+    assert "averaged over" not in f["statement"]
+
+
 def test_labels_that_are_not_all_numbers_get_no_trend():
     df = _frame().assign(n=lambda d: d["n"].replace({"1000": "small"}))
     an = analyze(df, factors=["threads", "n"])

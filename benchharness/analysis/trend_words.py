@@ -64,7 +64,9 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
     else:
         short = f"{response} shows no detectable trend over {name} ({power_text(name, slope)})"
     text = short + f" ({conf} interval of the log-log slope"
-    over = [b["factor"] for b in t.get("by") or []]
+    # averaged over the other factors that have more than one level here (one with a
+    # single level left, e.g. a filtered table, is not averaged over)
+    over = [b["factor"] for b in t.get("by") or [] if len(b.get("slopes") or []) > 1]
     text += (", averaged over " + ", ".join(over) + ")") if over else ")"
     differ = [b for b in t.get("by") or [] if b.get("differ")]
     lof = t.get("lack_of_fit")
