@@ -239,6 +239,13 @@ def test_steady_command_reports_advice(tmp_path, main_cli):
         assert cell["advice"]["executions"] >= 2
     text = main_cli("steady", out.folder, "--target", "5%")
     assert text.returncode == 0 and "advice:" in text.stdout and "±5.0%" in text.stdout
+    # the iteration time and its two spreads in one unit (the mean's): "0 ms", never "0 s"
+    # beside "1.00 ms"
+    import re
+    for line in text.stdout.splitlines():
+        if line.strip().startswith("steady iteration time"):
+            units = re.findall(r"\d (s|ms|µs|ns)\b", line)
+            assert len(units) == 3 and len(set(units)) == 1, line
     bad = main_cli("steady", out.folder, "--target", "lots")
     assert bad.returncode == 2 and "--target" in bad.stderr
 

@@ -80,9 +80,12 @@ def main(args) -> int:
         mean = comp["mean_s"] or float("nan")
         sd_runs = comp["between_execution_var_s2"] ** 0.5
         sd_iter = comp["within_execution_var_s2"] ** 0.5
-        print(f"  steady iteration time {_fmt_s(comp['mean_s'])}; spread between runs "
-              f"{_fmt_s(sd_runs)} ({sd_runs / mean:.0%}), between iterations "
-              f"{_fmt_s(sd_iter)} ({sd_iter / mean:.0%}) "
+        from benchharness.numbers import pick_scale
+
+        one = pick_scale("s", [comp["mean_s"]] if comp["mean_s"] else [])  # one unit: the mean's
+        print(f"  steady iteration time {one.fmt(comp['mean_s'])}; spread between runs "
+              f"{one.fmt(sd_runs)} ({sd_runs / mean:.0%}), between iterations "
+              f"{one.fmt(sd_iter)} ({sd_iter / mean:.0%}) "
               f"(from {plural(comp['executions'], 'run')} × "
               f"{plural(comp['iterations'], 'steady iteration')})")
         print(f"  a run costs {_fmt_s(c['cost_execution_s'])} before its steady iterations, "
