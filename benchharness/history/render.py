@@ -135,16 +135,12 @@ def _trend_table(t: CellTrend):
     from rich.table import Table
 
     mixed = len({p.scale for p in t.points if p.scale}) > 1   # one point per folder
-    scale = "geo. mean" if t.scale == "log" else "mean or geo. mean" if mixed else "mean"
     branches = {p.branch for p in t.points}
-    said = "log scale" if t.scale == "log" else "mixed scales" if mixed else "original scale"
-    title = f"{t.experiment} | {t.response} ({said}) | {t.label}"
-    if len(branches) == 1 and None not in branches:
-        title += f" | branch {next(iter(branches))}"
-    table = Table(title=title, title_justify="left")
-    cols = [("#", "right"), ("commit", "left")]
+    table = Table(title=_trend_title(t, mixed, branches), title_justify="left")
     with_time = any(p.commit_time for p in t.points)
     with_branch = len(branches) > 1
+    scale = "geo. mean" if t.scale == "log" else "mean or geo. mean" if mixed else "mean"
+    cols = [("#", "right"), ("commit", "left")]
     if with_time:
         cols.append(("date", "left"))
     if with_branch:
@@ -157,18 +153,33 @@ def _trend_table(t: CellTrend):
     notes = point_notes(t)
     sc = _scale(t)
     for i, p in enumerate(t.points):
-        noise = "-"
-        if math.isfinite(p.sd):
-            noise = f"{p.sd * 100:.1f}%" if (p.scale or t.scale) == "log" else sc.fmt(p.sd)
-        ci = "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high)
         row = [str(i + 1), p.commit[:10]]
         if with_time:
             row.append((p.commit_time or "")[:10])
         if with_branch:
             row.append(p.branch or "")
-        row += [str(p.n), sc.fmt(p.center), ci, noise, notes.get(i, "")]
+        row += [str(p.n), sc.fmt(p.center), *_point_spread(t, p, sc), notes.get(i, "")]
         table.add_row(*row)
     return table
+
+
+def _trend_title(t: CellTrend, mixed: bool, branches: set) -> str:
+    """A cell table's title: experiment, response and its scale, cell, and the one branch."""
+    said = "log scale" if t.scale == "log" else "mixed scales" if mixed else "original scale"
+    title = f"{t.experiment} | {t.response} ({said}) | {t.label}"
+    if len(branches) == 1 and None not in branches:
+        title += f" | branch {next(iter(branches))}"
+    return title
+
+
+def _point_spread(t: CellTrend, p, sc) -> tuple[str, str]:
+    """A point's interval and noise cells; its noise in its own scale's terms (a percentage
+    on the log scale)."""
+    noise = "-"
+    if math.isfinite(p.sd):
+        noise = f"{p.sd * 100:.1f}%" if (p.scale or t.scale) == "log" else sc.fmt(p.sd)
+    ci = "-" if p.ci_low is None else sc.interval(p.ci_low, p.ci_high)
+    return ci, noise
 
 
 def _false_step(alpha: float) -> str:
