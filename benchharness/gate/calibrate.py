@@ -195,8 +195,6 @@ def gate_rule_outcomes(mu, se, settings, shift: float = 0.0):
     ``(verdicts, stopped_at)``: arrays of "regression", "pass" or
     "inconclusive" and of the block count at the decision.
     """
-    import copy
-
     import numpy as np
 
     from benchharness.gate import decide
@@ -219,9 +217,7 @@ def gate_rule_outcomes(mu, se, settings, shift: float = 0.0):
                 final = n >= settings.max_runs or n >= horizon
                 by_horizon.setdefault((horizon, final), []).append(i)
             for (horizon, final), members in by_horizon.items():
-                record = copy.copy(tracker)
-                record.alive = None if tracker.alive is None else tracker.alive.copy()
-                record.looks = list(tracker.looks)
+                record = tracker.fork()
                 ct = record.boundary(n, horizon, final)
                 rest = []
                 for i in members:

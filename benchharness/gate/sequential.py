@@ -387,6 +387,17 @@ class SpendingTracker:
     def spent(self) -> float:
         return self.spent_count / self.paths
 
+    def fork(self) -> "SpendingTracker":
+        """A copy that goes on spending on its own from here (its own record of the looks
+        and of the paths still alive), as a path whose horizon parts from the others'
+        needs (`benchharness.gate.calibrate.gate_rule_outcomes`)."""
+        import copy
+
+        twin = copy.copy(self)
+        twin.alive = None if self.alive is None else self.alive.copy()
+        twin.looks = list(self.looks)
+        return twin
+
     def _column(self, n: int):
         import numpy as np
 
