@@ -69,7 +69,9 @@ class FirstRunsWatch:
     def cells(self) -> set:
         """The cells still to run when the watch began, as sorted ``(factor, level)`` tuples."""
         if self._cells is None:
-            self._cells = {tuple(sorted(c.items())) for c in _distinct(self._cells_of)}
+            from benchharness.execute.engine import distinct_levels
+
+            self._cells = {tuple(sorted(c.items())) for c in distinct_levels(self._cells_of)}
             self._cells_of = ()
         return self._cells
 
@@ -103,11 +105,6 @@ class FirstRunsWatch:
                        f"({self.runs} run{'s' if self.runs != 1 else ''}, none ok): "
                        f"{message[:300]}")
         return self.reason
-
-
-def _distinct(dicts: Iterable[Mapping]) -> list:
-    """Each mapping once by identity (a plan shares one levels dict among a cell's runs)."""
-    return list({id(d): d for d in dicts}.values())
 
 
 def _relative_paths(argv: Iterable[str]) -> list[str]:
