@@ -349,3 +349,17 @@ def test_the_bounding_critical_values_are_never_below_the_exact_ones():
     even = np.full(8, 0.2)
     assert np.allclose(bounding_critical_values(even, 30, 0.975),
                        critical_values(even, 30, 0.975), rtol=0, atol=1e-12)
+
+
+def test_a_caution_names_its_check_and_does_not_assert_what_the_test_did_not_confirm():
+    # planted: +10% per 100 runs hidden in large noise over 40 runs: the drift cannot be
+    # ruled out but is not shown, so its caution must not be headed "Responses drift"
+    rng = np.random.default_rng(1)
+    n = 40
+    pos = np.arange(n)
+    d = pd.DataFrame({"a": np.tile(["x", "y"], n // 2), "position": pos,
+                      "wall_s": np.exp(0.001 * pos + 0.4 * rng.standard_normal(n))})
+    an = analyze(d, factors=["a"], transform="log")
+    (c,) = [f for f in an.findings if f.get("check") == "drift"]
+    assert c["statement"].startswith("Drift over the run order: a drift beyond ±5% per 100 "
+                                     "runs cannot be ruled out")

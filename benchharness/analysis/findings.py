@@ -872,13 +872,25 @@ def _fit_cautions(d: dict) -> list[dict]:
     return out
 
 
+#: each diagnostic check's name, the same in a caution and in the reports' tables: a neutral
+#: name, since a caution can be a departure the test does not confirm
+DIAGNOSTIC_TITLES = {
+    "normality": "Normality of residuals",
+    "equal_variance": "Equal spread across cells",
+    "drift": "Drift over the run order",
+    "outliers": "Outlying runs",
+    "runs_test": "Order of residual signs",
+    "small_cells": "Cells with too few runs",
+    "hosts": "Differences between hosts",
+    "load": "Machine load and residuals",
+}
+
+
 def _check_cautions(d: dict) -> list[dict]:
     out = []
     dg = d.get("diagnostics") or {}
-    names = {"normality": "Residuals are not normal", "equal_variance":
-             "Cells differ in spread", "drift": "Responses drift over the run order",
-             "load": "Responses follow the machine's load"}
-    for key, words in names.items():
+    for key in ("normality", "equal_variance", "drift", "load"):
+        words = DIAGNOSTIC_TITLES[key]
         item = dg.get(key)
         if isinstance(item, dict) and item.get("ok") is False:
             out.append(_caution(key, f"{words}: {item.get('verdict')}", p=item.get("p")))

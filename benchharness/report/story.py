@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from benchharness.analysis.findings import TIE_WORDS
+from benchharness.analysis.findings import DIAGNOSTIC_TITLES, TIE_WORDS
 from benchharness.report.data import ReportData, finite
 from benchharness.report.units import (
     describe, fmt_num, fmt_p, fmt_ratio, fmt_ratio_interval, fmt_value, plural, unit_of,
@@ -368,18 +368,6 @@ def _and(items) -> str:
     return ", ".join(items[:-1]) + " and " + items[-1]
 
 
-_DIAGNOSTIC_TITLES = {
-    "normality": "Normality of residuals",
-    "equal_variance": "Equal spread across cells",
-    "drift": "Drift over the run order",
-    "outliers": "Outlying runs",
-    "runs_test": "Order of residual signs",
-    "small_cells": "Cells with too few runs",
-    "hosts": "Differences between hosts",
-    "load": "Machine load and residuals",
-}
-
-
 def _outlier_check(diag: dict) -> dict:
     """The outlier check's count, cut-off and verdict, from either layout."""
     check = diag.get("outlier_check") if isinstance(diag.get("outlier_check"), dict) else {}
@@ -400,7 +388,7 @@ def _outliers_item(key, val, check: dict) -> dict:
         verdict = f"{verdict}: {listed}" if verdict else listed
     cut = check.get("cutoff")
     return {
-        "key": key, "name": _DIAGNOSTIC_TITLES[key], "test": "externally studentized residuals, "
+        "key": key, "name": DIAGNOSTIC_TITLES[key], "test": "externally studentized residuals, "
         "Bonferroni cut-off" + (f" ±{fmt_num(cut)}" if finite(cut) else ""),
         "statistic": None, "stat_text": "", "p": None, "verdict": verdict,
         "concern": n > 0,
@@ -412,7 +400,7 @@ def _small_cells_item(key, val, factors) -> dict:
     text = "; ".join(
         f"{cell_label(c.get('levels') or {}, factors)}: {c.get('problem', '')}"
         f" (n={c.get('n')})" for c in val[:8]) + (" …" if len(val) > 8 else "")
-    return {"key": key, "name": _DIAGNOSTIC_TITLES[key], "test": "", "statistic": None,
+    return {"key": key, "name": DIAGNOSTIC_TITLES[key], "test": "", "statistic": None,
             "stat_text": "", "p": None, "verdict": text, "concern": True}
 
 
@@ -434,7 +422,7 @@ def _test_item(key, val: dict, alpha: float) -> dict:
         elif finite(val.get("slope_per_100_runs")):
             stat_text = f"slope {fmt_num(val['slope_per_100_runs'])} per 100 runs"
     return {
-        "key": key, "name": _DIAGNOSTIC_TITLES.get(key, key.replace("_", " ")),
+        "key": key, "name": DIAGNOSTIC_TITLES.get(key, key.replace("_", " ")),
         "test": val.get("test") or ("slope of residuals on run position"
                                     if key == "drift" else ""),
         "statistic": stat, "stat_text": stat_text, "p": p,
