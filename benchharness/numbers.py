@@ -12,7 +12,8 @@ ratio, an interval or a time reads the same wherever it appears (docs/cli.md,
   are within a factor of ten of each other, else each has three significant figures
   (`fmt_ratio_interval`, `fmt_interval`);
 * a change: ``+3.4%`` / ``-12.0%`` (`fmt_change`), a share ``42.0%`` (`fmt_pct`);
-* a p-value: ``0.012`` or ``< 0.001`` (`fmt_p`);
+* a p-value: ``0.012`` or ``< 0.001`` (`fmt_p`), in a sentence ``p = 0.012``,
+  ``p < 0.001`` (`fmt_p_said`);
 * a quantity always with its unit; a time in seconds is shown in s, ms, µs or ns and
   a memory size in bytes, KiB, MiB or GiB, chosen once per table column from the
   column's values (`pick_scale`), so a column never mixes µs and ms;
@@ -157,6 +158,14 @@ def fmt_p(p) -> str:
     if v < 0.001:
         return "< 0.001"
     return f"{v:.3f}"
+
+
+def fmt_p_said(p) -> str:
+    """A p-value in a sentence: ``p = 0.013``, ``p < 0.001``, ``p –`` when there is none."""
+    if p is None:
+        return f"p {MISSING}"
+    text = fmt_p(p)
+    return f"p {text}" if text.startswith("<") else f"p = {text}"
 
 
 # --------------------------------------------------------------------------- units

@@ -383,10 +383,9 @@ def _pct_conf(alpha: float) -> str:
 
 def _p(p: float) -> str:
     """A p-value in a sentence: ``p = 0.078``, ``p < 0.001`` (``numbers.fmt_p``)."""
-    from benchharness.numbers import fmt_p
+    from benchharness.numbers import fmt_p_said
 
-    text = fmt_p(p)
-    return f"p {text}" if text.startswith("<") else f"p = {text}"
+    return fmt_p_said(p)
 
 
 def _size(x: float, mild: float, large: float) -> str:

@@ -71,10 +71,7 @@ def fmt_p(p) -> str:
     """A p-value in a sentence, written as every output writes one (``numbers.fmt_p``):
     ``p = 0.013``, ``p < 0.001``. Never rounded to two figures, which could print a p
     above the threshold as the threshold itself (0.0112 as ``0.01`` at 99% confidence)."""
-    if p is None:
-        return "p –"
-    text = _numbers.fmt_p(p)
-    return f"p {text}" if text.startswith("<") else f"p = {text}"
+    return _numbers.fmt_p_said(p)
 
 
 #: name suffixes of time responses and their size in seconds (a ``_per_s`` rate is not a time)

@@ -514,14 +514,10 @@ def _p_stated(r: dict) -> str:
 
 
 def fmt_p(p) -> str:
-    """A p-value in a sentence as `findings.fmt_p` writes it (``p = 0.013``, ``p < 0.001``);
-    here, not imported from findings, which imports this module (no import circle)."""
-    from benchharness.numbers import fmt_p as _fmt
+    """A p-value in a sentence (``p = 0.013``, ``p < 0.001``: `numbers.fmt_p_said`)."""
+    from benchharness.numbers import fmt_p_said
 
-    if p is None:
-        return "p –"
-    text = _fmt(p)
-    return f"p {text}" if text.startswith("<") else f"p = {text}"
+    return fmt_p_said(p)
 
 
 def _within_detail(f: str, ratios) -> str:

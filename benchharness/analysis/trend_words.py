@@ -23,6 +23,7 @@ from __future__ import annotations
 import math
 
 from benchharness import numbers as _numbers
+from benchharness.numbers import fmt_p_said
 
 
 def fmt_exponent(b) -> str:
@@ -37,11 +38,6 @@ def power_text(name: str, slope: dict) -> str:
     lo, hi = slope.get("lower"), slope.get("upper")
     ci = f" [{fmt_exponent(lo)} to {fmt_exponent(hi)}]" if lo is not None else ""
     return f"{name}^{fmt_exponent(slope['estimate'])}{ci}"
-
-
-def _p_text(p) -> str:
-    text = _numbers.fmt_p(p)
-    return f"p {text}" if text.startswith("<") else f"p = {text}"
 
 
 def _excludes_zero(s: dict) -> bool:
@@ -76,7 +72,7 @@ def trend_finding(t: dict, response: str, conf: str) -> dict | None:
     for b in differ:
         per = "; ".join(f"{power_text(name, s)} at {b['factor']}={s['level']}"
                         for s in b["slopes"])
-        text += (f"; the exponent differs with {b['factor']} ({_p_text(b['test']['p'])}): "
+        text += (f"; the exponent differs with {b['factor']} ({fmt_p_said(b['test']['p'])}): "
                  + per)
     text += _shape_text(t, lof, bends, alpha)
     return {"kind": "trend", "terms": [name], "factors": [name], "significant": sig,
@@ -109,18 +105,18 @@ def _shape_text(t: dict, lof: dict | None, bends: bool, alpha: float) -> str:
     fit against pure error), and for a parallel factor whether a serial part explains a bend."""
     if bends and t.get("scaling") and _amdahl_fits(t["scaling"], alpha):
         return (f"; the points bend away from a straight line on log-log axes (lack of fit "
-                f"{_p_text(lof['p'])}), as they do when part of the work is serial: see the "
+                f"{fmt_p_said(lof['p'])}), as they do when part of the work is serial: see the "
                 "speed-up and the serial fraction")
     if bends and t.get("scaling"):
         return (f"; the points bend away from a straight line on log-log axes (lack of fit "
-                f"{_p_text(lof['p'])}), and not only as a serial part of the work would bend "
+                f"{fmt_p_said(lof['p'])}), and not only as a serial part of the work would bend "
                 "them (Amdahl's law does not fit either): see the speed-up of each level")
     if bends:
         return (f"; the points do not lie on a straight line on log-log axes (lack of fit "
-                f"{_p_text(lof['p'])}), so the exponent is an average over the levels "
+                f"{fmt_p_said(lof['p'])}), so the exponent is an average over the levels "
                 f"tested, not a law to extrapolate")
     if lof:
-        return f"; a power law fits these levels (lack of fit {_p_text(lof['p'])})"
+        return f"; a power law fits these levels (lack of fit {fmt_p_said(lof['p'])})"
     if len(t.get("levels") or []) <= 2:
         return "; with two levels the shape between them cannot be checked"
     return ("; whether a power law fits cannot be checked without repeated runs of a "
@@ -151,7 +147,7 @@ def _short_caveats(short: str, name: str, differ: list[dict], bends: bool, lof) 
     the extreme levels' exponents are given (the strongest difference first)."""
     if bends:
         short += (f" on average over the levels tested (not a power law: lack of fit "
-                  f"{_p_text(lof['p'])})")
+                  f"{fmt_p_said(lof['p'])})")
     if differ:
         first = min(differ, key=lambda b: b["test"]["p"])
         lo = min(first["slopes"], key=lambda s: s["estimate"])
@@ -218,7 +214,7 @@ def scaling_finding(t: dict, conf: str, depends: dict | None = None) -> dict | N
                          f"{fr(sf['max_speedup'])} as fast")
         else:
             text += (f"; Amdahl's law does not describe these timings (lack of fit "
-                     f"{_p_text(lof['p'])}): its serial fraction {s_text} is only a summary")
+                     f"{fmt_p_said(lof['p'])}): its serial fraction {s_text} is only a summary")
     per = ((sc.get("by") or {}).get("serial_fractions")) or []
     if len(per) > 1 and sf.get("estimate") is not None:
         by = sc["by"]["factor"]
@@ -325,7 +321,7 @@ def _depends_short(name: str, base: str, top: dict, dep: dict) -> str:
     avg = f"{fr(top['speedup'])} on average over {y}"
     if not per:
         return (f"the speed-up of {name}={top['level']} over {base} depends on {y} "
-                f"({dep['term']}, {_p_text(dep['p'])}; {avg})")
+                f"({dep['term']}, {fmt_p_said(dep['p'])}; {avg})")
     lo = min(per, key=lambda s: s["speedup"])
     hi = max(per, key=lambda s: s["speedup"])
 
@@ -340,7 +336,7 @@ def _depends_short(name: str, base: str, top: dict, dep: dict) -> str:
 def _depends_text(name: str, top: dict, dep: dict) -> str:
     """The statement's clause on a speed-up that differs with another factor: each level's."""
     y = dep["factor"]
-    head = (f"the speed-up differs with {y} ({dep['term']}, {_p_text(dep['p'])}), so the "
+    head = (f"the speed-up differs with {y} ({dep['term']}, {fmt_p_said(dep['p'])}), so the "
             f"{_numbers.fmt_ratio(top['speedup'])} above is an average over its levels, not the "
             "speed-up at each")
     if not dep["per_level"]:
