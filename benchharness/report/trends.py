@@ -189,14 +189,15 @@ def _fitted_line(ax, trend: dict, xs, ms) -> None:
     with the common serial fraction for a parallel factor, else the common power law."""
     import numpy as np
 
+    from benchharness.analysis.scaling import amdahl_shape
+
     lx, ly = np.log(xs), np.log(ms)
     grid = np.linspace(lx.min(), lx.max(), 40)
     s = ((trend.get("scaling") or {}).get("serial_fraction") or {}).get("estimate")
     sign = -1.0 if (trend.get("scaling") or {}).get("better") == "higher" else 1.0
     if _ok(s):
-        def shape(x):
-            return sign * np.log(s + (1.0 - s) / x)
-        fit = (ly - shape(np.exp(lx))).mean() + shape(np.exp(grid))
+        fit = ((ly - sign * amdahl_shape(s, np.exp(lx))).mean()
+               + sign * amdahl_shape(s, np.exp(grid)))
     else:
         b = (trend.get("slope") or {}).get("estimate")
         if not _ok(b) or len(xs) < 2:
