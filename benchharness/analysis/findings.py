@@ -39,7 +39,7 @@ import math
 import re
 
 from benchharness import numbers as _numbers
-from benchharness.analysis.trend_words import adjusted_words
+from benchharness.analysis.trend_words import adjusted_words, findings as numeric_findings
 
 KINDS = ("surface", "interaction", "simple effect", "main", "trend", "scaling", "best",
          "caution")
@@ -348,7 +348,7 @@ def derive(d: dict) -> list[dict]:
         from benchharness.analysis.incomplete import findings as nested_findings
 
         out += nested_findings(d)
-    out += numeric_findings(d)
+    out += numeric_findings(d)      # trends over numeric factors, parallel scaling
     best = d.get("best")
     if best and best.get("cells"):
         out.append(_not_adjusted_over_terms(_best_with_unrun(best, conf), out))
@@ -408,13 +408,6 @@ def untested_why(r: dict) -> tuple[str, str]:
     short = note.split(";")[0].strip()
     short = short[len("inestimable: "):] if short.startswith("inestimable: ") else short
     return note, short or note
-
-
-def numeric_findings(d: dict) -> list[dict]:
-    """Trends over numeric factors and parallel scaling (`trend_words`)."""
-    from benchharness.analysis.trend_words import findings
-
-    return findings(d)
 
 
 def _significant_row(r, alpha) -> bool:
