@@ -924,10 +924,11 @@ def _missing_cells_caution(d: dict, c: dict, expected: int) -> dict:
     more = f" and {n - TIED_NAMED} more" if n > TIED_NAMED else ""
     text += (f" ({named}{more}): {'a combination' if n == 1 else 'combinations'} of the full "
              "factorial with no runs")
-    said = estimability_statements(term_states(d.get("anova") or []))
+    states = term_states(d.get("anova") or [])
+    said = estimability_statements(states)
     if said:
         text += "; " + "; ".join(said)
-        if any(t["estimable"] == "none" for t in term_states(d.get("anova") or [])):
+        if any(t["estimable"] == "none" for t in states):
             text += (" (left out of the model: an effect it has, if any, is counted in the "
                      "terms it overlaps)")
     return _caution("missing_cells", text, covers=["cells have no ok runs",
