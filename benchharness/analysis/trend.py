@@ -211,13 +211,10 @@ def saturated(cd: CellData) -> Saturated:
         fit = LinFit(coef=coef, cov=np.diag(inv_n), rss=cd.ss_within, df=cd.N - len(first))
         return Saturated(fit=fit, groups=groups, cell_codes=cd.codes[first],
                          block_mean=np.zeros(0))
-    X = one_hot(groups)
-    bm = np.zeros(0)
-    if cd.block is not None:
-        B = one_hot(cd.block)[:, 1:]
-        X = np.hstack([X, B])
-        bm = np.full(B.shape[1], 1.0 / (B.shape[1] + 1))
-    return Saturated(fit=wls(X, cd), groups=groups, cell_codes=cd.codes[first], block_mean=bm)
+    B = one_hot(cd.block)[:, 1:]
+    bm = np.full(B.shape[1], 1.0 / (B.shape[1] + 1))
+    return Saturated(fit=wls(np.hstack([one_hot(groups), B]), cd), groups=groups,
+                     cell_codes=cd.codes[first], block_mean=bm)
 
 
 def marginal(sat: Saturated, fixed: dict):
