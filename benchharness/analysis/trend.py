@@ -298,8 +298,9 @@ def trend_of(cd: CellData, j: int, name: str, labels, values, names, sizes, alph
         out["slope_on_log_scale"] = slope   # log y per unit of the factor
     out["by"] = [slope_by(cd, j, g, u, base, common, names, alpha, untested) for g in others]
     out["lack_of_fit"] = lack_of_fit(cd, u, base, others, sat, k)
+    full = complete(cd, sizes)
     out["contrasts"] = (polynomial_contrasts(sat, j, scores, alpha)
-                        if complete(cd, sizes) and sat.fit.df > 0 else [])
+                        if full and sat.fit.df > 0 else [])
     # the figure's lines: by the factor the exponent differs with most, where one does (so
     # the figure shows what the finding says), else by the most important other factor
     differ = [b for b in out["by"] if b["differ"]]
@@ -308,7 +309,7 @@ def trend_of(cd: CellData, j: int, name: str, labels, values, names, sizes, alph
     out["line_by"] = names[line_by] if line_by is not None else None
     out["line_by_reason"] = ("exponent differs" if differ else
                              "largest effect" if line_by is not None else None)
-    out["points"] = points(sat, j, line_by, names, sizes, alpha) if complete(cd, sizes) else []
+    out["points"] = points(sat, j, line_by, names, sizes, alpha) if full else []
     return out
 
 
