@@ -51,9 +51,9 @@ def main(args) -> int:
 
         d = plan.to_json_dict()
         d["roles"] = factor_roles(exp).to_dict()
-        from benchharness.experiment.quantities import json_dict
+        from benchharness.experiment.quantities import numeric_factors
 
-        d["numeric"] = json_dict(exp)
+        d["numeric"] = numeric_factors(exp)   # factor -> {values, parallel, source}
         d.update(timing)
         emit_json(args, json.dumps(d, indent=1))
         if wants_json_only(args):

@@ -71,8 +71,7 @@ VERSION_WORDS = frozenset({"version", "ver", "release", "python", "py", "gcc", "
 def version_like(name: str, labels) -> bool:
     """Numbers that read as versions: a name like ``python_version``, or labels written
     like ``3.10`` or ``010`` (a trailing or leading zero a quantity would not carry)."""
-    words = [w for w in re.split(r"[^a-z0-9]+", str(name).lower()) if w]
-    if any(w in VERSION_WORDS for w in words):
+    if not VERSION_WORDS.isdisjoint(_name_words(name)):
         return True
     for label in labels:
         text = str(label).strip().lstrip("+-")
@@ -85,8 +84,12 @@ def version_like(name: str, labels) -> bool:
 
 def parallel_name(name: str) -> bool:
     """Whether a factor's name reads as a parallelism setting (``threads``, ``n_workers``)."""
-    words = [w for w in re.split(r"[^a-z0-9]+", str(name).lower()) if w]
-    return any(w in PARALLEL_WORDS for w in words)
+    return not PARALLEL_WORDS.isdisjoint(_name_words(name))
+
+
+def _name_words(name: str) -> list[str]:
+    """A factor name's words, lower case: ``n_workers`` -> ``["n", "workers"]``."""
+    return [w for w in re.split(r"[^a-z0-9]+", str(name).lower()) if w]
 
 
 def declared_numeric(experiment) -> dict[str, str]:
@@ -186,7 +189,6 @@ def numeric_factors(experiment=None, names=(), levels=None) -> dict[str, dict]:
     return out
 
 
-
 def plan_lines(experiment) -> list[str]:
     """What `plan` says about the quantities: which factors get a trend, which scaling."""
     from benchharness.experiment.roles import is_response_surface
@@ -212,8 +214,3 @@ def plan_lines(experiment) -> list[str]:
     if labels:
         line += f"; analysed as labels only: {', '.join(labels)}"
     return [line]
-
-
-def json_dict(experiment) -> dict:
-    """`plan --json`'s ``numeric``: factor -> {values, parallel, source}."""
-    return numeric_factors(experiment)
