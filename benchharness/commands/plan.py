@@ -184,13 +184,13 @@ def format_plan(exp, plan, show: int = 12) -> str:
 def _per_cell(plan, replicates: int) -> str:
     """"2 per cell", and for a cell the design lists several times in each replicate (a
     response surface's centre) how many runs it gets: those copies are its runs."""
+    from benchharness.design.surface import TYPE
     from benchharness.numbers import plural
 
     said = f"{replicates} per cell"
+    centre = "the centre " if plan.info.get("design", {}).get("type") == TYPE else ""
     for levels, copies in plan.repeated:
         where = ", ".join(f"{k}={v}" for k, v in levels.items())
-        centre = "the centre " if plan.info.get("design", {}).get("type") == \
-            "response-surface" else ""
         said += (f"; {copies * replicates} at {centre}{where}: {copies} in each of "
                  f"{plural(replicates, 'replicate')}")
     return said

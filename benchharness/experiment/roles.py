@@ -254,8 +254,9 @@ def factor_roles(experiment=None, factors: Iterable[str] | None = None,
                          source=declared.source)
         return declared
     if experiment is not None and is_response_surface(experiment):
+        left_out = set(exclude)
         names = [f for f in (list(factors) if factors is not None
-                             else list(experiment.factor_names)) if f not in set(exclude)]
+                             else list(experiment.factor_names)) if f not in left_out]
         return Roles(setting=tuple(names), source="guessed",
                      reasons={f: SURFACE_REASON for f in names})
     if experiment is not None:
@@ -271,13 +272,10 @@ def factor_roles(experiment=None, factors: Iterable[str] | None = None,
 def is_response_surface(experiment) -> bool:
     """Whether the experiment's ``design:`` is a response surface (its factors are the
     settings whose values it proposes, whatever their names suggest)."""
-    import yaml
+    from benchharness.design.surface import TYPE, type_node_of
 
     node = (getattr(experiment, "sections", None) or {}).get("design")
-    if not isinstance(node, yaml.MappingNode):
-        return False
-    return any(getattr(k, "value", None) == "type" and getattr(v, "value", None)
-               == "response-surface" for k, v in node.value)
+    return getattr(type_node_of(node), "value", None) == TYPE
 
 
 def surface_guess(roles: Roles) -> bool:
