@@ -140,6 +140,21 @@ class SizingAnswer:
         }
 
 
+def _check_noise_and_levels(sigma_log: float, alpha: float, power: float) -> None:
+    """A usage error unless the noise is positive and the confidence and power are
+    proper fractions."""
+    if not sigma_log > 0:
+        raise UsageError("the noise must be positive (a CV like 2%, or a pilot with "
+                         "varying run times)")
+    if not 0 < alpha < 1 or not 0 < power < 1:
+        raise UsageError("--confidence and --power must lie strictly between 0% and 100%")
+
+
+def _curve_points(n: int) -> list[int]:
+    """The replicate counts the power curve is shown at, around the answer ``n``."""
+    return sorted({m for m in (2, 3, n // 2, n - 1, n, n + 1, 2 * n) if m >= 2})
+
+
 def size_design(factors: Sequence[tuple[str, int]], detect: float, sigma_log: float,
                 alpha: float = 0.05, power: float = 0.9, method: str = "anova",
                 cells: int | None = None) -> SizingAnswer:
@@ -155,11 +170,7 @@ def size_design(factors: Sequence[tuple[str, int]], detect: float, sigma_log: fl
         raise UsageError("no factors to size for; give --levels 3,2,4 or an experiment file")
     if not detect > 0:
         raise UsageError("the difference to detect must be positive, like 3%")
-    if not sigma_log > 0:
-        raise UsageError("the noise must be positive (a CV like 2%, or a pilot with "
-                         "varying run times)")
-    if not 0 < alpha < 1 or not 0 < power < 1:
-        raise UsageError("--confidence and --power must lie strictly between 0% and 100%")
+    _check_noise_and_levels(sigma_log, alpha, power)
     for name, a in factors:
         if a < 2:
             raise UsageError(f"factor {name!r} has {plural(a, 'level')}; a factor needs at least 2")
@@ -174,7 +185,7 @@ def size_design(factors: Sequence[tuple[str, int]], detect: float, sigma_log: fl
     order = {name: i for i, (name, _a) in enumerate(factors)}
     binding = min(pf, key=lambda k: (pf[k], order[k]))
     a_bind = dict(factors)[binding]
-    others = sorted({m for m in (2, 3, n // 2, n - 1, n, n + 1, 2 * n) if m >= 2})
+    others = _curve_points(n)
     curve = tuple((m, fn(m, a_bind, cells, D, sigma_log, alpha)) for m in others)
     notes = []
     if method == "pairwise":
@@ -432,16 +443,12 @@ def size_effects(effects: Sequence[Effect], cells: int, detect: float, sigma_log
                           "trend": "no numeric factor to size a trend for: give an "
                                    "experiment file whose levels are numbers (--levels FILE)"}
                          .get(method, "nothing to size"))
-    if not sigma_log > 0:
-        raise UsageError("the noise must be positive (a CV like 2%, or a pilot with "
-                         "varying run times)")
-    if not 0 < alpha < 1 or not 0 < power < 1:
-        raise UsageError("--confidence and --power must lie strictly between 0% and 100%")
+    _check_noise_and_levels(sigma_log, alpha, power)
     per = {e.name: effect_replicates(e, cells, alpha, power) for e in effects}
     n = max(per.values())
     pf = {e.name: e.power(n, cells, alpha) for e in effects}
     binding = min(effects, key=lambda e: (pf[e.name], -per[e.name]))
-    others = sorted({m for m in (2, 3, n // 2, n - 1, n, n + 1, 2 * n) if m >= 2})
+    others = _curve_points(n)
     curve = tuple((m, binding.power(m, cells, alpha)) for m in others)
     return SizingAnswer(replicates=n, power=pf[binding.name], runs=n * cells, cells=cells,
                         per_factor=per, per_factor_power=pf, binding_factor=binding.name,
