@@ -213,10 +213,10 @@ def lack_of_fit(x: np.ndarray, z: np.ndarray, sse: float, p: int, alpha: float) 
 
 
 def p_words(p: float) -> str:
-    from benchharness.numbers import fmt_p
+    """A p-value in a sentence (``p = 0.013``, ``p < 0.001``: `numbers.fmt_p_said`)."""
+    from benchharness.numbers import fmt_p_said
 
-    text = fmt_p(p)
-    return f"p {text}" if text.startswith("<") else f"p = {text}"
+    return fmt_p_said(p)
 
 
 # ---- the explored region and the best point in it --------------------------------------
