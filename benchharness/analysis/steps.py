@@ -885,13 +885,12 @@ def best_setting(fit, lay: Layout, prep, roles, fdesign, scale: Scale, alpha, be
     if not lay.nf or scale.constant:     # every cell equal: nothing to choose between
         return None
     setting = setting_factors(roles, lay.fnames)
-    ran = None
-    if prep.experiment is not None:
-        from benchharness.design.spec import design_of
+    from benchharness.analysis.numeric import response_surface
 
-        if design_of(prep.experiment).surface is not None:
-            # a response surface runs a few of its values' combinations: choose among those
-            ran = {tuple(int(lay.codes[f][i]) for f in setting) for i in range(len(prep.y))}
+    ran = None
+    if response_surface(prep.experiment):
+        # a response surface runs a few of its values' combinations: choose among those
+        ran = {tuple(int(lay.codes[f][i]) for f in setting) for i in range(len(prep.y))}
     best = fd.best_cells(fit, lay.names, lay.levels, setting, scale.choice, alpha, better,
                          prep.response, ran=ran)
     if best is None:
