@@ -235,20 +235,19 @@ def tie_confidence(confidence: float) -> float:
     return (1.0 + float(confidence)) / 2.0
 
 
-def critical_values(weights, df, confidence: float = 0.95, decimals: int = 12) -> np.ndarray:
+def critical_values(weights, df, confidence: float = 0.95) -> np.ndarray:
     """The one-sided critical value ``d_i`` of each setting taken as the control against
     all the others (``weights[i]`` = Var(mean i) / sigma²), as Hsu's MCB uses them.
 
-    ``decimals`` rounds the correlations' factors before the (cached) root: 12 keeps
-    them exact; `analysis.findings` rounds to 3 on large unbalanced tables so that the
-    few distinct values are solved once each (the critical value moves by well under
-    0.1% for a change of 0.001 in a factor).
+    The correlations' factors are rounded to 12 decimals before the (cached) root, so
+    settings with equal weights share one root; large unbalanced tables use
+    `bounding_critical_values` instead (`analysis.findings`).
     """
     w = np.asarray(weights, dtype=float)
     d = np.empty(w.size)
     for i in range(w.size):
         lam = np.sqrt(w[i] / (w[i] + np.delete(w, i)))
-        d[i] = _critical_cached(tuple(np.round(np.sort(lam), decimals)), float(df),
+        d[i] = _critical_cached(tuple(np.round(np.sort(lam), 12)), float(df),
                                 float(confidence))
     return d
 
