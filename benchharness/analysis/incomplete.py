@@ -235,9 +235,14 @@ def term_states(anova_rows) -> list[dict]:
         if r.get("kind") != "effect":
             continue
         df, full = int(r.get("df") or 0), int(r.get("df_full") or 0)
-        state = "full" if df >= full else ("none" if df == 0 else "part")
-        terms.append({"term": r["term"], "df": df, "df_full": full, "estimable": state})
+        terms.append({"term": r["term"], "df": df, "df_full": full,
+                      "estimable": _estimable(df, full)})
     return terms
+
+
+def _estimable(df: int, full: int) -> str:
+    """``full``, ``part`` or ``none``: a term's df against those of its full grid."""
+    return "full" if df >= full else ("none" if df == 0 else "part")
 
 
 def estimability_statements(terms) -> list[str]:
@@ -348,9 +353,7 @@ def nested_term_states(terms: list[dict], nested_terms, nested: dict, cells,
             out.append(t)
             continue
         full = nested_full_df(own[t["term"]], nested, cells, sizes)
-        df = t["df"]
-        state = "full" if df >= full else ("none" if df == 0 else "part")
-        out.append(dict(t, df_full=max(full, df), estimable=state))
+        out.append(dict(t, df_full=max(full, t["df"]), estimable=_estimable(t["df"], full)))
     return out
 
 
