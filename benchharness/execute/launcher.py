@@ -575,10 +575,11 @@ class Launcher:
         return cond
 
     def inflight_slot(self, inflight):
-        """(shared mapping of the in-flight file, record template, run id), or
-        None if the file cannot be mapped. The template is bytes with five
-        ``%d`` (run id, the child's pid and process group, the bounds of its
-        start time), made once per file: numbers right-aligned in fixed widths
+        """(entry, run id), or None if the file cannot be mapped; the entry,
+        kept per file, is ``[shared mapping of the in-flight file, record
+        template, boot id, length of the last record stored]``. The template is
+        bytes with five ``%d`` (run id, the child's pid and process group, the
+        bounds of its start time), made once per file and boot: numbers right-aligned in fixed widths
         (JSON allows the spaces), so records are all of one length
         and the store after the spawn is one format and one copy (see
         `launch`).
