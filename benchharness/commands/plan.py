@@ -100,8 +100,7 @@ def _timing(args, exp, plan) -> dict:
 
 
 def _timing_lines(timing: dict) -> list[str]:
-    from benchharness.design.budget import fmt_s
-    from benchharness.numbers import plural
+    from benchharness.numbers import fmt_duration, plural
 
     lines = []
     a = timing.get("adaptive")
@@ -111,16 +110,18 @@ def _timing_lines(timing: dict) -> list[str]:
                      f"within ±{a['ratio_halfwidth'] * 100:g}%")
     t = timing.get("time_estimate")
     if t:
-        lines.append(f"expected    about {fmt_s(t['expected_total_s'])} "
-                     f"(timed {fmt_s(t['expected_timed_s'])}, warm-up "
-                     f"{fmt_s(t['expected_warmup_s'])}, {fmt_s(t['overhead_per_run_s'])} "
-                     f"overhead per run; one replicate {fmt_s(t['expected_replicate_s'])}; "
+        lines.append(f"expected    about {fmt_duration(t['expected_total_s'])} "
+                     f"(timed {fmt_duration(t['expected_timed_s'])}, warm-up "
+                     f"{fmt_duration(t['expected_warmup_s'])}, "
+                     f"{fmt_duration(t['overhead_per_run_s'])} overhead per run; "
+                     f"one replicate {fmt_duration(t['expected_replicate_s'])}; "
                      f"from the pilot)")
         if "expected_at_max_replicates_s" in t:
-            lines.append(f"            at most about {fmt_s(t['expected_at_max_replicates_s'])} "
+            lines.append("            at most about "
+                         f"{fmt_duration(t['expected_at_max_replicates_s'])} "
                          f"if all {a['max']} replicates run")
         if "replicates_in_budget" in t:
-            lines.append(f"budget      {fmt_s(t['budget_s'])} fits "
+            lines.append(f"budget      {fmt_duration(t['budget_s'])} fits "
                          f"{plural(t['replicates_in_budget'], 'complete replicate')}")
         for n in t.get("notes", []):
             lines.append(f"note        {n}")

@@ -292,7 +292,7 @@ def _interaction_on_space(args, sizing, factors, exp, detect, sigma, alpha):
 
 
 def format_answer(ans, out: dict) -> str:
-    from benchharness.design.budget import fmt_s
+    from benchharness.numbers import fmt_duration
 
     what = {"pairwise": "Holm-adjusted pairwise comparisons",
             "interaction": "two-factor interaction F tests",
@@ -324,8 +324,8 @@ def format_answer(ans, out: dict) -> str:
     lines.append(f"power of {ans.binding_factor} at other replicate counts: "
                  + ", ".join(f"{n}: {p:.2f}" for n, p in ans.curve))
     if "expected_wall_s" in out:
-        lines.append(f"expected time: about {fmt_s(out['expected_wall_s'])} "
-                     f"({fmt_s(out['expected_run_s'])} per run from the pilot, overhead "
+        lines.append(f"expected time: about {fmt_duration(out['expected_wall_s'])} "
+                     f"({fmt_duration(out['expected_run_s'])} per run from the pilot, overhead "
                      f"included)")
     for note in ans.notes:
         lines.append(f"note: {note}")

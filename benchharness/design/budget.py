@@ -17,7 +17,7 @@ half-run. (A plain "plan the work to fit the time" rule; common practice.)
 
 from __future__ import annotations
 
-from benchharness.numbers import plural
+from benchharness.numbers import fmt_duration, plural
 
 import math
 from dataclasses import dataclass, field
@@ -145,9 +145,10 @@ def next_replicate_fits(budget_s: float, elapsed_s: float,
         return True, "no duration known yet; the first replicate always runs"
     left = budget_s - elapsed_s
     if need <= left:
-        return True, f"next replicate needs about {fmt_s(need)} ({basis}); {fmt_s(left)} left"
-    return False, (f"stopping: the next replicate needs about {fmt_s(need)} ({basis}) but only "
-                   f"{fmt_s(max(left, 0))} of the budget is left")
+        return True, (f"next replicate needs about {fmt_duration(need)} ({basis}); "
+                      f"{fmt_duration(left)} left")
+    return False, (f"stopping: the next replicate needs about {fmt_duration(need)} ({basis}) "
+                   f"but only {fmt_duration(max(left, 0))} of the budget is left")
 
 
 def replicates_in_budget(budget_s: float, per_replicate_s: float, warmup_s: float = 0.0) -> int:
@@ -155,10 +156,3 @@ def replicates_in_budget(budget_s: float, per_replicate_s: float, warmup_s: floa
     if per_replicate_s <= 0:
         return 0
     return max(0, int((budget_s - warmup_s) // per_replicate_s))
-
-
-def fmt_s(s: float) -> str:
-    """A time estimate or budget as the one formatter writes it (``13.8 s``, ``2 min 5 s``)."""
-    from benchharness.numbers import fmt_duration
-
-    return fmt_duration(s)

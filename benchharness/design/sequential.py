@@ -24,7 +24,8 @@ from pathlib import Path
 from typing import Callable, Mapping, Sequence
 
 from benchharness.design.adaptive import AdaptiveRule, decide
-from benchharness.design.budget import fmt_s, next_replicate_fits
+from benchharness.design.budget import next_replicate_fits
+from benchharness.numbers import fmt_duration
 
 STOPPING_FILE = "stopping.json"
 
@@ -105,7 +106,7 @@ class ReplicateGate:
             entry["budget"] = {"fits": ok, "reason": why}
             if not ok:
                 reason = (f"{why}; stopped after {plural(completed, 'complete replicate')} in "
-                          f"{fmt_s(now - self.start)}")
+                          f"{fmt_duration(now - self.start)}")
         entry["stop"] = reason is not None
         entry["reason"] = reason
         self.decisions.append(entry)
