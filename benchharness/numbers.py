@@ -160,6 +160,12 @@ def fmt_p(p) -> str:
     return f"{v:.3f}"
 
 
+def fmt_confidence(alpha) -> str:
+    """The confidence of a ``1 - alpha`` statement: ``95%``, ``99.9%``, ``97.5%`` (never
+    rounded to a whole number: 99.9% is not 100%)."""
+    return f"{100 * (1 - float(alpha)):.6g}%"
+
+
 def fmt_p_said(p) -> str:
     """A p-value in a sentence: ``p = 0.013``, ``p < 0.001``, ``p –`` when there is none."""
     if p is None:

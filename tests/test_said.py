@@ -363,3 +363,17 @@ def test_a_caution_names_its_check_and_does_not_assert_what_the_test_did_not_con
     (c,) = [f for f in an.findings if f.get("check") == "drift"]
     assert c["statement"].startswith("Drift over the run order: a drift beyond ±5% per 100 "
                                      "runs cannot be ruled out")
+
+
+def test_a_confidence_that_is_not_a_whole_percentage_is_said_and_used_as_given():
+    # planted: a bend on log-log axes (n=100 three times slower than a power law), analysed
+    # at 99.9% confidence: the words say 99.9% (not "100%") and the lack of fit, p < 0.001,
+    # is reported (at "100%" it was judged against 0 and never said)
+    rng = np.random.default_rng(4)
+    rows = [{"n": str(n), "wall_s": 0.001 * n * (3 if n == 100 else 1)
+             * math.exp(rng.normal(0, 0.02))} for n in (10, 100, 1000) for _ in range(5)]
+    an = analyze(pd.DataFrame(rows), factors=["n"], alpha=0.001)
+    (t,) = [f for f in an.findings if f["kind"] == "trend"]
+    assert "(99.9% interval of the log-log slope)" in t["statement"]
+    assert "lack of fit p < 0.001" in t["statement"] and t["lack_of_fit"]
+    assert not any("100%" in f.get("statement", "") for f in an.findings)

@@ -296,11 +296,13 @@ def _slope_verdict(pct: float, p: float, alpha: float, interval=None):
     size = f"{_signed(pct)}% per 100 runs"
     level = "ok"
     if p >= alpha and abs(pct) > DRIFT_LARGE_PCT:
+        from benchharness.numbers import fmt_confidence
+
         level = "caution"
         within = ""
         if interval is not None and all(map(math.isfinite, interval)):
             lo, hi = interval
-            within = (f"; its {_pct_conf(alpha)} interval, {_signed(lo)}% to {_signed(hi)}% "
+            within = (f"; its {fmt_confidence(alpha)} interval, {_signed(lo)}% to {_signed(hi)}% "
                       "per 100 runs, holds both no drift and a larger one")
         verdict = (f"a drift beyond ±{DRIFT_LARGE_PCT:g}% per 100 runs cannot be ruled out: the "
                    f"slope over the run order, {size}, is not significant ({_p(p)}){within}. "
@@ -374,11 +376,6 @@ def _signed(x: float) -> str:
     from benchharness.numbers import fmt_num
 
     return ("+" if x > 0 else "") + fmt_num(x)
-
-
-def _pct_conf(alpha: float) -> str:
-    """The confidence of a ``1 - alpha`` interval in words: ``95%``."""
-    return f"{100 * (1 - alpha):.6g}%"
 
 
 def _p(p: float) -> str:

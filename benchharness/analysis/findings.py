@@ -333,7 +333,7 @@ def derive(d: dict) -> list[dict]:
     or tied set, cautions.
     """
     alpha = float(d.get("alpha") or 0.05)
-    conf = f"{round((1 - alpha) * 100):g}%"
+    conf = _numbers.fmt_confidence(alpha)
     factors, refs, comps, rows = _terms_read(d)
     if ((d.get("model") or {}).get("no_variation") or {}).get("kind") == "constant":
         return _cautions(d)[:1]   # every run the same: that is the whole finding

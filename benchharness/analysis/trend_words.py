@@ -378,7 +378,7 @@ def _fraction_text(sf: dict) -> str:
 def findings(d: dict) -> list[dict]:
     """The trend and scaling findings of an analysis (plain analysis.json content)."""
     alpha = float(d.get("alpha") or 0.05)
-    conf = f"{round((1 - alpha) * 100):g}%"
+    conf = _numbers.fmt_confidence(alpha)
     out = []
     for t in d.get("trends") or []:
         if t.get("skipped"):
